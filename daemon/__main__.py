@@ -1,0 +1,5 @@
+import sys
+
+from edgevib.daemon.cli import main
+
+sys.exit(main())

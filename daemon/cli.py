@@ -1,0 +1,79 @@
+"""The ``edgevib`` command line: one dispatcher, each subcommand implemented in the module that owns it.
+
+A subcommand's module defines ``configure_<name>(parser)`` and ``run_<name>(args) -> int`` (``-`` in the name
+becomes ``_``).  Exit codes: 0 success, 2 bad input or configuration (one line on stderr, no traceback),
+130 interrupted.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+from collections.abc import Callable, Sequence
+from typing import Any
+
+__all__ = ["main"]
+
+# name -> (module, one-line help)
+COMMANDS: dict[str, tuple[str, str]] = {
+    "run": ("edgevib.daemon.service", "run the monitoring daemon with a configuration file"),
+    "demo": ("edgevib.daemon.service", "run the daemon on the built-in simulated pump station (no broker needed)"),
+    "check-config": ("edgevib.daemon.service", "validate a configuration file and print it resolved"),
+    "analyze": ("edgevib.daemon.offline", "analyse a recorded waveform (WAV, .npy, CSV, MATLAB .mat)"),
+    "bearing": ("edgevib.daemon.offline", "print the defect frequencies of a rolling-element bearing"),
+    "simulate": ("edgevib.simulator.cli", "stream simulated machines over MQTT or OPC UA, or write WAV/truth"),
+    "alarms": ("edgevib.daemon.alarmctl", "list, acknowledge, shelve or re-learn alarms of a running daemon"),
+}
+
+
+def _load(name: str) -> tuple[Callable[[argparse.ArgumentParser], None] | None, Callable[[Any], int] | None]:
+    module_name, _ = COMMANDS[name]
+    suffix = name.replace("-", "_")
+    try:
+        module = importlib.import_module(module_name)
+    except ModuleNotFoundError as exc:
+        if exc.name and module_name.startswith(exc.name):
+            return None, None
+        raise
+    return getattr(module, f"configure_{suffix}", None), getattr(module, f"run_{suffix}", None)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="edgevib",
+        description="Streaming vibration monitor for rotating machines. edgevib monitors and advises; "
+        "it is not a machinery protection (trip) system.",
+    )
+    from edgevib.daemon import __version__
+
+    parser.add_argument("--version", action="version", version=f"edgevib {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for name, (_, help_text) in COMMANDS.items():
+        configure, runner = _load(name)
+        p = sub.add_parser(name, help=help_text, description=help_text)
+        if configure is not None and runner is not None:
+            configure(p)
+            p.set_defaults(_runner=runner)
+        else:
+            p.set_defaults(_runner=None)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help()
+        return 2
+    if args._runner is None:
+        print(f"edgevib {args.command}: not yet available in this version", file=sys.stderr)
+        return 2
+    try:
+        return int(args._runner(args))
+    except KeyboardInterrupt:
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,383 @@
+"""The block wire format: one block of accelerometer samples and its MQTT payload encodings.
+
+A *block* is a contiguous run of samples from one sensor: sensor id, sequence number, start time,
+sample rate, unit and the samples themselves.  Devices publish blocks as MQTT payloads in one of two forms:
+
+JSON form (``application/json``)::
+
+    {"v": 1, "sensor": "PS1-P101-DE-H", "seq": 42, "t0_ns": 1764633600000000000,
+     "fs_hz": 25600.0, "unit": "g", "encoding": "f32le-b64", "data": "<base64>"}
+
+``encoding`` is one of
+
+* ``"f32le-b64"``: ``data`` is base64 of little-endian IEEE-754 float32 samples;
+* ``"i16le-b64"``: ``data`` is base64 of little-endian int16 counts, and ``"scale"`` (required,
+  finite, non-zero) converts them: ``value = count * scale`` in ``unit``;
+* ``"array"``: ``data`` is a plain JSON array of numbers (for simple devices).
+
+Binary form: a fixed little-endian header, the UTF-8 sensor id, then the samples::
+
+    offset size field
+    0      4    magic  b"EVB1"   (the trailing byte is the header version, currently 1)
+    4      1    dtype  1 = float32, 2 = int16 (scaled by ``scale``)
+    5      1    unit   0 = g, 1 = m/s2
+    6      2    sensor id length in bytes (1..128)
+    8      8    seq    uint64
+    16     8    t0_ns  int64, nanoseconds since the Unix epoch
+    24     8    fs_hz  float64
+    32     4    scale  float32 (int16 only; 0 for float32)
+    36     4    n      uint32 number of samples
+    40     ...  sensor id, then n samples
+
+Decoding is strict: a size limit, the version, the declared length against the bytes present, finite
+values and a positive sample rate are all checked; each failure raises a specific :class:`WireError`
+subclass whose ``reason`` is a short label suitable for a metric (``blocks_rejected_total{reason=...}``).
+
+This module is shared by the daemon and the simulator; it depends on numpy only.
+"""
+
+from __future__ import annotations
+
+import base64
+import binascii
+import json
+import math
+import struct
+from dataclasses import dataclass, field
+from typing import Any, Literal
+
+import numpy as np
+import numpy.typing as npt
+
+__all__ = [
+    "DEFAULT_MAX_PAYLOAD_BYTES",
+    "DEFAULT_MAX_SAMPLES",
+    "UNITS",
+    "Block",
+    "InvalidField",
+    "InvalidSampleRate",
+    "LengthMismatch",
+    "MalformedPayload",
+    "NonFiniteSamples",
+    "PayloadTooLarge",
+    "UnsupportedVersion",
+    "WireError",
+    "decode",
+    "encode_binary",
+    "encode_json",
+]
+
+WIRE_VERSION = 1
+DEFAULT_MAX_PAYLOAD_BYTES = 4 * 1024 * 1024
+DEFAULT_MAX_SAMPLES = 262_144
+MAX_SENSOR_ID_BYTES = 128
+UNITS: tuple[str, ...] = ("g", "m/s2")
+
+_MAGIC = b"EVB"
+_HEADER = struct.Struct("<4sBBHQqdfI")  # 40 bytes
+_DTYPE_F32 = 1
+_DTYPE_I16 = 2
+_JSON_KEYS = frozenset({"v", "sensor", "seq", "t0_ns", "fs_hz", "unit", "encoding", "data", "scale"})
+_ENCODINGS = ("f32le-b64", "i16le-b64", "array")
+
+
+class WireError(ValueError):
+    """A payload that is not a valid block.  ``reason`` is a short metric label."""
+
+    reason = "malformed"
+
+
+class PayloadTooLarge(WireError):
+    reason = "too_large"
+
+
+class UnsupportedVersion(WireError):
+    reason = "unsupported_version"
+
+
+class MalformedPayload(WireError):
+    reason = "malformed"
+
+
+class InvalidField(WireError):
+    reason = "invalid_field"
+
+
+class LengthMismatch(WireError):
+    reason = "length_mismatch"
+
+
+class NonFiniteSamples(WireError):
+    reason = "non_finite"
+
+
+class InvalidSampleRate(WireError):
+    reason = "invalid_sample_rate"
+
+
+@dataclass(frozen=True, slots=True)
+class Block:
+    """One block of samples from one sensor.
+
+    ``samples`` is a 1-D float array in ``unit`` (``"g"`` or ``"m/s2"``); ``t0_ns`` is the time of the first
+    sample in nanoseconds since the Unix epoch.  The end time and duration are derived, not stored.
+    """
+
+    sensor_id: str
+    seq: int
+    t0_ns: int
+    fs_hz: float
+    unit: str
+    samples: npt.NDArray[np.floating[Any]] = field(repr=False)
+
+    @property
+    def n_samples(self) -> int:
+        return int(self.samples.shape[0])
+
+    @property
+    def duration_s(self) -> float:
+        return self.n_samples / self.fs_hz
+
+    @property
+    def end_ns(self) -> int:
+        """Time just after the last sample (the next block's expected ``t0_ns``)."""
+        return self.t0_ns + round(self.n_samples * 1e9 / self.fs_hz)
+
+
+# --------------------------------------------------------------------------------------------- encoding
+
+
+def _check_block(block: Block) -> None:
+    _check_sensor_id(block.sensor_id)
+    _check_fs(block.fs_hz)
+    _check_unit(block.unit)
+    if not 0 <= block.seq < 2**64:
+        raise InvalidField(f"seq {block.seq} is outside 0..2^64-1")
+
+
+def encode_json(block: Block, encoding: Literal["f32le-b64", "i16le-b64", "array"] = "f32le-b64",
+                scale: float | None = None) -> bytes:
+    """Encode ``block`` in the JSON form.
+
+    For ``"i16le-b64"`` the samples are quantized to ``round(x / scale)`` (``scale`` defaults to the value
+    that maps the block's peak to 32767); values outside the int16 range saturate.
+    """
+    _check_block(block)
+    doc: dict[str, Any] = {
+        "v": WIRE_VERSION, "sensor": block.sensor_id, "seq": int(block.seq), "t0_ns": int(block.t0_ns),
+        "fs_hz": float(block.fs_hz), "unit": block.unit, "encoding": encoding,
+    }
+    x = np.asarray(block.samples, dtype=np.float64)
+    if encoding == "f32le-b64":
+        doc["data"] = base64.b64encode(x.astype("<f4").tobytes()).decode("ascii")
+    elif encoding == "i16le-b64":
+        if scale is None:
+            peak = float(np.max(np.abs(x))) if x.size else 0.0
+            scale = peak / 32767.0 if peak > 0 else 1.0
+        if not math.isfinite(scale) or scale == 0:
+            raise InvalidField(f"scale {scale!r} must be finite and non-zero")
+        counts = np.clip(np.rint(x / scale), -32768, 32767).astype("<i2")
+        doc["scale"] = float(scale)
+        doc["data"] = base64.b64encode(counts.tobytes()).decode("ascii")
+    elif encoding == "array":
+        doc["data"] = [float(v) for v in x]
+    else:
+        raise InvalidField(f"unknown encoding {encoding!r}; expected one of {', '.join(_ENCODINGS)}")
+    return json.dumps(doc, separators=(",", ":")).encode("utf-8")
+
+
+def encode_binary(block: Block, dtype: Literal["float32", "int16"] = "float32",
+                  scale: float | None = None) -> bytes:
+    """Encode ``block`` in the compact binary form (see the module docstring for the layout)."""
+    _check_block(block)
+    sid = block.sensor_id.encode("utf-8")
+    x = np.asarray(block.samples, dtype=np.float64)
+    if dtype == "float32":
+        code, scale_out, body = _DTYPE_F32, 0.0, x.astype("<f4").tobytes()
+    elif dtype == "int16":
+        if scale is None:
+            peak = float(np.max(np.abs(x))) if x.size else 0.0
+            scale = peak / 32767.0 if peak > 0 else 1.0
+        if not math.isfinite(scale) or scale == 0:
+            raise InvalidField(f"scale {scale!r} must be finite and non-zero")
+        code, scale_out = _DTYPE_I16, float(scale)
+        body = np.clip(np.rint(x / scale), -32768, 32767).astype("<i2").tobytes()
+    else:
+        raise InvalidField(f"unknown binary dtype {dtype!r}; expected float32 or int16")
+    header = _HEADER.pack(_MAGIC + bytes([WIRE_VERSION]), code, UNITS.index(block.unit), len(sid),
+                          int(block.seq), int(block.t0_ns), float(block.fs_hz), scale_out, x.shape[0])
+    return header + sid + body
+
+
+# --------------------------------------------------------------------------------------------- decoding
+
+
+def decode(payload: bytes | bytearray | memoryview, *, max_bytes: int = DEFAULT_MAX_PAYLOAD_BYTES,
+           max_samples: int = DEFAULT_MAX_SAMPLES) -> Block:
+    """Decode a JSON or binary payload into a :class:`Block`.
+
+    Raises
+    ------
+    WireError
+        (one of its subclasses) for every way the payload can be invalid; nothing else escapes.
+    """
+    try:
+        data = bytes(payload)
+    except (TypeError, ValueError) as exc:
+        raise MalformedPayload(f"payload is not bytes: {exc}") from exc
+    if len(data) > max_bytes:
+        raise PayloadTooLarge(f"payload of {len(data)} bytes exceeds the limit of {max_bytes} bytes")
+    if not data:
+        raise MalformedPayload("empty payload")
+    if data[:3] == _MAGIC:
+        block = _decode_binary(data, max_samples)
+    elif data.lstrip()[:1] == b"{":
+        block = _decode_json(data, max_samples)
+    else:
+        raise MalformedPayload("payload is neither a JSON object nor a binary block (no 'EVB' magic)")
+    return block
+
+
+def _check_sensor_id(sid: object) -> str:
+    if not isinstance(sid, str) or not sid:
+        raise InvalidField("sensor id must be a non-empty string")
+    if len(sid.encode("utf-8")) > MAX_SENSOR_ID_BYTES:
+        raise InvalidField(f"sensor id longer than {MAX_SENSOR_ID_BYTES} bytes")
+    if any(ord(c) < 32 for c in sid):
+        raise InvalidField("sensor id contains control characters")
+    return sid
+
+
+def _check_fs(fs: object) -> float:
+    if isinstance(fs, bool) or not isinstance(fs, int | float):
+        raise InvalidSampleRate(f"fs_hz must be a number, got {type(fs).__name__}")
+    fs_f = float(fs)
+    if not math.isfinite(fs_f) or fs_f <= 0:
+        raise InvalidSampleRate(f"fs_hz {fs!r} must be finite and > 0")
+    if fs_f > 10_000_000:
+        raise InvalidSampleRate(f"fs_hz {fs_f:g} is above the 10 MHz limit")
+    return fs_f
+
+
+def _check_unit(unit: object) -> str:
+    if unit not in UNITS:
+        raise InvalidField(f"unit {unit!r} is not one of {', '.join(UNITS)}")
+    return str(unit)
+
+
+def _check_int(name: str, value: object, lo: int, hi: int) -> int:
+    if isinstance(value, bool) or not isinstance(value, int):
+        raise InvalidField(f"{name} must be an integer, got {type(value).__name__}")
+    if not lo <= value <= hi:
+        raise InvalidField(f"{name} {value} is outside {lo}..{hi}")
+    return value
+
+
+def _finish(sid: str, seq: int, t0_ns: int, fs: float, unit: str, samples: npt.NDArray[Any],
+            max_samples: int) -> Block:
+    n = samples.shape[0]
+    if n == 0:
+        raise LengthMismatch("block has no samples")
+    if n > max_samples:
+        raise LengthMismatch(f"block has {n} samples, more than the limit of {max_samples}")
+    x = samples.astype(np.float64)
+    if not np.isfinite(x).all():
+        bad = int(np.count_nonzero(~np.isfinite(x)))
+        raise NonFiniteSamples(f"{bad} of {n} samples are NaN or infinite")
+    x.flags.writeable = False
+    return Block(sensor_id=sid, seq=seq, t0_ns=t0_ns, fs_hz=fs, unit=unit, samples=x)
+
+
+def _decode_binary(data: bytes, max_samples: int) -> Block:
+    if len(data) < _HEADER.size:
+        raise LengthMismatch(f"binary block of {len(data)} bytes is shorter than its {_HEADER.size}-byte header")
+    magic, code, unit_code, sid_len, seq, t0_ns, fs, scale, n = _HEADER.unpack_from(data)
+    if magic[3] != WIRE_VERSION:
+        raise UnsupportedVersion(f"binary block version {magic[3]} is not supported (expected {WIRE_VERSION})")
+    if code not in (_DTYPE_F32, _DTYPE_I16):
+        raise InvalidField(f"binary dtype code {code} is not 1 (float32) or 2 (int16)")
+    if unit_code >= len(UNITS):
+        raise InvalidField(f"binary unit code {unit_code} is not 0 (g) or 1 (m/s2)")
+    if not 1 <= sid_len <= MAX_SENSOR_ID_BYTES:
+        raise InvalidField(f"sensor id length {sid_len} is outside 1..{MAX_SENSOR_ID_BYTES}")
+    if n > max_samples:
+        raise LengthMismatch(f"block declares {n} samples, more than the limit of {max_samples}")
+    width = 4 if code == _DTYPE_F32 else 2
+    expected = _HEADER.size + sid_len + n * width
+    if len(data) != expected:
+        raise LengthMismatch(f"binary block declares {n} samples ({expected} bytes) but has {len(data)} bytes")
+    try:
+        sid = data[_HEADER.size:_HEADER.size + sid_len].decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise InvalidField("sensor id is not valid UTF-8") from exc
+    _check_sensor_id(sid)
+    fs_f = _check_fs(fs)
+    body = data[_HEADER.size + sid_len:]
+    if code == _DTYPE_F32:
+        samples = np.frombuffer(body, dtype="<f4")
+    else:
+        if not math.isfinite(scale) or scale == 0:
+            raise InvalidField(f"int16 block scale {scale!r} must be finite and non-zero")
+        samples = np.frombuffer(body, dtype="<i2").astype(np.float64) * float(scale)
+    return _finish(sid, int(seq), int(t0_ns), fs_f, UNITS[unit_code], samples, max_samples)
+
+
+def _decode_json(data: bytes, max_samples: int) -> Block:
+    try:
+        doc = json.loads(data.decode("utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError, RecursionError) as exc:
+        raise MalformedPayload(f"invalid JSON: {exc}") from exc
+    if not isinstance(doc, dict):
+        raise MalformedPayload("JSON payload is not an object")
+    unknown = set(doc) - _JSON_KEYS
+    if unknown:
+        raise InvalidField(f"unknown field(s) {', '.join(sorted(map(str, unknown)))}")
+    missing = [k for k in ("v", "sensor", "seq", "fs_hz", "unit", "encoding", "data") if k not in doc]
+    if missing:
+        raise InvalidField(f"missing field(s) {', '.join(missing)}")
+    version = doc["v"]
+    if version != WIRE_VERSION or isinstance(version, bool):
+        raise UnsupportedVersion(f"JSON block version {version!r} is not supported (expected {WIRE_VERSION})")
+    sid = _check_sensor_id(doc["sensor"])
+    seq = _check_int("seq", doc["seq"], 0, 2**64 - 1)
+    t0_ns = _check_int("t0_ns", doc.get("t0_ns", 0), -(2**63), 2**63 - 1)
+    fs = _check_fs(doc["fs_hz"])
+    unit = _check_unit(doc["unit"])
+    encoding = doc["encoding"]
+    raw = doc["data"]
+    if encoding == "array":
+        if not isinstance(raw, list):
+            raise InvalidField("encoding 'array' needs 'data' to be a JSON array of numbers")
+        if len(raw) > max_samples:
+            raise LengthMismatch(f"block has {len(raw)} samples, more than the limit of {max_samples}")
+        if not all(isinstance(v, int | float) and not isinstance(v, bool) for v in raw):
+            raise InvalidField("'data' array holds something other than numbers")
+        try:
+            samples = np.asarray(raw, dtype=np.float64)
+        except OverflowError as exc:
+            raise NonFiniteSamples("a sample does not fit a float64") from exc
+    elif encoding in ("f32le-b64", "i16le-b64"):
+        if not isinstance(raw, str):
+            raise InvalidField(f"encoding {encoding!r} needs 'data' to be a base64 string")
+        width = 4 if encoding == "f32le-b64" else 2
+        if len(raw) * 3 // 4 > (max_samples + 2) * width:
+            raise LengthMismatch(f"block has more samples than the limit of {max_samples}")
+        try:
+            body = base64.b64decode(raw, validate=True)
+        except (binascii.Error, ValueError) as exc:
+            raise MalformedPayload(f"'data' is not valid base64: {exc}") from exc
+        if len(body) % width:
+            raise LengthMismatch(f"{len(body)} data bytes is not a whole number of {width}-byte samples")
+        if encoding == "f32le-b64":
+            if "scale" in doc:
+                raise InvalidField("'scale' is only allowed with encoding 'i16le-b64'")
+            samples = np.frombuffer(body, dtype="<f4")
+        else:
+            scale = doc.get("scale")
+            if isinstance(scale, bool) or not isinstance(scale, int | float) or not math.isfinite(scale) \
+                    or scale == 0:
+                raise InvalidField("encoding 'i16le-b64' needs a finite, non-zero numeric 'scale'")
+            samples = np.frombuffer(body, dtype="<i2").astype(np.float64) * float(scale)
+    else:
+        raise InvalidField(f"unknown encoding {encoding!r}; expected one of {', '.join(_ENCODINGS)}")
+    return _finish(sid, seq, t0_ns, fs, unit, samples, max_samples)

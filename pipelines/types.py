@@ -1,0 +1,121 @@
+"""Contracts of the numerical core: analysis plans in, small typed results out.
+
+An :class:`AnalysisPlan` is built once per measurement-point configuration (sample rate, frame length, bands,
+bearing, orders); :func:`edgevib.pipelines.analysis.analyze_frames` then turns a ``(channels, samples)`` array of
+frames that share one plan into one :class:`FrameIndicators` per channel.  Nothing here does I/O.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Literal
+
+__all__ = [
+    "AnalysisPlan",
+    "BearingGeometry",
+    "DefectFrequencies",
+    "FamilyResult",
+    "FrameIndicators",
+    "GeometryError",
+    "PipelineError",
+    "PlanError",
+    "SignalError",
+    "Support",
+]
+
+Support = Literal["rigid", "flexible"]
+
+
+class PipelineError(ValueError):
+    """Base class of every error the numerical core raises on bad input."""
+
+
+class GeometryError(PipelineError):
+    """Impossible bearing geometry (no elements, ball ≥ pitch diameter, contact angle out of range...)."""
+
+
+class PlanError(PipelineError):
+    """An analysis plan that cannot work (band above Nyquist, record too short for the resolution...)."""
+
+
+class SignalError(PipelineError):
+    """Samples that cannot be analysed (NaN/Inf, wrong shape, empty)."""
+
+
+@dataclass(frozen=True, slots=True)
+class BearingGeometry:
+    """Rolling-element bearing geometry; diameters in any one length unit (only their ratio matters)."""
+
+    elements: int
+    ball_diameter: float
+    pitch_diameter: float
+    contact_angle_deg: float = 0.0
+
+
+@dataclass(frozen=True, slots=True)
+class DefectFrequencies:
+    """Kinematic defect frequencies in Hz at one shaft speed (outer ring stationary)."""
+
+    shaft_hz: float
+    ftf_hz: float
+    bpfo_hz: float
+    bpfi_hz: float
+    bsf_hz: float
+
+
+@dataclass(frozen=True, slots=True)
+class AnalysisPlan:
+    """Everything needed to analyse frames of one shape; validated when built (see ``analysis.make_plan``).
+
+    ``envelope_band_hz`` is ``None`` when the point gets no envelope indicators (for example a MEMS sensor
+    whose bandwidth cannot carry the demodulation band).  ``speed_range_hz`` bounds the shaft-speed estimate
+    used when no speed is given.
+    """
+
+    fs_hz: float
+    n_samples: int
+    velocity_band_hz: tuple[float, float] = (10.0, 1000.0)
+    envelope_band_hz: tuple[float, float] | None = None
+    bearing: BearingGeometry | None = None
+    orders: tuple[float, ...] = (0.5, 1.0, 2.0, 3.0)
+    order_tolerance: float = 0.03
+    speed_range_hz: tuple[float, float] = (5.0, 100.0)
+    slip_tolerance: float = 0.02
+    harmonics: int = 3
+
+
+@dataclass(frozen=True, slots=True)
+class FamilyResult:
+    """One bearing defect family in the envelope spectrum.
+
+    ``frequency_hz`` is where the fundamental was found (within the slip tolerance of the kinematic value),
+    ``amplitude_g`` its envelope-spectrum amplitude, ``snr_db`` the family's level over the local spectral floor,
+    ``harmonics_found`` how many of the searched harmonics stand clearly above that floor.
+    """
+
+    expected_hz: float
+    frequency_hz: float
+    amplitude_g: float
+    snr_db: float
+    harmonics_found: int
+
+
+@dataclass(frozen=True, slots=True)
+class FrameIndicators:
+    """Indicators of one frame of one channel.  Units are in the names; ``None`` means unavailable."""
+
+    acceleration_rms_g: float
+    acceleration_peak_g: float
+    acceleration_peak_to_peak_g: float
+    crest_factor: float
+    kurtosis: float
+    skewness: float
+    mean_g: float
+    velocity_rms_mm_s: float
+    velocity_peak_mm_s: float
+    displacement_pp_um: float
+    shaft_hz: float | None
+    shaft_estimated: bool
+    orders_mm_s: dict[str, float] = field(default_factory=dict)
+    envelope_band_hz: tuple[float, float] | None = None
+    envelope: dict[str, FamilyResult] = field(default_factory=dict)

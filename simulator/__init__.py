@@ -1,0 +1,1 @@
+"""Simulated accelerometer streams with analytic truth (never imports edgevib.pipelines)."""

@@ -1,0 +1,33 @@
+from __future__ import annotations
+
+import sys
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+
+sys.path.insert(0, str(Path(__file__).parent))
+
+from servers import Mosquitto  # noqa: E402
+
+REPO = Path(__file__).resolve().parent.parent
+DATASETS = REPO.parent / "shared" / "datasets"
+
+
+@pytest.fixture
+def mosquitto() -> Iterator[Mosquitto]:
+    """A private broker for one test, on 127.0.0.1 and a free port."""
+    broker = Mosquitto().start()
+    try:
+        yield broker
+    finally:
+        broker.close()
+
+
+@pytest.fixture(scope="session")
+def cwru_dir() -> Path:
+    """The CWRU recordings in ../shared/datasets/cwru (see its README)."""
+    path = DATASETS / "cwru"
+    if not path.is_dir():
+        pytest.skip(f"dataset folder {path} not present")
+    return path
