@@ -1,0 +1,100 @@
+"""Contracts between the daemon's parts: the errors they raise and the small async interfaces they implement.
+
+``app.py`` is the one place that wires sources, the rolling pipeline, alarms and sinks together; every part
+talks to the others only through what is named here.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Awaitable, Callable
+from dataclasses import dataclass, field
+from typing import Any, Protocol, runtime_checkable
+
+import numpy as np
+import numpy.typing as npt
+
+from edgevib.daemon.wire import Block
+from edgevib.pipelines.types import FrameIndicators
+
+__all__ = [
+    "BlockHandler",
+    "ConfigError",
+    "EdgevibError",
+    "FrameResult",
+    "FrameSink",
+    "Source",
+    "SourceError",
+]
+
+
+class EdgevibError(Exception):
+    """Base of the daemon's own exception hierarchy."""
+
+
+class ConfigError(EdgevibError):
+    """An invalid configuration.  ``path`` is the dotted key path (``points[2].bearing.elements``)."""
+
+    def __init__(self, path: str, problem: str) -> None:
+        super().__init__(f"{path}: {problem}" if path else problem)
+        self.path = path
+        self.problem = problem
+
+
+class SourceError(EdgevibError):
+    """A source could not connect or lost its connection (library errors are translated into this)."""
+
+
+@dataclass(frozen=True, slots=True)
+class FrameResult:
+    """One analysed frame of one measurement point, as handed to every :class:`FrameSink`.
+
+    ``samples`` is the raw frame in g (read-only; for waveform capture), ``t_end_ns`` the time just after its
+    last sample, ``received_ns`` the wall-clock time its last block arrived (for ingest-to-metric latency).
+    ``iso_zone`` is ``"A".."D"`` when the point's machine has a group and support.
+    """
+
+    point_id: str
+    machine_id: str
+    t_end_ns: int
+    received_ns: int
+    fs_hz: float
+    indicators: FrameIndicators
+    iso_zone: str | None
+    samples: npt.NDArray[np.float64] = field(repr=False)
+    extra: dict[str, Any] = field(default_factory=dict)
+
+
+BlockHandler = Callable[[Block, str | None], None]
+"""Called on the event loop with a decoded block and the topic/node it came from (or ``None``)."""
+
+
+@runtime_checkable
+class Source(Protocol):
+    """A block source (MQTT, OPC UA, the in-process simulator).
+
+    ``run`` connects, keeps reconnecting with bounded backoff until ``stop`` is called, and hands every payload to
+    the daemon's ingest; it never raises for a bad payload or a lost connection.
+    """
+
+    name: str
+
+    @property
+    def connected(self) -> bool: ...
+
+    async def run(self) -> None: ...
+
+    async def stop(self) -> None: ...
+
+
+@runtime_checkable
+class FrameSink(Protocol):
+    """Receives every analysed frame (Prometheus, MQTT metrics, OPC UA server, the alarm layer)."""
+
+    async def start(self) -> None: ...
+
+    async def on_frames(self, results: list[FrameResult]) -> None: ...
+
+    async def stop(self) -> None: ...
+
+
+StopCallback = Callable[[], Awaitable[None]]
