@@ -22,6 +22,7 @@ __all__ = [
     "EdgevibError",
     "FrameResult",
     "FrameSink",
+    "Ingest",
     "Source",
     "SourceError",
 ]
@@ -66,6 +67,27 @@ class FrameResult:
 
 BlockHandler = Callable[[Block, str | None], None]
 """Called on the event loop with a decoded block and the topic/node it came from (or ``None``)."""
+
+
+class Ingest(Protocol):
+    """What a source hands its data to.  Every method is called **on the event loop** (a source whose library
+    calls back from its own thread, like paho, uses ``loop.call_soon_threadsafe``); none of them blocks or raises.
+    """
+
+    def payload(self, source: str, topic: str | None, payload: bytes, received_ns: int) -> None:
+        """A raw wire-format payload (decoded, validated and counted by the ingest)."""
+
+    def block(self, source: str, block: Block, received_ns: int, topic: str | None = None) -> None:
+        """An already decoded block (OPC UA arrays, the in-process simulator)."""
+
+    def speed(self, source: str, tag: str, value: float, received_ns: int) -> None:
+        """A speed tag update (MQTT topic or OPC UA node id as ``tag``; value in the tag's configured unit)."""
+
+    def reject(self, source: str, reason: str, detail: str, topic: str | None = None) -> None:
+        """Something the source itself found invalid (counted by reason, logged rate-limited)."""
+
+    def connection(self, source: str, connected: bool) -> None:
+        """Connection state changes; a change to connected after a loss counts as a reconnect."""
 
 
 @runtime_checkable
