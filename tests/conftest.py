@@ -8,7 +8,7 @@ import pytest
 
 sys.path.insert(0, str(Path(__file__).parent))
 
-from servers import Mosquitto  # noqa: E402
+from servers import Mosquitto
 
 REPO = Path(__file__).resolve().parent.parent
 DATASETS = REPO.parent / "shared" / "datasets"
