@@ -1,0 +1,125 @@
+"""Sharding points across instances: exactly one owner per point, stable across processes, roughly balanced."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import subprocess
+import sys
+
+import pytest
+
+from edgevib.daemon.interfaces import ConfigError
+from edgevib.daemon.shard import Shard, owns_point, select_points, shard_of, validate_shard
+
+IDS = [f"{m}-{end}-{axis}" for m in ("P-101", "P-102", "M-101", "M-102", "F-201", "B-301", "B-302")
+       for end in ("DE", "NDE") for axis in ("H", "V", "A")]
+
+# First 8 bytes of SHA-256 of the UTF-8 id, big-endian (the documented rule), computed once with
+# hashlib.sha256 and written down so that a change of the rule shows up as a failure here:
+#   P-101-DE-H  300e824f7a6b3097,  P-101-NDE-V f0de48a165649d0a,  M-101-DE-A 5f4f4256ba0b3637,
+#   F-201-NDE-V 0690072d1e050bbf,  B-301-DE-H  354c85a38e0b8f32
+EXPECTED = {  # id: (index of 2, index of 3, index of 5)
+    "P-101-DE-H": (1, 0, 4),
+    "P-101-NDE-V": (0, 1, 3),
+    "M-101-DE-A": (1, 2, 2),
+    "F-201-NDE-V": (1, 1, 4),
+    "B-301-DE-H": (0, 0, 1),
+}
+
+
+@pytest.mark.parametrize("point_id", sorted(EXPECTED))
+def test_fixed_assignment(point_id: str) -> None:
+    assert tuple(shard_of(point_id, n) for n in (2, 3, 5)) == EXPECTED[point_id]
+    # the same rule, spelled out with hashlib
+    h = int.from_bytes(hashlib.sha256(point_id.encode()).digest()[:8], "big")
+    assert [shard_of(point_id, n) for n in (2, 3, 5, 7, 64)] == [h % n for n in (2, 3, 5, 7, 64)]
+
+
+@pytest.mark.parametrize("count", [1, 2, 3, 5, 8])
+def test_every_point_owned_by_exactly_one_instance(count: int) -> None:
+    shards = [validate_shard({"count": count, "index": i}, "site.shard") for i in range(count)]
+    for pid in IDS:
+        owners = [i for i, s in enumerate(shards) if owns_point(pid, s)]
+        assert len(owners) == 1, (pid, owners)
+    parts = [select_points(IDS, s) for s in shards]
+    assert sorted(p for part in parts for p in part) == sorted(IDS)
+
+
+def test_stable_across_processes_and_hash_seeds() -> None:
+    code = ("import json, sys; from edgevib.daemon.shard import shard_of; "
+            "print(json.dumps([shard_of(p, 7) for p in json.loads(sys.argv[1])]))")
+    results = []
+    for seed in ("1", "2"):
+        env = dict(os.environ, PYTHONHASHSEED=seed)
+        out = subprocess.run([sys.executable, "-c", code, json.dumps(IDS)], env=env, capture_output=True,
+                             text=True, timeout=60, check=True).stdout
+        results.append(json.loads(out))
+    assert results[0] == results[1] == [shard_of(p, 7) for p in IDS]
+
+
+def test_roughly_balanced() -> None:
+    ids = [f"QL-{i:05d}-DE-H" for i in range(4000)]
+    counts = [0, 0, 0, 0]
+    for pid in ids:
+        counts[shard_of(pid, 4)] += 1
+    # Binomial(4000, 1/4): mean 1000, standard deviation sqrt(4000 * 1/4 * 3/4) = 27.4 (textbook formula);
+    # a bound of five standard deviations cannot be missed by a uniform hash except by a broken rule.
+    assert all(abs(c - 1000) < 5 * 27.4 for c in counts), counts
+
+
+def test_adding_a_point_moves_no_other_point() -> None:
+    before = {p: shard_of(p, 3) for p in IDS}
+    after = {p: shard_of(p, 3) for p in [*IDS, "B-303-DE-H"]}
+    assert all(after[p] == before[p] for p in IDS)
+
+
+def test_explicit_list() -> None:
+    shard = validate_shard({"points": ["P-101-DE-H", "M-101-DE-A"]}, "site.shard")
+    assert shard == Shard(points=frozenset({"P-101-DE-H", "M-101-DE-A"}))
+    assert owns_point("P-101-DE-H", shard)
+    assert not owns_point("F-201-NDE-V", shard)
+    assert select_points(IDS, {"points": ["M-101-DE-A", "P-101-DE-H"]}) == ["P-101-DE-H", "M-101-DE-A"]
+    assert shard.describe() == "explicit list of 2 point(s)"
+
+
+def test_no_shard_owns_everything() -> None:
+    assert all(owns_point(p, None) for p in IDS)
+    assert select_points(IDS, None) == IDS
+
+
+@pytest.mark.parametrize(
+    ("raw", "path", "fragment"),
+    [
+        ("2/0", "site.shard", "must be a table"),
+        ({"count": 2}, "site.shard", "missing index"),
+        ({"index": 0}, "site.shard", "missing count"),
+        ({"count": 2, "index": 2}, "site.shard.index", "between 0 and count - 1 = 1, got 2"),
+        ({"count": 2, "index": -1}, "site.shard.index", "got -1"),
+        ({"count": 0, "index": 0}, "site.shard.count", "between 1 and 4096, got 0"),
+        ({"count": 10**6, "index": 0}, "site.shard.count", "got 1000000"),
+        ({"count": 2.0, "index": 0}, "site.shard.count", "must be an integer, got 2.0"),
+        ({"count": True, "index": 0}, "site.shard.count", "must be an integer, got True"),
+        ({"count": 2, "index": 0, "seed": 1}, "site.shard", "unknown key(s) seed"),
+        ({"count": 2, "index": 0, "points": ["a"]}, "site.shard", "not both"),
+        ({"points": []}, "site.shard.points", "non-empty list"),
+        ({"points": "P-101-DE-H"}, "site.shard.points", "non-empty list"),
+        ({"points": ["P-101-DE-H", ""]}, "site.shard.points[1]", "non-empty string"),
+        ({"points": ["P-101-DE-H", "P-101-DE-H"]}, "site.shard.points[1]", "listed twice"),
+    ],
+)
+def test_invalid_shard_is_a_config_error(raw: object, path: str, fragment: str) -> None:
+    with pytest.raises(ConfigError) as info:
+        validate_shard(raw, "site.shard")
+    assert info.value.path == path
+    assert fragment in info.value.problem
+
+
+def test_describe_and_owns_on_raw_mapping() -> None:
+    assert validate_shard({"count": 3, "index": 1}, "x").describe() == "shard 1 of 3"
+    assert owns_point("P-101-NDE-V", {"count": 3, "index": 1})  # EXPECTED: index 1 of 3
+    with pytest.raises(ConfigError):
+        owns_point("P-101-NDE-V", {"count": 3, "index": 3})
+    with pytest.raises(ValueError, match="at least 1, got 0"):
+        shard_of("P-101-DE-H", 0)
