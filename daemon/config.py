@@ -93,7 +93,7 @@ class Secret:
 class SiteConfig:
     name: str = "edgevib"
     state_dir: str = "/var/lib/edgevib"
-    shard: Mapping[str, Any] | None = None
+    shard: Any = None  # edgevib.daemon.shard.Shard (or a validated raw table when that module is absent)
 
 
 @dataclass(frozen=True, slots=True)
@@ -803,7 +803,7 @@ def _parse_shard(t: _Table, point_ids: list[str]) -> dict[str, Any]:
     return {"count": count, "index": index}
 
 
-def _owns_point(point_id: str, shard: Mapping[str, Any]) -> bool:
+def _owns_point(point_id: str, shard: Any) -> bool:
     owns = _optional("edgevib.daemon.shard", "owns_point")
     if owns is not None:
         return bool(owns(point_id, shard))
@@ -898,7 +898,15 @@ def parse_config(doc: dict[str, Any], base_dir: str | os.PathLike[str] = ".", di
         points[p.id] = p
         sensors[key] = p.id
 
-    shard = _parse_shard(shard_t, list(points)) if shard_t is not None else None
+    shard: Any = None
+    if shard_t is not None:
+        validate_shard = _optional("edgevib.daemon.shard", "validate_shard")
+        shard = validate_shard(shard_t.doc, "site.shard") if validate_shard is not None else \
+            _parse_shard(shard_t, list(points))
+        listed = getattr(shard, "points", None) if validate_shard is not None else shard.get("points")
+        unknown = sorted(set(listed or ()) - set(points))
+        if unknown:
+            raise ConfigError("site.shard.points", f"unknown point(s) {', '.join(unknown)}")
     site_t.done()
     site = SiteConfig(name=site_name, state_dir=state_dir, shard=shard)
     kept, skipped = list(points.values()), []
@@ -991,6 +999,8 @@ def config_to_document(cfg: Config) -> dict[str, Any]:
             return {f.name: conv(getattr(v, f.name)) for f in fields(v) if getattr(v, f.name) is not None}
         if isinstance(v, tuple | list):
             return [conv(x) for x in v]
+        if isinstance(v, frozenset | set):
+            return sorted(conv(x) for x in v)
         if isinstance(v, Mapping):
             return {str(k): conv(x) for k, x in v.items()}
         return v

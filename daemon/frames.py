@@ -1,0 +1,368 @@
+"""The daemon's ingest: block validation, per-point frame assembly, bounded frame queues, counters and trends.
+
+Everything here runs on the event loop and is cheap: a block is checked against its point (sample rate, length,
+unit, sequence continuity), appended to the point's assembly buffer, and every complete frame (``frame_samples``
+long, advancing by the hop that the overlap leaves) is queued for analysis.  A point's queue is bounded: when
+analysis falls behind, the oldest frame is dropped and counted, so ingest never stalls.
+
+Rejected blocks are counted by reason (``edgevib_blocks_rejected_total{source,reason}``) and logged with point
+context through a rate-limited logger.  Reasons: the wire codec's own (``malformed``, ``too_large``,
+``invalid_field``, ``length_mismatch``, ``non_finite``, ``invalid_sample_rate``, ``unsupported_version``) and
+``unknown_sensor``, ``wrong_sample_rate``, ``wrong_length``, ``duplicate``, ``out_of_order``, ``overload``.
+A sequence gap is not a rejection: the block is kept, assembly restarts, and the gap is counted.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from collections import deque
+from collections.abc import Callable, Iterable, Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+
+from edgevib.daemon.config import G_M_S2, Config, MachineConfig, PointConfig, SpeedTag
+from edgevib.daemon.logs import RateLimitedLogger, get_logger
+from edgevib.daemon.wire import Block, WireError, decode
+from edgevib.pipelines.types import AnalysisPlan, BearingGeometry, FrameIndicators
+
+__all__ = [
+    "LATENCY_BUCKETS_S",
+    "BlockIngest",
+    "EwTrend",
+    "FrameJob",
+    "LatencyHistogram",
+    "PointStream",
+    "Stats",
+    "build_plan",
+    "indicator_values",
+]
+
+LATENCY_BUCKETS_S = (0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)
+FS_TOLERANCE = 1e-3  # relative; a block reporting another rate than its point is rejected
+
+
+# ------------------------------------------------------------------------------------------------ counters
+
+
+class LatencyHistogram:
+    """Cumulative ingest-to-metric latency histogram (Prometheus ``le`` buckets in seconds)."""
+
+    def __init__(self, buckets: tuple[float, ...] = LATENCY_BUCKETS_S) -> None:
+        self.buckets = buckets
+        self.counts = [0] * (len(buckets) + 1)
+        self.sum_s = 0.0
+        self.count = 0
+
+    def observe(self, value_s: float) -> None:
+        value_s = max(0.0, value_s)
+        i = 0
+        while i < len(self.buckets) and value_s > self.buckets[i]:
+            i += 1
+        self.counts[i] += 1
+        self.sum_s += value_s
+        self.count += 1
+
+    def cumulative(self) -> list[tuple[str, int]]:
+        out, acc = [], 0
+        for le, c in zip((*map(str, self.buckets), "+Inf"), self.counts, strict=True):
+            acc += c
+            out.append((le, acc))
+        return out
+
+
+@dataclass
+class Stats:
+    """The daemon's self-counters; mutated on the event loop, copied by the metrics collector per scrape."""
+
+    blocks_received: dict[str, int] = field(default_factory=dict)
+    blocks_rejected: dict[tuple[str, str], int] = field(default_factory=dict)
+    frames_analysed: dict[str, int] = field(default_factory=dict)
+    frames_dropped: dict[str, int] = field(default_factory=dict)
+    gaps: dict[str, int] = field(default_factory=dict)
+    connected: dict[str, bool] = field(default_factory=dict)
+    reconnects: dict[str, int] = field(default_factory=dict)
+    ever_connected: set[str] = field(default_factory=set)
+    latency: LatencyHistogram = field(default_factory=LatencyHistogram)
+
+    @staticmethod
+    def inc(d: dict[Any, int], key: Any, n: int = 1) -> None:
+        d[key] = d.get(key, 0) + n
+
+
+# ------------------------------------------------------------------------------------------------ frames
+
+
+@dataclass(frozen=True, slots=True)
+class FrameJob:
+    """A complete frame of one point waiting for analysis (samples in g, read-only)."""
+
+    point_id: str
+    samples: npt.NDArray[np.float64]
+    t_end_ns: int
+    received_ns: int
+
+
+class PointStream:
+    """Continuity checks and frame assembly for one point; complete frames go to a bounded queue."""
+
+    def __init__(self, point: PointConfig, queue_frames: int) -> None:
+        self.point = point
+        self.frame = point.frame_samples
+        self.hop = point.hop_samples
+        self._ns_per_sample = 1e9 / point.fs_hz
+        self._buf = np.empty(self.frame + point.block_samples, dtype=np.float64)
+        self._fill = 0
+        self._base_t0_ns = 0     # time of the first sample since the last restart
+        self._consumed = 0       # samples shifted out of the buffer since the last restart
+        self.last_seq: int | None = None
+        self.expected_t0_ns: int | None = None
+        self.queue: deque[FrameJob] = deque()
+        self.queue_frames = queue_frames
+        self.blocks = 0
+
+    def check(self, block: Block) -> tuple[str | None, str]:
+        """``(reason, detail)`` when the block must be rejected; ``(None, "gap"|"restart"|"")`` otherwise."""
+        p = self.point
+        if abs(block.fs_hz - p.fs_hz) > FS_TOLERANCE * p.fs_hz:
+            return "wrong_sample_rate", f"block at {block.fs_hz:g} Hz, point configured for {p.fs_hz:g} Hz"
+        if block.n_samples != p.block_samples:
+            return "wrong_length", f"block of {block.n_samples} samples, point configured for {p.block_samples}"
+        if self.last_seq is None:
+            return None, "start"
+        half_block_ns = 0.5 * block.n_samples * self._ns_per_sample
+        timed = block.t0_ns != 0 and self.expected_t0_ns not in (None, 0)
+        dt_ns = block.t0_ns - self.expected_t0_ns if timed and self.expected_t0_ns is not None else 0
+        if block.seq == self.last_seq + 1:
+            if timed and abs(dt_ns) > half_block_ns:
+                return None, f"time jump of {dt_ns / 1e6:.1f} ms at consecutive seq {block.seq}"
+            return None, ""
+        if block.seq > self.last_seq:
+            return None, f"seq gap {self.last_seq} -> {block.seq} ({block.seq - self.last_seq - 1} blocks missing)"
+        if timed and dt_ns > -half_block_ns:
+            return None, f"seq restarted {self.last_seq} -> {block.seq} with time moving forward (device restart)"
+        if block.seq == self.last_seq:
+            return "duplicate", f"seq {block.seq} received twice"
+        return "out_of_order", f"seq {block.seq} after {self.last_seq}"
+
+    def push(self, block: Block, received_ns: int, restart: bool) -> int:
+        """Append a checked block; returns how many queued frames were dropped to make room."""
+        x = block.samples if block.unit == "g" else np.asarray(block.samples) / G_M_S2
+        if restart:
+            self._fill = 0
+            self._consumed = 0
+            self._base_t0_ns = block.t0_ns
+        n = x.shape[0]
+        self._buf[self._fill:self._fill + n] = x
+        self._fill += n
+        self.last_seq = block.seq
+        self.expected_t0_ns = block.end_ns
+        self.blocks += 1
+        dropped = 0
+        while self._fill >= self.frame:
+            frame = self._buf[:self.frame].copy()
+            frame.flags.writeable = False
+            t_end = self._base_t0_ns + round((self._consumed + self.frame) * self._ns_per_sample)
+            self.queue.append(FrameJob(self.point.id, frame, t_end, received_ns))
+            if len(self.queue) > self.queue_frames:
+                self.queue.popleft()
+                dropped += 1
+            rest = self._fill - self.hop
+            self._buf[:rest] = self._buf[self.hop:self._fill]
+            self._fill = rest
+            self._consumed += self.hop
+        return dropped
+
+    @property
+    def buffered_samples(self) -> int:
+        return self._fill
+
+
+# ------------------------------------------------------------------------------------------------ trends
+
+
+def indicator_values(ind: FrameIndicators) -> dict[str, float | None]:
+    """Flat scalar view of a frame's indicators (the keys trended and published)."""
+    out: dict[str, float | None] = {
+        "velocity_rms_mm_s": ind.velocity_rms_mm_s, "velocity_peak_mm_s": ind.velocity_peak_mm_s,
+        "acceleration_rms_g": ind.acceleration_rms_g, "acceleration_peak_g": ind.acceleration_peak_g,
+        "crest_factor": ind.crest_factor, "kurtosis": ind.kurtosis, "displacement_pp_um": ind.displacement_pp_um,
+        "shaft_hz": ind.shaft_hz,
+    }
+    for order, v in ind.orders_mm_s.items():
+        out[f"order_{order}_mm_s"] = v
+    for fam, r in ind.envelope.items():
+        out[f"envelope_{fam}_g"] = r.amplitude_g
+    return out
+
+
+class EwTrend:
+    """Exponentially weighted trend of each indicator with a half-life in seconds of signal time."""
+
+    def __init__(self, halflife_s: float) -> None:
+        self.halflife_s = halflife_s
+        self.values: dict[str, float] = {}
+        self.t_s: float | None = None
+
+    def update(self, values: Mapping[str, float | None], t_s: float) -> dict[str, float]:
+        dt = 0.0 if self.t_s is None else max(0.0, t_s - self.t_s)
+        alpha = 1.0 - 2.0 ** (-dt / self.halflife_s)
+        for k, v in values.items():
+            if v is None or not math.isfinite(v):
+                continue
+            prev = self.values.get(k)
+            self.values[k] = v if prev is None else prev + alpha * (v - prev)
+        self.t_s = t_s if self.t_s is None else max(self.t_s, t_s)
+        return dict(self.values)
+
+
+# ------------------------------------------------------------------------------------------------ plans
+
+
+def build_plan(point: PointConfig, machine: MachineConfig) -> AnalysisPlan:
+    """The analysis plan of a point (validated by the numerical core's ``make_plan`` when it is available)."""
+    bearing = None
+    if point.bearing is not None:
+        b = point.bearing
+        bearing = BearingGeometry(b.elements, b.ball_diameter_mm, b.pitch_diameter_mm, b.contact_angle_deg)
+    speed_range_hz = (machine.speed_range_rpm[0] / 60.0, machine.speed_range_rpm[1] / 60.0)
+    kwargs: dict[str, Any] = dict(
+        fs_hz=point.fs_hz, n_samples=point.frame_samples, velocity_band_hz=point.velocity_band_hz,
+        envelope_band_hz=point.envelope_band_hz, bearing=bearing, orders=point.orders,
+        speed_range_hz=speed_range_hz)
+    try:
+        from edgevib.pipelines import analysis
+    except ModuleNotFoundError as exc:
+        if exc.name != "edgevib.pipelines.analysis":
+            raise
+        return AnalysisPlan(**kwargs)
+    return analysis.make_plan(**kwargs)
+
+
+# ------------------------------------------------------------------------------------------------ ingest
+
+
+class BlockIngest:
+    """The :class:`~edgevib.daemon.interfaces.Ingest` every source hands its data to (event-loop only)."""
+
+    def __init__(self, config: Config, stats: Stats, on_frames: Callable[[PointStream], None] | None = None,
+                 clock_ns: Callable[[], int] = time.time_ns) -> None:
+        self.stats = stats
+        self.on_frames = on_frames or (lambda _stream: None)
+        self.clock_ns = clock_ns
+        self.log = RateLimitedLogger(get_logger("edgevib.ingest"), interval_s=10.0)
+        self.streams: dict[str, PointStream] = {}
+        self.speeds: dict[str, tuple[float, int]] = {}  # machine id -> (shaft Hz, received ns)
+        self.configure(config)
+
+    def configure(self, config: Config, keep: Iterable[str] = ()) -> None:
+        """(Re)build the routing tables; streams of points in ``keep`` (unchanged on reload) keep their state."""
+        self.config = config
+        kept = {pid: s for pid, s in self.streams.items() if pid in set(keep)}
+        self.streams = {p.id: kept.get(p.id) or PointStream(p, config.analysis.queue_frames) for p in config.points}
+        self.by_sensor = {(p.source, p.sensor): p.id for p in config.points}
+        self.sensor_level: dict[str, int | None] = {
+            s.name: getattr(s, "sensor_topic_level", None) for s in config.sources}
+        self.speed_tags: dict[tuple[str, str], list[tuple[str, SpeedTag]]] = {}
+        for m in config.machines:
+            if m.speed_tag is not None:
+                self.speed_tags.setdefault((m.speed_tag.source, m.speed_tag.tag), []).append((m.id, m.speed_tag))
+        for s in config.sources:
+            self.stats.connected.setdefault(s.name, False)
+            self.stats.blocks_received.setdefault(s.name, 0)
+            self.stats.reconnects.setdefault(s.name, 0)
+        for p in config.points:
+            self.stats.frames_analysed.setdefault(p.id, 0)
+            self.stats.frames_dropped.setdefault(p.id, 0)
+
+    # -- Ingest protocol
+
+    def payload(self, source: str, topic: str | None, payload: bytes, received_ns: int) -> None:
+        try:
+            block = decode(payload)
+        except WireError as exc:
+            self.reject(source, exc.reason, str(exc), topic)
+            return
+        except Exception as exc:  # the codec promises WireError only; never let anything escape into a source
+            self.reject(source, "malformed", f"{type(exc).__name__}: {exc}", topic)
+            return
+        self.block(source, block, received_ns, topic)
+
+    def block(self, source: str, block: Block, received_ns: int, topic: str | None = None) -> None:
+        Stats.inc(self.stats.blocks_received, source)
+        sensor = block.sensor_id
+        level = self.sensor_level.get(source)
+        if level is not None and topic is not None:
+            parts = topic.split("/")
+            sensor = parts[level] if level < len(parts) else ""
+        pid = self.by_sensor.get((source, sensor))
+        if pid is None:
+            self.reject(source, "unknown_sensor", f"sensor {sensor!r} is not configured on this source", topic)
+            return
+        stream = self.streams[pid]
+        reason, detail = stream.check(block)
+        if reason is not None:
+            self.reject(source, reason, detail, topic, point=pid)
+            return
+        restart = detail != ""
+        if restart and detail != "start":
+            Stats.inc(self.stats.gaps, pid)
+            self.log.warning(("gap", pid), "stream discontinuity; frame assembly restarts", point=pid,
+                             source=source, detail=detail)
+        before = len(stream.queue)
+        dropped = stream.push(block, received_ns, restart)
+        if dropped:
+            Stats.inc(self.stats.frames_dropped, pid, dropped)
+            self.log.warning(("drop", pid), "analysis is behind: oldest frames dropped", point=pid,
+                             dropped=dropped)
+        if len(stream.queue) != before or dropped:
+            self.on_frames(stream)
+
+    def speed(self, source: str, tag: str, value: float, received_ns: int) -> None:
+        targets = self.speed_tags.get((source, tag))
+        if not targets:
+            return
+        if not math.isfinite(value) or value < 0:
+            self.reject(source, "invalid_speed", f"speed tag {tag!r} value {value!r} is not a finite value >= 0",
+                        tag)
+            return
+        for machine_id, spec in targets:
+            self.speeds[machine_id] = (spec.to_hz(value), received_ns)
+
+    def reject(self, source: str, reason: str, detail: str, topic: str | None = None,
+               point: str | None = None) -> None:
+        Stats.inc(self.stats.blocks_rejected, (source, reason))
+        self.log.warning(("reject", source, reason, point), "block rejected", source=source, reason=reason,
+                         detail=detail, topic=topic, point=point)
+
+    def connection(self, source: str, connected: bool) -> None:
+        was = self.stats.connected.get(source, False)
+        if connected and not was:
+            if source in self.stats.ever_connected:
+                Stats.inc(self.stats.reconnects, source)
+                self.log.info(("conn", source), "source reconnected", source=source)
+            else:
+                self.log.info(("conn", source), "source connected", source=source)
+            self.stats.ever_connected.add(source)
+        elif was and not connected:
+            self.log.warning(("conn", source), "source disconnected", source=source)
+        self.stats.connected[source] = connected
+
+    # -- speed
+
+    def speed_hz(self, machine: MachineConfig, now_ns: int | None = None) -> float | None:
+        """The known shaft speed of a machine, or ``None`` (to be estimated, or unknown)."""
+        if machine.speed_rpm is not None:
+            return machine.speed_rpm / 60.0
+        if machine.speed_tag is None:
+            return None
+        entry = self.speeds.get(machine.id)
+        if entry is None:
+            return None
+        now = self.clock_ns() if now_ns is None else now_ns
+        if (now - entry[1]) / 1e9 > machine.speed_tag.max_age_s:
+            return None
+        return entry[0]
