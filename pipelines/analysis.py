@@ -1,0 +1,409 @@
+"""The per-frame pipeline: one plan per measurement-point configuration, one rfft per frame shared by everything.
+
+``make_plan`` validates a configuration (with the numbers in every message); :class:`AnalysisKernel` precomputes
+what the frames of that plan share (line ranges, integration weights, transform lengths, windows);
+``analyze_frames`` turns a ``(channels, samples)`` array into one :class:`FrameIndicators` per channel.
+
+Per frame and channel: mean removal; time-domain indicators (:mod:`edgevib.pipelines.indicators`); one unwindowed
+rfft, from which the Hann-windowed lines are formed by a three-tap convolution (:mod:`edgevib.pipelines.spectrum`)
+for velocity r.m.s., order amplitudes and the speed estimate; a small inverse transform of the velocity band for
+peak velocity and displacement peak-to-peak; and, when a bearing and a demodulation band are configured and a
+speed is known, the envelope spectrum from the band's lines only (:mod:`edgevib.pipelines.envelope`).
+
+The kernel holds read-only arrays only, so one kernel (or ``analyze_frames``) can run in several threads at once.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from functools import lru_cache
+
+import numpy as np
+import numpy.typing as npt
+from scipy.fft import next_fast_len
+
+from edgevib.pipelines.bearings import defect_multiples, validate_geometry
+from edgevib.pipelines.envelope import (
+    demodulate,
+    envelope_spectrum,
+    min_decimated_length,
+    periodic_hann,
+    search_families,
+)
+from edgevib.pipelines.indicators import as_channels, centre, moments
+from edgevib.pipelines.spectrum import (
+    G_MM_S2,
+    band_lines,
+    estimate_speed_hz,
+    hann_lines,
+    order_amplitudes_mm_s,
+)
+from edgevib.pipelines.types import (
+    AnalysisPlan,
+    BearingGeometry,
+    FamilyResult,
+    FrameIndicators,
+    PlanError,
+    SignalError,
+)
+
+__all__ = [
+    "FAMILIES",
+    "AnalysisKernel",
+    "analyze_frames",
+    "default_envelope_band",
+    "kernel_for",
+    "make_plan",
+    "order_key",
+]
+
+FloatArray = npt.NDArray[np.float64]
+
+FAMILIES: tuple[str, ...] = ("ftf", "bpfo", "bpfi", "bsf")
+"""Envelope family keys.  ``"bsf"`` is searched at **2 × BSF** (a rolling-element defect hits both races), and its
+``expected_hz``/``frequency_hz`` are the 2 × BSF line."""
+SPEED_HARMONICS = 3  # harmonics used by the speed estimate
+MIN_SAMPLES = 64
+PEAK_OVERSAMPLING = 6.0  # velocity waveform sampled at ≥ 6 × the band's upper edge (peak error ≤ 13 % at the edge)
+ANTI_ALIAS_RATIO = 2.56  # usable bandwidth fs/2.56 of an anti-aliased acquisition (common practice)
+
+
+def order_key(order: float) -> str:
+    """Key of an order in ``FrameIndicators.orders_mm_s``: ``0.5 → "0.5x"``, ``1.0 → "1x"``."""
+    return f"{order:g}x"
+
+
+def _finite(name: str, value: object) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
+        raise PlanError(f"{name} {value!r} must be a finite number")
+    return float(value)
+
+
+def _band(name: str, band: object, nyquist_hz: float) -> tuple[float, float]:
+    if not isinstance(band, tuple | list) or len(band) != 2:
+        raise PlanError(f"{name} {band!r} must be a (low, high) pair in Hz")
+    lo, hi = _finite(f"{name} low edge", band[0]), _finite(f"{name} high edge", band[1])
+    if lo <= 0:
+        raise PlanError(f"{name} low edge {lo:g} Hz must be > 0")
+    if hi <= lo:
+        raise PlanError(f"{name} high edge {hi:g} Hz must be above its low edge {lo:g} Hz")
+    if hi >= nyquist_hz:
+        raise PlanError(f"{name} high edge {hi:g} Hz is at or above Nyquist {nyquist_hz:g} Hz")
+    return lo, hi
+
+
+def _validate(plan: AnalysisPlan) -> AnalysisPlan:
+    """Check every field of ``plan`` and return a normalized copy (floats, tuples)."""
+    fs = _finite("sample rate", plan.fs_hz)
+    if fs <= 0:
+        raise PlanError(f"sample rate {fs:g} Hz must be > 0")
+    n = plan.n_samples
+    if isinstance(n, bool) or not isinstance(n, int) or n < MIN_SAMPLES:
+        raise PlanError(f"frame of {n!r} samples is too short: need at least {MIN_SAMPLES}")
+    nyq = fs / 2.0
+    df = fs / n
+    vel = _band("velocity band", plan.velocity_band_hz, nyq)
+    if df > vel[0]:
+        raise PlanError(f"record of {n} samples at {fs:g} Hz resolves {df:.4g} Hz, coarser than the velocity band's "
+                        f"low edge {vel[0]:g} Hz: need at least {math.ceil(fs / vel[0])} samples")
+    speed = _band("speed range", plan.speed_range_hz, nyq)
+    if df > speed[0] / 2.0:
+        raise PlanError(f"record of {n} samples at {fs:g} Hz resolves {df:.4g} Hz, too coarse for the lowest shaft "
+                        f"speed {speed[0]:g} Hz (2 lines needed): need at least {math.ceil(2 * fs / speed[0])} "
+                        "samples")
+    orders = tuple(_finite("order", o) for o in plan.orders)
+    if not orders or min(orders) <= 0:
+        raise PlanError(f"orders {plan.orders!r} must be a non-empty list of positive multiples of shaft speed")
+    tol = _finite("order tolerance", plan.order_tolerance)
+    if not 0 < tol <= 0.25:
+        raise PlanError(f"order tolerance {tol:g} must be in 0 < tolerance ≤ 0.25")
+    top = max(max(orders), SPEED_HARMONICS) * speed[1] * (1 + tol)
+    if top >= nyq:
+        raise PlanError(f"speed range high end {speed[1]:g} Hz × order {max(max(orders), SPEED_HARMONICS):g} "
+                        f"reaches {top:g} Hz, at or above Nyquist {nyq:g} Hz")
+    slip = _finite("slip tolerance", plan.slip_tolerance)
+    if not 0 <= slip <= 0.1:
+        raise PlanError(f"slip tolerance {slip:g} must be in 0 ≤ slip ≤ 0.1")
+    harmonics = plan.harmonics
+    if isinstance(harmonics, bool) or not isinstance(harmonics, int) or not 1 <= harmonics <= 10:
+        raise PlanError(f"harmonics {harmonics!r} must be an integer from 1 to 10")
+    if plan.bearing is not None:
+        validate_geometry(plan.bearing)
+    env = None
+    if plan.envelope_band_hz is not None:
+        env = _band("envelope band", plan.envelope_band_hz, nyq)
+        lines = band_lines(fs, n, env)
+        if lines[1] - lines[0] + 1 < 8:
+            raise PlanError(f"envelope band {env[0]:g}–{env[1]:g} Hz holds fewer than 8 lines at resolution "
+                            f"{df:.4g} Hz: widen it or lengthen the record")
+        if plan.bearing is not None:
+            m = defect_multiples(plan.bearing)
+            highest = max(m.bpfi_hz, 2 * m.bsf_hz, m.bpfo_hz) * speed[1] * (1 + slip)
+            if env[1] - env[0] < highest:
+                raise PlanError(f"envelope band {env[0]:g}–{env[1]:g} Hz is narrower than the highest defect "
+                                f"frequency searched ({highest:.4g} Hz at {speed[1]:g} Hz shaft speed)")
+    return AnalysisPlan(fs_hz=fs, n_samples=n, velocity_band_hz=vel, envelope_band_hz=env, bearing=plan.bearing,
+                        orders=orders, order_tolerance=tol, speed_range_hz=speed, slip_tolerance=slip,
+                        harmonics=harmonics)
+
+
+def make_plan(fs_hz: float, n_samples: int, *, velocity_band_hz: tuple[float, float] = (10.0, 1000.0),
+              envelope_band_hz: tuple[float, float] | None = None, bearing: BearingGeometry | None = None,
+              orders: Sequence[float] = (0.5, 1.0, 2.0, 3.0), order_tolerance: float = 0.03,
+              speed_range_hz: tuple[float, float] = (5.0, 100.0), slip_tolerance: float = 0.02,
+              harmonics: int = 3) -> AnalysisPlan:
+    """Build and validate the plan for frames of ``n_samples`` at ``fs_hz``.
+
+    Parameters
+    ----------
+    velocity_band_hz : ISO 20816 band for velocity r.m.s. (2–1000 Hz for machines at 120–600 r/min)
+    envelope_band_hz : demodulation band, or None for no envelope indicators (see :func:`default_envelope_band`)
+    bearing : geometry for the defect families (needs ``envelope_band_hz`` too)
+    orders : multiples of shaft speed reported in ``orders_mm_s``
+    order_tolerance : relative search window around each order (at least ± 1 line)
+    speed_range_hz : range of the shaft-speed estimate when no speed is given
+    slip_tolerance : relative search window of the defect families (bearing slip, ± 2 % by default)
+    harmonics : harmonics searched per defect family (fundamental included)
+
+    Raises
+    ------
+    PlanError
+        band at or above Nyquist, record too short for the requested resolution, bad tolerances…
+    GeometryError
+        impossible bearing geometry.
+    """
+    plan = AnalysisPlan(fs_hz=fs_hz, n_samples=n_samples, velocity_band_hz=tuple(velocity_band_hz),  # type: ignore[arg-type]
+                        envelope_band_hz=None if envelope_band_hz is None else tuple(envelope_band_hz),  # type: ignore[arg-type]
+                        bearing=bearing, orders=tuple(orders), order_tolerance=order_tolerance,
+                        speed_range_hz=tuple(speed_range_hz),  # type: ignore[arg-type]
+                        slip_tolerance=slip_tolerance, harmonics=harmonics)
+    plan = _validate(plan)
+    AnalysisKernel(plan)  # derived sizes are checked too
+    return plan
+
+
+def default_envelope_band(fs_hz: float, bandwidth_hz: tuple[float, float] | None, *,
+                          shaft_hz_max: float | None = None) -> tuple[float, float] | None:
+    """A demodulation band from the sample rate and the sensor's usable bandwidth, or None when the sensor cannot
+    carry envelope analysis.
+
+    The high edge is the lower of fs/2.56 (the usable band of an anti-aliased acquisition, common practice) and
+    the sensor's upper limit; the low edge the highest of a quarter of the high edge, 500 Hz, 20 × the highest
+    shaft speed (clear of the shaft harmonics) and the sensor's lower limit.  Envelope analysis needs kHz
+    bandwidth above the shaft and mesh components (FIELD_NOTES §6), so the result is None when the high edge is
+    below 2 kHz or less than twice the low edge — for example a MEMS point limited to about 1–1.5 kHz.
+    Edges are rounded inwards to 10 Hz.
+
+    Examples
+    --------
+    12 kHz sampling, no sensor limit: about 1170–4680 Hz.  25.6 kHz with a 0.5 Hz–10 kHz piezo: 2500–10000 Hz.
+    """
+    fs = _finite("sample rate", fs_hz)
+    if fs <= 0:
+        raise PlanError(f"sample rate {fs:g} Hz must be > 0")
+    hi = fs / ANTI_ALIAS_RATIO
+    lo = 500.0
+    if bandwidth_hz is not None:
+        b_lo, b_hi = _finite("sensor bandwidth low edge", bandwidth_hz[0]), \
+            _finite("sensor bandwidth high edge", bandwidth_hz[1])
+        if b_lo < 0 or b_hi <= b_lo:
+            raise PlanError(f"sensor bandwidth {b_lo:g}–{b_hi:g} Hz is not a valid range")
+        hi = min(hi, b_hi)
+        lo = max(lo, b_lo)
+    lo = max(lo, hi / 4.0)
+    if shaft_hz_max is not None:
+        lo = max(lo, 20.0 * _finite("highest shaft speed", shaft_hz_max))
+    lo = math.ceil(lo / 10.0) * 10.0
+    hi = math.floor(hi / 10.0) * 10.0
+    if hi < 2000.0 or hi < 2.0 * lo:
+        return None
+    return (lo, hi)
+
+
+class AnalysisKernel:
+    """Precomputed, read-only state for the frames of one plan; :meth:`analyze` does only arithmetic."""
+
+    __slots__ = ("_df", "_env", "_env_lines", "_env_m", "_env_window", "_inv_omega2", "_inv_omega_v", "_mult",
+                 "_mv", "_n", "_speed_stop", "_vel_lines", "_vel_stop", "plan")
+
+    def __init__(self, plan: AnalysisPlan) -> None:
+        plan = _validate(plan)
+        self.plan = plan
+        n = plan.n_samples
+        self._n = n
+        self._df = plan.fs_hz / n
+        k = np.arange(n // 2 + 1, dtype=np.float64)
+        omega = 2.0 * np.pi * k * self._df
+        inv2 = np.zeros_like(omega)
+        inv2[1:] = (G_MM_S2 / omega[1:]) ** 2
+        inv2.flags.writeable = False
+        self._inv_omega2 = inv2
+        lo, hi = band_lines(plan.fs_hz, n, plan.velocity_band_hz)
+        if hi < lo:
+            raise PlanError(f"velocity band {plan.velocity_band_hz[0]:g}–{plan.velocity_band_hz[1]:g} Hz holds no "
+                            f"line at resolution {self._df:.4g} Hz")
+        self._vel_lines = (lo, hi)
+        inv_v = 1.0 / omega[lo : hi + 1]
+        inv_v.flags.writeable = False
+        self._inv_omega_v = inv_v
+        self._vel_stop = min(n // 2, hi + 2)
+        self._mv = int(min(max(next_fast_len(math.ceil(PEAK_OVERSAMPLING * hi)), 2 * hi + 2), max(n, 2 * hi + 2)))
+        self._speed_stop = min(n // 2, math.ceil(SPEED_HARMONICS * plan.speed_range_hz[1] * (1 + plan.order_tolerance)
+                                               / self._df) + 3)
+        self._env = plan.bearing is not None and plan.envelope_band_hz is not None
+        self._env_lines = (0, 0)
+        self._env_m = 0
+        self._env_window = np.zeros(0)
+        self._mult = np.zeros(0)
+        if plan.bearing is not None and plan.envelope_band_hz is not None:
+            m = defect_multiples(plan.bearing)
+            mult = np.array([m.ftf_hz, m.bpfo_hz, m.bpfi_hz, 2.0 * m.bsf_hz])
+            mult.flags.writeable = False
+            self._mult = mult
+            e_lo, e_hi = band_lines(plan.fs_hz, n, plan.envelope_band_hz)
+            self._env_lines = (e_lo, e_hi)
+            top_hz = plan.harmonics * float(mult.max()) * plan.speed_range_hz[1] * (1 + plan.slip_tolerance)
+            need = math.ceil(top_hz * 1.25 / self._df) + 20  # room for the floor neighbourhood
+            self._env_m = min_decimated_length(e_hi - e_lo + 1, need)
+            win = periodic_hann(self._env_m)
+            win.flags.writeable = False
+            self._env_window = win
+
+    def analyze(self, x_g: npt.ArrayLike, shaft_hz: npt.ArrayLike | None = None) -> list[FrameIndicators]:
+        """Indicators of frames ``x_g`` (channels, n_samples) in g; see :func:`analyze_frames`."""
+        plan = self.plan
+        n = self._n
+        x = as_channels(x_g)
+        if x.shape[1] != n:
+            raise SignalError(f"frames have {x.shape[1]} samples, the plan expects {n}")
+        c = x.shape[0]
+        f_given = _shaft_array(shaft_hz, c, plan.fs_hz)
+        xc, mean = centre(x)
+        td = moments(xc, mean)
+        spec = np.fft.rfft(xc, axis=-1)
+
+        estimate = ~np.isfinite(f_given)
+        stop = self._vel_stop
+        if estimate.any():
+            stop = max(stop, self._speed_stop)
+        known_max = float(np.nanmax(f_given)) if (~estimate).any() else plan.speed_range_hz[1]
+        stop = min(n // 2, max(stop, math.ceil(max(plan.orders) * known_max * (1 + plan.order_tolerance)
+                                               / self._df) + 3))
+        lines = hann_lines(spec, stop)
+        vel_pow = (lines.real**2 + lines.imag**2) * self._inv_omega2[:stop]
+        v_lo, v_hi = self._vel_lines
+        factor = 16.0 / (3.0 * n * n)
+        vel_rms = np.sqrt(vel_pow[:, v_lo : v_hi + 1].sum(axis=-1) * factor)
+
+        shaft = f_given.copy()
+        if estimate.any():
+            est = estimate_speed_hz(vel_pow[estimate], plan.speed_range_hz, self._df, SPEED_HARMONICS)
+            shaft[estimate] = est
+        orders = order_amplitudes_mm_s(vel_pow, shaft, plan.orders, plan.order_tolerance, self._df, n)
+
+        # velocity and displacement waveforms from the band's lines only (for peak and peak-to-peak)
+        y = np.zeros((2, c, v_hi + 1), dtype=np.complex128)
+        y[0, :, v_lo:] = spec[:, v_lo : v_hi + 1] * (-1j * G_MM_S2 * self._inv_omega_v)
+        y[1, :, v_lo:] = y[0, :, v_lo:] * (-1j * 1000.0 * self._inv_omega_v)  # mm → µm
+        wave = np.fft.irfft(y, n=self._mv, axis=-1) * (self._mv / n)
+        vel_peak = np.abs(wave[0]).max(axis=-1)
+        disp_pp = wave[1].max(axis=-1) - wave[1].min(axis=-1)
+
+        fam: tuple[FloatArray, FloatArray, FloatArray, npt.NDArray[np.int64]] | None = None
+        has_speed = np.isfinite(shaft)
+        if self._env and has_speed.any():
+            e_lo, e_hi = self._env_lines
+            env = demodulate(spec, e_lo, e_hi, self._env_m, n)
+            amp = envelope_spectrum(env, self._env_window)
+            expected = shaft[:, None] * self._mult[None, :]
+            fam = search_families(amp, expected, plan.slip_tolerance, plan.harmonics, self._df)
+
+        keys = [order_key(o) for o in plan.orders]
+        out: list[FrameIndicators] = []
+        for ch in range(c):
+            f = float(shaft[ch])
+            known = math.isfinite(f)
+            order_map = {key: float(orders[ch, j]) for j, key in enumerate(keys)
+                         if known and math.isfinite(orders[ch, j])}
+            families: dict[str, FamilyResult] = {}
+            if fam is not None and known:
+                freq, amp_g, snr, found = fam
+                for j, name in enumerate(FAMILIES):
+                    if math.isfinite(freq[ch, j]):
+                        families[name] = FamilyResult(expected_hz=f * float(self._mult[j]),
+                                                      frequency_hz=float(freq[ch, j]),
+                                                      amplitude_g=float(amp_g[ch, j]), snr_db=float(snr[ch, j]),
+                                                      harmonics_found=int(found[ch, j]))
+            out.append(FrameIndicators(
+                acceleration_rms_g=float(td.rms_g[ch]),
+                acceleration_peak_g=float(td.peak_g[ch]),
+                acceleration_peak_to_peak_g=float(td.peak_to_peak_g[ch]),
+                crest_factor=float(td.crest_factor[ch]),
+                kurtosis=float(td.kurtosis[ch]),
+                skewness=float(td.skewness[ch]),
+                mean_g=float(td.mean_g[ch]),
+                velocity_rms_mm_s=float(vel_rms[ch]),
+                velocity_peak_mm_s=float(vel_peak[ch]),
+                displacement_pp_um=float(disp_pp[ch]),
+                shaft_hz=f if known else None,
+                shaft_estimated=bool(estimate[ch]) and known,
+                orders_mm_s=order_map,
+                envelope_band_hz=plan.envelope_band_hz,
+                envelope=families,
+            ))
+        return out
+
+
+def _shaft_array(shaft_hz: npt.ArrayLike | None, channels: int, fs_hz: float) -> FloatArray:
+    if shaft_hz is None:
+        return np.full(channels, np.nan)
+    try:
+        f = np.asarray(shaft_hz, dtype=np.float64)
+    except (TypeError, ValueError) as exc:
+        raise SignalError(f"shaft speeds are not numeric: {exc}") from exc
+    if f.ndim == 0:
+        f = np.full(channels, float(f))
+    if f.shape != (channels,):
+        raise SignalError(f"{f.size} shaft speeds given for {channels} channels")
+    bad = np.isfinite(f) & ((f <= 0) | (f >= fs_hz / 2)) | np.isinf(f)
+    if bad.any():
+        ch = int(np.flatnonzero(bad)[0])
+        raise SignalError(f"channel {ch}: shaft speed {f[ch]:g} Hz must be > 0 and below Nyquist {fs_hz / 2:g} Hz "
+                          "(NaN means unknown)")
+    return f
+
+
+@lru_cache(maxsize=128)
+def kernel_for(plan: AnalysisPlan) -> AnalysisKernel:
+    """The kernel of ``plan`` (a pure memo: kernels are immutable and depend on the frozen plan only)."""
+    return AnalysisKernel(plan)
+
+
+def analyze_frames(x_g: npt.ArrayLike, plan: AnalysisPlan,
+                   shaft_hz: npt.ArrayLike | None = None) -> list[FrameIndicators]:
+    """Analyse frames that share one plan.
+
+    Parameters
+    ----------
+    x_g : array_like, shape (channels, plan.n_samples) or (plan.n_samples,)
+        Acceleration in g (a 1-D array is one channel).
+    plan : AnalysisPlan
+        from :func:`make_plan`.
+    shaft_hz : None, float or array_like of shape (channels,)
+        Shaft speeds in Hz; None or NaN entries are estimated from the spectrum within ``plan.speed_range_hz``
+        (``shaft_estimated=True``).  Where no speed can be determined, ``shaft_hz`` is None and the orders and
+        envelope families are empty.
+
+    Returns
+    -------
+    list of FrameIndicators, one per channel.  Orders are keyed ``"0.5x"``, ``"1x"`` … (velocity r.m.s. in
+    mm/s); envelope families ``"ftf"``, ``"bpfo"``, ``"bpfi"``, ``"bsf"`` (the last searched at 2 × BSF) when the
+    plan has a bearing and an envelope band and the speed is known.
+
+    Raises
+    ------
+    SignalError
+        NaN/Inf samples, wrong shape or frame length, non-positive given speeds.
+    """
+    return kernel_for(plan).analyze(x_g, shaft_hz)

@@ -1,0 +1,305 @@
+"""Spectra from one shared real FFT: Hann-windowed amplitude lines, velocity by frequency-domain integration,
+order amplitudes and a shaft-speed estimate.
+
+Scaling (documented once, used everywhere):
+
+* The frame is transformed **once**, unwindowed (``X = rfft(x)``).  The periodic Hann window is applied in the
+  frequency domain as the exact three-tap convolution ``Xw[k] = X[k]/2 − X[k−1]/4 − X[k+1]/4``, only over the lines
+  that are needed, so the windowed and unwindowed spectra cost one transform.
+* **Amplitude lines read r.m.s.**: a sine of amplitude A centred on line k reads ``A/√2`` there
+  (``|Xw[k]| · 2/Σw / √2`` with Σw = N/2).
+* **Band r.m.s. (velocity, broadband)** sums power over lines with the window's noise bandwidth:
+  ``rms² = 2 Σ |Xw[k]|² / (N Σw²)`` with Σw² = 3N/8; by Parseval this equals the r.m.s. of the windowed-and-
+  rescaled signal in the band, for sines on or between lines (within about 1 %) and for broadband noise.
+* **Order amplitudes** are the same power sum over the three lines around the largest line within the order's
+  tolerance, so a line between two bins still reads its r.m.s. within about 1 % (no scalloping loss).
+* Velocity lines are acceleration lines divided by ω = 2πf (times gₙ and 1000 for mm/s); lines outside the band
+  are zero, so DC, gravity and drift never blow up (FIELD_NOTES §5).
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Literal
+
+import numpy as np
+import numpy.typing as npt
+
+from edgevib.pipelines.conditioning import STANDARD_GRAVITY_M_S2
+from edgevib.pipelines.indicators import as_channels, centre
+from edgevib.pipelines.types import PlanError
+
+__all__ = [
+    "amplitude_spectrum",
+    "averaged_amplitude_spectrum",
+    "hann_lines",
+    "velocity_rms_mm_s",
+]
+
+FloatArray = npt.NDArray[np.float64]
+ComplexArray = npt.NDArray[np.complex128]
+IntArray = npt.NDArray[np.intp]
+
+G_MM_S2 = STANDARD_GRAVITY_M_S2 * 1000.0  # 1 g in mm/s²
+SPEED_MIN_PROMINENCE = 4.0  # the 1× line of an estimated speed must stand 12 dB over the median (common practice)
+
+
+def hann_lines(spec: ComplexArray, stop: int) -> ComplexArray:
+    """Lines ``0 .. stop-1`` of the periodic-Hann-windowed spectrum, from the unwindowed rfft ``spec``.
+
+    Parameters
+    ----------
+    spec : ndarray, shape (channels, N//2 + 1), complex
+        ``numpy.fft.rfft`` of the unwindowed frames.
+    stop : int
+        number of lines wanted, 2 ≤ stop ≤ N//2.
+
+    Returns
+    -------
+    ndarray, shape (channels, stop), complex — equal to ``rfft(x * w)[:, :stop]`` with
+    ``w[n] = 0.5 − 0.5 cos(2πn/N)``.
+    """
+    ext = spec[:, : stop + 1]
+    out = 0.5 * ext[:, :stop] - 0.25 * ext[:, 1 : stop + 1]
+    out[:, 1:] -= 0.25 * ext[:, : stop - 1]
+    out[:, 0] -= 0.25 * np.conj(ext[:, 1])
+    return out
+
+
+def _power_to_ms_factor(n_samples: int) -> float:
+    """Factor turning one-sided Σ|Xw|² (periodic Hann) into mean square: 2/(N·Σw²), Σw² = 3N/8."""
+    return 16.0 / (3.0 * n_samples * n_samples)
+
+
+def amplitude_spectrum(x_g: npt.ArrayLike, fs_hz: float, *,
+                       scaling: Literal["rms", "peak"] = "rms") -> tuple[FloatArray, FloatArray]:
+    """Hann-windowed single-sided amplitude spectrum of acceleration frames.
+
+    Parameters
+    ----------
+    x_g : array_like, shape (channels, samples) or (samples,)
+    fs_hz : float
+    scaling : ``"rms"`` (default; a sine on a line reads its r.m.s.) or ``"peak"`` (reads its amplitude).
+
+    Returns
+    -------
+    freqs_hz : ndarray, shape (samples//2 + 1,)
+    amplitude_g : ndarray, shape (channels, samples//2 + 1); the mean is removed first.
+    """
+    x = as_channels(x_g)
+    _check_fs(fs_hz)
+    xc, _ = centre(x)
+    n = x.shape[-1]
+    w = 0.5 - 0.5 * np.cos(2.0 * np.pi * np.arange(n) / n)
+    amp = np.abs(np.fft.rfft(xc * w, axis=-1)) * (2.0 / w.sum())
+    amp[:, 0] /= 2.0
+    if n % 2 == 0:
+        amp[:, -1] /= 2.0
+    if scaling == "rms":
+        amp /= math.sqrt(2.0)
+    elif scaling != "peak":
+        raise PlanError(f"scaling {scaling!r} is not 'rms' or 'peak'")
+    freqs: FloatArray = np.fft.rfftfreq(n, 1.0 / fs_hz).astype(np.float64)
+    return freqs, amp
+
+
+def averaged_amplitude_spectrum(x_g: npt.ArrayLike, fs_hz: float, segment_samples: int, *,
+                                overlap: float = 0.5,
+                                scaling: Literal["rms", "peak"] = "rms") -> tuple[FloatArray, FloatArray]:
+    """Power-averaged (Welch-style) amplitude spectrum over Hann segments of ``segment_samples``.
+
+    Each segment's amplitude spectrum (as :func:`amplitude_spectrum`) is squared, the squares averaged over the
+    segments, and the square root returned: steady lines keep their r.m.s. reading while noise fluctuations shrink.
+
+    Returns
+    -------
+    freqs_hz : ndarray, shape (segment_samples//2 + 1,)
+    amplitude_g : ndarray, shape (channels, segment_samples//2 + 1)
+    """
+    x = as_channels(x_g)
+    n = x.shape[-1]
+    if not 2 <= segment_samples <= n:
+        raise PlanError(f"segment of {segment_samples} samples must be between 2 and the record's {n} samples")
+    if not 0.0 <= overlap < 1.0:
+        raise PlanError(f"overlap {overlap!r} must be in 0 ≤ overlap < 1")
+    step = max(1, round(segment_samples * (1.0 - overlap)))
+    starts = range(0, n - segment_samples + 1, step)
+    segs = np.stack([x[:, s : s + segment_samples] for s in starts], axis=1)  # (channels, segments, samples)
+    c, m, _ = segs.shape
+    freqs, amp = amplitude_spectrum(segs.reshape(c * m, segment_samples), fs_hz, scaling=scaling)
+    power = (amp.reshape(c, m, -1) ** 2).mean(axis=1)
+    return freqs, np.sqrt(power)
+
+
+def _check_fs(fs_hz: float) -> None:
+    if not math.isfinite(fs_hz) or fs_hz <= 0:
+        raise PlanError(f"sample rate {fs_hz!r} Hz must be finite and > 0")
+
+
+def band_lines(fs_hz: float, n_samples: int, band_hz: tuple[float, float]) -> tuple[int, int]:
+    """First and last (inclusive) rfft line inside ``band_hz``; lines start at 1 (DC excluded)."""
+    df = fs_hz / n_samples
+    lo = max(1, math.ceil(band_hz[0] / df - 1e-9))
+    hi = min(n_samples // 2, math.floor(band_hz[1] / df + 1e-9))
+    return lo, hi
+
+
+def velocity_rms_mm_s(x_g: npt.ArrayLike, fs_hz: float,
+                      band_hz: tuple[float, float] = (10.0, 1000.0)) -> FloatArray:
+    """Broadband velocity r.m.s. in mm/s over ``band_hz`` by frequency-domain integration (Hann window).
+
+    A 1 g peak sine at 50 Hz gives 31.22 mm/s peak = 22.07 mm/s r.m.s. (FIELD_NOTES §5).
+
+    Returns
+    -------
+    ndarray, shape (channels,)
+    """
+    x = as_channels(x_g)
+    _check_fs(fs_hz)
+    n = x.shape[-1]
+    lo, hi = band_lines(fs_hz, n, band_hz)
+    if hi < lo or hi >= n // 2:
+        raise PlanError(f"velocity band {band_hz[0]:g}–{band_hz[1]:g} Hz holds no lines below Nyquist "
+                        f"{fs_hz / 2:g} Hz at resolution {fs_hz / n:g} Hz")
+    xc, _ = centre(x)
+    lines = hann_lines(np.fft.rfft(xc, axis=-1), hi + 1)
+    inv_w = G_MM_S2 / (2.0 * np.pi * np.arange(lo, hi + 1) * fs_hz / n)
+    vel_pow = (lines[:, lo:].real ** 2 + lines[:, lo:].imag ** 2) * inv_w**2
+    rms: FloatArray = np.sqrt(vel_pow.sum(axis=-1) * _power_to_ms_factor(n))
+    return rms
+
+
+# ----------------------------------------------------------------------------------- search helpers
+
+
+def window_argmax(spec: FloatArray, lo: IntArray, hi: IntArray) -> IntArray:
+    """Index of the largest value of ``spec`` within ``lo..hi`` (inclusive, per row).
+
+    Parameters
+    ----------
+    spec : ndarray, shape (channels, lines)
+    lo, hi : int ndarrays, shape (channels, L); clipped to the valid line range, ``hi ≥ lo`` assumed.
+
+    Returns
+    -------
+    int ndarray, shape (channels, L)
+    """
+    c, k = spec.shape
+    lo = np.clip(lo, 0, k - 1)
+    hi = np.clip(hi, lo, k - 1)
+    width = int((hi - lo).max()) + 1 if lo.size else 1
+    idx = lo[..., None] + np.arange(width)
+    valid = idx <= hi[..., None]
+    idx = np.minimum(idx, k - 1)
+    vals = np.take_along_axis(spec, idx.reshape(c, -1), axis=1).reshape(idx.shape)
+    vals = np.where(valid, vals, -np.inf)
+    best = np.argmax(vals, axis=-1)
+    return np.take_along_axis(idx, best[..., None], axis=-1)[..., 0]
+
+
+def masked_median(spec: FloatArray, lo: IntArray, hi: IntArray, ex_lo: IntArray, ex_hi: IntArray) -> FloatArray:
+    """Median of ``spec`` over ``lo..hi`` without ``ex_lo..ex_hi`` (all inclusive, per row; shapes as
+    :func:`window_argmax`).  NaN where nothing is left."""
+    c, k = spec.shape
+    lo = np.clip(lo, 0, k - 1)
+    hi = np.clip(hi, lo, k - 1)
+    width = int((hi - lo).max()) + 1 if lo.size else 1
+    idx = lo[..., None] + np.arange(width)
+    valid = (idx <= hi[..., None]) & ((idx < ex_lo[..., None]) | (idx > ex_hi[..., None]))
+    idx = np.minimum(idx, k - 1)
+    vals = np.take_along_axis(spec, idx.reshape(c, -1), axis=1).reshape(idx.shape)
+    vals = np.sort(np.where(valid, vals, np.inf), axis=-1)
+    count = valid.sum(axis=-1)
+    lo_i = np.maximum((count - 1) // 2, 0)
+    hi_i = np.maximum(count // 2, 0)
+    a = np.take_along_axis(vals, lo_i[..., None], axis=-1)[..., 0]
+    b = np.take_along_axis(vals, hi_i[..., None], axis=-1)[..., 0]
+    with np.errstate(invalid="ignore"):
+        med = 0.5 * (a + b)
+    return np.where(count > 0, med, np.nan)
+
+
+def power3(power: FloatArray, idx: IntArray) -> FloatArray:
+    """Sum of ``power`` over lines ``idx−1 .. idx+1`` (per row; ``power`` shape (channels, lines))."""
+    c, k = power.shape
+    flat = idx.reshape(c, -1)
+    total = np.zeros(flat.shape, dtype=np.float64)
+    for off in (-1, 0, 1):
+        j = np.clip(flat + off, 0, k - 1)
+        total += np.where((flat + off >= 0) & (flat + off < k), np.take_along_axis(power, j, axis=1), 0.0)
+    return total.reshape(idx.shape)
+
+
+def order_amplitudes_mm_s(vel_pow: FloatArray, shaft_hz: FloatArray, orders: tuple[float, ...],
+                          tolerance: float, df_hz: float, n_samples: int) -> FloatArray:
+    """Velocity r.m.s. (mm/s) of each order line; NaN where the speed is unknown or the line out of range.
+
+    Parameters
+    ----------
+    vel_pow : ndarray, shape (channels, lines) — |velocity line|² (Hann lines, mm/s units before scaling)
+    shaft_hz : ndarray, shape (channels,) — NaN for unknown
+    orders : the orders (multiples of shaft speed)
+    tolerance : relative search tolerance around each order (at least ±1 line)
+
+    Returns
+    -------
+    ndarray, shape (channels, len(orders))
+    """
+    k = vel_pow.shape[1]
+    known = np.isfinite(shaft_hz)
+    f = np.where(known, shaft_hz, 0.0)
+    centre_bins = f[:, None] * np.asarray(orders)[None, :] / df_hz  # (channels, orders)
+    half = np.maximum(1.0, tolerance * centre_bins)
+    lo = np.ceil(centre_bins - half).astype(np.intp)
+    hi = np.floor(centre_bins + half).astype(np.intp)
+    in_range = known[:, None] & (lo >= 1) & (hi <= k - 2)
+    peak = window_argmax(vel_pow, lo, hi)
+    amp = np.sqrt(power3(vel_pow, peak) * _power_to_ms_factor(n_samples))
+    return np.where(in_range, amp, np.nan)
+
+
+def estimate_speed_hz(vel_pow: FloatArray, speed_range_hz: tuple[float, float], df_hz: float,
+                      harmonics: int = 3) -> FloatArray:
+    """Shaft-speed estimate per channel from a velocity power spectrum, NaN where no clear 1× line exists.
+
+    A harmonic sum: every candidate f0 in ``speed_range_hz`` (steps of a third of a line) scores the sum of the
+    largest amplitudes within ±1 line of f0, 2f0 … (``harmonics``), minus the same at the half-way points
+    0.5f0, 1.5f0 … (which rejects the 2f0, 3f0 octave errors).  The winner is refined by log-parabolic
+    interpolation of its 1× line; it is kept only when that line stands at least ``SPEED_MIN_PROMINENCE`` times
+    (12 dB) above the median amplitude of the searched region.
+
+    Parameters
+    ----------
+    vel_pow : ndarray, shape (channels, lines); lines must reach ``harmonics·speed_range_hz[1]`` plus 2 lines.
+
+    Returns
+    -------
+    ndarray, shape (channels,)
+    """
+    amp = np.sqrt(vel_pow)
+    c, k = amp.shape
+    amp3 = amp.copy()
+    amp3[:, 1:-1] = np.maximum(np.maximum(amp[:, :-2], amp[:, 1:-1]), amp[:, 2:])
+    cand = np.arange(speed_range_hz[0] / df_hz, speed_range_hz[1] / df_hz + 1e-9, 1.0 / 3.0)
+    score = np.zeros((c, cand.size))
+    for h in range(1, harmonics + 1):
+        score += amp3[:, np.clip(np.rint(h * cand).astype(np.intp), 0, k - 1)]
+        score -= amp3[:, np.clip(np.rint((h - 0.5) * cand).astype(np.intp), 0, k - 1)]
+    best = cand[np.argmax(score, axis=-1)]  # (channels,)
+    b = np.rint(best).astype(np.intp)
+    peak = window_argmax(amp, (b - 1)[:, None], (b + 1)[:, None])[:, 0]
+    peak = np.clip(peak, 1, k - 2)
+    rows = np.arange(c)
+    la = np.log(np.maximum(amp[rows, peak - 1], 1e-300))
+    lb = np.log(np.maximum(amp[rows, peak], 1e-300))
+    lc = np.log(np.maximum(amp[rows, peak + 1], 1e-300))
+    denom = la - 2.0 * lb + lc
+    delta = np.where(denom < 0, 0.5 * (la - lc) / np.where(denom < 0, denom, -1.0), 0.0)
+    f_est = (peak + np.clip(delta, -0.5, 0.5)) * df_hz
+    lo_line = max(1, math.floor(speed_range_hz[0] / df_hz))
+    hi_line = min(k, math.ceil(harmonics * speed_range_hz[1] / df_hz) + 2)
+    floor = np.median(amp[:, lo_line:hi_line], axis=-1)
+    clear = amp[rows, peak] >= SPEED_MIN_PROMINENCE * floor
+    clear &= amp[rows, peak] > 0
+    inside = (f_est >= speed_range_hz[0] * 0.999) & (f_est <= speed_range_hz[1] * 1.001)
+    return np.where(clear & inside, f_est, np.nan)
