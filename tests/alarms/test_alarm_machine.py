@@ -8,6 +8,7 @@ definitions in the module docstring, not from the implementation.
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import pytest
@@ -124,7 +125,7 @@ def test_raises_and_clears_alternate(values: list[float], on: int, off: int) -> 
     spec = LimitSpec(alert=ALERT, danger=DANGER, on_delay=Delay(frames=on), off_delay=Delay(frames=off))
     _, events = run(spec, values)
     kinds = [e.kind for _, e in events if e.kind in ("raised", "cleared")]
-    assert all(a != b for a, b in zip(kinds, kinds[1:], strict=False))
+    assert all(a != b for a, b in itertools.pairwise(kinds))
     assert not kinds or kinds[0] == "raised"
     for _, e in events:  # severities move one consistent way per kind
         assert (e.to_severity > e.from_severity) == (e.kind in ("raised", "escalated"))

@@ -1,0 +1,111 @@
+"""Sensor health checks (edgevib.pipelines.health) on closed-form signals.
+
+Signatures are common practice (FIELD_NOTES §6): a MEMS sensor sees at most 1 g of gravity, an IEPE bias outside
+8–12 V means an open or shorted cable, a band-limited signal never has consecutive samples pinned at its extreme,
+bearing impacts ring a resonance over several samples.  The white-noise density check uses the closed form of a
+one-sided PSD: white noise of standard deviation s sampled at fs has density s·√(2/fs).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+
+from edgevib.pipelines.health import HealthSpec, check_health
+from edgevib.pipelines.types import SignalError
+
+FS = 25600.0
+N = 16384
+T = np.arange(N) / FS
+
+
+def healthy(seed: int = 1, mean: float = 0.0) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    return mean + 0.5 * np.sin(2 * np.pi * 24.7 * T) + 0.2 * np.sin(2 * np.pi * 49.4 * T + 1.0) + \
+        0.01 * rng.standard_normal(N)
+
+
+def bearing_impacts(seed: int = 2) -> np.ndarray:
+    """Outer-race-like impacts: a 3 kHz resonance decaying in 2 ms, struck 107 times a second, on noise."""
+    rng = np.random.default_rng(seed)
+    x = 0.02 * rng.standard_normal(N)
+    for t0 in np.arange(0.001, N / FS, 1 / 107.4):
+        tau = T - t0
+        on = tau >= 0
+        x[on] += 2.0 * np.exp(-tau[on] / 0.002) * np.sin(2 * np.pi * 3000 * tau[on])
+    return x
+
+
+def test_healthy_signals_have_no_fault() -> None:
+    frames = np.stack([healthy(1), healthy(2) + 0.3 * np.sin(2 * np.pi * 200 * T), bearing_impacts()])
+    res = check_health(frames, FS)
+    assert [r.faults for r in res] == [(), (), ()]
+    # Kurtosis of the impact signal is far above Gaussian 3, yet these are not spikes (they ring).
+    x = frames[2] - frames[2].mean()
+    assert np.mean(x**4) / np.mean(x**2) ** 2 > 6
+    mems = check_health(healthy(3, mean=1.0), FS, HealthSpec(sensor_type="mems"))
+    assert mems[0].ok and mems[0].mean_g == pytest.approx(1.0, abs=0.01)
+
+
+def test_flatline_constant_and_stuck() -> None:
+    stuck = healthy(4)
+    stuck[3000:] = stuck[3000]
+    res = check_health(np.stack([np.zeros(N), np.full(N, 0.98), stuck]), FS, HealthSpec(sensor_type="mems"))
+    assert [r.fault for r in res] == ["flatline", "flatline", "flatline"]
+    assert res[2].repeat_fraction > 0.8
+
+
+def test_clipping_flat_tops_and_full_scale() -> None:
+    x = np.clip(3.0 * np.sin(2 * np.pi * 24.7 * T), -2.0, 2.0)
+    assert check_health(x, FS)[0].fault == "clipping"
+    assert check_health(x, FS, HealthSpec(full_scale_g=2.0))[0].fault == "clipping"
+    # The same sine unclipped, sampled so that its peak falls on a sample each period, is not clipped.
+    y = np.sin(2 * np.pi * 200.0 * T)
+    assert check_health(y, FS)[0].ok
+
+
+def test_bias_out_of_range_and_cable_faults() -> None:
+    mems = HealthSpec(sensor_type="mems")
+    assert check_health(healthy(5, mean=2.6), FS, mems)[0].fault == "bias"
+    vertical = HealthSpec(sensor_type="mems", expected_mean_g=1.0, mean_tolerance_g=0.2)
+    assert check_health(healthy(5, mean=0.0), FS, vertical)[0].fault == "bias"
+    assert check_health(healthy(5, mean=0.95), FS, vertical)[0].ok
+    assert check_health(healthy(5, mean=0.8), FS)[0].fault == "bias"  # DC on an AC-coupled piezo channel
+    res = check_health(np.stack([healthy(6)] * 3), FS, bias_v=[23.8, 0.4, 10.1])
+    assert [r.fault for r in res] == ["bias", "bias", None]
+    assert "open cable" in res[0].detail and "short" in res[1].detail
+
+
+def test_dc_step() -> None:
+    x = healthy(7)
+    x[N // 2:] += 0.8
+    res = check_health(x, FS, HealthSpec(sensor_type="mems"))[0]
+    assert res.fault == "dc-step"
+    assert_allclose(res.step_g, 0.8, atol=0.05)  # the step height, within the sine's residual
+
+
+def test_isolated_spikes_counted() -> None:
+    x = healthy(8)
+    x[[1000, 7000, 12000]] += [6.0, -7.0, 8.0]
+    res = check_health(x, FS)[0]
+    assert res.fault == "spikes" and res.spike_count == 3
+
+
+def test_noise_floor_against_closed_form_density() -> None:
+    rng = np.random.default_rng(9)
+    s = 1e-3 * np.sqrt(FS / 2)  # white noise of 1000 µg/√Hz one-sided: s·√(2/fs) = 1e-3 g/√Hz
+    x = s * rng.standard_normal(N)
+    res = check_health(x, FS, HealthSpec(noise_density_ug_rthz=50.0))[0]
+    assert_allclose(res.noise_density_ug_rthz, 1000.0, rtol=0.1)
+    assert res.faults == ("noise",)
+    assert check_health(x, FS, HealthSpec(noise_density_ug_rthz=200.0))[0].ok
+
+
+def test_bad_input_named() -> None:
+    with pytest.raises(SignalError, match="non-finite"):
+        check_health(np.array([0.0, np.nan] * 20), FS)
+    with pytest.raises(SignalError, match="shaped"):
+        check_health(np.zeros(4), FS)
+    with pytest.raises(SignalError, match="2 values for 1 channels"):
+        check_health(healthy(), FS, bias_v=[10.0, 10.0])
