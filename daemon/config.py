@@ -270,6 +270,7 @@ class PointConfig:
     frame_samples: int = 16384
     overlap: float = 0.5
     node: str | None = None
+    unit: str = "g"
     limits: Mapping[str, Any] | None = None
 
     @property
@@ -667,7 +668,7 @@ def _default_envelope_band(fs_hz: float, bandwidth_hz: tuple[float, float],
                            shaft_hz_max: float | None) -> tuple[float, float] | None:
     fn = _optional("edgevib.pipelines.analysis", "default_envelope_band")
     if fn is not None:
-        band = fn(fs_hz, bandwidth_hz[1], shaft_hz_max=shaft_hz_max)
+        band = fn(fs_hz, bandwidth_hz, shaft_hz_max=shaft_hz_max)
         return None if band is None else (float(band[0]), float(band[1]))
     # Common practice: demodulate a band of resonances well above shaft harmonics, at least ~2 kHz up.
     hi = min(bandwidth_hz[1], 0.4 * fs_hz)
@@ -757,7 +758,8 @@ def _parse_point(t: _Table, machines: dict[str, MachineConfig], sources: dict[st
         description=t.str("description", ""), sensor_type=sensor_type,
         sensitivity_mv_per_g=t.float("sensitivity_mv_per_g", None, lo=0.0, lo_open=True),
         bandwidth_hz=bandwidth, velocity_band_hz=vband, envelope_band_hz=env, envelope_note=env_note,
-        bearing=bearing, orders=orders, frame_samples=frame, overlap=overlap, node=node, limits=limits)
+        bearing=bearing, orders=orders, frame_samples=frame, overlap=overlap, node=node,
+        unit=t.str("unit", "g", choices=("g", "m/s2")), limits=limits)
     t.done()
     _check_plan(p, m, t.path)
     return p

@@ -1,0 +1,478 @@
+"""The one place where sources, the rolling pipeline, analysis workers, alarms and sinks are wired together.
+
+Data flow (all on one asyncio event loop, numerics in a thread pool)::
+
+    sources ──payload/block/speed──▶ BlockIngest (frames.py) ──frames──▶ per-point bounded queues
+        ──batches of points sharing a plan──▶ ThreadPoolExecutor: analyze_frames(stack, plan, shaft_hz)
+        ──FrameResult list──▶ every FrameSink (Prometheus, MQTT indicators, OPC UA server, alarms…)
+
+A point is in at most one analysis batch at a time, so its frames (and trend) stay in order; a sink that fails
+is logged (rate-limited) and never stops the others.  :meth:`Daemon.reload` applies a new configuration while
+points whose configuration is unchanged keep their assembly buffers, queues and trends.
+
+Seams for other layers: ``Daemon.add_sink`` (before ``start``); the alarm layer's factory
+``edgevib.daemon.alarms.sink.create_sink(config, daemon) -> FrameSink | None`` is used when it exists; any sink
+with a ``state_text(point_id) -> str | None`` method feeds the demo table's alarm column; ``on_ready`` /
+``on_stopping`` callbacks (systemd notifications).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import importlib
+import math
+import time
+from collections.abc import Callable, Sequence
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+
+from edgevib.daemon.config import (
+    Config,
+    MachineConfig,
+    MqttSourceConfig,
+    OpcUaSourceConfig,
+    PointConfig,
+    SimulatedSourceConfig,
+)
+from edgevib.daemon.frames import BlockIngest, EwTrend, FrameJob, PointStream, Stats, build_plan, indicator_values
+from edgevib.daemon.interfaces import ConfigError, FrameResult, FrameSink, Source
+from edgevib.daemon.logs import RateLimitedLogger, get_logger
+from edgevib.pipelines.types import AnalysisPlan, FrameIndicators, PipelineError
+
+__all__ = ["AnalyzeFn", "Daemon", "run"]
+
+AnalyzeFn = Callable[[npt.NDArray[np.float64], AnalysisPlan, "npt.NDArray[np.float64] | None"],
+                     list[FrameIndicators]]
+MAX_BATCH = 64
+log = get_logger("edgevib.daemon")
+
+
+def _default_analyze(x: npt.NDArray[np.float64], plan: AnalysisPlan,
+                     shaft_hz: npt.NDArray[np.float64] | None) -> list[FrameIndicators]:
+    from edgevib.pipelines.analysis import analyze_frames
+
+    return list(analyze_frames(x, plan, shaft_hz=shaft_hz))
+
+
+def _iso_zone(v_mm_s: float, machine: MachineConfig) -> str | None:
+    if machine.group is None or machine.support is None or not math.isfinite(v_mm_s):
+        return None
+    from edgevib.pipelines.severity import iso_zone
+
+    try:
+        return str(iso_zone(v_mm_s, machine.group, machine.support))
+    except PipelineError:
+        return None
+
+
+def _optional_attr(module: str, attr: str) -> Any:
+    try:
+        mod = importlib.import_module(module)
+    except ModuleNotFoundError as exc:
+        if exc.name and module.startswith(exc.name):
+            return None
+        raise
+    return getattr(mod, attr, None)
+
+
+@dataclass
+class _PointState:
+    config: PointConfig
+    machine: MachineConfig
+    plan: AnalysisPlan
+    trend: EwTrend
+    signature: tuple[Any, ...]
+
+
+class Daemon:
+    """The running monitor for one configuration.
+
+    Parameters
+    ----------
+    config : the validated configuration.
+    registry : Prometheus registry for the metrics sink (a fresh one in tests); ``None`` makes a private one.
+    metrics_listen : ``(host, port)`` overriding ``[metrics] listen`` (port 0 picks a free port).
+    analyze : the analysis function (defaults to ``edgevib.pipelines.analysis.analyze_frames``).
+    sources : ready-made sources replacing those built from the configuration (tests).
+    serve_metrics : start the HTTP listener (the collector is registered either way).
+    """
+
+    def __init__(self, config: Config, *, registry: Any = None, metrics_listen: tuple[str, int] | None = None,
+                 analyze: AnalyzeFn | None = None, sources: Sequence[Source] | None = None,
+                 serve_metrics: bool = True, clock_ns: Callable[[], int] = time.time_ns) -> None:
+        self.config = config
+        self.clock_ns = clock_ns
+        self.stats = Stats()
+        self.analyze = analyze or _default_analyze
+        self.ingest = BlockIngest(config, self.stats, on_frames=self._on_frames, clock_ns=clock_ns)
+        self.points: dict[str, _PointState] = {}
+        self.latest: dict[str, FrameResult] = {}
+        self.sinks: list[FrameSink] = []
+        self.sources: list[Source] = []
+        self._given_sources = list(sources) if sources is not None else None
+        self._source_tasks: dict[str, asyncio.Task[None]] = {}
+        self._busy: set[str] = set()
+        self._inflight: set[asyncio.Task[None]] = set()
+        self._wake = asyncio.Event()
+        self._scheduler: asyncio.Task[None] | None = None
+        self._executor: ThreadPoolExecutor | None = None
+        self._rr = 0
+        self._started = False
+        self._warned_envelope: set[str] = set()
+        self.on_ready: list[Callable[[], None]] = []
+        self.on_stopping: list[Callable[[], None]] = []
+        self.rlog = RateLimitedLogger(log, interval_s=10.0)
+        self._build_points(config, keep={})
+        from edgevib.daemon.sinks.prometheus import PrometheusSink
+
+        host, port = metrics_listen or (config.metrics.host, config.metrics.port)
+        self.metrics = PrometheusSink(
+            site=config.site.name, points=config.points, stats=self.stats, registry=registry, host=host, port=port,
+            ready=self.readiness, tls_cert_file=config.metrics.tls_cert_file, tls_key_file=config.metrics.tls_key_file,
+            tls_client_ca_file=config.metrics.tls_client_ca_file, clock_ns=clock_ns, serve=serve_metrics)
+        self.sinks.append(self.metrics)
+        self._add_configured_sinks(config)
+
+    # ------------------------------------------------------------------------------------------ set-up
+
+    @staticmethod
+    def _signature(p: PointConfig, m: MachineConfig, config: Config) -> tuple[Any, ...]:
+        return (p, m, config.analysis.queue_frames, config.analysis.trend_halflife_s)
+
+    def _build_points(self, config: Config, keep: dict[str, _PointState]) -> None:
+        machines = {m.id: m for m in config.machines}
+        points: dict[str, _PointState] = {}
+        for p in config.points:
+            m = machines[p.machine]
+            sig = self._signature(p, m, config)
+            old = keep.get(p.id)
+            if old is not None and old.signature == sig:
+                points[p.id] = old
+                continue
+            try:
+                plan = build_plan(p, m)
+            except PipelineError as exc:
+                raise ConfigError(f"points[{p.id}]", f"analysis plan rejected: {exc}") from None
+            points[p.id] = _PointState(p, m, plan, EwTrend(config.analysis.trend_halflife_s), sig)
+            if p.envelope_note and p.id not in self._warned_envelope:
+                self._warned_envelope.add(p.id)
+                log.warning("no envelope indicators for this point", point=p.id, sensor_type=p.sensor_type,
+                            bandwidth_hz=list(p.bandwidth_hz), fs_hz=p.fs_hz, reason=p.envelope_note)
+        self.points = points
+
+    def _add_configured_sinks(self, config: Config) -> None:
+        if config.publish_mqtt.enabled:
+            from edgevib.daemon.sinks.mqtt import MqttIndicatorSink
+
+            self.sinks.append(MqttIndicatorSink.from_config(config))
+        if config.publish_opcua.enabled:
+            cls = _optional_attr("edgevib.daemon.sinks.opcua", "OpcUaIndicatorSink")
+            if cls is None:
+                log.warning("OPC UA publishing is configured but not available in this build")
+            else:
+                self.sinks.append(_make_opcua_sink(cls, config))
+        create = _optional_attr("edgevib.daemon.alarms.sink", "create_sink")
+        if create is not None:
+            sink = create(config, self)
+            if sink is not None:
+                self.sinks.append(sink)
+
+    def add_sink(self, sink: FrameSink) -> None:
+        """Add a sink (the alarm layer, a test probe); call before :meth:`start`."""
+        self.sinks.append(sink)
+
+    def _make_sources(self, config: Config) -> list[Source]:
+        if self._given_sources is not None:
+            return list(self._given_sources)
+        return [make_source(s, config, self.ingest) for s in config.sources]
+
+    # ------------------------------------------------------------------------------------------ lifecycle
+
+    async def start(self) -> None:
+        """Start sinks (the metrics listener first), the scheduler and every source."""
+        loop = asyncio.get_running_loop()
+        self._executor = ThreadPoolExecutor(max_workers=self.config.analysis.workers,
+                                            thread_name_prefix="edgevib-analysis")
+        started: list[FrameSink] = []
+        try:
+            for sink in self.sinks:
+                await sink.start()
+                started.append(sink)
+        except BaseException:
+            for sink in reversed(started):
+                with contextlib.suppress(Exception):
+                    await sink.stop()
+            self._executor.shutdown(wait=False, cancel_futures=True)
+            raise
+        self._scheduler = loop.create_task(self._schedule(), name="edgevib-scheduler")
+        self.sources = self._make_sources(self.config)
+        for src in self.sources:
+            self._start_source(src)
+        self._started = True
+        log.info("daemon started", site=self.config.site.name, points=len(self.points), sources=len(self.sources),
+                 metrics=self.metrics.url, skipped_points=len(self.config.skipped_points))
+        for cb in self.on_ready:
+            with contextlib.suppress(Exception):
+                cb()
+
+    def _start_source(self, src: Source) -> None:
+        task = asyncio.get_running_loop().create_task(self._run_source(src), name=f"edgevib-source-{src.name}")
+        self._source_tasks[src.name] = task
+
+    async def _run_source(self, src: Source) -> None:
+        try:
+            await src.run()
+        except asyncio.CancelledError:
+            raise
+        except Exception as exc:  # a source promises not to raise; if it does, the daemon keeps going
+            log.error("source stopped with an error", source=src.name, error=repr(exc))
+            self.ingest.connection(src.name, False)
+
+    async def stop(self, timeout_s: float = 10.0) -> None:
+        """Stop taking blocks, finish the frames in flight, stop the sinks; bounded by ``timeout_s``."""
+        if not self._started:
+            return
+        self._started = False
+        for cb in self.on_stopping:
+            with contextlib.suppress(Exception):
+                cb()
+        deadline = time.monotonic() + timeout_s
+        for src in self.sources:
+            with contextlib.suppress(Exception):
+                await asyncio.wait_for(src.stop(), max(0.1, deadline - time.monotonic()))
+        for task in self._source_tasks.values():
+            task.cancel()
+        await asyncio.gather(*self._source_tasks.values(), return_exceptions=True)
+        self._source_tasks.clear()
+        if self._scheduler is not None:
+            self._scheduler.cancel()
+            await asyncio.gather(self._scheduler, return_exceptions=True)
+        if self._inflight:
+            await asyncio.wait(self._inflight, timeout=max(0.1, deadline - time.monotonic()))
+        for sink in reversed(self.sinks):
+            try:
+                await asyncio.wait_for(sink.stop(), max(0.1, deadline - time.monotonic()))
+            except Exception as exc:
+                log.error("sink did not stop cleanly", sink=type(sink).__name__, error=repr(exc))
+        if self._executor is not None:
+            self._executor.shutdown(wait=False, cancel_futures=True)
+        log.info("daemon stopped")
+
+    async def run(self, stop: asyncio.Event) -> None:
+        """Start, run until ``stop`` is set, stop."""
+        await self.start()
+        try:
+            await stop.wait()
+        finally:
+            await self.stop()
+
+    # ------------------------------------------------------------------------------------------ status
+
+    @property
+    def ready(self) -> bool:
+        return self.readiness()[0]
+
+    def readiness(self) -> tuple[bool, str]:
+        names = [s.name for s in self.config.sources]
+        missing = [n for n in names if not self.stats.connected.get(n, False)]
+        if missing:
+            return False, "sources not connected: " + ", ".join(missing)
+        return True, f"{len(names)} source(s) connected"
+
+    def state_text(self, point_id: str) -> str | None:
+        """Alarm state text of a point from any sink offering ``state_text`` (the demo's alarm column)."""
+        for sink in self.sinks:
+            fn = getattr(sink, "state_text", None)
+            if callable(fn):
+                with contextlib.suppress(Exception):
+                    text = fn(point_id)
+                    if text is not None:
+                        return str(text)
+        return None
+
+    # ------------------------------------------------------------------------------------------ reload
+
+    async def reload(self, config: Config) -> None:
+        """Apply a new configuration; points and sources whose configuration is unchanged keep their state."""
+        old = self.config
+        unchanged_points = {p.id for p in config.points if p.id in self.points
+                            and self.points[p.id].signature == self._signature(p, config.machine(p.machine), config)}
+        self._build_points(config, keep=self.points)
+        self.config = config
+        self.ingest.configure(config, keep=unchanged_points)
+        self.metrics.site = config.site.name
+        self.metrics.collector.site = config.site.name
+        self.metrics.set_points(config.points)
+        for pid in [pid for pid in self.latest if pid not in self.points]:
+            self.latest.pop(pid)
+        if self._given_sources is None:
+            old_by_name = {s.name: s for s in old.sources}
+            new_by_name = {s.name: s for s in config.sources}
+            for src in list(self.sources):
+                if new_by_name.get(src.name) != old_by_name.get(src.name) or src.name not in new_by_name:
+                    with contextlib.suppress(Exception):
+                        await asyncio.wait_for(src.stop(), 5.0)
+                    task = self._source_tasks.pop(src.name, None)
+                    if task is not None:
+                        task.cancel()
+                    self.sources.remove(src)
+                    self.stats.connected.pop(src.name, None)
+            running = {s.name for s in self.sources}
+            for name, scfg in new_by_name.items():
+                if name not in running:
+                    src = make_source(scfg, config, self.ingest)
+                    self.sources.append(src)
+                    self._start_source(src)
+        for sink in self.sinks:
+            fn = getattr(sink, "reconfigure", None)
+            if callable(fn):
+                with contextlib.suppress(Exception):
+                    res = fn(config)
+                    if asyncio.iscoroutine(res):
+                        await res
+        log.info("configuration reloaded", points=len(self.points), kept=len(unchanged_points))
+
+    # ------------------------------------------------------------------------------------------ analysis
+
+    def _on_frames(self, _stream: PointStream) -> None:
+        self._wake.set()
+
+    async def _schedule(self) -> None:
+        while True:
+            await self._wake.wait()
+            self._wake.clear()
+            while len(self._inflight) < self.config.analysis.workers:
+                batch = self._take_batch()
+                if batch is None:
+                    break
+                task = asyncio.get_running_loop().create_task(self._run_batch(*batch))
+                self._inflight.add(task)
+                task.add_done_callback(self._batch_done)
+
+    def _batch_done(self, task: asyncio.Task[None]) -> None:
+        self._inflight.discard(task)
+        self._wake.set()
+
+    def _take_batch(self) -> tuple[AnalysisPlan, list[FrameJob]] | None:
+        """The queued frames of every idle point that shares the plan of the next point in round-robin order."""
+        streams = self.ingest.streams
+        ids = [pid for pid in self.points if pid not in self._busy and streams.get(pid) and streams[pid].queue]
+        if not ids:
+            return None
+        self._rr = (self._rr + 1) % len(ids)
+        lead = ids[self._rr]
+        plan = self.points[lead].plan
+        jobs: list[FrameJob] = []
+        for pid in [lead, *[i for i in ids if i != lead]]:
+            if self.points[pid].plan != plan:
+                continue
+            q = streams[pid].queue
+            while q and len(jobs) < MAX_BATCH:
+                jobs.append(q.popleft())
+            self._busy.add(pid)
+            if len(jobs) >= MAX_BATCH:
+                break
+        return plan, jobs
+
+    async def _run_batch(self, plan: AnalysisPlan, jobs: list[FrameJob]) -> None:
+        pids = {j.point_id for j in jobs}
+        try:
+            now = self.clock_ns()
+            shaft = [self.ingest.speed_hz(self.points[j.point_id].machine, now) if j.point_id in self.points
+                     else None for j in jobs]
+            shaft_arr = None if all(s is None for s in shaft) else \
+                np.array([math.nan if s is None else s for s in shaft], dtype=np.float64)
+            x = np.stack([j.samples for j in jobs])
+            loop = asyncio.get_running_loop()
+            try:
+                indicators = await loop.run_in_executor(self._executor, self.analyze, x, plan, shaft_arr)
+            except Exception as exc:
+                for pid in pids:
+                    Stats.inc(self.stats.analysis_errors, pid, sum(1 for j in jobs if j.point_id == pid))
+                self.rlog.error(("analysis", tuple(sorted(pids))), "analysis failed", points=sorted(pids),
+                                error=repr(exc))
+                return
+            results = self._results(jobs, indicators)
+        finally:
+            self._busy.difference_update(pids)
+        if results:
+            await self._publish(results)
+
+    def _results(self, jobs: list[FrameJob], indicators: list[FrameIndicators]) -> list[FrameResult]:
+        results = []
+        for job, ind in zip(jobs, indicators, strict=True):
+            st = self.points.get(job.point_id)
+            if st is None:  # removed by a reload while in flight
+                continue
+            trend = st.trend.update(indicator_values(ind), job.t_end_ns / 1e9)
+            zone = _iso_zone(ind.velocity_rms_mm_s, st.machine)
+            r = FrameResult(point_id=job.point_id, machine_id=st.machine.id, t_end_ns=job.t_end_ns,
+                            received_ns=job.received_ns, fs_hz=st.config.fs_hz, indicators=ind, iso_zone=zone,
+                            samples=job.samples, extra={"trend": trend, "axis": st.config.axis,
+                                                        "sensor_type": st.config.sensor_type,
+                                                        "speed_mode": st.machine.speed_mode})
+            self.latest[job.point_id] = r
+            Stats.inc(self.stats.frames_analysed, job.point_id)
+            results.append(r)
+        return results
+
+    async def _publish(self, results: list[FrameResult]) -> None:
+        for sink in self.sinks:
+            try:
+                await sink.on_frames(results)
+            except Exception as exc:
+                self.rlog.error(("sink", type(sink).__name__), "sink failed", sink=type(sink).__name__,
+                                error=repr(exc))
+
+
+# ---------------------------------------------------------------------------------------------- factories
+
+
+def make_source(cfg: Any, config: Config, ingest: BlockIngest) -> Source:
+    """Build the source of one ``[[sources]]`` entry."""
+    speed_tags = [m.speed_tag.tag for m in config.machines if m.speed_tag is not None
+                  and m.speed_tag.source == cfg.name]
+    if isinstance(cfg, MqttSourceConfig):
+        from edgevib.daemon.sources.mqtt import MqttSource
+
+        return MqttSource.from_config(cfg, ingest, speed_topics=speed_tags)
+    if isinstance(cfg, SimulatedSourceConfig):
+        from edgevib.daemon.sources.simulated import SimulatedSource
+
+        return SimulatedSource(name=cfg.name, ingest=ingest, scenario=cfg.scenario, seed=cfg.seed, rate=cfg.rate)
+    if isinstance(cfg, OpcUaSourceConfig):
+        cls = _optional_attr("edgevib.daemon.sources.opcua", "OpcUaSource")
+        spec_cls = _optional_attr("edgevib.daemon.sources.opcua", "NodeSpec")
+        if cls is None or spec_cls is None:
+            raise ConfigError(f"sources[{cfg.name}].type", "OPC UA sources are not available in this build")
+        nodes = {p.node: spec_cls(sensor_id=p.sensor, fs_hz=p.fs_hz, unit=p.unit) for p in config.points
+                 if p.source == cfg.name and p.node is not None}
+        return cls(name=cfg.name, endpoint=cfg.endpoint, ingest=ingest, nodes=nodes,
+                   speed_nodes={t: t for t in speed_tags}, mode=cfg.mode, poll_interval_s=cfg.poll_interval_s,
+                   security_policy=cfg.security_policy, security_mode=cfg.security_mode, cert_file=cfg.cert_file,
+                   key_file=cfg.key_file, server_cert_file=cfg.server_cert_file, username=cfg.username,
+                   password=cfg.password.reveal() if cfg.password is not None else None,
+                   reconnect_min_s=cfg.reconnect_min_s, reconnect_max_s=cfg.reconnect_max_s)
+    raise ConfigError("sources", f"unsupported source type {getattr(cfg, 'type', '?')!r}")
+
+
+def _make_opcua_sink(cls: Any, config: Config) -> FrameSink:
+    pc = config.publish_opcua
+    points = {p.id: p for p in config.points}
+    try:
+        return cls(host=pc.host, port=pc.port, namespace=pc.namespace, site=config.site.name, points=points)  # type: ignore[no-any-return]
+    except TypeError:
+        return cls(endpoint=f"opc.tcp://{pc.host}:{pc.port}/", namespace=pc.namespace,  # type: ignore[no-any-return]
+                   site=config.site.name, points=points)
+
+
+async def run(config: Config, *, metrics_listen: tuple[str, int] | None = None,
+              stop: asyncio.Event | None = None, **kwargs: Any) -> None:
+    """Run the daemon until ``stop`` is set (``service.py`` sets it from SIGINT/SIGTERM)."""
+    daemon = Daemon(config, metrics_listen=metrics_listen, **kwargs)
+    await daemon.run(stop or asyncio.Event())

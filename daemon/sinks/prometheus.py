@@ -1,0 +1,280 @@
+"""Prometheus exposition of every point's latest indicators and the daemon's self-metrics, plus health probes.
+
+One HTTP listener serves ``/metrics`` (text or OpenMetrics by ``Accept``), ``/healthz`` (200 while the process
+serves) and ``/readyz`` (200 when every configured source is connected, else 503 with the missing ones).  A custom
+collector yields fresh metric families from a snapshot on each scrape, on an injected
+:class:`~prometheus_client.CollectorRegistry` (tests use a fresh one).  Optional TLS, with client-certificate
+authentication when a client CA is given, for listeners bound beyond loopback.
+
+Indicators are in base units (m/s, m/s², Hz, s) with labels ``site``, ``machine``, ``point``, ``axis``; an
+indicator that is unavailable for a frame (no speed known, no envelope band) is absent, never a made-up number.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import socket
+import ssl
+import threading
+import time
+from collections.abc import Callable, Iterable, Iterator, Mapping
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from typing import Any
+
+from prometheus_client import CollectorRegistry
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, HistogramMetricFamily, Metric
+from prometheus_client.exposition import choose_encoder
+
+from edgevib.daemon import __version__
+from edgevib.daemon.config import G_M_S2, PointConfig
+from edgevib.daemon.frames import Stats
+from edgevib.daemon.interfaces import FrameResult
+from edgevib.daemon.logs import get_logger
+
+__all__ = ["ZONE_NUMBER", "IndicatorCollector", "MetricsServer", "PrometheusSink"]
+
+ZONE_NUMBER = {"A": 1, "B": 2, "C": 3, "D": 4}
+_LABELS = ["site", "machine", "point", "axis"]
+log = get_logger("edgevib.metrics")
+
+
+class IndicatorCollector:
+    """Yields the indicator and self-metric families from the sink's snapshot (called on the HTTP thread)."""
+
+    def __init__(self, site: str, stats: Stats, latest: Mapping[str, tuple[tuple[str, ...], FrameResult]],
+                 version: str = __version__) -> None:
+        self.site = site
+        self.stats = stats
+        self.latest = latest
+        self.version = version
+
+    def describe(self) -> list[Metric]:
+        return []
+
+    def collect(self) -> Iterator[Metric]:
+        latest = list(self.latest.values())  # one C-level copy: safe against the event loop's updates
+        yield from self._indicators(latest)
+        yield from self._self_metrics()
+
+    def _indicators(self, latest: list[tuple[tuple[str, ...], FrameResult]]) -> Iterable[Metric]:
+        def gauge(name: str, doc: str, unit: str = "", extra: list[str] | None = None) -> GaugeMetricFamily:
+            return GaugeMetricFamily(name, doc, labels=_LABELS + (extra or []), unit=unit)
+
+        v_rms = gauge("edgevib_velocity_rms_meters_per_second", "Broadband velocity r.m.s. (ISO 20816 band).",
+                      "meters_per_second")
+        v_pk = gauge("edgevib_velocity_peak_meters_per_second", "Velocity peak in the ISO band.", "meters_per_second")
+        a_rms = gauge("edgevib_acceleration_rms_meters_per_second_squared", "Acceleration r.m.s.",
+                      "meters_per_second_squared")
+        a_pk = gauge("edgevib_acceleration_peak_meters_per_second_squared", "Acceleration peak (absolute).",
+                     "meters_per_second_squared")
+        crest = gauge("edgevib_crest_factor", "Acceleration crest factor (peak / r.m.s.).")
+        kurt = gauge("edgevib_kurtosis", "Acceleration kurtosis (Pearson; 3 for Gaussian noise).")
+        orders = gauge("edgevib_order_velocity_rms_meters_per_second", "Velocity r.m.s. at a shaft order.",
+                       "meters_per_second", ["order"])
+        env_amp = gauge("edgevib_envelope_amplitude_meters_per_second_squared",
+                        "Envelope-spectrum amplitude of a bearing defect family.", "meters_per_second_squared",
+                        ["family"])
+        env_snr = gauge("edgevib_envelope_snr_decibels", "Bearing defect family level over the envelope floor.",
+                        "decibels", ["family"])
+        speed = gauge("edgevib_shaft_speed_hertz", "Shaft speed used for the frame (given or estimated).", "hertz")
+        zone = gauge("edgevib_iso_zone", "ISO 20816-3 zone of velocity r.m.s. (1..4 = A..D).")
+        trend = gauge("edgevib_velocity_rms_trend_meters_per_second",
+                      "Exponentially weighted trend of velocity r.m.s.", "meters_per_second")
+        last = gauge("edgevib_last_frame_timestamp_seconds", "End time of the latest analysed frame.", "seconds")
+        for labels, r in latest:
+            lab = list(labels)
+            ind = r.indicators
+            v_rms.add_metric(lab, ind.velocity_rms_mm_s / 1000.0)
+            v_pk.add_metric(lab, ind.velocity_peak_mm_s / 1000.0)
+            a_rms.add_metric(lab, ind.acceleration_rms_g * G_M_S2)
+            a_pk.add_metric(lab, ind.acceleration_peak_g * G_M_S2)
+            crest.add_metric(lab, ind.crest_factor)
+            kurt.add_metric(lab, ind.kurtosis)
+            for order, value in ind.orders_mm_s.items():
+                if value is not None:
+                    orders.add_metric([*lab, order], value / 1000.0)
+            for family, fam in ind.envelope.items():
+                env_amp.add_metric([*lab, family], fam.amplitude_g * G_M_S2)
+                env_snr.add_metric([*lab, family], fam.snr_db)
+            if ind.shaft_hz is not None:
+                speed.add_metric(lab, ind.shaft_hz)
+            if r.iso_zone in ZONE_NUMBER:
+                zone.add_metric(lab, ZONE_NUMBER[r.iso_zone])
+            t = r.extra.get("trend", {}).get("velocity_rms_mm_s")
+            if t is not None:
+                trend.add_metric(lab, t / 1000.0)
+            last.add_metric(lab, r.t_end_ns / 1e9)
+        return [v_rms, v_pk, a_rms, a_pk, crest, kurt, orders, env_amp, env_snr, speed, zone, trend, last]
+
+    def _self_metrics(self) -> Iterable[Metric]:
+        s = self.stats
+        received = CounterMetricFamily("edgevib_blocks_received", "Blocks received per source.", labels=["source"])
+        for src, n in dict(s.blocks_received).items():
+            received.add_metric([src], n)
+        rejected = CounterMetricFamily("edgevib_blocks_rejected", "Blocks rejected per source and reason.",
+                                       labels=["source", "reason"])
+        for (src, reason), n in dict(s.blocks_rejected).items():
+            rejected.add_metric([src, reason], n)
+        analysed = CounterMetricFamily("edgevib_frames_analysed", "Frames analysed per point.", labels=["point"])
+        for p, n in dict(s.frames_analysed).items():
+            analysed.add_metric([p], n)
+        dropped = CounterMetricFamily("edgevib_frames_dropped", "Frames dropped (oldest first) when analysis was "
+                                      "behind, per point.", labels=["point"])
+        for p, n in dict(s.frames_dropped).items():
+            dropped.add_metric([p], n)
+        gaps = CounterMetricFamily("edgevib_stream_gaps", "Stream discontinuities (sequence gaps, time jumps, "
+                                   "device restarts) that restarted frame assembly, per point.", labels=["point"])
+        for p, n in dict(s.gaps).items():
+            gaps.add_metric([p], n)
+        errors = CounterMetricFamily("edgevib_analysis_errors", "Frames whose analysis failed, per point.",
+                                     labels=["point"])
+        for p, n in dict(s.analysis_errors).items():
+            errors.add_metric([p], n)
+        h = s.latency
+        latency = HistogramMetricFamily("edgevib_analysis_latency_seconds",
+                                        "Ingest-to-metric latency: last block of a frame received to its "
+                                        "indicators published.", unit="seconds")
+        latency.add_metric([], h.cumulative(), sum_value=h.sum_s)
+        connected = GaugeMetricFamily("edgevib_source_connected", "1 while the source is connected.",
+                                      labels=["source"])
+        for src, c in dict(s.connected).items():
+            connected.add_metric([src], 1.0 if c else 0.0)
+        reconnects = CounterMetricFamily("edgevib_source_reconnects", "Reconnections after a lost connection.",
+                                         labels=["source"])
+        for src, n in dict(s.reconnects).items():
+            reconnects.add_metric([src], n)
+        info = GaugeMetricFamily("edgevib_build_info", "edgevib build information.", labels=["version"])
+        info.add_metric([self.version], 1.0)
+        return [received, rejected, analysed, dropped, gaps, errors, latency, connected, reconnects, info]
+
+
+class MetricsServer:
+    """``/metrics``, ``/healthz`` and ``/readyz`` on one threaded HTTP listener (optionally TLS)."""
+
+    def __init__(self, registry: CollectorRegistry, host: str, port: int, ready: Callable[[], tuple[bool, str]],
+                 tls_cert_file: str | None = None, tls_key_file: str | None = None,
+                 tls_client_ca_file: str | None = None) -> None:
+        self.registry = registry
+        self.ready = ready
+        server = self
+
+        class Handler(BaseHTTPRequestHandler):
+            protocol_version = "HTTP/1.1"
+
+            def do_GET(self) -> None:
+                path = self.path.split("?", 1)[0]
+                try:
+                    if path == "/metrics":
+                        encoder, ctype = choose_encoder(self.headers.get("Accept", ""))
+                        self._send(200, encoder(server.registry), ctype)
+                    elif path == "/healthz":
+                        self._send(200, b"ok\n")
+                    elif path == "/readyz":
+                        ok, detail = server.ready()
+                        self._send(200 if ok else 503, (("ready" if ok else "not ready") + f": {detail}\n").encode())
+                    else:
+                        self._send(404, b"not found; try /metrics, /healthz or /readyz\n")
+                except Exception as exc:  # a failing part never kills the listener
+                    log.error("metrics request failed", path=path, error=repr(exc))
+                    with contextlib.suppress(Exception):
+                        self._send(500, b"internal error\n")
+
+            def _send(self, code: int, body: bytes, ctype: str = "text/plain; charset=utf-8") -> None:
+                self.send_response(code)
+                self.send_header("Content-Type", ctype)
+                self.send_header("Content-Length", str(len(body)))
+                self.end_headers()
+                self.wfile.write(body)
+
+            def log_message(self, format: str, *args: Any) -> None:
+                pass
+
+        class Server(ThreadingHTTPServer):
+            daemon_threads = True
+            allow_reuse_address = True
+            address_family = socket.AF_INET6 if ":" in host else socket.AF_INET
+
+        self.httpd = Server((host, port), Handler)
+        if tls_cert_file is not None:
+            ctx = ssl.SSLContext(ssl.PROTOCOL_TLS_SERVER)
+            ctx.minimum_version = ssl.TLSVersion.TLSv1_2
+            ctx.load_cert_chain(tls_cert_file, tls_key_file)
+            if tls_client_ca_file is not None:
+                ctx.verify_mode = ssl.CERT_REQUIRED
+                ctx.load_verify_locations(tls_client_ca_file)
+            self.httpd.socket = ctx.wrap_socket(self.httpd.socket, server_side=True, do_handshake_on_connect=False)
+        self.host = host
+        self.port = int(self.httpd.server_address[1])
+        self.tls = tls_cert_file is not None
+        self._thread = threading.Thread(target=self.httpd.serve_forever, kwargs={"poll_interval": 0.2},
+                                        name="edgevib-metrics", daemon=True)
+
+    @property
+    def url(self) -> str:
+        host = f"[{self.host}]" if ":" in self.host else self.host
+        return f"{'https' if self.tls else 'http'}://{host}:{self.port}/metrics"
+
+    def start(self) -> None:
+        self._thread.start()
+
+    def stop(self) -> None:
+        self.httpd.shutdown()
+        self.httpd.server_close()
+        self._thread.join(timeout=5)
+
+
+class PrometheusSink:
+    """The :class:`~edgevib.daemon.interfaces.FrameSink` behind ``/metrics`` (keeps the latest frame per point)."""
+
+    def __init__(self, *, site: str, points: Iterable[PointConfig], stats: Stats,
+                 registry: CollectorRegistry | None = None, host: str = "127.0.0.1", port: int = 9851,
+                 ready: Callable[[], tuple[bool, str]] | None = None, tls_cert_file: str | None = None,
+                 tls_key_file: str | None = None, tls_client_ca_file: str | None = None,
+                 clock_ns: Callable[[], int] = time.time_ns, serve: bool = True) -> None:
+        self.site = site
+        self.stats = stats
+        self.registry = registry if registry is not None else CollectorRegistry()
+        self.clock_ns = clock_ns
+        self.latest: dict[str, tuple[tuple[str, ...], FrameResult]] = {}
+        self._axes: dict[str, str] = {}
+        self.set_points(points)
+        self.collector = IndicatorCollector(site, stats, self.latest)
+        self._ready = ready or (lambda: (True, "no sources"))
+        self._serve = serve
+        self._server_args = (host, port, tls_cert_file, tls_key_file, tls_client_ca_file)
+        self.server: MetricsServer | None = None
+
+    def set_points(self, points: Iterable[PointConfig]) -> None:
+        """(Re)declare the configured points; removed points vanish from the exposition."""
+        self._axes = {p.id: p.axis for p in points}
+        for pid in [pid for pid in self.latest if pid not in self._axes]:
+            self.latest.pop(pid, None)
+
+    @property
+    def url(self) -> str | None:
+        return self.server.url if self.server is not None else None
+
+    async def start(self) -> None:
+        self.registry.register(self.collector)
+        if self._serve:
+            host, port, cert, key, ca = self._server_args
+            self.server = MetricsServer(self.registry, host, port, self._ready, cert, key, ca)
+            self.server.start()
+            log.info("metrics listener up", url=self.server.url)
+
+    async def on_frames(self, results: list[FrameResult]) -> None:
+        now = self.clock_ns()
+        for r in results:
+            axis = self._axes.get(r.point_id)
+            if axis is None:
+                continue
+            self.latest[r.point_id] = ((self.site, r.machine_id, r.point_id, axis), r)
+            self.stats.latency.observe((now - r.received_ns) / 1e9)
+
+    async def stop(self) -> None:
+        if self.server is not None:
+            await asyncio.to_thread(self.server.stop)
+            self.server = None
+        with contextlib.suppress(KeyError):
+            self.registry.unregister(self.collector)

@@ -1,0 +1,154 @@
+"""Configuration validation: every error names its key path and the problem; secrets never print."""
+
+from __future__ import annotations
+
+import copy
+import tomllib
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+from edgevib.daemon.config import Secret, config_to_document, dump_toml, load_config, parse_config
+from edgevib.daemon.interfaces import ConfigError
+
+
+def base() -> dict[str, Any]:
+    return {
+        "site": {"name": "quarry-lane", "state_dir": "/tmp/edgevib-test"},
+        "sources": [{"name": "broker", "type": "mqtt", "url": "mqtt://127.0.0.1:1883",
+                     "topics": ["fwb/quarry-lane/+/+/block"]}],
+        "machines": [{"id": "P-101", "group": 2, "support": "rigid", "speed_rpm": 1480.0}],
+        "points": [{"id": "P-101-DE-H", "machine": "P-101", "source": "broker", "sensor": "QL-P101-DE-H",
+                    "fs_hz": 25600.0, "block_samples": 4096,
+                    "bearing": {"elements": 9, "ball_diameter_mm": 7.94, "pitch_diameter_mm": 39.04}}],
+    }
+
+
+def error(doc: dict[str, Any], tmp_path: Path | None = None) -> ConfigError:
+    with pytest.raises(ConfigError) as info:
+        parse_config(doc, tmp_path or ".")
+    return info.value
+
+
+def test_minimal_config_fills_defaults() -> None:
+    cfg = parse_config(base())
+    p = cfg.points[0]
+    assert cfg.analysis.frame_samples == 16384 and cfg.analysis.overlap == 0.5
+    assert (cfg.metrics.host, cfg.metrics.port) == ("127.0.0.1", 9851)
+    assert p.hop_samples == 8192
+    assert p.envelope_band_hz is not None and p.envelope_band_hz[1] <= 10000.0
+    assert cfg.source("broker").qos == 1
+
+
+@pytest.mark.parametrize(("mutate", "path", "words"), [
+    (lambda d: d["points"][0].update(colour="red"), "points[0].colour", "unknown key"),
+    (lambda d: d.update(extra={}), "extra", "unknown key"),
+    (lambda d: d["site"].update(name=3), "site.name", "must be a string"),
+    (lambda d: d["points"][0].update(fs_hz="fast"), "points[0].fs_hz", "must be a number"),
+    (lambda d: d["points"][0].update(block_samples=4096.5), "points[0].block_samples", "must be an integer"),
+    (lambda d: d.update(analysis={"overlap": 1.0}), "analysis.overlap", "out of range"),
+    (lambda d: d.update(analysis={"workers": 0}), "analysis.workers", "out of range"),
+    (lambda d: d["sources"][0].update(qos=2), "sources[0].qos", "out of range"),
+    (lambda d: d["points"].append(copy.deepcopy(d["points"][0])), "points[1].id", "duplicate point id"),
+    (lambda d: d["points"][0].update(machine="P-999"), "points[0].machine", "unknown machine"),
+    (lambda d: d["points"][0].update(source="nowhere"), "points[0].source", "unknown source"),
+    (lambda d: d["sources"].append(dict(d["sources"][0])), "sources[1].name", "duplicate source"),
+    (lambda d: d["points"][0]["bearing"].update(ball_diameter_mm=40.0), "points[0].bearing",
+     "impossible bearing geometry"),
+    (lambda d: d["points"][0]["bearing"].update(elements=1), "points[0].bearing", "impossible bearing geometry"),
+    (lambda d: d["points"][0].update(envelope_band_hz=[2000.0, 13000.0]), "points[0].envelope_band_hz",
+     "Nyquist 12800"),
+    (lambda d: d["points"][0].update(envelope_band_hz=[2000.0, 11000.0]), "points[0].envelope_band_hz",
+     "usable bandwidth 10000"),
+    (lambda d: d["points"][0].update(velocity_band_hz=[10.0, 20000.0]), "points[0].velocity_band_hz", "Nyquist"),
+    (lambda d: d["points"][0].update(frame_samples=4096), "points[0].frame_samples", "too short"),
+    (lambda d: d["points"][0].update(bandwidth_hz=[100.0, 10.0]), "points[0].bandwidth_hz", "must be below"),
+    (lambda d: d["sources"][0].update(url="http://x"), "sources[0].url", "mqtt://"),
+    (lambda d: d["sources"][0].update(topics=["a/#/b"]), "sources[0].topics[0]", "invalid topic filter"),
+    (lambda d: d["sources"][0].update(sensor_from="topic:x"), "sources[0].sensor_from", "topic:N"),
+    (lambda d: d["machines"][0].update(group=3), "machines[0].group", "out of range"),
+    (lambda d: d["machines"][0].pop("support"), "machines[0].support", "both group and support"),
+    (lambda d: d["machines"][0].update(speed_tag={"source": "broker", "topic": "s"}), "machines[0].speed_tag",
+     "not both"),
+    (lambda d: d["metrics"] if d.update(metrics={"listen": "localhost"}) else None, "metrics.listen", "HOST:PORT"),
+    (lambda d: d["sources"][0].update(password="hunter2"), "sources[0].password", "password_file"),
+    (lambda d: d["sources"][0].update(password_env="EDGEVIB_TEST_UNSET_VARIABLE"), "sources[0].password_env",
+     "is not set"),
+    (lambda d: d["sources"][0].update(password_file="/nonexistent/secret"), "sources[0].password_file",
+     "does not exist"),
+    (lambda d: d["site"].update(shard={"count": 2, "index": 2}), "site.shard.index", ""),
+    (lambda d: d.update(publish={"mqtt": {"enabled": True, "topic": "a/{nope}"}}), "publish.mqtt", ""),
+    (lambda d: d["points"][0].pop("fs_hz"), "points[0].fs_hz", "required"),
+])
+def test_config_errors_name_path_and_problem(mutate: Any, path: str, words: str) -> None:
+    doc = base()
+    mutate(doc)
+    exc = error(doc)
+    assert exc.path.startswith(path), (exc.path, str(exc))
+    assert words in str(exc), str(exc)
+
+
+def test_mems_point_without_envelope_band_gets_a_note_not_an_error() -> None:
+    doc = base()
+    doc["points"][0].update(fs_hz=3200.0, block_samples=3200, sensor_type="mems", bandwidth_hz=[0.0, 1000.0])
+    doc["points"][0].pop("bearing")
+    p = parse_config(doc).points[0]
+    assert p.envelope_band_hz is None
+    assert p.envelope_note is not None and "1000 Hz" in p.envelope_note
+
+
+def test_secret_from_file_and_env_is_redacted(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    secret_file = tmp_path / "mqtt-password"
+    secret_file.write_text("s3cret-value\n")
+    monkeypatch.setenv("EDGEVIB_TEST_KEYPASS", "other-secret")
+    doc = base()
+    doc["sources"][0].update(username="edgevib", password_file=str(secret_file))
+    cfg = parse_config(doc, tmp_path)
+    conn = cfg.sources[0].connection  # type: ignore[union-attr]
+    assert isinstance(conn.password, Secret)
+    assert conn.password.reveal() == "s3cret-value"
+    text = dump_toml(config_to_document(cfg)) + repr(cfg) + str(cfg)
+    assert "s3cret-value" not in text
+    assert f"<from file {secret_file}>" in text
+    assert Secret("env", "EDGEVIB_TEST_KEYPASS").reveal() == "other-secret"
+    assert "other-secret" not in repr(Secret("env", "EDGEVIB_TEST_KEYPASS"))
+
+
+def test_shard_keeps_only_owned_points() -> None:
+    doc = base()
+    doc["points"].append(dict(copy.deepcopy(doc["points"][0]), id="P-101-DE-V", sensor="QL-P101-DE-V"))
+    doc["site"]["shard"] = {"points": ["P-101-DE-V"]}
+    cfg = parse_config(doc)
+    assert [p.id for p in cfg.points] == ["P-101-DE-V"]
+    assert cfg.skipped_points == ("P-101-DE-H",)
+
+
+def test_alarm_tables_are_accepted() -> None:
+    doc = base()
+    doc["alarms"] = {"anything": 1}
+    doc["feed"] = {"topic": "x"}
+    doc["points"][0]["limits"] = {"velocity_rms_mm_s": {"alert": 2.8}}
+    try:
+        cfg = parse_config(doc)
+    except ConfigError as exc:  # the alarm layer, when present, validates its own tables
+        assert exc.path.startswith(("alarms", "feed", "points[0].limits")), str(exc)
+        return
+    assert cfg.alarms is not None or cfg.alarm_tables["alarms"] == {"anything": 1}
+
+
+def test_resolved_config_round_trips_through_toml(tmp_path: Path) -> None:
+    cfg = load_config(Path(__file__).resolve().parents[2] / "config" / "example-plant.toml")
+    text = dump_toml(config_to_document(cfg))
+    doc = tomllib.loads(text)
+    assert doc["points"][0]["id"] == cfg.points[0].id
+    assert doc["analysis"]["frame_samples"] == cfg.analysis.frame_samples
+
+
+def test_load_config_reports_bad_toml(tmp_path: Path) -> None:
+    bad = tmp_path / "bad.toml"
+    bad.write_text("[site\nname = 1\n")
+    with pytest.raises(ConfigError, match="not valid TOML"):
+        load_config(bad)
+    with pytest.raises(ConfigError, match="cannot read"):
+        load_config(tmp_path / "missing.toml")
