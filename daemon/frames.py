@@ -83,6 +83,7 @@ class Stats:
     frames_analysed: dict[str, int] = field(default_factory=dict)
     frames_dropped: dict[str, int] = field(default_factory=dict)
     gaps: dict[str, int] = field(default_factory=dict)
+    analysis_errors: dict[str, int] = field(default_factory=dict)
     connected: dict[str, bool] = field(default_factory=dict)
     reconnects: dict[str, int] = field(default_factory=dict)
     ever_connected: set[str] = field(default_factory=set)
@@ -228,7 +229,10 @@ def build_plan(point: PointConfig, machine: MachineConfig) -> AnalysisPlan:
     if point.bearing is not None:
         b = point.bearing
         bearing = BearingGeometry(b.elements, b.ball_diameter_mm, b.pitch_diameter_mm, b.contact_angle_deg)
-    speed_range_hz = (machine.speed_range_rpm[0] / 60.0, machine.speed_range_rpm[1] / 60.0)
+    if machine.speed_rpm is not None:  # a fixed speed is given every frame: the estimate's range only brackets it
+        speed_range_hz = (0.5 * machine.speed_rpm / 60.0, 1.5 * machine.speed_rpm / 60.0)
+    else:
+        speed_range_hz = (machine.speed_range_rpm[0] / 60.0, machine.speed_range_rpm[1] / 60.0)
     kwargs: dict[str, Any] = dict(
         fs_hz=point.fs_hz, n_samples=point.frame_samples, velocity_band_hz=point.velocity_band_hz,
         envelope_band_hz=point.envelope_band_hz, bearing=bearing, orders=point.orders,
