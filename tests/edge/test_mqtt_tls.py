@@ -1,0 +1,174 @@
+"""MQTT over TLS against a mosquitto configured by the test: its own CA, a server certificate for 127.0.0.1, and
+client certificates required (`require_certificate`, `use_identity_as_username`; mosquitto.conf(5)).
+
+A client that pins the CA and presents a certificate from it connects; one without a certificate, with a
+certificate from another CA, or pinning another CA is refused.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import ssl
+import threading
+import time
+from collections.abc import Iterator
+from pathlib import Path
+
+import paho.mqtt.client as mqtt
+import pytest
+from certs import PKI, broker_pki, issue, make_ca, remove_pki
+from servers import Mosquitto, free_port
+
+pytestmark = pytest.mark.network
+
+CLIENT_CN = "edgevib-quarry-lane"
+
+
+@pytest.fixture
+def pki() -> Iterator[PKI]:
+    pki = broker_pki(client_cn=CLIENT_CN)  # readable by mosquitto after it drops root (see tests/certs.py)
+    try:
+        yield pki
+    finally:
+        remove_pki(pki)
+
+
+def tls_broker_conf(port: int, pki: PKI, acl_file: Path | None = None) -> str:
+    lines = [
+        f"listener {port} 127.0.0.1",
+        f"cafile {pki.ca_cert}",
+        f"certfile {pki.server_cert}",
+        f"keyfile {pki.server_key}",
+        "require_certificate true",
+        "use_identity_as_username true",
+        "allow_anonymous false",
+    ]
+    if acl_file is not None:
+        lines.append(f"acl_file {acl_file}")
+    return "\n".join(lines) + "\n"
+
+
+@pytest.fixture
+def tls_mosquitto(pki: PKI) -> Iterator[Mosquitto]:
+    # The certificate's common name is the MQTT user name; this ACL lets only that user use the plant's topics.
+    acl = pki.dir / "acl"
+    acl.write_text(f"user {CLIENT_CN}\ntopic readwrite fwb/quarry-lane/#\n")
+    acl.chmod(0o644)
+    port = free_port()
+    broker = Mosquitto(port=port, extra_conf=tls_broker_conf(port, pki, acl), listener=False)
+    broker.start()
+    try:
+        yield broker
+    finally:
+        broker.close()
+
+
+class Outcome:
+    def __init__(self) -> None:
+        self.connected = threading.Event()
+        self.failed = threading.Event()
+        self.detail = ""
+        self.messages: list[tuple[str, bytes]] = []
+        self.subscribed = threading.Event()
+
+
+def client(*, ca: Path | None, cert: Path | None = None, key: Path | None = None,
+           key_password: str | None = None) -> tuple[mqtt.Client, Outcome]:
+    c = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=f"edgevib-test-{time.monotonic_ns()}")
+    c.tls_set(ca_certs=str(ca) if ca else None, certfile=str(cert) if cert else None,
+              keyfile=str(key) if key else None, keyfile_password=key_password, cert_reqs=ssl.CERT_REQUIRED,
+              tls_version=ssl.PROTOCOL_TLS_CLIENT)
+    out = Outcome()
+
+    def on_connect(_c: mqtt.Client, _u: object, _f: object, reason: mqtt.ReasonCode, _p: object) -> None:
+        if reason.is_failure:
+            out.detail = str(reason)
+            out.failed.set()
+        else:
+            out.connected.set()
+
+    def on_disconnect(_c: mqtt.Client, _u: object, _f: object, reason: mqtt.ReasonCode, _p: object) -> None:
+        out.detail = out.detail or f"disconnected: {reason}"
+        out.failed.set()
+
+    c.on_connect = on_connect
+    c.on_disconnect = on_disconnect
+    c.on_subscribe = lambda *_a: out.subscribed.set()
+    c.on_message = lambda _c, _u, m: out.messages.append((m.topic, m.payload))
+    return c, out
+
+
+def attempt(c: mqtt.Client, out: Outcome, port: int, timeout_s: float = 5.0) -> bool:
+    """Connect and run the network loop until connected, refused or ``timeout_s``; True when connected."""
+    try:
+        c.connect("127.0.0.1", port, keepalive=10)
+    except (ssl.SSLError, OSError) as exc:
+        out.detail = f"{type(exc).__name__}: {exc}"
+        return False
+    deadline = time.monotonic() + timeout_s
+    try:
+        while time.monotonic() < deadline and not (out.connected.is_set() or out.failed.is_set()):
+            rc = c.loop(timeout=0.1)
+            if rc != mqtt.MQTT_ERR_SUCCESS:
+                out.detail = out.detail or f"loop: {mqtt.error_string(rc)}"
+                return False
+    except (ssl.SSLError, OSError) as exc:
+        # TLS 1.3: the server checks the client certificate after the client has finished its handshake,
+        # so the refusal arrives as an alert on the first read.
+        out.detail = f"{type(exc).__name__}: {exc}"
+        return False
+    return out.connected.is_set()
+
+
+def pump(c: mqtt.Client, until: threading.Event | None = None, timeout_s: float = 5.0) -> None:
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline and not (until is not None and until.is_set()):
+        c.loop(timeout=0.05)
+
+
+@pytest.mark.parametrize("encrypted_key", [False, True])
+def test_pinned_ca_and_client_certificate_connects(tls_mosquitto: Mosquitto, pki: PKI, tmp_path: Path,
+                                                    encrypted_key: bool) -> None:
+    cert, key, password = pki.client_cert, pki.client_key, None
+    if encrypted_key:  # a client key protected by a passphrase (key_password_file in the configuration)
+        issued = issue(pki.ca, tmp_path / "enc", "client", CLIENT_CN, client=True, key_password=b"quarry-lane-kp")
+        cert, key, password = issued.cert_path, issued.key_path, "quarry-lane-kp"
+    c, out = client(ca=pki.ca_cert, cert=cert, key=key, key_password=password)
+    try:
+        assert attempt(c, out, tls_mosquitto.port), out.detail
+        c.subscribe("fwb/quarry-lane/#", qos=1)
+        pump(c, out.subscribed)
+        c.publish("fwb/quarry-lane/P-101/P-101-DE-H/block", b"tls-block", qos=1)
+        c.publish("other/site/block", b"not for us", qos=1)  # outside the ACL of this identity: dropped
+        c.subscribe("other/#", qos=1)
+        pump(c, timeout_s=1.0)
+        c.publish("other/site/block", b"still not for us", qos=1)
+        pump(c, timeout_s=1.0)
+        # the broker knew this client by its certificate's common name: the ACL for that name let the plant topic
+        # through and nothing else
+        assert out.messages == [("fwb/quarry-lane/P-101/P-101-DE-H/block", b"tls-block")]
+    finally:
+        with contextlib.suppress(Exception):
+            c.disconnect()
+
+
+def test_client_without_certificate_is_refused(tls_mosquitto: Mosquitto, pki: PKI) -> None:
+    c, out = client(ca=pki.ca_cert)
+    assert not attempt(c, out, tls_mosquitto.port)
+    assert not out.connected.is_set()
+    assert out.detail  # the reason is visible (a TLS alert or a lost connection)
+
+
+def test_client_certificate_from_another_ca_is_refused(tls_mosquitto: Mosquitto, pki: PKI, tmp_path: Path) -> None:
+    stranger = issue(make_ca(tmp_path / "other", "Unrelated test CA"), tmp_path / "other", "client", CLIENT_CN,
+                     client=True)
+    c, out = client(ca=pki.ca_cert, cert=stranger.cert_path, key=stranger.key_path)
+    assert not attempt(c, out, tls_mosquitto.port)
+    assert not out.connected.is_set()
+
+
+def test_broker_outside_the_pinned_ca_is_refused(tls_mosquitto: Mosquitto, pki: PKI, tmp_path: Path) -> None:
+    other = make_ca(tmp_path / "pin", "Unrelated test CA")
+    c, out = client(ca=other.cert_path, cert=pki.client_cert, key=pki.client_key)
+    assert not attempt(c, out, tls_mosquitto.port)
+    assert "CERTIFICATE_VERIFY_FAILED" in out.detail or "certificate verify failed" in out.detail
