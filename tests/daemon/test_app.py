@@ -1,0 +1,209 @@
+"""The daemon end to end in-process: a scripted source → ingest → analysis workers → Prometheus exposition,
+health probes, reload keeping state, a failing sink isolated."""
+
+from __future__ import annotations
+
+import asyncio
+import urllib.error
+import urllib.request
+from typing import Any
+
+import numpy as np
+import pytest
+from prometheus_client import CollectorRegistry
+
+from edgevib.daemon.app import Daemon
+from edgevib.daemon.config import Config, parse_config
+from edgevib.daemon.interfaces import FrameResult
+from edgevib.daemon.wire import Block, encode_binary
+
+FS = 25600.0
+BLOCK = 4096
+T0 = 1_764_633_600_000_000_000
+
+
+def config(**analysis: Any) -> Config:
+    doc = {
+        "site": {"name": "quarry-lane"},
+        "analysis": dict({"frame_samples": 16384, "overlap": 0.5, "queue_frames": 4, "workers": 1}, **analysis),
+        "sources": [{"name": "scripted", "type": "mqtt", "url": "mqtt://127.0.0.1:1", "topics": ["x/#"]}],
+        "machines": [{"id": "P-101", "group": 2, "support": "rigid", "speed_rpm": 1500.0},
+                     {"id": "F-201", "speed_range_rpm": [300.0, 1800.0]}],
+        "points": [
+            {"id": "P-101-DE-H", "machine": "P-101", "axis": "horizontal", "source": "scripted",
+             "sensor": "QL-P101-DE-H", "fs_hz": FS, "block_samples": BLOCK,
+             "bearing": {"elements": 9, "ball_diameter_mm": 7.94, "pitch_diameter_mm": 39.04}},
+            {"id": "P-101-DE-V", "machine": "P-101", "axis": "vertical", "source": "scripted",
+             "sensor": "QL-P101-DE-V", "fs_hz": FS, "block_samples": BLOCK,
+             "bearing": {"elements": 9, "ball_diameter_mm": 7.94, "pitch_diameter_mm": 39.04}},
+            {"id": "F-201-NDE-V", "machine": "F-201", "axis": "vertical", "source": "scripted",
+             "sensor": "QL-F201-NDE-V", "fs_hz": 3200.0, "block_samples": 3200, "sensor_type": "mems",
+             "bandwidth_hz": [0.0, 1000.0]},
+        ],
+    }
+    return parse_config(doc)
+
+
+def sine_block(sensor: str, seq: int, amp_g: float, f_hz: float, fs: float = FS, n: int = BLOCK) -> Block:
+    t = (seq * n + np.arange(n)) / fs
+    return Block(sensor, seq, T0 + round(seq * n * 1e9 / fs), fs, "g", amp_g * np.sin(2 * np.pi * f_hz * t))
+
+
+class ScriptedSource:
+    """A source the test drives by hand (connected on demand)."""
+
+    def __init__(self, name: str = "scripted") -> None:
+        self.name = name
+        self.ingest: Any = None
+        self._connected = False
+        self._stop = asyncio.Event()
+
+    @property
+    def connected(self) -> bool:
+        return self._connected
+
+    def connect(self) -> None:
+        self._connected = True
+        self.ingest.connection(self.name, True)
+
+    async def run(self) -> None:
+        await self._stop.wait()
+
+    async def stop(self) -> None:
+        self._stop.set()
+
+
+class Probe:
+    def __init__(self) -> None:
+        self.results: list[FrameResult] = []
+        self.event = asyncio.Event()
+
+    async def start(self) -> None: ...
+
+    async def on_frames(self, results: list[FrameResult]) -> None:
+        self.results.extend(results)
+        self.event.set()
+
+    async def stop(self) -> None: ...
+
+
+class Broken(Probe):
+    async def on_frames(self, results: list[FrameResult]) -> None:
+        raise RuntimeError("sink exploded")
+
+
+def get(url: str) -> tuple[int, str]:
+    try:
+        with urllib.request.urlopen(url, timeout=5) as r:
+            return r.status, r.read().decode()
+    except urllib.error.HTTPError as e:
+        return e.code, e.read().decode()
+
+
+async def wait_for(pred: Any, timeout_s: float = 20.0) -> None:
+    async with asyncio.timeout(timeout_s):
+        while not pred():
+            await asyncio.sleep(0.02)
+
+
+async def start_daemon(cfg: Config) -> tuple[Daemon, ScriptedSource, Probe, CollectorRegistry]:
+    src = ScriptedSource()
+    registry = CollectorRegistry()
+    d = Daemon(cfg, registry=registry, metrics_listen=("127.0.0.1", 0), sources=[src])
+    src.ingest = d.ingest
+    d.add_sink(Broken())
+    probe = Probe()
+    d.add_sink(probe)
+    await d.start()
+    return d, src, probe, registry
+
+
+async def test_sine_to_metrics_and_probes() -> None:
+    d, src, probe, registry = await start_daemon(config())
+    try:
+        url = d.metrics.url
+        assert url is not None
+        base = url.rsplit("/", 1)[0]
+        assert (await asyncio.to_thread(get, base + "/healthz"))[0] == 200
+        code, text = await asyncio.to_thread(get, base + "/readyz")
+        assert code == 503 and "scripted" in text
+        src.connect()
+        assert (await asyncio.to_thread(get, base + "/readyz"))[0] == 200
+        for seq in range(8):
+            d.ingest.block("scripted", sine_block("QL-P101-DE-H", seq, 1.0, 50.0), 0)
+            d.ingest.payload("scripted", None, encode_binary(sine_block("QL-P101-DE-V", seq, 0.5, 50.0)), 0)
+        for seq in range(6):
+            d.ingest.block("scripted", sine_block("QL-F201-NDE-V", seq, 0.2, 40.0, fs=3200.0, n=3200), 0)
+        await wait_for(lambda: len(d.latest) == 3 and d.stats.frames_analysed["P-101-DE-H"] >= 3)
+        labels = {"site": "quarry-lane", "machine": "P-101", "point": "P-101-DE-H", "axis": "horizontal"}
+        v = registry.get_sample_value("edgevib_velocity_rms_meters_per_second", labels)
+        # FIELD_NOTES §5: 1 g peak at 50 Hz → 31.22 mm/s peak = 22.07 mm/s r.m.s. (a/(2πf), gₙ = 9.80665 m/s²)
+        assert v == pytest.approx(22.07e-3, rel=0.02)
+        a = registry.get_sample_value("edgevib_acceleration_rms_meters_per_second_squared", labels)
+        assert a == pytest.approx(9.80665 / np.sqrt(2), rel=0.01)  # r.m.s. of a sine = peak/√2
+        crest = registry.get_sample_value("edgevib_crest_factor", labels)
+        assert crest == pytest.approx(np.sqrt(2), rel=0.01)  # FIELD_NOTES §4: sine crest factor √2
+        # 22 mm/s on a group 2 rigid machine is zone D (C/D at 4.5 mm/s, ISO 20816-3)
+        assert registry.get_sample_value("edgevib_iso_zone", labels) == 4
+        assert registry.get_sample_value("edgevib_shaft_speed_hertz", labels) == pytest.approx(25.0)
+        v2 = registry.get_sample_value("edgevib_velocity_rms_meters_per_second", dict(labels, point="P-101-DE-V",
+                                                                                         axis="vertical"))
+        assert v2 == pytest.approx(v / 2, rel=0.01)
+        # the MEMS point: no envelope series at all
+        code, text = await asyncio.to_thread(get, url)
+        assert code == 200
+        assert 'edgevib_velocity_rms_meters_per_second{axis="vertical",machine="F-201"' in text
+        assert 'edgevib_envelope_amplitude_meters_per_second_squared{axis="vertical",machine="F-201"' not in text
+        assert 'edgevib_build_info{version=' in text
+        assert registry.get_sample_value("edgevib_blocks_received_total", {"source": "scripted"}) == 22
+        assert registry.get_sample_value("edgevib_source_connected", {"source": "scripted"}) == 1
+        assert registry.get_sample_value("edgevib_analysis_latency_seconds_count") >= 3
+        assert probe.results and all(r.samples.shape == (16384,) for r in probe.results)
+        # the broken sink did not stop the probe after it
+        assert {r.point_id for r in probe.results} == {"P-101-DE-H", "P-101-DE-V", "F-201-NDE-V"}
+    finally:
+        await d.stop()
+
+
+async def test_reload_keeps_untouched_points_state() -> None:
+    cfg = config()
+    d, src, _probe, _registry = await start_daemon(cfg)
+    try:
+        src.connect()
+        for seq in range(3):
+            d.ingest.block("scripted", sine_block("QL-P101-DE-H", seq, 1.0, 50.0), 0)
+            d.ingest.block("scripted", sine_block("QL-P101-DE-V", seq, 1.0, 50.0), 0)
+        kept = d.ingest.streams["P-101-DE-H"]
+        import dataclasses
+
+        changed = dataclasses.replace(cfg.points[1], velocity_band_hz=(20.0, 1000.0))
+        new = dataclasses.replace(cfg, points=(cfg.points[0], changed))  # F-201 point removed, DE-V changed
+        await d.reload(new)
+        assert d.ingest.streams["P-101-DE-H"] is kept and kept.buffered_samples == 3 * BLOCK
+        assert d.ingest.streams["P-101-DE-V"].buffered_samples == 0
+        assert "F-201-NDE-V" not in d.points
+        d.ingest.block("scripted", sine_block("QL-P101-DE-H", 3, 1.0, 50.0), 0)
+        await wait_for(lambda: d.stats.frames_analysed["P-101-DE-H"] >= 1)
+    finally:
+        await d.stop()
+
+
+async def test_analysis_error_is_counted_not_fatal() -> None:
+    cfg = config()
+    src = ScriptedSource()
+
+    def boom(x: Any, plan: Any, shaft: Any) -> Any:
+        raise ValueError("numerical trouble")
+
+    d = Daemon(cfg, registry=CollectorRegistry(), serve_metrics=False, sources=[src], analyze=boom)
+    src.ingest = d.ingest
+    await d.start()
+    try:
+        for seq in range(4):
+            d.ingest.block("scripted", sine_block("QL-P101-DE-H", seq, 1.0, 50.0), 0)
+        await wait_for(lambda: d.stats.analysis_errors.get("P-101-DE-H", 0) >= 1)
+        for seq in range(4, 6):
+            d.ingest.block("scripted", sine_block("QL-P101-DE-H", seq, 1.0, 50.0), 0)
+        await wait_for(lambda: d.stats.analysis_errors.get("P-101-DE-H", 0) >= 2)
+    finally:
+        await d.stop()
