@@ -444,7 +444,10 @@ def make_source(cfg: Any, config: Config, ingest: BlockIngest) -> Source:
     if isinstance(cfg, SimulatedSourceConfig):
         from edgevib.daemon.sources.simulated import SimulatedSource
 
-        return SimulatedSource(name=cfg.name, ingest=ingest, scenario=cfg.scenario, seed=cfg.seed, rate=cfg.rate)
+        tags = {m.speed_tag.tag: (m.id, m.speed_tag.unit) for m in config.machines
+                if m.speed_tag is not None and m.speed_tag.source == cfg.name}
+        return SimulatedSource(name=cfg.name, ingest=ingest, scenario=cfg.scenario, seed=cfg.seed, rate=cfg.rate,
+                               speed_tags=tags)
     if isinstance(cfg, OpcUaSourceConfig):
         cls = _optional_attr("edgevib.daemon.sources.opcua", "OpcUaSource")
         spec_cls = _optional_attr("edgevib.daemon.sources.opcua", "NodeSpec")

@@ -596,12 +596,10 @@ def _parse_speed_tag(t: _Table, sources: dict[str, SourceConfig]) -> SpeedTag:
         raise ConfigError(t.key("source"), f"unknown source {source!r} (configured: {', '.join(sources) or 'none'})")
     kind = sources[source].type
     topic, node = t.str("topic", None), t.str("node", None)
-    if kind == "mqtt" and topic is None:
-        raise ConfigError(t.key("topic"), f"source {source!r} is MQTT: the speed tag needs a topic")
+    if kind != "opcua" and topic is None:
+        raise ConfigError(t.key("topic"), f"source {source!r} is {kind}: the speed tag needs a topic")
     if kind == "opcua" and node is None:
         raise ConfigError(t.key("node"), f"source {source!r} is OPC UA: the speed tag needs a node")
-    if kind == "simulated":
-        topic = topic or ""
     tag = SpeedTag(source=source, topic=topic if kind != "opcua" else None, node=node if kind == "opcua" else None,
                    unit=t.str("unit", "rpm", choices=("rpm", "hz")),
                    max_age_s=t.float("max_age_s", 60.0, lo=0.1, hi=86400.0))
@@ -1008,7 +1006,10 @@ def config_to_document(cfg: Config) -> dict[str, Any]:
         return v
 
     doc = conv(cfg)
-    doc.pop("alarms", None)
+    for key in ("alarms", "base_dir", "digest"):
+        doc.pop(key, None)
+    if not doc.get("skipped_points"):
+        doc.pop("skipped_points", None)
     for k, v in dict(doc.pop("alarm_tables", {})).items():
         doc[k] = v
     if cfg.alarms is not None:

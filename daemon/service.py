@@ -1,0 +1,300 @@
+"""The ``edgevib run``, ``edgevib demo`` and ``edgevib check-config`` subcommands.
+
+``run`` loads and validates the configuration, sets up logging and runs the daemon until SIGINT/SIGTERM (exit 0
+within a bounded time); SIGHUP reloads the configuration (an invalid file is rejected with a logged reason and the
+running configuration stays).  Under systemd (``$NOTIFY_SOCKET``) it reports READY/STATUS/STOPPING and pings the
+watchdog from the event loop.
+
+``demo`` runs the daemon on the simulator's ``demo`` scenario in-process (no broker, no configuration file),
+serves metrics on loopback and shows a live table refreshed every second (plain lines when stdout is not a
+terminal).  edgevib monitors and advises; it is not a machinery protection system.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import contextlib
+import dataclasses
+import signal
+import sys
+import time
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any, TextIO
+
+from edgevib.daemon.config import Config, config_to_document, dump_toml, load_config, parse_config, parse_listen
+from edgevib.daemon.interfaces import ConfigError, FrameResult
+from edgevib.daemon.logs import configure_logging, get_logger
+
+__all__ = [
+    "configure_check_config",
+    "configure_demo",
+    "configure_run",
+    "demo_config",
+    "render_table",
+    "run_check_config",
+    "run_demo",
+    "run_run",
+]
+
+log = get_logger("edgevib.service")
+STOP_TIMEOUT_S = 10.0
+
+
+def _listen_arg(value: str) -> tuple[str, int]:
+    try:
+        return parse_listen(value, "--metrics-listen")
+    except ConfigError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+
+
+# ---------------------------------------------------------------------------------------------- check-config
+
+
+def configure_check_config(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("file", type=Path, help="configuration file (TOML)")
+
+
+def run_check_config(args: argparse.Namespace) -> int:
+    try:
+        cfg = load_config(args.file)
+    except ConfigError as exc:
+        print(f"edgevib check-config: {args.file}: {exc}", file=sys.stderr)
+        return 2
+    print(f"# {args.file}: valid (sha256 {cfg.digest}); resolved configuration, defaults filled in, secrets "
+          "redacted")
+    for p in cfg.points:
+        if p.envelope_note:
+            print(f"# warning: point {p.id}: {p.envelope_note}")
+    if cfg.skipped_points:
+        print(f"# shard: {len(cfg.skipped_points)} point(s) belong to other instances: "
+              f"{', '.join(cfg.skipped_points)}")
+    print(dump_toml(config_to_document(cfg)), end="")
+    return 0
+
+
+# ---------------------------------------------------------------------------------------------- run
+
+
+def configure_run(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--config", "-c", type=Path, required=True, help="configuration file (TOML)")
+    parser.add_argument("--metrics-listen", type=_listen_arg, metavar="HOST:PORT",
+                        help="override [metrics] listen (default 127.0.0.1:9851)")
+    parser.add_argument("--state-dir", type=Path, help="override [site] state_dir")
+    parser.add_argument("--log-level", choices=("debug", "info", "warning", "error"),
+                        help="override [logging] level")
+
+
+def _apply_overrides(cfg: Config, args: argparse.Namespace) -> Config:
+    if getattr(args, "state_dir", None) is not None:
+        cfg = dataclasses.replace(cfg, site=dataclasses.replace(cfg.site, state_dir=str(args.state_dir.resolve())))
+    if getattr(args, "log_level", None) is not None:
+        cfg = dataclasses.replace(cfg, logging=dataclasses.replace(cfg.logging, level=args.log_level))
+    return cfg
+
+
+def run_run(args: argparse.Namespace) -> int:
+    try:
+        cfg = _apply_overrides(load_config(args.config), args)
+    except ConfigError as exc:
+        print(f"edgevib run: {args.config}: {exc}", file=sys.stderr)
+        return 2
+    configure_logging(cfg.logging.level, cfg.logging.format)
+    try:
+        return asyncio.run(serve(cfg, config_path=args.config, metrics_listen=args.metrics_listen, args=args))
+    except ConfigError as exc:
+        print(f"edgevib run: {args.config}: {exc}", file=sys.stderr)
+        return 2
+
+
+def _notifier() -> Any:
+    try:
+        from edgevib.daemon import systemd
+    except ImportError:
+        return None, None
+    return systemd.Notifier.from_env(), systemd
+
+
+async def serve(cfg: Config, *, config_path: Path | None = None, metrics_listen: tuple[str, int] | None = None,
+                args: argparse.Namespace | None = None, stop: asyncio.Event | None = None,
+                on_started: Callable[[Any], None] | None = None, **daemon_kwargs: Any) -> int:
+    """Run the daemon until ``stop`` or SIGINT/SIGTERM; SIGHUP reloads ``config_path``.  Returns the exit code."""
+    from edgevib.daemon.app import Daemon
+
+    loop = asyncio.get_running_loop()
+    stop = stop or asyncio.Event()
+    daemon = Daemon(cfg, metrics_listen=metrics_listen, **daemon_kwargs)
+    notifier, systemd = _notifier()
+    tasks: list[asyncio.Task[Any]] = []
+
+    def status() -> str:
+        _ok, detail = daemon.readiness()
+        return f"{len(daemon.points)} points, {sum(daemon.stats.frames_analysed.values())} frames; {detail}"
+
+    async def reload() -> None:
+        if config_path is None:
+            return
+        if notifier is not None:
+            notifier.reloading("reloading configuration")
+        try:
+            new = await asyncio.to_thread(load_config, config_path)
+            if args is not None:
+                new = _apply_overrides(new, args)
+            await daemon.reload(new)
+        except ConfigError as exc:
+            log.error("configuration reload rejected; the running configuration stays", path=str(config_path),
+                      error=str(exc))
+        except Exception as exc:
+            log.error("configuration reload failed; the running configuration stays", error=repr(exc))
+        if notifier is not None:
+            notifier.ready(status())
+
+    installed: list[int] = []
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        with contextlib.suppress(NotImplementedError, RuntimeError, ValueError):
+            loop.add_signal_handler(sig, stop.set)
+            installed.append(sig)
+    with contextlib.suppress(NotImplementedError, RuntimeError, ValueError):
+        loop.add_signal_handler(signal.SIGHUP, lambda: tasks.append(loop.create_task(reload())))
+        installed.append(signal.SIGHUP)
+    try:
+        try:
+            await daemon.start()
+        except OSError as exc:
+            log.error("daemon cannot start", error=str(exc))
+            print(f"edgevib: cannot start: {exc}", file=sys.stderr)
+            return 1
+        if notifier is not None:
+            notifier.ready(status())
+            interval = systemd.watchdog_interval_s()
+            tasks.append(loop.create_task(systemd.watchdog_loop(notifier, interval)))
+
+            async def status_loop() -> None:
+                while True:
+                    await asyncio.sleep(10.0)
+                    notifier.status(status())
+
+            tasks.append(loop.create_task(status_loop()))
+        if on_started is not None:
+            on_started(daemon)
+        await stop.wait()
+        log.info("stopping")
+        if notifier is not None:
+            notifier.stopping("stopping")
+        await daemon.stop(timeout_s=STOP_TIMEOUT_S)
+        return 0
+    finally:
+        for t in tasks:
+            t.cancel()
+        await asyncio.gather(*tasks, return_exceptions=True)
+        for sig in installed:
+            with contextlib.suppress(Exception):
+                loop.remove_signal_handler(sig)
+        if notifier is not None:
+            with contextlib.suppress(Exception):
+                notifier.close()
+
+
+# ---------------------------------------------------------------------------------------------- demo
+
+
+def configure_demo(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--duration", type=float, metavar="S", help="stop after S seconds (default: until Ctrl-C)")
+    parser.add_argument("--metrics-listen", type=_listen_arg, metavar="HOST:PORT", default=("127.0.0.1", 9851),
+                        help="metrics listener (default 127.0.0.1:9851; port 0 picks a free one)")
+    parser.add_argument("--rate", type=float, default=1.0, help="simulation speed relative to real time")
+    parser.add_argument("--seed", type=int, default=0, help="simulator seed")
+
+
+def demo_config(rate: float = 1.0, seed: int = 0, scenario: str = "demo") -> Config:
+    """The daemon configuration of the simulator's demo scenario, fed in-process."""
+    from edgevib.simulator.engine import Simulation, load_scenario
+
+    sim = Simulation(load_scenario(scenario), seed=seed)
+    doc = sim.daemon_config(source={"name": "simulator", "type": "simulated", "scenario": scenario, "seed": seed,
+                                    "rate": rate})
+    return parse_config(doc, ".")
+
+
+def _leading_family(r: FrameResult) -> str:
+    env = r.indicators.envelope
+    if not env:
+        return "-" if r.indicators.envelope_band_hz is not None else "n/a"
+    fam, res = max(env.items(), key=lambda kv: kv[1].snr_db)
+    return f"{fam} {res.snr_db:.0f} dB"
+
+
+def render_table(cfg: Config, latest: dict[str, FrameResult], state_text: Callable[[str], str | None],
+                 tty: bool) -> str:
+    """The demo's table (a tty) or one plain line per point (a pipe)."""
+    rows = []
+    for p in cfg.points:
+        r = latest.get(p.id)
+        state = state_text(p.id) or "-"
+        if r is None:
+            rows.append((p.id, p.sensor_type, "…", "…", "…", "…", "…", state))
+            continue
+        ind = r.indicators
+        speed = f"{ind.shaft_hz * 60:.0f} rpm{'~' if ind.shaft_estimated else ''}" if ind.shaft_hz else "unknown"
+        vel = f"{ind.velocity_rms_mm_s:.2f} {r.iso_zone or ''}".strip()
+        rows.append((p.id, p.sensor_type, speed, vel, f"{ind.crest_factor:.2f}", f"{ind.kurtosis:.2f}",
+                     _leading_family(r), state))
+    if not tty:
+        stamp = time.strftime("%H:%M:%S")
+        return "\n".join(f"{stamp} point={r[0]} sensor={r[1]} speed={r[2].replace(' ', '')} velocity_mm_s={r[3]} "
+                         f"crest={r[4]} kurtosis={r[5]} envelope={r[6].replace(' ', '')} alarm={r[7]}"
+                         for r in rows)
+    head = ("point", "sensor", "speed", "velocity mm/s", "crest", "kurtosis", "envelope", "alarm")
+    widths = [max(len(str(x)) for x in col) for col in zip(head, *rows, strict=True)]
+    line = "  ".join(h.ljust(w) for h, w in zip(head, widths, strict=True))
+    out = [line, "  ".join("-" * w for w in widths)]
+    out += ["  ".join(str(c).ljust(w) for c, w in zip(r, widths, strict=True)) for r in rows]
+    return "\n".join(out)
+
+
+def run_demo(args: argparse.Namespace) -> int:
+    configure_logging("warning", "auto", stream=sys.stderr)
+    try:
+        cfg = demo_config(rate=args.rate, seed=args.seed)
+    except ConfigError as exc:
+        print(f"edgevib demo: {exc}", file=sys.stderr)
+        return 2
+    return asyncio.run(_demo(cfg, args.metrics_listen, args.duration, sys.stdout))
+
+
+async def _demo(cfg: Config, listen: tuple[str, int], duration_s: float | None, out: TextIO) -> int:
+    stop = asyncio.Event()
+    tty = out.isatty()
+    shown: dict[str, int] = {}
+
+    def started(daemon: Any) -> None:
+        print(f"edgevib demo: simulated pump station '{cfg.site.name}', {len(cfg.points)} points; "
+              f"metrics at {daemon.metrics.url}  (Ctrl-C stops)", file=out, flush=True)
+        print("edgevib monitors and advises; it is not a machinery protection system.", file=out, flush=True)
+        asyncio.get_running_loop().create_task(table(daemon))
+
+    async def table(daemon: Any) -> None:
+        t_end = None if duration_s is None else time.monotonic() + duration_s
+        with contextlib.suppress(asyncio.CancelledError):
+            while not stop.is_set():
+                if t_end is not None and time.monotonic() >= t_end:
+                    stop.set()
+                    break
+                if tty:
+                    out.write("\x1b[H\x1b[J" + render_table(cfg, daemon.latest, daemon.state_text, True) + "\n")
+                    out.flush()
+                else:
+                    fresh = {pid: r for pid, r in daemon.latest.items() if shown.get(pid) != r.t_end_ns}
+                    if fresh:
+                        sub = dataclasses.replace(cfg, points=tuple(p for p in cfg.points if p.id in fresh))
+                        print(render_table(sub, daemon.latest, daemon.state_text, False), file=out, flush=True)
+                        shown.update({pid: r.t_end_ns for pid, r in fresh.items()})
+                with contextlib.suppress(TimeoutError):
+                    await asyncio.wait_for(stop.wait(), 1.0)
+
+    try:
+        return await serve(cfg, metrics_listen=listen, stop=stop, on_started=started)
+    finally:
+        if tty:
+            out.write("\n")
