@@ -1,0 +1,145 @@
+"""Persisted alarm state: each limit's state machine, latches and shelves, sensor faults and learned baselines.
+
+Rows are JSON bodies in the outbox's database (see :mod:`edgevib.daemon.alarms.outbox`), versioned by the
+``schema_version`` table.  Decoding is tolerant both ways: a field an older edgevib did not write takes its
+default, a field a newer one added is ignored — so a newer version reads an older one's state.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import sqlite3
+import time
+from dataclasses import asdict, dataclass, fields, replace
+from typing import Any
+
+from edgevib.daemon.alarms.outbox import Database
+from edgevib.pipelines.alarm import AlarmState, LevelTrack
+
+__all__ = ["Baseline", "SensorState", "StateStore", "decode_alarm", "encode_alarm"]
+
+
+@dataclass(frozen=True, slots=True)
+class Baseline:
+    """Running mean and spread of one indicator (Welford's algorithm) during its learning period."""
+
+    n: int = 0
+    mean: float = 0.0
+    m2: float = 0.0
+    started_s: float | None = None
+    learned_s: float | None = None
+
+    @property
+    def learned(self) -> bool:
+        return self.learned_s is not None
+
+    @property
+    def std(self) -> float:
+        return math.sqrt(self.m2 / (self.n - 1)) if self.n > 1 else 0.0
+
+    def add(self, value: float, now_s: float, frames_needed: int) -> Baseline:
+        """One more value; the baseline becomes learned at ``frames_needed`` values.  Learned baselines stay."""
+        if self.learned or not math.isfinite(value):
+            return self
+        n = self.n + 1
+        delta = value - self.mean
+        mean = self.mean + delta / n
+        m2 = self.m2 + delta * (value - mean)
+        return Baseline(n=n, mean=mean, m2=m2, started_s=self.started_s if self.started_s is not None else now_s,
+                        learned_s=now_s if n >= frames_needed else None)
+
+
+@dataclass(frozen=True, slots=True)
+class SensorState:
+    """Sensor health of one point as the daemon tracks it."""
+
+    fault: str | None = None
+    detail: str = ""
+    since_s: float | None = None
+    healthy_run: int = 0
+    last_frame_s: float | None = None
+
+
+def _dc_from(cls: Any, d: dict[str, Any]) -> Any:
+    names = {f.name for f in fields(cls)}
+    return cls(**{k: v for k, v in d.items() if k in names})
+
+
+def encode_alarm(s: AlarmState) -> str:
+    return json.dumps(asdict(s), separators=(",", ":"), allow_nan=False)
+
+
+def decode_alarm(body: str) -> AlarmState:
+    d = json.loads(body)
+    if not isinstance(d, dict):
+        raise ValueError("alarm state body is not an object")
+    for level in ("alert", "danger"):
+        if isinstance(d.get(level), dict):
+            d[level] = _dc_from(LevelTrack, d[level])
+        else:
+            d.pop(level, None)
+    return _dc_from(AlarmState, d)  # type: ignore[no-any-return]
+
+
+class StateStore:
+    """Reads and writes alarm, sensor and baseline state; writes join the caller's transaction when given."""
+
+    def __init__(self, db: Database) -> None:
+        self.db = db
+
+    def _rows(self, sql: str) -> list[tuple[Any, ...]]:
+        with self.db.lock:
+            return list(self.db.conn.execute(sql))
+
+    def load_alarms(self) -> dict[tuple[str, str], AlarmState]:
+        out: dict[tuple[str, str], AlarmState] = {}
+        for point, indicator, body in self._rows("SELECT point, indicator, body FROM alarm_state"):
+            try:
+                out[(point, indicator)] = decode_alarm(body)
+            except (ValueError, TypeError):
+                continue  # an unreadable row restarts that limit from normal
+        return out
+
+    def load_sensors(self) -> dict[str, SensorState]:
+        out: dict[str, SensorState] = {}
+        for point, body in self._rows("SELECT point, body FROM sensor_state"):
+            try:
+                out[point] = _dc_from(SensorState, json.loads(body))
+            except (ValueError, TypeError):
+                continue
+        return out
+
+    def load_baselines(self) -> dict[tuple[str, str], Baseline]:
+        out: dict[tuple[str, str], Baseline] = {}
+        for point, indicator, body in self._rows("SELECT point, indicator, body FROM baselines"):
+            try:
+                out[(point, indicator)] = _dc_from(Baseline, json.loads(body))
+            except (ValueError, TypeError):
+                continue
+        return out
+
+    def save(self, conn: sqlite3.Connection, alarms: dict[tuple[str, str], AlarmState] | None = None,
+             sensors: dict[str, SensorState] | None = None,
+             baselines: dict[tuple[str, str], Baseline] | None = None) -> None:
+        """Upsert the given states inside the caller's open transaction ``conn``."""
+        now = time.time_ns()
+        if alarms:
+            conn.executemany("INSERT OR REPLACE INTO alarm_state (point, indicator, body, updated_ns) VALUES "
+                             "(?,?,?,?)", [(p, i, encode_alarm(s), now) for (p, i), s in alarms.items()])
+        if sensors:
+            conn.executemany("INSERT OR REPLACE INTO sensor_state (point, body, updated_ns) VALUES (?,?,?)",
+                             [(p, json.dumps(asdict(s), allow_nan=False), now) for p, s in sensors.items()])
+        if baselines:
+            conn.executemany("INSERT OR REPLACE INTO baselines (point, indicator, body, updated_ns) VALUES "
+                             "(?,?,?,?)", [(p, i, json.dumps(asdict(b), allow_nan=False), now)
+                                           for (p, i), b in baselines.items()])
+
+    def forget_baselines(self, conn: sqlite3.Connection, point: str) -> None:
+        conn.execute("DELETE FROM baselines WHERE point = ?", (point,))
+
+
+def restart_tracking(s: AlarmState) -> AlarmState:
+    """After a restart, keep what the operator sees (severity, acknowledgement, latch, shelf) and restart the
+    debounce runs: frames before the gap do not count toward a pending delay."""
+    return replace(s, alert=LevelTrack(active=s.alert.active), danger=LevelTrack(active=s.danger.active))
