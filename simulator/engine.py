@@ -1,0 +1,823 @@
+"""The simulation: blocks of accelerometer samples for every point of a scenario, and their analytic truth.
+
+Signal of one point (acceleration in g, sample n at t = n/fs since the start)::
+
+    physical  = tonal lines (residual 1×/2×, imbalance, misalignment, looseness, cage, gear mesh)
+              + bearing impact trains (each impact a decaying structural resonance)
+              + process noise (white, coloured by the structure, ∝ speed)
+    sensor    = FIR(physical + sensor noise)   (piezo: mounted-resonance rise; MEMS: Butterworth band limit)
+              + DC (MEMS gravity) → sensor faults → range clipping → ADC quantization
+
+Every random draw is keyed by (seed, point or machine, stream, chunk index), and shaft phases come from the
+closed-form integral of the speed, so a block depends only on (seed, point, block index): output is
+deterministic and independent of how ``blocks_until`` calls are spaced.
+
+The truth is computed from the model parameters alone: line spectra of the tonal components and of the
+impact trains (with their jitter, amplitude spread, modulation sidebands and aliasing), noise PSDs integrated
+analytically over frequency, all through the exact magnitude response of the sensor's FIR.
+
+Tonal amplitudes are specified as velocity r.m.s. on a gain-1 axis at the machine's reference speed; velocity
+scales with speed (acceleration with speed²), impact amplitudes with speed², process noise with speed.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+import time
+import zlib
+from collections import OrderedDict
+from collections.abc import Mapping
+from dataclasses import dataclass
+from fractions import Fraction
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+
+from edgevib.daemon.wire import Block
+from edgevib.simulator import models as M
+from edgevib.simulator.scenario import (
+    BEARING_FAULTS,
+    FaultSpec,
+    MachineSpec,
+    PointSpec,
+    Scenario,
+    ScenarioError,
+    builtin_scenarios,
+)
+from edgevib.simulator.scenario import load_scenario as _load_scenario
+
+__all__ = [
+    "Scenario",
+    "ScenarioError",
+    "Simulation",
+    "list_scenarios",
+    "load_scenario",
+    "to_toml",
+]
+
+F64 = npt.NDArray[np.float64]
+_CHUNK = 4096             # white-noise chunk length (samples)
+_IMPACT_CHUNK = 512       # impacts per jitter chunk
+_STREAM_PROCESS, _STREAM_SENSOR, _STREAM_DROP, _STREAM_SPIKES, _STREAM_CABLE = 1, 2, 3, 4, 5
+_AXIS_PHASE = {"horizontal": 0.0, "vertical": -math.pi / 2, "radial": -math.pi / 4}
+
+
+def list_scenarios() -> dict[str, str]:
+    """Packaged scenario name → its one-line description."""
+    return {name: load_scenario(name).description for name in builtin_scenarios()}
+
+
+def load_scenario(name_or_path: str | Path) -> Scenario:
+    """A built-in scenario by name or a scenario TOML file by path (raises :class:`ScenarioError`)."""
+    return _load_scenario(name_or_path)
+
+
+def _key(text: str) -> int:
+    return zlib.crc32(text.encode("utf-8"))
+
+
+def _v_to_a_peak_g(velocity_mm_s: float, freq_hz: float) -> float:
+    """Acceleration peak (g) of a sine with velocity r.m.s. ``velocity_mm_s`` at ``freq_hz`` (FIELD_NOTES §5)."""
+    return math.sqrt(2) * velocity_mm_s * 1e-3 * 2 * math.pi * freq_hz / M.G0_M_S2
+
+
+# --------------------------------------------------------------------------------------------- point model
+
+
+@dataclass
+class _Impacts:
+    fault: FaultSpec
+    key: tuple[int, int]          # (machine key, fault index): impacts shared by the machine's points
+    order: float                  # impacts per revolution, slip included
+    mod_order: float              # modulation frequency in shaft orders (0: none)
+    modulation: float
+    mod_phase: float
+    jitter: float
+    spread: float
+    amp_g: float                  # peak per impact at reference speed, axis gain included
+    response: M.ImpactResponse
+
+
+class _PointModel:
+    def __init__(self, sim: Simulation, point: PointSpec, machine: MachineSpec) -> None:
+        self.sim = sim
+        self.p = point
+        self.m = machine
+        self.fs = point.fs_hz
+        self.key = _key(point.point_id)
+        self.mkey = _key(machine.machine_id)
+        self.f_ref = machine.reference_rpm / 60.0
+        sm = point.sensor_model
+        if point.sensor_type == "piezo":
+            self.sensor = M.piezo_response(self.fs, sm.mounted_resonance_hz, sm.mounted_q)
+        else:
+            self.sensor = M.mems_response(self.fs, sm.corner_hz, sm.filter_order)
+        self.color = M.process_coloring(self.fs, point.resonance_hz, point.resonance_damping, point.resonance_gain)
+        self.sigma_process = machine.process_noise_ug_rthz * 1e-6 * math.sqrt(self.fs / 2)
+        self.sigma_sensor = sm.noise_ug_rthz * 1e-6 * math.sqrt(self.fs / 2)
+        self.faults = [f for f in machine.faults if point.point_id in f.points]
+        self.curves = {f.index: f.progression for f in self.faults if f.progression is not None}
+        self.tones: dict[float, list[tuple[int, complex]]] = {}
+        self.impacts: list[_Impacts] = []
+        self._build_tones()
+        self._chunks: OrderedDict[tuple[int, int], F64] = OrderedDict()
+        self._tone_orders = np.array(sorted(self.tones), dtype=np.float64)
+
+    # ------------------------------------------------------------------ components
+
+    def _phase(self, fault_index: int, order: float) -> complex:
+        rng = np.random.default_rng([self.sim.seed, self.mkey, 1000 + fault_index, round(order * 1000)])
+        ph = rng.uniform(0, 2 * math.pi)
+        axis = _AXIS_PHASE.get(self.p.axis)
+        if axis is None:
+            axis = float(np.random.default_rng([self.sim.seed, self.mkey, 2000 + fault_index]).uniform(0, 2 * math.pi))
+        return complex(np.exp(1j * (ph + axis)))
+
+    def _add_tone(self, fault_index: int, order: float, a_peak_g: float, phase: complex | None = None) -> None:
+        if a_peak_g <= 0:
+            return
+        ph = self._phase(fault_index, order) if phase is None else phase
+        self.tones.setdefault(round(order, 9), []).append((fault_index, a_peak_g * ph))
+
+    def _build_tones(self) -> None:
+        fr = self.f_ref
+        axis = self.p.axis
+        from edgevib.simulator.scenario import AXIS_GAINS
+        res = self.m.residual_mm_s * AXIS_GAINS["residual"][axis]
+        self._add_tone(-1, 1.0, _v_to_a_peak_g(res, fr))
+        self._add_tone(-1, 2.0, _v_to_a_peak_g(0.3 * res, 2 * fr))
+        orders = self.p.bearing.orders() if self.p.bearing is not None else None
+        for f in self.faults:
+            g = f.axis_gain.get(axis, 1.0)
+            q = f.params
+            if f.type == "imbalance":
+                self._add_tone(f.index, 1.0, _v_to_a_peak_g(q["velocity_mm_s"] * g, fr))
+            elif f.type == "misalignment":
+                v = q["velocity_mm_s"] * g
+                self._add_tone(f.index, 2.0, _v_to_a_peak_g(v, 2 * fr))
+                self._add_tone(f.index, 1.0, _v_to_a_peak_g(q["ratio_1x"] * v, fr))
+                self._add_tone(f.index, 3.0, _v_to_a_peak_g(q["ratio_3x"] * v, 3 * fr))
+            elif f.type == "looseness":
+                for order, coeff in self._looseness(f, q["velocity_mm_s"] * g).items():
+                    self._add_tone(f.index, order, abs(coeff), coeff / abs(coeff))
+            elif f.type == "cage":
+                assert orders is not None
+                ftf = orders["ftf"] * (1 - q["slip"])
+                for h, ratio in ((1, 1.0), (2, 0.4), (3, 0.2)):
+                    self._add_tone(f.index, h * ftf, _v_to_a_peak_g(ratio * q["velocity_mm_s"] * g, h * ftf * fr))
+            elif f.type == "gear_mesh":
+                z = float(q["teeth"])
+                a = math.sqrt(2) * q["acceleration_g"] * g
+                self._add_tone(f.index, z, a)
+                for k in range(1, int(q["sidebands"]) + 1):
+                    self._add_tone(f.index, z - k, a * q["sideband_ratio"] ** k)
+                    self._add_tone(f.index, z + k, a * q["sideband_ratio"] ** k)
+            elif f.type in BEARING_FAULTS:
+                assert orders is not None
+                slip = 1 - q["slip"]
+                if f.type == "outer_race":
+                    order, mod_order, mod = orders["bpfo"] * slip, 0.0, 0.0
+                elif f.type == "inner_race":
+                    order, mod_order, mod = orders["bpfi"] * slip, 1.0, q["modulation"]
+                else:
+                    order, mod_order, mod = 2 * orders["bsf"] * slip, orders["ftf"] * slip, q["modulation"]
+                rng = np.random.default_rng([self.sim.seed, self.mkey, 3000 + f.index])
+                self.impacts.append(_Impacts(
+                    f, (self.mkey, f.index), order, mod_order, mod, float(rng.uniform(0, 2 * math.pi)),
+                    q["jitter"], q["amplitude_spread"], q["impact_g"] * g,
+                    M.ImpactResponse(self.p.resonance_hz, self.p.resonance_damping)))
+
+    def _looseness(self, f: FaultSpec, v1_mm_s: float) -> dict[float, complex]:
+        """Fourier series (half orders) of a truncated multi-harmonic waveform over two revolutions."""
+        q = f.params
+        n = 4096
+        theta = 2 * math.pi * 2 * np.arange(n) / n          # two revolutions
+        rng = np.random.default_rng([self.sim.seed, self.mkey, 4000 + f.index])
+        hmax = int(q["harmonics"])
+        u = np.zeros(n)
+        for j in range(1, 2 * hmax + 1):                     # half orders j/2
+            order = j / 2
+            amp = q["decay"] ** (order - 1) if j % 2 == 0 else q["subharmonic"] * q["decay"] ** max(order - 1, 0)
+            u += amp * np.cos(order * theta + rng.uniform(0, 2 * math.pi))
+        y = np.minimum(u, q["truncation"] * u.max())
+        y -= y.mean()
+        c = 2 * np.fft.rfft(y) / n
+        scale = _v_to_a_peak_g(v1_mm_s, self.f_ref) / abs(c[2])
+        out = {}
+        for i in range(1, 4 * hmax + 1):
+            if abs(c[i]) > 1e-4 * abs(c[2]):
+                out[i / 2] = complex(c[i] * scale)
+        return out
+
+    # ------------------------------------------------------------------ random streams
+
+    def _chunk(self, stream: int, c: int) -> F64:
+        k = (stream, c)
+        arr = self._chunks.get(k)
+        if arr is None:
+            arr = np.random.default_rng([self.sim.seed, self.key, stream, c + 2**40]).standard_normal(_CHUNK)
+            self._chunks[k] = arr
+            if len(self._chunks) > 16:
+                self._chunks.popitem(last=False)
+        return arr
+
+    def _white(self, stream: int, start: int, stop: int) -> F64:
+        c0, c1 = start // _CHUNK, (stop - 1) // _CHUNK
+        arr = np.concatenate([self._chunk(stream, c) for c in range(c0, c1 + 1)])
+        return arr[start - c0 * _CHUNK: stop - c0 * _CHUNK]
+
+    def _block_rng(self, stream: int, k: int) -> np.random.Generator:
+        return np.random.default_rng([self.sim.seed, self.key, stream, k])
+
+    # ------------------------------------------------------------------ rendering
+
+    def multiplier(self, fault_index: int, t: Any) -> Any:
+        curve = self.curves.get(fault_index)
+        return 1.0 if curve is None else curve(t)
+
+    def dropped(self, k: int) -> bool:
+        t_start = k * self.p.block_samples / self.fs
+        for sf in self.p.sensor_faults:
+            if sf.type == "dropped_blocks" and sf.active(t_start):
+                frac = sf.params["fraction"]
+                assert frac is not None
+                if self._block_rng(_STREAM_DROP, k).random() < frac:
+                    return True
+        return False
+
+    def render(self, k: int) -> F64:
+        """Samples of block ``k`` in g (dropped blocks are rendered too; the caller skips them)."""
+        n = self.p.block_samples
+        d = self.sensor.half
+        n0 = k * n
+        lo, hi = n0 - d, n0 + n + d
+        t = np.arange(lo, hi, dtype=np.float64) / self.fs
+        speed = self.sim._speeds[self.m.machine_id]
+        f = speed.hz(t)
+        s = f / self.f_ref
+        x = np.zeros(t.size)
+        if self.tones:
+            base = speed.revs(t)
+            for order, comps in self.tones.items():
+                c: Any = 0.0
+                for fi, coeff in comps:
+                    c = c + coeff * self.multiplier(fi, t)
+                nu = order * f
+                fac = (s * s) * M.aa_taper(nu, self.fs)
+                if self.p.sensor_type == "piezo":
+                    fac = fac * M.piezo_hp_factor(np.maximum(nu, 1e-12), self.p.sensor_model.hp_corner_hz)
+                x += np.real(c * fac * np.exp(2j * math.pi * ((order * base) % 1.0)))
+        for imp in self.impacts:
+            x += self._render_impacts(imp, lo, hi)
+        dc = self.color.half
+        w = self._white(_STREAM_PROCESS, lo - dc, hi + dc) * self.sigma_process
+        x += self.color.apply(w) * np.minimum(s, 2.0)
+        x += self._white(_STREAM_SENSOR, lo, hi) * self.sigma_sensor
+        y = self.sensor.apply(x) + self.p.sensor_model.dc_offset_g
+        y = self._sensor_faults(y, k, t[d:d + n])
+        sm = self.p.sensor_model
+        y = np.clip(y, -sm.range_g, sm.range_g)
+        y = np.round(y / sm.lsb_g) * sm.lsb_g
+        return y
+
+    def _impact_eps(self, imp: _Impacts, i0: int, i1: int) -> tuple[F64, F64]:
+        c0, c1 = i0 // _IMPACT_CHUNK, (i1 - 1) // _IMPACT_CHUNK
+        parts = []
+        for c in range(c0, c1 + 1):
+            key = (imp.key[0], imp.key[1], c)
+            arr = self.sim._impact_cache.get(key)
+            if arr is None:
+                arr = np.random.default_rng([self.sim.seed, imp.key[0], 5000 + imp.key[1], c + 2**40]) \
+                    .standard_normal((2, _IMPACT_CHUNK))
+                self.sim._impact_cache[key] = arr
+                if len(self.sim._impact_cache) > 256:
+                    self.sim._impact_cache.popitem(last=False)
+            parts.append(arr)
+        a = np.concatenate(parts, axis=1)[:, i0 - c0 * _IMPACT_CHUNK: i1 - c0 * _IMPACT_CHUNK]
+        return a[0], a[1]
+
+    def _render_impacts(self, imp: _Impacts, lo: int, hi: int) -> F64:
+        speed = self.sim._speeds[self.m.machine_id]
+        ldec = math.ceil(imp.response.decay_s * self.fs) + 1
+        g_lo = lo - ldec
+        tg = np.arange(g_lo, hi, dtype=np.float64) / self.fs
+        rg = speed.revs(tg)
+        rg = rg + 1e-12 * np.arange(rg.size)           # strictly increasing even while stopped
+        i0 = math.floor(rg[0] * imp.order) - 2
+        i1 = math.ceil(rg[-1] * imp.order) + 3
+        out = np.zeros(hi - lo)
+        if i1 <= i0:
+            return out
+        eps_t, eps_a = self._impact_eps(imp, i0, i1)
+        theta = (np.arange(i0, i1) + imp.jitter * eps_t) / imp.order
+        sel = (theta >= rg[0]) & (theta <= rg[-1])
+        if not sel.any():
+            return out
+        theta, eps_a = theta[sel], eps_a[sel]
+        ti = np.interp(theta, rg, tg)
+        s = speed.hz(ti) / self.f_ref
+        amp = imp.amp_g * s * s * (1 + imp.spread * eps_a) * self.multiplier(imp.fault.index, ti)
+        if imp.modulation:
+            amp = amp * (1 + imp.modulation * np.cos(2 * math.pi * imp.mod_order * theta + imp.mod_phase))
+        first = np.ceil(ti * self.fs).astype(np.int64)            # first sample at or after the impact
+        idx = first[:, None] + np.arange(ldec)[None, :]
+        tau = idx / self.fs - ti[:, None]
+        vals = amp[:, None] * imp.response(tau)
+        pos = idx - lo
+        ok = (pos >= 0) & (pos < out.size)
+        np.add.at(out, pos[ok], vals[ok])
+        return out
+
+    def _sensor_faults(self, y: F64, k: int, t: F64) -> F64:
+        for sf in self.p.sensor_faults:
+            if sf.type == "dropped_blocks":
+                continue
+            act = (t >= sf.start_s) & ((t < sf.end_s) if sf.end_s is not None else True)
+            if not np.any(act):
+                continue
+            q = sf.params
+            if sf.type == "bias_shift":
+                y = y + act * q["offset_g"]
+            elif sf.type == "spikes":
+                rng = self._block_rng(_STREAM_SPIKES, k)
+                hit = rng.random(y.size) < (q["rate_per_s"] or 0.0) / self.fs
+                sign = np.where(rng.random(y.size) < 0.5, -1.0, 1.0)
+                y = y + act * hit * sign * q["amplitude_g"]
+            elif sf.type == "cable_fault":
+                y = np.where(act & self._cable_mask(sf, k), q["rail_g"], y)
+            elif sf.type == "clipping":
+                level = q["level_g"]
+                y = np.where(act, np.clip(y, -level, level), y)
+            elif sf.type == "flatline":
+                value = q["value_g"] if q["value_g"] is not None else self.p.sensor_model.dc_offset_g
+                y = np.where(act, value, y)
+        return y
+
+    def _cable_mask(self, sf: Any, k: int) -> npt.NDArray[np.bool_]:
+        """Open-circuit episodes (start per sample at ``episodes_per_s``, lasting ``episode_s``), carried
+        across block boundaries from the previous blocks."""
+        n = self.p.block_samples
+        length = max(1, round(sf.params["episode_s"] * self.fs))
+        back = math.ceil(length / n)
+        mask = np.zeros(n, dtype=bool)
+        p_start = sf.params["episodes_per_s"] / self.fs
+        for j in range(max(0, k - back), k + 1):
+            starts = np.flatnonzero(self._block_rng(_STREAM_CABLE, j).random(n) < p_start) + (j - k) * n
+            for s0 in starts:
+                a, b = max(0, s0), min(n, s0 + length)
+                if a < b:
+                    mask[a:b] = True
+        return mask
+
+    # ------------------------------------------------------------------ truth
+
+    def truth(self, t_s: float) -> dict[str, Any]:
+        p, m = self.p, self.m
+        f = float(self.sim._speeds[m.machine_id].hz(t_s))
+        s = f / self.f_ref
+        band = p.velocity_band_hz
+        active_sf = [sf for sf in p.sensor_faults if sf.active(t_s) and sf.type != "dropped_blocks"]
+        flat = [sf for sf in active_sf if sf.type == "flatline"]
+        mean_g = p.sensor_model.dc_offset_g + sum(sf.params["offset_g"] or 0.0 for sf in active_sf
+                                                    if sf.type == "bias_shift")
+        line_nu: list[F64] = []
+        line_pw: list[F64] = []
+        orders_mm_s: dict[str, float] = {}
+        # tonal lines
+        for order, comps in self.tones.items():
+            c = sum(coeff * float(self.multiplier(fi, t_s)) for fi, coeff in comps)
+            nu = order * f
+            if nu <= 0:
+                continue
+            amp = abs(c) * s * s * float(M.aa_taper(nu, self.fs))
+            if p.sensor_type == "piezo":
+                amp *= abs(complex(M.piezo_hp_factor(nu, p.sensor_model.hp_corner_hz)))
+            amp *= float(self.sensor.gain(nu)[0])
+            line_nu.append(np.array([nu]))
+            line_pw.append(np.array([amp * amp / 2]))
+            v = amp / math.sqrt(2) * M.G0_M_S2 * 1e3 / (2 * math.pi * nu)
+            name = f"{order:g}"
+            if order in (0.5, 1.0, 2.0, 3.0):
+                orders_mm_s[name] = v
+        # impact lines
+        impacts_info = []
+        cont_parts = []
+        for imp in self.impacts:
+            a = imp.amp_g * s * s * float(self.multiplier(imp.fault.index, t_s))
+            lam = imp.order * f
+            impacts_info.append({"fault": imp.fault.type, "impact_rate_hz": lam, "impact_peak_g": a})
+            if lam <= 0 or a <= 0:
+                continue
+            nu_l, pw_l = self._impact_lines(imp, a, lam, f)
+            line_nu.append(nu_l)
+            line_pw.append(pw_l)
+            cont_parts.append((imp, a, lam, f))
+        nus = np.concatenate(line_nu) if line_nu else np.zeros(0)
+        pws = np.concatenate(line_pw) if line_pw else np.zeros(0)
+
+        def psd(nu: F64) -> F64:
+            hs2 = self.sensor.gain(nu) ** 2
+            out = ((self.m.process_noise_ug_rthz * 1e-6 * min(s, 2.0)) ** 2 * self.color.gain(nu) ** 2
+                   + (p.sensor_model.noise_ug_rthz * 1e-6) ** 2) * hs2
+            for imp, a, lam, fr in cont_parts:
+                out = out + self._impact_continuous(imp, a, lam, fr, nu) * hs2
+            out = out + p.sensor_model.lsb_g**2 / 12 / (self.fs / 2)
+            for sf in active_sf:
+                if sf.type == "spikes":
+                    var = (sf.params["rate_per_s"] or 0.0) / self.fs * (sf.params["amplitude_g"] or 0.0) ** 2
+                    out = out + var / (self.fs / 2)
+            return np.asarray(out, dtype=np.float64)
+
+        to_v = M.G0_M_S2 * 1e3 / (2 * math.pi)
+        in_band = (nus >= band[0]) & (nus <= band[1])
+        v2 = float(np.sum(pws[in_band] * (to_v / nus[in_band]) ** 2))
+        grid = np.geomspace(band[0], band[1], 4001)
+        v2 += float(np.trapezoid(psd(grid) * (to_v / grid) ** 2, grid))
+        full = np.linspace(0, self.fs / 2, 8193)
+        a2 = float(np.sum(pws[nus > 0])) + float(np.trapezoid(psd(full), full))
+        velocity = math.sqrt(v2)
+        accel = math.sqrt(a2)
+        exact = not any(sf.type in ("clipping", "cable_fault", "spikes") for sf in active_sf)
+        if flat:
+            velocity, accel, exact = 0.0, 0.0, True
+            mean_g = flat[-1].params["value_g"] if flat[-1].params["value_g"] is not None else mean_g
+        running = f * 60 >= m.run_threshold_rpm
+        zone = M.iso_zone(velocity, m.group, m.support)
+        if active_sf:
+            state = "sensor-fault"
+        elif not running:
+            state = "stopped"
+        else:
+            state = {"A": "normal", "B": "normal", "C": "alert", "D": "danger"}[zone]
+        faults = []
+        for fs_ in self.faults:
+            mult = float(self.multiplier(fs_.index, t_s))
+            entry: dict[str, Any] = {"type": fs_.type, **{k: v for k, v in fs_.params.items()}}
+            if fs_.progression is not None:
+                entry["stage"] = M.stage_name(mult / fs_.progression.end if fs_.progression.end else 0.0)
+                entry["multiplier"] = mult
+                entry["progression"] = fs_.progression.describe()
+            else:
+                entry["stage"] = fs_.stage
+            faults.append(entry)
+        main = max(faults, key=lambda e: M.STAGES.index(e["stage"])) if faults else None
+        out: dict[str, Any] = {
+            "machine": m.machine_id, "axis": p.axis, "sensor": p.sensor_id, "sensor_type": p.sensor_type,
+            "fs_hz": p.fs_hz, "speed_rpm": f * 60, "speed_hz": f, "running": running,
+            "velocity_band_hz": list(band), "velocity_rms_mm_s": velocity, "acceleration_rms_g": accel,
+            "mean_g": mean_g, "orders_mm_s": orders_mm_s,
+            "iso": {"group": m.group, "support": m.support, "zone": zone,
+                    "boundaries_mm_s": list(M.ISO_ZONE_BOUNDARIES_MM_S[(m.group, m.support)])},
+            "expected_state": state, "fault": main["type"] if main else "none",
+            "stage": main["stage"] if main else "none", "faults": faults,
+            "sensor_fault": [{"type": sf.type, **{k: v for k, v in sf.params.items()}, "start_s": sf.start_s,
+                              "end_s": sf.end_s} for sf in active_sf] or None,
+            "truth_exact": exact,
+        }
+        if p.bearing is not None:
+            o = p.bearing.orders()
+            out["defect_frequencies_hz"] = {k: v * f for k, v in o.items()} | {"2xbsf": 2 * o["bsf"] * f}
+            out["defect_orders"] = o
+        if impacts_info:
+            out["impacts"] = impacts_info
+        return out
+
+    def _impact_lines(self, imp: _Impacts, a: float, lam: float, fr: float) -> tuple[F64, F64]:
+        """One-sided line powers (g²) at the sampled frequencies of an impact train.
+
+        Impulse train p = Σ(1 + σ_a ε_i)δ(t − t_i), position jitter σ_t = jitter/λ: lines λ²|Φ(kλ)|² at kλ,
+        |Φ(ν)|² = exp(−4π²ν²σ_t²); amplitude modulation (1 + m cos 2πf_m t) adds ±f_m copies × m²/4; each
+        line is filtered by the impact response H(ν) and aliased to the sampled band."""
+        fmod = imp.mod_order * fr
+        nu_max = max(10 * self.fs, 20 * self.p.resonance_hz)
+        kmax = int(nu_max / lam) + 1
+        k = np.arange(-kmax, kmax + 1, dtype=np.float64)
+        sig_t = imp.jitter / lam
+        phi2 = np.exp(-4 * math.pi**2 * (k * lam) ** 2 * sig_t**2)
+        base = (a * lam) ** 2 * phi2
+        shifts = [(0.0, 1.0)]
+        if imp.modulation and fmod > 0:
+            shifts += [(fmod, imp.modulation**2 / 4), (-fmod, imp.modulation**2 / 4)]
+        nus, pws = [], []
+        for sh, wgt in shifts:
+            nu = k * lam + sh
+            pw = base * wgt * np.abs(imp.response.spectrum(nu)) ** 2
+            nu_a = np.abs((nu + self.fs / 2) % self.fs - self.fs / 2)
+            nus.append(nu_a)
+            pws.append(pw * self.sensor.gain(nu_a) ** 2)
+        nu_all, pw_all = np.concatenate(nus), np.concatenate(pws)
+        keep = pw_all > 0
+        return nu_all[keep], pw_all[keep]
+
+    def _impact_continuous(self, imp: _Impacts, a: float, lam: float, fr: float, nu: F64) -> F64:
+        """One-sided continuous PSD (g²/Hz) of an impact train, folded into the sampled band."""
+        sig_t = imp.jitter / lam
+        fmod = imp.mod_order * fr
+        m2 = imp.modulation**2 / 4 if (imp.modulation and fmod > 0) else 0.0
+        kf = int(max(10 * self.fs, 20 * self.p.resonance_hz) / self.fs) + 1
+        total = np.zeros_like(nu)
+        sp2 = imp.spread**2
+
+        def cont(x: F64) -> F64:
+            return np.asarray(1 + sp2 - np.exp(-4 * math.pi**2 * x * x * sig_t**2), dtype=np.float64)
+
+        for j in range(-kf, kf + 1):
+            v = nu + j * self.fs
+            c = cont(v)
+            if m2:
+                c = c + m2 * (cont(v - fmod) + cont(v + fmod))
+            total += np.abs(imp.response.spectrum(v)) ** 2 * c
+        return np.asarray(2 * a * a * lam * total, dtype=np.float64)
+
+
+# --------------------------------------------------------------------------------------------- simulation
+
+
+class Simulation:
+    """Blocks and truth of one scenario.  ``t0_ns`` is the wall-clock time of sample 0 (default: now)."""
+
+    def __init__(self, scenario: Scenario, *, seed: int = 0, t0_ns: int | None = None) -> None:
+        self.scenario = scenario
+        self.seed = int(seed)
+        if self.seed < 0:
+            raise ValueError(f"seed must be >= 0, got {seed}")
+        self.t0_ns = time.time_ns() if t0_ns is None else int(t0_ns)
+        self._speeds = {
+            m.machine_id: M.SpeedProfile([(t, r / 60.0) for t, r in m.speed.knots_rpm], m.speed.wander_fraction,
+                                         m.speed.wander_period_s, math.radians(m.speed.wander_phase_deg))
+            for m in scenario.machines}
+        self._impact_cache: OrderedDict[tuple[int, int, int], F64] = OrderedDict()
+        self._models = {p.point_id: _PointModel(self, p, scenario.machine(p.machine_id)) for p in scenario.points}
+        self._next = dict.fromkeys(self._models, 0)
+        self._now_s = 0.0
+
+    # ------------------------------------------------------------------ description
+
+    @property
+    def points(self) -> list[PointSpec]:
+        return list(self.scenario.points)
+
+    @property
+    def machines(self) -> list[MachineSpec]:
+        return list(self.scenario.machines)
+
+    def topic(self, point_id: str) -> str:
+        """MQTT topic of a point's blocks: ``<prefix>/<machine>/<point>/block``."""
+        return self.scenario.point(point_id).topic
+
+    def speed_topic(self, machine_id: str) -> str:
+        """MQTT topic of a machine's speed: ``<prefix>/<machine>/speed``, payload r/min as plain text."""
+        self.scenario.machine(machine_id)
+        return f"{self.scenario.topic_prefix}/{machine_id}/speed"
+
+    def speed_hz(self, machine_id: str, t_s: float) -> float:
+        """Shaft speed in Hz at simulation time ``t_s`` (0 when stopped)."""
+        if machine_id not in self._speeds:
+            raise KeyError(f"no machine {machine_id!r} in scenario {self.scenario.name!r}")
+        return float(self._speeds[machine_id].hz(t_s))
+
+    # ------------------------------------------------------------------ blocks
+
+    def block_t0_ns(self, point_id: str, k: int) -> int:
+        p = self._models[point_id].p
+        return self.t0_ns + round(Fraction(k * p.block_samples * 10**9) / Fraction(p.fs_hz))
+
+    def block(self, point_id: str, k: int) -> Block | None:
+        """Block ``k`` (sequence number) of a point, or ``None`` when that block is dropped."""
+        model = self._models[point_id]
+        if model.dropped(k):
+            return None
+        x = model.render(k)
+        x.flags.writeable = False
+        p = model.p
+        return Block(sensor_id=p.sensor_id, seq=k, t0_ns=self.block_t0_ns(point_id, k), fs_hz=p.fs_hz, unit="g",
+                     samples=x)
+
+    def record(self, point_id: str, n_blocks: int, start_block: int = 0) -> F64:
+        """Samples of consecutive blocks (including ones a dropped-blocks fault would drop), for analysis."""
+        model = self._models[point_id]
+        return np.concatenate([model.render(k) for k in range(start_block, start_block + n_blocks)])
+
+    def blocks_until(self, t_s: float) -> list[Block]:
+        """Every block whose last sample is at or before ``t_s`` and was not returned before, in time order."""
+        due: list[tuple[Fraction, int, str, int]] = []
+        for i, (pid, model) in enumerate(self._models.items()):
+            n = model.p.block_samples
+            last_sample = math.floor(t_s * model.fs + 1e-6)
+            k_last = (last_sample - n + 1) // n
+            for k in range(self._next[pid], k_last + 1):
+                due.append((Fraction((k + 1) * n - 1) / Fraction(model.fs), i, pid, k))
+            self._next[pid] = max(self._next[pid], k_last + 1)
+        self._now_s = max(self._now_s, t_s)
+        due.sort()
+        out = []
+        for _, _, pid, k in due:
+            b = self.block(pid, k)
+            if b is not None:
+                out.append(b)
+        return out
+
+    # ------------------------------------------------------------------ truth
+
+    def truth(self, t_s: float | None = None) -> dict[str, Any]:
+        """The expected indicators of every point at simulation time ``t_s`` (default: the time reached by
+        :meth:`blocks_until`, 0 before the first call).  See the package README for the fields."""
+        t = self._now_s if t_s is None else float(t_s)
+        points = {pid: model.truth(t) for pid, model in self._models.items()}
+        machines = {}
+        for m in self.scenario.machines:
+            rpm = self.speed_hz(m.machine_id, t) * 60
+            machines[m.machine_id] = {
+                "description": m.description, "group": m.group, "support": m.support, "speed_rpm": rpm,
+                "running": rpm >= m.run_threshold_rpm, "fixed_speed": m.speed.fixed,
+                "speed_schedule_rpm": [list(k) for k in m.speed.knots_rpm],
+                "speed_wander_fraction": m.speed.wander_fraction,
+            }
+        for pid, model in self._models.items():
+            if model.curves:
+                points[pid]["progression"] = self._timeline(model)
+        return {
+            "scenario": self.scenario.name, "site": self.scenario.site, "seed": self.seed, "t_s": t,
+            "t_ns": self.t0_ns + round(t * 1e9), "t0_ns": self.t0_ns,
+            "notes": "velocity_rms_mm_s is the ISO 20816 band r.m.s. (velocity_band_hz), acceleration_rms_g the AC "
+                     "r.m.s. over 0..fs/2 (mean removed, mean_g separate); expected values of the stationary "
+                     "model at t_s, computed analytically from the model parameters.",
+            "machines": machines, "points": points,
+        }
+
+    def _timeline(self, model: _PointModel) -> dict[str, Any]:
+        curves = list(model.curves.values())
+        t_end = max(c.end_s for c in curves)
+        t_start = min(c.start_s for c in curves)
+        span = t_end - t_start
+        times = np.linspace(0.0, t_end + 0.1 * span, 61)
+
+        def vel(t: float) -> float:
+            return float(model.truth(t)["velocity_rms_mm_s"])
+
+        rows = []
+        for t in times:
+            tr = model.truth(float(t))
+            rows.append({"t_s": float(t), "velocity_rms_mm_s": tr["velocity_rms_mm_s"],
+                         "acceleration_rms_g": tr["acceleration_rms_g"], "zone": tr["iso"]["zone"],
+                         "expected_state": tr["expected_state"]})
+        changes = []
+        for a, b in itertools.pairwise(rows):
+            if a["zone"] != b["zone"]:
+                lo_t, hi_t = a["t_s"], b["t_s"]
+                for _ in range(30):
+                    mid = 0.5 * (lo_t + hi_t)
+                    if M.iso_zone(vel(mid), model.m.group, model.m.support) == a["zone"]:
+                        lo_t = mid
+                    else:
+                        hi_t = mid
+                changes.append({"t_s": hi_t, "from": a["zone"], "to": b["zone"]})
+        return {"curves": [{"fault": f.type, **f.progression.describe()} for f in model.faults
+                           if f.progression is not None],
+                "timeline": rows, "zone_changes": changes}
+
+    # ------------------------------------------------------------------ daemon configuration
+
+    def daemon_config(self, *, source: Mapping[str, Any], extra: Mapping[str, Any] | None = None,
+                      frame_samples: int = 8192, overlap: float = 0.5) -> dict[str, Any]:
+        """A daemon configuration for this scenario (config/example-plant.toml's schema).
+
+        ``source`` is the ``[[sources]]`` table (its ``name`` is what points and speed tags refer to);
+        ``extra`` adds or replaces top-level tables (e.g. the alarm limits).  Fixed-speed machines get
+        ``speed_rpm``; the others a ``speed_tag`` (MQTT/in-process: ``topic`` = :meth:`speed_topic`; OPC UA:
+        ``node`` = the speed variable's node id), unit r/min.
+        """
+        src = dict(source)
+        if "name" not in src or "type" not in src:
+            raise ValueError("source needs at least 'name' and 'type'")
+        sname = src["name"]
+        sc = self.scenario
+        machines = []
+        for m in sc.machines:
+            entry: dict[str, Any] = {"id": m.machine_id}
+            if m.description:
+                entry["description"] = m.description
+            entry |= {"group": m.group, "support": m.support}
+            if m.speed.fixed:
+                entry["speed_rpm"] = float(m.speed.knots_rpm[0][1])
+            elif src["type"] == "opcua":
+                entry["speed_tag"] = {"source": sname, "node": opcua_speed_node(sc, m.machine_id), "unit": "rpm"}
+            else:
+                entry["speed_tag"] = {"source": sname, "topic": self.speed_topic(m.machine_id), "unit": "rpm"}
+            entry["speed_range_rpm"] = [float(v) for v in m.speed_range_rpm]
+            entry["run_threshold_rpm"] = float(m.run_threshold_rpm)
+            machines.append(entry)
+        points = []
+        for p in sc.points:
+            e: dict[str, Any] = {"id": p.point_id, "machine": p.machine_id, "axis": p.axis, "source": sname,
+                                 "sensor": p.sensor_id, "fs_hz": float(p.fs_hz), "block_samples": p.block_samples,
+                                 "sensor_type": p.sensor_type}
+            if p.sensitivity_mv_per_g is not None:
+                e["sensitivity_mv_per_g"] = float(p.sensitivity_mv_per_g)
+            e["bandwidth_hz"] = [float(v) for v in p.bandwidth_hz]
+            e["velocity_band_hz"] = [float(v) for v in p.velocity_band_hz]
+            if p.envelope_band_hz is not None:
+                e["envelope_band_hz"] = [float(v) for v in p.envelope_band_hz]
+            if p.bearing is not None:
+                e["bearing"] = {"elements": p.bearing.elements, "ball_diameter_mm": p.bearing.ball_diameter_mm,
+                                "pitch_diameter_mm": p.bearing.pitch_diameter_mm,
+                                "contact_angle_deg": p.bearing.contact_angle_deg}
+            points.append(e)
+        doc: dict[str, Any] = {
+            "site": {"name": sc.site},
+            "analysis": {"frame_samples": int(frame_samples), "overlap": float(overlap)},
+            "sources": [src],
+            "machines": machines,
+            "points": points,
+        }
+        for key, value in (extra or {}).items():
+            doc[key] = value
+        return doc
+
+    def daemon_config_toml(self, *, source: Mapping[str, Any], extra: Mapping[str, Any] | None = None,
+                           frame_samples: int = 8192, overlap: float = 0.5) -> str:
+        """:meth:`daemon_config` as TOML text with a header comment."""
+        sc = self.scenario
+        header = (f"# edgevib daemon configuration for the simulated scenario {sc.name!r} "
+                  f"(site {sc.site}: {sc.site_description or 'invented plant'}).\n"
+                  f"# Generated by `edgevib simulate --scenario {sc.name} --emit-config`; regenerate rather than "
+                  "edit.\n# edgevib monitors and advises; it is not a machinery protection (trip) system.\n\n")
+        return header + to_toml(self.daemon_config(source=source, extra=extra, frame_samples=frame_samples,
+                                                   overlap=overlap))
+
+
+def opcua_node(scenario: Scenario, point_id: str, leaf: str = "samples") -> str:
+    """String node id of a point's variable on the simulator's OPC UA server (namespace index 2)."""
+    p = scenario.point(point_id)
+    return f"ns=2;s={scenario.site}/{p.machine_id}/{p.point_id}/{leaf}"
+
+
+def opcua_speed_node(scenario: Scenario, machine_id: str) -> str:
+    return f"ns=2;s={scenario.site}/{machine_id}/speed_rpm"
+
+
+# --------------------------------------------------------------------------------------------- TOML
+
+
+def _toml_key(k: str) -> str:
+    import re
+    return k if re.fullmatch(r"[A-Za-z0-9_-]+", k) else _toml_str(k)
+
+
+def _toml_str(s: str) -> str:
+    import json
+    return json.dumps(s, ensure_ascii=False)
+
+
+def _toml_value(v: Any) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, int):
+        return str(v)
+    if isinstance(v, float):
+        if not math.isfinite(v):
+            raise ValueError(f"cannot write non-finite number {v!r} to TOML")
+        return repr(v)
+    if isinstance(v, str):
+        return _toml_str(v)
+    if isinstance(v, list | tuple):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    if isinstance(v, Mapping):
+        return "{ " + ", ".join(f"{_toml_key(k)} = {_toml_value(x)}" for k, x in v.items()) + " }"
+    raise TypeError(f"cannot write {type(v).__name__} to TOML")
+
+
+def _is_table(v: Any) -> bool:
+    return isinstance(v, Mapping) and any(_is_table(x) or _is_table_array(x) for x in v.values())
+
+
+def _is_table_array(v: Any) -> bool:
+    return isinstance(v, list) and bool(v) and all(isinstance(x, Mapping) for x in v)
+
+
+def _emit(lines: list[str], prefix: str, table: Mapping[str, Any], array: bool = False) -> None:
+    scalars = {k: v for k, v in table.items() if not (_is_table(v) or _is_table_array(v))
+               and not (prefix == "" and isinstance(v, Mapping))}
+    if prefix:
+        lines.append(f"[[{prefix}]]" if array else f"[{prefix}]")
+    for k, v in scalars.items():
+        lines.append(f"{_toml_key(k)} = {_toml_value(v)}")
+    if prefix:
+        lines.append("")
+    for k, v in table.items():
+        name = f"{prefix}.{_toml_key(k)}" if prefix else _toml_key(k)
+        if _is_table_array(v):
+            for item in v:
+                _emit(lines, name, item, array=True)
+        elif _is_table(v) or (prefix == "" and isinstance(v, Mapping)):
+            _emit(lines, name, v)
+
+
+def to_toml(doc: Mapping[str, Any]) -> str:
+    """A small TOML writer for configuration documents (tables, arrays of tables, inline small tables)."""
+    lines: list[str] = []
+    _emit(lines, "", doc)
+    return "\n".join(lines).rstrip() + "\n"
