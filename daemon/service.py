@@ -40,6 +40,7 @@ __all__ = [
 
 log = get_logger("edgevib.service")
 STOP_TIMEOUT_S = 10.0
+LEADING_FAMILY_SNR_DB = 10.0  # a family shown as "leading" only when it stands clearly above the floor (demo)
 
 
 def _listen_arg(value: str) -> tuple[str, int]:
@@ -222,7 +223,7 @@ def _leading_family(r: FrameResult) -> str:
     if not env:
         return "-" if r.indicators.envelope_band_hz is not None else "n/a"
     fam, res = max(env.items(), key=lambda kv: kv[1].snr_db)
-    return f"{fam} {res.snr_db:.0f} dB"
+    return f"{fam} {res.snr_db:.0f} dB" if res.snr_db >= LEADING_FAMILY_SNR_DB else "-"
 
 
 def render_table(cfg: Config, latest: dict[str, FrameResult], state_text: Callable[[str], str | None],
