@@ -1,0 +1,152 @@
+"""Indicators as JSON on MQTT: one message per point per analysed frame, for MQTT-fed historians.
+
+The topic is a template with ``{site}``, ``{machine}`` and ``{point}``.  Keys carry their units
+(``velocity_rms_mm_s``, ``acceleration_rms_g``, ``shaft_speed_hz`` …); an indicator that is unavailable for the
+frame (speed unknown, no envelope band) is ``null``, never a made-up number.  The sink keeps its own broker
+connection (``[publish.mqtt]``: another broker, or a source's settings reused) with paho's reconnect loop; while
+it is down, QoS 1 messages queue up to a bound and QoS 0 messages are dropped and counted.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import json
+import time
+from datetime import UTC, datetime
+from typing import Any
+
+import paho.mqtt.client as mqtt
+
+from edgevib.daemon.config import G_M_S2, Config, MqttConnection
+from edgevib.daemon.interfaces import FrameResult, SourceError
+from edgevib.daemon.logs import RateLimitedLogger, get_logger
+from edgevib.daemon.sources.mqtt import make_client
+
+__all__ = ["MqttIndicatorSink", "indicator_document"]
+
+log = get_logger("edgevib.sinks.mqtt")
+MAX_QUEUED = 10_000
+
+
+def _num(v: float | None) -> float | None:
+    return None if v is None or v != v or v in (float("inf"), float("-inf")) else float(v)
+
+
+def indicator_document(site: str, axis: str, r: FrameResult, orders: tuple[str, ...] = ()) -> dict[str, Any]:
+    """The JSON document of one frame (plain types, units in the key names, ``None`` for unavailable)."""
+    ind = r.indicators
+    trend = r.extra.get("trend", {})
+    order_values = {k: _num(v) for k, v in ind.orders_mm_s.items()}
+    for k in orders:
+        order_values.setdefault(k, None)
+    envelope = None
+    if ind.envelope_band_hz is not None:
+        envelope = {fam: {"amplitude_g": _num(f.amplitude_g), "amplitude_m_s2": _num(f.amplitude_g * G_M_S2),
+                          "snr_db": _num(f.snr_db), "frequency_hz": _num(f.frequency_hz),
+                          "expected_hz": _num(f.expected_hz), "harmonics_found": f.harmonics_found}
+                    for fam, f in ind.envelope.items()} or None
+    return {
+        "site": site, "machine": r.machine_id, "point": r.point_id, "axis": axis,
+        "time": datetime.fromtimestamp(r.t_end_ns / 1e9, UTC).isoformat(timespec="milliseconds"),
+        "t_end_ns": r.t_end_ns, "fs_hz": r.fs_hz, "frame_samples": int(r.samples.shape[0]),
+        "velocity_rms_mm_s": _num(ind.velocity_rms_mm_s), "velocity_peak_mm_s": _num(ind.velocity_peak_mm_s),
+        "velocity_rms_trend_mm_s": _num(trend.get("velocity_rms_mm_s")),
+        "acceleration_rms_g": _num(ind.acceleration_rms_g), "acceleration_peak_g": _num(ind.acceleration_peak_g),
+        "acceleration_rms_m_s2": _num(ind.acceleration_rms_g * G_M_S2),
+        "acceleration_peak_m_s2": _num(ind.acceleration_peak_g * G_M_S2),
+        "crest_factor": _num(ind.crest_factor), "kurtosis": _num(ind.kurtosis), "skewness": _num(ind.skewness),
+        "displacement_pp_um": _num(ind.displacement_pp_um),
+        "shaft_speed_hz": _num(ind.shaft_hz), "shaft_speed_estimated": ind.shaft_estimated if ind.shaft_hz else None,
+        "iso_zone": r.iso_zone,
+        "orders_velocity_rms_mm_s": order_values if ind.shaft_hz is not None else dict.fromkeys(order_values),
+        "envelope_band_hz": list(ind.envelope_band_hz) if ind.envelope_band_hz is not None else None,
+        "envelope": envelope,
+    }
+
+
+def _order_key(order: float) -> str:
+    try:
+        from edgevib.pipelines.analysis import order_key
+    except ImportError:
+        return f"{order:g}x"
+    return str(order_key(order))
+
+
+class MqttIndicatorSink:
+    """Publishes each frame's indicators as JSON; implements :class:`~edgevib.daemon.interfaces.FrameSink`."""
+
+    def __init__(self, *, site: str, connection: MqttConnection, topic: str, qos: int = 0, retain: bool = False,
+                 points: dict[str, tuple[str, tuple[str, ...]]] | None = None) -> None:
+        self.site = site
+        self.conn = connection
+        self.topic = topic
+        self.qos = qos
+        self.retain = retain
+        self.points = points or {}  # point id -> (axis, order keys)
+        self.published = 0
+        self.dropped = 0
+        self.connected = False
+        self._client: mqtt.Client | None = None
+        self.rlog = RateLimitedLogger(log, interval_s=30.0)
+
+    @classmethod
+    def from_config(cls, config: Config) -> MqttIndicatorSink:
+        pc = config.publish_mqtt
+        if pc.connection is None:
+            raise SourceError("publish.mqtt has no broker connection")
+        sink = cls(site=config.site.name, connection=pc.connection, topic=pc.topic, qos=pc.qos, retain=pc.retain)
+        sink.reconfigure(config)
+        return sink
+
+    def reconfigure(self, config: Config) -> None:
+        self.site = config.site.name
+        self.topic = config.publish_mqtt.topic
+        self.points = {p.id: (p.axis, tuple(_order_key(o) for o in p.orders)) for p in config.points}
+
+    def topic_for(self, machine: str, point: str) -> str:
+        return self.topic.format(site=self.site, machine=machine, point=point)
+
+    async def start(self) -> None:
+        client = make_client(self.conn, self.conn.client_id)
+        client.max_queued_messages_set(MAX_QUEUED)
+
+        def on_connect(_c: Any, _u: Any, _f: Any, rc: Any, _p: Any) -> None:
+            self.connected = not getattr(rc, "is_failure", False)
+
+        def on_disconnect(_c: Any, _u: Any, _f: Any, _rc: Any, _p: Any) -> None:
+            self.connected = False
+
+        client.on_connect = on_connect
+        client.on_disconnect = on_disconnect
+        client.connect_async(self.conn.host, self.conn.port, keepalive=max(5, round(self.conn.keepalive_s)))
+        client.loop_start()
+        self._client = client
+        log.info("MQTT indicator publishing started", url=self.conn.url, topic=self.topic)
+
+    async def on_frames(self, results: list[FrameResult]) -> None:
+        client = self._client
+        if client is None:
+            return
+        for r in results:
+            axis, orders = self.points.get(r.point_id, (str(r.extra.get("axis", "")), ()))
+            payload = json.dumps(indicator_document(self.site, axis, r, orders), separators=(",", ":"),
+                                 allow_nan=False)
+            info = client.publish(self.topic_for(r.machine_id, r.point_id), payload, qos=self.qos,
+                                  retain=self.retain)
+            if info.rc == mqtt.MQTT_ERR_SUCCESS:
+                self.published += 1
+            else:
+                self.dropped += 1
+                self.rlog.warning("drop", "indicator message not published", rc=info.rc, dropped=self.dropped)
+
+    async def stop(self) -> None:
+        client, self._client = self._client, None
+        if client is None:
+            return
+        deadline = time.monotonic() + 2.0
+        while self.connected and client.want_write() and time.monotonic() < deadline:
+            await asyncio.sleep(0.05)
+        with contextlib.suppress(Exception):
+            client.disconnect()
+        await asyncio.to_thread(client.loop_stop)
