@@ -152,12 +152,20 @@ class OpcUaIndicatorSink:
     """A :class:`~edgevib.daemon.interfaces.FrameSink` serving the latest indicators in an OPC UA namespace.
 
     ``points`` lists ``(point_id, machine_id)`` pairs (a mapping ``point_id → PointConfig`` is accepted too, and
-    then each point's configured orders get their variables up front).
+    then each point's configured orders get their variables up front).  ``listen`` is ``"HOST:PORT"``; ``host``
+    and ``port``, when given, override its parts.
     """
 
     def __init__(self, *, listen: str = "127.0.0.1:4841", site: str,
-                 points: Iterable[tuple[str, str]] | Mapping[str, Any], namespace: str = NAMESPACE_URI) -> None:
+                 points: Iterable[tuple[str, str]] | Mapping[str, Any], namespace: str = NAMESPACE_URI,
+                 host: str | None = None, port: int | None = None) -> None:
         self.host, self.port = _parse_listen(listen)
+        if host is not None:  # an already parsed listen address (host and port) takes precedence
+            self.host = host
+        if port is not None:
+            if not 0 < port < 65536:
+                raise ConfigError("publish.opcua.listen", f"port {port} is outside 1..65535")
+            self.port = port
         if not site or "/" in site:
             raise ConfigError("site.name", f"{site!r} cannot name an OPC UA folder (empty or contains '/')")
         self.site = site

@@ -1,0 +1,442 @@
+"""End-to-end daemon benchmark: publishers → a private mosquitto → ``edgevib`` daemon → indicators.
+
+``python -m edgevib.bench.daemon [--channels 100,200,300] [--seconds 20] [--json]``
+
+For each channel count the benchmark starts a fresh daemon (in this process, one analysis worker) subscribed to a
+mosquitto it started itself on a free loopback port, and publisher processes that send every channel as a real
+device would: 25.6 kHz, 16384-sample binary blocks (float32, 64 KiB), one block per channel every 0.64 s, phases
+spread evenly, each block published when its last sample is due (its ``t0_ns`` is that schedule, so a late
+publisher shows up in the latency).  Payloads are encoded once; only the sequence number and start time are
+patched per block.  Frames are 16384 samples, overlap 0 by default (one frame per block).
+
+Each row reports, over the measurement window after a warm-up:
+
+* ``frames_per_s`` analysed and the rate the stream requires (``expected_frames_per_s``);
+* ``latency_p50_ms`` / ``latency_p99_ms``: ingest-to-metric, from the arrival of a frame's last block at the
+  daemon to its indicators being published to the Prometheus sink — the quantity of the daemon's
+  ``edgevib_analysis_latency_seconds`` histogram, measured per frame by a probe sink; ``hist_p99_le_ms`` is the
+  bucket bound of the same percentile read from a scrape of ``/metrics``;
+* ``e2e_p99_ms``: from the moment the block was due at the device to its indicators (adds publishing and broker);
+* ``dropped`` frames, ``rejected`` blocks, ``cpu_cores`` used by the daemon's process (all threads: event loop,
+  paho's network thread, the analysis worker), ``mem_per_channel_mb`` (RSS growth / channels);
+* ``sustained``: every expected frame analysed (≥ 97 %), none dropped or rejected, p99 < 250 ms.
+
+``sustained_channels`` in the summary is the largest sustained channel count.  Figures depend on the machine and
+on whatever else runs on it; publishers and the broker need CPU of their own besides the daemon's core
+(``--cpu N`` pins the daemon's process to core N to make the one-core figure explicit).
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import contextlib
+import heapq
+import json
+import math
+import multiprocessing as mp
+import os
+import resource
+import shutil
+import socket
+import struct
+import subprocess
+import sys
+import tempfile
+import time
+import urllib.request
+from dataclasses import asdict, dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+FS_HZ = 25600.0
+BLOCK = 16384
+PERIOD_NS = round(BLOCK * 1e9 / FS_HZ)  # 640 ms, exact
+TOPIC = "bench/{sensor}/block"
+P99_TARGET_MS = 250.0
+_SEQ_T0 = struct.Struct("<Qq")  # seq and t0_ns at offset 8 of the binary block header (daemon/wire.py)
+
+
+# ------------------------------------------------------------------------------------------- the broker
+
+
+def _free_port() -> int:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+class Broker:
+    """A private mosquitto on 127.0.0.1 and a free port."""
+
+    def __init__(self) -> None:
+        exe = shutil.which("mosquitto") or "/usr/sbin/mosquitto"
+        if not Path(exe).exists():
+            raise SystemExit("the benchmark needs mosquitto (apt-get install mosquitto)")
+        self.port = _free_port()
+        self.dir = Path(tempfile.mkdtemp(prefix="edgevib-bench-mosq-"))
+        conf = self.dir / "mosquitto.conf"
+        conf.write_text(f"listener {self.port} 127.0.0.1\nallow_anonymous true\npersistence false\n"
+                        "log_dest stderr\nlog_type error\nmax_packet_size 16777216\nmax_queued_messages 0\n")
+        self.proc = subprocess.Popen([exe, "-c", str(conf)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        deadline = time.monotonic() + 10
+        while True:
+            try:
+                socket.create_connection(("127.0.0.1", self.port), timeout=0.2).close()
+                break
+            except OSError:
+                if time.monotonic() > deadline or self.proc.poll() is not None:
+                    self.close()
+                    raise SystemExit("mosquitto did not start") from None
+                time.sleep(0.05)
+
+    def close(self) -> None:
+        if self.proc.poll() is None:
+            self.proc.terminate()
+            try:
+                self.proc.wait(5)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait(5)
+        shutil.rmtree(self.dir, ignore_errors=True)
+
+
+# ------------------------------------------------------------------------------------------- the load
+
+
+def sensor_id(channel: int) -> str:
+    return f"QL-BENCH-{channel:04d}"
+
+
+def channel_signal(channel: int, seed: int) -> np.ndarray:
+    """One block of a plausible pump bearing signal in g: 1× and 2× of a 1480 r/min shaft, outer-race impacts
+    ringing a 3.2 kHz resonance, broadband noise (seeded per channel)."""
+    rng = np.random.default_rng([seed, channel])
+    t = np.arange(BLOCK) / FS_HZ
+    f1 = 1480.0 / 60.0
+    x = 0.25 * np.sin(2 * np.pi * f1 * t + rng.uniform(0, 2 * np.pi))
+    x += 0.08 * np.sin(2 * np.pi * 2 * f1 * t + rng.uniform(0, 2 * np.pi))
+    bpfo = 3.585 * f1 * rng.uniform(0.99, 1.01)
+    ring = np.exp(-t[:256] * 900.0) * np.sin(2 * np.pi * 3200.0 * t[:256])
+    impacts = np.zeros(BLOCK)
+    impacts[(np.arange(0, t[-1], 1 / bpfo) * FS_HZ).astype(int)] = 0.6
+    x += np.convolve(impacts, ring)[:BLOCK]
+    x += rng.normal(0.0, 0.05, BLOCK)
+    return x
+
+
+def _publisher(port: int, channels: list[int], n_channels: int, start_ns: int, stop_ns: int, qos: int,
+               seed: int, out: Any) -> None:
+    """Publisher process: paced publishing of pre-encoded blocks for ``channels``; reports counts and lag."""
+    import paho.mqtt.client as mqtt
+    from paho.mqtt.enums import CallbackAPIVersion
+
+    from edgevib.daemon.wire import Block, encode_binary
+
+    client = mqtt.Client(CallbackAPIVersion.VERSION2, client_id=f"edgevib-bench-pub-{os.getpid()}")
+    client.max_inflight_messages_set(1000)
+    client.connect("127.0.0.1", port, keepalive=30)
+    client.loop_start()
+    templates: dict[int, bytearray] = {}
+    topics: dict[int, str] = {}
+    for c in channels:
+        block = Block(sensor_id=sensor_id(c), seq=0, t0_ns=0, fs_hz=FS_HZ, unit="g", samples=channel_signal(c, seed))
+        templates[c] = bytearray(encode_binary(block))
+        topics[c] = TOPIC.format(sensor=sensor_id(c))
+    heap = [(start_ns + round(c * PERIOD_NS / n_channels) + PERIOD_NS, c, 0) for c in channels]
+    heapq.heapify(heap)
+    lags_ms: list[float] = []
+    sent = 0
+    while heap:
+        due, c, k = heapq.heappop(heap)
+        wait_s = (due - time.time_ns()) / 1e9
+        if wait_s > 0:
+            time.sleep(wait_s)
+        buf = templates[c]
+        _SEQ_T0.pack_into(buf, 8, k, due - PERIOD_NS)
+        client.publish(topics[c], bytes(buf), qos=qos)
+        lags_ms.append((time.time_ns() - due) / 1e6)
+        sent += 1
+        if due + PERIOD_NS <= stop_ns:
+            heapq.heappush(heap, (due + PERIOD_NS, c, k + 1))
+    time.sleep(0.5)
+    client.loop_stop()
+    client.disconnect()
+    lag = np.asarray(lags_ms) if lags_ms else np.zeros(1)
+    out.put({"sent": sent, "lag_p99_ms": float(np.percentile(lag, 99)), "lag_max_ms": float(lag.max())})
+
+
+# ------------------------------------------------------------------------------------------- measuring
+
+
+def _rss_mb() -> float:
+    with open("/proc/self/status") as f:
+        for line in f:
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1]) / 1024.0
+    return math.nan
+
+
+def _cpu_s() -> float:
+    ru = resource.getrusage(resource.RUSAGE_SELF)
+    return ru.ru_utime + ru.ru_stime
+
+
+def _thread_cpu_s() -> dict[str, float]:
+    """CPU seconds per live Python thread, by thread name (numbered pool threads grouped by prefix)."""
+    import threading
+
+    tick = os.sysconf("SC_CLK_TCK")
+    out: dict[str, float] = {}
+    for th in threading.enumerate():
+        try:
+            with open(f"/proc/self/task/{th.native_id}/stat") as f:
+                fields = f.read().rsplit(")", 1)[1].split()
+        except (OSError, IndexError):
+            continue
+        name = th.name.split("_")[0].rstrip("0123456789-") or th.name
+        out[name] = out.get(name, 0.0) + (int(fields[11]) + int(fields[12])) / tick
+    return out
+
+
+class ProbeSink:
+    """Records, per analysed frame, ingest-to-metric and due-to-metric latencies (FrameSink protocol)."""
+
+    def __init__(self) -> None:
+        self.samples: list[tuple[int, float, float]] = []  # (wall ns, ingest→metric ms, due→metric ms)
+
+    async def start(self) -> None:
+        pass
+
+    async def on_frames(self, results: list[Any]) -> None:
+        now = time.time_ns()
+        for r in results:
+            self.samples.append((now, (now - r.received_ns) / 1e6, (now - r.t_end_ns) / 1e6))
+
+    async def stop(self) -> None:
+        pass
+
+
+def histogram_quantile(text: str, name: str, q: float) -> float:
+    """Upper bucket bound (s) holding quantile ``q`` of a Prometheus histogram in an exposition text."""
+    buckets: list[tuple[float, float]] = []
+    for line in text.splitlines():
+        if line.startswith(f"{name}_bucket{{"):
+            le = line.split('le="', 1)[1].split('"', 1)[0]
+            buckets.append((math.inf if le == "+Inf" else float(le), float(line.rsplit(" ", 1)[1])))
+    if not buckets or buckets[-1][1] <= 0:
+        return math.nan
+    buckets.sort()
+    total = buckets[-1][1]
+    return next(le for le, count in buckets if count >= q * total)
+
+
+def bench_config(port: int, channels: int, overlap: float, state_dir: str) -> Any:
+    from edgevib.daemon.config import parse_config
+
+    doc: dict[str, Any] = {
+        "site": {"name": "quarry-lane-bench", "state_dir": state_dir},
+        "logging": {"level": "warning", "format": "json"},
+        "analysis": {"frame_samples": BLOCK, "overlap": overlap, "queue_frames": 4, "workers": 1},
+        "sources": [{"name": "bench-broker", "type": "mqtt", "url": f"mqtt://127.0.0.1:{port}",
+                     "client_id": f"edgevib-bench-{os.getpid()}", "qos": 0, "topics": ["bench/+/block"]}],
+        "machines": [{"id": f"P-{c:04d}", "group": 2, "support": "rigid", "speed_rpm": 1480.0}
+                     for c in range(channels)],
+        "points": [{"id": f"P-{c:04d}-DE-H", "machine": f"P-{c:04d}", "axis": "horizontal",
+                    "source": "bench-broker", "sensor": sensor_id(c), "fs_hz": FS_HZ, "block_samples": BLOCK,
+                    "sensor_type": "piezo", "bandwidth_hz": [0.5, 10000.0],
+                    "bearing": {"elements": 9, "ball_diameter_mm": 7.94, "pitch_diameter_mm": 39.04,
+                                "contact_angle_deg": 0.0}}
+                   for c in range(channels)],
+    }
+    return parse_config(doc, base_dir=state_dir)
+
+
+@dataclass
+class Row:
+    channels: int
+    sustained: bool
+    frames_per_s: float
+    expected_frames_per_s: float
+    latency_p50_ms: float
+    latency_p99_ms: float
+    hist_p99_le_ms: float
+    e2e_p99_ms: float
+    dropped: int
+    rejected: int
+    cpu_cores: float
+    rss_mb: float
+    mem_per_channel_mb: float
+    publish_lag_p99_ms: float
+    seconds: float
+    thread_cores: dict[str, float]
+
+
+def _warm_up_analysis(overlap: float) -> None:
+    """Load the numerical core (imports, FFT plans) before the memory baseline."""
+    from edgevib.daemon.frames import build_plan
+
+    cfg = bench_config(1883, 1, overlap, tempfile.gettempdir())
+    plan = build_plan(cfg.points[0], cfg.machines[0])
+    from edgevib.pipelines.analysis import analyze_frames
+
+    analyze_frames(channel_signal(0, 0)[None, :], plan, shaft_hz=None)
+
+
+async def run_level(broker: Broker, channels: int, seconds: float, warmup_s: float, overlap: float,
+                    publishers: int, qos: int, seed: int) -> Row:
+    from prometheus_client import CollectorRegistry
+
+    from edgevib.daemon.app import Daemon
+
+    state_dir = tempfile.mkdtemp(prefix="edgevib-bench-state-")
+    config = bench_config(broker.port, channels, overlap, state_dir)
+    rss_base = _rss_mb()
+    daemon = Daemon(config, registry=CollectorRegistry(), metrics_listen=("127.0.0.1", 0))
+    probe = ProbeSink()
+    daemon.add_sink(probe)
+    await daemon.start()
+    ctx = mp.get_context("spawn")
+    out = ctx.Queue()
+    procs: list[Any] = []
+    try:
+        deadline = time.monotonic() + 15
+        while not daemon.stats.connected.get("bench-broker"):
+            if time.monotonic() > deadline:
+                raise SystemExit("the daemon did not connect to the benchmark broker")
+            await asyncio.sleep(0.05)
+        n_pub = max(1, min(publishers, channels))
+        start_ns = time.time_ns() + 2_000_000_000  # publishers need ~1 s to start and encode
+        stop_ns = start_ns + round((warmup_s + seconds) * 1e9) + PERIOD_NS
+        for i in range(n_pub):
+            p = ctx.Process(target=_publisher, daemon=True,
+                            args=(broker.port, list(range(i, channels, n_pub)), channels, start_ns, stop_ns, qos,
+                                  seed, out))
+            p.start()
+            procs.append(p)
+        window_start_ns = start_ns + round(warmup_s * 1e9) + PERIOD_NS
+        window_end_ns = window_start_ns + round(seconds * 1e9)
+        await asyncio.sleep(max(0.0, (window_start_ns - time.time_ns()) / 1e9))
+        cpu0, dropped0, t0 = _cpu_s(), sum(daemon.stats.frames_dropped.values()), time.time_ns()
+        threads0 = _thread_cpu_s()
+        await asyncio.sleep(max(0.0, (window_end_ns - time.time_ns()) / 1e9))
+        cpu1, dropped1, t1 = _cpu_s(), sum(daemon.stats.frames_dropped.values()), time.time_ns()
+        threads1 = _thread_cpu_s()
+        rss_end = _rss_mb()
+        await asyncio.sleep(1.0)  # let the last frames of the window finish
+        scrape = await asyncio.to_thread(_scrape, daemon.metrics.url)
+        pubs = [await asyncio.to_thread(out.get, True, 30) for _ in procs]
+    finally:
+        await daemon.stop()
+        for p in procs:
+            p.join(10)
+            if p.is_alive():
+                p.kill()
+        shutil.rmtree(state_dir, ignore_errors=True)
+    window = [(lat, e2e) for t, lat, e2e in probe.samples if window_start_ns <= t < window_end_ns]
+    wall_s = (t1 - t0) / 1e9
+    lat = np.asarray([w[0] for w in window]) if window else np.full(1, math.nan)
+    e2e = np.asarray([w[1] for w in window]) if window else np.full(1, math.nan)
+    frames_per_s = len(window) / seconds
+    hop = config.points[0].hop_samples
+    expected = channels * FS_HZ / hop
+    rejected = sum(daemon.stats.blocks_rejected.values())
+    dropped = dropped1 - dropped0
+    p99 = float(np.percentile(lat, 99))
+    return Row(
+        channels=channels,
+        sustained=bool(frames_per_s >= 0.97 * expected and dropped == 0 and rejected == 0 and p99 < P99_TARGET_MS),
+        frames_per_s=round(frames_per_s, 1), expected_frames_per_s=round(expected, 1),
+        latency_p50_ms=round(float(np.percentile(lat, 50)), 1), latency_p99_ms=round(p99, 1),
+        hist_p99_le_ms=round(histogram_quantile(scrape, "edgevib_analysis_latency_seconds", 0.99) * 1e3, 1),
+        e2e_p99_ms=round(float(np.percentile(e2e, 99)), 1), dropped=dropped, rejected=rejected,
+        cpu_cores=round((cpu1 - cpu0) / wall_s, 2), rss_mb=round(rss_end, 1),
+        mem_per_channel_mb=round((rss_end - rss_base) / channels, 3),
+        thread_cores={k: round((v - threads0.get(k, 0.0)) / wall_s, 2) for k, v in threads1.items()},
+        publish_lag_p99_ms=round(max(p["lag_p99_ms"] for p in pubs), 1), seconds=round(wall_s, 1))
+
+
+def _scrape(url: str) -> str:
+    with urllib.request.urlopen(url.rstrip("/") + ("" if url.endswith("/metrics") else "/metrics"), timeout=10) as r:
+        return str(r.read().decode("utf-8"))
+
+
+# ------------------------------------------------------------------------------------------- the command
+
+
+def _channels(text: str) -> list[int]:
+    try:
+        levels = [int(v) for v in text.split(",") if v.strip()]
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a comma-separated list of channel counts") from None
+    if not levels or any(not 1 <= n <= 1000 for n in levels):
+        raise argparse.ArgumentTypeError(f"channel counts {text!r} must be in 1..1000 (the points limit)")
+    return levels
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="python -m edgevib.bench.daemon", description=__doc__.split("\n\n")[0])
+    p.add_argument("--channels", type=_channels, default=[200],
+                   help="channel count, or a comma-separated list of counts to run one after another (default 200)")
+    p.add_argument("--seconds", type=float, default=20.0, help="measurement window per level (default 20)")
+    p.add_argument("--warmup", type=float, default=3.0, help="seconds of streaming before measuring (default 3)")
+    p.add_argument("--overlap", type=float, default=0.0, help="frame overlap 0 <= x < 1 (default 0)")
+    p.add_argument("--publishers", type=int, default=2, help="publisher processes (default 2)")
+    p.add_argument("--qos", type=int, choices=(0, 1), default=0)
+    p.add_argument("--seed", type=int, default=1)
+    p.add_argument("--cpu", type=int, default=None, help="pin the daemon's process to this CPU core")
+    p.add_argument("--json", action="store_true", help="print JSON rows and a summary instead of a table")
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    if args.seconds <= 0 or args.warmup < 0 or not 0 <= args.overlap < 1 or args.publishers < 1:
+        print("error: --seconds must be > 0, --warmup >= 0, 0 <= --overlap < 1, --publishers >= 1", file=sys.stderr)
+        return 2
+    if args.cpu is not None:
+        os.sched_setaffinity(0, {args.cpu})
+    from edgevib.daemon.logs import configure_logging
+
+    configure_logging("error", "json", stream=sys.stderr)
+    _warm_up_analysis(args.overlap)
+    broker = Broker()
+    rows: list[Row] = []
+    try:
+        for n in args.channels:
+            rows.append(asyncio.run(run_level(broker, n, args.seconds, args.warmup, args.overlap, args.publishers,
+                                              args.qos, args.seed)))
+            if not args.json:
+                _print_row(rows[-1], header=len(rows) == 1)
+    finally:
+        broker.close()
+    sustained = max((r.channels for r in rows if r.sustained), default=0)
+    if args.json:
+        print(json.dumps({"rows": [asdict(r) for r in rows], "sustained_channels": sustained,
+                          "fs_hz": FS_HZ, "block_samples": BLOCK, "overlap": args.overlap, "workers": 1,
+                          "p99_target_ms": P99_TARGET_MS, "cpu_count": os.cpu_count()}, indent=2))
+    else:
+        print(f"sustained channels: {sustained} (target: >= 200 with p99 < {P99_TARGET_MS:g} ms on one worker)")
+    return 0
+
+
+_COLUMNS = [("channels", 8), ("sustained", 9), ("frames_per_s", 8), ("expected_frames_per_s", 8),
+            ("latency_p50_ms", 8), ("latency_p99_ms", 8), ("hist_p99_le_ms", 8), ("e2e_p99_ms", 8),
+            ("dropped", 7), ("rejected", 8), ("cpu_cores", 6), ("mem_per_channel_mb", 8)]
+_HEADS = {"channels": "chan", "sustained": "sustained", "frames_per_s": "frm/s", "expected_frames_per_s": "need/s",
+          "latency_p50_ms": "p50 ms", "latency_p99_ms": "p99 ms", "hist_p99_le_ms": "hist99", "e2e_p99_ms": "e2e99",
+          "dropped": "dropped", "rejected": "rejected", "cpu_cores": "cores", "mem_per_channel_mb": "MB/chan"}
+
+
+def _print_row(row: Row, header: bool) -> None:
+    if header:
+        print(" ".join(_HEADS[k].rjust(w) for k, w in _COLUMNS))
+    d = asdict(row)
+    print(" ".join(str(d[k]).rjust(w) for k, w in _COLUMNS), flush=True)
+
+
+if __name__ == "__main__":
+    with contextlib.suppress(KeyboardInterrupt):
+        sys.exit(main())
