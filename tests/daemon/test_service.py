@@ -1,0 +1,132 @@
+"""The command line: check-config (exit codes, redaction), run (health, SIGHUP reload, SIGTERM exit 0) and demo."""
+
+from __future__ import annotations
+
+import os
+import re
+import signal
+import subprocess
+import sys
+import time
+import urllib.error
+import urllib.request
+from pathlib import Path
+from typing import Any
+
+import pytest
+from servers import free_port, wait_port
+
+EXAMPLE = Path(__file__).resolve().parents[2] / "config" / "example-plant.toml"
+
+
+def edgevib(*args: str, **kw: Any) -> subprocess.CompletedProcess[str]:
+    return subprocess.run([sys.executable, "-m", "edgevib.daemon", *args], capture_output=True, text=True,
+                          timeout=60, **kw)
+
+
+def get(url: str) -> int:
+    try:
+        with urllib.request.urlopen(url, timeout=5) as r:
+            return int(r.status)
+    except urllib.error.HTTPError as e:
+        return int(e.code)
+
+
+def test_check_config_valid_prints_resolved() -> None:
+    proc = edgevib("check-config", str(EXAMPLE))
+    assert proc.returncode == 0, proc.stderr
+    assert 'id = "P-101-DE-H"' in proc.stdout
+    assert "queue_frames = 4" in proc.stdout  # a default filled in
+    assert "no envelope indicators" in proc.stdout  # the MEMS point's warning
+
+
+def test_check_config_error_is_one_line_exit_2(tmp_path: Path) -> None:
+    bad = tmp_path / "bad.toml"
+    bad.write_text(EXAMPLE.read_text().replace("overlap = 0.5 ", "overlap = 1.5 "))
+    proc = edgevib("check-config", str(bad))
+    assert proc.returncode == 2
+    assert proc.stderr.count("\n") == 1 and "analysis.overlap" in proc.stderr and "1.5" in proc.stderr
+    assert "Traceback" not in proc.stderr
+
+
+def test_check_config_never_prints_secrets(tmp_path: Path) -> None:
+    secret = tmp_path / "pw"
+    secret.write_text("correct-horse-battery\n")
+    cfg = tmp_path / "plant.toml"
+    cfg.write_text(EXAMPLE.read_text().replace('# username = "edgevib"', 'username = "edgevib"').replace(
+        '# password_file = "/run/credentials/edgevib.service/mqtt-password"', f'password_file = "{secret}"'))
+    proc = edgevib("check-config", str(cfg), env=dict(os.environ, EDGEVIB_UNUSED="x"))
+    assert proc.returncode == 0, proc.stderr
+    assert "correct-horse-battery" not in proc.stdout + proc.stderr
+    assert f"<from file {secret}>" in proc.stdout
+    literal = tmp_path / "literal.toml"
+    literal.write_text(EXAMPLE.read_text().replace('# username = "edgevib"', 'password = "correct-horse"'))
+    proc = edgevib("check-config", str(literal))
+    assert proc.returncode == 2 and "password_file" in proc.stderr and "correct-horse" not in proc.stderr
+
+
+@pytest.mark.network
+@pytest.mark.slow
+def test_run_health_reload_and_sigterm(mosquitto: Any, tmp_path: Path) -> None:
+    cfg = tmp_path / "plant.toml"
+    text = EXAMPLE.read_text().replace("mqtt://127.0.0.1:1883", mosquitto.url)
+    cfg.write_text(text)
+    port = free_port()
+    proc = subprocess.Popen([sys.executable, "-m", "edgevib.daemon", "run", "--config", str(cfg),
+                             "--metrics-listen", f"127.0.0.1:{port}", "--state-dir", str(tmp_path / "state")],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        wait_port(port, 20)
+        assert get(f"http://127.0.0.1:{port}/healthz") == 200
+        deadline = time.monotonic() + 15
+        while get(f"http://127.0.0.1:{port}/readyz") != 200 and time.monotonic() < deadline:
+            time.sleep(0.1)
+        assert get(f"http://127.0.0.1:{port}/readyz") == 200
+        cfg.write_text(text.replace("overlap = 0.5 ", "overlap = 7 "))  # invalid: rejected, the daemon stays
+        proc.send_signal(signal.SIGHUP)
+        time.sleep(1.0)
+        assert proc.poll() is None and get(f"http://127.0.0.1:{port}/healthz") == 200
+        cfg.write_text(text.replace("queue_frames = 4 ", "queue_frames = 8 "))
+        proc.send_signal(signal.SIGHUP)
+        time.sleep(1.0)
+        proc.send_signal(signal.SIGTERM)
+        out, err = proc.communicate(timeout=20)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.communicate(timeout=5)
+    assert proc.returncode == 0, err
+    assert "configuration reload rejected" in out and "analysis.overlap" in out
+    assert "configuration reloaded" in out
+    assert '"event": "daemon stopped"' in out or '"event":"daemon stopped"' in out  # JSON lines (not a tty)
+
+
+@pytest.mark.slow
+def test_demo_prints_url_and_plain_lines_then_stops() -> None:
+    proc = edgevib("demo", "--duration", "4", "--metrics-listen", "127.0.0.1:0", "--rate", "1")
+    assert proc.returncode == 0, proc.stderr
+    assert re.search(r"metrics at http://127\.0\.0\.1:\d+/metrics", proc.stdout)
+    lines = [line for line in proc.stdout.splitlines() if " point=" in line]
+    points = {re.search(r"point=(\S+)", line).group(1) for line in lines}  # type: ignore[union-attr]
+    assert {"P-101-DE-H", "F-201-NDE-V"} <= points
+    assert all("velocity_mm_s=" in line and "kurtosis=" in line for line in lines)
+
+
+@pytest.mark.slow
+def test_demo_stops_cleanly_on_ctrl_c() -> None:
+    proc = subprocess.Popen([sys.executable, "-m", "edgevib.daemon", "demo", "--metrics-listen", "127.0.0.1:0"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        assert proc.stdout is not None
+        deadline = time.monotonic() + 30
+        while time.monotonic() < deadline:
+            line = proc.stdout.readline()
+            if " point=" in line:
+                break
+        proc.send_signal(signal.SIGINT)
+        proc.communicate(timeout=20)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.communicate(timeout=5)
+    assert proc.returncode == 0
