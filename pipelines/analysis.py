@@ -21,14 +21,14 @@ from functools import lru_cache
 
 import numpy as np
 import numpy.typing as npt
-from scipy.fft import next_fast_len
 
+from edgevib.pipelines import _fft
 from edgevib.pipelines.bearings import defect_multiples, validate_geometry
 from edgevib.pipelines.envelope import (
     demodulate,
     envelope_spectrum,
+    fast_length,
     min_decimated_length,
-    periodic_hann,
     search_families,
 )
 from edgevib.pipelines.indicators import as_channels, centre, moments
@@ -65,7 +65,7 @@ FAMILIES: tuple[str, ...] = ("ftf", "bpfo", "bpfi", "bsf")
 ``expected_hz``/``frequency_hz`` are the 2 × BSF line."""
 SPEED_HARMONICS = 3  # harmonics used by the speed estimate
 MIN_SAMPLES = 64
-PEAK_OVERSAMPLING = 6.0  # velocity waveform sampled at ≥ 6 × the band's upper edge (peak error ≤ 13 % at the edge)
+PEAK_OVERSAMPLING = 4.0  # velocity waveform sampled at ≥ 4 × the band's upper edge; peaks refined by a parabola
 ANTI_ALIAS_RATIO = 2.56  # usable bandwidth fs/2.56 of an anti-aliased acquisition (common practice)
 
 
@@ -188,16 +188,18 @@ def default_envelope_band(fs_hz: float, bandwidth_hz: tuple[float, float] | None
     """A demodulation band from the sample rate and the sensor's usable bandwidth, or None when the sensor cannot
     carry envelope analysis.
 
-    The high edge is the lower of fs/2.56 (the usable band of an anti-aliased acquisition, common practice) and
-    the sensor's upper limit; the low edge the highest of a quarter of the high edge, 500 Hz, 20 × the highest
-    shaft speed (clear of the shaft harmonics) and the sensor's lower limit.  Envelope analysis needs kHz
+    The band is the top octave of what the acquisition carries: the high edge is the lower of fs/2.56 (the usable
+    band of an anti-aliased acquisition, common practice) and the sensor's upper limit; the low edge the highest of
+    half the high edge, 500 Hz, 20 × the highest shaft speed (clear of the shaft harmonics) and the sensor's lower
+    limit.  Impacts excite structural resonances there, far above the shaft and mesh lines (common practice; a
+    kurtogram or a known resonance chooses better, and an explicit band overrides this).  Envelope analysis needs kHz
     bandwidth above the shaft and mesh components (FIELD_NOTES §6), so the result is None when the high edge is
-    below 2 kHz or less than twice the low edge — for example a MEMS point limited to about 1–1.5 kHz.
+    below 2 kHz or less than 1.5 × the low edge — for example a MEMS point limited to about 1–1.5 kHz.
     Edges are rounded inwards to 10 Hz.
 
     Examples
     --------
-    12 kHz sampling, no sensor limit: about 1170–4680 Hz.  25.6 kHz with a 0.5 Hz–10 kHz piezo: 2500–10000 Hz.
+    12 kHz sampling, no sensor limit: 2350–4680 Hz.  25.6 kHz with a 0.5 Hz–10 kHz piezo: 5000–10000 Hz.
     """
     fs = _finite("sample rate", fs_hz)
     if fs <= 0:
@@ -211,12 +213,12 @@ def default_envelope_band(fs_hz: float, bandwidth_hz: tuple[float, float] | None
             raise PlanError(f"sensor bandwidth {b_lo:g}–{b_hi:g} Hz is not a valid range")
         hi = min(hi, b_hi)
         lo = max(lo, b_lo)
-    lo = max(lo, hi / 4.0)
+    lo = max(lo, hi / 2.0)
     if shaft_hz_max is not None:
         lo = max(lo, 20.0 * _finite("highest shaft speed", shaft_hz_max))
     lo = math.ceil(lo / 10.0) * 10.0
     hi = math.floor(hi / 10.0) * 10.0
-    if hi < 2000.0 or hi < 2.0 * lo:
+    if hi < 2000.0 or hi < 1.5 * lo:
         return None
     return (lo, hi)
 
@@ -224,8 +226,24 @@ def default_envelope_band(fs_hz: float, bandwidth_hz: tuple[float, float] | None
 class AnalysisKernel:
     """Precomputed, read-only state for the frames of one plan; :meth:`analyze` does only arithmetic."""
 
-    __slots__ = ("_df", "_env", "_env_lines", "_env_m", "_env_window", "_inv_omega2", "_inv_omega_v", "_mult",
-                 "_mv", "_n", "_speed_stop", "_vel_lines", "_vel_stop", "plan")
+    __slots__ = (
+        "_df",
+        "_disp_coef",
+        "_env",
+        "_env_lines",
+        "_env_m",
+        "_env_stop",
+        "_inv_omega2",
+        "_md",
+        "_mult",
+        "_mv",
+        "_n",
+        "_speed_stop",
+        "_vel_coef",
+        "_vel_lines",
+        "_vel_stop",
+        "plan",
+    )
 
     def __init__(self, plan: AnalysisPlan) -> None:
         plan = _validate(plan)
@@ -244,17 +262,23 @@ class AnalysisKernel:
             raise PlanError(f"velocity band {plan.velocity_band_hz[0]:g}–{plan.velocity_band_hz[1]:g} Hz holds no "
                             f"line at resolution {self._df:.4g} Hz")
         self._vel_lines = (lo, hi)
-        inv_v = 1.0 / omega[lo : hi + 1]
-        inv_v.flags.writeable = False
-        self._inv_omega_v = inv_v
+        self._mv = max(fast_length(math.ceil(PEAK_OVERSAMPLING * hi)), 2 * hi + 2)
+        # displacement is dominated by the band's lowest lines: sampled at ≥ 2 × the band's top, peaks refined
+        self._md = fast_length(2 * hi + 2)
+        # irfft(Y, m) = (N/m) × the band-limited waveform, so the line coefficients carry m/N
+        vel_coef = (-1j * G_MM_S2 * self._mv / n) / omega[lo : hi + 1]  # g → mm/s, ÷ jω
+        disp_coef = (-1j * 1000.0 * self._md / self._mv) / omega[lo : hi + 1]  # mm/s → µm, ÷ jω
+        vel_coef.flags.writeable = False
+        disp_coef.flags.writeable = False
+        self._vel_coef = vel_coef
+        self._disp_coef = disp_coef
         self._vel_stop = min(n // 2, hi + 2)
-        self._mv = int(min(max(next_fast_len(math.ceil(PEAK_OVERSAMPLING * hi)), 2 * hi + 2), max(n, 2 * hi + 2)))
         self._speed_stop = min(n // 2, math.ceil(SPEED_HARMONICS * plan.speed_range_hz[1] * (1 + plan.order_tolerance)
                                                / self._df) + 3)
         self._env = plan.bearing is not None and plan.envelope_band_hz is not None
         self._env_lines = (0, 0)
         self._env_m = 0
-        self._env_window = np.zeros(0)
+        self._env_stop = 0
         self._mult = np.zeros(0)
         if plan.bearing is not None and plan.envelope_band_hz is not None:
             m = defect_multiples(plan.bearing)
@@ -266,9 +290,7 @@ class AnalysisKernel:
             top_hz = plan.harmonics * float(mult.max()) * plan.speed_range_hz[1] * (1 + plan.slip_tolerance)
             need = math.ceil(top_hz * 1.25 / self._df) + 20  # room for the floor neighbourhood
             self._env_m = min_decimated_length(e_hi - e_lo + 1, need)
-            win = periodic_hann(self._env_m)
-            win.flags.writeable = False
-            self._env_window = win
+            self._env_stop = need + 1
 
     def analyze(self, x_g: npt.ArrayLike, shaft_hz: npt.ArrayLike | None = None) -> list[FrameIndicators]:
         """Indicators of frames ``x_g`` (channels, n_samples) in g; see :func:`analyze_frames`."""
@@ -281,7 +303,9 @@ class AnalysisKernel:
         f_given = _shaft_array(shaft_hz, c, plan.fs_hz)
         xc, mean = centre(x)
         td = moments(xc, mean)
-        spec = np.fft.rfft(xc, axis=-1)
+        del xc
+        spec = _fft.rfft(x)
+        spec[:, 0] = 0.0  # the mean, removed (lines ≥ 1 are those of the centred frame)
 
         estimate = ~np.isfinite(f_given)
         stop = self._vel_stop
@@ -303,56 +327,70 @@ class AnalysisKernel:
         orders = order_amplitudes_mm_s(vel_pow, shaft, plan.orders, plan.order_tolerance, self._df, n)
 
         # velocity and displacement waveforms from the band's lines only (for peak and peak-to-peak)
-        y = np.zeros((2, c, v_hi + 1), dtype=np.complex128)
-        y[0, :, v_lo:] = spec[:, v_lo : v_hi + 1] * (-1j * G_MM_S2 * self._inv_omega_v)
-        y[1, :, v_lo:] = y[0, :, v_lo:] * (-1j * 1000.0 * self._inv_omega_v)  # mm → µm
-        wave = np.fft.irfft(y, n=self._mv, axis=-1) * (self._mv / n)
-        vel_peak = np.abs(wave[0]).max(axis=-1)
-        disp_pp = wave[1].max(axis=-1) - wave[1].min(axis=-1)
+        y = np.zeros((c, v_hi + 1), dtype=np.complex128)
+        y[:, v_lo:] = spec[:, v_lo : v_hi + 1] * self._vel_coef
+        vel_peak = _refined_peak(np.abs(_fft.irfft(y, self._mv)))
+        y[:, v_lo:] *= self._disp_coef
+        disp = _fft.irfft(y, self._md)
+        disp_pp = _refined_peak(disp) + _refined_peak(-disp)
 
         fam: tuple[FloatArray, FloatArray, FloatArray, npt.NDArray[np.int64]] | None = None
         has_speed = np.isfinite(shaft)
         if self._env and has_speed.any():
             e_lo, e_hi = self._env_lines
-            env = demodulate(spec, e_lo, e_hi, self._env_m, n)
-            amp = envelope_spectrum(env, self._env_window)
+            env = demodulate(spec, e_lo, e_hi, self._env_m)
+            amp = envelope_spectrum(env, n, self._env_stop)
             expected = shaft[:, None] * self._mult[None, :]
             fam = search_families(amp, expected, plan.slip_tolerance, plan.harmonics, self._df)
 
         keys = [order_key(o) for o in plan.orders]
+        shaft_l = shaft.tolist()
+        est_l = estimate.tolist()
+        orders_l = orders.tolist()
+        cols = (td.rms_g, td.peak_g, td.peak_to_peak_g, td.crest_factor, td.kurtosis, td.skewness, td.mean_g,
+                vel_rms, vel_peak, disp_pp)
+        rows = np.stack(cols, axis=1).tolist()
+        fam_l = None if fam is None else (fam[0].tolist(), fam[1].tolist(), fam[2].tolist(), fam[3].tolist())
+        mult = self._mult.tolist()
         out: list[FrameIndicators] = []
         for ch in range(c):
-            f = float(shaft[ch])
+            f = shaft_l[ch]
             known = math.isfinite(f)
-            order_map = {key: float(orders[ch, j]) for j, key in enumerate(keys)
-                         if known and math.isfinite(orders[ch, j])}
+            order_map = {key: a for key, a in zip(keys, orders_l[ch], strict=True) if known and math.isfinite(a)}
             families: dict[str, FamilyResult] = {}
-            if fam is not None and known:
-                freq, amp_g, snr, found = fam
+            if fam_l is not None and known:
+                freq, amp_g, snr, found = (part[ch] for part in fam_l)
                 for j, name in enumerate(FAMILIES):
-                    if math.isfinite(freq[ch, j]):
-                        families[name] = FamilyResult(expected_hz=f * float(self._mult[j]),
-                                                      frequency_hz=float(freq[ch, j]),
-                                                      amplitude_g=float(amp_g[ch, j]), snr_db=float(snr[ch, j]),
-                                                      harmonics_found=int(found[ch, j]))
+                    if math.isfinite(freq[j]):
+                        families[name] = FamilyResult(expected_hz=f * mult[j], frequency_hz=freq[j],
+                                                      amplitude_g=amp_g[j], snr_db=snr[j],
+                                                      harmonics_found=int(found[j]))
+            r = rows[ch]
             out.append(FrameIndicators(
-                acceleration_rms_g=float(td.rms_g[ch]),
-                acceleration_peak_g=float(td.peak_g[ch]),
-                acceleration_peak_to_peak_g=float(td.peak_to_peak_g[ch]),
-                crest_factor=float(td.crest_factor[ch]),
-                kurtosis=float(td.kurtosis[ch]),
-                skewness=float(td.skewness[ch]),
-                mean_g=float(td.mean_g[ch]),
-                velocity_rms_mm_s=float(vel_rms[ch]),
-                velocity_peak_mm_s=float(vel_peak[ch]),
-                displacement_pp_um=float(disp_pp[ch]),
-                shaft_hz=f if known else None,
-                shaft_estimated=bool(estimate[ch]) and known,
-                orders_mm_s=order_map,
-                envelope_band_hz=plan.envelope_band_hz,
-                envelope=families,
+                acceleration_rms_g=r[0], acceleration_peak_g=r[1], acceleration_peak_to_peak_g=r[2],
+                crest_factor=r[3], kurtosis=r[4], skewness=r[5], mean_g=r[6],
+                velocity_rms_mm_s=r[7], velocity_peak_mm_s=r[8], displacement_pp_um=r[9],
+                shaft_hz=f if known else None, shaft_estimated=bool(est_l[ch]) and known,
+                orders_mm_s=order_map, envelope_band_hz=plan.envelope_band_hz, envelope=families,
             ))
         return out
+
+
+def _refined_peak(w: FloatArray) -> FloatArray:
+    """Largest value of each row, refined by a parabola through the largest sample and its (circular) neighbours.
+
+    Parameters
+    ----------
+    w : ndarray, shape (channels, samples) — a periodic, band-limited waveform
+    """
+    i = np.argmax(w, axis=-1)
+    rows = np.arange(w.shape[0])
+    m = w.shape[-1]
+    a, b, c = w[rows, (i - 1) % m], w[rows, i], w[rows, (i + 1) % m]
+    denom = a - 2.0 * b + c
+    safe = np.where(denom < 0, denom, -1.0)
+    peak: FloatArray = np.where(denom < 0, b - 0.125 * (a - c) ** 2 / safe, b)
+    return peak
 
 
 def _shaft_array(shaft_hz: npt.ArrayLike | None, channels: int, fs_hz: float) -> FloatArray:

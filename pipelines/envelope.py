@@ -7,8 +7,9 @@ decimation in one small transform; no full-length Hilbert transform is needed.  
 
 * the decimated complex signal ``z = (2M/N) · ifft(X[k_lo..k_hi], M)`` has ``|z|`` equal to the magnitude of the
   analytic signal of the band-passed frame (``|scipy.signal.hilbert(bandpass(x))|``) at M evenly spaced times;
-* the **envelope spectrum** is the single-sided amplitude spectrum of ``|z|`` with its mean removed and a Hann
-  window, ``A = 2 |rfft(w · (|z| − mean))| / Σw``, in g.  It reads the *amplitude* (peak) of each envelope
+* the **envelope spectrum** is the single-sided amplitude spectrum of ``|z|`` with a Hann window,
+  ``A = 2 |rfft(w · |z|)| / Σw``, in g (the mean need not be removed: with a Hann window it reaches lines 0 and 1
+  only).  It reads the *amplitude* (peak) of each envelope
   component — the same scaling as the check-value method E1 of the project's datasets README, so its values
   apply.  Its line spacing equals the frame's, fs/N.
 
@@ -21,12 +22,14 @@ least ± 8 lines beyond the search window), excluding the search window itself, 
 from __future__ import annotations
 
 import math
+from typing import Any
 
 import numpy as np
 import numpy.typing as npt
 
-from edgevib.pipelines.indicators import as_channels, centre
-from edgevib.pipelines.spectrum import band_lines, masked_median, window_argmax
+from edgevib.pipelines import _fft
+from edgevib.pipelines.indicators import as_channels, finite_mean
+from edgevib.pipelines.spectrum import band_lines, hann_lines, masked_median, window_argmax
 from edgevib.pipelines.types import PlanError
 
 __all__ = [
@@ -47,38 +50,61 @@ FLOOR_MIN_LINES = 8  # … and at least this many lines beyond the search window
 _TINY = 1e-300
 
 
-def demodulate(spec: ComplexArray, k_lo: int, k_hi: int, m: int, n_samples: int) -> FloatArray:
-    """Envelope |analytic signal| of the band ``k_lo..k_hi`` (rfft lines, inclusive), decimated to ``m`` samples.
+def demodulate(spec: ComplexArray, k_lo: int, k_hi: int, m: int) -> npt.NDArray[np.float32]:
+    """Unscaled envelope of the band ``k_lo..k_hi`` (rfft lines, inclusive), decimated to ``m`` samples.
 
     Parameters
     ----------
-    spec : ndarray, shape (channels, n_samples//2 + 1) — the frame's unwindowed rfft
+    spec : ndarray, shape (channels, N//2 + 1) — the frame's unwindowed rfft
     m : int ≥ k_hi − k_lo + 1 — output length (sample rate m·fs/N)
 
     Returns
     -------
-    ndarray, shape (channels, m), in the unit of the frame (g)
+    ndarray, shape (channels, m), float32: ``|ifft(spec[:, k_lo:k_hi+1], m)|``, computed in single precision
+    (relative error ~1e-7, far below any envelope floor) because this is the pipeline's second-largest transform.
+    Times ``2m/N`` it is the envelope ``|hilbert(bandpass(x))|`` in the unit of the frame (g);
+    :func:`envelope_spectrum` applies that factor.
     """
-    z = np.fft.ifft(spec[:, k_lo : k_hi + 1], n=m, axis=-1)
-    return np.abs(z) * (2.0 * m / n_samples)
+    z = _fft.ifft(spec[:, k_lo : k_hi + 1].astype(np.complex64), m)
+    env: npt.NDArray[np.float32] = np.abs(z)
+    return env
 
 
-def envelope_spectrum(env: FloatArray, window: FloatArray) -> FloatArray:
-    """Single-sided amplitude spectrum (peak reading) of envelopes ``env`` (channels, m) with ``window`` (m,)."""
-    e = env - env.mean(axis=-1, keepdims=True)
-    return np.abs(np.fft.rfft(e * window, axis=-1)) * (2.0 / float(window.sum()))
+def envelope_spectrum(env: npt.NDArray[np.floating[Any]], n_samples: int, stop: int) -> FloatArray:
+    """Envelope amplitude spectrum, lines ``0 .. stop-1``, from :func:`demodulate`'s output.
+
+    A periodic Hann window is applied in the frequency domain (three taps, exact), and the mean is not
+    subtracted: with that window a constant only reaches lines 0 and 1, which are never searched.  Scaling:
+    ``A = 2 |rfft(w · e)| / Σw`` for the envelope ``e = (2m/N) · env``, i.e. ``8/N · |rfft(w · env)|``.
+
+    Returns
+    -------
+    ndarray, shape (channels, stop), in g (peak reading, like method E1)
+    """
+    spec = _fft.rfft(env)
+    lines = hann_lines(spec, min(stop, env.shape[-1] // 2))
+    amp: FloatArray = np.abs(lines).astype(np.float64) * (8.0 / n_samples)
+    return amp
 
 
-def periodic_hann(m: int) -> FloatArray:
-    return 0.5 - 0.5 * np.cos(2.0 * np.pi * np.arange(m) / m)
+def fast_length(n: int) -> int:
+    """Smallest 2^a·3^b ≥ n (lengths numpy's FFT handles fastest)."""
+    best = 1 << max(0, (n - 1).bit_length())
+    p3 = 1
+    while p3 < best:
+        p2 = p3
+        while p2 < n:
+            p2 *= 2
+        best = min(best, p2)
+        p3 *= 3
+    return best
 
 
 def min_decimated_length(band_lines_count: int, max_envelope_line: int) -> int:
-    """Smallest useful M: the band must fit, and envelope lines up to ``max_envelope_line`` stay alias-free."""
-    from scipy.fft import next_fast_len
-
+    """Smallest useful M: the band fits, and the squared envelope stays alias-free up to ``max_envelope_line``
+    (its lines are differences of band lines, so M ≥ band + max line suffices)."""
     need = max(band_lines_count + max_envelope_line + 1, 2 * max_envelope_line + 2, 16)
-    return int(next_fast_len(need))
+    return fast_length(need)
 
 
 def envelope_amplitude_spectrum(x_g: npt.ArrayLike, fs_hz: float, band_hz: tuple[float, float],
@@ -101,14 +127,16 @@ def envelope_amplitude_spectrum(x_g: npt.ArrayLike, fs_hz: float, band_hz: tuple
     if not 0 < band_hz[0] < band_hz[1] < fs_hz / 2:
         raise PlanError(f"envelope band {band_hz[0]:g}–{band_hz[1]:g} Hz must lie inside 0–{fs_hz / 2:g} Hz "
                         "(Nyquist)")
-    xc, _ = centre(x)
+    finite_mean(x)
     k_lo, k_hi = band_lines(fs_hz, n, band_hz)
     df = fs_hz / n
     fmax = band_hz[1] - band_hz[0] if max_frequency_hz is None else max_frequency_hz
-    m = min_decimated_length(k_hi - k_lo + 1, math.ceil(fmax / df))
-    env = demodulate(np.fft.rfft(xc, axis=-1), k_lo, k_hi, m, n)
-    amp = envelope_spectrum(env, periodic_hann(m))
-    return np.arange(amp.shape[-1]) * df, amp
+    top = math.ceil(fmax / df) + 1
+    m = min_decimated_length(k_hi - k_lo + 1, top)
+    env = demodulate(_fft.rfft(x), k_lo, k_hi, m)  # line 0 (the mean) is outside the band
+    amp = envelope_spectrum(env, n, top + 1)
+    freqs: FloatArray = np.arange(amp.shape[-1]) * df
+    return freqs, amp
 
 
 def search_families(amp: FloatArray, expected_hz: FloatArray, slip: float, harmonics: int,

@@ -20,13 +20,14 @@ Scaling (documented once, used everywhere):
 from __future__ import annotations
 
 import math
-from typing import Literal
+from typing import Any, Literal
 
 import numpy as np
 import numpy.typing as npt
 
+from edgevib.pipelines import _fft
 from edgevib.pipelines.conditioning import STANDARD_GRAVITY_M_S2
-from edgevib.pipelines.indicators import as_channels, centre
+from edgevib.pipelines.indicators import as_channels, finite_mean
 from edgevib.pipelines.types import PlanError
 
 __all__ = [
@@ -44,7 +45,7 @@ G_MM_S2 = STANDARD_GRAVITY_M_S2 * 1000.0  # 1 g in mm/s²
 SPEED_MIN_PROMINENCE = 4.0  # the 1× line of an estimated speed must stand 12 dB over the median (common practice)
 
 
-def hann_lines(spec: ComplexArray, stop: int) -> ComplexArray:
+def hann_lines(spec: npt.NDArray[Any], stop: int) -> npt.NDArray[Any]:
     """Lines ``0 .. stop-1`` of the periodic-Hann-windowed spectrum, from the unwindowed rfft ``spec``.
 
     Parameters
@@ -88,10 +89,10 @@ def amplitude_spectrum(x_g: npt.ArrayLike, fs_hz: float, *,
     """
     x = as_channels(x_g)
     _check_fs(fs_hz)
-    xc, _ = centre(x)
+    xc = x - finite_mean(x)[:, None]
     n = x.shape[-1]
     w = 0.5 - 0.5 * np.cos(2.0 * np.pi * np.arange(n) / n)
-    amp = np.abs(np.fft.rfft(xc * w, axis=-1)) * (2.0 / w.sum())
+    amp: FloatArray = np.abs(_fft.rfft(xc * w)) * (2.0 / w.sum())
     amp[:, 0] /= 2.0
     if n % 2 == 0:
         amp[:, -1] /= 2.0
@@ -161,8 +162,10 @@ def velocity_rms_mm_s(x_g: npt.ArrayLike, fs_hz: float,
     if hi < lo or hi >= n // 2:
         raise PlanError(f"velocity band {band_hz[0]:g}–{band_hz[1]:g} Hz holds no lines below Nyquist "
                         f"{fs_hz / 2:g} Hz at resolution {fs_hz / n:g} Hz")
-    xc, _ = centre(x)
-    lines = hann_lines(np.fft.rfft(xc, axis=-1), hi + 1)
+    spec = _fft.rfft(x)
+    spec[:, 0] = 0.0  # mean removal (finite_mean checks the samples)
+    finite_mean(x)
+    lines = hann_lines(spec, hi + 1)
     inv_w = G_MM_S2 / (2.0 * np.pi * np.arange(lo, hi + 1) * fs_hz / n)
     vel_pow = (lines[:, lo:].real ** 2 + lines[:, lo:].imag ** 2) * inv_w**2
     rms: FloatArray = np.sqrt(vel_pow.sum(axis=-1) * _power_to_ms_factor(n))
