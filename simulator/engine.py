@@ -124,7 +124,8 @@ class _PointModel:
         self.impacts: list[_Impacts] = []
         self._build_tones()
         self._chunks: OrderedDict[tuple[int, int], F64] = OrderedDict()
-        self._tone_orders = np.array(sorted(self.tones), dtype=np.float64)
+        self._static: dict[str, tuple[float, float]] | None = None
+        self._impact_power_cache: dict[tuple[int, float], tuple[float, float]] = {}
 
     # ------------------------------------------------------------------ components
 
@@ -402,42 +403,32 @@ class _PointModel:
             name = f"{order:g}"
             if order in (0.5, 1.0, 2.0, 3.0):
                 orders_mm_s[name] = v
-        # impact lines
+        nus = np.concatenate(line_nu) if line_nu else np.zeros(0)
+        pws = np.concatenate(line_pw) if line_pw else np.zeros(0)
+        to_v = M.G0_M_S2 * 1e3 / (2 * math.pi)
+        in_band = (nus >= band[0]) & (nus <= band[1])
+        v2 = float(np.sum(pws[in_band] * (to_v / nus[in_band]) ** 2))
+        a2 = float(np.sum(pws[nus > 0]))
+        # impact trains: lines and continuous part, per unit amplitude at this speed (cached), scaled by a²
         impacts_info = []
-        cont_parts = []
         for imp in self.impacts:
             a = imp.amp_g * s * s * float(self.multiplier(imp.fault.index, t_s))
             lam = imp.order * f
             impacts_info.append({"fault": imp.fault.type, "impact_rate_hz": lam, "impact_peak_g": a})
-            if lam <= 0 or a <= 0:
-                continue
-            nu_l, pw_l = self._impact_lines(imp, a, lam, f)
-            line_nu.append(nu_l)
-            line_pw.append(pw_l)
-            cont_parts.append((imp, a, lam, f))
-        nus = np.concatenate(line_nu) if line_nu else np.zeros(0)
-        pws = np.concatenate(line_pw) if line_pw else np.zeros(0)
-
-        def psd(nu: F64) -> F64:
-            hs2 = self.sensor.gain(nu) ** 2
-            out = ((self.m.process_noise_ug_rthz * 1e-6 * min(s, 2.0)) ** 2 * self.color.gain(nu) ** 2
-                   + (p.sensor_model.noise_ug_rthz * 1e-6) ** 2) * hs2
-            for imp, a, lam, fr in cont_parts:
-                out = out + self._impact_continuous(imp, a, lam, fr, nu) * hs2
-            out = out + p.sensor_model.lsb_g**2 / 12 / (self.fs / 2)
-            for sf in active_sf:
-                if sf.type == "spikes":
-                    var = (sf.params["rate_per_s"] or 0.0) / self.fs * (sf.params["amplitude_g"] or 0.0) ** 2
-                    out = out + var / (self.fs / 2)
-            return np.asarray(out, dtype=np.float64)
-
-        to_v = M.G0_M_S2 * 1e3 / (2 * math.pi)
-        in_band = (nus >= band[0]) & (nus <= band[1])
-        v2 = float(np.sum(pws[in_band] * (to_v / nus[in_band]) ** 2))
-        grid = np.geomspace(band[0], band[1], 4001)
-        v2 += float(np.trapezoid(psd(grid) * (to_v / grid) ** 2, grid))
-        full = np.linspace(0, self.fs / 2, 8193)
-        a2 = float(np.sum(pws[nus > 0])) + float(np.trapezoid(psd(full), full))
+            if lam > 0 and a > 0:
+                uv2, ua2 = self._impact_unit_power(imp, f)
+                v2 += a * a * uv2
+                a2 += a * a * ua2
+        # noise floors: process noise (∝ speed), sensor noise, ADC quantization, electrical spikes
+        st = self._static_powers()
+        sp = min(s, 2.0)
+        v2 += sp * sp * st["process"][0] + st["sensor"][0] + st["quant"][0]
+        a2 += sp * sp * st["process"][1] + st["sensor"][1] + st["quant"][1]
+        for sf in active_sf:
+            if sf.type == "spikes":
+                var = (sf.params["rate_per_s"] or 0.0) / self.fs * (sf.params["amplitude_g"] or 0.0) ** 2
+                v2 += var * st["white"][0]
+                a2 += var * st["white"][1]
         velocity = math.sqrt(v2)
         accel = math.sqrt(a2)
         exact = not any(sf.type in ("clipping", "cable_fault", "spikes") for sf in active_sf)
@@ -484,6 +475,48 @@ class _PointModel:
         if impacts_info:
             out["impacts"] = impacts_info
         return out
+
+    def _grids(self) -> tuple[F64, F64]:
+        band = self.p.velocity_band_hz
+        return np.geomspace(band[0], band[1], 4001), np.linspace(0, self.fs / 2, 8193)
+
+    def _integrals(self, psd: Any) -> tuple[float, float]:
+        """(velocity² in mm²/s² over the ISO band, acceleration² in g² over 0..fs/2) of a one-sided PSD in g²/Hz."""
+        grid, full = self._grids()
+        to_v = M.G0_M_S2 * 1e3 / (2 * math.pi)
+        return (float(np.trapezoid(psd(grid) * (to_v / grid) ** 2, grid)), float(np.trapezoid(psd(full), full)))
+
+    def _static_powers(self) -> dict[str, tuple[float, float]]:
+        if self._static is None:
+            sm = self.p.sensor_model
+            n_p, n_s = self.m.process_noise_ug_rthz * 1e-6, sm.noise_ug_rthz * 1e-6
+            self._static = {
+                "process": self._integrals(lambda nu: n_p**2 * (self.color.gain(nu) * self.sensor.gain(nu)) ** 2),
+                "sensor": self._integrals(lambda nu: n_s**2 * self.sensor.gain(nu) ** 2),
+                # white at the output: quantization (LSB²/12) and spikes, density var/(fs/2)
+                "quant": self._integrals(lambda nu: np.full_like(nu, sm.lsb_g**2 / 12 / (self.fs / 2))),
+                "white": self._integrals(lambda nu: np.full_like(nu, 1 / (self.fs / 2))),
+            }
+        return self._static
+
+    def _impact_unit_power(self, imp: _Impacts, fr: float) -> tuple[float, float]:
+        key = (id(imp), round(fr, 9))
+        hit = self._impact_power_cache.get(key)
+        if hit is None:
+            lam = imp.order * fr
+            band = self.p.velocity_band_hz
+            nus, pws = self._impact_lines(imp, 1.0, lam, fr)
+            to_v = M.G0_M_S2 * 1e3 / (2 * math.pi)
+            inb = (nus >= band[0]) & (nus <= band[1])
+            lv2 = float(np.sum(pws[inb] * (to_v / nus[inb]) ** 2))
+            la2 = float(np.sum(pws[nus > 0]))
+            cv2, ca2 = self._integrals(lambda nu: self._impact_continuous(imp, 1.0, lam, fr, nu)
+                                       * self.sensor.gain(nu) ** 2)
+            hit = (lv2 + cv2, la2 + ca2)
+            if len(self._impact_power_cache) > 4096:
+                self._impact_power_cache.clear()
+            self._impact_power_cache[key] = hit
+        return hit
 
     def _impact_lines(self, imp: _Impacts, a: float, lam: float, fr: float) -> tuple[F64, F64]:
         """One-sided line powers (g²) at the sampled frequencies of an impact train.
@@ -721,6 +754,11 @@ class Simulation:
             e["velocity_band_hz"] = [float(v) for v in p.velocity_band_hz]
             if p.envelope_band_hz is not None:
                 e["envelope_band_hz"] = [float(v) for v in p.envelope_band_hz]
+            need = _frame_need(p, sc.machine(p.machine_id))
+            if need > frame_samples:
+                e["frame_samples"] = 1 << (need - 1).bit_length()
+            if src["type"] == "opcua":
+                e["node"] = opcua_node(sc, p.point_id)
             if p.bearing is not None:
                 e["bearing"] = {"elements": p.bearing.elements, "ball_diameter_mm": p.bearing.ball_diameter_mm,
                                 "pitch_diameter_mm": p.bearing.pitch_diameter_mm,
@@ -747,6 +785,13 @@ class Simulation:
                   "edit.\n# edgevib monitors and advises; it is not a machinery protection (trip) system.\n\n")
         return header + to_toml(self.daemon_config(source=source, extra=extra, frame_samples=frame_samples,
                                                    overlap=overlap))
+
+
+def _frame_need(p: PointSpec, m: MachineSpec) -> int:
+    """Samples a frame needs: two revolutions at the lowest speed, and a resolution of half the velocity band's
+    lower edge."""
+    lo_rpm = m.speed.knots_rpm[0][1] if m.speed.fixed else m.speed_range_rpm[0]
+    return max(math.ceil(2 * 60.0 / lo_rpm * p.fs_hz), math.ceil(2 * p.fs_hz / p.velocity_band_hz[0]))
 
 
 def opcua_node(scenario: Scenario, point_id: str, leaf: str = "samples") -> str:

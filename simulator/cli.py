@@ -1,0 +1,185 @@
+"""``edgevib simulate``: stream a simulated plant over MQTT and/or OPC UA, or write WAV files, truth and a
+daemon configuration.  Bad options and unusable outputs end with one line on stderr and exit code 2."""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import json
+import math
+import sys
+from pathlib import Path
+from typing import Any
+
+from edgevib.simulator.engine import Simulation, list_scenarios, load_scenario
+from edgevib.simulator.publishers import (
+    MqttPublisher,
+    OpcUaPublisher,
+    PublishError,
+    WavWriter,
+    parse_listen,
+    parse_mqtt_url,
+    stream,
+)
+from edgevib.simulator.scenario import ScenarioError
+
+__all__ = ["configure_simulate", "run_simulate"]
+
+
+class _Fail(Exception):
+    pass
+
+
+def configure_simulate(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--scenario", default="demo", help="built-in scenario name or a scenario TOML path "
+                        "(default: demo)")
+    parser.add_argument("--list", action="store_true", help="list the built-in scenarios and exit")
+    parser.add_argument("--mqtt", metavar="URL", help="publish blocks to this broker, mqtt://host:port")
+    parser.add_argument("--qos", type=int, default=0, help="MQTT QoS, 0 or 1 (default 0)")
+    parser.add_argument("--encoding", default="json", help="block payload: json or binary (default json)")
+    parser.add_argument("--connect-timeout", type=float, default=10.0, metavar="S",
+                        help="keep retrying an unreachable broker this long (default 10 s)")
+    parser.add_argument("--opcua-listen", metavar="HOST:PORT", help="serve the blocks from an OPC UA server")
+    parser.add_argument("--rate", type=float, default=1.0, help="time acceleration: 1 = real time, "
+                        "large = as fast as possible (default 1)")
+    parser.add_argument("--duration", type=float, metavar="S", help="seconds of simulated time (default: until "
+                        "interrupted; for --wav alone the scenario's duration)")
+    parser.add_argument("--seed", type=int, default=0, help="random seed (default 0): same seed, same samples")
+    parser.add_argument("--t0-ns", type=int, metavar="NS", help="timestamp of the first sample (default: now)")
+    parser.add_argument("--truth", metavar="PATH", help="write the analytic truth as JSON")
+    parser.add_argument("--truth-at", type=float, metavar="S", help="simulated time of the truth (default: end of "
+                        "--duration, else 0)")
+    parser.add_argument("--emit-config", metavar="PATH", help="write a daemon configuration for the scenario "
+                        "and these outputs")
+    parser.add_argument("--wav", metavar="DIR", help="write one float32 WAV per point (in g) into DIR")
+
+
+def _check(args: argparse.Namespace) -> None:
+    if args.qos not in (0, 1):
+        raise _Fail(f"--qos {args.qos}: must be 0 or 1")
+    if args.encoding not in ("json", "binary"):
+        raise _Fail(f"--encoding {args.encoding!r}: must be json or binary")
+    for name in ("rate", "duration", "connect_timeout"):
+        v = getattr(args, name)
+        if v is not None and (not math.isfinite(v) or v <= 0):
+            raise _Fail(f"--{name.replace('_', '-')} {v:g}: must be a positive number")
+    if args.truth_at is not None and (not math.isfinite(args.truth_at) or args.truth_at < 0):
+        raise _Fail(f"--truth-at {args.truth_at:g}: must be >= 0")
+    if args.seed < 0:
+        raise _Fail(f"--seed {args.seed}: must be >= 0")
+    if args.mqtt is not None:
+        try:
+            parse_mqtt_url(args.mqtt)
+        except ValueError as exc:
+            raise _Fail(f"--mqtt: {exc}") from exc
+    if args.opcua_listen is not None:
+        try:
+            parse_listen(args.opcua_listen)
+        except ValueError as exc:
+            raise _Fail(f"--opcua-listen: {exc}") from exc
+
+
+def _source(args: argparse.Namespace, sim: Simulation) -> dict[str, Any]:
+    if args.mqtt:
+        return {"name": "sim", "type": "mqtt", "url": args.mqtt, "qos": args.qos,
+                "topics": [f"{sim.scenario.topic_prefix}/+/+/block"], "sensor_from": "payload"}
+    if args.opcua_listen:
+        host, port = parse_listen(args.opcua_listen)
+        return {"name": "sim", "type": "opcua", "endpoint": f"opc.tcp://{host}:{port}/", "mode": "subscribe",
+                "security_policy": "None"}
+    return {"name": "sim", "type": "simulated", "scenario": sim.scenario.name, "seed": args.seed,
+            "rate": min(args.rate, 1000.0)}
+
+
+def _write(path: str, text: str) -> None:
+    try:
+        p = Path(path)
+        if p.parent and not p.parent.exists():
+            p.parent.mkdir(parents=True, exist_ok=True)
+        p.write_text(text, encoding="utf-8")
+    except OSError as exc:
+        raise _Fail(f"cannot write {path}: {exc}") from exc
+
+
+def _write_truth(args: argparse.Namespace, sim: Simulation, t_s: float) -> None:
+    if args.truth:
+        _write(args.truth, json.dumps(sim.truth(t_s), indent=1, allow_nan=False) + "\n")
+
+
+def run_simulate(args: argparse.Namespace) -> int:
+    try:
+        return _run(args)
+    except _Fail as exc:
+        print(f"edgevib simulate: {exc}", file=sys.stderr)
+        return 2
+    except (ScenarioError, PublishError) as exc:
+        print(f"edgevib simulate: {exc}", file=sys.stderr)
+        return 2
+
+
+def _run(args: argparse.Namespace) -> int:
+    if args.list:
+        scenarios = list_scenarios()
+        width = max(len(n) for n in scenarios)
+        for name, desc in scenarios.items():
+            print(f"{name:<{width}}  {desc}")
+        return 0
+    _check(args)
+    scenario = load_scenario(args.scenario)
+    sim = Simulation(scenario, seed=args.seed, t0_ns=args.t0_ns)
+    if args.emit_config:
+        _write(args.emit_config, sim.daemon_config_toml(source=_source(args, sim)))
+        print(f"edgevib simulate: daemon configuration written to {args.emit_config}")
+    streaming = bool(args.mqtt or args.opcua_listen)
+    if not streaming and not args.wav:
+        _write_truth(args, sim, args.truth_at if args.truth_at is not None else (args.duration or 0.0))
+        return 0
+    duration = args.duration if args.duration is not None else (None if streaming else scenario.duration_s)
+    if duration is None:
+        _write_truth(args, sim, args.truth_at or 0.0)
+    return asyncio.run(_stream(args, sim, duration))
+
+
+async def _stream(args: argparse.Namespace, sim: Simulation, duration: float | None) -> int:
+    mqtt = opcua = None
+    wav: dict[str, WavWriter] | None = None
+    try:
+        if args.wav:
+            out = Path(args.wav)
+            try:
+                out.mkdir(parents=True, exist_ok=True)
+            except OSError as exc:
+                raise _Fail(f"cannot create {out}: {exc}") from exc
+            wav = {}
+            for p in sim.points:
+                wav[p.point_id] = WavWriter(out / f"{p.point_id}.wav", p.fs_hz)
+        if args.mqtt:
+            mqtt = MqttPublisher(args.mqtt, qos=args.qos, encoding=args.encoding,
+                                 connect_timeout_s=args.connect_timeout)
+            await asyncio.to_thread(mqtt.connect)
+            print(f"edgevib simulate: publishing {len(sim.points)} points to {args.mqtt} "
+                  f"({sim.scenario.topic_prefix}/<machine>/<point>/block, speeds on "
+                  f"{sim.scenario.topic_prefix}/<machine>/speed in r/min)", flush=True)
+        if args.opcua_listen:
+            host, port = parse_listen(args.opcua_listen)
+            opcua = OpcUaPublisher(sim, host, port)
+            await opcua.start()
+            print(f"edgevib simulate: OPC UA endpoint {opcua.endpoint}", flush=True)
+            for key, node in opcua.node_ids().items():
+                print(f"  {key}: {node}", flush=True)
+        print(f"edgevib simulate: scenario {sim.scenario.name}, seed {sim.seed}, rate {args.rate:g}x, "
+              f"duration {'unbounded' if duration is None else f'{duration:g} s'}", flush=True)
+        t_end = await stream(sim, rate=args.rate, duration_s=duration, mqtt=mqtt, opcua=opcua, wav=wav)
+        if mqtt is not None:
+            await asyncio.to_thread(mqtt.flush, 30.0)
+            print(f"edgevib simulate: {mqtt.published} messages published", flush=True)
+        if duration is not None:
+            _write_truth(args, sim, args.truth_at if args.truth_at is not None else t_end)
+        return 0
+    finally:
+        if mqtt is not None:
+            mqtt.close()
+        if opcua is not None:
+            await opcua.stop()
+        for w in (wav or {}).values():
+            w.close()
