@@ -466,12 +466,9 @@ def make_source(cfg: Any, config: Config, ingest: BlockIngest) -> Source:
 
 def _make_opcua_sink(cls: Any, config: Config) -> FrameSink:
     pc = config.publish_opcua
-    points = {p.id: p for p in config.points}
-    try:
-        return cls(host=pc.host, port=pc.port, namespace=pc.namespace, site=config.site.name, points=points)  # type: ignore[no-any-return]
-    except TypeError:
-        return cls(endpoint=f"opc.tcp://{pc.host}:{pc.port}/", namespace=pc.namespace,  # type: ignore[no-any-return]
-                   site=config.site.name, points=points)
+    sink: FrameSink = cls(listen=pc.listen, host=pc.host, port=pc.port, namespace=pc.namespace,
+                          site=config.site.name, points={p.id: p for p in config.points})
+    return sink
 
 
 async def run(config: Config, *, metrics_listen: tuple[str, int] | None = None,
