@@ -6,13 +6,17 @@ notification, or a polled value with a new source timestamp) becomes one :class:
 * ``seq`` is generated per node by this source (OPC UA carries no sequence number).  When the server's source
   timestamps show that whole blocks were skipped between two values, the counter skips as many, so the ingest
   sees the gap;
-* ``t0_ns`` is the value's ``SourceTimestamp`` (the time the block was written, i.e. just after its last sample)
-  minus the block duration, or the receive time minus the block duration when the server sends none;
+* ``t0_ns`` is the value's ``SourceTimestamp`` minus the block duration (the stamp marks the time just after the
+  block's last sample, ``source_timestamp="end"``, the default) or the stamp itself (``source_timestamp="start"``:
+  servers that stamp a block with its first sample), or the receive time minus the block duration when the server
+  sends no source timestamp;
 * ``fs_hz`` comes from the node's :class:`NodeSpec`, or, when that says ``None``, from a property of the variable
   named ``SampleRate``/``fs_hz``/``SampleRateHz``/``sample_rate_hz`` (read once per connection).
 
-Values that are not 1-D numeric arrays go to ``ingest.reject(source, "malformed", …)``; non-finite samples are
-passed on for the ingest's own validation.  Scalar speed nodes (``speed_nodes``) go to ``ingest.speed``.
+Values that are not 1-D numeric arrays go to ``ingest.reject(source, "malformed", …)``, values with a bad status
+to ``ingest.reject(source, "bad_status", …)``; an empty (null) value or ``BadWaitingForInitialData`` is "no block
+yet" and is skipped.  Non-finite samples are passed on for the ingest's own validation.  Scalar speed nodes
+(``speed_nodes``) go to ``ingest.speed``.
 
 The connection loop lives in :meth:`OpcUaSource.run`: connect (security policy ``None`` or ``Basic256Sha256``
 ``Sign``/``SignAndEncrypt`` with certificate files), resolve the nodes, subscribe or poll, and on any loss — the
@@ -152,8 +156,11 @@ class OpcUaSource:
                  security_policy: str = "None", security_mode: str = "SignAndEncrypt",
                  cert_file: str | None = None, key_file: str | None = None, server_cert_file: str | None = None,
                  username: str | None = None, password: str | None = None,
-                 reconnect_min_s: float = 0.5, reconnect_max_s: float = 30.0, timeout_s: float = 5.0) -> None:
+                 reconnect_min_s: float = 0.5, reconnect_max_s: float = 30.0, timeout_s: float = 5.0,
+                 source_timestamp: str = "end") -> None:
         where = f"sources.{name}"
+        if source_timestamp not in ("end", "start"):
+            raise ConfigError(f"{where}.source_timestamp", f"{source_timestamp!r} is not 'end' or 'start'")
         if not endpoint.startswith("opc.tcp://"):
             raise ConfigError(f"{where}.endpoint", f"{endpoint!r} is not an opc.tcp:// URL")
         if mode not in ("subscribe", "poll"):
@@ -209,6 +216,7 @@ class OpcUaSource:
         self.reconnect_min_s = float(reconnect_min_s)
         self.reconnect_max_s = float(reconnect_max_s)
         self.timeout_s = float(timeout_s)
+        self._stamp_is_end = source_timestamp == "end"
         self._connected = False
         self._stopping = asyncio.Event()
         self._lost = asyncio.Event()
@@ -416,11 +424,15 @@ class OpcUaSource:
                         return
                 state.last_value, state.has_last_value = value, True
             if dv.StatusCode is not None and not dv.StatusCode.is_good():
-                if polled and dv.StatusCode.value in _BAD_SESSION_STATUSES:
+                code = dv.StatusCode.value
+                if polled and code in _BAD_SESSION_STATUSES:
                     self._mark_lost(f"read status {dv.StatusCode.name}")
-                    return
-                self._ingest.reject(self.name, "bad_status", f"node {node_id}: status {dv.StatusCode.name}", node_id)
+                elif code != StatusCodes.BadWaitingForInitialData:
+                    self._ingest.reject(self.name, "bad_status", f"node {node_id}: status {dv.StatusCode.name}",
+                                        node_id)
                 return
+            if value is None:
+                return  # no value yet (a variable created empty): nothing to count
             samples, why = _samples_of(value)
             if samples is None:
                 self._ingest.reject(self.name, "malformed", f"node {node_id}: {why}", node_id)
@@ -430,8 +442,11 @@ class OpcUaSource:
                 elapsed_ns = source_ns - state.last_block_ns
                 if elapsed_ns > 1.5 * duration_ns:  # whole blocks were written that we never saw
                     state.next_seq += round(elapsed_ns / duration_ns) - 1
-            end_ns = source_ns if source_ns is not None else received_ns
-            block = Block(sensor_id=state.spec.sensor_id, seq=state.next_seq, t0_ns=end_ns - duration_ns,
+            if source_ns is not None and not self._stamp_is_end:
+                t0_ns = source_ns
+            else:
+                t0_ns = (source_ns if source_ns is not None else received_ns) - duration_ns
+            block = Block(sensor_id=state.spec.sensor_id, seq=state.next_seq, t0_ns=t0_ns,
                           fs_hz=state.fs_hz, unit=state.spec.unit, samples=samples)
             state.next_seq += 1
             if source_ns is not None:

@@ -15,8 +15,11 @@ import numpy as np
 import pytest
 from asyncua import Server, ua
 from opcua_certs import make_cert
+from prometheus_client import CollectorRegistry
 from servers import free_port
 
+from edgevib.daemon.app import Daemon
+from edgevib.daemon.config import parse_config
 from edgevib.daemon.interfaces import ConfigError
 from edgevib.daemon.sources.opcua import NodeSpec, OpcUaSource
 from edgevib.daemon.wire import Block
@@ -108,6 +111,9 @@ class UaServer:
         self.vars["flags"] = await objects.add_variable(self.nid("QL-B301-NDE-H"), "QL-B301-NDE-H",
                                                         ua.Variant([True, False], ua.VariantType.Boolean))
         self.vars["speed"] = await objects.add_variable(self.nid("P-101.speed"), "P-101.speed", 1480.0)
+        self.vars["empty"] = await objects.add_variable(  # created without a value, like a device before its 1st block
+            self.nid("QL-F201-NDE-V"), "QL-F201-NDE-V", ua.Variant(None, ua.VariantType.Null),
+            datatype=ua.NodeId(ua.ObjectIds.Double))
         return self
 
     def nid(self, name: str) -> ua.NodeId:
@@ -260,6 +266,68 @@ async def test_unknown_node_and_missing_sample_rate_are_rejected(opcua_server: U
         await until(lambda: len(ingest.blocks) >= 1 and len(ingest.rejects) >= 2, "block and rejections")
     assert sorted(r[1] for r in ingest.rejects) == ["no_sample_rate", "unknown_node"]
     assert {b.sensor_id for _, b, _, _ in ingest.blocks} == {"QL-P101-DE-H"}
+
+
+async def test_start_stamped_values_and_an_empty_initial_value(opcua_server: UaServer) -> None:
+    ingest = FakeIngest()
+    empty = opcua_server.node_id("empty")
+    source = make_source(opcua_server, ingest, speed_nodes={}, source_timestamp="start",
+                         nodes={empty: NodeSpec("QL-F201-NDE-V", fs_hz=FS_HZ)})
+    async with running(source):
+        await until(lambda: source.connected, "connection")
+        stamp = EPOCH + datetime.timedelta(seconds=30)
+        await opcua_server.write("empty", block_samples(3), stamp)
+        await until(lambda: len(ingest.blocks) >= 1, "the first written block")
+    assert ingest.rejects == []  # a variable without a value yet is not a malformed block
+    [(_, block, _, _)] = ingest.blocks
+    assert block.seq == 0
+    assert block.t0_ns == round(stamp.timestamp() * 1e9)  # "start": the stamp is the first sample's time
+    np.testing.assert_array_equal(block.samples, np.asarray(block_samples(3)))
+
+
+def sine_block(k: int, f_hz: float = 80.0, amp_g: float = 1.0) -> list[float]:
+    """Block ``k`` of one continuous sine of ``amp_g`` at ``f_hz``."""
+    t = (k * N + np.arange(N)) / FS_HZ
+    return [float(v) for v in amp_g * np.sin(2 * np.pi * f_hz * t)]
+
+
+@pytest.mark.slow
+async def test_daemon_over_opcua_measures_and_counts_the_reconnect(opcua_server: UaServer, tmp_path: Path) -> None:
+    doc = {
+        "site": {"name": "quarry-lane", "state_dir": str(tmp_path)},
+        "analysis": {"frame_samples": 4 * N, "overlap": 0.0, "workers": 1},
+        "sources": [{"name": "booster-plc", "type": "opcua", "endpoint": opcua_server.url,
+                     "reconnect_min_s": 0.1, "reconnect_max_s": 0.5}],
+        "machines": [{"id": "P-101", "group": 2, "support": "rigid", "speed_rpm": 1480.0}],
+        "points": [{"id": "P-101-DE-H", "machine": "P-101", "source": "booster-plc", "sensor": "QL-P101-DE-H",
+                    "node": opcua_server.node_id("acc"), "fs_hz": FS_HZ, "block_samples": N}],
+    }
+    config = parse_config(doc, base_dir=str(tmp_path))
+    await opcua_server.write("acc", sine_block(0), block_time(0))
+    daemon = Daemon(config, registry=CollectorRegistry(), serve_metrics=False)
+    await daemon.start()
+    try:
+        await until(lambda: daemon.stats.connected.get("booster-plc", False), "the daemon's OPC UA connection")
+        for k in range(1, 8):
+            await opcua_server.write("acc", sine_block(k), block_time(k))
+        await until(lambda: daemon.stats.frames_analysed.get("P-101-DE-H", 0) >= 2, "two frames")
+        # sine acceleration a: velocity amplitude a/(2πf), r.m.s. amplitude/√2 (closed form, common practice)
+        expected_mm_s = 1.0 * 9.80665 / (2 * np.pi * 80.0) / np.sqrt(2) * 1e3  # 13.80 mm/s
+        v = daemon.latest["P-101-DE-H"].indicators.velocity_rms_mm_s
+        assert v == pytest.approx(expected_mm_s, rel=0.03)
+
+        await opcua_server.stop()
+        await until(lambda: not daemon.stats.connected.get("booster-plc", True), "the loss")
+        await opcua_server.start()
+        await until(lambda: daemon.stats.connected.get("booster-plc", False), "the reconnect")
+        for k in range(8, 16):
+            await opcua_server.write("acc", sine_block(k), block_time(k))
+        await until(lambda: daemon.stats.frames_analysed.get("P-101-DE-H", 0) >= 4, "frames after the restart")
+        assert daemon.stats.reconnects.get("booster-plc") == 1
+        assert sum(daemon.stats.blocks_rejected.values()) == 0
+        assert daemon.latest["P-101-DE-H"].indicators.velocity_rms_mm_s == pytest.approx(expected_mm_s, rel=0.03)
+    finally:
+        await daemon.stop()
 
 
 @pytest.mark.slow
