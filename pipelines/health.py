@@ -18,8 +18,8 @@ running machine does not produce (FIELD_NOTES §6, common practice):
     the frame's local mean jumping between segments by more than the vibration's own spread (an intermittent
     connector or a cable being moved);
 ``spikes``
-    isolated single-sample excursions far above the robust spread whose neighbours stay low — unlike bearing
-    impacts, which ring a structural resonance over several samples;
+    isolated single-sample excursions far above the robust spread with nothing comparable within ±8 samples —
+    unlike bearing impacts, which ring a structural resonance over many samples;
 ``noise``
     the noise floor (median power spectral density in a band above the machine's content) above the sensor's
     specified noise density by a factor.
@@ -42,6 +42,7 @@ __all__ = ["FAULT_ORDER", "HealthSpec", "SensorFault", "SensorHealth", "check_he
 
 SensorFault = Literal["bias", "flatline", "clipping", "dc-step", "spikes", "noise"]
 FAULT_ORDER: tuple[SensorFault, ...] = ("bias", "flatline", "clipping", "dc-step", "spikes", "noise")
+SPIKE_WINDOW = 8  # samples each side in which a ringing response would show
 _MAD_TO_SIGMA = 1.4826  # σ / median absolute deviation for a Gaussian (common practice)
 
 
@@ -196,13 +197,21 @@ def check_health(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec | None = 
     step = seg_mean.max(axis=1) - seg_mean.min(axis=1)
     step_limit = np.maximum(spec.step_floor_g, spec.step_ratio * within)
 
-    # Spikes: isolated samples far above the robust spread, with low neighbours.
+    # Spikes: samples far above the robust spread with nothing comparable within ±SPIKE_WINDOW samples.  A
+    # bearing impact rings a resonance (opposite half-cycles of similar size a few samples away); an electrical
+    # spike does not.
     med = np.median(x, axis=1, keepdims=True)
     xc_abs = np.abs(x - med)
     sigma_r = _MAD_TO_SIGMA * np.median(xc_abs, axis=1, keepdims=True)
     big = xc_abs > spec.spike_sigma * np.where(sigma_r > 0, sigma_r, np.inf)
-    nb = np.maximum(np.pad(xc_abs[:, :-1], ((0, 0), (1, 0))), np.pad(xc_abs[:, 1:], ((0, 0), (0, 1))))
-    spikes = np.sum(big & (nb < xc_abs / 3.0), axis=1)
+    spikes = np.zeros(c, dtype=np.int64)
+    ci, ii = np.nonzero(big)
+    if ci.size:
+        offs = np.concatenate([np.arange(-SPIKE_WINDOW, 0), np.arange(1, SPIKE_WINDOW + 1)])
+        idx = np.clip(ii[:, None] + offs[None, :], 0, n - 1)
+        around = xc_abs[ci[:, None], idx].max(axis=1)
+        isolated = around < xc_abs[ci, ii] / 3.0
+        spikes = np.bincount(ci[isolated], minlength=c).astype(np.int64)
 
     noise: npt.NDArray[np.float64] | None = None
     if spec.noise_density_ug_rthz is not None:

@@ -59,6 +59,7 @@ class SensorState:
     since_s: float | None = None
     healthy_run: int = 0
     last_frame_s: float | None = None
+    relapses: int = 0  # re-raised soon after clearing: an intermittent fault needs longer to re-arm
 
 
 def _dc_from(cls: Any, d: dict[str, Any]) -> Any:

@@ -1,0 +1,788 @@
+"""The alarm layer as a FrameSink: limits and baselines, run-state suppression, sensor-health gating, events.
+
+For every analysed frame of a point:
+
+1. **Sensor health** (:func:`edgevib.pipelines.health.check_health`): a fault raises one
+   ``io.edgevib.sensor.v1.fault`` event and suppresses that point's machine alarms (reason ``sensor-fault``) —
+   a sensor fault is never reported as a machine fault.  It clears after ``sensor_recover_frames`` healthy
+   frames.  A point without frames for ``no_data_frames`` frame periods gets the ``no-data`` fault.
+2. **Run state** per machine: stopped when the overall velocity is under ``run_threshold_velocity_mm_s`` or a
+   measured (not estimated) speed is under the machine's ``run_threshold_rpm``; after a start its alarms stay
+   suppressed for ``startup_grace_s`` (reason ``machine-stopped`` / ``start-up-grace``).
+3. **Baselines** learn each indicator's mean and spread over ``baseline_frames`` valid running frames.
+4. **Limits** resolve to set points (ISO 20816-3, absolute, baseline-relative), the pure state machine
+   (:mod:`edgevib.pipelines.alarm`) steps, and each transition becomes an ``io.edgevib.alarm.v1.transition``
+   event with value, limit, trend slope and advice; transitions into alert or danger save a waveform capture.
+5. State changes and their events are committed in one SQLite transaction before anything is published.
+
+Time for the state machine is the frames' measurement time (``t_end_ns``); shelf expiries are set on that
+timeline.  edgevib monitors and advises; it is not a machinery protection system.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import json
+import math
+import threading
+import time
+from collections import deque
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import structlog
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
+from prometheus_client.registry import Collector
+
+from edgevib.daemon.alarms.capture import CaptureStore
+from edgevib.daemon.alarms.config import INDICATORS, AlarmSettings, LevelRule, LimitConfig, default_settings
+from edgevib.daemon.alarms.control import CommandError, ControlServer, handle_payload
+from edgevib.daemon.alarms.feed import (
+    ALARM_TYPE,
+    BASELINE_TYPE,
+    SENSOR_TYPE,
+    MqttFeed,
+    WebhookFeed,
+    cloud_event,
+    event_body,
+)
+from edgevib.daemon.alarms.outbox import Database, Outbox, OutboxEvent
+from edgevib.daemon.alarms.state import Baseline, SensorState, StateStore, restart_tracking
+from edgevib.daemon.interfaces import FrameResult
+from edgevib.pipelines.alarm import (
+    AlarmState,
+    Level,
+    LimitSpec,
+    Transition,
+    acknowledge,
+    display_severity,
+    isa_state,
+    shelve,
+    step,
+    unshelve,
+)
+from edgevib.pipelines.health import HealthSpec, SensorHealth, check_health
+from edgevib.pipelines.types import PipelineError
+
+__all__ = ["AlarmCollector", "AlarmLayer", "advice_text", "trend_slope_per_h"]
+
+log = structlog.get_logger("edgevib.alarms")
+
+SEVERITY = ("normal", "alert", "danger")
+RELAPSE_WINDOW_S = 120.0  # a sensor fault back within this time of clearing doubles, triples… the re-arm delay
+_DISCLAIMER = "edgevib monitors and advises; it is not a protection system."
+_FAULT_HINT = {
+    "overall": "An overall level sums every vibration source the sensor picks up: look at the narrow-band "
+               "indicators before concluding what is wrong.",
+    "impacting": "Rising impact indicators (crest factor, kurtosis) can mean early bearing or gear damage; trend "
+                 "them together with the r.m.s. level.",
+    "imbalance": "A rise at 1× running speed often points to imbalance.",
+    "misalignment": "A rise at 2× running speed often points to misalignment.",
+    "looseness": "Harmonics and sub-harmonics (0.5×) of running speed often point to mechanical looseness.",
+}
+
+
+def trend_slope_per_h(points: Iterable[tuple[float, float]]) -> float | None:
+    """Least-squares slope of ``(t_s, value)`` pairs in value units per hour (``None`` for fewer than 3)."""
+    pts = list(points)
+    if len(pts) < 3:
+        return None
+    t = np.array([p[0] for p in pts], dtype=np.float64)
+    v = np.array([p[1] for p in pts], dtype=np.float64)
+    t = t - t.mean()
+    den = float(np.dot(t, t))
+    if den <= 0:
+        return None
+    return float(np.dot(t, v - v.mean()) / den * 3600.0)
+
+
+def advice_text(severity: int, fault: str, transition: str, value: float | None, danger: float | None,
+                slope_per_h: float | None) -> str:
+    """Advice in plain words matched to severity (deferring to site procedures and a qualified analyst)."""
+    hint = _FAULT_HINT.get(fault) or (f"Energy at a {fault.removeprefix('bearing ')} defect frequency points to "
+                                      f"rolling-element bearing damage." if fault.startswith("bearing") else "")
+    if severity == 0:
+        return f"Back below the clear threshold; keep trending. {_DISCLAIMER}"
+    if severity >= 2:
+        head = ("Act now within the site's procedures and have a qualified vibration analyst confirm the "
+                "diagnosis before any intervention.")
+    elif slope_per_h is not None and slope_per_h > 0 and value is not None and danger is not None and \
+            value < danger and (danger - value) / slope_per_h < 14 * 24:
+        days = (danger - value) / slope_per_h / 24.0
+        head = (f"Plan an inspection or repair: at the present trend the danger level would be reached in about "
+                f"{max(days, 0.1):.1f} days.")
+    else:
+        head = ("Keep watching and trending: an early change like this is usually kept under observation and "
+                "repaired when its severity calls for it.")
+    if transition in ("acknowledged", "shelved", "unshelved", "reset", "suppressed", "unsuppressed", "latched"):
+        head = f"Operator or suppression change; the alarm is {SEVERITY[min(severity, 2)]}. " + head
+    return " ".join(x for x in (head, hint, _DISCLAIMER) if x)
+
+
+@dataclass
+class _Machine:
+    running: dict[str, bool] = field(default_factory=dict)  # point -> verdict of its latest frame
+    is_running: bool = False
+    since_s: float | None = None  # start of the current run
+
+
+@dataclass
+class _Pending:
+    alarms: dict[tuple[str, str], AlarmState] = field(default_factory=dict)
+    sensors: dict[str, SensorState] = field(default_factory=dict)
+    baselines: dict[tuple[str, str], Baseline] = field(default_factory=dict)
+    events: list[OutboxEvent] = field(default_factory=list)
+    forget: set[str] = field(default_factory=set)
+    points: set[str] = field(default_factory=set)
+
+
+class AlarmLayer:
+    """The alarm layer (a :class:`~edgevib.daemon.interfaces.FrameSink`).
+
+    ``config`` is the daemon configuration; ``settings`` the parsed alarm settings (default: ``config.alarms``).
+    ``registry``: a Prometheus registry to register :attr:`collector` on at start.
+    """
+
+    def __init__(self, config: Any, settings: AlarmSettings | None = None, *, registry: Any = None,
+                 clock: Callable[[], float] = time.time, monotonic: Callable[[], float] = time.monotonic) -> None:
+        if settings is None:
+            settings = config.alarms if isinstance(config.alarms, AlarmSettings) else default_settings(config)
+        self.config = config
+        self.settings = settings
+        self.registry = registry
+        self.clock = clock
+        self.monotonic = monotonic
+        self.points = {p.id: p for p in config.points}
+        self.machines_cfg = {m.id: m for m in config.machines}
+        self.limits: dict[tuple[str, str], LimitConfig] = {lim.key: lim for lim in settings.limits}
+        self._by_point: dict[str, list[LimitConfig]] = {}
+        for lim in settings.limits:
+            self._by_point.setdefault(lim.point, []).append(lim)
+        self.alarms: dict[tuple[str, str], AlarmState] = {}
+        self.specs: dict[tuple[str, str], LimitSpec] = {}
+        self.values: dict[tuple[str, str], float] = {}
+        self.baselines: dict[tuple[str, str], Baseline] = {}
+        self.sensors: dict[str, SensorState] = {}
+        self.trends: dict[tuple[str, str], deque[tuple[float, float]]] = {}
+        self.machines: dict[str, _Machine] = {m: _Machine() for m in self.machines_cfg}
+        self.last_frame: dict[str, float] = {}   # point -> latest frame time (measurement timeline)
+        self.last_seen: dict[str, float] = {}    # point -> monotonic arrival time
+        self.suppressed: dict[str, str | None] = {}
+        self.events_total: dict[str, int] = {}
+        self.health_errors = 0
+        self.db: Database | None = None
+        self.outbox: Outbox | None = None
+        self.store: StateStore | None = None
+        self.capture = CaptureStore(replace(settings.capture, enabled=False))
+        self.mqtt: MqttFeed | None = None
+        self.webhook: WebhookFeed | None = None
+        self.control: ControlServer | None = None
+        self.collector = AlarmCollector(self)
+        self._lock = threading.RLock()
+        self._tasks: list[asyncio.Task[None]] = []
+        self._started = False
+        self._loop: asyncio.AbstractEventLoop | None = None
+        self._source = settings.feed.event_source
+        self.listeners: list[Callable[[dict[str, Any]], None]] = []  # called with each committed CloudEvent
+
+    # ------------------------------------------------------------------------------------------ lifecycle
+
+    async def start(self) -> None:
+        s = self.settings
+        self._loop = asyncio.get_running_loop()
+        state_dir = Path(s.state_dir)
+        state_dir.mkdir(parents=True, exist_ok=True)
+        self.db = Database(state_dir / "alarms.sqlite")
+        sinks = []
+        if s.feed.enabled and s.feed.connection is not None:
+            sinks.append(MqttFeed.sink)
+        if s.feed.enabled and s.feed.webhook is not None:
+            sinks.append(WebhookFeed.sink)
+        self.outbox = Outbox(self.db, sinks)
+        self.store = StateStore(self.db)
+        self._restore()
+        self.capture = await asyncio.to_thread(CaptureStore, s.capture)
+        now = self.monotonic()
+        for pid in self.points:
+            self.last_seen.setdefault(pid, now)
+        if s.feed.enabled and s.feed.connection is not None:
+            self.mqtt = MqttFeed(s.feed, self.outbox, self.state_messages,
+                                 on_command=lambda b: handle_payload(b, self.handle_command))
+            self._tasks.append(asyncio.get_running_loop().create_task(self.mqtt.run(), name="edgevib-alarm-feed"))
+        if s.feed.enabled and s.feed.webhook is not None:
+            self.webhook = WebhookFeed(s.feed.webhook, self.outbox)
+            self._tasks.append(asyncio.get_running_loop().create_task(self.webhook.run(), name="edgevib-webhook"))
+        self.control = ControlServer(s.socket_path, self.handle_command, mode=s.socket_mode)
+        try:
+            await self.control.start()
+        except OSError as exc:
+            log.error("alarm control socket unavailable", path=s.socket_path, error=str(exc))
+            self.control = None
+        self._tasks.append(asyncio.get_running_loop().create_task(self._timer(), name="edgevib-alarm-timer"))
+        if self.registry is not None:
+            with contextlib.suppress(ValueError):
+                self.registry.register(self.collector)
+        self._started = True
+        log.info("alarm layer started", limits=len(self.limits), points=len(self.points), sinks=sinks,
+                 pending=self.outbox.depth())
+
+    def _restore(self) -> None:
+        assert self.store is not None
+        restored = self.store.load_alarms()
+        self.alarms = {k: restart_tracking(v) for k, v in restored.items() if k in self.limits}
+        self.baselines = {k: v for k, v in self.store.load_baselines().items() if k in self.limits}
+        self.sensors = {k: v for k, v in self.store.load_sensors().items() if k in self.points}
+        for key in self.limits:
+            self.specs[key] = self._spec(self.limits[key])
+        active = sum(1 for k, a in self.alarms.items() if display_severity(a, self.specs[k]) > 0)
+        if restored:
+            log.info("alarm state restored", alarms=len(self.alarms), active=active,
+                     sensor_faults=sum(1 for s in self.sensors.values() if s.fault))
+
+    async def stop(self) -> None:
+        self._started = False
+        for feed in (self.mqtt, self.webhook):
+            if feed is not None:
+                with contextlib.suppress(Exception):
+                    await feed.stop()
+        for t in self._tasks:
+            if not t.done():
+                try:
+                    await asyncio.wait_for(asyncio.shield(t), 3.0)
+                except (TimeoutError, asyncio.CancelledError, Exception):
+                    t.cancel()
+        await asyncio.gather(*self._tasks, return_exceptions=True)
+        self._tasks.clear()
+        if self.control is not None:
+            await self.control.stop()
+        if self.registry is not None:
+            with contextlib.suppress(KeyError):
+                self.registry.unregister(self.collector)
+        if self.db is not None:
+            with self._lock:
+                self.db.close()
+            self.db = None
+
+    def reconfigure(self, config: Any) -> None:
+        """A reload keeps the running layer; new limits take effect on the next start (logged)."""
+        if getattr(config, "alarms", None) != self.settings:
+            log.warning("alarm settings changed; restart edgevib to apply them")
+
+    # ------------------------------------------------------------------------------------------ limits
+
+    def _level_value(self, rule: LevelRule | None, which: str, lim: LimitConfig, base: Baseline | None) -> float | None:
+        if rule is None:
+            return None
+        iso = lim.iso_mm_s
+        learned = base is not None and base.learned
+        if rule.kind == "absolute":
+            return rule.value
+        if rule.kind == "iso":
+            return None if iso is None else (iso[1] if which == "alert" else iso[2])
+        if rule.kind == "iso-baseline":
+            if iso is None:
+                return None
+            if not learned or base is None:
+                return iso[1]
+            # ISO 10816-3/20816-3 guidance (FIELD_NOTES §1): baseline + 0.25 × B/C, not above 1.25 × B/C.
+            return min(base.mean + 0.25 * iso[1], 1.25 * iso[1])
+        if not learned or base is None:
+            return None
+        if rule.kind == "factor":
+            return base.mean * rule.value if base.mean > 0 else None
+        spread = max(base.std, 0.01 * abs(base.mean), 1e-9)
+        return base.mean + rule.value * spread
+
+    def _spec(self, lim: LimitConfig) -> LimitSpec:
+        base = self.baselines.get(lim.key)
+        a = self._level_value(lim.alert, "alert", lim, base)
+        d = self._level_value(lim.danger, "danger", lim, base)
+        if a is not None and d is not None and a >= d:
+            a = None  # a baseline-derived alert at or above danger adds nothing
+        def lvl(v: float | None) -> Level | None:
+            if v is None or not math.isfinite(v) or v == 0:
+                return None
+            return Level(v, v - lim.deadband * abs(v))
+        return LimitSpec(alert=lvl(a), danger=lvl(d), on_delay=lim.on_delay, off_delay=lim.off_delay,
+                         latching=lim.latching)
+
+    # ------------------------------------------------------------------------------------------ frames
+
+    async def on_frames(self, results: list[FrameResult]) -> None:
+        if not self._started or not results:
+            return
+        mine = [r for r in results if r.point_id in self.points]
+        if not mine:
+            return
+        now_m = self.monotonic()
+        for r in mine:
+            self.last_seen[r.point_id] = now_m
+        health = await asyncio.to_thread(self._health, mine)
+        pending = await asyncio.to_thread(self._process, mine, health)
+        await self._commit(pending)
+
+    def _health(self, results: list[FrameResult]) -> list[SensorHealth | None]:
+        """Health of every frame, batched over points that share a spec, length and rate."""
+        out: list[SensorHealth | None] = [None] * len(results)
+        if not self.settings.health_enabled:
+            return out
+        groups: dict[tuple[HealthSpec, int, float], list[int]] = {}
+        for i, r in enumerate(results):
+            spec = self.settings.health.get(r.point_id, HealthSpec())
+            groups.setdefault((spec, int(np.asarray(r.samples).size), r.fs_hz), []).append(i)
+        for (spec, _, fs), idx in groups.items():
+            try:
+                res = check_health(np.stack([np.asarray(results[i].samples, dtype=np.float64).reshape(-1)
+                                             for i in idx]), fs, spec)
+            except PipelineError as exc:
+                self.health_errors += 1
+                log.warning("sensor health check failed", points=[results[i].point_id for i in idx], error=str(exc))
+                continue
+            for i, h in zip(idx, res, strict=True):
+                out[i] = h
+        return out
+
+    def _process(self, results: list[FrameResult], health: list[SensorHealth | None]) -> _Pending:
+        pend = _Pending()
+        with self._lock:
+            for r, h in zip(results, health, strict=True):
+                self._frame(r, h, pend)
+        return pend
+
+    def _count(self, kind: str) -> None:
+        self.events_total[kind] = self.events_total.get(kind, 0) + 1
+
+    def _running_verdict(self, r: FrameResult) -> bool:
+        ind = r.indicators
+        m = self.machines_cfg.get(r.machine_id)
+        v = ind.velocity_rms_mm_s
+        if not (math.isfinite(v) and v >= self.settings.run_threshold_velocity_mm_s):
+            return False
+        if m is not None and ind.shaft_hz is not None and not ind.shaft_estimated and math.isfinite(ind.shaft_hz):
+            return bool(ind.shaft_hz * 60.0 >= float(m.run_threshold_rpm))
+        return True
+
+    def _frame(self, r: FrameResult, h: SensorHealth | None, pend: _Pending) -> None:
+        pid, t_s = r.point_id, r.t_end_ns / 1e9
+        self.last_frame[pid] = t_s
+        sensor = self._sensor(r, h, t_s, pend)
+        mach = self.machines.setdefault(r.machine_id, _Machine())
+        if sensor.fault is None:
+            mach.running[pid] = self._running_verdict(r)
+        else:
+            mach.running.pop(pid, None)
+        was = mach.is_running
+        mach.is_running = any(mach.running.values())
+        if mach.is_running and not was:
+            mach.since_s = t_s
+        if sensor.fault is not None:
+            reason: str | None = "sensor-fault"
+        elif not mach.is_running:
+            reason = "machine-stopped"
+        elif mach.since_s is not None and t_s - mach.since_s < self.settings.startup_grace_s:
+            reason = "start-up-grace"
+        else:
+            reason = None
+        self.suppressed[pid] = reason
+        for lim in self._by_point.get(pid, ()):
+            key = lim.key
+            value = INDICATORS[lim.indicator].extract(r.indicators)
+            if value is None or not math.isfinite(value):
+                continue
+            if reason is None:
+                self.values[key] = value
+                tr = self.trends.setdefault(key, deque(maxlen=self.settings.trend_frames))
+                tr.append((t_s, value))
+                if lim.needs_baseline:
+                    b = self.baselines.get(key, Baseline())
+                    if not b.learned:
+                        nb = b.add(value, t_s, self.settings.baseline_frames)
+                        self.baselines[key] = pend.baselines[key] = nb
+                        if nb.learned:
+                            self.specs[key] = self._spec(lim)
+                            self._baseline_event(r, lim, nb, "learned", None, pend)
+            spec = self.specs.get(key) or self._spec(lim)
+            self.specs[key] = spec
+            state, transitions = step(self.alarms.get(key, AlarmState()), value, t_s, spec, reason)
+            self.alarms[key] = pend.alarms[key] = state
+            for tr_ in transitions:
+                self._alarm_event(r, lim, tr_, pend)
+        pend.points.add(pid)
+
+    def _sensor(self, r: FrameResult, h: SensorHealth | None, t_s: float, pend: _Pending) -> SensorState:
+        pid = r.point_id
+        s = self.sensors.get(pid, SensorState())
+        s = replace(s, last_frame_s=t_s)
+        if s.fault == "no-data":  # frames flow again
+            s = replace(s, fault=None, detail="", since_s=t_s, healthy_run=0)
+            self._sensor_event(pid, r.machine_id, "cleared", "no-data", "frames arrive again", r.t_end_ns, pend)
+        if h is not None and h.fault is not None:
+            if s.fault is None:
+                recent = s.since_s is not None and t_s - s.since_s < RELAPSE_WINDOW_S
+                s = replace(s, fault=h.fault, detail=h.detail, since_s=t_s, healthy_run=0,
+                            relapses=min(s.relapses + 1, 9) if recent else 0)
+                self._sensor_event(pid, r.machine_id, "raised", h.fault, h.detail, r.t_end_ns, pend)
+            else:
+                s = replace(s, healthy_run=0, detail=h.detail if h.fault == s.fault else s.detail)
+        elif h is not None and s.fault is not None:
+            run = s.healthy_run + 1
+            if run >= self.settings.sensor_recover_frames * (1 + s.relapses):
+                self._sensor_event(pid, r.machine_id, "cleared", s.fault, f"{run} healthy frames", r.t_end_ns, pend)
+                s = replace(s, fault=None, detail="", since_s=t_s, healthy_run=0)
+            else:
+                s = replace(s, healthy_run=run)
+        self.sensors[pid] = pend.sensors[pid] = s
+        return s
+
+    # ------------------------------------------------------------------------------------------ events
+
+    def _topic(self, point: str, machine: str) -> str:
+        return self.settings.feed.topic.format(site=self.settings.site, machine=machine, point=point)
+
+    def _base_data(self, point: str, machine: str) -> dict[str, Any]:
+        p = self.points.get(point)
+        return {"site": self.settings.site, "machine": machine, "point": point,
+                "axis": getattr(p, "axis", None)}
+
+    def _emit(self, type_: str, point: str, machine: str, data: dict[str, Any], t_ns: int, pend: _Pending,
+              event_id: str | None = None) -> str:
+        ev = cloud_event(type_=type_, source=self._source, subject=point, data=data, time_ns=t_ns,
+                         event_id=event_id)
+        pend.events.append(OutboxEvent(id=ev["id"], type=type_, subject=point, topic=self._topic(point, machine),
+                                       body=event_body(ev), created_ns=time.time_ns()))
+        pend.points.add(point)
+        return str(ev["id"])
+
+    def _sensor_event(self, point: str, machine: str, transition: str, fault: str, detail: str, t_ns: int,
+                      pend: _Pending) -> None:
+        raised = transition == "raised"
+        data = {**self._base_data(point, machine), "transition": transition,
+                "state": "sensor-fault" if raised else "normal", "fault": fault, "detail": detail,
+                "advice": ("Check the sensor, its cable, connector and mounting: this is a measurement problem, not "
+                           "a machine finding. Machine alarms of this point are suppressed until it recovers. "
+                           + _DISCLAIMER) if raised else
+                          "The sensor signal looks healthy again; machine alarms of this point are re-armed."}
+        self._emit(SENSOR_TYPE, point, machine, data, t_ns, pend)
+        self._count("sensor-fault" if raised else "sensor-recovered")
+        log.warning("sensor fault" if raised else "sensor recovered", point=point, fault=fault, detail=detail)
+
+    def _baseline_event(self, r: FrameResult | None, lim: LimitConfig, b: Baseline, transition: str, by: str | None,
+                        pend: _Pending) -> None:
+        p = self.points[lim.point]
+        data = {**self._base_data(lim.point, p.machine), "indicator": lim.indicator, "transition": transition,
+                "mean": b.mean, "std": b.std, "frames": b.n, "by": by}
+        t_ns = r.t_end_ns if r is not None else time.time_ns()
+        self._emit(BASELINE_TYPE, lim.point, p.machine, data, t_ns, pend)
+        self._count(f"baseline-{transition}")
+
+    def _alarm_event(self, r: FrameResult | None, lim: LimitConfig, tr: Transition, pend: _Pending,
+                     by: str | None = None) -> None:
+        p = self.points[lim.point]
+        key = lim.key
+        spec = self.specs.get(key)
+        slope = trend_slope_per_h(self.trends.get(key, ()))
+        danger = spec.danger.set_point if spec is not None and spec.danger is not None else None
+        idef = INDICATORS[lim.indicator]
+        data: dict[str, Any] = {
+            **self._base_data(lim.point, p.machine), "indicator": lim.indicator, "unit": idef.unit,
+            "fault_kind": idef.fault, "transition": tr.kind, "state": SEVERITY[tr.to_severity],
+            "from_state": SEVERITY[tr.from_severity], "alarm_state": tr.to_state, "from_alarm_state": tr.from_state,
+            "value": tr.value, "limit": tr.limit, "clear": tr.clear,
+            "alert_limit": spec.alert.set_point if spec is not None and spec.alert is not None else None,
+            "danger_limit": danger, "trend_per_hour": slope,
+            "iso_zone": r.iso_zone if r is not None else None, "reason": tr.reason, "by": by,
+            "advice": advice_text(tr.to_severity, idef.fault, tr.kind, tr.value, danger, slope),
+            "capture": None,
+        }
+        from edgevib.daemon.alarms.outbox import new_event_id
+
+        eid = new_event_id()
+        if r is not None and tr.kind in ("raised", "escalated") and tr.to_severity > 0:
+            data["capture"] = self.capture.save(
+                r, indicator=lim.indicator, transition=tr.kind, severity=SEVERITY[tr.to_severity], event_id=eid,
+                limits={"alert": data["alert_limit"], "danger": data["danger_limit"], "clear": tr.clear,
+                        "rule": {"alert": _rule(lim.alert), "danger": _rule(lim.danger)}},
+                config_digest=self.settings.config_digest, site=self.settings.site)
+        t_ns = r.t_end_ns if r is not None else round(tr.at_s * 1e9)
+        self._emit(ALARM_TYPE, lim.point, p.machine, data, t_ns, pend, event_id=eid)
+        self._count(tr.kind)
+        log.info("alarm " + tr.kind, point=lim.point, indicator=lim.indicator, state=SEVERITY[tr.to_severity],
+                 value=tr.value, limit=tr.limit)
+
+    async def _commit(self, pend: _Pending) -> None:
+        if not (pend.alarms or pend.sensors or pend.baselines or pend.events or pend.forget):
+            return
+        await asyncio.to_thread(self._write, pend)
+        self._notify(pend)
+        if pend.events:
+            for feed in (self.mqtt, self.webhook):
+                if feed is not None:
+                    feed.wake()
+        if self.mqtt is not None and pend.points:
+            self.mqtt.publish_states(pend.points)
+
+    def _notify(self, pend: _Pending) -> None:
+        for e in pend.events:
+            for cb in self.listeners:
+                try:
+                    cb(json.loads(e.body))
+                except Exception as exc:  # a listener never breaks the layer
+                    log.warning("event listener failed", error=repr(exc))
+
+    def _write(self, pend: _Pending) -> None:
+        if self.db is None or self.store is None or self.outbox is None:
+            return
+        with self._lock, self.db.transaction() as c:
+            for point in pend.forget:
+                self.store.forget_baselines(c, point)
+            self.store.save(c, alarms=pend.alarms, sensors=pend.sensors, baselines=pend.baselines)
+            self.outbox.add(pend.events, conn=c)
+
+    # ------------------------------------------------------------------------------------------ timers
+
+    async def _timer(self) -> None:
+        while self._started:
+            await asyncio.sleep(1.0)
+            try:
+                pend = self._tick()
+                await self._commit(pend)
+            except Exception as exc:  # the timer never dies
+                log.error("alarm timer failed", error=repr(exc))
+
+    def _frame_period_s(self, pid: str) -> float:
+        p = self.points[pid]
+        hop = getattr(p, "hop_samples", None) or getattr(p, "frame_samples", 16384)
+        return float(hop or 16384) / float(p.fs_hz)
+
+    def _tick(self) -> _Pending:
+        """No-data detection (wall-clock) and shelf expiry between frames."""
+        pend = _Pending()
+        now_m = self.monotonic()
+        with self._lock:
+            for pid, p in self.points.items():
+                limit_s = max(2.0, self.settings.no_data_frames * self._frame_period_s(pid))
+                s = self.sensors.get(pid, SensorState())
+                if now_m - self.last_seen.get(pid, now_m) > limit_s and s.fault != "no-data":
+                    detail = f"no frames for more than {limit_s:.1f} s ({self.settings.no_data_frames} frame periods)"
+                    t_ns = round(self.last_frame.get(pid, self.clock()) * 1e9)
+                    self._sensor_event(pid, p.machine, "raised", "no-data", detail, t_ns, pend)
+                    s = replace(s, fault="no-data", detail=detail, since_s=self.last_frame.get(pid), healthy_run=0)
+                    self.sensors[pid] = pend.sensors[pid] = s
+                    for lim in self._by_point.get(pid, ()):
+                        st, trs = step(self.alarms.get(lim.key, AlarmState()), math.nan,
+                                       self.last_frame.get(pid, 0.0), self.specs[lim.key], "sensor-fault")
+                        self.alarms[lim.key] = pend.alarms[lim.key] = st
+                        for tr in trs:
+                            self._alarm_event(None, lim, tr, pend)
+                    self.suppressed[pid] = "sensor-fault"
+        return pend
+
+    # ------------------------------------------------------------------------------------------ commands
+
+    def _targets(self, req: dict[str, Any]) -> list[LimitConfig]:
+        point = req["point"]
+        if point not in self.points:
+            raise CommandError(f"unknown point {point!r}")
+        lims = self._by_point.get(point, [])
+        ind = req.get("indicator")
+        if ind is not None:
+            lims = [lim for lim in lims if lim.indicator == ind]
+            if not lims:
+                raise CommandError(f"point {point!r} has no limit on {ind!r} (limits: "
+                                   f"{', '.join(x.indicator for x in self._by_point.get(point, [])) or 'none'})")
+        return lims
+
+    def handle_command(self, req: dict[str, Any]) -> Any:
+        """Run one validated command (see :mod:`edgevib.daemon.alarms.control`); raises CommandError."""
+        cmd = req["cmd"]
+        if cmd == "list":
+            if req.get("point") is not None and req["point"] not in self.points:
+                raise CommandError(f"unknown point {req['point']!r}")
+            return self.snapshot(req.get("point"))
+        pend = _Pending()
+        by = req.get("by")
+        changed = 0
+        with self._lock:
+            lims = self._targets(req)
+            t_s = self.last_frame.get(req["point"], self.clock())
+            for lim in lims:
+                key, spec = lim.key, self.specs.get(lim.key) or self._spec(lim)
+                st = self.alarms.get(key, AlarmState())
+                if cmd == "ack":
+                    st2, trs = acknowledge(st, t_s, spec)
+                elif cmd == "shelve":
+                    dur = float(req["duration_s"])
+                    if dur > self.settings.max_shelve_s:
+                        raise CommandError(f"shelve: {dur:g} s exceeds the maximum {self.settings.max_shelve_s:g} s")
+                    st2, trs = shelve(st, str(req["reason"]), t_s + dur, t_s, spec)
+                elif cmd == "unshelve":
+                    st2, trs = unshelve(st, t_s, spec, reason=f"by {by}" if by else "by command")
+                elif cmd == "relearn":
+                    if not lim.needs_baseline:
+                        continue
+                    self.baselines.pop(key, None)
+                    self.specs[key] = self._spec(lim)
+                    pend.forget.add(lim.point)
+                    self._baseline_event(None, lim, Baseline(), "relearn", by, pend)
+                    changed += 1
+                    continue
+                else:  # pragma: no cover - validate_request allows only the commands above
+                    raise CommandError(f"unknown command {cmd!r}")
+                if st2 != st:
+                    changed += 1
+                self.alarms[key] = pend.alarms[key] = st2
+                for tr in trs:
+                    self._alarm_event(None, lim, tr, pend, by=by)
+            # Commands run on a worker thread (socket) or the event loop (MQTT): write synchronously.
+            self._write(pend)
+        self._notify(pend)
+        loop = self._loop
+        if loop is not None and (pend.events or pend.points):
+            loop.call_soon_threadsafe(self._after_command, pend.points)
+        return {"changed": changed, "events": len(pend.events)}
+
+    def _after_command(self, points: set[str]) -> None:
+        for feed in (self.mqtt, self.webhook):
+            if feed is not None:
+                feed.wake()
+        if self.mqtt is not None:
+            self.mqtt.publish_states(points)
+
+    # ------------------------------------------------------------------------------------------ views
+
+    def _alarm_row(self, key: tuple[str, str]) -> dict[str, Any]:
+        lim = self.limits[key]
+        spec = self.specs.get(key) or self._spec(lim)
+        st = self.alarms.get(key, AlarmState())
+        b = self.baselines.get(key)
+        return {"point": key[0], "indicator": key[1], "state": isa_state(st, spec),
+                "severity": SEVERITY[display_severity(st, spec)], "value": self.values.get(key),
+                "alert": spec.alert.set_point if spec.alert else None,
+                "danger": spec.danger.set_point if spec.danger else None,
+                "shelved_until_s": st.shelved_until_s, "shelve_reason": st.shelve_reason,
+                "suppressed": st.suppressed,
+                "baseline": None if b is None else {"learned": b.learned, "mean": b.mean, "std": b.std,
+                                                    "frames": b.n}}
+
+    def snapshot(self, point: str | None = None) -> dict[str, Any]:
+        with self._lock:
+            keys = [k for k in self.limits if point is None or k[0] == point]
+            sensors = {pid: {"fault": s.fault, "detail": s.detail} for pid, s in self.sensors.items()
+                       if point is None or pid == point}
+            return {"alarms": [self._alarm_row(k) for k in keys], "sensors": sensors,
+                    "outbox_pending": self.outbox.depth() if self.outbox is not None else 0}
+
+    def point_severity(self, point: str) -> int:
+        """0 normal, 1 alert, 2 danger, 3 sensor fault (suppressed alarms count as normal)."""
+        s = self.sensors.get(point)
+        if s is not None and s.fault is not None:
+            return 3
+        worst = 0
+        for lim in self._by_point.get(point, ()):
+            st = self.alarms.get(lim.key)
+            if st is not None and st.suppressed is None:
+                worst = max(worst, display_severity(st, self.specs.get(lim.key) or self._spec(lim)))
+        return worst
+
+    def state_text(self, point_id: str) -> str | None:
+        """A short alarm state for the demo table: ``normal``, ``ALERT kurtosis``, ``sensor: flatline`` …"""
+        if point_id not in self.points:
+            return None
+        with self._lock:
+            s = self.sensors.get(point_id)
+            if s is not None and s.fault is not None:
+                return f"sensor: {s.fault}"
+            worst, which, shelved = 0, [], False
+            for lim in self._by_point.get(point_id, ()):
+                st = self.alarms.get(lim.key)
+                if st is None:
+                    continue
+                spec = self.specs.get(lim.key) or self._spec(lim)
+                shelved = shelved or st.shelved_until_s is not None
+                if st.suppressed is not None:
+                    continue
+                d = display_severity(st, spec)
+                if d > worst:
+                    worst, which = d, [lim.indicator]
+                elif d == worst and d > 0:
+                    which.append(lim.indicator)
+            if worst:
+                return f"{SEVERITY[worst].upper()} {', '.join(which)}"
+            reason = self.suppressed.get(point_id)
+            if reason == "machine-stopped":
+                return "stopped"
+            if reason == "start-up-grace":
+                return "starting"
+            return "shelved" if shelved else "normal"
+
+    def state_messages(self) -> dict[str, tuple[str, bytes]]:
+        """Retained state message of every point: ``{point: (topic, JSON)}``."""
+        out: dict[str, tuple[str, bytes]] = {}
+        with self._lock:
+            for pid, p in self.points.items():
+                sev = self.point_severity(pid)
+                s = self.sensors.get(pid, SensorState())
+                msg = {"site": self.settings.site, "machine": p.machine, "point": pid, "axis": p.axis,
+                       "state": ("normal", "alert", "danger", "sensor-fault")[sev],
+                       "suppressed": self.suppressed.get(pid),
+                       "sensor": {"fault": s.fault, "detail": s.detail or None},
+                       "time": self.last_frame.get(pid),
+                       "alarms": {k[1]: {kk: v for kk, v in self._alarm_row(k).items() if kk not in ("point",)}
+                                  for k in self.limits if k[0] == pid}}
+                topic = self.settings.feed.state_topic.format(site=self.settings.site, machine=p.machine, point=pid)
+                out[pid] = (topic, json.dumps(msg, separators=(",", ":"), allow_nan=False,
+                                              default=str).encode("utf-8"))
+        return out
+
+
+def _rule(r: LevelRule | None) -> dict[str, Any] | None:
+    return None if r is None else {"kind": r.kind, "value": r.value}
+
+
+class AlarmCollector(Collector):
+    """Prometheus collector of the alarm layer (fresh families from a snapshot on each scrape)."""
+
+    def __init__(self, layer: AlarmLayer) -> None:
+        self.layer = layer
+
+    def describe(self) -> list[Any]:
+        return []
+
+    def collect(self) -> Iterable[Any]:
+        lay = self.layer
+        site = lay.settings.site
+        state = GaugeMetricFamily("edgevib_alarm_state", "Alarm state per point and indicator: 0 normal, 1 alert, "
+                                  "2 danger, 3 sensor fault", labels=["site", "machine", "point", "axis", "indicator"])
+        with lay._lock:
+            for pid, p in lay.points.items():
+                s = lay.sensors.get(pid)
+                fault = s is not None and s.fault is not None
+                for lim in lay._by_point.get(pid, ()):
+                    st = lay.alarms.get(lim.key, AlarmState())
+                    spec = lay.specs.get(lim.key) or lay._spec(lim)
+                    v = 3 if fault else 0 if st.suppressed is not None else display_severity(st, spec)
+                    state.add_metric([site, p.machine, pid, p.axis, lim.indicator], float(v))
+                state.add_metric([site, p.machine, pid, p.axis, "sensor"], 3.0 if fault else 0.0)
+            events = CounterMetricFamily("edgevib_alarm_events", "Alarm layer events by type", labels=["type"])
+            for kind, n in sorted(lay.events_total.items()):
+                events.add_metric([kind], float(n))
+        yield state
+        yield events
+        pub = CounterMetricFamily("edgevib_feed_published", "Events confirmed by a feed sink", labels=["sink"])
+        for feed in (lay.mqtt, lay.webhook):
+            if feed is not None:
+                pub.add_metric([feed.sink], float(feed.published))
+        yield pub
+        depth, age = 0, 0.0
+        if lay.outbox is not None:
+            with contextlib.suppress(Exception):
+                depth, age = lay.outbox.depth(), lay.outbox.oldest_age_s()
+        yield GaugeMetricFamily("edgevib_outbox_pending_events", "Events waiting in the durable outbox", value=depth)
+        yield GaugeMetricFamily("edgevib_outbox_oldest_pending_age_seconds", "Age of the oldest pending event",
+                                value=age)
+        yield GaugeMetricFamily("edgevib_captures_stored", "Waveform captures on disk", value=lay.capture.count)
+        yield GaugeMetricFamily("edgevib_captures_bytes", "Disk used by waveform captures", value=lay.capture.bytes)

@@ -1,0 +1,8 @@
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).parent))
+
+from alarmkit import short_tmp, sim_config  # noqa: F401  (fixtures)

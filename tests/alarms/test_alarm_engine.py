@@ -1,0 +1,213 @@
+"""The alarm layer (edgevib.daemon.alarms.engine) on simulated streams and hand-made frames.
+
+Limits: ISO 20816-3 group 2 rigid boundaries B/C 2.8 and C/D 4.5 mm/s r.m.s. (FIELD_NOTES §1, the standard's
+table); the iso-baseline rule is the ISO 10816-3/20816-3 guidance alarm = baseline + 0.25 × B/C, at most
+1.25 × B/C.  Sensor-fault signatures are common practice (FIELD_NOTES §6); a sensor fault must never be reported
+as a machine fault (the issue).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import json
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+from alarmkit import frame_result, small_config
+from prometheus_client import CollectorRegistry
+from scipy.io import wavfile
+
+from edgevib.daemon.alarms.engine import AlarmLayer
+from edgevib.daemon.alarms.feed import ALARM_TYPE, SENSOR_TYPE
+
+# Absolute limits on impact indicators: electrical spikes or clipping would trip these if the health gate failed.
+IMPACT_LIMITS = {"kurtosis": {"alert": 5.0, "danger": 10.0}, "acceleration_peak_g": {"alert": 1.0, "danger": 5.0},
+                 "crest_factor": {"alert": 6.0, "danger": 9.0}}
+
+
+async def run_sim(layer: AlarmLayer, frames: Any, until_s: float, step_s: float = 1.0) -> list[dict[str, Any]]:
+    events: list[dict[str, Any]] = []
+    layer.listeners.append(events.append)
+    await layer.start()
+    try:
+        t = step_s
+        while t <= until_s + 1e-9:
+            await layer.on_frames(frames.until(t))
+            t += step_s
+    finally:
+        await layer.stop()
+    return events
+
+
+def alarm_events(events: list[dict[str, Any]], point: str | None = None) -> list[dict[str, Any]]:
+    return [e for e in events if e["type"] == ALARM_TYPE and (point is None or e["data"]["point"] == point)]
+
+
+async def test_sensor_faults_give_sensor_events_only(sim_config: Any) -> None:
+    _, cfg, frames = sim_config("sensor-faults", extra={"alarms": {"startup_grace_s": 0.0}}, limits=IMPACT_LIMITS)
+    layer = AlarmLayer(cfg)
+    events = await run_sim(layer, frames, 30.0)
+    raised = [e for e in alarm_events(events) if e["data"]["transition"] in ("raised", "escalated")]
+    assert raised == []
+    first = {}
+    for e in events:
+        if e["type"] == SENSOR_TYPE and e["data"]["transition"] == "raised":
+            first.setdefault(e["data"]["point"], e["data"]["fault"])
+            assert e["data"]["state"] == "sensor-fault"
+            assert "not a machine finding" in e["data"]["advice"]
+    assert first.get("M-301-DE-H") == "flatline"
+    assert first.get("M-301-DE-V") == "clipping"
+    assert first.get("M-301-DE-A") in ("bias", "dc-step")
+    assert first.get("M-301-NDE-H") in ("bias", "clipping", "dc-step")
+    assert first.get("M-301-NDE-V") == "spikes"
+    assert "M-301-REF-H" not in first
+    # The intermittent cable fault does not chatter: each relapse lengthens the re-arm delay.
+    assert sum(1 for e in events if e["type"] == SENSOR_TYPE and e["data"]["point"] == "M-301-NDE-H") <= 8
+    assert layer.state_text("M-301-DE-H") == "sensor: flatline" and layer.state_text("M-301-REF-H") == "normal"
+
+
+async def test_without_the_health_gate_the_same_faults_would_trip_machine_alarms(sim_config: Any) -> None:
+    # Shows that the previous test can fail: with sensor-health checks off, spikes and rail hits raise alarms.
+    _, cfg, frames = sim_config("sensor-faults", extra={"alarms": {"startup_grace_s": 0.0,
+                                                                   "health": {"enabled": False}}},
+                                limits=IMPACT_LIMITS)
+    events = await run_sim(AlarmLayer(cfg), frames, 15.0)
+    points = {e["data"]["point"] for e in alarm_events(events) if e["data"]["transition"] == "raised"}
+    assert {"M-301-NDE-V", "M-301-NDE-H"} <= points
+
+
+@pytest.mark.slow
+async def test_progression_escalates_in_order_and_spares_healthy_and_stopped_machines(sim_config: Any) -> None:
+    sim, cfg, frames = sim_config("progression", limits={"imbalance_1x_mm_s": {"alert": 2.0, "danger": 4.0}})
+    layer = AlarmLayer(cfg)
+    events = await run_sim(layer, frames, 230.0, step_s=2.0)
+    vel = [e["data"] for e in alarm_events(events, "P-201-DE-H") if e["data"]["indicator"] == "velocity_rms_mm_s"]
+    assert [(d["transition"], d["state"]) for d in vel][:2] == [("raised", "alert"), ("escalated", "danger")]
+    assert vel[0]["limit"] == pytest.approx(2.8) and vel[1]["limit"] == pytest.approx(4.5)  # ISO G2 rigid
+    # The simulator's analytic truth says when the zone boundaries are crossed; the alarm follows within the
+    # on-delay (2 frames of 0.64 s) plus one 2 s feeding step.
+    changes = sim.truth(230.0)["points"]["P-201-DE-H"]["progression"]["zone_changes"]
+    t_bc = next(c["t_s"] for c in changes if c["to"] == "C")
+    t_cd = next(c["t_s"] for c in changes if c["to"] == "D")
+    times = [e["time"] for e in alarm_events(events, "P-201-DE-H") if e["data"]["indicator"] == "velocity_rms_mm_s"]
+    t0 = sim.t0_ns / 1e9
+
+    def rel(ts: str) -> float:
+        return datetime.strptime(ts, "%Y-%m-%dT%H:%M:%S.%fZ").replace(tzinfo=UTC).timestamp() - t0
+
+    assert t_bc <= rel(times[0]) <= t_bc + 6.0
+    assert t_cd <= rel(times[1]) <= t_cd + 6.0
+    imb = [e["data"] for e in alarm_events(events, "P-201-DE-H") if e["data"]["indicator"] == "imbalance_1x_mm_s"]
+    assert imb and imb[0]["transition"] == "raised" and imb[0]["fault_kind"] == "imbalance"
+    assert "imbalance" in imb[0]["advice"] and "not a protection system" in imb[0]["advice"]
+    for healthy in ("M-201-DE-H", "P-203-DE-V", "F-202-DE-H"):
+        assert alarm_events(events, healthy) == []
+    assert not [e for e in events if e["type"] == SENSOR_TYPE]
+    # Captures of both transitions, readable as WAV at the true rate, with their sidecars.
+    for d in vel[:2]:
+        wav = Path(cfg.alarms.capture.dir) / d["capture"]
+        rate, x = wavfile.read(wav)
+        assert rate == 12800 and x.dtype == np.float32 and x.size == 8192
+        side = json.loads(wav.with_suffix(".json").read_text())
+        assert side["point"] == "P-201-DE-H" and side["fs_hz"] == 12800.0 and side["severity"] == d["state"]
+        assert side["limits"]["danger"] == pytest.approx(4.5) and side["config_digest"] == cfg.digest
+
+
+async def _feed(layer: AlarmLayer, values: list[float], t0: float = 1000.0) -> None:
+    for i, v in enumerate(values):
+        await layer.on_frames([frame_result("P-101-DE-H", "P-101", t0 + i, v, seed=i)])
+
+
+async def test_restart_restores_state_without_storm_or_loss(short_tmp: Path) -> None:
+    cfg = small_config(short_tmp)
+    events: list[dict[str, Any]] = []
+    layer = AlarmLayer(cfg)
+    layer.listeners.append(events.append)
+    await layer.start()
+    await _feed(layer, [1.0, 3.0, 3.0, 3.0])
+    await layer.stop()
+    assert [e["data"]["transition"] for e in events] == ["raised"]
+    layer2 = AlarmLayer(cfg)
+    layer2.listeners.append(events.append)
+    await layer2.start()
+    assert layer2.state_text("P-101-DE-H") == "ALERT velocity_rms_mm_s"  # not forgotten
+    await _feed(layer2, [3.0, 3.1, 3.0], t0=2000.0)
+    assert [e["data"]["transition"] for e in events] == ["raised"]  # no re-raise
+    await _feed(layer2, [1.0, 1.0], t0=3000.0)
+    assert [e["data"]["transition"] for e in events] == ["raised", "cleared"]
+    assert events[-1]["data"]["alarm_state"] == "rtn-unacknowledged"
+    await layer2.stop()
+
+
+async def test_iso_baseline_rule_and_relearn(short_tmp: Path) -> None:
+    cfg = small_config(short_tmp, alarms={"baseline_frames": 5},
+                       limits={"velocity_rms_mm_s": {"rule": "iso-baseline"}})
+    layer = AlarmLayer(cfg)
+    events: list[dict[str, Any]] = []
+    layer.listeners.append(events.append)
+    await layer.start()
+    row = layer.snapshot()["alarms"][0]
+    assert row["alert"] == pytest.approx(2.8) and row["danger"] == pytest.approx(4.5)  # B/C until learned
+    await _feed(layer, [1.0, 1.2, 0.8, 1.0, 1.0])
+    row = layer.snapshot()["alarms"][0]
+    assert row["baseline"]["learned"] and row["baseline"]["mean"] == pytest.approx(1.0)
+    assert row["alert"] == pytest.approx(1.0 + 0.25 * 2.8)  # baseline + 0.25 × B/C
+    assert row["danger"] == pytest.approx(4.5)  # never from the baseline
+    assert [e["data"]["transition"] for e in events] == ["learned"]
+    await _feed(layer, [2.0, 2.0], t0=2000.0)
+    assert layer.state_text("P-101-DE-H") == "ALERT velocity_rms_mm_s"  # 2.0 ≥ 1.7, below B/C
+    res = layer.handle_command({"cmd": "relearn", "point": "P-101-DE-H", "by": "analyst"})
+    assert res["changed"] == 1
+    assert layer.snapshot()["alarms"][0]["alert"] == pytest.approx(2.8)
+    await _feed(layer, [3.0] * 5, t0=3000.0)  # a high baseline is capped at 1.25 × B/C
+    assert layer.snapshot()["alarms"][0]["alert"] == pytest.approx(1.25 * 2.8)
+    await layer.stop()
+
+
+async def test_stopped_machine_and_start_up_grace_suppress(short_tmp: Path) -> None:
+    cfg = small_config(short_tmp, alarms={"startup_grace_s": 5.0})
+    layer = AlarmLayer(cfg)
+    events: list[dict[str, Any]] = []
+    layer.listeners.append(events.append)
+    await layer.start()
+    await _feed(layer, [0.05] * 3 + [6.0] * 4, t0=100.0)  # stopped, then a start with a high transient
+    assert events == [] and layer.state_text("P-101-DE-H") == "starting"
+    await _feed(layer, [6.0] * 3, t0=107.0)  # grace over: the on-delay starts afresh
+    assert [(e["data"]["transition"], e["data"]["state"]) for e in events] == [("raised", "danger")]
+    await layer.stop()
+
+
+async def test_metrics_collector(short_tmp: Path) -> None:
+    cfg = small_config(short_tmp)
+    registry = CollectorRegistry()
+    layer = AlarmLayer(cfg, registry=registry)
+    await layer.start()
+    await _feed(layer, [5.0, 5.0])
+    labels = {"site": "quarry-lane", "machine": "P-101", "point": "P-101-DE-H", "axis": "horizontal",
+              "indicator": "velocity_rms_mm_s"}
+    assert registry.get_sample_value("edgevib_alarm_state", labels) == 2.0
+    assert registry.get_sample_value("edgevib_alarm_events_total", {"type": "raised"}) == 1.0
+    assert registry.get_sample_value("edgevib_captures_stored") == 1.0
+    assert registry.get_sample_value("edgevib_captures_bytes") > 8192 * 4
+    assert registry.get_sample_value("edgevib_outbox_pending_events") == 0.0
+    await layer.stop()
+    assert registry.get_sample_value("edgevib_alarm_state", labels) is None  # unregistered
+
+
+def test_capture_rotation_keeps_the_budget(tmp_path: Path) -> None:
+    from edgevib.daemon.alarms.capture import CaptureStore
+    from edgevib.daemon.alarms.config import CaptureConfig
+
+    store = CaptureStore(CaptureConfig(enabled=True, dir=str(tmp_path), max_bytes=3 * 33_500, max_files=100))
+    names = []
+    for i in range(6):
+        r = frame_result("P-101-DE-H", "P-101", 1000.0 + i, 3.0, seed=i)
+        names.append(store.save(r, indicator="velocity_rms_mm_s", transition="raised", severity="alert",
+                                event_id=f"e{i}", limits={}, config_digest="d", site="quarry-lane"))
+        asyncio.run(asyncio.sleep(0.01))  # distinct modification times
+    kept = sorted(p.name for p in tmp_path.glob("*.wav"))
+    assert store.bytes <= 3 * 33_500 and store.count == len(kept) < 6
+    assert kept == sorted(names[-len(kept):])  # the oldest went first
