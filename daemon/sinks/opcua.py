@@ -36,7 +36,9 @@ Indicators (unit in the name, also in each variable's Description and ``Engineer
 Every update carries the frame's end time as ``SourceTimestamp``.  An indicator that is unavailable for a frame
 (no speed known, no envelope band, no ISO group, a non-finite result) gets status ``BadNoData`` (OPC UA then
 carries no value, Part 4 §7.7.1); before the first frame every variable reads ``BadWaitingForInitialData``.
-Order variables beyond the standard 0.5×/1×/2×/3× are added when a point first reports them.
+Order variables beyond the standard 0.5×/1×/2×/3× are added when a point first reports them.  After a
+configuration reload (:meth:`OpcUaIndicatorSink.reconfigure`) removed points' objects are deleted and new points
+appear; a frame of a point not yet in the namespace adds it.
 """
 
 from __future__ import annotations
@@ -216,6 +218,24 @@ class OpcUaIndicatorSink:
         if server is not None:
             with contextlib.suppress(Exception):
                 await server.stop()
+
+    async def reconfigure(self, config: Any) -> None:
+        """After a configuration reload: remove the objects of points no longer configured (or moved to another
+        machine) and add the new points; untouched points keep their variables and values."""
+        if self._server is None:
+            return
+        wanted = {pid: (mid, orders) for pid, mid, orders in _points_of({p.id: p for p in config.points})
+                  if "/" not in pid and "/" not in mid}
+        for pid in [pid for pid in self._vars if pid not in wanted or wanted[pid][0] != self._machine_of[pid]]:
+            with contextlib.suppress(Exception):
+                await self._server.delete_nodes([self._objects[pid]], recursive=True)
+            for table in (self._vars, self._objects, self._machine_of):
+                table.pop(pid, None)
+            self._log.info("opcua_point_removed", point=pid)
+        for pid, (mid, orders) in wanted.items():
+            if pid not in self._vars:
+                await self._add_point(pid, mid, orders)
+                self._log.info("opcua_point_added", point=pid, machine=mid)
 
     async def on_frames(self, results: list[FrameResult]) -> None:
         """Write every result's indicators (one point at a time, yielding to the event loop in between)."""

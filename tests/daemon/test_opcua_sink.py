@@ -6,6 +6,7 @@ import asyncio
 import datetime
 import math
 from collections.abc import AsyncIterator
+from types import SimpleNamespace
 from typing import Any
 
 import numpy as np
@@ -158,6 +159,20 @@ async def test_subscribers_see_updates_and_new_points_appear(sink: OpcUaIndicato
     assert dv.StatusCode.is_good() and dv.Value.Value == 0.7
     dv = await read(client, idx, "B-301", "B-301-DE-A", "shaft_hz")
     assert dv.Value.Value == 49.5
+
+
+async def test_reconfigure_removes_and_adds_points(sink: OpcUaIndicatorSink, client: Client) -> None:
+    idx = await client.get_namespace_index(NAMESPACE_URI)
+    await sink.on_frames([sine_result("P-101-DE-H", "P-101", shaft_hz=24.67, zone="B")])
+    new_config = SimpleNamespace(points=[SimpleNamespace(id="P-101-DE-H", machine="P-101", orders=(0.5, 1.0)),
+                                         SimpleNamespace(id="M-101-NDE-H", machine="M-101", orders=(1.0, 6.0))])
+    await sink.reconfigure(new_config)
+    dv = await read(client, idx, "P-101", "P-101-DE-H", "kurtosis")
+    assert dv.StatusCode.is_good() and dv.Value.Value == 1.5  # the untouched point keeps its value
+    dv = await read(client, idx, "M-101", "M-101-NDE-H", "order_6x_velocity_rms_mm_s")  # configured orders
+    assert dv.StatusCode.value == ua.StatusCodes.BadWaitingForInitialData
+    dv = await read(client, idx, "F-201", "F-201-NDE-V", "kurtosis")  # removed from the configuration
+    assert dv.StatusCode.value == ua.StatusCodes.BadNodeIdUnknown
 
 
 @pytest.mark.parametrize(("kw", "problem"), [
