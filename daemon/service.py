@@ -18,6 +18,7 @@ import contextlib
 import dataclasses
 import signal
 import sys
+import tempfile
 import time
 from collections.abc import Callable
 from pathlib import Path
@@ -208,13 +209,15 @@ def configure_demo(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--seed", type=int, default=0, help="simulator seed")
 
 
-def demo_config(rate: float = 1.0, seed: int = 0, scenario: str = "demo") -> Config:
-    """The daemon configuration of the simulator's demo scenario, fed in-process."""
+def demo_config(rate: float = 1.0, seed: int = 0, scenario: str = "demo", state_dir: str | None = None) -> Config:
+    """The daemon configuration of the simulator's demo scenario, fed in-process (state in ``state_dir``)."""
     from edgevib.simulator.engine import Simulation, load_scenario
 
     sim = Simulation(load_scenario(scenario), seed=seed)
     doc = sim.daemon_config(source={"name": "simulator", "type": "simulated", "scenario": scenario, "seed": seed,
                                     "rate": rate})
+    if state_dir is not None:
+        doc.setdefault("site", {})["state_dir"] = state_dir
     return parse_config(doc, ".")
 
 
@@ -256,12 +259,13 @@ def render_table(cfg: Config, latest: dict[str, FrameResult], state_text: Callab
 
 def run_demo(args: argparse.Namespace) -> int:
     configure_logging("warning", "auto", stream=sys.stderr)
-    try:
-        cfg = demo_config(rate=args.rate, seed=args.seed)
-    except ConfigError as exc:
-        print(f"edgevib demo: {exc}", file=sys.stderr)
-        return 2
-    return asyncio.run(_demo(cfg, args.metrics_listen, args.duration, sys.stdout))
+    with tempfile.TemporaryDirectory(prefix="edgevib-demo-") as state_dir:  # the demo leaves no state behind
+        try:
+            cfg = demo_config(rate=args.rate, seed=args.seed, state_dir=state_dir)
+        except ConfigError as exc:
+            print(f"edgevib demo: {exc}", file=sys.stderr)
+            return 2
+        return asyncio.run(_demo(cfg, args.metrics_listen, args.duration, sys.stdout))
 
 
 async def _demo(cfg: Config, listen: tuple[str, int], duration_s: float | None, out: TextIO) -> int:

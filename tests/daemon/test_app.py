@@ -6,6 +6,7 @@ from __future__ import annotations
 import asyncio
 import urllib.error
 import urllib.request
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -22,9 +23,9 @@ BLOCK = 4096
 T0 = 1_764_633_600_000_000_000
 
 
-def config(**analysis: Any) -> Config:
+def config(state_dir: Path, **analysis: Any) -> Config:
     doc = {
-        "site": {"name": "quarry-lane"},
+        "site": {"name": "quarry-lane", "state_dir": str(state_dir)},
         "analysis": dict({"frame_samples": 16384, "overlap": 0.5, "queue_frames": 4, "workers": 1}, **analysis),
         "sources": [{"name": "scripted", "type": "mqtt", "url": "mqtt://127.0.0.1:1", "topics": ["x/#"]}],
         "machines": [{"id": "P-101", "group": 2, "support": "rigid", "speed_rpm": 1500.0},
@@ -118,8 +119,8 @@ async def start_daemon(cfg: Config) -> tuple[Daemon, ScriptedSource, Probe, Coll
     return d, src, probe, registry
 
 
-async def test_sine_to_metrics_and_probes() -> None:
-    d, src, probe, registry = await start_daemon(config())
+async def test_sine_to_metrics_and_probes(tmp_path: Path) -> None:
+    d, src, probe, registry = await start_daemon(config(tmp_path))
     try:
         url = d.metrics.url
         assert url is not None
@@ -134,7 +135,8 @@ async def test_sine_to_metrics_and_probes() -> None:
             d.ingest.payload("scripted", None, encode_binary(sine_block("QL-P101-DE-V", seq, 0.5, 50.0)), 0)
         for seq in range(6):
             d.ingest.block("scripted", sine_block("QL-F201-NDE-V", seq, 0.2, 40.0, fs=3200.0, n=3200), 0)
-        await wait_for(lambda: len(d.latest) == 3 and d.stats.frames_analysed["P-101-DE-H"] >= 3)
+        await wait_for(lambda: len({r.point_id for r in probe.results}) == 3
+                       and d.stats.frames_analysed["P-101-DE-H"] >= 3)
         labels = {"site": "quarry-lane", "machine": "P-101", "point": "P-101-DE-H", "axis": "horizontal"}
         v = registry.get_sample_value("edgevib_velocity_rms_meters_per_second", labels)
         # FIELD_NOTES §5: 1 g peak at 50 Hz → 31.22 mm/s peak = 22.07 mm/s r.m.s. (a/(2πf), gₙ = 9.80665 m/s²)
@@ -165,8 +167,8 @@ async def test_sine_to_metrics_and_probes() -> None:
         await d.stop()
 
 
-async def test_reload_keeps_untouched_points_state() -> None:
-    cfg = config()
+async def test_reload_keeps_untouched_points_state(tmp_path: Path) -> None:
+    cfg = config(tmp_path)
     d, src, _probe, _registry = await start_daemon(cfg)
     try:
         src.connect()
@@ -188,8 +190,8 @@ async def test_reload_keeps_untouched_points_state() -> None:
         await d.stop()
 
 
-async def test_analysis_error_is_counted_not_fatal() -> None:
-    cfg = config()
+async def test_analysis_error_is_counted_not_fatal(tmp_path: Path) -> None:
+    cfg = config(tmp_path)
     src = ScriptedSource()
 
     def boom(x: Any, plan: Any, shaft: Any) -> Any:

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import asyncio
 import urllib.request
+from pathlib import Path
 from typing import Any
 
 import paho.mqtt.client as mqtt
@@ -37,13 +38,14 @@ def publish_all(port: int, messages: list[tuple[str, bytes]]) -> None:
         c.loop_stop()
 
 
-async def test_simulator_broker_daemon_scrape_matches_truth(mosquitto: Any) -> None:
+async def test_simulator_broker_daemon_scrape_matches_truth(mosquitto: Any, tmp_path: Path) -> None:
     from edgevib.simulator.engine import Simulation, load_scenario
 
     sim = Simulation(load_scenario("demo"), seed=3)
     doc = sim.daemon_config(source={"name": "station-broker", "type": "mqtt", "url": mosquitto.url, "qos": 1,
                                     "topics": ["fwb/quarry-lane/#"], "reconnect_min_s": 0.1,
                                     "reconnect_max_s": 1.0})
+    doc["site"]["state_dir"] = str(tmp_path)
     doc["analysis"]["queue_frames"] = 64  # keep every frame: this test reads the last one of each point
     cfg = parse_config(doc)
     d = Daemon(cfg, metrics_listen=("127.0.0.1", 0))

@@ -4,7 +4,9 @@ broker restart with reconnect, hostile payloads mixed into a valid stream."""
 from __future__ import annotations
 
 import asyncio
+import struct
 import time
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -25,9 +27,9 @@ T0 = 1_764_633_600_000_000_000
 LABELS = {"site": "quarry-lane", "machine": "P-101", "point": "P-101-DE-H", "axis": "horizontal"}
 
 
-def config(url: str, protocol: str = "3.1.1") -> Config:
+def config(url: str, state_dir: Path, protocol: str = "3.1.1") -> Config:
     doc = {
-        "site": {"name": "quarry-lane"},
+        "site": {"name": "quarry-lane", "state_dir": str(state_dir)},
         "analysis": {"frame_samples": 16384, "overlap": 0.5, "queue_frames": 8},
         "sources": [{"name": "station-broker", "type": "mqtt", "url": url, "protocol": protocol, "qos": 1,
                      "topics": ["fwb/quarry-lane/+/+/block"], "reconnect_min_s": 0.1, "reconnect_max_s": 1.0,
@@ -79,8 +81,8 @@ async def started(cfg: Config) -> tuple[Daemon, CollectorRegistry]:
 
 
 @pytest.mark.parametrize("protocol", ["3.1.1", "5"])
-async def test_stream_to_metrics_with_speed_tag(mosquitto: Any, protocol: str) -> None:
-    d, registry = await started(config(mosquitto.url, protocol))
+async def test_stream_to_metrics_with_speed_tag(mosquitto: Any, protocol: str, tmp_path: Path) -> None:
+    d, registry = await started(config(mosquitto.url, tmp_path, protocol))
     pub = await asyncio.to_thread(Publisher, mosquitto.port)
     try:
         await asyncio.to_thread(pub.send, "fwb/quarry-lane/F-201/speed", b"1200")
@@ -104,8 +106,8 @@ async def test_stream_to_metrics_with_speed_tag(mosquitto: Any, protocol: str) -
 
 
 @pytest.mark.slow
-async def test_broker_restart_reconnects_and_resumes(mosquitto: Any) -> None:
-    d, registry = await started(config(mosquitto.url))
+async def test_broker_restart_reconnects_and_resumes(mosquitto: Any, tmp_path: Path) -> None:
+    d, registry = await started(config(mosquitto.url, tmp_path))
     try:
         pub = await asyncio.to_thread(Publisher, mosquitto.port)
         for seq in range(4):
@@ -129,19 +131,19 @@ async def test_broker_restart_reconnects_and_resumes(mosquitto: Any) -> None:
         await d.stop()
 
 
-async def test_hostile_payloads_do_not_disturb_valid_points(mosquitto: Any) -> None:
-    d, registry = await started(config(mosquitto.url))
+async def test_hostile_payloads_do_not_disturb_valid_points(mosquitto: Any, tmp_path: Path) -> None:
+    d, registry = await started(config(mosquitto.url, tmp_path))
     pub = await asyncio.to_thread(Publisher, mosquitto.port)
     topic = "fwb/quarry-lane/P-101/DE-H/block"
     good = [encode_binary(sine("QL-P101-DE-H", seq, 1.0, 50.0)) for seq in range(8)]
-    nan_block = sine("QL-P101-DE-H", 99, 1.0, 50.0)
-    nan_samples = np.array(nan_block.samples)
-    nan_samples[10] = np.nan
+    finite = encode_binary(sine("QL-P101-DE-H", 99, 1.0, 50.0))
+    at = 40 + len("QL-P101-DE-H") + 4 * 10  # sample 10 of the float32 body (daemon/wire.py layout)
+    nan_payload = finite[:at] + struct.pack("<f", float("nan")) + finite[at + 4:]
     hostile = {
         "malformed": [b"\xff\xfe garbage", b"{not json", b"\x00" * 64],
         "length_mismatch": [good[0][:-7], good[0][:100]],                 # truncated blocks
         "too_large": [b"{" + b" " * 300_000 + b"}"],                       # above max_payload_bytes 262144
-        "non_finite": [encode_binary(Block("QL-P101-DE-H", 99, 0, FS, "g", nan_samples))],
+        "non_finite": [nan_payload],
         "wrong_length": [encode_binary(Block("QL-P101-DE-H", 99, 0, FS, "g", np.zeros(1000)))],
         "unknown_sensor": [encode_binary(Block("QL-NOBODY", 0, 0, FS, "g", np.zeros(BLOCK)))],
     }

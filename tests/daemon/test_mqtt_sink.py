@@ -7,6 +7,7 @@ import asyncio
 import contextlib
 import json
 import queue
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -41,9 +42,9 @@ def test_document_marks_unavailable_as_null() -> None:
 
 
 @pytest.mark.network
-async def test_indicator_messages_per_point_per_frame(mosquitto: Any) -> None:
+async def test_indicator_messages_per_point_per_frame(mosquitto: Any, tmp_path: Path) -> None:
     cfg = parse_config({
-        "site": {"name": "quarry-lane"},
+        "site": {"name": "quarry-lane", "state_dir": str(tmp_path)},
         "sources": [{"name": "station-broker", "type": "mqtt", "url": mosquitto.url, "topics": ["x/#"],
                      "reconnect_min_s": 0.1}],
         "publish": {"mqtt": {"enabled": True, "source": "station-broker", "qos": 1,

@@ -55,9 +55,9 @@ def bearing_block(seq: int) -> Block:
 
 
 @pytest.fixture
-async def daemon() -> AsyncIterator[tuple[Daemon, CollectorRegistry]]:
+async def daemon(tmp_path: Path) -> AsyncIterator[tuple[Daemon, CollectorRegistry]]:
     cfg = parse_config({
-        "site": {"name": "quarry-lane"},
+        "site": {"name": "quarry-lane", "state_dir": str(tmp_path / "state")},
         "sources": [{"name": "station-broker", "type": "mqtt", "url": "mqtt://127.0.0.1:1", "topics": ["x/#"]}],
         "machines": [{"id": "P-101", "group": 2, "support": "rigid", "speed_rpm": 1500.0}],
         "points": [{"id": "P-101-DE-H", "machine": "P-101", "axis": "horizontal", "source": "station-broker",
