@@ -42,6 +42,7 @@ import base64
 import binascii
 import json
 import math
+import operator
 import struct
 from dataclasses import dataclass, field
 from typing import Any, Literal
@@ -147,12 +148,44 @@ class Block:
 # --------------------------------------------------------------------------------------------- encoding
 
 
-def _check_block(block: Block) -> None:
+def _to_f32(x: npt.NDArray[np.float64]) -> npt.NDArray[np.float32]:
+    with np.errstate(over="ignore", invalid="ignore"):  # beyond ±3.4e38 becomes ±inf, which decoding rejects
+        return x.astype("<f4")
+
+
+def _check_block(block: Block) -> npt.NDArray[np.float64]:
+    """Validate a block before encoding; return its samples as a 1-D float64 array."""
     _check_sensor_id(block.sensor_id)
     _check_fs(block.fs_hz)
     _check_unit(block.unit)
-    if not 0 <= block.seq < 2**64:
-        raise InvalidField(f"seq {block.seq} is outside 0..2^64-1")
+    for name, value, lo, hi in (("seq", block.seq, 0, 2**64 - 1), ("t0_ns", block.t0_ns, -(2**63), 2**63 - 1)):
+        try:
+            as_int = operator.index(value)  # ints and numpy integers, not floats or bools' surprises
+        except TypeError:
+            raise InvalidField(f"{name} must be an integer, got {type(value).__name__}") from None
+        if not lo <= as_int <= hi:
+            raise InvalidField(f"{name} {as_int} is outside {lo}..{hi}")
+    x = np.asarray(block.samples, dtype=np.float64)
+    if x.ndim != 1:
+        raise InvalidField(f"samples must be 1-D, got shape {x.shape}")
+    # Sample values are encoded as they are (NaN, empty blocks…): decoders reject them, and tests and fault
+    # injection rely on producing such payloads.
+    return x
+
+
+def _int16_scale(x: npt.NDArray[np.float64], scale: float | None) -> float:
+    if scale is None:
+        peak = float(np.max(np.abs(x))) if x.size else 0.0
+        scale = peak / 32767.0 if math.isfinite(peak) and peak > 0 else 1.0
+    if isinstance(scale, bool) or not isinstance(scale, int | float):
+        raise InvalidField(f"scale {scale!r} must be a number")
+    try:
+        scale_f = float(scale)
+    except OverflowError:
+        raise InvalidField(f"scale {scale!r} does not fit a float") from None
+    if not math.isfinite(scale_f) or scale_f == 0:
+        raise InvalidField(f"scale {scale!r} must be finite and non-zero")
+    return scale_f
 
 
 def encode_json(block: Block, encoding: Literal["f32le-b64", "i16le-b64", "array"] = "f32le-b64",
@@ -162,21 +195,17 @@ def encode_json(block: Block, encoding: Literal["f32le-b64", "i16le-b64", "array
     For ``"i16le-b64"`` the samples are quantized to ``round(x / scale)`` (``scale`` defaults to the value
     that maps the block's peak to 32767); values outside the int16 range saturate.
     """
-    _check_block(block)
+    x = _check_block(block)
     doc: dict[str, Any] = {
         "v": WIRE_VERSION, "sensor": block.sensor_id, "seq": int(block.seq), "t0_ns": int(block.t0_ns),
         "fs_hz": float(block.fs_hz), "unit": block.unit, "encoding": encoding,
     }
-    x = np.asarray(block.samples, dtype=np.float64)
     if encoding == "f32le-b64":
-        doc["data"] = base64.b64encode(x.astype("<f4").tobytes()).decode("ascii")
+        doc["data"] = base64.b64encode(_to_f32(x).tobytes()).decode("ascii")
     elif encoding == "i16le-b64":
-        if scale is None:
-            peak = float(np.max(np.abs(x))) if x.size else 0.0
-            scale = peak / 32767.0 if peak > 0 else 1.0
-        if not math.isfinite(scale) or scale == 0:
-            raise InvalidField(f"scale {scale!r} must be finite and non-zero")
-        counts = np.clip(np.rint(x / scale), -32768, 32767).astype("<i2")
+        scale = _int16_scale(x, scale)
+        with np.errstate(invalid="ignore"):
+            counts = np.clip(np.rint(x / scale), -32768, 32767).astype("<i2")
         doc["scale"] = float(scale)
         doc["data"] = base64.b64encode(counts.tobytes()).decode("ascii")
     elif encoding == "array":
@@ -189,19 +218,19 @@ def encode_json(block: Block, encoding: Literal["f32le-b64", "i16le-b64", "array
 def encode_binary(block: Block, dtype: Literal["float32", "int16"] = "float32",
                   scale: float | None = None) -> bytes:
     """Encode ``block`` in the compact binary form (see the module docstring for the layout)."""
-    _check_block(block)
+    x = _check_block(block)
     sid = block.sensor_id.encode("utf-8")
-    x = np.asarray(block.samples, dtype=np.float64)
     if dtype == "float32":
-        code, scale_out, body = _DTYPE_F32, 0.0, x.astype("<f4").tobytes()
+        code, scale_out, body = _DTYPE_F32, 0.0, _to_f32(x).tobytes()
     elif dtype == "int16":
-        if scale is None:
-            peak = float(np.max(np.abs(x))) if x.size else 0.0
-            scale = peak / 32767.0 if peak > 0 else 1.0
-        if not math.isfinite(scale) or scale == 0:
-            raise InvalidField(f"scale {scale!r} must be finite and non-zero")
-        code, scale_out = _DTYPE_I16, float(scale)
-        body = np.clip(np.rint(x / scale), -32768, 32767).astype("<i2").tobytes()
+        scale = _int16_scale(x, scale)
+        with np.errstate(over="ignore"):
+            scale_out = float(np.float32(scale))  # the header carries float32: quantize with the scale sent
+        if not math.isfinite(scale_out) or scale_out == 0:
+            raise InvalidField(f"scale {scale!r} does not fit the binary header's float32")
+        code = _DTYPE_I16
+        with np.errstate(invalid="ignore"):
+            body = np.clip(np.rint(x / scale_out), -32768, 32767).astype("<i2").tobytes()
     else:
         raise InvalidField(f"unknown binary dtype {dtype!r}; expected float32 or int16")
     header = _HEADER.pack(_MAGIC + bytes([WIRE_VERSION]), code, UNITS.index(block.unit), len(sid),
@@ -251,7 +280,10 @@ def _check_sensor_id(sid: object) -> str:
 def _check_fs(fs: object) -> float:
     if isinstance(fs, bool) or not isinstance(fs, int | float):
         raise InvalidSampleRate(f"fs_hz must be a number, got {type(fs).__name__}")
-    fs_f = float(fs)
+    try:
+        fs_f = float(fs)
+    except OverflowError:
+        raise InvalidSampleRate(f"fs_hz {fs!r} does not fit a float") from None
     if not math.isfinite(fs_f) or fs_f <= 0:
         raise InvalidSampleRate(f"fs_hz {fs!r} must be finite and > 0")
     if fs_f > 10_000_000:
@@ -318,14 +350,15 @@ def _decode_binary(data: bytes, max_samples: int) -> Block:
     else:
         if not math.isfinite(scale) or scale == 0:
             raise InvalidField(f"int16 block scale {scale!r} must be finite and non-zero")
-        samples = np.frombuffer(body, dtype="<i2").astype(np.float64) * float(scale)
+        with np.errstate(over="ignore"):
+            samples = np.frombuffer(body, dtype="<i2").astype(np.float64) * float(scale)
     return _finish(sid, int(seq), int(t0_ns), fs_f, UNITS[unit_code], samples, max_samples)
 
 
 def _decode_json(data: bytes, max_samples: int) -> Block:
     try:
         doc = json.loads(data.decode("utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError, RecursionError) as exc:
+    except (UnicodeDecodeError, ValueError, RecursionError) as exc:  # ValueError: JSONDecodeError, huge integers
         raise MalformedPayload(f"invalid JSON: {exc}") from exc
     if not isinstance(doc, dict):
         raise MalformedPayload("JSON payload is not an object")
@@ -374,10 +407,15 @@ def _decode_json(data: bytes, max_samples: int) -> Block:
             samples = np.frombuffer(body, dtype="<f4")
         else:
             scale = doc.get("scale")
-            if isinstance(scale, bool) or not isinstance(scale, int | float) or not math.isfinite(scale) \
-                    or scale == 0:
+            try:
+                scale_ok = not isinstance(scale, bool) and isinstance(scale, int | float) and \
+                    math.isfinite(scale) and scale != 0
+            except OverflowError:  # an integer too large for a float
+                scale_ok = False
+            if not scale_ok:
                 raise InvalidField("encoding 'i16le-b64' needs a finite, non-zero numeric 'scale'")
-            samples = np.frombuffer(body, dtype="<i2").astype(np.float64) * float(scale)
+            with np.errstate(over="ignore"):
+                samples = np.frombuffer(body, dtype="<i2").astype(np.float64) * float(scale)  # type: ignore[arg-type]
     else:
         raise InvalidField(f"unknown encoding {encoding!r}; expected one of {', '.join(_ENCODINGS)}")
     return _finish(sid, seq, t0_ns, fs, unit, samples, max_samples)
