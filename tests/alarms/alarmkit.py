@@ -133,3 +133,69 @@ def small_config(state_dir: Path, *, alarms: dict[str, Any] | None = None, limit
     if capture is not None:
         doc["capture"] = capture
     return parse_config(doc, state_dir)
+
+
+class Subscriber:
+    """A paho subscriber (QoS 1) on a loopback broker; persistent session unless ``clean``."""
+
+    def __init__(self, port: int, topic: str = "#", client_id: str = "alarm-test-sub", clean: bool = False) -> None:
+        import threading
+
+        import paho.mqtt.client as mqtt
+        from paho.mqtt.enums import CallbackAPIVersion
+
+        self.messages: list[tuple[str, bytes, bool]] = []
+        self.lock = threading.Lock()
+        self.connected = threading.Event()
+        self.client = mqtt.Client(callback_api_version=CallbackAPIVersion.VERSION2, client_id=client_id,
+                                  clean_session=clean)
+        self.client.reconnect_delay_set(min_delay=1, max_delay=1)
+        self.topic = topic
+
+        def on_connect(c: Any, u: Any, f: Any, rc: Any, p: Any = None) -> None:
+            c.subscribe(self.topic, qos=1)
+            self.connected.set()
+
+        def on_message(c: Any, u: Any, m: Any) -> None:
+            with self.lock:
+                self.messages.append((m.topic, bytes(m.payload), bool(m.retain)))
+
+        self.client.on_connect = on_connect
+        self.client.on_message = on_message
+        self.client.connect("127.0.0.1", port, 30)
+        self.client.loop_start()
+        if not self.connected.wait(10):
+            raise TimeoutError("subscriber did not connect")
+
+    def events(self) -> list[dict[str, Any]]:
+        import json
+
+        with self.lock:
+            return [json.loads(p) for t, p, _ in self.messages if "/alarms/" in t and p.startswith(b"{\"spec")]
+
+    def wait(self, pred: Any, timeout_s: float = 20.0) -> bool:
+        import time
+
+        deadline = time.monotonic() + timeout_s
+        while time.monotonic() < deadline:
+            if pred():
+                return True
+            time.sleep(0.05)
+        return bool(pred())
+
+    def close(self) -> None:
+        self.client.loop_stop()
+        self.client.disconnect()
+
+
+def persistent_broker() -> Any:
+    """A private mosquitto that keeps sessions and queued QoS 1 messages across its own restarts."""
+    import os
+
+    from servers import Mosquitto
+
+    b = Mosquitto()
+    os.chmod(b.dir, 0o777)  # mosquitto started as root drops to its own user before saving
+    conf = b.conf.read_text().replace("persistence false", "")
+    b.conf.write_text(conf + f"persistence true\npersistence_location {b.dir}/\nautosave_interval 1\n")
+    return b

@@ -1,0 +1,102 @@
+"""Operator commands: the control socket (mode 0600), validation of requests, and ``edgevib alarms``."""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import stat
+from pathlib import Path
+from typing import Any
+
+import pytest
+from alarmkit import frame_result, small_config
+
+from edgevib.daemon.alarms.control import CommandError, handle_payload, request, validate_request
+from edgevib.daemon.alarms.engine import AlarmLayer
+from edgevib.daemon.cli import main
+
+
+@pytest.mark.parametrize(("req", "problem"), [
+    ({"cmd": "trip"}, "unknown command"),
+    ({"cmd": "ack"}, "missing point"),
+    ({"cmd": "ack", "point": "P", "extra": 1}, "unknown key"),
+    ({"cmd": "shelve", "point": "P", "reason": "work", "duration_s": -5}, "duration_s"),
+    ({"cmd": "shelve", "point": "P", "reason": "work", "duration_s": float("nan")}, "duration_s"),
+    ({"cmd": "shelve", "point": "P", "reason": " ", "duration_s": 60}, "non-empty"),
+    ({"cmd": "ack", "point": 7}, "non-empty string"),
+    ([1, 2], "JSON object"),
+])
+def test_invalid_requests_are_rejected(req: Any, problem: str) -> None:
+    with pytest.raises(CommandError, match=problem):
+        validate_request(req)
+
+
+def test_garbage_gets_an_error_response() -> None:
+    def never(req: dict[str, Any]) -> Any:
+        raise AssertionError("must not be called")
+    assert json.loads(handle_payload(b"\xff\xfe", never))["ok"] is False
+    assert "exceeds" in json.loads(handle_payload(b"{" * 20000, never))["error"]
+
+
+async def test_control_socket_commands(short_tmp: Path) -> None:
+    cfg = small_config(short_tmp)
+    layer = AlarmLayer(cfg)
+    events: list[dict[str, Any]] = []
+    layer.listeners.append(events.append)
+    await layer.start()
+    try:
+        sock = Path(cfg.alarms.socket_path)
+        assert stat.S_ISSOCK(sock.stat().st_mode) and stat.S_IMODE(sock.stat().st_mode) == 0o600
+        for i, v in enumerate([5.0, 5.0]):
+            await layer.on_frames([frame_result("P-101-DE-H", "P-101", 1000.0 + i, v)])
+
+        def ask(req: dict[str, Any]) -> dict[str, Any]:
+            return request(sock, req)
+
+        listing = await asyncio.to_thread(ask, {"cmd": "list", "id": 4})
+        assert listing["ok"] and listing["id"] == 4
+        assert listing["result"]["alarms"][0]["state"] == "unacknowledged"
+        bad = await asyncio.to_thread(ask, {"cmd": "ack", "point": "NOPE"})
+        assert bad == {"ok": False, "error": "unknown point 'NOPE'"}
+        bad = await asyncio.to_thread(ask, {"cmd": "shelve", "point": "P-101-DE-H", "reason": "x",
+                                            "duration_s": 1e9})
+        assert not bad["ok"] and "exceeds the maximum" in bad["error"]
+        ok = await asyncio.to_thread(ask, {"cmd": "shelve", "point": "P-101-DE-H", "reason": "bearing change",
+                                           "duration_s": 10.0, "by": "tech"})
+        assert ok == {"ok": True, "result": {"changed": 1, "events": 1}}
+        assert layer.state_text("P-101-DE-H") == "DANGER velocity_rms_mm_s"  # shelving hides events, not facts
+        assert events[-1]["data"]["transition"] == "shelved" and events[-1]["data"]["reason"] == "bearing change"
+        # The shelf expires on the frames' timeline: 10 s after the last frame (t = 1001 s).
+        await layer.on_frames([frame_result("P-101-DE-H", "P-101", 1005.0, 5.0)])
+        assert events[-1]["data"]["transition"] == "shelved"
+        await layer.on_frames([frame_result("P-101-DE-H", "P-101", 1011.0, 5.0)])
+        assert events[-1]["data"]["transition"] == "unshelved"
+        assert events[-1]["data"]["alarm_state"] == "unacknowledged"
+        # edgevib alarms …, in a thread so the daemon's loop keeps answering.
+        rc = await asyncio.to_thread(main, ["alarms", "--socket", str(sock), "ack", "P-101-DE-H"])
+        assert rc == 0 and events[-1]["data"]["transition"] == "acknowledged"
+        rc = await asyncio.to_thread(main, ["alarms", "--state-dir", str(short_tmp), "ack", "NOPE"])
+        assert rc == 1
+        rc = await asyncio.to_thread(main, ["alarms", "--state-dir", str(short_tmp), "list"])
+        assert rc == 0
+    finally:
+        await layer.stop()
+    assert not Path(cfg.alarms.socket_path).exists()
+    assert main(["alarms", "--state-dir", str(short_tmp), "list"]) == 2  # nobody listening
+
+
+def test_alarms_cli_prints_the_table(short_tmp: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    async def scenario() -> None:
+        cfg = small_config(short_tmp)
+        layer = AlarmLayer(cfg)
+        await layer.start()
+        try:
+            await layer.on_frames([frame_result("P-101-DE-H", "P-101", 1.0, 3.0)])
+            await layer.on_frames([frame_result("P-101-DE-H", "P-101", 2.0, 3.0)])
+            assert await asyncio.to_thread(main, ["alarms", "--state-dir", str(short_tmp), "list"]) == 0
+        finally:
+            await layer.stop()
+
+    asyncio.run(scenario())
+    out = capsys.readouterr().out
+    assert "P-101-DE-H" in out and "velocity_rms_mm_s" in out and "unacknowledged" in out and "alert" in out

@@ -1,0 +1,98 @@
+"""Durable outbox and state store (SQLite WAL): SIGKILL survival, unique ids, schema versions."""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import textwrap
+from pathlib import Path
+
+import pytest
+
+from edgevib.daemon.alarms.outbox import SCHEMA_VERSION, Database, Outbox, OutboxEvent, StateError
+from edgevib.daemon.alarms.state import StateStore, decode_alarm
+from edgevib.pipelines.alarm import AlarmState, LevelTrack
+
+WRITER = textwrap.dedent("""
+    import sys, time
+    from edgevib.daemon.alarms.outbox import Database, Outbox, OutboxEvent, new_event_id
+    ob = Outbox(Database(sys.argv[1]), ["mqtt", "webhook"])
+    i = 0
+    while True:
+        eid = new_event_id()
+        ob.add([OutboxEvent(id=eid, type="io.edgevib.alarm.v1.transition", subject="P-101-DE-H",
+                            topic="t", body='{"n": %d}' % i, created_ns=time.time_ns())])
+        print(eid, flush=True)  # printed only after the commit returned
+        i += 1
+""")
+
+
+def test_events_survive_sigkill_of_the_writer(tmp_path: Path) -> None:
+    db_path = tmp_path / "alarms.sqlite"
+    proc = subprocess.Popen([sys.executable, "-c", WRITER, str(db_path)], stdout=subprocess.PIPE, text=True)
+    committed: list[str] = []
+    try:
+        assert proc.stdout is not None
+        while len(committed) < 150:
+            line = proc.stdout.readline()
+            assert line, "writer died"
+            committed.append(line.strip())
+    finally:
+        os.kill(proc.pid, signal.SIGKILL)
+        proc.wait(10)
+    assert proc.returncode == -signal.SIGKILL
+    ob = Outbox(Database(db_path), ["mqtt", "webhook"])
+    ids = ob.all_ids()
+    assert set(committed) <= set(ids)  # nothing committed is lost
+    assert len(ids) == len(set(ids))   # ids unique
+    assert ob.depth("mqtt") == ob.depth("webhook") == len(ids)
+    first = ob.pending("mqtt", 10)
+    ob.mark_delivered("mqtt", [e.seq for e in first])
+    assert ob.depth("mqtt") == len(ids) - 10 and ob.depth("webhook") == len(ids)
+    assert ob.depth() == len(ids)  # still pending for the webhook
+    ob.mark_delivered("webhook", [e.seq for e in first])
+    assert ob.depth() == len(ids) - 10 and [e.id for e in first] == ids[:10]  # oldest first
+
+
+def test_state_written_by_an_older_version_is_read(tmp_path: Path) -> None:
+    db = Database(tmp_path / "a.sqlite")
+    store = StateStore(db)
+    s = AlarmState(alert=LevelTrack(active=True), acked=False, shelved_until_s=99.0, shelve_reason="x")
+    with db.transaction() as c:
+        store.save(c, alarms={("P-101-DE-H", "velocity_rms_mm_s"): s})
+        # An older writer's row: fewer fields; a newer writer's: an extra one.
+        c.execute("INSERT INTO alarm_state VALUES (?,?,?,?)", ("P-101-DE-H", "kurtosis",
+                                                                json.dumps({"alert": {"active": True}}), 0))
+        c.execute("INSERT INTO alarm_state VALUES (?,?,?,?)", ("P-101-DE-H", "crest_factor",
+                                                                json.dumps({"acked": False, "future": 1}), 0))
+    db.close()
+    loaded = StateStore(Database(tmp_path / "a.sqlite")).load_alarms()
+    assert loaded[("P-101-DE-H", "velocity_rms_mm_s")] == s
+    assert loaded[("P-101-DE-H", "kurtosis")] == AlarmState(alert=LevelTrack(active=True))
+    assert loaded[("P-101-DE-H", "crest_factor")] == AlarmState(acked=False)
+    with pytest.raises(ValueError):
+        decode_alarm("[1]")
+
+
+def test_a_newer_schema_is_refused_not_overwritten(tmp_path: Path) -> None:
+    Database(tmp_path / "a.sqlite").close()
+    c = sqlite3.connect(tmp_path / "a.sqlite")
+    c.execute("UPDATE schema_version SET version = ?", (SCHEMA_VERSION + 1,))
+    c.commit()
+    c.close()
+    with pytest.raises(StateError, match="newer edgevib"):
+        Database(tmp_path / "a.sqlite")
+    assert sqlite3.connect(tmp_path / "a.sqlite").execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+
+
+def test_duplicate_ids_are_refused(tmp_path: Path) -> None:
+    ob = Outbox(Database(tmp_path / "a.sqlite"), ["mqtt"])
+    e = OutboxEvent(id="same", type="t", subject="p", topic="x", body="{}", created_ns=1)
+    ob.add([e])
+    with pytest.raises(sqlite3.IntegrityError):
+        ob.add([e])
+    assert ob.depth("mqtt") == 1  # the failed transaction left nothing behind
