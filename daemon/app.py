@@ -455,12 +455,14 @@ def make_source(cfg: Any, config: Config, ingest: BlockIngest) -> Source:
             raise ConfigError(f"sources[{cfg.name}].type", "OPC UA sources are not available in this build")
         nodes = {p.node: spec_cls(sensor_id=p.sensor, fs_hz=p.fs_hz, unit=p.unit) for p in config.points
                  if p.source == cfg.name and p.node is not None}
-        return cls(name=cfg.name, endpoint=cfg.endpoint, ingest=ingest, nodes=nodes,
-                   speed_nodes={t: t for t in speed_tags}, mode=cfg.mode, poll_interval_s=cfg.poll_interval_s,
-                   security_policy=cfg.security_policy, security_mode=cfg.security_mode, cert_file=cfg.cert_file,
-                   key_file=cfg.key_file, server_cert_file=cfg.server_cert_file, username=cfg.username,
-                   password=cfg.password.reveal() if cfg.password is not None else None,
-                   reconnect_min_s=cfg.reconnect_min_s, reconnect_max_s=cfg.reconnect_max_s)
+        source: Source = cls(
+            name=cfg.name, endpoint=cfg.endpoint, ingest=ingest, nodes=nodes, speed_nodes={t: t for t in speed_tags},
+            mode=cfg.mode, poll_interval_s=cfg.poll_interval_s, security_policy=cfg.security_policy,
+            security_mode=cfg.security_mode, cert_file=cfg.cert_file, key_file=cfg.key_file,
+            server_cert_file=cfg.server_cert_file, username=cfg.username,
+            password=cfg.password.reveal() if cfg.password is not None else None,
+            reconnect_min_s=cfg.reconnect_min_s, reconnect_max_s=cfg.reconnect_max_s)
+        return source
     raise ConfigError("sources", f"unsupported source type {getattr(cfg, 'type', '?')!r}")
 
 

@@ -20,7 +20,7 @@ import tomllib
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field, fields, is_dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeAlias
 from urllib.parse import urlsplit
 
 from edgevib.daemon.interfaces import ConfigError
@@ -324,27 +324,34 @@ def _type_name(value: object) -> str:
             dict: "table"}.get(type(value), type(value).__name__)
 
 
+# The reader's methods below shadow these names inside its class body.
+_Str: TypeAlias = str
+_Int: TypeAlias = int
+_Float: TypeAlias = float
+_Bool: TypeAlias = bool
+
+
 class _Table:
     """Reads one TOML table, tracking its dotted path and which keys were used (the rest are unknown keys)."""
 
-    def __init__(self, doc: object, path: str) -> None:
+    def __init__(self, doc: object, path: _Str) -> None:
         if not isinstance(doc, dict):
             raise ConfigError(path, f"must be a table, got {_type_name(doc)}")
         self.doc: dict[str, Any] = doc
         self.path = path
         self.used: set[str] = set()
 
-    def key(self, name: str) -> str:
+    def key(self, name: _Str) -> _Str:
         return f"{self.path}.{name}" if self.path else name
 
-    def has(self, name: str) -> bool:
+    def has(self, name: _Str) -> _Bool:
         return name in self.doc
 
-    def raw(self, name: str, default: Any = None) -> Any:
+    def raw(self, name: _Str, default: Any = None) -> Any:
         self.used.add(name)
         return self.doc.get(name, default)
 
-    def _get(self, name: str, default: Any) -> Any:
+    def _get(self, name: _Str, default: Any) -> Any:
         self.used.add(name)
         if name not in self.doc:
             if default is _REQUIRED:
@@ -352,7 +359,7 @@ class _Table:
             return default
         return self.doc[name]
 
-    def str(self, name: str, default: Any = _REQUIRED, choices: tuple[str, ...] | None = None) -> Any:
+    def str(self, name: _Str, default: Any = _REQUIRED, choices: tuple[_Str, ...] | None = None) -> Any:
         v = self._get(name, default)
         if v is default and name not in self.doc:
             return v
@@ -364,7 +371,7 @@ class _Table:
             raise ConfigError(self.key(name), "contains control characters")
         return v
 
-    def int(self, name: str, default: Any = _REQUIRED, lo: int | None = None, hi: int | None = None) -> Any:
+    def int(self, name: _Str, default: Any = _REQUIRED, lo: _Int | None = None, hi: _Int | None = None) -> Any:
         v = self._get(name, default)
         if v is default and name not in self.doc:
             return v
@@ -373,8 +380,8 @@ class _Table:
         self._range(name, v, lo, hi)
         return v
 
-    def float(self, name: str, default: Any = _REQUIRED, lo: float | None = None, hi: float | None = None,
-              lo_open: bool = False) -> Any:
+    def float(self, name: _Str, default: Any = _REQUIRED, lo: _Float | None = None, hi: _Float | None = None,
+              lo_open: _Bool = False) -> Any:
         v = self._get(name, default)
         if v is default and name not in self.doc:
             return v
@@ -382,7 +389,7 @@ class _Table:
         self._range(name, v, lo, hi, lo_open)
         return v
 
-    def bool(self, name: str, default: Any = _REQUIRED) -> Any:
+    def bool(self, name: _Str, default: Any = _REQUIRED) -> Any:
         v = self._get(name, default)
         if v is default and name not in self.doc:
             return v
@@ -390,7 +397,7 @@ class _Table:
             raise ConfigError(self.key(name), f"must be true or false, got {_type_name(v)}")
         return v
 
-    def pair(self, name: str, default: Any = _REQUIRED, lo: float = 0.0) -> Any:
+    def pair(self, name: _Str, default: Any = _REQUIRED, lo: _Float = 0.0) -> Any:
         """A ``[low, high]`` pair of numbers with ``lo <= low < high``."""
         v = self._get(name, default)
         if v is default and name not in self.doc:
@@ -405,7 +412,7 @@ class _Table:
             raise ConfigError(path, f"low edge {a:g} must be below high edge {b:g}")
         return (a, b)
 
-    def str_list(self, name: str, default: Any = _REQUIRED) -> Any:
+    def str_list(self, name: _Str, default: Any = _REQUIRED) -> Any:
         v = self._get(name, default)
         if v is default and name not in self.doc:
             return v
@@ -413,20 +420,20 @@ class _Table:
             raise ConfigError(self.key(name), "must be an array of non-empty strings")
         return tuple(v)
 
-    def table(self, name: str) -> _Table | None:
+    def table(self, name: _Str) -> _Table | None:
         self.used.add(name)
         if name not in self.doc:
             return None
         return _Table(self.doc[name], self.key(name))
 
-    def tables(self, name: str) -> list[_Table]:
+    def tables(self, name: _Str) -> list[_Table]:
         self.used.add(name)
         v = self.doc.get(name, [])
         if not isinstance(v, list):
             raise ConfigError(self.key(name), f"must be an array of tables ([[{name}]]), got {_type_name(v)}")
         return [_Table(t, f"{self.key(name)}[{i}]") for i, t in enumerate(v)]
 
-    def secret(self, name: str, base_dir: Path) -> Secret | None:
+    def secret(self, name: _Str, base_dir: Path) -> Secret | None:
         """``name_file`` or ``name_env``; a literal ``name`` is rejected with a message saying how."""
         if name in self.doc:
             raise ConfigError(self.key(name), f"secrets are not accepted in the configuration file; put it in a "
@@ -446,7 +453,7 @@ class _Table:
             return Secret("env", e)
         return None
 
-    def path_key(self, name: str, base_dir: Path, must_exist: bool = True) -> str | None:
+    def path_key(self, name: _Str, base_dir: Path, must_exist: _Bool = True) -> _Str | None:
         v = self.str(name, None)
         if v is None:
             return None
@@ -461,14 +468,14 @@ class _Table:
             known = ", ".join(sorted(self.used)) or "none"
             raise ConfigError(self.key(unknown[0]), f"unknown key (known keys here: {known})")
 
-    def _range(self, name: str, v: float, lo: float | None, hi: float | None, lo_open: bool = False) -> None:
+    def _range(self, name: _Str, v: _Float, lo: _Float | None, hi: _Float | None, lo_open: _Bool = False) -> None:
         if lo is not None and (v < lo or (lo_open and v == lo)):
             raise ConfigError(self.key(name), f"{v:g} is out of range: must be {'>' if lo_open else '>='} {lo:g}")
         if hi is not None and v > hi:
             raise ConfigError(self.key(name), f"{v:g} is out of range: must be <= {hi:g}")
 
     @staticmethod
-    def _number(path: str, v: object) -> float:
+    def _number(path: _Str, v: object) -> _Float:
         if isinstance(v, bool) or not isinstance(v, int | float):
             raise ConfigError(path, f"must be a number, got {_type_name(v)}")
         f = float(v)

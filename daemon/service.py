@@ -190,9 +190,9 @@ async def serve(cfg: Config, *, config_path: Path | None = None, metrics_listen:
         for t in tasks:
             t.cancel()
         await asyncio.gather(*tasks, return_exceptions=True)
-        for sig in installed:
+        for signum in installed:
             with contextlib.suppress(Exception):
-                loop.remove_signal_handler(sig)
+                loop.remove_signal_handler(signum)
         if notifier is not None:
             with contextlib.suppress(Exception):
                 notifier.close()
