@@ -15,10 +15,13 @@ Each row reports, over the measurement window after a warm-up:
 * ``latency_p50_ms`` / ``latency_p99_ms``: ingest-to-metric, from the arrival of a frame's last block at the
   daemon to its indicators being published to the Prometheus sink — the quantity of the daemon's
   ``edgevib_analysis_latency_seconds`` histogram, measured per frame by a probe sink; ``hist_p99_le_ms`` is the
-  bucket bound of the same percentile read from a scrape of ``/metrics``;
+  bucket bound of the same percentile from that histogram (scrapes of ``/metrics`` at the window's start and end);
 * ``e2e_p99_ms``: from the moment the block was due at the device to its indicators (adds publishing and broker);
+  ``all_sinks_p99_ms``: ingest to the moment every sink (MQTT/OPC UA publishing, the alarm layer) took the frame;
 * ``dropped`` frames, ``rejected`` blocks, ``cpu_cores`` used by the daemon's process (all threads: event loop,
   paho's network thread, the analysis worker), ``mem_per_channel_mb`` (RSS growth / channels);
+* diagnostics: ``slow_frames`` over 250 ms and in how many distinct seconds they fell (one stall or many),
+  ``loop_lag_max_ms`` the longest the event loop was unresponsive, ``thread_cores`` CPU per thread;
 * ``sustained``: every expected frame analysed (≥ 97 %), none dropped or rejected, p99 < 250 ms.
 
 ``sustained_channels`` in the summary is the largest sustained channel count.  Figures depend on the machine and
@@ -56,6 +59,7 @@ BLOCK = 16384
 PERIOD_NS = round(BLOCK * 1e9 / FS_HZ)  # 640 ms, exact
 TOPIC = "bench/{sensor}/block"
 P99_TARGET_MS = 250.0
+_HIST = "edgevib_analysis_latency_seconds"
 _SEQ_T0 = struct.Struct("<Qq")  # seq and t0_ns at offset 8 of the binary block header (daemon/wire.py)
 
 
@@ -127,9 +131,10 @@ def channel_signal(channel: int, seed: int) -> np.ndarray:
     return x
 
 
-def _publisher(port: int, channels: list[int], n_channels: int, start_ns: int, stop_ns: int, qos: int,
-               seed: int, out: Any) -> None:
-    """Publisher process: paced publishing of pre-encoded blocks for ``channels``; reports counts and lag."""
+def _publisher(port: int, channels: list[int], n_channels: int, duration_ns: int, qos: int, seed: int,
+               out: Any, go: Any) -> None:
+    """Publisher process: connects and encodes, reports ready, receives the common start time on ``go``, then
+    publishes ``channels`` paced for ``duration_ns``; reports counts and lag on ``out``."""
     import paho.mqtt.client as mqtt
     from paho.mqtt.enums import CallbackAPIVersion
 
@@ -145,6 +150,9 @@ def _publisher(port: int, channels: list[int], n_channels: int, start_ns: int, s
         block = Block(sensor_id=sensor_id(c), seq=0, t0_ns=0, fs_hz=FS_HZ, unit="g", samples=channel_signal(c, seed))
         templates[c] = bytearray(encode_binary(block))
         topics[c] = TOPIC.format(sensor=sensor_id(c))
+    out.put({"ready": os.getpid()})
+    start_ns = int(go.get(timeout=60))
+    stop_ns = start_ns + duration_ns
     heap = [(start_ns + round(c * PERIOD_NS / n_channels) + PERIOD_NS, c, 0) for c in channels]
     heapq.heapify(heap)
     lags_ms: list[float] = []
@@ -219,18 +227,32 @@ class ProbeSink:
         pass
 
 
-def histogram_quantile(text: str, name: str, q: float) -> float:
-    """Upper bucket bound (s) holding quantile ``q`` of a Prometheus histogram in an exposition text."""
-    buckets: list[tuple[float, float]] = []
+async def _loop_lag(out: list[tuple[int, float]], interval_s: float = 0.01) -> None:
+    """Event-loop responsiveness: how late a 10 ms sleep wakes up (a blocked loop delays every source)."""
+    loop = asyncio.get_running_loop()
+    while True:
+        t = loop.time()
+        await asyncio.sleep(interval_s)
+        out.append((time.time_ns(), (loop.time() - t - interval_s) * 1e3))
+
+
+def histogram_buckets(text: str, name: str) -> dict[float, float]:
+    """Cumulative bucket counts ``{le: count}`` of a Prometheus histogram in an exposition text."""
+    buckets: dict[float, float] = {}
     for line in text.splitlines():
         if line.startswith(f"{name}_bucket{{"):
             le = line.split('le="', 1)[1].split('"', 1)[0]
-            buckets.append((math.inf if le == "+Inf" else float(le), float(line.rsplit(" ", 1)[1])))
-    if not buckets or buckets[-1][1] <= 0:
+            buckets[math.inf if le == "+Inf" else float(le)] = float(line.rsplit(" ", 1)[1])
+    return buckets
+
+
+def histogram_quantile(before: dict[float, float], after: dict[float, float], q: float) -> float:
+    """Upper bucket bound (s) holding quantile ``q`` of the observations between two scrapes."""
+    delta = sorted((le, count - before.get(le, 0.0)) for le, count in after.items())
+    if not delta or delta[-1][1] <= 0:
         return math.nan
-    buckets.sort()
-    total = buckets[-1][1]
-    return next(le for le, count in buckets if count >= q * total)
+    total = delta[-1][1]
+    return next(le for le, count in delta if count >= q * total)
 
 
 def bench_config(port: int, channels: int, overlap: float, state_dir: str) -> Any:
@@ -264,6 +286,7 @@ class Row:
     latency_p99_ms: float
     hist_p99_le_ms: float
     e2e_p99_ms: float
+    all_sinks_p99_ms: float
     dropped: int
     rejected: int
     cpu_cores: float
@@ -271,6 +294,9 @@ class Row:
     mem_per_channel_mb: float
     publish_lag_p99_ms: float
     seconds: float
+    slow_frames: int
+    slow_seconds: int
+    loop_lag_max_ms: float
     thread_cores: dict[str, float]
 
 
@@ -286,7 +312,7 @@ def _warm_up_analysis(overlap: float) -> None:
 
 
 async def run_level(broker: Broker, channels: int, seconds: float, warmup_s: float, overlap: float,
-                    publishers: int, qos: int, seed: int) -> Row:
+                    publishers: int, qos: int, seed: int, alarms: bool = True) -> Row:
     from prometheus_client import CollectorRegistry
 
     from edgevib.daemon.app import Daemon
@@ -295,11 +321,18 @@ async def run_level(broker: Broker, channels: int, seconds: float, warmup_s: flo
     config = bench_config(broker.port, channels, overlap, state_dir)
     rss_base = _rss_mb()
     daemon = Daemon(config, registry=CollectorRegistry(), metrics_listen=("127.0.0.1", 0))
-    probe = ProbeSink()
-    daemon.add_sink(probe)
+    if not alarms:  # diagnostic: the pipeline and the exposition without the alarm layer
+        daemon.sinks = [s for s in daemon.sinks if not type(s).__module__.startswith("edgevib.daemon.alarms")]
+    probe = ProbeSink()  # right after the Prometheus sink: the indicators are in the exposition
+    daemon.sinks.insert(daemon.sinks.index(daemon.metrics) + 1, probe)
+    probe_all = ProbeSink()  # after every sink (MQTT/OPC UA publishing, the alarm layer) has taken the frames
+    daemon.add_sink(probe_all)
     await daemon.start()
+    lags: list[tuple[int, float]] = []
+    ticker = asyncio.create_task(_loop_lag(lags))
     ctx = mp.get_context("spawn")
     out = ctx.Queue()
+    go = ctx.Queue()
     procs: list[Any] = []
     try:
         deadline = time.monotonic() + 15
@@ -308,27 +341,32 @@ async def run_level(broker: Broker, channels: int, seconds: float, warmup_s: flo
                 raise SystemExit("the daemon did not connect to the benchmark broker")
             await asyncio.sleep(0.05)
         n_pub = max(1, min(publishers, channels))
-        start_ns = time.time_ns() + 2_000_000_000  # publishers need ~1 s to start and encode
-        stop_ns = start_ns + round((warmup_s + seconds) * 1e9) + PERIOD_NS
+        duration_ns = round((warmup_s + seconds) * 1e9) + PERIOD_NS
         for i in range(n_pub):
             p = ctx.Process(target=_publisher, daemon=True,
-                            args=(broker.port, list(range(i, channels, n_pub)), channels, start_ns, stop_ns, qos,
-                                  seed, out))
+                            args=(broker.port, list(range(i, channels, n_pub)), channels, duration_ns, qos, seed,
+                                  out, go))
             p.start()
             procs.append(p)
+        for _ in procs:  # every publisher connected and encoded its payloads
+            await asyncio.to_thread(out.get, True, 60)
+        start_ns = time.time_ns() + 300_000_000
+        for _ in procs:
+            go.put(start_ns)
         window_start_ns = start_ns + round(warmup_s * 1e9) + PERIOD_NS
         window_end_ns = window_start_ns + round(seconds * 1e9)
         await asyncio.sleep(max(0.0, (window_start_ns - time.time_ns()) / 1e9))
         cpu0, dropped0, t0 = _cpu_s(), sum(daemon.stats.frames_dropped.values()), time.time_ns()
         threads0 = _thread_cpu_s()
+        hist0 = histogram_buckets(await asyncio.to_thread(_scrape, daemon.metrics.url), _HIST)
         await asyncio.sleep(max(0.0, (window_end_ns - time.time_ns()) / 1e9))
         cpu1, dropped1, t1 = _cpu_s(), sum(daemon.stats.frames_dropped.values()), time.time_ns()
         threads1 = _thread_cpu_s()
+        hist1 = histogram_buckets(await asyncio.to_thread(_scrape, daemon.metrics.url), _HIST)
         rss_end = _rss_mb()
-        await asyncio.sleep(1.0)  # let the last frames of the window finish
-        scrape = await asyncio.to_thread(_scrape, daemon.metrics.url)
         pubs = [await asyncio.to_thread(out.get, True, 30) for _ in procs]
     finally:
+        ticker.cancel()
         await daemon.stop()
         for p in procs:
             p.join(10)
@@ -345,17 +383,23 @@ async def run_level(broker: Broker, channels: int, seconds: float, warmup_s: flo
     rejected = sum(daemon.stats.blocks_rejected.values())
     dropped = dropped1 - dropped0
     p99 = float(np.percentile(lat, 99))
+    slow = [t for t, a, _ in probe.samples if window_start_ns <= t < window_end_ns and a > P99_TARGET_MS]
+    loop_lag = [g for t, g in lags if window_start_ns <= t < window_end_ns] or [math.nan]
+    after_all = [a for t, a, _ in probe_all.samples if window_start_ns <= t < window_end_ns] or [math.nan]
     return Row(
         channels=channels,
         sustained=bool(frames_per_s >= 0.97 * expected and dropped == 0 and rejected == 0 and p99 < P99_TARGET_MS),
         frames_per_s=round(frames_per_s, 1), expected_frames_per_s=round(expected, 1),
         latency_p50_ms=round(float(np.percentile(lat, 50)), 1), latency_p99_ms=round(p99, 1),
-        hist_p99_le_ms=round(histogram_quantile(scrape, "edgevib_analysis_latency_seconds", 0.99) * 1e3, 1),
-        e2e_p99_ms=round(float(np.percentile(e2e, 99)), 1), dropped=dropped, rejected=rejected,
+        hist_p99_le_ms=round(histogram_quantile(hist0, hist1, 0.99) * 1e3, 1),
+        e2e_p99_ms=round(float(np.percentile(e2e, 99)), 1),
+        all_sinks_p99_ms=round(float(np.percentile(after_all, 99)), 1), dropped=dropped, rejected=rejected,
         cpu_cores=round((cpu1 - cpu0) / wall_s, 2), rss_mb=round(rss_end, 1),
         mem_per_channel_mb=round((rss_end - rss_base) / channels, 3),
-        thread_cores={k: round((v - threads0.get(k, 0.0)) / wall_s, 2) for k, v in threads1.items()},
-        publish_lag_p99_ms=round(max(p["lag_p99_ms"] for p in pubs), 1), seconds=round(wall_s, 1))
+        publish_lag_p99_ms=round(max(p["lag_p99_ms"] for p in pubs), 1), seconds=round(wall_s, 1),
+        slow_frames=len(slow), slow_seconds=len({t // 1_000_000_000 for t in slow}),
+        loop_lag_max_ms=round(max(loop_lag), 1),
+        thread_cores={k: round((v - threads0.get(k, 0.0)) / wall_s, 2) for k, v in threads1.items()})
 
 
 def _scrape(url: str) -> str:
@@ -387,6 +431,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--qos", type=int, choices=(0, 1), default=0)
     p.add_argument("--seed", type=int, default=1)
     p.add_argument("--cpu", type=int, default=None, help="pin the daemon's process to this CPU core")
+    p.add_argument("--without-alarms", action="store_true",
+                   help="diagnostic: run the daemon without its alarm layer (to see what the alarm layer costs)")
     p.add_argument("--json", action="store_true", help="print JSON rows and a summary instead of a table")
     return p
 
@@ -407,7 +453,7 @@ def main(argv: list[str] | None = None) -> int:
     try:
         for n in args.channels:
             rows.append(asyncio.run(run_level(broker, n, args.seconds, args.warmup, args.overlap, args.publishers,
-                                              args.qos, args.seed)))
+                                              args.qos, args.seed, alarms=not args.without_alarms)))
             if not args.json:
                 _print_row(rows[-1], header=len(rows) == 1)
     finally:
@@ -416,7 +462,8 @@ def main(argv: list[str] | None = None) -> int:
     if args.json:
         print(json.dumps({"rows": [asdict(r) for r in rows], "sustained_channels": sustained,
                           "fs_hz": FS_HZ, "block_samples": BLOCK, "overlap": args.overlap, "workers": 1,
-                          "p99_target_ms": P99_TARGET_MS, "cpu_count": os.cpu_count()}, indent=2))
+                          "p99_target_ms": P99_TARGET_MS, "cpu_count": os.cpu_count(),
+                          "alarms": not args.without_alarms}, indent=2))
     else:
         print(f"sustained channels: {sustained} (target: >= 200 with p99 < {P99_TARGET_MS:g} ms on one worker)")
     return 0
