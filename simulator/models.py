@@ -235,7 +235,7 @@ class FirResponse:
     def apply(self, x: F64) -> F64:
         """``len(x) − 2·half`` output samples (valid part of the convolution)."""
         if self.half == 0:
-            return x * self.taps[0]
+            return np.asarray(x * self.taps[0], dtype=np.float64)
         return np.asarray(signal.oaconvolve(x, self.taps, mode="valid"), dtype=np.float64)
 
     def gain(self, nu: npt.ArrayLike) -> F64:

@@ -29,6 +29,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import datetime as dt
+import importlib
 import struct
 import threading
 import time
@@ -91,7 +92,7 @@ class MqttPublisher:
 
     def __init__(self, url: str, *, qos: int = 0, encoding: str = "json", client_id: str | None = None,
                  connect_timeout_s: float = 10.0, max_pending: int = 1000) -> None:
-        import paho.mqtt.client as mqtt
+        mqtt: Any = importlib.import_module("paho.mqtt.client")
 
         self.host, self.port = parse_mqtt_url(url)
         if qos not in (0, 1):
@@ -199,7 +200,8 @@ class OpcUaPublisher:
         return out
 
     async def start(self) -> None:
-        from asyncua import Server, ua
+        asyncua: Any = importlib.import_module("asyncua")
+        ua, Server = asyncua.ua, asyncua.Server
 
         sc = self.sim.scenario
         server = Server()
@@ -247,7 +249,7 @@ class OpcUaPublisher:
         self._server = server
 
     async def publish_block(self, block: Block) -> None:
-        from asyncua import ua
+        ua: Any = importlib.import_module("asyncua.ua")
 
         samples, seq, t0 = self._nodes[block.sensor_id]
         ts = dt.datetime.fromtimestamp(block.t0_ns / 1e9, tz=dt.UTC)
@@ -258,7 +260,7 @@ class OpcUaPublisher:
                                                     ua.VariantType.Double), SourceTimestamp=ts))
 
     async def publish_speed(self, machine_id: str, rpm: float) -> None:
-        from asyncua import ua
+        ua: Any = importlib.import_module("asyncua.ua")
 
         await self._server.write_attribute_value(self._speed_nodes[machine_id].nodeid,
                                                  ua.DataValue(ua.Variant(float(rpm), ua.VariantType.Double)))

@@ -278,7 +278,7 @@ class _Table:
             return default
         return self.doc[key]
 
-    def str(self, key: str, default: Any = _REQ, choices: tuple[str, ...] | None = None) -> Any:
+    def text(self, key: str, default: Any = _REQ, choices: tuple[str, ...] | None = None) -> Any:
         v = self.raw(key, default)
         if v is default and default is not _REQ:
             return v
@@ -352,6 +352,7 @@ def _speed(t: _Table) -> SpeedSpec:
     kinds = [k for k in ("rpm", "schedule", "ramp") if t.has(k)]
     if len(kinds) != 1:
         raise ScenarioError(t.path, "needs exactly one of rpm, schedule or ramp")
+    knots: tuple[tuple[float, float], ...]
     if kinds[0] == "rpm":
         knots = ((0.0, t.num("rpm", lo=0.0, hi=100_000.0)),)
     elif kinds[0] == "ramp":
@@ -388,7 +389,7 @@ def _speed(t: _Table) -> SpeedSpec:
 
 
 def _curve(t: _Table) -> Curve:
-    kind = t.str("curve", "logistic", ("linear", "exponential", "logistic"))
+    kind = t.text("curve", "logistic", ("linear", "exponential", "logistic"))
     start_s = t.num("start_s", lo=0.0)
     end_s = t.num("end_s", lo=0.0)
     if end_s <= start_s:
@@ -429,16 +430,16 @@ def parse_scenario(doc: Mapping[str, Any], path: str = "") -> Scenario:
     sc = top.table("scenario")
     if sc is None:
         raise ScenarioError("scenario", "table is required")
-    name = sc.str("name")
-    description = sc.str("description", "")
+    name = sc.text("name")
+    description = sc.text("description", "")
     duration_s = sc.num("duration_s", 60.0, 0.0, lo_open=True)
     sc.done()
     site_t = top.table("site")
     if site_t is None:
         raise ScenarioError("site", "table is required")
-    site = site_t.str("name")
-    site_desc = site_t.str("description", "")
-    prefix = site_t.str("topic_prefix", f"fwb/{site}")
+    site = site_t.text("name")
+    site_desc = site_t.text("description", "")
+    prefix = site_t.text("topic_prefix", f"fwb/{site}")
     site_t.done()
 
     machine_tables = top.tables("machines")
@@ -455,19 +456,19 @@ def parse_scenario(doc: Mapping[str, Any], path: str = "") -> Scenario:
     seen_sensors: set[str] = set()
     machine_ids = [m.doc.get("id") for m in machine_tables]
     for pt in point_tables:
-        pid = pt.str("id")
+        pid = pt.text("id")
         if pid in seen_points:
             raise ScenarioError(pt.key("id"), f"duplicate point id {pid!r}")
         seen_points.add(pid)
-        mid = pt.str("machine")
+        mid = pt.text("machine")
         if mid not in machine_ids:
             raise ScenarioError(pt.key("machine"), f"unknown machine {mid!r}")
-        axis = pt.str("axis", choices=AXES)
-        sensor = pt.str("sensor", pid)
+        axis = pt.text("axis", choices=AXES)
+        sensor = pt.text("sensor", pid)
         if sensor in seen_sensors:
             raise ScenarioError(pt.key("sensor"), f"duplicate sensor id {sensor!r}")
         seen_sensors.add(sensor)
-        stype = pt.str("sensor_type", choices=("piezo", "mems"))
+        stype = pt.text("sensor_type", choices=("piezo", "mems"))
         fs = pt.num("fs_hz", lo=100.0, hi=200_000.0)
         n = pt.num("block_samples", lo=64, hi=65536, integer=True)
         bearing = None
@@ -501,7 +502,7 @@ def parse_scenario(doc: Mapping[str, Any], path: str = "") -> Scenario:
             raise ScenarioError(pt.key("resonance_hz"), f"{res:g} Hz must be below 0.4 × fs = {0.4 * fs:g} Hz")
         sfaults = []
         for ft in pt.tables("sensor_faults"):
-            ftype = ft.str("type", choices=tuple(SENSOR_FAULT_PARAMS))
+            ftype = ft.text("type", choices=tuple(SENSOR_FAULT_PARAMS))
             start = ft.num("start_s", 0.0, 0.0)
             end = ft.num("end_s", None, 0.0)
             if end is not None and end <= start:
@@ -514,7 +515,7 @@ def parse_scenario(doc: Mapping[str, Any], path: str = "") -> Scenario:
             velocity_band_hz=vband, envelope_band_hz=eband,
             sensitivity_mv_per_g=pt.num("sensitivity_mv_per_g", 100.0 if stype == "piezo" else None, 0.0,
                                         lo_open=True),
-            description=pt.str("description", ""), resonance_hz=res,
+            description=pt.text("description", ""), resonance_hz=res,
             resonance_damping=pt.num("resonance_damping", 0.05, 0.005, 0.3),
             resonance_gain=pt.num("resonance_gain", 4.0, 1.0, 100.0),
             sensor_model=model, sensor_faults=tuple(sfaults)))
@@ -523,7 +524,7 @@ def parse_scenario(doc: Mapping[str, Any], path: str = "") -> Scenario:
     machines: list[MachineSpec] = []
     seen_machines: set[str] = set()
     for mt in machine_tables:
-        mid = mt.str("id")
+        mid = mt.text("id")
         if mid in seen_machines:
             raise ScenarioError(mt.key("id"), f"duplicate machine id {mid!r}")
         seen_machines.add(mid)
@@ -535,7 +536,7 @@ def parse_scenario(doc: Mapping[str, Any], path: str = "") -> Scenario:
         ref = mt.num("reference_rpm", max(r for _, r in speed.knots_rpm), 1.0)
         faults = []
         for i, ft in enumerate(mt.tables("faults")):
-            ftype = ft.str("type", choices=tuple(FAULT_PARAMS))
+            ftype = ft.text("type", choices=tuple(FAULT_PARAMS))
             params = _params(ft, FAULT_PARAMS[ftype])
             sel = ft.raw("points", None)
             if sel is None:
@@ -562,7 +563,7 @@ def parse_scenario(doc: Mapping[str, Any], path: str = "") -> Scenario:
                                         f"applies to ({', '.join(sel_ids)})")
                 if len(geoms) > 1:
                     raise ScenarioError(ft.key("points"), "a bearing fault's points must share one bearing geometry")
-            stage = ft.str("stage", "moderate", ("slight", "moderate", "severe", "extreme"))
+            stage = ft.text("stage", "moderate", ("slight", "moderate", "severe", "extreme"))
             pt_ = ft.table("progression")
             curve = _curve(pt_) if pt_ is not None else None
             ft.done()
@@ -570,9 +571,9 @@ def parse_scenario(doc: Mapping[str, Any], path: str = "") -> Scenario:
         lo_default = (0.5 * ref, 1.5 * ref)
         srange = mt.pair("speed_range_rpm", lo_default, lo=0.0)
         machines.append(MachineSpec(
-            machine_id=mid, description=mt.str("description", ""),
+            machine_id=mid, description=mt.text("description", ""),
             group=mt.num("group", lo=1, hi=2, integer=True),
-            support=mt.str("support", choices=("rigid", "flexible")),
+            support=mt.text("support", choices=("rigid", "flexible")),
             speed=speed, reference_rpm=ref, run_threshold_rpm=mt.num("run_threshold_rpm", 60.0, 0.0),
             speed_range_rpm=srange, residual_mm_s=mt.num("residual_mm_s", 0.5, 0.0, 100.0),
             process_noise_ug_rthz=mt.num("process_noise_ug_rthz", 150.0, 0.0, 1e6), faults=tuple(faults)))

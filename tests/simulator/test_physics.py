@@ -30,7 +30,8 @@ def _sim(machines, points, seed=0):
 
 def _kinematic(bearing):
     # FIELD_NOTES §2 (kinematic formulas), computed here independently of the simulator
-    k = bearing["ball_diameter_mm"] / bearing["pitch_diameter_mm"] * math.cos(math.radians(bearing["contact_angle_deg"]))
+    cos_phi = math.cos(math.radians(bearing["contact_angle_deg"]))
+    k = bearing["ball_diameter_mm"] / bearing["pitch_diameter_mm"] * cos_phi
     n = bearing["elements"]
     return {"ftf": 0.5 * (1 - k), "bpfo": 0.5 * n * (1 - k), "bpfi": 0.5 * n * (1 + k),
             "bsf": bearing["pitch_diameter_mm"] / (2 * bearing["ball_diameter_mm"]) * (1 - k * k)}
@@ -47,7 +48,7 @@ def mechanical():
 
 
 def test_imbalance_1x_as_specified(mechanical):
-    sim, rec, fs = mechanical
+    _, rec, fs = mechanical
     fr = 1480 / 60
     # scenario: imbalance 4.0 mm/s r.m.s. at 1× on a gain-1 axis; radial (horizontal) gain 1.0, axial 0.3
     h = line_velocity_mm_s(rec["P-501-DE-H"], fs, fr)
@@ -59,7 +60,7 @@ def test_imbalance_1x_as_specified(mechanical):
 
 
 def test_misalignment_2x_with_1x_3x_axial_emphasis(mechanical):
-    sim, rec, fs = mechanical
+    _, rec, fs = mechanical
     fr = 1480 / 60
     # 3.0 mm/s at 2× on the gain-1 (axial) axis, 1× at 0.5 and 3× at 0.3 of it; horizontal 0.6, vertical 0.5
     ax = [line_velocity_mm_s(rec["P-502-DE-A"], fs, k * fr) for k in (1, 2, 3)]
@@ -72,7 +73,7 @@ def test_misalignment_2x_with_1x_3x_axial_emphasis(mechanical):
 
 
 def test_looseness_harmonics_subharmonics_truncation(mechanical):
-    sim, rec, fs = mechanical
+    _, rec, fs = mechanical
     x = rec["P-503-DE-V"]
     fr = 1480 / 60
     v1 = line_velocity_mm_s(x, fs, fr, 0.5)
@@ -110,7 +111,7 @@ def _bearing_record(ftype, seconds=8.0, fs=25600.0, rpm=2960.0, seed=1, **params
 
 
 def test_outer_race_impact_rate_is_bpfo_with_slip():
-    sim, x, fs, fr = _bearing_record("outer_race", impact_g=3.0, slip=0.012, jitter=0.015)
+    _, x, fs, fr = _bearing_record("outer_race", impact_g=3.0, slip=0.012, jitter=0.015)
     bpfo = _kinematic(BEARING)["bpfo"] * fr
     f, s = squared_envelope_spectrum(x, fs, (3000.0, 5000.0))
     f_peak, _ = peak_near(f, s, bpfo, 0.05)
@@ -123,7 +124,7 @@ def test_outer_race_impact_rate_is_bpfo_with_slip():
 
 
 def test_outer_race_impact_intervals_jitter():
-    sim, x, fs, fr = _bearing_record("outer_race", impact_g=5.0, slip=0.01, jitter=0.015, amplitude_spread=0.0)
+    _, x, fs, fr = _bearing_record("outer_race", impact_g=5.0, slip=0.01, jitter=0.015, amplitude_spread=0.0)
     lam = _kinematic(BEARING)["bpfo"] * fr * 0.99
     # impact onsets by thresholding the band-passed envelope; a refractory period of half an interval
     sos = signal.butter(4, (3000.0, 5000.0), btype="bandpass", fs=fs, output="sos")
@@ -140,7 +141,7 @@ def test_outer_race_impact_intervals_jitter():
 
 
 def test_inner_race_bpfi_with_1x_sidebands():
-    sim, x, fs, fr = _bearing_record("inner_race", impact_g=3.0, slip=0.01, modulation=0.8)
+    _, x, fs, fr = _bearing_record("inner_race", impact_g=3.0, slip=0.01, modulation=0.8)
     bpfi = _kinematic(BEARING)["bpfi"] * fr * 0.99
     f, s = squared_envelope_spectrum(x, fs, (3000.0, 5000.0))
     fp, line = peak_near(f, s, bpfi, 0.01)
@@ -154,7 +155,7 @@ def test_inner_race_bpfi_with_1x_sidebands():
 
 
 def test_rolling_element_2bsf_with_ftf_sidebands():
-    sim, x, fs, fr = _bearing_record("rolling_element", seconds=12.0, impact_g=3.0, slip=0.01, modulation=0.6)
+    _, x, fs, fr = _bearing_record("rolling_element", seconds=12.0, impact_g=3.0, slip=0.01, modulation=0.6)
     kin = _kinematic(BEARING)
     two_bsf = 2 * kin["bsf"] * fr * 0.99
     ftf = kin["ftf"] * fr * 0.99
@@ -169,7 +170,7 @@ def test_rolling_element_2bsf_with_ftf_sidebands():
 
 
 def test_cage_ftf_tone():
-    sim, x, fs, fr = _bearing_record("cage", seconds=20.0, fs=5120.0, velocity_mm_s=1.5, slip=0.01)
+    _, x, fs, fr = _bearing_record("cage", seconds=20.0, fs=5120.0, velocity_mm_s=1.5, slip=0.01)
     ftf = _kinematic(BEARING)["ftf"] * fr * 0.99
     assert line_velocity_mm_s(x, fs, ftf, 0.3) == pytest.approx(1.5, rel=0.03)
     assert line_velocity_mm_s(x, fs, 2 * ftf, 0.3) == pytest.approx(0.4 * 1.5, rel=0.05)
@@ -262,18 +263,18 @@ def faulty():
 
 
 def _after(x, t_s, fs=12800.0):
-    return x[int(math.ceil(t_s * fs)):]
+    return x[math.ceil(t_s * fs):]
 
 
 def test_flatline_has_zero_variance(faulty):
-    sim, rec = faulty
+    _, rec = faulty
     x = rec["M-301-DE-H"]
     assert np.var(_after(x, 5.0)) == 0.0
     assert np.var(x[: int(4.9 * 12800)]) > 0
 
 
 def test_clipping_at_level(faulty):
-    sim, rec = faulty
+    _, rec = faulty
     x = _after(rec["M-301-DE-V"], 5.0)
     ref = _after(rec["M-301-REF-H"], 5.0)
     assert np.max(np.abs(x)) == pytest.approx(0.04, abs=1e-6)
@@ -282,14 +283,14 @@ def test_clipping_at_level(faulty):
 
 
 def test_bias_shift(faulty):
-    sim, rec = faulty
+    _, rec = faulty
     x = rec["M-301-DE-A"]
-    assert np.mean(x[: int(5 * 12800)]) == pytest.approx(0.0, abs=1e-3)
+    assert np.mean(x[: (5 * 12800)]) == pytest.approx(0.0, abs=1e-3)
     assert np.mean(_after(x, 5.0)) == pytest.approx(3.0, abs=1e-3)
 
 
 def test_cable_fault_rail_episodes(faulty):
-    sim, rec = faulty
+    _, rec = faulty
     x = _after(rec["M-301-NDE-H"], 5.0)
     at_rail = np.mean(np.abs(x - 45.0) < 1e-4)        # the rail value, to the ADC step
     # episode starts at 1 /s lasting 50 ms: expected coverage 1 − exp(−1 × 0.05) ≈ 4.9 %
@@ -297,7 +298,7 @@ def test_cable_fault_rail_episodes(faulty):
 
 
 def test_spikes_rate_and_amplitude(faulty):
-    sim, rec = faulty
+    _, rec = faulty
     x = _after(rec["M-301-NDE-V"], 5.0)
     spikes = np.count_nonzero(np.abs(x) > 10.0)
     expected = 3.0 * x.size / 12800.0
@@ -305,11 +306,11 @@ def test_spikes_rate_and_amplitude(faulty):
     assert np.max(np.abs(x)) == pytest.approx(20.0, abs=0.2)
 
 
-def test_dropped_blocks_skip_sequence_numbers(faulty):
+def test_dropped_blocks_skip_sequence_numbers():
     sim = Simulation(load_scenario("sensor-faults"), seed=2, t0_ns=0)
-    blocks = [b for b in sim.blocks_until(60.0) if b.sensor_id == "QL-M301-NDE-A"]
+    total = int(30.0 * 12800 // 4096)
+    blocks = [b for b in (sim.block("M-301-NDE-A", k) for k in range(total)) if b is not None]
     seqs = np.array([b.seq for b in blocks])
-    total = int(60.0 * 12800 // 4096)
     before = int(5.0 * 12800 // 4096) + 1
     assert np.all(np.diff(seqs) >= 1) and seqs[0] == 0
     assert set(range(before)) <= set(seqs.tolist())                      # none dropped before 5 s
@@ -318,6 +319,9 @@ def test_dropped_blocks_skip_sequence_numbers(faulty):
     assert abs(lost - 0.2 * n_after) < 4 * math.sqrt(n_after * 0.2 * 0.8)   # binomial within 4σ
     for b in blocks:                                                     # time stamps follow the sequence number
         assert b.t0_ns == round(b.seq * 4096 * 1e9 / 12800)
+    # streamed: the same blocks are missing, their sequence numbers skipped
+    streamed = [b.seq for b in sim.blocks_until(8.0) if b.sensor_id == "QL-M301-NDE-A"]
+    assert streamed == [s for s in seqs.tolist() if (s + 1) * 4096 <= 8.0 * 12800]
 
 
 def test_g_units_sanity():
