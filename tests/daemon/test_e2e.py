@@ -7,6 +7,8 @@ edgevib.pipelines, so its truth is an outside reference for the whole chain).
 from __future__ import annotations
 
 import asyncio
+import json
+import sys
 import urllib.request
 from pathlib import Path
 from typing import Any
@@ -80,5 +82,45 @@ async def test_simulator_broker_daemon_scrape_matches_truth(mosquitto: Any, tmp_
             # the simulator's analytic ISO-band velocity r.m.s. (its truth) vs the scraped metric in m/s
             assert scraped[p.id] * 1000.0 == pytest.approx(truth_mm_s, rel=0.05), p.id
         assert not d.stats.blocks_rejected
+    finally:
+        await d.stop()
+
+
+async def test_simulate_cli_broker_daemon_matches_truth_file(mosquitto: Any, tmp_path: Path) -> None:
+    """The same chain with the simulator as its own process: `edgevib simulate --mqtt … --truth PATH`."""
+    from edgevib.simulator.engine import Simulation, load_scenario
+
+    sim = Simulation(load_scenario("demo"), seed=0)
+    doc = sim.daemon_config(source={"name": "station-broker", "type": "mqtt", "url": mosquitto.url, "qos": 1,
+                                    "topics": ["fwb/quarry-lane/#"], "reconnect_min_s": 0.1})
+    doc["site"]["state_dir"] = str(tmp_path / "state")
+    doc["analysis"]["queue_frames"] = 64
+    cfg = parse_config(doc)
+    d = Daemon(cfg, metrics_listen=("127.0.0.1", 0))
+    await d.start()
+    truth_path = tmp_path / "truth.json"
+    try:
+        async with asyncio.timeout(10):
+            while not d.ready:
+                await asyncio.sleep(0.05)
+        proc = await asyncio.create_subprocess_exec(
+            sys.executable, "-m", "edgevib.daemon", "simulate", "--mqtt", mosquitto.url, "--scenario", "demo",
+            "--seed", "0", "--rate", "4", "--duration", str(DURATION_S), "--qos", "1", "--encoding", "binary",
+            "--truth", str(truth_path), stdout=asyncio.subprocess.DEVNULL, stderr=asyncio.subprocess.PIPE)
+        async with asyncio.timeout(60):
+            _, err = await proc.communicate()
+        assert proc.returncode == 0, err.decode()
+        truth = json.loads(truth_path.read_text())
+        async with asyncio.timeout(60):
+            while any(d.stats.frames_analysed[p.id] < 3 for p in cfg.points) or d._inflight or any(
+                    s.queue for s in d.ingest.streams.values()):
+                await asyncio.sleep(0.1)
+        assert d.metrics.url is not None
+        text = await asyncio.to_thread(lambda: urllib.request.urlopen(d.metrics.url, timeout=5).read().decode())
+        families = {f.name: f for f in text_string_to_metric_families(text)}
+        scraped = {s.labels["point"]: s.value for s in families["edgevib_velocity_rms_meters_per_second"].samples}
+        for p in cfg.points:
+            # the simulator's analytic ISO-band velocity r.m.s. at the end of the run vs the scraped metric
+            assert scraped[p.id] * 1000.0 == pytest.approx(truth["points"][p.id]["velocity_rms_mm_s"], rel=0.05), p.id
     finally:
         await d.stop()
