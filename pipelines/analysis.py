@@ -37,6 +37,7 @@ from edgevib.pipelines.spectrum import (
     band_lines,
     estimate_speed_hz,
     hann_lines,
+    integration_coefficients,
     order_amplitudes_mm_s,
 )
 from edgevib.pipelines.types import (
@@ -233,7 +234,7 @@ class AnalysisKernel:
         "_env_lines",
         "_env_m",
         "_env_stop",
-        "_inv_omega2",
+        "_integrate",
         "_md",
         "_mult",
         "_mv",
@@ -253,10 +254,9 @@ class AnalysisKernel:
         self._df = plan.fs_hz / n
         k = np.arange(n // 2 + 1, dtype=np.float64)
         omega = 2.0 * np.pi * k * self._df
-        inv2 = np.zeros_like(omega)
-        inv2[1:] = (G_MM_S2 / omega[1:]) ** 2
-        inv2.flags.writeable = False
-        self._inv_omega2 = inv2
+        coef = integration_coefficients(plan.fs_hz, n, n // 2 + 1)
+        coef.flags.writeable = False
+        self._integrate = coef
         lo, hi = band_lines(plan.fs_hz, n, plan.velocity_band_hz)
         if hi < lo:
             raise PlanError(f"velocity band {plan.velocity_band_hz[0]:g}–{plan.velocity_band_hz[1]:g} Hz holds no "
@@ -272,7 +272,7 @@ class AnalysisKernel:
         disp_coef.flags.writeable = False
         self._vel_coef = vel_coef
         self._disp_coef = disp_coef
-        self._vel_stop = min(n // 2, hi + 2)
+        self._vel_stop = min(n // 2 - 1, hi + 2)
         self._speed_stop = min(n // 2, math.ceil(SPEED_HARMONICS * plan.speed_range_hz[1] * (1 + plan.order_tolerance)
                                                / self._df) + 3)
         self._env = plan.bearing is not None and plan.envelope_band_hz is not None
@@ -314,15 +314,18 @@ class AnalysisKernel:
         known_max = float(np.nanmax(f_given)) if (~estimate).any() else plan.speed_range_hz[1]
         stop = min(n // 2, max(stop, math.ceil(max(plan.orders) * known_max * (1 + plan.order_tolerance)
                                                / self._df) + 3))
-        lines = hann_lines(spec, stop)
-        vel_pow = (lines.real**2 + lines.imag**2) * self._inv_omega2[:stop]
+        acc = hann_lines(spec, stop)
+        acc_pow = acc.real**2 + acc.imag**2
+        vel = hann_lines(spec[:, : stop + 1] * self._integrate[: stop + 1], stop)  # integrate, then window
+        vel_pow = vel.real**2 + vel.imag**2
         v_lo, v_hi = self._vel_lines
         factor = 16.0 / (3.0 * n * n)
         vel_rms = np.sqrt(vel_pow[:, v_lo : v_hi + 1].sum(axis=-1) * factor)
 
         shaft = f_given.copy()
         if estimate.any():
-            est = estimate_speed_hz(vel_pow[estimate], plan.speed_range_hz, self._df, SPEED_HARMONICS)
+            est = estimate_speed_hz(vel_pow[estimate], acc_pow[estimate], plan.speed_range_hz, self._df,
+                                    SPEED_HARMONICS)
             shaft[estimate] = est
         orders = order_amplitudes_mm_s(vel_pow, shaft, plan.orders, plan.order_tolerance, self._df, n)
 

@@ -13,8 +13,10 @@ Scaling (documented once, used everywhere):
   rescaled signal in the band, for sines on or between lines (within about 1 %) and for broadband noise.
 * **Order amplitudes** are the same power sum over the three lines around the largest line within the order's
   tolerance, so a line between two bins still reads its r.m.s. within about 1 % (no scalloping loss).
-* Velocity lines are acceleration lines divided by ω = 2πf (times gₙ and 1000 for mm/s); lines outside the band
-  are zero, so DC, gravity and drift never blow up (FIELD_NOTES §5).
+* Velocity: every unwindowed line k ≥ 1 is divided by jω (ω = 2πf, times gₙ·1000 for mm/s), *then* the
+  Hann taps are applied — the windowed spectrum of the velocity waveform itself, so a sine reads a/(2πf) exactly
+  on or between lines (windowing the acceleration first would bias lines near the band edge by (Δf/f)²).  Only
+  lines inside the band are summed, so DC, gravity and drift never blow up (FIELD_NOTES §5).
 """
 
 from __future__ import annotations
@@ -42,7 +44,7 @@ ComplexArray = npt.NDArray[np.complex128]
 IntArray = npt.NDArray[np.intp]
 
 G_MM_S2 = STANDARD_GRAVITY_M_S2 * 1000.0  # 1 g in mm/s²
-SPEED_MIN_PROMINENCE = 4.0  # the 1× line of an estimated speed must stand 12 dB over the median (common practice)
+SPEED_MIN_PROMINENCE = 5.0  # an estimated speed's 1× line stands ≥ 14 dB over its local floor (common practice)
 
 
 def hann_lines(spec: npt.NDArray[Any], stop: int) -> npt.NDArray[Any]:
@@ -162,14 +164,20 @@ def velocity_rms_mm_s(x_g: npt.ArrayLike, fs_hz: float,
     if hi < lo or hi >= n // 2:
         raise PlanError(f"velocity band {band_hz[0]:g}–{band_hz[1]:g} Hz holds no lines below Nyquist "
                         f"{fs_hz / 2:g} Hz at resolution {fs_hz / n:g} Hz")
-    spec = _fft.rfft(x)
-    spec[:, 0] = 0.0  # mean removal (finite_mean checks the samples)
     finite_mean(x)
-    lines = hann_lines(spec, hi + 1)
-    inv_w = G_MM_S2 / (2.0 * np.pi * np.arange(lo, hi + 1) * fs_hz / n)
-    vel_pow = (lines[:, lo:].real ** 2 + lines[:, lo:].imag ** 2) * inv_w**2
+    spec = _fft.rfft(x)
+    vel = hann_lines(spec[:, : hi + 2] * integration_coefficients(fs_hz, n, hi + 2), hi + 1)
+    vel_pow = vel.real[:, lo:] ** 2 + vel.imag[:, lo:] ** 2
     rms: FloatArray = np.sqrt(vel_pow.sum(axis=-1) * _power_to_ms_factor(n))
     return rms
+
+
+def integration_coefficients(fs_hz: float, n_samples: int, stop: int) -> ComplexArray:
+    """``gₙ·1000 / (jω)`` for rfft lines ``0 .. stop-1`` (0 at DC): g → mm/s by frequency-domain integration."""
+    k = np.arange(stop, dtype=np.float64)
+    coef = np.zeros(stop, dtype=np.complex128)
+    coef[1:] = G_MM_S2 / (2j * np.pi * k[1:] * fs_hz / n_samples)
+    return coef
 
 
 # ----------------------------------------------------------------------------------- search helpers
@@ -261,19 +269,22 @@ def order_amplitudes_mm_s(vel_pow: FloatArray, shaft_hz: FloatArray, orders: tup
     return np.where(in_range, amp, np.nan)
 
 
-def estimate_speed_hz(vel_pow: FloatArray, speed_range_hz: tuple[float, float], df_hz: float,
-                      harmonics: int = 3) -> FloatArray:
-    """Shaft-speed estimate per channel from a velocity power spectrum, NaN where no clear 1× line exists.
+def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: tuple[float, float],
+                      df_hz: float, harmonics: int = 3) -> FloatArray:
+    """Shaft-speed estimate per channel, NaN where no clear 1× line exists.
 
-    A harmonic sum: every candidate f0 in ``speed_range_hz`` (steps of a third of a line) scores the sum of the
-    largest amplitudes within ±1 line of f0, 2f0 … (``harmonics``), minus the same at the half-way points
-    0.5f0, 1.5f0 … (which rejects the 2f0, 3f0 octave errors).  The winner is refined by log-parabolic
-    interpolation of its 1× line; it is kept only when that line stands at least ``SPEED_MIN_PROMINENCE`` times
-    (12 dB) above the median amplitude of the searched region.
+    A harmonic sum over the velocity spectrum (where the shaft lines dominate): every candidate f0 in
+    ``speed_range_hz`` (steps of a third of a line) scores the sum of the largest amplitudes within ±1 line of
+    f0, 2f0 … (``harmonics``), minus the same at the half-way points 0.5f0, 1.5f0 … (which rejects the octave
+    errors 2f0 and f0/2 when harmonics are present).  The winner's 1× line is refined on the acceleration spectrum
+    with the Hann two-line interpolation δ = ±(2α − 1)/(α + 1), α the larger neighbour over the peak (exact for
+    one tone), and kept only when it stands at least ``SPEED_MIN_PROMINENCE`` times (14 dB) over the median
+    acceleration amplitude within ±25 % of its frequency (a white floor there, unlike the velocity spectrum's).
 
     Parameters
     ----------
-    vel_pow : ndarray, shape (channels, lines); lines must reach ``harmonics·speed_range_hz[1]`` plus 2 lines.
+    vel_pow, acc_pow : ndarrays, shape (channels, lines) — Hann-windowed velocity and acceleration line powers;
+        lines must reach ``harmonics · speed_range_hz[1]`` plus 2 lines.
 
     Returns
     -------
@@ -289,20 +300,21 @@ def estimate_speed_hz(vel_pow: FloatArray, speed_range_hz: tuple[float, float], 
         score += amp3[:, np.clip(np.rint(h * cand).astype(np.intp), 0, k - 1)]
         score -= amp3[:, np.clip(np.rint((h - 0.5) * cand).astype(np.intp), 0, k - 1)]
     best = cand[np.argmax(score, axis=-1)]  # (channels,)
+    acc = np.sqrt(acc_pow)
     b = np.rint(best).astype(np.intp)
-    peak = window_argmax(amp, (b - 1)[:, None], (b + 1)[:, None])[:, 0]
+    peak = window_argmax(acc, (b - 1)[:, None], (b + 1)[:, None])[:, 0]
     peak = np.clip(peak, 1, k - 2)
     rows = np.arange(c)
-    la = np.log(np.maximum(amp[rows, peak - 1], 1e-300))
-    lb = np.log(np.maximum(amp[rows, peak], 1e-300))
-    lc = np.log(np.maximum(amp[rows, peak + 1], 1e-300))
-    denom = la - 2.0 * lb + lc
-    delta = np.where(denom < 0, 0.5 * (la - lc) / np.where(denom < 0, denom, -1.0), 0.0)
-    f_est = (peak + np.clip(delta, -0.5, 0.5)) * df_hz
-    lo_line = max(1, math.floor(speed_range_hz[0] / df_hz))
-    hi_line = min(k, math.ceil(harmonics * speed_range_hz[1] / df_hz) + 2)
-    floor = np.median(amp[:, lo_line:hi_line], axis=-1)
-    clear = amp[rows, peak] >= SPEED_MIN_PROMINENCE * floor
-    clear &= amp[rows, peak] > 0
+    left, mid, right = acc[rows, peak - 1], acc[rows, peak], acc[rows, peak + 1]
+    side = np.where(right >= left, 1.0, -1.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        alpha = np.maximum(left, right) / mid
+        delta = side * (2.0 * alpha - 1.0) / (alpha + 1.0)
+    delta = np.where(np.isfinite(delta), np.clip(delta, -0.5, 0.5), 0.0)
+    f_est = (peak + delta) * df_hz
+    span = np.maximum(np.rint(0.25 * peak).astype(np.intp), 8)
+    floor = masked_median(acc, (peak - span)[:, None], (peak + span)[:, None], (peak - 2)[:, None],
+                          (peak + 2)[:, None])[:, 0]
+    clear = (mid > 0) & (mid >= SPEED_MIN_PROMINENCE * floor)
     inside = (f_est >= speed_range_hz[0] * 0.999) & (f_est <= speed_range_hz[1] * 1.001)
     return np.where(clear & inside, f_est, np.nan)
