@@ -209,3 +209,14 @@ async def test_analysis_error_is_counted_not_fatal(tmp_path: Path) -> None:
         await wait_for(lambda: d.stats.analysis_errors.get("P-101-DE-H", 0) >= 2)
     finally:
         await d.stop()
+
+
+def test_one_startup_warning_for_a_point_without_envelope_band(tmp_path: Path) -> None:
+    from structlog.testing import capture_logs
+
+    with capture_logs() as logs:
+        d = Daemon(config(tmp_path), registry=CollectorRegistry(), serve_metrics=False, sources=[])
+        d._build_points(d.config, keep=d.points)  # a rebuild (as on reload) does not warn again
+    warnings = [e for e in logs if e["event"] == "no envelope indicators for this point"]
+    assert [e["point"] for e in warnings] == ["F-201-NDE-V"]
+    assert "1000 Hz" in warnings[0]["reason"]

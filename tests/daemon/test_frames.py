@@ -197,3 +197,20 @@ def test_latency_histogram_cumulative() -> None:
         h.observe(v)
     assert h.cumulative() == [("0.1", 1), ("1.0", 3), ("+Inf", 4)]
     assert h.sum_s == pytest.approx(4.05)
+
+
+def test_rate_limited_logger_suppresses_and_reports() -> None:
+    from structlog.testing import capture_logs
+
+    from edgevib.daemon.logs import RateLimitedLogger, get_logger
+
+    now = [0.0]
+    rl = RateLimitedLogger(get_logger("test"), interval_s=10.0, clock=lambda: now[0])
+    with capture_logs() as logs:
+        for _ in range(5):
+            rl.warning("k", "block rejected", reason="malformed")
+        rl.warning("other", "block rejected", reason="too_large")
+        now[0] = 11.0
+        rl.warning("k", "block rejected", reason="malformed")
+    assert [(e["reason"], e.get("suppressed")) for e in logs] == [("malformed", None), ("too_large", None),
+                                                                  ("malformed", 4)]
