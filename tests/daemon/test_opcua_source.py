@@ -13,7 +13,9 @@ from typing import Any
 
 import numpy as np
 import pytest
+import structlog
 from asyncua import Server, ua
+from asyncua.crypto.permission_rules import User, UserRole
 from opcua_certs import make_cert
 from prometheus_client import CollectorRegistry
 from servers import free_port
@@ -79,10 +81,10 @@ def block_time(k: int) -> datetime.datetime:
 class UaServer:
     """A small asyncua server with the variables the tests need (one object per test, restartable)."""
 
-    def __init__(self, port: int) -> None:
+    def __init__(self, port: int, user_manager: Any = None) -> None:
         self.port = port
         self.url = f"opc.tcp://127.0.0.1:{port}/edgevib-test/"
-        self.server = Server()
+        self.server = Server(user_manager=user_manager)
         self.vars: dict[str, Any] = {}
 
     async def init(self, policies: list[Any] | None = None, cert: Any = None) -> UaServer:
@@ -352,29 +354,50 @@ async def test_server_restart_reconnects_and_resumes(opcua_server: UaServer, mod
 
 
 @pytest.mark.slow
-async def test_basic256sha256_sign_and_encrypt(tmp_path: Path) -> None:
+class OneUser:
+    """asyncua user manager accepting exactly one user name and password."""
+
+    def __init__(self, username: str, password: str) -> None:
+        self.username, self.password = username, password
+
+    def get_user(self, iserver: Any, username: str | None = None, password: str | None = None,
+                 certificate: Any = None) -> User | None:
+        if username == self.username and password == self.password:
+            return User(role=UserRole.User)
+        return None
+
+
+async def test_basic256sha256_sign_and_encrypt_with_user_and_password(tmp_path: Path) -> None:
     server_cert = make_cert(tmp_path, "server", "urn:fennick:quarry-lane:test-server", server=True)
     client_cert = make_cert(tmp_path, "client", "urn:fennick:quarry-lane:edgevib", server=False)
-    srv = await UaServer(free_port()).init([ua.SecurityPolicyType.Basic256Sha256_SignAndEncrypt], server_cert)
+    password = "quarry-lane-test-secret-7f3a"
+    srv = UaServer(free_port(), user_manager=OneUser("edgevib", password))
+    await srv.init([ua.SecurityPolicyType.Basic256Sha256_SignAndEncrypt], server_cert)
+    srv.server.set_identity_tokens([ua.UserNameIdentityToken])  # no anonymous sessions
     await srv.start()
+    secure: dict[str, Any] = dict(security_policy="Basic256Sha256", security_mode="SignAndEncrypt",
+                                  cert_file=str(client_cert.cert_der), key_file=str(client_cert.key_pem),
+                                  server_cert_file=str(server_cert.cert_der))
     try:
         ingest = FakeIngest()
-        source = make_source(srv, ingest, security_policy="Basic256Sha256", security_mode="SignAndEncrypt",
-                             cert_file=str(client_cert.cert_der), key_file=str(client_cert.key_pem),
-                             server_cert_file=str(server_cert.cert_der))
-        async with running(source):
-            await until(lambda: len(ingest.blocks) >= 1, "a block over the encrypted channel")
-            await srv.write("acc", block_samples(1), block_time(1))
-            await until(lambda: len(ingest.blocks) >= 2, "second block")
-        check_block(ingest.blocks[1][1], 1, seq=1)
-        assert ingest.connections[0] is True
+        with structlog.testing.capture_logs() as events:
+            source = make_source(srv, ingest, username="edgevib", password=password, **secure)
+            async with running(source):
+                await until(lambda: len(ingest.blocks) >= 1, "a block over the encrypted channel")
+                await srv.write("acc", block_samples(1), block_time(1))
+                await until(lambda: len(ingest.blocks) >= 2, "second block")
+            check_block(ingest.blocks[1][1], 1, seq=1)
+            assert ingest.connections[0] is True
 
-        # the same client without security cannot use a server that offers only SignAndEncrypt
-        plain = FakeIngest()
-        insecure = make_source(srv, plain)
-        async with running(insecure):
-            await asyncio.sleep(1.0)
-        assert plain.blocks == [] and True not in plain.connections
+            # a wrong password, and the same client without security, are both refused
+            for kw in ({"username": "edgevib", "password": "wrong-" + password, **secure}, {}):
+                refused = FakeIngest()
+                async with running(make_source(srv, refused, **kw)):
+                    await asyncio.sleep(1.0)
+                assert refused.blocks == [] and True not in refused.connections
+        errors = [str(e.get("error")) for e in events if e["event"] == "opcua_session_failed"]
+        assert any("BadUserAccessDenied" in e for e in errors), errors  # the refusals were logged…
+        assert password not in repr(events)  # …and the password never was
     finally:
         await srv.stop()
 
