@@ -73,6 +73,7 @@ __all__ = ["AlarmCollector", "AlarmLayer", "advice_text", "trend_slope_per_h"]
 log = structlog.get_logger("edgevib.alarms")
 
 SEVERITY = ("normal", "alert", "danger")
+NO_DATA_START_S = 30.0  # allowance after start before a point that never sent a frame counts as "no data"
 RELAPSE_WINDOW_S = 120.0  # a sensor fault back within this time of clearing doubles, triples… the re-arm delay
 _DISCLAIMER = "edgevib monitors and advises; it is not a protection system."
 _FAULT_HINT = {
@@ -207,8 +208,8 @@ class AlarmLayer:
         self._restore()
         self.capture = await asyncio.to_thread(CaptureStore, s.capture)
         now = self.monotonic()
-        for pid in self.points:
-            self.last_seen.setdefault(pid, now)
+        for pid in self.points:  # sensors get a while to start sending before "no data" applies
+            self.last_seen.setdefault(pid, now + NO_DATA_START_S)
         if s.feed.enabled and s.feed.connection is not None:
             self.mqtt = MqttFeed(s.feed, self.outbox, self.state_messages,
                                  on_command=lambda b: handle_payload(b, self.handle_command))

@@ -171,7 +171,7 @@ class Subscriber:
         import json
 
         with self.lock:
-            return [json.loads(p) for t, p, _ in self.messages if "/alarms/" in t and p.startswith(b"{\"spec")]
+            return [json.loads(p) for _, p, _ in self.messages if p.startswith(b"{\"specversion\"")]
 
     def wait(self, pred: Any, timeout_s: float = 20.0) -> bool:
         import time
