@@ -8,6 +8,7 @@ import asyncio
 import json
 import math
 import sys
+import time
 from pathlib import Path
 from typing import Any
 
@@ -45,7 +46,8 @@ def configure_simulate(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--duration", type=float, metavar="S", help="seconds of simulated time (default: until "
                         "interrupted; for --wav alone the scenario's duration)")
     parser.add_argument("--seed", type=int, default=0, help="random seed (default 0): same seed, same samples")
-    parser.add_argument("--t0-ns", type=int, metavar="NS", help="timestamp of the first sample (default: now)")
+    parser.add_argument("--t0-ns", type=int, metavar="NS", help="timestamp of the first sample in ns since the epoch "
+                        "(default: when streaming starts); block times then advance at the simulated pace")
     parser.add_argument("--truth", metavar="PATH", help="write the analytic truth as JSON")
     parser.add_argument("--truth-at", type=float, metavar="S", help="simulated time of the truth (default: end of "
                         "--duration, else 0)")
@@ -169,6 +171,8 @@ async def _stream(args: argparse.Namespace, sim: Simulation, duration: float | N
                 print(f"  {key}: {node}", flush=True)
         print(f"edgevib simulate: scenario {sim.scenario.name}, seed {sim.seed}, rate {args.rate:g}x, "
               f"duration {'unbounded' if duration is None else f'{duration:g} s'}", flush=True)
+        if args.t0_ns is None:        # sample 0 is "now" when streaming starts (servers can take seconds to start)
+            sim.t0_ns = time.time_ns()
         t_end = await stream(sim, rate=args.rate, duration_s=duration, mqtt=mqtt, opcua=opcua, wav=wav)
         if mqtt is not None:
             await asyncio.to_thread(mqtt.flush, 30.0)
