@@ -829,11 +829,11 @@ def load_config(path: str | os.PathLike[str]) -> Config:
     try:
         data = p.read_bytes()
     except OSError as exc:
-        raise ConfigError("", f"cannot read {p}: {exc.strerror}") from None
+        raise ConfigError("", f"cannot read the file: {exc.strerror}") from None
     try:
         doc = tomllib.loads(data.decode("utf-8"))
     except (UnicodeDecodeError, tomllib.TOMLDecodeError) as exc:
-        raise ConfigError("", f"{p} is not valid TOML: {exc}") from None
+        raise ConfigError("", f"not valid TOML: {exc}") from None
     return parse_config(doc, p.resolve().parent, digest=hashlib.sha256(data).hexdigest()[:16])
 
 

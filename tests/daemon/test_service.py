@@ -53,14 +53,14 @@ def test_check_config_never_prints_secrets(tmp_path: Path) -> None:
     secret = tmp_path / "pw"
     secret.write_text("correct-horse-battery\n")
     cfg = tmp_path / "plant.toml"
-    cfg.write_text(EXAMPLE.read_text().replace('# username = "edgevib"', 'username = "edgevib"').replace(
-        '# password_file = "/run/credentials/edgevib.service/mqtt-password"', f'password_file = "{secret}"'))
+    cfg.write_text(EXAMPLE.read_text().replace('# username = "edgevib"', 'username = "edgevib"', 1).replace(
+        '# password_file = "/run/credentials/edgevib.service/mqtt-password"', f'password_file = "{secret}"', 1))
     proc = edgevib("check-config", str(cfg), env=dict(os.environ, EDGEVIB_UNUSED="x"))
     assert proc.returncode == 0, proc.stderr
     assert "correct-horse-battery" not in proc.stdout + proc.stderr
     assert f"<from file {secret}>" in proc.stdout
     literal = tmp_path / "literal.toml"
-    literal.write_text(EXAMPLE.read_text().replace('# username = "edgevib"', 'password = "correct-horse"'))
+    literal.write_text(EXAMPLE.read_text().replace('# username = "edgevib"', 'password = "correct-horse"', 1))
     proc = edgevib("check-config", str(literal))
     assert proc.returncode == 2 and "password_file" in proc.stderr and "correct-horse" not in proc.stderr
 
