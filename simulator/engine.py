@@ -39,6 +39,7 @@ import numpy.typing as npt
 from edgevib.daemon.wire import Block
 from edgevib.simulator import models as M
 from edgevib.simulator.scenario import (
+    AXIS_GAINS,
     BEARING_FAULTS,
     FaultSpec,
     MachineSpec,
@@ -146,7 +147,6 @@ class _PointModel:
     def _build_tones(self) -> None:
         fr = self.f_ref
         axis = self.p.axis
-        from edgevib.simulator.scenario import AXIS_GAINS
         res = self.m.residual_mm_s * AXIS_GAINS["residual"][axis]
         self._add_tone(-1, 1.0, _v_to_a_peak_g(res, fr))
         self._add_tone(-1, 2.0, _v_to_a_peak_g(0.3 * res, 2 * fr))
@@ -636,6 +636,8 @@ class Simulation:
 
     def blocks_until(self, t_s: float) -> list[Block]:
         """Every block whose last sample is at or before ``t_s`` and was not returned before, in time order."""
+        if not math.isfinite(t_s):
+            raise ValueError(f"t_s {t_s!r} must be a finite number of seconds")
         due: list[tuple[Fraction, int, str, int]] = []
         for i, (pid, model) in enumerate(self._models.items()):
             n = model.p.block_samples
@@ -659,6 +661,8 @@ class Simulation:
         """The expected indicators of every point at simulation time ``t_s`` (default: the time reached by
         :meth:`blocks_until`, 0 before the first call).  See the package README for the fields."""
         t = self._now_s if t_s is None else float(t_s)
+        if not math.isfinite(t) or t < 0:
+            raise ValueError(f"t_s {t_s!r} must be a finite time >= 0 s")
         points = {pid: model.truth(t) for pid, model in self._models.items()}
         machines = {}
         for m in self.scenario.machines:

@@ -242,3 +242,14 @@ def test_to_toml_values():
     assert tomllib.loads(to_toml(doc)) == doc
     with pytest.raises(ValueError):
         to_toml({"a": {"x": math.nan}})
+
+
+def test_bad_times_and_seed_are_refused():
+    sim = Simulation(load_scenario("mechanical"), seed=0, t0_ns=0)
+    with pytest.raises(ValueError, match="finite"):
+        sim.blocks_until(math.nan)
+    with pytest.raises(ValueError, match=">= 0"):
+        sim.truth(-1.0)
+    with pytest.raises(ValueError, match="seed"):
+        Simulation(load_scenario("mechanical"), seed=-1)
+    assert sim.blocks_until(-5.0) == []
