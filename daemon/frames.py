@@ -285,6 +285,7 @@ class BlockIngest:
     # -- Ingest protocol
 
     def payload(self, source: str, topic: str | None, payload: bytes, received_ns: int) -> None:
+        Stats.inc(self.stats.blocks_received, source)
         try:
             block = decode(payload)
         except WireError as exc:
@@ -293,10 +294,13 @@ class BlockIngest:
         except Exception as exc:  # the codec promises WireError only; never let anything escape into a source
             self.reject(source, "malformed", f"{type(exc).__name__}: {exc}", topic)
             return
-        self.block(source, block, received_ns, topic)
+        self._accept(source, block, received_ns, topic)
 
     def block(self, source: str, block: Block, received_ns: int, topic: str | None = None) -> None:
         Stats.inc(self.stats.blocks_received, source)
+        self._accept(source, block, received_ns, topic)
+
+    def _accept(self, source: str, block: Block, received_ns: int, topic: str | None) -> None:
         sensor = block.sensor_id
         level = self.sensor_level.get(source)
         if level is not None and topic is not None:

@@ -109,7 +109,8 @@ class IndicatorCollector:
 
     def _self_metrics(self) -> Iterable[Metric]:
         s = self.stats
-        received = CounterMetricFamily("edgevib_blocks_received", "Blocks received per source.", labels=["source"])
+        received = CounterMetricFamily("edgevib_blocks_received", "Block payloads received per source (before "
+                                       "validation; rejects are counted by reason as well).", labels=["source"])
         for src, n in dict(s.blocks_received).items():
             received.add_metric([src], n)
         rejected = CounterMetricFamily("edgevib_blocks_rejected", "Blocks rejected per source and reason.",

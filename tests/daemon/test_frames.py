@@ -113,7 +113,7 @@ def test_wire_errors_counted_by_reason() -> None:
     ing.payload("broker", "fwb/x", good, 0)
     assert stats.blocks_rejected == {("broker", "malformed"): 3, ("broker", "non_finite"): 1,
                                      ("broker", "too_large"): 1}
-    assert stats.blocks_received["broker"] == 1
+    assert stats.blocks_received["broker"] == 6  # every payload, before validation
 
 
 def test_device_restart_with_time_moving_forward_is_a_gap_not_a_reject() -> None:
