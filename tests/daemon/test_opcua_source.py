@@ -13,6 +13,7 @@ from typing import Any
 
 import numpy as np
 import pytest
+import pytest_asyncio
 import structlog
 from asyncua import Server, ua
 from asyncua.crypto.permission_rules import User, UserRole
@@ -26,7 +27,8 @@ from edgevib.daemon.interfaces import ConfigError
 from edgevib.daemon.sources.opcua import NodeSpec, OpcUaSource
 from edgevib.daemon.wire import Block
 
-pytestmark = pytest.mark.network
+# one event loop for the module, so that one server (its address space takes seconds to build) serves the tests
+pytestmark = [pytest.mark.network, pytest.mark.asyncio(loop_scope="module")]
 
 FS_HZ = 25600.0
 N = 2048
@@ -134,15 +136,27 @@ class UaServer:
         await self.server.write_attribute_value(self.vars[key].nodeid,
                                                 ua.DataValue(variant, SourceTimestamp=ts, ServerTimestamp=ts))
 
+    running = False
+
     async def start(self) -> None:
         await self.server.start()
+        self.running = True
 
     async def stop(self) -> None:
+        self.running = False
         await self.server.stop()
 
+    async def reset(self) -> None:
+        """Back to the initial values (for the next test on the shared server)."""
+        if not self.running:
+            await self.start()
+        await self.write("acc", block_samples(0), block_time(0))
+        await self.write("bad", [1.0, 2.0], datetime.datetime.now(datetime.UTC))
+        await self.write("speed", 1480.0)
 
-@pytest.fixture
-async def opcua_server() -> AsyncIterator[UaServer]:
+
+@pytest_asyncio.fixture(scope="module", loop_scope="module")
+async def shared_server() -> AsyncIterator[UaServer]:
     srv = await UaServer(free_port()).init()
     await srv.start()
     try:
@@ -150,6 +164,12 @@ async def opcua_server() -> AsyncIterator[UaServer]:
     finally:
         with contextlib.suppress(Exception):
             await srv.stop()
+
+
+@pytest_asyncio.fixture(loop_scope="module")
+async def opcua_server(shared_server: UaServer) -> UaServer:
+    await shared_server.reset()
+    return shared_server
 
 
 @contextlib.asynccontextmanager
@@ -415,7 +435,7 @@ async def test_basic256sha256_sign_and_encrypt_with_user_and_password(tmp_path: 
     ({"nodes": {"not a node id": NodeSpec("a")}}, "sources.plc.nodes['not a node id']"),
     ({"nodes": {}}, "sources.plc"),
 ])
-def test_bad_configuration_names_the_key(kw: dict[str, Any], path: str) -> None:
+async def test_bad_configuration_names_the_key(kw: dict[str, Any], path: str) -> None:
     args: dict[str, Any] = dict(name="plc", endpoint="opc.tcp://127.0.0.1:4840/", ingest=FakeIngest(),
                                 nodes={"ns=2;s=QL-P101-DE-H": NodeSpec("QL-P101-DE-H")})
     args.update(kw)
