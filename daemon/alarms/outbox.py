@@ -168,6 +168,8 @@ class Outbox:
         return self._add(conn, events)
 
     def _add(self, c: sqlite3.Connection, events: Iterable[OutboxEvent]) -> int:
+        if not self.sinks:  # no feed configured: nothing to deliver, nothing to keep
+            return 0
         n = 0
         for e in events:
             cur = c.execute("INSERT INTO outbox (id, created_ns, type, subject, topic, body) VALUES (?,?,?,?,?,?)",
