@@ -67,6 +67,16 @@ def _one_line_errors(parser: argparse.ArgumentParser, name: str) -> None:
         raise SystemExit(2)
 
     parser.error = error  # type: ignore[method-assign]
+    known = parser.parse_known_args
+
+    def strict(args: Any = None, namespace: Any = None) -> tuple[argparse.Namespace, list[str]]:
+        # the dispatcher parses subcommands with parse_known_args and would print usage for leftovers
+        ns, extras = known(args, namespace)
+        if extras:
+            error(f"unrecognized arguments: {' '.join(extras)}")
+        return ns, extras
+
+    parser.parse_known_args = strict  # type: ignore[method-assign,assignment]
 
 
 def _number(option: str, text: str) -> float:
@@ -173,8 +183,9 @@ def _read_csv(path: Path, channel: int | None) -> Waveform:
     if not lines:
         raise InputError(f"CSV file {path} holds no data")
     delimiter: str | None = None
+    sample = lines[:5] + lines[-1:]
     for cand in (",", ";", "\t"):
-        if cand in lines[-1]:
+        if any(cand in ln for ln in sample):
             delimiter = cand
             break
 

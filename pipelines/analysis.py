@@ -101,18 +101,18 @@ def _validate(plan: AnalysisPlan) -> AnalysisPlan:
         raise PlanError(f"sample rate {fs:g} Hz must be > 0")
     n = plan.n_samples
     if isinstance(n, bool) or not isinstance(n, int) or n < MIN_SAMPLES:
-        raise PlanError(f"frame of {n!r} samples is too short: need at least {MIN_SAMPLES}")
+        raise PlanError(f"record of {n!r} samples is too short: need at least {MIN_SAMPLES}")
     nyq = fs / 2.0
     df = fs / n
     vel = _band("velocity band", plan.velocity_band_hz, nyq)
     if df > vel[0]:
-        raise PlanError(f"record of {n} samples at {fs:g} Hz resolves {df:.4g} Hz, coarser than the velocity band's "
-                        f"low edge {vel[0]:g} Hz: need at least {math.ceil(fs / vel[0])} samples")
+        raise PlanError(f"record of {n} samples at {fs:g} Hz is too short: it resolves {df:.4g} Hz, coarser than the "
+                        f"velocity band's low edge {vel[0]:g} Hz; need at least {math.ceil(fs / vel[0])} samples")
     speed = _band("speed range", plan.speed_range_hz, nyq)
     if df > speed[0] / 2.0:
-        raise PlanError(f"record of {n} samples at {fs:g} Hz resolves {df:.4g} Hz, too coarse for the lowest shaft "
-                        f"speed {speed[0]:g} Hz (2 lines needed): need at least {math.ceil(2 * fs / speed[0])} "
-                        "samples")
+        raise PlanError(f"record of {n} samples at {fs:g} Hz is too short: it resolves {df:.4g} Hz, too coarse for "
+                        f"the lowest shaft speed {speed[0]:g} Hz (2 lines needed); need at least "
+                        f"{math.ceil(2 * fs / speed[0])} samples")
     orders = tuple(_finite("order", o) for o in plan.orders)
     if not orders or min(orders) <= 0:
         raise PlanError(f"orders {plan.orders!r} must be a non-empty list of positive multiples of shaft speed")

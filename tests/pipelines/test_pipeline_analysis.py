@@ -45,12 +45,13 @@ def machine(n: int = N, channels: int = 1, shaft: float = 24.7, seed: int = 0) -
 @pytest.mark.parametrize("kwargs, match", [
     ({"fs_hz": 0.0}, "sample rate 0 Hz must be > 0"),
     ({"fs_hz": float("nan")}, "sample rate nan"),
-    ({"n_samples": 10}, "10 samples is too short"),
+    ({"n_samples": 10}, "record of 10 samples is too short"),
     ({"velocity_band_hz": (10.0, 13000.0)}, "velocity band high edge 13000 Hz is at or above Nyquist 12800 Hz"),
     ({"velocity_band_hz": (0.0, 1000.0)}, "low edge 0 Hz must be > 0"),
     ({"velocity_band_hz": (100.0, 50.0)}, "must be above its low edge"),
-    ({"n_samples": 2048}, r"resolves 12\.5 Hz, coarser than the velocity band's low edge 10 Hz: need at least 2560"),
-    ({"n_samples": 4096}, r"too coarse for the lowest shaft speed 5 Hz .* need at least 10240 samples"),
+    ({"n_samples": 2048}, r"too short: it resolves 12\.5 Hz, coarser than the velocity band's low edge 10 Hz; need at "
+                          "least 2560"),
+    ({"n_samples": 4096}, r"too short: .* lowest shaft speed 5 Hz .* need at least 10240 samples"),
     ({"envelope_band_hz": (2000.0, 12800.0)}, "envelope band high edge 12800 Hz is at or above Nyquist 12800 Hz"),
     ({"envelope_band_hz": (2000.0, 2005.0)}, "fewer than 8 lines"),
     ({"envelope_band_hz": (2000.0, 2400.0), "bearing": B6205}, "narrower than the highest defect frequency"),
