@@ -246,9 +246,13 @@ def render_table(cfg: Config, latest: dict[str, FrameResult], state_text: Callab
                      _leading_family(r), state))
     if not tty:
         stamp = time.strftime("%H:%M:%S")
-        return "\n".join(f"{stamp} point={r[0]} sensor={r[1]} speed={r[2].replace(' ', '')} velocity_mm_s={r[3]} "
-                         f"crest={r[4]} kurtosis={r[5]} envelope={r[6].replace(' ', '')} alarm={r[7]}"
-                         for r in rows)
+        def plain(r: tuple[str, ...]) -> str:
+            vel, _, zone = r[3].partition(" ")
+            return (f"{stamp} point={r[0]} sensor={r[1]} speed={r[2].replace(' ', '')} velocity_mm_s={vel} "
+                    f"zone={zone or '-'} crest={r[4]} kurtosis={r[5]} envelope={r[6].replace(' ', '')} "
+                    f"alarm={r[7].replace(' ', '_')}")
+
+        return "\n".join(plain(r) for r in rows)
     head = ("point", "sensor", "speed", "velocity mm/s", "crest", "kurtosis", "envelope", "alarm")
     widths = [max(len(str(x)) for x in col) for col in zip(head, *rows, strict=True)]
     line = "  ".join(h.ljust(w) for h, w in zip(head, widths, strict=True))
@@ -287,7 +291,10 @@ async def _demo(cfg: Config, listen: tuple[str, int], duration_s: float | None, 
                     stop.set()
                     break
                 if tty:
-                    out.write("\x1b[H\x1b[J" + render_table(cfg, daemon.latest, daemon.state_text, True) + "\n")
+                    title = (f"edgevib demo  {cfg.site.name}  {time.strftime('%H:%M:%S')}  metrics "
+                             f"{daemon.metrics.url}  (Ctrl-C stops; advisory only, not a protection system)\n\n")
+                    out.write("\x1b[H\x1b[J" + title + render_table(cfg, daemon.latest, daemon.state_text, True)
+                              + "\n")
                     out.flush()
                 else:
                     fresh = {pid: r for pid, r in daemon.latest.items() if shown.get(pid) != r.t_end_ns}

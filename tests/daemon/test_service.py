@@ -130,3 +130,30 @@ def test_demo_stops_cleanly_on_ctrl_c() -> None:
             proc.kill()
             proc.communicate(timeout=5)
     assert proc.returncode == 0
+
+
+def test_render_table_tty_and_plain(tmp_path: Path) -> None:
+    import numpy as np
+
+    from edgevib.daemon.config import load_config
+    from edgevib.daemon.interfaces import FrameResult
+    from edgevib.daemon.service import render_table
+    from edgevib.pipelines.types import FamilyResult, FrameIndicators
+
+    cfg = load_config(EXAMPLE)
+    ind = FrameIndicators(acceleration_rms_g=0.5, acceleration_peak_g=1.5, acceleration_peak_to_peak_g=3.0,
+                          crest_factor=3.0, kurtosis=4.2, skewness=0.0, mean_g=0.0, velocity_rms_mm_s=3.1,
+                          velocity_peak_mm_s=4.4, displacement_pp_um=20.0, shaft_hz=24.65, shaft_estimated=False,
+                          envelope_band_hz=(2000.0, 8000.0),
+                          envelope={"bpfo": FamilyResult(88.4, 88.5, 0.01, 18.0, 3),
+                                    "bpfi": FamilyResult(133.4, 133.0, 0.002, 4.0, 0)})
+    latest = {"P-101-DE-H": FrameResult("P-101-DE-H", "P-101", 0, 0, 25600.0, ind, "C", np.zeros(4))}
+    table = render_table(cfg, latest, lambda pid: "alert" if pid == "P-101-DE-H" else None, tty=True)
+    header, _, row, waiting = table.splitlines()
+    assert header.split() == ["point", "sensor", "speed", "velocity", "mm/s", "crest", "kurtosis", "envelope",
+                              "alarm"]
+    assert row.split() == ["P-101-DE-H", "piezo", "1479", "rpm", "3.10", "C", "3.00", "4.20", "bpfo", "18", "dB",
+                           "alert"]
+    assert waiting.split()[:2] == ["F-201-NDE-V", "mems"]
+    plain = render_table(cfg, latest, lambda pid: None, tty=False).splitlines()
+    assert "point=P-101-DE-H" in plain[0] and "velocity_mm_s=3.10 zone=C" in plain[0] and "envelope=bpfo18dB" in plain[0]
