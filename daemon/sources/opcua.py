@@ -270,8 +270,10 @@ class OpcUaSource:
             self._ingest.connection(self.name, connected)
             if connected:
                 self._log.info("opcua_connected", mode=self.mode, nodes=len(self._nodes))
+            elif self._stopping.is_set():
+                self._log.info("opcua_disconnected", reason="stopped")
             else:
-                self._log.warning("opcua_disconnected", reason=self._lost_reason or "stopped")
+                self._log.warning("opcua_disconnected", reason=self._lost_reason or "session ended")
 
     def _mark_lost(self, reason: str) -> None:
         if not self._lost.is_set():
