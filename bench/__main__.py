@@ -74,7 +74,8 @@ def _time_alternating(fns: Sequence[Callable[[], object]], target_s: float = 0.1
     return [statistics.median(s) for s in samples]
 
 
-def run(sizes: Sequence[int] = SIZES, channels: Sequence[int] = CHANNELS) -> list[dict[str, float | int]]:
+def run(sizes: Sequence[int] = SIZES, channels: Sequence[int] = CHANNELS, *, target_s: float = 0.1,
+        repeats: int = 7) -> list[dict[str, float | int]]:
     band = default_envelope_band(FS_HZ, (0.5, 10_000.0), shaft_hz_max=60.0)
     rows: list[dict[str, float | int]] = []
     for n in sizes:
@@ -89,7 +90,7 @@ def run(sizes: Sequence[int] = SIZES, channels: Sequence[int] = CHANNELS) -> lis
                 partial(kernel.analyze, x),
                 partial(np.fft.rfft, x, axis=-1),
                 partial(scipy.fft.rfft, x, axis=-1),
-            ])
+            ], target_s, repeats)
             rows.append({
                 "samples": n,
                 "channels": c,

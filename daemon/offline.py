@@ -388,7 +388,14 @@ def _analyze(args: argparse.Namespace) -> dict[str, Any]:
             raise InputError(f"{wave.rpm_source} holds an impossible speed {wave.rpm:g} r/min; give --rpm")
         rpm, shaft_source = wave.rpm, wave.rpm_source
     shaft_hz = None if rpm is None else rpm / 60.0
-    speed_range = (5.0, 100.0) if shaft_hz is None else (0.5 * shaft_hz, 1.5 * shaft_hz)
+    if shaft_hz is None:
+        # estimate within 5–100 Hz (300–6000 r/min), narrowed to what the record resolves and its rate carries
+        speed_range = (max(5.0, 2.0 * fs / x_g.size), min(100.0, 0.99 * fs / 2 / 3.1))
+        if speed_range[0] >= speed_range[1]:
+            raise InputError(f"record of {x_g.size} samples at {fs:g} Hz is too short to estimate a shaft speed; "
+                             "give --rpm or a longer record")
+    else:
+        speed_range = (0.5 * shaft_hz, 1.5 * shaft_hz)
     if band is None and bearing is not None:
         band = default_envelope_band(fs, None, shaft_hz_max=speed_range[1])
     plan = make_plan(fs, int(x_g.size), velocity_band_hz=vel_band, envelope_band_hz=band, bearing=bearing,

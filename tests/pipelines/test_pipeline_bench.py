@@ -1,0 +1,28 @@
+"""Smoke test of the pipeline benchmark harness (timings are the benchmark's business, not asserted here)."""
+
+from __future__ import annotations
+
+import json
+
+import pytest
+
+from edgevib.bench.__main__ import main, run
+
+
+def test_bench_rows_are_well_formed() -> None:
+    rows = run(sizes=(4096,), channels=(1, 2), target_s=0.005, repeats=1)
+    assert [(r["samples"], r["channels"]) for r in rows] == [(4096, 1), (4096, 2)]
+    for r in rows:
+        assert set(r) == {"samples", "channels", "pipeline_us_per_block", "rfft_us_per_block", "ratio",
+                          "scipy_rfft_us_per_block"}
+        assert r["pipeline_us_per_block"] > 0 and r["rfft_us_per_block"] > 0
+        assert r["ratio"] == pytest.approx(r["pipeline_us_per_block"] / r["rfft_us_per_block"], rel=0.02)
+
+
+def test_bench_json_lists_every_case(monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]) -> None:
+    import edgevib.bench.__main__ as bench
+
+    monkeypatch.setattr(bench, "run", lambda: run(sizes=(4096,), channels=(1,), target_s=0.005, repeats=1))
+    assert main(["--json"]) == 0
+    rows = json.loads(capsys.readouterr().out)
+    assert rows[0]["samples"] == 4096 and rows[0]["channels"] == 1
