@@ -292,6 +292,7 @@ class Config:
     alarms: object | None = None
     alarm_tables: Mapping[str, Any] = field(default_factory=dict)
     skipped_points: tuple[str, ...] = ()  # configured but owned by another shard
+    skipped_sensors: tuple[tuple[str, str], ...] = ()  # their (source, sensor) keys: blocks ignored quietly
     base_dir: str = "."
     digest: str = ""
 
@@ -919,7 +920,7 @@ def parse_config(doc: dict[str, Any], base_dir: str | os.PathLike[str] = ".", di
     kept, skipped = list(points.values()), []
     if shard is not None:
         kept = [p for p in points.values() if _owns_point(p.id, shard)]
-        skipped = [p.id for p in points.values() if p not in kept]
+        skipped = [p for p in points.values() if p not in kept]
 
     pub = root.table("publish")
     publish_mqtt, publish_opcua = PublishMqttConfig(), PublishOpcUaConfig()
@@ -947,7 +948,8 @@ def parse_config(doc: dict[str, Any], base_dir: str | os.PathLike[str] = ".", di
     cfg = Config(site=site, logging=logging_cfg, metrics=metrics, analysis=analysis,
                  sources=tuple(sources.values()), machines=tuple(machines.values()), points=tuple(kept),
                  publish_mqtt=publish_mqtt, publish_opcua=publish_opcua, alarm_tables=alarm_tables,
-                 skipped_points=tuple(skipped), base_dir=str(base), digest=digest)
+                 skipped_points=tuple(p.id for p in skipped),
+                 skipped_sensors=tuple((p.source, p.sensor) for p in skipped), base_dir=str(base), digest=digest)
     parse_alarms = _optional("edgevib.daemon.alarms.config", "parse_alarm_config")
     if parse_alarms is not None:
         cfg = _replace(cfg, alarms=parse_alarms(doc, cfg))
@@ -1015,6 +1017,7 @@ def config_to_document(cfg: Config) -> dict[str, Any]:
     doc = conv(cfg)
     for key in ("alarms", "base_dir", "digest"):
         doc.pop(key, None)
+    doc.pop("skipped_sensors", None)
     if not doc.get("skipped_points"):
         doc.pop("skipped_points", None)
     for k, v in dict(doc.pop("alarm_tables", {})).items():

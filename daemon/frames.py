@@ -10,6 +10,10 @@ context through a rate-limited logger.  Reasons: the wire codec's own (``malform
 ``invalid_field``, ``length_mismatch``, ``non_finite``, ``invalid_sample_rate``, ``unsupported_version``) and
 ``unknown_sensor``, ``wrong_sample_rate``, ``wrong_length``, ``duplicate``, ``out_of_order``, ``overload``.
 A sequence gap is not a rejection: the block is kept, assembly restarts, and the gap is counted.
+
+A sharded instance (``[site] shard``) receives, through wildcard subscriptions, the blocks of points that another
+instance owns: those are ignored quietly and counted apart
+(``edgevib_blocks_ignored_total{source,reason="other_shard"}``), never as rejections.
 """
 
 from __future__ import annotations
@@ -80,6 +84,7 @@ class Stats:
 
     blocks_received: dict[str, int] = field(default_factory=dict)
     blocks_rejected: dict[tuple[str, str], int] = field(default_factory=dict)
+    blocks_ignored: dict[tuple[str, str], int] = field(default_factory=dict)
     frames_analysed: dict[str, int] = field(default_factory=dict)
     frames_dropped: dict[str, int] = field(default_factory=dict)
     gaps: dict[str, int] = field(default_factory=dict)
@@ -268,6 +273,7 @@ class BlockIngest:
         kept = {pid: s for pid, s in self.streams.items() if pid in set(keep)}
         self.streams = {p.id: kept.get(p.id) or PointStream(p, config.analysis.queue_frames) for p in config.points}
         self.by_sensor = {(p.source, p.sensor): p.id for p in config.points}
+        self.other_shard = frozenset(config.skipped_sensors)
         self.sensor_level: dict[str, int | None] = {
             s.name: getattr(s, "sensor_topic_level", None) for s in config.sources}
         self.speed_tags: dict[tuple[str, str], list[tuple[str, SpeedTag]]] = {}
@@ -308,6 +314,9 @@ class BlockIngest:
             sensor = parts[level] if level < len(parts) else ""
         pid = self.by_sensor.get((source, sensor))
         if pid is None:
+            if (source, sensor) in self.other_shard:
+                Stats.inc(self.stats.blocks_ignored, (source, "other_shard"))
+                return
             self.reject(source, "unknown_sensor", f"sensor {sensor!r} is not configured on this source", topic)
             return
         stream = self.streams[pid]

@@ -117,6 +117,11 @@ class IndicatorCollector:
                                        labels=["source", "reason"])
         for (src, reason), n in dict(s.blocks_rejected).items():
             rejected.add_metric([src, reason], n)
+        ignored = CounterMetricFamily("edgevib_blocks_ignored", "Valid blocks ignored per source and reason "
+                                      "(other_shard: the point belongs to another instance of a shard set).",
+                                      labels=["source", "reason"])
+        for (src, reason), n in dict(s.blocks_ignored).items():
+            ignored.add_metric([src, reason], n)
         analysed = CounterMetricFamily("edgevib_frames_analysed", "Frames analysed per point.", labels=["point"])
         for p, n in dict(s.frames_analysed).items():
             analysed.add_metric([p], n)
@@ -147,7 +152,7 @@ class IndicatorCollector:
             reconnects.add_metric([src], n)
         info = GaugeMetricFamily("edgevib_build_info", "edgevib build information.", labels=["version"])
         info.add_metric([self.version], 1.0)
-        return [received, rejected, analysed, dropped, gaps, errors, latency, connected, reconnects, info]
+        return [received, rejected, ignored, analysed, dropped, gaps, errors, latency, connected, reconnects, info]
 
 
 class MetricsServer:

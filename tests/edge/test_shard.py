@@ -125,8 +125,6 @@ def test_describe_and_owns_on_raw_mapping() -> None:
         shard_of("P-101-DE-H", 0)
 
 
-@pytest.mark.xfail(strict=False, reason="BlockIngest counts blocks of other instances' points as rejected "
-                   "(unknown_sensor); see the edge report")
 def test_blocks_of_other_instances_points_are_not_rejections() -> None:
     """With wildcard subscriptions every instance of a shard set receives every block; the blocks of points that
     belong to another instance must be ignored quietly, or each instance reports (N-1)/N of its traffic rejected
@@ -156,3 +154,27 @@ def test_blocks_of_other_instances_points_are_not_rejections() -> None:
                   samples=np.zeros(1024, dtype=np.float32))
     ingest.block("station-broker", block, 0)
     assert not stats.blocks_rejected, stats.blocks_rejected
+    assert stats.blocks_ignored == {("station-broker", "other_shard"): 1}
+    assert stats.blocks_received == {"station-broker": 1}
+    assert not ingest.streams["P-101-NDE-V"].blocks
+    # a sensor that no instance of the set configures is still a rejection
+    stray = Block(sensor_id="QL-P999-DE-H", seq=0, t0_ns=0, fs_hz=3200.0, unit="g",
+                  samples=np.zeros(1024, dtype=np.float32))
+    ingest.block("station-broker", stray, 0)
+    assert stats.blocks_rejected == {("station-broker", "unknown_sensor"): 1}
+    # the point this instance owns is accepted
+    own = Block(sensor_id="QL-P101-NDE-V", seq=0, t0_ns=0, fs_hz=3200.0, unit="g",
+                samples=np.zeros(1024, dtype=np.float32))
+    ingest.block("station-broker", own, 0)
+    assert ingest.streams["P-101-NDE-V"].blocks == 1
+    assert stats.blocks_rejected == {("station-broker", "unknown_sensor"): 1}
+
+    # the ignored count is exposed apart from the rejections
+    from prometheus_client import CollectorRegistry, generate_latest
+
+    from edgevib.daemon.sinks.prometheus import IndicatorCollector
+
+    registry = CollectorRegistry()
+    registry.register(IndicatorCollector("quarry-lane", stats, {}))
+    text = generate_latest(registry).decode()
+    assert 'edgevib_blocks_ignored_total{reason="other_shard",source="station-broker"} 1.0' in text
