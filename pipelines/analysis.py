@@ -189,18 +189,19 @@ def default_envelope_band(fs_hz: float, bandwidth_hz: tuple[float, float] | None
     """A demodulation band from the sample rate and the sensor's usable bandwidth, or None when the sensor cannot
     carry envelope analysis.
 
-    The band is the top octave of what the acquisition carries: the high edge is the lower of fs/2.56 (the usable
-    band of an anti-aliased acquisition, common practice) and the sensor's upper limit; the low edge the highest of
-    half the high edge, 500 Hz, 20 × the highest shaft speed (clear of the shaft harmonics) and the sensor's lower
-    limit.  Impacts excite structural resonances there, far above the shaft and mesh lines (common practice; a
-    kurtogram or a known resonance chooses better, and an explicit band overrides this).  Envelope analysis needs kHz
-    bandwidth above the shaft and mesh components (FIELD_NOTES §6), so the result is None when the high edge is
-    below 2 kHz or less than 1.5 × the low edge — for example a MEMS point limited to about 1–1.5 kHz.
+    The band is the top two octaves of what the acquisition carries: the high edge is the lower of fs/2.56 (the
+    usable band of an anti-aliased acquisition, common practice) and the sensor's upper limit; the low edge the
+    highest of a quarter of the high edge, 500 Hz, 20 × the highest shaft speed (clear of the shaft harmonics) and
+    the sensor's lower limit.  Impacts excite structural resonances there, far above the shaft and mesh lines
+    (common practice; a kurtogram or a known resonance chooses better, and an explicit band overrides this).
+    Envelope analysis needs kHz bandwidth above the shaft and mesh components (FIELD_NOTES §6), so the result is
+    None when the high edge is below 2 kHz or less than 1.5 × the low edge — for example a MEMS point limited to
+    about 1–1.5 kHz.
     Edges are rounded inwards to 10 Hz.
 
     Examples
     --------
-    12 kHz sampling, no sensor limit: 2350–4680 Hz.  25.6 kHz with a 0.5 Hz–10 kHz piezo: 5000–10000 Hz.
+    12 kHz sampling, no sensor limit: 1180–4680 Hz.  25.6 kHz with a 0.5 Hz–10 kHz piezo: 2500–10000 Hz.
     """
     fs = _finite("sample rate", fs_hz)
     if fs <= 0:
@@ -214,7 +215,7 @@ def default_envelope_band(fs_hz: float, bandwidth_hz: tuple[float, float] | None
             raise PlanError(f"sensor bandwidth {b_lo:g}–{b_hi:g} Hz is not a valid range")
         hi = min(hi, b_hi)
         lo = max(lo, b_lo)
-    lo = max(lo, hi / 2.0)
+    lo = max(lo, hi / 4.0)
     if shaft_hz_max is not None:
         lo = max(lo, 20.0 * _finite("highest shaft speed", shaft_hz_max))
     lo = math.ceil(lo / 10.0) * 10.0
