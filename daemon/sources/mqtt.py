@@ -7,6 +7,8 @@ new payloads are dropped and counted (reason ``overload``), so a flood cannot ex
 
 Reconnection is paho's own loop with bounded exponential backoff (``reconnect_delay_set``); every (re)connect
 resubscribes in ``on_connect`` and reports the state through ``Ingest.connection`` (which counts reconnects).
+A connection the broker refuses (TCP refused, TLS handshake failure, CONNACK with a failure reason such as bad
+credentials) is logged as a rate-limited warning naming the URL and the reason, never a secret.
 MQTT 3.1.1 and 5, TLS (CA pinning, client certificate and key with passphrase), username/password, QoS 0/1.
 """
 
@@ -16,7 +18,9 @@ import asyncio
 import contextlib
 import json
 import math
+import socket
 import ssl
+import sys
 import threading
 import time
 from collections.abc import Iterable
@@ -29,7 +33,7 @@ from edgevib.daemon.config import MqttConnection, MqttSourceConfig
 from edgevib.daemon.interfaces import Ingest, SourceError
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 
-__all__ = ["MqttSource", "make_client", "parse_speed_payload"]
+__all__ = ["MqttSource", "describe_connect_failure", "make_client", "parse_speed_payload"]
 
 log = get_logger("edgevib.sources.mqtt")
 MAX_PENDING = 20_000
@@ -54,6 +58,25 @@ def make_client(conn: MqttConnection, client_id: str | None = None) -> mqtt.Clie
         except (ssl.SSLError, OSError, ValueError) as exc:
             raise SourceError(f"TLS set-up for {conn.url} failed: {exc}") from exc
     return client
+
+
+def describe_connect_failure(exc: BaseException | None) -> str:
+    """A short reason for a failed connection attempt (no secret can appear: only the error's own text)."""
+    if exc is None:
+        return "connection attempt failed"
+    if isinstance(exc, ssl.SSLCertVerificationError):
+        return f"TLS handshake failed: server certificate not accepted ({exc.verify_message or exc.reason})"
+    if isinstance(exc, ssl.SSLError):
+        return f"TLS handshake failed: {exc.reason or exc}"
+    if isinstance(exc, ConnectionRefusedError):
+        return "connection refused"
+    if isinstance(exc, socket.gaierror):
+        return f"host name not resolved: {exc.strerror or exc}"
+    if isinstance(exc, TimeoutError | socket.timeout):
+        return "connection attempt timed out"
+    if isinstance(exc, OSError) and exc.strerror:
+        return exc.strerror
+    return f"{type(exc).__name__}: {exc}"
 
 
 def parse_speed_payload(payload: bytes) -> float | None:
@@ -118,7 +141,7 @@ class MqttSource:
                     _properties: Any) -> None:
         try:
             if getattr(reason_code, "is_failure", False):
-                self._to_loop(self._log_refused, str(reason_code))
+                self._to_loop(self._log_refused, f"broker answered {reason_code}")
                 return
             subs = [(t, self.qos) for t in [*self.topics, *sorted(self.speed_topics - set(self.topics))]]
             client.subscribe(subs)
@@ -126,10 +149,16 @@ class MqttSource:
         except Exception as exc:  # never let an exception escape into paho's loop
             self._to_loop(self._log_error, "on_connect", repr(exc))
 
+    def _on_connect_fail(self, _client: mqtt.Client, _userdata: Any) -> None:
+        # paho calls this inside its ``except OSError`` around the connect attempt: the error is the one handled
+        with contextlib.suppress(Exception):
+            self._to_loop(self._log_refused, describe_connect_failure(sys.exc_info()[1]))
+
     def _on_disconnect(self, _client: mqtt.Client, _userdata: Any, _flags: Any, reason_code: Any,
                        _properties: Any) -> None:
         with contextlib.suppress(Exception):
-            self._to_loop(self._set_connected, False, str(reason_code))
+            failure = bool(getattr(reason_code, "is_failure", False))
+            self._to_loop(self._set_connected, False, str(reason_code), failure)
 
     def _on_message(self, _client: mqtt.Client, _userdata: Any, msg: mqtt.MQTTMessage) -> None:
         try:
@@ -177,7 +206,12 @@ class MqttSource:
             return
         self.ingest.payload(self.name, topic, payload, received_ns)
 
-    def _set_connected(self, connected: bool, reason: str = "") -> None:
+    def _set_connected(self, connected: bool, reason: str = "", failure: bool = False) -> None:
+        if not connected and not self._connected and failure and not self._stop.is_set():
+            # closed before it was ever up: e.g. the broker dropped the TLS session after the handshake because
+            # it wanted a client certificate
+            self._log_refused(f"connection closed before it was established ({reason})")
+            return
         if connected == self._connected:
             return
         self._connected = connected
@@ -186,7 +220,10 @@ class MqttSource:
         self.ingest.connection(self.name, connected)
 
     def _log_refused(self, reason: str) -> None:
-        self.rlog.error("refused", "broker refused the connection", url=self.conn.url, reason=reason)
+        if self._stop.is_set():
+            return
+        self.rlog.warning("refused", "broker refused the connection; retrying with backoff", url=self.conn.url,
+                          reason=reason)
 
     def _log_error(self, where: str, error: str) -> None:
         self.rlog.error(("error", where), "MQTT callback failed", where=where, error=error)
@@ -201,6 +238,7 @@ class MqttSource:
             await self._stop.wait()
             return
         client.on_connect = self._on_connect
+        client.on_connect_fail = self._on_connect_fail
         client.on_disconnect = self._on_disconnect
         client.on_message = self._on_message
         self._client = client

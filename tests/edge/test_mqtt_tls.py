@@ -255,8 +255,6 @@ async def test_daemon_source_without_client_certificate_is_refused(tls_mosquitto
     await _daemon_over_tls(tls_mosquitto, pki, tmp_path, {"ca_file": str(pki.ca_cert)}, False)
 
 
-@pytest.mark.xfail(strict=False, reason="the MQTT source does not log a failed TLS handshake (paho reports it only "
-                   "through on_connect_fail / debug logging); see the edge report")
 async def test_daemon_logs_why_the_broker_refused(tls_mosquitto: Mosquitto, pki: PKI, tmp_path: Path) -> None:
     import asyncio
 
@@ -281,3 +279,96 @@ async def test_daemon_logs_why_the_broker_refused(tls_mosquitto: Mosquitto, pki:
             await d.stop(timeout_s=10.0)
     problems = [e for e in logs if e.get("log_level") in ("warning", "error")]
     assert problems, [e.get("event") for e in logs]
+    refused = [e for e in problems if e.get("event", "").startswith("broker refused the connection")]
+    assert refused, problems
+    # rate-limited: at least two refusals at the broker, one line per 10 s interval here
+    assert len(refused) == 1, refused
+    assert refused[0]["url"] == f"mqtts://127.0.0.1:{tls_mosquitto.port}"
+    # the broker wants a client certificate: the reason names TLS (handshake alert or closed session)
+    reason = refused[0]["reason"]
+    assert "TLS" in reason or "closed before it was established" in reason, reason
+
+
+class _Ingest:
+    """The source's view of the daemon: only the connection state matters here."""
+
+    def __init__(self) -> None:
+        self.states: list[bool] = []
+
+    def payload(self, *_a: object) -> None: ...
+    def block(self, *_a: object) -> None: ...
+    def speed(self, *_a: object) -> None: ...
+    def reject(self, *_a: object) -> None: ...
+
+    def connection(self, _source: str, connected: bool) -> None:
+        self.states.append(connected)
+
+
+async def _refusal_lines(conn_doc: dict[str, object], tmp_path: Path, wait_s: float = 1.5) -> list[dict[str, object]]:
+    """Run an MQTT source against ``conn_doc`` for ``wait_s`` and return its warning/error log lines."""
+    import asyncio
+
+    from structlog.testing import capture_logs
+
+    from edgevib.daemon.config import _parse_mqtt_connection, _Table
+    from edgevib.daemon.sources.mqtt import MqttSource
+
+    conn = _parse_mqtt_connection(_Table({"reconnect_min_s": 0.1, "reconnect_max_s": 0.2, **conn_doc},
+                                         "sources[0]"), tmp_path, "edgevib-test")
+    ingest = _Ingest()
+    src = MqttSource(name="station-broker", ingest=ingest, connection=conn, topics=["fwb/quarry-lane/#"])
+    with capture_logs() as logs:
+        task = asyncio.create_task(src.run())
+        await asyncio.sleep(wait_s)
+        await src.stop()
+        async with asyncio.timeout(10):
+            await task
+    assert True not in ingest.states  # never counted as connected
+    return [e for e in logs if e.get("log_level") in ("warning", "error")]
+
+
+async def test_refused_tcp_connection_is_logged_once_with_url_and_reason(tmp_path: Path) -> None:
+    url = f"mqtt://127.0.0.1:{free_port()}"  # nothing listens there
+    problems = await _refusal_lines({"url": url}, tmp_path)
+    assert [(e["event"], e["url"], e["reason"]) for e in problems] == [
+        ("broker refused the connection; retrying with backoff", url, "connection refused")]
+
+
+async def test_server_certificate_from_another_ca_is_logged(tls_mosquitto: Mosquitto, tmp_path: Path) -> None:
+    other = make_ca(tmp_path / "other", cn="not the plant CA")
+    problems = await _refusal_lines({"url": f"mqtts://127.0.0.1:{tls_mosquitto.port}",
+                                     "ca_file": str(other.cert_path)}, tmp_path)
+    assert len(problems) == 1, problems
+    assert problems[0]["url"] == f"mqtts://127.0.0.1:{tls_mosquitto.port}"
+    assert "server certificate not accepted" in str(problems[0]["reason"]), problems
+
+
+async def test_bad_credentials_are_logged_without_the_password(tmp_path: Path) -> None:
+    import shutil
+    import subprocess
+
+    mosq_passwd = shutil.which("mosquitto_passwd")
+    if mosq_passwd is None:
+        pytest.skip("mosquitto_passwd is not installed")
+    port = free_port()
+    broker = Mosquitto(port=port, listener=False)
+    passwd = broker.dir / "passwd"
+    subprocess.run([mosq_passwd, "-b", "-c", str(passwd), "edgevib", "right-horse-battery"], check=True,
+                   timeout=30, capture_output=True)
+    broker.dir.chmod(0o755)  # mosquitto reads it after dropping root
+    passwd.chmod(0o644)
+    broker.conf.write_text(broker.conf.read_text() + f"listener {port} 127.0.0.1\nallow_anonymous false\n"
+                           f"password_file {passwd}\n")
+    broker.start()
+    try:
+        secret = tmp_path / "mqtt-password"
+        secret.write_text("wrong-staple-q7\n")
+        problems = await _refusal_lines({"url": broker.url, "username": "edgevib",
+                                         "password_file": str(secret)}, tmp_path)
+    finally:
+        broker.close()
+    assert len(problems) == 1, problems
+    assert problems[0]["url"] == broker.url
+    # MQTT 3.1.1 CONNACK return code 5 / MQTT 5 reason 0x87 (OASIS MQTT specifications): "Not authorized"
+    assert "Not authorized" in str(problems[0]["reason"]), problems
+    assert "wrong-staple-q7" not in repr(problems)
