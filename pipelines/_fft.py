@@ -27,7 +27,8 @@ def irfft(y: npt.NDArray[Any], n: int) -> npt.NDArray[np.float64]:
     return out
 
 
-def ifft(y: npt.NDArray[Any], n: int) -> npt.NDArray[Any]:
-    """Inverse complex transform of ``n`` points (zero-padded) along the last axis (1/n normalization)."""
-    out: npt.NDArray[Any] = _sfft.ifft(y, n=n, axis=-1)
+def ifft(y: npt.NDArray[Any], n: int, *, overwrite: bool = False) -> npt.NDArray[Any]:
+    """Inverse complex transform of ``n`` points (zero-padded) along the last axis (1/n normalization);
+    ``overwrite`` lets the transform reuse ``y``'s memory."""
+    out: npt.NDArray[Any] = _sfft.ifft(y, n=n, axis=-1, overwrite_x=overwrite)
     return out

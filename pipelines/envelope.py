@@ -65,7 +65,9 @@ def demodulate(spec: ComplexArray, k_lo: int, k_hi: int, m: int) -> npt.NDArray[
     Times ``2m/N`` it is the envelope ``|hilbert(bandpass(x))|`` in the unit of the frame (g);
     :func:`envelope_spectrum` applies that factor.
     """
-    z = _fft.ifft(spec[:, k_lo : k_hi + 1].astype(np.complex64), m)
+    z = np.zeros((spec.shape[0], m), dtype=np.complex64)
+    z[:, : k_hi - k_lo + 1] = spec[:, k_lo : k_hi + 1]  # shift to baseband (and to single precision)
+    z = _fft.ifft(z, m, overwrite=True)
     env: npt.NDArray[np.float32] = np.abs(z)
     return env
 

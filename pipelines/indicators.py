@@ -81,14 +81,18 @@ def centre(x: FloatArray) -> tuple[npt.NDArray[np.float32], FloatArray]:
 
 
 def moments(xc: npt.NDArray[np.float32], mean: FloatArray) -> TimeDomain:
-    """Indicators of mean-removed frames ``xc`` (channels, samples); ``mean`` the removed means (channels,)."""
+    """Indicators of mean-removed frames ``xc`` (channels, samples); ``mean`` the removed means (channels,).
+
+    ``xc`` is used as scratch space when it owns its memory (as :func:`centre`'s result does).
+    """
     n = xc.shape[-1]
-    x2 = np.square(xc)
-    m2 = x2.sum(axis=-1).astype(np.float64) / n
-    m3 = (x2 * xc).sum(axis=-1).astype(np.float64) / n
-    m4 = np.square(x2, out=x2).sum(axis=-1).astype(np.float64) / n
     hi = xc.max(axis=-1).astype(np.float64)
     lo = xc.min(axis=-1).astype(np.float64)
+    x2 = np.square(xc)
+    m2 = x2.sum(axis=-1).astype(np.float64) / n
+    x3 = np.multiply(x2, xc, out=xc if xc.flags.writeable and xc.base is None else None)  # xc is not used again
+    m3 = x3.sum(axis=-1).astype(np.float64) / n
+    m4 = np.square(x2, out=x2).sum(axis=-1).astype(np.float64) / n
     rms = np.sqrt(m2)
     peak = np.maximum(hi, -lo)
     nonzero = m2 > 0

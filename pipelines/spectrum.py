@@ -183,6 +183,24 @@ def integration_coefficients(fs_hz: float, n_samples: int, stop: int) -> Complex
 # ----------------------------------------------------------------------------------- search helpers
 
 
+def _gather(spec: FloatArray, idx: IntArray) -> FloatArray:
+    """``spec[row, idx[row, ...]]`` for every row (``idx`` shape (channels, ...), already in range)."""
+    c = spec.shape[0]
+    rows = np.arange(c).reshape((c,) + (1,) * (idx.ndim - 1))
+    out: FloatArray = spec[rows, idx]
+    return out
+
+
+def _windows(k: int, lo: IntArray, hi: IntArray) -> tuple[IntArray, npt.NDArray[np.bool_]]:
+    """Line indices ``lo..hi`` per window, padded to the widest one, and the mask of the real ones."""
+    lo = np.minimum(np.maximum(lo, 0), k - 1)
+    hi = np.minimum(np.maximum(hi, lo), k - 1)
+    width = int((hi - lo).max()) + 1 if lo.size else 1
+    idx = lo[..., None] + np.arange(width)
+    valid = idx <= hi[..., None]
+    return np.minimum(idx, k - 1), valid
+
+
 def window_argmax(spec: FloatArray, lo: IntArray, hi: IntArray) -> IntArray:
     """Index of the largest value of ``spec`` within ``lo..hi`` (inclusive, per row).
 
@@ -195,50 +213,36 @@ def window_argmax(spec: FloatArray, lo: IntArray, hi: IntArray) -> IntArray:
     -------
     int ndarray, shape (channels, L)
     """
-    c, k = spec.shape
-    lo = np.clip(lo, 0, k - 1)
-    hi = np.clip(hi, lo, k - 1)
-    width = int((hi - lo).max()) + 1 if lo.size else 1
-    idx = lo[..., None] + np.arange(width)
-    valid = idx <= hi[..., None]
-    idx = np.minimum(idx, k - 1)
-    vals = np.take_along_axis(spec, idx.reshape(c, -1), axis=1).reshape(idx.shape)
-    vals = np.where(valid, vals, -np.inf)
+    idx, valid = _windows(spec.shape[1], lo, hi)
+    vals = np.where(valid, _gather(spec, idx), -np.inf)
     best = np.argmax(vals, axis=-1)
-    return np.take_along_axis(idx, best[..., None], axis=-1)[..., 0]
+    out: IntArray = np.take_along_axis(idx, best[..., None], axis=-1)[..., 0]
+    return out
 
 
 def masked_median(spec: FloatArray, lo: IntArray, hi: IntArray, ex_lo: IntArray, ex_hi: IntArray) -> FloatArray:
     """Median of ``spec`` over ``lo..hi`` without ``ex_lo..ex_hi`` (all inclusive, per row; shapes as
     :func:`window_argmax`).  NaN where nothing is left."""
-    c, k = spec.shape
-    lo = np.clip(lo, 0, k - 1)
-    hi = np.clip(hi, lo, k - 1)
-    width = int((hi - lo).max()) + 1 if lo.size else 1
-    idx = lo[..., None] + np.arange(width)
-    valid = (idx <= hi[..., None]) & ((idx < ex_lo[..., None]) | (idx > ex_hi[..., None]))
-    idx = np.minimum(idx, k - 1)
-    vals = np.take_along_axis(spec, idx.reshape(c, -1), axis=1).reshape(idx.shape)
-    vals = np.sort(np.where(valid, vals, np.inf), axis=-1)
+    idx, valid = _windows(spec.shape[1], lo, hi)
+    valid &= (idx < ex_lo[..., None]) | (idx > ex_hi[..., None])
+    vals = np.sort(np.where(valid, _gather(spec, idx), np.inf), axis=-1)
     count = valid.sum(axis=-1)
-    lo_i = np.maximum((count - 1) // 2, 0)
-    hi_i = np.maximum(count // 2, 0)
-    a = np.take_along_axis(vals, lo_i[..., None], axis=-1)[..., 0]
-    b = np.take_along_axis(vals, hi_i[..., None], axis=-1)[..., 0]
+    both = np.stack([np.maximum((count - 1) // 2, 0), np.maximum(count // 2, 0)], axis=-1)
+    pair = np.take_along_axis(vals, both, axis=-1)
     with np.errstate(invalid="ignore"):
-        med = 0.5 * (a + b)
-    return np.where(count > 0, med, np.nan)
+        med = 0.5 * (pair[..., 0] + pair[..., 1])
+    out: FloatArray = np.where(count > 0, med, np.nan)
+    return out
 
 
 def power3(power: FloatArray, idx: IntArray) -> FloatArray:
     """Sum of ``power`` over lines ``idx−1 .. idx+1`` (per row; ``power`` shape (channels, lines))."""
-    c, k = power.shape
-    flat = idx.reshape(c, -1)
-    total = np.zeros(flat.shape, dtype=np.float64)
-    for off in (-1, 0, 1):
-        j = np.clip(flat + off, 0, k - 1)
-        total += np.where((flat + off >= 0) & (flat + off < k), np.take_along_axis(power, j, axis=1), 0.0)
-    return total.reshape(idx.shape)
+    k = power.shape[1]
+    j = idx[..., None] + np.arange(-1, 2)
+    inside = (j >= 0) & (j < k)
+    vals = np.where(inside, _gather(power, np.minimum(np.maximum(j, 0), k - 1)), 0.0)
+    out: FloatArray = vals.sum(axis=-1)
+    return out
 
 
 def order_amplitudes_mm_s(vel_pow: FloatArray, shaft_hz: FloatArray, orders: tuple[float, ...],
@@ -297,20 +301,20 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     cand = np.arange(speed_range_hz[0] / df_hz, speed_range_hz[1] / df_hz + 1e-9, 1.0 / 3.0)
     score = np.zeros((c, cand.size))
     for h in range(1, harmonics + 1):
-        score += amp3[:, np.clip(np.rint(h * cand).astype(np.intp), 0, k - 1)]
-        score -= amp3[:, np.clip(np.rint((h - 0.5) * cand).astype(np.intp), 0, k - 1)]
+        score += amp3[:, np.minimum(np.rint(h * cand).astype(np.intp), k - 1)]
+        score -= amp3[:, np.minimum(np.rint((h - 0.5) * cand).astype(np.intp), k - 1)]
     best = cand[np.argmax(score, axis=-1)]  # (channels,)
     acc = np.sqrt(acc_pow)
     b = np.rint(best).astype(np.intp)
     peak = window_argmax(acc, (b - 1)[:, None], (b + 1)[:, None])[:, 0]
-    peak = np.clip(peak, 1, k - 2)
+    peak = np.minimum(np.maximum(peak, 1), k - 2)
     rows = np.arange(c)
     left, mid, right = acc[rows, peak - 1], acc[rows, peak], acc[rows, peak + 1]
     side = np.where(right >= left, 1.0, -1.0)
     with np.errstate(divide="ignore", invalid="ignore"):
         alpha = np.maximum(left, right) / mid
         delta = side * (2.0 * alpha - 1.0) / (alpha + 1.0)
-    delta = np.where(np.isfinite(delta), np.clip(delta, -0.5, 0.5), 0.0)
+    delta = np.where(np.isfinite(delta), np.minimum(np.maximum(delta, -0.5), 0.5), 0.0)
     f_est = (peak + delta) * df_hz
     span = np.maximum(np.rint(0.25 * peak).astype(np.intp), 8)
     floor = masked_median(acc, (peak - span)[:, None], (peak + span)[:, None], (peak - 2)[:, None],
