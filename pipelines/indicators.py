@@ -94,7 +94,7 @@ def moments(xc: npt.NDArray[np.float32], mean: FloatArray) -> TimeDomain:
     m3 = x3.sum(axis=-1).astype(np.float64) / n
     m4 = np.square(x2, out=x2).sum(axis=-1).astype(np.float64) / n
     rms = np.sqrt(m2)
-    peak = np.maximum(hi, -lo)
+    peak = np.maximum(hi, -lo) + 0.0  # (+0.0 turns -0.0 into 0.0)
     nonzero = m2 > 0
     safe_m2 = np.where(nonzero, m2, 1.0)
     nan = np.float64(np.nan)
