@@ -80,6 +80,7 @@ _DTYPE_F32 = 1
 _DTYPE_I16 = 2
 _JSON_KEYS = frozenset({"v", "sensor", "seq", "t0_ns", "fs_hz", "unit", "encoding", "data", "scale"})
 _ENCODINGS = ("f32le-b64", "i16le-b64", "array")
+_F32_TINY = float(np.finfo(np.float32).tiny)
 
 
 class WireError(ValueError):
@@ -177,6 +178,8 @@ def _int16_scale(x: npt.NDArray[np.float64], scale: float | None) -> float:
     if scale is None:
         peak = float(np.max(np.abs(x))) if x.size else 0.0
         scale = peak / 32767.0 if math.isfinite(peak) and peak > 0 else 1.0
+        if scale < _F32_TINY:  # below float32's normal range (the binary header's scale): quantizes to zeros
+            scale = 1.0
     if isinstance(scale, bool) or not isinstance(scale, int | float):
         raise InvalidField(f"scale {scale!r} must be a number")
     try:
@@ -193,7 +196,8 @@ def encode_json(block: Block, encoding: Literal["f32le-b64", "i16le-b64", "array
     """Encode ``block`` in the JSON form.
 
     For ``"i16le-b64"`` the samples are quantized to ``round(x / scale)`` (``scale`` defaults to the value
-    that maps the block's peak to 32767); values outside the int16 range saturate.
+    that maps the block's peak to 32767, or 1 for an all-zero or vanishingly small block); values outside the
+    int16 range saturate.
     """
     x = _check_block(block)
     doc: dict[str, Any] = {

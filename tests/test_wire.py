@@ -86,7 +86,7 @@ def test_round_trip_int16_within_half_a_count(samples: list[float]) -> None:
     for payload in (encode_json(b, "i16le-b64"), encode_binary(b, "int16")):
         out = decode(payload)
         peak = float(np.max(np.abs(x)))
-        scale = peak / 32767.0 if peak > 0 else 1.0
+        scale = peak / 32767.0 if peak / 32767.0 >= np.finfo(np.float32).tiny else 1.0  # documented default
         # quantization to round(x/scale): error at most half a count (plus float32 rounding of the binary scale)
         assert np.max(np.abs(out.samples - x)) <= 0.5 * scale * (1 + 1e-6) + 1e-7 * peak
 
