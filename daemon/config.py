@@ -5,6 +5,14 @@
 problem, with the numbers.  Secrets are never read from the TOML itself: a ``*_file`` or ``*_env`` key becomes a
 :class:`Secret` that only reveals its value on request and prints as ``<from file …>``.
 
+File paths (``*_file`` keys, ``site.state_dir``, the alarm layer's socket and capture directory) may use
+``${CREDENTIALS_DIRECTORY}`` (systemd ``LoadCredential=``) and ``${STATE_DIRECTORY}`` (systemd
+``StateDirectory=``; the first entry of a colon-separated list); no other variable is expanded.  Outside the unit
+those are unset, and a credential file under an unset ``${CREDENTIALS_DIRECTORY}`` or under ``/run/credentials/``
+cannot exist yet: :func:`load_config` then records the problem in ``Config.deferred`` instead of failing, so that
+``check-config`` can print it as a warning, and :func:`verify_for_run` turns it into an error when the daemon
+starts.
+
 The alarm layer owns the top-level ``[alarms]``, ``[feed]``, ``[capture]`` tables and the per-point ``limits`` key:
 when ``edgevib.daemon.alarms.config.parse_alarm_config`` exists it parses them into ``Config.alarms``; otherwise
 they are kept as raw tables (``Config.alarm_tables`` and ``PointConfig.limits``).
@@ -16,8 +24,11 @@ import hashlib
 import importlib
 import math
 import os
+import re
 import tomllib
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterator, Mapping
+from contextlib import contextmanager
+from contextvars import ContextVar
 from dataclasses import dataclass, field, fields, is_dataclass
 from pathlib import Path
 from typing import Any, TypeAlias
@@ -44,10 +55,14 @@ __all__ = [
     "SiteConfig",
     "SpeedTag",
     "config_to_document",
+    "default_state_dir",
+    "deferred_warnings",
     "dump_toml",
+    "expand_path_variables",
     "load_config",
     "parse_config",
     "parse_listen",
+    "verify_for_run",
 ]
 
 G_M_S2 = 9.80665  # standard gravity, exact (3rd CGPM 1901)
@@ -56,6 +71,12 @@ MAX_POINTS = 1000
 MAX_FRAME_SAMPLES = 1 << 20
 MIN_FRAME_SAMPLES = 256
 ALARM_TABLES = ("alarms", "feed", "capture")
+DEFAULT_STATE_DIR = "/var/lib/edgevib"
+PATH_VARIABLES = ("CREDENTIALS_DIRECTORY", "STATE_DIRECTORY")
+CREDENTIALS_ROOT = "/run/credentials/"
+_VARIABLE = re.compile(r"\$\{([^}]*)\}")
+# problems found while loading that only matter where the daemon runs (see the module docstring), per parse call
+_DEFERRED: ContextVar[list[tuple[str, str, str, str]] | None] = ContextVar("edgevib_config_deferred", default=None)
 
 
 # ------------------------------------------------------------------------------------------------ secrets
@@ -293,6 +314,7 @@ class Config:
     alarm_tables: Mapping[str, Any] = field(default_factory=dict)
     skipped_points: tuple[str, ...] = ()  # configured but owned by another shard
     skipped_sensors: tuple[tuple[str, str], ...] = ()  # their (source, sensor) keys: blocks ignored quietly
+    deferred: tuple[tuple[str, str, str, str], ...] = ()  # (key path, problem, why, file): see verify_for_run
     base_dir: str = "."
     digest: str = ""
 
@@ -444,9 +466,9 @@ class _Table:
         if f is not None and e is not None:
             raise ConfigError(self.key(name), f"give either {name}_file or {name}_env, not both")
         if f is not None:
-            p = _resolve_path(f, base_dir)
+            p = _resolve_path(f, base_dir, self.key(f"{name}_file"))
             if not Path(p).is_file():
-                raise ConfigError(self.key(f"{name}_file"), f"secret file {p} does not exist")
+                _missing(self.key(f"{name}_file"), f"secret file {p} does not exist", f, p)
             return Secret("file", p)
         if e is not None:
             if e not in os.environ:
@@ -458,9 +480,9 @@ class _Table:
         v = self.str(name, None)
         if v is None:
             return None
-        p = _resolve_path(v, base_dir)
+        p = _resolve_path(v, base_dir, self.key(name))
         if must_exist and not Path(p).is_file():
-            raise ConfigError(self.key(name), f"file {p} does not exist")
+            _missing(self.key(name), f"file {p} does not exist", v, p)
         return p
 
     def done(self) -> None:
@@ -485,9 +507,81 @@ class _Table:
         return f
 
 
-def _resolve_path(value: str, base_dir: Path) -> str:
-    p = Path(value).expanduser()
+def default_state_dir() -> str:
+    """``[site] state_dir`` when the file has none: ``$STATE_DIRECTORY`` under systemd, else /var/lib/edgevib."""
+    return "${STATE_DIRECTORY}" if os.environ.get("STATE_DIRECTORY") else DEFAULT_STATE_DIR
+
+
+def expand_path_variables(value: str, path: str = "") -> tuple[str, list[str]]:
+    """Expand ``${CREDENTIALS_DIRECTORY}`` and ``${STATE_DIRECTORY}`` in ``value``; returns the result and the
+    names that are unset (their references stay as written).  Any other ``${…}`` is a :class:`ConfigError`."""
+    unset: list[str] = []
+
+    def sub(m: re.Match[str]) -> str:
+        name = m.group(1)
+        if name not in PATH_VARIABLES:
+            raise ConfigError(path, f"${{{name}}} is not expanded: a path may use only "
+                              f"{' and '.join('${' + v + '}' for v in PATH_VARIABLES)}")
+        v = os.environ.get(name, "").split(":", 1)[0]
+        if not v:
+            unset.append(name)
+            return m.group(0)
+        return v
+
+    return _VARIABLE.sub(sub, value), unset
+
+
+def _resolve_path(value: str, base_dir: Path, path: str = "") -> str:
+    expanded, unset = expand_path_variables(value, path)
+    if unset:  # kept as written; check-config warns, verify_for_run refuses it
+        return expanded
+    p = Path(expanded).expanduser()
     return str(p if p.is_absolute() else (base_dir / p))
+
+
+def _missing(path: str, problem: str, written: str, resolved: str) -> None:
+    """A file that does not exist: an error now, unless it is a credential that only the unit provides."""
+    deferred = _DEFERRED.get()
+    _, unset = expand_path_variables(written, path)
+    outside_unit = not os.environ.get("CREDENTIALS_DIRECTORY")
+    if deferred is not None and (unset or (resolved.startswith(CREDENTIALS_ROOT) and outside_unit)):
+        why = (f"${{{unset[0]}}} is not set" if unset else
+               f"{CREDENTIALS_ROOT}… exists only inside the systemd unit (LoadCredential=)")
+        deferred.append((path, problem, why, resolved))
+        return
+    raise ConfigError(path, problem)
+
+
+@contextmanager
+def _collect_deferred() -> Iterator[list[tuple[str, str, str, str]]]:
+    found: list[tuple[str, str, str, str]] = []
+    token = _DEFERRED.set(found)
+    try:
+        yield found
+    finally:
+        _DEFERRED.reset(token)
+
+
+def verify_for_run(cfg: Config) -> None:
+    """Refuse to start with what ``load_config`` let pass for ``check-config``: an unresolved ``state_dir``, a
+    missing secret or certificate file.  Raises :class:`ConfigError` naming the key."""
+    if _VARIABLE.search(cfg.site.state_dir):
+        _, unset = expand_path_variables(cfg.site.state_dir, "site.state_dir")
+        raise ConfigError("site.state_dir", f"{cfg.site.state_dir!r}: ${{{unset[0] if unset else '?'}}} is not "
+                          f"set (systemd sets STATE_DIRECTORY from StateDirectory=); give --state-dir DIR")
+    for path, problem, why, file in cfg.deferred:
+        if not Path(file).is_file():
+            raise ConfigError(path, f"{problem} ({why})")
+
+
+def deferred_warnings(cfg: Config) -> list[str]:
+    """The problems :func:`verify_for_run` will check again, as lines for ``check-config``."""
+    lines = [f"{path}: {problem} ({why}; checked again when the daemon starts)"
+             for path, problem, why, _file in cfg.deferred]
+    if _VARIABLE.search(cfg.site.state_dir):
+        lines.insert(0, f"site.state_dir: {cfg.site.state_dir!r} is not resolved here (STATE_DIRECTORY is set by "
+                     f"systemd from StateDirectory=); outside the unit `edgevib run` needs --state-dir DIR")
+    return lines
 
 
 def parse_listen(value: str, path: str = "metrics.listen") -> tuple[str, int]:
@@ -840,13 +934,18 @@ def load_config(path: str | os.PathLike[str]) -> Config:
 
 def parse_config(doc: dict[str, Any], base_dir: str | os.PathLike[str] = ".", digest: str = "") -> Config:
     """Validate a parsed TOML document; relative file paths resolve against ``base_dir``."""
-    base = Path(base_dir)
+    with _collect_deferred() as deferred:
+        cfg = _parse_config(doc, Path(base_dir), digest)
+        return _replace(cfg, deferred=tuple(deferred))
+
+
+def _parse_config(doc: dict[str, Any], base: Path, digest: str) -> Config:
     root = _Table(doc, "")
     site_t = root.table("site") or _Table({}, "site")
     site_name = site_t.str("name", "edgevib")
     if not site_name or not all(c.isalnum() or c in "-_." for c in site_name):
         raise ConfigError("site.name", f"{site_name!r} must be non-empty letters, digits, '-', '_' or '.'")
-    state_dir = _resolve_path(site_t.str("state_dir", "/var/lib/edgevib"), base)
+    state_dir = _resolve_path(site_t.str("state_dir", default_state_dir()), base, "site.state_dir")
     shard_t = site_t.table("shard")
 
     log_t = root.table("logging") or _Table({}, "logging")
@@ -1011,19 +1110,24 @@ def config_to_document(cfg: Config) -> dict[str, Any]:
         if isinstance(v, frozenset | set):
             return sorted(conv(x) for x in v)
         if isinstance(v, Mapping):
-            return {str(k): conv(x) for k, x in v.items()}
+            return {str(k): conv(x) for k, x in v.items() if x is not None}
         return v
 
     doc = conv(cfg)
-    for key in ("alarms", "base_dir", "digest"):
+    for key in ("alarms", "base_dir", "digest", "skipped_sensors", "deferred"):
         doc.pop(key, None)
-    doc.pop("skipped_sensors", None)
     if not doc.get("skipped_points"):
         doc.pop("skipped_points", None)
-    for k, v in dict(doc.pop("alarm_tables", {})).items():
-        doc[k] = v
-    if cfg.alarms is not None:
-        doc["alarms_parsed"] = repr(cfg.alarms)
+    tables = dict(doc.pop("alarm_tables", {}))
+    if cfg.alarms is None:  # no alarm layer installed: its tables as written
+        doc.update(tables)
+    else:  # the alarm layer's tables ([alarms], [feed], [capture], per-point limits) as resolved
+        settings = conv(cfg.alarms)
+        if isinstance(settings, dict):
+            settings.pop("config_digest", None)
+            if isinstance(settings.get("socket_mode"), int):
+                settings["socket_mode"] = f"{settings['socket_mode']:04o}"
+        doc["alarm_settings"] = settings
     return dict(doc)
 
 
@@ -1050,8 +1154,8 @@ def dump_toml(doc: Mapping[str, Any], prefix: str = "") -> str:
     lines: list[str] = []
     tables: list[tuple[str, Any]] = []
     for k, v in doc.items():
-        is_table = isinstance(v, dict) and prefix.count(".") < 1
-        if is_table or (isinstance(v, list) and v and all(isinstance(x, dict) for x in v) and not prefix):
+        nested = isinstance(v, dict) or (isinstance(v, list) and v and all(isinstance(x, dict) for x in v))
+        if nested and prefix.count(".") < 2:  # [a] and [a.b] headers; deeper tables stay inline
             tables.append((k, v))
         else:
             lines.append(f"{_toml_key(k)} = {_toml_value(v)}")

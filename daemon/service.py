@@ -16,6 +16,7 @@ import argparse
 import asyncio
 import contextlib
 import dataclasses
+import os
 import signal
 import sys
 import tempfile
@@ -24,7 +25,16 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any, TextIO
 
-from edgevib.daemon.config import Config, config_to_document, dump_toml, load_config, parse_config, parse_listen
+from edgevib.daemon.config import (
+    Config,
+    config_to_document,
+    deferred_warnings,
+    dump_toml,
+    load_config,
+    parse_config,
+    parse_listen,
+    verify_for_run,
+)
 from edgevib.daemon.interfaces import ConfigError, FrameResult
 from edgevib.daemon.logs import configure_logging, get_logger
 
@@ -65,14 +75,20 @@ def run_check_config(args: argparse.Namespace) -> int:
         print(f"edgevib check-config: {args.file}: {exc}", file=sys.stderr)
         return 2
     print(f"# {args.file}: valid (sha256 {cfg.digest}); resolved configuration, defaults filled in, secrets "
-          "redacted")
+          "redacted" + ("; the alarm layer's tables resolved under [alarm_settings]" if cfg.alarms else ""))
+    for line in deferred_warnings(cfg):
+        print(f"# warning: {line}")
     for p in cfg.points:
         if p.envelope_note:
             print(f"# warning: point {p.id}: {p.envelope_note}")
     if cfg.skipped_points:
         print(f"# shard: {len(cfg.skipped_points)} point(s) belong to other instances: "
               f"{', '.join(cfg.skipped_points)}")
-    print(dump_toml(config_to_document(cfg)), end="")
+    try:
+        print(dump_toml(config_to_document(cfg)), end="", flush=True)
+    except BrokenPipeError:  # `edgevib check-config FILE | head`
+        with contextlib.suppress(OSError):
+            sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - keeps the interpreter's final flush quiet
     return 0
 
 
@@ -99,6 +115,7 @@ def _apply_overrides(cfg: Config, args: argparse.Namespace) -> Config:
 def run_run(args: argparse.Namespace) -> int:
     try:
         cfg = _apply_overrides(load_config(args.config), args)
+        verify_for_run(cfg)
     except ConfigError as exc:
         print(f"edgevib run: {args.config}: {exc}", file=sys.stderr)
         return 2
@@ -143,6 +160,7 @@ async def serve(cfg: Config, *, config_path: Path | None = None, metrics_listen:
             new = await asyncio.to_thread(load_config, config_path)
             if args is not None:
                 new = _apply_overrides(new, args)
+            verify_for_run(new)
             await daemon.reload(new)
         except ConfigError as exc:
             log.error("configuration reload rejected; the running configuration stays", path=str(config_path),

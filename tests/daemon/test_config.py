@@ -3,13 +3,22 @@
 from __future__ import annotations
 
 import copy
+import dataclasses
 import tomllib
 from pathlib import Path
 from typing import Any
 
 import pytest
 
-from edgevib.daemon.config import Secret, config_to_document, dump_toml, load_config, parse_config
+from edgevib.daemon.config import (
+    Secret,
+    config_to_document,
+    deferred_warnings,
+    dump_toml,
+    load_config,
+    parse_config,
+    verify_for_run,
+)
 from edgevib.daemon.interfaces import ConfigError
 
 
@@ -152,3 +161,79 @@ def test_load_config_reports_bad_toml(tmp_path: Path) -> None:
         load_config(bad)
     with pytest.raises(ConfigError, match="cannot read"):
         load_config(tmp_path / "missing.toml")
+
+
+# ---- ${CREDENTIALS_DIRECTORY} / ${STATE_DIRECTORY} (systemd.exec(5): LoadCredential=, StateDirectory=)
+
+
+def test_path_variables_expand(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    creds = tmp_path / "creds"
+    creds.mkdir()
+    (creds / "mqtt-password").write_text("pw\n")
+    monkeypatch.setenv("CREDENTIALS_DIRECTORY", str(creds))
+    # several StateDirectory= entries arrive colon-separated; the first is the service's own
+    monkeypatch.setenv("STATE_DIRECTORY", f"{tmp_path / 'state'}:{tmp_path / 'other'}")
+    doc = base()
+    doc["site"]["state_dir"] = "${STATE_DIRECTORY}"
+    doc["sources"][0].update(username="edgevib", password_file="${CREDENTIALS_DIRECTORY}/mqtt-password")
+    cfg = parse_config(doc, tmp_path)
+    assert cfg.site.state_dir == str(tmp_path / "state")
+    assert cfg.sources[0].connection.password == Secret("file", str(creds / "mqtt-password"))  # type: ignore[union-attr]
+    assert cfg.deferred == ()
+    verify_for_run(cfg)
+    # without state_dir in the file, $STATE_DIRECTORY is the default
+    doc["site"].pop("state_dir")
+    assert parse_config(doc, tmp_path).site.state_dir == str(tmp_path / "state")
+    monkeypatch.delenv("STATE_DIRECTORY")
+    assert parse_config(doc, tmp_path).site.state_dir == "/var/lib/edgevib"
+
+
+def test_credentials_outside_the_unit_are_deferred(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.delenv("CREDENTIALS_DIRECTORY", raising=False)
+    monkeypatch.delenv("STATE_DIRECTORY", raising=False)
+    doc = base()
+    doc["site"]["state_dir"] = "${STATE_DIRECTORY}"
+    doc["sources"][0].update(username="edgevib", password_file="${CREDENTIALS_DIRECTORY}/mqtt-password",
+                             cert_file=str(tmp_path / "missing.crt"))
+    # a plain missing file is an error at once
+    assert error(doc, tmp_path).path == "sources[0].cert_file"
+    doc["sources"][0]["cert_file"] = "/run/credentials/edgevib.service/client.crt"
+    cfg = parse_config(doc, tmp_path)
+    assert sorted(d[0] for d in cfg.deferred) == ["sources[0].cert_file", "sources[0].password_file"]
+    warnings = deferred_warnings(cfg)
+    assert warnings[0].startswith("site.state_dir:") and "--state-dir" in warnings[0]
+    by_key = {w.split(":", 1)[0]: w for w in warnings[1:]}
+    assert "${CREDENTIALS_DIRECTORY} is not set" in by_key["sources[0].password_file"]
+    assert "LoadCredential=" in by_key["sources[0].cert_file"]
+    assert all("checked again when the daemon starts" in w for w in warnings[1:])
+    with pytest.raises(ConfigError) as info:
+        verify_for_run(cfg)
+    assert info.value.path == "site.state_dir"
+    cfg = dataclasses.replace(cfg, site=dataclasses.replace(cfg.site, state_dir=str(tmp_path / "state")))
+    with pytest.raises(ConfigError) as info:
+        verify_for_run(cfg)
+    assert info.value.path in ("sources[0].password_file", "sources[0].cert_file")
+    assert "does not exist" in info.value.problem
+    # inside the unit (CREDENTIALS_DIRECTORY set) a missing credential is an error at load
+    monkeypatch.setenv("CREDENTIALS_DIRECTORY", str(tmp_path))
+    assert error(doc, tmp_path).path == "sources[0].cert_file"  # under /run/credentials/: absent in the unit too
+    doc["sources"][0].pop("cert_file")
+    assert error(doc, tmp_path).path == "sources[0].password_file"
+
+
+def test_other_variables_are_not_expanded(tmp_path: Path) -> None:
+    doc = base()
+    doc["sources"][0].update(ca_file="${HOME}/ca.crt")
+    e = error(doc, tmp_path)
+    assert e.path == "sources[0].ca_file" and "${HOME}" in e.problem and "${CREDENTIALS_DIRECTORY}" in e.problem
+
+
+def test_resolved_document_has_no_python_reprs() -> None:
+    cfg = load_config(Path(__file__).resolve().parents[2] / "config" / "example-plant.toml")
+    text = dump_toml(config_to_document(cfg))
+    assert "alarms_parsed" not in text and "Settings(" not in text and "Config(" not in text
+    doc = tomllib.loads(text)
+    if cfg.alarms is not None:  # the alarm layer's tables, resolved
+        limits = doc["alarm_settings"]["limits"]
+        assert {(lim["point"], lim["indicator"]) for lim in limits} >= {("P-101-DE-H", "velocity_rms_mm_s")}
+        assert doc["alarm_settings"]["socket_mode"] == "0600"

@@ -65,6 +65,56 @@ def test_check_config_never_prints_secrets(tmp_path: Path) -> None:
     assert proc.returncode == 2 and "password_file" in proc.stderr and "correct-horse" not in proc.stderr
 
 
+def _unit_only_config(tmp_path: Path) -> Path:
+    """A configuration whose secret is a systemd credential and whose state directory is the unit's."""
+    import tomllib
+
+    doc = tomllib.loads(EXAMPLE.read_text())
+    doc["site"]["state_dir"] = "${STATE_DIRECTORY}"
+    doc["sources"][0].update(username="edgevib", password_file="${CREDENTIALS_DIRECTORY}/mqtt-password")
+    path = tmp_path / "plant.toml"
+    path.write_text(_toml(doc))
+    return path
+
+
+def test_check_config_outside_the_unit_warns_and_run_refuses(tmp_path: Path) -> None:
+    path = _unit_only_config(tmp_path)
+    env = {k: v for k, v in os.environ.items() if k not in ("CREDENTIALS_DIRECTORY", "STATE_DIRECTORY")}
+    proc = edgevib("check-config", str(path), env=env)
+    assert proc.returncode == 0, proc.stderr
+    warnings = [ln for ln in proc.stdout.splitlines() if ln.startswith("# warning:")]
+    assert any("sources[0].password_file" in w and "${CREDENTIALS_DIRECTORY} is not set" in w for w in warnings)
+    assert any(w.startswith("# warning: site.state_dir:") for w in warnings)
+    assert "alarms_parsed" not in proc.stdout and "Settings(" not in proc.stdout
+    # `run` checks again: the state directory first (override it), then the missing secret; one line, exit 2
+    proc = edgevib("run", "--config", str(path), env=env)
+    assert proc.returncode == 2 and proc.stderr.count("\n") == 1 and "site.state_dir" in proc.stderr, proc.stderr
+    proc = edgevib("run", "--config", str(path), "--state-dir", str(tmp_path / "state"), env=env)
+    assert proc.returncode == 2 and proc.stderr.count("\n") == 1, proc.stderr
+    assert "sources[0].password_file" in proc.stderr and "does not exist" in proc.stderr
+    assert not (tmp_path / "state").exists()  # refused before anything was created
+
+
+def test_check_config_inside_the_unit_expands_the_variables(tmp_path: Path) -> None:
+    path = _unit_only_config(tmp_path)
+    creds = tmp_path / "credentials"
+    creds.mkdir()
+    (creds / "mqtt-password").write_text("correct-horse-battery\n")
+    env = dict(os.environ, CREDENTIALS_DIRECTORY=str(creds), STATE_DIRECTORY=str(tmp_path / "state"))
+    proc = edgevib("check-config", str(path), env=env)
+    assert proc.returncode == 0, proc.stderr
+    assert "# warning: site.state_dir" not in proc.stdout and "password_file" not in proc.stdout
+    assert f'state_dir = "{tmp_path / "state"}"' in proc.stdout
+    assert f"<from file {creds / 'mqtt-password'}>" in proc.stdout
+    assert "correct-horse-battery" not in proc.stdout + proc.stderr
+
+
+def _toml(doc: dict[str, Any]) -> str:
+    from edgevib.daemon.config import dump_toml
+
+    return dump_toml(doc)
+
+
 @pytest.mark.network
 @pytest.mark.slow
 def test_run_health_reload_and_sigterm(mosquitto: Any, tmp_path: Path) -> None:
