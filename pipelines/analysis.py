@@ -31,7 +31,7 @@ from edgevib.pipelines.envelope import (
     min_decimated_length,
     search_families,
 )
-from edgevib.pipelines.indicators import as_channels, centre, moments
+from edgevib.pipelines.indicators import as_channels, finite_mean, moments
 from edgevib.pipelines.spectrum import (
     G_MM_S2,
     band_lines,
@@ -302,11 +302,12 @@ class AnalysisKernel:
             raise SignalError(f"frames have {x.shape[1]} samples, the plan expects {n}")
         c = x.shape[0]
         f_given = _shaft_array(shaft_hz, c, plan.fs_hz)
-        xc, mean = centre(x)
-        td = moments(xc, mean)
-        del xc
         spec = _fft.rfft(x)
+        mean = spec[:, 0].real / n  # line 0 is the sum of the samples (NaN/Inf anywhere reach it)
+        if not np.isfinite(spec[:, 0]).all():
+            finite_mean(x)  # raises SignalError naming the channel and the count
         spec[:, 0] = 0.0  # the mean, removed (lines ≥ 1 are those of the centred frame)
+        td = moments(np.subtract(x, mean[:, None], dtype=np.float32), mean)
 
         estimate = ~np.isfinite(f_given)
         stop = self._vel_stop
