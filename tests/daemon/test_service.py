@@ -50,19 +50,25 @@ def test_check_config_error_is_one_line_exit_2(tmp_path: Path) -> None:
 
 
 def test_check_config_never_prints_secrets(tmp_path: Path) -> None:
+    import tomllib
+
     secret = tmp_path / "pw"
     secret.write_text("correct-horse-battery\n")
+    doc = tomllib.loads(EXAMPLE.read_text())  # the example, with the MQTT source given credentials
+    doc["sources"][0].update(username="edgevib", password_file=str(secret))
     cfg = tmp_path / "plant.toml"
-    cfg.write_text(EXAMPLE.read_text().replace('# username = "edgevib"', 'username = "edgevib"', 1).replace(
-        '# password_file = "/run/credentials/edgevib.service/mqtt-password"', f'password_file = "{secret}"', 1))
+    cfg.write_text(_toml(doc))
     proc = edgevib("check-config", str(cfg), env=dict(os.environ, EDGEVIB_UNUSED="x"))
     assert proc.returncode == 0, proc.stderr
     assert "correct-horse-battery" not in proc.stdout + proc.stderr
     assert f"<from file {secret}>" in proc.stdout
+    doc["sources"][0].pop("password_file")
+    doc["sources"][0]["password"] = "correct-horse"
     literal = tmp_path / "literal.toml"
-    literal.write_text(EXAMPLE.read_text().replace('# username = "edgevib"', 'password = "correct-horse"', 1))
+    literal.write_text(_toml(doc))
     proc = edgevib("check-config", str(literal))
-    assert proc.returncode == 2 and "password_file" in proc.stderr and "correct-horse" not in proc.stderr
+    assert proc.returncode == 2 and "sources[0].password" in proc.stderr and "password_file" in proc.stderr
+    assert "correct-horse" not in proc.stdout + proc.stderr
 
 
 def _unit_only_config(tmp_path: Path) -> Path:
