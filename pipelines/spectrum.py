@@ -45,6 +45,8 @@ IntArray = npt.NDArray[np.intp]
 
 G_MM_S2 = STANDARD_GRAVITY_M_S2 * 1000.0  # 1 g in mm/s²
 SPEED_MIN_PROMINENCE = 5.0  # an estimated speed's 1× line stands ≥ 14 dB over its local floor (common practice)
+SPEED_MIN_SHARE = 0.25  # … and reaches at least a quarter (−12 dB) of the strongest velocity line in the range
+SPEED_CANDIDATES = 4  # best-scoring candidates tried in turn
 
 
 def hann_lines(spec: npt.NDArray[Any], stop: int) -> npt.NDArray[Any]:
@@ -280,10 +282,12 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     A harmonic sum over the velocity spectrum (where the shaft lines dominate): every candidate f0 in
     ``speed_range_hz`` (steps of a third of a line) scores the sum of the largest amplitudes within ±1 line of
     f0, 2f0 … (``harmonics``), minus the same at the half-way points 0.5f0, 1.5f0 … (which rejects the octave
-    errors 2f0 and f0/2 when harmonics are present).  The winner's 1× line is refined on the acceleration spectrum
+    errors 2f0 and f0/2 when harmonics are present).  The ``SPEED_CANDIDATES`` best distinct candidates are tried
+in turn, and the first that passes the checks below wins.  Its 1× line is refined on the acceleration spectrum
     with the Hann two-line interpolation δ = ±(2α − 1)/(α + 1), α the larger neighbour over the peak (exact for
     one tone), and kept only when it stands at least ``SPEED_MIN_PROMINENCE`` times (14 dB) over the median
-    acceleration amplitude within ±25 % of its frequency (a white floor there, unlike the velocity spectrum's).
+    acceleration amplitude within ±25 % of its frequency (a white floor there, unlike the velocity spectrum's) and
+    reaches ``SPEED_MIN_SHARE`` (−12 dB) of the strongest velocity line in the speed range.
 
     Parameters
     ----------
@@ -303,13 +307,16 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     for h in range(1, harmonics + 1):
         score += amp3[:, np.minimum(np.rint(h * cand).astype(np.intp), k - 1)]
         score -= amp3[:, np.minimum(np.rint((h - 0.5) * cand).astype(np.intp), k - 1)]
-    best = cand[np.argmax(score, axis=-1)]  # (channels,)
+    # the best few distinct candidates (local maxima of the score), best first
+    local = np.ones(score.shape, dtype=bool)
+    local[:, 1:] &= score[:, 1:] >= score[:, :-1]
+    local[:, :-1] &= score[:, :-1] >= score[:, 1:]
+    order = np.argsort(np.where(local, -score, np.inf), axis=-1)[:, :SPEED_CANDIDATES]  # (channels, K)
+    b = np.rint(cand[order]).astype(np.intp)
     acc = np.sqrt(acc_pow)
-    b = np.rint(best).astype(np.intp)
-    peak = window_argmax(acc, (b - 1)[:, None], (b + 1)[:, None])[:, 0]
+    peak = window_argmax(acc, b - 1, b + 1)
     peak = np.minimum(np.maximum(peak, 1), k - 2)
-    rows = np.arange(c)
-    left, mid, right = acc[rows, peak - 1], acc[rows, peak], acc[rows, peak + 1]
+    left, mid, right = _gather(acc, peak - 1), _gather(acc, peak), _gather(acc, peak + 1)
     side = np.where(right >= left, 1.0, -1.0)
     with np.errstate(divide="ignore", invalid="ignore"):
         alpha = np.maximum(left, right) / mid
@@ -317,8 +324,16 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     delta = np.where(np.isfinite(delta), np.minimum(np.maximum(delta, -0.5), 0.5), 0.0)
     f_est = (peak + delta) * df_hz
     span = np.maximum(np.rint(0.25 * peak).astype(np.intp), 8)
-    floor = masked_median(acc, (peak - span)[:, None], (peak + span)[:, None], (peak - 2)[:, None],
-                          (peak + 2)[:, None])[:, 0]
+    floor = masked_median(acc, peak - span, peak + span, peak - 2, peak + 2)
     clear = (mid > 0) & (mid >= SPEED_MIN_PROMINENCE * floor)
-    inside = (f_est >= speed_range_hz[0] * 0.999) & (f_est <= speed_range_hz[1] * 1.001)
-    return np.where(clear & inside, f_est, np.nan)
+    # ... and a 1× line is among the strongest velocity lines of the speed range (common practice: 1× dominates
+    # the velocity spectrum of a running machine), which rejects patterns of other lines that happen to fit
+    lo_line = max(1, math.floor(speed_range_hz[0] / df_hz))
+    hi_line = min(k, math.ceil(speed_range_hz[1] / df_hz) + 1)
+    strongest = amp[:, lo_line:hi_line].max(axis=-1)
+    clear &= _gather(amp3, peak) >= SPEED_MIN_SHARE * strongest[:, None]
+    clear &= (f_est >= speed_range_hz[0] * 0.999) & (f_est <= speed_range_hz[1] * 1.001)
+    first = np.argmax(clear, axis=-1)
+    rows = np.arange(c)
+    out: FloatArray = np.where(clear[rows, first], f_est[rows, first], np.nan)
+    return out
