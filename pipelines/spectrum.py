@@ -65,9 +65,11 @@ def hann_lines(spec: npt.NDArray[Any], stop: int) -> npt.NDArray[Any]:
     ``w[n] = 0.5 − 0.5 cos(2πn/N)``.
     """
     ext = spec[:, : stop + 1]
-    out = 0.5 * ext[:, :stop] - 0.25 * ext[:, 1 : stop + 1]
-    out[:, 1:] -= 0.25 * ext[:, : stop - 1]
-    out[:, 0] -= 0.25 * np.conj(ext[:, 1])
+    out = np.empty((spec.shape[0], stop), dtype=spec.dtype)
+    np.add(ext[:, : stop - 1], ext[:, 2 : stop + 1], out=out[:, 1:])  # X[k-1] + X[k+1]
+    out[:, 0] = np.conj(ext[:, 1]) + ext[:, 1]  # X[-1] = conj(X[1]) for a real frame
+    out *= -0.25
+    out += 0.5 * ext[:, :stop]
     return out
 
 
