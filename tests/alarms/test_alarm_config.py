@@ -20,8 +20,13 @@ EXAMPLE = Path(__file__).resolve().parents[2] / "config" / "example-plant.toml"
 
 
 def doc(tmp_path: Path, **tables: Any) -> dict[str, Any]:
+    """The example plant without its alarm tables and point limits (each test adds its own)."""
     d = tomllib.loads(EXAMPLE.read_text())
     d["site"]["state_dir"] = str(tmp_path / "state")
+    for k in ("alarms", "feed", "capture"):
+        d.pop(k, None)
+    for p in d["points"]:
+        p.pop("limits", None)
     for k, v in tables.items():
         d[k] = v
     return d
@@ -118,3 +123,25 @@ def test_alarm_table_errors(tmp_path: Path) -> None:
     with pytest.raises(ConfigError) as exc:
         parse_config(doc(tmp_path, capture={"max_mb": -1}), tmp_path)
     assert exc.value.path == "capture.max_mb"
+
+
+def test_example_shows_the_defaults(tmp_path: Path) -> None:
+    """config/example-plant.toml writes out [alarms], [alarms.health] and [capture] with their defaults: parsed,
+    they equal the settings of a file without those tables."""
+    full = tomllib.loads(EXAMPLE.read_text())
+    full["site"]["state_dir"] = str(tmp_path / "state")
+    assert {"alarms", "capture"} <= set(full) and "health" in full["alarms"]
+    shown = parse_config(full, tmp_path).alarms
+    bare = parse_config(doc(tmp_path), tmp_path).alarms
+    for name in ("enabled", "health_enabled", "startup_grace_s", "run_threshold_velocity_mm_s", "no_data_frames",
+                 "sensor_recover_frames", "baseline_frames", "trend_frames", "max_shelve_s", "socket_path",
+                 "socket_mode", "capture", "feed"):
+        assert getattr(shown, name) == getattr(bare, name), name
+    # the MEMS point has no per-point health table in the example: its health spec is the global default
+    assert shown.health["F-201-NDE-V"] == bare.health["F-201-NDE-V"]
+    assert shown.health["P-101-DE-H"] == bare.health["P-101-DE-H"]  # its health table is all comments
+    lims = {(lim.point, lim.indicator): lim for lim in shown.limits}
+    default = {(lim.point, lim.indicator): lim for lim in bare.limits}[("F-201-NDE-V", "velocity_rms_mm_s")]
+    assert lims[("F-201-NDE-V", "velocity_rms_mm_s")] == default  # [alarms] defaults = the limits' defaults
+    assert lims[("P-101-DE-H", "velocity_rms_mm_s")].alert == LevelRule("iso-baseline")
+    assert lims[("P-101-DE-H", "bearing_bpfo_g")].latching
