@@ -31,7 +31,7 @@ from edgevib.pipelines.envelope import (
     min_decimated_length,
     search_families,
 )
-from edgevib.pipelines.indicators import as_channels, finite_mean, moments
+from edgevib.pipelines.indicators import as_channels, centred_moments, finite_mean
 from edgevib.pipelines.spectrum import (
     G_MM_S2,
     band_lines,
@@ -307,7 +307,7 @@ class AnalysisKernel:
         if not np.isfinite(spec[:, 0]).all():
             finite_mean(x)  # raises SignalError naming the channel and the count
         spec[:, 0] = 0.0  # the mean, removed (lines ≥ 1 are those of the centred frame)
-        td = moments(np.subtract(x, mean[:, None], dtype=np.float32), mean)
+        td = centred_moments(x, mean)
 
         estimate = ~np.isfinite(f_given)
         stop = self._vel_stop

@@ -16,7 +16,7 @@ import numpy.typing as npt
 
 from edgevib.pipelines.types import SignalError
 
-__all__ = ["TimeDomain", "as_channels", "centre", "finite_mean", "moments", "time_domain"]
+__all__ = ["TimeDomain", "as_channels", "centred_moments", "finite_mean", "time_domain"]
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -68,31 +68,36 @@ def finite_mean(x: FloatArray) -> FloatArray:
     return mean
 
 
-def centre(x: FloatArray) -> tuple[npt.NDArray[np.float32], FloatArray]:
-    """Mean-removed frames in float32 and the per-channel float64 means; raises :class:`SignalError` on NaN/Inf.
+BLOCK_SAMPLES = 1 << 17  # rows are processed in blocks of about this many samples (512 kB of float32: in cache)
 
-    The mean is taken and removed in float64 (so a 1 g gravity offset costs no precision); the centred samples are
-    single precision on purpose: the moments below then move half the bytes, and numpy's pairwise summation keeps
-    their relative error near 1e-7.
+
+def centred_moments(x: FloatArray, mean: FloatArray) -> TimeDomain:
+    """Indicators of frames ``x`` (channels, samples) about their means ``mean`` (channels,).
+
+    The centred samples are formed block by block in single precision on purpose: each block of rows stays in
+    the processor's cache through its five passes (max, min, Σx², Σx³, Σx⁴), and numpy's pairwise summation keeps
+    the sums' relative error near 1e-7.  The mean itself is removed in float64, so a 1 g gravity offset costs no
+    precision.
     """
-    mean = finite_mean(x)
-    xc: npt.NDArray[np.float32] = np.subtract(x, mean[:, None], dtype=np.float32)
-    return xc, mean
-
-
-def moments(xc: npt.NDArray[np.float32], mean: FloatArray) -> TimeDomain:
-    """Indicators of mean-removed frames ``xc`` (channels, samples); ``mean`` the removed means (channels,).
-
-    ``xc`` is used as scratch space when it owns its memory (as :func:`centre`'s result does).
-    """
-    n = xc.shape[-1]
-    hi = xc.max(axis=-1).astype(np.float64)
-    lo = xc.min(axis=-1).astype(np.float64)
-    x2 = np.square(xc)
-    m2 = x2.sum(axis=-1).astype(np.float64) / n
-    x3 = np.multiply(x2, xc, out=xc if xc.flags.writeable and xc.base is None else None)  # xc is not used again
-    m3 = x3.sum(axis=-1).astype(np.float64) / n
-    m4 = np.square(x2, out=x2).sum(axis=-1).astype(np.float64) / n
+    c, n = x.shape
+    rows = max(1, min(c, BLOCK_SAMPLES // n))
+    xc = np.empty((rows, n), dtype=np.float32)
+    x2 = np.empty((rows, n), dtype=np.float32)
+    acc = np.empty((5, c), dtype=np.float64)
+    for i in range(0, c, rows):  # blocks of rows, not a loop over channels
+        j = min(c, i + rows)
+        a, b = xc[: j - i], x2[: j - i]
+        np.subtract(x[i:j], mean[i:j, None], out=a, casting="same_kind")
+        acc[0, i:j] = a.max(axis=-1)
+        acc[1, i:j] = a.min(axis=-1)
+        np.square(a, out=b)
+        acc[2, i:j] = b.sum(axis=-1)
+        np.multiply(b, a, out=a)
+        acc[3, i:j] = a.sum(axis=-1)
+        np.square(b, out=b)
+        acc[4, i:j] = b.sum(axis=-1)
+    hi, lo = acc[0], acc[1]
+    m2, m3, m4 = acc[2] / n, acc[3] / n, acc[4] / n
     rms = np.sqrt(m2)
     peak = np.maximum(hi, -lo) + 0.0  # (+0.0 turns -0.0 into 0.0)
     nonzero = m2 > 0
@@ -132,5 +137,4 @@ def time_domain(x_g: npt.ArrayLike) -> TimeDomain:
     A sine of amplitude A has r.m.s. A/√2, crest factor √2 and kurtosis 1.5.
     """
     x = as_channels(x_g)
-    xc, mean = centre(x)
-    return moments(xc, mean)
+    return centred_moments(x, finite_mean(x))
