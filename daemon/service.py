@@ -233,7 +233,7 @@ def demo_config(rate: float = 1.0, seed: int = 0, scenario: str = "demo", state_
 
     sim = Simulation(load_scenario(scenario), seed=seed)
     doc = sim.daemon_config(source={"name": "simulator", "type": "simulated", "scenario": scenario, "seed": seed,
-                                    "rate": rate})
+                                    "rate": rate}, limits=True)  # the limits of config/demo.toml
     if state_dir is not None:
         doc.setdefault("site", {})["state_dir"] = state_dir
     return parse_config(doc, ".")

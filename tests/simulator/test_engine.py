@@ -205,9 +205,10 @@ def test_daemon_config_roundtrip_and_schema(kind):
               "mqtt": {"name": "sim", "type": "mqtt", "url": "mqtt://127.0.0.1:1883",
                        "topics": ["fwb/quarry-lane/+/+/block"]},
               "opcua": {"name": "sim", "type": "opcua", "endpoint": "opc.tcp://127.0.0.1:4840/"}}[kind]
-    doc = sim.daemon_config(source=source, extra={"alarms": {"defaults": {"on_delay_s": 2.0}}})
+    doc = sim.daemon_config(source=source, extra={"alarms": {"defaults": {"on_delay_s": 2.0}}}, limits=True)
     text = sim.daemon_config_toml(source=source, extra={"alarms": {"defaults": {"on_delay_s": 2.0}}})
     assert tomllib.loads(text) == doc
+    assert "limits" not in sim.daemon_config(source=source)["points"][0]  # limits only on request
     assert doc["alarms"] == {"defaults": {"on_delay_s": 2.0}}
     machines = {m["id"]: m for m in doc["machines"]}
     assert machines["P-101"]["speed_rpm"] == 1480.0 and "speed_tag" not in machines["P-101"]
@@ -217,6 +218,16 @@ def test_daemon_config_roundtrip_and_schema(kind):
     assert pts["B-301-DE-H"]["bearing"] == {"elements": 8, "ball_diameter_mm": 17.5, "pitch_diameter_mm": 72.0,
                                             "contact_angle_deg": 0.0}
     assert pts["F-201-NDE-V"]["sensor_type"] == "mems" and pts["F-201-NDE-V"]["bandwidth_hz"] == [0.0, 2000.0]
+    # alarm limits (issue 3: the emitted configuration carries them): ISO 20816-3 velocity on every point;
+    # bearing-family alerts only where a bearing is declared and the acquisition carries envelope bandwidth
+    assert all(p["limits"]["velocity_rms_mm_s"] == {"rule": "iso"} for p in doc["points"])
+    with_bearing = {pid for pid, p in pts.items() if "bearing" in p}
+    assert with_bearing == {"M-101-DE-H", "P-101-DE-H", "B-301-DE-H"}
+    for pid, p in pts.items():
+        fams = {k for k in p["limits"] if k.startswith("bearing_")}
+        assert fams == ({f"bearing_{f}_snr_db" for f in ("bpfo", "bpfi", "bsf", "ftf")} if pid in with_bearing
+                        else set()), pid
+    assert set(pts["F-201-NDE-V"]["limits"]) == {"velocity_rms_mm_s"}  # no bearing declared
     if kind == "opcua":
         assert pts["P-101-DE-H"]["node"] == "ns=2;s=quarry-lane/P-101/P-101-DE-H/samples"
     try:
@@ -226,6 +237,12 @@ def test_daemon_config_roundtrip_and_schema(kind):
     del doc["alarms"]
     cfg = parse_config(doc, ".")
     assert len(cfg.points) == len(sim.points)
+    if cfg.alarms is not None:  # the alarm layer accepts every emitted limit
+        got = {(lim.point, lim.indicator) for lim in cfg.alarms.limits}  # type: ignore[attr-defined]
+        assert got == {(p["id"], k) for p in doc["points"] for k in p["limits"]}
+    # the simulator's envelope rule agrees with the daemon's: MEMS point without, bearing points with a band
+    assert cfg.point("F-201-NDE-V").sensor_type == "mems"
+    assert all(cfg.point(pid).envelope_band_hz is not None for pid in with_bearing)
 
 
 def test_committed_demo_config_is_current():
