@@ -166,6 +166,23 @@ def test_demo_prints_url_and_plain_lines_then_stops() -> None:
     points = {re.search(r"point=(\S+)", line).group(1) for line in lines}  # type: ignore[union-attr]
     assert {"P-101-DE-H", "F-201-NDE-V"} <= points
     assert all("velocity_mm_s=" in line and "kurtosis=" in line for line in lines)
+    # the 1 kHz MEMS point has no envelope indicators: shown as n/a, with one start-up warning naming it
+    assert all("envelope=n/a" in line for line in lines if "point=F-201-NDE-V" in line)
+    assert not any("envelope=n/a" in line for line in lines if "point=F-201-NDE-V" not in line)
+    warned = [line for line in proc.stderr.splitlines() if "no envelope indicators" in line]
+    assert len(warned) == 1 and "F-201-NDE-V" in warned[0], proc.stderr
+
+
+def test_demo_mems_point_has_no_envelope_band(tmp_path: Path) -> None:
+    from edgevib.daemon.service import demo_config
+
+    cfg = demo_config(state_dir=str(tmp_path))
+    mems = [p for p in cfg.points if p.sensor_type == "mems"]
+    assert [p.id for p in mems] == ["F-201-NDE-V"]
+    # FIELD_NOTES §6: envelope analysis needs kHz bandwidth; a MEMS point limited to ~1 kHz gets none
+    assert mems[0].bandwidth_hz[1] <= 1000.0 and mems[0].envelope_band_hz is None and mems[0].envelope_note
+    assert all(p.envelope_band_hz is not None for p in cfg.points if p.sensor_type == "piezo")
+    assert cfg.site.state_dir == str(tmp_path)
 
 
 @pytest.mark.slow

@@ -191,7 +191,7 @@ def test_points_describe_what_the_daemon_needs():
     by_id = {p.point_id: p for p in sim.points}
     mems = by_id["F-201-NDE-V"]
     assert mems.sensor_type == "mems" and mems.fs_hz == 6400.0 and mems.block_samples == 2048
-    assert mems.bandwidth_hz == (0.0, 2000.0)
+    assert mems.bandwidth_hz == (0.0, 1000.0)  # 1 kHz MEMS: no envelope band (FIELD_NOTES §6)
     assert by_id["P-101-DE-H"].bandwidth_hz == (0.5, 0.45 * 12800)
     assert by_id["B-301-DE-H"].bearing.elements == 8
     assert sim.topic("P-101-DE-H") == "fwb/quarry-lane/P-101/P-101-DE-H/block"
@@ -217,7 +217,7 @@ def test_daemon_config_roundtrip_and_schema(kind):
     pts = {p["id"]: p for p in doc["points"]}
     assert pts["B-301-DE-H"]["bearing"] == {"elements": 8, "ball_diameter_mm": 17.5, "pitch_diameter_mm": 72.0,
                                             "contact_angle_deg": 0.0}
-    assert pts["F-201-NDE-V"]["sensor_type"] == "mems" and pts["F-201-NDE-V"]["bandwidth_hz"] == [0.0, 2000.0]
+    assert pts["F-201-NDE-V"]["sensor_type"] == "mems" and pts["F-201-NDE-V"]["bandwidth_hz"] == [0.0, 1000.0]
     # alarm limits (issue 3: the emitted configuration carries them): ISO 20816-3 velocity on every point;
     # bearing-family alerts only where a bearing is declared and the acquisition carries envelope bandwidth
     assert all(p["limits"]["velocity_rms_mm_s"] == {"rule": "iso"} for p in doc["points"])
@@ -227,7 +227,7 @@ def test_daemon_config_roundtrip_and_schema(kind):
         fams = {k for k in p["limits"] if k.startswith("bearing_")}
         assert fams == ({f"bearing_{f}_snr_db" for f in ("bpfo", "bpfi", "bsf", "ftf")} if pid in with_bearing
                         else set()), pid
-    assert set(pts["F-201-NDE-V"]["limits"]) == {"velocity_rms_mm_s"}  # no bearing declared
+    assert set(pts["F-201-NDE-V"]["limits"]) == {"velocity_rms_mm_s"}  # MEMS, 1 kHz: no envelope
     if kind == "opcua":
         assert pts["P-101-DE-H"]["node"] == "ns=2;s=quarry-lane/P-101/P-101-DE-H/samples"
     try:
@@ -241,7 +241,7 @@ def test_daemon_config_roundtrip_and_schema(kind):
         got = {(lim.point, lim.indicator) for lim in cfg.alarms.limits}  # type: ignore[attr-defined]
         assert got == {(p["id"], k) for p in doc["points"] for k in p["limits"]}
     # the simulator's envelope rule agrees with the daemon's: MEMS point without, bearing points with a band
-    assert cfg.point("F-201-NDE-V").sensor_type == "mems"
+    assert cfg.point("F-201-NDE-V").envelope_band_hz is None
     assert all(cfg.point(pid).envelope_band_hz is not None for pid in with_bearing)
 
 
