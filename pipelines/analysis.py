@@ -66,7 +66,7 @@ FAMILIES: tuple[str, ...] = ("ftf", "bpfo", "bpfi", "bsf")
 ``expected_hz``/``frequency_hz`` are the 2 × BSF line."""
 SPEED_HARMONICS = 3  # harmonics used by the speed estimate
 MIN_SAMPLES = 64
-PEAK_OVERSAMPLING = 4.0  # velocity waveform sampled at ≥ 4 × the band's upper edge; peaks refined by a parabola
+PEAK_OVERSAMPLING = 4.0  # waveforms sampled at ≥ 4 × the band's upper edge; peaks refined by a parabola
 ANTI_ALIAS_RATIO = 2.56  # usable bandwidth fs/2.56 of an anti-aliased acquisition (common practice)
 
 
@@ -229,6 +229,7 @@ class AnalysisKernel:
     """Precomputed, read-only state for the frames of one plan; :meth:`analyze` does only arithmetic."""
 
     __slots__ = (
+        "_centre",
         "_df",
         "_disp_coef",
         "_env",
@@ -236,12 +237,10 @@ class AnalysisKernel:
         "_env_m",
         "_env_stop",
         "_integrate",
-        "_md",
         "_mult",
         "_mv",
         "_n",
         "_speed_stop",
-        "_vel_coef",
         "_vel_lines",
         "_vel_stop",
         "plan",
@@ -264,15 +263,19 @@ class AnalysisKernel:
                             f"line at resolution {self._df:.4g} Hz")
         self._vel_lines = (lo, hi)
         self._mv = max(fast_length(math.ceil(PEAK_OVERSAMPLING * hi)), 2 * hi + 2)
-        # displacement is dominated by the band's lowest lines: sampled at ≥ 2 × the band's top, peaks refined
-        self._md = fast_length(2 * hi + 2)
-        # irfft(Y, m) = (N/m) × the band-limited waveform, so the line coefficients carry m/N
-        vel_coef = (-1j * G_MM_S2 * self._mv / n) / omega[lo : hi + 1]  # g → mm/s, ÷ jω
-        disp_coef = (-1j * 1000.0 * self._md / self._mv) / omega[lo : hi + 1]  # mm/s → µm, ÷ jω
-        vel_coef.flags.writeable = False
-        disp_coef.flags.writeable = False
-        self._vel_coef = vel_coef
-        self._disp_coef = disp_coef
+        # band lines → the velocity (mm/s) and displacement (µm) waveforms: from the windowed velocity lines low in
+        # the band, from the windowed acceleration lines above 8 × its low edge (see analyze)
+        w_band = omega[lo : hi + 1]
+        low = k[lo : hi + 1] * self._df < 8.0 * plan.velocity_band_hz[0]
+        zero = np.zeros(w_band.shape)
+        dcoef = np.array([
+            [np.where(low, 1.0, 0.0), np.where(low, zero, -1j * G_MM_S2 / w_band)],
+            [np.where(low, -1j * 1000.0 / w_band, 0.0), np.where(low, zero, -G_MM_S2 * 1000.0 / w_band**2)],
+        ], dtype=np.complex128)  # (waveform, source, line)
+        dcoef.flags.writeable = False
+        self._disp_coef = dcoef
+        # the central half of a frame, where the Hann window is ≥ 0.5, in each waveform's samples
+        self._centre = _central_window(self._mv)
         self._vel_stop = min(n // 2 - 1, hi + 2)
         self._speed_stop = min(n // 2, math.ceil(SPEED_HARMONICS * plan.speed_range_hz[1] * (1 + plan.order_tolerance)
                                                / self._df) + 3)
@@ -331,13 +334,22 @@ class AnalysisKernel:
             shaft[estimate] = est
         orders = order_amplitudes_mm_s(vel_pow, shaft, plan.orders, plan.order_tolerance, self._df, n)
 
-        # velocity and displacement waveforms from the band's lines only (for peak and peak-to-peak)
-        y = np.zeros((c, v_hi + 1), dtype=np.complex128)
-        y[:, v_lo:] = spec[:, v_lo : v_hi + 1] * self._vel_coef
-        vel_peak = _refined_peak(np.abs(_fft.irfft(y, self._mv)))
-        y[:, v_lo:] *= self._disp_coef
-        disp = _fft.irfft(y, self._md)
-        disp_pp = _refined_peak(disp) + _refined_peak(-disp)
+        # velocity and displacement waveforms from the band's Hann lines only (for peak and peak-to-peak): the
+        # windowed waveform, divided by the window over the frame's central half, is the band-limited waveform
+        # itself (see _central_window).
+        # Which windowed lines: integrating before the window is exact for a tone's own lines, but the frame's
+        # end-mismatch leakage that it integrates too grows at low lines by f/f_low per integration; integrating
+        # after the window has no such leakage but is off by ~(Δf/f)² near the band's low edge.  So: windowed
+        # velocity lines below 8 × the low edge, windowed acceleration lines ÷ jω above it.
+        y = np.zeros((2, c, v_hi + 1), dtype=np.complex128)
+        band_vel, band_acc = vel[:, v_lo : v_hi + 1], acc[:, v_lo : v_hi + 1]
+        for wv in range(2):
+            y[wv, :, v_lo:] = band_vel * self._disp_coef[wv, 0] + band_acc * self._disp_coef[wv, 1]
+        y *= self._mv / n  # irfft(Y, m) = (N/m) × the waveform
+        sl, w = self._centre
+        wave = _fft.irfft(y, self._mv)[:, :, sl] / w
+        vel_peak = np.maximum(_refined_peak(wave[0]), _refined_peak(-wave[0]))  # signed: |v| would fold neighbours
+        disp_pp = _refined_peak(wave[1]) + _refined_peak(-wave[1])
 
         fam: tuple[FloatArray, FloatArray, FloatArray, npt.NDArray[np.int64]] | None = None
         has_speed = np.isfinite(shaft)
@@ -381,20 +393,41 @@ class AnalysisKernel:
         return out
 
 
+def _central_window(m: int) -> tuple[slice, FloatArray]:
+    """Samples of an m-point frame where the periodic Hann window is at least 0.5, and the window there.
+
+    Dividing a windowed waveform by the window over this central half recovers the waveform (at most doubling
+    its noise); peaks of stationary signals are taken there.
+    """
+    sl = slice(math.ceil(m / 4), math.floor(3 * m / 4) + 1)
+    w = 0.5 - 0.5 * np.cos(2.0 * np.pi * np.arange(m)[sl] / m)
+    w.flags.writeable = False
+    return sl, w
+
+
 def _refined_peak(w: FloatArray) -> FloatArray:
-    """Largest value of each row, refined by a parabola through the largest sample and its (circular) neighbours.
+    """Largest value of each row, refined through the largest sample and its two neighbours.
+
+    Three samples a, b, c of A·cos(φ(t − τ)) give cos φ = (a + c)/2b and A = √(b² + ((c − a)/(2 sin φ))²) exactly,
+    whatever the sampling; that is used where it applies (0 < cos φ < 1), a parabola otherwise.
 
     Parameters
     ----------
-    w : ndarray, shape (channels, samples) — a periodic, band-limited waveform
+    w : ndarray, shape (channels, samples) — a band-limited waveform sampled at ≥ 2 × its top frequency
     """
-    i = np.argmax(w, axis=-1)
+    i = np.argmax(w, axis=-1)  # (the refinement only uses in-range neighbours)
     rows = np.arange(w.shape[0])
     m = w.shape[-1]
-    a, b, c = w[rows, (i - 1) % m], w[rows, i], w[rows, (i + 1) % m]
-    denom = a - 2.0 * b + c
-    safe = np.where(denom < 0, denom, -1.0)
-    peak: FloatArray = np.where(denom < 0, b - 0.125 * (a - c) ** 2 / safe, b)
+    a, b, c = w[rows, np.maximum(i - 1, 0)], w[rows, i], w[rows, np.minimum(i + 1, m - 1)]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        cos_phi = (a + c) / (2.0 * b)
+        sin_phi = np.sqrt(np.maximum(1.0 - cos_phi**2, 0.0))
+        cosine = np.sqrt(b**2 + ((c - a) / (2.0 * sin_phi)) ** 2)
+        denom = a - 2.0 * b + c
+        parabola = np.where(denom < 0, b - 0.125 * (a - c) ** 2 / np.where(denom < 0, denom, -1.0), b)
+    use_cosine = (b > 0) & (cos_phi > 0) & (cos_phi < 1) & np.isfinite(cosine)
+    inner = (i > 0) & (i < m - 1)  # a largest sample on the edge has no neighbour to refine with
+    peak: FloatArray = np.where(inner, np.where(use_cosine, np.maximum(cosine, b), parabola), b)
     return peak
 
 

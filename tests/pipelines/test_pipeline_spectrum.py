@@ -162,3 +162,33 @@ def test_given_and_estimated_speeds_per_channel() -> None:
     assert r[0].shaft_hz == 25.0 and not r[0].shaft_estimated
     assert r[1].shaft_hz == pytest.approx(f0, rel=0.003) and r[1].shaft_estimated
     assert r[2].shaft_hz is None
+
+
+@settings(max_examples=40, deadline=None)
+@given(f_hz=st.floats(20.0, 990.0), phase=st.floats(0, 2 * math.pi), offset=st.floats(-1.0, 1.0))
+def test_velocity_peak_of_any_sine(f_hz: float, phase: float, offset: float) -> None:
+    # handbook: a sine of amplitude a has velocity amplitude a/(2πf), whatever its frequency relative to the lines
+    # (waveform from the windowed band lines, divided by the window over the frame's central half)
+    r = analyze_frames(np.sin(2 * np.pi * f_hz * T + phase) + offset, make_plan(FS, N), shaft_hz=[f_hz])[0]
+    assert r.velocity_peak_mm_s == pytest.approx(G_MM_S2 / (2 * math.pi * f_hz), rel=5e-3)
+
+
+@pytest.mark.parametrize("f_hz", [15.7, 24.7, 49.2, 97.1])
+def test_displacement_of_the_running_speed_among_other_lines(f_hz: float) -> None:
+    # handbook: displacement amplitude a/(2πf)²; a 1× line with a strong 3 kHz resonance (outside the band) and a
+    # 733 Hz line (inside, adding 2·0.3 g/(2π·733 Hz)² = 0.28 µm) reads its peak-to-peak within 1.5 % + that
+    x = 0.1 * np.sin(2 * np.pi * f_hz * T + 0.4) + np.sin(2 * np.pi * 3000.3 * T) + 0.3 * np.sin(2 * np.pi * 733.3 * T)
+    r = analyze_frames(x, make_plan(FS, N), shaft_hz=[f_hz])[0]
+    expected = 2 * 0.1 * G_MM_S2 / (2 * math.pi * f_hz) ** 2 * 1000
+    extra = 2 * 0.3 * G_MM_S2 / (2 * math.pi * 733.3) ** 2 * 1000
+    assert expected * 0.985 < r.displacement_pp_um < (expected + extra) * 1.015
+
+
+def test_slow_machine_displacement_with_the_2_hz_band() -> None:
+    # ISO 20816-1/-3: 2–1000 Hz for machines below 600 r/min; a 4.1 Hz (246 r/min) 1× line of 0.01 g
+    n = 4 * N
+    t = np.arange(n) / FS
+    r = analyze_frames(0.01 * np.sin(2 * np.pi * 4.1 * t), make_plan(FS, n, velocity_band_hz=(2.0, 1000.0),
+                                                                     speed_range_hz=(2.0, 10.0)), shaft_hz=[4.1])[0]
+    assert r.displacement_pp_um == pytest.approx(2 * 0.01 * G_MM_S2 / (2 * math.pi * 4.1) ** 2 * 1000, rel=0.01)
+    assert r.velocity_rms_mm_s == pytest.approx(velocity_rms_of_sine(0.01, 4.1), rel=0.01)
