@@ -5,9 +5,13 @@ within a bounded time); SIGHUP reloads the configuration (an invalid file is rej
 running configuration stays).  Under systemd (``$NOTIFY_SOCKET``) it reports READY/STATUS/STOPPING and pings the
 watchdog from the event loop.
 
+``run`` refuses to start (one line, exit status 2) when the configuration names secret files that are missing or
+a state directory it cannot create or write (``/var/lib/edgevib`` by default outside systemd: give ``--state-dir``).
+
 ``demo`` runs the daemon on the simulator's ``demo`` scenario in-process (no broker, no configuration file),
 serves metrics on loopback and shows a live table refreshed every second (plain lines when stdout is not a
-terminal).  edgevib monitors and advises; it is not a machinery protection system.
+terminal).  Its state (alarm database, captures) lives in a temporary directory removed when it stops; it never
+writes to the default state directory.  edgevib monitors and advises; it is not a machinery protection system.
 """
 
 from __future__ import annotations
@@ -47,6 +51,7 @@ __all__ = [
     "run_check_config",
     "run_demo",
     "run_run",
+    "state_dir_problem",
 ]
 
 log = get_logger("edgevib.service")
@@ -119,12 +124,30 @@ def run_run(args: argparse.Namespace) -> int:
     except ConfigError as exc:
         print(f"edgevib run: {args.config}: {exc}", file=sys.stderr)
         return 2
+    problem = state_dir_problem(cfg.site.state_dir)
+    if problem is not None:
+        how = "" if getattr(args, "state_dir", None) is not None else \
+            "; give --state-dir DIR or set [site] state_dir (under systemd, StateDirectory= provides it)"
+        print(f"edgevib run: {problem}{how}", file=sys.stderr)
+        return 2
     configure_logging(cfg.logging.level, cfg.logging.format)
     try:
         return asyncio.run(serve(cfg, config_path=args.config, metrics_listen=args.metrics_listen, args=args))
     except ConfigError as exc:
         print(f"edgevib run: {args.config}: {exc}", file=sys.stderr)
         return 2
+
+
+def state_dir_problem(path: str) -> str | None:
+    """Why the daemon could not keep its state in ``path`` (created if missing), or ``None`` when it can."""
+    p = Path(path)
+    try:
+        p.mkdir(parents=True, exist_ok=True)
+        with tempfile.TemporaryFile(dir=p, prefix=".edgevib-probe-"):
+            pass
+    except OSError as exc:
+        return f"state directory {p} is not writable ({exc.strerror or type(exc).__name__})"
+    return None
 
 
 def _notifier() -> Any:

@@ -115,6 +115,48 @@ def test_check_config_inside_the_unit_expands_the_variables(tmp_path: Path) -> N
     assert "correct-horse-battery" not in proc.stdout + proc.stderr
 
 
+def test_run_refuses_a_state_dir_it_cannot_write(tmp_path: Path) -> None:
+    blocker = tmp_path / "not-a-dir"
+    blocker.write_text("")  # a directory cannot be made under a regular file, not even by root
+    import tomllib
+
+    doc = tomllib.loads(EXAMPLE.read_text())
+    doc["site"]["state_dir"] = str(blocker / "state")
+    path = tmp_path / "plant.toml"
+    path.write_text(_toml(doc))
+    proc = edgevib("run", "--config", str(path))
+    assert proc.returncode == 2, proc.stderr
+    assert proc.stderr.count("\n") == 1 and "Traceback" not in proc.stderr
+    assert f"state directory {blocker / 'state'} is not writable" in proc.stderr and "--state-dir" in proc.stderr
+    proc = edgevib("run", "--config", str(path), "--state-dir", str(blocker / "other"))
+    assert proc.returncode == 2 and proc.stderr.count("\n") == 1 and str(blocker / "other") in proc.stderr
+
+
+def test_run_without_state_dir_checks_the_default(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+                                                   capsys: pytest.CaptureFixture[str]) -> None:
+    """No state_dir in the file and no --state-dir: the default (/var/lib/edgevib outside systemd) is checked;
+    here it is pointed under a regular file so that the test never touches /var/lib."""
+    import argparse
+    import tomllib
+
+    from edgevib.daemon import config as config_module
+    from edgevib.daemon.service import run_run
+
+    blocker = tmp_path / "not-a-dir"
+    blocker.write_text("")
+    monkeypatch.setattr(config_module, "DEFAULT_STATE_DIR", str(blocker / "edgevib"))
+    monkeypatch.delenv("STATE_DIRECTORY", raising=False)
+    doc = tomllib.loads(EXAMPLE.read_text())
+    doc["site"].pop("state_dir")
+    path = tmp_path / "plant.toml"
+    path.write_text(_toml(doc))
+    args = argparse.Namespace(config=path, metrics_listen=None, state_dir=None, log_level=None)
+    assert run_run(args) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and f"state directory {blocker / 'edgevib'} is not writable" in err
+    assert "give --state-dir DIR" in err
+
+
 def _toml(doc: dict[str, Any]) -> str:
     from edgevib.daemon.config import dump_toml
 
