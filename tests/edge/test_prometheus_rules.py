@@ -17,7 +17,8 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from conftest import REPO
+
+REPO = Path(__file__).resolve().parents[2]  # the repository (not "from conftest": tests/simulator has one too)
 
 RULES = REPO / "config" / "prometheus" / "edgevib-rules.yml"
 DASHBOARD = REPO / "config" / "grafana" / "edgevib-overview.json"

@@ -12,7 +12,8 @@ import sys
 from pathlib import Path
 
 import pytest
-from conftest import REPO
+
+REPO = Path(__file__).resolve().parents[2]  # the repository (not "from conftest": tests/simulator has one too)
 
 UNITS = REPO / "systemd"
 ANALYZE = shutil.which("systemd-analyze")
