@@ -72,7 +72,7 @@ FAMILIES: tuple[str, ...] = ("ftf", "bpfo", "bpfi", "bsf")
 ``expected_hz``/``frequency_hz`` are the 2 × BSF line."""
 SPEED_HARMONICS = 3  # harmonics used by the speed estimate
 MIN_SAMPLES = 64
-PEAK_OVERSAMPLING = 4.0  # waveforms sampled at ≥ 4 × the band's upper edge; peaks refined by a parabola
+PEAK_OVERSAMPLING = 3.0  # waveforms sampled at ≥ 3 × the band's upper edge; peaks refined (see _refined_peak)
 ANTI_ALIAS_RATIO = 2.56  # usable bandwidth fs/2.56 of an anti-aliased acquisition (common practice)
 
 
