@@ -11,7 +11,7 @@ import argparse
 import importlib
 import sys
 from collections.abc import Callable, Sequence
-from typing import Any
+from typing import Any, NoReturn
 
 __all__ = ["main"]
 
@@ -39,8 +39,15 @@ def _load(name: str) -> tuple[Callable[[argparse.ArgumentParser], None] | None, 
     return getattr(module, f"configure_{suffix}", None), getattr(module, f"run_{suffix}", None)
 
 
+class _Parser(argparse.ArgumentParser):
+    """An argument parser whose errors are one line on stderr and exit code 2 (no usage dump)."""
+
+    def error(self, message: str) -> NoReturn:
+        self.exit(2, f"{self.prog}: {message}\n")
+
+
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="edgevib",
         description="Streaming vibration monitor for rotating machines. edgevib monitors and advises; "
         "it is not a machinery protection (trip) system.",
@@ -48,7 +55,7 @@ def build_parser() -> argparse.ArgumentParser:
     from edgevib.daemon import __version__
 
     parser.add_argument("--version", action="version", version=f"edgevib {__version__}")
-    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     for name, (_, help_text) in COMMANDS.items():
         configure, runner = _load(name)
         p = sub.add_parser(name, help=help_text, description=help_text)

@@ -89,8 +89,10 @@ class FamilyResult:
     """One bearing defect family in the envelope spectrum.
 
     ``frequency_hz`` is where the fundamental was found (within the slip tolerance of the kinematic value),
-    ``amplitude_g`` its envelope-spectrum amplitude, ``snr_db`` the family's level over the local spectral floor,
-    ``harmonics_found`` how many of the searched harmonics stand clearly above that floor.
+    ``amplitude_g`` its envelope-spectrum amplitude, ``snr_db`` the fundamental's level over the local spectral
+    floor (median within ±20 % of the line), ``harmonics_found`` how many of the searched harmonics stand at least
+    10 dB above their floor.  The ``bsf`` family is searched and reported at 2×BSF, where a rolling-element defect
+    shows (it strikes both races).
     """
 
     expected_hz: float
