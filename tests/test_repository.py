@@ -3,8 +3,9 @@
 from __future__ import annotations
 
 import re
+from pathlib import Path
 
-from conftest import REPO
+REPO = Path(__file__).resolve().parent.parent
 
 
 def _quick_start_commands() -> list[str]:
