@@ -30,6 +30,8 @@ def configure_alarms(parser: argparse.ArgumentParser) -> None:
     where.add_argument("--state-dir", default=None,
                        help="the daemon's state directory (default: $EDGEVIB_STATE_DIR or /var/lib/edgevib)")
     where.add_argument("--socket", default=None, help="the control socket path (overrides --state-dir)")
+    where.add_argument("--config", default=None,
+                       help="the daemon's configuration file (its [alarms] socket and state_dir are used)")
     parser.add_argument("--json", action="store_true", help="print the daemon's JSON response")
     parser.add_argument("--timeout", type=float, default=10.0, help="seconds to wait for the daemon")
     sub = parser.add_subparsers(dest="alarm_cmd", metavar="ACTION", required=True)
@@ -54,6 +56,13 @@ def configure_alarms(parser: argparse.ArgumentParser) -> None:
 def _socket_path(args: argparse.Namespace) -> Path:
     if args.socket:
         return Path(args.socket)
+    if args.config:
+        from edgevib.daemon.config import load_config
+
+        settings = load_config(args.config).alarms
+        socket_path = getattr(settings, "socket_path", None)
+        if socket_path:
+            return Path(socket_path)
     state = args.state_dir or os.environ.get("EDGEVIB_STATE_DIR") or "/var/lib/edgevib"
     return Path(state) / "alarms.sock"
 
@@ -102,13 +111,18 @@ def _print_list(result: dict[str, Any]) -> None:
 
 def run_alarms(args: argparse.Namespace) -> int:
     from edgevib.daemon.alarms.control import CommandError, request
+    from edgevib.daemon.interfaces import ConfigError
 
-    path = _socket_path(args)
+    try:
+        path = _socket_path(args)
+    except (ConfigError, OSError) as exc:
+        print(f"edgevib alarms: {exc}", file=sys.stderr)
+        return 2
     req = _request(args)
     try:
         resp = request(path, req, timeout_s=args.timeout)
     except FileNotFoundError:
-        print(f"edgevib alarms: no daemon socket at {path} (is edgevib running? see --state-dir/--socket)",
+        print(f"edgevib alarms: no daemon socket at {path} (is edgevib running? see --state-dir/--socket/--config)",
               file=sys.stderr)
         return 2
     except (OSError, ValueError, CommandError) as exc:

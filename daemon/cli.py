@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import os
 import sys
 from collections.abc import Callable, Sequence
 from typing import Any, NoReturn
@@ -80,6 +81,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         return int(args._runner(args))
     except KeyboardInterrupt:
         return 130
+    except BrokenPipeError:
+        # the reader of our output went away (`edgevib check-config FILE | head`): not an error of ours
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 0
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -1031,6 +1031,8 @@ def _parse_config(doc: dict[str, Any], base: Path, digest: str) -> Config:
         if po is not None:
             plisten = po.str("listen", "127.0.0.1:4841")
             phost, pport = parse_listen(plisten, po.key("listen"))
+            if pport == 0:
+                raise ConfigError(po.key("listen"), "the OPC UA server needs a fixed port (1..65535), not 0")
             publish_opcua = PublishOpcUaConfig(enabled=po.bool("enabled", False), listen=plisten, host=phost,
                                                port=pport, namespace=po.str("namespace", "urn:edgevib:indicators"))
             po.done()
