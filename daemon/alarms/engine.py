@@ -327,7 +327,8 @@ class AlarmLayer:
         await self._commit(pending)
 
     def _health(self, results: list[FrameResult]) -> list[SensorHealth | None]:
-        """Health of every frame, batched over points that share a spec, length and rate."""
+        """Health of every frame, batched over points that share a spec, length and rate (in a worker thread;
+        the r.m.s. comes from the frame's indicators)."""
         out: list[SensorHealth | None] = [None] * len(results)
         if not self.settings.health_enabled:
             return out
@@ -337,8 +338,10 @@ class AlarmLayer:
             groups.setdefault((spec, int(np.asarray(r.samples).size), r.fs_hz), []).append(i)
         for (spec, _, fs), idx in groups.items():
             try:
+                rms = np.array([results[i].indicators.acceleration_rms_g for i in idx], dtype=np.float64)
                 res = check_health(np.stack([np.asarray(results[i].samples, dtype=np.float64).reshape(-1)
-                                             for i in idx]), fs, spec)
+                                             for i in idx]), fs, spec,
+                                   rms_g=rms if np.all(np.isfinite(rms)) else None)
             except PipelineError as exc:
                 self.health_errors += 1
                 log.warning("sensor health check failed", points=[results[i].point_id for i in idx], error=str(exc))

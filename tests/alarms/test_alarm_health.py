@@ -111,3 +111,23 @@ def test_bad_input_named() -> None:
         check_health(np.zeros(4), FS)
     with pytest.raises(SignalError, match="2 values for 1 channels"):
         check_health(healthy(), FS, bias_v=[10.0, 10.0])
+
+
+def test_counting_screen_gives_the_exact_verdicts() -> None:
+    # The spike screen proves rows spike-free by counting; on every kind of row it must agree with the exact
+    # median test (screen=False), and the r.m.s. taken from the indicators must not change a verdict.
+    rng = np.random.default_rng(10)
+    rows = [healthy(11), bearing_impacts(12), bearing_impacts(13, resonance_hz=FS / 4), 0.3 * rng.standard_normal(N),
+            np.sign(np.sin(2 * np.pi * 30 * T)) + 0.001 * rng.standard_normal(N)]
+    spiky = healthy(14)
+    spiky[[500, 9000]] += [5.0, -6.0]
+    borderline = healthy(15)
+    borderline[4000] += 9.5 * 1.4826 * np.median(np.abs(borderline - np.median(borderline)))  # just under 10 σ_r
+    rows += [spiky, borderline, 0.02 * rng.standard_normal(N) + (rng.random(N) < 0.001) * 1.5]
+    x = np.stack(rows)
+    exact = check_health(x, FS, screen=False)
+    fast = check_health(x, FS, rms_g=x.std(axis=1))
+    assert [h.faults for h in fast] == [h.faults for h in exact]
+    assert [h.spike_count for h in fast] == [h.spike_count for h in exact]
+    assert exact[5].spike_count == 2 and exact[6].spike_count == 0
+    assert_allclose([h.step_g for h in fast], [h.step_g for h in exact], rtol=1e-12)
