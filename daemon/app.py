@@ -4,11 +4,28 @@ Data flow (all on one asyncio event loop, numerics in a thread pool)::
 
     sources ──payload/block/speed──▶ BlockIngest (frames.py) ──frames──▶ per-point bounded queues
         ──batches of points sharing a plan──▶ ThreadPoolExecutor: analyze_frames(stack, plan, shaft_hz)
-        ──FrameResult list──▶ every FrameSink (Prometheus, MQTT indicators, OPC UA server, alarms…)
+        ──FrameResult list──▶ one delivery queue and task per FrameSink (Prometheus, MQTT, OPC UA, alarms…)
 
-A point is in at most one analysis batch at a time, so its frames (and trend) stay in order; a sink that fails
-is logged (rate-limited) and never stops the others.  :meth:`Daemon.reload` applies a new configuration while
-points whose configuration is unchanged keep their assembly buffers, queues and trends.
+A point is in at most one analysis batch at a time, so its frames (and trend) stay in order.  An analysis
+worker slot is freed as soon as the analysis returns: the results go to every sink's own queue and a task per
+sink hands them over, so a slow sink delays neither the next analysis batch nor the other sinks.  Ordering and
+bounds (:class:`SinkChannel`):
+
+* every sink receives a point's results in frame order (one FIFO per sink, filled in analysis order, and a point
+  is never in two batches at once);
+* a *lossy* sink (the default: the Prometheus exposition, MQTT and OPC UA publishing show the latest values)
+  keeps at most :data:`SINK_BACKLOG_PER_POINT` undelivered results per point (or the newest batch's results of
+  that point when there are more: a sink that keeps up misses nothing); when it falls further behind, the
+  oldest undelivered ones are dropped and counted (``Stats.sink_dropped[(sink, point)]``);
+* a *lossless* sink (attribute ``lossless = True``: the alarm layer, whose debounce, baselines and sensor-health
+  runs must see every analysed frame in order) drops nothing.  Its queue is bounded instead by pausing the
+  scheduler: while it holds more than :data:`LOSSLESS_BACKLOG` results no new analysis batch starts, frames wait
+  in the per-point ingest queues, and those drop their oldest frames (counted as ``frames_dropped``) as they
+  always do when analysis falls behind.  So a frame is either seen by every sink that must see it or dropped
+  before analysis for everyone — never silently missing from the alarm history only.
+
+A sink that fails is logged (rate-limited) and never stops the others.  :meth:`Daemon.reload` applies a new
+configuration while points whose configuration is unchanged keep their assembly buffers, queues and trends.
 
 Seams for other layers: ``Daemon.add_sink`` (before ``start``); the alarm layer's factory
 ``edgevib.daemon.alarms.sink.create_sink(config, daemon) -> FrameSink | None`` is used when it exists; any sink
@@ -23,6 +40,7 @@ import contextlib
 import importlib
 import math
 import time
+from collections import deque
 from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -44,11 +62,13 @@ from edgevib.daemon.interfaces import ConfigError, FrameResult, FrameSink, Sourc
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 from edgevib.pipelines.types import AnalysisPlan, FrameIndicators, PipelineError
 
-__all__ = ["AnalyzeFn", "Daemon", "run"]
+__all__ = ["LOSSLESS_BACKLOG", "SINK_BACKLOG_PER_POINT", "AnalyzeFn", "Daemon", "SinkChannel", "run"]
 
 AnalyzeFn = Callable[[npt.NDArray[np.float64], AnalysisPlan, "npt.NDArray[np.float64] | None"],
                      list[FrameIndicators]]
 MAX_BATCH = 64
+SINK_BACKLOG_PER_POINT = 4  # undelivered results a lossy sink keeps per point before dropping the oldest
+LOSSLESS_BACKLOG = 4 * MAX_BATCH  # undelivered results of a lossless sink above which analysis pauses
 log = get_logger("edgevib.daemon")
 
 
@@ -78,6 +98,93 @@ def _optional_attr(module: str, attr: str) -> Any:
             return None
         raise
     return getattr(mod, attr, None)
+
+
+class SinkChannel:
+    """The delivery queue and task of one sink (see the module docstring for ordering and bounds)."""
+
+    def __init__(self, sink: FrameSink, stats: Stats, rlog: RateLimitedLogger,
+                 on_delivered: Callable[[], None]) -> None:
+        self.sink = sink
+        self.name = type(sink).__name__
+        self.lossless = bool(getattr(sink, "lossless", False))
+        self.stats = stats
+        self.rlog = rlog
+        self._on_delivered = on_delivered
+        self._fifo: deque[FrameResult] = deque()  # lossless
+        self._per_point: dict[str, deque[FrameResult]] = {}  # lossy, insertion-ordered
+        self._queued = 0
+        self._busy = 0  # results inside the current on_frames call
+        self._event = asyncio.Event()
+        self.task: asyncio.Task[None] | None = None
+
+    @property
+    def backlog(self) -> int:
+        """Results queued or being handed over."""
+        return self._queued + self._busy
+
+    def put(self, results: list[FrameResult]) -> None:
+        if self.lossless:
+            self._fifo.extend(results)
+            self._queued += len(results)
+        else:
+            new: dict[str, int] = {}
+            for r in results:
+                new[r.point_id] = new.get(r.point_id, 0) + 1
+                self._per_point.setdefault(r.point_id, deque()).append(r)
+            self._queued += len(results)
+            for pid, n_new in new.items():  # a batch is kept whole (a sink that keeps up misses nothing)
+                q = self._per_point[pid]
+                excess = len(q) - max(SINK_BACKLOG_PER_POINT, n_new)
+                for _ in range(excess):
+                    q.popleft()
+                if excess > 0:
+                    self._queued -= excess
+                    Stats.inc(self.stats.sink_dropped, (self.name, pid), excess)
+        self._event.set()
+
+    def _take(self) -> list[FrameResult]:
+        if self.lossless:
+            out = list(self._fifo)
+            self._fifo.clear()
+        else:
+            out = [r for q in self._per_point.values() for r in q]
+            self._per_point.clear()
+        self._queued = 0
+        return out
+
+    def start(self) -> None:
+        self.task = asyncio.get_running_loop().create_task(self._run(), name=f"edgevib-sink-{self.name}")
+
+    async def _run(self) -> None:
+        while True:
+            await self._event.wait()
+            self._event.clear()
+            while self._queued:
+                batch = self._take()
+                self._busy = len(batch)
+                try:
+                    await self.sink.on_frames(batch)
+                except asyncio.CancelledError:
+                    raise
+                except Exception as exc:
+                    self.rlog.error(("sink", self.name), "sink failed", sink=self.name, error=repr(exc))
+                finally:
+                    self._busy = 0
+                    self._on_delivered()
+
+    async def drain(self, timeout_s: float) -> None:
+        """Wait until everything queued has been handed over (bounded), then end the task."""
+        with contextlib.suppress(TimeoutError):
+            async with asyncio.timeout(max(0.0, timeout_s)):
+                while self.backlog:
+                    await asyncio.sleep(0.01)
+        if self.task is not None:
+            self.task.cancel()
+            await asyncio.gather(self.task, return_exceptions=True)
+            self.task = None
+        if self.backlog:
+            log.warning("sink did not take every result before stopping", sink=self.name, left=self.backlog)
 
 
 @dataclass
@@ -117,7 +224,8 @@ class Daemon:
         self._given_sources = list(sources) if sources is not None else None
         self._source_tasks: dict[str, asyncio.Task[None]] = {}
         self._busy: set[str] = set()
-        self._inflight: set[asyncio.Task[None]] = set()
+        self._batches: set[asyncio.Task[None]] = set()
+        self._channels: list[SinkChannel] = []
         self._wake = asyncio.Event()
         self._scheduler: asyncio.Task[None] | None = None
         self._executor: ThreadPoolExecutor | None = None
@@ -209,6 +317,9 @@ class Daemon:
                     await sink.stop()
             self._executor.shutdown(wait=False, cancel_futures=True)
             raise
+        self._channels = [SinkChannel(sink, self.stats, self.rlog, self._wake.set) for sink in self.sinks]
+        for ch in self._channels:
+            ch.start()
         self._scheduler = loop.create_task(self._schedule(), name="edgevib-scheduler")
         self.sources = self._make_sources(self.config)
         for src in self.sources:
@@ -252,8 +363,10 @@ class Daemon:
         if self._scheduler is not None:
             self._scheduler.cancel()
             await asyncio.gather(self._scheduler, return_exceptions=True)
-        if self._inflight:
-            await asyncio.wait(self._inflight, timeout=max(0.1, deadline - time.monotonic()))
+        if self._batches:
+            await asyncio.wait(self._batches, timeout=max(0.1, deadline - time.monotonic()))
+        for ch in self._channels:
+            await ch.drain(max(0.1, deadline - time.monotonic()))
         for sink in reversed(self.sinks):
             try:
                 await asyncio.wait_for(sink.stop(), max(0.1, deadline - time.monotonic()))
@@ -272,6 +385,17 @@ class Daemon:
             await self.stop()
 
     # ------------------------------------------------------------------------------------------ status
+
+    @property
+    def _inflight(self) -> set[asyncio.Task[None]]:
+        """Analysis batches running and sink tasks with results still to hand over (empty when idle)."""
+        busy = {ch.task for ch in self._channels if ch.backlog and ch.task is not None}
+        return self._batches | busy
+
+    @property
+    def idle(self) -> bool:
+        """No analysis batch running and every sink has taken every result."""
+        return not self._inflight
 
     @property
     def ready(self) -> bool:
@@ -346,17 +470,21 @@ class Daemon:
         while True:
             await self._wake.wait()
             self._wake.clear()
-            while len(self._inflight) < self.config.analysis.workers:
+            while len(self._batches) < self.config.analysis.workers and not self._held_back():
                 batch = self._take_batch()
                 if batch is None:
                     break
                 task = asyncio.get_running_loop().create_task(self._run_batch(*batch))
-                self._inflight.add(task)
+                self._batches.add(task)
                 task.add_done_callback(self._batch_done)
 
     def _batch_done(self, task: asyncio.Task[None]) -> None:
-        self._inflight.discard(task)
+        self._batches.discard(task)
         self._wake.set()
+
+    def _held_back(self) -> bool:
+        """A lossless sink (the alarm layer) is too far behind: let frames wait (and drop) before analysis."""
+        return any(ch.lossless and ch.backlog > LOSSLESS_BACKLOG for ch in self._channels)
 
     def _take_batch(self) -> tuple[AnalysisPlan, list[FrameJob]] | None:
         """The queued frames of every idle point that shares the plan of the next point in round-robin order."""
@@ -398,10 +526,10 @@ class Daemon:
                                 error=repr(exc))
                 return
             results = self._results(jobs, indicators)
+            if results:
+                self._publish(results)
         finally:
             self._busy.difference_update(pids)
-        if results:
-            await self._publish(results)
 
     def _results(self, jobs: list[FrameJob], indicators: list[FrameIndicators]) -> list[FrameResult]:
         results = []
@@ -421,13 +549,10 @@ class Daemon:
             results.append(r)
         return results
 
-    async def _publish(self, results: list[FrameResult]) -> None:
-        for sink in self.sinks:
-            try:
-                await sink.on_frames(results)
-            except Exception as exc:
-                self.rlog.error(("sink", type(sink).__name__), "sink failed", sink=type(sink).__name__,
-                                error=repr(exc))
+    def _publish(self, results: list[FrameResult]) -> None:
+        """Queue results for every sink (in analysis order, before the points are released: frame order holds)."""
+        for ch in self._channels:
+            ch.put(results)
 
 
 # ---------------------------------------------------------------------------------------------- factories

@@ -89,6 +89,8 @@ class Stats:
     frames_dropped: dict[str, int] = field(default_factory=dict)
     gaps: dict[str, int] = field(default_factory=dict)
     analysis_errors: dict[str, int] = field(default_factory=dict)
+    sink_dropped: dict[tuple[str, str], int] = field(default_factory=dict)  # (sink class, point): results a
+    # lossy sink skipped because it fell behind (app.SinkChannel)
     connected: dict[str, bool] = field(default_factory=dict)
     reconnects: dict[str, int] = field(default_factory=dict)
     ever_connected: set[str] = field(default_factory=set)

@@ -145,8 +145,12 @@ class AlarmLayer:
     """The alarm layer (a :class:`~edgevib.daemon.interfaces.FrameSink`).
 
     ``config`` is the daemon configuration; ``settings`` the parsed alarm settings (default: ``config.alarms``).
-    ``registry``: a Prometheus registry to register :attr:`collector` on at start.
+    ``registry``: a Prometheus registry to register :attr:`collector` on at start.  The layer is a *lossless*
+    sink: the daemon hands it every analysed frame of a point in order and pauses analysis rather than skip one
+    (``edgevib.daemon.app``), since debounce counts, baselines and sensor-recovery runs depend on each frame.
     """
+
+    lossless = True
 
     def __init__(self, config: Any, settings: AlarmSettings | None = None, *, registry: Any = None,
                  clock: Callable[[], float] = time.time, monotonic: Callable[[], float] = time.monotonic) -> None:

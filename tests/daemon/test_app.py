@@ -220,3 +220,94 @@ def test_one_startup_warning_for_a_point_without_envelope_band(tmp_path: Path) -
     warnings = [e for e in logs if e["event"] == "no envelope indicators for this point"]
     assert [e["point"] for e in warnings] == ["F-201-NDE-V"]
     assert "1000 Hz" in warnings[0]["reason"]
+
+
+class Gate(Probe):
+    """A sink that blocks inside its first ``on_frames`` until released (a slow historian, a busy alarm layer)."""
+
+    def __init__(self, lossless: bool = False) -> None:
+        super().__init__()
+        self.lossless = lossless
+        self.release = asyncio.Event()
+        self.entered = asyncio.Event()
+
+    async def on_frames(self, results: list[FrameResult]) -> None:
+        self.entered.set()
+        await self.release.wait()
+        await super().on_frames(results)
+
+
+def frames_of(blocks: int, frame: int = 16384, hop: int = 8192) -> int:
+    return (blocks * BLOCK - frame) // hop + 1
+
+
+async def gated_daemon(tmp_path: Path, **analysis: Any) -> tuple[Daemon, Probe, Gate, Gate]:
+    cfg = config(tmp_path, **analysis)
+    d = Daemon(cfg, registry=CollectorRegistry(), serve_metrics=False, sources=[])
+    probe, lossy, lossless = Probe(), Gate(), Gate(lossless=True)
+    for s in (lossy, lossless, probe):
+        d.add_sink(s)
+    await d.start()
+    return d, probe, lossy, lossless
+
+
+async def test_blocked_sinks_do_not_hold_analysis_and_keep_frame_order(tmp_path: Path) -> None:
+    from edgevib.daemon.app import SINK_BACKLOG_PER_POINT
+
+    d, probe, lossy, lossless = await gated_daemon(tmp_path, queue_frames=64)
+    pid = "P-101-DE-H"
+    try:
+        # One frame per analysis batch: 4 blocks of 4096 make the first 16384-sample frame, every 2 more the next.
+        seq = 0
+        total = 12
+        for k in range(total):
+            for _ in range(4 if k == 0 else 2):
+                d.ingest.block("scripted", sine_block("QL-P101-DE-H", seq, 1.0, 50.0), 0)
+                seq += 1
+            # Both gates stay closed, yet each frame is analysed and reaches the other sink.
+            await wait_for(lambda n=k + 1: sum(r.point_id == pid for r in probe.results) == n)
+        assert lossy.entered.is_set() and lossless.entered.is_set() and not lossy.results
+        lossy.release.set()
+        lossless.release.set()
+        await wait_for(lambda: d.idle)
+        for sink in (probe, lossy, lossless):
+            t = [r.t_end_ns for r in sink.results if r.point_id == pid]
+            assert t == sorted(t) and len(set(t)) == len(t)  # frame order, no repeats
+        assert [r.t_end_ns for r in lossless.results] == [r.t_end_ns for r in probe.results]  # lossless: all
+        got = [r.t_end_ns for r in lossy.results if r.point_id == pid]
+        # the blocked call's frame, then only the newest SINK_BACKLOG_PER_POINT; the older ones dropped and counted
+        want = [r.t_end_ns for r in probe.results][:1] + [r.t_end_ns for r in probe.results][-SINK_BACKLOG_PER_POINT:]
+        assert got == want
+        assert d.stats.sink_dropped[("Gate", pid)] == total - len(want)
+    finally:
+        lossy.release.set()
+        lossless.release.set()
+        await d.stop()
+
+
+async def test_a_lossless_sink_behind_pauses_analysis_and_misses_nothing(tmp_path: Path,
+                                                                        monkeypatch: pytest.MonkeyPatch) -> None:
+    import edgevib.daemon.app as app
+
+    monkeypatch.setattr(app, "LOSSLESS_BACKLOG", 2)
+    d, probe, lossy, lossless = await gated_daemon(tmp_path, queue_frames=4)
+    lossy.release.set()
+    pid = "P-101-DE-H"
+    try:
+        blocks = 40
+        for seq in range(blocks):
+            d.ingest.block("scripted", sine_block("QL-P101-DE-H", seq, 1.0, 50.0), 0)
+        total = frames_of(blocks)  # 19 frames
+        queue = d.ingest.streams[pid].queue
+        await wait_for(lambda: d.stats.frames_analysed.get(pid, 0) + d.stats.frames_dropped.get(pid, 0)
+                       + len(queue) == total and d._held_back() and not d._batches)
+        analysed = d.stats.frames_analysed[pid]
+        assert analysed < total and d.stats.frames_dropped.get(pid, 0) > 0  # dropped before analysis, counted
+        lossless.release.set()
+        await wait_for(lambda: d.idle and not queue)
+        seen = [r.t_end_ns for r in lossless.results if r.point_id == pid]
+        assert len(seen) == d.stats.frames_analysed[pid] and seen == sorted(seen)  # every analysed frame, in order
+        assert [r.t_end_ns for r in probe.results if r.point_id == pid] == seen
+    finally:
+        lossless.release.set()
+        await d.stop()
