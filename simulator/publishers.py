@@ -10,7 +10,9 @@ OPC UA (asyncua server, security policy None, anonymous; namespace ``urn:edgevib
     Stable string node ids under Objects/<site>/<machine>/<point>::
 
         ns=2;s=quarry-lane/P-101/P-101-DE-H/samples     Double[block_samples], g; written once per block, its
-                                                        SourceTimestamp = the block's first sample time
+                                                        SourceTimestamp = the block's END: t0 + n/fs, the
+                                                        time just after its last sample (what the daemon's
+                                                        OPC UA source assumes by default)
         ns=2;s=quarry-lane/P-101/P-101-DE-H/samples/fs_hz          property, Double, Hz
         ns=2;s=quarry-lane/P-101/P-101-DE-H/samples/unit           property, String "g"
         ns=2;s=quarry-lane/P-101/P-101-DE-H/samples/block_samples  property, UInt32
@@ -18,6 +20,9 @@ OPC UA (asyncua server, security policy None, anonymous; namespace ``urn:edgevib
         ns=2;s=quarry-lane/P-101/P-101-DE-H/seq                    UInt64, written just before samples
         ns=2;s=quarry-lane/P-101/P-101-DE-H/t0_ns                  Int64, written just before samples
         ns=2;s=quarry-lane/P-101/speed_rpm                         Double, r/min
+
+    Until its first write every variable holds no value with status ``BadWaitingForInitialData``, so a client that
+    connects before the first block or speed reads "no data yet", never a block of zeros or a stopped machine.
 
 WAV
     One mono IEEE-float (format 3) 32-bit WAV per point, file name ``<point id>.wav``, samples in g at the
@@ -182,6 +187,9 @@ class MqttPublisher:
 # --------------------------------------------------------------------------------------------- OPC UA
 
 
+_EPOCH = dt.datetime(1970, 1, 1, tzinfo=dt.UTC)
+
+
 class OpcUaPublisher:
     """An asyncua server with one array variable per point (see the module docstring for node ids)."""
 
@@ -218,12 +226,14 @@ class OpcUaPublisher:
 
         site = await server.nodes.objects.add_object(nid(sc.site), f"{idx}:{sc.site}")
         machines = {}
+        waiting: list[Any] = []
         for m in sc.machines:
             mobj = await site.add_object(nid(f"{sc.site}/{m.machine_id}"), f"{idx}:{m.machine_id}")
             machines[m.machine_id] = mobj
             self._speed_nodes[m.machine_id] = await mobj.add_variable(
                 nid(f"{sc.site}/{m.machine_id}/speed_rpm"), f"{idx}:speed_rpm",
                 ua.Variant(0.0, ua.VariantType.Double))
+            waiting.append(self._speed_nodes[m.machine_id])
         for p in sc.points:
             base = f"{sc.site}/{p.machine_id}/{p.point_id}"
             pobj = await machines[p.machine_id].add_object(nid(base), f"{idx}:{p.point_id}")
@@ -242,6 +252,11 @@ class OpcUaPublisher:
             seq = await pobj.add_variable(nid(f"{base}/seq"), f"{idx}:seq", ua.Variant(0, ua.VariantType.UInt64))
             t0 = await pobj.add_variable(nid(f"{base}/t0_ns"), f"{idx}:t0_ns", ua.Variant(0, ua.VariantType.Int64))
             self._nodes[p.sensor_id] = (samples, seq, t0)
+            waiting += [samples, seq, t0]
+        # The placeholders above only fix each variable's data type: replace them by "no value yet".
+        no_data = ua.StatusCode(ua.StatusCodes.BadWaitingForInitialData)
+        for node in waiting:
+            await server.write_attribute_value(node.nodeid, ua.DataValue(StatusCode=no_data))
         try:
             await server.start()
         except OSError as exc:
@@ -252,7 +267,9 @@ class OpcUaPublisher:
         ua: Any = importlib.import_module("asyncua.ua")
 
         samples, seq, t0 = self._nodes[block.sensor_id]
-        ts = dt.datetime.fromtimestamp(block.t0_ns / 1e9, tz=dt.UTC)
+        # SourceTimestamp = the block's end, t0 + n/fs (exact to the microsecond a datetime holds).
+        end_ns = block.t0_ns + round(np.asarray(block.samples).size * 1e9 / block.fs_hz)
+        ts = _EPOCH + dt.timedelta(microseconds=end_ns // 1000)
         await self._server.write_attribute_value(seq.nodeid, ua.DataValue(ua.Variant(block.seq, ua.VariantType.UInt64)))
         await self._server.write_attribute_value(t0.nodeid, ua.DataValue(ua.Variant(block.t0_ns, ua.VariantType.Int64)))
         await self._server.write_attribute_value(

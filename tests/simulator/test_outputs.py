@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import asyncio
+import datetime as dt
 import json
 import threading
 import time
@@ -146,10 +147,42 @@ async def test_opcua_server_readable_by_client():
                 expected = ref.block(p.point_id, seq)
                 assert fs == p.fs_hz and unit == "g" and values.size == p.block_samples
                 assert t0 == expected.t0_ns
-                assert round(dv.SourceTimestamp.timestamp() * 1e3) == round(expected.t0_ns / 1e6)
+                # the stamp is the block's end, t0 + n/fs (what the daemon's OPC UA source assumes by default)
+                end_ns = expected.t0_ns + round(p.block_samples * 1e9 / p.fs_hz)
+                stamp = dv.SourceTimestamp.replace(tzinfo=dt.UTC) - dt.datetime(1970, 1, 1, tzinfo=dt.UTC)
+                assert stamp // dt.timedelta(microseconds=1) == end_ns // 1000
                 np.testing.assert_array_equal(values, expected.samples)
             speed = await client.get_node(nodes["P-501"]).read_value()
             assert speed == pytest.approx(1480.0)
+    finally:
+        await pub.stop()
+
+
+@pytest.mark.network
+async def test_opcua_variables_wait_for_initial_data():
+    # Before the first block a client reads "no value yet" (BadWaitingForInitialData), not zeros or 0 r/min;
+    # after it, Good.
+    from asyncua import Client, ua
+
+    sim = Simulation(load_scenario("mechanical"), seed=6, t0_ns=1_700_000_000_000_000_000)
+    port = free_port()
+    pub = OpcUaPublisher(sim, "127.0.0.1", port)
+    await pub.start()
+    nodes = pub.node_ids()
+    point, machine = sim.points[0].point_id, "P-501"
+    names = [nodes[point], nodes[point].replace("/samples", "/seq"), nodes[machine]]
+    try:
+        async with asyncio.timeout(30), Client(f"opc.tcp://127.0.0.1:{port}/", timeout=10) as client:
+            for nid in names:
+                dv = await client.get_node(nid).read_data_value(raise_on_bad_status=False)
+                assert dv.StatusCode.value == ua.StatusCodes.BadWaitingForInitialData, nid
+                assert dv.Value.Value is None
+            assert await client.get_node(nodes[point]).read_data_type_as_variant_type() == ua.VariantType.Double
+            await stream(sim, rate=1e6, duration_s=1.0, opcua=pub)
+            for nid in names:
+                dv = await client.get_node(nid).read_data_value()
+                assert dv.StatusCode.is_good(), nid
+            assert np.asarray(dv.Value.Value) == pytest.approx(1480.0)
     finally:
         await pub.stop()
 
