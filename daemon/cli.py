@@ -28,16 +28,11 @@ COMMANDS: dict[str, tuple[str, str]] = {
 }
 
 
-def _load(name: str) -> tuple[Callable[[argparse.ArgumentParser], None] | None, Callable[[Any], int] | None]:
+def _load(name: str) -> tuple[Callable[[argparse.ArgumentParser], None], Callable[[Any], int]]:
     module_name, _ = COMMANDS[name]
     suffix = name.replace("-", "_")
-    try:
-        module = importlib.import_module(module_name)
-    except ModuleNotFoundError as exc:
-        if exc.name and module_name.startswith(exc.name):
-            return None, None
-        raise
-    return getattr(module, f"configure_{suffix}", None), getattr(module, f"run_{suffix}", None)
+    module = importlib.import_module(module_name)
+    return getattr(module, f"configure_{suffix}"), getattr(module, f"run_{suffix}")
 
 
 class _Parser(argparse.ArgumentParser):
@@ -60,11 +55,8 @@ def build_parser() -> argparse.ArgumentParser:
     for name, (_, help_text) in COMMANDS.items():
         configure, runner = _load(name)
         p = sub.add_parser(name, help=help_text, description=help_text)
-        if configure is not None and runner is not None:
-            configure(p)
-            p.set_defaults(_runner=runner)
-        else:
-            p.set_defaults(_runner=None)
+        configure(p)
+        p.set_defaults(_runner=runner)
     return parser
 
 
@@ -73,9 +65,6 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = parser.parse_args(argv)
     if args.command is None:
         parser.print_help()
-        return 2
-    if args._runner is None:
-        print(f"edgevib {args.command}: not yet available in this version", file=sys.stderr)
         return 2
     try:
         return int(args._runner(args))
