@@ -21,12 +21,11 @@ they are kept as raw tables (``Config.alarm_tables`` and ``PointConfig.limits``)
 from __future__ import annotations
 
 import hashlib
-import importlib
 import math
 import os
 import re
 import tomllib
-from collections.abc import Callable, Iterator, Mapping
+from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
 from contextvars import ContextVar
 from dataclasses import dataclass, field, fields, is_dataclass
@@ -35,7 +34,11 @@ from typing import Any, TypeAlias
 from urllib.parse import urlsplit
 
 from edgevib.daemon.interfaces import ConfigError
+from edgevib.daemon.shard import Shard, owns_point, validate_shard
 from edgevib.daemon.wire import DEFAULT_MAX_PAYLOAD_BYTES, DEFAULT_MAX_SAMPLES
+from edgevib.pipelines.analysis import default_envelope_band
+from edgevib.pipelines.bearings import validate_geometry
+from edgevib.pipelines.types import BearingGeometry, PipelineError
 
 __all__ = [
     "AnalysisConfig",
@@ -114,7 +117,7 @@ class Secret:
 class SiteConfig:
     name: str = "edgevib"
     state_dir: str = "/var/lib/edgevib"
-    shard: Any = None  # edgevib.daemon.shard.Shard (or a validated raw table when that module is absent)
+    shard: Shard | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -753,29 +756,17 @@ def _parse_bearing(t: _Table) -> BearingConfig:
                    f"{b.pitch_diameter_mm:g} mm (circumference {math.pi * b.pitch_diameter_mm:.1f} mm)")
     if problem:
         raise ConfigError(t.path, f"impossible bearing geometry: {problem}")
-    validate = _optional("edgevib.pipelines.bearings", "validate_geometry")
-    if validate is not None:
-        from edgevib.pipelines.types import BearingGeometry, PipelineError
-
-        try:
-            validate(BearingGeometry(b.elements, b.ball_diameter_mm, b.pitch_diameter_mm, b.contact_angle_deg))
-        except PipelineError as exc:
-            raise ConfigError(t.path, f"impossible bearing geometry: {exc}") from None
+    try:
+        validate_geometry(BearingGeometry(b.elements, b.ball_diameter_mm, b.pitch_diameter_mm, b.contact_angle_deg))
+    except PipelineError as exc:
+        raise ConfigError(t.path, f"impossible bearing geometry: {exc}") from None
     return b
 
 
 def _default_envelope_band(fs_hz: float, bandwidth_hz: tuple[float, float],
                            shaft_hz_max: float | None) -> tuple[float, float] | None:
-    fn = _optional("edgevib.pipelines.analysis", "default_envelope_band")
-    if fn is not None:
-        band = fn(fs_hz, bandwidth_hz, shaft_hz_max=shaft_hz_max)
-        return None if band is None else (float(band[0]), float(band[1]))
-    # Common practice: demodulate a band of resonances well above shaft harmonics, at least ~2 kHz up.
-    hi = min(bandwidth_hz[1], 0.4 * fs_hz)
-    lo = max(hi / 4.0, 20.0 * (shaft_hz_max or 60.0), 500.0)
-    if hi < 2000.0 or hi - lo < 500.0:
-        return None
-    return (lo, hi)
+    band = default_envelope_band(fs_hz, bandwidth_hz, shaft_hz_max=shaft_hz_max)
+    return None if band is None else (float(band[0]), float(band[1]))
 
 
 def _parse_point(t: _Table, machines: dict[str, MachineConfig], sources: dict[str, SourceConfig],
@@ -867,52 +858,12 @@ def _parse_point(t: _Table, machines: dict[str, MachineConfig], sources: dict[st
 
 def _check_plan(p: PointConfig, m: MachineConfig, path: str) -> None:
     """Let the numerical core validate the plan when it is available (its PlanError names the problem)."""
-    build = _optional("edgevib.daemon.frames", "build_plan")
-    if build is None:
-        return
-    from edgevib.pipelines.types import PipelineError
+    from edgevib.daemon.frames import build_plan  # frames imports this module
 
     try:
-        build(p, m)
+        build_plan(p, m)
     except PipelineError as exc:
         raise ConfigError(path, f"analysis plan rejected: {exc}") from None
-
-
-def _optional(module: str, attr: str) -> Callable[..., Any] | None:
-    try:
-        mod = importlib.import_module(module)
-    except ModuleNotFoundError as exc:
-        if exc.name and module.startswith(exc.name):
-            return None
-        raise
-    fn = getattr(mod, attr, None)
-    return fn if callable(fn) else None
-
-
-def _parse_shard(t: _Table, point_ids: list[str]) -> dict[str, Any]:
-    if t.has("points"):
-        pts = t.str_list("points")
-        unknown = [p for p in pts if p not in point_ids]
-        if unknown:
-            raise ConfigError(t.key("points"), f"unknown point(s) {', '.join(unknown)}")
-        t.done()
-        return {"points": list(pts)}
-    count = t.int("count", lo=1, hi=1024)
-    index = t.int("index", lo=0)
-    if index >= count:
-        raise ConfigError(t.key("index"), f"{index} is out of range: must be below count {count}")
-    t.done()
-    return {"count": count, "index": index}
-
-
-def _owns_point(point_id: str, shard: Any) -> bool:
-    owns = _optional("edgevib.daemon.shard", "owns_point")
-    if owns is not None:
-        return bool(owns(point_id, shard))
-    if "points" in shard:
-        return point_id in shard["points"]
-    h = int.from_bytes(hashlib.sha256(point_id.encode("utf-8")).digest()[:8], "big")
-    return h % int(shard["count"]) == int(shard["index"])
 
 
 # ------------------------------------------------------------------------------------------------ entry points
@@ -1005,12 +956,10 @@ def _parse_config(doc: dict[str, Any], base: Path, digest: str) -> Config:
         points[p.id] = p
         sensors[key] = p.id
 
-    shard: Any = None
+    shard: Shard | None = None
     if shard_t is not None:
-        validate_shard = _optional("edgevib.daemon.shard", "validate_shard")
-        shard = validate_shard(shard_t.doc, "site.shard") if validate_shard is not None else \
-            _parse_shard(shard_t, list(points))
-        listed = getattr(shard, "points", None) if validate_shard is not None else shard.get("points")
+        shard = validate_shard(shard_t.doc, "site.shard")
+        listed = shard.points
         unknown = sorted(set(listed or ()) - set(points))
         if unknown:
             raise ConfigError("site.shard.points", f"unknown point(s) {', '.join(unknown)}")
@@ -1018,7 +967,7 @@ def _parse_config(doc: dict[str, Any], base: Path, digest: str) -> Config:
     site = SiteConfig(name=site_name, state_dir=state_dir, shard=shard)
     kept, skipped = list(points.values()), []
     if shard is not None:
-        kept = [p for p in points.values() if _owns_point(p.id, shard)]
+        kept = [p for p in points.values() if owns_point(p.id, shard)]
         skipped = [p for p in points.values() if p not in kept]
 
     pub = root.table("publish")
@@ -1051,10 +1000,9 @@ def _parse_config(doc: dict[str, Any], base: Path, digest: str) -> Config:
                  publish_mqtt=publish_mqtt, publish_opcua=publish_opcua, alarm_tables=alarm_tables,
                  skipped_points=tuple(p.id for p in skipped),
                  skipped_sensors=tuple((p.source, p.sensor) for p in skipped), base_dir=str(base), digest=digest)
-    parse_alarms = _optional("edgevib.daemon.alarms.config", "parse_alarm_config")
-    if parse_alarms is not None:
-        cfg = _replace(cfg, alarms=parse_alarms(doc, cfg))
-    return cfg
+    from edgevib.daemon.alarms.config import parse_alarm_config  # it builds on this module's helpers
+
+    return _replace(cfg, alarms=parse_alarm_config(doc, cfg))
 
 
 def _replace(cfg: Config, **changes: Any) -> Config:
