@@ -326,9 +326,15 @@ class AlarmLayer:
         now_m = self.monotonic()
         for r in mine:
             self.last_seen[r.point_id] = now_m
-        health = await asyncio.to_thread(self._health, mine)
-        pending = await asyncio.to_thread(self._process, mine, health)
-        await self._commit(pending)
+        # One worker-thread hop per batch: health checks on the raw samples, the state machines, the commit.
+        pending = await asyncio.to_thread(self._frames_in_thread, mine)
+        self._after_commit(pending)
+
+    def _frames_in_thread(self, results: list[FrameResult]) -> _Pending:
+        pend = self._process(results, self._health(results))
+        if pend.alarms or pend.sensors or pend.baselines or pend.events or pend.forget:
+            self._write(pend)
+        return pend
 
     def _health(self, results: list[FrameResult]) -> list[SensorHealth | None]:
         """Health of every frame, batched over points that share a spec, length and rate (in a worker thread;
@@ -525,6 +531,12 @@ class AlarmLayer:
         if not (pend.alarms or pend.sensors or pend.baselines or pend.events or pend.forget):
             return
         await asyncio.to_thread(self._write, pend)
+        self._after_commit(pend)
+
+    def _after_commit(self, pend: _Pending) -> None:
+        """On the event loop, once ``pend`` is durable: listeners, feed wake-ups, retained state topics."""
+        if not (pend.alarms or pend.sensors or pend.baselines or pend.events or pend.forget):
+            return
         self._notify(pend)
         if pend.events:
             for feed in (self.mqtt, self.webhook):
