@@ -22,7 +22,10 @@ bounds (:class:`SinkChannel`):
   scheduler: while it holds more than :data:`LOSSLESS_BACKLOG` results no new analysis batch starts, frames wait
   in the per-point ingest queues, and those drop their oldest frames (counted as ``frames_dropped``) as they
   always do when analysis falls behind.  So a frame is either seen by every sink that must see it or dropped
-  before analysis for everyone — never silently missing from the alarm history only.
+  before analysis for everyone — never silently missing from the alarm history only;
+* a sink with a cost per call (attribute ``batch_window_s``: the alarm layer's health checks and SQLite commit)
+  gets results gathered for up to that long or :data:`MAX_BATCH` results, rather than one call per analysis
+  batch (which holds one or two frames when analysis keeps up).
 
 A sink that fails is logged (rate-limited) and never stops the others.  :meth:`Daemon.reload` applies a new
 configuration while points whose configuration is unchanged keep their assembly buffers, queues and trends.
@@ -108,6 +111,7 @@ class SinkChannel:
         self.sink = sink
         self.name = type(sink).__name__
         self.lossless = bool(getattr(sink, "lossless", False))
+        self.window_s = float(getattr(sink, "batch_window_s", 0.0) or 0.0)
         self.stats = stats
         self.rlog = rlog
         self._on_delivered = on_delivered
@@ -160,6 +164,12 @@ class SinkChannel:
         while True:
             await self._event.wait()
             self._event.clear()
+            if self.window_s > 0:  # gather up to a batch for a sink with a high cost per call
+                with contextlib.suppress(TimeoutError):
+                    async with asyncio.timeout(self.window_s):
+                        while self._queued < MAX_BATCH:
+                            await self._event.wait()
+                            self._event.clear()
             while self._queued:
                 batch = self._take()
                 self._busy = len(batch)

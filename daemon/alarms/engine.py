@@ -148,9 +148,12 @@ class AlarmLayer:
     ``registry``: a Prometheus registry to register :attr:`collector` on at start.  The layer is a *lossless*
     sink: the daemon hands it every analysed frame of a point in order and pauses analysis rather than skip one
     (``edgevib.daemon.app``), since debounce counts, baselines and sensor-recovery runs depend on each frame.
+    It takes them gathered over up to :attr:`batch_window_s` (alarm latency ≤ 0.1 s more, a fraction of the
+    per-call cost).
     """
 
     lossless = True
+    batch_window_s = 0.1  # frames gathered per call: one commit and one vectorized health check for many frames
 
     def __init__(self, config: Any, settings: AlarmSettings | None = None, *, registry: Any = None,
                  clock: Callable[[], float] = time.time, monotonic: Callable[[], float] = time.monotonic) -> None:
