@@ -124,6 +124,11 @@ def advice_text(severity: int, fault: str, transition: str, value: float | None,
     return " ".join(x for x in (head, hint, _DISCLAIMER) if x)
 
 
+def _display_rank(indicator: str) -> int:
+    """Display order among equally severe alarms: a fault pattern says more than a broadband level."""
+    return {"overall": 2, "impacting": 1}.get(INDICATORS[indicator].fault, 0)
+
+
 @dataclass
 class _Machine:
     running: dict[str, bool] = field(default_factory=dict)  # point -> verdict of its latest frame
@@ -712,7 +717,11 @@ class AlarmLayer:
         return worst
 
     def state_text(self, point_id: str) -> str | None:
-        """A short alarm state for the demo table: ``normal``, ``ALERT kurtosis``, ``sensor: flatline`` …"""
+        """A short alarm state for the demo table: ``normal``, ``ALERT kurtosis``, ``sensor: flatline`` …
+
+        The most severe level wins; indicators at that level are listed fault pattern first (order lines and
+        bearing families), then impacting statistics, then broadband levels — so a dominant 1× reads
+        ``DANGER imbalance_1x_mm_s, velocity_rms_mm_s``."""
         if point_id not in self.points:
             return None
         with self._lock:
@@ -734,6 +743,7 @@ class AlarmLayer:
                 elif d == worst and d > 0:
                     which.append(lim.indicator)
             if worst:
+                which.sort(key=_display_rank)
                 return f"{SEVERITY[worst].upper()} {', '.join(which)}"
             reason = self.suppressed.get(point_id)
             if reason == "machine-stopped":
