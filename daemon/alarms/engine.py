@@ -60,6 +60,7 @@ from edgevib.pipelines.alarm import (
     Transition,
     acknowledge,
     display_severity,
+    expire_shelf,
     isa_state,
     shelve,
     step,
@@ -104,7 +105,9 @@ def trend_slope_per_h(points: Iterable[tuple[float, float]]) -> float | None:
 def advice_text(severity: int, fault: str, transition: str, value: float | None, danger: float | None,
                 slope_per_h: float | None) -> str:
     """Advice in plain words matched to severity (deferring to site procedures and a qualified analyst)."""
-    hint = _FAULT_HINT.get(fault) or (f"Energy at a {fault.removeprefix('bearing ')} defect frequency points to "
+    what = fault.removeprefix("bearing ")
+    article = "an" if what[:1] in "aeiou" else "a"
+    hint = _FAULT_HINT.get(fault) or (f"Energy at {article} {what} defect frequency points to "
                                       f"rolling-element bearing damage." if fault.startswith("bearing") else "")
     if severity == 0:
         return f"Back below the clear threshold; keep trending. {_DISCLAIMER}"
@@ -607,6 +610,21 @@ class AlarmLayer:
                         for tr in trs:
                             self._alarm_event(None, lim, tr, pend)
                     self.suppressed[pid] = "sensor-fault"
+                # Shelves expire on the frames' timeline (a shelf is set from the last frame's time), advanced by
+                # the wall-clock time since that frame, so a shelf also ends while no frames arrive.
+                if pid in self.last_frame:
+                    now_s = self.last_frame[pid] + max(0.0, now_m - self.last_seen.get(pid, now_m))
+                else:
+                    now_s = self.clock()
+                for lim in self._by_point.get(pid, ()):
+                    st = self.alarms.get(lim.key)
+                    if st is None or st.shelved_until_s is None or now_s < st.shelved_until_s:
+                        continue
+                    spec = self.specs.get(lim.key) or self._spec(lim)
+                    st, trs = expire_shelf(st, now_s, spec)
+                    self.alarms[lim.key] = pend.alarms[lim.key] = st
+                    for tr in trs:
+                        self._alarm_event(None, lim, tr, pend)
         return pend
 
     # ------------------------------------------------------------------------------------------ commands
@@ -810,6 +828,12 @@ class AlarmCollector(Collector):
             if feed is not None:
                 pub.add_metric([feed.sink], float(feed.published))
         yield pub
+        rej = CounterMetricFamily("edgevib_feed_rejected", "Events a feed sink refused for good (a webhook's 4xx "
+                                  "answer other than 408/425/429; not retried)", labels=["sink"])
+        for feed in (lay.mqtt, lay.webhook):
+            if feed is not None:
+                rej.add_metric([feed.sink], float(getattr(feed, "rejected", 0)))
+        yield rej
         depth, age = 0, 0.0
         if lay.outbox is not None:
             with contextlib.suppress(Exception):

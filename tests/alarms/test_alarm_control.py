@@ -100,3 +100,32 @@ def test_alarms_cli_prints_the_table(short_tmp: Path, capsys: pytest.CaptureFixt
     asyncio.run(scenario())
     out = capsys.readouterr().out
     assert "P-101-DE-H" in out and "velocity_rms_mm_s" in out and "unacknowledged" in out and "alert" in out
+
+
+async def test_a_shelf_expires_on_the_timer_without_frames(short_tmp: Path) -> None:
+    # no-data detection kept out of the way (100000 frame periods) so only the shelf expiry acts
+    cfg = small_config(short_tmp, alarms={"no_data_frames": 100000})
+    mono = [500.0]
+    layer = AlarmLayer(cfg, monotonic=lambda: mono[0])
+    events: list[dict[str, Any]] = []
+    layer.listeners.append(events.append)
+    await layer.start()
+    try:
+        for i in range(2):
+            await layer.on_frames([frame_result("P-101-DE-H", "P-101", 1000.0 + i, 5.0)])
+        res = layer.handle_command({"cmd": "shelve", "point": "P-101-DE-H", "reason": "pump on test run",
+                                    "duration_s": 10.0})
+        assert res["changed"] == 1 and events[-1]["data"]["transition"] == "shelved"
+        mono[0] += 5.0  # 5 s after the last frame: still shelved
+        await asyncio.sleep(1.5)
+        assert events[-1]["data"]["transition"] == "shelved"
+        mono[0] += 6.0  # 11 s after the last frame (t = 1001 s): the shelf set until 1011 s has expired
+        for _ in range(50):  # the 1-s timer, bounded wait
+            if events[-1]["data"]["transition"] != "shelved":
+                break
+            await asyncio.sleep(0.1)
+        last = events[-1]["data"]
+        assert last["transition"] == "unshelved" and last["alarm_state"] == "unacknowledged"
+        assert layer.snapshot()["alarms"][0]["shelved_until_s"] is None
+    finally:
+        await layer.stop()

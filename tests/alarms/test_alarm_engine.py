@@ -232,3 +232,16 @@ def test_capture_rotation_keeps_the_budget(tmp_path: Path) -> None:
     assert store.bytes <= 3 * 33_500 and store.count == len(kept) < 6
     assert kept == sorted(names[-len(kept):])  # the oldest went first
 
+
+@pytest.mark.parametrize(("fault", "phrase"), [
+    ("bearing outer race", "Energy at an outer race defect frequency"),
+    ("bearing inner race", "Energy at an inner race defect frequency"),
+    ("bearing rolling element", "Energy at a rolling element defect frequency"),
+    ("bearing cage", "Energy at a cage defect frequency"),
+])
+def test_bearing_advice_uses_the_right_article(fault: str, phrase: str) -> None:
+    from edgevib.daemon.alarms.config import INDICATORS
+    from edgevib.daemon.alarms.engine import advice_text
+
+    assert fault in {d.fault for d in INDICATORS.values()}  # the family names the layer really uses
+    assert phrase in advice_text(1, fault, "raised", 30.0, None, None)

@@ -13,6 +13,7 @@ from typing import Any, ClassVar
 
 import pytest
 from alarmkit import Subscriber, frame_result, persistent_broker, small_config
+from prometheus_client import CollectorRegistry
 from servers import Mosquitto
 
 from edgevib.daemon.alarms.engine import AlarmLayer
@@ -117,12 +118,13 @@ async def test_broker_down_events_wait_in_the_outbox(short_tmp: Path) -> None:
 class _Hook(BaseHTTPRequestHandler):
     received: ClassVar[list[tuple[str, bytes]]] = []
     fail_first = 0
+    fail_status = 503
 
     def do_POST(self) -> None:
         body = self.rfile.read(int(self.headers["Content-Length"]))
         if _Hook.fail_first > 0:
             _Hook.fail_first -= 1
-            self.send_response(503)
+            self.send_response(_Hook.fail_status)
         else:
             _Hook.received.append((self.headers["Content-Type"], body))
             self.send_response(204)
@@ -133,7 +135,7 @@ class _Hook(BaseHTTPRequestHandler):
 
 
 async def test_webhook_retries_until_accepted(short_tmp: Path) -> None:
-    _Hook.received, _Hook.fail_first = [], 2
+    _Hook.received, _Hook.fail_first, _Hook.fail_status = [], 2, 503
     server = HTTPServer(("127.0.0.1", 0), _Hook)
     threading.Thread(target=server.serve_forever, daemon=True).start()
     url = f"http://127.0.0.1:{server.server_address[1]}/events"
@@ -148,6 +150,27 @@ async def test_webhook_retries_until_accepted(short_tmp: Path) -> None:
         check_cloudevent(json.loads(body))
         assert _Hook.fail_first == 0 and layer.webhook is not None and layer.webhook.published == 1
         assert await until(lambda: layer.outbox is not None and layer.outbox.depth() == 0)
+    finally:
+        await layer.stop()
+        server.shutdown()
+
+
+async def test_webhook_refusal_is_counted_not_retried(short_tmp: Path) -> None:
+    # RFC 9110: a 4xx (here 400) is the client's fault, so resending the same event cannot help
+    _Hook.received, _Hook.fail_first, _Hook.fail_status = [], 1, 400
+    server = HTTPServer(("127.0.0.1", 0), _Hook)
+    threading.Thread(target=server.serve_forever, daemon=True).start()
+    url = f"http://127.0.0.1:{server.server_address[1]}/events"
+    cfg = small_config(short_tmp, feed={"webhook": {"url": url, "retry_min_s": 0.1, "retry_max_s": 0.2}})
+    registry = CollectorRegistry()
+    layer = AlarmLayer(cfg, registry=registry)
+    await layer.start()
+    try:
+        await feed_values(layer, [3.0, 3.0, 5.0, 5.0], 1000.0)  # raised, then escalated
+        assert await until(lambda: layer.outbox is not None and layer.outbox.depth() == 0)
+        assert [json.loads(b)["data"]["transition"] for _, b in _Hook.received] == ["escalated"]  # first refused
+        assert registry.get_sample_value("edgevib_feed_rejected_total", {"sink": "webhook"}) == 1.0
+        assert registry.get_sample_value("edgevib_feed_published_total", {"sink": "webhook"}) == 1.0
     finally:
         await layer.stop()
         server.shutdown()
