@@ -16,7 +16,8 @@ notification, or a polled value with a new source timestamp) becomes one :class:
 Values that are not 1-D numeric arrays go to ``ingest.reject(source, "malformed", …)``, values with a bad status
 to ``ingest.reject(source, "bad_status", …)``; an empty (null) value or ``BadWaitingForInitialData`` is "no block
 yet" and is skipped.  Non-finite samples are passed on for the ingest's own validation.  Scalar speed nodes
-(``speed_nodes``) go to ``ingest.speed``.
+(``speed_nodes``) go to ``ingest.speed``; a speed node without a value yet (null, ``BadWaitingForInitialData``) is
+skipped the same way.
 
 The connection loop lives in :meth:`OpcUaSource.run`: connect (security policy ``None`` or ``Basic256Sha256``
 ``Sign``/``SignAndEncrypt`` with certificate files), resolve the nodes, subscribe or poll, and on any loss — the
@@ -460,7 +461,11 @@ class OpcUaSource:
     def _on_speed(self, node_id: str, dv: ua.DataValue | None, received_ns: int) -> None:
         tag = self._speed_nodes[node_id]
         value = dv.Value.Value if dv is not None and dv.Value is not None else None
-        if dv is not None and dv.StatusCode is not None and not dv.StatusCode.is_good():
+        if dv is None or (value is None and (dv.StatusCode is None or dv.StatusCode.is_good())):
+            return  # no value yet (a variable created empty): nothing to count, like the samples path
+        if dv.StatusCode is not None and not dv.StatusCode.is_good():
+            if dv.StatusCode.value == StatusCodes.BadWaitingForInitialData:
+                return  # the server has no value yet: not a fault of the speed tag
             self._ingest.reject(self.name, "bad_status", f"speed node {node_id}: status {dv.StatusCode.name}",
                                 node_id)
             return

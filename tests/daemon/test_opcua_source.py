@@ -442,3 +442,23 @@ async def test_bad_configuration_names_the_key(kw: dict[str, Any], path: str) ->
     with pytest.raises(ConfigError) as info:
         OpcUaSource(**args)
     assert info.value.path == path
+
+
+async def test_speed_without_a_value_yet_is_skipped_not_rejected() -> None:
+    # OPC UA Part 4 (status codes): BadWaitingForInitialData means the server has no value yet, like a variable
+    # created empty; neither is a bad reading, so neither is counted.  Another bad status and a non-number are.
+    ingest = FakeIngest()
+    node = "ns=2;s=quarry-lane/P-101/speed_rpm"
+    source = OpcUaSource(name="booster-plc", endpoint="opc.tcp://127.0.0.1:4840/", ingest=ingest,
+                         nodes={}, speed_nodes={node: "P-101.speed"})
+    [key] = source._speed_nodes
+    waiting = ua.DataValue(ua.Variant(None), StatusCode=ua.StatusCode(ua.StatusCodes.BadWaitingForInitialData))
+    for dv in (None, ua.DataValue(ua.Variant(None)), waiting):
+        source._on_value(key, dv, 1)
+    assert ingest.rejects == [] and ingest.speeds == []
+    source._on_value(key, ua.DataValue(ua.Variant(1480.0, ua.VariantType.Double)), 2)
+    assert ingest.speeds == [("booster-plc", "P-101.speed", 1480.0)]
+    source._on_value(key, ua.DataValue(ua.Variant(1480.0, ua.VariantType.Double),
+                                       StatusCode=ua.StatusCode(ua.StatusCodes.BadSensorFailure)), 3)
+    source._on_value(key, ua.DataValue(ua.Variant("fast", ua.VariantType.String)), 4)
+    assert [r[1] for r in ingest.rejects] == ["bad_status", "malformed"]
