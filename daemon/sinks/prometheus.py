@@ -137,6 +137,11 @@ class IndicatorCollector:
                                      labels=["point"])
         for p, n in dict(s.analysis_errors).items():
             errors.add_metric([p], n)
+        sink_dropped = CounterMetricFamily("edgevib_sink_results_dropped", "Frame results a lossy sink skipped "
+                                           "(oldest first) because it fell behind, per sink and point.",
+                                           labels=["sink", "point"])
+        for (sink, p), n in dict(s.sink_dropped).items():
+            sink_dropped.add_metric([sink, p], n)
         h = s.latency
         latency = HistogramMetricFamily("edgevib_analysis_latency_seconds",
                                         "Ingest-to-metric latency: last block of a frame received to its "
@@ -152,7 +157,8 @@ class IndicatorCollector:
             reconnects.add_metric([src], n)
         info = GaugeMetricFamily("edgevib_build_info", "edgevib build information.", labels=["version"])
         info.add_metric([self.version], 1.0)
-        return [received, rejected, ignored, analysed, dropped, gaps, errors, latency, connected, reconnects, info]
+        return [received, rejected, ignored, analysed, dropped, gaps, errors, sink_dropped, latency, connected,
+                reconnects, info]
 
 
 class MetricsServer:

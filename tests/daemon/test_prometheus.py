@@ -21,6 +21,7 @@ from servers import free_port, wait_port
 
 from edgevib.daemon.app import Daemon
 from edgevib.daemon.config import parse_config
+from edgevib.daemon.frames import Stats
 from edgevib.daemon.wire import Block
 
 FS = 25600.0
@@ -36,7 +37,8 @@ INDICATORS = {
 }
 SELF = {
     "edgevib_blocks_received", "edgevib_blocks_rejected", "edgevib_frames_analysed", "edgevib_frames_dropped",
-    "edgevib_analysis_latency_seconds", "edgevib_source_connected", "edgevib_source_reconnects",
+    "edgevib_sink_results_dropped", "edgevib_analysis_latency_seconds", "edgevib_source_connected",
+    "edgevib_source_reconnects",
     "edgevib_build_info",
 }
 
@@ -74,6 +76,8 @@ async def daemon(tmp_path: Path) -> AsyncIterator[tuple[Daemon, CollectorRegistr
     async with asyncio.timeout(20):
         while d.stats.frames_analysed["P-101-DE-H"] < 3:
             await asyncio.sleep(0.02)
+    # a lossy sink that fell behind (app.SinkChannel counts into Stats.sink_dropped): as if 3 results were skipped
+    Stats.inc(d.stats.sink_dropped, ("OpcUaIndicatorSink", "P-101-DE-H"), 3)
     try:
         yield d, registry
     finally:
@@ -104,6 +108,10 @@ async def test_exposition_names_and_labels(daemon: tuple[Daemon, CollectorRegist
     assert set(snr) == {"ftf", "bpfo", "bpfi", "bsf"}
     assert max(snr, key=lambda k: snr[k]) == "bpfo"  # the impacts repeat at BPFO
     assert "edgevib_envelope_amplitude_meters_per_second_squared" in families
+    skipped = families["edgevib_sink_results_dropped"]
+    assert skipped.type == "counter"
+    assert [(s.name, s.labels, s.value) for s in skipped.samples if s.name.endswith("_total")] == [
+        ("edgevib_sink_results_dropped_total", {"sink": "OpcUaIndicatorSink", "point": "P-101-DE-H"}, 3.0)]
 
 
 async def test_promtool_check_metrics(daemon: tuple[Daemon, CollectorRegistry]) -> None:
