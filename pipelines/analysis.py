@@ -12,8 +12,10 @@ over the frame's central half where the window is divided out again: a sine's pe
 band's low edge); and, when a bearing and a demodulation band are configured and a speed is known, the envelope
 spectrum from the band's lines only (:mod:`edgevib.pipelines.envelope`).
 
-Precision, deliberately: frames and the shared spectrum in float64; the time-domain moments and the envelope
-stage in float32 (relative error ~1e-7, far below any sensor's noise), which halves their memory traffic.
+Precision, deliberately: frames in float64; the shared spectrum, the time-domain moments and the envelope stage
+in float32 (relative error ~1e-7, far below any sensor's noise; 24 bits of mantissa exceed a 24-bit ADC's
+range), which halves their memory traffic.  Each frame's first sample is subtracted before the single-precision
+transform, so a large DC offset (a MEMS sensor's 1 g of gravity) does not raise the rounding floor.
 
 The kernel holds read-only arrays only, so one kernel (or ``analyze_frames``) can run in several threads at once;
 per-call scratch buffers are local.
@@ -311,8 +313,13 @@ class AnalysisKernel:
             raise SignalError(f"frames have {x.shape[1]} samples, the plan expects {n}")
         c = x.shape[0]
         f_given = _shaft_array(shaft_hz, c, plan.fs_hz)
-        spec = _fft.rfft(x)
-        mean = spec[:, 0].real / n  # line 0 is the sum of the samples (NaN/Inf anywhere reach it)
+        # One single-precision transform serves everything: the frames go in less their first sample (so a DC
+        # offset such as a MEMS sensor's 1 g of gravity stays out of the float32 rounding), cast in the same pass.
+        x0 = x[:, :1]
+        x32 = np.empty(x.shape, dtype=np.float32)
+        np.subtract(x, x0, out=x32, casting="same_kind")
+        spec = _fft.rfft(x32)
+        mean = spec[:, 0].real / n + x0[:, 0]  # line 0 is the sum of the samples (NaN/Inf anywhere reach it)
         if not np.isfinite(spec[:, 0]).all():
             finite_mean(x)  # raises SignalError naming the channel and the count
         spec[:, 0] = 0.0  # the mean, removed (lines ≥ 1 are those of the centred frame)

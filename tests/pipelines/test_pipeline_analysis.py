@@ -285,3 +285,20 @@ def test_zones_are_monotone(v: float, w: float, group: int, support: str) -> Non
 def test_iso_zone_errors(args: tuple[float, int, str]) -> None:
     with pytest.raises(PlanError):
         iso_zone(*args)
+
+
+def test_float32_transform_keeps_small_vibration_beside_gravity_and_a_strong_tone() -> None:
+    # Velocity of a sine a = A sin 2πft is A/(2πf), r.m.s. the same over √2 (FIELD_NOTES §5, handbook formula).
+    # A MEMS frame carries 1 g of gravity (FIELD_NOTES §6) and here a 2 g tone at 3 kHz outside the velocity band
+    # beside a 0.5 mg, 80.3 Hz vibration: the single-precision transform must not bury the small line.
+    fs, n = 12800.0, 16384
+    t = np.arange(n) / fs
+    small_g = 0.0005
+    x = 1.0 + small_g * np.sin(2 * np.pi * 80.3 * t) + 2.0 * np.sin(2 * np.pi * 3000.0 * t)
+    plan = make_plan(fs, n)
+    (ind,) = analyze_frames(x, plan, shaft_hz=[25.0])
+    expected_mm_s = small_g * 9.80665 / (2 * np.pi * 80.3) / np.sqrt(2) * 1000.0
+    np.testing.assert_allclose(ind.velocity_rms_mm_s, expected_mm_s, rtol=5e-3)
+    # The mean is 1 g plus what the 80.3 Hz sine's unfinished period leaves, at most A/(π·cycles) = 1.5e-6 g
+    # (102.8 cycles in the frame; the 3 kHz tone completes 3840): analytic bound.
+    assert abs(ind.mean_g - 1.0) <= small_g / (np.pi * 80.3 * n / fs)
