@@ -22,6 +22,7 @@ import contextlib
 import dataclasses
 import os
 import signal
+import socket
 import sys
 import tempfile
 import time
@@ -175,7 +176,8 @@ async def serve(cfg: Config, *, config_path: Path | None = None, metrics_listen:
         return f"{len(daemon.points)} points, {sum(daemon.stats.frames_analysed.values())} frames; {detail}"
 
     async def reload() -> None:
-        if config_path is None:
+        if config_path is None:  # the demo: a hang-up of its terminal ends it
+            stop.set()
             return
         if notifier is not None:
             notifier.reloading("reloading configuration")
@@ -244,8 +246,9 @@ async def serve(cfg: Config, *, config_path: Path | None = None, metrics_listen:
 
 def configure_demo(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--duration", type=float, metavar="S", help="stop after S seconds (default: until Ctrl-C)")
-    parser.add_argument("--metrics-listen", type=_listen_arg, metavar="HOST:PORT", default=("127.0.0.1", 9851),
-                        help="metrics listener (default 127.0.0.1:9851; port 0 picks a free one)")
+    parser.add_argument("--metrics-listen", type=_listen_arg, metavar="HOST:PORT", default=None,
+                        help="metrics listener (default 127.0.0.1:9851, or a free port when that one is taken; "
+                        "port 0 picks a free one)")
     parser.add_argument("--rate", type=float, default=1.0, help="simulation speed relative to real time")
     parser.add_argument("--seed", type=int, default=0, help="simulator seed")
 
@@ -310,7 +313,21 @@ def run_demo(args: argparse.Namespace) -> int:
         except ConfigError as exc:
             print(f"edgevib demo: {exc}", file=sys.stderr)
             return 2
-        return asyncio.run(_demo(cfg, args.metrics_listen, args.duration, sys.stdout))
+        listen = args.metrics_listen or _free_or_default(DEMO_LISTEN)
+        return asyncio.run(_demo(cfg, listen, args.duration, sys.stdout))
+
+
+DEMO_LISTEN = ("127.0.0.1", 9851)
+
+
+def _free_or_default(listen: tuple[str, int]) -> tuple[str, int]:
+    """``listen`` if nothing else holds it (a second demo, another exporter), else a free port on the same host."""
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
+        try:
+            probe.bind(listen)
+        except OSError:
+            return (listen[0], 0)
+    return listen
 
 
 async def _demo(cfg: Config, listen: tuple[str, int], duration_s: float | None, out: TextIO) -> int:
@@ -324,6 +341,19 @@ async def _demo(cfg: Config, listen: tuple[str, int], duration_s: float | None, 
         print("edgevib monitors and advises; it is not a machinery protection system.", file=out, flush=True)
         asyncio.get_running_loop().create_task(table(daemon))
 
+    def show(daemon: Any) -> None:
+        if tty:
+            title = (f"edgevib demo  {cfg.site.name}  {time.strftime('%H:%M:%S')}  metrics "
+                     f"{daemon.metrics.url}  (Ctrl-C stops; advisory only, not a protection system)\n\n")
+            out.write("\x1b[H\x1b[J" + title + render_table(cfg, daemon.latest, daemon.state_text, True) + "\n")
+            out.flush()
+        else:
+            fresh = {pid: r for pid, r in daemon.latest.items() if shown.get(pid) != r.t_end_ns}
+            if fresh:
+                sub = dataclasses.replace(cfg, points=tuple(p for p in cfg.points if p.id in fresh))
+                print(render_table(sub, daemon.latest, daemon.state_text, False), file=out, flush=True)
+                shown.update({pid: r.t_end_ns for pid, r in fresh.items()})
+
     async def table(daemon: Any) -> None:
         t_end = None if duration_s is None else time.monotonic() + duration_s
         with contextlib.suppress(asyncio.CancelledError):
@@ -331,18 +361,11 @@ async def _demo(cfg: Config, listen: tuple[str, int], duration_s: float | None, 
                 if t_end is not None and time.monotonic() >= t_end:
                     stop.set()
                     break
-                if tty:
-                    title = (f"edgevib demo  {cfg.site.name}  {time.strftime('%H:%M:%S')}  metrics "
-                             f"{daemon.metrics.url}  (Ctrl-C stops; advisory only, not a protection system)\n\n")
-                    out.write("\x1b[H\x1b[J" + title + render_table(cfg, daemon.latest, daemon.state_text, True)
-                              + "\n")
-                    out.flush()
-                else:
-                    fresh = {pid: r for pid, r in daemon.latest.items() if shown.get(pid) != r.t_end_ns}
-                    if fresh:
-                        sub = dataclasses.replace(cfg, points=tuple(p for p in cfg.points if p.id in fresh))
-                        print(render_table(sub, daemon.latest, daemon.state_text, False), file=out, flush=True)
-                        shown.update({pid: r.t_end_ns for pid, r in fresh.items()})
+                try:
+                    show(daemon)
+                except OSError:  # the terminal or pipe went away: nobody is watching, so stop
+                    stop.set()
+                    break
                 with contextlib.suppress(TimeoutError):
                     await asyncio.wait_for(stop.wait(), 1.0)
 
@@ -350,4 +373,5 @@ async def _demo(cfg: Config, listen: tuple[str, int], duration_s: float | None, 
         return await serve(cfg, metrics_listen=listen, stop=stop, on_started=started)
     finally:
         if tty:
-            out.write("\n")
+            with contextlib.suppress(OSError):
+                out.write("\n")
