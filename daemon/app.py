@@ -40,7 +40,6 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
-import importlib
 import math
 import time
 from collections import deque
@@ -91,16 +90,6 @@ def _iso_zone(v_mm_s: float, machine: MachineConfig) -> str | None:
         return str(iso_zone(v_mm_s, machine.group, machine.support))
     except PipelineError:
         return None
-
-
-def _optional_attr(module: str, attr: str) -> Any:
-    try:
-        mod = importlib.import_module(module)
-    except ModuleNotFoundError as exc:
-        if exc.name and module.startswith(exc.name):
-            return None
-        raise
-    return getattr(mod, attr, None)
 
 
 class SinkChannel:
@@ -289,16 +278,14 @@ class Daemon:
 
             self.sinks.append(MqttIndicatorSink.from_config(config))
         if config.publish_opcua.enabled:
-            cls = _optional_attr("edgevib.daemon.sinks.opcua", "OpcUaIndicatorSink")
-            if cls is None:
-                log.warning("OPC UA publishing is configured but not available in this build")
-            else:
-                self.sinks.append(_make_opcua_sink(cls, config))
-        create = _optional_attr("edgevib.daemon.alarms.sink", "create_sink")
-        if create is not None:
-            sink = create(config, self)
-            if sink is not None:
-                self.sinks.append(sink)
+            from edgevib.daemon.sinks.opcua import OpcUaIndicatorSink  # asyncua loads only when configured
+
+            self.sinks.append(_make_opcua_sink(OpcUaIndicatorSink, config))
+        from edgevib.daemon.alarms.sink import create_sink
+
+        sink = create_sink(config, self)
+        if sink is not None:
+            self.sinks.append(sink)
 
     def add_sink(self, sink: FrameSink) -> None:
         """Add a sink (the alarm layer, a test probe); call before :meth:`start`."""
@@ -584,13 +571,11 @@ def make_source(cfg: Any, config: Config, ingest: BlockIngest) -> Source:
         return SimulatedSource(name=cfg.name, ingest=ingest, scenario=cfg.scenario, seed=cfg.seed, rate=cfg.rate,
                                speed_tags=tags)
     if isinstance(cfg, OpcUaSourceConfig):
-        cls = _optional_attr("edgevib.daemon.sources.opcua", "OpcUaSource")
-        spec_cls = _optional_attr("edgevib.daemon.sources.opcua", "NodeSpec")
-        if cls is None or spec_cls is None:
-            raise ConfigError(f"sources[{cfg.name}].type", "OPC UA sources are not available in this build")
-        nodes = {p.node: spec_cls(sensor_id=p.sensor, fs_hz=p.fs_hz, unit=p.unit) for p in config.points
+        from edgevib.daemon.sources.opcua import NodeSpec, OpcUaSource  # asyncua loads only when configured
+
+        nodes = {p.node: NodeSpec(sensor_id=p.sensor, fs_hz=p.fs_hz, unit=p.unit) for p in config.points
                  if p.source == cfg.name and p.node is not None}
-        source: Source = cls(
+        source: Source = OpcUaSource(
             name=cfg.name, endpoint=cfg.endpoint, ingest=ingest, nodes=nodes, speed_nodes={t: t for t in speed_tags},
             mode=cfg.mode, poll_interval_s=cfg.poll_interval_s, security_policy=cfg.security_policy,
             security_mode=cfg.security_mode, cert_file=cfg.cert_file, key_file=cfg.key_file,

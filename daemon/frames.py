@@ -31,6 +31,7 @@ import numpy.typing as npt
 from edgevib.daemon.config import G_M_S2, Config, MachineConfig, PointConfig, SpeedTag
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 from edgevib.daemon.wire import Block, WireError, decode
+from edgevib.pipelines.analysis import make_plan
 from edgevib.pipelines.types import AnalysisPlan, BearingGeometry, FrameIndicators
 
 __all__ = [
@@ -244,13 +245,7 @@ def build_plan(point: PointConfig, machine: MachineConfig) -> AnalysisPlan:
         fs_hz=point.fs_hz, n_samples=point.frame_samples, velocity_band_hz=point.velocity_band_hz,
         envelope_band_hz=point.envelope_band_hz, bearing=bearing, orders=point.orders,
         speed_range_hz=speed_range_hz)
-    try:
-        from edgevib.pipelines import analysis
-    except ModuleNotFoundError as exc:
-        if exc.name != "edgevib.pipelines.analysis":
-            raise
-        return AnalysisPlan(**kwargs)
-    return analysis.make_plan(**kwargs)
+    return make_plan(**kwargs)
 
 
 # ------------------------------------------------------------------------------------------------ ingest

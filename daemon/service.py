@@ -152,10 +152,8 @@ def state_dir_problem(path: str) -> str | None:
 
 
 def _notifier() -> Any:
-    try:
-        from edgevib.daemon import systemd
-    except ImportError:
-        return None, None
+    from edgevib.daemon import systemd
+
     return systemd.Notifier.from_env(), systemd
 
 

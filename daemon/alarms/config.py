@@ -28,6 +28,7 @@ from typing import Any, Literal
 from edgevib.daemon.interfaces import ConfigError
 from edgevib.pipelines.alarm import Delay
 from edgevib.pipelines.health import HealthSpec
+from edgevib.pipelines.severity import zone_boundaries_mm_s
 from edgevib.pipelines.types import FrameIndicators
 
 __all__ = [
@@ -43,19 +44,8 @@ __all__ = [
     "parse_alarm_config",
 ]
 
-# ISO 20816-3 (= ISO 10816-3:2009 Annex A) boundaries (A/B, B/C, C/D) in mm/s r.m.s., FIELD_NOTES §1; used only
-# when edgevib.pipelines.severity is unavailable.
-_ISO_FALLBACK: dict[tuple[int, str], tuple[float, float, float]] = {
-    (1, "rigid"): (2.3, 4.5, 7.1), (1, "flexible"): (3.5, 7.1, 11.0),
-    (2, "rigid"): (1.4, 2.8, 4.5), (2, "flexible"): (2.3, 4.5, 7.1),
-}
-
-
 def iso_boundaries(group: int, support: str) -> tuple[float, float, float]:
-    try:
-        from edgevib.pipelines.severity import zone_boundaries_mm_s
-    except ImportError:  # pragma: no cover - the severity module ships with the pipelines
-        return _ISO_FALLBACK[(group, support)]
+    """ISO 20816-3 zone boundaries (A/B, B/C, C/D) in mm/s r.m.s. for a machine group and support."""
     return zone_boundaries_mm_s(group, support)
 
 

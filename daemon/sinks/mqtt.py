@@ -22,6 +22,7 @@ from edgevib.daemon.config import G_M_S2, Config, MqttConnection
 from edgevib.daemon.interfaces import FrameResult, SourceError
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 from edgevib.daemon.sources.mqtt import make_client
+from edgevib.pipelines.analysis import order_key
 
 __all__ = ["MqttIndicatorSink", "indicator_document"]
 
@@ -66,10 +67,6 @@ def indicator_document(site: str, axis: str, r: FrameResult, orders: tuple[str, 
 
 
 def _order_key(order: float) -> str:
-    try:
-        from edgevib.pipelines.analysis import order_key
-    except ImportError:
-        return f"{order:g}x"
     return str(order_key(order))
 
 
