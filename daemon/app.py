@@ -31,7 +31,7 @@ A sink that fails is logged (rate-limited) and never stops the others.  :meth:`D
 configuration while points whose configuration is unchanged keep their assembly buffers, queues and trends.
 
 Seams for other layers: ``Daemon.add_sink`` (before ``start``); the alarm layer's factory
-``edgevib.daemon.alarms.sink.create_sink(config, daemon) -> FrameSink | None`` is used when it exists; any sink
+``edgevib.daemon.alarms.sink.create_sink(config, daemon) -> FrameSink | None`` (None when alarms are off); any sink
 with a ``state_text(point_id) -> str | None`` method feeds the demo table's alarm column; ``on_ready`` /
 ``on_stopping`` callbacks (systemd notifications).
 """
