@@ -350,6 +350,7 @@ class Daemon:
             with contextlib.suppress(Exception):
                 cb()
         deadline = time.monotonic() + timeout_s
+        self.ingest.closing = True  # sources now close on purpose: not a lost connection
         for src in self.sources:
             with contextlib.suppress(Exception):
                 await asyncio.wait_for(src.stop(), max(0.1, deadline - time.monotonic()))

@@ -260,6 +260,7 @@ class BlockIngest:
         self.on_frames = on_frames or (lambda _stream: None)
         self.clock_ns = clock_ns
         self.log = RateLimitedLogger(get_logger("edgevib.ingest"), interval_s=10.0)
+        self.closing = False  # set by the daemon while it shuts down (sources close on purpose)
         self.streams: dict[str, PointStream] = {}
         self.speeds: dict[str, tuple[float, int]] = {}  # machine id -> (shaft Hz, received ns)
         self.configure(config)
@@ -362,7 +363,10 @@ class BlockIngest:
                 self.log.info(("conn", source), "source connected", source=source)
             self.stats.ever_connected.add(source)
         elif was and not connected:
-            self.log.warning(("conn", source), "source disconnected", source=source)
+            if self.closing:
+                self.log.info(("conn", source), "source closed", source=source)
+            else:
+                self.log.warning(("conn", source), "source disconnected", source=source)
         self.stats.connected[source] = connected
 
     # -- speed
