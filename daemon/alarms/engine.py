@@ -617,11 +617,11 @@ class AlarmLayer:
                 else:
                     now_s = self.clock()
                 for lim in self._by_point.get(pid, ()):
-                    st = self.alarms.get(lim.key)
-                    if st is None or st.shelved_until_s is None or now_s < st.shelved_until_s:
+                    shelved = self.alarms.get(lim.key)
+                    if shelved is None or shelved.shelved_until_s is None or now_s < shelved.shelved_until_s:
                         continue
                     spec = self.specs.get(lim.key) or self._spec(lim)
-                    st, trs = expire_shelf(st, now_s, spec)
+                    st, trs = expire_shelf(shelved, now_s, spec)
                     self.alarms[lim.key] = pend.alarms[lim.key] = st
                     for tr in trs:
                         self._alarm_event(None, lim, tr, pend)
