@@ -66,6 +66,17 @@ def cloud_event(*, type_: str, source: str, subject: str, data: dict[str, Any], 
             "subject": subject, "time": rfc3339(time_ns), "datacontenttype": "application/json", "data": data}
 
 
+async def _next_batch(outbox: Outbox, sink: str, wake: asyncio.Event) -> list[OutboxEvent]:
+    """The next pending events of ``sink``; when there are none, an empty list after waiting (at most 5 s) for
+    ``wake`` (set when an event is committed)."""
+    batch = await asyncio.to_thread(outbox.pending, sink, BATCH)
+    if not batch:
+        wake.clear()
+        with contextlib.suppress(TimeoutError):
+            await asyncio.wait_for(wake.wait(), timeout=5.0)
+    return batch
+
+
 class MqttFeed:
     """Publishes pending outbox events to the feed broker with QoS 1 and keeps the retained state topics fresh.
 
@@ -196,11 +207,8 @@ class MqttFeed:
                 await self._connected.wait()
                 if self._stopping:
                     break
-                batch = await asyncio.to_thread(self.outbox.pending, self.sink, BATCH)
+                batch = await _next_batch(self.outbox, self.sink, self._wake)
                 if not batch:
-                    self._wake.clear()
-                    with contextlib.suppress(TimeoutError):
-                        await asyncio.wait_for(self._wake.wait(), timeout=5.0)
                     continue
                 done = await self._send(batch)
                 if done:
@@ -276,11 +284,8 @@ class WebhookFeed:
     async def run(self) -> None:
         delay = self.cfg.retry_min_s
         while not self._stopping:
-            batch = await asyncio.to_thread(self.outbox.pending, self.sink, BATCH)
+            batch = await _next_batch(self.outbox, self.sink, self._wake)
             if not batch:
-                self._wake.clear()
-                with contextlib.suppress(TimeoutError):
-                    await asyncio.wait_for(self._wake.wait(), timeout=5.0)
                 continue
             for e in batch:
                 if self._stopping:
