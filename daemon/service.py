@@ -42,6 +42,7 @@ from edgevib.daemon.config import (
 )
 from edgevib.daemon.interfaces import ConfigError, FrameResult
 from edgevib.daemon.logs import configure_logging, get_logger
+from edgevib.daemon.systemd import Notifier, watchdog_interval_s, watchdog_loop
 
 __all__ = [
     "configure_check_config",
@@ -151,12 +152,6 @@ def state_dir_problem(path: str) -> str | None:
     return None
 
 
-def _notifier() -> Any:
-    from edgevib.daemon import systemd
-
-    return systemd.Notifier.from_env(), systemd
-
-
 async def serve(cfg: Config, *, config_path: Path | None = None, metrics_listen: tuple[str, int] | None = None,
                 args: argparse.Namespace | None = None, stop: asyncio.Event | None = None,
                 on_started: Callable[[Any], None] | None = None, **daemon_kwargs: Any) -> int:
@@ -166,7 +161,7 @@ async def serve(cfg: Config, *, config_path: Path | None = None, metrics_listen:
     loop = asyncio.get_running_loop()
     stop = stop or asyncio.Event()
     daemon = Daemon(cfg, metrics_listen=metrics_listen, **daemon_kwargs)
-    notifier, systemd = _notifier()
+    notifier = Notifier.from_env()  # a no-op outside systemd
     tasks: list[asyncio.Task[Any]] = []
 
     def status() -> str:
@@ -177,8 +172,7 @@ async def serve(cfg: Config, *, config_path: Path | None = None, metrics_listen:
         if config_path is None:  # the demo: a hang-up of its terminal ends it
             stop.set()
             return
-        if notifier is not None:
-            notifier.reloading("reloading configuration")
+        notifier.reloading("reloading configuration")
         try:
             new = await asyncio.to_thread(load_config, config_path)
             if args is not None:
@@ -190,8 +184,7 @@ async def serve(cfg: Config, *, config_path: Path | None = None, metrics_listen:
                       error=str(exc))
         except Exception as exc:
             log.error("configuration reload failed; the running configuration stays", error=repr(exc))
-        if notifier is not None:
-            notifier.ready(status())
+        notifier.ready(status())
 
     installed: list[int] = []
     for sig in (signal.SIGINT, signal.SIGTERM):
@@ -208,10 +201,9 @@ async def serve(cfg: Config, *, config_path: Path | None = None, metrics_listen:
             log.error("daemon cannot start", error=str(exc))
             print(f"edgevib: cannot start: {exc}", file=sys.stderr)
             return 1
-        if notifier is not None:
-            notifier.ready(status())
-            interval = systemd.watchdog_interval_s()
-            tasks.append(loop.create_task(systemd.watchdog_loop(notifier, interval)))
+        notifier.ready(status())
+        if notifier.enabled:
+            tasks.append(loop.create_task(watchdog_loop(notifier, watchdog_interval_s())))
 
             async def status_loop() -> None:
                 while True:
@@ -223,8 +215,7 @@ async def serve(cfg: Config, *, config_path: Path | None = None, metrics_listen:
             on_started(daemon)
         await stop.wait()
         log.info("stopping")
-        if notifier is not None:
-            notifier.stopping("stopping")
+        notifier.stopping("stopping")
         await daemon.stop(timeout_s=STOP_TIMEOUT_S)
         return 0
     finally:
@@ -234,9 +225,8 @@ async def serve(cfg: Config, *, config_path: Path | None = None, metrics_listen:
         for signum in installed:
             with contextlib.suppress(Exception):
                 loop.remove_signal_handler(signum)
-        if notifier is not None:
-            with contextlib.suppress(Exception):
-                notifier.close()
+        with contextlib.suppress(Exception):
+            notifier.close()
 
 
 # ---------------------------------------------------------------------------------------------- demo
