@@ -385,15 +385,9 @@ class Daemon:
     # ------------------------------------------------------------------------------------------ status
 
     @property
-    def _inflight(self) -> set[asyncio.Task[None]]:
-        """Analysis batches running and sink tasks with results still to hand over (empty when idle)."""
-        busy = {ch.task for ch in self._channels if ch.backlog and ch.task is not None}
-        return self._batches | busy
-
-    @property
     def idle(self) -> bool:
         """No analysis batch running and every sink has taken every result."""
-        return not self._inflight
+        return not self._batches and not any(ch.backlog and ch.task is not None for ch in self._channels)
 
     @property
     def ready(self) -> bool:

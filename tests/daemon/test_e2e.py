@@ -112,7 +112,7 @@ async def test_simulate_cli_broker_daemon_matches_truth_file(mosquitto: Any, tmp
         assert proc.returncode == 0, err.decode()
         truth = json.loads(truth_path.read_text())
         async with asyncio.timeout(60):
-            while any(d.stats.frames_analysed[p.id] < 3 for p in cfg.points) or d._inflight or any(
+            while any(d.stats.frames_analysed[p.id] < 3 for p in cfg.points) or not d.idle or any(
                     s.queue for s in d.ingest.streams.values()):
                 await asyncio.sleep(0.1)
         assert d.metrics.url is not None
