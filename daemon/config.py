@@ -28,7 +28,7 @@ import tomllib
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
 from contextvars import ContextVar
-from dataclasses import dataclass, field, fields, is_dataclass
+from dataclasses import dataclass, field, fields, is_dataclass, replace
 from pathlib import Path
 from typing import Any, TypeAlias
 from urllib.parse import urlsplit
@@ -887,7 +887,7 @@ def parse_config(doc: dict[str, Any], base_dir: str | os.PathLike[str] = ".", di
     """Validate a parsed TOML document; relative file paths resolve against ``base_dir``."""
     with _collect_deferred() as deferred:
         cfg = _parse_config(doc, Path(base_dir), digest)
-        return _replace(cfg, deferred=tuple(deferred))
+        return replace(cfg, deferred=tuple(deferred))
 
 
 def _parse_config(doc: dict[str, Any], base: Path, digest: str) -> Config:
@@ -1002,13 +1002,7 @@ def _parse_config(doc: dict[str, Any], base: Path, digest: str) -> Config:
                  skipped_sensors=tuple((p.source, p.sensor) for p in skipped), base_dir=str(base), digest=digest)
     from edgevib.daemon.alarms.config import parse_alarm_config  # it builds on this module's helpers
 
-    return _replace(cfg, alarms=parse_alarm_config(doc, cfg))
-
-
-def _replace(cfg: Config, **changes: Any) -> Config:
-    import dataclasses
-
-    return dataclasses.replace(cfg, **changes)
+    return replace(cfg, alarms=parse_alarm_config(doc, cfg))
 
 
 def _parse_publish_mqtt(t: _Table, sources: dict[str, SourceConfig], base: Path, site: str) -> PublishMqttConfig:
@@ -1023,9 +1017,7 @@ def _parse_publish_mqtt(t: _Table, sources: dict[str, SourceConfig], base: Path,
             raise ConfigError(t.key("source"), f"unknown source {source!r} (configured: {', '.join(sources)})")
         if not isinstance(src, MqttSourceConfig):
             raise ConfigError(t.key("source"), f"source {source!r} is {src.type}, not mqtt")
-        import dataclasses
-
-        conn = dataclasses.replace(src.connection, client_id=src.connection.client_id + "-publish")
+        conn = replace(src.connection, client_id=src.connection.client_id + "-publish")
     elif t.has("url"):
         conn = _parse_mqtt_connection(t, base, f"edgevib-{site}-publish")
     elif enabled:
