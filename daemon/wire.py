@@ -191,6 +191,12 @@ def _int16_scale(x: npt.NDArray[np.float64], scale: float | None) -> float:
     return scale_f
 
 
+def _quantize_i16(x: npt.NDArray[np.float64], scale: float) -> bytes:
+    """Little-endian int16 counts ``round(x / scale)``, saturating at the int16 range."""
+    with np.errstate(invalid="ignore"):
+        return bytes(np.clip(np.rint(x / scale), -32768, 32767).astype("<i2").tobytes())
+
+
 def encode_json(block: Block, encoding: Literal["f32le-b64", "i16le-b64", "array"] = "f32le-b64",
                 scale: float | None = None) -> bytes:
     """Encode ``block`` in the JSON form.
@@ -208,10 +214,8 @@ def encode_json(block: Block, encoding: Literal["f32le-b64", "i16le-b64", "array
         doc["data"] = base64.b64encode(_to_f32(x).tobytes()).decode("ascii")
     elif encoding == "i16le-b64":
         scale = _int16_scale(x, scale)
-        with np.errstate(invalid="ignore"):
-            counts = np.clip(np.rint(x / scale), -32768, 32767).astype("<i2")
-        doc["scale"] = float(scale)
-        doc["data"] = base64.b64encode(counts.tobytes()).decode("ascii")
+        doc["scale"] = scale
+        doc["data"] = base64.b64encode(_quantize_i16(x, scale)).decode("ascii")
     elif encoding == "array":
         doc["data"] = [float(v) for v in x]
     else:
@@ -232,9 +236,7 @@ def encode_binary(block: Block, dtype: Literal["float32", "int16"] = "float32",
             scale_out = float(np.float32(scale))  # the header carries float32: quantize with the scale sent
         if not math.isfinite(scale_out) or scale_out == 0:
             raise InvalidField(f"scale {scale!r} does not fit the binary header's float32")
-        code = _DTYPE_I16
-        with np.errstate(invalid="ignore"):
-            body = np.clip(np.rint(x / scale_out), -32768, 32767).astype("<i2").tobytes()
+        code, body = _DTYPE_I16, _quantize_i16(x, scale_out)
     else:
         raise InvalidField(f"unknown binary dtype {dtype!r}; expected float32 or int16")
     header = _HEADER.pack(_MAGIC + bytes([WIRE_VERSION]), code, UNITS.index(block.unit), len(sid),
