@@ -200,9 +200,6 @@ class AlarmSettings:
     capture: CaptureConfig = field(default_factory=CaptureConfig)
     config_digest: str = ""
 
-    def limits_of(self, point: str) -> tuple[LimitConfig, ...]:
-        return tuple(lim for lim in self.limits if lim.point == point)
-
 
 # --------------------------------------------------------------------------------------------- parsing
 
