@@ -326,10 +326,15 @@ class AnalysisKernel:
         td = centred_moments(x, mean)
 
         estimate = ~np.isfinite(f_given)
+        # A given speed below the plan's lowest shaft speed (a stopped or coasting machine: 0 from a speed tag is
+        # valid) keeps the time-domain and velocity indicators; orders and envelope families need a speed the
+        # frame resolves, so they are absent for it.
+        slow = ~estimate & (f_given < plan.speed_range_hz[0])
         stop = self._vel_stop
         if estimate.any():
             stop = max(stop, self._speed_stop)
-        known_max = float(np.nanmax(f_given)) if (~estimate).any() else plan.speed_range_hz[1]
+        fast = ~estimate & ~slow
+        known_max = float(np.max(f_given[fast])) if fast.any() else plan.speed_range_hz[1]
         stop = min(n // 2, max(stop, math.ceil(max(plan.orders) * known_max * (1 + plan.order_tolerance)
                                                / self._df) + 3))
         acc = hann_lines(spec, stop)
@@ -345,7 +350,8 @@ class AnalysisKernel:
             est = estimate_speed_hz(vel_pow[estimate], acc_pow[estimate], plan.speed_range_hz, self._df,
                                     SPEED_HARMONICS)
             shaft[estimate] = est
-        orders = order_amplitudes_mm_s(vel_pow, shaft, plan.orders, plan.order_tolerance, self._df, n)
+        shaft_usable = np.where(slow, np.nan, shaft)
+        orders = order_amplitudes_mm_s(vel_pow, shaft_usable, plan.orders, plan.order_tolerance, self._df, n)
 
         # velocity and displacement waveforms from the band's Hann lines only (for peak and peak-to-peak): the
         # windowed waveform, divided by the window over the frame's central half, is the band-limited waveform
@@ -365,16 +371,17 @@ class AnalysisKernel:
         disp_pp = _refined_peak(wave[1]) + _refined_peak(-wave[1])
 
         fam: tuple[FloatArray, FloatArray, FloatArray, npt.NDArray[np.int64]] | None = None
-        has_speed = np.isfinite(shaft)
+        has_speed = np.isfinite(shaft_usable)
         if self._env and has_speed.any():
             e_lo, e_hi = self._env_lines
             env = demodulate(spec, e_lo, e_hi, self._env_m)
             amp = envelope_spectrum(env, n, self._env_stop)
-            expected = shaft[:, None] * self._mult[None, :]
+            expected = shaft_usable[:, None] * self._mult[None, :]
             fam = search_families(amp, expected, plan.slip_tolerance, plan.harmonics, self._df)
 
         keys = [order_key(o) for o in plan.orders]
         shaft_l = shaft.tolist()
+        usable_l = has_speed.tolist()
         est_l = estimate.tolist()
         orders_l = orders.tolist()
         cols = (td.rms_g, td.peak_g, td.peak_to_peak_g, td.crest_factor, td.kurtosis, td.skewness, td.mean_g,
@@ -386,9 +393,10 @@ class AnalysisKernel:
         for ch in range(c):
             f = shaft_l[ch]
             known = math.isfinite(f)
-            order_map = {key: a for key, a in zip(keys, orders_l[ch], strict=True) if known and math.isfinite(a)}
+            usable = usable_l[ch]
+            order_map = {key: a for key, a in zip(keys, orders_l[ch], strict=True) if usable and math.isfinite(a)}
             families: dict[str, FamilyResult] = {}
-            if fam_l is not None and known:
+            if fam_l is not None and usable:
                 freq, amp_g, snr, found = (part[ch] for part in fam_l)
                 for j, name in enumerate(FAMILIES):
                     if math.isfinite(freq[j]):
@@ -455,11 +463,11 @@ def _shaft_array(shaft_hz: npt.ArrayLike | None, channels: int, fs_hz: float) ->
         f = np.full(channels, float(f))
     if f.shape != (channels,):
         raise SignalError(f"{f.size} shaft speeds given for {channels} channels")
-    bad = np.isfinite(f) & ((f <= 0) | (f >= fs_hz / 2)) | np.isinf(f)
+    bad = np.isfinite(f) & ((f < 0) | (f >= fs_hz / 2)) | np.isinf(f)
     if bad.any():
         ch = int(np.flatnonzero(bad)[0])
-        raise SignalError(f"channel {ch}: shaft speed {f[ch]:g} Hz must be > 0 and below Nyquist {fs_hz / 2:g} Hz "
-                          "(NaN means unknown)")
+        raise SignalError(f"channel {ch}: shaft speed {f[ch]:g} Hz must be ≥ 0 and below Nyquist {fs_hz / 2:g} Hz "
+                          "(0 is a standing shaft; NaN means unknown)")
     return f
 
 
@@ -482,7 +490,10 @@ def analyze_frames(x_g: npt.ArrayLike, plan: AnalysisPlan,
     shaft_hz : None, float or array_like of shape (channels,)
         Shaft speeds in Hz; None or NaN entries are estimated from the spectrum within ``plan.speed_range_hz``
         (``shaft_estimated=True``).  Where no speed can be determined, ``shaft_hz`` is None and the orders and
-        envelope families are empty.
+        envelope families are empty.  A given speed below ``plan.speed_range_hz[0]`` — 0 for a standing shaft, or
+        a machine coasting or running up below the speeds its frames resolve — is valid: it is reported as
+        ``shaft_hz``, the time-domain and velocity indicators are computed, and the orders and envelope families
+        are absent (empty), not zero.
 
     Returns
     -------
@@ -493,6 +504,6 @@ def analyze_frames(x_g: npt.ArrayLike, plan: AnalysisPlan,
     Raises
     ------
     SignalError
-        NaN/Inf samples, wrong shape or frame length, non-positive given speeds.
+        NaN/Inf samples, wrong shape or frame length, negative given speeds or speeds at or above Nyquist.
     """
     return kernel_for(plan).analyze(x_g, shaft_hz)

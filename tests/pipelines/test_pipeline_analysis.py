@@ -172,14 +172,32 @@ def test_bad_frames(bad: np.ndarray, match: str) -> None:
 
 @pytest.mark.parametrize("speeds, match", [
     ([24.7, 24.7], "2 shaft speeds given for 1 channels"),
-    ([-3.0], "shaft speed -3 Hz must be > 0"),
-    ([0.0], "must be > 0"),
+    ([-3.0], "shaft speed -3 Hz must be ≥ 0"),
     ([float("inf")], "shaft speed inf"),
     ([20000.0], "below Nyquist"),
 ])
 def test_bad_speeds(speeds: list[float], match: str) -> None:
     with pytest.raises(SignalError, match=match):
         analyze_frames(machine(), make_plan(FS, N), speeds)
+
+
+@pytest.mark.parametrize("speed_hz", [0.0, 2.0])
+def test_standing_or_slow_shaft_is_valid_input(speed_hz: float) -> None:
+    # A standing shaft (speed tag 0) or one below the plan's lowest speed (5 Hz here) is a machine state, not an
+    # error: the time-domain and velocity indicators are those of the same frame analysed without a speed (they
+    # do not depend on it); orders and envelope families are absent, not zero.
+    plan = make_plan(FS, N, envelope_band_hz=(4000.0, 9000.0), bearing=B6205)
+    x = np.concatenate([machine(seed=4), machine(seed=5)])
+    slow, running = analyze_frames(x, plan, [speed_hz, 24.7])
+    reference = analyze_frames(x[0], plan, [24.7])[0]
+    assert slow.shaft_hz == speed_hz and not slow.shaft_estimated
+    assert slow.orders_mm_s == {} and slow.envelope == {}
+    for name in ("acceleration_rms_g", "acceleration_peak_g", "kurtosis", "crest_factor", "velocity_rms_mm_s",
+                 "velocity_peak_mm_s", "displacement_pp_um"):
+        assert getattr(slow, name) == pytest.approx(getattr(reference, name), rel=1e-12), name
+    # the other channel of the batch is untouched by its neighbour's standing shaft
+    assert running == analyze_frames(x[1], plan, [24.7])[0]
+    assert list(running.orders_mm_s) == ["0.5x", "1x", "2x", "3x"] and running.envelope
 
 
 def test_scalar_speed_applies_to_all_channels() -> None:
