@@ -311,6 +311,27 @@ tests:
               summary: "P-101 P-101-DE-H: velocity_rms at danger level"
               description: {_d("EdgevibAlarmDanger")}
 
+  # A sensor fault: the sensor series and every limit series of the point read 3 (the alarm layer's collector
+  # marks all of them): one alert, for the sensor, not one per limit.
+  - interval: 1m
+    input_series:
+      - series: 'edgevib_alarm_state{{{LABELS}, indicator="sensor"}}'
+        values: '3x10'
+      - series: 'edgevib_alarm_state{{{LABELS}, indicator="velocity_rms_mm_s"}}'
+        values: '3x10'
+      - series: 'edgevib_alarm_state{{{LABELS}, indicator="kurtosis"}}'
+        values: '3x10'
+      - series: 'edgevib_alarm_state{{{LABELS}, indicator="bearing_bpfo_g"}}'
+        values: '3x10'
+    alert_rule_test:
+      - eval_time: 6m
+        alertname: EdgevibSensorFault
+        exp_alerts:
+          - exp_labels: {{severity: warning, indicator: sensor, {LABELS.replace('"', '').replace('=', ': ')}}}
+            exp_annotations:
+              summary: "P-101 P-101-DE-H: sensor fault suspected"
+              description: {_d("EdgevibSensorFault")}
+
   # The last frame stops advancing at minute 5 (frames every minute before): silent alert after 5 + 5 minutes.
   - interval: 1m
     input_series:
