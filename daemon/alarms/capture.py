@@ -22,6 +22,7 @@ from scipy.io import wavfile
 
 from edgevib.daemon.alarms.config import CaptureConfig
 from edgevib.daemon.interfaces import FrameResult
+from edgevib.daemon.timestamps import rfc3339_utc
 
 __all__ = ["CaptureStore"]
 
@@ -98,8 +99,7 @@ class CaptureStore:
         sidecar = {
             "site": site, "point": result.point_id, "machine": result.machine_id,
             "t_end_ns": t, "t_start_ns": t - round(samples.size / result.fs_hz * 1e9),
-            "time": time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(t // 1_000_000_000)) +
-            f".{(t // 1000) % 1_000_000:06d}Z",
+            "time": rfc3339_utc(t),
             "fs_hz": result.fs_hz, "wav_rate_hz": rate, "n_samples": int(samples.size), "unit": "g",
             "indicator": indicator, "transition": transition, "severity": severity, "event_id": event_id,
             "iso_zone": result.iso_zone, "indicators": _plain(result.indicators), "limits": _plain(limits),

@@ -53,6 +53,7 @@ from edgevib.daemon.alarms.feed import (
 from edgevib.daemon.alarms.outbox import Database, Outbox, OutboxEvent
 from edgevib.daemon.alarms.state import Baseline, SensorState, StateStore, restart_tracking
 from edgevib.daemon.interfaces import FrameResult
+from edgevib.daemon.timestamps import rfc3339_utc_s
 from edgevib.pipelines.alarm import (
     AlarmState,
     Level,
@@ -781,7 +782,7 @@ class AlarmLayer:
                        "state": ("normal", "alert", "danger", "sensor-fault")[sev],
                        "suppressed": self.suppressed.get(pid),
                        "sensor": {"fault": s.fault, "detail": s.detail or None},
-                       "time": self.last_frame.get(pid),
+                       "time": None if pid not in self.last_frame else rfc3339_utc_s(self.last_frame[pid]),
                        "alarms": {k[1]: {kk: v for kk, v in self._alarm_row(k).items() if kk not in ("point",)}
                                   for k in self.limits if k[0] == pid}}
                 topic = self.settings.feed.state_topic.format(site=self.settings.site, machine=p.machine, point=pid)

@@ -21,7 +21,6 @@ import asyncio
 import contextlib
 import json
 import ssl
-import time
 import urllib.error
 import urllib.request
 from collections.abc import Callable
@@ -33,6 +32,7 @@ from paho.mqtt.enums import CallbackAPIVersion
 
 from edgevib.daemon.alarms.config import FeedConfig, WebhookConfig
 from edgevib.daemon.alarms.outbox import Outbox, OutboxEvent, new_event_id
+from edgevib.daemon.timestamps import rfc3339_utc
 
 __all__ = [
     "ALARM_TYPE",
@@ -41,7 +41,6 @@ __all__ = [
     "MqttFeed",
     "WebhookFeed",
     "cloud_event",
-    "rfc3339",
 ]
 
 log = structlog.get_logger("edgevib.alarms.feed")
@@ -53,17 +52,11 @@ PUBACK_TIMEOUT_S = 15.0
 BATCH = 50
 
 
-def rfc3339(t_ns: int) -> str:
-    """``2026-12-01T22:32:04.123456Z`` (UTC, microseconds)."""
-    return time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(t_ns // 1_000_000_000)) + \
-        f".{(t_ns // 1000) % 1_000_000:06d}Z"
-
-
 def cloud_event(*, type_: str, source: str, subject: str, data: dict[str, Any], time_ns: int,
                 event_id: str | None = None) -> dict[str, Any]:
     """A CloudEvents 1.0 event in structured mode (all required and the used optional attributes)."""
     return {"specversion": "1.0", "id": event_id or new_event_id(), "source": source, "type": type_,
-            "subject": subject, "time": rfc3339(time_ns), "datacontenttype": "application/json", "data": data}
+            "subject": subject, "time": rfc3339_utc(time_ns), "datacontenttype": "application/json", "data": data}
 
 
 async def _next_batch(outbox: Outbox, sink: str, wake: asyncio.Event) -> list[OutboxEvent]:

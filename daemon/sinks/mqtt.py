@@ -13,7 +13,6 @@ import asyncio
 import contextlib
 import json
 import time
-from datetime import UTC, datetime
 from typing import Any
 
 import paho.mqtt.client as mqtt
@@ -22,6 +21,7 @@ from edgevib.daemon.config import G_M_S2, Config, MqttConnection
 from edgevib.daemon.interfaces import FrameResult, SourceError
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 from edgevib.daemon.sources.mqtt import make_client
+from edgevib.daemon.timestamps import rfc3339_utc
 from edgevib.pipelines.analysis import order_key
 
 __all__ = ["MqttIndicatorSink", "indicator_document"]
@@ -49,7 +49,7 @@ def indicator_document(site: str, axis: str, r: FrameResult, orders: tuple[str, 
                     for fam, f in ind.envelope.items()} or None
     return {
         "site": site, "machine": r.machine_id, "point": r.point_id, "axis": axis,
-        "time": datetime.fromtimestamp(r.t_end_ns / 1e9, UTC).isoformat(timespec="milliseconds"),
+        "time": rfc3339_utc(r.t_end_ns),
         "t_end_ns": r.t_end_ns, "fs_hz": r.fs_hz, "frame_samples": int(r.samples.shape[0]),
         "velocity_rms_mm_s": _num(ind.velocity_rms_mm_s), "velocity_peak_mm_s": _num(ind.velocity_peak_mm_s),
         "velocity_rms_trend_mm_s": _num(trend.get("velocity_rms_mm_s")),
