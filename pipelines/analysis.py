@@ -39,7 +39,7 @@ from edgevib.pipelines.envelope import (
     min_decimated_length,
     search_families,
 )
-from edgevib.pipelines.indicators import as_channels, centred_moments, finite_mean
+from edgevib.pipelines.indicators import as_frames, centred_moments, finite_mean
 from edgevib.pipelines.spectrum import (
     G_MM_S2,
     band_lines,
@@ -308,7 +308,7 @@ class AnalysisKernel:
         """Indicators of frames ``x_g`` (channels, n_samples) in g; see :func:`analyze_frames`."""
         plan = self.plan
         n = self._n
-        x = as_channels(x_g)
+        x = as_frames(x_g)  # float64, or float32 as the daemon's frames are (not widened)
         if x.shape[1] != n:
             raise SignalError(f"frames have {x.shape[1]} samples, the plan expects {n}")
         c = x.shape[0]
@@ -319,7 +319,8 @@ class AnalysisKernel:
         x32 = np.empty(x.shape, dtype=np.float32)
         np.subtract(x, x0, out=x32, casting="same_kind")
         spec = _fft.rfft(x32)
-        mean = spec[:, 0].real / n + x0[:, 0]  # line 0 is the sum of the samples (NaN/Inf anywhere reach it)
+        # line 0 is the sum of the samples (NaN/Inf anywhere reach it)
+        mean = spec[:, 0].real / n + x0[:, 0].astype(np.float64)
         if not np.isfinite(spec[:, 0]).all():
             finite_mean(x)  # raises SignalError naming the channel and the count
         spec[:, 0] = 0.0  # the mean, removed (lines ≥ 1 are those of the centred frame)

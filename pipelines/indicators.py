@@ -10,13 +10,14 @@ Crest factor is true peak |x−μ|max over r.m.s. (a sine √2).  For a constant
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import numpy.typing as npt
 
 from edgevib.pipelines.types import SignalError
 
-__all__ = ["TimeDomain", "as_channels", "centred_moments", "finite_mean", "time_domain"]
+__all__ = ["TimeDomain", "as_channels", "as_frames", "centred_moments", "finite_mean", "time_domain"]
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -40,6 +41,20 @@ def as_channels(x_g: npt.ArrayLike, min_samples: int = 2) -> FloatArray:
         x = np.asarray(x_g, dtype=np.float64)
     except (TypeError, ValueError) as exc:
         raise SignalError(f"samples are not numeric: {exc}") from exc
+    out: FloatArray = _check_shape(x, min_samples)
+    return out
+
+
+def as_frames(x_g: npt.ArrayLike, min_samples: int = 2) -> npt.NDArray[np.floating[Any]]:
+    """Like :func:`as_channels`, except that a float32 array stays float32 (no widening copy: the daemon's frames
+    are float32, and the analysis transforms in single precision anyway)."""
+    if isinstance(x_g, np.ndarray) and x_g.dtype == np.float32:
+        out: npt.NDArray[np.floating[Any]] = _check_shape(x_g, min_samples)
+        return out
+    return as_channels(x_g, min_samples)
+
+
+def _check_shape(x: npt.NDArray[Any], min_samples: int) -> npt.NDArray[Any]:
     if x.ndim == 1:
         x = x[None, :]
     if x.ndim != 2:
@@ -51,17 +66,17 @@ def as_channels(x_g: npt.ArrayLike, min_samples: int = 2) -> FloatArray:
     return x
 
 
-def _raise_non_finite(x: FloatArray) -> None:
+def _raise_non_finite(x: npt.NDArray[np.floating[Any]]) -> None:
     bad = ~np.isfinite(x)
     per_channel = bad.sum(axis=-1)
     ch = int(np.flatnonzero(per_channel)[0]) if per_channel.any() else 0
     raise SignalError(f"channel {ch}: {int(per_channel[ch])} of {x.shape[-1]} samples are NaN or infinite")
 
 
-def finite_mean(x: FloatArray) -> FloatArray:
+def finite_mean(x: npt.NDArray[np.floating[Any]]) -> FloatArray:
     """Per-channel means of ``x`` (channels, samples); raises :class:`SignalError` on NaN/Inf (which reach the
     mean, so the check costs no extra pass)."""
-    mean: FloatArray = x.mean(axis=-1)
+    mean: FloatArray = x.mean(axis=-1, dtype=np.float64)
     if not np.isfinite(mean).all():
         _raise_non_finite(x)
         raise SignalError("samples overflow float64")  # finite but their sum overflows
@@ -71,7 +86,7 @@ def finite_mean(x: FloatArray) -> FloatArray:
 BLOCK_SAMPLES = 1 << 17  # rows are processed in blocks of about this many samples (512 kB of float32: in cache)
 
 
-def centred_moments(x: FloatArray, mean: FloatArray) -> TimeDomain:
+def centred_moments(x: npt.NDArray[np.floating[Any]], mean: FloatArray) -> TimeDomain:
     """Indicators of frames ``x`` (channels, samples) about their means ``mean`` (channels,).
 
     The centred samples are formed block by block in single precision on purpose: each block of rows stays in
