@@ -66,7 +66,7 @@ from edgevib.pipelines.types import AnalysisPlan, FrameIndicators, PipelineError
 
 __all__ = ["LOSSLESS_BACKLOG", "SINK_BACKLOG_PER_POINT", "AnalyzeFn", "Daemon", "SinkChannel", "run"]
 
-AnalyzeFn = Callable[[npt.NDArray[np.float64], AnalysisPlan, "npt.NDArray[np.float64] | None"],
+AnalyzeFn = Callable[[npt.NDArray[np.float32], AnalysisPlan, "npt.NDArray[np.float64] | None"],
                      list[FrameIndicators]]
 MAX_BATCH = 64
 SINK_BACKLOG_PER_POINT = 4  # undelivered results a lossy sink keeps per point before dropping the oldest
@@ -74,7 +74,7 @@ LOSSLESS_BACKLOG = 4 * MAX_BATCH  # undelivered results of a lossless sink above
 log = get_logger("edgevib.daemon")
 
 
-def _default_analyze(x: npt.NDArray[np.float64], plan: AnalysisPlan,
+def _default_analyze(x: npt.NDArray[np.float32], plan: AnalysisPlan,
                      shaft_hz: npt.NDArray[np.float64] | None) -> list[FrameIndicators]:
     from edgevib.pipelines.analysis import analyze_frames
 
@@ -507,7 +507,8 @@ class Daemon:
                      else None for j in jobs]
             shaft_arr = None if all(s is None for s in shaft) else \
                 np.array([math.nan if s is None else s for s in shaft], dtype=np.float64)
-            x = np.stack([j.samples for j in jobs])
+            x = np.stack([j.samples for j in jobs], dtype=np.float32)  # one array per batch: each result's
+            x.flags.writeable = False  # samples are a read-only view of its row
             loop = asyncio.get_running_loop()
             try:
                 indicators = await loop.run_in_executor(self._executor, self.analyze, x, plan, shaft_arr)
@@ -517,15 +518,16 @@ class Daemon:
                 self.rlog.error(("analysis", tuple(sorted(pids))), "analysis failed", points=sorted(pids),
                                 error=repr(exc))
                 return
-            results = self._results(jobs, indicators)
+            results = self._results(jobs, indicators, x)
             if results:
                 self._publish(results)
         finally:
             self._busy.difference_update(pids)
 
-    def _results(self, jobs: list[FrameJob], indicators: list[FrameIndicators]) -> list[FrameResult]:
+    def _results(self, jobs: list[FrameJob], indicators: list[FrameIndicators],
+                 frames: npt.NDArray[np.float32]) -> list[FrameResult]:
         results = []
-        for job, ind in zip(jobs, indicators, strict=True):
+        for job, ind, samples in zip(jobs, indicators, frames, strict=True):
             st = self.points.get(job.point_id)
             if st is None:  # removed by a reload while in flight
                 continue
@@ -533,7 +535,7 @@ class Daemon:
             zone = _iso_zone(ind.velocity_rms_mm_s, st.machine)
             r = FrameResult(point_id=job.point_id, machine_id=st.machine.id, t_end_ns=job.t_end_ns,
                             received_ns=job.received_ns, fs_hz=st.config.fs_hz, indicators=ind, iso_zone=zone,
-                            samples=job.samples, extra={"trend": trend, "axis": st.config.axis,
+                            samples=samples, extra={"trend": trend, "axis": st.config.axis,
                                                         "sensor_type": st.config.sensor_type,
                                                         "speed_mode": st.machine.speed_mode})
             self.latest[job.point_id] = r

@@ -49,7 +49,8 @@ class SourceError(EdgevibError):
 class FrameResult:
     """One analysed frame of one measurement point, as handed to every :class:`FrameSink`.
 
-    ``samples`` is the raw frame in g (read-only; for waveform capture), ``t_end_ns`` the time just after its
+    ``samples`` is the raw frame in g (float32, read-only: a row of the analysis batch's array; for waveform
+    capture and sensor-health checks), ``t_end_ns`` the time just after its
     last sample, ``received_ns`` the wall-clock time its last block arrived (for ingest-to-metric latency).
     ``iso_zone`` is ``"A".."D"`` when the point's machine has a group and support.
     """
@@ -61,7 +62,7 @@ class FrameResult:
     fs_hz: float
     indicators: FrameIndicators
     iso_zone: str | None
-    samples: npt.NDArray[np.float64] = field(repr=False)
+    samples: npt.NDArray[np.float32] = field(repr=False)
     extra: dict[str, Any] = field(default_factory=dict)
 
 

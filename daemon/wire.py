@@ -122,7 +122,8 @@ class Block:
     """One block of samples from one sensor.
 
     ``samples`` is a 1-D float array in ``unit`` (``"g"`` or ``"m/s2"``); ``t0_ns`` is the time of the first
-    sample in nanoseconds since the Unix epoch.  The end time and duration are derived, not stored.
+    sample in nanoseconds since the Unix epoch.  The end time and duration are derived, not stored.  A decoded
+    block's samples are read-only: float32 (a view of the payload) for the float32 forms, float64 otherwise.
     """
 
     sensor_id: str
@@ -313,16 +314,22 @@ def _check_int(name: str, value: object, lo: int, hi: int) -> int:
 
 def _finish(sid: str, seq: int, t0_ns: int, fs: float, unit: str, samples: npt.NDArray[Any],
             max_samples: int) -> Block:
+    """The block, with ``samples`` read-only: float32 payloads stay float32 (a view of the payload, no copy),
+    everything else float64."""
     n = samples.shape[0]
     if n == 0:
         raise LengthMismatch("block has no samples")
     if n > max_samples:
         raise LengthMismatch(f"block has {n} samples, more than the limit of {max_samples}")
-    x = samples.astype(np.float64)
-    if not np.isfinite(x).all():
+    x = samples if samples.dtype in (np.float32, np.float64) else samples.astype(np.float64)
+    with np.errstate(over="ignore", invalid="ignore"):
+        total = x.sum()  # NaN and ±Inf reach the sum: one pass, no mask, for the usual finite block
+    if not np.isfinite(total):
         bad = int(np.count_nonzero(~np.isfinite(x)))
-        raise NonFiniteSamples(f"{bad} of {n} samples are NaN or infinite")
-    x.flags.writeable = False
+        if bad:  # (a finite block whose float32 sum overflowed passes)
+            raise NonFiniteSamples(f"{bad} of {n} samples are NaN or infinite")
+    if x.flags.writeable:
+        x.flags.writeable = False
     return Block(sensor_id=sid, seq=seq, t0_ns=t0_ns, fs_hz=fs, unit=unit, samples=x)
 
 
@@ -350,14 +357,14 @@ def _decode_binary(data: bytes, max_samples: int) -> Block:
         raise InvalidField("sensor id is not valid UTF-8") from exc
     _check_sensor_id(sid)
     fs_f = _check_fs(fs)
-    body = data[_HEADER.size + sid_len:]
+    start = _HEADER.size + sid_len
     if code == _DTYPE_F32:
-        samples = np.frombuffer(body, dtype="<f4")
+        samples = np.frombuffer(data, dtype="<f4", count=n, offset=start)  # a view of the payload
     else:
         if not math.isfinite(scale) or scale == 0:
             raise InvalidField(f"int16 block scale {scale!r} must be finite and non-zero")
         with np.errstate(over="ignore"):
-            samples = np.frombuffer(body, dtype="<i2").astype(np.float64) * float(scale)
+            samples = np.frombuffer(data, dtype="<i2", count=n, offset=start).astype(np.float64) * float(scale)
     return _finish(sid, int(seq), int(t0_ns), fs_f, UNITS[unit_code], samples, max_samples)
 
 
