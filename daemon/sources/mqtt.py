@@ -1,9 +1,10 @@
 """MQTT source (paho-mqtt 2.x): subscribe to block topics and speed tags, hand raw payloads to the ingest.
 
-paho runs its network loop in its own thread (``loop_start``).  Its callbacks only copy the payload and hand it to
-the event loop with ``loop.call_soon_threadsafe``; decoding, validation and analysis never run on paho's thread,
-and no exception escapes a callback.  The number of payloads waiting for the event loop is bounded: beyond it
-new payloads are dropped and counted (reason ``overload``), so a flood cannot exhaust memory.
+paho runs its network loop in its own thread (``loop_start``).  Its callbacks only hand the payload to the event
+loop: they append it to a hand-over queue and wake the loop with ``loop.call_soon_threadsafe`` only when no wake-up
+is pending yet (one per burst of messages, not one per message).  Decoding, validation and analysis never run on
+paho's thread, and no exception escapes a callback.  The number of payloads waiting for the event loop is bounded:
+beyond it new payloads are dropped and counted (reason ``overload``), so a flood cannot exhaust memory.
 
 Reconnection is paho's own loop with bounded exponential backoff (``reconnect_delay_set``); every (re)connect
 resubscribes in ``on_connect`` and reports the state through ``Ingest.connection`` (which counts reconnects).
@@ -23,6 +24,7 @@ import ssl
 import sys
 import threading
 import time
+from collections import deque
 from collections.abc import Iterable
 from typing import Any
 
@@ -122,6 +124,8 @@ class MqttSource:
         self._client: mqtt.Client | None = None
         self._lock = threading.Lock()
         self._pending = 0
+        self._inbox: deque[tuple[str, bytes, int]] = deque()  # paho thread → event loop, under _lock
+        self._wake_scheduled = False  # a _drain is queued on the loop: no need to wake it again
         self._overflow = 0
         self._oversize = 0
         self.rlog = RateLimitedLogger(log.bind(source=name), interval_s=10.0)
@@ -172,7 +176,11 @@ class MqttSource:
                     self._overflow += 1
                     return
                 self._pending += 1
-            self._to_loop(self._deliver, msg.topic, bytes(msg.payload), received_ns)
+                self._inbox.append((msg.topic, bytes(msg.payload), received_ns))
+                wake = not self._wake_scheduled
+                self._wake_scheduled = True
+            if wake:  # one hand-over per burst: the event loop drains everything queued by then
+                self._to_loop(self._drain)
         except Exception:  # a malformed topic (bad UTF-8) or a closed loop: drop it
             with self._lock:
                 self._overflow += 1
@@ -184,6 +192,15 @@ class MqttSource:
                 loop.call_soon_threadsafe(fn, *args)
 
     # -- event loop
+
+    def _drain(self) -> None:
+        """Hand every queued payload to the ingest (on the event loop), in arrival order."""
+        with self._lock:
+            batch = self._inbox
+            self._inbox = deque()
+            self._wake_scheduled = False
+        for item in batch:
+            self._deliver(*item)
 
     def _deliver(self, topic: str, payload: bytes, received_ns: int) -> None:
         with self._lock:
