@@ -413,10 +413,8 @@ class Row:
 
 def _warm_up_analysis(overlap: float) -> None:
     """Load the numerical core (imports, FFT plans) before the memory baseline."""
-    from edgevib.daemon.frames import build_plan
-
     cfg = bench_config(1883, 1, overlap, tempfile.gettempdir())
-    plan = build_plan(cfg.points[0], cfg.machines[0])
+    plan = cfg.plan(cfg.points[0].id)
     from edgevib.pipelines.analysis import analyze_frames
 
     analyze_frames(channel_signal(0, 0)[None, :], plan, shaft_hz=None)

@@ -59,10 +59,7 @@ def _socket_path(args: argparse.Namespace) -> Path:
     if args.config:
         from edgevib.daemon.config import load_config
 
-        settings = load_config(args.config).alarms
-        socket_path = getattr(settings, "socket_path", None)
-        if socket_path:
-            return Path(socket_path)
+        return Path(load_config(args.config).alarms.socket)
     state = args.state_dir or os.environ.get("EDGEVIB_STATE_DIR") or "/var/lib/edgevib"
     return Path(state) / "alarms.sock"
 

@@ -59,7 +59,7 @@ from edgevib.daemon.config import (
     PointConfig,
     SimulatedSourceConfig,
 )
-from edgevib.daemon.frames import BlockIngest, EwTrend, FrameJob, PointStream, Stats, build_plan, indicator_values
+from edgevib.daemon.frames import BlockIngest, EwTrend, FrameJob, PointStream, Stats, indicator_values
 from edgevib.daemon.interfaces import ConfigError, FrameResult, FrameSink, Source
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 from edgevib.pipelines.types import AnalysisPlan, FrameIndicators, PipelineError
@@ -261,15 +261,12 @@ class Daemon:
             if old is not None and old.signature == sig:
                 points[p.id] = old
                 continue
-            try:
-                plan = build_plan(p, m)
-            except PipelineError as exc:
-                raise ConfigError(f"points[{p.id}]", f"analysis plan rejected: {exc}") from None
+            plan = config.plan(p.id)  # validated (and its kernel built) once, when the configuration was loaded
             points[p.id] = _PointState(p, m, plan, EwTrend(config.analysis.trend_halflife_s), sig)
             if p.envelope_note and p.id not in self._warned_envelope:
                 self._warned_envelope.add(p.id)
                 log.warning("no envelope indicators for this point", point=p.id, sensor_type=p.sensor_type,
-                            bandwidth_hz=list(p.bandwidth_hz), fs_hz=p.fs_hz, reason=p.envelope_note)
+                            bandwidth_hz=list(p.bandwidth_hz or ()), fs_hz=p.fs_hz, reason=p.envelope_note)
         self.points = points
 
     def _add_configured_sinks(self, config: Config) -> None:

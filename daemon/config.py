@@ -1,26 +1,36 @@
-"""Loading and validating the daemon's TOML configuration (schema: ``config/example-plant.toml``).
+"""The daemon's configuration: one TOML file declared as pydantic models (annotated example:
+``config/example-plant.toml``; reference: README "Configuration reference").
 
-:func:`load_config` / :func:`parse_config` turn a document into a frozen :class:`Config`; every problem is a
-:class:`~edgevib.daemon.interfaces.ConfigError` naming the dotted key path (``points[1].envelope_band_hz``) and the
-problem, with the numbers.  Secrets are never read from the TOML itself: a ``*_file`` or ``*_env`` key becomes a
-:class:`Secret` that only reveals its value on request and prints as ``<from file …>``.
+Each table is a frozen model whose field names are the TOML keys; ranges, choices and required keys are declared
+on the fields, rules that tie a table's keys together in its validator.  :func:`load_config` /
+:func:`parse_config` then resolve what needs the whole file — references between tables (a point's machine and
+source), defaults that depend on other tables (a point's frame length, its envelope band, client ids), file paths
+— check every point's analysis plan once with the numerical core (``make_plan`` decides feasibility), and resolve
+the alarm layer's settings.  Every problem is a :class:`~edgevib.daemon.interfaces.ConfigError` naming the dotted
+key path (``points[1].envelope_band_hz``), the value and the allowed range; an unknown key says which key was
+meant.  :func:`config_to_document` and :func:`dump_toml` print the resolved configuration so that it loads back to
+the same configuration.
 
-File paths (``*_file`` keys, ``site.state_dir``, the alarm layer's socket and capture directory) may use
-``${CREDENTIALS_DIRECTORY}`` (systemd ``LoadCredential=``) and ``${STATE_DIRECTORY}`` (systemd
+Secrets are never read from the TOML itself: ``NAME_file`` / ``NAME_env`` keys give a :class:`Secret` that only
+reveals its value on request.  File paths (``*_file`` keys, ``site.state_dir``, the alarm layer's socket and
+capture directory) may use ``${CREDENTIALS_DIRECTORY}`` and ``${STATE_DIRECTORY}`` (systemd ``LoadCredential=`` /
 ``StateDirectory=``; the first entry of a colon-separated list); no other variable is expanded.  Outside the unit
-those are unset, and a credential file under an unset ``${CREDENTIALS_DIRECTORY}`` or under ``/run/credentials/``
-cannot exist yet: :func:`load_config` then records the problem in ``Config.deferred`` instead of failing, so that
-``check-config`` can print it as a warning, and :func:`verify_for_run` turns it into an error when the daemon
-starts.
+those are unset, and a credential under an unset ``${CREDENTIALS_DIRECTORY}`` or under ``/run/credentials/`` cannot
+exist yet: loading then records the problem in ``Config.deferred`` instead of failing, ``check-config`` prints it
+as a warning and :func:`verify_for_run` turns it into an error when the daemon starts.
 
-The alarm layer owns the top-level ``[alarms]``, ``[feed]``, ``[capture]`` tables and the per-point ``limits`` key:
-when ``edgevib.daemon.alarms.config.parse_alarm_config`` exists it parses them into ``Config.alarms``; otherwise
-they are kept as raw tables (``Config.alarm_tables`` and ``PointConfig.limits``).
+Ids that end up in MQTT topics and OPC UA node ids (site name, machine and point ids) use a portable character
+set (:data:`ID_CHARACTERS`): see :func:`check_id` for which brokers restrict what.
+
+This module never imports the numerical core at import time (the simulator builds its emitted configuration with
+these models and must not load ``edgevib.pipelines``); plan checks import it when a configuration is loaded.
 """
 
 from __future__ import annotations
 
+import difflib
 import hashlib
+import json
 import math
 import os
 import re
@@ -28,22 +38,45 @@ import tomllib
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
 from contextvars import ContextVar
-from dataclasses import dataclass, field, fields, is_dataclass, replace
+from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, TypeAlias
+from typing import TYPE_CHECKING, Annotated, Any, ClassVar, Literal, get_args, get_origin
 from urllib.parse import urlsplit
+
+from pydantic import (
+    AfterValidator,
+    AllowInfNan,
+    BaseModel,
+    BeforeValidator,
+    ConfigDict,
+    Field,
+    PlainSerializer,
+    PrivateAttr,
+    SerializerFunctionWrapHandler,
+    Strict,
+    ValidationError,
+    model_serializer,
+    model_validator,
+)
 
 from edgevib.daemon.interfaces import ConfigError
 from edgevib.daemon.shard import Shard, owns_point, validate_shard
 from edgevib.daemon.wire import DEFAULT_MAX_PAYLOAD_BYTES, DEFAULT_MAX_SAMPLES
-from edgevib.pipelines.analysis import default_envelope_band
-from edgevib.pipelines.bearings import validate_geometry
-from edgevib.pipelines.types import BearingGeometry, PipelineError
+
+if TYPE_CHECKING:
+    from edgevib.daemon.alarms.config import AlarmSettings
+    from edgevib.pipelines.types import AnalysisPlan
 
 __all__ = [
+    "ID_CHARACTERS",
+    "AlarmsConfig",
     "AnalysisConfig",
     "BearingConfig",
+    "CaptureConfig",
     "Config",
+    "FeedConfig",
+    "LevelRule",
+    "LimitConfigTable",
     "LoggingConfig",
     "MachineConfig",
     "MetricsConfig",
@@ -51,12 +84,16 @@ __all__ = [
     "MqttSourceConfig",
     "OpcUaSourceConfig",
     "PointConfig",
+    "PointLimits",
     "PublishMqttConfig",
     "PublishOpcUaConfig",
     "Secret",
     "SimulatedSourceConfig",
     "SiteConfig",
+    "SourceConfig",
     "SpeedTag",
+    "WebhookConfig",
+    "check_id",
     "config_to_document",
     "default_state_dir",
     "deferred_warnings",
@@ -65,18 +102,20 @@ __all__ = [
     "load_config",
     "parse_config",
     "parse_listen",
+    "plan_for",
     "verify_for_run",
 ]
 
 G_M_S2 = 9.80665  # standard gravity, exact (3rd CGPM 1901)
-DEFAULT_LISTEN = ("127.0.0.1", 9851)
 MAX_POINTS = 1000
 MAX_FRAME_SAMPLES = 1 << 20
 MIN_FRAME_SAMPLES = 256
-ALARM_TABLES = ("alarms", "feed", "capture")
 DEFAULT_STATE_DIR = "/var/lib/edgevib"
 PATH_VARIABLES = ("CREDENTIALS_DIRECTORY", "STATE_DIRECTORY")
 CREDENTIALS_ROOT = "/run/credentials/"
+ID_CHARACTERS = "A-Z a-z 0-9 - _"
+MAX_ID_LENGTH = 128
+_ID = re.compile(r"[A-Za-z0-9_-]+")
 _VARIABLE = re.compile(r"\$\{([^}]*)\}")
 # problems found while loading that only matter where the daemon runs (see the module docstring), per parse call
 _DEFERRED: ContextVar[list[tuple[str, str, str, str]] | None] = ContextVar("edgevib_config_deferred", default=None)
@@ -110,133 +149,451 @@ class Secret:
     __str__ = __repr__
 
 
-# ------------------------------------------------------------------------------------------------ dataclasses
+# ------------------------------------------------------------------------------------------------ value types
+
+
+class _Problem(ValueError):
+    """A validator's finding about ``key`` (relative to the table validated; ``""`` for the table itself)."""
+
+    def __init__(self, key: str, problem: str) -> None:
+        super().__init__(problem)
+        self.key = key
+        self.problem = problem
+
+
+def _text(v: str) -> str:
+    if any(ord(c) < 32 for c in v):
+        raise ValueError("contains control characters")
+    return v
+
+
+def check_id(v: str) -> str:
+    """Check an id that becomes an MQTT topic level and part of OPC UA node ids (site, machine, point).
+
+    MQTT (3.1.1 §4.7, 5.0 §4.7): ``+`` and ``#`` are wildcards and may not appear in a topic a client publishes to,
+    ``/`` separates levels, U+0000 is forbidden, a leading ``$`` is reserved for the broker.  NATS-based brokers
+    (the NATS server's MQTT gateway) map levels onto subject tokens: ``.`` separates tokens there (refused by older
+    releases, rewritten to ``//`` by newer ones) and a space is always refused; ``*`` and ``>`` are NATS wildcards.
+    OPC UA node ids here are ``site/machine/point``.  So ids keep to :data:`ID_CHARACTERS` (ASCII letters, digits,
+    ``-`` and ``_``), at most :data:`MAX_ID_LENGTH` characters: valid on every broker we know of.
+    """
+    if not v:
+        raise ValueError("must not be empty")
+    if len(v) > MAX_ID_LENGTH:
+        raise ValueError(f"{len(v)} characters: at most {MAX_ID_LENGTH}")
+    if _ID.fullmatch(v) is None:
+        bad = "".join(sorted({c for c in v if _ID.fullmatch(c) is None}))
+        why = []
+        if set(bad) & set("+#"):
+            why.append("'+' and '#' are MQTT wildcards: no message could be published on its topics")
+        if "/" in bad:
+            why.append("'/' separates MQTT topic levels and OPC UA node-id parts")
+        if set(bad) & set(". *>"):
+            why.append("'.', ' ', '*' and '>' break NATS-based brokers")
+        reason = "; ".join(why) or "outside the portable set"
+        raise ValueError(f"{v!r} contains {bad!r}: ids use only {ID_CHARACTERS} ({reason})")
+    return v
+
+
+def _pair_shape(v: object) -> object:
+    if not isinstance(v, list | tuple) or len(v) != 2:
+        raise ValueError(f"must be a [low, high] pair of numbers, got {v!r}")
+    return v
+
+
+def _ordered(v: tuple[float, float]) -> tuple[float, float]:
+    a, b = v
+    if a < 0:
+        raise ValueError(f"low edge {a:g} is below 0")
+    if not a < b:
+        raise ValueError(f"low edge {a:g} must be below high edge {b:g}")
+    return v
+
+
+def _level(v: object) -> LevelRule:
+    """A limit level: a number, ``"iso"``, ``"iso-baseline"``, ``{ factor = F }`` or ``{ sigma = K }``."""
+    if isinstance(v, LevelRule):
+        return v
+    if isinstance(v, bool):
+        raise ValueError("must be a number, \"iso\", \"iso-baseline\", { factor = F } or { sigma = K }")
+    if isinstance(v, int | float):
+        if not math.isfinite(v):
+            raise ValueError(f"must be finite, got {v!r}")
+        return LevelRule("absolute", float(v))
+    if isinstance(v, str):
+        if v not in ("iso", "iso-baseline"):
+            raise ValueError(f"{v!r} is not \"iso\" or \"iso-baseline\"")
+        return LevelRule(v)  # type: ignore[arg-type]
+    if isinstance(v, dict):
+        if set(v) in ({"factor"}, {"sigma"}):
+            ((kind, x),) = v.items()
+            if isinstance(x, bool) or not isinstance(x, int | float) or not math.isfinite(x) or x <= 0:
+                raise _Problem(kind, f"must be a number > 0, got {x!r}")
+            if kind == "factor" and x <= 1.0:
+                raise _Problem("factor", f"{x:g} must be above 1 (a limit above the baseline)")
+            return LevelRule(kind, float(x))
+        raise ValueError(f"a relative level is {{ factor = F }} or {{ sigma = K }}, got keys {sorted(v)}")
+    raise ValueError(f"must be a number, a string or a table, got {_type_name(v)}")
 
 
 @dataclass(frozen=True, slots=True)
-class SiteConfig:
-    name: str = "edgevib"
-    state_dir: str = "/var/lib/edgevib"
-    shard: Shard | None = None
+class LevelRule:
+    """How one level's set point is obtained (README "Per-point limits")."""
+
+    kind: Literal["absolute", "iso", "iso-baseline", "factor", "sigma"]
+    value: float = 0.0
+
+    @property
+    def needs_baseline(self) -> bool:
+        return self.kind in ("iso-baseline", "factor", "sigma")
+
+    def document(self) -> float | str | dict[str, float]:
+        """The level as written in the file."""
+        if self.kind == "absolute":
+            return self.value
+        if self.kind in ("iso", "iso-baseline"):
+            return self.kind
+        return {self.kind: self.value}
 
 
-@dataclass(frozen=True, slots=True)
-class LoggingConfig:
-    level: str = "info"
-    format: str = "auto"
+Float = Annotated[float, Strict(), AllowInfNan(False)]
+Int = Annotated[int, Strict()]
+Bool = Annotated[bool, Strict()]
+Text = Annotated[str, Strict(), AfterValidator(_text)]
+Id = Annotated[str, Strict(), AfterValidator(check_id)]
+Pair = Annotated[tuple[Float, Float], BeforeValidator(_pair_shape), AfterValidator(_ordered)]
+Level = Annotated[LevelRule, BeforeValidator(_level), PlainSerializer(LevelRule.document)]
+ShardSpec = Annotated[Shard, BeforeValidator(lambda v: validate_shard(v, "site.shard")),
+                      PlainSerializer(lambda s: {"points": sorted(s.points)} if s.points is not None
+                                      else {"count": s.count, "index": s.index})]
 
 
-@dataclass(frozen=True, slots=True)
-class MetricsConfig:
-    listen: str = "127.0.0.1:9851"
-    host: str = "127.0.0.1"
-    port: int = 9851
-    tls_cert_file: str | None = None
-    tls_key_file: str | None = None
-    tls_client_ca_file: str | None = None
+class _Table(BaseModel):
+    """A TOML table: unknown keys are errors, values are strict (no string→number, no bool→int), frozen."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
 
 
-@dataclass(frozen=True, slots=True)
-class AnalysisConfig:
-    frame_samples: int = 16384
-    overlap: float = 0.5
-    queue_frames: int = 4
-    workers: int = 1
-    trend_halflife_s: float = 600.0
+class _WithSecrets(_Table):
+    """A table with secrets given as ``NAME_file`` or ``NAME_env`` (never the secret itself)."""
+
+    _SECRETS: ClassVar[tuple[str, ...]] = ()
+
+    @model_validator(mode="before")
+    @classmethod
+    def _no_literal_secrets(cls, data: Any) -> Any:
+        if isinstance(data, dict):
+            for name in cls._SECRETS:
+                if name in data:
+                    raise _Problem(name, f"secrets are not accepted in the configuration file; put it in a file and "
+                                   f"set {name}_file = \"/path\" (e.g. a systemd credential), or in an environment "
+                                   f"variable and set {name}_env = \"NAME\"")
+        return data
+
+    @model_validator(mode="after")
+    def _one_source_per_secret(self) -> _WithSecrets:
+        for name in self._SECRETS:
+            if getattr(self, f"{name}_file") is not None and getattr(self, f"{name}_env") is not None:
+                raise _Problem(name, f"give either {name}_file or {name}_env, not both")
+        return self
+
+    def _secret(self, name: str) -> Secret | None:
+        f, e = getattr(self, f"{name}_file"), getattr(self, f"{name}_env")
+        return Secret("file", f) if f is not None else Secret("env", e) if e is not None else None
 
 
-@dataclass(frozen=True, slots=True)
-class MqttConnection:
-    """Broker connection settings shared by MQTT sources and the MQTT publisher."""
-
-    url: str
-    host: str
-    port: int
-    tls: bool
-    protocol: str = "3.1.1"
-    client_id: str = ""
-    keepalive_s: float = 30.0
-    reconnect_min_s: float = 0.5
-    reconnect_max_s: float = 30.0
-    username: str | None = None
-    password: Secret | None = None
-    ca_file: str | None = None
-    cert_file: str | None = None
-    key_file: str | None = None
-    key_password: Secret | None = None
+# ------------------------------------------------------------------------------------------------ tables
 
 
-@dataclass(frozen=True, slots=True)
-class MqttSourceConfig:
-    name: str
-    connection: MqttConnection
-    topics: tuple[str, ...]
-    qos: int = 1
-    sensor_from: str = "payload"
-    max_payload_bytes: int = DEFAULT_MAX_PAYLOAD_BYTES
-    type: str = "mqtt"
+class SiteConfig(_Table):
+    name: Id = "edgevib"
+    state_dir: Text = Field(default_factory=lambda: default_state_dir())
+    shard: ShardSpec | None = None
+
+
+class LoggingConfig(_Table):
+    level: Literal["debug", "info", "warning", "error"] = "info"
+    format: Literal["auto", "json", "console"] = "auto"
+
+
+def _listen(v: str) -> str:
+    try:
+        parse_listen(v)
+    except ConfigError as exc:
+        raise ValueError(exc.problem) from None
+    return v
+
+
+class MetricsConfig(_Table):
+    listen: Annotated[Text, AfterValidator(_listen)] = "127.0.0.1:9851"
+    tls_cert_file: Text | None = None
+    tls_key_file: Text | None = None
+    tls_client_ca_file: Text | None = None
+
+    @model_validator(mode="after")
+    def _tls(self) -> MetricsConfig:
+        if (self.tls_cert_file is None) != (self.tls_key_file is None):
+            raise _Problem("tls_cert_file", "TLS needs both tls_cert_file and tls_key_file")
+        if self.tls_client_ca_file is not None and self.tls_cert_file is None:
+            raise _Problem("tls_client_ca_file", "client certificates need TLS (tls_cert_file, tls_key_file)")
+        return self
+
+    @property
+    def host(self) -> str:
+        return parse_listen(self.listen)[0]
+
+    @property
+    def port(self) -> int:
+        return parse_listen(self.listen)[1]
+
+
+class AnalysisConfig(_Table):
+    frame_samples: Int = Field(16384, ge=MIN_FRAME_SAMPLES, le=MAX_FRAME_SAMPLES)
+    overlap: Float = Field(0.5, ge=0.0, le=0.95)
+    queue_frames: Int = Field(4, ge=1, le=1024)
+    workers: Int = Field(1, ge=1, le=64)
+    trend_halflife_s: Float = Field(600.0, gt=0.0)
+
+
+class MqttConnection(_WithSecrets):
+    """The keys of a broker connection (an MQTT source, ``[publish.mqtt]`` and ``[feed]`` with their own url)."""
+
+    _SECRETS = ("password", "key_password")
+    _CONNECTION_KEYS: ClassVar[tuple[str, ...]] = (
+        "url", "protocol", "client_id", "keepalive_s", "reconnect_min_s", "reconnect_max_s", "username",
+        "password_file", "password_env", "ca_file", "cert_file", "key_file", "key_password_file",
+        "key_password_env")
+
+    url: Text | None = None
+    protocol: Literal["3.1.1", "5"] = "3.1.1"
+    client_id: Text = ""  # "" until loaded, then "edgevib-<site>-<name>"
+    keepalive_s: Float = Field(30.0, ge=5.0, le=3600.0)
+    reconnect_min_s: Float = Field(0.5, ge=0.01, le=3600.0)
+    reconnect_max_s: Float = Field(30.0, ge=0.01, le=3600.0)
+    ca_file: Text | None = None
+    cert_file: Text | None = None
+    key_file: Text | None = None
+    key_password_file: Text | None = None
+    key_password_env: Text | None = None
+    username: Text | None = None
+    password_file: Text | None = None
+    password_env: Text | None = None
+
+    @model_validator(mode="after")
+    def _check_connection(self) -> MqttConnection:
+        if self.url is not None:
+            parts = urlsplit(self.url)
+            if parts.scheme not in ("mqtt", "mqtts") or not parts.hostname:
+                raise _Problem("url", f"{self.url!r} is not mqtt://host:port or mqtts://host:port")
+            try:
+                _ = parts.port
+            except ValueError as exc:
+                raise _Problem("url", f"{self.url!r}: {exc}") from None
+            if parts.username or parts.password:
+                raise _Problem("url", "credentials in the URL are not accepted; use username and password_file or "
+                               "password_env")
+        if self.reconnect_max_s < self.reconnect_min_s:
+            raise _Problem("reconnect_max_s", f"{self.reconnect_max_s:g} s is below reconnect_min_s "
+                           f"{self.reconnect_min_s:g} s")
+        if self.key_file is not None and self.cert_file is None:
+            raise _Problem("cert_file", "key_file is given without cert_file")
+        if (self.key_password_file or self.key_password_env) and self.cert_file is None:
+            raise _Problem("key_password_file", "a key passphrase needs cert_file and key_file")
+        return self
+
+    @property
+    def host(self) -> str:
+        return str(urlsplit(self.url or "").hostname)
+
+    @property
+    def port(self) -> int:
+        parts = urlsplit(self.url or "")
+        return parts.port or (8883 if parts.scheme == "mqtts" else 1883)
+
+    @property
+    def tls(self) -> bool:
+        return urlsplit(self.url or "").scheme == "mqtts" or self.ca_file is not None or self.cert_file is not None
+
+    @property
+    def password(self) -> Secret | None:
+        return self._secret("password")
+
+    @property
+    def key_password(self) -> Secret | None:
+        return self._secret("key_password")
+
+
+def _valid_filter(topic: str) -> str | None:
+    levels = topic.split("/")
+    for i, level in enumerate(levels):
+        if "#" in level and (level != "#" or i != len(levels) - 1):
+            return "'#' must be a whole last level"
+        if "+" in level and level != "+":
+            return "'+' must be a whole level"
+    return None
+
+
+class MqttSourceConfig(MqttConnection):
+    type: Literal["mqtt"]
+    name: Text
+    topics: tuple[Annotated[Text, Field(min_length=1)], ...] = Field(min_length=1)
+    qos: Int = Field(1, ge=0, le=1)
+    sensor_from: Text = "payload"
+    max_payload_bytes: Int = Field(DEFAULT_MAX_PAYLOAD_BYTES, ge=64, le=64 * 1024 * 1024)
+
+    @model_validator(mode="after")
+    def _source(self) -> MqttSourceConfig:
+        if self.url is None:
+            raise _Problem("url", "required key is missing")
+        for i, topic in enumerate(self.topics):
+            problem = _valid_filter(topic)
+            if problem:
+                raise _Problem(f"topics[{i}]", f"invalid topic filter {topic!r}: {problem}")
+        level = self.sensor_from.removeprefix("topic:")
+        if self.sensor_from != "payload" and (not self.sensor_from.startswith("topic:") or not level.isdigit()):
+            raise _Problem("sensor_from", f"{self.sensor_from!r} is not \"payload\" or \"topic:N\"")
+        return self
+
+    @property
+    def connection(self) -> MqttConnection:
+        return self
 
     @property
     def sensor_topic_level(self) -> int | None:
         return int(self.sensor_from.split(":", 1)[1]) if self.sensor_from.startswith("topic:") else None
 
 
-@dataclass(frozen=True, slots=True)
-class OpcUaSourceConfig:
-    name: str
-    endpoint: str
-    mode: str = "subscribe"
-    poll_interval_s: float = 1.0
-    security_policy: str = "None"
-    security_mode: str = "SignAndEncrypt"
-    cert_file: str | None = None
-    key_file: str | None = None
-    server_cert_file: str | None = None
-    username: str | None = None
-    password: Secret | None = None
-    reconnect_min_s: float = 0.5
-    reconnect_max_s: float = 30.0
-    type: str = "opcua"
+class OpcUaSourceConfig(_WithSecrets):
+    _SECRETS = ("password",)
+    type: Literal["opcua"]
+    name: Text
+    endpoint: Text
+    mode: Literal["subscribe", "poll"] = "subscribe"
+    poll_interval_s: Float = Field(1.0, ge=0.01, le=3600.0)
+    security_policy: Literal["None", "Basic256Sha256"] = "None"
+    security_mode: Literal["Sign", "SignAndEncrypt"] = "SignAndEncrypt"
+    cert_file: Text | None = None
+    key_file: Text | None = None
+    server_cert_file: Text | None = None
+    username: Text | None = None
+    password_file: Text | None = None
+    password_env: Text | None = None
+    reconnect_min_s: Float = Field(0.5, ge=0.01, le=3600.0)
+    reconnect_max_s: Float = Field(30.0, ge=0.01, le=3600.0)
+
+    @model_validator(mode="after")
+    def _opcua(self) -> OpcUaSourceConfig:
+        if not self.endpoint.startswith("opc.tcp://"):
+            raise _Problem("endpoint", f"{self.endpoint!r} is not an opc.tcp:// URL")
+        if self.security_policy != "None" and (self.cert_file is None or self.key_file is None):
+            raise _Problem("security_policy", f"{self.security_policy} needs cert_file and key_file")
+        return self
+
+    @property
+    def password(self) -> Secret | None:
+        return self._secret("password")
 
 
-@dataclass(frozen=True, slots=True)
-class SimulatedSourceConfig:
-    name: str
-    scenario: str = "demo"
-    seed: int = 0
-    rate: float = 1.0
-    type: str = "simulated"
+class SimulatedSourceConfig(_Table):
+    type: Literal["simulated"]
+    name: Text
+    scenario: Text = "demo"
+    seed: Int = Field(0, ge=0)
+    rate: Float = Field(1.0, ge=0.01, le=1000.0)
 
 
-SourceConfig = MqttSourceConfig | OpcUaSourceConfig | SimulatedSourceConfig
+SourceConfig = Annotated[MqttSourceConfig | OpcUaSourceConfig | SimulatedSourceConfig, Field(discriminator="type")]
+_SOURCE_TYPES = ("mqtt", "opcua", "simulated")
 
 
-@dataclass(frozen=True, slots=True)
-class PublishMqttConfig:
-    enabled: bool = False
-    source: str | None = None
-    connection: MqttConnection | None = None
-    topic: str = "edgevib/{site}/{machine}/{point}/indicators"
-    qos: int = 0
-    retain: bool = False
+def _template(value: str, allowed: tuple[str, ...]) -> str | None:
+    """Why ``value`` is not a topic template using only ``allowed`` placeholders, or None."""
+    try:
+        value.format(**dict.fromkeys(allowed, "x"))
+    except (KeyError, IndexError, ValueError) as exc:
+        return f"template {value!r} may only use {', '.join('{' + a + '}' for a in allowed)} ({exc})"
+    if "+" in value or "#" in value:
+        return f"a topic to publish on cannot contain wildcards: {value!r}"
+    return None
 
 
-@dataclass(frozen=True, slots=True)
-class PublishOpcUaConfig:
-    enabled: bool = False
-    listen: str = "127.0.0.1:4841"
-    host: str = "127.0.0.1"
-    port: int = 4841
-    namespace: str = "urn:edgevib:indicators"
+class _ReusesSource(MqttConnection):
+    """A publisher's broker: ``source`` (reuse an MQTT source's connection) or its own connection keys."""
+
+    _SUFFIX: ClassVar[str] = ""
+    source: Text | None = None
+    _broker: MqttConnection | None = PrivateAttr(None)
+
+    @model_validator(mode="after")
+    def _source_or_url(self) -> _ReusesSource:
+        given = [k for k in self._CONNECTION_KEYS if k in self.model_fields_set]
+        if self.source is not None and given:
+            raise _Problem(given[0], "give either source (reuse its broker settings) or url and its connection "
+                           "keys, not both")
+        return self
+
+    @model_serializer(mode="wrap")
+    def _without_unused_connection(self, handler: SerializerFunctionWrapHandler) -> dict[str, Any]:
+        out: dict[str, Any] = handler(self)
+        if self.source is not None or self.url is None:  # no connection of its own
+            for k in self._CONNECTION_KEYS:
+                out.pop(k, None)
+        return out
+
+    @property
+    def connection(self) -> MqttConnection | None:
+        """The broker connection (resolved when the configuration is loaded); None without a broker."""
+        return self._broker
 
 
-@dataclass(frozen=True, slots=True)
-class SpeedTag:
-    source: str
-    topic: str | None = None  # MQTT
-    node: str | None = None   # OPC UA
-    unit: str = "rpm"
-    max_age_s: float = 60.0
+class PublishMqttConfig(_ReusesSource):
+    _SUFFIX = "publish"
+    enabled: Bool = False
+    topic: Text = "edgevib/{site}/{machine}/{point}/indicators"
+    qos: Int = Field(0, ge=0, le=1)
+    retain: Bool = False
+
+    @model_validator(mode="after")
+    def _publish(self) -> PublishMqttConfig:
+        problem = _template(self.topic, ("site", "machine", "point"))
+        if problem:
+            raise _Problem("topic", problem)
+        if self.enabled and self.source is None and self.url is None:
+            raise _Problem("url", "publishing needs a url or a source to reuse")
+        return self
+
+
+class PublishOpcUaConfig(_Table):
+    enabled: Bool = False
+    listen: Annotated[Text, AfterValidator(_listen)] = "127.0.0.1:4841"
+    namespace: Text = "urn:edgevib:indicators"
+
+    @model_validator(mode="after")
+    def _port(self) -> PublishOpcUaConfig:
+        if self.port == 0:
+            raise _Problem("listen", "the OPC UA server needs a fixed port (1..65535), not 0")
+        return self
+
+    @property
+    def host(self) -> str:
+        return parse_listen(self.listen)[0]
+
+    @property
+    def port(self) -> int:
+        return parse_listen(self.listen)[1]
+
+
+class PublishConfig(_Table):
+    mqtt: PublishMqttConfig = Field(default_factory=PublishMqttConfig)
+    opcua: PublishOpcUaConfig = Field(default_factory=PublishOpcUaConfig)
+
+
+class SpeedTag(_Table):
+    source: Text
+    topic: Text | None = None  # MQTT and the in-process simulator
+    node: Text | None = None   # OPC UA
+    unit: Literal["rpm", "hz"] = "rpm"
+    max_age_s: Float = Field(60.0, ge=0.1, le=86400.0)
 
     @property
     def tag(self) -> str:
@@ -246,82 +603,347 @@ class SpeedTag:
         return value / 60.0 if self.unit == "rpm" else value
 
 
-@dataclass(frozen=True, slots=True)
-class MachineConfig:
-    id: str
-    description: str = ""
-    group: int | None = None
-    support: str | None = None
-    speed_rpm: float | None = None
+class MachineConfig(_Table):
+    id: Id
+    description: Text = ""
+    group: Int | None = Field(None, ge=1, le=2)
+    support: Literal["rigid", "flexible"] | None = None
+    speed_rpm: Float | None = Field(None, gt=0.0, le=120000.0)
     speed_tag: SpeedTag | None = None
-    speed_range_rpm: tuple[float, float] = (300.0, 3600.0)
-    run_threshold_rpm: float = 60.0
+    speed_range_rpm: Pair = (300.0, 3600.0)
+    run_threshold_rpm: Float = Field(60.0, ge=0.0)
+
+    @model_validator(mode="after")
+    def _machine(self) -> MachineConfig:
+        if (self.group is None) != (self.support is None):
+            raise _Problem("group" if self.group is None else "support",
+                           "ISO 20816-3 zones need both group and support")
+        if self.speed_rpm is not None and self.speed_tag is not None:
+            raise _Problem("speed_tag", "give either speed_rpm (fixed) or speed_tag, not both")
+        if self.speed_range_rpm[0] <= 0:
+            raise _Problem("speed_range_rpm", f"low edge {self.speed_range_rpm[0]:g} r/min must be > 0")
+        return self
 
     @property
     def speed_mode(self) -> str:
         return "fixed" if self.speed_rpm is not None else "tag" if self.speed_tag is not None else "estimated"
 
 
-@dataclass(frozen=True, slots=True)
-class BearingConfig:
-    elements: int
-    ball_diameter_mm: float
-    pitch_diameter_mm: float
-    contact_angle_deg: float = 0.0
+class BearingConfig(_Table):
+    """Rolling-element bearing geometry; the numerical core checks that it is possible (``validate_geometry``)."""
+
+    elements: Int
+    ball_diameter_mm: Float
+    pitch_diameter_mm: Float
+    contact_angle_deg: Float = 0.0
 
 
-@dataclass(frozen=True, slots=True)
-class PointConfig:
-    """One measurement point.  ``envelope_band_hz`` is the band actually used (``None``: no envelope
-    indicators, with the reason in ``envelope_note``)."""
+class LimitConfigTable(_Table):
+    """One ``[points.limits.INDICATOR]`` table (README "Per-point limits")."""
 
-    id: str
-    machine: str
-    source: str
-    sensor: str
-    fs_hz: float
-    block_samples: int
-    axis: str = "radial"
-    description: str = ""
-    sensor_type: str = "piezo"
-    sensitivity_mv_per_g: float | None = None
-    bandwidth_hz: tuple[float, float] = (0.5, 10000.0)
-    velocity_band_hz: tuple[float, float] = (10.0, 1000.0)
-    envelope_band_hz: tuple[float, float] | None = None
-    envelope_note: str | None = None
+    alert: Level | None = None
+    danger: Level | None = None
+    rule: Literal["iso", "iso-baseline"] | None = None
+    enabled: Bool = True
+    deadband: Float | None = Field(None, ge=0.001, le=0.5)
+    on_delay_frames: Int | None = Field(None, ge=1, le=10000)
+    on_delay_s: Float | None = Field(None, ge=0.0, le=86400.0)
+    off_delay_frames: Int | None = Field(None, ge=1, le=10000)
+    off_delay_s: Float | None = Field(None, ge=0.0, le=86400.0)
+    latching: Bool | None = None
+
+    @model_validator(mode="after")
+    def _limit(self) -> LimitConfigTable:
+        _one_delay(self)
+        if self.rule is not None and (self.alert is not None or self.danger is not None):
+            raise _Problem("rule", "give either rule or alert/danger levels, not both")
+        if self.enabled and self.rule is None and self.alert is None and self.danger is None:
+            raise _Problem("", "a limit needs an alert and/or a danger level (or enabled = false)")
+        a, d = self.alert, self.danger
+        if a is not None and d is not None and a.kind == d.kind == "absolute" and d.value <= a.value:
+            raise _Problem("danger", f"danger {d.value:g} must be above alert {a.value:g}")
+        return self
+
+    @property
+    def levels(self) -> tuple[LevelRule | None, LevelRule | None]:
+        """(alert, danger), with ``rule`` expanded (alert = rule, danger = "iso")."""
+        if self.rule is not None:
+            return LevelRule(self.rule), LevelRule("iso")
+        return self.alert, self.danger
+
+
+def _one_delay(t: Any) -> None:
+    for name in ("on_delay", "off_delay"):
+        if getattr(t, f"{name}_frames") is not None and getattr(t, f"{name}_s") is not None:
+            raise _Problem(f"{name}_s", f"give either {name}_frames or {name}_s, not both")
+
+
+class _HealthThresholds(_Table):
+    """Sensor-health thresholds; a key left out keeps the numerical core's default (README "[alarms.health]")."""
+
+    flatline_std_g: Float | None = Field(None, gt=0.0)
+    repeat_fraction: Float | None = Field(None, gt=0.0)
+    clip_fraction: Float | None = Field(None, gt=0.0)
+    mean_tolerance_g: Float | None = Field(None, gt=0.0)
+    bias_window_v: Pair | None = None
+    step_ratio: Float | None = Field(None, gt=0.0)
+    step_floor_g: Float | None = Field(None, gt=0.0)
+    spike_sigma: Float | None = Field(None, gt=0.0)
+    noise_factor: Float | None = Field(None, gt=0.0)
+
+
+class HealthConfig(_HealthThresholds):
+    enabled: Bool = True
+
+
+class PointHealth(_HealthThresholds):
+    full_scale_g: Float | None = Field(None, gt=0.0)
+    gravity_g: Float | None = Field(None, ge=-1.0, le=1.0)
+    noise_ug_rthz: Float | None = Field(None, gt=0.0)
+    noise_band_hz: Pair | None = None
+
+
+class PointLimits(_Table):
+    """A point's ``limits``: one table per indicator, plus ``health``."""
+
+    model_config = ConfigDict(extra="allow", frozen=True)
+    __pydantic_extra__: dict[str, LimitConfigTable] = Field(init=False)
+
+    health: PointHealth | None = None
+
+    @model_validator(mode="after")
+    def _indicators(self) -> PointLimits:
+        from edgevib.daemon.indicators import INDICATORS
+
+        for name, lim in self.indicators.items():
+            if name not in INDICATORS:
+                raise _Problem(name, f"unknown indicator{_did_you_mean(name, ['health', *INDICATORS])} "
+                               f"(known: health, {', '.join(INDICATORS)})")
+            for level, rule in (("alert", lim.alert), ("danger", lim.danger), ("rule", lim.rule)):
+                kind = rule.kind if isinstance(rule, LevelRule) else rule
+                if kind in ("iso", "iso-baseline") and name != "velocity_rms_mm_s":
+                    raise _Problem(f"{name}.{level}", f"ISO 20816-3 zones apply to velocity_rms_mm_s only, not {name}")
+            if lim.danger is not None and lim.danger.kind == "iso-baseline":
+                raise _Problem(f"{name}.danger", "\"iso-baseline\" is an alert rule; danger stays at the ISO C/D "
+                               "boundary (ISO 20816-3 guidance: trip-like values are never set from the baseline)")
+            if name == "velocity_rms_mm_s" and lim.danger is not None and lim.danger.needs_baseline:
+                raise _Problem(f"{name}.danger", "a danger level on velocity r.m.s. is never set from the baseline "
+                               "(ISO 20816-3 guidance); give a number or \"iso\"")
+        return self
+
+    @property
+    def indicators(self) -> dict[str, LimitConfigTable]:
+        return dict(self.__pydantic_extra__ or {})
+
+
+class PointConfig(_Table):
+    """One measurement point.  After loading, ``sensor``, ``bandwidth_hz``, ``frame_samples`` and ``overlap`` are
+    resolved and ``envelope_band_hz`` is the band actually used (``None``: no envelope indicators, the reason in
+    :attr:`envelope_note`)."""
+
+    id: Id
+    machine: Text
+    source: Text
+    sensor: Text = ""  # "" until loaded, then the point id
+    fs_hz: Float = Field(ge=1.0, le=1e6)
+    block_samples: Int = Field(ge=1, le=DEFAULT_MAX_SAMPLES)
+    axis: Literal["horizontal", "vertical", "axial", "radial"] = "radial"
+    description: Text = ""
+    sensor_type: Literal["piezo", "mems"] = "piezo"
+    sensitivity_mv_per_g: Float | None = Field(None, gt=0.0)
+    bandwidth_hz: Pair | None = None
+    velocity_band_hz: Pair = (10.0, 1000.0)
+    envelope_band_hz: Pair | None = None
     bearing: BearingConfig | None = None
-    orders: tuple[float, ...] = (0.5, 1.0, 2.0, 3.0)
-    frame_samples: int = 16384
-    overlap: float = 0.5
-    node: str | None = None
-    unit: str = "g"
-    limits: Mapping[str, Any] | None = None
+    orders: tuple[Annotated[Float, Field(gt=0.0, le=100.0)], ...] = Field((0.5, 1.0, 2.0, 3.0), min_length=1)
+    frame_samples: Int = Field(0, ge=MIN_FRAME_SAMPLES, le=MAX_FRAME_SAMPLES)  # 0 until loaded: [analysis]'s
+    overlap: Float = Field(-1.0, ge=0.0, le=0.95)  # -1 until loaded: [analysis]'s
+    node: Text | None = None
+    unit: Literal["g", "m/s2"] = "g"
+    limits: PointLimits | None = None
 
     @property
     def hop_samples(self) -> int:
         return max(1, self.frame_samples - round(self.overlap * self.frame_samples))
 
+    @property
+    def envelope_note(self) -> str | None:
+        """Why the point has no envelope indicators (None when it has them)."""
+        if self.envelope_band_hz is not None or self.bandwidth_hz is None:
+            return None
+        return (f"{self.sensor_type} sensor with usable bandwidth up to {self.bandwidth_hz[1]:g} Hz at fs "
+                f"{self.fs_hz:g} Hz cannot carry an envelope demodulation band: no envelope indicators for this point")
 
-@dataclass(frozen=True, slots=True)
-class Config:
-    site: SiteConfig
-    logging: LoggingConfig
-    metrics: MetricsConfig
-    analysis: AnalysisConfig
-    sources: tuple[SourceConfig, ...]
-    machines: tuple[MachineConfig, ...]
-    points: tuple[PointConfig, ...]
-    publish_mqtt: PublishMqttConfig = field(default_factory=PublishMqttConfig)
-    publish_opcua: PublishOpcUaConfig = field(default_factory=PublishOpcUaConfig)
-    alarms: object | None = None
-    alarm_tables: Mapping[str, Any] = field(default_factory=dict)
-    skipped_points: tuple[str, ...] = ()  # configured but owned by another shard
-    skipped_sensors: tuple[tuple[str, str], ...] = ()  # their (source, sensor) keys: blocks ignored quietly
-    deferred: tuple[tuple[str, str, str, str], ...] = ()  # (key path, problem, why, file): see verify_for_run
-    base_dir: str = "."
-    digest: str = ""
 
-    def source(self, name: str) -> SourceConfig:
+class AlarmsConfig(_Table):
+    """``[alarms]`` (README "[alarms]")."""
+
+    enabled: Bool = True
+    default_velocity_rule: Literal["iso", "iso-baseline", "none"] = "iso"
+    deadband: Float = Field(0.05, ge=0.001, le=0.5)
+    on_delay_frames: Int | None = Field(None, ge=1, le=10000)
+    on_delay_s: Float | None = Field(None, ge=0.0, le=86400.0)
+    off_delay_frames: Int | None = Field(None, ge=1, le=10000)
+    off_delay_s: Float | None = Field(None, ge=0.0, le=86400.0)
+    latching: Bool = False
+    startup_grace_s: Float = Field(30.0, ge=0.0, le=86400.0)
+    run_threshold_velocity_mm_s: Float = Field(0.2, ge=0.0, le=100.0)
+    no_data_frames: Int = Field(5, ge=1, le=100000)
+    sensor_recover_frames: Int = Field(3, ge=1, le=10000)
+    baseline_frames: Int = Field(100, ge=5, le=10_000_000)
+    trend_frames: Int = Field(30, ge=3, le=100000)
+    max_shelve_h: Float = Field(168.0, ge=0.01, le=24 * 366.0)
+    socket: Text = "alarms.sock"  # resolved against state_dir
+    socket_mode: Literal["0600", "0660"] = "0600"
+    health: HealthConfig = Field(default_factory=HealthConfig)
+
+    @model_validator(mode="after")
+    def _delays(self) -> AlarmsConfig:
+        _one_delay(self)
+        return self
+
+
+class WebhookConfig(_WithSecrets):
+    _SECRETS = ("token",)
+    url: Text
+    timeout_s: Float = Field(10.0, ge=0.1, le=300.0)
+    retry_min_s: Float = Field(1.0, ge=0.01, le=3600.0)
+    retry_max_s: Float = Field(300.0, ge=0.01, le=86400.0)
+    token_file: Text | None = None
+    token_env: Text | None = None
+
+    @model_validator(mode="after")
+    def _webhook(self) -> WebhookConfig:
+        if not self.url.startswith(("http://", "https://")):
+            raise _Problem("url", f"{self.url!r} is not an http:// or https:// URL")
+        if self.retry_max_s < self.retry_min_s:
+            raise _Problem("retry_max_s", f"{self.retry_max_s:g} s is below retry_min_s {self.retry_min_s:g} s")
+        return self
+
+    @property
+    def token(self) -> Secret | None:
+        """Sent as ``Authorization: Bearer …``."""
+        return self._secret("token")
+
+
+class FeedConfig(_ReusesSource):
+    """``[feed]``: the alarm feed.  Topic templates use ``{site}``, ``{machine}``, ``{point}``; once loaded, the
+    command and response topics and the CloudEvents ``source`` are resolved for the site."""
+
+    _SUFFIX = "feed"
+    enabled: Bool = True
+    topic: Text = "edgevib/{site}/alarms/{machine}/{point}"
+    state_topic: Text = "edgevib/{site}/alarm-state/{machine}/{point}"
+    command_topic: Text = "edgevib/{site}/alarms/command"
+    response_topic: Text = "edgevib/{site}/alarms/response"
+    event_source: Text = "edgevib/{site}"
+    webhook: WebhookConfig | None = None
+
+    @model_validator(mode="after")
+    def _feed(self) -> FeedConfig:
+        for key, allowed in (("topic", ("site", "machine", "point")), ("state_topic", ("site", "machine", "point")),
+                             ("command_topic", ("site",)), ("response_topic", ("site",))):
+            value = getattr(self, key)
+            problem = _template(value, allowed) if value else None
+            if problem:
+                raise _Problem(key, problem)
+        if not self.event_source:
+            raise _Problem("event_source", "must not be empty (CloudEvents requires a source)")
+        if self.enabled and self.source is None and self.url is None and self.webhook is None:
+            raise _Problem("url", "the feed needs a broker (url or source) and/or [feed.webhook]")
+        return self
+
+
+class CaptureConfig(_Table):
+    enabled: Bool = True
+    dir: Text = "captures"  # resolved against state_dir
+    max_mb: Float = Field(256.0, ge=0.01, le=1e6)
+    max_files: Int = Field(2000, ge=1, le=10_000_000)
+
+    @property
+    def max_bytes(self) -> int:
+        return int(self.max_mb * 1024 * 1024)
+
+
+class Config(_Table):
+    """The whole file.  ``points`` are the points this instance owns (all of them unless ``[site] shard`` says
+    otherwise); the file's every point is in ``all_points``."""
+
+    site: SiteConfig = Field(default_factory=SiteConfig)
+    logging: LoggingConfig = Field(default_factory=LoggingConfig)
+    metrics: MetricsConfig = Field(default_factory=MetricsConfig)
+    analysis: AnalysisConfig = Field(default_factory=AnalysisConfig)
+    sources: tuple[SourceConfig, ...] = ()
+    machines: tuple[MachineConfig, ...] = ()
+    all_points: tuple[PointConfig, ...] = Field((), alias="points", max_length=MAX_POINTS)
+    publish: PublishConfig = Field(default_factory=PublishConfig)
+    alarms: AlarmsConfig = Field(default_factory=AlarmsConfig)
+    feed: FeedConfig | None = None
+    capture: CaptureConfig = Field(default_factory=CaptureConfig)
+
+    _points: tuple[PointConfig, ...] = PrivateAttr(())
+    _deferred: tuple[tuple[str, str, str, str], ...] = PrivateAttr(())
+    _base_dir: str = PrivateAttr(".")
+    _digest: str = PrivateAttr("")
+    _plans: dict[str, AnalysisPlan] = PrivateAttr(default_factory=dict)
+    _alarm_settings: AlarmSettings | None = PrivateAttr(None)
+
+    @property
+    def points(self) -> tuple[PointConfig, ...]:
+        return self._points
+
+    @property
+    def skipped_points(self) -> tuple[str, ...]:
+        """Configured points that another instance of the shard set owns."""
+        owned = {p.id for p in self._points}
+        return tuple(p.id for p in self.all_points if p.id not in owned)
+
+    @property
+    def skipped_sensors(self) -> tuple[tuple[str, str], ...]:
+        """Their ``(source, sensor)`` keys: blocks ignored quietly."""
+        owned = {p.id for p in self._points}
+        return tuple((p.source, p.sensor) for p in self.all_points if p.id not in owned)
+
+    @property
+    def deferred(self) -> tuple[tuple[str, str, str, str], ...]:
+        """(key path, problem, why, file) found while loading that :func:`verify_for_run` checks again."""
+        return self._deferred
+
+    @property
+    def base_dir(self) -> str:
+        return self._base_dir
+
+    @property
+    def digest(self) -> str:
+        """The first 16 hex digits of the file's SHA-256 (empty for a configuration built in memory)."""
+        return self._digest
+
+    @property
+    def publish_mqtt(self) -> PublishMqttConfig:
+        return self.publish.mqtt
+
+    @property
+    def publish_opcua(self) -> PublishOpcUaConfig:
+        return self.publish.opcua
+
+    @property
+    def alarm_settings(self) -> AlarmSettings:
+        """The alarm layer's settings resolved per point (limits with their ISO boundaries, health specs)."""
+        if self._alarm_settings is None:
+            from edgevib.daemon.alarms.config import alarm_settings
+
+            self._alarm_settings = alarm_settings(self)
+        return self._alarm_settings
+
+    def plan(self, point_id: str) -> AnalysisPlan:
+        """The validated analysis plan of a point (checked once when the configuration was loaded)."""
+        plan = self._plans.get(point_id)
+        if plan is None:
+            p = self.point(point_id)
+            plan = self._plans[point_id] = plan_for(p, self.machine(p.machine))
+        return plan
+
+    def source(self, name: str) -> MqttSourceConfig | OpcUaSourceConfig | SimulatedSourceConfig:
         for s in self.sources:
             if s.name == name:
                 return s
@@ -334,180 +956,137 @@ class Config:
         raise KeyError(machine_id)
 
     def point(self, point_id: str) -> PointConfig:
-        for p in self.points:
+        for p in self._points:
             if p.id == point_id:
                 return p
         raise KeyError(point_id)
 
 
-# ------------------------------------------------------------------------------------------------ table reader
-
-_REQUIRED = object()
+# ------------------------------------------------------------------------------------------------ errors
 
 
 def _type_name(value: object) -> str:
-    return {bool: "boolean", int: "integer", float: "float", str: "string", list: "array",
+    return {bool: "boolean", int: "integer", float: "float", str: "string", list: "array", tuple: "array",
             dict: "table"}.get(type(value), type(value).__name__)
 
 
-# The reader's methods below shadow these names inside its class body.
-_Str: TypeAlias = str
-_Int: TypeAlias = int
-_Float: TypeAlias = float
-_Bool: TypeAlias = bool
+def _dotted(loc: tuple[int | str, ...]) -> str:
+    out = ""
+    for part in loc:
+        out += f"[{part}]" if isinstance(part, int) else (f".{part}" if out else str(part))
+    return out
 
 
-class _Table:
-    """Reads one TOML table, tracking its dotted path and which keys were used (the rest are unknown keys)."""
+def _did_you_mean(key: str, known: list[str]) -> str:
+    lower = {k.lower(): k for k in known}
+    match = lower.get(key.lower()) or next(iter(difflib.get_close_matches(key, known, n=1, cutoff=0.75)), None)
+    return f"; did you mean `{match}`?" if match else ""
 
-    def __init__(self, doc: object, path: _Str) -> None:
-        if not isinstance(doc, dict):
-            raise ConfigError(path, f"must be a table, got {_type_name(doc)}")
-        self.doc: dict[str, Any] = doc
-        self.path = path
-        self.used: set[str] = set()
 
-    def key(self, name: _Str) -> _Str:
-        return f"{self.path}.{name}" if self.path else name
+def _unwrap(t: Any) -> Any:
+    """The model or container type inside ``Annotated[…]`` / ``X | None``."""
+    while True:
+        if get_origin(t) is Annotated:
+            t = get_args(t)[0]
+            continue
+        args = [a for a in get_args(t) if a is not type(None)]
+        if get_origin(t) not in (list, tuple, dict) and len(args) == 1 and not isinstance(t, type):
+            t = args[0]
+            continue
+        return t
 
-    def has(self, name: _Str) -> _Bool:
-        return name in self.doc
 
-    def raw(self, name: _Str, default: Any = None) -> Any:
-        self.used.add(name)
-        return self.doc.get(name, default)
+def _fields_at(loc: tuple[int | str, ...]) -> tuple[dict[str, str], type[BaseModel] | None]:
+    """The keys (alias → field name) known at ``loc`` of the document, and the model there."""
+    t: Any = Config
+    for part in loc:
+        t = _unwrap(t)
+        if isinstance(part, int):
+            t = get_args(t)[0] if get_args(t) else Any
+        elif isinstance(t, type) and issubclass(t, BaseModel):
+            names = {f.alias or n: n for n, f in t.model_fields.items()}
+            if part not in names:
+                return {}, None
+            t = t.model_fields[names[part]].annotation
+        else:  # a union of sources: the tag names the member
+            members = [m for m in get_args(t) if isinstance(m, type) and issubclass(m, BaseModel)]
+            t = next((m for m in members if part in get_args(m.model_fields["type"].annotation)), Any)
+    t = _unwrap(t)
+    if isinstance(t, type) and issubclass(t, BaseModel):
+        return {f.alias or n: n for n, f in t.model_fields.items()}, t
+    return {}, None
 
-    def _get(self, name: _Str, default: Any) -> Any:
-        self.used.add(name)
-        if name not in self.doc:
-            if default is _REQUIRED:
-                raise ConfigError(self.key(name), "required key is missing")
-            return default
-        return self.doc[name]
 
-    def str(self, name: _Str, default: Any = _REQUIRED, choices: tuple[_Str, ...] | None = None) -> Any:
-        v = self._get(name, default)
-        if v is default and name not in self.doc:
-            return v
-        if not isinstance(v, str):
-            raise ConfigError(self.key(name), f"must be a string, got {_type_name(v)}")
-        if choices is not None and v not in choices:
-            raise ConfigError(self.key(name), f"{v!r} is not one of {', '.join(map(repr, choices))}")
-        if any(ord(c) < 32 for c in v):
-            raise ConfigError(self.key(name), "contains control characters")
-        return v
+def _clean(loc: tuple[int | str, ...]) -> tuple[int | str, ...]:
+    """``loc`` without the tag pydantic inserts after a source's index (``sources, 0, "mqtt", "qos"``)."""
+    return tuple(p for i, p in enumerate(loc) if not (p in _SOURCE_TYPES and i > 0 and isinstance(loc[i - 1], int)))
 
-    def int(self, name: _Str, default: Any = _REQUIRED, lo: _Int | None = None, hi: _Int | None = None) -> Any:
-        v = self._get(name, default)
-        if v is default and name not in self.doc:
-            return v
-        if isinstance(v, bool) or not isinstance(v, int):
-            raise ConfigError(self.key(name), f"must be an integer, got {_type_name(v)}")
-        self._range(name, v, lo, hi)
-        return v
 
-    def float(self, name: _Str, default: Any = _REQUIRED, lo: _Float | None = None, hi: _Float | None = None,
-              lo_open: _Bool = False) -> Any:
-        v = self._get(name, default)
-        if v is default and name not in self.doc:
-            return v
-        v = self._number(self.key(name), v)
-        self._range(name, v, lo, hi, lo_open)
-        return v
+def _unknown(loc: tuple[int | str, ...], value: object) -> str:
+    """"unknown key" (or table, or array of tables), with the key that was probably meant."""
+    known, _ = _fields_at(loc[:-1])
+    key = str(loc[-1])
+    hint = _did_you_mean(key, list(known))
+    if isinstance(value, dict) or _is_array_of_tables(value):
+        parent = _dotted(tuple(p for p in _clean(loc[:-1]) if not isinstance(p, int)))
+        left, right = ("[[", "]]") if isinstance(value, list) else ("[", "]")
+        name = f"{left}{parent + '.' if parent else ''}{key}{right}"
+        if hint:
+            meant = hint.split("`")[1]
+            hint = f"; did you mean `{left}{parent + '.' if parent else ''}{meant}{right}`?"
+        what = "array of tables" if isinstance(value, list) else "table"
+        return f"unknown {what} {name}{hint or f' (known here: {chr(44).join(sorted(known)) or chr(45)})'}"
+    return f"unknown key{hint}" if hint else f"unknown key (known keys here: {', '.join(sorted(known)) or 'none'})"
 
-    def bool(self, name: _Str, default: Any = _REQUIRED) -> Any:
-        v = self._get(name, default)
-        if v is default and name not in self.doc:
-            return v
-        if not isinstance(v, bool):
-            raise ConfigError(self.key(name), f"must be true or false, got {_type_name(v)}")
-        return v
 
-    def pair(self, name: _Str, default: Any = _REQUIRED, lo: _Float = 0.0) -> Any:
-        """A ``[low, high]`` pair of numbers with ``lo <= low < high``."""
-        v = self._get(name, default)
-        if v is default and name not in self.doc:
-            return v
-        path = self.key(name)
-        if not isinstance(v, list) or len(v) != 2:
-            raise ConfigError(path, f"must be a [low, high] pair of numbers, got {v!r}")
-        a, b = (self._number(f"{path}[{i}]", x) for i, x in enumerate(v))
-        if a < lo:
-            raise ConfigError(path, f"low edge {a:g} is below {lo:g}")
-        if not a < b:
-            raise ConfigError(path, f"low edge {a:g} must be below high edge {b:g}")
-        return (a, b)
+def _translate(exc: ValidationError) -> ConfigError:
+    """The first problem of a validation error, in our words, with its dotted key path."""
+    err = exc.errors(include_url=False)[0]
+    raw_loc: tuple[int | str, ...] = tuple(err["loc"])
+    loc, kind, value, ctx = _clean(raw_loc), err["type"], err.get("input"), err.get("ctx") or {}
+    problem: str = err["msg"]
+    if kind == "missing":
+        problem = "required key is missing"
+    elif kind == "extra_forbidden":
+        problem = _unknown(raw_loc, value)
+    elif kind in ("int_type", "int_from_float", "int_parsing"):
+        problem = f"must be an integer, got {_type_name(value)}"
+    elif kind in ("float_type", "float_parsing"):
+        problem = f"must be a number, got {_type_name(value)}"
+    elif kind == "finite_number":
+        problem = f"must be finite, got {value!r}"
+    elif kind in ("string_type", "str_type"):
+        problem = f"must be a string, got {_type_name(value)}"
+    elif kind == "bool_type":
+        problem = f"must be true or false, got {_type_name(value)}"
+    elif kind in ("greater_than_equal", "greater_than", "less_than_equal", "less_than"):
+        op, bound = {"greater_than_equal": (">=", "ge"), "greater_than": (">", "gt"),
+                     "less_than_equal": ("<=", "le"), "less_than": ("<", "lt")}[kind]
+        problem = f"{value:g} is out of range: must be {op} {ctx[bound]:g}"
+    elif kind == "literal_error":
+        problem = f"{value!r} is not one of {ctx['expected']}"
+    elif kind in ("model_type", "dict_type", "model_attributes_type"):
+        problem = f"must be a table, got {_type_name(value)}"
+    elif kind in ("tuple_type", "list_type"):
+        problem = f"must be an array, got {_type_name(value)}"
+    elif kind == "too_short":
+        problem = "must not be empty" if ctx.get("min_length") == 1 else f"needs at least {ctx['min_length']} entries"
+    elif kind == "too_long":
+        problem = f"{ctx.get('actual_length')} entries exceed the limit of {ctx['max_length']} per instance"
+    elif kind == "union_tag_invalid":
+        loc, problem = (*loc, "type"), f"{ctx['tag']!r} is not one of {ctx['expected_tags']}"
+    elif kind == "union_tag_not_found":
+        loc, problem = (*loc, "type"), "required key is missing (one of 'mqtt', 'opcua', 'simulated')"
+    elif kind == "value_error":
+        cause = ctx.get("error")
+        if isinstance(cause, _Problem):
+            loc, problem = (*loc, *[k for k in re.split(r"\.(?![^\[]*\])", cause.key) if k]), cause.problem
+        else:
+            problem = str(cause) if cause is not None else problem
+    return ConfigError(_dotted(loc), problem)
 
-    def str_list(self, name: _Str, default: Any = _REQUIRED) -> Any:
-        v = self._get(name, default)
-        if v is default and name not in self.doc:
-            return v
-        if not isinstance(v, list) or not all(isinstance(x, str) and x for x in v):
-            raise ConfigError(self.key(name), "must be an array of non-empty strings")
-        return tuple(v)
 
-    def table(self, name: _Str) -> _Table | None:
-        self.used.add(name)
-        if name not in self.doc:
-            return None
-        return _Table(self.doc[name], self.key(name))
-
-    def tables(self, name: _Str) -> list[_Table]:
-        self.used.add(name)
-        v = self.doc.get(name, [])
-        if not isinstance(v, list):
-            raise ConfigError(self.key(name), f"must be an array of tables ([[{name}]]), got {_type_name(v)}")
-        return [_Table(t, f"{self.key(name)}[{i}]") for i, t in enumerate(v)]
-
-    def secret(self, name: _Str, base_dir: Path) -> Secret | None:
-        """``name_file`` or ``name_env``; a literal ``name`` is rejected with a message saying how."""
-        if name in self.doc:
-            raise ConfigError(self.key(name), f"secrets are not accepted in the configuration file; put it in a "
-                              f"file and set {name}_file = \"/path\" (e.g. a systemd credential), or in an "
-                              f"environment variable and set {name}_env = \"NAME\"")
-        f, e = self.str(f"{name}_file", None), self.str(f"{name}_env", None)
-        if f is not None and e is not None:
-            raise ConfigError(self.key(name), f"give either {name}_file or {name}_env, not both")
-        if f is not None:
-            p = _resolve_path(f, base_dir, self.key(f"{name}_file"))
-            if not Path(p).is_file():
-                _missing(self.key(f"{name}_file"), f"secret file {p} does not exist", f, p)
-            return Secret("file", p)
-        if e is not None:
-            if e not in os.environ:
-                raise ConfigError(self.key(f"{name}_env"), f"environment variable {e} is not set")
-            return Secret("env", e)
-        return None
-
-    def path_key(self, name: _Str, base_dir: Path, must_exist: _Bool = True) -> _Str | None:
-        v = self.str(name, None)
-        if v is None:
-            return None
-        p = _resolve_path(v, base_dir, self.key(name))
-        if must_exist and not Path(p).is_file():
-            _missing(self.key(name), f"file {p} does not exist", v, p)
-        return p
-
-    def done(self) -> None:
-        unknown = sorted(set(self.doc) - self.used)
-        if unknown:
-            known = ", ".join(sorted(self.used)) or "none"
-            raise ConfigError(self.key(unknown[0]), f"unknown key (known keys here: {known})")
-
-    def _range(self, name: _Str, v: _Float, lo: _Float | None, hi: _Float | None, lo_open: _Bool = False) -> None:
-        if lo is not None and (v < lo or (lo_open and v == lo)):
-            raise ConfigError(self.key(name), f"{v:g} is out of range: must be {'>' if lo_open else '>='} {lo:g}")
-        if hi is not None and v > hi:
-            raise ConfigError(self.key(name), f"{v:g} is out of range: must be <= {hi:g}")
-
-    @staticmethod
-    def _number(path: _Str, v: object) -> _Float:
-        if isinstance(v, bool) or not isinstance(v, int | float):
-            raise ConfigError(path, f"must be a number, got {_type_name(v)}")
-        f = float(v)
-        if not math.isfinite(f):
-            raise ConfigError(path, f"must be finite, got {v!r}")
-        return f
+# ------------------------------------------------------------------------------------------------ paths
 
 
 def default_state_dir() -> str:
@@ -565,6 +1144,28 @@ def _collect_deferred() -> Iterator[list[tuple[str, str, str, str]]]:
         _DEFERRED.reset(token)
 
 
+def _files(m: BaseModel, path: str, base: Path) -> BaseModel:
+    """``m`` with every ``*_file`` key resolved against ``base`` (the file must exist, or be deferred), every
+    ``*_env`` variable checked, and the same for the tables inside it."""
+    update: dict[str, Any] = {}
+    for name, f in type(m).model_fields.items():
+        v = getattr(m, name)
+        key = f"{path}.{f.alias or name}" if path else (f.alias or name)
+        if name.endswith("_file") and isinstance(v, str):
+            resolved = _resolve_path(v, base, key)
+            if not Path(resolved).is_file():
+                what = "secret file" if name.endswith(("password_file", "token_file")) else "file"
+                _missing(key, f"{what} {resolved} does not exist", v, resolved)
+            update[name] = resolved
+        elif name.endswith("_env") and isinstance(v, str) and v not in os.environ:
+            raise ConfigError(key, f"environment variable {v} is not set")
+        elif isinstance(v, BaseModel):
+            update[name] = _files(v, key, base)
+        elif isinstance(v, tuple) and v and all(isinstance(x, BaseModel) for x in v):
+            update[name] = tuple(_files(x, f"{key}[{i}]", base) for i, x in enumerate(v))
+    return m.model_copy(update=update) if update else m
+
+
 def verify_for_run(cfg: Config) -> None:
     """Refuse to start with what ``load_config`` let pass for ``check-config``: an unresolved ``state_dir``, a
     missing secret or certificate file.  Raises :class:`ConfigError` naming the key."""
@@ -602,275 +1203,189 @@ def parse_listen(value: str, path: str = "metrics.listen") -> tuple[str, int]:
     return host, port
 
 
-# ------------------------------------------------------------------------------------------------ sections
+# ------------------------------------------------------------------------------------------------ resolution
 
 
-def _parse_mqtt_connection(t: _Table, base_dir: Path, default_client_id: str) -> MqttConnection:
-    url = t.str("url")
-    parts = urlsplit(url)
-    if parts.scheme not in ("mqtt", "mqtts") or not parts.hostname:
-        raise ConfigError(t.key("url"), f"{url!r} is not mqtt://host:port or mqtts://host:port")
-    try:
-        port = parts.port or (8883 if parts.scheme == "mqtts" else 1883)
-    except ValueError as exc:
-        raise ConfigError(t.key("url"), f"{url!r}: {exc}") from None
-    if parts.username or parts.password:
-        raise ConfigError(t.key("url"), "credentials in the URL are not accepted; use username and password_file "
-                          "or password_env")
-    rmin = t.float("reconnect_min_s", 0.5, lo=0.01, hi=3600.0)
-    rmax = t.float("reconnect_max_s", 30.0, lo=0.01, hi=3600.0)
-    if rmax < rmin:
-        raise ConfigError(t.key("reconnect_max_s"), f"{rmax:g} s is below reconnect_min_s {rmin:g} s")
-    cert = t.path_key("cert_file", base_dir)
-    key = t.path_key("key_file", base_dir)
-    if key is not None and cert is None:
-        raise ConfigError(t.key("cert_file"), "key_file is given without cert_file")
-    ca = t.path_key("ca_file", base_dir)
-    key_password = t.secret("key_password", base_dir)
-    if key_password is not None and cert is None:
-        raise ConfigError(t.key("key_password_file"), "a key passphrase needs cert_file and key_file")
-    tls = parts.scheme == "mqtts" or ca is not None or cert is not None
-    return MqttConnection(
-        url=url, host=parts.hostname, port=port, tls=tls,
-        protocol=t.str("protocol", "3.1.1", choices=("3.1.1", "5")),
-        client_id=t.str("client_id", default_client_id),
-        keepalive_s=t.float("keepalive_s", 30.0, lo=5.0, hi=3600.0),
-        reconnect_min_s=rmin, reconnect_max_s=rmax,
-        username=t.str("username", None), password=t.secret("password", base_dir),
-        ca_file=ca, cert_file=cert, key_file=key, key_password=key_password,
-    )
+def plan_for(point: PointConfig, machine: MachineConfig) -> AnalysisPlan:
+    """The analysis plan of a resolved point (``make_plan`` validates it; memoized there per distinct plan)."""
+    from edgevib.pipelines.analysis import make_plan
+    from edgevib.pipelines.types import BearingGeometry
 
-
-def _valid_filter(topic: str) -> str | None:
-    levels = topic.split("/")
-    for i, level in enumerate(levels):
-        if "#" in level and (level != "#" or i != len(levels) - 1):
-            return "'#' must be a whole last level"
-        if "+" in level and level != "+":
-            return "'+' must be a whole level"
-    return None
-
-
-def _parse_source(t: _Table, base_dir: Path, site: str) -> SourceConfig:
-    name = t.str("name")
-    kind = t.str("type", choices=("mqtt", "opcua", "simulated"))
-    src: SourceConfig
-    if kind == "mqtt":
-        conn = _parse_mqtt_connection(t, base_dir, f"edgevib-{site}-{name}")
-        topics = t.str_list("topics")
-        if not topics:
-            raise ConfigError(t.key("topics"), "needs at least one topic filter")
-        for i, topic in enumerate(topics):
-            problem = _valid_filter(topic)
-            if problem:
-                raise ConfigError(f"{t.key('topics')}[{i}]", f"invalid topic filter {topic!r}: {problem}")
-        sensor_from = t.str("sensor_from", "payload")
-        if sensor_from != "payload":
-            level = sensor_from.removeprefix("topic:")
-            if not sensor_from.startswith("topic:") or not level.isdigit():
-                raise ConfigError(t.key("sensor_from"), f"{sensor_from!r} is not \"payload\" or \"topic:N\"")
-        src = MqttSourceConfig(
-            name=name, connection=conn, topics=topics, qos=t.int("qos", 1, lo=0, hi=1), sensor_from=sensor_from,
-            max_payload_bytes=t.int("max_payload_bytes", DEFAULT_MAX_PAYLOAD_BYTES, lo=64, hi=64 * 1024 * 1024))
-    elif kind == "opcua":
-        endpoint = t.str("endpoint")
-        if not endpoint.startswith("opc.tcp://"):
-            raise ConfigError(t.key("endpoint"), f"{endpoint!r} is not an opc.tcp:// URL")
-        policy = t.str("security_policy", "None", choices=("None", "Basic256Sha256"))
-        src = OpcUaSourceConfig(
-            name=name, endpoint=endpoint, mode=t.str("mode", "subscribe", choices=("subscribe", "poll")),
-            poll_interval_s=t.float("poll_interval_s", 1.0, lo=0.01, hi=3600.0), security_policy=policy,
-            security_mode=t.str("security_mode", "SignAndEncrypt", choices=("Sign", "SignAndEncrypt")),
-            cert_file=t.path_key("cert_file", base_dir), key_file=t.path_key("key_file", base_dir),
-            server_cert_file=t.path_key("server_cert_file", base_dir),
-            username=t.str("username", None), password=t.secret("password", base_dir),
-            reconnect_min_s=t.float("reconnect_min_s", 0.5, lo=0.01, hi=3600.0),
-            reconnect_max_s=t.float("reconnect_max_s", 30.0, lo=0.01, hi=3600.0))
-        if policy != "None" and (src.cert_file is None or src.key_file is None):
-            raise ConfigError(t.key("security_policy"), f"{policy} needs cert_file and key_file")
+    b = point.bearing
+    bearing = None if b is None else BearingGeometry(b.elements, b.ball_diameter_mm, b.pitch_diameter_mm,
+                                                     b.contact_angle_deg)
+    if machine.speed_rpm is not None:  # a fixed speed is given every frame: the estimate's range only brackets it
+        speed_range_hz = (0.5 * machine.speed_rpm / 60.0, 1.5 * machine.speed_rpm / 60.0)
     else:
-        src = SimulatedSourceConfig(name=name, scenario=t.str("scenario", "demo"), seed=t.int("seed", 0, lo=0),
-                                    rate=t.float("rate", 1.0, lo=0.01, hi=1000.0))
-    t.done()
-    return src
+        speed_range_hz = (machine.speed_range_rpm[0] / 60.0, machine.speed_range_rpm[1] / 60.0)
+    return make_plan(point.fs_hz, point.frame_samples, velocity_band_hz=point.velocity_band_hz,
+                     envelope_band_hz=point.envelope_band_hz, bearing=bearing, orders=point.orders,
+                     speed_range_hz=speed_range_hz)
 
 
-def _parse_speed_tag(t: _Table, sources: dict[str, SourceConfig]) -> SpeedTag:
-    source = t.str("source")
-    if source not in sources:
-        raise ConfigError(t.key("source"), f"unknown source {source!r} (configured: {', '.join(sources) or 'none'})")
-    kind = sources[source].type
-    topic, node = t.str("topic", None), t.str("node", None)
-    if kind != "opcua" and topic is None:
-        raise ConfigError(t.key("topic"), f"source {source!r} is {kind}: the speed tag needs a topic")
-    if kind == "opcua" and node is None:
-        raise ConfigError(t.key("node"), f"source {source!r} is OPC UA: the speed tag needs a node")
-    tag = SpeedTag(source=source, topic=topic if kind != "opcua" else None, node=node if kind == "opcua" else None,
-                   unit=t.str("unit", "rpm", choices=("rpm", "hz")),
-                   max_age_s=t.float("max_age_s", 60.0, lo=0.1, hi=86400.0))
-    t.done()
-    return tag
+# a plan field at fault → the point's key that set it
+_PLAN_KEYS = {"n_samples": "frame_samples", "velocity_band_hz": "velocity_band_hz",
+              "envelope_band_hz": "envelope_band_hz", "orders": "orders", "bearing": "bearing",
+              "speed_range_hz": "frame_samples", "fs_hz": "fs_hz"}
 
 
-def _parse_machine(t: _Table, sources: dict[str, SourceConfig]) -> MachineConfig:
-    mid = t.str("id")
-    if not mid:
-        raise ConfigError(t.key("id"), "must not be empty")
-    group = t.int("group", None, lo=1, hi=2)
-    support = t.str("support", None, choices=("rigid", "flexible"))
-    if (group is None) != (support is None):
-        raise ConfigError(t.key("group" if group is None else "support"),
-                          "ISO 20816-3 zones need both group and support")
-    speed_rpm = t.float("speed_rpm", None, lo=0.0, hi=120000.0, lo_open=True)
-    tag_t = t.table("speed_tag")
-    if speed_rpm is not None and tag_t is not None:
-        raise ConfigError(t.key("speed_tag"), "give either speed_rpm (fixed) or speed_tag, not both")
-    speed_tag = _parse_speed_tag(tag_t, sources) if tag_t is not None else None
-    rng = t.pair("speed_range_rpm", (300.0, 3600.0))
-    if rng[0] <= 0:
-        raise ConfigError(t.key("speed_range_rpm"), f"low edge {rng[0]:g} r/min must be > 0")
-    m = MachineConfig(id=mid, description=t.str("description", ""), group=group, support=support,
-                      speed_rpm=speed_rpm, speed_tag=speed_tag, speed_range_rpm=rng,
-                      run_threshold_rpm=t.float("run_threshold_rpm", 60.0, lo=0.0))
-    t.done()
-    return m
+def _check_plans(cfg: Config) -> dict[str, AnalysisPlan]:
+    """Every point's plan through ``make_plan`` (once per distinct plan); a rejection names the point's key."""
+    from edgevib.pipelines.types import GeometryError, PipelineError
+
+    machines = {m.id: m for m in cfg.machines}
+    plans: dict[str, AnalysisPlan] = {}
+    for i, p in enumerate(cfg.all_points):
+        try:
+            plans[p.id] = plan_for(p, machines[p.machine])
+        except GeometryError as exc:
+            raise ConfigError(f"points[{i}].bearing", f"impossible bearing geometry: {exc}") from None
+        except PipelineError as exc:
+            key = _PLAN_KEYS.get(exc.field or "")
+            raise ConfigError(f"points[{i}].{key}" if key else f"points[{i}]",
+                              f"analysis plan rejected: {exc}") from None
+        env, bandwidth = p.envelope_band_hz, p.bandwidth_hz or (0.0, math.inf)
+        if env is not None and env[1] > bandwidth[1]:
+            raise ConfigError(f"points[{i}].envelope_band_hz", f"high edge {env[1]:g} Hz is above the sensor's "
+                              f"usable bandwidth {bandwidth[1]:g} Hz")
+        if env is not None and env[0] < bandwidth[0]:
+            raise ConfigError(f"points[{i}].envelope_band_hz", f"low edge {env[0]:g} Hz is below the sensor's "
+                              f"usable bandwidth {bandwidth[0]:g} Hz")
+    return plans
 
 
-def _parse_bearing(t: _Table) -> BearingConfig:
-    b = BearingConfig(elements=t.int("elements"), ball_diameter_mm=t.float("ball_diameter_mm"),
-                      pitch_diameter_mm=t.float("pitch_diameter_mm"),
-                      contact_angle_deg=t.float("contact_angle_deg", 0.0))
-    t.done()
-    problem = None
-    if b.elements < 3:
-        problem = f"{b.elements} rolling elements: a bearing needs at least 3"
-    elif b.ball_diameter_mm <= 0 or b.pitch_diameter_mm <= 0:
-        problem = f"diameters must be > 0 (ball {b.ball_diameter_mm:g} mm, pitch {b.pitch_diameter_mm:g} mm)"
-    elif b.ball_diameter_mm >= b.pitch_diameter_mm:
-        problem = (f"ball diameter {b.ball_diameter_mm:g} mm must be below the pitch diameter "
-                   f"{b.pitch_diameter_mm:g} mm")
-    elif not 0.0 <= b.contact_angle_deg < 90.0:
-        problem = f"contact angle {b.contact_angle_deg:g}° is outside 0..90°"
-    elif b.elements * b.ball_diameter_mm > math.pi * b.pitch_diameter_mm:
-        problem = (f"{b.elements} elements of {b.ball_diameter_mm:g} mm do not fit on a pitch circle of "
-                   f"{b.pitch_diameter_mm:g} mm (circumference {math.pi * b.pitch_diameter_mm:.1f} mm)")
-    if problem:
-        raise ConfigError(t.path, f"impossible bearing geometry: {problem}")
-    try:
-        validate_geometry(BearingGeometry(b.elements, b.ball_diameter_mm, b.pitch_diameter_mm, b.contact_angle_deg))
-    except PipelineError as exc:
-        raise ConfigError(t.path, f"impossible bearing geometry: {exc}") from None
-    return b
+def _default_envelope_band(p: PointConfig, m: MachineConfig) -> tuple[float, float] | None:
+    from edgevib.pipelines.analysis import default_envelope_band
 
-
-def _default_envelope_band(fs_hz: float, bandwidth_hz: tuple[float, float],
-                           shaft_hz_max: float | None) -> tuple[float, float] | None:
-    band = default_envelope_band(fs_hz, bandwidth_hz, shaft_hz_max=shaft_hz_max)
+    speed_hi_hz = (m.speed_rpm if m.speed_rpm is not None else m.speed_range_rpm[1]) / 60.0
+    band = default_envelope_band(p.fs_hz, p.bandwidth_hz, shaft_hz_max=speed_hi_hz)
     return None if band is None else (float(band[0]), float(band[1]))
 
 
-def _parse_point(t: _Table, machines: dict[str, MachineConfig], sources: dict[str, SourceConfig],
-                 analysis: AnalysisConfig) -> PointConfig:
-    pid = t.str("id")
-    if not pid:
-        raise ConfigError(t.key("id"), "must not be empty")
-    machine = t.str("machine")
-    if machine not in machines:
-        raise ConfigError(t.key("machine"),
-                          f"unknown machine {machine!r} (configured: {', '.join(machines) or 'none'})")
-    source = t.str("source")
-    if source not in sources:
-        raise ConfigError(t.key("source"), f"unknown source {source!r} (configured: {', '.join(sources) or 'none'})")
-    fs = t.float("fs_hz", lo=1.0, hi=1e6)
-    nyquist = fs / 2
-    block = t.int("block_samples", lo=1, hi=DEFAULT_MAX_SAMPLES)
-    sensor_type = t.str("sensor_type", "piezo", choices=("piezo", "mems"))
-    bandwidth = t.pair("bandwidth_hz", (0.5, 10000.0) if sensor_type == "piezo" else (0.0, 1000.0))
-    vband = t.pair("velocity_band_hz", (10.0, 1000.0), lo=0.0)
-    if vband[0] <= 0:
-        raise ConfigError(t.key("velocity_band_hz"), f"low edge {vband[0]:g} Hz must be > 0 (integration)")
-    if vband[1] >= nyquist:
-        raise ConfigError(t.key("velocity_band_hz"),
-                          f"high edge {vband[1]:g} Hz is at or above Nyquist {nyquist:g} Hz (fs_hz {fs:g})")
-    frame = t.int("frame_samples", analysis.frame_samples, lo=MIN_FRAME_SAMPLES, hi=MAX_FRAME_SAMPLES)
-    overlap = t.float("overlap", analysis.overlap, lo=0.0, hi=0.95)
-    m = machines[machine]
-    speed_lo_hz = (m.speed_rpm if m.speed_rpm is not None else m.speed_range_rpm[0]) / 60.0
-    speed_hi_hz = (m.speed_rpm if m.speed_rpm is not None else m.speed_range_rpm[1]) / 60.0
-    frame_s = frame / fs
-    if fs / frame > vband[0] / 2:
-        need = math.ceil(2 * fs / vband[0])
-        raise ConfigError(t.key("frame_samples"),
-                          f"frame of {frame} samples at {fs:g} Hz is too short: its {fs / frame:.3g} Hz resolution "
-                          f"cannot resolve the velocity band's {vband[0]:g} Hz low edge (needs >= {need} samples)")
-    if frame_s < 2.0 / speed_lo_hz:
-        need = math.ceil(2.0 / speed_lo_hz * fs)
-        raise ConfigError(t.key("frame_samples"),
-                          f"frame of {frame} samples ({frame_s:.3g} s) is too short for two revolutions at "
-                          f"{speed_lo_hz * 60:g} r/min (needs >= {need} samples)")
-    env_note = None
-    if t.has("envelope_band_hz"):
-        env = t.pair("envelope_band_hz")
-        if env[1] >= nyquist:
-            raise ConfigError(t.key("envelope_band_hz"),
-                              f"high edge {env[1]:g} Hz is at or above Nyquist {nyquist:g} Hz (fs_hz {fs:g})")
-        if env[1] > bandwidth[1]:
-            raise ConfigError(t.key("envelope_band_hz"),
-                              f"high edge {env[1]:g} Hz is above the sensor's usable bandwidth {bandwidth[1]:g} Hz")
-        if env[0] < bandwidth[0]:
-            raise ConfigError(t.key("envelope_band_hz"),
-                              f"low edge {env[0]:g} Hz is below the sensor's usable bandwidth {bandwidth[0]:g} Hz")
-    else:
-        t.used.add("envelope_band_hz")
-        env = _default_envelope_band(fs, bandwidth, speed_hi_hz)
-        if env is None:
-            env_note = (f"{sensor_type} sensor with usable bandwidth up to {bandwidth[1]:g} Hz at fs {fs:g} Hz "
-                        f"cannot carry an envelope demodulation band: no envelope indicators for this point")
-    bearing_t = t.table("bearing")
-    bearing = _parse_bearing(bearing_t) if bearing_t is not None else None
-    orders_raw = t.raw("orders", [0.5, 1.0, 2.0, 3.0])
-    if not isinstance(orders_raw, list) or not orders_raw:
-        raise ConfigError(t.key("orders"), "must be a non-empty array of positive numbers")
-    orders = tuple(_Table._number(f"{t.key('orders')}[{i}]", o) for i, o in enumerate(orders_raw))
-    if any(o <= 0 or o > 100 for o in orders):
-        raise ConfigError(t.key("orders"), f"orders {list(orders)} must be in (0, 100]")
-    if max(orders) * speed_hi_hz >= nyquist:
-        raise ConfigError(t.key("orders"), f"order {max(orders):g}× at {speed_hi_hz * 60:g} r/min is at or above "
-                          f"Nyquist {nyquist:g} Hz")
-    node = t.str("node", None)
-    if sources[source].type == "opcua" and node is None:
-        raise ConfigError(t.key("node"), f"source {source!r} is OPC UA: the point needs the node id of its array")
-    limits = t.raw("limits")
-    if limits is not None and not isinstance(limits, dict):
-        raise ConfigError(t.key("limits"), f"must be a table, got {_type_name(limits)}")
-    p = PointConfig(
-        id=pid, machine=machine, source=source, sensor=t.str("sensor", pid), fs_hz=fs, block_samples=block,
-        axis=t.str("axis", "radial", choices=("horizontal", "vertical", "axial", "radial")),
-        description=t.str("description", ""), sensor_type=sensor_type,
-        sensitivity_mv_per_g=t.float("sensitivity_mv_per_g", None, lo=0.0, lo_open=True),
-        bandwidth_hz=bandwidth, velocity_band_hz=vband, envelope_band_hz=env, envelope_note=env_note,
-        bearing=bearing, orders=orders, frame_samples=frame, overlap=overlap, node=node,
-        unit=t.str("unit", "g", choices=("g", "m/s2")), limits=limits)
-    t.done()
-    _check_plan(p, m, t.path)
-    return p
+def _resolve_point(p: PointConfig, i: int, cfg: Config) -> PointConfig:
+    key = f"points[{i}]"
+    machines, sources = {m.id: m for m in cfg.machines}, {s.name: s for s in cfg.sources}
+    if p.machine not in machines:
+        raise ConfigError(f"{key}.machine", f"unknown machine {p.machine!r} (configured: "
+                          f"{', '.join(machines) or 'none'}){_did_you_mean(p.machine, list(machines))}")
+    if p.source not in sources:
+        raise ConfigError(f"{key}.source", f"unknown source {p.source!r} (configured: "
+                          f"{', '.join(sources) or 'none'}){_did_you_mean(p.source, list(sources))}")
+    if sources[p.source].type == "opcua" and p.node is None:
+        raise ConfigError(f"{key}.node", f"source {p.source!r} is OPC UA: the point needs the node id of its array")
+    bandwidth = p.bandwidth_hz or ((0.5, 10000.0) if p.sensor_type == "piezo" else (0.0, 1000.0))
+    r = p.model_copy(update={"sensor": p.sensor or p.id, "bandwidth_hz": bandwidth,
+                             "frame_samples": p.frame_samples or cfg.analysis.frame_samples,
+                             "overlap": cfg.analysis.overlap if p.overlap < 0 else p.overlap})
+    if r.envelope_band_hz is None:
+        r = r.model_copy(update={"envelope_band_hz": _default_envelope_band(r, machines[p.machine])})
+    return r
 
 
-def _check_plan(p: PointConfig, m: MachineConfig, path: str) -> None:
-    """Let the numerical core validate the plan when it is available (its PlanError names the problem)."""
-    from edgevib.daemon.frames import build_plan  # frames imports this module
+def _connection_of(owner: _ReusesSource, key: str, cfg: Config) -> MqttConnection | None:
+    """The broker connection of ``[publish.mqtt]`` or ``[feed]``: a source's, or its own url."""
+    if owner.source is not None:
+        sources = {s.name: s for s in cfg.sources}
+        src = sources.get(owner.source)
+        if src is None:
+            raise ConfigError(f"{key}.source", f"unknown source {owner.source!r} (configured: "
+                              f"{', '.join(sources) or 'none'}){_did_you_mean(owner.source, list(sources))}")
+        if not isinstance(src, MqttSourceConfig):
+            raise ConfigError(f"{key}.source", f"source {owner.source!r} is {src.type}, not mqtt")
+        return src.model_copy(update={"client_id": f"{src.client_id}-{owner._SUFFIX}"})
+    return owner if owner.url is not None else None
 
-    try:
-        build_plan(p, m)
-    except PipelineError as exc:
-        raise ConfigError(path, f"analysis plan rejected: {exc}") from None
+
+def _resolve_sources(cfg: Config) -> tuple[SourceConfig, ...]:
+    out: list[Any] = []
+    seen: set[str] = set()
+    for i, s in enumerate(cfg.sources):
+        if s.name in seen:
+            raise ConfigError(f"sources[{i}].name", f"duplicate source name {s.name!r}")
+        seen.add(s.name)
+        if isinstance(s, MqttSourceConfig) and not s.client_id:
+            s = s.model_copy(update={"client_id": f"edgevib-{cfg.site.name}-{s.name}"})
+        out.append(s)
+    return tuple(out)
+
+
+def _resolve_machines(cfg: Config) -> tuple[MachineConfig, ...]:
+    sources = {s.name: s for s in cfg.sources}
+    seen: set[str] = set()
+    for i, m in enumerate(cfg.machines):
+        if m.id in seen:
+            raise ConfigError(f"machines[{i}].id", f"duplicate machine id {m.id!r}")
+        seen.add(m.id)
+        tag = m.speed_tag
+        if tag is None:
+            continue
+        key = f"machines[{i}].speed_tag"
+        if tag.source not in sources:
+            raise ConfigError(f"{key}.source", f"unknown source {tag.source!r} (configured: "
+                              f"{', '.join(sources) or 'none'}){_did_you_mean(tag.source, list(sources))}")
+        kind = sources[tag.source].type
+        if kind == "opcua" and (tag.node is None or tag.topic is not None):
+            raise ConfigError(f"{key}.node", f"source {tag.source!r} is OPC UA: the speed tag needs a node "
+                              "(not a topic)")
+        if kind != "opcua" and (tag.topic is None or tag.node is not None):
+            raise ConfigError(f"{key}.topic", f"source {tag.source!r} is {kind}: the speed tag needs a topic "
+                              "(not a node)")
+    return cfg.machines
+
+
+def _resolve(cfg: Config, base: Path, digest: str) -> Config:
+    cfg = _files(cfg, "", base)  # type: ignore[assignment]
+    state_dir = _resolve_path(cfg.site.state_dir, base, "site.state_dir")
+    site = cfg.site.model_copy(update={"state_dir": state_dir})
+    cfg = cfg.model_copy(update={"site": site})
+    cfg = cfg.model_copy(update={"sources": _resolve_sources(cfg), "machines": _resolve_machines(cfg)})
+    points: list[PointConfig] = []
+    ids: dict[str, int] = {}
+    sensors: dict[tuple[str, str], str] = {}
+    for i, p in enumerate(cfg.all_points):
+        if p.id in ids:
+            raise ConfigError(f"points[{i}].id", f"duplicate point id {p.id!r} (also points[{ids[p.id]}])")
+        ids[p.id] = i
+        r = _resolve_point(p, i, cfg)
+        sensor_key = (r.source, r.sensor)
+        if sensor_key in sensors:
+            raise ConfigError(f"points[{i}].sensor", f"sensor {r.sensor!r} on source {r.source!r} is already point "
+                              f"{sensors[sensor_key]!r}")
+        sensors[sensor_key] = r.id
+        points.append(r)
+    shard = cfg.site.shard
+    if shard is not None and shard.points is not None:
+        unknown = sorted(shard.points - set(ids))
+        if unknown:
+            raise ConfigError("site.shard.points", f"unknown point(s) {', '.join(unknown)}")
+    publish = cfg.publish.model_copy(update={"mqtt": cfg.publish.mqtt.model_copy(
+        update={"client_id": cfg.publish.mqtt.client_id or (f"edgevib-{site.name}-publish"
+                                                            if cfg.publish.mqtt.url else None)})})
+    publish.mqtt._broker = _connection_of(publish.mqtt, "publish.mqtt", cfg)
+    feed = cfg.feed
+    if feed is not None:
+        feed = feed.model_copy(update={
+            "client_id": feed.client_id or (f"edgevib-{site.name}-feed" if feed.url else None),
+            "command_topic": feed.command_topic.format(site=site.name),
+            "response_topic": feed.response_topic.format(site=site.name),
+            "event_source": feed.event_source.format(site=site.name)})
+        feed._broker = _connection_of(feed, "feed", cfg)
+    state = Path(state_dir)
+    alarms = cfg.alarms.model_copy(update={"socket": _resolve_path(cfg.alarms.socket, state, "alarms.socket")})
+    capture = cfg.capture.model_copy(update={"dir": _resolve_path(cfg.capture.dir, state, "capture.dir")})
+    cfg = cfg.model_copy(update={"all_points": tuple(points), "publish": publish, "feed": feed, "alarms": alarms,
+                                 "capture": capture})
+    cfg._points = tuple(p for p in points if owns_point(p.id, shard))
+    cfg._base_dir, cfg._digest = str(base), digest
+    return cfg
 
 
 # ------------------------------------------------------------------------------------------------ entry points
 
 
-def load_config(path: str | os.PathLike[str]) -> Config:
-    """Read and validate a TOML configuration file."""
+def load_config(path: str | os.PathLike[str], overrides: Mapping[str, Any] | None = None) -> Config:
+    """Read and validate a TOML configuration file; ``overrides`` maps dotted keys (``"site.state_dir"``) to
+    values that replace the file's before validation (the command line's ``--state-dir``, ``--log-level``)."""
     p = Path(path)
     try:
         data = p.read_bytes()
@@ -880,233 +1395,113 @@ def load_config(path: str | os.PathLike[str]) -> Config:
         doc = tomllib.loads(data.decode("utf-8"))
     except (UnicodeDecodeError, tomllib.TOMLDecodeError) as exc:
         raise ConfigError("", f"not valid TOML: {exc}") from None
+    if not doc:
+        raise ConfigError("", "the file holds no configuration (it is empty or only comments): a configuration "
+                          "needs at least [[sources]], [[machines]] and [[points]]")
+    for dotted, value in (overrides or {}).items():
+        *tables, key = dotted.split(".")
+        t = doc
+        for name in tables:
+            t = t.setdefault(name, {}) if isinstance(t.get(name, {}), dict) else {}
+        t[key] = value
     return parse_config(doc, p.resolve().parent, digest=hashlib.sha256(data).hexdigest()[:16])
 
 
-def parse_config(doc: dict[str, Any], base_dir: str | os.PathLike[str] = ".", digest: str = "") -> Config:
-    """Validate a parsed TOML document; relative file paths resolve against ``base_dir``."""
-    with _collect_deferred() as deferred:
-        cfg = _parse_config(doc, Path(base_dir), digest)
-        return replace(cfg, deferred=tuple(deferred))
-
-
-def _parse_config(doc: dict[str, Any], base: Path, digest: str) -> Config:
-    root = _Table(doc, "")
-    site_t = root.table("site") or _Table({}, "site")
-    site_name = site_t.str("name", "edgevib")
-    if not site_name or not all(c.isalnum() or c in "-_." for c in site_name):
-        raise ConfigError("site.name", f"{site_name!r} must be non-empty letters, digits, '-', '_' or '.'")
-    state_dir = _resolve_path(site_t.str("state_dir", default_state_dir()), base, "site.state_dir")
-    shard_t = site_t.table("shard")
-
-    log_t = root.table("logging") or _Table({}, "logging")
-    logging_cfg = LoggingConfig(level=log_t.str("level", "info", choices=("debug", "info", "warning", "error")),
-                                format=log_t.str("format", "auto", choices=("auto", "json", "console")))
-    log_t.done()
-
-    met_t = root.table("metrics") or _Table({}, "metrics")
-    listen = met_t.str("listen", "127.0.0.1:9851")
-    host, port = parse_listen(listen)
-    metrics = MetricsConfig(listen=listen, host=host, port=port,
-                            tls_cert_file=met_t.path_key("tls_cert_file", base),
-                            tls_key_file=met_t.path_key("tls_key_file", base),
-                            tls_client_ca_file=met_t.path_key("tls_client_ca_file", base))
-    if (metrics.tls_cert_file is None) != (metrics.tls_key_file is None):
-        raise ConfigError("metrics.tls_cert_file", "TLS needs both tls_cert_file and tls_key_file")
-    if metrics.tls_client_ca_file is not None and metrics.tls_cert_file is None:
-        raise ConfigError("metrics.tls_client_ca_file", "client certificates need TLS (tls_cert_file, tls_key_file)")
-    met_t.done()
-
-    an_t = root.table("analysis") or _Table({}, "analysis")
-    analysis = AnalysisConfig(
-        frame_samples=an_t.int("frame_samples", 16384, lo=MIN_FRAME_SAMPLES, hi=MAX_FRAME_SAMPLES),
-        overlap=an_t.float("overlap", 0.5, lo=0.0, hi=0.95),
-        queue_frames=an_t.int("queue_frames", 4, lo=1, hi=1024),
-        workers=an_t.int("workers", 1, lo=1, hi=64),
-        trend_halflife_s=an_t.float("trend_halflife_s", 600.0, lo=0.0, lo_open=True))
-    an_t.done()
-
-    sources: dict[str, SourceConfig] = {}
-    for t in root.tables("sources"):
-        s = _parse_source(t, base, site_name)
-        if s.name in sources:
-            raise ConfigError(t.key("name"), f"duplicate source name {s.name!r}")
-        sources[s.name] = s
-
-    machines: dict[str, MachineConfig] = {}
-    for t in root.tables("machines"):
-        m = _parse_machine(t, sources)
-        if m.id in machines:
-            raise ConfigError(t.key("id"), f"duplicate machine id {m.id!r}")
-        machines[m.id] = m
-
-    point_tables = root.tables("points")
-    if len(point_tables) > MAX_POINTS:
-        raise ConfigError("points", f"{len(point_tables)} points exceed the limit of {MAX_POINTS} per instance")
-    points: dict[str, PointConfig] = {}
-    sensors: dict[tuple[str, str], str] = {}
-    for t in point_tables:
-        p = _parse_point(t, machines, sources, analysis)
-        if p.id in points:
-            raise ConfigError(t.key("id"), f"duplicate point id {p.id!r}")
-        key = (p.source, p.sensor)
-        if key in sensors:
-            raise ConfigError(t.key("sensor"), f"sensor {p.sensor!r} on source {p.source!r} is already point "
-                              f"{sensors[key]!r}")
-        points[p.id] = p
-        sensors[key] = p.id
-
-    shard: Shard | None = None
-    if shard_t is not None:
-        shard = validate_shard(shard_t.doc, "site.shard")
-        listed = shard.points
-        unknown = sorted(set(listed or ()) - set(points))
-        if unknown:
-            raise ConfigError("site.shard.points", f"unknown point(s) {', '.join(unknown)}")
-    site_t.done()
-    site = SiteConfig(name=site_name, state_dir=state_dir, shard=shard)
-    kept, skipped = list(points.values()), []
-    if shard is not None:
-        kept = [p for p in points.values() if owns_point(p.id, shard)]
-        skipped = [p for p in points.values() if p not in kept]
-
-    pub = root.table("publish")
-    publish_mqtt, publish_opcua = PublishMqttConfig(), PublishOpcUaConfig()
-    if pub is not None:
-        pm = pub.table("mqtt")
-        if pm is not None:
-            publish_mqtt = _parse_publish_mqtt(pm, sources, base, site_name)
-        po = pub.table("opcua")
-        if po is not None:
-            plisten = po.str("listen", "127.0.0.1:4841")
-            phost, pport = parse_listen(plisten, po.key("listen"))
-            if pport == 0:
-                raise ConfigError(po.key("listen"), "the OPC UA server needs a fixed port (1..65535), not 0")
-            publish_opcua = PublishOpcUaConfig(enabled=po.bool("enabled", False), listen=plisten, host=phost,
-                                               port=pport, namespace=po.str("namespace", "urn:edgevib:indicators"))
-            po.done()
-        pub.done()
-
-    alarm_tables: dict[str, Any] = {}
-    for name in ALARM_TABLES:
-        v = root.raw(name)
-        if v is not None:
-            if not isinstance(v, dict):
-                raise ConfigError(name, f"must be a table, got {_type_name(v)}")
-            alarm_tables[name] = v
-    root.done()
-    cfg = Config(site=site, logging=logging_cfg, metrics=metrics, analysis=analysis,
-                 sources=tuple(sources.values()), machines=tuple(machines.values()), points=tuple(kept),
-                 publish_mqtt=publish_mqtt, publish_opcua=publish_opcua, alarm_tables=alarm_tables,
-                 skipped_points=tuple(p.id for p in skipped),
-                 skipped_sensors=tuple((p.source, p.sensor) for p in skipped), base_dir=str(base), digest=digest)
-    from edgevib.daemon.alarms.config import parse_alarm_config  # it builds on this module's helpers
-
-    return replace(cfg, alarms=parse_alarm_config(doc, cfg))
-
-
-def _parse_publish_mqtt(t: _Table, sources: dict[str, SourceConfig], base: Path, site: str) -> PublishMqttConfig:
-    enabled = t.bool("enabled", False)
-    source = t.str("source", None)
-    conn: MqttConnection | None = None
-    if source is not None and t.has("url"):
-        raise ConfigError(t.key("url"), "give either source (reuse its broker settings) or url, not both")
-    if source is not None:
-        src = sources.get(source)
-        if src is None:
-            raise ConfigError(t.key("source"), f"unknown source {source!r} (configured: {', '.join(sources)})")
-        if not isinstance(src, MqttSourceConfig):
-            raise ConfigError(t.key("source"), f"source {source!r} is {src.type}, not mqtt")
-        conn = replace(src.connection, client_id=src.connection.client_id + "-publish")
-    elif t.has("url"):
-        conn = _parse_mqtt_connection(t, base, f"edgevib-{site}-publish")
-    elif enabled:
-        raise ConfigError(t.key("url"), "publishing needs a url or a source to reuse")
-    topic = t.str("topic", "edgevib/{site}/{machine}/{point}/indicators")
+def parse_config(doc: Mapping[str, Any], base_dir: str | os.PathLike[str] = ".", digest: str = "", *,
+                 plans: bool = True) -> Config:
+    """Validate a parsed TOML document; relative file paths resolve against ``base_dir``.  ``plans=False`` skips
+    the analysis-plan and alarm-limit checks that need the numerical core."""
     try:
-        topic.format(site="s", machine="m", point="p")
-    except (KeyError, IndexError, ValueError) as exc:
-        raise ConfigError(t.key("topic"), f"template {topic!r} may only use {{site}}, {{machine}}, {{point}} "
-                          f"({exc})") from None
-    if "+" in topic or "#" in topic:
-        raise ConfigError(t.key("topic"), f"a publish topic cannot contain wildcards: {topic!r}")
-    cfg = PublishMqttConfig(enabled=enabled, source=source, connection=conn, topic=topic,
-                            qos=t.int("qos", 0, lo=0, hi=1), retain=t.bool("retain", False))
-    t.done()
+        cfg = Config.model_validate(doc)
+    except ValidationError as exc:
+        raise _translate(exc) from None
+    with _collect_deferred() as deferred:
+        cfg = _resolve(cfg, Path(base_dir), digest)
+    cfg._deferred = tuple(deferred)
+    if plans:
+        cfg._plans = _check_plans(cfg)
+        _ = cfg.alarm_settings  # resolve the alarm layer's limits now: their errors are the file's errors
     return cfg
 
 
 # ------------------------------------------------------------------------------------------------ printing
 
 
+_FIRST_KEYS = ("id", "name", "type", "enabled")
+
+
+def _ordered_keys(v: Any) -> Any:
+    if isinstance(v, Mapping):
+        first = [k for k in _FIRST_KEYS if k in v]
+        return {k: _ordered_keys(v[k]) for k in [*first, *[k for k in v if k not in first]]}
+    if isinstance(v, list | tuple):
+        return [_ordered_keys(x) for x in v]
+    return v
+
+
 def config_to_document(cfg: Config) -> dict[str, Any]:
-    """The resolved configuration as a plain document (secrets as ``<from file …>``), for ``check-config``."""
+    """The resolved configuration as a TOML document (defaults filled in, derived values written out, secrets as
+    the file or variable that holds them): :func:`parse_config` of it gives the same configuration."""
+    doc: dict[str, Any] = _ordered_keys(cfg.model_dump(by_alias=True, exclude_none=True))
+    return doc
 
-    def conv(v: Any) -> Any:
-        if isinstance(v, Secret):
-            return repr(v)
-        if is_dataclass(v) and not isinstance(v, type):
-            return {f.name: conv(getattr(v, f.name)) for f in fields(v) if getattr(v, f.name) is not None}
-        if isinstance(v, tuple | list):
-            return [conv(x) for x in v]
-        if isinstance(v, frozenset | set):
-            return sorted(conv(x) for x in v)
-        if isinstance(v, Mapping):
-            return {str(k): conv(x) for k, x in v.items() if x is not None}
-        return v
 
-    doc = conv(cfg)
-    for key in ("alarms", "base_dir", "digest", "skipped_sensors", "deferred"):
-        doc.pop(key, None)
-    if not doc.get("skipped_points"):
-        doc.pop("skipped_points", None)
-    tables = dict(doc.pop("alarm_tables", {}))
-    if cfg.alarms is None:  # no alarm layer installed: its tables as written
-        doc.update(tables)
-    else:  # the alarm layer's tables ([alarms], [feed], [capture], per-point limits) as resolved
-        settings = conv(cfg.alarms)
-        if isinstance(settings, dict):
-            settings.pop("config_digest", None)
-            if isinstance(settings.get("socket_mode"), int):
-                settings["socket_mode"] = f"{settings['socket_mode']:04o}"
-        doc["alarm_settings"] = settings
-    return dict(doc)
+def _toml_key(k: str) -> str:
+    return k if re.fullmatch(r"[A-Za-z0-9_-]+", k) else json.dumps(k, ensure_ascii=False)
 
 
 def _toml_value(v: Any) -> str:
     if isinstance(v, bool):
         return "true" if v else "false"
-    if isinstance(v, int | float):
+    if isinstance(v, int):
+        return str(v)
+    if isinstance(v, float):
+        if not math.isfinite(v):
+            raise ValueError(f"cannot write non-finite number {v!r} to TOML")
         return repr(v)
     if isinstance(v, str):
-        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
-    if isinstance(v, list):
+        return json.dumps(v, ensure_ascii=False)
+    if isinstance(v, list | tuple | frozenset | set):
         return "[" + ", ".join(_toml_value(x) for x in v) + "]"
-    if isinstance(v, dict):
-        return "{ " + ", ".join(f"{_toml_key(k)} = {_toml_value(x)}" for k, x in v.items()) + " }"
-    return _toml_value(str(v))
+    if isinstance(v, Mapping):
+        return "{ " + ", ".join(f"{_toml_key(str(k))} = {_toml_value(x)}" for k, x in v.items()) + " }" if v else "{}"
+    raise TypeError(f"cannot write {type(v).__name__} to TOML")
 
 
-def _toml_key(k: str) -> str:
-    return k if k and all(c.isalnum() or c in "-_" for c in k) else _toml_value(k)
+def _is_array_of_tables(v: Any) -> bool:
+    return isinstance(v, list | tuple) and bool(v) and all(isinstance(x, Mapping) for x in v)
 
 
-def dump_toml(doc: Mapping[str, Any], prefix: str = "") -> str:
-    """A small TOML writer for the resolved configuration (tables, arrays of tables, scalars, inline rest)."""
+def _is_header(v: Any, depth: int, in_array: bool) -> bool:
+    """A table gets a ``[header]`` unless it is small and flat and sits inside an array-of-tables entry or deeper
+    (``bearing = { … }``, ``alert = { factor = 3.0 }``)."""
+    if not isinstance(v, Mapping):
+        return _is_array_of_tables(v)
+    flat = all(not isinstance(x, Mapping) and not _is_array_of_tables(x) for x in v.values())
+    return not flat or len(v) > 4 or depth == 0 or (depth == 1 and not in_array)
+
+
+def _emit(lines: list[str], prefix: str, table: Mapping[str, Any], depth: int, array: bool = False) -> None:
+    if prefix:
+        lines.append(f"[[{prefix}]]" if array else f"[{prefix}]")
+    in_array = array or depth > 1
+    for k, v in table.items():
+        if not _is_header(v, depth, in_array):
+            lines.append(f"{_toml_key(str(k))} = {_toml_value(v)}")
+    if prefix:
+        lines.append("")
+    for k, v in table.items():
+        if _is_header(v, depth, in_array):
+            name = f"{prefix}.{_toml_key(str(k))}" if prefix else _toml_key(str(k))
+            if isinstance(v, Mapping):
+                _emit(lines, name, v, depth + 1)
+            else:
+                for item in v:
+                    _emit(lines, name, item, depth + 1, array=True)
+
+
+def dump_toml(doc: Mapping[str, Any]) -> str:
+    """TOML text of a configuration document (tables, arrays of tables, small flat tables inline)."""
     lines: list[str] = []
-    tables: list[tuple[str, Any]] = []
-    for k, v in doc.items():
-        nested = isinstance(v, dict) or (isinstance(v, list) and v and all(isinstance(x, dict) for x in v))
-        if nested and prefix.count(".") < 2:  # [a] and [a.b] headers; deeper tables stay inline
-            tables.append((k, v))
-        else:
-            lines.append(f"{_toml_key(k)} = {_toml_value(v)}")
-    out = "\n".join(lines)
-    for k, v in tables:
-        name = f"{prefix}{_toml_key(k)}"
-        if isinstance(v, list):
-            for item in v:
-                out += f"\n\n[[{name}]]\n" + dump_toml(item, prefix=name + ".")
-        else:
-            out += f"\n\n[{name}]\n" + dump_toml(v, prefix=name + ".")
-    return out.strip("\n") + "\n" if not prefix else out.strip("\n")
+    _emit(lines, "", doc, 0)
+    return "\n".join(lines).rstrip() + "\n"

@@ -31,8 +31,7 @@ import numpy.typing as npt
 from edgevib.daemon.config import G_M_S2, Config, MachineConfig, PointConfig, SpeedTag
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 from edgevib.daemon.wire import Block, WireError, decode
-from edgevib.pipelines.analysis import make_plan
-from edgevib.pipelines.types import AnalysisPlan, BearingGeometry, FrameIndicators
+from edgevib.pipelines.types import FrameIndicators
 
 __all__ = [
     "LATENCY_BUCKETS_S",
@@ -42,7 +41,6 @@ __all__ = [
     "LatencyHistogram",
     "PointStream",
     "Stats",
-    "build_plan",
     "indicator_values",
 ]
 
@@ -243,26 +241,6 @@ class EwTrend:
             self.values[k] = v if prev is None else prev + alpha * (v - prev)
         self.t_s = t_s if self.t_s is None else max(self.t_s, t_s)
         return dict(self.values)
-
-
-# ------------------------------------------------------------------------------------------------ plans
-
-
-def build_plan(point: PointConfig, machine: MachineConfig) -> AnalysisPlan:
-    """The analysis plan of a point (validated by the numerical core's ``make_plan`` when it is available)."""
-    bearing = None
-    if point.bearing is not None:
-        b = point.bearing
-        bearing = BearingGeometry(b.elements, b.ball_diameter_mm, b.pitch_diameter_mm, b.contact_angle_deg)
-    if machine.speed_rpm is not None:  # a fixed speed is given every frame: the estimate's range only brackets it
-        speed_range_hz = (0.5 * machine.speed_rpm / 60.0, 1.5 * machine.speed_rpm / 60.0)
-    else:
-        speed_range_hz = (machine.speed_range_rpm[0] / 60.0, machine.speed_range_rpm[1] / 60.0)
-    kwargs: dict[str, Any] = dict(
-        fs_hz=point.fs_hz, n_samples=point.frame_samples, velocity_band_hz=point.velocity_band_hz,
-        envelope_band_hz=point.envelope_band_hz, bearing=bearing, orders=point.orders,
-        speed_range_hz=speed_range_hz)
-    return make_plan(**kwargs)
 
 
 # ------------------------------------------------------------------------------------------------ ingest

@@ -8,13 +8,15 @@ from __future__ import annotations
 
 from collections.abc import Awaitable, Callable
 from dataclasses import dataclass, field
-from typing import Any, Protocol, runtime_checkable
+from typing import TYPE_CHECKING, Any, Protocol, runtime_checkable
 
 import numpy as np
 import numpy.typing as npt
 
 from edgevib.daemon.wire import Block
-from edgevib.pipelines.types import FrameIndicators
+
+if TYPE_CHECKING:  # the configuration imports this module and must not load the numerical core
+    from edgevib.pipelines.types import FrameIndicators
 
 __all__ = [
     "BlockHandler",

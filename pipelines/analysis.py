@@ -83,75 +83,96 @@ def order_key(order: float) -> str:
     return f"{order:g}x"
 
 
-def _finite(name: str, value: object) -> float:
+def _finite(name: str, value: object, field: str | None = None) -> float:
     if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value):
-        raise PlanError(f"{name} {value!r} must be a finite number")
+        raise PlanError(f"{name} {value!r} must be a finite number", field=field)
     return float(value)
 
 
-def _band(name: str, band: object, nyquist_hz: float) -> tuple[float, float]:
+def _band(name: str, band: object, nyquist_hz: float, field: str) -> tuple[float, float]:
     if not isinstance(band, tuple | list) or len(band) != 2:
-        raise PlanError(f"{name} {band!r} must be a (low, high) pair in Hz")
-    lo, hi = _finite(f"{name} low edge", band[0]), _finite(f"{name} high edge", band[1])
+        raise PlanError(f"{name} {band!r} must be a (low, high) pair in Hz", field=field)
+    lo, hi = _finite(f"{name} low edge", band[0], field), _finite(f"{name} high edge", band[1], field)
     if lo <= 0:
-        raise PlanError(f"{name} low edge {lo:g} Hz must be > 0")
+        raise PlanError(f"{name} low edge {lo:g} Hz must be > 0", field=field)
     if hi <= lo:
-        raise PlanError(f"{name} high edge {hi:g} Hz must be above its low edge {lo:g} Hz")
+        raise PlanError(f"{name} high edge {hi:g} Hz must be above its low edge {lo:g} Hz", field=field)
     if hi >= nyquist_hz:
-        raise PlanError(f"{name} high edge {hi:g} Hz is at or above Nyquist {nyquist_hz:g} Hz")
+        raise PlanError(f"{name} high edge {hi:g} Hz is at or above Nyquist {nyquist_hz:g} Hz", field=field)
     return lo, hi
 
 
 def _validate(plan: AnalysisPlan) -> AnalysisPlan:
-    """Check every field of ``plan`` and return a normalized copy (floats, tuples)."""
-    fs = _finite("sample rate", plan.fs_hz)
+    """Check every field of ``plan`` and return a normalized copy (floats, tuples); see :func:`_check_plan`.
+
+    Memoized (a pure function of a frozen plan), so a configuration's plan is validated once however often it is
+    asked for; a plan built by hand with unhashable fields (lists) is checked without the memo."""
+    try:
+        hash(plan)
+    except TypeError:
+        return _check_plan.__wrapped__(plan)
+    return _check_plan(plan)
+
+
+@lru_cache(maxsize=256)
+def _check_plan(plan: AnalysisPlan) -> AnalysisPlan:
+    """The checks of :func:`_validate`.
+
+    Frame resolution: the line spacing ``fs/n`` must be at most half the velocity band's low edge (that edge then
+    lies two lines above DC, clear of the Hann window's leakage of the mean and of what lies below the band) and at
+    most half the lowest shaft speed (two revolutions per record).
+    """
+    fs = _finite("sample rate", plan.fs_hz, "fs_hz")
     if fs <= 0:
-        raise PlanError(f"sample rate {fs:g} Hz must be > 0")
+        raise PlanError(f"sample rate {fs:g} Hz must be > 0", field="fs_hz")
     n = plan.n_samples
     if isinstance(n, bool) or not isinstance(n, int) or n < MIN_SAMPLES:
-        raise PlanError(f"record of {n!r} samples is too short: need at least {MIN_SAMPLES}")
+        raise PlanError(f"record of {n!r} samples is too short: need at least {MIN_SAMPLES}", field="n_samples")
     nyq = fs / 2.0
     df = fs / n
-    vel = _band("velocity band", plan.velocity_band_hz, nyq)
-    if df > vel[0]:
-        raise PlanError(f"record of {n} samples at {fs:g} Hz is too short: it resolves {df:.4g} Hz, coarser than the "
-                        f"velocity band's low edge {vel[0]:g} Hz; need at least {math.ceil(fs / vel[0])} samples")
-    speed = _band("speed range", plan.speed_range_hz, nyq)
+    vel = _band("velocity band", plan.velocity_band_hz, nyq, "velocity_band_hz")
+    if df > vel[0] / 2.0:
+        raise PlanError(f"record of {n} samples at {fs:g} Hz is too short: it resolves {df:.4g} Hz, too coarse for "
+                        f"the velocity band's low edge {vel[0]:g} Hz (2 lines needed); need at least "
+                        f"{math.ceil(2 * fs / vel[0])} samples", field="n_samples")
+    speed = _band("speed range", plan.speed_range_hz, nyq, "speed_range_hz")
     if df > speed[0] / 2.0:
         raise PlanError(f"record of {n} samples at {fs:g} Hz is too short: it resolves {df:.4g} Hz, too coarse for "
                         f"the lowest shaft speed {speed[0]:g} Hz (2 lines needed); need at least "
-                        f"{math.ceil(2 * fs / speed[0])} samples")
-    orders = tuple(_finite("order", o) for o in plan.orders)
+                        f"{math.ceil(2 * fs / speed[0])} samples", field="n_samples")
+    orders = tuple(_finite("order", o, "orders") for o in plan.orders)
     if not orders or min(orders) <= 0:
-        raise PlanError(f"orders {plan.orders!r} must be a non-empty list of positive multiples of shaft speed")
-    tol = _finite("order tolerance", plan.order_tolerance)
+        raise PlanError(f"orders {plan.orders!r} must be a non-empty list of positive multiples of shaft speed",
+                        field="orders")
+    tol = _finite("order tolerance", plan.order_tolerance, "order_tolerance")
     if not 0 < tol <= 0.25:
-        raise PlanError(f"order tolerance {tol:g} must be in 0 < tolerance ≤ 0.25")
+        raise PlanError(f"order tolerance {tol:g} must be in 0 < tolerance ≤ 0.25", field="order_tolerance")
     top = max(max(orders), SPEED_HARMONICS) * speed[1] * (1 + tol)
     if top >= nyq:
         raise PlanError(f"speed range high end {speed[1]:g} Hz × order {max(max(orders), SPEED_HARMONICS):g} "
-                        f"reaches {top:g} Hz, at or above Nyquist {nyq:g} Hz")
-    slip = _finite("slip tolerance", plan.slip_tolerance)
+                        f"reaches {top:g} Hz, at or above Nyquist {nyq:g} Hz", field="orders")
+    slip = _finite("slip tolerance", plan.slip_tolerance, "slip_tolerance")
     if not 0 <= slip <= 0.1:
-        raise PlanError(f"slip tolerance {slip:g} must be in 0 ≤ slip ≤ 0.1")
+        raise PlanError(f"slip tolerance {slip:g} must be in 0 ≤ slip ≤ 0.1", field="slip_tolerance")
     harmonics = plan.harmonics
     if isinstance(harmonics, bool) or not isinstance(harmonics, int) or not 1 <= harmonics <= 10:
-        raise PlanError(f"harmonics {harmonics!r} must be an integer from 1 to 10")
+        raise PlanError(f"harmonics {harmonics!r} must be an integer from 1 to 10", field="harmonics")
     if plan.bearing is not None:
         validate_geometry(plan.bearing)
     env = None
     if plan.envelope_band_hz is not None:
-        env = _band("envelope band", plan.envelope_band_hz, nyq)
+        env = _band("envelope band", plan.envelope_band_hz, nyq, "envelope_band_hz")
         lines = band_lines(fs, n, env)
         if lines[1] - lines[0] + 1 < 8:
             raise PlanError(f"envelope band {env[0]:g}–{env[1]:g} Hz holds fewer than 8 lines at resolution "
-                            f"{df:.4g} Hz: widen it or lengthen the record")
+                            f"{df:.4g} Hz: widen it or lengthen the record", field="envelope_band_hz")
         if plan.bearing is not None:
             m = defect_multiples(plan.bearing)
             highest = max(m.bpfi_hz, 2 * m.bsf_hz, m.bpfo_hz) * speed[1] * (1 + slip)
             if env[1] - env[0] < highest:
                 raise PlanError(f"envelope band {env[0]:g}–{env[1]:g} Hz is narrower than the highest defect "
-                                f"frequency searched ({highest:.4g} Hz at {speed[1]:g} Hz shaft speed)")
+                                f"frequency searched ({highest:.4g} Hz at {speed[1]:g} Hz shaft speed)",
+                                field="envelope_band_hz")
     return AnalysisPlan(fs_hz=fs, n_samples=n, velocity_band_hz=vel, envelope_band_hz=env, bearing=plan.bearing,
                         orders=orders, order_tolerance=tol, speed_range_hz=speed, slip_tolerance=slip,
                         harmonics=harmonics)
@@ -188,7 +209,7 @@ def make_plan(fs_hz: float, n_samples: int, *, velocity_band_hz: tuple[float, fl
                         speed_range_hz=tuple(speed_range_hz),  # type: ignore[arg-type]
                         slip_tolerance=slip_tolerance, harmonics=harmonics)
     plan = _validate(plan)
-    AnalysisKernel(plan)  # derived sizes are checked too
+    kernel_for(plan)  # derived sizes are checked too; the kernel is built once and kept for the analysis
     return plan
 
 

@@ -29,7 +29,7 @@ def validate_geometry(geometry: BearingGeometry) -> BearingGeometry:
     ------
     GeometryError
         no or too few elements, non-positive or non-finite diameters, ball ≥ pitch diameter, contact angle
-        outside 0–90°.
+        outside 0–90°, more elements than fit side by side on the pitch circle.
     """
     n = geometry.elements
     if isinstance(n, bool) or not isinstance(n, int):
@@ -44,6 +44,9 @@ def validate_geometry(geometry: BearingGeometry) -> BearingGeometry:
         raise GeometryError(f"ball diameter {d:g} must be smaller than the pitch diameter {big_d:g}")
     if not isinstance(phi, int | float) or not math.isfinite(phi) or not 0.0 <= phi < 90.0:
         raise GeometryError(f"contact angle {phi!r}° must be in 0 ≤ angle < 90°")
+    if n * d > math.pi * big_d:
+        raise GeometryError(f"{n} elements of diameter {d:g} do not fit on a pitch circle of diameter {big_d:g} "
+                            f"(circumference {math.pi * big_d:.4g})")
     return geometry
 
 

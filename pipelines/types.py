@@ -27,7 +27,16 @@ Support = Literal["rigid", "flexible"]
 
 
 class PipelineError(ValueError):
-    """Base class of every error the numerical core raises on bad input."""
+    """Base class of every error the numerical core raises on bad input.
+
+    ``field`` names the :class:`AnalysisPlan` field at fault when there is one (``"n_samples"``,
+    ``"velocity_band_hz"``, ``"envelope_band_hz"``, ``"orders"``, ``"speed_range_hz"``, ``"bearing"`` …), so that
+    a caller can point at the setting it came from; ``None`` otherwise.
+    """
+
+    def __init__(self, message: str, *, field: str | None = None) -> None:
+        super().__init__(message)
+        self.field = field
 
 
 class GeometryError(PipelineError):

@@ -39,7 +39,7 @@ from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 from prometheus_client.registry import Collector
 
 from edgevib.daemon.alarms.capture import CaptureStore
-from edgevib.daemon.alarms.config import INDICATORS, AlarmSettings, LevelRule, LimitConfig, default_settings
+from edgevib.daemon.alarms.config import INDICATORS, AlarmSettings, LevelRule, LimitConfig
 from edgevib.daemon.alarms.control import CommandError, ControlServer, handle_payload
 from edgevib.daemon.alarms.feed import (
     ALARM_TYPE,
@@ -167,7 +167,7 @@ class AlarmLayer:
     def __init__(self, config: Any, settings: AlarmSettings | None = None, *, registry: Any = None,
                  clock: Callable[[], float] = time.time, monotonic: Callable[[], float] = time.monotonic) -> None:
         if settings is None:
-            settings = config.alarms if isinstance(config.alarms, AlarmSettings) else default_settings(config)
+            settings = config.alarm_settings
         self.config = config
         self.settings = settings
         self.registry = registry
@@ -194,7 +194,7 @@ class AlarmLayer:
         self.db: Database | None = None
         self.outbox: Outbox | None = None
         self.store: StateStore | None = None
-        self.capture = CaptureStore(replace(settings.capture, enabled=False))
+        self.capture = CaptureStore(settings.capture.model_copy(update={"enabled": False}))
         self.mqtt: MqttFeed | None = None
         self.webhook: WebhookFeed | None = None
         self.control: ControlServer | None = None

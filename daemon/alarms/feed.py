@@ -81,6 +81,8 @@ class MqttFeed:
 
     def __init__(self, cfg: FeedConfig, outbox: Outbox, states: Callable[[], dict[str, tuple[str, bytes]]],
                  on_command: Callable[[bytes], bytes] | None = None) -> None:
+        if cfg.connection is None:
+            raise ValueError("the MQTT feed needs a broker connection ([feed] source or url)")
         self.cfg = cfg
         self.conn = cfg.connection
         self.outbox = outbox

@@ -11,7 +11,6 @@ import numpy as np
 import pytest
 
 from edgevib.daemon.config import Config, parse_config
-from edgevib.daemon.frames import build_plan
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.pipelines.analysis import analyze_frames
 
@@ -25,7 +24,7 @@ class SimFrames:
         self.buf: dict[str, list[np.ndarray]] = {p.id: [] for p in cfg.points}
         self.buf_t0: dict[str, int] = {}
         self.next_seq: dict[str, int] = {}
-        self.plans = {p.id: build_plan(p, cfg.machine(p.machine)) for p in cfg.points}
+        self.plans = {p.id: cfg.plan(p.id) for p in cfg.points}
 
     def until(self, t_s: float) -> list[FrameResult]:
         jobs: list[tuple[Any, np.ndarray, int, float | None]] = []

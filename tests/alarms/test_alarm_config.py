@@ -40,12 +40,12 @@ def with_limits(d: dict[str, Any], limits: dict[str, Any], point: int = 0) -> di
 
 def test_defaults_give_iso_velocity_limits(tmp_path: Path) -> None:
     cfg = parse_config(doc(tmp_path), tmp_path)
-    lims = {lim.point: lim for lim in cfg.alarms.limits}
+    lims = {lim.point: lim for lim in cfg.alarm_settings.limits}
     assert lims["P-101-DE-H"].iso_mm_s == (1.4, 2.8, 4.5)       # P-101: group 2 rigid
     assert lims["F-201-NDE-V"].iso_mm_s == (2.3, 4.5, 7.1)      # F-201: group 2 flexible
     assert lims["P-101-DE-H"].alert == LevelRule("iso") and lims["P-101-DE-H"].danger == LevelRule("iso")
-    assert cfg.alarms.feed.enabled is False and cfg.alarms.socket_mode == 0o600
-    assert cfg.alarms.socket_path == str(tmp_path / "state" / "alarms.sock")
+    assert cfg.alarm_settings.feed.enabled is False and cfg.alarm_settings.socket_mode == 0o600
+    assert cfg.alarm_settings.socket_path == str(tmp_path / "state" / "alarms.sock")
 
 
 def test_full_tables(tmp_path: Path) -> None:
@@ -58,7 +58,7 @@ def test_full_tables(tmp_path: Path) -> None:
                         "imbalance_1x_mm_s": {"alert": {"factor": 2.0}, "danger": 4.0},
                         "bearing_bpfo_snr_db": {"alert": {"sigma": 4.0}},
                         "health": {"full_scale_g": 50.0, "noise_ug_rthz": 20.0}})
-    a = parse_config(d, tmp_path).alarms
+    a = parse_config(d, tmp_path).alarm_settings
     lims = {lim.indicator: lim for lim in a.limits if lim.point == "P-101-DE-H"}
     assert lims["velocity_rms_mm_s"].alert == LevelRule("iso-baseline") and lims["velocity_rms_mm_s"].latching
     assert lims["kurtosis"].off_delay.frames == 5 and lims["kurtosis"].on_delay.seconds == 2.0
@@ -131,8 +131,8 @@ def test_example_shows_the_defaults(tmp_path: Path) -> None:
     full = tomllib.loads(EXAMPLE.read_text())
     full["site"]["state_dir"] = str(tmp_path / "state")
     assert {"alarms", "capture"} <= set(full) and "health" in full["alarms"]
-    shown = parse_config(full, tmp_path).alarms
-    bare = parse_config(doc(tmp_path), tmp_path).alarms
+    shown = parse_config(full, tmp_path).alarm_settings
+    bare = parse_config(doc(tmp_path), tmp_path).alarm_settings
     for name in ("enabled", "health_enabled", "startup_grace_s", "run_threshold_velocity_mm_s", "no_data_frames",
                  "sensor_recover_frames", "baseline_frames", "trend_frames", "max_shelve_s", "socket_path",
                  "socket_mode", "capture", "feed"):

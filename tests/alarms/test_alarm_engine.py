@@ -108,7 +108,7 @@ async def test_progression_escalates_in_order_and_spares_healthy_and_stopped_mac
     assert not [e for e in events if e["type"] == SENSOR_TYPE]
     # Captures of both transitions, readable as WAV at the true rate, with their sidecars.
     for d in vel[:2]:
-        wav = Path(cfg.alarms.capture.dir) / d["capture"]
+        wav = Path(cfg.alarm_settings.capture.dir) / d["capture"]
         rate, x = wavfile.read(wav)
         assert rate == 12800 and x.dtype == np.float32 and x.size == 8192
         side = json.loads(wav.with_suffix(".json").read_text())
@@ -221,7 +221,7 @@ def test_capture_rotation_keeps_the_budget(tmp_path: Path) -> None:
     from edgevib.daemon.alarms.capture import CaptureStore
     from edgevib.daemon.alarms.config import CaptureConfig
 
-    store = CaptureStore(CaptureConfig(enabled=True, dir=str(tmp_path), max_bytes=3 * 33_500, max_files=100))
+    store = CaptureStore(CaptureConfig(enabled=True, dir=str(tmp_path), max_mb=3 * 33_500 / 2**20, max_files=100))
     names = []
     for i in range(6):
         r = frame_result("P-101-DE-H", "P-101", 1000.0 + i, 3.0, seed=i)

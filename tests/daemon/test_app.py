@@ -24,6 +24,10 @@ T0 = 1_764_633_600_000_000_000
 
 
 def config(state_dir: Path, **analysis: Any) -> Config:
+    return parse_config(document(state_dir, **analysis))
+
+
+def document(state_dir: Path, **analysis: Any) -> dict[str, Any]:
     doc = {
         "site": {"name": "quarry-lane", "state_dir": str(state_dir)},
         "analysis": dict({"frame_samples": 16384, "overlap": 0.5, "queue_frames": 4, "workers": 1}, **analysis),
@@ -42,7 +46,7 @@ def config(state_dir: Path, **analysis: Any) -> Config:
              "bandwidth_hz": [0.0, 1000.0]},
         ],
     }
-    return parse_config(doc)
+    return doc
 
 
 def sine_block(sensor: str, seq: int, amp_g: float, f_hz: float, fs: float = FS, n: int = BLOCK) -> Block:
@@ -176,11 +180,10 @@ async def test_reload_keeps_untouched_points_state(tmp_path: Path) -> None:
             d.ingest.block("scripted", sine_block("QL-P101-DE-H", seq, 1.0, 50.0), 0)
             d.ingest.block("scripted", sine_block("QL-P101-DE-V", seq, 1.0, 50.0), 0)
         kept = d.ingest.streams["P-101-DE-H"]
-        import dataclasses
-
-        changed = dataclasses.replace(cfg.points[1], velocity_band_hz=(20.0, 1000.0))
-        new = dataclasses.replace(cfg, points=(cfg.points[0], changed))  # F-201 point removed, DE-V changed
-        await d.reload(new)
+        doc = document(tmp_path)
+        doc["points"][1]["velocity_band_hz"] = [20.0, 1000.0]  # DE-V changed
+        del doc["points"][2]  # F-201 point removed
+        await d.reload(parse_config(doc))
         assert d.ingest.streams["P-101-DE-H"] is kept and kept.buffered_samples == 3 * BLOCK
         assert d.ingest.streams["P-101-DE-V"].buffered_samples == 0
         assert "F-201-NDE-V" not in d.points

@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import copy
-import dataclasses
+import functools
+import subprocess
+import sys
 import tomllib
 from pathlib import Path
 from typing import Any
@@ -52,7 +54,23 @@ def test_minimal_config_fills_defaults() -> None:
 
 @pytest.mark.parametrize(("mutate", "path", "words"), [
     (lambda d: d["points"][0].update(colour="red"), "points[0].colour", "unknown key"),
-    (lambda d: d.update(extra={}), "extra", "unknown key"),
+    (lambda d: d.update(extra={}), "extra", "unknown table [extra]"),
+    (lambda d: d["points"][0].update(fs_Hz=1.0), "points[0].fs_Hz", "unknown key; did you mean `fs_hz`?"),
+    (lambda d: d["points"][0].update(frame_sample=4096), "points[0].frame_sample", "did you mean `frame_samples`?"),
+    (lambda d: d.update(metric={"listen": "127.0.0.1:9851"}), "metric",
+     "unknown table [metric]; did you mean `[metrics]`?"),
+    (lambda d: d.update(point=[{"id": "x"}]), "point", "unknown array of tables [[point]]; did you mean `[[points]]`?"),
+    (lambda d: d.update(publish={"mqqt": {"enabled": False}}), "publish.mqqt",
+     "unknown table [publish.mqqt]; did you mean `[publish.mqtt]`?"),
+    (lambda d: d["sources"][0].update(type="amqp"), "sources[0].type", "is not one of"),
+    (lambda d: d["sources"][0].update(keepalive_s=True), "sources[0].keepalive_s", "must be a number, got boolean"),
+    (lambda d: d["sources"][0].update(keepalive_s="30"), "sources[0].keepalive_s", "must be a number, got string"),
+    # ids become MQTT topic levels and OPC UA node-id parts (issue 13 §1): wildcards, separators, NATS tokens
+    (lambda d: d["points"][0].update(id="P-101+DE"), "points[0].id", "MQTT wildcards"),
+    (lambda d: d["machines"][0].update(id="P/101"), "machines[0].id", "separates MQTT topic levels"),
+    (lambda d: d["site"].update(name="quarry.lane"), "site.name", "NATS"),
+    (lambda d: d["points"][0].update(id="P 101"), "points[0].id", "NATS"),
+    (lambda d: d["points"][0].update(id="#"), "points[0].id", "MQTT wildcards"),
     (lambda d: d["site"].update(name=3), "site.name", "must be a string"),
     (lambda d: d["points"][0].update(fs_hz="fast"), "points[0].fs_hz", "must be a number"),
     (lambda d: d["points"][0].update(block_samples=4096.5), "points[0].block_samples", "must be an integer"),
@@ -119,7 +137,8 @@ def test_secret_from_file_and_env_is_redacted(tmp_path: Path, monkeypatch: pytes
     assert conn.password.reveal() == "s3cret-value"
     text = dump_toml(config_to_document(cfg)) + repr(cfg) + str(cfg)
     assert "s3cret-value" not in text
-    assert f"<from file {secret_file}>" in text
+    assert f'password_file = "{secret_file}"' in text  # where the secret is, never what it is
+    assert repr(conn.password) == f"<from file {secret_file}>"
     assert Secret("env", "EDGEVIB_TEST_KEYPASS").reveal() == "other-secret"
     assert "other-secret" not in repr(Secret("env", "EDGEVIB_TEST_KEYPASS"))
 
@@ -133,25 +152,57 @@ def test_shard_keeps_only_owned_points() -> None:
     assert cfg.skipped_points == ("P-101-DE-H",)
 
 
-def test_alarm_tables_are_accepted() -> None:
+def test_alarm_tables_are_validated() -> None:
+    # the alarm tables are part of the one schema: a valid set loads, each kind of mistake is named
     doc = base()
-    doc["alarms"] = {"anything": 1}
-    doc["feed"] = {"topic": "x"}
+    doc["alarms"] = {"deadband": 0.1}
+    doc["feed"] = {"source": "broker", "topic": "fwb/{site}/{point}/alarm"}
     doc["points"][0]["limits"] = {"velocity_rms_mm_s": {"alert": 2.8}}
-    try:
-        cfg = parse_config(doc)
-    except ConfigError as exc:  # the alarm layer, when present, validates its own tables
-        assert exc.path.startswith(("alarms", "feed", "points[0].limits")), str(exc)
-        return
-    assert cfg.alarms is not None or cfg.alarm_tables["alarms"] == {"anything": 1}
+    cfg = parse_config(doc)
+    assert cfg.alarms.deadband == 0.1 and cfg.alarm_settings.feed.topic == "fwb/{site}/{point}/alarm"
+    assert {(lim.point, lim.indicator) for lim in cfg.alarm_settings.limits} == {("P-101-DE-H", "velocity_rms_mm_s")}
+    for table, value, path in (("alarms", {"anything": 1}, "alarms.anything"), ("feed", {"topic": "x/#"}, "feed.topic"),
+                               ("capture", {"max_mb": 0}, "capture.max_mb")):
+        bad = copy.deepcopy(doc)
+        bad[table] = value
+        assert error(bad).path == path
+    bad = copy.deepcopy(doc)
+    bad["points"][0]["limits"] = {"velocity_rms": {"alert": 2.8}}
+    e = error(bad)
+    assert e.path == "points[0].limits.velocity_rms" and "did you mean `velocity_rms_mm_s`?" in e.problem
 
 
-def test_resolved_config_round_trips_through_toml(tmp_path: Path) -> None:
-    cfg = load_config(Path(__file__).resolve().parents[2] / "config" / "example-plant.toml")
+EXAMPLES = sorted((Path(__file__).resolve().parents[2] / "config").glob("*.toml"))
+
+
+@pytest.mark.parametrize("path", EXAMPLES, ids=[p.name for p in EXAMPLES])
+def test_printed_configuration_loads_back_the_same(path: Path, tmp_path: Path) -> None:
+    # issue 13 §6: check-config's output is a configuration, and the same one
+    cfg = load_config(path)
     text = dump_toml(config_to_document(cfg))
-    doc = tomllib.loads(text)
-    assert doc["points"][0]["id"] == cfg.points[0].id
-    assert doc["analysis"]["frame_samples"] == cfg.analysis.frame_samples
+    printed = tmp_path / "printed.toml"
+    printed.write_text(text)
+    again = load_config(printed)
+    assert config_to_document(again) == config_to_document(cfg)
+    assert dump_toml(config_to_document(again)) == text
+    assert again.points == cfg.points and again.sources == cfg.sources and again.machines == cfg.machines
+    assert again.alarm_settings.limits == cfg.alarm_settings.limits
+    assert again.alarm_settings.health == cfg.alarm_settings.health
+    assert [again.plan(p.id) for p in again.points] == [cfg.plan(p.id) for p in cfg.points]
+
+
+def test_empty_file_is_an_error(tmp_path: Path) -> None:
+    for text in ("", "# only a comment\n\n"):
+        f = tmp_path / "empty.toml"
+        f.write_text(text)
+        with pytest.raises(ConfigError, match="holds no configuration"):
+            load_config(f)
+
+
+def _written(doc: dict[str, Any], tmp_path: Path) -> Path:
+    f = tmp_path / "edgevib.toml"
+    f.write_text(dump_toml(doc))
+    return f
 
 
 def test_load_config_reports_bad_toml(tmp_path: Path) -> None:
@@ -209,7 +260,7 @@ def test_credentials_outside_the_unit_are_deferred(tmp_path: Path, monkeypatch: 
     with pytest.raises(ConfigError) as info:
         verify_for_run(cfg)
     assert info.value.path == "site.state_dir"
-    cfg = dataclasses.replace(cfg, site=dataclasses.replace(cfg.site, state_dir=str(tmp_path / "state")))
+    cfg = load_config(_written(doc, tmp_path), {"site.state_dir": str(tmp_path / "state")})
     with pytest.raises(ConfigError) as info:
         verify_for_run(cfg)
     assert info.value.path in ("sources[0].password_file", "sources[0].cert_file")
@@ -228,12 +279,46 @@ def test_other_variables_are_not_expanded(tmp_path: Path) -> None:
     assert e.path == "sources[0].ca_file" and "${HOME}" in e.problem and "${CREDENTIALS_DIRECTORY}" in e.problem
 
 
-def test_resolved_document_has_no_python_reprs() -> None:
+def test_resolved_document_shows_levels_as_written() -> None:
+    # ISO levels stay "iso" (not a number 0.0), relative ones their table, the socket mode its string
     cfg = load_config(Path(__file__).resolve().parents[2] / "config" / "example-plant.toml")
     text = dump_toml(config_to_document(cfg))
-    assert "alarms_parsed" not in text and "Settings(" not in text and "Config(" not in text
+    assert "Config(" not in text and "LevelRule" not in text
     doc = tomllib.loads(text)
-    if cfg.alarms is not None:  # the alarm layer's tables, resolved
-        limits = doc["alarm_settings"]["limits"]
-        assert {(lim["point"], lim["indicator"]) for lim in limits} >= {("P-101-DE-H", "velocity_rms_mm_s")}
-        assert doc["alarm_settings"]["socket_mode"] == "0600"
+    limits = doc["points"][0]["limits"]
+    assert limits["velocity_rms_mm_s"]["rule"] == "iso-baseline"
+    assert limits["imbalance_1x_mm_s"] == {"enabled": True, "alert": {"sigma": 4.0}, "danger": 4.5}
+    assert doc["alarms"]["socket_mode"] == "0600" and doc["capture"]["max_mb"] == 256.0
+
+
+def test_plans_are_validated_and_kernels_built_once_per_distinct_configuration(monkeypatch: pytest.MonkeyPatch,
+                                                                              tmp_path: Path) -> None:
+    # issue 14 §4: 12 points of 2 distinct plans → 2 validations and 2 kernels, however often the plan is asked for
+    from edgevib.daemon.app import Daemon
+    from edgevib.pipelines import analysis
+
+    analysis._check_plan.cache_clear()
+    analysis.kernel_for.cache_clear()
+    checked: list[object] = []
+    built: list[object] = []
+    check, init = analysis._check_plan.__wrapped__, analysis.AnalysisKernel.__init__
+    monkeypatch.setattr(analysis, "_check_plan", functools.lru_cache(maxsize=256)(
+        lambda plan: checked.append(plan) or check(plan)))
+    monkeypatch.setattr(analysis.AnalysisKernel, "__init__", lambda self, plan: built.append(plan) or init(self, plan))
+    doc = base()
+    doc["site"]["state_dir"] = str(tmp_path / "state")
+    first = doc["points"][0]
+    doc["points"] = [dict(first, id=f"P-101-DE-{i}", sensor=f"QL-{i}", fs_hz=25600.0 if i < 6 else 12800.0)
+                     for i in range(12)]
+    cfg = parse_config(doc, tmp_path)
+    Daemon(cfg, serve_metrics=False)
+    assert [cfg.plan(p.id) for p in cfg.points]  # asked for again: memoized
+    assert len(checked) == 2 and len(built) == 2
+
+
+def test_loading_the_models_does_not_load_the_numerical_core() -> None:
+    # the simulator builds its emitted configuration with these models and must never import edgevib.pipelines
+    code = ("import sys, edgevib.daemon.config as c; c.Config.model_validate({'points': []}); "
+            "print(sorted(m for m in sys.modules if m.startswith('edgevib.pipelines')))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60, check=True)
+    assert out.stdout.strip() == "[]"

@@ -17,11 +17,13 @@ BLOCK = 4096
 NS_PER_BLOCK = round(BLOCK * 1e9 / FS)
 
 
-def config(frame: int = 16384, overlap: float = 0.5, queue: int = 4, **point: Any) -> Config:
+def config(frame: int = 16384, overlap: float = 0.5, queue: int = 4, source: dict[str, Any] | None = None,
+           **point: Any) -> Config:
     doc = {
         "site": {"name": "quarry-lane"},
         "analysis": {"frame_samples": frame, "overlap": overlap, "queue_frames": queue},
-        "sources": [{"name": "broker", "type": "mqtt", "url": "mqtt://127.0.0.1:1883", "topics": ["fwb/#"]}],
+        "sources": [{"name": "broker", "type": "mqtt", "url": "mqtt://127.0.0.1:1883", "topics": ["fwb/#"],
+                     **(source or {})}],
         "machines": [{"id": "P-101", "group": 2, "support": "rigid", "speed_rpm": 1480.0}],
         "points": [dict({"id": "P-101-DE-H", "machine": "P-101", "source": "broker", "sensor": "QL-P101-DE-H",
                          "fs_hz": FS, "block_samples": BLOCK}, **point)],
@@ -142,11 +144,7 @@ def test_drop_oldest_when_analysis_falls_behind() -> None:
 
 
 def test_sensor_from_topic_level() -> None:
-    doc_cfg = config()
-    src = doc_cfg.sources[0]
-    import dataclasses
-
-    cfg = dataclasses.replace(doc_cfg, sources=(dataclasses.replace(src, sensor_from="topic:2"),))
+    cfg = config(source={"sensor_from": "topic:2"})
     ing, stats = make(cfg)
     ing.block("broker", block(0, sensor="ignored"), 0, topic="fwb/quarry-lane/QL-P101-DE-H/block")
     ing.block("broker", block(1, sensor="QL-P101-DE-H"), 0, topic="fwb/quarry-lane/other/block")

@@ -310,11 +310,11 @@ async def _refusal_lines(conn_doc: dict[str, object], tmp_path: Path, wait_s: fl
 
     from structlog.testing import capture_logs
 
-    from edgevib.daemon.config import _parse_mqtt_connection, _Table
+    from edgevib.daemon.config import MqttConnection
     from edgevib.daemon.sources.mqtt import MqttSource
 
-    conn = _parse_mqtt_connection(_Table({"reconnect_min_s": 0.1, "reconnect_max_s": 0.2, **conn_doc},
-                                         "sources[0]"), tmp_path, "edgevib-test")
+    conn = MqttConnection.model_validate({"reconnect_min_s": 0.1, "reconnect_max_s": 0.2, "client_id": "edgevib-test",
+                                          **conn_doc})
     ingest = _Ingest()
     src = MqttSource(name="station-broker", ingest=ingest, connection=conn, topics=["fwb/quarry-lane/#"])
     with capture_logs() as logs:
