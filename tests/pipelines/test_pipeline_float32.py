@@ -46,7 +46,7 @@ def test_float32_frames_match_the_float64_path() -> None:
 
 
 def test_float32_non_finite_samples_are_named() -> None:
-    plan = make_plan(FS_HZ, 4096, speed_range_hz=(15.0, 60.0))
+    plan = make_plan(FS_HZ, 4096, velocity_band_hz=(20.0, 1000.0), speed_range_hz=(15.0, 60.0))  # 2 lines/edge
     x = _frames(4096, 3).astype(np.float32)
     x[1, 100:103] = np.nan
     with pytest.raises(SignalError, match=r"channel 1: 3 of 4096"):
