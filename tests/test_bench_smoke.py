@@ -34,3 +34,16 @@ def test_daemon_bench_two_channels() -> None:
     assert row["latency_p99_ms"] >= row["latency_p50_ms"]
     assert row["rejected"] == 0  # the load generator's blocks are valid wire-format blocks
     assert report["block_samples"] == 16384 and report["fs_hz"] == 25600.0
+
+
+@pytest.mark.skipif(shutil.which("mosquitto") is None and not os.path.exists("/usr/sbin/mosquitto"),
+                    reason="mosquitto is not installed")
+def test_mqtt_client_bench_counts_every_message() -> None:
+    proc = subprocess.run([sys.executable, "-m", "edgevib.bench.mqtt_clients", "--messages", "200", "--bytes", "4096",
+                           "--json"], capture_output=True, text=True, timeout=180)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    rows = json.loads(proc.stdout)
+    assert [r["client"] for r in rows] == ["paho-thread", "paho-asyncio", "protocol"]
+    for r in rows:  # each receiver saw all 200 messages (it waits for the last) and used some CPU for them
+        assert r["messages"] == 200 and r["bytes"] == 4096
+        assert r["cpu_us_per_message"] > 0 and r["messages_per_s"] > 0
