@@ -431,6 +431,7 @@ class InstanceSpec:
     seconds: float
     alarms: bool
     cpu: int | None
+    uvloop: bool = False
 
 
 def _instance_main(spec: InstanceSpec, out: Any, ctl: Any) -> None:
@@ -441,6 +442,10 @@ def _instance_main(spec: InstanceSpec, out: Any, ctl: Any) -> None:
 
     configure_logging("error", "json", stream=sys.stderr)
     _warm_up_analysis(spec.overlap)
+    if spec.uvloop:  # diagnostic: the same daemon on uvloop's event loop (not a dependency of edgevib)
+        import uvloop  # type: ignore[import-not-found,unused-ignore]
+
+        asyncio.set_event_loop_policy(uvloop.EventLoopPolicy())
     try:
         row = asyncio.run(_run_instance(spec, out, ctl))
     except BaseException as exc:
@@ -540,7 +545,8 @@ def _get(q: Any, timeout_s: float, procs: list[Any]) -> dict[str, Any]:
 
 
 def run_level(broker: Broker, channels: int, seconds: float, warmup_s: float, overlap: float, publishers: int,
-              qos: int, seed: int, alarms: bool = True, instances: int = 1, cpu: int | None = None) -> list[Row]:
+              qos: int, seed: int, alarms: bool = True, instances: int = 1, cpu: int | None = None,
+              uvloop: bool = False) -> list[Row]:
     """One load level: ``instances`` daemon processes (hash shards when more than one) and publisher processes
     streaming ``channels`` channels through ``broker``; one :class:`Row` per instance."""
     ctx = mp.get_context("spawn")
@@ -552,7 +558,7 @@ def run_level(broker: Broker, channels: int, seconds: float, warmup_s: float, ov
         for i in range(instances):
             spec = InstanceSpec(port=broker.port, channels=channels, overlap=overlap,
                                 shard=None if instances == 1 else (i, instances), seconds=seconds, alarms=alarms,
-                                cpu=None if cpu is None else (cpu + i) % (os.cpu_count() or 1))
+                                cpu=None if cpu is None else (cpu + i) % (os.cpu_count() or 1), uvloop=uvloop)
             p = ctx.Process(target=_instance_main, args=(spec, out_i, ctls[i]), daemon=True)
             p.start()
             inst.append(p)
@@ -624,6 +630,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="pin the daemon instance's process to this CPU core (instance i to core N+i)")
     p.add_argument("--without-alarms", action="store_true",
                    help="diagnostic: run the daemon without its alarm layer (to see what the alarm layer costs)")
+    p.add_argument("--uvloop", action="store_true",
+                   help="diagnostic: run the daemon on uvloop's event loop (needs uvloop installed)")
     p.add_argument("--json", action="store_true", help="print JSON rows and a summary instead of a table")
     return p
 
@@ -654,7 +662,8 @@ def main(argv: list[str] | None = None) -> int:
     try:
         for n in args.channels:
             rows = run_level(broker, n, args.seconds, args.warmup, args.overlap, args.publishers, args.qos,
-                             args.seed, alarms=not args.without_alarms, instances=args.instances, cpu=args.cpu)
+                             args.seed, alarms=not args.without_alarms, instances=args.instances, cpu=args.cpu,
+                             uvloop=args.uvloop)
             levels.append(rows)
             if not args.json:
                 _print_level(rows, header=len(levels) == 1)
@@ -667,7 +676,7 @@ def main(argv: list[str] | None = None) -> int:
                           "sustained_channels": sustained, "instances": args.instances,
                           "fs_hz": FS_HZ, "block_samples": BLOCK, "overlap": args.overlap, "workers": 1,
                           "p99_target_ms": P99_TARGET_MS, "cpu_count": os.cpu_count(),
-                          "alarms": not args.without_alarms}, indent=2))
+                          "alarms": not args.without_alarms, "uvloop": args.uvloop}, indent=2))
     else:
         print(f"sustained channels: {sustained} over {args.instances} instance(s) (target: >= 1000 channels per "
               f"core of the daemon's own CPU, p99 < {P99_TARGET_MS:g} ms, no drops)")
