@@ -6,7 +6,11 @@ Data flow (all on one asyncio event loop, numerics in a thread pool)::
         ──batches of points sharing a plan──▶ ThreadPoolExecutor: analyze_frames(stack, plan, shaft_hz)
         ──FrameResult list──▶ one delivery queue and task per FrameSink (Prometheus, MQTT, OPC UA, alarms…)
 
-A point is in at most one analysis batch at a time, so its frames (and trend) stay in order.  An analysis
+A point is in at most one analysis batch at a time, so its frames (and trend) stay in order.  A batch takes the
+frames of the point that has waited longest and of every other idle point sharing its plan; it starts once
+:data:`MAX_BATCH` frames are queued or the oldest has waited :data:`BATCH_WINDOW_S` (50 ms), because one call on
+many frames costs a fraction per frame of a call on one (the pipeline's fixed cost per call is several frames'
+worth): under load the batches fill up, and when idle a frame waits at most the window.  An analysis
 worker slot is freed as soon as the analysis returns: the results go to every sink's own queue and a task per
 sink hands them over, so a slow sink delays neither the next analysis batch nor the other sinks.  Ordering and
 bounds (:class:`SinkChannel`):
@@ -69,6 +73,7 @@ __all__ = ["LOSSLESS_BACKLOG", "SINK_BACKLOG_PER_POINT", "AnalyzeFn", "Daemon", 
 AnalyzeFn = Callable[[npt.NDArray[np.float32], AnalysisPlan, "npt.NDArray[np.float64] | None"],
                      list[FrameIndicators]]
 MAX_BATCH = 64
+BATCH_WINDOW_S = 0.05  # a batch waits up to this long for more frames: larger batches cost far less per frame
 SINK_BACKLOG_PER_POINT = 4  # undelivered results a lossy sink keeps per point before dropping the oldest
 LOSSLESS_BACKLOG = 4 * MAX_BATCH  # undelivered results of a lossless sink above which analysis pauses
 log = get_logger("edgevib.daemon")
@@ -222,13 +227,16 @@ class Daemon:
         self.sources: list[Source] = []
         self._given_sources = list(sources) if sources is not None else None
         self._source_tasks: dict[str, asyncio.Task[None]] = {}
-        self._busy: set[str] = set()
+        self._busy: set[str] = set()  # points in an analysis batch
+        self._ready: dict[str, float] = {}  # idle points with queued frames → when they became ready (oldest first)
+        self._queued_frames = 0  # frames in the ingest queues, as last seen per point (_counted)
+        self._counted: dict[str, int] = {}
+        self._timer: asyncio.TimerHandle | None = None
         self._batches: set[asyncio.Task[None]] = set()
         self._channels: list[SinkChannel] = []
         self._wake = asyncio.Event()
         self._scheduler: asyncio.Task[None] | None = None
         self._executor: ThreadPoolExecutor | None = None
-        self._rr = 0
         self._started = False
         self._warned_envelope: set[str] = set()
         self.on_ready: list[Callable[[], None]] = []
@@ -357,6 +365,9 @@ class Daemon:
         self._source_tasks.clear()
         if self._scheduler is not None:
             self._scheduler.cancel()
+            if self._timer is not None:
+                self._timer.cancel()
+                self._timer = None
             await asyncio.gather(self._scheduler, return_exceptions=True)
         if self._batches:
             await asyncio.wait(self._batches, timeout=max(0.1, deadline - time.monotonic()))
@@ -418,6 +429,10 @@ class Daemon:
         self._build_points(config, keep=self.points)
         self.config = config
         self.ingest.configure(config, keep=unchanged_points)
+        streams = self.ingest.streams  # replaced streams start empty: recount the queued frames
+        self._counted = {pid: len(stream.queue) for pid, stream in streams.items()}
+        self._queued_frames = sum(self._counted.values())
+        self._ready = {pid: t for pid, t in self._ready.items() if self._counted.get(pid)}
         self.metrics.site = config.site.name
         self.metrics.collector.site = config.site.name
         self.metrics.set_points(config.points)
@@ -452,20 +467,44 @@ class Daemon:
 
     # ------------------------------------------------------------------------------------------ analysis
 
-    def _on_frames(self, _stream: PointStream) -> None:
+    def _on_frames(self, stream: PointStream) -> None:
+        pid = stream.point.id
+        n = len(stream.queue)
+        self._queued_frames += n - self._counted.get(pid, 0)
+        self._counted[pid] = n
+        if n and pid not in self._busy and pid not in self._ready:
+            self._ready[pid] = time.monotonic()
         self._wake.set()
 
     async def _schedule(self) -> None:
+        loop = asyncio.get_running_loop()
         while True:
             await self._wake.wait()
             self._wake.clear()
-            while len(self._batches) < self.config.analysis.workers and not self._held_back():
+            while self._ready and len(self._batches) < self.config.analysis.workers and not self._held_back():
+                wait_s = self._batch_wait(time.monotonic())
+                if wait_s > 0:  # more frames are on their way: a larger batch costs less per frame
+                    if self._timer is None:
+                        self._timer = loop.call_later(wait_s, self._timer_fired)
+                    break
                 batch = self._take_batch()
                 if batch is None:
                     break
-                task = asyncio.get_running_loop().create_task(self._run_batch(*batch))
+                task = loop.create_task(self._run_batch(*batch))
                 self._batches.add(task)
                 task.add_done_callback(self._batch_done)
+
+    def _timer_fired(self) -> None:
+        self._timer = None
+        self._wake.set()
+
+    def _batch_wait(self, now: float) -> float:
+        """Seconds to wait before starting the next batch: none once a full batch is queued or the oldest ready
+        point has waited :data:`BATCH_WINDOW_S`."""
+        if self._queued_frames >= MAX_BATCH:
+            return 0.0
+        oldest = next(iter(self._ready.values()))
+        return max(0.0, oldest + BATCH_WINDOW_S - now)
 
     def _batch_done(self, task: asyncio.Task[None]) -> None:
         self._batches.discard(task)
@@ -476,25 +515,40 @@ class Daemon:
         return any(ch.lossless and ch.backlog > LOSSLESS_BACKLOG for ch in self._channels)
 
     def _take_batch(self) -> tuple[AnalysisPlan, list[FrameJob]] | None:
-        """The queued frames of every idle point that shares the plan of the next point in round-robin order."""
+        """The queued frames of the point that has waited longest and of every other idle point sharing its plan
+        (oldest first), up to :data:`MAX_BATCH` frames."""
         streams = self.ingest.streams
-        ids = [pid for pid in self.points if pid not in self._busy and streams.get(pid) and streams[pid].queue]
-        if not ids:
-            return None
-        self._rr = (self._rr + 1) % len(ids)
-        lead = ids[self._rr]
-        plan = self.points[lead].plan
+        plan: AnalysisPlan | None = None
         jobs: list[FrameJob] = []
-        for pid in [lead, *[i for i in ids if i != lead]]:
-            if self.points[pid].plan != plan:
+        for pid in list(self._ready):
+            st, stream = self.points.get(pid), streams.get(pid)
+            if st is None or stream is None or not stream.queue:  # removed or replaced by a reload
+                del self._ready[pid]
+                self._queued_frames -= self._counted.pop(pid, 0)
                 continue
-            q = streams[pid].queue
+            if plan is None:
+                plan = st.plan
+            elif st.plan is not plan and st.plan != plan:
+                continue
+            q = stream.queue
             while q and len(jobs) < MAX_BATCH:
                 jobs.append(q.popleft())
+            self._queued_frames -= self._counted.get(pid, 0) - len(q)
+            self._counted[pid] = len(q)
+            del self._ready[pid]
             self._busy.add(pid)
             if len(jobs) >= MAX_BATCH:
                 break
-        return plan, jobs
+        return (plan, jobs) if plan is not None and jobs else None
+
+    def _release(self, pids: set[str]) -> None:
+        """Points whose batch is done: idle again, and ready at once if frames queued up meanwhile."""
+        self._busy.difference_update(pids)
+        now = time.monotonic()
+        for pid in pids:
+            stream = self.ingest.streams.get(pid)
+            if stream is not None and stream.queue and pid in self.points:
+                self._ready.setdefault(pid, now)
 
     async def _run_batch(self, plan: AnalysisPlan, jobs: list[FrameJob]) -> None:
         pids = {j.point_id for j in jobs}
@@ -519,7 +573,7 @@ class Daemon:
             if results:
                 self._publish(results)
         finally:
-            self._busy.difference_update(pids)
+            self._release(pids)
 
     def _results(self, jobs: list[FrameJob], indicators: list[FrameIndicators],
                  frames: npt.NDArray[np.float32]) -> list[FrameResult]:
