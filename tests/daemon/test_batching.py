@@ -82,7 +82,7 @@ async def test_frames_arriving_within_the_window_share_one_call(tmp_path: Path) 
         for i in range(1, 10):
             d.ingest.block("scripted", block(i, 0), 1)
 
-    rec, daemon, seen = await _run(tmp_path, 10, feed)
+    rec, _daemon, seen = await _run(tmp_path, 10, feed)
     assert rec.calls == [10]
     assert sorted(r.point_id for r in seen) == [f"P-101-{i:02d}" for i in range(10)]
     # each result's indicators belong to its own frame: the offsets 0.001 × i g come back as the means
