@@ -123,7 +123,7 @@ def run(sizes: Sequence[int] = SIZES, channels: Sequence[int] = CHANNELS, *, tar
                 "ratio": round(t_pipe / t_np, 2),
                 "scipy_rfft_us_per_block": round(t_sp / c * 1e6, 2),
                 "peer_us_per_block": round(t_peer / c * 1e6, 2),
-                "peer_ratio": round(t_peer / t_pipe, 1),
+                "peer_ratio": round(t_peer / t_pipe, 2),
             })
     return rows
 

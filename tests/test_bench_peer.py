@@ -60,6 +60,6 @@ def test_envelope_bpfo_agrees(case: tuple[list[dict[str, object]], list[object]]
 
 def test_peer_rejects_a_block_of_the_wrong_length() -> None:
     band = default_envelope_band(FS_HZ, (0.5, 10_000.0), shaft_hz_max=60.0)
-    plan = peer_plan(make_plan(FS_HZ, 4096, envelope_band_hz=band, bearing=BEARING, speed_range_hz=(15.0, 60.0)))
-    with pytest.raises(ValueError, match="4096"):
-        peer_block(np.zeros(2048), plan, plan.design())
+    plan = peer_plan(make_plan(FS_HZ, 16384, envelope_band_hz=band, bearing=BEARING, speed_range_hz=(15.0, 60.0)))
+    with pytest.raises(ValueError, match="16384"):
+        peer_block(np.zeros(8192), plan, plan.design())
