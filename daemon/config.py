@@ -41,7 +41,7 @@ from contextvars import ContextVar
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated, Any, ClassVar, Literal, get_args, get_origin
-from urllib.parse import urlsplit
+from urllib.parse import quote, urlsplit
 
 from pydantic import (
     AfterValidator,
@@ -111,6 +111,28 @@ MAX_POINTS = 1000
 MAX_FRAME_SAMPLES = 1 << 20
 MIN_FRAME_SAMPLES = 256
 DEFAULT_STATE_DIR = "/var/lib/edgevib"
+DEFAULT_MAX_PENDING_BYTES = 64 * 1024 * 1024
+_URI_CHAR = r"[A-Za-z0-9\-._~:/?#\[\]@!$&'()*+,;=]"
+_URI_REFERENCE = re.compile(rf"^(?:{_URI_CHAR}|%[0-9A-Fa-f]{{2}})+$")
+_URI_SCHEME = re.compile(r"^[A-Za-z][A-Za-z0-9+.\-]*$")
+
+
+def uri_reference_problem(value: str, absolute: bool = False) -> str | None:
+    """Why ``value`` is not an RFC 3986 URI-reference (an absolute URI with ``absolute``), or ``None``."""
+    if not value:
+        return "must not be empty"
+    if not _URI_REFERENCE.match(value):
+        bad = sorted({c for c in re.sub(r"%[0-9A-Fa-f]{2}", "", value) if not re.match(_URI_CHAR, c)})
+        return (f"is not a URI-reference (RFC 3986): {', '.join(repr(c) for c in bad)} must be percent-encoded"
+                if bad else "is not a URI-reference (RFC 3986): '%' must start a %XX escape")
+    head = re.split(r"[/?#]", value, maxsplit=1)[0]
+    if ":" in head:
+        if not _URI_SCHEME.match(head.split(":", 1)[0]):
+            return (f"is not a URI-reference (RFC 3986): {head.split(':', 1)[0]!r} before ':' is not a scheme (a "
+                    f"relative reference cannot have ':' in its first segment)")
+    elif absolute:
+        return "must be an absolute URI with a scheme (e.g. https://… or urn:…)"
+    return None
 PATH_VARIABLES = ("CREDENTIALS_DIRECTORY", "STATE_DIRECTORY")
 CREDENTIALS_ROOT = "/run/credentials/"
 ID_CHARACTERS = "A-Z a-z 0-9 - _"
@@ -440,11 +462,15 @@ class MqttSourceConfig(MqttConnection):
     qos: Int = Field(1, ge=0, le=1)
     sensor_from: Text = "payload"
     max_payload_bytes: Int = Field(DEFAULT_MAX_PAYLOAD_BYTES, ge=64, le=64 * 1024 * 1024)
+    max_pending_bytes: Int = Field(DEFAULT_MAX_PENDING_BYTES, ge=1024, le=1 << 40)
 
     @model_validator(mode="after")
     def _source(self) -> MqttSourceConfig:
         if self.url is None:
             raise _Problem("url", "required key is missing")
+        if self.max_pending_bytes < self.max_payload_bytes:
+            raise _Problem("max_pending_bytes", f"{self.max_pending_bytes} bytes is below max_payload_bytes "
+                           f"{self.max_payload_bytes}: not even one payload could wait for the event loop")
         for i, topic in enumerate(self.topics):
             problem = _valid_filter(topic)
             if problem:
@@ -552,12 +578,17 @@ class PublishMqttConfig(_ReusesSource):
     topic: Text = "edgevib/{site}/{machine}/{point}/indicators"
     qos: Int = Field(0, ge=0, le=1)
     retain: Bool = False
+    message_expiry_s: Float = Field(0.0, ge=0.0, le=4294967295.0)  # MQTT 5 Message Expiry Interval; 0: none
+    availability_topic: Text = ""  # retained online/offline and Last Will ({site}); "": none
 
     @model_validator(mode="after")
     def _publish(self) -> PublishMqttConfig:
         problem = _template(self.topic, ("site", "machine", "point"))
         if problem:
             raise _Problem("topic", problem)
+        problem = _template(self.availability_topic, ("site",)) if self.availability_topic else None
+        if problem:
+            raise _Problem("availability_topic", problem)
         if self.enabled and self.source is None and self.url is None:
             raise _Problem("url", "publishing needs a url or a source to reuse")
         return self
@@ -806,6 +837,7 @@ class AlarmsConfig(_Table):
 class WebhookConfig(_WithSecrets):
     _SECRETS = ("token",)
     url: Text
+    mode: Literal["structured", "binary"] = "structured"  # CloudEvents HTTP content mode
     timeout_s: Float = Field(10.0, ge=0.1, le=300.0)
     retry_min_s: Float = Field(1.0, ge=0.01, le=3600.0)
     retry_max_s: Float = Field(300.0, ge=0.01, le=86400.0)
@@ -838,11 +870,40 @@ class FeedConfig(_ReusesSource):
     response_topic: Text = "edgevib/{site}/alarms/response"
     event_source: Text = "edgevib/{site}"
     webhook: WebhookConfig | None = None
+    content_mode: Literal["structured", "binary"] = "structured"  # CloudEvents MQTT content mode (binary: MQTT 5)
+    dataschema: Text = ""  # URI template ({type}); "": no dataschema attribute
+    message_expiry_s: Float = Field(0.0, ge=0.0, le=4294967295.0)  # MQTT 5 Message Expiry Interval; 0: none
+    availability_topic: Text = "edgevib/{site}/availability"  # retained online/offline and Last Will; "": none
+    session_expiry_s: Int = Field(86400, ge=0, le=4294967295)  # MQTT 5 Session Expiry of the command session
+
+    def dataschema_for(self, event_type: str) -> str | None:
+        """The ``dataschema`` attribute of events of ``event_type`` (``None``: not configured)."""
+        return self.dataschema.format(type=event_type) if self.dataschema else None
 
     @model_validator(mode="after")
     def _feed(self) -> FeedConfig:
+        try:
+            source = self.event_source.format(site="quarry-lane")
+        except (KeyError, IndexError, ValueError) as exc:
+            raise _Problem("event_source", f"template {self.event_source!r} may only use {{site}} ({exc})") from None
+        problem = uri_reference_problem(source)
+        if problem:
+            raise _Problem("event_source", f"{source!r} {problem} (CloudEvents 'source' is a URI-reference; an "
+                           f"absolute URI such as \"urn:fennick:{{site}}:edgevib\" is recommended)")
+        if self.dataschema:
+            try:
+                schema = self.dataschema.format(type="io.edgevib.alarm.v1.transition")
+            except (KeyError, IndexError, ValueError) as exc:
+                raise _Problem("dataschema", f"template {self.dataschema!r} may only use {{type}} ({exc})") from None
+            problem = uri_reference_problem(schema, absolute=True)
+            if problem:
+                raise _Problem("dataschema", f"{schema!r} {problem} (CloudEvents 'dataschema' is a URI)")
+        if self.content_mode == "binary" and self.url is not None and self.protocol != "5":
+            raise _Problem("content_mode", "binary mode carries the attributes as MQTT 5 user properties: it needs "
+                           "protocol = \"5\" (MQTT 3.1.1 offers structured mode only)")
         for key, allowed in (("topic", ("site", "machine", "point")), ("state_topic", ("site", "machine", "point")),
-                             ("command_topic", ("site",)), ("response_topic", ("site",))):
+                             ("command_topic", ("site",)), ("response_topic", ("site",)),
+                             ("availability_topic", ("site",))):
             value = getattr(self, key)
             problem = _template(value, allowed) if value else None
             if problem:
@@ -1368,8 +1429,12 @@ def _resolve(cfg: Config, base: Path, digest: str) -> Config:
             "client_id": feed.client_id or (f"edgevib-{site.name}-feed" if feed.url else None),
             "command_topic": feed.command_topic.format(site=site.name),
             "response_topic": feed.response_topic.format(site=site.name),
-            "event_source": feed.event_source.format(site=site.name)})
+            "availability_topic": feed.availability_topic.format(site=site.name),
+            "event_source": feed.event_source.format(site=quote(site.name, safe=""))})
         feed._broker = _connection_of(feed, "feed", cfg)
+        if feed.content_mode == "binary" and feed._broker is not None and feed._broker.protocol != "5":
+            raise ConfigError("feed.content_mode", "binary mode carries the attributes as MQTT 5 user properties: "
+                              f"it needs an MQTT 5 connection (source {feed.source!r} uses {feed._broker.protocol})")
     state = Path(state_dir)
     alarms = cfg.alarms.model_copy(update={"socket": _resolve_path(cfg.alarms.socket, state, "alarms.socket")})
     capture = cfg.capture.model_copy(update={"dir": _resolve_path(cfg.capture.dir, state, "capture.dir")})

@@ -28,9 +28,9 @@ from typing import Any, cast
 import numpy as np
 import numpy.typing as npt
 
-from edgevib.daemon.config import G_M_S2, Config, MachineConfig, PointConfig, SpeedTag
+from edgevib.daemon.config import G_M_S2, Config, MachineConfig, MqttSourceConfig, PointConfig, SpeedTag
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
-from edgevib.daemon.wire import Block, WireError, decode
+from edgevib.daemon.wire import DEFAULT_MAX_PAYLOAD_BYTES, DEFAULT_MAX_SAMPLES, Block, WireError, decode
 from edgevib.pipelines.types import FrameIndicators
 
 __all__ = [
@@ -269,6 +269,8 @@ class BlockIngest:
         self.other_shard = frozenset(config.skipped_sensors)
         self.sensor_level: dict[str, int | None] = {
             s.name: getattr(s, "sensor_topic_level", None) for s in config.sources}
+        self.max_payload_bytes: dict[str, int] = {
+            s.name: s.max_payload_bytes for s in config.sources if isinstance(s, MqttSourceConfig)}
         self.speed_tags: dict[tuple[str, str], list[tuple[str, SpeedTag]]] = {}
         for m in config.machines:
             if m.speed_tag is not None:
@@ -285,8 +287,11 @@ class BlockIngest:
 
     def payload(self, source: str, topic: str | None, payload: bytes, received_ns: int) -> None:
         Stats.inc(self.stats.blocks_received, source)
+        max_bytes = self.max_payload_bytes.get(source, DEFAULT_MAX_PAYLOAD_BYTES)
         try:
-            block = decode(payload)
+            # the source's own size limit (also above the codec's 4 MiB default), and as many samples as a
+            # float32 block of that size can carry
+            block = decode(payload, max_bytes=max_bytes, max_samples=max(DEFAULT_MAX_SAMPLES, max_bytes // 4))
         except WireError as exc:
             self.reject(source, exc.reason, str(exc), topic)
             return
@@ -343,7 +348,9 @@ class BlockIngest:
             self.speeds[machine_id] = (spec.to_hz(value), received_ns)
 
     def reject(self, source: str, reason: str, detail: str, topic: str | None = None,
-               point: str | None = None) -> None:
+               point: str | None = None, received: bool = False) -> None:
+        if received:  # a payload the source refused before handing it over: it was received all the same
+            Stats.inc(self.stats.blocks_received, source)
         Stats.inc(self.stats.blocks_rejected, (source, reason))
         self.log.warning(("reject", source, reason, point), "block rejected", source=source, reason=reason,
                          detail=detail, topic=topic, point=point)

@@ -86,8 +86,10 @@ class Ingest(Protocol):
     def speed(self, source: str, tag: str, value: float, received_ns: int) -> None:
         """A speed tag update (MQTT topic or OPC UA node id as ``tag``; value in the tag's configured unit)."""
 
-    def reject(self, source: str, reason: str, detail: str, topic: str | None = None) -> None:
-        """Something the source itself found invalid (counted by reason, logged rate-limited)."""
+    def reject(self, source: str, reason: str, detail: str, topic: str | None = None, *,
+               received: bool = False) -> None:
+        """Something the source itself found invalid (counted by reason, logged rate-limited).  ``received``: a
+        payload the source dropped before handing it over (too large, queue full): counted as received too."""
 
     def connection(self, source: str, connected: bool) -> None:
         """Connection state changes; a change to connected after a loss counts as a reconnect."""

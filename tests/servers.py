@@ -71,3 +71,43 @@ class Mosquitto:
     def close(self) -> None:
         self.stop()
         shutil.rmtree(self.dir, ignore_errors=True)
+
+
+class NatsMqtt:
+    """A private NATS server with its MQTT gateway (MQTT 3.1.1) on 127.0.0.1: a second, independent broker
+    implementation.  The gateway needs JetStream (QoS 1 and retained messages live in streams) and a server name."""
+
+    def __init__(self) -> None:
+        exe = shutil.which("nats-server") or "/usr/sbin/nats-server"
+        if not Path(exe).exists():
+            raise RuntimeError("nats-server is not installed (apt-get install nats-server)")
+        self.exe = exe
+        self.port = free_port()
+        self.nats_port = free_port()
+        self.dir = Path(tempfile.mkdtemp(prefix="edgevib-nats-"))
+        self.conf = self.dir / "nats.conf"
+        self.conf.write_text(f"server_name: edgevib-test-{self.port}\nlisten: 127.0.0.1:{self.nats_port}\n"
+                             f'jetstream {{ store_dir: "{self.dir / "js"}" }}\n'
+                             f"mqtt {{ listen: 127.0.0.1:{self.port} }}\n")
+        self.proc: subprocess.Popen[bytes] | None = None
+
+    @property
+    def url(self) -> str:
+        return f"mqtt://127.0.0.1:{self.port}"
+
+    def start(self) -> NatsMqtt:
+        self.proc = subprocess.Popen([self.exe, "-c", str(self.conf)], stdout=subprocess.DEVNULL,
+                                     stderr=subprocess.DEVNULL)
+        wait_port(self.port, 30.0)
+        return self
+
+    def close(self) -> None:
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.terminate()
+            try:
+                self.proc.wait(10)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait(5)
+        self.proc = None
+        shutil.rmtree(self.dir, ignore_errors=True)

@@ -13,6 +13,7 @@ from __future__ import annotations
 from collections.abc import Mapping
 from dataclasses import dataclass, field, replace
 from pathlib import Path
+from urllib.parse import quote
 
 from edgevib.daemon.config import (
     AlarmsConfig,
@@ -169,8 +170,8 @@ def alarm_settings(cfg: Config) -> AlarmSettings:
             raise ConfigError(f"points[{i}].limits.health.noise_band_hz", f"high edge {band[1]:g} Hz is above "
                               f"Nyquist {p.fs_hz / 2:g} Hz")
         health[p.id] = spec
-    feed = cfg.feed or FeedConfig(enabled=False, command_topic="", response_topic="",
-                                  event_source=f"edgevib/{cfg.site.name}")
+    feed = cfg.feed or FeedConfig(enabled=False, command_topic="", response_topic="", availability_topic="",
+                                  event_source="edgevib/" + quote(cfg.site.name, safe=""))
     return AlarmSettings(table=a, feed=feed, capture=cfg.capture, site=cfg.site.name,
                          state_dir=str(Path(cfg.site.state_dir)), limits=tuple(limits), health=health,
                          config_digest=cfg.digest)

@@ -477,7 +477,7 @@ class AlarmLayer:
     def _emit(self, type_: str, point: str, machine: str, data: dict[str, Any], t_ns: int, pend: _Pending,
               event_id: str | None = None) -> str:
         ev = cloud_event(type_=type_, source=self._source, subject=point, data=data, time_ns=t_ns,
-                         event_id=event_id)
+                         event_id=event_id, dataschema=self.settings.feed.dataschema_for(type_))
         pend.events.append(OutboxEvent(id=ev["id"], type=type_, subject=point, topic=self._topic(point, machine),
                                        body=event_body(ev), created_ns=time.time_ns()))
         pend.points.add(point)
@@ -830,7 +830,8 @@ class AlarmCollector(Collector):
                 pub.add_metric([feed.sink], float(feed.published))
         yield pub
         rej = CounterMetricFamily("edgevib_feed_rejected", "Events a feed sink refused for good (a webhook's 4xx "
-                                  "answer other than 408/425/429; not retried)", labels=["sink"])
+                                  "answer other than 408/425/429; an MQTT topic or PUBACK refusal; not retried)",
+                                  labels=["sink"])
         for feed in (lay.mqtt, lay.webhook):
             if feed is not None:
                 rej.add_metric([feed.sink], float(getattr(feed, "rejected", 0)))

@@ -1,4 +1,4 @@
-"""The alarm feed: CloudEvents 1.0 (structured-mode JSON) from the outbox to MQTT and, optionally, an HTTP webhook.
+"""The alarm feed: CloudEvents 1.0 from the outbox to MQTT and, optionally, an HTTP webhook.
 
 Event types (our own names under a neutral reverse-DNS prefix, versioned)::
 
@@ -6,13 +6,26 @@ Event types (our own names under a neutral reverse-DNS prefix, versioned)::
     io.edgevib.sensor.v1.fault       a sensor fault was raised or cleared (never a machine fault)
     io.edgevib.baseline.v1.learned   a baseline finished learning (or was reset for re-learning)
 
-MQTT: every event is published with QoS 1 and stays pending in the outbox until its PUBACK arrives; each point's
-current state is published retained on its state topic (again after every reconnect).  Commands arrive on the
-command topic and are answered on the response topic.  paho's own network thread reconnects with bounded
-exponential backoff; its callbacks only hand work to the event loop.
+MQTT (CloudEvents MQTT protocol binding 1.0): every event is published with QoS 1 and stays pending in the outbox
+until its PUBACK arrives.  Structured mode (the default) carries the whole event as JSON; on MQTT 5 the PUBLISH has
+Content Type ``application/cloudevents+json`` and Payload Format Indicator 1.  Binary mode (MQTT 5 only) carries
+``data`` as the payload with Content Type ``datacontenttype`` and every other attribute as a User Property of the
+same name.  An event the broker will not take (a topic it refuses, a PUBACK with a failure reason code, a topic
+after which the broker keeps closing the connection) is set aside — counted in ``rejected``, logged with the
+reason, removed from this sink's queue — and never blocks the events behind it.
 
-Webhook: each event is POSTed as ``application/cloudevents+json``; a 2xx confirms it, a network error or a
-5xx/408/425/429 is retried with exponential backoff, any other status is counted as rejected and not retried.
+Each point's state is published retained on its state topic when it changes (a new value or time alone is not a
+change) and for every point after each (re)connect.  Commands arrive on the command topic (a persistent session,
+so commands sent while edgevib restarts wait at the broker); the answer goes to the request's MQTT 5 Response Topic
+with its Correlation Data, else to the configured response topic.  An availability topic holds a retained
+``online`` while the feed is connected and ``offline`` after a clean stop or, as the Last Will, when edgevib dies.
+The connection itself is :class:`edgevib.daemon.mqtt_client.MqttLink` (paho's reconnect loop with bounded
+backoff; refusals logged with the broker's reason).
+
+Webhook (CloudEvents HTTP protocol binding 1.0.2): structured mode POSTs the event as
+``application/cloudevents+json``; binary mode POSTs ``data`` with ``Content-Type: application/json`` and the other
+attributes as ``ce-`` headers.  A 2xx confirms it, a network error or a 5xx/408/425/429 is retried with
+exponential backoff, any other status is counted as rejected and not retried.
 """
 
 from __future__ import annotations
@@ -20,27 +33,30 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import json
-import ssl
 import urllib.error
+import urllib.parse
 import urllib.request
 from collections.abc import Callable
 from typing import Any
 
-import paho.mqtt.client as mqtt
 import structlog
-from paho.mqtt.enums import CallbackAPIVersion
 
 from edgevib.daemon.alarms.config import FeedConfig, WebhookConfig
 from edgevib.daemon.alarms.outbox import Outbox, OutboxEvent, new_event_id
+from edgevib.daemon.mqtt_client import Availability, MqttLink, TopicRefused, publish_properties
 from edgevib.daemon.timestamps import rfc3339_utc
 
 __all__ = [
     "ALARM_TYPE",
     "BASELINE_TYPE",
     "SENSOR_TYPE",
+    "STRUCTURED_CONTENT_TYPE",
     "MqttFeed",
     "WebhookFeed",
+    "binary_parts",
     "cloud_event",
+    "event_body",
+    "state_fingerprint",
 ]
 
 log = structlog.get_logger("edgevib.alarms.feed")
@@ -48,21 +64,70 @@ log = structlog.get_logger("edgevib.alarms.feed")
 ALARM_TYPE = "io.edgevib.alarm.v1.transition"
 SENSOR_TYPE = "io.edgevib.sensor.v1.fault"
 BASELINE_TYPE = "io.edgevib.baseline.v1.learned"
+STRUCTURED_CONTENT_TYPE = "application/cloudevents+json"  # CloudEvents JSON event format 1.0, §3 (media type)
 PUBACK_TIMEOUT_S = 15.0
 BATCH = 50
+RESPONSE_EXPIRY_S = 300  # a command answer nobody picked up within 5 minutes is of no use to anyone
 
 
 def cloud_event(*, type_: str, source: str, subject: str, data: dict[str, Any], time_ns: int,
-                event_id: str | None = None) -> dict[str, Any]:
+                event_id: str | None = None, dataschema: str | None = None) -> dict[str, Any]:
     """A CloudEvents 1.0 event in structured mode (all required and the used optional attributes)."""
-    return {"specversion": "1.0", "id": event_id or new_event_id(), "source": source, "type": type_,
-            "subject": subject, "time": rfc3339_utc(time_ns), "datacontenttype": "application/json", "data": data}
+    event: dict[str, Any] = {"specversion": "1.0", "id": event_id or new_event_id(), "source": source, "type": type_,
+             "subject": subject, "time": rfc3339_utc(time_ns), "datacontenttype": "application/json"}
+    if dataschema:
+        event["dataschema"] = dataschema
+    event["data"] = data
+    return event
 
 
-async def _next_batch(outbox: Outbox, sink: str, wake: asyncio.Event) -> list[OutboxEvent]:
+def event_body(event: dict[str, Any]) -> str:
+    return json.dumps(event, separators=(",", ":"), allow_nan=False)
+
+
+def binary_parts(body: str) -> tuple[dict[str, str], str, bytes]:
+    """A stored structured event split for binary mode: ``(attributes as strings, datacontenttype, data bytes)``."""
+    event = json.loads(body)
+    data = event.pop("data", None)
+    content_type = str(event.pop("datacontenttype", "application/json"))
+    attrs = {k: v if isinstance(v, str) else json.dumps(v) for k, v in event.items()}
+    payload = json.dumps(data, separators=(",", ":"), allow_nan=False).encode("utf-8")
+    return attrs, content_type, payload
+
+
+_VOLATILE = ("time",)
+_VOLATILE_ALARM = ("value",)
+_VOLATILE_BASELINE = ("mean", "std", "frames")
+
+
+def state_fingerprint(payload: bytes) -> str:
+    """The part of a state message whose change warrants a new retained message: everything but the time, the
+    latest values and a learning baseline's running statistics."""
+    try:
+        doc = json.loads(payload)
+    except (ValueError, UnicodeDecodeError):
+        return payload.decode("utf-8", "replace")
+    if not isinstance(doc, dict):
+        return json.dumps(doc, sort_keys=True)
+    for k in _VOLATILE:
+        doc.pop(k, None)
+    alarms = doc.get("alarms")
+    if isinstance(alarms, dict):
+        for row in alarms.values():
+            if isinstance(row, dict):
+                for k in _VOLATILE_ALARM:
+                    row.pop(k, None)
+                base = row.get("baseline")
+                if isinstance(base, dict):
+                    for k in _VOLATILE_BASELINE:
+                        base.pop(k, None)
+    return json.dumps(doc, sort_keys=True, separators=(",", ":"))
+
+
+async def _next_batch(outbox: Outbox, sink: str, wake: asyncio.Event, limit: int = BATCH) -> list[OutboxEvent]:
     """The next pending events of ``sink``; when there are none, an empty list after waiting (at most 5 s) for
     ``wake`` (set when an event is committed)."""
-    batch = await asyncio.to_thread(outbox.pending, sink, BATCH)
+    batch = await asyncio.to_thread(outbox.pending, sink, limit)
     if not batch:
         wake.clear()
         with contextlib.suppress(TimeoutError):
@@ -74,7 +139,8 @@ class MqttFeed:
     """Publishes pending outbox events to the feed broker with QoS 1 and keeps the retained state topics fresh.
 
     ``states()`` returns ``{point: (topic, payload)}`` of every point's retained state message;
-    ``on_command(payload)`` answers a command (JSON bytes in, JSON bytes out).  ``published`` counts confirmed events.
+    ``on_command(payload)`` answers a command (JSON bytes in, JSON bytes out; run in a worker thread).
+    ``published`` counts confirmed events, ``rejected`` the events set aside because the broker will not take them.
     """
 
     sink = "mqtt"
@@ -89,162 +155,203 @@ class MqttFeed:
         self.states = states
         self.on_command = on_command
         self.published = 0
-        self.reconnects = 0
+        self.rejected = 0
+        self.states_published = 0
+        self._binary = cfg.content_mode == "binary" and self.conn.protocol == "5"
+        subs = [(cfg.command_topic, 1)] if cfg.command_topic and on_command is not None else []
+        self.link = MqttLink(
+            self.conn, role="alarm feed", subscriptions=subs, persistent_session=bool(subs),
+            session_expiry_s=cfg.session_expiry_s,
+            availability=Availability(cfg.availability_topic) if cfg.availability_topic else None,
+            on_state=self._on_state, on_message=self._cb_message, on_ack=self._on_ack, redeliver=False,
+            max_inflight=BATCH)
         self._loop: asyncio.AbstractEventLoop | None = None
-        self._client: mqtt.Client | None = None
         self._connected = asyncio.Event()
         self._wake = asyncio.Event()
-        self._acks: dict[int, asyncio.Future[bool]] = {}
+        self._acks: dict[int, asyncio.Future[tuple[str, str]]] = {}
+        self._last_state: dict[str, str] = {}  # topic -> fingerprint of the retained message last published
         self._stopping = False
-        self._ever_connected = False
+        self._commands: set[asyncio.Task[None]] = set()
 
     @property
     def connected(self) -> bool:
         return self._connected.is_set()
 
+    @property
+    def reconnects(self) -> int:
+        return self.link.reconnects
+
     def wake(self) -> None:
         """New events are in the outbox."""
         self._wake.set()
 
-    # ---- paho callbacks (paho's thread): hand over to the loop, never raise
-    def _post(self, fn: Callable[..., None], *args: Any) -> None:
+    # ---- paho's thread: copy the command and hand it over
+    def _cb_message(self, msg: Any) -> None:
+        props = getattr(msg, "properties", None)
+        response_topic = getattr(props, "ResponseTopic", None) if props is not None else None
+        correlation = getattr(props, "CorrelationData", None) if props is not None else None
         loop = self._loop
         if loop is not None and not loop.is_closed():
             with contextlib.suppress(RuntimeError):
-                loop.call_soon_threadsafe(fn, *args)
-
-    def _cb_connect(self, client: Any, userdata: Any, flags: Any, reason: Any, props: Any = None) -> None:
-        if not getattr(reason, "is_failure", False):
-            if self.cfg.command_topic and self.on_command is not None:
-                client.subscribe(self.cfg.command_topic, qos=1)
-            self._post(self._on_connected)
-
-    def _cb_disconnect(self, client: Any, userdata: Any, flags: Any, reason: Any = None, props: Any = None) -> None:
-        self._post(self._on_disconnected)
-
-    def _cb_publish(self, client: Any, userdata: Any, mid: int, reason: Any = None, props: Any = None) -> None:
-        self._post(self._on_puback, mid, not getattr(reason, "is_failure", False))
-
-    def _cb_message(self, client: Any, userdata: Any, msg: Any) -> None:
-        self._post(self._on_message, bytes(msg.payload))
+                loop.call_soon_threadsafe(self._on_command, bytes(msg.payload), response_topic,
+                                          bytes(correlation) if correlation is not None else None)
 
     # ---- on the loop
-    def _on_connected(self) -> None:
-        if self._ever_connected:
-            self.reconnects += 1
-        self._ever_connected = True
-        self._connected.set()
-        log.info("feed broker connected", url=self.conn.url)
-        self.publish_states()
-        self._wake.set()
-
-    def _on_disconnected(self) -> None:
-        if self._connected.is_set():
-            log.warning("feed broker connection lost", url=self.conn.url)
+    def _on_state(self, up: bool) -> None:
+        if up:
+            self._connected.set()
+            self._last_state.clear()  # republish every state after a (re)connect
+            self.publish_states()
+            self._wake.set()
+            return
+        if self._stopping:
+            return
         self._connected.clear()
-        for fut in self._acks.values():
-            if not fut.done():
-                fut.set_result(False)
-        self._acks.clear()
 
-    def _on_puback(self, mid: int, ok: bool) -> None:
+    def _on_ack(self, mid: int, status: str, reason: str) -> None:
         fut = self._acks.pop(mid, None)
         if fut is not None and not fut.done():
-            fut.set_result(ok)
+            fut.set_result((status, reason))
 
-    def _on_message(self, payload: bytes) -> None:
-        if self.on_command is None or self._client is None or not self.cfg.response_topic:
+    def _on_command(self, payload: bytes, response_topic: str | None, correlation: bytes | None) -> None:
+        if self.on_command is None:
             return
-        try:
-            response = self.on_command(payload)
+        task = asyncio.get_running_loop().create_task(self._answer(payload, response_topic, correlation))
+        self._commands.add(task)
+        task.add_done_callback(self._commands.discard)
+
+    async def _answer(self, payload: bytes, response_topic: str | None, correlation: bytes | None) -> None:
+        assert self.on_command is not None
+        try:  # the handler commits to SQLite: off the event loop
+            response = await asyncio.to_thread(self.on_command, payload)
         except Exception as exc:  # a command handler never takes the feed down
             log.warning("command failed", error=str(exc))
             return
-        self._client.publish(self.cfg.response_topic, response, qos=1)
+        topic = response_topic or self.cfg.response_topic
+        if not topic:
+            return
+        props = publish_properties(content_type="application/json", utf8=True, expiry_s=RESPONSE_EXPIRY_S,
+                                   correlation=correlation)
+        try:
+            self.link.publish(topic, response, qos=1, properties=props)
+        except TopicRefused as exc:
+            log.warning("command response not sent: the broker will not take its topic", topic=topic,
+                        reason=str(exc))
 
     def publish_states(self, points: set[str] | None = None) -> None:
-        """Publish the retained state messages of all points (or of ``points``) when connected."""
-        if self._client is None or not self.connected:
+        """Publish the retained state messages of all points (or of ``points``) that changed, when connected."""
+        if not self.connected:
             return
+        props = publish_properties(content_type="application/json", utf8=True)
         for point, (topic, payload) in self.states().items():
-            if points is None or point in points:
-                self._client.publish(topic, payload, qos=1, retain=True)
+            if points is not None and point not in points:
+                continue
+            fp = state_fingerprint(payload)
+            if self._last_state.get(topic) == fp:
+                continue
+            try:
+                info = self.link.publish(topic, payload, qos=1, retain=True, properties=props)
+            except TopicRefused as exc:
+                self.link.rlog.warning(("state", topic), "state message not published: the broker will not take "
+                                       "its topic", point=point, topic=topic, reason=str(exc))
+                continue
+            if info.rc == 0:
+                self._last_state[topic] = fp
+                self.states_published += 1
 
-    def _make_client(self) -> mqtt.Client:
-        c = self.conn
-        proto = mqtt.MQTTv5 if c.protocol == "5" else mqtt.MQTTv311
-        client = mqtt.Client(callback_api_version=CallbackAPIVersion.VERSION2, client_id=c.client_id,
-                             protocol=proto)
-        if c.username is not None:
-            client.username_pw_set(c.username, c.password.reveal() if c.password is not None else None)
-        if c.tls:
-            client.tls_set(ca_certs=c.ca_file, certfile=c.cert_file, keyfile=c.key_file,
-                           keyfile_password=c.key_password.reveal() if c.key_password is not None else None,
-                           cert_reqs=ssl.CERT_REQUIRED)
-        client.reconnect_delay_set(min_delay=max(1, round(c.reconnect_min_s)), max_delay=max(1, round(
-            c.reconnect_max_s)))
-        client.max_inflight_messages_set(BATCH)
-        client.on_connect = self._cb_connect
-        client.on_disconnect = self._cb_disconnect
-        client.on_publish = self._cb_publish
-        client.on_message = self._cb_message
-        return client
+    def _event_message(self, e: OutboxEvent) -> tuple[bytes, Any]:
+        if self._binary:
+            attrs, content_type, payload = binary_parts(e.body)
+            props = publish_properties(content_type=content_type, utf8=True, expiry_s=self.cfg.message_expiry_s,
+                                       user=sorted(attrs.items()))
+            return payload, props
+        props = publish_properties(content_type=STRUCTURED_CONTENT_TYPE, utf8=True,
+                                   expiry_s=self.cfg.message_expiry_s)
+        return e.body.encode("utf-8"), props
 
     async def run(self) -> None:
         """Connect (retrying with backoff), then deliver pending events until :meth:`stop`."""
         self._loop = asyncio.get_running_loop()
-        self._client = client = self._make_client()
-        # paho's network thread connects, and reconnects with its bounded backoff, on its own.
-        client.connect_async(self.conn.host, self.conn.port, max(5, round(self.conn.keepalive_s)))
-        client.loop_start()
+        await self.link.start()
+        log.info("alarm feed started", url=self.conn.url, mode="binary" if self._binary else "structured",
+                 commands=self.cfg.command_topic or None, availability=self.cfg.availability_topic or None)
+        single = False  # after a lost connection, events go one at a time until one is confirmed
         try:
             while not self._stopping:
                 await self._connected.wait()
                 if self._stopping:
                     break
-                batch = await _next_batch(self.outbox, self.sink, self._wake)
-                if not batch:
+                batch = await _next_batch(self.outbox, self.sink, self._wake, 1 if single else BATCH)
+                if not batch or self._stopping:
                     continue
-                done = await self._send(batch)
-                if done:
-                    await asyncio.to_thread(self.outbox.mark_delivered, self.sink, [e.seq for e in done])
+                done, refused, retry = await self._send(batch)
+                if done or refused:
+                    await asyncio.to_thread(self.outbox.mark_delivered, self.sink,
+                                            [e.seq for e in done] + [e.seq for e, _ in refused])
                     self.published += len(done)
-                if len(done) < len(batch):
+                for e, reason in refused:
+                    self.rejected += 1
+                    log.error("feed event refused by the broker; set aside, the others go on", id=e.id, type=e.type,
+                              subject=e.subject, topic=e.topic, reason=reason)
+                single = retry and not done
+                if retry:
                     await asyncio.sleep(min(1.0, self.conn.reconnect_min_s))
         finally:
-            client.loop_stop()
+            await self.link.stop()
 
-    async def _send(self, batch: list[OutboxEvent]) -> list[OutboxEvent]:
-        assert self._client is not None
-        futs: list[tuple[OutboxEvent, asyncio.Future[bool]]] = []
+    async def _send(self, batch: list[OutboxEvent]
+                    ) -> tuple[list[OutboxEvent], list[tuple[OutboxEvent, str]], bool]:
+        """Publish a batch; returns (confirmed, refused with reasons, whether some must be retried)."""
+        loop = asyncio.get_running_loop()
+        futs: list[tuple[OutboxEvent, asyncio.Future[tuple[str, str]]]] = []
+        refused: list[tuple[OutboxEvent, str]] = []
+        retry = False
         for e in batch:
             if not self.connected:
+                retry = True
                 break
-            info = self._client.publish(e.topic, e.body.encode("utf-8"), qos=1)
-            if info.rc != mqtt.MQTT_ERR_SUCCESS:
+            payload, props = self._event_message(e)
+            try:
+                info = self.link.publish(e.topic, payload, qos=1, properties=props)
+            except TopicRefused as exc:
+                refused.append((e, str(exc)))
+                continue
+            if info.rc != 0:
+                retry = True
                 break
-            fut: asyncio.Future[bool] = asyncio.get_running_loop().create_future()
+            fut: asyncio.Future[tuple[str, str]] = loop.create_future()
             self._acks[info.mid] = fut
             futs.append((e, fut))
         done: list[OutboxEvent] = []
         for e, fut in futs:
             try:
-                ok = await asyncio.wait_for(fut, timeout=PUBACK_TIMEOUT_S)
+                status, reason = await asyncio.wait_for(fut, timeout=PUBACK_TIMEOUT_S)
             except TimeoutError:
-                ok = False
-            if not ok:
-                break  # keep order: the rest is retried
-            done.append(e)
-        return done
+                status, reason = "retry", f"no PUBACK within {PUBACK_TIMEOUT_S:g} s"
+            if status == "ok":
+                done.append(e)
+            elif status == "refused":
+                refused.append((e, reason))
+            else:
+                retry = True
+        return done, refused, retry
 
     async def stop(self) -> None:
         self._stopping = True
         self._connected.set()
         self._wake.set()
-        client = self._client
-        if client is not None:
+        for fut in self._acks.values():
+            if not fut.done():
+                fut.set_result(("retry", "stopping"))
+        for task in list(self._commands):
             with contextlib.suppress(Exception):
-                await asyncio.to_thread(client.disconnect)
+                await asyncio.wait_for(task, 2.0)
+
+
+def _header_value(value: str) -> str:
+    """A ``ce-`` header value (CloudEvents HTTP binding §3.1.3.2: percent-encode space, '"', '%' and everything
+    outside printable ASCII)."""
+    return urllib.parse.quote(value, safe="".join(chr(c) for c in range(0x21, 0x7F) if chr(c) not in '"%'))
 
 
 class WebhookFeed:
@@ -263,17 +370,27 @@ class WebhookFeed:
     def wake(self) -> None:
         self._wake.set()
 
-    def _post(self, body: str) -> int:
-        req = urllib.request.Request(self.cfg.url, data=body.encode("utf-8"), method="POST",
-                                     headers={"Content-Type": "application/cloudevents+json; charset=utf-8"})
+    def request(self, body: str) -> urllib.request.Request:
+        """The HTTP request of one stored event in the configured content mode."""
+        if self.cfg.mode == "binary":
+            attrs, content_type, data = binary_parts(body)
+            headers = {f"ce-{k}": _header_value(v) for k, v in attrs.items()}
+            headers["Content-Type"] = content_type
+            req = urllib.request.Request(self.cfg.url, data=data, method="POST", headers=headers)
+        else:
+            req = urllib.request.Request(self.cfg.url, data=body.encode("utf-8"), method="POST",
+                                         headers={"Content-Type": f"{STRUCTURED_CONTENT_TYPE}; charset=utf-8"})
         if self.cfg.token is not None:
             req.add_header("Authorization", f"Bearer {self.cfg.token.reveal()}")
+        return req
+
+    def _post(self, body: str) -> int:
         try:
-            with urllib.request.urlopen(req, timeout=self.cfg.timeout_s) as resp:
+            with urllib.request.urlopen(self.request(body), timeout=self.cfg.timeout_s) as resp:
                 return int(resp.status)
         except urllib.error.HTTPError as exc:
             return int(exc.code)
-        except (urllib.error.URLError, OSError, TimeoutError):
+        except (urllib.error.URLError, OSError, TimeoutError, ValueError):
             return 0
 
     async def run(self) -> None:
@@ -312,5 +429,3 @@ class WebhookFeed:
         self._wake.set()
 
 
-def event_body(event: dict[str, Any]) -> str:
-    return json.dumps(event, separators=(",", ":"), allow_nan=False)

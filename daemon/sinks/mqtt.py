@@ -3,16 +3,17 @@
 The topic is a template with ``{site}``, ``{machine}`` and ``{point}``.  Keys carry their units
 (``velocity_rms_mm_s``, ``acceleration_rms_g``, ``shaft_speed_hz`` …); an indicator that is unavailable for the
 frame (speed unknown, no envelope band) is ``null``, never a made-up number.  The sink keeps its own broker
-connection (``[publish.mqtt]``: another broker, or a source's settings reused) with paho's reconnect loop; while
-it is down, QoS 1 messages queue up to a bound and QoS 0 messages are dropped and counted.
+connection (``[publish.mqtt]``: another broker, or a source's settings reused), an
+:class:`~edgevib.daemon.mqtt_client.MqttLink`; while it is down, QoS 1 messages queue up to a bound and QoS 0
+messages are dropped and counted.  On MQTT 5 each message says what it is: Content Type ``application/json``,
+Payload Format Indicator 1 (UTF-8) and, when ``message_expiry_s`` is set, a Message Expiry Interval.  A message
+the broker refuses (a topic it will not take, a PUBACK with a failure reason) is counted and logged with the
+reason; it never holds up the other points.
 """
 
 from __future__ import annotations
 
-import asyncio
-import contextlib
 import json
-import time
 from typing import Any
 
 import paho.mqtt.client as mqtt
@@ -20,7 +21,7 @@ import paho.mqtt.client as mqtt
 from edgevib.daemon.config import G_M_S2, Config, MqttConnection
 from edgevib.daemon.interfaces import FrameResult, SourceError
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
-from edgevib.daemon.sources.mqtt import make_client
+from edgevib.daemon.mqtt_client import Availability, MqttLink, TopicRefused, publish_properties
 from edgevib.daemon.timestamps import rfc3339_utc
 from edgevib.pipelines.analysis import order_key
 
@@ -74,7 +75,8 @@ class MqttIndicatorSink:
     """Publishes each frame's indicators as JSON; implements :class:`~edgevib.daemon.interfaces.FrameSink`."""
 
     def __init__(self, *, site: str, connection: MqttConnection, topic: str, qos: int = 0, retain: bool = False,
-                 points: dict[str, tuple[str, tuple[str, ...]]] | None = None) -> None:
+                 points: dict[str, tuple[str, tuple[str, ...]]] | None = None, message_expiry_s: float = 0.0,
+                 availability_topic: str = "") -> None:
         self.site = site
         self.conn = connection
         self.topic = topic
@@ -83,8 +85,11 @@ class MqttIndicatorSink:
         self.points = points or {}  # point id -> (axis, order keys)
         self.published = 0
         self.dropped = 0
-        self.connected = False
-        self._client: mqtt.Client | None = None
+        self.refused = 0  # messages the broker refused (topic set aside, PUBACK failure)
+        self.link = MqttLink(connection, role="indicator publisher", on_ack=self._on_ack, redeliver=True,
+                             max_queued=MAX_QUEUED, max_inflight=100,
+                             availability=Availability(availability_topic) if availability_topic else None)
+        self.props = publish_properties(content_type="application/json", utf8=True, expiry_s=message_expiry_s)
         self.rlog = RateLimitedLogger(log, interval_s=30.0)
 
     @classmethod
@@ -92,9 +97,15 @@ class MqttIndicatorSink:
         pc = config.publish_mqtt
         if pc.connection is None:
             raise SourceError("publish.mqtt has no broker connection")
-        sink = cls(site=config.site.name, connection=pc.connection, topic=pc.topic, qos=pc.qos, retain=pc.retain)
+        sink = cls(site=config.site.name, connection=pc.connection, topic=pc.topic, qos=pc.qos, retain=pc.retain,
+                   message_expiry_s=pc.message_expiry_s,
+                   availability_topic=pc.availability_topic.format(site=config.site.name))
         sink.reconfigure(config)
         return sink
+
+    @property
+    def connected(self) -> bool:
+        return self.link.connected
 
     def reconfigure(self, config: Config) -> None:
         self.site = config.site.name
@@ -105,45 +116,35 @@ class MqttIndicatorSink:
         return self.topic.format(site=self.site, machine=machine, point=point)
 
     async def start(self) -> None:
-        client = make_client(self.conn, self.conn.client_id)
-        client.max_queued_messages_set(MAX_QUEUED)
-
-        def on_connect(_c: Any, _u: Any, _f: Any, rc: Any, _p: Any) -> None:
-            self.connected = not getattr(rc, "is_failure", False)
-
-        def on_disconnect(_c: Any, _u: Any, _f: Any, _rc: Any, _p: Any) -> None:
-            self.connected = False
-
-        client.on_connect = on_connect
-        client.on_disconnect = on_disconnect
-        client.connect_async(self.conn.host, self.conn.port, keepalive=max(5, round(self.conn.keepalive_s)))
-        client.loop_start()
-        self._client = client
+        await self.link.start()
         log.info("MQTT indicator publishing started", url=self.conn.url, topic=self.topic)
 
+    def _on_ack(self, _mid: int, status: str, _reason: str) -> None:
+        if status == "refused":  # the link has logged the broker's reason
+            self.refused += 1
+
     async def on_frames(self, results: list[FrameResult]) -> None:
-        client = self._client
-        if client is None:
+        if self.link.client is None:
             return
         for r in results:
             axis, orders = self.points.get(r.point_id, (str(r.extra.get("axis", "")), ()))
             payload = json.dumps(indicator_document(self.site, axis, r, orders), separators=(",", ":"),
-                                 allow_nan=False)
-            info = client.publish(self.topic_for(r.machine_id, r.point_id), payload, qos=self.qos,
-                                  retain=self.retain)
+                                 allow_nan=False).encode("utf-8")
+            topic = self.topic_for(r.machine_id, r.point_id)
+            try:
+                info = self.link.publish(topic, payload, qos=self.qos, retain=self.retain, properties=self.props)
+            except TopicRefused as exc:
+                self.dropped += 1
+                self.refused += 1
+                self.rlog.warning(("refused", topic), "indicator message not published: the broker will not take "
+                                  "its topic", point=r.point_id, topic=topic, reason=str(exc))
+                continue
             if info.rc == mqtt.MQTT_ERR_SUCCESS:
                 self.published += 1
             else:
                 self.dropped += 1
-                self.rlog.warning("drop", "indicator message not published", rc=info.rc, dropped=self.dropped)
+                self.rlog.warning("drop", "indicator message not published", reason=mqtt.error_string(info.rc),
+                                  dropped=self.dropped)
 
     async def stop(self) -> None:
-        client, self._client = self._client, None
-        if client is None:
-            return
-        deadline = time.monotonic() + 2.0
-        while self.connected and client.want_write() and time.monotonic() < deadline:
-            await asyncio.sleep(0.05)
-        with contextlib.suppress(Exception):
-            client.disconnect()
-        await asyncio.to_thread(client.loop_stop)
+        await self.link.stop(flush_s=2.0)

@@ -1,0 +1,458 @@
+"""The one MQTT client set-up of edgevib: block sources, the indicator publisher and the alarm feed all use it.
+
+:class:`MqttLink` is one broker connection (paho-mqtt 2.x, its network loop in its own thread):
+
+* **Reconnection** is paho's loop with bounded exponential backoff between the connection's ``reconnect_min_s``
+  and ``reconnect_max_s`` — set here, in one place, for every client.
+* **Callbacks** from paho's thread do almost nothing: state changes, acknowledgements and (optionally) messages
+  are handed to the event loop with ``loop.call_soon_threadsafe``; no exception escapes into paho.
+* **Refusals are logged with the broker's reason**, rate-limited, never a secret: a CONNACK failure (bad
+  credentials, not authorised …), a TCP or TLS failure, a connection closed before it was established, a
+  DISCONNECT sent by the broker with its reason code (MQTT 5), and a PUBACK with a failure reason code.
+* **A topic the broker will not take never blocks the others.**  paho refuses topics with wildcards or that are
+  not valid UTF-8 at once (:class:`TopicRefused`).  Some brokers close the connection instead of answering (a NATS
+  server's MQTT gateway does so for a ``.`` in a topic): when the connection drops while a QoS 1 message is the
+  oldest unacknowledged one, its topic gets a strike, and after :data:`MAX_STRIKES` strikes in a row the topic is
+  set aside for the life of the link (logged once with the reason; :meth:`MqttLink.publish` then raises
+  :class:`TopicRefused` for it).
+* **Sessions and availability**: ``persistent_session`` keeps the broker-side session (subscriptions and the QoS 1
+  messages queued for it) across disconnects and restarts — MQTT 3.1.1 ``clean_session = false``, MQTT 5
+  ``clean_start = false`` with a Session Expiry Interval; an :class:`Availability` topic gets a retained
+  ``online`` after every connect, a retained ``offline`` on a clean stop, and the same ``offline`` as the Last Will
+  that the broker publishes when edgevib dies or loses the network.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import socket
+import ssl
+import sys
+import threading
+import time
+from collections import OrderedDict
+from collections.abc import Callable, Iterable, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import paho.mqtt.client as mqtt
+from paho.mqtt.enums import CallbackAPIVersion
+from paho.mqtt.packettypes import PacketTypes
+from paho.mqtt.properties import Properties
+
+from edgevib.daemon.config import MqttConnection
+from edgevib.daemon.interfaces import EdgevibError, SourceError
+from edgevib.daemon.logs import RateLimitedLogger, get_logger
+
+__all__ = [
+    "MAX_STRIKES",
+    "Availability",
+    "MqttLink",
+    "TopicRefused",
+    "describe_connect_failure",
+    "describe_reason",
+    "make_client",
+    "publish_properties",
+]
+
+log = get_logger("edgevib.mqtt")
+MAX_STRIKES = 3
+"""Connection drops in a row, each with the same topic's QoS 1 message oldest in flight, before it is set aside."""
+_NewProperties: Any = Properties  # paho's constructor is not annotated
+TRANSIENT_REASONS = frozenset({0x97})  # Quota exceeded: worth retrying later (MQTT 5.0 §2.4, reason codes)
+
+
+class TopicRefused(EdgevibError):
+    """A topic that cannot be published on this broker (invalid for MQTT, or set aside after strikes)."""
+
+
+@dataclass(frozen=True, slots=True)
+class Availability:
+    """A retained availability topic: ``online`` after each connect, ``offline`` on a clean stop and as the Will."""
+
+    topic: str
+    online: bytes = b"online"
+    offline: bytes = b"offline"
+
+
+def describe_connect_failure(exc: BaseException | None) -> str:
+    """A short reason for a failed connection attempt (no secret can appear: only the error's own text)."""
+    if exc is None:
+        return "connection attempt failed"
+    if isinstance(exc, ssl.SSLCertVerificationError):
+        return f"TLS handshake failed: server certificate not accepted ({exc.verify_message or exc.reason})"
+    if isinstance(exc, ssl.SSLError):
+        return f"TLS handshake failed: {exc.reason or exc}"
+    if isinstance(exc, ConnectionRefusedError):
+        return "connection refused"
+    if isinstance(exc, socket.gaierror):
+        return f"host name not resolved: {exc.strerror or exc}"
+    if isinstance(exc, TimeoutError | socket.timeout):
+        return "connection attempt timed out"
+    if isinstance(exc, OSError) and exc.strerror:
+        return exc.strerror
+    return f"{type(exc).__name__}: {exc}"
+
+
+def describe_reason(reason: Any) -> str:
+    """paho's reason code (MQTT 5 reason codes; MQTT 3.1.1 return codes mapped by paho) as text with its number."""
+    value = getattr(reason, "value", reason)
+    return f"{reason} (reason code {value})" if isinstance(value, int) else str(reason)
+
+
+def _is_failure(reason: Any) -> bool:
+    return bool(getattr(reason, "is_failure", False))
+
+
+def make_client(conn: MqttConnection, client_id: str | None = None, *, persistent_session: bool = False,
+                will: Availability | None = None) -> mqtt.Client:
+    """A configured (not yet connected) paho client for ``conn``; library errors become :class:`SourceError`."""
+    v5 = conn.protocol == "5"
+    kwargs: dict[str, Any] = {"client_id": client_id or conn.client_id,
+                              "protocol": mqtt.MQTTv5 if v5 else mqtt.MQTTv311}
+    if not v5:
+        kwargs["clean_session"] = not persistent_session
+    client = mqtt.Client(CallbackAPIVersion.VERSION2, **kwargs)
+    # paho's own reconnect loop, bounded exponential backoff (floats work; paho's annotation says int)
+    client.reconnect_delay_set(min_delay=conn.reconnect_min_s, max_delay=conn.reconnect_max_s)  # type: ignore[arg-type]
+    if conn.username is not None:
+        client.username_pw_set(conn.username, conn.password.reveal() if conn.password is not None else None)
+    if conn.tls:
+        try:
+            client.tls_set(ca_certs=conn.ca_file, certfile=conn.cert_file, keyfile=conn.key_file,
+                           cert_reqs=ssl.CERT_REQUIRED, tls_version=ssl.PROTOCOL_TLS_CLIENT,
+                           keyfile_password=conn.key_password.reveal() if conn.key_password is not None else None)
+        except (ssl.SSLError, OSError, ValueError) as exc:
+            raise SourceError(f"TLS set-up for {conn.url} failed: {exc}") from exc
+    if will is not None:
+        props = None
+        if v5:
+            props = _NewProperties(PacketTypes.WILLMESSAGE)
+            props.PayloadFormatIndicator = 1
+            props.ContentType = "text/plain"
+        client.will_set(will.topic, will.offline, qos=1, retain=True, properties=props)
+    return client
+
+
+def publish_properties(*, content_type: str | None = None, utf8: bool = False, expiry_s: float | None = None,
+                       user: Iterable[tuple[str, str]] = (), response_topic: str | None = None,
+                       correlation: bytes | None = None) -> Properties:
+    """MQTT 5 PUBLISH properties (Content Type, Payload Format Indicator, Message Expiry Interval, User Properties,
+    Response Topic, Correlation Data; MQTT 5.0 §3.3.2.3)."""
+    props: Properties = _NewProperties(PacketTypes.PUBLISH)
+    if content_type:
+        props.ContentType = content_type
+    if utf8:
+        props.PayloadFormatIndicator = 1
+    if expiry_s is not None and expiry_s > 0:
+        props.MessageExpiryInterval = max(1, round(expiry_s))
+    pairs = list(user)
+    if pairs:
+        props.UserProperty = pairs
+    if response_topic:
+        props.ResponseTopic = response_topic
+    if correlation is not None:
+        props.CorrelationData = correlation
+    return props
+
+
+def _drop_queued(client: mqtt.Client, mids: set[int], topic: str | None) -> None:
+    """Remove messages from paho's outgoing queue (by message id, and every message on ``topic``) so that its
+    reconnect does not send them again.  paho offers no public call for this: its queue and lock are used here, in
+    this one place."""
+    lock = getattr(client, "_out_message_mutex", None)
+    queue = getattr(client, "_out_messages", None)
+    if lock is None or queue is None:
+        return
+    with lock:
+        for mid, msg in list(queue.items()):
+            if mid in mids or (topic is not None and msg.topic == topic):
+                queue.pop(mid, None)
+
+
+class MqttLink:
+    """One broker connection with paho's bounded-backoff reconnect loop, its state and refusals on the event loop.
+
+    Parameters
+    ----------
+    conn
+        Broker settings.
+    role
+        What the link is for, in log lines (``"source station-broker"``, ``"indicator publisher"``, ``"feed"``).
+    subscriptions
+        ``(filter, qos)`` pairs subscribed after every connect.
+    on_state
+        Called on the event loop with ``True``/``False`` when the connection comes up or goes down.
+    on_message
+        Called **on paho's thread** with each message (it must only copy and hand over; exceptions are caught).
+    on_ack
+        Called on the event loop with ``(mid, status, reason)`` for each QoS ≥ 1 message: ``"ok"`` (PUBACK),
+        ``"refused"`` (PUBACK with a failure reason code: the broker will not take it), ``"retry"`` (a transient
+        failure code, or — with ``redeliver=False`` — still unacknowledged when the connection dropped).
+    redeliver
+        True: paho sends unacknowledged QoS 1 messages again after a reconnect (the indicator publisher).  False:
+        the owner sends them again from its own store (the feed's outbox), so they are dropped from paho's queue at
+        a disconnect and reported ``"retry"``.
+    """
+
+    def __init__(self, conn: MqttConnection, *, role: str, client_id: str | None = None,
+                 subscriptions: Sequence[tuple[str, int]] = (), persistent_session: bool = False,
+                 session_expiry_s: int = 0, availability: Availability | None = None,
+                 on_state: Callable[[bool], None] | None = None,
+                 on_message: Callable[[mqtt.MQTTMessage], None] | None = None,
+                 on_ack: Callable[[int, str, str], None] | None = None, redeliver: bool = True,
+                 max_inflight: int = 20, max_queued: int = 0) -> None:
+        self.conn = conn
+        self.role = role
+        self.client_id = client_id or conn.client_id
+        self.subscriptions = list(subscriptions)
+        self.persistent_session = persistent_session
+        self.session_expiry_s = session_expiry_s
+        self.availability = availability
+        self.on_state = on_state
+        self.on_message = on_message
+        self.on_ack = on_ack
+        self.redeliver = redeliver
+        self.max_inflight = max_inflight
+        self.max_queued = max_queued
+        self.refused_topics: dict[str, str] = {}  # topic -> reason (set aside for the life of the link)
+        self.refusals = 0  # connection refusals and broker disconnects seen
+        self._connected = False
+        self._stopping = False
+        self._ever_connected = False
+        self.reconnects = 0
+        self._loop: asyncio.AbstractEventLoop | None = None
+        self._client: mqtt.Client | None = None
+        self._lock = threading.Lock()
+        self._inflight: OrderedDict[int, str] = OrderedDict()  # mid -> topic of QoS >= 1 messages, oldest first
+        self._strikes: dict[str, int] = {}
+        self._early: dict[int, tuple[bool, str, int]] = {}  # acknowledgements that came before publish() recorded
+        self._log = log.bind(role=role, url=conn.url)
+        self.rlog = RateLimitedLogger(self._log, interval_s=10.0)
+
+    @property
+    def v5(self) -> bool:
+        return self.conn.protocol == "5"
+
+    @property
+    def connected(self) -> bool:
+        return self._connected
+
+    @property
+    def client(self) -> mqtt.Client | None:
+        return self._client
+
+    # ------------------------------------------------------------------------------------------ lifecycle
+
+    async def start(self) -> None:
+        """Create the client and start connecting in the background (raises :class:`SourceError` on a TLS set-up
+        problem); the link then keeps reconnecting until :meth:`stop`."""
+        self._loop = asyncio.get_running_loop()
+        self._stopping = False
+        client = make_client(self.conn, self.client_id, persistent_session=self.persistent_session,
+                             will=self.availability)
+        client.max_inflight_messages_set(self.max_inflight)
+        client.max_queued_messages_set(self.max_queued)
+        client.on_connect = self._cb_connect
+        client.on_connect_fail = self._cb_connect_fail
+        client.on_disconnect = self._cb_disconnect
+        client.on_publish = self._cb_publish
+        client.on_message = self._cb_message
+        kwargs: dict[str, Any] = {}
+        if self.v5:
+            props = _NewProperties(PacketTypes.CONNECT)
+            if self.persistent_session and self.session_expiry_s > 0:
+                props.SessionExpiryInterval = int(self.session_expiry_s)
+            kwargs["properties"] = props
+            kwargs["clean_start"] = not self.persistent_session
+        client.connect_async(self.conn.host, self.conn.port, keepalive=max(5, round(self.conn.keepalive_s)),
+                             **kwargs)
+        client.loop_start()
+        self._client = client
+
+    async def stop(self, flush_s: float = 2.0) -> None:
+        """Publish ``offline`` (when an availability topic is set), wait up to ``flush_s`` for pending writes,
+        disconnect and stop paho's thread."""
+        self._stopping = True
+        client, self._client = self._client, None
+        if client is None:
+            return
+        if self._connected and self.availability is not None:
+            with contextlib.suppress(Exception):
+                client.publish(self.availability.topic, self.availability.offline, qos=1, retain=True,
+                               properties=self._text_props())
+        deadline = time.monotonic() + flush_s
+        while self._connected and time.monotonic() < deadline:
+            with self._lock:
+                busy = bool(self._inflight)
+            if not busy and not client.want_write():
+                break
+            await asyncio.sleep(0.02)
+        with contextlib.suppress(Exception):
+            client.disconnect()
+        await asyncio.to_thread(client.loop_stop)
+        if self._connected:
+            self._connected = False
+            if self.on_state is not None:
+                self.on_state(False)
+
+    # ------------------------------------------------------------------------------------------ publishing
+
+    def publish(self, topic: str, payload: bytes, *, qos: int = 0, retain: bool = False,
+                properties: Properties | None = None) -> mqtt.MQTTMessageInfo:
+        """Publish (from the event loop).  Raises :class:`TopicRefused` for a topic that paho refuses or that was
+        set aside; otherwise returns paho's message info (its ``rc`` says whether it was queued)."""
+        client = self._client
+        if client is None:
+            raise TopicRefused("the link is stopped")
+        reason = self.refused_topics.get(topic)
+        if reason is not None:
+            raise TopicRefused(reason)
+        try:  # never under self._lock: paho calls on_publish holding its own lock (lock order)
+            info = client.publish(topic, payload, qos=qos, retain=retain, properties=properties if self.v5 else None)
+        except (ValueError, TypeError) as exc:  # paho: wildcards in a publish topic, bad UTF-8, payload too large
+            raise TopicRefused(f"not publishable: {exc}") from exc
+        if qos > 0 and info.rc == mqtt.MQTT_ERR_SUCCESS:
+            with self._lock:
+                early = self._early.pop(info.mid, None)
+                if early is None:
+                    self._inflight[info.mid] = topic
+            if early is not None:  # acknowledged before it was recorded here
+                self._post(self._acked, info.mid, topic, *early)
+        return info
+
+    def _text_props(self) -> Properties | None:
+        if not self.v5:
+            return None
+        return publish_properties(content_type="text/plain", utf8=True)
+
+    # ------------------------------------------------------------------------------------------ paho's thread
+
+    def _post(self, fn: Callable[..., None], *args: Any) -> None:
+        loop = self._loop
+        if loop is not None and not loop.is_closed():
+            with contextlib.suppress(RuntimeError):
+                loop.call_soon_threadsafe(fn, *args)
+
+    def _cb_connect(self, client: mqtt.Client, _userdata: Any, flags: Any, reason: Any, _props: Any) -> None:
+        try:
+            if _is_failure(reason):
+                self._post(self._refused, f"broker answered {describe_reason(reason)}")
+                return
+            if self.subscriptions:
+                client.subscribe(self.subscriptions)
+            if self.availability is not None:
+                client.publish(self.availability.topic, self.availability.online, qos=1, retain=True,
+                               properties=self._text_props())
+            self._post(self._set_state, True, "", bool(getattr(flags, "session_present", False)))
+        except Exception as exc:  # never let an exception escape into paho's loop
+            self._post(self._callback_failed, "on_connect", repr(exc))
+
+    def _cb_connect_fail(self, _client: mqtt.Client, _userdata: Any) -> None:
+        # paho calls this inside its ``except OSError`` around the connect attempt: the error is the one handled
+        with contextlib.suppress(Exception):
+            self._post(self._refused, describe_connect_failure(sys.exc_info()[1]))
+
+    def _cb_disconnect(self, client: mqtt.Client, _userdata: Any, _flags: Any, reason: Any, _props: Any) -> None:
+        with contextlib.suppress(Exception):
+            text = describe_reason(reason)
+            with self._lock:
+                oldest = next(iter(self._inflight.values()), None)
+                set_aside = self._strike(oldest, text) if oldest is not None and not self._stopping else None
+                purge = set(self._inflight) if not self.redeliver else set()
+                if set_aside is not None:
+                    purge |= {mid for mid, topic in self._inflight.items() if topic == set_aside}
+                for mid in purge:
+                    self._inflight.pop(mid, None)
+                self._early.clear()
+            if purge or set_aside is not None:  # outside self._lock (lock order, see publish)
+                _drop_queued(client, purge, set_aside)
+            self._post(self._lost, text, _is_failure(reason), sorted(purge), set_aside)
+
+    def _cb_publish(self, _client: mqtt.Client, _userdata: Any, mid: int, reason: Any, _props: Any) -> None:
+        with contextlib.suppress(Exception):
+            result = (not _is_failure(reason), describe_reason(reason), int(getattr(reason, "value", 0)))
+            with self._lock:
+                topic = self._inflight.pop(mid, None)
+                if topic is None:  # not recorded yet by publish() (or untracked: QoS 0, availability)
+                    self._early[mid] = result
+                    while len(self._early) > 1000:  # untracked acknowledgements must not accumulate
+                        self._early.pop(next(iter(self._early)))
+                    return
+            self._post(self._acked, mid, topic, *result)
+
+    def _cb_message(self, _client: mqtt.Client, _userdata: Any, msg: mqtt.MQTTMessage) -> None:
+        handler = self.on_message
+        if handler is None:
+            return
+        try:
+            handler(msg)
+        except Exception as exc:  # the handler's own bug must not break paho's loop
+            self._post(self._callback_failed, "on_message", repr(exc))
+
+    # ------------------------------------------------------------------------------------------ event loop
+
+    def _set_state(self, connected: bool, reason: str = "", session_present: bool = False) -> None:
+        if connected == self._connected:
+            return
+        self._connected = connected
+        if connected:
+            if self._ever_connected:
+                self.reconnects += 1
+            self._ever_connected = True
+            self._log.info("MQTT connected", client_id=self.client_id, protocol=self.conn.protocol,
+                           session_present=session_present if self.persistent_session else None)
+        elif not self._stopping:
+            self.rlog.warning("lost", "MQTT connection lost; reconnecting with backoff", reason=reason)
+        if self.on_state is not None:
+            self.on_state(connected)
+
+    def _refused(self, reason: str) -> None:
+        if self._stopping:
+            return
+        self.refusals += 1
+        self.rlog.warning("refused", "broker refused the connection; retrying with backoff", reason=reason)
+
+    def _strike(self, topic: str, reason: str) -> str | None:
+        """(paho's thread, under the lock) One more drop with ``topic`` oldest in flight; the topic if it is now
+        set aside."""
+        n = self._strikes.get(topic, 0) + 1
+        self._strikes = {topic: n}  # strikes count only in a row: a drop with another topic oldest resets them
+        if n < MAX_STRIKES or topic in self.refused_topics:
+            return None
+        self.refused_topics[topic] = (f"the broker closed the connection {n} times in a row while a message on this "
+                                      f"topic was the oldest unacknowledged one (last: {reason})")
+        return topic
+
+    def _lost(self, reason: str, failure: bool, dropped: list[int], set_aside: str | None) -> None:
+        if not self._connected and failure and not self._stopping:
+            # closed before it was ever up: e.g. the broker dropped the TLS session after the handshake because it
+            # wanted a client certificate
+            self._refused(f"connection closed before it was established ({reason})")
+        elif failure and not self._stopping and self._connected:
+            self.refusals += 1
+            self.rlog.warning("disconnected", "broker closed the connection", reason=reason)
+        if set_aside is not None:
+            self._log.error("MQTT topic set aside: the broker will not take it; other topics go on", topic=set_aside,
+                            reason=self.refused_topics[set_aside])
+        self._set_state(False, reason)
+        if self.on_ack is not None:
+            for mid in dropped:
+                self.on_ack(mid, "retry", f"connection lost before the broker acknowledged it ({reason})")
+
+    def _acked(self, mid: int, topic: str, ok: bool, reason: str, code: int) -> None:
+        if ok:
+            with self._lock:
+                self._strikes.pop(topic, None)
+            status = "ok"
+        elif code in TRANSIENT_REASONS:
+            status = "retry"
+        else:
+            status = "refused"
+            self.rlog.warning(("puback", topic), "broker refused a message", topic=topic, reason=reason)
+        if self.on_ack is not None:
+            self.on_ack(mid, status, reason)
+
+    def _callback_failed(self, where: str, error: str) -> None:
+        self.rlog.error(("error", where), "MQTT callback failed", where=where, error=error)
