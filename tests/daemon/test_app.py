@@ -140,7 +140,7 @@ async def test_sine_to_metrics_and_probes(tmp_path: Path) -> None:
         for seq in range(6):
             d.ingest.block("scripted", sine_block("QL-F201-NDE-V", seq, 0.2, 40.0, fs=3200.0, n=3200), 0)
         await wait_for(lambda: len({r.point_id for r in probe.results}) == 3
-                       and d.stats.frames_analysed["P-101-DE-H"] >= 3)
+                       and d.stats.frames_analysed["P-101-DE-H"] >= 3 and d.idle)  # idle: every sink has them
         labels = {"site": "quarry-lane", "machine": "P-101", "point": "P-101-DE-H", "axis": "horizontal"}
         v = registry.get_sample_value("edgevib_velocity_rms_meters_per_second", labels)
         # FIELD_NOTES §5: 1 g peak at 50 Hz → 31.22 mm/s peak = 22.07 mm/s r.m.s. (a/(2πf), gₙ = 9.80665 m/s²)

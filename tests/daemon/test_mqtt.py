@@ -92,7 +92,7 @@ async def test_stream_to_metrics_with_speed_tag(mosquitto: Any, protocol: str, t
             await asyncio.to_thread(pub.send, "fwb/quarry-lane/F-201/NDE-V/block",
                                     encode_json(sine("QL-F201-NDE-V", seq, 0.5, 20.0)))
         await wait_for(lambda: d.stats.frames_analysed["P-101-DE-H"] >= 3
-                       and d.stats.frames_analysed["F-201-NDE-V"] >= 3)
+                       and d.stats.frames_analysed["F-201-NDE-V"] >= 3 and d.idle)  # idle: sinks have the results
         v = registry.get_sample_value("edgevib_velocity_rms_meters_per_second", LABELS)
         # FIELD_NOTES §5: 1 g peak at 50 Hz → 22.07 mm/s r.m.s.
         assert v == pytest.approx(22.07e-3, rel=0.02)
@@ -155,7 +155,7 @@ async def test_hostile_payloads_do_not_disturb_valid_points(mosquitto: Any, tmp_
                     await asyncio.to_thread(pub.send, topic, reason_payloads[seq])
         expected_frames = (8 * BLOCK - 16384) // 8192 + 1  # 3 frames from 8 blocks, 50 % overlap
         await wait_for(lambda: d.stats.frames_analysed["P-101-DE-H"] >= expected_frames
-                       and sum(d.stats.blocks_rejected.values()) >= 8)
+                       and sum(d.stats.blocks_rejected.values()) >= 8 and d.idle)  # idle: sinks have the results
         assert d.ready
         for reason, payloads in hostile.items():
             got = registry.get_sample_value("edgevib_blocks_rejected_total",
