@@ -44,6 +44,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import dataclasses
 import math
 import time
 from collections import deque
@@ -63,7 +64,8 @@ from edgevib.daemon.config import (
     PointConfig,
     SimulatedSourceConfig,
 )
-from edgevib.daemon.frames import BlockIngest, EwTrend, FrameJob, PointStream, Stats, indicator_values
+from edgevib.daemon.frames import BlockIngest, EwTrend, FrameJob, PointStream, Stats
+from edgevib.daemon.indicators import REGISTRY
 from edgevib.daemon.interfaces import ConfigError, FrameResult, FrameSink, Source
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 from edgevib.pipelines.types import AnalysisPlan, FrameIndicators, PipelineError
@@ -74,6 +76,7 @@ AnalyzeFn = Callable[[npt.NDArray[np.float32], AnalysisPlan, "npt.NDArray[np.flo
                      list[FrameIndicators]]
 MAX_BATCH = 64
 BATCH_WINDOW_S = 0.05  # a batch waits up to this long for more frames: larger batches cost far less per frame
+TRENDED = [i for i in REGISTRY if i.trend]  # indicators whose exponentially weighted trend is kept
 SINK_BACKLOG_PER_POINT = 4  # undelivered results a lossy sink keeps per point before dropping the oldest
 LOSSLESS_BACKLOG = 4 * MAX_BATCH  # undelivered results of a lossless sink above which analysis pauses
 log = get_logger("edgevib.daemon")
@@ -582,13 +585,12 @@ class Daemon:
             st = self.points.get(job.point_id)
             if st is None:  # removed by a reload while in flight
                 continue
-            trend = st.trend.update(indicator_values(ind), job.t_end_ns / 1e9)
             zone = _iso_zone(ind.velocity_rms_mm_s, st.machine)
             r = FrameResult(point_id=job.point_id, machine_id=st.machine.id, t_end_ns=job.t_end_ns,
                             received_ns=job.received_ns, fs_hz=st.config.fs_hz, indicators=ind, iso_zone=zone,
-                            samples=samples, extra={"trend": trend, "axis": st.config.axis,
-                                                        "sensor_type": st.config.sensor_type,
-                                                        "speed_mode": st.machine.speed_mode})
+                            samples=samples, axis=st.config.axis)
+            r = dataclasses.replace(r, trend=st.trend.update({i.name: i.value(r) for i in TRENDED},
+                                                             job.t_end_ns / 1e9))
             self.latest[job.point_id] = r
             Stats.inc(self.stats.frames_analysed, job.point_id)
             results.append(r)

@@ -59,7 +59,7 @@ from pydantic import (
     model_validator,
 )
 
-from edgevib.daemon.interfaces import ConfigError
+from edgevib.daemon.errors import ConfigError
 from edgevib.daemon.shard import Shard, owns_point, validate_shard
 from edgevib.daemon.wire import DEFAULT_MAX_PAYLOAD_BYTES, DEFAULT_MAX_SAMPLES
 
@@ -744,12 +744,12 @@ class PointLimits(_Table):
 
     @model_validator(mode="after")
     def _indicators(self) -> PointLimits:
-        from edgevib.daemon.indicators import INDICATORS
+        from edgevib.daemon.indicators import LIMITABLE
 
         for name, lim in self.indicators.items():
-            if name not in INDICATORS:
-                raise _Problem(name, f"unknown indicator{_did_you_mean(name, ['health', *INDICATORS])} "
-                               f"(known: health, {', '.join(INDICATORS)})")
+            if name not in LIMITABLE:
+                raise _Problem(name, f"unknown indicator{_did_you_mean(name, ['health', *LIMITABLE])} "
+                               f"(known: health, {', '.join(LIMITABLE)})")
             for level, rule in (("alert", lim.alert), ("danger", lim.danger), ("rule", lim.rule)):
                 kind = rule.kind if isinstance(rule, LevelRule) else rule
                 if kind in ("iso", "iso-baseline") and name != "velocity_rms_mm_s":

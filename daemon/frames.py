@@ -31,7 +31,6 @@ import numpy.typing as npt
 from edgevib.daemon.config import G_M_S2, Config, MachineConfig, MqttSourceConfig, PointConfig, SpeedTag
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 from edgevib.daemon.wire import DEFAULT_MAX_PAYLOAD_BYTES, DEFAULT_MAX_SAMPLES, Block, WireError, decode
-from edgevib.pipelines.types import FrameIndicators
 
 __all__ = [
     "LATENCY_BUCKETS_S",
@@ -41,7 +40,6 @@ __all__ = [
     "LatencyHistogram",
     "PointStream",
     "Stats",
-    "indicator_values",
 ]
 
 LATENCY_BUCKETS_S = (0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)
@@ -206,21 +204,6 @@ class PointStream:
 
 
 # ------------------------------------------------------------------------------------------------ trends
-
-
-def indicator_values(ind: FrameIndicators) -> dict[str, float | None]:
-    """Flat scalar view of a frame's indicators (the keys trended and published)."""
-    out: dict[str, float | None] = {
-        "velocity_rms_mm_s": ind.velocity_rms_mm_s, "velocity_peak_mm_s": ind.velocity_peak_mm_s,
-        "acceleration_rms_g": ind.acceleration_rms_g, "acceleration_peak_g": ind.acceleration_peak_g,
-        "crest_factor": ind.crest_factor, "kurtosis": ind.kurtosis, "displacement_pp_um": ind.displacement_pp_um,
-        "shaft_hz": ind.shaft_hz,
-    }
-    for order, v in ind.orders_mm_s.items():
-        out[f"order_{order}_mm_s"] = v
-    for fam, r in ind.envelope.items():
-        out[f"envelope_{fam}_g"] = r.amplitude_g
-    return out
 
 
 class EwTrend:

@@ -6,13 +6,14 @@ talks to the others only through what is named here.
 
 from __future__ import annotations
 
-from collections.abc import Awaitable, Callable
+from collections.abc import Awaitable, Callable, Mapping
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any, Protocol, runtime_checkable
+from typing import TYPE_CHECKING, Protocol, runtime_checkable
 
 import numpy as np
 import numpy.typing as npt
 
+from edgevib.daemon.errors import ConfigError, EdgevibError, SourceError
 from edgevib.daemon.wire import Block
 
 if TYPE_CHECKING:  # the configuration imports this module and must not load the numerical core
@@ -30,23 +31,6 @@ __all__ = [
 ]
 
 
-class EdgevibError(Exception):
-    """Base of the daemon's own exception hierarchy."""
-
-
-class ConfigError(EdgevibError):
-    """An invalid configuration.  ``path`` is the dotted key path (``points[2].bearing.elements``)."""
-
-    def __init__(self, path: str, problem: str) -> None:
-        super().__init__(f"{path}: {problem}" if path else problem)
-        self.path = path
-        self.problem = problem
-
-
-class SourceError(EdgevibError):
-    """A source could not connect or lost its connection (library errors are translated into this)."""
-
-
 @dataclass(frozen=True, slots=True)
 class FrameResult:
     """One analysed frame of one measurement point, as handed to every :class:`FrameSink`.
@@ -54,7 +38,9 @@ class FrameResult:
     ``samples`` is the raw frame in g (float32, read-only: a row of the analysis batch's array; for waveform
     capture and sensor-health checks), ``t_end_ns`` the time just after its
     last sample, ``received_ns`` the wall-clock time its last block arrived (for ingest-to-metric latency).
-    ``iso_zone`` is ``"A".."D"`` when the point's machine has a group and support.
+    ``iso_zone`` is ``"A".."D"`` when the point's machine has a group and support, ``axis`` the point's axis,
+    ``trend`` the exponentially weighted trend of the indicators that keep one (by indicator name; see
+    :mod:`edgevib.daemon.indicators`).
     """
 
     point_id: str
@@ -65,7 +51,8 @@ class FrameResult:
     indicators: FrameIndicators
     iso_zone: str | None
     samples: npt.NDArray[np.float32] = field(repr=False)
-    extra: dict[str, Any] = field(default_factory=dict)
+    axis: str = ""
+    trend: Mapping[str, float] = field(default_factory=dict)
 
 
 BlockHandler = Callable[[Block, str | None], None]

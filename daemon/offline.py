@@ -28,6 +28,8 @@ from typing import Any, NoReturn
 import numpy as np
 import numpy.typing as npt
 
+from edgevib.daemon.indicators import document
+from edgevib.daemon.interfaces import FrameResult
 from edgevib.pipelines.analysis import FAMILIES, default_envelope_band, make_plan, order_key
 from edgevib.pipelines.analysis import analyze_frames as _analyze_frames
 from edgevib.pipelines.bearings import defect_frequencies, validate_geometry
@@ -406,35 +408,15 @@ def _analyze(args: argparse.Namespace) -> dict[str, Any]:
     elif ind.shaft_estimated:
         shaft_source = "estimated from the spectrum"
 
-    envelope: dict[str, Any] = {"band_hz": list(plan.envelope_band_hz) if plan.envelope_band_hz else None}
-    for name in FAMILIES:
-        fam = ind.envelope.get(name)
-        if fam is not None:
-            envelope[name] = {"frequency_hz": fam.frequency_hz, "amplitude_g": fam.amplitude_g,
-                              "snr_db": fam.snr_db, "expected_hz": fam.expected_hz,
-                              "harmonics_found": fam.harmonics_found}
+    frame = FrameResult(point_id="", machine_id="", t_end_ns=0, received_ns=0, fs_hz=fs, indicators=ind,
+                        iso_zone=None, samples=x_g)
+    values = document(frame, "report", {"order": [order_key(o) for o in plan.orders]})  # the registry's report keys
     result: dict[str, Any] = {
-        "file": str(args.file),
-        "signal": wave.source,
-        "unit": unit,
-        "fs_hz": fs,
-        "n_samples": int(x_g.size),
-        "duration_s": x_g.size / fs,
-        "mean_g": ind.mean_g,
-        "acceleration_rms_g": ind.acceleration_rms_g,
-        "acceleration_peak_g": ind.acceleration_peak_g,
-        "acceleration_peak_to_peak_g": ind.acceleration_peak_to_peak_g,
-        "crest_factor": ind.crest_factor,
-        "kurtosis": ind.kurtosis,
-        "skewness": ind.skewness,
-        "velocity_rms_mm_s": ind.velocity_rms_mm_s,
-        "velocity_peak_mm_s": ind.velocity_peak_mm_s,
-        "displacement_pp_um": ind.displacement_pp_um,
-        "velocity_band_hz": list(plan.velocity_band_hz),
-        "shaft_hz": ind.shaft_hz,
-        "shaft_source": shaft_source,
-        "orders": {order_key(o): ind.orders_mm_s.get(order_key(o)) for o in plan.orders},
-        "envelope": envelope,
+        "file": str(args.file), "signal": wave.source, "unit": unit, "fs_hz": fs, "n_samples": int(x_g.size),
+        "duration_s": x_g.size / fs, "velocity_band_hz": list(plan.velocity_band_hz), "shaft_source": shaft_source,
+        **values,
+        "envelope": {"band_hz": list(plan.envelope_band_hz) if plan.envelope_band_hz else None,
+                     **(values.get("envelope") or {})},
         "iso_zone": None,
     }
     if bearing is not None and ind.shaft_hz is not None:

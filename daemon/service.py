@@ -39,6 +39,7 @@ from edgevib.daemon.config import (
     parse_listen,
     verify_for_run,
 )
+from edgevib.daemon.indicators import REGISTRY
 from edgevib.daemon.interfaces import ConfigError, FrameResult
 from edgevib.daemon.logs import configure_logging, get_logger
 from edgevib.daemon.systemd import Notifier, watchdog_interval_s, watchdog_loop
@@ -260,33 +261,26 @@ def _leading_family(r: FrameResult) -> str:
     return f"{fam} {res.snr_db:.0f} dB" if res.snr_db >= LEADING_FAMILY_SNR_DB else "-"
 
 
+DEMO = sorted((i.demo for i in REGISTRY if i.demo is not None), key=lambda d: d.position)
+"""The demo table's indicator columns (the registry's ``demo``), between the point's sensor and its envelope."""
+
+
 def render_table(cfg: Config, latest: dict[str, FrameResult], state_text: Callable[[str], str | None],
                  tty: bool, only: Collection[str] | None = None) -> str:
     """The demo's table (a tty) or one plain line per point (a pipe); ``only`` limits it to those points."""
+    keys = ("point", "sensor", *(d.key for d in DEMO), "envelope", "alarm")
     rows = []
     for p in cfg.points:
         if only is not None and p.id not in only:
             continue
         r = latest.get(p.id)
-        state = state_text(p.id) or "-"
-        if r is None:
-            rows.append((p.id, p.sensor_type, "…", "…", "…", "…", "…", state))
-            continue
-        ind = r.indicators
-        speed = f"{ind.shaft_hz * 60:.0f} rpm{'~' if ind.shaft_estimated else ''}" if ind.shaft_hz else "unknown"
-        vel = f"{ind.velocity_rms_mm_s:.2f} {r.iso_zone or ''}".strip()
-        rows.append((p.id, p.sensor_type, speed, vel, f"{ind.crest_factor:.2f}", f"{ind.kurtosis:.2f}",
-                     _leading_family(r), state))
+        cells = ["…"] * (len(DEMO) + 1) if r is None else [*(d.text(r) for d in DEMO), _leading_family(r)]
+        rows.append((p.id, p.sensor_type, *cells, state_text(p.id) or "-"))
     if not tty:
         stamp = time.strftime("%H:%M:%S")
-        def plain(r: tuple[str, ...]) -> str:
-            vel, _, zone = r[3].partition(" ")
-            return (f"{stamp} point={r[0]} sensor={r[1]} speed={r[2].replace(' ', '')} velocity_mm_s={vel} "
-                    f"zone={zone or '-'} crest={r[4]} kurtosis={r[5]} envelope={r[6].replace(' ', '')} "
-                    f"alarm={r[7].replace(' ', '_')}")
-
-        return "\n".join(plain(r) for r in rows)
-    head = ("point", "sensor", "speed", "velocity mm/s", "crest", "kurtosis", "envelope", "alarm")
+        return "\n".join(stamp + "".join(f" {k}={v.replace(' ', '_' if k == 'alarm' else '')}"
+                                          for k, v in zip(keys, row, strict=True)) for row in rows)
+    head = ("point", "sensor", *(d.heading for d in DEMO), "envelope", "alarm")
     widths = [max(len(str(x)) for x in col) for col in zip(head, *rows, strict=True)]
     line = "  ".join(h.ljust(w) for h, w in zip(head, widths, strict=True))
     out = [line, "  ".join("-" * w for w in widths)]

@@ -19,7 +19,7 @@ from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
-from edgevib.daemon.interfaces import ConfigError
+from edgevib.daemon.errors import ConfigError
 
 __all__ = ["MAX_SHARDS", "Shard", "owns_point", "select_points", "shard_of", "validate_shard"]
 

@@ -1,7 +1,7 @@
 """The alarm layer's settings resolved per point from the configuration's ``[alarms]``, ``[feed]``, ``[capture]``
 tables and each point's ``limits`` (declared in :mod:`edgevib.daemon.config`).
 
-A limit names an indicator of :data:`~edgevib.daemon.indicators.INDICATORS` and gives each level as a number, ``"iso"``
+A limit names an indicator of :data:`~edgevib.daemon.indicators.LIMITABLE` and gives each level as a number, ``"iso"``
 (the ISO 20816-3 boundary of the machine's group and support: alert B/C, danger C/D; velocity r.m.s. only),
 ``"iso-baseline"`` (alert only: learned baseline + 0.25 × B/C, at most 1.25 × B/C), ``{ factor = F }`` or
 ``{ sigma = K }``.  A point without a ``velocity_rms_mm_s`` limit gets ``[alarms] default_velocity_rule`` where its
@@ -26,7 +26,6 @@ from edgevib.daemon.config import (
     WebhookConfig,
     _HealthThresholds,
 )
-from edgevib.daemon.indicators import INDICATORS, IndicatorDef
 from edgevib.daemon.interfaces import ConfigError
 from edgevib.pipelines.alarm import Delay
 from edgevib.pipelines.health import HealthSpec
@@ -34,11 +33,9 @@ from edgevib.pipelines.severity import zone_boundaries_mm_s
 from edgevib.pipelines.types import PipelineError
 
 __all__ = [
-    "INDICATORS",
     "AlarmSettings",
     "CaptureConfig",
     "FeedConfig",
-    "IndicatorDef",
     "LevelRule",
     "LimitConfig",
     "WebhookConfig",

@@ -39,7 +39,7 @@ from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 from prometheus_client.registry import Collector
 
 from edgevib.daemon.alarms.capture import CaptureStore
-from edgevib.daemon.alarms.config import INDICATORS, AlarmSettings, LevelRule, LimitConfig
+from edgevib.daemon.alarms.config import AlarmSettings, LevelRule, LimitConfig
 from edgevib.daemon.alarms.control import CommandError, ControlServer, handle_payload
 from edgevib.daemon.alarms.feed import (
     ALARM_TYPE,
@@ -52,6 +52,7 @@ from edgevib.daemon.alarms.feed import (
 )
 from edgevib.daemon.alarms.outbox import Database, Outbox, OutboxEvent
 from edgevib.daemon.alarms.state import Baseline, SensorState, StateStore, restart_tracking
+from edgevib.daemon.indicators import LIMITABLE
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.timestamps import rfc3339_utc_s
 from edgevib.pipelines.alarm import (
@@ -130,7 +131,7 @@ def advice_text(severity: int, fault: str, transition: str, value: float | None,
 
 def _display_rank(indicator: str) -> int:
     """Display order among equally severe alarms: a fault pattern says more than a broadband level."""
-    return {"overall": 2, "impacting": 1}.get(INDICATORS[indicator].fault, 0)
+    return {"overall": 2, "impacting": 1}.get(LIMITABLE[indicator].fault or "", 0)
 
 
 @dataclass
@@ -416,7 +417,7 @@ class AlarmLayer:
         self.suppressed[pid] = reason
         for lim in self._by_point.get(pid, ()):
             key = lim.key
-            value = INDICATORS[lim.indicator].extract(r.indicators)
+            value = LIMITABLE[lim.indicator].value(r)
             if value is None or not math.isfinite(value):
                 continue
             if reason is None:
@@ -512,7 +513,7 @@ class AlarmLayer:
         spec = self.specs.get(key)
         slope = trend_slope_per_h(self.trends.get(key, ()))
         danger = spec.danger.set_point if spec is not None and spec.danger is not None else None
-        idef = INDICATORS[lim.indicator]
+        idef = LIMITABLE[lim.indicator]
         data: dict[str, Any] = {
             **self._base_data(lim.point, p.machine), "indicator": lim.indicator, "unit": idef.unit,
             "fault_kind": idef.fault, "transition": tr.kind, "state": SEVERITY[tr.to_severity],
@@ -521,7 +522,7 @@ class AlarmLayer:
             "alert_limit": spec.alert.set_point if spec is not None and spec.alert is not None else None,
             "danger_limit": danger, "trend_per_hour": slope,
             "iso_zone": r.iso_zone if r is not None else None, "reason": tr.reason, "by": by,
-            "advice": advice_text(tr.to_severity, idef.fault, tr.kind, tr.value, danger, slope),
+            "advice": advice_text(tr.to_severity, idef.fault or "", tr.kind, tr.value, danger, slope),
             "capture": None,
         }
         from edgevib.daemon.alarms.outbox import new_event_id

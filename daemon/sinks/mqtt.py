@@ -18,7 +18,8 @@ from typing import Any
 
 import paho.mqtt.client as mqtt
 
-from edgevib.daemon.config import G_M_S2, Config, MqttConnection
+from edgevib.daemon.config import Config, MqttConnection
+from edgevib.daemon.indicators import document
 from edgevib.daemon.interfaces import FrameResult, SourceError
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 from edgevib.daemon.mqtt_client import Availability, MqttLink, TopicRefused, publish_properties
@@ -31,39 +32,18 @@ log = get_logger("edgevib.sinks.mqtt")
 MAX_QUEUED = 10_000
 
 
-def _num(v: float | None) -> float | None:
-    return None if v is None or v != v or v in (float("inf"), float("-inf")) else float(v)
-
-
 def indicator_document(site: str, axis: str, r: FrameResult, orders: tuple[str, ...] = ()) -> dict[str, Any]:
-    """The JSON document of one frame (plain types, units in the key names, ``None`` for unavailable)."""
+    """The JSON document of one frame: identity and frame metadata, then every indicator the registry publishes
+    here (:func:`edgevib.daemon.indicators.document`; ``None`` for unavailable).  ``orders`` are the point's
+    configured order keys, always present."""
     ind = r.indicators
-    trend = r.extra.get("trend", {})
-    order_values = {k: _num(v) for k, v in ind.orders_mm_s.items()}
-    for k in orders:
-        order_values.setdefault(k, None)
-    envelope = None
-    if ind.envelope_band_hz is not None:
-        envelope = {fam: {"amplitude_g": _num(f.amplitude_g), "amplitude_m_s2": _num(f.amplitude_g * G_M_S2),
-                          "snr_db": _num(f.snr_db), "frequency_hz": _num(f.frequency_hz),
-                          "expected_hz": _num(f.expected_hz), "harmonics_found": f.harmonics_found}
-                    for fam, f in ind.envelope.items()} or None
     return {
         "site": site, "machine": r.machine_id, "point": r.point_id, "axis": axis,
-        "time": rfc3339_utc(r.t_end_ns),
-        "t_end_ns": r.t_end_ns, "fs_hz": r.fs_hz, "frame_samples": int(r.samples.shape[0]),
-        "velocity_rms_mm_s": _num(ind.velocity_rms_mm_s), "velocity_peak_mm_s": _num(ind.velocity_peak_mm_s),
-        "velocity_rms_trend_mm_s": _num(trend.get("velocity_rms_mm_s")),
-        "acceleration_rms_g": _num(ind.acceleration_rms_g), "acceleration_peak_g": _num(ind.acceleration_peak_g),
-        "acceleration_rms_m_s2": _num(ind.acceleration_rms_g * G_M_S2),
-        "acceleration_peak_m_s2": _num(ind.acceleration_peak_g * G_M_S2),
-        "crest_factor": _num(ind.crest_factor), "kurtosis": _num(ind.kurtosis), "skewness": _num(ind.skewness),
-        "displacement_pp_um": _num(ind.displacement_pp_um),
-        "shaft_speed_hz": _num(ind.shaft_hz), "shaft_speed_estimated": ind.shaft_estimated if ind.shaft_hz else None,
-        "iso_zone": r.iso_zone,
-        "orders_velocity_rms_mm_s": order_values if ind.shaft_hz is not None else dict.fromkeys(order_values),
+        "time": rfc3339_utc(r.t_end_ns), "t_end_ns": r.t_end_ns, "fs_hz": r.fs_hz,
+        "frame_samples": int(r.samples.shape[0]),
+        "shaft_speed_estimated": ind.shaft_estimated if ind.shaft_hz else None, "iso_zone": r.iso_zone,
         "envelope_band_hz": list(ind.envelope_band_hz) if ind.envelope_band_hz is not None else None,
-        "envelope": envelope,
+        **document(r, "mqtt", {"order": orders}),
     }
 
 
@@ -127,7 +107,7 @@ class MqttIndicatorSink:
         if self.link.client is None:
             return
         for r in results:
-            axis, orders = self.points.get(r.point_id, (str(r.extra.get("axis", "")), ()))
+            axis, orders = self.points.get(r.point_id, (r.axis, ()))
             payload = json.dumps(indicator_document(self.site, axis, r, orders), separators=(",", ":"),
                                  allow_nan=False).encode("utf-8")
             topic = self.topic_for(r.machine_id, r.point_id)

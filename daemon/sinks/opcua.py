@@ -11,27 +11,11 @@ Its namespace ``urn:edgevib:indicators`` (index ``<idx>``, usually 2 — resolve
             <indicator>                        Double   ns=<idx>;s=<site>/<machine>/<point>/<indicator>
 
 for example ``ns=2;s=quarry-lane/P-101/P-101-DE-H/velocity_rms_mm_s``.  These node ids are stable: they depend only
-on the site, machine and point ids of the configuration and on the indicator names below.
+on the site, machine and point ids of the configuration and on the indicator names.
 
-Indicators (unit in the name, also in each variable's Description and ``EngineeringUnits`` property):
-
-=================================  ====================================================================
-``velocity_rms_mm_s``              velocity r.m.s. in the point's ISO 20816 band, mm/s
-``velocity_peak_mm_s``             velocity peak in that band, mm/s
-``velocity_rms_trend_mm_s``        exponentially weighted trend of velocity r.m.s., mm/s
-``acceleration_rms_g``             acceleration r.m.s., g
-``acceleration_peak_g``            acceleration peak (absolute), g
-``acceleration_peak_to_peak_g``    acceleration peak to peak, g
-``crest_factor``                   peak / r.m.s. of acceleration (ratio)
-``kurtosis``                       Pearson kurtosis of acceleration (3 for Gaussian noise)
-``skewness``                       skewness of acceleration
-``displacement_pp_um``             displacement peak to peak, µm
-``shaft_hz``                       shaft speed used for the frame (given or estimated), Hz
-``iso_zone``                       ISO 20816-3 zone of velocity r.m.s. as a number, 1..4 = A..D
-``order_<k>x_velocity_rms_mm_s``   velocity r.m.s. at shaft order k (``order_1x_…``, ``order_0.5x_…``)
-``envelope_<f>_amplitude_g``       envelope-spectrum amplitude of bearing family f (ftf, bpfo, bpfi, bsf), g
-``envelope_<f>_snr_db``            level of family f over the envelope floor, dB
-=================================  ====================================================================
+The variables are the indicators of :data:`edgevib.daemon.indicators.REGISTRY` published here (``opcua`` name;
+README "OPC UA indicator namespace" lists them): unit in the name, also in each variable's Description and
+``EngineeringUnits`` property; one variable per configured order and per bearing family.
 
 Every update carries the frame's end time as ``SourceTimestamp``.  An indicator that is unavailable for a frame
 (no speed known, no envelope band, no ISO group, a non-finite result) gets status ``BadNoData`` (OPC UA then
@@ -56,29 +40,16 @@ from asyncua.common.node import Node
 from asyncua.server.server import Server
 from asyncua.ua.status_codes import StatusCodes
 
+from edgevib.daemon.indicators import FAMILIES, REGISTRY, Indicator
 from edgevib.daemon.interfaces import ConfigError, FrameResult
 
 __all__ = ["FAMILIES", "INDICATORS", "NAMESPACE_URI", "OpcUaIndicatorSink", "node_id_string"]
 
 NAMESPACE_URI = "urn:edgevib:indicators"
-FAMILIES = ("ftf", "bpfo", "bpfi", "bsf")
 DEFAULT_ORDERS = ("0.5x", "1x", "2x", "3x")
-_ZONE_NUMBER = {"A": 1.0, "B": 2.0, "C": 3.0, "D": 4.0}
-
-INDICATORS: dict[str, tuple[str, str]] = {
-    "velocity_rms_mm_s": ("mm/s", "Velocity r.m.s. in the ISO 20816 band"),
-    "velocity_peak_mm_s": ("mm/s", "Velocity peak in the ISO 20816 band"),
-    "velocity_rms_trend_mm_s": ("mm/s", "Exponentially weighted trend of velocity r.m.s."),
-    "acceleration_rms_g": ("g", "Acceleration r.m.s."),
-    "acceleration_peak_g": ("g", "Acceleration peak (absolute)"),
-    "acceleration_peak_to_peak_g": ("g", "Acceleration peak to peak"),
-    "crest_factor": ("1", "Acceleration crest factor (peak / r.m.s.)"),
-    "kurtosis": ("1", "Acceleration kurtosis (Pearson; 3 for Gaussian noise)"),
-    "skewness": ("1", "Acceleration skewness"),
-    "displacement_pp_um": ("µm", "Displacement peak to peak"),
-    "shaft_hz": ("Hz", "Shaft speed used for the frame (given or estimated)"),
-    "iso_zone": ("1", "ISO 20816-3 zone of velocity r.m.s. (1..4 = A..D)"),
-}
+OPCUA: list[tuple[Indicator, str]] = [(i, i.opcua) for i in REGISTRY if i.opcua is not None]
+"""The registry's indicators served here, with their variable names (``{key}``: order or family)."""
+INDICATORS: dict[str, tuple[str, str]] = {name: (i.unit, i.text()) for i, name in OPCUA if i.per is None}
 """Fixed indicator variables of every point: name → (unit, description)."""
 
 log = structlog.get_logger("edgevib.daemon.sinks.opcua")
@@ -90,14 +61,13 @@ def node_id_string(idx: int, site: str, machine: str, point: str, indicator: str
     return f"ns={idx};s={path}"
 
 
-def _order_variable(key: str) -> tuple[str, tuple[str, str]]:
-    return f"order_{key}_velocity_rms_mm_s", ("mm/s", f"Velocity r.m.s. at shaft order {key}")
-
-
-def _family_variables(family: str) -> list[tuple[str, tuple[str, str]]]:
-    what = "2 × BSF" if family == "bsf" else family.upper()
-    return [(f"envelope_{family}_amplitude_g", ("g", f"Envelope-spectrum amplitude of the {what} family")),
-            (f"envelope_{family}_snr_db", ("dB", f"Level of the {what} family over the envelope floor"))]
+def _variables(orders: Iterable[str]) -> list[tuple[str, str, str]]:
+    """(name, unit, description) of a point's variables: every indicator, each order, each bearing family."""
+    out = []
+    for i, name in OPCUA:
+        keys = tuple(orders) if i.per == "order" else FAMILIES if i.per == "family" else ("",)
+        out += [(name.format(key=k), i.unit, i.text(k)) for k in keys]
+    return out
 
 
 def _parse_listen(listen: str) -> tuple[str, int]:
@@ -124,30 +94,9 @@ def _points_of(points: Iterable[tuple[str, str]] | Mapping[str, Any]) -> list[tu
     return out
 
 
-def indicator_values(result: FrameResult) -> dict[str, float | None]:
-    """The variable values of one frame (``None``: unavailable)."""
-    ind = result.indicators
-    trend = result.extra.get("trend", {}) if isinstance(result.extra, dict) else {}
-    values: dict[str, float | None] = {
-        "velocity_rms_mm_s": ind.velocity_rms_mm_s,
-        "velocity_peak_mm_s": ind.velocity_peak_mm_s,
-        "velocity_rms_trend_mm_s": trend.get("velocity_rms_mm_s") if isinstance(trend, dict) else None,
-        "acceleration_rms_g": ind.acceleration_rms_g,
-        "acceleration_peak_g": ind.acceleration_peak_g,
-        "acceleration_peak_to_peak_g": ind.acceleration_peak_to_peak_g,
-        "crest_factor": ind.crest_factor,
-        "kurtosis": ind.kurtosis,
-        "skewness": ind.skewness,
-        "displacement_pp_um": ind.displacement_pp_um,
-        "shaft_hz": ind.shaft_hz,
-        "iso_zone": _ZONE_NUMBER.get(result.iso_zone) if result.iso_zone else None,
-    }
-    for key, value in ind.orders_mm_s.items():
-        values[_order_variable(key)[0]] = value
-    for family, fam in ind.envelope.items():
-        values[f"envelope_{family}_amplitude_g"] = fam.amplitude_g
-        values[f"envelope_{family}_snr_db"] = fam.snr_db
-    return values
+def indicator_values(result: FrameResult) -> dict[str, tuple[float | None, str, str]]:
+    """The variable values of one frame (``None``: unavailable), each with its unit and description."""
+    return {name.format(key=k): (v, i.unit, i.text(k)) for i, name in OPCUA for k, v in i.values(result).items()}
 
 
 class OpcUaIndicatorSink:
@@ -267,10 +216,7 @@ class OpcUaIndicatorSink:
         self._objects[pid] = obj
         self._machine_of[pid] = mid
         self._vars[pid] = {}
-        spec = list(INDICATORS.items()) + [_order_variable(k) for k in orders]
-        for family in FAMILIES:
-            spec += _family_variables(family)
-        for name, (unit, text) in spec:
+        for name, unit, text in _variables(orders):
             await self._add_variable(pid, mid, name, unit, text)
 
     async def _add_variable(self, pid: str, mid: str, name: str, unit: str, text: str) -> ua.NodeId:
@@ -310,14 +256,11 @@ class OpcUaIndicatorSink:
         mid = self._machine_of[pid]
         source_ts = datetime.datetime.fromtimestamp(result.t_end_ns / 1e9, datetime.UTC)
         values = indicator_values(result)
-        for name in values:
-            if name not in variables:
-                if not name.startswith("order_"):
-                    continue
-                await self._add_variable(pid, mid, name, "mm/s", f"Velocity r.m.s. at shaft order "
-                                         f"{name.removeprefix('order_').removesuffix('_velocity_rms_mm_s')}")
+        for name, (_, unit, text) in values.items():
+            if name not in variables:  # an order beyond the configured ones, first reported now
+                await self._add_variable(pid, mid, name, unit, text)
         for name, nodeid in variables.items():
-            value = values.get(name)
+            value = values[name][0] if name in values else None
             if value is None or not math.isfinite(value):
                 await self._server_write(nodeid, None, StatusCodes.BadNoData, source_ts, now)
             else:

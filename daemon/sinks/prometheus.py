@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import math
 import socket
 import ssl
 import threading
@@ -27,14 +28,16 @@ from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Histo
 from prometheus_client.exposition import choose_encoder
 
 from edgevib.daemon import __version__
-from edgevib.daemon.config import G_M_S2, PointConfig
+from edgevib.daemon.config import PointConfig
 from edgevib.daemon.frames import Stats
+from edgevib.daemon.indicators import REGISTRY, Indicator, Si, meaning
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.logs import get_logger
 
-__all__ = ["ZONE_NUMBER", "IndicatorCollector", "MetricsServer", "PrometheusSink"]
+__all__ = ["PROMETHEUS", "IndicatorCollector", "MetricsServer", "PrometheusSink"]
 
-ZONE_NUMBER = {"A": 1, "B": 2, "C": 3, "D": 4}
+PROMETHEUS: list[tuple[Indicator, Si]] = [(i, i.si) for i in REGISTRY if i.prometheus is not None and i.si is not None]
+"""The registry's indicators exposed as gauges (``edgevib_<prometheus>_<SI unit>``)."""
 _LABELS = ["site", "machine", "point", "axis"]
 log = get_logger("edgevib.metrics")
 
@@ -58,54 +61,20 @@ class IndicatorCollector:
         yield from self._self_metrics()
 
     def _indicators(self, latest: list[tuple[tuple[str, ...], FrameResult]]) -> Iterable[Metric]:
-        def gauge(name: str, doc: str, unit: str = "", extra: list[str] | None = None) -> GaugeMetricFamily:
-            return GaugeMetricFamily(name, doc, labels=_LABELS + (extra or []), unit=unit)
-
-        v_rms = gauge("edgevib_velocity_rms_meters_per_second", "Broadband velocity r.m.s. (ISO 20816 band).",
-                      "meters_per_second")
-        v_pk = gauge("edgevib_velocity_peak_meters_per_second", "Velocity peak in the ISO band.", "meters_per_second")
-        a_rms = gauge("edgevib_acceleration_rms_meters_per_second_squared", "Acceleration r.m.s.",
-                      "meters_per_second_squared")
-        a_pk = gauge("edgevib_acceleration_peak_meters_per_second_squared", "Acceleration peak (absolute).",
-                     "meters_per_second_squared")
-        crest = gauge("edgevib_crest_factor", "Acceleration crest factor (peak / r.m.s.).")
-        kurt = gauge("edgevib_kurtosis", "Acceleration kurtosis (Pearson; 3 for Gaussian noise).")
-        orders = gauge("edgevib_order_velocity_rms_meters_per_second", "Velocity r.m.s. at a shaft order.",
-                       "meters_per_second", ["order"])
-        env_amp = gauge("edgevib_envelope_amplitude_meters_per_second_squared",
-                        "Envelope-spectrum amplitude of a bearing defect family.", "meters_per_second_squared",
-                        ["family"])
-        env_snr = gauge("edgevib_envelope_snr_decibels", "Bearing defect family level over the envelope floor.",
-                        "decibels", ["family"])
-        speed = gauge("edgevib_shaft_speed_hertz", "Shaft speed used for the frame (given or estimated).", "hertz")
-        zone = gauge("edgevib_iso_zone", "ISO 20816-3 zone of velocity r.m.s. (1..4 = A..D).")
-        trend = gauge("edgevib_velocity_rms_trend_meters_per_second",
-                      "Exponentially weighted trend of velocity r.m.s.", "meters_per_second")
-        last = gauge("edgevib_last_frame_timestamp_seconds", "End time of the latest analysed frame.", "seconds")
+        """One gauge family per registry indicator published here (values in SI units; unavailable: absent)."""
+        families = [(ind, si, GaugeMetricFamily(f"edgevib_{ind.prometheus}", meaning(ind),
+                                                labels=_LABELS + ([ind.per] if ind.per else []), unit=si.suffix))
+                    for ind, si in PROMETHEUS]
+        last = GaugeMetricFamily("edgevib_last_frame_timestamp_seconds", "End time of the latest analysed frame.",
+                                 labels=_LABELS, unit="seconds")
         for labels, r in latest:
             lab = list(labels)
-            ind = r.indicators
-            v_rms.add_metric(lab, ind.velocity_rms_mm_s / 1000.0)
-            v_pk.add_metric(lab, ind.velocity_peak_mm_s / 1000.0)
-            a_rms.add_metric(lab, ind.acceleration_rms_g * G_M_S2)
-            a_pk.add_metric(lab, ind.acceleration_peak_g * G_M_S2)
-            crest.add_metric(lab, ind.crest_factor)
-            kurt.add_metric(lab, ind.kurtosis)
-            for order, value in ind.orders_mm_s.items():
-                if value is not None:
-                    orders.add_metric([*lab, order], value / 1000.0)
-            for family, fam in ind.envelope.items():
-                env_amp.add_metric([*lab, family], fam.amplitude_g * G_M_S2)
-                env_snr.add_metric([*lab, family], fam.snr_db)
-            if ind.shaft_hz is not None:
-                speed.add_metric(lab, ind.shaft_hz)
-            if r.iso_zone in ZONE_NUMBER:
-                zone.add_metric(lab, ZONE_NUMBER[r.iso_zone])
-            t = r.extra.get("trend", {}).get("velocity_rms_mm_s")
-            if t is not None:
-                trend.add_metric(lab, t / 1000.0)
+            for ind, si, fam in families:
+                for key, v in ind.values(r).items():
+                    if v is not None and math.isfinite(v):
+                        fam.add_metric([*lab, key] if key else lab, v * si.factor)
             last.add_metric(lab, r.t_end_ns / 1e9)
-        return [v_rms, v_pk, a_rms, a_pk, crest, kurt, orders, env_amp, env_snr, speed, zone, trend, last]
+        return [*(fam for _, _, fam in families), last]
 
     def _self_metrics(self) -> Iterable[Metric]:
         s = self.stats

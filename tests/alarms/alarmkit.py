@@ -53,7 +53,7 @@ class SimFrames:
             ind = analyze_frames(x[None, :], self.plans[p.id], shaft_hz=shaft_arr)[0]
             out.append(FrameResult(point_id=p.id, machine_id=p.machine, t_end_ns=t_end, received_ns=t_end,
                                    fs_hz=p.fs_hz, indicators=ind, iso_zone=None, samples=x,
-                                   extra={"axis": p.axis}))
+                                   axis=p.axis))
         return out
 
 
@@ -110,7 +110,7 @@ def frame_result(point: str, machine: str, t_s: float, velocity_mm_s: float, *, 
     x = 0.2 * np.sin(2 * np.pi * 24.75 * t) + 0.01 * rng.standard_normal(n)
     return FrameResult(point_id=point, machine_id=machine, t_end_ns=round(t_s * 1e9), received_ns=round(t_s * 1e9),
                        fs_hz=fs_hz, indicators=indicators(velocity_mm_s, **kw), iso_zone=None, samples=x,
-                       extra={"axis": "horizontal"})
+                       axis="horizontal")
 
 
 def small_config(state_dir: Path, *, alarms: dict[str, Any] | None = None, limits: dict[str, Any] | None = None,

@@ -41,7 +41,7 @@ def sine_result(point: str, machine: str, *, shaft_hz: float | None, zone: str |
         shaft_hz=shaft_hz, shaft_estimated=False, orders_mm_s=orders or {}, envelope=envelope or {})
     return FrameResult(point_id=point, machine_id=machine, t_end_ns=t_end_ns, received_ns=t_end_ns + 5_000_000,
                        fs_hz=fs_hz, indicators=ind, iso_zone=zone, samples=x,
-                       extra={"trend": {"velocity_rms_mm_s": 21.5}})
+                       trend={"velocity_rms_mm_s": 21.5})
 
 
 @pytest.fixture
@@ -81,7 +81,7 @@ async def test_namespace_layout_and_initial_status(sink: OpcUaIndicatorSink, cli
         f"envelope_{f}_{m}" for f in ("ftf", "bpfo", "bpfi", "bsf") for m in ("amplitude_g", "snr_db")}
     assert names == expected
     var = client.get_node(node_id_string(idx, SITE, "P-101", "P-101-DE-H", "velocity_rms_mm_s"))
-    assert (await var.read_description()).Text == "Velocity r.m.s. in the ISO 20816 band, mm/s"
+    assert (await var.read_description()).Text == "Velocity r.m.s. in the point's velocity band (ISO 20816), mm/s"
     assert await var.read_data_type_as_variant_type() == ua.VariantType.Double
     eu = await (await var.get_child("0:EngineeringUnits")).read_value()
     assert eu.DisplayName.Text == "mm/s"

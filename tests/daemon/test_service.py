@@ -265,8 +265,8 @@ def test_render_table_tty_and_plain(tmp_path: Path) -> None:
     latest = {"P-101-DE-H": FrameResult("P-101-DE-H", "P-101", 0, 0, 25600.0, ind, "C", np.zeros(4))}
     table = render_table(cfg, latest, lambda pid: "alert" if pid == "P-101-DE-H" else None, tty=True)
     header, _, row, waiting = table.splitlines()
-    assert header.split() == ["point", "sensor", "speed", "velocity", "mm/s", "crest", "kurtosis", "envelope",
-                              "alarm"]
+    assert header.split() == ["point", "sensor", "speed", "velocity", "mm/s", "zone", "crest", "kurtosis",
+                              "envelope", "alarm"]
     assert row.split() == ["P-101-DE-H", "piezo", "1479", "rpm", "3.10", "C", "3.00", "4.20", "bpfo", "18", "dB",
                            "alert"]
     assert waiting.split()[:2] == ["F-201-NDE-V", "mems"]

@@ -1,0 +1,121 @@
+"""The indicator registry drives every place an indicator is published, and README's reference tables."""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from prometheus_client import CollectorRegistry
+
+from edgevib.daemon.config import parse_config
+from edgevib.daemon.frames import Stats
+from edgevib.daemon.indicators import (
+    FAMILIES,
+    LIMITABLE,
+    REGISTRY,
+    Indicator,
+    document,
+    readme_blocks,
+    readme_tables,
+)
+from edgevib.daemon.interfaces import FrameResult
+from edgevib.daemon.service import render_table
+from edgevib.daemon.sinks.mqtt import indicator_document
+from edgevib.daemon.sinks.opcua import indicator_values
+from edgevib.daemon.sinks.prometheus import PrometheusSink
+from edgevib.pipelines.analysis import analyze_frames, make_plan
+from edgevib.pipelines.types import BearingGeometry
+
+README = Path(__file__).resolve().parents[2] / "README.md"
+FS, N, SHAFT_HZ = 25600.0, 16384, 24.75
+ORDERS = ("0.5x", "1x", "2x", "3x")
+
+
+def _frame() -> FrameResult:
+    """A frame where every indicator is available: a 1× line, and outer-race impacts for the envelope families
+    (a 6205 bearing at 24.75 Hz: BPFO = 3.5848 × fr, CWRU documentation; FIELD_NOTES §2)."""
+    t = np.arange(N) / FS
+    rng = np.random.default_rng(7)
+    x = 0.3 * np.sin(2 * np.pi * SHAFT_HZ * t) + 0.02 * rng.standard_normal(N)
+    bpfo = 3.5848 * SHAFT_HZ
+    x += 0.5 * np.sin(2 * np.pi * 4000.0 * t) * (1 + np.cos(2 * np.pi * bpfo * t))
+    plan = make_plan(FS, N, envelope_band_hz=(2500.0, 10000.0), bearing=BearingGeometry(9, 0.3126, 1.537),
+                     speed_range_hz=(10.0, 50.0))
+    ind = analyze_frames(x, plan, [SHAFT_HZ])[0]
+    return FrameResult("P-101-DE-H", "P-101", 1_764_633_600_000_000_000, 0, FS, ind, "B", x.astype(np.float32),
+                       axis="horizontal", trend={"velocity_rms_mm_s": ind.velocity_rms_mm_s or 0.0})
+
+
+def _keys(ind: Indicator) -> tuple[str, ...]:
+    return ORDERS if ind.per == "order" else FAMILIES if ind.per == "family" else ("",)
+
+
+def _has(doc: dict[str, Any], path: str, key: str) -> bool:
+    node: Any = doc
+    for part in (p.format(key=key) for p in path.split(".")):
+        if not isinstance(node, dict) or part not in node:
+            return False
+        node = node[part]
+    return node is not None
+
+
+def test_every_registry_entry_appears_where_it_says() -> None:
+    r = _frame()
+    assert all(v is not None and math.isfinite(v) for i in REGISTRY for v in i.values(r).values()
+               if i.per is None), "the test frame should make every scalar indicator available"
+    sink = PrometheusSink(site="quarry-lane", points=[], stats=Stats(), registry=CollectorRegistry(), serve=False)
+    sink.latest["P-101-DE-H"] = (("quarry-lane", "P-101", "P-101-DE-H", "horizontal"), r)
+    exposed = {s.name for fam in sink.collector.collect() for s in fam.samples}
+    mqtt = indicator_document("quarry-lane", "horizontal", r, ORDERS)
+    opcua = indicator_values(r)
+    report = document(r, "report", {"order": ORDERS})
+    cfg = parse_config({
+        "sources": [{"name": "sim", "type": "simulated"}],
+        "machines": [{"id": "P-101", "group": 2, "support": "rigid", "speed_rpm": 1485.0}],
+        "points": [{"id": "P-101-DE-H", "machine": "P-101", "source": "sim", "fs_hz": FS, "block_samples": 4096,
+                    "bearing": {"elements": 9, "ball_diameter_mm": 7.94, "pitch_diameter_mm": 39.04},
+                    "limits": {name: {"alert": 1.0} for name in LIMITABLE}}]}, plans=True)
+    limited = {lim.indicator for lim in cfg.alarm_settings.limits}
+    table = render_table(cfg, {"P-101-DE-H": r}, lambda _p: None, tty=False)
+    generated = "\n".join(readme_tables().values())
+    for ind in REGISTRY:
+        places = [ind.prometheus, ind.mqtt, ind.opcua, ind.report, ind.fault, ind.demo]
+        assert any(p is not None for p in places), f"{ind.name} is published nowhere"
+        if ind.prometheus is not None and ind.si is not None:
+            name = f"edgevib_{ind.prometheus}" + (f"_{ind.si.suffix}" if ind.si.suffix else "")
+            assert name in exposed and f"`{name}`" in generated, ind.name
+        for key in _keys(ind):
+            have = key in ind.values(r) and ind.values(r)[key] is not None
+            if ind.mqtt is not None and have:
+                assert _has(mqtt, ind.mqtt, key), (ind.name, key)
+            if ind.mqtt_si is not None and have:
+                assert _has(mqtt, ind.mqtt_si, key), (ind.name, key)
+            if ind.opcua is not None:
+                assert ind.opcua.format(key=key) in opcua, (ind.name, key)
+            if ind.report is not None and have:
+                assert _has(report, ind.report, key), (ind.name, key)
+        if ind.fault is not None:
+            assert ind.name in limited and f"`{ind.name}`" in generated, ind.name
+        if ind.demo is not None:
+            assert f" {ind.demo.key}=" in table, ind.name
+
+
+def test_readme_reference_tables_match_the_registry() -> None:
+    # refresh with: python -m edgevib.daemon.indicators README.md
+    blocks = readme_blocks(README.read_text(encoding="utf-8"))
+    assert blocks == readme_tables()
+
+
+def test_unavailable_values_are_absent_or_null() -> None:
+    r = _frame()
+    none = FrameResult(r.point_id, r.machine_id, r.t_end_ns, 0, FS,
+                       type(r.indicators)(**{**{f: getattr(r.indicators, f) for f in
+                                               r.indicators.__dataclass_fields__},
+                                            "shaft_hz": None, "orders_mm_s": {}, "envelope": {}}),
+                       None, r.samples)
+    doc = indicator_document("quarry-lane", "horizontal", none, ORDERS)
+    assert doc["shaft_speed_hz"] is None and doc["envelope"] is None and doc["iso_zone"] is None
+    assert doc["orders_velocity_rms_mm_s"] == dict.fromkeys(ORDERS)
+    assert indicator_values(none)["iso_zone"][0] is None
