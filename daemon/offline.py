@@ -409,7 +409,7 @@ def _analyze(args: argparse.Namespace) -> dict[str, Any]:
         shaft_source = "estimated from the spectrum"
 
     frame = FrameResult(point_id="", machine_id="", t_end_ns=0, received_ns=0, fs_hz=fs, indicators=ind,
-                        iso_zone=None, samples=x_g)
+                        iso_zone=None, samples=x_g.astype(np.float32))
     values = document(frame, "report", {"order": [order_key(o) for o in plan.orders]})  # the registry's report keys
     result: dict[str, Any] = {
         "file": str(args.file), "signal": wave.source, "unit": unit, "fs_hz": fs, "n_samples": int(x_g.size),
