@@ -646,6 +646,10 @@ def level_summary(rows: list[Row]) -> dict[str, Any]:
             "latency_p99_ms": max(r.latency_p99_ms for r in rows), "dropped": sum(r.dropped for r in rows),
             "rejected": sum(r.rejected for r in rows), "cpu_cores": round(cores, 2),
             "channels_per_core": round(channels / cores, 1) if cores > 0 else math.nan,
+            # what the CPU actually did: channels' worth of frames analysed per core-second (a capacity figure
+            # that holds even when a starved level is not sustained)
+            "analysed_channels_per_core": round(sum(r.channels * r.frames_per_s / r.expected_frames_per_s
+                                                    for r in rows) / cores, 1) if cores > 0 else math.nan,
             "mem_per_channel_mb": round(sum(r.mem_per_channel_mb * r.channels for r in rows) / max(1, channels), 3),
             "publisher_cores": rows[0].publisher_cores}
 
@@ -701,11 +705,12 @@ def _print_level(rows: list[Row], header: bool) -> None:
         print(" ".join(str(d[k]).rjust(w) for k, w in _COLUMNS), flush=True)
         print("      threads (cores): " + ", ".join(f"{k} {v}" for k, v in sorted(row.thread_cores.items())
                                                     if v >= 0.005), flush=True)
-    if len(rows) > 1:
+    if rows:
         s = level_summary(rows)
-        print(f"  all {s['instances']} instances: {s['channels']} channels, {s['frames_per_s']} of "
+        print(f"  {s['instances']} instance(s): {s['channels']} channels, {s['frames_per_s']} of "
               f"{s['expected_frames_per_s']} frames/s, p99 {s['latency_p99_ms']} ms, {s['cpu_cores']} cores "
-              f"({s['channels_per_core']} channels per core), {s['mem_per_channel_mb']} MB per channel, "
+              f"({s['channels_per_core']} channels per core; frames analysed per core-second worth "
+              f"{s['analysed_channels_per_core']} channels), {s['mem_per_channel_mb']} MB per channel, "
               f"sustained {s['sustained']}", flush=True)
 
 
