@@ -14,7 +14,8 @@ def test_bench_rows_are_well_formed() -> None:
     assert [(r["samples"], r["channels"]) for r in rows] == [(4096, 1), (4096, 2)]
     for r in rows:
         assert set(r) == {"samples", "channels", "pipeline_us_per_block", "rfft_us_per_block", "ratio",
-                          "scipy_rfft_us_per_block", "peer_us_per_block", "peer_ratio"}
+                          "scipy_rfft_us_per_block", "peer_us_per_block", "peer_ratio",
+                          "pipeline_f32_us_per_block", "ratio_f32"}
         assert r["pipeline_us_per_block"] > 0 and r["rfft_us_per_block"] > 0
         assert r["ratio"] == pytest.approx(r["pipeline_us_per_block"] / r["rfft_us_per_block"], rel=0.02)
         assert r["peer_ratio"] == pytest.approx(r["peer_us_per_block"] / r["pipeline_us_per_block"], rel=0.02)
