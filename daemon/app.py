@@ -21,23 +21,25 @@ bounds (:class:`SinkChannel`):
   keeps at most :data:`SINK_BACKLOG_PER_POINT` undelivered results per point (or the newest batch's results of
   that point when there are more: a sink that keeps up misses nothing); when it falls further behind, the
   oldest undelivered ones are dropped and counted (``Stats.sink_dropped[(sink, point)]``);
-* a *lossless* sink (attribute ``lossless = True``: the alarm layer, whose debounce, baselines and sensor-health
-  runs must see every analysed frame in order) drops nothing.  Its queue is bounded instead by pausing the
+* a *lossless* sink (:class:`~edgevib.daemon.interfaces.LosslessSink`, added with ``add_lossless_sink``: the
+  alarm layer, whose debounce, baselines and sensor-health runs must see every analysed frame in order) drops
+  nothing.  Its queue is bounded instead by pausing the
   scheduler: while it holds more than :data:`LOSSLESS_BACKLOG` results no new analysis batch starts, frames wait
   in the per-point ingest queues, and those drop their oldest frames (counted as ``frames_dropped``) as they
   always do when analysis falls behind.  So a frame is either seen by every sink that must see it or dropped
   before analysis for everyone — never silently missing from the alarm history only;
-* a sink with a cost per call (attribute ``batch_window_s``: the alarm layer's health checks and SQLite commit)
+* a lossless sink with a cost per call (its ``batch_window_s``: the alarm layer's health checks and SQLite commit)
   gets results gathered for up to that long or :data:`MAX_BATCH` results, rather than one call per analysis
   batch (which holds one or two frames when analysis keeps up).
 
 A sink that fails is logged (rate-limited) and never stops the others.  :meth:`Daemon.reload` applies a new
 configuration while points whose configuration is unchanged keep their assembly buffers, queues and trends.
 
-Seams for other layers: ``Daemon.add_sink`` (before ``start``); the alarm layer's factory
-``edgevib.daemon.alarms.sink.create_sink(config, daemon) -> FrameSink | None`` (None when alarms are off); any sink
-with a ``state_text(point_id) -> str | None`` method feeds the demo table's alarm column; ``on_ready`` /
-``on_stopping`` callbacks (systemd notifications).
+Seams for other layers (contracts in :mod:`edgevib.daemon.interfaces`): ``Daemon.add_sink`` and
+``add_lossless_sink`` (before ``start``); parts that take a reload are listed as ``Reconfigurable`` where they are
+wired; the alarm layer's factory ``edgevib.daemon.alarms.sink.create_sink(config, registry)`` (None when alarms
+are off) also gives the ``AlarmView`` of the demo table's alarm column; ``on_ready`` / ``on_stopping`` callbacks
+(systemd notifications).
 """
 
 from __future__ import annotations
@@ -51,7 +53,7 @@ from collections import deque
 from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, assert_never
 
 import numpy as np
 import numpy.typing as npt
@@ -63,10 +65,18 @@ from edgevib.daemon.config import (
     OpcUaSourceConfig,
     PointConfig,
     SimulatedSourceConfig,
+    SourceConfig,
 )
 from edgevib.daemon.frames import BlockIngest, EwTrend, FrameJob, PointStream, Stats
 from edgevib.daemon.indicators import REGISTRY
-from edgevib.daemon.interfaces import ConfigError, FrameResult, FrameSink, Source
+from edgevib.daemon.interfaces import (
+    AlarmView,
+    FrameResult,
+    FrameSink,
+    LosslessSink,
+    Reconfigurable,
+    Source,
+)
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 from edgevib.pipelines.types import AnalysisPlan, FrameIndicators, PipelineError
 
@@ -103,12 +113,12 @@ def _iso_zone(v_mm_s: float, machine: MachineConfig) -> str | None:
 class SinkChannel:
     """The delivery queue and task of one sink (see the module docstring for ordering and bounds)."""
 
-    def __init__(self, sink: FrameSink, stats: Stats, rlog: RateLimitedLogger,
-                 on_delivered: Callable[[], None]) -> None:
+    def __init__(self, sink: FrameSink, stats: Stats, rlog: RateLimitedLogger, on_delivered: Callable[[], None],
+                 *, lossless: bool = False, window_s: float = 0.0) -> None:
         self.sink = sink
         self.name = type(sink).__name__
-        self.lossless = bool(getattr(sink, "lossless", False))
-        self.window_s = float(getattr(sink, "batch_window_s", 0.0) or 0.0)
+        self.lossless = lossless
+        self.window_s = window_s
         self.stats = stats
         self.rlog = rlog
         self._on_delivered = on_delivered
@@ -227,6 +237,9 @@ class Daemon:
         self.points: dict[str, _PointState] = {}
         self.latest: dict[str, FrameResult] = {}
         self.sinks: list[FrameSink] = []
+        self._lossless: dict[int, float] = {}  # id of each lossless sink → its batch window, s
+        self._reconfigurable: list[Reconfigurable] = []
+        self.alarm_view: AlarmView | None = None
         self.sources: list[Source] = []
         self._given_sources = list(sources) if sources is not None else None
         self._source_tasks: dict[str, asyncio.Task[None]] = {}
@@ -253,7 +266,8 @@ class Daemon:
             site=config.site.name, points=config.points, stats=self.stats, registry=registry, host=host, port=port,
             ready=self.readiness, tls_cert_file=config.metrics.tls_cert_file, tls_key_file=config.metrics.tls_key_file,
             tls_client_ca_file=config.metrics.tls_client_ca_file, clock_ns=clock_ns, serve=serve_metrics)
-        self.sinks.append(self.metrics)
+        self.add_sink(self.metrics)
+        self._reconfigurable.append(self.metrics)
         self._add_configured_sinks(config)
 
     # ------------------------------------------------------------------------------------------ set-up
@@ -284,20 +298,33 @@ class Daemon:
         if config.publish_mqtt.enabled:
             from edgevib.daemon.sinks.mqtt import MqttIndicatorSink
 
-            self.sinks.append(MqttIndicatorSink.from_config(config))
+            mqtt = MqttIndicatorSink.from_config(config)
+            self.add_sink(mqtt)
+            self._reconfigurable.append(mqtt)
         if config.publish_opcua.enabled:
             from edgevib.daemon.sinks.opcua import OpcUaIndicatorSink  # asyncua loads only when configured
 
-            self.sinks.append(_make_opcua_sink(OpcUaIndicatorSink, config))
+            pc = config.publish_opcua
+            opcua = OpcUaIndicatorSink(listen=pc.listen, host=pc.host, port=pc.port, namespace=pc.namespace,
+                                       site=config.site.name, points={p.id: p for p in config.points})
+            self.add_sink(opcua)
+            self._reconfigurable.append(opcua)
         from edgevib.daemon.alarms.sink import create_sink
 
-        sink = create_sink(config, self)
-        if sink is not None:
-            self.sinks.append(sink)
+        alarms = create_sink(config, self.metrics.registry)
+        if alarms is not None:
+            self.add_lossless_sink(alarms)
+            self._reconfigurable.append(alarms)
+            self.alarm_view = alarms
 
     def add_sink(self, sink: FrameSink) -> None:
-        """Add a sink (the alarm layer, a test probe); call before :meth:`start`."""
+        """Add a lossy sink (it shows the latest values: see the module docstring); call before :meth:`start`."""
         self.sinks.append(sink)
+
+    def add_lossless_sink(self, sink: LosslessSink) -> None:
+        """Add a sink that must see every frame (see the module docstring); call before :meth:`start`."""
+        self.sinks.append(sink)
+        self._lossless[id(sink)] = sink.batch_window_s
 
     def _make_sources(self, config: Config) -> list[Source]:
         if self._given_sources is not None:
@@ -322,7 +349,8 @@ class Daemon:
                     await sink.stop()
             self._executor.shutdown(wait=False, cancel_futures=True)
             raise
-        self._channels = [SinkChannel(sink, self.stats, self.rlog, self._wake.set) for sink in self.sinks]
+        self._channels = [SinkChannel(sink, self.stats, self.rlog, self._wake.set, lossless=id(sink) in self._lossless,
+                                      window_s=self._lossless.get(id(sink), 0.0)) for sink in self.sinks]
         for ch in self._channels:
             ch.start()
         self._scheduler = loop.create_task(self._schedule(), name="edgevib-scheduler")
@@ -412,15 +440,8 @@ class Daemon:
         return True, f"{len(names)} source(s) connected"
 
     def state_text(self, point_id: str) -> str | None:
-        """Alarm state text of a point from any sink offering ``state_text`` (the demo's alarm column)."""
-        for sink in self.sinks:
-            fn = getattr(sink, "state_text", None)
-            if callable(fn):
-                with contextlib.suppress(Exception):
-                    text = fn(point_id)
-                    if text is not None:
-                        return str(text)
-        return None
+        """Alarm state text of a point (the demo's alarm column); ``None`` without an alarm layer."""
+        return self.alarm_view.state_text(point_id) if self.alarm_view is not None else None
 
     # ------------------------------------------------------------------------------------------ reload
 
@@ -436,9 +457,6 @@ class Daemon:
         self._counted = {pid: len(stream.queue) for pid, stream in streams.items()}
         self._queued_frames = sum(self._counted.values())
         self._ready = {pid: t for pid, t in self._ready.items() if self._counted.get(pid)}
-        self.metrics.site = config.site.name
-        self.metrics.collector.site = config.site.name
-        self.metrics.set_points(config.points)
         for pid in [pid for pid in self.latest if pid not in self.points]:
             self.latest.pop(pid)
         if self._given_sources is None:
@@ -459,13 +477,11 @@ class Daemon:
                     src = make_source(scfg, config, self.ingest)
                     self.sources.append(src)
                     self._start_source(src)
-        for sink in self.sinks:
-            fn = getattr(sink, "reconfigure", None)
-            if callable(fn):
-                with contextlib.suppress(Exception):
-                    res = fn(config)
-                    if asyncio.iscoroutine(res):
-                        await res
+        for part in self._reconfigurable:
+            try:
+                await part.reconfigure(config)
+            except Exception as exc:  # one part's failure must not stop the others taking the new configuration
+                log.error("reconfiguration failed", part=type(part).__name__, error=repr(exc))
         log.info("configuration reloaded", points=len(self.points), kept=len(unchanged_points))
 
     # ------------------------------------------------------------------------------------------ analysis
@@ -605,7 +621,7 @@ class Daemon:
 # ---------------------------------------------------------------------------------------------- factories
 
 
-def make_source(cfg: Any, config: Config, ingest: BlockIngest) -> Source:
+def make_source(cfg: SourceConfig, config: Config, ingest: BlockIngest) -> Source:
     """Build the source of one ``[[sources]]`` entry."""
     speed_tags = [m.speed_tag.tag for m in config.machines if m.speed_tag is not None
                   and m.speed_tag.source == cfg.name]
@@ -620,7 +636,7 @@ def make_source(cfg: Any, config: Config, ingest: BlockIngest) -> Source:
                 if m.speed_tag is not None and m.speed_tag.source == cfg.name}
         return SimulatedSource(name=cfg.name, ingest=ingest, scenario=cfg.scenario, seed=cfg.seed, rate=cfg.rate,
                                speed_tags=tags)
-    if isinstance(cfg, OpcUaSourceConfig):
+    if isinstance(cfg, OpcUaSourceConfig):  # the last kind: the configuration's union has no other
         from edgevib.daemon.sources.opcua import NodeSpec, OpcUaSource  # asyncua loads only when configured
 
         nodes = {p.node: NodeSpec(sensor_id=p.sensor, fs_hz=p.fs_hz, unit=p.unit) for p in config.points
@@ -633,14 +649,7 @@ def make_source(cfg: Any, config: Config, ingest: BlockIngest) -> Source:
             password=cfg.password.reveal() if cfg.password is not None else None,
             reconnect_min_s=cfg.reconnect_min_s, reconnect_max_s=cfg.reconnect_max_s)
         return source
-    raise ConfigError("sources", f"unsupported source type {getattr(cfg, 'type', '?')!r}")
-
-
-def _make_opcua_sink(cls: Any, config: Config) -> FrameSink:
-    pc = config.publish_opcua
-    sink: FrameSink = cls(listen=pc.listen, host=pc.host, port=pc.port, namespace=pc.namespace,
-                          site=config.site.name, points={p.id: p for p in config.points})
-    return sink
+    assert_never(cfg)
 
 
 async def run(config: Config, *, metrics_listen: tuple[str, int] | None = None,

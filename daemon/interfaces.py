@@ -6,7 +6,7 @@ talks to the others only through what is named here.
 
 from __future__ import annotations
 
-from collections.abc import Awaitable, Callable, Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Protocol, runtime_checkable
 
@@ -17,15 +17,19 @@ from edgevib.daemon.errors import ConfigError, EdgevibError, SourceError
 from edgevib.daemon.wire import Block
 
 if TYPE_CHECKING:  # the configuration imports this module and must not load the numerical core
+    from edgevib.daemon.config import Config
     from edgevib.pipelines.types import FrameIndicators
 
 __all__ = [
+    "AlarmView",
     "BlockHandler",
     "ConfigError",
     "EdgevibError",
     "FrameResult",
     "FrameSink",
     "Ingest",
+    "LosslessSink",
+    "Reconfigurable",
     "Source",
     "SourceError",
 ]
@@ -100,9 +104,12 @@ class Source(Protocol):
     async def stop(self) -> None: ...
 
 
-@runtime_checkable
 class FrameSink(Protocol):
-    """Receives every analysed frame (Prometheus, MQTT metrics, OPC UA server, the alarm layer)."""
+    """Receives analysed frames (Prometheus, MQTT indicator publishing, the OPC UA server, test probes).
+
+    A plain sink is *lossy*: it shows the latest values, and when it falls behind the oldest undelivered results
+    are dropped and counted (``app.SinkChannel``).  ``on_frames`` gets a point's results in frame order.
+    """
 
     async def start(self) -> None: ...
 
@@ -111,4 +118,23 @@ class FrameSink(Protocol):
     async def stop(self) -> None: ...
 
 
-StopCallback = Callable[[], Awaitable[None]]
+class LosslessSink(FrameSink, Protocol):
+    """A sink that must see every analysed frame in order (the alarm layer: debounce, baselines, sensor-health
+    runs).  The daemon pauses analysis rather than drop a result for it, and hands it results gathered for up to
+    ``batch_window_s`` (0: as they come) when a call has a cost of its own (a commit)."""
+
+    @property
+    def batch_window_s(self) -> float: ...
+
+
+class Reconfigurable(Protocol):
+    """A part that takes a new configuration on reload (SIGHUP) without restarting."""
+
+    async def reconfigure(self, config: Config) -> None: ...
+
+
+class AlarmView(Protocol):
+    """Read-only alarm state for displays (the demo table's alarm column)."""
+
+    def state_text(self, point_id: str) -> str | None: ...
+

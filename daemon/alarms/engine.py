@@ -52,6 +52,7 @@ from edgevib.daemon.alarms.feed import (
 )
 from edgevib.daemon.alarms.outbox import Database, Outbox, OutboxEvent
 from edgevib.daemon.alarms.state import Baseline, SensorState, StateStore, restart_tracking
+from edgevib.daemon.config import Config
 from edgevib.daemon.indicators import LIMITABLE
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.timestamps import rfc3339_utc_s
@@ -165,7 +166,7 @@ class AlarmLayer:
     lossless = True
     batch_window_s = 0.1  # frames gathered per call: one commit and one vectorized health check for many frames
 
-    def __init__(self, config: Any, settings: AlarmSettings | None = None, *, registry: Any = None,
+    def __init__(self, config: Config, settings: AlarmSettings | None = None, *, registry: Any = None,
                  clock: Callable[[], float] = time.time, monotonic: Callable[[], float] = time.monotonic) -> None:
         if settings is None:
             settings = config.alarm_settings
@@ -285,9 +286,9 @@ class AlarmLayer:
                 self.db.close()
             self.db = None
 
-    def reconfigure(self, config: Any) -> None:
+    async def reconfigure(self, config: Config) -> None:
         """A reload keeps the running layer; new limits take effect on the next start (logged)."""
-        if getattr(config, "alarms", None) != self.settings:
+        if replace(config.alarm_settings, config_digest=self.settings.config_digest) != self.settings:
             log.warning("alarm settings changed; restart edgevib to apply them")
 
     # ------------------------------------------------------------------------------------------ limits

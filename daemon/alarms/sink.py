@@ -1,8 +1,8 @@
-"""The daemon's seam for the alarm layer: ``create_sink(config, daemon)`` (called by ``edgevib.daemon.app``)."""
+"""The daemon's seam for the alarm layer: ``create_sink(config, registry)`` (called by ``edgevib.daemon.app``)."""
 
 from __future__ import annotations
 
-from typing import Any
+from prometheus_client import CollectorRegistry
 
 from edgevib.daemon.alarms.engine import AlarmLayer
 from edgevib.daemon.config import Config
@@ -10,11 +10,10 @@ from edgevib.daemon.config import Config
 __all__ = ["create_sink"]
 
 
-def create_sink(config: Config, daemon: Any = None) -> AlarmLayer | None:
+def create_sink(config: Config, registry: CollectorRegistry | None = None) -> AlarmLayer | None:
     """The alarm layer for a configuration (``None`` when ``[alarms] enabled = false``); its Prometheus collector
-    is registered on the daemon's metrics registry when the layer starts."""
+    is registered on ``registry`` (the daemon's metrics registry) when the layer starts."""
     settings = config.alarm_settings
     if not settings.enabled:
         return None
-    metrics = getattr(daemon, "metrics", None)
-    return AlarmLayer(config, settings, registry=getattr(metrics, "registry", None))
+    return AlarmLayer(config, settings, registry=registry)

@@ -80,14 +80,18 @@ class MqttIndicatorSink:
         sink = cls(site=config.site.name, connection=pc.connection, topic=pc.topic, qos=pc.qos, retain=pc.retain,
                    message_expiry_s=pc.message_expiry_s,
                    availability_topic=pc.availability_topic.format(site=config.site.name))
-        sink.reconfigure(config)
+        sink._configure(config)
         return sink
 
     @property
     def connected(self) -> bool:
         return self.link.connected
 
-    def reconfigure(self, config: Config) -> None:
+    async def reconfigure(self, config: Config) -> None:
+        """After a reload: the site, topic and points (the broker connection stays until a restart)."""
+        self._configure(config)
+
+    def _configure(self, config: Config) -> None:
         self.site = config.site.name
         self.topic = config.publish_mqtt.topic
         self.points = {p.id: (p.axis, tuple(_order_key(o) for o in p.orders)) for p in config.points}

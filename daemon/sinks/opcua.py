@@ -40,6 +40,7 @@ from asyncua.common.node import Node
 from asyncua.server.server import Server
 from asyncua.ua.status_codes import StatusCodes
 
+from edgevib.daemon.config import Config
 from edgevib.daemon.indicators import FAMILIES, REGISTRY, Indicator
 from edgevib.daemon.interfaces import ConfigError, FrameResult
 
@@ -87,7 +88,7 @@ def _points_of(points: Iterable[tuple[str, str]] | Mapping[str, Any]) -> list[tu
     out: list[tuple[str, str, tuple[str, ...]]] = []
     if isinstance(points, Mapping):
         for pid, cfg in points.items():
-            orders = tuple(f"{float(o):g}x" for o in getattr(cfg, "orders", ())) or DEFAULT_ORDERS
+            orders = tuple(f"{float(o):g}x" for o in cfg.orders) or DEFAULT_ORDERS
             out.append((str(pid), str(cfg.machine), orders))
     else:
         out = [(str(pid), str(mid), DEFAULT_ORDERS) for pid, mid in points]
@@ -168,7 +169,7 @@ class OpcUaIndicatorSink:
             with contextlib.suppress(Exception):
                 await server.stop()
 
-    async def reconfigure(self, config: Any) -> None:
+    async def reconfigure(self, config: Config) -> None:
         """After a configuration reload: remove the objects of points no longer configured (or moved to another
         machine) and add the new points; untouched points keep their variables and values."""
         if self._server is None:

@@ -28,7 +28,7 @@ from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Histo
 from prometheus_client.exposition import choose_encoder
 
 from edgevib.daemon import __version__
-from edgevib.daemon.config import PointConfig
+from edgevib.daemon.config import Config, PointConfig
 from edgevib.daemon.frames import Stats
 from edgevib.daemon.indicators import REGISTRY, Indicator, Si, meaning
 from edgevib.daemon.interfaces import FrameResult
@@ -225,6 +225,11 @@ class PrometheusSink:
         self._serve = serve
         self._server_args = (host, port, tls_cert_file, tls_key_file, tls_client_ca_file)
         self.server: MetricsServer | None = None
+
+    async def reconfigure(self, config: Config) -> None:
+        """After a reload: the site label and the configured points (the listener stays)."""
+        self.site = self.collector.site = config.site.name
+        self.set_points(config.points)
 
     def set_points(self, points: Iterable[PointConfig]) -> None:
         """(Re)declare the configured points; removed points vanish from the exposition."""

@@ -228,9 +228,10 @@ def test_one_startup_warning_for_a_point_without_envelope_band(tmp_path: Path) -
 class Gate(Probe):
     """A sink that blocks inside its first ``on_frames`` until released (a slow historian, a busy alarm layer)."""
 
-    def __init__(self, lossless: bool = False) -> None:
+    batch_window_s = 0.0  # as a lossless sink: results handed over as they come
+
+    def __init__(self) -> None:
         super().__init__()
-        self.lossless = lossless
         self.release = asyncio.Event()
         self.entered = asyncio.Event()
 
@@ -247,9 +248,10 @@ def frames_of(blocks: int, frame: int = 16384, hop: int = 8192) -> int:
 async def gated_daemon(tmp_path: Path, **analysis: Any) -> tuple[Daemon, Probe, Gate, Gate]:
     cfg = config(tmp_path, **analysis)
     d = Daemon(cfg, registry=CollectorRegistry(), serve_metrics=False, sources=[])
-    probe, lossy, lossless = Probe(), Gate(), Gate(lossless=True)
-    for s in (lossy, lossless, probe):
-        d.add_sink(s)
+    probe, lossy, lossless = Probe(), Gate(), Gate()
+    d.add_sink(lossy)
+    d.add_lossless_sink(lossless)
+    d.add_sink(probe)
     await d.start()
     return d, probe, lossy, lossless
 
