@@ -577,11 +577,10 @@ class Daemon:
                      else None for j in jobs]
             shaft_arr = None if all(s is None for s in shaft) else \
                 np.array([math.nan if s is None else s for s in shaft], dtype=np.float64)
-            x = np.stack([j.samples for j in jobs], dtype=np.float32)  # one array per batch: each result's
-            x.flags.writeable = False  # samples are a read-only view of its row
             loop = asyncio.get_running_loop()
             try:
-                indicators = await loop.run_in_executor(self._executor, self.analyze, x, plan, shaft_arr)
+                x, indicators = await loop.run_in_executor(self._executor, self._stack_and_analyze,
+                                                           [j.samples for j in jobs], plan, shaft_arr)
             except Exception as exc:
                 for pid in pids:
                     Stats.inc(self.stats.analysis_errors, pid, sum(1 for j in jobs if j.point_id == pid))
@@ -593,6 +592,15 @@ class Daemon:
                 self._publish(results)
         finally:
             self._release(pids)
+
+    def _stack_and_analyze(self, frames: list[npt.NDArray[np.float32]], plan: AnalysisPlan,
+                           shaft_hz: npt.NDArray[np.float64] | None,
+                           ) -> tuple[npt.NDArray[np.float32], list[FrameIndicators]]:
+        """In the worker thread: one array per batch (each result's samples a read-only view of its row), then
+        the analysis — the batch's copy stays off the event loop too."""
+        x = np.stack(frames, dtype=np.float32)
+        x.flags.writeable = False
+        return x, self.analyze(x, plan, shaft_hz)
 
     def _results(self, jobs: list[FrameJob], indicators: list[FrameIndicators],
                  frames: npt.NDArray[np.float32]) -> list[FrameResult]:
