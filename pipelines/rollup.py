@@ -1,0 +1,248 @@
+"""Roll-up statistics of indicator values: count, min, mean, max and percentiles per time bucket.
+
+Two ways to a percentile:
+
+* :func:`summarize` — exact (``numpy.percentile``, linear interpolation) over a batch held in memory, used for
+  short buckets (a minute of frames);
+* :class:`LogSketch` — a mergeable quantile sketch with logarithmic bins (the DDSketch construction: Masson,
+  Rim & Lee, "DDSketch: a fast and fully-mergeable quantile sketch with relative-error guarantees", PVLDB 12
+  (2019)): a value v > 0 falls in bin i = ⌈log_γ v⌉ with γ = (1 + α)/(1 − α), and the bin's representative
+  2γⁱ/(γ + 1) is within a relative error α of every value in it.  Negative values use a mirrored set of bins and
+  zeros their own count.  Used for long buckets (hours, days) that would not fit in memory as raw values; its
+  state is a few integers per occupied bin and can be stored and restored.
+
+Shapes: a batch is ``(n_values, n_indicators)``; NaN marks a missing value of one indicator (not counted).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+import numpy.typing as npt
+
+from edgevib.pipelines.types import PipelineError
+
+__all__ = ["STAT_FIELDS", "LogSketch", "RollupError", "summarize"]
+
+FloatArray = npt.NDArray[np.float64]
+STAT_FIELDS: tuple[str, ...] = ("count", "min", "mean", "max", "p50", "p_high")
+"""Rows of a summary array (see :func:`summarize`)."""
+
+
+class RollupError(PipelineError):
+    """Invalid roll-up input."""
+
+
+def summarize(values: npt.ArrayLike, high_percentile: float = 95.0) -> FloatArray:
+    """Statistics of a batch per indicator: array (6, n_indicators) with rows :data:`STAT_FIELDS`.
+
+    ``values``: shape (n, n_indicators) (or (n,) for one indicator); NaN = missing.  Percentiles are exact
+    (``numpy.percentile``, linear interpolation).  An indicator without values gets count 0 and NaN elsewhere.
+    """
+    x = np.asarray(values, dtype=np.float64)
+    if x.ndim == 1:
+        x = x[:, None]
+    if x.ndim != 2:
+        raise RollupError(f"values must be (n, indicators), got shape {x.shape}")
+    if not 0.0 < high_percentile < 100.0:
+        raise RollupError(f"high percentile {high_percentile!r} must be within (0, 100)")
+    out = np.full((len(STAT_FIELDS), x.shape[1]), np.nan)
+    if x.shape[0] == 1:  # one value per indicator: every statistic is that value
+        ok = np.isfinite(x[0])
+        out[0] = ok
+        out[1:, ok] = x[0, ok]
+        return out
+    finite = np.isfinite(x)
+    count = finite.sum(axis=0)
+    out[0] = count
+    have = count > 0
+    if not np.any(have):
+        return out
+    xs = np.where(finite, x, np.inf)[:, have]
+    srt = np.sort(xs, axis=0)  # the missing values (as +inf) at the end of each column
+    c = count[have]
+    cols = np.arange(srt.shape[1])
+    out[1, have] = srt[0]
+    out[3, have] = srt[c - 1, cols]
+    out[2, have] = np.where(finite, x, 0.0)[:, have].sum(axis=0) / c
+    for row, q in ((4, 50.0), (5, high_percentile)):
+        # numpy.percentile's default (linear): position q/100 · (n − 1) between the order statistics
+        pos = q / 100.0 * (c - 1)
+        lo = np.floor(pos).astype(np.int64)
+        hi = np.minimum(lo + 1, c - 1)
+        frac = pos - lo
+        out[row, have] = srt[lo, cols] + frac * (srt[hi, cols] - srt[lo, cols])
+    return out
+
+
+@dataclass
+class LogSketch:
+    """Count, min, max, sum and a logarithmic-bin quantile sketch of one indicator's values.
+
+    ``alpha`` is the relative accuracy of quantiles (default 1 %).  :meth:`add` takes a batch; :meth:`merge`
+    another sketch with the same ``alpha``; :meth:`quantile` answers within the relative accuracy.
+    """
+
+    alpha: float = 0.01
+    count: int = 0
+    zeros: int = 0
+    total: float = 0.0
+    vmin: float = math.inf
+    vmax: float = -math.inf
+    pos: dict[int, int] = field(default_factory=dict)
+    neg: dict[int, int] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        if not 0.0 < self.alpha < 0.5:
+            raise RollupError(f"sketch accuracy {self.alpha!r} must be within (0, 0.5)")
+        self._gamma = (1.0 + self.alpha) / (1.0 - self.alpha)
+        self._log_gamma = math.log(self._gamma)
+
+    def add(self, values: npt.ArrayLike) -> None:
+        """Add a batch of values (non-finite ones are ignored)."""
+        v = np.asarray(values, dtype=np.float64).reshape(-1)
+        v = v[np.isfinite(v)]
+        if v.size == 0:
+            return
+        self.count += int(v.size)
+        self.total += float(v.sum())
+        self.vmin = min(self.vmin, float(v.min()))
+        self.vmax = max(self.vmax, float(v.max()))
+        self.zeros += int(np.count_nonzero(v == 0))
+        if v.size == 1:  # one value (a sparse bucket): no array machinery
+            x = float(v[0])
+            if x != 0:
+                store = self.pos if x > 0 else self.neg
+                k = math.ceil(math.log(abs(x)) / self._log_gamma)
+                store[k] = store.get(k, 0) + 1
+            return
+        for sign, store in ((1.0, self.pos), (-1.0, self.neg)):
+            part = v[v * sign > 0] * sign
+            if part.size:
+                idx = np.ceil(np.log(part) / self._log_gamma).astype(np.int64)
+                keys, counts = np.unique(idx, return_counts=True)
+                for k, c in zip(keys.tolist(), counts.tolist(), strict=True):
+                    store[k] = store.get(k, 0) + c
+
+    @staticmethod
+    def add_columns(sketches: list[LogSketch], values: npt.ArrayLike) -> None:
+        """Add a batch (n, len(sketches)) to one sketch per column at once (same accuracy for all)."""
+        x = np.asarray(values, dtype=np.float64)
+        if x.ndim != 2 or x.shape[1] != len(sketches):
+            raise RollupError(f"values of shape {x.shape} do not match {len(sketches)} sketches")
+        if not sketches or x.shape[0] == 0:
+            return
+        if x.shape[0] == 1:  # one row (a sparse bucket): plain Python is quicker than array machinery
+            for sk, v in zip(sketches, x[0].tolist(), strict=True):
+                if math.isfinite(v):
+                    sk.count += 1
+                    sk.total += v
+                    sk.vmin = min(sk.vmin, v)
+                    sk.vmax = max(sk.vmax, v)
+                    if v == 0:
+                        sk.zeros += 1
+                    else:
+                        store = sk.pos if v > 0 else sk.neg
+                        k = math.ceil(math.log(abs(v)) / sk._log_gamma)
+                        store[k] = store.get(k, 0) + 1
+            return
+        finite = np.isfinite(x)
+        counts = finite.sum(axis=0)
+        xf = np.where(finite, x, 0.0)
+        totals = xf.sum(axis=0)
+        mins = np.where(finite, x, np.inf).min(axis=0)
+        maxs = np.where(finite, x, -np.inf).max(axis=0)
+        zeros = (finite & (x == 0)).sum(axis=0)
+        with np.errstate(divide="ignore"):
+            bins = np.ceil(np.log(np.abs(xf)) / sketches[0]._log_gamma)
+        pos, neg = finite & (x > 0), finite & (x < 0)
+        for j, sk in enumerate(sketches):
+            if counts[j] == 0:
+                continue
+            if abs(sk.alpha - sketches[0].alpha) > 1e-12:
+                raise RollupError("add_columns needs sketches of one accuracy")
+            sk.count += int(counts[j])
+            sk.total += float(totals[j])
+            sk.vmin = min(sk.vmin, float(mins[j]))
+            sk.vmax = max(sk.vmax, float(maxs[j]))
+            sk.zeros += int(zeros[j])
+            for mask, store in ((pos[:, j], sk.pos), (neg[:, j], sk.neg)):
+                for k in bins[mask, j].astype(np.int64).tolist():
+                    store[k] = store.get(k, 0) + 1
+
+    def merge(self, other: LogSketch) -> None:
+        """Fold another sketch (same ``alpha``) into this one."""
+        if abs(other.alpha - self.alpha) > 1e-12:
+            raise RollupError(f"cannot merge sketches of accuracy {other.alpha} and {self.alpha}")
+        self.count += other.count
+        self.zeros += other.zeros
+        self.total += other.total
+        self.vmin = min(self.vmin, other.vmin)
+        self.vmax = max(self.vmax, other.vmax)
+        for mine, theirs in ((self.pos, other.pos), (self.neg, other.neg)):
+            for k, c in theirs.items():
+                mine[k] = mine.get(k, 0) + c
+
+    @property
+    def mean(self) -> float:
+        return self.total / self.count if self.count else math.nan
+
+    def quantile(self, q: float) -> float:
+        """The q-quantile (0 ≤ q ≤ 1) within the relative accuracy; NaN when empty.
+
+        Rank ⌊q·(count − 1)⌋ in ascending order (the lower order statistic), clamped to [min, max]."""
+        if not 0.0 <= q <= 1.0:
+            raise RollupError(f"quantile {q!r} must be within [0, 1]")
+        if self.count == 0:
+            return math.nan
+        rank = math.floor(q * (self.count - 1))
+        seen = 0
+        for k in sorted(self.neg, reverse=True):   # most negative first
+            seen += self.neg[k]
+            if seen > rank:
+                return self._clamp(-2.0 * self._gamma**k / (self._gamma + 1.0))
+        seen += self.zeros
+        if seen > rank:
+            return self._clamp(0.0)
+        for k in sorted(self.pos):
+            seen += self.pos[k]
+            if seen > rank:
+                return self._clamp(2.0 * self._gamma**k / (self._gamma + 1.0))
+        return self.vmax
+
+    def _clamp(self, v: float) -> float:
+        return min(max(v, self.vmin), self.vmax)
+
+    def to_array(self) -> npt.NDArray[np.float64]:
+        """A flat float64 array holding the whole state (for storage); :meth:`from_array` reverses it."""
+        head = [self.alpha, float(self.count), float(self.zeros), self.total, self.vmin, self.vmax,
+                float(len(self.pos)), float(len(self.neg))]
+        body: list[float] = []
+        for store in (self.pos, self.neg):
+            for k in sorted(store):
+                body += [float(k), float(store[k])]
+        return np.asarray(head + body, dtype=np.float64)
+
+    @classmethod
+    def from_array(cls, a: npt.ArrayLike) -> LogSketch:
+        arr = np.asarray(a, dtype=np.float64).reshape(-1)
+        if arr.size < 8:
+            raise RollupError(f"sketch state of {arr.size} numbers is too short")
+        n_pos, n_neg = int(arr[6]), int(arr[7])
+        if arr.size != 8 + 2 * (n_pos + n_neg):
+            raise RollupError(f"sketch state of {arr.size} numbers does not match {n_pos}+{n_neg} bins")
+        s = cls(alpha=float(arr[0]), count=int(arr[1]), zeros=int(arr[2]), total=float(arr[3]),
+                vmin=float(arr[4]), vmax=float(arr[5]))
+        pairs = arr[8:].reshape(-1, 2)
+        s.pos = {int(k): int(c) for k, c in pairs[:n_pos]}
+        s.neg = {int(k): int(c) for k, c in pairs[n_pos:]}
+        return s
+
+    def summary(self, high_percentile: float = 95.0) -> tuple[float, float, float, float, float, float]:
+        """(count, min, mean, max, p50, p_high) like one column of :func:`summarize`."""
+        if self.count == 0:
+            return (0.0, math.nan, math.nan, math.nan, math.nan, math.nan)
+        return (float(self.count), self.vmin, self.mean, self.vmax, self.quantile(0.5),
+                self.quantile(high_percentile / 100.0))

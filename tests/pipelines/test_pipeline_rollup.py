@@ -1,0 +1,94 @@
+"""Roll-up statistics (edgevib.pipelines.rollup) against numpy's exact statistics."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+
+from edgevib.pipelines.rollup import STAT_FIELDS, LogSketch, RollupError, summarize
+
+
+def test_summarize_matches_numpy_and_skips_missing_values() -> None:
+    rng = np.random.default_rng(4)
+    x = rng.lognormal(0.0, 0.5, size=(180, 3))
+    x[::7, 1] = np.nan          # an indicator missing in some frames
+    x[:, 2] = np.nan            # one never available
+    s = summarize(x, 95.0)
+    assert s.shape == (len(STAT_FIELDS), 3)
+    for j in (0, 1):
+        v = x[:, j][np.isfinite(x[:, j])]
+        # reference: numpy's exact statistics (linear-interpolation percentiles)
+        assert_allclose(s[:, j], [v.size, v.min(), v.mean(), v.max(), np.percentile(v, 50), np.percentile(v, 95)],
+                        rtol=1e-12)
+    assert s[0, 2] == 0 and np.all(np.isnan(s[1:, 2]))
+    with pytest.raises(RollupError, match="high percentile 100"):
+        summarize(x, 100.0)
+
+
+@pytest.mark.parametrize("q", [0.0, 0.05, 0.5, 0.95, 0.99, 1.0])
+def test_sketch_quantiles_within_relative_accuracy(q: float) -> None:
+    # DDSketch (Masson, Rim & Lee, PVLDB 12, 2019): every quantile within relative error alpha of the exact
+    # order statistic of rank floor(q (n - 1)).
+    rng = np.random.default_rng(9)
+    v = np.concatenate([rng.lognormal(0.5, 1.0, 5000), -rng.lognormal(-1.0, 0.5, 300), np.zeros(40)])
+    sk = LogSketch(alpha=0.01)
+    for chunk in np.array_split(rng.permutation(v), 13):
+        sk.add(chunk)
+    exact = np.quantile(v, q, method="lower")
+    assert abs(sk.quantile(q) - exact) <= 0.01 * abs(exact) + 1e-12
+    assert sk.count == v.size and sk.mean == pytest.approx(v.mean(), rel=1e-12)
+    assert sk.vmin == v.min() and sk.vmax == v.max()
+
+
+def test_sketch_merge_and_storage_round_trip() -> None:
+    rng = np.random.default_rng(2)
+    a, b = rng.gamma(2.0, 1.0, 700), rng.gamma(5.0, 2.0, 900)
+    s1, s2, whole = LogSketch(), LogSketch(), LogSketch()
+    s1.add(a)
+    s2.add(b)
+    whole.add(np.concatenate([a, b]))
+    s1.merge(s2)
+    for q in (0.1, 0.5, 0.95):
+        assert s1.quantile(q) == whole.quantile(q)  # merging is exact (same bins)
+    back = LogSketch.from_array(s1.to_array())
+    assert back.summary(95.0) == s1.summary(95.0)
+    assert math.isnan(LogSketch().quantile(0.5))
+    with pytest.raises(RollupError, match="cannot merge"):
+        s1.merge(LogSketch(alpha=0.02))
+    with pytest.raises(RollupError, match="does not match"):
+        LogSketch.from_array(np.zeros(9))
+
+
+def test_sketch_columns_equal_one_by_one() -> None:
+    rng = np.random.default_rng(8)
+    x = rng.normal(0.0, 2.0, (300, 3))
+    x[::9, 1] = np.nan
+    x[5, 2] = 0.0
+    cols = [LogSketch() for _ in range(3)]
+    LogSketch.add_columns(cols, x[:120])
+    LogSketch.add_columns(cols, x[120:])
+    for j, sk in enumerate(cols):
+        ref = LogSketch()
+        ref.add(x[:, j])
+        assert (sk.count, sk.zeros, sk.pos, sk.neg, sk.vmin, sk.vmax) == \
+            (ref.count, ref.zeros, ref.pos, ref.neg, ref.vmin, ref.vmax)
+        assert sk.total == pytest.approx(ref.total, rel=1e-12)
+    with pytest.raises(RollupError, match="do not match 3"):
+        LogSketch.add_columns(cols, x[:, :2])
+
+
+def test_single_row_paths_agree_with_the_array_paths() -> None:
+    row = np.array([[2.5, np.nan, -1.0, 0.0]])
+    s = summarize(row)
+    assert_allclose(s[:, 0], [1, 2.5, 2.5, 2.5, 2.5, 2.5])
+    assert s[0, 1] == 0 and np.all(np.isnan(s[1:, 1]))
+    two = np.vstack([row, row])
+    assert_allclose(summarize(two)[1:], s[1:])
+    a, b = [LogSketch() for _ in range(4)], [LogSketch() for _ in range(4)]
+    LogSketch.add_columns(a, row)
+    for sk, v in zip(b, row[0], strict=True):
+        sk.add([v])
+    assert [(x.count, x.pos, x.neg, x.zeros) for x in a] == [(x.count, x.pos, x.neg, x.zeros) for x in b]
