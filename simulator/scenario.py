@@ -22,6 +22,7 @@ Schema (defaults in brackets)::
       [[machines.faults]]  type, points [all of the machine's], axis_gain {axis = gain}, stage ["moderate"],
                            progression { curve = "logistic"|"exponential"|"linear", start_s, end_s,
                                          from, to, steepness [10] } (a multiplier of the amplitude), + params
+    [longrun]   months in compressed time: see edgevib.simulator.longrun
     [[points]]
       id, machine, axis ("horizontal"|"vertical"|"axial"|"radial"), sensor [id], sensor_type ("piezo"|"mems"),
       fs_hz, block_samples, description [""], sensitivity_mv_per_g [100, piezo],
@@ -237,6 +238,7 @@ class Scenario:
     machines: tuple[MachineSpec, ...]
     points: tuple[PointSpec, ...]
     path: str = ""
+    longrun: Mapping[str, Any] | None = None  # [longrun] as written: see edgevib.simulator.longrun
 
     def machine(self, machine_id: str) -> MachineSpec:
         for m in self.machines:
@@ -444,6 +446,7 @@ def parse_scenario(doc: Mapping[str, Any], path: str = "") -> Scenario:
 
     machine_tables = top.tables("machines")
     point_tables = top.tables("points")
+    longrun = top.raw("longrun", None)
     top.done()
     if not machine_tables:
         raise ScenarioError("machines", "at least one machine is required")
@@ -578,7 +581,13 @@ def parse_scenario(doc: Mapping[str, Any], path: str = "") -> Scenario:
             speed_range_rpm=srange, residual_mm_s=mt.num("residual_mm_s", 0.5, 0.0, 100.0),
             process_noise_ug_rthz=mt.num("process_noise_ug_rthz", 150.0, 0.0, 1e6), faults=tuple(faults)))
         mt.done()
-    return Scenario(name, description, site, site_desc, prefix, duration_s, tuple(machines), tuple(points), path)
+    scenario = Scenario(name, description, site, site_desc, prefix, duration_s, tuple(machines), tuple(points), path,
+                        longrun)
+    if longrun is not None:
+        from edgevib.simulator.longrun import parse_longrun  # checked now, used by the long-run mode
+
+        parse_longrun(scenario)
+    return scenario
 
 
 def _machine_reference_rpm(mt: _Table) -> float:
