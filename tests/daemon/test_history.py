@@ -1,0 +1,193 @@
+"""The durable severity history (edgevib.daemon.history): roll-ups against numpy, running-only severity, stopped
+periods, restart and SIGKILL, the disk budget under a long compressed-time run, write errors."""
+
+from __future__ import annotations
+
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import textwrap
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+
+from edgevib.daemon.history import HistoryReader, HistoryRecorder, HistorySettings
+
+T0 = 1_780_000_000  # an arbitrary UTC time, s
+
+
+def _settings(tmp_path: Path, **kw: float) -> HistorySettings:
+    path = str(tmp_path / "history.sqlite")
+    return HistorySettings(file=path, path=path, **kw)  # type: ignore[arg-type]
+
+
+def test_rollups_are_the_statistics_of_running_frames(tmp_path: Path) -> None:
+    s = _settings(tmp_path)
+    rec = HistoryRecorder(s, ("a", "b"))
+    rng = np.random.default_rng(5)
+    n = 3 * 3600
+    t = T0 + np.arange(n) * 1.0
+    a = rng.lognormal(0.0, 0.3, n)
+    b = np.where(np.arange(n) % 3 == 0, np.nan, rng.normal(5.0, 1.0, n))
+    state = np.where((np.arange(n) >= 4000) & (np.arange(n) < 4900), "stopped", "running")
+    for i in range(n):
+        rec.record("P-1", int(t[i] * 1e9), [a[i], b[i]], str(state[i]))
+        if i % 997 == 0:
+            rec.flush()
+    rec.flush()
+    run = state == "running"
+    with HistoryReader(s.path) as r:
+        minute = r.series("P-1", "a", level="minute")
+        hour = r.series("P-1", "a", level="hour")
+        hour_b = r.series("P-1", "b", level="hour")
+        # every closed minute: exact statistics of its running values (numpy reference)
+        for k, start in enumerate(minute.t_s[:-1]):
+            sel = run & (t >= start) & (t < start + 60)
+            v = a[sel]
+            assert minute.count is not None and minute.count[k] == v.size
+            assert_allclose([minute.vmin[k], minute.mean[k], minute.vmax[k], minute.value[k], minute.p_high[k]],
+                            [v.min(), v.mean(), v.max(), np.percentile(v, 50), np.percentile(v, 95)], rtol=1e-6)
+        # hours: count, min, max, mean exact; median and 95th percentile within the sketch's 1 %
+        for k, start in enumerate(hour.t_s[:-1]):
+            sel = run & (t >= start) & (t < start + 3600)
+            v = a[sel]
+            assert hour.count is not None and hour.count[k] == v.size
+            assert_allclose([hour.vmin[k], hour.mean[k], hour.vmax[k]], [v.min(), v.mean(), v.max()], rtol=1e-6)
+            assert abs(hour.value[k] - np.quantile(v, 0.5, method="lower")) <= 0.011 * hour.value[k]
+            assert abs(hour.p_high[k] - np.quantile(v, 0.95, method="lower")) <= 0.011 * hour.p_high[k]
+            vb = b[sel & np.isfinite(b)]
+            assert hour_b.count is not None and hour_b.count[k] == vb.size
+        # the stopped quarter-hour is a marked period, not averaged in
+        assert hour.periods == (("stopped", T0 + 4000.0, T0 + 4900.0),)
+        assert sum(hour.count) == run.sum()  # type: ignore[arg-type]
+        frames = r.series("P-1", "a", level="frames")
+        assert frames.state.count("stopped") == 900
+        assert r.latest_state("P-1") == "running"
+    rec.close()
+
+
+def test_open_buckets_continue_after_a_restart(tmp_path: Path) -> None:
+    s = _settings(tmp_path)
+    t = T0 + np.arange(7200) * 1.0
+    v = 1.0 + (np.arange(7200) % 97) / 97.0
+    whole = HistoryRecorder(_settings(tmp_path / "whole"), ("a",))
+    for i in range(7200):
+        whole.record("P-1", int(t[i] * 1e9), [v[i]], "running")
+    whole.close()
+    first = HistoryRecorder(s, ("a",))
+    for i in range(4321):  # stop mid-minute and mid-hour
+        first.record("P-1", int(t[i] * 1e9), [v[i]], "running")
+    first.close()
+    second = HistoryRecorder(s, ("a",))
+    for i in range(4321, 7200):
+        second.record("P-1", int(t[i] * 1e9), [v[i]], "running")
+    second.close()
+    with HistoryReader(s.path) as r, HistoryReader(whole.settings.path) as w:
+        for level in ("minute", "hour", "day"):
+            got, ref = r.series("P-1", "a", level=level), w.series("P-1", "a", level=level)
+            assert_allclose(got.t_s, ref.t_s)
+            for f in ("count", "vmin", "mean", "vmax", "value", "p_high"):
+                assert_allclose(getattr(got, f), getattr(ref, f), rtol=1e-6, err_msg=f"{level} {f}")
+
+
+_WRITER = textwrap.dedent("""
+    import sys, time
+    from edgevib.daemon.history import HistoryRecorder, HistorySettings
+    path = sys.argv[1]
+    rec = HistoryRecorder(HistorySettings(file=path, path=path, flush_s=0.05), ("a", "b"))
+    t0, i = 1_780_000_000, 0
+    while True:
+        for _ in range(50):
+            rec.record("P-1", (t0 + i) * 10**9, [1.0 + i * 1e-3, 2.0], "running")
+            i += 1
+        rec.flush()
+        print(i, flush=True)
+""")
+
+
+def test_history_survives_sigkill_and_continues(tmp_path: Path) -> None:
+    path = str(tmp_path / "history.sqlite")
+    proc = subprocess.Popen([sys.executable, "-c", _WRITER, path], stdout=subprocess.PIPE, text=True)
+    try:
+        assert proc.stdout is not None
+        written = 0
+        deadline = time.monotonic() + 60
+        while written < 3000 and time.monotonic() < deadline:
+            written = int(proc.stdout.readline())
+    finally:
+        os.kill(proc.pid, signal.SIGKILL)
+        proc.wait(timeout=30)
+    assert written >= 3000
+    conn = sqlite3.connect(path)
+    assert conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    conn.close()
+    with HistoryReader(path) as r:
+        minutes = r.series("P-1", "a", level="minute")
+        frames = r.series("P-1", "a", level="frames")
+        committed = int(frames.t_s[-1] - T0) + 1
+        assert committed >= written                  # every flushed frame is there
+        assert np.all(np.diff(minutes.t_s) == 60.0)  # and every minute up to them
+    rec = HistoryRecorder(HistorySettings(file=path, path=path), ("a", "b"))
+    for i in range(committed, committed + 240):
+        rec.record("P-1", (T0 + i) * 10**9, [5.0, 2.0], "running")
+    rec.close()
+    with HistoryReader(path) as r:
+        minutes = r.series("P-1", "a", level="minute")
+        assert minutes.count is not None
+        # a restart continues the open minute: every full minute holds 60 frames
+        assert np.all(minutes.count[1:-1] == 60)
+        assert minutes.t_s[-1] >= T0 + committed + 180
+
+
+def test_disk_budget_holds_over_a_long_compressed_run(tmp_path: Path) -> None:
+    # Three years of four frames per simulated day on three points with a 448 KiB budget: the file never exceeds
+    # it, frame-rate values and minute and hour roll-ups are pruned first (counted) and the daily roll-ups keep at
+    # least 18 months (the default retention, 1100 days, would not fit).
+    budget = 448 * 1024
+    s = _settings(tmp_path, max_bytes=budget, flush_s=1.0)
+    rec = HistoryRecorder(s, ("v", "a", "k", "p"))
+    rng = np.random.default_rng(0)
+    steps = 3 * 365 * 4
+    wal = Path(s.path + "-wal")
+    sizes = []
+    for h in range(steps):
+        for p in range(3):
+            rec.record(f"P-{p}", (T0 + 6 * 3600 * h) * 10**9, rng.lognormal(0, 0.2, 4), "running")
+        if h % 8 == 7:
+            rec.flush()
+            sizes.append(Path(s.path).stat().st_size + (wal.stat().st_size if wal.exists() else 0))
+    rec.close()
+    assert max(sizes) <= budget
+    assert rec.stats.pruned["hour"] > 0 and rec.stats.pruned["day"] > 0
+    assert rec.stats.written == steps * 3 and rec.stats.dropped == 0
+    with HistoryReader(s.path) as r:
+        days = r.series("P-0", "v", level="day")
+        assert days.t_s[-1] - days.t_s[0] >= 548 * 86400  # at least 18 months of daily roll-ups
+        assert np.all(np.diff(days.t_s) == 86400)          # pruned from the oldest end, no holes
+
+
+def test_a_write_error_keeps_the_batch_for_the_next_flush(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    s = _settings(tmp_path)
+    rec = HistoryRecorder(s, ("a",))
+    for i in range(100):
+        rec.record("P-1", (T0 + i) * 10**9, [1.0], "running")
+    real = rec._write
+    calls = {"n": 0}
+
+    def failing(batch: list) -> None:  # type: ignore[type-arg]
+        calls["n"] += 1
+        if calls["n"] == 1:
+            raise sqlite3.OperationalError("disk I/O error")
+        real(batch)
+
+    monkeypatch.setattr(rec, "_write", failing)
+    assert rec.flush() == 0 and rec.stats.write_errors == 1 and rec.pending == 100
+    assert rec.flush() == 100
+    rec.close()
+    with HistoryReader(s.path) as r:
+        assert r.series("P-1", "a", level="frames").t_s.size == 100
