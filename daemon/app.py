@@ -316,6 +316,12 @@ class Daemon:
             self.add_lossless_sink(alarms)
             self._reconfigurable.append(alarms)
             self.alarm_view = alarms
+        from edgevib.daemon.trendwatch import create_trend_watch
+
+        self.trend_watch = create_trend_watch(config, alarms, registry=self.metrics.registry)
+        if self.trend_watch is not None:  # history and projections (records the frames the alarm layer judges)
+            self.add_sink(self.trend_watch)
+            self._reconfigurable.append(self.trend_watch)
 
     def add_sink(self, sink: FrameSink) -> None:
         """Add a lossy sink (it shows the latest values: see the module docstring); call before :meth:`start`."""

@@ -75,6 +75,7 @@ __all__ = [
     "CaptureConfig",
     "Config",
     "FeedConfig",
+    "HistoryConfig",
     "LevelRule",
     "LimitConfigTable",
     "LoggingConfig",
@@ -92,6 +93,8 @@ __all__ = [
     "SiteConfig",
     "SourceConfig",
     "SpeedTag",
+    "TrendConfig",
+    "TrendLimit",
     "WebhookConfig",
     "check_id",
     "config_to_document",
@@ -926,6 +929,86 @@ class CaptureConfig(_Table):
         return int(self.max_mb * 1024 * 1024)
 
 
+class HistoryConfig(_Table):
+    """``[history]``: the durable severity history (README "[history]")."""
+
+    enabled: Bool = True
+    file: Text = "history.sqlite"  # resolved against state_dir
+    recent_s: Float = Field(900.0, ge=120.0, le=7 * 86400.0)
+    minute_days: Float = Field(2.0, ge=0.01, le=366.0)
+    hour_days: Float = Field(90.0, ge=1.0, le=3660.0)
+    day_days: Float = Field(1100.0, ge=7.0, le=36600.0)
+    max_mb: Float = Field(1024.0, ge=1.0, le=1e7)
+    flush_s: Float = Field(5.0, ge=0.1, le=600.0)
+    high_percentile: Float = Field(95.0, ge=50.0, le=99.9)
+
+    @model_validator(mode="after")
+    def _retention(self) -> HistoryConfig:
+        if not self.file:
+            raise _Problem("file", "must not be empty")
+        if not self.minute_days <= self.hour_days <= self.day_days:
+            raise _Problem("hour_days", f"retention must grow with the roll-up length: minutes {self.minute_days:g} "
+                           f"d, hours {self.hour_days:g} d, days {self.day_days:g} d")
+        return self
+
+
+TREND_INDICATORS: tuple[str, ...] = (
+    "velocity_rms_mm_s", "imbalance_1x_mm_s", "misalignment_2x_mm_s", "looseness_mm_s",
+    "bearing_bpfo_g", "bearing_bpfi_g", "bearing_bsf_g", "bearing_ftf_g",
+)
+"""Series trended by default: broadband velocity and the fault-pattern indicators."""
+
+
+class TrendLimit(_Table):
+    """One ``[[trend.limits]]``: a user-given absolute limit of a point's indicator, projected like the others."""
+
+    point: Text
+    indicator: Text
+    value: Float
+
+
+class TrendConfig(_Table):
+    """``[trend]``: trend, projection and advice (README "[trend]")."""
+
+    enabled: Bool = True
+    indicators: tuple[Text, ...] = TREND_INDICATORS
+    window_days: Float = Field(90.0, ge=0.01, le=3660.0)
+    min_points: Int = Field(12, ge=6, le=100_000)
+    min_span_h: Float = Field(24.0, ge=0.0, le=24 * 3660.0)
+    coverage: Float = Field(0.8, ge=0.5, le=0.99)
+    rise_significance: Float = Field(0.01, ge=1e-6, le=0.2)
+    evaluate_s: Float = Field(600.0, ge=1.0, le=86400.0)
+    horizon_days: Float = Field(730.0, ge=1.0, le=36600.0)
+    horizon_factor: Float = Field(4.0, ge=0.1, le=100.0)
+    max_points: Int = Field(500, ge=20, le=20_000)
+    plan_days: Float = Field(90.0, ge=0.0, le=3660.0)
+    act_days: Float = Field(14.0, ge=0.0, le=3660.0)
+    limits: tuple[TrendLimit, ...] = ()
+
+    @model_validator(mode="after")
+    def _trend(self) -> TrendConfig:
+        from edgevib.daemon.indicators import LIMITABLE  # the scalar indicators the history records
+
+        for i, name in enumerate(self.indicators):
+            if name not in LIMITABLE:
+                raise _Problem(f"indicators[{i}]", f"unknown indicator {name!r}{_did_you_mean(name, list(LIMITABLE))}"
+                               f" (known: {', '.join(LIMITABLE)})")
+        seen: set[tuple[str, str]] = set()
+        for i, lim in enumerate(self.limits):
+            if lim.indicator not in LIMITABLE:
+                raise _Problem(f"limits[{i}].indicator", f"unknown indicator {lim.indicator!r}"
+                               f"{_did_you_mean(lim.indicator, list(LIMITABLE))} (known: {', '.join(LIMITABLE)})")
+            if (lim.point, lim.indicator) in seen:
+                raise _Problem(f"limits[{i}]", f"a second limit for {lim.point} {lim.indicator}")
+            seen.add((lim.point, lim.indicator))
+        if self.act_days > self.plan_days:
+            raise _Problem("act_days", f"{self.act_days:g} days must not exceed plan_days {self.plan_days:g}")
+        return self
+
+    def limit_for(self, point: str, indicator: str) -> float | None:
+        return next((lim.value for lim in self.limits if lim.point == point and lim.indicator == indicator), None)
+
+
 class Config(_Table):
     """The whole file.  ``points`` are the points this instance owns (all of them unless ``[site] shard`` says
     otherwise); the file's every point is in ``all_points``."""
@@ -941,6 +1024,8 @@ class Config(_Table):
     alarms: AlarmsConfig = Field(default_factory=AlarmsConfig)
     feed: FeedConfig | None = None
     capture: CaptureConfig = Field(default_factory=CaptureConfig)
+    history: HistoryConfig = Field(default_factory=HistoryConfig)
+    trend: TrendConfig = Field(default_factory=TrendConfig)
 
     _points: tuple[PointConfig, ...] = PrivateAttr(())
     _deferred: tuple[tuple[str, str, str, str], ...] = PrivateAttr(())
@@ -1438,8 +1523,13 @@ def _resolve(cfg: Config, base: Path, digest: str) -> Config:
     state = Path(state_dir)
     alarms = cfg.alarms.model_copy(update={"socket": _resolve_path(cfg.alarms.socket, state, "alarms.socket")})
     capture = cfg.capture.model_copy(update={"dir": _resolve_path(cfg.capture.dir, state, "capture.dir")})
+    history = cfg.history.model_copy(update={"file": _resolve_path(cfg.history.file, state, "history.file")})
+    for i, lim in enumerate(cfg.trend.limits):
+        if lim.point not in ids:
+            raise ConfigError(f"trend.limits[{i}].point", f"unknown point {lim.point!r}"
+                              f"{_did_you_mean(lim.point, list(ids))}")
     cfg = cfg.model_copy(update={"all_points": tuple(points), "publish": publish, "feed": feed, "alarms": alarms,
-                                 "capture": capture})
+                                 "capture": capture, "history": history})
     cfg._points = tuple(p for p in points if owns_point(p.id, shard))
     cfg._base_dir, cfg._digest = str(base), digest
     return cfg

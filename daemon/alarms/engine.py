@@ -207,6 +207,12 @@ class AlarmLayer:
         self._loop: asyncio.AbstractEventLoop | None = None
         self._source = settings.feed.event_source
         self.listeners: list[Callable[[dict[str, Any]], None]] = []  # called with each committed CloudEvent
+        # The trend layer's seams (edgevib.daemon.trendwatch): called with every frame in order and the reason it
+        # was suppressed (None: judged while running), in the worker thread; and the trend of a series / a point
+        # for event data and the retained state message.
+        self.frame_listeners: list[Callable[[FrameResult, str | None], None]] = []
+        self.trend_info: Callable[[str, str], dict[str, Any] | None] | None = None
+        self.trend_state: Callable[[str], dict[str, Any]] | None = None
 
     # ------------------------------------------------------------------------------------------ lifecycle
 
@@ -416,6 +422,11 @@ class AlarmLayer:
         else:
             reason = None
         self.suppressed[pid] = reason
+        for listener in self.frame_listeners:
+            try:
+                listener(r, reason)
+            except Exception as exc:  # a listener never breaks the layer
+                log.warning("frame listener failed", error=repr(exc))
         for lim in self._by_point.get(pid, ()):
             key = lim.key
             value = LIMITABLE[lim.indicator].value(r)
@@ -526,6 +537,12 @@ class AlarmLayer:
             "advice": advice_text(tr.to_severity, idef.fault or "", tr.kind, tr.value, danger, slope),
             "capture": None,
         }
+        trend = self.trend_info(lim.point, lim.indicator) if self.trend_info is not None else None
+        if trend is not None:
+            data["trend"] = trend
+            if trend.get("advice_text") and tr.to_severity > 0:
+                head = str(data["advice"]).replace(_DISCLAIMER, "").strip()
+                data["advice"] = f"{head} Trend: {trend['advice_text']}"
         from edgevib.daemon.alarms.outbox import new_event_id
 
         eid = new_event_id()
@@ -787,6 +804,8 @@ class AlarmLayer:
                        "time": None if pid not in self.last_frame else rfc3339_utc_s(self.last_frame[pid]),
                        "alarms": {k[1]: {kk: v for kk, v in self._alarm_row(k).items() if kk not in ("point",)}
                                   for k in self.limits if k[0] == pid}}
+                if self.trend_state is not None:
+                    msg["trend"] = self.trend_state(pid)
                 topic = self.settings.feed.state_topic.format(site=self.settings.site, machine=p.machine, point=pid)
                 out[pid] = (topic, json.dumps(msg, separators=(",", ":"), allow_nan=False,
                                               default=str).encode("utf-8"))

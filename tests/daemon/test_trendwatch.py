@@ -1,0 +1,202 @@
+"""The daemon's trend layer (edgevib.daemon.trendwatch): frames judged by the alarm layer enter the history with
+their machine state, projections reach the Prometheus gauges, the retained state message and alarm events, with
+watch / plan / act advice; nothing is projected while the machine stands or from too little history."""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import math
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+from prometheus_client import CollectorRegistry
+
+from edgevib.daemon.alarms.sink import create_sink
+from edgevib.daemon.config import parse_config
+from edgevib.daemon.history import HistoryReader
+from edgevib.daemon.interfaces import ConfigError, FrameResult
+from edgevib.daemon.trendwatch import advice, create_trend_watch, iso_next_boundary, running_state
+from edgevib.pipelines.types import FrameIndicators
+
+D = 86400.0
+T0 = 1_780_000_000.0
+POINT, MACHINE = "P-101-DE-H", "P-101"
+
+
+def _config(state_dir: Path, **tables: Any) -> Any:
+    """Pump P-101 (ISO 20816-3 group 2, rigid: B/C 2.8, C/D 4.5 mm/s) with one point."""
+    doc: dict[str, Any] = {
+        "site": {"name": "quarry-lane", "state_dir": str(state_dir)},
+        "analysis": {"frame_samples": 8192, "overlap": 0.0},
+        "sources": [{"name": "sim", "type": "simulated", "scenario": "demo"}],
+        "machines": [{"id": MACHINE, "group": 2, "support": "rigid", "speed_rpm": 1485.0}],
+        "points": [{"id": POINT, "machine": MACHINE, "axis": "horizontal", "source": "sim", "sensor": "QL-P101-DE-H",
+                    "fs_hz": 12800.0, "block_samples": 4096}],
+        "alarms": {"startup_grace_s": 0.0},
+        "trend": {"evaluate_s": 3600.0, "min_span_h": 24.0},
+        **tables,
+    }
+    return parse_config(doc, state_dir)
+
+
+def _frame(t_s: float, v_mm_s: float, seed: int) -> FrameResult:
+    rng = np.random.default_rng(seed)
+    n, fs = 8192, 12800.0
+    x = 0.2 * np.sin(2 * np.pi * 24.75 * np.arange(n) / fs) + 0.01 * rng.standard_normal(n)
+    ind = FrameIndicators(acceleration_rms_g=0.1, acceleration_peak_g=0.3, acceleration_peak_to_peak_g=0.6,
+                          crest_factor=3.0, kurtosis=3.0, skewness=0.0, mean_g=0.0, velocity_rms_mm_s=v_mm_s,
+                          velocity_peak_mm_s=1.414 * v_mm_s, displacement_pp_um=10.0, shaft_hz=24.75,
+                          shaft_estimated=False, orders_mm_s={"1x": 0.9 * v_mm_s, "2x": 0.1, "0.5x": 0.05})
+    return FrameResult(point_id=POINT, machine_id=MACHINE, t_end_ns=round(t_s * 1e9), received_ns=round(t_s * 1e9),
+                       fs_hz=fs, indicators=ind, iso_zone=None, samples=x.astype(np.float32), axis="horizontal")
+
+
+def _law(day: np.ndarray) -> np.ndarray:
+    """Healthy 1.0 mm/s, then +0.05 mm/s per day from day 10: zone C (2.8) on day 46, zone D (4.5) on day 80."""
+    return np.where(day < 10, 1.0, 1.0 + 0.05 * (day - 10))
+
+
+def _sample(registry: CollectorRegistry, name: str, **labels: str) -> float | None:
+    return registry.get_sample_value(name, labels)
+
+
+async def test_projection_reaches_gauges_state_message_and_events(tmp_path: Path) -> None:
+    cfg = _config(tmp_path / "state")
+    registry = CollectorRegistry()
+    layer = create_sink(cfg)
+    assert layer is not None
+    watch = create_trend_watch(cfg, layer, registry=registry)
+    assert watch is not None
+    events: list[dict[str, Any]] = []
+    layer.listeners.append(events.append)
+    await layer.start()
+    await watch.start()
+    try:
+        rng = np.random.default_rng(1)
+        hours = np.arange(0, 40 * 24)  # 40 days, one frame an hour
+        days = hours / 24.0
+        values = _law(days) * np.exp(0.05 * rng.standard_normal(days.size))
+        values[(days >= 20) & (days < 22)] = 0.05        # two days standing: below the run threshold
+        for k in range(0, hours.size, 48):
+            batch = [_frame(T0 + days[i] * D, float(values[i]), i) for i in range(k, min(k + 48, hours.size))]
+            await layer.on_frames(batch)
+        assert await asyncio.to_thread(watch.evaluate_all) >= 1
+        doc = watch.latest[(POINT, "velocity_rms_mm_s")]
+        now_day = days[-1]
+        assert doc["status"] == "ok" and doc["rising"] and doc["model"] == "linear"
+        assert doc["slope_per_day"] == pytest.approx(0.05, rel=0.15)
+        lims = {lim["label"]: lim for lim in doc["limits"]}
+        # limits: the alarm layer's alert (ISO B/C 2.8) and danger (C/D 4.5); the next ISO boundary is B/C too
+        assert set(lims) == {"alert", "danger"}
+        for label, crossing_day in (("alert", 46.0), ("danger", 80.0)):
+            lim = lims[label]
+            assert lim["status"] == "rising"
+            assert lim["eta_low_s"] <= lim["eta_s"] <= lim["eta_high_s"]
+            assert lim["eta_s"] / D == pytest.approx(crossing_day - now_day, rel=0.15)
+        assert doc["advice"] == "plan" and "alert level (2.8 mm/s)" in doc["advice_text"]
+        assert "qualified vibration analyst" in doc["advice_text"]
+        # Prometheus: seconds to each limit with the interval ends, slope per day
+        lab = {"site": "quarry-lane", "machine": MACHINE, "point": POINT, "indicator": "velocity_rms_mm_s"}
+        assert _sample(registry, "edgevib_trend_slope_per_day", **lab) == pytest.approx(doc["slope_per_day"])
+        assert _sample(registry, "edgevib_trend_limit_eta_seconds", **lab, limit="alert", bound="estimate") == \
+            pytest.approx(lims["alert"]["eta_s"])
+        assert _sample(registry, "edgevib_trend_limit_eta_seconds", **lab, limit="danger", bound="high") == \
+            pytest.approx(lims["danger"]["eta_high_s"])
+        assert _sample(registry, "edgevib_trend_rising", **lab) == 1.0
+        # the retained state message carries the trend
+        msg = json.loads(layer.state_messages()[POINT][1])
+        assert msg["trend"]["velocity_rms_mm_s"]["advice"] == "plan"
+        # the standing days are a marked period and did not enter the roll-ups
+        with HistoryReader(cfg.history.file) as r:
+            hourly = r.series(POINT, "velocity_rms_mm_s", level="hour")
+            assert any(s == "stopped" and a <= T0 + 20 * D + 3600 and b >= T0 + 21.9 * D
+                       for s, a, b in hourly.periods)
+            assert np.all(hourly.value > 0.5)
+        # an alarm raised now carries the trend and its advice
+        await layer.on_frames([_frame(T0 + (now_day + 0.1 + 0.01 * i) * D, 3.0, 9000 + i) for i in range(3)])
+        raised = [e for e in events if e["data"].get("transition") == "raised"]
+        assert raised and raised[-1]["data"]["trend"]["advice"] == "plan"
+        assert "Trend: Plan:" in raised[-1]["data"]["advice"]
+        assert raised[-1]["data"]["advice"].count("edgevib monitors and advises") == 1
+    finally:
+        await watch.stop()
+        await layer.stop()
+
+
+async def test_no_projection_while_stopped_or_from_too_little_history(tmp_path: Path) -> None:
+    cfg = _config(tmp_path / "state")
+    registry = CollectorRegistry()
+    watch = create_trend_watch(cfg, None, registry=registry)  # no alarm layer: the rule of thumb judges state
+    assert watch is not None
+    await watch.start()
+    try:
+        await watch.on_frames([_frame(T0 + i * 3600.0, 1.0 + 0.1 * i, i) for i in range(6)])
+        await asyncio.to_thread(watch.evaluate_all)
+        doc = watch.latest[(POINT, "velocity_rms_mm_s")]
+        assert doc["status"] == "insufficient-history"
+        assert doc["need"] == "needs at least 12 running values over 24.0 h; has 6 over 5.0 h"
+        assert doc["limits"] == [] and doc["advice"] is None
+        frames = [_frame(T0 + i * 3600.0, 1.0 + 0.05 * i, i) for i in range(6, 80)]
+        frames += [_frame(T0 + i * 3600.0, 0.02, i) for i in range(80, 84)]  # the machine stops
+        await watch.on_frames(frames)
+        await asyncio.to_thread(watch.evaluate_all)
+        doc = watch.latest[(POINT, "velocity_rms_mm_s")]
+        assert doc["machine_state"] == "stopped" and doc["status"] == "machine-not-running"
+        assert all(lim["eta_s"] is None for lim in doc["limits"])
+        lab = {"site": "quarry-lane", "machine": MACHINE, "point": POINT, "indicator": "velocity_rms_mm_s"}
+        assert _sample(registry, "edgevib_trend_limit_eta_seconds", **lab, limit="danger", bound="estimate") is None
+    finally:
+        await watch.stop()
+
+
+def test_advice_kinds_and_wording() -> None:
+    base = {"status": "ok", "unit": "mm/s", "coverage": 0.8, "rising": True, "slope_per_day": 0.05, "step": None,
+            "level": 3.0}
+
+    def lim(label: str, value: float, eta_days: float | None, status: str = "rising") -> dict[str, Any]:
+        eta = None if eta_days is None else eta_days * D
+        date = None if eta is None else "2027-03-01T00:00:00.000Z"
+        return {"label": label, "value": value, "status": status, "eta_s": eta, "eta_low_s": eta and 0.8 * eta,
+                "eta_high_s": eta and 1.3 * eta, "date": date, "date_low": date, "date_high": date}
+
+    kind, text = advice({**base, "limits": [lim("alert", 2.8, 40.0), lim("danger", 4.5, 120.0)]})
+    assert kind == "plan" and text is not None and "about 40 days, around 2027-03-01 (80 % interval" in text
+    kind, text = advice({**base, "limits": [lim("danger", 4.5, 5.0)]})
+    assert kind == "act" and text is not None and text.startswith("Act: rising 1.5 mm/s per month;")
+    kind, text = advice({**base, "limits": [lim("danger", 4.5, 0.0, "reached")]})
+    assert kind == "act" and text is not None and "is reached" in text
+    kind, text = advice({**base, "limits": [lim("alert", 2.8, 200.0)]})
+    assert kind == "watch" and text is not None and "kept under observation" in text
+    kind, _ = advice({**base, "rising": False, "limits": [lim("alert", 2.8, None, "not-rising")],
+                      "step": {"significant": True, "change": 0.9, "baseline": 1.0, "threshold": 0.7}})
+    assert kind == "watch"
+    assert advice({**base, "rising": False, "limits": [lim("alert", 2.8, None, "not-rising")]}) == (None, None)
+    assert advice({"status": "insufficient-history"}) == (None, None)
+
+
+def test_helpers_and_configuration_errors(tmp_path: Path) -> None:
+    # ISO 20816-3 group 2 rigid boundaries (FIELD_NOTES §1)
+    assert iso_next_boundary(1.0, (1.4, 2.8, 4.5)) == ("zone B", 1.4)
+    assert iso_next_boundary(3.0, (1.4, 2.8, 4.5)) == ("zone D", 4.5)
+    assert iso_next_boundary(5.0, (1.4, 2.8, 4.5)) is None
+    assert running_state(1.0, 24.75, False) == "running"
+    assert running_state(0.1, 24.75, False) == "stopped"
+    assert running_state(1.0, 0.5, False) == "stopped"       # measured speed below 60 r/min
+    assert running_state(1.0, 0.5, True) == "running"        # an estimate does not decide
+    assert running_state(math.nan, None, False) == "stopped"
+    with pytest.raises(ConfigError, match=r"trend.indicators\[0\]: unknown indicator 'velocity_rms'"):
+        _config(tmp_path, trend={"indicators": ["velocity_rms"]})
+    with pytest.raises(ConfigError, match=r"trend.limits\[0\].point: unknown point 'P-999'"):
+        _config(tmp_path, trend={"limits": [{"point": "P-999", "indicator": "kurtosis", "value": 6.0}]})
+    with pytest.raises(ConfigError, match=r"history\.hour_days"):
+        _config(tmp_path, history={"minute_days": 5.0, "hour_days": 2.0})
+    with pytest.raises(ConfigError, match=r"trend\.act_days"):
+        _config(tmp_path, trend={"act_days": 100.0, "plan_days": 30.0})
+    cfg = _config(tmp_path, history={"file": "h/severity.sqlite", "max_mb": 64.0},
+                  trend={"limits": [{"point": POINT, "indicator": "acceleration_peak_g", "value": 20.0}]})
+    assert cfg.history.file == str(tmp_path / "h" / "severity.sqlite")
+    assert cfg.trend.limit_for(POINT, "acceleration_peak_g") == 20.0
+    assert create_trend_watch(_config(tmp_path, history={"enabled": False})) is None
