@@ -493,8 +493,8 @@ def _shaft_array(shaft_hz: npt.ArrayLike | None, channels: int, fs_hz: float) ->
     return f
 
 
-@lru_cache(maxsize=128)
-def kernel_for(plan: AnalysisPlan) -> AnalysisKernel:
+@lru_cache(maxsize=2048)  # above the daemon's 1,000 points: every distinct plan's kernel is built once, never
+def kernel_for(plan: AnalysisPlan) -> AnalysisKernel:  # evicted and rebuilt between batches (a reload adds some)
     """The kernel of ``plan`` (a pure memo: kernels are immutable and depend on the frozen plan only)."""
     return AnalysisKernel(plan)
 
