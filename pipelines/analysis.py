@@ -32,14 +32,22 @@ import numpy.typing as npt
 
 from edgevib.pipelines import _fft
 from edgevib.pipelines.bearings import defect_multiples, validate_geometry
+from edgevib.pipelines.detection import window_thresholds
 from edgevib.pipelines.envelope import (
+    MIN_LINE,
+    SHAFT_HARMONICS,
+    SHAFT_TOLERANCE,
+    SIDEBAND_ORDERS,
+    FamilySearch,
     demodulate,
-    envelope_spectrum,
+    envelope_spectra,
     fast_length,
+    level_headroom,
     min_decimated_length,
+    pattern_gaps,
     search_families,
 )
-from edgevib.pipelines.indicators import as_frames, centred_moments, finite_mean
+from edgevib.pipelines.indicators import as_channels, as_frames, centred_moments, finite_mean
 from edgevib.pipelines.spectrum import (
     G_MM_S2,
     band_lines,
@@ -65,6 +73,7 @@ __all__ = [
     "kernel_for",
     "make_plan",
     "order_key",
+    "plan_notes",
 ]
 
 FloatArray = npt.NDArray[np.float64]
@@ -120,7 +129,9 @@ def _check_plan(plan: AnalysisPlan) -> AnalysisPlan:
 
     Frame resolution: the line spacing ``fs/n`` must be at most half the velocity band's low edge (that edge then
     lies two lines above DC, clear of the Hann window's leakage of the mean and of what lies below the band) and at
-    most half the lowest shaft speed (two revolutions per record).
+    most half the lowest shaft speed (two revolutions per record).  A ``partial`` plan accepts any record of at
+    least 64 samples instead: what its resolution cannot carry is left out of the results (see
+    :func:`plan_notes`).
     """
     fs = _finite("sample rate", plan.fs_hz, "fs_hz")
     if fs <= 0:
@@ -130,13 +141,14 @@ def _check_plan(plan: AnalysisPlan) -> AnalysisPlan:
         raise PlanError(f"record of {n!r} samples is too short: need at least {MIN_SAMPLES}", field="n_samples")
     nyq = fs / 2.0
     df = fs / n
+    partial = bool(plan.partial)
     vel = _band("velocity band", plan.velocity_band_hz, nyq, "velocity_band_hz")
-    if df > vel[0] / 2.0:
+    if df > vel[0] / 2.0 and not partial:
         raise PlanError(f"record of {n} samples at {fs:g} Hz is too short: it resolves {df:.4g} Hz, too coarse for "
                         f"the velocity band's low edge {vel[0]:g} Hz (2 lines needed); need at least "
                         f"{math.ceil(2 * fs / vel[0])} samples", field="n_samples")
     speed = _band("speed range", plan.speed_range_hz, nyq, "speed_range_hz")
-    if df > speed[0] / 2.0:
+    if df > speed[0] / 2.0 and not partial:
         raise PlanError(f"record of {n} samples at {fs:g} Hz is too short: it resolves {df:.4g} Hz, too coarse for "
                         f"the lowest shaft speed {speed[0]:g} Hz (2 lines needed); need at least "
                         f"{math.ceil(2 * fs / speed[0])} samples", field="n_samples")
@@ -147,16 +159,22 @@ def _check_plan(plan: AnalysisPlan) -> AnalysisPlan:
     tol = _finite("order tolerance", plan.order_tolerance, "order_tolerance")
     if not 0 < tol <= 0.25:
         raise PlanError(f"order tolerance {tol:g} must be in 0 < tolerance ≤ 0.25", field="order_tolerance")
-    top = max(max(orders), SPEED_HARMONICS) * speed[1] * (1 + tol)
+    top = max(orders) * speed[1] * (1 + tol)
     if top >= nyq:
-        raise PlanError(f"speed range high end {speed[1]:g} Hz × order {max(max(orders), SPEED_HARMONICS):g} "
-                        f"reaches {top:g} Hz, at or above Nyquist {nyq:g} Hz", field="orders")
+        raise PlanError(f"speed range high end {speed[1]:g} Hz × order {max(orders):g} reaches {top:g} Hz, at or "
+                        f"above Nyquist {nyq:g} Hz", field="orders")
     slip = _finite("slip tolerance", plan.slip_tolerance, "slip_tolerance")
     if not 0 <= slip <= 0.1:
         raise PlanError(f"slip tolerance {slip:g} must be in 0 ≤ slip ≤ 0.1", field="slip_tolerance")
     harmonics = plan.harmonics
     if isinstance(harmonics, bool) or not isinstance(harmonics, int) or not 1 <= harmonics <= 10:
         raise PlanError(f"harmonics {harmonics!r} must be an integer from 1 to 10", field="harmonics")
+    alpha = _finite("false-alarm probability", plan.false_alarm, "false_alarm")
+    if not 1e-12 <= alpha <= 0.1:
+        raise PlanError(f"false-alarm probability {alpha:g} must be in 1e-12 ≤ p ≤ 0.1", field="false_alarm")
+    depth = _finite("minimum modulation depth", plan.min_depth, "min_depth")
+    if not 0 <= depth <= 2:
+        raise PlanError(f"minimum modulation depth {depth:g} must be in 0 ≤ depth ≤ 2", field="min_depth")
     if plan.bearing is not None:
         validate_geometry(plan.bearing)
     env = None
@@ -175,14 +193,20 @@ def _check_plan(plan: AnalysisPlan) -> AnalysisPlan:
                                 field="envelope_band_hz")
     return AnalysisPlan(fs_hz=fs, n_samples=n, velocity_band_hz=vel, envelope_band_hz=env, bearing=plan.bearing,
                         orders=orders, order_tolerance=tol, speed_range_hz=speed, slip_tolerance=slip,
-                        harmonics=harmonics)
+                        harmonics=harmonics, false_alarm=alpha, min_depth=depth, partial=partial)
+
+
+def _duration(n_samples: float, fs_hz: float) -> str:
+    s = n_samples / fs_hz
+    return f"{s:.3g} s"
 
 
 def make_plan(fs_hz: float, n_samples: int, *, velocity_band_hz: tuple[float, float] = (10.0, 1000.0),
               envelope_band_hz: tuple[float, float] | None = None, bearing: BearingGeometry | None = None,
               orders: Sequence[float] = (0.5, 1.0, 2.0, 3.0), order_tolerance: float = 0.03,
               speed_range_hz: tuple[float, float] = (5.0, 100.0), slip_tolerance: float = 0.02,
-              harmonics: int = 3) -> AnalysisPlan:
+              harmonics: int = 3, false_alarm: float = 1e-3, min_depth: float = 0.3,
+              partial: bool = False) -> AnalysisPlan:
     """Build and validate the plan for frames of ``n_samples`` at ``fs_hz``.
 
     Parameters
@@ -195,11 +219,18 @@ def make_plan(fs_hz: float, n_samples: int, *, velocity_band_hz: tuple[float, fl
     speed_range_hz : range of the shaft-speed estimate when no speed is given
     slip_tolerance : relative search window of the defect families (bearing slip, ± 2 % by default)
     harmonics : harmonics searched per defect family (fundamental included)
+    false_alarm : probability that a defect family is called detected in one frame of stationary Gaussian noise
+    min_depth : squared-envelope modulation depth a detected family's line needs
+    partial : accept any record of at least 64 samples (offline snapshots): what its resolution cannot carry —
+        velocity, the speed estimate, some orders or families — is left out of the results, and
+        :func:`plan_notes` says which and why.  Without it a record too short for the velocity band or the speed
+        range is an error (a measurement point's frames must carry them).
 
     Raises
     ------
     PlanError
-        band at or above Nyquist, record too short for the requested resolution, bad tolerances…
+        band at or above Nyquist, record too short for the requested resolution, bad tolerances…  ``field`` names
+        the plan field at fault.
     GeometryError
         impossible bearing geometry.
     """
@@ -207,7 +238,8 @@ def make_plan(fs_hz: float, n_samples: int, *, velocity_band_hz: tuple[float, fl
                         envelope_band_hz=None if envelope_band_hz is None else tuple(envelope_band_hz),  # type: ignore[arg-type]
                         bearing=bearing, orders=tuple(orders), order_tolerance=order_tolerance,
                         speed_range_hz=tuple(speed_range_hz),  # type: ignore[arg-type]
-                        slip_tolerance=slip_tolerance, harmonics=harmonics)
+                        slip_tolerance=slip_tolerance, harmonics=harmonics, false_alarm=false_alarm,
+                        min_depth=min_depth, partial=partial)
     plan = _validate(plan)
     kernel_for(plan)  # derived sizes are checked too; the kernel is built once and kept for the analysis
     return plan
@@ -258,6 +290,7 @@ class AnalysisKernel:
     """Precomputed, read-only state for the frames of one plan; :meth:`analyze` does only arithmetic."""
 
     __slots__ = (
+        "_cage",
         "_centre",
         "_df",
         "_disp_coef",
@@ -265,13 +298,20 @@ class AnalysisKernel:
         "_env_lines",
         "_env_m",
         "_env_stop",
+        "_estimate",
+        "_gaps",
         "_integrate",
+        "_mod",
         "_mult",
         "_mv",
         "_n",
+        "_order_min",
         "_speed_stop",
+        "_thresholds",
         "_vel_lines",
         "_vel_stop",
+        "_velocity",
+        "notes",
         "plan",
     )
 
@@ -280,22 +320,29 @@ class AnalysisKernel:
         self.plan = plan
         n = plan.n_samples
         self._n = n
-        self._df = plan.fs_hz / n
+        df = plan.fs_hz / n
+        self._df = df
+        nyq = plan.fs_hz / 2.0
+        notes: list[str] = []
+        length = f"the {_duration(n, plan.fs_hz)} record resolves {df:.3g} Hz"
         k = np.arange(n // 2 + 1, dtype=np.float64)
-        omega = 2.0 * np.pi * k * self._df
+        omega = 2.0 * np.pi * k * df
         coef = integration_coefficients(plan.fs_hz, n, n // 2 + 1)
         coef.flags.writeable = False
         self._integrate = coef
-        lo, hi = band_lines(plan.fs_hz, n, plan.velocity_band_hz)
-        if hi < lo:
-            raise PlanError(f"velocity band {plan.velocity_band_hz[0]:g}–{plan.velocity_band_hz[1]:g} Hz holds no "
-                            f"line at resolution {self._df:.4g} Hz")
+        v_band = plan.velocity_band_hz
+        lo, hi = band_lines(plan.fs_hz, n, v_band)
+        self._velocity = df <= v_band[0] / 2.0 and hi >= lo
+        if not self._velocity:
+            notes.append(f"velocity: {length}, too coarse for the velocity band's {v_band[0]:g} Hz low edge (2 lines "
+                         f"needed; needs ≥ {_duration(math.ceil(2 * plan.fs_hz / v_band[0]), plan.fs_hz)})")
+            lo, hi = max(lo, 1), max(hi, max(lo, 1))
         self._vel_lines = (lo, hi)
         self._mv = max(fast_length(math.ceil(PEAK_OVERSAMPLING * hi)), 2 * hi + 2)
         # band lines → the velocity (mm/s) and displacement (µm) waveforms: from the windowed velocity lines low in
         # the band, from the windowed acceleration lines above 8 × its low edge (see analyze)
         w_band = omega[lo : hi + 1]
-        low = k[lo : hi + 1] * self._df < 8.0 * plan.velocity_band_hz[0]
+        low = k[lo : hi + 1] * df < 8.0 * v_band[0]
         zero = np.zeros(w_band.shape)
         dcoef = np.array([
             [np.where(low, 1.0, 0.0), np.where(low, zero, -1j * G_MM_S2 / w_band)],
@@ -306,24 +353,67 @@ class AnalysisKernel:
         # the central half of a frame, where the Hann window is ≥ 0.5, in each waveform's samples
         self._centre = _central_window(self._mv)
         self._vel_stop = min(n // 2 - 1, hi + 2)
-        self._speed_stop = min(n // 2, math.ceil(SPEED_HARMONICS * plan.speed_range_hz[1] * (1 + plan.order_tolerance)
-                                               / self._df) + 3)
+        s_lo, s_hi = plan.speed_range_hz
+        self._estimate = df <= s_lo / 2.0 and SPEED_HARMONICS * s_hi * (1 + plan.order_tolerance) < nyq
+        if df > s_lo / 2.0:
+            notes.append(f"speed estimate: {length}, too coarse for the lowest shaft speed {s_lo:g} Hz (2 lines "
+                         f"needed; needs ≥ {_duration(math.ceil(2 * plan.fs_hz / s_lo), plan.fs_hz)}); give the "
+                         "speed")
+        elif not self._estimate:
+            notes.append(f"speed estimate: {SPEED_HARMONICS} harmonics of {s_hi:g} Hz reach Nyquist {nyq:g} Hz; "
+                         "give the speed")
+        self._speed_stop = min(n // 2, math.ceil(SPEED_HARMONICS * s_hi * (1 + plan.order_tolerance) / df) + 3) \
+            if self._estimate else 0
+        # orders: each at least 2 lines from DC and 1 line from the other orders, so each has a lowest shaft speed
+        o = np.asarray(plan.orders)
+        apart = np.abs(o[:, None] - o[None, :]) + np.diag(np.full(o.size, np.inf))
+        order_min = np.maximum(2.0 * df / o, df / apart.min(axis=1))
+        order_min.flags.writeable = False
+        self._order_min = order_min
+        below = [(order_key(v), float(f)) for v, f in zip(plan.orders, order_min, strict=True) if f > s_lo]
+        if below:
+            notes.append(f"orders {', '.join(k for k, _ in below)}: {length}: left out below "
+                         f"{max(f for _, f in below):.3g} Hz shaft speed (an order needs 2 lines from DC and 1 from "
+                         "the next order)")
+        self._cage = None if plan.bearing is None else defect_multiples(plan.bearing).ftf_hz
         self._env = plan.bearing is not None and plan.envelope_band_hz is not None
         self._env_lines = (0, 0)
         self._env_m = 0
         self._env_stop = 0
         self._mult = np.zeros(0)
+        self._mod = np.zeros(0)
+        self._thresholds = np.zeros(0)
+        self._gaps = (np.zeros(0), np.zeros(0, dtype=np.intp))
         if plan.bearing is not None and plan.envelope_band_hz is not None:
             m = defect_multiples(plan.bearing)
             mult = np.array([m.ftf_hz, m.bpfo_hz, m.bpfi_hz, 2.0 * m.bsf_hz])
             mult.flags.writeable = False
             self._mult = mult
+            mod = np.array([np.nan, 1.0, 1.0, m.ftf_hz])
+            mod.flags.writeable = False
+            self._mod = mod
+            self._gaps = pattern_gaps(mult, mod, plan.harmonics)
             e_lo, e_hi = band_lines(plan.fs_hz, n, plan.envelope_band_hz)
             self._env_lines = (e_lo, e_hi)
-            top_hz = plan.harmonics * float(mult.max()) * plan.speed_range_hz[1] * (1 + plan.slip_tolerance)
-            need = math.ceil(top_hz * 1.25 / self._df) + 20  # room for the floor neighbourhood
+            h, slip = plan.harmonics, plan.slip_tolerance
+            top_fund = float(mult.max()) * s_hi * (1 + slip) / df
+            top = max(h * top_fund + math.ceil(h / 2) + 1,
+                      float(np.nanmax(mult + 2.0 * np.nan_to_num(mod))) * s_hi * (1 + slip) / df + 3)
+            need = math.ceil(top) + level_headroom() + 2
             self._env_m = min_decimated_length(e_hi - e_lo + 1, need)
             self._env_stop = need + 1
+            widest = max(2 * slip * h * top_fund, 2 * SHAFT_TOLERANCE * SHAFT_HARMONICS * s_hi / df,
+                         2 * (2 + 2 * slip * float(np.nanmax(mod)) * s_hi / df)) + 3
+            self._thresholds = window_thresholds(plan.false_alarm, math.ceil(widest))
+            # a fundamental's window must start at line MIN_LINE: the family's lowest shaft speed
+            fam_min = (MIN_LINE + 1.0) * df / (mult * (1.0 - slip))
+            short = [(name.upper() if name != "bsf" else "2×BSF", float(f))
+                     for name, f in zip(FAMILIES, fam_min, strict=True) if f > s_lo]
+            if short:
+                notes.append(f"envelope {', '.join(k for k, _ in short)}: {length}: left out below "
+                             f"{max(f for _, f in short):.3g} Hz shaft speed (a defect line needs {MIN_LINE + 1} "
+                             "lines from DC)")
+        self.notes: tuple[str, ...] = tuple(notes)
 
     def analyze(self, x_g: npt.ArrayLike, shaft_hz: npt.ArrayLike | None = None) -> list[FrameIndicators]:
         """Indicators of frames ``x_g`` (channels, n_samples) in g; see :func:`analyze_frames`."""
@@ -348,14 +438,16 @@ class AnalysisKernel:
         td = centred_moments(x, mean)
 
         estimate = ~np.isfinite(f_given)
+        if not self._estimate:
+            estimate[:] = False
         # A given speed below the plan's lowest shaft speed (a stopped or coasting machine: 0 from a speed tag is
         # valid) keeps the time-domain and velocity indicators; orders and envelope families need a speed the
         # frame resolves, so they are absent for it.
-        slow = ~estimate & (f_given < plan.speed_range_hz[0])
+        slow = np.isfinite(f_given) & (f_given < plan.speed_range_hz[0])
         stop = self._vel_stop
         if estimate.any():
             stop = max(stop, self._speed_stop)
-        fast = ~estimate & ~slow
+        fast = np.isfinite(f_given) & ~slow
         known_max = float(np.max(f_given[fast])) if fast.any() else plan.speed_range_hz[1]
         stop = min(n // 2, max(stop, math.ceil(max(plan.orders) * known_max * (1 + plan.order_tolerance)
                                                / self._df) + 3))
@@ -368,12 +460,16 @@ class AnalysisKernel:
         vel_rms = np.sqrt(vel_pow[:, v_lo : v_hi + 1].sum(axis=-1) * factor)
 
         shaft = f_given.copy()
+        quality = np.full(c, np.nan)
         if estimate.any():
-            est = estimate_speed_hz(vel_pow[estimate], acc_pow[estimate], plan.speed_range_hz, self._df,
-                                    SPEED_HARMONICS)
+            est, q = estimate_speed_hz(vel_pow[estimate], acc_pow[estimate], plan.speed_range_hz, self._df,
+                                       SPEED_HARMONICS, cage_ratio=self._cage,
+                                       tolerance=plan.order_tolerance)
             shaft[estimate] = est
-        shaft_usable = np.where(slow, np.nan, shaft)
-        orders = order_amplitudes_mm_s(vel_pow, shaft_usable, plan.orders, plan.order_tolerance, self._df, n)
+            quality[estimate] = q
+        running = np.isfinite(shaft) & ~slow & (shaft > 0)
+        orders = order_amplitudes_mm_s(vel_pow, np.where(running, shaft, np.nan), plan.orders, plan.order_tolerance,
+                                       self._df, n)
 
         # velocity and displacement waveforms from the band's Hann lines only (for peak and peak-to-peak): the
         # windowed waveform, divided by the window over the frame's central half, is the band-limited waveform
@@ -392,48 +488,117 @@ class AnalysisKernel:
         vel_peak = np.maximum(_refined_peak(wave[0]), _refined_peak(-wave[0]))  # signed: |v| would fold neighbours
         disp_pp = _refined_peak(wave[1]) + _refined_peak(-wave[1])
 
-        fam: tuple[FloatArray, FloatArray, FloatArray, npt.NDArray[np.int64]] | None = None
-        has_speed = np.isfinite(shaft_usable)
-        if self._env and has_speed.any():
-            e_lo, e_hi = self._env_lines
-            env = demodulate(spec, e_lo, e_hi, self._env_m)
-            amp = envelope_spectrum(env, n, self._env_stop)
-            expected = shaft_usable[:, None] * self._mult[None, :]
-            fam = search_families(amp, expected, plan.slip_tolerance, plan.harmonics, self._df)
+        fam: FamilySearch | None = None
+        if self._env and running.any():
+            fam = self._families(spec, np.where(running, shaft, np.nan))[3]
 
         keys = [order_key(o) for o in plan.orders]
         shaft_l = shaft.tolist()
-        usable_l = has_speed.tolist()
         est_l = estimate.tolist()
+        quality_l = quality.tolist()
+        run_l = running.tolist()
         orders_l = orders.tolist()
+        order_min = self._order_min.tolist()
         cols = (td.rms_g, td.peak_g, td.peak_to_peak_g, td.crest_factor, td.kurtosis, td.skewness, td.mean_g,
                 vel_rms, vel_peak, disp_pp)
         rows = np.stack(cols, axis=1).tolist()
-        fam_l = None if fam is None else (fam[0].tolist(), fam[1].tolist(), fam[2].tolist(), fam[3].tolist())
-        mult = self._mult.tolist()
+        families = _family_results(fam, shaft, self._mult, self._df) if fam is not None else [{}] * c
         out: list[FrameIndicators] = []
         for ch in range(c):
             f = shaft_l[ch]
             known = math.isfinite(f)
-            usable = usable_l[ch]
-            order_map = {key: a for key, a in zip(keys, orders_l[ch], strict=True) if usable and math.isfinite(a)}
-            families: dict[str, FamilyResult] = {}
-            if fam_l is not None and usable:
-                freq, amp_g, snr, found = (part[ch] for part in fam_l)
-                for j, name in enumerate(FAMILIES):
-                    if math.isfinite(freq[j]):
-                        families[name] = FamilyResult(expected_hz=f * mult[j], frequency_hz=freq[j],
-                                                      amplitude_g=amp_g[j], snr_db=snr[j],
-                                                      harmonics_found=int(found[j]))
+            order_map = {key: a for key, a, f_min in zip(keys, orders_l[ch], order_min, strict=True)
+                         if run_l[ch] and f >= f_min and math.isfinite(a)}
             r = rows[ch]
+            q = quality_l[ch]
             out.append(FrameIndicators(
                 acceleration_rms_g=r[0], acceleration_peak_g=r[1], acceleration_peak_to_peak_g=r[2],
                 crest_factor=r[3], kurtosis=r[4], skewness=r[5], mean_g=r[6],
-                velocity_rms_mm_s=r[7], velocity_peak_mm_s=r[8], displacement_pp_um=r[9],
+                velocity_rms_mm_s=r[7] if self._velocity else None,
+                velocity_peak_mm_s=r[8] if self._velocity else None,
+                displacement_pp_um=r[9] if self._velocity else None,
                 shaft_hz=f if known else None, shaft_estimated=bool(est_l[ch]) and known,
-                orders_mm_s=order_map, envelope_band_hz=plan.envelope_band_hz, envelope=families,
+                orders_mm_s=order_map, envelope_band_hz=plan.envelope_band_hz,
+                envelope=families[ch] if run_l[ch] else {},
+                shaft_quality=q if bool(est_l[ch]) and math.isfinite(q) else None,
             ))
         return out
+
+
+    def _families(self, spec: npt.NDArray[np.complex64],
+                  shaft_hz: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray, FamilySearch]:
+        """Envelope spectra and the family search of frames whose rfft is ``spec`` (shaft NaN: not searched)."""
+        e_lo, e_hi = self._env_lines
+        z = demodulate(spec, e_lo, e_hi, self._env_m)
+        amp, ses, mean_line = envelope_spectra(z, self._n, self._env_stop)
+        expected = shaft_hz[:, None] * self._mult[None, :]
+        modulation = shaft_hz[:, None] * self._mod[None, :]
+        plan = self.plan
+        fam = search_families(amp, ses, mean_line, expected, modulation, shaft_hz, plan.slip_tolerance,
+                              plan.harmonics, self._df, self._thresholds, plan.min_depth, self._gaps)
+        return amp, ses, mean_line, fam
+
+    def envelope_detail(self, x_g: npt.ArrayLike,
+                        shaft_hz: float) -> tuple[FloatArray, FloatArray, FloatArray, FamilySearch]:
+        """The envelope stage of one frame in full, for displays: envelope amplitude spectrum (g), squared-envelope
+        periodogram, its mean line and the family search (see :mod:`edgevib.pipelines.envelope`).
+
+        Raises
+        ------
+        PlanError
+            the plan has no bearing or no envelope band.
+        """
+        if not self._env:
+            raise PlanError("the plan has no bearing or no envelope band: no envelope stage")
+        x = as_channels(x_g)
+        if x.shape != (1, self._n):
+            raise SignalError(f"one frame of {self._n} samples expected, got shape {x.shape}")
+        f = _shaft_array([shaft_hz], 1, self.plan.fs_hz)
+        spec = _fft.rfft((x - finite_mean(x)[:, None]).astype(np.float32))
+        return self._families(spec, f)
+
+
+def _family_results(fam: FamilySearch, shaft_hz: FloatArray, mult: FloatArray,
+                    df_hz: float) -> list[dict[str, FamilyResult]]:
+    """Per-channel :class:`FamilyResult` maps from a family search (families whose window does not fit the
+    spectrum are left out)."""
+    index = fam.part("index")
+    stat = fam.part("statistic")
+    thr = fam.part("threshold")
+    fits = fam.part("fits")
+    found = index >= 0
+    with np.errstate(invalid="ignore"):
+        counted = found & (stat >= thr)
+    n_sb = len(SIDEBAND_ORDERS)
+    harmonics = counted[..., : fam.slots - n_sb].sum(axis=-1).tolist()
+    sidebands = counted[..., fam.slots - n_sb :].sum(axis=-1).tolist()
+    with np.errstate(divide="ignore", invalid="ignore"):
+        snr = 10.0 * np.log10(stat[..., 0])
+        thr_db = 10.0 * np.log10(thr[..., 0])
+    freq_l = np.where(found[..., 0], index[..., 0] * df_hz, np.nan).tolist()
+    snr_l, thr_l = snr.tolist(), thr_db.tolist()
+    amp_l, depth_l = fam.amplitude_g.tolist(), fam.depth.tolist()
+    det_l, amb_l, fits_l = fam.detected.tolist(), fam.ambiguous_with.tolist(), fits[..., 0].tolist()
+    shaft_l = shaft_hz.tolist()
+    mult_l = mult.tolist()
+    names = (*FAMILIES, "shaft")
+    out: list[dict[str, FamilyResult]] = []
+    for ch in range(index.shape[0]):
+        res: dict[str, FamilyResult] = {}
+        for j, name in enumerate(FAMILIES):
+            if not fits_l[ch][j]:
+                continue
+            f = freq_l[ch][j]
+            has = math.isfinite(f)
+            res[name] = FamilyResult(
+                expected_hz=shaft_l[ch] * mult_l[j], frequency_hz=f if has else None,
+                amplitude_g=amp_l[ch][j] if has else None, snr_db=snr_l[ch][j] if has else None,
+                harmonics_found=int(harmonics[ch][j]), sidebands_found=int(sidebands[ch][j]),
+                depth=depth_l[ch][j] if has else None, detected=bool(det_l[ch][j]),
+                ambiguous_with=names[amb_l[ch][j]] if amb_l[ch][j] >= 0 else None,
+                threshold_db=thr_l[ch][j])
+        out.append(res)
+    return out
 
 
 def _central_window(m: int) -> tuple[slice, FloatArray]:
@@ -452,7 +617,8 @@ def _refined_peak(w: FloatArray) -> FloatArray:
     """Largest value of each row, refined through the largest sample and its two neighbours.
 
     Three samples a, b, c of A·cos(φ(t − τ)) give cos φ = (a + c)/2b and A = √(b² + ((c − a)/(2 sin φ))²) exactly,
-    whatever the sampling; that is used where it applies (0 < cos φ < 1), a parabola otherwise.
+    whatever the sampling (more than 2 samples per period); that is used where it applies (−1 < cos φ < 1), a
+    parabola otherwise.
 
     Parameters
     ----------
@@ -468,7 +634,7 @@ def _refined_peak(w: FloatArray) -> FloatArray:
         cosine = np.sqrt(b**2 + ((c - a) / (2.0 * sin_phi)) ** 2)
         denom = a - 2.0 * b + c
         parabola = np.where(denom < 0, b - 0.125 * (a - c) ** 2 / np.where(denom < 0, denom, -1.0), b)
-    use_cosine = (b > 0) & (cos_phi > 0) & (cos_phi < 1) & np.isfinite(cosine)
+    use_cosine = (b > 0) & (cos_phi > -1) & (cos_phi < 1) & np.isfinite(cosine)
     inner = (i > 0) & (i < m - 1)  # a largest sample on the edge has no neighbour to refine with
     peak: FloatArray = np.where(inner, np.where(use_cosine, np.maximum(cosine, b), parabola), b)
     return peak
@@ -499,6 +665,13 @@ def kernel_for(plan: AnalysisPlan) -> AnalysisKernel:  # evicted and rebuilt bet
     return AnalysisKernel(plan)
 
 
+def plan_notes(plan: AnalysisPlan) -> tuple[str, ...]:
+    """One line per indicator group the plan's record is too short for: what is missing and why (empty when
+    everything can be computed).  For example ``"velocity: the 0.05 s record resolves 20 Hz, coarser than the
+    velocity band's 10 Hz low edge (needs ≥ 0.1 s)"``."""
+    return kernel_for(plan).notes
+
+
 def analyze_frames(x_g: npt.ArrayLike, plan: AnalysisPlan,
                    shaft_hz: npt.ArrayLike | None = None) -> list[FrameIndicators]:
     """Analyse frames that share one plan.
@@ -511,11 +684,11 @@ def analyze_frames(x_g: npt.ArrayLike, plan: AnalysisPlan,
         from :func:`make_plan`.
     shaft_hz : None, float or array_like of shape (channels,)
         Shaft speeds in Hz; None or NaN entries are estimated from the spectrum within ``plan.speed_range_hz``
-        (``shaft_estimated=True``).  Where no speed can be determined, ``shaft_hz`` is None and the orders and
-        envelope families are empty.  A given speed below ``plan.speed_range_hz[0]`` — 0 for a standing shaft, or
-        a machine coasting or running up below the speeds its frames resolve — is valid: it is reported as
-        ``shaft_hz``, the time-domain and velocity indicators are computed, and the orders and envelope families
-        are absent (empty), not zero.
+        (``shaft_estimated=True``, with ``shaft_quality``).  Where no speed can be determined, ``shaft_hz`` is
+        None and the orders and envelope families are empty.  A given speed below ``plan.speed_range_hz[0]`` — 0
+        for a standing shaft, or a machine coasting or running up below the speeds its frames resolve — is
+        valid: it is reported as ``shaft_hz``, the time-domain and velocity indicators are computed, and the
+        orders and envelope families are absent (empty), not zero.
 
     Returns
     -------

@@ -1,57 +1,118 @@
-"""Envelope analysis by band selection in the one-sided spectrum (a decimated complex analytic signal).
+"""Envelope analysis by band selection in the one-sided spectrum, and bearing defect-family detection in the
+squared-envelope spectrum.
 
-Method (Randall & Antoni, MSSP 25 (2011) 485–520; FIELD_NOTES §3): the lines of the frame's rfft inside the
+Demodulation (Randall & Antoni, MSSP 25 (2011) 485–520; FIELD_NOTES §3): the lines of the frame's rfft inside the
 demodulation band are shifted to baseband and inverse-transformed alone, at a length ``M`` just large enough for
 the envelope frequencies searched.  That is an ideal band-pass filter, the analytic signal and an alias-free
-decimation in one small transform; no full-length Hilbert transform is needed.  Scaling:
+decimation in one small transform.  Its result ``z`` (complex, M samples) gives
 
-* the decimated complex signal ``z = (2M/N) · ifft(X[k_lo..k_hi], M)`` has ``|z|`` equal to the magnitude of the
-  analytic signal of the band-passed frame (``|scipy.signal.hilbert(bandpass(x))|``) at M evenly spaced times;
-* the **envelope spectrum** is the single-sided amplitude spectrum of ``|z|`` with a Hann window,
-  ``A = 2 |rfft(w · |z|)| / Σw``, in g (the mean need not be removed: with a Hann window it reaches lines 0 and 1
-  only).  It reads the *amplitude* (peak) of each envelope
-  component — the same scaling as the check-value method E1 of the project's datasets README, so its values
-  apply.  Its line spacing equals the frame's, fs/N.
+* the **squared envelope** ``s = |z|²`` — band-limited to the band's width, so its decimated spectrum is free of
+  aliasing — whose Hann-windowed periodogram, the **squared-envelope spectrum** (SES), is where lines are
+  *detected* (the better detector of periodic impacts, Randall & Antoni 2011; checked in the tests);
+* the **envelope** ``|z|``, whose single-sided amplitude spectrum ``A = 2 |rfft(w · |z|)| / Σw`` (Hann) is the
+  *amplitude* reported for a found line, in g: the same scaling as the check-value method E1 of the project's
+  datasets README, so its values apply.
 
-Defect families: each fundamental (FTF, BPFO, BPFI and, for a rolling-element defect, **2 × BSF**) and its
-harmonics are searched within ± the slip tolerance (at least ± 1 line) of h × the kinematic value.  A line's
-signal-to-noise ratio is its amplitude over the median of the envelope spectrum in ± 20 % of its frequency (at
-least ± 8 lines beyond the search window), excluding the search window itself, in dB (20 log10 of the ratio).
+Both spectra have the frame's line spacing fs/N.
+
+Defect families (FTF, BPFO, BPFI and, for a rolling-element defect, **2 × BSF**), per frame and channel:
+
+1. *Shaft lines.*  The shaft harmonics 1× … :data:`SHAFT_HARMONICS`× are searched first (± :data:`SHAFT_TOLERANCE`);
+   a significant local maximum there is a shaft line, and is never taken for a bearing line (a bearing whose
+   defect frequency lies near a whole order, e.g. BPFO ≈ 3.05× of a 6203, would otherwise "find" the 3× line).
+2. *Fundamental.*  Within ± the slip tolerance (at least ± 1 line) of the kinematic value, the largest SES line
+   that is a **true local maximum** (above its lower neighbour, not below its upper one) and not a shaft line.  A
+   window whose largest value sits on its edge — the skirt of a line outside it — has no local maximum and finds
+   nothing (frequency, amplitude and SNR are then None).
+3. *Harmonics* 2 … H, each searched around h × the found line (± ⌈h/2⌉ + 1 lines; around h × the kinematic value
+   ± h × slip when the fundamental has no local maximum), each counting only where it is itself a significant
+   local maximum.
+4. *Sidebands* of the fundamental at ± 1 and ± 2 times the modulation frequency: shaft speed for BPFI (the inner
+   ring turns through the load zone), FTF for 2 × BSF (the element travels with the cage) — Randall & Antoni
+   2011 — and shaft speed for BPFO (not expected physically; examined so that a line at BPFO + 1× is recognised
+   as such).
+5. *Verdict.*  A family is **detected** when its fundamental is significant — its SES level over the local level
+   exceeds the window's threshold for the plan's false-alarm probability (:mod:`edgevib.pipelines.detection`) —
+   and the squared envelope's **modulation depth** there, ``2|SES(f)| / mean(s)`` (twice the amplitude-modulation
+   index of the envelope for a small modulation), reaches the plan's minimum even after the line's own noise is
+   subtracted at twice its r.m.s. (``depth · (1 − 2/√T)``): a line that is statistically real but carries a
+   negligible share of the band's power (a long record makes the faintest periodicity significant; a short one
+   lets noise lift a faint line) is reported with its numbers but not called a defect.
+6. *Resolution.*  A fundamental closer than one line to a line of the pattern of another family present in the
+   frame (harmonics, sidebands), or to a shaft harmonic found in the frame, cannot be told from it: its verdict
+   is withheld (ambiguous with that family).  For the CWRU 6205 bearing BPFO lies 0.17 × shaft from BPFI − 2×,
+   so telling them apart needs lines finer than about 5 Hz at 1800 r/min (frames of 0.2 s or more).
+7. *Coincidences.*  A detected family whose fundamental sits (± 1 line) on a line of another family's pattern —
+   a local maximum in one of its harmonic or sideband windows, that family's own fundamental being significant
+   (3 × BPFO lies near 2 × BPFI, 2 × BSF near BPFO + 1×, BPFO near BPFI − 2× at coarse resolution) — is compared
+   with that family by the significant lines each has that the other does not: the one with more evidence keeps
+   its verdict, the other is reported as ambiguous (not detected), naming the family that explains its line.
+   Ties leave the challenger ambiguous.
+
+``snr_db`` is 10·log10 of the line's SES level over the estimated local mean level (the statistic ``T`` of
+:mod:`edgevib.pipelines.detection`).
 """
 
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 import numpy.typing as npt
 
 from edgevib.pipelines import _fft
+from edgevib.pipelines.detection import GUARD_LINES, LEVEL_LINES, LEVEL_RANK, LEVEL_STEP, level_mean_factor
 from edgevib.pipelines.indicators import as_channels, finite_mean
-from edgevib.pipelines.spectrum import band_lines, hann_lines, masked_median, window_argmax
+from edgevib.pipelines.spectrum import band_lines, hann_lines
 from edgevib.pipelines.types import PlanError
 
 __all__ = [
-    "HARMONIC_SNR_DB",
+    "MIN_LINE",
+    "SHAFT_HARMONICS",
+    "SHAFT_TOLERANCE",
+    "FamilySearch",
     "demodulate",
     "envelope_amplitude_spectrum",
-    "envelope_spectrum",
+    "envelope_spectra",
+    "fast_length",
+    "level_headroom",
+    "min_decimated_length",
+    "pattern_gaps",
     "search_families",
+    "squared_envelope_spectrum",
 ]
 
 FloatArray = npt.NDArray[np.float64]
-ComplexArray = npt.NDArray[np.complex128]
+IntArray = npt.NDArray[np.intp]
+BoolArray = npt.NDArray[np.bool_]
 
-HARMONIC_SNR_DB = 10.0
-"""A harmonic counts as found when it stands this far over the local floor (common practice: ~10 dB)."""
-FLOOR_SPAN = 0.2  # the floor neighbourhood: ± 20 % of the line frequency
-FLOOR_MIN_LINES = 8  # … and at least this many lines beyond the search window on each side
+SHAFT_HARMONICS = 12
+"""Shaft harmonics searched in the squared-envelope spectrum before the bearing families."""
+SHAFT_TOLERANCE = 0.005
+"""Relative window of a shaft harmonic (± 0.5 %, at least ± 1 line): shaft lines are synchronous, bearing lines
+slip by 1–2 % (Randall & Antoni 2011)."""
+MIN_LINE = 3
+SIDEBAND_ORDERS = np.array([-2.0, -1.0, 1.0, 2.0])
+"""Sidebands examined around a fundamental, in multiples of its modulation frequency (the inner-race series of
+± k × shaft is often strongest at ± 2×: datasets README, CWRU 105/106)."""
+"""Lowest line a search window may start at (line 0 is the mean; a local maximum needs its lower neighbour)."""
+DEPTH_NOISE_RMS = 2.0
+"""The noise in a tested line is taken at this many times its r.m.s. when its depth is compared with the minimum
+(a circular Gaussian exceeds twice its r.m.s. magnitude with probability e⁻⁴ ≈ 2 %)."""
+_LEVEL_FACTOR = level_mean_factor(LEVEL_LINES, LEVEL_RANK)
 _TINY = 1e-300
 
 
-def demodulate(spec: ComplexArray, k_lo: int, k_hi: int, m: int) -> npt.NDArray[np.float32]:
-    """Unscaled envelope of the band ``k_lo..k_hi`` (rfft lines, inclusive), decimated to ``m`` samples.
+def level_headroom() -> int:
+    """Lines needed above a search window for its level lines (when none can be taken below it)."""
+    return GUARD_LINES + LEVEL_STEP * (LEVEL_LINES - 1) + 2
+
+
+def demodulate(spec: npt.NDArray[np.complexfloating[Any, Any]], k_lo: int, k_hi: int,
+               m: int) -> npt.NDArray[np.complex64]:
+    """Complex envelope of the band ``k_lo..k_hi`` (rfft lines, inclusive), decimated to ``m`` samples, unscaled.
 
     Parameters
     ----------
@@ -60,33 +121,41 @@ def demodulate(spec: ComplexArray, k_lo: int, k_hi: int, m: int) -> npt.NDArray[
 
     Returns
     -------
-    ndarray, shape (channels, m), float32: ``|ifft(spec[:, k_lo:k_hi+1], m)|``, computed in single precision
-    (relative error ~1e-7, far below any envelope floor) because this is the pipeline's second-largest transform.
-    Times ``2m/N`` it is the envelope ``|hilbert(bandpass(x))|`` in the unit of the frame (g);
-    :func:`envelope_spectrum` applies that factor.
+    ndarray, shape (channels, m), complex64: ``ifft(spec[:, k_lo:k_hi+1], m)``, computed in single precision
+    (relative error ~1e-7, far below any envelope floor).  Times ``2m/N`` its magnitude is the envelope
+    ``|hilbert(bandpass(x))|`` in the unit of the frame (g); :func:`envelope_spectra` applies that factor.
     """
     z = np.zeros((spec.shape[0], m), dtype=np.complex64)
     z[:, : k_hi - k_lo + 1] = spec[:, k_lo : k_hi + 1]  # shift to baseband (and to single precision)
-    z = _fft.ifft(z, m, overwrite=True)
-    env: npt.NDArray[np.float32] = np.abs(z)
-    return env
+    out: npt.NDArray[np.complex64] = _fft.ifft(z, m, overwrite=True)
+    return out
 
 
-def envelope_spectrum(env: npt.NDArray[np.floating[Any]], n_samples: int, stop: int) -> FloatArray:
-    """Envelope amplitude spectrum, lines ``0 .. stop-1``, from :func:`demodulate`'s output.
+def envelope_spectra(z: npt.NDArray[np.complexfloating[Any, Any]], n_samples: int,
+                     stop: int) -> tuple[FloatArray, FloatArray, FloatArray]:
+    """Envelope amplitude spectrum and squared-envelope periodogram, lines ``0 .. stop-1``, from :func:`demodulate`.
 
-    A periodic Hann window is applied in the frequency domain (three taps, exact), and the mean is not
-    subtracted: with that window a constant only reaches lines 0 and 1, which are never searched.  Scaling:
-    ``A = 2 |rfft(w · e)| / Σw`` for the envelope ``e = (2m/N) · env``, i.e. ``8/N · |rfft(w · env)|``.
+    A periodic Hann window is applied in the frequency domain (three taps, exact); the means are not subtracted
+    (with that window a constant only reaches lines 0 and 1, which are never searched).
 
     Returns
     -------
-    ndarray, shape (channels, stop), in g (peak reading, like method E1)
+    amplitude_g : ndarray, shape (channels, stop) — ``2 |rfft(w · e)| / Σw`` for the envelope ``e = (2m/N)|z|``,
+        in g (peak reading, like method E1)
+    ses : ndarray, shape (channels, stop) — ``|rfft(w · |z|²)|²``, unscaled (only ratios of its lines are used)
+    ses_mean_line : ndarray, shape (channels,) — ``Σ |z|²`` (line 0 of the unwindowed transform): the modulation
+        depth of line k is ``4 √ses[k] / ses_mean_line`` (a Hann line of amplitude a reads a·m/4)
     """
-    spec = _fft.rfft(env)
-    lines = hann_lines(spec, min(stop, env.shape[-1] // 2))
-    amp: FloatArray = np.abs(lines).astype(np.float64) * (8.0 / n_samples)
-    return amp
+    s = z.real * z.real + z.imag * z.imag
+    both = np.empty((2, *s.shape), dtype=s.dtype)
+    both[1] = s
+    np.sqrt(s, out=both[0])
+    spec = _fft.rfft(both)
+    mean_line = spec[1, :, 0].real.astype(np.float64)
+    lines = hann_lines(spec.reshape(-1, spec.shape[-1]), min(stop, z.shape[-1] // 2)).reshape(2, s.shape[0], -1)
+    amp: FloatArray = np.abs(lines[0]).astype(np.float64) * (8.0 / n_samples)
+    ses: FloatArray = (lines[1].real.astype(np.float64) ** 2 + lines[1].imag.astype(np.float64) ** 2)
+    return amp, ses, mean_line
 
 
 def fast_length(n: int) -> int:
@@ -109,9 +178,28 @@ def min_decimated_length(band_lines_count: int, max_envelope_line: int) -> int:
     return fast_length(need)
 
 
+def _spectra_of_records(x_g: npt.ArrayLike, fs_hz: float, band_hz: tuple[float, float],
+                        max_frequency_hz: float | None) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
+    x = as_channels(x_g)
+    n = x.shape[-1]
+    if not 0 < band_hz[0] < band_hz[1] < fs_hz / 2:
+        raise PlanError(f"envelope band {band_hz[0]:g}–{band_hz[1]:g} Hz must lie inside 0–{fs_hz / 2:g} Hz "
+                        "(Nyquist)")
+    finite_mean(x)
+    k_lo, k_hi = band_lines(fs_hz, n, band_hz)
+    df = fs_hz / n
+    fmax = band_hz[1] - band_hz[0] if max_frequency_hz is None else max_frequency_hz
+    top = math.ceil(fmax / df) + 1
+    m = min_decimated_length(k_hi - k_lo + 1, top)
+    z = demodulate(_fft.rfft(x), k_lo, k_hi, m)  # line 0 (the mean) is outside the band
+    amp, ses, mean_line = envelope_spectra(z, n, top + 1)
+    freqs: FloatArray = np.arange(amp.shape[-1]) * df
+    return freqs, amp, ses, mean_line
+
+
 def envelope_amplitude_spectrum(x_g: npt.ArrayLike, fs_hz: float, band_hz: tuple[float, float],
                                 max_frequency_hz: float | None = None) -> tuple[FloatArray, FloatArray]:
-    """Envelope spectrum of whole records (see the module docstring for the method and scaling).
+    """Envelope amplitude spectrum of whole records (method E1's scaling; see the module docstring).
 
     Parameters
     ----------
@@ -124,62 +212,278 @@ def envelope_amplitude_spectrum(x_g: npt.ArrayLike, fs_hz: float, band_hz: tuple
     freqs_hz : ndarray, shape (lines,)
     amplitude_g : ndarray, shape (channels, lines)
     """
-    x = as_channels(x_g)
-    n = x.shape[-1]
-    if not 0 < band_hz[0] < band_hz[1] < fs_hz / 2:
-        raise PlanError(f"envelope band {band_hz[0]:g}–{band_hz[1]:g} Hz must lie inside 0–{fs_hz / 2:g} Hz "
-                        "(Nyquist)")
-    finite_mean(x)
-    k_lo, k_hi = band_lines(fs_hz, n, band_hz)
-    df = fs_hz / n
-    fmax = band_hz[1] - band_hz[0] if max_frequency_hz is None else max_frequency_hz
-    top = math.ceil(fmax / df) + 1
-    m = min_decimated_length(k_hi - k_lo + 1, top)
-    env = demodulate(_fft.rfft(x), k_lo, k_hi, m)  # line 0 (the mean) is outside the band
-    amp = envelope_spectrum(env, n, top + 1)
-    freqs: FloatArray = np.arange(amp.shape[-1]) * df
+    freqs, amp, _, _ = _spectra_of_records(x_g, fs_hz, band_hz, max_frequency_hz)
     return freqs, amp
 
 
-def search_families(amp: FloatArray, expected_hz: FloatArray, slip: float, harmonics: int,
-                    df_hz: float) -> tuple[FloatArray, FloatArray, FloatArray, npt.NDArray[np.int64]]:
-    """Search defect families (fundamental + harmonics) in envelope spectra.
+def squared_envelope_spectrum(x_g: npt.ArrayLike, fs_hz: float, band_hz: tuple[float, float],
+                              max_frequency_hz: float | None = None) -> tuple[FloatArray, FloatArray]:
+    """Squared-envelope spectrum of whole records as modulation depth per line (dimensionless).
 
-    Parameters
-    ----------
-    amp : ndarray, shape (channels, lines) — envelope amplitude spectra
-    expected_hz : ndarray, shape (channels, families) — kinematic fundamentals; NaN where unknown
-    slip : relative search tolerance (± slip × h × expected, at least ± 1 line)
-    harmonics : harmonics searched per family (1 = the fundamental only)
+    Line k reads ``2 |Σ w·s·e^{−2πikn/M}| / Σw / mean(s)`` for the squared envelope s (Hann window w): a
+    squared envelope ``S₀(1 + m cos 2πft)`` reads m at f.  An amplitude-modulated carrier
+    ``A(1 + μ cos 2πft) sin 2πf_c t`` reads ``2μ / (1 + μ²/2)`` at f and ``(μ²/2) / (1 + μ²/2)`` at 2f.
 
     Returns
     -------
-    frequency_hz, amplitude_g, snr_db : ndarrays, shape (channels, families) — of the fundamental; NaN where the
-        fundamental's window does not fit in the spectrum
-    harmonics_found : int ndarray, shape (channels, families) — harmonics (fundamental included) at least
-        ``HARMONIC_SNR_DB`` over their local floor
+    freqs_hz : ndarray, shape (lines,)
+    depth : ndarray, shape (channels, lines)
     """
-    c, k = amp.shape
-    h = np.arange(1, harmonics + 1, dtype=np.float64)
-    known = np.isfinite(expected_hz)
-    centre_bins = np.where(known, expected_hz, 0.0)[..., None] * h / df_hz  # (c, f, h)
-    half = np.maximum(1.0, slip * centre_bins)
-    lo = np.ceil(centre_bins - half).astype(np.intp)
-    hi = np.floor(centre_bins + half).astype(np.intp)
-    shape = lo.shape
-    flat = (c, -1)
-    peak = window_argmax(amp, lo.reshape(flat), hi.reshape(flat)).reshape(shape)
-    span = np.maximum(FLOOR_SPAN * centre_bins, half + FLOOR_MIN_LINES + 1)
-    f_lo = np.maximum(1, np.floor(centre_bins - span).astype(np.intp))
-    f_hi = np.ceil(centre_bins + span).astype(np.intp)
-    floor = masked_median(amp, f_lo.reshape(flat), f_hi.reshape(flat), (lo - 1).reshape(flat),
-                          (hi + 1).reshape(flat)).reshape(shape)
-    value = np.take_along_axis(amp, peak.reshape(flat), axis=1).reshape(shape)
-    fits = known[..., None] & (lo >= 1) & (f_hi <= k - 1)
+    freqs, _, ses, mean_line = _spectra_of_records(x_g, fs_hz, band_hz, max_frequency_hz)
     with np.errstate(divide="ignore", invalid="ignore"):
-        snr = np.where(value > _TINY, 20.0 * np.log10(np.maximum(value, _TINY) / np.maximum(floor, _TINY)), 0.0)
-    snr = np.where(fits, snr, np.nan)
-    found = (fits & (snr >= HARMONIC_SNR_DB)).sum(axis=-1)
-    nan = np.float64(np.nan)
-    freq = np.where(fits[..., 0], peak[..., 0] * df_hz, nan)
-    return freq, np.where(fits[..., 0], value[..., 0], nan), snr[..., 0], found
+        depth: FloatArray = 4.0 * np.sqrt(ses) / mean_line[:, None]
+    return freqs, np.where(np.isfinite(depth), depth, 0.0)
+
+
+# ----------------------------------------------------------------------------------------------- line search
+
+
+def _gather(a: npt.NDArray[Any], idx: IntArray) -> npt.NDArray[Any]:
+    """``a[row, idx[row, ...]]`` for every row (``idx`` already in range)."""
+    c = a.shape[0]
+    rows = np.arange(c).reshape((c,) + (1,) * (idx.ndim - 1))
+    out: npt.NDArray[Any] = a[rows, idx]
+    return out
+
+
+@dataclass(frozen=True, slots=True)
+class LineSearch:
+    """Result of searching windows of a spectrum, one value per window (arrays of shape (channels, windows))."""
+
+    index: IntArray  # line of the largest admissible local maximum; -1 where none
+    statistic: FloatArray  # its level over the estimated local mean level (T); NaN where none
+    threshold: FloatArray  # the window's threshold on T; NaN where the window does not fit
+    fits: BoolArray  # the window and its level lines lie inside the spectrum
+    lo: IntArray  # window's first line
+    hi: IntArray  # window's last line
+
+    @property
+    def found(self) -> BoolArray:
+        """A significant local maximum: the line counts."""
+        with np.errstate(invalid="ignore"):
+            out: BoolArray = (self.index >= 0) & (self.statistic >= self.threshold)
+        return out
+
+
+def search_lines(ses: FloatArray, centre_lines: FloatArray, half_lines: FloatArray, thresholds: FloatArray,
+                 excluded: BoolArray | None = None, min_half: float = 1.0) -> LineSearch:
+    """Largest local maximum of ``ses`` in each window ``centre ± half`` and its detection statistic.
+
+    Parameters
+    ----------
+    ses : ndarray, shape (channels, lines) — a periodogram (squared-envelope spectrum)
+    centre_lines, half_lines : ndarrays, shape (channels, windows) — window centres and half-widths in lines
+        (NaN centre: no window)
+    thresholds : ndarray, shape (max_lines + 1,) — threshold on T for a window of M lines
+        (:func:`edgevib.pipelines.detection.window_thresholds`); wider windows use the last entry
+    excluded : bool ndarray, shape (channels, lines) — lines that may not be taken as the maximum
+    min_half : smallest half-width in lines (1: the two lines around a centre between lines; 0.5: the nearest)
+
+    Returns
+    -------
+    LineSearch
+    """
+    k = ses.shape[1]
+    known = np.isfinite(centre_lines) & np.isfinite(half_lines)
+    centre = np.where(known, centre_lines, 0.0)
+    half = np.where(known, np.maximum(half_lines, min_half), min_half)
+    lo = np.ceil(centre - half - 1e-9).astype(np.intp)
+    hi = np.floor(centre + half + 1e-9).astype(np.intp)
+    fits = known & (lo >= MIN_LINE) & (hi + level_headroom() <= k - 1)
+    lo_c = np.where(fits, lo, MIN_LINE)
+    hi_c = np.where(fits, hi, MIN_LINE)
+    width = int((hi_c - lo_c).max()) + 1 if lo_c.size else 1
+    idx = lo_c[..., None] + np.arange(width)
+    valid = idx <= hi_c[..., None]
+    idx = np.minimum(idx, k - 2)
+    v = _gather(ses, idx)
+    local = valid & (v > _gather(ses, idx - 1)) & (v >= _gather(ses, idx + 1))
+    if excluded is not None:
+        local &= ~_gather(excluded, idx)
+    best = np.argmax(np.where(local, v, -np.inf), axis=-1)
+    has = local.any(axis=-1) & fits
+    peak = np.take_along_axis(idx, best[..., None], axis=-1)[..., 0]
+    # level lines: every other line beyond the guard, half below and half above (all above where the spectrum
+    # starts too close)
+    per_side = LEVEL_LINES // 2
+    i = np.arange(per_side)
+    below = lo_c[..., None] - GUARD_LINES - 1 - LEVEL_STEP * i
+    ok_below = below >= 2
+    missing = per_side - ok_below.sum(axis=-1)
+    j = np.arange(LEVEL_LINES)
+    above = hi_c[..., None] + GUARD_LINES + 1 + LEVEL_STEP * j
+    ok_above = j < (per_side + missing)[..., None]
+    vals = np.concatenate([np.where(ok_below, _gather(ses, np.clip(below, 0, k - 1)), np.inf),
+                           np.where(ok_above, _gather(ses, np.clip(above, 0, k - 1)), np.inf)], axis=-1)
+    level = np.partition(vals, LEVEL_RANK - 1, axis=-1)[..., LEVEL_RANK - 1] / _LEVEL_FACTOR
+    value = _gather(ses, peak)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        stat = np.where(has, value / np.maximum(level, _TINY), np.nan)
+    m_lines = np.minimum(hi_c - lo_c + 1, thresholds.size - 1)
+    thr = np.where(fits, thresholds[m_lines], np.nan)
+    return LineSearch(index=np.where(has, peak, -1), statistic=stat, threshold=thr, fits=fits, lo=lo_c, hi=hi_c)
+
+
+@dataclass(frozen=True, slots=True)
+class FamilySearch:
+    """Defect-family search of squared-envelope spectra (see the module docstring).
+
+    Line slots per family (axis 2, ``slots = harmonics + 4``): 0 the fundamental, 1 … H−1 harmonics 2 … H,
+    then the sidebands at :data:`SIDEBAND_ORDERS` (−2, −1, +1, +2) × the modulation frequency.  Shapes:
+    (channels, families, slots) or (channels, families).
+    """
+
+    lines: LineSearch  # reshaped views: index/statistic/... of shape (channels, families * slots)
+    slots: int
+    expected_lines: FloatArray  # (channels, families, slots) window centres in lines (NaN: not searched)
+    amplitude_g: FloatArray  # (channels, families) envelope amplitude at the fundamental; NaN where none
+    depth: FloatArray  # (channels, families) squared-envelope modulation depth at the fundamental; NaN where none
+    significant: BoolArray  # (channels, families) fundamental is a significant local maximum
+    detected: BoolArray  # (channels, families) the verdict
+    ambiguous_with: IntArray  # (channels, families) family index (or ``families`` for the shaft) explaining the
+    #                           fundamental's line; -1 where not ambiguous
+    shaft: LineSearch  # (channels, SHAFT_HARMONICS) the shaft harmonics
+
+    def part(self, name: str) -> npt.NDArray[Any]:
+        """A field of :attr:`lines` shaped (channels, families, slots)."""
+        a: npt.NDArray[Any] = getattr(self.lines, name)
+        return a.reshape(a.shape[0], -1, self.slots)
+
+
+def pattern_gaps(multiples: FloatArray, modulation: FloatArray, harmonics: int) -> tuple[FloatArray, IntArray]:
+    """How close each family's fundamental comes to the lines of every other family's pattern and to the shaft
+    harmonics.
+
+    Parameters
+    ----------
+    multiples : ndarray, shape (families,) — fundamentals as multiples of shaft speed
+    modulation : ndarray, shape (families,) — sideband spacings as multiples of shaft speed (NaN: none)
+
+    Returns
+    -------
+    gap : ndarray, shape (families, families + 1) — ``gap[a, b]``: the smallest distance, in multiples of shaft
+        speed, from family a's fundamental to family b's harmonics 1 … ``harmonics`` or its sidebands
+        (:data:`SIDEBAND_ORDERS`); column ``families`` is the distance to the nearest shaft harmonic
+        1 … :data:`SHAFT_HARMONICS`; the diagonal is +inf
+    shaft_order : int ndarray, shape (families,) — that nearest shaft harmonic
+    """
+    nf = multiples.size
+    h = np.arange(1, harmonics + 1, dtype=np.float64)
+    gap = np.full((nf, nf + 1), np.inf)
+    for b in range(nf):
+        sb = multiples[b] + np.nan_to_num(modulation[b], nan=np.inf) * SIDEBAND_ORDERS
+        lines = np.concatenate([multiples[b] * h, sb])
+        for a in range(nf):
+            if a != b:
+                gap[a, b] = float(np.min(np.abs(lines - multiples[a])))
+    shaft_order = np.clip(np.rint(multiples), 1, SHAFT_HARMONICS).astype(np.intp)
+    gap[:, nf] = np.abs(multiples - shaft_order)
+    gap.flags.writeable = False
+    return gap, shaft_order
+
+
+def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArray, expected_hz: FloatArray,
+                    modulation_hz: FloatArray, shaft_hz: FloatArray, slip: float, harmonics: int, df_hz: float,
+                    thresholds: FloatArray, min_depth: float,
+                    gaps: tuple[FloatArray, IntArray] | None = None) -> FamilySearch:
+    """Search and judge defect families in envelope spectra (method in the module docstring).
+
+    Parameters
+    ----------
+    amp_g, ses, ses_mean_line : from :func:`envelope_spectra`; shapes (channels, lines), (channels, lines),
+        (channels,)
+    expected_hz : ndarray, shape (channels, families) — kinematic fundamentals; NaN where unknown
+    modulation_hz : ndarray, shape (channels, families) — sideband spacing per family; NaN for none
+    shaft_hz : ndarray, shape (channels,) — shaft speed; NaN where unknown
+    slip : relative search tolerance of the fundamentals (± slip × expected, at least ± 1 line)
+    harmonics : harmonics per family, fundamental included (≥ 1)
+    thresholds : from :func:`edgevib.pipelines.detection.window_thresholds`
+    min_depth : minimum squared-envelope modulation depth of a detected fundamental
+    gaps : from :func:`pattern_gaps`; a fundamental closer than one line to a line of another family's pattern
+        (that family's fundamental being significant in the frame) or to a shaft harmonic found in the frame cannot
+        be told from it at this resolution: its verdict is withheld (ambiguous with that family)
+
+    Returns
+    -------
+    FamilySearch
+    """
+    c, k = ses.shape
+    nf = expected_hz.shape[1]
+    # 1. shaft harmonics: significant local maxima at whole orders are shaft lines, never bearing lines
+    orders = np.arange(1, SHAFT_HARMONICS + 1, dtype=np.float64)
+    s_centre = shaft_hz[:, None] * orders / df_hz
+    shaft = search_lines(ses, s_centre, SHAFT_TOLERANCE * s_centre, thresholds, min_half=0.5)
+    excluded = np.zeros((c, k), dtype=bool)
+    s_found = shaft.found
+    rows, cols = np.nonzero(s_found)
+    excluded[rows, shaft.index[rows, cols]] = True
+    # 2. fundamentals
+    f_centre = expected_hz / df_hz
+    fund = search_lines(ses, f_centre, slip * f_centre, thresholds, excluded)
+    has = fund.index >= 0
+    k1 = np.where(has, fund.index, 0).astype(np.float64)
+    # 3. harmonics (around h × the found line, else h × the expected one) and sidebands (around the found line)
+    h = np.arange(2, harmonics + 1, dtype=np.float64)
+    h_centre = np.where(has[..., None], k1[..., None] * h, f_centre[..., None] * h)
+    h_half = np.where(has[..., None], np.ceil(h / 2.0) + 1.0, np.maximum(1.0, slip * f_centre[..., None] * h))
+    mod = modulation_hz / df_hz
+    sb_ok = has & np.isfinite(mod)
+    mod0 = np.where(sb_ok, mod, 0.0)
+    sb_centre = np.where(sb_ok[..., None], k1[..., None] + mod0[..., None] * SIDEBAND_ORDERS, np.nan)
+    sb_half = 1.0 + np.ceil(slip * mod0[..., None] * np.abs(SIDEBAND_ORDERS))
+    centres = np.concatenate([f_centre[..., None], h_centre, sb_centre], axis=-1)  # (c, f, slots)
+    halves = np.concatenate([np.maximum(1.0, slip * f_centre)[..., None], h_half, sb_half], axis=-1)
+    slots = centres.shape[-1]
+    rest = search_lines(ses, centres[..., 1:].reshape(c, -1), halves[..., 1:].reshape(c, -1), thresholds, excluded)
+    lines = _join(fund, rest, nf, slots)
+    found = lines.found.reshape(c, nf, slots)
+    index = lines.index.reshape(c, nf, slots)
+    # 4. verdict: a significant fundamental with enough modulation depth
+    significant = found[..., 0]
+    k1i = np.where(has, fund.index, 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        depth = np.where(has, 4.0 * np.sqrt(_gather(ses, k1i)) / ses_mean_line[:, None], np.nan)
+    nbr = np.clip(k1i[..., None] + np.arange(-1, 2), 0, k - 1)
+    amp = np.where(has, _gather(amp_g, nbr).max(axis=-1), np.nan)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        # the depth the line's signal part surely has: its noise part (a complex Gaussian of power ``level``,
+        # ``ses / T``) subtracted at DEPTH_NOISE_RMS times its r.m.s.
+        sure = depth * (1.0 - DEPTH_NOISE_RMS / np.sqrt(np.where(has, fund.statistic, np.inf)))
+        detected = significant & (sure >= min_depth)
+    # 5. coincidences: a detected fundamental on a line of another family's pattern (a local maximum in one of
+    # its windows, significant or not) whose own fundamental is significant
+    local = index >= 0
+    near = np.abs(index[:, :, None, :, None] - index[:, None, :, None, :]) <= 1  # (c, A, B, qA, qB)
+    eye = np.eye(nf, dtype=bool)[None, :, :]
+    on_other = (near[:, :, :, 0, :] & local[:, None, :, :]).any(axis=-1) & local[:, :, None, 0] & ~eye
+    shared = near & found[:, :, None, :, None] & local[:, None, :, None, :]  # A's counted lines on B's lines
+    unique_a = (found[:, :, None, :] & ~shared.any(axis=-1)).sum(axis=-1)  # (c, A, B): A's lines B lacks
+    unique_b = np.swapaxes(unique_a, 1, 2)  # B's lines A lacks
+    beaten = detected[:, :, None] & on_other & significant[:, None, :] & (unique_b >= unique_a)
+    ambiguous = beaten.any(axis=-1)
+    ambiguous_with = np.where(ambiguous, np.argmax(beaten, axis=-1), -1)
+    if gaps is not None:
+        gap, shaft_order = gaps
+        present = np.concatenate([np.broadcast_to(significant[:, None, :], (c, nf, nf)),
+                                  shaft.found[:, shaft_order - 1][:, :, None]], axis=-1)  # (c, A, B + shaft)
+        close = (gap[None, :, :] * shaft_hz[:, None, None] / df_hz < 1.0) & present
+        unresolved = detected & close.any(axis=-1) & ~ambiguous
+        ambiguous_with = np.where(unresolved, np.argmax(close, axis=-1), ambiguous_with)
+        ambiguous |= unresolved
+    return FamilySearch(lines=lines, slots=slots, expected_lines=centres, amplitude_g=amp, depth=depth,
+                        significant=significant, detected=detected & ~ambiguous, ambiguous_with=ambiguous_with,
+                        shaft=shaft)
+
+
+def _join(fund: LineSearch, rest: LineSearch, families: int, slots: int) -> LineSearch:
+    """The fundamentals' and the other slots' searches as one (channels, families × slots) search."""
+    c = fund.index.shape[0]
+
+    def cat(a: npt.NDArray[Any], b: npt.NDArray[Any]) -> npt.NDArray[Any]:
+        out: npt.NDArray[Any] = np.concatenate([a.reshape(c, families, 1), b.reshape(c, families, slots - 1)],
+                                               axis=-1).reshape(c, -1)
+        return out
+
+    return LineSearch(index=cat(fund.index, rest.index), statistic=cat(fund.statistic, rest.statistic),
+                      threshold=cat(fund.threshold, rest.threshold), fits=cat(fund.fits, rest.fits),
+                      lo=cat(fund.lo, rest.lo), hi=cat(fund.hi, rest.hi))

@@ -46,7 +46,14 @@ IntArray = npt.NDArray[np.intp]
 G_MM_S2 = STANDARD_GRAVITY_M_S2 * 1000.0  # 1 g in mm/s²
 SPEED_MIN_PROMINENCE = 5.0  # an estimated speed's 1× line stands ≥ 14 dB over its local floor (common practice)
 SPEED_MIN_SHARE = 0.25  # … and reaches at least a quarter (−12 dB) of the strongest velocity line in the range
-SPEED_CANDIDATES = 4  # best-scoring candidates tried in turn
+SPEED_CANDIDATES = 16  # best-scoring candidates examined
+SPEED_MIN_QUALITY = 0.5  # below this the estimate is ambiguous (see estimate_speed_hz)
+SPEED_RELATED_TOLERANCE = 0.03  # candidates whose ratio is within ±3 % of 1, 2, 3, 4 (or inverse) are related
+SPEED_CAGE_TOLERANCE = 0.03  # FTF within ± 3 % (bearing slip 1–2 %, Randall & Antoni 2011, plus the estimate's)
+SPEED_HARMONIC_SHARE = 0.5  # a clear line at 2× or 3× the estimate this strong (re its 1×) makes it ambiguous
+SPEED_SUBHARMONIC_SHARE = 0.25  # ... and one at 1/2 or 1/3 of it this strong
+SUBSYNCHRONOUS = (0.35, 0.49)  # ratios of a sub-synchronous line (cage, oil whirl) to the shaft speed
+SPEED_RELATED_PROMINENCE = 2.0  # ... standing this far (6 dB) over its floor
 
 
 def hann_lines(spec: npt.NDArray[Any], stop: int) -> npt.NDArray[Any]:
@@ -278,18 +285,33 @@ def order_amplitudes_mm_s(vel_pow: FloatArray, shaft_hz: FloatArray, orders: tup
 
 
 def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: tuple[float, float],
-                      df_hz: float, harmonics: int = 3) -> FloatArray:
-    """Shaft-speed estimate per channel, NaN where no clear 1× line exists.
+                      df_hz: float, harmonics: int = 3, *, cage_ratio: float | None = None,
+                      tolerance: float = 0.03) -> tuple[FloatArray, FloatArray]:
+    """Shaft-speed estimate per channel with its quality; NaN where no clear or no unambiguous 1× line exists.
 
     A harmonic sum over the velocity spectrum (where the shaft lines dominate): every candidate f0 in
     ``speed_range_hz`` (steps of a third of a line) scores the sum of the largest amplitudes within ±1 line of
     f0, 2f0 … (``harmonics``), minus the same at the half-way points 0.5f0, 1.5f0 … (which rejects the octave
-    errors 2f0 and f0/2 when harmonics are present).  The ``SPEED_CANDIDATES`` best distinct candidates are tried
-in turn, and the first that passes the checks below wins.  Its 1× line is refined on the acceleration spectrum
-    with the Hann two-line interpolation δ = ±(2α − 1)/(α + 1), α the larger neighbour over the peak (exact for
-    one tone), and kept only when it stands at least ``SPEED_MIN_PROMINENCE`` times (14 dB) over the median
-    acceleration amplitude within ±25 % of its frequency (a white floor there, unlike the velocity spectrum's) and
-    reaches ``SPEED_MIN_SHARE`` (−12 dB) of the strongest velocity line in the speed range.
+    errors 2f0 and f0/2 when harmonics are present).  The ``SPEED_CANDIDATES`` best distinct candidates (local
+    maxima of the score) are checked: a candidate's 1× line, refined on the acceleration spectrum with the Hann
+    two-line interpolation δ = ±(2α − 1)/(α + 1) (α the larger neighbour over the peak; exact for one tone), must
+    stand at least ``SPEED_MIN_PROMINENCE`` times (14 dB) over the median acceleration amplitude within ±25 % of
+    its frequency and reach ``SPEED_MIN_SHARE`` (−12 dB) of the strongest velocity line in the speed range
+    (common practice: 1× dominates the velocity spectrum of a running machine).  The best-scoring valid
+    candidate wins — except that, with ``cage_ratio`` (the bearing's FTF as a multiple of shaft speed) given, a
+    winner that is the cage line (FTF ± 3 %) of another valid candidate gives way to that candidate.
+
+    **Quality** ``q = 1 − s_r / s_w`` (0–1): ``s_w`` the winner's score, ``s_r`` the best score of a valid rival
+    that is not harmonically related to it (a frequency ratio not within ± 3 % of 1, 2, 3, 4 or their inverses;
+    with ``cage_ratio``, not related to the winner's cage line either), 0 when there is none — so q = 1 means no
+    other line pattern explains the spectrum, q → 0 that two unrelated patterns explain it equally well.  q is 0
+    when the winner lies at 0.35–0.49 × another valid candidate (it may be that machine's sub-synchronous line:
+    a cage fault's FTF, oil whirl — without ``cage_ratio`` nothing tells them apart), and also when, inside the
+    speed range, a clear line at 2 or 3 × the winner reaches half its 1× line (the winner may be a sub-harmonic
+    of that speed: looseness, rub) or one at 1/2 or 1/3 of it (6 dB over its floor suffices there) a quarter (the
+    winner may be the 2× or 3× of a misaligned machine at that speed): the spectrum alone cannot tell these
+    apart, a narrower speed range can.  Below ``SPEED_MIN_QUALITY`` the estimate is NaN
+    (ambiguous): a confident wrong speed would move every order and defect frequency with it.
 
     Parameters
     ----------
@@ -298,7 +320,8 @@ in turn, and the first that passes the checks below wins.  Its 1× line is refin
 
     Returns
     -------
-    ndarray, shape (channels,)
+    shaft_hz, quality : ndarrays, shape (channels,) — NaN where no speed is determined (quality is still given
+        where a winner was found but judged ambiguous, NaN where no candidate was valid)
     """
     amp = np.sqrt(vel_pow)
     c, k = amp.shape
@@ -314,6 +337,7 @@ in turn, and the first that passes the checks below wins.  Its 1× line is refin
     local[:, 1:] &= score[:, 1:] >= score[:, :-1]
     local[:, :-1] &= score[:, :-1] >= score[:, 1:]
     order = np.argsort(np.where(local, -score, np.inf), axis=-1)[:, :SPEED_CANDIDATES]  # (channels, K)
+    cand_score = np.take_along_axis(np.where(local, score, -np.inf), order, axis=-1)
     b = np.rint(cand[order]).astype(np.intp)
     acc = np.sqrt(acc_pow)
     peak = window_argmax(acc, b - 1, b + 1)
@@ -327,15 +351,118 @@ in turn, and the first that passes the checks below wins.  Its 1× line is refin
     f_est = (peak + delta) * df_hz
     span = np.maximum(np.rint(0.25 * peak).astype(np.intp), 8)
     floor = masked_median(acc, peak - span, peak + span, peak - 2, peak + 2)
-    clear = (mid > 0) & (mid >= SPEED_MIN_PROMINENCE * floor)
+    valid = (mid > 0) & (mid >= SPEED_MIN_PROMINENCE * floor) & (cand_score > 0)
     # ... and a 1× line is among the strongest velocity lines of the speed range (common practice: 1× dominates
     # the velocity spectrum of a running machine), which rejects patterns of other lines that happen to fit
     lo_line = max(1, math.floor(speed_range_hz[0] / df_hz))
     hi_line = min(k, math.ceil(speed_range_hz[1] / df_hz) + 1)
     strongest = amp[:, lo_line:hi_line].max(axis=-1)
-    clear &= _gather(amp3, peak) >= SPEED_MIN_SHARE * strongest[:, None]
-    clear &= (f_est >= speed_range_hz[0] * 0.999) & (f_est <= speed_range_hz[1] * 1.001)
-    first = np.argmax(clear, axis=-1)
+    valid &= _gather(amp3, peak) >= SPEED_MIN_SHARE * strongest[:, None]
+    valid &= (f_est >= speed_range_hz[0] * 0.999) & (f_est <= speed_range_hz[1] * 1.001)
     rows = np.arange(c)
-    out: FloatArray = np.where(clear[rows, first], f_est[rows, first], np.nan)
-    return out
+    first = np.argmax(valid, axis=-1)
+    f_w = f_est[rows, first]
+    if cage_ratio is not None:
+        # a winner on the cage line of another valid candidate is that candidate's FTF, not a shaft speed
+        cage_of = valid & (np.abs(f_w[:, None] / (cage_ratio * f_est) - 1.0) <= SPEED_CAGE_TOLERANCE)
+        has_shaft = cage_of.any(axis=-1)
+        first = np.where(has_shaft, np.argmax(cage_of, axis=-1), first)
+        f_w = f_est[rows, first]
+    s_w = cand_score[rows, first]
+    line_1x = _gather(amp3, peak)
+    a_w = line_1x[rows, first]
+
+    def related_to(f0: FloatArray) -> npt.NDArray[np.bool_]:
+        ratio = f_est / f0[:, None]
+        out = np.zeros(ratio.shape, dtype=bool)
+        for m in (1.0, 2.0, 3.0, 4.0):
+            out |= np.abs(ratio - m) <= SPEED_RELATED_TOLERANCE * m
+            out |= np.abs(1.0 / ratio - m) <= SPEED_RELATED_TOLERANCE * m
+        return out
+
+    explained = related_to(f_w)
+    if cage_ratio is not None:
+        explained |= related_to(cage_ratio * f_w)  # the winner's cage line and its harmonics
+    rival = np.where(valid & ~explained, cand_score, 0.0).max(axis=-1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        quality = np.clip(1.0 - rival / s_w, 0.0, 1.0)
+        # a winner at 0.35–0.49 × another valid candidate may be that machine's sub-synchronous line — a cage
+        # fault's FTF (about 0.4 ×) or oil whirl (0.42–0.48 ×) — rather than its shaft (common practice)
+        sub = valid & (f_w[:, None] / f_est >= SUBSYNCHRONOUS[0]) & (f_w[:, None] / f_est <= SUBSYNCHRONOUS[1])
+    quality = np.where(sub.any(axis=-1), 0.0, quality)
+    # harmonically related readings: a clear line at 2 or 3 × the winner at least half as strong as the winner's
+    # 1× line — the winner may be a sub-harmonic (looseness, rub) of that speed — or at 1/2 or 1/3 of it at least
+    # a quarter as strong — the winner may be the 2× or 3× of a misaligned machine at that speed.  Inside the
+    # speed range the spectrum alone cannot tell them apart (a narrower range can).
+    for m, share, prominence in ((2.0, SPEED_HARMONIC_SHARE, SPEED_MIN_PROMINENCE),
+                                 (3.0, SPEED_HARMONIC_SHARE, SPEED_MIN_PROMINENCE),
+                                 (0.5, SPEED_SUBHARMONIC_SHARE, SPEED_RELATED_PROMINENCE),
+                                 (1.0 / 3.0, SPEED_SUBHARMONIC_SHARE, SPEED_RELATED_PROMINENCE)):
+        f_m = m * f_w
+        b_m = np.clip(np.rint(f_m / df_hz).astype(np.intp), 2, k - 3)[:, None]
+        p_m = np.minimum(np.maximum(window_argmax(acc, b_m - 1, b_m + 1), 1), k - 2)
+        span_m = np.maximum(np.rint(0.25 * p_m).astype(np.intp), 8)
+        floor_m = masked_median(acc, p_m - span_m, p_m + span_m, p_m - 2, p_m + 2)[:, 0]
+        clear_m = (_gather(acc, p_m)[:, 0] >= prominence * floor_m) & (_gather(amp3, p_m)[:, 0] >= share * a_w)
+        in_range = (f_m >= speed_range_hz[0]) & (f_m <= speed_range_hz[1])
+        quality = np.where(clear_m & in_range, 0.0, quality)
+    any_valid = valid[rows, first]
+    quality = np.where(any_valid, quality, np.nan)
+    with np.errstate(invalid="ignore"):
+        ok = any_valid & (quality >= SPEED_MIN_QUALITY)
+    refined, precise = _harmonic_refinement(acc, f_w, df_hz, harmonics, tolerance)
+    out: FloatArray = np.where(ok & precise, refined, np.nan)
+    return out, quality
+
+
+def _refined_line(acc: FloatArray, f_hz: FloatArray, df_hz: float) -> tuple[FloatArray, FloatArray, FloatArray]:
+    """Hann-interpolated frequency of the largest line within ±1 line of ``f_hz`` (one per channel), its
+    amplitude and the median amplitude around it (± 25 %, at least ± 8 lines, the line's ± 2 lines left out)."""
+    k = acc.shape[1]
+    b = np.clip(np.rint(f_hz / df_hz).astype(np.intp), 2, k - 3)[:, None]
+    p = np.minimum(np.maximum(window_argmax(acc, b - 1, b + 1), 1), k - 2)
+    left, mid, right = _gather(acc, p - 1), _gather(acc, p), _gather(acc, p + 1)
+    side = np.where(right >= left, 1.0, -1.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        alpha = np.maximum(left, right) / mid
+        delta = side * (2.0 * alpha - 1.0) / (alpha + 1.0)
+    delta = np.where(np.isfinite(delta), np.minimum(np.maximum(delta, -0.5), 0.5), 0.0)
+    span = np.maximum(np.rint(0.25 * p).astype(np.intp), 8)
+    floor = masked_median(acc, p - span, p + span, p - 2, p + 2)
+    return ((p + delta) * df_hz)[:, 0], mid[:, 0], floor[:, 0]
+
+
+def _harmonic_refinement(acc: FloatArray, f_hz: FloatArray, df_hz: float, harmonics: int,
+                         tolerance: float) -> tuple[FloatArray, npt.NDArray[np.bool_]]:
+    """Refine estimates ``f_hz`` with their clear harmonics (2×, 3×), and say whether each is precise.
+
+    A harmonic h reads the speed to 1/h of its interpolation error, where the 1× line alone can be pulled by up to
+    half a line by a neighbouring line; the readings are averaged with inverse-variance weights (h × the line's
+    level over its floor, squared).  A harmonic counts when it stands ``SPEED_MIN_PROMINENCE`` over its floor
+    within a line of h × the 1× estimate.  An estimate is precise when its clear harmonics agree with its 1×
+    reading within half the tolerance, or — with no clear harmonic to check it against — when half a line is
+    within the tolerance.
+    """
+    out = np.where(np.isfinite(f_hz), f_hz, 0.0)
+    _, a1, floor1 = _refined_line(acc, out, df_hz)
+    # inverse-variance weights: the interpolation error of harmonic h, read as a speed, is ∝ 1 / (h × its SNR)
+    weight = (a1 / np.maximum(floor1, 1e-300)) ** 2
+    total = weight * out
+    agree_all = np.ones(out.shape, dtype=bool)
+    checked = np.zeros(out.shape, dtype=bool)
+    for h in range(2, min(harmonics, 3) + 1):
+        f_h, a_h, floor_h = _refined_line(acc, h * out, df_hz)
+        clear = (a_h > 0) & (a_h >= SPEED_MIN_PROMINENCE * floor_h) & (np.abs(f_h - h * out) <= df_hz) & (out > 0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            agree_all &= ~clear | (np.abs(f_h / h - out) <= 0.5 * tolerance * out)
+        checked |= clear
+        w_h = np.where(clear, (h * a_h / np.maximum(floor_h, 1e-300)) ** 2, 0.0)
+        total = total + w_h * f_h / h
+        weight = weight + w_h
+    with np.errstate(divide="ignore", invalid="ignore"):
+        best = np.where(weight > 0, total / weight, out)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        fine = 0.5 * df_hz <= tolerance * out
+    precise = np.where(checked, agree_all, fine)
+    result: FloatArray = np.where(np.isfinite(f_hz), best, np.nan)
+    return result, precise

@@ -78,7 +78,10 @@ class AnalysisPlan:
 
     ``envelope_band_hz`` is ``None`` when the point gets no envelope indicators (for example a MEMS sensor
     whose bandwidth cannot carry the demodulation band).  ``speed_range_hz`` bounds the shaft-speed estimate
-    used when no speed is given.
+    used when no speed is given.  ``false_alarm`` is the probability that a defect family is called detected in
+    one frame of stationary Gaussian noise; ``min_depth`` the squared-envelope modulation depth a detected
+    family's line needs (see :mod:`edgevib.pipelines.envelope`).  A ``partial`` plan accepts records too short for
+    some indicators and leaves those out (offline snapshots; see ``analysis.plan_notes``).
     """
 
     fs_hz: float
@@ -91,29 +94,44 @@ class AnalysisPlan:
     speed_range_hz: tuple[float, float] = (5.0, 100.0)
     slip_tolerance: float = 0.02
     harmonics: int = 3
+    false_alarm: float = 1e-3
+    min_depth: float = 0.3
+    partial: bool = False
 
 
 @dataclass(frozen=True, slots=True)
 class FamilyResult:
-    """One bearing defect family in the envelope spectrum.
+    """One bearing defect family in the envelope spectra (method: :mod:`edgevib.pipelines.envelope`).
 
-    ``frequency_hz`` is where the fundamental was found (within the slip tolerance of the kinematic value),
-    ``amplitude_g`` its envelope-spectrum amplitude, ``snr_db`` the fundamental's level over the local spectral
-    floor (median within ±20 % of the line), ``harmonics_found`` how many of the searched harmonics stand at least
-    10 dB above their floor.  The ``bsf`` family is searched and reported at 2×BSF, where a rolling-element defect
-    shows (it strikes both races).
+    ``expected_hz`` is the kinematic fundamental.  ``frequency_hz`` is the largest true local maximum of the
+    squared-envelope spectrum within the slip tolerance (None where there is none), ``amplitude_g`` the envelope
+    amplitude spectrum there (peak reading, g), ``snr_db`` its squared-envelope level over the local mean level
+    (dB), ``depth`` the squared envelope's modulation depth there.  ``harmonics_found`` counts the fundamental and
+    harmonics that are significant local maxima, ``sidebands_found`` the sidebands at ± 1 and ± 2 times the
+    family's modulation frequency (0–4).  ``detected`` is the verdict; ``ambiguous_with`` names the family (or
+    ``"shaft"``) whose line the fundamental coincides with when that family carries more evidence (the verdict is
+    then withheld).  ``threshold_db`` is the level the fundamental had to exceed.  The ``bsf`` family is searched
+    and reported at 2×BSF, where a rolling-element defect shows (it strikes both races).
     """
 
     expected_hz: float
-    frequency_hz: float
-    amplitude_g: float
-    snr_db: float
+    frequency_hz: float | None
+    amplitude_g: float | None
+    snr_db: float | None
     harmonics_found: int
+    sidebands_found: int = 0
+    depth: float | None = None
+    detected: bool = False
+    ambiguous_with: str | None = None
+    threshold_db: float | None = None
 
 
 @dataclass(frozen=True, slots=True)
 class FrameIndicators:
-    """Indicators of one frame of one channel.  Units are in the names; ``None`` means unavailable."""
+    """Indicators of one frame of one channel.  Units are in the names; ``None`` means unavailable (velocity and
+    displacement when the frame is too short to resolve the velocity band).  ``shaft_quality`` (0–1) is the
+    confidence of an estimated speed (None for a given one; see
+    :func:`edgevib.pipelines.spectrum.estimate_speed_hz`)."""
 
     acceleration_rms_g: float
     acceleration_peak_g: float
@@ -122,11 +140,17 @@ class FrameIndicators:
     kurtosis: float
     skewness: float
     mean_g: float
-    velocity_rms_mm_s: float
-    velocity_peak_mm_s: float
-    displacement_pp_um: float
+    velocity_rms_mm_s: float | None
+    velocity_peak_mm_s: float | None
+    displacement_pp_um: float | None
     shaft_hz: float | None
     shaft_estimated: bool
     orders_mm_s: dict[str, float] = field(default_factory=dict)
     envelope_band_hz: tuple[float, float] | None = None
     envelope: dict[str, FamilyResult] = field(default_factory=dict)
+    shaft_quality: float | None = None
+
+    @property
+    def envelope_detected(self) -> tuple[str, ...]:
+        """The defect families called detected in this frame."""
+        return tuple(name for name, fam in self.envelope.items() if fam.detected)

@@ -18,6 +18,7 @@ from edgevib.pipelines.analysis import (
     kernel_for,
     make_plan,
     order_key,
+    plan_notes,
 )
 from edgevib.pipelines.bearings import defect_frequencies, defect_multiples, validate_geometry
 from edgevib.pipelines.severity import ISO_20816_3_VELOCITY_MM_S, iso_zone, zone_boundaries_mm_s
@@ -49,12 +50,16 @@ def machine(n: int = N, channels: int = 1, shaft: float = 24.7, seed: int = 0) -
     ({"velocity_band_hz": (10.0, 13000.0)}, "velocity band high edge 13000 Hz is at or above Nyquist 12800 Hz"),
     ({"velocity_band_hz": (0.0, 1000.0)}, "low edge 0 Hz must be > 0"),
     ({"velocity_band_hz": (100.0, 50.0)}, "must be above its low edge"),
-    # one frame-resolution rule, decided here: lines at most half the velocity band's low edge apart (common
-    # practice: the edge two lines above DC, clear of the Hann window's ±2-line leakage of the mean)
+    ({"n_samples": 63}, "record of 63 samples is too short: need at least 64"),
+    # one frame-resolution rule for measurement points: lines at most half the velocity band's low edge apart
+    # (common practice: the edge two lines above DC, clear of the Hann window's ±2-line leakage of the mean)
     ({"n_samples": 2048}, r"too short: it resolves 12\.5 Hz, too coarse for the velocity band's low edge 10 Hz \(2 "
                           r"lines needed\); need at least 5120"),
     ({"n_samples": 4096, "velocity_band_hz": (20.0, 1000.0)},
      r"too short: .* lowest shaft speed 5 Hz .* need at least 10240 samples"),
+    ({"false_alarm": 0.5}, "false-alarm probability 0.5"),
+    ({"false_alarm": 0.0}, "false-alarm probability 0"),
+    ({"min_depth": -0.1}, "minimum modulation depth -0.1"),
     ({"envelope_band_hz": (2000.0, 12800.0)}, "envelope band high edge 12800 Hz is at or above Nyquist 12800 Hz"),
     ({"envelope_band_hz": (2000.0, 2005.0)}, "fewer than 8 lines"),
     ({"envelope_band_hz": (2000.0, 2400.0), "bearing": B6205}, "narrower than the highest defect frequency"),
@@ -94,7 +99,7 @@ def test_plan_is_normalized_frozen_and_hashable() -> None:
     assert hash(plan) == hash(make_plan(12000.0, 12000, orders=(1.0, 2.0)))
     assert kernel_for(plan) is kernel_for(make_plan(12000.0, 12000, orders=(1.0, 2.0)))  # a pure memo
     with pytest.raises(PlanError):
-        AnalysisKernel(AnalysisPlan(fs_hz=1000.0, n_samples=100))  # checked even when built by hand
+        AnalysisKernel(AnalysisPlan(fs_hz=1000.0, n_samples=100, velocity_band_hz=(10.0, 600.0)))  # checked
 
 
 def test_default_envelope_band() -> None:
@@ -112,6 +117,63 @@ def test_default_envelope_band() -> None:
         band = default_envelope_band(fs, None)
         assert band is not None and band[1] < fs / 2
         make_plan(fs, int(fs), envelope_band_hz=band, bearing=B6205)
+
+
+# ------------------------------------------------------------------------------------------- short records
+
+
+def test_any_record_of_64_samples_gives_the_time_domain_indicators() -> None:
+    # 64 samples at 25.6 kHz (2.5 ms): r.m.s., peak, crest factor and kurtosis of a sine (handbook: r.m.s. A/√2,
+    # crest factor √2, Pearson kurtosis 1.5); velocity, orders and envelope absent, each with its reason
+    fs, n = 25600.0, 64
+    x = 2.0 * np.sin(2 * np.pi * 1600.0 * np.arange(n) / fs)  # 4 whole periods
+    plan = make_plan(fs, n, envelope_band_hz=(2500.0, 10000.0), bearing=B6205, speed_range_hz=(29.0, 31.0),
+                     partial=True)
+    r = analyze_frames(x, plan, [30.0])[0]
+    assert r.acceleration_rms_g == pytest.approx(2.0 / math.sqrt(2), rel=1e-6)
+    assert r.crest_factor == pytest.approx(math.sqrt(2), rel=1e-3)
+    assert r.kurtosis == pytest.approx(1.5, rel=1e-3)
+    assert r.velocity_rms_mm_s is None and r.velocity_peak_mm_s is None and r.displacement_pp_um is None
+    assert r.orders_mm_s == {} and r.envelope == {}
+    notes = plan_notes(plan)
+    assert any(n.startswith("velocity: the 0.0025 s record resolves 400 Hz") for n in notes), notes
+    with pytest.raises(PlanError, match="too short"):  # a measurement point's plan must carry everything
+        make_plan(fs, n, envelope_band_hz=(2500.0, 10000.0), bearing=B6205, speed_range_hz=(29.0, 31.0))
+    assert any(n.startswith("orders 0.5x, 1x, 2x, 3x:") for n in notes), notes
+    assert any(n.startswith("envelope FTF, BPFO, BPFI, 2×BSF:") for n in notes), notes
+    assert all("\n" not in n for n in notes)
+
+
+def test_a_snapshot_of_a_tenth_of_a_second() -> None:
+    # a 0.1 s burst at 25.6 kHz (a wireless sensor's snapshot, as the FEMTO records in ../shared/datasets) with
+    # the speed given: velocity (10 Hz lines: two below a 20 Hz band edge), orders 1×–3× and the envelope at the
+    # speed ± tolerance; only 0.5× (1.5 lines from DC) and FTF (1.3 lines) are left out, with their reasons
+    fs, n, shaft = 25600.0, 2560, 30.0
+    t = np.arange(n) / fs
+    x = 1.0 * np.sin(2 * np.pi * shaft * t)
+    plan = make_plan(fs, n, envelope_band_hz=(2500.0, 10000.0), bearing=B6205,
+                     speed_range_hz=(shaft * 0.97, shaft * 1.03), velocity_band_hz=(20.0, 1000.0), partial=True)
+    r = analyze_frames(x, plan, shaft)[0]
+    # velocity of a 1 g sine: 9806.65 / (2π f) / √2 mm/s (FIELD_NOTES §5)
+    assert r.orders_mm_s["1x"] == pytest.approx(9806.65 / (2 * np.pi * shaft) / math.sqrt(2), rel=0.01)
+    assert set(r.orders_mm_s) == {"1x", "2x", "3x"}
+    assert set(r.envelope) == {"bpfo", "bpfi", "bsf"}
+    assert r.velocity_rms_mm_s is not None
+    notes = plan_notes(plan)
+    assert len(notes) == 2 and notes[0].startswith("orders 0.5x:") and notes[1].startswith("envelope FTF:")
+    # without a speed there is no estimate at this resolution (5 Hz lowest speed needs 2 lines of 2.5 Hz)
+    free = make_plan(fs, n, velocity_band_hz=(20.0, 1000.0), partial=True)
+    assert analyze_frames(x, free)[0].shaft_hz is None
+    assert any(n.startswith("speed estimate:") and "give the speed" in n for n in plan_notes(free))
+
+
+def test_long_enough_records_have_no_notes() -> None:
+    assert plan_notes(make_plan(FS, N, envelope_band_hz=(4000.0, 9000.0), bearing=B6205,
+                                speed_range_hz=(20.0, 60.0))) == ()
+    # over the default 5–100 Hz speed range the slowest speeds are too slow for 0.5× and FTF at 1.56 Hz lines
+    notes = plan_notes(make_plan(FS, N, envelope_band_hz=(4000.0, 9000.0), bearing=B6205))
+    assert [n.split(":")[0] for n in notes] == ["orders 0.5x", "envelope FTF"]
+    assert "left out below 6.25 Hz shaft speed" in notes[0]
 
 
 # ------------------------------------------------------------------------------------------- frames
@@ -149,8 +211,13 @@ def test_channels_are_independent() -> None:
         assert a.kurtosis == pytest.approx(b.kurtosis, rel=1e-6)
         assert a.shaft_hz == pytest.approx(b.shaft_hz, rel=1e-12) if b.shaft_hz else a.shaft_hz is None
         assert a.orders_mm_s == pytest.approx(b.orders_mm_s, rel=1e-9)
+        assert set(a.envelope) == set(b.envelope)
         for k in b.envelope:
-            assert a.envelope[k].amplitude_g == pytest.approx(b.envelope[k].amplitude_g, rel=1e-5)
+            if b.envelope[k].amplitude_g is None:
+                assert a.envelope[k].amplitude_g is None
+            else:
+                assert a.envelope[k].amplitude_g == pytest.approx(b.envelope[k].amplitude_g, rel=1e-5)
+            assert a.envelope[k].detected == b.envelope[k].detected
 
 
 def test_thread_safety() -> None:
@@ -221,10 +288,14 @@ def test_scaling_linearity(scale: float, seed: int) -> None:
     assert b.kurtosis == pytest.approx(a.kurtosis, rel=1e-4) and b.crest_factor == pytest.approx(a.crest_factor,
                                                                                                    rel=1e-5)
     assert b.orders_mm_s == pytest.approx({k: scale * v for k, v in a.orders_mm_s.items()}, rel=1e-5)
+    assert a.envelope["bpfo"].detected and b.envelope_detected == a.envelope_detected
     for k, fam in a.envelope.items():
-        assert b.envelope[k].amplitude_g == pytest.approx(scale * fam.amplitude_g, rel=1e-4)
         assert b.envelope[k].frequency_hz == fam.frequency_hz
+        if fam.amplitude_g is None:
+            continue
+        assert b.envelope[k].amplitude_g == pytest.approx(scale * fam.amplitude_g, rel=1e-4)
         assert b.envelope[k].snr_db == pytest.approx(fam.snr_db, abs=0.01)
+        assert b.envelope[k].depth == pytest.approx(fam.depth, rel=1e-4)
 
 
 # ------------------------------------------------------------------------------------------- bearings

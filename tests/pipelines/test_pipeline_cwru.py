@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 import scipy.io
 
-from edgevib.pipelines.analysis import analyze_frames, make_plan
+from edgevib.pipelines.analysis import analyze_frames, default_envelope_band, make_plan
 from edgevib.pipelines.types import BearingGeometry, FrameIndicators
 
 B6205 = BearingGeometry(9, 0.3126, 1.537, 0.0)  # drive-end 6205-2RS, datasets README
@@ -94,47 +94,63 @@ def test_envelope_singles_out_the_race_fault(cwru_dir: Path, name: str) -> None:
     assert fam.frequency_hz == pytest.approx(measured["peak_hz"], abs=0.5)
     assert fam.frequency_hz == pytest.approx(fam.expected_hz, rel=0.02)
     assert fam.amplitude_g == pytest.approx(measured["amp"], rel=0.2)
-    # singled out: far above its floor, far above the other race family (README: 802/221/749/248/552 × median)
-    assert fam.snr_db > 40
-    assert fam.snr_db > r.envelope[other].snr_db + 20
-    assert fam.amplitude_g > 10 * r.envelope[other].amplitude_g
-    assert fam.harmonics_found >= 2
+    # the verdict: the labelled family detected and no other (README: 802/221/749/248/552 × median)
+    assert r.envelope_detected == (fault,)
+    assert fam.harmonics_found >= 2 and fam.snr_db is not None and fam.snr_db > 40
+    assert not r.envelope[other].detected
 
 
 @pytest.mark.parametrize("name", ["cwru_48k_de_normal_0hp.mat", "cwru_12k_de_ball_007_0hp.mat"])
 def test_no_race_fault_in_the_baseline_or_ball_file(cwru_dir: Path, name: str) -> None:
     # README: the normal file has nothing near BPFO/BPFI (0.0008/0.0010 g against a 0.00035 g median); the ball
-    # file has small lines there (0.012 g) but none stands out like a race fault (≥ 0.18 g, > 40 dB)
+    # file has small lines there (0.012 g) but none stands out like a race fault (≥ 0.18 g), and no clean 2×BSF
+    # (trap 3).  Verdicts: nothing in the baseline, neither race family in the ball file.
     r = whole(cwru_dir, name)
     for fam in ("bpfo", "bpfi"):
-        assert r.envelope[fam].snr_db < 25
-        assert r.envelope[fam].amplitude_g < 0.02
+        assert not r.envelope[fam].detected
+        assert (r.envelope[fam].amplitude_g or 0.0) < 0.02
     if "normal" in name:
-        assert max(f.snr_db for f in r.envelope.values()) < 12
+        assert r.envelope_detected == ()
 
 
-@pytest.mark.parametrize("name", ["cwru_12k_de_outer_007_0hp.mat", "cwru_12k_de_inner_007_0hp.mat",
-                                  "cwru_48k_de_outer_007_0hp.mat", "cwru_48k_de_normal_0hp.mat"])
+@pytest.mark.parametrize("name", ALL)
+@pytest.mark.parametrize("band", ["e1", "default"])
+def test_verdicts_on_every_file_and_band(cwru_dir: Path, name: str, band: str) -> None:
+    # issue acceptance: on every CWRU file the labelled family is detected and no other; the baseline and the
+    # ball file (no clean 2×BSF, datasets README trap 3) detect nothing — in method E1's band and in the default
+    # band for the sample rate (1180–4680 Hz at 12 kHz, 4690–18750 Hz at 48 kHz)
+    x, fs, shaft_hz, checks = record(cwru_dir, name)
+    env = E1_BAND if band == "e1" else default_envelope_band(fs, None, shaft_hz_max=shaft_hz * 1.03)
+    plan = make_plan(fs, x.size, envelope_band_hz=env, bearing=B6205,
+                     speed_range_hz=(shaft_hz * 0.97, shaft_hz * 1.03))
+    r = analyze_frames(x, plan, [shaft_hz])[0]
+    label = {"outer": ("bpfo",), "inner": ("bpfi",)}.get(str(checks["fault"]).split("_")[0], ())
+    assert r.envelope_detected == label, (checks["fault"], r.envelope_detected)
+
+
+@pytest.mark.parametrize("name", ALL)
 def test_streaming_one_second_frames(cwru_dir: Path, name: str) -> None:
-    # README "Streaming windows": every non-overlapping 1-s window of 130, 105 and 135 has its fault line within
-    # 2 % of the expected one, amplitudes 0.587–0.645 (130), 0.171–0.177 (105), 1.14–1.26 (135) by E1; no window
-    # of the normal file peaks near BPFO or BPFI.  Here all windows go through one vectorized call.
-    x, fs, shaft_hz, _ = record(cwru_dir, name)
+    # README "Streaming windows": every non-overlapping 1-s window of 130, 105, 131, 106 and 135 has its fault line
+    # within 2 % of the expected one, amplitudes 0.587–0.645 (130), 0.171–0.177 (105), 1.14–1.26 (135) by E1; no
+    # window of the normal or ball file peaks near BPFO, BPFI or 2×BSF.  Here all windows go through one
+    # vectorized call, and every window's verdict is the labelled family alone.
+    x, fs, shaft_hz, checks = record(cwru_dir, name)
     n = int(fs)
     frames = x[: (x.size // n) * n].reshape(-1, n)
     plan = make_plan(fs, n, envelope_band_hz=E1_BAND, bearing=B6205)
     out = analyze_frames(frames, plan, [shaft_hz] * frames.shape[0])
-    if "normal" in name:
-        assert all(r.envelope[f].snr_db < 15 for r in out for f in ("bpfo", "bpfi"))
+    label = {"outer": ("bpfo",), "inner": ("bpfi",)}.get(str(checks["fault"]).split("_")[0], ())
+    assert all(r.envelope_detected == label for r in out), [r.envelope_detected for r in out]
+    if not label:
         return
-    fault = "bpfo" if "outer" in name else "bpfi"
-    lo, hi = {"cwru_12k_de_outer_007_0hp.mat": (0.587, 0.645), "cwru_12k_de_inner_007_0hp.mat": (0.171, 0.177),
-              "cwru_48k_de_outer_007_0hp.mat": (1.14, 1.26)}[name]
+    fault = label[0]
+    amp_range = {"cwru_12k_de_outer_007_0hp.mat": (0.587, 0.645), "cwru_12k_de_inner_007_0hp.mat": (0.171, 0.177),
+                 "cwru_48k_de_outer_007_0hp.mat": (1.14, 1.26)}.get(name)
     for r in out:
         fam = r.envelope[fault]
-        assert abs(fam.frequency_hz / fam.expected_hz - 1) < 0.02
-        assert 0.8 * lo < fam.amplitude_g < 1.2 * hi  # ±20 % (README's suggested amplitude tolerance)
-        assert fam.snr_db > max(r.envelope[k].snr_db for k in ("bpfo", "bpfi") if k != fault) + 10
+        assert fam.frequency_hz is not None and abs(fam.frequency_hz / fam.expected_hz - 1) < 0.02
+        if amp_range is not None:
+            assert 0.8 * amp_range[0] < fam.amplitude_g < 1.2 * amp_range[1]  # type: ignore[operator]
 
 
 def test_block_by_block_and_whole_record_agree(cwru_dir: Path) -> None:
@@ -148,7 +164,7 @@ def test_block_by_block_and_whole_record_agree(cwru_dir: Path) -> None:
     rms_blocks = np.sqrt(np.mean([r.acceleration_rms_g**2 for r in out]))
     whole_rec = analyze_frames(frames.reshape(-1), make_plan(fs, frames.size), [shaft_hz])[0]
     assert rms_blocks == pytest.approx(whole_rec.acceleration_rms_g, rel=1e-3)
-    amps = [r.envelope["bpfo"].amplitude_g for r in out]
+    amps = [r.envelope["bpfo"].amplitude_g or 0.0 for r in out]
     assert np.mean(amps) == pytest.approx(whole(cwru_dir, "cwru_12k_de_outer_007_0hp.mat").envelope["bpfo"].amplitude_g,
                                           rel=0.1)
 
@@ -156,16 +172,32 @@ def test_block_by_block_and_whole_record_agree(cwru_dir: Path) -> None:
 @pytest.mark.parametrize("name", ALL)
 def test_speed_estimate_recovers_the_stored_speed(cwru_dir: Path, name: str) -> None:
     # the speed stored in each file (datasets README, trap 6) against the spectrum's estimate within a realistic
-    # speed range of 1200–3600 r/min; observed within 0.05 % over the whole record
+    # speed range of 1200–3600 r/min; observed within 0.05 % over the whole record.  The inner-race records carry
+    # a 2× line 2.6 times their 1× line: with 60 Hz inside the range they read equally as a 60 Hz machine with a
+    # 0.5× sub-harmonic, and the estimate declines (None, quality 0) rather than guess.
     x, fs, shaft_hz, _ = record(cwru_dir, name)
     r = analyze_frames(x, make_plan(fs, x.size, speed_range_hz=(20.0, 60.0)))[0]
-    assert r.shaft_estimated and r.shaft_hz == pytest.approx(shaft_hz, rel=0.002)
+    if "inner" in name:
+        assert r.shaft_hz is None and r.shaft_quality == 0.0
+    else:
+        assert r.shaft_estimated and r.shaft_hz == pytest.approx(shaft_hz, rel=0.002)
+        assert r.shaft_quality is not None and r.shaft_quality >= 0.5
+    narrow = analyze_frames(x, make_plan(fs, x.size, speed_range_hz=(20.0, 40.0)))[0]
+    assert narrow.shaft_hz == pytest.approx(shaft_hz, rel=0.002)
 
 
-def test_speed_estimate_never_guesses_wrong_on_a_wide_range(cwru_dir: Path) -> None:
+@pytest.mark.parametrize("seconds", [0.25, 0.5, 1.0])
+@pytest.mark.parametrize("speed_range_hz", [(20.0, 60.0), (5.0, 100.0)])
+def test_speed_estimate_never_guesses_wrong(cwru_dir: Path, seconds: float,
+                                            speed_range_hz: tuple[float, float]) -> None:
     # over 300–6000 r/min the rig's own low-frequency lines (5.75 and 12 Hz, stronger in velocity than the 1×)
-    # and the fault lines compete: the estimate then declines (None) rather than report a wrong speed
+    # and the fault lines compete, and short frames resolve little: the estimate then declines (None) rather than
+    # report a wrong speed.  Never more than the order tolerance (3 %) off, on whole records and on every frame.
     for name in ALL:
         x, fs, shaft_hz, _ = record(cwru_dir, name)
-        r = analyze_frames(x, make_plan(fs, x.size))[0]
-        assert r.shaft_hz is None or r.shaft_hz == pytest.approx(shaft_hz, rel=0.002), name
+        n = int(fs * seconds)
+        frames = np.concatenate([x[None, :n * (x.size // n)].reshape(-1, n)])
+        for r in analyze_frames(frames, make_plan(fs, n, speed_range_hz=speed_range_hz)):
+            assert r.shaft_hz is None or r.shaft_hz == pytest.approx(shaft_hz, rel=0.03), name
+        whole_rec = analyze_frames(x, make_plan(fs, x.size, speed_range_hz=speed_range_hz))[0]
+        assert whole_rec.shaft_hz is None or whole_rec.shaft_hz == pytest.approx(shaft_hz, rel=0.002), name

@@ -1,0 +1,69 @@
+"""Shaft-speed estimate against the simulator's analytic truth: many speeds, machine and bearing faults (the cage
+fault included), never more than the order tolerance off when a value is reported."""
+
+from __future__ import annotations
+
+import tomllib
+from importlib import resources
+
+import numpy as np
+import pytest
+
+from edgevib.pipelines.analysis import analyze_frames, default_envelope_band, make_plan
+from edgevib.pipelines.types import BearingGeometry
+from edgevib.simulator.engine import Simulation
+from edgevib.simulator.scenario import parse_scenario
+
+ORDER_TOLERANCE = 0.03  # the plan's default order tolerance
+
+
+def _records(scenario: str, rpm: float, seconds: float) -> list[tuple[str, list[str], float, np.ndarray,
+                                                                       BearingGeometry | None]]:
+    doc = tomllib.loads(resources.files("edgevib.simulator").joinpath("scenarios", f"{scenario}.toml").read_text())
+    for m in doc["machines"]:
+        m["speed"] = {"rpm": rpm}
+        m.pop("speed_range_rpm", None)
+        m.pop("reference_rpm", None)
+    sc = parse_scenario(doc)
+    sim = Simulation(sc, seed=3, t0_ns=0)
+    out = []
+    for p in sc.points:
+        blocks = max(1, int(np.ceil(seconds * p.fs_hz / p.block_samples)))
+        faults = [f.type for f in sc.machine(p.machine_id).faults if p.point_id in f.points]
+        bearing = None if p.bearing is None else BearingGeometry(
+            p.bearing.elements, p.bearing.ball_diameter_mm, p.bearing.pitch_diameter_mm, p.bearing.contact_angle_deg)
+        out.append((p.point_id, faults, p.fs_hz, sim.record(p.point_id, blocks), bearing))
+    return out
+
+
+@pytest.mark.parametrize("rpm", [900.0, 1480.0, 2400.0, 3600.0])
+def test_estimate_is_right_or_absent(rpm: float) -> None:
+    # the analyze default range (300–6000 r/min, narrowed to what the record resolves); with a bearing the plan
+    # knows its cage ratio (a cage fault's FTF series is then not taken for the shaft)
+    reported = 0
+    for scenario in ("bearings", "mechanical", "demo"):
+        for point, faults, fs, x, bearing in _records(scenario, rpm, 1.28):
+            speed_range = (max(5.0, 2.0 * fs / x.size), min(100.0, 0.99 * fs / 2 / 3.1))
+            band = default_envelope_band(fs, None, shaft_hz_max=speed_range[1]) if bearing else None
+            plan = make_plan(fs, x.size, speed_range_hz=speed_range, bearing=bearing if band else None,
+                             envelope_band_hz=band)
+            r = analyze_frames(x, plan)[0]
+            if r.shaft_hz is not None:
+                reported += 1
+                assert r.shaft_hz == pytest.approx(rpm / 60.0, rel=ORDER_TOLERANCE), (scenario, point, faults)
+                assert r.shaft_quality is not None and r.shaft_quality >= 0.5
+    assert reported >= 10  # most of the 17 points do get a speed (observed 11–15; misalignment and looseness
+    #                        are ambiguous over this wide range)
+
+
+def test_cage_fault_is_not_taken_for_the_shaft() -> None:
+    # the issue's case: a cage fault (FTF 0.39 × shaft and its harmonics, stronger than 1×) at 2960 r/min.  With
+    # the bearing known the FTF series is recognised; without it the two patterns are ambiguous (None).
+    (_, _, fs, x, bearing), = [r for r in _records("bearings", 2960.0, 1.28) if "cage" in r[1]]
+    assert bearing is not None
+    band = default_envelope_band(fs, None, shaft_hz_max=100.0)
+    with_bearing = analyze_frames(x, make_plan(fs, x.size, speed_range_hz=(5.0, 100.0), bearing=bearing,
+                                               envelope_band_hz=band))[0]
+    assert with_bearing.shaft_hz == pytest.approx(2960.0 / 60.0, rel=ORDER_TOLERANCE)
+    without = analyze_frames(x, make_plan(fs, x.size, speed_range_hz=(5.0, 100.0)))[0]
+    assert without.shaft_hz is None or without.shaft_hz == pytest.approx(2960.0 / 60.0, rel=ORDER_TOLERANCE)
