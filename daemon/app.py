@@ -99,8 +99,8 @@ def _default_analyze(x: npt.NDArray[np.float32], plan: AnalysisPlan,
     return list(analyze_frames(x, plan, shaft_hz=shaft_hz))
 
 
-def _iso_zone(v_mm_s: float, machine: MachineConfig) -> str | None:
-    if machine.group is None or machine.support is None or not math.isfinite(v_mm_s):
+def _iso_zone(v_mm_s: float | None, machine: MachineConfig) -> str | None:
+    if machine.group is None or machine.support is None or v_mm_s is None or not math.isfinite(v_mm_s):
         return None
     from edgevib.pipelines.severity import iso_zone
 

@@ -1,16 +1,18 @@
 """Offline subcommands: ``edgevib analyze FILE`` (a recorded waveform) and ``edgevib bearing`` (defect frequencies).
 
-Readers (all return one channel as float64 plus the sample rate when the file carries one):
+The file formats and layouts (WAV, ``.npy``, CSV with or without a header, MATLAB ``.mat`` with struct fields)
+are read by :mod:`edgevib.daemon.waveform_files`.  ``analyze`` treats the whole record as one frame:
 
-* WAV (``scipy.io.wavfile``): rate from the header; float samples are taken as they are (in ``--unit``), integer
-  PCM is scaled to ±1 full scale (``--full-scale`` gives what full scale means in ``--unit``); a multichannel file
-  gives its first channel or ``--channel N``.
-* ``.npy``: a 1-D array, or a 2-D one whose longer axis is time (``--channel`` picks the other); ``--fs`` required.
-* CSV / text: one column per channel, comma, semicolon, tab or blank separated, an optional header line;
-  ``--fs`` required.
-* MATLAB ``.mat`` (v4–v7, ``scipy.io.loadmat``): ``--var NAME``, or else the one ``*_DE_time`` variable, or the
-  one numeric vector in the file; a scalar ``*RPM`` variable gives the shaft speed when ``--rpm`` is not given;
-  ``--fs`` required unless the file holds a scalar ``fs``/``Fs``/``fs_hz``/``sample_rate``.
+* **speed** — ``--rpm`` (source ``given``), else the file's own speed (``file``), else the estimate from the
+  spectrum (``estimated``, with its quality 0–1); unknown (None) when the estimate is ambiguous, and then orders and
+  envelope verdicts are skipped.  When ``--rpm`` disagrees with the file's speed or with the spectrum by more than
+  the order tolerance, one warning line goes to stderr.  A given speed plans the analysis for that speed ± the order
+  tolerance instead of the whole 300–6000 r/min estimate range;
+* **envelope band** — ``--band LO:HI`` (``configured``), ``--band auto`` (``auto``: spectral kurtosis on the fast
+  kurtogram's grid among bands whose envelope is periodic, :mod:`edgevib.pipelines.kurtogram`), else the default
+  band from the sample rate (``default``; also the fallback when no band qualifies automatically);
+* **short records** — anything of 64 samples or more gives the time-domain indicators; what the record is too
+  short for is left out with a one-line note (``notes``).
 
 Bad input prints one line on stderr naming the problem and exits with code 2; nothing prints a traceback.
 """
@@ -21,41 +23,36 @@ import argparse
 import json
 import math
 import sys
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, NoReturn
 
 import numpy as np
-import numpy.typing as npt
 
 from edgevib.daemon.indicators import document
 from edgevib.daemon.interfaces import FrameResult
-from edgevib.pipelines.analysis import FAMILIES, default_envelope_band, make_plan, order_key
-from edgevib.pipelines.analysis import analyze_frames as _analyze_frames
-from edgevib.pipelines.bearings import defect_frequencies, validate_geometry
+from edgevib.daemon.waveform_files import FORMATS, InputError, Waveform, read_waveform
+from edgevib.pipelines.analysis import (
+    FAMILIES,
+    analyze_frames,
+    default_envelope_band,
+    make_plan,
+    order_key,
+    plan_notes,
+)
+from edgevib.pipelines.bearings import defect_frequencies, defect_multiples, validate_geometry
 from edgevib.pipelines.conditioning import to_g
+from edgevib.pipelines.kurtogram import select_band
 from edgevib.pipelines.severity import iso_zone, zone_boundaries_mm_s
 from edgevib.pipelines.types import BearingGeometry, FrameIndicators, PipelineError
 
-__all__ = ["InputError", "configure_analyze", "configure_bearing", "read_waveform", "run_analyze", "run_bearing"]
+__all__ = ["FORMATS", "InputError", "Waveform", "configure_analyze", "configure_bearing", "read_waveform",
+           "run_analyze", "run_bearing"]
 
-FORMATS = (".wav", ".npy", ".csv", ".txt", ".mat")
-_FS_NAMES = ("fs", "Fs", "FS", "fs_hz", "sample_rate", "sampling_rate", "samplerate")
-
-
-class InputError(Exception):
-    """Bad input to an offline subcommand (the message is the one line shown)."""
-
-
-@dataclass(frozen=True, slots=True)
-class Waveform:
-    """One channel read from a file; ``fs_hz``/``rpm`` are None when the file does not carry them."""
-
-    samples: npt.NDArray[np.float64]
-    fs_hz: float | None
-    rpm: float | None = None
-    source: str = ""  # what was read, e.g. "variable X130_DE_time" or "channel 0 of 2"
-    rpm_source: str = ""
+ORDER_TOLERANCE = 0.03  # the plan's default: speeds, orders and warnings use the same tolerance
+ESTIMATE_RANGE_HZ = (5.0, 100.0)  # 300–6000 r/min when no speed is given
+AUTO_BAND_FLOOR_HZ = 500.0  # an automatic band stays above this and 20 × the highest shaft speed (common practice)
+ANTI_ALIAS_RATIO = 2.56  # usable bandwidth fs/2.56 of an anti-aliased acquisition (common practice)
+FAMILY_LABELS = {"ftf": "FTF", "bpfo": "BPFO", "bpfi": "BPFI", "bsf": "2xBSF"}
 
 
 # --------------------------------------------------------------------------------------------- parsing helpers
@@ -127,166 +124,11 @@ def _rpm(text: str | None) -> float | None:
     return rpm
 
 
-# --------------------------------------------------------------------------------------------- readers
-
-
-def _pick_column(data: npt.NDArray[Any], channel: int | None, what: str) -> tuple[npt.NDArray[Any], str]:
-    """``data`` is (samples,) or (samples, channels)."""
-    if data.ndim == 1:
-        if channel not in (None, 0):
-            raise InputError(f"{what} has 1 channel; --channel {channel} does not exist")
-        return data, "channel 0 of 1"
-    if data.ndim != 2:
-        raise InputError(f"{what} has {data.ndim} dimensions; expected samples or samples × channels")
-    ch = 0 if channel is None else channel
-    if not 0 <= ch < data.shape[1]:
-        raise InputError(f"{what} has {data.shape[1]} channels; --channel {ch} does not exist (0-based)")
-    return data[:, ch], f"channel {ch} of {data.shape[1]}"
-
-
-def _read_wav(path: Path, channel: int | None, full_scale: float) -> Waveform:
-    from scipy.io import wavfile
-
-    try:
-        rate, data = wavfile.read(path)
-    except Exception as exc:  # scipy raises ValueError, struct.error, EOFError… on malformed files
-        raise InputError(f"cannot read {path} as WAV: {exc}") from None
-    x, which = _pick_column(np.asarray(data), channel, f"WAV file {path}")
-    if x.dtype.kind == "f":
-        samples = x.astype(np.float64)
-    elif x.dtype == np.uint8:
-        samples = (x.astype(np.float64) - 128.0) / 128.0 * full_scale
-    elif x.dtype.kind == "i":
-        samples = x.astype(np.float64) / float(2 ** (8 * x.dtype.itemsize - 1)) * full_scale
-    else:
-        raise InputError(f"WAV file {path} holds {x.dtype} samples; expected float or integer PCM")
-    return Waveform(samples, float(rate), source=which)
-
-
-def _read_npy(path: Path, channel: int | None) -> Waveform:
-    try:
-        data = np.load(path, allow_pickle=False)
-    except Exception as exc:  # ValueError for pickled objects, OSError/EOFError for truncated files
-        raise InputError(f"cannot read {path} as .npy: {exc}") from None
-    if not isinstance(data, np.ndarray) or data.dtype.kind not in "iuf":
-        raise InputError(f"{path} does not hold a numeric array")
-    if data.ndim == 2 and data.shape[0] < data.shape[1]:
-        data = data.T  # the longer axis is time
-    x, which = _pick_column(data, channel, f".npy file {path}")
-    return Waveform(x.astype(np.float64), None, source=which)
-
-
-def _read_csv(path: Path, channel: int | None) -> Waveform:
-    try:
-        text = path.read_text(encoding="utf-8", errors="strict")
-    except UnicodeDecodeError:
-        raise InputError(f"{path} is not a UTF-8 text (CSV) file") from None
-    lines = [ln.strip() for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
-    if not lines:
-        raise InputError(f"CSV file {path} holds no data")
-    delimiter: str | None = None
-    sample = lines[:5] + lines[-1:]
-    for cand in (",", ";", "\t"):
-        if any(cand in ln for ln in sample):
-            delimiter = cand
-            break
-
-    def parse(line: str) -> list[float]:
-        fields = line.split(delimiter) if delimiter else line.split()
-        return [float(f) for f in fields if f.strip() != ""]
-
-    rows: list[list[float]] = []
-    for i, line in enumerate(lines):
-        try:
-            rows.append(parse(line))
-        except ValueError:
-            if i == 0:
-                continue  # a header line
-            raise InputError(f"CSV file {path}: line {i + 1} is not numeric: {line[:60]!r}") from None
-    if not rows:
-        raise InputError(f"CSV file {path} holds no numeric rows")
-    width = len(rows[0])
-    bad = next((i for i, r in enumerate(rows) if len(r) != width), None)
-    if bad is not None:
-        raise InputError(f"CSV file {path}: row {bad + 1} has {len(rows[bad])} columns, the first has {width}")
-    data = np.asarray(rows, dtype=np.float64)
-    x, which = _pick_column(data if width > 1 else data[:, 0], channel, f"CSV file {path}")
-    return Waveform(x, None, source=which)
-
-
-def _read_mat(path: Path, var: str | None, channel: int | None) -> Waveform:
-    from scipy.io import loadmat
-
-    try:
-        mat = loadmat(path)
-    except NotImplementedError:
-        raise InputError(f"{path} is a MATLAB v7.3 (HDF5) file; save it with -v7 or export the signal as .npy") \
-            from None
-    except Exception as exc:  # malformed files raise ValueError, TypeError, struct errors…
-        raise InputError(f"cannot read {path} as a MATLAB .mat file: {exc}") from None
-    variables = {k: v for k, v in mat.items() if not k.startswith("__")}
-    numeric = {k: np.asarray(v) for k, v in variables.items()
-               if isinstance(v, np.ndarray) and v.dtype.kind in "iuf"}
-    listing = ", ".join(f"{k} {tuple(np.shape(v))}" for k, v in variables.items()) or "none"
-    if var is not None:
-        if var not in variables:
-            raise InputError(f"{path} has no variable {var!r}; variables: {listing}")
-        if var not in numeric:
-            raise InputError(f"variable {var!r} in {path} is not a numeric array")
-        name = var
-    else:
-        vectors = [k for k, v in numeric.items() if v.size > 1 and sum(d > 1 for d in v.shape) == 1]
-        de = [k for k in vectors if k.endswith("_DE_time")]
-        if len(de) == 1:
-            name = de[0]
-        elif len(vectors) == 1:
-            name = vectors[0]
-        else:
-            raise InputError(f"{path}: choose the signal with --var NAME; variables: {listing}")
-    data = numeric[name]
-    if sum(d > 1 for d in data.shape) <= 1:
-        data = data.reshape(-1)
-    elif data.ndim == 2 and data.shape[0] < data.shape[1]:
-        data = data.T
-    x, which = _pick_column(data, channel, f"variable {name!r}")
-    fs = None
-    for fs_name in _FS_NAMES:
-        if fs_name in numeric and numeric[fs_name].size == 1:
-            fs = float(numeric[fs_name].reshape(-1)[0])
-            break
-    rpm, rpm_source = None, ""
-    rpm_vars = [k for k, v in numeric.items() if k.upper().endswith("RPM") and v.size == 1]
-    if len(rpm_vars) == 1:
-        rpm, rpm_source = float(numeric[rpm_vars[0]].reshape(-1)[0]), f"file variable {rpm_vars[0]}"
-    source = f"variable {name}" + ("" if which.endswith("of 1") else f", {which}")
-    return Waveform(x.astype(np.float64), fs, rpm=rpm, source=source, rpm_source=rpm_source)
-
-
-def read_waveform(path: Path, *, var: str | None = None, channel: int | None = None,
-                  full_scale: float = 1.0) -> Waveform:
-    """Read one channel of a recorded waveform (see the module docstring for the formats)."""
-    if not path.exists():
-        raise InputError(f"file {path} not found")
-    if path.is_dir():
-        raise InputError(f"{path} is a directory, not a waveform file")
-    suffix = path.suffix.lower()
-    if suffix not in FORMATS:
-        raise InputError(f"unknown format {suffix or '(no extension)'!r} of {path}; expected one of "
-                         f"{', '.join(FORMATS)}")
-    if var is not None and suffix != ".mat":
-        raise InputError("--var applies to MATLAB .mat files only")
-    try:
-        with path.open("rb"):
-            pass
-    except OSError as exc:
-        raise InputError(f"cannot read {path}: {exc.strerror or exc}") from None
-    if suffix == ".wav":
-        return _read_wav(path, channel, full_scale)
-    if suffix == ".npy":
-        return _read_npy(path, channel)
-    if suffix == ".mat":
-        return _read_mat(path, var, channel)
-    return _read_csv(path, channel)
+def _false_alarm(text: str) -> float:
+    p = _number("--false-alarm", text)
+    if not 1e-12 <= p <= 0.1:
+        raise InputError(f"--false-alarm {text} must be a probability from 1e-12 to 0.1")
+    return p
 
 
 # --------------------------------------------------------------------------------------------- analyze
@@ -295,20 +137,33 @@ def read_waveform(path: Path, *, var: str | None = None, channel: int | None = N
 def configure_analyze(parser: argparse.ArgumentParser) -> None:
     _one_line_errors(parser, "analyze")
     parser.description = ("Analyse a recorded waveform (WAV, .npy, CSV, MATLAB .mat) as one frame: time-domain "
-                          "indicators, velocity r.m.s. (ISO 20816 band), orders, envelope defect families and the "
-                          "ISO 20816-3 zone.  edgevib advises; it is not a machinery protection system.")
+                          "indicators, velocity r.m.s. (ISO 20816 band), orders, bearing defect families with "
+                          "detection verdicts and the ISO 20816-3 zone.  edgevib advises; it is not a machinery "
+                          "protection system.")
     parser.add_argument("file", metavar="FILE", type=Path, help="the waveform file")
-    parser.add_argument("--fs", metavar="HZ", help="sample rate (required for .npy, CSV and most .mat files)")
-    parser.add_argument("--var", metavar="NAME", help="variable of a .mat file (default: the one *_DE_time or "
-                                                      "the only numeric vector)")
+    parser.add_argument("--fs", metavar="HZ", help="sample rate (required for .npy, CSV and .mat files without one)")
+    parser.add_argument("--var", metavar="PATH", help="signal of a .mat file: a variable, or a struct field as "
+                                                      "a.b.c (struct arrays: a.Y(7).Data); default: the one "
+                                                      "*_DE_time or the only numeric vector")
+    parser.add_argument("--fs-var", metavar="PATH", help="sample rate of a .mat file (default: a scalar fs, Fs, "
+                                                         "sr, sample_rate... beside the signal or at the top level)")
+    parser.add_argument("--rpm-var", metavar="PATH", help="shaft speed in r/min of a .mat file (default: the one "
+                                                          "scalar named ...RPM beside the signal or at the top level)")
+    parser.add_argument("--shaft-hz-var", metavar="PATH", help="shaft speed in Hz of a .mat file")
     parser.add_argument("--channel", metavar="N", help="channel/column to analyse, 0-based (default 0)")
+    parser.add_argument("--column", metavar="NAME|INDEX",
+                        help="CSV column to analyse (default: the first that is neither constant nor monotonic)")
     parser.add_argument("--unit", default="g", metavar="g|m/s2", help="unit of the samples (default g)")
     parser.add_argument("--full-scale", metavar="X", default="1",
                         help="for integer PCM WAV: the value, in --unit, of digital full scale (default 1)")
     parser.add_argument("--rpm", metavar="R", help="shaft speed in r/min (default: from the file, else estimated)")
     parser.add_argument("--bearing", metavar="ELEMENTS,BALL_D,PITCH_D,ANGLE_DEG",
                         help="rolling-element bearing for the envelope families, e.g. 9,7.94,39.04,0")
-    parser.add_argument("--band", metavar="LO:HI", help="envelope demodulation band in Hz (default: from fs)")
+    parser.add_argument("--band", metavar="LO:HI|auto",
+                        help="envelope demodulation band in Hz, or auto (spectral kurtosis; default: from fs)")
+    parser.add_argument("--false-alarm", metavar="P", default="1e-3",
+                        help="probability that a defect family is called detected in stationary noise (default "
+                             "1e-3)")
     parser.add_argument("--velocity-band", metavar="LO:HI", default="10:1000",
                         help="velocity r.m.s. band in Hz (default 10:1000; 2:1000 below 600 r/min)")
     parser.add_argument("--group", metavar="1|2", help="ISO 20816-3 machine group (1: > 300 kW, 2: 15–300 kW)")
@@ -327,13 +182,51 @@ def _clean(value: Any) -> Any:
         return {k: _clean(v) for k, v in value.items()}
     if isinstance(value, list | tuple):
         return [_clean(v) for v in value]
+    if isinstance(value, bool | np.bool_):
+        return bool(value)
     if isinstance(value, float | np.floating):
         f = float(value)
         return f if math.isfinite(f) else None
     return value
 
 
-def _analyze(args: argparse.Namespace) -> dict[str, Any]:
+def _estimate_range(fs: float, n: int, orders: tuple[float, ...]) -> tuple[float, float] | None:
+    """The speed-estimate range: 5–100 Hz narrowed to what the record resolves and its rate carries."""
+    lo = max(ESTIMATE_RANGE_HZ[0], 2.0 * fs / n)
+    hi = min(ESTIMATE_RANGE_HZ[1], 0.99 * fs / 2 / (max(max(orders), 3.0) * (1 + ORDER_TOLERANCE)))
+    return (lo, hi) if lo < hi else None
+
+
+def _auto_band(x: np.ndarray, fs: float, speed: tuple[float, float], bearing: BearingGeometry | None,
+               harmonics: int = 3) -> tuple[tuple[float, float] | None, dict[str, Any]]:
+    """The automatic demodulation band and what the selection saw."""
+    if bearing is not None:
+        m = defect_multiples(bearing)
+        top = harmonics * max(m.bpfi_hz, m.bpfo_hz, 2 * m.bsf_hz) * speed[1] * 1.02
+        low = 0.9 * m.ftf_hz * speed[0]
+    else:
+        top, low = 10.0 * speed[1], 0.4 * speed[0]
+    hi = fs / ANTI_ALIAS_RATIO
+    lo = max(AUTO_BAND_FLOOR_HZ, 20.0 * speed[1])
+    if hi <= lo:
+        return None, {"reason": f"no room for a band between {lo:g} Hz and fs/2.56 = {hi:g} Hz"}
+    choice = select_band(x, fs, allowed_hz=(lo, hi), min_width_hz=max(1.2 * top, 4.0 * fs / x.size),
+                         envelope_hz=(max(low, 3.0 * fs / x.size), top))
+    info: dict[str, Any] = {"bands_examined": len(choice.grid), "kurtosis": choice.kurtosis,
+                            "periodicity_db": choice.periodicity_db}
+    if choice.band_hz is None:
+        spikiest = max(choice.grid, key=lambda s: s.kurtosis, default=None)
+        info["reason"] = ("no band of the kurtogram showed a periodic envelope" if spikiest is not None else
+                          f"no kurtogram band fits {lo:g}–{hi:g} Hz at least {1.2 * top:.0f} Hz wide")
+    return choice.band_hz, info
+
+
+def _speed_text(rpm: float) -> str:
+    return f"{rpm:.0f} r/min"
+
+
+def _analyze(args: argparse.Namespace) -> tuple[dict[str, Any], list[str]]:
+    warnings: list[str] = []
     unit = args.unit
     if unit not in ("g", "m/s2"):
         raise InputError(f"--unit {unit!r} must be g or m/s2")
@@ -359,17 +252,24 @@ def _analyze(args: argparse.Namespace) -> dict[str, Any]:
         raise InputError("--group and --support go together (both are needed for the ISO 20816-3 zone)")
     rpm_opt = _rpm(args.rpm)
     bearing = _bearing(args.bearing)
-    band = _band("--band", args.band)
+    auto = args.band is not None and args.band.strip().lower() == "auto"
+    band = None if auto else _band("--band", args.band)
     vel_band = _band("--velocity-band", args.velocity_band)
     assert vel_band is not None
+    alpha = _false_alarm(args.false_alarm)
 
-    wave = read_waveform(args.file, var=args.var, channel=channel, full_scale=full_scale)
+    wave = read_waveform(args.file, var=args.var, channel=channel, column=args.column, full_scale=full_scale,
+                         fs_var=args.fs_var, rpm_var=args.rpm_var, shaft_hz_var=args.shaft_hz_var)
+    fs_source = wave.fs_source
     if args.fs is not None:
         fs = _number("--fs", args.fs)
         if fs <= 0:
             raise InputError(f"--fs {args.fs} must be > 0")
         if wave.fs_hz is not None and args.file.suffix.lower() == ".wav" and abs(fs - wave.fs_hz) > 1e-9 * fs:
             raise InputError(f"--fs {fs:g} Hz contradicts the WAV header's {wave.fs_hz:g} Hz")
+        if wave.fs_hz is not None and abs(fs - wave.fs_hz) > 1e-9 * fs:
+            warnings.append(f"--fs {fs:g} Hz differs from the {wave.fs_hz:g} Hz of {wave.fs_source}; using --fs")
+        fs_source = "option --fs"
     elif wave.fs_hz is not None:
         fs = wave.fs_hz
     else:
@@ -383,58 +283,155 @@ def _analyze(args: argparse.Namespace) -> dict[str, Any]:
     if bad:
         raise InputError(f"{args.file}: {bad} of {x.size} samples are NaN or infinite")
     x_g = to_g(x, unit)
+    n = int(x_g.size)
+    orders = (0.5, 1.0, 2.0, 3.0)
+    notes: list[str] = []
 
-    rpm, shaft_source = rpm_opt, "option --rpm"
-    if rpm is None and wave.rpm is not None:
-        if not math.isfinite(wave.rpm) or wave.rpm <= 0:
-            raise InputError(f"{wave.rpm_source} holds an impossible speed {wave.rpm:g} r/min; give --rpm")
-        rpm, shaft_source = wave.rpm, wave.rpm_source
-    shaft_hz = None if rpm is None else rpm / 60.0
-    if shaft_hz is None:
-        # estimate within 5–100 Hz (300–6000 r/min), narrowed to what the record resolves and its rate carries
-        speed_range = (max(5.0, 2.0 * fs / x_g.size), min(100.0, 0.99 * fs / 2 / 3.1))
-        if speed_range[0] >= speed_range[1]:
-            raise InputError(f"record of {x_g.size} samples at {fs:g} Hz is too short to estimate a shaft speed; "
-                             "give --rpm or a longer record")
+    # ---- speed: given, from the file, or estimated; the estimate also checks a given speed
+    file_rpm = wave.rpm
+    if file_rpm is not None and (not math.isfinite(file_rpm) or file_rpm <= 0):
+        if rpm_opt is None:
+            raise InputError(f"{wave.rpm_source} holds an impossible speed {file_rpm:g} r/min; give --rpm")
+        file_rpm = None
+    est_range = _estimate_range(fs, n, orders)
+    est_hz: float | None = None
+    est_quality: float | None = None
+    if est_range is not None:
+        try:
+            est_plan = make_plan(fs, n, velocity_band_hz=vel_band, bearing=bearing, speed_range_hz=est_range,
+                                 orders=orders)
+        except PipelineError:
+            est_plan = None
+        if est_plan is not None:
+            first = analyze_frames(x_g, est_plan)[0]
+            est_hz, est_quality = first.shaft_hz, first.shaft_quality
+    if rpm_opt is not None:
+        shaft_hz: float | None = rpm_opt / 60.0
+        source, source_text = "given", "option --rpm"
+        if file_rpm is not None and abs(rpm_opt / file_rpm - 1) > ORDER_TOLERANCE:
+            warnings.append(f"--rpm {rpm_opt:g} differs from the file's {_speed_text(file_rpm)} "
+                            f"({wave.rpm_source}) by {100 * abs(rpm_opt / file_rpm - 1):.1f} %, more than the "
+                            f"{100 * ORDER_TOLERANCE:g} % order tolerance; using --rpm")
+        if est_hz is not None and abs(rpm_opt / 60.0 / est_hz - 1) > ORDER_TOLERANCE:
+            warnings.append(f"--rpm {rpm_opt:g} differs from the {_speed_text(est_hz * 60)} the spectrum shows "
+                            f"by {100 * abs(rpm_opt / 60.0 / est_hz - 1):.1f} %, more than the "
+                            f"{100 * ORDER_TOLERANCE:g} % order tolerance; using --rpm")
+    elif file_rpm is not None:
+        shaft_hz, source, source_text = file_rpm / 60.0, "file", wave.rpm_source
+    elif est_hz is not None:
+        shaft_hz, source, source_text = est_hz, "estimated", "estimated from the spectrum"
     else:
-        speed_range = (0.5 * shaft_hz, 1.5 * shaft_hz)
-    if band is None and bearing is not None:
+        shaft_hz, source = None, None
+        if est_range is None:
+            source_text = "not determined"
+            notes.append(f"speed: the {n / fs:.3g} s record is too short to estimate a shaft speed; give --rpm")
+        elif est_quality is not None:
+            source_text = "not determined (ambiguous)"
+            notes.append(f"speed: the spectrum is ambiguous (quality {est_quality:.2f}: another line pattern "
+                         "explains it as well); orders and envelope verdicts skipped; give --rpm")
+        else:
+            source_text = "not determined"
+            notes.append("speed: no clear shaft line in the spectrum; orders and envelope verdicts skipped; give "
+                         "--rpm")
+    if shaft_hz is not None:
+        speed_range = (shaft_hz * (1 - ORDER_TOLERANCE), shaft_hz * (1 + ORDER_TOLERANCE))
+    else:
+        speed_range = est_range or (1.0, min(2.0, 0.4 * fs / 2 / 3.1))
+
+    # ---- envelope band
+    band_source: str | None = None
+    selection: dict[str, Any] | None = None
+    if band is not None:
+        band_source = "configured"
+    elif auto:
+        band, selection = _auto_band(x_g, fs, speed_range, bearing)
+        if band is not None:
+            band_source = "auto"
+        else:
+            notes.append(f"envelope band: automatic choice not possible ({selection.get('reason')}); the default "
+                         "band is used")
+    if band is None and (bearing is not None or auto):
         band = default_envelope_band(fs, None, shaft_hz_max=speed_range[1])
-    plan = make_plan(fs, int(x_g.size), velocity_band_hz=vel_band, envelope_band_hz=band, bearing=bearing,
-                     speed_range_hz=speed_range)
-    ind: FrameIndicators = _analyze_frames(x_g, plan, None if shaft_hz is None else [shaft_hz])[0]
-    if ind.shaft_hz is None:
-        shaft_source = "not determined"
-    elif ind.shaft_estimated:
-        shaft_source = "estimated from the spectrum"
+        if band is not None:
+            band_source = "default"
+        elif bearing is not None:
+            notes.append(f"envelope: a {fs:g} Hz sample rate cannot carry a demodulation band (needs fs/2.56 ≥ "
+                         "2 kHz)")
+    plan = make_plan(fs, n, velocity_band_hz=vel_band, envelope_band_hz=band if bearing is not None else None,
+                     bearing=bearing, speed_range_hz=speed_range, orders=orders, order_tolerance=ORDER_TOLERANCE,
+                     false_alarm=alpha)
+    notes.extend(plan_notes(plan))
+    ind: FrameIndicators = analyze_frames(x_g, plan, [math.nan if shaft_hz is None else shaft_hz])[0]
+    if shaft_hz is None and ind.shaft_hz is not None:  # (the final plan's own estimate; kept consistent)
+        shaft_hz, source, source_text = ind.shaft_hz, "estimated", "estimated from the spectrum"
+        est_quality = ind.shaft_quality
 
     frame = FrameResult(point_id="", machine_id="", t_end_ns=0, received_ns=0, fs_hz=fs, indicators=ind,
                         iso_zone=None, samples=x_g.astype(np.float32))
     values = document(frame, "report", {"order": [order_key(o) for o in plan.orders]})  # the registry's report keys
+    envelope: dict[str, Any] = {"band_hz": list(band) if band is not None else None, "band_source": band_source,
+                                "detected": list(ind.envelope_detected)}
+    if selection is not None:
+        envelope["band_selection"] = selection
+    for name in FAMILIES:
+        fam = ind.envelope.get(name)
+        if fam is not None:  # the registry's numbers, then the verdict and what it rests on
+            envelope[name] = {**((values.get("envelope") or {}).get(name) or {}),
+                              "frequency_hz": fam.frequency_hz, "amplitude_g": fam.amplitude_g,
+                              "snr_db": fam.snr_db, "detected": fam.detected, "expected_hz": fam.expected_hz,
+                              "threshold_db": fam.threshold_db, "depth": fam.depth,
+                              "harmonics_found": fam.harmonics_found, "sidebands_found": fam.sidebands_found,
+                              "ambiguous_with": fam.ambiguous_with}
     result: dict[str, Any] = {
-        "file": str(args.file), "signal": wave.source, "unit": unit, "fs_hz": fs, "n_samples": int(x_g.size),
-        "duration_s": x_g.size / fs, "velocity_band_hz": list(plan.velocity_band_hz), "shaft_source": shaft_source,
+        "file": str(args.file),
+        "signal": wave.source,
+        "unit": unit,
+        "fs_hz": fs,
+        "fs_source": fs_source or "option --fs",
+        "n_samples": n,
+        "duration_s": n / fs,
         **values,
-        "envelope": {"band_hz": list(plan.envelope_band_hz) if plan.envelope_band_hz else None,
-                     **(values.get("envelope") or {})},
+        "velocity_band_hz": list(plan.velocity_band_hz),
+        "shaft_hz": shaft_hz,
+        "shaft_hz_source": source,
+        "shaft_hz_quality": est_quality if source == "estimated" else None,
+        "shaft_source": source_text,
+        "orders": {order_key(o): ind.orders_mm_s.get(order_key(o)) for o in plan.orders},
+        "envelope": envelope,
         "iso_zone": None,
+        "false_alarm": alpha,
+        "notes": notes,
+        "warnings": warnings,
     }
-    if bearing is not None and ind.shaft_hz is not None:
-        d = defect_frequencies(bearing, ind.shaft_hz)
+    if bearing is not None and shaft_hz is not None:
+        d = defect_frequencies(bearing, shaft_hz)
         result["defect_frequencies_hz"] = {"ftf": d.ftf_hz, "bpfo": d.bpfo_hz, "bpfi": d.bpfi_hz, "bsf": d.bsf_hz,
                                            "2xbsf": 2 * d.bsf_hz}
     if group is not None and args.support is not None:
-        result["iso_zone"] = iso_zone(ind.velocity_rms_mm_s, group, args.support)
+        if ind.velocity_rms_mm_s is not None:
+            result["iso_zone"] = iso_zone(ind.velocity_rms_mm_s, group, args.support)
         result["iso_group"] = group
         result["iso_support"] = args.support
         result["iso_boundaries_mm_s"] = list(zone_boundaries_mm_s(group, args.support))
-    return result
+    return result, warnings
 
 
 def _fmt(value: float | None, spec: str, unit: str = "") -> str:
     if value is None or not math.isfinite(value):
         return "n/a"
     return f"{value:{spec}}{' ' + unit if unit else ''}"
+
+
+def _family_line(name: str, f: dict[str, Any]) -> str:
+    label = FAMILY_LABELS[name]
+    head = f"  {label:<6} expected {f['expected_hz']:8.2f} Hz  "
+    if f["frequency_hz"] is None:
+        return head + "no local maximum within the slip window              not detected"
+    verdict = "DETECTED" if f["detected"] else (
+        f"ambiguous ({f['ambiguous_with']} explains the line)" if f["ambiguous_with"] else "not detected")
+    return (head + f"found {f['frequency_hz']:8.2f} Hz  {f['amplitude_g']:.4f} g  SNR {f['snr_db']:5.1f} dB "
+            f"(needs {_fmt(f['threshold_db'], '.1f')})  depth {_fmt(f['depth'], '.2f')}  harmonics "
+            f"{f['harmonics_found']}  sidebands {f['sidebands_found']}  {verdict}")
 
 
 def _text_report(r: dict[str, Any]) -> str:
@@ -461,24 +458,27 @@ def _text_report(r: dict[str, Any]) -> str:
         out.append(f"  ISO 20816-3 zone  {r['iso_zone']}  (group {r['iso_group']}, {r['iso_support']}: "
                    f"A/B {ab:g}, B/C {bc:g}, C/D {cd:g} mm/s)")
     shaft = r["shaft_hz"]
+    quality = f", quality {r['shaft_hz_quality']:.2f}" if r["shaft_hz_quality"] is not None else ""
     out.append(f"shaft speed         {_fmt(shaft, '.3f', 'Hz')}"
-               + (f" = {shaft * 60:.1f} r/min" if shaft else "") + f"  ({r['shaft_source']})")
-    if shaft:
+               + (f" = {shaft * 60:.1f} r/min" if shaft else "") + f"  ({r['shaft_source']}{quality})")
+    if shaft and any(v is not None for v in r["orders"].values()):
         out.append("orders (velocity r.m.s.)  " + "  ".join(f"{k} {_fmt(v, '.4f')}" for k, v in r["orders"].items())
                    + " mm/s")
     env = r["envelope"]
     if env["band_hz"] is None:
         out.append("envelope            not computed (no --bearing, or the sample rate cannot carry a band)")
     else:
-        out.append(f"envelope {env['band_hz'][0]:g}–{env['band_hz'][1]:g} Hz (amplitude of the envelope spectrum)")
+        out.append(f"envelope {env['band_hz'][0]:g}–{env['band_hz'][1]:g} Hz ({env['band_source']} band; squared "
+                   f"envelope for detection, envelope amplitude in g; false alarm {r['false_alarm']:g} per family)")
         found = [n for n in FAMILIES if n in env]
         if not found:
             out.append("  no defect families (needs --bearing and a known shaft speed)")
         for name in found:
-            f = env[name]
-            label = "2xBSF" if name == "bsf" else name.upper()
-            out.append(f"  {label:<6} expected {f['expected_hz']:8.2f} Hz  found {f['frequency_hz']:8.2f} Hz  "
-                       f"{f['amplitude_g']:.4f} g  SNR {f['snr_db']:5.1f} dB  harmonics {f['harmonics_found']}")
+            out.append(_family_line(name, env[name]))
+        if found:
+            out.append("  detected: " + (", ".join(FAMILY_LABELS[n] for n in env["detected"]) or "none"))
+    for note in r["notes"]:
+        out.append(f"note: {note}")
     out.append("")
     out.append("edgevib advises; judge findings with a qualified analyst and the site's procedures.")
     return "\n".join(out)
@@ -486,9 +486,11 @@ def _text_report(r: dict[str, Any]) -> str:
 
 def run_analyze(args: argparse.Namespace) -> int:
     try:
-        result = _analyze(args)
+        result, warnings = _analyze(args)
     except (InputError, PipelineError) as exc:
         return _fail("analyze", str(exc))
+    for w in warnings:
+        print(f"edgevib analyze: warning: {w}", file=sys.stderr)
     if args.json:
         print(json.dumps(_clean(result)))
     else:

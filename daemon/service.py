@@ -58,7 +58,6 @@ __all__ = [
 
 log = get_logger("edgevib.service")
 STOP_TIMEOUT_S = 10.0
-LEADING_FAMILY_SNR_DB = 10.0  # a family shown as "leading" only when it stands clearly above the floor (demo)
 
 
 def _listen_arg(value: str) -> tuple[str, int]:
@@ -257,8 +256,11 @@ def _leading_family(r: FrameResult) -> str:
     env = r.indicators.envelope
     if not env:
         return "-" if r.indicators.envelope_band_hz is not None else "n/a"
-    fam, res = max(env.items(), key=lambda kv: kv[1].snr_db)
-    return f"{fam} {res.snr_db:.0f} dB" if res.snr_db >= LEADING_FAMILY_SNR_DB else "-"
+    found = [(name, res.snr_db) for name, res in env.items() if res.detected and res.snr_db is not None]
+    if not found:
+        return "-"
+    fam, snr = max(found, key=lambda kv: kv[1])
+    return f"{fam} {snr:.0f} dB"
 
 
 DEMO = sorted((i.demo for i in REGISTRY if i.demo is not None), key=lambda d: d.position)

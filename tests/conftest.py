@@ -31,3 +31,12 @@ def cwru_dir() -> Path:
     if not path.is_dir():
         pytest.skip(f"dataset folder {path} not present")
     return path
+
+
+@pytest.fixture(scope="session")
+def femto_dir() -> Path:
+    """The FEMTO PRONOSTIA bearing 1_2 snapshots in ../shared/datasets/femto (see its README)."""
+    path = DATASETS / "femto" / "Bearing1_2"
+    if not path.is_dir():
+        pytest.skip(f"dataset folder {path} not present")
+    return path

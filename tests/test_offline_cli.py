@@ -64,10 +64,13 @@ def test_cwru_mat_json(cwru_dir: Path, capsys: pytest.CaptureFixture[str]) -> No
     assert doc["shaft_hz"] == pytest.approx(1796 / 60) and doc["shaft_source"] == "file variable X130RPM"
     assert set(doc["orders"]) == {"0.5x", "1x", "2x", "3x"}  # type: ignore[arg-type]
     env = doc["envelope"]
-    assert env["band_hz"] == [2000.0, 5000.0]  # type: ignore[index]
-    assert set(env) == {"band_hz", "ftf", "bpfo", "bpfi", "bsf"}  # type: ignore[arg-type]
+    assert env["band_hz"] == [2000.0, 5000.0] and env["band_source"] == "configured"  # type: ignore[index]
+    assert set(env) == {"band_hz", "band_source", "detected", "ftf", "bpfo", "bpfi", "bsf"}  # type: ignore[arg-type]
     for fam in ("ftf", "bpfo", "bpfi", "bsf"):
-        assert set(env[fam]) >= {"frequency_hz", "amplitude_g", "snr_db"}  # type: ignore[index]
+        assert set(env[fam]) >= {"frequency_hz", "amplitude_g", "snr_db", "detected"}  # type: ignore[index]
+    # the outer-race record: BPFO detected, no other family (datasets README: OR007@6, 130.mat)
+    assert env["detected"] == ["bpfo"] and env["bpfo"]["detected"] is True  # type: ignore[index]
+    assert doc["shaft_hz_source"] == "file" and doc["shaft_hz_quality"] is None
     # E1 check value: 107.61 Hz, 0.6307 g (±0.5 Hz, ±20 %)
     assert env["bpfo"]["frequency_hz"] == pytest.approx(107.61, abs=0.5)  # type: ignore[index]
     assert env["bpfo"]["amplitude_g"] == pytest.approx(0.6307, rel=0.2)  # type: ignore[index]
@@ -101,7 +104,8 @@ def test_float_wav(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     assert doc["velocity_rms_mm_s"] == pytest.approx(ONE_G_50HZ_MM_S, abs=0.01)
     assert doc["orders"]["1x"] == pytest.approx(ONE_G_50HZ_MM_S, rel=0.01)  # type: ignore[index]
     assert doc["acceleration_rms_g"] == pytest.approx(1 / math.sqrt(2), rel=1e-4)
-    assert doc["envelope"] == {"band_hz": None}
+    assert doc["envelope"] == {"band_hz": None, "band_source": None, "detected": []}
+    assert doc["shaft_hz_source"] == "given" and doc["notes"] == [] and doc["warnings"] == []
 
 
 def test_int16_multichannel_wav_full_scale_and_unit(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
@@ -147,9 +151,10 @@ def _bad_files(tmp: Path) -> dict[str, Path]:
         "short": tmp / "short.npy", "nan": tmp / "nan.csv", "text": tmp / "text.csv", "empty": tmp / "empty.csv",
         "ragged": tmp / "ragged.csv", "wav": tmp / "bad.wav", "mat": tmp / "bad.mat", "npy_obj": tmp / "obj.npy",
         "unknown": tmp / "signal.xyz", "good": tmp / "good.npy", "mono": tmp / "mono.wav", "dir": tmp / "d.wav",
-        "binary_csv": tmp / "bin.csv",
+        "binary_csv": tmp / "bin.csv", "tiny": tmp / "tiny.npy",
     }
     np.save(files["short"], np.zeros(100))
+    np.save(files["tiny"], np.ones(63))
     files["nan"].write_text("0.1\n0.2\nnan\n0.3\n")
     files["text"].write_text("a\n0.1\nhello\n")
     files["empty"].write_text("# only a comment\n")
@@ -181,7 +186,7 @@ BAD_CASES = [
     (["{good}", "--fs", "-5"], "--fs -5 must be > 0"),
     (["{good}", "--fs", "abc"], "--fs 'abc' is not a number"),
     (["{mono}", "--fs", "1000"], "contradicts the WAV header's 25600 Hz"),
-    (["{short}", "--fs", "25600"], "too short"),
+    (["{tiny}", "--fs", "25600"], "record of 63 samples is too short: need at least 64"),
     (["{good}", "--fs", "25600", "--band", "2000:20000", "--bearing", CWRU_BEARING],
      "envelope band high edge 20000 Hz is at or above Nyquist 12800 Hz"),
     (["{good}", "--fs", "25600", "--velocity-band", "10:13000"], "velocity band high edge 13000 Hz"),

@@ -394,7 +394,7 @@ class AlarmLayer:
         ind = r.indicators
         m = self.machines_cfg.get(r.machine_id)
         v = ind.velocity_rms_mm_s
-        if not (math.isfinite(v) and v >= self.settings.run_threshold_velocity_mm_s):
+        if v is None or not (math.isfinite(v) and v >= self.settings.run_threshold_velocity_mm_s):
             return False
         if m is not None and ind.shaft_hz is not None and not ind.shaft_estimated and math.isfinite(ind.shaft_hz):
             return bool(ind.shaft_hz * 60.0 >= float(m.run_threshold_rpm))
