@@ -299,7 +299,7 @@ def _analyze(args: argparse.Namespace) -> tuple[dict[str, Any], list[str]]:
     if est_range is not None:
         try:
             est_plan = make_plan(fs, n, velocity_band_hz=vel_band, bearing=bearing, speed_range_hz=est_range,
-                                 orders=orders)
+                                 orders=orders, partial=True)
         except PipelineError:
             est_plan = None
         if est_plan is not None:
@@ -359,7 +359,7 @@ def _analyze(args: argparse.Namespace) -> tuple[dict[str, Any], list[str]]:
                          "2 kHz)")
     plan = make_plan(fs, n, velocity_band_hz=vel_band, envelope_band_hz=band if bearing is not None else None,
                      bearing=bearing, speed_range_hz=speed_range, orders=orders, order_tolerance=ORDER_TOLERANCE,
-                     false_alarm=alpha)
+                     false_alarm=alpha, partial=True)
     notes.extend(plan_notes(plan))
     ind: FrameIndicators = analyze_frames(x_g, plan, [math.nan if shaft_hz is None else shaft_hz])[0]
     if shaft_hz is None and ind.shaft_hz is not None:  # (the final plan's own estimate; kept consistent)
