@@ -156,8 +156,11 @@ def envelope_view(x_g: npt.ArrayLike, plan: AnalysisPlan, shaft_hz: float | None
     fits = fam.part("fits")[0]
     centres = fam.expected_lines[0]
     h = plan.harmonics
-    kinds: list[tuple[LineKind, float]] = [("fundamental", 1.0)] + [("harmonic", float(k)) for k in range(2, h + 1)]
-    kinds += [("sideband", float(o)) for o in SIDEBAND_ORDERS]
+    kinds: list[tuple[LineKind, float]] = [("fundamental", 1.0)]
+    for k in range(2, h + 1):
+        kinds.append(("harmonic", float(k)))
+    for o in SIDEBAND_ORDERS.tolist():
+        kinds.append(("sideband", float(o)))
     names = (*FAMILIES, "shaft")
     families: list[FamilyMarkers] = []
     for j, name in enumerate(FAMILIES):
@@ -193,7 +196,7 @@ def envelope_view(x_g: npt.ArrayLike, plan: AnalysisPlan, shaft_hz: float | None
                                       found_hz=float(s.index[0, k]) * df if found else None,
                                       level_db=_db(t) if found else None, threshold_db=_db(float(s.threshold[0, k])),
                                       counted=bool(found and t >= s.threshold[0, k])))
-    freqs = np.arange(amp.shape[-1]) * df
+    freqs: FloatArray = np.arange(amp.shape[-1], dtype=np.float64) * df
     return EnvelopeView(band_hz=plan.envelope_band_hz, shaft_hz=f, freqs_hz=freqs, amplitude_g=amp[0],
                         depth=depth, families=tuple(families), shaft_lines=tuple(shaft_lines),
                         detected=tuple(m.family for m in families if m.detected))
@@ -250,7 +253,7 @@ def spectrum_view(x_g: npt.ArrayLike, plan: AnalysisPlan, shaft_hz: float | None
                 found = float(k_lo + int(np.argmax(vel[k_lo : k_hi + 1]))) * df
             orders.append(OrderMarker(key=key, expected_hz=centre, window_hz=(k_lo * df, k_hi * df), found_hz=found,
                                       velocity_rms_mm_s=value))
-    freqs: FloatArray = np.arange(stop) * df
+    freqs: FloatArray = np.arange(stop, dtype=np.float64) * df
     return SpectrumView(quantity=quantity, unit="g" if quantity == "acceleration" else "mm/s", freqs_hz=freqs,
                         amplitude=amp, shaft_hz=f, orders=tuple(orders))
 

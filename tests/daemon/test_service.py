@@ -260,8 +260,8 @@ def test_render_table_tty_and_plain(tmp_path: Path) -> None:
                           crest_factor=3.0, kurtosis=4.2, skewness=0.0, mean_g=0.0, velocity_rms_mm_s=3.1,
                           velocity_peak_mm_s=4.4, displacement_pp_um=20.0, shaft_hz=24.65, shaft_estimated=False,
                           envelope_band_hz=(2000.0, 8000.0),
-                          envelope={"bpfo": FamilyResult(88.4, 88.5, 0.01, 18.0, 3),
-                                    "bpfi": FamilyResult(133.4, 133.0, 0.002, 4.0, 0)})
+                          envelope={"bpfo": FamilyResult(88.4, 88.5, 0.01, 18.0, 3, detected=True),
+                                    "bpfi": FamilyResult(133.4, 133.0, 0.002, 24.0, 0)})  # not detected: not shown
     latest = {"P-101-DE-H": FrameResult("P-101-DE-H", "P-101", 0, 0, 25600.0, ind, "C", np.zeros(4))}
     table = render_table(cfg, latest, lambda pid: "alert" if pid == "P-101-DE-H" else None, tty=True)
     header, _, row, waiting = table.splitlines()

@@ -59,7 +59,7 @@ def test_envelope_view_of_the_cwru_outer_race_record(cwru_dir: Path) -> None:
     assert sum(m.counted for m in bpfo.lines if m.kind in ("fundamental", "harmonic")) == \
         ind.envelope["bpfo"].harmonics_found
     assert [m.order for m in bpfo.lines if m.kind == "sideband"] == [-2.0, -1.0, 1.0, 2.0]
-    k = int(round(fund.found_hz / view.freqs_hz[1]))  # type: ignore[operator]
+    k = round(fund.found_hz / view.freqs_hz[1])  # type: ignore[operator]
     assert view.amplitude_g[k] == pytest.approx(0.6307, rel=0.2)  # E1 check value and tolerance
     assert view.depth[k] == pytest.approx(ind.envelope["bpfo"].depth, rel=1e-6)
     assert view.shaft_lines[0].expected_hz == pytest.approx(shaft)
