@@ -197,7 +197,7 @@ def test_speed_estimate_never_guesses_wrong(cwru_dir: Path, seconds: float,
         x, fs, shaft_hz, _ = record(cwru_dir, name)
         n = int(fs * seconds)
         frames = np.concatenate([x[None, :n * (x.size // n)].reshape(-1, n)])
-        for r in analyze_frames(frames, make_plan(fs, n, speed_range_hz=speed_range_hz)):
+        for r in analyze_frames(frames, make_plan(fs, n, speed_range_hz=speed_range_hz, partial=True)):
             assert r.shaft_hz is None or r.shaft_hz == pytest.approx(shaft_hz, rel=0.03), name
         whole_rec = analyze_frames(x, make_plan(fs, x.size, speed_range_hz=speed_range_hz))[0]
         assert whole_rec.shaft_hz is None or whole_rec.shaft_hz == pytest.approx(shaft_hz, rel=0.002), name
