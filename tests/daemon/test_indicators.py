@@ -41,6 +41,10 @@ def _frame() -> FrameResult:
     x = 0.3 * np.sin(2 * np.pi * SHAFT_HZ * t) + 0.02 * rng.standard_normal(N)
     bpfo = 3.5848 * SHAFT_HZ
     x += 0.5 * np.sin(2 * np.pi * 4000.0 * t) * (1 + np.cos(2 * np.pi * bpfo * t))
+    # faint modulations at the other families' frequencies (FTF 0.39828, 2 × BSF 4.7135 × fr): each family's
+    # window then holds a local maximum, so its amplitude and level exist (a window without one reads None)
+    for m in (0.39828, 4.7135):
+        x += 0.02 * np.sin(2 * np.pi * 4000.0 * t) * np.cos(2 * np.pi * m * SHAFT_HZ * t)
     plan = make_plan(FS, N, envelope_band_hz=(2500.0, 10000.0), bearing=BearingGeometry(9, 0.3126, 1.537),
                      speed_range_hz=(10.0, 50.0))
     ind = analyze_frames(x, plan, [SHAFT_HZ])[0]
