@@ -78,6 +78,9 @@ from edgevib.daemon.interfaces import (
     Source,
 )
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
+from edgevib.daemon.machine_state import MachineTracker
+from edgevib.daemon.sensor_health import HealthError, batch_health
+from edgevib.pipelines.health import HealthSpec, SensorHealth
 from edgevib.pipelines.types import AnalysisPlan, FrameIndicators, PipelineError
 
 __all__ = ["LOSSLESS_BACKLOG", "SINK_BACKLOG_PER_POINT", "AnalyzeFn", "Daemon", "SinkChannel", "run"]
@@ -234,6 +237,7 @@ class Daemon:
         self.stats = Stats()
         self.analyze = analyze or _default_analyze
         self.ingest = BlockIngest(config, self.stats, on_frames=self._on_frames, clock_ns=clock_ns)
+        self.machines = MachineTracker(config)  # machine state per machine, from every analysed frame
         self.points: dict[str, _PointState] = {}
         self.latest: dict[str, FrameResult] = {}
         self.sinks: list[FrameSink] = []
@@ -316,6 +320,7 @@ class Daemon:
             self.add_lossless_sink(alarms)
             self._reconfigurable.append(alarms)
             self.alarm_view = alarms
+            self.machines.healthy = alarms.point_healthy  # a point with a sensor fault does not vote
         from edgevib.daemon.trendwatch import create_trend_watch
 
         self.trend_watch = create_trend_watch(config, alarms, registry=self.metrics.registry)
@@ -463,6 +468,7 @@ class Daemon:
         self._counted = {pid: len(stream.queue) for pid, stream in streams.items()}
         self._queued_frames = sum(self._counted.values())
         self._ready = {pid: t for pid, t in self._ready.items() if self._counted.get(pid)}
+        self.machines.configure(config)
         for pid in [pid for pid in self.latest if pid not in self.points]:
             self.latest.pop(pid)
         if self._given_sources is None:
@@ -578,47 +584,79 @@ class Daemon:
     async def _run_batch(self, plan: AnalysisPlan, jobs: list[FrameJob]) -> None:
         pids = {j.point_id for j in jobs}
         try:
-            now = self.clock_ns()
-            shaft = [self.ingest.speed_hz(self.points[j.point_id].machine, now) if j.point_id in self.points
-                     else None for j in jobs]
+            shaft = [j.speed_hz for j in jobs]  # each frame's speed as known when it was completed
+            measured = [s if s is not None and j.point_id in self.points
+                        and self.points[j.point_id].machine.speed_tag is not None else None
+                        for j, s in zip(jobs, shaft, strict=True)]
             shaft_arr = None if all(s is None for s in shaft) else \
                 np.array([math.nan if s is None else s for s in shaft], dtype=np.float64)
+            specs = [self._health_spec(j.point_id) for j in jobs]
+            running = [self.machines.running(self.points[j.point_id].machine.id) if j.point_id in self.points
+                       else True for j in jobs]
+            points = [j.point_id for j in jobs]
+            health_errors: list[HealthError] = []
             loop = asyncio.get_running_loop()
             try:
-                x, indicators = await loop.run_in_executor(self._executor, self._stack_and_analyze,
-                                                           [j.samples for j in jobs], plan, shaft_arr)
+                x, indicators, health = await loop.run_in_executor(
+                    self._executor, self._stack_and_analyze, [j.samples for j in jobs], plan, shaft_arr, specs,
+                    running, points, health_errors)
             except Exception as exc:
                 for pid in pids:
                     Stats.inc(self.stats.analysis_errors, pid, sum(1 for j in jobs if j.point_id == pid))
                 self.rlog.error(("analysis", tuple(sorted(pids))), "analysis failed", points=sorted(pids),
                                 error=repr(exc))
                 return
-            results = self._results(jobs, indicators, x)
+            for err in health_errors:
+                self.rlog.warning(("health", err.points), "sensor health check failed", points=list(err.points),
+                                  error=err.problem)
+            results = self._results(jobs, indicators, x, measured, health)
             if results:
                 self._publish(results)
         finally:
             self._release(pids)
 
     def _stack_and_analyze(self, frames: list[npt.NDArray[np.float32]], plan: AnalysisPlan,
-                           shaft_hz: npt.NDArray[np.float64] | None,
-                           ) -> tuple[npt.NDArray[np.float32], list[FrameIndicators]]:
-        """In the worker thread: one array per batch (each result's samples a read-only view of its row), then
-        the analysis — the batch's copy stays off the event loop too."""
+                           shaft_hz: npt.NDArray[np.float64] | None, specs: Sequence[HealthSpec | None],
+                           running: Sequence[bool], points: Sequence[str], health_errors: list[HealthError],
+                           ) -> tuple[npt.NDArray[np.float32], list[FrameIndicators], list[SensorHealth | None]]:
+        """In the worker thread: one array per batch (each result's samples a read-only view of its row), the
+        analysis, then the sensor-health checks of the frames — the batch's copy stays off the event loop too."""
         x = np.stack(frames, dtype=np.float32)
         x.flags.writeable = False
-        return x, self.analyze(x, plan, shaft_hz)
+        ind = self.analyze(x, plan, shaft_hz)
+        if not any(specs):
+            return x, ind, [None] * len(ind)
+        rms = [i.acceleration_rms_g for i in ind]
+        return x, ind, batch_health(x, plan.fs_hz, specs, rms, running, points, health_errors)
 
-    def _results(self, jobs: list[FrameJob], indicators: list[FrameIndicators],
-                 frames: npt.NDArray[np.float32]) -> list[FrameResult]:
+    def _health_spec(self, point_id: str) -> HealthSpec | None:
+        """The point's sensor-health specification, or ``None`` when the alarm layer checks no health."""
+        settings = self.config.alarm_settings
+        if not settings.enabled or not settings.health_enabled:
+            return None
+        return settings.health.get(point_id, HealthSpec())
+
+    def _results(self, jobs: list[FrameJob], indicators: list[FrameIndicators], frames: npt.NDArray[np.float32],
+                 measured_hz: Sequence[float | None] | None = None,
+                 health: Sequence[SensorHealth | None] | None = None) -> list[FrameResult]:
         results = []
-        for job, ind, samples in zip(jobs, indicators, frames, strict=True):
+        speeds = measured_hz if measured_hz is not None else [None] * len(jobs)
+        verdicts = health if health is not None else [None] * len(jobs)
+        for job, ind, samples, speed, h in zip(jobs, indicators, frames, speeds, verdicts, strict=True):
             st = self.points.get(job.point_id)
             if st is None:  # removed by a reload while in flight
                 continue
+            ms = self.machines.observe(st.machine.id, job.point_id, job.t_end_ns / 1e9, speed_hz=speed,
+                                       velocity_rms_mm_s=ind.velocity_rms_mm_s,
+                                       frame_healthy=h is None or h.ok)
+            if ms is not None and ms.state == "stopped" and (ind.orders_mm_s or ind.envelope):
+                # A standing machine has no orders or bearing families, whatever speed was assumed (a fixed one,
+                # or an estimate from the noise): absent, not zero.
+                ind = dataclasses.replace(ind, orders_mm_s={}, envelope={}, shaft_hz=speed, shaft_estimated=False)
             zone = _iso_zone(ind.velocity_rms_mm_s, st.machine)
             r = FrameResult(point_id=job.point_id, machine_id=st.machine.id, t_end_ns=job.t_end_ns,
                             received_ns=job.received_ns, fs_hz=st.config.fs_hz, indicators=ind, iso_zone=zone,
-                            samples=samples, axis=st.config.axis)
+                            samples=samples, axis=st.config.axis, machine_state=ms, health=h)
             r = dataclasses.replace(r, trend=st.trend.update({i.name: i.value(r) for i in TRENDED},
                                                              job.t_end_ns / 1e9))
             self.latest[job.point_id] = r

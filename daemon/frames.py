@@ -103,12 +103,15 @@ class Stats:
 
 @dataclass(frozen=True, slots=True)
 class FrameJob:
-    """A complete frame of one point waiting for analysis (samples in g, float32, read-only)."""
+    """A complete frame of one point waiting for analysis (samples in g, float32, read-only).  ``speed_hz`` is
+    the machine's known speed when the frame was completed (fixed, or the latest fresh tag reading; ``None``: to be
+    estimated), so a frame keeps the speed of its own time however long it waits for analysis."""
 
     point_id: str
     samples: npt.NDArray[np.float32]
     t_end_ns: int
     received_ns: int
+    speed_hz: float | None = None
 
 
 class PointStream:
@@ -160,8 +163,9 @@ class PointStream:
             return "duplicate", f"seq {block.seq} received twice"
         return "out_of_order", f"seq {block.seq} after {self.last_seq}"
 
-    def push(self, block: Block, received_ns: int, restart: bool) -> int:
-        """Append a checked block; returns how many queued frames were dropped to make room."""
+    def push(self, block: Block, received_ns: int, restart: bool, speed_hz: float | None = None) -> int:
+        """Append a checked block (``speed_hz``: the machine's known speed now); returns how many queued frames
+        were dropped to make room."""
         x = block.samples if block.unit == "g" else np.asarray(block.samples) / G_M_S2
         if restart:
             self._fill = 0
@@ -176,14 +180,14 @@ class PointStream:
             t_end = self._base_t0_ns + round((self._consumed + self.frame) * self._ns_per_sample)
             self._consumed += self.hop
             whole = cast(npt.NDArray[np.float32], x)  # (checked just above: float32 and read-only)
-            return self._enqueue(FrameJob(self.point.id, whole, t_end, received_ns))
+            return self._enqueue(FrameJob(self.point.id, whole, t_end, received_ns, speed_hz))
         self._buf[self._fill:self._fill + n] = x
         self._fill += n
         while self._fill >= self.frame:
             frame = self._buf[:self.frame].copy()
             frame.flags.writeable = False
             t_end = self._base_t0_ns + round((self._consumed + self.frame) * self._ns_per_sample)
-            dropped += self._enqueue(FrameJob(self.point.id, frame, t_end, received_ns))
+            dropped += self._enqueue(FrameJob(self.point.id, frame, t_end, received_ns, speed_hz))
             rest = self._fill - self.hop
             self._buf[:rest] = self._buf[self.hop:self._fill]
             self._fill = rest
@@ -249,6 +253,9 @@ class BlockIngest:
         kept = {pid: s for pid, s in self.streams.items() if pid in set(keep)}
         self.streams = {p.id: kept.get(p.id) or PointStream(p, config.analysis.queue_frames) for p in config.points}
         self.by_sensor = {(p.source, p.sensor): p.id for p in config.points}
+        machines = {m.id: m for m in config.machines}
+        self.machine_of: dict[str, MachineConfig] = {p.id: machines[p.machine] for p in config.points
+                                                     if p.machine in machines}
         self.other_shard = frozenset(config.skipped_sensors)
         self.sensor_level: dict[str, int | None] = {
             s.name: getattr(s, "sensor_topic_level", None) for s in config.sources}
@@ -311,7 +318,9 @@ class BlockIngest:
             self.log.warning(("gap", pid), "stream discontinuity; frame assembly restarts", point=pid,
                              source=source, detail=detail)
         before = len(stream.queue)
-        dropped = stream.push(block, received_ns, restart)
+        machine = self.machine_of.get(pid)
+        speed = self.speed_hz(machine) if machine is not None else None
+        dropped = stream.push(block, received_ns, restart, speed)
         if dropped:
             Stats.inc(self.stats.frames_dropped, pid, dropped)
             self.log.warning(("drop", pid), "analysis is behind: oldest frames dropped", point=pid,

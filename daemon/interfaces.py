@@ -18,6 +18,8 @@ from edgevib.daemon.wire import Block
 
 if TYPE_CHECKING:  # the configuration imports this module and must not load the numerical core
     from edgevib.daemon.config import Config
+    from edgevib.pipelines.health import SensorHealth
+    from edgevib.pipelines.machine_state import MachineState
     from edgevib.pipelines.types import FrameIndicators
 
 __all__ = [
@@ -44,7 +46,9 @@ class FrameResult:
     last sample, ``received_ns`` the wall-clock time its last block arrived (for ingest-to-metric latency).
     ``iso_zone`` is ``"A".."D"`` when the point's machine has a group and support, ``axis`` the point's axis,
     ``trend`` the exponentially weighted trend of the indicators that keep one (by indicator name; see
-    :mod:`edgevib.daemon.indicators`).
+    :mod:`edgevib.daemon.indicators`).  ``machine_state`` is the machine's state after this frame
+    (:mod:`edgevib.daemon.machine_state`; ``None`` when not tracked), ``health`` the frame's sensor-health verdict
+    (:mod:`edgevib.daemon.sensor_health`; ``None`` when not checked).
     """
 
     point_id: str
@@ -57,6 +61,8 @@ class FrameResult:
     samples: npt.NDArray[np.float32] = field(repr=False)
     axis: str = ""
     trend: Mapping[str, float] = field(default_factory=dict)
+    machine_state: MachineState | None = None
+    health: SensorHealth | None = None
 
 
 BlockHandler = Callable[[Block, str | None], None]

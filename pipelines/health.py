@@ -13,7 +13,8 @@ running machine does not produce (FIELD_NOTES §6, common practice):
     (a stuck converter or a held last value);
 ``clipping``
     samples at the full scale of the sensor, or — without a known full scale — flat tops: runs of consecutive
-    samples at the frame's extreme, which a band-limited signal never produces;
+    samples at the frame's extreme, which a band-limited signal never produces (unless the whole frame spans only
+    a few quantization steps: a quiet signal on a coarse converter repeats its extremes by nature);
 ``dc-step``
     the frame's local mean jumping between segments by more than the vibration's own spread (an intermittent
     connector or a cable being moved);
@@ -23,6 +24,12 @@ running machine does not produce (FIELD_NOTES §6, common practice):
 ``noise``
     the noise floor (median power spectral density in a band above the machine's content) above the sensor's
     specified noise density by a factor.
+
+A standing machine is judged against what a standing machine shows (``running=False``): only the sensor's own
+noise, which a coarse converter renders as a few repeating quantization steps.  So on such rows a flatline needs
+the standard deviation under its floor (repeats alone are expected), and the noise-floor check, which assumes the
+machine's content and the sensor's noise specification, is not applied.  A dead output, a bias out of its
+window, clipping, DC steps and spikes are sensor faults whatever the machine does.
 
 "No data for N frames" is a timer and belongs to the daemon.
 """
@@ -43,6 +50,7 @@ __all__ = ["FAULT_ORDER", "HealthSpec", "SensorFault", "SensorHealth", "check_he
 SensorFault = Literal["bias", "flatline", "clipping", "dc-step", "spikes", "noise"]
 FAULT_ORDER: tuple[SensorFault, ...] = ("bias", "flatline", "clipping", "dc-step", "spikes", "noise")
 SPIKE_WINDOW = 8  # samples each side in which a ringing response would show
+MIN_LEVELS = 16  # quantization steps a frame must span before flat tops at its extremes say "clipping"
 _MAD_TO_SIGMA = 1.4826  # σ / median absolute deviation for a Gaussian (common practice)
 
 
@@ -184,7 +192,7 @@ def _spike_free(x: npt.NDArray[np.float64], hi: npt.NDArray[np.float64], lo: npt
 
 def check_health(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec | None = None,
                  bias_v: npt.ArrayLike | None = None, *, rms_g: npt.ArrayLike | None = None,
-                 screen: bool = True) -> tuple[SensorHealth, ...]:
+                 screen: bool = True, running: npt.ArrayLike | None = None) -> tuple[SensorHealth, ...]:
     """Check the health of a batch of frames of one sensor type.
 
     Parameters
@@ -204,6 +212,9 @@ def check_health(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec | None = 
     screen : bool
         Prove most rows spike-free by counting (see :func:`_spike_free`) and run the exact median-based spike
         test only on the others; ``False`` runs it on every row (same verdicts, slower: the reference).
+    running : array_like of bool, shape (channels,), optional
+        Whether each channel's machine runs (default: all).  ``False`` judges the row against a standing
+        machine: flatline only by the standard-deviation floor, no noise-floor check (module docstring).
 
     Returns
     -------
@@ -212,7 +223,8 @@ def check_health(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec | None = 
     Raises
     ------
     SignalError
-        Non-finite samples, fewer than 16 samples per channel, or a mismatched ``bias_v`` / ``rms_g``.
+        Non-finite samples, fewer than 16 samples per channel, or a mismatched ``bias_v`` / ``rms_g`` /
+        ``running``.
     PlanError
         A noise band that cannot be resolved.
 
@@ -238,6 +250,11 @@ def check_health(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec | None = 
         bias = np.asarray(bias_v, dtype=np.float64).reshape(-1)
         if bias.shape != (c,):
             raise SignalError(f"bias_v has {bias.size} values for {c} channels")
+    turning = np.ones(c, dtype=np.bool_)
+    if running is not None:
+        turning = np.asarray(running, dtype=np.bool_).reshape(-1)
+        if turning.shape != (c,):
+            raise SignalError(f"running has {turning.size} values for {c} channels")
 
     # Segment means (pass 1): the DC-step check, the frame mean and — since NaN and ±Inf reach a sum — the
     # finiteness check.
@@ -271,6 +288,12 @@ def check_health(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec | None = 
         xs_ = x[top_rows]
         at_hi, at_lo = xs_ >= (hi - tol)[top_rows, None], xs_ <= (lo + tol)[top_rows, None]
         pinned = (at_hi[:, 1:] & at_hi[:, :-1]) | (at_lo[:, 1:] & at_lo[:, :-1])
+        # A frame spanning only a few quantization steps (the smallest non-zero change between samples) repeats
+        # its extremes by nature: its flat tops are no evidence of clipping.
+        steps = np.abs(np.diff(xs_, axis=1))
+        q = np.min(np.where(steps > 0, steps, np.inf), axis=1)
+        coarse = (hi[top_rows] - lo[top_rows]) < MIN_LEVELS * q
+        pinned[coarse] = False
         pinned_n[top_rows] = _count(pinned)
         repeat_n[top_rows] -= _count(pinned & (xs_[:, 1:] == xs_[:, :-1]))  # pinned tops are clipping, not stuck
     if spec.full_scale_g is not None:
@@ -302,7 +325,7 @@ def check_health(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec | None = 
         spikes[exact], sigma_r[exact] = _spike_counts(x[exact], spec.spike_sigma)
 
     noise: npt.NDArray[np.float64] | None = None
-    if spec.noise_density_ug_rthz is not None:
+    if spec.noise_density_ug_rthz is not None and turning.any():
         band = spec.noise_band_hz or (0.35 * fs_hz, 0.45 * fs_hz)
         if band[1] > fs_hz / 2:
             raise PlanError(f"noise band high edge {band[1]:g} Hz is above Nyquist {fs_hz / 2:g} Hz")
@@ -326,7 +349,7 @@ def check_health(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec | None = 
             if abs(m) > allowed:
                 found.append(("bias", f"mean {m:.3f} g is beyond the ±{allowed:g} g a {spec.sensor_type} sensor "
                                       f"can show"))
-        if std[i] < spec.flatline_std_g or repeat[i] > spec.repeat_fraction:
+        if std[i] < spec.flatline_std_g or (turning[i] and repeat[i] > spec.repeat_fraction):
             found.append(("flatline", f"standard deviation {std[i]:.3g} g (floor {spec.flatline_std_g:g} g), "
                                       f"{100 * repeat[i]:.1f} % of samples repeat the previous one"))
         if clip[i] > spec.clip_fraction:
@@ -338,7 +361,7 @@ def check_health(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec | None = 
         if spikes[i] > 0:
             found.append(("spikes", f"{int(spikes[i])} isolated spike(s) above {spec.spike_sigma:g} × the robust "
                                     f"spread {float(sigma_r[i]):.3g} g"))
-        nd = None if noise is None else float(noise[i])
+        nd = None if noise is None or not turning[i] else float(noise[i])
         if nd is not None and spec.noise_density_ug_rthz is not None and \
                 nd > spec.noise_factor * spec.noise_density_ug_rthz:
             found.append(("noise", f"noise floor {nd:.0f} µg/√Hz above {spec.noise_factor:g} × the specified "

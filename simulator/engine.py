@@ -583,6 +583,7 @@ class Simulation:
                                          m.speed.wander_period_s, math.radians(m.speed.wander_phase_deg))
             for m in scenario.machines}
         self._impact_cache: OrderedDict[tuple[int, int, int], F64] = OrderedDict()
+        self._state_cache: dict[tuple[str, float, tuple[tuple[str, float], ...]], list[tuple[float, str]]] = {}
         self._models = {p.point_id: _PointModel(self, p, scenario.machine(p.machine_id)) for p in scenario.points}
         self._next = dict.fromkeys(self._models, 0)
         self._now_s = 0.0
@@ -657,9 +658,36 @@ class Simulation:
 
     # ------------------------------------------------------------------ truth
 
-    def truth(self, t_s: float | None = None) -> dict[str, Any]:
+    def machine_state(self, machine_id: str, t_s: float, **params: float) -> str:
+        """The machine's state at ``t_s`` (``stopped``, ``starting``, ``running``, ``coasting``), from its speed
+        profile alone (:func:`~edgevib.simulator.models.machine_state_timeline`).  ``params`` override
+        :data:`~edgevib.simulator.models.MACHINE_STATE_DEFAULTS` (``startup_grace_s``, ``run_hysteresis``,
+        ``speed_change_per_s``), as the daemon configuration given to the daemon does."""
+        return M.state_at(self.machine_state_timeline(machine_id, t_s, **params), t_s)
+
+    def machine_state_timeline(self, machine_id: str, t_end_s: float | None = None,
+                               **params: float) -> list[tuple[float, str]]:
+        """``[(t_start_s, state), …]`` of a machine up to ``t_end_s`` (default: the scenario's duration)."""
+        m = self.scenario.machine(machine_id)
+        unknown = set(params) - set(M.MACHINE_STATE_DEFAULTS)
+        if unknown:
+            raise TypeError(f"unknown machine-state parameter(s): {', '.join(sorted(unknown))}")
+        p = {**M.MACHINE_STATE_DEFAULTS, **params}
+        end = max(self.scenario.duration_s, float(t_end_s or 0.0))
+        key = (machine_id, end, tuple(sorted(p.items())))
+        cached = self._state_cache.get(key)
+        if cached is None:
+            cached = M.machine_state_timeline(self._speeds[machine_id], m.run_threshold_rpm / 60.0, end,
+                                              startup_grace_s=p["startup_grace_s"],
+                                              run_hysteresis=p["run_hysteresis"],
+                                              speed_change_per_s=p["speed_change_per_s"])
+            self._state_cache[key] = cached
+        return cached
+
+    def truth(self, t_s: float | None = None, **machine_state_params: float) -> dict[str, Any]:
         """The expected indicators of every point at simulation time ``t_s`` (default: the time reached by
-        :meth:`blocks_until`, 0 before the first call).  See the package README for the fields."""
+        :meth:`blocks_until`, 0 before the first call).  See the package README for the fields.
+        ``machine_state_params`` as for :meth:`machine_state`."""
         t = self._now_s if t_s is None else float(t_s)
         if not math.isfinite(t) or t < 0:
             raise ValueError(f"t_s {t_s!r} must be a finite time >= 0 s")
@@ -667,12 +695,17 @@ class Simulation:
         machines = {}
         for m in self.scenario.machines:
             rpm = self.speed_hz(m.machine_id, t) * 60
+            timeline = self.machine_state_timeline(m.machine_id, t, **machine_state_params)
             machines[m.machine_id] = {
                 "description": m.description, "group": m.group, "support": m.support, "speed_rpm": rpm,
                 "running": rpm >= m.run_threshold_rpm, "fixed_speed": m.speed.fixed,
+                "machine_state": M.state_at(timeline, t),
+                "machine_state_changes": [{"t_s": t0, "state": s} for t0, s in timeline],
                 "speed_schedule_rpm": [list(k) for k in m.speed.knots_rpm],
                 "speed_wander_fraction": m.speed.wander_fraction,
             }
+        for pt in points.values():
+            pt["machine_state"] = machines[pt["machine"]]["machine_state"]
         for pid, model in self._models.items():
             if model.curves:
                 points[pid]["progression"] = self._timeline(model)
@@ -741,6 +774,8 @@ class Simulation:
             entry |= {"group": m.group, "support": m.support}
             if m.speed.fixed:
                 entry["speed_rpm"] = float(m.speed.knots_rpm[0][1])
+            elif not m.speed_tag:
+                pass  # no speed measurement: the daemon estimates the speed from the spectrum
             elif src["type"] == "opcua":
                 entry["speed_tag"] = {"source": sname, "node": opcua_speed_node(sc, m.machine_id), "unit": "rpm"}
             else:

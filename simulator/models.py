@@ -143,6 +143,81 @@ class SpeedProfile:
         """Shaft position in revolutions since t = 0 at times ``t`` (s)."""
         return self._revs_raw(np.asarray(t, dtype=np.float64)) - self._r0
 
+    def hz_per_s(self, t: npt.ArrayLike) -> F64:
+        """Rate of change of the shaft speed, Hz/s, at times ``t`` (the derivative of :meth:`hz`, exact:
+        ``β(1 + w·sin φ) + L·w·ω·cos φ`` on each linear segment; 0 where the speed is clamped at 0)."""
+        tt = np.asarray(t, dtype=np.float64)
+        seg = self._seg(tt)
+        lin = self._alpha[seg] + self._beta[seg] * tt
+        rate = self._beta[seg] * np.ones_like(tt)
+        if self.w:
+            ph = self.omega * tt + self.psi
+            rate = self._beta[seg] * (1.0 + self.w * np.sin(ph)) + lin * self.w * self.omega * np.cos(ph)
+            lin = lin * (1.0 + self.w * np.sin(ph))
+        return np.asarray(np.where(lin > 0, rate, 0.0), dtype=np.float64)
+
+
+# --------------------------------------------------------------------------------------------- machine state
+
+MACHINE_STATE_DEFAULTS: dict[str, float] = {"startup_grace_s": 30.0, "run_hysteresis": 0.2,
+                                            "speed_change_per_s": 0.02}
+"""The daemon's documented defaults of ``[alarms] startup_grace_s``, ``run_hysteresis`` and
+``speed_change_per_s`` (README, configuration reference); the truth uses them unless told otherwise."""
+
+
+def machine_state_timeline(profile: SpeedProfile, run_threshold_hz: float, t_end_s: float, *,
+                           startup_grace_s: float = 30.0, run_hysteresis: float = 0.2,
+                           speed_change_per_s: float = 0.02, dt_s: float = 0.01) -> list[tuple[float, str]]:
+    """The machine's state over ``[0, t_end_s]`` as ``[(t_start_s, state), …]``, from its speed profile alone.
+
+    The definitions the daemon documents (README, machine state), applied to the exact speed ``f(t)`` and its
+    exact derivative ``f'(t)`` on a ``dt_s`` grid: turning at ``f ≥ run_threshold_hz`` (at
+    ``f ≥ (1 − run_hysteresis) × run_threshold_hz`` once turning); a run-up or coast-down where
+    ``|f'| / max(f, run_threshold_hz) ≥ speed_change_per_s``; ``starting`` from the moment a standing machine
+    turns until the start-up grace is over and it no longer accelerates (``coasting`` at once if it slows down);
+    ``coasting`` while a turning machine slows down; a machine turning at t = 0 was started before and is
+    ``running`` unless it accelerates then.
+    """
+    n = math.floor(max(t_end_s, 0.0) / dt_s) + 1
+    t = np.arange(n) * dt_s
+    f = profile.hz(t)
+    rate = profile.hz_per_s(t) / np.maximum(np.maximum(f, run_threshold_hz), 1e-9)
+    out: list[tuple[float, str]] = []
+    state = "unknown"
+    started = 0.0
+    for i in range(n):
+        ti, fi, ri = float(t[i]), float(f[i]), float(rate[i])
+        turning_before = state in ("starting", "running", "coasting")
+        threshold = run_threshold_hz * (1.0 - run_hysteresis) if turning_before else run_threshold_hz
+        turning = fi >= threshold and fi > 0
+        accel, decel = ri >= speed_change_per_s, ri <= -speed_change_per_s
+        if not turning:
+            new = "stopped"
+        elif state == "stopped" or (state == "unknown" and accel):
+            started, new = ti, "starting"
+        elif state == "unknown":
+            new = "running"
+        elif state == "starting":
+            new = "coasting" if decel else "starting" if accel or ti - started < startup_grace_s else "running"
+        else:
+            new = "coasting" if decel else "running"
+        if new == "starting" and not accel and ti - started >= startup_grace_s:
+            new = "running"
+        if new != state:
+            out.append((ti, new))
+            state = new
+    return out
+
+
+def state_at(timeline: Sequence[tuple[float, str]], t_s: float) -> str:
+    """The state of a :func:`machine_state_timeline` at ``t_s`` (``"unknown"`` before its first entry)."""
+    state = "unknown"
+    for t0, s in timeline:
+        if t0 > t_s + 1e-9:
+            break
+        state = s
+    return state
+
 
 # --------------------------------------------------------------------------------------------- bearings
 

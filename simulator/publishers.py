@@ -356,6 +356,8 @@ async def stream(sim: Simulation, *, rate: float, duration_s: float | None,
         if step_to > t_sim:
             while next_speed <= step_to:
                 for m in sim.machines:
+                    if not m.speed_tag:  # the plant has no speed measurement of this machine
+                        continue
                     rpm = sim.speed_hz(m.machine_id, next_speed) * 60
                     if mqtt is not None:
                         mqtt.publish_speed(sim.speed_topic(m.machine_id), rpm)

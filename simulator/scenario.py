@@ -17,6 +17,8 @@ Schema (defaults in brackets)::
             + optional wander = 0.01, wander_period_s [60], wander_phase_deg [0]
       reference_rpm [highest scheduled speed]   amplitudes below are given at this speed
       run_threshold_rpm [60]; speed_range_rpm [[0.5, 1.5] × reference]
+      speed_tag [true]             false: the plant has no speed measurement of a machine whose speed varies;
+                                   its emitted configuration has no speed tag (the daemon estimates the speed)
       residual_mm_s [0.5]          healthy residual 1× (with 0.3 of it at 2×) on a gain-1 axis
       process_noise_ug_rthz [150]  broadband process noise density at reference speed (∝ speed)
       [[machines.faults]]  type, points [all of the machine's], axis_gain {axis = gain}, stage ["moderate"],
@@ -171,6 +173,7 @@ class MachineSpec:
     residual_mm_s: float
     process_noise_ug_rthz: float
     faults: tuple[FaultSpec, ...]
+    speed_tag: bool = True
 
 
 @dataclass(frozen=True, slots=True)
@@ -579,7 +582,8 @@ def parse_scenario(doc: Mapping[str, Any], path: str = "") -> Scenario:
             support=mt.text("support", choices=("rigid", "flexible")),
             speed=speed, reference_rpm=ref, run_threshold_rpm=mt.num("run_threshold_rpm", 60.0, 0.0),
             speed_range_rpm=srange, residual_mm_s=mt.num("residual_mm_s", 0.5, 0.0, 100.0),
-            process_noise_ug_rthz=mt.num("process_noise_ug_rthz", 150.0, 0.0, 1e6), faults=tuple(faults)))
+            process_noise_ug_rthz=mt.num("process_noise_ug_rthz", 150.0, 0.0, 1e6), faults=tuple(faults),
+            speed_tag=_flag(mt, "speed_tag", True)))
         mt.done()
     scenario = Scenario(name, description, site, site_desc, prefix, duration_s, tuple(machines), tuple(points), path,
                         longrun)
@@ -588,6 +592,13 @@ def parse_scenario(doc: Mapping[str, Any], path: str = "") -> Scenario:
 
         parse_longrun(scenario)
     return scenario
+
+
+def _flag(t: _Table, key: str, default: bool) -> bool:
+    v = t.raw(key, default)
+    if not isinstance(v, bool):
+        raise ScenarioError(t.key(key), f"must be true or false, got {v!r}")
+    return v
 
 
 def _machine_reference_rpm(mt: _Table) -> float:

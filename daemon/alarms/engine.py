@@ -55,6 +55,8 @@ from edgevib.daemon.alarms.state import Baseline, SensorState, StateStore, resta
 from edgevib.daemon.config import Config
 from edgevib.daemon.indicators import LIMITABLE
 from edgevib.daemon.interfaces import FrameResult
+from edgevib.daemon.machine_state import MachineTracker
+from edgevib.daemon.sensor_health import HealthError, batch_health
 from edgevib.daemon.timestamps import rfc3339_utc_s
 from edgevib.pipelines.alarm import (
     AlarmState,
@@ -69,14 +71,16 @@ from edgevib.pipelines.alarm import (
     step,
     unshelve,
 )
-from edgevib.pipelines.health import HealthSpec, SensorHealth, check_health
-from edgevib.pipelines.types import PipelineError
+from edgevib.pipelines.health import HealthSpec, SensorHealth
+from edgevib.pipelines.machine_state import MachineState
 
 __all__ = ["AlarmCollector", "AlarmLayer", "advice_text", "trend_slope_per_h"]
 
 log = structlog.get_logger("edgevib.alarms")
 
 SEVERITY = ("normal", "alert", "danger")
+SUPPRESSION: dict[str, str] = {"stopped": "machine-stopped", "starting": "start-up-grace"}
+"""Machine states under which machine alarms are suppressed by design, and the reason given."""
 NO_DATA_START_S = 30.0  # allowance after start before a point that never sent a frame counts as "no data"
 RELAPSE_WINDOW_S = 120.0  # a sensor fault back within this time of clearing doubles, triples… the re-arm delay
 _DISCLAIMER = "edgevib monitors and advises; it is not a protection system."
@@ -136,13 +140,6 @@ def _display_rank(indicator: str) -> int:
 
 
 @dataclass
-class _Machine:
-    running: dict[str, bool] = field(default_factory=dict)  # point -> verdict of its latest frame
-    is_running: bool = False
-    since_s: float | None = None  # start of the current run
-
-
-@dataclass
 class _Pending:
     alarms: dict[tuple[str, str], AlarmState] = field(default_factory=dict)
     sensors: dict[str, SensorState] = field(default_factory=dict)
@@ -187,7 +184,10 @@ class AlarmLayer:
         self.baselines: dict[tuple[str, str], Baseline] = {}
         self.sensors: dict[str, SensorState] = {}
         self.trends: dict[tuple[str, str], deque[tuple[float, float]]] = {}
-        self.machines: dict[str, _Machine] = {m: _Machine() for m in self.machines_cfg}
+        # Machine state: the daemon's (carried by each FrameResult); for results that carry none, the layer
+        # keeps its own from the same evidence (a point with a sensor fault does not vote).
+        self.own_machines = MachineTracker(config, healthy=self.point_healthy)
+        self.machine_states: dict[str, MachineState] = {}
         self.last_frame: dict[str, float] = {}   # point -> latest frame time (measurement timeline)
         self.last_seen: dict[str, float] = {}    # point -> monotonic arrival time
         self.suppressed: dict[str, str | None] = {}
@@ -357,28 +357,34 @@ class AlarmLayer:
         return pend
 
     def _health(self, results: list[FrameResult]) -> list[SensorHealth | None]:
-        """Health of every frame, batched over points that share a spec, length and rate (in a worker thread;
-        the r.m.s. comes from the frame's indicators)."""
-        out: list[SensorHealth | None] = [None] * len(results)
+        """Health of every frame: the verdict the daemon's analysis workers attached, or — for results without
+        one — checked here, batched over frames of one length and rate (in a worker thread; the r.m.s. comes
+        from the frame's indicators)."""
+        out: list[SensorHealth | None] = [r.health for r in results]
         if not self.settings.health_enabled:
-            return out
-        groups: dict[tuple[HealthSpec, int, float], list[int]] = {}
+            return [None] * len(results)
+        groups: dict[tuple[int, float], list[int]] = {}
         for i, r in enumerate(results):
-            spec = self.settings.health.get(r.point_id, HealthSpec())
-            groups.setdefault((spec, int(np.asarray(r.samples).size), r.fs_hz), []).append(i)
-        for (spec, _, fs), idx in groups.items():
-            try:
-                rms = np.array([results[i].indicators.acceleration_rms_g for i in idx], dtype=np.float64)
-                res = check_health(np.stack([np.asarray(results[i].samples, dtype=np.float64).reshape(-1)
-                                             for i in idx]), fs, spec,
-                                   rms_g=rms if np.all(np.isfinite(rms)) else None)
-            except PipelineError as exc:
+            if r.health is None:
+                groups.setdefault((int(np.asarray(r.samples).size), r.fs_hz), []).append(i)
+        for (_, fs), idx in groups.items():
+            errors: list[HealthError] = []
+            res = batch_health(np.stack([np.asarray(results[i].samples, dtype=np.float64).reshape(-1) for i in idx]),
+                               fs, [self.settings.health.get(results[i].point_id, HealthSpec()) for i in idx],
+                               [results[i].indicators.acceleration_rms_g for i in idx],
+                               [self._runs(results[i]) for i in idx], [results[i].point_id for i in idx], errors)
+            for err in errors:
                 self.health_errors += 1
-                log.warning("sensor health check failed", points=[results[i].point_id for i in idx], error=str(exc))
-                continue
+                log.warning("sensor health check failed", points=list(err.points), error=err.problem)
             for i, h in zip(idx, res, strict=True):
                 out[i] = h
         return out
+
+    def _runs(self, r: FrameResult) -> bool:
+        """Whether the frame's machine runs (else its health is judged against a standing machine); results
+        without a machine state use the machine's latest known one."""
+        ms = r.machine_state or self.machine_states.get(r.machine_id)
+        return ms is not None and ms.state == "running"
 
     def _process(self, results: list[FrameResult], health: list[SensorHealth | None]) -> _Pending:
         pend = _Pending()
@@ -390,37 +396,32 @@ class AlarmLayer:
     def _count(self, kind: str) -> None:
         self.events_total[kind] = self.events_total.get(kind, 0) + 1
 
-    def _running_verdict(self, r: FrameResult) -> bool:
-        ind = r.indicators
-        m = self.machines_cfg.get(r.machine_id)
-        v = ind.velocity_rms_mm_s
-        if v is None or not (math.isfinite(v) and v >= self.settings.run_threshold_velocity_mm_s):
-            return False
-        if m is not None and ind.shaft_hz is not None and not ind.shaft_estimated and math.isfinite(ind.shaft_hz):
-            return bool(ind.shaft_hz * 60.0 >= float(m.run_threshold_rpm))
-        return True
+    def point_healthy(self, point: str) -> bool:
+        """Whether a point has no sensor fault (its level may then vote for its machine's state)."""
+        s = self.sensors.get(point)
+        return s is None or s.fault is None
+
+    def _machine_state(self, r: FrameResult, t_s: float) -> MachineState:
+        ms = r.machine_state
+        if ms is None:
+            ind = r.indicators
+            m = self.machines_cfg.get(r.machine_id)
+            measured = ind.shaft_hz if m is not None and m.speed_tag is not None and not ind.shaft_estimated \
+                else None
+            ms = self.own_machines.observe(r.machine_id, r.point_id, t_s, speed_hz=measured,
+                                           velocity_rms_mm_s=ind.velocity_rms_mm_s) or MachineState()
+        self.machine_states[r.machine_id] = ms
+        return ms
 
     def _frame(self, r: FrameResult, h: SensorHealth | None, pend: _Pending) -> None:
         pid, t_s = r.point_id, r.t_end_ns / 1e9
         self.last_frame[pid] = t_s
         sensor = self._sensor(r, h, t_s, pend)
-        mach = self.machines.setdefault(r.machine_id, _Machine())
-        if sensor.fault is None:
-            mach.running[pid] = self._running_verdict(r)
-        else:
-            mach.running.pop(pid, None)
-        was = mach.is_running
-        mach.is_running = any(mach.running.values())
-        if mach.is_running and not was:
-            mach.since_s = t_s
+        ms = self._machine_state(r, t_s)
         if sensor.fault is not None:
             reason: str | None = "sensor-fault"
-        elif not mach.is_running:
-            reason = "machine-stopped"
-        elif mach.since_s is not None and t_s - mach.since_s < self.settings.startup_grace_s:
-            reason = "start-up-grace"
         else:
-            reason = None
+            reason = SUPPRESSION.get(ms.state)
         self.suppressed[pid] = reason
         for listener in self.frame_listeners:
             try:
@@ -484,8 +485,18 @@ class AlarmLayer:
 
     def _base_data(self, point: str, machine: str) -> dict[str, Any]:
         p = self.points.get(point)
+        ms = self.machine_states.get(machine)
         return {"site": self.settings.site, "machine": machine, "point": point,
-                "axis": getattr(p, "axis", None)}
+                "axis": getattr(p, "axis", None), "machine_state": ms.state if ms is not None else "unknown"}
+
+    def machine_view(self, machine: str) -> dict[str, Any]:
+        """A machine's state for the views: ``{state, since_s, grace_left_s}`` (the start-up grace still to run,
+        on the frames' timeline, while ``starting``)."""
+        ms = self.machine_states.get(machine) or MachineState()
+        spec = self.own_machines.specs.get(machine)
+        until = ms.grace_until_s(spec) if spec is not None else None
+        left = None if until is None or ms.last_s is None else max(0.0, until - ms.last_s)
+        return {"state": ms.state, "since_s": ms.since_s, "grace_left_s": left}
 
     def _emit(self, type_: str, point: str, machine: str, data: dict[str, Any], t_ns: int, pend: _Pending,
               event_id: str | None = None) -> str:
@@ -797,7 +808,9 @@ class AlarmLayer:
             for pid, p in self.points.items():
                 sev = self.point_severity(pid)
                 s = self.sensors.get(pid, SensorState())
+                mv = self.machine_view(p.machine)
                 msg = {"site": self.settings.site, "machine": p.machine, "point": pid, "axis": p.axis,
+                       "machine_state": mv["state"], "start_up_grace_left_s": mv["grace_left_s"],
                        "state": ("normal", "alert", "danger", "sensor-fault")[sev],
                        "suppressed": self.suppressed.get(pid),
                        "sensor": {"fault": s.fault, "detail": s.detail or None},

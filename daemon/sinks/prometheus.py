@@ -33,6 +33,7 @@ from edgevib.daemon.frames import Stats
 from edgevib.daemon.indicators import REGISTRY, Indicator, Si, meaning
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.logs import get_logger
+from edgevib.pipelines.machine_state import MACHINE_STATES
 
 __all__ = ["PROMETHEUS", "IndicatorCollector", "MetricsServer", "PrometheusSink"]
 
@@ -61,12 +62,25 @@ class IndicatorCollector:
         yield from self._self_metrics()
 
     def _indicators(self, latest: list[tuple[tuple[str, ...], FrameResult]]) -> Iterable[Metric]:
-        """One gauge family per registry indicator published here (values in SI units; unavailable: absent)."""
+        """One gauge family per registry indicator published here (values in SI units; unavailable: absent), and
+        the machine state of each machine (from its newest frame)."""
         families = [(ind, si, GaugeMetricFamily(f"edgevib_{ind.prometheus}", meaning(ind),
                                                 labels=_LABELS + ([ind.per] if ind.per else []), unit=si.suffix))
                     for ind, si in PROMETHEUS]
         last = GaugeMetricFamily("edgevib_last_frame_timestamp_seconds", "End time of the latest analysed frame.",
                                  labels=_LABELS, unit="seconds")
+        machine_state = GaugeMetricFamily(
+            "edgevib_machine_state", "Machine state after the machine's latest analysed frame: 1 for the present "
+            "state (stopped, starting, running, coasting, unknown), 0 for the others.",
+            labels=["site", "machine", "state"])
+        newest: dict[str, tuple[int, str]] = {}  # machine -> (frame end, state) of its newest frame
+        for _, r in latest:
+            ms = r.machine_state
+            if ms is not None and r.t_end_ns >= newest.get(r.machine_id, (-1, ""))[0]:
+                newest[r.machine_id] = (r.t_end_ns, ms.state)
+        for mid, (_, present) in sorted(newest.items()):
+            for name in MACHINE_STATES:
+                machine_state.add_metric([self.site, mid, name], 1.0 if present == name else 0.0)
         for labels, r in latest:
             lab = list(labels)
             for ind, si, fam in families:
@@ -74,7 +88,7 @@ class IndicatorCollector:
                     if v is not None and math.isfinite(v):
                         fam.add_metric([*lab, key] if key else lab, v * si.factor)
             last.add_metric(lab, r.t_end_ns / 1e9)
-        return [*(fam for _, _, fam in families), last]
+        return [*(fam for _, _, fam in families), last, machine_state]
 
     def _self_metrics(self) -> Iterable[Metric]:
         s = self.stats

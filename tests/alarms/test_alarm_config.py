@@ -133,7 +133,8 @@ def test_example_shows_the_defaults(tmp_path: Path) -> None:
     assert {"alarms", "capture"} <= set(full) and "health" in full["alarms"]
     shown = parse_config(full, tmp_path).alarm_settings
     bare = parse_config(doc(tmp_path), tmp_path).alarm_settings
-    for name in ("enabled", "health_enabled", "startup_grace_s", "run_threshold_velocity_mm_s", "no_data_frames",
+    for name in ("enabled", "health_enabled", "startup_grace_s", "run_threshold_velocity_mm_s", "run_hysteresis",
+                 "speed_change_per_s", "speed_trend_window_s", "no_data_frames",
                  "sensor_recover_frames", "baseline_frames", "trend_frames", "max_shelve_s", "socket_path",
                  "socket_mode", "capture", "feed"):
         assert getattr(shown, name) == getattr(bare, name), name

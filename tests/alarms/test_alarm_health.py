@@ -133,3 +133,69 @@ def test_counting_screen_gives_the_exact_verdicts() -> None:
     assert [h.spike_count for h in fast] == [h.spike_count for h in exact]
     assert exact[5].spike_count == 2 and exact[6].spike_count == 0
     assert_allclose([h.step_g for h in fast], [h.step_g for h in exact], rtol=1e-12)
+
+
+def _quantized(x: np.ndarray, range_g: float = 50.0, bits: int = 16) -> np.ndarray:
+    lsb = 2 * range_g / 2**bits  # an ideal converter's step over ±range (common practice)
+    return np.round(x / lsb) * lsb
+
+
+def test_a_standing_machine_is_judged_against_standing_expectations() -> None:
+    # A piezo on a standing machine shows only its own noise (0.4 mg r.m.s. here); through a 16-bit ±50 g converter
+    # (1.5 mg steps) that is a few repeating steps.  On a running machine that would be a stuck sensor; on a
+    # standing one it is the expected signal.  A dead output (constant) is a fault either way.
+    rng = np.random.default_rng(5)
+    quiet = _quantized(0.0004 * rng.standard_normal(N))
+    assert len(np.unique(quiet)) < 8 and np.std(quiet) > HealthSpec().flatline_std_g
+    frames = np.stack([quiet, np.zeros(N)])
+    running = check_health(frames, FS, running=[True, True])
+    standing = check_health(frames, FS, running=[False, False])
+    assert running[0].fault == "flatline"  # the check that the relaxation has to relax
+    assert standing[0].ok, standing[0].detail
+    assert running[1].fault == standing[1].fault == "flatline"
+
+
+def test_real_faults_are_reported_on_a_standing_machine() -> None:
+    rng = np.random.default_rng(6)
+    quiet = 0.0004 * rng.standard_normal(N)
+    shifted = quiet + 3.0  # a connector failing on a DC-coupled channel
+    railed = quiet.copy()
+    railed[4000:4800] = 45.0  # an open cable pinning the output at the rail (flat tops)
+    big = np.clip(3.0 * np.sin(2 * np.pi * 24.7 * T), -2.0, 2.0)  # amplifier overload: clipped
+    spiky = quiet.copy()
+    spiky[[1000, 7000, 12000]] = 0.5  # isolated electrical spikes
+    res = check_health(np.stack([shifted, railed, big, spiky]), FS, running=[False] * 4)
+    assert res[0].fault == "bias"
+    assert res[1].faults and res[1].fault in ("bias", "clipping", "dc-step")
+    assert res[2].fault == "clipping"
+    assert res[3].fault == "spikes"
+
+
+def test_few_quantization_steps_are_no_clipping() -> None:
+    # a frame spanning only a few converter steps repeats its extremes: no flat-top clipping, running or not
+    # (±1 step 5 % of the time each: consecutive samples at an extreme 0.25 % + 0.25 % of the time, above the
+    # 0.2 % flat-top limit)
+    rng = np.random.default_rng(7)
+    lsb = 100.0 / 2**16
+    coarse = lsb * rng.choice([-1.0, 0.0, 1.0], size=N, p=[0.05, 0.9, 0.05])
+    res = check_health(coarse, FS, running=[False])
+    assert res[0].clip_fraction == 0.0 and res[0].ok, res[0].detail
+    pairs = np.mean((coarse[1:] == coarse[:-1]) & (np.abs(coarse[1:]) > 0))
+    assert pairs > HealthSpec().clip_fraction  # what the flat-top count alone would have called clipping
+    # while a clipped vibration spanning many steps is still clipping
+    clipped = _quantized(np.clip(0.5 * np.sin(2 * np.pi * 24.7 * T), -0.3, 0.3))
+    assert check_health(clipped, FS)[0].fault == "clipping"
+
+
+def test_noise_floor_is_not_judged_while_standing() -> None:
+    rng = np.random.default_rng(8)
+    noisy = 0.01 * rng.standard_normal(N)  # density 0.01·√(2/fs) = 88 µg/√Hz against a 5 µg/√Hz specification
+    spec = HealthSpec(noise_density_ug_rthz=5.0)
+    assert check_health(noisy, FS, spec, running=[True])[0].fault == "noise"
+    standing = check_health(noisy, FS, spec, running=[False])[0]
+    assert standing.ok and standing.noise_density_ug_rthz is None
+
+
+def test_running_flags_must_match_the_channels() -> None:
+    with pytest.raises(SignalError, match="running has 1 values for 2 channels"):
+        check_health(np.zeros((2, N)), FS, running=[True])

@@ -316,3 +316,37 @@ async def test_a_lossless_sink_behind_pauses_analysis_and_misses_nothing(tmp_pat
     finally:
         lossless.release.set()
         await d.stop()
+
+
+async def test_machine_state_and_sensor_health_travel_with_the_results(tmp_path: Path) -> None:
+    # P-101 has a fixed speed: the daemon knows standstill only from the level (ISO 20816 velocity r.m.s. of a
+    # 1 g, 50 Hz sine is 1 g·9.80665/(2π·50)/√2 = 22 mm/s, far above the 0.2 mm/s run threshold; 1 µg of noise is
+    # far below, yet above the 10 µg flatline floor).  A standing machine's frames carry no orders or bearing
+    # families: absent, not zero.
+    d, src, probe, registry = await start_daemon(config(tmp_path, queue_frames=64))
+    try:
+        src.connect()
+        rng = np.random.default_rng(0)
+        for seq in range(8):
+            d.ingest.block("scripted", sine_block("QL-P101-DE-H", seq, 1.0, 25.0), 0)
+        for seq in range(8, 24):
+            b = sine_block("QL-P101-DE-H", seq, 0.0, 25.0)
+            d.ingest.block("scripted", Block(b.sensor_id, b.seq, b.t0_ns, b.fs_hz, "g",
+                                             1e-4 * rng.standard_normal(BLOCK)), 0)
+        await wait_for(lambda: d.stats.frames_analysed["P-101-DE-H"] >= 11 and d.idle)
+        mine = [r for r in probe.results if r.point_id == "P-101-DE-H"]
+        states = [r.machine_state.state if r.machine_state else None for r in mine]
+        assert states[0] == "running" and states[-1] == "stopped"
+        for r in mine:
+            assert r.health is not None  # checked in the analysis workers
+            if r.machine_state is not None and r.machine_state.state == "running":
+                assert set(r.indicators.orders_mm_s) == {"0.5x", "1x", "2x", "3x"} and r.health.ok
+            else:
+                assert r.indicators.orders_mm_s == {} and r.indicators.envelope == {}
+        assert registry.get_sample_value("edgevib_machine_state",
+                                         {"site": "quarry-lane", "machine": "P-101", "state": "stopped"}) == 1.0
+        assert registry.get_sample_value("edgevib_machine_state",
+                                         {"site": "quarry-lane", "machine": "P-101", "state": "running"}) == 0.0
+        assert sum(d.stats.analysis_errors.values()) == 0
+    finally:
+        await d.stop()

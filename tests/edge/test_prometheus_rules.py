@@ -32,7 +32,7 @@ DOCUMENTED = {
     "edgevib_crest_factor", "edgevib_kurtosis", "edgevib_order_velocity_rms_meters_per_second",
     "edgevib_envelope_amplitude_meters_per_second_squared", "edgevib_envelope_snr_decibels",
     "edgevib_shaft_speed_hertz", "edgevib_iso_zone", "edgevib_velocity_rms_trend_meters_per_second",
-    "edgevib_last_frame_timestamp_seconds",
+    "edgevib_last_frame_timestamp_seconds", "edgevib_machine_state",
     "edgevib_blocks_received_total", "edgevib_blocks_rejected_total", "edgevib_frames_analysed_total",
     "edgevib_frames_dropped_total", "edgevib_analysis_latency_seconds", "edgevib_source_connected",
     "edgevib_source_reconnects_total", "edgevib_build_info",

@@ -127,3 +127,40 @@ def test_progression_escalates_in_order_and_in_time():
     for pid in ("M-201-DE-H", "P-203-DE-V"):
         assert all(sim.truth(x)["points"][pid]["expected_state"] == "normal" for x in (0.0, 120.0, 290.0))
     assert math.isclose(sim.speed_hz("F-202", 50.0), 990 / 60)
+
+
+def test_machine_state_truth_of_the_run_up_scenario() -> None:
+    # run-up.toml: 0 r/min until 5 s, linear to 1480 r/min at 25 s, held to 45 s, linear to 0 at 60 s; run
+    # threshold 60 r/min.  The crossing times are arithmetic on the schedule; the states are the daemon's
+    # documented definitions (README, machine state) with its default grace 30 s and hysteresis 0.2.
+    sim = Simulation(load_scenario("run-up"), seed=0, t0_ns=0)
+    tl = sim.machine_state_timeline("F-601")
+    assert [s for _, s in tl] == ["stopped", "starting", "running", "coasting", "stopped"]
+    t = dict((s, t0) for t0, s in tl)
+    start = 5.0 + 20.0 * 60.0 / 1480.0            # 60 r/min crossed on the way up
+    assert t["starting"] == pytest.approx(start, abs=0.011)
+    assert t["running"] == pytest.approx(start + 30.0, abs=0.011)  # the grace outlasts the 20-s run-up
+    assert t["coasting"] == pytest.approx(45.0, abs=0.011)
+    stop = 60.0 - 15.0 * 0.8 * 60.0 / 1480.0      # below (1 − 0.2) × 60 r/min on the way down
+    assert t["stopped"] == pytest.approx(stop, abs=0.011)
+    # a shorter grace ends with the run-up (25 s) instead
+    assert dict((s, t0) for t0, s in sim.machine_state_timeline("F-601", startup_grace_s=5.0))["running"] == \
+        pytest.approx(25.0, abs=0.011)
+    truth = sim.truth(50.0)
+    assert truth["machines"]["F-601"]["machine_state"] == "coasting"
+    assert truth["points"]["F-601-DE-H"]["machine_state"] == "coasting"
+    assert sim.machine_state("F-601", 2.0) == "stopped" and sim.machine_state("F-601", 40.0) == "running"
+
+
+def test_machine_state_truth_of_fixed_and_stopping_machines() -> None:
+    sim = Simulation(load_scenario("stop-restart"), seed=0, t0_ns=0)
+    assert [s for _, s in sim.machine_state_timeline("P-402")] == \
+        ["stopped", "starting", "running", "coasting", "stopped"]
+    fixed = Simulation(load_scenario("sensor-faults"), seed=0, t0_ns=0)
+    assert fixed.machine_state_timeline("M-301") == [(0.0, "running")]
+    # the fan without a speed tag gets none in the emitted configuration (the daemon estimates its speed)
+    doc = sim.daemon_config(source={"name": "s", "type": "mqtt", "url": "mqtt://127.0.0.1:1883"})
+    fan = next(m for m in doc["machines"] if m["id"] == "F-403")
+    assert "speed_tag" not in fan and "speed_rpm" not in fan
+    with pytest.raises(TypeError, match="unknown machine-state parameter"):
+        sim.machine_state("F-403", 1.0, grace=3.0)
