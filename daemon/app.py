@@ -310,7 +310,8 @@ class Daemon:
 
             pc = config.publish_opcua
             opcua = OpcUaIndicatorSink(listen=pc.listen, host=pc.host, port=pc.port, namespace=pc.namespace,
-                                       site=config.site.name, points={p.id: p for p in config.points})
+                                       site=config.site.name, points={p.id: p for p in config.points},
+                                       cert_file=pc.cert_file, key_file=pc.key_file, state_dir=config.site.state_dir)
             self.add_sink(opcua)
             self._reconfigurable.append(opcua)
         from edgevib.daemon.alarms.sink import create_sink
@@ -448,6 +449,9 @@ class Daemon:
         missing = [n for n in names if not self.stats.connected.get(n, False)]
         if missing:
             return False, "sources not connected: " + ", ".join(missing)
+        silent = self.ingest.silent_points()
+        if silent:
+            return False, "points receiving nothing: " + ", ".join(silent)
         return True, f"{len(names)} source(s) connected"
 
     def state_text(self, point_id: str) -> str | None:
@@ -691,7 +695,8 @@ def make_source(cfg: SourceConfig, config: Config, ingest: BlockIngest) -> Sourc
     if isinstance(cfg, OpcUaSourceConfig):  # the last kind: the configuration's union has no other
         from edgevib.daemon.sources.opcua import NodeSpec, OpcUaSource  # asyncua loads only when configured
 
-        nodes = {p.node: NodeSpec(sensor_id=p.sensor, fs_hz=p.fs_hz, unit=p.unit) for p in config.points
+        nodes = {p.node: NodeSpec(sensor_id=p.sensor, fs_hz=p.fs_hz, unit=p.unit, block_samples=p.block_samples,
+                                  scale=p.scale) for p in config.points
                  if p.source == cfg.name and p.node is not None}
         source: Source = OpcUaSource(
             name=cfg.name, endpoint=cfg.endpoint, ingest=ingest, nodes=nodes, speed_nodes={t: t for t in speed_tags},

@@ -601,6 +601,8 @@ class PublishOpcUaConfig(_Table):
     enabled: Bool = False
     listen: Annotated[Text, AfterValidator(_listen)] = "127.0.0.1:4841"
     namespace: Text = "urn:edgevib:indicators"
+    cert_file: Text | None = None  # application certificate for Basic256Sha256 (default: made in state_dir)
+    key_file: Text | None = None
 
     @model_validator(mode="after")
     def _port(self) -> PublishOpcUaConfig:
@@ -794,6 +796,7 @@ class PointConfig(_Table):
     overlap: Float = Field(-1.0, ge=0.0, le=0.95)  # -1 until loaded: [analysis]'s
     node: Text | None = None
     unit: Literal["g", "m/s2"] = "g"
+    scale: Float | None = Field(None, gt=0.0)  # integer samples (OPC UA Int16/Int32 arrays): value = count × scale
     limits: PointLimits | None = None
 
     @property

@@ -245,6 +245,8 @@ class BlockIngest:
         self.closing = False  # set by the daemon while it shuts down (sources close on purpose)
         self.streams: dict[str, PointStream] = {}
         self.speeds: dict[str, tuple[float, int]] = {}  # machine id -> (shaft Hz, received ns)
+        self.connected_since_ns: dict[str, int] = {}  # source -> when it last connected
+        self.last_block_ns: dict[str, int] = {}  # point -> when its last accepted block arrived
         self.configure(config)
 
     def configure(self, config: Config, keep: Iterable[str] = ()) -> None:
@@ -317,6 +319,7 @@ class BlockIngest:
             Stats.inc(self.stats.gaps, pid)
             self.log.warning(("gap", pid), "stream discontinuity; frame assembly restarts", point=pid,
                              source=source, detail=detail)
+        self.last_block_ns[pid] = received_ns
         before = len(stream.queue)
         machine = self.machine_of.get(pid)
         speed = self.speed_hz(machine) if machine is not None else None
@@ -350,6 +353,7 @@ class BlockIngest:
     def connection(self, source: str, connected: bool) -> None:
         was = self.stats.connected.get(source, False)
         if connected and not was:
+            self.connected_since_ns[source] = self.clock_ns()
             if source in self.stats.ever_connected:
                 Stats.inc(self.stats.reconnects, source)
                 self.log.info(("conn", source), "source reconnected", source=source)
@@ -362,6 +366,22 @@ class BlockIngest:
             else:
                 self.log.warning(("conn", source), "source disconnected", source=source)
         self.stats.connected[source] = connected
+
+    def silent_points(self, now_ns: int | None = None) -> list[str]:
+        """Points whose source has been connected for a while (10 s, at least 5 block periods) without one accepted
+        block from them since: a node or topic that delivers nothing (not monitored, wrong id, a gateway that
+        stopped writing)."""
+        now = self.clock_ns() if now_ns is None else now_ns
+        out = []
+        for p in self.config.points:
+            since = self.connected_since_ns.get(p.source)
+            if since is None or not self.stats.connected.get(p.source, False):
+                continue
+            window_ns = max(10e9, 5 * p.block_samples / p.fs_hz * 1e9)
+            last = self.last_block_ns.get(p.id)
+            if now - since > window_ns and (last is None or now - last > window_ns):
+                out.append(p.id)
+        return out
 
     # -- speed
 

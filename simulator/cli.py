@@ -1,5 +1,9 @@
 """``edgevib simulate``: stream a simulated plant over MQTT and/or OPC UA, or write WAV files, truth and a
-daemon configuration.  Bad options and unusable outputs end with one line on stderr and exit code 2."""
+daemon configuration.
+
+Files alone (``--wav``, ``--truth``) are written as fast as the CPU allows (``--rate`` only paces streaming), with
+a progress line on a terminal.  Exit codes: 0 done; 1 the run failed part-way (the MQTT broker was lost); 2 bad
+options, unusable outputs or no output requested — each with one line on stderr."""
 
 from __future__ import annotations
 
@@ -9,6 +13,7 @@ import json
 import math
 import sys
 import time
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -117,6 +122,41 @@ def run_simulate(args: argparse.Namespace) -> int:
     except (ScenarioError, PublishError) as exc:
         print(f"edgevib simulate: {exc}", file=sys.stderr)
         return 2
+    except _Lost as exc:
+        print(f"edgevib simulate: {exc}", file=sys.stderr)
+        return 1
+
+
+class _Lost(Exception):
+    pass
+
+
+FILES_RATE = 1e12  # "as fast as possible": no pacing when nothing streams
+
+
+def _progress(total_s: float | None, out: Any = None) -> Callable[[float, list[Any]], None] | None:
+    """A progress printer for a terminal (``None`` when stderr is not one), at most 5 lines a second."""
+    stream = out if out is not None else sys.stderr
+    if not getattr(stream, "isatty", lambda: False)():
+        return None
+    last = [0.0]
+    started = time.monotonic()
+
+    def show(t_s: float, _blocks: list[Any]) -> None:
+        now = time.monotonic()
+        done = total_s is not None and t_s >= total_s
+        if now - last[0] < 0.2 and not done:
+            return
+        last[0] = now
+        speed = t_s / max(now - started, 1e-9)
+        if total_s:
+            text = f"\rsimulated {t_s:8.1f} of {total_s:g} s ({100 * t_s / total_s:5.1f} %), {speed:6.1f}x real time"
+        else:
+            text = f"\rsimulated {t_s:8.1f} s, {speed:6.1f}x real time"
+        stream.write(text + ("\n" if done else ""))
+        stream.flush()
+
+    return show
 
 
 def _run(args: argparse.Namespace) -> int:
@@ -133,6 +173,9 @@ def _run(args: argparse.Namespace) -> int:
         _write(args.emit_config, sim.daemon_config_toml(source=_source(args, sim)))
         print(f"edgevib simulate: daemon configuration written to {args.emit_config}")
     streaming = bool(args.mqtt or args.opcua_listen)
+    if not (streaming or args.wav or args.truth or args.emit_config):
+        raise _Fail("no output requested: give --mqtt, --opcua-listen, --wav, --truth and/or --emit-config "
+                    "(--list shows the scenarios)")
     if not streaming and not args.wav:
         _write_truth(args, sim, args.truth_at if args.truth_at is not None else (args.duration or 0.0))
         return 0
@@ -173,9 +216,19 @@ async def _stream(args: argparse.Namespace, sim: Simulation, duration: float | N
               f"duration {'unbounded' if duration is None else f'{duration:g} s'}", flush=True)
         if args.t0_ns is None:        # sample 0 is "now" when streaming starts (servers can take seconds to start)
             sim.t0_ns = time.time_ns()
-        t_end = await stream(sim, rate=args.rate, duration_s=duration, mqtt=mqtt, opcua=opcua, wav=wav)
+        stop = asyncio.Event()
         if mqtt is not None:
-            await asyncio.to_thread(mqtt.flush, 30.0)
+            loop = asyncio.get_running_loop()
+            mqtt.on_lost = lambda _why: loop.call_soon_threadsafe(stop.set)
+        streaming = mqtt is not None or opcua is not None
+        t_end = await stream(sim, rate=args.rate if streaming else FILES_RATE, duration_s=duration, mqtt=mqtt,
+                             opcua=opcua, wav=wav, stop=stop, on_blocks=_progress(duration))
+        if mqtt is not None:
+            if mqtt.lost is None:
+                await asyncio.to_thread(mqtt.flush, 30.0)
+            if mqtt.lost is not None:
+                raise _Lost(f"lost the MQTT broker {args.mqtt} after {t_end:.1f} s of simulated time "
+                            f"({mqtt.lost}); {mqtt.published} messages were published")
             print(f"edgevib simulate: {mqtt.published} messages published", flush=True)
         if duration is not None:
             _write_truth(args, sim, args.truth_at if args.truth_at is not None else t_end)

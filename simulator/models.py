@@ -372,18 +372,19 @@ def aa_taper(nu: npt.ArrayLike, fs_hz: float) -> F64:
 # --------------------------------------------------------------------------------------------- progression
 
 
-STAGES = ("slight", "moderate", "severe", "extreme")
+STAGES = ("incipient", "developing", "advanced", "critical")
+"""Words for how far a simulated fault has progressed (general usage, ours: not any product's grading)."""
 
 
 def stage_name(fraction_of_final: float) -> str:
-    """Severity stage of a progressing fault from its amplitude as a fraction of the final amplitude."""
+    """Stage of a progressing fault from its amplitude as a fraction of the final amplitude."""
     if fraction_of_final < 0.3:
-        return "slight"
+        return "incipient"
     if fraction_of_final < 0.55:
-        return "moderate"
+        return "developing"
     if fraction_of_final < 0.8:
-        return "severe"
-    return "extreme"
+        return "advanced"
+    return "critical"
 
 
 @dataclass(frozen=True, slots=True)

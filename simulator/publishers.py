@@ -108,6 +108,9 @@ class MqttPublisher:
         self.connect_timeout_s = connect_timeout_s
         self.max_pending = max_pending
         self._connected = threading.Event()
+        self._closing = False
+        self.lost: str | None = None  # why the broker connection was lost after connecting (None: it was not)
+        self.on_lost: Callable[[str], None] | None = None  # called on paho's thread
         self._pending: deque[Any] = deque()
         self.published = 0
         self.failed = 0
@@ -125,7 +128,12 @@ class MqttPublisher:
             self._connected.set()
 
     def _on_disconnect(self, client: Any, userdata: Any, flags: Any, reason: Any, properties: Any) -> None:
+        was = self._connected.is_set()
         self._connected.clear()
+        if was and not self._closing and self.lost is None:
+            self.lost = str(reason)
+            if self.on_lost is not None:
+                self.on_lost(self.lost)
 
     def connect(self) -> None:
         """Connect within ``connect_timeout_s``, retrying with backoff 0.2 s doubling to 2 s; else PublishError."""
@@ -177,6 +185,7 @@ class MqttPublisher:
                 info.wait_for_publish(max(0.0, deadline - time.monotonic()))
 
     def close(self) -> None:
+        self._closing = True
         with contextlib.suppress(Exception):
             self.flush(5.0)
         with contextlib.suppress(Exception):

@@ -21,7 +21,7 @@ Schema (defaults in brackets)::
                                    its emitted configuration has no speed tag (the daemon estimates the speed)
       residual_mm_s [0.5]          healthy residual 1× (with 0.3 of it at 2×) on a gain-1 axis
       process_noise_ug_rthz [150]  broadband process noise density at reference speed (∝ speed)
-      [[machines.faults]]  type, points [all of the machine's], axis_gain {axis = gain}, stage ["moderate"],
+      [[machines.faults]]  type, points [all of the machine's], axis_gain {axis = gain}, stage ["developing"],
                            progression { curve = "logistic"|"exponential"|"linear", start_s, end_s,
                                          from, to, steepness [10] } (a multiplier of the amplitude), + params
     [longrun]   months in compressed time: see edgevib.simulator.longrun
@@ -156,7 +156,7 @@ class FaultSpec:
     params: Mapping[str, float]
     points: tuple[str, ...]
     axis_gain: Mapping[str, float]
-    stage: str = "moderate"
+    stage: str = "developing"
     progression: Curve | None = None
 
 
@@ -569,7 +569,7 @@ def parse_scenario(doc: Mapping[str, Any], path: str = "") -> Scenario:
                                         f"applies to ({', '.join(sel_ids)})")
                 if len(geoms) > 1:
                     raise ScenarioError(ft.key("points"), "a bearing fault's points must share one bearing geometry")
-            stage = ft.text("stage", "moderate", ("slight", "moderate", "severe", "extreme"))
+            stage = ft.text("stage", "developing", ("incipient", "developing", "advanced", "critical"))
             pt_ = ft.table("progression")
             curve = _curve(pt_) if pt_ is not None else None
             ft.done()

@@ -1,14 +1,18 @@
 """OPC UA server namespace with every point's latest indicators, for SCADA historians (asyncua server).
 
 The server listens on ``listen`` (``"HOST:PORT"``, loopback by default) at ``opc.tcp://HOST:PORT/edgevib/``,
-security policy ``None`` and anonymous, read-only access (bind it beyond loopback only on a trusted network).
+read-only, anonymous.  It offers security policy ``None`` and ``Basic256Sha256`` (``Sign`` and
+``SignAndEncrypt``) with its application certificate (``cert_file``/``key_file``, or one it makes itself in the
+state directory); no user-name token is offered at all, so no password can travel over an unencrypted channel.
 Its namespace ``urn:edgevib:indicators`` (index ``<idx>``, usually 2 — resolve it from the URI) holds::
 
     Objects/
       <site>/                                  folder   ns=<idx>;s=<site>
         <machine>/                             folder   ns=<idx>;s=<site>/<machine>
           <point>                              object   ns=<idx>;s=<site>/<machine>/<point>
-            <indicator>                        Double   ns=<idx>;s=<site>/<machine>/<point>/<indicator>
+            <indicator>                        AnalogItemType, Double
+                                                        ns=<idx>;s=<site>/<machine>/<point>/<indicator>
+            iso_zone                           MultiStateDiscreteType, UInt32 (EnumStrings A, B, C, D)
 
 for example ``ns=2;s=quarry-lane/P-101/P-101-DE-H/velocity_rms_mm_s``.  These node ids are stable: they depend only
 on the site, machine and point ids of the configuration and on the indicator names.
@@ -16,6 +20,9 @@ on the site, machine and point ids of the configuration and on the indicator nam
 The variables are the indicators of :data:`edgevib.daemon.indicators.REGISTRY` published here (``opcua`` name;
 README "OPC UA indicator namespace" lists them): unit in the name, also in each variable's Description and
 ``EngineeringUnits`` property; one variable per configured order and per bearing family.
+EUInformation with the UNECE Recommendation 20 common code as ``UnitId`` (OPC 10000-8 §5.6.3), e.g. Hz = "HTZ" =
+4740186; ``EURange`` is the range of values expected in operation, for scaling displays.  The ISO zone is a
+MultiStateDiscreteType variable (UInt32 index into EnumStrings A, B, C, D), not a number to be averaged.
 
 Every update carries the frame's end time as ``SourceTimestamp``.  An indicator that is unavailable for a frame
 (no speed known, no envelope band, no ISO group, a non-finite result) gets status ``BadNoData`` (OPC UA then
@@ -51,6 +58,31 @@ DEFAULT_ORDERS = ("0.5x", "1x", "2x", "3x")
 OPCUA: list[tuple[Indicator, str]] = [(i, i.opcua) for i in REGISTRY if i.opcua is not None]
 """The registry's indicators served here, with their variable names (``{key}``: order or family)."""
 INDICATORS: dict[str, tuple[str, str]] = {name: (i.unit, i.text()) for i, name in OPCUA if i.per is None}
+ZONES = ("A", "B", "C", "D")
+UNECE_NAMESPACE = "http://www.opcfoundation.org/UA/units/un/cefact"
+UNECE: dict[str, tuple[str, str]] = {  # our unit -> (UNECE Rec. 20 common code, its name)
+    "mm/s": ("C16", "millimetre per second"),
+    "g": ("K40", "standard acceleration of free fall"),
+    "µm": ("4H", "micrometre (micron)"),
+    "Hz": ("HTZ", "hertz"),
+    "dB": ("2N", "decibel"),
+    "1": ("C62", "one"),
+}
+EU_RANGE: dict[str, tuple[float, float]] = {  # display range per unit (common practice for machinery vibration)
+    "mm/s": (0.0, 50.0), "g": (0.0, 50.0), "µm": (0.0, 500.0), "Hz": (0.0, 500.0), "dB": (0.0, 60.0),
+}
+_EU_RANGE_NAMED: dict[str, tuple[float, float]] = {
+    "crest_factor": (1.0, 20.0), "kurtosis": (1.0, 40.0), "skewness": (-5.0, 5.0)}
+
+
+def unit_id(common_code: str) -> int:
+    """EUInformation.UnitId of a UNECE common code: its (up to 4) ASCII bytes as a big-endian integer
+    (OPC 10000-8 §5.6.3), e.g. ``"HTZ"`` → 4740186."""
+    value = 0
+    for ch in common_code[:4]:
+        value = value * 256 + ord(ch)
+    return value
+
 """Fixed indicator variables of every point: name → (unit, description)."""
 
 log = structlog.get_logger("edgevib.daemon.sinks.opcua")
@@ -110,7 +142,8 @@ class OpcUaIndicatorSink:
 
     def __init__(self, *, listen: str = "127.0.0.1:4841", site: str,
                  points: Iterable[tuple[str, str]] | Mapping[str, Any], namespace: str = NAMESPACE_URI,
-                 host: str | None = None, port: int | None = None) -> None:
+                 host: str | None = None, port: int | None = None, cert_file: str | None = None,
+                 key_file: str | None = None, state_dir: str | None = None) -> None:
         self.host, self.port = _parse_listen(listen)
         if host is not None:  # an already parsed listen address (host and port) takes precedence
             self.host = host
@@ -122,6 +155,7 @@ class OpcUaIndicatorSink:
             raise ConfigError("site.name", f"{site!r} cannot name an OPC UA folder (empty or contains '/')")
         self.site = site
         self.namespace = namespace
+        self.cert_file, self.key_file, self.state_dir = cert_file, key_file, state_dir
         self._points = _points_of(points)
         for pid, mid, _ in self._points:
             if "/" in pid or "/" in mid or not pid or not mid:
@@ -147,7 +181,15 @@ class OpcUaIndicatorSink:
         server.set_endpoint(self.endpoint)
         server.set_server_name("edgevib indicators")
         await server.set_application_uri(f"{self.namespace}:server")
-        server.set_security_policy([ua.SecurityPolicyType.NoSecurity])
+        policies = [ua.SecurityPolicyType.NoSecurity]
+        cert = await self._certificate()
+        if cert is not None:
+            await server.load_certificate(cert[0])
+            await server.load_private_key(cert[1])
+            policies += [ua.SecurityPolicyType.Basic256Sha256_SignAndEncrypt, ua.SecurityPolicyType.Basic256Sha256_Sign]
+        server.set_security_policy(policies)
+        # anonymous, read-only access only: no user-name token (a password over policy None would travel in clear)
+        server.set_identity_tokens([ua.AnonymousIdentityToken])
         self.idx = await server.register_namespace(self.namespace)
         self._site_folder = await server.nodes.objects.add_folder(self._nid(self.site), self._qn(self.site))
         self._server = server
@@ -162,6 +204,31 @@ class OpcUaIndicatorSink:
                        points=len(self._points), example_node=node_id_string(
                            self.idx, self.site, self._points[0][1], self._points[0][0], "velocity_rms_mm_s")
                        if self._points else None)
+
+    async def _certificate(self) -> tuple[str, str] | None:
+        """The server's application certificate and key: configured, or made once in the state directory (a
+        self-signed certificate for ``urn:edgevib:indicators:server``; clients must trust it)."""
+        if self.cert_file and self.key_file:
+            return self.cert_file, self.key_file
+        if not self.state_dir:
+            return None
+        from pathlib import Path
+
+        from asyncua.crypto.cert_gen import setup_self_signed_certificate
+        from cryptography.x509.oid import ExtendedKeyUsageOID
+
+        directory = Path(self.state_dir)
+        cert, key = directory / "opcua-server-cert.der", directory / "opcua-server-key.pem"
+        try:
+            directory.mkdir(parents=True, exist_ok=True)
+            await setup_self_signed_certificate(key, cert, f"{self.namespace}:server", self.host,
+                                                [ExtendedKeyUsageOID.SERVER_AUTH, ExtendedKeyUsageOID.CLIENT_AUTH],
+                                                {"commonName": "edgevib indicators", "organizationName": "edgevib"})
+        except (OSError, ValueError) as exc:
+            self._log.warning("opcua_server_certificate_unavailable", error=str(exc),
+                              detail="only security policy None is offered")
+            return None
+        return str(cert), str(key)
 
     async def stop(self) -> None:
         server, self._server = self._server, None
@@ -223,17 +290,46 @@ class OpcUaIndicatorSink:
     async def _add_variable(self, pid: str, mid: str, name: str, unit: str, text: str) -> ua.NodeId:
         obj = self._objects[pid]
         nodeid = self._nid(f"{self.site}/{mid}/{pid}/{name}")
-        var = await obj.add_variable(nodeid, self._qn(name), ua.Variant(math.nan, ua.VariantType.Double),
-                                     datatype=ua.NodeId(ua.ObjectIds.Double))
-        await var.write_attribute(ua.AttributeIds.Description,
-                                  ua.DataValue(ua.Variant(ua.LocalizedText(f"{text}, {unit}" if unit != "1"
-                                                                           else f"{text} (dimensionless)"))))
-        # EUInformation (OPC UA Part 8 §5.6.3); UnitId -1 = no UNECE code given (from memory of Part 8)
-        eu = ua.EUInformation(NamespaceUri="http://www.opcfoundation.org/UA/units/un/cefact", UnitId=-1,
-                              DisplayName=ua.LocalizedText(unit), Description=ua.LocalizedText(text))
-        await var.add_property(self._nid(f"{self.site}/{mid}/{pid}/{name}/EngineeringUnits"),
-                               ua.QualifiedName("EngineeringUnits", 0),  # the standard property's browse name
-                               ua.Variant(eu, ua.VariantType.ExtensionObject))
+        zone = name == "iso_zone"
+        attrs = ua.VariableAttributes()
+        attrs.DisplayName = ua.LocalizedText(name)
+        if zone:
+            text, unit = "ISO 20816-3 zone of velocity r.m.s. (EnumStrings index: 0..3 = A..D)", "1"
+        attrs.Description = ua.LocalizedText(f"{text}, {unit}" if unit != "1" else f"{text} (dimensionless)")
+        attrs.DataType = ua.NodeId(ua.ObjectIds.UInt32 if zone else ua.ObjectIds.Double)
+        attrs.ValueRank = ua.ValueRank.Scalar
+        attrs.AccessLevel = attrs.UserAccessLevel = ua.AccessLevel.CurrentRead.mask
+        attrs.Value = ua.Variant(0 if zone else math.nan, ua.VariantType.UInt32 if zone else ua.VariantType.Double)
+        item = ua.AddNodesItem()
+        item.RequestedNewNodeId = nodeid
+        item.BrowseName = self._qn(name)
+        item.NodeClass = ua.NodeClass.Variable
+        item.ParentNodeId = obj.nodeid
+        item.ReferenceTypeId = ua.NodeId(ua.ObjectIds.HasComponent)
+        # OPC 10000-8 §5.3.2: AnalogItemType (EngineeringUnits, EURange); §5.3.3.3 MultiStateDiscreteType
+        item.TypeDefinition = ua.NodeId(ua.ObjectIds.MultiStateDiscreteType if zone else ua.ObjectIds.AnalogItemType)
+        item.NodeAttributes = attrs
+        results = await obj.session.add_nodes([item])
+        results[0].StatusCode.check()
+        var = Node(obj.session, nodeid)
+        if zone:
+            await var.add_property(self._nid(f"{self.site}/{mid}/{pid}/{name}/EnumStrings"),
+                                   ua.QualifiedName("EnumStrings", 0),
+                                   ua.Variant([ua.LocalizedText(z) for z in ZONES], ua.VariantType.LocalizedText),
+                                   datatype=ua.NodeId(ua.ObjectIds.LocalizedText))
+        else:
+            code, long_name = UNECE[unit]
+            eu = ua.EUInformation(NamespaceUri=UNECE_NAMESPACE, UnitId=unit_id(code),
+                                  DisplayName=ua.LocalizedText(unit), Description=ua.LocalizedText(long_name))
+            await var.add_property(self._nid(f"{self.site}/{mid}/{pid}/{name}/EngineeringUnits"),
+                                   ua.QualifiedName("EngineeringUnits", 0),  # the standard property's browse name
+                                   ua.Variant(eu, ua.VariantType.ExtensionObject),
+                                   datatype=ua.NodeId(ua.ObjectIds.EUInformation))
+            low, high = _EU_RANGE_NAMED.get(name, EU_RANGE.get(unit, (0.0, 100.0)))
+            await var.add_property(self._nid(f"{self.site}/{mid}/{pid}/{name}/EURange"),
+                                   ua.QualifiedName("EURange", 0),
+                                   ua.Variant(ua.Range(Low=low, High=high), ua.VariantType.ExtensionObject),
+                                   datatype=ua.NodeId(ua.ObjectIds.Range))
         await self._server_write(nodeid, None, StatusCodes.BadWaitingForInitialData, None)
         self._vars[pid][name] = nodeid
         return nodeid
@@ -241,7 +337,12 @@ class OpcUaIndicatorSink:
     async def _server_write(self, nodeid: ua.NodeId, value: float | None, status: int,
                             source_ts: datetime.datetime | None, server_ts: datetime.datetime | None = None) -> None:
         assert self._server is not None
-        variant = ua.Variant(value, ua.VariantType.Double) if value is not None else ua.Variant(None)
+        if value is None:
+            variant = ua.Variant(None)
+        elif str(nodeid.Identifier).endswith("/iso_zone"):
+            variant = ua.Variant(int(value), ua.VariantType.UInt32)
+        else:
+            variant = ua.Variant(value, ua.VariantType.Double)
         dv = ua.DataValue(variant, StatusCode=ua.StatusCode(status), SourceTimestamp=source_ts,
                           ServerTimestamp=server_ts or datetime.datetime.now(datetime.UTC))
         await self._server.write_attribute_value(nodeid, dv)
@@ -262,6 +363,8 @@ class OpcUaIndicatorSink:
                 await self._add_variable(pid, mid, name, unit, text)
         for name, nodeid in variables.items():
             value = values[name][0] if name in values else None
+            if name == "iso_zone" and value is not None:
+                value -= 1  # the registry's zone number 1..4 → the EnumStrings index 0..3 (A..D)
             if value is None or not math.isfinite(value):
                 await self._server_write(nodeid, None, StatusCodes.BadNoData, source_ts, now)
             else:

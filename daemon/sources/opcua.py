@@ -13,6 +13,17 @@ notification, or a polled value with a new source timestamp) becomes one :class:
 * ``fs_hz`` comes from the node's :class:`NodeSpec`, or, when that says ``None``, from a property of the variable
   named ``SampleRate``/``fs_hz``/``SampleRateHz``/``sample_rate_hz`` (read once per connection).
 
+Subscriptions ask for sampling interval 0 (every write is reported, however close together: OPC 10000-4 §5.12.1.2)
+and a monitored-item queue of about ten seconds of blocks (from the point's sample rate and block length), and
+check what the server grants: a sampling interval revised above 0 (the server samples instead of reporting every
+write) or a smaller queue than asked for is logged as a warning naming the node, because blocks written back to
+back would then be merged or lost.  Integer
+arrays (Int16/Int32 counts from a gateway) are accepted and multiplied by the node's ``scale``.  When the variable
+has an ``EngineeringUnits`` property or a sample-rate property, they are compared with the configuration: a
+different unit (UNECE code of g or m/s²) or sample rate is rejected (reason ``config_mismatch``) and the node is not
+read, since every indicator computed from it would be wrong.  A server that refuses this client's certificate is
+reported in one line that says so and what to trust where.
+
 Values that are not 1-D numeric arrays go to ``ingest.reject(source, "malformed", …)``, values with a bad status
 to ``ingest.reject(source, "bad_status", …)``; an empty (null) value or ``BadWaitingForInitialData`` is "no block
 yet" and is skipped.  Non-finite samples are passed on for the ingest's own validation.  Scalar speed nodes
@@ -60,7 +71,10 @@ SAMPLE_RATE_PROPERTIES = ("samplerate", "fs_hz", "samplerate_hz", "sampleratehz"
 
 _DEFAULT_APPLICATION_URI = "urn:edgevib:client"
 _PUBLISH_INTERVAL_MS = 100.0  # subscription publishing interval; blocks arrive every ~0.1–1 s
-_QUEUE_SIZE = 32  # monitored-item queue: values written faster than the publishing interval are not lost
+_QUEUE_SIZE = 32  # monitored-item queue when the block rate is unknown
+_QUEUE_SECONDS = 10.0  # otherwise: this many seconds of blocks (bursts written back to back, a slow publish)
+_MAX_QUEUE = 1000
+_UNIT_IDS = {4928560: "g", 5067595: "m/s2"}  # UNECE K40 (standard acceleration of free fall), MSK (m/s²)
 _BAD_SESSION_STATUSES = frozenset({
     StatusCodes.BadShutdown, StatusCodes.BadTimeout, StatusCodes.BadSessionClosed,
     StatusCodes.BadSessionIdInvalid, StatusCodes.BadSubscriptionIdInvalid, StatusCodes.BadServerHalted,
@@ -78,6 +92,8 @@ class NodeSpec:
     sensor_id: str
     fs_hz: float | None = None
     unit: str = "g"
+    block_samples: int | None = None  # samples per block, to size the monitored-item queue
+    scale: float | None = None  # integer arrays: value = count × scale (in ``unit``)
 
 
 @dataclass(slots=True)
@@ -111,7 +127,27 @@ def _to_ns(ts: datetime | None) -> int | None:
     return round(ts.timestamp() * 1e9)
 
 
-def _samples_of(value: Any) -> tuple[npt.NDArray[np.float64] | None, str]:
+def queue_size(spec: NodeSpec, fs_hz: float | None) -> int:
+    """Monitored-item queue for a block node: about :data:`_QUEUE_SECONDS` of blocks, at least 32."""
+    if not spec.block_samples or not fs_hz:
+        return _QUEUE_SIZE
+    return int(min(_MAX_QUEUE, max(_QUEUE_SIZE, math.ceil(_QUEUE_SECONDS * fs_hz / spec.block_samples))))
+
+
+def _certificate_problem(exc: BaseException) -> str | None:
+    """A one-line explanation when ``exc`` says the server refused our application certificate."""
+    text = f"{type(exc).__name__}: {exc}"
+    codes = ("BadCertificateUntrusted", "BadSecurityChecksFailed", "BadCertificateInvalid",
+             "BadCertificateUriInvalid", "BadCertificateHostNameInvalid")
+    code = next((c for c in codes if c in text), None)
+    if code is None and not (isinstance(exc, AssertionError) or "AssertionError" in text):
+        return None
+    why = code or "the secure channel was closed during the handshake"
+    return (f"the server rejected this client's certificate ({why}): trust edgevib's certificate (cert_file) in the "
+            f"server's trusted-certificate store, and the server's certificate here (server_cert_file)")
+
+
+def _samples_of(value: Any, scale: float | None = None) -> tuple[npt.NDArray[np.float64] | None, str]:
     """A variable's value as a read-only 1-D float64 array, or ``(None, why not)``."""
     if value is None:
         return None, "the variable has no value (null)"
@@ -129,6 +165,8 @@ def _samples_of(value: Any) -> tuple[npt.NDArray[np.float64] | None, str]:
     if arr.size == 0:
         return None, "value is an empty array"
     x = arr.astype(np.float64)
+    if arr.dtype.kind in "iu" and scale is not None:
+        x *= scale
     x.flags.writeable = False
     return x, ""
 
@@ -240,9 +278,18 @@ class OpcUaSource:
             try:
                 was_connected = await self._session()
             except SourceError as exc:
-                self._log.warning("opcua_session_failed", error=str(exc), retry_in_s=round(delay, 3))
+                cause = exc.__cause__ if exc.__cause__ is not None else exc
+                problem = _certificate_problem(cause) if self._security_policy != "None" else None
+                if problem:
+                    self._log.warning("opcua_certificate_rejected", problem=problem, retry_in_s=round(delay, 3))
+                else:
+                    self._log.warning("opcua_session_failed", error=str(exc), retry_in_s=round(delay, 3))
             except Exception as exc:  # a bug must not end the source; it is logged with its traceback
-                self._log.exception("opcua_session_crashed", error=repr(exc))
+                problem = _certificate_problem(exc) if self._security_policy != "None" else None
+                if problem:
+                    self._log.warning("opcua_certificate_rejected", problem=problem, retry_in_s=round(delay, 3))
+                else:
+                    self._log.exception("opcua_session_crashed", error=repr(exc))
             finally:
                 self._set_connected(False)
             if self._stopping.is_set():
@@ -340,6 +387,10 @@ class OpcUaSource:
             except UaStatusCodeError as exc:
                 self._ingest.reject(self.name, "unknown_node", f"node {node_id}: {exc}", node_id)
                 continue
+            mismatch = await self._cross_check(node, state)
+            if mismatch:
+                self._ingest.reject(self.name, "config_mismatch", f"node {node_id}: {mismatch}; not read", node_id)
+                continue
             if state.spec.fs_hz is None:
                 state.fs_hz = await self._read_sample_rate(node)
                 if state.fs_hz is None:
@@ -359,6 +410,32 @@ class OpcUaSource:
             speed_nodes[node_id] = node
         return block_nodes, speed_nodes
 
+    async def _cross_check(self, node: Node, state: _NodeState) -> str | None:
+        """The node's EngineeringUnits and sample-rate properties against the configuration (None: agree, or the
+        node has no such property)."""
+        try:
+            props = await node.get_properties()
+        except UaError:
+            return None
+        for prop in props:
+            try:
+                name = (await prop.read_browse_name()).Name
+                if name == "EngineeringUnits":
+                    eu = await prop.read_value()
+                    unit = _UNIT_IDS.get(int(getattr(eu, "UnitId", -1)))
+                    if unit is not None and unit != state.spec.unit:
+                        return (f"the server's EngineeringUnits say {unit} (UNECE UnitId {eu.UnitId}) but the point "
+                                f"is configured with unit = {state.spec.unit!r}")
+                elif name.lower() in SAMPLE_RATE_PROPERTIES and state.spec.fs_hz is not None:
+                    value = await prop.read_value()
+                    if isinstance(value, int | float) and not isinstance(value, bool) and math.isfinite(value) \
+                            and value > 0 and abs(float(value) - state.spec.fs_hz) > 1e-6 * state.spec.fs_hz:
+                        return (f"the server's {name} property says {float(value):g} Hz but the point is configured "
+                                f"with fs_hz = {state.spec.fs_hz:g}")
+            except (UaError, ValueError, TypeError):
+                continue
+        return None
+
     async def _read_sample_rate(self, node: Node) -> float | None:
         for prop in await node.get_properties():
             name = (await prop.read_browse_name()).Name.lower()
@@ -372,14 +449,41 @@ class OpcUaSource:
     async def _subscribe(self, client: Client, block_nodes: dict[str, Node], speed_nodes: dict[str, Node]) -> None:
         handler = _Handler(self)
         sub = await client.create_subscription(_PUBLISH_INTERVAL_MS, handler)
+        ids = list(block_nodes) + list(speed_nodes)
         nodes = list(block_nodes.values()) + list(speed_nodes.values())
         if not nodes:
             return
-        results: list[Any] = await sub.subscribe_data_change(nodes, queuesize=_QUEUE_SIZE)
-        for node, result in zip(nodes, results, strict=True):
+        queues = [queue_size(self._nodes[i].spec, self._nodes[i].fs_hz) if i in self._nodes else _QUEUE_SIZE
+                  for i in ids]
+        requests = [sub._make_monitored_item_request(node, ua.AttributeIds.Value, None, q,
+                                                     ua.MonitoringMode.Reporting, 0.0)
+                    for node, q in zip(nodes, queues, strict=True)]
+        granted = _Granted(sub)
+        results: list[Any] = await sub.create_monitored_items(requests)
+        granted.restore()
+        revised_all = granted.results + [None] * (len(ids) - len(granted.results))
+        for node_id, node, result, asked, revised in zip(ids, nodes, results, queues, revised_all, strict=True):
             if isinstance(result, ua.StatusCode):
                 self._ingest.reject(self.name, "unknown_node", f"cannot monitor node {node.nodeid.to_string()}: "
                                     f"{result.name}", node.nodeid.to_string())
+                continue
+            self._check_revised(node_id, asked, revised)
+
+    def _check_revised(self, node_id: str, asked_queue: int, revised: Any) -> None:
+        """Warn when the server grants a sampling interval or queue that loses blocks written back to back."""
+        if revised is None or node_id not in self._nodes:
+            return
+        interval = float(getattr(revised, "RevisedSamplingInterval", 0.0) or 0.0)
+        queue = int(getattr(revised, "RevisedQueueSize", asked_queue) or 0)
+        if interval > 0:
+            self._log.warning("opcua_sampling_revised", node=node_id, requested_ms=0, revised_ms=interval,
+                              detail="the server samples this node instead of reporting every write: blocks "
+                              "written closer together than the revised interval are merged and lost (configure "
+                              "the server for exception-based reporting: MinimumSamplingInterval 0 on the "
+                              "variable, MinSupportedSampleRate 0)")
+        if queue < asked_queue:
+            self._log.warning("opcua_queue_reduced", node=node_id, requested=asked_queue, revised=queue,
+                              detail="blocks written in a burst faster than the publishing interval may be lost")
 
     async def _poll(self, client: Client, block_nodes: dict[str, Node], speed_nodes: dict[str, Node]) -> None:
         ids = list(block_nodes) + list(speed_nodes)
@@ -436,7 +540,7 @@ class OpcUaSource:
                 return
             if value is None:
                 return  # no value yet (a variable created empty): nothing to count
-            samples, why = _samples_of(value)
+            samples, why = _samples_of(value, state.spec.scale)
             if samples is None:
                 self._ingest.reject(self.name, "malformed", f"node {node_id}: {why}", node_id)
                 return
@@ -474,6 +578,31 @@ class OpcUaSource:
                                 f"number", node_id)
             return
         self._ingest.speed(self.name, tag, float(value), received_ns)
+
+
+class _Granted:
+    """Captures the server's answer to CreateMonitoredItems (the revised sampling intervals and queue sizes, which
+    asyncua does not return) while asyncua registers the items as usual."""
+
+    def __init__(self, sub: Any) -> None:
+        self.sub = sub
+        self.results: list[Any] = []
+        self._original = sub.server
+        granted = self
+
+        class _Proxy:
+            def __getattr__(self, name: str) -> Any:
+                return getattr(granted._original, name)
+
+            async def create_monitored_items(self, params: Any) -> Any:
+                results = await granted._original.create_monitored_items(params)
+                granted.results = list(results)
+                return results
+
+        sub.server = _Proxy()
+
+    def restore(self) -> None:
+        self.sub.server = self._original
 
 
 class _Handler:

@@ -109,7 +109,7 @@ async def test_frame_values_are_published_with_status_and_timestamp(sink: OpcUaI
     assert await value("P-101", "P-101-DE-H", "crest_factor") == math.sqrt(2)
     assert await value("P-101", "P-101-DE-H", "kurtosis") == 1.5
     assert await value("P-101", "P-101-DE-H", "shaft_hz") == 24.67
-    assert await value("P-101", "P-101-DE-H", "iso_zone") == 3.0  # zone C
+    assert await value("P-101", "P-101-DE-H", "iso_zone") == 2  # zone C: index into EnumStrings A, B, C, D
     assert await value("P-101", "P-101-DE-H", "velocity_rms_trend_mm_s") == 21.5
     assert await value("P-101", "P-101-DE-H", "order_1x_velocity_rms_mm_s") == 18.3
     assert await value("P-101", "P-101-DE-H", "envelope_bpfo_amplitude_g") == 0.031
