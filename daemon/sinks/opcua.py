@@ -38,7 +38,7 @@ import asyncio
 import contextlib
 import datetime
 import math
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from typing import Any
 
 import structlog
@@ -59,6 +59,12 @@ OPCUA: list[tuple[Indicator, str]] = [(i, i.opcua) for i in REGISTRY if i.opcua 
 """The registry's indicators served here, with their variable names (``{key}``: order or family)."""
 INDICATORS: dict[str, tuple[str, str]] = {name: (i.unit, i.text()) for i, name in OPCUA if i.per is None}
 ZONES = ("A", "B", "C", "D")
+ALARM_STATES = ("normal", "alert", "danger", "sensor-fault")
+_ENUMS: dict[str, tuple[tuple[str, ...], str]] = {  # MultiStateDiscrete variables: name -> (EnumStrings, text)
+    "iso_zone": (ZONES, "ISO 20816-3 zone of velocity r.m.s. (EnumStrings index: 0..3 = A..D)"),
+    "alarm_state": (ALARM_STATES, "Worst alarm state of the point in edgevib's alarm layer (EnumStrings index: "
+                    "0 normal, 1 alert, 2 danger, 3 sensor fault; suppressed alarms count as normal)"),
+}
 UNECE_NAMESPACE = "http://www.opcfoundation.org/UA/units/un/cefact"
 UNECE: dict[str, tuple[str, str]] = {  # our unit -> (UNECE Rec. 20 common code, its name)
     "mm/s": ("C16", "millimetre per second"),
@@ -86,6 +92,13 @@ def unit_id(common_code: str) -> int:
 """Fixed indicator variables of every point: name → (unit, description)."""
 
 log = structlog.get_logger("edgevib.daemon.sinks.opcua")
+_ua: Any = ua  # asyncua 2.x annotates ids and builtins with its own NewTypes: build them through one untyped handle
+
+
+def _std(object_id: str) -> ua.NodeId:
+    """A namespace-0 node id by its standard name (``"AnalogItemType"``: i=2368)."""
+    node_id: ua.NodeId = _ua.NodeId(getattr(_ua.ObjectIds, object_id))
+    return node_id
 
 
 def node_id_string(idx: int, site: str, machine: str, point: str, indicator: str | None = None) -> str:
@@ -156,6 +169,7 @@ class OpcUaIndicatorSink:
         self.site = site
         self.namespace = namespace
         self.cert_file, self.key_file, self.state_dir = cert_file, key_file, state_dir
+        self.severity_of: Callable[[str], int] | None = None  # the alarm layer's point severity, when it runs
         self._points = _points_of(points)
         for pid, mid, _ in self._points:
             if "/" in pid or "/" in mid or not pid or not mid:
@@ -269,7 +283,8 @@ class OpcUaIndicatorSink:
     # ------------------------------------------------------------------------------------------ internals
 
     def _nid(self, path: str) -> ua.NodeId:
-        return ua.NodeId(path, self.idx)
+        node_id: ua.NodeId = _ua.NodeId(path, self.idx)
+        return node_id
 
     def _qn(self, name: str) -> ua.QualifiedName:
         return ua.QualifiedName(name, self.idx)
@@ -286,17 +301,19 @@ class OpcUaIndicatorSink:
         self._vars[pid] = {}
         for name, unit, text in _variables(orders):
             await self._add_variable(pid, mid, name, unit, text)
+        if self.severity_of is not None:
+            await self._add_variable(pid, mid, "alarm_state", "1", _ENUMS["alarm_state"][1])
 
     async def _add_variable(self, pid: str, mid: str, name: str, unit: str, text: str) -> ua.NodeId:
         obj = self._objects[pid]
         nodeid = self._nid(f"{self.site}/{mid}/{pid}/{name}")
-        zone = name == "iso_zone"
+        zone = name in _ENUMS
         attrs = ua.VariableAttributes()
         attrs.DisplayName = ua.LocalizedText(name)
         if zone:
-            text, unit = "ISO 20816-3 zone of velocity r.m.s. (EnumStrings index: 0..3 = A..D)", "1"
+            text, unit = _ENUMS[name][1], "1"
         attrs.Description = ua.LocalizedText(f"{text}, {unit}" if unit != "1" else f"{text} (dimensionless)")
-        attrs.DataType = ua.NodeId(ua.ObjectIds.UInt32 if zone else ua.ObjectIds.Double)
+        attrs.DataType = _std("UInt32" if zone else "Double")
         attrs.ValueRank = ua.ValueRank.Scalar
         attrs.AccessLevel = attrs.UserAccessLevel = ua.AccessLevel.CurrentRead.mask
         attrs.Value = ua.Variant(0 if zone else math.nan, ua.VariantType.UInt32 if zone else ua.VariantType.Double)
@@ -305,9 +322,9 @@ class OpcUaIndicatorSink:
         item.BrowseName = self._qn(name)
         item.NodeClass = ua.NodeClass.Variable
         item.ParentNodeId = obj.nodeid
-        item.ReferenceTypeId = ua.NodeId(ua.ObjectIds.HasComponent)
+        item.ReferenceTypeId = _std("HasComponent")
         # OPC 10000-8 §5.3.2: AnalogItemType (EngineeringUnits, EURange); §5.3.3.3 MultiStateDiscreteType
-        item.TypeDefinition = ua.NodeId(ua.ObjectIds.MultiStateDiscreteType if zone else ua.ObjectIds.AnalogItemType)
+        item.TypeDefinition = _std("MultiStateDiscreteType" if zone else "AnalogItemType")
         item.NodeAttributes = attrs
         results = await obj.session.add_nodes([item])
         results[0].StatusCode.check()
@@ -315,8 +332,9 @@ class OpcUaIndicatorSink:
         if zone:
             await var.add_property(self._nid(f"{self.site}/{mid}/{pid}/{name}/EnumStrings"),
                                    ua.QualifiedName("EnumStrings", 0),
-                                   ua.Variant([ua.LocalizedText(z) for z in ZONES], ua.VariantType.LocalizedText),
-                                   datatype=ua.NodeId(ua.ObjectIds.LocalizedText))
+                                   ua.Variant([ua.LocalizedText(z) for z in _ENUMS[name][0]],
+                                              ua.VariantType.LocalizedText),
+                                   datatype=_std("LocalizedText"))
         else:
             code, long_name = UNECE[unit]
             eu = ua.EUInformation(NamespaceUri=UNECE_NAMESPACE, UnitId=unit_id(code),
@@ -324,12 +342,12 @@ class OpcUaIndicatorSink:
             await var.add_property(self._nid(f"{self.site}/{mid}/{pid}/{name}/EngineeringUnits"),
                                    ua.QualifiedName("EngineeringUnits", 0),  # the standard property's browse name
                                    ua.Variant(eu, ua.VariantType.ExtensionObject),
-                                   datatype=ua.NodeId(ua.ObjectIds.EUInformation))
+                                   datatype=_std("EUInformation"))
             low, high = _EU_RANGE_NAMED.get(name, EU_RANGE.get(unit, (0.0, 100.0)))
             await var.add_property(self._nid(f"{self.site}/{mid}/{pid}/{name}/EURange"),
                                    ua.QualifiedName("EURange", 0),
                                    ua.Variant(ua.Range(Low=low, High=high), ua.VariantType.ExtensionObject),
-                                   datatype=ua.NodeId(ua.ObjectIds.Range))
+                                   datatype=_std("Range"))
         await self._server_write(nodeid, None, StatusCodes.BadWaitingForInitialData, None)
         self._vars[pid][name] = nodeid
         return nodeid
@@ -339,12 +357,12 @@ class OpcUaIndicatorSink:
         assert self._server is not None
         if value is None:
             variant = ua.Variant(None)
-        elif str(nodeid.Identifier).endswith("/iso_zone"):
+        elif str(nodeid.Identifier).rsplit("/", 1)[-1] in _ENUMS:
             variant = ua.Variant(int(value), ua.VariantType.UInt32)
         else:
             variant = ua.Variant(value, ua.VariantType.Double)
-        dv = ua.DataValue(variant, StatusCode=ua.StatusCode(status), SourceTimestamp=source_ts,
-                          ServerTimestamp=server_ts or datetime.datetime.now(datetime.UTC))
+        dv = _ua.DataValue(variant, StatusCode=_ua.StatusCode(status), SourceTimestamp=source_ts,
+                           ServerTimestamp=server_ts or datetime.datetime.now(datetime.UTC))
         await self._server.write_attribute_value(nodeid, dv)
 
     async def _write(self, result: FrameResult, now: datetime.datetime) -> None:
@@ -365,6 +383,8 @@ class OpcUaIndicatorSink:
             value = values[name][0] if name in values else None
             if name == "iso_zone" and value is not None:
                 value -= 1  # the registry's zone number 1..4 → the EnumStrings index 0..3 (A..D)
+            if name == "alarm_state" and self.severity_of is not None:
+                value = float(self.severity_of(pid))  # as of the frames the alarm layer has processed so far
             if value is None or not math.isfinite(value):
                 await self._server_write(nodeid, None, StatusCodes.BadNoData, source_ts, now)
             else:

@@ -82,6 +82,7 @@ _BAD_SESSION_STATUSES = frozenset({
 })
 
 log = structlog.get_logger("edgevib.daemon.sources.opcua")
+_ua: Any = ua  # untyped handle for the names asyncua 2.x does not re-export
 
 
 @dataclass(frozen=True, slots=True)
@@ -455,8 +456,8 @@ class OpcUaSource:
             return
         queues = [queue_size(self._nodes[i].spec, self._nodes[i].fs_hz) if i in self._nodes else _QUEUE_SIZE
                   for i in ids]
-        requests = [sub._make_monitored_item_request(node, ua.AttributeIds.Value, None, q,
-                                                     ua.MonitoringMode.Reporting, 0.0)
+        make: Any = sub._make_monitored_item_request  # asyncua annotates its arguments with its own NewTypes
+        requests = [make(node, _ua.AttributeIds.Value, None, q, ua.MonitoringMode.Reporting, 0.0)
                     for node, q in zip(nodes, queues, strict=True)]
         granted = _Granted(sub)
         results: list[Any] = await sub.create_monitored_items(requests)
@@ -527,7 +528,7 @@ class OpcUaSource:
                 state.last_seen_ns = source_ns
             else:
                 with contextlib.suppress(Exception):  # comparing odd values must not fail the handler
-                    if state.has_last_value and bool(np.array_equal(value, state.last_value)):
+                    if state.has_last_value and bool(np.array_equal(np.asarray(value), state.last_value)):
                         return
                 state.last_value, state.has_last_value = value, True
             if dv.StatusCode is not None and not dv.StatusCode.is_good():

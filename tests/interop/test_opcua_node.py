@@ -185,6 +185,7 @@ async def test_indicator_server_read_by_node_opcua(tmp_path: Path) -> None:
     port = free_port()
     sink = OpcUaIndicatorSink(listen=f"127.0.0.1:{port}", site="quarry-lane", points=[("P-101-DE-H", "P-101")],
                               state_dir=str(tmp_path / "state"))
+    sink.severity_of = lambda _point: 2  # as the alarm layer would answer for a point at danger
     await sink.start()
     try:
         await sink.on_frames([sine_result("P-101-DE-H", "P-101", shaft_hz=24.75, zone="C")])
@@ -209,3 +210,5 @@ async def test_indicator_server_read_by_node_opcua(tmp_path: Path) -> None:
     zone = out["zone"]
     assert zone["type"] == "ns=0;i=2376"  # MultiStateDiscreteType
     assert zone["enumStrings"] == ["A", "B", "C", "D"] and zone["value"] == 2 and zone["dataType"] == "UInt32"
+    alarm = out["alarm"]
+    assert alarm["type"] == "ns=0;i=2376" and alarm["enumStrings"][alarm["value"]] == "danger"

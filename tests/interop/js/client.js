@@ -32,6 +32,9 @@ async function main() {
   const velDv = await session.read({ nodeId: vel, attributeId: opcua.AttributeIds.Value });
   const zoneDv = await session.read({ nodeId: zone, attributeId: opcua.AttributeIds.Value });
   const enumStrings = (await prop(zone, "EnumStrings")).map((t) => t.text);
+  const alarm = `${base}/alarm_state`;
+  const alarmDv = await session.read({ nodeId: alarm, attributeId: opcua.AttributeIds.Value });
+  const alarmStates = (await prop(alarm, "EnumStrings")).map((t) => t.text);
   const out = {
     endpoints,
     velocity: { type: await typeOf(vel), unitId: eu.unitId, display: eu.displayName.text, namespaceUri: eu.namespaceUri,
@@ -42,6 +45,7 @@ async function main() {
       hertz: opcua.standardUnits.hertz.unitId },
     zone: { type: await typeOf(zone), enumStrings, value: zoneDv.value.value, dataType: opcua.DataType[zoneDv.value.dataType],
       status: zoneDv.statusCode.name },
+    alarm: { type: await typeOf(alarm), enumStrings: alarmStates, value: alarmDv.value.value },
   };
   await session.close();
   await client.disconnect();
