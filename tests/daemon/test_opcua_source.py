@@ -462,3 +462,40 @@ async def test_speed_without_a_value_yet_is_skipped_not_rejected() -> None:
                                        StatusCode=ua.StatusCode(ua.StatusCodes.BadSensorFailure)), 3)
     source._on_value(key, ua.DataValue(ua.Variant("fast", ua.VariantType.String)), 4)
     assert [r[1] for r in ingest.rejects] == ["bad_status", "malformed"]
+
+
+async def test_untrusted_client_certificate_is_reported_in_one_line(tmp_path: Path) -> None:
+    """A server whose trust store does not hold edgevib's certificate refuses the secure channel; the source says so
+    (and what to trust where) instead of logging a crash (issue 13 §3: ``opcua_session_crashed error=AssertionError()``
+    before)."""
+    from asyncua.crypto.truststore import TrustStore
+    from asyncua.crypto.validator import CertificateValidator, CertificateValidatorOptions
+
+    server_cert = make_cert(tmp_path, "server", "urn:fennick:quarry-lane:test-server", server=True)
+    client_cert = make_cert(tmp_path, "client", "urn:fennick:quarry-lane:edgevib", server=False)
+    (tmp_path / "trusted").mkdir()
+    stranger = make_cert(tmp_path / "other", "stranger", "urn:fennick:elsewhere:client", server=False)
+    (tmp_path / "trusted" / "stranger.der").write_bytes(stranger.cert_der.read_bytes())
+    store = TrustStore([tmp_path / "trusted"], [])  # trusts another application only
+    await store.load()
+    srv = UaServer(free_port())
+    await srv.init([ua.SecurityPolicyType.Basic256Sha256_SignAndEncrypt], server_cert)
+    srv.server.set_certificate_validator(CertificateValidator(
+        CertificateValidatorOptions.TRUSTED | CertificateValidatorOptions.PEER_CLIENT, store))
+    await srv.start()
+    try:
+        ingest = FakeIngest()
+        with structlog.testing.capture_logs() as events:
+            source = make_source(srv, ingest, security_policy="Basic256Sha256", security_mode="SignAndEncrypt",
+                                 cert_file=str(client_cert.cert_der), key_file=str(client_cert.key_pem),
+                                 server_cert_file=str(server_cert.cert_der))
+            async with running(source):
+                await asyncio.sleep(1.5)
+        assert ingest.blocks == [] and True not in ingest.connections
+    finally:
+        await srv.stop()
+    rejected = [e for e in events if e["event"] == "opcua_certificate_rejected"]
+    assert rejected, [e["event"] for e in events]
+    assert "rejected this client's certificate" in rejected[0]["problem"]
+    assert "server_cert_file" in rejected[0]["problem"] and "cert_file" in rejected[0]["problem"]
+    assert not [e for e in events if e["event"] == "opcua_session_crashed"]
