@@ -127,6 +127,8 @@ async def test_availability_online_offline_and_last_will(mosquitto: Mosquitto, s
     cfg = small_config(short_tmp, feed={"url": mosquitto.url, **FEED})
     layer = AlarmLayer(cfg)
     await layer.start()
+    assert await until(lambda: layer.mqtt is not None and layer.mqtt.connected)
+    await asyncio.sleep(0.5)  # "online" is published right after the CONNACK: subscribe once it is there
     watch = Client5(mosquitto.port, ["edgevib/quarry-lane/availability"], client_id="watch")
     try:
         assert await until(lambda: [m.payload for m in watch.on("edgevib/")] == [b"online"])
