@@ -511,7 +511,11 @@ class Daemon:
         self._counted[pid] = n
         if n and pid not in self._busy and pid not in self._ready:
             self._ready[pid] = time.monotonic()
-        self._wake.set()
+        # wake the scheduler only when it could start a batch now: a worker is free, and no batch-window timer
+        # is pending or a full batch is queued (a finished batch and the timer wake it themselves)
+        if len(self._batches) < self.config.analysis.workers and (
+                self._timer is None or self._queued_frames >= MAX_BATCH):
+            self._wake.set()
 
     async def _schedule(self) -> None:
         loop = asyncio.get_running_loop()
