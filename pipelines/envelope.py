@@ -146,10 +146,10 @@ def envelope_spectra(z: npt.NDArray[np.complexfloating[Any, Any]], n_samples: in
     ses_mean_line : ndarray, shape (channels,) — ``Σ |z|²`` (line 0 of the unwindowed transform): the modulation
         depth of line k is ``4 √ses[k] / ses_mean_line`` (a Hann line of amplitude a reads a·m/4)
     """
-    s = z.real * z.real + z.imag * z.imag
-    both = np.empty((2, *s.shape), dtype=s.dtype)
-    both[1] = s
-    np.sqrt(s, out=both[0])
+    both = np.empty((2, *z.shape), dtype=z.real.dtype)  # [|z|, |z|²], formed in place
+    s = both[1]
+    np.abs(z, out=both[0])  # (hypot: one contiguous pass, several times faster than re² + im² on strided halves)
+    np.square(both[0], out=s)
     spec = _fft.rfft(both)
     mean_line = spec[1, :, 0].real.astype(np.float64)
     lines = hann_lines(spec.reshape(-1, spec.shape[-1]), min(stop, z.shape[-1] // 2)).reshape(2, s.shape[0], -1)
@@ -159,16 +159,11 @@ def envelope_spectra(z: npt.NDArray[np.complexfloating[Any, Any]], n_samples: in
 
 
 def fast_length(n: int) -> int:
-    """Smallest 2^a·3^b ≥ n (lengths numpy's FFT handles fastest)."""
-    best = 1 << max(0, (n - 1).bit_length())
-    p3 = 1
-    while p3 < best:
-        p2 = p3
-        while p2 < n:
-            p2 *= 2
-        best = min(best, p2)
-        p3 *= 3
-    return best
+    """Smallest 2^a or 3·2^a ≥ n: the lengths scipy's FFT handles fastest (more factors of 3 cost more than the
+    few extra points a power of two or 3 × one adds — 5832 = 2³·3⁶ takes about twice as long as 6144 = 2¹¹·3)."""
+    p2 = 1 << max(0, (n - 1).bit_length())
+    p3 = 3 * (1 << max(0, (-(-n // 3) - 1).bit_length()))
+    return min(p2, p3)
 
 
 def min_decimated_length(band_lines_count: int, max_envelope_line: int) -> int:
