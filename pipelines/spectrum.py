@@ -246,18 +246,6 @@ def masked_median(spec: FloatArray, lo: IntArray, hi: IntArray, ex_lo: IntArray,
     return out
 
 
-def masked_quartile(spec: FloatArray, lo: IntArray, hi: IntArray, ex_lo: IntArray, ex_hi: IntArray) -> FloatArray:
-    """Lower quartile of ``spec`` over ``lo..hi`` without ``ex_lo..ex_hi`` (as :func:`masked_median`): a floor that
-    other strong lines in a short window do not lift.  NaN where nothing is left."""
-    idx, valid = _windows(spec.shape[1], lo, hi)
-    valid &= (idx < ex_lo[..., None]) | (idx > ex_hi[..., None])
-    vals = np.sort(np.where(valid, _gather(spec, idx), np.inf), axis=-1)
-    count = valid.sum(axis=-1)
-    q = np.take_along_axis(vals, np.maximum((count - 1) // 4, 0)[..., None], axis=-1)[..., 0]
-    out: FloatArray = np.where(count > 0, q, np.nan)
-    return out
-
-
 def power3(power: FloatArray, idx: IntArray) -> FloatArray:
     """Sum of ``power`` over lines ``idx−1 .. idx+1`` (per row; ``power`` shape (channels, lines))."""
     k = power.shape[1]
@@ -406,19 +394,20 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     # 1× line — the winner may be a sub-harmonic (looseness, rub) of that speed — or at 1/2 or 1/3 of it at least
     # a quarter as strong — the winner may be the 2× or 3× of a misaligned machine at that speed.  Inside the
     # speed range the spectrum alone cannot tell them apart (a narrower range can).
-    # (their floor is the lower quartile around them: the winner's own lines may lie in that short window)
-    for m, share, prominence in ((2.0, SPEED_HARMONIC_SHARE, SPEED_MIN_PROMINENCE),
-                                 (3.0, SPEED_HARMONIC_SHARE, SPEED_MIN_PROMINENCE),
-                                 (0.5, SPEED_SUBHARMONIC_SHARE, SPEED_RELATED_PROMINENCE),
-                                 (1.0 / 3.0, SPEED_SUBHARMONIC_SHARE, SPEED_RELATED_PROMINENCE)):
-        f_m = m * f_w
-        b_m = np.clip(np.rint(f_m / df_hz).astype(np.intp), 2, k - 3)[:, None]
-        p_m = np.minimum(np.maximum(window_argmax(acc, b_m - 1, b_m + 1), 1), k - 2)
-        span_m = np.maximum(np.rint(0.25 * p_m).astype(np.intp), 8)
-        floor_m = masked_quartile(acc, p_m - span_m, p_m + span_m, p_m - 2, p_m + 2)[:, 0]
-        clear_m = (_gather(acc, p_m)[:, 0] >= prominence * floor_m) & (_gather(amp3, p_m)[:, 0] >= share * a_w)
-        in_range = (f_m >= speed_range_hz[0]) & (f_m <= speed_range_hz[1])
-        quality = np.where(clear_m & in_range, 0.0, quality)
+    # (the four readings at once: one window search and one median over (channels, 4) windows)
+    m_ = np.array([2.0, 3.0, 0.5, 1.0 / 3.0])
+    share_ = np.array([SPEED_HARMONIC_SHARE, SPEED_HARMONIC_SHARE, SPEED_SUBHARMONIC_SHARE, SPEED_SUBHARMONIC_SHARE])
+    prominence_ = np.array([SPEED_MIN_PROMINENCE, SPEED_MIN_PROMINENCE, SPEED_RELATED_PROMINENCE,
+                            SPEED_RELATED_PROMINENCE])
+    f_m = m_ * f_w[:, None]  # (channels, 4)
+    with np.errstate(invalid="ignore"):
+        b_m = np.clip(np.rint(f_m / df_hz), 2, k - 3).astype(np.intp)
+    p_m = np.minimum(np.maximum(window_argmax(acc, b_m - 1, b_m + 1), 1), k - 2)
+    span_m = np.maximum(np.rint(0.25 * p_m).astype(np.intp), 8)
+    floor_m = masked_median(acc, p_m - span_m, p_m + span_m, p_m - 2, p_m + 2)
+    clear_m = (_gather(acc, p_m) >= prominence_ * floor_m) & (_gather(amp3, p_m) >= share_ * a_w[:, None])
+    in_range = (f_m >= speed_range_hz[0]) & (f_m <= speed_range_hz[1])
+    quality = np.where((clear_m & in_range).any(axis=-1), 0.0, quality)
     any_valid = valid[rows, first]
     quality = np.where(any_valid, quality, np.nan)
     with np.errstate(invalid="ignore"):
@@ -428,26 +417,12 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     return out, quality
 
 
-def _hann_kernel(d: FloatArray) -> FloatArray:
-    """|W(d)| of the periodic Hann window's transform at d lines from a tone, normalised to 1 at d = 0:
-    sin(πd) / (πd (1 − d²)), with its limits 1 at d = 0 and 1/2 at d = ±1."""
-    d = np.abs(d)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        w = np.sin(np.pi * d) / (np.pi * d * (1.0 - d * d))
-    w = np.where(d < 1e-9, 1.0, w)
-    out: FloatArray = np.abs(np.where(np.abs(d - 1.0) < 1e-9, 0.5, w))
-    return out
-
-
-def _refined_line(acc: FloatArray, f_hz: FloatArray,
-                  df_hz: float) -> tuple[FloatArray, FloatArray, FloatArray, npt.NDArray[np.bool_]]:
-    """Hann-interpolated frequency of the largest line within ±1 line of ``f_hz`` (one per channel), its
-    amplitude, the median amplitude around it (± 25 %, at least ± 8 lines, the line's ± 2 lines left out), and
-    whether it is a **clean** tone: its smaller neighbour has the level a lone tone at the interpolated place
-    gives it (within 0.1 of the peak) and no other line stands within 3 lines at −20 dB or more — so nothing
-    pulls the interpolation."""
+def _refined_lines(acc: FloatArray, f_hz: FloatArray, df_hz: float) -> tuple[FloatArray, FloatArray, FloatArray]:
+    """Hann-interpolated frequency of the largest line within ±1 line of each ``f_hz`` (shape (channels, L)),
+    its amplitude and the median amplitude around it (± 25 %, at least ± 8 lines, the line's ± 2 lines left
+    out); each of shape (channels, L)."""
     k = acc.shape[1]
-    b = np.clip(np.rint(f_hz / df_hz).astype(np.intp), 2, k - 3)[:, None]
+    b = np.clip(np.rint(f_hz / df_hz).astype(np.intp), 2, k - 3)
     p = np.minimum(np.maximum(window_argmax(acc, b - 1, b + 1), 1), k - 2)
     left, mid, right = _gather(acc, p - 1), _gather(acc, p), _gather(acc, p + 1)
     side = np.where(right >= left, 1.0, -1.0)
@@ -457,15 +432,7 @@ def _refined_line(acc: FloatArray, f_hz: FloatArray,
     delta = np.where(np.isfinite(delta), np.minimum(np.maximum(delta, -0.5), 0.5), 0.0)
     span = np.maximum(np.rint(0.25 * p).astype(np.intp), 8)
     floor = masked_median(acc, p - span, p + span, p - 2, p + 2)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        predicted = _hann_kernel(1.0 + np.abs(delta)) / _hann_kernel(delta)
-        measured = np.minimum(left, right) / mid
-    shaped = np.abs(measured - predicted) <= 0.1
-    j = np.clip(p + np.array([-3, -2, 2, 3]), 1, k - 2)  # beyond the tone's own main lobe (± 1 line)
-    v = _gather(acc, j)
-    peaks = (v > _gather(acc, j - 1)) & (v >= _gather(acc, j + 1)) & (v >= 0.1 * mid)
-    clean = shaped[:, 0] & ~peaks.any(axis=-1)
-    return ((p + delta) * df_hz)[:, 0], mid[:, 0], floor[:, 0], clean
+    return (p + delta) * df_hz, mid, floor
 
 
 def _harmonic_refinement(acc: FloatArray, f_hz: FloatArray, df_hz: float, harmonics: int,
@@ -480,14 +447,17 @@ def _harmonic_refinement(acc: FloatArray, f_hz: FloatArray, df_hz: float, harmon
     within the tolerance.
     """
     out = np.where(np.isfinite(f_hz), f_hz, 0.0)
-    _, a1, floor1, clean = _refined_line(acc, out, df_hz)
+    hs = np.arange(1, min(harmonics, 3) + 1, dtype=np.float64)  # 1× and the harmonics, in one search
+    f_all, a_all, floor_all = _refined_lines(acc, out[:, None] * hs, df_hz)
+    a1, floor1 = a_all[:, 0], floor_all[:, 0]
     # inverse-variance weights: the interpolation error of harmonic h, read as a speed, is ∝ 1 / (h × its SNR)
     weight = (a1 / np.maximum(floor1, 1e-300)) ** 2
     total = weight * out
     agree_all = np.ones(out.shape, dtype=bool)
     checked = np.zeros(out.shape, dtype=bool)
-    for h in range(2, min(harmonics, 3) + 1):
-        f_h, a_h, floor_h, _ = _refined_line(acc, h * out, df_hz)
+    for j in range(1, hs.size):
+        h = float(hs[j])
+        f_h, a_h, floor_h = f_all[:, j], a_all[:, j], floor_all[:, j]
         clear = (a_h > 0) & (a_h >= SPEED_MIN_PROMINENCE * floor_h) & (np.abs(f_h - h * out) <= df_hz) & (out > 0)
         with np.errstate(divide="ignore", invalid="ignore"):
             agree_all &= ~clear | (np.abs(f_h / h - out) <= 0.5 * tolerance * out)
@@ -498,7 +468,7 @@ def _harmonic_refinement(acc: FloatArray, f_hz: FloatArray, df_hz: float, harmon
     with np.errstate(divide="ignore", invalid="ignore"):
         best = np.where(weight > 0, total / weight, out)
     with np.errstate(divide="ignore", invalid="ignore"):
-        fine = clean | (0.5 * df_hz <= tolerance * out)
+        fine = 0.5 * df_hz <= tolerance * out
     precise = np.where(checked, agree_all, fine)
     result: FloatArray = np.where(np.isfinite(f_hz), best, np.nan)
     return result, precise
