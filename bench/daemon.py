@@ -72,7 +72,7 @@ PERIOD_NS = round(BLOCK * 1e9 / FS_HZ)  # 640 ms, exact
 TOPIC = "bench/{sensor}/block"
 P99_TARGET_MS = 250.0
 _HIST = "edgevib_analysis_latency_seconds"
-_SEQ_T0 = struct.Struct("<Qq")  # seq and t0_ns at offset 8 of the binary block header (daemon/wire.py)
+_SEQ_T0 = struct.Struct("<Qq")  # seq and t0_ns at offset 8 of the binary block header (common/wire.py)
 
 
 # ------------------------------------------------------------------------------------------- the broker
@@ -197,7 +197,7 @@ def _publisher(port: int, channels: list[int], n_channels: int, duration_ns: int
     """Publisher process: connects and encodes, reports ready, receives the common start time on ``go``, then
     publishes ``channels`` paced for ``duration_ns``; reports counts and lag on ``out``.  QoS 0 goes through
     :class:`RawPublisher`, QoS 1 through paho (which handles the acknowledgements)."""
-    from edgevib.daemon.wire import Block, encode_binary
+    from edgevib.common.wire import Block, encode_binary
 
     templates: dict[int, bytearray] = {}
     topics: dict[int, str] = {}

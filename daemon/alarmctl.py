@@ -59,7 +59,7 @@ def _socket_path(args: argparse.Namespace) -> Path:
     if args.config:
         from edgevib.daemon.config import load_config
 
-        return Path(load_config(args.config).alarms.socket)
+        return Path(load_config(args.config, plans=False).alarms.socket)  # no plan checks: a quick look-up
     state = args.state_dir or os.environ.get("EDGEVIB_STATE_DIR") or "/var/lib/edgevib"
     return Path(state) / "alarms.sock"
 
@@ -108,7 +108,7 @@ def _print_list(result: dict[str, Any]) -> None:
 
 def run_alarms(args: argparse.Namespace) -> int:
     from edgevib.daemon.alarms.control import CommandError, request
-    from edgevib.daemon.interfaces import ConfigError
+    from edgevib.daemon.errors import ConfigError
 
     try:
         path = _socket_path(args)

@@ -1,8 +1,10 @@
 """The ``edgevib`` command line: one dispatcher, each subcommand implemented in the module that owns it.
 
 A subcommand's module defines ``configure_<name>(parser)`` and ``run_<name>(args) -> int`` (``-`` in the name
-becomes ``_``).  Exit codes: 0 success, 2 bad input or configuration (one line on stderr, no traceback),
-130 interrupted.
+becomes ``_``).  Only the module of the command being run is imported: ``edgevib --help`` lists the commands from
+:data:`COMMANDS` alone, and ``edgevib alarms list`` loads neither the numerical core nor the simulator (start-up:
+``python -m edgevib.bench.cli``).  Exit codes: 0 success, 2 bad input or configuration (one line on stderr, no
+traceback), 130 interrupted.
 """
 
 from __future__ import annotations
@@ -42,7 +44,8 @@ class _Parser(argparse.ArgumentParser):
         self.exit(2, f"{self.prog}: {message}\n")
 
 
-def build_parser() -> argparse.ArgumentParser:
+def build_parser(command: str | None = None) -> argparse.ArgumentParser:
+    """The parser; only ``command``'s own options are configured (its module imported), the others are listed."""
     parser = _Parser(
         prog="edgevib",
         description="Streaming vibration monitor for rotating machines. edgevib monitors and advises; "
@@ -53,16 +56,19 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"edgevib {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     for name, (_, help_text) in COMMANDS.items():
-        configure, runner = _load(name)
         p = sub.add_parser(name, help=help_text, description=help_text)
-        configure(p)
-        p.set_defaults(_runner=runner)
+        if name == command:
+            configure, runner = _load(name)
+            configure(p)
+            p.set_defaults(_runner=runner)
     return parser
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
+    args_list = list(sys.argv[1:] if argv is None else argv)
+    command = next((a for a in args_list if not a.startswith("-")), None)  # the top level has no valued options
+    parser = build_parser(command if command in COMMANDS else None)
+    args = parser.parse_args(args_list)
     if args.command is None:
         parser.print_help()
         return 2

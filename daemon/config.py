@@ -59,9 +59,10 @@ from pydantic import (
     model_validator,
 )
 
+from edgevib.common.bands import envelope_band
+from edgevib.common.wire import DEFAULT_MAX_PAYLOAD_BYTES, DEFAULT_MAX_SAMPLES
 from edgevib.daemon.errors import ConfigError
 from edgevib.daemon.shard import Shard, owns_point, validate_shard
-from edgevib.daemon.wire import DEFAULT_MAX_PAYLOAD_BYTES, DEFAULT_MAX_SAMPLES
 
 if TYPE_CHECKING:
     from edgevib.daemon.alarms.config import AlarmSettings
@@ -1407,11 +1408,8 @@ def _check_plans(cfg: Config) -> dict[str, AnalysisPlan]:
 
 
 def _default_envelope_band(p: PointConfig, m: MachineConfig) -> tuple[float, float] | None:
-    from edgevib.pipelines.analysis import default_envelope_band
-
     speed_hi_hz = (m.speed_rpm if m.speed_rpm is not None else m.speed_range_rpm[1]) / 60.0
-    band = default_envelope_band(p.fs_hz, p.bandwidth_hz, shaft_hz_max=speed_hi_hz)
-    return None if band is None else (float(band[0]), float(band[1]))
+    return envelope_band(p.fs_hz, p.bandwidth_hz, speed_hi_hz)
 
 
 def _resolve_point(p: PointConfig, i: int, cfg: Config) -> PointConfig:
@@ -1544,9 +1542,11 @@ def _resolve(cfg: Config, base: Path, digest: str) -> Config:
 # ------------------------------------------------------------------------------------------------ entry points
 
 
-def load_config(path: str | os.PathLike[str], overrides: Mapping[str, Any] | None = None) -> Config:
+def load_config(path: str | os.PathLike[str], overrides: Mapping[str, Any] | None = None, *,
+                plans: bool = True) -> Config:
     """Read and validate a TOML configuration file; ``overrides`` maps dotted keys (``"site.state_dir"``) to
-    values that replace the file's before validation (the command line's ``--state-dir``, ``--log-level``)."""
+    values that replace the file's before validation (the command line's ``--state-dir``, ``--log-level``);
+    ``plans=False`` as for :func:`parse_config`."""
     p = Path(path)
     try:
         data = p.read_bytes()
@@ -1565,7 +1565,7 @@ def load_config(path: str | os.PathLike[str], overrides: Mapping[str, Any] | Non
         for name in tables:
             t = t.setdefault(name, {}) if isinstance(t.get(name, {}), dict) else {}
         t[key] = value
-    return parse_config(doc, p.resolve().parent, digest=hashlib.sha256(data).hexdigest()[:16])
+    return parse_config(doc, p.resolve().parent, digest=hashlib.sha256(data).hexdigest()[:16], plans=plans)
 
 
 def parse_config(doc: Mapping[str, Any], base_dir: str | os.PathLike[str] = ".", digest: str = "", *,

@@ -28,9 +28,9 @@ from typing import Any, cast
 import numpy as np
 import numpy.typing as npt
 
+from edgevib.common.wire import DEFAULT_MAX_PAYLOAD_BYTES, DEFAULT_MAX_SAMPLES, Block, WireError, decode
 from edgevib.daemon.config import G_M_S2, Config, MachineConfig, MqttSourceConfig, PointConfig, SpeedTag
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
-from edgevib.daemon.wire import DEFAULT_MAX_PAYLOAD_BYTES, DEFAULT_MAX_SAMPLES, Block, WireError, decode
 
 __all__ = [
     "LATENCY_BUCKETS_S",

@@ -13,8 +13,8 @@ from typing import TYPE_CHECKING, Protocol, runtime_checkable
 import numpy as np
 import numpy.typing as npt
 
+from edgevib.common.wire import Block
 from edgevib.daemon.errors import ConfigError, EdgevibError, SourceError
-from edgevib.daemon.wire import Block
 
 if TYPE_CHECKING:  # the configuration imports this module and must not load the numerical core
     from edgevib.daemon.config import Config

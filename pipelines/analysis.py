@@ -30,6 +30,7 @@ from functools import lru_cache
 import numpy as np
 import numpy.typing as npt
 
+from edgevib.common.bands import LINES_BELOW_EDGE, envelope_band, min_frame_samples
 from edgevib.pipelines import _fft
 from edgevib.pipelines.bearings import defect_multiples, validate_geometry
 from edgevib.pipelines.detection import window_thresholds
@@ -84,7 +85,6 @@ FAMILIES: tuple[str, ...] = ("ftf", "bpfo", "bpfi", "bsf")
 SPEED_HARMONICS = 3  # harmonics used by the speed estimate
 MIN_SAMPLES = 64
 PEAK_OVERSAMPLING = 3.0  # waveforms sampled at ≥ 3 × the band's upper edge; peaks refined (see _refined_peak)
-ANTI_ALIAS_RATIO = 2.56  # usable bandwidth fs/2.56 of an anti-aliased acquisition (common practice)
 
 
 def order_key(order: float) -> str:
@@ -143,15 +143,13 @@ def _check_plan(plan: AnalysisPlan) -> AnalysisPlan:
     df = fs / n
     partial = bool(plan.partial)
     vel = _band("velocity band", plan.velocity_band_hz, nyq, "velocity_band_hz")
-    if df > vel[0] / 2.0 and not partial:
-        raise PlanError(f"record of {n} samples at {fs:g} Hz is too short: it resolves {df:.4g} Hz, too coarse for "
-                        f"the velocity band's low edge {vel[0]:g} Hz (2 lines needed); need at least "
-                        f"{math.ceil(2 * fs / vel[0])} samples", field="n_samples")
     speed = _band("speed range", plan.speed_range_hz, nyq, "speed_range_hz")
-    if df > speed[0] / 2.0 and not partial:
-        raise PlanError(f"record of {n} samples at {fs:g} Hz is too short: it resolves {df:.4g} Hz, too coarse for "
-                        f"the lowest shaft speed {speed[0]:g} Hz (2 lines needed); need at least "
-                        f"{math.ceil(2 * fs / speed[0])} samples", field="n_samples")
+    for what, edge in (("the velocity band's low edge", vel[0]), ("the lowest shaft speed", speed[0])):
+        need = min_frame_samples(fs, edge, edge)
+        if n < need and not partial:
+            raise PlanError(f"record of {n} samples at {fs:g} Hz is too short: it resolves {df:.4g} Hz, too coarse "
+                            f"for {what} {edge:g} Hz ({LINES_BELOW_EDGE:g} lines needed); need at least {need} "
+                            "samples", field="n_samples")
     orders = tuple(_finite("order", o, "orders") for o in plan.orders)
     if not orders or min(orders) <= 0:
         raise PlanError(f"orders {plan.orders!r} must be a non-empty list of positive multiples of shaft speed",
@@ -248,42 +246,29 @@ def make_plan(fs_hz: float, n_samples: int, *, velocity_band_hz: tuple[float, fl
 def default_envelope_band(fs_hz: float, bandwidth_hz: tuple[float, float] | None, *,
                           shaft_hz_max: float | None = None) -> tuple[float, float] | None:
     """A demodulation band from the sample rate and the sensor's usable bandwidth, or None when the sensor cannot
-    carry envelope analysis.
-
-    The band is the top two octaves of what the acquisition carries: the high edge is the lower of fs/2.56 (the
-    usable band of an anti-aliased acquisition, common practice) and the sensor's upper limit; the low edge the
-    highest of a quarter of the high edge, 500 Hz, 20 × the highest shaft speed (clear of the shaft harmonics) and
-    the sensor's lower limit.  Impacts excite structural resonances there, far above the shaft and mesh lines
-    (common practice; a kurtogram or a known resonance chooses better, and an explicit band overrides this).
-    Envelope analysis needs kHz bandwidth above the shaft and mesh components (FIELD_NOTES §6), so the result is
-    None when the high edge is below 2 kHz or less than 1.5 × the low edge — for example a MEMS point limited to
-    about 1–1.5 kHz.
-    Edges are rounded inwards to 10 Hz.
+    carry envelope analysis: the inputs validated, then :func:`edgevib.common.bands.envelope_band` (the rule and
+    its reasons are there).
 
     Examples
     --------
     12 kHz sampling, no sensor limit: 1180–4680 Hz.  25.6 kHz with a 0.5 Hz–10 kHz piezo: 2500–10000 Hz.
+
+    Raises
+    ------
+    PlanError
+        a non-finite or non-positive sample rate, an impossible bandwidth or shaft speed.
     """
     fs = _finite("sample rate", fs_hz)
     if fs <= 0:
         raise PlanError(f"sample rate {fs:g} Hz must be > 0")
-    hi = fs / ANTI_ALIAS_RATIO
-    lo = 500.0
+    band = None
     if bandwidth_hz is not None:
-        b_lo, b_hi = _finite("sensor bandwidth low edge", bandwidth_hz[0]), \
-            _finite("sensor bandwidth high edge", bandwidth_hz[1])
-        if b_lo < 0 or b_hi <= b_lo:
-            raise PlanError(f"sensor bandwidth {b_lo:g}–{b_hi:g} Hz is not a valid range")
-        hi = min(hi, b_hi)
-        lo = max(lo, b_lo)
-    lo = max(lo, hi / 4.0)
-    if shaft_hz_max is not None:
-        lo = max(lo, 20.0 * _finite("highest shaft speed", shaft_hz_max))
-    lo = math.ceil(lo / 10.0) * 10.0
-    hi = math.floor(hi / 10.0) * 10.0
-    if hi < 2000.0 or hi < 1.5 * lo:
-        return None
-    return (lo, hi)
+        band = (_finite("sensor bandwidth low edge", bandwidth_hz[0]),
+                _finite("sensor bandwidth high edge", bandwidth_hz[1]))
+        if band[0] < 0 or band[1] <= band[0]:
+            raise PlanError(f"sensor bandwidth {band[0]:g}–{band[1]:g} Hz is not a valid range")
+    shaft = None if shaft_hz_max is None else _finite("highest shaft speed", shaft_hz_max)
+    return envelope_band(fs, band, shaft)
 
 
 class AnalysisKernel:
@@ -332,10 +317,11 @@ class AnalysisKernel:
         self._integrate = coef
         v_band = plan.velocity_band_hz
         lo, hi = band_lines(plan.fs_hz, n, v_band)
-        self._velocity = df <= v_band[0] / 2.0 and hi >= lo
+        need_v = min_frame_samples(plan.fs_hz, v_band[0], v_band[0])  # make_plan's rule (edgevib.common.bands)
+        self._velocity = n >= need_v and hi >= lo
         if not self._velocity:
-            notes.append(f"velocity: {length}, too coarse for the velocity band's {v_band[0]:g} Hz low edge (2 lines "
-                         f"needed; needs ≥ {_duration(math.ceil(2 * plan.fs_hz / v_band[0]), plan.fs_hz)})")
+            notes.append(f"velocity: {length}, too coarse for the velocity band's {v_band[0]:g} Hz low edge "
+                         f"({LINES_BELOW_EDGE:g} lines needed; needs ≥ {_duration(need_v, plan.fs_hz)})")
             lo, hi = max(lo, 1), max(hi, max(lo, 1))
         self._vel_lines = (lo, hi)
         self._mv = max(fast_length(math.ceil(PEAK_OVERSAMPLING * hi)), 2 * hi + 2)
@@ -354,10 +340,11 @@ class AnalysisKernel:
         self._centre = _central_window(self._mv)
         self._vel_stop = min(n // 2 - 1, hi + 2)
         s_lo, s_hi = plan.speed_range_hz
-        self._estimate = df <= s_lo / 2.0 and SPEED_HARMONICS * s_hi * (1 + plan.order_tolerance) < nyq
-        if df > s_lo / 2.0:
-            notes.append(f"speed estimate: {length}, too coarse for the lowest shaft speed {s_lo:g} Hz (2 lines "
-                         f"needed; needs ≥ {_duration(math.ceil(2 * plan.fs_hz / s_lo), plan.fs_hz)}); give the "
+        need_s = min_frame_samples(plan.fs_hz, s_lo, s_lo)
+        self._estimate = n >= need_s and SPEED_HARMONICS * s_hi * (1 + plan.order_tolerance) < nyq
+        if n < need_s:
+            notes.append(f"speed estimate: {length}, too coarse for the lowest shaft speed {s_lo:g} Hz "
+                         f"({LINES_BELOW_EDGE:g} lines needed; needs ≥ {_duration(need_s, plan.fs_hz)}); give the "
                          "speed")
         elif not self._estimate:
             notes.append(f"speed estimate: {SPEED_HARMONICS} harmonics of {s_hi:g} Hz reach Nyquist {nyq:g} Hz; "

@@ -36,7 +36,7 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
-from edgevib.daemon.wire import Block
+from edgevib.common.wire import Block
 from edgevib.simulator import models as M
 from edgevib.simulator.scenario import (
     AXIS_GAINS,

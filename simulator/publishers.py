@@ -2,7 +2,7 @@
 
 MQTT
     One message per block on ``Simulation.topic(point)`` (``<prefix>/<machine>/<point>/block``) in the block
-    wire format (``edgevib.daemon.wire``: JSON ``f32le-b64`` or binary float32), QoS 0 or 1, not retained.
+    wire format (``edgevib.common.wire``: JSON ``f32le-b64`` or binary float32), QoS 0 or 1, not retained.
     Every machine's speed goes to ``Simulation.speed_topic(machine)`` (``<prefix>/<machine>/speed``) every
     0.5 s of simulated time: r/min as plain text, e.g. ``1480.000``.
 
@@ -46,7 +46,7 @@ from urllib.parse import urlsplit
 
 import numpy as np
 
-from edgevib.daemon.wire import Block, encode_binary, encode_json
+from edgevib.common.wire import Block, encode_binary, encode_json
 from edgevib.simulator.engine import Simulation, opcua_node, opcua_speed_node
 
 __all__ = [

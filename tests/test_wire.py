@@ -1,6 +1,6 @@
 """The block wire format: round trips, strict decoding, and one specific error per documented failure.
 
-The reference is the format documented in ``edgevib.daemon.wire`` (its module docstring) and IEEE-754 float32
+The reference is the format documented in ``edgevib.common.wire`` (its module docstring) and IEEE-754 float32
 rounding as numpy implements it.
 """
 
@@ -15,7 +15,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from edgevib.daemon.wire import (
+from edgevib.common.wire import (
     DEFAULT_MAX_SAMPLES,
     Block,
     InvalidField,

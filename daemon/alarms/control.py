@@ -29,7 +29,7 @@ from typing import Any
 
 import structlog
 
-from edgevib.daemon.interfaces import EdgevibError
+from edgevib.daemon.errors import EdgevibError
 
 __all__ = ["COMMANDS", "CommandError", "ControlServer", "handle_payload", "validate_request"]
 

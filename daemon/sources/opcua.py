@@ -1,7 +1,7 @@
 """OPC UA source: array variables of an OPC UA server (asyncua client), subscribed to or polled.
 
 Each configured variable holds one block of samples as a 1-D numeric array; every new value (a data-change
-notification, or a polled value with a new source timestamp) becomes one :class:`~edgevib.daemon.wire.Block`:
+notification, or a polled value with a new source timestamp) becomes one :class:`~edgevib.common.wire.Block`:
 
 * ``seq`` is generated per node by this source (OPC UA carries no sequence number).  When the server's source
   timestamps show that whole blocks were skipped between two values, the counter skips as many, so the ingest
@@ -61,8 +61,8 @@ from asyncua.ua.status_codes import StatusCodes
 from asyncua.ua.uaerrors import UaError, UaStatusCodeError
 from cryptography import x509
 
+from edgevib.common.wire import UNITS, Block
 from edgevib.daemon.interfaces import ConfigError, Ingest, SourceError
-from edgevib.daemon.wire import UNITS, Block
 
 __all__ = ["SAMPLE_RATE_PROPERTIES", "NodeSpec", "OpcUaSource"]
 

@@ -24,8 +24,8 @@ import pytest
 from alarmkit import Subscriber, persistent_broker
 from servers import Mosquitto
 
+from edgevib.common.wire import Block, encode_binary
 from edgevib.daemon.alarms.control import request
-from edgevib.daemon.wire import Block, encode_binary
 
 pytestmark = [pytest.mark.network, pytest.mark.slow]
 G = 9.80665  # standard gravity, m/s² (3rd CGPM 1901)

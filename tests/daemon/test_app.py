@@ -13,10 +13,10 @@ import numpy as np
 import pytest
 from prometheus_client import CollectorRegistry
 
+from edgevib.common.wire import Block, encode_binary
 from edgevib.daemon.app import Daemon
 from edgevib.daemon.config import Config, parse_config
 from edgevib.daemon.interfaces import FrameResult
-from edgevib.daemon.wire import Block, encode_binary
 
 FS = 25600.0
 BLOCK = 4096

@@ -10,9 +10,9 @@ from typing import Any
 import numpy as np
 from prometheus_client import CollectorRegistry
 
+from edgevib.common.wire import Block
 from edgevib.daemon.app import BATCH_WINDOW_S, MAX_BATCH, Daemon
 from edgevib.daemon.config import Config, parse_config
-from edgevib.daemon.wire import Block
 from edgevib.pipelines.analysis import analyze_frames
 
 FS = 25600.0

@@ -18,9 +18,9 @@ import pytest
 from paho.mqtt.enums import CallbackAPIVersion
 from prometheus_client.parser import text_string_to_metric_families
 
+from edgevib.common.wire import encode_binary
 from edgevib.daemon.app import Daemon
 from edgevib.daemon.config import parse_config
-from edgevib.daemon.wire import encode_binary
 
 pytestmark = [pytest.mark.network, pytest.mark.slow]
 

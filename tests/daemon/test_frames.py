@@ -8,9 +8,9 @@ from typing import Any
 import numpy as np
 import pytest
 
+from edgevib.common.wire import Block, encode_binary, encode_json
 from edgevib.daemon.config import Config, parse_config
 from edgevib.daemon.frames import BlockIngest, EwTrend, LatencyHistogram, Stats
-from edgevib.daemon.wire import Block, encode_binary, encode_json
 
 FS = 25600.0
 BLOCK = 4096

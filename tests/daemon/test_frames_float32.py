@@ -5,9 +5,9 @@ from __future__ import annotations
 
 import numpy as np
 
+from edgevib.common.wire import Block, decode, encode_binary, encode_json
 from edgevib.daemon.config import Config, parse_config
 from edgevib.daemon.frames import BlockIngest, Stats
-from edgevib.daemon.wire import Block, decode, encode_binary, encode_json
 
 FS = 25600.0
 N = 16384

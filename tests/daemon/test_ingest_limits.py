@@ -21,10 +21,10 @@ import pytest
 from paho.mqtt.enums import CallbackAPIVersion
 from prometheus_client import CollectorRegistry
 
+from edgevib.common.wire import Block, encode_json
 from edgevib.daemon.app import Daemon
 from edgevib.daemon.config import parse_config
 from edgevib.daemon.sources.mqtt import MqttSource
-from edgevib.daemon.wire import Block, encode_json
 
 FS = 25600.0
 T0 = 1_764_633_600_000_000_000

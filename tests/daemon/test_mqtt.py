@@ -15,9 +15,9 @@ import pytest
 from paho.mqtt.enums import CallbackAPIVersion
 from prometheus_client import CollectorRegistry
 
+from edgevib.common.wire import Block, encode_binary, encode_json
 from edgevib.daemon.app import Daemon
 from edgevib.daemon.config import Config, parse_config
-from edgevib.daemon.wire import Block, encode_binary, encode_json
 
 pytestmark = pytest.mark.network
 
@@ -137,7 +137,7 @@ async def test_hostile_payloads_do_not_disturb_valid_points(mosquitto: Any, tmp_
     topic = "fwb/quarry-lane/P-101/DE-H/block"
     good = [encode_binary(sine("QL-P101-DE-H", seq, 1.0, 50.0)) for seq in range(8)]
     finite = encode_binary(sine("QL-P101-DE-H", 99, 1.0, 50.0))
-    at = 40 + len("QL-P101-DE-H") + 4 * 10  # sample 10 of the float32 body (daemon/wire.py layout)
+    at = 40 + len("QL-P101-DE-H") + 4 * 10  # sample 10 of the float32 body (common/wire.py layout)
     nan_payload = finite[:at] + struct.pack("<f", float("nan")) + finite[at + 4:]
     hostile = {
         "malformed": [b"\xff\xfe garbage", b"{not json", b"\x00" * 64],

@@ -15,11 +15,11 @@ import paho.mqtt.client as mqtt
 import pytest
 from paho.mqtt.enums import CallbackAPIVersion
 
+from edgevib.common.wire import Block
 from edgevib.daemon.app import Daemon
 from edgevib.daemon.config import parse_config
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.sinks.mqtt import indicator_document
-from edgevib.daemon.wire import Block
 from edgevib.pipelines.types import FrameIndicators
 
 FS = 25600.0

@@ -21,11 +21,11 @@ from opcua_certs import make_cert
 from prometheus_client import CollectorRegistry
 from servers import free_port
 
+from edgevib.common.wire import Block
 from edgevib.daemon.app import Daemon
 from edgevib.daemon.config import parse_config
 from edgevib.daemon.interfaces import ConfigError
 from edgevib.daemon.sources.opcua import NodeSpec, OpcUaSource
-from edgevib.daemon.wire import Block
 
 # one event loop for the module, so that one server (its address space takes seconds to build) serves the tests
 pytestmark = [pytest.mark.network, pytest.mark.asyncio(loop_scope="module")]

@@ -19,10 +19,10 @@ from prometheus_client import CollectorRegistry
 from prometheus_client.parser import text_string_to_metric_families
 from servers import free_port, wait_port
 
+from edgevib.common.wire import Block
 from edgevib.daemon.app import Daemon
 from edgevib.daemon.config import parse_config
 from edgevib.daemon.frames import Stats
-from edgevib.daemon.wire import Block
 
 FS = 25600.0
 BLOCK = 4096

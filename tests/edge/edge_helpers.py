@@ -25,7 +25,7 @@ import numpy as np
 import paho.mqtt.client as mqtt
 from prometheus_client.parser import text_string_to_metric_families
 
-from edgevib.daemon.wire import Block, encode_binary
+from edgevib.common.wire import Block, encode_binary
 
 FS_HZ = 3200.0
 BLOCK = 1024

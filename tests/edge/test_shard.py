@@ -131,9 +131,9 @@ def test_blocks_of_other_instances_points_are_not_rejections() -> None:
     and the rejected-block alert fires (config/prometheus/edgevib-rules.yml)."""
     import numpy as np
 
+    from edgevib.common.wire import Block
     from edgevib.daemon.config import parse_config
     from edgevib.daemon.frames import BlockIngest, Stats
-    from edgevib.daemon.wire import Block
 
     def pt(pid: str, sensor: str) -> dict[str, object]:
         return {"id": pid, "machine": "P-101", "axis": "horizontal", "source": "station-broker", "sensor": sensor,

@@ -18,11 +18,11 @@ from mqtt5 import Client5
 from servers import NatsMqtt
 from structlog.testing import capture_logs
 
+from edgevib.common.wire import Block, decode, encode_binary
 from edgevib.daemon.alarms.feed import MqttFeed, cloud_event, event_body
 from edgevib.daemon.alarms.outbox import Database, Outbox, OutboxEvent
 from edgevib.daemon.config import MqttConnection
 from edgevib.daemon.sources.mqtt import MqttSource
-from edgevib.daemon.wire import Block, decode, encode_binary
 
 pytestmark = pytest.mark.network
 
