@@ -30,7 +30,6 @@ from __future__ import annotations
 
 import difflib
 import hashlib
-import json
 import math
 import os
 import re
@@ -59,7 +58,8 @@ from pydantic import (
     model_validator,
 )
 
-from edgevib.common.bands import envelope_band
+from edgevib.common.bands import envelope_band, min_frame_samples
+from edgevib.common.toml_writer import dump_toml
 from edgevib.common.wire import DEFAULT_MAX_PAYLOAD_BYTES, DEFAULT_MAX_SAMPLES
 from edgevib.daemon.errors import ConfigError
 from edgevib.daemon.shard import Shard, owns_point, validate_shard
@@ -665,6 +665,19 @@ class MachineConfig(_Table):
     def speed_mode(self) -> str:
         return "fixed" if self.speed_rpm is not None else "tag" if self.speed_tag is not None else "estimated"
 
+    @property
+    def speed_range_hz(self) -> tuple[float, float]:
+        """The shaft speeds the analysis plans for, Hz: ``speed_range_rpm``, or 0.5–1.5 × a fixed speed (given
+        every frame, it only brackets the estimate)."""
+        if self.speed_rpm is not None:
+            return (0.5 * self.speed_rpm / 60.0, 1.5 * self.speed_rpm / 60.0)
+        return (self.speed_range_rpm[0] / 60.0, self.speed_range_rpm[1] / 60.0)
+
+    @property
+    def top_speed_hz(self) -> float:
+        """The highest running speed, Hz: the fixed speed, or the top of ``speed_range_rpm``."""
+        return (self.speed_rpm if self.speed_rpm is not None else self.speed_range_rpm[1]) / 60.0
+
 
 class BearingConfig(_Table):
     """Rolling-element bearing geometry; the numerical core checks that it is possible (``validate_geometry``)."""
@@ -803,6 +816,23 @@ class PointConfig(_Table):
     @property
     def hop_samples(self) -> int:
         return max(1, self.frame_samples - round(self.overlap * self.frame_samples))
+
+    @property
+    def usable_bandwidth_hz(self) -> tuple[float, float]:
+        """``bandwidth_hz``, or the sensor type's default (piezo 0.5–10 000 Hz, MEMS 0–1000 Hz)."""
+        return self.bandwidth_hz or ((0.5, 10000.0) if self.sensor_type == "piezo" else (0.0, 1000.0))
+
+    def envelope_band_for(self, machine: MachineConfig) -> tuple[float, float] | None:
+        """The demodulation band the point gets on ``machine``: its own, or the default from its sample rate,
+        bandwidth and the machine's top speed (:func:`edgevib.common.bands.envelope_band`; None: none)."""
+        if self.envelope_band_hz is not None:
+            return self.envelope_band_hz
+        return envelope_band(self.fs_hz, self.usable_bandwidth_hz, machine.top_speed_hz)
+
+    def min_frame_samples(self, machine: MachineConfig) -> int:
+        """The shortest frame the analysis plan accepts on ``machine`` (:func:`edgevib.common.bands
+        .min_frame_samples`: two lines below the velocity band's edge and the lowest speed)."""
+        return min_frame_samples(self.fs_hz, self.velocity_band_hz[0], machine.speed_range_hz[0])
 
     @property
     def envelope_note(self) -> str | None:
@@ -1180,7 +1210,7 @@ def _unknown(loc: tuple[int | str, ...], value: object) -> str:
     known, _ = _fields_at(loc[:-1])
     key = str(loc[-1])
     hint = _did_you_mean(key, list(known))
-    if isinstance(value, dict) or _is_array_of_tables(value):
+    if isinstance(value, dict) or (isinstance(value, list) and value and all(isinstance(x, dict) for x in value)):
         parent = _dotted(tuple(p for p in _clean(loc[:-1]) if not isinstance(p, int)))
         left, right = ("[[", "]]") if isinstance(value, list) else ("[", "]")
         name = f"{left}{parent + '.' if parent else ''}{key}{right}"
@@ -1367,13 +1397,9 @@ def plan_for(point: PointConfig, machine: MachineConfig) -> AnalysisPlan:
     b = point.bearing
     bearing = None if b is None else BearingGeometry(b.elements, b.ball_diameter_mm, b.pitch_diameter_mm,
                                                      b.contact_angle_deg)
-    if machine.speed_rpm is not None:  # a fixed speed is given every frame: the estimate's range only brackets it
-        speed_range_hz = (0.5 * machine.speed_rpm / 60.0, 1.5 * machine.speed_rpm / 60.0)
-    else:
-        speed_range_hz = (machine.speed_range_rpm[0] / 60.0, machine.speed_range_rpm[1] / 60.0)
     return make_plan(point.fs_hz, point.frame_samples, velocity_band_hz=point.velocity_band_hz,
                      envelope_band_hz=point.envelope_band_hz, bearing=bearing, orders=point.orders,
-                     speed_range_hz=speed_range_hz)
+                     speed_range_hz=machine.speed_range_hz)
 
 
 # a plan field at fault → the point's key that set it
@@ -1407,11 +1433,6 @@ def _check_plans(cfg: Config) -> dict[str, AnalysisPlan]:
     return plans
 
 
-def _default_envelope_band(p: PointConfig, m: MachineConfig) -> tuple[float, float] | None:
-    speed_hi_hz = (m.speed_rpm if m.speed_rpm is not None else m.speed_range_rpm[1]) / 60.0
-    return envelope_band(p.fs_hz, p.bandwidth_hz, speed_hi_hz)
-
-
 def _resolve_point(p: PointConfig, i: int, cfg: Config) -> PointConfig:
     key = f"points[{i}]"
     machines, sources = {m.id: m for m in cfg.machines}, {s.name: s for s in cfg.sources}
@@ -1423,13 +1444,10 @@ def _resolve_point(p: PointConfig, i: int, cfg: Config) -> PointConfig:
                           f"{', '.join(sources) or 'none'}){_did_you_mean(p.source, list(sources))}")
     if sources[p.source].type == "opcua" and p.node is None:
         raise ConfigError(f"{key}.node", f"source {p.source!r} is OPC UA: the point needs the node id of its array")
-    bandwidth = p.bandwidth_hz or ((0.5, 10000.0) if p.sensor_type == "piezo" else (0.0, 1000.0))
-    r = p.model_copy(update={"sensor": p.sensor or p.id, "bandwidth_hz": bandwidth,
+    r = p.model_copy(update={"sensor": p.sensor or p.id, "bandwidth_hz": p.usable_bandwidth_hz,
                              "frame_samples": p.frame_samples or cfg.analysis.frame_samples,
                              "overlap": cfg.analysis.overlap if p.overlap < 0 else p.overlap})
-    if r.envelope_band_hz is None:
-        r = r.model_copy(update={"envelope_band_hz": _default_envelope_band(r, machines[p.machine])})
-    return r
+    return r.model_copy(update={"envelope_band_hz": r.envelope_band_for(machines[p.machine])})
 
 
 def _connection_of(owner: _ReusesSource, key: str, cfg: Config) -> MqttConnection | None:
@@ -1605,64 +1623,3 @@ def config_to_document(cfg: Config) -> dict[str, Any]:
     the file or variable that holds them): :func:`parse_config` of it gives the same configuration."""
     doc: dict[str, Any] = _ordered_keys(cfg.model_dump(by_alias=True, exclude_none=True))
     return doc
-
-
-def _toml_key(k: str) -> str:
-    return k if re.fullmatch(r"[A-Za-z0-9_-]+", k) else json.dumps(k, ensure_ascii=False)
-
-
-def _toml_value(v: Any) -> str:
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, int):
-        return str(v)
-    if isinstance(v, float):
-        if not math.isfinite(v):
-            raise ValueError(f"cannot write non-finite number {v!r} to TOML")
-        return repr(v)
-    if isinstance(v, str):
-        return json.dumps(v, ensure_ascii=False)
-    if isinstance(v, list | tuple | frozenset | set):
-        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
-    if isinstance(v, Mapping):
-        return "{ " + ", ".join(f"{_toml_key(str(k))} = {_toml_value(x)}" for k, x in v.items()) + " }" if v else "{}"
-    raise TypeError(f"cannot write {type(v).__name__} to TOML")
-
-
-def _is_array_of_tables(v: Any) -> bool:
-    return isinstance(v, list | tuple) and bool(v) and all(isinstance(x, Mapping) for x in v)
-
-
-def _is_header(v: Any, depth: int, in_array: bool) -> bool:
-    """A table gets a ``[header]`` unless it is small and flat and sits inside an array-of-tables entry or deeper
-    (``bearing = { … }``, ``alert = { factor = 3.0 }``)."""
-    if not isinstance(v, Mapping):
-        return _is_array_of_tables(v)
-    flat = all(not isinstance(x, Mapping) and not _is_array_of_tables(x) for x in v.values())
-    return not flat or len(v) > 4 or depth == 0 or (depth == 1 and not in_array)
-
-
-def _emit(lines: list[str], prefix: str, table: Mapping[str, Any], depth: int, array: bool = False) -> None:
-    if prefix:
-        lines.append(f"[[{prefix}]]" if array else f"[{prefix}]")
-    in_array = array or depth > 1
-    for k, v in table.items():
-        if not _is_header(v, depth, in_array):
-            lines.append(f"{_toml_key(str(k))} = {_toml_value(v)}")
-    if prefix:
-        lines.append("")
-    for k, v in table.items():
-        if _is_header(v, depth, in_array):
-            name = f"{prefix}.{_toml_key(str(k))}" if prefix else _toml_key(str(k))
-            if isinstance(v, Mapping):
-                _emit(lines, name, v, depth + 1)
-            else:
-                for item in v:
-                    _emit(lines, name, item, depth + 1, array=True)
-
-
-def dump_toml(doc: Mapping[str, Any]) -> str:
-    """TOML text of a configuration document (tables, arrays of tables, small flat tables inline)."""
-    lines: list[str] = []
-    _emit(lines, "", doc, 0)
-    return "\n".join(lines).rstrip() + "\n"

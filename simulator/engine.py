@@ -31,11 +31,12 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from fractions import Fraction
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import numpy.typing as npt
 
+from edgevib.common.toml_writer import dump_toml
 from edgevib.common.wire import Block
 from edgevib.simulator import models as M
 from edgevib.simulator.scenario import (
@@ -50,13 +51,15 @@ from edgevib.simulator.scenario import (
 )
 from edgevib.simulator.scenario import load_scenario as _load_scenario
 
+if TYPE_CHECKING:
+    from edgevib.daemon.config import MachineConfig, PointConfig, PointLimits
+
 __all__ = [
     "Scenario",
     "ScenarioError",
     "Simulation",
     "list_scenarios",
     "load_scenario",
-    "to_toml",
 ]
 
 F64 = npt.NDArray[np.float64]
@@ -753,70 +756,55 @@ class Simulation:
 
     def daemon_config(self, *, source: Mapping[str, Any], extra: Mapping[str, Any] | None = None,
                       frame_samples: int = 8192, overlap: float = 0.5, limits: bool = False) -> dict[str, Any]:
-        """A daemon configuration for this scenario (config/example-plant.toml's schema).
+        """A daemon configuration for this scenario, built with the daemon's configuration models (so it is
+        checked as the daemon checks it, and sized by the same rules), as a plain TOML-ready document.
 
         ``source`` is the ``[[sources]]`` table (its ``name`` is what points and speed tags refer to);
         ``extra`` adds or replaces top-level tables (e.g. ``[alarms]``, ``[feed]``).  Fixed-speed machines get
         ``speed_rpm``; the others a ``speed_tag`` (MQTT/in-process: ``topic`` = :meth:`speed_topic`; OPC UA:
-        ``node`` = the speed variable's node id), unit r/min.  ``limits`` adds each point's alarm limits
-        (:func:`point_limits`).
+        ``node`` = the speed variable's node id), unit r/min.  A point whose frame would be shorter than its plan
+        accepts gets a longer ``frame_samples`` (a power of two).  ``limits`` adds each point's alarm limits
+        (:func:`point_limits`).  Raises the daemon's ``ConfigError`` for a table the daemon would refuse.
         """
-        src = dict(source)
-        if "name" not in src or "type" not in src:
+        from edgevib.daemon.config import BearingConfig, Config, MachineConfig, PointConfig, SpeedTag, parse_config
+
+        if "name" not in source or "type" not in source:
             raise ValueError("source needs at least 'name' and 'type'")
-        sname = src["name"]
+        sname, opcua = str(source["name"]), source["type"] == "opcua"
         sc = self.scenario
-        machines = []
+        machines: dict[str, MachineConfig] = {}
         for m in sc.machines:
-            entry: dict[str, Any] = {"id": m.machine_id}
-            if m.description:
-                entry["description"] = m.description
-            entry |= {"group": m.group, "support": m.support}
-            if m.speed.fixed:
-                entry["speed_rpm"] = float(m.speed.knots_rpm[0][1])
-            elif not m.speed_tag:
-                pass  # no speed measurement: the daemon estimates the speed from the spectrum
-            elif src["type"] == "opcua":
-                entry["speed_tag"] = {"source": sname, "node": opcua_speed_node(sc, m.machine_id), "unit": "rpm"}
-            else:
-                entry["speed_tag"] = {"source": sname, "topic": self.speed_topic(m.machine_id), "unit": "rpm"}
-            entry["speed_range_rpm"] = [float(v) for v in m.speed_range_rpm]
-            entry["run_threshold_rpm"] = float(m.run_threshold_rpm)
-            machines.append(entry)
+            tag = None if m.speed.fixed or not m.speed_tag else SpeedTag(  # no tag: the daemon estimates the speed
+                source=sname, unit="rpm", **({"node": opcua_speed_node(sc, m.machine_id)} if opcua
+                                            else {"topic": self.speed_topic(m.machine_id)}))
+            machines[m.machine_id] = MachineConfig(
+                id=m.machine_id, **({"description": m.description} if m.description else {}), group=m.group,
+                support=m.support,
+                speed_rpm=float(m.speed.knots_rpm[0][1]) if m.speed.fixed else None, speed_tag=tag,
+                speed_range_rpm=m.speed_range_rpm, run_threshold_rpm=float(m.run_threshold_rpm))
         points = []
         for p in sc.points:
-            e: dict[str, Any] = {"id": p.point_id, "machine": p.machine_id, "axis": p.axis, "source": sname,
-                                 "sensor": p.sensor_id, "fs_hz": float(p.fs_hz), "block_samples": p.block_samples,
-                                 "sensor_type": p.sensor_type}
-            if p.sensitivity_mv_per_g is not None:
-                e["sensitivity_mv_per_g"] = float(p.sensitivity_mv_per_g)
-            e["bandwidth_hz"] = [float(v) for v in p.bandwidth_hz]
-            e["velocity_band_hz"] = [float(v) for v in p.velocity_band_hz]
-            if p.envelope_band_hz is not None:
-                e["envelope_band_hz"] = [float(v) for v in p.envelope_band_hz]
-            need = _frame_need(p, sc.machine(p.machine_id))
-            if need > frame_samples:
-                e["frame_samples"] = 1 << (need - 1).bit_length()
-            if src["type"] == "opcua":
-                e["node"] = opcua_node(sc, p.point_id)
-            if p.bearing is not None:
-                e["bearing"] = {"elements": p.bearing.elements, "ball_diameter_mm": p.bearing.ball_diameter_mm,
-                                "pitch_diameter_mm": p.bearing.pitch_diameter_mm,
-                                "contact_angle_deg": p.bearing.contact_angle_deg}
+            b = p.bearing
+            point = PointConfig(
+                id=p.point_id, machine=p.machine_id, axis=p.axis, source=sname, sensor=p.sensor_id,
+                fs_hz=float(p.fs_hz), block_samples=p.block_samples, sensor_type=p.sensor_type,
+                sensitivity_mv_per_g=p.sensitivity_mv_per_g, bandwidth_hz=p.bandwidth_hz,
+                velocity_band_hz=p.velocity_band_hz, envelope_band_hz=p.envelope_band_hz,
+                node=opcua_node(sc, p.point_id) if opcua else None,
+                bearing=None if b is None else BearingConfig(
+                    elements=b.elements, ball_diameter_mm=b.ball_diameter_mm, pitch_diameter_mm=b.pitch_diameter_mm,
+                    contact_angle_deg=b.contact_angle_deg))
+            machine = machines[p.machine_id]
+            need = point.min_frame_samples(machine)
+            update: dict[str, Any] = {"frame_samples": 1 << (need - 1).bit_length()} if need > frame_samples else {}
             if limits:
-                lim = point_limits(p, sc.machine(p.machine_id))
-                if lim:
-                    e["limits"] = lim
-            points.append(e)
-        doc: dict[str, Any] = {
-            "site": {"name": sc.site},
-            "analysis": {"frame_samples": int(frame_samples), "overlap": float(overlap)},
-            "sources": [src],
-            "machines": machines,
-            "points": points,
-        }
-        for key, value in (extra or {}).items():
-            doc[key] = value
+                update["limits"] = point_limits(point, machine) or None
+            points.append(point.model_copy(update=update) if update else point)
+        cfg = Config.model_validate({
+            "site": {"name": sc.site}, "analysis": {"frame_samples": int(frame_samples), "overlap": float(overlap)},
+            "sources": [dict(source)], "machines": list(machines.values()), "points": points, **(extra or {})})
+        doc: dict[str, Any] = cfg.model_dump(mode="json", by_alias=True, exclude_unset=True, exclude_none=True)
+        parse_config(doc, plans=False)  # references between the tables, as the daemon checks them
         return doc
 
     def daemon_config_toml(self, *, source: Mapping[str, Any], extra: Mapping[str, Any] | None = None,
@@ -834,8 +822,8 @@ class Simulation:
                 f"{FAULT_PATTERN_ALERT_FRACTION:g} x B/C and\n# danger B/C; on points with a bearing and envelope "
                 f"bandwidth, an alert when a defect family stands {ENVELOPE_ALERT_DB:g} dB\n# above the envelope "
                 "floor (demo values: set real limits with a qualified analyst).\n\n")
-        return header + to_toml(self.daemon_config(source=source, extra=extra, frame_samples=frame_samples,
-                                                   overlap=overlap, limits=limits))
+        return header + dump_toml(self.daemon_config(source=source, extra=extra, frame_samples=frame_samples,
+                                                     overlap=overlap, limits=limits))
 
 
 # A defect family "clearly above the floor".  On the CWRU recordings the families that are not the fault reach
@@ -845,16 +833,9 @@ ENVELOPE_ALERT_DB = 20.0
 # Fault-pattern (narrow-band order) limits: alert at this fraction of the ISO B/C boundary, danger at B/C.
 FAULT_PATTERN_INDICATORS = ("imbalance_1x_mm_s", "misalignment_2x_mm_s", "looseness_mm_s")
 FAULT_PATTERN_ALERT_FRACTION = 0.5
-ENVELOPE_MIN_HZ = 2000.0  # envelope analysis needs kHz bandwidth above shaft and mesh lines (FIELD_NOTES §6)
 
 
-def envelope_capable(p: PointSpec) -> bool:
-    """Whether the daemon can give the point envelope indicators: an explicit band, or an acquisition whose
-    usable upper edge (the sensor's, at most fs/2.56, common practice) reaches the kHz range."""
-    return p.envelope_band_hz is not None or min(p.bandwidth_hz[1], p.fs_hz / 2.56) >= ENVELOPE_MIN_HZ
-
-
-def point_limits(p: PointSpec, m: MachineSpec) -> dict[str, Any]:
+def point_limits(p: PointConfig, m: MachineConfig) -> PointLimits | None:
     """A point's ``limits`` table, so that the feed says what kind of fault it sees.
 
     * Where the machine has an ISO group and support: ISO 20816-3 for velocity r.m.s. (alert B/C, danger C/D),
@@ -867,23 +848,18 @@ def point_limits(p: PointSpec, m: MachineSpec) -> dict[str, Any]:
       :data:`ENVELOPE_ALERT_DB` envelope SNR.  Bearing faults get an alert only: an early defect is watched and
       trended, not acted on at once (FIELD_NOTES §7, common practice); danger levels are the analyst's to set.
     """
+    from edgevib.daemon.config import PointLimits
+
     out: dict[str, Any] = {}
     if m.group is not None and m.support is not None:
         out["velocity_rms_mm_s"] = {"rule": "iso"}
         bc = M.ISO_ZONE_BOUNDARIES_MM_S[(m.group, m.support)][1]
         for name in FAULT_PATTERN_INDICATORS:
             out[name] = {"alert": FAULT_PATTERN_ALERT_FRACTION * bc, "danger": bc}
-    if p.bearing is not None and envelope_capable(p):
+    if p.bearing is not None and p.envelope_band_for(m) is not None:  # the daemon's own envelope rule
         for fam in ("bpfo", "bpfi", "bsf", "ftf"):
             out[f"bearing_{fam}_snr_db"] = {"alert": ENVELOPE_ALERT_DB}
-    return out
-
-
-def _frame_need(p: PointSpec, m: MachineSpec) -> int:
-    """Samples a frame needs: two revolutions at the lowest speed, and a resolution of half the velocity band's
-    lower edge."""
-    lo_rpm = m.speed.knots_rpm[0][1] if m.speed.fixed else m.speed_range_rpm[0]
-    return max(math.ceil(2 * 60.0 / lo_rpm * p.fs_hz), math.ceil(2 * p.fs_hz / p.velocity_band_hz[0]))
+    return PointLimits.model_validate(out) if out else None
 
 
 def opcua_node(scenario: Scenario, point_id: str, leaf: str = "samples") -> str:
@@ -894,68 +870,3 @@ def opcua_node(scenario: Scenario, point_id: str, leaf: str = "samples") -> str:
 
 def opcua_speed_node(scenario: Scenario, machine_id: str) -> str:
     return f"ns=2;s={scenario.site}/{machine_id}/speed_rpm"
-
-
-# --------------------------------------------------------------------------------------------- TOML
-
-
-def _toml_key(k: str) -> str:
-    import re
-    return k if re.fullmatch(r"[A-Za-z0-9_-]+", k) else _toml_str(k)
-
-
-def _toml_str(s: str) -> str:
-    import json
-    return json.dumps(s, ensure_ascii=False)
-
-
-def _toml_value(v: Any) -> str:
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, int):
-        return str(v)
-    if isinstance(v, float):
-        if not math.isfinite(v):
-            raise ValueError(f"cannot write non-finite number {v!r} to TOML")
-        return repr(v)
-    if isinstance(v, str):
-        return _toml_str(v)
-    if isinstance(v, list | tuple):
-        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
-    if isinstance(v, Mapping):
-        return "{ " + ", ".join(f"{_toml_key(k)} = {_toml_value(x)}" for k, x in v.items()) + " }"
-    raise TypeError(f"cannot write {type(v).__name__} to TOML")
-
-
-def _is_table(v: Any) -> bool:
-    """A mapping written as a ``[table]``: one that holds tables (flat mappings stay inline, e.g. ``bearing``)."""
-    return isinstance(v, Mapping) and any(isinstance(x, Mapping) or _is_table_array(x) for x in v.values())
-
-
-def _is_table_array(v: Any) -> bool:
-    return isinstance(v, list) and bool(v) and all(isinstance(x, Mapping) for x in v)
-
-
-def _emit(lines: list[str], prefix: str, table: Mapping[str, Any], array: bool = False) -> None:
-    scalars = {k: v for k, v in table.items() if not (_is_table(v) or _is_table_array(v))
-               and not (prefix == "" and isinstance(v, Mapping))}
-    if prefix:
-        lines.append(f"[[{prefix}]]" if array else f"[{prefix}]")
-    for k, v in scalars.items():
-        lines.append(f"{_toml_key(k)} = {_toml_value(v)}")
-    if prefix:
-        lines.append("")
-    for k, v in table.items():
-        name = f"{prefix}.{_toml_key(k)}" if prefix else _toml_key(k)
-        if _is_table_array(v):
-            for item in v:
-                _emit(lines, name, item, array=True)
-        elif _is_table(v) or (prefix == "" and isinstance(v, Mapping)):
-            _emit(lines, name, v)
-
-
-def to_toml(doc: Mapping[str, Any]) -> str:
-    """A small TOML writer for configuration documents (tables, arrays of tables, inline small tables)."""
-    lines: list[str] = []
-    _emit(lines, "", doc)
-    return "\n".join(lines).rstrip() + "\n"

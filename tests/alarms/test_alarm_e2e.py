@@ -70,7 +70,8 @@ def alarm_events(sub: Subscriber) -> list[dict[str, Any]]:
 
 
 def test_progression_through_brokers_and_daemon(tmp_path: Path, mosquitto: Mosquitto) -> None:
-    from edgevib.simulator.engine import Simulation, load_scenario, to_toml
+    from edgevib.common.toml_writer import dump_toml as to_toml
+    from edgevib.simulator.engine import Simulation, load_scenario
     from edgevib.simulator.publishers import MqttPublisher, stream
 
     feed = Mosquitto().start()  # the feed broker is not the ingest broker

@@ -13,8 +13,9 @@ import numpy as np
 import pytest
 from sigtools import machine, point, scenario_doc
 
+from edgevib.common.toml_writer import dump_toml as to_toml
 from edgevib.simulator import models
-from edgevib.simulator.engine import Simulation, list_scenarios, load_scenario, to_toml
+from edgevib.simulator.engine import Simulation, list_scenarios, load_scenario
 from edgevib.simulator.scenario import ScenarioError, parse_scenario
 
 SIMULATOR = Path(__file__).resolve().parents[2] / "simulator"
@@ -29,7 +30,10 @@ def test_simulator_never_imports_pipelines():
             names = [a.name for a in node.names] if isinstance(node, ast.Import) else \
                 [node.module or ""] if isinstance(node, ast.ImportFrom) else []
             assert not any("pipelines" in n for n in names), f"{path.name} imports {names}"
-    code = ("import sys, edgevib.simulator.engine, edgevib.simulator.publishers, edgevib.simulator.cli;"
+    # emitting a configuration goes through the daemon's configuration models, and still loads no pipelines module
+    code = ("import sys, edgevib.simulator.engine as e, edgevib.simulator.publishers, edgevib.simulator.cli;"
+            "e.Simulation(e.load_scenario('demo'), seed=0).daemon_config_toml("
+            "source={'name': 'sim', 'type': 'simulated'});"
             "print(any(m.startswith('edgevib.pipelines') for m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60, check=True)
     assert out.stdout.strip() == "False"
@@ -205,11 +209,11 @@ def test_daemon_config_roundtrip_and_schema(kind):
               "mqtt": {"name": "sim", "type": "mqtt", "url": "mqtt://127.0.0.1:1883",
                        "topics": ["fwb/quarry-lane/+/+/block"]},
               "opcua": {"name": "sim", "type": "opcua", "endpoint": "opc.tcp://127.0.0.1:4840/"}}[kind]
-    doc = sim.daemon_config(source=source, extra={"alarms": {"defaults": {"on_delay_s": 2.0}}}, limits=True)
-    text = sim.daemon_config_toml(source=source, extra={"alarms": {"defaults": {"on_delay_s": 2.0}}})
+    doc = sim.daemon_config(source=source, extra={"alarms": {"on_delay_s": 2.0}}, limits=True)
+    text = sim.daemon_config_toml(source=source, extra={"alarms": {"on_delay_s": 2.0}})
     assert tomllib.loads(text) == doc
     assert "limits" not in sim.daemon_config(source=source)["points"][0]  # limits only on request
-    assert doc["alarms"] == {"defaults": {"on_delay_s": 2.0}}
+    assert doc["alarms"] == {"on_delay_s": 2.0}
     machines = {m["id"]: m for m in doc["machines"]}
     assert machines["P-101"]["speed_rpm"] == 1480.0 and "speed_tag" not in machines["P-101"]
     tag = machines["F-201"]["speed_tag"]

@@ -15,7 +15,7 @@ import pytest
 from scipy.io import wavfile
 from servers import free_port
 
-from edgevib.daemon import wire
+from edgevib.common import wire
 from edgevib.daemon.cli import main
 from edgevib.simulator.engine import Simulation, load_scenario
 from edgevib.simulator.publishers import MqttPublisher, OpcUaPublisher, stream
