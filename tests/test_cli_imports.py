@@ -11,8 +11,9 @@ import pytest
 
 PROBE = ("import sys\nfrom edgevib.daemon.cli import main\n"
          "try:\n    code = main(sys.argv[1:])\nexcept SystemExit as e:\n    code = e.code\n"
+         "roots = ('scipy', 'numpy', 'pydantic', 'paho', 'asyncua')\n"
          "heavy = sorted({m.split('.')[0] if not m.startswith('edgevib.') else '.'.join(m.split('.')[:2])\n"
-         "                for m in sys.modules if m.split('.')[0] in ('scipy', 'numpy', 'pydantic', 'paho', 'asyncua')\n"
+         "                for m in sys.modules if m.split('.')[0] in roots\n"
          "                or m.startswith(('edgevib.simulator', 'edgevib.pipelines'))})\n"
          "print('LOADED', code, *heavy)\n")
 
