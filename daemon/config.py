@@ -107,6 +107,7 @@ __all__ = [
     "parse_config",
     "parse_listen",
     "plan_for",
+    "validate_document",
     "verify_for_run",
 ]
 
@@ -1586,14 +1587,20 @@ def load_config(path: str | os.PathLike[str], overrides: Mapping[str, Any] | Non
     return parse_config(doc, p.resolve().parent, digest=hashlib.sha256(data).hexdigest()[:16], plans=plans)
 
 
+def validate_document(doc: Mapping[str, Any]) -> Config:
+    """The document checked table by table (types, ranges, each table's own rules), not yet resolved: references
+    between tables, defaults from other tables, files and plans are :func:`parse_config`'s.  Raises ConfigError."""
+    try:
+        return Config.model_validate(doc)
+    except ValidationError as exc:
+        raise _translate(exc) from None
+
+
 def parse_config(doc: Mapping[str, Any], base_dir: str | os.PathLike[str] = ".", digest: str = "", *,
                  plans: bool = True) -> Config:
     """Validate a parsed TOML document; relative file paths resolve against ``base_dir``.  ``plans=False`` skips
     the analysis-plan and alarm-limit checks that need the numerical core."""
-    try:
-        cfg = Config.model_validate(doc)
-    except ValidationError as exc:
-        raise _translate(exc) from None
+    cfg = validate_document(doc)
     with _collect_deferred() as deferred:
         cfg = _resolve(cfg, Path(base_dir), digest)
     cfg._deferred = tuple(deferred)

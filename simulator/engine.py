@@ -766,7 +766,14 @@ class Simulation:
         accepts gets a longer ``frame_samples`` (a power of two).  ``limits`` adds each point's alarm limits
         (:func:`point_limits`).  Raises the daemon's ``ConfigError`` for a table the daemon would refuse.
         """
-        from edgevib.daemon.config import BearingConfig, Config, MachineConfig, PointConfig, SpeedTag, parse_config
+        from edgevib.daemon.config import (
+            BearingConfig,
+            MachineConfig,
+            PointConfig,
+            SpeedTag,
+            parse_config,
+            validate_document,
+        )
 
         if "name" not in source or "type" not in source:
             raise ValueError("source needs at least 'name' and 'type'")
@@ -800,7 +807,7 @@ class Simulation:
             if limits:
                 update["limits"] = point_limits(point, machine) or None
             points.append(point.model_copy(update=update) if update else point)
-        cfg = Config.model_validate({
+        cfg = validate_document({
             "site": {"name": sc.site}, "analysis": {"frame_samples": int(frame_samples), "overlap": float(overlap)},
             "sources": [dict(source)], "machines": list(machines.values()), "points": points, **(extra or {})})
         doc: dict[str, Any] = cfg.model_dump(mode="json", by_alias=True, exclude_unset=True, exclude_none=True)

@@ -280,3 +280,15 @@ def test_bad_times_and_seed_are_refused():
     with pytest.raises(ValueError, match="seed"):
         Simulation(load_scenario("mechanical"), seed=-1)
     assert sim.blocks_until(-5.0) == []
+
+
+def test_emitted_configuration_is_checked_as_the_daemon_checks_it():
+    from edgevib.daemon.interfaces import ConfigError
+
+    sim = Simulation(load_scenario("demo"), seed=0, t0_ns=0)
+    with pytest.raises(ConfigError) as info:  # an MQTT source needs its topic filters
+        sim.daemon_config(source={"name": "s", "type": "mqtt", "url": "mqtt://127.0.0.1:1883"})
+    assert info.value.path == "sources[0].topics"
+    with pytest.raises(ConfigError) as info:
+        sim.daemon_config(source={"name": "sim", "type": "simulated"}, extra={"alarms": {"deadband": 2.0}})
+    assert info.value.path == "alarms.deadband" and "out of range" in info.value.problem

@@ -159,7 +159,7 @@ def test_machine_state_truth_of_fixed_and_stopping_machines() -> None:
     fixed = Simulation(load_scenario("sensor-faults"), seed=0, t0_ns=0)
     assert fixed.machine_state_timeline("M-301") == [(0.0, "running")]
     # the fan without a speed tag gets none in the emitted configuration (the daemon estimates its speed)
-    doc = sim.daemon_config(source={"name": "s", "type": "mqtt", "url": "mqtt://127.0.0.1:1883"})
+    doc = sim.daemon_config(source={"name": "s", "type": "mqtt", "url": "mqtt://127.0.0.1:1883", "topics": ["x/#"]})
     fan = next(m for m in doc["machines"] if m["id"] == "F-403")
     assert "speed_tag" not in fan and "speed_rpm" not in fan
     with pytest.raises(TypeError, match="unknown machine-state parameter"):
