@@ -223,10 +223,11 @@ class Daemon:
     ----------
     config : the validated configuration.
     registry : Prometheus registry for the metrics sink (a fresh one in tests); ``None`` makes a private one.
-    metrics_listen : ``(host, port)`` overriding ``[metrics] listen`` (port 0 picks a free port).
+    metrics_listen : ``(host, port)`` overriding ``[metrics] listen`` (port 0 picks a free port): the HTTP listener of
+        ``/metrics``, the health probes, the view and its API.
     analyze : the analysis function (defaults to ``edgevib.pipelines.analysis.analyze_frames``).
     sources : ready-made sources replacing those built from the configuration (tests).
-    serve_metrics : start the HTTP listener (the collector is registered either way).
+    serve_metrics : bind the HTTP listener (the collector is registered either way).
     """
 
     def __init__(self, config: Config, *, registry: Any = None, metrics_listen: tuple[str, int] | None = None,
@@ -264,12 +265,14 @@ class Daemon:
         self.rlog = RateLimitedLogger(log, interval_s=10.0)
         self._build_points(config, keep={})
         from edgevib.daemon.sinks.prometheus import PrometheusSink
+        from edgevib.daemon.web.listener import HttpListener
 
         host, port = metrics_listen or (config.metrics.host, config.metrics.port)
-        self.metrics = PrometheusSink(
-            site=config.site.name, points=config.points, stats=self.stats, registry=registry, host=host, port=port,
-            ready=self.readiness, tls_cert_file=config.metrics.tls_cert_file, tls_key_file=config.metrics.tls_key_file,
-            tls_client_ca_file=config.metrics.tls_client_ca_file, clock_ns=clock_ns, serve=serve_metrics)
+        self.http = HttpListener(host, port, tls_cert_file=config.metrics.tls_cert_file,
+                                 tls_key_file=config.metrics.tls_key_file,
+                                 tls_client_ca_file=config.metrics.tls_client_ca_file, serve=serve_metrics)
+        self.metrics = PrometheusSink(site=config.site.name, points=config.points, stats=self.stats,
+                                      registry=registry, http=self.http, ready=self.readiness, clock_ns=clock_ns)
         self.add_sink(self.metrics)
         self._reconfigurable.append(self.metrics)
         self._add_configured_sinks(config)
@@ -348,12 +351,13 @@ class Daemon:
     # ------------------------------------------------------------------------------------------ lifecycle
 
     async def start(self) -> None:
-        """Start sinks (the metrics listener first), the scheduler and every source."""
+        """Start the HTTP listener, the sinks, the scheduler and every source."""
         loop = asyncio.get_running_loop()
         self._executor = ThreadPoolExecutor(max_workers=self.config.analysis.workers,
                                             thread_name_prefix="edgevib-analysis")
         started: list[FrameSink] = []
         try:
+            await self.http.start()  # first: a taken port stops the start before anything else opens
             for sink in self.sinks:
                 await sink.start()
                 started.append(sink)
@@ -361,6 +365,8 @@ class Daemon:
             for sink in reversed(started):
                 with contextlib.suppress(Exception):
                     await sink.stop()
+            with contextlib.suppress(Exception):
+                await self.http.stop()
             self._executor.shutdown(wait=False, cancel_futures=True)
             raise
         self._channels = [SinkChannel(sink, self.stats, self.rlog, self._wake.set, lossless=id(sink) in self._lossless,
@@ -423,6 +429,10 @@ class Daemon:
                 await asyncio.wait_for(sink.stop(), max(0.1, deadline - time.monotonic()))
             except Exception as exc:
                 log.error("sink did not stop cleanly", sink=type(sink).__name__, error=repr(exc))
+        try:
+            await asyncio.wait_for(self.http.stop(), max(0.1, deadline - time.monotonic()) + 3.0)
+        except Exception as exc:
+            log.error("HTTP listener did not stop cleanly", error=repr(exc))
         if self._executor is not None:
             self._executor.shutdown(wait=False, cancel_futures=True)
         log.info("daemon stopped")

@@ -1,10 +1,10 @@
 """Prometheus exposition of every point's latest indicators and the daemon's self-metrics, plus health probes.
 
-One HTTP listener serves ``/metrics`` (text or OpenMetrics by ``Accept``), ``/healthz`` (200 while the process
-serves) and ``/readyz`` (200 when every configured source is connected, else 503 with the missing ones).  A custom
-collector yields fresh metric families from a snapshot on each scrape, on an injected
-:class:`~prometheus_client.CollectorRegistry` (tests use a fresh one).  Optional TLS, with client-certificate
-authentication when a client CA is given, for listeners bound beyond loopback.
+Routes on the daemon's HTTP listener (:mod:`edgevib.daemon.web.listener`, which carries the TLS and
+client-certificate options): ``/metrics`` (text or OpenMetrics by ``Accept``; encoded in a worker thread, never on
+the event loop), ``/healthz`` (200 while the process serves) and ``/readyz`` (200 when every configured source is
+connected, else 503 with the missing ones).  A custom collector yields fresh metric families from a snapshot on
+each scrape, on an injected :class:`~prometheus_client.CollectorRegistry` (tests use a fresh one).
 
 Indicators are in base units (m/s, m/s², Hz, s) with labels ``site``, ``machine``, ``point``, ``axis``; an
 indicator that is unavailable for a frame (no speed known, no envelope band) is absent, never a made-up number.
@@ -15,14 +15,10 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import math
-import socket
-import ssl
-import threading
 import time
 from collections.abc import Callable, Iterable, Iterator, Mapping
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
-from typing import Any
 
+from aiohttp import web
 from prometheus_client import CollectorRegistry
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, HistogramMetricFamily, Metric
 from prometheus_client.exposition import choose_encoder
@@ -34,8 +30,9 @@ from edgevib.daemon.indicators import REGISTRY, Indicator, Si, meaning
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.logs import get_logger
 from edgevib.pipelines.machine_state import MACHINE_STATES
+from edgevib.daemon.web.listener import HttpListener
 
-__all__ = ["PROMETHEUS", "IndicatorCollector", "MetricsServer", "PrometheusSink"]
+__all__ = ["PROMETHEUS", "IndicatorCollector", "PrometheusSink"]
 
 PROMETHEUS: list[tuple[Indicator, Si]] = [(i, i.si) for i in REGISTRY if i.prometheus is not None and i.si is not None]
 """The registry's indicators exposed as gauges (``edgevib_<prometheus>_<SI unit>``)."""
@@ -144,86 +141,16 @@ class IndicatorCollector:
                 reconnects, info]
 
 
-class MetricsServer:
-    """``/metrics``, ``/healthz`` and ``/readyz`` on one threaded HTTP listener (optionally TLS)."""
-
-    def __init__(self, registry: CollectorRegistry, host: str, port: int, ready: Callable[[], tuple[bool, str]],
-                 tls_cert_file: str | None = None, tls_key_file: str | None = None,
-                 tls_client_ca_file: str | None = None) -> None:
-        self.registry = registry
-        self.ready = ready
-        server = self
-
-        class Handler(BaseHTTPRequestHandler):
-            protocol_version = "HTTP/1.1"
-
-            def do_GET(self) -> None:
-                path = self.path.split("?", 1)[0]
-                try:
-                    if path == "/metrics":
-                        encoder, ctype = choose_encoder(self.headers.get("Accept", ""))
-                        self._send(200, encoder(server.registry), ctype)
-                    elif path == "/healthz":
-                        self._send(200, b"ok\n")
-                    elif path == "/readyz":
-                        ok, detail = server.ready()
-                        self._send(200 if ok else 503, (("ready" if ok else "not ready") + f": {detail}\n").encode())
-                    else:
-                        self._send(404, b"not found; try /metrics, /healthz or /readyz\n")
-                except Exception as exc:  # a failing part never kills the listener
-                    log.error("metrics request failed", path=path, error=repr(exc))
-                    with contextlib.suppress(Exception):
-                        self._send(500, b"internal error\n")
-
-            def _send(self, code: int, body: bytes, ctype: str = "text/plain; charset=utf-8") -> None:
-                self.send_response(code)
-                self.send_header("Content-Type", ctype)
-                self.send_header("Content-Length", str(len(body)))
-                self.end_headers()
-                self.wfile.write(body)
-
-            def log_message(self, format: str, *args: Any) -> None:
-                pass
-
-        class Server(ThreadingHTTPServer):
-            daemon_threads = True
-            allow_reuse_address = True
-            address_family = socket.AF_INET6 if ":" in host else socket.AF_INET
-
-        self.httpd = Server((host, port), Handler)
-        if tls_cert_file is not None:
-            ctx = ssl.SSLContext(ssl.PROTOCOL_TLS_SERVER)
-            ctx.minimum_version = ssl.TLSVersion.TLSv1_2
-            ctx.load_cert_chain(tls_cert_file, tls_key_file)
-            if tls_client_ca_file is not None:
-                ctx.verify_mode = ssl.CERT_REQUIRED
-                ctx.load_verify_locations(tls_client_ca_file)
-            self.httpd.socket = ctx.wrap_socket(self.httpd.socket, server_side=True, do_handshake_on_connect=False)
-        self.host = host
-        self.port = int(self.httpd.server_address[1])
-        self.tls = tls_cert_file is not None
-        self._thread = threading.Thread(target=self.httpd.serve_forever, kwargs={"poll_interval": 0.2},
-                                        name="edgevib-metrics", daemon=True)
-
-    @property
-    def url(self) -> str:
-        host = f"[{self.host}]" if ":" in self.host else self.host
-        return f"{'https' if self.tls else 'http'}://{host}:{self.port}/metrics"
-
-    def start(self) -> None:
-        self._thread.start()
-
-    def stop(self) -> None:
-        self.httpd.shutdown()
-        self.httpd.server_close()
-        self._thread.join(timeout=5)
-
-
 class PrometheusSink:
-    """The :class:`~edgevib.daemon.interfaces.FrameSink` behind ``/metrics`` (keeps the latest frame per point)."""
+    """The :class:`~edgevib.daemon.interfaces.FrameSink` behind ``/metrics`` (keeps the latest frame per point).
+
+    ``http`` is the daemon's listener (the sink adds its routes to it; whoever owns it starts it); without one the
+    sink makes, starts and stops its own on ``host:port`` with the TLS options given.
+    """
 
     def __init__(self, *, site: str, points: Iterable[PointConfig], stats: Stats,
-                 registry: CollectorRegistry | None = None, host: str = "127.0.0.1", port: int = 9851,
+                 registry: CollectorRegistry | None = None, http: HttpListener | None = None,
+                 host: str = "127.0.0.1", port: int = 9851,
                  ready: Callable[[], tuple[bool, str]] | None = None, tls_cert_file: str | None = None,
                  tls_key_file: str | None = None, tls_client_ca_file: str | None = None,
                  clock_ns: Callable[[], int] = time.time_ns, serve: bool = True) -> None:
@@ -236,9 +163,13 @@ class PrometheusSink:
         self.set_points(points)
         self.collector = IndicatorCollector(site, stats, self.latest)
         self._ready = ready or (lambda: (True, "no sources"))
-        self._serve = serve
-        self._server_args = (host, port, tls_cert_file, tls_key_file, tls_client_ca_file)
-        self.server: MetricsServer | None = None
+        self._own_listener = http is None
+        self.server = http if http is not None else HttpListener(
+            host, port, tls_cert_file=tls_cert_file, tls_key_file=tls_key_file,
+            tls_client_ca_file=tls_client_ca_file, serve=serve)
+        self.server.get("/metrics", self._metrics)
+        self.server.get("/healthz", self._healthz)
+        self.server.get("/readyz", self._readyz)
 
     async def reconfigure(self, config: Config) -> None:
         """After a reload: the site label and the configured points (the listener stays)."""
@@ -253,15 +184,29 @@ class PrometheusSink:
 
     @property
     def url(self) -> str | None:
-        return self.server.url if self.server is not None else None
+        """The ``/metrics`` URL while the listener serves, else ``None``."""
+        return self.server.base_url + "/metrics" if self.server.running else None
+
+    async def _metrics(self, request: web.Request) -> web.Response:
+        encoder, ctype = choose_encoder(request.headers.get("Accept", ""))
+        body = await asyncio.to_thread(encoder, self.registry)  # collectors take locks and copy: off the loop
+        return web.Response(body=body, headers={"Content-Type": ctype})
+
+    async def _healthz(self, _request: web.Request) -> web.Response:
+        return web.Response(text="ok\n")
+
+    async def _readyz(self, _request: web.Request) -> web.Response:
+        ok, detail = self._ready()
+        return web.Response(status=200 if ok else 503, text=("ready" if ok else "not ready") + f": {detail}\n")
 
     async def start(self) -> None:
         self.registry.register(self.collector)
-        if self._serve:
-            host, port, cert, key, ca = self._server_args
-            self.server = MetricsServer(self.registry, host, port, self._ready, cert, key, ca)
-            self.server.start()
-            log.info("metrics listener up", url=self.server.url)
+        if self._own_listener:
+            try:
+                await self.server.start()
+            except BaseException:
+                self.registry.unregister(self.collector)
+                raise
 
     async def on_frames(self, results: list[FrameResult]) -> None:
         now = self.clock_ns()
@@ -273,8 +218,7 @@ class PrometheusSink:
             self.stats.latency.observe((now - r.received_ns) / 1e9)
 
     async def stop(self) -> None:
-        if self.server is not None:
-            await asyncio.to_thread(self.server.stop)
-            self.server = None
+        if self._own_listener:
+            await self.server.stop()
         with contextlib.suppress(KeyError):
             self.registry.unregister(self.collector)
