@@ -53,7 +53,7 @@ from collections import deque
 from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
-from typing import Any, assert_never
+from typing import TYPE_CHECKING, Any, assert_never
 
 import numpy as np
 import numpy.typing as npt
@@ -82,6 +82,9 @@ from edgevib.daemon.machine_state import MachineTracker
 from edgevib.daemon.sensor_health import HealthError, batch_health
 from edgevib.pipelines.health import HealthSpec, SensorHealth
 from edgevib.pipelines.types import AnalysisPlan, FrameIndicators, PipelineError
+
+if TYPE_CHECKING:
+    from edgevib.daemon.web.api import ViewService
 
 __all__ = ["LOSSLESS_BACKLOG", "SINK_BACKLOG_PER_POINT", "AnalyzeFn", "Daemon", "SinkChannel", "run"]
 
@@ -275,6 +278,17 @@ class Daemon:
                                       registry=registry, http=self.http, ready=self.readiness, clock_ns=clock_ns)
         self.add_sink(self.metrics)
         self._reconfigurable.append(self.metrics)
+        self.view: ViewService | None = None
+        if config.view.enabled:
+            from edgevib.daemon.web.actions import Actions
+            from edgevib.daemon.web.api import ViewService
+
+            self.view = ViewService(self, self.http, recent_capacity=config.view.recent_values,
+                                    recent_interval_s=config.view.recent_interval_s,
+                                    actions=Actions(config.view, client_certificates=self.http.client_certificates),
+                                    clock_ns=clock_ns)
+            self.add_sink(self.view)
+            self._reconfigurable.append(self.view)
         self._add_configured_sinks(config)
 
     # ------------------------------------------------------------------------------------------ set-up

@@ -96,6 +96,7 @@ __all__ = [
     "SpeedTag",
     "TrendConfig",
     "TrendLimit",
+    "ViewConfig",
     "WebhookConfig",
     "check_id",
     "config_to_document",
@@ -372,6 +373,30 @@ class MetricsConfig(_Table):
     @property
     def port(self) -> int:
         return parse_listen(self.listen)[1]
+
+
+class ViewConfig(_WithSecrets):
+    """``[view]``: the page and JSON API on the metrics listener; acknowledging/shelving from the page only when
+    ``actions`` is on and a caller authenticates (a client certificate, or a token of ``token_file``/``_env``)."""
+
+    _SECRETS = ("token",)
+    enabled: Bool = True
+    actions: Bool = False
+    token_file: Text | None = None
+    token_env: Text | None = None
+    recent_values: Int = Field(720, ge=10, le=100_000)
+    recent_interval_s: Float = Field(5.0, ge=0.0, le=3600.0)
+
+    @model_validator(mode="after")
+    def _view(self) -> ViewConfig:
+        if self.actions and not self.enabled:
+            raise _Problem("actions", "actions need the view: [view] enabled = true")
+        return self
+
+    @property
+    def token(self) -> Secret | None:
+        """The operators' tokens (``NAME:TOKEN`` lines)."""
+        return self._secret("token")
 
 
 class AnalysisConfig(_Table):
@@ -1055,6 +1080,7 @@ class Config(_Table):
     logging: LoggingConfig = Field(default_factory=LoggingConfig)
     metrics: MetricsConfig = Field(default_factory=MetricsConfig)
     analysis: AnalysisConfig = Field(default_factory=AnalysisConfig)
+    view: ViewConfig = Field(default_factory=ViewConfig)
     sources: tuple[SourceConfig, ...] = ()
     machines: tuple[MachineConfig, ...] = ()
     all_points: tuple[PointConfig, ...] = Field((), alias="points", max_length=MAX_POINTS)
@@ -1504,6 +1530,10 @@ def _resolve_machines(cfg: Config) -> tuple[MachineConfig, ...]:
 
 def _resolve(cfg: Config, base: Path, digest: str) -> Config:
     cfg = _files(cfg, "", base)  # type: ignore[assignment]
+    if cfg.view.actions and cfg.view.token is None and cfg.metrics.tls_client_ca_file is None:
+        raise ConfigError("view.actions", "acknowledging and shelving from the page need authentication: set "
+                          "[view] token_file (or token_env), or require client certificates with [metrics] "
+                          "tls_client_ca_file")
     state_dir = _resolve_path(cfg.site.state_dir, base, "site.state_dir")
     site = cfg.site.model_copy(update={"state_dir": state_dir})
     cfg = cfg.model_copy(update={"site": site})

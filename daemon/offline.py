@@ -169,6 +169,8 @@ def configure_analyze(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--group", metavar="1|2", help="ISO 20816-3 machine group (1: > 300 kW, 2: 15–300 kW)")
     parser.add_argument("--support", metavar="rigid|flexible", help="ISO 20816-3 support")
     parser.add_argument("--json", action="store_true", help="print one JSON object")
+    parser.add_argument("--report", metavar="OUT.html", type=Path,
+                        help="also write a self-contained HTML report (spectrum, envelope, waveform, indicators)")
 
 
 def _fail(command: str, message: str) -> int:
@@ -413,7 +415,44 @@ def _analyze(args: argparse.Namespace) -> tuple[dict[str, Any], list[str]]:
         result["iso_group"] = group
         result["iso_support"] = args.support
         result["iso_boundaries_mm_s"] = list(zone_boundaries_mm_s(group, args.support))
+    if getattr(args, "report", None) is not None:
+        _write_report(args.report, result, x_g, fs, plan, frame)
     return result, warnings
+
+
+def _write_report(out: Path, result: dict[str, Any], x_g: npt.NDArray[np.float64], fs: float, plan: Any,
+                  frame: FrameResult) -> None:
+    """``--report``: the recording's panels in one self-contained HTML file."""
+    from edgevib.daemon.web.api import indicator_rows
+    from edgevib.daemon.web.panels import envelope_panel, spectrum_panel, waveform_panel
+    from edgevib.daemon.web.report import build_report, write_report
+
+    if out.is_dir():
+        raise InputError(f"--report {out} is a directory; give a file name such as report.html")
+    if not out.parent.is_dir():
+        raise InputError(f"--report {out}: folder {out.parent} does not exist")
+    ind = frame.indicators
+    spectrum = spectrum_panel(x_g, fs, plan, ind.shaft_hz)
+    envelope = envelope_panel(x_g, fs, plan, ind.shaft_hz, ind.envelope)
+    waveform = waveform_panel(x_g, fs)
+    rows = [(row["name"], row["value"], row["unit"]) for row in indicator_rows(frame)
+            if row["kind"] != "limit" and row["name"] != "iso_zone"]
+    if result.get("iso_zone") is not None:
+        rows.append(("iso_zone", result["iso_zone"], "1"))
+    meta = {"file": result["file"], "signal": result["signal"], "sample rate (Hz)": fs,
+            "samples": result["n_samples"], "duration (s)": result["duration_s"],
+            "shaft speed (r/min)": None if ind.shaft_hz is None else ind.shaft_hz * 60,
+            "speed from": result["shaft_source"],
+            "velocity band (Hz)": "–".join(f"{b:g}" for b in plan.velocity_band_hz),
+            "envelope band (Hz)": "–".join(f"{b:g}" for b in plan.envelope_band_hz) if plan.envelope_band_hz
+            else "none"}
+    text = build_report(title=Path(result["file"]).name, meta=meta, indicators=rows, spectrum=spectrum,
+                        envelope=envelope, waveform=waveform,
+                        notes=["The record is analysed as one frame.", *result.get("notes", [])])
+    try:
+        write_report(out, text)
+    except OSError as exc:
+        raise InputError(f"cannot write --report {out}: {exc.strerror or exc}") from None
 
 
 def _fmt(value: float | None, spec: str, unit: str = "") -> str:

@@ -238,10 +238,15 @@ def configure_demo(parser: argparse.ArgumentParser) -> None:
                         "port 0 picks a free one)")
     parser.add_argument("--rate", type=float, default=1.0, help="simulation speed relative to real time")
     parser.add_argument("--seed", type=int, default=0, help="simulator seed")
+    parser.add_argument("--view-token-file", type=Path, metavar="FILE",
+                        help="let holders of a token in FILE acknowledge and shelve alarms from the view "
+                        "(NAME:TOKEN lines; default: the view is read-only)")
 
 
-def demo_config(rate: float = 1.0, seed: int = 0, scenario: str = "demo", state_dir: str | None = None) -> Config:
-    """The daemon configuration of the simulator's demo scenario, fed in-process (state in ``state_dir``)."""
+def demo_config(rate: float = 1.0, seed: int = 0, scenario: str = "demo", state_dir: str | None = None,
+                view: dict[str, Any] | None = None) -> Config:
+    """The daemon configuration of the simulator's demo scenario, fed in-process (state in ``state_dir``;
+    ``view`` is its ``[view]`` table)."""
     from edgevib.simulator.engine import Simulation, load_scenario
 
     sim = Simulation(load_scenario(scenario), seed=seed)
@@ -249,6 +254,8 @@ def demo_config(rate: float = 1.0, seed: int = 0, scenario: str = "demo", state_
                                     "rate": rate}, limits=True)  # the limits of config/demo.toml
     if state_dir is not None:
         doc.setdefault("site", {})["state_dir"] = state_dir
+    if view is not None:
+        doc["view"] = dict(view)
     return parse_config(doc, ".")
 
 
@@ -293,8 +300,10 @@ def render_table(cfg: Config, latest: dict[str, FrameResult], state_text: Callab
 def run_demo(args: argparse.Namespace) -> int:
     configure_logging("warning", "auto", stream=sys.stderr)
     with tempfile.TemporaryDirectory(prefix="edgevib-demo-") as state_dir:  # the demo leaves no state behind
+        token_file = getattr(args, "view_token_file", None)
+        view = None if token_file is None else {"actions": True, "token_file": str(token_file.resolve())}
         try:
-            cfg = demo_config(rate=args.rate, seed=args.seed, state_dir=state_dir)
+            cfg = demo_config(rate=args.rate, seed=args.seed, state_dir=state_dir, view=view)
         except ConfigError as exc:
             print(f"edgevib demo: {exc}", file=sys.stderr)
             return 2
@@ -321,15 +330,16 @@ async def _demo(cfg: Config, listen: tuple[str, int], duration_s: float | None, 
     shown: dict[str, int] = {}
 
     def started(daemon: Any) -> None:
+        view = f"view at {daemon.http.base_url}/ ; " if daemon.view is not None else ""
         print(f"edgevib demo: simulated pump station '{cfg.site.name}', {len(cfg.points)} points; "
-              f"metrics at {daemon.metrics.url}  (Ctrl-C stops)", file=out, flush=True)
+              f"{view}metrics at {daemon.metrics.url}  (Ctrl-C stops)", file=out, flush=True)
         print("edgevib monitors and advises; it is not a machinery protection system.", file=out, flush=True)
         asyncio.get_running_loop().create_task(table(daemon))
 
     def show(daemon: Any) -> None:
         if tty:
-            title = (f"edgevib demo  {cfg.site.name}  {time.strftime('%H:%M:%S')}  metrics "
-                     f"{daemon.metrics.url}  (Ctrl-C stops; advisory only, not a protection system)\n\n")
+            title = (f"edgevib demo  {cfg.site.name}  {time.strftime('%H:%M:%S')}  view {daemon.http.base_url}/"
+                     f"  metrics {daemon.metrics.url}  (Ctrl-C stops; advisory only, not a protection system)\n\n")
             out.write("\x1b[H\x1b[J" + title + render_table(cfg, daemon.latest, daemon.state_text, True) + "\n")
             out.flush()
         else:

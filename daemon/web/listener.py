@@ -11,6 +11,7 @@ bodies are limited to :data:`MAX_BODY_BYTES`.  Routes are added by their owners 
 from __future__ import annotations
 
 import asyncio
+import json
 import ssl
 from collections.abc import Awaitable, Callable
 
@@ -91,11 +92,7 @@ class HttpListener:
         try:
             response = await handler(request)
         except web.HTTPException as exc:
-            if exc.status == 404 and not request.path.startswith("/api/"):
-                exc.text = f"not found; try / (the view), {', '.join(self.hints)}\n"
-            response = exc
-            if exc.status >= 400 and exc.content_type == "application/octet-stream":
-                exc.content_type = "text/plain"
+            response = self._error(request, exc)
         except asyncio.CancelledError:
             raise
         except Exception as exc:  # a failing part never kills the listener
@@ -105,6 +102,19 @@ class HttpListener:
             response.headers.setdefault("X-Content-Type-Options", "nosniff")
             response.headers.setdefault("Referrer-Policy", "no-referrer")
         return response
+
+    def _error(self, request: web.Request, exc: web.HTTPException) -> web.Response:
+        """An HTTP error as a response: JSON ``{"error", "status"}`` under ``/api/``, plain text elsewhere."""
+        if exc.content_type == "application/json" and exc.text:
+            return web.Response(status=exc.status, text=exc.text, content_type="application/json")
+        message = exc.text or exc.reason
+        if exc.status == 404:
+            message = "not found" if request.path.startswith("/api/") else \
+                f"not found; try / (the view), {', '.join(self.hints)}"
+        if request.path.startswith("/api/"):
+            body = json.dumps({"error": message.strip().removeprefix(f"{exc.status}: "), "status": exc.status})
+            return web.Response(status=exc.status, text=body, content_type="application/json")
+        return web.Response(status=exc.status, text=message.rstrip("\n") + "\n")
 
     # ------------------------------------------------------------------------------------------ lifecycle
 

@@ -1,0 +1,315 @@
+"""The view's panels of one frame: amplitude spectrum with order and defect-frequency markers, envelope spectrum
+with family markers (harmonics, sidebands, verdicts), and the waveform — as JSON-ready documents.
+
+Shared by the daemon's API (computed in a worker thread, cached per frame) and the offline HTML report.  Only
+arithmetic here: no I/O, clocks or logging.  The numbers come from the numerical core's own functions, so a marker
+reads what the daemon's indicators read for the same frame:
+
+* **Spectrum scaling**: the frame (mean removed) is transformed once; the periodic Hann window is applied as the
+  exact three-tap convolution (:func:`edgevib.pipelines.spectrum.hann_lines`); a line reads the **r.m.s.** of a
+  sine centred on it, ``|Xw[k]| · 2/Σw / √2`` with ``Σw = N/2``.  Velocity lines integrate the unwindowed lines by
+  ``gₙ·1000/(jω)`` before the window (as the pipeline does), in mm/s r.m.s.; lines below the velocity band's low
+  edge are omitted (``null``), where integration amplifies drift and gravity.
+* **Order markers** read the velocity r.m.s. of the three lines around the largest line within the order's
+  tolerance (the pipeline's ``order_amplitudes_mm_s``: a tone between two lines still reads its r.m.s.), and the
+  acceleration r.m.s. over the same three lines.
+* **Envelope spectrum**: :func:`edgevib.pipelines.envelope.envelope_amplitude_spectrum` (peak reading, g) over the
+  point's demodulation band; each family's harmonics are searched within the slip tolerance with the pipeline's
+  ``search_families`` (level over the local median floor in dB).
+* Large spectra are reduced by **peak hold** (each group of lines shows its largest value at its first line's
+  frequency), so no peak is lost; markers always carry the exact values.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+
+from edgevib.pipelines import _fft
+from edgevib.pipelines.analysis import FAMILIES, order_key
+from edgevib.pipelines.bearings import defect_frequencies
+from edgevib.pipelines.envelope import HARMONIC_SNR_DB, envelope_amplitude_spectrum, search_families
+from edgevib.pipelines.spectrum import (
+    hann_lines,
+    integration_coefficients,
+    order_amplitudes_mm_s,
+    power3,
+    window_argmax,
+)
+from edgevib.pipelines.types import AnalysisPlan, FamilyResult, PipelineError
+
+__all__ = [
+    "DEFAULT_MAX_LINES",
+    "DEFAULT_MAX_POINTS",
+    "FAMILY_LABELS",
+    "MAX_LINES",
+    "MAX_POINTS",
+    "PanelError",
+    "envelope_panel",
+    "family_verdict",
+    "spectrum_panel",
+    "waveform_panel",
+]
+
+FloatArray = npt.NDArray[np.float64]
+
+DEFAULT_MAX_LINES = 4096
+MAX_LINES = 16384
+DEFAULT_MAX_POINTS = 4096
+MAX_POINTS = 32768
+MARKER_ORDERS = (0.5, 1.0, 1.5, 2.0, 2.5, 3.0, 4.0, 5.0, 6.0, 7.0, 8.0, 9.0, 10.0)
+ANTI_ALIAS_RATIO = 2.56  # usable band of an anti-aliased acquisition: fs/2.56 (common practice)
+FAMILY_LABELS = {"ftf": "FTF", "bpfo": "BPFO", "bpfi": "BPFI", "bsf": "2×BSF"}
+FAMILY_MEANING = {"ftf": "cage", "bpfo": "outer race", "bpfi": "inner race", "bsf": "rolling element"}
+VERDICT_MIN_HARMONICS = 2
+VERDICT_RULE = (f"detected: the fundamental stands ≥ {HARMONIC_SNR_DB:g} dB over its local floor and at least "
+                f"{VERDICT_MIN_HARMONICS} harmonics do; possible: the fundamental alone; otherwise not detected "
+                "(common practice)")
+
+
+class PanelError(PipelineError):
+    """A panel that cannot be drawn from this frame (bad request parameters, no band, too few samples)."""
+
+
+def _frame(x_g: npt.ArrayLike, fs_hz: float) -> FloatArray:
+    x = np.asarray(x_g, dtype=np.float64)
+    if x.ndim != 1 or x.size < 64:
+        raise PanelError(f"a frame is a 1-D record of at least 64 samples, got shape {x.shape}")
+    if not math.isfinite(fs_hz) or fs_hz <= 0:
+        raise PanelError(f"sample rate {fs_hz!r} Hz must be finite and > 0")
+    if not np.isfinite(x).all():
+        raise PanelError(f"{int(np.count_nonzero(~np.isfinite(x)))} samples are NaN or infinite")
+    return x
+
+
+def _limit(name: str, value: int | None, default: int, hi: int) -> int:
+    v = default if value is None else value
+    if not 16 <= v <= hi:
+        raise PanelError(f"{name} {v} must be between 16 and {hi}")
+    return v
+
+
+def _peak_hold(freqs: FloatArray, series: list[FloatArray], max_lines: int) -> tuple[FloatArray, list[FloatArray], int]:
+    """Reduce ``series`` (same length as ``freqs``) to at most ``max_lines`` by the largest value per group
+    (NaN-aware; a group of NaN stays NaN); the group's first frequency is its abscissa."""
+    n = freqs.size
+    group = max(1, math.ceil(n / max_lines))
+    if group == 1:
+        return freqs, series, 1
+    m = math.ceil(n / group)
+    pad = m * group - n
+    out = []
+    for s in series:
+        padded = np.concatenate([s, np.full(pad, np.nan)]).reshape(m, group)
+        with np.errstate(invalid="ignore"):
+            allnan = np.isnan(padded).all(axis=1)
+            vals = np.where(allnan, np.nan, np.nanmax(np.where(np.isnan(padded), -np.inf, padded), axis=1))
+        out.append(vals)
+    return freqs[::group], out, group
+
+
+def spectrum_panel(x_g: npt.ArrayLike, fs_hz: float, plan: AnalysisPlan, shaft_hz: float | None, *,
+                   fmax_hz: float | None = None, max_lines: int | None = None) -> dict[str, Any]:
+    """Amplitude spectrum of one frame with order and defect-frequency markers.
+
+    Parameters
+    ----------
+    x_g : array_like, shape (samples,) — acceleration in g
+    plan : the point's analysis plan (velocity band, orders, tolerance, bearing)
+    shaft_hz : the frame's shaft speed (None: no order or defect markers)
+    fmax_hz : highest frequency shown (default fs/2.56, the usable band of an anti-aliased acquisition)
+    max_lines : most lines returned (default 4096; peak hold beyond)
+
+    Returns
+    -------
+    dict with ``frequency_hz``, ``acceleration_g`` and ``velocity_mm_s`` (arrays, r.m.s. per line), the scaling
+    stated in ``scaling``, and ``markers`` (orders with their velocity and acceleration r.m.s.; defect frequencies).
+    """
+    x = _frame(x_g, fs_hz)
+    n = x.size
+    nyq = fs_hz / 2.0
+    fmax = min(nyq, fs_hz / ANTI_ALIAS_RATIO) if fmax_hz is None else float(fmax_hz)
+    if not math.isfinite(fmax) or not 0 < fmax <= nyq:
+        raise PanelError(f"fmax {fmax_hz!r} Hz must be > 0 and at most Nyquist {nyq:g} Hz")
+    lines = _limit("max_lines", max_lines, DEFAULT_MAX_LINES, MAX_LINES)
+    df = fs_hz / n
+    spec = _fft.rfft((x - x.mean())[None, :])
+    stop = n // 2
+    acc = hann_lines(spec, stop)
+    vel = hann_lines(spec[:, : stop + 1] * integration_coefficients(fs_hz, n, stop + 1), stop)
+    scale = 2.0 * math.sqrt(2.0) / n  # |Xw| · 2/Σw / √2, Σw = N/2
+    acc_pow = acc.real**2 + acc.imag**2
+    vel_pow = vel.real**2 + vel.imag**2
+    acc_rms = np.sqrt(acc_pow[0]) * scale
+    vel_rms = np.sqrt(vel_pow[0]) * scale
+    freqs = np.arange(stop, dtype=np.float64) * df
+    vel_rms[freqs < plan.velocity_band_hz[0]] = np.nan
+    keep = freqs <= fmax + 1e-9
+    f_shown, (a_shown, v_shown), group = _peak_hold(freqs[keep], [acc_rms[keep], vel_rms[keep]], lines)
+
+    markers: list[dict[str, Any]] = []
+    factor = 16.0 / (3.0 * n * n)  # Σ|Xw|² over lines → mean square (periodic Hann), as the pipeline
+    if shaft_hz is not None and math.isfinite(shaft_hz) and shaft_hz > 0:
+        orders = tuple(o for o in sorted(set(MARKER_ORDERS) | set(plan.orders)) if o * shaft_hz <= fmax)
+        if orders:
+            shaft = np.array([shaft_hz])
+            v = order_amplitudes_mm_s(vel_pow, shaft, orders, plan.order_tolerance, df, n)[0]
+            centre = shaft_hz * np.asarray(orders) / df
+            half = np.maximum(1.0, plan.order_tolerance * centre)
+            lo = np.ceil(centre - half).astype(np.intp)[None, :]
+            hi = np.floor(centre + half).astype(np.intp)[None, :]
+            peak = window_argmax(vel_pow, lo, hi)
+            a = np.sqrt(power3(acc_pow, peak) * factor)[0]
+            for i, o in enumerate(orders):
+                if not math.isfinite(v[i]):
+                    continue
+                markers.append({"kind": "order", "label": f"{o:g}×", "key": order_key(o), "order": o,
+                                "frequency_hz": o * shaft_hz, "peak_frequency_hz": float(peak[0, i]) * df,
+                                "velocity_mm_s": float(v[i]), "acceleration_g": float(a[i])})
+        if plan.bearing is not None:
+            d = defect_frequencies(plan.bearing, shaft_hz)
+            for key, hz in (("ftf", d.ftf_hz), ("bpfo", d.bpfo_hz), ("bpfi", d.bpfi_hz), ("bsf", 2 * d.bsf_hz)):
+                if hz <= fmax:
+                    markers.append({"kind": "defect", "label": FAMILY_LABELS[key], "key": key,
+                                    "meaning": FAMILY_MEANING[key], "frequency_hz": hz})
+    return {
+        "fs_hz": fs_hz, "n_samples": n, "resolution_hz": df, "max_frequency_hz": fmax,
+        "window": "hann",
+        "scaling": {"acceleration_g": "r.m.s. per line, g (a sine centred on a line reads its r.m.s.)",
+                    "velocity_mm_s": "r.m.s. per line, mm/s, by frequency-domain integration; null below "
+                                     f"{plan.velocity_band_hz[0]:g} Hz (the velocity band's low edge)",
+                    "reduction": "none" if group == 1 else f"peak hold over groups of {group} lines"},
+        "velocity_band_hz": list(plan.velocity_band_hz),
+        "shaft_hz": shaft_hz,
+        "frequency_hz": f_shown, "acceleration_g": a_shown, "velocity_mm_s": v_shown,
+        "markers": markers,
+    }
+
+
+def family_verdict(fam: FamilyResult | None) -> str:
+    """``detected`` / ``possible`` / ``not detected`` from a family's fundamental SNR and harmonics found."""
+    if fam is None or not math.isfinite(fam.snr_db) or fam.snr_db < HARMONIC_SNR_DB:
+        return "not detected"
+    return "detected" if fam.harmonics_found >= VERDICT_MIN_HARMONICS else "possible"
+
+
+def _search(amp: FloatArray, expected: list[float], slip: float, df: float) -> list[tuple[float, float, float]]:
+    """(found Hz, amplitude g, SNR dB) of each expected line (NaN where its window does not fit)."""
+    if not expected:
+        return []
+    freq, value, snr, _found = search_families(amp[None, :], np.asarray([expected], dtype=np.float64), slip, 1, df)
+    return [(float(freq[0, i]), float(value[0, i]), float(snr[0, i])) for i in range(len(expected))]
+
+
+def envelope_panel(x_g: npt.ArrayLike, fs_hz: float, plan: AnalysisPlan, shaft_hz: float | None,
+                   families: Mapping[str, FamilyResult] | None = None, *, fmax_hz: float | None = None,
+                   max_lines: int | None = None) -> dict[str, Any]:
+    """Envelope spectrum of one frame with the bearing families' harmonics, sidebands and verdicts.
+
+    ``families`` are the daemon's family results for this frame (their SNR and harmonics found give the
+    verdicts); without them the verdicts come from this panel's own search.  A point without a demodulation band
+    returns ``{"available": False, "reason": …}``.
+    """
+    x = _frame(x_g, fs_hz)
+    band = plan.envelope_band_hz
+    if band is None:
+        return {"available": False, "reason": "this point has no envelope demodulation band (sensor bandwidth or "
+                "sample rate too low, or none configured)"}
+    lines = _limit("max_lines", max_lines, DEFAULT_MAX_LINES, MAX_LINES)
+    df = fs_hz / x.size
+    width = band[1] - band[0]
+    shaft = shaft_hz if shaft_hz is not None and math.isfinite(shaft_hz) and shaft_hz > 0 else None
+    known = shaft is not None
+    d = defect_frequencies(plan.bearing, shaft) if plan.bearing is not None and shaft is not None else None
+    if fmax_hz is None:
+        top = 0.0 if d is None else (plan.harmonics + 0.5) * max(d.bpfo_hz, d.bpfi_hz, 2 * d.bsf_hz) * 1.15
+        fmax = min(width, max(500.0, top))
+    else:
+        fmax = float(fmax_hz)
+    if not math.isfinite(fmax) or not 2 * df < fmax <= width:
+        raise PanelError(f"fmax {fmax_hz!r} Hz must be above {2 * df:g} Hz and at most the band width {width:g} Hz")
+    freqs, amp2 = envelope_amplitude_spectrum(x, fs_hz, band, max_frequency_hz=fmax)
+    amp = amp2[0]
+    keep = freqs <= fmax + 1e-9
+    f_shown, (a_shown,), group = _peak_hold(freqs[keep], [amp[keep]], lines)
+    out_families: list[dict[str, Any]] = []
+    if d is not None and shaft_hz is not None:
+        fundamentals = {"ftf": d.ftf_hz, "bpfo": d.bpfo_hz, "bpfi": d.bpfi_hz, "bsf": 2 * d.bsf_hz}
+        sideband_hz = {"bpfi": shaft_hz, "bsf": d.ftf_hz}  # inner race: ±1× shaft; rolling element: ±FTF
+        for name in FAMILIES:
+            f0 = fundamentals[name]
+            hs = [h for h in range(1, plan.harmonics + 1) if h * f0 * (1 + plan.slip_tolerance) < freqs[-1]]
+            found = _search(amp, [h * f0 for h in hs], plan.slip_tolerance, df)
+            harmonics = []
+            for h, (fh, ah, sh) in zip(hs, found, strict=True):
+                row: dict[str, Any] = {"harmonic": h, "expected_hz": h * f0, "frequency_hz": fh, "amplitude_g": ah,
+                                       "snr_db": sh, "sidebands": []}
+                sb = sideband_hz.get(name)
+                if sb is not None and math.isfinite(fh):
+                    centres = [fh - sb, fh + sb]
+                    for side, (fs_, as_, ss_) in zip(("-", "+"), _search(amp, centres, plan.slip_tolerance, df),
+                                                      strict=True):
+                        row["sidebands"].append({"side": side, "spacing_hz": sb, "frequency_hz": fs_,
+                                                 "amplitude_g": as_, "snr_db": ss_})
+                harmonics.append(row)
+            daemon_fam = None if families is None else families.get(name)
+            if daemon_fam is None and harmonics and math.isfinite(harmonics[0]["snr_db"]):
+                daemon_fam = FamilyResult(expected_hz=f0, frequency_hz=harmonics[0]["frequency_hz"],
+                                          amplitude_g=harmonics[0]["amplitude_g"], snr_db=harmonics[0]["snr_db"],
+                                          harmonics_found=sum(1 for r in harmonics
+                                                              if math.isfinite(r["snr_db"])
+                                                              and r["snr_db"] >= HARMONIC_SNR_DB))
+            out_families.append({
+                "key": name, "label": FAMILY_LABELS[name], "meaning": FAMILY_MEANING[name], "expected_hz": f0,
+                "sideband_spacing_hz": sideband_hz.get(name),
+                "verdict": family_verdict(daemon_fam),
+                "snr_db": None if daemon_fam is None else daemon_fam.snr_db,
+                "harmonics_found": None if daemon_fam is None else daemon_fam.harmonics_found,
+                "harmonics": harmonics,
+            })
+    return {
+        "available": True, "fs_hz": fs_hz, "n_samples": x.size, "resolution_hz": df, "band_hz": list(band),
+        "max_frequency_hz": fmax, "shaft_hz": shaft_hz if known else None,
+        "scaling": {"amplitude_g": "peak amplitude of each envelope component, g (Hann window)",
+                    "reduction": "none" if group == 1 else f"peak hold over groups of {group} lines",
+                    "snr_db": "line over the median of the envelope spectrum within ±20 % of its frequency",
+                    "verdict": VERDICT_RULE},
+        "slip_tolerance": plan.slip_tolerance,
+        "frequency_hz": f_shown, "amplitude_g": a_shown,
+        "families": out_families,
+        "note": None if known else "shaft speed unknown: no defect families",
+    }
+
+
+def waveform_panel(x_g: npt.ArrayLike, fs_hz: float, *, max_points: int | None = None) -> dict[str, Any]:
+    """The frame's samples (mean removed), reduced to at most ``max_points`` by min/max pairs per bucket (every
+    impact's extreme survives the reduction)."""
+    x = _frame(x_g, fs_hz)
+    limit = _limit("max_points", max_points, DEFAULT_MAX_POINTS, MAX_POINTS)
+    mean = float(x.mean())
+    xc = x - mean
+    n = x.size
+    t = np.arange(n, dtype=np.float64) / fs_hz
+    factor = 1
+    if n > limit:
+        buckets = limit // 2
+        factor = math.ceil(n / buckets)
+        m = math.ceil(n / factor)
+        pad = m * factor - n
+        xs = np.concatenate([xc, np.full(pad, np.nan)]).reshape(m, factor)
+        idx_min = np.nanargmin(xs, axis=1)
+        idx_max = np.nanargmax(xs, axis=1)
+        first = np.minimum(idx_min, idx_max)
+        second = np.maximum(idx_min, idx_max)
+        base = np.arange(m) * factor
+        order = np.stack([base + first, base + second], axis=1).reshape(-1)
+        order = np.unique(order)  # a flat bucket gives one sample, not two
+        t, xc = t[order], xc[order]
+    return {"fs_hz": fs_hz, "n_samples": n, "duration_s": n / fs_hz, "mean_g": mean,
+            "reduction": "none" if factor == 1 else f"min and max of each bucket of {factor} samples",
+            "t_s": t, "acceleration_g": xc,
+            "peak_g": float(np.max(np.abs(x - mean))), "rms_g": float(np.sqrt(np.mean((x - mean) ** 2)))}

@@ -1,0 +1,435 @@
+/* edgevib view: the live page (data from /api/v1) and the offline report (data embedded in the file).
+   Plain browser JavaScript, no build step; charts by the vendored uPlot. */
+"use strict";
+
+(function () {
+  const API = "/api/v1";
+  const COLORS = { line: "#1f2a2e", accent: "#136f63", order: "#136f63", defect: "#a4262c", side: "#b86e00",
+                   alert: "#b86e00", danger: "#a4262c", proj: "#6b4fa0", grid: "#e6e0d2" };
+  const state = { points: [], selected: null, session: null, charts: {}, spectrum: null, envelope: null,
+                  waveform: null, trend: null, refreshTimer: null, lastRefresh: 0, report: null };
+
+  // ------------------------------------------------------------------ helpers
+  function $(id) { return document.getElementById(id); }
+  function el(tag, attrs, ...kids) {
+    const e = document.createElement(tag);
+    for (const [k, v] of Object.entries(attrs || {})) {
+      if (v === null || v === undefined) continue;
+      if (k === "class") e.className = v; else if (k === "text") e.textContent = v; else e.setAttribute(k, v);
+    }
+    for (const k of kids) e.append(k);
+    return e;
+  }
+  function num(v, digits) {
+    if (v === null || v === undefined || !isFinite(v)) return "n/a";
+    const a = Math.abs(v);
+    if (a !== 0 && (a < 1e-3 || a >= 1e5)) return v.toExponential((digits || 4) - 1);
+    return Number(v.toPrecision(digits || 4)).toString();
+  }
+  async function getJSON(path) {
+    const r = await fetch(path, { headers: { "Accept": "application/json" }, credentials: "same-origin" });
+    const body = await r.json().catch(() => ({}));
+    if (!r.ok) { const e = new Error(body.error || r.statusText); e.status = r.status; throw e; }
+    return body;
+  }
+  function sevClass(p) {
+    if (p.sensor_fault) return "sev-sensor";
+    const t = (p.alarm_state || "").toLowerCase();
+    if (t.startsWith("danger")) return "sev-danger";
+    if (t.startsWith("alert")) return "sev-alert";
+    if (p.machine_state === "stopped") return "sev-stopped";
+    return "sev-ok";
+  }
+
+  // ------------------------------------------------------------------ charts
+  function chartWidth(container) { return Math.max(320, container.clientWidth || 800); }
+
+  function drawMarkers(u, marks) {
+    // vertical lines with labels, drawn on the plot canvas after the series
+    const ctx = u.ctx;
+    const { left, top, width, height } = u.bbox;
+    ctx.save();
+    ctx.beginPath(); ctx.rect(left, top, width, height); ctx.clip();
+    ctx.font = `${Math.round(11 * devicePixelRatio)}px sans-serif`;
+    for (const m of marks) {
+      const x = Math.round(u.valToPos(m.x, "x", true));
+      if (x < left || x > left + width) continue;
+      ctx.strokeStyle = m.color; ctx.fillStyle = m.color;
+      ctx.lineWidth = devicePixelRatio; ctx.setLineDash(m.dash || []);
+      ctx.beginPath(); ctx.moveTo(x, top); ctx.lineTo(x, top + height); ctx.stroke();
+      if (m.label) ctx.fillText(m.label, x + 3 * devicePixelRatio, top + (m.row || 1) * 12 * devicePixelRatio);
+    }
+    ctx.restore();
+  }
+
+  function makeChart(key, container, opts, data) {
+    const old = state.charts[key];
+    if (old) old.destroy();
+    container.textContent = "";
+    const u = new uPlot(Object.assign({ width: chartWidth(container), height: 240 }, opts), data, container);
+    state.charts[key] = u;
+    return u;
+  }
+
+  function logSafe(arr) { return arr.map(v => (v === null || !(v > 0)) ? null : v); }
+
+  function spectrumChart(doc) {
+    const qty = $("sp-qty").value, log = $("sp-scale").value === "log";
+    const unit = qty === "velocity_mm_s" ? "mm/s" : "g";
+    const y = log ? logSafe(doc[qty]) : doc[qty];
+    const named = new Set(["0.5x", "1x", "2x", "3x"]);
+    const marks = doc.markers.map(m => ({ x: m.frequency_hz, label: m.kind === "order" && !named.has(m.key) ? "" : m.label,
+      color: m.kind === "order" ? (named.has(m.key) ? COLORS.order : "#9fc7c0") : COLORS.defect,
+      dash: m.kind === "order" ? [] : [4, 3], row: m.kind === "order" ? 1 : 2 }));
+    // velocity: open on the velocity band (where its lines matter); acceleration: the whole range
+    const xmax = qty === "velocity_mm_s" ? Math.min(doc.max_frequency_hz, doc.velocity_band_hz[1]) : doc.max_frequency_hz;
+    const shaft = doc.shaft_hz;
+    makeChart("spectrum", $("sp-chart"), {
+      scales: { x: { time: false },
+                y: log ? { distr: 3 } : { range: (u, lo, hi) => [0, hi > 0 ? hi * 1.05 : 1] } },
+      axes: [{ label: "frequency (Hz)", grid: { stroke: COLORS.grid } },
+             { label: `${unit} r.m.s.`, grid: { stroke: COLORS.grid }, size: 60 }],
+      series: [{}, { label: qty === "velocity_mm_s" ? "velocity" : "acceleration", stroke: COLORS.line, width: 1,
+                     points: { show: false } }],
+      legend: { show: false },
+      cursor: { drag: { x: true, y: false } },
+      hooks: {
+        draw: [u => drawMarkers(u, marks)],
+        setCursor: [u => {
+          const i = u.cursor.idx;
+          if (i === null || i === undefined) return;
+          const f = u.data[0][i], a = u.data[1][i];
+          const order = shaft ? ` = ${num(f / shaft, 4)}×` : "";
+          $("sp-read").textContent = `${num(f, 5)} Hz${order}   ${num(a, 4)} ${unit}`;
+        }],
+      },
+    }, [doc.frequency_hz, y]).setScale("x", { min: 0, max: xmax });
+  }
+
+  function spectrumTable(doc) {
+    const body = $("sp-markers").tBodies[0];
+    body.textContent = "";
+    for (const m of doc.markers) {
+      const row = el("tr", { "data-marker": m.key, "data-kind": m.kind },
+        el("td", { text: m.label + (m.meaning ? ` (${m.meaning})` : "") }),
+        el("td", { text: `${num(m.frequency_hz, 5)} Hz` }),
+        el("td", { class: "vel", "data-value": m.velocity_mm_s === undefined ? null : m.velocity_mm_s,
+                   text: m.velocity_mm_s === undefined ? "" : `${num(m.velocity_mm_s, 4)} mm/s` }),
+        el("td", { text: m.acceleration_g === undefined ? "" : `${num(m.acceleration_g, 4)} g` }));
+      body.append(row);
+    }
+    $("panel-spectrum").setAttribute("data-frame-end", doc.frame_end || "");
+  }
+
+  function envelopeChart(doc) {
+    const panel = $("panel-envelope");
+    panel.setAttribute("data-frame-end", doc.frame_end || "");
+    const body = $("en-families").tBodies[0];
+    body.textContent = "";
+    if (!doc.available) {
+      $("en-band").textContent = doc.reason;
+      if (state.charts.envelope) { state.charts.envelope.destroy(); delete state.charts.envelope; }
+      $("en-chart").textContent = "";
+      return;
+    }
+    $("en-band").textContent = `band ${num(doc.band_hz[0], 5)}–${num(doc.band_hz[1], 5)} Hz` +
+      (doc.note ? ` · ${doc.note}` : "");
+    const log = $("en-scale").value === "log";
+    const marks = [];
+    for (const fam of doc.families) {
+      const strong = fam.verdict !== "not detected";
+      for (const h of fam.harmonics) {
+        const x = isFinite(h.frequency_hz) && h.frequency_hz !== null ? h.frequency_hz : h.expected_hz;
+        marks.push({ x, label: strong || h.harmonic === 1 ? (h.harmonic === 1 ? fam.label : `${h.harmonic}×`) : "",
+                     color: strong ? COLORS.defect : "#9aa5a8", dash: strong ? [] : [2, 4],
+                     row: 1 + ["ftf", "bpfo", "bpfi", "bsf"].indexOf(fam.key) % 4 });
+        if (strong) for (const sb of h.sidebands) if (sb.frequency_hz !== null)
+          marks.push({ x: sb.frequency_hz, label: "", color: COLORS.side, dash: [2, 2] });
+      }
+      const cls = fam.verdict === "detected" ? "v-detected" : fam.verdict === "possible" ? "v-possible" : "v-not";
+      const first = fam.harmonics[0] || {};
+      body.append(el("tr", { "data-family": fam.key, "data-verdict": fam.verdict },
+        el("td", { text: `${fam.label} (${fam.meaning})` }),
+        el("td", { text: `${num(fam.expected_hz, 5)} Hz` }),
+        el("td", { text: first.frequency_hz === null || first.frequency_hz === undefined ? "n/a" : `${num(first.frequency_hz, 5)} Hz` }),
+        el("td", { text: fam.snr_db === null ? "n/a" : `${num(first.amplitude_g, 3)} g, ${num(fam.snr_db, 3)} dB` }),
+        el("td", { text: fam.harmonics_found === null ? "n/a" : `${fam.harmonics_found} of ${fam.harmonics.length}` +
+                         (fam.sideband_spacing_hz ? ` (sidebands ±${num(fam.sideband_spacing_hz, 4)} Hz)` : "") }),
+        el("td", { class: cls, text: fam.verdict })));
+    }
+    makeChart("envelope", $("en-chart"), {
+      scales: { x: { time: false }, y: log ? { distr: 3 } : { range: (u, lo, hi) => [0, hi > 0 ? hi * 1.05 : 1] } },
+      axes: [{ label: "envelope frequency (Hz)", grid: { stroke: COLORS.grid } },
+             { label: "g (peak)", grid: { stroke: COLORS.grid }, size: 60 }],
+      series: [{}, { label: "envelope", stroke: COLORS.line, width: 1, points: { show: false } }],
+      legend: { show: false }, cursor: { drag: { x: true, y: false } },
+      hooks: {
+        draw: [u => drawMarkers(u, marks)],
+        setCursor: [u => {
+          const i = u.cursor.idx;
+          if (i === null || i === undefined) return;
+          const f = u.data[0][i];
+          const order = doc.shaft_hz ? ` = ${num(f / doc.shaft_hz, 4)}×` : "";
+          $("en-read").textContent = `${num(f, 5)} Hz${order}   ${num(u.data[1][i], 4)} g`;
+        }],
+      },
+    }, [doc.frequency_hz, log ? logSafe(doc.amplitude_g) : doc.amplitude_g]);
+  }
+
+  function waveformChart(doc) {
+    $("wf-info").textContent = `${num(doc.duration_s, 4)} s at ${num(doc.fs_hz, 5)} Hz; peak ${num(doc.peak_g, 4)} g, ` +
+      `r.m.s. ${num(doc.rms_g, 4)} g (mean ${num(doc.mean_g, 3)} g removed)` +
+      (doc.reduction !== "none" ? `; ${doc.reduction}` : "");
+    $("panel-waveform").setAttribute("data-frame-end", doc.frame_end || "");
+    makeChart("waveform", $("wf-chart"), {
+      scales: { x: { time: false } },
+      axes: [{ label: "time (s)", grid: { stroke: COLORS.grid } }, { label: "g", grid: { stroke: COLORS.grid }, size: 60 }],
+      series: [{}, { label: "acceleration", stroke: COLORS.accent, width: 1, points: { show: false } }],
+      legend: { show: false }, cursor: { drag: { x: true, y: false } },
+      hooks: { setCursor: [u => {
+        const i = u.cursor.idx;
+        if (i === null || i === undefined) return;
+        $("wf-read").textContent = `${num(u.data[0][i], 5)} s   ${num(u.data[1][i], 4)} g`;
+      }] },
+    }, [doc.t_s, doc.acceleration_g]);
+  }
+
+  function trendChart(doc) {
+    const t = doc.t_s, v = doc.values;
+    const series = [{}, { label: doc.indicator, stroke: COLORS.line, width: 1.5, points: { show: t.length < 60 } }];
+    const data = [t, v];
+    const lim = doc.limits || {};
+    if (lim.alert !== null && lim.alert !== undefined) {
+      series.push({ label: "alert", stroke: COLORS.alert, dash: [6, 4], width: 1, points: { show: false } });
+      data.push(t.map(() => lim.alert));
+    }
+    if (lim.danger !== null && lim.danger !== undefined) {
+      series.push({ label: "danger", stroke: COLORS.danger, dash: [6, 4], width: 1, points: { show: false } });
+      data.push(t.map(() => lim.danger));
+    }
+    const proj = doc.projection;
+    if (proj && proj.t_s && proj.values) {
+      // projected values on their own times: merge the axes (uPlot needs one x)
+      const xs = t.concat(proj.t_s);
+      const pad = n => new Array(n).fill(null);
+      for (let k = 1; k < data.length; k++) data[k] = data[k].concat(k === 1 ? pad(proj.t_s.length) : pad(proj.t_s.length).map(() => data[k][0]));
+      series.push({ label: "projection", stroke: COLORS.proj, dash: [2, 3], width: 1.5, points: { show: false } });
+      data.push(pad(t.length).concat(proj.values));
+      data[0] = xs;
+    }
+    $("tr-src").textContent = doc.source || "";
+    $("panel-trend").setAttribute("data-count", String(t.length));
+    makeChart("trend", $("tr-chart"), {
+      scales: { x: { time: true } },
+      axes: [{ grid: { stroke: COLORS.grid } }, { label: doc.unit, grid: { stroke: COLORS.grid }, size: 60 }],
+      series, legend: { show: true }, cursor: { drag: { x: true, y: false } },
+      hooks: { setCursor: [u => {
+        const i = u.cursor.idx;
+        if (i === null || i === undefined) return;
+        $("tr-read").textContent = `${new Date(u.data[0][i] * 1000).toISOString()}   ${num(u.data[1][i], 4)} ${doc.unit}`;
+      }] },
+    }, data);
+  }
+
+  // ------------------------------------------------------------------ live page
+  function renderPoints() {
+    const list = $("point-list");
+    list.textContent = "";
+    for (const p of state.points) {
+      const vel = (p.indicators.find(i => i.name === "velocity_rms_mm_s") || {}).value;
+      const li = el("li", { "data-point": p.id, class: sevClass(p), tabindex: "0",
+                            "aria-current": p.id === state.selected ? "true" : "false" },
+        el("div", { class: "line" }, el("span", { class: "pid", text: p.id }),
+           el("span", { class: "zone", title: "ISO 20816-3 zone", text: p.iso_zone || "–" })),
+        el("div", { class: "line" }, el("span", { text: `${p.machine} · ${p.machine_state}` }),
+           el("span", { text: vel === undefined ? "…" : `${num(vel, 3)} mm/s` })),
+        el("div", { class: "state", text: p.stale && p.frame_end ? `${p.alarm_state} (stale)` : p.alarm_state }));
+      li.addEventListener("click", () => select(p.id));
+      li.addEventListener("keydown", ev => { if (ev.key === "Enter") select(p.id); });
+      list.append(li);
+    }
+  }
+
+  function renderHead(p) {
+    $("point-title").textContent = `${p.id}`;
+    const speed = p.speed && p.speed.rpm ? `${num(p.speed.rpm, 4)} r/min (${p.speed.source})` : "speed unknown";
+    $("point-sub").textContent = `${p.machine}${p.machine_description ? " — " + p.machine_description : ""} · ` +
+      `${p.axis}, ${p.sensor_type} sensor ${p.sensor} · ${p.machine_state} · ${speed}`;
+    const figs = $("figures");
+    figs.textContent = "";
+    figs.append(el("span", { class: "fig" }, el("b", { text: "zone " }), p.iso_zone || "n/a"));
+    figs.append(el("span", { class: "fig", "data-alarm-state": p.alarm_state }, el("b", { text: "alarm " }), p.alarm_state));
+    for (const i of p.indicators) {
+      if (i.value === null) continue;
+      figs.append(el("span", { class: "fig", "data-indicator": i.name },
+        el("b", { text: i.name.replace(/_(mm_s|g|um|hz|db)$/, "") + " " }), `${num(i.value, 4)} ${i.unit === "1" ? "" : i.unit}`));
+    }
+    const sel = $("tr-ind"), current = sel.value;
+    const names = p.indicators.map(i => i.name);
+    if (sel.options.length !== names.length) {
+      sel.textContent = "";
+      for (const n of names) sel.append(el("option", { value: n, text: n }));
+      sel.value = names.includes(current) ? current : "velocity_rms_mm_s";
+    }
+  }
+
+  async function loadPoints() {
+    const doc = await getJSON(`${API}/points`);
+    state.points = doc.points;
+    $("site").textContent = doc.site;
+    renderPoints();
+    const p = state.points.find(x => x.id === state.selected);
+    if (p) renderHead(p);
+  }
+
+  async function loadPanels() {
+    const id = state.selected;
+    if (!id) return;
+    const q = encodeURIComponent(id);
+    const jobs = [
+      getJSON(`${API}/points/${q}/spectrum`).then(d => { state.spectrum = d; spectrumChart(d); spectrumTable(d); }),
+      getJSON(`${API}/points/${q}/envelope`).then(d => { state.envelope = d; envelopeChart(d); }),
+      getJSON(`${API}/points/${q}/waveform`).then(d => { state.waveform = d; waveformChart(d); }),
+      getJSON(`${API}/points/${q}/trend?indicator=${encodeURIComponent($("tr-ind").value || "velocity_rms_mm_s")}`)
+        .then(d => { state.trend = d; trendChart(d); }),
+      loadHistory(),
+    ];
+    const results = await Promise.allSettled(jobs);
+    for (const r of results) if (r.status === "rejected" && r.reason && r.reason.status !== 404) console.warn(String(r.reason));
+    state.lastRefresh = Date.now();
+    $("detail").setAttribute("data-loaded", String(state.lastRefresh));
+  }
+
+  async function loadHistory() {
+    const id = state.selected;
+    const doc = await getJSON(`${API}/alarms/history?point=${encodeURIComponent(id)}&limit=50`);
+    const body = $("history").tBodies[0];
+    body.textContent = "";
+    for (const e of doc.events) {
+      const sev = e.state === "danger" ? "sev-text-danger" : e.state === "alert" ? "sev-text-alert" :
+        (e.type || "").includes("sensor") ? "sev-text-sensor" : "";
+      const what = e.indicator || (e.fault ? `sensor: ${e.fault}` : e.type);
+      const change = e.transition ? `${e.transition}${e.state ? " → " + e.state : ""}` : "";
+      const value = e.value === null || e.value === undefined ? "" : `${num(e.value, 4)}${e.limit !== null && e.limit !== undefined ? " / " + num(e.limit, 4) : ""} ${e.unit || ""}`;
+      body.append(el("tr", { class: sev }, el("td", { text: e.time || "" }), el("td", { text: what || "" }),
+        el("td", { text: change }), el("td", { text: value }), el("td", { text: e.by || "" }),
+        el("td", { text: [e.reason, e.advice || e.detail].filter(Boolean).join(" — ") })));
+    }
+  }
+
+  function select(id) {
+    state.selected = id;
+    history.replaceState(null, "", `#${encodeURIComponent(id)}`);
+    $("detail").hidden = false;
+    $("empty").hidden = true;
+    renderPoints();
+    const p = state.points.find(x => x.id === id);
+    if (p) renderHead(p);
+    loadPanels().catch(e => console.warn(String(e)));
+  }
+
+  function scheduleRefresh() {
+    if (state.refreshTimer) return;
+    const wait = Math.max(0, 2000 - (Date.now() - state.lastRefresh));
+    state.refreshTimer = setTimeout(() => {
+      state.refreshTimer = null;
+      loadPoints().then(loadPanels).catch(e => console.warn(String(e)));
+    }, wait);
+  }
+
+  function connectEvents() {
+    const es = new EventSource(`${API}/events`);
+    es.addEventListener("hello", () => { $("live").textContent = "live"; $("live").className = "live on"; });
+    es.addEventListener("frame", ev => {
+      const d = JSON.parse(ev.data);
+      const p = state.points.find(x => x.id === d.point);
+      if (p && d.point !== state.selected) {
+        p.iso_zone = d.iso_zone; p.alarm_state = d.state || p.alarm_state;
+        const vel = p.indicators.find(i => i.name === "velocity_rms_mm_s");
+        if (vel) vel.value = d.velocity_rms_mm_s; else p.indicators.push({ name: "velocity_rms_mm_s", value: d.velocity_rms_mm_s, unit: "mm/s" });
+        const li = document.querySelector(`li[data-point="${CSS.escape(d.point)}"]`);
+        if (li) li.setAttribute("data-frame-end", d.frame_end);
+      }
+      if (d.point === state.selected || !state.lastRefresh) scheduleRefresh();
+    });
+    es.addEventListener("alarm", () => scheduleRefresh());
+    es.onerror = () => { $("live").textContent = "reconnecting"; $("live").className = "live off"; };
+  }
+
+  // ------------------------------------------------------------------ actions
+  async function loadSession() {
+    try { state.session = await getJSON(`${API}/session`); } catch (e) { state.session = null; }
+    const s = state.session;
+    $("actions").hidden = !(s && s.actions);
+    if (!s || !s.actions) return;
+    $("who").textContent = s.who ? `signed in: ${s.who}` : "";
+    $("signin").hidden = !!s.who || s.sign_in !== "token";
+    for (const id of ["act-ack", "act-shelve", "act-unshelve"]) $(id).disabled = !s.who;
+  }
+
+  async function act(cmd, body) {
+    const s = state.session || {};
+    const headers = { "Content-Type": "application/json" };
+    if (s.csrf) headers["X-CSRF-Token"] = s.csrf;
+    const r = await fetch(`${API}/points/${encodeURIComponent(state.selected)}/${cmd}`,
+      { method: "POST", headers, body: JSON.stringify(body || {}), credentials: "same-origin" });
+    const doc = await r.json().catch(() => ({}));
+    $("act-msg").textContent = r.ok ? `${cmd}: done by ${doc.by} (${doc.result.changed} changed)` : `${cmd} refused: ${doc.error}`;
+    scheduleRefresh();
+  }
+
+  function wireActions() {
+    $("act-ack").addEventListener("click", () => act("ack"));
+    $("act-unshelve").addEventListener("click", () => act("unshelve"));
+    $("act-shelve").addEventListener("click", () => {
+      const reason = window.prompt("Reason for shelving (kept with the action):", "");
+      if (reason) act("shelve", { reason, duration_s: 3600 });
+    });
+    $("signin").addEventListener("submit", async ev => {
+      ev.preventDefault();
+      const r = await fetch(`${API}/session`, { method: "POST", headers: { "Content-Type": "application/json" },
+        body: JSON.stringify({ token: $("token").value }), credentials: "same-origin" });
+      $("token").value = "";
+      const doc = await r.json().catch(() => ({}));
+      $("act-msg").textContent = r.ok ? "" : `sign-in refused: ${doc.error}`;
+      await loadSession();
+    });
+  }
+
+  // ------------------------------------------------------------------ report (offline, data embedded)
+  function renderReport(data) {
+    state.report = data;
+    if (data.spectrum) { spectrumChart(data.spectrum); spectrumTable(data.spectrum); }
+    if (data.envelope) envelopeChart(data.envelope);
+    if (data.waveform) waveformChart(data.waveform);
+    if (data.trend) trendChart(data.trend); else { const t = $("panel-trend"); if (t) t.hidden = true; }
+    $("sp-qty").addEventListener("change", () => spectrumChart(data.spectrum));
+    $("sp-scale").addEventListener("change", () => spectrumChart(data.spectrum));
+    $("en-scale").addEventListener("change", () => envelopeChart(data.envelope));
+    document.body.setAttribute("data-rendered", "true");
+  }
+
+  // ------------------------------------------------------------------ start
+  function start() {
+    const embedded = document.getElementById("report-data");
+    if (embedded) { renderReport(JSON.parse(embedded.textContent)); return; }
+    $("sp-qty").addEventListener("change", () => state.spectrum && spectrumChart(state.spectrum));
+    $("sp-scale").addEventListener("change", () => state.spectrum && spectrumChart(state.spectrum));
+    $("en-scale").addEventListener("change", () => state.envelope && envelopeChart(state.envelope));
+    $("tr-ind").addEventListener("change", () => loadPanels());
+    wireActions();
+    loadSession();
+    loadPoints().then(() => {
+      const wanted = decodeURIComponent(location.hash.slice(1));
+      if (wanted && state.points.some(p => p.id === wanted)) select(wanted);
+      document.body.setAttribute("data-ready", "true");
+      connectEvents();
+    }).catch(e => console.warn(String(e)));
+    window.addEventListener("resize", () => {
+      for (const [k, u] of Object.entries(state.charts)) {
+        const c = u.root.parentElement; if (c) u.setSize({ width: chartWidth(c), height: 240 });
+      }
+    });
+  }
+  if (document.readyState === "loading") document.addEventListener("DOMContentLoaded", start); else start();
+})();

@@ -1,0 +1,265 @@
+"""The view in a real headless browser (Debian's chromium driven by Playwright; installed by .ci/run): the demo's
+page, live updates, actions refused without credentials, and the offline reports.
+
+The browser is the system's ``/usr/bin/chromium`` with a fresh profile per test run; Playwright never downloads
+one.  The demo runs as a subprocess (``edgevib demo``) on a free loopback port.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+import subprocess
+import sys
+import tempfile
+import time
+import urllib.request
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+from servers import free_port
+
+pytestmark = [pytest.mark.network, pytest.mark.slow]
+
+CHROMIUM = "/usr/bin/chromium"
+FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
+         "--disable-component-update", "--disable-sync", "--no-first-run"]
+TOKEN = "ql-shift-lead-0c5e9a7d3b21"
+
+
+def api(base: str, path: str) -> Any:
+    with urllib.request.urlopen(base + path, timeout=10) as r:
+        return json.loads(r.read())
+
+
+class Demo:
+    """``edgevib demo`` in a subprocess; ``base`` is the view's URL as it printed it."""
+
+    def __init__(self, extra: list[str] | None = None) -> None:
+        self.port = free_port()
+        self.proc = subprocess.Popen(
+            [sys.executable, "-m", "edgevib.daemon", "demo", "--metrics-listen", f"127.0.0.1:{self.port}",
+             "--rate", "2", *(extra or [])], stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
+        assert self.proc.stdout is not None
+        deadline = time.monotonic() + 60
+        self.base = ""
+        while time.monotonic() < deadline and not self.base:
+            line = self.proc.stdout.readline()
+            m = re.search(r"view at (http://127\.0\.0\.1:\d+)/", line)
+            if m:
+                self.base = m.group(1)
+            elif not line and self.proc.poll() is not None:
+                break
+        assert self.base, "the demo did not print the view's URL"
+        while time.monotonic() < deadline:  # every point has a frame
+            pts = api(self.base, "/api/v1/points")["points"]
+            if all(p["frame_end"] for p in pts):
+                break
+            time.sleep(0.3)
+
+    def close(self) -> None:
+        self.proc.terminate()
+        try:
+            self.proc.wait(20)
+        except subprocess.TimeoutExpired:
+            self.proc.kill()
+            self.proc.wait(5)
+
+
+@pytest.fixture(scope="module")
+def browser() -> Iterator[Any]:
+    from playwright.sync_api import sync_playwright
+
+    assert Path(CHROMIUM).exists(), "chromium is missing: apt-get install -y chromium (.ci/run does)"
+    with sync_playwright() as pw, tempfile.TemporaryDirectory(prefix="edgevib-chromium-") as profile:
+        ctx = pw.chromium.launch_persistent_context(profile, executable_path=CHROMIUM, headless=True, args=FLAGS,
+                                                   viewport={"width": 1400, "height": 1800})
+        try:
+            yield ctx
+        finally:
+            ctx.close()
+
+
+@pytest.fixture(scope="module")
+def demo() -> Iterator[Demo]:
+    d = Demo()
+    try:
+        yield d
+    finally:
+        d.close()
+
+
+def wait_until(page: Any, pred: Any, what: str, timeout_s: float = 20.0) -> None:
+    """Poll ``pred()`` from Python (the page's Content-Security-Policy forbids evaluating strings in it)."""
+    deadline = time.monotonic() + timeout_s
+    while not pred():
+        if time.monotonic() > deadline:
+            pytest.fail(f"timed out waiting for {what}")
+        page.wait_for_timeout(100)
+
+
+class Console:
+    def __init__(self, page: Any) -> None:
+        self.errors: list[str] = []
+        page.on("console", lambda m: self.errors.append(m.text) if m.type == "error" else None)
+        page.on("pageerror", lambda e: self.errors.append(str(e)))
+
+
+def test_page_lists_every_point_without_errors(browser: Any, demo: Demo) -> None:
+    page = browser.new_page()
+    console = Console(page)
+    requests: list[str] = []
+    page.on("request", lambda r: requests.append(r.url))
+    page.goto(demo.base + "/")
+    page.wait_for_selector("body[data-ready]", timeout=20000)
+    ids = [p["id"] for p in api(demo.base, "/api/v1/points")["points"]]
+    shown = page.eval_on_selector_all("#point-list li", "els => els.map(e => e.dataset.point)")
+    assert shown == ids and len(ids) == 6
+    # nothing but our own origin is ever asked for (an edge box has no network)
+    assert requests and all(u.startswith(demo.base) for u in requests), requests
+    page.close()
+    assert console.errors == []
+
+
+def _marker_and_frame(page: Any) -> tuple[str, float]:
+    frame = page.get_attribute("#panel-spectrum", "data-frame-end")
+    value = page.get_attribute('#sp-markers tr[data-marker="1x"] td.vel', "data-value")
+    return frame, float(value)
+
+
+def test_spectrum_marks_the_1x_peak_of_the_imbalanced_pump(browser: Any, demo: Demo) -> None:
+    page = browser.new_page()
+    console = Console(page)
+    page.goto(demo.base + "/#P-101-DE-H")
+    page.wait_for_selector('#sp-markers tr[data-marker="1x"]', timeout=20000)
+    assert page.locator("#sp-chart canvas").count() == 1  # the chart is drawn
+    # the value the page shows for 1× is the API's for the same frame (frames come every 0.32 s at rate 2)
+    for _ in range(40):
+        frame, value = _marker_and_frame(page)
+        doc = api(demo.base, "/api/v1/points/P-101-DE-H/spectrum")
+        if doc["frame_end"] == frame:
+            one = next(m for m in doc["markers"] if m["key"] == "1x")
+            assert value == pytest.approx(one["velocity_mm_s"], rel=1e-5)
+            text = page.inner_text('#sp-markers tr[data-marker="1x"] td.vel')
+            shown = float(format(one["velocity_mm_s"], ".4g"))
+            assert text == f"{shown:g} mm/s"
+            break
+        page.wait_for_timeout(150)
+    else:
+        pytest.fail("the page and the API never showed the same frame")
+    # the imbalanced pump: 1× dominates (ISO zone D; simulator: 6 mm/s imbalance)
+    assert value > 4.5
+    # linear/log and acceleration/velocity switches redraw without errors; the cursor reads frequency and order
+    page.select_option("#sp-scale", "log")
+    page.select_option("#sp-qty", "acceleration_g")
+    box = page.locator("#sp-chart .u-over").bounding_box()
+    page.mouse.move(box["x"] + box["width"] * 0.3, box["y"] + box["height"] / 2)
+    readout = page.inner_text("#sp-read")
+    assert re.search(r"Hz = [\d.]+× +[\d.e-]+ g", readout), readout
+    page.close()
+    assert console.errors == []
+
+
+def test_envelope_marks_bpfo_on_the_failing_bearing_and_updates_live(browser: Any, demo: Demo) -> None:
+    page = browser.new_page()
+    console = Console(page)
+    page.goto(demo.base + "/#B-301-DE-H")
+    page.wait_for_selector('#en-families tr[data-family="bpfo"]', timeout=20000)
+    assert page.get_attribute('#en-families tr[data-family="bpfo"]', "data-verdict") == "detected"
+    assert page.get_attribute('#en-families tr[data-family="bpfi"]', "data-verdict") == "not detected"
+    assert page.locator("#en-chart canvas").count() == 1 and page.locator("#wf-chart canvas").count() == 1
+    # live: the panels reload on their own as frames arrive (Server-Sent Events), without a page reload
+    first = page.get_attribute("#panel-envelope", "data-frame-end")
+    wait_until(page, lambda: page.get_attribute("#panel-envelope", "data-frame-end") != first, "a live update")
+    assert page.inner_text("#live") == "live"
+    # the trend fills with recent values and shows the limits of the alarm layer
+    page.wait_for_selector("#tr-chart canvas", timeout=20000)
+    page.close()
+    assert console.errors == []
+
+
+def test_actions_are_refused_without_credentials(browser: Any, tmp_path: Path) -> None:
+    token_file = tmp_path / "view-token"
+    token_file.write_text(f"shift-lead:{TOKEN}\n")
+    d = Demo(["--view-token-file", str(token_file)])
+    try:
+        page = browser.new_page()
+        console = Console(page)
+        page.goto(d.base + "/#P-101-DE-H")
+        page.wait_for_selector("#actions:not([hidden])", timeout=20000)
+        assert page.is_disabled("#act-ack")  # not signed in
+        status = page.evaluate("""async () => (await fetch('/api/v1/points/P-101-DE-H/ack', {method: 'POST',
+            headers: {'Content-Type': 'application/json'}, body: '{}'})).status""")
+        assert status == 401
+        page.fill("#token", "wrong-token-wrong-token")
+        page.click("#signin button")
+        wait_until(page, lambda: "refused" in page.inner_text("#act-msg"), "the sign-in refusal")
+        page.fill("#token", TOKEN)
+        page.click("#signin button")
+        page.wait_for_selector("#act-ack:not([disabled])", timeout=10000)
+        page.click("#act-ack")
+        wait_until(page, lambda: "done by token:shift-lead" in page.inner_text("#act-msg"), "the acknowledgement")
+        page.close()
+        expected = {"Failed to load resource: the server responded with a status of 401 (Unauthorized)"}
+        assert set(console.errors) <= expected  # the refusals themselves, nothing else
+    finally:
+        d.close()
+
+
+def test_analyze_report_opens_in_the_browser(browser: Any, tmp_path: Path) -> None:
+    from edgevib.simulator.engine import Simulation, load_scenario
+
+    # a recording of the demo's failing blower bearing (simulated), analysed offline
+    sim = Simulation(load_scenario("demo"), seed=1)
+    x = sim.record("B-301-DE-H", 8)
+    rec = tmp_path / "b301.npy"
+    np.save(rec, x)
+    out = tmp_path / "b301-report.html"
+    res = subprocess.run([sys.executable, "-m", "edgevib.daemon", "analyze", str(rec), "--fs", "12800", "--rpm", "2960",
+                          "--bearing", "8,17.5,72,0", "--band", "2200:4200", "--report", str(out)],
+                         capture_output=True, text=True, timeout=120)
+    assert res.returncode == 0, res.stderr
+    text = out.read_text()
+    assert "<script src=" not in text and "http://" not in text.replace("http://www.w3.org", "")  # self-contained
+    page = browser.new_page()
+    console = Console(page)
+    requests: list[str] = []
+    page.on("request", lambda r: requests.append(r.url))
+    page.goto(out.as_uri())
+    page.wait_for_selector("body[data-rendered]", timeout=20000)
+    assert page.get_attribute('#en-families tr[data-family="bpfo"]', "data-verdict") == "detected"
+    assert page.locator("#sp-chart canvas").count() == 1 and page.locator("#wf-chart canvas").count() == 1
+    assert page.is_hidden("#panel-trend")  # analyze has no trend
+    assert page.locator('tr[data-indicator="velocity_rms_mm_s"]').count() == 1
+    assert all(u.startswith("file://") or u.startswith("data:") for u in requests), requests
+    page.close()
+    assert console.errors == []
+
+
+def test_report_with_trend_and_projection_opens_in_the_browser(browser: Any, tmp_path: Path) -> None:
+    from edgevib.daemon.web.panels import waveform_panel
+    from edgevib.daemon.web.report import build_report, write_report
+
+    t = np.arange(0, 3600.0 * 24, 600.0)
+    v = 1.0 + 0.02 * np.exp(t / 30000.0)
+    trend = {"indicator": "velocity_rms_mm_s", "unit": "mm/s", "t_s": (1.8e9 + t).tolist(), "values": v,
+             "limits": {"alert": 2.8, "danger": 4.5}, "source": "replay",
+             "projection": {"t_s": (1.8e9 + t[-1] + np.arange(1, 20) * 600.0).tolist(),
+                            "values": 1.0 + 0.02 * np.exp((t[-1] + np.arange(1, 20) * 600.0) / 30000.0)}}
+    text = build_report(title="replay", meta={"points": 1}, indicators=[("velocity_rms_mm_s", 1.2, "mm/s")],
+                        spectrum=None, envelope=None, waveform=waveform_panel(np.sin(np.arange(4096) / 9), 1000.0),
+                        trend=trend)
+    out = write_report(tmp_path / "replay.html", text)
+    page = browser.new_page()
+    console = Console(page)
+    page.goto(out.as_uri())
+    page.wait_for_selector("body[data-rendered]", timeout=20000)
+    assert page.is_visible("#panel-trend") and page.locator("#tr-chart canvas").count() == 1
+    legend = page.inner_text("#tr-chart")
+    assert "alert" in legend and "danger" in legend and "projection" in legend
+    assert page.get_attribute("#panel-trend", "data-count") == str(t.size)
+    page.close()
+    assert console.errors == []

@@ -1,0 +1,234 @@
+"""The JSON API on the daemon's listener, fed by the simulated demo station in-process: values against the
+simulator's analytic truth, bounds, rate limits, the event stream, and actions refused without credentials."""
+
+from __future__ import annotations
+
+import asyncio
+import dataclasses
+import json
+import math
+from collections.abc import AsyncIterator
+from pathlib import Path
+from typing import Any
+
+import aiohttp
+import pytest
+
+from edgevib.daemon.app import Daemon
+from edgevib.daemon.config import G_M_S2, ViewConfig
+from edgevib.daemon.service import demo_config
+from edgevib.daemon.web.actions import Actions
+from edgevib.simulator.engine import Simulation, load_scenario
+
+pytestmark = pytest.mark.network
+TOKEN = "ql-operator-4f8a2c9e7b1d"
+
+
+@dataclasses.dataclass
+class Running:
+    daemon: Daemon
+    base: str
+    session: aiohttp.ClientSession
+
+    async def get(self, path: str, **kw: Any) -> tuple[int, Any]:
+        async with self.session.get(self.base + path, **kw) as r:
+            text = await r.text()
+            try:
+                return r.status, json.loads(text)
+            except ValueError:
+                return r.status, text
+
+    async def post(self, path: str, body: Any = None, **kw: Any) -> tuple[int, Any]:
+        async with self.session.post(self.base + path, json=body if body is not None else {}, **kw) as r:
+            return r.status, await r.json(content_type=None)
+
+
+async def _wait(pred: Any, timeout_s: float = 40.0) -> None:
+    async with asyncio.timeout(timeout_s):
+        while not pred():
+            await asyncio.sleep(0.05)
+
+
+async def _start(tmp_path: Path, view: dict[str, Any] | None = None) -> AsyncIterator[Running]:
+    cfg = demo_config(rate=2.0, seed=0, state_dir=str(tmp_path / "state"), view=view)
+    d = Daemon(cfg, metrics_listen=("127.0.0.1", 0))
+    await d.start()
+    try:
+        await _wait(lambda: all(p.id in d.latest for p in cfg.points))
+        async with aiohttp.ClientSession(cookie_jar=aiohttp.CookieJar(unsafe=True)) as s:  # cookies of 127.0.0.1
+            yield Running(d, d.http.base_url, s)
+    finally:
+        await d.stop(timeout_s=10.0)
+
+
+@pytest.fixture
+async def demo(tmp_path: Path) -> AsyncIterator[Running]:
+    async for r in _start(tmp_path):
+        yield r
+
+
+@pytest.fixture
+async def demo_with_actions(tmp_path: Path) -> AsyncIterator[Running]:
+    token_file = tmp_path / "view-token"
+    token_file.write_text(f"kim:{TOKEN}\n")
+    async for r in _start(tmp_path, {"actions": True, "token_file": str(token_file)}):
+        yield r
+
+
+async def test_points_list_every_point_with_state_and_units(demo: Running) -> None:
+    code, doc = await demo.get("/api/v1/points")
+    assert code == 200 and doc["api"] == "v1"
+    assert [p["id"] for p in doc["points"]] == [p.id for p in demo.daemon.config.points]
+    p101 = next(p for p in doc["points"] if p["id"] == "P-101-DE-H")
+    units = {i["name"]: i["unit"] for i in p101["indicators"]}
+    assert units["velocity_rms_mm_s"] == "mm/s" and units["acceleration_rms_g"] == "g" and units["kurtosis"] == "1"
+    assert p101["speed"]["source"] == "fixed" and p101["speed"]["rpm"] == pytest.approx(1480.0)
+    assert p101["iso_zone"] == "D" and p101["iso"]["boundaries_mm_s"] == [1.4, 2.8, 4.5]  # ISO 20816-3 G2 rigid
+    assert p101["frame_end"].endswith("Z") and p101["stale"] is False
+    mems = next(p for p in doc["points"] if p["id"] == "F-201-NDE-V")
+    assert mems["envelope_band_hz"] is None and mems["envelope_note"]
+
+
+async def test_spectrum_lines_match_the_simulators_truth(demo: Running) -> None:
+    truth = Simulation(load_scenario("demo"), seed=0).truth(10.0)["points"]["P-101-DE-H"]
+    code, doc = await demo.get("/api/v1/points/P-101-DE-H/spectrum")
+    assert code == 200
+    one = next(m for m in doc["markers"] if m["key"] == "1x")
+    f1 = truth["speed_hz"]
+    assert one["frequency_hz"] == pytest.approx(f1)
+    # the simulator's 1× line: velocity r.m.s. in mm/s (analytic, from its model parameters)
+    v_truth = truth["orders_mm_s"]["1"]
+    assert one["velocity_mm_s"] == pytest.approx(v_truth, rel=0.03)
+    # acceleration r.m.s. of the same line: a = v·2πf (FIELD_NOTES §5)
+    assert one["acceleration_g"] == pytest.approx(v_truth * 2 * math.pi * f1 / (G_M_S2 * 1000), rel=0.03)
+    # the spectrum's own line at 1× carries it too (within the Hann window's scalloping loss, < 1.5 dB)
+    f = doc["frequency_hz"]
+    k = min(range(len(f)), key=lambda i: abs(f[i] - f1))
+    peak = max(doc["velocity_mm_s"][k - 1 : k + 2])
+    assert 0.84 * v_truth <= peak <= 1.03 * v_truth
+    # and it is the daemon's own order indicator for that frame
+    r = demo.daemon.latest["P-101-DE-H"]
+    if doc["frame_end"] == _rfc(r.t_end_ns):
+        assert one["velocity_mm_s"] == pytest.approx(r.indicators.orders_mm_s["1x"], rel=1e-6)
+    assert "r.m.s." in doc["scaling"]["velocity_mm_s"]
+
+
+def _rfc(t_ns: int) -> str:
+    from edgevib.daemon.web.api import rfc3339
+
+    out = rfc3339(t_ns)
+    assert out is not None
+    return out
+
+
+async def test_envelope_marks_bpfo_on_the_failing_bearing(demo: Running) -> None:
+    truth = Simulation(load_scenario("demo"), seed=0).truth(10.0)["points"]["B-301-DE-H"]
+    code, doc = await demo.get("/api/v1/points/B-301-DE-H/envelope")
+    assert code == 200 and doc["available"] and doc["band_hz"] == [2200.0, 4200.0]
+    fams = {f["key"]: f for f in doc["families"]}
+    bpfo = truth["defect_frequencies_hz"]["bpfo"]
+    assert fams["bpfo"]["expected_hz"] == pytest.approx(bpfo, rel=1e-9)
+    assert fams["bpfo"]["verdict"] == "detected"
+    assert abs(fams["bpfo"]["harmonics"][0]["frequency_hz"] - bpfo) <= max(0.02 * bpfo, doc["resolution_hz"])
+    assert fams["bpfi"]["verdict"] == "not detected"
+    code, healthy = await demo.get("/api/v1/points/M-101-DE-H/envelope")
+    assert code == 200 and all(f["verdict"] == "not detected" for f in healthy["families"])
+    code, mems = await demo.get("/api/v1/points/F-201-NDE-V/envelope")
+    assert code == 200 and mems["available"] is False
+
+
+async def test_waveform_and_bounds(demo: Running) -> None:
+    code, doc = await demo.get("/api/v1/points/B-301-DE-H/waveform?max_points=1000")
+    assert code == 200 and len(doc["t_s"]) <= 1000 and doc["n_samples"] == 8192
+    code, err = await demo.get("/api/v1/points/B-301-DE-H/waveform?max_points=100000000")
+    assert code == 400 and "max_points" in err["error"]
+    code, err = await demo.get("/api/v1/points/B-301-DE-H/spectrum?fmax=abc")
+    assert code == 400 and "fmax" in err["error"]
+    code, err = await demo.get("/api/v1/points/NOPE/spectrum")
+    assert code == 404 and "NOPE" in err["error"]
+    code, err = await demo.get("/api/v1/points/P-101-DE-H/trend?since=yesterday")
+    assert code == 400 and "since" in err["error"]
+
+
+async def test_trend_holds_recent_values_and_limits(demo: Running) -> None:
+    code, doc = await demo.get("/api/v1/points/P-101-DE-H/trend?indicator=velocity_rms_mm_s&since=-1h")
+    assert code == 200 and doc["unit"] == "mm/s" and len(doc["values"]) >= 1
+    assert doc["limits"]["alert"] == pytest.approx(2.8) and doc["limits"]["danger"] == pytest.approx(4.5)
+    assert all(t.endswith("Z") for t in doc["time"])
+    code, doc = await demo.get("/api/v1/points/P-101-DE-H/trend?indicator=order_1x_mm_s")
+    assert code == 200 and doc["limits"]["indicator"] == "imbalance_1x_mm_s"
+
+
+async def test_event_stream_sends_frames(demo: Running) -> None:
+    seen: list[str] = []
+    async with demo.session.get(demo.base + "/api/v1/events") as r:
+        assert r.headers["Content-Type"].startswith("text/event-stream")
+        async with asyncio.timeout(20):
+            async for raw in r.content:
+                line = raw.decode().strip()
+                if line.startswith("event: "):
+                    seen.append(line[7:])
+                if seen.count("frame") >= 3:
+                    break
+    assert seen[0] == "hello" and "frame" in seen
+
+
+async def test_rate_limit_refuses_a_flood(demo: Running) -> None:
+    codes = [(await demo.get("/api/v1"))[0] for _ in range(150)]
+    assert 429 in codes and codes[0] == 200
+
+
+async def test_metrics_and_probes_still_on_the_listener(demo: Running) -> None:
+    code, text = await demo.get("/metrics")
+    assert code == 200 and "edgevib_velocity_rms_meters_per_second" in text
+    assert (await demo.get("/healthz"))[0] == 200
+    code, page = await demo.get("/")
+    assert code == 200 and "uPlot.iife.min.js" in page
+
+
+async def test_actions_are_off_by_default(demo: Running) -> None:
+    code, doc = await demo.post("/api/v1/points/P-101-DE-H/ack")
+    assert code == 403 and "off" in doc["error"]
+    code, doc = await demo.get("/api/v1/session")
+    assert code == 200 and doc["actions"] is False
+
+
+async def test_actions_need_credentials_and_csrf(demo_with_actions: Running) -> None:
+    r = demo_with_actions
+    code, doc = await r.post("/api/v1/points/P-101-DE-H/ack")
+    assert code == 401  # nobody
+    code, doc = await r.post("/api/v1/session", {"token": "not-the-token-at-all"})
+    assert code == 401
+    # a bearer token works without a CSRF token (a browser never sends it by itself) and is recorded as who
+    code, doc = await r.post("/api/v1/points/P-101-DE-H/ack", headers={"Authorization": f"Bearer {TOKEN}"})
+    assert code == 200 and doc["by"] == "token:kim"
+    # a session cookie needs the CSRF token too
+    code, doc = await r.post("/api/v1/session", {"token": TOKEN})
+    assert code == 200 and doc["who"] == "token:kim"
+    csrf = doc["csrf"]
+    code, doc = await r.post("/api/v1/points/P-101-DE-H/shelve", {"reason": "impeller balancing booked",
+                                                                  "duration_s": 600})
+    assert code == 403 and "CSRF" in doc["error"]
+    code, doc = await r.post("/api/v1/points/P-101-DE-H/shelve", {"reason": "impeller balancing booked",
+                                                                  "duration_s": 600},
+                             headers={"X-CSRF-Token": csrf, "Origin": "http://elsewhere.invalid"})
+    assert code == 403 and "cross-origin" in doc["error"]
+    code, doc = await r.post("/api/v1/points/P-101-DE-H/shelve", {"reason": "impeller balancing booked",
+                                                                  "duration_s": 600}, headers={"X-CSRF-Token": csrf})
+    assert code == 200, doc
+    code, alarms = await r.get("/api/v1/alarms?point=P-101-DE-H")
+    assert alarms["alarms"] and all(a["shelved_until_s"] is not None for a in alarms["alarms"]), alarms
+    assert all(a["shelve_reason"] == "impeller balancing booked" for a in alarms["alarms"])
+    code, hist = await r.get("/api/v1/alarms/history?point=P-101-DE-H")
+    assert any(e["by"] == "token:kim" for e in hist["events"]), hist
+
+
+def test_actions_config_needs_an_authentication_means(tmp_path: Path) -> None:
+    from edgevib.daemon.config import parse_config
+    from edgevib.daemon.interfaces import ConfigError
+
+    doc = {"site": {"name": "ql", "state_dir": str(tmp_path)}, "view": {"actions": True}}
+    with pytest.raises(ConfigError, match=r"view\.actions"):
+        parse_config(doc)
+    actions = Actions(ViewConfig(), client_certificates=False)
+    assert actions.enabled is False
