@@ -33,6 +33,7 @@ from edgevib.daemon import __version__
 from edgevib.daemon.frames import indicator_values
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.logs import get_logger
+from edgevib.daemon.timestamps import rfc3339_utc
 from edgevib.daemon.web import panels
 from edgevib.daemon.web.listener import HttpListener
 from edgevib.daemon.web.recent import RecentValues
@@ -75,12 +76,10 @@ PAGE_CSP = ("default-src 'none'; script-src 'self'; style-src 'self'; img-src 's
 
 
 def rfc3339(t_ns: int | float | None) -> str | None:
-    """RFC 3339 UTC with a ``Z`` and milliseconds (``2026-12-02T04:37:23.123Z``)."""
+    """RFC 3339 UTC with a ``Z`` and milliseconds (the daemon's one wire format), ``None`` for no time."""
     if t_ns is None or not math.isfinite(t_ns):
         return None
-    ms = round(t_ns / 1e6)
-    secs, milli = divmod(ms, 1000)
-    return time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(secs)) + f".{milli:03d}Z"
+    return rfc3339_utc(round(t_ns))
 
 
 def parse_time_s(text: str, now_s: float) -> float:
