@@ -48,7 +48,7 @@ def _num(v: Any) -> str:
     if v is None or (isinstance(v, float) and not math.isfinite(v)):
         return "n/a"
     if isinstance(v, float):
-        return f"{v:.4g}"
+        return str(int(v)) if v.is_integer() and abs(v) < 1e12 else f"{v:.5g}"
     return html.escape(str(v))
 
 

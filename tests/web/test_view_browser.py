@@ -42,7 +42,7 @@ class Demo:
         self.port = free_port()
         self.proc = subprocess.Popen(
             [sys.executable, "-m", "edgevib.daemon", "demo", "--metrics-listen", f"127.0.0.1:{self.port}",
-             "--rate", "2", *(extra or [])], stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
+             "--rate", "1", *(extra or [])], stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
         assert self.proc.stdout is not None
         deadline = time.monotonic() + 60
         self.base = ""
@@ -136,8 +136,9 @@ def test_spectrum_marks_the_1x_peak_of_the_imbalanced_pump(browser: Any, demo: D
     page.goto(demo.base + "/#P-101-DE-H")
     page.wait_for_selector('#sp-markers tr[data-marker="1x"]', timeout=20000)
     assert page.locator("#sp-chart canvas").count() == 1  # the chart is drawn
-    # the value the page shows for 1× is the API's for the same frame (frames come every 0.32 s at rate 2)
-    for _ in range(40):
+    # the value the page shows for 1× is the API's for the same frame (a new frame every 0.64 s; the page reloads
+    # its panels at most every 2 s, so the two agree on a frame within a few tries)
+    for _ in range(100):
         frame, value = _marker_and_frame(page)
         doc = api(demo.base, "/api/v1/points/P-101-DE-H/spectrum")
         if doc["frame_end"] == frame:
@@ -173,8 +174,12 @@ def test_envelope_marks_bpfo_on_the_failing_bearing_and_updates_live(browser: An
     assert page.locator("#en-chart canvas").count() == 1 and page.locator("#wf-chart canvas").count() == 1
     # live: the panels reload on their own as frames arrive (Server-Sent Events), without a page reload
     first = page.get_attribute("#panel-envelope", "data-frame-end")
-    wait_until(page, lambda: page.get_attribute("#panel-envelope", "data-frame-end") != first, "a live update")
-    assert page.inner_text("#live") == "live"
+    wait_until(page, lambda: page.get_attribute("#panel-envelope", "data-frame-end") != first, "a live update", 60)
+    wait_until(page, lambda: page.inner_text("#live") == "live", "the event stream", 30)
+    # … and so does the point list (another point's latest frame time moves on)
+    before = page.get_attribute('#point-list li[data-point="P-101-DE-H"]', "data-frame-end")
+    wait_until(page, lambda: page.get_attribute('#point-list li[data-point="P-101-DE-H"]', "data-frame-end") != before,
+               "the point list to follow the frames", 60)
     # the trend fills with recent values and shows the limits of the alarm layer
     page.wait_for_selector("#tr-chart canvas", timeout=20000)
     page.close()

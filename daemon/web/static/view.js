@@ -7,7 +7,7 @@
   const COLORS = { line: "#1f2a2e", accent: "#136f63", order: "#136f63", defect: "#a4262c", side: "#b86e00",
                    alert: "#b86e00", danger: "#a4262c", proj: "#6b4fa0", grid: "#e6e0d2" };
   const state = { points: [], selected: null, session: null, charts: {}, spectrum: null, envelope: null,
-                  waveform: null, trend: null, refreshTimer: null, lastRefresh: 0, report: null };
+                  waveform: null, trend: null, refreshTimer: null, listTimer: null, lastRefresh: 0, report: null };
 
   // ------------------------------------------------------------------ helpers
   function $(id) { return document.getElementById(id); }
@@ -237,7 +237,7 @@
     list.textContent = "";
     for (const p of state.points) {
       const vel = (p.indicators.find(i => i.name === "velocity_rms_mm_s") || {}).value;
-      const li = el("li", { "data-point": p.id, class: sevClass(p), tabindex: "0",
+      const li = el("li", { "data-point": p.id, "data-frame-end": p.frame_end, class: sevClass(p), tabindex: "0",
                             "aria-current": p.id === state.selected ? "true" : "false" },
         el("div", { class: "line" }, el("span", { class: "pid", text: p.id }),
            el("span", { class: "zone", title: "ISO 20816-3 zone", text: p.iso_zone || "–" })),
@@ -347,8 +347,8 @@
         p.iso_zone = d.iso_zone; p.alarm_state = d.state || p.alarm_state;
         const vel = p.indicators.find(i => i.name === "velocity_rms_mm_s");
         if (vel) vel.value = d.velocity_rms_mm_s; else p.indicators.push({ name: "velocity_rms_mm_s", value: d.velocity_rms_mm_s, unit: "mm/s" });
-        const li = document.querySelector(`li[data-point="${CSS.escape(d.point)}"]`);
-        if (li) li.setAttribute("data-frame-end", d.frame_end);
+        p.frame_end = d.frame_end;
+        if (!state.listTimer) state.listTimer = setTimeout(() => { state.listTimer = null; renderPoints(); }, 1000);
       }
       if (d.point === state.selected || !state.lastRefresh) scheduleRefresh();
     });
