@@ -30,7 +30,7 @@ import numpy as np
 from aiohttp import web
 
 from edgevib.daemon import __version__
-from edgevib.daemon.frames import indicator_values
+from edgevib.daemon.indicators import INDICATORS, REGISTRY
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.logs import get_logger
 from edgevib.daemon.timestamps import rfc3339_utc
@@ -47,6 +47,7 @@ __all__ = [
     "RATE_PER_S",
     "ViewService",
     "dumps",
+    "indicator_rows",
     "indicator_unit",
     "jsonable",
     "rfc3339",
@@ -110,15 +111,26 @@ def parse_time_s(text: str, now_s: float) -> float:
     return d.timestamp()
 
 
-_UNITS = (("_mm_s", "mm/s"), ("_g", "g"), ("_um", "µm"), ("_hz", "Hz"), ("_db", "dB"))
-
-
 def indicator_unit(name: str) -> str:
-    """The unit of an indicator from its name's suffix (``velocity_rms_mm_s`` → ``mm/s``; ``1`` for ratios)."""
-    for suffix, unit in _UNITS:
-        if name.endswith(suffix):
-            return unit
-    return "1"
+    """The unit of a flat indicator name (``velocity_rms_mm_s``, ``order_velocity_rms_mm_s.1x``) from the registry."""
+    ind = INDICATORS.get(name.split(".", 1)[0])
+    return ind.unit if ind is not None else "1"
+
+
+def indicator_rows(r: FrameResult) -> list[dict[str, Any]]:
+    """Every registry indicator of a frame as ``{name, value, unit, kind, description}``: scalars by name,
+    per-order and per-family ones as ``NAME.KEY`` (``order_velocity_rms_mm_s.1x``, ``envelope_snr_db.bpfo``);
+    ``kind`` is ``overall``, ``order``, ``family`` or ``limit`` (the fault-named views that alarm limits use)."""
+    rows: list[dict[str, Any]] = []
+    for ind in REGISTRY:
+        limit_view = ind.fault is not None and ind.mqtt is None and ind.report is None and ind.prometheus is None
+        kind = "limit" if limit_view else ind.per or "overall"
+        for key, v in ind.values(r).items():
+            if isinstance(v, float) and not math.isfinite(v):
+                v = None
+            rows.append({"name": f"{ind.name}.{key}" if key else ind.name, "value": v, "unit": ind.unit,
+                         "kind": kind, "description": ind.text(key)})
+    return rows
 
 
 def jsonable(value: Any) -> Any:
@@ -317,7 +329,8 @@ class ViewService:
     async def on_frames(self, results: list[FrameResult]) -> None:
         latest: dict[str, FrameResult] = {}
         for r in results:
-            self.recent.add(r.point_id, r.t_end_ns / 1e9, indicator_values(r.indicators))
+            self.recent.add(r.point_id, r.t_end_ns / 1e9,
+                            {row["name"]: row["value"] for row in indicator_rows(r) if row["kind"] != "limit"})
             latest[r.point_id] = r
         if self._streams:
             for r in latest.values():
@@ -512,8 +525,7 @@ class ViewService:
                        iso_zone=r.iso_zone,
                        speed={"hz": ind.shaft_hz, "rpm": None if ind.shaft_hz is None else ind.shaft_hz * 60,
                               "source": source},
-                       indicators=[{"name": k, "value": v, "unit": indicator_unit(k)}
-                                   for k, v in indicator_values(ind).items()])
+                       indicators=[row for row in indicator_rows(r) if row["kind"] != "limit"])
         return doc
 
     async def _points(self, _request: web.Request) -> web.Response:
@@ -634,10 +646,12 @@ class ViewService:
 
     @staticmethod
     def _limits_for(indicator: str, rows: Iterable[dict[str, Any]]) -> dict[str, Any]:
-        # the alarm layer names order and family indicators by fault (imbalance_1x_mm_s, bearing_bpfo_g…)
-        aliases = {"order_1x_mm_s": "imbalance_1x_mm_s", "order_2x_mm_s": "misalignment_2x_mm_s"}
+        # alarm limits name order and family indicators by fault (imbalance_1x_mm_s, bearing_bpfo_g…)
+        aliases = {"order_velocity_rms_mm_s.1x": "imbalance_1x_mm_s", "order_velocity_rms_mm_s.2x":
+                   "misalignment_2x_mm_s"}
         for fam in ("bpfo", "bpfi", "bsf", "ftf"):
-            aliases[f"envelope_{fam}_g"] = f"bearing_{fam}_g"
+            aliases[f"envelope_amplitude_g.{fam}"] = f"bearing_{fam}_g"
+            aliases[f"envelope_snr_db.{fam}"] = f"bearing_{fam}_snr_db"
         name = aliases.get(indicator, indicator)
         for row in rows:
             if row.get("indicator") == name:

@@ -155,7 +155,7 @@ async def test_trend_holds_recent_values_and_limits(demo: Running) -> None:
     assert code == 200 and doc["unit"] == "mm/s" and len(doc["values"]) >= 1
     assert doc["limits"]["alert"] == pytest.approx(2.8) and doc["limits"]["danger"] == pytest.approx(4.5)
     assert all(t.endswith("Z") for t in doc["time"])
-    code, doc = await demo.get("/api/v1/points/P-101-DE-H/trend?indicator=order_1x_mm_s")
+    code, doc = await demo.get("/api/v1/points/P-101-DE-H/trend?indicator=order_velocity_rms_mm_s.1x")
     assert code == 200 and doc["limits"]["indicator"] == "imbalance_1x_mm_s"
 
 

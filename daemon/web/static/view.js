@@ -260,15 +260,17 @@
     figs.append(el("span", { class: "fig" }, el("b", { text: "zone " }), p.iso_zone || "n/a"));
     figs.append(el("span", { class: "fig", "data-alarm-state": p.alarm_state }, el("b", { text: "alarm " }), p.alarm_state));
     for (const i of p.indicators) {
-      if (i.value === null) continue;
+      if (i.value === null || i.kind === "family" || i.name === "iso_zone") continue;
       figs.append(el("span", { class: "fig", "data-indicator": i.name },
-        el("b", { text: i.name.replace(/_(mm_s|g|um|hz|db)$/, "") + " " }), `${num(i.value, 4)} ${i.unit === "1" ? "" : i.unit}`));
+        el("b", { title: i.description || "", text: i.name.replace(/_(mm_s|g|um|hz|db)(?=$|\.)/, "") + " " }),
+        `${num(i.value, 4)} ${i.unit === "1" ? "" : i.unit}`));
     }
     const sel = $("tr-ind"), current = sel.value;
     const names = p.indicators.map(i => i.name);
     if (sel.options.length !== names.length) {
       sel.textContent = "";
       for (const n of names) sel.append(el("option", { value: n, text: n }));
+      // the order and family values are long lists: the overall ones first
       sel.value = names.includes(current) ? current : "velocity_rms_mm_s";
     }
   }
