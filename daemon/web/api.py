@@ -317,6 +317,9 @@ class ViewService:
                 listeners.append(self._on_alarm_event)
 
     def _find_alarm_layer(self) -> Any:
+        view = getattr(self.daemon, "alarm_view", None)
+        if callable(getattr(view, "snapshot", None)) and callable(getattr(view, "handle_command", None)):
+            return view
         for sink in getattr(self.daemon, "sinks", ()):
             if callable(getattr(sink, "snapshot", None)) and callable(getattr(sink, "handle_command", None)):
                 return sink
