@@ -420,7 +420,7 @@ def _analyze(args: argparse.Namespace) -> tuple[dict[str, Any], list[str]]:
     return result, warnings
 
 
-def _write_report(out: Path, result: dict[str, Any], x_g: npt.NDArray[np.float64], fs: float, plan: Any,
+def _write_report(out: Path, result: dict[str, Any], x_g: np.ndarray, fs: float, plan: Any,
                   frame: FrameResult) -> None:
     """``--report``: the recording's panels in one self-contained HTML file."""
     from edgevib.daemon.web.api import indicator_rows
@@ -433,7 +433,7 @@ def _write_report(out: Path, result: dict[str, Any], x_g: npt.NDArray[np.float64
         raise InputError(f"--report {out}: folder {out.parent} does not exist")
     ind = frame.indicators
     spectrum = spectrum_panel(x_g, fs, plan, ind.shaft_hz)
-    envelope = envelope_panel(x_g, fs, plan, ind.shaft_hz, ind.envelope)
+    envelope = envelope_panel(x_g, fs, plan, ind.shaft_hz)
     waveform = waveform_panel(x_g, fs)
     rows = [(row["name"], row["value"], row["unit"]) for row in indicator_rows(frame)
             if row["kind"] != "limit" and row["name"] != "iso_zone"]

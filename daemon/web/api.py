@@ -604,8 +604,8 @@ class ViewService:
         lines = _int_param(request, "max_lines", 16, panels.MAX_LINES)
 
         def build(r: FrameResult, plan: Any) -> dict[str, Any]:
-            return panels.envelope_panel(r.samples, r.fs_hz, plan, r.indicators.shaft_hz, r.indicators.envelope,
-                                         fmax_hz=fmax, max_lines=lines)
+            return panels.envelope_panel(r.samples, r.fs_hz, plan, r.indicators.shaft_hz, fmax_hz=fmax,
+                                         max_lines=lines)
         return await self._panel(request, "envelope", build, (fmax, lines))
 
     async def _waveform(self, request: web.Request) -> web.Response:

@@ -13,9 +13,9 @@ reads what the daemon's indicators read for the same frame:
 * **Order markers** read the velocity r.m.s. of the three lines around the largest line within the order's
   tolerance (the pipeline's ``order_amplitudes_mm_s``: a tone between two lines still reads its r.m.s.), and the
   acceleration r.m.s. over the same three lines.
-* **Envelope spectrum**: :func:`edgevib.pipelines.envelope.envelope_amplitude_spectrum` (peak reading, g) over the
-  point's demodulation band; each family's harmonics are searched within the slip tolerance with the pipeline's
-  ``search_families`` (level over the local median floor in dB).
+* **Envelope spectrum**: :func:`edgevib.pipelines.spectrum_views.envelope_view` (peak reading, g) over the
+  point's demodulation band, with each family's fundamental, harmonics and sidebands as the numerical core searched
+  them (level over the local mean level, threshold, verdict) — the daemon's own detection for that frame.
 * Large spectra are reduced by **peak hold** (each group of lines shows its largest value at its first line's
   frequency), so no peak is lost; markers always carry the exact values.
 """
@@ -23,16 +23,15 @@ reads what the daemon's indicators read for the same frame:
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
 import numpy.typing as npt
 
 from edgevib.pipelines import _fft
-from edgevib.pipelines.analysis import FAMILIES, order_key
+from edgevib.pipelines.analysis import order_key
 from edgevib.pipelines.bearings import defect_frequencies
-from edgevib.pipelines.envelope import HARMONIC_SNR_DB, envelope_amplitude_spectrum, search_families
+from edgevib.pipelines.envelope import envelope_amplitude_spectrum
 from edgevib.pipelines.spectrum import (
     hann_lines,
     integration_coefficients,
@@ -40,6 +39,7 @@ from edgevib.pipelines.spectrum import (
     power3,
     window_argmax,
 )
+from edgevib.pipelines.spectrum_views import FamilyMarkers, LineMarker, envelope_view
 from edgevib.pipelines.types import AnalysisPlan, FamilyResult, PipelineError
 
 __all__ = [
@@ -65,10 +65,6 @@ MARKER_ORDERS = (0.5, 1.0, 1.5, 2.0, 2.5, 3.0, 4.0, 5.0, 6.0, 7.0, 8.0, 9.0, 10.
 ANTI_ALIAS_RATIO = 2.56  # usable band of an anti-aliased acquisition: fs/2.56 (common practice)
 FAMILY_LABELS = {"ftf": "FTF", "bpfo": "BPFO", "bpfi": "BPFI", "bsf": "2×BSF"}
 FAMILY_MEANING = {"ftf": "cage", "bpfo": "outer race", "bpfi": "inner race", "bsf": "rolling element"}
-VERDICT_MIN_HARMONICS = 2
-VERDICT_RULE = (f"detected: the fundamental stands ≥ {HARMONIC_SNR_DB:g} dB over its local floor and at least "
-                f"{VERDICT_MIN_HARMONICS} harmonics do; possible: the fundamental alone; otherwise not detected "
-                "(common practice)")
 
 
 class PanelError(PipelineError):
@@ -190,29 +186,30 @@ def spectrum_panel(x_g: npt.ArrayLike, fs_hz: float, plan: AnalysisPlan, shaft_h
     }
 
 
-def family_verdict(fam: FamilyResult | None) -> str:
-    """``detected`` / ``possible`` / ``not detected`` from a family's fundamental SNR and harmonics found."""
-    if fam is None or not math.isfinite(fam.snr_db) or fam.snr_db < HARMONIC_SNR_DB:
+def family_verdict(fam: FamilyMarkers | FamilyResult | None) -> str:
+    """``detected``, ``ambiguous`` (the fundamental coincides with a line that carries more evidence: the verdict
+    is withheld) or ``not detected`` — the numerical core's verdict."""
+    if fam is None:
         return "not detected"
-    return "detected" if fam.harmonics_found >= VERDICT_MIN_HARMONICS else "possible"
+    if fam.detected:
+        return "detected"
+    return "ambiguous" if fam.ambiguous_with is not None else "not detected"
 
 
-def _search(amp: FloatArray, expected: list[float], slip: float, df: float) -> list[tuple[float, float, float]]:
-    """(found Hz, amplitude g, SNR dB) of each expected line (NaN where its window does not fit)."""
-    if not expected:
-        return []
-    freq, value, snr, _found = search_families(amp[None, :], np.asarray([expected], dtype=np.float64), slip, 1, df)
-    return [(float(freq[0, i]), float(value[0, i]), float(snr[0, i])) for i in range(len(expected))]
+def _line(m: LineMarker, freqs: FloatArray, amp: FloatArray) -> dict[str, Any]:
+    k = None if m.found_hz is None or freqs.size < 2 else round(m.found_hz / freqs[1])
+    return {"order": m.order, "expected_hz": m.expected_hz, "window_hz": list(m.window_hz),
+            "frequency_hz": m.found_hz, "amplitude_g": None if k is None or k >= amp.size else float(amp[k]),
+            "snr_db": m.level_db, "threshold_db": m.threshold_db, "counted": m.counted}
 
 
-def envelope_panel(x_g: npt.ArrayLike, fs_hz: float, plan: AnalysisPlan, shaft_hz: float | None,
-                   families: Mapping[str, FamilyResult] | None = None, *, fmax_hz: float | None = None,
-                   max_lines: int | None = None) -> dict[str, Any]:
+def envelope_panel(x_g: npt.ArrayLike, fs_hz: float, plan: AnalysisPlan, shaft_hz: float | None, *,
+                   fmax_hz: float | None = None, max_lines: int | None = None) -> dict[str, Any]:
     """Envelope spectrum of one frame with the bearing families' harmonics, sidebands and verdicts.
 
-    ``families`` are the daemon's family results for this frame (their SNR and harmonics found give the
-    verdicts); without them the verdicts come from this panel's own search.  A point without a demodulation band
-    returns ``{"available": False, "reason": …}``.
+    Drawn from :func:`edgevib.pipelines.spectrum_views.envelope_view` (the same search and verdicts as the
+    daemon's indicators).  A point without a demodulation band returns ``{"available": False, "reason": …}``;
+    without a bearing or a known speed, the spectrum without families (``note`` says why).
     """
     x = _frame(x_g, fs_hz)
     band = plan.envelope_band_hz
@@ -223,65 +220,60 @@ def envelope_panel(x_g: npt.ArrayLike, fs_hz: float, plan: AnalysisPlan, shaft_h
     df = fs_hz / x.size
     width = band[1] - band[0]
     shaft = shaft_hz if shaft_hz is not None and math.isfinite(shaft_hz) and shaft_hz > 0 else None
-    known = shaft is not None
-    d = defect_frequencies(plan.bearing, shaft) if plan.bearing is not None and shaft is not None else None
-    if fmax_hz is None:
-        top = 0.0 if d is None else (plan.harmonics + 0.5) * max(d.bpfo_hz, d.bpfi_hz, 2 * d.bsf_hz) * 1.15
-        fmax = min(width, max(500.0, top))
+    view = envelope_view(x, plan, shaft) if plan.bearing is not None and shaft is not None else None
+    if view is not None:
+        freqs, amp = view.freqs_hz, view.amplitude_g
     else:
-        fmax = float(fmax_hz)
-    if not math.isfinite(fmax) or not 2 * df < fmax <= width:
-        raise PanelError(f"fmax {fmax_hz!r} Hz must be above {2 * df:g} Hz and at most the band width {width:g} Hz")
-    freqs, amp2 = envelope_amplitude_spectrum(x, fs_hz, band, max_frequency_hz=fmax)
-    amp = amp2[0]
+        freqs, amp2 = envelope_amplitude_spectrum(x, fs_hz, band, max_frequency_hz=min(width, 1000.0))
+        amp = amp2[0]
+    top = float(freqs[-1])
+    fmax = top if fmax_hz is None else float(fmax_hz)
+    if not math.isfinite(fmax) or not 2 * df < fmax:
+        raise PanelError(f"fmax {fmax_hz!r} Hz must be above {2 * df:g} Hz")
+    fmax = min(fmax, top)
     keep = freqs <= fmax + 1e-9
     f_shown, (a_shown,), group = _peak_hold(freqs[keep], [amp[keep]], lines)
     out_families: list[dict[str, Any]] = []
-    if d is not None and shaft_hz is not None:
-        fundamentals = {"ftf": d.ftf_hz, "bpfo": d.bpfo_hz, "bpfi": d.bpfi_hz, "bsf": 2 * d.bsf_hz}
-        sideband_hz = {"bpfi": shaft_hz, "bsf": d.ftf_hz}  # inner race: ±1× shaft; rolling element: ±FTF
-        for name in FAMILIES:
-            f0 = fundamentals[name]
-            hs = [h for h in range(1, plan.harmonics + 1) if h * f0 * (1 + plan.slip_tolerance) < freqs[-1]]
-            found = _search(amp, [h * f0 for h in hs], plan.slip_tolerance, df)
-            harmonics = []
-            for h, (fh, ah, sh) in zip(hs, found, strict=True):
-                row: dict[str, Any] = {"harmonic": h, "expected_hz": h * f0, "frequency_hz": fh, "amplitude_g": ah,
-                                       "snr_db": sh, "sidebands": []}
-                sb = sideband_hz.get(name)
-                if sb is not None and math.isfinite(fh):
-                    centres = [fh - sb, fh + sb]
-                    for side, (fs_, as_, ss_) in zip(("-", "+"), _search(amp, centres, plan.slip_tolerance, df),
-                                                      strict=True):
-                        row["sidebands"].append({"side": side, "spacing_hz": sb, "frequency_hz": fs_,
-                                                 "amplitude_g": as_, "snr_db": ss_})
-                harmonics.append(row)
-            daemon_fam = None if families is None else families.get(name)
-            if daemon_fam is None and harmonics and math.isfinite(harmonics[0]["snr_db"]):
-                daemon_fam = FamilyResult(expected_hz=f0, frequency_hz=harmonics[0]["frequency_hz"],
-                                          amplitude_g=harmonics[0]["amplitude_g"], snr_db=harmonics[0]["snr_db"],
-                                          harmonics_found=sum(1 for r in harmonics
-                                                              if math.isfinite(r["snr_db"])
-                                                              and r["snr_db"] >= HARMONIC_SNR_DB))
+    d = defect_frequencies(plan.bearing, view.shaft_hz) if view is not None and plan.bearing is not None else None
+    if view is not None:
+        for fam in view.families:
+            tones = [m for m in fam.lines if m.kind in ("fundamental", "harmonic")]
+            sides = [m for m in fam.lines if m.kind == "sideband"]
+            harmonics = [{"harmonic": int(m.order), **_line(m, freqs, amp), "sidebands": []} for m in tones]
+            # modulation frequency of the sidebands (the numerical core's): FTF for 2×BSF, the shaft otherwise
+            spacing = (d.ftf_hz if fam.family == "bsf" else view.shaft_hz) if sides and d is not None else None
+            for m in sides:
+                if harmonics:
+                    harmonics[0]["sidebands"].append({"side": "-" if m.order < 0 else "+", **_line(m, freqs, amp)})
+            first = harmonics[0] if harmonics else {}
             out_families.append({
-                "key": name, "label": FAMILY_LABELS[name], "meaning": FAMILY_MEANING[name], "expected_hz": f0,
-                "sideband_spacing_hz": sideband_hz.get(name),
-                "verdict": family_verdict(daemon_fam),
-                "snr_db": None if daemon_fam is None else daemon_fam.snr_db,
-                "harmonics_found": None if daemon_fam is None else daemon_fam.harmonics_found,
+                "key": fam.family, "label": FAMILY_LABELS[fam.family], "meaning": FAMILY_MEANING[fam.family],
+                "expected_hz": fam.expected_hz, "sideband_spacing_hz": spacing,
+                "verdict": family_verdict(fam), "ambiguous_with": fam.ambiguous_with,
+                "snr_db": first.get("snr_db"), "depth": fam.depth, "amplitude_g": fam.amplitude_g,
+                "harmonics_found": sum(1 for m in tones if m.counted),
+                "sidebands_found": sum(1 for m in sides if m.counted),
                 "harmonics": harmonics,
             })
+    note = None
+    if plan.bearing is None:
+        note = "no bearing configured: no defect families"
+    elif shaft is None:
+        note = "shaft speed unknown: no defect families"
     return {
         "available": True, "fs_hz": fs_hz, "n_samples": x.size, "resolution_hz": df, "band_hz": list(band),
-        "max_frequency_hz": fmax, "shaft_hz": shaft_hz if known else None,
+        "max_frequency_hz": fmax, "shaft_hz": shaft,
         "scaling": {"amplitude_g": "peak amplitude of each envelope component, g (Hann window)",
                     "reduction": "none" if group == 1 else f"peak hold over groups of {group} lines",
-                    "snr_db": "line over the median of the envelope spectrum within ±20 % of its frequency",
-                    "verdict": VERDICT_RULE},
+                    "snr_db": "squared-envelope line over its local mean level, dB; threshold_db is the level it "
+                              "had to exceed (the numerical core's false-alarm setting)",
+                    "verdict": "the numerical core's per-family detection (fundamental, harmonics and sidebands "
+                               "over their thresholds, coincidences resolved)"},
         "slip_tolerance": plan.slip_tolerance,
         "frequency_hz": f_shown, "amplitude_g": a_shown,
         "families": out_families,
-        "note": None if known else "shaft speed unknown: no defect families",
+        "detected": list(view.detected) if view is not None else [],
+        "note": note,
     }
 
 

@@ -146,16 +146,17 @@
         if (strong) for (const sb of h.sidebands) if (sb.frequency_hz !== null)
           marks.push({ x: sb.frequency_hz, label: "", color: COLORS.side, dash: [2, 2] });
       }
-      const cls = fam.verdict === "detected" ? "v-detected" : fam.verdict === "possible" ? "v-possible" : "v-not";
+      const cls = fam.verdict === "detected" ? "v-detected" : fam.verdict === "ambiguous" ? "v-possible" : "v-not";
       const first = fam.harmonics[0] || {};
       body.append(el("tr", { "data-family": fam.key, "data-verdict": fam.verdict },
         el("td", { text: `${fam.label} (${fam.meaning})` }),
         el("td", { text: `${num(fam.expected_hz, 5)} Hz` }),
         el("td", { text: first.frequency_hz === null || first.frequency_hz === undefined ? "n/a" : `${num(first.frequency_hz, 5)} Hz` }),
-        el("td", { text: fam.snr_db === null ? "n/a" : `${num(first.amplitude_g, 3)} g, ${num(fam.snr_db, 3)} dB` }),
-        el("td", { text: fam.harmonics_found === null ? "n/a" : `${fam.harmonics_found} of ${fam.harmonics.length}` +
-                         (fam.sideband_spacing_hz ? ` (sidebands ±${num(fam.sideband_spacing_hz, 4)} Hz)` : "") }),
-        el("td", { class: cls, text: fam.verdict })));
+        el("td", { text: fam.snr_db === null ? "n/a" : `${num(first.amplitude_g, 3)} g, ${num(fam.snr_db, 3)} dB` +
+                         (first.threshold_db !== null && first.threshold_db !== undefined ? ` (needs ${num(first.threshold_db, 3)})` : "") }),
+        el("td", { text: `${fam.harmonics_found} of ${fam.harmonics.length}` +
+                         (fam.sideband_spacing_hz ? `; sidebands ${fam.sidebands_found} (±${num(fam.sideband_spacing_hz, 4)} Hz)` : "") }),
+        el("td", { class: cls, text: fam.verdict + (fam.ambiguous_with ? ` (with ${fam.ambiguous_with})` : "") })));
     }
     makeChart("envelope", $("en-chart"), {
       scales: { x: { time: false }, y: log ? { distr: 3 } : { range: (u, lo, hi) => [0, hi > 0 ? hi * 1.05 : 1] } },
