@@ -29,8 +29,8 @@ from edgevib.daemon.frames import Stats
 from edgevib.daemon.indicators import REGISTRY, Indicator, Si, meaning
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.logs import get_logger
-from edgevib.pipelines.machine_state import MACHINE_STATES
 from edgevib.daemon.web.listener import HttpListener
+from edgevib.pipelines.machine_state import MACHINE_STATES
 
 __all__ = ["PROMETHEUS", "IndicatorCollector", "PrometheusSink"]
 

@@ -478,6 +478,9 @@ class ViewService:
                 or row.get("shelved_until_s") is not None)
 
     def _machine_state(self, machine_id: str, pid: str, r: FrameResult | None) -> str:
+        state = getattr(r, "machine_state", None)
+        if state is not None:  # the machine state the daemon judged the latest frame in
+            return str(getattr(state, "state", state))
         layer = self._alarm_layer
         fn = getattr(layer, "machine_state", None)
         if callable(fn):
