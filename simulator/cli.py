@@ -219,7 +219,11 @@ async def _stream(args: argparse.Namespace, sim: Simulation, duration: float | N
         stop = asyncio.Event()
         if mqtt is not None:
             loop = asyncio.get_running_loop()
-            mqtt.on_lost = lambda _why: loop.call_soon_threadsafe(stop.set)
+
+            def lost(_why: str) -> None:
+                loop.call_soon_threadsafe(stop.set)
+
+            mqtt.on_lost = lost
         streaming = mqtt is not None or opcua is not None
         t_end = await stream(sim, rate=args.rate if streaming else FILES_RATE, duration_s=duration, mqtt=mqtt,
                              opcua=opcua, wav=wav, stop=stop, on_blocks=_progress(duration))

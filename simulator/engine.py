@@ -270,7 +270,7 @@ class _PointModel:
                 for fi, coeff in comps:
                     c = c + coeff * self.multiplier(fi, t)
                 nu = order * f
-                fac = (s * s) * M.aa_taper(nu, self.fs)
+                fac: npt.NDArray[np.float64] | npt.NDArray[np.complex128] = (s * s) * M.aa_taper(nu, self.fs)
                 if self.p.sensor_type == "piezo":
                     fac = fac * M.piezo_hp_factor(np.maximum(nu, 1e-12), self.p.sensor_model.hp_corner_hz)
                 x += np.real(c * fac * np.exp(2j * math.pi * ((order * base) % 1.0)))
@@ -343,17 +343,24 @@ class _PointModel:
             if not np.any(act):
                 continue
             q = sf.params
+
+            def num(key: str, q: Mapping[str, float | None] = q, kind: str = sf.type) -> float:
+                v = q[key]
+                if v is None:
+                    raise ScenarioError("sensor_faults", f"{kind}: {key} is not set")
+                return float(v)
+
             if sf.type == "bias_shift":
-                y = y + act * q["offset_g"]
+                y = y + act * num("offset_g")
             elif sf.type == "spikes":
                 rng = self._block_rng(_STREAM_SPIKES, k)
                 hit = rng.random(y.size) < (q["rate_per_s"] or 0.0) / self.fs
                 sign = np.where(rng.random(y.size) < 0.5, -1.0, 1.0)
-                y = y + act * hit * sign * q["amplitude_g"]
+                y = y + act * hit * sign * num("amplitude_g")
             elif sf.type == "cable_fault":
-                y = np.where(act & self._cable_mask(sf, k), q["rail_g"], y)
+                y = np.where(act & self._cable_mask(sf, k), num("rail_g"), y)
             elif sf.type == "clipping":
-                level = q["level_g"]
+                level = num("level_g")
                 y = np.where(act, np.clip(y, -level, level), y)
             elif sf.type == "flatline":
                 value = q["value_g"] if q["value_g"] is not None else self.p.sensor_model.dc_offset_g

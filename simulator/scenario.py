@@ -191,7 +191,7 @@ class SensorModel:
     @property
     def lsb_g(self) -> float:
         """ADC quantization step: full range ±range_g over 2^bits counts."""
-        return 2 * self.range_g / 2**self.adc_bits
+        return float(2 * self.range_g / 2**self.adc_bits)
 
 
 @dataclass(frozen=True, slots=True)
@@ -616,7 +616,7 @@ def _machine_reference_rpm(mt: _Table) -> float:
                 nums = [v[1] if isinstance(v, list) and len(v) == 2 else v for v in vals]
                 nums = [float(x) for x in nums if isinstance(x, int | float)]
                 if nums:
-                    return max(nums)
+                    return float(max(nums))
     return 1e9
 
 
