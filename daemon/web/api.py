@@ -635,20 +635,45 @@ class ViewService:
             return problem(400, str(exc))
         limit = _int_param(request, "max_points", 2, TREND_MAX_POINTS) or TREND_MAX_POINTS
         known = self.recent.indicators(p.id)
+        rows, _ = self._alarm_rows(p.id)
+        limits = self._limits_for(indicator, rows)
+        stored = await self._history_trend(p.id, limits["indicator"], since, limit)
+        if stored is not None:
+            t_list = stored["t_s"]
+            return json_response({
+                "api": API_VERSION, "point": p.id, "indicator": limits["indicator"],
+                "unit": indicator_unit(limits["indicator"]),
+                "source": f"the daemon's severity history ({stored['resolution']} resolution) and the trend "
+                          "layer's latest projection",
+                "t_s": t_list, "time": [rfc3339(x * 1e9) for x in t_list], "values": stored["values"],
+                "limits": limits, "projection": stored["projection"], "trend": stored["trend"],
+                "indicators": known})
         if known and indicator not in known:
             return problem(404, f"point {p.id} has no indicator {indicator!r}", indicators=known)
         t, v = await asyncio.to_thread(self.recent.series, p.id, indicator, since)
         if t.size > limit:
             t, v = t[-limit:], v[-limit:]
-        rows, _ = self._alarm_rows(p.id)
-        limits = self._limits_for(indicator, rows)
         return json_response({
             "api": API_VERSION, "point": p.id, "indicator": indicator, "unit": indicator_unit(indicator),
             "source": "recent values held by the daemon in memory (at most "
                       f"{self.recent.capacity} per point, one per {self.recent.interval_s:g} s; lost on restart)",
             "t_s": t.tolist(), "time": [rfc3339(x * 1e9) for x in t.tolist()], "values": v,
-            "limits": limits, "projection": None, "indicators": known,
+            "limits": limits, "projection": None, "trend": None, "indicators": known,
         })
+
+    async def _history_trend(self, point: str, indicator: str, since: float, limit: int) -> dict[str, Any] | None:
+        """The series from the daemon's severity history with the trend layer's projection, when it keeps one."""
+        watch = getattr(self.daemon, "trend_watch", None)
+        if watch is None:
+            return None
+        from edgevib.daemon.trendwatch import HISTORY_INDICATORS
+        from edgevib.daemon.web.trend_source import history_trend
+
+        if indicator not in HISTORY_INDICATORS:
+            return None
+        latest = dict(watch.latest.get((point, indicator)) or {}) or None
+        return await asyncio.to_thread(history_trend, watch.history.path, watch.history.high_percentile, point,
+                                       indicator, since if math.isfinite(since) else None, min(limit, 2000), latest)
 
     @staticmethod
     def _limits_for(indicator: str, rows: Iterable[dict[str, Any]]) -> dict[str, Any]:

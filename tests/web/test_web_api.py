@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import asyncio
 import dataclasses
+import itertools
 import json
 import math
 from collections.abc import AsyncIterator
@@ -242,3 +243,36 @@ def test_actions_config_needs_an_authentication_means(tmp_path: Path) -> None:
         parse_config(doc)
     actions = Actions(ViewConfig(), client_certificates=False)
     assert actions.enabled is False
+
+
+async def test_trend_comes_from_the_severity_history_once_it_holds_the_series(demo: Running) -> None:
+    # the demo keeps a severity history (the trend layer's store); the panel reads it back when it holds the series
+    doc: dict[str, Any] = {}
+    async with asyncio.timeout(60):
+        while "severity history" not in doc.get("source", ""):
+            await asyncio.sleep(0.5)
+            _code, doc = await demo.get("/api/v1/points/P-101-DE-H/trend?indicator=velocity_rms_mm_s")
+    t = doc["t_s"]
+    assert t and all(b > a for a, b in itertools.pairwise(t))
+    v = [x for x in doc["values"] if x is not None]
+    # the imbalanced pump's velocity (ISO 20816-3 zone D: above the 4.5 mm/s C/D boundary for group 2 rigid)
+    assert v and min(v) > 4.5
+    assert doc["limits"]["danger"] == pytest.approx(4.5)
+    assert doc["trend"] is None or "status" in doc["trend"]
+
+
+def test_projection_curve_follows_the_fitted_model() -> None:
+    from edgevib.daemon.web.trend_source import projection_curve
+
+    # closed forms: linear a + b(t − t_ref); exponential exp(a + b(t − t_ref)) (pipelines/trend.py's convention)
+    now = 1.8e9
+    lin = {"t_s": now, "rising": True, "limits": [{"eta_s": 10 * 86400.0}],
+           "fit": {"model": "linear", "t_ref_s": now - 1000.0, "intercept": 2.0, "slope": 1e-5}}
+    c = projection_curve(lin)
+    assert c is not None and c["t_s"][0] == pytest.approx(now)
+    assert c["values"][0] == pytest.approx(2.0 + 1e-5 * 1000.0)
+    assert c["t_s"][-1] == pytest.approx(now + 11 * 86400.0)  # 10 % past the furthest crossing
+    exp_fit = {**lin, "fit": {"model": "exponential", "t_ref_s": now, "intercept": math.log(1.5), "slope": 1e-6}}
+    c = projection_curve(exp_fit)
+    assert c is not None and c["values"][-1] == pytest.approx(1.5 * math.exp(1e-6 * (c["t_s"][-1] - now)))
+    assert projection_curve({**lin, "rising": False}) is None

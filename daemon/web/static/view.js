@@ -218,7 +218,8 @@
       data.push(pad(t.length).concat(proj.values));
       data[0] = xs;
     }
-    $("tr-src").textContent = doc.source || "";
+    const advice = doc.trend && doc.trend.advice_text ? ` — ${doc.trend.advice_text}` : "";
+    $("tr-src").textContent = (doc.source || "") + advice;
     $("panel-trend").setAttribute("data-count", String(t.length));
     makeChart("trend", $("tr-chart"), {
       scales: { x: { time: true } },
