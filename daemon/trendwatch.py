@@ -41,6 +41,7 @@ from edgevib.daemon.history import (
     HistoryError,
     HistoryReader,
     HistoryRecorder,
+    HistorySeries,
     HistorySettings,
     history_settings,
 )
@@ -333,7 +334,7 @@ class TrendWatch:
         self.config = config
         self.registry = registry
         self._collector: TrendCollector | None = None
-        self.history = history
+        self.history_settings = history
         self.settings = settings
         self.alarm_layer = alarm_layer
         self.clock = clock
@@ -350,7 +351,7 @@ class TrendWatch:
     # ------------------------------------------------------------------ lifecycle
 
     async def start(self) -> None:
-        self.recorder = await asyncio.to_thread(HistoryRecorder, self.history, HISTORY_INDICATORS)
+        self.recorder = await asyncio.to_thread(HistoryRecorder, self.history_settings, HISTORY_INDICATORS)
         with contextlib.suppress(HistoryError):
             await asyncio.to_thread(self._load_stored)
         await self.recorder.start()
@@ -364,10 +365,10 @@ class TrendWatch:
             self._collector = TrendCollector(self)
             with contextlib.suppress(ValueError):
                 self.registry.register(self._collector)
-        log.info("trend layer started", history=self.history.path, tracked=len(self._tracked()))
+        log.info("trend layer started", history=self.history_settings.path, tracked=len(self._tracked()))
 
     def _load_stored(self) -> None:
-        with HistoryReader(self.history.path, self.history.high_percentile) as r:
+        with HistoryReader(self.history_settings.path, self.history_settings.high_percentile) as r:
             for key, doc in r.projections().items():
                 if key[0] in self.points:
                     self.latest[key] = doc
@@ -391,8 +392,8 @@ class TrendWatch:
         self.config = config
         self.points = {p.id: p for p in config.points}
         self.machines = {m.id: m for m in config.machines}
-        if getattr(config, "history", self.history) != self.history or \
-                getattr(config, "trend", self.settings) != self.settings:
+        if history_settings(config.history) != self.history_settings or \
+                trend_settings(config.trend) != self.settings:
             log.warning("history or trend settings changed; restart edgevib to apply them")
 
     # ------------------------------------------------------------------ frames
@@ -470,7 +471,7 @@ class TrendWatch:
         spec = self.settings.spec()
         n = 0
         try:
-            reader = HistoryReader(self.history.path, self.history.high_percentile)
+            reader = HistoryReader(self.history_settings.path, self.history_settings.high_percentile)
         except HistoryError as exc:
             self._rlog.error("reader", "cannot read the history", error=str(exc))
             return 0
@@ -546,6 +547,27 @@ class TrendWatch:
 
     def collector(self) -> TrendCollector:
         return TrendCollector(self)
+
+    def history(self, point: str, indicator: str, since_s: float | None = None, max_points: int = 500,
+                level: str = "auto") -> HistorySeries:
+        """Read-only: the recorded series of a point's indicator (roll-up medians, or frame values with
+        ``level="frames"``; the roll-ups' min/mean/max/high percentile and the not-running periods with it).
+        Opens the history file read-only (safe from any thread, beside the writer); raises HistoryError."""
+        with HistoryReader(self.history_settings.path, self.history_settings.high_percentile) as r:
+            until = r.latest_time_s(point)
+            return r.series(point, indicator, since_s=since_s, until_s=until, level=level, max_points=max_points)
+
+    def projection(self, point: str, indicator: str) -> dict[str, Any] | None:
+        """Read-only: the latest trend document of a series (see :func:`evaluate`), or None."""
+        doc = self.latest.get((point, indicator))
+        return None if doc is None else dict(doc)
+
+    def projections(self, point: str | None = None) -> dict[str, dict[str, Any]]:
+        """Read-only: indicator → latest trend document, of one point (or ``"point/indicator"`` keys for all)."""
+        items = list(self.latest.items())
+        if point is not None:
+            return {ind: dict(doc) for (pid, ind), doc in items if pid == point}
+        return {f"{pid}/{ind}": dict(doc) for (pid, ind), doc in items}
 
 
 def _compact(doc: Mapping[str, Any]) -> dict[str, Any]:

@@ -200,3 +200,25 @@ def test_helpers_and_configuration_errors(tmp_path: Path) -> None:
     assert cfg.history.file == str(tmp_path / "h" / "severity.sqlite")
     assert cfg.trend.limit_for(POINT, "acceleration_peak_g") == 20.0
     assert create_trend_watch(_config(tmp_path, history={"enabled": False})) is None
+
+
+async def test_read_only_views_for_the_http_api(tmp_path: Path) -> None:
+    cfg = _config(tmp_path / "state")
+    watch = create_trend_watch(cfg, None)
+    assert watch is not None
+    await watch.start()
+    try:
+        await watch.on_frames([_frame(T0 + i * 3600.0, 1.0 + 0.05 * i, i) for i in range(48)])
+        await asyncio.to_thread(watch.evaluate_all)
+        series = await asyncio.to_thread(watch.history, POINT, "velocity_rms_mm_s")
+        assert series.level == "hour" and series.t_s.size == 48  # 47 h > 500 minutes: hourly, one frame each
+        np.testing.assert_allclose(series.value, 1.0 + 0.05 * np.arange(48), rtol=1e-6)  # float32 storage
+        frames = await asyncio.to_thread(watch.history, POINT, "velocity_rms_mm_s", None, 500, "frames")
+        # frame-rate values are kept for recent_s (15 min) back from the newest frame: here the last one only
+        assert frames.t_s.tolist() == [T0 + 47 * 3600.0] and frames.state == ("running",)
+        doc = watch.projection(POINT, "velocity_rms_mm_s")
+        assert doc is not None and doc["rising"] and watch.projection(POINT, "kurtosis") is None
+        assert set(watch.projections(POINT)) >= {"velocity_rms_mm_s", "imbalance_1x_mm_s"}
+        await watch.reconfigure(cfg)  # unchanged settings: no restart needed
+    finally:
+        await watch.stop()
