@@ -25,6 +25,8 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "check-config": ("edgevib.daemon.service", "validate a configuration file and print it resolved"),
     "analyze": ("edgevib.daemon.offline", "analyse a recorded waveform (WAV, .npy, CSV, MATLAB .mat)"),
     "bearing": ("edgevib.daemon.offline", "print the defect frequencies of a rolling-element bearing"),
+    "trend": ("edgevib.daemon.trendchart", "show a point's severity history with its trend, limits and projection"),
+    "replay": ("edgevib.daemon.replay", "replay recorded snapshots through analysis, history, trend and projection"),
     "simulate": ("edgevib.simulator.cli", "stream simulated machines over MQTT or OPC UA, or write WAV/truth"),
     "alarms": ("edgevib.daemon.alarmctl", "list, acknowledge, shelve or re-learn alarms of a running daemon"),
 }

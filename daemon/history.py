@@ -807,14 +807,28 @@ class HistoryReader:
                                 (pid,)).fetchone()
         return None if row is None else MACHINE_STATES[int(row[0])]
 
-    def level_for(self, point: str, since_s: float, until_s: float, max_points: int,
-                  retention: Mapping[str, float] | None = None) -> str:
-        """The finest roll-up level that covers [since, until] with at most ``max_points`` buckets."""
-        span = max(until_s - since_s, 0.0)
+    def level_for(self, point: str, since_s: float | None, until_s: float | None, max_points: int) -> str:
+        """The finest roll-up level with at most ``max_points`` buckets in [since, until] that still holds the
+        range's oldest data (a level whose older rows were pruned by retention or budget gives way to a coarser
+        one); ``"day"`` when none has few enough."""
+        pid = self._pid(point)
+        if pid is None:
+            raise HistoryError(f"no history for point {point!r}")
+        lo = -(2**62) if since_s is None else math.floor(since_s)
+        hi = 2**62 if until_s is None else math.ceil(until_s)
+        found: dict[str, tuple[int, int | None]] = {}
         for lname, length in LEVELS.items():
-            if retention is not None and retention.get(lname, math.inf) < span:
+            n, first = self.conn.execute("SELECT count(*), min(start_s) FROM rollups WHERE point = ? AND level = ? "
+                                         "AND start_s >= ? AND start_s <= ?",
+                                         (pid, length, lo // length * length, hi)).fetchone()
+            found[lname] = (int(n), None if first is None else int(first))
+        levels = list(LEVELS)
+        for i, lname in enumerate(levels):
+            n, first = found[lname]
+            if first is None or n > max_points:
                 continue
-            if span / length <= max_points:
+            coarser = [(LEVELS[c], found[c][1]) for c in levels[i + 1:]]
+            if all(f is None or first <= f + length for length, f in coarser):
                 return lname
         return "day"
 
@@ -831,14 +845,8 @@ class HistoryReader:
         lo_ns = -(2**62) if since_s is None else math.floor(since_s * 1e9)
         hi_ns = 2**62 if until_s is None else math.ceil(until_s * 1e9)
         if level == "auto":
-            first = self.conn.execute("SELECT min(start_s) FROM rollups WHERE point = ?", (pid,)).fetchone()[0]
-            last = self.latest_time_s(point)
-            if first is None or last is None:
-                level = "frames"
-            else:
-                a = max(float(first), since_s if since_s is not None else -math.inf)
-                b = min(last, until_s if until_s is not None else math.inf)
-                level = self.level_for(point, a, b, max_points)
+            has_rollups = self.conn.execute("SELECT 1 FROM rollups WHERE point = ? LIMIT 1", (pid,)).fetchone()
+            level = self.level_for(point, since_s, until_s, max_points) if has_rollups else "frames"
         periods = self._periods(pid, lo_ns, hi_ns)
         if level == "frames":
             rows = self.conn.execute("SELECT t_ns, layout, state, v FROM frames WHERE point = ? AND t_ns >= ? AND "

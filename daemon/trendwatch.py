@@ -251,9 +251,9 @@ def _rate(slope_per_day: float, unit: str, level: float | None) -> str:
     if level is not None and math.isfinite(level) and level > 0:
         for name, days in per:
             if abs(slope_per_day * days) <= 0.5 * level:
-                return f"{slope_per_day * days:.3g} {unit} per {name}"
-        return f"{slope_per_day / 24:.3g} {unit} per hour"
-    return f"{slope_per_day:.3g} {unit} per day"
+                return f"{slope_per_day * days:.3g}{' ' + unit if unit else ''} per {name}"
+        return f"{slope_per_day / 24:.3g}{' ' + unit if unit else ''} per hour"
+    return f"{slope_per_day:.3g}{' ' + unit if unit else ''} per day"
 
 
 def advice(doc: Mapping[str, Any], *, plan_days: float = 90.0, act_days: float = 14.0) -> tuple[str | None, str | None]:
@@ -261,6 +261,11 @@ def advice(doc: Mapping[str, Any], *, plan_days: float = 90.0, act_days: float =
     if doc.get("status") != "ok":
         return None, None
     unit = doc.get("unit", "")
+    unit = "" if unit == "1" else unit  # a ratio (crest factor, kurtosis): no unit to print
+
+    def q(v: float) -> str:
+        return f"{v:.3g} {unit}" if unit else f"{v:.3g}"
+
     cov = round(100 * float(doc.get("coverage", 0.8)))
     lims = list(doc.get("limits", []))
     reached = [lim for lim in lims if lim["status"] == "reached"]
@@ -269,7 +274,7 @@ def advice(doc: Mapping[str, Any], *, plan_days: float = 90.0, act_days: float =
 
     def when(lim: Mapping[str, Any]) -> str:
         days = lim["eta_s"] / SECONDS_PER_DAY
-        return (f"the {lim['label']} level ({lim['value']:.3g} {unit}) would be reached in about "
+        return (f"the {lim['label']} level ({q(lim['value'])}) would be reached in about "
                 f"{_days(days)}, around {lim['date'][:10]} ({cov} % interval {lim['date_low'][:10]} to "
                 f"{lim['date_high'][:10]})")
 
@@ -279,7 +284,7 @@ def advice(doc: Mapping[str, Any], *, plan_days: float = 90.0, act_days: float =
                    if lim["label"] in _DANGER_CLASS and lim["eta_s"] <= act_days * SECONDS_PER_DAY]
     if danger_reached:
         lim = danger_reached[0]
-        return "act", (f"Act: the {lim['label']} level ({lim['value']:.3g} {unit}) is reached. Take the action "
+        return "act", (f"Act: the {lim['label']} level ({q(lim['value'])}) is reached. Take the action "
                        f"the site's procedures set for it and have a qualified vibration analyst confirm the "
                        f"finding before any intervention. {_DISCLAIMER}")
     if danger_soon:
@@ -293,7 +298,7 @@ def advice(doc: Mapping[str, Any], *, plan_days: float = 90.0, act_days: float =
                         f"example at a scheduled stop. {tail}")
     if reached:
         lim = reached[0]
-        return "plan", (f"Plan: the {lim['label']} level ({lim['value']:.3g} {unit}) is reached"
+        return "plan", (f"Plan: the {lim['label']} level ({q(lim['value'])}) is reached"
                         f"{' and the values are not rising significantly' if not doc.get('rising') else ''}. "
                         f"Plan an inspection and keep trending. {tail}")
     if doc.get("rising"):
@@ -304,9 +309,10 @@ def advice(doc: Mapping[str, Any], *, plan_days: float = 90.0, act_days: float =
                          f"observation and repaired when its severity calls for it. {_DISCLAIMER}")
     step = doc.get("step")
     if step and step.get("significant"):
-        return "watch", (f"Watch: the level has changed by {step['change']:+.3g} {unit} from its baseline "
-                         f"{step['baseline']:.3g} {unit}, more than the significant change {step['threshold']:.3g} "
-                         f"{unit}, without a significant rise since. Look at the narrow-band indicators and keep "
+        change = f"{step['change']:+.3g}" + (f" {unit}" if unit else "")
+        return "watch", (f"Watch: the level has changed by {change} from its baseline {q(step['baseline'])}, "
+                         f"more than the significant change {q(step['threshold'])}, without a significant rise "
+                         f"since. Look at the narrow-band indicators and keep "
                          f"trending. {_DISCLAIMER}")
     return None, None
 

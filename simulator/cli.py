@@ -59,6 +59,11 @@ def configure_simulate(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--emit-config", metavar="PATH", help="write a daemon configuration for the scenario "
                         "and these outputs")
     parser.add_argument("--wav", metavar="DIR", help="write one float32 WAV per point (in g) into DIR")
+    parser.add_argument("--snapshots", metavar="DIR", help="long-run scenarios ([longrun]): write months of "
+                        "snapshots in compressed time into DIR/<point>/ and the truth (with analytic crossing times) "
+                        "into DIR/truth.json; --duration limits the simulated seconds")
+    parser.add_argument("--snapshot-format", default="npy", metavar="npy|wav|csv",
+                        help="file format of --snapshots (default npy)")
 
 
 def _check(args: argparse.Namespace) -> None:
@@ -168,14 +173,16 @@ def _run(args: argparse.Namespace) -> int:
         return 0
     _check(args)
     scenario = load_scenario(args.scenario)
+    if args.snapshots:
+        return _snapshots(args, scenario)
     sim = Simulation(scenario, seed=args.seed, t0_ns=args.t0_ns)
     if args.emit_config:
         _write(args.emit_config, sim.daemon_config_toml(source=_source(args, sim)))
         print(f"edgevib simulate: daemon configuration written to {args.emit_config}")
     streaming = bool(args.mqtt or args.opcua_listen)
     if not (streaming or args.wav or args.truth or args.emit_config):
-        raise _Fail("no output requested: give --mqtt, --opcua-listen, --wav, --truth and/or --emit-config "
-                    "(--list shows the scenarios)")
+        raise _Fail("no output requested: give --mqtt, --opcua-listen, --wav, --truth and/or --emit-config, or "
+                    "--snapshots for a long-run scenario (--list shows the scenarios)")
     if not streaming and not args.wav:
         _write_truth(args, sim, args.truth_at if args.truth_at is not None else (args.duration or 0.0))
         return 0
@@ -183,6 +190,24 @@ def _run(args: argparse.Namespace) -> int:
     if duration is None:
         _write_truth(args, sim, args.truth_at or 0.0)
     return asyncio.run(_stream(args, sim, duration))
+
+
+def _snapshots(args: argparse.Namespace, scenario: Any) -> int:
+    from edgevib.simulator.longrun import LongRun
+
+    if scenario.longrun is None:
+        raise _Fail(f"--snapshots needs a long-run scenario (a [longrun] table); {scenario.name} has none")
+    if args.snapshot_format not in ("npy", "wav", "csv"):
+        raise _Fail(f"--snapshot-format {args.snapshot_format!r}: must be npy, wav or csv")
+    run = LongRun(scenario, seed=args.seed, t0_ns=args.t0_ns)
+    try:
+        root = run.write(args.snapshots, args.snapshot_format, until_s=args.duration)
+    except OSError as exc:
+        raise _Fail(f"cannot write {args.snapshots}: {exc}") from exc
+    n = min(run.count, run.count if args.duration is None else int(args.duration // run.spec.interval_s) + 1)
+    print(f"edgevib simulate: {n} snapshots per point ({run.spec.interval_s / 3600:g} h apart) of scenario "
+          f"{scenario.name}, seed {run.seed}, written to {root}/<point>/; truth in {root / 'truth.json'}")
+    return 0
 
 
 async def _stream(args: argparse.Namespace, sim: Simulation, duration: float | None) -> int:

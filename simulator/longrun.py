@@ -480,9 +480,11 @@ class LongRun:
         for j in range(self.count):
             yield self.snapshot(point, j)
 
-    def write(self, directory: str | Path, fmt: str = "npy", points: list[str] | None = None) -> Path:
-        """Write every snapshot as a file under ``directory/<point>/`` named ``<point>_<UTC time>.<fmt>``
-        (``npy`` float32 in g, ``wav`` float32 at the sample rate, ``csv`` one column) and ``truth.json``."""
+    def write(self, directory: str | Path, fmt: str = "npy", points: list[str] | None = None,
+              until_s: float | None = None) -> Path:
+        """Write every snapshot (up to ``until_s`` of simulated time) as a file under ``directory/<point>/``
+        named ``<point>_<UTC time>.<fmt>`` (``npy`` float32 in g, ``wav`` float32 at the sample rate, ``csv`` one
+        column) and ``truth.json``."""
         if fmt not in ("npy", "wav", "csv"):
             raise ValueError(f"format {fmt!r} is not npy, wav or csv")
         root = Path(directory)
@@ -491,6 +493,8 @@ class LongRun:
             d = root / pid
             d.mkdir(exist_ok=True)
             for snap in self.snapshots(pid):
+                if until_s is not None and snap.t_s > until_s:
+                    break
                 path = d / f"{_safe(pid)}_{_stamp(snap.t0_ns)}.{fmt}"
                 data = snap.samples.astype(np.float32)
                 if fmt == "npy":

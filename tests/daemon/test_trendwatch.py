@@ -211,7 +211,7 @@ async def test_read_only_views_for_the_http_api(tmp_path: Path) -> None:
         await watch.on_frames([_frame(T0 + i * 3600.0, 1.0 + 0.05 * i, i) for i in range(48)])
         await asyncio.to_thread(watch.evaluate_all)
         series = await asyncio.to_thread(watch.history, POINT, "velocity_rms_mm_s")
-        assert series.level == "hour" and series.t_s.size == 48  # 47 h > 500 minutes: hourly, one frame each
+        assert series.level == "minute" and series.t_s.size == 48  # 48 minute buckets hold them (≤ 500)
         np.testing.assert_allclose(series.value, 1.0 + 0.05 * np.arange(48), rtol=1e-6)  # float32 storage
         frames = await asyncio.to_thread(watch.history, POINT, "velocity_rms_mm_s", None, 500, "frames")
         # frame-rate values are kept for recent_s (15 min) back from the newest frame: here the last one only

@@ -1,0 +1,622 @@
+"""``edgevib replay DIR``: a directory (or glob) of timestamped snapshots run through the daemon's own analysis,
+history, trend and projection code, as fast as the CPU allows.
+
+Each file is one snapshot (CSV, WAV, ``.npy``, MATLAB ``.mat``: the readers of ``edgevib analyze``).  Its time:
+
+* ``--time-column SPEC`` — from the CSV file's first data row: ``N`` (a column of seconds; values above 10⁹ are
+  Unix time, smaller ones count from ``--start``) or ``H,M,S[,US]`` (hour, minute, second and microsecond
+  columns of a clock, the date from ``--start``, a new day when the clock goes back);
+* ``--interval S`` — the files in name order, S seconds apart; when every name carries a number (``acc_00017``),
+  the time is (number − first number) × S, so a thinned-out set keeps its true spacing;
+* ``--time-from-name`` — a date and time written in the name: ``20261201T223204Z`` (edgevib's captures and the
+  simulator's snapshots), ``2026-12-01T22:32:04``, ``2003.10.22.12.06.24``;
+* ``--mtime`` — the files' modification times.
+
+Without any of them: the names' date and time when every name has one, else the modification times.
+
+Every snapshot is analysed like ``analyze`` does with the same options (``--fs``, ``--rpm``, ``--bearing``,
+``--column``…), judged running or stopped by the daemon's rule of thumb (velocity r.m.s. above 0.2 mm/s, a given
+speed above 60 r/min), recorded in a history file (a temporary one unless ``--history FILE``) and, for every
+trended indicator, assessed like the daemon does (:func:`edgevib.daemon.trendwatch.evaluate`).  Trended: every
+indicator with a ``--limit NAME=VALUE``, velocity r.m.s. when ``--group``/``--support`` give ISO zones, and each
+``--indicator NAME``; velocity r.m.s. when none is given.
+
+``--json`` prints one JSON object per snapshot: ``index``, ``file``, ``time`` (RFC 3339), ``t_s``, ``state``,
+``indicators``, ``limits`` (per limit: ``indicator``, ``label``, ``value``, ``status``, ``eta_s``, ``eta_low_s``,
+``eta_high_s`` — null when not rising), ``trend`` (per indicator: ``status``, ``need``, ``level``,
+``slope_per_day``, ``rising``, ``model``, ``advice``).  Otherwise a progress bar on a terminal and, at the end,
+the chart of each trended indicator.  A file that cannot be read is reported on stderr and skipped (counted);
+exit code 2 when nothing could be replayed or an option is wrong.
+"""
+
+from __future__ import annotations
+
+import argparse
+import glob
+import json
+import math
+import os
+import re
+import sys
+import tempfile
+import time
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from edgevib.daemon.history import HistoryReader, HistoryRecorder, HistorySettings
+from edgevib.daemon.indicators import INDICATORS, LIMITABLE
+from edgevib.daemon.interfaces import FrameResult
+from edgevib.daemon.offline import (
+    FORMATS,
+    InputError,
+    _band,
+    _bearing,
+    _number,
+    _one_line_errors,
+    _rpm,
+    read_waveform,
+)
+from edgevib.daemon.timestamps import rfc3339_utc_s
+from edgevib.daemon.trendwatch import HISTORY_INDICATORS, evaluate, frame_values, running_state
+from edgevib.pipelines.analysis import analyze_frames, default_envelope_band, make_plan
+from edgevib.pipelines.conditioning import to_g
+from edgevib.pipelines.severity import iso_zone, zone_boundaries_mm_s
+from edgevib.pipelines.trend import TrendSpec
+from edgevib.pipelines.types import AnalysisPlan, FrameIndicators, PipelineError
+
+__all__ = ["ReplayOptions", "configure_replay", "replay", "run_replay", "snapshot_files", "snapshot_times"]
+
+_BATCH = 64
+_NAME_TIMES = (
+    (re.compile(r"(\d{4})(\d{2})(\d{2})T(\d{2})(\d{2})(\d{2})(\.\d+)?Z?"), True),
+    (re.compile(r"(\d{4})-(\d{2})-(\d{2})[T _](\d{2})[:-](\d{2})[:-](\d{2})(\.\d+)?"), True),
+    (re.compile(r"(\d{4})\.(\d{2})\.(\d{2})\.(\d{2})\.(\d{2})\.(\d{2})()"), True),
+)
+
+
+# --------------------------------------------------------------------------------------------- files and times
+
+
+def snapshot_files(source: str) -> list[Path]:
+    """The snapshot files of a directory (its files with a known suffix) or a glob pattern, in natural name
+    order (``acc_9`` before ``acc_10``)."""
+    p = Path(source)
+    if p.is_dir():
+        files = [f for f in p.iterdir() if f.is_file() and f.suffix.lower() in FORMATS]
+    elif any(c in source for c in "*?["):
+        files = [Path(f) for f in glob.glob(source) if Path(f).is_file()]
+    elif p.exists():
+        raise InputError(f"{source} is a file; replay takes a directory or a glob pattern of snapshot files")
+    else:
+        raise InputError(f"{source}: no such directory")
+    files = [f for f in files if f.suffix.lower() in FORMATS]
+    if not files:
+        raise InputError(f"{source}: no snapshot files ({', '.join(FORMATS)})")
+    return sorted(files, key=_natural_key)
+
+
+def _natural_key(p: Path) -> list[Any]:
+    return [int(part) if part.isdigit() else part for part in re.split(r"(\d+)", p.name)]
+
+
+def _name_time(name: str) -> float | None:
+    for rx, _ in _NAME_TIMES:
+        m = rx.search(name)
+        if m is not None:
+            y, mo, d, h, mi, s, frac = m.groups()
+            try:
+                dt = datetime(int(y), int(mo), int(d), int(h), int(mi), int(s), tzinfo=UTC)
+            except ValueError:
+                continue
+            return dt.timestamp() + (float(frac) if frac else 0.0)
+    return None
+
+
+def _start(text: str | None) -> float:
+    if text is None:
+        return 0.0
+    try:
+        dt = datetime.fromisoformat(text.replace("Z", "+00:00"))
+    except ValueError:
+        raise InputError(f"--start {text!r} is not an RFC 3339 / ISO 8601 date or time") from None
+    if dt.tzinfo is None:
+        dt = dt.replace(tzinfo=UTC)
+    return dt.timestamp()
+
+
+def _first_row(path: Path) -> list[float]:
+    with path.open("r", encoding="utf-8", errors="replace") as f:
+        for line in f:
+            text = line.strip()
+            if not text or text.startswith("#"):
+                continue
+            parts = [x for x in re.split(r"[,;\t ]+", text) if x]
+            try:
+                return [float(x) for x in parts]
+            except ValueError:
+                continue  # a header line
+    raise InputError(f"{path}: no numeric row to take the time from")
+
+
+def snapshot_times(files: list[Path], *, time_column: str | None = None, interval_s: float | None = None,
+                   from_name: bool = False, mtime: bool = False, start: str | None = None
+                   ) -> tuple[list[float], str]:
+    """Each file's time in seconds since the Unix epoch, and a phrase saying where the times came from."""
+    base = _start(start)
+    if time_column is not None:
+        cols = [c.strip() for c in time_column.split(",")]
+        try:
+            idx = [int(c) for c in cols]
+        except ValueError:
+            raise InputError(f"--time-column {time_column!r} must be N or H,M,S[,US] (0-based columns)") from None
+        if len(idx) not in (1, 3, 4) or min(idx) < 0:
+            raise InputError(f"--time-column {time_column!r} must be N or H,M,S[,US] (0-based columns)")
+        out: list[float] = []
+        day = 0.0
+        prev = -math.inf
+        for f in files:
+            if f.suffix.lower() not in (".csv", ".txt"):
+                raise InputError(f"--time-column reads CSV files; {f.name} is not one")
+            row = _first_row(f)
+            if max(idx) >= len(row):
+                raise InputError(f"{f.name}: --time-column {time_column} needs {max(idx) + 1} columns, the file "
+                                 f"has {len(row)}")
+            if len(idx) == 1:
+                v = row[idx[0]]
+                out.append(v if v > 1e9 else base + v)
+                continue
+            clock = row[idx[0]] * 3600 + row[idx[1]] * 60 + row[idx[2]] + (row[idx[3]] * 1e-6 if len(idx) == 4
+                                                                           else 0.0)
+            if clock + day < prev - 12 * 3600:  # the clock went back: the next day
+                day += 86400.0
+            prev = clock + day
+            out.append(base + prev)
+        return out, f"column {time_column} of each file"
+    if interval_s is not None:
+        if not (math.isfinite(interval_s) and interval_s > 0):
+            raise InputError(f"--interval {interval_s!r} must be > 0 seconds")
+        nums = [re.findall(r"\d+", f.stem) for f in files]
+        if all(nums):
+            first = int(nums[0][-1])
+            return [base + (int(n[-1]) - first) * interval_s for n in nums], \
+                f"the number in each file name × {interval_s:g} s"
+        return [base + i * interval_s for i in range(len(files))], f"file name order × {interval_s:g} s"
+    named = [_name_time(f.name) for f in files]
+    if from_name or (not mtime and all(t is not None for t in named)):
+        missing = [f.name for f, t in zip(files, named, strict=True) if t is None]
+        if missing:
+            raise InputError(f"no date and time in the file name {missing[0]!r} (e.g. 20261201T223204Z)")
+        return [float(t) for t in named if t is not None], "the date and time in each file name"
+    return [f.stat().st_mtime for f in files], "file modification times"
+
+
+# --------------------------------------------------------------------------------------------- options
+
+
+@dataclass
+class ReplayOptions:
+    """What ``replay`` needs, checked (the command line fills it; tests build it directly)."""
+
+    fs_hz: float | None = None
+    var: str | None = None
+    channel: int | None = None
+    unit: str = "g"
+    full_scale: float = 1.0
+    rpm: float | None = None
+    bearing: Any = None
+    band: tuple[float, float] | None = None
+    velocity_band: tuple[float, float] = (10.0, 1000.0)
+    group: int | None = None
+    support: str | None = None
+    limits: dict[str, float] = field(default_factory=dict)
+    indicators: list[str] = field(default_factory=list)
+    point: str = "replay"
+    spec: TrendSpec = field(default_factory=TrendSpec)
+    window_s: float | None = None
+    run_threshold_velocity_mm_s: float = 0.2
+    run_threshold_rpm: float = 60.0
+    max_points: int = 500
+
+    def tracked(self) -> list[str]:
+        out = list(self.limits) + list(self.indicators)
+        if self.group is not None:
+            out.append("velocity_rms_mm_s")
+        return list(dict.fromkeys(out)) or ["velocity_rms_mm_s"]
+
+
+def _limit(text: str) -> tuple[str, float]:
+    name, sep, value = text.partition("=")
+    if not sep:
+        raise InputError(f"--limit {text!r} must be NAME=VALUE, e.g. acceleration_peak_g=20")
+    name = name.strip()
+    if name not in LIMITABLE:
+        raise InputError(f"--limit {name!r} is not an indicator (known: {', '.join(LIMITABLE)})")
+    return name, _number(f"--limit {name}", value)
+
+
+def _options(args: argparse.Namespace) -> ReplayOptions:
+    o = ReplayOptions()
+    if args.fs is not None:
+        o.fs_hz = _number("--fs", args.fs)
+        if o.fs_hz <= 0:
+            raise InputError(f"--fs {args.fs} must be > 0")
+    o.var = args.var
+    if args.column is not None:
+        try:
+            o.channel = int(args.column)
+        except ValueError:
+            raise InputError(f"--column {args.column!r} is not an integer") from None
+        if o.channel < 0:
+            raise InputError(f"--column {o.channel} must be ≥ 0")
+    if args.unit not in ("g", "m/s2"):
+        raise InputError(f"--unit {args.unit!r} must be g or m/s2")
+    o.unit = args.unit
+    o.full_scale = _number("--full-scale", args.full_scale)
+    if o.full_scale <= 0:
+        raise InputError(f"--full-scale {args.full_scale} must be > 0")
+    o.rpm = _rpm(args.rpm)
+    o.bearing = _bearing(args.bearing)
+    o.band = _band("--band", args.band)
+    vb = _band("--velocity-band", args.velocity_band)
+    assert vb is not None
+    o.velocity_band = vb
+    if args.group is not None:
+        if args.group not in ("1", "2"):
+            raise InputError(f"--group {args.group!r} must be 1 or 2")
+        o.group = int(args.group)
+    if args.support is not None and args.support not in ("rigid", "flexible"):
+        raise InputError(f"--support {args.support!r} must be rigid or flexible")
+    o.support = args.support
+    if (o.group is None) != (o.support is None):
+        raise InputError("--group and --support go together (both are needed for the ISO 20816-3 zones)")
+    o.limits = dict(_limit(x) for x in args.limit or [])
+    for name in args.indicator or []:
+        if name not in LIMITABLE:
+            raise InputError(f"--indicator {name!r} is not an indicator (known: {', '.join(LIMITABLE)})")
+        o.indicators.append(name)
+    if args.point is not None:
+        o.point = args.point
+    coverage = _number("--coverage", args.coverage)
+    try:
+        o.spec = TrendSpec(coverage=coverage, min_points=int(args.min_points), min_span_s=_number(
+            "--min-span", args.min_span))
+    except (ValueError, PipelineError) as exc:
+        raise InputError(str(exc)) from None
+    if args.window is not None:
+        o.window_s = _number("--window", args.window)
+        if o.window_s <= 0:
+            raise InputError(f"--window {args.window} must be > 0 seconds")
+    return o
+
+
+# --------------------------------------------------------------------------------------------- the replay
+
+
+def _plan(fs: float, n: int, o: ReplayOptions, shaft_hz: float | None) -> tuple[AnalysisPlan, list[str]]:
+    """The analysis plan of ``analyze`` for a record of n samples; a velocity band or speed range finer than the
+    record resolves is narrowed to what it does resolve (two lines, make_plan's rule) and said so."""
+    notes: list[str] = []
+    df = fs / n
+    vel = o.velocity_band
+    if vel[0] < 2 * df < vel[1]:
+        notes.append(f"velocity band {vel[0]:g}–{vel[1]:g} Hz starts at {2 * df:g} Hz: a record of {n} samples at "
+                     f"{fs:g} Hz resolves {df:g} Hz")
+        vel = (2 * df, vel[1])
+    if shaft_hz is None:
+        speed = (max(5.0, 2.0 * df), min(100.0, 0.99 * fs / 2 / 3.1))
+        if speed[0] >= speed[1]:
+            raise InputError(f"records of {n} samples at {fs:g} Hz are too short to estimate a shaft speed; "
+                             "give --rpm or longer records")
+    else:
+        speed = (max(0.5 * shaft_hz, min(2.0 * df, 0.99 * shaft_hz)), 1.5 * shaft_hz)
+    band = o.band
+    if band is None and o.bearing is not None:
+        band = default_envelope_band(fs, None, shaft_hz_max=speed[1])
+    plan = make_plan(fs, n, velocity_band_hz=vel, envelope_band_hz=band, bearing=o.bearing, speed_range_hz=speed)
+    return plan, notes
+
+
+@dataclass
+class _Snap:
+    index: int
+    path: Path
+    t_s: float
+    x_g: np.ndarray
+    fs_hz: float
+    rpm: float | None
+
+
+def _read(index: int, path: Path, t_s: float, o: ReplayOptions) -> _Snap:
+    wave = read_waveform(path, var=o.var, channel=o.channel, full_scale=o.full_scale)
+    if o.fs_hz is not None:
+        fs = o.fs_hz
+        if wave.fs_hz is not None and path.suffix.lower() == ".wav" and abs(fs - wave.fs_hz) > 1e-9 * fs:
+            raise InputError(f"{path.name}: --fs {fs:g} Hz contradicts the WAV header's {wave.fs_hz:g} Hz")
+    elif wave.fs_hz is not None:
+        fs = wave.fs_hz
+    else:
+        raise InputError(f"{path.name} does not carry a sample rate: give --fs HZ")
+    x = wave.samples
+    if x.size == 0:
+        raise InputError(f"{path.name} holds no samples")
+    bad = int(np.count_nonzero(~np.isfinite(x)))
+    if bad:
+        raise InputError(f"{path.name}: {bad} of {x.size} samples are NaN or infinite")
+    rpm = o.rpm if o.rpm is not None else wave.rpm
+    return _Snap(index, path, t_s, to_g(x, o.unit), fs, rpm)
+
+
+def replay(files: list[Path], times: list[float], o: ReplayOptions, history_path: Path, *,
+           on_error: Any = None) -> Iterator[dict[str, Any]]:
+    """Yield one document per snapshot (see the module docstring), in time order.  ``on_error(path, message)``
+    is called for a file that is skipped."""
+    order = sorted(range(len(files)), key=lambda i: (times[i], i))
+    settings = HistorySettings(file=str(history_path), path=str(history_path), recent_s=120.0,
+                               minute_s=3660 * 86400.0, hour_s=3660 * 86400.0, day_s=36600 * 86400.0,
+                               max_bytes=1 << 40)
+    rec = HistoryRecorder(settings, HISTORY_INDICATORS, durable=False)
+    tracked = o.tracked()
+    iso = zone_boundaries_mm_s(o.group, o.support) if o.group is not None and o.support is not None else None
+    plans: dict[tuple[float, int, float | None], AnalysisPlan] = {}
+    noted: set[str] = set()
+    baselines: dict[str, tuple[float, float, int]] = {}
+    reader: HistoryReader | None = None
+    last_docs: tuple[int, dict[str, Any]] | None = None
+    try:
+        for b0 in range(0, len(order), _BATCH):
+            snaps: list[_Snap] = []
+            for i in order[b0:b0 + _BATCH]:
+                try:
+                    snaps.append(_read(i, files[i], times[i], o))
+                except (InputError, PipelineError) as exc:
+                    if on_error is not None:
+                        on_error(files[i], str(exc))
+            groups: dict[tuple[float, int, float | None], list[_Snap]] = {}
+            for s in snaps:
+                groups.setdefault((s.fs_hz, s.x_g.size, s.rpm), []).append(s)
+            results: dict[int, FrameIndicators] = {}
+            for key, members in groups.items():
+                fs, n, rpm = key
+                shaft = None if rpm is None or rpm <= 0 else rpm / 60.0
+                try:
+                    if key not in plans:
+                        plans[key], notes = _plan(fs, n, o, shaft)
+                        for note in notes:
+                            if note not in noted and on_error is not None:
+                                noted.add(note)
+                                on_error(None, note)
+                    inds = analyze_frames(np.stack([m.x_g for m in members]), plans[key],
+                                          None if shaft is None else np.full(len(members), shaft))
+                except (InputError, PipelineError) as exc:
+                    for m in members:
+                        if on_error is not None:
+                            on_error(m.path, str(exc))
+                    continue
+                for m, ind in zip(members, inds, strict=True):
+                    results[m.index] = ind
+            for s in snaps:
+                found = results.get(s.index)
+                if found is None:
+                    continue
+                ind = found
+                zone = None
+                if iso is not None and o.group is not None and o.support is not None and \
+                        math.isfinite(ind.velocity_rms_mm_s):
+                    zone = iso_zone(ind.velocity_rms_mm_s, o.group, o.support)
+                r = FrameResult(point_id=o.point, machine_id=o.point, t_end_ns=round(s.t_s * 1e9),
+                                received_ns=round(s.t_s * 1e9), fs_hz=s.fs_hz, indicators=ind, iso_zone=zone,
+                                samples=s.x_g.astype(np.float32))
+                state = running_state(ind.velocity_rms_mm_s, ind.shaft_hz, ind.shaft_estimated, o.run_threshold_rpm,
+                                      o.run_threshold_velocity_mm_s)
+                values = frame_values(r)
+                rec.record(o.point, r.t_end_ns, values, state)
+                rec.flush()
+                if reader is None:
+                    reader = HistoryReader(history_path)
+                doc = _document(s, r, state, values, tracked, o, iso, reader, baselines)
+                last_docs = (r.t_end_ns, doc["_docs"])
+                yield doc
+    finally:
+        if reader is not None:
+            reader.close()
+        if last_docs is not None:  # the latest projections, for `edgevib trend --history FILE`
+            for name, d in last_docs[1].items():
+                rec.write_projection(o.point, name, last_docs[0], _clean(d))
+        rec.close()
+
+
+def _document(s: _Snap, r: FrameResult, state: str, values: np.ndarray, tracked: list[str], o: ReplayOptions,
+              iso: tuple[float, float, float] | None, reader: HistoryReader,
+              baselines: dict[str, tuple[float, float, int]]) -> dict[str, Any]:
+    indicators = {name: (None if not math.isfinite(v) else float(v)) for name, v in
+                  zip(HISTORY_INDICATORS, values.tolist(), strict=True)}
+    indicators["shaft_hz"] = r.indicators.shaft_hz
+    doc: dict[str, Any] = {"index": s.index, "file": s.path.name, "time": rfc3339_utc_s(s.t_s), "t_s": s.t_s,
+                           "state": state, "iso_zone": r.iso_zone, "indicators": indicators, "limits": [],
+                           "trend": {}}
+    for name in tracked:
+        base = baselines.get(name)
+        t = evaluate(reader, o.point, name, spec=o.spec, window_s=o.window_s, now_s=s.t_s,
+                     iso=iso if name == "velocity_rms_mm_s" else None, user_limit=o.limits.get(name),
+                     baseline=base, max_points=o.max_points)
+        if base is None and t.get("status") == "ok":
+            series = reader.series(o.point, name, max_points=o.max_points)
+            k = o.spec.min_points
+            if series.value.size >= k:
+                v = series.value[:k]
+                med = float(np.median(v))
+                baselines[name] = (med, 1.4826 * float(np.median(np.abs(v - med))), k)
+        doc["trend"][name] = {k: t.get(k) for k in ("status", "need", "level", "slope_per_day", "rising", "model",
+                                                    "advice", "coverage")}
+        for lim in t.get("limits", []):
+            doc["limits"].append({"indicator": name, "label": lim["label"], "value": lim["value"],
+                                  "status": lim["status"], "eta_s": lim["eta_s"], "eta_low_s": lim["eta_low_s"],
+                                  "eta_high_s": lim["eta_high_s"]})
+        doc.setdefault("_docs", {})[name] = t
+    return doc
+
+
+# --------------------------------------------------------------------------------------------- command
+
+
+def configure_replay(parser: argparse.ArgumentParser) -> None:
+    _one_line_errors(parser, "replay")
+    parser.description = ("Replay a directory (or glob) of timestamped snapshot files (CSV, WAV, .npy, .mat) "
+                          "through the daemon's analysis, history, trend and projection, as fast as the CPU allows. "
+                          "edgevib advises; it is not a machinery protection system.")
+    parser.add_argument("source", metavar="DIR", help="a directory of snapshot files, or a glob pattern (quoted)")
+    a = parser.add_argument_group("analysis (as `edgevib analyze`)")
+    a.add_argument("--fs", metavar="HZ", help="sample rate (required for .npy, CSV and most .mat files)")
+    a.add_argument("--var", metavar="NAME", help="variable of .mat files")
+    a.add_argument("--column", "--channel", dest="column", metavar="N", help="column/channel, 0-based (default 0)")
+    a.add_argument("--unit", default="g", metavar="g|m/s2", help="unit of the samples (default g)")
+    a.add_argument("--full-scale", metavar="X", default="1", help="integer PCM WAV: full scale in --unit")
+    a.add_argument("--rpm", metavar="R", help="shaft speed in r/min (default: from the files, else estimated)")
+    a.add_argument("--bearing", metavar="ELEMENTS,BALL_D,PITCH_D,ANGLE_DEG", help="bearing for the envelope families")
+    a.add_argument("--band", metavar="LO:HI", help="envelope demodulation band in Hz")
+    a.add_argument("--velocity-band", metavar="LO:HI", default="10:1000", help="velocity band in Hz (default "
+                   "10:1000; narrowed to what short snapshots resolve)")
+    a.add_argument("--group", metavar="1|2", help="ISO 20816-3 machine group (its zone boundaries become limits)")
+    a.add_argument("--support", metavar="rigid|flexible", help="ISO 20816-3 support")
+    t = parser.add_argument_group("time of each snapshot (default: the date and time in the names, else mtime)")
+    w = t.add_mutually_exclusive_group()
+    w.add_argument("--time-column", metavar="N|H,M,S[,US]", help="from the first row of each CSV file")
+    w.add_argument("--interval", metavar="S", help="file name order, S seconds apart (the number in the names)")
+    w.add_argument("--time-from-name", action="store_true", help="a date and time in each file name")
+    w.add_argument("--mtime", action="store_true", help="the files' modification times")
+    t.add_argument("--start", metavar="TIME", help="date/time that relative times count from (RFC 3339; default "
+                   "1970-01-01T00:00:00Z)")
+    p = parser.add_argument_group("trend and projection")
+    p.add_argument("--limit", action="append", metavar="NAME=VALUE", help="an absolute limit, e.g. "
+                   "acceleration_peak_g=20 (repeatable)")
+    p.add_argument("--indicator", action="append", metavar="NAME", help="also trend this indicator (repeatable)")
+    p.add_argument("--window", metavar="S", help="trend window in seconds (default: all history)")
+    p.add_argument("--coverage", default="0.8", metavar="C", help="stated coverage of the intervals (default 0.8)")
+    p.add_argument("--min-points", default="12", metavar="N", help="least running values for a trend (default 12)")
+    p.add_argument("--min-span", default="0", metavar="S", help="least history in seconds (default 0)")
+    p.add_argument("--point", metavar="NAME", help="point name in the history (default: the directory's name)")
+    p.add_argument("--history", metavar="FILE", help="keep the history in FILE (then `edgevib trend --history "
+                   "FILE`); default: a temporary file")
+    parser.add_argument("--json", action="store_true", help="one JSON object per snapshot")
+
+
+def _clean(v: Any) -> Any:
+    if isinstance(v, dict):
+        return {k: _clean(x) for k, x in v.items()}
+    if isinstance(v, list | tuple):
+        return [_clean(x) for x in v]
+    if isinstance(v, float | np.floating):
+        f = float(v)
+        return f if math.isfinite(f) else None
+    return v
+
+
+class _Progress:
+    def __init__(self, total: int) -> None:
+        self.total = total
+        self.on = sys.stderr.isatty()
+        self.t0 = time.monotonic()
+        self.last = 0.0
+
+    def update(self, done: int) -> None:
+        now = time.monotonic()
+        if not self.on or (now - self.last < 0.1 and done < self.total):
+            return
+        self.last = now
+        width = 30
+        filled = round(width * done / max(self.total, 1))
+        rate = done / max(now - self.t0, 1e-9)
+        sys.stderr.write(f"\rreplay {done:>6}/{self.total} [{'#' * filled}{'.' * (width - filled)}] "
+                         f"{100 * done / max(self.total, 1):5.1f} %  {rate:6.1f} snapshots/s")
+        sys.stderr.flush()
+
+    def close(self) -> None:
+        if self.on:
+            sys.stderr.write("\n")
+
+
+def run_replay(args: argparse.Namespace) -> int:
+    try:
+        return _run(args)
+    except (InputError, PipelineError) as exc:
+        print(f"edgevib replay: {exc}", file=sys.stderr)
+        return 2
+
+
+def _run(args: argparse.Namespace) -> int:
+    o = _options(args)
+    files = snapshot_files(args.source)
+    interval = None if args.interval is None else _number("--interval", args.interval)
+    times, how = snapshot_times(files, time_column=args.time_column, interval_s=interval,
+                                from_name=args.time_from_name, mtime=args.mtime, start=args.start)
+    if args.point is None:
+        src = Path(args.source)
+        o.point = re.sub(r"[^A-Za-z0-9_-]", "_", (src if src.is_dir() else src.parent).resolve().name) or "replay"
+    skipped = 0
+
+    def on_error(path: Path | None, message: str) -> None:
+        nonlocal skipped
+        if path is not None:
+            skipped += 1
+            print(f"edgevib replay: skipped {path.name}: {message}", file=sys.stderr)
+        else:
+            print(f"edgevib replay: note: {message}", file=sys.stderr)
+
+    tmp = None
+    if args.history:
+        history = Path(args.history)
+        if history.exists():
+            raise InputError(f"--history {history} exists; give a new file")
+    else:
+        tmp = tempfile.TemporaryDirectory(prefix="edgevib-replay-")
+        history = Path(tmp.name) / "history.sqlite"
+    if not args.json:
+        print(f"replaying {len(files)} snapshots of {args.source} as point {o.point}; times from {how}",
+              file=sys.stderr)
+    progress = _Progress(len(files))
+    last: dict[str, Any] | None = None
+    done = 0
+    try:
+        for doc in replay(files, times, o, history, on_error=on_error):
+            docs = doc.pop("_docs", {})
+            if args.json:
+                print(json.dumps(_clean(doc), allow_nan=False), flush=False)
+            last = {**doc, "_docs": docs}
+            done += 1
+            progress.update(done + skipped)
+        progress.close()
+        if done == 0:
+            raise InputError(f"none of the {len(files)} files could be replayed")
+        if not args.json and last is not None:
+            _summary(last, history, o, done, skipped)
+    finally:
+        sys.stdout.flush()
+        if tmp is not None:
+            tmp.cleanup()
+    return 0
+
+
+def _summary(last: dict[str, Any], history: Path, o: ReplayOptions, done: int, skipped: int) -> None:
+    from edgevib.daemon.trendchart import render_chart
+
+    width = min(120, max(60, _terminal_width()))
+    print(f"{done} snapshots replayed" + (f", {skipped} skipped" if skipped else "") + f"; last at {last['time']}")
+    with HistoryReader(history) as r:
+        for name, doc in last.get("_docs", {}).items():
+            series = r.series(o.point, name, max_points=2 * width)
+            print()
+            print(render_chart(series, doc, width=width))
+    unit_note = ", ".join(f"{k} in {INDICATORS[k].unit}" for k in o.tracked() if k in INDICATORS)
+    print(f"\n({unit_note}; edgevib advises: judge findings with a qualified analyst and the site's procedures)")
+
+
+def _terminal_width() -> int:
+    try:
+        return os.get_terminal_size(sys.stdout.fileno()).columns
+    except OSError:
+        return 80

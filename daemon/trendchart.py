@@ -1,0 +1,333 @@
+"""``edgevib trend``: the severity history of a point and indicator as a terminal chart, with limits and projection.
+
+Reads the daemon's history file read-only (safe while the daemon runs)::
+
+    edgevib trend                                  # every trended series: level, slope, next limit
+    edgevib trend P-101-DE-H                       # that point's series
+    edgevib trend P-101-DE-H velocity_rms_mm_s     # the chart (80 columns), projections and advice
+    edgevib trend P-101-DE-H velocity_rms_mm_s --json
+
+The chart plots the median of each roll-up bucket (``*``), its range where it is wider than a row (``:``), the
+limits as dashed lines labelled on the right, the fitted growth curve carried forward to the projection
+(``.``), the present time (``|``) and, on the row under the time axis, the periods the machine was not
+running (``s``).  Exit codes: 0 done, 2 bad arguments or no history.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import sys
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from edgevib.daemon.history import HistoryError, HistoryReader, HistorySeries
+
+__all__ = ["configure_trend", "render_chart", "run_trend"]
+
+_PLOT_ROWS = 14
+
+
+def _fmt_value(v: float | None) -> str:
+    if v is None or not math.isfinite(v):
+        return "n/a"
+    return f"{v:.3g}"
+
+
+def _fmt_eta(s: float | None) -> str:
+    if s is None:
+        return "—"
+    d = s / 86400.0
+    if d >= 60:
+        return f"{d / 30.4:.1f} mo"
+    if d >= 2:
+        return f"{d:.1f} d"
+    if s >= 7200:
+        return f"{s / 3600:.1f} h"
+    return f"{s / 60:.0f} min"
+
+
+def _date(t_s: float, span_s: float) -> str:
+    dt = datetime.fromtimestamp(t_s, UTC)
+    if span_s >= 3 * 86400:
+        return dt.strftime("%Y-%m-%d")
+    return dt.strftime("%m-%d %H:%M")
+
+
+def _curve(doc: dict[str, Any], t: np.ndarray) -> np.ndarray | None:
+    """The fitted growth curve of a projection document at times ``t`` (None when not rising)."""
+    fit = doc.get("fit")
+    if not doc.get("rising") or not isinstance(fit, dict):
+        return None
+    z = np.asarray(float(fit["intercept"]) + float(fit["slope"]) * (t - float(fit["t_ref_s"])), dtype=np.float64)
+    return np.exp(z) if fit["model"] == "exponential" else z
+
+
+def _unit(unit: str) -> str:
+    return "" if unit in ("", "1") else unit
+
+
+def render_chart(series: HistorySeries, doc: dict[str, Any] | None, width: int = 80) -> str:
+    """The chart of one series (and its projection document, if any) in ``width`` columns."""
+    unit = (doc or {}).get("unit", "")
+    lines: list[str] = []
+    head = f"{series.point}  {series.indicator}"
+    if doc is not None:
+        state = doc.get("machine_state")
+        head += f"  ({series.level} roll-ups{', ' + _unit(unit) if _unit(unit) else ''}" \
+                f"{', machine ' + state if state else ''})"
+    lines.append(head[:width])
+    if series.t_s.size == 0:
+        lines.append("no running values in the history yet")
+        return "\n".join(lines)
+    t = series.t_s + series.bucket_s / 2
+    y = series.value
+    now = float((doc or {}).get("t_s") or t[-1])
+    limits = [lim for lim in (doc or {}).get("limits", []) if lim.get("value") is not None]
+    t_end = now
+    etas = [lim["eta_high_s"] or lim["eta_s"] for lim in limits if lim.get("status") == "rising" and lim.get("eta_s")]
+    span = max(now - float(t[0]), 1.0)
+    if etas:
+        t_end = now + min(max(etas), 1.5 * span)
+    label_w = max([len(f"{lim['label']} {lim['value']:.3g}") for lim in limits] + [6])
+    axis_w = 8
+    plot_w = max(20, width - axis_w - 2 - label_w - 1)
+    lo_v = [float(np.nanmin(series.vmin if series.vmin is not None else y)), float(np.nanmin(y))]
+    hi_v = [float(np.nanmax(series.vmax if series.vmax is not None else y)), float(np.nanmax(y))]
+    for lim in limits:
+        lo_v.append(float(lim["value"]))
+        hi_v.append(float(lim["value"]))
+    ymin, ymax = min([*lo_v, 0.0]), max(hi_v)
+    if ymax <= ymin:
+        ymax = ymin + 1.0
+    ymax += 0.05 * (ymax - ymin)
+    rows = _PLOT_ROWS
+    grid = [[" "] * plot_w for _ in range(rows)]
+    t0 = float(t[0])
+    tspan = max(t_end - t0, 1e-9)
+
+    def col(tt: float) -> int:
+        return min(plot_w - 1, max(0, round((tt - t0) / tspan * (plot_w - 1))))
+
+    def row(v: float) -> int:
+        return min(rows - 1, max(0, round((ymax - v) / (ymax - ymin) * (rows - 1))))
+
+    for lim in limits:
+        r = row(float(lim["value"]))
+        for c in range(plot_w):
+            if grid[r][c] == " " and c % 2 == 0:
+                grid[r][c] = "-"
+    curve_t = np.linspace(now, t_end, max(2, col(t_end) - col(now) + 1))
+    fitted = _curve(doc or {}, curve_t)
+    if fitted is not None:
+        for tt, v in zip(curve_t, fitted, strict=True):
+            if math.isfinite(float(v)) and ymin <= v <= ymax:
+                grid[row(float(v))][col(float(tt))] = "."
+    cols = np.array([col(float(x)) for x in t])
+    for c in np.unique(cols):
+        sel = cols == c
+        med = float(np.median(y[sel]))
+        if series.vmin is not None and series.vmax is not None:
+            a, b = row(float(np.max(series.vmax[sel]))), row(float(np.min(series.vmin[sel])))
+            for r in range(a, b + 1):
+                if grid[r][c] in (" ", "-", "."):
+                    grid[r][c] = ":"
+        grid[row(med)][c] = "*"
+    now_c = col(now)
+    for r in range(rows):
+        if grid[r][now_c] in (" ", "-"):
+            grid[r][now_c] = "|"
+    row_labels: dict[int, str] = {}
+    for lim in limits:
+        row_labels.setdefault(row(float(lim["value"])), f"{lim['label']} {lim['value']:.3g}")
+    for r in range(rows):
+        tick = ymax - r * (ymax - ymin) / (rows - 1)
+        if abs(tick) < 1e-9 * (ymax - ymin):
+            tick = 0.0
+        left = f"{tick:>{axis_w}.3g}" if r % 3 == 0 or r == rows - 1 else " " * axis_w
+        lines.append(f"{left} +{''.join(grid[r])} {row_labels.get(r, '')}".rstrip())
+    lines.append(" " * axis_w + " +" + "-" * plot_w)
+    stop_row = [" "] * plot_w
+    for _state, p0, p1 in series.periods:
+        if p1 < t0 or p0 > t_end:
+            continue
+        for c in range(col(max(p0, t0)), col(min(p1, t_end)) + 1):
+            stop_row[c] = "s"
+    stopped = any(c != " " for c in stop_row)
+    if stopped:
+        lines.append((" " * axis_w + "  " + "".join(stop_row)).rstrip())
+    left_date, right_date = _date(t0, tspan), _date(t_end, tspan)
+    mid = f"now {_date(now, tspan)}" if t_end > now else ""
+    gap = plot_w - len(left_date) - len(right_date)
+    axis = left_date + (mid.center(gap) if mid and gap > len(mid) + 2 else " " * max(gap, 1)) + right_date
+    lines.append(" " * (axis_w + 2) + axis)
+    if stopped:
+        lines.append(" " * (axis_w + 2) + "s: machine not running (not in the roll-ups)")
+    if doc is not None:
+        lines += _summary(doc, width)
+    return "\n".join(lines)
+
+
+def _summary(doc: dict[str, Any], width: int) -> list[str]:
+    unit = _unit(doc.get("unit", ""))
+
+    def q(v: float | None) -> str:
+        text = _fmt_value(v)
+        return f"{text} {unit}" if unit and text != "n/a" else text
+
+    out = []
+    if doc.get("status") != "ok":
+        out.append(f"status: {doc.get('status')}" + (f" — {doc['need']}" if doc.get("need") else ""))
+    slope = doc.get("slope_per_day")
+    if slope is not None:
+        per = f"{unit}/day" if unit else "per day"
+        out.append(f"level {q(doc.get('level'))}; slope {slope:+.3g} {per} ({_fmt_value(doc.get('slope_low_per_day'))} "
+                   f"to {_fmt_value(doc.get('slope_high_per_day'))}, {round(100 * doc.get('coverage', 0.8))} %)")
+        fit = "rising" if doc.get("rising") else "not rising"
+        if doc.get("rising") and doc.get("model"):
+            fit += f" ({doc['model']} growth, evidence weight {doc.get('model_weight', 1):.2f}"
+            fit += f", since {doc['onset'][:10]})" if doc.get("onset") else ")"
+        out.append(fit)
+    cov = round(100 * float(doc.get("coverage", 0.8)))
+    for lim in doc.get("limits", []):
+        st = lim.get("status")
+        head = f"  {lim['label']:<8} {q(lim['value']):>12}"
+        if st == "rising":
+            text = (f"{head}: in {_fmt_eta(lim['eta_s'])} ({_fmt_eta(lim['eta_low_s'])} to "
+                    f"{_fmt_eta(lim['eta_high_s'])}, {cov} %), around {(lim.get('date') or '')[:10]}")
+        else:
+            text = f"{head}: {st}"
+        out.append(text[:width])
+    step = doc.get("step")
+    if step and step.get("significant"):
+        change = f"{step['change']:+.3g}" + (f" {unit}" if unit else "")
+        out.append(f"step change {change} from baseline {q(step['baseline'])} (significant above "
+                   f"{q(step['threshold'])})")
+    if doc.get("advice_text"):
+        import textwrap
+
+        out += textwrap.wrap(doc["advice_text"], width)
+    return out
+
+
+# --------------------------------------------------------------------------------------------- command
+
+
+def configure_trend(parser: argparse.ArgumentParser) -> None:
+    parser.description = ("Show the severity history of a point and indicator with its trend, limits and the "
+                          "projected time to each limit (from the daemon's history file). edgevib advises; it is "
+                          "not a machinery protection system.")
+    where = parser.add_mutually_exclusive_group()
+    where.add_argument("--state-dir", default=None,
+                       help="the daemon's state directory (default: $EDGEVIB_STATE_DIR or /var/lib/edgevib)")
+    where.add_argument("--history", default=None, help="the history file (default: STATE_DIR/history.sqlite)")
+    where.add_argument("--config", default=None, help="the daemon's configuration file ([history] file is used)")
+    parser.add_argument("point", nargs="?", help="measurement point (default: list every trended series)")
+    parser.add_argument("indicator", nargs="?", help="indicator, e.g. velocity_rms_mm_s (default: list the point's)")
+    parser.add_argument("--days", type=float, default=None, help="show this many days back (default: the trend "
+                        "window of the stored projection, else everything)")
+    parser.add_argument("--width", type=int, default=None, help="chart width in columns (default: the terminal's, "
+                            "at most 120)")
+    parser.add_argument("--json", action="store_true", help="print one JSON object")
+
+
+def _history_path(args: argparse.Namespace) -> Path:
+    if args.history:
+        return Path(args.history)
+    if args.config:
+        from edgevib.daemon.config import load_config
+
+        cfg = load_config(args.config)
+        path = getattr(getattr(cfg, "history", None), "path", None)
+        return Path(path) if path else Path(cfg.site.state_dir) / "history.sqlite"
+    state = args.state_dir or os.environ.get("EDGEVIB_STATE_DIR") or "/var/lib/edgevib"
+    return Path(state) / "history.sqlite"
+
+
+def _fail(message: str) -> int:
+    print(f"edgevib trend: {message}", file=sys.stderr)
+    return 2
+
+
+def run_trend(args: argparse.Namespace) -> int:
+    try:
+        path = _history_path(args)
+        with HistoryReader(path) as reader:
+            return _run(args, reader)
+    except HistoryError as exc:
+        return _fail(str(exc))
+    except Exception as exc:  # configuration errors and the like: one line, exit 2
+        from edgevib.daemon.interfaces import EdgevibError
+
+        if isinstance(exc, EdgevibError):
+            return _fail(str(exc))
+        raise
+
+
+def _run(args: argparse.Namespace, reader: HistoryReader) -> int:
+    width = args.width or min(120, max(60, _terminal_width()))
+    docs = reader.projections()
+    if args.point is None or args.indicator is None:
+        rows = [(p, i, d) for (p, i), d in docs.items() if args.point is None or p == args.point]
+        if args.point is not None and args.point not in reader.points():
+            return _fail(f"no history for point {args.point!r} (points: {', '.join(reader.points()) or 'none'})")
+        if args.json:
+            print(json.dumps([d for _, _, d in rows], allow_nan=False))
+            return 0
+        if not rows:
+            pts = reader.points()
+            names = ", ".join(pts) if args.point is None else ", ".join(pts.get(args.point, ()))
+            print(f"no trend evaluated yet; recorded: {names or 'nothing'}")
+            return 0
+        print(f"{'point':<16} {'indicator':<22} {'level':>8} {'slope/day':>10}  {'status':<12} next limit")
+        for p, i, d in rows:
+            nxt = [lim for lim in d.get("limits", []) if lim.get("status") == "rising"]
+            nxt.sort(key=lambda lim: lim["eta_s"])
+            status = "rising" if d.get("rising") else (d.get("status") or "")
+            status = "not rising" if status == "ok" else status
+            tail = f"{nxt[0]['label']} in {_fmt_eta(nxt[0]['eta_s'])}" if nxt else ""
+            slope = d.get("slope_per_day")
+            print(f"{p:<16} {i:<22} {_fmt_value(d.get('level')):>8} "
+                  f"{'' if slope is None else f'{slope:+.3g}':>10}  {status:<12} {tail}".rstrip())
+        return 0
+    doc = docs.get((args.point, args.indicator))
+    latest = reader.latest_time_s(args.point)
+    if latest is None:
+        return _fail(f"no history for point {args.point!r} (points: {', '.join(reader.points()) or 'none'})")
+    days = args.days
+    since = None if days is None else latest - days * 86400.0
+    if since is None and doc is not None and doc.get("span_s"):
+        since = latest - float(doc["span_s"]) * 1.02
+    series = reader.series(args.point, args.indicator, since_s=since, until_s=latest, max_points=2 * width)
+    if args.indicator not in reader.points().get(args.point, ()):
+        return _fail(f"point {args.point!r} records no {args.indicator!r} (indicators: "
+                     f"{', '.join(reader.points().get(args.point, ()))})")
+    if args.json:
+        out = {"point": args.point, "indicator": args.indicator, "projection": doc,
+               "series": {"level": series.level, "t_s": series.t_s.tolist(), "p50": _nan_list(series.value),
+                          "min": _nan_list(series.vmin), "max": _nan_list(series.vmax),
+                          "mean": _nan_list(series.mean), "p_high": _nan_list(series.p_high),
+                          "count": _nan_list(series.count), "high_percentile": series.high_percentile},
+               "periods": [{"state": s, "start_s": a, "end_s": b} for s, a, b in series.periods]}
+        print(json.dumps(out, allow_nan=False))
+        return 0
+    print(render_chart(series, doc, width=width))
+    return 0
+
+
+def _nan_list(a: Any) -> list[float | None] | None:
+    if a is None:
+        return None
+    return [None if not math.isfinite(float(v)) else float(v) for v in a]
+
+
+def _terminal_width() -> int:
+    try:
+        return os.get_terminal_size(sys.stdout.fileno()).columns
+    except OSError:
+        return 80

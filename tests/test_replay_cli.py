@@ -1,0 +1,131 @@
+"""``edgevib replay`` and ``edgevib trend``: the FEMTO run-to-failure snapshots (../shared/datasets/femto), the
+simulator's months of snapshots against their analytic crossing times, bad input, the terminal chart."""
+
+from __future__ import annotations
+
+import json
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+
+from edgevib.daemon.cli import main
+
+FEMTO = Path(__file__).resolve().parents[2] / "shared" / "datasets" / "femto" / "Bearing1_2"
+# PHM 2012 challenge documentation (datasets README): one 0.1 s snapshot at 25.6 kHz every 10 s; columns hour,
+# minute, second, microsecond, horizontal and vertical acceleration (g); Bearing1_2's record runs from 08:47:05
+# to 11:12:05 (871 snapshots); the test ended when the amplitude exceeded 20 g.
+FEMTO_ARGS = ["--fs", "25600", "--column", "4", "--limit", "acceleration_peak_g=20"]
+
+
+def _lines(capsys: pytest.CaptureFixture[str]) -> list[dict[str, Any]]:
+    return [json.loads(line) for line in capsys.readouterr().out.splitlines() if line.strip()]
+
+
+@pytest.mark.slow
+def test_femto_replay_times_indicators_and_projection(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["replay", str(FEMTO), *FEMTO_ARGS, "--time-column", "0,1,2,3", "--start", "2012-03-01",
+                 "--json"]) == 0
+    rows = _lines(capsys)
+    assert len(rows) == 110  # every 8th snapshot and the last (datasets README)
+    first, last = rows[0]["time"], rows[-1]["time"]
+    assert first.startswith("2012-03-01T08:47:05.") and last.startswith("2012-03-01T11:12:05.")
+    for r in rows:
+        assert r["state"] == "running"
+        assert set(r["indicators"]) >= {"velocity_rms_mm_s", "acceleration_peak_g", "kurtosis"}
+        (lim,) = r["limits"] if r["limits"] else [None]
+        if lim is not None:
+            assert lim["indicator"] == "acceleration_peak_g" and lim["value"] == 20.0
+            assert set(lim) >= {"eta_s", "eta_low_s", "eta_high_s"}
+            if lim["status"] != "rising":
+                assert lim["eta_s"] is lim["eta_low_s"] is lim["eta_high_s"] is None
+    # the horizontal peak of the last snapshot (the file's own numbers, mean removed)
+    x = np.loadtxt(FEMTO / "acc_00871.csv", delimiter=",")[:, 4]
+    assert rows[-1]["indicators"]["acceleration_peak_g"] == pytest.approx(np.abs(x - x.mean()).max(), rel=1e-4)
+    # too little history at first; degradation is abrupt near the end (datasets README): no projection at 70 %,
+    # 80 % or 90 % of the life, a rising trend on the last snapshot
+    assert rows[0]["trend"]["acceleration_peak_g"]["status"] == "insufficient-history"
+    t0, end = rows[0]["t_s"], rows[-1]["t_s"]
+    for frac in (0.7, 0.8, 0.9):
+        r = max((r for r in rows if r["t_s"] - t0 <= frac * (end - t0)), key=lambda r: r["t_s"])
+        assert r["limits"][0]["status"] == "not-rising" and r["limits"][0]["eta_s"] is None
+    assert rows[-1]["trend"]["acceleration_peak_g"]["rising"]
+
+
+def test_interval_times_follow_the_numbers_in_the_names(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # Snapshot k of FEMTO starts about 10·(k−1) s after the first (datasets README): the thinned-out set keeps its
+    # spacing when times come from the numbers in the names.
+    files = sorted(FEMTO.glob("acc_*.csv"))[:3] + sorted(FEMTO.glob("acc_*.csv"))[-1:]
+    for f in files:
+        (tmp_path / f.name).write_bytes(f.read_bytes())
+    assert main(["replay", str(tmp_path), *FEMTO_ARGS, "--interval", "10", "--json"]) == 0
+    rows = _lines(capsys)
+    assert [r["t_s"] for r in rows] == [0.0, 80.0, 160.0, 8700.0]
+    assert rows[0]["time"] == "1970-01-01T00:00:00.000Z"
+
+
+@pytest.mark.slow
+def test_simulated_months_replayed_against_the_analytic_crossing(tmp_path: Path,
+                                                               capsys: pytest.CaptureFixture[str]) -> None:
+    # Snapshots of the exponential progression up to 70 % of its way to the ISO zone D boundary (4.5 mm/s, group 2
+    # rigid), written by the simulator and replayed: the projection stands near the analytic crossing in
+    # truth.json, from an exponential fit.
+    from edgevib.simulator.engine import load_scenario
+    from edgevib.simulator.longrun import LongRun
+
+    law = LongRun(load_scenario("trend-exponential"), seed=2).laws["P-302-DE-H"]
+    t70 = law.crossing_s(law.v0 + 0.7 * (4.5 - law.v0))
+    assert t70 is not None
+    out = tmp_path / "snaps"
+    assert main(["simulate", "--scenario", "trend-exponential", "--seed", "2", "--snapshots", str(out),
+                 "--duration", str(t70)]) == 0
+    truth = json.loads((out / "truth.json").read_text())
+    crossing = {c["label"]: c for c in truth["points"]["P-302-DE-H"]["crossings"]}["zone D"]
+    capsys.readouterr()
+    history = tmp_path / "h.sqlite"
+    assert main(["replay", str(out / "P-302-DE-H"), "--fs", "5120", "--rpm", "2960", "--group", "2", "--support",
+                 "rigid", "--min-span", "86400", "--history", str(history), "--json"]) == 0
+    rows = _lines(capsys)
+    last = rows[-1]
+    assert datetime.fromisoformat(last["time"].replace("Z", "+00:00")) == \
+        datetime.fromtimestamp(truth["t0_ns"] / 1e9 + (len(rows) - 1) * truth["interval_s"], UTC)
+    assert last["trend"]["velocity_rms_mm_s"]["model"] == "exponential"
+    (lim,) = [x for x in last["limits"] if x["label"] == "zone D"]
+    true_left = crossing["t_ns"] / 1e9 - last["t_s"]
+    assert lim["eta_low_s"] <= lim["eta_s"] <= lim["eta_high_s"]
+    assert lim["eta_s"] == pytest.approx(true_left, rel=0.1)
+    # the kept history feeds `edgevib trend`: a chart within 80 columns with the limit and the projection
+    assert main(["trend", "--history", str(history), "--width", "80", "P-302-DE-H", "velocity_rms_mm_s"]) == 0
+    chart = capsys.readouterr().out
+    assert "zone D" in chart and "rising (exponential growth" in chart and "Plan:" in chart
+    assert max(len(line) for line in chart.splitlines()) <= 80
+    assert main(["trend", "--history", str(history)]) == 0
+    listing = capsys.readouterr().out
+    assert "P-302-DE-H" in listing and "zone D in" in listing
+    assert main(["trend", "--history", str(history), "P-302-DE-H", "velocity_rms_mm_s", "--json"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert doc["projection"]["limits"][0]["label"] == "zone D" and len(doc["series"]["t_s"]) > 12
+
+
+def test_bad_input_is_one_line_and_skipped_files_are_counted(tmp_path: Path,
+                                                             capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["replay", str(tmp_path / "none"), "--fs", "1000"]) == 2
+    assert "no such directory" in capsys.readouterr().err
+    rng = np.random.default_rng(0)
+    fs, n = 2560.0, 1024
+    t = np.arange(n) / fs
+    for k in range(20):
+        x = (0.05 + 0.001 * k) * np.sin(2 * np.pi * 25.0 * t) + 0.01 * rng.standard_normal(n)
+        np.save(tmp_path / f"snap_{k:03d}.npy", x)
+    np.save(tmp_path / "snap_020.npy", np.full(n, np.nan))
+    assert main(["replay", str(tmp_path), "--fs", "2560", "--limit", "velocity_rms=3"]) == 2
+    assert "--limit 'velocity_rms' is not an indicator" in capsys.readouterr().err
+    assert main(["replay", str(tmp_path), "--fs", "2560", "--interval", "3600", "--json"]) == 0
+    captured = capsys.readouterr()
+    rows = [json.loads(line) for line in captured.out.splitlines()]
+    assert len(rows) == 20
+    assert "skipped snap_020.npy: snap_020.npy: 1024 of 1024 samples are NaN or infinite" in captured.err
+    assert main(["trend", "--history", str(tmp_path / "missing.sqlite")]) == 2
+    assert "no history database" in capsys.readouterr().err
