@@ -406,7 +406,7 @@ def replay(files: list[Path], times: list[float], o: ReplayOptions, history_path
                 ind = found
                 zone = None
                 if iso is not None and o.group is not None and o.support is not None and \
-                        math.isfinite(ind.velocity_rms_mm_s):
+                        ind.velocity_rms_mm_s is not None and math.isfinite(ind.velocity_rms_mm_s):
                     zone = iso_zone(ind.velocity_rms_mm_s, o.group, o.support)
                 r = FrameResult(point_id=o.point, machine_id=o.point, t_end_ns=round(s.t_s * 1e9),
                                 received_ns=round(s.t_s * 1e9), fs_hz=s.fs_hz, indicators=ind, iso_zone=zone,

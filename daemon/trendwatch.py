@@ -1,9 +1,10 @@
 """The daemon's trend layer: severity history, periodic trend and projection, gauges, advice.
 
 * Every analysed frame goes into the history (:mod:`edgevib.daemon.history`) with the machine state of that
-  frame — from the alarm layer (its ``frame_listeners`` hook: the state it used to suppress or judge the frame),
-  or, without an alarm layer, from the same rule of thumb (velocity r.m.s. above 0.2 mm/s and a measured speed
-  above the machine's run threshold).  Only running frames enter the roll-ups.
+  frame — as the alarm layer judged it (its ``frame_listeners`` hook; ``sensor-fault`` while the sensor is
+  faulty), or, without an alarm layer, the state the daemon attached to the frame, else a rule of thumb
+  (velocity r.m.s. above 0.2 mm/s and a measured speed above the machine's run threshold).  Only running frames
+  enter the roll-ups; stopped, starting, coasting and unknown periods are marked.
 * Every ``evaluate_s`` (in a worker thread) each tracked series — ``[trend] indicators`` plus every indicator with
   an alarm limit or a ``[[trend.limits]]`` entry — is read back from the history over the trend window and judged
   by :func:`edgevib.pipelines.trend.assess`: :func:`evaluate` builds the document that the Prometheus gauges, the
@@ -30,7 +31,6 @@ import math
 import time
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from datetime import UTC, datetime
 from typing import Any
 
 import numpy as np
@@ -48,6 +48,7 @@ from edgevib.daemon.history import (
 from edgevib.daemon.indicators import INDICATORS, LIMITABLE
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
+from edgevib.daemon.timestamps import rfc3339_utc_s
 from edgevib.pipelines.trend import SECONDS_PER_DAY, TrendResult, TrendSpec, assess
 
 __all__ = [
@@ -149,11 +150,7 @@ def iso_next_boundary(level: float, boundaries: tuple[float, float, float]) -> t
 
 
 def _rfc3339(t_s: float) -> str:
-    return datetime.fromtimestamp(t_s, UTC).strftime("%Y-%m-%dT%H:%M:%S.") + f"{int(t_s % 1 * 1000):03d}Z"
-
-
-def _day(t_s: float) -> str:
-    return datetime.fromtimestamp(t_s, UTC).strftime("%Y-%m-%d")
+    return rfc3339_utc_s(t_s)
 
 
 def _clean(v: float | None) -> float | None:
@@ -405,19 +402,31 @@ class TrendWatch:
     # ------------------------------------------------------------------ frames
 
     def on_judged_frame(self, result: FrameResult, reason: str | None) -> None:
-        """The alarm layer's per-frame hook (its worker thread): ``reason`` is its suppression reason."""
-        state = _STATE_OF_REASON.get(reason, reason or "running")
+        """The alarm layer's per-frame hook (its worker thread, in frame order): the frame's machine state as the
+        layer judged it (``sensor-fault`` when its sensor is faulty)."""
+        if reason == "sensor-fault":
+            state = "sensor-fault"
+        else:
+            ms = result.machine_state
+            if ms is None and self.alarm_layer is not None:
+                ms = getattr(self.alarm_layer, "machine_states", {}).get(result.machine_id)
+            state = ms.state if ms is not None else _STATE_OF_REASON.get(reason, "unknown")
         self._record(result, state)
 
     async def on_frames(self, results: list[FrameResult]) -> None:
-        """Sink entry when there is no alarm layer: the state by :func:`running_state`."""
+        """Sink entry when there is no alarm layer: the frame's machine state when the daemon attached one, else
+        :func:`running_state`."""
         if self.alarm_layer is not None:  # the alarm layer hands every judged frame over (on_judged_frame)
             return
         for r in results:
-            m = self.machines.get(r.machine_id)
-            ind = r.indicators
-            state = running_state(ind.velocity_rms_mm_s, ind.shaft_hz, ind.shaft_estimated,
-                                  float(getattr(m, "run_threshold_rpm", 60.0)))
+            state: str
+            if r.machine_state is not None:
+                state = r.machine_state.state
+            else:
+                m = self.machines.get(r.machine_id)
+                ind = r.indicators
+                state = running_state(ind.velocity_rms_mm_s, ind.shaft_hz, ind.shaft_estimated,
+                                      float(getattr(m, "run_threshold_rpm", 60.0)))
             self._record(r, state)
 
     def _record(self, r: FrameResult, state: str) -> None:
@@ -549,7 +558,8 @@ class TrendWatch:
 
     def state_info(self, point: str) -> dict[str, Any]:
         """Indicator → compact trend document, for the point's retained state message."""
-        return {ind: _compact(doc) for (pid, ind), doc in sorted(self.latest.items()) if pid == point}
+        items = list(self.latest.items())  # one C-level copy: the evaluation thread may add entries meanwhile
+        return {ind: _compact(doc) for (pid, ind), doc in sorted(items) if pid == point}
 
     def collector(self) -> TrendCollector:
         return TrendCollector(self)

@@ -222,3 +222,29 @@ async def test_read_only_views_for_the_http_api(tmp_path: Path) -> None:
         await watch.reconfigure(cfg)  # unchanged settings: no restart needed
     finally:
         await watch.stop()
+
+
+async def test_only_running_frames_enter_the_rollups(tmp_path: Path) -> None:
+    # The alarm layer's judged state decides: coasting, starting and unknown frames are marked, not averaged in.
+    from dataclasses import replace
+
+    from edgevib.pipelines.machine_state import MachineState
+
+    cfg = _config(tmp_path / "state")
+    watch = create_trend_watch(cfg, None)
+    assert watch is not None
+    await watch.start()
+    try:
+        states = ["running"] * 10 + ["coasting"] * 5 + ["stopped"] * 5 + ["starting"] * 5 + ["running"] * 10
+        for i, st in enumerate(states):
+            frame = replace(_frame(T0 + 60.0 * i, 5.0 if st != "running" else 1.0, i),
+                            machine_state=MachineState(state=st))  # type: ignore[arg-type]
+            reason = {"stopped": "machine-stopped", "starting": "start-up-grace"}.get(st)
+            watch.on_judged_frame(frame, reason)
+        watch.on_judged_frame(_frame(T0 + 60.0 * len(states), 9.0, 99), "sensor-fault")
+        await asyncio.to_thread(watch.recorder.flush)  # type: ignore[union-attr]
+        series = await asyncio.to_thread(watch.history, POINT, "velocity_rms_mm_s", None, 500, "minute")
+        assert series.count is not None and series.count.sum() == 20 and np.all(series.vmax == 1.0)
+        assert [p[0] for p in series.periods] == ["coasting", "stopped", "starting", "sensor-fault"]
+    finally:
+        await watch.stop()
