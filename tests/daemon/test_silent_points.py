@@ -7,9 +7,9 @@ from pathlib import Path
 
 import numpy as np
 
+from edgevib.common.wire import Block
 from edgevib.daemon.config import parse_config
 from edgevib.daemon.frames import BlockIngest, Stats
-from edgevib.daemon.wire import Block
 
 FS, N = 25600.0, 2560
 

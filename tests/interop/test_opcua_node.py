@@ -23,8 +23,8 @@ import pytest
 from nodeopcua import JS, node_env
 from servers import free_port
 
+from edgevib.common.wire import Block
 from edgevib.daemon.sources.opcua import NodeSpec, OpcUaSource
-from edgevib.daemon.wire import Block
 
 pytestmark = [pytest.mark.network, pytest.mark.slow]
 
