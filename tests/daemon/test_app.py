@@ -204,12 +204,17 @@ async def test_analysis_error_is_counted_not_fatal(tmp_path: Path) -> None:
     src.ingest = d.ingest
     await d.start()
     try:
+        # 4 blocks of 4096 make one 16384-sample frame; 2 more (one hop of 8192), one more frame: each one counted
         for seq in range(4):
             d.ingest.block("scripted", sine_block("QL-P101-DE-H", seq, 1.0, 50.0), 0)
-        await wait_for(lambda: d.stats.analysis_errors.get("P-101-DE-H", 0) >= 1)
-        for seq in range(4, 6):
+        await wait_for(lambda: d.stats.analysis_errors.get("P-101-DE-H", 0) >= 1 and d.idle)
+        assert d.stats.analysis_errors == {"P-101-DE-H": 1}
+        for seq in range(4, 6):  # the daemon keeps taking blocks after a failed analysis
             d.ingest.block("scripted", sine_block("QL-P101-DE-H", seq, 1.0, 50.0), 0)
-        await wait_for(lambda: d.stats.analysis_errors.get("P-101-DE-H", 0) >= 2)
+        await wait_for(lambda: d.stats.analysis_errors.get("P-101-DE-H", 0) >= 2 and d.idle)
+        assert d.stats.analysis_errors == {"P-101-DE-H": 2}
+        assert d.stats.frames_analysed["P-101-DE-H"] == 0 and not d.latest
+        assert d.stats.blocks_received["scripted"] == 6 and not d.stats.blocks_rejected
     finally:
         await d.stop()
 

@@ -182,6 +182,12 @@ async def test_watchdog_loop_pings_until_cancelled(path_socket: tuple[str, socke
 
 
 async def test_watchdog_loop_returns_without_watchdog_or_socket(path_socket: tuple[str, socket.socket]) -> None:
-    address, _ = path_socket
-    await asyncio.wait_for(watchdog_loop(Notifier(address), None), 1.0)
-    await asyncio.wait_for(watchdog_loop(Notifier(None), 10.0), 1.0)
+    # no watchdog interval, or no notify socket: the loop returns at once (a coroutine that never suspends) and
+    # sends nothing — a loop that waited or pinged would not be done after one step
+    address, sock = path_socket
+    for coro in (watchdog_loop(Notifier(address), None), watchdog_loop(Notifier(None), 10.0)):
+        with pytest.raises(StopIteration):
+            coro.send(None)
+    sock.setblocking(False)
+    with pytest.raises(BlockingIOError):
+        sock.recv(64)
