@@ -671,9 +671,10 @@ class ViewService:
 
         if indicator not in HISTORY_INDICATORS:
             return None
-        latest = dict(watch.latest.get((point, indicator)) or {}) or None
-        return await asyncio.to_thread(history_trend, watch.history.path, watch.history.high_percentile, point,
-                                       indicator, since if math.isfinite(since) else None, min(limit, 2000), latest)
+        since_s = since if math.isfinite(since) else None
+        return await asyncio.to_thread(
+            history_trend, lambda: watch.history(point, indicator, since_s=since_s, max_points=min(limit, 2000)),
+            watch.projection(point, indicator))
 
     @staticmethod
     def _limits_for(indicator: str, rows: Iterable[dict[str, Any]]) -> dict[str, Any]:

@@ -1,19 +1,20 @@
 """The trend panel's data from the daemon's severity history and trend layer (:mod:`edgevib.daemon.trendwatch`).
 
-Reads one series back from the history database (a read-only connection, in a worker thread) and adds the latest
-projection document the trend layer evaluated for it: the fitted growth curve sampled up to the furthest projected
-limit crossing (at most :data:`PROJECTION_HORIZON_DAYS` ahead), the limits with their projected dates and the
-advice.  ``None`` when there is no history for the series (the caller falls back to the recent values it holds).
+Reads one series back through the trend layer's read-only views (``TrendWatch.history`` opens the history
+database read-only; called in a worker thread) and adds the latest projection document it evaluated for it: the
+fitted growth curve sampled up to the furthest projected limit crossing (at most :data:`PROJECTION_HORIZON_DAYS`
+ahead), the limits with their projected dates and the advice.  ``None`` when there is no history for the series (the caller falls back to the recent values it holds).
 """
 
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from typing import Any
 
 import numpy as np
 
-from edgevib.daemon.history import HistoryError, HistoryReader
+from edgevib.daemon.history import HistoryError
 
 __all__ = ["PROJECTION_HORIZON_DAYS", "PROJECTION_POINTS", "history_trend", "projection_curve"]
 
@@ -41,12 +42,13 @@ def projection_curve(doc: dict[str, Any]) -> dict[str, Any] | None:
             "status": doc.get("status"), "need": doc.get("need")}
 
 
-def history_trend(path: str, high_percentile: float, point: str, indicator: str, since_s: float | None,
-                  max_points: int, latest: dict[str, Any] | None) -> dict[str, Any] | None:
-    """``{t_s, values, resolution, projection, trend}`` of one series from the history, or None without one."""
+def history_trend(read: Callable[[], Any], latest: dict[str, Any] | None) -> dict[str, Any] | None:
+    """``{t_s, values, resolution, projection, trend}`` of one series, or None without one.
+
+    ``read`` returns the series (the trend layer's read-only ``history(point, indicator, …)`` view; it raises
+    :class:`~edgevib.daemon.history.HistoryError` when there is none); ``latest`` is its latest trend document."""
     try:
-        with HistoryReader(path, high_percentile) as reader:
-            series = reader.series(point, indicator, since_s=since_s, max_points=max_points)
+        series = read()
     except (HistoryError, OSError, ValueError):
         return None
     t = np.asarray(series.t_s, dtype=np.float64) + series.bucket_s / 2.0  # a bucket stands for its middle
