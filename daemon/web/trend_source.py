@@ -3,7 +3,8 @@
 Reads one series back through the trend layer's read-only views (``TrendWatch.history`` opens the history
 database read-only; called in a worker thread) and adds the latest projection document it evaluated for it: the
 fitted growth curve sampled up to the furthest projected limit crossing (at most :data:`PROJECTION_HORIZON_DAYS`
-ahead), the limits with their projected dates and the advice.  ``None`` when there is no history for the series (the caller falls back to the recent values it holds).
+ahead), the limits with their projected dates and the advice.  ``None`` when there is no history for the series (the
+caller falls back to the recent values it holds).
 """
 
 from __future__ import annotations
