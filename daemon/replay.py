@@ -419,6 +419,7 @@ def replay(files: list[Path], times: list[float], o: ReplayOptions, history_path
                 if reader is None:
                     reader = HistoryReader(history_path)
                 doc = _document(s, r, state, values, tracked, o, iso, reader, baselines)
+                doc["_frame"] = (r, plans[(s.fs_hz, s.x_g.size, s.rpm)])  # for --report (the latest snapshot)
                 last_docs = (r.t_end_ns, doc["_docs"])
                 yield doc
     finally:
@@ -503,6 +504,8 @@ def configure_replay(parser: argparse.ArgumentParser) -> None:
     p.add_argument("--history", metavar="FILE", help="keep the history in FILE (then `edgevib trend --history "
                    "FILE`); default: a temporary file")
     parser.add_argument("--json", action="store_true", help="one JSON object per snapshot")
+    parser.add_argument("--report", metavar="OUT.html", help="also write a self-contained HTML report: the latest "
+                        "snapshot's spectrum, envelope, waveform and indicators, and the trend with its projection")
 
 
 def _clean(v: Any) -> Any:
@@ -582,8 +585,13 @@ def _run(args: argparse.Namespace) -> int:
     last: dict[str, Any] | None = None
     done = 0
     try:
+        report = Path(args.report) if getattr(args, "report", None) else None
+        if report is not None and (report.is_dir() or not report.parent.is_dir()):
+            raise InputError(f"--report {report}: give a file name in an existing folder")
+        frame = None
         for doc in replay(files, times, o, history, on_error=on_error):
             docs = doc.pop("_docs", {})
+            frame = doc.pop("_frame", None)
             if args.json:
                 print(json.dumps(_clean(doc), allow_nan=False), flush=False)
             last = {**doc, "_docs": docs}
@@ -594,6 +602,8 @@ def _run(args: argparse.Namespace) -> int:
             raise InputError(f"none of the {len(files)} files could be replayed")
         if not args.json and last is not None:
             _summary(last, history, o, done, skipped)
+        if report is not None and last is not None and frame is not None:
+            _report(report, last, frame, history, o, done)
     finally:
         sys.stdout.flush()
         if tmp is not None:
@@ -613,6 +623,47 @@ def _summary(last: dict[str, Any], history: Path, o: ReplayOptions, done: int, s
             print(render_chart(series, doc, width=width))
     unit_note = ", ".join(f"{k} in {INDICATORS[k].unit}" for k in o.tracked() if k in INDICATORS)
     print(f"\n({unit_note}; edgevib advises: judge findings with a qualified analyst and the site's procedures)")
+
+
+def _report(out: Path, last: dict[str, Any], frame: tuple[FrameResult, AnalysisPlan], history: Path,
+            o: ReplayOptions, done: int) -> None:
+    """``--report``: the latest snapshot's panels and the trend of the first tracked indicator with its projection
+    (:mod:`edgevib.daemon.web.report`)."""
+    from edgevib.daemon.web.api import indicator_rows
+    from edgevib.daemon.web.panels import envelope_panel, spectrum_panel, waveform_panel
+    from edgevib.daemon.web.report import build_report, write_report
+    from edgevib.daemon.web.trend_source import projection_curve
+
+    r, plan = frame
+    x = np.asarray(r.samples, dtype=np.float64)
+    shaft = r.indicators.shaft_hz
+    trend = None
+    name = next(iter(last.get("_docs", {})), None)
+    if name is not None:
+        doc = last["_docs"][name]
+        with HistoryReader(history) as reader:
+            series = reader.series(o.point, name, max_points=2000)
+        labelled = {lim["label"]: lim["value"] for lim in doc.get("limits", [])}
+        alert = next((labelled[k] for k in ("alert", "limit", "zone C") if k in labelled), None)
+        danger = next((labelled[k] for k in ("danger", "zone D") if k in labelled), None)
+        trend = {"indicator": name, "unit": INDICATORS[name].unit if name in INDICATORS else "",
+                 "t_s": (series.t_s + series.bucket_s / 2.0).tolist(), "values": series.value,
+                 "limits": {"indicator": name, "alert": alert, "danger": danger, "all": doc.get("limits", [])},
+                 "projection": projection_curve(doc), "trend": doc,
+                 "source": f"{done} replayed snapshots; {doc.get('advice_text') or doc.get('status')}"}
+    rows = [(row["name"], row["value"], row["unit"]) for row in indicator_rows(r) if row["kind"] != "limit"]
+    meta = {"point": o.point, "snapshots": done, "latest snapshot": f"{last['file']} at {last['time']}",
+            "sample rate (Hz)": r.fs_hz, "samples": int(x.size),
+            "shaft speed (r/min)": None if shaft is None else shaft * 60, "machine state": last.get("state")}
+    text = build_report(title=f"{o.point} replay", meta=meta, indicators=rows,
+                        spectrum=spectrum_panel(x, r.fs_hz, plan, shaft),
+                        envelope=envelope_panel(x, r.fs_hz, plan, shaft), waveform=waveform_panel(x, r.fs_hz),
+                        trend=trend, notes=["Spectrum, envelope and waveform: the latest snapshot.",
+                                            "Trend and projection: every replayed snapshot."])
+    try:
+        write_report(out, text)
+    except OSError as exc:
+        raise InputError(f"cannot write --report {out}: {exc.strerror or exc}") from None
 
 
 def _terminal_width() -> int:

@@ -280,3 +280,32 @@ def test_report_with_trend_and_projection_opens_in_the_browser(browser: Any, tmp
     assert page.get_attribute("#panel-trend", "data-count") == str(t.size)
     page.close()
     assert console.errors == []
+
+
+def test_replay_report_with_trend_and_projection_opens_in_the_browser(browser: Any, tmp_path: Path) -> None:
+    from edgevib.daemon.cli import main
+    from edgevib.simulator.engine import load_scenario
+    from edgevib.simulator.longrun import LongRun
+
+    # months of snapshots of an exponential progression up to 70 % of its way to ISO zone D (4.5 mm/s, group 2
+    # rigid), replayed into a report: the trend, the zone D line and the projection towards it are drawn
+    law = LongRun(load_scenario("trend-exponential"), seed=2).laws["P-302-DE-H"]
+    t70 = law.crossing_s(law.v0 + 0.7 * (4.5 - law.v0))
+    assert t70 is not None
+    snaps = tmp_path / "snaps"
+    assert main(["simulate", "--scenario", "trend-exponential", "--seed", "2", "--snapshots", str(snaps),
+                 "--duration", str(t70)]) == 0
+    out = tmp_path / "replay.html"
+    assert main(["replay", str(snaps / "P-302-DE-H"), "--fs", "5120", "--rpm", "2960", "--group", "2", "--support",
+                 "rigid", "--min-span", "86400", "--report", str(out), "--json"]) == 0
+    page = browser.new_page()
+    console = Console(page)
+    page.goto(out.as_uri())
+    page.wait_for_selector("body[data-rendered]", timeout=20000)
+    assert page.is_visible("#panel-trend") and page.locator("#tr-chart canvas").count() == 1
+    legend = page.inner_text("#tr-chart")
+    assert "danger" in legend and "projection" in legend  # the zone D boundary and the fitted growth
+    assert int(page.get_attribute("#panel-trend", "data-count") or 0) > 12
+    assert page.locator("#sp-chart canvas").count() == 1 and page.locator("#wf-chart canvas").count() == 1
+    page.close()
+    assert console.errors == []
