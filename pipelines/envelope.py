@@ -18,12 +18,18 @@ Both spectra have the frame's line spacing fs/N.
 Defect families (FTF, BPFO, BPFI and, for a rolling-element defect, **2 × BSF**), per frame and channel:
 
 1. *Shaft lines.*  The shaft harmonics 1× … :data:`SHAFT_HARMONICS`× are searched first (± :data:`SHAFT_TOLERANCE`);
-   a significant local maximum there is a shaft line, and is never taken for a bearing line (a bearing whose
-   defect frequency lies near a whole order, e.g. BPFO ≈ 3.05× of a 6203, would otherwise "find" the 3× line).
+   a significant local maximum there is a shaft line.  Where the shaft series stands on its own — one of its
+   significant lines is not a harmonic of the family's candidate line (:func:`shaft_series_established`) — its
+   lines are never taken for that family's lines (a bearing whose defect frequency lies near a whole order, e.g.
+   BPFO ≈ 3.05× of a 6203, would otherwise "find" the 3× line of a looseness series 1×, 2×, 3× …).  Where every
+   shaft line found is a harmonic of the candidate — slip has put a defect line on a whole order, e.g. BPFO at
+   3.03× slipping 1 % onto 3×, and its harmonics on 6×, 9×, 12× — the shaft explains nothing the defect series
+   does not, and the lines stay the family's.  (A shaft-synchronous source with as many events per revolution,
+   and nothing else on the shaft series, would read the same: the line pattern alone cannot tell them apart.)
 2. *Fundamental.*  Within ± the slip tolerance (at least ± 1 line) of the kinematic value, the largest SES line
-   that is a **true local maximum** (above its lower neighbour, not below its upper one) and not a shaft line.  A
-   window whose largest value sits on its edge — the skirt of a line outside it — has no local maximum and finds
-   nothing (frequency, amplitude and SNR are then None).
+   that is a **true local maximum** (above its lower neighbour, not below its upper one) and not a barred shaft
+   line.  A window whose largest value sits on its edge — the skirt of a line outside it — has no local maximum
+   and finds nothing (frequency, amplitude and SNR are then None).
 3. *Harmonics* 2 … H, each searched around h × the found line (± ⌈h/2⌉ + 1 lines; around h × the kinematic value
    ± h × slip when the fundamental has no local maximum), each counting only where it is itself a significant
    local maximum.
@@ -39,9 +45,10 @@ Defect families (FTF, BPFO, BPFI and, for a rolling-element defect, **2 × BSF**
    negligible share of the band's power (a long record makes the faintest periodicity significant; a short one
    lets noise lift a faint line) is reported with its numbers but not called a defect.
 6. *Resolution.*  A fundamental closer than one line to a line of the pattern of another family present in the
-   frame (harmonics, sidebands), or to a shaft harmonic found in the frame, cannot be told from it: its verdict
-   is withheld (ambiguous with that family).  For the CWRU 6205 bearing BPFO lies 0.17 × shaft from BPFI − 2×,
-   so telling them apart needs lines finer than about 5 Hz at 1800 r/min (frames of 0.2 s or more).
+   frame (harmonics, sidebands), or to a shaft harmonic found in the frame while the shaft series stands on its
+   own (step 1), cannot be told from it: its verdict is withheld (ambiguous with that family).  For the CWRU
+   6205 bearing BPFO lies 0.17 × shaft from BPFI − 2×, so telling them apart needs lines finer than about 5 Hz at
+   1800 r/min (frames of 0.2 s or more).
 7. *Coincidences.*  A detected family whose fundamental sits (± 1 line) on a line of another family's pattern —
    a local maximum in one of its harmonic or sideband windows, that family's own fundamental being significant
    (3 × BPFO lies near 2 × BPFI, 2 × BSF near BPFO + 1×, BPFO near BPFI − 2× at coarse resolution) — is compared
@@ -81,6 +88,7 @@ __all__ = [
     "min_decimated_length",
     "pattern_gaps",
     "search_families",
+    "shaft_series_established",
     "squared_envelope_spectrum",
 ]
 
@@ -261,7 +269,8 @@ class LineSearch:
 
 
 def search_lines(ses: FloatArray, centre_lines: FloatArray, half_lines: FloatArray, thresholds: FloatArray,
-                 excluded: BoolArray | None = None, min_half: float = 1.0) -> LineSearch:
+                 excluded: BoolArray | None = None, min_half: float = 1.0,
+                 exclude_in: BoolArray | None = None) -> LineSearch:
     """Largest local maximum of ``ses`` in each window ``centre ± half`` and its detection statistic.
 
     Parameters
@@ -273,6 +282,7 @@ def search_lines(ses: FloatArray, centre_lines: FloatArray, half_lines: FloatArr
         (:func:`edgevib.pipelines.detection.window_thresholds`); wider windows use the last entry
     excluded : bool ndarray, shape (channels, lines) — lines that may not be taken as the maximum
     min_half : smallest half-width in lines (1: the two lines around a centre between lines; 0.5: the nearest)
+    exclude_in : bool ndarray, shape (channels, windows) — the windows ``excluded`` applies to (default: all)
 
     Returns
     -------
@@ -294,7 +304,10 @@ def search_lines(ses: FloatArray, centre_lines: FloatArray, half_lines: FloatArr
     v = _gather(ses, idx)
     local = valid & (v > _gather(ses, idx - 1)) & (v >= _gather(ses, idx + 1))
     if excluded is not None:
-        local &= ~_gather(excluded, idx)
+        barred = _gather(excluded, idx)
+        if exclude_in is not None:
+            barred &= exclude_in[..., None]
+        local &= ~barred
     best = np.argmax(np.where(local, v, -np.inf), axis=-1)
     has = local.any(axis=-1) & fits
     peak = np.take_along_axis(idx, best[..., None], axis=-1)[..., 0]
@@ -338,6 +351,8 @@ class FamilySearch:
     ambiguous_with: IntArray  # (channels, families) family index (or ``families`` for the shaft) explaining the
     #                           fundamental's line; -1 where not ambiguous
     shaft: LineSearch  # (channels, SHAFT_HARMONICS) the shaft harmonics
+    shaft_established: BoolArray  # (channels, families) the shaft series has lines the family's candidate series
+    #                               does not explain: shaft lines are barred from the family's windows
 
     def part(self, name: str) -> npt.NDArray[Any]:
         """A field of :attr:`lines` shaped (channels, families, slots)."""
@@ -412,9 +427,15 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     s_found = shaft.found
     rows, cols = np.nonzero(s_found)
     excluded[rows, shaft.index[rows, cols]] = True
-    # 2. fundamentals
+    # 2. fundamentals: the window's largest local maximum, and the largest one that is not a shaft line; the
+    # shaft lines are barred only where the shaft series stands on its own (lines the candidate's series does
+    # not explain)
     f_centre = expected_hz / df_hz
-    fund = search_lines(ses, f_centre, slip * f_centre, thresholds, excluded)
+    f_half = slip * f_centre
+    free = search_lines(ses, f_centre, f_half, thresholds)
+    barred = search_lines(ses, f_centre, f_half, thresholds, excluded)
+    established = shaft_series_established(shaft, free.index)
+    fund = _pick(established, barred, free)
     has = fund.index >= 0
     k1 = np.where(has, fund.index, 0).astype(np.float64)
     # 3. harmonics (around h × the found line, else h × the expected one) and sidebands (around the found line)
@@ -429,7 +450,9 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     centres = np.concatenate([f_centre[..., None], h_centre, sb_centre], axis=-1)  # (c, f, slots)
     halves = np.concatenate([np.maximum(1.0, slip * f_centre)[..., None], h_half, sb_half], axis=-1)
     slots = centres.shape[-1]
-    rest = search_lines(ses, centres[..., 1:].reshape(c, -1), halves[..., 1:].reshape(c, -1), thresholds, excluded)
+    bar_rest = np.repeat(established[..., None], slots - 1, axis=-1).reshape(c, -1)
+    rest = search_lines(ses, centres[..., 1:].reshape(c, -1), halves[..., 1:].reshape(c, -1), thresholds, excluded,
+                        exclude_in=bar_rest)
     lines = _join(fund, rest, nf, slots)
     found = lines.found.reshape(c, nf, slots)
     index = lines.index.reshape(c, nf, slots)
@@ -459,15 +482,47 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     ambiguous_with = np.where(ambiguous, np.argmax(beaten, axis=-1), -1)
     if gaps is not None:
         gap, shaft_order = gaps
+        shaft_near = shaft.found[:, shaft_order - 1] & established  # (c, A)
         present = np.concatenate([np.broadcast_to(significant[:, None, :], (c, nf, nf)),
-                                  shaft.found[:, shaft_order - 1][:, :, None]], axis=-1)  # (c, A, B + shaft)
+                                  shaft_near[:, :, None]], axis=-1)  # (c, A, B + shaft)
         close = (gap[None, :, :] * shaft_hz[:, None, None] / df_hz < 1.0) & present
         unresolved = detected & close.any(axis=-1) & ~ambiguous
         ambiguous_with = np.where(unresolved, np.argmax(close, axis=-1), ambiguous_with)
         ambiguous |= unresolved
     return FamilySearch(lines=lines, slots=slots, expected_lines=centres, amplitude_g=amp, depth=depth,
                         significant=significant, detected=detected & ~ambiguous, ambiguous_with=ambiguous_with,
-                        shaft=shaft)
+                        shaft=shaft, shaft_established=established)
+
+
+def shaft_series_established(shaft: LineSearch, candidate: IntArray) -> BoolArray:
+    """Whether the shaft series has evidence of its own beside each family's candidate fundamental.
+
+    Parameters
+    ----------
+    shaft : the search of the shaft harmonics, shape (channels, SHAFT_HARMONICS)
+    candidate : int ndarray, shape (channels, families) — each family's candidate fundamental line (-1: none)
+
+    Returns
+    -------
+    bool ndarray, shape (channels, families): some significant shaft line is not a harmonic of the candidate
+    (line h × candidate within ± ⌈h/2⌉ + 1 lines, ± 1 for h = 1 — the harmonic windows of the family search).
+    A series of shaft lines that are all harmonics of the candidate (a bearing line that slip has put on a whole
+    order, and its harmonics) is explained by the candidate as well as by the shaft, and does not claim it.
+    """
+    idx = shaft.index[:, None, :].astype(np.float64)  # (c, 1, orders)
+    cand = candidate[..., None].astype(np.float64)  # (c, f, 1)
+    has = cand >= 1
+    h = np.rint(idx / np.where(has, cand, 1.0))
+    tol = np.where(h <= 1, 1.0, np.ceil(h / 2.0) + 1.0)
+    explained = has & (h >= 1) & (np.abs(idx - h * cand) <= tol)
+    out: BoolArray = np.asarray((shaft.found[:, None, :] & ~explained).any(axis=-1))
+    return out
+
+
+def _pick(where: BoolArray, a: LineSearch, b: LineSearch) -> LineSearch:
+    """``a`` where ``where`` holds, ``b`` elsewhere (searches of the same windows)."""
+    return LineSearch(index=np.where(where, a.index, b.index), statistic=np.where(where, a.statistic, b.statistic),
+                      threshold=a.threshold, fits=a.fits, lo=a.lo, hi=a.hi)
 
 
 def _join(fund: LineSearch, rest: LineSearch, families: int, slots: int) -> LineSearch:
