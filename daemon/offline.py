@@ -23,6 +23,7 @@ import argparse
 import json
 import math
 import sys
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, NoReturn
 
@@ -227,8 +228,34 @@ def _speed_text(rpm: float) -> str:
     return f"{rpm:.0f} r/min"
 
 
-def _analyze(args: argparse.Namespace) -> tuple[dict[str, Any], list[str]]:
-    warnings: list[str] = []
+@dataclass(frozen=True)
+class _Options:
+    """The analyse options, checked before the file is read."""
+
+    unit: str
+    channel: int | None
+    full_scale: float
+    group: int | None
+    rpm: float | None
+    bearing: BearingGeometry | None
+    auto: bool
+    band: tuple[float, float] | None
+    velocity_band: tuple[float, float]
+    alpha: float
+
+
+@dataclass
+class _Speed:
+    """The shaft speed chosen for the record and where it came from."""
+
+    shaft_hz: float | None
+    source: str | None
+    source_text: str
+    quality: float | None
+    range_hz: tuple[float, float]
+
+
+def _options(args: argparse.Namespace) -> _Options:
     unit = args.unit
     if unit not in ("g", "m/s2"):
         raise InputError(f"--unit {unit!r} must be g or m/s2")
@@ -259,9 +286,12 @@ def _analyze(args: argparse.Namespace) -> tuple[dict[str, Any], list[str]]:
     vel_band = _band("--velocity-band", args.velocity_band)
     assert vel_band is not None
     alpha = _false_alarm(args.false_alarm)
+    return _Options(unit=unit, channel=channel, full_scale=full_scale, group=group, rpm=rpm_opt, bearing=bearing,
+                    auto=auto, band=band, velocity_band=vel_band, alpha=alpha)
 
-    wave = read_waveform(args.file, var=args.var, channel=channel, column=args.column, full_scale=full_scale,
-                         fs_var=args.fs_var, rpm_var=args.rpm_var, shaft_hz_var=args.shaft_hz_var)
+
+def _sample_rate(args: argparse.Namespace, wave: Waveform, warnings: list[str]) -> tuple[float, str | None]:
+    """The sample rate (``--fs`` or the file's) and where it came from."""
     fs_source = wave.fs_source
     if args.fs is not None:
         fs = _number("--fs", args.fs)
@@ -278,99 +308,123 @@ def _analyze(args: argparse.Namespace) -> tuple[dict[str, Any], list[str]]:
         raise InputError(f"{args.file} does not carry a sample rate: give --fs HZ")
     if not math.isfinite(fs) or fs <= 0:
         raise InputError(f"sample rate {fs!r} Hz must be finite and > 0")
-    x = wave.samples
+    return fs, fs_source
+
+
+def _samples_g(args: argparse.Namespace, x: np.ndarray, unit: str) -> np.ndarray:
+    """The record in g, refused when empty or not finite."""
     if x.size == 0:
         raise InputError(f"{args.file} holds no samples")
     bad = int(np.count_nonzero(~np.isfinite(x)))
     if bad:
         raise InputError(f"{args.file}: {bad} of {x.size} samples are NaN or infinite")
-    x_g = to_g(x, unit)
-    n = int(x_g.size)
-    orders = (0.5, 1.0, 2.0, 3.0)
-    notes: list[str] = []
+    return to_g(x, unit)
 
-    # ---- speed: given, from the file, or estimated; the estimate also checks a given speed
+
+def _spectrum_estimate(x_g: np.ndarray, fs: float, opts: _Options, est_range: tuple[float, float] | None,
+                       orders: tuple[float, ...]) -> tuple[float | None, float | None]:
+    """The shaft speed the spectrum shows and its quality (None, None when it cannot be estimated)."""
+    if est_range is None:
+        return None, None
+    try:
+        est_plan = make_plan(fs, int(x_g.size), velocity_band_hz=opts.velocity_band, bearing=opts.bearing,
+                             speed_range_hz=est_range, orders=orders, partial=True)
+    except PipelineError:
+        return None, None
+    first = analyze_frames(x_g, est_plan)[0]
+    return first.shaft_hz, first.shaft_quality
+
+
+def _given_speed_warnings(rpm_opt: float, file_rpm: float | None, rpm_source: str | None, est_hz: float | None,
+                          warnings: list[str]) -> None:
+    """Warn when ``--rpm`` disagrees with the file's speed or the spectrum by more than the order tolerance."""
+    if file_rpm is not None and abs(rpm_opt / file_rpm - 1) > ORDER_TOLERANCE:
+        warnings.append(f"--rpm {rpm_opt:g} differs from the file's {_speed_text(file_rpm)} "
+                        f"({rpm_source}) by {100 * abs(rpm_opt / file_rpm - 1):.1f} %, more than the "
+                        f"{100 * ORDER_TOLERANCE:g} % order tolerance; using --rpm")
+    if est_hz is not None and abs(rpm_opt / 60.0 / est_hz - 1) > ORDER_TOLERANCE:
+        warnings.append(f"--rpm {rpm_opt:g} differs from the {_speed_text(est_hz * 60)} the spectrum shows "
+                        f"by {100 * abs(rpm_opt / 60.0 / est_hz - 1):.1f} %, more than the "
+                        f"{100 * ORDER_TOLERANCE:g} % order tolerance; using --rpm")
+
+
+def _undetermined_speed_text(est_range: tuple[float, float] | None, est_quality: float | None, n: int, fs: float,
+                             notes: list[str]) -> str:
+    """Why no speed was found (one note) and the source text that says so."""
+    if est_range is None:
+        notes.append(f"speed: the {n / fs:.3g} s record is too short to estimate a shaft speed; give --rpm")
+        return "not determined"
+    if est_quality is not None:
+        notes.append(f"speed: the spectrum is ambiguous (quality {est_quality:.2f}: another line pattern "
+                     "explains it as well); orders and envelope verdicts skipped; give --rpm")
+        return "not determined (ambiguous)"
+    notes.append("speed: no clear shaft line in the spectrum; orders and envelope verdicts skipped; give "
+                 "--rpm")
+    return "not determined"
+
+
+def _speed(x_g: np.ndarray, fs: float, wave: Waveform, opts: _Options, orders: tuple[float, ...],
+           notes: list[str], warnings: list[str]) -> _Speed:
+    """Speed: given, from the file, or estimated; the estimate also checks a given speed."""
+    n = int(x_g.size)
+    rpm_opt = opts.rpm
     file_rpm = wave.rpm
     if file_rpm is not None and (not math.isfinite(file_rpm) or file_rpm <= 0):
         if rpm_opt is None:
             raise InputError(f"{wave.rpm_source} holds an impossible speed {file_rpm:g} r/min; give --rpm")
         file_rpm = None
     est_range = _estimate_range(fs, n, orders)
-    est_hz: float | None = None
-    est_quality: float | None = None
-    if est_range is not None:
-        try:
-            est_plan = make_plan(fs, n, velocity_band_hz=vel_band, bearing=bearing, speed_range_hz=est_range,
-                                 orders=orders, partial=True)
-        except PipelineError:
-            est_plan = None
-        if est_plan is not None:
-            first = analyze_frames(x_g, est_plan)[0]
-            est_hz, est_quality = first.shaft_hz, first.shaft_quality
+    est_hz, est_quality = _spectrum_estimate(x_g, fs, opts, est_range, orders)
+    shaft_hz: float | None
+    source: str | None
     if rpm_opt is not None:
-        shaft_hz: float | None = rpm_opt / 60.0
+        shaft_hz = rpm_opt / 60.0
         source, source_text = "given", "option --rpm"
-        if file_rpm is not None and abs(rpm_opt / file_rpm - 1) > ORDER_TOLERANCE:
-            warnings.append(f"--rpm {rpm_opt:g} differs from the file's {_speed_text(file_rpm)} "
-                            f"({wave.rpm_source}) by {100 * abs(rpm_opt / file_rpm - 1):.1f} %, more than the "
-                            f"{100 * ORDER_TOLERANCE:g} % order tolerance; using --rpm")
-        if est_hz is not None and abs(rpm_opt / 60.0 / est_hz - 1) > ORDER_TOLERANCE:
-            warnings.append(f"--rpm {rpm_opt:g} differs from the {_speed_text(est_hz * 60)} the spectrum shows "
-                            f"by {100 * abs(rpm_opt / 60.0 / est_hz - 1):.1f} %, more than the "
-                            f"{100 * ORDER_TOLERANCE:g} % order tolerance; using --rpm")
+        _given_speed_warnings(rpm_opt, file_rpm, wave.rpm_source, est_hz, warnings)
     elif file_rpm is not None:
         shaft_hz, source, source_text = file_rpm / 60.0, "file", wave.rpm_source
     elif est_hz is not None:
         shaft_hz, source, source_text = est_hz, "estimated", "estimated from the spectrum"
     else:
         shaft_hz, source = None, None
-        if est_range is None:
-            source_text = "not determined"
-            notes.append(f"speed: the {n / fs:.3g} s record is too short to estimate a shaft speed; give --rpm")
-        elif est_quality is not None:
-            source_text = "not determined (ambiguous)"
-            notes.append(f"speed: the spectrum is ambiguous (quality {est_quality:.2f}: another line pattern "
-                         "explains it as well); orders and envelope verdicts skipped; give --rpm")
-        else:
-            source_text = "not determined"
-            notes.append("speed: no clear shaft line in the spectrum; orders and envelope verdicts skipped; give "
-                         "--rpm")
+        source_text = _undetermined_speed_text(est_range, est_quality, n, fs, notes)
     if shaft_hz is not None:
         speed_range = (shaft_hz * (1 - ORDER_TOLERANCE), shaft_hz * (1 + ORDER_TOLERANCE))
     else:
         speed_range = est_range or (1.0, min(2.0, 0.4 * fs / 2 / 3.1))
+    return _Speed(shaft_hz=shaft_hz, source=source, source_text=source_text, quality=est_quality,
+                  range_hz=speed_range)
 
-    # ---- envelope band
+
+def _envelope_band(x_g: np.ndarray, fs: float, opts: _Options, speed_range: tuple[float, float],
+                   notes: list[str]) -> tuple[tuple[float, float] | None, str | None, dict[str, Any] | None]:
+    """The demodulation band, where it came from, and what an automatic selection saw."""
+    band = opts.band
+    bearing = opts.bearing
     band_source: str | None = None
     selection: dict[str, Any] | None = None
     if band is not None:
         band_source = "configured"
-    elif auto:
+    elif opts.auto:
         band, selection = _auto_band(x_g, fs, speed_range, bearing)
         if band is not None:
             band_source = "auto"
         else:
             notes.append(f"envelope band: automatic choice not possible ({selection.get('reason')}); the default "
                          "band is used")
-    if band is None and (bearing is not None or auto):
+    if band is None and (bearing is not None or opts.auto):
         band = default_envelope_band(fs, None, shaft_hz_max=speed_range[1])
         if band is not None:
             band_source = "default"
         elif bearing is not None:
             notes.append(f"envelope: a {fs:g} Hz sample rate cannot carry a demodulation band (needs fs/2.56 ≥ "
                          "2 kHz)")
-    plan = make_plan(fs, n, velocity_band_hz=vel_band, envelope_band_hz=band if bearing is not None else None,
-                     bearing=bearing, speed_range_hz=speed_range, orders=orders, order_tolerance=ORDER_TOLERANCE,
-                     false_alarm=alpha, partial=True)
-    notes.extend(plan_notes(plan))
-    ind: FrameIndicators = analyze_frames(x_g, plan, [math.nan if shaft_hz is None else shaft_hz])[0]
-    if shaft_hz is None and ind.shaft_hz is not None:  # (the final plan's own estimate; kept consistent)
-        shaft_hz, source, source_text = ind.shaft_hz, "estimated", "estimated from the spectrum"
-        est_quality = ind.shaft_quality
+    return band, band_source, selection
 
-    frame = FrameResult(point_id="", machine_id="", t_end_ns=0, received_ns=0, fs_hz=fs, indicators=ind,
-                        iso_zone=None, samples=x_g.astype(np.float32))
-    values = document(frame, "report", {"order": [order_key(o) for o in plan.orders]})  # the registry's report keys
+
+def _envelope_document(ind: FrameIndicators, values: dict[str, Any], band: tuple[float, float] | None,
+                       band_source: str | None, selection: dict[str, Any] | None) -> dict[str, Any]:
+    """The envelope part of the result: band, verdicts, and per family the registry's numbers and evidence."""
     envelope: dict[str, Any] = {"band_hz": list(band) if band is not None else None, "band_source": band_source,
                                 "detected": list(ind.envelope_detected)}
     if selection is not None:
@@ -384,10 +438,55 @@ def _analyze(args: argparse.Namespace) -> tuple[dict[str, Any], list[str]]:
                               "threshold_db": fam.threshold_db, "depth": fam.depth,
                               "harmonics_found": fam.harmonics_found, "sidebands_found": fam.sidebands_found,
                               "ambiguous_with": fam.ambiguous_with}
+    return envelope
+
+
+def _add_bearing_and_iso(result: dict[str, Any], ind: FrameIndicators, opts: _Options, support: str | None,
+                         shaft_hz: float | None) -> None:
+    """Defect frequencies (bearing and speed known) and the ISO 20816-3 zone (group and support given)."""
+    if opts.bearing is not None and shaft_hz is not None:
+        d = defect_frequencies(opts.bearing, shaft_hz)
+        result["defect_frequencies_hz"] = {"ftf": d.ftf_hz, "bpfo": d.bpfo_hz, "bpfi": d.bpfi_hz, "bsf": d.bsf_hz,
+                                           "2xbsf": 2 * d.bsf_hz}
+    if opts.group is not None and support is not None:
+        if ind.velocity_rms_mm_s is not None:
+            result["iso_zone"] = iso_zone(ind.velocity_rms_mm_s, opts.group, support)
+        result["iso_group"] = opts.group
+        result["iso_support"] = support
+        result["iso_boundaries_mm_s"] = list(zone_boundaries_mm_s(opts.group, support))
+
+
+def _analyze(args: argparse.Namespace) -> tuple[dict[str, Any], list[str]]:
+    warnings: list[str] = []
+    opts = _options(args)
+    wave = read_waveform(args.file, var=args.var, channel=opts.channel, column=args.column,
+                         full_scale=opts.full_scale, fs_var=args.fs_var, rpm_var=args.rpm_var,
+                         shaft_hz_var=args.shaft_hz_var)
+    fs, fs_source = _sample_rate(args, wave, warnings)
+    x_g = _samples_g(args, wave.samples, opts.unit)
+    n = int(x_g.size)
+    orders = (0.5, 1.0, 2.0, 3.0)
+    notes: list[str] = []
+    speed = _speed(x_g, fs, wave, opts, orders, notes, warnings)
+    shaft_hz, source, source_text, est_quality = speed.shaft_hz, speed.source, speed.source_text, speed.quality
+    band, band_source, selection = _envelope_band(x_g, fs, opts, speed.range_hz, notes)
+    plan = make_plan(fs, n, velocity_band_hz=opts.velocity_band,
+                     envelope_band_hz=band if opts.bearing is not None else None, bearing=opts.bearing,
+                     speed_range_hz=speed.range_hz, orders=orders, order_tolerance=ORDER_TOLERANCE,
+                     false_alarm=opts.alpha, partial=True)
+    notes.extend(plan_notes(plan))
+    ind: FrameIndicators = analyze_frames(x_g, plan, [math.nan if shaft_hz is None else shaft_hz])[0]
+    if shaft_hz is None and ind.shaft_hz is not None:  # (the final plan's own estimate; kept consistent)
+        shaft_hz, source, source_text = ind.shaft_hz, "estimated", "estimated from the spectrum"
+        est_quality = ind.shaft_quality
+
+    frame = FrameResult(point_id="", machine_id="", t_end_ns=0, received_ns=0, fs_hz=fs, indicators=ind,
+                        iso_zone=None, samples=x_g.astype(np.float32))
+    values = document(frame, "report", {"order": [order_key(o) for o in plan.orders]})  # the registry's report keys
     result: dict[str, Any] = {
         "file": str(args.file),
         "signal": wave.source,
-        "unit": unit,
+        "unit": opts.unit,
         "fs_hz": fs,
         "fs_source": fs_source or "option --fs",
         "n_samples": n,
@@ -399,22 +498,13 @@ def _analyze(args: argparse.Namespace) -> tuple[dict[str, Any], list[str]]:
         "shaft_hz_quality": est_quality if source == "estimated" else None,
         "shaft_source": source_text,
         "orders": {order_key(o): ind.orders_mm_s.get(order_key(o)) for o in plan.orders},
-        "envelope": envelope,
+        "envelope": _envelope_document(ind, values, band, band_source, selection),
         "iso_zone": None,
-        "false_alarm": alpha,
+        "false_alarm": opts.alpha,
         "notes": notes,
         "warnings": warnings,
     }
-    if bearing is not None and shaft_hz is not None:
-        d = defect_frequencies(bearing, shaft_hz)
-        result["defect_frequencies_hz"] = {"ftf": d.ftf_hz, "bpfo": d.bpfo_hz, "bpfi": d.bpfi_hz, "bsf": d.bsf_hz,
-                                           "2xbsf": 2 * d.bsf_hz}
-    if group is not None and args.support is not None:
-        if ind.velocity_rms_mm_s is not None:
-            result["iso_zone"] = iso_zone(ind.velocity_rms_mm_s, group, args.support)
-        result["iso_group"] = group
-        result["iso_support"] = args.support
-        result["iso_boundaries_mm_s"] = list(zone_boundaries_mm_s(group, args.support))
+    _add_bearing_and_iso(result, ind, opts, args.support, shaft_hz)
     if getattr(args, "report", None) is not None:
         _write_report(args.report, result, x_g, fs, plan, frame)
     return result, warnings
