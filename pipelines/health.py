@@ -236,25 +236,8 @@ def check_health(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec | None = 
     is specified.
     """
     spec = spec or HealthSpec()
-    x = np.asarray(frames, dtype=np.float64)
-    if x.ndim == 1:
-        x = x[None, :]
-    if x.ndim != 2 or x.shape[1] < max(16, 4 * spec.segments):
-        raise SignalError(f"health check needs frames shaped (channels, samples ≥ 16 and ≥ 4 per segment), "
-                          f"got {x.shape}")
-    if not (math.isfinite(fs_hz) and fs_hz > 0):
-        raise SignalError(f"sample rate {fs_hz!r} Hz must be finite and > 0")
+    x, bias, turning = _checked_inputs(frames, fs_hz, spec, bias_v, running)
     c, n = x.shape
-    bias = None
-    if bias_v is not None:
-        bias = np.asarray(bias_v, dtype=np.float64).reshape(-1)
-        if bias.shape != (c,):
-            raise SignalError(f"bias_v has {bias.size} values for {c} channels")
-    turning = np.ones(c, dtype=np.bool_)
-    if running is not None:
-        turning = np.asarray(running, dtype=np.bool_).reshape(-1)
-        if turning.shape != (c,):
-            raise SignalError(f"running has {turning.size} values for {c} channels")
 
     # Segment means (pass 1): the DC-step check, the frame mean and — since NaN and ±Inf reach a sum — the
     # finiteness check.
@@ -276,33 +259,8 @@ def check_health(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec | None = 
     hi, lo = x.max(axis=1), x.min(axis=1)
     scratch = np.empty((c, n), dtype=np.bool_)
     repeat_n = _count(np.equal(x[:, 1:], x[:, :-1], out=scratch[:, 1:]))
-
-    # Clipping: samples at full scale, or flat tops (consecutive samples pinned at the frame's extreme).  A row
-    # with fewer than two samples near either extreme (passes 5, 6) has no pinned pair; the others are counted.
-    tol = 1e-6 * (hi - lo) + 1e-12
-    near_hi = _count(np.greater_equal(x, (hi - tol)[:, None], out=scratch))
-    near_lo = _count(np.less_equal(x, (lo + tol)[:, None], out=scratch))
-    pinned_n = np.zeros(c, dtype=np.int64)
-    top_rows = np.flatnonzero((near_hi >= 2) | (near_lo >= 2))
-    if top_rows.size:
-        xs_ = x[top_rows]
-        at_hi, at_lo = xs_ >= (hi - tol)[top_rows, None], xs_ <= (lo + tol)[top_rows, None]
-        pinned = (at_hi[:, 1:] & at_hi[:, :-1]) | (at_lo[:, 1:] & at_lo[:, :-1])
-        # A frame spanning only a few quantization steps (the smallest non-zero change between samples) repeats
-        # its extremes by nature: its flat tops are no evidence of clipping.
-        steps = np.abs(np.diff(xs_, axis=1))
-        q = np.min(np.where(steps > 0, steps, np.inf), axis=1)
-        coarse = (hi[top_rows] - lo[top_rows]) < MIN_LEVELS * q
-        pinned[coarse] = False
-        pinned_n[top_rows] = _count(pinned)
-        repeat_n[top_rows] -= _count(pinned & (xs_[:, 1:] == xs_[:, :-1]))  # pinned tops are clipping, not stuck
-    if spec.full_scale_g is not None:
-        clip = np.zeros(c)
-        at_fs = np.flatnonzero(np.maximum(hi, -lo) >= 0.995 * spec.full_scale_g)
-        if at_fs.size:
-            clip[at_fs] = np.mean(np.abs(x[at_fs]) >= 0.995 * spec.full_scale_g, axis=1)
-    else:
-        clip = pinned_n / (n - 1)
+    pinned_n = _flat_tops(x, hi, lo, repeat_n, scratch)
+    clip = _clip_fraction(x, hi, lo, pinned_n, spec)
     repeat = repeat_n / (n - 1)
 
     # DC step: spread of segment means against the within-segment spread (total variance = within + between
@@ -333,39 +291,13 @@ def check_health(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec | None = 
 
     out: list[SensorHealth] = []
     for i in range(c):
-        found: list[tuple[SensorFault, str]] = []
         m = float(mean[i])
         b = None if bias is None or not math.isfinite(bias[i]) else float(bias[i])
-        if b is not None and not spec.bias_window_v[0] <= b <= spec.bias_window_v[1]:
-            why = "open cable or no sensor" if b > spec.bias_window_v[1] else "short circuit"
-            found.append(("bias", f"IEPE bias {b:.2f} V outside {spec.bias_window_v[0]:g}–"
-                                  f"{spec.bias_window_v[1]:g} V ({why})"))
-        elif spec.expected_mean_g is not None:
-            if abs(m - spec.expected_mean_g) > spec.mean_tolerance_g:
-                found.append(("bias", f"mean {m:.3f} g is more than {spec.mean_tolerance_g:g} g from the expected "
-                                      f"{spec.expected_mean_g:g} g"))
-        else:
-            allowed = spec.mean_tolerance_g + (1.0 if spec.sensor_type == "mems" else 0.0)
-            if abs(m) > allowed:
-                found.append(("bias", f"mean {m:.3f} g is beyond the ±{allowed:g} g a {spec.sensor_type} sensor "
-                                      f"can show"))
-        if std[i] < spec.flatline_std_g or (turning[i] and repeat[i] > spec.repeat_fraction):
-            found.append(("flatline", f"standard deviation {std[i]:.3g} g (floor {spec.flatline_std_g:g} g), "
-                                      f"{100 * repeat[i]:.1f} % of samples repeat the previous one"))
-        if clip[i] > spec.clip_fraction:
-            where = f"at full scale {spec.full_scale_g:g} g" if spec.full_scale_g is not None else "pinned flat"
-            found.append(("clipping", f"{100 * clip[i]:.2f} % of samples {where} (limit "
-                                      f"{100 * spec.clip_fraction:g} %)"))
-        if step[i] > step_limit[i]:
-            found.append(("dc-step", f"segment means differ by {step[i]:.3g} g (limit {step_limit[i]:.3g} g)"))
-        if spikes[i] > 0:
-            found.append(("spikes", f"{int(spikes[i])} isolated spike(s) above {spec.spike_sigma:g} × the robust "
-                                    f"spread {float(sigma_r[i]):.3g} g"))
         nd = None if noise is None or not turning[i] else float(noise[i])
-        if nd is not None and spec.noise_density_ug_rthz is not None and \
-                nd > spec.noise_factor * spec.noise_density_ug_rthz:
-            found.append(("noise", f"noise floor {nd:.0f} µg/√Hz above {spec.noise_factor:g} × the specified "
-                                   f"{spec.noise_density_ug_rthz:g} µg/√Hz"))
+        found = _bias_findings(m, b, spec)
+        found += _signal_findings(spec, std=float(std[i]), repeat=float(repeat[i]), turning=bool(turning[i]),
+                                  clip=float(clip[i]), step=float(step[i]), step_limit=float(step_limit[i]),
+                                  spikes=int(spikes[i]), sigma_r=float(sigma_r[i]), nd=nd)
         if any(f == "flatline" for f, _ in found):
             # A flat signal makes the other statistics meaningless (no spread, every sample "pinned").
             found = [(f, d) for f, d in found if f in ("bias", "flatline")]
@@ -375,3 +307,111 @@ def check_health(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec | None = 
             repeat_fraction=float(repeat[i]), clip_fraction=float(clip[i]), step_g=float(step[i]),
             spike_count=int(spikes[i]), noise_density_ug_rthz=nd, bias_v=b))
     return tuple(out)
+
+
+def _checked_inputs(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec, bias_v: npt.ArrayLike | None,
+                    running: npt.ArrayLike | None) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.float64] | None,
+                                                            npt.NDArray[np.bool_]]:
+    """The frames as (channels, samples), the bias voltages and the running flags, shapes checked."""
+    x = np.asarray(frames, dtype=np.float64)
+    if x.ndim == 1:
+        x = x[None, :]
+    if x.ndim != 2 or x.shape[1] < max(16, 4 * spec.segments):
+        raise SignalError(f"health check needs frames shaped (channels, samples ≥ 16 and ≥ 4 per segment), "
+                          f"got {x.shape}")
+    if not (math.isfinite(fs_hz) and fs_hz > 0):
+        raise SignalError(f"sample rate {fs_hz!r} Hz must be finite and > 0")
+    c = x.shape[0]
+    bias = None
+    if bias_v is not None:
+        bias = np.asarray(bias_v, dtype=np.float64).reshape(-1)
+        if bias.shape != (c,):
+            raise SignalError(f"bias_v has {bias.size} values for {c} channels")
+    turning = np.ones(c, dtype=np.bool_)
+    if running is not None:
+        turning = np.asarray(running, dtype=np.bool_).reshape(-1)
+        if turning.shape != (c,):
+            raise SignalError(f"running has {turning.size} values for {c} channels")
+    return x, bias, turning
+
+
+def _flat_tops(x: npt.NDArray[np.float64], hi: npt.NDArray[np.float64], lo: npt.NDArray[np.float64],
+               repeat_n: npt.NDArray[np.int64], scratch: npt.NDArray[np.bool_]) -> npt.NDArray[np.int64]:
+    """Pinned pairs per row (consecutive samples at the frame's extreme); removes them from ``repeat_n``.
+
+    A row with fewer than two samples near either extreme (passes 5, 6) has no pinned pair; the others are
+    counted.
+    """
+    c = x.shape[0]
+    tol = 1e-6 * (hi - lo) + 1e-12
+    near_hi = _count(np.greater_equal(x, (hi - tol)[:, None], out=scratch))
+    near_lo = _count(np.less_equal(x, (lo + tol)[:, None], out=scratch))
+    pinned_n = np.zeros(c, dtype=np.int64)
+    top_rows = np.flatnonzero((near_hi >= 2) | (near_lo >= 2))
+    if top_rows.size:
+        xs_ = x[top_rows]
+        at_hi, at_lo = xs_ >= (hi - tol)[top_rows, None], xs_ <= (lo + tol)[top_rows, None]
+        pinned = (at_hi[:, 1:] & at_hi[:, :-1]) | (at_lo[:, 1:] & at_lo[:, :-1])
+        # A frame spanning only a few quantization steps (the smallest non-zero change between samples) repeats
+        # its extremes by nature: its flat tops are no evidence of clipping.
+        steps = np.abs(np.diff(xs_, axis=1))
+        q = np.min(np.where(steps > 0, steps, np.inf), axis=1)
+        coarse = (hi[top_rows] - lo[top_rows]) < MIN_LEVELS * q
+        pinned[coarse] = False
+        pinned_n[top_rows] = _count(pinned)
+        repeat_n[top_rows] -= _count(pinned & (xs_[:, 1:] == xs_[:, :-1]))  # pinned tops are clipping, not stuck
+    return pinned_n
+
+
+def _clip_fraction(x: npt.NDArray[np.float64], hi: npt.NDArray[np.float64], lo: npt.NDArray[np.float64],
+                   pinned_n: npt.NDArray[np.int64], spec: HealthSpec) -> npt.NDArray[np.float64]:
+    """Fraction of samples clipped per row: at full scale when it is known, else pinned flat."""
+    if spec.full_scale_g is not None:
+        clip = np.zeros(x.shape[0])
+        at_fs = np.flatnonzero(np.maximum(hi, -lo) >= 0.995 * spec.full_scale_g)
+        if at_fs.size:
+            clip[at_fs] = np.mean(np.abs(x[at_fs]) >= 0.995 * spec.full_scale_g, axis=1)
+        return clip
+    return np.asarray(pinned_n / (x.shape[1] - 1), dtype=np.float64)
+
+
+def _bias_findings(m: float, b: float | None, spec: HealthSpec) -> list[tuple[SensorFault, str]]:
+    """The bias check of one row: IEPE bias window when reported, else the mean the sensor can show."""
+    if b is not None and not spec.bias_window_v[0] <= b <= spec.bias_window_v[1]:
+        why = "open cable or no sensor" if b > spec.bias_window_v[1] else "short circuit"
+        return [("bias", f"IEPE bias {b:.2f} V outside {spec.bias_window_v[0]:g}–"
+                         f"{spec.bias_window_v[1]:g} V ({why})")]
+    if spec.expected_mean_g is not None:
+        if abs(m - spec.expected_mean_g) > spec.mean_tolerance_g:
+            return [("bias", f"mean {m:.3f} g is more than {spec.mean_tolerance_g:g} g from the expected "
+                             f"{spec.expected_mean_g:g} g")]
+        return []
+    allowed = spec.mean_tolerance_g + (1.0 if spec.sensor_type == "mems" else 0.0)
+    if abs(m) > allowed:
+        return [("bias", f"mean {m:.3f} g is beyond the ±{allowed:g} g a {spec.sensor_type} sensor "
+                         f"can show")]
+    return []
+
+
+def _signal_findings(spec: HealthSpec, *, std: float, repeat: float, turning: bool, clip: float, step: float,
+                     step_limit: float, spikes: int, sigma_r: float,
+                     nd: float | None) -> list[tuple[SensorFault, str]]:
+    """The flatline, clipping, DC-step, spike and noise checks of one row."""
+    found: list[tuple[SensorFault, str]] = []
+    if std < spec.flatline_std_g or (turning and repeat > spec.repeat_fraction):
+        found.append(("flatline", f"standard deviation {std:.3g} g (floor {spec.flatline_std_g:g} g), "
+                                  f"{100 * repeat:.1f} % of samples repeat the previous one"))
+    if clip > spec.clip_fraction:
+        where = f"at full scale {spec.full_scale_g:g} g" if spec.full_scale_g is not None else "pinned flat"
+        found.append(("clipping", f"{100 * clip:.2f} % of samples {where} (limit "
+                                  f"{100 * spec.clip_fraction:g} %)"))
+    if step > step_limit:
+        found.append(("dc-step", f"segment means differ by {step:.3g} g (limit {step_limit:.3g} g)"))
+    if spikes > 0:
+        found.append(("spikes", f"{spikes} isolated spike(s) above {spec.spike_sigma:g} × the robust "
+                                f"spread {sigma_r:.3g} g"))
+    if nd is not None and spec.noise_density_ug_rthz is not None and \
+            nd > spec.noise_factor * spec.noise_density_ug_rthz:
+        found.append(("noise", f"noise floor {nd:.0f} µg/√Hz above {spec.noise_factor:g} × the specified "
+                               f"{spec.noise_density_ug_rthz:g} µg/√Hz"))
+    return found
