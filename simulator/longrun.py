@@ -47,7 +47,7 @@ import numpy.typing as npt
 
 from edgevib.simulator import models as M
 from edgevib.simulator.engine import Simulation, _key
-from edgevib.simulator.scenario import MachineSpec, Scenario, ScenarioError, SpeedSpec, _Table
+from edgevib.simulator.scenario import MachineSpec, PointSpec, Scenario, ScenarioError, SpeedSpec, _Table
 
 __all__ = [
     "LONGRUN_INDICATORS",
@@ -129,49 +129,10 @@ def parse_longrun(scenario: Scenario) -> LongRunSpec:
     progs: list[ProgressionSpec] = []
     seen_machines: set[str] = set()
     for pt in t.tables("progressions"):
-        pid = pt.text("point")
-        if pid not in points:
-            raise ScenarioError(pt.key("point"), f"unknown point {pid!r}")
-        m = machines[points[pid].machine_id]
-        if m.machine_id in seen_machines:
-            raise ScenarioError(pt.key("point"), f"machine {m.machine_id} already has a progression (one per machine)")
-        seen_machines.add(m.machine_id)
-        fi = pt.num("fault", 0, lo=0, integer=True)
-        if fi >= len(m.faults):
-            raise ScenarioError(pt.key("fault"), f"machine {m.machine_id} has {len(m.faults)} fault(s); "
-                                f"index {fi} does not exist")
-        fault = m.faults[int(fi)]
-        if pid not in fault.points:
-            raise ScenarioError(pt.key("fault"), f"fault {fi} ({fault.type}) does not reach point {pid}")
-        if fault.progression is not None:
-            raise ScenarioError(pt.key("fault"), f"fault {fi} ({fault.type}) has its own progression; remove it")
-        ind = pt.text("indicator", "velocity_rms_mm_s", LONGRUN_INDICATORS)
-        curve = pt.text("curve", choices=("linear", "exponential"))
-        start_s, end_s = DAY_S * pt.num("start_day", lo=0.0), DAY_S * pt.num("end_day", lo=0.0)
-        if end_s <= start_s:
-            raise ScenarioError(pt.key("end_day"), f"{end_s / DAY_S:g} must be after start_day {start_s / DAY_S:g}")
-        v0 = pt.num("from", None, lo=0.0, lo_open=True)
-        v1 = pt.num("to", lo=0.0, lo_open=True)
-        if v0 is not None and v1 <= v0:
-            raise ScenarioError(pt.key("to"), f"{v1:g} must be above from {v0:g} (a growing fault)")
-        pt.done()
-        progs.append(ProgressionSpec(pid, int(fi), ind, curve, start_s, end_s,
-                                     None if v0 is None else float(v0), float(v1)))
+        progs.append(_progression(pt, machines, points, seen_machines))
     stops: list[StopSpec] = []
     for st in t.tables("stops"):
-        mid = st.text("machine")
-        if mid not in machines:
-            raise ScenarioError(st.key("machine"), f"unknown machine {mid!r}")
-        if not machines[mid].speed.fixed:
-            raise ScenarioError(st.key("machine"), f"stops need a fixed-speed machine; {mid} has a speed schedule")
-        a, b = DAY_S * st.num("start_day", lo=0.0), DAY_S * st.num("end_day", lo=0.0)
-        if b <= a + 2 * _STOP_RAMP_S:
-            raise ScenarioError(st.key("end_day"), "a stop must last more than two minutes")
-        st.done()
-        for other in stops:
-            if other.machine == mid and a < other.end_s + _STOP_RAMP_S and other.start_s < b + _STOP_RAMP_S:
-                raise ScenarioError(st.key("start_day"), f"overlaps another stop of {mid}")
-        stops.append(StopSpec(mid, a, b))
+        stops.append(_stop(st, machines, stops))
     limits: list[LimitSpec] = []
     for lt in t.tables("limits"):
         pid = lt.text("point")
@@ -184,6 +145,55 @@ def parse_longrun(scenario: Scenario) -> LongRunSpec:
     return LongRunSpec(duration_s=days * DAY_S, interval_s=interval_s, progressions=tuple(progs),
                        stops=tuple(sorted(stops, key=lambda s: (s.machine, s.start_s))), limits=tuple(limits),
                        **spec_kw)
+
+
+def _progression(pt: _Table, machines: dict[str, MachineSpec], points: dict[str, PointSpec],
+                 seen_machines: set[str]) -> ProgressionSpec:
+    """One ``[[longrun.progressions]]`` table (one per machine)."""
+    pid = pt.text("point")
+    if pid not in points:
+        raise ScenarioError(pt.key("point"), f"unknown point {pid!r}")
+    m = machines[points[pid].machine_id]
+    if m.machine_id in seen_machines:
+        raise ScenarioError(pt.key("point"), f"machine {m.machine_id} already has a progression (one per machine)")
+    seen_machines.add(m.machine_id)
+    fi = pt.num("fault", 0, lo=0, integer=True)
+    if fi >= len(m.faults):
+        raise ScenarioError(pt.key("fault"), f"machine {m.machine_id} has {len(m.faults)} fault(s); "
+                            f"index {fi} does not exist")
+    fault = m.faults[int(fi)]
+    if pid not in fault.points:
+        raise ScenarioError(pt.key("fault"), f"fault {fi} ({fault.type}) does not reach point {pid}")
+    if fault.progression is not None:
+        raise ScenarioError(pt.key("fault"), f"fault {fi} ({fault.type}) has its own progression; remove it")
+    ind = pt.text("indicator", "velocity_rms_mm_s", LONGRUN_INDICATORS)
+    curve = pt.text("curve", choices=("linear", "exponential"))
+    start_s, end_s = DAY_S * pt.num("start_day", lo=0.0), DAY_S * pt.num("end_day", lo=0.0)
+    if end_s <= start_s:
+        raise ScenarioError(pt.key("end_day"), f"{end_s / DAY_S:g} must be after start_day {start_s / DAY_S:g}")
+    v0 = pt.num("from", None, lo=0.0, lo_open=True)
+    v1 = pt.num("to", lo=0.0, lo_open=True)
+    if v0 is not None and v1 <= v0:
+        raise ScenarioError(pt.key("to"), f"{v1:g} must be above from {v0:g} (a growing fault)")
+    pt.done()
+    return ProgressionSpec(pid, int(fi), ind, curve, start_s, end_s, None if v0 is None else float(v0), float(v1))
+
+
+def _stop(st: _Table, machines: dict[str, MachineSpec], stops: list[StopSpec]) -> StopSpec:
+    """One ``[[longrun.stops]]`` table (checked against the stops before it)."""
+    mid = st.text("machine")
+    if mid not in machines:
+        raise ScenarioError(st.key("machine"), f"unknown machine {mid!r}")
+    if not machines[mid].speed.fixed:
+        raise ScenarioError(st.key("machine"), f"stops need a fixed-speed machine; {mid} has a speed schedule")
+    a, b = DAY_S * st.num("start_day", lo=0.0), DAY_S * st.num("end_day", lo=0.0)
+    if b <= a + 2 * _STOP_RAMP_S:
+        raise ScenarioError(st.key("end_day"), "a stop must last more than two minutes")
+    st.done()
+    for other in stops:
+        if other.machine == mid and a < other.end_s + _STOP_RAMP_S and other.start_s < b + _STOP_RAMP_S:
+            raise ScenarioError(st.key("start_day"), f"overlaps another stop of {mid}")
+    return StopSpec(mid, a, b)
 
 
 @dataclass(frozen=True, slots=True)

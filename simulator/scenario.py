@@ -462,129 +462,12 @@ def parse_scenario(doc: Mapping[str, Any], path: str = "") -> Scenario:
     seen_sensors: set[str] = set()
     machine_ids = [m.doc.get("id") for m in machine_tables]
     for pt in point_tables:
-        pid = pt.text("id")
-        if pid in seen_points:
-            raise ScenarioError(pt.key("id"), f"duplicate point id {pid!r}")
-        seen_points.add(pid)
-        mid = pt.text("machine")
-        if mid not in machine_ids:
-            raise ScenarioError(pt.key("machine"), f"unknown machine {mid!r}")
-        axis = pt.text("axis", choices=AXES)
-        sensor = pt.text("sensor", pid)
-        if sensor in seen_sensors:
-            raise ScenarioError(pt.key("sensor"), f"duplicate sensor id {sensor!r}")
-        seen_sensors.add(sensor)
-        stype = pt.text("sensor_type", choices=("piezo", "mems"))
-        fs = pt.num("fs_hz", lo=100.0, hi=200_000.0)
-        n = pt.num("block_samples", lo=64, hi=65536, integer=True)
-        bearing = None
-        bt = pt.table("bearing")
-        if bt is not None:
-            bearing = BearingSpec(bt.num("elements", lo=3, hi=100, integer=True),
-                                  bt.num("ball_diameter_mm", lo=0.0, lo_open=True),
-                                  bt.num("pitch_diameter_mm", lo=0.0, lo_open=True),
-                                  bt.num("contact_angle_deg", 0.0, 0.0, 60.0))
-            bt.done()
-            try:
-                bearing.orders()
-            except ValueError as exc:
-                raise ScenarioError(bt.path, str(exc)) from exc
-        model = _sensor_model(pt.table("sensor_model"), stype, fs, axis)
-        if stype == "piezo":
-            bw = (model.hp_corner_hz, min(SENSOR_DEFAULTS["piezo"]["upper_hz"], 0.45 * fs))
-        else:
-            bw = (0.0, model.corner_hz)
-        mref = _machine_reference_rpm(machine_tables[machine_ids.index(mid)])
-        vband = pt.pair("velocity_band_hz", (2.0, 1000.0) if mref < 600 else (10.0, 1000.0), lo=0.0)
-        if vband[1] >= fs / 2:
-            raise ScenarioError(pt.key("velocity_band_hz"), f"high edge {vband[1]:g} Hz is at or above Nyquist "
-                                f"{fs / 2:g} Hz")
-        eband = pt.pair("envelope_band_hz", None, lo=0.0)
-        if eband is not None and eband[1] > bw[1]:
-            raise ScenarioError(pt.key("envelope_band_hz"), f"high edge {eband[1]:g} Hz is above the usable "
-                                f"bandwidth {bw[1]:g} Hz")
-        res = pt.num("resonance_hz", min(3000.0, 0.3 * fs), 50.0)
-        if res >= 0.4 * fs:
-            raise ScenarioError(pt.key("resonance_hz"), f"{res:g} Hz must be below 0.4 × fs = {0.4 * fs:g} Hz")
-        sfaults = []
-        for ft in pt.tables("sensor_faults"):
-            ftype = ft.text("type", choices=tuple(SENSOR_FAULT_PARAMS))
-            start = ft.num("start_s", 0.0, 0.0)
-            end = ft.num("end_s", None, 0.0)
-            if end is not None and end <= start:
-                raise ScenarioError(ft.key("end_s"), f"{end:g} s must be after start_s {start:g} s")
-            sfaults.append(SensorFaultSpec(ftype, _params(ft, SENSOR_FAULT_PARAMS[ftype]), start, end))
-            ft.done()
-        points.append(PointSpec(
-            point_id=pid, machine_id=mid, axis=axis, sensor_id=sensor, fs_hz=fs, block_samples=n,
-            sensor_type=stype, bandwidth_hz=bw, bearing=bearing, topic=f"{prefix}/{mid}/{pid}/block",
-            velocity_band_hz=vband, envelope_band_hz=eband,
-            sensitivity_mv_per_g=pt.num("sensitivity_mv_per_g", 100.0 if stype == "piezo" else None, 0.0,
-                                        lo_open=True),
-            description=pt.text("description", ""), resonance_hz=res,
-            resonance_damping=pt.num("resonance_damping", 0.05, 0.005, 0.3),
-            resonance_gain=pt.num("resonance_gain", 4.0, 1.0, 100.0),
-            sensor_model=model, sensor_faults=tuple(sfaults)))
-        pt.done()
+        points.append(_point(pt, machine_tables, machine_ids, prefix, seen_points, seen_sensors))
 
     machines: list[MachineSpec] = []
     seen_machines: set[str] = set()
     for mt in machine_tables:
-        mid = mt.text("id")
-        if mid in seen_machines:
-            raise ScenarioError(mt.key("id"), f"duplicate machine id {mid!r}")
-        seen_machines.add(mid)
-        own = [p for p in points if p.machine_id == mid]
-        st = mt.table("speed")
-        if st is None:
-            raise ScenarioError(mt.key("speed"), "is required")
-        speed = _speed(st)
-        ref = mt.num("reference_rpm", max(r for _, r in speed.knots_rpm), 1.0)
-        faults = []
-        for i, ft in enumerate(mt.tables("faults")):
-            ftype = ft.text("type", choices=tuple(FAULT_PARAMS))
-            params = _params(ft, FAULT_PARAMS[ftype])
-            sel = ft.raw("points", None)
-            if sel is None:
-                sel_ids = tuple(p.point_id for p in own)
-            else:
-                if not isinstance(sel, list) or not all(isinstance(s, str) for s in sel) or not sel:
-                    raise ScenarioError(ft.key("points"), "must be a non-empty list of point ids")
-                for s in sel:
-                    if s not in [p.point_id for p in own]:
-                        raise ScenarioError(ft.key("points"), f"{s!r} is not a point of machine {mid!r}")
-                sel_ids = tuple(sel)
-            gains = dict(AXIS_GAINS.get(ftype, dict.fromkeys(AXES, 1.0)))
-            gt = ft.table("axis_gain")
-            if gt is not None:
-                for ax in list(gt.doc):
-                    if ax not in AXES:
-                        raise ScenarioError(gt.key(ax), f"unknown axis (one of {', '.join(AXES)})")
-                    gains[ax] = gt.num(ax, lo=0.0, hi=10.0)
-                gt.done()
-            if ftype in BEARING_FAULTS:
-                geoms = {p.bearing for p in own if p.point_id in sel_ids}
-                if None in geoms:
-                    raise ScenarioError(ft.key("type"), f"a {ftype} fault needs bearing geometry on every point it "
-                                        f"applies to ({', '.join(sel_ids)})")
-                if len(geoms) > 1:
-                    raise ScenarioError(ft.key("points"), "a bearing fault's points must share one bearing geometry")
-            stage = ft.text("stage", "developing", ("incipient", "developing", "advanced", "critical"))
-            pt_ = ft.table("progression")
-            curve = _curve(pt_) if pt_ is not None else None
-            ft.done()
-            faults.append(FaultSpec(ftype, i, params, sel_ids, gains, stage, curve))
-        lo_default = (0.5 * ref, 1.5 * ref)
-        srange = mt.pair("speed_range_rpm", lo_default, lo=0.0)
-        machines.append(MachineSpec(
-            machine_id=mid, description=mt.text("description", ""),
-            group=mt.num("group", lo=1, hi=2, integer=True),
-            support=mt.text("support", choices=("rigid", "flexible")),
-            speed=speed, reference_rpm=ref, run_threshold_rpm=mt.num("run_threshold_rpm", 60.0, 0.0),
-            speed_range_rpm=srange, residual_mm_s=mt.num("residual_mm_s", 0.5, 0.0, 100.0),
-            process_noise_ug_rthz=mt.num("process_noise_ug_rthz", 150.0, 0.0, 1e6), faults=tuple(faults),
-            speed_tag=_flag(mt, "speed_tag", True)))
-        mt.done()
+        machines.append(_machine(mt, points, seen_machines))
     scenario = Scenario(name, description, site, site_desc, prefix, duration_s, tuple(machines), tuple(points), path,
                         longrun)
     if longrun is not None:
@@ -592,6 +475,156 @@ def parse_scenario(doc: Mapping[str, Any], path: str = "") -> Scenario:
 
         parse_longrun(scenario)
     return scenario
+
+
+def _bearing_spec(bt: _Table) -> BearingSpec:
+    bearing = BearingSpec(bt.num("elements", lo=3, hi=100, integer=True),
+                          bt.num("ball_diameter_mm", lo=0.0, lo_open=True),
+                          bt.num("pitch_diameter_mm", lo=0.0, lo_open=True),
+                          bt.num("contact_angle_deg", 0.0, 0.0, 60.0))
+    bt.done()
+    try:
+        bearing.orders()
+    except ValueError as exc:
+        raise ScenarioError(bt.path, str(exc)) from exc
+    return bearing
+
+
+def _sensor_faults(pt: _Table) -> tuple[SensorFaultSpec, ...]:
+    sfaults = []
+    for ft in pt.tables("sensor_faults"):
+        ftype = ft.text("type", choices=tuple(SENSOR_FAULT_PARAMS))
+        start = ft.num("start_s", 0.0, 0.0)
+        end = ft.num("end_s", None, 0.0)
+        if end is not None and end <= start:
+            raise ScenarioError(ft.key("end_s"), f"{end:g} s must be after start_s {start:g} s")
+        sfaults.append(SensorFaultSpec(ftype, _params(ft, SENSOR_FAULT_PARAMS[ftype]), start, end))
+        ft.done()
+    return tuple(sfaults)
+
+
+def _point(pt: _Table, machine_tables: list[_Table], machine_ids: list[Any], prefix: str, seen_points: set[str],
+           seen_sensors: set[str]) -> PointSpec:
+    """One ``[[points]]`` table (ids checked against those seen so far)."""
+    pid = pt.text("id")
+    if pid in seen_points:
+        raise ScenarioError(pt.key("id"), f"duplicate point id {pid!r}")
+    seen_points.add(pid)
+    mid = pt.text("machine")
+    if mid not in machine_ids:
+        raise ScenarioError(pt.key("machine"), f"unknown machine {mid!r}")
+    axis = pt.text("axis", choices=AXES)
+    sensor = pt.text("sensor", pid)
+    if sensor in seen_sensors:
+        raise ScenarioError(pt.key("sensor"), f"duplicate sensor id {sensor!r}")
+    seen_sensors.add(sensor)
+    stype = pt.text("sensor_type", choices=("piezo", "mems"))
+    fs = pt.num("fs_hz", lo=100.0, hi=200_000.0)
+    n = pt.num("block_samples", lo=64, hi=65536, integer=True)
+    bt = pt.table("bearing")
+    bearing = _bearing_spec(bt) if bt is not None else None
+    model = _sensor_model(pt.table("sensor_model"), stype, fs, axis)
+    if stype == "piezo":
+        bw = (model.hp_corner_hz, min(SENSOR_DEFAULTS["piezo"]["upper_hz"], 0.45 * fs))
+    else:
+        bw = (0.0, model.corner_hz)
+    mref = _machine_reference_rpm(machine_tables[machine_ids.index(mid)])
+    vband = pt.pair("velocity_band_hz", (2.0, 1000.0) if mref < 600 else (10.0, 1000.0), lo=0.0)
+    if vband[1] >= fs / 2:
+        raise ScenarioError(pt.key("velocity_band_hz"), f"high edge {vband[1]:g} Hz is at or above Nyquist "
+                            f"{fs / 2:g} Hz")
+    eband = pt.pair("envelope_band_hz", None, lo=0.0)
+    if eband is not None and eband[1] > bw[1]:
+        raise ScenarioError(pt.key("envelope_band_hz"), f"high edge {eband[1]:g} Hz is above the usable "
+                            f"bandwidth {bw[1]:g} Hz")
+    res = pt.num("resonance_hz", min(3000.0, 0.3 * fs), 50.0)
+    if res >= 0.4 * fs:
+        raise ScenarioError(pt.key("resonance_hz"), f"{res:g} Hz must be below 0.4 × fs = {0.4 * fs:g} Hz")
+    sfaults = _sensor_faults(pt)
+    point = PointSpec(
+        point_id=pid, machine_id=mid, axis=axis, sensor_id=sensor, fs_hz=fs, block_samples=n,
+        sensor_type=stype, bandwidth_hz=bw, bearing=bearing, topic=f"{prefix}/{mid}/{pid}/block",
+        velocity_band_hz=vband, envelope_band_hz=eband,
+        sensitivity_mv_per_g=pt.num("sensitivity_mv_per_g", 100.0 if stype == "piezo" else None, 0.0,
+                                    lo_open=True),
+        description=pt.text("description", ""), resonance_hz=res,
+        resonance_damping=pt.num("resonance_damping", 0.05, 0.005, 0.3),
+        resonance_gain=pt.num("resonance_gain", 4.0, 1.0, 100.0),
+        sensor_model=model, sensor_faults=sfaults)
+    pt.done()
+    return point
+
+
+def _fault_points(ft: _Table, mid: str, own: list[PointSpec]) -> tuple[str, ...]:
+    """The points a machine fault applies to (default: all of the machine's)."""
+    sel = ft.raw("points", None)
+    if sel is None:
+        return tuple(p.point_id for p in own)
+    if not isinstance(sel, list) or not all(isinstance(s, str) for s in sel) or not sel:
+        raise ScenarioError(ft.key("points"), "must be a non-empty list of point ids")
+    for s in sel:
+        if s not in [p.point_id for p in own]:
+            raise ScenarioError(ft.key("points"), f"{s!r} is not a point of machine {mid!r}")
+    return tuple(sel)
+
+
+def _axis_gains(ft: _Table, ftype: str) -> dict[str, float]:
+    gains = dict(AXIS_GAINS.get(ftype, dict.fromkeys(AXES, 1.0)))
+    gt = ft.table("axis_gain")
+    if gt is not None:
+        for ax in list(gt.doc):
+            if ax not in AXES:
+                raise ScenarioError(gt.key(ax), f"unknown axis (one of {', '.join(AXES)})")
+            gains[ax] = gt.num(ax, lo=0.0, hi=10.0)
+        gt.done()
+    return gains
+
+
+def _fault(ft: _Table, i: int, mid: str, own: list[PointSpec]) -> FaultSpec:
+    """One ``[[machines.faults]]`` table of machine ``mid``."""
+    ftype = ft.text("type", choices=tuple(FAULT_PARAMS))
+    params = _params(ft, FAULT_PARAMS[ftype])
+    sel_ids = _fault_points(ft, mid, own)
+    gains = _axis_gains(ft, ftype)
+    if ftype in BEARING_FAULTS:
+        geoms = {p.bearing for p in own if p.point_id in sel_ids}
+        if None in geoms:
+            raise ScenarioError(ft.key("type"), f"a {ftype} fault needs bearing geometry on every point it "
+                                f"applies to ({', '.join(sel_ids)})")
+        if len(geoms) > 1:
+            raise ScenarioError(ft.key("points"), "a bearing fault's points must share one bearing geometry")
+    stage = ft.text("stage", "developing", ("incipient", "developing", "advanced", "critical"))
+    pt_ = ft.table("progression")
+    curve = _curve(pt_) if pt_ is not None else None
+    ft.done()
+    return FaultSpec(ftype, i, params, sel_ids, gains, stage, curve)
+
+
+def _machine(mt: _Table, points: list[PointSpec], seen_machines: set[str]) -> MachineSpec:
+    """One ``[[machines]]`` table (its points already parsed)."""
+    mid = mt.text("id")
+    if mid in seen_machines:
+        raise ScenarioError(mt.key("id"), f"duplicate machine id {mid!r}")
+    seen_machines.add(mid)
+    own = [p for p in points if p.machine_id == mid]
+    st = mt.table("speed")
+    if st is None:
+        raise ScenarioError(mt.key("speed"), "is required")
+    speed = _speed(st)
+    ref = mt.num("reference_rpm", max(r for _, r in speed.knots_rpm), 1.0)
+    faults = [_fault(ft, i, mid, own) for i, ft in enumerate(mt.tables("faults"))]
+    lo_default = (0.5 * ref, 1.5 * ref)
+    srange = mt.pair("speed_range_rpm", lo_default, lo=0.0)
+    machine = MachineSpec(
+        machine_id=mid, description=mt.text("description", ""),
+        group=mt.num("group", lo=1, hi=2, integer=True),
+        support=mt.text("support", choices=("rigid", "flexible")),
+        speed=speed, reference_rpm=ref, run_threshold_rpm=mt.num("run_threshold_rpm", 60.0, 0.0),
+        speed_range_rpm=srange, residual_mm_s=mt.num("residual_mm_s", 0.5, 0.0, 100.0),
+        process_noise_ug_rthz=mt.num("process_noise_ug_rthz", 150.0, 0.0, 1e6), faults=tuple(faults),
+        speed_tag=_flag(mt, "speed_tag", True))
+    mt.done()
+    return machine
 
 
 def _flag(t: _Table, key: str, default: bool) -> bool:
