@@ -351,6 +351,58 @@ def _read(index: int, path: Path, t_s: float, o: ReplayOptions) -> _Snap:
     return _Snap(index, path, t_s, to_g(x, o.unit), fs, rpm)
 
 
+def _read_batch(indices: list[int], files: list[Path], times: list[float], o: ReplayOptions,
+                on_error: Any) -> list[_Snap]:
+    """The snapshots that can be read (the others reported through ``on_error``)."""
+    snaps: list[_Snap] = []
+    for i in indices:
+        try:
+            snaps.append(_read(i, files[i], times[i], o))
+        except (InputError, PipelineError) as exc:
+            if on_error is not None:
+                on_error(files[i], str(exc))
+    return snaps
+
+
+def _analyze_batch(snaps: list[_Snap], o: ReplayOptions, plans: dict[tuple[float, int, float | None], AnalysisPlan],
+                   noted: set[str], on_error: Any) -> dict[int, FrameIndicators]:
+    """The indicators of each snapshot by index, analysed in groups of one rate, length and speed."""
+    groups: dict[tuple[float, int, float | None], list[_Snap]] = {}
+    for s in snaps:
+        groups.setdefault((s.fs_hz, s.x_g.size, s.rpm), []).append(s)
+    results: dict[int, FrameIndicators] = {}
+    for key, members in groups.items():
+        fs, n, rpm = key
+        shaft = None if rpm is None or rpm <= 0 else rpm / 60.0
+        try:
+            if key not in plans:
+                plans[key], notes = _plan(fs, n, o, shaft)
+                for note in notes:
+                    if note not in noted and on_error is not None:
+                        noted.add(note)
+                        on_error(None, note)
+            inds = analyze_frames(np.stack([m.x_g for m in members]), plans[key],
+                                  None if shaft is None else np.full(len(members), shaft))
+        except (InputError, PipelineError) as exc:
+            for m in members:
+                if on_error is not None:
+                    on_error(m.path, str(exc))
+            continue
+        for m, ind in zip(members, inds, strict=True):
+            results[m.index] = ind
+    return results
+
+
+def _frame(s: _Snap, ind: FrameIndicators, o: ReplayOptions, iso: tuple[float, float, float] | None) -> FrameResult:
+    zone = None
+    if iso is not None and o.group is not None and o.support is not None and \
+            ind.velocity_rms_mm_s is not None and math.isfinite(ind.velocity_rms_mm_s):
+        zone = iso_zone(ind.velocity_rms_mm_s, o.group, o.support)
+    return FrameResult(point_id=o.point, machine_id=o.point, t_end_ns=round(s.t_s * 1e9),
+                       received_ns=round(s.t_s * 1e9), fs_hz=s.fs_hz, indicators=ind, iso_zone=zone,
+                       samples=s.x_g.astype(np.float32))
+
+
 def replay(files: list[Path], times: list[float], o: ReplayOptions, history_path: Path, *,
            on_error: Any = None) -> Iterator[dict[str, Any]]:
     """Yield one document per snapshot (see the module docstring), in time order.  ``on_error(path, message)``
@@ -369,48 +421,14 @@ def replay(files: list[Path], times: list[float], o: ReplayOptions, history_path
     last_docs: tuple[int, dict[str, Any]] | None = None
     try:
         for b0 in range(0, len(order), _BATCH):
-            snaps: list[_Snap] = []
-            for i in order[b0:b0 + _BATCH]:
-                try:
-                    snaps.append(_read(i, files[i], times[i], o))
-                except (InputError, PipelineError) as exc:
-                    if on_error is not None:
-                        on_error(files[i], str(exc))
-            groups: dict[tuple[float, int, float | None], list[_Snap]] = {}
-            for s in snaps:
-                groups.setdefault((s.fs_hz, s.x_g.size, s.rpm), []).append(s)
-            results: dict[int, FrameIndicators] = {}
-            for key, members in groups.items():
-                fs, n, rpm = key
-                shaft = None if rpm is None or rpm <= 0 else rpm / 60.0
-                try:
-                    if key not in plans:
-                        plans[key], notes = _plan(fs, n, o, shaft)
-                        for note in notes:
-                            if note not in noted and on_error is not None:
-                                noted.add(note)
-                                on_error(None, note)
-                    inds = analyze_frames(np.stack([m.x_g for m in members]), plans[key],
-                                          None if shaft is None else np.full(len(members), shaft))
-                except (InputError, PipelineError) as exc:
-                    for m in members:
-                        if on_error is not None:
-                            on_error(m.path, str(exc))
-                    continue
-                for m, ind in zip(members, inds, strict=True):
-                    results[m.index] = ind
+            snaps = _read_batch(order[b0:b0 + _BATCH], files, times, o, on_error)
+            results = _analyze_batch(snaps, o, plans, noted, on_error)
             for s in snaps:
                 found = results.get(s.index)
                 if found is None:
                     continue
                 ind = found
-                zone = None
-                if iso is not None and o.group is not None and o.support is not None and \
-                        ind.velocity_rms_mm_s is not None and math.isfinite(ind.velocity_rms_mm_s):
-                    zone = iso_zone(ind.velocity_rms_mm_s, o.group, o.support)
-                r = FrameResult(point_id=o.point, machine_id=o.point, t_end_ns=round(s.t_s * 1e9),
-                                received_ns=round(s.t_s * 1e9), fs_hz=s.fs_hz, indicators=ind, iso_zone=zone,
-                                samples=s.x_g.astype(np.float32))
+                r = _frame(s, ind, o, iso)
                 state = running_state(ind.velocity_rms_mm_s, ind.shaft_hz, ind.shaft_estimated, o.run_threshold_rpm,
                                       o.run_threshold_velocity_mm_s)
                 values = frame_values(r)

@@ -20,6 +20,7 @@ import json
 import math
 import os
 import sys
+from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -72,31 +73,40 @@ def _unit(unit: str) -> str:
     return "" if unit in ("", "1") else unit
 
 
-def render_chart(series: HistorySeries, doc: dict[str, Any] | None, width: int = 80) -> str:
-    """The chart of one series (and its projection document, if any) in ``width`` columns."""
+@dataclass
+class _Plot:
+    """The character grid of a chart and its scales: time to column, value to row."""
+
+    t0: float
+    tspan: float
+    ymin: float
+    ymax: float
+    width: int
+    rows: int = _PLOT_ROWS
+    cells: list[list[str]] = field(default_factory=list)
+
+    def __post_init__(self) -> None:
+        self.cells = [[" "] * self.width for _ in range(self.rows)]
+
+    def col(self, tt: float) -> int:
+        return min(self.width - 1, max(0, round((tt - self.t0) / self.tspan * (self.width - 1))))
+
+    def row(self, v: float) -> int:
+        return min(self.rows - 1, max(0, round((self.ymax - v) / (self.ymax - self.ymin) * (self.rows - 1))))
+
+
+def _chart_head(series: HistorySeries, doc: dict[str, Any] | None, width: int) -> str:
     unit = (doc or {}).get("unit", "")
-    lines: list[str] = []
     head = f"{series.point}  {series.indicator}"
     if doc is not None:
         state = doc.get("machine_state")
         head += f"  ({series.level} roll-ups{', ' + _unit(unit) if _unit(unit) else ''}" \
                 f"{', machine ' + state if state else ''})"
-    lines.append(head[:width])
-    if series.t_s.size == 0:
-        lines.append("no running values in the history yet")
-        return "\n".join(lines)
-    t = series.t_s + series.bucket_s / 2
-    y = series.value
-    now = float((doc or {}).get("t_s") or t[-1])
-    limits = [lim for lim in (doc or {}).get("limits", []) if lim.get("value") is not None]
-    t_end = now
-    etas = [lim["eta_high_s"] or lim["eta_s"] for lim in limits if lim.get("status") == "rising" and lim.get("eta_s")]
-    span = max(now - float(t[0]), 1.0)
-    if etas:
-        t_end = now + min(max(etas), 1.5 * span)
-    label_w = max([len(f"{lim['label']} {lim['value']:.3g}") for lim in limits] + [6])
-    axis_w = 8
-    plot_w = max(20, width - axis_w - 2 - label_w - 1)
+    return head[:width]
+
+
+def _value_range(series: HistorySeries, y: np.ndarray, limits: list[dict[str, Any]]) -> tuple[float, float]:
+    """The value axis: from 0 (or below) to the highest value or limit, with 5 % headroom."""
     lo_v = [float(np.nanmin(series.vmin if series.vmin is not None else y)), float(np.nanmin(y))]
     hi_v = [float(np.nanmax(series.vmax if series.vmax is not None else y)), float(np.nanmax(y))]
     for lim in limits:
@@ -106,57 +116,67 @@ def render_chart(series: HistorySeries, doc: dict[str, Any] | None, width: int =
     if ymax <= ymin:
         ymax = ymin + 1.0
     ymax += 0.05 * (ymax - ymin)
-    rows = _PLOT_ROWS
-    grid = [[" "] * plot_w for _ in range(rows)]
-    t0 = float(t[0])
-    tspan = max(t_end - t0, 1e-9)
+    return ymin, ymax
 
-    def col(tt: float) -> int:
-        return min(plot_w - 1, max(0, round((tt - t0) / tspan * (plot_w - 1))))
 
-    def row(v: float) -> int:
-        return min(rows - 1, max(0, round((ymax - v) / (ymax - ymin) * (rows - 1))))
-
+def _draw(plot: _Plot, series: HistorySeries, doc: dict[str, Any] | None, limits: list[dict[str, Any]],
+          t: np.ndarray, now: float, t_end: float) -> None:
+    """Limits (``-``), the fitted curve (``.``), the buckets (``:`` and ``*``) and the present (``|``)."""
+    grid = plot.cells
     for lim in limits:
-        r = row(float(lim["value"]))
-        for c in range(plot_w):
+        r = plot.row(float(lim["value"]))
+        for c in range(plot.width):
             if grid[r][c] == " " and c % 2 == 0:
                 grid[r][c] = "-"
-    curve_t = np.linspace(now, t_end, max(2, col(t_end) - col(now) + 1))
+    curve_t = np.linspace(now, t_end, max(2, plot.col(t_end) - plot.col(now) + 1))
     fitted = _curve(doc or {}, curve_t)
     if fitted is not None:
         for tt, v in zip(curve_t, fitted, strict=True):
-            if math.isfinite(float(v)) and ymin <= v <= ymax:
-                grid[row(float(v))][col(float(tt))] = "."
-    cols = np.array([col(float(x)) for x in t])
+            if math.isfinite(float(v)) and plot.ymin <= v <= plot.ymax:
+                grid[plot.row(float(v))][plot.col(float(tt))] = "."
+    y = series.value
+    cols = np.array([plot.col(float(x)) for x in t])
     for c in np.unique(cols):
         sel = cols == c
         med = float(np.median(y[sel]))
         if series.vmin is not None and series.vmax is not None:
-            a, b = row(float(np.max(series.vmax[sel]))), row(float(np.min(series.vmin[sel])))
+            a, b = plot.row(float(np.max(series.vmax[sel]))), plot.row(float(np.min(series.vmin[sel])))
             for r in range(a, b + 1):
                 if grid[r][c] in (" ", "-", "."):
                     grid[r][c] = ":"
-        grid[row(med)][c] = "*"
-    now_c = col(now)
-    for r in range(rows):
+        grid[plot.row(med)][c] = "*"
+    now_c = plot.col(now)
+    for r in range(plot.rows):
         if grid[r][now_c] in (" ", "-"):
             grid[r][now_c] = "|"
+
+
+def _grid_lines(plot: _Plot, limits: list[dict[str, Any]], axis_w: int) -> list[str]:
+    """The grid's rows with the value ticks on the left and the limit labels on the right, then the time axis."""
+    lines = []
     row_labels: dict[int, str] = {}
     for lim in limits:
-        row_labels.setdefault(row(float(lim["value"])), f"{lim['label']} {lim['value']:.3g}")
+        row_labels.setdefault(plot.row(float(lim["value"])), f"{lim['label']} {lim['value']:.3g}")
+    ymin, ymax, rows = plot.ymin, plot.ymax, plot.rows
     for r in range(rows):
         tick = ymax - r * (ymax - ymin) / (rows - 1)
         if abs(tick) < 1e-9 * (ymax - ymin):
             tick = 0.0
         left = f"{tick:>{axis_w}.3g}" if r % 3 == 0 or r == rows - 1 else " " * axis_w
-        lines.append(f"{left} +{''.join(grid[r])} {row_labels.get(r, '')}".rstrip())
-    lines.append(" " * axis_w + " +" + "-" * plot_w)
+        lines.append(f"{left} +{''.join(plot.cells[r])} {row_labels.get(r, '')}".rstrip())
+    lines.append(" " * axis_w + " +" + "-" * plot.width)
+    return lines
+
+
+def _time_lines(plot: _Plot, series: HistorySeries, now: float, t_end: float, axis_w: int) -> list[str]:
+    """The not-running row (``s``), the dates under the plot and the legend for ``s``."""
+    lines = []
+    t0, tspan, plot_w = plot.t0, plot.tspan, plot.width
     stop_row = [" "] * plot_w
     for _state, p0, p1 in series.periods:
         if p1 < t0 or p0 > t_end:
             continue
-        for c in range(col(max(p0, t0)), col(min(p1, t_end)) + 1):
+        for c in range(plot.col(max(p0, t0)), plot.col(min(p1, t_end)) + 1):
             stop_row[c] = "s"
     stopped = any(c != " " for c in stop_row)
     if stopped:
@@ -168,6 +188,32 @@ def render_chart(series: HistorySeries, doc: dict[str, Any] | None, width: int =
     lines.append(" " * (axis_w + 2) + axis)
     if stopped:
         lines.append(" " * (axis_w + 2) + "s: machine not running (not in the roll-ups)")
+    return lines
+
+
+def render_chart(series: HistorySeries, doc: dict[str, Any] | None, width: int = 80) -> str:
+    """The chart of one series (and its projection document, if any) in ``width`` columns."""
+    lines: list[str] = [_chart_head(series, doc, width)]
+    if series.t_s.size == 0:
+        lines.append("no running values in the history yet")
+        return "\n".join(lines)
+    t = series.t_s + series.bucket_s / 2
+    now = float((doc or {}).get("t_s") or t[-1])
+    limits = [lim for lim in (doc or {}).get("limits", []) if lim.get("value") is not None]
+    t_end = now
+    etas = [lim["eta_high_s"] or lim["eta_s"] for lim in limits if lim.get("status") == "rising" and lim.get("eta_s")]
+    span = max(now - float(t[0]), 1.0)
+    if etas:
+        t_end = now + min(max(etas), 1.5 * span)
+    label_w = max([len(f"{lim['label']} {lim['value']:.3g}") for lim in limits] + [6])
+    axis_w = 8
+    plot_w = max(20, width - axis_w - 2 - label_w - 1)
+    ymin, ymax = _value_range(series, series.value, limits)
+    t0 = float(t[0])
+    plot = _Plot(t0=t0, tspan=max(t_end - t0, 1e-9), ymin=ymin, ymax=ymax, width=plot_w)
+    _draw(plot, series, doc, limits, t, now, t_end)
+    lines += _grid_lines(plot, limits, axis_w)
+    lines += _time_lines(plot, series, now, t_end, axis_w)
     if doc is not None:
         lines += _summary(doc, width)
     return "\n".join(lines)
