@@ -368,6 +368,50 @@ def _decode_binary(data: bytes, max_samples: int) -> Block:
     return _finish(sid, int(seq), int(t0_ns), fs_f, UNITS[unit_code], samples, max_samples)
 
 
+def _json_array(raw: Any, max_samples: int) -> np.ndarray:
+    """The samples of encoding ``array``: a JSON array of numbers."""
+    if not isinstance(raw, list):
+        raise InvalidField("encoding 'array' needs 'data' to be a JSON array of numbers")
+    if len(raw) > max_samples:
+        raise LengthMismatch(f"block has {len(raw)} samples, more than the limit of {max_samples}")
+    if not all(isinstance(v, int | float) and not isinstance(v, bool) for v in raw):
+        raise InvalidField("'data' array holds something other than numbers")
+    try:
+        return np.asarray(raw, dtype=np.float64)
+    except OverflowError as exc:
+        raise NonFiniteSamples("a sample does not fit a float64") from exc
+
+
+def _json_base64(doc: dict[str, Any], encoding: str, raw: Any, max_samples: int) -> np.ndarray:
+    """The samples of encodings ``f32le-b64`` and ``i16le-b64`` (the latter scaled by ``scale``)."""
+    if not isinstance(raw, str):
+        raise InvalidField(f"encoding {encoding!r} needs 'data' to be a base64 string")
+    width = 4 if encoding == "f32le-b64" else 2
+    if len(raw) * 3 // 4 > (max_samples + 2) * width:
+        raise LengthMismatch(f"block has more samples than the limit of {max_samples}")
+    try:
+        body = base64.b64decode(raw, validate=True)
+    except (binascii.Error, ValueError) as exc:
+        raise MalformedPayload(f"'data' is not valid base64: {exc}") from exc
+    if len(body) % width:
+        raise LengthMismatch(f"{len(body)} data bytes is not a whole number of {width}-byte samples")
+    if encoding == "f32le-b64":
+        if "scale" in doc:
+            raise InvalidField("'scale' is only allowed with encoding 'i16le-b64'")
+        return np.frombuffer(body, dtype="<f4")
+    scale = doc.get("scale")
+    try:
+        scale_ok = not isinstance(scale, bool) and isinstance(scale, int | float) and \
+            math.isfinite(scale) and scale != 0
+    except OverflowError:  # an integer too large for a float
+        scale_ok = False
+    if not scale_ok:
+        raise InvalidField("encoding 'i16le-b64' needs a finite, non-zero numeric 'scale'")
+    with np.errstate(over="ignore"):
+        samples: np.ndarray = np.frombuffer(body, dtype="<i2").astype(np.float64) * float(scale)  # type: ignore[arg-type]
+    return samples
+
+
 def _decode_json(data: bytes, max_samples: int) -> Block:
     try:
         doc = json.loads(data.decode("utf-8"))
@@ -392,43 +436,9 @@ def _decode_json(data: bytes, max_samples: int) -> Block:
     encoding = doc["encoding"]
     raw = doc["data"]
     if encoding == "array":
-        if not isinstance(raw, list):
-            raise InvalidField("encoding 'array' needs 'data' to be a JSON array of numbers")
-        if len(raw) > max_samples:
-            raise LengthMismatch(f"block has {len(raw)} samples, more than the limit of {max_samples}")
-        if not all(isinstance(v, int | float) and not isinstance(v, bool) for v in raw):
-            raise InvalidField("'data' array holds something other than numbers")
-        try:
-            samples = np.asarray(raw, dtype=np.float64)
-        except OverflowError as exc:
-            raise NonFiniteSamples("a sample does not fit a float64") from exc
+        samples = _json_array(raw, max_samples)
     elif encoding in ("f32le-b64", "i16le-b64"):
-        if not isinstance(raw, str):
-            raise InvalidField(f"encoding {encoding!r} needs 'data' to be a base64 string")
-        width = 4 if encoding == "f32le-b64" else 2
-        if len(raw) * 3 // 4 > (max_samples + 2) * width:
-            raise LengthMismatch(f"block has more samples than the limit of {max_samples}")
-        try:
-            body = base64.b64decode(raw, validate=True)
-        except (binascii.Error, ValueError) as exc:
-            raise MalformedPayload(f"'data' is not valid base64: {exc}") from exc
-        if len(body) % width:
-            raise LengthMismatch(f"{len(body)} data bytes is not a whole number of {width}-byte samples")
-        if encoding == "f32le-b64":
-            if "scale" in doc:
-                raise InvalidField("'scale' is only allowed with encoding 'i16le-b64'")
-            samples = np.frombuffer(body, dtype="<f4")
-        else:
-            scale = doc.get("scale")
-            try:
-                scale_ok = not isinstance(scale, bool) and isinstance(scale, int | float) and \
-                    math.isfinite(scale) and scale != 0
-            except OverflowError:  # an integer too large for a float
-                scale_ok = False
-            if not scale_ok:
-                raise InvalidField("encoding 'i16le-b64' needs a finite, non-zero numeric 'scale'")
-            with np.errstate(over="ignore"):
-                samples = np.frombuffer(body, dtype="<i2").astype(np.float64) * float(scale)  # type: ignore[arg-type]
+        samples = _json_base64(doc, encoding, raw, max_samples)
     else:
         raise InvalidField(f"unknown encoding {encoding!r}; expected one of {', '.join(_ENCODINGS)}")
     return _finish(sid, seq, t0_ns, fs, unit, samples, max_samples)

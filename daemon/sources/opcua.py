@@ -184,6 +184,54 @@ def _application_uri(cert_file: str) -> str:
     return uris[0] if uris else _DEFAULT_APPLICATION_URI
 
 
+def _check_settings(where: str, *, endpoint: str, nodes: dict[str, NodeSpec], speed_nodes: dict[str, str] | None,
+                    mode: str, security_policy: str, security_mode: str, cert_file: str | None,
+                    key_file: str | None, source_timestamp: str, timings: dict[str, float]) -> None:
+    """Refuse settings the source cannot work with (:class:`ConfigError` naming the key)."""
+    if source_timestamp not in ("end", "start"):
+        raise ConfigError(f"{where}.source_timestamp", f"{source_timestamp!r} is not 'end' or 'start'")
+    if not endpoint.startswith("opc.tcp://"):
+        raise ConfigError(f"{where}.endpoint", f"{endpoint!r} is not an opc.tcp:// URL")
+    if mode not in ("subscribe", "poll"):
+        raise ConfigError(f"{where}.mode", f"{mode!r} is not 'subscribe' or 'poll'")
+    if security_policy not in ("None", "Basic256Sha256"):
+        raise ConfigError(f"{where}.security_policy", f"{security_policy!r} is not 'None' or 'Basic256Sha256'")
+    if security_mode not in ("Sign", "SignAndEncrypt"):
+        raise ConfigError(f"{where}.security_mode", f"{security_mode!r} is not 'Sign' or 'SignAndEncrypt'")
+    if security_policy != "None":
+        for key, path in (("cert_file", cert_file), ("key_file", key_file)):
+            if not path:
+                raise ConfigError(f"{where}.{key}", f"required with security_policy {security_policy!r}")
+    if not nodes and not speed_nodes:
+        raise ConfigError(f"{where}", "no nodes to read (neither block nor speed nodes)")
+    for node_id, spec in nodes.items():
+        if spec.unit not in UNITS:
+            raise ConfigError(f"{where}.nodes[{node_id!r}].unit", f"{spec.unit!r} is not one of {UNITS}")
+        if spec.fs_hz is not None and not (math.isfinite(spec.fs_hz) and spec.fs_hz > 0):
+            raise ConfigError(f"{where}.nodes[{node_id!r}].fs_hz", f"{spec.fs_hz!r} must be finite and > 0")
+    for key, value in timings.items():
+        if not (math.isfinite(value) and value > 0):
+            raise ConfigError(f"{where}.{key}", f"{value!r} must be finite and > 0")
+    if timings["reconnect_max_s"] < timings["reconnect_min_s"]:
+        raise ConfigError(f"{where}.reconnect_max_s",
+                          f"{timings['reconnect_max_s']} s is below reconnect_min_s {timings['reconnect_min_s']} s")
+
+
+def _canonical_ids(where: str, node_ids: list[str]) -> dict[str, str]:
+    """asyncua's spelling of each node id -> the configured one; an invalid or repeated node is refused."""
+    canonical_ids: dict[str, str] = {}
+    for node_id in node_ids:
+        try:
+            canonical = ua.NodeId.from_string(node_id).to_string()
+        except UaError as exc:
+            raise ConfigError(f"{where}.nodes[{node_id!r}]", f"not a valid OPC UA node id: {exc}") from exc
+        if canonical in canonical_ids:
+            raise ConfigError(f"{where}.nodes[{node_id!r}]",
+                              f"the same node as {canonical_ids[canonical]!r} (configured twice)")
+        canonical_ids[canonical] = node_id
+    return canonical_ids
+
+
 class OpcUaSource:
     """Blocks from array variables of one OPC UA server; implements :class:`~edgevib.daemon.interfaces.Source`.
 
@@ -199,46 +247,12 @@ class OpcUaSource:
                  reconnect_min_s: float = 0.5, reconnect_max_s: float = 30.0, timeout_s: float = 5.0,
                  source_timestamp: str = "end") -> None:
         where = f"sources.{name}"
-        if source_timestamp not in ("end", "start"):
-            raise ConfigError(f"{where}.source_timestamp", f"{source_timestamp!r} is not 'end' or 'start'")
-        if not endpoint.startswith("opc.tcp://"):
-            raise ConfigError(f"{where}.endpoint", f"{endpoint!r} is not an opc.tcp:// URL")
-        if mode not in ("subscribe", "poll"):
-            raise ConfigError(f"{where}.mode", f"{mode!r} is not 'subscribe' or 'poll'")
-        if security_policy not in ("None", "Basic256Sha256"):
-            raise ConfigError(f"{where}.security_policy", f"{security_policy!r} is not 'None' or 'Basic256Sha256'")
-        if security_mode not in ("Sign", "SignAndEncrypt"):
-            raise ConfigError(f"{where}.security_mode", f"{security_mode!r} is not 'Sign' or 'SignAndEncrypt'")
-        if security_policy != "None":
-            for key, path in (("cert_file", cert_file), ("key_file", key_file)):
-                if not path:
-                    raise ConfigError(f"{where}.{key}", f"required with security_policy {security_policy!r}")
-        if not nodes and not speed_nodes:
-            raise ConfigError(f"{where}", "no nodes to read (neither block nor speed nodes)")
-        for node_id, spec in nodes.items():
-            if spec.unit not in UNITS:
-                raise ConfigError(f"{where}.nodes[{node_id!r}].unit", f"{spec.unit!r} is not one of {UNITS}")
-            if spec.fs_hz is not None and not (math.isfinite(spec.fs_hz) and spec.fs_hz > 0):
-                raise ConfigError(f"{where}.nodes[{node_id!r}].fs_hz", f"{spec.fs_hz!r} must be finite and > 0")
-        timings: tuple[tuple[str, float], ...] = (
-            ("poll_interval_s", poll_interval_s), ("reconnect_min_s", reconnect_min_s),
-            ("reconnect_max_s", reconnect_max_s), ("timeout_s", timeout_s))
-        for key, value in timings:
-            if not (math.isfinite(value) and value > 0):
-                raise ConfigError(f"{where}.{key}", f"{value!r} must be finite and > 0")
-        if reconnect_max_s < reconnect_min_s:
-            raise ConfigError(f"{where}.reconnect_max_s",
-                              f"{reconnect_max_s} s is below reconnect_min_s {reconnect_min_s} s")
-        self._canonical: dict[str, str] = {}  # asyncua's spelling of a node id -> the configured one
-        for node_id in [*nodes, *(speed_nodes or {})]:
-            try:
-                canonical = ua.NodeId.from_string(node_id).to_string()
-            except UaError as exc:
-                raise ConfigError(f"{where}.nodes[{node_id!r}]", f"not a valid OPC UA node id: {exc}") from exc
-            if canonical in self._canonical:
-                raise ConfigError(f"{where}.nodes[{node_id!r}]",
-                                  f"the same node as {self._canonical[canonical]!r} (configured twice)")
-            self._canonical[canonical] = node_id
+        _check_settings(where, endpoint=endpoint, nodes=nodes, speed_nodes=speed_nodes, mode=mode,
+                        security_policy=security_policy, security_mode=security_mode, cert_file=cert_file,
+                        key_file=key_file, source_timestamp=source_timestamp,
+                        timings={"poll_interval_s": poll_interval_s, "reconnect_min_s": reconnect_min_s,
+                                 "reconnect_max_s": reconnect_max_s, "timeout_s": timeout_s})
+        self._canonical = _canonical_ids(where, [*nodes, *(speed_nodes or {})])  # asyncua's spelling -> configured
         self.name = name
         self.endpoint = endpoint
         self._ingest = ingest
