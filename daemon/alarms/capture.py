@@ -7,6 +7,7 @@ removed first.  ``edgevib analyze FILE.wav`` reads a capture directly.
 
 from __future__ import annotations
 
+import bisect
 import contextlib
 import json
 import os
@@ -47,7 +48,11 @@ def _plain(v: Any) -> Any:
 
 class CaptureStore:
     """Saves captures and keeps the directory within its budget.  Methods are thread-safe (called from a worker
-    thread so disk writes never block the event loop)."""
+    thread so disk writes never block the event loop).
+
+    The directory is the store's own: it is listed once at start-up and then tracked in memory (oldest first), so
+    a save costs the same however many captures are kept — many points raising at once (a plant-wide event)
+    must not make every save list and stat the whole directory."""
 
     def __init__(self, cfg: CaptureConfig) -> None:
         self.cfg = cfg
@@ -55,9 +60,11 @@ class CaptureStore:
         self._lock = threading.Lock()
         self.count = 0
         self.bytes = 0
+        self._index: list[tuple[float, str, int]] = []  # (mtime, WAV name, bytes with its sidecar), oldest first
         if cfg.enabled:
             self.dir.mkdir(parents=True, exist_ok=True)
             with self._lock:
+                self._index = [(mtime, wav.name, size) for mtime, wav, size in self._entries()]
                 self._rotate()
 
     def _entries(self) -> list[tuple[float, Path, int]]:
@@ -74,16 +81,24 @@ class CaptureStore:
         return out
 
     def _rotate(self) -> None:
-        entries = self._entries()
+        entries = self._index
         total = sum(e[2] for e in entries)
-        while entries and (total > self.cfg.max_bytes or len(entries) > self.cfg.max_files):
-            _, wav, size = entries.pop(0)
+        drop = 0
+        while drop < len(entries) and (total > self.cfg.max_bytes or len(entries) - drop > self.cfg.max_files):
+            _, name, size = entries[drop]
+            drop += 1
+            wav = self.dir / name
             for p in (wav, wav.with_suffix(".json")):
                 with contextlib.suppress(FileNotFoundError):
                     p.unlink()
             total -= size
-            log.info("capture rotated out", file=wav.name)
+            log.info("capture rotated out", file=name)
+        del entries[:drop]
         self.count, self.bytes = len(entries), total
+
+    def _add(self, wav: Path, side: Path) -> None:
+        st = wav.stat()
+        bisect.insort(self._index, (st.st_mtime, wav.name, st.st_size + side.stat().st_size))
 
     def save(self, result: FrameResult, *, indicator: str, transition: str, severity: str, event_id: str,
              limits: dict[str, Any], config_digest: str, site: str) -> str | None:
@@ -120,6 +135,7 @@ class CaptureStore:
                 side = wav_path.with_suffix(".json")
                 side.write_text(json.dumps(sidecar, indent=1, allow_nan=False) + "\n", encoding="utf-8")
                 os.replace(tmp, wav_path)
+                self._add(wav_path, side)
                 self._rotate()
         except (OSError, ValueError) as exc:
             log.warning("capture failed", point=result.point_id, error=str(exc))
