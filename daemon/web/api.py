@@ -30,7 +30,7 @@ import numpy as np
 from aiohttp import web
 
 from edgevib.daemon import __version__
-from edgevib.daemon.indicators import INDICATORS, REGISTRY
+from edgevib.daemon.indicators import INDICATORS, REGISTRY, Indicator
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.logs import get_logger
 from edgevib.daemon.timestamps import rfc3339_utc
@@ -117,14 +117,31 @@ def indicator_unit(name: str) -> str:
     return ind.unit if ind is not None else "1"
 
 
+def _is_limit_view(ind: Indicator) -> bool:
+    return ind.fault is not None and ind.mqtt is None and ind.report is None and ind.prometheus is None
+
+
+_VALUE_INDICATORS = tuple(ind for ind in REGISTRY if not _is_limit_view(ind))
+
+
+def indicator_values(r: FrameResult) -> dict[str, Any]:
+    """``{name: value}`` of :func:`indicator_rows` without the limit views (NaN/Inf → None): what the recent-values
+    buffer keeps per frame, without building each row's description text."""
+    out: dict[str, Any] = {}
+    for ind in _VALUE_INDICATORS:
+        for key, v in ind.values(r).items():
+            out[f"{ind.name}.{key}" if key else ind.name] = None if isinstance(v, float) and not math.isfinite(v) \
+                else v
+    return out
+
+
 def indicator_rows(r: FrameResult) -> list[dict[str, Any]]:
     """Every registry indicator of a frame as ``{name, value, unit, kind, description}``: scalars by name,
     per-order and per-family ones as ``NAME.KEY`` (``order_velocity_rms_mm_s.1x``, ``envelope_snr_db.bpfo``);
     ``kind`` is ``overall``, ``order``, ``family`` or ``limit`` (the fault-named views that alarm limits use)."""
     rows: list[dict[str, Any]] = []
     for ind in REGISTRY:
-        limit_view = ind.fault is not None and ind.mqtt is None and ind.report is None and ind.prometheus is None
-        kind = "limit" if limit_view else ind.per or "overall"
+        kind = "limit" if _is_limit_view(ind) else ind.per or "overall"
         for key, v in ind.values(r).items():
             if isinstance(v, float) and not math.isfinite(v):
                 v = None
@@ -332,8 +349,7 @@ class ViewService:
     async def on_frames(self, results: list[FrameResult]) -> None:
         latest: dict[str, FrameResult] = {}
         for r in results:
-            self.recent.add(r.point_id, r.t_end_ns / 1e9,
-                            {row["name"]: row["value"] for row in indicator_rows(r) if row["kind"] != "limit"})
+            self.recent.add(r.point_id, r.t_end_ns / 1e9, indicator_values(r))
             latest[r.point_id] = r
         if self._streams:
             for r in latest.values():

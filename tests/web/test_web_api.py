@@ -170,6 +170,14 @@ async def test_trend_holds_recent_values_and_limits(demo: Running) -> None:
     assert code == 200 and doc["limits"]["indicator"] == "imbalance_1x_mm_s"
 
 
+async def test_recent_values_are_the_indicator_rows_values(demo: Running) -> None:
+    from edgevib.daemon.web.api import indicator_rows, indicator_values
+
+    for r in demo.daemon.latest.values():
+        rows = {row["name"]: row["value"] for row in indicator_rows(r) if row["kind"] != "limit"}
+        assert indicator_values(r) == rows and "velocity_rms_mm_s" in rows
+
+
 async def test_event_stream_sends_frames(demo: Running) -> None:
     seen: list[str] = []
     async with demo.session.get(demo.base + "/api/v1/events") as r:
