@@ -228,7 +228,9 @@ def _result_fields(res: TrendResult, now: float, unit: str) -> dict[str, Any]:
                                 if res.fit.model == "exponential" and res.fit.slope > 0 else None)
         out["fit"] = {"model": res.fit.model, "t_ref_s": res.fit.t_ref_s, "intercept": res.fit.intercept,
                       "slope": res.fit.slope, "onset_s": res.fit.onset_s, "n": res.fit.n,
-                      "autocorrelation": round(res.fit.autocorrelation, 3)}
+                      "autocorrelation": round(res.fit.autocorrelation, 3),
+                      # for a confidence band of the fitted curve (the statistic of crossing_interval)
+                      "cov": list(res.fit.cov), "sigma": res.fit.sigma, "dof": res.fit.dof}
     if res.step is not None:
         out["step"] = {"baseline": res.step.baseline, "level": res.step.level, "change": res.step.change,
                        "threshold": res.step.threshold, "significant": res.step.significant}
@@ -577,6 +579,28 @@ class TrendWatch:
         """Read-only: the latest trend document of a series (see :func:`evaluate`), or None."""
         doc = self.latest.get((point, indicator))
         return None if doc is None else dict(doc)
+
+    def limit_lines(self, point: str, indicator: str) -> list[dict[str, Any]]:
+        """Read-only: every limit line of a series as ``{label, value, unit, kind}`` — the alarm layer's alert and
+        danger set points (kind ``alarm``), all ISO 20816-3 zone boundaries for velocity r.m.s. of a machine with
+        group and support (kind ``iso``; labels ``A/B``, ``B/C``, ``C/D``) and the ``[[trend.limits]]`` value
+        (kind ``user``, label ``limit``).  Unknown point: an empty list."""
+        if point not in self.points:
+            return []
+        unit = INDICATORS[indicator].unit if indicator in INDICATORS else ""
+        out: list[dict[str, Any]] = []
+        alert, danger, _ = self._set_points(point, indicator)
+        for label, value in (("alert", alert), ("danger", danger)):
+            if value is not None:
+                out.append({"label": label, "value": float(value), "unit": unit, "kind": "alarm"})
+        iso = self._iso(point, indicator)
+        if iso is not None:
+            for label, value in zip(("A/B", "B/C", "C/D"), iso, strict=True):
+                out.append({"label": label, "value": value, "unit": unit, "kind": "iso"})
+        user = self.settings.limit_for(point, indicator)
+        if user is not None:
+            out.append({"label": "limit", "value": user, "unit": unit, "kind": "user"})
+        return out
 
     def projections(self, point: str | None = None) -> dict[str, dict[str, Any]]:
         """Read-only: indicator → latest trend document, of one point (or ``"point/indicator"`` keys for all)."""
