@@ -5,14 +5,13 @@ Shared by the daemon's API (computed in a worker thread, cached per frame) and t
 arithmetic here: no I/O, clocks or logging.  The numbers come from the numerical core's own functions, so a marker
 reads what the daemon's indicators read for the same frame:
 
-* **Spectrum scaling**: the frame (mean removed) is transformed once; the periodic Hann window is applied as the
-  exact three-tap convolution (:func:`edgevib.pipelines.spectrum.hann_lines`); a line reads the **r.m.s.** of a
-  sine centred on it, ``|Xw[k]| · 2/Σw / √2`` with ``Σw = N/2``.  Velocity lines integrate the unwindowed lines by
-  ``gₙ·1000/(jω)`` before the window (as the pipeline does), in mm/s r.m.s.; lines below the velocity band's low
-  edge are omitted (``null``), where integration amplifies drift and gravity.
-* **Order markers** read the velocity r.m.s. of the three lines around the largest line within the order's
-  tolerance (the pipeline's ``order_amplitudes_mm_s``: a tone between two lines still reads its r.m.s.), and the
-  acceleration r.m.s. over the same three lines.
+* **Spectrum**: :func:`edgevib.pipelines.spectrum_views.spectrum_view` for acceleration and velocity (periodic Hann
+  window; a line reads the **r.m.s.** of a sine centred on it, ``|Xw[k]| · 2/Σw / √2`` with ``Σw = N/2``; velocity
+  by ``gₙ·1000/(jω)`` in mm/s r.m.s.); lines below the velocity band's low edge, which the numerical core does not
+  integrate (drift, gravity), are omitted (``null``).
+* **Order markers** are the view's order markers: the pipeline's own order values of the frame (velocity r.m.s. of
+  the three lines around the largest line within the order's tolerance: a tone between two lines still reads its
+  r.m.s.), with the acceleration r.m.s. over the same three lines.
 * **Envelope spectrum**: :func:`edgevib.pipelines.spectrum_views.envelope_view` (peak reading, g) over the
   point's demodulation band, with each family's fundamental, harmonics and sidebands as the numerical core searched
   them (level over the local mean level, threshold, verdict) — the daemon's own detection for that frame.
@@ -28,18 +27,10 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
-from edgevib.pipelines import _fft
 from edgevib.pipelines.analysis import order_key
 from edgevib.pipelines.bearings import defect_frequencies
 from edgevib.pipelines.envelope import envelope_amplitude_spectrum
-from edgevib.pipelines.spectrum import (
-    hann_lines,
-    integration_coefficients,
-    order_amplitudes_mm_s,
-    power3,
-    window_argmax,
-)
-from edgevib.pipelines.spectrum_views import FamilyMarkers, LineMarker, envelope_view
+from edgevib.pipelines.spectrum_views import FamilyMarkers, LineMarker, envelope_view, spectrum_view
 from edgevib.pipelines.types import AnalysisPlan, FamilyResult, PipelineError
 
 __all__ = [
@@ -110,64 +101,68 @@ def _peak_hold(freqs: FloatArray, series: list[FloatArray], max_lines: int) -> t
 
 def spectrum_panel(x_g: npt.ArrayLike, fs_hz: float, plan: AnalysisPlan, shaft_hz: float | None, *,
                    fmax_hz: float | None = None, max_lines: int | None = None) -> dict[str, Any]:
-    """Amplitude spectrum of one frame with order and defect-frequency markers.
+    """Amplitude spectrum of one frame with order and defect-frequency markers, from
+    :func:`edgevib.pipelines.spectrum_views.spectrum_view` (acceleration and velocity).
 
     Parameters
     ----------
-    x_g : array_like, shape (samples,) — acceleration in g
-    plan : the point's analysis plan (velocity band, orders, tolerance, bearing)
-    shaft_hz : the frame's shaft speed (None: no order or defect markers)
+    x_g : array_like, shape (plan.n_samples,) — acceleration in g
+    plan : the point's analysis plan (sample rate, frame length, velocity band, orders, tolerance, bearing)
+    shaft_hz : the frame's shaft speed (None: estimated as the analysis does; no markers when unknown)
     fmax_hz : highest frequency shown (default fs/2.56, the usable band of an anti-aliased acquisition)
     max_lines : most lines returned (default 4096; peak hold beyond)
 
     Returns
     -------
     dict with ``frequency_hz``, ``acceleration_g`` and ``velocity_mm_s`` (arrays, r.m.s. per line), the scaling
-    stated in ``scaling``, and ``markers`` (orders with their velocity and acceleration r.m.s.; defect frequencies).
+    stated in ``scaling``, and ``markers``: the plan's orders with the pipeline's own order value (velocity r.m.s.
+    of the three lines around the largest line in the order's window) and the acceleration r.m.s. over the same
+    lines; the positions of further shaft harmonics; the bearing's defect frequencies.
     """
     x = _frame(x_g, fs_hz)
     n = x.size
+    if n != plan.n_samples or not math.isclose(fs_hz, plan.fs_hz, rel_tol=1e-12):
+        raise PanelError(f"a frame of {n} samples at {fs_hz:g} Hz does not fit the plan ({plan.n_samples} samples "
+                         f"at {plan.fs_hz:g} Hz)")
     nyq = fs_hz / 2.0
     fmax = min(nyq, fs_hz / ANTI_ALIAS_RATIO) if fmax_hz is None else float(fmax_hz)
     if not math.isfinite(fmax) or not 0 < fmax <= nyq:
         raise PanelError(f"fmax {fmax_hz!r} Hz must be > 0 and at most Nyquist {nyq:g} Hz")
     lines = _limit("max_lines", max_lines, DEFAULT_MAX_LINES, MAX_LINES)
+    shaft = shaft_hz if shaft_hz is not None and math.isfinite(shaft_hz) and shaft_hz > 0 else None
+    acc = spectrum_view(x, plan, shaft, quantity="acceleration")
+    vel = spectrum_view(x, plan, acc.shaft_hz, quantity="velocity")
+    freqs = acc.freqs_hz
     df = fs_hz / n
-    spec = _fft.rfft((x - x.mean())[None, :])
-    stop = n // 2
-    acc = hann_lines(spec, stop)
-    vel = hann_lines(spec[:, : stop + 1] * integration_coefficients(fs_hz, n, stop + 1), stop)
-    scale = 2.0 * math.sqrt(2.0) / n  # |Xw| · 2/Σw / √2, Σw = N/2
-    acc_pow = acc.real**2 + acc.imag**2
-    vel_pow = vel.real**2 + vel.imag**2
-    acc_rms = np.sqrt(acc_pow[0]) * scale
-    vel_rms = np.sqrt(vel_pow[0]) * scale
-    freqs = np.arange(stop, dtype=np.float64) * df
-    vel_rms[freqs < plan.velocity_band_hz[0]] = np.nan
+    vel_rms = vel.amplitude.copy()
+    vel_rms[freqs < plan.velocity_band_hz[0]] = np.nan  # not integrated there (zero in the view): not drawn
     keep = freqs <= fmax + 1e-9
-    f_shown, (a_shown, v_shown), group = _peak_hold(freqs[keep], [acc_rms[keep], vel_rms[keep]], lines)
+    f_shown, (a_shown, v_shown), group = _peak_hold(freqs[keep], [acc.amplitude[keep], vel_rms[keep]], lines)
 
     markers: list[dict[str, Any]] = []
-    factor = 16.0 / (3.0 * n * n)  # Σ|Xw|² over lines → mean square (periodic Hann), as the pipeline
-    if shaft_hz is not None and math.isfinite(shaft_hz) and shaft_hz > 0:
-        orders = tuple(o for o in sorted(set(MARKER_ORDERS) | set(plan.orders)) if o * shaft_hz <= fmax)
-        if orders:
-            shaft = np.array([shaft_hz])
-            v = order_amplitudes_mm_s(vel_pow, shaft, orders, plan.order_tolerance, df, n)[0]
-            centre = shaft_hz * np.asarray(orders) / df
-            half = np.maximum(1.0, plan.order_tolerance * centre)
-            lo = np.ceil(centre - half).astype(np.intp)[None, :]
-            hi = np.floor(centre + half).astype(np.intp)[None, :]
-            peak = window_argmax(vel_pow, lo, hi)
-            a = np.sqrt(power3(acc_pow, peak) * factor)[0]
-            for i, o in enumerate(orders):
-                if not math.isfinite(v[i]):
-                    continue
-                markers.append({"kind": "order", "label": f"{o:g}×", "key": order_key(o), "order": o,
-                                "frequency_hz": o * shaft_hz, "peak_frequency_hz": float(peak[0, i]) * df,
-                                "velocity_mm_s": float(v[i]), "acceleration_g": float(a[i])})
+    f = acc.shaft_hz
+    if f is not None and f > 0:
+        for m in acc.orders:
+            if m.expected_hz > fmax or m.velocity_rms_mm_s is None or not math.isfinite(m.velocity_rms_mm_s):
+                continue
+            a_rms = None
+            if m.found_hz is not None:
+                k = round(m.found_hz / df)
+                # mean square over the found line and its neighbours (periodic Hann: Σ|Xw|²·16/(3N²) = ⅔·Σ line²),
+                # the pipeline's three-line reading of an order
+                a_rms = math.sqrt(2.0 / 3.0 * float(np.sum(acc.amplitude[max(0, k - 1) : k + 2] ** 2)))
+            order = m.expected_hz / f
+            markers.append({"kind": "order", "label": f"{order:g}×", "key": m.key, "order": order,
+                            "frequency_hz": m.expected_hz, "window_hz": list(m.window_hz),
+                            "peak_frequency_hz": m.found_hz, "velocity_mm_s": m.velocity_rms_mm_s,
+                            "acceleration_g": a_rms})
+        measured = {round(mk["order"], 6) for mk in markers}
+        for o in MARKER_ORDERS:
+            if o * f <= fmax and round(o, 6) not in measured and o == int(o):
+                markers.append({"kind": "harmonic", "label": f"{o:g}×", "key": order_key(o), "order": o,
+                                "frequency_hz": o * f})
         if plan.bearing is not None:
-            d = defect_frequencies(plan.bearing, shaft_hz)
+            d = defect_frequencies(plan.bearing, f)
             for key, hz in (("ftf", d.ftf_hz), ("bpfo", d.bpfo_hz), ("bpfi", d.bpfi_hz), ("bsf", 2 * d.bsf_hz)):
                 if hz <= fmax:
                     markers.append({"kind": "defect", "label": FAMILY_LABELS[key], "key": key,
@@ -178,9 +173,12 @@ def spectrum_panel(x_g: npt.ArrayLike, fs_hz: float, plan: AnalysisPlan, shaft_h
         "scaling": {"acceleration_g": "r.m.s. per line, g (a sine centred on a line reads its r.m.s.)",
                     "velocity_mm_s": "r.m.s. per line, mm/s, by frequency-domain integration; null below "
                                      f"{plan.velocity_band_hz[0]:g} Hz (the velocity band's low edge)",
+                    "orders": "the pipeline's order value: velocity r.m.s. over the three lines around the largest "
+                              "line within the order's window (no loss for a tone between lines); acceleration "
+                              "over the same three lines",
                     "reduction": "none" if group == 1 else f"peak hold over groups of {group} lines"},
         "velocity_band_hz": list(plan.velocity_band_hz),
-        "shaft_hz": shaft_hz,
+        "shaft_hz": f,
         "frequency_hz": f_shown, "acceleration_g": a_shown, "velocity_mm_s": v_shown,
         "markers": markers,
     }

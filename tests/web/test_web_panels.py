@@ -17,6 +17,7 @@ FS, N = 12800.0, 8192
 T = np.arange(N) / FS
 G_MM_S2 = STANDARD_GRAVITY_M_S2 * 1000.0
 BEARING = BearingGeometry(9, 7.94, 39.04, 0.0)
+MAX = 16384
 
 
 def numpy_rms_lines(x: np.ndarray) -> np.ndarray:
@@ -69,6 +70,28 @@ def test_order_markers_read_the_pipeline_and_the_closed_form() -> None:
     # defect markers at the kinematic frequencies: BPFO = n·fr/2·(1 − d/D cos φ) (FIELD_NOTES §2)
     bpfo = 9 * shaft / 2 * (1 - 7.94 / 39.04)
     assert m["bpfo"]["frequency_hz"] == pytest.approx(bpfo, rel=1e-12) and m["bpfo"]["kind"] == "defect"
+
+
+def test_spectrum_panel_is_the_numerical_cores_spectrum_view() -> None:
+    from edgevib.pipelines.spectrum_views import spectrum_view
+
+    rng = np.random.default_rng(11)
+    shaft = 29.6
+    x = 0.12 * np.sin(2 * np.pi * shaft * T) + 0.04 * np.sin(2 * np.pi * 3 * shaft * T) + 0.02 * rng.standard_normal(N)
+    plan = make_plan(FS, N, bearing=BEARING, envelope_band_hz=(2000.0, 5000.0))
+    doc = spectrum_panel(x, FS, plan, shaft, fmax_hz=FS / 2, max_lines=MAX)
+    acc = spectrum_view(x, plan, shaft, quantity="acceleration")
+    vel = spectrum_view(x, plan, shaft, quantity="velocity")
+    np.testing.assert_allclose(doc["acceleration_g"], acc.amplitude, rtol=1e-12)
+    above = vel.freqs_hz >= plan.velocity_band_hz[0]
+    np.testing.assert_allclose(np.asarray(doc["velocity_mm_s"])[above], vel.amplitude[above], rtol=1e-12)
+    orders = {m["key"]: m for m in doc["markers"] if m["kind"] == "order"}
+    assert set(orders) == {o.key for o in vel.orders}
+    for o in vel.orders:
+        assert orders[o.key]["velocity_mm_s"] == o.velocity_rms_mm_s
+        assert orders[o.key]["peak_frequency_hz"] == o.found_hz and orders[o.key]["window_hz"] == list(o.window_hz)
+    # further shaft harmonics are marked by position only
+    assert {m["key"] for m in doc["markers"] if m["kind"] == "harmonic"} >= {"4x", "5x"}
 
 
 def test_peak_hold_keeps_every_peak() -> None:
