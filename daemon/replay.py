@@ -667,7 +667,7 @@ def _report(out: Path, last: dict[str, Any], frame: tuple[FrameResult, AnalysisP
         trend = {"indicator": name, "unit": INDICATORS[name].unit if name in INDICATORS else "",
                  "t_s": (series.t_s + series.bucket_s / 2.0).tolist(), "values": series.value,
                  "limits": {"indicator": name, "alert": alert, "danger": danger, "all": doc.get("limits", [])},
-                 "projection": projection_curve(doc), "trend": doc,
+                 "limit_lines": _limit_lines(o, name), "projection": projection_curve(doc), "trend": doc,
                  "source": f"{done} replayed snapshots; {doc.get('advice_text') or doc.get('status')}"}
     rows = [(row["name"], row["value"], row["unit"]) for row in indicator_rows(r) if row["kind"] != "limit"]
     meta = {"point": o.point, "snapshots": done, "latest snapshot": f"{last['file']} at {last['time']}",
@@ -682,6 +682,21 @@ def _report(out: Path, last: dict[str, Any], frame: tuple[FrameResult, AnalysisP
         write_report(out, text)
     except OSError as exc:
         raise InputError(f"cannot write --report {out}: {exc.strerror or exc}") from None
+
+
+def _limit_lines(o: ReplayOptions, name: str) -> list[dict[str, Any]]:
+    """The report's limit lines of a series: the ISO 20816-3 zone boundaries (velocity r.m.s., with ``--group`` and
+    ``--support``) and the ``--limit`` value."""
+    unit = INDICATORS[name].unit if name in INDICATORS else ""
+    out: list[dict[str, Any]] = []
+    if name == "velocity_rms_mm_s" and o.group is not None and o.support is not None:
+        from edgevib.pipelines.severity import zone_boundaries_mm_s
+
+        out += [{"label": label, "value": v, "unit": unit, "kind": "iso"}
+                for label, v in zip(("A/B", "B/C", "C/D"), zone_boundaries_mm_s(o.group, o.support), strict=True)]
+    if name in o.limits:
+        out.append({"label": "limit", "value": o.limits[name], "unit": unit, "kind": "user"})
+    return out
 
 
 def _terminal_width() -> int:

@@ -1,8 +1,9 @@
 """The view: the JSON API ``/api/v1/…``, its Server-Sent Events and the page at ``/``, on the daemon's listener.
 
 :class:`ViewService` is a lossy :class:`~edgevib.daemon.interfaces.FrameSink`: it keeps each point's recent
-indicator values (:mod:`edgevib.daemon.web.recent`), listens to the alarm layer's committed events (the alarm
-history) and pushes a small message per frame and per alarm event to every open event stream.  Spectra, envelope
+indicator values (:mod:`edgevib.daemon.web.recent`), listens to the alarm layer's committed events and pushes a
+small message per frame and per alarm event to every open event stream.  The alarm history is the alarm layer's
+durable one, read through its read-only view (``AlarmView.history``).  Spectra, envelope
 spectra and waveforms are computed on request from the point's latest frame in a worker thread (at most
 :data:`COMPUTE_SLOTS` at once, never on the event loop) and cached per frame.
 
@@ -17,6 +18,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import dataclasses
 import json
 import math
 import time
@@ -51,6 +53,7 @@ __all__ = [
     "indicator_unit",
     "jsonable",
     "rfc3339",
+    "transition_row",
 ]
 
 API_VERSION = "v1"
@@ -62,7 +65,7 @@ HEARTBEAT_S = 15.0
 RATE_PER_S = 20.0
 RATE_BURST = 60.0
 MAX_CLIENTS_TRACKED = 1024
-HISTORY_CAPACITY = 2000
+HISTORY_MAX_LIMIT = 1000  # the alarm layer's own bound on one history read
 HISTORY_DEFAULT_LIMIT = 200
 TREND_MAX_POINTS = 5000
 ACTIVE_STATES = ("unacknowledged", "acknowledged", "latched", "rtn-unacknowledged", "shelved")
@@ -171,6 +174,19 @@ def dumps(doc: Any) -> bytes:
     return json.dumps(jsonable(doc), separators=(",", ":"), ensure_ascii=False, allow_nan=False).encode("utf-8")
 
 
+def transition_row(t: Any) -> dict[str, Any]:
+    """One alarm-history record (:class:`~edgevib.daemon.interfaces.AlarmTransition`) as JSON fields, with its times
+    also in RFC 3339 (``time`` for ``t_s``, ``at`` for ``at_s``)."""
+    if dataclasses.is_dataclass(t) and not isinstance(t, type):
+        row = {f.name: getattr(t, f.name) for f in dataclasses.fields(t)}
+    else:
+        row = dict(t)
+    t_s, at_s = row.get("t_s"), row.get("at_s")
+    row["time"] = rfc3339(t_s * 1e9) if isinstance(t_s, int | float) else None
+    row["at"] = rfc3339(at_s * 1e9) if isinstance(at_s, int | float) else None
+    return row
+
+
 def json_response(doc: Any, status: int = 200, *, body: bytes | None = None) -> web.Response:
     return web.Response(status=status, body=dumps(doc) if body is None else body,
                         headers={"Content-Type": "application/json; charset=utf-8", "Cache-Control": "no-store"})
@@ -276,7 +292,6 @@ class ViewService:
         self.http = http
         self.clock_ns = clock_ns
         self.recent = RecentValues(recent_capacity, recent_interval_s)
-        self.history: deque[dict[str, Any]] = deque(maxlen=HISTORY_CAPACITY)
         self.limiter = RateLimiter()
         self._streams: set[_Stream] = set()
         self._cache: OrderedDict[tuple[Any, ...], bytes] = OrderedDict()
@@ -379,7 +394,6 @@ class ViewService:
                **{k: data.get(k) for k in ("indicator", "unit", "fault_kind", "transition", "state", "from_state",
                                            "alarm_state", "value", "limit", "reason", "by", "advice", "fault",
                                            "detail", "iso_zone")}}
-        self.history.append(row)
         loop = getattr(self._alarm_layer, "_loop", None)
         try:
             running = asyncio.get_running_loop()
@@ -472,7 +486,7 @@ class ViewService:
                           "/api/v1/events", "/api/v1/session"],
             "limits": {"requests_per_s": RATE_PER_S, "burst": RATE_BURST, "event_streams": MAX_STREAMS,
                        "spectrum_lines": panels.MAX_LINES, "waveform_points": panels.MAX_POINTS,
-                       "trend_points": TREND_MAX_POINTS, "history_entries": HISTORY_CAPACITY},
+                       "trend_points": TREND_MAX_POINTS, "history_entries": HISTORY_MAX_LIMIT},
             "actions": self.actions is not None and self.actions.enabled,
             "advisory": "edgevib monitors and advises; it is not a machinery protection system.",
         })
@@ -653,6 +667,7 @@ class ViewService:
         known = self.recent.indicators(p.id)
         rows, _ = self._alarm_rows(p.id)
         limits = self._limits_for(indicator, rows)
+        lines = self._limit_lines(p, limits["indicator"], limits)
         stored = await self._history_trend(p.id, limits["indicator"], since, limit)
         if stored is not None:
             t_list = stored["t_s"]
@@ -662,8 +677,8 @@ class ViewService:
                 "source": f"the daemon's severity history ({stored['resolution']} resolution) and the trend "
                           "layer's latest projection",
                 "t_s": t_list, "time": [rfc3339(x * 1e9) for x in t_list], "values": stored["values"],
-                "limits": limits, "projection": stored["projection"], "trend": stored["trend"],
-                "indicators": known})
+                "limits": limits, "limit_lines": lines, "projection": stored["projection"],
+                "trend": stored["trend"], "indicators": known})
         if known and indicator not in known:
             return problem(404, f"point {p.id} has no indicator {indicator!r}", indicators=known)
         t, v = await asyncio.to_thread(self.recent.series, p.id, indicator, since)
@@ -674,8 +689,28 @@ class ViewService:
             "source": "recent values held by the daemon in memory (at most "
                       f"{self.recent.capacity} per point, one per {self.recent.interval_s:g} s; lost on restart)",
             "t_s": t.tolist(), "time": [rfc3339(x * 1e9) for x in t.tolist()], "values": v,
-            "limits": limits, "projection": None, "trend": None, "indicators": known,
+            "limits": limits, "limit_lines": lines, "projection": None,
+            "trend": None, "indicators": known,
         })
+
+    def _limit_lines(self, p: Any, indicator: str, limits: dict[str, Any]) -> list[dict[str, Any]]:
+        """Every limit line of a series (``{label, value, unit, kind}``): the trend layer's read-only view when it
+        runs; otherwise the alarm layer's set points and the machine's ISO 20816-3 zone boundaries."""
+        watch = getattr(self.daemon, "trend_watch", None)
+        if watch is not None:
+            return list(watch.limit_lines(p.id, indicator))
+        unit = indicator_unit(indicator)
+        out = [{"label": k, "value": limits[k], "unit": unit, "kind": "alarm"} for k in ("alert", "danger")
+               if limits.get(k) is not None]
+        m = self.daemon.config.machine(p.machine)
+        if indicator == "velocity_rms_mm_s" and m.group is not None and m.support is not None:
+            from edgevib.pipelines.severity import zone_boundaries_mm_s
+
+            with contextlib.suppress(PipelineError):
+                out += [{"label": label, "value": v, "unit": unit, "kind": "iso"}
+                        for label, v in zip(("A/B", "B/C", "C/D"), zone_boundaries_mm_s(m.group, m.support),
+                                            strict=True)]
+        return out
 
     async def _history_trend(self, point: str, indicator: str, since: float, limit: int) -> dict[str, Any] | None:
         """The series from the daemon's severity history with the trend layer's projection, when it keeps one."""
@@ -717,26 +752,25 @@ class ViewService:
                               "sensor_faults": {k: v for k, v in sensors.items() if v.get("fault")}})
 
     async def _history(self, request: web.Request) -> web.Response:
-        limit = _int_param(request, "limit", 1, HISTORY_CAPACITY) or HISTORY_DEFAULT_LIMIT
+        """Transitions with why, newest first, from the alarm layer's durable store (``AlarmView.history``)."""
+        limit = _int_param(request, "limit", 1, HISTORY_MAX_LIMIT) or HISTORY_DEFAULT_LIMIT
         point = request.query.get("point")
+        if point is not None and point not in {p.id for p in self.daemon.config.points}:
+            return problem(404, f"unknown point {point[:128]!r}")
         since_text = request.query.get("since")
         try:
             since = None if since_text is None else parse_time_s(since_text, self.clock_ns() / 1e9)
         except ValueError as exc:
             return problem(400, str(exc))
-        out = []
-        for row in reversed(self.history):  # newest first
-            if point is not None and row.get("point") != point:
-                continue
-            if since is not None:
-                t = row.get("time")
-                try:
-                    if t is None or parse_time_s(t, 0.0) < since:
-                        continue
-                except ValueError:
-                    continue
-            out.append(row)
-            if len(out) >= limit:
-                break
-        return json_response({"api": API_VERSION, "source": "alarm events committed since the daemon started "
-                              f"(at most {HISTORY_CAPACITY} kept in memory)", "events": out})
+        view = getattr(self.daemon, "alarm_view", None)
+        read = getattr(view, "history", None)
+        if not callable(read):
+            return json_response({"api": API_VERSION, "available": False, "events": [],
+                                  "source": "no alarm layer ([alarms] enabled = false): no alarm history"})
+        try:
+            rows = await asyncio.to_thread(read, point, since_s=since, limit=limit)
+        except ValueError as exc:
+            return problem(400, str(exc))
+        return json_response({"api": API_VERSION, "available": True,
+                              "source": "the alarm layer's durable history (newest first)",
+                              "events": [transition_row(t) for t in rows]})

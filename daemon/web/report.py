@@ -129,6 +129,7 @@ def build_report(*, title: str, meta: Mapping[str, Any], indicators: Iterable[tu
   <article class="panel" id="panel-trend"{hidden["trend"]}>
     <header><h3>Trend</h3><div class="controls"><span id="tr-src" class="hint"></span></div></header>
     <div class="readout" id="tr-read">&nbsp;</div><div class="chart" id="tr-chart"></div>
+    <table class="markers" id="tr-cross" hidden><thead><tr><th>limit</th><th>level</th><th>status</th><th>projected</th><th>interval</th></tr></thead><tbody></tbody></table>
   </article>
   <p class="note">{html.escape(ADVISORY)}</p>
 </div>

@@ -3,8 +3,8 @@
 Reads one series back through the trend layer's read-only views (``TrendWatch.history`` opens the history
 database read-only; called in a worker thread) and adds the latest projection document it evaluated for it: the
 fitted growth curve sampled up to the furthest projected limit crossing (at most :data:`PROJECTION_HORIZON_DAYS`
-ahead), the limits with their projected dates and the advice.  ``None`` when there is no history for the series (the
-caller falls back to the recent values it holds).
+ahead) with its confidence band, the limits with their projected dates and the advice.  ``None`` when there is
+no history for the series (the caller falls back to the recent values it holds).
 """
 
 from __future__ import annotations
@@ -14,19 +14,49 @@ from collections.abc import Callable
 from typing import Any
 
 import numpy as np
+import numpy.typing as npt
 
 from edgevib.daemon.history import HistoryError
 
-__all__ = ["PROJECTION_HORIZON_DAYS", "PROJECTION_POINTS", "history_trend", "projection_curve"]
+__all__ = ["PROJECTION_HORIZON_DAYS", "PROJECTION_POINTS", "confidence_band", "history_trend", "projection_curve"]
 
 PROJECTION_HORIZON_DAYS = 365.0
 PROJECTION_POINTS = 60
 DAY_S = 86400.0
+FloatArray = npt.NDArray[np.float64]
+
+
+def confidence_band(fit: dict[str, Any], t_s: npt.ArrayLike, coverage: float | None,
+                    ) -> tuple[FloatArray, FloatArray] | None:
+    """Pointwise confidence band ``(low, high)`` of a trend document's fitted mean curve at times ``t_s``, in the
+    indicator's unit: ``z ± q·σ·√(v00 + 2x·v01 + x²·v11)`` on the fitted scale (x = t − t_ref; q Student's t at
+    ``coverage`` with the fit's degrees of freedom; exponentiated for the exponential model).  This is the
+    statistic whose crossings of a limit are Fieller's interval (:func:`edgevib.pipelines.trend.crossing_interval`),
+    so the band meets each limit at its ``eta_low``/``eta_high``.  None when the fit carries no covariance."""
+    cov, sigma, dof = fit.get("cov"), fit.get("sigma"), fit.get("dof")
+    if not cov or len(cov) != 3 or sigma is None or not dof or coverage is None or not 0 < coverage < 1:
+        return None
+    from scipy import stats
+
+    q = float(stats.t.ppf(0.5 + coverage / 2.0, dof))
+    v00, v01, v11 = (float(c) for c in cov)
+    x = np.asarray(t_s, dtype=np.float64) - fit["t_ref_s"]
+    se = float(sigma) * np.sqrt(np.maximum(v00 + 2.0 * x * v01 + x * x * v11, 0.0))
+    z = fit["intercept"] + fit["slope"] * x
+    return _scale(fit, z - q * se), _scale(fit, z + q * se)
+
+
+def _scale(fit: dict[str, Any], z: FloatArray) -> FloatArray:
+    if fit["model"] != "exponential":
+        return z
+    with np.errstate(over="ignore"):
+        return np.exp(np.minimum(z, 700.0))
 
 
 def projection_curve(doc: dict[str, Any]) -> dict[str, Any] | None:
-    """The fitted curve of a trend document from now to the furthest projected crossing (or 30 days), or None
-    without a rising fit.  ``linear``: ``a + b·(t − t_ref)``; ``exponential``: ``exp(a + b·(t − t_ref))``."""
+    """The fitted curve of a trend document from its onset (or now) to the furthest projected crossing (or 30
+    days), with its confidence band (``low``/``high``, at the document's ``coverage``), or None without a rising
+    fit.  ``linear``: ``a + b·(t − t_ref)``; ``exponential``: ``exp(a + b·(t − t_ref))``."""
     fit = doc.get("fit")
     now = doc.get("t_s")
     if not fit or not doc.get("rising") or now is None:
@@ -34,11 +64,14 @@ def projection_curve(doc: dict[str, Any]) -> dict[str, Any] | None:
     etas = [lim.get("eta_high_s") or lim.get("eta_s") for lim in doc.get("limits", [])]
     etas = [e for e in etas if e is not None and math.isfinite(e) and e > 0]
     horizon = min(max(etas, default=30 * DAY_S) * 1.1, PROJECTION_HORIZON_DAYS * DAY_S)
-    t = now + np.linspace(0.0, horizon, PROJECTION_POINTS)
-    z = fit["intercept"] + fit["slope"] * (t - fit["t_ref_s"])
-    with np.errstate(over="ignore"):
-        y = np.exp(np.minimum(z, 700.0)) if fit["model"] == "exponential" else z
-    return {"model": fit["model"], "t_s": t.tolist(), "values": y,
+    onset = fit.get("onset_s")
+    start = onset if onset is not None and math.isfinite(onset) and onset < now else now
+    t = np.linspace(start, now + horizon, PROJECTION_POINTS)
+    band = confidence_band(fit, t, doc.get("coverage"))
+    return {"model": fit["model"], "t_s": t.tolist(),
+            "values": _scale(fit, fit["intercept"] + fit["slope"] * (t - fit["t_ref_s"])),
+            "low": None if band is None else band[0], "high": None if band is None else band[1],
+            "coverage": doc.get("coverage") if band is not None else None, "now_s": now,
             "limits": doc.get("limits", []), "advice": doc.get("advice"), "advice_text": doc.get("advice_text"),
             "status": doc.get("status"), "need": doc.get("need")}
 

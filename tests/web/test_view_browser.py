@@ -153,6 +153,9 @@ def test_spectrum_marks_the_1x_peak_of_the_imbalanced_pump(browser: Any, demo: D
         pytest.fail("the page and the API never showed the same frame")
     # the imbalanced pump: 1× dominates (ISO zone D; simulator: 6 mm/s imbalance)
     assert value > 4.5
+    # the trend shows the alarm layer's set points and every ISO 20816-3 zone boundary of the pump
+    wait_until(page, lambda: "zone C/D" in (page.get_attribute("#panel-trend", "data-lines") or ""), "the trend's limits")
+    assert page.get_attribute("#panel-trend", "data-lines") == "alert|danger|zone A/B|zone B/C|zone C/D"
     # linear/log and acceleration/velocity switches redraw without errors; the cursor reads frequency and order
     page.select_option("#sp-scale", "log")
     page.select_option("#sp-qty", "acceleration_g")
@@ -304,7 +307,11 @@ def test_replay_report_with_trend_and_projection_opens_in_the_browser(browser: A
     page.wait_for_selector("body[data-rendered]", timeout=20000)
     assert page.is_visible("#panel-trend") and page.locator("#tr-chart canvas").count() == 1
     legend = page.inner_text("#tr-chart")
-    assert "danger" in legend and "projection" in legend  # the zone D boundary and the fitted growth
+    # every ISO 20816-3 zone boundary (group 2 rigid) and the fitted growth with its confidence band
+    assert "zone C/D" in legend and "projection" in legend and "interval" in legend
+    assert page.get_attribute("#panel-trend", "data-lines") == "zone A/B|zone B/C|zone C/D"
+    assert page.get_attribute("#panel-trend", "data-projection") == "band"
+    assert page.is_visible("#tr-cross")  # the projected crossings with their intervals
     assert int(page.get_attribute("#panel-trend", "data-count") or 0) > 12
     assert page.locator("#sp-chart canvas").count() == 1 and page.locator("#wf-chart canvas").count() == 1
     page.close()

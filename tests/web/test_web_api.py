@@ -166,6 +166,12 @@ async def test_trend_holds_recent_values_and_limits(demo: Running) -> None:
     assert code == 200 and doc["unit"] == "mm/s" and len(doc["values"]) >= 1
     assert doc["limits"]["alert"] == pytest.approx(2.8) and doc["limits"]["danger"] == pytest.approx(4.5)
     assert all(t.endswith("Z") for t in doc["time"])
+    # every limit line of the series: the alarm layer's set points and the ISO 20816-3 zone boundaries of the
+    # pump (group 2, rigid: 1.4 / 2.8 / 4.5 mm/s; ISO 10816-3:2009 Annex A tables, FIELD_NOTES §1)
+    lines = {(ln["kind"], ln["label"]): ln["value"] for ln in doc["limit_lines"]}
+    assert lines[("alarm", "alert")] == pytest.approx(2.8) and lines[("alarm", "danger")] == pytest.approx(4.5)
+    assert [lines[("iso", k)] for k in ("A/B", "B/C", "C/D")] == [1.4, 2.8, 4.5]
+    assert all(ln["unit"] == "mm/s" for ln in doc["limit_lines"])
     code, doc = await demo.get("/api/v1/points/P-101-DE-H/trend?indicator=order_velocity_rms_mm_s.1x")
     assert code == 200 and doc["limits"]["indicator"] == "imbalance_1x_mm_s"
 
@@ -284,3 +290,74 @@ def test_projection_curve_follows_the_fitted_model() -> None:
     c = projection_curve(exp_fit)
     assert c is not None and c["values"][-1] == pytest.approx(1.5 * math.exp(1e-6 * (c["t_s"][-1] - now)))
     assert projection_curve({**lin, "rising": False}) is None
+
+
+@dataclasses.dataclass(frozen=True)
+class _Transition:
+    """The fields of the alarm layer's history record the view reads (daemon/interfaces.py AlarmTransition)."""
+
+    kind: str
+    t_s: float
+    point: str
+    indicator: str
+    unit: str
+    transition: str
+    from_state: str | None
+    state: str
+    value: float | None
+    limit: float | None
+    by: str | None
+    at_s: float | None
+    reason: str | None
+
+
+class _HistoryView:
+    """The daemon's AlarmView with a recorded history (the view reads only through ``history``)."""
+
+    def __init__(self, real: Any, rows: list[_Transition]) -> None:
+        self.real, self.rows = real, rows
+        self.calls: list[tuple[str | None, float | None, int]] = []
+
+    def state_text(self, point_id: str) -> str | None:
+        return None if self.real is None else self.real.state_text(point_id)
+
+    def history(self, point: str | None = None, *, since_s: float | None = None, limit: int = 200) -> list[Any]:
+        self.calls.append((point, since_s, limit))
+        if not 1 <= limit <= 1000:
+            raise ValueError(f"limit {limit} must be between 1 and 1000")
+        return [r for r in self.rows if point is None or r.point == point][:limit]
+
+
+async def test_alarm_history_is_the_alarm_layers_durable_history(demo: Running) -> None:
+    rows = [
+        _Transition("alarm", 1_800_000_600.0, "P-101-DE-H", "velocity_rms_mm_s", "mm/s", "shelved", "danger", "danger",
+                    6.1, 4.5, "token:kim", 1_800_000_610.5, "pump on standby until the coupling is aligned"),
+        _Transition("alarm", 1_800_000_300.0, "P-101-DE-H", "velocity_rms_mm_s", "mm/s", "acknowledged", "danger",
+                    "danger", 6.0, 4.5, "token:kim", 1_800_000_301.0, None),
+        _Transition("alarm", 1_800_000_000.0, "P-101-DE-H", "velocity_rms_mm_s", "mm/s", "raised", "normal", "danger",
+                    5.9, 4.5, None, None, None),
+        _Transition("sensor", 1_799_999_000.0, "F-201-NDE-V", "flatline", "", "raised", "normal", "sensor-fault",
+                    None, None, None, None, None),
+    ]
+    stub = _HistoryView(demo.daemon.alarm_view, rows)
+    real = demo.daemon.alarm_view
+    demo.daemon.alarm_view = stub
+    try:
+        code, doc = await demo.get("/api/v1/alarms/history?point=P-101-DE-H&limit=2&since=1799999999")
+        assert code == 200 and doc["available"] is True and "durable" in doc["source"]
+        assert stub.calls == [("P-101-DE-H", 1799999999.0, 2)]  # the query goes to the store, bounded
+        assert [e["transition"] for e in doc["events"]] == ["shelved", "acknowledged"]  # newest first, as kept
+        shelved = doc["events"][0]
+        assert shelved["value"] == 6.1 and shelved["limit"] == 4.5 and shelved["state"] == "danger"
+        assert shelved["by"] == "token:kim" and shelved["at"] == "2027-01-15T08:10:10.500Z"
+        assert shelved["time"] == "2027-01-15T08:10:00.000Z"
+        assert shelved["reason"] == "pump on standby until the coupling is aligned"
+        code, doc = await demo.get("/api/v1/alarms/history")
+        assert code == 200 and len(doc["events"]) == 4 and stub.calls[-1] == (None, None, 200)
+        for bad in ("limit=0", "limit=1001", "since=yesterday"):
+            code, err = await demo.get(f"/api/v1/alarms/history?{bad}")
+            assert code == 400 and err["error"], bad
+        code, err = await demo.get("/api/v1/alarms/history?point=X-999")
+        assert code == 404 and "X-999" in err["error"]
+    finally:
+        demo.daemon.alarm_view = real

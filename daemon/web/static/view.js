@@ -5,7 +5,9 @@
 (function () {
   const API = "/api/v1";
   const COLORS = { line: "#1f2a2e", accent: "#136f63", order: "#136f63", defect: "#a4262c", side: "#b86e00",
-                   alert: "#b86e00", danger: "#a4262c", proj: "#6b4fa0", grid: "#e6e0d2" };
+                   alert: "#b86e00", danger: "#a4262c", proj: "#6b4fa0", projBand: "#b9a8d6",
+                   projFill: "rgba(107, 79, 160, 0.16)", iso: "#5d7378", user: "#2f5d8a",
+                   window: "rgba(107, 79, 160, 0.55)", grid: "#e6e0d2" };
   const state = { points: [], selected: null, session: null, charts: {}, spectrum: null, envelope: null,
                   waveform: null, trend: null, refreshTimer: null, listTimer: null, lastRefresh: 0, report: null };
 
@@ -195,41 +197,101 @@
     }, [doc.t_s, doc.acceleration_g]);
   }
 
+  // the limit lines of a trend document: the API's limit_lines, or the alert/danger pair of older documents
+  function trendLines(doc) {
+    if (Array.isArray(doc.limit_lines)) return doc.limit_lines;
+    const lim = doc.limits || {}, out = [];
+    for (const k of ["alert", "danger"]) if (lim[k] !== null && lim[k] !== undefined)
+      out.push({ label: k, value: lim[k], unit: doc.unit, kind: "alarm" });
+    return out;
+  }
+  function lineStyle(l) {
+    if (l.kind === "alarm") return { stroke: l.label === "danger" ? COLORS.danger : COLORS.alert, dash: [6, 4], width: 1.2 };
+    if (l.kind === "iso") return { stroke: COLORS.iso, dash: [1, 3], width: 1.2 };
+    return { stroke: COLORS.user, dash: [8, 3, 2, 3], width: 1.2 };
+  }
+  function lineLabel(l) { return l.kind === "iso" ? `zone ${l.label}` : l.kind === "user" ? "user limit" : l.label; }
+
+  // one sorted time axis for the measured values and the projection; each series null where it has no value
+  function mergeTimes(t, pt) {
+    const xs = Array.from(new Set(t.concat(pt))).sort((a, b) => a - b);
+    const at = new Map(xs.map((x, i) => [x, i]));
+    const spread = (times, vals) => { const out = new Array(xs.length).fill(null);
+      times.forEach((x, i) => { out[at.get(x)] = vals[i]; }); return out; };
+    return { xs, spread };
+  }
+
   function trendChart(doc) {
-    const t = doc.t_s, v = doc.values;
-    const series = [{}, { label: doc.indicator, stroke: COLORS.line, width: 1.5, points: { show: t.length < 60 } }];
-    const data = [t, v];
-    const lim = doc.limits || {};
-    if (lim.alert !== null && lim.alert !== undefined) {
-      series.push({ label: "alert", stroke: COLORS.alert, dash: [6, 4], width: 1, points: { show: false } });
-      data.push(t.map(() => lim.alert));
+    const t = doc.t_s, v = doc.values, unit = doc.unit || "";
+    const proj = doc.projection && doc.projection.t_s && doc.projection.values ? doc.projection : null;
+    const { xs, spread } = mergeTimes(t, proj ? proj.t_s : []);
+    const series = [{}, { label: doc.indicator, stroke: COLORS.line, width: 1.5, points: { show: t.length < 60 },
+                          spanGaps: false }];
+    const data = [xs, spread(t, v)];
+    const lines = trendLines(doc);
+    for (const l of lines) {
+      series.push(Object.assign({ label: lineLabel(l), points: { show: false } }, lineStyle(l)));
+      data.push(xs.map(() => l.value));
     }
-    if (lim.danger !== null && lim.danger !== undefined) {
-      series.push({ label: "danger", stroke: COLORS.danger, dash: [6, 4], width: 1, points: { show: false } });
-      data.push(t.map(() => lim.danger));
-    }
-    const proj = doc.projection;
-    if (proj && proj.t_s && proj.values) {
-      // projected values on their own times: merge the axes (uPlot needs one x)
-      const xs = t.concat(proj.t_s);
-      const pad = n => new Array(n).fill(null);
-      for (let k = 1; k < data.length; k++) data[k] = data[k].concat(k === 1 ? pad(proj.t_s.length) : pad(proj.t_s.length).map(() => data[k][0]));
+    const bands = [];
+    if (proj) {
       series.push({ label: "projection", stroke: COLORS.proj, dash: [2, 3], width: 1.5, points: { show: false } });
-      data.push(pad(t.length).concat(proj.values));
-      data[0] = xs;
+      data.push(spread(proj.t_s, proj.values));
+      if (proj.low && proj.high) {
+        const pct = proj.coverage ? `${Math.round(proj.coverage * 100)} % ` : "";
+        series.push({ label: `${pct}interval, upper`, stroke: COLORS.projBand, width: 1, points: { show: false } });
+        data.push(spread(proj.t_s, proj.high));
+        series.push({ label: `${pct}interval, lower`, stroke: COLORS.projBand, width: 1, points: { show: false } });
+        data.push(spread(proj.t_s, proj.low));
+        bands.push({ series: [data.length - 2, data.length - 1], fill: COLORS.projFill });
+      }
+    }
+    // the projected crossing window of each limit (from the interval's ends), drawn on the limit's level
+    const windows = [];
+    if (proj && proj.now_s && Array.isArray(proj.limits)) {
+      for (const l of proj.limits) if (isFinite(l.eta_low_s) && l.eta_low_s !== null && isFinite(l.eta_high_s) && l.eta_high_s !== null)
+        windows.push({ y: l.value, x0: proj.now_s + l.eta_low_s, x1: proj.now_s + l.eta_high_s, label: l.label });
     }
     const advice = doc.trend && doc.trend.advice_text ? ` — ${doc.trend.advice_text}` : "";
     $("tr-src").textContent = (doc.source || "") + advice;
-    $("panel-trend").setAttribute("data-count", String(t.length));
+    const panel = $("panel-trend");
+    panel.setAttribute("data-count", String(t.length));
+    panel.setAttribute("data-lines", lines.map(lineLabel).join("|"));
+    panel.setAttribute("data-projection", proj ? (proj.low ? "band" : "curve") : "none");
+    const crossTable = $("tr-cross");
+    if (crossTable) {
+      const body = crossTable.tBodies[0];
+      body.textContent = "";
+      const lims = proj && Array.isArray(proj.limits) ? proj.limits : [];
+      crossTable.hidden = lims.length === 0;
+      for (const l of lims) body.append(el("tr", { "data-limit": l.label },
+        el("td", { text: l.label }), el("td", { text: `${num(l.value, 4)} ${unit}` }), el("td", { text: l.status || "" }),
+        el("td", { text: l.date ? l.date.slice(0, 10) : "n/a" }),
+        el("td", { text: l.date_low && l.date_high ? `${l.date_low.slice(0, 10)} … ${l.date_high.slice(0, 10)}` : "n/a" })));
+    }
     makeChart("trend", $("tr-chart"), {
       scales: { x: { time: true } },
-      axes: [{ grid: { stroke: COLORS.grid } }, { label: doc.unit, grid: { stroke: COLORS.grid }, size: 60 }],
-      series, legend: { show: true }, cursor: { drag: { x: true, y: false } },
-      hooks: { setCursor: [u => {
-        const i = u.cursor.idx;
-        if (i === null || i === undefined) return;
-        $("tr-read").textContent = `${new Date(u.data[0][i] * 1000).toISOString()}   ${num(u.data[1][i], 4)} ${doc.unit}`;
-      }] },
+      axes: [{ grid: { stroke: COLORS.grid } }, { label: unit, grid: { stroke: COLORS.grid }, size: 60 }],
+      series, bands, legend: { show: true }, cursor: { drag: { x: true, y: false } },
+      hooks: {
+        draw: [u => {
+          const ctx = u.ctx, { left, top, width, height } = u.bbox;
+          ctx.save(); ctx.beginPath(); ctx.rect(left, top, width, height); ctx.clip();
+          ctx.lineWidth = 5 * devicePixelRatio; ctx.strokeStyle = COLORS.window;
+          for (const w of windows) {
+            const y = u.valToPos(w.y, "y", true);
+            ctx.beginPath(); ctx.moveTo(u.valToPos(w.x0, "x", true), y); ctx.lineTo(u.valToPos(w.x1, "x", true), y); ctx.stroke();
+          }
+          ctx.restore();
+        }],
+        setCursor: [u => {
+          const i = u.cursor.idx;
+          if (i === null || i === undefined) return;
+          const val = u.data[1][i] !== null ? u.data[1][i] : (proj ? u.data[1 + lines.length + 1][i] : null);
+          const what = u.data[1][i] !== null ? "" : " (projected)";
+          $("tr-read").textContent = `${new Date(u.data[0][i] * 1000).toISOString()}   ${num(val, 4)} ${unit}${what}`;
+        }],
+      },
     }, data);
   }
 
@@ -304,21 +366,32 @@
     $("detail").setAttribute("data-loaded", String(state.lastRefresh));
   }
 
+  // one transition of the alarm layer's durable history, with why it happened
+  function historyRow(e) {
+    const sev = e.state === "danger" ? "sev-text-danger" : e.state === "alert" ? "sev-text-alert" :
+      e.kind === "sensor" || e.kind === "source" ? "sev-text-sensor" : "";
+    const what = e.kind === "sensor" ? `sensor: ${e.indicator}` : e.kind === "source" ? `source: ${e.indicator}` : e.indicator;
+    const change = `${e.transition}` + (e.from_state && e.from_state !== e.state ? `: ${e.from_state} → ${e.state}` : e.state ? `: ${e.state}` : "") +
+      (e.alarm_state ? ` (${e.alarm_state})` : "");
+    const unit = e.unit && e.unit !== "1" ? ` ${e.unit}` : "";
+    const value = (e.value === null || e.value === undefined ? "" : `${num(e.value, 4)}${unit}`) +
+      (e.limit === null || e.limit === undefined ? "" : ` / limit ${num(e.limit, 4)}${unit}`);
+    const who = e.by ? `${e.by}${e.at ? " at " + e.at : ""}` : "";
+    const why = [e.reason, e.machine_state && e.machine_state !== "running" ? `machine ${e.machine_state}` : "",
+                 e.stale ? `no good data: ${e.stale}` : "", e.capture ? `waveform ${e.capture}` : ""].filter(Boolean).join("; ");
+    return el("tr", { class: sev, "data-kind": e.kind || "", "data-transition": e.transition || "", "data-state": e.state || "" },
+      el("td", { text: e.time || "" }), el("td", { text: what || "" }), el("td", { text: change }),
+      el("td", { text: value }), el("td", { text: who }), el("td", { text: why }));
+  }
+
   async function loadHistory() {
     const id = state.selected;
     const doc = await getJSON(`${API}/alarms/history?point=${encodeURIComponent(id)}&limit=50`);
     const body = $("history").tBodies[0];
     body.textContent = "";
-    for (const e of doc.events) {
-      const sev = e.state === "danger" ? "sev-text-danger" : e.state === "alert" ? "sev-text-alert" :
-        (e.type || "").includes("sensor") ? "sev-text-sensor" : "";
-      const what = e.indicator || (e.fault ? `sensor: ${e.fault}` : e.type);
-      const change = e.transition ? `${e.transition}${e.state ? " → " + e.state : ""}` : "";
-      const value = e.value === null || e.value === undefined ? "" : `${num(e.value, 4)}${e.limit !== null && e.limit !== undefined ? " / " + num(e.limit, 4) : ""} ${e.unit || ""}`;
-      body.append(el("tr", { class: sev }, el("td", { text: e.time || "" }), el("td", { text: what || "" }),
-        el("td", { text: change }), el("td", { text: value }), el("td", { text: e.by || "" }),
-        el("td", { text: [e.reason, e.advice || e.detail].filter(Boolean).join(" — ") })));
-    }
+    $("history-src").textContent = doc.source || "";
+    for (const e of doc.events) body.append(historyRow(e));
+    $("panel-history").setAttribute("data-count", String(doc.events.length));
   }
 
   function select(id) {
