@@ -765,8 +765,9 @@ class ViewService:
         view = getattr(self.daemon, "alarm_view", None)
         read = getattr(view, "history", None)
         if not callable(read):
+            why = "no alarm layer ([alarms] enabled = false)" if view is None else "the alarm layer keeps none"
             return json_response({"api": API_VERSION, "available": False, "events": [],
-                                  "source": "no alarm layer ([alarms] enabled = false): no alarm history"})
+                                  "source": f"no alarm history: {why}"})
         try:
             rows = await asyncio.to_thread(read, point, since_s=since, limit=limit)
         except ValueError as exc:

@@ -142,6 +142,8 @@ async def test_envelope_marks_bpfo_on_the_failing_bearing(demo: Running) -> None
     if doc["frame_end"] == _rfc(r.t_end_ns):
         assert doc["detected"] == list(r.indicators.envelope_detected)
     assert fams["bpfi"]["verdict"] == "not detected"
+    # the failing bearing's outer-race defect is detected (simulated truth: an outer-race fault on B-301)
+    assert fams["bpfo"]["verdict"] == "detected" and doc["detected"] == ["bpfo"]
     code, healthy = await demo.get("/api/v1/points/M-101-DE-H/envelope")
     assert code == 200 and all(f["verdict"] == "not detected" for f in healthy["families"])
     code, mems = await demo.get("/api/v1/points/F-201-NDE-V/envelope")
@@ -220,6 +222,8 @@ async def test_actions_are_off_by_default(demo: Running) -> None:
 
 async def test_actions_need_credentials_and_csrf(demo_with_actions: Running) -> None:
     r = demo_with_actions
+    events: list[dict[str, Any]] = []  # what the alarm layer commits (its durable outbox and history)
+    r.daemon.alarm_view.listeners.append(events.append)  # type: ignore[union-attr]
     code, doc = await r.post("/api/v1/points/P-101-DE-H/ack")
     assert code == 401  # nobody
     code, doc = await r.post("/api/v1/session", {"token": "not-the-token-at-all"})
@@ -244,8 +248,13 @@ async def test_actions_need_credentials_and_csrf(demo_with_actions: Running) -> 
     code, alarms = await r.get("/api/v1/alarms?point=P-101-DE-H")
     assert alarms["alarms"] and all(a["shelved_until_s"] is not None for a in alarms["alarms"]), alarms
     assert all(a["shelve_reason"] == "impeller balancing booked" for a in alarms["alarms"])
-    code, hist = await r.get("/api/v1/alarms/history?point=P-101-DE-H")
-    assert any(e["by"] == "token:kim" for e in hist["events"]), hist
+    # every action is recorded with who did it, and the shelve with its reason
+    await _wait(lambda: any((e["data"].get("transition"), e["data"].get("by")) == ("shelved", "token:kim")
+                            for e in events), 20)
+    shelved = [e["data"] for e in events if e["data"].get("transition") == "shelved"]
+    assert all(d["by"] == "token:kim" and d["reason"] == "impeller balancing booked" for d in shelved), shelved
+    acked = [e["data"] for e in events if e["data"].get("transition") == "acknowledged"]
+    assert acked and all(d["by"] == "token:kim" for d in acked), acked
 
 
 def test_actions_config_needs_an_authentication_means(tmp_path: Path) -> None:
