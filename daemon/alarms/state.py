@@ -9,8 +9,10 @@ from __future__ import annotations
 
 import json
 import math
+import operator
 import sqlite3
 import time
+from collections.abc import Callable
 from dataclasses import asdict, dataclass, fields, replace
 from typing import Any
 
@@ -62,13 +64,47 @@ class SensorState:
     relapses: int = 0  # re-raised soon after clearing: an intermittent fault needs longer to re-arm
 
 
+_ENCODERS: dict[type, Callable[[Any], dict[str, Any]]] = {}
+
+
+def _as_dict(obj: Any) -> dict[str, Any]:
+    """``dataclasses.asdict`` for the state records here (fields of plain values or nested dataclasses), several
+    times faster: the state of every limit a frame touches is encoded on each commit."""
+    enc = _ENCODERS.get(type(obj))
+    if enc is None:
+        enc = _ENCODERS[type(obj)] = _encoder(type(obj))
+    return enc(obj)
+
+
+_PLAIN = frozenset({int, float, str, bool, type(None)})
+
+
+def _encoder(cls: type) -> Callable[[Any], dict[str, Any]]:
+    names = tuple(f.name for f in fields(cls))
+    get = operator.attrgetter(*names)
+
+    def encode(obj: Any) -> dict[str, Any]:
+        d = dict(zip(names, get(obj) if len(names) > 1 else (get(obj),), strict=True))
+        for name, v in d.items():
+            t = type(v)
+            if t in _PLAIN:
+                continue
+            if hasattr(t, "__dataclass_fields__"):
+                d[name] = _as_dict(v)
+            else:  # containers are copied as asdict copies them
+                return asdict(obj)
+        return d
+
+    return encode
+
+
 def _dc_from(cls: Any, d: dict[str, Any]) -> Any:
     names = {f.name for f in fields(cls)}
     return cls(**{k: v for k, v in d.items() if k in names})
 
 
 def encode_alarm(s: AlarmState) -> str:
-    return json.dumps(asdict(s), separators=(",", ":"), allow_nan=False)
+    return json.dumps(_as_dict(s), separators=(",", ":"), allow_nan=False)
 
 
 def decode_alarm(body: str) -> AlarmState:
@@ -130,10 +166,10 @@ class StateStore:
                              "(?,?,?,?)", [(p, i, encode_alarm(s), now) for (p, i), s in alarms.items()])
         if sensors:
             conn.executemany("INSERT OR REPLACE INTO sensor_state (point, body, updated_ns) VALUES (?,?,?)",
-                             [(p, json.dumps(asdict(s), allow_nan=False), now) for p, s in sensors.items()])
+                             [(p, json.dumps(_as_dict(s), allow_nan=False), now) for p, s in sensors.items()])
         if baselines:
             conn.executemany("INSERT OR REPLACE INTO baselines (point, indicator, body, updated_ns) VALUES "
-                             "(?,?,?,?)", [(p, i, json.dumps(asdict(b), allow_nan=False), now)
+                             "(?,?,?,?)", [(p, i, json.dumps(_as_dict(b), allow_nan=False), now)
                                            for (p, i), b in baselines.items()])
 
     def forget_baselines(self, conn: sqlite3.Connection, point: str) -> None:

@@ -78,6 +78,18 @@ def test_state_written_by_an_older_version_is_read(tmp_path: Path) -> None:
         decode_alarm("[1]")
 
 
+def test_state_bodies_are_the_dataclasses_asdict_json() -> None:
+    from dataclasses import asdict
+
+    from edgevib.daemon.alarms.state import Baseline, SensorState, _as_dict, encode_alarm
+
+    s = AlarmState(alert=LevelTrack(active=True, run_frames=3, run_start_s=1.5), latched=2, last_value=4.25,
+                   suppressed="machine stopped")
+    assert json.loads(encode_alarm(s)) == asdict(s) and decode_alarm(encode_alarm(s)) == s
+    for rec in (SensorState(fault="flatline", detail="d", since_s=3.0, relapses=1), Baseline(n=4, mean=1.5, m2=0.2)):
+        assert _as_dict(rec) == asdict(rec)
+
+
 def test_a_newer_schema_is_refused_not_overwritten(tmp_path: Path) -> None:
     Database(tmp_path / "a.sqlite").close()
     c = sqlite3.connect(tmp_path / "a.sqlite")
