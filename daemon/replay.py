@@ -82,12 +82,27 @@ _NAME_TIMES = (
 # --------------------------------------------------------------------------------------------- files and times
 
 
-def snapshot_files(source: str) -> list[Path]:
+def snapshot_files(source: str, notes: list[str] | None = None) -> list[Path]:
     """The snapshot files of a directory (its files with a known suffix) or a glob pattern, in natural name
-    order (``acc_9`` before ``acc_10``)."""
+    order (``acc_9`` before ``acc_10``).
+
+    A directory that holds several series of numbered files (``acc_00001.csv`` … beside ``temp_00001.csv`` …:
+    names equal but for their numbers) is one recording with side channels: the series with the most files is
+    replayed and the others are named in ``notes`` (a glob pattern picks another)."""
     p = Path(source)
     if p.is_dir():
         files = [f for f in p.iterdir() if f.is_file() and f.suffix.lower() in FORMATS]
+        families: dict[str, list[Path]] = {}
+        for f in files:
+            families.setdefault(_family(f.name), []).append(f)
+        if len(families) > 1:
+            ranked = sorted(families.items(), key=lambda kv: (-len(kv[1]), kv[0]))
+            if len(ranked[0][1]) > max(1, len(ranked[1][1])):
+                files = ranked[0][1]
+                if notes is not None:
+                    others = ", ".join(f"{len(v)} {k}" for k, v in ranked[1:])
+                    notes.append(f"{source} holds several series of files; replaying the {len(files)} "
+                                 f"{ranked[0][0]} files, leaving out {others} (give a glob pattern to choose)")
     elif any(c in source for c in "*?["):
         files = [Path(f) for f in glob.glob(source) if Path(f).is_file()]
     elif p.exists():
@@ -98,6 +113,11 @@ def snapshot_files(source: str) -> list[Path]:
     if not files:
         raise InputError(f"{source}: no snapshot files ({', '.join(FORMATS)})")
     return sorted(files, key=_natural_key)
+
+
+def _family(name: str) -> str:
+    """A file name with every run of digits written ``N`` (``acc_00017.csv`` → ``acc_N.csv``)."""
+    return re.sub(r"\d+", "N", name.lower())
 
 
 def _natural_key(p: Path) -> list[Any]:
@@ -571,7 +591,10 @@ def run_replay(args: argparse.Namespace) -> int:
 
 def _run(args: argparse.Namespace) -> int:
     o = _options(args)
-    files = snapshot_files(args.source)
+    listing: list[str] = []
+    files = snapshot_files(args.source, listing)
+    for note in listing:
+        print(f"edgevib replay: note: {note}", file=sys.stderr)
     interval = None if args.interval is None else _number("--interval", args.interval)
     times, how = snapshot_times(files, time_column=args.time_column, interval_s=interval,
                                 from_name=args.time_from_name, mtime=args.mtime, start=args.start)

@@ -129,3 +129,85 @@ def test_bad_input_is_one_line_and_skipped_files_are_counted(tmp_path: Path,
     assert "skipped snap_020.npy: snap_020.npy: 1024 of 1024 samples are NaN or infinite" in captured.err
     assert main(["trend", "--history", str(tmp_path / "missing.sqlite")]) == 2
     assert "no history database" in capsys.readouterr().err
+
+
+def test_side_channel_files_are_left_out_with_a_note(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # A PRONOSTIA recording directory holds acc_NNNNN.csv vibration snapshots and, for most bearings,
+    # temp_NNNNN.csv temperature files (PHM 2012 challenge documentation, datasets README: the files named by
+    # what they hold): the vibration series (the larger one) is replayed, the temperature files are named.
+    files = sorted(FEMTO.glob("acc_*.csv"))[:6]
+    for f in files:
+        (tmp_path / f.name).write_bytes(f.read_bytes())
+    for k in (1, 2):  # hour, minute, second, tenth of a second, temperature (°C): not a vibration snapshot
+        (tmp_path / f"temp_{k:05d}.csv").write_text("".join(f"8,47,{s},{d},45.1\n" for s in range(5, 11)
+                                                            for d in range(10)))
+    assert main(["replay", str(tmp_path), *FEMTO_ARGS, "--interval", "10", "--json"]) == 0
+    captured = capsys.readouterr()
+    rows = [json.loads(line) for line in captured.out.splitlines()]
+    assert [r["file"] for r in rows] == [f.name for f in files]
+    assert "replaying the 6 acc_N.csv files, leaving out 2 temp_N.csv" in captured.err
+    # a glob pattern chooses explicitly; files of unrelated names are all taken
+    assert main(["replay", str(tmp_path / "acc_0000*.csv"), *FEMTO_ARGS, "--interval", "10", "--json"]) == 0
+    assert [r["file"] for r in _lines(capsys)] == ["acc_00001.csv", "acc_00009.csv"]
+
+
+def _sine_snapshots(folder: Path, names: list[str], fs: float = 2560.0, n: int = 1024) -> None:
+    rng = np.random.default_rng(4)
+    t = np.arange(n) / fs
+    folder.mkdir(parents=True, exist_ok=True)
+    for k, name in enumerate(names):
+        x = (0.05 + 0.002 * k) * np.sin(2 * np.pi * 25.0 * t) + 0.01 * rng.standard_normal(n)
+        np.save(folder / name, x)
+
+
+def test_times_from_names_and_modification_times(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    import os
+
+    names = [f"P-7_2026120{d}T0{h}0000Z.npy" for d in (1, 2) for h in (0, 6)]
+    _sine_snapshots(tmp_path / "named", names)
+    assert main(["replay", str(tmp_path / "named"), "--fs", "2560", "--json"]) == 0
+    rows = _lines(capsys)
+    # RFC 3339 (the simulator's and edgevib's capture names): the date and time written in each name
+    assert [r["time"] for r in rows] == ["2026-12-01T00:00:00.000Z", "2026-12-01T06:00:00.000Z",
+                                         "2026-12-02T00:00:00.000Z", "2026-12-02T06:00:00.000Z"]
+    _sine_snapshots(tmp_path / "plain", ["b.npy", "a.npy", "c.npy"])
+    for k, name in enumerate(["b.npy", "a.npy", "c.npy"]):
+        os.utime(tmp_path / "plain" / name, (1_800_000_000 + 3600 * k, 1_800_000_000 + 3600 * k))
+    assert main(["replay", str(tmp_path / "plain"), "--fs", "2560", "--mtime", "--json"]) == 0
+    rows = _lines(capsys)
+    # modification times order the snapshots, whatever their names
+    assert [(r["file"], r["t_s"]) for r in rows] == [("b.npy", 1_800_000_000.0), ("a.npy", 1_800_003_600.0),
+                                                     ("c.npy", 1_800_007_200.0)]
+    assert main(["replay", str(tmp_path / "plain"), "--fs", "2560", "--time-from-name"]) == 2
+    assert "no date and time in the file name" in capsys.readouterr().err
+
+
+def test_analysis_options_as_analyze(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # --rpm and --bearing as in `edgevib analyze`: the shaft speed is the given one and the bearing families are
+    # searched; FEMTO bearing: 13 rolling elements of 3.5 mm on a 25.6 mm pitch (datasets README), 1800 r/min.
+    files = sorted(FEMTO.glob("acc_*.csv"))[-3:]
+    for f in files:
+        (tmp_path / f.name).write_bytes(f.read_bytes())
+    assert main(["replay", str(tmp_path), *FEMTO_ARGS, "--interval", "10", "--rpm", "1800", "--bearing",
+                 "13,3.5,25.6,0", "--json"]) == 0
+    rows = _lines(capsys)
+    assert all(r["indicators"]["shaft_hz"] == pytest.approx(30.0) for r in rows)
+    assert all(r["indicators"]["bearing_bpfi_g"] is not None for r in rows)
+    assert main(["replay", str(tmp_path), *FEMTO_ARGS, "--interval", "10", "--json"]) == 0
+    assert all(r["indicators"]["bearing_bpfi_g"] is None for r in _lines(capsys))  # no bearing given
+    assert main(["replay", str(tmp_path), *FEMTO_ARGS, "--bearing", "13,3.5"]) == 2
+    assert "--bearing '13,3.5' must be ELEMENTS,BALL_D,PITCH_D" in capsys.readouterr().err
+
+
+def test_progress_bar_on_a_terminal_only(tmp_path: Path, capsys: pytest.CaptureFixture[str],
+                                         monkeypatch: pytest.MonkeyPatch) -> None:
+    import sys
+
+    _sine_snapshots(tmp_path, [f"s_{k:03d}.npy" for k in range(20)])
+    assert main(["replay", str(tmp_path), "--fs", "2560", "--interval", "60", "--json"]) == 0
+    assert "[" not in capsys.readouterr().err  # not a terminal: no bar
+    monkeypatch.setattr(sys.stderr, "isatty", lambda: True)
+    assert main(["replay", str(tmp_path), "--fs", "2560", "--interval", "60", "--json"]) == 0
+    err = capsys.readouterr().err
+    last = err.split("\r")[-1]
+    assert last.startswith("replay     20/20 [" + "#" * 30 + "] 100.0 %")
