@@ -398,6 +398,23 @@ def _flat_loglik(y: FloatArray, positive: bool) -> float:
     return -0.5 * n * (math.log(2 * math.pi * max(rss, 1e-300) / n) + 1) - (float(np.sum(z)) if positive else 0.0)
 
 
+def _step_loglik(y: FloatArray, positive: bool, min_after: int) -> float:
+    """Best log-likelihood of "flat, a jump, flat again" (two levels, the change after any value but the first
+    two and with at least ``min_after`` values behind it), on the scale of the growth fits; -inf when the series
+    is too short for one."""
+    n = y.size
+    z = np.log(y) if positive else y
+    j = np.arange(2, n - min_after + 1)  # values before the change
+    if j.size == 0:
+        return -math.inf
+    c1, c2 = np.cumsum(z), np.cumsum(z * z)
+    s1, s2 = c1[j - 1], c2[j - 1]
+    r1, r2 = c1[-1] - s1, c2[-1] - s2
+    rss = (s2 - s1 * s1 / j) + (r2 - r1 * r1 / (n - j))
+    best = float(np.min(rss))
+    return -0.5 * n * (math.log(2 * math.pi * max(best, 1e-300) / n) + 1) - (float(np.sum(z)) if positive else 0.0)
+
+
 def _candidates(x: FloatArray, min_after: int, onset: bool) -> FloatArray:
     n = x.size
     last = n - min_after
@@ -409,7 +426,8 @@ def _candidates(x: FloatArray, min_after: int, onset: bool) -> FloatArray:
 
 def _select(x: FloatArray, y: FloatArray, positive: bool, min_after: int, onset: bool
             ) -> tuple[Model, float, float, float] | None:
-    """Best growth model and onset by likelihood, or ``None`` when "flat" wins by BIC.
+    """Best growth model and onset by likelihood, or ``None`` when "flat" or "a step between two flat levels" wins
+    by BIC (a level that jumped and stays is a step change, not growth: nothing to project).
 
     Returns (model, onset τ on the x axis, log-likelihood, Akaike weight against the other model)."""
     n = x.size
@@ -440,7 +458,8 @@ def _select(x: FloatArray, y: FloatArray, positive: bool, min_after: int, onset:
     k_growth = 3 if tau <= x[0] else 4
     bic_growth = -2 * ll_best + k_growth * math.log(n)
     bic_flat = -2 * _flat_loglik(y, positive) + 2 * math.log(n)
-    if bic_growth >= bic_flat:
+    bic_step = -2 * _step_loglik(y, positive, min_after) + 4 * math.log(n) if onset else math.inf
+    if bic_growth >= min(bic_flat, bic_step):
         return None
     other = [v[1] for m, v in best.items() if m != model]
     weight = 1.0 / (1.0 + math.exp(other[0] - ll_best)) if other else 1.0

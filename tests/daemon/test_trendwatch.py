@@ -248,3 +248,84 @@ async def test_only_running_frames_enter_the_rollups(tmp_path: Path) -> None:
         assert [p[0] for p in series.periods] == ["coasting", "stopped", "starting", "sensor-fault"]
     finally:
         await watch.stop()
+
+
+async def test_healthy_months_are_not_rising_and_the_trend_raises_no_alarm(tmp_path: Path) -> None:
+    # A healthy pump over five simulated months (8 % log-normal scatter, brief transients ×2.5, a three-day stop),
+    # evaluated every 5 days on a 90-day window: "not rising" in at least 95 % of evaluations and no advice;
+    # then a slow rise that stays below the alert level (ISO 20816-3 group 2 rigid B/C 2.8 mm/s, FIELD_NOTES §1):
+    # the trend projects the crossing and advises, the alarm layer raises nothing — the trend only advises.
+    cfg = _config(tmp_path / "state", trend={"evaluate_s": 3600.0, "min_span_h": 24.0, "window_days": 90.0})
+    layer = create_sink(cfg)
+    assert layer is not None
+    watch = create_trend_watch(cfg, layer, registry=CollectorRegistry())
+    assert watch is not None
+    events: list[dict[str, Any]] = []
+    layer.listeners.append(events.append)
+    await layer.start()
+    await watch.start()
+    try:
+        rng = np.random.default_rng(21)
+        days = np.arange(0.0, 150.0, 0.25)
+        v = 1.2 * np.exp(0.08 * rng.standard_normal(days.size))
+        v[rng.random(days.size) < 0.02] *= 2.5
+        v[(days >= 70) & (days < 73)] = 0.03  # standing
+        evaluations = quiet = 0
+        for d0 in range(0, 150, 5):
+            sel = np.flatnonzero((days >= d0) & (days < d0 + 5))
+            await layer.on_frames([_frame(T0 + days[i] * D, float(v[i]), int(i)) for i in sel])
+            await asyncio.to_thread(watch.evaluate_all)
+            doc = watch.latest[(POINT, "velocity_rms_mm_s")]
+            if doc["status"] == "ok":
+                evaluations += 1
+                quiet += (not doc["rising"]) and doc["advice"] is None
+        assert evaluations >= 25 and quiet / evaluations >= 0.95
+        # slow growth from day 150 on, 1.2 → 2.5 mm/s over 60 days (below the alert level)
+        days2 = np.arange(150.0, 210.0, 0.25)
+        v2 = (1.2 + 1.3 * (days2 - 150.0) / 60.0) * np.exp(0.05 * rng.standard_normal(days2.size))
+        v2 = np.minimum(v2, 2.7)
+        await layer.on_frames([_frame(T0 + d * D, float(x), 5000 + i) for i, (d, x) in enumerate(zip(days2, v2,
+                                                                                                      strict=True))])
+        await asyncio.to_thread(watch.evaluate_all)
+        doc = watch.latest[(POINT, "velocity_rms_mm_s")]
+        assert doc["rising"] and doc["advice"] in ("watch", "plan")
+        alert = {lim["label"]: lim for lim in doc["limits"]}["alert"]
+        assert alert["status"] == "rising" and alert["eta_s"] > 0
+        raised = [e for e in events if e["data"].get("transition") == "raised"]
+        assert raised == []
+    finally:
+        await watch.stop()
+        await layer.stop()
+
+
+async def test_step_change_against_the_learned_baseline(tmp_path: Path) -> None:
+    # ISO 20816-3 (ISO 10816-3 alarm guidance, FIELD_NOTES §1): a change from the baseline larger than 0.25 × the
+    # B/C boundary is significant even inside a zone; group 2 rigid B/C 2.8 mm/s, so 0.7 mm/s.
+    for jump, significant in ((0.85, True), (0.5, False)):
+        cfg = _config(tmp_path / f"state-{jump}")
+        watch = create_trend_watch(cfg, None)
+        assert watch is not None
+        await watch.start()
+        try:
+            rng = np.random.default_rng(3)
+            hours = np.arange(0, 20 * 24, 2)
+            days = hours / 24.0
+            v = np.where(days < 15, 1.0, 1.0 + jump) * np.exp(0.03 * rng.standard_normal(days.size))
+            first = days < 3
+            await watch.on_frames([_frame(T0 + d * D, float(x), i) for i, (d, x) in enumerate(zip(days[first],
+                                                                                                 v[first],
+                                                                                                 strict=True))])
+            await asyncio.to_thread(watch.evaluate_all)  # learns the baseline from the first values
+            await watch.on_frames([_frame(T0 + d * D, float(x), 1000 + i) for i, (d, x) in
+                                   enumerate(zip(days[~first], v[~first], strict=True))])
+            await asyncio.to_thread(watch.evaluate_all)
+            doc = watch.latest[(POINT, "velocity_rms_mm_s")]
+            step = doc["step"]
+            assert step["threshold"] == pytest.approx(0.7)
+            assert step["baseline"] == pytest.approx(1.0, abs=0.03)
+            assert step["change"] == pytest.approx(jump, abs=0.06)
+            assert step["significant"] is significant
+            if significant:
+                assert doc["advice"] == "watch"
+        finally:
+            await watch.stop()
