@@ -1,5 +1,5 @@
 """Long runs in compressed time (edgevib.simulator.longrun): analytic crossing times, snapshots through the real
-analysis, determinism, and the acceptance of issue 11 on simulated progressions — the projection made at 70 % of
+analysis, determinism, and the acceptance checks on simulated progressions — the projection made at 70 % of
 the way to a limit brackets the analytic crossing with the stated coverage; a stationary healthy plant is "not
 rising"."""
 
@@ -119,7 +119,7 @@ def _at_70_percent(lr: LongRun, point: str, limit: float) -> tuple[np.ndarray, n
 @pytest.mark.parametrize(("scenario", "point"), [("trend-linear", "P-301-DE-H"),
                                                  ("trend-exponential", "P-302-DE-H")])
 def test_projection_at_70_percent_has_the_stated_coverage(scenario: str, point: str) -> None:
-    # Issue 11 acceptance: over many seeded runs the interval (stated 80 %) holds the analytic crossing of the
+    # Over many seeded runs the interval (stated 80 %) holds the analytic crossing of the
     # ISO zone D boundary about 80 % of the time.  Indicator path: the expected velocity × each snapshot's
     # operating factor (transients and stops included), as the snapshots show it without the estimation noise
     # of a 0.2 s record (that path is checked below on real snapshots).
@@ -174,7 +174,7 @@ def test_projection_from_real_snapshots_brackets_the_crossing(scenario: str, poi
 
 
 def test_stationary_healthy_plant_is_not_rising_over_months() -> None:
-    # Issue 11 acceptance: "not rising" in at least 95 % of evaluations; evaluated every 5 simulated days over a
+    # Acceptance: "not rising" in at least 95 % of evaluations (rise_alpha 1 % per evaluation); evaluated every 5 simulated days over a
     # 90-day window, through stops, scatter and transients.
     sc = load_scenario("trend-healthy")
     total = not_rising = 0
