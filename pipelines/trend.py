@@ -56,6 +56,7 @@ __all__ = [
     "assess",
     "crossing_interval",
     "hampel_inliers",
+    "phm2012_score",
     "step_change",
     "theil_sen",
 ]
@@ -600,6 +601,19 @@ def assess(t_s: npt.ArrayLike, values: npt.ArrayLike, now_s: float, limits: Sequ
             continue
         projections.append(Projection(label, lim, "rising", eta, max(t_lo - now_s, 0.0), max(t_hi - now_s, 0.0)))
     return replace(base, level=level, rising=True, fit=fit, projections=tuple(projections))
+
+
+def phm2012_score(actual_s: float, estimate_s: float) -> float:
+    """The IEEE PHM 2012 prognostic challenge's score of one remaining-life estimate (0..1, 1 exact).
+
+    Percent error Er = 100·(actual − estimate)/actual; score exp(−ln 0.5·Er/5) for Er ≤ 0 (a late estimate: halved
+    at 5 % late) and exp(+ln 0.5·Er/20) for Er > 0 (an early one: halved at 20 % early).  ``actual_s`` > 0.
+    """
+    if not (math.isfinite(actual_s) and actual_s > 0 and math.isfinite(estimate_s)):
+        raise TrendError(f"score needs a finite actual remaining life > 0 and a finite estimate, got "
+                         f"{actual_s!r}, {estimate_s!r}")
+    er = 100.0 * (actual_s - estimate_s) / actual_s
+    return math.exp(-math.log(0.5) * er / 5.0) if er <= 0 else math.exp(math.log(0.5) * er / 20.0)
 
 
 def _duration(s: float) -> str:

@@ -191,3 +191,29 @@ def test_a_write_error_keeps_the_batch_for_the_next_flush(tmp_path: Path, monkey
     rec.close()
     with HistoryReader(s.path) as r:
         assert r.series("P-1", "a", level="frames").t_s.size == 100
+
+
+def test_a_budget_too_small_for_the_daily_rollups_prunes_them_and_recording_goes_on(tmp_path: Path) -> None:
+    # 160 KiB cannot hold two years of daily roll-ups of four points: after the frame, minute and hour rows, the
+    # oldest daily roll-ups go too (counted); every frame is still accepted and written, the newest days stay.
+    budget = 160 * 1024
+    s = _settings(tmp_path, max_bytes=budget, flush_s=1.0)
+    rec = HistoryRecorder(s, ("v", "a", "k", "p", "c", "d"))
+    rng = np.random.default_rng(1)
+    days = 2 * 365
+    for d in range(days):
+        for p in range(4):
+            rec.record(f"P-{p}", (T0 + 86400 * d) * 10**9, rng.lognormal(0, 0.2, 6), "running")
+        if d % 30 == 29:
+            rec.flush()
+    rec.close()
+    assert rec.stats.written == days * 4 and rec.stats.dropped == 0 and rec.stats.write_errors == 0
+    assert rec.stats.pruned["day"] > 0
+    wal = Path(s.path + "-wal")
+    assert Path(s.path).stat().st_size + (wal.stat().st_size if wal.exists() else 0) <= budget
+    with HistoryReader(s.path) as r:
+        for p in range(4):
+            kept = r.series(f"P-{p}", "v", level="day")
+            assert kept.t_s[-1] // 86400 == (T0 + 86400 * (days - 1)) // 86400  # the newest day is there
+            assert kept.t_s.size < days                                          # the oldest are gone
+            assert np.all(np.diff(kept.t_s) == 86400)                            # from the oldest end

@@ -329,3 +329,40 @@ async def test_step_change_against_the_learned_baseline(tmp_path: Path) -> None:
                 assert doc["advice"] == "watch"
         finally:
             await watch.stop()
+
+
+def test_readme_configuration_reference_lists_every_history_and_trend_key() -> None:
+    # README's configuration reference ([history], [trend], [[trend.limits]] tables) against the models that
+    # parse the file: every key listed, with the model's default.
+    from edgevib.daemon.config import HistoryConfig, TrendConfig, TrendLimit
+
+    readme = (Path(__file__).resolve().parents[2] / "README.md").read_text()
+
+    def table(heading: str) -> dict[str, str]:
+        part = readme.split(f"\n{heading}\n", 1)[1]
+        rows: dict[str, str] = {}
+        for line in part.split("\n## ", 1)[0].split("\n#", 1)[0].splitlines():
+            cells = [c.strip() for c in line.strip().strip("|").split("|")]
+            if len(cells) >= 4 and cells[0].startswith("`"):
+                rows[cells[0].strip("`")] = cells[2]
+        return rows
+
+    for heading, model in (("### `[history]`", HistoryConfig), ("### `[trend]`", TrendConfig),
+                           ("#### `[[trend.limits]]`", TrendLimit)):
+        rows = table(heading)
+        fields = {k: f for k, f in model.model_fields.items() if k != "limits"}
+        assert set(rows) == set(fields), heading
+        for key, f in fields.items():
+            if f.is_required():
+                assert rows[key] == "**required**", key
+                continue
+            default = f.default
+            shown = rows[key].strip("`")
+            if isinstance(default, bool):
+                assert shown == str(default).lower(), key
+            elif isinstance(default, int | float):
+                assert float(shown) == float(default), key
+            elif isinstance(default, str):
+                assert shown == f'"{default}"', key
+            else:
+                assert json.loads(shown) == list(default), key

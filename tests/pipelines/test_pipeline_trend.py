@@ -18,6 +18,7 @@ from edgevib.pipelines.trend import (
     assess,
     crossing_interval,
     hampel_inliers,
+    phm2012_score,
     step_change,
     theil_sen,
 )
@@ -237,3 +238,15 @@ def test_beyond_horizon_and_bad_input() -> None:
     y2 = y.copy()
     y2[5] = math.nan
     assert assess(t, y2, t[-1]).n == t.size - 1
+
+
+def test_phm2012_score_is_the_challenge_formula() -> None:
+    # IEEE PHM 2012 challenge (datasets README): Er = 100·(actual − estimate)/actual; exp(−ln 0.5·Er/5) for Er ≤ 0,
+    # exp(+ln 0.5·Er/20) for Er > 0 — exact 1, halved at 5 % late and at 20 % early, a late estimate costs more.
+    assert phm2012_score(1000.0, 1000.0) == 1.0
+    assert phm2012_score(1000.0, 1050.0) == pytest.approx(0.5, rel=1e-12)
+    assert phm2012_score(1000.0, 800.0) == pytest.approx(0.5, rel=1e-12)
+    assert phm2012_score(1000.0, 1100.0) == pytest.approx(0.25, rel=1e-12)
+    assert phm2012_score(1000.0, 1100.0) < phm2012_score(1000.0, 900.0)
+    with pytest.raises(TrendError, match="actual remaining life > 0"):
+        phm2012_score(0.0, 10.0)
