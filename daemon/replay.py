@@ -691,7 +691,8 @@ def _report(out: Path, last: dict[str, Any], frame: tuple[FrameResult, AnalysisP
                  "t_s": (series.t_s + series.bucket_s / 2.0).tolist(), "values": series.value,
                  "limits": {"indicator": name, "alert": alert, "danger": danger, "all": doc.get("limits", [])},
                  "limit_lines": _limit_lines(o, name), "projection": projection_curve(doc), "trend": doc,
-                 "source": f"{done} replayed snapshots; {doc.get('advice_text') or doc.get('status')}"}
+                 # the page adds the advice text after the source
+                 "source": f"{done} replayed snapshots" + ("" if doc.get("advice_text") else f"; {doc.get('status')}")}
     rows = [(row["name"], row["value"], row["unit"]) for row in indicator_rows(r) if row["kind"] != "limit"]
     meta = {"point": o.point, "snapshots": done, "latest snapshot": f"{last['file']} at {last['time']}",
             "sample rate (Hz)": r.fs_hz, "samples": int(x.size),

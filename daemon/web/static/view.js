@@ -4,7 +4,8 @@
 
 (function () {
   const API = "/api/v1";
-  const COLORS = { line: "#1f2a2e", accent: "#136f63", order: "#136f63", defect: "#a4262c", side: "#b86e00",
+  const COLORS = { line: "#1f2a2e", accent: "#136f63", order: "#136f63", harmonic: "#9fc7c0", defect: "#a4262c",
+                   side: "#b86e00",
                    alert: "#b86e00", danger: "#a4262c", proj: "#6b4fa0", projBand: "#b9a8d6",
                    projFill: "rgba(107, 79, 160, 0.16)", iso: "#5d7378", user: "#2f5d8a",
                    window: "rgba(107, 79, 160, 0.55)", grid: "#e6e0d2" };
@@ -80,9 +81,11 @@
     const unit = qty === "velocity_mm_s" ? "mm/s" : "g";
     const y = log ? logSafe(doc[qty]) : doc[qty];
     const named = new Set(["0.5x", "1x", "2x", "3x"]);
-    const marks = doc.markers.map(m => ({ x: m.frequency_hz, label: m.kind === "order" && !named.has(m.key) ? "" : m.label,
-      color: m.kind === "order" ? (named.has(m.key) ? COLORS.order : "#9fc7c0") : COLORS.defect,
-      dash: m.kind === "order" ? [] : [4, 3], row: m.kind === "order" ? 1 : 2 }));
+    // the measured orders (labelled), further shaft harmonics (light, unlabelled), defect frequencies (dashed)
+    const marks = doc.markers.map(m => m.kind === "defect"
+      ? { x: m.frequency_hz, label: m.label, color: COLORS.defect, dash: [4, 3], row: 2 }
+      : { x: m.frequency_hz, label: m.kind === "order" && named.has(m.key) ? m.label : "",
+          color: m.kind === "order" ? COLORS.order : COLORS.harmonic, dash: [], row: 1 });
     // velocity: open on the velocity band (where its lines matter); acceleration: the whole range
     const xmax = qty === "velocity_mm_s" ? Math.min(doc.max_frequency_hz, doc.velocity_band_hz[1]) : doc.max_frequency_hz;
     const shaft = doc.shaft_hz;
@@ -112,6 +115,7 @@
     const body = $("sp-markers").tBodies[0];
     body.textContent = "";
     for (const m of doc.markers) {
+      if (m.kind === "harmonic") continue;  // a position only: drawn, not listed
       const row = el("tr", { "data-marker": m.key, "data-kind": m.kind },
         el("td", { text: m.label + (m.meaning ? ` (${m.meaning})` : "") }),
         el("td", { text: `${num(m.frequency_hz, 5)} Hz` }),
