@@ -20,6 +20,7 @@ import json
 import math
 import os
 import sys
+import textwrap
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
@@ -216,6 +217,8 @@ def render_chart(series: HistorySeries, doc: dict[str, Any] | None, width: int =
     lines += _time_lines(plot, series, now, t_end, axis_w)
     if doc is not None:
         lines += _summary(doc, width)
+    else:
+        lines.append("no trend evaluated yet (the daemon evaluates every [trend] evaluate_s)")
     return "\n".join(lines)
 
 
@@ -248,17 +251,16 @@ def _summary(doc: dict[str, Any], width: int) -> list[str]:
                     f"{_fmt_eta(lim['eta_high_s'])}, {cov} %), around {(lim.get('date') or '')[:10]}")
         else:
             text = f"{head}: {st}"
-        out.append(text[:width])
+        out.append(text)
     step = doc.get("step")
     if step and step.get("significant"):
         change = f"{step['change']:+.3g}" + (f" {unit}" if unit else "")
         out.append(f"step change {change} from baseline {q(step['baseline'])} (significant above "
                    f"{q(step['threshold'])})")
+    wrapped = [w for line in out for w in textwrap.wrap(line, width, subsequent_indent="    ")]
     if doc.get("advice_text"):
-        import textwrap
-
-        out += textwrap.wrap(doc["advice_text"], width)
-    return out
+        wrapped += textwrap.wrap(doc["advice_text"], width)
+    return wrapped
 
 
 # --------------------------------------------------------------------------------------------- command
@@ -330,16 +332,7 @@ def _run(args: argparse.Namespace, reader: HistoryReader) -> int:
             names = ", ".join(pts) if args.point is None else ", ".join(pts.get(args.point, ()))
             print(f"no trend evaluated yet; recorded: {names or 'nothing'}")
             return 0
-        print(f"{'point':<16} {'indicator':<22} {'level':>8} {'slope/day':>10}  {'status':<12} next limit")
-        for p, i, d in rows:
-            nxt = [lim for lim in d.get("limits", []) if lim.get("status") == "rising"]
-            nxt.sort(key=lambda lim: lim["eta_s"])
-            status = "rising" if d.get("rising") else (d.get("status") or "")
-            status = "not rising" if status == "ok" else status
-            tail = f"{nxt[0]['label']} in {_fmt_eta(nxt[0]['eta_s'])}" if nxt else ""
-            slope = d.get("slope_per_day")
-            print(f"{p:<16} {i:<22} {_fmt_value(d.get('level')):>8} "
-                  f"{'' if slope is None else f'{slope:+.3g}':>10}  {status:<12} {tail}".rstrip())
+        print("\n".join(_listing(rows, width)))
         return 0
     doc = docs.get((args.point, args.indicator))
     latest = reader.latest_time_s(args.point)
@@ -364,6 +357,30 @@ def _run(args: argparse.Namespace, reader: HistoryReader) -> int:
         return 0
     print(render_chart(series, doc, width=width))
     return 0
+
+
+def _listing(rows: list[tuple[str, str, dict[str, Any]]], width: int) -> list[str]:
+    """One line per series — point, indicator, level, slope per day, status and the next limit's projected time —
+    within ``width`` columns (what does not fit goes to indented continuation lines)."""
+    pw = min(max([len("point")] + [len(p) for p, _, _ in rows]), max(8, width - 47))
+    iw = max([len("indicator")] + [len(i) for _, i, _ in rows])
+    out = textwrap.wrap(f"{'point':<{pw}} {'indicator':<{iw}} {'level':>8} {'slope/day':>10}  status, next limit",
+                        width, subsequent_indent="    ")
+    for p, i, d in rows:
+        nxt = [lim for lim in d.get("limits", []) if lim.get("status") == "rising"]
+        nxt.sort(key=lambda lim: lim["eta_s"])
+        status = "rising" if d.get("rising") else (d.get("status") or "")
+        status = "not rising" if status == "ok" else status
+        if nxt:
+            status += f", {nxt[0]['label']} in {_fmt_eta(nxt[0]['eta_s'])}"
+        slope = d.get("slope_per_day")
+        head = f"{p:<{pw}} {i:<{iw}} {_fmt_value(d.get('level')):>8} {'' if slope is None else f'{slope:+.3g}':>10}"
+        if len(head) + 2 + len(status) <= width:
+            out.append(f"{head}  {status}")
+        else:
+            out += textwrap.wrap(head, width, subsequent_indent="    ")
+            out += textwrap.wrap(status, width, initial_indent="    ", subsequent_indent="    ")
+    return out
 
 
 def _nan_list(a: Any) -> list[float | None] | None:

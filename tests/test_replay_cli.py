@@ -211,3 +211,37 @@ def test_progress_bar_on_a_terminal_only(tmp_path: Path, capsys: pytest.CaptureF
     err = capsys.readouterr().err
     last = err.split("\r")[-1]
     assert last.startswith("replay     20/20 [" + "#" * 30 + "] 100.0 %")
+
+
+def test_trend_listing_and_chart_stay_within_the_width() -> None:
+    # `edgevib trend` must be readable in an 80-column terminal whatever the names and messages: long point names,
+    # the longest status words, long limit labels and the "need" text wrap instead of running past the edge.
+    from edgevib.daemon.history import HistorySeries
+    from edgevib.daemon.trendchart import _listing, render_chart
+
+    doc: dict[str, Any] = {"status": "insufficient-history", "rising": False, "level": 1.2, "slope_per_day": None,
+                           "need": "needs at least 12 running values over 24.0 h; has 6 over 5.0 h", "limits": [],
+                           "unit": "mm/s", "coverage": 0.8}
+    rising = {**doc, "status": "ok", "rising": True, "slope_per_day": 0.0123, "slope_low_per_day": 0.01,
+              "slope_high_per_day": 0.015, "model": "exponential", "model_weight": 0.93, "onset": "2026-01-20T00:00Z",
+              "need": None, "t_s": 1.0e9 + 40 * 86400.0,
+              "limits": [{"label": "zone D", "value": 4.5, "status": "rising", "eta_s": 31 * 86400.0,
+                          "eta_low_s": 20 * 86400.0, "eta_high_s": 45 * 86400.0, "date": "2026-05-04T00:00:00Z"}],
+              "step": {"significant": True, "change": 2.73, "baseline": 0.422, "threshold": 0.7},
+              "advice_text": "Plan: rising 0.37 mm/s per month; " * 4}
+    rows = [("P-301-DE-H", "velocity_rms_mm_s", rising),
+            ("COMPRESSOR-TRAIN-7-GEARBOX-HSS-NDE-AXIAL", "misalignment_2x_mm_s", doc),
+            ("F-1", "bearing_bpfi_snr_db", {**doc, "status": "machine-not-running"})]
+    for width in (60, 80):
+        listing = _listing(rows, width)
+        assert max(len(line) for line in listing) <= width
+        assert any("insufficient-history" in line for line in listing)
+        assert any("zone D in 31" in line for line in listing)
+    days = np.arange(40.0)
+    series = HistorySeries(point="P-301-DE-H", indicator="velocity_rms_mm_s", level="day",
+                           t_s=1.0e9 + days * 86400.0, value=1.0 + 0.05 * days)
+    for d in (doc, rising, None):
+        chart = render_chart(series, d, width=80)
+        assert max(len(line) for line in chart.splitlines()) <= 80
+    assert "needs at least 12 running values" in render_chart(series, doc, width=80).replace("\n", " ")
+    assert "no trend evaluated yet" in render_chart(series, None, width=80)
