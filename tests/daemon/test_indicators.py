@@ -1,4 +1,5 @@
-"""The indicator registry drives every place an indicator is published, and README's reference tables."""
+"""The indicator registry drives every place an indicator is published (Prometheus, the MQTT document, OPC UA,
+the offline report, alarm limits, the severity history, the view, the demo table) and README's reference tables."""
 
 from __future__ import annotations
 
@@ -25,6 +26,8 @@ from edgevib.daemon.service import render_table
 from edgevib.daemon.sinks.mqtt import indicator_document
 from edgevib.daemon.sinks.opcua import indicator_values
 from edgevib.daemon.sinks.prometheus import PrometheusSink
+from edgevib.daemon.trendwatch import HISTORY_INDICATORS, frame_values
+from edgevib.daemon.web.api import indicator_rows
 from edgevib.pipelines.analysis import analyze_frames, make_plan
 from edgevib.pipelines.types import BearingGeometry
 
@@ -84,6 +87,8 @@ def test_every_registry_entry_appears_where_it_says() -> None:
     limited = {lim.indicator for lim in cfg.alarm_settings.limits}
     table = render_table(cfg, {"P-101-DE-H": r}, lambda _p: None, tty=False)
     generated = "\n".join(readme_tables().values())
+    history = dict(zip(HISTORY_INDICATORS, frame_values(r).tolist(), strict=True))
+    view = {row["name"]: row["value"] for row in indicator_rows(r)}
     for ind in REGISTRY:
         places = [ind.prometheus, ind.mqtt, ind.opcua, ind.report, ind.fault, ind.demo]
         assert any(p is not None for p in places), f"{ind.name} is published nowhere"
@@ -100,8 +105,11 @@ def test_every_registry_entry_appears_where_it_says() -> None:
                 assert ind.opcua.format(key=key) in opcua, (ind.name, key)
             if ind.report is not None and have:
                 assert _has(report, ind.report, key), (ind.name, key)
+            view_name = f"{ind.name}.{key}" if key else ind.name
+            assert view_name in view and (view[view_name] is not None) == have, (ind.name, key)
         if ind.fault is not None:
             assert ind.name in limited and f"`{ind.name}`" in generated, ind.name
+            assert history[ind.name] == ind.value(r), ind.name  # the history records what a limit watches
         if ind.demo is not None:
             assert f" {ind.demo.key}=" in table, ind.name
 
