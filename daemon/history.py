@@ -50,6 +50,7 @@ import numpy.typing as npt
 
 from edgevib.daemon.interfaces import EdgevibError
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
+from edgevib.daemon.sqlite_schema import migrate
 from edgevib.pipelines.rollup import STAT_FIELDS, LogSketch, summarize
 
 __all__ = [
@@ -186,28 +187,8 @@ class _Database:
         self._layouts: dict[tuple[str, ...], int] = {}
 
     def _migrate(self) -> None:
-        c = self.conn
-        c.execute("CREATE TABLE IF NOT EXISTS schema_version (version INTEGER NOT NULL)")
-        row = c.execute("SELECT version FROM schema_version").fetchone()
-        if row is None:
-            with self.transaction():
-                for stmt in _SCHEMA_V1.split(";"):
-                    if stmt.strip():
-                        c.execute(stmt)
-                c.execute("INSERT INTO schema_version (version) VALUES (?)", (SCHEMA_VERSION,))
-            return
-        version = int(row[0])
-        if version > SCHEMA_VERSION:
-            raise HistoryError(f"history database {self.path} has schema version {version}, written by a newer "
-                               f"edgevib; this version reads up to {SCHEMA_VERSION}")
-        while version < SCHEMA_VERSION:  # pragma: no cover - no migration yet
-            with self.transaction():
-                for stmt in MIGRATIONS[version].split(";"):
-                    if stmt.strip():
-                        c.execute(stmt)
-                version += 1
-                c.execute("UPDATE schema_version SET version = ?", (version,))
-            log.info("history database upgraded", path=str(self.path), version=version)
+        migrate(self.conn, self.transaction, what="history database", path=self.path, first_layout=_SCHEMA_V1,
+                migrations=MIGRATIONS, version=SCHEMA_VERSION, error=HistoryError, log=log)
 
     @contextlib.contextmanager
     def transaction(self) -> Iterator[sqlite3.Connection]:

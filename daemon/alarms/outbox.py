@@ -23,6 +23,7 @@ from pathlib import Path
 import structlog
 
 from edgevib.daemon.interfaces import EdgevibError
+from edgevib.daemon.sqlite_schema import migrate
 
 __all__ = ["SCHEMA_VERSION", "Database", "Outbox", "OutboxEvent", "StateError", "new_event_id"]
 
@@ -93,28 +94,8 @@ class Database:
             raise StateError(f"cannot open state database {self.path}: {exc}") from exc
 
     def _migrate(self) -> None:
-        c = self.conn
-        c.execute("CREATE TABLE IF NOT EXISTS schema_version (version INTEGER NOT NULL)")
-        row = c.execute("SELECT version FROM schema_version").fetchone()
-        if row is None:
-            with self.transaction():
-                for stmt in _SCHEMA_V1.split(";"):
-                    if stmt.strip():
-                        c.execute(stmt)
-                c.execute("INSERT INTO schema_version (version) VALUES (?)", (SCHEMA_VERSION,))
-            return
-        version = int(row[0])
-        if version > SCHEMA_VERSION:
-            raise StateError(f"state database {self.path} has schema version {version}, written by a newer "
-                             f"edgevib; this version reads up to {SCHEMA_VERSION}")
-        while version < SCHEMA_VERSION:
-            with self.transaction():
-                for stmt in MIGRATIONS[version].split(";"):
-                    if stmt.strip():
-                        c.execute(stmt)
-                version += 1
-                c.execute("UPDATE schema_version SET version = ?", (version,))
-            log.info("state database upgraded", path=str(self.path), version=version)
+        migrate(self.conn, self.transaction, what="state database", path=self.path, first_layout=_SCHEMA_V1,
+                migrations=MIGRATIONS, version=SCHEMA_VERSION, error=StateError, log=log)
 
     @contextlib.contextmanager
     def transaction(self) -> Iterator[sqlite3.Connection]:
