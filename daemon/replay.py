@@ -35,7 +35,6 @@ import argparse
 import glob
 import json
 import math
-import os
 import re
 import sys
 import tempfile
@@ -653,9 +652,9 @@ def _run(args: argparse.Namespace) -> int:
 
 
 def _summary(last: dict[str, Any], history: Path, o: ReplayOptions, done: int, skipped: int) -> None:
-    from edgevib.daemon.trendchart import render_chart
+    from edgevib.daemon.trendchart import render_chart, terminal_width
 
-    width = min(120, max(60, _terminal_width()))
+    width = min(120, max(60, terminal_width()))
     print(f"{done} snapshots replayed" + (f", {skipped} skipped" if skipped else "") + f"; last at {last['time']}")
     with HistoryReader(history) as r:
         for name, doc in last.get("_docs", {}).items():
@@ -721,10 +720,3 @@ def _limit_lines(o: ReplayOptions, name: str) -> list[dict[str, Any]]:
     if name in o.limits:
         out.append({"label": "limit", "value": o.limits[name], "unit": unit, "kind": "user"})
     return out
-
-
-def _terminal_width() -> int:
-    try:
-        return os.get_terminal_size(sys.stdout.fileno()).columns
-    except OSError:
-        return 80

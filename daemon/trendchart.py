@@ -318,7 +318,7 @@ def run_trend(args: argparse.Namespace) -> int:
 
 
 def _run(args: argparse.Namespace, reader: HistoryReader) -> int:
-    width = args.width or min(120, max(60, _terminal_width()))
+    width = args.width or min(120, max(60, terminal_width()))
     docs = reader.projections()
     if args.point is None or args.indicator is None:
         rows = [(p, i, d) for (p, i), d in docs.items() if args.point is None or p == args.point]
@@ -389,7 +389,8 @@ def _nan_list(a: Any) -> list[float | None] | None:
     return [None if not math.isfinite(float(v)) else float(v) for v in a]
 
 
-def _terminal_width() -> int:
+def terminal_width() -> int:
+    """The terminal's columns (80 when the output is not a terminal)."""
     try:
         return os.get_terminal_size(sys.stdout.fileno()).columns
     except OSError:
