@@ -132,6 +132,42 @@ def _false_alarm(text: str) -> float:
     return p
 
 
+def _unit(text: str) -> str:
+    if text not in ("g", "m/s2"):
+        raise InputError(f"--unit {text!r} must be g or m/s2")
+    return text
+
+
+def _full_scale(text: str) -> float:
+    full_scale = _number("--full-scale", text)
+    if full_scale <= 0:
+        raise InputError(f"--full-scale {text} must be > 0")
+    return full_scale
+
+
+def _iso_class(group_text: str | None, support: str | None) -> int | None:
+    """The ISO 20816-3 machine group of ``--group``, checked with ``--support`` (both or neither)."""
+    group = None
+    if group_text is not None:
+        if group_text not in ("1", "2"):
+            raise InputError(f"--group {group_text!r} must be 1 or 2")
+        group = int(group_text)
+    if support is not None and support not in ("rigid", "flexible"):
+        raise InputError(f"--support {support!r} must be rigid or flexible")
+    if (group is None) != (support is None):
+        raise InputError("--group and --support go together (both are needed for the ISO 20816-3 zone)")
+    return group
+
+
+def _check_samples(label: str, x: np.ndarray) -> None:
+    """Refuse an empty record or one with NaN or infinite samples (``label`` names the file)."""
+    if x.size == 0:
+        raise InputError(f"{label} holds no samples")
+    bad = int(np.count_nonzero(~np.isfinite(x)))
+    if bad:
+        raise InputError(f"{label}: {bad} of {x.size} samples are NaN or infinite")
+
+
 # --------------------------------------------------------------------------------------------- analyze
 
 
@@ -256,9 +292,7 @@ class _Speed:
 
 
 def _options(args: argparse.Namespace) -> _Options:
-    unit = args.unit
-    if unit not in ("g", "m/s2"):
-        raise InputError(f"--unit {unit!r} must be g or m/s2")
+    unit = _unit(args.unit)
     channel = None
     if args.channel is not None:
         try:
@@ -267,18 +301,8 @@ def _options(args: argparse.Namespace) -> _Options:
             raise InputError(f"--channel {args.channel!r} is not an integer") from None
         if channel < 0:
             raise InputError(f"--channel {channel} must be ≥ 0")
-    full_scale = _number("--full-scale", args.full_scale)
-    if full_scale <= 0:
-        raise InputError(f"--full-scale {args.full_scale} must be > 0")
-    group = None
-    if args.group is not None:
-        if args.group not in ("1", "2"):
-            raise InputError(f"--group {args.group!r} must be 1 or 2")
-        group = int(args.group)
-    if args.support is not None and args.support not in ("rigid", "flexible"):
-        raise InputError(f"--support {args.support!r} must be rigid or flexible")
-    if (group is None) != (args.support is None):
-        raise InputError("--group and --support go together (both are needed for the ISO 20816-3 zone)")
+    full_scale = _full_scale(args.full_scale)
+    group = _iso_class(args.group, args.support)
     rpm_opt = _rpm(args.rpm)
     bearing = _bearing(args.bearing)
     auto = args.band is not None and args.band.strip().lower() == "auto"
@@ -313,11 +337,7 @@ def _sample_rate(args: argparse.Namespace, wave: Waveform, warnings: list[str]) 
 
 def _samples_g(args: argparse.Namespace, x: np.ndarray, unit: str) -> np.ndarray:
     """The record in g, refused when empty or not finite."""
-    if x.size == 0:
-        raise InputError(f"{args.file} holds no samples")
-    bad = int(np.count_nonzero(~np.isfinite(x)))
-    if bad:
-        raise InputError(f"{args.file}: {bad} of {x.size} samples are NaN or infinite")
+    _check_samples(str(args.file), x)
     return to_g(x, unit)
 
 

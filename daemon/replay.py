@@ -55,9 +55,13 @@ from edgevib.daemon.offline import (
     InputError,
     _band,
     _bearing,
+    _check_samples,
+    _full_scale,
+    _iso_class,
     _number,
     _one_line_errors,
     _rpm,
+    _unit,
     read_waveform,
 )
 from edgevib.daemon.timestamps import rfc3339_utc_s
@@ -272,27 +276,16 @@ def _options(args: argparse.Namespace) -> ReplayOptions:
             raise InputError(f"--column {args.column!r} is not an integer") from None
         if o.channel < 0:
             raise InputError(f"--column {o.channel} must be ≥ 0")
-    if args.unit not in ("g", "m/s2"):
-        raise InputError(f"--unit {args.unit!r} must be g or m/s2")
-    o.unit = args.unit
-    o.full_scale = _number("--full-scale", args.full_scale)
-    if o.full_scale <= 0:
-        raise InputError(f"--full-scale {args.full_scale} must be > 0")
+    o.unit = _unit(args.unit)
+    o.full_scale = _full_scale(args.full_scale)
     o.rpm = _rpm(args.rpm)
     o.bearing = _bearing(args.bearing)
     o.band = _band("--band", args.band)
     vb = _band("--velocity-band", args.velocity_band)
     assert vb is not None
     o.velocity_band = vb
-    if args.group is not None:
-        if args.group not in ("1", "2"):
-            raise InputError(f"--group {args.group!r} must be 1 or 2")
-        o.group = int(args.group)
-    if args.support is not None and args.support not in ("rigid", "flexible"):
-        raise InputError(f"--support {args.support!r} must be rigid or flexible")
+    o.group = _iso_class(args.group, args.support)
     o.support = args.support
-    if (o.group is None) != (o.support is None):
-        raise InputError("--group and --support go together (both are needed for the ISO 20816-3 zones)")
     o.limits = dict(_limit(x) for x in args.limit or [])
     for name in args.indicator or []:
         if name not in LIMITABLE:
@@ -361,11 +354,7 @@ def _read(index: int, path: Path, t_s: float, o: ReplayOptions) -> _Snap:
     else:
         raise InputError(f"{path.name} does not carry a sample rate: give --fs HZ")
     x = wave.samples
-    if x.size == 0:
-        raise InputError(f"{path.name} holds no samples")
-    bad = int(np.count_nonzero(~np.isfinite(x)))
-    if bad:
-        raise InputError(f"{path.name}: {bad} of {x.size} samples are NaN or infinite")
+    _check_samples(path.name, x)
     rpm = o.rpm if o.rpm is not None else wave.rpm
     return _Snap(index, path, t_s, to_g(x, o.unit), fs, rpm)
 
