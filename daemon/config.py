@@ -352,7 +352,21 @@ def _listen(v: str) -> str:
     return v
 
 
-class MetricsConfig(_Table):
+class _Listens(_Table):
+    """A table with a ``listen = "host:port"`` key (the default is each table's own)."""
+
+    listen: Annotated[Text, AfterValidator(_listen)] = "127.0.0.1:0"
+
+    @property
+    def host(self) -> str:
+        return parse_listen(self.listen)[0]
+
+    @property
+    def port(self) -> int:
+        return parse_listen(self.listen)[1]
+
+
+class MetricsConfig(_Listens):
     listen: Annotated[Text, AfterValidator(_listen)] = "127.0.0.1:9851"
     tls_cert_file: Text | None = None
     tls_key_file: Text | None = None
@@ -365,14 +379,6 @@ class MetricsConfig(_Table):
         if self.tls_client_ca_file is not None and self.tls_cert_file is None:
             raise _Problem("tls_client_ca_file", "client certificates need TLS (tls_cert_file, tls_key_file)")
         return self
-
-    @property
-    def host(self) -> str:
-        return parse_listen(self.listen)[0]
-
-    @property
-    def port(self) -> int:
-        return parse_listen(self.listen)[1]
 
 
 class ViewConfig(_WithSecrets):
@@ -624,7 +630,7 @@ class PublishMqttConfig(_ReusesSource):
         return self
 
 
-class PublishOpcUaConfig(_Table):
+class PublishOpcUaConfig(_Listens):
     enabled: Bool = False
     listen: Annotated[Text, AfterValidator(_listen)] = "127.0.0.1:4841"
     namespace: Text = "urn:edgevib:indicators"
@@ -636,14 +642,6 @@ class PublishOpcUaConfig(_Table):
         if self.port == 0:
             raise _Problem("listen", "the OPC UA server needs a fixed port (1..65535), not 0")
         return self
-
-    @property
-    def host(self) -> str:
-        return parse_listen(self.listen)[0]
-
-    @property
-    def port(self) -> int:
-        return parse_listen(self.listen)[1]
 
 
 class PublishConfig(_Table):
