@@ -110,6 +110,12 @@ DEPTH_NOISE_RMS = 2.0
 """The noise in a tested line is taken at this many times its r.m.s. when its depth is compared with the minimum
 (a circular Gaussian exceeds twice its r.m.s. magnitude with probability e⁻⁴ ≈ 2 %)."""
 _LEVEL_FACTOR = level_mean_factor(LEVEL_LINES, LEVEL_RANK)
+_LEVEL_PER_SIDE = LEVEL_LINES // 2
+_LEVEL_ABOVE_RANK = np.arange(LEVEL_LINES)  # rank of each column above it (taken while rank < the count needed)
+_LEVEL_OFFSET = np.concatenate([-(GUARD_LINES + 1 + LEVEL_STEP * np.arange(_LEVEL_PER_SIDE)),
+                                GUARD_LINES + 1 + LEVEL_STEP * _LEVEL_ABOVE_RANK])
+for _a in (_LEVEL_ABOVE_RANK, _LEVEL_OFFSET):
+    _a.flags.writeable = False
 _TINY = 1e-300
 
 
@@ -298,33 +304,34 @@ def search_lines(ses: FloatArray, centre_lines: FloatArray, half_lines: FloatArr
     lo_c = np.where(fits, lo, MIN_LINE)
     hi_c = np.where(fits, hi, MIN_LINE)
     width = int((hi_c - lo_c).max()) + 1 if lo_c.size else 1
-    idx = lo_c[..., None] + np.arange(width)
-    valid = idx <= hi_c[..., None]
-    idx = np.minimum(idx, k - 2)
-    v = _gather(ses, idx)
-    local = valid & (v > _gather(ses, idx - 1)) & (v >= _gather(ses, idx + 1))
+    # each window's lines with one neighbour either side, in one gather (a window's own lines lie at or below
+    # k − 2: the padding beyond a narrower window's last line is clipped and never taken)
+    idx = lo_c[..., None] + np.arange(-1, width + 1)
+    np.minimum(idx, k - 1, out=idx)
+    g = _gather(ses, idx)
+    v = g[..., 1:-1]
+    valid = idx[..., 1:-1] <= hi_c[..., None]
+    local = valid & (v > g[..., :-2]) & (v >= g[..., 2:])
     if excluded is not None:
-        barred = _gather(excluded, idx)
+        barred = _gather(excluded, idx[..., 1:-1])
         if exclude_in is not None:
             barred &= exclude_in[..., None]
         local &= ~barred
     best = np.argmax(np.where(local, v, -np.inf), axis=-1)
     has = local.any(axis=-1) & fits
-    peak = np.take_along_axis(idx, best[..., None], axis=-1)[..., 0]
+    peak = lo_c + best
+    value = np.take_along_axis(v, best[..., None], axis=-1)[..., 0]
     # level lines: every other line beyond the guard, half below and half above (all above where the spectrum
-    # starts too close)
-    per_side = LEVEL_LINES // 2
-    i = np.arange(per_side)
-    below = lo_c[..., None] - GUARD_LINES - 1 - LEVEL_STEP * i
-    ok_below = below >= 2
-    missing = per_side - ok_below.sum(axis=-1)
-    j = np.arange(LEVEL_LINES)
-    above = hi_c[..., None] + GUARD_LINES + 1 + LEVEL_STEP * j
-    ok_above = j < (per_side + missing)[..., None]
-    vals = np.concatenate([np.where(ok_below, _gather(ses, np.clip(below, 0, k - 1)), np.inf),
-                           np.where(ok_above, _gather(ses, np.clip(above, 0, k - 1)), np.inf)], axis=-1)
+    # starts too close); gathered at once: columns 0 … LEVEL_LINES/2 − 1 below the window, the rest above it
+    lines = np.empty((*lo_c.shape, _LEVEL_OFFSET.size), dtype=np.intp)
+    np.add(lo_c[..., None], _LEVEL_OFFSET[:_LEVEL_PER_SIDE], out=lines[..., :_LEVEL_PER_SIDE])
+    np.add(hi_c[..., None], _LEVEL_OFFSET[_LEVEL_PER_SIDE:], out=lines[..., _LEVEL_PER_SIDE:])
+    ok = lines >= 2
+    missing = _LEVEL_PER_SIDE - ok[..., :_LEVEL_PER_SIDE].sum(axis=-1)
+    ok[..., _LEVEL_PER_SIDE:] = (_LEVEL_PER_SIDE + missing)[..., None] > _LEVEL_ABOVE_RANK
+    np.clip(lines, 0, k - 1, out=lines)
+    vals = np.where(ok, _gather(ses, lines), np.inf)
     level = np.partition(vals, LEVEL_RANK - 1, axis=-1)[..., LEVEL_RANK - 1] / _LEVEL_FACTOR
-    value = _gather(ses, peak)
     with np.errstate(divide="ignore", invalid="ignore"):
         stat = np.where(has, value / np.maximum(level, _TINY), np.nan)
     m_lines = np.minimum(hi_c - lo_c + 1, thresholds.size - 1)
