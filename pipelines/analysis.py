@@ -26,6 +26,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from functools import lru_cache
+from typing import Any
 
 import numpy as np
 import numpy.typing as npt
@@ -84,7 +85,7 @@ FAMILIES: tuple[str, ...] = ("ftf", "bpfo", "bpfi", "bsf")
 ``expected_hz``/``frequency_hz`` are the 2 × BSF line."""
 SPEED_HARMONICS = 3  # harmonics used by the speed estimate
 MIN_SAMPLES = 64
-PEAK_OVERSAMPLING = 3.0  # waveforms sampled at ≥ 3 × the band's upper edge; peaks refined (see _refined_peak)
+PEAK_OVERSAMPLING = 3.0  # waveforms sampled at ≥ 3 × the band's upper edge; peaks refined (see _refined_peaks)
 
 
 def order_key(order: float) -> str:
@@ -292,6 +293,7 @@ class AnalysisKernel:
         "_n",
         "_order_min",
         "_speed_stop",
+        "_split",
         "_thresholds",
         "_vel_lines",
         "_vel_stop",
@@ -329,13 +331,18 @@ class AnalysisKernel:
         # the band, from the windowed acceleration lines above 8 × its low edge (see analyze)
         w_band = omega[lo : hi + 1]
         low = k[lo : hi + 1] * df < 8.0 * v_band[0]
-        zero = np.zeros(w_band.shape)
-        dcoef = np.array([
-            [np.where(low, 1.0, 0.0), np.where(low, zero, -1j * G_MM_S2 / w_band)],
-            [np.where(low, -1j * 1000.0 / w_band, 0.0), np.where(low, zero, -G_MM_S2 * 1000.0 / w_band**2)],
-        ], dtype=np.complex64)  # (waveform, source, line); single precision like the spectrum
-        dcoef.flags.writeable = False
+        # (the low lines come first: the velocity lines below the split, the acceleration lines from it on), each
+        # times m/N, which turns irfft(Y, m) into the waveform; single precision like the spectrum
+        split = int(np.count_nonzero(low))
+        scale = self._mv / n
+        dcoef = (np.full(split, scale, dtype=np.complex64),  # velocity waveform, from velocity lines
+                 (-1j * G_MM_S2 * scale / w_band[split:]).astype(np.complex64),  # … from acceleration lines
+                 (-1j * 1000.0 * scale / w_band[:split]).astype(np.complex64),  # displacement, from velocity
+                 (-G_MM_S2 * 1000.0 * scale / w_band[split:] ** 2).astype(np.complex64))  # … from acceleration
+        for a in dcoef:
+            a.flags.writeable = False
         self._disp_coef = dcoef
+        self._split = lo + split
         # the central half of a frame, where the Hann window is ≥ 0.5, in each waveform's samples
         self._centre = _central_window(self._mv)
         self._vel_stop = min(n // 2 - 1, hi + 2)
@@ -468,15 +475,18 @@ class AnalysisKernel:
         # all m//2 + 1 lines (scipy's own zero padding of a shorter input costs several times the transform), in
         # single precision like the shared spectrum (relative error ~1e-7 on the peaks)
         y = np.zeros((2, c, self._mv // 2 + 1), dtype=np.complex64)
-        band_vel, band_acc = vel[:, v_lo : v_hi + 1], acc[:, v_lo : v_hi + 1]
-        for wv in range(2):
-            y[wv, :, v_lo : v_hi + 1] = band_vel * self._disp_coef[wv, 0] + band_acc * self._disp_coef[wv, 1]
-        y *= np.float32(self._mv / n)  # irfft(Y, m) = (N/m) × the waveform
+        s = self._split
+        v_from_v, v_from_a, d_from_v, d_from_a = self._disp_coef
+        np.multiply(vel[:, v_lo:s], v_from_v, out=y[0, :, v_lo:s], casting="same_kind")
+        np.multiply(acc[:, s : v_hi + 1], v_from_a, out=y[0, :, s : v_hi + 1])
+        np.multiply(vel[:, v_lo:s], d_from_v, out=y[1, :, v_lo:s], casting="same_kind")
+        np.multiply(acc[:, s : v_hi + 1], d_from_a, out=y[1, :, s : v_hi + 1])
         sl, w = self._centre
-        wave = _fft.irfft(y, self._mv)[:, :, sl] / w
-        peaks = _refined_peak(np.concatenate([wave, -wave]).reshape(-1, wave.shape[-1])).reshape(4, c)  # one call
-        vel_peak = np.maximum(peaks[0], peaks[2])  # signed: |v| would fold neighbours
-        disp_pp = peaks[1] + peaks[3]
+        wave = _fft.irfft(y, self._mv)[:, :, sl]
+        wave *= w  # (÷ the window: w holds its reciprocal)
+        peaks = _refined_peaks(wave.reshape(2 * c, -1)).reshape(2, 2, c)  # (maximum, −minimum), waveform, channel
+        vel_peak = np.maximum(peaks[0, 0], peaks[1, 0])  # signed: |v| would fold neighbours
+        disp_pp = peaks[0, 1] + peaks[1, 1]
 
         fam: FamilySearch | None = None
         if self._env and running.any():
@@ -591,20 +601,22 @@ def _family_results(fam: FamilySearch, shaft_hz: FloatArray, mult: FloatArray,
     return out
 
 
-def _central_window(m: int) -> tuple[slice, FloatArray]:
-    """Samples of an m-point frame where the periodic Hann window is at least 0.5, and the window there.
+def _central_window(m: int) -> tuple[slice, npt.NDArray[np.float32]]:
+    """Samples of an m-point frame where the periodic Hann window is at least 0.5, and the window's reciprocal
+    there (single precision, like the waveforms it scales).
 
     Dividing a windowed waveform by the window over this central half recovers the waveform (at most doubling
     its noise); peaks of stationary signals are taken there.
     """
     sl = slice(math.ceil(m / 4), math.floor(3 * m / 4) + 1)
-    w = 0.5 - 0.5 * np.cos(2.0 * np.pi * np.arange(m)[sl] / m)
+    w = (1.0 / (0.5 - 0.5 * np.cos(2.0 * np.pi * np.arange(m)[sl] / m))).astype(np.float32)
     w.flags.writeable = False
     return sl, w
 
 
-def _refined_peak(w: FloatArray) -> FloatArray:
-    """Largest value of each row, refined through the largest sample and its two neighbours.
+def _refined_peaks(w: npt.NDArray[np.floating[Any]]) -> FloatArray:
+    """Largest value of each row and largest value of its negation, each refined through the extreme sample and
+    its two neighbours.
 
     Three samples a, b, c of A·cos(φ(t − τ)) give cos φ = (a + c)/2b and A = √(b² + ((c − a)/(2 sin φ))²) exactly,
     whatever the sampling (more than 2 samples per period); that is used where it applies (−1 < cos φ < 1), a
@@ -612,12 +624,19 @@ def _refined_peak(w: FloatArray) -> FloatArray:
 
     Parameters
     ----------
-    w : ndarray, shape (channels, samples) — a band-limited waveform sampled at ≥ 2 × its top frequency
+    w : ndarray, shape (rows, samples) — band-limited waveforms sampled at ≥ 2 × their top frequency
+
+    Returns
+    -------
+    ndarray, shape (2, rows): the refined maxima, then the refined maxima of −w (in float64)
     """
-    i = np.argmax(w, axis=-1)  # (the refinement only uses in-range neighbours)
-    rows = np.arange(w.shape[0])
-    m = w.shape[-1]
-    a, b, c = w[rows, np.maximum(i - 1, 0)], w[rows, i], w[rows, np.minimum(i + 1, m - 1)]
+    r, m = w.shape
+    i = np.concatenate([np.argmax(w, axis=-1), np.argmin(w, axis=-1)])  # (the refinement only uses in-range
+    rows = np.concatenate([np.arange(r), np.arange(r)])  # neighbours)
+    sign = np.repeat(np.array([1.0, -1.0]), r)
+    a = sign * w[rows, np.maximum(i - 1, 0)]
+    b = sign * w[rows, i]
+    c = sign * w[rows, np.minimum(i + 1, m - 1)]
     with np.errstate(divide="ignore", invalid="ignore"):
         cos_phi = (a + c) / (2.0 * b)
         sin_phi = np.sqrt(np.maximum(1.0 - cos_phi**2, 0.0))
@@ -625,8 +644,8 @@ def _refined_peak(w: FloatArray) -> FloatArray:
         denom = a - 2.0 * b + c
         parabola = np.where(denom < 0, b - 0.125 * (a - c) ** 2 / np.where(denom < 0, denom, -1.0), b)
     use_cosine = (b > 0) & (cos_phi > -1) & (cos_phi < 1) & np.isfinite(cosine)
-    inner = (i > 0) & (i < m - 1)  # a largest sample on the edge has no neighbour to refine with
-    peak: FloatArray = np.where(inner, np.where(use_cosine, np.maximum(cosine, b), parabola), b)
+    inner = (i > 0) & (i < m - 1)  # an extreme sample on the edge has no neighbour to refine with
+    peak: FloatArray = np.where(inner, np.where(use_cosine, np.maximum(cosine, b), parabola), b).reshape(2, r)
     return peak
 
 
