@@ -75,6 +75,7 @@ from edgevib.pipelines.types import AnalysisPlan, FrameIndicators, PipelineError
 __all__ = ["ReplayOptions", "configure_replay", "replay", "run_replay", "snapshot_files", "snapshot_times"]
 
 _BATCH = 64
+_COPY_GAP_S = 0.05  # modification times closer than this (median gap) are copy times, not snapshot times
 _NAME_TIMES = (
     (re.compile(r"(\d{4})(\d{2})(\d{2})T(\d{2})(\d{2})(\d{2})(\.\d+)?Z?"), True),
     (re.compile(r"(\d{4})-(\d{2})-(\d{2})[T _](\d{2})[:-](\d{2})[:-](\d{2})(\.\d+)?"), True),
@@ -215,7 +216,16 @@ def snapshot_times(files: list[Path], *, time_column: str | None = None, interva
         if missing:
             raise InputError(f"no date and time in the file name {missing[0]!r} (e.g. 20261201T223204Z)")
         return [float(t) for t in named if t is not None], "the date and time in each file name"
-    return [f.stat().st_mtime for f in files], "file modification times"
+    stamps = [f.stat().st_mtime for f in files]
+    if not mtime and len(files) >= 3:
+        gaps = np.diff(np.sort(np.asarray(stamps)))
+        if float(np.median(gaps)) < _COPY_GAP_S:  # written in one go: when they were copied, not recorded
+            raise InputError(
+                f"the {len(files)} files carry no date and time in their names and their modification times lie "
+                f"within {max(stamps) - min(stamps):.3g} s (copied, not recorded, it seems): give the times with "
+                "--time-column N|H,M,S[,US] (columns of each CSV file), --interval S (the numbers in the names), "
+                "--time-from-name, or --mtime to use the modification times anyway")
+    return stamps, "file modification times"
 
 
 # --------------------------------------------------------------------------------------------- options

@@ -180,6 +180,17 @@ def test_times_from_names_and_modification_times(tmp_path: Path, capsys: pytest.
                                                      ("c.npy", 1_800_007_200.0)]
     assert main(["replay", str(tmp_path / "plain"), "--fs", "2560", "--time-from-name"]) == 2
     assert "no date and time in the file name" in capsys.readouterr().err
+    # files copied in one go (the modification times of a fresh copy): no silent projection from copy times
+    copied = tmp_path / "copied"
+    copied.mkdir()
+    for f in sorted(FEMTO.glob("acc_*.csv"))[:5]:
+        (copied / f.name).write_bytes(f.read_bytes())
+        os.utime(copied / f.name, (1_800_000_000.0, 1_800_000_000.0))
+    assert main(["replay", str(copied), *FEMTO_ARGS]) == 2
+    err = capsys.readouterr().err
+    assert "modification times lie within 0 s" in err and "--time-column" in err and "--interval" in err
+    assert main(["replay", str(copied), *FEMTO_ARGS, "--mtime", "--json"]) == 0  # asked for explicitly
+    assert len(_lines(capsys)) == 5
 
 
 def test_analysis_options_as_analyze(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
