@@ -13,6 +13,7 @@ import subprocess
 import sys
 import tempfile
 import time
+import urllib.parse
 import urllib.request
 from collections.abc import Iterator
 from pathlib import Path
@@ -124,33 +125,37 @@ def test_page_lists_every_point_without_errors(browser: Any, demo: Demo) -> None
     assert console.errors == []
 
 
-def _marker_and_frame(page: Any) -> tuple[str, float]:
-    frame = page.get_attribute("#panel-spectrum", "data-frame-end")
-    value = page.get_attribute('#sp-markers tr[data-marker="1x"] td.vel', "data-value")
-    return frame, float(value)
+class Answers:
+    """The API's answers the page received on one endpoint (the documents it drew), kept to be read afterwards."""
+
+    def __init__(self, page: Any, suffix: str) -> None:
+        self.responses: list[Any] = []
+        page.on("response", lambda r: self.responses.append(r)
+                if urllib.parse.urlsplit(r.url).path.endswith(suffix) and r.status == 200 else None)
+
+    def for_frame(self, frame_end: str) -> dict[str, Any]:
+        for r in reversed(self.responses):
+            doc: dict[str, Any] = r.json()
+            if doc.get("frame_end") == frame_end:
+                return doc
+        pytest.fail(f"the page drew frame {frame_end} without an answer for it")
 
 
 def test_spectrum_marks_the_1x_peak_of_the_imbalanced_pump(browser: Any, demo: Demo) -> None:
     page = browser.new_page()
     console = Console(page)
+    answers = Answers(page, "/api/v1/points/P-101-DE-H/spectrum")
     page.goto(demo.base + "/#P-101-DE-H")
     page.wait_for_selector('#sp-markers tr[data-marker="1x"]', timeout=20000)
     assert page.locator("#sp-chart canvas").count() == 1  # the chart is drawn
-    # the value the page shows for 1× is the API's for the same frame (a new frame every 0.64 s; the page reloads
-    # its panels at most every 2 s, so the two agree on a frame within a few tries)
-    for _ in range(100):
-        frame, value = _marker_and_frame(page)
-        doc = api(demo.base, "/api/v1/points/P-101-DE-H/spectrum")
-        if doc["frame_end"] == frame:
-            one = next(m for m in doc["markers"] if m["key"] == "1x")
-            assert value == pytest.approx(one["velocity_mm_s"], rel=1e-5)
-            text = page.inner_text('#sp-markers tr[data-marker="1x"] td.vel')
-            shown = float(format(one["velocity_mm_s"], ".4g"))
-            assert text == f"{shown:g} mm/s"
-            break
-        page.wait_for_timeout(150)
-    else:
-        pytest.fail("the page and the API never showed the same frame")
+    # the frame the page shows and its 1× value, read in one go (the page redraws as frames arrive) …
+    frame, value, text = page.eval_on_selector("#panel-spectrum", """p => {
+        const cell = document.querySelector('#sp-markers tr[data-marker="1x"] td.vel');
+        return [p.dataset.frameEnd, Number(cell.dataset.value), cell.textContent]; }""")
+    # … are the API's answer for that frame
+    one = next(m for m in answers.for_frame(frame)["markers"] if m["key"] == "1x")
+    assert value == pytest.approx(one["velocity_mm_s"], rel=1e-9)
+    assert text == f"{float(format(one['velocity_mm_s'], '.4g')):g} mm/s"
     # the imbalanced pump: 1× dominates (ISO zone D; simulator: 6 mm/s imbalance)
     assert value > 4.5
     # the trend shows the alarm layer's set points and every ISO 20816-3 zone boundary of the pump
@@ -171,25 +176,21 @@ def test_spectrum_marks_the_1x_peak_of_the_imbalanced_pump(browser: Any, demo: D
 def test_envelope_marks_bpfo_on_the_failing_bearing_and_updates_live(browser: Any, demo: Demo) -> None:
     page = browser.new_page()
     console = Console(page)
+    answers = Answers(page, "/api/v1/points/B-301-DE-H/envelope")
     page.goto(demo.base + "/#B-301-DE-H")
     page.wait_for_selector('#en-families tr[data-family="bpfo"]', timeout=20000)
-    # the BPFO family is marked, with the verdict the API gives for the frame the page shows
-    for _ in range(100):
-        frame = page.get_attribute("#panel-envelope", "data-frame-end")
-        verdict = page.get_attribute('#en-families tr[data-family="bpfo"]', "data-verdict")
-        doc = api(demo.base, "/api/v1/points/B-301-DE-H/envelope")
-        if doc["frame_end"] == frame:
-            fam = next(f for f in doc["families"] if f["key"] == "bpfo")
-            # the failing bearing's outer-race defect is detected (the numerical core's verdict for this frame)
-            assert verdict == fam["verdict"] == "detected" and doc["detected"] == ["bpfo"]
-            assert "BPFO" in page.inner_text('#en-families tr[data-family="bpfo"]')
-            assert page.inner_text('#en-families tr[data-family="bpfo"] td.v-detected').startswith("detected")
-            break
-        page.wait_for_timeout(150)
-    else:
-        pytest.fail("the page and the API never showed the same frame")
+    # the BPFO family is marked, with the verdict the API gave for the frame the page shows
+    frame, verdict, row = page.eval_on_selector("#panel-envelope", """p => {
+        const tr = document.querySelector('#en-families tr[data-family="bpfo"]');
+        return [p.dataset.frameEnd, tr.dataset.verdict, tr.textContent]; }""")
+    doc = answers.for_frame(frame)
+    fam = next(f for f in doc["families"] if f["key"] == "bpfo")
+    # the failing bearing's outer-race defect is detected (the numerical core's verdict for this frame)
+    assert verdict == fam["verdict"] == "detected" and doc["detected"] == ["bpfo"]
+    assert "BPFO" in row and row.endswith("detected")
     assert page.get_attribute('#en-families tr[data-family="bpfi"]', "data-verdict") == "not detected"
-    assert page.locator("#en-chart canvas").count() == 1 and page.locator("#wf-chart canvas").count() == 1
+    page.wait_for_selector("#en-chart canvas", timeout=20000)  # the panels load independently
+    page.wait_for_selector("#wf-chart canvas", timeout=20000)
     # live: the panels reload on their own as frames arrive (Server-Sent Events), without a page reload
     first = page.get_attribute("#panel-envelope", "data-frame-end")
     wait_until(page, lambda: page.get_attribute("#panel-envelope", "data-frame-end") != first, "a live update", 60)
