@@ -22,6 +22,7 @@ Scaling (documented once, used everywhere):
 from __future__ import annotations
 
 import math
+from functools import lru_cache
 from typing import Any, Literal
 
 import numpy as np
@@ -226,8 +227,7 @@ def window_argmax(spec: FloatArray, lo: IntArray, hi: IntArray) -> IntArray:
     """
     idx, valid = _windows(spec.shape[1], lo, hi)
     vals = np.where(valid, _gather(spec, idx), -np.inf)
-    best = np.argmax(vals, axis=-1)
-    out: IntArray = np.take_along_axis(idx, best[..., None], axis=-1)[..., 0]
+    out: IntArray = idx[..., 0] + np.argmax(vals, axis=-1)  # (a window's lines are consecutive, never clipped)
     return out
 
 
@@ -238,7 +238,9 @@ def masked_median(spec: FloatArray, lo: IntArray, hi: IntArray, ex_lo: IntArray,
     valid &= (idx < ex_lo[..., None]) | (idx > ex_hi[..., None])
     vals = np.sort(np.where(valid, _gather(spec, idx), np.inf), axis=-1)
     count = valid.sum(axis=-1)
-    both = np.stack([np.maximum((count - 1) // 2, 0), np.maximum(count // 2, 0)], axis=-1)
+    both = np.empty((*count.shape, 2), dtype=np.intp)
+    np.maximum((count - 1) // 2, 0, out=both[..., 0])
+    np.maximum(count // 2, 0, out=both[..., 1])
     pair = np.take_along_axis(vals, both, axis=-1)
     with np.errstate(invalid="ignore"):
         med = 0.5 * (pair[..., 0] + pair[..., 1])
@@ -327,11 +329,11 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     c, k = amp.shape
     amp3 = amp.copy()
     amp3[:, 1:-1] = np.maximum(np.maximum(amp[:, :-2], amp[:, 1:-1]), amp[:, 2:])
-    cand = np.arange(speed_range_hz[0] / df_hz, speed_range_hz[1] / df_hz + 1e-9, 1.0 / 3.0)
+    cand, at, between = _speed_candidates(speed_range_hz[0], speed_range_hz[1], df_hz, k, harmonics)
     score = np.zeros((c, cand.size))
-    for h in range(1, harmonics + 1):
-        score += amp3[:, np.minimum(np.rint(h * cand).astype(np.intp), k - 1)]
-        score -= amp3[:, np.minimum(np.rint((h - 0.5) * cand).astype(np.intp), k - 1)]
+    for h in range(harmonics):
+        score += amp3[:, at[h]]
+        score -= amp3[:, between[h]]
     # the best few distinct candidates (local maxima of the score), best first
     local = np.ones(score.shape, dtype=bool)
     local[:, 1:] &= score[:, 1:] >= score[:, :-1]
@@ -373,11 +375,9 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     a_w = line_1x[rows, first]
 
     def related_to(f0: FloatArray) -> npt.NDArray[np.bool_]:
-        ratio = f_est / f0[:, None]
-        out = np.zeros(ratio.shape, dtype=bool)
-        for m in (1.0, 2.0, 3.0, 4.0):
-            out |= np.abs(ratio - m) <= SPEED_RELATED_TOLERANCE * m
-            out |= np.abs(1.0 / ratio - m) <= SPEED_RELATED_TOLERANCE * m
+        ratio = (f_est / f0[:, None])[..., None]
+        near = (np.abs(ratio - _RELATED) <= _RELATED_TOL) | (np.abs(1.0 / ratio - _RELATED) <= _RELATED_TOL)
+        out: npt.NDArray[np.bool_] = near.any(axis=-1)
         return out
 
     explained = related_to(f_w)
@@ -415,6 +415,25 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     refined, precise = _harmonic_refinement(acc, f_w, df_hz, harmonics, tolerance)
     out: FloatArray = np.where(ok & precise, refined, np.nan)
     return out, quality
+
+
+_RELATED = np.array([1.0, 2.0, 3.0, 4.0])  # frequency ratios of harmonically related candidates
+_RELATED_TOL = SPEED_RELATED_TOLERANCE * _RELATED
+_RELATED.flags.writeable = False
+_RELATED_TOL.flags.writeable = False
+
+
+@lru_cache(maxsize=64)
+def _speed_candidates(lo_hz: float, hi_hz: float, df_hz: float, k: int,
+                      harmonics: int) -> tuple[FloatArray, tuple[IntArray, ...], tuple[IntArray, ...]]:
+    """The candidate speeds of :func:`estimate_speed_hz` in lines (steps of a third of a line) and, per harmonic
+    h = 1 … ``harmonics``, the lines of h × each candidate and of (h − ½) × it (a plan's constants: kept)."""
+    cand = np.arange(lo_hz / df_hz, hi_hz / df_hz + 1e-9, 1.0 / 3.0)
+    at = tuple(np.minimum(np.rint(h * cand).astype(np.intp), k - 1) for h in range(1, harmonics + 1))
+    between = tuple(np.minimum(np.rint((h - 0.5) * cand).astype(np.intp), k - 1) for h in range(1, harmonics + 1))
+    for a in (cand, *at, *between):
+        a.flags.writeable = False
+    return cand, at, between
 
 
 def _refined_lines(acc: FloatArray, f_hz: FloatArray, df_hz: float) -> tuple[FloatArray, FloatArray, FloatArray]:
