@@ -33,7 +33,7 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
-__all__ = ["FORMATS", "InputError", "Waveform", "read_waveform"]
+__all__ = ["FORMATS", "InputError", "Waveform", "read_text_waveform", "read_waveform"]
 
 FORMATS = (".wav", ".npy", ".csv", ".txt", ".mat")
 FS_NAMES = ("fs", "Fs", "FS", "fs_hz", "sr", "sample_rate", "sampling_rate", "samplerate")
@@ -361,6 +361,14 @@ def _read_mat(path: Path, var: str | None, channel: int | None, fs_var: str | No
 
 
 # --------------------------------------------------------------------------------------------- entry point
+
+
+def read_text_waveform(path: Path, *, column: str | None = None) -> Waveform:
+    """One column of a text table whose name has no known suffix — a logger's files named by their time only
+    (``2004.02.12.10.32.39``) — read like a CSV file (comma, semicolon, tab or blank separated)."""
+    if not path.is_file():
+        raise InputError(f"file {path} not found")
+    return _read_csv(path, column)
 
 
 def read_waveform(path: Path, *, var: str | None = None, channel: int | None = None, column: str | None = None,
