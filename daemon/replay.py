@@ -1,7 +1,8 @@
 """``edgevib replay DIR``: a directory (or glob) of timestamped snapshots run through the daemon's own analysis,
 history, trend and projection code, as fast as the CPU allows.
 
-Each file is one snapshot (CSV, WAV, ``.npy``, MATLAB ``.mat``: the readers of ``edgevib analyze``).  Its time:
+Each file is one snapshot (CSV, WAV, ``.npy``, MATLAB ``.mat``: the readers of ``edgevib analyze``; a file named by
+its date and time alone, ``2004.02.12.10.32.39``, is read as a text table).  Its time:
 
 * ``--time-column SPEC`` — from the CSV file's first data row: ``N`` (a column of seconds; values above 10⁹ are
   Unix time, smaller ones count from ``--start``) or ``H,M,S[,US]`` (hour, minute, second and microsecond
@@ -66,6 +67,7 @@ from edgevib.daemon.offline import (
 )
 from edgevib.daemon.timestamps import rfc3339_utc_s
 from edgevib.daemon.trendwatch import HISTORY_INDICATORS, evaluate, frame_values, running_state
+from edgevib.daemon.waveform_files import read_text_waveform
 from edgevib.pipelines.analysis import analyze_frames, default_envelope_band, make_plan
 from edgevib.pipelines.conditioning import to_g
 from edgevib.pipelines.severity import iso_zone, zone_boundaries_mm_s
@@ -95,7 +97,7 @@ def snapshot_files(source: str, notes: list[str] | None = None) -> list[Path]:
     replayed and the others are named in ``notes`` (a glob pattern picks another)."""
     p = Path(source)
     if p.is_dir():
-        files = [f for f in p.iterdir() if f.is_file() and f.suffix.lower() in FORMATS]
+        files = [f for f in p.iterdir() if f.is_file() and _snapshot_name(f)]
         families: dict[str, list[Path]] = {}
         for f in files:
             families.setdefault(_family(f.name), []).append(f)
@@ -113,10 +115,18 @@ def snapshot_files(source: str, notes: list[str] | None = None) -> list[Path]:
         raise InputError(f"{source} is a file; replay takes a directory or a glob pattern of snapshot files")
     else:
         raise InputError(f"{source}: no such directory")
-    files = [f for f in files if f.suffix.lower() in FORMATS]
+    files = [f for f in files if _snapshot_name(f)]
     if not files:
         raise InputError(f"{source}: no snapshot files ({', '.join(FORMATS)})")
     return sorted(files, key=_natural_key)
+
+
+def _snapshot_name(f: Path) -> bool:
+    """A snapshot file: a known suffix, or a name that is a date and time and nothing else (a logger's text
+    files named ``2004.02.12.10.32.39``, read as text tables)."""
+    if f.suffix.lower() in FORMATS:
+        return True
+    return any(rx.fullmatch(f.name) for rx, _ in _NAME_TIMES)
 
 
 def _family(name: str) -> str:
@@ -354,7 +364,10 @@ class _Snap:
 
 
 def _read(index: int, path: Path, t_s: float, o: ReplayOptions) -> _Snap:
-    wave = read_waveform(path, var=o.var, channel=o.channel, full_scale=o.full_scale)
+    if path.suffix.lower() in FORMATS:
+        wave = read_waveform(path, var=o.var, channel=o.channel, full_scale=o.full_scale)
+    else:  # a time-named text table
+        wave = read_text_waveform(path, column=None if o.channel is None else str(o.channel))
     if o.fs_hz is not None:
         fs = o.fs_hz
         if wave.fs_hz is not None and path.suffix.lower() == ".wav" and abs(fs - wave.fs_hz) > 1e-9 * fs:

@@ -256,3 +256,24 @@ def test_trend_listing_and_chart_stay_within_the_width() -> None:
         assert max(len(line) for line in chart.splitlines()) <= 80
     assert "needs at least 12 running values" in render_chart(series, doc, width=80).replace("\n", " ")
     assert "no trend evaluated yet" in render_chart(series, None, width=80)
+
+
+def test_time_named_text_files_without_a_suffix(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # A logger that names each snapshot by its time only, as a tab-separated text table of channels
+    # (``2004.02.12.10.32.39``: year, month, day, hour, minute, second): read as text, times from the names.
+    rng = np.random.default_rng(8)
+    fs, n = 20480.0, 4096
+    t = np.arange(n) / fs
+    names = ["2004.02.12.10.32.39", "2004.02.12.10.42.39", "2004.02.12.10.52.39", "2004.02.12.11.02.39"]
+    for k, name in enumerate(names):
+        x = np.stack([(0.1 + 0.01 * k) * np.sin(2 * np.pi * 33.3 * t) + 0.02 * rng.standard_normal(n),
+                      0.05 * rng.standard_normal(n)], axis=1)
+        np.savetxt(tmp_path / name, x, delimiter="\t", fmt="%.6f")
+    (tmp_path / "NOTES").write_text("not a snapshot\n")
+    assert main(["replay", str(tmp_path), "--fs", "20480", "--column", "1", "--json"]) == 0
+    rows = _lines(capsys)
+    assert [r["time"] for r in rows] == ["2004-02-12T10:32:39.000Z", "2004-02-12T10:42:39.000Z",
+                                         "2004-02-12T10:52:39.000Z", "2004-02-12T11:02:39.000Z"]
+    # column 1 (0-based) is the noise channel: its r.m.s. is 0.05 g (numpy on the written values)
+    x1 = np.loadtxt(tmp_path / names[0], delimiter="\t")[:, 1]
+    assert rows[0]["indicators"]["acceleration_rms_g"] == pytest.approx(np.std(x1), rel=1e-3)
