@@ -1247,9 +1247,20 @@ def _unknown(loc: tuple[int | str, ...], value: object) -> str:
     return f"unknown key{hint}" if hint else f"unknown key (known keys here: {', '.join(sorted(known)) or 'none'})"
 
 
+def _first_error(exc: ValidationError) -> Any:
+    """The problem to report: the first, except that an unknown key beside a missing one comes first (a misspelt
+    required key is reported as the misspelling, with the key that was meant)."""
+    errors = exc.errors(include_url=False)
+    err = errors[0]
+    if err["type"] == "missing":
+        parent = tuple(err["loc"])[:-1]
+        err = next((e for e in errors if e["type"] == "extra_forbidden" and tuple(e["loc"])[:-1] == parent), err)
+    return err
+
+
 def _translate(exc: ValidationError) -> ConfigError:
     """The first problem of a validation error, in our words, with its dotted key path."""
-    err = exc.errors(include_url=False)[0]
+    err = _first_error(exc)
     raw_loc: tuple[int | str, ...] = tuple(err["loc"])
     loc, kind, value, ctx = _clean(raw_loc), err["type"], err.get("input"), err.get("ctx") or {}
     problem: str = err["msg"]

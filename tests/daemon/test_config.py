@@ -56,6 +56,11 @@ def test_minimal_config_fills_defaults() -> None:
     (lambda d: d["points"][0].update(colour="red"), "points[0].colour", "unknown key"),
     (lambda d: d.update(extra={}), "extra", "unknown table [extra]"),
     (lambda d: d["points"][0].update(fs_Hz=1.0), "points[0].fs_Hz", "unknown key; did you mean `fs_hz`?"),
+    # the misspelling in place of a required key names the key that was meant, not the missing one
+    (lambda d: d["points"][0].update(fs_Hz=d["points"][0].pop("fs_hz")), "points[0].fs_Hz",
+     "unknown key; did you mean `fs_hz`?"),
+    (lambda d: d["sources"][0].update(nme=d["sources"][0].pop("name")), "sources[0].nme",
+     "unknown key; did you mean `name`?"),
     (lambda d: d["points"][0].update(frame_sample=4096), "points[0].frame_sample", "did you mean `frame_samples`?"),
     (lambda d: d.update(metric={"listen": "127.0.0.1:9851"}), "metric",
      "unknown table [metric]; did you mean `[metrics]`?"),
