@@ -34,7 +34,7 @@ import math
 import os
 import re
 import tomllib
-from collections.abc import Iterator, Mapping
+from collections.abc import Callable, Iterator, Mapping
 from contextlib import contextmanager
 from contextvars import ContextVar
 from dataclasses import dataclass
@@ -1258,40 +1258,48 @@ def _first_error(exc: ValidationError) -> Any:
     return err
 
 
+_BOUNDS = {"greater_than_equal": (">=", "ge"), "greater_than": (">", "gt"), "less_than_equal": ("<=", "le"),
+           "less_than": ("<", "lt")}
+
+
+def _must_be(what: str) -> Callable[[object, dict[str, Any]], str]:
+    return lambda value, _ctx: f"must be {what}, got {_type_name(value)}"
+
+
+def _out_of_range(kind: str) -> Callable[[object, dict[str, Any]], str]:
+    op, bound = _BOUNDS[kind]
+    return lambda value, ctx: f"{value:g} is out of range: must be {op} {ctx[bound]:g}"
+
+
+# pydantic's error type -> our words, from the offending value and the error's context
+_PROBLEMS: dict[str, Callable[[object, dict[str, Any]], str]] = {
+    "missing": lambda _v, _c: "required key is missing",
+    **dict.fromkeys(("int_type", "int_from_float", "int_parsing"), _must_be("an integer")),
+    **dict.fromkeys(("float_type", "float_parsing"), _must_be("a number")),
+    "finite_number": lambda value, _c: f"must be finite, got {value!r}",
+    **dict.fromkeys(("string_type", "str_type"), _must_be("a string")),
+    "bool_type": _must_be("true or false"),
+    **{kind: _out_of_range(kind) for kind in _BOUNDS},
+    "literal_error": lambda value, ctx: f"{value!r} is not one of {ctx['expected']}",
+    **dict.fromkeys(("model_type", "dict_type", "model_attributes_type"), _must_be("a table")),
+    **dict.fromkeys(("tuple_type", "list_type"), _must_be("an array")),
+    "too_short": lambda _v, ctx: ("must not be empty" if ctx.get("min_length") == 1 else
+                                  f"needs at least {ctx['min_length']} entries"),
+    "too_long": lambda _v, ctx: f"{ctx.get('actual_length')} entries exceed the limit of {ctx['max_length']} per "
+                                "instance",
+}
+
+
 def _translate(exc: ValidationError) -> ConfigError:
     """The first problem of a validation error, in our words, with its dotted key path."""
     err = _first_error(exc)
     raw_loc: tuple[int | str, ...] = tuple(err["loc"])
     loc, kind, value, ctx = _clean(raw_loc), err["type"], err.get("input"), err.get("ctx") or {}
     problem: str = err["msg"]
-    if kind == "missing":
-        problem = "required key is missing"
+    if kind in _PROBLEMS:
+        problem = _PROBLEMS[kind](value, ctx)
     elif kind == "extra_forbidden":
         problem = _unknown(raw_loc, value)
-    elif kind in ("int_type", "int_from_float", "int_parsing"):
-        problem = f"must be an integer, got {_type_name(value)}"
-    elif kind in ("float_type", "float_parsing"):
-        problem = f"must be a number, got {_type_name(value)}"
-    elif kind == "finite_number":
-        problem = f"must be finite, got {value!r}"
-    elif kind in ("string_type", "str_type"):
-        problem = f"must be a string, got {_type_name(value)}"
-    elif kind == "bool_type":
-        problem = f"must be true or false, got {_type_name(value)}"
-    elif kind in ("greater_than_equal", "greater_than", "less_than_equal", "less_than"):
-        op, bound = {"greater_than_equal": (">=", "ge"), "greater_than": (">", "gt"),
-                     "less_than_equal": ("<=", "le"), "less_than": ("<", "lt")}[kind]
-        problem = f"{value:g} is out of range: must be {op} {ctx[bound]:g}"
-    elif kind == "literal_error":
-        problem = f"{value!r} is not one of {ctx['expected']}"
-    elif kind in ("model_type", "dict_type", "model_attributes_type"):
-        problem = f"must be a table, got {_type_name(value)}"
-    elif kind in ("tuple_type", "list_type"):
-        problem = f"must be an array, got {_type_name(value)}"
-    elif kind == "too_short":
-        problem = "must not be empty" if ctx.get("min_length") == 1 else f"needs at least {ctx['min_length']} entries"
-    elif kind == "too_long":
-        problem = f"{ctx.get('actual_length')} entries exceed the limit of {ctx['max_length']} per instance"
     elif kind == "union_tag_invalid":
         loc, problem = (*loc, "type"), f"{ctx['tag']!r} is not one of {ctx['expected_tags']}"
     elif kind == "union_tag_not_found":
