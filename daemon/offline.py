@@ -29,7 +29,7 @@ from typing import Any, NoReturn
 
 import numpy as np
 
-from edgevib.daemon.indicators import document
+from edgevib.daemon.indicators import REGISTRY, Indicator, document
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.waveform_files import FORMATS, InputError, Waveform, read_waveform
 from edgevib.pipelines.analysis import (
@@ -583,6 +583,26 @@ def _family_line(name: str, f: dict[str, Any]) -> str:
             f"{f['harmonics_found']}  sidebands {f['sidebands_found']}  {verdict}")
 
 
+# the registry's scalar report keys the text report lays out by hand; any other one is listed after them
+_TEXT_LAID_OUT = frozenset({"mean_g", "acceleration_rms_g", "acceleration_peak_g", "acceleration_peak_to_peak_g",
+                            "crest_factor", "kurtosis", "skewness", "velocity_rms_mm_s", "velocity_peak_mm_s",
+                            "displacement_pp_um", "shaft_hz"})
+
+
+def _other_indicators(r: dict[str, Any]) -> list[str]:
+    """Lines for the registry's scalar indicators of the report that the fixed layout does not show."""
+    rows = [(ind, r.get(ind.report)) for ind in REGISTRY
+            if ind.per is None and ind.report is not None and ind.report not in _TEXT_LAID_OUT and ind.report in r]
+    if not rows:
+        return []
+    def value(ind: Indicator, v: Any) -> str:
+        if v is None or (isinstance(v, int | float) and not isinstance(v, bool)):
+            return _fmt(v, ".4g", "" if ind.unit == "1" else ind.unit)
+        return str(v)
+
+    return ["other indicators"] + [f"  {ind.report:<17} {value(ind, v)}  ({ind.text()})" for ind, v in rows]
+
+
 def _text_report(r: dict[str, Any]) -> str:
     lo, hi = r["velocity_band_hz"]
     out = [
@@ -626,6 +646,7 @@ def _text_report(r: dict[str, Any]) -> str:
             out.append(_family_line(name, env[name]))
         if found:
             out.append("  detected: " + (", ".join(FAMILY_LABELS[n] for n in env["detected"]) or "none"))
+    out += _other_indicators(r)
     for note in r["notes"]:
         out.append(f"note: {note}")
     out.append("")

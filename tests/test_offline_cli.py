@@ -96,6 +96,26 @@ def test_cwru_text_report(cwru_dir: Path, capsys: pytest.CaptureFixture[str]) ->
         assert text in out, text
 
 
+def test_text_report_lists_a_registry_indicator_it_does_not_lay_out(tmp_path: Path,
+                                                                     capsys: pytest.CaptureFixture[str],
+                                                                     monkeypatch: pytest.MonkeyPatch) -> None:
+    from edgevib.daemon import offline
+    from edgevib.daemon.indicators import Indicator
+
+    path = tmp_path / "p101-de-h.wav"
+    scipy.io.wavfile.write(path, 25600, sine(25600, 1.0, 50.0, 1.0).astype(np.float32))
+    code, out, _ = run(["analyze", str(path), "--rpm", "3000"], capsys)
+    assert code == 0 and "other indicators" not in out  # today's registry: every scalar has its line
+    # a new registry entry with a report key reaches the text report without editing it
+    extra = Indicator("clearance_factor", "1", "Acceleration clearance factor", read=lambda r: 4.0,
+                      report="clearance_factor")
+    monkeypatch.setattr(offline, "REGISTRY", (*offline.REGISTRY, extra))
+    doc = analyze_json([str(path), "--rpm", "3000"], capsys)
+    lines = offline._text_report({**doc, "clearance_factor": 4.0}).splitlines()
+    assert "other indicators" in lines
+    assert any(line.split()[:2] == ["clearance_factor", "4"] for line in lines), lines
+
+
 def test_float_wav(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     path = tmp_path / "p101-de-h.wav"
     scipy.io.wavfile.write(path, 25600, sine(25600, 1.0, 50.0, 1.0).astype(np.float32))
