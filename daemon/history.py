@@ -43,7 +43,7 @@ from collections import deque
 from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import numpy.typing as npt
@@ -52,6 +52,9 @@ from edgevib.daemon.interfaces import EdgevibError
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 from edgevib.daemon.sqlite_schema import migrate
 from edgevib.pipelines.rollup import STAT_FIELDS, LogSketch, summarize
+
+if TYPE_CHECKING:
+    from edgevib.daemon.config import HistoryConfig
 
 __all__ = [
     "LEVELS",
@@ -138,7 +141,7 @@ class HistorySettings:
         return {"frames": self.recent_s, "minute": self.minute_s, "hour": self.hour_s, "day": self.day_s}[what]
 
 
-def history_settings(table: Any) -> HistorySettings:
+def history_settings(table: HistoryConfig) -> HistorySettings:
     """The settings of a loaded ``[history]`` table (:class:`edgevib.daemon.config.HistoryConfig`, its ``file``
     already resolved against the state directory)."""
     return HistorySettings(

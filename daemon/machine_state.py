@@ -10,14 +10,17 @@ carries the machine's state after it.  Readers on other threads (the metrics scr
 from __future__ import annotations
 
 from collections.abc import Callable, Mapping
-from typing import Any
+from typing import TYPE_CHECKING
 
 from edgevib.pipelines.machine_state import MachineState, MachineStateSpec, observe
+
+if TYPE_CHECKING:
+    from edgevib.daemon.config import AlarmsConfig, Config, MachineConfig
 
 __all__ = ["MachineTracker", "state_spec"]
 
 
-def state_spec(machine: Any, settings: Any) -> MachineStateSpec:
+def state_spec(machine: MachineConfig, settings: AlarmsConfig) -> MachineStateSpec:
     """The state thresholds of a machine (``[[machines]] run_threshold_rpm``) under the ``[alarms]`` table
     (``run_threshold_velocity_mm_s``, ``run_hysteresis``, ``startup_grace_s``, ``speed_change_per_s``,
     ``speed_trend_window_s``)."""
@@ -35,13 +38,13 @@ class MachineTracker:
     layer provides it, the default trusts every point.
     """
 
-    def __init__(self, config: Any, healthy: Callable[[str], bool] | None = None) -> None:
+    def __init__(self, config: Config, healthy: Callable[[str], bool] | None = None) -> None:
         self.healthy: Callable[[str], bool] = healthy or (lambda _point: True)
         self._states: dict[str, MachineState] = {}
         self.specs: dict[str, MachineStateSpec] = {}
         self.configure(config)
 
-    def configure(self, config: Any) -> None:
+    def configure(self, config: Config) -> None:
         """(Re)build the thresholds; machines whose thresholds are unchanged keep their state."""
         specs = {m.id: state_spec(m, config.alarms) for m in config.machines}
         self._states = {mid: self._states[mid] if mid in self._states and self.specs.get(mid) == spec

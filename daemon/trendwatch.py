@@ -31,12 +31,12 @@ import math
 import time
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 
-from edgevib.daemon.config import TREND_INDICATORS
+from edgevib.daemon.config import TREND_INDICATORS, Config, TrendConfig
 from edgevib.daemon.history import (
     HistoryError,
     HistoryReader,
@@ -50,6 +50,11 @@ from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 from edgevib.daemon.timestamps import rfc3339_utc_s
 from edgevib.pipelines.trend import SECONDS_PER_DAY, TrendResult, TrendSpec, assess
+
+if TYPE_CHECKING:
+    from prometheus_client import CollectorRegistry
+
+    from edgevib.daemon.alarms.engine import AlarmLayer
 
 __all__ = [
     "DEFAULT_TRACKED",
@@ -105,7 +110,7 @@ class TrendSettings:
                          min_span_s=self.min_span_s, horizon_factor=self.horizon_factor, horizon_s=self.horizon_s)
 
 
-def trend_settings(table: Any) -> TrendSettings:
+def trend_settings(table: TrendConfig) -> TrendSettings:
     """The settings of a loaded ``[trend]`` table (:class:`edgevib.daemon.config.TrendConfig`)."""
     return TrendSettings(
         enabled=table.enabled, indicators=tuple(dict.fromkeys(table.indicators)),
@@ -334,8 +339,9 @@ class TrendWatch:
     defaults); ``alarm_layer``: the alarm layer or None.  Call :meth:`start` / :meth:`stop` from the event loop.
     """
 
-    def __init__(self, config: Any, history: HistorySettings, settings: TrendSettings, *,
-                 alarm_layer: Any = None, registry: Any = None, clock: Callable[[], float] = time.time) -> None:
+    def __init__(self, config: Config, history: HistorySettings, settings: TrendSettings, *,
+                 alarm_layer: AlarmLayer | None = None, registry: CollectorRegistry | None = None,
+                 clock: Callable[[], float] = time.time) -> None:
         self.config = config
         self.registry = registry
         self._collector: TrendCollector | None = None
@@ -392,7 +398,7 @@ class TrendWatch:
         if self.recorder is not None:
             await self.recorder.stop()
 
-    async def reconfigure(self, config: Any) -> None:
+    async def reconfigure(self, config: Config) -> None:
         """A reload keeps the history and its settings (logged when they changed); points follow the file."""
         self.config = config
         self.points = {p.id: p for p in config.points}
@@ -674,7 +680,8 @@ class TrendCollector:
                                     value=st.bytes)
 
 
-def create_trend_watch(config: Any, alarm_layer: Any = None, registry: Any = None) -> TrendWatch | None:
+def create_trend_watch(config: Config, alarm_layer: AlarmLayer | None = None,
+                       registry: CollectorRegistry | None = None) -> TrendWatch | None:
     """The trend layer for a configuration (None when ``[history] enabled = false``); its Prometheus collector is
     registered on ``registry`` when it starts."""
     hist = history_settings(config.history)

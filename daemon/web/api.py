@@ -26,7 +26,7 @@ from collections import OrderedDict, deque
 from collections.abc import Awaitable, Callable, Iterable
 from importlib import resources
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from aiohttp import web
@@ -40,6 +40,9 @@ from edgevib.daemon.web import panels
 from edgevib.daemon.web.listener import HttpListener
 from edgevib.daemon.web.recent import RecentValues
 from edgevib.pipelines.types import PipelineError
+
+if TYPE_CHECKING:
+    from edgevib.daemon.config import Config
 
 __all__ = [
     "API_VERSION",
@@ -380,7 +383,7 @@ class ViewService:
             with contextlib.suppress(ValueError, AttributeError):
                 layer.listeners.remove(self._on_alarm_event)
 
-    async def reconfigure(self, config: Any) -> None:
+    async def reconfigure(self, config: Config) -> None:
         self.recent.forget({p.id for p in config.points})
         self._cache.clear()
 
