@@ -339,6 +339,8 @@ class Daemon:
             self._reconfigurable.append(alarms)
             self.alarm_view = alarms
             self.machines.healthy = alarms.point_healthy  # a point with a sensor fault does not vote
+            alarms.tracks_sources = True  # source down/up: one source event, its points stale, no sensor faults
+            self.ingest.connection_listeners.append(alarms.on_source)
             if config.publish_opcua.enabled:  # the OPC UA namespace shows each point's alarm state as an enumeration
                 opcua.severity_of = alarms.point_severity
         from edgevib.daemon.trendwatch import create_trend_watch

@@ -888,6 +888,7 @@ class AlarmsConfig(_Table):
     baseline_frames: Int = Field(100, ge=5, le=10_000_000)
     trend_frames: Int = Field(30, ge=3, le=100000)
     max_shelve_h: Float = Field(168.0, ge=0.01, le=24 * 366.0)
+    history_days: Float = Field(400.0, ge=1.0, le=36600.0)
     socket: Text = "alarms.sock"  # resolved against state_dir
     socket_mode: Literal["0600", "0660"] = "0600"
     health: HealthConfig = Field(default_factory=HealthConfig)
@@ -938,6 +939,7 @@ class FeedConfig(_ReusesSource):
     dataschema: Text = ""  # URI template ({type}); "": no dataschema attribute
     message_expiry_s: Float = Field(0.0, ge=0.0, le=4294967295.0)  # MQTT 5 Message Expiry Interval; 0: none
     availability_topic: Text = "edgevib/{site}/availability"  # retained online/offline and Last Will; "": none
+    source_topic: Text = "edgevib/{site}/sources/{source}"  # source down/up events
     session_expiry_s: Int = Field(86400, ge=0, le=4294967295)  # MQTT 5 Session Expiry of the command session
 
     def dataschema_for(self, event_type: str) -> str | None:
@@ -967,7 +969,7 @@ class FeedConfig(_ReusesSource):
                            "protocol = \"5\" (MQTT 3.1.1 offers structured mode only)")
         for key, allowed in (("topic", ("site", "machine", "point")), ("state_topic", ("site", "machine", "point")),
                              ("command_topic", ("site",)), ("response_topic", ("site",)),
-                             ("availability_topic", ("site",))):
+                             ("availability_topic", ("site",)), ("source_topic", ("site", "source"))):
             value = getattr(self, key)
             problem = _template(value, allowed) if value else None
             if problem:

@@ -247,6 +247,9 @@ class BlockIngest:
         self.speeds: dict[str, tuple[float, int]] = {}  # machine id -> (shaft Hz, received ns)
         self.connected_since_ns: dict[str, int] = {}  # source -> when it last connected
         self.last_block_ns: dict[str, int] = {}  # point -> when its last accepted block arrived
+        # Told of every change of a source's connection (source name, connected), except deliberate closes at
+        # shutdown: the alarm layer's source up/down judgement.
+        self.connection_listeners: list[Callable[[str, bool], None]] = []
         self.configure(config)
 
     def configure(self, config: Config, keep: Iterable[str] = ()) -> None:
@@ -366,6 +369,12 @@ class BlockIngest:
             else:
                 self.log.warning(("conn", source), "source disconnected", source=source)
         self.stats.connected[source] = connected
+        if connected != was and not (self.closing and not connected):
+            for listener in self.connection_listeners:
+                try:
+                    listener(source, connected)
+                except Exception as exc:  # a listener never stops a source
+                    self.log.error(("conn-listener", source), "connection listener failed", error=repr(exc))
 
     def silent_points(self, now_ns: int | None = None) -> list[str]:
         """Points whose source has been connected for a while (10 s, at least 5 block periods) without one accepted

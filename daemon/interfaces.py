@@ -6,7 +6,7 @@ talks to the others only through what is named here.
 
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Protocol, runtime_checkable
 
@@ -23,6 +23,7 @@ if TYPE_CHECKING:  # the configuration imports this module and must not load the
     from edgevib.pipelines.types import FrameIndicators
 
 __all__ = [
+    "AlarmTransition",
     "AlarmView",
     "BlockHandler",
     "ConfigError",
@@ -139,8 +140,54 @@ class Reconfigurable(Protocol):
     async def reconfigure(self, config: Config) -> None: ...
 
 
-class AlarmView(Protocol):
-    """Read-only alarm state for displays (the demo table's alarm column)."""
+@dataclass(frozen=True, slots=True)
+class AlarmTransition:
+    """One recorded change of the alarm layer, as kept in its durable history (newest first from
+    :meth:`AlarmView.history`).
 
-    def state_text(self, point_id: str) -> str | None: ...
+    ``kind``: ``"alarm"`` (a limit's transition), ``"sensor"`` (a sensor fault raised or cleared) or ``"source"``
+    (a source's data path down or up).  ``t_s``: the event time (the frame's measurement time; operator actions and
+    timers: the point's latest frame time), Unix seconds.  ``indicator``: the limit's indicator, the sensor fault
+    (``flatline``, ``no-data`` …) or the source name.  ``state`` / ``from_state``: annunciated severity
+    (``normal``/``alert``/``danger``; sensor: ``sensor-fault``/``normal``; source: ``down``/``up``);
+    ``alarm_state``: the ISA-18.2 style operator state after it (alarms only).  ``value`` / ``limit``: the value at
+    the transition and the set point concerned.  ``by`` / ``at_s``: who issued an operator action and when (wall
+    clock).  ``reason``: suppression or shelve reason, ``capture``: the waveform file, ``stale``: why the point had
+    no good data then (``None``: data flowed).
+    """
+
+    kind: str
+    t_s: float
+    point: str
+    machine: str
+    indicator: str
+    unit: str | None
+    transition: str
+    from_state: str | None
+    state: str
+    alarm_state: str | None
+    value: float | None
+    limit: float | None
+    by: str | None
+    at_s: float | None
+    reason: str | None
+    capture: str | None
+    event_id: str
+    machine_state: str | None
+    stale: str | None
+
+
+class AlarmView(Protocol):
+    """Read-only alarm state for displays (the demo table's alarm column, ``edgevib alarms``, the view)."""
+
+    def state_text(self, point_id: str) -> str | None:
+        """Every active alarm of a point in one short text (``DANGER misalignment_2x_mm_s; ALERT …``)."""
+
+    def machine_view(self, machine: str) -> dict[str, object]:
+        """A machine's state: ``{state, since_s, grace_left_s}``."""
+
+    def history(self, point: str | None = None, *, since_s: float | None = None,
+                limit: int = 200) -> Sequence[AlarmTransition]:
+        """Recorded transitions from the durable store, newest first; ``limit`` 1..1000 (ValueError outside).
+        Thread-safe and read-only."""
 

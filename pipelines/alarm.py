@@ -16,7 +16,13 @@ ANSI/ISA-18.2-2016 (FIELD_NOTES §7)::
     latched           a latching limit whose value has fallen back: it shows its highest severity until an
                       acknowledge resets it
     shelved           hidden by an operator, with a reason and an expiry; tracking continues underneath
-    suppressed        hidden by design (machine stopped, start-up grace, sensor fault); tracking restarts after
+    suppressed        hidden by design (machine stopped, start-up grace, sensor fault); level tracking pauses
+                      (the active levels are kept) and resumes on the first frames after
+
+A limit whose data stopped (its source is down, its sensor silent) is *stale* (:func:`mark_stale`): it keeps its
+levels, acknowledgement, latch and shelf, only the pending debounce runs restart; the first finite value after
+the gap clears the flag and is judged as usual.  So an alarm returns to normal only on a good value below its
+clear threshold (ANSI/ISA-18.2: return to normal needs a good value), never because data stopped.
 
 Every function returns a new frozen :class:`AlarmState` and a tuple of :class:`Transition` events; time is a
 parameter (``now_s``, seconds on any monotonic-enough scale the caller keeps consistent).
@@ -43,6 +49,7 @@ __all__ = [
     "expire_shelf",
     "isa_state",
     "level_with_deadband",
+    "mark_stale",
     "process_severity",
     "shelve",
     "step",
@@ -140,6 +147,7 @@ class AlarmState:
     suppressed: str | None = None
     last_value: float | None = None
     since_s: float | None = None  # when the operator-facing state last changed
+    stale: str | None = None  # why no good value arrives ("source-down", "no-data"); None: data flows
 
 
 @dataclass(frozen=True, slots=True)
@@ -226,6 +234,23 @@ def _stamp(before: AlarmState, after: AlarmState, spec: LimitSpec, now_s: float)
     return after
 
 
+def _paused(track: LevelTrack) -> LevelTrack:
+    """A level whose pending delay restarts (its active flag is kept)."""
+    return LevelTrack(active=track.active)
+
+
+def mark_stale(state: AlarmState, reason: str, now_s: float,
+               spec: LimitSpec) -> tuple[AlarmState, tuple[Transition, ...]]:
+    """No good value arrives for a while (``reason``: ``"source-down"``, ``"no-data"``): keep every level, the
+    acknowledgement, latch and shelf; restart pending delays; annunciate nothing.  The next finite value given to
+    :func:`step` ends the stale period.  An expired shelf still ends (the only possible transition)."""
+    if not reason:
+        raise ValueError("a stale period needs a reason")
+    state, events = expire_shelf(state, now_s, spec)
+    after = replace(state, alert=_paused(state.alert), danger=_paused(state.danger), stale=reason)
+    return after, events
+
+
 def expire_shelf(state: AlarmState, now_s: float, spec: LimitSpec) -> tuple[AlarmState, tuple[Transition, ...]]:
     """Unshelve when the shelf has expired (``now_s >= shelved_until_s``); otherwise nothing changes."""
     if state.shelved_until_s is None or now_s < state.shelved_until_s:
@@ -238,16 +263,19 @@ def step(state: AlarmState, value: float, now_s: float, spec: LimitSpec,
     """Feed one frame's indicator value taken at ``now_s``.
 
     ``suppress`` names a suppression reason (``"machine-stopped"``, ``"start-up-grace"``, ``"sensor-fault"``):
-    while it is given, level tracking is reset and nothing is annunciated.  A non-finite ``value`` is ignored
-    (apart from shelf expiry and the end of a suppression).
+    while it is given, level tracking pauses (active levels are kept, pending delays restart) and nothing is
+    annunciated.  A non-finite ``value`` is ignored (apart from shelf expiry and the end of a suppression); a
+    finite one ends a stale period (:func:`mark_stale`).
     """
     state, events = expire_shelf(state, now_s, spec)
     out = list(events)
+    if state.stale is not None and math.isfinite(value):
+        state = replace(state, stale=None)
     if suppress is not None:
         if state.suppressed == suppress:
             return state, tuple(out)
         before = state
-        after = replace(state, alert=LevelTrack(), danger=LevelTrack(), suppressed=suppress)
+        after = replace(state, alert=_paused(state.alert), danger=_paused(state.danger), suppressed=suppress)
         # A normal (or shelved) alarm goes quietly; a visible one announces that it is now hidden.
         if isa_state(before, spec) not in ("normal", "shelved", "suppressed"):
             out.append(_transition("suppressed", before, after, spec, state.last_value, now_s, suppress))

@@ -8,6 +8,7 @@ topic, answered on the response topic).  Only these commands exist::
     {"cmd": "shelve", "point": P, "reason": R, "duration_s": S}    optional "indicator"
     {"cmd": "unshelve", "point": P}                  optional "indicator"
     {"cmd": "relearn", "point": P}                   forget P's baselines and learn them again
+    {"cmd": "history"}                               optional "point", "since_s" (Unix s), "limit" (1..1000)
 
 Every request may carry ``"id"`` (echoed in the response) and ``"by"`` (who asked; recorded in events).
 A response is ``{"ok": true, "result": …}`` or ``{"ok": false, "error": "…"}``.  The socket lives in the state
@@ -31,7 +32,7 @@ import structlog
 
 from edgevib.daemon.errors import EdgevibError
 
-__all__ = ["COMMANDS", "CommandError", "ControlServer", "handle_payload", "validate_request"]
+__all__ = ["COMMANDS", "CommandError", "ControlServer", "handle_payload", "human_duration", "validate_request"]
 
 log = structlog.get_logger("edgevib.alarms.control")
 
@@ -43,6 +44,7 @@ COMMANDS: dict[str, tuple[set[str], set[str]]] = {  # name -> (required keys, op
     "shelve": ({"point", "reason", "duration_s"}, {"indicator"}),
     "unshelve": ({"point"}, {"indicator"}),
     "relearn": ({"point"}, set()),
+    "history": (set(), {"point", "since_s", "limit"}),
 }
 
 
@@ -83,7 +85,34 @@ def validate_request(req: object) -> dict[str, Any]:
         d = req["duration_s"]
         if isinstance(d, bool) or not isinstance(d, int | float) or not math.isfinite(d) or d <= 0:
             raise CommandError(f"shelve: duration_s must be a number of seconds > 0, got {d!r}")
+    if cmd == "history":
+        since = req.get("since_s")
+        if since is not None and (isinstance(since, bool) or not isinstance(since, int | float)
+                                  or not math.isfinite(since)):
+            raise CommandError(f"history: since_s must be a time in Unix seconds, got {since!r}")
+        limit = req.get("limit", 200)
+        if isinstance(limit, bool) or not isinstance(limit, int) or not 1 <= limit <= 1000:
+            raise CommandError(f"history: limit must be an integer 1..1000, got {limit!r}")
     return req
+
+
+def human_duration(seconds: float) -> str:
+    """A duration as people read it: ``45 s``, ``12 min``, ``8 h``, ``500 h``, ``30 d`` (one unit, at most one
+    decimal; hours up to 1000 h since shelves are set in hours)."""
+    s = float(seconds)
+    if not math.isfinite(s):
+        return f"{s} s"
+    a = abs(s)
+    if a < 120:
+        value, unit = s, "s"
+    elif a < 2 * 3600:
+        value, unit = s / 60.0, "min"
+    elif a < 1000 * 3600:
+        value, unit = s / 3600.0, "h"
+    else:
+        value, unit = s / 86400.0, "d"
+    text = f"{value:.1f}".rstrip("0").rstrip(".") if abs(value) < 100 else f"{value:.0f}"
+    return f"{text} {unit}"
 
 
 def handle_payload(payload: bytes, handler: Callable[[dict[str, Any]], Any]) -> bytes:

@@ -5,7 +5,8 @@ For every analysed frame of a point:
 1. **Sensor health** (:func:`edgevib.pipelines.health.check_health`): a fault raises one
    ``io.edgevib.sensor.v1.fault`` event and suppresses that point's machine alarms (reason ``sensor-fault``) —
    a sensor fault is never reported as a machine fault.  It clears after ``sensor_recover_frames`` healthy
-   frames.  A point without frames for ``no_data_frames`` frame periods gets the ``no-data`` fault.
+   frames.  A point without frames for ``no_data_frames`` frame periods while its source is up and another point
+   of that source still delivers gets the ``no-data`` fault.
 2. **Run state** per machine: stopped when the overall velocity is under ``run_threshold_velocity_mm_s`` or a
    measured (not estimated) speed is under the machine's ``run_threshold_rpm``; after a start its alarms stay
    suppressed for ``startup_grace_s`` (reason ``machine-stopped`` / ``start-up-grace``).
@@ -13,7 +14,12 @@ For every analysed frame of a point:
 4. **Limits** resolve to set points (ISO 20816-3, absolute, baseline-relative), the pure state machine
    (:mod:`edgevib.pipelines.alarm`) steps, and each transition becomes an ``io.edgevib.alarm.v1.transition``
    event with value, limit, trend slope and advice; transitions into alert or danger save a waveform capture.
-5. State changes and their events are committed in one SQLite transaction before anything is published.
+5. **Data gaps.** A source whose connection is lost (or which is connected but none of whose points delivers)
+   gives one ``io.edgevib.source.v1.down`` event and, when data flows again, one ``io.edgevib.source.v1.up``; its
+   points' alarms are *stale* meanwhile: they keep their state and acknowledgement and are judged again on the
+   first good frames (:func:`edgevib.pipelines.alarm.mark_stale`).  No sensor fault is raised for them.
+6. State changes, their events and the history rows are committed in one SQLite transaction before anything is
+   published.
 
 Time for the state machine is the frames' measurement time (``t_end_ns``); shelf expiries are set on that
 timeline.  edgevib monitors and advises; it is not a machinery protection system.
@@ -23,6 +29,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import dataclasses
 import json
 import math
 import threading
@@ -40,21 +47,23 @@ from prometheus_client.registry import Collector
 
 from edgevib.daemon.alarms.capture import CaptureStore
 from edgevib.daemon.alarms.config import AlarmSettings, LevelRule, LimitConfig
-from edgevib.daemon.alarms.control import CommandError, ControlServer, handle_payload
+from edgevib.daemon.alarms.control import CommandError, ControlServer, handle_payload, human_duration
 from edgevib.daemon.alarms.feed import (
     ALARM_TYPE,
     BASELINE_TYPE,
     SENSOR_TYPE,
+    SOURCE_DOWN_TYPE,
+    SOURCE_UP_TYPE,
     MqttFeed,
     WebhookFeed,
     cloud_event,
     event_body,
 )
 from edgevib.daemon.alarms.outbox import Database, Outbox, OutboxEvent
-from edgevib.daemon.alarms.state import Baseline, SensorState, StateStore, restart_tracking
+from edgevib.daemon.alarms.state import Baseline, SensorState, SourceState, StateStore, restart_tracking
 from edgevib.daemon.config import Config
 from edgevib.daemon.indicators import LIMITABLE
-from edgevib.daemon.interfaces import FrameResult
+from edgevib.daemon.interfaces import AlarmTransition, FrameResult
 from edgevib.daemon.machine_state import MachineTracker
 from edgevib.daemon.sensor_health import HealthError, batch_health
 from edgevib.daemon.timestamps import rfc3339_utc_s
@@ -67,6 +76,7 @@ from edgevib.pipelines.alarm import (
     display_severity,
     expire_shelf,
     isa_state,
+    mark_stale,
     shelve,
     step,
     unshelve,
@@ -81,7 +91,9 @@ log = structlog.get_logger("edgevib.alarms")
 SEVERITY = ("normal", "alert", "danger")
 SUPPRESSION: dict[str, str] = {"stopped": "machine-stopped", "starting": "start-up-grace"}
 """Machine states under which machine alarms are suppressed by design, and the reason given."""
-NO_DATA_START_S = 30.0  # allowance after start before a point that never sent a frame counts as "no data"
+NO_DATA_START_S = 30.0  # allowance after start (and after a source returns) before a silent point counts
+SOURCE_CONNECT_GRACE_S = 10.0  # a source not connected this long after start is announced down
+HISTORY_LIMIT_MAX = 1000
 RELAPSE_WINDOW_S = 120.0  # a sensor fault back within this time of clearing doubles, triples… the re-arm delay
 _DISCLAIMER = "edgevib monitors and advises; it is not a protection system."
 _FAULT_HINT = {
@@ -147,6 +159,12 @@ class _Pending:
     events: list[OutboxEvent] = field(default_factory=list)
     forget: set[str] = field(default_factory=set)
     points: set[str] = field(default_factory=set)
+    sources: dict[str, SourceState] = field(default_factory=dict)
+    history: list[tuple[int, str, str, str, str, str]] = field(default_factory=list)
+
+    def __bool__(self) -> bool:
+        return bool(self.alarms or self.sensors or self.baselines or self.events or self.forget or self.sources
+                    or self.history)
 
 
 class AlarmLayer:
@@ -173,6 +191,18 @@ class AlarmLayer:
         self.clock = clock
         self.monotonic = monotonic
         self.points = {p.id: p for p in config.points}
+        self.sources_of: dict[str, list[str]] = {s.name: [] for s in config.sources}
+        for p in config.points:
+            self.sources_of.setdefault(p.source, []).append(p.id)
+        self.source_states: dict[str, SourceState] = {}  # as announced (durable)
+        self._conn: dict[str, bool] = {}  # live connection state of each source
+        self._conn_changes: deque[tuple[str, bool, float]] = deque()  # from the event loop to the timer
+        self._ever_up: set[str] = set()  # sources connected at least once since start
+        # Whether the daemon reports the sources' connections (on_source); without, every source counts as up.
+        self.tracks_sources = False
+        self._started_m = 0.0
+        self._wake: asyncio.Event | None = None
+        self.stale: dict[str, str] = {}  # point -> why its data stopped (until its next frame)
         self.machines_cfg = {m.id: m for m in config.machines}
         self.limits: dict[tuple[str, str], LimitConfig] = {lim.key: lim for lim in settings.limits}
         self._by_point: dict[str, list[LimitConfig]] = {}
@@ -230,8 +260,15 @@ class AlarmLayer:
         self.outbox = Outbox(self.db, sinks)
         self.store = StateStore(self.db)
         self._restore()
+        with contextlib.suppress(Exception):
+            pruned = await asyncio.to_thread(self.store.prune_history, time.time_ns() - round(
+                s.table.history_days * 86400e9))
+            if pruned:
+                log.info("alarm history pruned", rows=pruned, days=s.table.history_days)
         self.capture = await asyncio.to_thread(CaptureStore, s.capture)
         now = self.monotonic()
+        self._started_m = now
+        self._wake = asyncio.Event()
         for pid in self.points:  # sensors get a while to start sending before "no data" applies
             self.last_seen.setdefault(pid, now + NO_DATA_START_S)
         if s.feed.enabled and s.feed.connection is not None:
@@ -261,12 +298,21 @@ class AlarmLayer:
         self.alarms = {k: restart_tracking(v) for k, v in restored.items() if k in self.limits}
         self.baselines = {k: v for k, v in self.store.load_baselines().items() if k in self.limits}
         self.sensors = {k: v for k, v in self.store.load_sensors().items() if k in self.points}
+        self.source_states = {k: v for k, v in self.store.load_sources().items() if k in self.sources_of}
+        for name, st in self.source_states.items():
+            if st.down:
+                for pid in self.sources_of[name]:
+                    self.stale[pid] = "source-down"
+        for (pid, _), a in self.alarms.items():
+            if a.stale is not None:
+                self.stale.setdefault(pid, a.stale)
         for key in self.limits:
             self.specs[key] = self._spec(self.limits[key])
         active = sum(1 for k, a in self.alarms.items() if display_severity(a, self.specs[k]) > 0)
         if restored:
             log.info("alarm state restored", alarms=len(self.alarms), active=active,
-                     sensor_faults=sum(1 for s in self.sensors.values() if s.fault))
+                     sensor_faults=sum(1 for s in self.sensors.values() if s.fault),
+                     sources_down=[n for n, st in self.source_states.items() if st.down])
 
     async def stop(self) -> None:
         self._started = False
@@ -352,7 +398,7 @@ class AlarmLayer:
 
     def _frames_in_thread(self, results: list[FrameResult]) -> _Pending:
         pend = self._process(results, self._health(results))
-        if pend.alarms or pend.sensors or pend.baselines or pend.events or pend.forget:
+        if pend:
             self._write(pend)
         return pend
 
@@ -416,6 +462,12 @@ class AlarmLayer:
     def _frame(self, r: FrameResult, h: SensorHealth | None, pend: _Pending) -> None:
         pid, t_s = r.point_id, r.t_end_ns / 1e9
         self.last_frame[pid] = t_s
+        source = self.points[pid].source
+        if self.source_states.get(source, SourceState()).down and self._connected(source):
+            self._source_up(source, self.clock(), "data flows again", pend)  # a frame of a source announced down
+        still_down = self.source_states.get(source, SourceState()).down
+        if not still_down:
+            self.stale.pop(pid, None)
         sensor = self._sensor(r, h, t_s, pend)
         ms = self._machine_state(r, t_s)
         if sensor.fault is not None:
@@ -448,6 +500,9 @@ class AlarmLayer:
             spec = self.specs.get(key) or self._spec(lim)
             self.specs[key] = spec
             state, transitions = step(self.alarms.get(key, AlarmState()), value, t_s, spec, reason)
+            if still_down:  # a frame from before the source went down: judged, and stale again
+                state, more = mark_stale(state, "source-down", t_s, spec)
+                transitions += more
             self.alarms[key] = pend.alarms[key] = state
             for tr_ in transitions:
                 self._alarm_event(r, lim, tr_, pend)
@@ -499,12 +554,20 @@ class AlarmLayer:
         return {"state": ms.state, "since_s": ms.since_s, "grace_left_s": left}
 
     def _emit(self, type_: str, point: str, machine: str, data: dict[str, Any], t_ns: int, pend: _Pending,
-              event_id: str | None = None) -> str:
-        ev = cloud_event(type_=type_, source=self._source, subject=point, data=data, time_ns=t_ns,
+              event_id: str | None = None, *, subject: str | None = None, topic: str | None = None,
+              history: tuple[str, str] | None = None, at_s: float | None = None) -> str:
+        """Queue one event (and, with ``history = (kind, indicator)``, its history row) in ``pend``."""
+        ev = cloud_event(type_=type_, source=self._source, subject=subject or point, data=data, time_ns=t_ns,
                          event_id=event_id, dataschema=self.settings.feed.dataschema_for(type_))
-        pend.events.append(OutboxEvent(id=ev["id"], type=type_, subject=point, topic=self._topic(point, machine),
-                                       body=event_body(ev), created_ns=time.time_ns()))
-        pend.points.add(point)
+        pend.events.append(OutboxEvent(id=ev["id"], type=type_, subject=subject or point,
+                                       topic=topic or self._topic(point, machine), body=event_body(ev),
+                                       created_ns=time.time_ns()))
+        if history is not None:
+            row = {**data, "at_s": at_s}
+            pend.history.append((t_ns, history[0], point, history[1], str(ev["id"]),
+                                 json.dumps(row, separators=(",", ":"), allow_nan=False, default=str)))
+        if point:
+            pend.points.add(point)
         return str(ev["id"])
 
     def _sensor_event(self, point: str, machine: str, transition: str, fault: str, detail: str, t_ns: int,
@@ -512,11 +575,12 @@ class AlarmLayer:
         raised = transition == "raised"
         data = {**self._base_data(point, machine), "transition": transition,
                 "state": "sensor-fault" if raised else "normal", "fault": fault, "detail": detail,
+                "stale": self.stale.get(point),
                 "advice": ("Check the sensor, its cable, connector and mounting: this is a measurement problem, not "
                            "a machine finding. Machine alarms of this point are suppressed until it recovers. "
                            + _DISCLAIMER) if raised else
                           "The sensor signal looks healthy again; machine alarms of this point are re-armed."}
-        self._emit(SENSOR_TYPE, point, machine, data, t_ns, pend)
+        self._emit(SENSOR_TYPE, point, machine, data, t_ns, pend, history=("sensor", fault))
         self._count("sensor-fault" if raised else "sensor-recovered")
         log.warning("sensor fault" if raised else "sensor recovered", point=point, fault=fault, detail=detail)
 
@@ -545,6 +609,7 @@ class AlarmLayer:
             "alert_limit": spec.alert.set_point if spec is not None and spec.alert is not None else None,
             "danger_limit": danger, "trend_per_hour": slope,
             "iso_zone": r.iso_zone if r is not None else None, "reason": tr.reason, "by": by,
+            "stale": self.alarms.get(key, AlarmState()).stale,
             "advice": advice_text(tr.to_severity, idef.fault or "", tr.kind, tr.value, danger, slope),
             "capture": None,
         }
@@ -564,20 +629,21 @@ class AlarmLayer:
                         "rule": {"alert": _rule(lim.alert), "danger": _rule(lim.danger)}},
                 config_digest=self.settings.config_digest, site=self.settings.site)
         t_ns = r.t_end_ns if r is not None else round(tr.at_s * 1e9)
-        self._emit(ALARM_TYPE, lim.point, p.machine, data, t_ns, pend, event_id=eid)
+        self._emit(ALARM_TYPE, lim.point, p.machine, data, t_ns, pend, event_id=eid,
+                   history=("alarm", lim.indicator), at_s=self.clock() if by is not None else None)
         self._count(tr.kind)
         log.info("alarm " + tr.kind, point=lim.point, indicator=lim.indicator, state=SEVERITY[tr.to_severity],
                  value=tr.value, limit=tr.limit)
 
     async def _commit(self, pend: _Pending) -> None:
-        if not (pend.alarms or pend.sensors or pend.baselines or pend.events or pend.forget):
+        if not pend:
             return
         await asyncio.to_thread(self._write, pend)
         self._after_commit(pend)
 
     def _after_commit(self, pend: _Pending) -> None:
         """On the event loop, once ``pend`` is durable: listeners, feed wake-ups, retained state topics."""
-        if not (pend.alarms or pend.sensors or pend.baselines or pend.events or pend.forget):
+        if not pend:
             return
         self._notify(pend)
         if pend.events:
@@ -601,62 +667,202 @@ class AlarmLayer:
         with self._lock, self.db.transaction() as c:
             for point in pend.forget:
                 self.store.forget_baselines(c, point)
-            self.store.save(c, alarms=pend.alarms, sensors=pend.sensors, baselines=pend.baselines)
+            self.store.save(c, alarms=pend.alarms, sensors=pend.sensors, baselines=pend.baselines,
+                            sources=pend.sources)
+            self.store.add_history(c, pend.history)
             self.outbox.add(pend.events, conn=c)
 
     # ------------------------------------------------------------------------------------------ timers
 
     async def _timer(self) -> None:
         while self._started:
-            await asyncio.sleep(1.0)
+            if self._wake is not None:
+                with contextlib.suppress(TimeoutError):
+                    await asyncio.wait_for(self._wake.wait(), 1.0)
+                self._wake.clear()
+            else:
+                await asyncio.sleep(1.0)
             try:
                 pend = self._tick()
                 await self._commit(pend)
             except Exception as exc:  # the timer never dies
                 log.error("alarm timer failed", error=repr(exc))
 
+    def on_source(self, source: str, connected: bool) -> None:
+        """A source's connection came up or went down (called on the event loop by the daemon's ingest; a
+        deliberate close at shutdown is not reported).  The timer announces it at once."""
+        self.tracks_sources = True
+        self._conn[source] = connected
+        if connected:
+            self._ever_up.add(source)
+        self._conn_changes.append((source, connected, self.clock()))
+        if self._wake is not None:
+            self._wake.set()
+
+    def _connected(self, source: str) -> bool:
+        return self._conn.get(source, False) if self.tracks_sources else True
+
     def _frame_period_s(self, pid: str) -> float:
         p = self.points[pid]
         hop = getattr(p, "hop_samples", None) or getattr(p, "frame_samples", 16384)
         return float(hop or 16384) / float(p.fs_hz)
 
+    def _no_data_s(self, pid: str) -> float:
+        return max(2.0, float(self.settings.no_data_frames) * self._frame_period_s(pid))
+
+    def _silent(self, pid: str, now_m: float) -> bool:
+        return now_m - self.last_seen.get(pid, now_m) > self._no_data_s(pid)
+
     def _tick(self) -> _Pending:
-        """No-data detection (wall-clock) and shelf expiry between frames."""
+        """Source changes, no-data detection (wall-clock) and shelf expiry between frames."""
         pend = _Pending()
         now_m = self.monotonic()
         with self._lock:
-            for pid, p in self.points.items():
-                limit_s = max(2.0, self.settings.no_data_frames * self._frame_period_s(pid))
-                s = self.sensors.get(pid, SensorState())
-                if now_m - self.last_seen.get(pid, now_m) > limit_s and s.fault != "no-data":
-                    detail = f"no frames for more than {limit_s:.1f} s ({self.settings.no_data_frames} frame periods)"
-                    t_ns = round(self.last_frame.get(pid, self.clock()) * 1e9)
-                    self._sensor_event(pid, p.machine, "raised", "no-data", detail, t_ns, pend)
-                    s = replace(s, fault="no-data", detail=detail, since_s=self.last_frame.get(pid), healthy_run=0)
-                    self.sensors[pid] = pend.sensors[pid] = s
-                    for lim in self._by_point.get(pid, ()):
-                        st, trs = step(self.alarms.get(lim.key, AlarmState()), math.nan,
-                                       self.last_frame.get(pid, 0.0), self.specs[lim.key], "sensor-fault")
-                        self.alarms[lim.key] = pend.alarms[lim.key] = st
-                        for tr in trs:
-                            self._alarm_event(None, lim, tr, pend)
-                    self.suppressed[pid] = "sensor-fault"
-                # Shelves expire on the frames' timeline (a shelf is set from the last frame's time), advanced by
-                # the wall-clock time since that frame, so a shelf also ends while no frames arrive.
-                if pid in self.last_frame:
-                    now_s = self.last_frame[pid] + max(0.0, now_m - self.last_seen.get(pid, now_m))
-                else:
-                    now_s = self.clock()
-                for lim in self._by_point.get(pid, ()):
-                    shelved = self.alarms.get(lim.key)
-                    if shelved is None or shelved.shelved_until_s is None or now_s < shelved.shelved_until_s:
-                        continue
-                    spec = self.specs.get(lim.key) or self._spec(lim)
-                    st, trs = expire_shelf(shelved, now_s, spec)
-                    self.alarms[lim.key] = pend.alarms[lim.key] = st
-                    for tr in trs:
-                        self._alarm_event(None, lim, tr, pend)
+            self._source_tick(now_m, pend)
+            for pid in self.points:
+                self._no_data_tick(pid, now_m, pend)
+                self._shelf_tick(pid, now_m, pend)
         return pend
+
+    def _source_tick(self, now_m: float, pend: _Pending) -> None:
+        while self._conn_changes:
+            name, up, t = self._conn_changes.popleft()
+            if name not in self.sources_of:
+                continue
+            if up:
+                self._source_up(name, t, "connection restored", pend)
+            else:
+                self._source_down(name, t, "connection lost", pend)
+        for name, pids in self.sources_of.items():
+            st = self.source_states.get(name, SourceState())
+            if st.down:
+                continue
+            if not self._connected(name):
+                if name not in self._ever_up and now_m - self._started_m > SOURCE_CONNECT_GRACE_S:
+                    self._source_down(name, self.clock(), "not reachable since start", pend)
+            elif pids and all(self._silent(pid, now_m) for pid in pids):
+                quiet = max(now_m - self.last_seen.get(pid, now_m) for pid in pids)
+                self._source_down(name, self.clock(), f"connected, but none of its {len(pids)} point(s) has "
+                                  f"delivered data for {quiet:.0f} s", pend, silent=True)
+
+    def _no_data_tick(self, pid: str, now_m: float, pend: _Pending) -> None:
+        """A point silent while its source is up and another of its points delivered after this one was due: the
+        sensor (or its channel) is silent — a sensor fault.  Its alarms keep their state, stale."""
+        p = self.points[pid]
+        s = self.sensors.get(pid, SensorState())
+        if s.fault == "no-data" or self.source_states.get(p.source, SourceState()).down or \
+                not self._connected(p.source) or not self._silent(pid, now_m):
+            return
+        due = self.last_seen.get(pid, now_m) + self._no_data_s(pid)
+        if not any(self.last_seen.get(q, -math.inf) >= due for q in self.sources_of.get(p.source, ()) if q != pid):
+            return  # nothing else delivered since either: a source matter (see _source_tick), not this sensor
+        limit_s = self._no_data_s(pid)
+        detail = (f"no frames for more than {limit_s:.1f} s ({self.settings.no_data_frames} frame periods) while "
+                  f"other points of source {p.source!r} deliver")
+        t_ns = round(self.last_frame.get(pid, self.clock()) * 1e9)
+        self.stale[pid] = "no-data"
+        self._sensor_event(pid, p.machine, "raised", "no-data", detail, t_ns, pend)
+        s = replace(s, fault="no-data", detail=detail, since_s=self.last_frame.get(pid), healthy_run=0)
+        self.sensors[pid] = pend.sensors[pid] = s
+        self._mark_point_stale(pid, "no-data", pend)
+        self.suppressed[pid] = "sensor-fault"
+
+    def _mark_point_stale(self, pid: str, reason: str, pend: _Pending) -> list[dict[str, Any]]:
+        """Flag every alarm of a point stale; returns the visible ones (for the source event)."""
+        visible = []
+        t_s = self._point_now_s(pid, self.monotonic())
+        for lim in self._by_point.get(pid, ()):
+            spec = self.specs.get(lim.key) or self._spec(lim)
+            st, trs = mark_stale(self.alarms.get(lim.key, AlarmState()), reason, t_s, spec)
+            self.alarms[lim.key] = pend.alarms[lim.key] = st
+            for tr in trs:
+                self._alarm_event(None, lim, tr, pend)
+            state = isa_state(st, spec)
+            if state != "normal":
+                visible.append({"point": pid, "indicator": lim.indicator, "alarm_state": state,
+                                "severity": SEVERITY[display_severity(st, spec)]})
+        return visible
+
+    def _point_now_s(self, pid: str, now_m: float) -> float:
+        """The point's frames' timeline now: its latest frame's time advanced by the wall-clock time since."""
+        if pid in self.last_frame:
+            return self.last_frame[pid] + max(0.0, now_m - self.last_seen.get(pid, now_m))
+        return self.clock()
+
+    def _shelf_tick(self, pid: str, now_m: float, pend: _Pending) -> None:
+        # Shelves expire on the frames' timeline (a shelf is set from the last frame's time), advanced by the
+        # wall-clock time since that frame, so a shelf also ends while no frames arrive.
+        now_s = self._point_now_s(pid, now_m)
+        for lim in self._by_point.get(pid, ()):
+            shelved = self.alarms.get(lim.key)
+            if shelved is None or shelved.shelved_until_s is None or now_s < shelved.shelved_until_s:
+                continue
+            spec = self.specs.get(lim.key) or self._spec(lim)
+            st, trs = expire_shelf(shelved, now_s, spec)
+            self.alarms[lim.key] = pend.alarms[lim.key] = st
+            for tr in trs:
+                self._alarm_event(None, lim, tr, pend)
+
+    def _source_down(self, name: str, t_s: float, reason: str, pend: _Pending, *, silent: bool = False) -> None:
+        """Announce a source's data path lost (once): its points' alarms turn stale, no sensor fault is raised."""
+        st = self.source_states.get(name, SourceState())
+        if st.down:
+            if st.silent and not silent:  # a silent source now lost its connection too: no new announcement
+                self.source_states[name] = pend.sources[name] = replace(st, reason=reason, silent=False)
+            return
+        pids = self.sources_of.get(name, [])
+        visible: list[dict[str, Any]] = []
+        for pid in pids:
+            self.stale[pid] = "source-down"
+            visible += self._mark_point_stale(pid, "source-down", pend)
+        self.source_states[name] = pend.sources[name] = SourceState(down=True, since_s=t_s, reason=reason,
+                                                                    silent=silent)
+        advice = ("The data path from this source is lost: a communication problem (network, broker, gateway or "
+                  "server), not a machine finding and not a sensor fault. Its points are stale: their alarms keep "
+                  "their state and acknowledgement and are judged again on the first good frames. " + _DISCLAIMER)
+        self._source_event(SOURCE_DOWN_TYPE, name, "down", reason, t_s, pids, visible, pend, advice=advice,
+                           extra={"silent": silent})
+        self._count("source-down")
+        log.warning("source down", source=name, reason=reason, points=len(pids), stale_alarms=len(visible))
+
+    def _source_up(self, name: str, t_s: float, reason: str, pend: _Pending) -> None:
+        """Announce a source's data path back (once after each down); its points stay stale until their next
+        frame, and get the start allowance again before a silent one counts as a sensor fault."""
+        st = self.source_states.get(name, SourceState())
+        if not st.down:
+            return
+        pids = self.sources_of.get(name, [])
+        now_m = self.monotonic()
+        for pid in pids:
+            self.last_seen[pid] = max(self.last_seen.get(pid, now_m), now_m + NO_DATA_START_S)
+        visible = []
+        for pid in pids:
+            for lim in self._by_point.get(pid, ()):
+                spec = self.specs.get(lim.key) or self._spec(lim)
+                a = self.alarms.get(lim.key, AlarmState())
+                if a.stale is not None and isa_state(a, spec) != "normal":
+                    visible.append({"point": pid, "indicator": lim.indicator, "alarm_state": isa_state(a, spec),
+                                    "severity": SEVERITY[display_severity(a, spec)]})
+        self.source_states[name] = pend.sources[name] = SourceState(down=False, since_s=t_s)
+        down_for = None if st.since_s is None else max(0.0, t_s - st.since_s)
+        advice = ("Data from this source flows again; its stale alarms are judged again on the first good frames. "
+                  + _DISCLAIMER)
+        self._source_event(SOURCE_UP_TYPE, name, "up", reason, t_s, pids, visible, pend, advice=advice,
+                           extra={"down_since": None if st.since_s is None else rfc3339_utc_s(st.since_s),
+                                  "down_for_s": down_for, "down_reason": st.reason})
+        self._count("source-up")
+        log.info("source up", source=name, reason=reason, down_for_s=down_for)
+
+    def _source_event(self, type_: str, name: str, transition: str, reason: str, t_s: float, pids: list[str],
+                      visible: list[dict[str, Any]], pend: _Pending, *, advice: str, extra: dict[str, Any]) -> None:
+        machines = sorted({self.points[pid].machine for pid in pids})
+        data: dict[str, Any] = {"site": self.settings.site, "source": name, "transition": transition,
+                                "state": transition, "reason": reason, "machines": machines, "points": list(pids),
+                                "stale_alarms": visible, **extra, "advice": advice}
+        topic = self.settings.feed.source_topic.format(site=self.settings.site, source=name)
+        self._emit(type_, "", ",".join(machines), data, round(t_s * 1e9), pend, subject=name, topic=topic,
+                   history=("source", name))
+        pend.points.update(pids)
 
     # ------------------------------------------------------------------------------------------ commands
 
@@ -680,6 +886,11 @@ class AlarmLayer:
             if req.get("point") is not None and req["point"] not in self.points:
                 raise CommandError(f"unknown point {req['point']!r}")
             return self.snapshot(req.get("point"))
+        if cmd == "history":
+            if req.get("point") is not None and req["point"] not in self.points:
+                raise CommandError(f"unknown point {req['point']!r}")
+            return [dataclasses.asdict(t) for t in self.history(req.get("point"), since_s=req.get("since_s"),
+                                                                limit=int(req.get("limit", 200)))]
         pend = _Pending()
         by = req.get("by")
         changed = 0
@@ -694,7 +905,8 @@ class AlarmLayer:
                 elif cmd == "shelve":
                     dur = float(req["duration_s"])
                     if dur > self.settings.max_shelve_s:
-                        raise CommandError(f"shelve: {dur:g} s exceeds the maximum {self.settings.max_shelve_s:g} s")
+                        raise CommandError(f"shelve: {human_duration(dur)} exceeds the maximum "
+                                           f"{human_duration(self.settings.max_shelve_s)} ([alarms] max_shelve_h)")
                     st2, trs = shelve(st, str(req["reason"]), t_s + dur, t_s, spec)
                 elif cmd == "unshelve":
                     st2, trs = unshelve(st, t_s, spec, reason=f"by {by}" if by else "by command")
@@ -741,17 +953,42 @@ class AlarmLayer:
                 "alert": spec.alert.set_point if spec.alert else None,
                 "danger": spec.danger.set_point if spec.danger else None,
                 "shelved_until_s": st.shelved_until_s, "shelve_reason": st.shelve_reason,
-                "suppressed": st.suppressed,
+                "suppressed": st.suppressed, "stale": st.stale, "since_s": st.since_s,
                 "baseline": None if b is None else {"learned": b.learned, "mean": b.mean, "std": b.std,
                                                     "frames": b.n}}
+
+    def _point_row(self, pid: str) -> dict[str, Any]:
+        p = self.points[pid]
+        mv = self.machine_view(p.machine)
+        src = self.source_states.get(p.source, SourceState())
+        return {"machine": p.machine, "machine_state": mv["state"], "start_up_grace_left_s": mv["grace_left_s"],
+                "suppressed": self.suppressed.get(pid), "stale": self.stale.get(pid), "source": p.source,
+                "source_state": "down" if src.down else "up", "alarm_text": self.state_text(pid),
+                "time": None if pid not in self.last_frame else rfc3339_utc_s(self.last_frame[pid])}
 
     def snapshot(self, point: str | None = None) -> dict[str, Any]:
         with self._lock:
             keys = [k for k in self.limits if point is None or k[0] == point]
             sensors = {pid: {"fault": s.fault, "detail": s.detail} for pid, s in self.sensors.items()
                        if point is None or pid == point}
-            return {"alarms": [self._alarm_row(k) for k in keys], "sensors": sensors,
-                    "outbox_pending": self.outbox.depth() if self.outbox is not None else 0}
+            points = {pid: self._point_row(pid) for pid in self.points if point is None or pid == point}
+            sources = {n: {"state": "down" if st.down else "up", "since_s": st.since_s, "reason": st.reason or None}
+                       for n, st in self.source_states.items()}
+            return {"alarms": [self._alarm_row(k) for k in keys], "sensors": sensors, "points": points,
+                    "sources": sources, "outbox_pending": self.outbox.depth() if self.outbox is not None else 0}
+
+    def history(self, point: str | None = None, *, since_s: float | None = None,
+                limit: int = 200) -> list[AlarmTransition]:
+        """Recorded transitions (alarms, sensor faults, sources) from the durable store, newest first."""
+        if isinstance(limit, bool) or not isinstance(limit, int) or not 1 <= limit <= HISTORY_LIMIT_MAX:
+            raise ValueError(f"history limit {limit!r} must be an integer 1..{HISTORY_LIMIT_MAX}")
+        if since_s is not None and not math.isfinite(since_s):
+            raise ValueError(f"history since {since_s!r} must be a finite time in Unix seconds")
+        store = self.store
+        if store is None:
+            return []
+        rows = store.history(point, None if since_s is None else round(since_s * 1e9), limit)
+        return [_transition_of(*row) for row in rows]
 
     def point_severity(self, point: str) -> int:
         """0 normal, 1 alert, 2 danger, 3 sensor fault (suppressed alarms count as normal)."""
@@ -768,16 +1005,20 @@ class AlarmLayer:
     def state_text(self, point_id: str) -> str | None:
         """A short alarm state for the demo table: ``normal``, ``ALERT kurtosis``, ``sensor: flatline`` …
 
-        The most severe level wins; indicators at that level are listed fault pattern first (order lines and
-        bearing families), then impacting statistics, then broadband levels — so a dominant 1× reads
-        ``DANGER imbalance_1x_mm_s, velocity_rms_mm_s``."""
+        Every active alarm is shown, most severe level first (``DANGER misalignment_2x_mm_s; ALERT
+        velocity_rms_mm_s``); within a level, fault patterns first (order lines and bearing families), then
+        impacting statistics, then broadband levels.  ``(stale: …)`` marks a point whose data stopped (its alarms
+        keep their state)."""
         if point_id not in self.points:
             return None
         with self._lock:
+            stale = self.stale.get(point_id)
+            tail = f" (stale: {stale})" if stale else ""
             s = self.sensors.get(point_id)
             if s is not None and s.fault is not None:
-                return f"sensor: {s.fault}"
-            worst, which, shelved = 0, [], False
+                return f"sensor: {s.fault}{tail}"
+            levels: dict[int, list[str]] = {}
+            shelved = False
             for lim in self._by_point.get(point_id, ()):
                 st = self.alarms.get(lim.key)
                 if st is None:
@@ -787,19 +1028,18 @@ class AlarmLayer:
                 if st.suppressed is not None:
                     continue
                 d = display_severity(st, spec)
-                if d > worst:
-                    worst, which = d, [lim.indicator]
-                elif d == worst and d > 0:
-                    which.append(lim.indicator)
-            if worst:
-                which.sort(key=_display_rank)
-                return f"{SEVERITY[worst].upper()} {', '.join(which)}"
+                if d > 0:
+                    levels.setdefault(d, []).append(lim.indicator)
+            if levels:
+                parts = [f"{SEVERITY[d].upper()} {', '.join(sorted(levels[d], key=_display_rank))}"
+                         for d in sorted(levels, reverse=True)]
+                return "; ".join(parts) + tail
             reason = self.suppressed.get(point_id)
             if reason == "machine-stopped":
-                return "stopped"
+                return "stopped" + tail
             if reason == "start-up-grace":
-                return "starting"
-            return "shelved" if shelved else "normal"
+                return "starting" + tail
+            return ("shelved" if shelved else "normal") + tail
 
     def state_messages(self) -> dict[str, tuple[str, bytes]]:
         """Retained state message of every point: ``{point: (topic, JSON)}``."""
@@ -812,7 +1052,10 @@ class AlarmLayer:
                 msg = {"site": self.settings.site, "machine": p.machine, "point": pid, "axis": p.axis,
                        "machine_state": mv["state"], "start_up_grace_left_s": mv["grace_left_s"],
                        "state": ("normal", "alert", "danger", "sensor-fault")[sev],
-                       "suppressed": self.suppressed.get(pid),
+                       "suppressed": self.suppressed.get(pid), "stale": self.stale.get(pid),
+                       "source": {"name": p.source,
+                                  "state": "down" if self.source_states.get(p.source, SourceState()).down
+                                  else "up"},
                        "sensor": {"fault": s.fault, "detail": s.detail or None},
                        "time": None if pid not in self.last_frame else rfc3339_utc_s(self.last_frame[pid]),
                        "alarms": {k[1]: {kk: v for kk, v in self._alarm_row(k).items() if kk not in ("point",)}
@@ -823,6 +1066,40 @@ class AlarmLayer:
                 out[pid] = (topic, json.dumps(msg, separators=(",", ":"), allow_nan=False,
                                               default=str).encode("utf-8"))
         return out
+
+
+def _transition_of(time_ns: int, kind: str, point: str, indicator: str, event_id: str,
+                   body: str) -> AlarmTransition:
+    """A history row as the views read it."""
+    try:
+        d = json.loads(body)
+    except ValueError:
+        d = {}
+    if not isinstance(d, dict):
+        d = {}
+
+    def num(key: str) -> float | None:
+        v = d.get(key)
+        return float(v) if isinstance(v, int | float) and not isinstance(v, bool) else None
+
+    def text(key: str) -> str | None:
+        v = d.get(key)
+        return None if v is None else str(v)
+
+    if kind == "alarm":
+        from_state, state, limit = text("from_state"), str(d.get("state", "")), num("limit")
+    elif kind == "sensor":
+        from_state = "normal" if d.get("transition") == "raised" else "sensor-fault"
+        state, limit = str(d.get("state", "")), None
+    else:
+        from_state = "up" if d.get("transition") == "down" else "down"
+        state, limit = str(d.get("state", d.get("transition", ""))), None
+    return AlarmTransition(
+        kind=kind, t_s=time_ns / 1e9, point=point, machine=str(d.get("machine", "")), indicator=indicator,
+        unit=text("unit"), transition=str(d.get("transition", "")), from_state=from_state, state=state,
+        alarm_state=text("alarm_state"), value=num("value"), limit=limit, by=text("by"), at_s=num("at_s"),
+        reason=text("reason") if kind != "sensor" else text("detail"), capture=text("capture"), event_id=event_id,
+        machine_state=text("machine_state"), stale=text("stale"))
 
 
 def _rule(r: LevelRule | None) -> dict[str, Any] | None:

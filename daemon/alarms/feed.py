@@ -5,6 +5,8 @@ Event types (our own names under a neutral reverse-DNS prefix, versioned)::
     io.edgevib.alarm.v1.transition   an alarm changed state (raised, escalated, cleared, acknowledged, ...)
     io.edgevib.sensor.v1.fault       a sensor fault was raised or cleared (never a machine fault)
     io.edgevib.baseline.v1.learned   a baseline finished learning (or was reset for re-learning)
+    io.edgevib.source.v1.down        a source's data path is lost (connection down, or none of its points delivers)
+    io.edgevib.source.v1.up          it is back
 
 MQTT (CloudEvents MQTT protocol binding 1.0): every event is published with QoS 1 and stays pending in the outbox
 until its PUBACK arrives.  Structured mode (the default) carries the whole event as JSON; on MQTT 5 the PUBLISH has
@@ -50,6 +52,8 @@ __all__ = [
     "ALARM_TYPE",
     "BASELINE_TYPE",
     "SENSOR_TYPE",
+    "SOURCE_DOWN_TYPE",
+    "SOURCE_UP_TYPE",
     "STRUCTURED_CONTENT_TYPE",
     "MqttFeed",
     "WebhookFeed",
@@ -64,6 +68,8 @@ log = structlog.get_logger("edgevib.alarms.feed")
 ALARM_TYPE = "io.edgevib.alarm.v1.transition"
 SENSOR_TYPE = "io.edgevib.sensor.v1.fault"
 BASELINE_TYPE = "io.edgevib.baseline.v1.learned"
+SOURCE_DOWN_TYPE = "io.edgevib.source.v1.down"
+SOURCE_UP_TYPE = "io.edgevib.source.v1.up"
 STRUCTURED_CONTENT_TYPE = "application/cloudevents+json"  # CloudEvents JSON event format 1.0, §3 (media type)
 PUBACK_TIMEOUT_S = 15.0
 BATCH = 50

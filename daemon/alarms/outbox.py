@@ -29,7 +29,7 @@ __all__ = ["SCHEMA_VERSION", "Database", "Outbox", "OutboxEvent", "StateError", 
 
 log = structlog.get_logger("edgevib.alarms.outbox")
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 """Version of the database layout; :data:`MIGRATIONS` upgrades older files in place."""
 
 _SCHEMA_V1 = """
@@ -61,8 +61,25 @@ CREATE TABLE IF NOT EXISTS baselines (
 );
 """
 
-# version found in the file -> SQL that brings it to version + 1 (none yet: version 1 is the first layout).
-MIGRATIONS: dict[int, str] = {}
+_SCHEMA_V2 = """
+CREATE TABLE IF NOT EXISTS source_state (
+    source TEXT PRIMARY KEY, body TEXT NOT NULL, updated_ns INTEGER NOT NULL
+);
+CREATE TABLE IF NOT EXISTS history (
+    seq INTEGER PRIMARY KEY AUTOINCREMENT,
+    time_ns INTEGER NOT NULL,
+    kind TEXT NOT NULL,
+    point TEXT NOT NULL,
+    indicator TEXT NOT NULL,
+    event_id TEXT NOT NULL,
+    data TEXT NOT NULL
+);
+CREATE INDEX IF NOT EXISTS history_point_time ON history (point, time_ns);
+CREATE INDEX IF NOT EXISTS history_time ON history (time_ns)
+"""
+
+# version found in the file -> SQL that brings it to version + 1.
+MIGRATIONS: dict[int, str] = {1: _SCHEMA_V2}  # 2: source states and the transitions history
 
 
 class StateError(EdgevibError):
@@ -94,8 +111,9 @@ class Database:
             raise StateError(f"cannot open state database {self.path}: {exc}") from exc
 
     def _migrate(self) -> None:
-        migrate(self.conn, self.transaction, what="state database", path=self.path, first_layout=_SCHEMA_V1,
-                migrations=MIGRATIONS, version=SCHEMA_VERSION, error=StateError, log=log)
+        migrate(self.conn, self.transaction, what="state database", path=self.path,
+                first_layout=_SCHEMA_V1 + ";" + _SCHEMA_V2, migrations=MIGRATIONS, version=SCHEMA_VERSION,
+                error=StateError, log=log)
 
     @contextlib.contextmanager
     def transaction(self) -> Iterator[sqlite3.Connection]:

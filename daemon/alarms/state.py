@@ -19,7 +19,7 @@ from typing import Any
 from edgevib.daemon.alarms.outbox import Database
 from edgevib.pipelines.alarm import AlarmState, LevelTrack
 
-__all__ = ["Baseline", "SensorState", "StateStore", "decode_alarm", "encode_alarm"]
+__all__ = ["Baseline", "SensorState", "SourceState", "StateStore", "decode_alarm", "encode_alarm"]
 
 
 @dataclass(frozen=True, slots=True)
@@ -98,6 +98,21 @@ def _encoder(cls: type) -> Callable[[Any], dict[str, Any]]:
     return encode
 
 
+@dataclass(frozen=True, slots=True)
+class SourceState:
+    """A source's data path as the alarm layer last announced it: ``up`` (or never announced) or ``down``.
+
+    ``since_s``: wall-clock time of the announced change; ``reason``: why it is down (``connection lost``, ``not
+    reachable since start``, ``connected, but none of its points delivers data``); ``silent``: down although the
+    connection is up (no point delivers).
+    """
+
+    down: bool = False
+    since_s: float | None = None
+    reason: str = ""
+    silent: bool = False
+
+
 def _dc_from(cls: Any, d: dict[str, Any]) -> Any:
     names = {f.name for f in fields(cls)}
     return cls(**{k: v for k, v in d.items() if k in names})
@@ -156,11 +171,56 @@ class StateStore:
                 continue
         return out
 
+    def load_sources(self) -> dict[str, SourceState]:
+        out: dict[str, SourceState] = {}
+        for source, body in self._rows("SELECT source, body FROM source_state"):
+            try:
+                out[source] = _dc_from(SourceState, json.loads(body))
+            except (ValueError, TypeError):
+                continue
+        return out
+
+    def add_history(self, conn: sqlite3.Connection, rows: list[tuple[int, str, str, str, str, str]]) -> None:
+        """Append ``(time_ns, kind, point, indicator, event_id, data JSON)`` rows inside the open transaction."""
+        if rows:
+            conn.executemany("INSERT INTO history (time_ns, kind, point, indicator, event_id, data) VALUES "
+                             "(?,?,?,?,?,?)", rows)
+
+    def history(self, point: str | None = None, since_ns: int | None = None,
+                limit: int = 200) -> list[tuple[int, str, str, str, str, str]]:
+        """History rows ``(time_ns, kind, point, indicator, event_id, data JSON)``, newest first (ties: newest
+        written first)."""
+        sql = "SELECT time_ns, kind, point, indicator, event_id, data FROM history"
+        where: list[str] = []
+        args: list[Any] = []
+        if point is not None:
+            where.append("point = ?")
+            args.append(point)
+        if since_ns is not None:
+            where.append("time_ns >= ?")
+            args.append(since_ns)
+        if where:
+            sql += " WHERE " + " AND ".join(where)
+        sql += " ORDER BY time_ns DESC, seq DESC LIMIT ?"
+        args.append(int(limit))
+        with self.db.lock:
+            return [(int(r[0]), str(r[1]), str(r[2]), str(r[3]), str(r[4]), str(r[5]))
+                    for r in self.db.conn.execute(sql, args)]
+
+    def prune_history(self, before_ns: int) -> int:
+        """Drop history rows older than ``before_ns``; returns how many."""
+        with self.db.transaction() as c:
+            return int(c.execute("DELETE FROM history WHERE time_ns < ?", (before_ns,)).rowcount)
+
     def save(self, conn: sqlite3.Connection, alarms: dict[tuple[str, str], AlarmState] | None = None,
              sensors: dict[str, SensorState] | None = None,
-             baselines: dict[tuple[str, str], Baseline] | None = None) -> None:
+             baselines: dict[tuple[str, str], Baseline] | None = None,
+             sources: dict[str, SourceState] | None = None) -> None:
         """Upsert the given states inside the caller's open transaction ``conn``."""
         now = time.time_ns()
+        if sources:
+            conn.executemany("INSERT OR REPLACE INTO source_state (source, body, updated_ns) VALUES (?,?,?)",
+                             [(n, json.dumps(asdict(s), allow_nan=False), now) for n, s in sources.items()])
         if alarms:
             conn.executemany("INSERT OR REPLACE INTO alarm_state (point, indicator, body, updated_ns) VALUES "
                              "(?,?,?,?)", [(p, i, encode_alarm(s), now) for (p, i), s in alarms.items()])

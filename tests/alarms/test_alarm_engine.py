@@ -167,7 +167,7 @@ async def test_iso_baseline_rule_and_relearn(short_tmp: Path) -> None:
     await layer.stop()
 
 
-async def test_state_text_shows_the_worst_level_fault_pattern_first(short_tmp: Path) -> None:
+async def test_state_text_shows_every_active_alarm_worst_level_and_fault_pattern_first(short_tmp: Path) -> None:
     # group 2 rigid: ISO B/C 2.8, C/D 4.5 mm/s (the standard's table); fault-pattern limits 0.5 x / 1 x B/C as
     # the simulator emits them (common practice starting point)
     cfg = small_config(short_tmp, limits={"velocity_rms_mm_s": {"rule": "iso"},
@@ -178,8 +178,10 @@ async def test_state_text_shows_the_worst_level_fault_pattern_first(short_tmp: P
     orders = {"0.5x": 0.05, "1x": 5.5, "2x": 1.5, "3x": 0.05}  # 1x dominates: danger; 2x alert
     for i in range(3):
         await layer.on_frames([frame_result("P-101-DE-H", "P-101", 100.0 + i, 5.8, seed=i, orders_mm_s=orders)])
-    # velocity 5.8 > C/D 4.5 is danger too: both listed, the fault pattern first; the 2x alert is not the worst
-    assert layer.state_text("P-101-DE-H") == "DANGER imbalance_1x_mm_s, velocity_rms_mm_s"
+    # velocity 5.8 > C/D 4.5 is danger too: both listed, the fault pattern first; the 2x alert follows (every
+    # active alarm of the point is shown, the worst level first)
+    assert layer.state_text("P-101-DE-H") == \
+        "DANGER imbalance_1x_mm_s, velocity_rms_mm_s; ALERT misalignment_2x_mm_s"
     orders = {"0.5x": 0.05, "1x": 0.5, "2x": 1.6, "3x": 0.05}
     for i in range(4):
         await layer.on_frames([frame_result("P-101-DE-H", "P-101", 200.0 + i, 3.0, seed=i, orders_mm_s=orders)])

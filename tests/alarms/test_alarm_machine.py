@@ -194,7 +194,7 @@ def test_shelf_expires_at_the_first_frame_after_expiry(until: float, gaps: list[
     assert first == expected
 
 
-def test_suppression_is_quiet_for_normal_alarms_and_restarts_tracking() -> None:
+def test_suppression_is_quiet_for_normal_alarms_and_keeps_active_levels() -> None:
     spec = LimitSpec(alert=ALERT, on_delay=Delay(frames=2))
     s, ev = step(AlarmState(), 1.0, 0.0, spec, suppress="machine-stopped")
     assert ev == () and isa_state(s, spec) == "suppressed"
@@ -206,8 +206,10 @@ def test_suppression_is_quiet_for_normal_alarms_and_restarts_tracking() -> None:
     assert [e.kind for e in ev] == ["raised"]
     s, ev = step(s, 5.0, 4.0, spec, suppress="sensor-fault")
     assert [(e.kind, e.reason) for e in ev] == [("suppressed", "sensor-fault")]
+    # The suppressed alert kept its level: shown again when the suppression ends, and it returns to normal only
+    # on a good value below its clear threshold (ANSI/ISA-18.2), here the first frame after (off-delay 1 frame).
     s, ev = step(s, 1.0, 5.0, spec)
-    assert [(e.kind, e.to_state) for e in ev] == [("unsuppressed", "rtn-unacknowledged")]
+    assert [(e.kind, e.to_state) for e in ev] == [("unsuppressed", "unacknowledged"), ("cleared", "rtn-unacknowledged")]
 
 
 def test_non_finite_values_are_ignored_and_bad_specs_rejected() -> None:
