@@ -1,0 +1,221 @@
+"""Data gaps in the alarm layer: a source down versus a sensor silent, stale alarms, the durable history.
+
+Practice (FIELD_NOTES §7, ANSI/ISA-18.2-2016): loss of the data path is a communication fault of the source,
+annunciated once, neither a machine alarm nor a transducer fault; an active or unacknowledged alarm keeps its
+state through the loss and returns to normal only on a good value.  ISO 20816-3 group 2 rigid (FIELD_NOTES §1):
+B/C 2.8, C/D 4.5 mm/s r.m.s.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import pytest
+from alarmkit import frame_result
+
+from edgevib.daemon.alarms.engine import AlarmLayer
+from edgevib.daemon.alarms.feed import ALARM_TYPE, SENSOR_TYPE, SOURCE_DOWN_TYPE, SOURCE_UP_TYPE
+from edgevib.daemon.config import Config, parse_config
+
+POINTS = ("P-101-DE-H", "P-101-NDE-H")
+T0 = 1_780_000_000.0  # frame times: Unix seconds in 2026 (the history keeps [alarms] history_days of them)
+
+
+def two_points(state_dir: Path) -> Config:
+    """Pump P-101 (group 2, rigid) with two points on one source, ``plant``."""
+    doc: dict[str, Any] = {
+        "site": {"name": "quarry-lane", "state_dir": str(state_dir)},
+        "analysis": {"frame_samples": 8192, "overlap": 0.0},
+        "sources": [{"name": "plant", "type": "simulated", "scenario": "demo"}],
+        "machines": [{"id": "P-101", "group": 2, "support": "rigid", "speed_rpm": 1485.0}],
+        "points": [{"id": pid, "machine": "P-101", "axis": "horizontal", "source": "plant",
+                    "sensor": f"S-{pid}", "fs_hz": 12800.0, "block_samples": 4096} for pid in POINTS],
+        "alarms": {"startup_grace_s": 0.0, "on_delay_frames": 2, "off_delay_frames": 2},
+    }
+    return parse_config(doc, state_dir)
+
+
+class Clock:
+    """A monotonic clock the test moves by hand."""
+
+    def __init__(self) -> None:
+        self.t = 1000.0
+
+    def __call__(self) -> float:
+        return self.t
+
+
+async def make_layer(cfg: Config, clock: Clock, events: list[dict[str, Any]]) -> AlarmLayer:
+    layer = AlarmLayer(cfg, monotonic=clock)
+    layer.listeners.append(events.append)
+    layer.tracks_sources = True  # as the daemon wires it
+    await layer.start()
+    return layer
+
+
+async def tick(layer: AlarmLayer) -> None:
+    await layer._commit(layer._tick())
+
+
+async def frames(layer: AlarmLayer, clock: Clock, t0: float, values: dict[str, list[float]]) -> None:
+    n = max(len(v) for v in values.values())
+    for i in range(n):
+        clock.t += 0.64
+        batch = [frame_result(pid, "P-101", T0 + t0 + 0.64 * i, v[i], seed=i) for pid, v in values.items() if i < len(v)]
+        await layer.on_frames(batch)
+
+
+def of_type(events: list[dict[str, Any]], *types: str) -> list[dict[str, Any]]:
+    return [e for e in events if e["type"] in types]
+
+
+async def test_source_down_is_one_event_and_keeps_an_unacknowledged_danger(short_tmp: Path) -> None:
+    clock, events = Clock(), []
+    cfg = two_points(short_tmp)
+    layer = await make_layer(cfg, clock, events)
+    try:
+        layer.on_source("plant", True)
+        await tick(layer)
+        await frames(layer, clock, 100.0, {POINTS[0]: [6.0] * 3, POINTS[1]: [1.0] * 3})  # danger: > C/D 4.5
+        assert layer.state_text(POINTS[0]) == "DANGER velocity_rms_mm_s"
+        layer.on_source("plant", False)
+        for _ in range(120):  # two minutes of outage, one tick a second
+            clock.t += 1.0
+            await tick(layer)
+        down = of_type(events, SOURCE_DOWN_TYPE)
+        assert len(down) == 1 and down[0]["subject"] == "plant"
+        assert down[0]["data"]["points"] == list(POINTS) and down[0]["data"]["reason"] == "connection lost"
+        assert down[0]["data"]["stale_alarms"] == [{"point": POINTS[0], "indicator": "velocity_rms_mm_s",
+                                                    "alarm_state": "unacknowledged", "severity": "danger"}]
+        assert of_type(events, SENSOR_TYPE) == []
+        row = layer.snapshot(POINTS[0])["alarms"][0]
+        assert (row["state"], row["severity"], row["stale"]) == ("unacknowledged", "danger", "source-down")
+        assert layer.state_text(POINTS[0]) == "DANGER velocity_rms_mm_s (stale: source-down)"
+        topic, body = layer.state_messages()[POINTS[0]]
+        assert b'"stale":"source-down"' in body and b'"state":"danger"' in body
+        layer.on_source("plant", True)
+        await tick(layer)
+        up = of_type(events, SOURCE_UP_TYPE)
+        assert len(up) == 1 and up[0]["data"]["down_for_s"] == pytest.approx(0.0, abs=5.0)
+        # Fresh frames: the danger is judged again (still unacknowledged), then clears on good values.
+        await frames(layer, clock, 300.0, {POINTS[0]: [6.0], POINTS[1]: [1.0]})
+        row = layer.snapshot(POINTS[0])["alarms"][0]
+        assert (row["state"], row["severity"], row["stale"]) == ("unacknowledged", "danger", None)
+        await frames(layer, clock, 301.0, {POINTS[0]: [1.0, 1.0], POINTS[1]: [1.0, 1.0]})
+        cleared = [e["data"] for e in of_type(events, ALARM_TYPE) if e["data"]["transition"] == "cleared"]
+        assert [(d["value"], d["alarm_state"]) for d in cleared] == [(1.0, "rtn-unacknowledged")]
+        assert len(of_type(events, SOURCE_DOWN_TYPE, SOURCE_UP_TYPE)) == 2 and of_type(events, SENSOR_TYPE) == []
+    finally:
+        await layer.stop()
+
+
+async def test_source_down_survives_a_restart(short_tmp: Path) -> None:
+    clock, events = Clock(), []
+    cfg = two_points(short_tmp)
+    layer = await make_layer(cfg, clock, events)
+    layer.on_source("plant", True)
+    await frames(layer, clock, 100.0, {POINTS[0]: [6.0] * 3, POINTS[1]: [1.0] * 3})
+    layer.on_source("plant", False)
+    await tick(layer)
+    await layer.stop()  # as after a crash: nothing more is written on the way down
+    layer = await make_layer(cfg, clock, events)  # the source is still unreachable
+    try:
+        for _ in range(60):
+            clock.t += 1.0
+            await tick(layer)
+        assert len(of_type(events, SOURCE_DOWN_TYPE)) == 1 and of_type(events, SENSOR_TYPE) == []
+        row = layer.snapshot(POINTS[0])["alarms"][0]
+        assert (row["state"], row["severity"], row["stale"]) == ("unacknowledged", "danger", "source-down")
+        layer.on_source("plant", True)
+        await tick(layer)
+        assert len(of_type(events, SOURCE_UP_TYPE)) == 1
+    finally:
+        await layer.stop()
+
+
+async def test_a_silent_sensor_is_a_sensor_fault_while_its_source_delivers(short_tmp: Path) -> None:
+    clock, events = Clock(), []
+    cfg = two_points(short_tmp)
+    layer = await make_layer(cfg, clock, events)
+    try:
+        layer.on_source("plant", True)
+        await frames(layer, clock, 100.0, {POINTS[0]: [6.0] * 3, POINTS[1]: [1.0] * 3})
+        # P-101-DE-H falls silent; P-101-NDE-H keeps delivering.
+        await frames(layer, clock, 102.0, {POINTS[1]: [1.0] * 20})
+        await tick(layer)
+        faults = [e["data"] for e in of_type(events, SENSOR_TYPE)]
+        assert [(d["point"], d["fault"], d["transition"]) for d in faults] == [(POINTS[0], "no-data", "raised")]
+        assert of_type(events, SOURCE_DOWN_TYPE) == []
+        row = layer.snapshot(POINTS[0])["alarms"][0]  # the danger is kept, not suppressed to normal
+        assert (row["state"], row["severity"], row["stale"]) == ("unacknowledged", "danger", "no-data")
+        await frames(layer, clock, 120.0, {POINTS[0]: [6.0], POINTS[1]: [1.0]})  # it delivers again
+        assert [e["data"]["transition"] for e in of_type(events, SENSOR_TYPE)] == ["raised", "cleared"]
+        row = layer.snapshot(POINTS[0])["alarms"][0]
+        assert (row["state"], row["severity"], row["stale"]) == ("unacknowledged", "danger", None)
+    finally:
+        await layer.stop()
+
+
+async def test_every_point_silent_is_a_source_matter(short_tmp: Path) -> None:
+    clock, events = Clock(), []
+    cfg = two_points(short_tmp)
+    layer = await make_layer(cfg, clock, events)
+    try:
+        layer.on_source("plant", True)
+        await frames(layer, clock, 100.0, {POINTS[0]: [1.0] * 3, POINTS[1]: [1.0] * 3})
+        for _ in range(40):  # connected, but the gateway behind the broker stopped: nothing arrives
+            clock.t += 1.0
+            await tick(layer)
+        down = of_type(events, SOURCE_DOWN_TYPE)
+        assert len(down) == 1 and down[0]["data"]["silent"] is True and of_type(events, SENSOR_TYPE) == []
+        await frames(layer, clock, 200.0, {POINTS[1]: [1.0]})  # data again
+        assert len(of_type(events, SOURCE_UP_TYPE)) == 1
+    finally:
+        await layer.stop()
+
+
+async def test_an_unreachable_source_at_start_is_announced_once(short_tmp: Path) -> None:
+    clock, events = Clock(), []
+    layer = await make_layer(two_points(short_tmp), clock, events)
+    try:
+        for _ in range(60):
+            clock.t += 1.0
+            await tick(layer)
+        down = of_type(events, SOURCE_DOWN_TYPE)
+        assert [d["data"]["reason"] for d in down] == ["not reachable since start"]
+        assert of_type(events, SENSOR_TYPE) == []
+    finally:
+        await layer.stop()
+
+
+async def test_history_from_the_durable_store(short_tmp: Path) -> None:
+    clock, events = Clock(), []
+    cfg = two_points(short_tmp)
+    layer = await make_layer(cfg, clock, events)
+    layer.on_source("plant", True)
+    await frames(layer, clock, 100.0, {POINTS[0]: [3.5, 3.5, 6.0, 6.0], POINTS[1]: [1.0] * 4})
+    layer.handle_command({"cmd": "ack", "point": POINTS[0], "by": "J. Operator"})
+    layer.handle_command({"cmd": "shelve", "point": POINTS[0], "reason": "coupling work", "duration_s": 7200.0,
+                          "by": "J. Operator"})
+    await layer.stop()
+    layer = await make_layer(cfg, clock, events)  # read back after a restart
+    try:
+        rows = layer.history(POINTS[0])
+        assert [(r.transition, r.state) for r in rows] == [("shelved", "danger"), ("acknowledged", "danger"),
+                                                           ("escalated", "danger"), ("raised", "alert")]
+        raised = rows[-1]
+        assert raised.value == pytest.approx(3.5) and raised.limit == pytest.approx(2.8)  # ISO B/C
+        assert raised.capture is not None and raised.kind == "alarm" and raised.machine_state is not None
+        assert rows[1].by == "J. Operator" and rows[1].at_s is not None
+        assert rows[0].reason == "coupling work"
+        assert layer.history(POINTS[1]) == []
+        assert [r.transition for r in layer.history(POINTS[0], limit=1)] == ["shelved"]
+        assert [r.transition for r in layer.history(POINTS[0], since_s=T0 + 101.0)] == ["shelved", "acknowledged",
+                                                                                 "escalated"]
+        with pytest.raises(ValueError, match="limit"):
+            layer.history(limit=0)
+        listed = layer.handle_command({"cmd": "history", "point": POINTS[0], "limit": 2})
+        assert [r["transition"] for r in listed] == ["shelved", "acknowledged"]
+    finally:
+        await layer.stop()
