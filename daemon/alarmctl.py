@@ -1,14 +1,17 @@
-"""``edgevib alarms``: list, acknowledge, shelve, unshelve or re-learn alarms of a running daemon.
+"""``edgevib alarms``: list, acknowledge, shelve, unshelve, re-learn alarms of a running daemon, or read back their
+history.
 
 Talks to the daemon's control socket (``<state_dir>/alarms.sock`` unless ``[alarms] socket`` says otherwise)::
 
     edgevib alarms --state-dir /var/lib/edgevib list
-    edgevib alarms ack P-101-DE-H [--indicator velocity_rms_mm_s]
+    edgevib alarms ack P-101-DE-H [--indicator velocity_rms_mm_s] [--by "J. Operator"]
     edgevib alarms shelve P-101-DE-H --reason "coupling work, permit 4711" --hours 8
     edgevib alarms unshelve P-101-DE-H
     edgevib alarms relearn P-101-DE-H        # after a repair: learn new baselines
+    edgevib alarms history [P-101-DE-H] [--since 7d | --since 2026-12-01T06:00Z] [--limit N] [--json]
 
-Exit codes: 0 done, 1 the daemon refused the command, 2 bad arguments or no daemon listening.
+Exit codes: 0 done, 2 bad arguments, a command the daemon refused (one line naming the problem) or no daemon
+listening.
 """
 
 from __future__ import annotations
@@ -18,7 +21,10 @@ import contextlib
 import getpass
 import json
 import os
+import re
 import sys
+import time
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
@@ -35,22 +41,31 @@ def configure_alarms(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--json", action="store_true", help="print the daemon's JSON response")
     parser.add_argument("--timeout", type=float, default=10.0, help="seconds to wait for the daemon")
     sub = parser.add_subparsers(dest="alarm_cmd", metavar="ACTION", required=True)
-    p = sub.add_parser("list", help="show every alarm and sensor state")
+    p = sub.add_parser("list", help="show every alarm with machine state, start-up grace and sensor state")
     p.add_argument("point", nargs="?", help="only this point")
+    by_help = "operator name recorded in the event (default: the local user name)"
     for name, text in (("ack", "acknowledge (and reset latched) alarms of a point"),
                        ("unshelve", "return shelved alarms of a point to service")):
         p = sub.add_parser(name, help=text)
         p.add_argument("point")
         p.add_argument("--indicator", help="only this indicator (default: all of the point)")
+        p.add_argument("--by", help=by_help)
     p = sub.add_parser("shelve", help="hide alarms of a point for a while, with a reason")
     p.add_argument("point")
     p.add_argument("--indicator", help="only this indicator (default: all of the point)")
     p.add_argument("--reason", required=True, help="why (recorded in the event)")
+    p.add_argument("--by", help=by_help)
     dur = p.add_mutually_exclusive_group(required=True)
     dur.add_argument("--hours", type=float)
     dur.add_argument("--minutes", type=float)
     p = sub.add_parser("relearn", help="forget a point's baselines and learn them again (after a repair)")
     p.add_argument("point")
+    p.add_argument("--by", help=by_help)
+    p = sub.add_parser("history", help="recorded transitions (alarms, sensor faults, sources), newest first")
+    p.add_argument("point", nargs="?", help="only this point")
+    p.add_argument("--since", help="a duration back from now (90s, 30m, 8h, 7d, 2w) or a UTC time "
+                   "(2026-12-01T06:00Z, 2026-12-01)")
+    p.add_argument("--limit", type=int, default=200, help="at most this many rows, 1..1000 (default 200)")
 
 
 def _socket_path(args: argparse.Namespace) -> Path:
@@ -64,6 +79,30 @@ def _socket_path(args: argparse.Namespace) -> Path:
     return Path(state) / "alarms.sock"
 
 
+_UNITS_S = {"s": 1.0, "m": 60.0, "min": 60.0, "h": 3600.0, "d": 86400.0, "w": 7 * 86400.0}
+
+
+class _BadArgument(ValueError):
+    """A command-line value that cannot be used (the message names it)."""
+
+
+def parse_since(text: str, now_s: float | None = None) -> float:
+    """``--since``: a duration back from now (``90s``, ``30m``, ``8h``, ``7d``, ``2w``) or a UTC time (RFC 3339 /
+    ISO 8601, a date alone meaning its midnight UTC) → Unix seconds."""
+    now = time.time() if now_s is None else now_s
+    m = re.fullmatch(r"\s*(\d+(?:\.\d+)?)\s*(s|m|min|h|d|w)\s*", text)
+    if m:
+        return now - float(m.group(1)) * _UNITS_S[m.group(2)]
+    try:
+        t = datetime.fromisoformat(text.strip().replace("Z", "+00:00").replace("z", "+00:00"))
+    except ValueError:
+        raise _BadArgument(f"--since {text!r} is neither a duration (90s, 30m, 8h, 7d, 2w) nor a time "
+                           f"(2026-12-01T06:00Z)") from None
+    if t.tzinfo is None:
+        t = t.replace(tzinfo=UTC)
+    return t.timestamp()
+
+
 def _request(args: argparse.Namespace) -> dict[str, Any]:
     cmd = args.alarm_cmd
     req: dict[str, Any] = {"cmd": cmd}
@@ -74,9 +113,18 @@ def _request(args: argparse.Namespace) -> dict[str, Any]:
     if cmd == "shelve":
         req["reason"] = args.reason
         req["duration_s"] = 3600.0 * args.hours if args.hours is not None else 60.0 * args.minutes
-    if cmd != "list":
-        with contextlib.suppress(KeyError, OSError):
-            req["by"] = getpass.getuser()[:64]
+    if cmd == "history":
+        if not 1 <= args.limit <= 1000:
+            raise _BadArgument(f"--limit {args.limit} must be 1..1000")
+        req["limit"] = args.limit
+        if args.since is not None:
+            req["since_s"] = parse_since(args.since)
+    if cmd not in ("list", "history"):
+        if getattr(args, "by", None):
+            req["by"] = args.by
+        else:
+            with contextlib.suppress(KeyError, OSError):
+                req["by"] = getpass.getuser()[:64]
     return req
 
 
@@ -88,22 +136,85 @@ def _fmt(v: Any) -> str:
     return str(v)
 
 
+def _utc(t_s: float | None) -> str:
+    if t_s is None:
+        return "–"
+    return datetime.fromtimestamp(t_s, UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def _machine_text(pt: dict[str, Any]) -> str:
+    from edgevib.daemon.alarms.control import human_duration
+
+    state = str(pt.get("machine_state") or "unknown")
+    left = pt.get("start_up_grace_left_s")
+    if state == "starting" and isinstance(left, int | float):
+        return f"starting (grace {human_duration(left)} left)"
+    return state
+
+
+def _note(a: dict[str, Any], last_s: float | None) -> str:
+    from edgevib.daemon.alarms.control import human_duration
+
+    parts = []
+    if a.get("suppressed"):
+        parts.append(f"suppressed: {a['suppressed']}")
+    if a.get("stale"):
+        parts.append(f"stale: {a['stale']}")
+    if a.get("shelve_reason"):
+        until = a.get("shelved_until_s")
+        left = "" if until is None or last_s is None else f", {human_duration(max(0.0, until - last_s))} left"
+        parts.append(f"shelved: {a['shelve_reason']}{left}")
+    b = a.get("baseline")
+    if b is not None and not b.get("learned"):
+        parts.append(f"learning baseline ({b.get('frames', 0)} frames)")
+    return "; ".join(parts)
+
+
+_RANK = {"danger": 0, "alert": 1, "normal": 2}
+
+
 def _print_list(result: dict[str, Any]) -> None:
-    rows = [("POINT", "INDICATOR", "STATE", "SEVERITY", "VALUE", "ALERT", "DANGER", "NOTE")]
-    for a in result.get("alarms", []):
-        note = a.get("suppressed") or (f"shelved: {a['shelve_reason']}" if a.get("shelve_reason") else "")
-        b = a.get("baseline")
-        if b is not None and not b.get("learned"):
-            note = (note + "; " if note else "") + f"learning baseline ({b.get('frames', 0)} frames)"
-        rows.append((a["point"], a["indicator"], a["state"], a["severity"], _fmt(a.get("value")),
-                     _fmt(a.get("alert")), _fmt(a.get("danger")), note))
+    points = result.get("points", {})
+    rows = [("POINT", "MACHINE", "INDICATOR", "STATE", "SEVERITY", "VALUE", "ALERT", "DANGER", "NOTE")]
+    alarms = sorted(result.get("alarms", []), key=lambda a: (a["point"], _RANK.get(a["severity"], 3)))
+    for a in alarms:
+        pt = points.get(a["point"], {})
+        last = pt.get("time")
+        last_s = datetime.fromisoformat(last.replace("Z", "+00:00")).timestamp() if last else None
+        rows.append((a["point"], _machine_text(pt), a["indicator"], a["state"], a["severity"], _fmt(a.get("value")),
+                     _fmt(a.get("alert")), _fmt(a.get("danger")), _note(a, last_s)))
     widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]) - 1)]
     for r in rows:
         print("  ".join(c.ljust(w) for c, w in zip(r[:-1], widths, strict=True)) + "  " + r[-1])
+    for pid, pt in sorted(points.items()):
+        text = pt.get("alarm_text")
+        if text and text != "normal":
+            print(f"point {pid}: {text}")
     faults = {p: s for p, s in result.get("sensors", {}).items() if s.get("fault")}
     for p, s in sorted(faults.items()):
         print(f"sensor fault  {p}: {s['fault']} — {s.get('detail', '')}")
+    for name, src in sorted(result.get("sources", {}).items()):
+        if src.get("state") == "down":
+            print(f"source down  {name} since {_utc(src.get('since_s'))}: {src.get('reason') or ''} "
+                  "(its points' alarms are stale)")
     print(f"outbox: {result.get('outbox_pending', 0)} event(s) pending")
+
+
+def _print_history(rows: list[dict[str, Any]]) -> None:
+    table = [("TIME (UTC)", "POINT", "INDICATOR", "TRANSITION", "STATE", "ALARM STATE", "VALUE", "LIMIT", "BY",
+              "REASON", "CAPTURE")]
+    for r in rows:
+        by = "" if not r.get("by") else f"{r['by']}" + (f" at {_utc(r['at_s'])}" if r.get("at_s") else "")
+        state = str(r.get("state") or "") + (f" (stale: {r['stale']})" if r.get("stale") else "")
+        table.append((_utc(r.get("t_s")), r.get("point") or f"[source {r.get('indicator')}]",
+                      str(r.get("indicator") or ""), str(r.get("transition") or ""), state,
+                      str(r.get("alarm_state") or ""), _fmt(r.get("value")), _fmt(r.get("limit")), by,
+                      str(r.get("reason") or ""), str(r.get("capture") or "")))
+    widths = [max(len(r[i]) for r in table) for i in range(len(table[0]) - 1)]
+    for t in table:
+        print("  ".join(c.ljust(w) for c, w in zip(t[:-1], widths, strict=True)) + "  " + t[-1])
+    if len(table) == 1:
+        print("(no transitions recorded)")
 
 
 def run_alarms(args: argparse.Namespace) -> int:
@@ -112,10 +223,10 @@ def run_alarms(args: argparse.Namespace) -> int:
 
     try:
         path = _socket_path(args)
-    except (ConfigError, OSError) as exc:
+        req = _request(args)
+    except (ConfigError, OSError, _BadArgument) as exc:
         print(f"edgevib alarms: {exc}", file=sys.stderr)
         return 2
-    req = _request(args)
     try:
         resp = request(path, req, timeout_s=args.timeout)
     except FileNotFoundError:
@@ -131,7 +242,9 @@ def run_alarms(args: argparse.Namespace) -> int:
         print(f"edgevib alarms: {resp.get('error')}", file=sys.stderr)
     elif args.alarm_cmd == "list":
         _print_list(resp["result"])
+    elif args.alarm_cmd == "history":
+        _print_history(resp["result"])
     else:
         r = resp["result"]
         print(f"{args.alarm_cmd}: {r.get('changed', 0)} alarm(s) changed, {r.get('events', 0)} event(s)")
-    return 0 if resp.get("ok") else 1
+    return 0 if resp.get("ok") else 2

@@ -270,6 +270,17 @@ def _leading_family(r: FrameResult) -> str:
     return f"{fam} {snr:.0f} dB"
 
 
+def _machine_cell(cfg: Config, r: FrameResult) -> str:
+    """The machine's state when the frame was judged, with the start-up grace still to run while ``starting``."""
+    ms = r.machine_state
+    if ms is None:
+        return "-"
+    if ms.state == "starting" and ms.started_s is not None and ms.last_s is not None:
+        left = max(0.0, ms.started_s + cfg.alarms.startup_grace_s - ms.last_s)
+        return f"starting {left:.0f} s" if left > 0 else "starting"
+    return str(ms.state)
+
+
 DEMO = sorted((i.demo for i in REGISTRY if i.demo is not None), key=lambda d: d.position)
 """The demo table's indicator columns (the registry's ``demo``), between the point's sensor and its envelope."""
 
@@ -277,19 +288,20 @@ DEMO = sorted((i.demo for i in REGISTRY if i.demo is not None), key=lambda d: d.
 def render_table(cfg: Config, latest: dict[str, FrameResult], state_text: Callable[[str], str | None],
                  tty: bool, only: Collection[str] | None = None) -> str:
     """The demo's table (a tty) or one plain line per point (a pipe); ``only`` limits it to those points."""
-    keys = ("point", "sensor", *(d.key for d in DEMO), "envelope", "alarm")
+    keys = ("point", "sensor", "machine", *(d.key for d in DEMO), "envelope", "alarm")
     rows = []
     for p in cfg.points:
         if only is not None and p.id not in only:
             continue
         r = latest.get(p.id)
-        cells = ["…"] * (len(DEMO) + 1) if r is None else [*(d.text(r) for d in DEMO), _leading_family(r)]
+        cells = ["…"] * (len(DEMO) + 2) if r is None else [_machine_cell(cfg, r), *(d.text(r) for d in DEMO),
+                                                           _leading_family(r)]
         rows.append((p.id, p.sensor_type, *cells, state_text(p.id) or "-"))
     if not tty:
         stamp = time.strftime("%H:%M:%S")
-        return "\n".join(stamp + "".join(f" {k}={v.replace(' ', '_' if k == 'alarm' else '')}"
+        return "\n".join(stamp + "".join(f" {k}={v.replace(' ', '_' if k in ('alarm', 'machine') else '')}"
                                           for k, v in zip(keys, row, strict=True)) for row in rows)
-    head = ("point", "sensor", *(d.heading for d in DEMO), "envelope", "alarm")
+    head = ("point", "sensor", "machine", *(d.heading for d in DEMO), "envelope", "alarm")
     widths = [max(len(str(x)) for x in col) for col in zip(head, *rows, strict=True)]
     line = "  ".join(h.ljust(w) for h, w in zip(head, widths, strict=True))
     out = [line, "  ".join("-" * w for w in widths)]

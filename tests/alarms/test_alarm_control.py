@@ -76,7 +76,10 @@ async def test_control_socket_commands(short_tmp: Path) -> None:
         rc = await asyncio.to_thread(main, ["alarms", "--socket", str(sock), "ack", "P-101-DE-H"])
         assert rc == 0 and events[-1]["data"]["transition"] == "acknowledged"
         rc = await asyncio.to_thread(main, ["alarms", "--state-dir", str(short_tmp), "ack", "NOPE"])
-        assert rc == 1
+        assert rc == 2  # bad input, refused by the daemon: exit status 2 as every command
+        rc = await asyncio.to_thread(main, ["alarms", "--state-dir", str(short_tmp), "shelve", "P-101-DE-H",
+                                            "--reason", "overhaul", "--hours", "500"])
+        assert rc == 2
         rc = await asyncio.to_thread(main, ["alarms", "--state-dir", str(short_tmp), "list"])
         assert rc == 0
     finally:
@@ -129,3 +132,63 @@ async def test_a_shelf_expires_on_the_timer_without_frames(short_tmp: Path) -> N
         assert layer.snapshot()["alarms"][0]["shelved_until_s"] is None
     finally:
         await layer.stop()
+
+
+def test_human_durations() -> None:
+    from edgevib.daemon.alarms.control import human_duration
+
+    assert human_duration(500 * 3600.0) == "500 h"  # not "1.8e+06 s"
+    assert human_duration(168 * 3600.0) == "168 h"
+    assert human_duration(45.0) == "45 s"
+    assert human_duration(12.5 * 60) == "12.5 min"
+    assert human_duration(8 * 3600.0) == "8 h"
+    assert human_duration(60 * 86400.0) == "60 d"
+
+
+def test_since_accepts_durations_and_utc_times() -> None:
+    from edgevib.daemon.alarmctl import parse_since
+
+    now = 1_780_000_000.0
+    assert parse_since("90s", now) == now - 90.0
+    assert parse_since("8h", now) == now - 8 * 3600.0
+    assert parse_since("7d", now) == now - 7 * 86400.0
+    assert parse_since("2026-12-01T06:00Z", now) == 1_796_104_800.0  # 2026-12-01 06:00 UTC (Unix time)
+    assert parse_since("2026-12-01", now) == 1_796_083_200.0
+    with pytest.raises(ValueError, match="neither a duration"):
+        parse_since("last tuesday", now)
+
+
+def test_alarms_cli_history_ack_by_and_shelve_errors(short_tmp: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # ISO 20816-3 group 2 rigid: B/C 2.8 mm/s (FIELD_NOTES §1)
+    t0 = 1_780_000_000.0
+
+    async def scenario() -> list[int]:
+        cfg = small_config(short_tmp, alarms={"max_shelve_h": 168.0})
+        layer = AlarmLayer(cfg)
+        await layer.start()
+        codes = []
+        try:
+            for i in range(2):
+                await layer.on_frames([frame_result("P-101-DE-H", "P-101", t0 + i, 3.0)])
+            base = ["alarms", "--state-dir", str(short_tmp)]
+            codes.append(await asyncio.to_thread(main, [*base, "ack", "P-101-DE-H", "--by", "K. Shiftlead"]))
+            codes.append(await asyncio.to_thread(main, [*base, "shelve", "P-101-DE-H", "--reason", "overhaul",
+                                                        "--hours", "500"]))
+            codes.append(await asyncio.to_thread(main, [*base, "history", "P-101-DE-H"]))
+            codes.append(await asyncio.to_thread(main, [*base, "--json", "history", "--since", "2026-05-28"]))
+            codes.append(await asyncio.to_thread(main, [*base, "history", "--since", "yesterday-ish"]))
+            codes.append(await asyncio.to_thread(main, [*base, "history", "NOPE"]))
+        finally:
+            await layer.stop()
+        return codes
+
+    codes = asyncio.run(scenario())
+    captured = capsys.readouterr()
+    assert codes == [0, 2, 0, 0, 2, 2]
+    assert "500 h exceeds the maximum 168 h" in captured.err
+    table, raw = captured.out.split("\n{", 1)
+    lines = [ln for ln in table.splitlines() if ln.startswith("2026-05-28T20:26:41Z  P-101-DE-H")]
+    assert "acknowledged" in lines[0] and "K. Shiftlead at " in lines[0]  # newest first, the operator's name
+    assert "raised" in lines[1] and "alert" in lines[1] and "2.8" in lines[1] and ".wav" in lines[1]
+    rows = json.loads("{" + raw.split("\n}\n", 1)[0] + "\n}")["result"]
+    assert [r["transition"] for r in rows] == ["acknowledged", "raised"] and rows[0]["by"] == "K. Shiftlead"

@@ -62,7 +62,8 @@ async def frames(layer: AlarmLayer, clock: Clock, t0: float, values: dict[str, l
     n = max(len(v) for v in values.values())
     for i in range(n):
         clock.t += 0.64
-        batch = [frame_result(pid, "P-101", T0 + t0 + 0.64 * i, v[i], seed=i) for pid, v in values.items() if i < len(v)]
+        batch = [frame_result(pid, "P-101", T0 + t0 + 0.64 * i, v[i], seed=i) for pid, v in values.items()
+                 if i < len(v)]
         await layer.on_frames(batch)
 
 
@@ -92,7 +93,7 @@ async def test_source_down_is_one_event_and_keeps_an_unacknowledged_danger(short
         row = layer.snapshot(POINTS[0])["alarms"][0]
         assert (row["state"], row["severity"], row["stale"]) == ("unacknowledged", "danger", "source-down")
         assert layer.state_text(POINTS[0]) == "DANGER velocity_rms_mm_s (stale: source-down)"
-        topic, body = layer.state_messages()[POINTS[0]]
+        _topic, body = layer.state_messages()[POINTS[0]]
         assert b'"stale":"source-down"' in body and b'"state":"danger"' in body
         layer.on_source("plant", True)
         await tick(layer)

@@ -253,6 +253,7 @@ def test_render_table_tty_and_plain(tmp_path: Path) -> None:
     from edgevib.daemon.config import load_config
     from edgevib.daemon.interfaces import FrameResult
     from edgevib.daemon.service import render_table
+    from edgevib.pipelines.machine_state import MachineState
     from edgevib.pipelines.types import FamilyResult, FrameIndicators
 
     cfg = load_config(EXAMPLE)
@@ -262,14 +263,19 @@ def test_render_table_tty_and_plain(tmp_path: Path) -> None:
                           envelope_band_hz=(2000.0, 8000.0),
                           envelope={"bpfo": FamilyResult(88.4, 88.5, 0.01, 18.0, 3, detected=True),
                                     "bpfi": FamilyResult(133.4, 133.0, 0.002, 24.0, 0)})  # not detected: not shown
-    latest = {"P-101-DE-H": FrameResult("P-101-DE-H", "P-101", 0, 0, 25600.0, ind, "C", np.zeros(4))}
+    # A machine started 12 s before the frame, with the configuration's start-up grace (30 s by default) to run.
+    starting = MachineState(state="starting", since_s=88.0, started_s=88.0, basis="speed", last_s=100.0)
+    latest = {"P-101-DE-H": FrameResult("P-101-DE-H", "P-101", 0, 0, 25600.0, ind, "C", np.zeros(4),
+                                        machine_state=starting)}
     table = render_table(cfg, latest, lambda pid: "alert" if pid == "P-101-DE-H" else None, tty=True)
     header, _, row, waiting = table.splitlines()
-    assert header.split() == ["point", "sensor", "speed", "velocity", "mm/s", "zone", "crest", "kurtosis",
-                              "envelope", "alarm"]
-    assert row.split() == ["P-101-DE-H", "piezo", "1479", "rpm", "3.10", "C", "3.00", "4.20", "bpfo", "18", "dB",
-                           "alert"]
+    assert header.split() == ["point", "sensor", "machine", "speed", "velocity", "mm/s", "zone", "crest",
+                              "kurtosis", "envelope", "alarm"]
+    grace_left = cfg.alarms.startup_grace_s - 12.0
+    assert row.split() == ["P-101-DE-H", "piezo", "starting", f"{grace_left:.0f}", "s", "1479", "rpm", "3.10", "C",
+                           "3.00", "4.20", "bpfo", "18", "dB", "alert"]
     assert waiting.split()[:2] == ["F-201-NDE-V", "mems"]
     plain = render_table(cfg, latest, lambda pid: None, tty=False).splitlines()
     assert "point=P-101-DE-H" in plain[0] and "velocity_mm_s=3.10 zone=C" in plain[0]
+    assert f"machine=starting_{grace_left:.0f}_s" in plain[0]
     assert "envelope=bpfo18dB" in plain[0]
