@@ -220,3 +220,27 @@ async def test_history_from_the_durable_store(short_tmp: Path) -> None:
         assert [r["transition"] for r in listed] == ["shelved", "acknowledged"]
     finally:
         await layer.stop()
+
+
+async def test_source_events_meet_their_schemas(short_tmp: Path) -> None:
+    from jsonschema import Draft202012Validator
+
+    from edgevib.daemon.eventschemas import schema
+
+    clock, events = Clock(), []
+    layer = await make_layer(two_points(short_tmp), clock, events)
+    try:
+        layer.on_source("plant", True)
+        await frames(layer, clock, 100.0, {POINTS[0]: [6.0] * 3, POINTS[1]: [1.0] * 3})
+        layer.on_source("plant", False)
+        await tick(layer)
+        layer.on_source("plant", True)
+        await tick(layer)
+    finally:
+        await layer.stop()
+    mine = of_type(events, SOURCE_DOWN_TYPE, SOURCE_UP_TYPE)
+    assert [e["type"] for e in mine] == [SOURCE_DOWN_TYPE, SOURCE_UP_TYPE]
+    for e in events:
+        sch = schema(e["type"])
+        Draft202012Validator(sch).validate(e["data"])  # JSON Schema draft 2020-12 (json-schema.org)
+        assert set(e["data"]) <= set(sch["properties"]), e["type"]
