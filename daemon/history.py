@@ -35,7 +35,6 @@ import asyncio
 import contextlib
 import json
 import math
-import os
 import sqlite3
 import threading
 import time
@@ -898,8 +897,3 @@ class HistoryReader:
         row = self.conn.execute("SELECT mean, std, n FROM baselines WHERE point = ? AND indicator = ?",
                                 (pid, indicator)).fetchone()
         return None if row is None else (float(row[0]), float(row[1]), int(row[2]))
-
-
-def default_history_path(state_dir: str | os.PathLike[str]) -> Path:
-    """Where the history lives by default: ``<state_dir>/history.sqlite``."""
-    return Path(state_dir) / "history.sqlite"
