@@ -22,6 +22,7 @@ from edgevib.daemon.config import (
     verify_for_run,
 )
 from edgevib.daemon.interfaces import ConfigError
+from edgevib.simulator.scenario import builtin_scenarios
 
 
 def base() -> dict[str, Any]:
@@ -194,6 +195,40 @@ def test_printed_configuration_loads_back_the_same(path: Path, tmp_path: Path) -
     assert again.alarm_settings.limits == cfg.alarm_settings.limits
     assert again.alarm_settings.health == cfg.alarm_settings.health
     assert [again.plan(p.id) for p in again.points] == [cfg.plan(p.id) for p in cfg.points]
+
+
+def _round_trips(path: Path, tmp_path: Path) -> None:
+    cfg = load_config(path)
+    text = dump_toml(config_to_document(cfg))
+    printed = tmp_path / "printed.toml"
+    printed.write_text(text)
+    assert dump_toml(config_to_document(load_config(printed))) == text
+
+
+def test_readme_minimal_configuration_loads_back_the_same(tmp_path: Path) -> None:
+    readme = (Path(__file__).resolve().parents[2] / "README.md").read_text(encoding="utf-8")
+    block = readme.split("```toml\n", 1)[1].split("```", 1)[0]  # "A minimal configuration", the first TOML block
+    assert "[[points]]" in block
+    path = tmp_path / "minimal.toml"
+    path.write_text(block)
+    _round_trips(path, tmp_path)
+
+
+SCENARIOS = sorted(builtin_scenarios())
+
+
+@pytest.mark.parametrize("scenario", SCENARIOS)
+def test_emitted_configuration_loads_back_the_same(scenario: str, tmp_path: Path) -> None:
+    # what `edgevib simulate --scenario NAME --emit-config PATH` writes, for each streaming source kind
+    from edgevib.simulator.engine import Simulation, load_scenario
+
+    sim = Simulation(load_scenario(scenario), seed=0)
+    for source in ({"name": "sim", "type": "simulated", "scenario": scenario},
+                   {"name": "sim", "type": "mqtt", "url": "mqtt://127.0.0.1:1883",
+                    "topics": [f"{sim.scenario.topic_prefix}/+/+/block"], "sensor_from": "payload"}):
+        path = tmp_path / f"{scenario}-{source['type']}.toml"
+        path.write_text(sim.daemon_config_toml(source=source))
+        _round_trips(path, tmp_path)
 
 
 def test_empty_file_is_an_error(tmp_path: Path) -> None:
