@@ -209,7 +209,8 @@ def evaluate(reader: HistoryReader, point: str, indicator: str, *, spec: TrendSp
     doc.update(_result_fields(res, now, unit))
     if doc["machine_state"] not in (None, "running"):
         doc["status"] = "machine-not-running"
-        doc["need"] = f"no projection while the machine is {doc['machine_state']}"
+        doc["need"] = ("no projection while the sensor is faulty" if doc["machine_state"] == "sensor-fault" else
+                       f"no projection while the machine is {doc['machine_state']}")
         for lim in doc["limits"]:
             lim.update(status="machine-not-running", eta_s=None, eta_low_s=None, eta_high_s=None, date=None,
                        date_low=None, date_high=None)

@@ -246,6 +246,10 @@ async def test_only_running_frames_enter_the_rollups(tmp_path: Path) -> None:
         series = await asyncio.to_thread(watch.history, POINT, "velocity_rms_mm_s", None, 500, "minute")
         assert series.count is not None and series.count.sum() == 20 and np.all(series.vmax == 1.0)
         assert [p[0] for p in series.periods] == ["coasting", "stopped", "starting", "sensor-fault"]
+        await asyncio.to_thread(watch.evaluate_all)
+        doc = watch.latest[(POINT, "velocity_rms_mm_s")]  # the latest frame came from a faulty sensor
+        assert doc["status"] == "machine-not-running" and doc["need"] == "no projection while the sensor is faulty"
+        assert all(lim["eta_s"] is None for lim in doc["limits"])
     finally:
         await watch.stop()
 
