@@ -196,7 +196,8 @@ def _text(v: str) -> str:
 
 
 def check_id(v: str) -> str:
-    """Check an id that becomes an MQTT topic level and part of OPC UA node ids (site, machine, point).
+    """Check an id that becomes an MQTT topic level and part of OPC UA node ids (site, machine, point; a source's
+    name is a level of the source events' topic).
 
     MQTT (3.1.1 §4.7, 5.0 §4.7): ``+`` and ``#`` are wildcards and may not appear in a topic a client publishes to,
     ``/`` separates levels, U+0000 is forbidden, a leading ``$`` is reserved for the broker.  NATS-based brokers
@@ -493,7 +494,7 @@ def _valid_filter(topic: str) -> str | None:
 
 class MqttSourceConfig(MqttConnection):
     type: Literal["mqtt"]
-    name: Text
+    name: Id  # a topic level of the source events ([feed] source_topic), part of client ids
     topics: tuple[Annotated[Text, Field(min_length=1)], ...] = Field(min_length=1)
     qos: Int = Field(1, ge=0, le=1)
     sensor_from: Text = "payload"
@@ -528,7 +529,7 @@ class MqttSourceConfig(MqttConnection):
 class OpcUaSourceConfig(_WithSecrets):
     _SECRETS = ("password",)
     type: Literal["opcua"]
-    name: Text
+    name: Id  # a topic level of the source events ([feed] source_topic), part of client ids
     endpoint: Text
     mode: Literal["subscribe", "poll"] = "subscribe"
     poll_interval_s: Float = Field(1.0, ge=0.01, le=3600.0)
@@ -558,7 +559,7 @@ class OpcUaSourceConfig(_WithSecrets):
 
 class SimulatedSourceConfig(_Table):
     type: Literal["simulated"]
-    name: Text
+    name: Id  # a topic level of the source events ([feed] source_topic), part of client ids
     scenario: Text = "demo"
     seed: Int = Field(0, ge=0)
     rate: Float = Field(1.0, ge=0.01, le=1000.0)

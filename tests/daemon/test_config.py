@@ -77,6 +77,9 @@ def test_minimal_config_fills_defaults() -> None:
     (lambda d: d["site"].update(name="quarry.lane"), "site.name", "NATS"),
     (lambda d: d["points"][0].update(id="P 101"), "points[0].id", "NATS"),
     (lambda d: d["points"][0].update(id="#"), "points[0].id", "MQTT wildcards"),
+    # a source's name is a level of the source events' topic ([feed] source_topic)
+    (lambda d: d["sources"][0].update(name="plant+1"), "sources[0].name", "MQTT wildcards"),
+    (lambda d: d["sources"][0].update(name="plant.north"), "sources[0].name", "NATS"),
     (lambda d: d["site"].update(name=3), "site.name", "must be a string"),
     (lambda d: d["points"][0].update(fs_hz="fast"), "points[0].fs_hz", "must be a number"),
     (lambda d: d["points"][0].update(block_samples=4096.5), "points[0].block_samples", "must be an integer"),
