@@ -39,7 +39,8 @@ import sqlite3
 import threading
 import time
 from collections import deque
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Mapping, Sequence
+from contextlib import AbstractContextManager
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -49,7 +50,7 @@ import numpy.typing as npt
 
 from edgevib.daemon.interfaces import EdgevibError
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
-from edgevib.daemon.sqlite_schema import migrate
+from edgevib.daemon.sqlite_schema import migrate, write_transaction
 from edgevib.pipelines.rollup import STAT_FIELDS, LogSketch, summarize
 
 if TYPE_CHECKING:
@@ -192,15 +193,8 @@ class _Database:
         migrate(self.conn, self.transaction, what="history database", path=self.path, first_layout=_SCHEMA_V1,
                 migrations=MIGRATIONS, version=SCHEMA_VERSION, error=HistoryError, log=log)
 
-    @contextlib.contextmanager
-    def transaction(self) -> Iterator[sqlite3.Connection]:
-        self.conn.execute("BEGIN IMMEDIATE")
-        try:
-            yield self.conn
-        except BaseException:
-            self.conn.execute("ROLLBACK")
-            raise
-        self.conn.execute("COMMIT")
+    def transaction(self) -> AbstractContextManager[sqlite3.Connection]:
+        return write_transaction(self.conn)
 
     def point_id(self, name: str) -> int:
         pid = self._points.get(name)

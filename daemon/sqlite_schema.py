@@ -1,4 +1,5 @@
-"""Schema versions of the daemon's SQLite files (the alarm state database, the severity history).
+"""Schema versions and write transactions of the daemon's SQLite files (the alarm state database, the severity
+history).
 
 A file holds its layout's version in a one-row table ``schema_version``.  A new file gets the first layout and the
 current version; an older one is brought forward one migration at a time, each in its own transaction; a file
@@ -7,13 +8,27 @@ written by a newer edgevib is refused rather than guessed at.
 
 from __future__ import annotations
 
+import contextlib
 import sqlite3
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterator, Mapping
 from contextlib import AbstractContextManager
 from pathlib import Path
 from typing import Any
 
-__all__ = ["migrate"]
+__all__ = ["migrate", "write_transaction"]
+
+
+@contextlib.contextmanager
+def write_transaction(conn: sqlite3.Connection) -> Iterator[sqlite3.Connection]:
+    """A write transaction (``BEGIN IMMEDIATE`` … ``COMMIT``) on a connection in autocommit mode, rolled back on
+    an exception."""
+    conn.execute("BEGIN IMMEDIATE")
+    try:
+        yield conn
+    except BaseException:
+        conn.execute("ROLLBACK")
+        raise
+    conn.execute("COMMIT")
 
 
 def _execute_all(conn: sqlite3.Connection, script: str) -> None:

@@ -23,7 +23,7 @@ from pathlib import Path
 import structlog
 
 from edgevib.daemon.interfaces import EdgevibError
-from edgevib.daemon.sqlite_schema import migrate
+from edgevib.daemon.sqlite_schema import migrate, write_transaction
 
 __all__ = ["SCHEMA_VERSION", "Database", "Outbox", "OutboxEvent", "StateError", "new_event_id"]
 
@@ -118,14 +118,8 @@ class Database:
     @contextlib.contextmanager
     def transaction(self) -> Iterator[sqlite3.Connection]:
         """A write transaction (``BEGIN IMMEDIATE`` … ``COMMIT``), rolled back on an exception."""
-        with self.lock:
-            self.conn.execute("BEGIN IMMEDIATE")
-            try:
-                yield self.conn
-            except BaseException:
-                self.conn.execute("ROLLBACK")
-                raise
-            self.conn.execute("COMMIT")
+        with self.lock, write_transaction(self.conn) as conn:
+            yield conn
 
     def close(self) -> None:
         with self.lock:

@@ -1,17 +1,16 @@
 """Schema versions of the daemon's SQLite files (edgevib.daemon.sqlite_schema): a new file gets the first layout,
-an older one each migration in turn, a newer one is refused with the store's own error."""
+an older one each migration in turn, a newer one is refused with the store's own error; a failed write transaction
+leaves nothing behind."""
 
 from __future__ import annotations
 
-import contextlib
 import sqlite3
-from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
 import structlog
 
-from edgevib.daemon.sqlite_schema import migrate
+from edgevib.daemon.sqlite_schema import migrate, write_transaction
 
 FIRST = "CREATE TABLE items (id INTEGER PRIMARY KEY, name TEXT NOT NULL)"
 MIGRATIONS = {1: "ALTER TABLE items ADD COLUMN size INTEGER NOT NULL DEFAULT 0",
@@ -24,19 +23,8 @@ class StoreError(Exception):
 
 def _open(path: Path, version: int) -> sqlite3.Connection:
     conn = sqlite3.connect(str(path), isolation_level=None)
-
-    @contextlib.contextmanager
-    def transaction() -> Iterator[sqlite3.Connection]:
-        conn.execute("BEGIN IMMEDIATE")
-        try:
-            yield conn
-        except BaseException:
-            conn.execute("ROLLBACK")
-            raise
-        conn.execute("COMMIT")
-
-    migrate(conn, transaction, what="test store", path=path, first_layout=FIRST, migrations=MIGRATIONS,
-            version=version, error=StoreError, log=structlog.get_logger("test"))
+    migrate(conn, lambda: write_transaction(conn), what="test store", path=path, first_layout=FIRST,
+            migrations=MIGRATIONS, version=version, error=StoreError, log=structlog.get_logger("test"))
     return conn
 
 
@@ -58,3 +46,14 @@ def test_new_file_then_each_migration_in_turn_then_a_newer_file_refused(tmp_path
     with pytest.raises(StoreError, match=r"test store .* has schema version 3, written by a newer edgevib; this "
                                          r"version reads up to 2"):
         _open(path, 2)
+
+
+def test_a_failed_write_transaction_is_rolled_back(tmp_path: Path) -> None:
+    conn = _open(tmp_path / "store.sqlite", 1)
+    with pytest.raises(sqlite3.IntegrityError), write_transaction(conn):
+        conn.execute("INSERT INTO items (name) VALUES ('first')")
+        conn.execute("INSERT INTO items (name) VALUES (NULL)")  # NOT NULL
+    assert conn.execute("SELECT count(*) FROM items").fetchone() == (0,)
+    with write_transaction(conn):
+        conn.execute("INSERT INTO items (name) VALUES ('kept')")
+    assert conn.execute("SELECT name FROM items").fetchall() == [("kept",)]
