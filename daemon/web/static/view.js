@@ -331,7 +331,8 @@
       if (i.value === null || i.kind === "family" || i.name === "iso_zone") continue;
       figs.append(el("span", { class: "fig", "data-indicator": i.name },
         el("b", { title: i.description || "", text: i.name.replace(/_(mm_s|g|um|hz|db)(?=$|\.)/, "") + " " }),
-        `${num(i.value, 4)} ${i.unit === "1" ? "" : i.unit}`));
+        typeof i.value === "number" ? `${num(i.value, 4)} ${i.unit === "1" ? "" : i.unit}` :
+          typeof i.value === "boolean" ? (i.value ? "yes" : "no") : String(i.value)));
     }
     const sel = $("tr-ind"), current = sel.value;
     const names = p.indicators.map(i => i.name);
