@@ -224,8 +224,16 @@ def test_actions_are_refused_without_credentials(browser: Any, tmp_path: Path) -
         page.fill("#token", TOKEN)
         page.click("#signin button")
         page.wait_for_selector("#act-ack:not([disabled])", timeout=10000)
+        # the alarm history panel (the alarm layer's durable history) shows the pump's danger being raised, with
+        # the value that crossed the limit …
+        page.wait_for_selector('#history tr[data-transition="raised"][data-state="danger"]', timeout=60000)
+        assert "limit 4.5 mm/s" in page.inner_text("#history")  # ISO 20816-3 C/D boundary, group 2 rigid
         page.click("#act-ack")
         wait_until(page, lambda: "done by token:shift-lead" in page.inner_text("#act-msg"), "the acknowledgement")
+        # … and then who acknowledged it, and when
+        page.wait_for_selector('#history tr[data-transition="acknowledged"]', timeout=30000)
+        ack_row = page.inner_text('#history tr[data-transition="acknowledged"]')
+        assert re.search(r"token:shift-lead at \d{4}-\d\d-\d\dT[\d:.]+Z", ack_row), ack_row
         page.close()
         expected = {"Failed to load resource: the server responded with a status of 401 (Unauthorized)"}
         assert set(console.errors) <= expected  # the refusals themselves, nothing else

@@ -419,3 +419,51 @@ async def test_alarm_history_is_the_alarm_layers_durable_history(demo: Running) 
         assert code == 404 and "X-999" in err["error"]
     finally:
         demo.daemon.alarm_view = real
+
+
+async def test_alarm_history_is_read_from_the_durable_store_with_why(tmp_path: Path) -> None:
+    # the alarm history the view shows is the alarm layer's durable one: transitions with the value, the limit,
+    # the state, who acknowledged or shelved and when, the reason — and still there after a restart
+    token_file = tmp_path / "view-token"
+    token_file.write_text(f"kim:{TOKEN}\n")
+    view = {"actions": True, "token_file": str(token_file)}
+    auth = {"Authorization": f"Bearer {TOKEN}"}
+    async for r in _start(tmp_path, view):
+        alarm_view: Any = r.daemon.alarm_view
+        await _wait(lambda: any(a["state"] == "unacknowledged" and a["indicator"] == "velocity_rms_mm_s"
+                                for a in alarm_view.snapshot("P-101-DE-H")["alarms"]))
+        code, doc = await r.post("/api/v1/points/P-101-DE-H/ack", headers=auth)
+        assert code == 200 and doc["result"]["changed"] >= 1, doc
+        code, doc = await r.post("/api/v1/points/P-101-DE-H/shelve", {"reason": "impeller balancing booked",
+                                                                      "duration_s": 600, "indicator":
+                                                                      "velocity_rms_mm_s"}, headers=auth)
+        assert code == 200, doc
+        hist: dict[str, Any] = {}
+
+        def has_all(doc: dict[str, Any]) -> bool:
+            kinds = {e["transition"] for e in doc.get("events", []) if e["indicator"] == "velocity_rms_mm_s"}
+            return {"raised", "acknowledged", "shelved"} <= kinds
+
+        async with asyncio.timeout(30):
+            while not has_all(hist):
+                code, hist = await r.get("/api/v1/alarms/history?point=P-101-DE-H")
+                assert code == 200 and hist["available"] is True, hist
+                await asyncio.sleep(0.1)
+        events = [e for e in hist["events"] if e["indicator"] == "velocity_rms_mm_s"]
+        assert all(e["point"] == "P-101-DE-H" and e["kind"] == "alarm" for e in hist["events"])
+        times = [e["t_s"] for e in hist["events"]]
+        assert times == sorted(times, reverse=True)  # newest first
+        raised = next(e for e in events if e["transition"] == "raised")
+        # the imbalanced pump in ISO 20816-3 zone D: raised to danger above the C/D boundary of group 2 rigid
+        # (4.5 mm/s; ISO 10816-3:2009 Annex A tables, FIELD_NOTES §1), the value that crossed it kept
+        assert raised["state"] == "danger" and raised["limit"] == pytest.approx(4.5) and raised["value"] > 4.5
+        assert raised["unit"] == "mm/s" and raised["time"].endswith("Z") and raised["by"] is None
+        acked = next(e for e in events if e["transition"] == "acknowledged")
+        assert acked["by"] == "token:kim" and acked["at"] is not None and acked["at"].endswith("Z")
+        shelved = next(e for e in events if e["transition"] == "shelved")
+        assert shelved["by"] == "token:kim" and shelved["reason"] == "impeller balancing booked"
+        kept = {e["event_id"] for e in hist["events"]}
+    # a restart on the same state directory reads the same transitions back from the store
+    async for r in _start(tmp_path, view):
+        code, again = await r.get("/api/v1/alarms/history?point=P-101-DE-H&limit=1000")
+        assert code == 200 and kept <= {e["event_id"] for e in again["events"]}
