@@ -499,11 +499,17 @@ class ViewService:
         return fn(pid) if callable(fn) else None
 
     def _alarm_rows(self, point: str | None = None) -> tuple[list[dict[str, Any]], dict[str, Any]]:
+        rows, sensors, _ = self._alarm_snapshot(point)
+        return rows, sensors
+
+    def _alarm_snapshot(self, point: str | None = None,
+                        ) -> tuple[list[dict[str, Any]], dict[str, Any], dict[str, Any]]:
+        """The alarm layer's limit rows, sensor states and per-point rows (machine state, data gap, source)."""
         layer = self._alarm_layer
         if layer is None:
-            return [], {}
+            return [], {}, {}
         snap = layer.snapshot(point)
-        return list(snap.get("alarms", [])), dict(snap.get("sensors", {}))
+        return list(snap.get("alarms", [])), dict(snap.get("sensors", {})), dict(snap.get("points", {}))
 
     @staticmethod
     def _active(row: dict[str, Any]) -> bool:
@@ -515,12 +521,11 @@ class ViewService:
         if state is not None:  # the machine state the daemon judged the latest frame in
             return str(getattr(state, "state", state))
         layer = self._alarm_layer
-        fn = getattr(layer, "machine_state", None)
-        if callable(fn):
-            with contextlib.suppress(Exception):
-                state = fn(machine_id)
-                if isinstance(state, str):
-                    return state
+        view = getattr(self.daemon, "alarm_view", None)
+        if view is not None:  # the machine's state as the alarm layer judges it now (AlarmView.machine_view)
+            state = view.machine_view(machine_id).get("state")
+            if isinstance(state, str):
+                return state
         reason = getattr(layer, "suppressed", {}).get(pid) if layer is not None else None
         if reason == "machine-stopped":
             return "stopped"
@@ -531,7 +536,7 @@ class ViewService:
         return "running" if r.indicators.shaft_hz is not None else "unknown"
 
     def _point_doc(self, p: Any, rows: list[dict[str, Any]], sensors: dict[str, Any], now_ns: int,
-                   ) -> dict[str, Any]:
+                   judged: dict[str, Any] | None = None) -> dict[str, Any]:
         d = self.daemon
         m = d.config.machine(p.machine)
         r: FrameResult | None = d.latest.get(p.id)
@@ -549,6 +554,9 @@ class ViewService:
             "limits": {row["indicator"]: {"alert": row.get("alert"), "danger": row.get("danger")}
                        for row in rows if row.get("point") == p.id},
             "sensor_fault": (sensors.get(p.id) or {}).get("fault"),
+            # the alarm layer's view of the point's data: why it has no good data (None: data flows), its source
+            "data_gap": (judged or {}).get("stale"), "source_state": (judged or {}).get("source_state"),
+            "start_up_grace_left_s": (judged or {}).get("start_up_grace_left_s"),
             "frame_end": None, "age_s": None, "stale": True, "iso_zone": None, "speed": None, "indicators": [],
         }
         if m.group is not None and m.support is not None:
@@ -568,9 +576,9 @@ class ViewService:
         return doc
 
     async def _points(self, _request: web.Request) -> web.Response:
-        rows, sensors = self._alarm_rows()
+        rows, sensors, judged = self._alarm_snapshot()
         now = self.clock_ns()
-        docs = [self._point_doc(p, rows, sensors, now) for p in self.daemon.config.points]
+        docs = [self._point_doc(p, rows, sensors, now, judged.get(p.id)) for p in self.daemon.config.points]
         ready, detail = self.daemon.readiness()
         return json_response({"api": API_VERSION, "site": self.daemon.config.site.name, "time": rfc3339(now),
                               "ready": ready, "readiness": detail, "points": docs})
@@ -585,8 +593,8 @@ class ViewService:
 
     async def _point(self, request: web.Request) -> web.Response:
         p = self._point_config(request)
-        rows, sensors = self._alarm_rows(p.id)
-        return json_response(self._point_doc(p, rows, sensors, self.clock_ns()))
+        rows, sensors, judged = self._alarm_snapshot(p.id)
+        return json_response(self._point_doc(p, rows, sensors, self.clock_ns(), judged.get(p.id)))
 
     # ------------------------------------------------------------------------------------------ frame panels
 

@@ -9,6 +9,7 @@ import itertools
 import json
 import math
 from collections.abc import AsyncIterator
+from functools import partial
 from pathlib import Path
 from typing import Any
 
@@ -50,6 +51,12 @@ async def _wait(pred: Any, timeout_s: float = 40.0) -> None:
             await asyncio.sleep(0.05)
 
 
+def _unacknowledged(view: Any, point: str, indicator: str | None = None) -> bool:
+    """An unacknowledged alarm of ``point`` (of ``indicator``) in the alarm layer's snapshot."""
+    return any(a["state"] == "unacknowledged" and indicator in (None, a["indicator"])
+               for a in view.snapshot(point)["alarms"])
+
+
 async def _start(tmp_path: Path, view: dict[str, Any] | None = None) -> AsyncIterator[Running]:
     cfg = demo_config(rate=2.0, seed=0, state_dir=str(tmp_path / "state"), view=view)
     d = Daemon(cfg, metrics_listen=("127.0.0.1", 0))
@@ -77,6 +84,7 @@ async def demo_with_actions(tmp_path: Path) -> AsyncIterator[Running]:
 
 
 async def test_points_list_every_point_with_state_and_units(demo: Running) -> None:
+    await _wait(partial(_unacknowledged, demo.daemon.alarm_view, "P-101-DE-H", "velocity_rms_mm_s"))
     code, doc = await demo.get("/api/v1/points")
     assert code == 200 and doc["api"] == "v1"
     assert [p["id"] for p in doc["points"]] == [p.id for p in demo.daemon.config.points]
@@ -86,6 +94,8 @@ async def test_points_list_every_point_with_state_and_units(demo: Running) -> No
     assert p101["speed"]["source"] == "fixed" and p101["speed"]["rpm"] == pytest.approx(1480.0)
     assert p101["iso_zone"] == "D" and p101["iso"]["boundaries_mm_s"] == [1.4, 2.8, 4.5]  # ISO 20816-3 G2 rigid
     assert p101["frame_end"].endswith("Z") and p101["stale"] is False
+    assert p101["data_gap"] is None and p101["source_state"] == "up"  # the alarm layer: data flows
+    assert "DANGER" in p101["alarm_state"] and {a["indicator"] for a in p101["alarms"]} >= {"velocity_rms_mm_s"}
     mems = next(p for p in doc["points"] if p["id"] == "F-201-NDE-V")
     assert mems["envelope_band_hz"] is None and mems["envelope_note"]
 
@@ -276,8 +286,7 @@ async def test_actions_need_credentials_and_csrf(demo_with_actions: Running) -> 
     assert code == 401
     # a bearer token works without a CSRF token (a browser never sends it by itself) and is recorded as who;
     # first the imbalanced pump's danger is raised (the limits' debounce runs on the first frames)
-    alarm_view: Any = r.daemon.alarm_view
-    await _wait(lambda: any(a["state"] == "unacknowledged" for a in alarm_view.snapshot("P-101-DE-H")["alarms"]))
+    await _wait(partial(_unacknowledged, r.daemon.alarm_view, "P-101-DE-H"))
     code, doc = await r.post("/api/v1/points/P-101-DE-H/ack", headers={"Authorization": f"Bearer {TOKEN}"})
     assert code == 200 and doc["by"] == "token:kim" and doc["result"]["changed"] >= 1, doc
     # a session cookie needs the CSRF token too
@@ -379,6 +388,9 @@ class _HistoryView:
     def state_text(self, point_id: str) -> str | None:
         return None if self.real is None else self.real.state_text(point_id)
 
+    def machine_view(self, machine: str) -> dict[str, object]:
+        return {} if self.real is None else dict(self.real.machine_view(machine))
+
     def history(self, point: str | None = None, *, since_s: float | None = None, limit: int = 200) -> list[Any]:
         self.calls.append((point, since_s, limit))
         if not 1 <= limit <= 1000:
@@ -429,9 +441,7 @@ async def test_alarm_history_is_read_from_the_durable_store_with_why(tmp_path: P
     view = {"actions": True, "token_file": str(token_file)}
     auth = {"Authorization": f"Bearer {TOKEN}"}
     async for r in _start(tmp_path, view):
-        alarm_view: Any = r.daemon.alarm_view
-        await _wait(lambda: any(a["state"] == "unacknowledged" and a["indicator"] == "velocity_rms_mm_s"
-                                for a in alarm_view.snapshot("P-101-DE-H")["alarms"]))
+        await _wait(partial(_unacknowledged, r.daemon.alarm_view, "P-101-DE-H", "velocity_rms_mm_s"))
         code, doc = await r.post("/api/v1/points/P-101-DE-H/ack", headers=auth)
         assert code == 200 and doc["result"]["changed"] >= 1, doc
         code, doc = await r.post("/api/v1/points/P-101-DE-H/shelve", {"reason": "impeller balancing booked",

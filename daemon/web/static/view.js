@@ -311,7 +311,8 @@
            el("span", { class: "zone", title: "ISO 20816-3 zone", text: p.iso_zone || "–" })),
         el("div", { class: "line" }, el("span", { text: `${p.machine} · ${p.machine_state}` }),
            el("span", { text: vel === undefined ? "…" : `${num(vel, 3)} mm/s` })),
-        el("div", { class: "state", text: p.stale && p.frame_end ? `${p.alarm_state} (stale)` : p.alarm_state }));
+        el("div", { class: "state", text: p.alarm_state + (p.data_gap && !p.alarm_state.includes("stale") ? ` (no good data: ${p.data_gap})`
+                                                      : p.stale && p.frame_end ? " (no recent frame)" : "") }));
       li.addEventListener("click", () => select(p.id));
       li.addEventListener("keydown", ev => { if (ev.key === "Enter") select(p.id); });
       list.append(li);
@@ -322,7 +323,9 @@
     $("point-title").textContent = `${p.id}`;
     const speed = p.speed && p.speed.rpm ? `${num(p.speed.rpm, 4)} r/min (${p.speed.source})` : "speed unknown";
     $("point-sub").textContent = `${p.machine}${p.machine_description ? " — " + p.machine_description : ""} · ` +
-      `${p.axis}, ${p.sensor_type} sensor ${p.sensor} · ${p.machine_state} · ${speed}`;
+      `${p.axis}, ${p.sensor_type} sensor ${p.sensor} · ${p.machine_state}` +
+      (p.start_up_grace_left_s ? ` (start-up grace ${num(p.start_up_grace_left_s, 3)} s left)` : "") +
+      (p.source_state === "down" ? " · source down" : "") + ` · ${speed}`;
     const figs = $("figures");
     figs.textContent = "";
     figs.append(el("span", { class: "fig" }, el("b", { text: "zone " }), p.iso_zone || "n/a"));
