@@ -370,3 +370,21 @@ def test_readme_configuration_reference_lists_every_history_and_trend_key() -> N
                 assert shown == f'"{default}"', key
             else:
                 assert json.loads(shown) == list(default), key
+
+
+async def test_projections_are_recomputed_periodically(tmp_path: Path) -> None:
+    # The layer evaluates on its own every [trend] evaluate_s (here the least, 1 s), in a worker thread.
+    cfg = _config(tmp_path / "state", trend={"evaluate_s": 1.0, "min_span_h": 24.0})
+    watch = create_trend_watch(cfg, None)
+    assert watch is not None
+    await watch.start()
+    try:
+        await watch.on_frames([_frame(T0 + i * 3600.0, 1.0 + 0.05 * i, i) for i in range(48)])
+        for _ in range(100):  # up to 10 s under load; normally about 1 s
+            if (POINT, "velocity_rms_mm_s") in watch.latest:
+                break
+            await asyncio.sleep(0.1)
+        doc = watch.latest[(POINT, "velocity_rms_mm_s")]
+        assert watch.evaluations >= 1 and doc["status"] == "ok" and doc["rising"]
+    finally:
+        await watch.stop()
