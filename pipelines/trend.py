@@ -22,7 +22,10 @@ broken-stick (flat, then rising) fit chosen against "flat" and "straight" by the
 exponential model (least squares on the logarithm) are fitted and compared; the growth is significant when the
 chosen model's slope exceeds zero at the one-sided level ``rise_alpha`` (Student's t, the residual variance
 inflated for lag-1 autocorrelation of the residuals); the interval of the crossing time is Fieller's interval for
-the ratio (limit − intercept)/slope (Fieller 1954), which under the model has the stated coverage exactly.
+the ratio (limit − intercept)/slope (Fieller 1954), which under the model has the stated coverage exactly.  While
+the evidence between the two laws is not decisive (Akaike weight below 0.99), the interval allows for both: the
+quantiles of the weight-averaged crossing-time distributions (Burnham & Anderson 2002); the estimate stays the
+chosen law's.
 
 A projection is never made from too little history (:attr:`TrendResult.need` says how much is needed); the caller
 hands in running-machine values only.  Projections beyond ``horizon_factor`` × the span of the fitted values (or
@@ -41,7 +44,7 @@ from typing import Literal
 
 import numpy as np
 import numpy.typing as npt
-from scipy import stats
+from scipy import optimize, stats
 
 from edgevib.pipelines.types import PipelineError
 
@@ -69,6 +72,7 @@ TrendStatus = Literal["ok", "insufficient-history"]
 
 _MAX_ONSET_CANDIDATES = 48
 _MAX_THEIL_SEN_POINTS = 600
+_DECISIVE_WEIGHT = 0.99  # below this Akaike weight the other growth law shares the projection (model averaging)
 
 
 class TrendError(PipelineError):
@@ -426,11 +430,12 @@ def _candidates(x: FloatArray, min_after: int, onset: bool) -> FloatArray:
 
 
 def _select(x: FloatArray, y: FloatArray, positive: bool, min_after: int, onset: bool
-            ) -> tuple[Model, float, float, float] | None:
+            ) -> tuple[Model, float, float, float, dict[Model, float]] | None:
     """Best growth model and onset by likelihood, or ``None`` when "flat" or "a step between two flat levels" wins
     by BIC (a level that jumped and stays is a step change, not growth: nothing to project).
 
-    Returns (model, onset τ on the x axis, log-likelihood, Akaike weight against the other model)."""
+    Returns (model, onset τ on the x axis, log-likelihood, Akaike weight against the other model, the other
+    model's onset by model)."""
     n = x.size
     models: list[Model] = ["linear", "exponential"] if positive else ["linear"]
     taus = _candidates(x, min_after, onset)
@@ -464,7 +469,7 @@ def _select(x: FloatArray, y: FloatArray, positive: bool, min_after: int, onset:
         return None
     other = [v[1] for m, v in best.items() if m != model]
     weight = 1.0 / (1.0 + math.exp(other[0] - ll_best)) if other else 1.0
-    return model, tau, ll_best, weight
+    return model, tau, ll_best, weight, {m: v[0] for m, v in best.items() if m != model}
 
 
 def _fit(model: Model, x: FloatArray, y: FloatArray, tau: float, positive: bool, t_ref: float, weight: float
@@ -574,6 +579,10 @@ def assess(t_s: npt.ArrayLike, values: npt.ArrayLike, now_s: float, limits: Sequ
     if sel is None:
         return replace(base, projections=flat)
     fit = _fit(sel[0], x, yk, sel[1], positive, t_ref, sel[3])
+    rival = None  # the other growth law, kept while the evidence between the two is not decisive
+    if sel[3] < _DECISIVE_WEIGHT and sel[4]:
+        (m2, tau2), = sel[4].items()
+        rival = _fit(m2, x, yk, tau2, positive, t_ref, 1.0 - sel[3])
     xs = x[seg]
     t_crit = float(stats.t.ppf(1 - spec.rise_alpha, fit.dof))
     rising = fit.slope > 0 and fit.t_stat > t_crit
@@ -595,12 +604,37 @@ def assess(t_s: npt.ArrayLike, values: npt.ArrayLike, now_s: float, limits: Sequ
             projections.append(Projection(label, lim, "not-rising"))
             continue
         t_hat, t_lo, t_hi = ci
+        ci2 = None if rival is None else crossing_interval(rival, lim, spec.coverage)
+        if ci2 is not None:  # the interval allows for the choice of law; the estimate is the chosen law's
+            _, t_lo, t_hi = _averaged(ci, ci2, fit.weight, spec.coverage)
+            t_lo, t_hi = min(t_lo, t_hat), max(t_hi, t_hat)
         eta = max(t_hat - now_s, 0.0)
         if eta > horizon:
             projections.append(Projection(label, lim, "beyond-horizon"))
             continue
         projections.append(Projection(label, lim, "rising", eta, max(t_lo - now_s, 0.0), max(t_hi - now_s, 0.0)))
     return replace(base, level=level, rising=True, fit=fit, projections=tuple(projections))
+
+
+def _averaged(a: tuple[float, float, float], b: tuple[float, float, float], w: float, coverage: float
+              ) -> tuple[float, float, float]:
+    """Median and central ``coverage`` interval of the crossing time averaged over two growth laws.
+
+    Each law's crossing time is taken as a split normal with its estimate as median and its Fieller interval's ends
+    as the (1 ∓ coverage)/2 quantiles; the mixture (weights ``w`` and 1 − ``w``, the Akaike weights: Burnham &
+    Anderson 2002, model averaging) is inverted numerically."""
+    z = float(stats.norm.ppf(0.5 + coverage / 2))
+    laws = [(a[0], max(a[0] - a[1], 1e-9) / z, max(a[2] - a[0], 1e-9) / z, w),
+            (b[0], max(b[0] - b[1], 1e-9) / z, max(b[2] - b[0], 1e-9) / z, 1.0 - w)]
+
+    def cdf(t: float) -> float:
+        return sum(wt * float(stats.norm.cdf((t - m) / (lo if t < m else hi))) for m, lo, hi, wt in laws)
+
+    lo_t = min(a[1], b[1]) - 10 * max(x[1] for x in laws)
+    hi_t = max(a[2], b[2]) + 10 * max(x[2] for x in laws)
+    q = [optimize.brentq(lambda t, p=p: cdf(t) - p, lo_t, hi_t, xtol=1e-9 * (hi_t - lo_t))
+         for p in (0.5, 0.5 - coverage / 2, 0.5 + coverage / 2)]
+    return float(q[0]), float(q[1]), float(q[2])
 
 
 def phm2012_score(actual_s: float, estimate_s: float) -> float:
