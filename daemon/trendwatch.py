@@ -28,6 +28,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import math
+import threading
 import time
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
@@ -359,6 +360,7 @@ class TrendWatch:
         self._task: asyncio.Task[None] | None = None
         self._rlog = RateLimitedLogger(log, interval_s=60.0)
         self._baselines: dict[tuple[str, str], tuple[float, float, int]] = {}
+        self._evaluating = threading.Lock()  # held by a round; stop() waits for one in flight
 
     # ------------------------------------------------------------------ lifecycle
 
@@ -390,6 +392,7 @@ class TrendWatch:
             self._task.cancel()
             await asyncio.gather(self._task, return_exceptions=True)
             self._task = None
+        await asyncio.to_thread(self._wait_round)  # a round in its worker thread finishes before the file closes
         if self.alarm_layer is not None:
             with contextlib.suppress(ValueError):
                 self.alarm_layer.frame_listeners.remove(self.on_judged_frame)
@@ -487,8 +490,16 @@ class TrendWatch:
 
         return zone_boundaries_mm_s(m.group, m.support)
 
+    def _wait_round(self) -> None:
+        with self._evaluating:
+            pass
+
     def evaluate_all(self) -> int:
         """One round over every tracked series (a worker thread); returns how many were evaluated."""
+        with self._evaluating:
+            return self._round()
+
+    def _round(self) -> int:
         if self.recorder is None:
             return 0
         self.recorder.flush()
