@@ -274,13 +274,22 @@
         el("td", { text: l.date_low && l.date_high ? `${l.date_low.slice(0, 10)} … ${l.date_high.slice(0, 10)}` : "n/a" })));
     }
     makeChart("trend", $("tr-chart"), {
-      scales: { x: { time: true } },
+      // a lone value (a history just begun) gets an hour around it rather than an arbitrary span
+      scales: { x: { time: true, range: (u, lo, hi) => xs.length === 1 ? [xs[0] - 1800, xs[0] + 1800] : [lo, hi] } },
       axes: [{ grid: { stroke: COLORS.grid } }, { label: unit, grid: { stroke: COLORS.grid }, size: 60 }],
       series, bands, legend: { show: true }, cursor: { drag: { x: true, y: false } },
       hooks: {
         draw: [u => {
           const ctx = u.ctx, { left, top, width, height } = u.bbox;
           ctx.save(); ctx.beginPath(); ctx.rect(left, top, width, height); ctx.clip();
+          // each limit line across the whole plot (also where the series has too few values to draw it)
+          for (const l of lines) {
+            const st = lineStyle(l), y = Math.round(u.valToPos(l.value, "y", true));
+            ctx.strokeStyle = st.stroke; ctx.lineWidth = st.width * devicePixelRatio;
+            ctx.setLineDash(st.dash.map(d => d * devicePixelRatio));
+            ctx.beginPath(); ctx.moveTo(left, y); ctx.lineTo(left + width, y); ctx.stroke();
+          }
+          ctx.setLineDash([]);
           ctx.lineWidth = 5 * devicePixelRatio; ctx.strokeStyle = COLORS.window;
           for (const w of windows) {
             const y = u.valToPos(w.y, "y", true);
