@@ -32,7 +32,9 @@ def confidence_band(fit: dict[str, Any], t_s: npt.ArrayLike, coverage: float | N
     indicator's unit: ``z ± q·σ·√(v00 + 2x·v01 + x²·v11)`` on the fitted scale (x = t − t_ref; q Student's t at
     ``coverage`` with the fit's degrees of freedom; exponentiated for the exponential model).  This is the
     statistic whose crossings of a limit are Fieller's interval (:func:`edgevib.pipelines.trend.crossing_interval`),
-    so the band meets each limit at its ``eta_low``/``eta_high``.  None when the fit carries no covariance."""
+    so the band meets each limit at its ``eta_low``/``eta_high`` while the evidence for the chosen growth law is
+    decisive (``model_weight`` ≥ 0.99); otherwise the crossing intervals also allow for the other law and are
+    wider than the band's crossings.  None when the fit carries no covariance."""
     cov, sigma, dof = fit.get("cov"), fit.get("sigma"), fit.get("dof")
     if not cov or len(cov) != 3 or sigma is None or not dof or coverage is None or not 0 < coverage < 1:
         return None
@@ -71,7 +73,8 @@ def projection_curve(doc: dict[str, Any]) -> dict[str, Any] | None:
     return {"model": fit["model"], "t_s": t.tolist(),
             "values": _scale(fit, fit["intercept"] + fit["slope"] * (t - fit["t_ref_s"])),
             "low": None if band is None else band[0], "high": None if band is None else band[1],
-            "coverage": doc.get("coverage") if band is not None else None, "now_s": now,
+            "coverage": doc.get("coverage") if band is not None else None, "model_weight": doc.get("model_weight"),
+            "now_s": now,
             "limits": doc.get("limits", []), "advice": doc.get("advice"), "advice_text": doc.get("advice_text"),
             "status": doc.get("status"), "need": doc.get("need")}
 

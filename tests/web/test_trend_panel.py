@@ -76,7 +76,9 @@ async def test_limit_lines_and_a_projection_band_that_meets_the_crossing_interva
         lo, mid, hi = (np.asarray(curve[k], dtype=float) for k in ("low", "values", "high"))
         assert np.all(lo <= mid) and np.all(mid <= hi) and np.any(hi - lo > 0)
         # the band meets each limit at the ends of the trend layer's crossing interval (both are Fieller's
-        # construction at the document's coverage: Fieller 1954; pipelines/trend.py crossing_interval)
+        # construction at the document's coverage: Fieller 1954; pipelines/trend.py crossing_interval) — while the
+        # evidence for the chosen law is decisive, as for this straight rise (otherwise the interval is a mixture)
+        assert doc["model"] == "linear" and doc["model_weight"] >= 0.99 and curve["model_weight"] >= 0.99
         now = doc["t_s"]
         checked = 0
         for lim in doc["limits"]:
