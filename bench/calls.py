@@ -6,15 +6,18 @@ Timings on a shared machine move by ±20 % or more from run to run; the number o
 does not (it moves by well under 1 %), so it is the way to compare two versions of the pipeline while other work
 runs.  For each size the module runs itself twice under ``valgrind --tool=callgrind`` — once making one analysis
 call after the warm-up, once making ``1 + --calls`` — and reports the difference ÷ ``--calls``: start-up, imports
-and warm-up cancel out.  The plan, the frames (float64) and the warm-up are those of :mod:`edgevib.bench`.
-Instructions are not time (a cache miss costs many), so the timed benchmark stays the reference; this one says
-whether a change removed work.  Needs valgrind (Debian package ``valgrind``); about a minute per size.
+and warm-up cancel out (the cyclic garbage collector is off while counting, hash seeds fixed).  The plan, the
+frames (float64) and the warm-up are those of :mod:`edgevib.bench`.  Instructions are not time (a cache miss
+costs many), so the timed benchmark stays the reference; this one says whether a change removed work.  Needs
+valgrind (Debian package ``valgrind``); about a minute per size.
 """
 
 from __future__ import annotations
 
 import argparse
+import gc
 import json
+import os
 import re
 import shutil
 import subprocess
@@ -36,14 +39,17 @@ def _calls(samples: int, channels: int, calls: int) -> None:
     x = _frames(samples, channels)
     for _ in range(3):
         kernel.analyze(x)
+    gc.collect()
+    gc.disable()  # a cyclic collection costs millions of instructions whenever it happens to fall: none counted
     for _ in range(calls):
         kernel.analyze(x)
 
 
 def _instructions(samples: int, channels: int, calls: int) -> int:
+    env = {**os.environ, "PYTHONHASHSEED": "0"}
     proc = subprocess.run(["valgrind", "--tool=callgrind", "--callgrind-out-file=/dev/null", sys.executable, "-m",
                            "edgevib.bench.calls", "--run", str(samples), str(channels), str(calls)],
-                          capture_output=True, text=True, check=False)
+                          capture_output=True, text=True, check=False, env=env)
     m = _COLLECTED.search(proc.stderr)
     if proc.returncode != 0 or m is None:
         raise RuntimeError(f"valgrind run failed ({proc.returncode}): {proc.stderr[-1000:]}")
