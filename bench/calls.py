@@ -3,13 +3,14 @@
 ``python -m edgevib.bench.calls [--samples 16384] [--channels 1,64] [--calls 10] [--json]``
 
 Timings on a shared machine move by ±20 % or more from run to run; the number of instructions a call executes
-does not (it moves by well under 1 %), so it is the way to compare two versions of the pipeline while other work
-runs.  For each size the module runs itself twice under ``valgrind --tool=callgrind`` — once making one analysis
-call after the warm-up, once making ``1 + --calls`` — and reports the difference ÷ ``--calls``: start-up, imports
-and warm-up cancel out (the cyclic garbage collector is off while counting, hash seeds fixed).  The plan, the
-frames (float64) and the warm-up are those of :mod:`edgevib.bench`.  Instructions are not time (a cache miss
-costs many), so the timed benchmark stays the reference; this one says whether a change removed work.  Needs
-valgrind (Debian package ``valgrind``); about a minute per size.
+moves by a few percent at most, so it is the way to compare two versions of the pipeline while other work runs.
+For each size the module runs itself twice under ``valgrind --tool=callgrind`` — once making one analysis call
+after the warm-up, once making ``1 + --calls`` (five times as many below 16 channels) — and reports the difference
+per call: start-up, imports and warm-up cancel out (the cyclic garbage collector is off while counting, hash
+seeds fixed; what remains is a start-up that varies by some 10⁷ instructions between runs).  The plan, the frames
+(float64) and the warm-up are those of :mod:`edgevib.bench`.  Instructions are not time (a cache miss costs
+many), so the timed benchmark stays the reference; this one says whether a change removed work.  Needs valgrind
+(Debian package ``valgrind``); one to three minutes per size.
 """
 
 from __future__ import annotations
@@ -59,9 +60,11 @@ def _instructions(samples: int, channels: int, calls: int) -> int:
 def run(samples: int, channels: Sequence[int], calls: int) -> list[dict[str, int]]:
     rows = []
     for c in channels:
+        # a run's own start-up moves by some 10⁷ instructions: count enough calls that this stays a few percent
+        n = calls if c >= 16 else 5 * calls
         base = _instructions(samples, c, 1)
-        more = _instructions(samples, c, 1 + calls)
-        per_call = (more - base) // calls
+        more = _instructions(samples, c, 1 + n)
+        per_call = (more - base) // n
         rows.append({"samples": samples, "channels": c, "instructions_per_call": per_call,
                      "instructions_per_block": per_call // c})
     return rows
@@ -76,7 +79,8 @@ def main(argv: Sequence[str] | None = None) -> int:
                                      description="instructions per pipeline call (valgrind callgrind)")
     parser.add_argument("--samples", type=int, default=16384)
     parser.add_argument("--channels", default="1,64", help="comma-separated channel counts (default 1,64)")
-    parser.add_argument("--calls", type=int, default=10, help="calls counted per size (default 10)")
+    parser.add_argument("--calls", type=int, default=10,
+                        help="calls counted per size (default 10; five times as many below 16 channels)")
     parser.add_argument("--json", action="store_true")
     args = parser.parse_args(args_in)
     if shutil.which("valgrind") is None:
