@@ -126,14 +126,17 @@ def sensor_id(channel: int) -> str:
     return f"QL-BENCH-{channel:04d}"
 
 
-def channel_signal(channel: int, seed: int) -> np.ndarray:
+def channel_signal(channel: int, seed: int, danger: bool = False) -> np.ndarray:
     """One block of a plausible pump bearing signal in g: 1× and 2× of a 1480 r/min shaft, outer-race impacts
-    ringing a 3.2 kHz resonance, broadband noise (seeded per channel)."""
+    ringing a 3.2 kHz resonance, broadband noise (seeded per channel).  The shaft lines put the pump in ISO 20816-3
+    zone B (velocity about 1.9 mm/s r.m.s.: running, no alarm), or with ``danger`` in zone D (about 11 mm/s: every
+    point raises an alarm and captures its waveform at once, a plant-wide alarm storm)."""
     rng = np.random.default_rng([seed, channel])
     t = np.arange(BLOCK) / FS_HZ
     f1 = 1480.0 / 60.0
-    x = 0.25 * np.sin(2 * np.pi * f1 * t + rng.uniform(0, 2 * np.pi))
-    x += 0.08 * np.sin(2 * np.pi * 2 * f1 * t + rng.uniform(0, 2 * np.pi))
+    gain = 1.0 if danger else 0.16
+    x = gain * 0.25 * np.sin(2 * np.pi * f1 * t + rng.uniform(0, 2 * np.pi))
+    x += gain * 0.08 * np.sin(2 * np.pi * 2 * f1 * t + rng.uniform(0, 2 * np.pi))
     bpfo = 3.585 * f1 * rng.uniform(0.99, 1.01)
     ring = np.exp(-t[:256] * 900.0) * np.sin(2 * np.pi * 3200.0 * t[:256])
     impacts = np.zeros(BLOCK)
@@ -193,7 +196,7 @@ class RawPublisher:
 
 
 def _publisher(port: int, channels: list[int], n_channels: int, duration_ns: int, qos: int, seed: int,
-               out: Any, go: Any) -> None:
+               out: Any, go: Any, danger: bool = False) -> None:
     """Publisher process: connects and encodes, reports ready, receives the common start time on ``go``, then
     publishes ``channels`` paced for ``duration_ns``; reports counts and lag on ``out``.  QoS 0 goes through
     :class:`RawPublisher`, QoS 1 through paho (which handles the acknowledgements)."""
@@ -202,7 +205,8 @@ def _publisher(port: int, channels: list[int], n_channels: int, duration_ns: int
     templates: dict[int, bytearray] = {}
     topics: dict[int, str] = {}
     for c in channels:
-        block = Block(sensor_id=sensor_id(c), seq=0, t0_ns=0, fs_hz=FS_HZ, unit="g", samples=channel_signal(c, seed))
+        block = Block(sensor_id=sensor_id(c), seq=0, t0_ns=0, fs_hz=FS_HZ, unit="g",
+                      samples=channel_signal(c, seed, danger))
         templates[c] = bytearray(encode_binary(block))
         topics[c] = TOPIC.format(sensor=sensor_id(c))
     client_id = f"edgevib-bench-pub-{os.getpid()}"
@@ -546,7 +550,7 @@ def _get(q: Any, timeout_s: float, procs: list[Any]) -> dict[str, Any]:
 
 def run_level(broker: Broker, channels: int, seconds: float, warmup_s: float, overlap: float, publishers: int,
               qos: int, seed: int, alarms: bool = True, instances: int = 1, cpu: int | None = None,
-              uvloop: bool = False) -> list[Row]:
+              uvloop: bool = False, danger: bool = False) -> list[Row]:
     """One load level: ``instances`` daemon processes (hash shards when more than one) and publisher processes
     streaming ``channels`` channels through ``broker``; one :class:`Row` per instance."""
     ctx = mp.get_context("spawn")
@@ -569,7 +573,7 @@ def run_level(broker: Broker, channels: int, seconds: float, warmup_s: float, ov
         for i in range(n_pub):
             p = ctx.Process(target=_publisher, daemon=True,
                             args=(broker.port, list(range(i, channels, n_pub)), channels, duration_ns, qos, seed,
-                                  out_p, go))
+                                  out_p, go, danger))
             p.start()
             pubs.append(p)
         for _ in pubs:  # every publisher connected and encoded its payloads
@@ -630,6 +634,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="pin the daemon instance's process to this CPU core (instance i to core N+i)")
     p.add_argument("--without-alarms", action="store_true",
                    help="diagnostic: run the daemon without its alarm layer (to see what the alarm layer costs)")
+    p.add_argument("--danger", action="store_true",
+                   help="every pump in ISO zone D from the start: an alarm and a waveform capture on every point "
+                        "at once (default: zone B, the alarm layer judging every frame and raising nothing)")
     p.add_argument("--uvloop", action="store_true",
                    help="diagnostic: run the daemon on uvloop's event loop (needs uvloop installed)")
     p.add_argument("--json", action="store_true", help="print JSON rows and a summary instead of a table")
@@ -667,7 +674,7 @@ def main(argv: list[str] | None = None) -> int:
         for n in args.channels:
             rows = run_level(broker, n, args.seconds, args.warmup, args.overlap, args.publishers, args.qos,
                              args.seed, alarms=not args.without_alarms, instances=args.instances, cpu=args.cpu,
-                             uvloop=args.uvloop)
+                             uvloop=args.uvloop, danger=args.danger)
             levels.append(rows)
             if not args.json:
                 _print_level(rows, header=len(levels) == 1)
@@ -680,7 +687,8 @@ def main(argv: list[str] | None = None) -> int:
                           "sustained_channels": sustained, "instances": args.instances,
                           "fs_hz": FS_HZ, "block_samples": BLOCK, "overlap": args.overlap, "workers": 1,
                           "p99_target_ms": P99_TARGET_MS, "cpu_count": os.cpu_count(),
-                          "alarms": not args.without_alarms, "uvloop": args.uvloop}, indent=2))
+                          "alarms": not args.without_alarms, "uvloop": args.uvloop, "danger": args.danger},
+                         indent=2))
     else:
         print(f"sustained channels: {sustained} over {args.instances} instance(s) (target: >= 1000 channels per "
               f"core of the daemon's own CPU, p99 < {P99_TARGET_MS:g} ms, no drops)")
