@@ -320,7 +320,7 @@ def search_lines(ses: FloatArray, centre_lines: FloatArray, half_lines: FloatArr
     best = np.argmax(np.where(local, v, -np.inf), axis=-1)
     has = local.any(axis=-1) & fits
     peak = lo_c + best
-    value = np.take_along_axis(v, best[..., None], axis=-1)[..., 0]
+    value = _gather(ses, peak)
     # level lines: every other line beyond the guard, half below and half above (all above where the spectrum
     # starts too close); gathered at once: columns 0 … LEVEL_LINES/2 − 1 below the window, the rest above it
     lines = np.empty((*lo_c.shape, _LEVEL_OFFSET.size), dtype=np.intp)
@@ -329,7 +329,7 @@ def search_lines(ses: FloatArray, centre_lines: FloatArray, half_lines: FloatArr
     ok = lines >= 2
     missing = _LEVEL_PER_SIDE - ok[..., :_LEVEL_PER_SIDE].sum(axis=-1)
     ok[..., _LEVEL_PER_SIDE:] = (_LEVEL_PER_SIDE + missing)[..., None] > _LEVEL_ABOVE_RANK
-    np.clip(lines, 0, k - 1, out=lines)
+    np.minimum(np.maximum(lines, 0, out=lines), k - 1, out=lines)  # (np.clip costs ten times as much)
     vals = np.where(ok, _gather(ses, lines), np.inf)
     level = np.partition(vals, LEVEL_RANK - 1, axis=-1)[..., LEVEL_RANK - 1] / _LEVEL_FACTOR
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -468,7 +468,7 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     k1i = np.where(has, fund.index, 0)
     with np.errstate(divide="ignore", invalid="ignore"):
         depth = np.where(has, 4.0 * np.sqrt(_gather(ses, k1i)) / ses_mean_line[:, None], np.nan)
-    nbr = np.clip(k1i[..., None] + np.arange(-1, 2), 0, k - 1)
+    nbr = np.minimum(np.maximum(k1i[..., None] + np.arange(-1, 2), 0), k - 1)
     amp = np.where(has, _gather(amp_g, nbr).max(axis=-1), np.nan)
     with np.errstate(divide="ignore", invalid="ignore"):
         # the depth the line's signal part surely has: its noise part (a complex Gaussian of power ``level``,
