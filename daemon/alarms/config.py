@@ -4,8 +4,9 @@ tables and each point's ``limits`` (declared in :mod:`edgevib.daemon.config`).
 A limit names an indicator of :data:`~edgevib.daemon.indicators.LIMITABLE` and gives each level as a number, ``"iso"``
 (the ISO 20816-3 boundary of the machine's group and support: alert B/C, danger C/D; velocity r.m.s. only),
 ``"iso-baseline"`` (alert only: learned baseline + 0.25 × B/C, at most 1.25 × B/C), ``{ factor = F }`` or
-``{ sigma = K }``.  A point without a ``velocity_rms_mm_s`` limit gets ``[alarms] default_velocity_rule`` where its
-machine has an ISO group and support.
+``{ sigma = K }``; a verdict limit (``bearing_<family>_detected``, a limit kind of its own) gives ``true`` for a
+level: crossed while the envelope analysis detects that family.  A point without a ``velocity_rms_mm_s``
+limit gets ``[alarms] default_velocity_rule`` where its machine has an ISO group and support.
 """
 
 from __future__ import annotations
@@ -57,6 +58,12 @@ class LimitConfig:
     off_delay: Delay = field(default_factory=Delay)
     latching: bool = False
     iso_mm_s: tuple[float, float, float] | None = None  # (A/B, B/C, C/D) of the point's machine
+
+    @property
+    def verdict(self) -> bool:
+        """A verdict limit (``bearing_<family>_detected = { alert = true }``): crossed while the family is
+        detected (the indicator reads 1 or 0, the level stands at 0.5, so the deadband plays no part)."""
+        return self.indicator.endswith("_detected")
 
     @property
     def key(self) -> tuple[str, str]:
@@ -125,6 +132,8 @@ def _point_limits(p: PointConfig, i: int, cfg: Config, defaults: LimitConfig) ->
             raise ConfigError(key, f"this point has no envelope indicators ({p.envelope_note or 'no band'})")
         if name.startswith("bearing_") and p.bearing is None:
             raise ConfigError(key, "bearing defect limits need the point's bearing geometry")
+        if name.endswith("_detected") and any(r is not None and r.kind != "absolute" for r in t.levels):
+            raise ConfigError(key, "a verdict limit takes alert = true or danger = true")
         alert, danger = t.levels
         if iso is None and any(r is not None and r.kind.startswith("iso") for r in (alert, danger)):
             level = "rule" if t.rule is not None else "alert" if alert is not None and alert.kind.startswith("iso") \

@@ -9,6 +9,8 @@ topic, answered on the response topic).  Only these commands exist::
     {"cmd": "unshelve", "point": P}                  optional "indicator"
     {"cmd": "relearn", "point": P}                   forget P's baselines and learn them again
     {"cmd": "history"}                               optional "point", "since_s" (Unix s), "limit" (1..1000)
+    {"cmd": "select_band"}                           optional "point": select the automatic envelope band now
+                                                     (points with envelope_band_hz = "auto"; served by the daemon)
 
 Every request may carry ``"id"`` (echoed in the response) and ``"by"`` (who asked; recorded in events).
 A response is ``{"ok": true, "result": …}`` or ``{"ok": false, "error": "…"}``.  The socket lives in the state
@@ -45,6 +47,7 @@ COMMANDS: dict[str, tuple[set[str], set[str]]] = {  # name -> (required keys, op
     "unshelve": ({"point"}, {"indicator"}),
     "relearn": ({"point"}, set()),
     "history": (set(), {"point", "since_s", "limit"}),
+    "select_band": (set(), {"point"}),
 }
 
 

@@ -230,6 +230,7 @@ class AlarmLayer:
         self.mqtt: MqttFeed | None = None
         self.webhook: WebhookFeed | None = None
         self.control: ControlServer | None = None
+        self.extra_commands: dict[str, Callable[[dict[str, Any]], Any]] = {}  # commands served for the daemon
         self.collector = AlarmCollector(self)
         self._lock = threading.RLock()
         self._tasks: list[asyncio.Task[None]] = []
@@ -882,6 +883,9 @@ class AlarmLayer:
     def handle_command(self, req: dict[str, Any]) -> Any:
         """Run one validated command (see :mod:`edgevib.daemon.alarms.control`); raises CommandError."""
         cmd = req["cmd"]
+        extra = self.extra_commands.get(cmd)
+        if extra is not None:  # a daemon command on the same channel (select_band)
+            return extra(req)
         if cmd == "list":
             if req.get("point") is not None and req["point"] not in self.points:
                 raise CommandError(f"unknown point {req['point']!r}")
