@@ -58,6 +58,7 @@ from typing import TYPE_CHECKING, Any, assert_never
 import numpy as np
 import numpy.typing as npt
 
+from edgevib.daemon.band_auto import BandAuto, BandSelection, plan_with_band, select_for_point
 from edgevib.daemon.config import (
     Config,
     MachineConfig,
@@ -217,6 +218,7 @@ class _PointState:
     plan: AnalysisPlan
     trend: EwTrend
     signature: tuple[Any, ...]
+    band_source: str | None = None  # where the plan's envelope band comes from (configured, auto, default)
 
 
 class Daemon:
@@ -263,6 +265,11 @@ class Daemon:
         self._executor: ThreadPoolExecutor | None = None
         self._started = False
         self._warned_envelope: set[str] = set()
+        state_dir = config.site.state_dir
+        self.band_auto = BandAuto(None if "$" in state_dir else state_dir)
+        self._band_wake = asyncio.Event()
+        self._band_task: asyncio.Task[None] | None = None
+        self._loop: asyncio.AbstractEventLoop | None = None
         self.on_ready: list[Callable[[], None]] = []
         self.on_stopping: list[Callable[[], None]] = []
         self.rlog = RateLimitedLogger(log, interval_s=10.0)
@@ -308,12 +315,27 @@ class Daemon:
                 points[p.id] = old
                 continue
             plan = config.plan(p.id)  # validated (and its kernel built) once, when the configuration was loaded
-            points[p.id] = _PointState(p, m, plan, EwTrend(config.analysis.trend_halflife_s), sig)
+            source = p.envelope_band_origin
+            if source == "auto":  # the default band until a selection (a stored one when it still applies)
+                source = "default"
+                stored = self.band_auto.stored_band(p)
+                if stored is not None:
+                    try:
+                        plan, source = plan_with_band(p, m, stored[0]), "auto"
+                        self.band_auto.selected_at(p.id, stored[1])
+                    except PipelineError as exc:
+                        log.warning("stored envelope band no longer fits; selecting again", point=p.id,
+                                    band_hz=list(stored[0]), error=str(exc))
+            points[p.id] = _PointState(p, m, plan, EwTrend(config.analysis.trend_halflife_s), sig, source)
             if p.envelope_note and p.id not in self._warned_envelope:
                 self._warned_envelope.add(p.id)
                 log.warning("no envelope indicators for this point", point=p.id, sensor_type=p.sensor_type,
                             bandwidth_hz=list(p.bandwidth_hz or ()), fs_hz=p.fs_hz, reason=p.envelope_note)
         self.points = points
+        self.band_auto.forget(set(self._auto_points()))
+
+    def _auto_points(self) -> list[str]:
+        return [pid for pid, st in self.points.items() if st.config.envelope_band_origin == "auto"]
 
     def _add_configured_sinks(self, config: Config) -> None:
         if config.publish_mqtt.enabled:
@@ -335,6 +357,7 @@ class Daemon:
 
         alarms = create_sink(config, self.metrics.registry)
         if alarms is not None:
+            alarms.extra_commands["select_band"] = lambda req: self.request_band_selection(req.get("point"))
             self.add_lossless_sink(alarms)
             self._reconfigurable.append(alarms)
             self.alarm_view = alarms
@@ -390,6 +413,8 @@ class Daemon:
         for ch in self._channels:
             ch.start()
         self._scheduler = loop.create_task(self._schedule(), name="edgevib-scheduler")
+        self._loop = loop
+        self._band_task = loop.create_task(self._select_bands(), name="edgevib-band-auto")
         self.sources = self._make_sources(self.config)
         for src in self.sources:
             self._start_source(src)
@@ -430,6 +455,10 @@ class Daemon:
             task.cancel()
         await asyncio.gather(*self._source_tasks.values(), return_exceptions=True)
         self._source_tasks.clear()
+        if self._band_task is not None:
+            self._band_task.cancel()
+            await asyncio.gather(self._band_task, return_exceptions=True)
+            self._band_task = None
         if self._scheduler is not None:
             self._scheduler.cancel()
             if self._timer is not None:
@@ -692,13 +721,91 @@ class Daemon:
             zone = _iso_zone(ind.velocity_rms_mm_s, st.machine)
             r = FrameResult(point_id=job.point_id, machine_id=st.machine.id, t_end_ns=job.t_end_ns,
                             received_ns=job.received_ns, fs_hz=st.config.fs_hz, indicators=ind, iso_zone=zone,
-                            samples=samples, axis=st.config.axis, machine_state=ms, health=h)
+                            samples=samples, axis=st.config.axis, machine_state=ms, health=h,
+                            envelope_band_source=st.band_source if ind.envelope_band_hz is not None else None)
+            if st.config.envelope_band_origin == "auto":
+                p = st.config
+                join_ns = round(p.frame_samples / p.fs_hz * 1e9) if p.hop_samples == p.frame_samples else 0
+                self.band_auto.observe(job.point_id, job.t_end_ns, join_ns, samples)
+                if self.band_auto.first_ready(job.point_id):
+                    self._band_wake.set()
             r = dataclasses.replace(r, trend=st.trend.update({i.name: i.value(r) for i in TRENDED},
                                                              job.t_end_ns / 1e9))
             self.latest[job.point_id] = r
             Stats.inc(self.stats.frames_analysed, job.point_id)
             results.append(r)
         return results
+
+    # ------------------------------------------------------------------------------------------ automatic bands
+
+    def request_band_selection(self, point: str | None = None) -> dict[str, Any]:
+        """Select the automatic envelope band of ``point`` (None: of every automatic point) as soon as it has
+        frames — the control command ``select_band``.  Thread-safe; raises CommandError for a point that is
+        unknown or has no automatic band."""
+        from edgevib.daemon.alarms.control import CommandError
+
+        auto = self._auto_points()
+        if point is not None:
+            if point not in self.points:
+                raise CommandError(f"unknown point {point!r}")
+            if point not in auto:
+                raise CommandError(f"point {point!r} has no automatic envelope band (envelope_band_hz = \"auto\")")
+            ids = [point]
+        else:
+            ids = auto
+        loop = self._loop
+        if loop is None:
+            raise CommandError("the daemon is not running")
+        loop.call_soon_threadsafe(self._request_bands, ids)
+        return {"requested": ids}
+
+    def _request_bands(self, ids: list[str]) -> None:
+        self.band_auto.request(ids)
+        self._band_wake.set()
+
+    async def _select_bands(self) -> None:
+        """Select the bands of automatic points when due (interval or request), one point at a time, in the
+        analysis pool; a chosen band becomes the point's plan from its next frame."""
+        loop = asyncio.get_running_loop()
+        while True:
+            interval = self.config.analysis.band_auto_interval_s
+            with contextlib.suppress(TimeoutError):
+                async with asyncio.timeout(min(60.0, interval / 4.0)):
+                    await self._band_wake.wait()
+            self._band_wake.clear()
+            for pid in self.band_auto.due(self._auto_points(), self.clock_ns() / 1e9, interval):
+                st = self.points.get(pid)
+                record = self.band_auto.record(pid)
+                if st is None or record is None:
+                    continue
+                latest = self.latest.get(pid)
+                shaft = latest.indicators.shaft_hz if latest is not None else None
+                now_s = self.clock_ns() / 1e9
+                self.band_auto.started(pid, now_s)
+                try:
+                    sel = await loop.run_in_executor(self._executor, select_for_point, st.config, st.machine, record,
+                                                     shaft, now_s)
+                except Exception as exc:  # a selection that fails keeps the band in use
+                    self.rlog.error(("band", pid), "envelope band selection failed", point=pid, error=repr(exc))
+                    continue
+                finally:
+                    self.band_auto.running.discard(pid)
+                await self._apply_band(st, sel)
+
+    async def _apply_band(self, st: _PointState, sel: BandSelection) -> None:
+        if self.points.get(sel.point_id) is not st:  # reconfigured meanwhile: the selection is stale
+            return
+        if sel.plan is None or sel.band_hz is None:
+            log.info("no envelope band qualified; keeping the band in use", point=sel.point_id,
+                     band_hz=list(st.plan.envelope_band_hz or ()), band_source=st.band_source, reason=sel.reason)
+            return
+        old = st.plan.envelope_band_hz
+        st.plan, st.band_source = sel.plan, "auto"
+        self.band_auto.remember(st.config, sel)
+        log.info("envelope band selected", point=sel.point_id, band_hz=list(sel.band_hz),
+                 previous_hz=list(old or ()), spectral_kurtosis=sel.kurtosis, periodicity_db=sel.periodicity_db)
+        await asyncio.get_running_loop().run_in_executor(self._executor, self.band_auto.save,
+                                                         dict(self.band_auto.stored))
 
     def _publish(self, results: list[FrameResult]) -> None:
         """Queue results for every sink (in analysis order, before the points are released: frame order holds)."""

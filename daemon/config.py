@@ -50,6 +50,7 @@ from pydantic import (
     ConfigDict,
     Field,
     PlainSerializer,
+    PlainValidator,
     PrivateAttr,
     SerializerFunctionWrapHandler,
     Strict,
@@ -239,6 +240,20 @@ def _ordered(v: tuple[float, float]) -> tuple[float, float]:
     return v
 
 
+def _band_setting(v: object) -> tuple[float, float] | str:
+    """A point's demodulation band: ``[low, high]`` in Hz or ``"auto"``."""
+    if v == "auto":
+        return "auto"
+    if isinstance(v, str):
+        raise ValueError(f"must be a [low, high] pair of numbers or \"auto\", got {v!r}")
+    pair = _pair_shape(v)
+    assert isinstance(pair, list | tuple)
+    for x in pair:
+        if isinstance(x, bool) or not isinstance(x, int | float) or not math.isfinite(x):
+            raise ValueError(f"must be a [low, high] pair of finite numbers or \"auto\", got {v!r}")
+    return _ordered((float(pair[0]), float(pair[1])))
+
+
 def _level(v: object) -> LevelRule:
     """A limit level: a number, ``"iso"``, ``"iso-baseline"``, ``{ factor = F }`` or ``{ sigma = K }``."""
     if isinstance(v, LevelRule):
@@ -292,6 +307,8 @@ Text = Annotated[str, Strict(), AfterValidator(_text)]
 Id = Annotated[str, Strict(), AfterValidator(check_id)]
 Pair = Annotated[tuple[Float, Float], BeforeValidator(_pair_shape), AfterValidator(_ordered)]
 Level = Annotated[LevelRule, BeforeValidator(_level), PlainSerializer(LevelRule.document)]
+BandSetting = Annotated[tuple[float, float] | Literal["auto"], PlainValidator(_band_setting),
+                        PlainSerializer(lambda v: tuple(v) if isinstance(v, list | tuple) else v)]
 ShardSpec = Annotated[Shard, BeforeValidator(lambda v: validate_shard(v, "site.shard")),
                       PlainSerializer(lambda s: {"points": sorted(s.points)} if s.points is not None
                                       else {"count": s.count, "index": s.index})]
@@ -412,6 +429,7 @@ class AnalysisConfig(_Table):
     queue_frames: Int = Field(4, ge=1, le=1024)
     workers: Int = Field(1, ge=1, le=64)
     trend_halflife_s: Float = Field(600.0, gt=0.0)
+    band_auto_interval_s: Float = Field(3600.0, ge=10.0, le=30 * 86400.0)  # points with envelope_band_hz = "auto"
 
 
 class MqttConnection(_WithSecrets):
@@ -786,6 +804,32 @@ class PointLimits(_Table):
 
     health: PointHealth | None = None
 
+    @model_validator(mode="before")
+    @classmethod
+    def _verdict_levels(cls, data: Any) -> Any:
+        """A verdict limit (``bearing_<family>_detected``) is ``alert = true`` or ``danger = true``: the level is
+        crossed when the family is detected (the indicator reads 1, otherwise 0; the level stands at 0.5)."""
+        if not isinstance(data, dict):
+            return data
+        out = dict(data)
+        for name, table in data.items():
+            if not (isinstance(name, str) and name.endswith("_detected") and isinstance(table, dict)):
+                continue
+            if "rule" in table:
+                raise _Problem(f"{name}.rule", "a verdict limit takes alert = true or danger = true, no rule")
+            fixed = dict(table)
+            if "alert" in table and "danger" in table:
+                raise _Problem(f"{name}.danger", "a verdict limit takes alert = true or danger = true, not both")
+            for level in ("alert", "danger"):
+                if level not in table:
+                    continue
+                if table[level] is not True:
+                    raise _Problem(f"{name}.{level}", f"a verdict limit is {level} = true (alarm while the family "
+                                   f"is detected), got {table[level]!r}")
+                fixed[level] = 0.5
+            out[name] = fixed
+        return out
+
     @model_validator(mode="after")
     def _indicators(self) -> PointLimits:
         from edgevib.daemon.indicators import LIMITABLE
@@ -828,7 +872,7 @@ class PointConfig(_Table):
     sensitivity_mv_per_g: Float | None = Field(None, gt=0.0)
     bandwidth_hz: Pair | None = None
     velocity_band_hz: Pair = (10.0, 1000.0)
-    envelope_band_hz: Pair | None = None
+    envelope_band_hz: BandSetting | None = None
     bearing: BearingConfig | None = None
     orders: tuple[Annotated[Float, Field(gt=0.0, le=100.0)], ...] = Field((0.5, 1.0, 2.0, 3.0), min_length=1)
     frame_samples: Int = Field(0, ge=MIN_FRAME_SAMPLES, le=MAX_FRAME_SAMPLES)  # 0 until loaded: [analysis]'s
@@ -838,9 +882,39 @@ class PointConfig(_Table):
     scale: Float | None = Field(None, gt=0.0)  # integer samples (OPC UA Int16/Int32 arrays): value = count × scale
     limits: PointLimits | None = None
 
+    _band_origin: str | None = PrivateAttr(None)  # set when loaded: where envelope_band_hz came from
+
+    @model_serializer(mode="wrap")
+    def _band_as_written(self, handler: SerializerFunctionWrapHandler) -> dict[str, Any]:
+        """A loaded point prints its band as the file would give it: ``"auto"`` for an automatic one, nothing for
+        the default (the rule gives it again), the pair when configured."""
+        out: dict[str, Any] = handler(self)
+        if isinstance(self.envelope_band_hz, tuple) and self._band_origin == "auto":
+            out["envelope_band_hz"] = "auto"
+        elif isinstance(self.envelope_band_hz, tuple) and self._band_origin == "default":
+            out.pop("envelope_band_hz", None)
+        return out
+
     @property
     def hop_samples(self) -> int:
         return max(1, self.frame_samples - round(self.overlap * self.frame_samples))
+
+    @property
+    def band_pair(self) -> tuple[float, float] | None:
+        """The demodulation band as a pair (``None`` for none, or for ``"auto"`` before loading)."""
+        v = self.envelope_band_hz
+        return v if isinstance(v, tuple) else None
+
+    @property
+    def envelope_band_origin(self) -> Literal["configured", "auto", "default"] | None:
+        """Where the loaded point's band comes from: ``"configured"`` (a pair in the file), ``"auto"`` (``"auto"``
+        in the file: selected by the daemon, the default band until then), ``"default"`` (the rule); ``None``
+        without a band."""
+        if self.envelope_band_hz is None:
+            return None
+        if self._band_origin is None:  # not loaded: as written
+            return "auto" if self.envelope_band_hz == "auto" else "configured"
+        return self._band_origin  # type: ignore[return-value]
 
     @property
     def usable_bandwidth_hz(self) -> tuple[float, float]:
@@ -850,8 +924,8 @@ class PointConfig(_Table):
     def envelope_band_for(self, machine: MachineConfig) -> tuple[float, float] | None:
         """The demodulation band the point gets on ``machine``: its own, or the default from its sample rate,
         bandwidth and the machine's top speed (:func:`edgevib.common.bands.envelope_band`; None: none)."""
-        if self.envelope_band_hz is not None:
-            return self.envelope_band_hz
+        if self.band_pair is not None:
+            return self.band_pair
         return envelope_band(self.fs_hz, self.usable_bandwidth_hz, machine.top_speed_hz)
 
     def min_frame_samples(self, machine: MachineConfig) -> int:
@@ -1445,7 +1519,7 @@ def plan_for(point: PointConfig, machine: MachineConfig) -> AnalysisPlan:
     bearing = None if b is None else BearingGeometry(b.elements, b.ball_diameter_mm, b.pitch_diameter_mm,
                                                      b.contact_angle_deg)
     return make_plan(point.fs_hz, point.frame_samples, velocity_band_hz=point.velocity_band_hz,
-                     envelope_band_hz=point.envelope_band_hz, bearing=bearing, orders=point.orders,
+                     envelope_band_hz=point.band_pair, bearing=bearing, orders=point.orders,
                      speed_range_hz=machine.speed_range_hz)
 
 
@@ -1470,7 +1544,7 @@ def _check_plans(cfg: Config) -> dict[str, AnalysisPlan]:
             key = _PLAN_KEYS.get(exc.field or "")
             raise ConfigError(f"points[{i}].{key}" if key else f"points[{i}]",
                               f"analysis plan rejected: {exc}") from None
-        env, bandwidth = p.envelope_band_hz, p.bandwidth_hz or (0.0, math.inf)
+        env, bandwidth = p.band_pair, p.bandwidth_hz or (0.0, math.inf)
         if env is not None and env[1] > bandwidth[1]:
             raise ConfigError(f"points[{i}].envelope_band_hz", f"high edge {env[1]:g} Hz is above the sensor's "
                               f"usable bandwidth {bandwidth[1]:g} Hz")
@@ -1494,7 +1568,10 @@ def _resolve_point(p: PointConfig, i: int, cfg: Config) -> PointConfig:
     r = p.model_copy(update={"sensor": p.sensor or p.id, "bandwidth_hz": p.usable_bandwidth_hz,
                              "frame_samples": p.frame_samples or cfg.analysis.frame_samples,
                              "overlap": cfg.analysis.overlap if p.overlap < 0 else p.overlap})
-    return r.model_copy(update={"envelope_band_hz": r.envelope_band_for(machines[p.machine])})
+    out = r.model_copy(update={"envelope_band_hz": r.envelope_band_for(machines[p.machine])})
+    out._band_origin = "auto" if p.envelope_band_hz == "auto" else \
+        "configured" if p.band_pair is not None else "default"
+    return out
 
 
 def _connection_of(owner: _ReusesSource, key: str, cfg: Config) -> MqttConnection | None:

@@ -30,8 +30,8 @@ from typing import TYPE_CHECKING, Any, Literal
 if TYPE_CHECKING:
     from edgevib.daemon.interfaces import FrameResult
 
-__all__ = ["FAMILIES", "INDICATORS", "LIMITABLE", "REGISTRY", "Demo", "Indicator", "Si", "document", "meaning",
-           "readme_blocks", "readme_tables", "update_readme"]
+__all__ = ["BAND_SOURCES", "FAMILIES", "INDICATORS", "LIMITABLE", "REGISTRY", "Demo", "Indicator", "Si", "document",
+           "meaning", "readme_blocks", "readme_tables", "update_readme"]
 
 G_M_S2 = 9.80665  # standard gravity, exact (3rd CGPM 1901)
 FAMILIES = ("ftf", "bpfo", "bpfi", "bsf")
@@ -87,7 +87,7 @@ class Indicator:
     description: str
     read: Reader | None = None
     each: EachReader | None = None
-    per: Literal["order", "family"] | None = None
+    per: Literal["order", "family", "band_source"] | None = None
     si: Si | None = None
     prometheus: str | None = None
     mqtt: str | None = None
@@ -97,6 +97,7 @@ class Indicator:
     fault: str | None = None
     demo: Demo | None = None
     trend: bool = False
+    boolean: bool = False  # a verdict: true/false in JSON documents, 1/0 in Prometheus
 
     def value(self, r: FrameResult) -> Value:
         """The value of a scalar indicator for a frame."""
@@ -129,6 +130,34 @@ def _family(attr: str) -> EachReader:
     def read(r: FrameResult) -> Mapping[str, Value]:
         return {name: getattr(fam, attr) for name, fam in r.indicators.envelope.items()}
     return read
+
+
+def _verdicts(r: FrameResult) -> Mapping[str, Value]:
+    return {name: fam.detected for name, fam in r.indicators.envelope.items()}
+
+
+def _one_verdict(name: str) -> Reader:
+    def read(r: FrameResult) -> Value:
+        fam = r.indicators.envelope.get(name)
+        return None if fam is None else float(fam.detected)
+    return read
+
+
+BAND_SOURCES = ("configured", "auto", "default")
+"""Where a point's demodulation band comes from: its configuration, the automatic selection, or the default rule."""
+
+
+def _band_edge(i: int) -> Reader:
+    def read(r: FrameResult) -> Value:
+        band = r.indicators.envelope_band_hz
+        return None if band is None else band[i]
+    return read
+
+
+def _band_source(r: FrameResult) -> Mapping[str, Value]:
+    if r.indicators.envelope_band_hz is None or r.envelope_band_source is None:
+        return {}
+    return {s: 1.0 if s == r.envelope_band_source else 0.0 for s in BAND_SOURCES}
 
 
 def _order(key: str) -> Reader:
@@ -197,6 +226,9 @@ def _registry() -> tuple[Indicator, ...]:
                 read=_one_family(fam, "amplitude_g"), fault=f"bearing {what}", mqtt=None, opcua=None, report=None),
             ind(f"bearing_{fam}_snr_db", "dB", f"{label} family over the envelope floor",
                 read=_one_family(fam, "snr_db"), fault=f"bearing {what}", mqtt=None, opcua=None, report=None),
+            ind(f"bearing_{fam}_detected", "1", f"{label} family detected (1) or not (0): the envelope verdict at "
+                "the point's false-alarm probability; a limit on it is a verdict limit (`alert = true`)",
+                read=_one_verdict(fam), fault=f"bearing {what}", mqtt=None, opcua=None, report=None),
         ]
     return (
         ind("velocity_rms_mm_s", "mm/s", "Velocity r.m.s. in the point's velocity band (ISO 20816)", read=_velocity,
@@ -239,6 +271,19 @@ def _registry() -> tuple[Indicator, ...]:
         ind("envelope_snr_db", "dB", "Level of the {key} family over the envelope floor", each=_family("snr_db"),
             per="family", si=DB, prometheus="envelope_snr", mqtt="envelope.{key}.snr_db",
             opcua="envelope_{key}_snr_db", report="envelope.{key}.snr_db"),
+        ind("envelope_detected", "1", "Envelope verdict of the {key} family: detected (1, true) when its line's "
+            "statistic is over the false-alarm threshold with enough modulation depth and no other family explains "
+            "it, else 0 (false)",
+            each=_verdicts, boolean=True,
+            per="family", si=RATIO, prometheus="envelope_detected", mqtt="envelope.{key}.detected", opcua=None,
+            report=None),
+        ind("envelope_band_low_hz", "Hz", "Low edge of the demodulation band in use", read=_band_edge(0), si=HZ,
+            prometheus="envelope_band_low", mqtt=None, opcua=None, report=None),
+        ind("envelope_band_high_hz", "Hz", "High edge of the demodulation band in use", read=_band_edge(1), si=HZ,
+            prometheus="envelope_band_high", mqtt=None, opcua=None, report=None),
+        ind("envelope_band_source", "1", "Where the demodulation band comes from: 1 for the present source "
+            "(configured, auto, default), 0 for the others", each=_band_source, per="band_source", si=RATIO,
+            prometheus="envelope_band_source", mqtt=None, opcua=None, report=None),
         ind("envelope_frequency_hz", "Hz", "Where the {key} family's line was found", each=_family("frequency_hz"),
             per="family", mqtt="envelope.{key}.frequency_hz", opcua=None, report="envelope.{key}.frequency_hz"),
         ind("envelope_expected_hz", "Hz", "Where the {key} family is expected (geometry and speed)",
@@ -261,8 +306,7 @@ LIMITABLE: dict[str, Indicator] = {i.name: i for i in REGISTRY if i.fault is not
 
 
 def _finite(v: Value) -> Value:
-    return v if v is None or (isinstance(v, int) and not isinstance(v, bool)) else \
-        (float(v) if math.isfinite(v) else None)
+    return v if v is None or isinstance(v, int) else (float(v) if math.isfinite(v) else None)  # bools stay bools
 
 
 def _put(doc: dict[str, Any], path: str, key: str, value: Value) -> None:
@@ -306,19 +350,20 @@ def _row(*cells: str) -> str:
 
 def _shown(i: Indicator, template: str) -> str:
     """A name template as README shows it (``order_<k>x_velocity_rms_mm_s``)."""
-    return template.format(key={"order": "<k>x", "family": "<f>"}.get(i.per or "", ""))
+    return template.format(key={"order": "<k>x", "family": "<f>", "band_source": "<s>"}.get(i.per or "", ""))
 
 
 def meaning(i: Indicator) -> str:
     """The description as one sentence, with ``k`` / ``f`` standing for the order or family (README, HELP)."""
-    text = i.description.format(key={"order": "k", "family": "f"}.get(i.per or "", ""))
+    text = i.description.format(key={"order": "k", "family": "f", "band_source": "s"}.get(i.per or "", ""))
     return text if text.endswith(".") else text + "."
 
 
 def readme_tables() -> dict[str, str]:
     """README's generated reference tables, by the name in their ``<!-- registry:NAME -->`` markers."""
     labels = {"order": "`order` (`0.5x`, `1x`, … from the point's `orders`)",
-              "family": "`family` (`ftf`, `bpfo`, `bpfi`, `bsf` = 2 × BSF)"}
+              "family": "`family` (`ftf`, `bpfo`, `bpfi`, `bsf` = 2 × BSF)",
+              "band_source": "`band_source` (`configured`, `auto`, `default`)"}
     prom = [_row("Metric", "Unit", "Extra label", "Meaning"), _row("---", "---", "---", "---")]
     for i in REGISTRY:
         if i.prometheus is not None and i.si is not None:
@@ -331,7 +376,8 @@ def readme_tables() -> dict[str, str]:
     mqtt = [_row("Field", "Type", "Unit", "Meaning"), _row("---", "---", "---", "---"), *DOCUMENT_FIELDS]
     for i in REGISTRY:
         if i.mqtt is not None:
-            mqtt.append(_row(f"`{_shown(i, i.mqtt)}`", "number or null", i.unit, meaning(i)))
+            mqtt.append(_row(f"`{_shown(i, i.mqtt)}`", "bool or null" if i.boolean else "number or null",
+                             "" if i.boolean else i.unit, meaning(i)))
             if i.mqtt_si is not None and i.si is not None:
                 mqtt.append(_row(f"`{_shown(i, i.mqtt_si)}`", "number or null", i.si.symbol, "The same in SI units."))
     limits = [_row("Indicator", "Unit", "Fault kind (in events)", "Meaning"), _row("---", "---", "---", "---")]
@@ -349,6 +395,9 @@ DOCUMENT_FIELDS = [
     _row("`shaft_speed_estimated`", "bool or null", "", "True when estimated from the spectrum; null when no speed."),
     _row("`iso_zone`", "string or null", "", "`\"A\"`..`\"D\"`; null without machine group/support."),
     _row("`envelope_band_hz`", "[number, number] or null", "Hz", "Demodulation band; null when the point has none."),
+    _row("`envelope_band_source`", "string or null", "", "Where the band comes from: `\"configured\"` (the point's "
+         "`envelope_band_hz`), `\"auto\"` (the latest automatic selection), `\"default\"` (the rule from the sample "
+         "rate and sensor bandwidth; also while an automatic point has no selection yet)."),
     _row("`orders_velocity_rms_mm_s`", "object", "mm/s", "Every configured order key (`\"0.5x\"`, `\"1x\"`, …) → "
          "the value below, or null (all null while the speed is unknown)."),
     _row("`envelope`", "object or null", "", "Family (`ftf`, `bpfo`, `bpfi`, `bsf`) → the fields below; null "

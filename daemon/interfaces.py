@@ -49,7 +49,8 @@ class FrameResult:
     ``trend`` the exponentially weighted trend of the indicators that keep one (by indicator name; see
     :mod:`edgevib.daemon.indicators`).  ``machine_state`` is the machine's state after this frame
     (:mod:`edgevib.daemon.machine_state`; ``None`` when not tracked), ``health`` the frame's sensor-health verdict
-    (:mod:`edgevib.daemon.sensor_health`; ``None`` when not checked).
+    (:mod:`edgevib.daemon.sensor_health`; ``None`` when not checked), ``envelope_band_source`` where the frame's
+    demodulation band came from (``"configured"``, ``"auto"``, ``"default"``; ``None`` without a band).
     """
 
     point_id: str
@@ -64,6 +65,7 @@ class FrameResult:
     trend: Mapping[str, float] = field(default_factory=dict)
     machine_state: MachineState | None = None
     health: SensorHealth | None = None
+    envelope_band_source: str | None = None  # "configured" | "auto" | "default"; None without an envelope band
 
 
 BlockHandler = Callable[[Block, str | None], None]

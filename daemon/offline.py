@@ -40,9 +40,9 @@ from edgevib.pipelines.analysis import (
     order_key,
     plan_notes,
 )
-from edgevib.pipelines.bearings import defect_frequencies, defect_multiples, validate_geometry
+from edgevib.pipelines.bearings import defect_frequencies, validate_geometry
 from edgevib.pipelines.conditioning import to_g
-from edgevib.pipelines.kurtogram import select_band
+from edgevib.pipelines.kurtogram import select_band_for
 from edgevib.pipelines.severity import iso_zone, zone_boundaries_mm_s
 from edgevib.pipelines.types import BearingGeometry, FrameIndicators, PipelineError
 
@@ -51,8 +51,6 @@ __all__ = ["FORMATS", "InputError", "Waveform", "configure_analyze", "configure_
 
 ORDER_TOLERANCE = 0.03  # the plan's default: speeds, orders and warnings use the same tolerance
 ESTIMATE_RANGE_HZ = (5.0, 100.0)  # 300–6000 r/min when no speed is given
-AUTO_BAND_FLOOR_HZ = 500.0  # an automatic band stays above this and 20 × the highest shaft speed (common practice)
-ANTI_ALIAS_RATIO = 2.56  # usable bandwidth fs/2.56 of an anti-aliased acquisition (common practice)
 FAMILY_LABELS = {"ftf": "FTF", "bpfo": "BPFO", "bpfi": "BPFI", "bsf": "2xBSF"}
 
 
@@ -239,24 +237,11 @@ def _estimate_range(fs: float, n: int, orders: tuple[float, ...]) -> tuple[float
 def _auto_band(x: np.ndarray, fs: float, speed: tuple[float, float], bearing: BearingGeometry | None,
                harmonics: int = 3) -> tuple[tuple[float, float] | None, dict[str, Any]]:
     """The automatic demodulation band and what the selection saw."""
-    if bearing is not None:
-        m = defect_multiples(bearing)
-        top = harmonics * max(m.bpfi_hz, m.bpfo_hz, 2 * m.bsf_hz) * speed[1] * 1.02
-        low = 0.9 * m.ftf_hz * speed[0]
-    else:
-        top, low = 10.0 * speed[1], 0.4 * speed[0]
-    hi = fs / ANTI_ALIAS_RATIO
-    lo = max(AUTO_BAND_FLOOR_HZ, 20.0 * speed[1])
-    if hi <= lo:
-        return None, {"reason": f"no room for a band between {lo:g} Hz and fs/2.56 = {hi:g} Hz"}
-    choice = select_band(x, fs, allowed_hz=(lo, hi), min_width_hz=max(1.2 * top, 4.0 * fs / x.size),
-                         envelope_hz=(max(low, 3.0 * fs / x.size), top))
+    choice, reason = select_band_for(x, fs, speed, bearing, harmonics=harmonics)
     info: dict[str, Any] = {"bands_examined": len(choice.grid), "kurtosis": choice.kurtosis,
                             "periodicity_db": choice.periodicity_db}
-    if choice.band_hz is None:
-        spikiest = max(choice.grid, key=lambda s: s.kurtosis, default=None)
-        info["reason"] = ("no band of the kurtogram showed a periodic envelope" if spikiest is not None else
-                          f"no kurtogram band fits {lo:g}–{hi:g} Hz at least {1.2 * top:.0f} Hz wide")
+    if reason is not None:
+        info["reason"] = reason
     return choice.band_hz, info
 
 

@@ -37,7 +37,9 @@ import numpy as np
 import numpy.typing as npt
 from scipy import ndimage
 
+from edgevib.common.bands import ANTI_ALIAS_RATIO
 from edgevib.pipelines import _fft
+from edgevib.pipelines.bearings import defect_multiples
 from edgevib.pipelines.detection import (
     GUARD_LINES,
     LEVEL_LINES,
@@ -49,15 +51,18 @@ from edgevib.pipelines.detection import (
 from edgevib.pipelines.envelope import MIN_LINE, demodulate, min_decimated_length
 from edgevib.pipelines.indicators import as_channels, finite_mean
 from edgevib.pipelines.spectrum import band_lines, hann_lines
-from edgevib.pipelines.types import PlanError
+from edgevib.pipelines.types import BearingGeometry, PlanError
 
-__all__ = ["BandChoice", "BandScore", "kurtogram_grid", "select_band"]
+__all__ = ["AUTO_BAND_FLOOR_HZ", "BandChoice", "BandScore", "kurtogram_grid", "select_band", "select_band_for"]
 
 FloatArray = npt.NDArray[np.float64]
 
 GATE_FALSE_ALARM = 1e-3
 """Probability that stationary Gaussian noise passes the periodicity gate of any band of the grid."""
 MAX_LEVEL = 8  # at most 2^8 bands at the finest level
+AUTO_BAND_FLOOR_HZ = 500.0
+"""An automatic band stays above this and 20 × the highest shaft speed (shaft harmonics and their modulation
+stay out of it; common practice)."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -203,3 +208,44 @@ def select_band(x_g: npt.ArrayLike, fs_hz: float, *, allowed_hz: tuple[float, fl
         return BandChoice(None, None, None, tuple(scores))
     best = max(eligible, key=lambda s: (s.kurtosis, -s.level))
     return BandChoice(best.band_hz, best.kurtosis, best.periodicity_db, tuple(scores))
+
+
+def select_band_for(x_g: npt.ArrayLike, fs_hz: float, speed_range_hz: tuple[float, float],
+                    bearing: BearingGeometry | None = None, *, harmonics: int = 3, upper_hz: float | None = None,
+                    gate_false_alarm: float = GATE_FALSE_ALARM) -> tuple[BandChoice, str | None]:
+    """:func:`select_band` with the search ranges of a machine: the band lies above ``max(500 Hz, 20 × the
+    highest shaft speed)`` and below ``fs/2.56`` (and ``upper_hz``, the sensor's usable limit); it is at least
+    1.2 × the highest envelope frequency searched wide; periodicity is looked for from 0.9 × FTF at the lowest
+    speed (0.4 × shaft without a bearing) to ``harmonics`` × the highest defect frequency at the highest speed
+    (10 × shaft without a bearing), + 2 % slip.
+
+    Parameters
+    ----------
+    x_g : array_like, shape (samples,) — one record (g)
+    speed_range_hz : the shaft speeds the record may have (a known speed: a narrow range around it)
+
+    Returns
+    -------
+    (BandChoice, reason) — ``reason`` is None when a band was chosen, else one line saying why not
+    """
+    x = np.asarray(x_g, dtype=np.float64).reshape(-1)
+    if bearing is not None:
+        m = defect_multiples(bearing)
+        top = harmonics * max(m.bpfi_hz, m.bpfo_hz, 2 * m.bsf_hz) * speed_range_hz[1] * 1.02
+        low = 0.9 * m.ftf_hz * speed_range_hz[0]
+    else:
+        top, low = 10.0 * speed_range_hz[1], 0.4 * speed_range_hz[0]
+    hi = fs_hz / ANTI_ALIAS_RATIO if upper_hz is None else min(fs_hz / ANTI_ALIAS_RATIO, upper_hz)
+    lo = max(AUTO_BAND_FLOOR_HZ, 20.0 * speed_range_hz[1])
+    if hi <= lo:
+        return BandChoice(None, None, None, ()), f"no room for a band between {lo:g} Hz and {hi:g} Hz"
+    if x.size < 64:
+        return BandChoice(None, None, None, ()), f"record of {x.size} samples is too short"
+    width = max(1.2 * top, 4.0 * fs_hz / x.size)
+    choice = select_band(x, fs_hz, allowed_hz=(lo, hi), min_width_hz=width,
+                         envelope_hz=(max(low, 3.0 * fs_hz / x.size), top), gate_false_alarm=gate_false_alarm)
+    if choice.band_hz is not None:
+        return choice, None
+    if choice.grid:
+        return choice, "no band of the kurtogram showed a periodic envelope"
+    return choice, f"no kurtogram band fits {lo:g}–{hi:g} Hz at least {width:.0f} Hz wide"

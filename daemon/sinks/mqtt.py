@@ -43,6 +43,7 @@ def indicator_document(site: str, axis: str, r: FrameResult, orders: tuple[str, 
         "frame_samples": int(r.samples.shape[0]),
         "shaft_speed_estimated": ind.shaft_estimated if ind.shaft_hz else None, "iso_zone": r.iso_zone,
         "envelope_band_hz": list(ind.envelope_band_hz) if ind.envelope_band_hz is not None else None,
+        "envelope_band_source": r.envelope_band_source if ind.envelope_band_hz is not None else None,
         **document(r, "mqtt", {"order": orders}),
     }
 

@@ -44,7 +44,7 @@ def _results() -> list[tuple[tuple[str, ...], FrameResult]]:
     return [
         (("quarry-lane", "P-101", "P-101-DE-H", "horizontal"),
          FrameResult("P-101-DE-H", "P-101", T_END_NS, T_END_NS, 25600.0, running, "C", frame, axis="horizontal",
-                     trend={"velocity_rms_mm_s": 3.25})),
+                     trend={"velocity_rms_mm_s": 3.25}, envelope_band_source="auto")),
         (("quarry-lane", "F-201", "F-201-NDE-V", "vertical"),
          FrameResult("F-201-NDE-V", "F-201", T_END_NS + 500_000_000, T_END_NS, 3200.0, unknown_speed, None, frame,
                      axis="vertical")),

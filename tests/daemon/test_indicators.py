@@ -52,7 +52,8 @@ def _frame() -> FrameResult:
                      speed_range_hz=(10.0, 50.0))
     ind = analyze_frames(x, plan, [SHAFT_HZ])[0]
     return FrameResult("P-101-DE-H", "P-101", 1_764_633_600_000_000_000, 0, FS, ind, "B", x.astype(np.float32),
-                       axis="horizontal", trend={"velocity_rms_mm_s": ind.velocity_rms_mm_s or 0.0})
+                       axis="horizontal", trend={"velocity_rms_mm_s": ind.velocity_rms_mm_s or 0.0},
+                       envelope_band_source="configured")
 
 
 def _keys(ind: Indicator) -> tuple[str, ...]:
@@ -83,7 +84,8 @@ def test_every_registry_entry_appears_where_it_says() -> None:
         "machines": [{"id": "P-101", "group": 2, "support": "rigid", "speed_rpm": 1485.0}],
         "points": [{"id": "P-101-DE-H", "machine": "P-101", "source": "sim", "fs_hz": FS, "block_samples": 4096,
                     "bearing": {"elements": 9, "ball_diameter_mm": 7.94, "pitch_diameter_mm": 39.04},
-                    "limits": {name: {"alert": 1.0} for name in LIMITABLE}}]}, plans=True)
+                    "limits": {name: {"alert": name.endswith("_detected") or 1.0} for name in LIMITABLE}}]},
+                   plans=True)
     limited = {lim.indicator for lim in cfg.alarm_settings.limits}
     table = render_table(cfg, {"P-101-DE-H": r}, lambda _p: None, tty=False)
     generated = "\n".join(readme_tables().values())
