@@ -19,7 +19,7 @@ from edgevib.common.wire import Block
 from edgevib.daemon.alarms.control import CommandError
 from edgevib.daemon.app import Daemon
 from edgevib.daemon.band_auto import STATE_FILE
-from edgevib.daemon.config import Config, parse_config
+from edgevib.daemon.config import Config, config_to_document, parse_config
 from edgevib.daemon.interfaces import ConfigError, FrameResult
 from edgevib.daemon.sinks.mqtt import indicator_document
 from edgevib.pipelines.bearings import defect_multiples
@@ -201,6 +201,17 @@ def test_configured_and_default_bands_name_their_source(tmp_path: Path) -> None:
     assert cfg.point("B-301-DE-H").envelope_band_origin == "configured"
     assert cfg.point("B-301-NDE-H").envelope_band_origin == "default"
     assert cfg.analysis.band_auto_interval_s == 3600.0
+
+
+def test_printed_configuration_keeps_the_automatic_band(tmp_path: Path) -> None:
+    # check-config prints what the file would say: "auto" for the automatic point, no band for the default one
+    cfg = parse_config(document(tmp_path))
+    points = {p["id"]: p for p in config_to_document(cfg)["points"]}
+    assert points["B-301-DE-H"]["envelope_band_hz"] == "auto" and "envelope_band_hz" not in points["B-301-NDE-H"]
+    again = parse_config(config_to_document(cfg))
+    assert again.point("B-301-DE-H").envelope_band_origin == "auto"
+    assert again.point("B-301-NDE-H").envelope_band_origin == "default"
+    assert again.points == cfg.points
 
 
 @pytest.mark.parametrize("band, match", [

@@ -13,6 +13,7 @@ from prometheus_client import CollectorRegistry
 from edgevib.daemon.config import parse_config
 from edgevib.daemon.frames import Stats
 from edgevib.daemon.indicators import (
+    BAND_SOURCES,
     FAMILIES,
     LIMITABLE,
     REGISTRY,
@@ -57,7 +58,8 @@ def _frame() -> FrameResult:
 
 
 def _keys(ind: Indicator) -> tuple[str, ...]:
-    return ORDERS if ind.per == "order" else FAMILIES if ind.per == "family" else ("",)
+    return ORDERS if ind.per == "order" else FAMILIES if ind.per == "family" else \
+        BAND_SOURCES if ind.per == "band_source" else ("",)
 
 
 def _has(doc: dict[str, Any], path: str, key: str) -> bool:
