@@ -364,6 +364,7 @@ class Daemon:
             self.machines.healthy = alarms.point_healthy  # a point with a sensor fault does not vote
             alarms.tracks_sources = True  # source down/up: one source event, its points stale, no sensor faults
             self.ingest.connection_listeners.append(alarms.on_source)
+            alarms.block_arrival = self._block_arrival_s
             if config.publish_opcua.enabled:  # the OPC UA namespace shows each point's alarm state as an enumeration
                 opcua.severity_of = alarms.point_severity
         from edgevib.daemon.trendwatch import create_trend_watch
@@ -510,6 +511,11 @@ class Daemon:
         if silent:
             return False, "points receiving nothing: " + ", ".join(silent)
         return True, f"{len(names)} source(s) connected"
+
+    def _block_arrival_s(self, point_id: str) -> float | None:
+        """When the point's latest accepted block arrived (wall clock, s), or ``None``."""
+        ns = self.ingest.last_block_ns.get(point_id)
+        return None if ns is None else ns / 1e9
 
     def state_text(self, point_id: str) -> str | None:
         """Alarm state text of a point (the demo's alarm column); ``None`` without an alarm layer."""

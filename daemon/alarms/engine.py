@@ -200,6 +200,9 @@ class AlarmLayer:
         self._ever_up: set[str] = set()  # sources connected at least once since start
         # Whether the daemon reports the sources' connections (on_source); without, every source counts as up.
         self.tracks_sources = False
+        # When a point's latest block arrived (wall clock, s; the daemon's ingest): a point whose blocks arrive is
+        # not silent, even while its frames wait for analysis or a lossy link leaves frames incomplete.
+        self.block_arrival: Callable[[str], float | None] | None = None
         self._started_m = 0.0
         self._wake: asyncio.Event | None = None
         self.stale: dict[str, str] = {}  # point -> why its data stopped (until its next frame)
@@ -712,7 +715,18 @@ class AlarmLayer:
         return max(2.0, float(self.settings.no_data_frames) * self._frame_period_s(pid))
 
     def _silent(self, pid: str, now_m: float) -> bool:
-        return now_m - self.last_seen.get(pid, now_m) > self._no_data_s(pid)
+        """No frame for the no-data interval, and (where the daemon tells) no block either."""
+        limit = self._no_data_s(pid)
+        if now_m - self.last_seen.get(pid, now_m) <= limit:
+            return False
+        if self.block_arrival is not None:
+            try:
+                t = self.block_arrival(pid)
+            except Exception:  # a view that fails must not stop the timer
+                t = None
+            if t is not None and self.clock() - t <= limit:
+                return False
+        return True
 
     def _tick(self) -> _Pending:
         """Source changes, no-data detection (wall-clock) and shelf expiry between frames."""

@@ -244,3 +244,25 @@ async def test_source_events_meet_their_schemas(short_tmp: Path) -> None:
         sch = schema(e["type"])
         Draft202012Validator(sch).validate(e["data"])  # JSON Schema draft 2020-12 (json-schema.org)
         assert set(e["data"]) <= set(sch["properties"]), e["type"]
+
+
+async def test_points_whose_blocks_arrive_are_not_silent(short_tmp: Path) -> None:
+    # Frames wait for analysis (or a lossy link leaves them incomplete) while blocks keep arriving: no gap at all.
+    import time
+
+    clock, events = Clock(), []
+    layer = await make_layer(two_points(short_tmp), clock, events)
+    layer.block_arrival = lambda pid: time.time() if pid == POINTS[0] else None
+    try:
+        layer.on_source("plant", True)
+        await frames(layer, clock, 100.0, {POINTS[0]: [1.0] * 3, POINTS[1]: [1.0] * 3})
+        for _ in range(40):
+            clock.t += 1.0
+            await tick(layer)
+        assert of_type(events, SOURCE_DOWN_TYPE, SENSOR_TYPE) == []  # one point's blocks arrive: no source matter
+        await frames(layer, clock, 200.0, {POINTS[0]: [1.0] * 20})  # … and its frames again: the other is silent
+        await tick(layer)
+        faults = [(e["data"]["point"], e["data"]["fault"]) for e in of_type(events, SENSOR_TYPE)]
+        assert faults == [(POINTS[1], "no-data")] and of_type(events, SOURCE_DOWN_TYPE) == []
+    finally:
+        await layer.stop()
