@@ -488,7 +488,10 @@ class AlarmLayer:
             key = lim.key
             value = LIMITABLE[lim.indicator].value(r)
             if value is None or not math.isfinite(value):
-                continue
+                if reason is None:
+                    continue
+                value = math.nan  # absent while stopped (orders, bearing families): suppressed all the same
+
             if reason is None:
                 self.values[key] = value
                 tr = self.trends.setdefault(key, deque(maxlen=self.settings.trend_frames))
@@ -793,7 +796,7 @@ class AlarmLayer:
             for tr in trs:
                 self._alarm_event(None, lim, tr, pend)
             state = isa_state(st, spec)
-            if state != "normal":
+            if display_severity(st, spec) > 0 or state == "rtn-unacknowledged":
                 visible.append({"point": pid, "indicator": lim.indicator, "alarm_state": state,
                                 "severity": SEVERITY[display_severity(st, spec)]})
         return visible
@@ -855,7 +858,8 @@ class AlarmLayer:
             for lim in self._by_point.get(pid, ()):
                 spec = self.specs.get(lim.key) or self._spec(lim)
                 a = self.alarms.get(lim.key, AlarmState())
-                if a.stale is not None and isa_state(a, spec) != "normal":
+                shown = display_severity(a, spec) > 0 or isa_state(a, spec) == "rtn-unacknowledged"
+                if a.stale is not None and shown:
                     visible.append({"point": pid, "indicator": lim.indicator, "alarm_state": isa_state(a, spec),
                                     "severity": SEVERITY[display_severity(a, spec)]})
         self.source_states[name] = pend.sources[name] = SourceState(down=False, since_s=t_s)

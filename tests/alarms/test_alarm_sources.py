@@ -266,3 +266,36 @@ async def test_points_whose_blocks_arrive_are_not_silent(short_tmp: Path) -> Non
         assert faults == [(POINTS[1], "no-data")] and of_type(events, SOURCE_DOWN_TYPE) == []
     finally:
         await layer.stop()
+
+
+async def test_alarms_of_indicators_absent_while_stopped_are_suppressed_too(short_tmp: Path) -> None:
+    # A standing machine's frames carry no orders (absent, not zero): its order alarms are suppressed with the
+    # others, not left showing their last running state (ISO 20816-3 group 2 rigid B/C 2.8 mm/s; the 1x limits
+    # below are the simulator's demo starting point, common practice).
+    import dataclasses
+
+    from alarmkit import small_config
+
+    from edgevib.pipelines.machine_state import MachineState
+
+    cfg = small_config(short_tmp, limits={"imbalance_1x_mm_s": {"alert": 1.4, "danger": 2.8}})
+    layer = AlarmLayer(cfg)
+    events: list[dict[str, Any]] = []
+    layer.listeners.append(events.append)
+    await layer.start()
+    try:
+        running = MachineState(state="running", since_s=0.0)
+        stopped = MachineState(state="stopped", since_s=T0 + 10.0)
+        for i in range(3):
+            r = frame_result("P-101-DE-H", "P-101", T0 + i, 2.0, seed=i, orders_mm_s={"1x": 2.0})
+            await layer.on_frames([dataclasses.replace(r, machine_state=running)])
+        assert layer.state_text("P-101-DE-H") == "ALERT imbalance_1x_mm_s"
+        r = frame_result("P-101-DE-H", "P-101", T0 + 10.0, 0.01, seed=9, orders_mm_s={})
+        await layer.on_frames([dataclasses.replace(r, machine_state=stopped)])
+        rows = {a["indicator"]: a for a in layer.snapshot()["alarms"]}
+        assert rows["imbalance_1x_mm_s"]["state"] == "suppressed"
+        assert rows["imbalance_1x_mm_s"]["suppressed"] == "machine-stopped"
+        assert [e["data"]["transition"] for e in of_type(events, ALARM_TYPE)] == ["raised", "suppressed"]
+        assert layer.state_text("P-101-DE-H") == "stopped"
+    finally:
+        await layer.stop()
