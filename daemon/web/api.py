@@ -55,6 +55,7 @@ __all__ = [
     "indicator_rows",
     "indicator_unit",
     "jsonable",
+    "plan_for_frame",
     "rfc3339",
     "transition_row",
 ]
@@ -175,6 +176,17 @@ def jsonable(value: Any) -> Any:
 def dumps(doc: Any) -> bytes:
     """Compact JSON of ``doc`` (see :func:`jsonable`)."""
     return json.dumps(jsonable(doc), separators=(",", ":"), ensure_ascii=False, allow_nan=False).encode("utf-8")
+
+
+def plan_for_frame(point: Any, machine: Any, plan: Any, r: FrameResult) -> Any:
+    """The analysis plan a frame was analysed with: the point's present plan, or — when the frame was demodulated
+    in another band (an automatic band re-selected since) — the point's plan with the frame's band."""
+    band = r.indicators.envelope_band_hz
+    if band is None or plan.envelope_band_hz is None or tuple(band) == tuple(plan.envelope_band_hz):
+        return plan
+    from edgevib.daemon.band_auto import plan_with_band
+
+    return plan_with_band(point, machine, (float(band[0]), float(band[1])))
 
 
 def transition_row(t: Any) -> dict[str, Any]:
@@ -545,7 +557,9 @@ class ViewService:
             "id": p.id, "machine": p.machine, "machine_description": m.description, "axis": p.axis,
             "sensor": p.sensor, "sensor_type": p.sensor_type, "description": p.description, "fs_hz": p.fs_hz,
             "frame_samples": p.frame_samples, "velocity_band_hz": list(p.velocity_band_hz),
+            # the band configured (for an automatic one: its default until the first selection); a frame's own below
             "envelope_band_hz": list(p.envelope_band_hz) if p.envelope_band_hz else None,
+            "envelope_band_source": p.envelope_band_origin if p.envelope_band_hz else None,
             "envelope_note": p.envelope_note, "bearing": p.bearing is not None,
             "machine_state": self._machine_state(m.id, p.id, r),
             "iso": None if m.group is None else {"group": m.group, "support": m.support},
@@ -568,6 +582,8 @@ class ViewService:
             ind = r.indicators
             age = max(0.0, (now_ns - r.received_ns) / 1e9)
             source = ("estimated" if ind.shaft_estimated else m.speed_mode) if ind.shaft_hz is not None else "none"
+            if ind.envelope_band_hz is not None:  # the band the latest frame was demodulated in, and where it is from
+                doc.update(envelope_band_hz=list(ind.envelope_band_hz), envelope_band_source=r.envelope_band_source)
             doc.update(frame_end=rfc3339(r.t_end_ns), age_s=age, stale=age > max(10.0, 5 * period_s),
                        iso_zone=r.iso_zone,
                        speed={"hz": ind.shaft_hz, "rpm": None if ind.shaft_hz is None else ind.shaft_hz * 60,
@@ -647,9 +663,14 @@ class ViewService:
         fmax = _float_param(request, "fmax")
         lines = _int_param(request, "max_lines", 16, panels.MAX_LINES)
 
+        p = self._point_config(request)
+        m = self.daemon.config.machine(p.machine)
+
         def build(r: FrameResult, plan: Any) -> dict[str, Any]:
-            return panels.envelope_panel(r.samples, r.fs_hz, plan, r.indicators.shaft_hz, fmax_hz=fmax,
-                                         max_lines=lines)
+            doc = panels.envelope_panel(r.samples, r.fs_hz, plan_for_frame(p, m, plan, r), r.indicators.shaft_hz,
+                                        fmax_hz=fmax, max_lines=lines)
+            doc["band_source"] = r.envelope_band_source if doc.get("available") else None
+            return doc
         return await self._panel(request, "envelope", build, (fmax, lines))
 
     async def _waveform(self, request: web.Request) -> web.Response:

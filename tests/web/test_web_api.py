@@ -96,6 +96,8 @@ async def test_points_list_every_point_with_state_and_units(demo: Running) -> No
     assert p101["frame_end"].endswith("Z") and p101["stale"] is False
     assert p101["data_gap"] is None and p101["source_state"] == "up"  # the alarm layer: data flows
     assert "DANGER" in p101["alarm_state"] and {a["indicator"] for a in p101["alarms"]} >= {"velocity_rms_mm_s"}
+    b301 = next(p for p in doc["points"] if p["id"] == "B-301-DE-H")
+    assert b301["envelope_band_hz"] == [2200.0, 4200.0] and b301["envelope_band_source"] == "configured"
     mems = next(p for p in doc["points"] if p["id"] == "F-201-NDE-V")
     assert mems["envelope_band_hz"] is None and mems["envelope_note"]
 
@@ -182,6 +184,7 @@ async def test_envelope_marks_bpfo_on_the_failing_bearing(demo: Running) -> None
     truth = Simulation(load_scenario("demo"), seed=0).truth(10.0)["points"]["B-301-DE-H"]
     code, doc = await demo.get("/api/v1/points/B-301-DE-H/envelope")
     assert code == 200 and doc["available"] and doc["band_hz"] == [2200.0, 4200.0]
+    assert doc["band_source"] == "configured"  # the demo's blower has its band in the configuration
     fams = {f["key"]: f for f in doc["families"]}
     # the simulator's kinematic BPFO (FIELD_NOTES §2: n·fr/2·(1 − d/D cos φ)) is where the marker stands …
     bpfo = truth["defect_frequencies_hz"]["bpfo"]

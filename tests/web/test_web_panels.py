@@ -171,3 +171,42 @@ def test_waveform_reduction_keeps_the_extremes() -> None:
 def test_bad_requests_name_the_problem(call: object, message: str) -> None:
     with pytest.raises(PanelError, match=message):
         call()  # type: ignore[operator]
+
+
+def test_the_envelope_panel_uses_the_band_the_frame_was_demodulated_in() -> None:
+    # an automatic band re-selected after a frame was analysed: the panel of that frame shows the frame's band,
+    # and its families are the numerical core's for that band (the same verdicts as the frame's indicators)
+    from edgevib.daemon.band_auto import plan_with_band
+    from edgevib.daemon.config import parse_config
+    from edgevib.daemon.interfaces import FrameResult
+    from edgevib.daemon.web.api import plan_for_frame
+
+    cfg = parse_config({
+        "site": {"name": "fern-basin", "state_dir": "/nonexistent/edgevib-test"},
+        "analysis": {"frame_samples": N, "overlap": 0.0},
+        "sources": [{"name": "sim", "type": "simulated", "scenario": "demo"}],
+        "machines": [{"id": "K-410", "speed_rpm": 1485.0}],
+        "points": [{"id": "K-410-DE-H", "machine": "K-410", "axis": "horizontal", "source": "sim",
+                    "sensor": "FB-K410-DE-H", "fs_hz": FS, "block_samples": 4096, "envelope_band_hz": "auto",
+                    "bearing": {"elements": 9, "ball_diameter_mm": 7.94, "pitch_diameter_mm": 39.04,
+                                "contact_angle_deg": 0.0}}],
+    })
+    point, machine = cfg.point("K-410-DE-H"), cfg.machine("K-410")
+    present = plan_with_band(point, machine, (1500.0, 3500.0))
+    frame_band = (2500.0, 4500.0)
+    x = 0.01 * np.random.default_rng(5).standard_normal(N)
+    used = plan_with_band(point, machine, frame_band)
+    ind = analyze_frames(x, used, [24.75])[0]
+    assert ind.envelope_band_hz == frame_band
+    r = FrameResult(point_id="K-410-DE-H", machine_id="K-410", t_end_ns=0, received_ns=0, fs_hz=FS, indicators=ind,
+                    iso_zone=None, samples=x.astype(np.float32), envelope_band_source="auto")
+    plan = plan_for_frame(point, machine, present, r)
+    assert plan.envelope_band_hz == frame_band
+    doc = envelope_panel(x, FS, plan, 24.75)
+    assert doc["band_hz"] == list(frame_band)
+    assert doc["detected"] == list(ind.envelope_detected)
+    # a frame analysed with the present plan keeps it
+    same = FrameResult(point_id="K-410-DE-H", machine_id="K-410", t_end_ns=0, received_ns=0, fs_hz=FS,
+                       indicators=analyze_frames(x, present, [24.75])[0], iso_zone=None,
+                       samples=x.astype(np.float32))
+    assert plan_for_frame(point, machine, present, same) is present

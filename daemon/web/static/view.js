@@ -139,6 +139,7 @@
       return;
     }
     $("en-band").textContent = `band ${num(doc.band_hz[0], 5)}–${num(doc.band_hz[1], 5)} Hz` +
+      (doc.band_source ? ` (${doc.band_source === "auto" ? "selected automatically" : doc.band_source})` : "") +
       (doc.note ? ` · ${doc.note}` : "");
     const log = $("en-scale").value === "log";
     const marks = [];
@@ -340,7 +341,8 @@
     figs.append(el("span", { class: "fig" }, el("b", { text: "zone " }), p.iso_zone || "n/a"));
     figs.append(el("span", { class: "fig", "data-alarm-state": p.alarm_state }, el("b", { text: "alarm " }), p.alarm_state));
     for (const i of p.indicators) {
-      if (i.value === null || i.kind === "family" || i.name === "iso_zone") continue;
+      // per-family verdicts are in the envelope panel, the band's source beside its band there
+      if (i.value === null || i.kind === "family" || i.kind === "band_source" || i.name === "iso_zone") continue;
       figs.append(el("span", { class: "fig", "data-indicator": i.name },
         el("b", { title: i.description || "", text: i.name.replace(/_(mm_s|g|um|hz|db)(?=$|\.)/, "") + " " }),
         typeof i.value === "number" ? `${num(i.value, 4)} ${i.unit === "1" ? "" : i.unit}` :
