@@ -235,3 +235,31 @@ def test_verdict_limits_take_true(tmp_path: Path, limit: dict[str, Any], match: 
     cfg = parse_config(document(tmp_path, bearing_bpfi_detected={"alert": True}))
     (lim,) = [x for x in cfg.alarm_settings.limits if x.indicator == "bearing_bpfi_detected"]
     assert lim.verdict and lim.alert is not None and lim.alert.value == 0.5 and lim.danger is None
+
+
+def test_selection_schedule_and_joined_records(tmp_path: Path) -> None:
+    from edgevib.daemon.band_auto import AUTO_FRAMES, BandAuto
+
+    auto = BandAuto(str(tmp_path))
+    frame_ns = round(FRAME / FS * 1e9)
+    x = np.arange(4 * FRAME, dtype=np.float32)
+    for k in range(AUTO_FRAMES - 1):
+        auto.observe("A", T0 + (k + 1) * frame_ns, frame_ns, x[k * FRAME:(k + 1) * FRAME])
+    assert auto.due(["A"], 0.0, 60.0) == []  # the first selection waits for AUTO_FRAMES frames …
+    auto.request(["A"])
+    assert auto.due(["A"], 0.0, 60.0) == ["A"]  # … unless asked for
+    auto.started("A", 100.0)
+    assert auto.due(["A"], 100.0, 60.0) == []  # running
+    auto.running.discard("A")
+    assert auto.due(["A"], 159.0, 60.0) == [] and auto.due(["A"], 160.0, 60.0) == ["A"]  # then every interval
+    # contiguous frames without overlap are joined end to end (the samples in order) …
+    rec = auto.record("A")
+    assert rec is not None and np.array_equal(rec, x[: (AUTO_FRAMES - 1) * FRAME])
+    # … a gap restarts the run; overlapping frames (join 0) give the newest frame alone
+    auto.observe("A", T0 + (AUTO_FRAMES + 5) * frame_ns, frame_ns, x[:FRAME])
+    assert (r := auto.record("A")) is not None and r.size == FRAME
+    auto.observe("B", T0 + frame_ns, 0, x[:FRAME])
+    auto.observe("B", T0 + frame_ns + frame_ns // 2, 0, x[FRAME:2 * FRAME])
+    assert (r := auto.record("B")) is not None and np.array_equal(r, x[FRAME:2 * FRAME])
+    auto.forget({"A"})
+    assert auto.record("B") is None
