@@ -24,8 +24,10 @@ Defect families (FTF, BPFO, BPFI and, for a rolling-element defect, **2 × BSF**
    BPFO ≈ 3.05× of a 6203, would otherwise "find" the 3× line of a looseness series 1×, 2×, 3× …).  Where every
    shaft line found is a harmonic of the candidate — slip has put a defect line on a whole order, e.g. BPFO at
    3.03× slipping 1 % onto 3×, and its harmonics on 6×, 9×, 12× — the shaft explains nothing the defect series
-   does not, and the lines stay the family's.  (A shaft-synchronous source with as many events per revolution,
-   and nothing else on the shaft series, would read the same: the line pattern alone cannot tell them apart.)
+   does not, and the lines stay the family's — provided at least one harmonic of the family is counted too (a lone
+   line on a whole order is as much a single shaft-synchronous modulation: ambiguous with the shaft).  (A
+   shaft-synchronous source with as many impacts per revolution, and nothing else on the shaft series, would
+   still read the same: the line pattern alone cannot tell them apart.)
 2. *Fundamental.*  Within ± the slip tolerance (at least ± 1 line) of the kinematic value, the largest SES line
    that is a **true local maximum** (above its lower neighbour, not below its upper one) and not a barred shaft
    line.  A window whose largest value sits on its edge — the skirt of a line outside it — has no local maximum
@@ -496,6 +498,13 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
         unresolved = detected & close.any(axis=-1) & ~ambiguous
         ambiguous_with = np.where(unresolved, np.argmax(close, axis=-1), ambiguous_with)
         ambiguous |= unresolved
+    # a fundamental on a shaft line the shaft series does not claim (step 1) is the family's only with a harmonic
+    # of its own counted: a lone line on a whole order is as much a single shaft-synchronous modulation
+    s_idx = np.where(shaft.found, shaft.index, -10)  # (c, orders)
+    on_shaft = has & ~established & (np.abs(k1i[..., None] - s_idx[:, None, :]) <= 1).any(axis=-1)
+    lone = detected & on_shaft & (found[..., 1:harmonics].sum(axis=-1) == 0) & ~ambiguous
+    ambiguous_with = np.where(lone, nf, ambiguous_with)
+    ambiguous |= lone
     return FamilySearch(lines=lines, slots=slots, expected_lines=centres, amplitude_g=amp, depth=depth,
                         significant=significant, detected=detected & ~ambiguous, ambiguous_with=ambiguous_with,
                         shaft=shaft, shaft_established=established)

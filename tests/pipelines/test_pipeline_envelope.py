@@ -298,6 +298,21 @@ def test_a_defect_line_slipped_onto_a_whole_order_stays_the_bearings() -> None:
     assert "bpfo" not in analyze_frames(y, plan, shaft)[0].envelope_detected
 
 
+@pytest.mark.parametrize("mu, sigma", [(0.3, 0.3), (0.25, 0.4)])
+def test_a_lone_line_on_a_whole_order_is_not_called_a_defect(mu: float, sigma: float) -> None:
+    # a single shaft-synchronous modulation at 3× (no 1×, no harmonic above the noise) inside the 6203's BPFO
+    # window: significant and deep enough, but a defect's impacts would show harmonics too (Randall & Antoni
+    # 2011), so the line is reported as ambiguous with the shaft, not as BPFO
+    shaft = 29.95
+    rng = np.random.default_rng(1)
+    x = (1 + mu * np.cos(2 * np.pi * 3 * shaft * T)) * np.sin(2 * np.pi * 6000 * T) + rng.normal(0, sigma, N)
+    r = analyze_frames(x, make_plan(FS, N, envelope_band_hz=(4000.0, 9000.0), bearing=B6203), shaft)[0]
+    fam = r.envelope["bpfo"]
+    assert fam.snr_db is not None and fam.threshold_db is not None and fam.snr_db > fam.threshold_db + 10
+    assert fam.depth is not None and fam.depth > 0.3 and fam.harmonics_found == 1
+    assert not fam.detected and fam.ambiguous_with == "shaft" and r.envelope_detected == ()
+
+
 def test_the_demo_blower_bearing_is_detected() -> None:
     # the demo's failing bearing (simulated outer-race impacts at the truth's impact rate, 1 % slip) in the
     # daemon's frames of 8192 samples at 12.8 kHz, band 2200–4200 Hz: BPFO detected, no other family.  The
