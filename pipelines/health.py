@@ -38,6 +38,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from functools import lru_cache
 from typing import Literal
 
 import numpy as np
@@ -145,9 +146,9 @@ def _spike_counts(x: npt.NDArray[np.float64], spike_sigma: float) -> tuple[npt.N
     similar size a few samples away); an electrical spike does not.
     """
     c, n = x.shape
-    med = np.median(x, axis=1, keepdims=True)
+    med = _median_of_sorted(np.sort(x, axis=1))
     xc_abs = np.abs(x - med)
-    sigma_r = _MAD_TO_SIGMA * np.median(xc_abs, axis=1, keepdims=True)
+    sigma_r = _MAD_TO_SIGMA * _median_of_sorted(np.sort(xc_abs, axis=1))
     big = xc_abs > spike_sigma * np.where(sigma_r > 0, sigma_r, np.inf)
     spikes = np.zeros(c, dtype=np.int64)
     ci, ii = np.nonzero(big)
@@ -160,9 +161,29 @@ def _spike_counts(x: npt.NDArray[np.float64], spike_sigma: float) -> tuple[npt.N
     return spikes, sigma_r[:, 0]
 
 
+def _median_of_sorted(s: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:
+    """``np.median(x, axis=1, keepdims=True)`` from the rows of ``x`` sorted (the same values: the middle sample,
+    or the mean of the middle two).  numpy's sort is vectorized and runs about twice as fast as the partition
+    ``np.median`` uses, even counting the full order."""
+    n = s.shape[1]
+    h = n // 2
+    if n % 2:
+        return s[:, h : h + 1].copy()
+    out: npt.NDArray[np.float64] = (s[:, h - 1 : h] + s[:, h : h + 1]) / 2.0
+    return out
+
+
 def _count(mask: npt.NDArray[np.bool_]) -> npt.NDArray[np.int64]:
     """True entries per row (a byte sum: several times faster than ``count_nonzero(axis=1)``)."""
     return np.asarray(mask.view(np.uint8).sum(axis=1, dtype=np.int64), dtype=np.int64)
+
+
+@lru_cache(maxsize=16)
+def _subsample(n: int) -> npt.NDArray[np.int64]:
+    """A fixed, non-periodic subsample of up to 1024 of n sample indices (a Weyl sequence; kept per frame length)."""
+    sub = np.unique((np.arange(min(n, 1024)) * 0.6180339887498949 * n).astype(np.int64) % n)
+    sub.flags.writeable = False
+    return sub
 
 
 def _spike_free(x: npt.NDArray[np.float64], hi: npt.NDArray[np.float64], lo: npt.NDArray[np.float64],
@@ -178,8 +199,7 @@ def _spike_free(x: npt.NDArray[np.float64], hi: npt.NDArray[np.float64], lo: npt
     impacts on a quiet floor) whose robust spread is far below their peak.
     """
     n = x.shape[1]
-    sub = np.unique((np.arange(min(n, 1024)) * 0.6180339887498949 * n).astype(np.int64) % n)  # Weyl sequence
-    c = np.median(x[:, sub], axis=1)
+    c = np.median(x[:, _subsample(n)], axis=1)
     d = 0.1 * rms + 1e-12
     bound = (np.maximum(hi - c, c - lo) + d) * (1.0 + 1e-6) + 1e-12  # slack for rounding in the exact test
     t = bound / (spike_sigma * _MAD_TO_SIGMA)
