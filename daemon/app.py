@@ -731,8 +731,8 @@ class Daemon:
                             envelope_band_source=st.band_source if ind.envelope_band_hz is not None else None)
             if st.config.envelope_band_origin == "auto":
                 p = st.config
-                join_ns = round(p.frame_samples / p.fs_hz * 1e9) if p.hop_samples == p.frame_samples else 0
-                self.band_auto.observe(job.point_id, job.t_end_ns, join_ns, samples)
+                self.band_auto.observe(job.point_id, job.t_end_ns, p.hop_samples, round(p.hop_samples / p.fs_hz * 1e9),
+                                       samples)
                 if self.band_auto.first_ready(job.point_id):
                     self._band_wake.set()
             r = dataclasses.replace(r, trend=st.trend.update({i.name: i.value(r) for i in TRENDED},

@@ -2,7 +2,7 @@
 
 Such a point starts with the default band (the rule of :func:`edgevib.common.bands.envelope_band`; its frames say
 ``envelope_band_source = "default"``).  The daemon keeps the point's latest frames (up to :data:`AUTO_FRAMES`
-contiguous ones, joined end to end) and selects a band from them
+consecutive ones, joined into one record without repeating their overlap) and selects a band from them
 (:func:`edgevib.pipelines.kurtogram.select_band_for`: spectral kurtosis on the fast kurtogram's grid, among bands
 whose squared envelope shows periodicity) — once when enough frames are there, then every
 ``[analysis] band_auto_interval_s`` and whenever asked (the control command ``select_band``), never per frame,
@@ -109,7 +109,7 @@ class BandAuto:
 
     def __init__(self, state_dir: str | None) -> None:
         self.path = None if state_dir is None else Path(state_dir) / STATE_FILE
-        self._frames: dict[str, deque[tuple[int, int, npt.NDArray[np.float32]]]] = {}
+        self._frames: dict[str, deque[tuple[int, int, int, npt.NDArray[np.float32]]]] = {}  # (t_end, hop, hop_ns, x)
         self._last_s: dict[str, float] = {}  # last selection attempt, wall clock
         self._requested: set[str] = set()
         self.running: set[str] = set()
@@ -160,27 +160,29 @@ class BandAuto:
 
     # -------------------------------------------------------------------------------------- frames, schedule
 
-    def observe(self, point_id: str, t_end_ns: int, join_ns: int, samples: npt.NDArray[np.float32]) -> None:
-        """Keep a frame of an automatic point (a copy: the batch array is not held).  ``join_ns`` is the frame's
-        duration when frames follow each other without overlap (they may be joined), else 0."""
+    def observe(self, point_id: str, t_end_ns: int, hop: int, hop_ns: int,
+                samples: npt.NDArray[np.float32]) -> None:
+        """Keep a frame of an automatic point (a copy: the batch array is not held).  ``hop`` is the point's frame
+        advance in samples and ``hop_ns`` in time: consecutive frames are ``hop_ns`` apart."""
         q = self._frames.setdefault(point_id, deque(maxlen=AUTO_FRAMES))
-        q.append((t_end_ns, join_ns, np.array(samples, dtype=np.float32)))
+        q.append((t_end_ns, hop, hop_ns, np.array(samples, dtype=np.float32)))
 
     def record(self, point_id: str) -> npt.NDArray[np.float64] | None:
-        """The newest run of kept frames that follow each other without gap or overlap, joined end to end (the
-        newest frame alone when frames overlap)."""
+        """The newest run of consecutive kept frames as one record: the first frame, then the ``hop`` new samples
+        of each next one (overlapping frames share the rest).  A gap ends the run."""
         q = self._frames.get(point_id)
         if not q:
             return None
         items = list(q)
         run = [items[-1]]
-        for t, join_ns, x in reversed(items[:-1]):
-            t_next, join_next, nxt = run[0]
-            if join_ns <= 0 or join_ns != join_next or x.size != nxt.size \
-                    or abs((t_next - t) - join_ns) > max(1, join_ns // 1000):
+        for t, hop, hop_ns, x in reversed(items[:-1]):
+            t_next, hop_next, hop_ns_next, nxt = run[0]
+            if hop != hop_next or hop_ns != hop_ns_next or x.size != nxt.size or not 0 < hop <= x.size \
+                    or abs((t_next - t) - hop_ns) > max(1, hop_ns // 1000):
                 break
-            run.insert(0, (t, join_ns, x))
-        return np.concatenate([x for _, _, x in run]).astype(np.float64)
+            run.insert(0, (t, hop, hop_ns, x))
+        parts = [run[0][3]] + [x[x.size - hop:] for _, hop, _, x in run[1:]]
+        return np.concatenate(parts).astype(np.float64)
 
     def request(self, point_ids: list[str]) -> None:
         """Ask for a selection of these points as soon as they have frames."""

@@ -244,7 +244,7 @@ def test_selection_schedule_and_joined_records(tmp_path: Path) -> None:
     frame_ns = round(FRAME / FS * 1e9)
     x = np.arange(4 * FRAME, dtype=np.float32)
     for k in range(AUTO_FRAMES - 1):
-        auto.observe("A", T0 + (k + 1) * frame_ns, frame_ns, x[k * FRAME:(k + 1) * FRAME])
+        auto.observe("A", T0 + (k + 1) * frame_ns, FRAME, frame_ns, x[k * FRAME:(k + 1) * FRAME])
     assert auto.due(["A"], 0.0, 60.0) == []  # the first selection waits for AUTO_FRAMES frames …
     auto.request(["A"])
     assert auto.due(["A"], 0.0, 60.0) == ["A"]  # … unless asked for
@@ -252,14 +252,16 @@ def test_selection_schedule_and_joined_records(tmp_path: Path) -> None:
     assert auto.due(["A"], 100.0, 60.0) == []  # running
     auto.running.discard("A")
     assert auto.due(["A"], 159.0, 60.0) == [] and auto.due(["A"], 160.0, 60.0) == ["A"]  # then every interval
-    # contiguous frames without overlap are joined end to end (the samples in order) …
+    # consecutive frames without overlap are joined end to end (the samples in order) …
     rec = auto.record("A")
     assert rec is not None and np.array_equal(rec, x[: (AUTO_FRAMES - 1) * FRAME])
-    # … a gap restarts the run; overlapping frames (join 0) give the newest frame alone
-    auto.observe("A", T0 + (AUTO_FRAMES + 5) * frame_ns, frame_ns, x[:FRAME])
+    # … a gap restarts the run
+    auto.observe("A", T0 + (AUTO_FRAMES + 5) * frame_ns, FRAME, frame_ns, x[:FRAME])
     assert (r := auto.record("A")) is not None and r.size == FRAME
-    auto.observe("B", T0 + frame_ns, 0, x[:FRAME])
-    auto.observe("B", T0 + frame_ns + frame_ns // 2, 0, x[FRAME:2 * FRAME])
-    assert (r := auto.record("B")) is not None and np.array_equal(r, x[FRAME:2 * FRAME])
+    # frames overlapping by half (the default overlap): the record is the signal once, in order
+    hop = FRAME // 2
+    for k in range(AUTO_FRAMES):
+        auto.observe("B", T0 + k * (frame_ns // 2), hop, frame_ns // 2, x[k * hop:k * hop + FRAME])
+    assert (r := auto.record("B")) is not None and np.array_equal(r, x[: FRAME + (AUTO_FRAMES - 1) * hop])
     auto.forget({"A"})
     assert auto.record("B") is None
