@@ -80,7 +80,7 @@ from edgevib.daemon.interfaces import (
 )
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 from edgevib.daemon.machine_state import MachineTracker
-from edgevib.daemon.sensor_health import HealthError, batch_health
+from edgevib.daemon.sensor_health import HealthError, batch_health, judged_running
 from edgevib.pipelines.health import HealthSpec, SensorHealth
 from edgevib.pipelines.types import AnalysisPlan, FrameIndicators, PipelineError
 
@@ -698,6 +698,8 @@ class Daemon:
         if not any(specs):
             return x, ind, [None] * len(ind)
         rms = [i.acceleration_rms_g for i in ind]
+        level = self.config.alarms.run_threshold_velocity_mm_s
+        running = [judged_running(r, i.velocity_rms_mm_s, level) for r, i in zip(running, ind, strict=True)]
         return x, ind, batch_health(x, plan.fs_hz, specs, rms, running, points, health_errors)
 
     def _health_spec(self, point_id: str) -> HealthSpec | None:

@@ -8,6 +8,7 @@ The checks themselves are :func:`edgevib.pipelines.health.check_health`.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from typing import Any
 
@@ -17,7 +18,19 @@ import numpy.typing as npt
 from edgevib.pipelines.health import HealthSpec, SensorHealth, check_health
 from edgevib.pipelines.types import PipelineError
 
-__all__ = ["HealthError", "batch_health"]
+__all__ = ["HealthError", "batch_health", "judged_running"]
+
+
+def judged_running(machine_running: bool, velocity_rms_mm_s: float | None, run_level_mm_s: float) -> bool:
+    """Whether a frame's health is judged against a running machine: its machine was running before the frame
+    *and* the frame itself still shows a running machine's level (velocity r.m.s. ≥ ``run_level_mm_s``).  A frame
+    taken as the machine stops (a trip, a fast coast-down the speed trend has not caught yet) is judged against a
+    standing machine at once, so a quiet signal a few converter steps wide is not taken for a flatline."""
+    if not machine_running:
+        return False
+    if velocity_rms_mm_s is None or not math.isfinite(velocity_rms_mm_s):
+        return True
+    return velocity_rms_mm_s >= run_level_mm_s
 
 
 class HealthError(Exception):

@@ -65,7 +65,7 @@ from edgevib.daemon.config import Config
 from edgevib.daemon.indicators import LIMITABLE
 from edgevib.daemon.interfaces import AlarmTransition, FrameResult
 from edgevib.daemon.machine_state import MachineTracker
-from edgevib.daemon.sensor_health import HealthError, batch_health
+from edgevib.daemon.sensor_health import HealthError, batch_health, judged_running
 from edgevib.daemon.timestamps import rfc3339_utc_s
 from edgevib.pipelines.alarm import (
     AlarmState,
@@ -434,7 +434,8 @@ class AlarmLayer:
         """Whether the frame's machine runs (else its health is judged against a standing machine); results
         without a machine state use the machine's latest known one."""
         ms = r.machine_state or self.machine_states.get(r.machine_id)
-        return ms is not None and ms.state == "running"
+        return judged_running(ms is not None and ms.state == "running", r.indicators.velocity_rms_mm_s,
+                              self.settings.run_threshold_velocity_mm_s)
 
     def _process(self, results: list[FrameResult], health: list[SensorHealth | None]) -> _Pending:
         pend = _Pending()

@@ -199,3 +199,25 @@ def test_noise_floor_is_not_judged_while_standing() -> None:
 def test_running_flags_must_match_the_channels() -> None:
     with pytest.raises(SignalError, match="running has 1 values for 2 channels"):
         check_health(np.zeros((2, N)), FS, running=[True])
+
+
+def test_a_frame_taken_as_the_machine_stops_is_judged_as_standing() -> None:
+    # A 16-bit ±50 g acquisition (step 100 g / 2^16 ≈ 1.5 mg) on a machine that has just tripped: the signal is a
+    # few converter steps of noise, most samples repeat the previous one.  The machine tracker still says
+    # "running" (its judgement lags by a frame or the speed trend); the frame's own level (0.01 mm/s, under the
+    # 0.2 mm/s run level) says it stands: not a flatline.  The same frame on a machine at a running level is one.
+    import numpy as np
+
+    from edgevib.daemon.sensor_health import batch_health, judged_running
+    from edgevib.pipelines.health import HealthSpec
+
+    step = 100.0 / 2**16
+    rng = np.random.default_rng(4)
+    x = np.round(0.4 * step * rng.standard_normal(8192) / step) * step
+    rms = float(x.std())
+    assert rms > HealthSpec().flatline_std_g and np.mean(x[1:] == x[:-1]) > HealthSpec().repeat_fraction
+    standing, = batch_health(x[None, :], 12800.0, [HealthSpec()], [rms], [judged_running(True, 0.01, 0.2)], ["p"])
+    turning, = batch_health(x[None, :], 12800.0, [HealthSpec()], [rms], [judged_running(True, 3.0, 0.2)], ["p"])
+    assert standing is not None and standing.ok
+    assert turning is not None and turning.fault == "flatline"
+    assert judged_running(False, 3.0, 0.2) is False and judged_running(True, None, 0.2) is True
