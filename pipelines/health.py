@@ -143,7 +143,8 @@ def _spike_counts(x: npt.NDArray[np.float64], spike_sigma: float) -> tuple[npt.N
 
     A spike is a sample farther than ``spike_sigma`` × σ_r from the median with nothing of at least a third of its
     size within ±:data:`SPIKE_WINDOW` samples: a bearing impact rings a resonance (opposite half-cycles of
-    similar size a few samples away); an electrical spike does not.
+    similar size a few samples away); an electrical spike does not.  Samples within :data:`SPIKE_WINDOW` of
+    either frame edge are not judged (the window is incomplete there).
     """
     c, n = x.shape
     med = _median_of_sorted(np.sort(x, axis=1))
@@ -151,6 +152,10 @@ def _spike_counts(x: npt.NDArray[np.float64], spike_sigma: float) -> tuple[npt.N
     sigma_r = _MAD_TO_SIGMA * _median_of_sorted(np.sort(xc_abs, axis=1))
     big = xc_abs > spike_sigma * np.where(sigma_r > 0, sigma_r, np.inf)
     spikes = np.zeros(c, dtype=np.int64)
+    # a candidate within the window of either frame edge is not judged: its ringing may lie beyond the edge
+    # (an impact struck in the last samples), and overlapping frames see it in their interior
+    big[:, :SPIKE_WINDOW] = False
+    big[:, max(n - SPIKE_WINDOW, 0):] = False
     ci, ii = np.nonzero(big)
     if ci.size:
         # a candidate whose next neighbour already reaches a third of it is not isolated (the ringing of an

@@ -221,3 +221,26 @@ def test_a_frame_taken_as_the_machine_stops_is_judged_as_standing() -> None:
     assert standing is not None and standing.ok
     assert turning is not None and turning.fault == "flatline"
     assert judged_running(False, 3.0, 0.2) is False and judged_running(True, None, 0.2) is True
+
+
+def test_an_impact_cut_by_the_frame_edge_is_not_a_spike() -> None:
+    # An impact whose ringing lies beyond the frame's end (or began before its start) shows only its first (last)
+    # half-cycles in the frame; overlapping frames see it whole, so it must never count as an isolated spike.
+    # Impacts ring a resonance over several samples (FIELD_NOTES §6, common practice).
+    rows = []
+    for resonance_hz in (3000.0, 4100.0, 5300.0, FS / 4):
+        for k in np.arange(0.0, 12.0, 0.25):  # onset k samples before the frame's end, and k samples into the frame
+            for t_first in (N - k) / FS, k / FS - 0.0093:
+                rng = np.random.default_rng(int(k * 4))
+                x = 0.02 * rng.standard_normal(N)
+                for t0 in np.arange(t_first, -0.02, -1 / 107.4):
+                    tau = T - t0
+                    on = tau >= 0
+                    x[on] += 2.0 * np.exp(-tau[on] / 0.002) * np.sin(2 * np.pi * resonance_hz * tau[on])
+                rows.append(x)
+    res = check_health(np.stack(rows), FS, screen=False)
+    assert [r.spike_count for r in res] == [0] * len(rows)
+    # A genuine spike near (but not at) the edge is still counted.
+    x = healthy(16)
+    x[[40, N - 40]] += [6.0, -7.0]
+    assert check_health(x, FS)[0].spike_count == 2
