@@ -237,7 +237,10 @@ def _result_fields(res: TrendResult, now: float, unit: str) -> dict[str, Any]:
                       "slope": res.fit.slope, "onset_s": res.fit.onset_s, "n": res.fit.n,
                       "autocorrelation": round(res.fit.autocorrelation, 3),
                       # for a confidence band of the fitted curve (the statistic of crossing_interval)
-                      "cov": list(res.fit.cov), "sigma": res.fit.sigma, "dof": res.fit.dof}
+                      "cov": list(res.fit.cov), "sigma": res.fit.sigma, "dof": res.fit.dof,
+                      # the scale on which the curve is straight in time; the power law's γ and failure time
+                      "transform": res.fit.transform, "shape": res.fit.shape,
+                      "singularity_s": res.fit.singularity_s}
     if res.step is not None:
         out["step"] = {"baseline": res.step.baseline, "level": res.step.level, "change": res.step.change,
                        "threshold": res.step.threshold, "significant": res.step.significant}

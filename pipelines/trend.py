@@ -9,8 +9,8 @@ values (for example the medians of hourly roll-ups) — and answers the planner'
 * **step change** (:func:`step_change`): the present level against the learned baseline, judged by the ISO
   20816-3 rule that a change larger than 0.25 × the B/C boundary is significant even inside a zone (the caller
   passes that threshold; without one, 25 % of the baseline mean);
-* **growth**: whether the values rise significantly and, if they do, a linear or an exponential growth curve,
-  chosen by evidence (Akaike weights of the two fits, Akaike 1974);
+* **growth**: whether the values rise significantly and, if they do, a linear, an exponential or a power-law
+  (towards a failure time) growth curve, chosen by evidence (Akaike weights of the fits, Akaike 1974);
 * **projection**: for each limit above the present level, the time until the fitted curve reaches it, with an
   interval of stated coverage (default 80 %), or "not rising".
 
@@ -18,12 +18,22 @@ How (details in :func:`assess`): values are taken on a logarithmic scale when al
 scatter grows with the level, so a multiplicative error model fits it); points that stand far out from their
 neighbours (a Hampel identifier: Hampel 1974, Pearson 2002) are set aside; the onset of growth is located by a
 broken-stick (flat, then rising) fit chosen against "flat" and "straight" by the Bayesian information criterion
-(Schwarz 1978); on the values since the onset the linear model (weighted least squares, weights 1/level²) and the
-exponential model (least squares on the logarithm) are fitted and compared; the growth is significant when the
+(Schwarz 1978); on the values since the onset the linear model (weighted least squares, weights 1/level²), the
+exponential model (least squares on the logarithm) and the power law are fitted and compared.  The power law,
+value = S₀·(1 − θ/θ_b)^(−1/γ), grows without bound as the time θ approaches θ_b: a growth that accelerates faster
+than exponential towards failure, as bearings near the end of life often show.  It is the symptom life curve of
+the energy-processor model of machine condition (Cempel 1991, "Vibroacoustical Condition Monitoring", from memory)
+and, with γ = α − 1, the materials-failure law dΩ/dt ∝ Ω^α of failure forecasting (Voight 1988, Nature 332); with
+γ = 1 the inverse of the value falls linearly to zero at failure (the inverse-velocity method, Fukuzono 1985).
+The shape γ is chosen from 0.5, 1 and 2 with the curve; the three shapes share one law's prior weight in the
+comparison (Burnham & Anderson 2002, model priors), so a family of curves does not outvote a single law by its
+number.  All laws are a straight line in time on a transformed scale — the value, its logarithm, −value^(−γ)
+(Box–Cox exponents 1, 0, −γ; Box & Cox 1964) — so each has the same two-parameter fit, test and crossing
+interval; the growth is significant when the
 chosen model's slope exceeds zero at the one-sided level ``rise_alpha`` (Student's t, the residual variance
 inflated for lag-1 autocorrelation of the residuals); the interval of the crossing time is Fieller's interval for
 the ratio (limit − intercept)/slope (Fieller 1954), which under the model has the stated coverage exactly.  While
-the evidence between the two laws is not decisive (Akaike weight below 0.99), the interval allows for both: the
+the evidence for the chosen law is not decisive (Akaike weight below 0.99), the interval allows for the others: the
 quantiles of the weight-averaged crossing-time distributions (Burnham & Anderson 2002); the estimate stays the
 chosen law's.
 
@@ -66,7 +76,8 @@ __all__ = [
 
 SECONDS_PER_DAY = 86400.0
 FloatArray = npt.NDArray[np.float64]
-Model = Literal["linear", "exponential"]
+Model = Literal["linear", "exponential", "power"]
+POWER_SHAPES = (0.5, 1.0, 2.0)  # γ of the power law: value ∝ (θ_b − θ)^(−1/γ)
 ProjectionStatus = Literal["rising", "not-rising", "reached", "beyond-horizon"]
 TrendStatus = Literal["ok", "insufficient-history"]
 
@@ -126,8 +137,10 @@ class GrowthFit:
     """The chosen growth curve on the values since ``onset_s``.
 
     ``model`` ``"linear"``: value = ``intercept + slope·(t − t_ref_s)``; ``"exponential"``: value =
-    exp(``intercept + slope·(t − t_ref_s)``) (``slope`` per second on the logarithm; doubling time ln 2 / slope).
-    ``weight``: Akaike weight of the chosen model against the other (0.5–1; 1 when only one could be fitted).
+    exp(``intercept + slope·(t − t_ref_s)``) (``slope`` per second on the logarithm; doubling time ln 2 / slope);
+    ``"power"``: value = (−(``intercept + slope·(t − t_ref_s)``))^(−1/``shape``) (a negative intercept: the value
+    to the power −γ falls by ``slope`` per second; the curve grows without bound at ``singularity_s``).
+    ``weight``: Akaike weight of the chosen model against the others (1 when only one could be fitted).
     ``t_stat``: slope over its standard error; ``sigma``: residual standard deviation on the fitted scale;
     ``autocorrelation``: lag-1 autocorrelation of the residuals (variance inflated by (1 + r)/(1 − r) when > 0).
     """
@@ -144,17 +157,53 @@ class GrowthFit:
     autocorrelation: float
     n: int
     onset_s: float
+    shape: float = 0.0  # γ of the power law (0 for the other laws)
+
+    @property
+    def transform(self) -> str:
+        """The scale on which the curve is a straight line in time: ``"identity"``, ``"log"`` or ``"power"``
+        (−value^(−shape))."""
+        return _TRANSFORMS[self.model]
+
+    @property
+    def singularity_s(self) -> float | None:
+        """Time at which a power-law curve grows without bound (None for the other laws or without growth)."""
+        if self.model != "power" or self.slope <= 0:
+            return None
+        return self.t_ref_s - self.intercept / self.slope
 
     def value_at(self, t_s: float) -> float:
-        """The fitted curve's value at ``t_s``."""
-        z = self.intercept + self.slope * (t_s - self.t_ref_s)
-        return math.exp(z) if self.model == "exponential" else z
+        """The fitted curve's value at ``t_s`` (inf at and beyond a power-law curve's singularity)."""
+        return _untransform(self.model, self.intercept + self.slope * (t_s - self.t_ref_s), self.shape)
 
     def slope_per_day_at(self, t_s: float) -> float:
         """Rate of change of the fitted curve at ``t_s``, value units per day."""
         if self.model == "exponential":
             return self.slope * self.value_at(t_s) * SECONDS_PER_DAY
+        if self.model == "power":  # dv/dt = slope·v^(1+γ)/γ
+            v = self.value_at(t_s)
+            return self.slope * v ** (1 + self.shape) / self.shape * SECONDS_PER_DAY if math.isfinite(v) else math.inf
         return self.slope * SECONDS_PER_DAY
+
+
+_TRANSFORMS: dict[str, str] = {"linear": "identity", "exponential": "log", "power": "power"}
+
+
+def _untransform(model: str, z: float, shape: float) -> float:
+    if model == "exponential":
+        return math.exp(min(z, 700.0))
+    if model == "power":
+        return float((-z) ** (-1.0 / shape)) if z < 0 else math.inf
+    return z
+
+
+def _transform(model: str, value: float, shape: float) -> float | None:
+    """The value on the model's straight-line scale (None where the scale has no image of it)."""
+    if model == "linear":
+        return value
+    if value <= 0:
+        return None
+    return math.log(value) if model == "exponential" else -(value ** -shape)
 
 
 @dataclass(frozen=True, slots=True)
@@ -313,12 +362,9 @@ def crossing_interval(fit: GrowthFit, limit: float, coverage: float) -> tuple[fl
     this is Fieller's (1954) confidence interval of the ratio (limit − intercept)/slope.  Returns
     ``(t_hat, t_low, t_high)`` or ``None`` when the slope is not significant at that level (the set is unbounded).
     """
-    if fit.model == "exponential":
-        if limit <= 0:
-            return None
-        target = math.log(limit)
-    else:
-        target = limit
+    target = _transform(fit.model, limit, fit.shape)
+    if target is None:
+        return None
     q = float(stats.t.ppf(0.5 + coverage / 2, fit.dof))
     s2 = fit.sigma**2 * q * q
     v00, v01, v11 = fit.cov
@@ -356,16 +402,21 @@ def _wls_rows(h: FloatArray, z: FloatArray, w: FloatArray) -> tuple[FloatArray, 
     return (sz - b * sh) / sw, b, det
 
 
-def _growth_loglik(model: Model, h: FloatArray, y: FloatArray, positive: bool
+def _growth_loglik(model: Model, h: FloatArray, y: FloatArray, positive: bool, shape: float = 0.0
                    ) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
     """Broken-stick fits of one model for k onset candidates (h: (k, n) hinge regressors).
 
     Returns the log-likelihood of the values y under each fit, the level a at the onset, the slope b and the
-    weights (k, n) of the final weighted regression.  Positive values: both models put a normal error on ln y
+    weights (k, n) of the final weighted regression.  Positive values: all models put a normal error on ln y
     (scatter proportional to the level), so their likelihoods compare directly; otherwise only the linear model,
-    with a normal error on y.
+    with a normal error on y.  The power law (``shape`` γ) returns the level and slope on its scale −y^(−γ).
     """
     k, n = h.shape
+    if model == "power":
+        # u = y^(−γ) = c − d·h with a multiplicative error is the linear model of u (its logarithm −γ·ln y has a
+        # normal error); on the scale −u the level is −c and the slope d.  ln p(y) = ln p(u) + ln γ − (γ+1)·ln y.
+        ll, a, b, w = _growth_loglik("linear", h, y**-shape, True)
+        return ll + n * math.log(shape) - (shape + 1.0) * float(np.sum(np.log(y))), -a, -b, w
     if model == "exponential":
         z = np.log(y)
         w = np.ones((k, n))
@@ -429,54 +480,74 @@ def _candidates(x: FloatArray, min_after: int, onset: bool) -> FloatArray:
     return np.asarray(x[idx], dtype=np.float64)
 
 
+Law = tuple[Model, float]  # a growth model and its shape (the power law's γ; 0 for the others)
+
+
+def _laws(positive: bool) -> list[tuple[Law, float]]:
+    """The growth laws compared, each with its prior weight: the linear and exponential laws one each, the power
+    law's shapes one together (Burnham & Anderson 2002: model priors in Akaike weights)."""
+    if not positive:
+        return [(("linear", 0.0), 1.0)]
+    laws: list[tuple[Law, float]] = [(("linear", 0.0), 1.0), (("exponential", 0.0), 1.0)]
+    return laws + [(("power", g), 1.0 / len(POWER_SHAPES)) for g in POWER_SHAPES]
+
+
+def _best_onset(law: Law, x: FloatArray, y: FloatArray, positive: bool, taus: FloatArray) -> tuple[float, float]:
+    """The onset τ of ``law`` with the highest likelihood among ``taus`` (refined between its neighbours) and that
+    log-likelihood (-inf when no candidate gives a rising fit)."""
+    m, g = law
+    ll, _, b, _ = _growth_loglik(m, _design(x, taus), y, positive, g)
+    ll = np.where(b > 0, ll, -np.inf)
+    j = int(np.argmax(ll))
+    tau, best = float(taus[j]), float(ll[j])
+    if taus.size > 1 and math.isfinite(best):  # refine between the neighbouring candidates
+        lo, hi = float(taus[max(j - 1, 0)]), float(taus[min(j + 1, taus.size - 1)])
+        fine = np.linspace(lo, hi, 17)
+        ll2, _, b2, _ = _growth_loglik(m, _design(x, fine), y, positive, g)
+        ll2 = np.where(b2 > 0, ll2, -np.inf)
+        j2 = int(np.argmax(ll2))
+        if float(ll2[j2]) > best:
+            tau, best = float(fine[j2]), float(ll2[j2])
+    return tau, best
+
+
 def _select(x: FloatArray, y: FloatArray, positive: bool, min_after: int, onset: bool
-            ) -> tuple[Model, float, float, float, dict[Model, float]] | None:
-    """Best growth model and onset by likelihood, or ``None`` when "flat" or "a step between two flat levels" wins
+            ) -> tuple[Law, float, float, dict[Law, tuple[float, float]]] | None:
+    """Best growth law and onset by likelihood, or ``None`` when "flat" or "a step between two flat levels" wins
     by BIC (a level that jumped and stays is a step change, not growth: nothing to project).
 
-    Returns (model, onset τ on the x axis, log-likelihood, Akaike weight against the other model, the other
-    model's onset by model)."""
+    Returns (law, onset τ on the x axis, Akaike weight against the other laws, and for each other law its onset
+    and Akaike weight).  The laws have the same number of parameters, so their Akaike weights are their
+    likelihoods times their prior weights, normalised; the choice and the test against "flat" and "step" use the
+    same prior-weighted likelihood."""
     n = x.size
-    models: list[Model] = ["linear", "exponential"] if positive else ["linear"]
     taus = _candidates(x, min_after, onset)
-    best: dict[Model, tuple[float, float]] = {}
-    for m in models:
-        ll, _, b, _ = _growth_loglik(m, _design(x, taus), y, positive)
-        ll = np.where(b > 0, ll, -np.inf)
-        j = int(np.argmax(ll))
-        if not math.isfinite(float(ll[j])):
-            continue
-        tau = float(taus[j])
-        if taus.size > 1:  # refine between the neighbouring candidates
-            lo, hi = float(taus[max(j - 1, 0)]), float(taus[min(j + 1, taus.size - 1)])
-            fine = np.linspace(lo, hi, 17)
-            ll2, _, b2, _ = _growth_loglik(m, _design(x, fine), y, positive)
-            ll2 = np.where(b2 > 0, ll2, -np.inf)
-            j2 = int(np.argmax(ll2))
-            if float(ll2[j2]) > float(ll[j]):
-                tau, ll = float(fine[j2]), ll2
-                j = j2
-        best[m] = (tau, float(ll[j]))
+    best: dict[Law, tuple[float, float]] = {}
+    for law, prior in _laws(positive):
+        tau, ll = _best_onset(law, x, y, positive, taus)
+        if math.isfinite(ll):
+            best[law] = (tau, ll + math.log(prior))
     if not best:
         return None
-    model = max(best, key=lambda m: best[m][1])
-    tau, ll_best = best[model]
+    chosen = max(best, key=lambda m: best[m][1])
+    tau, ll_best = best[chosen]
     k_growth = 3 if tau <= x[0] else 4
     bic_growth = -2 * ll_best + k_growth * math.log(n)
     bic_flat = -2 * _flat_loglik(y, positive) + 2 * math.log(n)
     bic_step = -2 * _step_loglik(y, positive, min_after) + 4 * math.log(n) if onset else math.inf
     if bic_growth >= min(bic_flat, bic_step):
         return None
-    other = [v[1] for m, v in best.items() if m != model]
-    weight = 1.0 / (1.0 + math.exp(other[0] - ll_best)) if other else 1.0
-    return model, tau, ll_best, weight, {m: v[0] for m, v in best.items() if m != model}
+    rel = {m: math.exp(v[1] - ll_best) for m, v in best.items()}
+    total = sum(rel.values())
+    return chosen, tau, 1.0 / total, {m: (v[0], rel[m] / total) for m, v in best.items() if m != chosen}
 
 
-def _fit(model: Model, x: FloatArray, y: FloatArray, tau: float, positive: bool, t_ref: float, weight: float
+def _fit(law: Law, x: FloatArray, y: FloatArray, tau: float, positive: bool, t_ref: float, weight: float
          ) -> GrowthFit:
     """The broken-stick fit of ``model`` with onset ``tau`` as a linear model in (level at τ, slope)."""
+    model, shape = law
     h = _design(x, np.array([tau]))
-    _, a, b, w = _growth_loglik(model, h, y, positive)
+    _, a, b, w = _growth_loglik(model, h, y, positive, shape)
     # mean a + b·max(0, x − τ) (of ln y for the exponential model): for x ≥ τ this is (a − bτ) + b·x
     hh, ww = h[0], w[0]
     sw, sh, shh = float(ww.sum()), float(ww @ hh), float(ww @ (hh * hh))
@@ -484,6 +555,8 @@ def _fit(model: Model, x: FloatArray, y: FloatArray, tau: float, positive: bool,
     mean = a[0] + b[0] * hh
     if model == "exponential":
         resid = np.log(y) - mean
+    elif model == "power":  # ln y − ln((−mean)^(−1/γ)): the error on ln y, as for the other laws
+        resid = np.log(y) + np.log(np.maximum(-mean, 1e-300)) / shape
     elif positive:
         resid = np.log(y) - np.log(np.maximum(mean, 1e-300))  # ≈ (y − μ)/μ: the weighted residual
     else:
@@ -516,7 +589,7 @@ def _fit(model: Model, x: FloatArray, y: FloatArray, tau: float, positive: bool,
     se_b = math.sqrt(max(sigma2 * v11, 1e-300))
     return GrowthFit(model=model, t_ref_s=t_ref, intercept=a0, slope=b_c, cov=(c00, c01, c11),
                      sigma=math.sqrt(sigma2), dof=dof, weight=weight, t_stat=b_c / se_b,
-                     autocorrelation=rho, n=n, onset_s=t_ref + tau)
+                     autocorrelation=rho, n=n, onset_s=t_ref + tau, shape=shape)
 
 
 def assess(t_s: npt.ArrayLike, values: npt.ArrayLike, now_s: float, limits: Sequence[tuple[str, float]] = (),
@@ -578,11 +651,11 @@ def assess(t_s: npt.ArrayLike, values: npt.ArrayLike, now_s: float, limits: Sequ
                             recent_level >= lim else None) for label, lim in limits)
     if sel is None:
         return replace(base, projections=flat)
-    fit = _fit(sel[0], x, yk, sel[1], positive, t_ref, sel[3])
-    rival = None  # the other growth law, kept while the evidence between the two is not decisive
-    if sel[3] < _DECISIVE_WEIGHT and sel[4]:
-        (m2, tau2), = sel[4].items()
-        rival = _fit(m2, x, yk, tau2, positive, t_ref, 1.0 - sel[3])
+    fit = _fit(sel[0], x, yk, sel[1], positive, t_ref, sel[2])
+    rivals = []  # the other growth laws, kept while the evidence for the chosen one is not decisive
+    if sel[2] < _DECISIVE_WEIGHT:
+        rivals = [_fit(m2, x, yk, tau2, positive, t_ref, w2) for m2, (tau2, w2) in sel[3].items()
+                  if w2 >= (1.0 - _DECISIVE_WEIGHT) / 4]
     xs = x[seg]
     t_crit = float(stats.t.ppf(1 - spec.rise_alpha, fit.dof))
     rising = fit.slope > 0 and fit.t_stat > t_crit
@@ -604,9 +677,10 @@ def assess(t_s: npt.ArrayLike, values: npt.ArrayLike, now_s: float, limits: Sequ
             projections.append(Projection(label, lim, "not-rising"))
             continue
         t_hat, t_lo, t_hi = ci
-        ci2 = None if rival is None else crossing_interval(rival, lim, spec.coverage)
-        if ci2 is not None:  # the interval allows for the choice of law; the estimate is the chosen law's
-            _, t_lo, t_hi = _averaged(ci, ci2, fit.weight, spec.coverage)
+        laws = [(ci, fit.weight)] + [(c, r.weight) for r in rivals
+                                     if (c := crossing_interval(r, lim, spec.coverage)) is not None]
+        if len(laws) > 1:  # the interval allows for the choice of law; the estimate is the chosen law's
+            _, t_lo, t_hi = _averaged(laws, spec.coverage)
             t_lo, t_hi = min(t_lo, t_hat), max(t_hi, t_hat)
         eta = max(t_hat - now_s, 0.0)
         if eta > horizon:
@@ -616,22 +690,22 @@ def assess(t_s: npt.ArrayLike, values: npt.ArrayLike, now_s: float, limits: Sequ
     return replace(base, level=level, rising=True, fit=fit, projections=tuple(projections))
 
 
-def _averaged(a: tuple[float, float, float], b: tuple[float, float, float], w: float, coverage: float
+def _averaged(cis: Sequence[tuple[tuple[float, float, float], float]], coverage: float
               ) -> tuple[float, float, float]:
-    """Median and central ``coverage`` interval of the crossing time averaged over two growth laws.
+    """Median and central ``coverage`` interval of the crossing time averaged over growth laws.
 
-    Each law's crossing time is taken as a split normal with its estimate as median and its Fieller interval's ends
-    as the (1 ∓ coverage)/2 quantiles; the mixture (weights ``w`` and 1 − ``w``, the Akaike weights: Burnham &
-    Anderson 2002, model averaging) is inverted numerically."""
+    ``cis``: each law's ``((t_hat, t_low, t_high), weight)``.  Each law's crossing time is taken as a split normal
+    with its estimate as median and its Fieller interval's ends as the (1 ∓ coverage)/2 quantiles; the mixture
+    (weights normalised, the Akaike weights: Burnham & Anderson 2002, model averaging) is inverted numerically."""
     z = float(stats.norm.ppf(0.5 + coverage / 2))
-    laws = [(a[0], max(a[0] - a[1], 1e-9) / z, max(a[2] - a[0], 1e-9) / z, w),
-            (b[0], max(b[0] - b[1], 1e-9) / z, max(b[2] - b[0], 1e-9) / z, 1.0 - w)]
+    total = sum(w for _, w in cis)
+    laws = [(a[0], max(a[0] - a[1], 1e-9) / z, max(a[2] - a[0], 1e-9) / z, w / total) for a, w in cis]
 
     def cdf(t: float) -> float:
         return sum(wt * float(stats.norm.cdf((t - m) / (lo if t < m else hi))) for m, lo, hi, wt in laws)
 
-    lo_t = min(a[1], b[1]) - 10 * max(x[1] for x in laws)
-    hi_t = max(a[2], b[2]) + 10 * max(x[2] for x in laws)
+    lo_t = min(a[1] for a, _ in cis) - 10 * max(x[1] for x in laws)
+    hi_t = max(a[2] for a, _ in cis) + 10 * max(x[2] for x in laws)
     q = [optimize.brentq(lambda t, p=p: cdf(t) - p, lo_t, hi_t, xtol=1e-9 * (hi_t - lo_t))
          for p in (0.5, 0.5 - coverage / 2, 0.5 + coverage / 2)]
     return float(q[0]), float(q[1]), float(q[2])
