@@ -30,7 +30,8 @@ def confidence_band(fit: dict[str, Any], t_s: npt.ArrayLike, coverage: float | N
                     ) -> tuple[FloatArray, FloatArray] | None:
     """Pointwise confidence band ``(low, high)`` of a trend document's fitted mean curve at times ``t_s``, in the
     indicator's unit: ``z ± q·σ·√(v00 + 2x·v01 + x²·v11)`` on the fitted scale (x = t − t_ref; q Student's t at
-    ``coverage`` with the fit's degrees of freedom; exponentiated for the exponential model).  This is the
+    ``coverage`` with the fit's degrees of freedom; taken back to the value scale for the exponential and power
+    laws: exp(z), (−z)^(−1/shape)).  This is the
     statistic whose crossings of a limit are Fieller's interval (:func:`edgevib.pipelines.trend.crossing_interval`),
     so the band meets each limit at its ``eta_low``/``eta_high`` while the evidence for the chosen growth law is
     decisive (``model_weight`` ≥ 0.99); otherwise the crossing intervals also allow for the other law and are
@@ -49,16 +50,16 @@ def confidence_band(fit: dict[str, Any], t_s: npt.ArrayLike, coverage: float | N
 
 
 def _scale(fit: dict[str, Any], z: FloatArray) -> FloatArray:
-    if fit["model"] != "exponential":
-        return z
-    with np.errstate(over="ignore"):
-        return np.exp(np.minimum(z, 700.0))
+    from edgevib.daemon.trendchart import curve_values
+
+    return np.asarray(curve_values(fit, np.asarray(z, dtype=np.float64)), dtype=np.float64)
 
 
 def projection_curve(doc: dict[str, Any]) -> dict[str, Any] | None:
     """The fitted curve of a trend document from its onset (or now) to the furthest projected crossing (or 30
     days), with its confidence band (``low``/``high``, at the document's ``coverage``), or None without a rising
-    fit.  ``linear``: ``a + b·(t − t_ref)``; ``exponential``: ``exp(a + b·(t − t_ref))``."""
+    fit.  ``linear``: ``a + b·(t − t_ref)``; ``exponential``: ``exp(a + b·(t − t_ref))``; ``power``:
+    ``(−(a + b·(t − t_ref)))^(−1/shape)`` (unbounded from the fitted failure time on: no values there)."""
     fit = doc.get("fit")
     now = doc.get("t_s")
     if not fit or not doc.get("rising") or now is None:
