@@ -317,7 +317,7 @@ def test_power_law_growth_is_chosen_and_projects_the_analytic_crossing(shape: fl
 def test_power_law_remaining_life_at_80_percent_is_not_late() -> None:
     # Growth accelerating towards failure (γ = 1: the reciprocal of the value falls linearly to zero; Fukuzono
     # 1985), 10 % scatter, seen from 80 % of the life: the median estimate is within 15 % of the actual remaining
-    # life (linear and exponential laws alone put it at about 4.5× the actual), and the IEEE PHM 2012 score is
+    # life (linear and exponential laws alone put it at about 4.6× the actual), and the IEEE PHM 2012 score is
     # on average above 0.5.
     ratios, scores = [], []
     life, limit = 100.0, 20.0
