@@ -149,9 +149,10 @@ class AlarmTransition:
 
     ``kind``: ``"alarm"`` (a limit's transition), ``"sensor"`` (a sensor fault raised or cleared) or ``"source"``
     (a source's data path down or up).  ``t_s``: the event time (the frame's measurement time; operator actions and
-    timers: the point's latest frame time), Unix seconds.  ``indicator``: the limit's indicator, the sensor fault
-    (``flatline``, ``no-data`` …) or the source name.  ``state`` / ``from_state``: annunciated severity
-    (``normal``/``alert``/``danger``; sensor: ``sensor-fault``/``normal``; source: ``down``/``up``);
+    timers: the time of the action on the point's timeline, the wall clock while it is stale), Unix seconds.
+    ``indicator``: the limit's indicator, the sensor fault (``flatline``, ``no-data`` …) or the source name.
+    ``state`` / ``from_state``: annunciated severity (``normal``/``alert``/``danger``; sensor:
+    ``sensor-fault``/``normal``; source: ``down``/``up``);
     ``alarm_state``: the ISA-18.2 style operator state after it (alarms only).  ``value`` / ``limit``: the value at
     the transition and the set point concerned.  ``by`` / ``at_s``: who issued an operator action and when (wall
     clock).  ``reason``: suppression or shelve reason, ``capture``: the waveform file, ``stale``: why the point had

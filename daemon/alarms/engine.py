@@ -803,10 +803,14 @@ class AlarmLayer:
         return visible
 
     def _point_now_s(self, pid: str, now_m: float) -> float:
-        """The point's frames' timeline now: its latest frame's time advanced by the wall-clock time since."""
-        if pid in self.last_frame:
-            return self.last_frame[pid] + max(0.0, now_m - self.last_seen.get(pid, now_m))
-        return self.clock()
+        """The point's frames' timeline now: its latest frame's time advanced by the wall-clock time since.
+
+        While the point is stale (its source down, its sensor silent, or since a restart before data flows) the
+        time since its last frame is unknown to that timeline: the wall clock is taken, never an earlier time."""
+        if pid not in self.last_frame:
+            return self.clock()
+        t = self.last_frame[pid] + max(0.0, now_m - self.last_seen.get(pid, now_m))
+        return max(t, self.clock()) if self.stale.get(pid) else t
 
     def _shelf_tick(self, pid: str, now_m: float, pend: _Pending) -> None:
         # Shelves expire on the frames' timeline (a shelf is set from the last frame's time), advanced by the
@@ -919,7 +923,9 @@ class AlarmLayer:
         changed = 0
         with self._lock:
             lims = self._targets(req)
-            t_s = self.last_frame.get(req["point"], self.clock())
+            # the time of the action: the wall clock, on the point's timeline (the last frame's time advanced by
+            # the time since it arrived; during an outage, the wall clock) so shelves run from the action
+            t_s = self._point_now_s(req["point"], self.monotonic())
             for lim in lims:
                 key, spec = lim.key, self.specs.get(lim.key) or self._spec(lim)
                 st = self.alarms.get(key, AlarmState())

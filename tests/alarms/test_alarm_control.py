@@ -66,10 +66,11 @@ async def test_control_socket_commands(short_tmp: Path) -> None:
         assert ok == {"ok": True, "result": {"changed": 1, "events": 1}}
         assert layer.state_text("P-101-DE-H") == "DANGER velocity_rms_mm_s"  # shelving hides events, not facts
         assert events[-1]["data"]["transition"] == "shelved" and events[-1]["data"]["reason"] == "bearing change"
-        # The shelf expires on the frames' timeline: 10 s after the last frame (t = 1001 s).
+        # The shelf expires on the frames' timeline: 10 s after the action (the last frame, t = 1001 s, advanced
+        # by the moments since it arrived).
         await layer.on_frames([frame_result("P-101-DE-H", "P-101", 1005.0, 5.0)])
         assert events[-1]["data"]["transition"] == "shelved"
-        await layer.on_frames([frame_result("P-101-DE-H", "P-101", 1011.0, 5.0)])
+        await layer.on_frames([frame_result("P-101-DE-H", "P-101", 1012.0, 5.0)])
         assert events[-1]["data"]["transition"] == "unshelved"
         assert events[-1]["data"]["alarm_state"] == "unacknowledged"
         # edgevib alarms …, in a thread so the daemon's loop keeps answering.

@@ -299,3 +299,41 @@ async def test_alarms_of_indicators_absent_while_stopped_are_suppressed_too(shor
         assert layer.state_text("P-101-DE-H") == "stopped"
     finally:
         await layer.stop()
+
+
+async def test_operator_actions_during_an_outage_take_the_time_of_the_action(short_tmp: Path) -> None:
+    # ISA-18.2 (FIELD_NOTES §7): an acknowledgement or shelve is recorded when the operator acts; a shelve runs
+    # for its duration from then, even while the point's data is stale.
+    clock, events = Clock(), []
+    wall = Clock()
+    wall.t = T0 + 102.0
+    layer = AlarmLayer(two_points(short_tmp), monotonic=clock, clock=wall)
+    layer.listeners.append(events.append)
+    layer.tracks_sources = True
+    await layer.start()
+    try:
+        layer.on_source("plant", True)
+        await frames(layer, clock, 100.0, {POINTS[0]: [6.0] * 3, POINTS[1]: [1.0] * 3})
+        layer.on_source("plant", False)
+        await tick(layer)
+        for _ in range(300):  # five minutes of outage
+            clock.t += 1.0
+            wall.t += 1.0
+            await tick(layer)
+        layer.handle_command({"cmd": "ack", "point": POINTS[0], "by": "A. Operator"})
+        layer.handle_command({"cmd": "shelve", "point": POINTS[1], "reason": "cable work", "duration_s": 120.0})
+        acted = wall.t
+        rows = layer.history()
+        assert [(r.kind, r.transition) for r in rows[:3]] == [("alarm", "shelved"), ("alarm", "acknowledged"),
+                                                             ("source", "down")]
+        assert [r.t_s for r in rows] == sorted((r.t_s for r in rows), reverse=True)  # newest first
+        assert rows[1].t_s == pytest.approx(acted) and rows[0].t_s == pytest.approx(acted)
+        shelf = next(a for a in layer.snapshot(POINTS[1])["alarms"] if a["shelved_until_s"] is not None)
+        assert shelf["since_s"] == pytest.approx(acted) and shelf["shelved_until_s"] == pytest.approx(acted + 120.0)
+        for _ in range(60):  # still shelved a minute on, though the outage is longer than the shelve
+            clock.t += 1.0
+            wall.t += 1.0
+            await tick(layer)
+        assert layer.snapshot(POINTS[1])["alarms"][0]["shelved_until_s"] == pytest.approx(acted + 120.0)
+    finally:
+        await layer.stop()
