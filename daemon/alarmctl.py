@@ -66,6 +66,9 @@ def configure_alarms(parser: argparse.ArgumentParser) -> None:
     p.add_argument("--since", help="a duration back from now (90s, 30m, 8h, 7d, 2w) or a UTC time "
                    "(2026-12-01T06:00Z, 2026-12-01)")
     p.add_argument("--limit", type=int, default=200, help="at most this many rows, 1..1000 (default 200)")
+    for action in sub.choices.values():  # --json before or after the action (SUPPRESS keeps one given before)
+        action.add_argument("--json", action="store_true", default=argparse.SUPPRESS,
+                            help="print the daemon's JSON response")
 
 
 def _socket_path(args: argparse.Namespace) -> Path:

@@ -176,7 +176,7 @@ def test_alarms_cli_history_ack_by_and_shelve_errors(short_tmp: Path, capsys: py
             codes.append(await asyncio.to_thread(main, [*base, "shelve", "P-101-DE-H", "--reason", "overhaul",
                                                         "--hours", "500"]))
             codes.append(await asyncio.to_thread(main, [*base, "history", "P-101-DE-H"]))
-            codes.append(await asyncio.to_thread(main, [*base, "--json", "history", "--since", "2026-05-28"]))
+            codes.append(await asyncio.to_thread(main, [*base, "history", "--since", "2026-05-28", "--json"]))
             codes.append(await asyncio.to_thread(main, [*base, "history", "--since", "yesterday-ish"]))
             codes.append(await asyncio.to_thread(main, [*base, "history", "NOPE"]))
         finally:
@@ -193,3 +193,16 @@ def test_alarms_cli_history_ack_by_and_shelve_errors(short_tmp: Path, capsys: py
     assert "raised" in lines[1] and "alert" in lines[1] and "2.8" in lines[1] and ".wav" in lines[1]
     rows = json.loads("{" + raw.split("\n}\n", 1)[0] + "\n}")["result"]
     assert [r["transition"] for r in rows] == ["acknowledged", "raised"] and rows[0]["by"] == "K. Shiftlead"
+
+
+@pytest.mark.parametrize("argv", [["--json", "list"], ["list", "--json"], ["history", "--since", "3m", "--json"],
+                                  ["--json", "history", "P-101-DE-H"], ["ack", "P-101-DE-H", "--json"]])
+def test_json_is_accepted_before_and_after_the_action(argv: list[str]) -> None:
+    import argparse
+
+    from edgevib.daemon.alarmctl import configure_alarms
+
+    parser = argparse.ArgumentParser()
+    configure_alarms(parser)
+    assert parser.parse_args(argv).json is True
+    assert parser.parse_args([a for a in argv if a != "--json"]).json is False
