@@ -119,6 +119,11 @@ def test_page_lists_every_point_without_errors(browser: Any, demo: Demo) -> None
     ids = [p["id"] for p in api(demo.base, "/api/v1/points")["points"]]
     shown = page.eval_on_selector_all("#point-list li", "els => els.map(e => e.dataset.point)")
     assert shown == ids and len(ids) == 6
+    # choosing a point in the list shows it and names it in the address
+    page.click('#point-list li[data-point="P-102-DE-A"]')
+    wait_until(page, lambda: page.inner_text("#point-title") == "P-102-DE-A", "the chosen point")
+    page.wait_for_selector("#detail[data-loaded]", timeout=30000)
+    assert page.url.endswith("#P-102-DE-A") and page.locator("#sp-chart canvas").count() == 1
     # nothing but our own origin is ever asked for (an edge box has no network)
     assert requests and all(u.startswith(demo.base) for u in requests), requests
     page.close()
@@ -177,8 +182,13 @@ def test_envelope_marks_bpfo_on_the_failing_bearing_and_updates_live(browser: An
     page = browser.new_page()
     console = Console(page)
     answers = Answers(page, "/api/v1/points/B-301-DE-H/envelope")
-    page.goto(demo.base + "/#B-301-DE-H")
+    page.goto(demo.base + "/#P-101-DE-H")
     page.wait_for_selector('#en-families tr[data-family="bpfo"]', timeout=20000)
+    # the address chooses the point: the pump's panels give way to the blower's, nothing of the pump stays
+    page.goto(demo.base + "/#B-301-DE-H")
+    wait_until(page, lambda: page.inner_text("#point-title") == "B-301-DE-H", "the blower to be chosen")
+    page.wait_for_selector('#en-families tr[data-family="bpfo"]', timeout=20000)
+    assert page.get_attribute('#point-list li[aria-current="true"]', "data-point") == "B-301-DE-H"
     # the BPFO family is marked, with the verdict the API gave for the frame the page shows
     frame, verdict, row = page.eval_on_selector("#panel-envelope", """p => {
         const tr = document.querySelector('#en-families tr[data-family="bpfo"]');

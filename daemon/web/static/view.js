@@ -371,16 +371,19 @@
     const id = state.selected;
     if (!id) return;
     const q = encodeURIComponent(id);
+    // an answer that arrives after another point was chosen is dropped
+    const mine = draw => d => { if (state.selected === id) draw(d); };
     const jobs = [
-      getJSON(`${API}/points/${q}/spectrum`).then(d => { state.spectrum = d; spectrumChart(d); spectrumTable(d); }),
-      getJSON(`${API}/points/${q}/envelope`).then(d => { state.envelope = d; envelopeChart(d); }),
-      getJSON(`${API}/points/${q}/waveform`).then(d => { state.waveform = d; waveformChart(d); }),
+      getJSON(`${API}/points/${q}/spectrum`).then(mine(d => { state.spectrum = d; spectrumChart(d); spectrumTable(d); })),
+      getJSON(`${API}/points/${q}/envelope`).then(mine(d => { state.envelope = d; envelopeChart(d); })),
+      getJSON(`${API}/points/${q}/waveform`).then(mine(d => { state.waveform = d; waveformChart(d); })),
       getJSON(`${API}/points/${q}/trend?indicator=${encodeURIComponent($("tr-ind").value || "velocity_rms_mm_s")}`)
-        .then(d => { state.trend = d; trendChart(d); }),
-      loadHistory(),
+        .then(mine(d => { state.trend = d; trendChart(d); })),
+      getJSON(`${API}/alarms/history?point=${q}&limit=50`).then(mine(historyTable)),
     ];
     const results = await Promise.allSettled(jobs);
     for (const r of results) if (r.status === "rejected" && r.reason && r.reason.status !== 404) console.warn(String(r.reason));
+    if (state.selected !== id) return;
     state.lastRefresh = Date.now();
     $("detail").setAttribute("data-loaded", String(state.lastRefresh));
   }
@@ -403,9 +406,7 @@
       el("td", { text: value }), el("td", { text: who }), el("td", { text: why }));
   }
 
-  async function loadHistory() {
-    const id = state.selected;
-    const doc = await getJSON(`${API}/alarms/history?point=${encodeURIComponent(id)}&limit=50`);
+  function historyTable(doc) {
     const body = $("history").tBodies[0];
     body.textContent = "";
     $("history-src").textContent = doc.source || "";
@@ -413,7 +414,20 @@
     $("panel-history").setAttribute("data-count", String(doc.events.length));
   }
 
+  // a point's panels: nothing of the previously chosen point stays on the page while the new one loads
+  function clearPanels() {
+    for (const [k, u] of Object.entries(state.charts)) { u.destroy(); delete state.charts[k]; }
+    for (const id of ["sp-chart", "en-chart", "wf-chart", "tr-chart"]) $(id).textContent = "";
+    for (const id of ["sp-markers", "en-families", "history", "tr-cross"]) { const t = $(id); if (t) t.tBodies[0].textContent = ""; }
+    for (const id of ["panel-spectrum", "panel-envelope", "panel-waveform"]) $(id).removeAttribute("data-frame-end");
+    for (const id of ["sp-read", "en-read", "wf-read", "tr-read"]) $(id).textContent = "\u00a0";
+    for (const id of ["en-band", "wf-info", "tr-src"]) $(id).textContent = "";
+    $("detail").removeAttribute("data-loaded");
+    state.spectrum = state.envelope = state.waveform = state.trend = null;
+  }
+
   function select(id) {
+    if (id !== state.selected) clearPanels();
     state.selected = id;
     history.replaceState(null, "", `#${encodeURIComponent(id)}`);
     $("detail").hidden = false;
@@ -518,6 +532,11 @@
     loadPoints().then(() => {
       const wanted = decodeURIComponent(location.hash.slice(1));
       if (wanted && state.points.some(p => p.id === wanted)) select(wanted);
+      // the address names the point: typing another one, or going back, chooses it
+      window.addEventListener("hashchange", () => {
+        const id = decodeURIComponent(location.hash.slice(1));
+        if (id !== state.selected && state.points.some(p => p.id === id)) select(id);
+      });
       document.body.setAttribute("data-ready", "true");
       connectEvents();
     }).catch(e => console.warn(String(e)));
