@@ -492,9 +492,11 @@ class AlarmLayer:
                 if reason is None:
                     continue
                 value = math.nan  # absent while stopped (orders, bearing families): suppressed all the same
-
-            if reason is None:
+            if math.isfinite(value):  # the latest value is shown, suppressed or not (judging is what suppression stops)
                 self.values[key] = value
+            else:
+                self.values.pop(key, None)
+            if reason is None:
                 tr = self.trends.setdefault(key, deque(maxlen=self.settings.trend_frames))
                 tr.append((t_s, value))
                 if lim.needs_baseline:

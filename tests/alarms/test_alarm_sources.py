@@ -337,3 +337,41 @@ async def test_operator_actions_during_an_outage_take_the_time_of_the_action(sho
         assert layer.snapshot(POINTS[1])["alarms"][0]["shelved_until_s"] == pytest.approx(acted + 120.0)
     finally:
         await layer.stop()
+
+
+async def test_a_suppressed_alarm_shows_the_latest_value(short_tmp: Path) -> None:
+    # Suppression stops the judging, not the measuring (ISA-18.2 suppressed-by-design: the alarm is not annunciated;
+    # the process value stays visible).  ISO 20816-3 group 2 rigid B/C 2.8 mm/s (FIELD_NOTES §1).
+    import dataclasses
+    import json
+
+    from alarmkit import small_config
+
+    from edgevib.pipelines.machine_state import MachineState
+
+    layer = AlarmLayer(small_config(short_tmp, limits={"imbalance_1x_mm_s": {"alert": 1.4, "danger": 2.8}}))
+    await layer.start()
+    try:
+        running = MachineState(state="running", since_s=0.0)
+        stopped = MachineState(state="stopped", since_s=T0 + 10.0)
+        starting = MachineState(state="starting", since_s=T0 + 20.0)
+        for i in range(3):
+            r = frame_result("P-101-DE-H", "P-101", T0 + i, 3.0, seed=i, orders_mm_s={"1x": 2.0})
+            await layer.on_frames([dataclasses.replace(r, machine_state=running)])
+        for i, v in enumerate([0.05, 0.03]):
+            r = frame_result("P-101-DE-H", "P-101", T0 + 10.0 + i, v, seed=9, orders_mm_s={})
+            await layer.on_frames([dataclasses.replace(r, machine_state=stopped)])
+        rows = {a["indicator"]: a for a in layer.snapshot()["alarms"]}
+        assert rows["velocity_rms_mm_s"]["suppressed"] == "machine-stopped"
+        assert rows["velocity_rms_mm_s"]["value"] == pytest.approx(0.03)  # the latest frame's, not the first's
+        assert rows["imbalance_1x_mm_s"]["value"] is None  # absent while standing, not a stale running value
+        for i, v in enumerate([0.8, 1.6]):
+            r = frame_result("P-101-DE-H", "P-101", T0 + 20.0 + i, v, seed=9, orders_mm_s={"1x": v / 2})
+            await layer.on_frames([dataclasses.replace(r, machine_state=starting)])
+        _topic, body = layer.state_messages()["P-101-DE-H"]
+        alarms = json.loads(body)["alarms"]
+        assert alarms["velocity_rms_mm_s"]["value"] == pytest.approx(1.6)
+        assert alarms["imbalance_1x_mm_s"]["value"] == pytest.approx(0.8)
+        assert alarms["velocity_rms_mm_s"]["suppressed"] is not None  # still not judged in the start-up
+    finally:
+        await layer.stop()
