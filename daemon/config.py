@@ -830,6 +830,16 @@ class PointLimits(_Table):
             out[name] = fixed
         return out
 
+    @model_serializer(mode="wrap")
+    def _verdicts_as_written(self, handler: SerializerFunctionWrapHandler) -> dict[str, Any]:
+        """A verdict limit prints as the file gives it (``alert = true`` / ``danger = true``), not as its internal
+        level 0.5, so a printed configuration loads back."""
+        out: dict[str, Any] = handler(self)
+        for name, table in out.items():
+            if name.endswith("_detected") and isinstance(table, dict):
+                out[name] = {k: (True if k in ("alert", "danger") and v is not None else v) for k, v in table.items()}
+        return out
+
     @model_validator(mode="after")
     def _indicators(self) -> PointLimits:
         from edgevib.daemon.indicators import LIMITABLE

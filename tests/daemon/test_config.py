@@ -234,6 +234,22 @@ def test_emitted_configuration_loads_back_the_same(scenario: str, tmp_path: Path
         _round_trips(path, tmp_path)
 
 
+def test_verdict_limits_print_as_written_and_load_back(tmp_path: Path) -> None:
+    # check-config prints what the file would say: a verdict limit is `alert = true` / `danger = true` (README
+    # "Per-point limits"); its internal level 0.5 printed as a number would not load back (issue 13 §6 round trip)
+    doc = base()
+    doc["points"][0]["limits"] = {"bearing_bpfo_detected": {"alert": True},
+                                  "bearing_bsf_detected": {"danger": True, "on_delay_frames": 3}}
+    path = _written(doc, tmp_path)
+    _round_trips(path, tmp_path)
+    printed = tomllib.loads(dump_toml(config_to_document(load_config(path))))
+    limits = printed["points"][0]["limits"]
+    assert limits["bearing_bpfo_detected"]["alert"] is True and "danger" not in limits["bearing_bpfo_detected"]
+    assert limits["bearing_bsf_detected"]["danger"] is True and "alert" not in limits["bearing_bsf_detected"]
+    again = parse_config(printed)
+    assert again.alarm_settings.limits == load_config(path).alarm_settings.limits
+
+
 def test_empty_file_is_an_error(tmp_path: Path) -> None:
     for text in ("", "# only a comment\n\n"):
         f = tmp_path / "empty.toml"
