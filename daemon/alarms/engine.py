@@ -94,7 +94,9 @@ SUPPRESSION: dict[str, str] = {"stopped": "machine-stopped", "starting": "start-
 NO_DATA_START_S = 30.0  # allowance after start (and after a source returns) before a silent point counts
 SOURCE_CONNECT_GRACE_S = 10.0  # a source not connected this long after start is announced down
 HISTORY_LIMIT_MAX = 1000
-RELAPSE_WINDOW_S = 120.0  # a sensor fault back within this time of clearing doubles, triples… the re-arm delay
+RELAPSE_WINDOW_S = 120.0  # a sensor fault back within this time of clearing (or twice its last hold) is a relapse
+RELAPSE_HOLD_S = 30.0  # after a relapse a fault clears only after this long healthy, doubled by each further relapse
+RELAPSE_HOLD_MAX_S = 3600.0
 _DISCLAIMER = "edgevib monitors and advises; it is not a protection system."
 _FAULT_HINT = {
     "overall": "An overall level sums every vibration source the sensor picks up: look at the narrow-band "
@@ -527,7 +529,8 @@ class AlarmLayer:
             self._sensor_event(pid, r.machine_id, "cleared", "no-data", "frames arrive again", r.t_end_ns, pend)
         if h is not None and h.fault is not None:
             if s.fault is None:
-                recent = s.since_s is not None and t_s - s.since_s < RELAPSE_WINDOW_S
+                window = max(RELAPSE_WINDOW_S, 2.0 * self._relapse_hold_s(s.relapses))
+                recent = s.since_s is not None and t_s - s.since_s < window
                 s = replace(s, fault=h.fault, detail=h.detail, since_s=t_s, healthy_run=0,
                             relapses=min(s.relapses + 1, 9) if recent else 0)
                 self._sensor_event(pid, r.machine_id, "raised", h.fault, h.detail, r.t_end_ns, pend)
@@ -535,13 +538,24 @@ class AlarmLayer:
                 s = replace(s, healthy_run=0, detail=h.detail if h.fault == s.fault else s.detail)
         elif h is not None and s.fault is not None:
             run = s.healthy_run + 1
-            if run >= self.settings.sensor_recover_frames * (1 + s.relapses):
+            if run >= self._recover_frames(pid, s.relapses):
                 self._sensor_event(pid, r.machine_id, "cleared", s.fault, f"{run} healthy frames", r.t_end_ns, pend)
                 s = replace(s, fault=None, detail="", since_s=t_s, healthy_run=0)
             else:
                 s = replace(s, healthy_run=run)
         self.sensors[pid] = pend.sensors[pid] = s
         return s
+
+    @staticmethod
+    def _relapse_hold_s(relapses: int) -> float:
+        """Healthy time a relapsing sensor fault needs before it clears (0 for a first fault)."""
+        return 0.0 if relapses <= 0 else min(RELAPSE_HOLD_MAX_S, RELAPSE_HOLD_S * 2.0 ** (relapses - 1))
+
+    def _recover_frames(self, pid: str, relapses: int) -> int:
+        """Consecutive healthy frames before a sensor fault clears: ``sensor_recover_frames``, and after a relapse
+        at least the relapse hold (30 s, 60 s, 120 s … up to 1 h) of frames, so an intermittent fault stays raised."""
+        hold_s = self._relapse_hold_s(relapses)
+        return max(int(self.settings.sensor_recover_frames), math.ceil(hold_s / self._frame_period_s(pid)))
 
     # ------------------------------------------------------------------------------------------ events
 

@@ -49,7 +49,7 @@ def alarm_events(events: list[dict[str, Any]], point: str | None = None) -> list
 async def test_sensor_faults_give_sensor_events_only(sim_config: Any) -> None:
     _, cfg, frames = sim_config("sensor-faults", extra={"alarms": {"startup_grace_s": 0.0}}, limits=IMPACT_LIMITS)
     layer = AlarmLayer(cfg)
-    events = await run_sim(layer, frames, 30.0)
+    events = await run_sim(layer, frames, 75.0)
     raised = [e for e in alarm_events(events) if e["data"]["transition"] in ("raised", "escalated")]
     assert raised == []
     first = {}
@@ -64,8 +64,12 @@ async def test_sensor_faults_give_sensor_events_only(sim_config: Any) -> None:
     assert first.get("M-301-NDE-H") in ("bias", "clipping", "dc-step")
     assert first.get("M-301-NDE-V") == "spikes"
     assert "M-301-REF-H" not in first
-    # The intermittent cable fault does not chatter: each relapse lengthens the re-arm delay.
-    assert sum(1 for e in events if e["type"] == SENSOR_TYPE and e["data"]["point"] == "M-301-NDE-H") <= 8
+    # The intermittent faults do not chatter: once a fault relapses it clears only after 30 s healthy (then 60 s,
+    # …), which a cable with an episode a second never gives: raised, perhaps cleared, raised again and kept.
+    for flaky in ("M-301-NDE-H", "M-301-NDE-V"):
+        sensor_events = [e["data"]["transition"] for e in events if e["type"] == SENSOR_TYPE
+                         and e["data"]["point"] == flaky]
+        assert len(sensor_events) <= 3 and sensor_events[-1] == "raised", (flaky, sensor_events)
     assert layer.state_text("M-301-DE-H") == "sensor: flatline" and layer.state_text("M-301-REF-H") == "normal"
 
 
