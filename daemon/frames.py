@@ -277,6 +277,7 @@ class BlockIngest:
         for p in config.points:
             self.stats.frames_analysed.setdefault(p.id, 0)
             self.stats.frames_dropped.setdefault(p.id, 0)
+            self.stats.analysis_errors.setdefault(p.id, 0)  # labelled counters start at 0 (Prometheus practice)
 
     # -- Ingest protocol
 

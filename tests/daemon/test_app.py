@@ -200,19 +200,24 @@ async def test_analysis_error_is_counted_not_fatal(tmp_path: Path) -> None:
     def boom(x: Any, plan: Any, shaft: Any) -> Any:
         raise ValueError("numerical trouble")
 
-    d = Daemon(cfg, registry=CollectorRegistry(), serve_metrics=False, sources=[src], analyze=boom)
+    registry = CollectorRegistry()
+    d = Daemon(cfg, registry=registry, serve_metrics=False, sources=[src], analyze=boom)
     src.ingest = d.ingest
     await d.start()
     try:
+        # Labelled counters exist at 0 from the start, so rate()/increase() see the first error (Prometheus
+        # instrumentation practice: initialise the label values you know of).
+        assert d.stats.analysis_errors == {p.id: 0 for p in cfg.points}
+        assert registry.get_sample_value("edgevib_analysis_errors_total", {"point": "P-101-DE-H"}) == 0.0
         # 4 blocks of 4096 make one 16384-sample frame; 2 more (one hop of 8192), one more frame: each one counted
         for seq in range(4):
             d.ingest.block("scripted", sine_block("QL-P101-DE-H", seq, 1.0, 50.0), 0)
         await wait_for(lambda: d.stats.analysis_errors.get("P-101-DE-H", 0) >= 1 and d.idle)
-        assert d.stats.analysis_errors == {"P-101-DE-H": 1}
+        assert d.stats.analysis_errors == {p.id: int(p.id == "P-101-DE-H") for p in cfg.points}
         for seq in range(4, 6):  # the daemon keeps taking blocks after a failed analysis
             d.ingest.block("scripted", sine_block("QL-P101-DE-H", seq, 1.0, 50.0), 0)
         await wait_for(lambda: d.stats.analysis_errors.get("P-101-DE-H", 0) >= 2 and d.idle)
-        assert d.stats.analysis_errors == {"P-101-DE-H": 2}
+        assert d.stats.analysis_errors == {p.id: 2 * int(p.id == "P-101-DE-H") for p in cfg.points}
         assert d.stats.frames_analysed["P-101-DE-H"] == 0 and not d.latest
         assert d.stats.blocks_received["scripted"] == 6 and not d.stats.blocks_rejected
     finally:
