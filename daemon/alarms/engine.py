@@ -606,7 +606,10 @@ class AlarmLayer:
                           "The sensor signal looks healthy again; machine alarms of this point are re-armed."}
         self._emit(SENSOR_TYPE, point, machine, data, t_ns, pend, history=("sensor", fault))
         self._count("sensor-fault" if raised else "sensor-recovered")
-        log.warning("sensor fault" if raised else "sensor recovered", point=point, fault=fault, detail=detail)
+        if raised:
+            log.warning("sensor fault", point=point, fault=fault, detail=detail)
+        else:  # good news: information, not a warning
+            log.info("sensor recovered", point=point, fault=fault, detail=detail)
 
     def _baseline_event(self, r: FrameResult | None, lim: LimitConfig, b: Baseline, transition: str, by: str | None,
                         pend: _Pending) -> None:

@@ -16,6 +16,7 @@ from typing import Any
 
 import numpy as np
 import pytest
+import structlog.testing
 from alarmkit import frame_result, small_config
 from prometheus_client import CollectorRegistry
 from scipy.io import wavfile
@@ -49,7 +50,10 @@ def alarm_events(events: list[dict[str, Any]], point: str | None = None) -> list
 async def test_sensor_faults_give_sensor_events_only(sim_config: Any) -> None:
     _, cfg, frames = sim_config("sensor-faults", extra={"alarms": {"startup_grace_s": 0.0}}, limits=IMPACT_LIMITS)
     layer = AlarmLayer(cfg)
-    events = await run_sim(layer, frames, 75.0)
+    with structlog.testing.capture_logs() as logs:
+        events = await run_sim(layer, frames, 75.0)
+    levels = {(e["event"], e["log_level"]) for e in logs if e["event"].startswith("sensor ")}
+    assert levels == {("sensor fault", "warning"), ("sensor recovered", "info")}  # recovery is no warning
     raised = [e for e in alarm_events(events) if e["data"]["transition"] in ("raised", "escalated")]
     assert raised == []
     first = {}
