@@ -20,6 +20,7 @@ import argparse
 import contextlib
 import getpass
 import json
+import math
 import os
 import re
 import sys
@@ -115,7 +116,11 @@ def _request(args: argparse.Namespace) -> dict[str, Any]:
         req["indicator"] = args.indicator
     if cmd == "shelve":
         req["reason"] = args.reason
-        req["duration_s"] = 3600.0 * args.hours if args.hours is not None else 60.0 * args.minutes
+        flag, amount, unit_s = ("--hours", args.hours, 3600.0) if args.hours is not None else \
+            ("--minutes", args.minutes, 60.0)
+        if not (math.isfinite(amount) and amount > 0):
+            raise _BadArgument(f"{flag} {amount:g} must be a duration > 0")
+        req["duration_s"] = unit_s * amount
     if cmd == "history":
         if not 1 <= args.limit <= 1000:
             raise _BadArgument(f"--limit {args.limit} must be 1..1000")
@@ -149,6 +154,8 @@ def _machine_text(pt: dict[str, Any]) -> str:
     from edgevib.daemon.alarms.control import human_duration
 
     state = str(pt.get("machine_state") or "unknown")
+    if pt.get("source_state") == "down":  # no data: the machine's state now is not known
+        return f"unknown (stale, last {state})"
     left = pt.get("start_up_grace_left_s")
     if state == "starting" and isinstance(left, int | float):
         return f"starting (grace {human_duration(left)} left)"
@@ -178,7 +185,7 @@ _RANK = {"danger": 0, "alert": 1, "normal": 2}
 
 def _print_list(result: dict[str, Any]) -> None:
     points = result.get("points", {})
-    rows = [("POINT", "MACHINE", "INDICATOR", "STATE", "SEVERITY", "VALUE", "ALERT", "DANGER", "NOTE")]
+    rows = [("POINT", "MACHINE STATE", "INDICATOR", "STATE", "SEVERITY", "VALUE", "ALERT", "DANGER", "NOTE")]
     alarms = sorted(result.get("alarms", []), key=lambda a: (a["point"], _RANK.get(a["severity"], 3)))
     for a in alarms:
         pt = points.get(a["point"], {})

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import asyncio
 import json
+import re
 import stat
 from pathlib import Path
 from typing import Any
@@ -206,3 +207,27 @@ def test_json_is_accepted_before_and_after_the_action(argv: list[str]) -> None:
     configure_alarms(parser)
     assert parser.parse_args(argv).json is True
     assert parser.parse_args([a for a in argv if a != "--json"]).json is False
+
+
+def test_list_heads_the_machine_state_and_marks_it_unknown_while_the_source_is_down(
+        capsys: pytest.CaptureFixture[str]) -> None:
+    from edgevib.daemon.alarmctl import _print_list
+
+    alarm = {"point": "P-101-DE-H", "indicator": "velocity_rms_mm_s", "state": "unacknowledged", "severity": "danger",
+             "value": 5.0, "alert": 2.8, "danger": 4.5, "stale": "source-down"}  # ISO 20816-3 group 2 rigid
+    point = {"machine": "P-101", "machine_state": "running", "source": "plant", "source_state": "down",
+             "time": "2026-12-02T09:43:18Z", "alarm_text": "DANGER velocity_rms_mm_s (stale: source-down)"}
+    _print_list({"alarms": [alarm], "points": {"P-101-DE-H": point}, "sensors": {},
+                 "sources": {"plant": {"state": "down", "since_s": 1_796_204_601.0, "reason": "connection lost"}}})
+    header, row = capsys.readouterr().out.splitlines()[:2]
+    assert re.split(r"\s{2,}", header)[1] == "MACHINE STATE"
+    assert "unknown (stale, last running)" in row and "stale: source-down" in row
+
+
+def test_shelve_duration_errors_name_the_users_units(short_tmp: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    base = ["alarms", "--state-dir", str(short_tmp), "shelve", "P-101-DE-H", "--reason", "x"]
+    assert main([*base, "--hours", "0"]) == 2
+    assert main([*base, "--minutes", "-5"]) == 2
+    err = capsys.readouterr().err
+    assert "--hours 0 must be a duration > 0" in err and "--minutes -5 must be a duration > 0" in err
+    assert "duration_s" not in err
