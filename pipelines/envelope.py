@@ -57,6 +57,13 @@ Defect families (FTF, BPFO, BPFI and, for a rolling-element defect, **2 × BSF**
    with that family by the significant lines each has that the other does not: the one with more evidence keeps
    its verdict, the other is reported as ambiguous (not detected), naming the family that explains its line.
    Ties leave the challenger ambiguous.
+8. *Modulation.*  A family that is another family's modulation frequency — FTF, the sideband spacing of 2 × BSF
+   (the element travels with the cage through the load zone; a ball fault's envelope spectrum shows FTF and
+   2 × BSF ± FTF, Randall & Antoni 2011) — whose detected fundamental lies (± 1 line) at the spacing of a counted
+   ± 1 × sideband of that family (its fundamental significant), and every counted harmonic h of which lies at the
+   spacing of a counted ± h × sideband, is that family's modulation: one defect, so it is reported as ambiguous
+   with that family, not detected twice.  A line the other pattern does not explain (e.g. 3 × FTF, beyond the
+   ± 2 × sidebands examined) is evidence of its own, and the verdict stands.
 
 ``snr_db`` is 10·log10 of the line's SES level over the estimated local mean level (the statistic ``T`` of
 :mod:`edgevib.pipelines.detection`).
@@ -489,6 +496,12 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     beaten = detected[:, :, None] & on_other & significant[:, None, :] & (unique_b >= unique_a)
     ambiguous = beaten.any(axis=-1)
     ambiguous_with = np.where(ambiguous, np.argmax(beaten, axis=-1), -1)
+    # 6. modulation: a family whose fundamental is another family's sideband spacing (FTF for 2 × BSF) and whose
+    # counted lines are all that family's found sidebands' spacings is its modulation, not a defect of its own
+    carried = _modulation_explains(index, found, significant, expected_hz, modulation_hz, slots - harmonics)
+    modulated = detected[:, :, None] & carried & ~ambiguous[:, :, None]
+    ambiguous_with = np.where(modulated.any(axis=-1), np.argmax(modulated, axis=-1), ambiguous_with)
+    ambiguous |= modulated.any(axis=-1)
     if gaps is not None:
         gap, shaft_order = gaps
         shaft_near = shaft.found[:, shaft_order - 1] & established  # (c, A)
@@ -508,6 +521,47 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     return FamilySearch(lines=lines, slots=slots, expected_lines=centres, amplitude_g=amp, depth=depth,
                         significant=significant, detected=detected & ~ambiguous, ambiguous_with=ambiguous_with,
                         shaft=shaft, shaft_established=established)
+
+
+def _modulation_explains(index: IntArray, found: BoolArray, significant: BoolArray, expected_hz: FloatArray,
+                         modulation_hz: FloatArray, n_sidebands: int) -> BoolArray:
+    """Whether family A's lines are family B's modulation (step 8 of the module docstring).
+
+    Parameters
+    ----------
+    index, found : shape (channels, families, slots) — the family search's lines (slots: fundamental, harmonics
+        2 … H, then the sidebands at :data:`SIDEBAND_ORDERS`)
+    significant : shape (channels, families) — fundamentals that are significant local maxima
+    expected_hz, modulation_hz : shape (channels, families)
+    n_sidebands : number of sideband slots (the last ones)
+
+    Returns
+    -------
+    bool ndarray, shape (channels, A, B): B's modulation frequency is A's kinematic frequency (FTF for 2 × BSF), B's
+    fundamental is significant, A's fundamental is counted and lies (± 1 line) at the spacing of a counted sideband
+    of B of order ± 1, and every counted line of A (harmonic h at a counted sideband of order ± h; sidebands of A
+    never) is explained so: A has no evidence B lacks.
+    """
+    c, nf, slots = index.shape
+    harmonics = slots - n_sidebands
+    with np.errstate(invalid="ignore"):
+        carried = (np.isfinite(modulation_hz)[:, None, :]
+                   & (np.abs(modulation_hz[:, None, :] - expected_hz[:, :, None])
+                      <= 1e-9 * np.abs(expected_hz[:, :, None])))  # (c, A, B)
+    carried &= ~np.eye(nf, dtype=bool)[None] & significant[:, None, :] & found[:, :, None, 0]
+    k_b = index[:, :, 0]
+    explained = np.zeros((c, nf, nf, harmonics), dtype=bool)
+    for h in range(1, harmonics + 1):
+        k_a = index[:, :, h - 1]  # slot 0 is the fundamental, slot h − 1 harmonic h
+        for j, order in enumerate(SIDEBAND_ORDERS):
+            if abs(order) != h:
+                continue
+            sb = index[:, :, harmonics + j]
+            spacing = np.where(found[:, :, harmonics + j] & (k_b >= 0), np.abs(sb - k_b), -10)  # (c, B)
+            explained[..., h - 1] |= found[:, :, None, h - 1] & (np.abs(spacing[:, None, :] - k_a[:, :, None]) <= 1)
+    own = (found[:, :, None, :harmonics] & ~explained).any(axis=-1) | found[:, :, None, harmonics:].any(axis=-1)
+    out: BoolArray = np.asarray(carried & explained[..., 0] & ~own)
+    return out
 
 
 def shaft_series_established(shaft: LineSearch, candidate: IntArray) -> BoolArray:

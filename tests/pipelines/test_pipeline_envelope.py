@@ -367,6 +367,51 @@ def test_coinciding_families_more_evidence_wins() -> None:
     assert r.envelope_detected == ("bpfo",)
 
 
+def _ball_fault(shaft: float, cage_fault: float = 0.0) -> np.ndarray:
+    # a rolling-element defect in the envelope domain: a 2 × BSF series (the element strikes both races) whose
+    # strength is modulated at FTF as the element travels with the cage through the load zone (Randall & Antoni,
+    # MSSP 25 (2011) 485–520); with ``cage_fault`` a cage defect's own FTF series (three harmonics) on top
+    m = defect_multiples(B6205)
+    fb, fc = 2 * m.bsf_hz * shaft, m.ftf_hz * shaft
+    env = (1 + 0.6 * np.cos(2 * np.pi * fc * T)) * (1 + 0.5 * np.cos(2 * np.pi * fb * T)
+                                                      + 0.3 * np.cos(2 * np.pi * 2 * fb * T)
+                                                      + 0.2 * np.cos(2 * np.pi * 3 * fb * T))
+    env += cage_fault * sum(np.cos(2 * np.pi * h * fc * T) / h for h in (1, 2, 3))
+    return env * np.sin(2 * np.pi * 6000 * T) + RNG.normal(0, 0.05, N)
+
+
+def test_the_cage_modulation_of_a_ball_fault_is_not_a_cage_fault() -> None:
+    # the FTF line of a ball fault is the modulation that gives 2 × BSF its ± FTF sidebands (Randall & Antoni
+    # 2011): one defect, not two — FTF is ambiguous with 2 × BSF unless it has lines the 2 × BSF pattern lacks
+    shaft = 29.93
+    plan = make_plan(FS, N, envelope_band_hz=(4000.0, 9000.0), bearing=B6205)
+    r = analyze_frames(_ball_fault(shaft), plan, shaft)[0]
+    ftf, bsf = r.envelope["ftf"], r.envelope["bsf"]
+    assert bsf.detected and bsf.sidebands_found >= 2
+    assert ftf.snr_db is not None and ftf.threshold_db is not None and ftf.snr_db > ftf.threshold_db  # a real line
+    assert not ftf.detected and ftf.ambiguous_with == "bsf"
+    assert r.envelope_detected == ("bsf",)
+    # a cage defect of its own (its third harmonic, which no 2 × BSF sideband explains) keeps its verdict
+    r = analyze_frames(_ball_fault(shaft, cage_fault=0.5), plan, shaft)[0]
+    assert r.envelope["ftf"].harmonics_found == 3
+    assert r.envelope_detected == ("ftf", "bsf")
+
+
+def test_the_simulated_rolling_element_fault_is_one_fault() -> None:
+    # the simulator's rolling-element fault (bearings scenario, B-403-DE-H: 6205-size geometry, 2960 r/min): its
+    # impacts at 2 × BSF are modulated at FTF, so FTF shows too; the verdict is 2 × BSF alone (Randall & Antoni 2011)
+    from edgevib.simulator.engine import Simulation, load_scenario
+
+    sim = Simulation(load_scenario("bearings"), seed=0)
+    n = 98304
+    x = sim.record("B-403-DE-H", n // 8192)[:n]  # 8192-sample blocks: the 3.84 s analyze reads from a 4 s WAV
+    plan = make_plan(25600.0, n, envelope_band_hz=(2500.0, 10000.0), bearing=BearingGeometry(9, 7.94, 39.04, 0.0))
+    r = analyze_frames(x, plan, shaft_hz=[2960.0 / 60.0])[0]
+    assert r.envelope["bsf"].detected and r.envelope["bsf"].sidebands_found >= 2
+    assert r.envelope["ftf"].ambiguous_with == "bsf"
+    assert r.envelope_detected == ("bsf",)
+
+
 def test_unresolved_families_withhold_their_verdict() -> None:
     # at 10 Hz resolution (0.1 s at 25.6 kHz) BPFO (3.585 ×) lies 0.5 line from BPFI − 2× (3.415 ×) at 30 Hz:
     # an inner-race fault with strong ±2× sidebands could not be told from an outer-race one; neither is called
