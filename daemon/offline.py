@@ -42,6 +42,7 @@ from edgevib.pipelines.analysis import (
 )
 from edgevib.pipelines.bearings import defect_frequencies, validate_geometry
 from edgevib.pipelines.conditioning import to_g
+from edgevib.pipelines.envelope import DEPTH_NOISE_RMS
 from edgevib.pipelines.kurtogram import select_band_for
 from edgevib.pipelines.severity import iso_zone, zone_boundaries_mm_s
 from edgevib.pipelines.types import BearingGeometry, FrameIndicators, PipelineError
@@ -467,6 +468,8 @@ def _analyze(args: argparse.Namespace) -> tuple[dict[str, Any], list[str]]:
     wave = read_waveform(args.file, var=args.var, channel=opts.channel, column=args.column,
                          full_scale=opts.full_scale, fs_var=args.fs_var, rpm_var=args.rpm_var,
                          shaft_hz_var=args.shaft_hz_var)
+    if wave.warning:
+        warnings.append(wave.warning)
     fs, fs_source = _sample_rate(args, wave, warnings)
     x_g = _samples_g(args, wave.samples, opts.unit)
     n = int(x_g.size)
@@ -506,6 +509,7 @@ def _analyze(args: argparse.Namespace) -> tuple[dict[str, Any], list[str]]:
         "envelope": _envelope_document(ind, values, band, band_source, selection),
         "iso_zone": None,
         "false_alarm": opts.alpha,
+        "min_depth": plan.min_depth,
         "notes": notes,
         "warnings": warnings,
     }
@@ -556,13 +560,29 @@ def _fmt(value: float | None, spec: str, unit: str = "") -> str:
     return f"{value:{spec}}{' ' + unit if unit else ''}"
 
 
-def _family_line(name: str, f: dict[str, Any]) -> str:
+def _not_detected(f: dict[str, Any], min_depth: float) -> str:
+    """Why a family with a local maximum is not detected (the verdict's two tests, edgevib.pipelines.envelope)."""
+    snr, thr, depth = f["snr_db"], f["threshold_db"], f["depth"]
+    if snr is None or thr is None or not snr >= thr:
+        return "not detected (SNR below its threshold)"
+    if depth is None or not math.isfinite(depth):
+        return "not detected"
+    if depth < min_depth:
+        return f"not detected (depth below {min_depth:g})"
+    sure = depth * (1.0 - DEPTH_NOISE_RMS / math.sqrt(10.0 ** (snr / 10.0)))
+    if sure < min_depth:
+        return f"not detected (depth below {min_depth:g} once the line's noise is allowed for)"
+    return "not detected"
+
+
+def _family_line(name: str, f: dict[str, Any], min_depth: float) -> str:
     label = FAMILY_LABELS[name]
     head = f"  {label:<6} expected {f['expected_hz']:8.2f} Hz  "
     if f["frequency_hz"] is None:
         return head + "no local maximum within the slip window              not detected"
     verdict = "DETECTED" if f["detected"] else (
-        f"ambiguous ({f['ambiguous_with']} explains the line)" if f["ambiguous_with"] else "not detected")
+        f"ambiguous ({FAMILY_LABELS.get(f['ambiguous_with'], f['ambiguous_with'])} explains the line)"
+        if f["ambiguous_with"] else _not_detected(f, min_depth))
     return (head + f"found {f['frequency_hz']:8.2f} Hz  {f['amplitude_g']:.4f} g  SNR {f['snr_db']:5.1f} dB "
             f"(needs {_fmt(f['threshold_db'], '.1f')})  depth {_fmt(f['depth'], '.2f')}  harmonics "
             f"{f['harmonics_found']}  sidebands {f['sidebands_found']}  {verdict}")
@@ -628,7 +648,7 @@ def _text_report(r: dict[str, Any]) -> str:
         if not found:
             out.append("  no defect families (needs --bearing and a known shaft speed)")
         for name in found:
-            out.append(_family_line(name, env[name]))
+            out.append(_family_line(name, env[name], r["min_depth"]))
         if found:
             out.append("  detected: " + (", ".join(FAMILY_LABELS[n] for n in env["detected"]) or "none"))
     out += _other_indicators(r)

@@ -55,6 +55,7 @@ class Waveform:
     source: str = ""  # what was read, e.g. "variable X130_DE_time" or "column 4 of 6"
     rpm_source: str = ""  # where the speed came from, e.g. "file variable X130RPM"
     fs_source: str = ""  # where the sample rate came from
+    warning: str = ""  # one line on a doubtful choice the caller made, e.g. a monotonic column chosen explicitly
 
 
 # --------------------------------------------------------------------------------------------- shared
@@ -191,7 +192,12 @@ def _read_csv(path: Path, column: str | None) -> Waveform:
                              f"like a time axis); choose one with --column NAME|INDEX; columns: {listing}")
         j = candidates[0]
     which = f"column {label(j)} of {width}" if width > 1 or names[j] else "column 0 of 1"
-    return Waveform(data[:, j].copy(), None, source=which)
+    warning = ""
+    if column is not None and kinds[j]:
+        like = "like a time axis or counter" if kinds[j] == "monotonic" else "it carries no vibration"
+        warning = (f"--column {column} chose column {label(j)}, which is {kinds[j]} ({like}); analysed as asked; "
+                   f"columns: {listing}")
+    return Waveform(data[:, j].copy(), None, source=which, warning=warning)
 
 
 # --------------------------------------------------------------------------------------------- MATLAB

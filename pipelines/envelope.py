@@ -85,6 +85,7 @@ from edgevib.pipelines.spectrum import band_lines, hann_lines
 from edgevib.pipelines.types import PlanError
 
 __all__ = [
+    "DEPTH_NOISE_RMS",
     "MIN_LINE",
     "SHAFT_HARMONICS",
     "SHAFT_TOLERANCE",

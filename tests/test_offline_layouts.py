@@ -131,6 +131,20 @@ def test_a_time_column_alone_is_refused_with_the_columns_listed(tmp_path: Path,
     assert code == 2 and "has no column 'speed'; columns: 0 't' (monotonic)" in err
 
 
+def test_an_explicit_monotonic_column_is_analysed_with_a_one_line_warning(tmp_path: Path,
+                                                                         capsys: pytest.CaptureFixture[str]) -> None:
+    # a time column chosen with --column is analysed as asked, but never silently (issue 15 §5)
+    x = sine(1.0, 80.0, 0.5)
+    path = tmp_path / "m101.csv"
+    path.write_text("time_s;accel_g\n" + "\n".join(f"{i / FS:.6f};{v:.9f}" for i, v in enumerate(x)) + "\n")
+    code, out, err = run(["analyze", str(path), "--fs", str(FS), "--column", "0"], capsys)
+    assert code == 0 and out
+    lines = [ln for ln in err.splitlines() if "warning" in ln]
+    assert len(lines) == 1 and "column 0 'time_s'" in lines[0] and "monotonic" in lines[0], err
+    doc, err = analyze_json([str(path), "--fs", str(FS), "--column", "accel_g"], capsys)
+    assert doc["warnings"] == [] and "monotonic" not in err  # the signal column: no warning
+
+
 def test_femto_snapshots_analyse_without_error(femto_dir: Path, capsys: pytest.CaptureFixture[str]) -> None:
     # datasets README: PRONOSTIA snapshots, 2560 samples (0.1 s) at 25.6 kHz, columns hour, minute, second,
     # microsecond, horizontal and vertical acceleration (g), no header; condition 1 at 1800 r/min.  Every snapshot
@@ -196,6 +210,29 @@ def test_cwru_verdicts_through_the_command(name: str, label: list[str], cwru_dir
         assert env["detected"] == label, (band, env)  # type: ignore[index]
         assert env["band_source"] in (("auto", "default") if band else ("default",))  # type: ignore[index]
         assert doc["shaft_hz_source"] == "file"
+
+
+def test_text_verdicts_say_why_a_found_line_is_not_detected(cwru_dir: Path,
+                                                              capsys: pytest.CaptureFixture[str]) -> None:
+    # the CWRU ball-fault record (datasets README: its lines are weak): every family with a line is "not
+    # detected", and the text names the test it failed — SNR under the threshold, or depth under the minimum 0.3
+    code, out, _ = run(["analyze", str(cwru_dir / "cwru_12k_de_ball_007_0hp.mat"), "--fs", "12000", "--bearing",
+                        CWRU_BEARING], capsys)
+    assert code == 0
+    rows = [ln for ln in out.splitlines() if " found " in ln and "not detected" in ln]
+    assert len(rows) >= 3, out
+    reasons = set()
+    for row in rows:
+        snr = float(row.split("SNR")[1].split("dB")[0])
+        needs = float(row.split("(needs")[1].split(")")[0])
+        depth = float(row.split("depth")[1].split()[0])
+        reason = row.split("not detected")[1].strip()
+        if snr < needs:
+            assert reason == "(SNR below its threshold)", row
+        else:
+            assert depth < 0.3 and reason == "(depth below 0.3)", row
+        reasons.add(reason)
+    assert reasons == {"(SNR below its threshold)", "(depth below 0.3)"}  # both tests show up in this record
 
 
 def test_ambiguous_speed_skips_orders_and_verdicts(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
