@@ -77,6 +77,29 @@ async def test_sensor_faults_give_sensor_events_only(sim_config: Any) -> None:
     assert layer.state_text("M-301-DE-H") == "sensor: flatline" and layer.state_text("M-301-REF-H") == "normal"
 
 
+
+async def test_the_healthy_reference_of_sensor_faults_stays_normal_on_its_emitted_limits(sim_config: Any) -> None:
+    # The scenario's own truth calls its reference point normal; the limits its --emit-config writes (ISO 20816-3
+    # group 2 rigid, 1x alert at 0.5 x B/C = 1.4 mm/s) must agree, or the demo of sensor faults shows a machine alarm.
+    from alarmkit import SimFrames
+
+    from edgevib.daemon.config import parse_config
+
+    sim, cfg, _ = sim_config("sensor-faults")
+    doc = sim.daemon_config(source={"name": "sim", "type": "simulated", "scenario": "sensor-faults"}, limits=True,
+                            frame_samples=8192, overlap=0.0,
+                            extra={"site": {"name": "quarry-lane", "state_dir": str(cfg.site.state_dir)},
+                                   "alarms": {"startup_grace_s": 0.0}})
+    cfg = parse_config(doc, cfg.site.state_dir)
+    frames = SimFrames(sim, cfg)
+    truth = sim.truth(10.0)["points"]["M-301-REF-H"]
+    ref = next(p for p in cfg.points if p.id == "M-301-REF-H")
+    assert truth["expected_state"] == "normal"
+    alert = ref.limits.imbalance_1x_mm_s.alert
+    assert alert.kind == "absolute" and truth["orders_mm_s"]["1"] < 0.9 * alert.value
+    events = await run_sim(AlarmLayer(cfg), frames, 12.0)
+    assert alarm_events(events, "M-301-REF-H") == []
+
 async def test_without_the_health_gate_the_same_faults_would_trip_machine_alarms(sim_config: Any) -> None:
     # Shows that the previous test can fail: with sensor-health checks off, spikes and rail hits raise alarms.
     _, cfg, frames = sim_config("sensor-faults", extra={"alarms": {"startup_grace_s": 0.0,
