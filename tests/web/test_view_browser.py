@@ -178,6 +178,73 @@ def test_spectrum_marks_the_1x_peak_of_the_imbalanced_pump(browser: Any, demo: D
     assert console.errors == []
 
 
+def x_range(page: Any, panel: str) -> tuple[float, float]:
+    lo, hi = page.get_attribute(panel, "data-x-min"), page.get_attribute(panel, "data-x-max")
+    assert lo is not None and hi is not None, f"{panel} shows no x range"
+    return float(lo), float(hi)
+
+
+def drag_zoom(page: Any, panel: str, f0: float, f1: float) -> tuple[float, float]:
+    """Drag across the panel's plot from fraction ``f0`` to ``f1`` of its shown x range; the range it then shows."""
+    lo, hi = x_range(page, panel)
+    box = page.locator(f"{panel} .u-over").bounding_box()
+    y = box["y"] + box["height"] / 2
+    page.mouse.move(box["x"] + box["width"] * f0, y)
+    page.mouse.down()
+    page.mouse.move(box["x"] + box["width"] * (f0 + f1) / 2, y)
+    page.mouse.move(box["x"] + box["width"] * f1, y)
+    page.mouse.up()
+    wait_until(page, lambda: page.get_attribute(panel, "data-zoomed") == "true", f"the zoom of {panel}")
+    zlo, zhi = x_range(page, panel)
+    # the x scale is linear in frequency or time: the dragged fractions of the range, within a few pixels
+    span = hi - lo
+    assert zlo == pytest.approx(lo + f0 * span, abs=0.01 * span)
+    assert zhi == pytest.approx(lo + f1 * span, abs=0.01 * span)
+    return zlo, zhi
+
+
+def test_zoom_survives_live_updates_until_double_click(browser: Any, demo: Demo) -> None:
+    page = browser.new_page()
+    console = Console(page)
+    page.goto(demo.base + "/#P-101-DE-H")
+    page.wait_for_selector('#sp-markers tr[data-marker="1x"]', timeout=20000)
+    for sel in ("#sp-chart", "#en-chart", "#wf-chart", "#tr-chart"):
+        page.wait_for_selector(f"{sel} canvas", timeout=20000)
+    opening = x_range(page, "#panel-spectrum")
+    assert opening[0] == 0.0 and opening[1] > 105.0
+    # spectrum 5–105 Hz (the velocity view opens on 0 … the velocity band's upper edge)
+    zoomed = {"#panel-spectrum": drag_zoom(page, "#panel-spectrum", 5 / opening[1], 105 / opening[1])}
+    assert zoomed["#panel-spectrum"] == pytest.approx((5, 105), abs=2)
+    for panel in ("#panel-envelope", "#panel-waveform", "#panel-trend"):
+        zoomed[panel] = drag_zoom(page, panel, 0.2, 0.6)
+    # log scale and another quantity: the zoom stays
+    page.select_option("#sp-scale", "log")
+    assert x_range(page, "#panel-spectrum") == zoomed["#panel-spectrum"]
+    # live updates: a newer frame is drawn in every panel and the whole page reloaded twice …
+    panels = ("#panel-spectrum", "#panel-envelope", "#panel-waveform")
+    frames = {p: page.get_attribute(p, "data-frame-end") for p in panels}
+    for p, f in frames.items():
+        wait_until(page, lambda p=p, f=f: page.get_attribute(p, "data-frame-end") != f, f"a live update of {p}", 60)
+    for _ in range(2):
+        loaded = page.get_attribute("#detail", "data-loaded")
+        wait_until(page, lambda loaded=loaded: page.get_attribute("#detail", "data-loaded") != loaded, "a refresh", 60)
+    # … and each panel still shows the user's range, with the user's scale choice
+    for panel, rng in zoomed.items():
+        assert page.get_attribute(panel, "data-zoomed") == "true", panel
+        assert x_range(page, panel) == pytest.approx(rng, rel=1e-9), panel
+    assert page.input_value("#sp-scale") == "log"
+    # a double-click resets the spectrum to its opening range, and that stays too
+    page.dblclick("#panel-spectrum .u-over")
+    wait_until(page, lambda: page.get_attribute("#panel-spectrum", "data-zoomed") == "false", "the reset")
+    assert x_range(page, "#panel-spectrum") == pytest.approx(opening)
+    loaded = page.get_attribute("#detail", "data-loaded")
+    wait_until(page, lambda: page.get_attribute("#detail", "data-loaded") != loaded, "a refresh", 60)
+    assert x_range(page, "#panel-spectrum") == pytest.approx(opening)
+    assert page.get_attribute("#panel-envelope", "data-zoomed") == "true"  # the other panels keep theirs
+    page.close()
+    assert console.errors == []
+
+
 def test_envelope_marks_bpfo_on_the_failing_bearing_and_updates_live(browser: Any, demo: Demo) -> None:
     page = browser.new_page()
     console = Console(page)

@@ -10,7 +10,7 @@
                    projFill: "rgba(107, 79, 160, 0.16)", iso: "#5d7378", user: "#2f5d8a",
                    window: "rgba(107, 79, 160, 0.55)", grid: "#e6e0d2" };
   const state = { points: [], selected: null, session: null, charts: {}, spectrum: null, envelope: null,
-                  waveform: null, trend: null, refreshTimer: null, listTimer: null, lastRefresh: 0, report: null };
+                  waveform: null, trend: null, zoom: {}, refreshTimer: null, listTimer: null, lastRefresh: 0, report: null };
 
   // ------------------------------------------------------------------ helpers
   function $(id) { return document.getElementById(id); }
@@ -65,11 +65,40 @@
     ctx.restore();
   }
 
-  function makeChart(key, container, opts, data) {
+  // A chart is rebuilt for every new frame. The user's x range (a drag zoom) is kept per panel across these
+  // rebuilds until a double-click resets it; `initial` is the panel's own opening range when not zoomed.
+  // The panel element carries the shown range (data-x-min/-max) and whether it is the user's (data-zoomed).
+  function makeChart(key, container, opts, data, initial) {
     const old = state.charts[key];
     if (old) old.destroy();
     container.textContent = "";
-    const u = new uPlot(Object.assign({ width: chartWidth(container), height: 240 }, opts), data, container);
+    const panel = container.closest(".panel") || container;
+    const show = u => {
+      const sx = u.scales.x;
+      if (sx.min === null || sx.max === null || sx.min === undefined || sx.max === undefined) return;
+      panel.setAttribute("data-x-min", String(sx.min));
+      panel.setAttribute("data-x-max", String(sx.max));
+      panel.setAttribute("data-zoomed", state.zoom[key] ? "true" : "false");
+    };
+    const hooks = Object.assign({}, opts.hooks || {});
+    // a drag selects a range: that is the user's zoom (uPlot then sets the x scale to it)
+    hooks.setSelect = (hooks.setSelect || []).concat([u => {
+      const sel = u.select;
+      if (!(sel.width > 0)) return;
+      const lo = u.posToVal(sel.left, "x"), hi = u.posToVal(sel.left + sel.width, "x");
+      if (isFinite(lo) && isFinite(hi) && hi > lo) state.zoom[key] = { min: lo, max: hi };
+    }]);
+    hooks.setScale = (hooks.setScale || []).concat([(u, sk) => { if (sk === "x") show(u); }]);
+    const u = new uPlot(Object.assign({ width: chartWidth(container), height: 240 }, opts, { hooks }), data, container);
+    const range = state.zoom[key] || initial;
+    if (range) u.setScale("x", { min: range.min, max: range.max });
+    show(u);
+    // uPlot's own double-click handler autoscales x: forget the zoom, back to the opening range
+    u.over.addEventListener("dblclick", () => {
+      delete state.zoom[key];
+      if (initial) u.setScale("x", { min: initial.min, max: initial.max });
+      show(u);
+    });
     state.charts[key] = u;
     return u;
   }
@@ -108,7 +137,7 @@
           $("sp-read").textContent = `${num(f, 5)} Hz${order}   ${num(a, 4)} ${unit}`;
         }],
       },
-    }, [doc.frequency_hz, y]).setScale("x", { min: 0, max: xmax });
+    }, [doc.frequency_hz, y], { min: 0, max: xmax });
   }
 
   function spectrumTable(doc) {
@@ -276,7 +305,7 @@
     }
     makeChart("trend", $("tr-chart"), {
       // a lone value (a history just begun) gets an hour around it rather than an arbitrary span
-      scales: { x: { time: true, range: (u, lo, hi) => xs.length === 1 ? [xs[0] - 1800, xs[0] + 1800] : [lo, hi] } },
+      scales: { x: { time: true, range: (u, lo, hi) => xs.length === 1 && !(hi > lo) ? [xs[0] - 1800, xs[0] + 1800] : [lo, hi] } },
       axes: [{ grid: { stroke: COLORS.grid } }, { label: unit, grid: { stroke: COLORS.grid }, size: 60 }],
       series, bands, legend: { show: true }, cursor: { drag: { x: true, y: false } },
       hooks: {
@@ -424,6 +453,7 @@
     for (const id of ["en-band", "wf-info", "tr-src"]) $(id).textContent = "";
     $("detail").removeAttribute("data-loaded");
     state.spectrum = state.envelope = state.waveform = state.trend = null;
+    state.zoom = {};
   }
 
   function select(id) {
