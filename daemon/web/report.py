@@ -141,11 +141,23 @@ def build_report(*, title: str, meta: Mapping[str, Any], indicators: Iterable[tu
 """
 
 
+def _umask() -> int:
+    """The process's file-creation mask (read by setting it and putting it straight back)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 def write_report(path: str | os.PathLike[str], text: str) -> Path:
-    """Write ``text`` to ``path`` atomically (a temporary file in the same folder, then a rename)."""
+    """Write ``text`` to ``path`` atomically (a temporary file in the same folder, then a rename).
+
+    The file gets the mode any newly created file gets (0666 less the process umask, e.g. 0644 under umask 022):
+    a report is meant to be shared, not the 0600 of a temporary file.
+    """
     p = Path(path)
     fd, tmp = tempfile.mkstemp(prefix=".edgevib-report-", suffix=".html", dir=p.parent if str(p.parent) else ".")
     try:
+        os.fchmod(fd, 0o666 & ~_umask())
         with os.fdopen(fd, "w", encoding="utf-8") as f:
             f.write(text)
         os.replace(tmp, p)
