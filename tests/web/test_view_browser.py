@@ -245,6 +245,40 @@ def test_zoom_survives_live_updates_until_double_click(browser: Any, demo: Demo)
     assert console.errors == []
 
 
+def test_stale_points_are_greyed_with_their_age_and_the_badge_is_not_live(browser: Any, demo: Demo) -> None:
+    page = browser.new_page()
+    console = Console(page)
+    # the API's answer for P-101 as it reads once its source is down (stale, 18 s old; the API side is
+    # test_web_api.py::test_a_point_without_recent_frames_is_stale_with_its_age); the other points as served
+    def down(route: Any) -> None:
+        resp = route.fetch()
+        doc = resp.json()
+        for p in doc["points"]:
+            if p["id"] == "P-101-DE-H":
+                p.update(stale=True, age_s=18.0, source_state="down")
+        route.fulfill(response=resp, json=doc)
+    page.route(re.compile(r".*/api/v1/points$"), down)
+    page.goto(demo.base + "/#P-102-DE-A")
+    page.wait_for_selector("body[data-ready]", timeout=20000)
+    wait_until(page, lambda: page.inner_text("#live") == "live", "the event stream", 30)
+    assert page.get_attribute("#detail", "data-stale") == "false" and page.is_hidden("#stale-note")
+    card = '#point-list li[data-point="P-101-DE-H"]'
+    assert page.get_attribute(card, "data-stale") == "true" and "stale" in (page.get_attribute(card, "class") or "")
+    assert re.search(r"last data \d+ s ago · source down", page.inner_text(card)), page.inner_text(card)
+    assert page.get_attribute(f"{card} .zone", "data-dim") == "true"
+    assert page.get_attribute('#point-list li[data-point="P-102-DE-A"]', "data-stale") == "false"
+    # choosing the stale point: its panels are greyed, the age is stated and the badge does not say "live"
+    page.click(card)
+    wait_until(page, lambda: page.get_attribute("#detail", "data-stale") == "true", "the stale point's view")
+    assert "stale" in (page.get_attribute("#detail", "class") or "")
+    note = page.inner_text("#stale-note")
+    assert re.search(r"Not current: last data \d+ s ago \(frame of .+Z\); its source is down", note), note
+    assert page.inner_text("#live").startswith("stale: last data")
+    assert "on" not in (page.get_attribute("#live", "class") or "").split()
+    page.close()
+    assert console.errors == []
+
+
 def test_envelope_marks_bpfo_on_the_failing_bearing_and_updates_live(browser: Any, demo: Demo) -> None:
     page = browser.new_page()
     console = Console(page)

@@ -102,6 +102,23 @@ async def test_points_list_every_point_with_state_and_units(demo: Running) -> No
     assert mems["envelope_band_hz"] is None and mems["envelope_note"]
 
 
+async def test_a_point_without_recent_frames_is_stale_with_its_age(demo: Running) -> None:
+    view = demo.daemon.view
+    assert view is not None
+    code, doc = await demo.get("/api/v1/points/P-101-DE-H")
+    assert code == 200 and doc["stale"] is False and 0 <= doc["age_s"] < 10
+    # 60 s later by the view's clock without a newer frame: stale (older than max(10 s, 5 frame periods)), with
+    # its age and the time of its last frame
+    real = view.clock_ns
+    view.clock_ns = lambda: real() + 60_000_000_000
+    try:
+        code, doc = await demo.get("/api/v1/points")
+    finally:
+        view.clock_ns = real
+    p101 = next(p for p in doc["points"] if p["id"] == "P-101-DE-H")
+    assert p101["stale"] is True and p101["age_s"] >= 60 and p101["frame_end"].endswith("Z")
+
+
 async def test_spectrum_lines_match_the_simulators_truth(demo: Running) -> None:
     truth = Simulation(load_scenario("demo"), seed=0).truth(10.0)["points"]["P-101-DE-H"]
     code, doc = await demo.get("/api/v1/points/P-101-DE-H/spectrum")

@@ -10,7 +10,8 @@
                    projFill: "rgba(107, 79, 160, 0.16)", iso: "#5d7378", user: "#2f5d8a",
                    window: "rgba(107, 79, 160, 0.55)", grid: "#e6e0d2" };
   const state = { points: [], selected: null, session: null, charts: {}, spectrum: null, envelope: null,
-                  waveform: null, trend: null, zoom: {}, refreshTimer: null, listTimer: null, lastRefresh: 0, report: null };
+                  waveform: null, trend: null, zoom: {}, pointsAt: 0, connected: false,
+                  everConnected: false, refreshTimer: null, listTimer: null, lastRefresh: 0, report: null };
 
   // ------------------------------------------------------------------ helpers
   function $(id) { return document.getElementById(id); }
@@ -42,6 +43,25 @@
     if (t.startsWith("alert")) return "sev-alert";
     if (p.machine_state === "stopped") return "sev-stopped";
     return "sev-ok";
+  }
+
+  // A point whose data is not current: no frame for a while (the API's `stale`) or its source is down.
+  function isStale(p) { return Boolean(p && (p.stale || p.source_state === "down")); }
+  // its age now: the API's age_s at the time of the answer plus the time since
+  function ageText(p) {
+    if (!p.frame_end || p.age_s === null || p.age_s === undefined) return "no data yet";
+    const a = p.age_s + Math.max(0, Date.now() - state.pointsAt) / 1000;
+    const t = a < 120 ? `${Math.round(a)} s` : a < 7200 ? `${Math.round(a / 60)} min` : `${num(a / 3600, 3)} h`;
+    return `last data ${t} ago`;
+  }
+  // the header badge says "live" only while events flow and the chosen point's data (or any point's) is current
+  function renderBadge() {
+    const b = $("live");
+    if (!state.connected) { b.textContent = state.everConnected ? "reconnecting" : "offline"; b.className = "live off"; return; }
+    const p = state.points.find(x => x.id === state.selected);
+    const stale = p ? isStale(p) : state.points.length > 0 && state.points.every(isStale);
+    b.textContent = stale ? (p ? `stale: ${ageText(p)}` : "no current data") : "live";
+    b.className = stale ? "live stale" : "live on";
   }
 
   // ------------------------------------------------------------------ charts
@@ -344,14 +364,20 @@
     list.textContent = "";
     for (const p of state.points) {
       const vel = (p.indicators.find(i => i.name === "velocity_rms_mm_s") || {}).value;
-      const li = el("li", { "data-point": p.id, "data-frame-end": p.frame_end, class: sevClass(p), tabindex: "0",
+      const stale = isStale(p);
+      // a zone from old data or from a faulty sensor's data is shown dimmed, with why in its title
+      const zoneWhy = p.sensor_fault ? ` from a faulty sensor's data (${p.sensor_fault})` : stale ? `, ${ageText(p)}` : "";
+      const li = el("li", { "data-point": p.id, "data-frame-end": p.frame_end, tabindex: "0",
+                            class: sevClass(p) + (stale ? " stale" : ""), "data-stale": stale ? "true" : "false",
                             "aria-current": p.id === state.selected ? "true" : "false" },
         el("div", { class: "line" }, el("span", { class: "pid", text: p.id }),
-           el("span", { class: "zone", title: "ISO 20816-3 zone", text: p.iso_zone || "–" })),
+           el("span", { class: "zone" + (zoneWhy ? " dim" : ""), title: `ISO 20816-3 zone${zoneWhy}`,
+                        "data-dim": zoneWhy ? "true" : null, text: p.iso_zone || "–" })),
         el("div", { class: "line" }, el("span", { text: `${p.machine} · ${p.machine_state}` }),
            el("span", { text: vel === undefined ? "…" : `${num(vel, 3)} mm/s` })),
         el("div", { class: "state", text: p.alarm_state + (p.data_gap && !p.alarm_state.includes("stale") ? ` (no good data: ${p.data_gap})`
-                                                      : p.stale && p.frame_end ? " (no recent frame)" : "") }));
+                                                      : p.stale && p.frame_end ? " (no recent frame)" : "") }),
+        stale ? el("div", { class: "age", text: ageText(p) + (p.source_state === "down" ? " · source down" : "") }) : "");
       li.addEventListener("click", () => select(p.id));
       li.addEventListener("keydown", ev => { if (ev.key === "Enter") select(p.id); });
       list.append(li);
@@ -365,6 +391,14 @@
       `${p.axis}, ${p.sensor_type} sensor ${p.sensor} · ${p.machine_state}` +
       (p.start_up_grace_left_s ? ` (start-up grace ${num(p.start_up_grace_left_s, 3)} s left)` : "") +
       (p.source_state === "down" ? " · source down" : "") + ` · ${speed}`;
+    const stale = isStale(p);
+    $("detail").classList.toggle("stale", stale);
+    $("detail").setAttribute("data-stale", stale ? "true" : "false");
+    $("stale-note").hidden = !stale;
+    $("stale-note").textContent = stale ? `Not current: ${ageText(p)}` +
+      (p.frame_end ? ` (frame of ${p.frame_end})` : "") + (p.source_state === "down" ? "; its source is down" : "") +
+      ". The values and panels below are from then." : "";
+    renderBadge();
     const figs = $("figures");
     figs.textContent = "";
     figs.append(el("span", { class: "fig" }, el("b", { text: "zone " }), p.iso_zone || "n/a"));
@@ -390,10 +424,12 @@
   async function loadPoints() {
     const doc = await getJSON(`${API}/points`);
     state.points = doc.points;
+    state.pointsAt = Date.now();
     $("site").textContent = doc.site;
     renderPoints();
     const p = state.points.find(x => x.id === state.selected);
     if (p) renderHead(p);
+    renderBadge();
   }
 
   async function loadPanels() {
@@ -479,7 +515,7 @@
 
   function connectEvents() {
     const es = new EventSource(`${API}/events`);
-    es.addEventListener("hello", () => { $("live").textContent = "live"; $("live").className = "live on"; });
+    es.addEventListener("hello", () => { state.connected = state.everConnected = true; renderBadge(); });
     es.addEventListener("frame", ev => {
       const d = JSON.parse(ev.data);
       const p = state.points.find(x => x.id === d.point);
@@ -493,7 +529,7 @@
       if (d.point === state.selected || !state.lastRefresh) scheduleRefresh();
     });
     es.addEventListener("alarm", () => scheduleRefresh());
-    es.onerror = () => { $("live").textContent = "reconnecting"; $("live").className = "live off"; };
+    es.onerror = () => { state.connected = false; renderBadge(); };
   }
 
   // ------------------------------------------------------------------ actions
@@ -569,6 +605,10 @@
       });
       document.body.setAttribute("data-ready", "true");
       connectEvents();
+      // the point list is also read every few seconds: a point whose frames stop sends no event to say so
+      setInterval(() => {
+        if (Date.now() - state.pointsAt > 4500) loadPoints().catch(e => console.warn(String(e)));
+      }, 5000);
     }).catch(e => console.warn(String(e)));
     window.addEventListener("resize", () => {
       for (const [k, u] of Object.entries(state.charts)) {
