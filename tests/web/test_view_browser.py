@@ -245,6 +245,34 @@ def test_zoom_survives_live_updates_until_double_click(browser: Any, demo: Demo)
     assert console.errors == []
 
 
+def drawn_labels(page: Any, panel: str) -> list[dict[str, Any]]:
+    labels: list[dict[str, Any]] = json.loads(page.get_attribute(panel, "data-labels") or "null")
+    # no two labels drawn in one row overlap
+    for i, a in enumerate(labels):
+        for b in labels[i + 1:]:
+            assert a["row"] != b["row"] or a["x1"] <= b["x0"] or b["x1"] <= a["x0"], (a, b)
+    return labels
+
+
+def test_marker_labels_do_not_overlap_and_zooming_in_shows_them(browser: Any, demo: Demo) -> None:
+    page = browser.new_page()
+    console = Console(page)
+    page.goto(demo.base + "/#P-101-DE-H")
+    page.wait_for_selector('#sp-markers tr[data-marker="1x"]', timeout=20000)
+    page.select_option("#sp-qty", "acceleration_g")  # the whole range: the orders crowd at the left
+    wait_until(page, lambda: float(page.get_attribute("#panel-spectrum", "data-x-max") or 0) > 1000, "the full span")
+    wait_until(page, lambda: page.get_attribute("#panel-spectrum", "data-labels") is not None, "the labels")
+    wide = drawn_labels(page, "#panel-spectrum")
+    assert int(page.get_attribute("#panel-spectrum", "data-labels-hidden") or 0) > 0  # crowded: some left out
+    lo, hi = x_range(page, "#panel-spectrum")
+    drag_zoom(page, "#panel-spectrum", (5 - lo) / (hi - lo), (105 - lo) / (hi - lo))
+    wait_until(page, lambda: {"0.5×", "1×", "2×", "3×"} <= {x["label"] for x in drawn_labels(page, "#panel-spectrum")},
+               "the order labels of 5–105 Hz")
+    assert len(drawn_labels(page, "#panel-spectrum")) >= 4 and all(x["label"] for x in wide)
+    page.close()
+    assert console.errors == []
+
+
 def test_stale_points_are_greyed_with_their_age_and_the_badge_is_not_live(browser: Any, demo: Demo) -> None:
     page = browser.new_page()
     console = Console(page)

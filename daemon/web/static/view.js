@@ -74,15 +74,31 @@
     ctx.save();
     ctx.beginPath(); ctx.rect(left, top, width, height); ctx.clip();
     ctx.font = `${Math.round(11 * devicePixelRatio)}px sans-serif`;
+    // labels never overlap: one that would run into a label already drawn goes to the next row down (at most
+    // two rows lower); where all are taken (a wide span) it is left out: its line stays, zooming in shows it
+    const ROWS = 6, pad = 4 * devicePixelRatio, taken = [];
+    const drawn = [];
+    let hidden = 0;
     for (const m of marks) {
       const x = Math.round(u.valToPos(m.x, "x", true));
       if (x < left || x > left + width) continue;
       ctx.strokeStyle = m.color; ctx.fillStyle = m.color;
       ctx.lineWidth = devicePixelRatio; ctx.setLineDash(m.dash || []);
       ctx.beginPath(); ctx.moveTo(x, top); ctx.lineTo(x, top + height); ctx.stroke();
-      if (m.label) ctx.fillText(m.label, x + 3 * devicePixelRatio, top + (m.row || 1) * 12 * devicePixelRatio);
+      if (!m.label) continue;
+      const x0 = x + 3 * devicePixelRatio, x1 = x0 + ctx.measureText(m.label).width;
+      const first = m.row || 1;
+      let row = 0;
+      for (let r = first; r <= Math.min(ROWS, first + 2) && !row; r++)
+        if (!taken.some(t => t.row === r && x0 < t.x1 + pad && t.x0 < x1 + pad)) row = r;
+      if (!row) { hidden++; continue; }
+      taken.push({ row, x0, x1 });
+      drawn.push({ label: m.label, row, x0: x0 / devicePixelRatio, x1: x1 / devicePixelRatio });
+      ctx.fillText(m.label, x0, top + row * 12 * devicePixelRatio);
     }
     ctx.restore();
+    const panel = u.root.closest(".panel");
+    if (panel) { panel.setAttribute("data-labels", JSON.stringify(drawn)); panel.setAttribute("data-labels-hidden", String(hidden)); }
   }
 
   // A chart is rebuilt for every new frame. The user's x range (a drag zoom) is kept per panel across these
