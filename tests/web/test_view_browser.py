@@ -319,14 +319,23 @@ def test_envelope_marks_bpfo_on_the_failing_bearing_and_updates_live(browser: An
     page.wait_for_selector('#en-families tr[data-family="bpfo"]', timeout=20000)
     assert page.get_attribute('#point-list li[aria-current="true"]', "data-point") == "B-301-DE-H"
     # the BPFO family is marked, with the verdict the API gave for the frame the page shows
-    frame, verdict, row = page.eval_on_selector("#panel-envelope", """p => {
-        const tr = document.querySelector('#en-families tr[data-family="bpfo"]');
-        return [p.dataset.frameEnd, tr.dataset.verdict, tr.textContent]; }""")
+    def shown() -> tuple[str, str, str]:
+        return tuple(page.eval_on_selector("#panel-envelope", """p => {
+            const tr = document.querySelector('#en-families tr[data-family="bpfo"]');
+            return [p.dataset.frameEnd, tr.dataset.verdict, tr.textContent]; }"""))
+
+    frame, verdict, row = shown()
+    fam = next(f for f in answers.for_frame(frame)["families"] if f["key"] == "bpfo")
+    assert verdict == fam["verdict"] and "BPFO" in row
+    # the failing bearing's outer-race defect is detected (the numerical core's verdict): in nearly every frame, not
+    # in every one (59 of 60 consecutive simulated frames of this point in a check of the pipeline; a verdict at a
+    # false-alarm probability of 1e-3 has a detection probability below 1), so the test waits for a detected frame
+    wait_until(page, lambda: shown()[1] == "detected", "a frame with BPFO detected", 60)
+    frame, verdict, row = shown()
     doc = answers.for_frame(frame)
     fam = next(f for f in doc["families"] if f["key"] == "bpfo")
-    # the failing bearing's outer-race defect is detected (the numerical core's verdict for this frame)
     assert verdict == fam["verdict"] == "detected" and doc["detected"] == ["bpfo"]
-    assert "BPFO" in row and row.endswith("detected")
+    assert row.endswith("detected")
     assert page.get_attribute('#en-families tr[data-family="bpfi"]', "data-verdict") == "not detected"
     page.wait_for_selector("#en-chart canvas", timeout=20000)  # the panels load independently
     page.wait_for_selector("#wf-chart canvas", timeout=20000)
