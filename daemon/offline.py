@@ -473,6 +473,9 @@ def _analyze(args: argparse.Namespace) -> tuple[dict[str, Any], list[str]]:
     fs, fs_source = _sample_rate(args, wave, warnings)
     x_g = _samples_g(args, wave.samples, opts.unit)
     n = int(x_g.size)
+    if n and float(np.ptp(x_g)) == 0.0:  # a dead channel or a column that holds no signal
+        warnings.append(f"the signal is constant ({float(x_g[0]):g} g in every sample): nothing to analyse; check the "
+                        "channel (--channel), column (--column) or variable (--var)")
     orders = (0.5, 1.0, 2.0, 3.0)
     notes: list[str] = []
     speed = _speed(x_g, fs, wave, opts, orders, notes, warnings)

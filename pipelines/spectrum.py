@@ -473,7 +473,8 @@ def _harmonic_refinement(acc: FloatArray, f_hz: FloatArray, df_hz: float, harmon
     f_all, a_all, floor_all = _refined_lines(acc, out[:, None] * hs, df_hz)
     a1, floor1 = a_all[:, 0], floor_all[:, 0]
     # inverse-variance weights: the interpolation error of harmonic h, read as a speed, is ∝ 1 / (h × its SNR)
-    weight = (a1 / np.maximum(floor1, 1e-300)) ** 2
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # a constant record: no line, no floor
+        weight = np.nan_to_num((a1 / np.maximum(floor1, 1e-300)) ** 2)
     total = weight * out
     agree_all = np.ones(out.shape, dtype=bool)
     checked = np.zeros(out.shape, dtype=bool)
@@ -484,7 +485,8 @@ def _harmonic_refinement(acc: FloatArray, f_hz: FloatArray, df_hz: float, harmon
         with np.errstate(divide="ignore", invalid="ignore"):
             agree_all &= ~clear | (np.abs(f_h / h - out) <= 0.5 * tolerance * out)
         checked |= clear
-        w_h = np.where(clear, (h * a_h / np.maximum(floor_h, 1e-300)) ** 2, 0.0)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            w_h = np.where(clear, (h * a_h / np.maximum(floor_h, 1e-300)) ** 2, 0.0)
         total = total + w_h * f_h / h
         weight = weight + w_h
     with np.errstate(divide="ignore", invalid="ignore"):

@@ -288,3 +288,15 @@ def test_bearing_bad_input(argv: list[str], message: str, capsys: pytest.Capture
     code, out, err = run(["bearing", *argv], capsys)
     assert code == 2 and out == "" and err.count("\n") == 1 and err.startswith("edgevib bearing: ")
     assert message in err, err
+
+
+def test_a_constant_record_is_named_and_leaks_no_numpy_warning(tmp_path: Path) -> None:
+    # a dead channel (all zeros) is analysed without numpy's RuntimeWarnings and with one line saying the signal is
+    # constant (common practice: a flat record is a wiring or channel question before it is a machine one)
+    f = tmp_path / "dead.npy"
+    np.save(f, np.zeros(12000))
+    p = subprocess.run([sys.executable, "-W", "error::RuntimeWarning", "-m", "edgevib.daemon", "analyze", str(f),
+                        "--fs", "12000"], capture_output=True, text=True, timeout=120)
+    assert p.returncode == 0, p.stderr
+    assert "RuntimeWarning" not in p.stderr
+    assert "the signal is constant (0 g in every sample)" in p.stderr
