@@ -154,8 +154,9 @@ def _machine_text(pt: dict[str, Any]) -> str:
     from edgevib.daemon.alarms.control import human_duration
 
     state = str(pt.get("machine_state") or "unknown")
-    if pt.get("source_state") == "down":  # no data: the machine's state now is not known
-        return f"unknown (stale, last {state})"
+    last = pt.get("last_machine_state")
+    if last or pt.get("source_state") == "down":  # no data: the machine's state now is not known
+        return f"unknown (stale, last {last or state})"
     left = pt.get("start_up_grace_left_s")
     if state == "starting" and isinstance(left, int | float):
         return f"starting (grace {human_duration(left)} left)"

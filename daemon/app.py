@@ -363,6 +363,7 @@ class Daemon:
             self.alarm_view = alarms
             self.machines.healthy = alarms.point_healthy  # a point with a sensor fault does not vote
             alarms.tracks_sources = True  # source down/up: one source event, its points stale, no sensor faults
+            self.metrics.collector.machine_stale = alarms.machine_stale  # the metric's "unknown" as the alarms'
             self.ingest.connection_listeners.append(alarms.on_source)
             alarms.block_arrival = self._block_arrival_s
             if config.publish_opcua.enabled:  # the OPC UA namespace shows each point's alarm state as an enumeration

@@ -187,7 +187,8 @@ class AlarmView(Protocol):
         """Every active alarm of a point in one short text (``DANGER misalignment_2x_mm_s; ALERT …``)."""
 
     def machine_view(self, machine: str) -> dict[str, object]:
-        """A machine's state: ``{state, since_s, grace_left_s}``."""
+        """A machine's state: ``{state, since_s, grace_left_s, last_state, last_since_s}`` (``unknown`` while every
+        point of the machine is stale; ``last_*`` then keep the last known state)."""
 
     def history(self, point: str | None = None, *, since_s: float | None = None,
                 limit: int = 200) -> Sequence[AlarmTransition]:

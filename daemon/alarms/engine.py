@@ -568,14 +568,27 @@ class AlarmLayer:
         return {"site": self.settings.site, "machine": machine, "point": point,
                 "axis": getattr(p, "axis", None), "machine_state": ms.state if ms is not None else "unknown"}
 
+    def machine_stale(self, machine: str) -> bool:
+        """Whether every point of a machine is stale (its source down or its sensor silent): its state is then
+        not known."""
+        with self._lock:  # also called from the metrics thread
+            pids = [pid for pid, p in self.points.items() if p.machine == machine]
+            return bool(pids) and all(self.stale.get(pid) for pid in pids)
+
     def machine_view(self, machine: str) -> dict[str, Any]:
-        """A machine's state for the views: ``{state, since_s, grace_left_s}`` (the start-up grace still to run,
-        on the frames' timeline, while ``starting``)."""
+        """A machine's state for the views: ``{state, since_s, grace_left_s, last_state, last_since_s}`` (the
+        start-up grace still to run, on the frames' timeline, while ``starting``).  While every point of the
+        machine is stale the state is ``unknown``; ``last_state`` and ``last_since_s`` keep the last known one
+        (both null otherwise)."""
         ms = self.machine_states.get(machine) or MachineState()
+        if self.machine_stale(machine):
+            return {"state": "unknown", "since_s": None, "grace_left_s": None, "last_state": ms.state,
+                    "last_since_s": ms.since_s}
         spec = self.own_machines.specs.get(machine)
         until = ms.grace_until_s(spec) if spec is not None else None
         left = None if until is None or ms.last_s is None else max(0.0, until - ms.last_s)
-        return {"state": ms.state, "since_s": ms.since_s, "grace_left_s": left}
+        return {"state": ms.state, "since_s": ms.since_s, "grace_left_s": left, "last_state": None,
+                "last_since_s": None}
 
     def _emit(self, type_: str, point: str, machine: str, data: dict[str, Any], t_ns: int, pend: _Pending,
               event_id: str | None = None, *, subject: str | None = None, topic: str | None = None,
@@ -1010,7 +1023,8 @@ class AlarmLayer:
         mv = self.machine_view(p.machine)
         src = self.source_states.get(p.source, SourceState())
         return {"machine": p.machine, "machine_state": mv["state"], "start_up_grace_left_s": mv["grace_left_s"],
-                "suppressed": self.suppressed.get(pid), "stale": self.stale.get(pid), "source": p.source,
+                "last_machine_state": mv["last_state"], "suppressed": self.suppressed.get(pid),
+                "stale": self.stale.get(pid), "source": p.source,
                 "source_state": "down" if src.down else "up", "alarm_text": self.state_text(pid),
                 "time": None if pid not in self.last_frame else rfc3339_utc_s(self.last_frame[pid])}
 
@@ -1099,6 +1113,9 @@ class AlarmLayer:
                 mv = self.machine_view(p.machine)
                 msg = {"site": self.settings.site, "machine": p.machine, "point": pid, "axis": p.axis,
                        "machine_state": mv["state"], "start_up_grace_left_s": mv["grace_left_s"],
+                       "last_machine_state": mv["last_state"],
+                       "last_machine_state_since": None if mv["last_since_s"] is None
+                       else rfc3339_utc_s(mv["last_since_s"]),
                        "state": ("normal", "alert", "danger", "sensor-fault")[sev],
                        "suppressed": self.suppressed.get(pid), "stale": self.stale.get(pid),
                        "source": {"name": p.source,

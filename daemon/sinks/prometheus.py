@@ -49,6 +49,8 @@ class IndicatorCollector:
         self.stats = stats
         self.latest = latest
         self.version = version
+        self.point_sources: dict[str, tuple[str, str]] = {}  # point -> (machine, source), set by the sink
+        self.machine_stale: Callable[[str], bool] | None = None  # the alarm layer's judgement, when there is one
 
     def describe(self) -> list[Metric]:
         return []
@@ -76,6 +78,8 @@ class IndicatorCollector:
             if ms is not None and r.t_end_ns >= newest.get(r.machine_id, (-1, ""))[0]:
                 newest[r.machine_id] = (r.t_end_ns, ms.state)
         for mid, (_, present) in sorted(newest.items()):
+            if self._stale(mid):  # no fresh data from any of its points: its state now is not known
+                present = "unknown"
             for name in MACHINE_STATES:
                 machine_state.add_metric([self.site, mid, name], 1.0 if present == name else 0.0)
         for labels, r in latest:
@@ -86,6 +90,14 @@ class IndicatorCollector:
                         fam.add_metric([*lab, key] if key else lab, v * si.factor)
             last.add_metric(lab, r.t_end_ns / 1e9)
         return [*(fam for _, _, fam in families), last, machine_state]
+
+    def _stale(self, machine: str) -> bool:
+        """Whether every point of a machine is stale: as the alarm layer judges it (source down or sensor silent),
+        else whether the sources of all its points are disconnected."""
+        if self.machine_stale is not None:
+            return self.machine_stale(machine)
+        sources = [src for m, src in self.point_sources.values() if m == machine]
+        return bool(sources) and not any(self.stats.connected.get(src, True) for src in sources)
 
     def _self_metrics(self) -> Iterable[Metric]:
         s = self.stats
@@ -160,8 +172,8 @@ class PrometheusSink:
         self.clock_ns = clock_ns
         self.latest: dict[str, tuple[tuple[str, ...], FrameResult]] = {}
         self._axes: dict[str, str] = {}
-        self.set_points(points)
         self.collector = IndicatorCollector(site, stats, self.latest)
+        self.set_points(points)
         self._ready = ready or (lambda: (True, "no sources"))
         self._own_listener = http is None
         self.server = http if http is not None else HttpListener(
@@ -178,7 +190,9 @@ class PrometheusSink:
 
     def set_points(self, points: Iterable[PointConfig]) -> None:
         """(Re)declare the configured points; removed points vanish from the exposition."""
+        points = list(points)
         self._axes = {p.id: p.axis for p in points}
+        self.collector.point_sources = {p.id: (p.machine, p.source) for p in points}
         for pid in [pid for pid in self.latest if pid not in self._axes]:
             self.latest.pop(pid, None)
 

@@ -8,15 +8,20 @@ B/C 2.8, C/D 4.5 mm/s r.m.s.
 
 from __future__ import annotations
 
+import json
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
 import pytest
 from alarmkit import frame_result
+from prometheus_client import CollectorRegistry
 
 from edgevib.daemon.alarms.engine import AlarmLayer
 from edgevib.daemon.alarms.feed import ALARM_TYPE, SENSOR_TYPE, SOURCE_DOWN_TYPE, SOURCE_UP_TYPE
 from edgevib.daemon.config import Config, parse_config
+from edgevib.daemon.frames import Stats
+from edgevib.daemon.sinks.prometheus import PrometheusSink
 
 POINTS = ("P-101-DE-H", "P-101-NDE-H")
 T0 = 1_780_000_000.0  # frame times: Unix seconds in 2026 (the history keeps [alarms] history_days of them)
@@ -373,5 +378,71 @@ async def test_a_suppressed_alarm_shows_the_latest_value(short_tmp: Path) -> Non
         assert alarms["velocity_rms_mm_s"]["value"] == pytest.approx(1.6)
         assert alarms["imbalance_1x_mm_s"]["value"] == pytest.approx(0.8)
         assert alarms["velocity_rms_mm_s"]["suppressed"] is not None  # still not judged in the start-up
+    finally:
+        await layer.stop()
+
+
+async def test_a_machine_whose_every_point_is_stale_has_an_unknown_state(short_tmp: Path) -> None:
+    # Practice (FIELD_NOTES §7, common practice): without data the machine's present state is not known; the last
+    # known state is kept apart, and fresh frames judge it again.  1.0 mm/s is above the 0.2 mm/s run level.
+    clock, events = Clock(), []
+    cfg = two_points(short_tmp)
+    layer = await make_layer(cfg, clock, events)
+    stats = Stats()
+    sink = PrometheusSink(site="quarry-lane", points=cfg.points, stats=stats, registry=CollectorRegistry(),
+                          serve=False)
+    judged = PrometheusSink(site="quarry-lane", points=cfg.points, stats=stats, registry=CollectorRegistry(),
+                            serve=False)
+    judged.collector.machine_stale = layer.machine_stale  # as the daemon wires it with an alarm layer
+    for s in (sink, judged):
+        s.registry.register(s.collector)
+
+    def message() -> dict[str, Any]:
+        return dict(json.loads(layer.state_messages()[POINTS[0]][1]))
+
+    def metric(s: PrometheusSink) -> str:
+        on = [m.labels["state"] for fam in s.registry.collect() if fam.name == "edgevib_machine_state"
+              for m in fam.samples if m.value == 1.0]
+        assert len(on) == 1, on
+        return on[0]
+
+    async def deliver(t0: float) -> None:
+        before = len(layer.last_frame)
+        await frames(layer, clock, t0, {pid: [1.0] * 3 for pid in POINTS})
+        assert len(layer.last_frame) >= before
+        ms = layer.machine_states["P-101"]
+        results = [replace(frame_result(pid, "P-101", T0 + t0 + 2.0, 1.0), machine_state=ms) for pid in POINTS]
+        for s in (sink, judged):
+            await s.on_frames(results)
+
+    try:
+        layer.on_source("plant", True)
+        stats.connected["plant"] = True
+        await tick(layer)
+        await deliver(100.0)
+        msg = message()
+        assert (msg["machine_state"], msg["last_machine_state"]) == ("running", None)
+        assert metric(sink) == metric(judged) == "running"
+        layer.on_source("plant", False)
+        stats.connected["plant"] = False
+        for _ in range(5):
+            clock.t += 1.0
+            await tick(layer)
+        msg = message()
+        assert (msg["machine_state"], msg["last_machine_state"]) == ("unknown", "running")
+        assert msg["last_machine_state_since"] is not None and msg["start_up_grace_left_s"] is None
+        row = layer.snapshot(POINTS[0])["points"][POINTS[0]]
+        assert (row["machine_state"], row["last_machine_state"]) == ("unknown", "running")
+        assert layer.machine_view("P-101")["state"] == "unknown"
+        assert metric(sink) == metric(judged) == "unknown"
+        layer.on_source("plant", True)  # connected again: stale until the points' next frames
+        stats.connected["plant"] = True
+        await tick(layer)
+        assert message()["machine_state"] == "unknown" and metric(judged) == "unknown"
+        await deliver(300.0)
+        msg = message()
+        assert (msg["machine_state"], msg["last_machine_state"], msg["last_machine_state_since"]) == \
+            ("running", None, None)
+        assert metric(sink) == metric(judged) == "running"
     finally:
         await layer.stop()
