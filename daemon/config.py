@@ -560,10 +560,14 @@ class OpcUaSourceConfig(_WithSecrets):
     password_file: Text | None = None
     password_env: Text | None = None
     reconnect_min_s: Float = Field(0.5, ge=0.01, le=3600.0)
-    reconnect_max_s: Float = Field(30.0, ge=0.01, le=3600.0)
+    # The backoff's cap: a server back after an outage is tried again within it (MQTT's paho loop is faster).
+    reconnect_max_s: Float = Field(10.0, ge=0.01, le=3600.0)
 
     @model_validator(mode="after")
     def _opcua(self) -> OpcUaSourceConfig:
+        if self.reconnect_max_s < self.reconnect_min_s:
+            raise _Problem("reconnect_max_s", f"{self.reconnect_max_s:g} s is below reconnect_min_s "
+                           f"{self.reconnect_min_s:g} s")
         if not self.endpoint.startswith("opc.tcp://"):
             raise _Problem("endpoint", f"{self.endpoint!r} is not an opc.tcp:// URL")
         if self.security_policy != "None" and (self.cert_file is None or self.key_file is None):

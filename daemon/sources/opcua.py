@@ -244,7 +244,7 @@ class OpcUaSource:
                  security_policy: str = "None", security_mode: str = "SignAndEncrypt",
                  cert_file: str | None = None, key_file: str | None = None, server_cert_file: str | None = None,
                  username: str | None = None, password: str | None = None,
-                 reconnect_min_s: float = 0.5, reconnect_max_s: float = 30.0, timeout_s: float = 5.0,
+                 reconnect_min_s: float = 0.5, reconnect_max_s: float = 10.0, timeout_s: float = 5.0,
                  source_timestamp: str = "end") -> None:
         where = f"sources.{name}"
         _check_settings(where, endpoint=endpoint, nodes=nodes, speed_nodes=speed_nodes, mode=mode,
@@ -311,9 +311,13 @@ class OpcUaSource:
                 break
             if was_connected:
                 delay = self.reconnect_min_s
-            with contextlib.suppress(TimeoutError):
-                await asyncio.wait_for(self._stopping.wait(), delay)
+            await self._pause(delay)
             delay = min(delay * 2.0, self.reconnect_max_s)
+
+    async def _pause(self, delay_s: float) -> None:
+        """Wait ``delay_s`` before the next attempt, or until :meth:`stop`."""
+        with contextlib.suppress(TimeoutError):
+            await asyncio.wait_for(self._stopping.wait(), delay_s)
 
     async def stop(self) -> None:
         self._stopping.set()

@@ -24,7 +24,7 @@ from servers import free_port
 from edgevib.common.wire import Block
 from edgevib.daemon.app import Daemon
 from edgevib.daemon.config import parse_config
-from edgevib.daemon.interfaces import ConfigError
+from edgevib.daemon.interfaces import ConfigError, SourceError
 from edgevib.daemon.sources.opcua import NodeSpec, OpcUaSource
 
 # one event loop for the module, so that one server (its address space takes seconds to build) serves the tests
@@ -499,3 +499,43 @@ async def test_untrusted_client_certificate_is_reported_in_one_line(tmp_path: Pa
     assert "rejected this client's certificate" in rejected[0]["problem"]
     assert "server_cert_file" in rejected[0]["problem"] and "cert_file" in rejected[0]["problem"]
     assert not [e for e in events if e["event"] == "opcua_session_crashed"]
+
+
+@pytest.mark.parametrize(("cap_s", "outcomes", "expected_s"), [
+    (None, [False] * 7, [0.5, 1.0, 2.0, 4.0, 8.0, 10.0, 10.0]),  # the configuration's defaults
+    (3.0, [False] * 6, [0.5, 1.0, 2.0, 3.0, 3.0, 3.0]),
+    (None, [False, False, False, True, False], [0.5, 1.0, 2.0, 0.5, 1.0]),  # a session that connected: anew
+])
+async def test_reconnect_backoff_doubles_up_to_the_configured_cap(cap_s: float | None, outcomes: list[bool],
+                                                                   expected_s: list[float]) -> None:
+    # Bounded exponential backoff (common practice): each failed attempt doubles the wait, up to the cap, so a
+    # server that returns after an outage is tried again within the cap (default 10 s); a session that was
+    # connected starts again from the minimum.  The waits are recorded, not waited.
+    doc: dict[str, Any] = {"name": "plc", "type": "opcua", "endpoint": "opc.tcp://127.0.0.1:4840/"}
+    if cap_s is not None:
+        doc["reconnect_max_s"] = cap_s
+    cfg = parse_config({
+        "site": {"name": "quarry-lane"}, "sources": [doc],
+        "machines": [{"id": "P-101", "group": 2, "support": "rigid", "speed_rpm": 1480.0}],
+        "points": [{"id": "P-101-DE-H", "machine": "P-101", "source": "plc", "sensor": "QL-P101-DE-H",
+                    "node": "ns=2;s=QL-P101-DE-H", "fs_hz": FS_HZ, "block_samples": N}]}).sources[0]
+    src = OpcUaSource(name="plc", endpoint=cfg.endpoint, ingest=FakeIngest(),
+                      nodes={"ns=2;s=QL-P101-DE-H": NodeSpec("QL-P101-DE-H")},
+                      reconnect_min_s=cfg.reconnect_min_s, reconnect_max_s=cfg.reconnect_max_s)
+    pending = list(outcomes)
+    waits: list[float] = []
+
+    async def session() -> bool:
+        if pending.pop(0):
+            return True  # connected, then lost
+        raise SourceError("server unreachable")
+
+    async def pause(delay_s: float) -> None:
+        waits.append(delay_s)
+        if not pending:
+            src._stopping.set()
+
+    src._session = session  # type: ignore[method-assign]
+    src._pause = pause  # type: ignore[method-assign]
+    await asyncio.wait_for(src.run(), 60.0)  # a guard against a loop that never stops, not a timing check
+    assert waits == pytest.approx(expected_s)
