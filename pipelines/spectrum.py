@@ -474,7 +474,7 @@ def _harmonic_refinement(acc: FloatArray, f_hz: FloatArray, df_hz: float, harmon
     a1, floor1 = a_all[:, 0], floor_all[:, 0]
     # inverse-variance weights: the interpolation error of harmonic h, read as a speed, is ∝ 1 / (h × its SNR)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # a constant record: no line, no floor
-        weight = np.nan_to_num((a1 / np.maximum(floor1, 1e-300)) ** 2)
+        weight = (a1 / np.maximum(floor1, 1e-300)) ** 2
     total = weight * out
     agree_all = np.ones(out.shape, dtype=bool)
     checked = np.zeros(out.shape, dtype=bool)
