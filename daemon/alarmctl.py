@@ -1,5 +1,5 @@
-"""``edgevib alarms``: list, acknowledge, shelve, unshelve, re-learn alarms of a running daemon, or read back their
-history.
+"""``edgevib alarms``: list, acknowledge, shelve, unshelve, re-learn alarms of a running daemon, read back their
+history, or have it select automatic envelope bands now.
 
 Talks to the daemon's control socket (``<state_dir>/alarms.sock`` unless ``[alarms] socket`` says otherwise)::
 
@@ -9,6 +9,7 @@ Talks to the daemon's control socket (``<state_dir>/alarms.sock`` unless ``[alar
     edgevib alarms unshelve P-101-DE-H
     edgevib alarms relearn P-101-DE-H        # after a repair: learn new baselines
     edgevib alarms history [P-101-DE-H] [--since 7d | --since 2026-12-01T06:00Z] [--limit N] [--json]
+    edgevib alarms select-band [P-101-DE-H]  # envelope_band_hz = "auto": select the band from the next frames
 
 Exit codes: 0 done, 2 bad arguments, a command the daemon refused (one line naming the problem) or no daemon
 listening.
@@ -67,6 +68,10 @@ def configure_alarms(parser: argparse.ArgumentParser) -> None:
     p.add_argument("--since", help="a duration back from now (90s, 30m, 8h, 7d, 2w) or a UTC time "
                    "(2026-12-01T06:00Z, 2026-12-01)")
     p.add_argument("--limit", type=int, default=200, help="at most this many rows, 1..1000 (default 200)")
+    p = sub.add_parser("select-band", help='select the automatic envelope band (envelope_band_hz = "auto") of a '
+                       "point, or of every such point, as soon as it has frames")
+    p.add_argument("point", nargs="?", help="only this point")
+    p.add_argument("--by", help=by_help)
     for action in sub.choices.values():  # --json before or after the action (SUPPRESS keeps one given before)
         action.add_argument("--json", action="store_true", default=argparse.SUPPRESS,
                             help="print the daemon's JSON response")
@@ -107,8 +112,11 @@ def parse_since(text: str, now_s: float | None = None) -> float:
     return t.timestamp()
 
 
+_WIRE = {"select-band": "select_band"}  # sub-command → control command where the names differ
+
+
 def _request(args: argparse.Namespace) -> dict[str, Any]:
-    cmd = args.alarm_cmd
+    cmd = _WIRE.get(args.alarm_cmd, args.alarm_cmd)
     req: dict[str, Any] = {"cmd": cmd}
     if getattr(args, "point", None):
         req["point"] = args.point
@@ -255,6 +263,10 @@ def run_alarms(args: argparse.Namespace) -> int:
         _print_list(resp["result"])
     elif args.alarm_cmd == "history":
         _print_history(resp["result"])
+    elif args.alarm_cmd == "select-band":
+        ids = resp["result"].get("requested", [])
+        print(f"select-band: requested for {', '.join(ids)} (the band is selected once the point has frames)" if ids
+              else 'select-band: no point has an automatic envelope band (envelope_band_hz = "auto")')
     else:
         r = resp["result"]
         print(f"{args.alarm_cmd}: {r.get('changed', 0)} alarm(s) changed, {r.get('events', 0)} event(s)")

@@ -28,7 +28,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "trend": ("edgevib.daemon.trendchart", "show a point's severity history with its trend, limits and projection"),
     "replay": ("edgevib.daemon.replay", "replay recorded snapshots through analysis, history, trend and projection"),
     "simulate": ("edgevib.simulator.cli", "stream simulated machines over MQTT or OPC UA, or write WAV/truth"),
-    "alarms": ("edgevib.daemon.alarmctl", "list, acknowledge, shelve or re-learn alarms of a running daemon"),
+    "alarms": ("edgevib.daemon.alarmctl", "list, acknowledge, shelve, re-learn alarms of a daemon; select bands"),
     "event-schemas": ("edgevib.daemon.eventschemas", "write the JSON Schemas of the alarm feed's event data"),
 }
 
