@@ -275,8 +275,8 @@ def _registry() -> tuple[Indicator, ...]:
             "statistic is over the false-alarm threshold with enough modulation depth and no other family explains "
             "it, else 0 (false)",
             each=_verdicts, boolean=True,
-            per="family", si=RATIO, prometheus="envelope_detected", mqtt="envelope.{key}.detected", opcua=None,
-            report=None),
+            per="family", si=RATIO, prometheus="envelope_detected", mqtt="envelope.{key}.detected",
+            opcua="envelope_{key}_detected", report=None),
         ind("envelope_band_low_hz", "Hz", "Low edge of the demodulation band in use", read=_band_edge(0), si=HZ,
             prometheus="envelope_band_low", mqtt=None, opcua=None, report=None),
         ind("envelope_band_high_hz", "Hz", "High edge of the demodulation band in use", read=_band_edge(1), si=HZ,

@@ -13,6 +13,7 @@ Its namespace ``urn:edgevib:indicators`` (index ``<idx>``, usually 2 — resolve
             <indicator>                        AnalogItemType, Double
                                                         ns=<idx>;s=<site>/<machine>/<point>/<indicator>
             iso_zone                           MultiStateDiscreteType, UInt32 (EnumStrings A, B, C, D)
+            envelope_<family>_detected         TwoStateDiscreteType, Boolean (TrueState "detected")
 
 for example ``ns=2;s=quarry-lane/P-101/P-101-DE-H/velocity_rms_mm_s``.  These node ids are stable: they depend only
 on the site, machine and point ids of the configuration and on the indicator names.
@@ -22,7 +23,9 @@ README "OPC UA indicator namespace" lists them): unit in the name, also in each 
 ``EngineeringUnits`` property; one variable per configured order and per bearing family.
 EUInformation with the UNECE Recommendation 20 common code as ``UnitId`` (OPC 10000-8 §5.6.3), e.g. Hz = "HTZ" =
 4740186; ``EURange`` is the range of values expected in operation, for scaling displays.  The ISO zone is a
-MultiStateDiscreteType variable (UInt32 index into EnumStrings A, B, C, D), not a number to be averaged.
+MultiStateDiscreteType variable (UInt32 index into EnumStrings A, B, C, D), not a number to be averaged; a verdict
+(an envelope family detected or not) a TwoStateDiscreteType Boolean (OPC 10000-8 §5.3.3.2: TrueState "detected",
+FalseState "not detected").
 
 Every update carries the frame's end time as ``SourceTimestamp``.  An indicator that is unavailable for a frame
 (no speed known, no envelope band, no ISO group, a non-finite result) gets status ``BadNoData`` (OPC UA then
@@ -51,13 +54,18 @@ from edgevib.daemon.config import Config
 from edgevib.daemon.indicators import FAMILIES, REGISTRY, Indicator
 from edgevib.daemon.interfaces import ConfigError, FrameResult
 
-__all__ = ["FAMILIES", "INDICATORS", "NAMESPACE_URI", "OpcUaIndicatorSink", "node_id_string"]
+__all__ = ["FAMILIES", "INDICATORS", "NAMESPACE_URI", "VERDICTS", "OpcUaIndicatorSink", "node_id_string"]
 
 NAMESPACE_URI = "urn:edgevib:indicators"
 DEFAULT_ORDERS = ("0.5x", "1x", "2x", "3x")
 OPCUA: list[tuple[Indicator, str]] = [(i, i.opcua) for i in REGISTRY if i.opcua is not None]
 """The registry's indicators served here, with their variable names (``{key}``: order or family)."""
 INDICATORS: dict[str, tuple[str, str]] = {name: (i.unit, i.text()) for i, name in OPCUA if i.per is None}
+"""Fixed indicator variables of every point: name → (unit, description)."""
+VERDICTS: frozenset[str] = frozenset(name.format(key=k) for i, name in OPCUA if i.boolean
+                                     for k in (FAMILIES if i.per == "family" else ("",)))
+"""The Boolean (TwoStateDiscreteType) variables: the registry's verdicts."""
+TWO_STATES = ("detected", "not detected")  # TrueState, FalseState
 ZONES = ("A", "B", "C", "D")
 ALARM_STATES = ("normal", "alert", "danger", "sensor-fault")
 _ENUMS: dict[str, tuple[tuple[str, ...], str]] = {  # MultiStateDiscrete variables: name -> (EnumStrings, text)
@@ -89,7 +97,6 @@ def unit_id(common_code: str) -> int:
         value = value * 256 + ord(ch)
     return value
 
-"""Fixed indicator variables of every point: name → (unit, description)."""
 
 log = structlog.get_logger("edgevib.daemon.sinks.opcua")
 _ua: Any = ua  # asyncua 2.x annotates ids and builtins with its own NewTypes: build them through one untyped handle
@@ -306,59 +313,70 @@ class OpcUaIndicatorSink:
 
     async def _add_variable(self, pid: str, mid: str, name: str, unit: str, text: str) -> ua.NodeId:
         obj = self._objects[pid]
-        nodeid = self._nid(f"{self.site}/{mid}/{pid}/{name}")
-        zone = name in _ENUMS
+        path = f"{self.site}/{mid}/{pid}/{name}"
+        nodeid = self._nid(path)
+        # OPC 10000-8 §5.3.2: AnalogItemType (EngineeringUnits, EURange); §5.3.3.2 TwoStateDiscreteType (TrueState,
+        # FalseState); §5.3.3.3 MultiStateDiscreteType (EnumStrings)
+        kind = "enum" if name in _ENUMS else "verdict" if name in VERDICTS else "analog"
+        if kind == "enum":
+            text, unit = _ENUMS[name][1], "1"
+        data_type, variant_type, initial, type_def = {
+            "enum": ("UInt32", ua.VariantType.UInt32, 0, "MultiStateDiscreteType"),
+            "verdict": ("Boolean", ua.VariantType.Boolean, False, "TwoStateDiscreteType"),
+            "analog": ("Double", ua.VariantType.Double, math.nan, "AnalogItemType")}[kind]
         attrs = ua.VariableAttributes()
         attrs.DisplayName = ua.LocalizedText(name)
-        if zone:
-            text, unit = _ENUMS[name][1], "1"
         attrs.Description = ua.LocalizedText(f"{text}, {unit}" if unit != "1" else f"{text} (dimensionless)")
-        attrs.DataType = _std("UInt32" if zone else "Double")
+        attrs.DataType = _std(data_type)
         attrs.ValueRank = ua.ValueRank.Scalar
         attrs.AccessLevel = attrs.UserAccessLevel = ua.AccessLevel.CurrentRead.mask
-        attrs.Value = ua.Variant(0 if zone else math.nan, ua.VariantType.UInt32 if zone else ua.VariantType.Double)
+        attrs.Value = ua.Variant(initial, variant_type)
         item = ua.AddNodesItem()
         item.RequestedNewNodeId = nodeid
         item.BrowseName = self._qn(name)
         item.NodeClass = ua.NodeClass.Variable
         item.ParentNodeId = obj.nodeid
         item.ReferenceTypeId = _std("HasComponent")
-        # OPC 10000-8 §5.3.2: AnalogItemType (EngineeringUnits, EURange); §5.3.3.3 MultiStateDiscreteType
-        item.TypeDefinition = _std("MultiStateDiscreteType" if zone else "AnalogItemType")
+        item.TypeDefinition = _std(type_def)
         item.NodeAttributes = attrs
         results = await obj.session.add_nodes([item])
         results[0].StatusCode.check()
         var = Node(obj.session, nodeid)
-        if zone:
-            await var.add_property(self._nid(f"{self.site}/{mid}/{pid}/{name}/EnumStrings"),
-                                   ua.QualifiedName("EnumStrings", 0),
-                                   ua.Variant([ua.LocalizedText(z) for z in _ENUMS[name][0]],
-                                              ua.VariantType.LocalizedText),
-                                   datatype=_std("LocalizedText"))
+        if kind == "enum":
+            await self._property(var, path, "EnumStrings", [ua.LocalizedText(z) for z in _ENUMS[name][0]],
+                                 ua.VariantType.LocalizedText, "LocalizedText")
+        elif kind == "verdict":
+            for prop, state in zip(("TrueState", "FalseState"), TWO_STATES, strict=True):
+                await self._property(var, path, prop, ua.LocalizedText(state), ua.VariantType.LocalizedText,
+                                     "LocalizedText")
         else:
             code, long_name = UNECE[unit]
             eu = ua.EUInformation(NamespaceUri=UNECE_NAMESPACE, UnitId=unit_id(code),
                                   DisplayName=ua.LocalizedText(unit), Description=ua.LocalizedText(long_name))
-            await var.add_property(self._nid(f"{self.site}/{mid}/{pid}/{name}/EngineeringUnits"),
-                                   ua.QualifiedName("EngineeringUnits", 0),  # the standard property's browse name
-                                   ua.Variant(eu, ua.VariantType.ExtensionObject),
-                                   datatype=_std("EUInformation"))
+            await self._property(var, path, "EngineeringUnits", eu, ua.VariantType.ExtensionObject, "EUInformation")
             low, high = _EU_RANGE_NAMED.get(name, EU_RANGE.get(unit, (0.0, 100.0)))
-            await var.add_property(self._nid(f"{self.site}/{mid}/{pid}/{name}/EURange"),
-                                   ua.QualifiedName("EURange", 0),
-                                   ua.Variant(ua.Range(Low=low, High=high), ua.VariantType.ExtensionObject),
-                                   datatype=_std("Range"))
+            await self._property(var, path, "EURange", ua.Range(Low=low, High=high), ua.VariantType.ExtensionObject,
+                                 "Range")
         await self._server_write(nodeid, None, StatusCodes.BadWaitingForInitialData, None)
         self._vars[pid][name] = nodeid
         return nodeid
 
+    async def _property(self, var: Node, path: str, name: str, value: Any, variant_type: ua.VariantType,
+                        data_type: str) -> None:
+        """A standard property (browse name in namespace 0: ``EngineeringUnits``, ``EnumStrings``, …)."""
+        await var.add_property(self._nid(f"{path}/{name}"), ua.QualifiedName(name, 0), ua.Variant(value, variant_type),
+                               datatype=_std(data_type))
+
     async def _server_write(self, nodeid: ua.NodeId, value: float | None, status: int,
                             source_ts: datetime.datetime | None, server_ts: datetime.datetime | None = None) -> None:
         assert self._server is not None
+        leaf = str(nodeid.Identifier).rsplit("/", 1)[-1]
         if value is None:
             variant = ua.Variant(None)
-        elif str(nodeid.Identifier).rsplit("/", 1)[-1] in _ENUMS:
+        elif leaf in _ENUMS:
             variant = ua.Variant(int(value), ua.VariantType.UInt32)
+        elif leaf in VERDICTS:
+            variant = ua.Variant(bool(value), ua.VariantType.Boolean)
         else:
             variant = ua.Variant(value, ua.VariantType.Double)
         dv = _ua.DataValue(variant, StatusCode=_ua.StatusCode(status), SourceTimestamp=source_ts,

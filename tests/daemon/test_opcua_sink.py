@@ -78,7 +78,7 @@ async def test_namespace_layout_and_initial_status(sink: OpcUaIndicatorSink, cli
     assert point.nodeid.to_string() == f"ns={idx};s={SITE}/P-101/P-101-DE-H"
     names = {(await c.read_browse_name()).Name for c in await point.get_children()}
     expected = set(INDICATORS) | {f"order_{k}_velocity_rms_mm_s" for k in ("0.5x", "1x", "2x", "3x")} | {
-        f"envelope_{f}_{m}" for f in ("ftf", "bpfo", "bpfi", "bsf") for m in ("amplitude_g", "snr_db")}
+        f"envelope_{f}_{m}" for f in ("ftf", "bpfo", "bpfi", "bsf") for m in ("amplitude_g", "snr_db", "detected")}
     assert names == expected
     var = client.get_node(node_id_string(idx, SITE, "P-101", "P-101-DE-H", "velocity_rms_mm_s"))
     assert (await var.read_description()).Text == "Velocity r.m.s. in the point's velocity band (ISO 20816), mm/s"
@@ -87,14 +87,22 @@ async def test_namespace_layout_and_initial_status(sink: OpcUaIndicatorSink, cli
     assert eu.DisplayName.Text == "mm/s"
     dv = await read(client, idx, "P-101", "P-101-DE-H", "velocity_rms_mm_s")
     assert dv.StatusCode.value == ua.StatusCodes.BadWaitingForInitialData
+    # a verdict: TwoStateDiscreteType (i=2373, OPC 10000-8 §5.3.3.2), Boolean, with its TrueState/FalseState texts
+    verdict = client.get_node(node_id_string(idx, SITE, "P-101", "P-101-DE-H", "envelope_bpfo_detected"))
+    assert await verdict.read_data_type_as_variant_type() == ua.VariantType.Boolean
+    assert (await verdict.read_type_definition()).Identifier == ua.ObjectIds.TwoStateDiscreteType
+    assert (await (await verdict.get_child("0:TrueState")).read_value()).Text == "detected"
+    assert (await (await verdict.get_child("0:FalseState")).read_value()).Text == "not detected"
 
 
 async def test_frame_values_are_published_with_status_and_timestamp(sink: OpcUaIndicatorSink,
                                                                     client: Client) -> None:
     idx = await client.get_namespace_index(NAMESPACE_URI)
-    bpfo = FamilyResult(expected_hz=88.4, frequency_hz=88.9, amplitude_g=0.031, snr_db=14.2, harmonics_found=3)
+    bpfo = FamilyResult(expected_hz=88.4, frequency_hz=88.9, amplitude_g=0.031, snr_db=14.2, harmonics_found=3,
+                        detected=True)
+    bpfi = FamilyResult(expected_hz=133.9, frequency_hz=None, amplitude_g=None, snr_db=None, harmonics_found=0)
     pump = sine_result("P-101-DE-H", "P-101", shaft_hz=24.67, zone="C", orders={"1x": 18.3, "2x": 2.1},
-                       envelope={"bpfo": bpfo})
+                       envelope={"bpfo": bpfo, "bpfi": bpfi})
     fan = sine_result("F-201-NDE-V", "F-201", shaft_hz=None, zone=None)
     await sink.on_frames([pump, fan])
 
@@ -114,11 +122,14 @@ async def test_frame_values_are_published_with_status_and_timestamp(sink: OpcUaI
     assert await value("P-101", "P-101-DE-H", "order_1x_velocity_rms_mm_s") == 18.3
     assert await value("P-101", "P-101-DE-H", "envelope_bpfo_amplitude_g") == 0.031
     assert await value("P-101", "P-101-DE-H", "envelope_bpfo_snr_db") == 14.2
+    assert await value("P-101", "P-101-DE-H", "envelope_bpfo_detected") is True  # the frame's verdict
+    assert await value("P-101", "P-101-DE-H", "envelope_bpfi_detected") is False
     dv = await read(client, idx, "P-101", "P-101-DE-H", "velocity_rms_mm_s")
     assert dv.SourceTimestamp == datetime.datetime(2026, 12, 1, 8, 0, 0, 123400, tzinfo=datetime.UTC)
 
-    # unavailable: no BPFI family, no 0.5x order, the fan has no speed and no ISO group
-    for machine, point, name in [("P-101", "P-101-DE-H", "envelope_bpfi_amplitude_g"),
+    # unavailable: no BSF family, no 0.5x order, the fan has no speed and no ISO group
+    for machine, point, name in [("P-101", "P-101-DE-H", "envelope_bsf_amplitude_g"),
+                                 ("P-101", "P-101-DE-H", "envelope_bsf_detected"),
                                  ("P-101", "P-101-DE-H", "order_0.5x_velocity_rms_mm_s"),
                                  ("F-201", "F-201-NDE-V", "shaft_hz"), ("F-201", "F-201-NDE-V", "iso_zone")]:
         dv = await read(client, idx, machine, point, name)
