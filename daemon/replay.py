@@ -7,6 +7,8 @@ its date and time alone, ``2004.02.12.10.32.39``, is read as a text table).  Its
 * ``--time-column SPEC`` — from the CSV file's first data row: ``N`` (a column of seconds; values above 10⁹ are
   Unix time, smaller ones count from ``--start``) or ``H,M,S[,US]`` (hour, minute, second and microsecond
   columns of a clock, the date from ``--start``, a new day when the clock goes back);
+  without ``--start`` a clock goes on the first file's own date (UTC; from the date in its name, else its
+  modification time), never on 1970-01-01;
 * ``--interval S`` — the files in name order, S seconds apart; when every name carries a number (``acc_00017``),
   the time is (number − first number) × S, so a thinned-out set keeps its true spacing;
 * ``--time-from-name`` — a date and time written in the name: ``20261201T223204Z`` (edgevib's captures and the
@@ -151,9 +153,7 @@ def _name_time(name: str) -> float | None:
     return None
 
 
-def _start(text: str | None) -> float:
-    if text is None:
-        return 0.0
+def _start(text: str) -> float:
     try:
         dt = datetime.fromisoformat(text.replace("Z", "+00:00"))
     except ValueError:
@@ -177,43 +177,62 @@ def _first_row(path: Path) -> list[float]:
     raise InputError(f"{path}: no numeric row to take the time from")
 
 
+def _clock_date(files: list[Path], start: str | None) -> tuple[float, str]:
+    """Midnight (UTC) of the day a clock without a date is placed on: ``--start``'s (its time as given), else the
+    first file's own date — from the date and time in its name, else its modification time — so that snapshots
+    land on the day they were recorded, not in 1970."""
+    if start is not None:
+        return _start(start), f"--start {start}"
+    named = _name_time(files[0].name)
+    t, why = (named, f"the name of {files[0].name}") if named is not None else \
+        (files[0].stat().st_mtime, f"the modification time of {files[0].name}")
+    return 86400.0 * math.floor(t / 86400.0), why
+
+
+def _column_times(files: list[Path], spec: str, start: str | None) -> tuple[list[float], str]:
+    """``--time-column N`` (seconds: Unix time above 10⁹, else counted from ``--start``) or ``H,M,S[,US]`` (a
+    clock: on the date of :func:`_clock_date`, a new day when the clock goes back)."""
+    try:
+        idx = [int(c.strip()) for c in spec.split(",")]
+    except ValueError:
+        idx = []
+    if len(idx) not in (1, 3, 4) or min(idx) < 0:
+        raise InputError(f"--time-column {spec!r} must be N or H,M,S[,US] (0-based columns)")
+    rows = []
+    for f in files:
+        if f.suffix.lower() not in (".csv", ".txt"):
+            raise InputError(f"--time-column reads CSV files; {f.name} is not one")
+        row = _first_row(f)
+        if max(idx) >= len(row):
+            raise InputError(f"{f.name}: --time-column {spec} needs {max(idx) + 1} columns, the file has {len(row)}")
+        rows.append(row)
+    if len(idx) == 1:
+        base = 0.0 if start is None else _start(start)
+        return [v if v > 1e9 else base + v for v in (row[idx[0]] for row in rows)], f"column {spec} of each file"
+    midnight, why = _clock_date(files, start)
+    out: list[float] = []
+    day = 0.0
+    prev = -math.inf
+    for row in rows:
+        clock = row[idx[0]] * 3600 + row[idx[1]] * 60 + row[idx[2]] + (row[idx[3]] * 1e-6 if len(idx) == 4 else 0.0)
+        if clock + day < prev - 12 * 3600:  # the clock went back: the next day
+            day += 86400.0
+        prev = clock + day
+        out.append(midnight + prev)
+    date = datetime.fromtimestamp(midnight, UTC).strftime("%Y-%m-%d")
+    return out, f"the clock in columns {spec} of each file, from {date} (the date of {why})"
+
+
 def snapshot_times(files: list[Path], *, time_column: str | None = None, interval_s: float | None = None,
                    from_name: bool = False, mtime: bool = False, start: str | None = None
                    ) -> tuple[list[float], str]:
     """Each file's time in seconds since the Unix epoch, and a phrase saying where the times came from."""
-    base = _start(start)
     if time_column is not None:
-        cols = [c.strip() for c in time_column.split(",")]
-        try:
-            idx = [int(c) for c in cols]
-        except ValueError:
-            raise InputError(f"--time-column {time_column!r} must be N or H,M,S[,US] (0-based columns)") from None
-        if len(idx) not in (1, 3, 4) or min(idx) < 0:
-            raise InputError(f"--time-column {time_column!r} must be N or H,M,S[,US] (0-based columns)")
-        out: list[float] = []
-        day = 0.0
-        prev = -math.inf
-        for f in files:
-            if f.suffix.lower() not in (".csv", ".txt"):
-                raise InputError(f"--time-column reads CSV files; {f.name} is not one")
-            row = _first_row(f)
-            if max(idx) >= len(row):
-                raise InputError(f"{f.name}: --time-column {time_column} needs {max(idx) + 1} columns, the file "
-                                 f"has {len(row)}")
-            if len(idx) == 1:
-                v = row[idx[0]]
-                out.append(v if v > 1e9 else base + v)
-                continue
-            clock = row[idx[0]] * 3600 + row[idx[1]] * 60 + row[idx[2]] + (row[idx[3]] * 1e-6 if len(idx) == 4
-                                                                           else 0.0)
-            if clock + day < prev - 12 * 3600:  # the clock went back: the next day
-                day += 86400.0
-            prev = clock + day
-            out.append(base + prev)
-        return out, f"column {time_column} of each file"
+        return _column_times(files, time_column, start)
     if interval_s is not None:
         if not (math.isfinite(interval_s) and interval_s > 0):
             raise InputError(f"--interval {interval_s!r} must be > 0 seconds")
+        base = 0.0 if start is None else _start(start)
         nums = [re.findall(r"\d+", f.stem) for f in files]
         if all(nums):
             first = int(nums[0][-1])
@@ -540,7 +559,8 @@ def configure_replay(parser: argparse.ArgumentParser) -> None:
     w.add_argument("--time-from-name", action="store_true", help="a date and time in each file name")
     w.add_argument("--mtime", action="store_true", help="the files' modification times")
     t.add_argument("--start", metavar="TIME", help="date/time that relative times count from (RFC 3339; default "
-                   "1970-01-01T00:00:00Z)")
+                   "1970-01-01T00:00:00Z, but a clock column H,M,S goes on the first file's date: from its name, "
+                   "else its modification time)")
     p = parser.add_argument_group("trend and projection")
     p.add_argument("--limit", action="append", metavar="NAME=VALUE", help="an absolute limit, e.g. "
                    "acceleration_peak_g=20 (repeatable)")

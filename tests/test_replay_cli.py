@@ -66,6 +66,35 @@ def test_interval_times_follow_the_numbers_in_the_names(tmp_path: Path, capsys: 
     assert rows[0]["time"] == "1970-01-01T00:00:00.000Z"
 
 
+def test_a_clock_without_a_date_goes_on_the_files_date(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # FEMTO's files carry hour, minute, second, microsecond and no date (datasets README); without --start the
+    # clock goes on the date of the first file's modification time (UTC), a day later after midnight — not 1970.
+    import os
+
+    files = sorted(FEMTO.glob("acc_*.csv"))[:2]
+    for f in files:
+        (tmp_path / f.name).write_bytes(f.read_bytes())
+    recorded = datetime(2026, 11, 20, 23, 59, 0, tzinfo=UTC).timestamp()
+    os.utime(tmp_path / files[0].name, (recorded, recorded))
+    os.utime(tmp_path / files[1].name, (recorded + 80, recorded + 80))
+    assert main(["replay", str(tmp_path), *FEMTO_ARGS, "--time-column", "0,1,2,3", "--json"]) == 0
+    rows = _lines(capsys)
+    assert rows[0]["time"].startswith("2026-11-20T08:47:05.") and rows[1]["time"].startswith("2026-11-20T08:48:")
+    # a clock that goes back is the next day; the phrase on stderr names the date and where it came from
+    for name, clock in (("acc_00017.csv", ["23", "0", "0", "0"]), ("acc_00025.csv", ["0", "15", "2", "0"])):
+        (tmp_path / name).write_text("\n".join(",".join(clock + line.split(",")[4:])
+                                               for line in files[0].read_text().splitlines()))
+    assert main(["replay", str(tmp_path), *FEMTO_ARGS, "--time-column", "0,1,2,3"]) == 0
+    err = capsys.readouterr().err
+    assert "from 2026-11-20 (the date of the modification time of acc_00001.csv)" in err
+    assert main(["replay", str(tmp_path), *FEMTO_ARGS, "--time-column", "0,1,2,3", "--json"]) == 0
+    assert _lines(capsys)[-1]["time"].startswith("2026-11-21T00:15:02.")
+    # --start still sets the date
+    assert main(["replay", str(tmp_path), *FEMTO_ARGS, "--time-column", "0,1,2,3", "--start", "2012-03-01",
+                 "--json"]) == 0
+    assert _lines(capsys)[0]["time"].startswith("2012-03-01T08:47:05.")
+
+
 @pytest.mark.slow
 def test_simulated_months_replayed_against_the_analytic_crossing(tmp_path: Path,
                                                                capsys: pytest.CaptureFixture[str]) -> None:
