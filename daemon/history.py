@@ -15,8 +15,10 @@ What it keeps, per measurement point and indicator:
 
 Buckets are aligned to UTC (minute, hour, day).  Minute percentiles are exact; hour and day percentiles come from
 a logarithmic-bin sketch within 1 % (:class:`edgevib.pipelines.rollup.LogSketch`), whose state is stored with the
-open bucket so that a restart continues it.  Retention counts back from the newest frame of each point (the
-measurement timeline), so replayed recordings with old time stamps keep their history too.
+open bucket so that a restart continues it.  An open bucket's row is readable before it closes: the open minute's
+as of the last flush, an open hour's or day's as of its last closed minute (and of the open minute once the
+recorder is closed).  Retention counts back from the newest frame of each point (the measurement timeline), so
+replayed recordings with old time stamps keep their history too.
 
 Writes are batched: :meth:`HistoryRecorder.record` only queues a frame (cheap, any thread); :meth:`flush` (a
 worker thread, every ``flush_s``) aggregates and writes the batch in one transaction.  A process killed between
@@ -151,6 +153,13 @@ def history_settings(table: HistoryConfig) -> HistorySettings:
 
 
 # --------------------------------------------------------------------------------------------- database
+
+
+def _vacuum(conn: sqlite3.Connection) -> None:
+    """Release every free page (``PRAGMA incremental_vacuum``; outside a transaction).  It frees one page per
+    step of the statement, and ``execute`` steps a statement that returns no row only once: ``executescript``
+    runs it to completion."""
+    conn.executescript("PRAGMA incremental_vacuum;")
 
 
 def _connect(path: Path, readonly: bool) -> sqlite3.Connection:
@@ -513,13 +522,22 @@ class HistoryRecorder:
     def _sketch_stats(self, sketches: Sequence[LogSketch]) -> npt.NDArray[np.float64]:
         return np.array([sk.summary(self.settings.high_percentile) for sk in sketches], dtype=np.float64).T
 
-    def _open_rows(self, pid: int, op: _Open, rows: list[tuple[int, int, int, int, int, bytes, bytes | None]]
-                   ) -> None:
-        """Rows of the still-open buckets (readers see the latest partial roll-ups; a restart continues them)."""
+    def _open_rows(self, pid: int, op: _Open, rows: list[tuple[int, int, int, int, int, bytes, bytes | None]],
+                   with_minute: bool = False) -> None:
+        """Rows of the still-open buckets (readers see the latest partial roll-ups; a restart continues them).
+
+        The open minute's row is rewritten at every flush.  An open hour or day row is rewritten when a minute
+        closes into it, holding the bucket's closed minutes: merging the open minute into the hour's and the
+        day's sketches at every flush cost more than the rest of the history together (for 1,000 points, most
+        of a core), for a partial roll-up at most a minute fresher.  ``with_minute`` (at :meth:`close`) writes
+        them with the open minute too.  Either way the stored sketches hold the closed minutes only: a restart
+        takes the open minute's values back from the frames table."""
         minute = np.stack(op.minute_values) if op.minute_values else None
         if op.minute_start is not None and minute is not None:
             rows.append((pid, 60, op.minute_start, self._layout, 0,
                          _f32(summarize(minute, self.settings.high_percentile)), None))
+        if not with_minute:
+            minute = None
         for lname in ("hour", "day"):
             if lname not in op.dirty and minute is None:
                 continue
@@ -531,16 +549,30 @@ class HistoryRecorder:
                     start, sketches = m_start, None
             if start is None:
                 continue
-            view = [LogSketch(_SKETCH_ALPHA) for _ in self.indicators]
-            if sketches is not None:
-                for sk, stored_sk in zip(view, sketches, strict=True):
-                    sk.merge(stored_sk)
-            if minute is not None:
-                LogSketch.add_columns(view, minute)
+            if minute is None and sketches is not None:
+                view = sketches
+            else:
+                view = [LogSketch(_SKETCH_ALPHA) for _ in self.indicators]
+                if sketches is not None:
+                    for sk, stored_sk in zip(view, sketches, strict=True):
+                        sk.merge(stored_sk)
+                if minute is not None:
+                    LogSketch.add_columns(view, minute)
             stored = sketches if sketches is not None else [LogSketch(_SKETCH_ALPHA) for _ in self.indicators]
             rows.append((pid, LEVELS[lname], start, self._layout, 0, _f32(self._sketch_stats(view)),
                          _sketch_blob(stored)))
         op.dirty.clear()
+
+    def _write_open_with_minute(self) -> None:
+        """Rewrite every point's open hour and day rows with its open minute (at :meth:`close`)."""
+        rows: list[tuple[int, int, int, int, int, bytes, bytes | None]] = []
+        for point, op in self._open.items():
+            if op.minute_start is not None and op.minute_values:
+                self._open_rows(self.db.point_id(point), op, rows, with_minute=True)
+        if rows:
+            with self.db.transaction() as c:
+                c.executemany("INSERT OR REPLACE INTO rollups (point, level, start_s, layout, closed, stats, "
+                              "sketch) VALUES (?, ?, ?, ?, ?, ?, ?)", rows)
 
     # ------------------------------------------------------------------ pruning
 
@@ -564,6 +596,7 @@ class HistoryRecorder:
                     tx.execute("DELETE FROM periods WHERE point = ? AND end_ns < ?",
                                (pid, round((latest_s - self.settings.day_s) * 1e9)))
                     del n
+            _vacuum(c)  # hand the deleted rows' pages back to the file system (at the next checkpoint)
         budget = self.settings.max_bytes
         if self.db.size_bytes() <= budget:
             return
@@ -582,7 +615,7 @@ class HistoryRecorder:
                 self.stats.pruned[what] += removed
             if self._used_bytes() <= target:
                 break
-        c.execute("PRAGMA incremental_vacuum")
+        _vacuum(c)
         c.execute("PRAGMA wal_checkpoint(TRUNCATE)")
         if self.db.size_bytes() > budget:
             self._rlog.warning("history-budget", "history still above its disk budget after pruning",
@@ -620,7 +653,7 @@ class HistoryRecorder:
         k = min(total, max(50, math.ceil(1.2 * excess_bytes / width)))
         with self.db.transaction() as tx:
             n = int(tx.execute(sql, (*args, k)).rowcount)
-        c.execute("PRAGMA incremental_vacuum")
+        _vacuum(c)
         c.execute("PRAGMA wal_checkpoint(TRUNCATE)")
         return n
 
@@ -675,6 +708,11 @@ class HistoryRecorder:
     def close(self) -> None:
         self.flush()
         with self._flush_lock:
+            try:
+                self._write_open_with_minute()
+            except sqlite3.Error as exc:
+                self.stats.write_errors += 1
+                self._rlog.error("history", "history write failed", error=str(exc), path=str(self.db.path))
             self.db.close()
 
 
