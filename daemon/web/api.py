@@ -2,7 +2,8 @@
 
 :class:`ViewService` is a lossy :class:`~edgevib.daemon.interfaces.FrameSink`: it keeps each point's recent
 indicator values (:mod:`edgevib.daemon.web.recent`), listens to the alarm layer's committed events and pushes a
-small message per frame and per alarm event to every open event stream.  The alarm history is the alarm layer's
+small message per frame, per alarm event and per point whose data stops or resumes (``stale``) to every open
+event stream.  The alarm history is the alarm layer's
 durable one, read through its read-only view (``AlarmView.history``).  Spectra, envelope
 spectra and waveforms are computed on request from the point's latest frame in a worker thread (at most
 :data:`COMPUTE_SLOTS` at once, never on the event loop) and cached per frame.
@@ -66,6 +67,7 @@ CACHE_ENTRIES = 64
 MAX_STREAMS = 16
 STREAM_QUEUE = 256
 HEARTBEAT_S = 15.0
+STALE_CHECK_S = 1.0  # how often the view looks for points whose data stopped (pushed as a "stale" event)
 RATE_PER_S = 20.0
 RATE_BURST = 60.0
 MAX_CLIENTS_TRACKED = 1024
@@ -314,6 +316,8 @@ class ViewService:
         self._slots = asyncio.Semaphore(COMPUTE_SLOTS)
         self._alarm_layer: Any = None
         self._stopping = False
+        self._stale: dict[str, bool] = {}  # point id → stale as last pushed (while streams are open)
+        self._stale_task: asyncio.Task[None] | None = None
         self.actions = actions
         http.hints = ["/ (the view)", "/api/v1", *[h for h in http.hints if h.startswith("/metrics")
                                                     or h.startswith("/healthz") or h.startswith("/readyz")]]
@@ -357,6 +361,7 @@ class ViewService:
     # ------------------------------------------------------------------------------------------ sink
 
     async def start(self) -> None:
+        self._stale_task = asyncio.get_running_loop().create_task(self._watch_staleness(), name="edgevib-view-stale")
         self._alarm_layer = self._find_alarm_layer()
         if self._alarm_layer is not None:
             listeners = getattr(self._alarm_layer, "listeners", None)
@@ -383,6 +388,8 @@ class ViewService:
             latest[r.point_id] = r
         if self._streams:
             for r in latest.values():
+                if self._stale.get(r.point_id):  # data again: fresh now, not at the next check
+                    self._push_stale(r.point_id, False, r)
                 ind = r.indicators
                 self._broadcast("frame", {"point": r.point_id, "frame_end": rfc3339(r.t_end_ns),
                                           "velocity_rms_mm_s": ind.velocity_rms_mm_s, "iso_zone": r.iso_zone,
@@ -390,6 +397,11 @@ class ViewService:
 
     async def stop(self) -> None:
         self._close_streams()
+        task, self._stale_task = self._stale_task, None
+        if task is not None:
+            task.cancel()
+            with contextlib.suppress(asyncio.CancelledError):
+                await task
         layer = self._alarm_layer
         if layer is not None:
             with contextlib.suppress(ValueError, AttributeError):
@@ -418,6 +430,45 @@ class ViewService:
             self._broadcast("alarm", row)
         elif loop is not None:
             loop.call_soon_threadsafe(self._broadcast, "alarm", row)
+
+    # ------------------------------------------------------------------------------------------ staleness
+
+    @staticmethod
+    def _age_stale(p: Any, r: FrameResult | None, now_ns: int) -> tuple[float | None, bool]:
+        """A point's data age (s, since its latest frame arrived) and whether it is stale: no frame yet, or none for
+        longer than max(10 s, 5 frame periods)."""
+        if r is None:
+            return None, True
+        age = max(0.0, (now_ns - r.received_ns) / 1e9)
+        return age, age > max(10.0, 5 * p.hop_samples / p.fs_hz)
+
+    def check_staleness(self) -> None:
+        """Push a ``stale`` event for every point whose data stopped or resumed since the last check (the first
+        check while a stream is open only records: a client reads the state from ``/points``)."""
+        if not self._streams:
+            self._stale.clear()
+            return
+        now = self.clock_ns()
+        for p in self.daemon.config.points:
+            r = self.daemon.latest.get(p.id)
+            stale = self._age_stale(p, r, now)[1]
+            if p.id in self._stale and self._stale[p.id] != stale:
+                self._push_stale(p.id, stale, r, now)
+            self._stale[p.id] = stale
+
+    def _push_stale(self, pid: str, stale: bool, r: FrameResult | None, now_ns: int | None = None) -> None:
+        self._stale[pid] = stale
+        age = None if r is None else max(0.0, ((now_ns or self.clock_ns()) - r.received_ns) / 1e9)
+        self._broadcast("stale", {"point": pid, "stale": stale, "age_s": age,
+                                  "frame_end": None if r is None else rfc3339(r.t_end_ns)})
+
+    async def _watch_staleness(self) -> None:
+        while True:
+            await asyncio.sleep(STALE_CHECK_S)
+            try:
+                self.check_staleness()
+            except Exception as exc:  # the watch must outlive a bad check
+                log.error("view staleness check failed", error=repr(exc))
 
     # ------------------------------------------------------------------------------------------ streams
 
@@ -552,7 +603,6 @@ class ViewService:
         d = self.daemon
         m = d.config.machine(p.machine)
         r: FrameResult | None = d.latest.get(p.id)
-        period_s = p.hop_samples / p.fs_hz
         doc: dict[str, Any] = {
             "id": p.id, "machine": p.machine, "machine_description": m.description, "axis": p.axis,
             "sensor": p.sensor, "sensor_type": p.sensor_type, "description": p.description, "fs_hz": p.fs_hz,
@@ -580,11 +630,11 @@ class ViewService:
                 doc["iso"]["boundaries_mm_s"] = list(zone_boundaries_mm_s(m.group, m.support))
         if r is not None:
             ind = r.indicators
-            age = max(0.0, (now_ns - r.received_ns) / 1e9)
+            age, stale = self._age_stale(p, r, now_ns)
             source = ("estimated" if ind.shaft_estimated else m.speed_mode) if ind.shaft_hz is not None else "none"
             if ind.envelope_band_hz is not None:  # the band the latest frame was demodulated in, and where it is from
                 doc.update(envelope_band_hz=list(ind.envelope_band_hz), envelope_band_source=r.envelope_band_source)
-            doc.update(frame_end=rfc3339(r.t_end_ns), age_s=age, stale=age > max(10.0, 5 * period_s),
+            doc.update(frame_end=rfc3339(r.t_end_ns), age_s=age, stale=stale,
                        iso_zone=r.iso_zone,
                        speed={"hz": ind.shaft_hz, "rpm": None if ind.shaft_hz is None else ind.shaft_hz * 60,
                               "source": source},

@@ -307,6 +307,29 @@ def test_stale_points_are_greyed_with_their_age_and_the_badge_is_not_live(browse
     assert console.errors == []
 
 
+def test_a_stale_event_greys_a_point_before_the_next_list_read(browser: Any, demo: Demo) -> None:
+    page = browser.new_page()
+    console = Console(page)
+    frame_end = api(demo.base, "/api/v1/points/P-102-DE-A")["frame_end"]
+    # the event stream as the view sends it when P-101 and the chosen P-102 stop getting frames (the server side
+    # is test_web_api.py::test_the_event_stream_says_when_a_point_goes_stale_and_fresh_again); /points as served,
+    # where both are still current
+    stale = "".join(f'event: stale\ndata: {{"point":"{pid}","stale":true,"age_s":25.0,"frame_end":"{frame_end}"}}\n\n'
+                    for pid in ("P-101-DE-H", "P-102-DE-A"))
+    body = 'retry: 60000\nevent: hello\ndata: {"api":"v1"}\n\n' + stale
+    page.route(re.compile(r".*/api/v1/events$"),
+               lambda route: route.fulfill(status=200, headers={"Content-Type": "text/event-stream"}, body=body))
+    page.goto(demo.base + "/#P-102-DE-A")
+    page.wait_for_selector("body[data-ready]", timeout=20000)
+    card = '#point-list li[data-point="P-101-DE-H"]'
+    wait_until(page, lambda: page.get_attribute(card, "data-stale") == "true", "the stale event on the list", 4)
+    assert re.search(r"last data \d+ s ago", page.inner_text(card)), page.inner_text(card)
+    assert page.get_attribute("#detail", "data-stale") == "true"
+    assert re.search(r"Not current: last data \d+ s ago", page.inner_text("#stale-note"))
+    page.close()
+    assert console.errors == []
+
+
 def test_envelope_marks_bpfo_on_the_failing_bearing_and_updates_live(browser: Any, demo: Demo) -> None:
     page = browser.new_page()
     console = Console(page)

@@ -254,6 +254,39 @@ async def test_trend_holds_recent_values_and_limits(demo: Running) -> None:
     assert code == 200 and doc["limits"]["indicator"] == "imbalance_1x_mm_s"
 
 
+async def test_the_event_stream_says_when_a_point_goes_stale_and_fresh_again(demo: Running) -> None:
+    # the page greys a point on this event instead of at its next /points read; the stale rule is the API's
+    # (no frame for longer than max(10 s, 5 frame periods)), the clock the view's
+    view = demo.daemon.view
+    assert view is not None
+    real = view.clock_ns
+    pushed: list[dict[str, Any]] = []
+    async with demo.session.get(demo.base + "/api/v1/events") as r:
+        async with asyncio.timeout(30):
+            kind, armed = "", False
+            async for raw in r.content:
+                line = raw.decode().strip()
+                if line.startswith("event: "):
+                    kind = line[7:]
+                elif line.startswith("data: ") and kind == "stale":
+                    pushed.append(json.loads(line[6:]))
+                elif kind == "hello" and line == "" and not armed:
+                    armed = True
+                    view.check_staleness()  # the stream is open: record every point as fresh
+                    view.clock_ns = lambda: real() + 60_000_000_000  # 60 s on without a newer frame
+                    view.check_staleness()
+                    view.clock_ns = real  # frames flow again: the next frame of a point makes it fresh
+                if {d["point"] for d in pushed if not d["stale"]} >= {"P-101-DE-H"}:
+                    break
+    went_stale = {d["point"]: d for d in pushed if d["stale"]}
+    assert set(went_stale) == {p.id for p in demo.daemon.config.points}
+    assert went_stale["P-101-DE-H"]["age_s"] >= 60 and went_stale["P-101-DE-H"]["frame_end"].endswith("Z")
+    fresh = next(d for d in pushed if d["point"] == "P-101-DE-H" and not d["stale"])
+    assert fresh["age_s"] < 10 and pushed.index(fresh) > pushed.index(went_stale["P-101-DE-H"])
+    code, doc = await demo.get("/api/v1/points/P-101-DE-H")
+    assert code == 200 and doc["stale"] is False  # the API agrees
+
+
 async def test_recent_values_are_the_indicator_rows_values(demo: Running) -> None:
     from edgevib.daemon.web.api import indicator_rows, indicator_values
 

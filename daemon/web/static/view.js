@@ -545,6 +545,17 @@
       if (d.point === state.selected || !state.lastRefresh) scheduleRefresh();
     });
     es.addEventListener("alarm", () => scheduleRefresh());
+    // a point's data stopped (no frame for a while) or resumed: grey or un-grey it now, not at the next list read
+    es.addEventListener("stale", ev => {
+      const d = JSON.parse(ev.data);
+      const p = state.points.find(x => x.id === d.point);
+      if (!p) return;
+      p.stale = d.stale;
+      if (d.frame_end) p.frame_end = d.frame_end;
+      if (d.age_s !== null && d.age_s !== undefined) p.age_s = d.age_s - Math.max(0, Date.now() - state.pointsAt) / 1000;
+      renderPoints();
+      if (d.point === state.selected) renderHead(p); else renderBadge();
+    });
     es.onerror = () => { state.connected = false; renderBadge(); };
   }
 
@@ -621,7 +632,7 @@
       });
       document.body.setAttribute("data-ready", "true");
       connectEvents();
-      // the point list is also read every few seconds: a point whose frames stop sends no event to say so
+      // the point list is also read every few seconds (ages, machine states; a stale point also comes as an event)
       setInterval(() => {
         if (Date.now() - state.pointsAt > 4500) loadPoints().catch(e => console.warn(String(e)));
       }, 5000);
