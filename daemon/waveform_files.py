@@ -26,6 +26,7 @@ import csv
 import io
 import math
 import re
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -137,7 +138,8 @@ def _column_kind(col: npt.NDArray[np.float64]) -> str:
     return ""
 
 
-def _read_csv(path: Path, column: str | None) -> Waveform:
+def _csv_table(path: Path) -> tuple[list[str] | None, npt.NDArray[np.float64]]:
+    """A text table's header (its first line when not numeric, else None) and its rows × columns."""
     try:
         text = path.read_text(encoding="utf-8-sig", errors="strict")
     except UnicodeDecodeError:
@@ -166,7 +168,12 @@ def _read_csv(path: Path, column: str | None) -> Waveform:
         raise InputError(f"CSV file {path}: row {bad + 1} has {len(rows[bad])} columns, the first has {width}")
     if header is not None and len(header) != width:
         raise InputError(f"CSV file {path}: the header names {len(header)} columns, the rows have {width}")
-    data = np.asarray(rows, dtype=np.float64)
+    return header, np.asarray(rows, dtype=np.float64)
+
+
+def _read_csv(path: Path, column: str | None) -> Waveform:
+    header, data = _csv_table(path)
+    width = data.shape[1]
     names = header or [""] * width
 
     def label(j: int) -> str:
@@ -174,23 +181,7 @@ def _read_csv(path: Path, column: str | None) -> Waveform:
 
     kinds = [_column_kind(data[:, j]) for j in range(width)]
     listing = ", ".join(label(j) + (f" ({kinds[j]})" if kinds[j] else "") for j in range(width))
-    if column is not None:
-        if column in names:
-            j = names.index(column)
-        else:
-            try:
-                j = int(column)
-            except ValueError:
-                raise InputError(f"CSV file {path} has no column {column!r}; columns: {listing}") from None
-            if not 0 <= j < width:
-                raise InputError(f"CSV file {path} has {width} columns; column {j} does not exist (0-based); "
-                                 f"columns: {listing}")
-    else:
-        candidates = [j for j in range(width) if not kinds[j]]
-        if not candidates:
-            raise InputError(f"CSV file {path}: no column looks like a signal (each is constant or monotonic, "
-                             f"like a time axis); choose one with --column NAME|INDEX; columns: {listing}")
-        j = candidates[0]
+    j = _csv_column(path, column, names, kinds, listing)
     which = f"column {label(j)} of {width}" if width > 1 or names[j] else "column 0 of 1"
     warning = ""
     if column is not None and kinds[j]:
@@ -198,6 +189,28 @@ def _read_csv(path: Path, column: str | None) -> Waveform:
         warning = (f"--column {column} chose column {label(j)}, which is {kinds[j]} ({like}); analysed as asked; "
                    f"columns: {listing}")
     return Waveform(data[:, j].copy(), None, source=which, warning=warning)
+
+
+def _csv_column(path: Path, column: str | None, names: list[str], kinds: list[str], listing: str) -> int:
+    """The column asked for (a header name or a 0-based index), else the first that is neither constant nor
+    monotonic."""
+    width = len(names)
+    if column is None:
+        candidates = [j for j in range(width) if not kinds[j]]
+        if not candidates:
+            raise InputError(f"CSV file {path}: no column looks like a signal (each is constant or monotonic, "
+                             f"like a time axis); choose one with --column NAME|INDEX; columns: {listing}")
+        return candidates[0]
+    if column in names:
+        return names.index(column)
+    try:
+        j = int(column)
+    except ValueError:
+        raise InputError(f"CSV file {path} has no column {column!r}; columns: {listing}") from None
+    if not 0 <= j < width:
+        raise InputError(f"CSV file {path} has {width} columns; column {j} does not exist (0-based); "
+                         f"columns: {listing}")
+    return j
 
 
 # --------------------------------------------------------------------------------------------- MATLAB
@@ -313,57 +326,65 @@ def _read_mat(path: Path, var: str | None, channel: int | None, fs_var: str | No
         _walk(k, v, 0, leaves)
     shown = [f"{k} {tuple(np.shape(v))}" for k, v in leaves[:_LISTED]]
     listing = ", ".join(shown) + (f" … ({len(leaves)} in all)" if len(leaves) > _LISTED else "") or "none"
-    if var is not None:
-        data = _resolve(variables, var, path, listing)
-        if not _is_numeric(data):
-            raise InputError(f"variable {var!r} in {path} is not a numeric array; variables: {listing}")
-        name = var
-    else:
-        vectors = [(k, v) for k, v in leaves if v.size > 1 and sum(d > 1 for d in v.shape) == 1]
-        de = [(k, v) for k, v in vectors if k.endswith("_DE_time")]
-        if len(de) == 1:
-            name, data = de[0]
-        elif len(vectors) == 1:
-            name, data = vectors[0]
-        else:
-            raise InputError(f"{path}: choose the signal with --var NAME (a.b.c for struct fields); "
-                             f"variables: {listing}")
-    data = np.asarray(data)
+    name, data = _mat_signal(path, variables, leaves, var, listing)
     if sum(d > 1 for d in data.shape) <= 1:
         data = data.reshape(-1)
     elif data.ndim == 2 and data.shape[0] < data.shape[1]:
         data = data.T
     x, which = _pick_column(data, channel, f"variable {name!r}")
     scopes = _siblings(variables, name)
-    fs, fs_source = None, ""
-    if fs_var is not None:
-        fs, fs_source = _scalar(_resolve(variables, fs_var, path, listing), f"--fs-var {fs_var}"), \
-            f"file variable {fs_var}"
-    else:
-        for prefix, scope in scopes:
-            hit = next((n for n in FS_NAMES if n in scope and _is_numeric(_unwrap(scope[n]))
-                        and _unwrap(scope[n]).size == 1), None)
-            if hit is not None:
-                fs, fs_source = _scalar(scope[hit], f"{prefix}{hit}"), f"file variable {prefix}{hit}"
-                break
-    rpm, rpm_source = None, ""
+
+    def given(option: str, var_name: str) -> tuple[float | None, str]:
+        return _scalar(_resolve(variables, var_name, path, listing), f"{option} {var_name}"), \
+            f"file variable {var_name}"
+
+    fs, fs_source = given("--fs-var", fs_var) if fs_var is not None else _mat_found(scopes, _is_fs_name)
     if rpm_var is not None and shaft_hz_var is not None:
         raise InputError("--rpm-var and --shaft-hz-var both give the speed: choose one")
     if rpm_var is not None:
-        rpm, rpm_source = _scalar(_resolve(variables, rpm_var, path, listing), f"--rpm-var {rpm_var}"), \
-            f"file variable {rpm_var}"
+        rpm, rpm_source = given("--rpm-var", rpm_var)
     elif shaft_hz_var is not None:
         rpm = 60.0 * _scalar(_resolve(variables, shaft_hz_var, path, listing), f"--shaft-hz-var {shaft_hz_var}")
         rpm_source = f"file variable {shaft_hz_var} (Hz)"
     else:
-        for prefix, scope in scopes:
-            hits = [k for k, v in scope.items() if k.upper().endswith("RPM") and _is_numeric(_unwrap(v))
-                    and _unwrap(v).size == 1]
-            if len(hits) == 1:
-                rpm, rpm_source = _scalar(scope[hits[0]], f"{prefix}{hits[0]}"), f"file variable {prefix}{hits[0]}"
-                break
+        rpm, rpm_source = _mat_found(scopes, lambda k: k.upper().endswith("RPM"), unique=True)
     source = f"variable {name}" + ("" if which.endswith("of 1") else f", {which}")
     return Waveform(x.astype(np.float64), fs, rpm=rpm, source=source, rpm_source=rpm_source, fs_source=fs_source)
+
+
+def _mat_signal(path: Path, variables: dict[str, Any], leaves: list[tuple[str, Any]], var: str | None,
+                listing: str) -> tuple[str, Any]:
+    """The signal's name and array: ``--var``, else the one ``*_DE_time`` vector, else the one vector."""
+    if var is not None:
+        data = _resolve(variables, var, path, listing)
+        if not _is_numeric(data):
+            raise InputError(f"variable {var!r} in {path} is not a numeric array; variables: {listing}")
+        return var, np.asarray(data)
+    vectors = [(k, v) for k, v in leaves if v.size > 1 and sum(d > 1 for d in v.shape) == 1]
+    de = [(k, v) for k, v in vectors if k.endswith("_DE_time")]
+    if len(de) == 1:
+        return de[0][0], np.asarray(de[0][1])
+    if len(vectors) == 1:
+        return vectors[0][0], np.asarray(vectors[0][1])
+    raise InputError(f"{path}: choose the signal with --var NAME (a.b.c for struct fields); variables: {listing}")
+
+
+def _is_fs_name(name: str) -> bool:
+    return name in FS_NAMES
+
+
+def _mat_found(scopes: list[tuple[str, dict[str, Any]]], wanted: Callable[[str], bool], unique: bool = False,
+               ) -> tuple[float | None, str]:
+    """A numeric scalar beside the signal whose name is ``wanted`` (nearest scope first; with ``unique``, a scope
+    with several such names is passed over): its value and where it came from, else ``(None, "")``."""
+    for prefix, scope in scopes:
+        hits = [k for k, v in scope.items() if wanted(k) and _is_numeric(_unwrap(v)) and _unwrap(v).size == 1]
+        if unique and len(hits) != 1:
+            continue
+        if hits:
+            hit = min(hits, key=FS_NAMES.index) if not unique else hits[0]
+            return _scalar(scope[hit], f"{prefix}{hit}"), f"file variable {prefix}{hit}"
+    return None, ""
 
 
 # --------------------------------------------------------------------------------------------- entry point

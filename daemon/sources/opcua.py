@@ -111,6 +111,21 @@ class _NodeState:
     has_last_value: bool = False
 
 
+def _seen_before(state: _NodeState, value: Any, source_ns: int | None) -> bool:
+    """The value was handled already (the same source timestamp, or without timestamps the same value); records
+    it otherwise."""
+    if source_ns is not None:
+        if source_ns == state.last_seen_ns:
+            return True
+        state.last_seen_ns = source_ns
+        return False
+    with contextlib.suppress(Exception):  # comparing odd values must not fail the handler
+        if state.has_last_value and bool(np.array_equal(np.asarray(value), state.last_value)):
+            return True
+    state.last_value, state.has_last_value = value, True
+    return False
+
+
 @contextlib.contextmanager
 def _translated(what: str, endpoint: str) -> Iterator[None]:
     """The one place where asyncua, OS and crypto errors become :class:`SourceError`."""
@@ -202,6 +217,16 @@ def _check_settings(where: str, *, endpoint: str, nodes: dict[str, NodeSpec], sp
         for key, path in (("cert_file", cert_file), ("key_file", key_file)):
             if not path:
                 raise ConfigError(f"{where}.{key}", f"required with security_policy {security_policy!r}")
+    _check_nodes(where, nodes, speed_nodes)
+    for key, value in timings.items():
+        if not (math.isfinite(value) and value > 0):
+            raise ConfigError(f"{where}.{key}", f"{value!r} must be finite and > 0")
+    if timings["reconnect_max_s"] < timings["reconnect_min_s"]:
+        raise ConfigError(f"{where}.reconnect_max_s",
+                          f"{timings['reconnect_max_s']} s is below reconnect_min_s {timings['reconnect_min_s']} s")
+
+
+def _check_nodes(where: str, nodes: dict[str, NodeSpec], speed_nodes: dict[str, str] | None) -> None:
     if not nodes and not speed_nodes:
         raise ConfigError(f"{where}", "no nodes to read (neither block nor speed nodes)")
     for node_id, spec in nodes.items():
@@ -209,12 +234,6 @@ def _check_settings(where: str, *, endpoint: str, nodes: dict[str, NodeSpec], sp
             raise ConfigError(f"{where}.nodes[{node_id!r}].unit", f"{spec.unit!r} is not one of {UNITS}")
         if spec.fs_hz is not None and not (math.isfinite(spec.fs_hz) and spec.fs_hz > 0):
             raise ConfigError(f"{where}.nodes[{node_id!r}].fs_hz", f"{spec.fs_hz!r} must be finite and > 0")
-    for key, value in timings.items():
-        if not (math.isfinite(value) and value > 0):
-            raise ConfigError(f"{where}.{key}", f"{value!r} must be finite and > 0")
-    if timings["reconnect_max_s"] < timings["reconnect_min_s"]:
-        raise ConfigError(f"{where}.reconnect_max_s",
-                          f"{timings['reconnect_max_s']} s is below reconnect_min_s {timings['reconnect_min_s']} s")
 
 
 def _canonical_ids(where: str, node_ids: list[str]) -> dict[str, str]:
@@ -540,15 +559,8 @@ class OpcUaSource:
                 return
             value = dv.Value.Value if dv.Value is not None else None
             source_ns = _to_ns(dv.SourceTimestamp)
-            if source_ns is not None:
-                if source_ns == state.last_seen_ns:
-                    return  # already handled (re-read by a poll, or re-sent after a reconnect)
-                state.last_seen_ns = source_ns
-            else:
-                with contextlib.suppress(Exception):  # comparing odd values must not fail the handler
-                    if state.has_last_value and bool(np.array_equal(np.asarray(value), state.last_value)):
-                        return
-                state.last_value, state.has_last_value = value, True
+            if _seen_before(state, value, source_ns):
+                return  # already handled (re-read by a poll, or re-sent after a reconnect)
             if dv.StatusCode is not None and not dv.StatusCode.is_good():
                 code = dv.StatusCode.value
                 if polled and code in _BAD_SESSION_STATUSES:
@@ -563,15 +575,7 @@ class OpcUaSource:
             if samples is None:
                 self._ingest.reject(self.name, "malformed", f"node {node_id}: {why}", node_id)
                 return
-            duration_ns = round(samples.shape[0] * 1e9 / state.fs_hz)
-            if source_ns is not None and state.last_block_ns is not None and duration_ns > 0:
-                elapsed_ns = source_ns - state.last_block_ns
-                if elapsed_ns > 1.5 * duration_ns:  # whole blocks were written that we never saw
-                    state.next_seq += round(elapsed_ns / duration_ns) - 1
-            if source_ns is not None and not self._stamp_is_end:
-                t0_ns = source_ns
-            else:
-                t0_ns = (source_ns if source_ns is not None else received_ns) - duration_ns
+            t0_ns = self._block_start(state, samples.shape[0], source_ns, received_ns)  # counts missed blocks
             block = Block(sensor_id=state.spec.sensor_id, seq=state.next_seq, t0_ns=t0_ns,
                           fs_hz=state.fs_hz, unit=state.spec.unit, samples=samples)
             state.next_seq += 1
@@ -580,6 +584,20 @@ class OpcUaSource:
             self._ingest.block(self.name, block, received_ns, node_id)
         except Exception as exc:  # never let one value break the subscription or the poll loop
             self._log.exception("opcua_value_failed", node=node_id, error=repr(exc))
+
+    def _block_start(self, state: _NodeState, n: int, source_ns: int | None, received_ns: int) -> int:
+        """The first sample's time of a block of ``n`` samples (from the source timestamp, its end or start, else
+        the time of receipt as its end); whole blocks written since the last one but never seen advance the
+        node's sequence number."""
+        assert state.fs_hz is not None
+        duration_ns = round(n * 1e9 / state.fs_hz)
+        if source_ns is not None and state.last_block_ns is not None and duration_ns > 0:
+            elapsed_ns = source_ns - state.last_block_ns
+            if elapsed_ns > 1.5 * duration_ns:  # whole blocks were written that we never saw
+                state.next_seq += round(elapsed_ns / duration_ns) - 1
+        if source_ns is not None and not self._stamp_is_end:
+            return source_ns
+        return (source_ns if source_ns is not None else received_ns) - duration_ns
 
     def _on_speed(self, node_id: str, dv: ua.DataValue | None, received_ns: int) -> None:
         tag = self._speed_nodes[node_id]
