@@ -210,19 +210,31 @@ def _snapshots(args: argparse.Namespace, scenario: Any) -> int:
     return 0
 
 
+def _wav_writers(out: Path, sim: Simulation) -> dict[str, WavWriter]:
+    """One WAV file per point in ``out`` (created if needed)."""
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise _Fail(f"cannot create {out}: {exc}") from exc
+    return {p.point_id: WavWriter(out / f"{p.point_id}.wav", p.fs_hz) for p in sim.points}
+
+
+async def _flush_mqtt(mqtt: MqttPublisher, url: str, t_end: float) -> None:
+    """Wait until the broker has every message (30 s at most); a lost broker is :class:`_Lost`."""
+    if mqtt.lost is None:
+        await asyncio.to_thread(mqtt.flush, 30.0)
+    if mqtt.lost is not None:
+        raise _Lost(f"lost the MQTT broker {url} after {t_end:.1f} s of simulated time ({mqtt.lost}); "
+                    f"{mqtt.published} messages were published")
+    print(f"edgevib simulate: {mqtt.published} messages published", flush=True)
+
+
 async def _stream(args: argparse.Namespace, sim: Simulation, duration: float | None) -> int:
     mqtt = opcua = None
     wav: dict[str, WavWriter] | None = None
     try:
         if args.wav:
-            out = Path(args.wav)
-            try:
-                out.mkdir(parents=True, exist_ok=True)
-            except OSError as exc:
-                raise _Fail(f"cannot create {out}: {exc}") from exc
-            wav = {}
-            for p in sim.points:
-                wav[p.point_id] = WavWriter(out / f"{p.point_id}.wav", p.fs_hz)
+            wav = _wav_writers(Path(args.wav), sim)
         if args.mqtt:
             mqtt = MqttPublisher(args.mqtt, qos=args.qos, encoding=args.encoding,
                                  connect_timeout_s=args.connect_timeout)
@@ -253,12 +265,7 @@ async def _stream(args: argparse.Namespace, sim: Simulation, duration: float | N
         t_end = await stream(sim, rate=args.rate if streaming else FILES_RATE, duration_s=duration, mqtt=mqtt,
                              opcua=opcua, wav=wav, stop=stop, on_blocks=_progress(duration))
         if mqtt is not None:
-            if mqtt.lost is None:
-                await asyncio.to_thread(mqtt.flush, 30.0)
-            if mqtt.lost is not None:
-                raise _Lost(f"lost the MQTT broker {args.mqtt} after {t_end:.1f} s of simulated time "
-                            f"({mqtt.lost}); {mqtt.published} messages were published")
-            print(f"edgevib simulate: {mqtt.published} messages published", flush=True)
+            await _flush_mqtt(mqtt, args.mqtt, t_end)
         if duration is not None:
             _write_truth(args, sim, args.truth_at if args.truth_at is not None else t_end)
         return 0

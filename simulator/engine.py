@@ -385,19 +385,13 @@ class _PointModel:
 
     # ------------------------------------------------------------------ truth
 
-    def truth(self, t_s: float) -> dict[str, Any]:
-        p, m = self.p, self.m
-        f = float(self.sim._speeds[m.machine_id].hz(t_s))
-        s = f / self.f_ref
-        band = p.velocity_band_hz
-        active_sf = [sf for sf in p.sensor_faults if sf.active(t_s) and sf.type != "dropped_blocks"]
-        flat = [sf for sf in active_sf if sf.type == "flatline"]
-        mean_g = p.sensor_model.dc_offset_g + sum(sf.params["offset_g"] or 0.0 for sf in active_sf
-                                                    if sf.type == "bias_shift")
+    def _tone_lines(self, f: float, t_s: float) -> tuple[F64, F64, dict[str, float]]:
+        """The tonal lines at shaft frequency ``f`` and time ``t_s`` as the sensor sees them: frequencies (Hz),
+        powers (g²) and the velocity r.m.s. (mm/s) of orders 0.5, 1, 2 and 3."""
+        p, s = self.p, f / self.f_ref
         line_nu: list[F64] = []
         line_pw: list[F64] = []
         orders_mm_s: dict[str, float] = {}
-        # tonal lines
         for order, comps in self.tones.items():
             c = sum(coeff * float(self.multiplier(fi, t_s)) for fi, coeff in comps)
             nu = order * f
@@ -415,6 +409,33 @@ class _PointModel:
                 orders_mm_s[name] = v
         nus = np.concatenate(line_nu) if line_nu else np.zeros(0)
         pws = np.concatenate(line_pw) if line_pw else np.zeros(0)
+        return nus, pws, orders_mm_s
+
+    def _fault_entries(self, t_s: float) -> list[dict[str, Any]]:
+        """Each fault of the point with its parameters and stage at ``t_s`` (and its progression, if any)."""
+        faults = []
+        for fs_ in self.faults:
+            mult = float(self.multiplier(fs_.index, t_s))
+            entry: dict[str, Any] = {"type": fs_.type, **{k: v for k, v in fs_.params.items()}}
+            if fs_.progression is not None:
+                entry["stage"] = M.stage_name(mult / fs_.progression.end if fs_.progression.end else 0.0)
+                entry["multiplier"] = mult
+                entry["progression"] = fs_.progression.describe()
+            else:
+                entry["stage"] = fs_.stage
+            faults.append(entry)
+        return faults
+
+    def truth(self, t_s: float) -> dict[str, Any]:
+        p, m = self.p, self.m
+        f = float(self.sim._speeds[m.machine_id].hz(t_s))
+        s = f / self.f_ref
+        band = p.velocity_band_hz
+        active_sf = [sf for sf in p.sensor_faults if sf.active(t_s) and sf.type != "dropped_blocks"]
+        flat = [sf for sf in active_sf if sf.type == "flatline"]
+        mean_g = p.sensor_model.dc_offset_g + sum(sf.params["offset_g"] or 0.0 for sf in active_sf
+                                                    if sf.type == "bias_shift")
+        nus, pws, orders_mm_s = self._tone_lines(f, t_s)
         to_v = M.G0_M_S2 * 1e3 / (2 * math.pi)
         in_band = (nus >= band[0]) & (nus <= band[1])
         v2 = float(np.sum(pws[in_band] * (to_v / nus[in_band]) ** 2))
@@ -453,17 +474,7 @@ class _PointModel:
             state = "stopped"
         else:
             state = {"A": "normal", "B": "normal", "C": "alert", "D": "danger"}[zone]
-        faults = []
-        for fs_ in self.faults:
-            mult = float(self.multiplier(fs_.index, t_s))
-            entry: dict[str, Any] = {"type": fs_.type, **{k: v for k, v in fs_.params.items()}}
-            if fs_.progression is not None:
-                entry["stage"] = M.stage_name(mult / fs_.progression.end if fs_.progression.end else 0.0)
-                entry["multiplier"] = mult
-                entry["progression"] = fs_.progression.describe()
-            else:
-                entry["stage"] = fs_.stage
-            faults.append(entry)
+        faults = self._fault_entries(t_s)
         main = max(faults, key=lambda e: M.STAGES.index(e["stage"])) if faults else None
         out: dict[str, Any] = {
             "machine": m.machine_id, "axis": p.axis, "sensor": p.sensor_id, "sensor_type": p.sensor_type,

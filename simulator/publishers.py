@@ -339,6 +339,29 @@ class WavWriter:
 # --------------------------------------------------------------------------------------------- loop
 
 
+async def _publish_speeds(sim: Simulation, t_s: float, mqtt: MqttPublisher | None,
+                          opcua: OpcUaPublisher | None) -> None:
+    """Every measured machine speed at ``t_s`` in r/min (a machine without ``speed_tag`` has no measurement)."""
+    for m in sim.machines:
+        if not m.speed_tag:
+            continue
+        rpm = sim.speed_hz(m.machine_id, t_s) * 60
+        if mqtt is not None:
+            mqtt.publish_speed(sim.speed_topic(m.machine_id), rpm)
+        if opcua is not None:
+            await opcua.publish_speed(m.machine_id, rpm)
+
+
+async def _publish_block(sim: Simulation, pid: str, b: Block, mqtt: MqttPublisher | None,
+                         opcua: OpcUaPublisher | None, wav: dict[str, WavWriter] | None) -> None:
+    if mqtt is not None:
+        mqtt.publish_block(sim.topic(pid), b)
+    if opcua is not None:
+        await opcua.publish_block(b)
+    if wav is not None:
+        wav[pid].write(b.samples)
+
+
 async def stream(sim: Simulation, *, rate: float, duration_s: float | None,
                  mqtt: MqttPublisher | None = None, opcua: OpcUaPublisher | None = None,
                  wav: dict[str, WavWriter] | None = None, max_step_s: float = 1.0,
@@ -364,24 +387,11 @@ async def stream(sim: Simulation, *, rate: float, duration_s: float | None,
         step_to = min(target, t_sim + max_step_s)
         if step_to > t_sim:
             while next_speed <= step_to:
-                for m in sim.machines:
-                    if not m.speed_tag:  # the plant has no speed measurement of this machine
-                        continue
-                    rpm = sim.speed_hz(m.machine_id, next_speed) * 60
-                    if mqtt is not None:
-                        mqtt.publish_speed(sim.speed_topic(m.machine_id), rpm)
-                    if opcua is not None:
-                        await opcua.publish_speed(m.machine_id, rpm)
+                await _publish_speeds(sim, next_speed, mqtt, opcua)
                 next_speed += SPEED_INTERVAL_S
             blocks = sim.blocks_until(step_to)
             for b in blocks:
-                pid = sensor_to_point[b.sensor_id]
-                if mqtt is not None:
-                    mqtt.publish_block(sim.topic(pid), b)
-                if opcua is not None:
-                    await opcua.publish_block(b)
-                if wav is not None:
-                    wav[pid].write(b.samples)
+                await _publish_block(sim, sensor_to_point[b.sensor_id], b, mqtt, opcua, wav)
             if on_blocks is not None:
                 on_blocks(step_to, blocks)
             t_sim = step_to
