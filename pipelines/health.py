@@ -137,8 +137,8 @@ def _noise_density(xc: npt.NDArray[np.float64], fs_hz: float,
     return np.asarray(np.sqrt(med) * 1e6, dtype=np.float64)
 
 
-def _spike_counts(x: npt.NDArray[np.float64], spike_sigma: float) -> tuple[npt.NDArray[np.int64],
-                                                                           npt.NDArray[np.float64]]:
+def _spike_counts(x: npt.NDArray[np.float64], spike_sigma: float, scratch: npt.NDArray[np.bool_] | None = None
+                  ) -> tuple[npt.NDArray[np.int64], npt.NDArray[np.float64]]:
     """Isolated spikes of rows ``x`` (rows, samples) and their robust spread σ_r = 1.4826 × MAD, shape (rows,).
 
     A spike is a sample farther than ``spike_sigma`` × σ_r from the median with nothing of at least a third of its
@@ -147,10 +147,13 @@ def _spike_counts(x: npt.NDArray[np.float64], spike_sigma: float) -> tuple[npt.N
     either frame edge are not judged (the window is incomplete there).
     """
     c, n = x.shape
-    med = _median_of_sorted(np.sort(x, axis=1))
-    xc_abs = np.abs(x - med)
-    sigma_r = _MAD_TO_SIGMA * _median_of_sorted(np.sort(xc_abs, axis=1))
-    big = xc_abs > spike_sigma * np.where(sigma_r > 0, sigma_r, np.inf)
+    if scratch is None:
+        scratch = np.empty((c, n), dtype=np.bool_)
+    med = _medians(x, scratch)
+    xc_abs = np.subtract(x, med)  # (one row-sized temporary at a time: large ones that overlap cost page faults)
+    np.abs(xc_abs, out=xc_abs)
+    sigma_r = _MAD_TO_SIGMA * _medians(xc_abs, scratch)
+    big = np.greater(xc_abs, spike_sigma * np.where(sigma_r > 0, sigma_r, np.inf), out=scratch)
     spikes = np.zeros(c, dtype=np.int64)
     # a candidate within the window of either frame edge is not judged: its ringing may lie beyond the edge
     # (an impact struck in the last samples), and overlapping frames see it in their interior
@@ -172,15 +175,44 @@ def _spike_counts(x: npt.NDArray[np.float64], spike_sigma: float) -> tuple[npt.N
     return spikes, sigma_r[:, 0]
 
 
-def _median_of_sorted(s: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:
-    """``np.median(x, axis=1, keepdims=True)`` from the rows of ``x`` sorted (the same values: the middle sample,
-    or the mean of the middle two).  numpy's sort is vectorized and runs about twice as fast as the partition
-    ``np.median`` uses, even counting the full order."""
-    n = s.shape[1]
+def _medians(a: npt.NDArray[np.float64], scratch: npt.NDArray[np.bool_]) -> npt.NDArray[np.float64]:
+    """``np.median(a, axis=1, keepdims=True)``, the same values (the middle sample, or the mean of the middle two),
+    without ordering whole rows (``scratch``: a boolean array of ``a``'s shape, overwritten).
+
+    A bracket [lo, hi] is taken from a fixed subsample of 256 samples of each row (its order statistics 3 standard
+    deviations of the sample median's rank either side of the middle); comparison passes count the samples below
+    it and mark those inside, and where the middle ranks fall inside, only the samples inside (about a fifth of
+    the row) are partitioned, at the middle ranks less the count below.  A row whose bracket misses them (an
+    unlucky subsample) is partitioned whole.  Either way the order statistics are exact.  On the project's machine,
+    for 16,384 samples: about 150 µs a row, against 580 for a sort (numpy's sort of long float64 rows is slow
+    there) and 200 for a whole-row partition, which also allocates a copy of the batch.
+    """
+    rows, n = a.shape
     h = n // 2
-    if n % 2:
-        return s[:, h : h + 1].copy()
-    out: npt.NDArray[np.float64] = (s[:, h - 1 : h] + s[:, h : h + 1]) / 2.0
+    ranks = [h] if n % 2 else [h - 1, h]
+    out = np.empty((rows, 1), dtype=np.float64)
+    sub_idx = _subsample(n, 256)
+    m = sub_idx.size
+    j = math.ceil(1.5 * math.sqrt(m)) + 2  # 3 × the spread of the sample median's rank, √m / 2
+    whole: npt.NDArray[np.intp] = np.arange(rows)
+    if m == 256 and n >= 4 * m:
+        sub = np.sort(a[:, sub_idx], axis=1)
+        lo, hi = sub[:, m // 2 - j : m // 2 - j + 1], sub[:, m // 2 + j : m // 2 + j + 1]
+        below = _count(np.less(a, lo, out=scratch))
+        np.less_equal(a, hi, out=scratch)
+        scratch &= a >= lo
+        inside = _count(scratch)
+        fits = (below <= ranks[0]) & (below + inside > ranks[-1])
+        whole = np.flatnonzero(~fits)
+        vals = a[scratch]  # the rows' samples inside their brackets, row after row
+        end = np.cumsum(inside).tolist()
+        for i in np.flatnonzero(fits).tolist():
+            k = [r - int(below[i]) for r in ranks]
+            part = np.partition(vals[end[i] - int(inside[i]) : end[i]], k)
+            out[i, 0] = part[k[0]] if n % 2 else (part[k[0]] + part[k[1]]) / 2.0
+    for i in whole.tolist():
+        part = np.partition(a[i], ranks)
+        out[i, 0] = part[h] if n % 2 else (part[h - 1] + part[h]) / 2.0
     return out
 
 
@@ -190,9 +222,10 @@ def _count(mask: npt.NDArray[np.bool_]) -> npt.NDArray[np.int64]:
 
 
 @lru_cache(maxsize=16)
-def _subsample(n: int) -> npt.NDArray[np.int64]:
-    """A fixed, non-periodic subsample of up to 1024 of n sample indices (a Weyl sequence; kept per frame length)."""
-    sub = np.unique((np.arange(min(n, 1024)) * 0.6180339887498949 * n).astype(np.int64) % n)
+def _subsample(n: int, size: int = 1024) -> npt.NDArray[np.int64]:
+    """A fixed, non-periodic subsample of up to ``size`` of n sample indices (a Weyl sequence; kept per frame
+    length)."""
+    sub = np.unique((np.arange(min(n, size)) * 0.6180339887498949 * n).astype(np.int64) % n)
     sub.flags.writeable = False
     return sub
 
@@ -311,7 +344,8 @@ def check_health(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec | None = 
     exact = np.arange(c) if not screen else np.flatnonzero(~_spike_free(x, hi, lo, std, spec.spike_sigma,
                                                                               scratch))
     if exact.size:
-        spikes[exact], sigma_r[exact] = _spike_counts(x[exact], spec.spike_sigma)
+        rows = x if exact.size == c else x[exact]
+        spikes[exact], sigma_r[exact] = _spike_counts(rows, spec.spike_sigma, scratch[: exact.size])
 
     noise: npt.NDArray[np.float64] | None = None
     if spec.noise_density_ug_rthz is not None and turning.any():
