@@ -24,17 +24,17 @@ import json
 import math
 import time
 from collections import OrderedDict, deque
-from collections.abc import Awaitable, Callable, Iterable
+from collections.abc import Awaitable, Callable, Iterable, Mapping
 from importlib import resources
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Protocol
 
 import numpy as np
 from aiohttp import web
 
 from edgevib.daemon import __version__
 from edgevib.daemon.indicators import INDICATORS, REGISTRY, Indicator
-from edgevib.daemon.interfaces import FrameResult
+from edgevib.daemon.interfaces import AlarmView, FrameResult
 from edgevib.daemon.logs import get_logger
 from edgevib.daemon.timestamps import rfc3339_utc
 from edgevib.daemon.web import panels
@@ -44,6 +44,7 @@ from edgevib.pipelines.types import PipelineError
 
 if TYPE_CHECKING:
     from edgevib.daemon.config import Config
+    from edgevib.daemon.trendwatch import TrendWatch
 
 __all__ = [
     "API_VERSION",
@@ -51,6 +52,7 @@ __all__ = [
     "MAX_STREAMS",
     "RATE_BURST",
     "RATE_PER_S",
+    "ViewHost",
     "ViewService",
     "dumps",
     "indicator_rows",
@@ -290,19 +292,44 @@ class _Stream:
 # ---------------------------------------------------------------------------------------------- the service
 
 
+class ViewHost(Protocol):
+    """What the view reads of the running daemon (:class:`~edgevib.daemon.app.Daemon` is one): its configuration,
+    each point's latest frame and analysis state (``.plan``), readiness, the alarm layer's read-only view and the
+    trend layer (``None`` when off)."""
+
+    @property
+    def config(self) -> Config: ...
+
+    @property
+    def latest(self) -> Mapping[str, FrameResult]: ...
+
+    @property
+    def points(self) -> Mapping[str, Any]: ...
+
+    @property
+    def alarm_view(self) -> AlarmView | None: ...
+
+    @property
+    def trend_watch(self) -> TrendWatch | None: ...
+
+    def readiness(self) -> tuple[bool, str]: ...
+
+    def state_text(self, point_id: str) -> str | None: ...
+
+
+
 class ViewService:
     """The view on the daemon's listener (see the module docstring).
 
     Parameters
     ----------
-    daemon : the running :class:`~edgevib.daemon.app.Daemon` (its ``latest`` frames, ``points`` (plans),
-        ``config``, ``stats``, ``sinks``, ``readiness``).
+    daemon : the running daemon (:class:`ViewHost`).
     http : the listener to add the routes to.
     """
 
     lossless = False
 
-    def __init__(self, daemon: Any, http: HttpListener, *, recent_capacity: int = 720,
+    def __init__(self, daemon: ViewHost, http: HttpListener, *, recent_capacity: int = 720,
                  recent_interval_s: float = 5.0, actions: Any = None,
                  clock_ns: Callable[[], int] = time.time_ns) -> None:
         self.daemon = daemon
@@ -369,13 +396,9 @@ class ViewService:
                 listeners.append(self._on_alarm_event)
 
     def _find_alarm_layer(self) -> Any:
-        view = getattr(self.daemon, "alarm_view", None)
-        if callable(getattr(view, "snapshot", None)) and callable(getattr(view, "handle_command", None)):
-            return view
-        for sink in getattr(self.daemon, "sinks", ()):
-            if callable(getattr(sink, "snapshot", None)) and callable(getattr(sink, "handle_command", None)):
-                return sink
-        return None
+        # the alarm layer behind the daemon's AlarmView: its snapshot, commands and event listeners are read here
+        # until AlarmView names them
+        return self.daemon.alarm_view
 
     @property
     def alarm_layer(self) -> Any:
@@ -558,8 +581,7 @@ class ViewService:
         })
 
     def _state_text(self, pid: str) -> str | None:
-        fn = getattr(self.daemon, "state_text", None)
-        return fn(pid) if callable(fn) else None
+        return self.daemon.state_text(pid)
 
     def _alarm_rows(self, point: str | None = None) -> tuple[list[dict[str, Any]], dict[str, Any]]:
         rows, sensors, _ = self._alarm_snapshot(point)
@@ -579,24 +601,15 @@ class ViewService:
         return (row.get("severity") != "normal" or row.get("state") in ACTIVE_STATES
                 or row.get("shelved_until_s") is not None)
 
-    def _machine_state(self, machine_id: str, pid: str, r: FrameResult | None) -> str:
-        state = getattr(r, "machine_state", None)
-        if state is not None:  # the machine state the daemon judged the latest frame in
-            return str(getattr(state, "state", state))
-        layer = self._alarm_layer
-        view = getattr(self.daemon, "alarm_view", None)
-        if view is not None:  # the machine's state as the alarm layer judges it now (AlarmView.machine_view)
+    def _machine_state(self, machine_id: str, r: FrameResult | None) -> str:
+        if r is not None and r.machine_state is not None:  # the machine state the daemon judged the latest frame in
+            return r.machine_state.state
+        view = self.daemon.alarm_view
+        if view is not None:  # the machine's state as the alarm layer judges it now
             state = view.machine_view(machine_id).get("state")
             if isinstance(state, str):
                 return state
-        reason = getattr(layer, "suppressed", {}).get(pid) if layer is not None else None
-        if reason == "machine-stopped":
-            return "stopped"
-        if reason == "start-up-grace":
-            return "starting"
-        if r is None:
-            return "unknown"
-        return "running" if r.indicators.shaft_hz is not None else "unknown"
+        return "running" if r is not None and r.indicators.shaft_hz is not None else "unknown"
 
     def _point_doc(self, p: Any, rows: list[dict[str, Any]], sensors: dict[str, Any], now_ns: int,
                    judged: dict[str, Any] | None = None) -> dict[str, Any]:
@@ -611,7 +624,7 @@ class ViewService:
             "envelope_band_hz": list(p.envelope_band_hz) if p.envelope_band_hz else None,
             "envelope_band_source": p.envelope_band_origin if p.envelope_band_hz else None,
             "envelope_note": p.envelope_note, "bearing": p.bearing is not None,
-            "machine_state": self._machine_state(m.id, p.id, r),
+            "machine_state": self._machine_state(m.id, r),
             "iso": None if m.group is None else {"group": m.group, "support": m.support},
             "alarm_state": self._state_text(p.id) or "-",
             "alarms": [row for row in rows if row.get("point") == p.id and self._active(row)],
@@ -778,7 +791,7 @@ class ViewService:
     def _limit_lines(self, p: Any, indicator: str, limits: dict[str, Any]) -> list[dict[str, Any]]:
         """Every limit line of a series (``{label, value, unit, kind}``): the trend layer's read-only view when it
         runs; otherwise the alarm layer's set points and the machine's ISO 20816-3 zone boundaries."""
-        watch = getattr(self.daemon, "trend_watch", None)
+        watch = self.daemon.trend_watch
         if watch is not None:
             return list(watch.limit_lines(p.id, indicator))
         unit = indicator_unit(indicator)
@@ -796,7 +809,7 @@ class ViewService:
 
     async def _history_trend(self, point: str, indicator: str, since: float, limit: int) -> dict[str, Any] | None:
         """The series from the daemon's severity history with the trend layer's projection, when it keeps one."""
-        watch = getattr(self.daemon, "trend_watch", None)
+        watch = self.daemon.trend_watch
         if watch is None:
             return None
         from edgevib.daemon.trendwatch import HISTORY_INDICATORS
@@ -844,14 +857,12 @@ class ViewService:
             since = None if since_text is None else parse_time_s(since_text, self.clock_ns() / 1e9)
         except ValueError as exc:
             return problem(400, str(exc))
-        view = getattr(self.daemon, "alarm_view", None)
-        read = getattr(view, "history", None)
-        if not callable(read):
-            why = "no alarm layer ([alarms] enabled = false)" if view is None else "the alarm layer keeps none"
+        view = self.daemon.alarm_view
+        if view is None:
             return json_response({"api": API_VERSION, "available": False, "events": [],
-                                  "source": f"no alarm history: {why}"})
+                                  "source": "no alarm history: no alarm layer ([alarms] enabled = false)"})
         try:
-            rows = await asyncio.to_thread(read, point, since_s=since, limit=limit)
+            rows = await asyncio.to_thread(view.history, point, since_s=since, limit=limit)
         except ValueError as exc:
             return problem(400, str(exc))
         return json_response({"api": API_VERSION, "available": True,
