@@ -469,9 +469,7 @@ class MqttConnection(_WithSecrets):
             if parts.username or parts.password:
                 raise _Problem("url", "credentials in the URL are not accepted; use username and password_file or "
                                "password_env")
-        if self.reconnect_max_s < self.reconnect_min_s:
-            raise _Problem("reconnect_max_s", f"{self.reconnect_max_s:g} s is below reconnect_min_s "
-                           f"{self.reconnect_min_s:g} s")
+        _not_below(self, "reconnect_min_s", "reconnect_max_s")
         if self.key_file is not None and self.cert_file is None:
             raise _Problem("cert_file", "key_file is given without cert_file")
         if (self.key_password_file or self.key_password_env) and self.cert_file is None:
@@ -565,9 +563,7 @@ class OpcUaSourceConfig(_WithSecrets):
 
     @model_validator(mode="after")
     def _opcua(self) -> OpcUaSourceConfig:
-        if self.reconnect_max_s < self.reconnect_min_s:
-            raise _Problem("reconnect_max_s", f"{self.reconnect_max_s:g} s is below reconnect_min_s "
-                           f"{self.reconnect_min_s:g} s")
+        _not_below(self, "reconnect_min_s", "reconnect_max_s")
         if not self.endpoint.startswith("opc.tcp://"):
             raise _Problem("endpoint", f"{self.endpoint!r} is not an opc.tcp:// URL")
         if self.security_policy != "None" and (self.cert_file is None or self.key_file is None):
@@ -767,6 +763,12 @@ class LimitConfigTable(_Table):
         if self.rule is not None:
             return LevelRule(self.rule), LevelRule("iso")
         return self.alert, self.danger
+
+
+def _not_below(t: Any, low: str, high: str) -> None:
+    """A backoff's cap ``high`` (s) is not below its start ``low``."""
+    if getattr(t, high) < getattr(t, low):
+        raise _Problem(high, f"{getattr(t, high):g} s is below {low} {getattr(t, low):g} s")
 
 
 def _one_delay(t: Any) -> None:
@@ -1002,8 +1004,7 @@ class WebhookConfig(_WithSecrets):
     def _webhook(self) -> WebhookConfig:
         if not self.url.startswith(("http://", "https://")):
             raise _Problem("url", f"{self.url!r} is not an http:// or https:// URL")
-        if self.retry_max_s < self.retry_min_s:
-            raise _Problem("retry_max_s", f"{self.retry_max_s:g} s is below retry_min_s {self.retry_min_s:g} s")
+        _not_below(self, "retry_min_s", "retry_max_s")
         return self
 
     @property
@@ -1280,6 +1281,12 @@ def _did_you_mean(key: str, known: list[str]) -> str:
     lower = {k.lower(): k for k in known}
     match = lower.get(key.lower()) or next(iter(difflib.get_close_matches(key, known, n=1, cutoff=0.75)), None)
     return f"; did you mean `{match}`?" if match else ""
+
+
+def _unknown_ref(key: str, what: str, name: str, known: Mapping[str, Any]) -> ConfigError:
+    """A reference to a ``what`` (machine, source) that the file does not configure."""
+    return ConfigError(key, f"unknown {what} {name!r} (configured: {', '.join(known) or 'none'})"
+                            f"{_did_you_mean(name, list(known))}")
 
 
 def _unwrap(t: Any) -> Any:
@@ -1572,11 +1579,9 @@ def _resolve_point(p: PointConfig, i: int, cfg: Config) -> PointConfig:
     key = f"points[{i}]"
     machines, sources = {m.id: m for m in cfg.machines}, {s.name: s for s in cfg.sources}
     if p.machine not in machines:
-        raise ConfigError(f"{key}.machine", f"unknown machine {p.machine!r} (configured: "
-                          f"{', '.join(machines) or 'none'}){_did_you_mean(p.machine, list(machines))}")
+        raise _unknown_ref(f"{key}.machine", "machine", p.machine, machines)
     if p.source not in sources:
-        raise ConfigError(f"{key}.source", f"unknown source {p.source!r} (configured: "
-                          f"{', '.join(sources) or 'none'}){_did_you_mean(p.source, list(sources))}")
+        raise _unknown_ref(f"{key}.source", "source", p.source, sources)
     if sources[p.source].type == "opcua" and p.node is None:
         raise ConfigError(f"{key}.node", f"source {p.source!r} is OPC UA: the point needs the node id of its array")
     r = p.model_copy(update={"sensor": p.sensor or p.id, "bandwidth_hz": p.usable_bandwidth_hz,
@@ -1594,8 +1599,7 @@ def _connection_of(owner: _ReusesSource, key: str, cfg: Config) -> MqttConnectio
         sources = {s.name: s for s in cfg.sources}
         src = sources.get(owner.source)
         if src is None:
-            raise ConfigError(f"{key}.source", f"unknown source {owner.source!r} (configured: "
-                              f"{', '.join(sources) or 'none'}){_did_you_mean(owner.source, list(sources))}")
+            raise _unknown_ref(f"{key}.source", "source", owner.source, sources)
         if not isinstance(src, MqttSourceConfig):
             raise ConfigError(f"{key}.source", f"source {owner.source!r} is {src.type}, not mqtt")
         return src.model_copy(update={"client_id": f"{src.client_id}-{owner._SUFFIX}"})
@@ -1627,8 +1631,7 @@ def _resolve_machines(cfg: Config) -> tuple[MachineConfig, ...]:
             continue
         key = f"machines[{i}].speed_tag"
         if tag.source not in sources:
-            raise ConfigError(f"{key}.source", f"unknown source {tag.source!r} (configured: "
-                              f"{', '.join(sources) or 'none'}){_did_you_mean(tag.source, list(sources))}")
+            raise _unknown_ref(f"{key}.source", "source", tag.source, sources)
         kind = sources[tag.source].type
         if kind == "opcua" and (tag.node is None or tag.topic is not None):
             raise ConfigError(f"{key}.node", f"source {tag.source!r} is OPC UA: the speed tag needs a node "

@@ -59,6 +59,7 @@ from edgevib.daemon.offline import (
     _band,
     _bearing,
     _check_samples,
+    _clean,
     _full_scale,
     _iso_class,
     _number,
@@ -575,17 +576,6 @@ def configure_replay(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--json", action="store_true", help="one JSON object per snapshot")
     parser.add_argument("--report", metavar="OUT.html", help="also write a self-contained HTML report: the latest "
                         "snapshot's spectrum, envelope, waveform and indicators, and the trend with its projection")
-
-
-def _clean(v: Any) -> Any:
-    if isinstance(v, dict):
-        return {k: _clean(x) for k, x in v.items()}
-    if isinstance(v, list | tuple):
-        return [_clean(x) for x in v]
-    if isinstance(v, float | np.floating):
-        f = float(v)
-        return f if math.isfinite(f) else None
-    return v
 
 
 class _Progress:

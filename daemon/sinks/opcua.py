@@ -50,7 +50,7 @@ from asyncua.common.node import Node
 from asyncua.server.server import Server
 from asyncua.ua.status_codes import StatusCodes
 
-from edgevib.daemon.config import Config
+from edgevib.daemon.config import Config, parse_listen
 from edgevib.daemon.indicators import FAMILIES, REGISTRY, Indicator
 from edgevib.daemon.interfaces import ConfigError, FrameResult
 
@@ -124,14 +124,9 @@ def _variables(orders: Iterable[str]) -> list[tuple[str, str, str]]:
 
 
 def _parse_listen(listen: str) -> tuple[str, int]:
-    host, sep, port_s = listen.rpartition(":")
-    host = host.strip("[]")
-    try:
-        port = int(port_s)
-    except ValueError:
-        port = -1
-    if not sep or not host or not 0 < port < 65536:
-        raise ConfigError("publish.opcua.listen", f"{listen!r} is not HOST:PORT with a port in 1..65535")
+    host, port = parse_listen(listen, "publish.opcua.listen")
+    if port == 0:
+        raise ConfigError("publish.opcua.listen", "the OPC UA server needs a fixed port (1..65535), not 0")
     return host, port
 
 

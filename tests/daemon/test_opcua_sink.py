@@ -188,7 +188,8 @@ async def test_reconfigure_removes_and_adds_points(sink: OpcUaIndicatorSink, cli
 
 @pytest.mark.parametrize(("kw", "problem"), [
     ({"listen": "127.0.0.1"}, "HOST:PORT"),
-    ({"listen": "127.0.0.1:99999"}, "HOST:PORT"),
+    ({"listen": "127.0.0.1:99999"}, "outside 0..65535"),
+    ({"listen": "127.0.0.1:0"}, "fixed port"),
     ({"site": "a/b"}, "contains '/'"),
     ({"points": [("P/1", "P-101")]}, "contain no '/'"),
 ])
