@@ -32,7 +32,9 @@ Each row (one per instance) reports, over the measurement window after a warm-up
   growth from the daemon's construction to the window's end, ÷ its channels);
 * ``publisher_cores``: CPU of all publisher processes together (the load generator's own cost, for context);
 * diagnostics: ``slow_frames`` over 250 ms and in how many distinct seconds they fell (one stall or many),
-  ``loop_lag_max_ms`` the longest the event loop was unresponsive, ``thread_cores`` CPU per thread;
+  ``loop_lag_max_ms`` the longest the event loop was unresponsive, ``thread_cores`` CPU per thread,
+  ``faults_per_frame`` the daemon process's minor page faults per analysed frame (memory handed back to the
+  system and faulted in again: see ``--keep-freed-memory``);
 * ``sustained``: every expected frame analysed (≥ 97 %), none dropped or rejected, p99 < 250 ms.
 
 A level's summary adds the instances up (channels, frames, cores, ``channels_per_core``); ``sustained_channels``
@@ -71,6 +73,7 @@ BLOCK = 16384
 PERIOD_NS = round(BLOCK * 1e9 / FS_HZ)  # 640 ms, exact
 TOPIC = "bench/{sensor}/block"
 P99_TARGET_MS = 250.0
+CHANNELS_PER_CORE_TARGET = 1000.0  # issue 14: channels of 25.6 kHz per core of the daemon's own CPU
 _HIST = "edgevib_analysis_latency_seconds"
 _SEQ_T0 = struct.Struct("<Qq")  # seq and t0_ns at offset 8 of the binary block header (common/wire.py)
 
@@ -413,6 +416,7 @@ class Row:
     thread_cores: dict[str, float]
     publish_lag_p99_ms: float = math.nan
     publisher_cores: float = math.nan
+    faults_per_frame: float = math.nan
 
 
 def _warm_up_analysis(overlap: float) -> None:
@@ -422,6 +426,33 @@ def _warm_up_analysis(overlap: float) -> None:
     from edgevib.pipelines.analysis import analyze_frames
 
     analyze_frames(channel_signal(0, 0)[None, :], plan, shaft_hz=None)
+
+
+M_TRIM_THRESHOLD, M_MMAP_THRESHOLD = -1, -3  # glibc's mallopt parameters (malloc.h)
+
+
+def keep_freed_memory(trim_mb: int = 512, mmap_mb: int = 32) -> bool:
+    """Diagnostic: glibc keeps freed memory for reuse (``mallopt``: trim threshold ``trim_mb``, every block under
+    ``mmap_mb`` from the heap) instead of handing it back and faulting it in again.
+
+    By default glibc returns the top of the heap once more than twice the largest recently freed block lies free
+    there, and allocates blocks above a moving threshold with ``mmap``: a process whose working set is several
+    array temporaries of a few MB (an analysis batch) can fault every page of them in on every call, and a page
+    fault costs microseconds on a virtual machine.  Returns whether the settings took (False off glibc).
+    """
+    import ctypes
+    import ctypes.util
+
+    name = ctypes.util.find_library("c")
+    if name is None:
+        return False
+    try:
+        libc = ctypes.CDLL(name)
+        mallopt = libc.mallopt
+    except (OSError, AttributeError):
+        return False
+    mallopt.argtypes, mallopt.restype = [ctypes.c_int, ctypes.c_int], ctypes.c_int
+    return bool(mallopt(M_TRIM_THRESHOLD, trim_mb << 20)) and bool(mallopt(M_MMAP_THRESHOLD, mmap_mb << 20))
 
 
 @dataclass(frozen=True)
@@ -436,6 +467,7 @@ class InstanceSpec:
     alarms: bool
     cpu: int | None
     uvloop: bool = False
+    keep_freed: bool = False
 
 
 def _instance_main(spec: InstanceSpec, out: Any, ctl: Any) -> None:
@@ -445,6 +477,8 @@ def _instance_main(spec: InstanceSpec, out: Any, ctl: Any) -> None:
     from edgevib.daemon.logs import configure_logging
 
     configure_logging("error", "json", stream=sys.stderr)
+    if spec.keep_freed:
+        keep_freed_memory()
     _warm_up_analysis(spec.overlap)
     if spec.uvloop:  # diagnostic: the same daemon on uvloop's event loop (not a dependency of edgevib)
         import uvloop  # type: ignore[import-not-found,unused-ignore]
@@ -490,10 +524,12 @@ async def _run_instance(spec: InstanceSpec, out: Any, ctl: Any) -> Row:
         window_start_ns, window_end_ns = await asyncio.to_thread(ctl.get, True, 300)
         await asyncio.sleep(max(0.0, (window_start_ns - time.time_ns()) / 1e9))
         cpu0, dropped0, t0 = _cpu_s(), sum(daemon.stats.frames_dropped.values()), time.time_ns()
+        faults0 = resource.getrusage(resource.RUSAGE_SELF).ru_minflt
         threads0 = _thread_cpu_s()
         hist0 = histogram_buckets(await asyncio.to_thread(_scrape, daemon.metrics.url or ""), _HIST)
         await asyncio.sleep(max(0.0, (window_end_ns - time.time_ns()) / 1e9))
         cpu1, dropped1, t1 = _cpu_s(), sum(daemon.stats.frames_dropped.values()), time.time_ns()
+        faults1 = resource.getrusage(resource.RUSAGE_SELF).ru_minflt
         threads1 = _thread_cpu_s()
         hist1 = histogram_buckets(await asyncio.to_thread(_scrape, daemon.metrics.url or ""), _HIST)
         rss_end = _rss_mb()
@@ -528,7 +564,8 @@ async def _run_instance(spec: InstanceSpec, out: Any, ctl: Any) -> Row:
         mem_per_channel_mb=round((rss_end - rss_base) / max(1, own), 3), seconds=round(wall_s, 1),
         slow_frames=len(slow), slow_seconds=len({t // 1_000_000_000 for t in slow}),
         loop_lag_max_ms=round(max(loop_lag), 1),
-        thread_cores={k: round((v - threads0.get(k, 0.0)) / wall_s, 2) for k, v in threads1.items()})
+        thread_cores={k: round((v - threads0.get(k, 0.0)) / wall_s, 2) for k, v in threads1.items()},
+        faults_per_frame=round((faults1 - faults0) / max(1, len(window)), 1))
 
 
 def _get(q: Any, timeout_s: float, procs: list[Any]) -> dict[str, Any]:
@@ -550,7 +587,7 @@ def _get(q: Any, timeout_s: float, procs: list[Any]) -> dict[str, Any]:
 
 def run_level(broker: Broker, channels: int, seconds: float, warmup_s: float, overlap: float, publishers: int,
               qos: int, seed: int, alarms: bool = True, instances: int = 1, cpu: int | None = None,
-              uvloop: bool = False, danger: bool = False) -> list[Row]:
+              uvloop: bool = False, danger: bool = False, keep_freed: bool = False) -> list[Row]:
     """One load level: ``instances`` daemon processes (hash shards when more than one) and publisher processes
     streaming ``channels`` channels through ``broker``; one :class:`Row` per instance."""
     ctx = mp.get_context("spawn")
@@ -562,7 +599,8 @@ def run_level(broker: Broker, channels: int, seconds: float, warmup_s: float, ov
         for i in range(instances):
             spec = InstanceSpec(port=broker.port, channels=channels, overlap=overlap,
                                 shard=None if instances == 1 else (i, instances), seconds=seconds, alarms=alarms,
-                                cpu=None if cpu is None else (cpu + i) % (os.cpu_count() or 1), uvloop=uvloop)
+                                cpu=None if cpu is None else (cpu + i) % (os.cpu_count() or 1), uvloop=uvloop,
+                            keep_freed=keep_freed)
             p = ctx.Process(target=_instance_main, args=(spec, out_i, ctls[i]), daemon=True)
             p.start()
             inst.append(p)
@@ -639,6 +677,9 @@ def build_parser() -> argparse.ArgumentParser:
                         "at once (default: zone B, the alarm layer judging every frame and raising nothing)")
     p.add_argument("--uvloop", action="store_true",
                    help="diagnostic: run the daemon on uvloop's event loop (needs uvloop installed)")
+    p.add_argument("--keep-freed-memory", action="store_true",
+                   help="diagnostic: the daemon's glibc keeps freed memory for reuse instead of faulting it in "
+                        "again (mallopt; see keep_freed_memory)")
     p.add_argument("--json", action="store_true", help="print JSON rows and a summary instead of a table")
     return p
 
@@ -658,6 +699,8 @@ def level_summary(rows: list[Row]) -> dict[str, Any]:
             "analysed_channels_per_core": round(sum(r.channels * r.frames_per_s / r.expected_frames_per_s
                                                     for r in rows) / cores, 1) if cores > 0 else math.nan,
             "mem_per_channel_mb": round(sum(r.mem_per_channel_mb * r.channels for r in rows) / max(1, channels), 3),
+            "faults_per_frame": round(sum(r.faults_per_frame * r.frames_per_s for r in rows)
+                                      / max(1e-9, sum(r.frames_per_s for r in rows)), 1),
             "publisher_cores": rows[0].publisher_cores}
 
 
@@ -674,7 +717,7 @@ def main(argv: list[str] | None = None) -> int:
         for n in args.channels:
             rows = run_level(broker, n, args.seconds, args.warmup, args.overlap, args.publishers, args.qos,
                              args.seed, alarms=not args.without_alarms, instances=args.instances, cpu=args.cpu,
-                             uvloop=args.uvloop, danger=args.danger)
+                             uvloop=args.uvloop, danger=args.danger, keep_freed=args.keep_freed_memory)
             levels.append(rows)
             if not args.json:
                 _print_level(rows, header=len(levels) == 1)
@@ -687,7 +730,8 @@ def main(argv: list[str] | None = None) -> int:
                           "sustained_channels": sustained, "instances": args.instances,
                           "fs_hz": FS_HZ, "block_samples": BLOCK, "overlap": args.overlap, "workers": 1,
                           "p99_target_ms": P99_TARGET_MS, "cpu_count": os.cpu_count(),
-                          "alarms": not args.without_alarms, "uvloop": args.uvloop, "danger": args.danger},
+                          "alarms": not args.without_alarms, "uvloop": args.uvloop, "danger": args.danger,
+                          "keep_freed_memory": args.keep_freed_memory},
                          indent=2))
     else:
         print(f"sustained channels: {sustained} over {args.instances} instance(s) (target: >= 1000 channels per "
@@ -712,7 +756,8 @@ def _print_level(rows: list[Row], header: bool) -> None:
         d = asdict(row)
         print(" ".join(str(d[k]).rjust(w) for k, w in _COLUMNS), flush=True)
         print("      threads (cores): " + ", ".join(f"{k} {v}" for k, v in sorted(row.thread_cores.items())
-                                                    if v >= 0.005), flush=True)
+                                                    if v >= 0.005) + f"; page faults per frame {row.faults_per_frame}",
+              flush=True)
     if rows:
         s = level_summary(rows)
         print(f"  {s['instances']} instance(s): {s['channels']} channels, {s['frames_per_s']} of "
@@ -720,6 +765,9 @@ def _print_level(rows: list[Row], header: bool) -> None:
               f"({s['channels_per_core']} channels per core; frames analysed per core-second worth "
               f"{s['analysed_channels_per_core']} channels), {s['mem_per_channel_mb']} MB per channel, "
               f"sustained {s['sustained']}", flush=True)
+        print(f"  against the targets: {s['analysed_channels_per_core'] / CHANNELS_PER_CORE_TARGET:.2f} of "
+              f"{CHANNELS_PER_CORE_TARGET:g} channels per core, p99 {s['latency_p99_ms'] / P99_TARGET_MS:.2f} × "
+              f"{P99_TARGET_MS:g} ms, {s['dropped']} dropped (target 0)", flush=True)
 
 
 if __name__ == "__main__":
