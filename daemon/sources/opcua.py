@@ -419,11 +419,8 @@ class OpcUaSource:
         """Check that every node exists and find sample rates; a node that cannot work is rejected and skipped."""
         block_nodes: dict[str, Node] = {}
         for node_id, state in self._nodes.items():
-            try:
-                node = client.get_node(node_id)
-                await node.read_browse_name()
-            except UaStatusCodeError as exc:
-                self._ingest.reject(self.name, "unknown_node", f"node {node_id}: {exc}", node_id)
+            node = await self._existing(client, node_id, "node")
+            if node is None:
                 continue
             mismatch = await self._cross_check(node, state)
             if mismatch:
@@ -437,16 +434,19 @@ class OpcUaSource:
                                         f"({', '.join(SAMPLE_RATE_PROPERTIES)})", node_id)
                     continue
             block_nodes[node_id] = node
-        speed_nodes: dict[str, Node] = {}
-        for node_id in self._speed_nodes:
-            try:
-                node = client.get_node(node_id)
-                await node.read_browse_name()
-            except UaStatusCodeError as exc:
-                self._ingest.reject(self.name, "unknown_node", f"speed node {node_id}: {exc}", node_id)
-                continue
-            speed_nodes[node_id] = node
+        speed_nodes = {node_id: node for node_id in self._speed_nodes
+                       if (node := await self._existing(client, node_id, "speed node")) is not None}
         return block_nodes, speed_nodes
+
+    async def _existing(self, client: Client, node_id: str, what: str) -> Node | None:
+        """The node, if the server has it (else rejected as ``unknown_node`` and None)."""
+        try:
+            node = client.get_node(node_id)
+            await node.read_browse_name()
+        except UaStatusCodeError as exc:
+            self._ingest.reject(self.name, "unknown_node", f"{what} {node_id}: {exc}", node_id)
+            return None
+        return node
 
     async def _cross_check(self, node: Node, state: _NodeState) -> str | None:
         """The node's EngineeringUnits and sample-rate properties against the configuration (None: agree, or the
