@@ -30,7 +30,7 @@ import numpy.typing as npt
 
 from edgevib.daemon.config import MachineConfig, PointConfig, plan_for
 from edgevib.daemon.logs import get_logger
-from edgevib.pipelines.types import AnalysisPlan, BearingGeometry, PipelineError
+from edgevib.pipelines.types import AnalysisPlan, PipelineError
 
 __all__ = ["AUTO_FRAMES", "STATE_FILE", "BandAuto", "BandSelection", "select_for_point"]
 
@@ -62,12 +62,6 @@ def _key(point: PointConfig) -> dict[str, Any]:
                                                b.contact_angle_deg]}
 
 
-def _bearing(point: PointConfig) -> BearingGeometry | None:
-    b = point.bearing
-    return None if b is None else BearingGeometry(b.elements, b.ball_diameter_mm, b.pitch_diameter_mm,
-                                                  b.contact_angle_deg)
-
-
 def plan_with_band(point: PointConfig, machine: MachineConfig, band_hz: tuple[float, float]) -> AnalysisPlan:
     """The point's plan with ``band_hz`` as its demodulation band (raises PipelineError when it does not fit)."""
     return plan_for(point.model_copy(update={"envelope_band_hz": band_hz}), machine)
@@ -84,7 +78,8 @@ def select_for_point(point: PointConfig, machine: MachineConfig, record_g: npt.N
         (shaft_hz * (1 - SPEED_MARGIN), shaft_hz * (1 + SPEED_MARGIN))
     upper = point.usable_bandwidth_hz[1]
     try:
-        choice, reason = select_band_for(record_g, point.fs_hz, speed, _bearing(point),
+        bearing = None if point.bearing is None else point.bearing.geometry()
+        choice, reason = select_band_for(record_g, point.fs_hz, speed, bearing,
                                          upper_hz=upper if math.isfinite(upper) else None)
     except PipelineError as exc:
         return BandSelection(point.id, None, None, now_s, reason=str(exc))

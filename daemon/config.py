@@ -67,7 +67,7 @@ from edgevib.daemon.shard import Shard, owns_point, validate_shard
 
 if TYPE_CHECKING:
     from edgevib.daemon.alarms.config import AlarmSettings
-    from edgevib.pipelines.types import AnalysisPlan
+    from edgevib.pipelines.types import AnalysisPlan, BearingGeometry
 
 __all__ = [
     "ID_CHARACTERS",
@@ -729,6 +729,12 @@ class BearingConfig(_Table):
     ball_diameter_mm: Float
     pitch_diameter_mm: Float
     contact_angle_deg: Float = 0.0
+
+    def geometry(self) -> BearingGeometry:
+        """The numerical core's geometry (not yet validated: the plan does that)."""
+        from edgevib.pipelines.types import BearingGeometry
+
+        return BearingGeometry(self.elements, self.ball_diameter_mm, self.pitch_diameter_mm, self.contact_angle_deg)
 
 
 class LimitConfigTable(_Table):
@@ -1534,11 +1540,8 @@ def parse_listen(value: str, path: str = "metrics.listen") -> tuple[str, int]:
 def plan_for(point: PointConfig, machine: MachineConfig) -> AnalysisPlan:
     """The analysis plan of a resolved point (``make_plan`` validates it; memoized there per distinct plan)."""
     from edgevib.pipelines.analysis import make_plan
-    from edgevib.pipelines.types import BearingGeometry
 
-    b = point.bearing
-    bearing = None if b is None else BearingGeometry(b.elements, b.ball_diameter_mm, b.pitch_diameter_mm,
-                                                     b.contact_angle_deg)
+    bearing = None if point.bearing is None else point.bearing.geometry()
     return make_plan(point.fs_hz, point.frame_samples, velocity_band_hz=point.velocity_band_hz,
                      envelope_band_hz=point.band_pair, bearing=bearing, orders=point.orders,
                      speed_range_hz=machine.speed_range_hz)
