@@ -88,6 +88,25 @@ def _number(option: str, text: str) -> float:
     return value
 
 
+def _positive(option: str, text: str, what: str = "") -> float:
+    """A number > 0 (``what`` says what it is, in the message)."""
+    value = _number(option, text)
+    if value <= 0:
+        raise InputError(f"{option} {text} must be > 0{what}")
+    return value
+
+
+def _index(option: str, text: str) -> int:
+    """A 0-based column or channel index."""
+    try:
+        i = int(text)
+    except ValueError:
+        raise InputError(f"{option} {text!r} is not an integer") from None
+    if i < 0:
+        raise InputError(f"{option} {i} must be ≥ 0")
+    return i
+
+
 def _band(option: str, text: str | None) -> tuple[float, float] | None:
     if text is None:
         return None
@@ -116,12 +135,7 @@ def _bearing(text: str | None) -> BearingGeometry | None:
 
 
 def _rpm(text: str | None) -> float | None:
-    if text is None:
-        return None
-    rpm = _number("--rpm", text)
-    if rpm <= 0:
-        raise InputError(f"--rpm {text} must be > 0 (a shaft speed in revolutions per minute)")
-    return rpm
+    return None if text is None else _positive("--rpm", text, " (a shaft speed in revolutions per minute)")
 
 
 def _false_alarm(text: str) -> float:
@@ -138,10 +152,7 @@ def _unit(text: str) -> str:
 
 
 def _full_scale(text: str) -> float:
-    full_scale = _number("--full-scale", text)
-    if full_scale <= 0:
-        raise InputError(f"--full-scale {text} must be > 0")
-    return full_scale
+    return _positive("--full-scale", text)
 
 
 def _iso_class(group_text: str | None, support: str | None) -> int | None:
@@ -279,14 +290,7 @@ class _Speed:
 
 def _options(args: argparse.Namespace) -> _Options:
     unit = _unit(args.unit)
-    channel = None
-    if args.channel is not None:
-        try:
-            channel = int(args.channel)
-        except ValueError:
-            raise InputError(f"--channel {args.channel!r} is not an integer") from None
-        if channel < 0:
-            raise InputError(f"--channel {channel} must be ≥ 0")
+    channel = None if args.channel is None else _index("--channel", args.channel)
     full_scale = _full_scale(args.full_scale)
     group = _iso_class(args.group, args.support)
     rpm_opt = _rpm(args.rpm)
@@ -304,9 +308,7 @@ def _sample_rate(args: argparse.Namespace, wave: Waveform, warnings: list[str]) 
     """The sample rate (``--fs`` or the file's) and where it came from."""
     fs_source = wave.fs_source
     if args.fs is not None:
-        fs = _number("--fs", args.fs)
-        if fs <= 0:
-            raise InputError(f"--fs {args.fs} must be > 0")
+        fs = _positive("--fs", args.fs)
         if wave.fs_hz is not None and args.file.suffix.lower() == ".wav" and abs(fs - wave.fs_hz) > 1e-9 * fs:
             raise InputError(f"--fs {fs:g} Hz contradicts the WAV header's {wave.fs_hz:g} Hz")
         if wave.fs_hz is not None and abs(fs - wave.fs_hz) > 1e-9 * fs:

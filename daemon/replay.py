@@ -61,9 +61,11 @@ from edgevib.daemon.offline import (
     _check_samples,
     _clean,
     _full_scale,
+    _index,
     _iso_class,
     _number,
     _one_line_errors,
+    _positive,
     _rpm,
     _unit,
     read_waveform,
@@ -304,18 +306,9 @@ def _limit(text: str) -> tuple[str, float]:
 
 def _options(args: argparse.Namespace) -> ReplayOptions:
     o = ReplayOptions()
-    if args.fs is not None:
-        o.fs_hz = _number("--fs", args.fs)
-        if o.fs_hz <= 0:
-            raise InputError(f"--fs {args.fs} must be > 0")
+    o.fs_hz = None if args.fs is None else _positive("--fs", args.fs)
     o.var = args.var
-    if args.column is not None:
-        try:
-            o.channel = int(args.column)
-        except ValueError:
-            raise InputError(f"--column {args.column!r} is not an integer") from None
-        if o.channel < 0:
-            raise InputError(f"--column {o.channel} must be ≥ 0")
+    o.channel = None if args.column is None else _index("--column", args.column)
     o.unit = _unit(args.unit)
     o.full_scale = _full_scale(args.full_scale)
     o.rpm = _rpm(args.rpm)
@@ -340,9 +333,7 @@ def _options(args: argparse.Namespace) -> ReplayOptions:
     except (ValueError, PipelineError) as exc:
         raise InputError(str(exc)) from None
     if args.window is not None:
-        o.window_s = _number("--window", args.window)
-        if o.window_s <= 0:
-            raise InputError(f"--window {args.window} must be > 0 seconds")
+        o.window_s = _positive("--window", args.window, " seconds")
     return o
 
 
