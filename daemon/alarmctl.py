@@ -26,6 +26,7 @@ import os
 import re
 import sys
 import time
+from collections.abc import Sequence
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -192,6 +193,13 @@ def _note(a: dict[str, Any], last_s: float | None) -> str:
 _RANK = {"danger": 0, "alert": 1, "normal": 2}
 
 
+def _print_table(rows: Sequence[tuple[str, ...]]) -> None:
+    """Columns padded to their widest cell, the last one (free text) unpadded."""
+    widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]) - 1)]
+    for r in rows:
+        print("  ".join(c.ljust(w) for c, w in zip(r[:-1], widths, strict=True)) + "  " + r[-1])
+
+
 def _print_list(result: dict[str, Any]) -> None:
     points = result.get("points", {})
     rows = [("POINT", "MACHINE STATE", "INDICATOR", "STATE", "SEVERITY", "VALUE", "ALERT", "DANGER", "NOTE")]
@@ -202,9 +210,7 @@ def _print_list(result: dict[str, Any]) -> None:
         last_s = datetime.fromisoformat(last.replace("Z", "+00:00")).timestamp() if last else None
         rows.append((a["point"], _machine_text(pt), a["indicator"], a["state"], a["severity"], _fmt(a.get("value")),
                      _fmt(a.get("alert")), _fmt(a.get("danger")), _note(a, last_s)))
-    widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]) - 1)]
-    for r in rows:
-        print("  ".join(c.ljust(w) for c, w in zip(r[:-1], widths, strict=True)) + "  " + r[-1])
+    _print_table(rows)
     for pid, pt in sorted(points.items()):
         text = pt.get("alarm_text")
         if text and text != "normal":
@@ -229,9 +235,7 @@ def _print_history(rows: list[dict[str, Any]]) -> None:
                       str(r.get("indicator") or ""), str(r.get("transition") or ""), state,
                       str(r.get("alarm_state") or ""), _fmt(r.get("value")), _fmt(r.get("limit")), by,
                       str(r.get("reason") or ""), str(r.get("capture") or "")))
-    widths = [max(len(r[i]) for r in table) for i in range(len(table[0]) - 1)]
-    for t in table:
-        print("  ".join(c.ljust(w) for c, w in zip(t[:-1], widths, strict=True)) + "  " + t[-1])
+    _print_table(table)
     if len(table) == 1:
         print("(no transitions recorded)")
 
