@@ -132,10 +132,6 @@ def _family(attr: str) -> EachReader:
     return read
 
 
-def _verdicts(r: FrameResult) -> Mapping[str, Value]:
-    return {name: fam.detected for name, fam in r.indicators.envelope.items()}
-
-
 def _one_verdict(name: str) -> Reader:
     def read(r: FrameResult) -> Value:
         fam = r.indicators.envelope.get(name)
@@ -274,7 +270,7 @@ def _registry() -> tuple[Indicator, ...]:
         ind("envelope_detected", "1", "Envelope verdict of the {key} family: detected (1, true) when its line's "
             "statistic is over the false-alarm threshold with enough modulation depth and no other family explains "
             "it, else 0 (false)",
-            each=_verdicts, boolean=True,
+            each=_family("detected"), boolean=True,
             per="family", si=RATIO, prometheus="envelope_detected", mqtt="envelope.{key}.detected",
             opcua="envelope_{key}_detected", report=None),
         ind("envelope_band_low_hz", "Hz", "Low edge of the demodulation band in use", read=_band_edge(0), si=HZ,

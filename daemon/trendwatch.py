@@ -155,10 +155,6 @@ def iso_next_boundary(level: float, boundaries: tuple[float, float, float]) -> t
     return None
 
 
-def _rfc3339(t_s: float) -> str:
-    return rfc3339_utc_s(t_s)
-
-
 def _clean(v: float | None) -> float | None:
     return None if v is None or not math.isfinite(v) else float(v)
 
@@ -180,7 +176,7 @@ def evaluate(reader: HistoryReader, point: str, indicator: str, *, spec: TrendSp
     latest = reader.latest_time_s(point)
     now = now_s if now_s is not None else latest
     doc: dict[str, Any] = {"point": point, "indicator": indicator, "unit": unit, "coverage": spec.coverage,
-                           "t_s": now, "time": None if now is None else _rfc3339(now), "status": "no-data",
+                           "t_s": now, "time": None if now is None else rfc3339_utc_s(now), "status": "no-data",
                            "need": None, "machine_state": reader.latest_state(point), "limits": [],
                            "advice": None, "advice_text": None}
     if now is None:
@@ -225,7 +221,7 @@ def _result_fields(res: TrendResult, now: float, unit: str) -> dict[str, Any]:
                            "level": _clean(res.level), "slope_per_day": _clean(res.slope_per_day),
                            "slope_low_per_day": _clean(res.slope_low_per_day),
                            "slope_high_per_day": _clean(res.slope_high_per_day), "rising": res.rising,
-                           "onset": None if res.onset_s is None else _rfc3339(res.onset_s),
+                           "onset": None if res.onset_s is None else rfc3339_utc_s(res.onset_s),
                            "outliers": res.outliers, "model": None, "model_weight": None, "step": None,
                            "limits": []}
     if res.fit is not None and res.rising:
@@ -248,9 +244,9 @@ def _result_fields(res: TrendResult, now: float, unit: str) -> dict[str, Any]:
         out["limits"].append({
             "label": p.label, "value": p.limit, "unit": unit, "status": p.status, "eta_s": _clean(p.eta_s),
             "eta_low_s": _clean(p.eta_low_s), "eta_high_s": _clean(p.eta_high_s),
-            "date": None if p.eta_s is None else _rfc3339(now + p.eta_s),
-            "date_low": None if p.eta_low_s is None else _rfc3339(now + p.eta_low_s),
-            "date_high": None if p.eta_high_s is None else _rfc3339(now + p.eta_high_s)})
+            "date": None if p.eta_s is None else rfc3339_utc_s(now + p.eta_s),
+            "date_low": None if p.eta_low_s is None else rfc3339_utc_s(now + p.eta_low_s),
+            "date_high": None if p.eta_high_s is None else rfc3339_utc_s(now + p.eta_high_s)})
     return out
 
 
