@@ -181,7 +181,9 @@ class AlarmTransition:
 
 
 class AlarmView(Protocol):
-    """Read-only alarm state for displays (the demo table's alarm column, ``edgevib alarms``, the view)."""
+    """The alarm layer as its readers see it (the demo table's alarm column, ``edgevib alarms``, the view, the
+    metrics).  Every read comes from the snapshot published after the latest decision: no lock, no wait, safe from
+    any thread.  Commands go through the layer's one decision thread (:meth:`command`)."""
 
     def state_text(self, point_id: str) -> str | None:
         """Every active alarm of a point in one short text (``DANGER misalignment_2x_mm_s; ALERT …``)."""
@@ -190,8 +192,22 @@ class AlarmView(Protocol):
         """A machine's state: ``{state, since_s, grace_left_s, last_state, last_since_s}`` (``unknown`` while every
         point of the machine is stale; ``last_*`` then keep the last known state)."""
 
+    def snapshot(self, point: str | None = None) -> dict[str, object]:
+        """The ``alarms list`` document (of one point, or all): ``alarms`` (a row per limit: point, indicator, state,
+        severity, value, alert, danger, shelved_until_s, shelve_reason, suppressed, stale, since_s, baseline),
+        ``sensors`` ({point: {fault, detail}}), ``points`` ({point: machine, machine_state, …, alarm_text, time}),
+        ``sources`` and ``outbox_pending``."""
+
     def history(self, point: str | None = None, *, since_s: float | None = None,
                 limit: int = 200) -> Sequence[AlarmTransition]:
         """Recorded transitions from the durable store, newest first; ``limit`` 1..1000 (ValueError outside).
-        Thread-safe and read-only."""
+        A database read: call it off the event loop (``asyncio.to_thread``)."""
 
+    async def command(self, req: dict[str, object]) -> object:
+        """Run one command validated by ``edgevib.daemon.alarms.control.validate_request`` (``ack``, ``shelve``,
+        ``unshelve``, ``relearn``, ``list``, ``history``, ``select_band``) on the event loop without blocking it;
+        returns once its events are committed, with ``{changed, events}`` (``list``/``history``: their documents).
+        Raises ``CommandError``."""
+
+    def subscribe(self, listener: Callable[[dict[str, object]], None]) -> Callable[[], None]:
+        """Call ``listener`` on the event loop with each committed CloudEvent (a dict); returns the unsubscribe."""

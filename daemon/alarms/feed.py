@@ -38,7 +38,7 @@ import json
 import urllib.error
 import urllib.parse
 import urllib.request
-from collections.abc import Callable
+from collections.abc import Awaitable, Callable
 from typing import Any
 
 import structlog
@@ -130,10 +130,16 @@ def state_fingerprint(payload: bytes) -> str:
     return json.dumps(doc, sort_keys=True, separators=(",", ":"))
 
 
-async def _next_batch(outbox: Outbox, sink: str, wake: asyncio.Event, limit: int = BATCH) -> list[OutboxEvent]:
+Io = Callable[..., Awaitable[Any]]
+"""How a feed runs the outbox's blocking calls: ``await io(fn, *args)`` (the alarm store's worker; by default a
+thread of its own)."""
+
+
+async def _next_batch(outbox: Outbox, sink: str, wake: asyncio.Event, limit: int = BATCH,
+                      io: Io = asyncio.to_thread) -> list[OutboxEvent]:
     """The next pending events of ``sink``; when there are none, an empty list after waiting (at most 5 s) for
     ``wake`` (set when an event is committed)."""
-    batch = await asyncio.to_thread(outbox.pending, sink, limit)
+    batch: list[OutboxEvent] = await io(outbox.pending, sink, limit)
     if not batch:
         wake.clear()
         with contextlib.suppress(TimeoutError):
@@ -152,12 +158,13 @@ class MqttFeed:
     sink = "mqtt"
 
     def __init__(self, cfg: FeedConfig, outbox: Outbox, states: Callable[[], dict[str, tuple[str, bytes]]],
-                 on_command: Callable[[bytes], bytes] | None = None) -> None:
+                 on_command: Callable[[bytes], bytes] | None = None, io: Io = asyncio.to_thread) -> None:
         if cfg.connection is None:
             raise ValueError("the MQTT feed needs a broker connection ([feed] source or url)")
         self.cfg = cfg
         self.conn = cfg.connection
         self.outbox = outbox
+        self.io = io
         self.states = states
         self.on_command = on_command
         self.published = 0
@@ -287,13 +294,13 @@ class MqttFeed:
                 await self._connected.wait()
                 if self._stopping:
                     break
-                batch = await _next_batch(self.outbox, self.sink, self._wake, 1 if single else BATCH)
+                batch = await _next_batch(self.outbox, self.sink, self._wake, 1 if single else BATCH, self.io)
                 if not batch or self._stopping:
                     continue
                 done, refused, retry = await self._send(batch)
                 if done or refused:
-                    await asyncio.to_thread(self.outbox.mark_delivered, self.sink,
-                                            [e.seq for e in done] + [e.seq for e, _ in refused])
+                    await self.io(self.outbox.mark_delivered, self.sink,
+                                  [e.seq for e in done] + [e.seq for e, _ in refused])
                     self.published += len(done)
                 for e, reason in refused:
                     self.rejected += 1
@@ -365,9 +372,10 @@ class WebhookFeed:
 
     sink = "webhook"
 
-    def __init__(self, cfg: WebhookConfig, outbox: Outbox) -> None:
+    def __init__(self, cfg: WebhookConfig, outbox: Outbox, io: Io = asyncio.to_thread) -> None:
         self.cfg = cfg
         self.outbox = outbox
+        self.io = io
         self.published = 0
         self.rejected = 0
         self._stopping = False
@@ -402,7 +410,7 @@ class WebhookFeed:
     async def run(self) -> None:
         delay = self.cfg.retry_min_s
         while not self._stopping:
-            batch = await _next_batch(self.outbox, self.sink, self._wake)
+            batch = await _next_batch(self.outbox, self.sink, self._wake, io=self.io)
             if not batch:
                 continue
             for e in batch:
@@ -417,14 +425,14 @@ class WebhookFeed:
                 else:
                     log.warning("webhook delivery failed; retrying", status=status or "no connection",
                                 retry_s=delay)
-                    await asyncio.to_thread(self.outbox.mark_attempt, self.sink, [e.seq])
+                    await self.io(self.outbox.mark_attempt, self.sink, [e.seq])
                     self._wake.clear()
                     with contextlib.suppress(TimeoutError):
                         await asyncio.wait_for(self._stop_wait(), timeout=delay)
                     delay = min(2 * delay, self.cfg.retry_max_s)
                     break
                 delay = self.cfg.retry_min_s
-                await asyncio.to_thread(self.outbox.mark_delivered, self.sink, [e.seq])
+                await self.io(self.outbox.mark_delivered, self.sink, [e.seq])
 
     async def _stop_wait(self) -> None:
         while not self._stopping:

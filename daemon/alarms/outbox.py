@@ -202,15 +202,20 @@ class Outbox:
                 row = self.db.conn.execute("SELECT COUNT(*) FROM pending WHERE sink = ?", (sink,)).fetchone()
         return int(row[0])
 
-    def oldest_age_s(self, now_ns: int | None = None) -> float:
-        """Age of the oldest pending event in seconds (0 when nothing is pending)."""
+    def oldest_created_ns(self) -> int | None:
+        """Creation time of the oldest pending event (``None`` when nothing is pending)."""
         with self.db.lock:
             row = self.db.conn.execute(
                 "SELECT MIN(o.created_ns) FROM pending p JOIN outbox o ON o.seq = p.seq").fetchone()
-        if row[0] is None:
+        return None if row[0] is None else int(row[0])
+
+    def oldest_age_s(self, now_ns: int | None = None) -> float:
+        """Age of the oldest pending event in seconds (0 when nothing is pending)."""
+        oldest = self.oldest_created_ns()
+        if oldest is None:
             return 0.0
         now = time.time_ns() if now_ns is None else now_ns
-        return max(0.0, (now - int(row[0])) / 1e9)
+        return max(0.0, (now - oldest) / 1e9)
 
     def all_ids(self) -> list[str]:
         with self.db.lock:

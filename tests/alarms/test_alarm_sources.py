@@ -60,7 +60,7 @@ async def make_layer(cfg: Config, clock: Clock, events: list[dict[str, Any]]) ->
 
 
 async def tick(layer: AlarmLayer) -> None:
-    await layer._commit(layer._tick())
+    await layer.tick()
 
 
 async def frames(layer: AlarmLayer, clock: Clock, t0: float, values: dict[str, list[float]]) -> None:
@@ -407,10 +407,10 @@ async def test_a_machine_whose_every_point_is_stale_has_an_unknown_state(short_t
         return on[0]
 
     async def deliver(t0: float) -> None:
-        before = len(layer.last_frame)
+        before = len(layer.view.last_frame)
         await frames(layer, clock, t0, {pid: [1.0] * 3 for pid in POINTS})
-        assert len(layer.last_frame) >= before
-        ms = layer.machine_states["P-101"]
+        assert len(layer.view.last_frame) >= before
+        ms = layer.view.machine_states["P-101"]
         results = [replace(frame_result(pid, "P-101", T0 + t0 + 2.0, 1.0), machine_state=ms) for pid in POINTS]
         for s in (sink, judged):
             await s.on_frames(results)
@@ -444,5 +444,28 @@ async def test_a_machine_whose_every_point_is_stale_has_an_unknown_state(short_t
         assert (msg["machine_state"], msg["last_machine_state"], msg["last_machine_state_since"]) == \
             ("running", None, None)
         assert metric(sink) == metric(judged) == "running"
+    finally:
+        await layer.stop()
+
+
+async def test_an_action_during_an_outage_says_the_machine_state_is_unknown(short_tmp: Path) -> None:
+    # Practice (FIELD_NOTES §7): without data the machine's present state is not known; an event made meanwhile (an
+    # acknowledgement) says so, as the state message does, and keeps the last known state apart.
+    clock, events = Clock(), []
+    layer = await make_layer(two_points(short_tmp), clock, events)
+    try:
+        layer.on_source("plant", True)
+        await frames(layer, clock, 100.0, {POINTS[0]: [6.0, 6.0], POINTS[1]: [1.0, 1.0]})  # above C/D 4.5 mm/s
+        raised = [e["data"] for e in of_type(events, ALARM_TYPE)]
+        assert raised and raised[-1]["machine_state"] == "running" and "last_machine_state" not in raised[-1]
+        layer.on_source("plant", False)
+        await tick(layer)
+        layer.handle_command({"cmd": "ack", "point": POINTS[0], "by": "J. Operator"})
+        ack = [e["data"] for e in of_type(events, ALARM_TYPE) if e["data"]["transition"] == "acknowledged"]
+        assert len(ack) == 1
+        assert (ack[0]["machine_state"], ack[0]["last_machine_state"], ack[0]["stale"]) == \
+            ("unknown", "running", "source-down")
+        row = layer.history(POINTS[0], limit=1)[0]
+        assert (row.transition, row.machine_state) == ("acknowledged", "unknown")
     finally:
         await layer.stop()
