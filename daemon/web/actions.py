@@ -19,7 +19,6 @@ action is logged with the caller and address.
 
 from __future__ import annotations
 
-import asyncio
 import hashlib
 import hmac
 import json
@@ -250,7 +249,7 @@ class Actions:
 
             try:
                 validate_request(req)
-                result = await asyncio.to_thread(layer.handle_command, req)
+                result = await layer.command(req)
             except CommandError as exc:
                 return problem(404 if "unknown point" in str(exc) else 400, str(exc))
             log.info("operator action", cmd=cmd, point=req["point"], indicator=req.get("indicator"), by=who,

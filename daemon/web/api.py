@@ -341,7 +341,7 @@ class ViewService:
         self._cache: OrderedDict[tuple[Any, ...], bytes] = OrderedDict()
         self._inflight: dict[tuple[Any, ...], asyncio.Future[bytes]] = {}
         self._slots = asyncio.Semaphore(COMPUTE_SLOTS)
-        self._alarm_layer: Any = None
+        self._unsubscribe: Callable[[], None] | None = None
         self._stopping = False
         self._stale: dict[str, bool] = {}  # point id → stale as last pushed (while streams are open)
         self._stale_task: asyncio.Task[None] | None = None
@@ -389,20 +389,14 @@ class ViewService:
 
     async def start(self) -> None:
         self._stale_task = asyncio.get_running_loop().create_task(self._watch_staleness(), name="edgevib-view-stale")
-        self._alarm_layer = self._find_alarm_layer()
-        if self._alarm_layer is not None:
-            listeners = getattr(self._alarm_layer, "listeners", None)
-            if isinstance(listeners, list):
-                listeners.append(self._on_alarm_event)
-
-    def _find_alarm_layer(self) -> Any:
-        # the alarm layer behind the daemon's AlarmView: its snapshot, commands and event listeners are read here
-        # until AlarmView names them
-        return self.daemon.alarm_view
+        view = self.daemon.alarm_view
+        if view is not None:
+            self._unsubscribe = view.subscribe(self._on_alarm_event)
 
     @property
-    def alarm_layer(self) -> Any:
-        return self._alarm_layer
+    def alarm_layer(self) -> AlarmView | None:
+        """The daemon's alarm layer (None when ``[alarms] enabled = false``)."""
+        return self.daemon.alarm_view
 
     async def on_frames(self, results: list[FrameResult]) -> None:
         latest: dict[str, FrameResult] = {}
@@ -425,10 +419,9 @@ class ViewService:
             task.cancel()
             with contextlib.suppress(asyncio.CancelledError):
                 await task
-        layer = self._alarm_layer
-        if layer is not None:
-            with contextlib.suppress(ValueError, AttributeError):
-                layer.listeners.remove(self._on_alarm_event)
+        unsubscribe, self._unsubscribe = self._unsubscribe, None
+        if unsubscribe is not None:
+            unsubscribe()
 
     async def reconfigure(self, config: Config) -> None:
         self.recent.forget({p.id for p in config.points})
@@ -437,22 +430,14 @@ class ViewService:
     # ------------------------------------------------------------------------------------------ alarm events
 
     def _on_alarm_event(self, event: dict[str, Any]) -> None:
-        """Called by the alarm layer (on the loop or a worker thread) with each committed CloudEvent."""
+        """Called by the alarm layer on the event loop with each committed CloudEvent."""
         data = event.get("data") or {}
         row = {"id": event.get("id"), "type": event.get("type"), "time": event.get("time"),
                "point": data.get("point") or event.get("subject"), "machine": data.get("machine"),
                **{k: data.get(k) for k in ("indicator", "unit", "fault_kind", "transition", "state", "from_state",
                                            "alarm_state", "value", "limit", "reason", "by", "advice", "fault",
                                            "detail", "iso_zone")}}
-        loop = getattr(self._alarm_layer, "_loop", None)
-        try:
-            running = asyncio.get_running_loop()
-        except RuntimeError:
-            running = None
-        if running is not None:
-            self._broadcast("alarm", row)
-        elif loop is not None:
-            loop.call_soon_threadsafe(self._broadcast, "alarm", row)
+        self._broadcast("alarm", row)
 
     # ------------------------------------------------------------------------------------------ staleness
 
@@ -590,10 +575,10 @@ class ViewService:
     def _alarm_snapshot(self, point: str | None = None,
                         ) -> tuple[list[dict[str, Any]], dict[str, Any], dict[str, Any]]:
         """The alarm layer's limit rows, sensor states and per-point rows (machine state, data gap, source)."""
-        layer = self._alarm_layer
+        layer = self.daemon.alarm_view
         if layer is None:
             return [], {}, {}
-        snap = layer.snapshot(point)
+        snap: dict[str, Any] = layer.snapshot(point)
         return list(snap.get("alarms", [])), dict(snap.get("sensors", {})), dict(snap.get("points", {}))
 
     @staticmethod
@@ -843,7 +828,7 @@ class ViewService:
         rows, sensors = self._alarm_rows(point)
         active = [row for row in rows if self._active(row)]
         return json_response({"api": API_VERSION, "time": rfc3339(self.clock_ns()),
-                              "alarm_layer": self._alarm_layer is not None, "alarms": active,
+                              "alarm_layer": self.daemon.alarm_view is not None, "alarms": active,
                               "sensor_faults": {k: v for k, v in sensors.items() if v.get("fault")}})
 
     async def _history(self, request: web.Request) -> web.Response:
