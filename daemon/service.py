@@ -84,6 +84,11 @@ def run_check_config(args: argparse.Namespace) -> int:
           "shown by the file or variable that holds them; this output loads back as the same configuration")
     for line in deferred_warnings(cfg):
         print(f"# warning: {line}")
+    if cfg.view.enabled and cfg.view.actions and cfg.view.token is not None:
+        from edgevib.daemon.web.actions import token_warnings
+
+        for line in token_warnings(cfg.view):
+            print(f"# warning: {line}")
     for p in cfg.points:
         if p.envelope_note:
             print(f"# warning: point {p.id}: {p.envelope_note}")

@@ -35,28 +35,59 @@ from edgevib.daemon.interfaces import ConfigError
 from edgevib.daemon.logs import get_logger
 from edgevib.daemon.web.listener import HttpListener, client_identity
 
-__all__ = ["MAX_SESSIONS", "SESSION_COOKIE", "Actions"]
+__all__ = ["MAX_SESSIONS", "MIN_TOKEN_CHARS", "SESSION_COOKIE", "Actions", "token_warnings"]
 
 SESSION_COOKIE = "edgevib_session"
 SESSION_TTL_S = 8 * 3600.0
 MAX_SESSIONS = 64
 SIGNIN_PER_MIN = 5
 MAX_SHELVE_REASON = 200
+MIN_TOKEN_CHARS = 16
 log = get_logger("edgevib.view.actions")
 
 
-def _parse_tokens(text: str) -> dict[str, str]:
-    """``{token: name}`` from a credential file's text (``NAME:TOKEN`` lines, or one bare token)."""
+def _parse_tokens(text: str) -> tuple[dict[str, str], list[str]]:
+    """``{token: name}`` from a credential file's text (``NAME:TOKEN`` lines, or one bare token), and one line per
+    entry left out saying which line, whose and why (never the token itself)."""
     out: dict[str, str] = {}
-    lines = [ln.strip() for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
-    for ln in lines:
+    problems: list[str] = []
+    for lineno, raw in enumerate(text.splitlines(), 1):
+        ln = raw.strip()
+        if not ln or ln.startswith("#"):
+            continue
         name, sep, token = ln.partition(":")
         if not sep:
             name, token = "operator", ln
         name, token = name.strip(), token.strip()
-        if len(token) >= 16 and name and all(c.isalnum() or c in "-_." for c in name):
+        if not name or not all(c.isalnum() or c in "-_." for c in name):
+            problems.append(f"line {lineno}: name {name[:64]!r} may hold only letters, digits, '-', '_' and '.'; "
+                            "entry left out")
+        elif len(token) < MIN_TOKEN_CHARS:
+            problems.append(f"line {lineno} ({name}): the token has {len(token)} characters, fewer than "
+                            f"{MIN_TOKEN_CHARS}; entry left out (that person cannot sign in)")
+        else:
             out[token] = name
-    return out
+    if not out:
+        problems.append("no usable token: token sign-in is refused for everyone")
+    return out, problems
+
+
+def token_warnings(config: ViewConfig) -> list[str]:
+    """The entries of the view's credential file (or variable) that are left out, as lines naming the key, the
+    file, the line and the person — for ``check-config`` and the daemon's log.  Nothing when it cannot be read
+    here (``check-config`` reports a missing file already)."""
+    if config.token is None:
+        return []
+    try:
+        text = config.token.reveal()
+    except ConfigError:
+        return []
+    return [f"{_token_source(config)}: {problem}" for problem in _parse_tokens(text)[1]]
+
+
+def _token_source(config: ViewConfig) -> str:
+    token = config.token
+    return "" if token is None else f"view.token_{token.kind} ({token.ref})"
 
 
 class Actions:
@@ -72,6 +103,9 @@ class Actions:
         self._sessions: OrderedDict[str, tuple[str, float]] = OrderedDict()
         self._signins: dict[str, list[float]] = {}
         self.view: Any = None
+        self._reported: list[str] = []
+        if self.enabled:
+            self._tokens()  # log the entries left out now, not at the first sign-in
 
     def routes(self, http: HttpListener, view: Any) -> None:
         self.view = view
@@ -87,10 +121,15 @@ class Actions:
         if self.config.token is None:
             return {}
         try:
-            return _parse_tokens(self.config.token.reveal())
+            tokens, problems = _parse_tokens(self.config.token.reveal())
         except ConfigError as exc:
             log.error("view token file unreadable; token sign-in refused", error=str(exc))
             return {}
+        if problems != self._reported:  # once per change of the file
+            self._reported = problems
+            for problem in problems:
+                log.warning("view credential entry left out", source=_token_source(self.config), problem=problem)
+        return tokens
 
     def _token_name(self, token: str) -> str | None:
         found = None
