@@ -586,15 +586,18 @@ class ViewService:
         return (row.get("severity") != "normal" or row.get("state") in ACTIVE_STATES
                 or row.get("shelved_until_s") is not None)
 
-    def _machine_state(self, machine_id: str, r: FrameResult | None) -> str:
-        if r is not None and r.machine_state is not None:  # the machine state the daemon judged the latest frame in
-            return r.machine_state.state
+    def _machine_state(self, machine_id: str, r: FrameResult | None) -> tuple[str, str | None]:
+        """The machine's state now and, while it is unknown because every point of the machine is stale, the last
+        known one: the alarm layer's judgement, else the state the daemon judged the latest frame in."""
         view = self.daemon.alarm_view
-        if view is not None:  # the machine's state as the alarm layer judges it now
-            state = view.machine_view(machine_id).get("state")
+        if view is not None:
+            mv = view.machine_view(machine_id)
+            state, last = mv.get("state"), mv.get("last_state")
             if isinstance(state, str):
-                return state
-        return "running" if r is not None and r.indicators.shaft_hz is not None else "unknown"
+                return state, last if isinstance(last, str) else None
+        if r is not None and r.machine_state is not None:
+            return r.machine_state.state, None
+        return ("running" if r is not None and r.indicators.shaft_hz is not None else "unknown"), None
 
     def _point_doc(self, p: Any, rows: list[dict[str, Any]], sensors: dict[str, Any], now_ns: int,
                    judged: dict[str, Any] | None = None) -> dict[str, Any]:
@@ -609,7 +612,7 @@ class ViewService:
             "envelope_band_hz": list(p.envelope_band_hz) if p.envelope_band_hz else None,
             "envelope_band_source": p.envelope_band_origin if p.envelope_band_hz else None,
             "envelope_note": p.envelope_note, "bearing": p.bearing is not None,
-            "machine_state": self._machine_state(m.id, r),
+            **dict(zip(("machine_state", "last_machine_state"), self._machine_state(m.id, r), strict=True)),
             "iso": None if m.group is None else {"group": m.group, "support": m.support},
             "alarm_state": self._state_text(p.id) or "-",
             "alarms": [row for row in rows if row.get("point") == p.id and self._active(row)],

@@ -287,6 +287,35 @@ async def test_the_event_stream_says_when_a_point_goes_stale_and_fresh_again(dem
     assert code == 200 and doc["stale"] is False  # the API agrees
 
 
+async def test_a_machine_whose_points_are_all_stale_is_unknown_with_its_last_state(demo: Running) -> None:
+    # the alarm layer's judgement (README "Data gaps": every point of the machine stale → unknown, the last known
+    # state kept), not the state of the last frame
+    class StaleMachine:
+        def __init__(self, real: Any) -> None:
+            self.real = real
+
+        def __getattr__(self, name: str) -> Any:
+            return getattr(self.real, name)
+
+        def machine_view(self, machine: str) -> dict[str, object]:
+            if machine != "P-101":
+                return dict(self.real.machine_view(machine))
+            return {"state": "unknown", "since_s": None, "grace_left_s": None, "last_state": "running",
+                    "last_since_s": 1_800_000_000.0}
+
+    real = demo.daemon.alarm_view
+    demo.daemon.alarm_view = StaleMachine(real)  # type: ignore[assignment]
+    try:
+        code, doc = await demo.get("/api/v1/points")
+    finally:
+        demo.daemon.alarm_view = real
+    assert code == 200
+    by_id = {p["id"]: p for p in doc["points"]}
+    assert by_id["P-101-DE-H"]["machine_state"] == "unknown"
+    assert by_id["P-101-DE-H"]["last_machine_state"] == "running"
+    assert by_id["P-102-DE-A"]["machine_state"] != "unknown" and by_id["P-102-DE-A"]["last_machine_state"] is None
+
+
 async def test_recent_values_are_the_indicator_rows_values(demo: Running) -> None:
     from edgevib.daemon.web.api import indicator_rows, indicator_values
 

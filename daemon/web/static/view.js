@@ -47,6 +47,8 @@
 
   // A point whose data is not current: no frame for a while (the API's `stale`) or its source is down.
   function isStale(p) { return Boolean(p && (p.stale || p.source_state === "down")); }
+  // the machine's state; while every point of the machine is stale it is unknown, with the last known one
+  function machineText(p) { return p.machine_state + (p.last_machine_state ? ` (last ${p.last_machine_state})` : ""); }
   // its age now: the API's age_s at the time of the answer plus the time since
   function ageText(p) {
     if (!p.frame_end || p.age_s === null || p.age_s === undefined) return "no data yet";
@@ -389,7 +391,7 @@
         el("div", { class: "line" }, el("span", { class: "pid", text: p.id }),
            el("span", { class: "zone" + (zoneWhy ? " dim" : ""), title: `ISO 20816-3 zone${zoneWhy}`,
                         "data-dim": zoneWhy ? "true" : null, text: p.iso_zone || "–" })),
-        el("div", { class: "line" }, el("span", { text: `${p.machine} · ${p.machine_state}` }),
+        el("div", { class: "line" }, el("span", { text: `${p.machine} · ${machineText(p)}` }),
            el("span", { text: vel === undefined ? "…" : `${num(vel, 3)} mm/s` })),
         el("div", { class: "state", text: p.alarm_state + (p.data_gap && !p.alarm_state.includes("stale") ? ` (no good data: ${p.data_gap})`
                                                       : p.stale && p.frame_end ? " (no recent frame)" : "") }),
@@ -404,7 +406,7 @@
     $("point-title").textContent = `${p.id}`;
     const speed = p.speed && p.speed.rpm ? `${num(p.speed.rpm, 4)} r/min (${p.speed.source})` : "speed unknown";
     $("point-sub").textContent = `${p.machine}${p.machine_description ? " — " + p.machine_description : ""} · ` +
-      `${p.axis}, ${p.sensor_type} sensor ${p.sensor} · ${p.machine_state}` +
+      `${p.axis}, ${p.sensor_type} sensor ${p.sensor} · ${machineText(p)}` +
       (p.start_up_grace_left_s ? ` (start-up grace ${num(p.start_up_grace_left_s, 3)} s left)` : "") +
       (p.source_state === "down" ? " · source down" : "") + ` · ${speed}`;
     const stale = isStale(p);
