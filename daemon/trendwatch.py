@@ -279,9 +279,14 @@ def advice(doc: Mapping[str, Any], *, plan_days: float = 90.0, act_days: float =
 
     def when(lim: Mapping[str, Any]) -> str:
         days = lim["eta_s"] / SECONDS_PER_DAY
+        # within two days a date alone says little: the time of day too
+        soon = (lim.get("eta_high_s") or lim["eta_s"]) < 2 * SECONDS_PER_DAY
+
+        def date(key: str) -> str:
+            return f"{lim[key][:10]} {lim[key][11:16]} UTC" if soon else lim[key][:10]
         return (f"the {lim['label']} level ({q(lim['value'])}) would be reached in about "
-                f"{_days(days)}, around {lim['date'][:10]} ({cov} % interval {lim['date_low'][:10]} to "
-                f"{lim['date_high'][:10]})")
+                f"{_days(days)}, around {date('date')} ({cov} % interval {date('date_low')} to "
+                f"{date('date_high')})")
 
     tail = f"Follow the site's procedures; a qualified vibration analyst decides on any intervention. {_DISCLAIMER}"
     danger_reached = [lim for lim in reached if lim["label"] in _DANGER_CLASS]
@@ -323,8 +328,11 @@ def advice(doc: Mapping[str, Any], *, plan_days: float = 90.0, act_days: float =
 
 
 def _days(days: float) -> str:
+    if days * 24 < 1.5:
+        minutes = max(1, round(days * 1440))
+        return "a minute" if minutes == 1 else f"{minutes} minutes"
     if days < 2:
-        return f"{days * 24:.0f} hours" if days * 24 >= 1.5 else "an hour"
+        return f"{days * 24:.0f} hours"
     if days < 60:
         return f"{days:.0f} days"
     return f"{days / 30.4:.0f} months"

@@ -175,6 +175,15 @@ def test_advice_kinds_and_wording() -> None:
     assert kind == "watch"
     assert advice({**base, "rising": False, "limits": [lim("alert", 2.8, None, "not-rising")]}) == (None, None)
     assert advice({"status": "insufficient-history"}) == (None, None)
+    # a limit minutes away: said in minutes, dates with their time of day (the FEMTO bearing's last snapshot, 173 s
+    # before the 20 g limit)
+    soon = {"label": "limit", "value": 20.0, "status": "rising", "eta_s": 173.0, "eta_low_s": 120.0,
+            "eta_high_s": 260.0, "date": "2012-03-01T11:15:00.000Z", "date_low": "2012-03-01T11:14:07.000Z",
+            "date_high": "2012-03-01T11:16:27.000Z"}
+    kind, text = advice({**base, "unit": "g", "slope_per_day": 500.0, "level": 18.0, "limits": [soon]})
+    assert kind == "act" and text is not None  # a user limit counts as danger-class
+    assert "in about 3 minutes, around 2012-03-01 11:15 UTC (80 % interval 2012-03-01 11:14 UTC to " \
+        "2012-03-01 11:16 UTC)" in text
 
 
 def test_helpers_and_configuration_errors(tmp_path: Path) -> None:
