@@ -488,11 +488,10 @@ class HistoryRecorder:
                    rows: list[tuple[int, int, int, int, int, bytes, bytes | None]]) -> None:
         """Close the buckets that end at or before ``t_s`` (a new frame's time, whatever its state)."""
         if op.minute_start is not None and t_s >= op.minute_start + 60:
-            stats = summarize(np.stack(op.minute_values), self.settings.high_percentile) if op.minute_values \
-                else None
-            if stats is not None:
-                rows.append((pid, 60, op.minute_start, self._layout, 1, _f32(stats), None))
+            if op.minute_values:
                 x = np.stack(op.minute_values)
+                rows.append((pid, 60, op.minute_start, self._layout, 1,
+                             _f32(summarize(x, self.settings.high_percentile)), None))
                 for lname in ("hour", "day"):
                     length = LEVELS[lname]
                     start = op.minute_start // length * length
@@ -500,8 +499,9 @@ class HistoryRecorder:
                         self._close_level(pid, op, lname, rows)
                         op.starts[lname] = start
                         op.sketches[lname] = [LogSketch(_SKETCH_ALPHA) for _ in self.indicators]
-                    LogSketch.add_columns(op.sketches[lname], x)
                     op.dirty.add(lname)
+                # the closed minute into the hour's and the day's sketches (its bins worked out once for both)
+                LogSketch.add_columns(op.sketches["hour"], x, also=[op.sketches["day"]])
             op.minute_start = None
             op.minute_values = []
             op.dirty.discard("minute")

@@ -17,6 +17,7 @@ Shapes: a batch is ``(n_values, n_indicators)``; NaN marks a missing value of on
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -77,6 +78,28 @@ def summarize(values: npt.ArrayLike, high_percentile: float = 95.0) -> FloatArra
     return out
 
 
+def _occupied_bins(x: FloatArray, finite: npt.NDArray[np.bool_], bins: FloatArray) -> list[list[tuple[int, int, int]]]:
+    """Per column of ``x`` (n, columns): its occupied bins as (1 for the negative side else 0, bin, count).
+
+    Found once for a batch: a bucket's values cluster in a few bins, so a sketch's dictionaries then see one update
+    per occupied bin rather than one per value."""
+    rows, cols = np.nonzero(finite & (x != 0))
+    occupied: list[list[tuple[int, int, int]]] = [[] for _ in range(x.shape[1])]
+    if not rows.size:
+        return occupied
+    b = bins[rows, cols].astype(np.int64)
+    neg = (x[rows, cols] < 0).astype(np.int64)
+    if int(np.abs(b).max()) < 1 << 20:  # every finite double at accuracies above about 1e-3
+        key = ((cols.astype(np.int64) * 2 + neg) << 21) + (b + (1 << 20))  # (column, sign, bin) in one integer
+        uniq, n_in = np.unique(key, return_counts=True)
+        for u, cnt in zip(uniq.tolist(), n_in.tolist(), strict=True):
+            occupied[u >> 22].append(((u >> 21) & 1, (u & ((1 << 21) - 1)) - (1 << 20), cnt))
+    else:
+        for j, ng, k in zip(cols.tolist(), neg.tolist(), b.tolist(), strict=True):
+            occupied[j].append((ng, k, 1))
+    return occupied
+
+
 @dataclass
 class LogSketch:
     """Count, min, max, sum and a logarithmic-bin quantile sketch of one indicator's values.
@@ -127,16 +150,28 @@ class LogSketch:
                     store[k] = store.get(k, 0) + c
 
     @staticmethod
-    def add_columns(sketches: list[LogSketch], values: npt.ArrayLike) -> None:
-        """Add a batch (n, len(sketches)) to one sketch per column at once (same accuracy for all)."""
+    def add_columns(sketches: list[LogSketch], values: npt.ArrayLike,
+                    also: Sequence[list[LogSketch]] = ()) -> None:
+        """Add a batch (n, len(sketches)) to one sketch per column at once (same accuracy for all); ``also``: more
+        lists of sketches (one per column each, same accuracy) that receive the same batch, worked out once."""
         x = np.asarray(values, dtype=np.float64)
-        if x.ndim != 2 or x.shape[1] != len(sketches):
-            raise RollupError(f"values of shape {x.shape} do not match {len(sketches)} sketches")
+        groups = [sketches, *also]
+        for g in groups:
+            if x.ndim != 2 or x.shape[1] != len(g):
+                raise RollupError(f"values of shape {x.shape} do not match {len(g)} sketches")
         if not sketches or x.shape[0] == 0:
             return
+        log_gamma = sketches[0]._log_gamma
+        for g in groups:
+            if any(abs(sk.alpha - sketches[0].alpha) > 1e-12 for sk in g):
+                raise RollupError("add_columns needs sketches of one accuracy")
         if x.shape[0] == 1:  # one row (a sparse bucket): plain Python is quicker than array machinery
-            for sk, v in zip(sketches, x[0].tolist(), strict=True):
-                if math.isfinite(v):
+            for j, v in enumerate(x[0].tolist()):
+                if not math.isfinite(v):
+                    continue
+                k = 0 if v == 0 else math.ceil(math.log(abs(v)) / log_gamma)
+                for g in groups:
+                    sk = g[j]
                     sk.count += 1
                     sk.total += v
                     sk.vmin = min(sk.vmin, v)
@@ -145,32 +180,31 @@ class LogSketch:
                         sk.zeros += 1
                     else:
                         store = sk.pos if v > 0 else sk.neg
-                        k = math.ceil(math.log(abs(v)) / sk._log_gamma)
                         store[k] = store.get(k, 0) + 1
             return
         finite = np.isfinite(x)
-        counts = finite.sum(axis=0)
+        counts = finite.sum(axis=0).tolist()
         xf = np.where(finite, x, 0.0)
-        totals = xf.sum(axis=0)
-        mins = np.where(finite, x, np.inf).min(axis=0)
-        maxs = np.where(finite, x, -np.inf).max(axis=0)
-        zeros = (finite & (x == 0)).sum(axis=0)
+        totals = xf.sum(axis=0).tolist()
+        mins = np.where(finite, x, np.inf).min(axis=0).tolist()
+        maxs = np.where(finite, x, -np.inf).max(axis=0).tolist()
+        zeros = (finite & (x == 0)).sum(axis=0).tolist()
         with np.errstate(divide="ignore"):
-            bins = np.ceil(np.log(np.abs(xf)) / sketches[0]._log_gamma)
-        pos, neg = finite & (x > 0), finite & (x < 0)
-        for j, sk in enumerate(sketches):
-            if counts[j] == 0:
-                continue
-            if abs(sk.alpha - sketches[0].alpha) > 1e-12:
-                raise RollupError("add_columns needs sketches of one accuracy")
-            sk.count += int(counts[j])
-            sk.total += float(totals[j])
-            sk.vmin = min(sk.vmin, float(mins[j]))
-            sk.vmax = max(sk.vmax, float(maxs[j]))
-            sk.zeros += int(zeros[j])
-            for mask, store in ((pos[:, j], sk.pos), (neg[:, j], sk.neg)):
-                for k in bins[mask, j].astype(np.int64).tolist():
-                    store[k] = store.get(k, 0) + 1
+            bins = np.ceil(np.log(np.abs(xf)) / log_gamma)
+        occupied = _occupied_bins(x, finite, bins)
+        for g in groups:
+            for j, sk in enumerate(g):
+                if counts[j] == 0:
+                    continue
+                sk.count += counts[j]
+                sk.total += totals[j]
+                sk.vmin = min(sk.vmin, mins[j])
+                sk.vmax = max(sk.vmax, maxs[j])
+                sk.zeros += zeros[j]
+                stores = (sk.pos, sk.neg)
+                for ng, k, cnt in occupied[j]:
+                    store = stores[ng]
+                    store[k] = store.get(k, 0) + cnt
 
     def merge(self, other: LogSketch) -> None:
         """Fold another sketch (same ``alpha``) into this one."""
