@@ -451,7 +451,9 @@ def test_report_with_trend_and_projection_opens_in_the_browser(browser: Any, tmp
     trend = {"indicator": "velocity_rms_mm_s", "unit": "mm/s", "t_s": (1.8e9 + t).tolist(), "values": v,
              "limits": {"alert": 2.8, "danger": 4.5}, "source": "replay",
              "projection": {"t_s": (1.8e9 + t[-1] + np.arange(1, 20) * 600.0).tolist(),
-                            "values": 1.0 + 0.02 * np.exp((t[-1] + np.arange(1, 20) * 600.0) / 30000.0)}}
+                            "values": 1.0 + 0.02 * np.exp((t[-1] + np.arange(1, 20) * 600.0) / 30000.0),
+                            # an upper interval edge that runs away near the horizon (an exponential fit's band)
+                            "low": np.full(19, 1.0), "high": np.geomspace(2.0, 15000.0, 19), "coverage": 0.8}}
     text = build_report(title="replay", meta={"points": 1}, indicators=[("velocity_rms_mm_s", 1.2, "mm/s")],
                         spectrum=None, envelope=None, waveform=waveform_panel(np.sin(np.arange(4096) / 9), 1000.0),
                         trend=trend)
@@ -464,6 +466,10 @@ def test_report_with_trend_and_projection_opens_in_the_browser(browser: Any, tmp
     legend = page.inner_text("#tr-chart")
     assert "alert" in legend and "danger" in legend and "projection" in legend
     assert page.get_attribute("#panel-trend", "data-count") == str(t.size)
+    # the y range holds the values, the danger line (4.5) and the curve, not the band's 15 000: the history stays
+    # readable and the band is clipped
+    y_lo, y_hi = (float(x) for x in (page.get_attribute("#panel-trend", "data-y-range") or "").split())
+    assert y_lo < float(v.min()) and 4.5 < y_hi < 6.0
     page.close()
     assert console.errors == []
 

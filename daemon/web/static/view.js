@@ -326,7 +326,13 @@
     }
     const advice = doc.trend && doc.trend.advice_text ? ` — ${doc.trend.advice_text}` : "";
     $("tr-src").textContent = (doc.source || "") + advice;
+    // the y range holds the values, the limit lines and the projected curve; the interval band is clipped to it
+    // (near the horizon its upper edge can run far above every limit and would flatten the history)
+    const ys = [...v, ...lines.map(l => l.value), ...(proj ? proj.values : [])].filter(y => y !== null && isFinite(y));
+    const yLo = ys.length ? Math.min(...ys) : 0, yHi = ys.length ? Math.max(...ys) : 1;
+    const pad = (yHi - yLo) * 0.05 || Math.abs(yHi) * 0.05 || 1;
     const panel = $("panel-trend");
+    panel.setAttribute("data-y-range", `${yLo - pad} ${yHi + pad}`);
     panel.setAttribute("data-count", String(t.length));
     panel.setAttribute("data-lines", lines.map(lineLabel).join("|"));
     panel.setAttribute("data-projection", proj ? (proj.low ? "band" : "curve") : "none");
@@ -343,7 +349,8 @@
     }
     makeChart("trend", $("tr-chart"), {
       // a lone value (a history just begun) gets an hour around it rather than an arbitrary span
-      scales: { x: { time: true, range: (u, lo, hi) => xs.length === 1 && !(hi > lo) ? [xs[0] - 1800, xs[0] + 1800] : [lo, hi] } },
+      scales: { x: { time: true, range: (u, lo, hi) => xs.length === 1 && !(hi > lo) ? [xs[0] - 1800, xs[0] + 1800] : [lo, hi] },
+                y: { range: () => [yLo - pad, yHi + pad] } },
       axes: [{ grid: { stroke: COLORS.grid } }, { label: unit, grid: { stroke: COLORS.grid }, size: 60 }],
       series, bands, legend: { show: true }, cursor: { drag: { x: true, y: false } },
       hooks: {
