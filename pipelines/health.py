@@ -52,6 +52,7 @@ SensorFault = Literal["bias", "flatline", "clipping", "dc-step", "spikes", "nois
 FAULT_ORDER: tuple[SensorFault, ...] = ("bias", "flatline", "clipping", "dc-step", "spikes", "noise")
 SPIKE_WINDOW = 8  # samples each side in which a ringing response would show
 MIN_LEVELS = 16  # quantization steps a frame must span before flat tops at its extremes say "clipping"
+_BLOCK_SAMPLES = 1 << 17  # the exact spike test works on blocks of rows of about this many samples (1 MB)
 _MAD_TO_SIGMA = 1.4826  # σ / median absolute deviation for a Gaussian (common practice)
 
 
@@ -149,8 +150,25 @@ def _spike_counts(x: npt.NDArray[np.float64], spike_sigma: float, scratch: npt.N
     c, n = x.shape
     if scratch is None:
         scratch = np.empty((c, n), dtype=np.bool_)
+    # blocks of rows of about 1 MB of deviations, one buffer for all: batch-sized float64 temporaries beside the
+    # batch itself are handed back to the system by the allocator after each call and faulted in again (page
+    # faults cost microseconds each on a virtual machine)
+    rows = max(1, min(c, _BLOCK_SAMPLES // n))
+    buf = np.empty((rows, n), dtype=np.float64)
+    spikes = np.zeros(c, dtype=np.int64)
+    sigma_r = np.empty(c, dtype=np.float64)
+    for i in range(0, c, rows):
+        j = min(c, i + rows)
+        spikes[i:j], sigma_r[i:j] = _spike_block(x[i:j], spike_sigma, scratch[: j - i], buf[: j - i])
+    return spikes, sigma_r
+
+
+def _spike_block(x: npt.NDArray[np.float64], spike_sigma: float, scratch: npt.NDArray[np.bool_],
+                 xc_abs: npt.NDArray[np.float64]) -> tuple[npt.NDArray[np.int64], npt.NDArray[np.float64]]:
+    """:func:`_spike_counts` of a block of rows; ``scratch`` and ``xc_abs`` are buffers of ``x``'s shape."""
+    c, n = x.shape
     med = _medians(x, scratch)
-    xc_abs = np.subtract(x, med)  # (one row-sized temporary at a time: large ones that overlap cost page faults)
+    np.subtract(x, med, out=xc_abs)
     np.abs(xc_abs, out=xc_abs)
     sigma_r = _MAD_TO_SIGMA * _medians(xc_abs, scratch)
     big = np.greater(xc_abs, spike_sigma * np.where(sigma_r > 0, sigma_r, np.inf), out=scratch)
