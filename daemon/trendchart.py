@@ -303,9 +303,7 @@ def _history_path(args: argparse.Namespace) -> Path:
     if args.config:
         from edgevib.daemon.config import load_config
 
-        cfg = load_config(args.config)
-        path = getattr(getattr(cfg, "history", None), "path", None)
-        return Path(path) if path else Path(cfg.site.state_dir) / "history.sqlite"
+        return Path(load_config(args.config, plans=False).history.file)  # resolved against state_dir
     state = args.state_dir or os.environ.get("EDGEVIB_STATE_DIR") or "/var/lib/edgevib"
     return Path(state) / "history.sqlite"
 

@@ -428,7 +428,7 @@ class TrendWatch:
         else:
             ms = result.machine_state
             if ms is None and self.alarm_layer is not None:
-                ms = getattr(self.alarm_layer, "machine_states", {}).get(result.machine_id)
+                ms = self.alarm_layer.machine_states.get(result.machine_id)
             state = ms.state if ms is not None else _STATE_OF_REASON.get(reason, "unknown")
         self._record(result, state)
 
@@ -445,7 +445,7 @@ class TrendWatch:
                 m = self.machines.get(r.machine_id)
                 ind = r.indicators
                 state = running_state(ind.velocity_rms_mm_s, ind.shaft_hz, ind.shaft_estimated,
-                                      float(getattr(m, "run_threshold_rpm", 60.0)))
+                                      60.0 if m is None else m.run_threshold_rpm)
             self._record(r, state)
 
     def _record(self, r: FrameResult, state: str) -> None:
@@ -461,8 +461,8 @@ class TrendWatch:
 
     def _tracked(self) -> list[tuple[str, str]]:
         out: dict[tuple[str, str], None] = {}
-        limited = {(lim.point, lim.indicator) for lim in getattr(getattr(self.alarm_layer, "settings", None),
-                                                                 "limits", ())}
+        limited = {(lim.point, lim.indicator) for lim in
+                   (self.alarm_layer.settings.limits if self.alarm_layer is not None else ())}
         for pid in self.points:
             for ind in self.settings.indicators:
                 out[(pid, ind)] = None
@@ -655,7 +655,7 @@ class TrendCollector:
 
     def collect(self) -> Iterable[Any]:
         w = self.watch
-        site = getattr(getattr(w.config, "site", None), "name", "edgevib")
+        site = w.config.site.name
         labels = ["site", "machine", "point", "indicator"]
         slope = GaugeMetricFamily("edgevib_trend_slope_per_day", "Robust (Theil-Sen) trend slope of a series since "
                                   "its growth began, in the indicator's unit per day.", labels=labels)

@@ -306,3 +306,16 @@ def test_time_named_text_files_without_a_suffix(tmp_path: Path, capsys: pytest.C
     # column 1 (0-based) is the noise channel: its r.m.s. is 0.05 g (numpy on the written values)
     x1 = np.loadtxt(tmp_path / names[0], delimiter="\t")[:, 1]
     assert rows[0]["indicators"]["acceleration_rms_g"] == pytest.approx(np.std(x1), rel=1e-3)
+
+
+def test_trend_finds_the_history_file_the_configuration_names(tmp_path: Path) -> None:
+    import argparse
+
+    from edgevib.daemon.trendchart import _history_path
+
+    example = Path(__file__).resolve().parents[1] / "config" / "example-plant.toml"
+    cfg = tmp_path / "plant.toml"
+    text = example.read_text().replace('state_dir = "/var/lib/edgevib"', f'state_dir = "{tmp_path}"', 1)
+    cfg.write_text(text.replace('file = "history.sqlite"', 'file = "severity/history-ql.sqlite"', 1))
+    args = argparse.Namespace(history=None, config=str(cfg), state_dir=None)
+    assert _history_path(args) == tmp_path / "severity" / "history-ql.sqlite"  # [history] file, under state_dir
