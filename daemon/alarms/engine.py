@@ -37,10 +37,8 @@ from edgevib.daemon.alarms.core import (
     Now,
     SourceChange,
     Tick,
-    advice_text,
     decide,
     machine_stale,
-    trend_slope_per_h,
 )
 from edgevib.daemon.alarms.feed import MqttFeed, WebhookFeed
 from edgevib.daemon.alarms.outbox import Outbox, OutboxEvent
@@ -60,7 +58,7 @@ from edgevib.daemon.sensor_health import HealthError, batch_health, judged_runni
 from edgevib.pipelines.health import HealthSpec, SensorHealth
 from edgevib.pipelines.machine_state import MachineState
 
-__all__ = ["AlarmCollector", "AlarmLayer", "advice_text", "trend_slope_per_h"]
+__all__ = ["AlarmLayer"]
 
 log = structlog.get_logger("edgevib.alarms")
 
@@ -163,7 +161,11 @@ class AlarmLayer:
         if s.feed.enabled and s.feed.webhook is not None:
             sinks.append(WebhookFeed.sink)
         store = self.store = AlarmStore(s, sinks)
-        restored = await asyncio.wrap_future(store.open())
+        try:
+            restored = await asyncio.wrap_future(store.open())
+        except BaseException:  # an unusable state database: no worker left behind
+            await asyncio.to_thread(store.close)
+            raise
         with contextlib.suppress(Exception):
             pruned = await store.run(store.prune_history, time.time_ns() - round(s.table.history_days * 86400e9))
             if pruned:

@@ -8,6 +8,9 @@ in one transaction (``synchronous=FULL``: durable on return).  The caller publis
 is done, so an event is never seen before it is on disk.  ``call(fn, …)`` runs any other database work (the feeds'
 pending / delivered calls, history queries, pruning) on the same worker, in queue order.
 
+The queue needs no bound of its own: every caller waits for its item (frames and ticks for their commit, commands
+for their reply, the feeds for their rows), so it holds at most one item per waiting caller.
+
 After every transaction the worker refreshes :attr:`AlarmStore.outbox_figures` (pending events, oldest creation
 time), a tuple the metrics scrape reads without a lock.
 """
@@ -29,7 +32,7 @@ from edgevib.daemon.alarms.capture import CaptureStore
 from edgevib.daemon.alarms.config import AlarmSettings
 from edgevib.daemon.alarms.core import Effects, EventOut
 from edgevib.daemon.alarms.feed import cloud_event, event_body
-from edgevib.daemon.alarms.outbox import Database, Outbox, OutboxEvent, new_event_id
+from edgevib.daemon.alarms.outbox import Database, Outbox, OutboxEvent, StateError, new_event_id
 from edgevib.daemon.alarms.state import StateStore
 
 __all__ = ["AlarmStore", "Restored"]
@@ -77,14 +80,20 @@ class AlarmStore:
     def submit(self, eff: Effects) -> Future[list[OutboxEvent]]:
         """Commit a decision's writes and events (batched with others waiting); the events as committed."""
         fut: Future[list[OutboxEvent]] = Future()
-        self._q.put((eff, fut))
+        self._put(eff, fut)
         return fut
 
     def call(self, fn: Callable[..., T], *args: Any) -> Future[T]:
         """Run ``fn(*args)`` on the worker, after everything queued before."""
         fut: Future[T] = Future()
-        self._q.put(((fn, args), fut))
+        self._put((fn, args), fut)
         return fut
+
+    def _put(self, what: Any, fut: Future[Any]) -> None:
+        if self._thread is None:  # closed (or never opened): nobody would answer
+            fut.set_exception(StateError("the alarm store is closed"))
+        else:
+            self._q.put((what, fut))
 
     async def run(self, fn: Callable[..., T], *args: Any) -> T:
         """:meth:`call` from the event loop (the feeds' ``io``)."""

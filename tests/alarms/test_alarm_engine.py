@@ -273,7 +273,7 @@ def test_capture_rotation_keeps_the_budget(tmp_path: Path) -> None:
     ("bearing cage", "Energy at a cage defect frequency"),
 ])
 def test_bearing_advice_uses_the_right_article(fault: str, phrase: str) -> None:
-    from edgevib.daemon.alarms.engine import advice_text
+    from edgevib.daemon.alarms.core import advice_text
     from edgevib.daemon.indicators import LIMITABLE as INDICATORS
 
     assert fault in {d.fault for d in INDICATORS.values()}  # the family names the layer really uses

@@ -108,3 +108,23 @@ def test_duplicate_ids_are_refused(tmp_path: Path) -> None:
     with pytest.raises(sqlite3.IntegrityError):
         ob.add([e])
     assert ob.depth("mqtt") == 1  # the failed transaction left nothing behind
+
+
+async def test_the_layer_refuses_a_newer_database_and_leaves_no_worker(tmp_path: Path) -> None:
+    # The layer's store opens the file on its own thread: the refusal reaches start(), and that thread ends.
+    import threading
+
+    from alarmkit import small_config
+
+    from edgevib.daemon.alarms.engine import AlarmLayer
+
+    cfg = small_config(tmp_path / "state")
+    Database(tmp_path / "state" / "alarms.sqlite").close()
+    c = sqlite3.connect(tmp_path / "state" / "alarms.sqlite")
+    c.execute("UPDATE schema_version SET version = ?", (SCHEMA_VERSION + 1,))
+    c.commit()
+    c.close()
+    layer = AlarmLayer(cfg)
+    with pytest.raises(StateError, match="newer edgevib"):
+        await layer.start()
+    assert not [t for t in threading.enumerate() if t.name == "edgevib-alarm-store"]
