@@ -140,10 +140,6 @@ class AlarmLayer:
         return self.core.machine_states
 
     @property
-    def suppressed(self) -> dict[str, str | None]:
-        return dict(self.view.suppressed)
-
-    @property
     def outbox(self) -> Outbox | None:
         return self.store.outbox if self.store is not None else None
 

@@ -43,7 +43,7 @@ async def test_control_socket_commands(short_tmp: Path) -> None:
     cfg = small_config(short_tmp)
     layer = AlarmLayer(cfg)
     events: list[dict[str, Any]] = []
-    layer.listeners.append(events.append)
+    layer.subscribe(events.append)
     await layer.start()
     try:
         sock = Path(cfg.alarm_settings.socket_path)
@@ -113,7 +113,7 @@ async def test_a_shelf_expires_on_the_timer_without_frames(short_tmp: Path) -> N
     mono = [500.0]
     layer = AlarmLayer(cfg, monotonic=lambda: mono[0])
     events: list[dict[str, Any]] = []
-    layer.listeners.append(events.append)
+    layer.subscribe(events.append)
     await layer.start()
     try:
         for i in range(2):

@@ -31,7 +31,7 @@ IMPACT_LIMITS = {"kurtosis": {"alert": 5.0, "danger": 10.0}, "acceleration_peak_
 
 async def run_sim(layer: AlarmLayer, frames: Any, until_s: float, step_s: float = 1.0) -> list[dict[str, Any]]:
     events: list[dict[str, Any]] = []
-    layer.listeners.append(events.append)
+    layer.subscribe(events.append)
     await layer.start()
     try:
         t = step_s
@@ -156,13 +156,13 @@ async def test_restart_restores_state_without_storm_or_loss(short_tmp: Path) -> 
     cfg = small_config(short_tmp)
     events: list[dict[str, Any]] = []
     layer = AlarmLayer(cfg)
-    layer.listeners.append(events.append)
+    layer.subscribe(events.append)
     await layer.start()
     await _feed(layer, [1.0, 3.0, 3.0, 3.0])
     await layer.stop()
     assert [e["data"]["transition"] for e in events] == ["raised"]
     layer2 = AlarmLayer(cfg)
-    layer2.listeners.append(events.append)
+    layer2.subscribe(events.append)
     await layer2.start()
     assert layer2.state_text("P-101-DE-H") == "ALERT velocity_rms_mm_s"  # not forgotten
     await _feed(layer2, [3.0, 3.1, 3.0], t0=2000.0)
@@ -178,7 +178,7 @@ async def test_iso_baseline_rule_and_relearn(short_tmp: Path) -> None:
                        limits={"velocity_rms_mm_s": {"rule": "iso-baseline"}})
     layer = AlarmLayer(cfg)
     events: list[dict[str, Any]] = []
-    layer.listeners.append(events.append)
+    layer.subscribe(events.append)
     await layer.start()
     row = layer.snapshot()["alarms"][0]
     assert row["alert"] == pytest.approx(2.8) and row["danger"] == pytest.approx(4.5)  # B/C until learned
@@ -224,7 +224,7 @@ async def test_stopped_machine_and_start_up_grace_suppress(short_tmp: Path) -> N
     cfg = small_config(short_tmp, alarms={"startup_grace_s": 5.0})
     layer = AlarmLayer(cfg)
     events: list[dict[str, Any]] = []
-    layer.listeners.append(events.append)
+    layer.subscribe(events.append)
     await layer.start()
     await _feed(layer, [0.05] * 3 + [6.0] * 4, t0=100.0)  # stopped, then a start with a high transient
     assert events == [] and layer.state_text("P-101-DE-H") == "starting"

@@ -79,7 +79,7 @@ async def run_scenario(name: str, mosquitto: Mosquitto, tmp_path: Path) -> tuple
     d.add_lossless_sink(probe)
     layer = cast(AlarmLayer, d.alarm_view)
     events: list[dict[str, Any]] = []
-    layer.listeners.append(events.append)
+    layer.subscribe(events.append)
     await d.start()
     try:
         async with asyncio.timeout(20):

@@ -53,7 +53,7 @@ class Clock:
 
 async def make_layer(cfg: Config, clock: Clock, events: list[dict[str, Any]]) -> AlarmLayer:
     layer = AlarmLayer(cfg, monotonic=clock)
-    layer.listeners.append(events.append)
+    layer.subscribe(events.append)
     layer.tracks_sources = True  # as the daemon wires it
     await layer.start()
     return layer
@@ -286,7 +286,7 @@ async def test_alarms_of_indicators_absent_while_stopped_are_suppressed_too(shor
     cfg = small_config(short_tmp, limits={"imbalance_1x_mm_s": {"alert": 1.4, "danger": 2.8}})
     layer = AlarmLayer(cfg)
     events: list[dict[str, Any]] = []
-    layer.listeners.append(events.append)
+    layer.subscribe(events.append)
     await layer.start()
     try:
         running = MachineState(state="running", since_s=0.0)
@@ -313,7 +313,7 @@ async def test_operator_actions_during_an_outage_take_the_time_of_the_action(sho
     wall = Clock()
     wall.t = T0 + 102.0
     layer = AlarmLayer(two_points(short_tmp), monotonic=clock, clock=wall)
-    layer.listeners.append(events.append)
+    layer.subscribe(events.append)
     layer.tracks_sources = True
     await layer.start()
     try:

@@ -95,7 +95,7 @@ async def test_alarm_and_baseline_events_meet_their_schemas(short_tmp: Path) -> 
                                "kurtosis": {"alert": 5.0, "danger": 10.0}})
     layer = AlarmLayer(cfg)
     events: list[dict[str, Any]] = []
-    layer.listeners.append(events.append)
+    layer.subscribe(events.append)
     await layer.start()
     try:
         await _feed(layer, [1.0, 1.2, 0.8, 1.0, 1.0], t0=1000.0)  # learned
@@ -120,7 +120,7 @@ async def test_sensor_fault_events_meet_their_schema(sim_config: Any) -> None:
     _, cfg, frames = sim_config("sensor-faults", extra={"alarms": {"startup_grace_s": 0.0}, "feed": FEED})
     layer = AlarmLayer(cfg)
     events: list[dict[str, Any]] = []
-    layer.listeners.append(events.append)
+    layer.subscribe(events.append)
     await layer.start()
     try:
         for t in range(1, 16):
@@ -152,7 +152,7 @@ async def test_an_alarm_event_with_its_trend_meets_the_schema(short_tmp: Path) -
     watch = create_trend_watch(cfg, layer)
     assert watch is not None
     events: list[dict[str, Any]] = []
-    layer.listeners.append(events.append)
+    layer.subscribe(events.append)
     await layer.start()
     await watch.start()
     try:
