@@ -205,3 +205,40 @@ async def test_a_scrape_during_a_decision_reads_the_previous_snapshot(short_tmp:
     finally:
         release.set()
         await layer.stop()
+
+
+def test_the_store_commits_waiting_decisions_in_one_transaction(tmp_path: Path) -> None:
+    # Decisions queued while the store is busy are committed together (one BEGIN … COMMIT), each caller's future
+    # answering with its own events, in order; the state rows of every one of them are on disk afterwards.
+    from edgevib.daemon.alarms.state import StateStore
+    from edgevib.daemon.alarms.store import AlarmStore
+
+    cfg = small_config(tmp_path / "state", feed={"enabled": False})
+    core = _core(tmp_path)
+    store = AlarmStore(cfg.alarm_settings, ["mqtt"])
+    store.open().result(30.0)
+    assert store.db is not None
+    transactions = []
+    real = store.db.transaction
+
+    def counted() -> Any:
+        transactions.append(1)
+        return real()
+
+    store.db.transaction = counted  # type: ignore[method-assign]
+    busy, release = threading.Event(), threading.Event()
+    try:
+        store.call(lambda: (busy.set(), release.wait(30.0)))
+        assert busy.wait(30.0)
+        effs = _replay(core, [("frames", [6.0]), ("frames", [6.0]), ("frames", [1.0])])
+        futures = [store.submit(e) for e in effs]
+        release.set()
+        committed = [f.result(30.0) for f in futures]
+        assert len(transactions) == 1
+        assert [[e.type for e in events] for events in committed] == [[e.type for e in eff.events] for eff in effs]
+        assert store.outbox is not None and store.outbox.depth() == sum(len(c) for c in committed) > 0
+        state = StateStore(store.db).load_alarms()
+        assert state[(POINT, "velocity_rms_mm_s")] == core.alarms[(POINT, "velocity_rms_mm_s")]
+    finally:
+        release.set()
+        store.close()
