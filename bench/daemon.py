@@ -34,7 +34,8 @@ Each row (one per instance) reports, over the measurement window after a warm-up
 * diagnostics: ``slow_frames`` over 250 ms and in how many distinct seconds they fell (one stall or many),
   ``loop_lag_max_ms`` the longest the event loop was unresponsive, ``thread_cores`` CPU per thread,
   ``faults_per_frame`` the daemon process's minor page faults per analysed frame (memory handed back to the
-  system and faulted in again: see ``--keep-freed-memory``);
+  system and faulted in again: see ``--keep-freed-memory``), ``exposition_ms`` the CPU time of encoding the whole
+  ``/metrics`` exposition once (what each Prometheus scrape costs the daemon, measured after the window);
 * ``sustained``: every expected frame analysed (≥ 97 %), none dropped or rejected, p99 < 250 ms.
 
 A level's summary adds the instances up (channels, frames, cores, ``channels_per_core``); ``sustained_channels``
@@ -417,6 +418,7 @@ class Row:
     publish_lag_p99_ms: float = math.nan
     publisher_cores: float = math.nan
     faults_per_frame: float = math.nan
+    exposition_ms: float = math.nan
 
 
 def _warm_up_analysis(overlap: float) -> None:
@@ -501,7 +503,8 @@ async def _run_instance(spec: InstanceSpec, out: Any, ctl: Any) -> Row:
     config = bench_config(spec.port, spec.channels, spec.overlap, state_dir, spec.shard)
     own = len(config.points)
     rss_base = _rss_mb()
-    daemon = Daemon(config, registry=CollectorRegistry(), metrics_listen=("127.0.0.1", 0))
+    registry = CollectorRegistry()
+    daemon = Daemon(config, registry=registry, metrics_listen=("127.0.0.1", 0))
     if not spec.alarms:  # diagnostic: the pipeline and the exposition without the alarm layer
         daemon.sinks = [s for s in daemon.sinks if not type(s).__module__.startswith("edgevib.daemon.alarms")]
     probe = ProbeSink()  # right after the Prometheus sink: the indicators are in the exposition
@@ -533,6 +536,7 @@ async def _run_instance(spec: InstanceSpec, out: Any, ctl: Any) -> Row:
         threads1 = _thread_cpu_s()
         hist1 = histogram_buckets(await asyncio.to_thread(_scrape, daemon.metrics.url or ""), _HIST)
         rss_end = _rss_mb()
+        exposition_ms = await asyncio.to_thread(_exposition_ms, registry)
     finally:
         ticker.cancel()
         await daemon.stop()
@@ -565,7 +569,20 @@ async def _run_instance(spec: InstanceSpec, out: Any, ctl: Any) -> Row:
         slow_frames=len(slow), slow_seconds=len({t // 1_000_000_000 for t in slow}),
         loop_lag_max_ms=round(max(loop_lag), 1),
         thread_cores={k: round((v - threads0.get(k, 0.0)) / wall_s, 2) for k, v in threads1.items()},
-        faults_per_frame=round((faults1 - faults0) / max(1, len(window)), 1))
+        faults_per_frame=round((faults1 - faults0) / max(1, len(window)), 1),
+        exposition_ms=round(exposition_ms, 1))
+
+
+def _exposition_ms(registry: Any, repeats: int = 3) -> float:
+    """CPU time (this thread) of encoding the daemon's whole ``/metrics`` exposition once, the least of a few."""
+    from prometheus_client import generate_latest
+
+    best = math.inf
+    for _ in range(repeats):
+        t0 = time.thread_time()
+        generate_latest(registry)
+        best = min(best, time.thread_time() - t0)
+    return best * 1e3
 
 
 def _get(q: Any, timeout_s: float, procs: list[Any]) -> dict[str, Any]:
@@ -756,7 +773,8 @@ def _print_level(rows: list[Row], header: bool) -> None:
         d = asdict(row)
         print(" ".join(str(d[k]).rjust(w) for k, w in _COLUMNS), flush=True)
         print("      threads (cores): " + ", ".join(f"{k} {v}" for k, v in sorted(row.thread_cores.items())
-                                                    if v >= 0.005) + f"; page faults per frame {row.faults_per_frame}",
+                                                    if v >= 0.005) + f"; page faults per frame {row.faults_per_frame}"
+              f"; /metrics exposition {row.exposition_ms} ms of CPU per scrape",
               flush=True)
     if rows:
         s = level_summary(rows)
