@@ -241,6 +241,7 @@ class AlarmSnapshot:
 
     settings: AlarmSettings
     points: Mapping[str, PointConfig]
+    machine_points: Mapping[str, tuple[str, ...]]
     limits: Mapping[tuple[str, str], LimitConfig]
     by_point: Mapping[str, tuple[LimitConfig, ...]]
     machine_specs: Mapping[str, MachineStateSpec]
@@ -257,9 +258,9 @@ class AlarmSnapshot:
     events_total: Mapping[str, int]
 
 
-def machine_stale(points: Mapping[str, PointConfig], stale: Mapping[str, str], machine: str) -> bool:
+def machine_stale(machine_points: Mapping[str, tuple[str, ...]], stale: Mapping[str, str], machine: str) -> bool:
     """Whether every point of a machine is stale (its source down or its sensor silent): its state is unknown."""
-    pids = [pid for pid, p in points.items() if p.machine == machine]
+    pids = machine_points.get(machine, ())
     return bool(pids) and all(stale.get(pid) for pid in pids)
 
 
@@ -319,6 +320,10 @@ class AlarmCore:
         for p in config.points:
             self.sources_of.setdefault(p.source, []).append(p.id)
         self.machines_cfg = {m.id: m for m in config.machines}
+        machine_points: dict[str, list[str]] = {}
+        for p in config.points:
+            machine_points.setdefault(p.machine, []).append(p.id)
+        self.machine_points = {m: tuple(pids) for m, pids in machine_points.items()}
         self.limits: dict[tuple[str, str], LimitConfig] = {lim.key: lim for lim in settings.limits}
         by_point: dict[str, list[LimitConfig]] = {}
         for lim in settings.limits:
@@ -380,7 +385,8 @@ class AlarmCore:
         """The state for the views (copies of the core's tables)."""
         mp = MappingProxyType
         return AlarmSnapshot(
-            settings=self.settings, points=mp(self.points), limits=mp(self.limits), by_point=mp(self.by_point),
+            settings=self.settings, points=mp(self.points), machine_points=mp(self.machine_points),
+            limits=mp(self.limits), by_point=mp(self.by_point),
             machine_specs=mp(self.own_machines.specs), alarms=mp(dict(self.alarms)), specs=mp(dict(self.specs)),
             values=mp(dict(self.values)), baselines=mp(dict(self.baselines)), sensors=mp(dict(self.sensors)),
             stale=mp(dict(self.stale)), suppressed=mp(dict(self.suppressed)),
@@ -519,7 +525,7 @@ class AlarmCore:
         ms = self.machine_states.get(machine)
         d = {"site": self.settings.site, "machine": machine, "point": point, "axis": getattr(p, "axis", None),
              "machine_state": ms.state if ms is not None else "unknown"}
-        if ms is not None and machine_stale(self.points, self.stale, machine):
+        if ms is not None and machine_stale(self.machine_points, self.stale, machine):
             d["machine_state"], d["last_machine_state"] = "unknown", ms.state
         return d
 

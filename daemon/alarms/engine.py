@@ -441,7 +441,7 @@ class AlarmLayer:
     def machine_stale(self, machine: str) -> bool:
         """Whether every point of a machine is stale: its state is then not known."""
         snap = self.view
-        return machine_stale(snap.points, snap.stale, machine)
+        return machine_stale(snap.machine_points, snap.stale, machine)
 
     def point_severity(self, point: str) -> int:
         return point_severity(self.view, point)

@@ -37,7 +37,7 @@ def machine_view(snap: AlarmSnapshot, machine: str) -> dict[str, Any]:
     machine is stale the state is ``unknown``; ``last_state`` and ``last_since_s`` keep the last known one
     (both null otherwise)."""
     ms = snap.machine_states.get(machine) or MachineState()
-    if machine_stale(snap.points, snap.stale, machine):
+    if machine_stale(snap.machine_points, snap.stale, machine):
         return {"state": "unknown", "since_s": None, "grace_left_s": None, "last_state": ms.state,
                 "last_since_s": ms.since_s}
     spec = snap.machine_specs.get(machine)
