@@ -528,8 +528,8 @@ def _write_report(out: Path, result: dict[str, Any], x_g: np.ndarray, fs: float,
                   frame: FrameResult) -> None:
     """``--report``: the recording's panels in one self-contained HTML file."""
     from edgevib.daemon.web.api import indicator_rows
-    from edgevib.daemon.web.panels import envelope_panel, spectrum_panel, waveform_panel
     from edgevib.daemon.web.report import build_report, write_report
+    from edgevib.pipelines.panels import envelope_panel, spectrum_panel, waveform_panel
 
     if out.is_dir():
         raise InputError(f"--report {out} is a directory; give a file name such as report.html")

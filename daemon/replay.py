@@ -683,9 +683,9 @@ def _report(out: Path, last: dict[str, Any], frame: tuple[FrameResult, AnalysisP
     """``--report``: the latest snapshot's panels and the trend of the first tracked indicator with its projection
     (:mod:`edgevib.daemon.web.report`)."""
     from edgevib.daemon.web.api import indicator_rows
-    from edgevib.daemon.web.panels import envelope_panel, spectrum_panel, waveform_panel
     from edgevib.daemon.web.report import build_report, write_report
     from edgevib.daemon.web.trend_source import projection_curve
+    from edgevib.pipelines.panels import envelope_panel, spectrum_panel, waveform_panel
 
     r, plan = frame
     x = np.asarray(r.samples, dtype=np.float64)

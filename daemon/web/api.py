@@ -37,9 +37,9 @@ from edgevib.daemon.indicators import INDICATORS, REGISTRY, Indicator
 from edgevib.daemon.interfaces import AlarmView, FrameResult
 from edgevib.daemon.logs import get_logger
 from edgevib.daemon.timestamps import rfc3339_utc
-from edgevib.daemon.web import panels
 from edgevib.daemon.web.listener import HttpListener
 from edgevib.daemon.web.recent import RecentValues
+from edgevib.pipelines import panels
 from edgevib.pipelines.types import PipelineError
 
 if TYPE_CHECKING:

@@ -71,7 +71,7 @@ def build_report(*, title: str, meta: Mapping[str, Any], indicators: Iterable[tu
     title : shown at the top (file or point name)
     meta : ``{label: value}`` lines of the header (sample rate, speed, band…)
     indicators : ``(name, value, unit)`` rows
-    spectrum, envelope, waveform : documents of :mod:`edgevib.daemon.web.panels` (None hides a panel)
+    spectrum, envelope, waveform : documents of :mod:`edgevib.pipelines.panels` (None hides a panel)
     trend : the API's trend document (None hides the trend panel)
     """
     data = {"spectrum": spectrum, "envelope": envelope, "waveform": waveform, "trend": trend}

@@ -443,8 +443,8 @@ def test_analyze_report_opens_in_the_browser(browser: Any, tmp_path: Path) -> No
 
 
 def test_report_with_trend_and_projection_opens_in_the_browser(browser: Any, tmp_path: Path) -> None:
-    from edgevib.daemon.web.panels import waveform_panel
     from edgevib.daemon.web.report import build_report, write_report
+    from edgevib.pipelines.panels import waveform_panel
 
     t = np.arange(0, 3600.0 * 24, 600.0)
     v = 1.0 + 0.02 * np.exp(t / 30000.0)

@@ -8,9 +8,9 @@ import math
 import numpy as np
 import pytest
 
-from edgevib.daemon.web.panels import PanelError, envelope_panel, spectrum_panel, waveform_panel
 from edgevib.pipelines.analysis import analyze_frames, make_plan
 from edgevib.pipelines.conditioning import STANDARD_GRAVITY_M_S2
+from edgevib.pipelines.panels import PanelError, envelope_panel, spectrum_panel, waveform_panel
 from edgevib.pipelines.types import BearingGeometry
 
 FS, N = 12800.0, 8192
