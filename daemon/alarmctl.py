@@ -182,7 +182,8 @@ def _note(a: dict[str, Any], last_s: float | None) -> str:
         parts.append(f"stale: {a['stale']}")
     if a.get("shelve_reason"):
         until = a.get("shelved_until_s")
-        left = "" if until is None or last_s is None else f", {human_duration(max(0.0, until - last_s))} left"
+        now_s = time.time() if a.get("stale") else last_s  # a shelf runs on the wall clock while data has stopped
+        left = "" if until is None or now_s is None else f", {human_duration(max(0.0, until - now_s))} left"
         parts.append(f"shelved: {a['shelve_reason']}{left}")
     b = a.get("baseline")
     if b is not None and not b.get("learned"):

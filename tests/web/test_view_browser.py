@@ -451,7 +451,14 @@ def test_report_with_trend_and_projection_opens_in_the_browser(browser: Any, tmp
     trend = {"indicator": "velocity_rms_mm_s", "unit": "mm/s", "t_s": (1.8e9 + t).tolist(), "values": v,
              "limits": {"alert": 2.8, "danger": 4.5}, "source": "replay",
              "projection": {"t_s": (1.8e9 + t[-1] + np.arange(1, 20) * 600.0).tolist(),
-                            "values": 1.0 + 0.02 * np.exp((t[-1] + np.arange(1, 20) * 600.0) / 30000.0),
+                            # a curve that runs on past the danger line (an exponential beyond its crossing)
+                            "values": np.r_[1.0 + 0.02 * np.exp((t[-1] + np.arange(1, 17) * 600.0) / 30000.0),
+                                            4.8, 60.0, 1000.0],
+                            "now_s": 1.8e9 + t[-1],
+                            "limits": [{"label": "danger", "value": 4.5, "status": "rising", "eta_s": 9000.0,
+                                        "eta_low_s": 8000.0, "eta_high_s": 10500.0,
+                                        "date": "2027-01-15T10:30:00.000Z", "date_low": "2027-01-15T10:13:20.000Z",
+                                        "date_high": "2027-01-15T10:55:00.000Z"}],
                             # an upper interval edge that runs away near the horizon (an exponential fit's band)
                             "low": np.full(19, 1.0), "high": np.geomspace(2.0, 15000.0, 19), "coverage": 0.8}}
     text = build_report(title="replay", meta={"points": 1}, indicators=[("velocity_rms_mm_s", 1.2, "mm/s")],
@@ -470,6 +477,9 @@ def test_report_with_trend_and_projection_opens_in_the_browser(browser: Any, tmp
     # readable and the band is clipped
     y_lo, y_hi = (float(x) for x in (page.get_attribute("#panel-trend", "data-y-range") or "").split())
     assert y_lo < float(v.min()) and 4.5 < y_hi < 6.0
+    # a crossing hours away: its dates with the time of day
+    assert page.inner_text('#tr-cross tr[data-limit="danger"]').split("\t")[3:] == [
+        "2027-01-15 10:30 UTC", "2027-01-15 10:13 UTC … 2027-01-15 10:55 UTC"]
     page.close()
     assert console.errors == []
 

@@ -293,6 +293,12 @@
     return { xs, spread };
   }
 
+  // a projected date: with its time of day when the crossing is less than two days away
+  function when(l, iso) {
+    const soon = (l.eta_high_s !== null && l.eta_high_s !== undefined ? l.eta_high_s : l.eta_s) < 2 * 86400;
+    return soon ? `${iso.slice(0, 10)} ${iso.slice(11, 16)} UTC` : iso.slice(0, 10);
+  }
+
   function trendChart(doc) {
     const t = doc.t_s, v = doc.values, unit = doc.unit || "";
     const proj = doc.projection && doc.projection.t_s && doc.projection.values ? doc.projection : null;
@@ -328,7 +334,10 @@
     $("tr-src").textContent = (doc.source || "") + advice;
     // the y range holds the values, the limit lines and the projected curve; the interval band is clipped to it
     // (near the horizon its upper edge can run far above every limit and would flatten the history)
-    const ys = [...v, ...lines.map(l => l.value), ...(proj ? proj.values : [])].filter(y => y !== null && isFinite(y));
+    // (the curve itself only up to the highest value or limit: past its last crossing it may grow without bound)
+    const known = [...v, ...lines.map(l => l.value)].filter(y => y !== null && isFinite(y));
+    const top = known.length ? Math.max(...known) : Infinity;
+    const ys = [...known, ...(proj ? proj.values : []).filter(y => y !== null && isFinite(y) && y <= top)];
     const yLo = ys.length ? Math.min(...ys) : 0, yHi = ys.length ? Math.max(...ys) : 1;
     const pad = (yHi - yLo) * 0.05 || Math.abs(yHi) * 0.05 || 1;
     const panel = $("panel-trend");
@@ -344,8 +353,8 @@
       crossTable.hidden = lims.length === 0;
       for (const l of lims) body.append(el("tr", { "data-limit": l.label },
         el("td", { text: l.label }), el("td", { text: `${num(l.value, 4)} ${unit}` }), el("td", { text: l.status || "" }),
-        el("td", { text: l.date ? l.date.slice(0, 10) : "n/a" }),
-        el("td", { text: l.date_low && l.date_high ? `${l.date_low.slice(0, 10)} … ${l.date_high.slice(0, 10)}` : "n/a" })));
+        el("td", { text: l.date ? when(l, l.date) : "n/a" }),
+        el("td", { text: l.date_low && l.date_high ? `${when(l, l.date_low)} … ${when(l, l.date_high)}` : "n/a" })));
     }
     makeChart("trend", $("tr-chart"), {
       // a lone value (a history just begun) gets an hour around it rather than an arbitrary span
