@@ -15,13 +15,15 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import math
+import threading
 import time
 from collections.abc import Callable, Iterable, Iterator, Mapping
 
 from aiohttp import web
 from prometheus_client import CollectorRegistry
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, HistogramMetricFamily, Metric
-from prometheus_client.exposition import choose_encoder
+from prometheus_client.exposition import choose_encoder, generate_latest
+from prometheus_client.registry import Collector
 
 from edgevib.daemon import __version__
 from edgevib.daemon.config import Config, PointConfig
@@ -32,12 +34,75 @@ from edgevib.daemon.logs import get_logger
 from edgevib.daemon.web.listener import HttpListener
 from edgevib.pipelines.machine_state import MACHINE_STATES
 
-__all__ = ["PROMETHEUS", "IndicatorCollector", "PrometheusSink"]
+__all__ = ["PROMETHEUS", "IndicatorCollector", "PrometheusSink", "encode_text", "go_float"]
 
 PROMETHEUS: list[tuple[Indicator, Si]] = [(i, i.si) for i in REGISTRY if i.prometheus is not None and i.si is not None]
 """The registry's indicators exposed as gauges (``edgevib_<prometheus>_<SI unit>``)."""
 _LABELS = ["site", "machine", "point", "axis"]
 log = get_logger("edgevib.metrics")
+
+
+def go_float(d: float) -> str:
+    """A sample value as the text exposition writes it (prometheus_client's ``floatToGoString``: ``+Inf``, ``-Inf``,
+    ``NaN``, else Python's shortest repr, with Go's exponent form for positive values of 1e6 and above)."""
+    if d != d:
+        return "NaN"
+    if d == math.inf:
+        return "+Inf"
+    if d == -math.inf:
+        return "-Inf"
+    s = repr(d)
+    dot = s.find(".")
+    if d > 0 and dot > 6:
+        mantissa = f"{s[0]}.{s[1:dot]}{s[dot + 1:]}".rstrip("0.")
+        return f"{mantissa}e+{dot - 1:02d}"
+    return s
+
+
+def _escape(value: str) -> str:
+    """A label value escaped for the text exposition (backslash, newline, double quote)."""
+    return value.replace("\\", r"\\").replace("\n", r"\n").replace('"', r'\"')
+
+
+def _sample_prefix(name: str, names: list[str], values: list[str]) -> str:
+    """``name{label="value",…} `` with the labels sorted by name, as prometheus_client writes a sample."""
+    pairs = sorted(zip(names, values, strict=False))
+    return name + "{" + ",".join(f'{k}="{_escape(v)}"' for k, v in pairs) + "} "
+
+
+class _Rendered(Metric):
+    """Families already written in the text exposition format (``text``): what the collector yields to
+    :func:`encode_text` instead of sample objects."""
+
+    def __init__(self, text: str) -> None:
+        super().__init__("edgevib_rendered", "", "untyped")
+        self.text = text
+
+
+class _One:
+    """One metric family as a collector (to encode it alone with prometheus_client)."""
+
+    def __init__(self, metric: Metric) -> None:
+        self.metric = metric
+
+    def collect(self) -> list[Metric]:
+        return [self.metric]
+
+
+_rendering = threading.local()  # set while encode_text collects on this thread
+
+
+def encode_text(registry: Collector) -> bytes:
+    """The registry in the Prometheus text format 0.0.4, as ``prometheus_client.generate_latest`` writes it, with
+    the per-point indicator families written by :class:`IndicatorCollector` itself (labels prepared once per point,
+    one formatted value per sample) instead of one sample object each; every other family by prometheus_client."""
+    _rendering.on = True
+    try:
+        parts = [m.text.encode() if isinstance(m, _Rendered) else generate_latest(_One(m))
+                 for m in registry.collect()]
+    finally:
+        _rendering.on = False
+    return b"".join(parts)
 
 
 class IndicatorCollector:
@@ -51,23 +116,82 @@ class IndicatorCollector:
         self.version = version
         self.point_sources: dict[str, tuple[str, str]] = {}  # point -> (machine, source), set by the sink
         self.machine_stale: Callable[[str], bool] | None = None  # the alarm layer's judgement, when there is one
+        self._headers: list[str] | None = None  # HELP/TYPE lines of the indicator families and the frame time
+        self._names: list[str] = []  # their metric names (with the unit)
+        # label part of each sample per point labels, by (family index, key): kept across frames and scrapes
+        self._prefixes: dict[tuple[str, ...], dict[tuple[int, str], str]] = {}
+        self._lock = threading.Lock()  # two scrapes at once share the caches above
 
     def describe(self) -> list[Metric]:
         return []
 
     def collect(self) -> Iterator[Metric]:
         latest = list(self.latest.values())  # one C-level copy: safe against the event loop's updates
-        yield from self._indicators(latest)
+        if getattr(_rendering, "on", False):
+            yield _Rendered(self._indicator_text(latest))
+            yield self._machine_states(latest)
+        else:
+            yield from self._indicators(latest)
+            yield self._machine_states(latest)
         yield from self._self_metrics()
 
-    def _indicators(self, latest: list[tuple[tuple[str, ...], FrameResult]]) -> Iterable[Metric]:
-        """One gauge family per registry indicator published here (values in SI units; unavailable: absent), and
-        the machine state of each machine (from its newest frame)."""
+    @staticmethod
+    def _empty_families() -> tuple[list[tuple[Indicator, Si, GaugeMetricFamily]], GaugeMetricFamily]:
         families = [(ind, si, GaugeMetricFamily(f"edgevib_{ind.prometheus}", meaning(ind),
                                                 labels=_LABELS + ([ind.per] if ind.per else []), unit=si.suffix))
                     for ind, si in PROMETHEUS]
         last = GaugeMetricFamily("edgevib_last_frame_timestamp_seconds", "End time of the latest analysed frame.",
                                  labels=_LABELS, unit="seconds")
+        return families, last
+
+    def _indicators(self, latest: list[tuple[tuple[str, ...], FrameResult]]) -> list[Metric]:
+        """One gauge family per registry indicator published here (values in SI units; unavailable: absent), and
+        the time of each point's latest frame."""
+        families, last = self._empty_families()
+        for labels, r in latest:
+            lab = list(labels)
+            for ind, si, fam in families:
+                for key, v in ind.values(r).items():
+                    if v is not None and math.isfinite(v):
+                        fam.add_metric([*lab, key] if key else lab, v * si.factor)
+            last.add_metric(lab, r.t_end_ns / 1e9)
+        return [*(fam for _, _, fam in families), last]
+
+    def _indicator_text(self, latest: list[tuple[tuple[str, ...], FrameResult]]) -> str:
+        """The families of :meth:`_indicators` in the text format, byte for byte as prometheus_client writes them."""
+        with self._lock:
+            if self._headers is None:
+                families, last = self._empty_families()
+                metrics = [*(f for _, _, f in families), last]
+                self._headers = [generate_latest(_One(m)).decode() for m in metrics]
+                self._names = [m.name for m in metrics]
+            chunks = [[h] for h in self._headers]
+            if len(self._prefixes) > 2 * len(latest) + 16:  # points gone or relabelled: forget theirs
+                keep = {labels for labels, _ in latest}
+                self._prefixes = {k: v for k, v in self._prefixes.items() if k in keep}
+            n_fam = len(PROMETHEUS)
+            for labels, r in latest:
+                prefixes = self._prefixes.get(labels)
+                if prefixes is None:
+                    prefixes = self._prefixes[labels] = {}
+                for i, (ind, si) in enumerate(PROMETHEUS):
+                    out = chunks[i]
+                    for key, v in ind.values(r).items():
+                        if v is not None and math.isfinite(v):
+                            p = prefixes.get((i, key))
+                            if p is None:
+                                names = _LABELS + ([ind.per] if ind.per else [])
+                                p = prefixes[(i, key)] = _sample_prefix(self._names[i], names,
+                                                                        [*labels, key] if key else list(labels))
+                            out.append(p + go_float(v * si.factor) + "\n")
+                p = prefixes.get((n_fam, ""))
+                if p is None:
+                    p = prefixes[(n_fam, "")] = _sample_prefix(self._names[n_fam], _LABELS, list(labels))
+                chunks[n_fam].append(p + go_float(r.t_end_ns / 1e9) + "\n")
+        return "".join("".join(c) for c in chunks)
+
+    def _machine_states(self, latest: list[tuple[tuple[str, ...], FrameResult]]) -> Metric:
+        """The machine state of each machine (from its newest frame)."""
         machine_state = GaugeMetricFamily(
             "edgevib_machine_state", "Machine state after the machine's latest analysed frame: 1 for the present "
             "state (stopped, starting, running, coasting, unknown), 0 for the others.",
@@ -82,14 +206,7 @@ class IndicatorCollector:
                 present = "unknown"
             for name in MACHINE_STATES:
                 machine_state.add_metric([self.site, mid, name], 1.0 if present == name else 0.0)
-        for labels, r in latest:
-            lab = list(labels)
-            for ind, si, fam in families:
-                for key, v in ind.values(r).items():
-                    if v is not None and math.isfinite(v):
-                        fam.add_metric([*lab, key] if key else lab, v * si.factor)
-            last.add_metric(lab, r.t_end_ns / 1e9)
-        return [*(fam for _, _, fam in families), last, machine_state]
+        return machine_state
 
     def _stale(self, machine: str) -> bool:
         """Whether every point of a machine is stale: as the alarm layer judges it (source down or sensor silent),
@@ -203,6 +320,8 @@ class PrometheusSink:
 
     async def _metrics(self, request: web.Request) -> web.Response:
         encoder, ctype = choose_encoder(request.headers.get("Accept", ""))
+        if encoder is generate_latest:
+            encoder = encode_text  # the same text, written faster
         body = await asyncio.to_thread(encoder, self.registry)  # collectors take locks and copy: off the loop
         return web.Response(body=body, headers={"Content-Type": ctype})
 
