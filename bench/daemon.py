@@ -35,7 +35,9 @@ Each row (one per instance) reports, over the measurement window after a warm-up
   ``loop_lag_max_ms`` the longest the event loop was unresponsive, ``thread_cores`` CPU per thread,
   ``faults_per_frame`` the daemon process's minor page faults per analysed frame (memory handed back to the
   system and faulted in again: see ``--keep-freed-memory``), ``exposition_ms`` the CPU time of encoding the whole
-  ``/metrics`` exposition once (what each Prometheus scrape costs the daemon, measured after the window);
+  ``/metrics`` exposition once (what each Prometheus scrape costs the daemon, measured after the window) and
+  ``exposition_ref_ms`` the same registry encoded by prometheus_client's ``generate_latest`` (the reference the
+  daemon's own text encoder replaces; measured alternately with it);
 * ``sustained``: every expected frame analysed (≥ 97 %), none dropped or rejected, p99 < 250 ms.
 
 A level's summary adds the instances up (channels, frames, cores, ``channels_per_core``); ``sustained_channels``
@@ -419,6 +421,7 @@ class Row:
     publisher_cores: float = math.nan
     faults_per_frame: float = math.nan
     exposition_ms: float = math.nan
+    exposition_ref_ms: float = math.nan
 
 
 def _warm_up_analysis(overlap: float) -> None:
@@ -536,7 +539,7 @@ async def _run_instance(spec: InstanceSpec, out: Any, ctl: Any) -> Row:
         threads1 = _thread_cpu_s()
         hist1 = histogram_buckets(await asyncio.to_thread(_scrape, daemon.metrics.url or ""), _HIST)
         rss_end = _rss_mb()
-        exposition_ms = await asyncio.to_thread(_exposition_ms, registry)
+        exposition_ms, exposition_ref_ms = await asyncio.to_thread(_exposition_ms, registry)
     finally:
         ticker.cancel()
         await daemon.stop()
@@ -570,20 +573,24 @@ async def _run_instance(spec: InstanceSpec, out: Any, ctl: Any) -> Row:
         loop_lag_max_ms=round(max(loop_lag), 1),
         thread_cores={k: round((v - threads0.get(k, 0.0)) / wall_s, 2) for k, v in threads1.items()},
         faults_per_frame=round((faults1 - faults0) / max(1, len(window)), 1),
-        exposition_ms=round(exposition_ms, 1))
+        exposition_ms=round(exposition_ms, 1), exposition_ref_ms=round(exposition_ref_ms, 1))
 
 
-def _exposition_ms(registry: Any, repeats: int = 3) -> float:
+def _exposition_ms(registry: Any, repeats: int = 3) -> tuple[float, float]:
     """CPU time (this thread) of encoding the daemon's whole ``/metrics`` exposition once (the text format, as a
-    scrape without an OpenMetrics ``Accept`` gets it), the least of a few."""
+    scrape without an OpenMetrics ``Accept`` gets it) and of the same by prometheus_client's ``generate_latest``,
+    alternately, the least of a few each (ms)."""
+    from prometheus_client import generate_latest
+
     from edgevib.daemon.sinks.prometheus import encode_text
 
-    best = math.inf
+    best = [math.inf, math.inf]
     for _ in range(repeats):
-        t0 = time.thread_time()
-        encode_text(registry)
-        best = min(best, time.thread_time() - t0)
-    return best * 1e3
+        for i, encode in enumerate((encode_text, generate_latest)):
+            t0 = time.thread_time()
+            encode(registry)
+            best[i] = min(best[i], time.thread_time() - t0)
+    return best[0] * 1e3, best[1] * 1e3
 
 
 def _get(q: Any, timeout_s: float, procs: list[Any]) -> dict[str, Any]:
@@ -775,7 +782,8 @@ def _print_level(rows: list[Row], header: bool) -> None:
         print(" ".join(str(d[k]).rjust(w) for k, w in _COLUMNS), flush=True)
         print("      threads (cores): " + ", ".join(f"{k} {v}" for k, v in sorted(row.thread_cores.items())
                                                     if v >= 0.005) + f"; page faults per frame {row.faults_per_frame}"
-              f"; /metrics exposition {row.exposition_ms} ms of CPU per scrape",
+              f"; /metrics exposition {row.exposition_ms} ms of CPU per scrape (prometheus_client's "
+              f"generate_latest {row.exposition_ref_ms} ms)",
               flush=True)
     if rows:
         s = level_summary(rows)
