@@ -15,6 +15,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import math
+import re
 import threading
 import time
 from collections.abc import Callable, Iterable, Iterator, Mapping
@@ -90,16 +91,54 @@ class _One:
 
 
 _rendering = threading.local()  # set while encode_text collects on this thread
+_LEGACY_NAME = re.compile(r"[a-zA-Z_:][a-zA-Z0-9_:]*")
+_LEGACY_LABEL = re.compile(r"[a-zA-Z_][a-zA-Z0-9_]*")
+_PREFIX_LIMIT = 200_000
+# ``name{labels} `` of the samples seen, by (name, label items): labels repeat from scrape to scrape
+_prefixes: dict[tuple[str, tuple[tuple[str, str], ...]], str] = {}
+
+
+def _plain_family(m: Metric) -> str | None:
+    """A gauge or counter family in the text format as prometheus_client writes it, or ``None`` for anything this
+    short path does not cover (other types, unusual names, timestamps, exemplars, OpenMetrics-only samples)."""
+    if m.type not in ("gauge", "counter") or not _LEGACY_NAME.fullmatch(m.name):
+        return None
+    mname = m.name + "_total" if m.type == "counter" else m.name
+    sample_name = mname if m.type == "counter" else m.name
+    doc = m.documentation.replace("\\", r"\\").replace("\n", r"\n")
+    out = [f"# HELP {mname} {doc}\n# TYPE {mname} {m.type}\n"]
+    if len(_prefixes) > _PREFIX_LIMIT:
+        _prefixes.clear()
+    for smp in m.samples:
+        if (smp.name != sample_name or smp.timestamp is not None or smp.exemplar is not None
+                or smp.native_histogram is not None):
+            return None
+        key = (smp.name, tuple(smp.labels.items()))
+        p = _prefixes.get(key)
+        if p is None:
+            if not all(_LEGACY_LABEL.fullmatch(k) for k in smp.labels):
+                return None
+            p = _prefixes[key] = (_sample_prefix(smp.name, list(smp.labels), list(smp.labels.values()))
+                                  if smp.labels else smp.name + " ")
+        out.append(p + go_float(float(smp.value)) + "\n")
+    return "".join(out)
+
+
+def _family_text(m: Metric) -> bytes:
+    if isinstance(m, _Rendered):
+        return m.text.encode()
+    text = _plain_family(m)
+    return text.encode() if text is not None else generate_latest(_One(m))
 
 
 def encode_text(registry: Collector) -> bytes:
     """The registry in the Prometheus text format 0.0.4, as ``prometheus_client.generate_latest`` writes it, with
     the per-point indicator families written by :class:`IndicatorCollector` itself (labels prepared once per point,
-    one formatted value per sample) instead of one sample object each; every other family by prometheus_client."""
+    one formatted value per sample) instead of one sample object each, plain gauges and counters with their label
+    strings kept from scrape to scrape, and every other family by prometheus_client."""
     _rendering.on = True
     try:
-        parts = [m.text.encode() if isinstance(m, _Rendered) else generate_latest(_One(m))
-                 for m in registry.collect()]
+        parts = [_family_text(m) for m in registry.collect()]
     finally:
         _rendering.on = False
     return b"".join(parts)

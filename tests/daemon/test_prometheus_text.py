@@ -9,7 +9,8 @@ import random
 from dataclasses import replace
 
 import pytest
-from prometheus_client import CollectorRegistry
+from prometheus_client import CollectorRegistry, Metric
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, InfoMetricFamily
 from prometheus_client.exposition import generate_latest
 from prometheus_client.parser import text_string_to_metric_families
 from prometheus_client.utils import floatToGoString
@@ -89,3 +90,37 @@ def test_go_float_matches_prometheus_client(seed: int) -> None:
     values += [rng.uniform(-1, 1) * 10 ** rng.randint(-12, 15) for _ in range(500)]
     for v in values:
         assert go_float(v) == floatToGoString(v), v
+
+
+class _Assorted:
+    """Families of other collectors (the alarm layer's, the trend layer's): plain ones take the short path, the rest
+    are left to prometheus_client."""
+
+    def collect(self) -> list[Metric]:
+        g = GaugeMetricFamily("edgevib_test_level", 'help with \\ backslash\nand "quotes"', labels=["point", "kind"])
+        g.add_metric(list(AWKWARD[2:]), 0.1 + 0.2)
+        g.add_metric(["K-8", 'a"b'], 12345678.0)
+        g.add_metric(["K-9", "c"], -0.0)
+        c = CounterMetricFamily("edgevib_test_events", "Events.", labels=["point"])
+        c.add_metric(["K\\7"], 3)
+        created = CounterMetricFamily("edgevib_test_created", "With a creation time.", labels=["p"])
+        created.add_metric(["x"], 2, created=1_764_633_600.0)
+        stamped = GaugeMetricFamily("edgevib_test_stamped", "With a timestamp.", labels=["p"])
+        stamped.add_metric(["x"], 1.5, timestamp=1_764_633_600.25)
+        bare = GaugeMetricFamily("edgevib_test_bare", "No labels.")
+        bare.add_metric([], 7)
+        empty = GaugeMetricFamily("edgevib_test_empty", "No samples.", labels=["p"])
+        info = InfoMetricFamily("edgevib_test", "Info.", value={"a": "b"})
+        return [g, c, created, stamped, bare, empty, info]
+
+
+def test_other_families_are_written_as_prometheus_client_writes_them() -> None:
+    _, registry = _sink()
+    registry.register(_Assorted())
+    for _ in range(2):  # the second time from the kept label strings
+        text = encode_text(registry)
+        assert text == generate_latest(registry)
+    values = {(s.name, tuple(sorted(s.labels.items()))): s.value
+              for fam in text_string_to_metric_families(text.decode()) for s in fam.samples}
+    assert values[("edgevib_test_level", (("kind", AWKWARD[3]), ("point", AWKWARD[2])))] == 0.1 + 0.2
+    assert values[("edgevib_test_events_total", (("point", "K\\7"),))] == 3.0
