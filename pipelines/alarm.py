@@ -284,7 +284,9 @@ def step(state: AlarmState, value: float, now_s: float, spec: LimitSpec,
         before = state
         state = replace(state, suppressed=None)
         if isa_state(state, spec) not in ("normal", "shelved"):
-            out.append(_transition("unsuppressed", before, state, spec, state.last_value, now_s, before.suppressed))
+            # the value that ends the suppression is this frame's, not the one frozen when it began
+            shown = value if math.isfinite(value) else state.last_value
+            out.append(_transition("unsuppressed", before, state, spec, shown, now_s, before.suppressed))
         state = _stamp(before, state, spec, now_s)
     if not math.isfinite(value):
         return state, tuple(out)

@@ -210,6 +210,9 @@ def test_suppression_is_quiet_for_normal_alarms_and_keeps_active_levels() -> Non
     # on a good value below its clear threshold (ANSI/ISA-18.2), here the first frame after (off-delay 1 frame).
     s, ev = step(s, 1.0, 5.0, spec)
     assert [(e.kind, e.to_state) for e in ev] == [("unsuppressed", "unacknowledged"), ("cleared", "rtn-unacknowledged")]
+    # the unsuppressed event carries the value of the frame that ended the suppression (1.0), not the 5.0
+    # frozen when it began (ANSI/ISA-18.2-2016: an alarm record reports the current process value; common practice)
+    assert ev[0].value == 1.0
 
 
 def test_non_finite_values_are_ignored_and_bad_specs_rejected() -> None:
