@@ -168,31 +168,45 @@ def _check_plan(plan: AnalysisPlan) -> AnalysisPlan:
     harmonics = plan.harmonics
     if isinstance(harmonics, bool) or not isinstance(harmonics, int) or not 1 <= harmonics <= 10:
         raise PlanError(f"harmonics {harmonics!r} must be an integer from 1 to 10", field="harmonics")
+    alpha, depth = _checked_detection(plan)
+    if plan.bearing is not None:
+        validate_geometry(plan.bearing)
+    env = _checked_envelope_band(plan, fs, n, speed[1], slip)
+    return AnalysisPlan(fs_hz=fs, n_samples=n, velocity_band_hz=vel, envelope_band_hz=env, bearing=plan.bearing,
+                        orders=orders, order_tolerance=tol, speed_range_hz=speed, slip_tolerance=slip,
+                        harmonics=harmonics, false_alarm=alpha, min_depth=depth, partial=partial)
+
+
+def _checked_detection(plan: AnalysisPlan) -> tuple[float, float]:
+    """The detection statistic's false-alarm probability and minimum modulation depth, checked."""
     alpha = _finite("false-alarm probability", plan.false_alarm, "false_alarm")
     if not 1e-12 <= alpha <= 0.1:
         raise PlanError(f"false-alarm probability {alpha:g} must be in 1e-12 ≤ p ≤ 0.1", field="false_alarm")
     depth = _finite("minimum modulation depth", plan.min_depth, "min_depth")
     if not 0 <= depth <= 2:
         raise PlanError(f"minimum modulation depth {depth:g} must be in 0 ≤ depth ≤ 2", field="min_depth")
+    return alpha, depth
+
+
+def _checked_envelope_band(plan: AnalysisPlan, fs: float, n: int, top_speed_hz: float,
+                           slip: float) -> tuple[float, float] | None:
+    """The demodulation band, checked against the resolution and the highest defect frequency searched."""
+    if plan.envelope_band_hz is None:
+        return None
+    df = fs / n
+    env = _band("envelope band", plan.envelope_band_hz, fs / 2.0, "envelope_band_hz")
+    lines = band_lines(fs, n, env)
+    if lines[1] - lines[0] + 1 < 8:
+        raise PlanError(f"envelope band {env[0]:g}–{env[1]:g} Hz holds fewer than 8 lines at resolution "
+                        f"{df:.4g} Hz: widen it or lengthen the record", field="envelope_band_hz")
     if plan.bearing is not None:
-        validate_geometry(plan.bearing)
-    env = None
-    if plan.envelope_band_hz is not None:
-        env = _band("envelope band", plan.envelope_band_hz, nyq, "envelope_band_hz")
-        lines = band_lines(fs, n, env)
-        if lines[1] - lines[0] + 1 < 8:
-            raise PlanError(f"envelope band {env[0]:g}–{env[1]:g} Hz holds fewer than 8 lines at resolution "
-                            f"{df:.4g} Hz: widen it or lengthen the record", field="envelope_band_hz")
-        if plan.bearing is not None:
-            m = defect_multiples(plan.bearing)
-            highest = max(m.bpfi_hz, 2 * m.bsf_hz, m.bpfo_hz) * speed[1] * (1 + slip)
-            if env[1] - env[0] < highest:
-                raise PlanError(f"envelope band {env[0]:g}–{env[1]:g} Hz is narrower than the highest defect "
-                                f"frequency searched ({highest:.4g} Hz at {speed[1]:g} Hz shaft speed)",
-                                field="envelope_band_hz")
-    return AnalysisPlan(fs_hz=fs, n_samples=n, velocity_band_hz=vel, envelope_band_hz=env, bearing=plan.bearing,
-                        orders=orders, order_tolerance=tol, speed_range_hz=speed, slip_tolerance=slip,
-                        harmonics=harmonics, false_alarm=alpha, min_depth=depth, partial=partial)
+        m = defect_multiples(plan.bearing)
+        highest = max(m.bpfi_hz, 2 * m.bsf_hz, m.bpfo_hz) * top_speed_hz * (1 + slip)
+        if env[1] - env[0] < highest:
+            raise PlanError(f"envelope band {env[0]:g}–{env[1]:g} Hz is narrower than the highest defect "
+                            f"frequency searched ({highest:.4g} Hz at {top_speed_hz:g} Hz shaft speed)",
+                            field="envelope_band_hz")
+    return env
 
 
 def _duration(n_samples: float, fs_hz: float) -> str:
