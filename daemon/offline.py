@@ -413,6 +413,8 @@ def _envelope_band(x_g: np.ndarray, fs: float, opts: _Options, speed_range: tupl
     selection: dict[str, Any] | None = None
     if band is not None:
         band_source = "configured"
+        if band[1] >= fs / 2.0:  # refused whether or not a bearing is given (the plan checks it only with one)
+            raise InputError(f"envelope band high edge {band[1]:g} Hz is at or above Nyquist {fs / 2.0:g} Hz")
     elif opts.auto:
         band, selection = _auto_band(x_g, fs, speed_range, bearing)
         if band is not None:

@@ -209,6 +209,9 @@ BAD_CASES = [
     (["{tiny}", "--fs", "25600"], "record of 63 samples is too short: need at least 64"),
     (["{good}", "--fs", "25600", "--band", "2000:20000", "--bearing", CWRU_BEARING],
      "envelope band high edge 20000 Hz is at or above Nyquist 12800 Hz"),
+    # the same band without a bearing is refused too (README: "band above Nyquist" exits 2; Nyquist = fs/2,
+    # common practice)
+    (["{good}", "--fs", "25600", "--band", "2000:20000"], "envelope band high edge 20000 Hz is at or above Nyquist"),
     (["{good}", "--fs", "25600", "--velocity-band", "10:13000"], "velocity band high edge 13000 Hz"),
     (["{good}", "--fs", "25600", "--band", "2000"], "must be LO:HI"),
     (["{good}", "--fs", "25600", "--band", "5000:2000"], "need 0 < LO < HI"),
