@@ -40,10 +40,24 @@ __all__ = [
     "LatencyHistogram",
     "PointStream",
     "Stats",
+    "speed_limit_hz",
 ]
 
 LATENCY_BUCKETS_S = (0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)
 FS_TOLERANCE = 1e-3  # relative; a block reporting another rate than its point is rejected
+# A speed-tag reading above what a machine can turn is refused (``invalid_speed``): above its configured
+# ``speed_range_rpm`` top by more than SPEED_MARGIN (overspeed trips are commonly set near 110–115 % of the
+# maximum continuous speed — common practice, API 670/612 from memory — so 120 % is beyond any real run), or,
+# without a configured range, above MAX_SPEED_RPM (the bound the configuration puts on ``speed_rpm``).
+SPEED_MARGIN = 0.2
+MAX_SPEED_RPM = 120000.0
+
+
+def speed_limit_hz(machine: MachineConfig) -> float:
+    """The highest speed-tag reading believed for ``machine``, Hz (see ``SPEED_MARGIN``)."""
+    if "speed_range_rpm" in machine.model_fields_set:
+        return min(machine.speed_range_rpm[1] * (1.0 + SPEED_MARGIN), MAX_SPEED_RPM) / 60.0
+    return MAX_SPEED_RPM / 60.0
 
 
 # ------------------------------------------------------------------------------------------------ counters
@@ -267,6 +281,10 @@ class BlockIngest:
         self.max_payload_bytes: dict[str, int] = {
             s.name: s.max_payload_bytes for s in config.sources if isinstance(s, MqttSourceConfig)}
         self.speed_tags: dict[tuple[str, str], list[tuple[str, SpeedTag]]] = {}
+        self.speed_limit_hz = {m.id: speed_limit_hz(m) for m in config.machines}
+        self.points_of: dict[str, list[str]] = {}
+        for p in config.points:
+            self.points_of.setdefault(p.machine, []).append(p.id)
         for m in config.machines:
             if m.speed_tag is not None:
                 self.speed_tags.setdefault((m.speed_tag.source, m.speed_tag.tag), []).append((m.id, m.speed_tag))
@@ -344,7 +362,16 @@ class BlockIngest:
                         tag)
             return
         for machine_id, spec in targets:
-            self.speeds[machine_id] = (spec.to_hz(value), received_ns)
+            hz = spec.to_hz(value)
+            limit_hz = self.speed_limit_hz.get(machine_id, MAX_SPEED_RPM / 60.0)
+            if hz > limit_hz:  # not a speed this machine can turn: a wrong tag, unit or transmitter fault
+                points = ", ".join(self.points_of.get(machine_id, ())) or None
+                self.reject(source, "invalid_speed",
+                            f"speed tag {tag!r} value {value:g} {spec.unit} for machine {machine_id!r} is above "
+                            f"{limit_hz * 60.0:g} r/min, more than the machine can turn; reading ignored",
+                            tag, point=points)
+                continue
+            self.speeds[machine_id] = (hz, received_ns)
 
     def reject(self, source: str, reason: str, detail: str, topic: str | None = None,
                point: str | None = None, received: bool = False) -> None:

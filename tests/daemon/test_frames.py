@@ -212,3 +212,44 @@ def test_rate_limited_logger_suppresses_and_reports() -> None:
         rl.warning("k", "block rejected", reason="malformed")
     assert [(e["reason"], e.get("suppressed")) for e in logs] == [("malformed", None), ("too_large", None),
                                                                   ("malformed", 4)]
+
+
+def test_implausible_speed_tag_reading_is_rejected_and_counted() -> None:
+    # A reading above what the machine can turn (above its speed range's top by more than 20 %, overspeed trips
+    # being set near 110–115 % of the maximum continuous speed: common practice) is a wrong tag, unit or
+    # transmitter fault; it must not move the order lines (QA repro: 200000 r/min and 1e308 were used as is).
+    doc = {
+        "sources": [{"name": "broker", "type": "mqtt", "url": "mqtt://127.0.0.1:1883", "topics": ["fwb/#"]}],
+        "machines": [
+            {"id": "F-201", "speed_tag": {"source": "broker", "topic": "fwb/F-201/speed"},
+             "speed_range_rpm": [300.0, 1800.0]},
+            # no configured range: only the configuration's 120 000 r/min bound applies
+            {"id": "C-301", "speed_tag": {"source": "broker", "topic": "fwb/C-301/speed", "unit": "hz"}},
+        ],
+        "points": [{"id": "F-201-NDE-V", "machine": "F-201", "source": "broker", "fs_hz": 3200.0,
+                    "block_samples": 3200, "sensor_type": "mems"},
+                   {"id": "C-301-DE-H", "machine": "C-301", "source": "broker", "fs_hz": 3200.0,
+                    "block_samples": 3200, "sensor_type": "mems"}],
+    }
+    cfg = parse_config(doc)
+    now = [10_000_000_000]
+    stats = Stats()
+    ing = BlockIngest(cfg, stats, clock_ns=lambda: now[0])
+    fan, comp = cfg.machines
+    ing.speed("broker", "fwb/F-201/speed", 1500.0, now[0])
+    assert ing.speed_hz(fan) == pytest.approx(25.0)
+    warnings: list[tuple[str, dict[str, Any]]] = []
+    ing.log.warning = lambda key, msg, **kw: warnings.append((msg, kw))  # type: ignore[method-assign]
+    for bad in (200000.0, 1e308, 2161.0):  # 2161 > 1.2 × 1800 = 2160 r/min
+        ing.speed("broker", "fwb/F-201/speed", bad, now[0])
+        assert ing.speed_hz(fan) == pytest.approx(25.0)  # the last plausible reading stands
+    assert stats.blocks_rejected == {("broker", "invalid_speed"): 3}
+    _msg, kw = warnings[0]
+    assert "200000" in kw["detail"] and "F-201" in kw["detail"] and kw["point"] == "F-201-NDE-V"
+    ing.speed("broker", "fwb/F-201/speed", 2100.0, now[0])  # within the margin: an overspeed is still reported
+    assert ing.speed_hz(fan) == pytest.approx(35.0)
+    ing.speed("broker", "fwb/C-301/speed", 1999.0, now[0])  # 1999 Hz = 119 940 r/min: below the bound
+    assert ing.speed_hz(comp) == pytest.approx(1999.0)
+    ing.speed("broker", "fwb/C-301/speed", 2001.0, now[0])  # 120 060 r/min
+    assert ing.speed_hz(comp) == pytest.approx(1999.0)
+    assert stats.blocks_rejected == {("broker", "invalid_speed"): 4}
