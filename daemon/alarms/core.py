@@ -797,6 +797,16 @@ class AlarmCore:
                                    f"{', '.join(x.indicator for x in self.by_point.get(point, ())) or 'none'})")
         return lims
 
+    def _ack_targets(self, req: Mapping[str, Any], lims: tuple[LimitConfig, ...]) -> tuple[LimitConfig, ...]:
+        """The limits an ack acknowledges: a shelved alarm is hidden, so a point-wide ack leaves it alone and an
+        ack naming its indicator is refused (the operator acknowledges it after unshelving, with its event)."""
+        shelved = [lim for lim in lims if self.alarms.get(lim.key, AlarmState()).shelved_until_s is not None]
+        if shelved and req.get("indicator") is not None:
+            st = self.alarms[shelved[0].key]
+            raise CommandError(f"ack: {shelved[0].indicator} on {req['point']} is shelved ({st.shelve_reason}); "
+                               "unshelve it first to acknowledge it")
+        return tuple(lim for lim in lims if all(lim is not x for x in shelved))
+
     def command(self, inp: Command, now: Now, eff: Effects) -> None:
         """ack, shelve, unshelve or relearn; the reply ``{changed, events}`` goes into ``eff.reply``."""
         req = inp.req
@@ -810,6 +820,8 @@ class AlarmCore:
         # the time of the action: the wall clock, on the point's timeline (the last frame's time advanced by
         # the time since it arrived; during an outage, the wall clock) so shelves run from the action
         t_s = self.point_now_s(req["point"], now)
+        if cmd == "ack":
+            lims = self._ack_targets(req, lims)
         changed = 0
         for lim in lims:
             key, spec = lim.key, self.specs[lim.key]

@@ -231,3 +231,42 @@ def test_shelve_duration_errors_name_the_users_units(short_tmp: Path, capsys: py
     err = capsys.readouterr().err
     assert "--hours 0 must be a duration > 0" in err and "--minutes -5 must be a duration > 0" in err
     assert "duration_s" not in err
+
+
+async def test_a_shelved_alarm_is_acknowledged_only_after_unshelving(short_tmp: Path) -> None:
+    # Two alarms in unacknowledged danger: velocity r.m.s. 5 mm/s over the ISO 20816-3 group 2 rigid C/D boundary
+    # 4.5 mm/s (FIELD_NOTES §1) and kurtosis 12 over a danger limit of 10 (4 and more flags impulsive content,
+    # common practice; a Gaussian signal has 3).  Shelving hides an alarm (ANSI/ISA-18.2: a shelved alarm is
+    # removed from the operator's view), so an acknowledgement of it could be recorded nowhere visible.
+    cfg = small_config(short_tmp, limits={"velocity_rms_mm_s": {"rule": "iso"},
+                                          "kurtosis": {"alert": 5.0, "danger": 10.0}})
+    layer = AlarmLayer(cfg)
+    events: list[dict[str, Any]] = []
+    layer.subscribe(events.append)
+    await layer.start()
+    try:
+        for i in range(2):
+            await layer.on_frames([frame_result("P-101-DE-H", "P-101", 1000.0 + i, 5.0, kurtosis=12.0)])
+        layer.handle_command({"cmd": "shelve", "point": "P-101-DE-H", "indicator": "velocity_rms_mm_s",
+                              "reason": "coupling work", "duration_s": 3600.0, "by": "night"})
+        # a point-wide ack acknowledges the visible alarm only, with its event
+        res = layer.handle_command({"cmd": "ack", "point": "P-101-DE-H", "by": "A. Operator"})
+        assert res == {"changed": 1, "events": 1}
+        assert events[-1]["data"]["indicator"] == "kurtosis" and events[-1]["data"]["transition"] == "acknowledged"
+        # naming the shelved one is refused, nothing changes
+        with pytest.raises(CommandError, match=r"velocity_rms_mm_s on P-101-DE-H is shelved .*unshelve it first"):
+            layer.handle_command({"cmd": "ack", "point": "P-101-DE-H", "indicator": "velocity_rms_mm_s",
+                                  "by": "A. Operator"})
+        rc = await asyncio.to_thread(main, ["alarms", "--state-dir", str(short_tmp), "ack", "P-101-DE-H",
+                                            "--indicator", "velocity_rms_mm_s"])
+        assert rc == 2
+        layer.handle_command({"cmd": "unshelve", "point": "P-101-DE-H", "by": "night"})
+        assert events[-1]["data"]["transition"] == "unshelved"
+        assert events[-1]["data"]["alarm_state"] == "unacknowledged"  # still waiting for someone
+        res = layer.handle_command({"cmd": "ack", "point": "P-101-DE-H", "by": "A. Operator"})
+        assert res == {"changed": 1, "events": 1}
+        rows = await asyncio.to_thread(layer.history, "P-101-DE-H")
+        velocity = [(r.transition, r.by) for r in rows if r.indicator == "velocity_rms_mm_s"]
+        assert velocity[0] == ("acknowledged", "A. Operator") and ("unshelved", "night") in velocity
+    finally:
+        await layer.stop()
