@@ -71,16 +71,10 @@ def _curve(doc: dict[str, Any], t: np.ndarray) -> np.ndarray | None:
 
 
 def curve_values(fit: dict[str, Any], z: np.ndarray) -> np.ndarray:
-    """A trend document's fitted curve from its straight-line scale ``z`` (``intercept + slope·(t − t_ref)``):
-    ``linear`` z, ``exponential`` exp(z), ``power`` (−z)^(−1/shape) (inf at and beyond its failure time)."""
-    if fit["model"] == "exponential":
-        with np.errstate(over="ignore"):
-            return np.asarray(np.exp(np.minimum(z, 700.0)), dtype=np.float64)
-    if fit["model"] == "power":
-        shape = float(fit.get("shape") or 1.0)
-        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            return np.asarray(np.where(z < 0, np.abs(z) ** (-1.0 / shape), np.inf), dtype=np.float64)
-    return z
+    """A trend document's fitted curve from its straight-line scale ``z`` (:func:`curve_from_line`)."""
+    from edgevib.pipelines.trend import curve_from_line  # scipy loads only when a curve is drawn
+
+    return curve_from_line(str(fit["model"]), z, float(fit.get("shape") or 1.0))
 
 
 def _unit(unit: str) -> str:

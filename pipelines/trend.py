@@ -68,6 +68,7 @@ __all__ = [
     "TrendSpec",
     "assess",
     "crossing_interval",
+    "curve_from_line",
     "hampel_inliers",
     "phm2012_score",
     "step_change",
@@ -187,6 +188,18 @@ class GrowthFit:
 
 
 _TRANSFORMS: dict[str, str] = {"linear": "identity", "exponential": "log", "power": "power"}
+
+
+def curve_from_line(model: str, z: npt.ArrayLike, shape: float = 1.0) -> npt.NDArray[np.float64]:
+    """A growth law's values from its straight-line scale ``z`` (shape of ``z``): ``linear`` z, ``exponential``
+    exp(z), ``power`` (−z)^(−1/shape) (inf at and beyond its failure time, z ≥ 0)."""
+    za = np.asarray(z, dtype=np.float64)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        if model == "exponential":
+            return np.asarray(np.exp(np.minimum(za, 700.0)), dtype=np.float64)
+        if model == "power":
+            return np.asarray(np.where(za < 0, np.abs(za) ** (-1.0 / shape), np.inf), dtype=np.float64)
+    return za
 
 
 def _untransform(model: str, z: float, shape: float) -> float:
