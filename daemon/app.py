@@ -117,6 +117,8 @@ def _iso_zone(v_mm_s: float | None, machine: MachineConfig) -> str | None:
         return None
 
 
+_DEFAULT_HEALTH = HealthSpec()  # frozen: one default shared by every point without its own (not one per frame)
+
 class SinkChannel:
     """The delivery queue and task of one sink (see the module docstring for ordering and bounds)."""
 
@@ -708,7 +710,7 @@ class Daemon:
         settings = self.config.alarm_settings
         if not settings.enabled or not settings.health_enabled:
             return None
-        return settings.health.get(point_id, HealthSpec())
+        return settings.health.get(point_id) or _DEFAULT_HEALTH
 
     def _results(self, jobs: list[FrameJob], indicators: list[FrameIndicators], frames: npt.NDArray[np.float32],
                  measured_hz: Sequence[float | None] | None = None,
