@@ -159,9 +159,11 @@ class Frames:
 class Tick:
     """A timer tick: source changes, no-data detection and shelf expiry between frames.  ``arrivals``: when each
     point's latest block arrived (Unix s; absent or ``None``: unknown) — a point whose blocks arrive is not
-    silent, even while its frames wait for analysis."""
+    silent, even while its frames wait for analysis.  ``refused``: points whose blocks the daemon refuses for a
+    configuration reason (unit, sample rate), with the reason — silent, but not for their sensor's sake."""
 
     arrivals: Mapping[str, float | None] = field(default_factory=dict)
+    refused: Mapping[str, str] = field(default_factory=dict)
 
 
 @dataclass(frozen=True, slots=True)
@@ -664,6 +666,14 @@ class AlarmCore:
         due = self.last_seen.get(pid, now.mono) + self._no_data_s(pid)
         if not any(self.last_seen.get(q, -math.inf) >= due for q in self.sources_of.get(p.source, ()) if q != pid):
             return  # nothing else delivered since either: a source matter (see _source_tick), not this sensor
+        refused = inp.refused.get(pid)
+        if refused is not None:  # the daemon refuses its blocks (configuration): stale, the sensor is not blamed
+            if self.stale.get(pid) != "config-mismatch":
+                self.stale[pid] = "config-mismatch"
+                self._mark_point_stale(pid, "config-mismatch", now, eff)
+                eff.log("warning", "point receives nothing: its blocks are refused for the configuration",
+                        point=pid, refused=refused)
+            return
         limit_s = self._no_data_s(pid)
         detail = (f"no frames for more than {limit_s:.1f} s ({self.settings.no_data_frames} frame periods) while "
                   f"other points of source {p.source!r} deliver")

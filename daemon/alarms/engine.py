@@ -102,6 +102,9 @@ class AlarmLayer:
         # When a point's latest block arrived (wall clock, s; the daemon's ingest), read on the event loop for
         # each tick: a point whose blocks arrive is not silent.
         self.block_arrival: Callable[[str], float | None] | None = None
+        # Why the daemon refuses a point's blocks for a configuration reason (unit, sample rate), or ``None``: a
+        # point silent for that reason is no sensor fault.
+        self.config_refusal: Callable[[str], str | None] | None = None
         self.listeners: list[Callable[[dict[str, Any]], None]] = []  # each committed CloudEvent, on the event loop
         # The trend layer's seam for the retained state message (edgevib.daemon.trendwatch).
         self.trend_state: Callable[[str], dict[str, Any]] | None = None
@@ -335,7 +338,7 @@ class AlarmLayer:
 
     async def tick(self) -> None:
         """One timer tick: source changes, no-data detection and shelf expiry (the timer's work, once)."""
-        await self.decide(Tick(self._arrivals()))
+        await self.decide(Tick(self._arrivals(), self._refusals()))
 
     def _arrivals(self) -> dict[str, float | None]:
         fn = self.block_arrival
@@ -347,6 +350,20 @@ class AlarmLayer:
                 out[pid] = fn(pid)
             except Exception:  # a view that fails must not stop the timer
                 out[pid] = None
+        return out
+
+    def _refusals(self) -> dict[str, str]:
+        fn = self.config_refusal
+        if fn is None:
+            return {}
+        out: dict[str, str] = {}
+        for pid in self.points:
+            try:
+                why = fn(pid)
+            except Exception:  # a view that fails must not stop the timer
+                why = None
+            if why:
+                out[pid] = why
         return out
 
     def on_source(self, source: str, connected: bool) -> None:

@@ -469,3 +469,60 @@ async def test_an_action_during_an_outage_says_the_machine_state_is_unknown(shor
         assert (row.transition, row.machine_state) == ("acknowledged", "unknown")
     finally:
         await layer.stop()
+
+
+async def test_a_point_refused_for_its_configuration_is_no_sensor_fault(short_tmp: Path) -> None:
+    # A point whose blocks the daemon refuses (a server's EngineeringUnits m/s² against a configured unit g, a
+    # sample rate not the configured one) receives nothing: a configuration matter, not a transducer fault
+    # (FIELD_NOTES §7: a sensor fault is a finding about the transducer or its cable).
+    from edgevib.daemon.app import _Ingest
+
+    clock, events = Clock(), []
+    cfg = two_points(short_tmp)
+    ingest = _Ingest(cfg, Stats())
+    ingest.reject("plant", "wrong_sample_rate", "block at 25600 Hz, point configured for 12800 Hz", "t",
+                  point=POINTS[0])
+    assert ingest.config_refusal(POINTS[0]) == ("wrong_sample_rate: block at 25600 Hz, point configured for "
+                                                "12800 Hz")
+    assert ingest.config_refusal(POINTS[1]) is None
+    layer = await make_layer(cfg, clock, events)
+    layer.config_refusal = ingest.config_refusal
+    try:
+        layer.on_source("plant", True)
+        await frames(layer, clock, 100.0, {POINTS[0]: [6.0] * 3, POINTS[1]: [1.0] * 3})
+        await frames(layer, clock, 102.0, {POINTS[1]: [1.0] * 20})  # P-101-DE-H receives nothing now
+        await tick(layer)
+        assert of_type(events, SENSOR_TYPE) == [] and of_type(events, SOURCE_DOWN_TYPE) == []
+        row = layer.snapshot(POINTS[0])["alarms"][0]  # kept, stale, and says why
+        assert (row["state"], row["severity"], row["stale"]) == ("unacknowledged", "danger", "config-mismatch")
+        # A block accepted since (the configuration put right): a later silence is the sensor's again.
+        ingest.last_block_ns[POINTS[0]] = ingest.clock_ns()
+        assert ingest.config_refusal(POINTS[0]) is None
+        await frames(layer, clock, 120.0, {POINTS[0]: [6.0], POINTS[1]: [1.0]})
+        await frames(layer, clock, 121.0, {POINTS[1]: [1.0] * 20})
+        await tick(layer)
+        assert [(e["data"]["point"], e["data"]["fault"]) for e in of_type(events, SENSOR_TYPE)] == \
+            [(POINTS[0], "no-data")]
+    finally:
+        await layer.stop()
+
+
+def test_an_opc_ua_node_refusal_names_its_point(tmp_path: Path) -> None:
+    # The OPC UA source refuses a node by its node id (the ingest's topic); the point is the one reading that node.
+    from edgevib.daemon.app import _Ingest
+
+    doc: dict[str, Any] = {
+        "site": {"name": "quarry-lane", "state_dir": str(tmp_path)},
+        "sources": [{"name": "gw", "type": "opcua", "endpoint": "opc.tcp://127.0.0.1:4840/"}],
+        "machines": [{"id": "K-701", "group": 2, "support": "rigid", "speed_rpm": 1485.0}],
+        "points": [{"id": f"K-701-{c}", "machine": "K-701", "axis": "horizontal", "source": "gw", "sensor": c,
+                    "node": f"ns=2;s=pt/{c}", "fs_hz": 12800.0, "block_samples": 4096, "unit": "g"}
+                   for c in ("A", "B")],
+    }
+    ingest = _Ingest(parse_config(doc, tmp_path), Stats())
+    ingest.reject("gw", "config_mismatch", "node ns=2;s=pt/B: unit m/s² on the server, g configured; not read",
+                  "ns=2;s=pt/B")
+    ingest.reject("gw", "malformed", "bad block", "ns=2;s=pt/A")  # not a configuration matter
+    assert ingest.config_refusal("K-701-B") is not None and "config_mismatch: node ns=2;s=pt/B" in \
+        str(ingest.config_refusal("K-701-B"))
+    assert ingest.config_refusal("K-701-A") is None
