@@ -978,6 +978,8 @@ class AlarmsConfig(_Table):
     startup_grace_s: Float = Field(30.0, ge=0.0, le=86400.0)
     run_threshold_velocity_mm_s: Float = Field(0.2, ge=0.0, le=100.0)
     run_hysteresis: Float = Field(0.2, ge=0.0, le=0.9)
+    run_dwell_frames: Int = Field(3, ge=1, le=1000)
+    run_dwell_s: Float = Field(3.0, ge=0.0, le=3600.0)
     speed_change_per_s: Float = Field(0.02, ge=0.001, le=10.0)
     speed_trend_window_s: Float = Field(3.0, ge=0.1, le=600.0)
     no_data_frames: Int = Field(5, ge=1, le=100000)

@@ -22,13 +22,14 @@ __all__ = ["MachineTracker", "state_spec"]
 
 def state_spec(machine: MachineConfig, settings: AlarmsConfig) -> MachineStateSpec:
     """The state thresholds of a machine (``[[machines]] run_threshold_rpm``) under the ``[alarms]`` table
-    (``run_threshold_velocity_mm_s``, ``run_hysteresis``, ``startup_grace_s``, ``speed_change_per_s``,
-    ``speed_trend_window_s``)."""
+    (``run_threshold_velocity_mm_s``, ``run_hysteresis``, ``run_dwell_frames``, ``run_dwell_s``,
+    ``startup_grace_s``, ``speed_change_per_s``, ``speed_trend_window_s``)."""
     s = settings
     return MachineStateSpec(run_speed_hz=float(machine.run_threshold_rpm) / 60.0,
                             run_level_mm_s=s.run_threshold_velocity_mm_s, hysteresis=s.run_hysteresis,
                             startup_grace_s=s.startup_grace_s, speed_change_per_s=s.speed_change_per_s,
-                            trend_window_s=s.speed_trend_window_s)
+                            trend_window_s=s.speed_trend_window_s, dwell_frames=s.run_dwell_frames,
+                            dwell_s=s.run_dwell_s)
 
 
 class MachineTracker:

@@ -12,8 +12,14 @@ The state is judged from, in order of preference:
   by at least ``speed_change_per_s`` of itself per second;
 * otherwise the **overall level** of the machine's healthy points (a fixed configured speed or a speed estimated
   from the spectrum says nothing about standstill): a point votes "turning" at or above ``run_level_mm_s``
-  velocity r.m.s. (below ``(1 − hysteresis) × run_level_mm_s`` once turning); the machine turns while any healthy
-  point votes so.  A level cannot tell a coast-down, so such machines go from running to stopped directly.
+  velocity r.m.s. (below ``(1 − hysteresis) × run_level_mm_s`` once the machine turns); the machine turns while
+  any healthy point votes so.  A level cannot tell a coast-down, so such machines go from running to stopped
+  directly.
+
+A change between stopped and turning further needs a **dwell**: the opposite verdict on ``dwell_frames``
+consecutive frames spanning at least ``dwell_s`` (a level straddling the threshold, one noisy frame below or above
+it, changes nothing; a real stop or start is told at most that late).  A start is dated from the first frame of
+the dwell, so the start-up grace is not lengthened by it.
 
 A start (stopped → turning) opens a ``startup_grace_s`` interval: the machine is ``starting`` until the grace is
 over and it no longer accelerates.  A machine first seen already turning (the monitor just started) is
@@ -48,7 +54,8 @@ class MachineStateSpec:
     """Thresholds of one machine's state judgement (see the module docstring).
 
     ``run_speed_hz`` ≥ 0, ``run_level_mm_s`` ≥ 0, 0 ≤ ``hysteresis`` < 1, ``startup_grace_s`` ≥ 0,
-    ``speed_change_per_s`` > 0, ``trend_window_s`` > 0.
+    ``speed_change_per_s`` > 0, ``trend_window_s`` > 0, ``dwell_frames`` ≥ 1, ``dwell_s`` ≥ 0 (the defaults,
+    1 and 0, are no dwell).
     """
 
     run_speed_hz: float = 1.0
@@ -57,9 +64,13 @@ class MachineStateSpec:
     startup_grace_s: float = 30.0
     speed_change_per_s: float = 0.02
     trend_window_s: float = 3.0
+    dwell_frames: int = 1
+    dwell_s: float = 0.0
 
     def __post_init__(self) -> None:
-        for name in ("run_speed_hz", "run_level_mm_s", "startup_grace_s"):
+        if isinstance(self.dwell_frames, bool) or not isinstance(self.dwell_frames, int) or self.dwell_frames < 1:
+            raise ValueError(f"dwell_frames = {self.dwell_frames!r} must be an integer ≥ 1")
+        for name in ("run_speed_hz", "run_level_mm_s", "startup_grace_s", "dwell_s"):
             v = getattr(self, name)
             if not (math.isfinite(v) and v >= 0):
                 raise ValueError(f"{name} = {v!r} must be finite and ≥ 0")
@@ -78,7 +89,9 @@ class MachineState:
     ``since_s``: when the present state began; ``started_s``: when the present run began (``None`` when the
     machine was first seen turning); ``basis``: what the latest judgement rested on (``"speed"``, ``"level"`` or
     ``"none"``); ``speed_hz``: the latest measured speed; ``votes``: each healthy point's latest level verdict;
-    ``speeds``: the measured ``(t_s, hz)`` readings within the trend window; ``last_s``: the latest time observed.
+    ``speeds``: the measured ``(t_s, hz)`` readings within the trend window; ``last_s``: the latest time observed;
+    ``pending_frames`` / ``pending_since_s``: how many consecutive frames, since when, have said the opposite of
+    ``turning`` (a change waiting for its dwell).
     """
 
     state: MachineStateName = "unknown"
@@ -89,6 +102,8 @@ class MachineState:
     votes: tuple[tuple[str, bool], ...] = ()
     speeds: tuple[tuple[float, float], ...] = ()
     last_s: float | None = None
+    pending_frames: int = 0
+    pending_since_s: float | None = None
 
     @property
     def turning(self) -> bool:
@@ -135,8 +150,9 @@ def observe(state: MachineState, spec: MachineStateSpec, t_s: float, point: str,
     if not healthy:
         votes.pop(point, None)
     elif velocity_rms_mm_s is not None and math.isfinite(velocity_rms_mm_s):
-        was = votes.get(point, turning_before)
-        level = spec.run_level_mm_s * (1.0 - spec.hysteresis) if was else spec.run_level_mm_s
+        # the machine's state, not the point's own last verdict, sets the threshold: while a change waits for its
+        # dwell, a frame back on the machine's side of the band ends the wait
+        level = spec.run_level_mm_s * (1.0 - spec.hysteresis) if turning_before else spec.run_level_mm_s
         votes[point] = velocity_rms_mm_s >= level
     speeds = state.speeds
     rate: float | None = None
@@ -159,6 +175,7 @@ def observe(state: MachineState, spec: MachineStateSpec, t_s: float, point: str,
         speeds = ()
         turning = any(votes.values()) if votes else None
         latest_speed = None
+    turning, pending_frames, pending_since = _dwell(state, spec, turning, now)
     accel = rate is not None and rate >= spec.speed_change_per_s
     decel = rate is not None and rate <= -spec.speed_change_per_s
     started = state.started_s
@@ -170,7 +187,7 @@ def observe(state: MachineState, spec: MachineStateSpec, t_s: float, point: str,
         new = "stopped"
         started = None
     elif prev == "stopped" or (prev == "unknown" and accel):
-        started = now
+        started = state.pending_since_s if prev == "stopped" and state.pending_since_s is not None else now
         new = "starting"
     elif prev == "unknown" and basis == "speed" and rate is None:
         new = "unknown"  # turning, but whether it runs up is not known before the readings span the window
@@ -185,4 +202,18 @@ def observe(state: MachineState, spec: MachineStateSpec, t_s: float, point: str,
         new = "running"  # a zero grace: a steady start is running at once
     since = state.since_s if new == prev else now
     return replace(state, state=new, since_s=since, started_s=started, basis=basis, speed_hz=latest_speed,
-                   votes=tuple(sorted(votes.items())), speeds=speeds, last_s=now)
+                   votes=tuple(sorted(votes.items())), speeds=speeds, last_s=now, pending_frames=pending_frames,
+                   pending_since_s=pending_since)
+
+
+def _dwell(state: MachineState, spec: MachineStateSpec, turning: bool | None,
+           now: float) -> tuple[bool | None, int, float | None]:
+    """The verdict after the dwell, and the pending change's frame count and first time.  Only a change between
+    stopped and turning waits (a first verdict, or one from nothing to judge by, is taken at once)."""
+    if turning is None or state.state == "unknown" or turning == state.turning:
+        return turning, 0, None
+    frames = state.pending_frames + 1
+    since = now if state.pending_since_s is None else state.pending_since_s
+    if frames >= spec.dwell_frames and now - since >= spec.dwell_s:
+        return turning, 0, None
+    return state.turning, frames, since

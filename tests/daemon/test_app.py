@@ -339,11 +339,12 @@ async def test_machine_state_and_sensor_health_travel_with_the_results(tmp_path:
         rng = np.random.default_rng(0)
         for seq in range(8):
             d.ingest.block("scripted", sine_block("QL-P101-DE-H", seq, 1.0, 25.0), 0)
-        for seq in range(8, 24):
+        # standing for 6.4 s: longer than the 3 s (and 3 frames) a stop must last to be told ([alarms] run_dwell_s)
+        for seq in range(8, 48):
             b = sine_block("QL-P101-DE-H", seq, 0.0, 25.0)
             d.ingest.block("scripted", Block(b.sensor_id, b.seq, b.t0_ns, b.fs_hz, "g",
                                              1e-4 * rng.standard_normal(BLOCK)), 0)
-        await wait_for(lambda: d.stats.frames_analysed["P-101-DE-H"] >= 11 and d.idle)
+        await wait_for(lambda: d.stats.frames_analysed["P-101-DE-H"] >= 23 and d.idle)
         mine = [r for r in probe.results if r.point_id == "P-101-DE-H"]
         states = [r.machine_state.state if r.machine_state else None for r in mine]
         assert states[0] == "running" and states[-1] == "stopped"

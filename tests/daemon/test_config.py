@@ -381,3 +381,21 @@ def test_loading_the_models_does_not_load_the_numerical_core() -> None:
             "print(sorted(m for m in sys.modules if m.startswith('edgevib.pipelines')))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60, check=True)
     assert out.stdout.strip() == "[]"
+
+
+def test_run_dwell_reaches_the_machine_state_spec() -> None:
+    # [alarms] run_dwell_frames / run_dwell_s: 3 frames and 3 s by default (README "[alarms]"), bounds named
+    from edgevib.daemon.machine_state import state_spec
+
+    cfg = parse_config(base())
+    spec = state_spec(cfg.machines[0], cfg.alarms)
+    assert (spec.dwell_frames, spec.dwell_s) == (3, 3.0)
+    doc = base()
+    doc["alarms"] = {"run_dwell_frames": 5, "run_dwell_s": 10.0}
+    cfg = parse_config(doc)
+    spec = state_spec(cfg.machines[0], cfg.alarms)
+    assert (spec.dwell_frames, spec.dwell_s) == (5, 10.0)
+    for key, value in (("run_dwell_frames", 0), ("run_dwell_s", -1.0)):
+        bad = base()
+        bad["alarms"] = {key: value}
+        assert error(bad).path == f"alarms.{key}"

@@ -35,7 +35,8 @@ def _config(state_dir: Path, **tables: Any) -> Any:
         "machines": [{"id": MACHINE, "group": 2, "support": "rigid", "speed_rpm": 1485.0}],
         "points": [{"id": POINT, "machine": MACHINE, "axis": "horizontal", "source": "sim", "sensor": "QL-P101-DE-H",
                     "fs_hz": 12800.0, "block_samples": 4096}],
-        "alarms": {"startup_grace_s": 0.0},
+        # one frame an hour: no run/stop dwell (the default 3 frames would tell the standing days 2 h late)
+        "alarms": {"startup_grace_s": 0.0, "run_dwell_frames": 1, "run_dwell_s": 0.0},
         "trend": {"evaluate_s": 3600.0, "min_span_h": 24.0},
         **tables,
     }

@@ -184,3 +184,93 @@ def test_grace_countdown() -> None:
 def test_bad_specs_are_refused(kwargs: dict[str, float]) -> None:
     with pytest.raises(ValueError):
         MachineStateSpec(**kwargs)
+
+
+# The daemon's default dwell ([alarms] run_dwell_frames = 3, run_dwell_s = 3): a change between stopped and turning
+# holds for 3 consecutive frames over 3 s.  Common practice for a run/stop signal taken from a level (an on-delay
+# and off-delay on a threshold with hysteresis, ISA-18.2's alarm delays from memory): one noisy frame changes
+# nothing; a real stop or start is told at most the dwell late.
+DWELL = MachineStateSpec(run_speed_hz=1.0, run_level_mm_s=0.2, hysteresis=0.2, startup_grace_s=10.0,
+                         dwell_frames=3, dwell_s=3.0)
+
+
+def run_levels(levels: list[tuple[float, str, float]], spec: MachineStateSpec = DWELL,
+               state: MachineState | None = None) -> list[tuple[float, MachineState]]:
+    s = state or MachineState()
+    out = []
+    for t, point, v in levels:
+        s = observe(s, spec, t, point, velocity_rms_mm_s=v)
+        out.append((t, s))
+    return out
+
+
+@settings(max_examples=40, deadline=None)
+@given(seed=st.integers(0, 10_000))
+def test_level_straddling_the_run_threshold_does_not_flap(seed: int) -> None:
+    # An idling fan without speed tag (the reported case): two points, one frame a second each, levels scattered
+    # over 0.17–0.24 mm/s around the 0.2 run threshold, with a lone frame below the 0.16 stop level now and then.
+    import random
+
+    rnd = random.Random(seed)
+    frames = []
+    for k in range(240):
+        for point, centre in (("DE", 0.194), ("NDE", 0.17)):
+            v = centre + rnd.uniform(-0.024, 0.046)
+            if rnd.random() < 0.05:
+                v = 0.146
+            frames.append((float(k) + (0.5 if point == "NDE" else 0.0), point, v))
+    running = MachineState(state="running", since_s=-100.0)
+    assert {s.state for _, s in run_levels(frames, state=running)} == {"running"}
+    # a stopped machine with levels of 0.12–0.19 mm/s and a lone frame at 0.23 now and then does not start
+    stopped = MachineState(state="stopped", since_s=-100.0)
+    low, spike = [], False
+    for t, point, v in frames:
+        if point == "DE":
+            spike = not spike and rnd.random() < 0.05
+            low.append((t, point, 0.23 if spike else v - 0.05 if v != 0.146 else 0.15))
+    assert {s.state for _, s in run_levels(low, state=stopped)} == {"stopped"}
+    # without the dwell, the same levels flap (what the dwell is for)
+    no_dwell = MachineStateSpec(run_speed_hz=1.0, run_level_mm_s=0.2, hysteresis=0.2, startup_grace_s=10.0)
+    single = [f for f in frames if f[1] == "DE"]
+    if any(v < 0.16 for _, _, v in single):
+        assert "stopped" in {s.state for _, s in run_levels(single, no_dwell, running)}
+
+
+def test_real_stop_and_start_are_told_within_the_dwell() -> None:
+    # running at 2 mm/s, stops at t = 20 s (0.01 mm/s), restarts at t = 60 s; a frame every 0.5 s
+    frames = [(k * 0.5, "DE", 2.0 if k * 0.5 < 20.0 or k * 0.5 >= 60.0 else 0.01) for k in range(200)]
+    ch = changes(run_levels(frames, state=MachineState(state="running", since_s=-100.0)))
+    assert [s for _, s in ch] == ["running", "stopped", "starting", "running"]
+    t = dict((s, t) for t, s in ch)
+    # stopped 3 s after the first low frame (3 frames and 3 s: the time decides at 2 frames a second)
+    assert t["stopped"] == pytest.approx(20.0 + 3.0)
+    assert t["starting"] == pytest.approx(60.0 + 3.0)
+    # the start is dated from its first frame: the grace ends 10 s after 60 s, not after the dwell
+    s = dict(run_levels(frames, state=MachineState(state="running", since_s=-100.0)))[65.0]
+    assert s.state == "starting" and s.grace_until_s(DWELL) == pytest.approx(70.0)
+    assert t["running"] == pytest.approx(70.0)
+    # frames far apart: the frame count decides (3 frames, 10 s apart → told on the third, 20 s after the first)
+    sparse = [(0.0, "DE", 2.0), (10.0, "DE", 0.01), (20.0, "DE", 0.01), (30.0, "DE", 0.01)]
+    assert [s.state for _, s in run_levels(sparse)] == ["running", "running", "running", "stopped"]
+
+
+def test_one_frame_back_resets_the_dwell() -> None:
+    # two low frames, one back above the stop level (0.16), two low again: never three low in a row
+    levels = [2.0, 0.01, 0.01, 0.18, 0.01, 0.01, 0.18, 0.01, 0.01]
+    hist = run_levels([(float(i) * 2.0, "DE", v) for i, v in enumerate(levels)])
+    assert {s.state for _, s in hist} == {"running"}
+    # a speed tag waits the same way
+    s = MachineState()
+    for k in range(20):
+        s = observe(s, DWELL, k * 0.5, "DE", speed_hz=25.0)
+    assert s.state == "running"
+    s = observe(s, DWELL, 10.0, "DE", speed_hz=0.0)  # one reading of 0 (its slope may say coasting): not a stop
+    assert s.turning and s.pending_frames == 1
+    s = observe(s, DWELL, 10.5, "DE", speed_hz=25.0)
+    assert s.turning and s.pending_frames == 0
+
+
+@pytest.mark.parametrize("kwargs", [{"dwell_frames": 0}, {"dwell_s": -1.0}, {"dwell_s": math.nan}])
+def test_bad_dwell_is_refused(kwargs: dict[str, float]) -> None:
+    with pytest.raises(ValueError):
+        MachineStateSpec(**kwargs)  # type: ignore[arg-type]
