@@ -640,6 +640,8 @@ class AlarmCore:
             if name not in self.sources_of:
                 continue
             if up:
+                if self.source_states.get(name, SourceState()).silent:
+                    continue  # down for lack of data (also across a restart): its return is data, not a connection
                 self._source_up(name, t, "connection restored", now, eff)
             else:
                 self._source_down(name, t, "connection lost", now, eff)

@@ -526,3 +526,34 @@ def test_an_opc_ua_node_refusal_names_its_point(tmp_path: Path) -> None:
     assert ingest.config_refusal("K-701-B") is not None and "config_mismatch: node ns=2;s=pt/B" in \
         str(ingest.config_refusal("K-701-B"))
     assert ingest.config_refusal("K-701-A") is None
+
+
+async def test_a_restart_during_a_silent_outage_neither_repeats_nor_forgets_it(short_tmp: Path) -> None:
+    # The broker is up but the gateway behind it stopped: one down; a restart of the daemon reconnects to the
+    # broker, which is not the source's return (FIELD_NOTES §7: annunciated once); its data flowing again is.
+    clock, events = Clock(), []
+    cfg = two_points(short_tmp)
+    layer = await make_layer(cfg, clock, events)
+    layer.on_source("plant", True)
+    await frames(layer, clock, 100.0, {POINTS[0]: [6.0] * 3, POINTS[1]: [1.0] * 3})
+    clock.t += 40.0  # past the start allowance and the no-data interval, nothing delivered
+    await tick(layer)
+    down = of_type(events, SOURCE_DOWN_TYPE)
+    assert len(down) == 1 and down[0]["data"]["silent"] is True
+    await layer.stop()
+    layer = await make_layer(cfg, clock, events)  # the same state directory; the gateway is still stopped
+    try:
+        layer.on_source("plant", True)  # the broker answers at start
+        for _ in range(90):
+            clock.t += 1.0
+            await tick(layer)
+        assert len(of_type(events, SOURCE_DOWN_TYPE)) == 1 and of_type(events, SOURCE_UP_TYPE) == []
+        assert of_type(events, SENSOR_TYPE) == []
+        row = layer.snapshot(POINTS[0])["alarms"][0]
+        assert (row["state"], row["severity"], row["stale"]) == ("unacknowledged", "danger", "source-down")
+        await frames(layer, clock, 300.0, {POINTS[0]: [6.0], POINTS[1]: [1.0]})  # the gateway sends again
+        up = of_type(events, SOURCE_UP_TYPE)
+        assert len(up) == 1 and up[0]["data"]["reason"] == "data flows again"
+        assert len(of_type(events, SOURCE_DOWN_TYPE)) == 1
+    finally:
+        await layer.stop()
