@@ -50,7 +50,7 @@ import dataclasses
 import math
 import time
 from collections import deque
-from collections.abc import Callable, Iterable, Sequence
+from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, assert_never
@@ -244,7 +244,7 @@ class Daemon:
         self.clock_ns = clock_ns
         self.stats = Stats()
         self.analyze = analyze or _default_analyze
-        self.ingest = _Ingest(config, self.stats, on_frames=self._on_frames, clock_ns=clock_ns)
+        self.ingest = BlockIngest(config, self.stats, on_frames=self._on_frames, clock_ns=clock_ns)
         self.machines = MachineTracker(config)  # machine state per machine, from every analysed frame
         self.points: dict[str, _PointState] = {}
         self.latest: dict[str, FrameResult] = {}
@@ -826,42 +826,6 @@ class Daemon:
 
 
 # ---------------------------------------------------------------------------------------------- factories
-
-# Refusals for the configuration's sake (unit or sample rate not the configured one, no sample rate known): the
-# point receives nothing, but its sensor is not to blame.
-CONFIG_REFUSALS = frozenset({"config_mismatch", "no_sample_rate", "wrong_sample_rate", "wrong_length"})
-
-
-class _Ingest(BlockIngest):
-    """The block ingest that also remembers, per point, the latest refusal for a configuration reason."""
-
-    def __init__(self, *args: Any, **kwargs: Any) -> None:
-        self.config_refusals: dict[str, tuple[int, str]] = {}  # point -> (when, wall clock ns; why)
-        super().__init__(*args, **kwargs)
-
-    def reject(self, source: str, reason: str, detail: str, topic: str | None = None,
-               point: str | None = None, received: bool = False) -> None:
-        if reason in CONFIG_REFUSALS:
-            pid = point
-            if pid is None and topic is not None:  # an OPC UA node refused by its source
-                pid = next((p.id for p in self.config.points if p.source == source and p.node == topic), None)
-            if pid is not None:
-                self.config_refusals[pid] = (self.clock_ns(), f"{reason}: {detail}")
-        super().reject(source, reason, detail, topic, point, received)
-
-    def config_refusal(self, point_id: str) -> str | None:
-        """Why the point's blocks are refused for the configuration, unless a block was accepted since."""
-        refusal = self.config_refusals.get(point_id)
-        if refusal is None or self.last_block_ns.get(point_id, -1) >= refusal[0]:
-            return None
-        return refusal[1]
-
-    def configure(self, config: Config, keep: Iterable[str] = ()) -> None:
-        keep = list(keep)
-        for pid in set(self.config_refusals) - set(keep):  # a point configured anew is judged anew
-            del self.config_refusals[pid]
-        super().configure(config, keep)
-
 
 def make_source(cfg: SourceConfig, config: Config, ingest: BlockIngest) -> Source:
     """Build the source of one ``[[sources]]`` entry."""

@@ -247,6 +247,11 @@ class EwTrend:
 # ------------------------------------------------------------------------------------------------ ingest
 
 
+# Refusals for the configuration's sake (unit or sample rate not the configured one, no sample rate known): the
+# point receives nothing, but its sensor is not to blame.
+CONFIG_REFUSALS = frozenset({"config_mismatch", "no_sample_rate", "wrong_sample_rate", "wrong_length"})
+
+
 class BlockIngest:
     """The :class:`~edgevib.daemon.interfaces.Ingest` every source hands its data to (event-loop only)."""
 
@@ -261,6 +266,7 @@ class BlockIngest:
         self.speeds: dict[str, tuple[float, int]] = {}  # machine id -> (shaft Hz, received ns)
         self.connected_since_ns: dict[str, int] = {}  # source -> when it last connected
         self.last_block_ns: dict[str, int] = {}  # point -> when its last accepted block arrived
+        self.config_refusals: dict[str, tuple[int, str]] = {}  # point -> (when, wall clock ns; why) of its latest
         # Told of every change of a source's connection (source name, connected), except deliberate closes at
         # shutdown: the alarm layer's source up/down judgement.
         self.connection_listeners: list[Callable[[str, bool], None]] = []
@@ -269,6 +275,9 @@ class BlockIngest:
     def configure(self, config: Config, keep: Iterable[str] = ()) -> None:
         """(Re)build the routing tables; streams of points in ``keep`` (unchanged on reload) keep their state."""
         self.config = config
+        for pid in set(self.config_refusals) - set(keep):  # a point configured anew is judged anew
+            del self.config_refusals[pid]
+        self.by_node = {(p.source, p.node): p.id for p in config.points if p.node is not None}
         kept = {pid: s for pid, s in self.streams.items() if pid in set(keep)}
         self.streams = {p.id: kept.get(p.id) or PointStream(p, config.analysis.queue_frames) for p in config.points}
         self.by_sensor = {(p.source, p.sensor): p.id for p in config.points}
@@ -378,8 +387,19 @@ class BlockIngest:
         if received:  # a payload the source refused before handing it over: it was received all the same
             Stats.inc(self.stats.blocks_received, source)
         Stats.inc(self.stats.blocks_rejected, (source, reason))
+        if reason in CONFIG_REFUSALS:
+            pid = point if point is not None or topic is None else self.by_node.get((source, topic))
+            if pid is not None:  # an OPC UA node refused by its source names its node, not its point
+                self.config_refusals[pid] = (self.clock_ns(), f"{reason}: {detail}")
         self.log.warning(("reject", source, reason, point), "block rejected", source=source, reason=reason,
                          detail=detail, topic=topic, point=point)
+
+    def config_refusal(self, point_id: str) -> str | None:
+        """Why the point's blocks are refused for the configuration, unless a block was accepted since."""
+        refusal = self.config_refusals.get(point_id)
+        if refusal is None or self.last_block_ns.get(point_id, -1) >= refusal[0]:
+            return None
+        return refusal[1]
 
     def connection(self, source: str, connected: bool) -> None:
         was = self.stats.connected.get(source, False)

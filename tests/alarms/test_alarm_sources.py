@@ -475,11 +475,11 @@ async def test_a_point_refused_for_its_configuration_is_no_sensor_fault(short_tm
     # A point whose blocks the daemon refuses (a server's EngineeringUnits m/s² against a configured unit g, a
     # sample rate not the configured one) receives nothing: a configuration matter, not a transducer fault
     # (FIELD_NOTES §7: a sensor fault is a finding about the transducer or its cable).
-    from edgevib.daemon.app import _Ingest
+    from edgevib.daemon.frames import BlockIngest
 
     clock, events = Clock(), []
     cfg = two_points(short_tmp)
-    ingest = _Ingest(cfg, Stats())
+    ingest = BlockIngest(cfg, Stats())
     ingest.reject("plant", "wrong_sample_rate", "block at 25600 Hz, point configured for 12800 Hz", "t",
                   point=POINTS[0])
     assert ingest.config_refusal(POINTS[0]) == ("wrong_sample_rate: block at 25600 Hz, point configured for "
@@ -509,7 +509,7 @@ async def test_a_point_refused_for_its_configuration_is_no_sensor_fault(short_tm
 
 def test_an_opc_ua_node_refusal_names_its_point(tmp_path: Path) -> None:
     # The OPC UA source refuses a node by its node id (the ingest's topic); the point is the one reading that node.
-    from edgevib.daemon.app import _Ingest
+    from edgevib.daemon.frames import BlockIngest
 
     doc: dict[str, Any] = {
         "site": {"name": "quarry-lane", "state_dir": str(tmp_path)},
@@ -519,7 +519,7 @@ def test_an_opc_ua_node_refusal_names_its_point(tmp_path: Path) -> None:
                     "node": f"ns=2;s=pt/{c}", "fs_hz": 12800.0, "block_samples": 4096, "unit": "g"}
                    for c in ("A", "B")],
     }
-    ingest = _Ingest(parse_config(doc, tmp_path), Stats())
+    ingest = BlockIngest(parse_config(doc, tmp_path), Stats())
     ingest.reject("gw", "config_mismatch", "node ns=2;s=pt/B: unit m/s² on the server, g configured; not read",
                   "ns=2;s=pt/B")
     ingest.reject("gw", "malformed", "bad block", "ns=2;s=pt/A")  # not a configuration matter
