@@ -217,7 +217,7 @@ def test_rate_limited_logger_suppresses_and_reports() -> None:
 def test_implausible_speed_tag_reading_is_rejected_and_counted() -> None:
     # A reading above what the machine can turn (above its speed range's top by more than 20 %, overspeed trips
     # being set near 110–115 % of the maximum continuous speed: common practice) is a wrong tag, unit or
-    # transmitter fault; it must not move the order lines (QA repro: 200000 r/min and 1e308 were used as is).
+    # transmitter fault; it must not move the order lines (200000 r/min and 1e308 were once used as is).
     doc = {
         "sources": [{"name": "broker", "type": "mqtt", "url": "mqtt://127.0.0.1:1883", "topics": ["fwb/#"]}],
         "machines": [

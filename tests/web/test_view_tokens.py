@@ -14,7 +14,7 @@ from edgevib.daemon.config import ViewConfig
 from edgevib.daemon.web.actions import Actions, token_warnings
 
 EXAMPLE = Path(__file__).resolve().parents[2] / "config" / "example-plant.toml"
-GOOD = "qa-token-alice-0123456789"
+GOOD = "shift-token-alice-0123456789"
 
 
 def _file(tmp_path: Path) -> Path:
