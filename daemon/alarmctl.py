@@ -275,4 +275,7 @@ def run_alarms(args: argparse.Namespace) -> int:
     else:
         r = resp["result"]
         print(f"{args.alarm_cmd}: {r.get('changed', 0)} alarm(s) changed, {r.get('events', 0)} event(s)")
+        for a in r.get("not_acknowledged") or ():  # hidden alarms a point-wide ack leaves (shown again later)
+            print(f"  not acknowledged: {a.get('indicator')} is {a.get('state')} ({a.get('reason') or ''}); "
+                  "acknowledge it when it shows again")
     return 0 if resp.get("ok") else 2

@@ -317,10 +317,15 @@ def step(state: AlarmState, value: float, now_s: float, spec: LimitSpec,
 
 def acknowledge(state: AlarmState, now_s: float, spec: LimitSpec) -> tuple[AlarmState, tuple[Transition, ...]]:
     """Acknowledge: an unacknowledged alarm becomes acknowledged, a returned-to-normal one normal, and a latched
-    one is reset to the current process severity.  Acknowledging anything else changes nothing (no events)."""
+    one is reset to the current process severity.  Acknowledging anything else changes nothing (no events).
+
+    A hidden alarm (shelved, or suppressed by design) is not acknowledged either: acknowledgement is the
+    operator's response to an annunciated alarm (ANSI/ISA-18.2-2016, IEC 62682; from memory), so an alarm hidden
+    meanwhile shows again as it stands, an unacknowledged one still unacknowledged, and is acknowledged then with
+    its event — never silently while nobody can see it."""
     before = state
     was = isa_state(state, spec)
-    if was in ("normal", "acknowledged"):
+    if was in ("normal", "acknowledged", "shelved", "suppressed"):
         return state, ()
     kind: TransitionKind = "acknowledged"
     after = replace(state, acked=True)
@@ -330,9 +335,6 @@ def acknowledge(state: AlarmState, now_s: float, spec: LimitSpec) -> tuple[Alarm
     if isa_state(after, spec) == was and display_severity(after, spec) == display_severity(before, spec) and \
             after.acked == before.acked:
         return state, ()
-    if was in ("shelved", "suppressed"):
-        # Hidden alarms record the acknowledgement silently.
-        return after, ()
     return _stamp(before, after, spec, now_s), (_transition(kind, before, after, spec, state.last_value, now_s),)
 
 

@@ -63,6 +63,7 @@ from edgevib.pipelines.alarm import (
     expire_shelf,
     isa_state,
     mark_stale,
+    process_severity,
     shelve,
     step,
     unshelve,
@@ -809,15 +810,32 @@ class AlarmCore:
                                    f"{', '.join(x.indicator for x in self.by_point.get(point, ())) or 'none'})")
         return lims
 
-    def _ack_targets(self, req: Mapping[str, Any], lims: tuple[LimitConfig, ...]) -> tuple[LimitConfig, ...]:
-        """The limits an ack acknowledges: a shelved alarm is hidden, so a point-wide ack leaves it alone and an
-        ack naming its indicator is refused (the operator acknowledges it after unshelving, with its event)."""
-        shelved = [lim for lim in lims if self.alarms.get(lim.key, AlarmState()).shelved_until_s is not None]
-        if shelved and req.get("indicator") is not None:
-            st = self.alarms[shelved[0].key]
-            raise CommandError(f"ack: {shelved[0].indicator} on {req['point']} is shelved ({st.shelve_reason}); "
-                               "unshelve it first to acknowledge it")
-        return tuple(lim for lim in lims if all(lim is not x for x in shelved))
+    def _ack_targets(self, req: Mapping[str, Any], lims: tuple[LimitConfig, ...],
+                     ) -> tuple[tuple[LimitConfig, ...], list[dict[str, Any]]]:
+        """The limits an ack acknowledges, and the hidden ones it leaves that await an acknowledge.
+
+        A shelved alarm (hidden by an operator) and a suppressed one (hidden by design: machine stopped, start-up
+        grace, sensor fault) are not annunciated, and an acknowledge answers an annunciated alarm (ANSI/ISA-18.2,
+        IEC 62682; from memory): a point-wide ack leaves them — its reply lists the suppressed ones left
+        unacknowledged — and an ack naming one is refused with the reason.  The alarm shows again as it stands
+        when unshelved or when the suppression ends, and is acknowledged then, with its event.  A stale alarm (no
+        data) stays shown, flagged stale, and is acknowledged as usual, its event saying it is stale."""
+        hidden: list[tuple[LimitConfig, AlarmState, str, str | None]] = []
+        for lim in lims:
+            st = self.alarms.get(lim.key, AlarmState())
+            if st.suppressed is not None:
+                hidden.append((lim, st, "suppressed", st.suppressed))
+            elif st.shelved_until_s is not None:
+                hidden.append((lim, st, "shelved", st.shelve_reason))
+        if hidden and req.get("indicator") is not None:
+            lim, st, how, why = hidden[0]
+            then = "unshelve it first to acknowledge it" if how == "shelved" else \
+                "it is not annunciated while suppressed; acknowledge it when it shows again"
+            raise CommandError(f"ack: {lim.indicator} on {req['point']} is {how} ({why}); {then}")
+        # a shelf is the operator's own doing; a suppression is not, so the reply names what it left waiting
+        left = [{"indicator": lim.indicator, "state": how, "reason": why} for lim, st, how, why in hidden
+                if how == "suppressed" and (not st.acked or st.latched > process_severity(st))]
+        return tuple(lim for lim in lims if all(lim is not h[0] for h in hidden)), left
 
     def command(self, inp: Command, now: Now, eff: Effects) -> None:
         """ack, shelve, unshelve or relearn; the reply ``{changed, events}`` goes into ``eff.reply``."""
@@ -832,8 +850,9 @@ class AlarmCore:
         # the time of the action: the wall clock, on the point's timeline (the last frame's time advanced by
         # the time since it arrived; during an outage, the wall clock) so shelves run from the action
         t_s = self.point_now_s(req["point"], now)
+        left: list[dict[str, Any]] = []
         if cmd == "ack":
-            lims = self._ack_targets(req, lims)
+            lims, left = self._ack_targets(req, lims)
         changed = 0
         for lim in lims:
             key, spec = lim.key, self.specs[lim.key]
@@ -857,6 +876,8 @@ class AlarmCore:
             for tr in trs:
                 self._alarm_event(None, lim, tr, now, eff, by=by)
         eff.reply = {"changed": changed, "events": len(eff.events)}
+        if left:
+            eff.reply["not_acknowledged"] = left
 
 
 def _relapse_hold_s(relapses: int) -> float:
