@@ -73,6 +73,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from functools import lru_cache
 from typing import Any
 
 import numpy as np
@@ -127,6 +128,8 @@ _LEVEL_OFFSET = np.concatenate([-(GUARD_LINES + 1 + LEVEL_STEP * np.arange(_LEVE
 for _a in (_LEVEL_ABOVE_RANK, _LEVEL_OFFSET):
     _a.flags.writeable = False
 _TINY = 1e-300
+_SHAFT_ORDERS = np.arange(1, SHAFT_HARMONICS + 1, dtype=np.float64)
+_SHAFT_ORDERS.flags.writeable = False
 
 
 def level_headroom() -> int:
@@ -258,10 +261,13 @@ def squared_envelope_spectrum(x_g: npt.ArrayLike, fs_hz: float, band_hz: tuple[f
 
 
 def _gather(a: npt.NDArray[Any], idx: IntArray) -> npt.NDArray[Any]:
-    """``a[row, idx[row, ...]]`` for every row (``idx`` already in range)."""
-    c = a.shape[0]
-    rows = np.arange(c).reshape((c,) + (1,) * (idx.ndim - 1))
-    out: npt.NDArray[Any] = a[rows, idx]
+    """``a[row, idx[row, ...]]`` for every row (``idx`` already in range; ``a`` C-contiguous, shape (rows, k)).
+
+    One ``take`` on the flattened array: several times cheaper than indexing with two broadcast index arrays."""
+    c, k = a.shape
+    if c > 1:
+        idx = idx + np.arange(0, c * k, k).reshape((c,) + (1,) * (idx.ndim - 1))
+    out: npt.NDArray[Any] = a.ravel().take(idx)
     return out
 
 
@@ -304,49 +310,85 @@ def search_lines(ses: FloatArray, centre_lines: FloatArray, half_lines: FloatArr
     -------
     LineSearch
     """
-    k = ses.shape[1]
-    known = np.isfinite(centre_lines) & np.isfinite(half_lines)
-    centre = np.where(known, centre_lines, 0.0)
-    half = np.where(known, np.maximum(half_lines, min_half), min_half)
-    lo = np.ceil(centre - half - 1e-9).astype(np.intp)
-    hi = np.floor(centre + half + 1e-9).astype(np.intp)
-    fits = known & (lo >= MIN_LINE) & (hi + level_headroom() <= k - 1)
-    lo_c = np.where(fits, lo, MIN_LINE)
-    hi_c = np.where(fits, hi, MIN_LINE)
-    width = int((hi_c - lo_c).max()) + 1 if lo_c.size else 1
-    # each window's lines with one neighbour either side, in one gather (a window's own lines lie at or below
-    # k − 2: the padding beyond a narrower window's last line is clipped and never taken)
-    idx = lo_c[..., None] + np.arange(-1, width + 1)
-    np.minimum(idx, k - 1, out=idx)
-    g = _gather(ses, idx)
-    v = g[..., 1:-1]
-    valid = idx[..., 1:-1] <= hi_c[..., None]
-    local = valid & (v > g[..., :-2]) & (v >= g[..., 2:])
-    if excluded is not None:
-        barred = _gather(excluded, idx[..., 1:-1])
+    scan = _Scan(np.ascontiguousarray(ses), centre_lines, half_lines, thresholds, min_half)
+    return scan.search(scan.admissible(excluded, exclude_in))
+
+
+class _Scan:
+    """The windows of :func:`search_lines` gathered once: their lines, local maxima and levels.  :meth:`search`
+    picks each window's largest admissible local maximum — the same scan serves searches that differ only in the
+    lines they bar."""
+
+    __slots__ = ("fits", "flat", "hi", "level", "lo", "local", "ses", "thr", "values")
+
+    def __init__(self, ses: FloatArray, centre_lines: FloatArray, half_lines: FloatArray, thresholds: FloatArray,
+                 min_half: float | FloatArray) -> None:
+        c, k = ses.shape
+        self.ses = ses
+        known = np.isfinite(centre_lines) & np.isfinite(half_lines)
+        centre = np.where(known, centre_lines, 0.0)
+        half = np.where(known, np.maximum(half_lines, min_half), min_half)
+        lo = np.ceil(centre - half - 1e-9).astype(np.intp)
+        hi = np.floor(centre + half + 1e-9).astype(np.intp)
+        fits = known & (lo >= MIN_LINE) & (hi + level_headroom() <= k - 1)
+        lo_c = np.where(fits, lo, MIN_LINE)
+        hi_c = np.where(fits, hi, MIN_LINE)
+        width = int((hi_c - lo_c).max()) + 1 if lo_c.size else 1
+        rows = np.arange(0, c * k, k).reshape(c, 1, 1) if c > 1 else None
+        # each window's lines with one neighbour either side, in one gather (a window's own lines lie at or below
+        # k − 2: the padding beyond a narrower window's last line is clipped and never taken); flat indices into
+        # ses (row offsets added), so the same indices serve every gather of a (channels, lines) array
+        idx = lo_c[..., None] + np.arange(-1, width + 1)
+        np.minimum(idx, k - 1, out=idx)
+        valid = idx[..., 1:-1] <= hi_c[..., None]
+        if rows is not None:
+            idx += rows
+        flat = ses.ravel()
+        g = flat.take(idx)
+        v = g[..., 1:-1]
+        self.local = valid & (v > g[..., :-2]) & (v >= g[..., 2:])
+        self.flat = idx[..., 1:-1]
+        self.values = v
+        # level lines: every other line beyond the guard, half below and half above (all above where the spectrum
+        # starts too close); gathered at once: columns 0 … LEVEL_LINES/2 − 1 below the window, the rest above it
+        lines = np.empty((*lo_c.shape, _LEVEL_OFFSET.size), dtype=np.intp)
+        np.add(lo_c[..., None], _LEVEL_OFFSET[:_LEVEL_PER_SIDE], out=lines[..., :_LEVEL_PER_SIDE])
+        np.add(hi_c[..., None], _LEVEL_OFFSET[_LEVEL_PER_SIDE:], out=lines[..., _LEVEL_PER_SIDE:])
+        ok = lines >= 2
+        missing = _LEVEL_PER_SIDE - ok[..., :_LEVEL_PER_SIDE].sum(axis=-1)
+        ok[..., _LEVEL_PER_SIDE:] = (_LEVEL_PER_SIDE + missing)[..., None] > _LEVEL_ABOVE_RANK
+        np.minimum(np.maximum(lines, 0, out=lines), k - 1, out=lines)  # (np.clip costs ten times as much)
+        if rows is not None:
+            lines += rows
+        vals = flat.take(lines)
+        vals[~ok] = np.inf
+        vals.partition(LEVEL_RANK - 1, axis=-1)
+        self.level = vals[..., LEVEL_RANK - 1] / _LEVEL_FACTOR
+        m_lines = np.minimum(hi_c - lo_c + 1, thresholds.size - 1)
+        self.thr = np.where(fits, thresholds[m_lines], np.nan)
+        self.fits, self.lo, self.hi = fits, lo_c, hi_c
+
+    def admissible(self, excluded: BoolArray | None, exclude_in: BoolArray | None = None) -> BoolArray:
+        """The windows' local maxima less the lines ``excluded`` (shape (channels, lines)) bars, in the windows
+        ``exclude_in`` (shape (channels, windows); default all)."""
+        if excluded is None:
+            return self.local
+        barred = excluded.ravel().take(self.flat)
         if exclude_in is not None:
             barred &= exclude_in[..., None]
-        local &= ~barred
-    best = np.argmax(np.where(local, v, -np.inf), axis=-1)
-    has = local.any(axis=-1) & fits
-    peak = lo_c + best
-    value = _gather(ses, peak)
-    # level lines: every other line beyond the guard, half below and half above (all above where the spectrum
-    # starts too close); gathered at once: columns 0 … LEVEL_LINES/2 − 1 below the window, the rest above it
-    lines = np.empty((*lo_c.shape, _LEVEL_OFFSET.size), dtype=np.intp)
-    np.add(lo_c[..., None], _LEVEL_OFFSET[:_LEVEL_PER_SIDE], out=lines[..., :_LEVEL_PER_SIDE])
-    np.add(hi_c[..., None], _LEVEL_OFFSET[_LEVEL_PER_SIDE:], out=lines[..., _LEVEL_PER_SIDE:])
-    ok = lines >= 2
-    missing = _LEVEL_PER_SIDE - ok[..., :_LEVEL_PER_SIDE].sum(axis=-1)
-    ok[..., _LEVEL_PER_SIDE:] = (_LEVEL_PER_SIDE + missing)[..., None] > _LEVEL_ABOVE_RANK
-    np.minimum(np.maximum(lines, 0, out=lines), k - 1, out=lines)  # (np.clip costs ten times as much)
-    vals = np.where(ok, _gather(ses, lines), np.inf)
-    level = np.partition(vals, LEVEL_RANK - 1, axis=-1)[..., LEVEL_RANK - 1] / _LEVEL_FACTOR
-    with np.errstate(divide="ignore", invalid="ignore"):
-        stat = np.where(has, value / np.maximum(level, _TINY), np.nan)
-    m_lines = np.minimum(hi_c - lo_c + 1, thresholds.size - 1)
-    thr = np.where(fits, thresholds[m_lines], np.nan)
-    return LineSearch(index=np.where(has, peak, -1), statistic=stat, threshold=thr, fits=fits, lo=lo_c, hi=hi_c)
+        out: BoolArray = self.local & ~barred
+        return out
+
+    def search(self, local: BoolArray) -> LineSearch:
+        """Each window's largest line among ``local`` (shape (channels, windows, width)) and its statistic."""
+        best = np.where(local, self.values, -np.inf).argmax(axis=-1)
+        has = local.any(axis=-1) & self.fits
+        peak = self.lo + best
+        value = np.take_along_axis(self.values, best[..., None], axis=-1)[..., 0]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            stat = np.where(has, value / np.maximum(self.level, _TINY), np.nan)
+        return LineSearch(index=np.where(has, peak, -1), statistic=stat, threshold=self.thr, fits=self.fits,
+                          lo=self.lo, hi=self.hi)
 
 
 @dataclass(frozen=True, slots=True)
@@ -437,9 +479,17 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     c, k = ses.shape
     nf = expected_hz.shape[1]
     # 1. shaft harmonics: significant local maxima at whole orders are shaft lines, never bearing lines
-    orders = np.arange(1, SHAFT_HARMONICS + 1, dtype=np.float64)
-    s_centre = shaft_hz[:, None] * orders / df_hz
-    shaft = search_lines(ses, s_centre, SHAFT_TOLERANCE * s_centre, thresholds, min_half=0.5)
+    ses = np.ascontiguousarray(ses)
+    s_centre = shaft_hz[:, None] * _SHAFT_ORDERS / df_hz
+    f_centre = expected_hz / df_hz
+    f_half = slip * f_centre
+    # the shaft harmonics' windows and the fundamentals' (step 2) in one scan: its lines and levels serve both
+    # searches of the fundamentals, with and without the shaft lines
+    sh = SHAFT_HARMONICS
+    first = _Scan(ses, np.concatenate([s_centre, f_centre], axis=-1),
+                  np.concatenate([SHAFT_TOLERANCE * s_centre, f_half], axis=-1), thresholds, _first_min_half(nf))
+    both = first.search(first.local)
+    shaft = _columns(both, slice(0, sh))
     excluded = np.zeros((c, k), dtype=bool)
     s_found = shaft.found
     rows, cols = np.nonzero(s_found)
@@ -447,12 +497,10 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     # 2. fundamentals: the window's largest local maximum, and the largest one that is not a shaft line; the
     # shaft lines are barred only where the shaft series stands on its own (lines the candidate's series does
     # not explain)
-    f_centre = expected_hz / df_hz
-    f_half = slip * f_centre
-    free = search_lines(ses, f_centre, f_half, thresholds)
-    barred = search_lines(ses, f_centre, f_half, thresholds, excluded)
-    established = shaft_series_established(shaft, free.index)
-    fund = _pick(established, barred, free)
+    established = shaft_series_established(shaft, both.index[:, sh:])
+    bar_first = np.zeros((c, sh + nf), dtype=bool)
+    bar_first[:, sh:] = established
+    fund = _columns(first.search(first.admissible(excluded, bar_first)), slice(sh, None))
     has = fund.index >= 0
     k1 = np.where(has, fund.index, 0).astype(np.float64)
     # 3. harmonics (around h × the found line, else h × the expected one) and sidebands (around the found line)
@@ -590,10 +638,19 @@ def shaft_series_established(shaft: LineSearch, candidate: IntArray) -> BoolArra
     return out
 
 
-def _pick(where: BoolArray, a: LineSearch, b: LineSearch) -> LineSearch:
-    """``a`` where ``where`` holds, ``b`` elsewhere (searches of the same windows)."""
-    return LineSearch(index=np.where(where, a.index, b.index), statistic=np.where(where, a.statistic, b.statistic),
-                      threshold=a.threshold, fits=a.fits, lo=a.lo, hi=a.hi)
+def _columns(a: LineSearch, cols: slice) -> LineSearch:
+    """The windows ``cols`` of a search (views)."""
+    return LineSearch(index=a.index[:, cols], statistic=a.statistic[:, cols], threshold=a.threshold[:, cols],
+                      fits=a.fits[:, cols], lo=a.lo[:, cols], hi=a.hi[:, cols])
+
+
+@lru_cache(maxsize=16)
+def _first_min_half(families: int) -> FloatArray:
+    """Smallest half-widths of the shaft harmonics' windows (½ line: the nearest line) and of the families'
+    fundamentals (1 line: the two lines around a centre between lines), in one search's window order."""
+    out = np.concatenate([np.full(SHAFT_HARMONICS, 0.5), np.full(families, 1.0)])
+    out.flags.writeable = False
+    return out
 
 
 def _join(fund: LineSearch, rest: LineSearch, families: int, slots: int) -> LineSearch:
