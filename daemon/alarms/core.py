@@ -739,8 +739,11 @@ class AlarmCore:
         """Announce a source's data path lost (once): its points' alarms turn stale, no sensor fault is raised."""
         st = self.source_states.get(name, SourceState())
         if st.down:
-            if st.silent and not silent:  # a silent source now lost its connection too: no new announcement
-                self.source_states[name] = eff.sources[name] = replace(st, reason=reason, silent=False)
+            if st.silent and not silent:
+                # A silent source now lost its connection too: no new announcement, only the reason changes.  It
+                # stays silent — down for lack of data — so a reconnect is not its return: data flowing is
+                # (one down and one up over the whole episode, across a restart as well).
+                self.source_states[name] = eff.sources[name] = replace(st, reason=reason)
             return
         pids = self.sources_of.get(name, [])
         visible: list[dict[str, Any]] = []

@@ -103,8 +103,9 @@ class SourceState:
     """A source's data path as the alarm layer last announced it: ``up`` (or never announced) or ``down``.
 
     ``since_s``: wall-clock time of the announced change; ``reason``: why it is down (``connection lost``, ``not
-    reachable since start``, ``connected, but none of its points delivers data``); ``silent``: down although the
-    connection is up (no point delivers).
+    reachable since start``, ``connected, but none of its points delivers data``); ``silent``: it went down for
+    lack of data (connected, no point delivering), so its return is its data flowing again, never a connection
+    coming back — also after the connection was lost meanwhile (``reason`` then says so) or the daemon restarted.
     """
 
     down: bool = False
