@@ -196,11 +196,17 @@ def integration_coefficients(fs_hz: float, n_samples: int, stop: int) -> Complex
 
 
 def _gather(spec: FloatArray, idx: IntArray) -> FloatArray:
-    """``spec[row, idx[row, ...]]`` for every row (``idx`` shape (channels, ...), already in range)."""
-    c = spec.shape[0]
-    rows = np.arange(c).reshape((c,) + (1,) * (idx.ndim - 1))
-    out: FloatArray = spec[rows, idx]
+    """``spec[row, idx[row, ...]]`` for every row (``idx`` shape (channels, ...), already in range): one ``take``
+    on the flattened array, several times cheaper than indexing with two broadcast index arrays."""
+    c, k = spec.shape
+    if c > 1:
+        idx = idx + np.arange(0, c * k, k).reshape((c,) + (1,) * (idx.ndim - 1))
+    out: FloatArray = spec.ravel().take(idx)
     return out
+
+
+_NEIGHBOURS = np.arange(-1, 2)
+_NEIGHBOURS.flags.writeable = False
 
 
 def _windows(k: int, lo: IntArray, hi: IntArray) -> tuple[IntArray, npt.NDArray[np.bool_]]:
@@ -398,29 +404,34 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     # a quarter as strong — the winner may be the 2× or 3× of a misaligned machine at that speed.  Inside the
     # speed range the spectrum alone cannot tell them apart (a narrower range can).
     # (the four readings at once: one window search and one median over (channels, 4) windows)
-    m_ = np.array([2.0, 3.0, 0.5, 1.0 / 3.0])
-    share_ = np.array([SPEED_HARMONIC_SHARE, SPEED_HARMONIC_SHARE, SPEED_SUBHARMONIC_SHARE, SPEED_SUBHARMONIC_SHARE])
-    prominence_ = np.array([SPEED_MIN_PROMINENCE, SPEED_MIN_PROMINENCE, SPEED_RELATED_PROMINENCE,
-                            SPEED_RELATED_PROMINENCE])
-    f_m = m_ * f_w[:, None]  # (channels, 4)
-    with np.errstate(invalid="ignore"):
-        b_m = np.minimum(np.maximum(np.rint(f_m / df_hz), 2), k - 3).astype(np.intp)
-    p_m = np.minimum(np.maximum(window_argmax(acc, b_m - 1, b_m + 1), 1), k - 2)
-    span_m = np.maximum(np.rint(0.25 * p_m).astype(np.intp), 8)
-    floor_m = masked_median(acc, p_m - span_m, p_m + span_m, p_m - 2, p_m + 2)
-    clear_m = (_gather(acc, p_m) >= prominence_ * floor_m) & (_gather(amp3, p_m) >= share_ * a_w[:, None])
+    # (the four readings at once, with the winner's 1× line and its harmonics 2× and 3× that refine it below: one
+    # window search and one median over (channels, 5) windows)
+    f_r = f_w[:, None] * _READINGS  # (channels, 5): 1×, 2×, 3×, 1/2×, 1/3× the winner
+    p_r, f_ref, a_ref, floor_ref = _refined_lines(acc, f_r, df_hz)
+    f_m = f_r[:, 1:]
+    clear_m = (a_ref[:, 1:] >= _READING_PROMINENCE * floor_ref[:, 1:]) & \
+        (_gather(amp3, p_r[:, 1:]) >= _READING_SHARE * a_w[:, None])
     in_range = (f_m >= speed_range_hz[0]) & (f_m <= speed_range_hz[1])
     quality = np.where((clear_m & in_range).any(axis=-1), 0.0, quality)
     any_valid = valid[rows, first]
     quality = np.where(any_valid, quality, np.nan)
     with np.errstate(invalid="ignore"):
         ok = any_valid & (quality >= SPEED_MIN_QUALITY)
-    refined, precise = _harmonic_refinement(acc, f_w, df_hz, harmonics, tolerance)
+    h = min(harmonics, 3)
+    refined, precise = _harmonic_refinement(f_w, f_ref[:, :h], a_ref[:, :h], floor_ref[:, :h], df_hz, tolerance)
     out: FloatArray = np.where(ok & precise, refined, np.nan)
     return out, quality
 
 
 _RELATED = np.array([1.0, 2.0, 3.0, 4.0])  # frequency ratios of harmonically related candidates
+_READINGS = np.array([1.0, 2.0, 3.0, 0.5, 1.0 / 3.0])  # the winner's 1× and harmonics, then its sub-harmonics
+# (for the readings after the 1×: a clear line needs this prominence over its floor and this share of the 1×)
+_READING_PROMINENCE = np.array([SPEED_MIN_PROMINENCE, SPEED_MIN_PROMINENCE, SPEED_RELATED_PROMINENCE,
+                                SPEED_RELATED_PROMINENCE])
+_READING_SHARE = np.array([SPEED_HARMONIC_SHARE, SPEED_HARMONIC_SHARE, SPEED_SUBHARMONIC_SHARE,
+                           SPEED_SUBHARMONIC_SHARE])
+for _a in (_READINGS, _READING_PROMINENCE, _READING_SHARE):
+    _a.flags.writeable = False
 _RELATED_TOL = SPEED_RELATED_TOLERANCE * _RELATED
 _RELATED.flags.writeable = False
 _RELATED_TOL.flags.writeable = False
@@ -439,14 +450,16 @@ def _speed_candidates(lo_hz: float, hi_hz: float, df_hz: float, k: int,
     return cand, at, between
 
 
-def _refined_lines(acc: FloatArray, f_hz: FloatArray, df_hz: float) -> tuple[FloatArray, FloatArray, FloatArray]:
-    """Hann-interpolated frequency of the largest line within ±1 line of each ``f_hz`` (shape (channels, L)),
-    its amplitude and the median amplitude around it (± 25 %, at least ± 8 lines, the line's ± 2 lines left
-    out); each of shape (channels, L)."""
+def _refined_lines(acc: FloatArray, f_hz: FloatArray,
+                   df_hz: float) -> tuple[IntArray, FloatArray, FloatArray, FloatArray]:
+    """The largest line within ±1 line of each ``f_hz`` (shape (channels, L), finite): its index, its
+    Hann-interpolated frequency, its amplitude and the median amplitude around it (± 25 %, at least ± 8 lines, the
+    line's ± 2 lines left out); each of shape (channels, L)."""
     k = acc.shape[1]
     b = np.minimum(np.maximum(np.rint(f_hz / df_hz).astype(np.intp), 2), k - 3)
     p = np.minimum(np.maximum(window_argmax(acc, b - 1, b + 1), 1), k - 2)
-    left, mid, right = _gather(acc, p - 1), _gather(acc, p), _gather(acc, p + 1)
+    three = _gather(acc, p[..., None] + _NEIGHBOURS)
+    left, mid, right = three[..., 0], three[..., 1], three[..., 2]
     side = np.where(right >= left, 1.0, -1.0)
     with np.errstate(divide="ignore", invalid="ignore"):
         alpha = np.maximum(left, right) / mid
@@ -454,12 +467,13 @@ def _refined_lines(acc: FloatArray, f_hz: FloatArray, df_hz: float) -> tuple[Flo
     delta = np.where(np.isfinite(delta), np.minimum(np.maximum(delta, -0.5), 0.5), 0.0)
     span = np.maximum(np.rint(0.25 * p).astype(np.intp), 8)
     floor = masked_median(acc, p - span, p + span, p - 2, p + 2)
-    return (p + delta) * df_hz, mid, floor
+    return p, (p + delta) * df_hz, mid, floor
 
 
-def _harmonic_refinement(acc: FloatArray, f_hz: FloatArray, df_hz: float, harmonics: int,
-                         tolerance: float) -> tuple[FloatArray, npt.NDArray[np.bool_]]:
-    """Refine estimates ``f_hz`` with their clear harmonics (2×, 3×), and say whether each is precise.
+def _harmonic_refinement(f_hz: FloatArray, f_all: FloatArray, a_all: FloatArray, floor_all: FloatArray,
+                         df_hz: float, tolerance: float) -> tuple[FloatArray, npt.NDArray[np.bool_]]:
+    """Refine estimates ``f_hz`` (finite, shape (channels,)) with their clear harmonics, and say whether each is
+    precise; ``f_all``, ``a_all``, ``floor_all`` (channels, H) are :func:`_refined_lines` at 1× … H× ``f_hz``.
 
     A harmonic h reads the speed to 1/h of its interpolation error, where the 1× line alone can be pulled by up to
     half a line by a neighbouring line; the readings are averaged with inverse-variance weights (h × the line's
@@ -469,8 +483,7 @@ def _harmonic_refinement(acc: FloatArray, f_hz: FloatArray, df_hz: float, harmon
     within the tolerance.
     """
     out = np.where(np.isfinite(f_hz), f_hz, 0.0)
-    hs = np.arange(1, min(harmonics, 3) + 1, dtype=np.float64)  # 1× and the harmonics, in one search
-    f_all, a_all, floor_all = _refined_lines(acc, out[:, None] * hs, df_hz)
+    hs = np.arange(1, f_all.shape[1] + 1, dtype=np.float64)
     a1, floor1 = a_all[:, 0], floor_all[:, 0]
     # inverse-variance weights: the interpolation error of harmonic h, read as a speed, is ∝ 1 / (h × its SNR)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # a constant record: no line, no floor
