@@ -581,8 +581,7 @@ def _family_results(fam: FamilySearch, shaft_hz: FloatArray, mult: FloatArray,
     thr = fam.part("threshold")
     fits = fam.part("fits")
     found = index >= 0
-    with np.errstate(invalid="ignore"):
-        counted = found & (stat >= thr)
+    counted = found & (stat >= thr)  # (NaN compares False, silently)
     n_sb = len(SIDEBAND_ORDERS)
     harmonics = counted[..., : fam.slots - n_sb].sum(axis=-1).tolist()
     sidebands = counted[..., fam.slots - n_sb :].sum(axis=-1).tolist()

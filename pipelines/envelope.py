@@ -130,6 +130,8 @@ for _a in (_LEVEL_ABOVE_RANK, _LEVEL_OFFSET):
 _TINY = 1e-300
 _SHAFT_ORDERS = np.arange(1, SHAFT_HARMONICS + 1, dtype=np.float64)
 _SHAFT_ORDERS.flags.writeable = False
+_NEIGHBOURS = np.arange(-1, 2)
+_NEIGHBOURS.flags.writeable = False
 
 
 def level_headroom() -> int:
@@ -285,8 +287,7 @@ class LineSearch:
     @property
     def found(self) -> BoolArray:
         """A significant local maximum: the line counts."""
-        with np.errstate(invalid="ignore"):
-            out: BoolArray = (self.index >= 0) & (self.statistic >= self.threshold)
+        out: BoolArray = (self.index >= 0) & (self.statistic >= self.threshold)  # (NaN compares False, silently)
         return out
 
 
@@ -381,10 +382,11 @@ class _Scan:
 
     def search(self, local: BoolArray) -> LineSearch:
         """Each window's largest line among ``local`` (shape (channels, windows, width)) and its statistic."""
-        best = np.where(local, self.values, -np.inf).argmax(axis=-1)
+        admitted = np.where(local, self.values, -np.inf)
+        best = admitted.argmax(axis=-1)
         has = local.any(axis=-1) & self.fits
         peak = self.lo + best
-        value = np.take_along_axis(self.values, best[..., None], axis=-1)[..., 0]
+        value = admitted.max(axis=-1)  # (the line at ``peak`` where ``has``)
         with np.errstate(divide="ignore", invalid="ignore"):
             stat = np.where(has, value / np.maximum(self.level, _TINY), np.nan)
         return LineSearch(index=np.where(has, peak, -1), statistic=stat, threshold=self.thr, fits=self.fits,
@@ -524,11 +526,10 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     # 4. verdict: a significant fundamental with enough modulation depth
     significant = found[..., 0]
     k1i = np.where(has, fund.index, 0)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        depth = np.where(has, 4.0 * np.sqrt(_gather(ses, k1i)) / ses_mean_line[:, None], np.nan)
-    nbr = np.minimum(np.maximum(k1i[..., None] + np.arange(-1, 2), 0), k - 1)
+    nbr = np.minimum(np.maximum(k1i[..., None] + _NEIGHBOURS, 0), k - 1)
     amp = np.where(has, _gather(amp_g, nbr).max(axis=-1), np.nan)
     with np.errstate(divide="ignore", invalid="ignore"):
+        depth = np.where(has, 4.0 * np.sqrt(_gather(ses, k1i)) / ses_mean_line[:, None], np.nan)
         # the depth the line's signal part surely has: its noise part (a complex Gaussian of power ``level``,
         # ``ses / T``) subtracted at DEPTH_NOISE_RMS times its r.m.s.
         sure = depth * (1.0 - DEPTH_NOISE_RMS / np.sqrt(np.where(has, fund.statistic, np.inf)))
@@ -600,16 +601,31 @@ def _modulation_explains(index: IntArray, found: BoolArray, significant: BoolArr
     carried &= ~np.eye(nf, dtype=bool)[None] & significant[:, None, :] & found[:, :, None, 0]
     k_b = index[:, :, 0]
     explained = np.zeros((c, nf, nf, harmonics), dtype=bool)
-    for h in range(1, harmonics + 1):
-        k_a = index[:, :, h - 1]  # slot 0 is the fundamental, slot h − 1 harmonic h
-        for j, order in enumerate(SIDEBAND_ORDERS):
-            if abs(order) != h:
-                continue
-            sb = index[:, :, harmonics + j]
-            spacing = np.where(found[:, :, harmonics + j] & (k_b >= 0), np.abs(sb - k_b), -10)  # (c, B)
-            explained[..., h - 1] |= found[:, :, None, h - 1] & (np.abs(spacing[:, None, :] - k_a[:, :, None]) <= 1)
+    h_slot, sb_slot, h_with, starts = _sideband_pairs(harmonics)
+    if h_slot.size:
+        # every pair (harmonic h of A, sideband ± h of B) at once: slot 0 is the fundamental, slot h − 1 harmonic h
+        spacing = np.where(found[:, :, sb_slot] & (k_b >= 0)[..., None],
+                           np.abs(index[:, :, sb_slot] - k_b[..., None]), -10)  # (c, B, pairs)
+        hit = found[:, :, None, h_slot] & (np.abs(spacing[:, None] - index[:, :, None, h_slot]) <= 1)  # (c, A, B, …)
+        explained[..., h_with] = np.logical_or.reduceat(hit, starts, axis=-1)
     own = (found[:, :, None, :harmonics] & ~explained).any(axis=-1) | found[:, :, None, harmonics:].any(axis=-1)
     out: BoolArray = np.asarray(carried & explained[..., 0] & ~own)
+    return out
+
+
+@lru_cache(maxsize=16)
+def _sideband_pairs(harmonics: int) -> tuple[IntArray, IntArray, IntArray, IntArray]:
+    """The (harmonic, sideband) slot pairs of :func:`_modulation_explains` — harmonic h with the sidebands of order
+    ± h — grouped by harmonic: each pair's harmonic slot and sideband slot, the harmonics (slot numbers) that have
+    pairs and where each one's pairs start."""
+    pairs = [(h - 1, harmonics + j) for h in range(1, harmonics + 1) for j, order in enumerate(SIDEBAND_ORDERS)
+             if abs(order) == h]
+    h_slot = np.array([p[0] for p in pairs], dtype=np.intp)
+    sb_slot = np.array([p[1] for p in pairs], dtype=np.intp)
+    h_with, starts = np.unique(h_slot, return_index=True)
+    out = (h_slot, sb_slot, h_with.astype(np.intp), starts.astype(np.intp))
+    for a in out:
+        a.flags.writeable = False
     return out
 
 

@@ -415,8 +415,7 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     quality = np.where((clear_m & in_range).any(axis=-1), 0.0, quality)
     any_valid = valid[rows, first]
     quality = np.where(any_valid, quality, np.nan)
-    with np.errstate(invalid="ignore"):
-        ok = any_valid & (quality >= SPEED_MIN_QUALITY)
+    ok = any_valid & (quality >= SPEED_MIN_QUALITY)  # (NaN compares False, silently)
     h = min(harmonics, 3)
     refined, precise = _harmonic_refinement(f_w, f_ref[:, :h], a_ref[:, :h], floor_ref[:, :h], df_hz, tolerance)
     out: FloatArray = np.where(ok & precise, refined, np.nan)
@@ -485,27 +484,24 @@ def _harmonic_refinement(f_hz: FloatArray, f_all: FloatArray, a_all: FloatArray,
     out = np.where(np.isfinite(f_hz), f_hz, 0.0)
     hs = np.arange(1, f_all.shape[1] + 1, dtype=np.float64)
     a1, floor1 = a_all[:, 0], floor_all[:, 0]
-    # inverse-variance weights: the interpolation error of harmonic h, read as a speed, is ∝ 1 / (h × its SNR)
-    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # a constant record: no line, no floor
-        weight = (a1 / np.maximum(floor1, 1e-300)) ** 2
-    total = weight * out
     agree_all = np.ones(out.shape, dtype=bool)
     checked = np.zeros(out.shape, dtype=bool)
-    for j in range(1, hs.size):
-        h = float(hs[j])
-        f_h, a_h, floor_h = f_all[:, j], a_all[:, j], floor_all[:, j]
-        clear = (a_h > 0) & (a_h >= SPEED_MIN_PROMINENCE * floor_h) & (np.abs(f_h - h * out) <= df_hz) & (out > 0)
-        with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # a constant record: no line, no floor
+        # inverse-variance weights: the interpolation error of harmonic h, read as a speed, is ∝ 1 / (h × its SNR)
+        weight = (a1 / np.maximum(floor1, 1e-300)) ** 2
+        total = weight * out
+        for j in range(1, hs.size):
+            h = float(hs[j])
+            f_h, a_h, floor_h = f_all[:, j], a_all[:, j], floor_all[:, j]
+            clear = (a_h > 0) & (a_h >= SPEED_MIN_PROMINENCE * floor_h) & (np.abs(f_h - h * out) <= df_hz) \
+                & (out > 0)
             agree_all &= ~clear | (np.abs(f_h / h - out) <= 0.5 * tolerance * out)
-        checked |= clear
-        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            checked |= clear
             w_h = np.where(clear, (h * a_h / np.maximum(floor_h, 1e-300)) ** 2, 0.0)
-        total = total + w_h * f_h / h
-        weight = weight + w_h
-    with np.errstate(divide="ignore", invalid="ignore"):
+            total = total + w_h * f_h / h
+            weight = weight + w_h
         best = np.where(weight > 0, total / weight, out)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        fine = 0.5 * df_hz <= tolerance * out
+    fine = 0.5 * df_hz <= tolerance * out
     precise = np.where(checked, agree_all, fine)
     result: FloatArray = np.where(np.isfinite(f_hz), best, np.nan)
     return result, precise
