@@ -145,7 +145,7 @@ class AlarmState:
     shelved_until_s: float | None = None
     shelve_reason: str | None = None
     suppressed: str | None = None
-    last_value: float | None = None
+    last_value: float | None = None  # the latest finite value given to step (suppressed or not)
     since_s: float | None = None  # when the operator-facing state last changed
     stale: str | None = None  # why no good value arrives ("source-down", "no-data"); None: data flows
 
@@ -272,10 +272,13 @@ def step(state: AlarmState, value: float, now_s: float, spec: LimitSpec,
     if state.stale is not None and math.isfinite(value):
         state = replace(state, stale=None)
     if suppress is not None:
+        # the latest finite value is kept (it is what the alarm last read, shown as such), never judged
+        seen = value if math.isfinite(value) else state.last_value
         if state.suppressed == suppress:
-            return state, tuple(out)
+            return replace(state, last_value=seen), tuple(out)
         before = state
-        after = replace(state, alert=_paused(state.alert), danger=_paused(state.danger), suppressed=suppress)
+        after = replace(state, alert=_paused(state.alert), danger=_paused(state.danger), suppressed=suppress,
+                        last_value=seen)
         # A normal (or shelved) alarm goes quietly; a visible one announces that it is now hidden.
         if isa_state(before, spec) not in ("normal", "shelved", "suppressed"):
             out.append(_transition("suppressed", before, after, spec, state.last_value, now_s, suppress))

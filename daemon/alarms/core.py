@@ -69,7 +69,7 @@ from edgevib.pipelines.alarm import (
     unshelve,
 )
 from edgevib.pipelines.health import SensorHealth
-from edgevib.pipelines.machine_state import MachineState, MachineStateSpec
+from edgevib.pipelines.machine_state import MACHINE_STATES, MachineState, MachineStateSpec
 
 __all__ = ["AlarmCore", "AlarmSnapshot", "Capture", "Command", "Effects", "EventOut", "Frames", "Now",
            "SourceChange", "Tick", "advice_text", "decide", "trend_slope_per_h"]
@@ -256,6 +256,7 @@ class AlarmSnapshot:
     stale: Mapping[str, str]
     suppressed: Mapping[str, str | None]
     machine_states: Mapping[str, MachineState]
+    last_machine_states: Mapping[str, MachineState]
     source_states: Mapping[str, SourceState]
     last_frame: Mapping[str, float]
     events_total: Mapping[str, int]
@@ -350,7 +351,10 @@ class AlarmCore:
         # its own from the same evidence (a point with a sensor fault does not vote).
         self.own_machines = MachineTracker(config, healthy=self.point_healthy)
         self.machine_states: dict[str, MachineState] = {}
+        # the state database's last known machine states (until the machine's frames judge it again)
+        self.last_machine_states: dict[str, MachineState] = {}
         self.last_frame: dict[str, float] = {}   # point -> latest frame time (measurement timeline)
+        self.restored_frames: set[str] = set()  # points whose latest frame is from before the restart
         self.last_seen: dict[str, float] = {}  # point -> monotonic arrival time of its latest frame
         self.suppressed: dict[str, str | None] = {}
         self.events_total: dict[str, int] = {}
@@ -376,6 +380,7 @@ class AlarmCore:
         for (pid, _), a in self.alarms.items():
             if a.stale is not None:
                 self.stale.setdefault(pid, a.stale)
+        self._restore_last_known()
         self.specs = {key: limit_spec(lim, self.baselines.get(key)) for key, lim in self.limits.items()}
         active = sum(1 for k, a in self.alarms.items() if display_severity(a, self.specs[k]) > 0)
         if alarms:
@@ -383,6 +388,25 @@ class AlarmCore:
                     sensor_faults=sum(1 for s in self.sensors.values() if s.fault),
                     sources_down=[n for n, st in self.source_states.items() if st.down])
         return eff
+
+    def _restore_last_known(self) -> None:
+        """What the views showed before the restart while no data flows: each alarm's latest value, each point's
+        latest frame time, each machine's state at its latest frame (from the persisted alarm and sensor rows)."""
+        for key, a in self.alarms.items():
+            if a.last_value is not None and math.isfinite(a.last_value):
+                self.values.setdefault(key, a.last_value)
+        latest: dict[str, tuple[float, SensorState]] = {}
+        for pid, s in self.sensors.items():
+            if s.last_frame_s is None or pid in self.last_frame:
+                continue
+            self.last_frame[pid] = s.last_frame_s
+            self.restored_frames.add(pid)
+            machine = self.points[pid].machine
+            if s.machine_state in MACHINE_STATES and (machine not in latest or s.last_frame_s > latest[machine][0]):
+                latest[machine] = (s.last_frame_s, s)
+        for machine, (t_s, s) in latest.items():
+            self.last_machine_states[machine] = MachineState(state=s.machine_state,  # type: ignore[arg-type]
+                                                             since_s=s.machine_since_s, last_s=t_s)
 
     def snapshot(self) -> AlarmSnapshot:
         """The state for the views (copies of the core's tables)."""
@@ -393,7 +417,8 @@ class AlarmCore:
             machine_specs=mp(self.own_machines.specs), alarms=mp(dict(self.alarms)), specs=mp(dict(self.specs)),
             values=mp(dict(self.values)), baselines=mp(dict(self.baselines)), sensors=mp(dict(self.sensors)),
             stale=mp(dict(self.stale)), suppressed=mp(dict(self.suppressed)),
-            machine_states=mp(dict(self.machine_states)), source_states=mp(dict(self.source_states)),
+            machine_states=mp(dict(self.machine_states)), last_machine_states=mp(dict(self.last_machine_states)),
+            source_states=mp(dict(self.source_states)),
             last_frame=mp(dict(self.last_frame)), events_total=mp(dict(self.events_total)))
 
     def point_healthy(self, point: str) -> bool:
@@ -435,6 +460,7 @@ class AlarmCore:
     def _frame(self, r: FrameResult, h: SensorHealth | None, now: Now, eff: Effects) -> None:
         pid, t_s = r.point_id, r.t_end_ns / 1e9
         self.last_frame[pid] = t_s
+        self.restored_frames.discard(pid)
         source = self.points[pid].source
         if self.source_states.get(source, SourceState()).down and self._connected(source):
             self._source_up(source, now.wall, "data flows again", now, eff)  # a frame of a source announced down
@@ -443,6 +469,9 @@ class AlarmCore:
             self.stale.pop(pid, None)
         sensor = self._sensor(r, h, t_s, eff)
         ms = self._machine_state(r, t_s)
+        if (sensor.machine_state, sensor.machine_since_s) != (ms.state, ms.since_s):  # kept for a restart
+            sensor = replace(sensor, machine_state=ms.state, machine_since_s=ms.since_s)
+            self.sensors[pid] = eff.sensors[pid] = sensor
         reason: str | None = "sensor-fault" if sensor.fault is not None else SUPPRESSION.get(ms.state)
         self.suppressed[pid] = reason
         for listener in self.frame_listeners:
@@ -526,9 +555,12 @@ class AlarmCore:
         its state is unknown and ``last_machine_state`` the last one judged)."""
         p = self.points.get(point)
         ms = self.machine_states.get(machine)
+        stale = machine_stale(self.machine_points, self.stale, machine)
+        if ms is None and stale:
+            ms = self.last_machine_states.get(machine)  # judged before a restart
         d = {"site": self.settings.site, "machine": machine, "point": point, "axis": getattr(p, "axis", None),
              "machine_state": ms.state if ms is not None else "unknown"}
-        if ms is not None and machine_stale(self.machine_points, self.stale, machine):
+        if ms is not None and stale:
             d["machine_state"], d["last_machine_state"] = "unknown", ms.state
         return d
 
@@ -680,10 +712,11 @@ class AlarmCore:
         limit_s = self._no_data_s(pid)
         detail = (f"no frames for more than {limit_s:.1f} s ({self.settings.no_data_frames} frame periods) while "
                   f"other points of source {p.source!r} deliver")
-        t_ns = round(self.last_frame.get(pid, now.wall) * 1e9)
+        last = None if pid in self.restored_frames else self.last_frame.get(pid)  # a frame since start
+        t_ns = round((now.wall if last is None else last) * 1e9)
         self.stale[pid] = "no-data"
         self._sensor_event(pid, p.machine, "raised", "no-data", detail, t_ns, eff)
-        s = replace(s, fault="no-data", detail=detail, since_s=self.last_frame.get(pid), healthy_run=0)
+        s = replace(s, fault="no-data", detail=detail, since_s=last, healthy_run=0)
         self.sensors[pid] = eff.sensors[pid] = s
         self._mark_point_stale(pid, "no-data", now, eff)
         self.suppressed[pid] = "sensor-fault"
@@ -716,7 +749,7 @@ class AlarmCore:
 
         While the point is stale (its source down, its sensor silent, or since a restart before data flows) the
         time since its last frame is unknown to that timeline: the wall clock is taken, never an earlier time."""
-        if pid not in self.last_frame:
+        if pid not in self.last_frame or pid in self.restored_frames:
             return now.wall
         t = self.last_frame[pid] + max(0.0, now.mono - self.last_seen.get(pid, now.mono))
         return max(t, now.wall) if self.stale.get(pid) else t

@@ -54,7 +54,9 @@ class Baseline:
 
 @dataclass(frozen=True, slots=True)
 class SensorState:
-    """Sensor health of one point as the daemon tracks it."""
+    """Sensor health of one point as the daemon tracks it, with the time of the point's latest frame and its
+    machine's state judged then (``machine_state``, since ``machine_since_s``): what a restart shows as the last
+    known while no data flows."""
 
     fault: str | None = None
     detail: str = ""
@@ -62,6 +64,8 @@ class SensorState:
     healthy_run: int = 0
     last_frame_s: float | None = None
     relapses: int = 0  # re-raised soon after clearing: an intermittent fault needs longer to re-arm
+    machine_state: str | None = None
+    machine_since_s: float | None = None
 
 
 _ENCODERS: dict[type, Callable[[Any], dict[str, Any]]] = {}

@@ -38,6 +38,7 @@ def machine_view(snap: AlarmSnapshot, machine: str) -> dict[str, Any]:
     (both null otherwise)."""
     ms = snap.machine_states.get(machine) or MachineState()
     if machine_stale(snap.machine_points, snap.stale, machine):
+        ms = snap.machine_states.get(machine) or snap.last_machine_states.get(machine) or ms  # (before a restart)
         return {"state": "unknown", "since_s": None, "grace_left_s": None, "last_state": ms.state,
                 "last_since_s": ms.since_s}
     spec = snap.machine_specs.get(machine)
