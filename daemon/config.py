@@ -34,12 +34,10 @@ import math
 import os
 import re
 import tomllib
-from collections.abc import Callable, Iterator, Mapping
-from contextlib import contextmanager
-from contextvars import ContextVar
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated, Any, ClassVar, Literal, get_args, get_origin
+from typing import TYPE_CHECKING, Annotated, Any, ClassVar, Literal
 from urllib.parse import quote, urlsplit
 
 from pydantic import (
@@ -146,8 +144,6 @@ ID_CHARACTERS = "A-Z a-z 0-9 - _"
 MAX_ID_LENGTH = 128
 _ID = re.compile(r"[A-Za-z0-9_-]+")
 _VARIABLE = re.compile(r"\$\{([^}]*)\}")
-# problems found while loading that only matter where the daemon runs (see the module docstring), per parse call
-_DEFERRED: ContextVar[list[tuple[str, str, str, str]] | None] = ContextVar("edgevib_config_deferred", default=None)
 
 
 # ------------------------------------------------------------------------------------------------ secrets
@@ -188,6 +184,15 @@ class _Problem(ValueError):
         super().__init__(problem)
         self.key = key
         self.problem = problem
+
+
+class _Unknown(_Problem):
+    """A key that its table does not declare (worded with the table's place in the file by :func:`_unknown`)."""
+
+    def __init__(self, key: str, value: object, known: list[str]) -> None:
+        super().__init__(key, "unknown key")
+        self.value = value
+        self.known = known
 
 
 def _text(v: str) -> str:
@@ -319,6 +324,18 @@ class _Table(BaseModel):
 
     model_config = ConfigDict(extra="forbid", frozen=True)
 
+    @model_validator(mode="before")
+    @classmethod
+    def _known_keys(cls, data: Any) -> Any:
+        """An unknown key is the table's first problem (a misspelt required key is reported as the misspelling,
+        with the key that was meant, not as a missing key)."""
+        if isinstance(data, dict) and cls.model_config.get("extra") == "forbid":
+            known = [f.alias or n for n, f in cls.model_fields.items()]
+            for key, value in data.items():
+                if key not in known:
+                    raise _Unknown(str(key), value, known)
+        return data
+
 
 class _WithSecrets(_Table):
     """A table with secrets given as ``NAME_file`` or ``NAME_env`` (never the secret itself)."""
@@ -436,11 +453,6 @@ class MqttConnection(_WithSecrets):
     """The keys of a broker connection (an MQTT source, ``[publish.mqtt]`` and ``[feed]`` with their own url)."""
 
     _SECRETS = ("password", "key_password")
-    _CONNECTION_KEYS: ClassVar[tuple[str, ...]] = (
-        "url", "protocol", "client_id", "keepalive_s", "reconnect_min_s", "reconnect_max_s", "username",
-        "password_file", "password_env", "ca_file", "cert_file", "key_file", "key_password_file",
-        "key_password_env")
-
     url: Text | None = None
     protocol: Literal["3.1.1", "5"] = "3.1.1"
     client_id: Text = ""  # "" until loaded, then "edgevib-<site>-<name>"
@@ -587,15 +599,26 @@ SourceConfig = Annotated[MqttSourceConfig | OpcUaSourceConfig | SimulatedSourceC
 _SOURCE_TYPES = ("mqtt", "opcua", "simulated")
 
 
-def _template(value: str, allowed: tuple[str, ...]) -> str | None:
-    """Why ``value`` is not a topic template using only ``allowed`` placeholders, or None."""
+def _fill(key: str, template: str, names: tuple[str, ...], sample: str = "x") -> str:
+    """``template`` (the value of ``key``) with each of its placeholders ``names`` set to ``sample``; any other
+    placeholder is a problem of ``key``."""
     try:
-        value.format(**dict.fromkeys(allowed, "x"))
+        return template.format(**dict.fromkeys(names, sample))
     except (KeyError, IndexError, ValueError) as exc:
-        return f"template {value!r} may only use {', '.join('{' + a + '}' for a in allowed)} ({exc})"
-    if "+" in value or "#" in value:
-        return f"a topic to publish on cannot contain wildcards: {value!r}"
-    return None
+        raise _Problem(key, f"template {template!r} may only use {', '.join('{' + n + '}' for n in names)} "
+                       f"({exc})") from None
+
+
+def _check_topics(table: BaseModel, **names: tuple[str, ...]) -> None:
+    """Each topic template ``key`` of ``table`` (``""``: none) uses only its placeholders ``names[key]`` and no
+    wildcard."""
+    for key, allowed in names.items():
+        value = getattr(table, key)
+        if not value:
+            continue
+        _fill(key, value, allowed)
+        if "+" in value or "#" in value:
+            raise _Problem(key, f"a topic to publish on cannot contain wildcards: {value!r}")
 
 
 class _ReusesSource(MqttConnection):
@@ -607,7 +630,7 @@ class _ReusesSource(MqttConnection):
 
     @model_validator(mode="after")
     def _source_or_url(self) -> _ReusesSource:
-        given = [k for k in self._CONNECTION_KEYS if k in self.model_fields_set]
+        given = [k for k in MqttConnection.model_fields if k in self.model_fields_set]
         if self.source is not None and given:
             raise _Problem(given[0], "give either source (reuse its broker settings) or url and its connection "
                            "keys, not both")
@@ -617,7 +640,7 @@ class _ReusesSource(MqttConnection):
     def _without_unused_connection(self, handler: SerializerFunctionWrapHandler) -> dict[str, Any]:
         out: dict[str, Any] = handler(self)
         if self.source is not None or self.url is None:  # no connection of its own
-            for k in self._CONNECTION_KEYS:
+            for k in MqttConnection.model_fields:
                 out.pop(k, None)
         return out
 
@@ -638,12 +661,7 @@ class PublishMqttConfig(_ReusesSource):
 
     @model_validator(mode="after")
     def _publish(self) -> PublishMqttConfig:
-        problem = _template(self.topic, ("site", "machine", "point"))
-        if problem:
-            raise _Problem("topic", problem)
-        problem = _template(self.availability_topic, ("site",)) if self.availability_topic else None
-        if problem:
-            raise _Problem("availability_topic", problem)
+        _check_topics(self, topic=("site", "machine", "point"), availability_topic=("site",))
         if self.enabled and self.source is None and self.url is None:
             raise _Problem("url", "publishing needs a url or a source to reuse")
         return self
@@ -1046,34 +1064,22 @@ class FeedConfig(_ReusesSource):
 
     @model_validator(mode="after")
     def _feed(self) -> FeedConfig:
-        try:
-            source = self.event_source.format(site="quarry-lane")
-        except (KeyError, IndexError, ValueError) as exc:
-            raise _Problem("event_source", f"template {self.event_source!r} may only use {{site}} ({exc})") from None
+        source = _fill("event_source", self.event_source, ("site",), "quarry-lane")
         problem = uri_reference_problem(source)
         if problem:
             raise _Problem("event_source", f"{source!r} {problem} (CloudEvents 'source' is a URI-reference; an "
                            f"absolute URI such as \"urn:fennick:{{site}}:edgevib\" is recommended)")
         if self.dataschema:
-            try:
-                schema = self.dataschema.format(type="io.edgevib.alarm.v1.transition")
-            except (KeyError, IndexError, ValueError) as exc:
-                raise _Problem("dataschema", f"template {self.dataschema!r} may only use {{type}} ({exc})") from None
+            schema = _fill("dataschema", self.dataschema, ("type",), "io.edgevib.alarm.v1.transition")
             problem = uri_reference_problem(schema, absolute=True)
             if problem:
                 raise _Problem("dataschema", f"{schema!r} {problem} (CloudEvents 'dataschema' is a URI)")
         if self.content_mode == "binary" and self.url is not None and self.protocol != "5":
             raise _Problem("content_mode", "binary mode carries the attributes as MQTT 5 user properties: it needs "
                            "protocol = \"5\" (MQTT 3.1.1 offers structured mode only)")
-        for key, allowed in (("topic", ("site", "machine", "point")), ("state_topic", ("site", "machine", "point")),
-                             ("command_topic", ("site",)), ("response_topic", ("site",)),
-                             ("availability_topic", ("site",)), ("source_topic", ("site", "source"))):
-            value = getattr(self, key)
-            problem = _template(value, allowed) if value else None
-            if problem:
-                raise _Problem(key, problem)
-        if not self.event_source:
-            raise _Problem("event_source", "must not be empty (CloudEvents requires a source)")
+        _check_topics(self, topic=("site", "machine", "point"), state_topic=("site", "machine", "point"),
+                      command_topic=("site",), response_topic=("site",), availability_topic=("site",),
+                      source_topic=("site", "source"))
         if self.enabled and self.source is None and self.url is None and self.webhook is None:
             raise _Problem("url", "the feed needs a broker (url or source) and/or [feed.webhook]")
         return self
@@ -1297,52 +1303,18 @@ def _unknown_ref(key: str, what: str, name: str, known: Mapping[str, Any]) -> Co
                             f"{_did_you_mean(name, list(known))}")
 
 
-def _unwrap(t: Any) -> Any:
-    """The model or container type inside ``Annotated[…]`` / ``X | None``."""
-    while True:
-        if get_origin(t) is Annotated:
-            t = get_args(t)[0]
-            continue
-        args = [a for a in get_args(t) if a is not type(None)]
-        if get_origin(t) not in (list, tuple, dict) and len(args) == 1 and not isinstance(t, type):
-            t = args[0]
-            continue
-        return t
-
-
-def _fields_at(loc: tuple[int | str, ...]) -> tuple[dict[str, str], type[BaseModel] | None]:
-    """The keys (alias → field name) known at ``loc`` of the document, and the model there."""
-    t: Any = Config
-    for part in loc:
-        t = _unwrap(t)
-        if isinstance(part, int):
-            t = get_args(t)[0] if get_args(t) else Any
-        elif isinstance(t, type) and issubclass(t, BaseModel):
-            names = {f.alias or n: n for n, f in t.model_fields.items()}
-            if part not in names:
-                return {}, None
-            t = t.model_fields[names[part]].annotation
-        else:  # a union of sources: the tag names the member
-            members = [m for m in get_args(t) if isinstance(m, type) and issubclass(m, BaseModel)]
-            t = next((m for m in members if part in get_args(m.model_fields["type"].annotation)), Any)
-    t = _unwrap(t)
-    if isinstance(t, type) and issubclass(t, BaseModel):
-        return {f.alias or n: n for n, f in t.model_fields.items()}, t
-    return {}, None
-
-
 def _clean(loc: tuple[int | str, ...]) -> tuple[int | str, ...]:
     """``loc`` without the tag pydantic inserts after a source's index (``sources, 0, "mqtt", "qos"``)."""
     return tuple(p for i, p in enumerate(loc) if not (p in _SOURCE_TYPES and i > 0 and isinstance(loc[i - 1], int)))
 
 
-def _unknown(loc: tuple[int | str, ...], value: object) -> str:
-    """"unknown key" (or table, or array of tables), with the key that was probably meant."""
-    known, _ = _fields_at(loc[:-1])
-    key = str(loc[-1])
-    hint = _did_you_mean(key, list(known))
+def _unknown(loc: tuple[int | str, ...], cause: _Unknown) -> str:
+    """"unknown key" (or table, or array of tables) at ``loc`` (the table's), with the key that was probably
+    meant."""
+    key, value, known = cause.key, cause.value, cause.known
+    hint = _did_you_mean(key, known)
     if isinstance(value, dict) or (isinstance(value, list) and value and all(isinstance(x, dict) for x in value)):
-        parent = _dotted(tuple(p for p in _clean(loc[:-1]) if not isinstance(p, int)))
+        parent = _dotted(tuple(p for p in loc if not isinstance(p, int)))
         left, right = ("[[", "]]") if isinstance(value, list) else ("[", "]")
         name = f"{left}{parent + '.' if parent else ''}{key}{right}"
         if hint:
@@ -1351,17 +1323,6 @@ def _unknown(loc: tuple[int | str, ...], value: object) -> str:
         what = "array of tables" if isinstance(value, list) else "table"
         return f"unknown {what} {name}{hint or f' (known here: {chr(44).join(sorted(known)) or chr(45)})'}"
     return f"unknown key{hint}" if hint else f"unknown key (known keys here: {', '.join(sorted(known)) or 'none'})"
-
-
-def _first_error(exc: ValidationError) -> Any:
-    """The problem to report: the first, except that an unknown key beside a missing one comes first (a misspelt
-    required key is reported as the misspelling, with the key that was meant)."""
-    errors = exc.errors(include_url=False)
-    err = errors[0]
-    if err["type"] == "missing":
-        parent = tuple(err["loc"])[:-1]
-        err = next((e for e in errors if e["type"] == "extra_forbidden" and tuple(e["loc"])[:-1] == parent), err)
-    return err
 
 
 _BOUNDS = {"greater_than_equal": (">=", "ge"), "greater_than": (">", "gt"), "less_than_equal": ("<=", "le"),
@@ -1398,21 +1359,20 @@ _PROBLEMS: dict[str, Callable[[object, dict[str, Any]], str]] = {
 
 def _translate(exc: ValidationError) -> ConfigError:
     """The first problem of a validation error, in our words, with its dotted key path."""
-    err = _first_error(exc)
-    raw_loc: tuple[int | str, ...] = tuple(err["loc"])
-    loc, kind, value, ctx = _clean(raw_loc), err["type"], err.get("input"), err.get("ctx") or {}
+    err = exc.errors(include_url=False)[0]
+    loc, kind, value, ctx = _clean(tuple(err["loc"])), err["type"], err.get("input"), err.get("ctx") or {}
     problem: str = err["msg"]
     if kind in _PROBLEMS:
         problem = _PROBLEMS[kind](value, ctx)
-    elif kind == "extra_forbidden":
-        problem = _unknown(raw_loc, value)
     elif kind == "union_tag_invalid":
         loc, problem = (*loc, "type"), f"{ctx['tag']!r} is not one of {ctx['expected_tags']}"
     elif kind == "union_tag_not_found":
         loc, problem = (*loc, "type"), "required key is missing (one of 'mqtt', 'opcua', 'simulated')"
     elif kind == "value_error":
         cause = ctx.get("error")
-        if isinstance(cause, _Problem):
+        if isinstance(cause, _Unknown):
+            loc, problem = (*loc, cause.key), _unknown(loc, cause)
+        elif isinstance(cause, _Problem):
             loc, problem = (*loc, *[k for k in re.split(r"\.(?![^\[]*\])", cause.key) if k]), cause.problem
         else:
             problem = str(cause) if cause is not None else problem
@@ -1454,12 +1414,12 @@ def _resolve_path(value: str, base_dir: Path, path: str = "") -> str:
     return str(p if p.is_absolute() else (base_dir / p))
 
 
-def _missing(path: str, problem: str, written: str, resolved: str) -> None:
-    """A file that does not exist: an error now, unless it is a credential that only the unit provides."""
-    deferred = _DEFERRED.get()
+def _missing(path: str, problem: str, written: str, resolved: str, deferred: list[tuple[str, str, str, str]]) -> None:
+    """A file that does not exist: an error now, unless it is a credential that only the unit provides (then the
+    problem goes to ``deferred``: it only matters where the daemon runs, see the module docstring)."""
     _, unset = expand_path_variables(written, path)
     outside_unit = not os.environ.get("CREDENTIALS_DIRECTORY")
-    if deferred is not None and (unset or (resolved.startswith(CREDENTIALS_ROOT) and outside_unit)):
+    if unset or (resolved.startswith(CREDENTIALS_ROOT) and outside_unit):
         why = (f"${{{unset[0]}}} is not set" if unset else
                f"{CREDENTIALS_ROOT}… exists only inside the systemd unit (LoadCredential=)")
         deferred.append((path, problem, why, resolved))
@@ -1467,19 +1427,9 @@ def _missing(path: str, problem: str, written: str, resolved: str) -> None:
     raise ConfigError(path, problem)
 
 
-@contextmanager
-def _collect_deferred() -> Iterator[list[tuple[str, str, str, str]]]:
-    found: list[tuple[str, str, str, str]] = []
-    token = _DEFERRED.set(found)
-    try:
-        yield found
-    finally:
-        _DEFERRED.reset(token)
-
-
-def _files(m: BaseModel, path: str, base: Path) -> BaseModel:
-    """``m`` with every ``*_file`` key resolved against ``base`` (the file must exist, or be deferred), every
-    ``*_env`` variable checked, and the same for the tables inside it."""
+def _files(m: BaseModel, path: str, base: Path, deferred: list[tuple[str, str, str, str]]) -> BaseModel:
+    """``m`` with every ``*_file`` key resolved against ``base`` (the file must exist, or be in ``deferred``),
+    every ``*_env`` variable checked, and the same for the tables inside it."""
     update: dict[str, Any] = {}
     for name, f in type(m).model_fields.items():
         v = getattr(m, name)
@@ -1488,14 +1438,14 @@ def _files(m: BaseModel, path: str, base: Path) -> BaseModel:
             resolved = _resolve_path(v, base, key)
             if not Path(resolved).is_file():
                 what = "secret file" if name.endswith(("password_file", "token_file")) else "file"
-                _missing(key, f"{what} {resolved} does not exist", v, resolved)
+                _missing(key, f"{what} {resolved} does not exist", v, resolved, deferred)
             update[name] = resolved
         elif name.endswith("_env") and isinstance(v, str) and v not in os.environ:
             raise ConfigError(key, f"environment variable {v} is not set")
         elif isinstance(v, BaseModel):
-            update[name] = _files(v, key, base)
+            update[name] = _files(v, key, base, deferred)
         elif isinstance(v, tuple) and v and all(isinstance(x, BaseModel) for x in v):
-            update[name] = tuple(_files(x, f"{key}[{i}]", base) for i, x in enumerate(v))
+            update[name] = tuple(_files(x, f"{key}[{i}]", base, deferred) for i, x in enumerate(v))
     return m.model_copy(update=update) if update else m
 
 
@@ -1648,7 +1598,8 @@ def _resolve_machines(cfg: Config) -> tuple[MachineConfig, ...]:
 
 
 def _resolve(cfg: Config, base: Path, digest: str) -> Config:
-    cfg = _files(cfg, "", base)  # type: ignore[assignment]
+    deferred: list[tuple[str, str, str, str]] = []
+    cfg = _files(cfg, "", base, deferred)  # type: ignore[assignment]
     if cfg.view.actions and cfg.view.token is None and cfg.metrics.tls_client_ca_file is None:
         raise ConfigError("view.actions", "acknowledging and shelving from the page need authentication: set "
                           "[view] token_file (or token_env), or require client certificates with [metrics] "
@@ -1703,7 +1654,7 @@ def _resolve(cfg: Config, base: Path, digest: str) -> Config:
     cfg = cfg.model_copy(update={"all_points": tuple(points), "publish": publish, "feed": feed, "alarms": alarms,
                                  "capture": capture, "history": history})
     cfg._points = tuple(p for p in points if owns_point(p.id, shard))
-    cfg._base_dir, cfg._digest = str(base), digest
+    cfg._base_dir, cfg._digest, cfg._deferred = str(base), digest, tuple(deferred)
     return cfg
 
 
@@ -1749,10 +1700,7 @@ def parse_config(doc: Mapping[str, Any], base_dir: str | os.PathLike[str] = ".",
                  plans: bool = True) -> Config:
     """Validate a parsed TOML document; relative file paths resolve against ``base_dir``.  ``plans=False`` skips
     the analysis-plan and alarm-limit checks that need the numerical core."""
-    cfg = validate_document(doc)
-    with _collect_deferred() as deferred:
-        cfg = _resolve(cfg, Path(base_dir), digest)
-    cfg._deferred = tuple(deferred)
+    cfg = _resolve(validate_document(doc), Path(base_dir), digest)
     if plans:
         cfg._plans = _check_plans(cfg)
         _ = cfg.alarm_settings  # resolve the alarm layer's limits now: their errors are the file's errors

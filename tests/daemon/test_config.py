@@ -68,6 +68,9 @@ def test_minimal_config_fills_defaults() -> None:
     (lambda d: d.update(point=[{"id": "x"}]), "point", "unknown array of tables [[point]]; did you mean `[[points]]`?"),
     (lambda d: d.update(publish={"mqqt": {"enabled": False}}), "publish.mqqt",
      "unknown table [publish.mqqt]; did you mean `[publish.mqtt]`?"),
+    # a limit table (one per indicator, under a table of free names) knows its keys too
+    (lambda d: d["points"][0].update(limits={"crest_factor": {"alert": 5.0, "danegr": 8.0}}),
+     "points[0].limits.crest_factor.danegr", "unknown key; did you mean `danger`?"),
     (lambda d: d["sources"][0].update(type="amqp"), "sources[0].type", "is not one of"),
     (lambda d: d["sources"][0].update(keepalive_s=True), "sources[0].keepalive_s", "must be a number, got boolean"),
     (lambda d: d["sources"][0].update(keepalive_s="30"), "sources[0].keepalive_s", "must be a number, got string"),
