@@ -41,7 +41,6 @@ __all__ = [
     "LimitConfig",
     "WebhookConfig",
     "alarm_settings",
-    "default_settings",
 ]
 
 
@@ -132,8 +131,6 @@ def _point_limits(p: PointConfig, i: int, cfg: Config, defaults: LimitConfig) ->
             raise ConfigError(key, f"this point has no envelope indicators ({p.envelope_note or 'no band'})")
         if name.startswith("bearing_") and p.bearing is None:
             raise ConfigError(key, "bearing defect limits need the point's bearing geometry")
-        if name.endswith("_detected") and any(r is not None and r.kind != "absolute" for r in t.levels):
-            raise ConfigError(key, "a verdict limit takes alert = true or danger = true")
         alert, danger = t.levels
         if iso is None and any(r is not None and r.kind.startswith("iso") for r in (alert, danger)):
             level = "rule" if t.rule is not None else "alert" if alert is not None and alert.kind.startswith("iso") \
@@ -184,8 +181,3 @@ def alarm_settings(cfg: Config) -> AlarmSettings:
     return AlarmSettings(table=a, feed=feed, capture=cfg.capture, site=cfg.site.name,
                          state_dir=str(Path(cfg.site.state_dir)), limits=tuple(limits), health=health,
                          config_digest=cfg.digest)
-
-
-def default_settings(cfg: Config) -> AlarmSettings:
-    """The settings of a configuration (kept for callers that hold only the configuration)."""
-    return cfg.alarm_settings
