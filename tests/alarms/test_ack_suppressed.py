@@ -139,3 +139,29 @@ def test_a_stale_alarm_is_acknowledged_with_an_event_that_says_it_is_stale(tmp_p
     eff = plant.ack()
     assert plant.core.alarms[KEY].acked and eff.reply == {"changed": 1, "events": 1}
     assert [(e.data["transition"], e.data["stale"]) for e in eff.events] == [("acknowledged", "source-down")]
+
+
+def test_the_command_line_names_what_a_point_wide_ack_left(tmp_path: Path, capsys: pytest.CaptureFixture[str],
+                                                          monkeypatch: pytest.MonkeyPatch) -> None:
+    # `edgevib alarms ack POINT` prints the core's reply: the suppressed alarm it left, and why.
+    import edgevib.daemon.alarms.control as control
+    from edgevib.daemon.cli import main
+
+    plant = _danger_then_stopped(tmp_path)
+    sent: list[dict[str, Any]] = []
+
+    def answer(_path: Any, req: dict[str, Any], timeout_s: float = 0.0) -> dict[str, Any]:
+        sent.append(req)
+        try:
+            return {"ok": True, "result": plant.ack(req.get("indicator")).reply}
+        except CommandError as exc:
+            return {"ok": False, "error": str(exc)}
+
+    monkeypatch.setattr(control, "request", answer)
+    assert main(["alarms", "--state-dir", str(tmp_path), "ack", POINT]) == 0
+    out = capsys.readouterr().out
+    assert "ack: 0 alarm(s) changed" in out
+    assert "not acknowledged: velocity_rms_mm_s is suppressed (machine-stopped)" in out
+    assert main(["alarms", "--state-dir", str(tmp_path), "ack", POINT, "--indicator", "velocity_rms_mm_s"]) == 2
+    assert "is suppressed (machine-stopped)" in capsys.readouterr().err
+    assert [r["cmd"] for r in sent] == ["ack", "ack"]
