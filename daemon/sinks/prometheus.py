@@ -19,6 +19,7 @@ import re
 import threading
 import time
 from collections.abc import Callable, Iterable, Iterator, Mapping
+from typing import Any
 
 from aiohttp import web
 from prometheus_client import CollectorRegistry
@@ -257,39 +258,7 @@ class IndicatorCollector:
 
     def _self_metrics(self) -> Iterable[Metric]:
         s = self.stats
-        received = CounterMetricFamily("edgevib_blocks_received", "Block payloads received per source (before "
-                                       "validation; rejects are counted by reason as well).", labels=["source"])
-        for src, n in dict(s.blocks_received).items():
-            received.add_metric([src], n)
-        rejected = CounterMetricFamily("edgevib_blocks_rejected", "Blocks rejected per source and reason.",
-                                       labels=["source", "reason"])
-        for (src, reason), n in dict(s.blocks_rejected).items():
-            rejected.add_metric([src, reason], n)
-        ignored = CounterMetricFamily("edgevib_blocks_ignored", "Valid blocks ignored per source and reason "
-                                      "(other_shard: the point belongs to another instance of a shard set).",
-                                      labels=["source", "reason"])
-        for (src, reason), n in dict(s.blocks_ignored).items():
-            ignored.add_metric([src, reason], n)
-        analysed = CounterMetricFamily("edgevib_frames_analysed", "Frames analysed per point.", labels=["point"])
-        for p, n in dict(s.frames_analysed).items():
-            analysed.add_metric([p], n)
-        dropped = CounterMetricFamily("edgevib_frames_dropped", "Frames dropped (oldest first) when analysis was "
-                                      "behind, per point.", labels=["point"])
-        for p, n in dict(s.frames_dropped).items():
-            dropped.add_metric([p], n)
-        gaps = CounterMetricFamily("edgevib_stream_gaps", "Stream discontinuities (sequence gaps, time jumps, "
-                                   "device restarts) that restarted frame assembly, per point.", labels=["point"])
-        for p, n in dict(s.gaps).items():
-            gaps.add_metric([p], n)
-        errors = CounterMetricFamily("edgevib_analysis_errors", "Frames whose analysis failed, per point.",
-                                     labels=["point"])
-        for p, n in dict(s.analysis_errors).items():
-            errors.add_metric([p], n)
-        sink_dropped = CounterMetricFamily("edgevib_sink_results_dropped", "Frame results a lossy sink skipped "
-                                           "(oldest first) because it fell behind, per sink and point.",
-                                           labels=["sink", "point"])
-        for (sink, p), n in dict(s.sink_dropped).items():
-            sink_dropped.add_metric([sink, p], n)
+        counters = [_counter(name, text, labels, getattr(s, counts)) for name, text, labels, counts in _COUNTERS]
         h = s.latency
         latency = HistogramMetricFamily("edgevib_analysis_latency_seconds",
                                         "Ingest-to-metric latency: last block of a frame received to its "
@@ -299,14 +268,37 @@ class IndicatorCollector:
                                       labels=["source"])
         for src, c in dict(s.connected).items():
             connected.add_metric([src], 1.0 if c else 0.0)
-        reconnects = CounterMetricFamily("edgevib_source_reconnects", "Reconnections after a lost connection.",
-                                         labels=["source"])
-        for src, n in dict(s.reconnects).items():
-            reconnects.add_metric([src], n)
+        reconnects = _counter("edgevib_source_reconnects", "Reconnections after a lost connection.", ["source"],
+                              s.reconnects)
         info = GaugeMetricFamily("edgevib_build_info", "edgevib build information.", labels=["version"])
         info.add_metric([self.version], 1.0)
-        return [received, rejected, ignored, analysed, dropped, gaps, errors, sink_dropped, latency, connected,
-                reconnects, info]
+        return [*counters, latency, connected, reconnects, info]
+
+
+# the self-metric counters of labelled counts: (family name, help text, label names, Stats attribute)
+_COUNTERS = (
+    ("edgevib_blocks_received", "Block payloads received per source (before validation; rejects are counted by "
+     "reason as well).", ["source"], "blocks_received"),
+    ("edgevib_blocks_rejected", "Blocks rejected per source and reason.", ["source", "reason"], "blocks_rejected"),
+    ("edgevib_blocks_ignored", "Valid blocks ignored per source and reason (other_shard: the point belongs to "
+     "another instance of a shard set).", ["source", "reason"], "blocks_ignored"),
+    ("edgevib_frames_analysed", "Frames analysed per point.", ["point"], "frames_analysed"),
+    ("edgevib_frames_dropped", "Frames dropped (oldest first) when analysis was behind, per point.", ["point"],
+     "frames_dropped"),
+    ("edgevib_stream_gaps", "Stream discontinuities (sequence gaps, time jumps, device restarts) that restarted "
+     "frame assembly, per point.", ["point"], "gaps"),
+    ("edgevib_analysis_errors", "Frames whose analysis failed, per point.", ["point"], "analysis_errors"),
+    ("edgevib_sink_results_dropped", "Frame results a lossy sink skipped (oldest first) because it fell behind, "
+     "per sink and point.", ["sink", "point"], "sink_dropped"),
+)
+
+
+def _counter(name: str, text: str, labels: list[str], counts: Mapping[Any, int]) -> CounterMetricFamily:
+    """A counter family with one sample per key of ``counts`` (a label value, or a tuple of them)."""
+    family = CounterMetricFamily(name, text, labels=labels)
+    for key, n in dict(counts).items():
+        family.add_metric(list(key) if isinstance(key, tuple) else [str(key)], n)
+    return family
 
 
 class PrometheusSink:
