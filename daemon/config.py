@@ -1172,9 +1172,6 @@ class TrendConfig(_Table):
             raise _Problem("act_days", f"{self.act_days:g} days must not exceed plan_days {self.plan_days:g}")
         return self
 
-    def limit_for(self, point: str, indicator: str) -> float | None:
-        return next((lim.value for lim in self.limits if lim.point == point and lim.indicator == indicator), None)
-
 
 class Config(_Table):
     """The whole file.  ``points`` are the points this instance owns (all of them unless ``[site] shard`` says

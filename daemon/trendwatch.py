@@ -58,7 +58,6 @@ if TYPE_CHECKING:
     from edgevib.daemon.alarms.engine import AlarmLayer
 
 __all__ = [
-    "DEFAULT_TRACKED",
     "TrendSettings",
     "TrendWatch",
     "advice",
@@ -71,8 +70,6 @@ __all__ = [
 
 log = get_logger("edgevib.trend")
 
-DEFAULT_TRACKED: tuple[str, ...] = TREND_INDICATORS
-"""Series trended by default: broadband velocity and the fault-pattern indicators."""
 HISTORY_INDICATORS: tuple[str, ...] = tuple(LIMITABLE)
 """Indicators recorded in the history (every scalar indicator an alarm limit can watch), in this order."""
 _DANGER_CLASS = ("danger", "zone D", "limit")
@@ -89,7 +86,7 @@ class TrendSettings:
     """``[trend]`` resolved (see README, configuration reference)."""
 
     enabled: bool = True
-    indicators: tuple[str, ...] = DEFAULT_TRACKED
+    indicators: tuple[str, ...] = TREND_INDICATORS  # broadband velocity and the fault-pattern indicators
     window_s: float = 90 * SECONDS_PER_DAY
     min_points: int = 12
     min_span_s: float = SECONDS_PER_DAY

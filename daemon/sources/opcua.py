@@ -48,7 +48,7 @@ from collections.abc import Iterator
 from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 import numpy.typing as npt
@@ -199,33 +199,6 @@ def _application_uri(cert_file: str) -> str:
     return uris[0] if uris else _DEFAULT_APPLICATION_URI
 
 
-def _check_settings(where: str, *, endpoint: str, nodes: dict[str, NodeSpec], speed_nodes: dict[str, str] | None,
-                    mode: str, security_policy: str, security_mode: str, cert_file: str | None,
-                    key_file: str | None, source_timestamp: str, timings: dict[str, float]) -> None:
-    """Refuse settings the source cannot work with (:class:`ConfigError` naming the key)."""
-    if source_timestamp not in ("end", "start"):
-        raise ConfigError(f"{where}.source_timestamp", f"{source_timestamp!r} is not 'end' or 'start'")
-    if not endpoint.startswith("opc.tcp://"):
-        raise ConfigError(f"{where}.endpoint", f"{endpoint!r} is not an opc.tcp:// URL")
-    if mode not in ("subscribe", "poll"):
-        raise ConfigError(f"{where}.mode", f"{mode!r} is not 'subscribe' or 'poll'")
-    if security_policy not in ("None", "Basic256Sha256"):
-        raise ConfigError(f"{where}.security_policy", f"{security_policy!r} is not 'None' or 'Basic256Sha256'")
-    if security_mode not in ("Sign", "SignAndEncrypt"):
-        raise ConfigError(f"{where}.security_mode", f"{security_mode!r} is not 'Sign' or 'SignAndEncrypt'")
-    if security_policy != "None":
-        for key, path in (("cert_file", cert_file), ("key_file", key_file)):
-            if not path:
-                raise ConfigError(f"{where}.{key}", f"required with security_policy {security_policy!r}")
-    _check_nodes(where, nodes, speed_nodes)
-    for key, value in timings.items():
-        if not (math.isfinite(value) and value > 0):
-            raise ConfigError(f"{where}.{key}", f"{value!r} must be finite and > 0")
-    if timings["reconnect_max_s"] < timings["reconnect_min_s"]:
-        raise ConfigError(f"{where}.reconnect_max_s",
-                          f"{timings['reconnect_max_s']} s is below reconnect_min_s {timings['reconnect_min_s']} s")
-
-
 def _check_nodes(where: str, nodes: dict[str, NodeSpec], speed_nodes: dict[str, str] | None) -> None:
     if not nodes and not speed_nodes:
         raise ConfigError(f"{where}", "no nodes to read (neither block nor speed nodes)")
@@ -259,18 +232,16 @@ class OpcUaSource:
     """
 
     def __init__(self, *, name: str, endpoint: str, ingest: Ingest, nodes: dict[str, NodeSpec],
-                 speed_nodes: dict[str, str] | None = None, mode: str = "subscribe", poll_interval_s: float = 1.0,
-                 security_policy: str = "None", security_mode: str = "SignAndEncrypt",
+                 speed_nodes: dict[str, str] | None = None, mode: Literal["subscribe", "poll"] = "subscribe",
+                 poll_interval_s: float = 1.0, security_policy: Literal["None", "Basic256Sha256"] = "None",
+                 security_mode: Literal["Sign", "SignAndEncrypt"] = "SignAndEncrypt",
                  cert_file: str | None = None, key_file: str | None = None, server_cert_file: str | None = None,
                  username: str | None = None, password: str | None = None,
                  reconnect_min_s: float = 0.5, reconnect_max_s: float = 10.0, timeout_s: float = 5.0,
-                 source_timestamp: str = "end") -> None:
+                 source_timestamp: Literal["end", "start"] = "end") -> None:
+        # the connection settings are the configuration's (OpcUaSourceConfig checked them); the nodes are checked here
         where = f"sources.{name}"
-        _check_settings(where, endpoint=endpoint, nodes=nodes, speed_nodes=speed_nodes, mode=mode,
-                        security_policy=security_policy, security_mode=security_mode, cert_file=cert_file,
-                        key_file=key_file, source_timestamp=source_timestamp,
-                        timings={"poll_interval_s": poll_interval_s, "reconnect_min_s": reconnect_min_s,
-                                 "reconnect_max_s": reconnect_max_s, "timeout_s": timeout_s})
+        _check_nodes(where, nodes, speed_nodes)
         self._canonical = _canonical_ids(where, [*nodes, *(speed_nodes or {})])  # asyncua's spelling -> configured
         self.name = name
         self.endpoint = endpoint

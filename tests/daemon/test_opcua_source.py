@@ -423,19 +423,33 @@ async def test_basic256sha256_sign_and_encrypt_with_user_and_password(tmp_path: 
 
 
 @pytest.mark.parametrize(("kw", "path"), [
-    ({"mode": "push"}, "sources.plc.mode"),
-    ({"security_policy": "Basic128"}, "sources.plc.security_policy"),
-    ({"security_policy": "Basic256Sha256"}, "sources.plc.cert_file"),
-    ({"security_mode": "Encrypt"}, "sources.plc.security_mode"),
-    ({"endpoint": "http://127.0.0.1:4840"}, "sources.plc.endpoint"),
-    ({"reconnect_min_s": 5.0, "reconnect_max_s": 1.0}, "sources.plc.reconnect_max_s"),
-    ({"poll_interval_s": 0.0}, "sources.plc.poll_interval_s"),
+    ({"mode": "push"}, "sources[0].mode"),
+    ({"security_policy": "Basic128"}, "sources[0].security_policy"),
+    ({"security_policy": "Basic256Sha256"}, "sources[0].security_policy"),  # needs cert_file and key_file
+    ({"security_mode": "Encrypt"}, "sources[0].security_mode"),
+    ({"endpoint": "http://127.0.0.1:4840"}, "sources[0].endpoint"),
+    ({"reconnect_min_s": 5.0, "reconnect_max_s": 1.0}, "sources[0].reconnect_max_s"),
+    ({"poll_interval_s": 0.0}, "sources[0].poll_interval_s"),
+])
+def test_bad_connection_settings_are_refused_by_the_configuration(kw: dict[str, Any], path: str) -> None:
+    # the source is built from the validated [[sources]] table: the configuration names the key
+    source = {"name": "plc", "type": "opcua", "endpoint": "opc.tcp://127.0.0.1:4840/", **kw}
+    with pytest.raises(ConfigError) as info:
+        parse_config({
+            "site": {"name": "quarry-lane"}, "sources": [source],
+            "machines": [{"id": "P-101", "speed_rpm": 1480.0}],
+            "points": [{"id": "P-101-DE-H", "machine": "P-101", "source": "plc", "node": "ns=2;s=QL-P101-DE-H",
+                        "fs_hz": FS_HZ, "block_samples": N}]}, plans=False)
+    assert info.value.path == path
+
+
+@pytest.mark.parametrize(("kw", "path"), [
     ({"nodes": {"ns=2;s=a": NodeSpec("a", unit="mm/s")}}, "sources.plc.nodes['ns=2;s=a'].unit"),
     ({"nodes": {"ns=2;s=a": NodeSpec("a", fs_hz=-1.0)}}, "sources.plc.nodes['ns=2;s=a'].fs_hz"),
     ({"nodes": {"not a node id": NodeSpec("a")}}, "sources.plc.nodes['not a node id']"),
     ({"nodes": {}}, "sources.plc"),
 ])
-async def test_bad_configuration_names_the_key(kw: dict[str, Any], path: str) -> None:
+async def test_bad_nodes_name_the_key(kw: dict[str, Any], path: str) -> None:
     args: dict[str, Any] = dict(name="plc", endpoint="opc.tcp://127.0.0.1:4840/", ingest=FakeIngest(),
                                 nodes={"ns=2;s=QL-P101-DE-H": NodeSpec("QL-P101-DE-H")})
     args.update(kw)

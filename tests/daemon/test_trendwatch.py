@@ -18,7 +18,7 @@ from edgevib.daemon.alarms.sink import create_sink
 from edgevib.daemon.config import parse_config
 from edgevib.daemon.history import HistoryReader
 from edgevib.daemon.interfaces import ConfigError, FrameResult
-from edgevib.daemon.trendwatch import advice, create_trend_watch, iso_next_boundary, running_state
+from edgevib.daemon.trendwatch import advice, create_trend_watch, iso_next_boundary, running_state, trend_settings
 from edgevib.pipelines.types import FrameIndicators
 
 D = 86400.0
@@ -208,7 +208,7 @@ def test_helpers_and_configuration_errors(tmp_path: Path) -> None:
     cfg = _config(tmp_path, history={"file": "h/severity.sqlite", "max_mb": 64.0},
                   trend={"limits": [{"point": POINT, "indicator": "acceleration_peak_g", "value": 20.0}]})
     assert cfg.history.file == str(tmp_path / "h" / "severity.sqlite")
-    assert cfg.trend.limit_for(POINT, "acceleration_peak_g") == 20.0
+    assert trend_settings(cfg.trend).limit_for(POINT, "acceleration_peak_g") == 20.0
     assert create_trend_watch(_config(tmp_path, history={"enabled": False})) is None
 
 
