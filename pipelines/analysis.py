@@ -438,6 +438,7 @@ class AnalysisKernel:
         x32 = np.empty(x.shape, dtype=np.float32)
         np.subtract(x, x0, out=x32, casting="same_kind")
         spec = _fft.rfft(x32)
+        del x32  # (batch-sized arrays are let go as soon as they are used: see DEVELOPERS.md, page faults)
         # line 0 is the sum of the samples (NaN/Inf anywhere reach it)
         mean = spec[:, 0].real / n + x0[:, 0].astype(np.float64)
         if not np.isfinite(spec[:, 0]).all():
@@ -478,6 +479,14 @@ class AnalysisKernel:
         running = np.isfinite(shaft) & ~slow & (shaft > 0)
         orders = order_amplitudes_mm_s(vel_pow, np.where(running, shaft, np.nan), plan.orders, plan.order_tolerance,
                                        self._df, n)
+        fam: FamilySearch | None = None
+        if self._env and running.any():
+            z = self._demodulated(spec)
+            del spec
+            fam = self._families_of(z, np.where(running, shaft, np.nan))[3]
+            del z
+        else:
+            del spec
 
         # velocity and displacement waveforms from the band's Hann lines only (for peak and peak-to-peak): the
         # windowed waveform, divided by the window over the frame's central half, is the band-limited waveform
@@ -501,10 +510,6 @@ class AnalysisKernel:
         peaks = _refined_peaks(wave.reshape(2 * c, -1)).reshape(2, 2, c)  # (maximum, −minimum), waveform, channel
         vel_peak = np.maximum(peaks[0, 0], peaks[1, 0])  # signed: |v| would fold neighbours
         disp_pp = peaks[0, 1] + peaks[1, 1]
-
-        fam: FamilySearch | None = None
-        if self._env and running.any():
-            fam = self._families(spec, np.where(running, shaft, np.nan))[3]
 
         keys = [order_key(o) for o in plan.orders]
         shaft_l = shaft.tolist()
@@ -542,8 +547,16 @@ class AnalysisKernel:
     def _families(self, spec: npt.NDArray[np.complex64],
                   shaft_hz: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray, FamilySearch]:
         """Envelope spectra and the family search of frames whose rfft is ``spec`` (shaft NaN: not searched)."""
+        return self._families_of(self._demodulated(spec), shaft_hz)
+
+    def _demodulated(self, spec: npt.NDArray[np.complex64]) -> npt.NDArray[np.complex64]:
+        """The complex envelopes of frames whose rfft is ``spec`` (:func:`demodulate` in the plan's band)."""
         e_lo, e_hi = self._env_lines
-        z = demodulate(spec, e_lo, e_hi, self._env_m)
+        return demodulate(spec, e_lo, e_hi, self._env_m)
+
+    def _families_of(self, z: npt.NDArray[np.complex64],
+                     shaft_hz: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray, FamilySearch]:
+        """:meth:`_families` from the complex envelopes ``z`` (:meth:`_demodulated`)."""
         amp, ses, mean_line = envelope_spectra(z, self._n, self._env_stop)
         expected = shaft_hz[:, None] * self._mult[None, :]
         modulation = shaft_hz[:, None] * self._mod[None, :]
