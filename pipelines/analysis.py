@@ -556,8 +556,8 @@ class AnalysisKernel:
 
     def _families_of(self, z: npt.NDArray[np.complex64],
                      shaft_hz: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray, FamilySearch]:
-        """:meth:`_families` from the complex envelopes ``z`` (:meth:`_demodulated`)."""
-        amp, ses, mean_line = envelope_spectra(z, self._n, self._env_stop)
+        """:meth:`_families` from the complex envelopes ``z`` (:meth:`_demodulated`; its memory is reused)."""
+        amp, ses, mean_line = envelope_spectra(z, self._n, self._env_stop, overwrite=True)
         expected = shaft_hz[:, None] * self._mult[None, :]
         modulation = shaft_hz[:, None] * self._mod[None, :]
         plan = self.plan

@@ -128,6 +128,7 @@ _LEVEL_OFFSET = np.concatenate([-(GUARD_LINES + 1 + LEVEL_STEP * np.arange(_LEVE
 for _a in (_LEVEL_ABOVE_RANK, _LEVEL_OFFSET):
     _a.flags.writeable = False
 _TINY = 1e-300
+_MAGNITUDE_BLOCK = 1 << 16  # envelope magnitudes are formed in blocks of rows of about this many samples (256 kB)
 _SHAFT_ORDERS = np.arange(1, SHAFT_HARMONICS + 1, dtype=np.float64)
 _SHAFT_ORDERS.flags.writeable = False
 _NEIGHBOURS = np.arange(-1, 2)
@@ -160,8 +161,8 @@ def demodulate(spec: npt.NDArray[np.complexfloating[Any, Any]], k_lo: int, k_hi:
     return out
 
 
-def envelope_spectra(z: npt.NDArray[np.complexfloating[Any, Any]], n_samples: int,
-                     stop: int) -> tuple[FloatArray, FloatArray, FloatArray]:
+def envelope_spectra(z: npt.NDArray[np.complexfloating[Any, Any]], n_samples: int, stop: int, *,
+                     overwrite: bool = False) -> tuple[FloatArray, FloatArray, FloatArray]:
     """Envelope amplitude spectrum and squared-envelope periodogram, lines ``0 .. stop-1``, from :func:`demodulate`.
 
     A periodic Hann window is applied in the frequency domain (three taps, exact); the means are not subtracted
@@ -174,16 +175,27 @@ def envelope_spectra(z: npt.NDArray[np.complexfloating[Any, Any]], n_samples: in
     ses : ndarray, shape (channels, stop) — ``|rfft(w · |z|²)|²``, unscaled (only ratios of its lines are used)
     ses_mean_line : ndarray, shape (channels,) — ``Σ |z|²`` (line 0 of the unwindowed transform): the modulation
         depth of line k is ``4 √ses[k] / ses_mean_line`` (a Hann line of amplitude a reads a·m/4)
+
+    ``overwrite`` lets the function use ``z``'s memory (a C-contiguous ``z`` is then destroyed): a many-channel
+    batch needs no second array of its size.
     """
-    both = np.empty((2, *z.shape), dtype=z.real.dtype)  # [|z|, |z|²], formed in place
-    s = both[1]
-    np.abs(z, out=both[0])  # (hypot: one contiguous pass, several times faster than re² + im² on strided halves)
-    np.square(both[0], out=s)
+    c, m = z.shape
+    real = z.real.dtype
+    # per channel [|z|, |z|²], in z's own memory when allowed (each block of rows is read before it is written)
+    own = overwrite and z.flags.c_contiguous
+    both = z.view(real).reshape(c, 2, m) if own else np.empty((c, 2, m), dtype=real)
+    rows = max(1, _MAGNITUDE_BLOCK // m)
+    for i in range(0, c, rows):
+        j = min(c, i + rows)
+        e = np.abs(z[i:j])  # (hypot: one contiguous pass, several times faster than re² + im² on strided halves)
+        np.square(e, out=both[i:j, 1])
+        both[i:j, 0] = e
     spec = _fft.rfft(both)
-    mean_line = spec[1, :, 0].real.astype(np.float64)
-    lines = hann_lines(spec.reshape(-1, spec.shape[-1]), min(stop, z.shape[-1] // 2)).reshape(2, s.shape[0], -1)
-    amp: FloatArray = np.abs(lines[0]).astype(np.float64) * (8.0 / n_samples)
-    ses: FloatArray = (lines[1].real.astype(np.float64) ** 2 + lines[1].imag.astype(np.float64) ** 2)
+    del both
+    mean_line = spec[:, 1, 0].real.astype(np.float64)
+    lines = hann_lines(spec.reshape(-1, spec.shape[-1]), min(stop, m // 2)).reshape(c, 2, -1)
+    amp: FloatArray = np.abs(lines[:, 0]).astype(np.float64) * (8.0 / n_samples)
+    ses: FloatArray = (lines[:, 1].real.astype(np.float64) ** 2 + lines[:, 1].imag.astype(np.float64) ** 2)
     return amp, ses, mean_line
 
 
@@ -216,7 +228,7 @@ def _spectra_of_records(x_g: npt.ArrayLike, fs_hz: float, band_hz: tuple[float, 
     top = math.ceil(fmax / df) + 1
     m = min_decimated_length(k_hi - k_lo + 1, top)
     z = demodulate(_fft.rfft(x), k_lo, k_hi, m)  # line 0 (the mean) is outside the band
-    amp, ses, mean_line = envelope_spectra(z, n, top + 1)
+    amp, ses, mean_line = envelope_spectra(z, n, top + 1, overwrite=True)
     freqs: FloatArray = np.arange(amp.shape[-1]) * df
     return freqs, amp, ses, mean_line
 
