@@ -123,13 +123,6 @@ def _variables(orders: Iterable[str]) -> list[tuple[str, str, str]]:
     return out
 
 
-def _parse_listen(listen: str) -> tuple[str, int]:
-    host, port = parse_listen(listen, "publish.opcua.listen")
-    if port == 0:
-        raise ConfigError("publish.opcua.listen", "the OPC UA server needs a fixed port (1..65535), not 0")
-    return host, port
-
-
 def _points_of(points: Iterable[tuple[str, str]] | Mapping[str, Any]) -> list[tuple[str, str, tuple[str, ...]]]:
     """``(point_id, machine_id, order keys)`` from ``[(point, machine), …]`` or ``{point_id: PointConfig}``."""
     out: list[tuple[str, str, tuple[str, ...]]] = []
@@ -159,24 +152,18 @@ class OpcUaIndicatorSink:
                  points: Iterable[tuple[str, str]] | Mapping[str, Any], namespace: str = NAMESPACE_URI,
                  host: str | None = None, port: int | None = None, cert_file: str | None = None,
                  key_file: str | None = None, state_dir: str | None = None) -> None:
-        self.host, self.port = _parse_listen(listen)
+        # listen, site and ids come checked from the configuration ([publish.opcua] listen: a fixed port; ids: no
+        # '/', which separates the parts of a node id)
+        self.host, self.port = parse_listen(listen, "publish.opcua.listen")
         if host is not None:  # an already parsed listen address (host and port) takes precedence
             self.host = host
         if port is not None:
-            if not 0 < port < 65536:
-                raise ConfigError("publish.opcua.listen", f"port {port} is outside 1..65535")
             self.port = port
-        if not site or "/" in site:
-            raise ConfigError("site.name", f"{site!r} cannot name an OPC UA folder (empty or contains '/')")
         self.site = site
         self.namespace = namespace
         self.cert_file, self.key_file, self.state_dir = cert_file, key_file, state_dir
         self.severity_of: Callable[[str], int] | None = None  # the alarm layer's point severity, when it runs
         self._points = _points_of(points)
-        for pid, mid, _ in self._points:
-            if "/" in pid or "/" in mid or not pid or not mid:
-                raise ConfigError("points", f"point {pid!r} of machine {mid!r}: ids for OPC UA node ids must be "
-                                  f"non-empty and contain no '/'")
         host = f"[{self.host}]" if ":" in self.host else self.host
         self.endpoint = f"opc.tcp://{host}:{self.port}/edgevib/"
         self.idx = -1

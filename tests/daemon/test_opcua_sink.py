@@ -14,6 +14,7 @@ import pytest
 from asyncua import Client, ua
 from servers import free_port
 
+from edgevib.daemon.config import parse_config
 from edgevib.daemon.interfaces import ConfigError, FrameResult
 from edgevib.daemon.sinks.opcua import INDICATORS, NAMESPACE_URI, OpcUaIndicatorSink, node_id_string
 from edgevib.pipelines.types import FamilyResult, FrameIndicators
@@ -186,15 +187,21 @@ async def test_reconfigure_removes_and_adds_points(sink: OpcUaIndicatorSink, cli
     assert dv.StatusCode.value == ua.StatusCodes.BadNodeIdUnknown
 
 
-@pytest.mark.parametrize(("kw", "problem"), [
-    ({"listen": "127.0.0.1"}, "HOST:PORT"),
-    ({"listen": "127.0.0.1:99999"}, "outside 0..65535"),
-    ({"listen": "127.0.0.1:0"}, "fixed port"),
-    ({"site": "a/b"}, "contains '/'"),
-    ({"points": [("P/1", "P-101")]}, "contain no '/'"),
+@pytest.mark.parametrize(("change", "path", "problem"), [
+    ({"publish": {"opcua": {"enabled": True, "listen": "127.0.0.1"}}}, "publish.opcua.listen", "HOST:PORT"),
+    ({"publish": {"opcua": {"enabled": True, "listen": "127.0.0.1:99999"}}}, "publish.opcua.listen",
+     "outside 0..65535"),
+    ({"publish": {"opcua": {"enabled": True, "listen": "127.0.0.1:0"}}}, "publish.opcua.listen", "fixed port"),
+    ({"site": {"name": "a/b"}}, "site.name", "OPC UA node-id parts"),
+    ({"machines": [{"id": "P/101", "speed_rpm": 1480.0}]}, "machines[0].id", "OPC UA node-id parts"),
 ])
-def test_bad_settings_are_config_errors(kw: dict[str, Any], problem: str) -> None:
-    args: dict[str, Any] = dict(listen="127.0.0.1:4841", site=SITE, points=[("P-101-DE-H", "P-101")])
-    args.update(kw)
-    with pytest.raises(ConfigError, match=problem):
-        OpcUaIndicatorSink(**args)
+def test_bad_settings_are_refused_by_the_configuration(change: dict[str, Any], path: str, problem: str) -> None:
+    # the server is built from the validated configuration: its listen address and the ids of its node ids
+    doc: dict[str, Any] = {
+        "site": {"name": SITE}, "sources": [{"type": "simulated", "name": "sim"}],
+        "machines": [{"id": "P-101", "speed_rpm": 1480.0}],
+        "points": [{"id": "P-101-DE-H", "machine": "P-101", "source": "sim", "fs_hz": 25600.0,
+                    "block_samples": 4096}], **change}
+    with pytest.raises(ConfigError) as info:
+        parse_config(doc, plans=False)
+    assert info.value.path == path and problem in info.value.problem
