@@ -18,6 +18,7 @@ instance owns: those are ignored quietly and counted apart
 
 from __future__ import annotations
 
+import bisect
 import math
 import time
 from collections import deque
@@ -74,10 +75,7 @@ class LatencyHistogram:
 
     def observe(self, value_s: float) -> None:
         value_s = max(0.0, value_s)
-        i = 0
-        while i < len(self.buckets) and value_s > self.buckets[i]:
-            i += 1
-        self.counts[i] += 1
+        self.counts[bisect.bisect_left(self.buckets, value_s)] += 1  # the first bucket with value_s <= le
         self.sum_s += value_s
         self.count += 1
 
