@@ -71,7 +71,7 @@ from edgevib.daemon.offline import (
     read_waveform,
 )
 from edgevib.daemon.timestamps import rfc3339_utc_s
-from edgevib.daemon.trendwatch import HISTORY_INDICATORS, evaluate, frame_values, running_state
+from edgevib.daemon.trendwatch import HISTORY_INDICATORS, evaluate, frame_values, limit_lines, running_state
 from edgevib.daemon.waveform_files import read_text_waveform
 from edgevib.pipelines.analysis import analyze_frames, default_envelope_band, make_plan
 from edgevib.pipelines.conditioning import to_g
@@ -723,13 +723,7 @@ def _report(out: Path, last: dict[str, Any], frame: tuple[FrameResult, AnalysisP
 def _limit_lines(o: ReplayOptions, name: str) -> list[dict[str, Any]]:
     """The report's limit lines of a series: the ISO 20816-3 zone boundaries (velocity r.m.s., with ``--group`` and
     ``--support``) and the ``--limit`` value."""
-    unit = INDICATORS[name].unit if name in INDICATORS else ""
-    out: list[dict[str, Any]] = []
+    iso = None
     if name == "velocity_rms_mm_s" and o.group is not None and o.support is not None:
-        from edgevib.pipelines.severity import zone_boundaries_mm_s
-
-        out += [{"label": label, "value": v, "unit": unit, "kind": "iso"}
-                for label, v in zip(("A/B", "B/C", "C/D"), zone_boundaries_mm_s(o.group, o.support), strict=True)]
-    if name in o.limits:
-        out.append({"label": "limit", "value": o.limits[name], "unit": unit, "kind": "user"})
-    return out
+        iso = zone_boundaries_mm_s(o.group, o.support)
+    return limit_lines(INDICATORS[name].unit if name in INDICATORS else "", iso=iso, user=o.limits.get(name))

@@ -64,6 +64,7 @@ __all__ = [
     "evaluate",
     "frame_values",
     "iso_next_boundary",
+    "limit_lines",
     "running_state",
     "trend_settings",
 ]
@@ -150,6 +151,21 @@ def iso_next_boundary(level: float, boundaries: tuple[float, float, float]) -> t
         if level < b:
             return name, b
     return None
+
+
+def limit_lines(unit: str, *, alarm: tuple[float | None, float | None] = (None, None),
+                iso: tuple[float, float, float] | None = None, user: float | None = None) -> list[dict[str, Any]]:
+    """The limit lines of a series as ``{label, value, unit, kind}``: the alarm layer's ``alert`` and ``danger``
+    set points (kind ``alarm``), the ISO 20816-3 zone boundaries (kind ``iso``; labels ``A/B``, ``B/C``,
+    ``C/D``) and a user-given limit (kind ``user``, label ``limit``)."""
+    out = [{"label": label, "value": float(value), "unit": unit, "kind": "alarm"}
+           for label, value in zip(("alert", "danger"), alarm, strict=True) if value is not None]
+    if iso is not None:
+        out += [{"label": label, "value": value, "unit": unit, "kind": "iso"}
+                for label, value in zip(("A/B", "B/C", "C/D"), iso, strict=True)]
+    if user is not None:
+        out.append({"label": "limit", "value": user, "unit": unit, "kind": "user"})
+    return out
 
 
 def _clean(v: float | None) -> float | None:
@@ -603,26 +619,14 @@ class TrendWatch:
         return None if doc is None else dict(doc)
 
     def limit_lines(self, point: str, indicator: str) -> list[dict[str, Any]]:
-        """Read-only: every limit line of a series as ``{label, value, unit, kind}`` — the alarm layer's alert and
-        danger set points (kind ``alarm``), all ISO 20816-3 zone boundaries for velocity r.m.s. of a machine with
-        group and support (kind ``iso``; labels ``A/B``, ``B/C``, ``C/D``) and the ``[[trend.limits]]`` value
-        (kind ``user``, label ``limit``).  Unknown point: an empty list."""
+        """Read-only: every limit line of a series (:func:`limit_lines`): the alarm layer's alert and danger set
+        points, all ISO 20816-3 zone boundaries for velocity r.m.s. of a machine with group and support and the
+        ``[[trend.limits]]`` value.  Unknown point: an empty list."""
         if point not in self.points:
             return []
-        unit = INDICATORS[indicator].unit if indicator in INDICATORS else ""
-        out: list[dict[str, Any]] = []
         alert, danger, _ = self._set_points(point, indicator)
-        for label, value in (("alert", alert), ("danger", danger)):
-            if value is not None:
-                out.append({"label": label, "value": float(value), "unit": unit, "kind": "alarm"})
-        iso = self._iso(point, indicator)
-        if iso is not None:
-            for label, value in zip(("A/B", "B/C", "C/D"), iso, strict=True):
-                out.append({"label": label, "value": value, "unit": unit, "kind": "iso"})
-        user = self.settings.limit_for(point, indicator)
-        if user is not None:
-            out.append({"label": "limit", "value": user, "unit": unit, "kind": "user"})
-        return out
+        return limit_lines(INDICATORS[indicator].unit if indicator in INDICATORS else "", alarm=(alert, danger),
+                           iso=self._iso(point, indicator), user=self.settings.limit_for(point, indicator))
 
     def projections(self, point: str | None = None) -> dict[str, dict[str, Any]]:
         """Read-only: indicator → latest trend document, of one point (or ``"point/indicator"`` keys for all)."""

@@ -782,18 +782,15 @@ class ViewService:
         watch = self.daemon.trend_watch
         if watch is not None:
             return list(watch.limit_lines(p.id, indicator))
-        unit = indicator_unit(indicator)
-        out = [{"label": k, "value": limits[k], "unit": unit, "kind": "alarm"} for k in ("alert", "danger")
-               if limits.get(k) is not None]
-        m = self.daemon.config.machine(p.machine)
-        if indicator == "velocity_rms_mm_s" and m.group is not None and m.support is not None:
-            from edgevib.pipelines.severity import zone_boundaries_mm_s
+        from edgevib.daemon.trendwatch import limit_lines
+        from edgevib.pipelines.severity import zone_boundaries_mm_s
 
+        m = self.daemon.config.machine(p.machine)
+        iso = None
+        if indicator == "velocity_rms_mm_s" and m.group is not None and m.support is not None:
             with contextlib.suppress(PipelineError):
-                out += [{"label": label, "value": v, "unit": unit, "kind": "iso"}
-                        for label, v in zip(("A/B", "B/C", "C/D"), zone_boundaries_mm_s(m.group, m.support),
-                                            strict=True)]
-        return out
+                iso = zone_boundaries_mm_s(m.group, m.support)
+        return limit_lines(indicator_unit(indicator), alarm=(limits.get("alert"), limits.get("danger")), iso=iso)
 
     async def _history_trend(self, point: str, indicator: str, since: float, limit: int) -> dict[str, Any] | None:
         """The series from the daemon's severity history with the trend layer's projection, when it keeps one."""
