@@ -50,7 +50,7 @@ import dataclasses
 import math
 import time
 from collections import deque
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, assert_never
@@ -85,9 +85,12 @@ from edgevib.pipelines.health import HealthSpec, SensorHealth
 from edgevib.pipelines.types import AnalysisPlan, FrameIndicators, PipelineError
 
 if TYPE_CHECKING:
+    from prometheus_client import CollectorRegistry
+
+    from edgevib.daemon.alarms.engine import AlarmLayer
     from edgevib.daemon.web.api import ViewService
 
-__all__ = ["LOSSLESS_BACKLOG", "SINK_BACKLOG_PER_POINT", "AnalyzeFn", "Daemon", "SinkChannel", "run"]
+__all__ = ["LOSSLESS_BACKLOG", "SINK_BACKLOG_PER_POINT", "AnalyzeFn", "Daemon", "SinkChannel", "run", "wire_alarms"]
 
 AnalyzeFn = Callable[[npt.NDArray[np.float32], AnalysisPlan, "npt.NDArray[np.float64] | None"],
                      list[FrameIndicators]]
@@ -355,20 +358,17 @@ class Daemon:
                                        cert_file=pc.cert_file, key_file=pc.key_file, state_dir=config.site.state_dir)
             self.add_sink(opcua)
             self._reconfigurable.append(opcua)
-        from edgevib.daemon.alarms.sink import create_sink
-
-        alarms = create_sink(config, self.metrics.registry)
+        # source down/up: one source event, its points stale, no sensor faults
+        alarms = wire_alarms(config, self.metrics.registry, block_arrival=self._block_arrival_s,
+                             config_refusal=self.ingest.config_refusal, tracks_sources=True,
+                             commands={"select_band": lambda req: self.request_band_selection(req.get("point"))})
         if alarms is not None:
-            alarms.extra_commands["select_band"] = lambda req: self.request_band_selection(req.get("point"))
             self.add_lossless_sink(alarms)
             self._reconfigurable.append(alarms)
             self.alarm_view = alarms
             self.machines.healthy = alarms.point_healthy  # a point with a sensor fault does not vote
-            alarms.tracks_sources = True  # source down/up: one source event, its points stale, no sensor faults
             self.metrics.collector.machine_stale = alarms.machine_stale  # the metric's "unknown" as the alarms'
             self.ingest.connection_listeners.append(alarms.on_source)
-            alarms.block_arrival = self._block_arrival_s
-            alarms.config_refusal = self.ingest.config_refusal
             if config.publish_opcua.enabled:  # the OPC UA namespace shows each point's alarm state as an enumeration
                 opcua.severity_of = alarms.point_severity
         from edgevib.daemon.trendwatch import create_trend_watch
@@ -857,6 +857,40 @@ def make_source(cfg: SourceConfig, config: Config, ingest: BlockIngest) -> Sourc
             reconnect_min_s=cfg.reconnect_min_s, reconnect_max_s=cfg.reconnect_max_s)
         return source
     assert_never(cfg)
+
+
+def wire_alarms(config: Config, registry: CollectorRegistry | None = None, *,
+                commands: Mapping[str, Callable[[dict[str, Any]], Any]] | None = None,
+                block_arrival: Callable[[str], float | None] | None = None,
+                config_refusal: Callable[[str], str | None] | None = None, tracks_sources: bool = False,
+                clock: Callable[[], float] = time.time, monotonic: Callable[[], float] = time.monotonic,
+                ) -> AlarmLayer | None:
+    """The alarm layer of a configuration (``None`` when ``[alarms] enabled = false``) with its parts: the store,
+    the MQTT feed and webhook as configured, the control socket, and its collector on ``registry``.  The feeds and
+    the socket serve the layer's states and commands; the rest are the daemon's seams (:class:`AlarmLayer`)."""
+    from edgevib.daemon.alarms.control import ControlServer, handle_payload
+    from edgevib.daemon.alarms.engine import AlarmLayer
+    from edgevib.daemon.alarms.feed import MqttFeed, WebhookFeed
+    from edgevib.daemon.alarms.store import AlarmStore
+
+    s = config.alarm_settings
+    if not s.enabled:
+        return None
+    fc = s.feed
+    use_mqtt = fc.enabled and fc.connection is not None
+    hook = fc.webhook if fc.enabled else None
+    store = AlarmStore(s, [name for name, on in (("mqtt", use_mqtt), ("webhook", hook is not None)) if on])
+    layer: AlarmLayer  # made last: its feeds and socket call back into it
+    mqtt = MqttFeed(fc, store, lambda: layer.state_messages(), io=store.run,
+                    on_command=lambda b: handle_payload(b, layer.handle_command)) if use_mqtt else None
+    webhook = WebhookFeed(hook, store, io=store.run) if hook is not None else None
+    control = ControlServer(s.socket_path, lambda req: layer.handle_command(req), mode=s.socket_mode)
+    layer = AlarmLayer(config, store, mqtt=mqtt, webhook=webhook, control=control, commands=commands,
+                       block_arrival=block_arrival, config_refusal=config_refusal, tracks_sources=tracks_sources,
+                       clock=clock, monotonic=monotonic)
+    if registry is not None:
+        registry.register(layer.collector)
+    return layer
 
 
 async def run(config: Config, *, metrics_listen: tuple[str, int] | None = None,

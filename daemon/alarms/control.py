@@ -152,6 +152,14 @@ class ControlServer:
         self._server: asyncio.AbstractServer | None = None
 
     async def start(self) -> None:
+        """Listen; a socket that cannot be made is logged and the daemon goes on without it (another edgevib
+        listening there is an error)."""
+        try:
+            await self._listen()
+        except OSError as exc:
+            log.error("alarm control socket unavailable", path=str(self.path), error=str(exc))
+
+    async def _listen(self) -> None:
         self.path.parent.mkdir(parents=True, exist_ok=True)
         if self.path.exists() or self.path.is_symlink():
             if not stat.S_ISSOCK(self.path.lstat().st_mode):
@@ -201,8 +209,8 @@ class ControlServer:
             with contextlib.suppress(Exception):
                 await self._server.wait_closed()
             self._server = None
-        with contextlib.suppress(FileNotFoundError):
-            self.path.unlink()
+            with contextlib.suppress(FileNotFoundError):
+                self.path.unlink()
 
 
 def request(path: str | Path, req: dict[str, Any], timeout_s: float = 10.0) -> dict[str, Any]:

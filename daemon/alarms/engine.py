@@ -17,16 +17,15 @@ import dataclasses
 import json
 import math
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import replace
-from typing import Any
+from typing import Any, TypeVar
 
 import numpy as np
 import structlog
 
-from edgevib.daemon.alarms.config import AlarmSettings
-from edgevib.daemon.alarms.control import CommandError, ControlServer, handle_payload
+from edgevib.daemon.alarms.control import CommandError, ControlServer
 from edgevib.daemon.alarms.core import (
     AlarmCore,
     AlarmSnapshot,
@@ -41,7 +40,7 @@ from edgevib.daemon.alarms.core import (
     machine_stale,
 )
 from edgevib.daemon.alarms.feed import MqttFeed, WebhookFeed
-from edgevib.daemon.alarms.outbox import Outbox, OutboxEvent
+from edgevib.daemon.alarms.outbox import OutboxEvent
 from edgevib.daemon.alarms.store import AlarmStore
 from edgevib.daemon.alarms.views import (
     AlarmCollector,
@@ -63,56 +62,56 @@ __all__ = ["AlarmLayer"]
 log = structlog.get_logger("edgevib.alarms")
 
 HISTORY_LIMIT_MAX = 1000
+T = TypeVar("T")
 
 
 class AlarmLayer:
     """The alarm layer (a :class:`~edgevib.daemon.interfaces.LosslessSink` and
-    :class:`~edgevib.daemon.interfaces.AlarmView`).
+    :class:`~edgevib.daemon.interfaces.AlarmView`), wired by :func:`edgevib.daemon.app.wire_alarms`.
 
-    ``config`` is the daemon configuration; ``settings`` the parsed alarm settings (default: ``config.alarms``).
-    ``registry``: a Prometheus registry to register :attr:`collector` on at start.  The daemon hands it every
-    analysed frame of a point in order and pauses analysis rather than skip one (``edgevib.daemon.app``), since
-    debounce counts, baselines and sensor-recovery runs depend on each frame; it takes them gathered over up to
+    ``config`` is the daemon configuration, ``store`` the worker that owns the state database; ``mqtt`` and
+    ``webhook`` the feeds and ``control`` the socket it starts once the state is restored and stops before the
+    store.  Seams of the daemon: ``commands`` (its own commands served on the same channels: ``select_band``),
+    ``block_arrival`` (when a point's latest block arrived, wall clock s: a point whose blocks arrive is not
+    silent), ``config_refusal`` (why the daemon refuses a point's blocks for a configuration reason: no sensor
+    fault) and ``tracks_sources`` (the daemon reports the sources' connections, :meth:`on_source`).  The daemon
+    hands it every analysed frame of a point in order and pauses analysis rather than skip one, since debounce
+    counts, baselines and sensor-recovery runs depend on each frame; it takes them gathered over up to
     :attr:`batch_window_s` (alarm latency ≤ 0.1 s more, a fraction of the per-call cost).
     """
 
     lossless = True
     batch_window_s = 0.1  # frames gathered per call: one commit and one vectorized health check for many frames
 
-    def __init__(self, config: Config, settings: AlarmSettings | None = None, *, registry: Any = None,
+    def __init__(self, config: Config, store: AlarmStore, *, mqtt: MqttFeed | None = None,
+                 webhook: WebhookFeed | None = None, control: ControlServer | None = None,
+                 commands: Mapping[str, Callable[[dict[str, Any]], Any]] | None = None,
+                 block_arrival: Callable[[str], float | None] | None = None,
+                 config_refusal: Callable[[str], str | None] | None = None, tracks_sources: bool = False,
                  clock: Callable[[], float] = time.time, monotonic: Callable[[], float] = time.monotonic) -> None:
-        if settings is None:
-            settings = config.alarm_settings
         self.config = config
-        self.settings = settings
-        self.registry = registry
+        self.settings = config.alarm_settings
+        self.store, self.mqtt, self.webhook, self.control = store, mqtt, webhook, control
         self.clock = clock
         self.monotonic = monotonic
-        self.core = AlarmCore(config, settings)
+        self.core = AlarmCore(config, self.settings)
+        self.core.tracks_sources = tracks_sources
         self.points = self.core.points
         self.view: AlarmSnapshot = self.core.snapshot()
         """The snapshot after the latest decision (replaced, never changed: read it from any thread)."""
-        self.store: AlarmStore | None = None
-        self.mqtt: MqttFeed | None = None
-        self.webhook: WebhookFeed | None = None
-        self.control: ControlServer | None = None
-        self.extra_commands: dict[str, Callable[[dict[str, Any]], Any]] = {}  # commands served for the daemon
         self.collector = AlarmCollector(self)
         self.health_errors = 0
-        # When a point's latest block arrived (wall clock, s; the daemon's ingest), read on the event loop for
-        # each tick: a point whose blocks arrive is not silent.
-        self.block_arrival: Callable[[str], float | None] | None = None
-        # Why the daemon refuses a point's blocks for a configuration reason (unit, sample rate), or ``None``: a
-        # point silent for that reason is no sensor fault.
-        self.config_refusal: Callable[[str], str | None] | None = None
-        self.listeners: list[Callable[[dict[str, Any]], None]] = []  # each committed CloudEvent, on the event loop
+        self._commands = dict(commands or {})
+        self._block_arrival = block_arrival
+        self._config_refusal = config_refusal
+        self._listeners: list[Callable[[dict[str, Any]], None]] = []  # each committed CloudEvent, on the event loop
         # The trend layer's seam for the retained state message (edgevib.daemon.trendwatch).
         self.trend_state: Callable[[str], dict[str, Any]] | None = None
         self._decider: ThreadPoolExecutor | None = None
         self._tasks: list[asyncio.Task[None]] = []
         self._started = False
         self._loop: asyncio.AbstractEventLoop | None = None
-        self._wake: asyncio.Event | None = None
+        self._wake = asyncio.Event()
 
     # The trend layer's seams on the core: every judged frame in order with its suppression reason (decision
     # thread), and a series' trend for event data.
@@ -129,22 +128,14 @@ class AlarmLayer:
         self.core.trend_info = fn
 
     @property
-    def tracks_sources(self) -> bool:
-        """Whether the daemon reports the sources' connections (:meth:`on_source`); set before start."""
-        return self.core.tracks_sources
-
-    @tracks_sources.setter
-    def tracks_sources(self, on: bool) -> None:
-        self.core.tracks_sources = on
+    def listeners(self) -> list[Callable[[dict[str, Any]], None]]:
+        """The subscribers (:meth:`subscribe` is the way to add one)."""
+        return self._listeners
 
     @property
     def machine_states(self) -> dict[str, MachineState]:
         """The machines' states as the core judges them (read on the decision thread: a frame listener)."""
         return self.core.machine_states
-
-    @property
-    def outbox(self) -> Outbox | None:
-        return self.store.outbox if self.store is not None else None
 
     def _now(self) -> Now:
         return Now(mono=self.monotonic(), wall=self.clock())
@@ -152,14 +143,8 @@ class AlarmLayer:
     # ------------------------------------------------------------------------------------------ lifecycle
 
     async def start(self) -> None:
-        s = self.settings
+        s, store = self.settings, self.store
         self._loop = asyncio.get_running_loop()
-        sinks = []
-        if s.feed.enabled and s.feed.connection is not None:
-            sinks.append(MqttFeed.sink)
-        if s.feed.enabled and s.feed.webhook is not None:
-            sinks.append(WebhookFeed.sink)
-        store = self.store = AlarmStore(s, sinks)
         try:
             restored = await asyncio.wrap_future(store.open())
         except BaseException:  # an unusable state database: no worker left behind
@@ -173,28 +158,15 @@ class AlarmLayer:
                                           self._now()))
         self.view = self.core.snapshot()
         self._decider = ThreadPoolExecutor(1, thread_name_prefix="edgevib-alarm-decide")
-        self._wake = asyncio.Event()
-        assert store.outbox is not None
-        if s.feed.enabled and s.feed.connection is not None:
-            self.mqtt = MqttFeed(s.feed, store.outbox, self.state_messages,
-                                 on_command=lambda b: handle_payload(b, self.handle_command), io=store.run)
-            self._tasks.append(self._loop.create_task(self.mqtt.run(), name="edgevib-alarm-feed"))
-        if s.feed.enabled and s.feed.webhook is not None:
-            self.webhook = WebhookFeed(s.feed.webhook, store.outbox, io=store.run)
-            self._tasks.append(self._loop.create_task(self.webhook.run(), name="edgevib-webhook"))
-        self.control = ControlServer(s.socket_path, self.handle_command, mode=s.socket_mode)
-        try:
+        for feed in (self.mqtt, self.webhook):
+            if feed is not None:
+                self._tasks.append(self._loop.create_task(feed.run(), name=f"edgevib-alarm-{feed.sink}"))
+        if self.control is not None:
             await self.control.start()
-        except OSError as exc:
-            log.error("alarm control socket unavailable", path=s.socket_path, error=str(exc))
-            self.control = None
         self._tasks.append(self._loop.create_task(self._timer(), name="edgevib-alarm-timer"))
-        if self.registry is not None:
-            with contextlib.suppress(ValueError):
-                self.registry.register(self.collector)
         self._started = True
-        log.info("alarm layer started", limits=len(self.core.limits), points=len(self.points), sinks=sinks,
-                 pending=store.outbox_figures[0])
+        log.info("alarm layer started", limits=len(self.core.limits), points=len(self.points),
+                 sinks=list(store.sinks), pending=store.outbox_figures[0])
 
     async def stop(self) -> None:
         self._started = False
@@ -212,14 +184,10 @@ class AlarmLayer:
         self._tasks.clear()
         if self.control is not None:
             await self.control.stop()
-        if self.registry is not None:
-            with contextlib.suppress(KeyError):
-                self.registry.unregister(self.collector)
         decider, self._decider = self._decider, None
         if decider is not None:
             await asyncio.to_thread(decider.shutdown, True)
-        if self.store is not None:
-            await asyncio.to_thread(self.store.close)
+        await asyncio.to_thread(self.store.close)
 
     async def reconfigure(self, config: Config) -> None:
         """A reload keeps the running layer; new limits take effect on the next start (logged)."""
@@ -237,7 +205,7 @@ class AlarmLayer:
         self.core, eff = decide(self.core, inp, now)
         self.view = self.core.snapshot()
         self._emit_logs(eff)
-        if not eff.writes or self.store is None:
+        if not eff.writes:
             return eff, None
         return eff, self.store.submit(eff)
 
@@ -265,12 +233,12 @@ class AlarmLayer:
 
     def subscribe(self, listener: Callable[[dict[str, Any]], None]) -> Callable[[], None]:
         """Call ``listener`` on the event loop with each committed CloudEvent; returns the unsubscribe."""
-        self.listeners.append(listener)
-        return lambda: self.listeners.remove(listener) if listener in self.listeners else None
+        self._listeners.append(listener)
+        return lambda: self._listeners.remove(listener) if listener in self._listeners else None
 
     def _notify(self, events: list[OutboxEvent]) -> None:
         for e in events:
-            for cb in self.listeners:
+            for cb in self._listeners:
                 try:
                     cb(json.loads(e.body))
                 except Exception as exc:  # a listener never breaks the layer
@@ -325,12 +293,9 @@ class AlarmLayer:
 
     async def _timer(self) -> None:
         while self._started:
-            if self._wake is not None:
-                with contextlib.suppress(TimeoutError):
-                    await asyncio.wait_for(self._wake.wait(), 1.0)
-                self._wake.clear()
-            else:
-                await asyncio.sleep(1.0)
+            with contextlib.suppress(TimeoutError):
+                await asyncio.wait_for(self._wake.wait(), 1.0)
+            self._wake.clear()
             try:
                 await self.tick()
             except Exception as exc:  # the timer never dies
@@ -338,32 +303,19 @@ class AlarmLayer:
 
     async def tick(self) -> None:
         """One timer tick: source changes, no-data detection and shelf expiry (the timer's work, once)."""
-        await self.decide(Tick(self._arrivals(), self._refusals()))
+        refusals = self._ask(self._config_refusal)
+        await self.decide(Tick(self._ask(self._block_arrival), {p: why for p, why in refusals.items() if why}))
 
-    def _arrivals(self) -> dict[str, float | None]:
-        fn = self.block_arrival
+    def _ask(self, fn: Callable[[str], T | None] | None) -> dict[str, T | None]:
+        """``fn`` of every point (``None`` where it fails: a daemon view that fails must not stop the timer)."""
         if fn is None:
             return {}
-        out: dict[str, float | None] = {}
+        out: dict[str, T | None] = {}
         for pid in self.points:
             try:
                 out[pid] = fn(pid)
-            except Exception:  # a view that fails must not stop the timer
+            except Exception:
                 out[pid] = None
-        return out
-
-    def _refusals(self) -> dict[str, str]:
-        fn = self.config_refusal
-        if fn is None:
-            return {}
-        out: dict[str, str] = {}
-        for pid in self.points:
-            try:
-                why = fn(pid)
-            except Exception:  # a view that fails must not stop the timer
-                why = None
-            if why:
-                out[pid] = why
         return out
 
     def on_source(self, source: str, connected: bool) -> None:
@@ -374,15 +326,14 @@ class AlarmLayer:
             self.core, _ = decide(self.core, inp, now)
         else:
             self._decider.submit(self._decide_here, inp, now).add_done_callback(_log_failure)
-        if self._wake is not None:
-            self._wake.set()
+        self._wake.set()
 
     # ------------------------------------------------------------------------------------------ commands
 
     def _read_command(self, req: dict[str, Any]) -> tuple[bool, Any]:
         """``list`` and ``history`` (read from the snapshot and the store) and the daemon's own commands."""
         cmd = req["cmd"]
-        extra = self.extra_commands.get(cmd)
+        extra = self._commands.get(cmd)
         if extra is not None:  # a daemon command on the same channel (select_band)
             return True, extra(req)
         if cmd not in ("list", "history"):
@@ -433,7 +384,7 @@ class AlarmLayer:
 
     def snapshot(self, point: str | None = None) -> dict[str, Any]:
         """The ``list`` document (limit rows, sensors, points, sources) from the current snapshot."""
-        return list_doc(self.view, point, self.store.outbox_figures[0] if self.store is not None else 0)
+        return list_doc(self.view, point, self.store.outbox_figures[0])
 
     def history(self, point: str | None = None, *, since_s: float | None = None,
                 limit: int = 200) -> list[AlarmTransition]:
@@ -443,7 +394,7 @@ class AlarmLayer:
         if since_s is not None and not math.isfinite(since_s):
             raise ValueError(f"history since {since_s!r} must be a finite time in Unix seconds")
         store = self.store
-        if store is None or not store.running:
+        if not store.running:
             return []
         rows = store.call(store.history, point, None if since_s is None else round(since_s * 1e9), limit).result()
         return [transition_of(*row) for row in rows]
@@ -473,11 +424,11 @@ class AlarmLayer:
 
     def outbox_figures(self) -> tuple[int, float]:
         """Pending events and the age of the oldest (s), as of the store's latest transaction."""
-        depth, oldest = self.store.outbox_figures if self.store is not None else (0, None)
+        depth, oldest = self.store.outbox_figures
         return depth, 0.0 if oldest is None else max(0.0, (time.time_ns() - oldest) / 1e9)
 
     def capture_figures(self) -> tuple[int, int]:
-        cap = self.store.capture if self.store is not None else None
+        cap = self.store.capture
         return (0, 0) if cap is None else (cap.count, cap.bytes)
 
 

@@ -38,13 +38,13 @@ import json
 import urllib.error
 import urllib.parse
 import urllib.request
-from collections.abc import Awaitable, Callable
-from typing import Any
+from collections.abc import Awaitable, Callable, Iterable
+from typing import Any, Protocol
 
 import structlog
 
 from edgevib.daemon.alarms.config import FeedConfig, WebhookConfig
-from edgevib.daemon.alarms.outbox import Outbox, OutboxEvent, new_event_id
+from edgevib.daemon.alarms.outbox import OutboxEvent, new_event_id
 from edgevib.daemon.mqtt_client import Availability, MqttLink, TopicRefused, publish_properties
 from edgevib.daemon.timestamps import rfc3339_utc
 
@@ -135,7 +135,15 @@ Io = Callable[..., Awaitable[Any]]
 thread of its own)."""
 
 
-async def _next_batch(outbox: Outbox, sink: str, wake: asyncio.Event, limit: int = BATCH,
+class Pending(Protocol):
+    """The pending events a feed delivers: an :class:`Outbox`, or the alarm store in front of its own."""
+
+    def pending(self, sink: str, limit: int = 100) -> list[OutboxEvent]: ...
+    def mark_delivered(self, sink: str, seqs: Iterable[int]) -> None: ...
+    def mark_attempt(self, sink: str, seqs: Iterable[int]) -> None: ...
+
+
+async def _next_batch(outbox: Pending, sink: str, wake: asyncio.Event, limit: int = BATCH,
                       io: Io = asyncio.to_thread) -> list[OutboxEvent]:
     """The next pending events of ``sink``; when there are none, an empty list after waiting (at most 5 s) for
     ``wake`` (set when an event is committed)."""
@@ -157,7 +165,7 @@ class MqttFeed:
 
     sink = "mqtt"
 
-    def __init__(self, cfg: FeedConfig, outbox: Outbox, states: Callable[[], dict[str, tuple[str, bytes]]],
+    def __init__(self, cfg: FeedConfig, outbox: Pending, states: Callable[[], dict[str, tuple[str, bytes]]],
                  on_command: Callable[[bytes], bytes] | None = None, io: Io = asyncio.to_thread) -> None:
         if cfg.connection is None:
             raise ValueError("the MQTT feed needs a broker connection ([feed] source or url)")
@@ -372,7 +380,7 @@ class WebhookFeed:
 
     sink = "webhook"
 
-    def __init__(self, cfg: WebhookConfig, outbox: Outbox, io: Io = asyncio.to_thread) -> None:
+    def __init__(self, cfg: WebhookConfig, outbox: Pending, io: Io = asyncio.to_thread) -> None:
         self.cfg = cfg
         self.outbox = outbox
         self.io = io

@@ -22,7 +22,7 @@ import json
 import queue
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterable
 from concurrent.futures import Future
 from dataclasses import dataclass
 from pathlib import Path
@@ -221,6 +221,21 @@ class AlarmStore:
         self._refresh()
         return Restored(alarms=self.state.load_alarms(), baselines=self.state.load_baselines(),
                         sensors=self.state.load_sensors(), sources=self.state.load_sources())
+
+    # The outbox as the feeds see it (on the worker: their ``io`` is :meth:`run`).
+    def _outbox(self) -> Outbox:
+        if self.outbox is None:
+            raise StateError("the alarm store is not open")
+        return self.outbox
+
+    def pending(self, sink: str, limit: int = 100) -> list[OutboxEvent]:
+        return self._outbox().pending(sink, limit)
+
+    def mark_delivered(self, sink: str, seqs: Iterable[int]) -> None:
+        self._outbox().mark_delivered(sink, seqs)
+
+    def mark_attempt(self, sink: str, seqs: Iterable[int]) -> None:
+        self._outbox().mark_attempt(sink, seqs)
 
     def history(self, point: str | None, since_ns: int | None, limit: int) -> list[tuple[int, str, str, str, str, str]]:
         """History rows (call on the worker: ``call(store.history, …)``)."""

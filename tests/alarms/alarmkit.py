@@ -10,6 +10,8 @@ from typing import Any
 import numpy as np
 import pytest
 
+from edgevib.daemon.alarms.engine import AlarmLayer
+from edgevib.daemon.app import wire_alarms
 from edgevib.daemon.config import Config, parse_config
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.pipelines.analysis import analyze_frames
@@ -88,6 +90,15 @@ def short_tmp() -> Iterator[Path]:
         yield d
     finally:
         shutil.rmtree(d, ignore_errors=True)
+
+
+def alarm_layer(cfg: Config, registry: Any = None, **seams: Any) -> AlarmLayer:
+    """The alarm layer of ``cfg`` as the daemon wires it (``edgevib.daemon.app.wire_alarms``: store, feeds, control
+    socket, collector on ``registry``); ``seams``: the daemon's (``tracks_sources``, ``block_arrival`` …) and
+    the clocks."""
+    layer = wire_alarms(cfg, registry, **seams)
+    assert layer is not None, "the configuration has alarms on"
+    return layer
 
 
 def indicators(velocity_mm_s: float, **kw: Any) -> Any:

@@ -10,10 +10,9 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from alarmkit import frame_result, small_config
+from alarmkit import alarm_layer, frame_result, small_config
 
 from edgevib.daemon.alarms.control import CommandError, handle_payload, request, validate_request
-from edgevib.daemon.alarms.engine import AlarmLayer
 from edgevib.daemon.cli import main
 
 
@@ -41,7 +40,7 @@ def test_garbage_gets_an_error_response() -> None:
 
 async def test_control_socket_commands(short_tmp: Path) -> None:
     cfg = small_config(short_tmp)
-    layer = AlarmLayer(cfg)
+    layer = alarm_layer(cfg)
     events: list[dict[str, Any]] = []
     layer.subscribe(events.append)
     await layer.start()
@@ -93,7 +92,7 @@ async def test_control_socket_commands(short_tmp: Path) -> None:
 def test_alarms_cli_prints_the_table(short_tmp: Path, capsys: pytest.CaptureFixture[str]) -> None:
     async def scenario() -> None:
         cfg = small_config(short_tmp)
-        layer = AlarmLayer(cfg)
+        layer = alarm_layer(cfg)
         await layer.start()
         try:
             await layer.on_frames([frame_result("P-101-DE-H", "P-101", 1.0, 3.0)])
@@ -111,7 +110,7 @@ async def test_a_shelf_expires_on_the_timer_without_frames(short_tmp: Path) -> N
     # no-data detection kept out of the way (100000 frame periods) so only the shelf expiry acts
     cfg = small_config(short_tmp, alarms={"no_data_frames": 100000})
     mono = [500.0]
-    layer = AlarmLayer(cfg, monotonic=lambda: mono[0])
+    layer = alarm_layer(cfg, monotonic=lambda: mono[0])
     events: list[dict[str, Any]] = []
     layer.subscribe(events.append)
     await layer.start()
@@ -166,7 +165,7 @@ def test_alarms_cli_history_ack_by_and_shelve_errors(short_tmp: Path, capsys: py
 
     async def scenario() -> list[int]:
         cfg = small_config(short_tmp, alarms={"max_shelve_h": 168.0})
-        layer = AlarmLayer(cfg)
+        layer = alarm_layer(cfg)
         await layer.start()
         codes = []
         try:
@@ -240,7 +239,7 @@ async def test_a_shelved_alarm_is_acknowledged_only_after_unshelving(short_tmp: 
     # removed from the operator's view), so an acknowledgement of it could be recorded nowhere visible.
     cfg = small_config(short_tmp, limits={"velocity_rms_mm_s": {"rule": "iso"},
                                           "kurtosis": {"alert": 5.0, "danger": 10.0}})
-    layer = AlarmLayer(cfg)
+    layer = alarm_layer(cfg)
     events: list[dict[str, Any]] = []
     layer.subscribe(events.append)
     await layer.start()

@@ -16,7 +16,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from alarmkit import frame_result, small_config
+from alarmkit import alarm_layer, frame_result, small_config
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
@@ -173,7 +173,7 @@ async def test_a_scrape_during_a_decision_reads_the_previous_snapshot(short_tmp:
     # No lock between the decision thread and readers: while a decision is held half-way (a frame listener waits),
     # the collector, the list document and the state text answer at once with the state before it.
     cfg = small_config(short_tmp / "state")
-    layer = AlarmLayer(cfg)
+    layer = alarm_layer(cfg)
     entered, release = threading.Event(), threading.Event()
     hold = {"on": False}
 

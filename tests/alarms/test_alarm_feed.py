@@ -12,7 +12,7 @@ from pathlib import Path
 from typing import Any, ClassVar
 
 import pytest
-from alarmkit import Subscriber, frame_result, persistent_broker, small_config
+from alarmkit import Subscriber, alarm_layer, frame_result, persistent_broker, small_config
 from prometheus_client import CollectorRegistry
 from servers import Mosquitto
 
@@ -51,7 +51,7 @@ QUIET = {"no_data_frames": 100000}
 async def test_events_reach_the_broker_with_qos1_and_retained_state(mosquitto: Mosquitto, short_tmp: Path) -> None:
     cfg = small_config(short_tmp, alarms=QUIET, feed={"url": mosquitto.url, **FEED})
     sub = Subscriber(mosquitto.port, "edgevib/#", clean=True)
-    layer = AlarmLayer(cfg)
+    layer = alarm_layer(cfg)
     await layer.start()
     try:
         await feed_values(layer, [1.0, 3.0, 3.0, 5.0, 5.0], 1000.0)
@@ -64,7 +64,7 @@ async def test_events_reach_the_broker_with_qos1_and_retained_state(mosquitto: M
         assert [(e["data"]["transition"], e["data"]["state"]) for e in evs] == [("raised", "alert"),
                                                                                ("escalated", "danger")]
         assert len({e["id"] for e in evs}) == 2
-        assert await until(lambda: layer.outbox is not None and layer.outbox.depth() == 0)
+        assert await until(lambda: layer.store.outbox is not None and layer.store.outbox.depth() == 0)
         assert layer.mqtt is not None and layer.mqtt.published == 2
         # A late subscriber gets the retained state of the point.
         late = Subscriber(mosquitto.port, "edgevib/quarry-lane/alarm-state/#", client_id="late", clean=True)
@@ -97,7 +97,7 @@ async def test_broker_down_events_wait_in_the_outbox(short_tmp: Path) -> None:
     broker.start()
     cfg = small_config(short_tmp, alarms=QUIET, feed={"url": broker.url, **FEED})
     sub = Subscriber(broker.port, "edgevib/quarry-lane/alarms/#", client_id="maint-system")  # persistent session
-    layer = AlarmLayer(cfg)
+    layer = alarm_layer(cfg)
     await layer.start()
     try:
         assert layer.mqtt is not None
@@ -105,11 +105,11 @@ async def test_broker_down_events_wait_in_the_outbox(short_tmp: Path) -> None:
         broker.stop()
         assert await until(lambda: layer.mqtt is not None and not layer.mqtt.connected)
         await feed_values(layer, [3.0, 3.0, 5.0, 5.0, 1.0, 1.0], 1000.0)
-        assert layer.outbox is not None and layer.outbox.depth() == 3  # raised, escalated, cleared
+        assert layer.store.outbox is not None and layer.store.outbox.depth() == 3  # raised, escalated, cleared
         await asyncio.sleep(1.0)
-        assert layer.outbox.depth() == 3 and layer.mqtt.published == 0
+        assert layer.store.outbox.depth() == 3 and layer.mqtt.published == 0
         broker.start()
-        assert await until(lambda: layer.outbox is not None and layer.outbox.depth() == 0, 30.0)
+        assert await until(lambda: layer.store.outbox is not None and layer.store.outbox.depth() == 0, 30.0)
         assert await until(lambda: len(sub.events()) >= 3, 30.0)
         kinds = [e["data"]["transition"] for e in sub.events()]
         assert kinds[:3] == ["raised", "escalated", "cleared"]
@@ -145,7 +145,7 @@ async def test_webhook_retries_until_accepted(short_tmp: Path) -> None:
     threading.Thread(target=server.serve_forever, daemon=True).start()
     url = f"http://127.0.0.1:{server.server_address[1]}/events"
     cfg = small_config(short_tmp, alarms=QUIET, feed={"webhook": {"url": url, "retry_min_s": 0.1, "retry_max_s": 0.2}})
-    layer = AlarmLayer(cfg)
+    layer = alarm_layer(cfg)
     await layer.start()
     try:
         await feed_values(layer, [3.0, 3.0], 1000.0)
@@ -154,7 +154,7 @@ async def test_webhook_retries_until_accepted(short_tmp: Path) -> None:
         assert ctype.startswith("application/cloudevents+json")
         check_cloudevent(json.loads(body))
         assert _Hook.fail_first == 0 and layer.webhook is not None and layer.webhook.published == 1
-        assert await until(lambda: layer.outbox is not None and layer.outbox.depth() == 0)
+        assert await until(lambda: layer.store.outbox is not None and layer.store.outbox.depth() == 0)
     finally:
         await layer.stop()
         server.shutdown()
@@ -168,11 +168,11 @@ async def test_webhook_refusal_is_counted_not_retried(short_tmp: Path) -> None:
     url = f"http://127.0.0.1:{server.server_address[1]}/events"
     cfg = small_config(short_tmp, alarms=QUIET, feed={"webhook": {"url": url, "retry_min_s": 0.1, "retry_max_s": 0.2}})
     registry = CollectorRegistry()
-    layer = AlarmLayer(cfg, registry=registry)
+    layer = alarm_layer(cfg, registry=registry)
     await layer.start()
     try:
         await feed_values(layer, [3.0, 3.0, 5.0, 5.0], 1000.0)  # raised, then escalated
-        assert await until(lambda: layer.outbox is not None and layer.outbox.depth() == 0)
+        assert await until(lambda: layer.store.outbox is not None and layer.store.outbox.depth() == 0)
         assert [json.loads(b)["data"]["transition"] for _, b in _Hook.received] == ["escalated"]  # first refused
         assert registry.get_sample_value("edgevib_feed_rejected_total", {"sink": "webhook"}) == 1.0
         assert registry.get_sample_value("edgevib_feed_published_total", {"sink": "webhook"}) == 1.0

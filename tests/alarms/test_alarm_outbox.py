@@ -114,9 +114,7 @@ async def test_the_layer_refuses_a_newer_database_and_leaves_no_worker(tmp_path:
     # The layer's store opens the file on its own thread: the refusal reaches start(), and that thread ends.
     import threading
 
-    from alarmkit import small_config
-
-    from edgevib.daemon.alarms.engine import AlarmLayer
+    from alarmkit import alarm_layer, small_config
 
     cfg = small_config(tmp_path / "state")
     Database(tmp_path / "state" / "alarms.sqlite").close()
@@ -124,7 +122,7 @@ async def test_the_layer_refuses_a_newer_database_and_leaves_no_worker(tmp_path:
     c.execute("UPDATE schema_version SET version = ?", (SCHEMA_VERSION + 1,))
     c.commit()
     c.close()
-    layer = AlarmLayer(cfg)
+    layer = alarm_layer(cfg)
     with pytest.raises(StateError, match="newer edgevib"):
         await layer.start()
     assert not [t for t in threading.enumerate() if t.name == "edgevib-alarm-store"]

@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from alarmkit import frame_result
+from alarmkit import alarm_layer, frame_result
 from prometheus_client import CollectorRegistry
 
 from edgevib.daemon.alarms.engine import AlarmLayer
@@ -51,10 +51,9 @@ class Clock:
         return self.t
 
 
-async def make_layer(cfg: Config, clock: Clock, events: list[dict[str, Any]]) -> AlarmLayer:
-    layer = AlarmLayer(cfg, monotonic=clock)
+async def make_layer(cfg: Config, clock: Clock, events: list[dict[str, Any]], **seams: Any) -> AlarmLayer:
+    layer = alarm_layer(cfg, monotonic=clock, tracks_sources=True, **seams)  # sources tracked as in the daemon
     layer.subscribe(events.append)
-    layer.tracks_sources = True  # as the daemon wires it
     await layer.start()
     return layer
 
@@ -256,8 +255,8 @@ async def test_points_whose_blocks_arrive_are_not_silent(short_tmp: Path) -> Non
     import time
 
     clock, events = Clock(), []
-    layer = await make_layer(two_points(short_tmp), clock, events)
-    layer.block_arrival = lambda pid: time.time() if pid == POINTS[0] else None
+    layer = await make_layer(two_points(short_tmp), clock, events,
+                             block_arrival=lambda pid: time.time() if pid == POINTS[0] else None)
     try:
         layer.on_source("plant", True)
         await frames(layer, clock, 100.0, {POINTS[0]: [1.0] * 3, POINTS[1]: [1.0] * 3})
@@ -284,7 +283,7 @@ async def test_alarms_of_indicators_absent_while_stopped_are_suppressed_too(shor
     from edgevib.pipelines.machine_state import MachineState
 
     cfg = small_config(short_tmp, limits={"imbalance_1x_mm_s": {"alert": 1.4, "danger": 2.8}})
-    layer = AlarmLayer(cfg)
+    layer = alarm_layer(cfg)
     events: list[dict[str, Any]] = []
     layer.subscribe(events.append)
     await layer.start()
@@ -312,9 +311,8 @@ async def test_operator_actions_during_an_outage_take_the_time_of_the_action(sho
     clock, events = Clock(), []
     wall = Clock()
     wall.t = T0 + 102.0
-    layer = AlarmLayer(two_points(short_tmp), monotonic=clock, clock=wall)
+    layer = alarm_layer(two_points(short_tmp), monotonic=clock, clock=wall, tracks_sources=True)
     layer.subscribe(events.append)
-    layer.tracks_sources = True
     await layer.start()
     try:
         layer.on_source("plant", True)
@@ -354,7 +352,7 @@ async def test_a_suppressed_alarm_shows_the_latest_value(short_tmp: Path) -> Non
 
     from edgevib.pipelines.machine_state import MachineState
 
-    layer = AlarmLayer(small_config(short_tmp, limits={"imbalance_1x_mm_s": {"alert": 1.4, "danger": 2.8}}))
+    layer = alarm_layer(small_config(short_tmp, limits={"imbalance_1x_mm_s": {"alert": 1.4, "danger": 2.8}}))
     await layer.start()
     try:
         running = MachineState(state="running", since_s=0.0)
@@ -485,8 +483,7 @@ async def test_a_point_refused_for_its_configuration_is_no_sensor_fault(short_tm
     assert ingest.config_refusal(POINTS[0]) == ("wrong_sample_rate: block at 25600 Hz, point configured for "
                                                 "12800 Hz")
     assert ingest.config_refusal(POINTS[1]) is None
-    layer = await make_layer(cfg, clock, events)
-    layer.config_refusal = ingest.config_refusal
+    layer = await make_layer(cfg, clock, events, config_refusal=ingest.config_refusal)
     try:
         layer.on_source("plant", True)
         await frames(layer, clock, 100.0, {POINTS[0]: [6.0] * 3, POINTS[1]: [1.0] * 3})

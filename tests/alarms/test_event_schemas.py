@@ -10,7 +10,7 @@ from typing import Any, get_args
 
 import numpy as np
 import pytest
-from alarmkit import frame_result, small_config
+from alarmkit import alarm_layer, frame_result, small_config
 from jsonschema import Draft202012Validator
 from jsonschema.exceptions import ValidationError
 
@@ -93,7 +93,7 @@ async def test_alarm_and_baseline_events_meet_their_schemas(short_tmp: Path) -> 
     cfg = small_config(short_tmp, feed=FEED, alarms={"baseline_frames": 5},
                        limits={"velocity_rms_mm_s": {"rule": "iso-baseline"},
                                "kurtosis": {"alert": 5.0, "danger": 10.0}})
-    layer = AlarmLayer(cfg)
+    layer = alarm_layer(cfg)
     events: list[dict[str, Any]] = []
     layer.subscribe(events.append)
     await layer.start()
@@ -118,7 +118,7 @@ async def test_alarm_and_baseline_events_meet_their_schemas(short_tmp: Path) -> 
 
 async def test_sensor_fault_events_meet_their_schema(sim_config: Any) -> None:
     _, cfg, frames = sim_config("sensor-faults", extra={"alarms": {"startup_grace_s": 0.0}, "feed": FEED})
-    layer = AlarmLayer(cfg)
+    layer = alarm_layer(cfg)
     events: list[dict[str, Any]] = []
     layer.subscribe(events.append)
     await layer.start()

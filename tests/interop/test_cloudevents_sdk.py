@@ -18,7 +18,7 @@ from pathlib import Path
 from typing import Any, ClassVar
 
 import pytest
-from alarmkit import frame_result, small_config
+from alarmkit import alarm_layer, frame_result, small_config
 from cloudevents.core.bindings.http import HTTPMessage, from_http
 from cloudevents.core.formats.json import JSONFormat
 from cloudevents.core.v1.event import CloudEvent
@@ -66,7 +66,7 @@ async def test_mqtt5_events_parse_with_the_sdk(mosquitto: Mosquitto, short_tmp: 
     cfg = small_config(short_tmp, feed={"url": mosquitto.url, "protocol": "5", "content_mode": mode,
                                         "event_source": "urn:fennick:{site}:edgevib", "dataschema": SCHEMA, **FEED})
     sub = Client5(mosquitto.port, ["edgevib/quarry-lane/alarms/#"])
-    layer = AlarmLayer(cfg)
+    layer = alarm_layer(cfg)
     await layer.start()
     try:
         await _raise_two_alarms(layer)
@@ -99,7 +99,7 @@ async def test_mqtt311_structured_mode_still_plain_json(mosquitto: Mosquitto, sh
     cfg = small_config(short_tmp, feed={"url": mosquitto.url, "event_source": "urn:fennick:{site}:edgevib",
                                         "dataschema": SCHEMA, **FEED})
     sub = Client5(mosquitto.port, ["edgevib/quarry-lane/alarms/#"], protocol="3.1.1")
-    layer = AlarmLayer(cfg)
+    layer = alarm_layer(cfg)
     await layer.start()
     try:
         await _raise_two_alarms(layer)
@@ -132,7 +132,7 @@ async def test_webhook_events_parse_with_the_sdk(short_tmp: Path, mode: str) -> 
     url = f"http://127.0.0.1:{server.server_address[1]}/events"
     cfg = small_config(short_tmp, feed={"webhook": {"url": url, "mode": mode, "retry_min_s": 0.05},
                                         "event_source": "urn:fennick:{site}:edgevib", "dataschema": SCHEMA})
-    layer = AlarmLayer(cfg)
+    layer = alarm_layer(cfg)
     await layer.start()
     try:
         await _raise_two_alarms(layer)

@@ -19,12 +19,11 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from alarmkit import frame_result, small_config
+from alarmkit import alarm_layer, frame_result, small_config
 from mqtt5 import Client5
 from servers import Mosquitto
 from structlog.testing import capture_logs
 
-from edgevib.daemon.alarms.engine import AlarmLayer
 from edgevib.daemon.alarms.feed import MqttFeed, cloud_event, event_body
 from edgevib.daemon.alarms.outbox import Database, Outbox, OutboxEvent
 
@@ -75,7 +74,7 @@ async def test_an_event_with_a_wildcard_topic_never_blocks_the_others(mosquitto:
 async def test_commands_answer_on_response_topic_with_correlation_data(mosquitto: Mosquitto,
                                                                        short_tmp: Path) -> None:
     cfg = small_config(short_tmp, feed={"url": mosquitto.url, "protocol": "5", **FEED})
-    layer = AlarmLayer(cfg)
+    layer = alarm_layer(cfg)
     await layer.start()
     op = Client5(mosquitto.port, ["operators/desk-3/#"], client_id="desk-3")
     try:
@@ -103,7 +102,7 @@ async def test_command_sent_while_edgevib_is_down_is_answered_after_restart(shor
     broker = Mosquitto().start()
     try:
         cfg = small_config(short_tmp, feed={"url": broker.url, "protocol": protocol, **FEED})
-        layer = AlarmLayer(cfg)
+        layer = alarm_layer(cfg)
         await layer.start()  # first start: the broker learns the feed's persistent session and subscription
         assert await until(lambda: layer.mqtt is not None and layer.mqtt.connected)
         await layer.stop()
@@ -111,7 +110,7 @@ async def test_command_sent_while_edgevib_is_down_is_answered_after_restart(shor
         op.client.publish("edgevib/quarry-lane/alarms/command", json.dumps({"cmd": "list", "id": "while-down"}),
                           qos=1)
         await asyncio.sleep(0.3)
-        layer = AlarmLayer(cfg)
+        layer = alarm_layer(cfg)
         await layer.start()
         try:
             assert await until(lambda: bool(op.on("edgevib/quarry-lane/alarms/response")))
@@ -125,7 +124,7 @@ async def test_command_sent_while_edgevib_is_down_is_answered_after_restart(shor
 
 async def test_availability_online_offline_and_last_will(mosquitto: Mosquitto, short_tmp: Path) -> None:
     cfg = small_config(short_tmp, feed={"url": mosquitto.url, **FEED})
-    layer = AlarmLayer(cfg)
+    layer = alarm_layer(cfg)
     await layer.start()
     assert await until(lambda: layer.mqtt is not None and layer.mqtt.connected)
     await asyncio.sleep(0.5)  # "online" is published right after the CONNACK: subscribe once it is there
@@ -137,7 +136,7 @@ async def test_availability_online_offline_and_last_will(mosquitto: Mosquitto, s
         await layer.stop()
     assert await until(lambda: [m.payload for m in watch.on("edgevib/")][-1:] == [b"offline"])
     # edgevib dies (no DISCONNECT): the broker publishes the Will
-    layer = AlarmLayer(cfg)
+    layer = alarm_layer(cfg)
     await layer.start()
     assert await until(lambda: [m.payload for m in watch.on("edgevib/")][-1:] == [b"online"])
     assert layer.mqtt is not None and layer.mqtt.link.client is not None
@@ -155,7 +154,7 @@ async def test_availability_online_offline_and_last_will(mosquitto: Mosquitto, s
 
 async def test_state_message_published_on_change_not_on_every_frame(mosquitto: Mosquitto, short_tmp: Path) -> None:
     cfg = small_config(short_tmp, feed={"url": mosquitto.url, **FEED})
-    layer = AlarmLayer(cfg)
+    layer = alarm_layer(cfg)
     await layer.start()
     watch = Client5(mosquitto.port, ["edgevib/quarry-lane/alarm-state/#"], client_id="watch")
     try:
@@ -200,7 +199,7 @@ async def test_feed_logs_why_the_broker_refused(short_tmp: Path) -> None:
         cfg = small_config(short_tmp, feed={"url": broker.url, "username": "edgevib", "password_file": str(secret),
                                             **FEED})
         with capture_logs() as logs:
-            layer = AlarmLayer(cfg)
+            layer = alarm_layer(cfg)
             await layer.start()
             await asyncio.sleep(1.5)
             await layer.stop()
