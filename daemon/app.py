@@ -37,9 +37,9 @@ configuration while points whose configuration is unchanged keep their assembly 
 
 Seams for other layers (contracts in :mod:`edgevib.daemon.interfaces`): ``Daemon.add_sink`` and
 ``add_lossless_sink`` (before ``start``); parts that take a reload are listed as ``Reconfigurable`` where they are
-wired; the alarm layer's factory ``edgevib.daemon.alarms.sink.create_sink(config, registry)`` (None when alarms
-are off) also gives the ``AlarmView`` of the demo table's alarm column; ``on_ready`` / ``on_stopping`` callbacks
-(systemd notifications).
+wired; :func:`wire_alarms` builds the alarm layer with its store, feeds, control socket and collector (None when
+alarms are off; the alarm tests wire it the same way), also the ``AlarmView`` of the demo table's alarm column;
+``on_ready`` / ``on_stopping`` callbacks (systemd notifications).
 """
 
 from __future__ import annotations
@@ -358,7 +358,7 @@ class Daemon:
                                        cert_file=pc.cert_file, key_file=pc.key_file, state_dir=config.site.state_dir)
             self.add_sink(opcua)
             self._reconfigurable.append(opcua)
-        # source down/up: one source event, its points stale, no sensor faults
+        # tracks_sources: a source down/up is one source event, its points stale, not sensor faults
         alarms = wire_alarms(config, self.metrics.registry, block_arrival=self._block_arrival_s,
                              config_refusal=self.ingest.config_refusal, tracks_sources=True,
                              commands={"select_band": lambda req: self.request_band_selection(req.get("point"))})

@@ -170,17 +170,16 @@ class AlarmLayer:
 
     async def stop(self) -> None:
         self._started = False
+        self._wake.set()  # the timer ends
         for feed in (self.mqtt, self.webhook):
             if feed is not None:
                 with contextlib.suppress(Exception):
                     await feed.stop()
-        for t in self._tasks:
-            if not t.done():
-                try:
-                    await asyncio.wait_for(asyncio.shield(t), 3.0)
-                except (TimeoutError, asyncio.CancelledError, Exception):
-                    t.cancel()
-        await asyncio.gather(*self._tasks, return_exceptions=True)
+        if self._tasks:
+            _, late = await asyncio.wait(self._tasks, timeout=3.0)
+            for t in late:
+                t.cancel()
+            await asyncio.gather(*self._tasks, return_exceptions=True)
         self._tasks.clear()
         if self.control is not None:
             await self.control.stop()
@@ -292,10 +291,12 @@ class AlarmLayer:
     # ------------------------------------------------------------------------------------------ timer, sources
 
     async def _timer(self) -> None:
-        while self._started:
+        while True:
             with contextlib.suppress(TimeoutError):
                 await asyncio.wait_for(self._wake.wait(), 1.0)
             self._wake.clear()
+            if not self._started:
+                return
             try:
                 await self.tick()
             except Exception as exc:  # the timer never dies
@@ -346,32 +347,18 @@ class AlarmLayer:
                                                                   limit=int(req.get("limit", 200)))]
 
     def handle_command(self, req: dict[str, Any]) -> Any:
-        """Run one validated command (see :mod:`edgevib.daemon.alarms.control`) from any thread, the event loop
-        included (it waits for the decision and its commit); raises CommandError."""
+        """Run one validated command (see :mod:`edgevib.daemon.alarms.control`) from a thread other than the event
+        loop's (the control socket's, the MQTT feed's): it waits for the decision and its commit on the event
+        loop, as :meth:`command`; raises CommandError."""
         done, result = self._read_command(req)
         if done:
             return result
-        decider = self._decider
-        if decider is None:
+        if self._loop is None or self._decider is None:
             raise CommandError("the alarm layer is not running")
-        eff, fut = decider.submit(self._decide_here, Command(req), self._now()).result()
-        events = fut.result() if fut is not None else []
-        loop = self._loop
-        if loop is None:
-            return eff.reply
-        try:
-            on_loop = asyncio.get_running_loop() is loop
-        except RuntimeError:
-            on_loop = False
-        if on_loop:  # listeners are called on the event loop: here at once
-            self._notify(events)
-        else:
-            loop.call_soon_threadsafe(self._notify, events)
-        loop.call_soon_threadsafe(self._published, eff, events)
-        return eff.reply
+        return asyncio.run_coroutine_threadsafe(self.decide(Command(req)), self._loop).result().reply
 
     async def command(self, req: dict[str, Any]) -> Any:
-        """:meth:`handle_command` on the event loop, without blocking it."""
+        """Run one validated command on the event loop, without blocking it; raises CommandError."""
         if req["cmd"] == "history":  # a database read
             done, result = await asyncio.to_thread(self._read_command, req)
         else:

@@ -117,8 +117,8 @@ async def test_a_shelf_expires_on_the_timer_without_frames(short_tmp: Path) -> N
     try:
         for i in range(2):
             await layer.on_frames([frame_result("P-101-DE-H", "P-101", 1000.0 + i, 5.0)])
-        res = layer.handle_command({"cmd": "shelve", "point": "P-101-DE-H", "reason": "pump on test run",
-                                    "duration_s": 10.0})
+        res = await layer.command({"cmd": "shelve", "point": "P-101-DE-H", "reason": "pump on test run",
+                                   "duration_s": 10.0})
         assert res["changed"] == 1 and events[-1]["data"]["transition"] == "shelved"
         mono[0] += 5.0  # 5 s after the last frame: still shelved
         await asyncio.sleep(1.5)
@@ -246,23 +246,23 @@ async def test_a_shelved_alarm_is_acknowledged_only_after_unshelving(short_tmp: 
     try:
         for i in range(2):
             await layer.on_frames([frame_result("P-101-DE-H", "P-101", 1000.0 + i, 5.0, kurtosis=12.0)])
-        layer.handle_command({"cmd": "shelve", "point": "P-101-DE-H", "indicator": "velocity_rms_mm_s",
-                              "reason": "coupling work", "duration_s": 3600.0, "by": "night"})
+        await layer.command({"cmd": "shelve", "point": "P-101-DE-H", "indicator": "velocity_rms_mm_s",
+                             "reason": "coupling work", "duration_s": 3600.0, "by": "night"})
         # a point-wide ack acknowledges the visible alarm only, with its event
-        res = layer.handle_command({"cmd": "ack", "point": "P-101-DE-H", "by": "A. Operator"})
+        res = await layer.command({"cmd": "ack", "point": "P-101-DE-H", "by": "A. Operator"})
         assert res == {"changed": 1, "events": 1}
         assert events[-1]["data"]["indicator"] == "kurtosis" and events[-1]["data"]["transition"] == "acknowledged"
         # naming the shelved one is refused, nothing changes
         with pytest.raises(CommandError, match=r"velocity_rms_mm_s on P-101-DE-H is shelved .*unshelve it first"):
-            layer.handle_command({"cmd": "ack", "point": "P-101-DE-H", "indicator": "velocity_rms_mm_s",
-                                  "by": "A. Operator"})
+            await layer.command({"cmd": "ack", "point": "P-101-DE-H", "indicator": "velocity_rms_mm_s",
+                                 "by": "A. Operator"})
         rc = await asyncio.to_thread(main, ["alarms", "--state-dir", str(short_tmp), "ack", "P-101-DE-H",
                                             "--indicator", "velocity_rms_mm_s"])
         assert rc == 2
-        layer.handle_command({"cmd": "unshelve", "point": "P-101-DE-H", "by": "night"})
+        await layer.command({"cmd": "unshelve", "point": "P-101-DE-H", "by": "night"})
         assert events[-1]["data"]["transition"] == "unshelved"
         assert events[-1]["data"]["alarm_state"] == "unacknowledged"  # still waiting for someone
-        res = layer.handle_command({"cmd": "ack", "point": "P-101-DE-H", "by": "A. Operator"})
+        res = await layer.command({"cmd": "ack", "point": "P-101-DE-H", "by": "A. Operator"})
         assert res == {"changed": 1, "events": 1}
         rows = await asyncio.to_thread(layer.history, "P-101-DE-H")
         velocity = [(r.transition, r.by) for r in rows if r.indicator == "velocity_rms_mm_s"]

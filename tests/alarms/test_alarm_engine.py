@@ -190,7 +190,7 @@ async def test_iso_baseline_rule_and_relearn(short_tmp: Path) -> None:
     assert [e["data"]["transition"] for e in events] == ["learned"]
     await _feed(layer, [2.0, 2.0], t0=2000.0)
     assert layer.state_text("P-101-DE-H") == "ALERT velocity_rms_mm_s"  # 2.0 ≥ 1.7, below B/C
-    res = layer.handle_command({"cmd": "relearn", "point": "P-101-DE-H", "by": "analyst"})
+    res = await layer.command({"cmd": "relearn", "point": "P-101-DE-H", "by": "analyst"})
     assert res["changed"] == 1
     assert layer.snapshot()["alarms"][0]["alert"] == pytest.approx(2.8)
     await _feed(layer, [3.0] * 5, t0=3000.0)  # a high baseline is capped at 1.25 × B/C

@@ -200,9 +200,9 @@ async def test_history_from_the_durable_store(short_tmp: Path) -> None:
     layer = await make_layer(cfg, clock, events)
     layer.on_source("plant", True)
     await frames(layer, clock, 100.0, {POINTS[0]: [3.5, 3.5, 6.0, 6.0], POINTS[1]: [1.0] * 4})
-    layer.handle_command({"cmd": "ack", "point": POINTS[0], "by": "J. Operator"})
-    layer.handle_command({"cmd": "shelve", "point": POINTS[0], "reason": "coupling work", "duration_s": 7200.0,
-                          "by": "J. Operator"})
+    await layer.command({"cmd": "ack", "point": POINTS[0], "by": "J. Operator"})
+    await layer.command({"cmd": "shelve", "point": POINTS[0], "reason": "coupling work", "duration_s": 7200.0,
+                         "by": "J. Operator"})
     await layer.stop()
     layer = await make_layer(cfg, clock, events)  # read back after a restart
     try:
@@ -220,7 +220,7 @@ async def test_history_from_the_durable_store(short_tmp: Path) -> None:
                                                                                  "escalated"]
         with pytest.raises(ValueError, match="limit"):
             layer.history(limit=0)
-        listed = layer.handle_command({"cmd": "history", "point": POINTS[0], "limit": 2})
+        listed = await layer.command({"cmd": "history", "point": POINTS[0], "limit": 2})
         assert [r["transition"] for r in listed] == ["shelved", "acknowledged"]
     finally:
         await layer.stop()
@@ -323,8 +323,8 @@ async def test_operator_actions_during_an_outage_take_the_time_of_the_action(sho
             clock.t += 1.0
             wall.t += 1.0
             await tick(layer)
-        layer.handle_command({"cmd": "ack", "point": POINTS[0], "by": "A. Operator"})
-        layer.handle_command({"cmd": "shelve", "point": POINTS[1], "reason": "cable work", "duration_s": 120.0})
+        await layer.command({"cmd": "ack", "point": POINTS[0], "by": "A. Operator"})
+        await layer.command({"cmd": "shelve", "point": POINTS[1], "reason": "cable work", "duration_s": 120.0})
         acted = wall.t
         rows = layer.history()
         assert [(r.kind, r.transition) for r in rows[:3]] == [("alarm", "shelved"), ("alarm", "acknowledged"),
@@ -458,7 +458,7 @@ async def test_an_action_during_an_outage_says_the_machine_state_is_unknown(shor
         assert raised and raised[-1]["machine_state"] == "running" and "last_machine_state" not in raised[-1]
         layer.on_source("plant", False)
         await tick(layer)
-        layer.handle_command({"cmd": "ack", "point": POINTS[0], "by": "J. Operator"})
+        await layer.command({"cmd": "ack", "point": POINTS[0], "by": "J. Operator"})
         ack = [e["data"] for e in of_type(events, ALARM_TYPE) if e["data"]["transition"] == "acknowledged"]
         assert len(ack) == 1
         assert (ack[0]["machine_state"], ack[0]["last_machine_state"], ack[0]["stale"]) == \

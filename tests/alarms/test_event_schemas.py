@@ -17,7 +17,6 @@ from jsonschema.exceptions import ValidationError
 from edgevib.daemon.alarms import feed
 from edgevib.daemon.alarms.engine import AlarmLayer
 from edgevib.daemon.alarms.feed import ALARM_TYPE, BASELINE_TYPE, SENSOR_TYPE
-from edgevib.daemon.alarms.sink import create_sink
 from edgevib.daemon.config import parse_config
 from edgevib.daemon.eventschemas import EVENT_TYPES, schema
 from edgevib.daemon.trendwatch import create_trend_watch
@@ -104,7 +103,7 @@ async def test_alarm_and_baseline_events_meet_their_schemas(short_tmp: Path) -> 
                     {"cmd": "shelve", "point": "P-101-DE-H", "reason": "pump on test run", "duration_s": 600.0},
                     {"cmd": "unshelve", "point": "P-101-DE-H", "by": "operator"},
                     {"cmd": "relearn", "point": "P-101-DE-H", "by": "analyst"}):
-            layer.handle_command(cmd)
+            await layer.command(cmd)
         await _feed(layer, [1.0] * 6, t0=3000.0)  # cleared, learned again
     finally:
         await layer.stop()
@@ -147,8 +146,7 @@ async def test_an_alarm_event_with_its_trend_meets_the_schema(short_tmp: Path) -
         "trend": {"evaluate_s": 3600.0, "min_span_h": 24.0},
         "feed": FEED,
     }, short_tmp)
-    layer = create_sink(cfg)
-    assert layer is not None
+    layer = alarm_layer(cfg)
     watch = create_trend_watch(cfg, layer)
     assert watch is not None
     events: list[dict[str, Any]] = []
