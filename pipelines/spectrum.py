@@ -338,22 +338,25 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     c, k = amp.shape
     amp3 = amp.copy()
     amp3[:, 1:-1] = np.maximum(np.maximum(amp[:, :-2], amp[:, 1:-1]), amp[:, 2:])
-    cand, at, between = _speed_candidates(speed_range_hz[0], speed_range_hz[1], df_hz, k, harmonics)
-    score = np.zeros((c, cand.size))
-    for h in range(harmonics):
-        score += amp3[:, at[h]]
-        score -= amp3[:, between[h]]
+    cand, lines = _speed_candidates(speed_range_hz[0], speed_range_hz[1], df_hz, k, harmonics)
+    g = _gather(amp3, lines[None])  # (channels, 2 × harmonics, candidates): lines at h and h − ½ × candidates
+    score = g[:, 0].copy()
+    score -= g[:, 1]
+    for h in range(1, harmonics):  # (summed in this order, harmonic by harmonic)
+        score += g[:, 2 * h]
+        score -= g[:, 2 * h + 1]
     # the best few distinct candidates (local maxima of the score), best first
     local = np.ones(score.shape, dtype=bool)
     local[:, 1:] &= score[:, 1:] >= score[:, :-1]
     local[:, :-1] &= score[:, :-1] >= score[:, 1:]
     order = np.argsort(np.where(local, -score, np.inf), axis=-1)[:, :SPEED_CANDIDATES]  # (channels, K)
-    cand_score = np.take_along_axis(np.where(local, score, -np.inf), order, axis=-1)
+    cand_score = _gather(np.where(local, score, -np.inf), order)
     b = np.rint(cand[order]).astype(np.intp)
     acc = np.sqrt(acc_pow)
     peak = window_argmax(acc, b - 1, b + 1)
     peak = np.minimum(np.maximum(peak, 1), k - 2)
-    left, mid, right = _gather(acc, peak - 1), _gather(acc, peak), _gather(acc, peak + 1)
+    three = _gather(acc, peak[..., None] + _NEIGHBOURS)
+    left, mid, right = three[..., 0], three[..., 1], three[..., 2]
     side = np.where(right >= left, 1.0, -1.0)
     with np.errstate(divide="ignore", invalid="ignore"):
         alpha = np.maximum(left, right) / mid
@@ -368,7 +371,8 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     lo_line = max(1, math.floor(speed_range_hz[0] / df_hz))
     hi_line = min(k, math.ceil(speed_range_hz[1] / df_hz) + 1)
     strongest = amp[:, lo_line:hi_line].max(axis=-1)
-    valid &= _gather(amp3, peak) >= SPEED_MIN_SHARE * strongest[:, None]
+    line_1x = _gather(amp3, peak)
+    valid &= line_1x >= SPEED_MIN_SHARE * strongest[:, None]
     valid &= (f_est >= speed_range_hz[0] * 0.999) & (f_est <= speed_range_hz[1] * 1.001)
     rows = np.arange(c)
     first = np.argmax(valid, axis=-1)
@@ -380,18 +384,12 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
         first = np.where(has_shaft, np.argmax(cage_of, axis=-1), first)
         f_w = f_est[rows, first]
     s_w = cand_score[rows, first]
-    line_1x = _gather(amp3, peak)
     a_w = line_1x[rows, first]
-
-    def related_to(f0: FloatArray) -> npt.NDArray[np.bool_]:
-        ratio = (f_est / f0[:, None])[..., None]
-        near = (np.abs(ratio - _RELATED) <= _RELATED_TOL) | (np.abs(1.0 / ratio - _RELATED) <= _RELATED_TOL)
-        out: npt.NDArray[np.bool_] = near.any(axis=-1)
-        return out
-
-    explained = related_to(f_w)
-    if cage_ratio is not None:
-        explained |= related_to(cage_ratio * f_w)  # the winner's cage line and its harmonics
+    # candidates related to the winner (and, with cage_ratio, to the winner's cage line and its harmonics)
+    f0 = f_w[:, None] if cage_ratio is None else np.stack([f_w, cage_ratio * f_w], axis=1)  # (channels, 1 or 2)
+    ratio = (f_est[:, None, :] / f0[:, :, None])[..., None]
+    near = (np.abs(ratio - _RELATED) <= _RELATED_TOL) | (np.abs(1.0 / ratio - _RELATED) <= _RELATED_TOL)
+    explained = near.any(axis=(1, 3))
     rival = np.where(valid & ~explained, cand_score, 0.0).max(axis=-1)
     with np.errstate(divide="ignore", invalid="ignore"):
         quality = np.minimum(np.maximum(1.0 - rival / s_w, 0.0), 1.0)  # (np.clip costs ten times as much)
@@ -438,15 +436,16 @@ _RELATED_TOL.flags.writeable = False
 
 @lru_cache(maxsize=64)
 def _speed_candidates(lo_hz: float, hi_hz: float, df_hz: float, k: int,
-                      harmonics: int) -> tuple[FloatArray, tuple[IntArray, ...], tuple[IntArray, ...]]:
+                      harmonics: int) -> tuple[FloatArray, IntArray]:
     """The candidate speeds of :func:`estimate_speed_hz` in lines (steps of a third of a line) and, per harmonic
-    h = 1 … ``harmonics``, the lines of h × each candidate and of (h − ½) × it (a plan's constants: kept)."""
+    h = 1 … ``harmonics``, the lines of h × each candidate and of (h − ½) × it, shape (2 × harmonics, candidates)
+    in that order (a plan's constants: kept)."""
     cand = np.arange(lo_hz / df_hz, hi_hz / df_hz + 1e-9, 1.0 / 3.0)
-    at = tuple(np.minimum(np.rint(h * cand).astype(np.intp), k - 1) for h in range(1, harmonics + 1))
-    between = tuple(np.minimum(np.rint((h - 0.5) * cand).astype(np.intp), k - 1) for h in range(1, harmonics + 1))
-    for a in (cand, *at, *between):
+    lines = np.stack([np.minimum(np.rint(m * cand).astype(np.intp), k - 1)
+                      for h in range(1, harmonics + 1) for m in (h, h - 0.5)])
+    for a in (cand, lines):
         a.flags.writeable = False
-    return cand, at, between
+    return cand, lines
 
 
 def _refined_lines(acc: FloatArray, f_hz: FloatArray,
