@@ -657,12 +657,14 @@ def _refined_peaks(w: npt.NDArray[np.floating[Any]]) -> FloatArray:
     ndarray, shape (2, rows): the refined maxima, then the refined maxima of −w (in float64)
     """
     r, m = w.shape
-    i = np.concatenate([np.argmax(w, axis=-1), np.argmin(w, axis=-1)])  # (the refinement only uses in-range
-    rows = np.concatenate([np.arange(r), np.arange(r)])  # neighbours)
-    sign = np.repeat(np.array([1.0, -1.0]), r)
-    a = sign * w[rows, np.maximum(i - 1, 0)]
-    b = sign * w[rows, i]
-    c = sign * w[rows, np.minimum(i + 1, m - 1)]
+    i = np.concatenate([w.argmax(axis=-1), w.argmin(axis=-1)])
+    rows = np.arange(2 * r)
+    rows[r:] -= r
+    sign = np.repeat(_SIGNS, r)
+    j = i[:, None] + _NEIGHBOURS  # the extreme sample and its neighbours (the refinement only uses in-range ones)
+    np.minimum(np.maximum(j, 0, out=j), m - 1, out=j)
+    abc = sign[:, None] * w[rows[:, None], j]
+    a, b, c = abc[:, 0], abc[:, 1], abc[:, 2]
     with np.errstate(divide="ignore", invalid="ignore"):
         cos_phi = (a + c) / (2.0 * b)
         sin_phi = np.sqrt(np.maximum(1.0 - cos_phi**2, 0.0))
@@ -673,6 +675,12 @@ def _refined_peaks(w: npt.NDArray[np.floating[Any]]) -> FloatArray:
     inner = (i > 0) & (i < m - 1)  # an extreme sample on the edge has no neighbour to refine with
     peak: FloatArray = np.where(inner, np.where(use_cosine, np.maximum(cosine, b), parabola), b).reshape(2, r)
     return peak
+
+
+_SIGNS = np.array([1.0, -1.0])
+_NEIGHBOURS = np.arange(-1, 2)
+for _a in (_SIGNS, _NEIGHBOURS):
+    _a.flags.writeable = False
 
 
 def _shaft_array(shaft_hz: npt.ArrayLike | None, channels: int, fs_hz: float) -> FloatArray:

@@ -155,8 +155,10 @@ def demodulate(spec: npt.NDArray[np.complexfloating[Any, Any]], k_lo: int, k_hi:
     (relative error ~1e-7, far below any envelope floor).  Times ``2m/N`` its magnitude is the envelope
     ``|hilbert(bandpass(x))|`` in the unit of the frame (g); :func:`envelope_spectra` applies that factor.
     """
-    z = np.zeros((spec.shape[0], m), dtype=np.complex64)
-    z[:, : k_hi - k_lo + 1] = spec[:, k_lo : k_hi + 1]  # shift to baseband (and to single precision)
+    width = k_hi - k_lo + 1
+    z = np.empty((spec.shape[0], m), dtype=np.complex64)
+    z[:, :width] = spec[:, k_lo : k_hi + 1]  # shift to baseband (and to single precision)
+    z[:, width:] = 0.0
     out: npt.NDArray[np.complex64] = _fft.ifft(z, m, overwrite=True)
     return out
 
@@ -518,7 +520,7 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     has = fund.index >= 0
     k1 = np.where(has, fund.index, 0).astype(np.float64)
     # 3. harmonics (around h × the found line, else h × the expected one) and sidebands (around the found line)
-    h = np.arange(2, harmonics + 1, dtype=np.float64)
+    h = _harmonic_orders(harmonics)
     h_centre = np.where(has[..., None], k1[..., None] * h, f_centre[..., None] * h)
     h_half = np.where(has[..., None], np.ceil(h / 2.0) + 1.0, np.maximum(1.0, slip * f_centre[..., None] * h))
     mod = modulation_hz / df_hz
@@ -550,8 +552,7 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     # its windows, significant or not) whose own fundamental is significant
     local = index >= 0
     near = np.abs(index[:, :, None, :, None] - index[:, None, :, None, :]) <= 1  # (c, A, B, qA, qB)
-    eye = np.eye(nf, dtype=bool)[None, :, :]
-    on_other = (near[:, :, :, 0, :] & local[:, None, :, :]).any(axis=-1) & local[:, :, None, 0] & ~eye
+    on_other = (near[:, :, :, 0, :] & local[:, None, :, :]).any(axis=-1) & local[:, :, None, 0] & _not_eye(nf)
     shared = near & found[:, :, None, :, None] & local[:, None, :, None, :]  # A's counted lines on B's lines
     unique_a = (found[:, :, None, :] & ~shared.any(axis=-1)).sum(axis=-1)  # (c, A, B): A's lines B lacks
     unique_b = np.swapaxes(unique_a, 1, 2)  # B's lines A lacks
@@ -562,11 +563,12 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     # counted lines are all that family's found sidebands' spacings is its modulation, not a defect of its own
     carried = _modulation_explains(index, found, significant, expected_hz, modulation_hz, slots - harmonics)
     modulated = detected[:, :, None] & carried & ~ambiguous[:, :, None]
-    ambiguous_with = np.where(modulated.any(axis=-1), np.argmax(modulated, axis=-1), ambiguous_with)
-    ambiguous |= modulated.any(axis=-1)
+    is_modulation = modulated.any(axis=-1)
+    ambiguous_with = np.where(is_modulation, modulated.argmax(axis=-1), ambiguous_with)
+    ambiguous |= is_modulation
     if gaps is not None:
         gap, shaft_order = gaps
-        shaft_near = shaft.found[:, shaft_order - 1] & established  # (c, A)
+        shaft_near = s_found[:, shaft_order - 1] & established  # (c, A)
         present = np.concatenate([np.broadcast_to(significant[:, None, :], (c, nf, nf)),
                                   shaft_near[:, :, None]], axis=-1)  # (c, A, B + shaft)
         close = (gap[None, :, :] * shaft_hz[:, None, None] / df_hz < 1.0) & present
@@ -575,7 +577,7 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
         ambiguous |= unresolved
     # a fundamental on a shaft line the shaft series does not claim (step 1) is the family's only with a harmonic
     # of its own counted: a lone line on a whole order is as much a single shaft-synchronous modulation
-    s_idx = np.where(shaft.found, shaft.index, -10)  # (c, orders)
+    s_idx = np.where(s_found, shaft.index, -10)  # (c, orders)
     on_shaft = has & ~established & (np.abs(k1i[..., None] - s_idx[:, None, :]) <= 1).any(axis=-1)
     lone = detected & on_shaft & (found[..., 1:harmonics].sum(axis=-1) == 0) & ~ambiguous
     ambiguous_with = np.where(lone, nf, ambiguous_with)
@@ -663,6 +665,22 @@ def shaft_series_established(shaft: LineSearch, candidate: IntArray) -> BoolArra
     tol = np.where(h <= 1, 1.0, np.ceil(h / 2.0) + 1.0)
     explained = has & (h >= 1) & (np.abs(idx - h * cand) <= tol)
     out: BoolArray = np.asarray((shaft.found[:, None, :] & ~explained).any(axis=-1))
+    return out
+
+
+@lru_cache(maxsize=16)
+def _harmonic_orders(harmonics: int) -> FloatArray:
+    """2 … ``harmonics`` (the harmonic slots' multiples of a fundamental)."""
+    out = np.arange(2, harmonics + 1, dtype=np.float64)
+    out.flags.writeable = False
+    return out
+
+
+@lru_cache(maxsize=16)
+def _not_eye(families: int) -> BoolArray:
+    """``~eye``, shape (1, families, families): pairs of two different families."""
+    out = ~np.eye(families, dtype=bool)[None, :, :]
+    out.flags.writeable = False
     return out
 
 
