@@ -89,7 +89,6 @@ class AlarmLayer:
                  block_arrival: Callable[[str], float | None] | None = None,
                  config_refusal: Callable[[str], str | None] | None = None, tracks_sources: bool = False,
                  clock: Callable[[], float] = time.time, monotonic: Callable[[], float] = time.monotonic) -> None:
-        self.config = config
         self.settings = config.alarm_settings
         self.store, self.mqtt, self.webhook, self.control = store, mqtt, webhook, control
         self.clock = clock
