@@ -114,6 +114,8 @@ CREATE TABLE IF NOT EXISTS baselines (
 # that go back to the file system; the per-point indexes serve the queries.
 # version found in the file -> SQL that brings it to version + 1 (none yet: version 1 is the first layout)
 MIGRATIONS: dict[int, str] = {}
+_INSERT_ROLLUP = ("INSERT OR REPLACE INTO rollups (point, level, start_s, layout, closed, stats, sketch) "
+                  "VALUES (?, ?, ?, ?, ?, ?, ?)")
 
 
 class HistoryError(EdgevibError):
@@ -280,14 +282,12 @@ class _Open:
 class HistoryStats:
     """Counters of the recorder (read by the metrics collector)."""
 
-    recorded: int = 0
     written: int = 0
     dropped: int = 0
     late: int = 0
     write_errors: int = 0
     pruned: dict[str, int] = field(default_factory=lambda: dict.fromkeys(_PRUNE_ORDER, 0))
     bytes: int = 0
-    flushes: int = 0
 
 
 class HistoryRecorder:
@@ -378,11 +378,13 @@ class HistoryRecorder:
             raise HistoryError(f"{v.size} values for {len(self.indicators)} indicators")
         with self._lock:
             self._pending.append((point, int(t_ns), v, code))
-            self.stats.recorded += 1
-            excess = len(self._pending) - self.settings.max_pending
-            for _ in range(max(0, excess)):
-                self._pending.popleft()
-                self.stats.dropped += 1
+            self._drop_excess()
+
+    def _drop_excess(self) -> None:
+        """Keep the queue within ``max_pending`` frames, dropping (and counting) the oldest; under ``_lock``."""
+        for _ in range(max(0, len(self._pending) - self.settings.max_pending)):
+            self._pending.popleft()
+            self.stats.dropped += 1
 
     @property
     def pending(self) -> int:
@@ -409,14 +411,10 @@ class HistoryRecorder:
                                  error=str(exc), frames=len(batch), path=str(self.db.path))
                 with self._lock:  # put them back in front, oldest first, within the bound
                     self._pending.extendleft(reversed(batch))
-                    excess = len(self._pending) - self.settings.max_pending
-                    for _ in range(max(0, excess)):
-                        self._pending.popleft()
-                        self.stats.dropped += 1
+                    self._drop_excess()
                 self._reload_open()
                 return 0
             self.stats.written += len(batch)
-            self.stats.flushes += 1
             try:
                 self._prune()
             except sqlite3.Error as exc:
@@ -473,8 +471,7 @@ class HistoryRecorder:
                     self._write_period(c, pid, op)
                 if op.dirty:
                     self._open_rows(pid, op, rollups)
-            c.executemany("INSERT OR REPLACE INTO rollups (point, level, start_s, layout, closed, stats, sketch) "
-                          "VALUES (?, ?, ?, ?, ?, ?, ?)", rollups)
+            c.executemany(_INSERT_ROLLUP, rollups)
 
     @staticmethod
     def _write_period(c: sqlite3.Connection, pid: int, op: _Open) -> None:
@@ -571,8 +568,7 @@ class HistoryRecorder:
                 self._open_rows(self.db.point_id(point), op, rows, with_minute=True)
         if rows:
             with self.db.transaction() as c:
-                c.executemany("INSERT OR REPLACE INTO rollups (point, level, start_s, layout, closed, stats, "
-                              "sketch) VALUES (?, ?, ?, ?, ?, ?, ?)", rows)
+                c.executemany(_INSERT_ROLLUP, rows)
 
     # ------------------------------------------------------------------ pruning
 
@@ -588,14 +584,13 @@ class HistoryRecorder:
                     pid = self.db.point_id(point)
                     latest_s = op.latest_ns / 1e9
                     cut = round((latest_s - self.settings.recent_s) * 1e9)
-                    n = tx.execute("DELETE FROM frames WHERE point = ? AND t_ns < ?", (pid, cut)).rowcount
+                    tx.execute("DELETE FROM frames WHERE point = ? AND t_ns < ?", (pid, cut))
                     for lname, length in LEVELS.items():
                         cut_s = math.floor(latest_s - self.settings.retention_s(lname)) // length * length
                         tx.execute("DELETE FROM rollups WHERE point = ? AND level = ? AND start_s < ? AND closed = 1",
                                    (pid, length, cut_s))
                     tx.execute("DELETE FROM periods WHERE point = ? AND end_ns < ?",
                                (pid, round((latest_s - self.settings.day_s) * 1e9)))
-                    del n
             _vacuum(c)  # hand the deleted rows' pages back to the file system (at the next checkpoint)
         budget = self.settings.max_bytes
         if self.db.size_bytes() <= budget:
@@ -662,25 +657,22 @@ class HistoryRecorder:
     def write_projection(self, point: str, indicator: str, t_ns: int, body: Mapping[str, Any]) -> None:
         """Store the latest projection of a series (a JSON document; see :mod:`edgevib.daemon.projection`)."""
         text = json.dumps(body, separators=(",", ":"), allow_nan=False)
-        with self._flush_lock:
-            try:
-                with self.db.transaction() as c:
-                    c.execute("INSERT OR REPLACE INTO projections (point, indicator, t_ns, body) VALUES (?, ?, ?, ?)",
-                              (self.db.point_id(point), indicator, int(t_ns), text))
-            except sqlite3.Error as exc:
-                self.stats.write_errors += 1
-                self._rlog.error("history-projection", "history write failed", error=str(exc))
+        self._write_row("history-projection", "INSERT OR REPLACE INTO projections (point, indicator, t_ns, body) "
+                        "VALUES (?, ?, ?, ?)", point, (indicator, int(t_ns), text))
 
     def write_baseline(self, point: str, indicator: str, mean: float, std: float, n: int, t_ns: int) -> None:
+        self._write_row("history-baseline", "INSERT OR REPLACE INTO baselines (point, indicator, mean, std, n, t_ns) "
+                        "VALUES (?, ?, ?, ?, ?, ?)", point, (indicator, float(mean), float(std), int(n), int(t_ns)))
+
+    def _write_row(self, what: str, sql: str, point: str, values: tuple[Any, ...]) -> None:
+        """One row of the point in its own transaction; a failure is logged and counted, never raised."""
         with self._flush_lock:
             try:
                 with self.db.transaction() as c:
-                    c.execute("INSERT OR REPLACE INTO baselines (point, indicator, mean, std, n, t_ns) "
-                              "VALUES (?, ?, ?, ?, ?, ?)", (self.db.point_id(point), indicator, float(mean),
-                                                            float(std), int(n), int(t_ns)))
+                    c.execute(sql, (self.db.point_id(point), *values))
             except sqlite3.Error as exc:
                 self.stats.write_errors += 1
-                self._rlog.error("history-baseline", "history write failed", error=str(exc))
+                self._rlog.error(what, "history write failed", error=str(exc))
 
     # ------------------------------------------------------------------ lifecycle (event loop)
 
