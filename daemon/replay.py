@@ -42,7 +42,7 @@ import re
 import sys
 import tempfile
 import time
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
@@ -82,6 +82,7 @@ from edgevib.pipelines.types import AnalysisPlan, FrameIndicators, PipelineError
 __all__ = ["ReplayOptions", "configure_replay", "replay", "run_replay", "snapshot_files", "snapshot_times"]
 
 _BATCH = 64
+OnError = Callable[[Path | None, str], None]  # (the file skipped, or None for a note; the message)
 _COPY_GAP_S = 0.05  # modification times closer than this (median gap) are copy times, not snapshot times
 _NAME_TIMES = (
     (re.compile(r"(\d{4})(\d{2})(\d{2})T(\d{2})(\d{2})(\d{2})(\.\d+)?Z?"), True),
@@ -394,20 +395,19 @@ def _read(index: int, path: Path, t_s: float, o: ReplayOptions) -> _Snap:
 
 
 def _read_batch(indices: list[int], files: list[Path], times: list[float], o: ReplayOptions,
-                on_error: Any) -> list[_Snap]:
+                on_error: OnError) -> list[_Snap]:
     """The snapshots that can be read (the others reported through ``on_error``)."""
     snaps: list[_Snap] = []
     for i in indices:
         try:
             snaps.append(_read(i, files[i], times[i], o))
         except (InputError, PipelineError) as exc:
-            if on_error is not None:
-                on_error(files[i], str(exc))
+            on_error(files[i], str(exc))
     return snaps
 
 
 def _analyze_batch(snaps: list[_Snap], o: ReplayOptions, plans: dict[tuple[float, int, float | None], AnalysisPlan],
-                   noted: set[str], on_error: Any) -> dict[int, FrameIndicators]:
+                   noted: set[str], on_error: OnError) -> dict[int, FrameIndicators]:
     """The indicators of each snapshot by index, analysed in groups of one rate, length and speed."""
     groups: dict[tuple[float, int, float | None], list[_Snap]] = {}
     for s in snaps:
@@ -420,15 +420,14 @@ def _analyze_batch(snaps: list[_Snap], o: ReplayOptions, plans: dict[tuple[float
             if key not in plans:
                 plans[key], notes = _plan(fs, n, o, shaft)
                 for note in notes:
-                    if note not in noted and on_error is not None:
+                    if note not in noted:
                         noted.add(note)
                         on_error(None, note)
             inds = analyze_frames(np.stack([m.x_g for m in members]), plans[key],
                                   None if shaft is None else np.full(len(members), shaft))
         except (InputError, PipelineError) as exc:
             for m in members:
-                if on_error is not None:
-                    on_error(m.path, str(exc))
+                on_error(m.path, str(exc))
             continue
         for m, ind in zip(members, inds, strict=True):
             results[m.index] = ind
@@ -446,9 +445,10 @@ def _frame(s: _Snap, ind: FrameIndicators, o: ReplayOptions, iso: tuple[float, f
 
 
 def replay(files: list[Path], times: list[float], o: ReplayOptions, history_path: Path, *,
-           on_error: Any = None) -> Iterator[dict[str, Any]]:
+           on_error: OnError | None = None) -> Iterator[dict[str, Any]]:
     """Yield one document per snapshot (see the module docstring), in time order.  ``on_error(path, message)``
     is called for a file that is skipped."""
+    notify: OnError = on_error or (lambda _path, _message: None)
     order = sorted(range(len(files)), key=lambda i: (times[i], i))
     settings = HistorySettings(file=str(history_path), path=str(history_path), recent_s=120.0,
                                minute_s=3660 * 86400.0, hour_s=3660 * 86400.0, day_s=36600 * 86400.0,
@@ -463,13 +463,12 @@ def replay(files: list[Path], times: list[float], o: ReplayOptions, history_path
     last_docs: tuple[int, dict[str, Any]] | None = None
     try:
         for b0 in range(0, len(order), _BATCH):
-            snaps = _read_batch(order[b0:b0 + _BATCH], files, times, o, on_error)
-            results = _analyze_batch(snaps, o, plans, noted, on_error)
+            snaps = _read_batch(order[b0:b0 + _BATCH], files, times, o, notify)
+            results = _analyze_batch(snaps, o, plans, noted, notify)
             for s in snaps:
-                found = results.get(s.index)
-                if found is None:
+                ind = results.get(s.index)
+                if ind is None:
                     continue
-                ind = found
                 r = _frame(s, ind, o, iso)
                 state = running_state(ind.velocity_rms_mm_s, ind.shaft_hz, ind.shaft_estimated, o.run_threshold_rpm,
                                       o.run_threshold_velocity_mm_s)

@@ -410,7 +410,7 @@ class ViewService:
                 ind = r.indicators
                 self._broadcast("frame", {"point": r.point_id, "frame_end": rfc3339(r.t_end_ns),
                                           "velocity_rms_mm_s": ind.velocity_rms_mm_s, "iso_zone": r.iso_zone,
-                                          "shaft_hz": ind.shaft_hz, "state": self._state_text(r.point_id)})
+                                          "shaft_hz": ind.shaft_hz, "state": self.daemon.state_text(r.point_id)})
 
     async def stop(self) -> None:
         self._close_streams()
@@ -565,13 +565,6 @@ class ViewService:
             "advisory": "edgevib monitors and advises; it is not a machinery protection system.",
         })
 
-    def _state_text(self, pid: str) -> str | None:
-        return self.daemon.state_text(pid)
-
-    def _alarm_rows(self, point: str | None = None) -> tuple[list[dict[str, Any]], dict[str, Any]]:
-        rows, sensors, _ = self._alarm_snapshot(point)
-        return rows, sensors
-
     def _alarm_snapshot(self, point: str | None = None,
                         ) -> tuple[list[dict[str, Any]], dict[str, Any], dict[str, Any]]:
         """The alarm layer's limit rows, sensor states and per-point rows (machine state, data gap, source)."""
@@ -614,7 +607,7 @@ class ViewService:
             "envelope_note": p.envelope_note, "bearing": p.bearing is not None,
             **dict(zip(("machine_state", "last_machine_state"), self._machine_state(m.id, r), strict=True)),
             "iso": None if m.group is None else {"group": m.group, "support": m.support},
-            "alarm_state": self._state_text(p.id) or "-",
+            "alarm_state": self.daemon.state_text(p.id) or "-",
             "alarms": [row for row in rows if row.get("point") == p.id and self._active(row)],
             "limits": {row["indicator"]: {"alert": row.get("alert"), "danger": row.get("danger")}
                        for row in rows if row.get("point") == p.id},
@@ -748,7 +741,7 @@ class ViewService:
             return problem(400, str(exc))
         limit = _int_param(request, "max_points", 2, TREND_MAX_POINTS) or TREND_MAX_POINTS
         known = self.recent.indicators(p.id)
-        rows, _ = self._alarm_rows(p.id)
+        rows, _, _ = self._alarm_snapshot(p.id)
         limits = self._limits_for(indicator, rows)
         lines = self._limit_lines(p, limits["indicator"], limits)
         stored = await self._history_trend(p.id, limits["indicator"], since, limit)
@@ -825,7 +818,7 @@ class ViewService:
         point = request.query.get("point")
         if point is not None and point not in {p.id for p in self.daemon.config.points}:
             return problem(404, f"unknown point {point[:128]!r}")
-        rows, sensors = self._alarm_rows(point)
+        rows, sensors, _ = self._alarm_snapshot(point)
         active = [row for row in rows if self._active(row)]
         return json_response({"api": API_VERSION, "time": rfc3339(self.clock_ns()),
                               "alarm_layer": self.daemon.alarm_view is not None, "alarms": active,
