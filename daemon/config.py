@@ -61,6 +61,7 @@ from edgevib.common.bands import envelope_band, min_frame_samples
 from edgevib.common.toml_writer import dump_toml
 from edgevib.common.wire import DEFAULT_MAX_PAYLOAD_BYTES, DEFAULT_MAX_SAMPLES
 from edgevib.daemon.errors import ConfigError
+from edgevib.daemon.indicators import LIMITABLE
 from edgevib.daemon.shard import Shard, owns_point, validate_shard
 
 if TYPE_CHECKING:
@@ -111,7 +112,6 @@ __all__ = [
     "verify_for_run",
 ]
 
-G_M_S2 = 9.80665  # standard gravity, exact (3rd CGPM 1901)
 MAX_POINTS = 1000
 MAX_FRAME_SAMPLES = 1 << 20
 MIN_FRAME_SAMPLES = 256
@@ -872,8 +872,6 @@ class PointLimits(_Table):
 
     @model_validator(mode="after")
     def _indicators(self) -> PointLimits:
-        from edgevib.daemon.indicators import LIMITABLE
-
         for name, lim in self.indicators.items():
             if name not in LIMITABLE:
                 raise _Problem(name, f"unknown indicator{_did_you_mean(name, ['health', *LIMITABLE])} "
@@ -1154,8 +1152,6 @@ class TrendConfig(_Table):
 
     @model_validator(mode="after")
     def _trend(self) -> TrendConfig:
-        from edgevib.daemon.indicators import LIMITABLE  # the scalar indicators the history records
-
         for i, name in enumerate(self.indicators):
             if name not in LIMITABLE:
                 raise _Problem(f"indicators[{i}]", f"unknown indicator {name!r}{_did_you_mean(name, list(LIMITABLE))}"

@@ -30,7 +30,8 @@ import numpy as np
 import numpy.typing as npt
 
 from edgevib.common.wire import DEFAULT_MAX_PAYLOAD_BYTES, DEFAULT_MAX_SAMPLES, Block, WireError, decode
-from edgevib.daemon.config import G_M_S2, Config, MachineConfig, MqttSourceConfig, PointConfig, SpeedTag
+from edgevib.daemon.config import Config, MachineConfig, MqttSourceConfig, PointConfig, SpeedTag
+from edgevib.daemon.indicators import G_M_S2
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 
 __all__ = [

@@ -17,7 +17,8 @@ import aiohttp
 import pytest
 
 from edgevib.daemon.app import Daemon
-from edgevib.daemon.config import G_M_S2, ViewConfig
+from edgevib.daemon.config import ViewConfig
+from edgevib.daemon.indicators import G_M_S2
 from edgevib.daemon.service import demo_config
 from edgevib.daemon.web.actions import Actions
 from edgevib.simulator.engine import Simulation, load_scenario
