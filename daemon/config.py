@@ -1251,22 +1251,14 @@ class Config(_Table):
         return plan
 
     def source(self, name: str) -> MqttSourceConfig | OpcUaSourceConfig | SimulatedSourceConfig:
-        for s in self.sources:
-            if s.name == name:
-                return s
-        raise KeyError(name)
+        return {s.name: s for s in self.sources}[name]
 
     def machine(self, machine_id: str) -> MachineConfig:
-        for m in self.machines:
-            if m.id == machine_id:
-                return m
-        raise KeyError(machine_id)
+        return {m.id: m for m in self.machines}[machine_id]
 
     def point(self, point_id: str) -> PointConfig:
-        for p in self._points:
-            if p.id == point_id:
-                return p
-        raise KeyError(point_id)
+        """An owned point (KeyError for another instance's or an unknown one)."""
+        return {p.id: p for p in self._points}[point_id]
 
 
 # ------------------------------------------------------------------------------------------------ errors
