@@ -125,7 +125,22 @@ _LEVEL_PER_SIDE = LEVEL_LINES // 2
 _LEVEL_ABOVE_RANK = np.arange(LEVEL_LINES)  # rank of each column above it (taken while rank < the count needed)
 _LEVEL_OFFSET = np.concatenate([-(GUARD_LINES + 1 + LEVEL_STEP * np.arange(_LEVEL_PER_SIDE)),
                                 GUARD_LINES + 1 + LEVEL_STEP * _LEVEL_ABOVE_RANK])
-for _a in (_LEVEL_ABOVE_RANK, _LEVEL_OFFSET):
+
+
+
+def _level_left_out() -> BoolArray:
+    """Level lines left out, per first line of a window (rows; the last row serves every later first line):
+    those below line 2 (line 0 is the mean, line 1 its window leakage), each replaced by one more line above."""
+    first = np.arange(MIN_LINE + GUARD_LINES + 1 + LEVEL_STEP * _LEVEL_PER_SIDE + 1)[:, None]
+    below_ok = first + _LEVEL_OFFSET[:_LEVEL_PER_SIDE] >= 2
+    missing = _LEVEL_PER_SIDE - below_ok.sum(axis=-1)
+    above_ok = (_LEVEL_PER_SIDE + missing)[:, None] > _LEVEL_ABOVE_RANK
+    out: BoolArray = ~np.concatenate([below_ok, above_ok], axis=-1)
+    return out
+
+
+_LEVEL_LEFT_OUT = _level_left_out()
+for _a in (_LEVEL_ABOVE_RANK, _LEVEL_OFFSET, _LEVEL_LEFT_OUT):
     _a.flags.writeable = False
 _TINY = 1e-300
 _MAGNITUDE_BLOCK = 1 << 16  # envelope magnitudes are formed in blocks of rows of about this many samples (256 kB)
@@ -351,15 +366,14 @@ class _Scan:
         width = int((hi_c - lo_c).max()) + 1 if lo_c.size else 1
         rows = np.arange(0, c * k, k).reshape(c, 1, 1) if c > 1 else None
         # each window's lines with one neighbour either side, in one gather (a window's own lines lie at or below
-        # k − 2: the padding beyond a narrower window's last line is clipped and never taken); flat indices into
-        # ses (row offsets added), so the same indices serve every gather of a (channels, lines) array
+        # k − 2: the padding beyond a narrower window's last line is never taken, whatever it reads); flat indices
+        # into ses (row offsets added), so the same indices serve every gather of a (channels, lines) array
         idx = lo_c[..., None] + np.arange(-1, width + 1)
-        np.minimum(idx, k - 1, out=idx)
         valid = idx[..., 1:-1] <= hi_c[..., None]
         if rows is not None:
             idx += rows
         flat = ses.ravel()
-        g = flat.take(idx)
+        g = flat.take(idx, mode="clip")
         v = g[..., 1:-1]
         self.local = valid & (v > g[..., :-2]) & (v >= g[..., 2:])
         self.flat = idx[..., 1:-1]
@@ -369,14 +383,13 @@ class _Scan:
         lines = np.empty((*lo_c.shape, _LEVEL_OFFSET.size), dtype=np.intp)
         np.add(lo_c[..., None], _LEVEL_OFFSET[:_LEVEL_PER_SIDE], out=lines[..., :_LEVEL_PER_SIDE])
         np.add(hi_c[..., None], _LEVEL_OFFSET[_LEVEL_PER_SIDE:], out=lines[..., _LEVEL_PER_SIDE:])
-        ok = lines >= 2
-        missing = _LEVEL_PER_SIDE - ok[..., :_LEVEL_PER_SIDE].sum(axis=-1)
-        ok[..., _LEVEL_PER_SIDE:] = (_LEVEL_PER_SIDE + missing)[..., None] > _LEVEL_ABOVE_RANK
-        np.minimum(np.maximum(lines, 0, out=lines), k - 1, out=lines)  # (np.clip costs ten times as much)
+        # (which are left out depends on the window's first line only; a fitting window's lines above it lie
+        # inside the spectrum, and what the left-out ones read is never used)
+        left_out = _LEVEL_LEFT_OUT[np.minimum(lo_c, _LEVEL_LEFT_OUT.shape[0] - 1)]
         if rows is not None:
             lines += rows
-        vals = flat.take(lines)
-        vals[~ok] = np.inf
+        vals = flat.take(lines, mode="clip")
+        vals[left_out] = np.inf
         vals.partition(LEVEL_RANK - 1, axis=-1)
         self.level = vals[..., LEVEL_RANK - 1] / _LEVEL_FACTOR
         m_lines = np.minimum(hi_c - lo_c + 1, thresholds.size - 1)
@@ -388,7 +401,7 @@ class _Scan:
         ``exclude_in`` (shape (channels, windows); default all)."""
         if excluded is None:
             return self.local
-        barred = excluded.ravel().take(self.flat)
+        barred = excluded.ravel().take(self.flat, mode="clip")  # (padding beyond a window: never taken)
         if exclude_in is not None:
             barred &= exclude_in[..., None]
         out: BoolArray = self.local & ~barred
