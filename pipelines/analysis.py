@@ -471,11 +471,16 @@ class AnalysisKernel:
         shaft = f_given.copy()
         quality = np.full(c, np.nan)
         if estimate.any():
-            est, q = estimate_speed_hz(vel_pow[estimate], acc_pow[estimate], plan.speed_range_hz, self._df,
+            every = bool(estimate.all())  # (the usual case: no copies of the rows)
+            est, q = estimate_speed_hz(vel_pow if every else vel_pow[estimate],
+                                       acc_pow if every else acc_pow[estimate], plan.speed_range_hz, self._df,
                                        SPEED_HARMONICS, cage_ratio=self._cage,
                                        tolerance=plan.order_tolerance)
-            shaft[estimate] = est
-            quality[estimate] = q
+            if every:
+                shaft, quality = est, q
+            else:
+                shaft[estimate] = est
+                quality[estimate] = q
         running = np.isfinite(shaft) & ~slow & (shaft > 0)
         orders = order_amplitudes_mm_s(vel_pow, np.where(running, shaft, np.nan), plan.orders, plan.order_tolerance,
                                        self._df, n)

@@ -337,7 +337,9 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     amp = np.sqrt(vel_pow)
     c, k = amp.shape
     amp3 = amp.copy()
-    amp3[:, 1:-1] = np.maximum(np.maximum(amp[:, :-2], amp[:, 1:-1]), amp[:, 2:])
+    inner = amp3[:, 1:-1]  # the largest of each line and its two neighbours, formed in place
+    np.maximum(amp[:, :-2], inner, out=inner)
+    np.maximum(inner, amp[:, 2:], out=inner)
     cand, lines = _speed_candidates(speed_range_hz[0], speed_range_hz[1], df_hz, k, harmonics)
     g = _gather(amp3, lines[None])  # (channels, 2 × harmonics, candidates): lines at h and h − ½ × candidates
     score = g[:, 0].copy()
