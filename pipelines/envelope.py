@@ -571,7 +571,7 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     unique_b = np.swapaxes(unique_a, 1, 2)  # B's lines A lacks
     beaten = detected[:, :, None] & on_other & significant[:, None, :] & (unique_b >= unique_a)
     ambiguous = beaten.any(axis=-1)
-    ambiguous_with = np.where(ambiguous, np.argmax(beaten, axis=-1), -1)
+    ambiguous_with = np.where(ambiguous, beaten.argmax(axis=-1), -1)
     # 6. modulation: a family whose fundamental is another family's sideband spacing (FTF for 2 × BSF) and whose
     # counted lines are all that family's found sidebands' spacings is its modulation, not a defect of its own
     carried = _modulation_explains(index, found, significant, expected_hz, modulation_hz, slots - harmonics)
@@ -586,7 +586,7 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
                                   shaft_near[:, :, None]], axis=-1)  # (c, A, B + shaft)
         close = (gap[None, :, :] * shaft_hz[:, None, None] / df_hz < 1.0) & present
         unresolved = detected & close.any(axis=-1) & ~ambiguous
-        ambiguous_with = np.where(unresolved, np.argmax(close, axis=-1), ambiguous_with)
+        ambiguous_with = np.where(unresolved, close.argmax(axis=-1), ambiguous_with)
         ambiguous |= unresolved
     # a fundamental on a shaft line the shaft series does not claim (step 1) is the family's only with a harmonic
     # of its own counted: a lone line on a whole order is as much a single shaft-synchronous modulation

@@ -233,7 +233,7 @@ def window_argmax(spec: FloatArray, lo: IntArray, hi: IntArray) -> IntArray:
     """
     idx, valid = _windows(spec.shape[1], lo, hi)
     vals = np.where(valid, _gather(spec, idx), -np.inf)
-    out: IntArray = idx[..., 0] + np.argmax(vals, axis=-1)  # (a window's lines are consecutive, never clipped)
+    out: IntArray = idx[..., 0] + vals.argmax(axis=-1)  # (a window's lines are consecutive, never clipped)
     return out
 
 
@@ -242,7 +242,8 @@ def masked_median(spec: FloatArray, lo: IntArray, hi: IntArray, ex_lo: IntArray,
     :func:`window_argmax`).  NaN where nothing is left."""
     idx, valid = _windows(spec.shape[1], lo, hi)
     valid &= (idx < ex_lo[..., None]) | (idx > ex_hi[..., None])
-    vals = np.sort(np.where(valid, _gather(spec, idx), np.inf), axis=-1)
+    vals = np.where(valid, _gather(spec, idx), np.inf)
+    vals.sort(axis=-1)
     count = valid.sum(axis=-1)
     both = np.empty((*count.shape, 2), dtype=np.intp)
     np.maximum((count - 1) // 2, 0, out=both[..., 0])
@@ -351,7 +352,7 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     local = np.ones(score.shape, dtype=bool)
     local[:, 1:] &= score[:, 1:] >= score[:, :-1]
     local[:, :-1] &= score[:, :-1] >= score[:, 1:]
-    order = np.argsort(np.where(local, -score, np.inf), axis=-1)[:, :SPEED_CANDIDATES]  # (channels, K)
+    order = np.where(local, -score, np.inf).argsort(axis=-1)[:, :SPEED_CANDIDATES]  # (channels, K)
     cand_score = _gather(np.where(local, score, -np.inf), order)
     b = np.rint(cand[order]).astype(np.intp)
     acc = np.sqrt(acc_pow)
@@ -377,13 +378,13 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     valid &= line_1x >= SPEED_MIN_SHARE * strongest[:, None]
     valid &= (f_est >= speed_range_hz[0] * 0.999) & (f_est <= speed_range_hz[1] * 1.001)
     rows = np.arange(c)
-    first = np.argmax(valid, axis=-1)
+    first = valid.argmax(axis=-1)
     f_w = f_est[rows, first]
     if cage_ratio is not None:
         # a winner on the cage line of another valid candidate is that candidate's FTF, not a shaft speed
         cage_of = valid & (np.abs(f_w[:, None] / (cage_ratio * f_est) - 1.0) <= SPEED_CAGE_TOLERANCE)
         has_shaft = cage_of.any(axis=-1)
-        first = np.where(has_shaft, np.argmax(cage_of, axis=-1), first)
+        first = np.where(has_shaft, cage_of.argmax(axis=-1), first)
         f_w = f_est[rows, first]
     s_w = cand_score[rows, first]
     a_w = line_1x[rows, first]
