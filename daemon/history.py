@@ -877,20 +877,20 @@ class HistoryReader:
         rows = self.conn.execute("SELECT start_s, layout, stats FROM rollups WHERE point = ? AND level = ? AND "
                                  "start_s >= ? AND start_s <= ? ORDER BY start_s",
                                  (pid, length, lo_s, hi_s)).fetchall()
-        cols: list[list[float]] = [[] for _ in range(len(STAT_FIELDS) + 1)]
+        starts: list[float] = []
+        stats: list[npt.NDArray[np.float32]] = []
         for start, lid, blob in rows:
             lnames = self._layout(int(lid))
             if indicator not in lnames:
                 continue
             stat = np.frombuffer(blob, dtype="<f4").reshape(len(STAT_FIELDS), len(lnames))[:, lnames.index(indicator)]
-            if not stat[0] > 0:
-                continue
-            cols[0].append(float(start))
-            for i in range(len(STAT_FIELDS)):
-                cols[i + 1].append(float(stat[i]))
-        arr = [np.asarray(c, dtype=np.float64) for c in cols]
-        return HistorySeries(point, indicator, level, arr[0], arr[5], count=arr[1], vmin=arr[2], mean=arr[3],
-                             vmax=arr[4], p_high=arr[6], periods=periods, high_percentile=self.high_percentile)
+            if stat[0] > 0:  # buckets with running values only
+                starts.append(float(start))
+                stats.append(stat)
+        count, vmin, mean, vmax, p50, p_high = np.asarray(stats, dtype=np.float64).reshape(-1, len(STAT_FIELDS)).T
+        return HistorySeries(point, indicator, level, np.asarray(starts, dtype=np.float64), p50, count=count,
+                             vmin=vmin, mean=mean, vmax=vmax, p_high=p_high, periods=periods,
+                             high_percentile=self.high_percentile)
 
     def _periods(self, pid: int, lo_ns: int, hi_ns: int) -> tuple[tuple[str, float, float], ...]:
         rows = self.conn.execute("SELECT state, start_ns, end_ns FROM periods WHERE point = ? AND end_ns >= ? AND "

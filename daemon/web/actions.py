@@ -41,7 +41,6 @@ SESSION_COOKIE = "edgevib_session"
 SESSION_TTL_S = 8 * 3600.0
 MAX_SESSIONS = 64
 SIGNIN_PER_MIN = 5
-MAX_SHELVE_REASON = 200
 MIN_TOKEN_CHARS = 16
 log = get_logger("edgevib.view.actions")
 
