@@ -62,7 +62,7 @@ from edgevib.common.toml_writer import dump_toml
 from edgevib.common.wire import DEFAULT_MAX_PAYLOAD_BYTES, DEFAULT_MAX_SAMPLES
 from edgevib.daemon.errors import ConfigError
 from edgevib.daemon.indicators import LIMITABLE
-from edgevib.daemon.shard import Shard, owns_point, validate_shard
+from edgevib.daemon.shard import MAX_SHARDS, shard_of
 
 if TYPE_CHECKING:
     from edgevib.daemon.alarms.config import AlarmSettings
@@ -90,6 +90,7 @@ __all__ = [
     "PublishMqttConfig",
     "PublishOpcUaConfig",
     "Secret",
+    "ShardConfig",
     "SimulatedSourceConfig",
     "SiteConfig",
     "SourceConfig",
@@ -314,9 +315,6 @@ Pair = Annotated[tuple[Float, Float], BeforeValidator(_pair_shape), AfterValidat
 Level = Annotated[LevelRule, BeforeValidator(_level), PlainSerializer(LevelRule.document)]
 BandSetting = Annotated[tuple[float, float] | Literal["auto"], PlainValidator(_band_setting),
                         PlainSerializer(lambda v: tuple(v) if isinstance(v, list | tuple) else v)]
-ShardSpec = Annotated[Shard, BeforeValidator(lambda v: validate_shard(v, "site.shard")),
-                      PlainSerializer(lambda s: {"points": sorted(s.points)} if s.points is not None
-                                      else {"count": s.count, "index": s.index})]
 
 
 class _Table(BaseModel):
@@ -368,10 +366,41 @@ class _WithSecrets(_Table):
 # ------------------------------------------------------------------------------------------------ tables
 
 
+class ShardConfig(_Table):
+    """``[site] shard``: ``{ count = N, index = I }`` (this instance keeps the points whose stable hash modulo N
+    is I: :mod:`edgevib.daemon.shard`) or ``{ points = [...] }`` (an explicit list of point ids)."""
+
+    count: Int | None = Field(None, ge=1, le=MAX_SHARDS)
+    index: Int | None = Field(None, ge=0)
+    points: tuple[Annotated[Text, Field(min_length=1)], ...] | None = Field(None, min_length=1)
+
+    @model_validator(mode="after")
+    def _one_form(self) -> ShardConfig:
+        if self.points is not None:
+            if self.count is not None or self.index is not None:
+                raise _Problem("", "give either count and index, or points, not both")
+            for i, p in enumerate(self.points):
+                if p in self.points[:i]:
+                    raise _Problem(f"points[{i}]", f"point {p!r} is listed twice")
+        elif self.count is None or self.index is None:
+            missing = " and ".join(k for k in ("count", "index") if getattr(self, k) is None)
+            raise _Problem("", f"missing {missing}; a hash split needs both count and index (or give points)")
+        elif self.index >= self.count:
+            raise _Problem("index", f"{self.index} is out of range: must be below count {self.count}")
+        return self
+
+    def owns(self, point_id: str) -> bool:
+        """Whether this instance owns ``point_id``."""
+        if self.points is not None:
+            return point_id in self.points
+        assert self.count is not None and self.index is not None  # the table's rule
+        return shard_of(point_id, self.count) == self.index
+
+
 class SiteConfig(_Table):
     name: Id = "edgevib"
     state_dir: Text = Field(default_factory=lambda: default_state_dir())
-    shard: ShardSpec | None = None
+    shard: ShardConfig | None = None
 
 
 class LoggingConfig(_Table):
@@ -1609,7 +1638,7 @@ def _resolve(cfg: Config, base: Path, digest: str) -> Config:
         points.append(r)
     shard = cfg.site.shard
     if shard is not None and shard.points is not None:
-        unknown = sorted(shard.points - set(ids))
+        unknown = sorted(set(shard.points) - set(ids))
         if unknown:
             raise ConfigError("site.shard.points", f"unknown point(s) {', '.join(unknown)}")
     publish = cfg.publish.model_copy(update={"mqtt": cfg.publish.mqtt.model_copy(
@@ -1638,7 +1667,7 @@ def _resolve(cfg: Config, base: Path, digest: str) -> Config:
                               f"{_did_you_mean(lim.point, list(ids))}")
     cfg = cfg.model_copy(update={"all_points": tuple(points), "publish": publish, "feed": feed, "alarms": alarms,
                                  "capture": capture, "history": history})
-    cfg._points = tuple(p for p in points if owns_point(p.id, shard))
+    cfg._points = tuple(p for p in points if shard is None or shard.owns(p.id))
     cfg._base_dir, cfg._digest, cfg._deferred = str(base), digest, tuple(deferred)
     return cfg
 

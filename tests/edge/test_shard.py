@@ -10,8 +10,9 @@ import sys
 
 import pytest
 
+from edgevib.daemon.config import ShardConfig, validate_document
 from edgevib.daemon.interfaces import ConfigError
-from edgevib.daemon.shard import Shard, owns_point, select_points, shard_of, validate_shard
+from edgevib.daemon.shard import shard_of
 
 IDS = [f"{m}-{end}-{axis}" for m in ("P-101", "P-102", "M-101", "M-102", "F-201", "B-301", "B-302")
        for end in ("DE", "NDE") for axis in ("H", "V", "A")]
@@ -39,12 +40,10 @@ def test_fixed_assignment(point_id: str) -> None:
 
 @pytest.mark.parametrize("count", [1, 2, 3, 5, 8])
 def test_every_point_owned_by_exactly_one_instance(count: int) -> None:
-    shards = [validate_shard({"count": count, "index": i}, "site.shard") for i in range(count)]
+    shards = [ShardConfig(count=count, index=i) for i in range(count)]
     for pid in IDS:
-        owners = [i for i, s in enumerate(shards) if owns_point(pid, s)]
+        owners = [i for i, s in enumerate(shards) if s.owns(pid)]
         assert len(owners) == 1, (pid, owners)
-    parts = [select_points(IDS, s) for s in shards]
-    assert sorted(p for part in parts for p in part) == sorted(IDS)
 
 
 def test_stable_across_processes_and_hash_seeds() -> None:
@@ -76,17 +75,10 @@ def test_adding_a_point_moves_no_other_point() -> None:
 
 
 def test_explicit_list() -> None:
-    shard = validate_shard({"points": ["P-101-DE-H", "M-101-DE-A"]}, "site.shard")
-    assert shard == Shard(points=frozenset({"P-101-DE-H", "M-101-DE-A"}))
-    assert owns_point("P-101-DE-H", shard)
-    assert not owns_point("F-201-NDE-V", shard)
-    assert select_points(IDS, {"points": ["M-101-DE-A", "P-101-DE-H"]}) == ["P-101-DE-H", "M-101-DE-A"]
-    assert shard.describe() == "explicit list of 2 point(s)"
-
-
-def test_no_shard_owns_everything() -> None:
-    assert all(owns_point(p, None) for p in IDS)
-    assert select_points(IDS, None) == IDS
+    shard = ShardConfig(points=("P-101-DE-H", "M-101-DE-A"))
+    assert shard.owns("P-101-DE-H")
+    assert not shard.owns("F-201-NDE-V")
+    assert [p for p in IDS if shard.owns(p)] == ["P-101-DE-H", "M-101-DE-A"]  # in the order of the points
 
 
 @pytest.mark.parametrize(
@@ -95,32 +87,28 @@ def test_no_shard_owns_everything() -> None:
         ("2/0", "site.shard", "must be a table"),
         ({"count": 2}, "site.shard", "missing index"),
         ({"index": 0}, "site.shard", "missing count"),
-        ({"count": 2, "index": 2}, "site.shard.index", "between 0 and count - 1 = 1, got 2"),
-        ({"count": 2, "index": -1}, "site.shard.index", "got -1"),
-        ({"count": 0, "index": 0}, "site.shard.count", "between 1 and 4096, got 0"),
-        ({"count": 10**6, "index": 0}, "site.shard.count", "got 1000000"),
-        ({"count": 2.0, "index": 0}, "site.shard.count", "must be an integer, got 2.0"),
-        ({"count": True, "index": 0}, "site.shard.count", "must be an integer, got True"),
-        ({"count": 2, "index": 0, "seed": 1}, "site.shard", "unknown key(s) seed"),
+        ({"count": 2, "index": 2}, "site.shard.index", "2 is out of range: must be below count 2"),
+        ({"count": 2, "index": -1}, "site.shard.index", "-1 is out of range: must be >= 0"),
+        ({"count": 0, "index": 0}, "site.shard.count", "0 is out of range: must be >= 1"),
+        ({"count": 10**6, "index": 0}, "site.shard.count", "1e+06 is out of range: must be <= 4096"),
+        ({"count": 2.0, "index": 0}, "site.shard.count", "must be an integer, got float"),
+        ({"count": True, "index": 0}, "site.shard.count", "must be an integer, got boolean"),
+        ({"count": 2, "index": 0, "seed": 1}, "site.shard.seed", "unknown key"),
         ({"count": 2, "index": 0, "points": ["a"]}, "site.shard", "not both"),
-        ({"points": []}, "site.shard.points", "non-empty list"),
-        ({"points": "P-101-DE-H"}, "site.shard.points", "non-empty list"),
-        ({"points": ["P-101-DE-H", ""]}, "site.shard.points[1]", "non-empty string"),
+        ({"points": []}, "site.shard.points", "must not be empty"),
+        ({"points": "P-101-DE-H"}, "site.shard.points", "must be an array"),
+        ({"points": ["P-101-DE-H", ""]}, "site.shard.points[1]", "must not be empty"),
         ({"points": ["P-101-DE-H", "P-101-DE-H"]}, "site.shard.points[1]", "listed twice"),
     ],
 )
 def test_invalid_shard_is_a_config_error(raw: object, path: str, fragment: str) -> None:
     with pytest.raises(ConfigError) as info:
-        validate_shard(raw, "site.shard")
+        validate_document({"site": {"shard": raw}})
     assert info.value.path == path
     assert fragment in info.value.problem
 
 
-def test_describe_and_owns_on_raw_mapping() -> None:
-    assert validate_shard({"count": 3, "index": 1}, "x").describe() == "shard 1 of 3"
-    assert owns_point("P-101-NDE-V", {"count": 3, "index": 1})  # EXPECTED: index 1 of 3
-    with pytest.raises(ConfigError):
-        owns_point("P-101-NDE-V", {"count": 3, "index": 3})
+def test_shard_count_must_be_positive() -> None:
     with pytest.raises(ValueError, match="at least 1, got 0"):
         shard_of("P-101-DE-H", 0)
 
