@@ -103,14 +103,14 @@ def alarm_layer(cfg: Config, registry: Any = None, **seams: Any) -> AlarmLayer:
 
 def indicators(velocity_mm_s: float, **kw: Any) -> Any:
     """FrameIndicators with a chosen velocity r.m.s. (others plausible for a healthy machine)."""
-    from edgevib.pipelines.types import FrameIndicators
+    from framekit import frame_indicators
 
     base = dict(acceleration_rms_g=0.1, acceleration_peak_g=0.3, acceleration_peak_to_peak_g=0.6, crest_factor=3.0,
                 kurtosis=3.0, skewness=0.0, mean_g=0.0, velocity_rms_mm_s=velocity_mm_s,
                 velocity_peak_mm_s=1.414 * velocity_mm_s, displacement_pp_um=10.0, shaft_hz=24.75,
                 shaft_estimated=False, orders_mm_s={"0.5x": 0.05, "1x": 0.5 * velocity_mm_s, "2x": 0.1, "3x": 0.05})
     base.update(kw)
-    return FrameIndicators(**base)
+    return frame_indicators(**base)
 
 
 def frame_result(point: str, machine: str, t_s: float, velocity_mm_s: float, *, fs_hz: float = 12800.0,

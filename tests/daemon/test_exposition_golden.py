@@ -14,20 +14,21 @@ import os
 from pathlib import Path
 
 import numpy as np
+from framekit import frame_indicators
 from prometheus_client import CollectorRegistry
 from prometheus_client.exposition import generate_latest
 
 from edgevib.daemon.frames import Stats
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.sinks.prometheus import PrometheusSink
-from edgevib.pipelines.types import FamilyResult, FrameIndicators
+from edgevib.pipelines.types import FamilyResult
 
 GOLDEN = Path(__file__).resolve().parents[1] / "data" / "exposition.prom"
 T_END_NS = 1_764_633_600_000_000_000
 
 
 def _results() -> list[tuple[tuple[str, ...], FrameResult]]:
-    running = FrameIndicators(
+    running = frame_indicators(
         acceleration_rms_g=0.5, acceleration_peak_g=2.0, acceleration_peak_to_peak_g=3.5, crest_factor=4.0,
         kurtosis=3.25, skewness=0.125, mean_g=0.0, velocity_rms_mm_s=3.5, velocity_peak_mm_s=5.0,
         displacement_pp_um=40.0, shaft_hz=24.75, shaft_estimated=False,
@@ -36,7 +37,7 @@ def _results() -> list[tuple[tuple[str, ...], FrameResult]]:
                                        harmonics_found=3, detected=True),
                   "bpfi": FamilyResult(expected_hz=134.0, frequency_hz=None, amplitude_g=None, snr_db=None,
                                        harmonics_found=0)})
-    unknown_speed = FrameIndicators(  # no speed known: no orders, no families, no shaft speed; no ISO group
+    unknown_speed = frame_indicators(  # no speed known: no orders, no families, no shaft speed; no ISO group
         acceleration_rms_g=0.25, acceleration_peak_g=1.0, acceleration_peak_to_peak_g=2.0, crest_factor=4.0,
         kurtosis=3.0, skewness=0.0, mean_g=1.0, velocity_rms_mm_s=1.5, velocity_peak_mm_s=2.25,
         displacement_pp_um=10.0, shaft_hz=None, shaft_estimated=False)

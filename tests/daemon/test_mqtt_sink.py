@@ -13,6 +13,7 @@ from typing import Any
 import numpy as np
 import paho.mqtt.client as mqtt
 import pytest
+from framekit import frame_indicators
 from paho.mqtt.enums import CallbackAPIVersion
 
 from edgevib.common.wire import Block
@@ -20,16 +21,15 @@ from edgevib.daemon.app import Daemon
 from edgevib.daemon.config import parse_config
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.sinks.mqtt import indicator_document
-from edgevib.pipelines.types import FrameIndicators
 
 FS = 25600.0
 BLOCK = 4096
 
 
 def test_document_marks_unavailable_as_null() -> None:
-    ind = FrameIndicators(acceleration_rms_g=0.5, acceleration_peak_g=1.5, acceleration_peak_to_peak_g=3.0,
-                          crest_factor=3.0, kurtosis=3.1, skewness=0.0, mean_g=0.0, velocity_rms_mm_s=2.0,
-                          velocity_peak_mm_s=3.0, displacement_pp_um=20.0, shaft_hz=None, shaft_estimated=False)
+    ind = frame_indicators(acceleration_rms_g=0.5, acceleration_peak_g=1.5, acceleration_peak_to_peak_g=3.0,
+                           crest_factor=3.0, kurtosis=3.1, skewness=0.0, mean_g=0.0, velocity_rms_mm_s=2.0,
+                           velocity_peak_mm_s=3.0, displacement_pp_um=20.0, shaft_hz=None, shaft_estimated=False)
     r = FrameResult(point_id="F-201-NDE-V", machine_id="F-201", t_end_ns=1_764_633_600_000_000_000, received_ns=0,
                     fs_hz=3200.0, indicators=ind, iso_zone="B", samples=np.zeros(16384))
     doc = indicator_document("quarry-lane", "vertical", r, ("0.5x", "1x"))

@@ -12,12 +12,13 @@ from typing import Any
 import numpy as np
 import pytest
 from asyncua import Client, ua
+from framekit import frame_indicators
 from servers import free_port
 
 from edgevib.daemon.config import parse_config
 from edgevib.daemon.interfaces import ConfigError, FrameResult
 from edgevib.daemon.sinks.opcua import INDICATORS, NAMESPACE_URI, OpcUaIndicatorSink, node_id_string
-from edgevib.pipelines.types import FamilyResult, FrameIndicators
+from edgevib.pipelines.types import FamilyResult
 
 pytestmark = pytest.mark.network
 
@@ -34,7 +35,7 @@ def sine_result(point: str, machine: str, *, shaft_hz: float | None, zone: str |
     t = np.arange(n) / fs_hz
     x = np.sin(2 * np.pi * 50.0 * t)
     v_amp_mm_s = 9.80665e3 / (2 * np.pi * 50.0)
-    ind = FrameIndicators(
+    ind = frame_indicators(
         acceleration_rms_g=1 / math.sqrt(2), acceleration_peak_g=1.0, acceleration_peak_to_peak_g=2.0,
         crest_factor=math.sqrt(2), kurtosis=1.5, skewness=0.0, mean_g=0.0,
         velocity_rms_mm_s=v_amp_mm_s / math.sqrt(2), velocity_peak_mm_s=v_amp_mm_s,

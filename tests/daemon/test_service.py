@@ -249,20 +249,21 @@ def test_demo_stops_cleanly_on_ctrl_c() -> None:
 
 def test_render_table_tty_and_plain(tmp_path: Path) -> None:
     import numpy as np
+    from framekit import frame_indicators
 
     from edgevib.daemon.config import load_config
     from edgevib.daemon.interfaces import FrameResult
     from edgevib.daemon.service import render_table
     from edgevib.pipelines.machine_state import MachineState
-    from edgevib.pipelines.types import FamilyResult, FrameIndicators
+    from edgevib.pipelines.types import FamilyResult
 
     cfg = load_config(EXAMPLE)
-    ind = FrameIndicators(acceleration_rms_g=0.5, acceleration_peak_g=1.5, acceleration_peak_to_peak_g=3.0,
-                          crest_factor=3.0, kurtosis=4.2, skewness=0.0, mean_g=0.0, velocity_rms_mm_s=3.1,
-                          velocity_peak_mm_s=4.4, displacement_pp_um=20.0, shaft_hz=24.65, shaft_estimated=False,
-                          envelope_band_hz=(2000.0, 8000.0),
-                          envelope={"bpfo": FamilyResult(88.4, 88.5, 0.01, 18.0, 3, detected=True),
-                                    "bpfi": FamilyResult(133.4, 133.0, 0.002, 24.0, 0)})  # not detected: not shown
+    ind = frame_indicators(acceleration_rms_g=0.5, acceleration_peak_g=1.5, acceleration_peak_to_peak_g=3.0,
+                           crest_factor=3.0, kurtosis=4.2, skewness=0.0, mean_g=0.0, velocity_rms_mm_s=3.1,
+                           velocity_peak_mm_s=4.4, displacement_pp_um=20.0, shaft_hz=24.65, shaft_estimated=False,
+                           envelope_band_hz=(2000.0, 8000.0),
+                           envelope={"bpfo": FamilyResult(88.4, 88.5, 0.01, 18.0, 3, detected=True),
+                                     "bpfi": FamilyResult(133.4, 133.0, 0.002, 24.0, 0)})  # not detected: not shown
     # A machine started 12 s before the frame, with the configuration's start-up grace (30 s by default) to run.
     starting = MachineState(state="starting", since_s=88.0, started_s=88.0, basis="speed", last_s=100.0)
     latest = {"P-101-DE-H": FrameResult("P-101-DE-H", "P-101", 0, 0, 25600.0, ind, "C", np.zeros(4),

@@ -12,6 +12,7 @@ from typing import Any
 
 import numpy as np
 import pytest
+from framekit import frame_indicators
 from prometheus_client import CollectorRegistry
 
 from edgevib.daemon.alarms.sink import create_sink
@@ -19,7 +20,6 @@ from edgevib.daemon.config import parse_config
 from edgevib.daemon.history import HistoryReader
 from edgevib.daemon.interfaces import ConfigError, FrameResult
 from edgevib.daemon.trendwatch import advice, create_trend_watch, iso_next_boundary, running_state, trend_settings
-from edgevib.pipelines.types import FrameIndicators
 
 D = 86400.0
 T0 = 1_780_000_000.0
@@ -47,10 +47,10 @@ def _frame(t_s: float, v_mm_s: float, seed: int) -> FrameResult:
     rng = np.random.default_rng(seed)
     n, fs = 8192, 12800.0
     x = 0.2 * np.sin(2 * np.pi * 24.75 * np.arange(n) / fs) + 0.01 * rng.standard_normal(n)
-    ind = FrameIndicators(acceleration_rms_g=0.1, acceleration_peak_g=0.3, acceleration_peak_to_peak_g=0.6,
-                          crest_factor=3.0, kurtosis=3.0, skewness=0.0, mean_g=0.0, velocity_rms_mm_s=v_mm_s,
-                          velocity_peak_mm_s=1.414 * v_mm_s, displacement_pp_um=10.0, shaft_hz=24.75,
-                          shaft_estimated=False, orders_mm_s={"1x": 0.9 * v_mm_s, "2x": 0.1, "0.5x": 0.05})
+    ind = frame_indicators(acceleration_rms_g=0.1, acceleration_peak_g=0.3, acceleration_peak_to_peak_g=0.6,
+                           crest_factor=3.0, kurtosis=3.0, skewness=0.0, mean_g=0.0, velocity_rms_mm_s=v_mm_s,
+                           velocity_peak_mm_s=1.414 * v_mm_s, displacement_pp_um=10.0, shaft_hz=24.75,
+                           shaft_estimated=False, orders_mm_s={"1x": 0.9 * v_mm_s, "2x": 0.1, "0.5x": 0.05})
     return FrameResult(point_id=POINT, machine_id=MACHINE, t_end_ns=round(t_s * 1e9), received_ns=round(t_s * 1e9),
                        fs_hz=fs, indicators=ind, iso_zone=None, samples=x.astype(np.float32), axis="horizontal")
 

@@ -10,12 +10,12 @@ from typing import Any
 
 import numpy as np
 import pytest
+from framekit import frame_indicators
 
 from edgevib.daemon.config import parse_config
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.trendwatch import create_trend_watch
 from edgevib.daemon.web.trend_source import confidence_band, projection_curve
-from edgevib.pipelines.types import FrameIndicators
 
 D = 86400.0
 T0 = 1_780_000_000.0
@@ -42,10 +42,10 @@ def _config(state_dir: Path) -> Any:
 def _frame(t_s: float, v_mm_s: float) -> FrameResult:
     n, fs = 4096, 5120.0
     x = 0.2 * np.sin(2 * np.pi * 24.75 * np.arange(n) / fs)
-    ind = FrameIndicators(acceleration_rms_g=0.1, acceleration_peak_g=0.3, acceleration_peak_to_peak_g=0.6,
-                          crest_factor=3.0, kurtosis=3.0, skewness=0.0, mean_g=0.0, velocity_rms_mm_s=v_mm_s,
-                          velocity_peak_mm_s=1.414 * v_mm_s, displacement_pp_um=10.0, shaft_hz=24.75,
-                          shaft_estimated=False, orders_mm_s={"1x": 0.9 * v_mm_s})
+    ind = frame_indicators(acceleration_rms_g=0.1, acceleration_peak_g=0.3, acceleration_peak_to_peak_g=0.6,
+                           crest_factor=3.0, kurtosis=3.0, skewness=0.0, mean_g=0.0, velocity_rms_mm_s=v_mm_s,
+                           velocity_peak_mm_s=1.414 * v_mm_s, displacement_pp_um=10.0, shaft_hz=24.75,
+                           shaft_estimated=False, orders_mm_s={"1x": 0.9 * v_mm_s})
     return FrameResult(point_id=POINT, machine_id=MACHINE, t_end_ns=round(t_s * 1e9), received_ns=round(t_s * 1e9),
                        fs_hz=fs, indicators=ind, iso_zone=None, samples=x.astype(np.float32), axis="horizontal")
 
