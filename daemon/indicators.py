@@ -30,8 +30,8 @@ from typing import TYPE_CHECKING, Any, Literal
 if TYPE_CHECKING:
     from edgevib.daemon.interfaces import FrameResult
 
-__all__ = ["BAND_SOURCES", "FAMILIES", "INDICATORS", "LIMITABLE", "REGISTRY", "Demo", "Indicator", "Si", "document",
-           "meaning", "readme_blocks", "readme_tables", "update_readme"]
+__all__ = ["BAND_SOURCES", "FAMILIES", "INDICATORS", "LIMITABLE", "REGISTRY", "UNIT_RANGE", "Demo", "Indicator", "Si",
+           "document", "meaning", "readme_blocks", "readme_tables", "update_readme"]
 
 G_M_S2 = 9.80665  # standard gravity, exact (3rd CGPM 1901)
 FAMILIES = ("ftf", "bpfo", "bpfi", "bsf")
@@ -57,6 +57,10 @@ G = Si("meters_per_second_squared", "m/s²", G_M_S2)
 HZ = Si("hertz", "Hz")
 DB = Si("decibels", "dB")
 RATIO = Si("", "1")
+UNIT_RANGE: dict[str, tuple[float, float]] = {  # display range per unit (common practice for machinery vibration)
+    "mm/s": (0.0, 50.0), "g": (0.0, 50.0), "µm": (0.0, 500.0), "Hz": (0.0, 500.0), "dB": (0.0, 60.0), "1": (0.0, 100.0),
+}
+"""The display range of an indicator that names none (``Indicator.eu_range``), by its unit."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -79,7 +83,9 @@ class Indicator:
     indicators in the sinks contain ``{key}``; a dotted name (``envelope.{key}.snr_db``) nests in a JSON document.
     ``prometheus`` is the metric name without ``edgevib_`` and the unit suffix; ``mqtt_si`` a second JSON key
     carrying the value in SI units; ``fault`` the kind of fault an alarm limit on it points to (an indicator
-    without one cannot carry a limit); ``trend`` keeps its exponentially weighted trend.
+    without one cannot carry a limit); ``demo`` gives it a column of the demo table (none by default);
+    ``trend`` keeps its exponentially weighted trend.  ``eu_range`` is the display range (OPC UA ``EURange``,
+    low, high): ``"unit"`` takes its unit's from :data:`UNIT_RANGE`, ``None`` has none (a discrete variable).
     """
 
     name: str
@@ -98,6 +104,13 @@ class Indicator:
     demo: Demo | None = None
     trend: bool = False
     boolean: bool = False  # a verdict: true/false in JSON documents, 1/0 in Prometheus
+    eu_range: tuple[float, float] | Literal["unit"] | None = "unit"
+
+    def display_range(self) -> tuple[float, float] | None:
+        """The display range (low, high) of the indicator, in its unit; ``None`` for a discrete one."""
+        if self.eu_range == "unit":
+            return UNIT_RANGE.get(self.unit, (0.0, 100.0))
+        return self.eu_range
 
     def value(self, r: FrameResult) -> Value:
         """The value of a scalar indicator for a frame."""
@@ -242,11 +255,12 @@ def _registry() -> tuple[Indicator, ...]:
         ind("acceleration_peak_to_peak_g", "g", "Acceleration peak to peak",
             read=lambda r: r.indicators.acceleration_peak_to_peak_g, mqtt=None),
         ind("crest_factor", "1", "Acceleration crest factor (peak / r.m.s.)", read=_crest, si=RATIO,
-            prometheus="crest_factor", fault="impacting", demo=Demo("crest", "crest", _number_text(_crest, ".2f"), 3)),
+            prometheus="crest_factor", fault="impacting", eu_range=(1.0, 20.0),
+            demo=Demo("crest", "crest", _number_text(_crest, ".2f"), 3)),
         ind("kurtosis", "1", "Acceleration kurtosis (Pearson; 3 for Gaussian noise)", read=_kurtosis, si=RATIO,
-            prometheus="kurtosis", fault="impacting",
+            prometheus="kurtosis", fault="impacting", eu_range=(1.0, 40.0),
             demo=Demo("kurtosis", "kurtosis", _number_text(_kurtosis, ".2f"), 4)),
-        ind("skewness", "1", "Acceleration skewness", read=lambda r: r.indicators.skewness),
+        ind("skewness", "1", "Acceleration skewness", read=lambda r: r.indicators.skewness, eu_range=(-5.0, 5.0)),
         ind("mean_g", "g", "Mean of the acceleration (removed before the other indicators)",
             read=lambda r: r.indicators.mean_g, mqtt=None, opcua=None),
         ind("displacement_pp_um", "µm", "Displacement peak to peak", read=lambda r: r.indicators.displacement_pp_um,
@@ -256,7 +270,7 @@ def _registry() -> tuple[Indicator, ...]:
             demo=Demo("speed", "speed", _speed_text, 0)),
         ind("iso_zone", "1", "ISO 20816-3 zone of velocity r.m.s. as a number, 1..4 = A..D (machines with `group` "
             "and `support`)", read=lambda r: ZONE_NUMBER.get(r.iso_zone or ""), si=RATIO, prometheus="iso_zone",
-            mqtt=None, report=None, demo=Demo("zone", "zone", lambda r: r.iso_zone or "-", 2)),
+            mqtt=None, report=None, eu_range=None, demo=Demo("zone", "zone", lambda r: r.iso_zone or "-", 2)),
         ind("order_velocity_rms_mm_s", "mm/s", "Velocity r.m.s. at shaft order {key}", each=_orders, per="order",
             si=MM_S, prometheus="order_velocity_rms", mqtt="orders_velocity_rms_mm_s.{key}",
             opcua="order_{key}_velocity_rms_mm_s", report="orders.{key}"),
@@ -270,7 +284,7 @@ def _registry() -> tuple[Indicator, ...]:
         ind("envelope_detected", "1", "Envelope verdict of the {key} family: detected (1, true) when its line's "
             "statistic is over the false-alarm threshold with enough modulation depth and no other family explains "
             "it, else 0 (false)",
-            each=_family("detected"), boolean=True,
+            each=_family("detected"), boolean=True, eu_range=None,
             per="family", si=RATIO, prometheus="envelope_detected", mqtt="envelope.{key}.detected",
             opcua="envelope_{key}_detected", report=None),
         ind("envelope_band_low_hz", "Hz", "Low edge of the demodulation band in use", read=_band_edge(0), si=HZ,
@@ -341,7 +355,13 @@ def document(r: FrameResult, place: Literal["mqtt", "report"], keys: Mapping[str
 
 
 def _row(*cells: str) -> str:
-    return "| " + " | ".join(cells) + " |"
+    """A Markdown table row; a ``|`` inside a cell is escaped (GFM tables: an unescaped one starts a new cell)."""
+    return "| " + " | ".join(c.replace("|", "\\|") for c in cells) + " |"
+
+
+def _range_text(i: Indicator) -> str:
+    r = i.display_range()
+    return "" if r is None else "–".join(f"{v:g}".replace("-", "−") for v in r)
 
 
 def _shown(i: Indicator, template: str) -> str:
@@ -367,8 +387,9 @@ def readme_tables() -> dict[str, str]:
             prom.append(_row(f"`{name}`", i.si.symbol, labels.get(i.per or "", ""), meaning(i)))
     prom.append(_row("`edgevib_last_frame_timestamp_seconds`", "s (Unix time)", "",
                      "End time of the latest analysed frame (measurement time)."))
-    opcua = [_row("Variable", "Unit", "Meaning"), _row("---", "---", "---")]
-    opcua += [_row(f"`{_shown(i, i.opcua)}`", i.unit, meaning(i)) for i in REGISTRY if i.opcua is not None]
+    opcua = [_row("Variable", "Unit", "Display range", "Meaning"), _row("---", "---", "---", "---")]
+    opcua += [_row(f"`{_shown(i, i.opcua)}`", i.unit, _range_text(i), meaning(i)) for i in REGISTRY
+              if i.opcua is not None]
     mqtt = [_row("Field", "Type", "Unit", "Meaning"), _row("---", "---", "---", "---"), *DOCUMENT_FIELDS]
     for i in REGISTRY:
         if i.mqtt is not None:

@@ -86,8 +86,8 @@ DISCLAIMER = "edgevib monitors and advises; it is not a protection system."
 _FAULT_HINT = {
     "overall": "An overall level sums every vibration source the sensor picks up: look at the narrow-band "
                "indicators before concluding what is wrong.",
-    "impacting": "Rising impact indicators (crest factor, kurtosis) can mean early bearing or gear damage; trend "
-                 "them together with the r.m.s. level.",
+    "impacting": f"Rising impact indicators ({', '.join(n for n, i in LIMITABLE.items() if i.fault == 'impacting')}) "
+                 "can mean early bearing or gear damage; trend them together with the r.m.s. level.",
     "imbalance": "A rise at 1× running speed often points to imbalance.",
     "misalignment": "A rise at 2× running speed often points to misalignment.",
     "looseness": "Harmonics and sub-harmonics (0.5×) of running speed often point to mechanical looseness.",

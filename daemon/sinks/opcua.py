@@ -41,6 +41,7 @@ import asyncio
 import contextlib
 import datetime
 import math
+import re
 from collections.abc import Callable, Iterable, Mapping
 from typing import Any
 
@@ -51,7 +52,7 @@ from asyncua.server.server import Server
 from asyncua.ua.status_codes import StatusCodes
 
 from edgevib.daemon.config import Config, parse_listen
-from edgevib.daemon.indicators import FAMILIES, REGISTRY, Indicator
+from edgevib.daemon.indicators import FAMILIES, REGISTRY, UNIT_RANGE, Indicator
 from edgevib.daemon.interfaces import ConfigError, FrameResult
 
 __all__ = ["FAMILIES", "INDICATORS", "NAMESPACE_URI", "VERDICTS", "OpcUaIndicatorSink", "node_id_string"]
@@ -82,11 +83,15 @@ UNECE: dict[str, tuple[str, str]] = {  # our unit -> (UNECE Rec. 20 common code,
     "dB": ("2N", "decibel"),
     "1": ("C62", "one"),
 }
-EU_RANGE: dict[str, tuple[float, float]] = {  # display range per unit (common practice for machinery vibration)
-    "mm/s": (0.0, 50.0), "g": (0.0, 50.0), "µm": (0.0, 500.0), "Hz": (0.0, 500.0), "dB": (0.0, 60.0),
-}
-_EU_RANGE_NAMED: dict[str, tuple[float, float]] = {
-    "crest_factor": (1.0, 20.0), "kurtosis": (1.0, 40.0), "skewness": (-5.0, 5.0)}
+_EU_RANGE_NAMED: list[tuple[re.Pattern[str], tuple[float, float] | None]] = [
+    (re.compile(re.escape(name).replace(re.escape("{key}"), ".+") + r"\Z"), i.display_range()) for i, name in OPCUA]
+"""The display range (EURange) of each variable name: its registry entry's (``Indicator.display_range``)."""
+
+
+def _eu_range(name: str, unit: str) -> tuple[float, float]:
+    """The EURange of an analog variable (a registry entry's range, else its unit's)."""
+    return next((r for pattern, r in _EU_RANGE_NAMED if r is not None and pattern.match(name)),
+                UNIT_RANGE.get(unit, (0.0, 100.0)))
 
 
 def unit_id(common_code: str) -> int:
@@ -336,7 +341,7 @@ class OpcUaIndicatorSink:
             eu = ua.EUInformation(NamespaceUri=UNECE_NAMESPACE, UnitId=unit_id(code),
                                   DisplayName=ua.LocalizedText(unit), Description=ua.LocalizedText(long_name))
             await self._property(var, path, "EngineeringUnits", eu, ua.VariantType.ExtensionObject, "EUInformation")
-            low, high = _EU_RANGE_NAMED.get(name, EU_RANGE.get(unit, (0.0, 100.0)))
+            low, high = _eu_range(name, unit)
             await self._property(var, path, "EURange", ua.Range(Low=low, High=high), ua.VariantType.ExtensionObject,
                                  "Range")
         await self._server_write(nodeid, None, StatusCodes.BadWaitingForInitialData, None)
