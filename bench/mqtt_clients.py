@@ -1,16 +1,21 @@
 """What one received block costs the daemon's process in each way of reading MQTT: paho against the alternatives.
 
-``python -m edgevib.bench.mqtt_clients [--messages 20000] [--bytes 65589] [--json]``
+``python -m edgevib.bench.mqtt_clients [--messages 20000] [--bytes 65589] [--rate 0] [--repeats 1] [--json]``
 
-A private mosquitto (as in :mod:`edgevib.bench.daemon`) and one publisher process that sends ``--messages``
-QoS 0 messages of ``--bytes`` each (a 16384-sample float32 block with its header is 65 589 bytes) as fast as the
-broker takes them.  Each receiver runs in a process of its own, subscribes, counts the messages until the last
-one and reports its process CPU time per message and the wall time:
+A private mosquitto (as in :mod:`edgevib.bench.daemon`) and one publisher process that sends ``--messages`` QoS 0
+messages of ``--bytes`` each (a 16384-sample float32 block with its header is 65 589 bytes) as fast as the broker
+takes them, or ``--rate`` per second evenly paced (as blocks from many devices arrive: 400 channels of 25.6 kHz in
+16384-sample blocks are 625 per second; a paced message wakes a sleeping receiver, a flood does not).  Each receiver
+runs in a process of its own, subscribes, counts the messages until the last one and reports its process CPU time
+per message and the wall time:
 
 * ``paho-thread``: paho-mqtt's own network thread (``loop_start``), every message handed to an asyncio event loop
   as :mod:`edgevib.daemon.sources.mqtt` does (a queue under a lock, one ``call_soon_threadsafe`` per burst);
 * ``paho-asyncio``: the same paho client driven from the event loop (``add_reader``/``loop_read``: no thread,
   no hand-over; the pattern of asyncio wrappers around paho);
+* ``edgevib-source``: the daemon's own :class:`~edgevib.daemon.sources.mqtt.MqttSource` (its MQTT client module,
+  reconnect loop and hand-over included) delivering to an ingest that only counts: what the daemon pays per block
+  before decoding (run it with another checkout first on ``PYTHONPATH`` to compare two versions of the client);
 * ``protocol``: a minimal MQTT 3.1.1 reader on an ``asyncio.Protocol`` (packets cut from the stream buffer, a
   copy per payload): a lower bound for any Python client, not a client (no TLS, QoS 1,
   reconnection or MQTT 5).
@@ -37,15 +42,20 @@ from typing import Any
 from edgevib.bench.daemon import Broker, RawPublisher, _utf8, _varint
 
 TOPIC = "bench/QL-BENCH-0000/block"
-KINDS = ("paho-thread", "paho-asyncio", "protocol")
+KINDS = ("paho-thread", "paho-asyncio", "edgevib-source", "protocol")
 
 
-def _publish(port: int, n: int, size: int, go: Any) -> None:
+def _publish(port: int, n: int, size: int, go: Any, rate: float = 0.0) -> None:
     pub = RawPublisher(port, f"edgevib-bench-flood-{os.getpid()}")
     prefix = RawPublisher.prefix(TOPIC, size)
     payload = bytes(size)
     go.get(timeout=60)
-    for _ in range(n):
+    t0 = time.monotonic()
+    for i in range(n):
+        if rate > 0:  # evenly paced, as blocks from many devices arrive
+            wait_s = t0 + i / rate - time.monotonic()
+            if wait_s > 0:
+                time.sleep(wait_s)
         pub.publish(prefix, payload)
     time.sleep(0.5)
     pub.close()
@@ -138,6 +148,58 @@ async def _paho_asyncio(port: int, n: int, out: Any) -> dict[str, float]:
     return await _measure(out, done, stop)
 
 
+class _CountingIngest:
+    """An ingest (:class:`~edgevib.daemon.interfaces.Ingest`) that counts payloads and nothing else."""
+
+    def __init__(self, n: int, done: asyncio.Event) -> None:
+        self.n = n
+        self.count = 0
+        self.rejected = 0
+        self.done = done
+        self.up = asyncio.Event()
+
+    def payload(self, _source: str, _topic: str | None, _payload: bytes, _received_ns: int) -> None:
+        self.count += 1
+        if self.count >= self.n:
+            self.done.set()
+
+    def block(self, *_args: Any, **_kw: Any) -> None:
+        pass
+
+    def speed(self, *_args: Any) -> None:
+        pass
+
+    def reject(self, *_args: Any, **_kw: Any) -> None:
+        self.rejected += 1
+
+    def connection(self, _source: str, connected: bool) -> None:
+        if connected:
+            self.up.set()
+
+
+async def _edgevib_source(port: int, n: int, out: Any) -> dict[str, float]:
+    from edgevib.daemon.config import MqttConnection
+    from edgevib.daemon.logs import configure_logging
+    from edgevib.daemon.sources.mqtt import MqttSource
+
+    configure_logging("error", "json", stream=sys.stderr)
+    done = asyncio.Event()
+    ingest = _CountingIngest(n, done)
+    conn = MqttConnection.model_validate({"url": f"mqtt://127.0.0.1:{port}",
+                                          "client_id": f"edgevib-bench-sub-{os.getpid()}"})
+    src = MqttSource(name="bench", ingest=ingest, connection=conn, topics=[TOPIC], qos=0)
+    task = asyncio.create_task(src.run())
+    await asyncio.wait_for(ingest.up.wait(), 10)
+    await asyncio.sleep(0.3)  # the SUBSCRIBE sent right after the CONNACK has been answered
+
+    def stop() -> None:
+        task.cancel()
+
+    res = await _measure(out, done, stop)
+    res["rejected"] = float(ingest.rejected)
+    return res
+
+
 class _Reader(asyncio.Protocol):
     """MQTT 3.1.1 packets cut from the stream; each PUBLISH payload copied out as ``bytes`` (as a client hands it
     on) and counted (QoS 0)."""
@@ -207,7 +269,8 @@ async def _measure(out: Any, done: asyncio.Event, stop: Callable[[], object]) ->
 
 
 def _receiver(kind: str, port: int, n: int, out: Any) -> None:
-    run = {"paho-thread": _paho_thread, "paho-asyncio": _paho_asyncio, "protocol": _protocol}[kind]
+    run = {"paho-thread": _paho_thread, "paho-asyncio": _paho_asyncio, "edgevib-source": _edgevib_source,
+           "protocol": _protocol}[kind]
     try:
         res = asyncio.run(run(port, n, out))
     except BaseException as exc:
@@ -216,7 +279,7 @@ def _receiver(kind: str, port: int, n: int, out: Any) -> None:
     out.put(res)
 
 
-def measure(kind: str, broker: Broker, n: int, size: int) -> dict[str, Any]:
+def measure(kind: str, broker: Broker, n: int, size: int, rate: float = 0.0) -> dict[str, Any]:
     ctx = mp.get_context("spawn")
     out, go = ctx.Queue(), ctx.Queue()
     rec = ctx.Process(target=_receiver, args=(kind, broker.port, n, out), daemon=True)
@@ -224,7 +287,7 @@ def measure(kind: str, broker: Broker, n: int, size: int) -> dict[str, Any]:
     msg = out.get(timeout=60)
     if "error" in msg:
         raise SystemExit(msg["error"])
-    pub = ctx.Process(target=_publish, args=(broker.port, n, size, go), daemon=True)
+    pub = ctx.Process(target=_publish, args=(broker.port, n, size, go, rate), daemon=True)
     pub.start()
     time.sleep(0.3)
     go.put(1)
@@ -233,7 +296,8 @@ def measure(kind: str, broker: Broker, n: int, size: int) -> dict[str, Any]:
     rec.join(30)
     if "error" in res:
         raise SystemExit(res["error"])
-    return {"client": kind, "messages": n, "bytes": size, "cpu_us_per_message": round(res["cpu_s"] / n * 1e6, 1),
+    return {"client": kind, "messages": n, "bytes": size, "rate": rate,
+            "cpu_us_per_message": round(res["cpu_s"] / n * 1e6, 1),
             "messages_per_s": round(n / res["wall_s"]), "cpu_cores": round(res["cpu_s"] / res["wall_s"], 2)}
 
 
@@ -242,15 +306,20 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--messages", type=int, default=20000)
     p.add_argument("--bytes", type=int, default=65589)
     p.add_argument("--clients", default=",".join(KINDS), help=f"comma-separated subset of {', '.join(KINDS)}")
+    p.add_argument("--rate", type=float, default=0.0,
+                   help="messages per second, evenly paced (default 0: as fast as the broker takes them)")
+    p.add_argument("--repeats", type=int, default=1,
+                   help="measure every client this many times, in alternation (the machine's noise shows)")
     p.add_argument("--json", action="store_true")
     args = p.parse_args(argv)
     kinds = [k for k in args.clients.split(",") if k]
-    if any(k not in KINDS for k in kinds) or args.messages < 1 or args.bytes < 1:
-        print(f"error: --clients from {', '.join(KINDS)}; --messages and --bytes >= 1", file=sys.stderr)
+    if any(k not in KINDS for k in kinds) or args.messages < 1 or args.bytes < 1 or args.repeats < 1 or args.rate < 0:
+        print(f"error: --clients from {', '.join(KINDS)}; --messages, --bytes and --repeats >= 1, --rate >= 0",
+              file=sys.stderr)
         return 2
     broker = Broker()
     try:
-        rows = [measure(k, broker, args.messages, args.bytes) for k in kinds]
+        rows = [measure(k, broker, args.messages, args.bytes, args.rate) for _ in range(args.repeats) for k in kinds]
     finally:
         broker.close()
     if args.json:

@@ -1,11 +1,17 @@
 """The one MQTT client set-up of edgevib: block sources, the indicator publisher and the alarm feed all use it.
 
-:class:`MqttLink` is one broker connection (paho-mqtt 2.x, its network loop in its own thread):
+:class:`MqttLink` is one broker connection (paho-mqtt 2.x) driven from the asyncio event loop, with no network
+thread of paho's: the loop reads the socket when it is readable (paho's ``loop_read``), writes what paho queued at
+the end of the loop iteration and when the socket is writable again (``loop_write``), and runs paho's keep-alive
+every second (``loop_misc``).  A received block thus costs no thread switch and no hand-over between threads.
 
-* **Reconnection** is paho's loop with bounded exponential backoff between the connection's ``reconnect_min_s``
-  and ``reconnect_max_s`` — set here, in one place, for every client.
-* **Callbacks** from paho's thread do almost nothing: state changes, acknowledgements and (optionally) messages
-  are handed to the event loop with ``loop.call_soon_threadsafe``; no exception escapes into paho.
+* **Reconnection** is one loop (:meth:`MqttLink._run`) with bounded exponential backoff between the connection's
+  ``reconnect_min_s`` and ``reconnect_max_s`` (doubling per failure, starting again after a CONNACK) — in one
+  place, for every client.  Each attempt (TCP connect with its timeout, TLS handshake) blocks, so it runs in the
+  link's own thread; the socket is non-blocking and served by the event loop from then on.
+* **Callbacks** from paho run on the event loop, inside its read or write, and do almost nothing: state changes
+  and acknowledgements are handed on with ``loop.call_soon`` (outside paho's call and its locks); no exception
+  escapes into paho or into the loop.
 * **Refusals are logged with the broker's reason**, rate-limited, never a secret: a CONNACK failure (bad
   credentials, not authorised …), a TCP or TLS failure, a connection closed before it was established, a
   DISCONNECT sent by the broker with its reason code (MQTT 5), and a PUBACK with a failure reason code.
@@ -28,11 +34,11 @@ import asyncio
 import contextlib
 import socket
 import ssl
-import sys
 import threading
 import time
 from collections import OrderedDict
 from collections.abc import Callable, Iterable, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
 
@@ -171,8 +177,22 @@ def _drop_queued(client: mqtt.Client, mids: set[int], topic: str | None) -> None
                 queue.pop(mid, None)
 
 
+def _close_socket(client: mqtt.Client) -> None:
+    """Close the client's socket, if any, without a word to the broker (a stopped link's last resort)."""
+    sock = client.socket()
+    if sock is not None:
+        with contextlib.suppress(OSError):
+            sock.close()
+
+
+def _pending(sock: Any) -> int:
+    """Decrypted bytes waiting in a TLS socket's buffer (0 for a plain socket or none)."""
+    return int(sock.pending()) if isinstance(sock, ssl.SSLSocket) else 0
+
+
 class MqttLink:
-    """One broker connection with paho's bounded-backoff reconnect loop, its state and refusals on the event loop.
+    """One broker connection driven from the event loop, with a bounded-backoff reconnect loop, its state and
+    refusals on the event loop.
 
     Parameters
     ----------
@@ -185,7 +205,8 @@ class MqttLink:
     on_state
         Called on the event loop with ``True``/``False`` when the connection comes up or goes down.
     on_message
-        Called **on paho's thread** with each message (it must only copy and hand over; exceptions are caught).
+        Called on the event loop **inside paho's read** with each message (it must only hand the message over,
+        never block; exceptions are caught).
     on_ack
         Called on the event loop with ``(mid, status, reason)`` for each QoS ≥ 1 message: ``"ok"`` (PUBACK),
         ``"refused"`` (PUBACK with a failure reason code: the broker will not take it), ``"retry"`` (a transient
@@ -228,6 +249,18 @@ class MqttLink:
         self._inflight: OrderedDict[int, str] = OrderedDict()  # mid -> topic of QoS >= 1 messages, oldest first
         self._strikes: dict[str, int] = {}
         self._early: dict[int, tuple[bool, str, int]] = {}  # acknowledgements that came before publish() recorded
+        self._loop_thread = 0
+        self._paho: mqtt.Client | None = None  # the client served by the loop (until stop() has closed it)
+        self._task: asyncio.Task[None] | None = None
+        self._attempt: asyncio.Future[Any] | None = None
+        self._connector: ThreadPoolExecutor | None = None
+        self._delay: float | None = None  # current backoff (None: the next wait is reconnect_min_s)
+        self._closed = asyncio.Event()  # the served socket was closed
+        self._fd: int | None = None  # the served socket's number (registered with the loop)
+        self._tls = False
+        self._writer = False  # the loop waits for the socket to be writable
+        self._flush_soon = False  # a _flush is scheduled
+        self._misc: asyncio.TimerHandle | None = None
         self._log = log.bind(role=role, url=conn.url)
         self.rlog = RateLimitedLogger(self._log, interval_s=10.0)
 
@@ -248,17 +281,21 @@ class MqttLink:
     async def start(self) -> None:
         """Create the client and start connecting in the background (raises :class:`SourceError` on a TLS set-up
         problem); the link then keeps reconnecting until :meth:`stop`."""
-        self._loop = asyncio.get_running_loop()
+        loop = self._loop = asyncio.get_running_loop()
+        self._loop_thread = threading.get_ident()
         self._stopping = False
         client = make_client(self.conn, self.client_id, persistent_session=self.persistent_session,
                              will=self.availability)
         client.max_inflight_messages_set(self.max_inflight)
         client.max_queued_messages_set(self.max_queued)
         client.on_connect = self._cb_connect
-        client.on_connect_fail = self._cb_connect_fail
         client.on_disconnect = self._cb_disconnect
         client.on_publish = self._cb_publish
         client.on_message = self._cb_message
+        client.on_socket_open = self._cb_socket_open
+        client.on_socket_close = self._cb_socket_close
+        client.on_socket_register_write = self._cb_register_write
+        client.on_socket_unregister_write = self._cb_unregister_write
         kwargs: dict[str, Any] = {}
         if self.v5:
             props = _NewProperties(PacketTypes.CONNECT)
@@ -266,36 +303,199 @@ class MqttLink:
                 props.SessionExpiryInterval = int(self.session_expiry_s)
             kwargs["properties"] = props
             kwargs["clean_start"] = not self.persistent_session
+        # only records the settings: every attempt is made by _run
         client.connect_async(self.conn.host, self.conn.port, keepalive=max(5, round(self.conn.keepalive_s)),
                              **kwargs)
-        client.loop_start()
-        self._client = client
+        self._client = self._paho = client
+        self._closed = asyncio.Event()
+        self._connector = ThreadPoolExecutor(max_workers=1, thread_name_prefix="edgevib-mqtt-connect")
+        self._task = loop.create_task(self._run(client), name=f"edgevib MQTT link ({self.role})")
+
+    async def _run(self, client: mqtt.Client) -> None:
+        """Connect, serve the socket from the event loop until it closes, wait the backoff, connect again — until
+        :meth:`stop`.  The backoff starts at ``reconnect_min_s`` after a refused attempt or a lost connection,
+        doubles with every further failure up to ``reconnect_max_s`` and starts again after a CONNACK."""
+        loop = asyncio.get_running_loop()
+        first = True
+        while not self._stopping:
+            if not first:
+                await asyncio.sleep(self._next_delay())
+            first = False
+            if self._stopping:
+                break
+            # the TCP connection and the TLS handshake block (DNS, connect timeout): in the link's own thread; the
+            # socket is non-blocking from then on
+            self._attempt = attempt = loop.run_in_executor(self._connector, client.reconnect)
+            try:
+                await asyncio.shield(attempt)
+            except (OSError, ValueError) as exc:  # ssl.CertificateError is a ValueError too
+                if not self._stopping:
+                    self._refused(describe_connect_failure(exc))
+                continue
+            sock = client.socket()
+            if sock is None or self._stopping:
+                continue
+            self._attach(sock)
+            while self._fd is not None:  # until paho closes the socket (a paho-made new socket is attached anew)
+                self._closed.clear()
+                await self._closed.wait()
+
+    def _next_delay(self) -> float:
+        delay = self.conn.reconnect_min_s if self._delay is None else min(2 * self._delay, self.conn.reconnect_max_s)
+        self._delay = delay
+        return delay
 
     async def stop(self, flush_s: float = 2.0) -> None:
         """Publish ``offline`` (when an availability topic is set), wait up to ``flush_s`` for pending writes,
-        disconnect and stop paho's thread."""
+        disconnect and close the socket."""
         self._stopping = True
         client, self._client = self._client, None
         if client is None:
             return
+        if self._task is not None:
+            self._task.cancel()  # the reconnect loop; the socket stays served until it is closed below
+        attempt = self._attempt
+        if attempt is not None and not attempt.done():  # a connection attempt in the link's thread: abandon it
+            attempt.add_done_callback(lambda _f: _close_socket(client))
         if self._connected and self.availability is not None:
             with contextlib.suppress(Exception):
                 client.publish(self.availability.topic, self.availability.offline, qos=1, retain=True,
                                properties=self._text_props())
         deadline = time.monotonic() + flush_s
-        while self._connected and time.monotonic() < deadline:
+        while self._connected and self._fd is not None and time.monotonic() < deadline:
             with self._lock:
                 busy = bool(self._inflight)
             if not busy and not client.want_write():
                 break
             await asyncio.sleep(0.02)
         with contextlib.suppress(Exception):
-            client.disconnect()
-        await asyncio.to_thread(client.loop_stop)
+            client.disconnect()  # queues DISCONNECT; paho closes the socket once it is written
+        deadline = time.monotonic() + min(1.0, max(0.1, flush_s))
+        while self._fd is not None and client.want_write() and time.monotonic() < deadline:
+            with contextlib.suppress(Exception):
+                client.loop_write()
+            if self._fd is not None and client.want_write():
+                await asyncio.sleep(0.01)
+        self._detach()
+        _close_socket(client)
+        self._paho = None
+        if self._connector is not None:
+            self._connector.shutdown(wait=False)
+        if self._task is not None:
+            await asyncio.wait([self._task], timeout=1.0)
         if self._connected:
             self._connected = False
             if self.on_state is not None:
                 self.on_state(False)
+
+    # ------------------------------------------------------------------------------------------ the socket
+
+    def _on_loop(self) -> bool:
+        return threading.get_ident() == self._loop_thread
+
+    def _attach(self, sock: Any) -> None:
+        """Serve ``sock`` from the event loop: read when readable, write what paho queued, keep-alive every
+        second."""
+        loop = self._loop
+        if loop is None:
+            return
+        fd = sock.fileno()
+        if fd == self._fd:
+            return
+        self._detach()
+        self._fd = fd
+        self._tls = isinstance(sock, ssl.SSLSocket)
+        loop.add_reader(fd, self._on_readable)
+        self._misc = loop.call_later(1.0, self._on_misc)
+        self._flush()  # CONNECT (queued by reconnect in the link's thread)
+
+    def _detach(self) -> None:
+        fd, self._fd = self._fd, None
+        if fd is None:
+            return
+        loop = self._loop
+        if loop is not None and not loop.is_closed():
+            loop.remove_reader(fd)  # by number: the socket may already be closed
+            if self._writer:
+                loop.remove_writer(fd)
+        self._writer = False
+        if self._misc is not None:
+            self._misc.cancel()
+            self._misc = None
+        self._closed.set()
+
+    def _on_readable(self) -> None:
+        client = self._paho
+        if client is None:
+            return
+        try:
+            client.loop_read()
+            # TLS: bytes already decrypted wait in the SSL object and do not make the socket readable again
+            while self._tls and self._fd is not None and _pending(client.socket()) > 0:
+                client.loop_read()
+        except Exception as exc:  # never let an exception escape into the event loop's callback
+            self._callback_failed("read", repr(exc))
+
+    def _on_writable(self) -> None:
+        client = self._paho
+        if client is None:
+            return
+        try:
+            client.loop_write()  # paho unregisters the writer (our callback) once nothing is left to write
+        except Exception as exc:
+            self._callback_failed("write", repr(exc))
+
+    def _flush(self) -> None:
+        """Write what paho queued during this iteration of the loop; wait for writability only for the rest."""
+        self._flush_soon = False
+        client = self._paho
+        if client is None or self._fd is None:
+            return
+        try:
+            if client.want_write():
+                client.loop_write()
+            if self._fd is not None and client.want_write() and not self._writer and self._loop is not None:
+                self._loop.add_writer(self._fd, self._on_writable)
+                self._writer = True
+        except (OSError, ValueError):  # the socket was closed under paho: let its read find out
+            self._post(self._on_readable)
+
+    def _on_misc(self) -> None:
+        self._misc = None
+        client = self._paho
+        if client is None or self._fd is None or self._loop is None:
+            return
+        try:
+            client.loop_misc()  # keep-alive: PINGREQ, and closing a connection whose PINGRESP is overdue
+        except Exception as exc:
+            self._callback_failed("keep-alive", repr(exc))
+        if self._fd is not None and self._misc is None:
+            self._misc = self._loop.call_later(1.0, self._on_misc)
+
+    # paho's socket callbacks: on the event loop, except during a connection attempt (the link's thread)
+
+    def _cb_socket_open(self, _client: mqtt.Client, _userdata: Any, sock: Any) -> None:
+        if self._on_loop():  # paho reconnecting by itself inside a read (MQTT 3.1 fallback): serve the new socket
+            self._attach(sock)
+        # in the link's thread (an attempt of _run): _run attaches it when the attempt returns
+
+    def _cb_socket_close(self, _client: mqtt.Client, _userdata: Any, _sock: Any) -> None:
+        if self._on_loop():
+            self._detach()
+        else:
+            self._post(self._detach)
+
+    def _cb_register_write(self, _client: mqtt.Client, _userdata: Any, _sock: Any) -> None:
+        if not self._flush_soon:
+            self._flush_soon = True
+            self._post(self._flush)
+
+    def _cb_unregister_write(self, _client: mqtt.Client, _userdata: Any, _sock: Any) -> None:
+        if not self._on_loop():
+            return
+        if self._writer and self._fd is not None and self._loop is not None:
+            self._loop.remove_writer(self._fd)
+        self._writer = False
 
     # ------------------------------------------------------------------------------------------ publishing
 
@@ -327,11 +527,16 @@ class MqttLink:
             return None
         return publish_properties(content_type="text/plain", utf8=True)
 
-    # ------------------------------------------------------------------------------------------ paho's thread
+    # ------------------------------------------------------------------------------------------ paho's callbacks
 
     def _post(self, fn: Callable[..., None], *args: Any) -> None:
+        """Run ``fn`` on the event loop soon, outside paho's call (from the loop or from any thread)."""
         loop = self._loop
-        if loop is not None and not loop.is_closed():
+        if loop is None or loop.is_closed():
+            return
+        if self._on_loop():
+            loop.call_soon(fn, *args)
+        else:
             with contextlib.suppress(RuntimeError):
                 loop.call_soon_threadsafe(fn, *args)
 
@@ -348,11 +553,6 @@ class MqttLink:
             self._post(self._set_state, True, "", bool(getattr(flags, "session_present", False)))
         except Exception as exc:  # never let an exception escape into paho's loop
             self._post(self._callback_failed, "on_connect", repr(exc))
-
-    def _cb_connect_fail(self, _client: mqtt.Client, _userdata: Any) -> None:
-        # paho calls this inside its ``except OSError`` around the connect attempt: the error is the one handled
-        with contextlib.suppress(Exception):
-            self._post(self._refused, describe_connect_failure(sys.exc_info()[1]))
 
     def _cb_disconnect(self, client: mqtt.Client, _userdata: Any, _flags: Any, reason: Any, _props: Any) -> None:
         with contextlib.suppress(Exception):
@@ -398,6 +598,7 @@ class MqttLink:
             return
         self._connected = connected
         if connected:
+            self._delay = None  # the backoff starts again
             if self._ever_connected:
                 self.reconnects += 1
             self._ever_connected = True
@@ -415,7 +616,7 @@ class MqttLink:
         self.rlog.warning("refused", "broker refused the connection; retrying with backoff", reason=reason)
 
     def _strike(self, topic: str, reason: str) -> str | None:
-        """(paho's thread, under the lock) One more drop with ``topic`` oldest in flight; the topic if it is now
+        """(under the lock) One more drop with ``topic`` oldest in flight; the topic if it is now
         set aside."""
         n = self._strikes.get(topic, 0) + 1
         self._strikes = {topic: n}  # strikes count only in a row: a drop with another topic oldest resets them

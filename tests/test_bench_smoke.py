@@ -43,7 +43,7 @@ def test_mqtt_client_bench_counts_every_message() -> None:
                            "--json"], capture_output=True, text=True, timeout=180)
     assert proc.returncode == 0, proc.stderr[-2000:]
     rows = json.loads(proc.stdout)
-    assert [r["client"] for r in rows] == ["paho-thread", "paho-asyncio", "protocol"]
+    assert [r["client"] for r in rows] == ["paho-thread", "paho-asyncio", "edgevib-source", "protocol"]
     for r in rows:  # each receiver saw all 200 messages (it waits for the last) and used some CPU for them
         assert r["messages"] == 200 and r["bytes"] == 4096
         assert r["cpu_us_per_message"] > 0 and r["messages_per_s"] > 0

@@ -1,16 +1,18 @@
 """MQTT source (paho-mqtt 2.x): subscribe to block topics and speed tags, hand raw payloads to the ingest.
 
-The connection is an :class:`~edgevib.daemon.mqtt_client.MqttLink` (paho's reconnect loop with bounded
+The connection is an :class:`~edgevib.daemon.mqtt_client.MqttLink` (a reconnect loop with bounded
 exponential backoff; every (re)connect resubscribes; a refusal — TCP refused, TLS handshake failure, a CONNACK
 failure such as bad credentials — is logged as a rate-limited warning naming the URL and the reason, never a
 secret).  Connection state goes to ``Ingest.connection`` (which counts reconnects).
 
-paho's callback only hands the payload to the event loop: it appends it to a hand-over queue and wakes the loop
-with ``loop.call_soon_threadsafe`` only when no wake-up is pending yet (one per burst of messages, not one per
-message).  Decoding, validation and analysis never run on paho's thread.  The payloads waiting for the event loop
-are bounded **by count and by bytes**: beyond either bound new payloads are dropped and counted at once (reason
-``overload``), so a flood of large payloads cannot exhaust memory.  A payload above ``max_payload_bytes`` is never
-copied: it is counted as received and rejected (reason ``too_large``) at once, in the same hand-over.
+The link's client is driven from the event loop; its message callback runs inside paho's read and only hands the
+payload on: it appends it to a hand-over queue and schedules one drain (``loop.call_soon``, or
+``loop.call_soon_threadsafe`` from another thread) when none is pending yet.  Decoding, validation and analysis run
+in that drain, never inside paho's read.  The payloads waiting for the drain are bounded **by count and by bytes**:
+beyond either bound new payloads are dropped and counted at once (reason ``overload``), so a flood of large payloads
+cannot exhaust memory.  A payload above ``max_payload_bytes`` is never copied: it is counted as received and
+rejected (reason ``too_large``) at once, in the same hand-over.
+
 MQTT 3.1.1 and 5, TLS (CA pinning, client certificate and key with passphrase), username/password, QoS 0/1.
 """
 
@@ -79,10 +81,11 @@ class MqttSource:
         self.max_pending_bytes = max_pending_bytes
         self._stop = asyncio.Event()
         self._loop: asyncio.AbstractEventLoop | None = None
+        self._loop_thread = 0
         self._lock = threading.Lock()
         self._pending = 0
         self._pending_bytes = 0
-        self._inbox: deque[tuple[str, bytes, int]] = deque()  # paho thread → event loop, under _lock
+        self._inbox: deque[tuple[str, bytes, int]] = deque()  # paho's read → the drain, under _lock
         self._drops: dict[str, tuple[int, str, int, str]] = {}  # reason -> (count, last topic, size, queue state)
         self._wake_scheduled = False  # a _drain is queued on the loop: no need to wake it again
         subs = [(t, qos) for t in [*self.topics, *sorted(self.speed_topics - set(self.topics))]]
@@ -105,7 +108,7 @@ class MqttSource:
         """Bytes of payloads handed to the event loop and not yet delivered to the ingest."""
         return self._pending_bytes
 
-    # -- paho thread: do almost nothing, never raise (MqttLink catches what escapes)
+    # -- inside paho's read (or any thread): do almost nothing, never raise (MqttLink catches what escapes)
 
     def _on_message(self, msg: mqtt.MQTTMessage) -> None:
         received_ns = time.time_ns()
@@ -126,13 +129,17 @@ class MqttSource:
             self._to_loop(self._drain)
 
     def _drop(self, reason: str, topic: str, size: int, queue: str) -> None:
-        """(paho's thread, under the lock) Count a dropped payload; the next drain reports it."""
+        """(under the lock) Count a dropped payload; the next drain reports it."""
         count = self._drops.get(reason, (0, "", 0, ""))[0]
         self._drops[reason] = (count + 1, topic, size, queue)
 
     def _to_loop(self, fn: Callable[..., None], *args: object) -> None:
         loop = self._loop
-        if loop is not None and not loop.is_closed():
+        if loop is None or loop.is_closed():
+            return
+        if threading.get_ident() == self._loop_thread:
+            loop.call_soon(fn, *args)
+        else:
             with contextlib.suppress(RuntimeError):
                 loop.call_soon_threadsafe(fn, *args)
 
@@ -173,6 +180,7 @@ class MqttSource:
 
     async def run(self) -> None:
         self._loop = asyncio.get_running_loop()
+        self._loop_thread = threading.get_ident()
         self._stop.clear()
         try:
             await self.link.start()
