@@ -190,6 +190,90 @@ def _pending(sock: Any) -> int:
     return int(sock.pending()) if isinstance(sock, ssl.SSLSocket) else 0
 
 
+READ_CHUNK = 256 * 1024
+"""Bytes taken from the socket by one read (as asyncio's own transports do)."""
+MAX_READS = 16
+"""Reads of :data:`READ_CHUNK` in one turn of the event loop before the other callbacks get theirs."""
+
+
+class _ChunkedReader:
+    """paho's socket, read in chunks: one ``recv`` takes everything waiting (up to :data:`READ_CHUNK` bytes), and
+    paho's many small reads of a packet (a byte for its type, a byte per byte of its remaining length, then the
+    rest) are served from that chunk, without a system call (and a release of the interpreter lock) each.
+
+    Everything but reading goes to the socket itself.  The chunk is read into one buffer allocated once (no
+    allocation and no fresh pages per read); ``recv`` returns views of it, which paho appends to its packet buffer
+    at once: none is left when the next chunk is read, after paho's read has returned."""
+
+    __slots__ = ("_buf", "_end", "_eof", "_error", "_pos", "_view", "full", "sock")
+
+    def __init__(self, sock: Any) -> None:
+        self.sock = sock
+        self._buf = bytearray(READ_CHUNK)
+        self._view = memoryview(self._buf)
+        self._pos = self._end = 0
+        self._eof = False
+        self._error: OSError | None = None
+        self.full = False  # the last read filled its chunk: more is probably waiting
+
+    def fill(self) -> bool:
+        """Read what is waiting, once the previous chunk is used up; False when there was nothing."""
+        if self._pos < self._end:
+            return True
+        try:
+            n = self.sock.recv_into(self._buf)
+        except (BlockingIOError, ssl.SSLWantReadError):
+            self.full = False
+            return False
+        except OSError as exc:  # paho gets it at its next read (SSLWantWriteError included: paho handles it)
+            self._error, self.full = exc, False
+            return True
+        if not n:
+            self._eof, self.full = True, False
+            return True
+        self._pos, self._end = 0, n
+        self.full = n == READ_CHUNK or _pending(self.sock) > 0
+        return True
+
+    def ready(self) -> bool:
+        """Bytes left in the chunk, or an end of stream or an error not yet reported to paho."""
+        return self._pos < self._end or self._eof or self._error is not None
+
+    def mark(self) -> tuple[int, int, bool]:
+        return self._pos, self._end, self._error is None
+
+    def recv(self, n: int) -> Any:
+        pos = self._pos
+        if pos < self._end:
+            end = min(pos + n, self._end)
+            self._pos = end
+            return self._view[pos:end]
+        if self._error is not None:
+            exc, self._error = self._error, None
+            raise exc
+        if self._eof:
+            return b""
+        raise BlockingIOError
+
+    def pending(self) -> int:
+        return self._end - self._pos + _pending(self.sock)
+
+    def send(self, data: Any) -> int:
+        return int(self.sock.send(data))
+
+    def fileno(self) -> int:
+        return int(self.sock.fileno())
+
+    def setblocking(self, flag: bool) -> None:
+        self.sock.setblocking(flag)
+
+    def close(self) -> None:
+        self.sock.close()
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self.sock, name)
+
+
 class MqttLink:
     """One broker connection driven from the event loop, with a bounded-backoff reconnect loop, its state and
     refusals on the event loop.
@@ -261,6 +345,7 @@ class MqttLink:
         self._writer = False  # the loop waits for the socket to be writable
         self._flush_soon = False  # a _flush is scheduled
         self._misc: asyncio.TimerHandle | None = None
+        self.chunked_reads = True  # read the socket in chunks (see _ChunkedReader); False: paho reads it itself
         self._log = log.bind(role=role, url=conn.url)
         self.rlog = RateLimitedLogger(self._log, interval_s=10.0)
 
@@ -404,7 +489,7 @@ class MqttLink:
             return
         self._detach()
         self._fd = fd
-        self._tls = isinstance(sock, ssl.SSLSocket)
+        self._tls = isinstance(getattr(sock, "sock", sock), ssl.SSLSocket)
         loop.add_reader(fd, self._on_readable)
         self._misc = loop.call_later(1.0, self._on_misc)
         self._flush()  # CONNECT (queued by reconnect in the link's thread)
@@ -429,10 +514,23 @@ class MqttLink:
         if client is None:
             return
         try:
-            client.loop_read()
-            # TLS: bytes already decrypted wait in the SSL object and do not make the socket readable again
-            while self._tls and self._fd is not None and _pending(client.socket()) > 0:
+            reader = client.socket()
+            if not isinstance(reader, _ChunkedReader):  # paho reading its socket itself, a packet per call
                 client.loop_read()
+                # TLS: bytes already decrypted wait in the SSL object and do not make the socket readable again
+                while self._tls and self._fd is not None and _pending(client.socket()) > 0:
+                    client.loop_read()
+                return
+            for _ in range(MAX_READS):
+                if not reader.fill():
+                    break
+                while self._fd is not None and reader.ready():  # every packet in the chunk
+                    mark = reader.mark()
+                    client.loop_read()
+                    if reader.mark() == mark:  # paho took nothing: the next readiness goes on
+                        break
+                if self._fd is None or not reader.full:
+                    break
         except Exception as exc:  # never let an exception escape into the event loop's callback
             self._callback_failed("read", repr(exc))
 
@@ -474,7 +572,12 @@ class MqttLink:
 
     # paho's socket callbacks: on the event loop, except during a connection attempt (the link's thread)
 
-    def _cb_socket_open(self, _client: mqtt.Client, _userdata: Any, sock: Any) -> None:
+    def _cb_socket_open(self, client: mqtt.Client, _userdata: Any, sock: Any) -> None:
+        # paho keeps its socket in ``_sock`` and offers no public way to read it in chunks: it is wrapped here, in
+        # this one place, right after paho made it non-blocking and before paho sends CONNECT (the attribute
+        # missing, paho reads its socket itself)
+        if self.chunked_reads and getattr(client, "_sock", None) is sock:
+            sock = client._sock = _ChunkedReader(sock)
         if self._on_loop():  # paho reconnecting by itself inside a read (MQTT 3.1 fallback): serve the new socket
             self._attach(sock)
         # in the link's thread (an attempt of _run): _run attaches it when the attempt returns
