@@ -10,14 +10,15 @@ from __future__ import annotations
 
 import math
 import threading
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 
 import numpy as np
 import numpy.typing as npt
 
-__all__ = ["MAX_COLUMNS", "RecentValues"]
+__all__ = ["MAX_COLUMNS", "RecentValues", "Values"]
 
 MAX_COLUMNS = 64  # indicators per point (a point has about 20)
+Values = Mapping[str, float | None]
 
 
 class _Ring:
@@ -43,8 +44,11 @@ class RecentValues:
         self._rings: dict[str, _Ring] = {}
         self._lock = threading.Lock()
 
-    def add(self, point: str, t_s: float, values: Mapping[str, float | None]) -> bool:
-        """Record ``values`` at frame time ``t_s`` unless the previous row is less than ``interval_s`` older."""
+    def add(self, point: str, t_s: float, values: Values | Callable[[], Values]) -> bool:
+        """Record ``values`` at frame time ``t_s`` unless the previous row is less than ``interval_s`` older.
+
+        ``values`` may be a function returning them: it is called only when the row is recorded, so a caller with
+        a frame every 0.64 s and rows every 5 s builds the values of one frame in eight, not of every frame."""
         with self._lock:
             ring = self._rings.get(point)
             if ring is None:
@@ -53,6 +57,8 @@ class RecentValues:
                 return False
             if t_s < ring.last_t_s:  # time went back (a replay, a device clock reset): start again
                 self._rings[point] = ring = _Ring(self.capacity)
+            if callable(values):
+                values = values()
             row = ring.head
             ring.values[row, :] = np.nan
             for name, v in values.items():
