@@ -249,8 +249,7 @@ class OpcUaIndicatorSink:
         machine) and add the new points; untouched points keep their variables and values."""
         if self._server is None:
             return
-        wanted = {pid: (mid, orders) for pid, mid, orders in _points_of({p.id: p for p in config.points})
-                  if "/" not in pid and "/" not in mid}
+        wanted = {pid: (mid, orders) for pid, mid, orders in _points_of({p.id: p for p in config.points})}
         for pid in [pid for pid in self._vars if pid not in wanted or wanted[pid][0] != self._machine_of[pid]]:
             with contextlib.suppress(Exception):
                 await self._server.delete_nodes([self._objects[pid]], recursive=True)
@@ -373,8 +372,6 @@ class OpcUaIndicatorSink:
     async def _write(self, result: FrameResult, now: datetime.datetime) -> None:
         pid = result.point_id
         if pid not in self._vars:  # a point added while running (e.g. by a configuration reload)
-            if "/" in pid or "/" in result.machine_id:
-                return
             await self._add_point(pid, result.machine_id, DEFAULT_ORDERS)
             self._log.info("opcua_point_added", point=pid, machine=result.machine_id)
         variables = self._vars[pid]
