@@ -163,6 +163,13 @@ def _certificate_problem(exc: BaseException) -> str | None:
             f"server's trusted-certificate store, and the server's certificate here (server_cert_file)")
 
 
+def _rate(value: Any) -> float | None:
+    """A sample-rate property's value as Hz, or None when it is not a finite number > 0."""
+    if isinstance(value, int | float) and not isinstance(value, bool) and math.isfinite(value) and value > 0:
+        return float(value)
+    return None
+
+
 def _samples_of(value: Any, scale: float | None = None) -> tuple[npt.NDArray[np.float64] | None, str]:
     """A variable's value as a read-only 1-D float64 array, or ``(None, why not)``."""
     if value is None:
@@ -282,17 +289,14 @@ class OpcUaSource:
             was_connected = False
             try:
                 was_connected = await self._session()
-            except SourceError as exc:
-                cause = exc.__cause__ if exc.__cause__ is not None else exc
+            except Exception as exc:  # a SourceError ends the session; a bug is logged with its traceback
+                failed = isinstance(exc, SourceError)
+                cause = exc.__cause__ if failed and exc.__cause__ is not None else exc
                 problem = _certificate_problem(cause) if self._security_policy != "None" else None
                 if problem:
                     self._log.warning("opcua_certificate_rejected", problem=problem, retry_in_s=round(delay, 3))
-                else:
+                elif failed:
                     self._log.warning("opcua_session_failed", error=str(exc), retry_in_s=round(delay, 3))
-            except Exception as exc:  # a bug must not end the source; it is logged with its traceback
-                problem = _certificate_problem(exc) if self._security_policy != "None" else None
-                if problem:
-                    self._log.warning("opcua_certificate_rejected", problem=problem, retry_in_s=round(delay, 3))
                 else:
                     self._log.exception("opcua_session_crashed", error=repr(exc))
             finally:
@@ -436,10 +440,9 @@ class OpcUaSource:
                         return (f"the server's EngineeringUnits say {unit} (UNECE UnitId {eu.UnitId}) but the point "
                                 f"is configured with unit = {state.spec.unit!r}")
                 elif name.lower() in SAMPLE_RATE_PROPERTIES and state.spec.fs_hz is not None:
-                    value = await prop.read_value()
-                    if isinstance(value, int | float) and not isinstance(value, bool) and math.isfinite(value) \
-                            and value > 0 and abs(float(value) - state.spec.fs_hz) > 1e-6 * state.spec.fs_hz:
-                        return (f"the server's {name} property says {float(value):g} Hz but the point is configured "
+                    fs_hz = _rate(await prop.read_value())
+                    if fs_hz is not None and abs(fs_hz - state.spec.fs_hz) > 1e-6 * state.spec.fs_hz:
+                        return (f"the server's {name} property says {fs_hz:g} Hz but the point is configured "
                                 f"with fs_hz = {state.spec.fs_hz:g}")
             except (UaError, ValueError, TypeError):
                 continue
@@ -449,10 +452,9 @@ class OpcUaSource:
         for prop in await node.get_properties():
             name = (await prop.read_browse_name()).Name.lower()
             if name in SAMPLE_RATE_PROPERTIES:
-                value = await prop.read_value()
-                if isinstance(value, int | float) and not isinstance(value, bool) and math.isfinite(value) \
-                        and value > 0:
-                    return float(value)
+                fs_hz = _rate(await prop.read_value())
+                if fs_hz is not None:
+                    return fs_hz
         return None
 
     async def _subscribe(self, client: Client, block_nodes: dict[str, Node], speed_nodes: dict[str, Node]) -> None:

@@ -431,7 +431,7 @@ async def test_basic256sha256_sign_and_encrypt_with_user_and_password(tmp_path: 
     ({"reconnect_min_s": 5.0, "reconnect_max_s": 1.0}, "sources[0].reconnect_max_s"),
     ({"poll_interval_s": 0.0}, "sources[0].poll_interval_s"),
 ])
-def test_bad_connection_settings_are_refused_by_the_configuration(kw: dict[str, Any], path: str) -> None:
+async def test_bad_connection_settings_are_refused_by_the_configuration(kw: dict[str, Any], path: str) -> None:
     # the source is built from the validated [[sources]] table: the configuration names the key
     source = {"name": "plc", "type": "opcua", "endpoint": "opc.tcp://127.0.0.1:4840/", **kw}
     with pytest.raises(ConfigError) as info:
