@@ -285,7 +285,7 @@ class BlockIngest:
                                                      if p.machine in machines}
         self.other_shard = frozenset(config.skipped_sensors)
         self.sensor_level: dict[str, int | None] = {
-            s.name: getattr(s, "sensor_topic_level", None) for s in config.sources}
+            s.name: s.sensor_topic_level if isinstance(s, MqttSourceConfig) else None for s in config.sources}
         self.max_payload_bytes: dict[str, int] = {
             s.name: s.max_payload_bytes for s in config.sources if isinstance(s, MqttSourceConfig)}
         self.speed_tags: dict[tuple[str, str], list[tuple[str, SpeedTag]]] = {}
