@@ -20,6 +20,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import dataclasses
+import functools
 import json
 import math
 import time
@@ -401,7 +402,7 @@ class ViewService:
     async def on_frames(self, results: list[FrameResult]) -> None:
         latest: dict[str, FrameResult] = {}
         for r in results:
-            self.recent.add(r.point_id, r.t_end_ns / 1e9, indicator_values(r))
+            self.recent.add(r.point_id, r.t_end_ns / 1e9, functools.partial(indicator_values, r))
             latest[r.point_id] = r
         if self._streams:
             for r in latest.values():
