@@ -196,27 +196,31 @@ def integration_coefficients(fs_hz: float, n_samples: int, stop: int) -> Complex
 
 
 def _gather(spec: FloatArray, idx: IntArray) -> FloatArray:
-    """``spec[row, idx[row, ...]]`` for every row (``idx`` shape (channels, ...), already in range): one ``take``
-    on the flattened array, several times cheaper than indexing with two broadcast index arrays."""
+    """``spec[row, idx[row, ...]]`` for every row (``idx`` shape (channels, ...)): one ``take`` on the flattened
+    array, several times cheaper than indexing with two broadcast index arrays.  Indices outside ``0 … k−1`` read
+    some other value of ``spec`` (callers mask them)."""
     c, k = spec.shape
     if c > 1:
         idx = idx + np.arange(0, c * k, k).reshape((c,) + (1,) * (idx.ndim - 1))
-    out: FloatArray = spec.ravel().take(idx)
+    out: FloatArray = spec.ravel().take(idx, mode="clip")
     return out
 
 
 _NEIGHBOURS = np.arange(-1, 2)
-_NEIGHBOURS.flags.writeable = False
+_MIDDLE = np.array([1, 0])  # (count − 1) // 2 and count // 2: the middle of a sorted window
+for _a in (_NEIGHBOURS, _MIDDLE):
+    _a.flags.writeable = False
 
 
 def _windows(k: int, lo: IntArray, hi: IntArray) -> tuple[IntArray, npt.NDArray[np.bool_]]:
-    """Line indices ``lo..hi`` per window, padded to the widest one, and the mask of the real ones."""
+    """Line indices ``lo..hi`` per window, padded to the widest one (the padding may run past the last line), and
+    the mask of the real ones."""
     lo = np.minimum(np.maximum(lo, 0), k - 1)
     hi = np.minimum(np.maximum(hi, lo), k - 1)
     width = int((hi - lo).max()) + 1 if lo.size else 1
     idx = lo[..., None] + np.arange(width)
     valid = idx <= hi[..., None]
-    return np.minimum(idx, k - 1), valid
+    return idx, valid
 
 
 def window_argmax(spec: FloatArray, lo: IntArray, hi: IntArray) -> IntArray:
@@ -245,15 +249,13 @@ def masked_median(spec: FloatArray, lo: IntArray, hi: IntArray, ex_lo: IntArray,
     vals = np.where(valid, _gather(spec, idx), np.inf)
     vals.sort(axis=-1)
     count = valid.sum(axis=-1)
-    both = np.empty((*count.shape, 2), dtype=np.intp)
-    np.maximum((count - 1) // 2, 0, out=both[..., 0])
-    np.maximum(count // 2, 0, out=both[..., 1])
+    # the two middle values (one when the count is odd); with nothing left they read an inf, and the result is NaN
+    both = (count[..., None] - _MIDDLE) // 2
     if count.ndim == 2:  # (channels, L), as documented: plain indexing, cheaper than take_along_axis
         pair = vals[np.arange(count.shape[0])[:, None, None], np.arange(count.shape[1])[None, :, None], both]
     else:
         pair = np.take_along_axis(vals, both, axis=-1)
-    with np.errstate(invalid="ignore"):
-        med = 0.5 * (pair[..., 0] + pair[..., 1])
+    med = 0.5 * (pair[..., 0] + pair[..., 1])
     out: FloatArray = np.where(count > 0, med, np.nan)
     return out
 
