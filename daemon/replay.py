@@ -71,7 +71,14 @@ from edgevib.daemon.offline import (
     read_waveform,
 )
 from edgevib.daemon.timestamps import rfc3339_utc_s
-from edgevib.daemon.trendwatch import HISTORY_INDICATORS, evaluate, frame_values, limit_lines, running_state
+from edgevib.daemon.trendwatch import (
+    HISTORY_INDICATORS,
+    evaluate,
+    frame_values,
+    learn_baseline,
+    limit_lines,
+    running_state,
+)
 from edgevib.daemon.waveform_files import read_text_waveform
 from edgevib.pipelines.analysis import analyze_frames, default_envelope_band, make_plan
 from edgevib.pipelines.conditioning import to_g
@@ -505,12 +512,9 @@ def _document(s: _Snap, r: FrameResult, state: str, values: np.ndarray, tracked:
                      iso=iso if name == "velocity_rms_mm_s" else None, user_limit=o.limits.get(name),
                      baseline=base, max_points=o.max_points)
         if base is None and t.get("status") == "ok":
-            series = reader.series(o.point, name, max_points=o.max_points)
-            k = o.spec.min_points
-            if series.value.size >= k:
-                v = series.value[:k]
-                med = float(np.median(v))
-                baselines[name] = (med, 1.4826 * float(np.median(np.abs(v - med))), k)
+            learned = learn_baseline(reader, o.point, name, min_points=o.spec.min_points, max_points=o.max_points)
+            if learned is not None:
+                baselines[name] = learned
         doc["trend"][name] = {k: t.get(k) for k in ("status", "need", "level", "slope_per_day", "rising", "model",
                                                     "advice", "coverage")}
         for lim in t.get("limits", []):

@@ -64,6 +64,7 @@ __all__ = [
     "evaluate",
     "frame_values",
     "iso_next_boundary",
+    "learn_baseline",
     "limit_lines",
     "running_state",
     "trend_settings",
@@ -166,6 +167,19 @@ def limit_lines(unit: str, *, alarm: tuple[float | None, float | None] = (None, 
     if user is not None:
         out.append({"label": "limit", "value": user, "unit": unit, "kind": "user"})
     return out
+
+
+def learn_baseline(reader: HistoryReader, point: str, indicator: str, *, min_points: int,
+                   max_points: int) -> tuple[float, float, int] | None:
+    """A series' baseline from its first ``min_points`` running values at the trend's resolution (``max_points``):
+    ``(median, robust spread, count)``, the spread 1.4826 × the median absolute deviation (the normal
+    distribution's σ, common practice); None with fewer values."""
+    s = reader.series(point, indicator, max_points=max_points)
+    if s.value.size < min_points:
+        return None
+    v = s.value[:min_points]
+    med = float(np.median(v))
+    return med, 1.4826 * float(np.median(np.abs(v - med))), min_points
 
 
 def _clean(v: float | None) -> float | None:
@@ -563,21 +577,12 @@ class TrendWatch:
                        act_days=self.settings.act_days)
         doc["machine"] = self.points[point].machine
         if base is None and doc.get("status") == "ok" and self.recorder is not None:
-            learned = self._learn_baseline(reader, point, indicator)
+            learned = learn_baseline(reader, point, indicator, min_points=self.settings.min_points,
+                                     max_points=self.settings.max_points)
             if learned is not None:
                 self._baselines[(point, indicator)] = learned
                 self.recorder.write_baseline(point, indicator, *learned, t_ns=time.time_ns())
         return doc
-
-    def _learn_baseline(self, reader: HistoryReader, point: str, indicator: str) -> tuple[float, float, int] | None:
-        """The first ``min_points`` running values at the trend's resolution: median and robust spread."""
-        s = reader.series(point, indicator, max_points=self.settings.max_points)
-        k = self.settings.min_points
-        if s.value.size < k:
-            return None
-        v = s.value[:k]
-        med = float(np.median(v))
-        return med, 1.4826 * float(np.median(np.abs(v - med))), k
 
     async def _run(self) -> None:
         while True:
