@@ -28,7 +28,8 @@ from typing import Any
 
 import numpy as np
 
-from edgevib.daemon.history import HistoryError, HistoryReader, HistorySeries
+from edgevib.daemon.errors import EdgevibError
+from edgevib.daemon.history import HistoryReader, HistorySeries
 
 __all__ = ["configure_trend", "render_chart", "run_trend"]
 
@@ -312,14 +313,8 @@ def run_trend(args: argparse.Namespace) -> int:
         path = _history_path(args)
         with HistoryReader(path) as reader:
             return _run(args, reader)
-    except HistoryError as exc:
+    except EdgevibError as exc:  # the history's and the configuration's errors: one line, exit 2
         return _fail(str(exc))
-    except Exception as exc:  # configuration errors and the like: one line, exit 2
-        from edgevib.daemon.interfaces import EdgevibError
-
-        if isinstance(exc, EdgevibError):
-            return _fail(str(exc))
-        raise
 
 
 def _run(args: argparse.Namespace, reader: HistoryReader) -> int:
