@@ -289,8 +289,8 @@ class MqttLink:
     on_state
         Called on the event loop with ``True``/``False`` when the connection comes up or goes down.
     on_message
-        Called on the event loop **inside paho's read** with each message (it must only hand the message over,
-        never block; exceptions are caught).
+        Called on the event loop **inside paho's read** with each message (it must not block; exceptions are
+        caught).
     on_ack
         Called on the event loop with ``(mid, status, reason)`` for each QoS ≥ 1 message: ``"ok"`` (PUBACK),
         ``"refused"`` (PUBACK with a failure reason code: the broker will not take it), ``"retry"`` (a transient
@@ -332,7 +332,6 @@ class MqttLink:
         self._lock = threading.Lock()
         self._inflight: OrderedDict[int, str] = OrderedDict()  # mid -> topic of QoS >= 1 messages, oldest first
         self._strikes: dict[str, int] = {}
-        self._early: dict[int, tuple[bool, str, int]] = {}  # acknowledgements that came before publish() recorded
         self._loop_thread = 0
         self._paho: mqtt.Client | None = None  # the client served by the loop (until stop() has closed it)
         self._task: asyncio.Task[None] | None = None
@@ -617,12 +616,10 @@ class MqttLink:
         except (ValueError, TypeError) as exc:  # paho: wildcards in a publish topic, bad UTF-8, payload too large
             raise TopicRefused(f"not publishable: {exc}") from exc
         if qos > 0 and info.rc == mqtt.MQTT_ERR_SUCCESS:
+            # recorded before paho can write it (writes go out in a later callback of the loop): its acknowledgement
+            # always finds it here
             with self._lock:
-                early = self._early.pop(info.mid, None)
-                if early is None:
-                    self._inflight[info.mid] = topic
-            if early is not None:  # acknowledged before it was recorded here
-                self._post(self._acked, info.mid, topic, *early)
+                self._inflight[info.mid] = topic
         return info
 
     def _text_props(self) -> Properties | None:
@@ -668,22 +665,18 @@ class MqttLink:
                     purge |= {mid for mid, topic in self._inflight.items() if topic == set_aside}
                 for mid in purge:
                     self._inflight.pop(mid, None)
-                self._early.clear()
             if purge or set_aside is not None:  # outside self._lock (lock order, see publish)
                 _drop_queued(client, purge, set_aside)
             self._post(self._lost, text, _is_failure(reason), sorted(purge), set_aside)
 
     def _cb_publish(self, _client: mqtt.Client, _userdata: Any, mid: int, reason: Any, _props: Any) -> None:
         with contextlib.suppress(Exception):
-            result = (not _is_failure(reason), describe_reason(reason), int(getattr(reason, "value", 0)))
             with self._lock:
                 topic = self._inflight.pop(mid, None)
-                if topic is None:  # not recorded yet by publish() (or untracked: QoS 0, availability)
-                    self._early[mid] = result
-                    while len(self._early) > 1000:  # untracked acknowledgements must not accumulate
-                        self._early.pop(next(iter(self._early)))
-                    return
-            self._post(self._acked, mid, topic, *result)
+            if topic is None:  # untracked: QoS 0 (paho reports those as written), the availability messages
+                return
+            self._post(self._acked, mid, topic, not _is_failure(reason), describe_reason(reason),
+                       int(getattr(reason, "value", 0)))
 
     def _cb_message(self, _client: mqtt.Client, _userdata: Any, msg: mqtt.MQTTMessage) -> None:
         handler = self.on_message

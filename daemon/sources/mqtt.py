@@ -5,13 +5,14 @@ exponential backoff; every (re)connect resubscribes; a refusal — TCP refused, 
 failure such as bad credentials — is logged as a rate-limited warning naming the URL and the reason, never a
 secret).  Connection state goes to ``Ingest.connection`` (which counts reconnects).
 
-The link's client is driven from the event loop; its message callback runs inside paho's read and only hands the
-payload on: it appends it to a hand-over queue and schedules one drain (``loop.call_soon``, or
-``loop.call_soon_threadsafe`` from another thread) when none is pending yet.  Decoding, validation and analysis run
-in that drain, never inside paho's read.  The payloads waiting for the drain are bounded **by count and by bytes**:
-beyond either bound new payloads are dropped and counted at once (reason ``overload``), so a flood of large payloads
-cannot exhaust memory.  A payload above ``max_payload_bytes`` is never copied: it is counted as received and
-rejected (reason ``too_large``) at once, in the same hand-over.
+The link's client is driven from the event loop and its message callback runs there, inside paho's read: a
+payload goes straight to the ingest (decoding, validation, frame assembly), with nothing queued in between.  Called
+from another thread, or while payloads are still waiting, the callback instead appends the payload to a hand-over
+queue and schedules one drain (``loop.call_soon_threadsafe``/``call_soon``) when none is pending yet; the payloads
+waiting for the drain are bounded **by count and by bytes**: beyond either bound new payloads are dropped and
+counted at once (reason ``overload``), so a flood of large payloads cannot exhaust memory.  A payload above
+``max_payload_bytes`` is never copied: it is counted as received and rejected (reason ``too_large``) at once, in the
+same hand-over.
 
 MQTT 3.1.1 and 5, TLS (CA pinning, client certificate and key with passphrase), username/password, QoS 0/1.
 """
@@ -108,12 +109,16 @@ class MqttSource:
         """Bytes of payloads handed to the event loop and not yet delivered to the ingest."""
         return self._pending_bytes
 
-    # -- inside paho's read (or any thread): do almost nothing, never raise (MqttLink catches what escapes)
+    # -- inside paho's read (or any thread): hand over, never raise (MqttLink catches what escapes)
 
     def _on_message(self, msg: mqtt.MQTTMessage) -> None:
         received_ns = time.time_ns()
         size = len(msg.payload)
         topic = msg.topic
+        if size <= self.max_payload_bytes and threading.get_ident() == self._loop_thread and not self._pending:
+            # on the event loop with nothing waiting (the usual case): straight to the ingest, in order
+            self._deliver(topic, bytes(msg.payload), received_ns)
+            return
         with self._lock:
             if size > self.max_payload_bytes:
                 self._drop("too_large", topic, size, "")
