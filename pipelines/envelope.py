@@ -148,6 +148,8 @@ _SHAFT_ORDERS = np.arange(1, SHAFT_HARMONICS + 1, dtype=np.float64)
 _SHAFT_ORDERS.flags.writeable = False
 _NEIGHBOURS = np.arange(-1, 2)
 _NEIGHBOURS.flags.writeable = False
+_SIDEBAND_SPAN = np.abs(SIDEBAND_ORDERS)
+_SIDEBAND_SPAN.flags.writeable = False
 
 
 def level_headroom() -> int:
@@ -533,16 +535,16 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     has = fund.index >= 0
     k1 = np.where(has, fund.index, 0).astype(np.float64)
     # 3. harmonics (around h × the found line, else h × the expected one) and sidebands (around the found line)
-    h = _harmonic_orders(harmonics)
+    h, h_near = _harmonic_orders(harmonics)
     h_centre = np.where(has[..., None], k1[..., None] * h, f_centre[..., None] * h)
-    h_half = np.where(has[..., None], np.ceil(h / 2.0) + 1.0, np.maximum(1.0, slip * f_centre[..., None] * h))
+    h_half = np.where(has[..., None], h_near, np.maximum(1.0, f_half[..., None] * h))
     mod = modulation_hz / df_hz
     sb_ok = has & np.isfinite(mod)
     mod0 = np.where(sb_ok, mod, 0.0)
     sb_centre = np.where(sb_ok[..., None], k1[..., None] + mod0[..., None] * SIDEBAND_ORDERS, np.nan)
-    sb_half = 1.0 + np.ceil(slip * mod0[..., None] * np.abs(SIDEBAND_ORDERS))
+    sb_half = 1.0 + np.ceil(slip * mod0[..., None] * _SIDEBAND_SPAN)
     centres = np.concatenate([f_centre[..., None], h_centre, sb_centre], axis=-1)  # (c, f, slots)
-    halves = np.concatenate([np.maximum(1.0, slip * f_centre)[..., None], h_half, sb_half], axis=-1)
+    halves = np.concatenate([np.maximum(1.0, f_half)[..., None], h_half, sb_half], axis=-1)
     slots = centres.shape[-1]
     bar_rest = np.repeat(established[..., None], slots - 1, axis=-1).reshape(c, -1)
     rest = search_lines(ses, centres[..., 1:].reshape(c, -1), halves[..., 1:].reshape(c, -1), thresholds, excluded,
@@ -564,7 +566,8 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     # 5. coincidences: a detected fundamental on a line of another family's pattern (a local maximum in one of
     # its windows, significant or not) whose own fundamental is significant
     local = index >= 0
-    near = np.abs(index[:, :, None, :, None] - index[:, None, :, None, :]) <= 1  # (c, A, B, qA, qB)
+    i32 = index.astype(np.int32)  # (line numbers: half the memory traffic of the pairwise differences)
+    near = np.abs(i32[:, :, None, :, None] - i32[:, None, :, None, :]) <= 1  # (c, A, B, qA, qB)
     on_other = (near[:, :, :, 0, :] & local[:, None, :, :]).any(axis=-1) & local[:, :, None, 0] & _not_eye(nf)
     shared = near & found[:, :, None, :, None] & local[:, None, :, None, :]  # A's counted lines on B's lines
     unique_a = (found[:, :, None, :] & ~shared.any(axis=-1)).sum(axis=-1)  # (c, A, B): A's lines B lacks
@@ -682,11 +685,14 @@ def shaft_series_established(shaft: LineSearch, candidate: IntArray) -> BoolArra
 
 
 @lru_cache(maxsize=16)
-def _harmonic_orders(harmonics: int) -> FloatArray:
-    """2 … ``harmonics`` (the harmonic slots' multiples of a fundamental)."""
-    out = np.arange(2, harmonics + 1, dtype=np.float64)
-    out.flags.writeable = False
-    return out
+def _harmonic_orders(harmonics: int) -> tuple[FloatArray, FloatArray]:
+    """2 … ``harmonics`` (the harmonic slots' multiples of a fundamental), and each one's half-width in lines
+    around h × a found fundamental (⌈h/2⌉ + 1)."""
+    h = np.arange(2, harmonics + 1, dtype=np.float64)
+    near = np.ceil(h / 2.0) + 1.0
+    for a in (h, near):
+        a.flags.writeable = False
+    return h, near
 
 
 @lru_cache(maxsize=16)
