@@ -473,6 +473,7 @@ class InstanceSpec:
     cpu: int | None
     uvloop: bool = False
     keep_freed: bool = False
+    switch_interval_s: float | None = None
 
 
 def _instance_main(spec: InstanceSpec, out: Any, ctl: Any) -> None:
@@ -484,6 +485,8 @@ def _instance_main(spec: InstanceSpec, out: Any, ctl: Any) -> None:
     configure_logging("error", "json", stream=sys.stderr)
     if spec.keep_freed:
         keep_freed_memory()
+    if spec.switch_interval_s is not None:  # diagnostic: how soon a thread waiting for the interpreter lock gets it
+        sys.setswitchinterval(spec.switch_interval_s)
     _warm_up_analysis(spec.overlap)
     if spec.uvloop:  # diagnostic: the same daemon on uvloop's event loop (not a dependency of edgevib)
         import uvloop  # type: ignore[import-not-found,unused-ignore]
@@ -612,7 +615,8 @@ def _get(q: Any, timeout_s: float, procs: list[Any]) -> dict[str, Any]:
 
 def run_level(broker: Broker, channels: int, seconds: float, warmup_s: float, overlap: float, publishers: int,
               qos: int, seed: int, alarms: bool = True, instances: int = 1, cpu: int | None = None,
-              uvloop: bool = False, danger: bool = False, keep_freed: bool = False) -> list[Row]:
+              uvloop: bool = False, danger: bool = False, keep_freed: bool = False,
+              switch_interval_s: float | None = None) -> list[Row]:
     """One load level: ``instances`` daemon processes (hash shards when more than one) and publisher processes
     streaming ``channels`` channels through ``broker``; one :class:`Row` per instance."""
     ctx = mp.get_context("spawn")
@@ -625,7 +629,7 @@ def run_level(broker: Broker, channels: int, seconds: float, warmup_s: float, ov
             spec = InstanceSpec(port=broker.port, channels=channels, overlap=overlap,
                                 shard=None if instances == 1 else (i, instances), seconds=seconds, alarms=alarms,
                                 cpu=None if cpu is None else (cpu + i) % (os.cpu_count() or 1), uvloop=uvloop,
-                            keep_freed=keep_freed)
+                            keep_freed=keep_freed, switch_interval_s=switch_interval_s)
             p = ctx.Process(target=_instance_main, args=(spec, out_i, ctls[i]), daemon=True)
             p.start()
             inst.append(p)
@@ -705,6 +709,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--keep-freed-memory", action="store_true",
                    help="diagnostic: the daemon's glibc keeps freed memory for reuse instead of faulting it in "
                         "again (mallopt; see keep_freed_memory)")
+    p.add_argument("--switch-interval", type=float, default=None, metavar="S",
+                   help="diagnostic: the daemon's interpreter switch interval in seconds (sys.setswitchinterval; "
+                        "Python's default 0.005): how long a thread, the event loop after a system call included, "
+                        "may wait for the interpreter lock while another thread runs Python code")
     p.add_argument("--json", action="store_true", help="print JSON rows and a summary instead of a table")
     return p
 
@@ -732,9 +740,9 @@ def level_summary(rows: list[Row]) -> dict[str, Any]:
 def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     if args.seconds <= 0 or args.warmup < 0 or not 0 <= args.overlap < 1 or args.publishers < 1 \
-            or not 1 <= args.instances <= 16:
+            or not 1 <= args.instances <= 16 or (args.switch_interval is not None and args.switch_interval <= 0):
         print("error: --seconds must be > 0, --warmup >= 0, 0 <= --overlap < 1, --publishers >= 1, "
-              "1 <= --instances <= 16", file=sys.stderr)
+              "1 <= --instances <= 16, --switch-interval > 0", file=sys.stderr)
         return 2
     broker = Broker()
     levels: list[list[Row]] = []
@@ -742,7 +750,8 @@ def main(argv: list[str] | None = None) -> int:
         for n in args.channels:
             rows = run_level(broker, n, args.seconds, args.warmup, args.overlap, args.publishers, args.qos,
                              args.seed, alarms=not args.without_alarms, instances=args.instances, cpu=args.cpu,
-                             uvloop=args.uvloop, danger=args.danger, keep_freed=args.keep_freed_memory)
+                             uvloop=args.uvloop, danger=args.danger, keep_freed=args.keep_freed_memory,
+                             switch_interval_s=args.switch_interval)
             levels.append(rows)
             if not args.json:
                 _print_level(rows, header=len(levels) == 1)
@@ -756,7 +765,8 @@ def main(argv: list[str] | None = None) -> int:
                           "fs_hz": FS_HZ, "block_samples": BLOCK, "overlap": args.overlap, "workers": 1,
                           "p99_target_ms": P99_TARGET_MS, "cpu_count": os.cpu_count(),
                           "alarms": not args.without_alarms, "uvloop": args.uvloop, "danger": args.danger,
-                          "keep_freed_memory": args.keep_freed_memory},
+                          "keep_freed_memory": args.keep_freed_memory,
+                          "switch_interval_s": args.switch_interval or sys.getswitchinterval()},
                          indent=2))
     else:
         print(f"sustained channels: {sustained} over {args.instances} instance(s) (target: >= 1000 channels per "
