@@ -416,6 +416,10 @@ class MqttLink:
                 if not self._stopping:
                     self._refused(describe_connect_failure(exc))
                 continue
+            except Exception as exc:  # anything else paho raises must not end the reconnect loop either
+                if not self._stopping:
+                    self._refused(f"connection attempt failed: {type(exc).__name__}: {exc}")
+                continue
             sock = client.socket()
             if sock is None or self._stopping:
                 continue
