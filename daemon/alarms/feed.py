@@ -186,7 +186,6 @@ class MqttFeed:
             availability=Availability(cfg.availability_topic) if cfg.availability_topic else None,
             on_state=self._on_state, on_message=self._cb_message, on_ack=self._on_ack, redeliver=False,
             max_inflight=BATCH)
-        self._loop: asyncio.AbstractEventLoop | None = None
         self._connected = asyncio.Event()
         self._wake = asyncio.Event()
         self._acks: dict[int, asyncio.Future[tuple[str, str]]] = {}
@@ -206,17 +205,6 @@ class MqttFeed:
         """New events are in the outbox."""
         self._wake.set()
 
-    # ---- paho's thread: copy the command and hand it over
-    def _cb_message(self, msg: Any) -> None:
-        props = getattr(msg, "properties", None)
-        response_topic = getattr(props, "ResponseTopic", None) if props is not None else None
-        correlation = getattr(props, "CorrelationData", None) if props is not None else None
-        loop = self._loop
-        if loop is not None and not loop.is_closed():
-            with contextlib.suppress(RuntimeError):
-                loop.call_soon_threadsafe(self._on_command, bytes(msg.payload), response_topic,
-                                          bytes(correlation) if correlation is not None else None)
-
     # ---- on the loop
     def _on_state(self, up: bool) -> None:
         if up:
@@ -234,10 +222,15 @@ class MqttFeed:
         if fut is not None and not fut.done():
             fut.set_result((status, reason))
 
-    def _on_command(self, payload: bytes, response_topic: str | None, correlation: bytes | None) -> None:
+    def _cb_message(self, msg: Any) -> None:
+        """A command (on the event loop: the link drives paho from it); answered by a task of its own."""
         if self.on_command is None:
             return
-        task = asyncio.get_running_loop().create_task(self._answer(payload, response_topic, correlation))
+        props = getattr(msg, "properties", None)
+        response_topic = getattr(props, "ResponseTopic", None) if props is not None else None
+        correlation = getattr(props, "CorrelationData", None) if props is not None else None
+        task = asyncio.get_running_loop().create_task(self._answer(
+            bytes(msg.payload), response_topic, bytes(correlation) if correlation is not None else None))
         self._commands.add(task)
         task.add_done_callback(self._commands.discard)
 
@@ -292,7 +285,6 @@ class MqttFeed:
 
     async def run(self) -> None:
         """Connect (retrying with backoff), then deliver pending events until :meth:`stop`."""
-        self._loop = asyncio.get_running_loop()
         await self.link.start()
         log.info("alarm feed started", url=self.conn.url, mode="binary" if self._binary else "structured",
                  commands=self.cfg.command_topic or None, availability=self.cfg.availability_topic or None)
