@@ -149,7 +149,9 @@ class PointStream:
         self.last_seq: int | None = None
         self.expected_t0_ns: int | None = None
         self.queue: deque[FrameJob] = deque()
-        self.queue_frames = queue_frames
+        # At least two blocks' worth of frames: a long block (65,536 samples in frames of 8,192 with half overlap
+        # is 16 frames at once) must not lose frames to a short queue while analysis keeps up.
+        self.queue_frames = max(queue_frames, 2 * -(-point.block_samples // self.hop))
         self.blocks = 0
 
     def check(self, block: Block) -> tuple[str | None, str]:

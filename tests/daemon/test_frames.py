@@ -143,6 +143,24 @@ def test_drop_oldest_when_analysis_falls_behind() -> None:
     np.testing.assert_array_equal([f.samples[0] for f in out], [3 * 16384.0, 4 * 16384.0])  # newest two kept
 
 
+def test_a_long_block_keeps_all_its_frames_with_a_short_queue() -> None:
+    # One block of 65,536 samples cut into frames of 8,192 with half overlap: (65536 − 8192) / 4096 + 1 = 15
+    # frames (common practice: overlapped framing, hop = frame × (1 − overlap)). With queue_frames = 4 the queue
+    # still holds at least two blocks' worth, so none is dropped while nothing has had time to analyse them.
+    long_block = 65536
+    ing, stats = make(config(frame=8192, overlap=0.5, queue=4, block_samples=long_block))
+    t0 = 1_764_633_600_000_000_000
+    ns = round(long_block * 1e9 / FS)
+    ing.block("broker", block(0, n=long_block, t0_ns=t0), 0)
+    out = frames(ing)
+    assert len(out) == 15 and stats.frames_dropped.get("P-101-DE-H", 0) == 0
+    np.testing.assert_array_equal([f.samples[0] for f in out], [k * 4096.0 for k in range(15)])
+    for seq in range(1, 4):  # four blocks and nobody analysing: now the oldest go, counted
+        ing.block("broker", block(seq, n=long_block, t0_ns=t0 + seq * ns), 0)
+    # (4 × 65536 − 8192) / 4096 + 1 = 63 frames in all, the newest 32 kept
+    assert len(frames(ing)) == 32 and stats.frames_dropped["P-101-DE-H"] == 63 - 32
+
+
 def test_sensor_from_topic_level() -> None:
     cfg = config(source={"sensor_from": "topic:2"})
     ing, stats = make(cfg)
