@@ -127,11 +127,6 @@ class AlarmLayer:
         self.core.trend_info = fn
 
     @property
-    def listeners(self) -> list[Callable[[dict[str, Any]], None]]:
-        """The subscribers (:meth:`subscribe` is the way to add one)."""
-        return self._listeners
-
-    @property
     def machine_states(self) -> dict[str, MachineState]:
         """The machines' states as the core judges them (read on the decision thread: a frame listener)."""
         return self.core.machine_states

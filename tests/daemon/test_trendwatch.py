@@ -15,7 +15,7 @@ import pytest
 from framekit import frame_indicators
 from prometheus_client import CollectorRegistry
 
-from edgevib.daemon.alarms.sink import create_sink
+from edgevib.daemon.app import wire_alarms
 from edgevib.daemon.config import parse_config
 from edgevib.daemon.history import HistoryReader
 from edgevib.daemon.interfaces import ConfigError, FrameResult
@@ -67,12 +67,12 @@ def _sample(registry: CollectorRegistry, name: str, **labels: str) -> float | No
 async def test_projection_reaches_gauges_state_message_and_events(tmp_path: Path) -> None:
     cfg = _config(tmp_path / "state")
     registry = CollectorRegistry()
-    layer = create_sink(cfg)
+    layer = wire_alarms(cfg)
     assert layer is not None
     watch = create_trend_watch(cfg, layer, registry=registry)
     assert watch is not None
     events: list[dict[str, Any]] = []
-    layer.listeners.append(events.append)
+    layer.subscribe(events.append)
     await layer.start()
     await watch.start()
     try:
@@ -270,12 +270,12 @@ async def test_healthy_months_are_not_rising_and_the_trend_raises_no_alarm(tmp_p
     # then a slow rise that stays below the alert level (ISO 20816-3 group 2 rigid B/C 2.8 mm/s, FIELD_NOTES §1):
     # the trend projects the crossing and advises, the alarm layer raises nothing — the trend only advises.
     cfg = _config(tmp_path / "state", trend={"evaluate_s": 3600.0, "min_span_h": 24.0, "window_days": 90.0})
-    layer = create_sink(cfg)
+    layer = wire_alarms(cfg)
     assert layer is not None
     watch = create_trend_watch(cfg, layer, registry=CollectorRegistry())
     assert watch is not None
     events: list[dict[str, Any]] = []
-    layer.listeners.append(events.append)
+    layer.subscribe(events.append)
     await layer.start()
     await watch.start()
     try:

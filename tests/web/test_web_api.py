@@ -362,7 +362,7 @@ async def test_actions_are_off_by_default(demo: Running) -> None:
 async def test_actions_need_credentials_and_csrf(demo_with_actions: Running) -> None:
     r = demo_with_actions
     events: list[dict[str, Any]] = []  # what the alarm layer commits (its durable outbox and history)
-    r.daemon.alarm_view.listeners.append(events.append)  # type: ignore[union-attr]
+    r.daemon.alarm_view.subscribe(events.append)  # type: ignore[union-attr]
     code, doc = await r.post("/api/v1/points/P-101-DE-H/ack")
     assert code == 401  # nobody
     code, doc = await r.post("/api/v1/session", {"token": "not-the-token-at-all"})
