@@ -108,7 +108,8 @@ def _band(name: str, band: object, nyquist_hz: float, field: str) -> tuple[float
     if hi <= lo:
         raise PlanError(f"{name} high edge {hi:g} Hz must be above its low edge {lo:g} Hz", field=field)
     if hi >= nyquist_hz:
-        raise PlanError(f"{name} high edge {hi:g} Hz is at or above Nyquist {nyquist_hz:g} Hz", field=field)
+        raise PlanError(f"{name} high edge {hi:g} Hz is at or above Nyquist {nyquist_hz:g} Hz "
+                        f"(half of fs_hz {2.0 * nyquist_hz:g})", field=field)
     return lo, hi
 
 

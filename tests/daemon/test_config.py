@@ -97,7 +97,7 @@ def test_minimal_config_fills_defaults() -> None:
      "impossible bearing geometry"),
     (lambda d: d["points"][0]["bearing"].update(elements=1), "points[0].bearing", "impossible bearing geometry"),
     (lambda d: d["points"][0].update(envelope_band_hz=[2000.0, 13000.0]), "points[0].envelope_band_hz",
-     "Nyquist 12800"),
+     "Nyquist 12800 Hz (half of fs_hz 25600)"),  # Nyquist = fs / 2 (Shannon–Nyquist sampling theorem)
     (lambda d: d["points"][0].update(envelope_band_hz=[2000.0, 11000.0]), "points[0].envelope_band_hz",
      "usable bandwidth 10000"),
     (lambda d: d["points"][0].update(velocity_band_hz=[10.0, 20000.0]), "points[0].velocity_band_hz", "Nyquist"),
