@@ -1344,7 +1344,16 @@ _BOUNDS = {"greater_than_equal": (">=", "ge"), "greater_than": (">", "gt"), "les
 
 
 def _must_be(what: str) -> Callable[[object, dict[str, Any]], str]:
-    return lambda value, _ctx: f"must be {what}, got {_type_name(value)}"
+    def problem(value: object, _ctx: dict[str, Any]) -> str:
+        shown = f" {value!r}" if isinstance(value, str | int | float) and len(repr(value)) <= 40 else ""
+        return f"must be {what}, got {_type_name(value)}{shown}"
+    return problem
+
+
+def _not_one_of(value: object, ctx: dict[str, Any]) -> str:
+    expected = str(ctx["expected"])
+    hint = _did_you_mean(value, re.findall(r"'([^']*)'", expected)) if isinstance(value, str) else ""
+    return f"{value!r} is not one of {expected}{hint}"
 
 
 def _out_of_range(kind: str) -> Callable[[object, dict[str, Any]], str]:
@@ -1361,7 +1370,7 @@ _PROBLEMS: dict[str, Callable[[object, dict[str, Any]], str]] = {
     **dict.fromkeys(("string_type", "str_type"), _must_be("a string")),
     "bool_type": _must_be("true or false"),
     **{kind: _out_of_range(kind) for kind in _BOUNDS},
-    "literal_error": lambda value, ctx: f"{value!r} is not one of {ctx['expected']}",
+    "literal_error": _not_one_of,
     **dict.fromkeys(("model_type", "dict_type", "model_attributes_type"), _must_be("a table")),
     **dict.fromkeys(("tuple_type", "list_type"), _must_be("an array")),
     "too_short": lambda _v, ctx: ("must not be empty" if ctx.get("min_length") == 1 else
