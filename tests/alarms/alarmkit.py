@@ -101,6 +101,16 @@ def alarm_layer(cfg: Config, registry: Any = None, **seams: Any) -> AlarmLayer:
     return layer
 
 
+async def started_layer(cfg: Config, registry: Any = None, *, events: list[dict[str, Any]] | None = None,
+                        **seams: Any) -> tuple[AlarmLayer, list[dict[str, Any]]]:
+    """:func:`alarm_layer` started, with ``events`` (a new list unless given) receiving each committed event."""
+    layer = alarm_layer(cfg, registry, **seams)
+    events = [] if events is None else events
+    layer.subscribe(events.append)
+    await layer.start()
+    return layer, events
+
+
 def indicators(velocity_mm_s: float, **kw: Any) -> Any:
     """FrameIndicators with a chosen velocity r.m.s. (others plausible for a healthy machine)."""
     from framekit import frame_indicators

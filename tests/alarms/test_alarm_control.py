@@ -10,7 +10,7 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from alarmkit import alarm_layer, frame_result, small_config
+from alarmkit import alarm_layer, frame_result, small_config, started_layer
 
 from edgevib.daemon.alarms.control import CommandError, handle_payload, request, validate_request
 from edgevib.daemon.cli import main
@@ -40,10 +40,7 @@ def test_garbage_gets_an_error_response() -> None:
 
 async def test_control_socket_commands(short_tmp: Path) -> None:
     cfg = small_config(short_tmp)
-    layer = alarm_layer(cfg)
-    events: list[dict[str, Any]] = []
-    layer.subscribe(events.append)
-    await layer.start()
+    layer, events = await started_layer(cfg)
     try:
         sock = Path(cfg.alarm_settings.socket_path)
         assert stat.S_ISSOCK(sock.stat().st_mode) and stat.S_IMODE(sock.stat().st_mode) == 0o600
@@ -110,10 +107,7 @@ async def test_a_shelf_expires_on_the_timer_without_frames(short_tmp: Path) -> N
     # no-data detection kept out of the way (100000 frame periods) so only the shelf expiry acts
     cfg = small_config(short_tmp, alarms={"no_data_frames": 100000})
     mono = [500.0]
-    layer = alarm_layer(cfg, monotonic=lambda: mono[0])
-    events: list[dict[str, Any]] = []
-    layer.subscribe(events.append)
-    await layer.start()
+    layer, events = await started_layer(cfg, monotonic=lambda: mono[0])
     try:
         for i in range(2):
             await layer.on_frames([frame_result("P-101-DE-H", "P-101", 1000.0 + i, 5.0)])
@@ -239,10 +233,7 @@ async def test_a_shelved_alarm_is_acknowledged_only_after_unshelving(short_tmp: 
     # removed from the operator's view), so an acknowledgement of it could be recorded nowhere visible.
     cfg = small_config(short_tmp, limits={"velocity_rms_mm_s": {"rule": "iso"},
                                           "kurtosis": {"alert": 5.0, "danger": 10.0}})
-    layer = alarm_layer(cfg)
-    events: list[dict[str, Any]] = []
-    layer.subscribe(events.append)
-    await layer.start()
+    layer, events = await started_layer(cfg)
     try:
         for i in range(2):
             await layer.on_frames([frame_result("P-101-DE-H", "P-101", 1000.0 + i, 5.0, kurtosis=12.0)])

@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 import pytest
 import structlog.testing
-from alarmkit import alarm_layer, frame_result, small_config
+from alarmkit import alarm_layer, frame_result, small_config, started_layer
 from prometheus_client import CollectorRegistry
 from scipy.io import wavfile
 
@@ -155,9 +155,7 @@ async def _feed(layer: AlarmLayer, values: list[float], t0: float = 1000.0) -> N
 async def test_restart_restores_state_without_storm_or_loss(short_tmp: Path) -> None:
     cfg = small_config(short_tmp)
     events: list[dict[str, Any]] = []
-    layer = alarm_layer(cfg)
-    layer.subscribe(events.append)
-    await layer.start()
+    layer, _ = await started_layer(cfg, events=events)
     await _feed(layer, [1.0, 3.0, 3.0, 3.0])
     await layer.stop()
     assert [e["data"]["transition"] for e in events] == ["raised"]
@@ -176,10 +174,7 @@ async def test_restart_restores_state_without_storm_or_loss(short_tmp: Path) -> 
 async def test_iso_baseline_rule_and_relearn(short_tmp: Path) -> None:
     cfg = small_config(short_tmp, alarms={"baseline_frames": 5},
                        limits={"velocity_rms_mm_s": {"rule": "iso-baseline"}})
-    layer = alarm_layer(cfg)
-    events: list[dict[str, Any]] = []
-    layer.subscribe(events.append)
-    await layer.start()
+    layer, events = await started_layer(cfg)
     row = layer.snapshot()["alarms"][0]
     assert row["alert"] == pytest.approx(2.8) and row["danger"] == pytest.approx(4.5)  # B/C until learned
     await _feed(layer, [1.0, 1.2, 0.8, 1.0, 1.0])
@@ -222,10 +217,7 @@ async def test_state_text_shows_every_active_alarm_worst_level_and_fault_pattern
 
 async def test_stopped_machine_and_start_up_grace_suppress(short_tmp: Path) -> None:
     cfg = small_config(short_tmp, alarms={"startup_grace_s": 5.0})
-    layer = alarm_layer(cfg)
-    events: list[dict[str, Any]] = []
-    layer.subscribe(events.append)
-    await layer.start()
+    layer, events = await started_layer(cfg)
     await _feed(layer, [0.05] * 3 + [6.0] * 4, t0=100.0)  # stopped, then a start with a high transient
     assert events == [] and layer.state_text("P-101-DE-H") == "starting"
     await _feed(layer, [6.0] * 3, t0=107.0)  # grace over: the on-delay starts afresh

@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from alarmkit import alarm_layer, frame_result
+from alarmkit import alarm_layer, frame_result, started_layer
 from prometheus_client import CollectorRegistry
 
 from edgevib.daemon.alarms.engine import AlarmLayer
@@ -52,9 +52,8 @@ class Clock:
 
 
 async def make_layer(cfg: Config, clock: Clock, events: list[dict[str, Any]], **seams: Any) -> AlarmLayer:
-    layer = alarm_layer(cfg, monotonic=clock, tracks_sources=True, **seams)  # sources tracked as in the daemon
-    layer.subscribe(events.append)
-    await layer.start()
+    # sources tracked as in the daemon
+    layer, _ = await started_layer(cfg, events=events, monotonic=clock, tracks_sources=True, **seams)
     return layer
 
 
@@ -283,10 +282,7 @@ async def test_alarms_of_indicators_absent_while_stopped_are_suppressed_too(shor
     from edgevib.pipelines.machine_state import MachineState
 
     cfg = small_config(short_tmp, limits={"imbalance_1x_mm_s": {"alert": 1.4, "danger": 2.8}})
-    layer = alarm_layer(cfg)
-    events: list[dict[str, Any]] = []
-    layer.subscribe(events.append)
-    await layer.start()
+    layer, events = await started_layer(cfg)
     try:
         running = MachineState(state="running", since_s=0.0)
         stopped = MachineState(state="stopped", since_s=T0 + 10.0)
@@ -308,12 +304,9 @@ async def test_alarms_of_indicators_absent_while_stopped_are_suppressed_too(shor
 async def test_operator_actions_during_an_outage_take_the_time_of_the_action(short_tmp: Path) -> None:
     # ISA-18.2 (FIELD_NOTES §7): an acknowledgement or shelve is recorded when the operator acts; a shelve runs
     # for its duration from then, even while the point's data is stale.
-    clock, events = Clock(), []
-    wall = Clock()
+    clock, wall = Clock(), Clock()
     wall.t = T0 + 102.0
-    layer = alarm_layer(two_points(short_tmp), monotonic=clock, clock=wall, tracks_sources=True)
-    layer.subscribe(events.append)
-    await layer.start()
+    layer, _ = await started_layer(two_points(short_tmp), monotonic=clock, clock=wall, tracks_sources=True)
     try:
         layer.on_source("plant", True)
         await frames(layer, clock, 100.0, {POINTS[0]: [6.0] * 3, POINTS[1]: [1.0] * 3})

@@ -10,7 +10,7 @@ from typing import Any, get_args
 
 import numpy as np
 import pytest
-from alarmkit import alarm_layer, frame_result, small_config
+from alarmkit import alarm_layer, frame_result, small_config, started_layer
 from jsonschema import Draft202012Validator
 from jsonschema.exceptions import ValidationError
 
@@ -92,10 +92,7 @@ async def test_alarm_and_baseline_events_meet_their_schemas(short_tmp: Path) -> 
     cfg = small_config(short_tmp, feed=FEED, alarms={"baseline_frames": 5},
                        limits={"velocity_rms_mm_s": {"rule": "iso-baseline"},
                                "kurtosis": {"alert": 5.0, "danger": 10.0}})
-    layer = alarm_layer(cfg)
-    events: list[dict[str, Any]] = []
-    layer.subscribe(events.append)
-    await layer.start()
+    layer, events = await started_layer(cfg)
     try:
         await _feed(layer, [1.0, 1.2, 0.8, 1.0, 1.0], t0=1000.0)  # learned
         await _feed(layer, [3.0, 3.0, 5.0, 5.0], t0=2000.0)  # raised, escalated
@@ -117,10 +114,7 @@ async def test_alarm_and_baseline_events_meet_their_schemas(short_tmp: Path) -> 
 
 async def test_sensor_fault_events_meet_their_schema(sim_config: Any) -> None:
     _, cfg, frames = sim_config("sensor-faults", extra={"alarms": {"startup_grace_s": 0.0}, "feed": FEED})
-    layer = alarm_layer(cfg)
-    events: list[dict[str, Any]] = []
-    layer.subscribe(events.append)
-    await layer.start()
+    layer, events = await started_layer(cfg)
     try:
         for t in range(1, 16):
             await layer.on_frames(frames.until(float(t)))
