@@ -67,14 +67,9 @@ class Notifier:
                                            "an abstract name starting with '@'; notifications are disabled")
 
     @classmethod
-    def from_env(cls, env: Mapping[str, str] | None = None, *, unset_environment: bool = False) -> Notifier:
-        """A notifier for ``$NOTIFY_SOCKET``; with ``unset_environment`` the variable is removed from
-        ``os.environ`` so that child processes do not inherit it (as ``sd_notify(unset_environment=1)``)."""
-        source = os.environ if env is None else env
-        address = source.get("NOTIFY_SOCKET")
-        if unset_environment and env is None:
-            os.environ.pop("NOTIFY_SOCKET", None)
-        return cls(address)
+    def from_env(cls, env: Mapping[str, str] | None = None) -> Notifier:
+        """A notifier for ``$NOTIFY_SOCKET`` of ``env`` (default: the process environment)."""
+        return cls((os.environ if env is None else env).get("NOTIFY_SOCKET"))
 
     @property
     def enabled(self) -> bool:

@@ -105,15 +105,6 @@ def test_no_op_without_systemd() -> None:
     assert n.sent == 0
 
 
-def test_unset_environment(monkeypatch: pytest.MonkeyPatch, path_socket: tuple[str, socket.socket]) -> None:
-    address, sock = path_socket
-    monkeypatch.setenv("NOTIFY_SOCKET", address)
-    n = Notifier.from_env(unset_environment=True)
-    assert "NOTIFY_SOCKET" not in os.environ
-    assert n.ready()
-    assert sock.recv(4096) == b"READY=1"
-
-
 def test_relative_address_is_refused_and_logged_once() -> None:
     with capture_logs() as logs:
         n = Notifier("relative/notify")
