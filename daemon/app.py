@@ -709,7 +709,7 @@ class Daemon:
     def _health_spec(self, point_id: str) -> HealthSpec | None:
         """The point's sensor-health specification, or ``None`` when the alarm layer checks no health."""
         settings = self.config.alarm_settings
-        if not settings.enabled or not settings.health_enabled:
+        if not settings.table.enabled or not settings.table.health.enabled:
             return None
         return settings.health.get(point_id) or _DEFAULT_HEALTH
 
@@ -874,7 +874,7 @@ def wire_alarms(config: Config, registry: CollectorRegistry | None = None, *,
     from edgevib.daemon.alarms.store import AlarmStore
 
     s = config.alarm_settings
-    if not s.enabled:
+    if not s.table.enabled:
         return None
     fc = s.feed
     use_mqtt = fc.enabled and fc.connection is not None
@@ -884,7 +884,7 @@ def wire_alarms(config: Config, registry: CollectorRegistry | None = None, *,
     mqtt = MqttFeed(fc, store, lambda: layer.state_messages(), io=store.run,
                     on_command=lambda b: handle_payload(b, layer.handle_command)) if use_mqtt else None
     webhook = WebhookFeed(hook, store, io=store.run) if hook is not None else None
-    control = ControlServer(s.socket_path, lambda req: layer.handle_command(req), mode=s.socket_mode)
+    control = ControlServer(s.table.socket, lambda req: layer.handle_command(req), mode=int(s.table.socket_mode, 8))
     layer = AlarmLayer(config, store, mqtt=mqtt, webhook=webhook, control=control, commands=commands,
                        block_arrival=block_arrival, config_refusal=config_refusal, tracks_sources=tracks_sources,
                        clock=clock, monotonic=monotonic)

@@ -87,21 +87,6 @@ class AlarmSettings:
     health: Mapping[str, HealthSpec] = field(default_factory=dict)
     config_digest: str = ""
 
-    enabled = property(lambda self: self.table.enabled)
-    health_enabled = property(lambda self: self.table.health.enabled)
-    startup_grace_s = property(lambda self: self.table.startup_grace_s)
-    run_threshold_velocity_mm_s = property(lambda self: self.table.run_threshold_velocity_mm_s)
-    run_hysteresis = property(lambda self: self.table.run_hysteresis)
-    speed_change_per_s = property(lambda self: self.table.speed_change_per_s)
-    speed_trend_window_s = property(lambda self: self.table.speed_trend_window_s)
-    no_data_frames = property(lambda self: self.table.no_data_frames)
-    sensor_recover_frames = property(lambda self: self.table.sensor_recover_frames)
-    baseline_frames = property(lambda self: self.table.baseline_frames)
-    trend_frames = property(lambda self: self.table.trend_frames)
-    max_shelve_s = property(lambda self: 3600.0 * self.table.max_shelve_h)
-    socket_path = property(lambda self: self.table.socket)
-    socket_mode = property(lambda self: int(self.table.socket_mode, 8))
-
 
 def _delay(frames: int | None, seconds: float | None, default: Delay) -> Delay:
     return Delay(frames=frames) if frames is not None else Delay(seconds=seconds) if seconds is not None else default

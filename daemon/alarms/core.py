@@ -496,11 +496,11 @@ class AlarmCore:
         else:
             self.values.pop(key, None)
         if reason is None:
-            self.trends.setdefault(key, deque(maxlen=self.settings.trend_frames)).append((t_s, value))
+            self.trends.setdefault(key, deque(maxlen=self.settings.table.trend_frames)).append((t_s, value))
             if lim.needs_baseline:
                 b = self.baselines.get(key, Baseline())
                 if not b.learned:
-                    nb = b.add(value, t_s, self.settings.baseline_frames)
+                    nb = b.add(value, t_s, self.settings.table.baseline_frames)
                     self.baselines[key] = eff.baselines[key] = nb
                     if nb.learned:
                         self.specs[key] = self._spec(lim)
@@ -543,7 +543,7 @@ class AlarmCore:
         """Consecutive healthy frames before a sensor fault clears: ``sensor_recover_frames``, and after a relapse
         at least the relapse hold (30 s, 60 s, 120 s … up to 1 h) of frames, so an intermittent fault stays raised."""
         hold_s = _relapse_hold_s(relapses)
-        return max(int(self.settings.sensor_recover_frames), math.ceil(hold_s / self.frame_period_s(pid)))
+        return max(self.settings.table.sensor_recover_frames, math.ceil(hold_s / self.frame_period_s(pid)))
 
     # ------------------------------------------------------------------------------------------ events
 
@@ -644,7 +644,7 @@ class AlarmCore:
         return float(hop or 16384) / float(p.fs_hz)
 
     def _no_data_s(self, pid: str) -> float:
-        return max(2.0, float(self.settings.no_data_frames) * self.frame_period_s(pid))
+        return max(2.0, self.settings.table.no_data_frames * self.frame_period_s(pid))
 
     def _silent(self, pid: str, inp: Tick, now: Now) -> bool:
         """No frame for the no-data interval, and (where the daemon tells) no block either."""
@@ -710,7 +710,7 @@ class AlarmCore:
                         point=pid, refused=refused)
             return
         limit_s = self._no_data_s(pid)
-        detail = (f"no frames for more than {limit_s:.1f} s ({self.settings.no_data_frames} frame periods) while "
+        detail = (f"no frames for more than {limit_s:.1f} s ({self.settings.table.no_data_frames} frame periods) while "
                   f"other points of source {p.source!r} deliver")
         last = None if pid in self.restored_frames else self.last_frame.get(pid)  # a frame since start
         t_ns = round((now.wall if last is None else last) * 1e9)
@@ -878,9 +878,10 @@ class AlarmCore:
         req = inp.req
         cmd, by = req["cmd"], req.get("by")
         lims = self.targets(req)
-        if cmd == "shelve" and lims and float(req["duration_s"]) > self.settings.max_shelve_s:
+        max_s = 3600.0 * self.settings.table.max_shelve_h
+        if cmd == "shelve" and lims and float(req["duration_s"]) > max_s:
             raise CommandError(f"shelve: {human_duration(float(req['duration_s']))} exceeds the maximum "
-                               f"{human_duration(self.settings.max_shelve_s)} ([alarms] max_shelve_h)")
+                               f"{human_duration(max_s)} ([alarms] max_shelve_h)")
         if cmd not in ("ack", "shelve", "unshelve", "relearn"):  # validate_request allows no other
             raise CommandError(f"unknown command {cmd!r}")
         # the time of the action: the wall clock, on the point's timeline (the last frame's time advanced by

@@ -256,7 +256,7 @@ class AlarmLayer:
         one — checked here, batched over frames of one length and rate (on the decision thread; the r.m.s. comes
         from the frame's indicators)."""
         out: list[SensorHealth | None] = [r.health for r in results]
-        if not self.settings.health_enabled:
+        if not self.settings.table.health.enabled:
             return [None] * len(results)
         groups: dict[tuple[int, float], list[int]] = {}
         for i, r in enumerate(results):
@@ -280,7 +280,7 @@ class AlarmLayer:
         without a machine state use the machine's latest known one."""
         ms = r.machine_state or self.core.machine_states.get(r.machine_id)
         return judged_running(ms is not None and ms.state == "running", r.indicators.velocity_rms_mm_s,
-                              self.settings.run_threshold_velocity_mm_s)
+                              self.settings.table.run_threshold_velocity_mm_s)
 
     # ------------------------------------------------------------------------------------------ timer, sources
 

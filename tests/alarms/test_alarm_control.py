@@ -42,7 +42,7 @@ async def test_control_socket_commands(short_tmp: Path) -> None:
     cfg = small_config(short_tmp)
     layer, events = await started_layer(cfg)
     try:
-        sock = Path(cfg.alarm_settings.socket_path)
+        sock = Path(cfg.alarms.socket)
         assert stat.S_ISSOCK(sock.stat().st_mode) and stat.S_IMODE(sock.stat().st_mode) == 0o600
         for i, v in enumerate([5.0, 5.0]):
             await layer.on_frames([frame_result("P-101-DE-H", "P-101", 1000.0 + i, v)])
@@ -82,7 +82,7 @@ async def test_control_socket_commands(short_tmp: Path) -> None:
         assert rc == 0
     finally:
         await layer.stop()
-    assert not Path(cfg.alarm_settings.socket_path).exists()
+    assert not Path(cfg.alarms.socket).exists()
     assert main(["alarms", "--state-dir", str(short_tmp), "list"]) == 2  # nobody listening
 
 
