@@ -404,7 +404,7 @@ class HistoryRecorder:
             if not batch:
                 return 0
             try:
-                self._write(batch)
+                late = self._write(batch)
             except sqlite3.Error as exc:
                 self.stats.write_errors += 1
                 self._rlog.error("history", "history write failed; frames kept for the next attempt",
@@ -414,14 +414,15 @@ class HistoryRecorder:
                     self._drop_excess()
                 self._reload_open()
                 return 0
-            self.stats.written += len(batch)
+            self.stats.late += late
+            self.stats.written += len(batch) - late
             try:
                 self._prune()
             except sqlite3.Error as exc:
                 self.stats.write_errors += 1
                 self._rlog.error("history-prune", "history pruning failed", error=str(exc))
             self.stats.bytes = self.db.size_bytes()
-            return len(batch)
+            return len(batch) - late
 
     def _reload_open(self) -> None:
         """After a failed transaction the in-memory buckets may hold the batch: rebuild them from the file."""
@@ -429,7 +430,9 @@ class HistoryRecorder:
         with contextlib.suppress(sqlite3.Error):
             self._restore()
 
-    def _write(self, batch: list[tuple[str, int, npt.NDArray[np.float64], int]]) -> None:
+    def _write(self, batch: list[tuple[str, int, npt.NDArray[np.float64], int]]) -> int:
+        """Write ``batch`` in one transaction; returns how many of its frames were late (not newer than their
+        point's latest recorded frame: skipped)."""
         frames: list[tuple[int, int, int, int, bytes]] = []
         rollups: list[tuple[int, int, int, int, int, bytes, bytes | None]] = []
         with self.db.transaction() as c:
@@ -439,7 +442,6 @@ class HistoryRecorder:
                 if op is None:
                     op = self._open[point] = _Open(self._layout)
                 if t_ns <= op.latest_ns and op.latest_ns:
-                    self.stats.late += 1
                     continue
                 op.latest_ns = t_ns
                 frames.append((pid, t_ns, self._layout, code, _f32(v)))
@@ -472,6 +474,7 @@ class HistoryRecorder:
                 if op.dirty:
                     self._open_rows(pid, op, rollups)
             c.executemany(_INSERT_ROLLUP, rollups)
+        return len(batch) - len(frames)
 
     @staticmethod
     def _write_period(c: sqlite3.Connection, pid: int, op: _Open) -> None:

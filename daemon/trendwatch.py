@@ -687,6 +687,8 @@ class TrendCollector:
         yield slope
         yield eta
         yield rising
+        yield CounterMetricFamily("edgevib_trend_evaluation_errors", "Trend evaluations of a series that failed "
+                                  "(logged; the other series go on).", value=w.errors)
         rec = w.recorder
         if rec is not None:
             st = rec.stats
@@ -694,6 +696,8 @@ class TrendCollector:
                                       value=st.written)
             yield CounterMetricFamily("edgevib_history_frames_dropped", "Frames the history dropped because writing "
                                       "fell behind (oldest first).", value=st.dropped)
+            yield CounterMetricFamily("edgevib_history_frames_late", "Frames the history skipped because they were "
+                                      "not newer than the point's latest recorded frame.", value=st.late)
             yield CounterMetricFamily("edgevib_history_write_errors", "Failed history writes (the batch is retried).",
                                       value=st.write_errors)
             pruned = CounterMetricFamily("edgevib_history_pruned_rows", "Rows pruned to keep the history within "

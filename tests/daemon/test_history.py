@@ -181,11 +181,11 @@ def test_a_write_error_keeps_the_batch_for_the_next_flush(tmp_path: Path, monkey
     real = rec._write
     calls = {"n": 0}
 
-    def failing(batch: list) -> None:  # type: ignore[type-arg]
+    def failing(batch: list) -> int:  # type: ignore[type-arg]
         calls["n"] += 1
         if calls["n"] == 1:
             raise sqlite3.OperationalError("disk I/O error")
-        real(batch)
+        return real(batch)
 
     monkeypatch.setattr(rec, "_write", failing)
     assert rec.flush() == 0 and rec.stats.write_errors == 1 and rec.pending == 100

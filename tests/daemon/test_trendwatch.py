@@ -398,3 +398,31 @@ async def test_projections_are_recomputed_periodically(tmp_path: Path) -> None:
         assert watch.evaluations >= 1 and doc["status"] == "ok" and doc["rising"]
     finally:
         await watch.stop()
+
+
+async def test_late_frames_and_failed_evaluations_are_counted_on_the_metrics(tmp_path: Path,
+                                                                           monkeypatch: pytest.MonkeyPatch) -> None:
+    # Problems are counted and published, not only logged (the project's rule for bad input; Prometheus counters
+    # carry the _total suffix in the text format: prometheus_client's exposition).
+    cfg = _config(tmp_path / "state")
+    registry = CollectorRegistry()
+    watch = create_trend_watch(cfg, None, registry=registry)
+    assert watch is not None and watch.recorder is None
+    await watch.start()
+    try:
+        await watch.on_frames([_frame(T0 + i * 3600.0, 1.0, i) for i in range(3)])
+        await watch.on_frames([_frame(T0 + 3600.0, 1.0, 1)])  # the second frame again: not newer than the third
+        assert watch.recorder is not None
+        await asyncio.to_thread(watch.recorder.flush)
+        assert _sample(registry, "edgevib_history_frames_late_total") == 1.0
+        assert _sample(registry, "edgevib_history_frames_written_total") == 3.0
+
+        def failing(*_args: Any) -> None:
+            raise ValueError("a series that cannot be evaluated")
+
+        monkeypatch.setattr(watch, "_evaluate_one", failing)
+        assert _sample(registry, "edgevib_trend_evaluation_errors_total") == 0.0
+        await asyncio.to_thread(watch.evaluate_all)
+        assert _sample(registry, "edgevib_trend_evaluation_errors_total") == len(watch.settings.indicators)
+    finally:
+        await watch.stop()
