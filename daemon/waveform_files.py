@@ -26,6 +26,7 @@ import csv
 import io
 import math
 import re
+import warnings
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
@@ -83,9 +84,17 @@ def _read_wav(path: Path, channel: int | None, full_scale: float) -> Waveform:
     from scipy.io import wavfile
 
     try:
-        rate, data = wavfile.read(path)
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", wavfile.WavFileWarning)
+            rate, data = wavfile.read(path)
     except Exception as exc:  # scipy raises ValueError, struct.error, EOFError… on malformed files
         raise InputError(f"cannot read {path} as WAV: {exc}") from None
+    for w in caught:
+        # a file cut short (an interrupted copy or recording) is refused like a truncated .npy or .mat, not
+        # analysed silently as a shorter record; scipy only warns and returns the samples it found
+        if "EOF" in str(w.message):
+            raise InputError(f"WAV file {path} is truncated: {w.message}")
+        warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)  # others pass on as before
     x, which = _pick_column(np.asarray(data), channel, f"WAV file {path}")
     if x.dtype.kind == "f":
         samples = x.astype(np.float64)

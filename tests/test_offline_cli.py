@@ -169,7 +169,7 @@ def _bad_files(tmp: Path) -> dict[str, Path]:
         "short": tmp / "short.npy", "nan": tmp / "nan.csv", "text": tmp / "text.csv", "empty": tmp / "empty.csv",
         "ragged": tmp / "ragged.csv", "wav": tmp / "bad.wav", "mat": tmp / "bad.mat", "npy_obj": tmp / "obj.npy",
         "unknown": tmp / "signal.xyz", "good": tmp / "good.npy", "mono": tmp / "mono.wav", "dir": tmp / "d.wav",
-        "binary_csv": tmp / "bin.csv", "tiny": tmp / "tiny.npy",
+        "binary_csv": tmp / "bin.csv", "tiny": tmp / "tiny.npy", "cut_wav": tmp / "cut.wav",
     }
     np.save(files["short"], np.zeros(100))
     np.save(files["tiny"], np.ones(63))
@@ -183,6 +183,7 @@ def _bad_files(tmp: Path) -> dict[str, Path]:
     files["unknown"].write_text("1\n2\n")
     np.save(files["good"], sine(25600, 1.0, 50.0, 1.0))
     scipy.io.wavfile.write(files["mono"], 25600, sine(25600, 1.0, 50.0, 1.0).astype(np.float32))
+    files["cut_wav"].write_bytes(files["mono"].read_bytes()[:3000])  # a copy cut short: header says 25600 samples
     files["dir"].mkdir()
     files["binary_csv"].write_bytes(b"\xff\xfe\x00\x01")
     return files
@@ -204,6 +205,10 @@ BAD_CASES = [
     (["{good}", "--fs", "-5"], "--fs -5 must be > 0"),
     (["{good}", "--fs", "abc"], "--fs 'abc' is not a number"),
     (["{mono}", "--fs", "1000"], "contradicts the WAV header's 25600 Hz"),
+    # a WAV cut short after its header (the RIFF/data chunk sizes announce more bytes than the file holds:
+    # Microsoft RIFF WAVE format, common practice) is refused like a truncated .npy, not analysed silently as a
+    # shorter record (acceptance re-check of issue 15: it exited 0 with scipy's two-line warning)
+    (["{cut_wav}"], "is truncated"),
     (["{tiny}", "--fs", "25600"], "record of 63 samples is too short: need at least 64"),
     (["{good}", "--fs", "25600", "--band", "2000:20000", "--bearing", CWRU_BEARING],
      "envelope band high edge 20000 Hz is at or above Nyquist 12800 Hz"),
