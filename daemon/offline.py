@@ -23,7 +23,7 @@ import argparse
 import json
 import math
 import sys
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any, NoReturn
 
@@ -45,7 +45,7 @@ from edgevib.pipelines.conditioning import to_g
 from edgevib.pipelines.envelope import DEPTH_NOISE_RMS
 from edgevib.pipelines.kurtogram import select_band_for
 from edgevib.pipelines.severity import iso_zone, zone_boundaries_mm_s
-from edgevib.pipelines.types import BearingGeometry, FrameIndicators, PipelineError
+from edgevib.pipelines.types import AnalysisPlan, BearingGeometry, FrameIndicators, PipelineError
 
 __all__ = ["FORMATS", "InputError", "Waveform", "configure_analyze", "configure_bearing", "read_waveform",
            "run_analyze", "run_bearing"]
@@ -304,23 +304,29 @@ def _options(args: argparse.Namespace) -> _Options:
                     auto=auto, band=band, velocity_band=vel_band, alpha=alpha)
 
 
+def _file_rate(wave: Waveform, path: Path, fs: float | None, name: str) -> float:
+    """A record's sample rate: ``fs`` (``--fs``; a WAV header's rate may not be contradicted), else the file's;
+    ``name`` names the file in messages."""
+    if fs is None:
+        if wave.fs_hz is None:
+            raise InputError(f"{name} does not carry a sample rate: give --fs HZ")
+        fs = wave.fs_hz
+    elif wave.fs_hz is not None and path.suffix.lower() == ".wav" and abs(fs - wave.fs_hz) > 1e-9 * fs:
+        raise InputError(f"{name}: --fs {fs:g} Hz contradicts the WAV header's {wave.fs_hz:g} Hz")
+    if not math.isfinite(fs) or fs <= 0:
+        raise InputError(f"{name}: sample rate {fs!r} Hz must be finite and > 0")
+    return fs
+
+
 def _sample_rate(args: argparse.Namespace, wave: Waveform, warnings: list[str]) -> tuple[float, str | None]:
     """The sample rate (``--fs`` or the file's) and where it came from."""
-    fs_source = wave.fs_source
-    if args.fs is not None:
-        fs = _positive("--fs", args.fs)
-        if wave.fs_hz is not None and args.file.suffix.lower() == ".wav" and abs(fs - wave.fs_hz) > 1e-9 * fs:
-            raise InputError(f"--fs {fs:g} Hz contradicts the WAV header's {wave.fs_hz:g} Hz")
-        if wave.fs_hz is not None and abs(fs - wave.fs_hz) > 1e-9 * fs:
-            warnings.append(f"--fs {fs:g} Hz differs from the {wave.fs_hz:g} Hz of {wave.fs_source}; using --fs")
-        fs_source = "option --fs"
-    elif wave.fs_hz is not None:
-        fs = wave.fs_hz
-    else:
-        raise InputError(f"{args.file} does not carry a sample rate: give --fs HZ")
-    if not math.isfinite(fs) or fs <= 0:
-        raise InputError(f"sample rate {fs!r} Hz must be finite and > 0")
-    return fs, fs_source
+    option = None if args.fs is None else _positive("--fs", args.fs)
+    fs = _file_rate(wave, args.file, option, str(args.file))
+    if option is None:
+        return fs, wave.fs_source
+    if wave.fs_hz is not None and abs(fs - wave.fs_hz) > 1e-9 * fs:
+        warnings.append(f"--fs {fs:g} Hz differs from the {wave.fs_hz:g} Hz of {wave.fs_source}; using --fs")
+    return fs, "option --fs"
 
 
 def _samples_g(args: argparse.Namespace, x: np.ndarray, unit: str) -> np.ndarray:
@@ -522,39 +528,44 @@ def _analyze(args: argparse.Namespace) -> tuple[dict[str, Any], list[str]]:
     }
     _add_bearing_and_iso(result, ind, opts, args.support, shaft_hz)
     if getattr(args, "report", None) is not None:
-        _write_report(args.report, result, x_g, fs, plan, frame)
+        _check_report_path(args.report)
+        write_frame_report(args.report, replace(frame, iso_zone=result["iso_zone"]), plan, x_g=x_g,
+                           title=Path(result["file"]).name, meta=_report_meta(result, plan, ind),
+                           notes=["The record is analysed as one frame.", *notes])
     return result, warnings
 
 
-def _write_report(out: Path, result: dict[str, Any], x_g: np.ndarray, fs: float, plan: Any,
-                  frame: FrameResult) -> None:
-    """``--report``: the recording's panels in one self-contained HTML file."""
-    from edgevib.daemon.web.api import indicator_rows
-    from edgevib.daemon.web.report import build_report, write_report
-    from edgevib.pipelines.panels import envelope_panel, spectrum_panel, waveform_panel
-
-    if out.is_dir():
-        raise InputError(f"--report {out} is a directory; give a file name such as report.html")
-    if not out.parent.is_dir():
-        raise InputError(f"--report {out}: folder {out.parent} does not exist")
-    ind = frame.indicators
-    spectrum = spectrum_panel(x_g, fs, plan, ind.shaft_hz)
-    envelope = envelope_panel(x_g, fs, plan, ind.shaft_hz)
-    waveform = waveform_panel(x_g, fs)
-    rows = [(row["name"], row["value"], row["unit"]) for row in indicator_rows(frame)
-            if row["kind"] != "limit" and row["name"] != "iso_zone"]
-    if result.get("iso_zone") is not None:
-        rows.append(("iso_zone", result["iso_zone"], "1"))
-    meta = {"file": result["file"], "signal": result["signal"], "sample rate (Hz)": fs,
+def _report_meta(result: dict[str, Any], plan: AnalysisPlan, ind: FrameIndicators) -> dict[str, Any]:
+    return {"file": result["file"], "signal": result["signal"], "sample rate (Hz)": result["fs_hz"],
             "samples": result["n_samples"], "duration (s)": result["duration_s"],
             "shaft speed (r/min)": None if ind.shaft_hz is None else ind.shaft_hz * 60,
             "speed from": result["shaft_source"],
             "velocity band (Hz)": "–".join(f"{b:g}" for b in plan.velocity_band_hz),
             "envelope band (Hz)": "–".join(f"{b:g}" for b in plan.envelope_band_hz) if plan.envelope_band_hz
             else "none"}
-    text = build_report(title=Path(result["file"]).name, meta=meta, indicators=rows, spectrum=spectrum,
-                        envelope=envelope, waveform=waveform,
-                        notes=["The record is analysed as one frame.", *result.get("notes", [])])
+
+
+def _check_report_path(out: Path) -> None:
+    if out.is_dir():
+        raise InputError(f"--report {out} is a directory; give a file name such as report.html")
+    if not out.parent.is_dir():
+        raise InputError(f"--report {out}: folder {out.parent} does not exist")
+
+
+def write_frame_report(out: Path, frame: FrameResult, plan: AnalysisPlan, *, title: str, meta: dict[str, Any],
+                       x_g: np.ndarray | None = None, trend: dict[str, Any] | None = None, notes: list[str]) -> None:
+    """``--report`` of ``analyze`` and ``replay``: a frame's spectrum, envelope, waveform (of ``x_g``, default its
+    samples) and indicators, and a trend when given, in one self-contained HTML file."""
+    from edgevib.daemon.web.api import indicator_rows
+    from edgevib.daemon.web.report import build_report, write_report
+    from edgevib.pipelines.panels import envelope_panel, spectrum_panel, waveform_panel
+
+    x = np.asarray(frame.samples, dtype=np.float64) if x_g is None else x_g
+    fs, shaft = frame.fs_hz, frame.indicators.shaft_hz
+    rows = [(row["name"], row["value"], row["unit"]) for row in indicator_rows(frame) if row["kind"] != "limit"]
+    text = build_report(title=title, meta=meta, indicators=rows, spectrum=spectrum_panel(x, fs, plan, shaft),
+                        envelope=envelope_panel(x, fs, plan, shaft), waveform=waveform_panel(x, fs), trend=trend,
+                        notes=notes)
     try:
         write_report(out, text)
     except OSError as exc:

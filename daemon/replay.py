@@ -58,8 +58,10 @@ from edgevib.daemon.offline import (
     InputError,
     _band,
     _bearing,
+    _check_report_path,
     _check_samples,
     _clean,
+    _file_rate,
     _full_scale,
     _index,
     _iso_class,
@@ -69,6 +71,7 @@ from edgevib.daemon.offline import (
     _rpm,
     _unit,
     read_waveform,
+    write_frame_report,
 )
 from edgevib.daemon.timestamps import rfc3339_utc_s
 from edgevib.daemon.trendwatch import (
@@ -387,18 +390,10 @@ def _read(index: int, path: Path, t_s: float, o: ReplayOptions) -> _Snap:
         wave = read_waveform(path, var=o.var, channel=o.channel, full_scale=o.full_scale)
     else:  # a time-named text table
         wave = read_text_waveform(path, column=None if o.channel is None else str(o.channel))
-    if o.fs_hz is not None:
-        fs = o.fs_hz
-        if wave.fs_hz is not None and path.suffix.lower() == ".wav" and abs(fs - wave.fs_hz) > 1e-9 * fs:
-            raise InputError(f"{path.name}: --fs {fs:g} Hz contradicts the WAV header's {wave.fs_hz:g} Hz")
-    elif wave.fs_hz is not None:
-        fs = wave.fs_hz
-    else:
-        raise InputError(f"{path.name} does not carry a sample rate: give --fs HZ")
-    x = wave.samples
-    _check_samples(path.name, x)
+    fs = _file_rate(wave, path, o.fs_hz, path.name)
+    _check_samples(path.name, wave.samples)
     rpm = o.rpm if o.rpm is not None else wave.rpm
-    return _Snap(index, path, t_s, to_g(x, o.unit), fs, rpm)
+    return _Snap(index, path, t_s, to_g(wave.samples, o.unit), fs, rpm)
 
 
 def _read_batch(indices: list[int], files: list[Path], times: list[float], o: ReplayOptions,
@@ -642,8 +637,8 @@ def _run(args: argparse.Namespace) -> int:
     done = 0
     try:
         report = Path(args.report) if getattr(args, "report", None) else None
-        if report is not None and (report.is_dir() or not report.parent.is_dir()):
-            raise InputError(f"--report {report}: give a file name in an existing folder")
+        if report is not None:
+            _check_report_path(report)
         frame = None
         for doc in replay(files, times, o, history, on_error=on_error):
             docs = doc.pop("_docs", {})
@@ -685,13 +680,9 @@ def _report(out: Path, last: dict[str, Any], frame: tuple[FrameResult, AnalysisP
             o: ReplayOptions, done: int) -> None:
     """``--report``: the latest snapshot's panels and the trend of the first tracked indicator with its projection
     (:mod:`edgevib.daemon.web.report`)."""
-    from edgevib.daemon.web.api import indicator_rows
-    from edgevib.daemon.web.report import build_report, write_report
     from edgevib.daemon.web.trend_source import projection_curve
-    from edgevib.pipelines.panels import envelope_panel, spectrum_panel, waveform_panel
 
     r, plan = frame
-    x = np.asarray(r.samples, dtype=np.float64)
     shaft = r.indicators.shaft_hz
     trend = None
     name = next(iter(last.get("_docs", {})), None)
@@ -708,19 +699,12 @@ def _report(out: Path, last: dict[str, Any], frame: tuple[FrameResult, AnalysisP
                  "limit_lines": _limit_lines(o, name), "projection": projection_curve(doc), "trend": doc,
                  # the page adds the advice text after the source
                  "source": f"{done} replayed snapshots" + ("" if doc.get("advice_text") else f"; {doc.get('status')}")}
-    rows = [(row["name"], row["value"], row["unit"]) for row in indicator_rows(r) if row["kind"] != "limit"]
     meta = {"point": o.point, "snapshots": done, "latest snapshot": f"{last['file']} at {last['time']}",
-            "sample rate (Hz)": r.fs_hz, "samples": int(x.size),
+            "sample rate (Hz)": r.fs_hz, "samples": int(np.asarray(r.samples).size),
             "shaft speed (r/min)": None if shaft is None else shaft * 60, "machine state": last.get("state")}
-    text = build_report(title=f"{o.point} replay", meta=meta, indicators=rows,
-                        spectrum=spectrum_panel(x, r.fs_hz, plan, shaft),
-                        envelope=envelope_panel(x, r.fs_hz, plan, shaft), waveform=waveform_panel(x, r.fs_hz),
-                        trend=trend, notes=["Spectrum, envelope and waveform: the latest snapshot.",
-                                            "Trend and projection: every replayed snapshot."])
-    try:
-        write_report(out, text)
-    except OSError as exc:
-        raise InputError(f"cannot write --report {out}: {exc.strerror or exc}") from None
+    write_frame_report(out, r, plan, title=f"{o.point} replay", meta=meta, trend=trend,
+                       notes=["Spectrum, envelope and waveform: the latest snapshot.",
+                              "Trend and projection: every replayed snapshot."])
 
 
 def _limit_lines(o: ReplayOptions, name: str) -> list[dict[str, Any]]:
