@@ -28,7 +28,7 @@ bounds (:class:`SinkChannel`):
   in the per-point ingest queues, and those drop their oldest frames (counted as ``frames_dropped``) as they
   always do when analysis falls behind.  So a frame is either seen by every sink that must see it or dropped
   before analysis for everyone — never silently missing from the alarm history only;
-* a lossless sink with a cost per call (its ``batch_window_s``: the alarm layer's health checks and SQLite commit)
+* a lossless sink with a cost per call (its ``batch_window_s``: the alarm layer's decision and SQLite commit)
   gets results gathered for up to that long or :data:`MAX_BATCH` results, rather than one call per analysis
   batch (which holds one or two frames when analysis keeps up).
 

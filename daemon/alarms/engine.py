@@ -2,7 +2,7 @@
 one thread, the store (:mod:`edgevib.daemon.alarms.store`) committing its effects on another, and read-only views
 (:mod:`edgevib.daemon.alarms.views`) of the snapshot published after each decision.
 
-Frames (with their sensor health checked, batched, on the decision thread), timer ticks, source changes and
+Frames (with the sensor-health verdicts the daemon's analysis workers attached), timer ticks, source changes and
 operator commands (control socket, MQTT command topic, the view's actions) all go through :meth:`AlarmLayer.decide`
 on that one thread, so the core needs no lock; events are published (listeners, feeds, retained state messages)
 only after the store has committed them.  Readers — the metrics scrape, ``alarms list``, the view, the demo
@@ -22,7 +22,6 @@ from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import replace
 from typing import Any, TypeVar
 
-import numpy as np
 import structlog
 
 from edgevib.daemon.alarms.control import CommandError, ControlServer
@@ -53,8 +52,6 @@ from edgevib.daemon.alarms.views import (
 )
 from edgevib.daemon.config import Config
 from edgevib.daemon.interfaces import AlarmTransition, FrameResult
-from edgevib.daemon.sensor_health import HealthError, batch_health, judged_running
-from edgevib.pipelines.health import HealthSpec, SensorHealth
 from edgevib.pipelines.machine_state import MachineState
 
 __all__ = ["AlarmLayer"]
@@ -81,7 +78,7 @@ class AlarmLayer:
     """
 
     lossless = True
-    batch_window_s = 0.1  # frames gathered per call: one commit and one vectorized health check for many frames
+    batch_window_s = 0.1  # frames gathered per call: one decision and one commit for many frames
 
     def __init__(self, config: Config, store: AlarmStore, *, mqtt: MqttFeed | None = None,
                  webhook: WebhookFeed | None = None, control: ControlServer | None = None,
@@ -99,7 +96,6 @@ class AlarmLayer:
         self.view: AlarmSnapshot = self.core.snapshot()
         """The snapshot after the latest decision (replaced, never changed: read it from any thread)."""
         self.collector = AlarmCollector(self)
-        self.health_errors = 0
         self._commands = dict(commands or {})
         self._block_arrival = block_arrival
         self._config_refusal = config_refusal
@@ -194,7 +190,7 @@ class AlarmLayer:
         """One decision, on the decision thread: the core steps, the snapshot is replaced, the writes are queued
         for the store (the future: the events once committed)."""
         if isinstance(inp, list):
-            inp = Frames(inp, self._health(inp))
+            inp = Frames(inp, [r.health for r in inp])  # None: not checked (health checks off)
         self.core, eff = decide(self.core, inp, now)
         self.view = self.core.snapshot()
         self._emit_logs(eff)
@@ -248,39 +244,8 @@ class AlarmLayer:
         if not self._started or not results:
             return
         mine = [r for r in results if r.point_id in self.points]
-        if mine:  # the health checks on the raw samples, the state machines: one hop to the decision thread
+        if mine:  # the state machines: one hop to the decision thread
             await self.decide(mine)
-
-    def _health(self, results: list[FrameResult]) -> list[SensorHealth | None]:
-        """Health of every frame: the verdict the daemon's analysis workers attached, or — for results without
-        one — checked here, batched over frames of one length and rate (on the decision thread; the r.m.s. comes
-        from the frame's indicators)."""
-        out: list[SensorHealth | None] = [r.health for r in results]
-        if not self.settings.table.health.enabled:
-            return [None] * len(results)
-        groups: dict[tuple[int, float], list[int]] = {}
-        for i, r in enumerate(results):
-            if r.health is None:
-                groups.setdefault((int(np.asarray(r.samples).size), r.fs_hz), []).append(i)
-        for (_, fs), idx in groups.items():
-            errors: list[HealthError] = []
-            res = batch_health(np.stack([np.asarray(results[i].samples, dtype=np.float64).reshape(-1) for i in idx]),
-                               fs, [self.settings.health.get(results[i].point_id, HealthSpec()) for i in idx],
-                               [results[i].indicators.acceleration_rms_g for i in idx],
-                               [self._runs(results[i]) for i in idx], [results[i].point_id for i in idx], errors)
-            for err in errors:
-                self.health_errors += 1
-                log.warning("sensor health check failed", points=list(err.points), error=err.problem)
-            for i, h in zip(idx, res, strict=True):
-                out[i] = h
-        return out
-
-    def _runs(self, r: FrameResult) -> bool:
-        """Whether the frame's machine runs (else its health is judged against a standing machine); results
-        without a machine state use the machine's latest known one."""
-        ms = r.machine_state or self.core.machine_states.get(r.machine_id)
-        return judged_running(ms is not None and ms.state == "running", r.indicators.velocity_rms_mm_s,
-                              self.settings.table.run_threshold_velocity_mm_s)
 
     # ------------------------------------------------------------------------------------------ timer, sources
 

@@ -1,5 +1,5 @@
-"""Helpers for the alarm tests: frames from the simulator through the real analysis (as the daemon makes them),
-hand-made frames with chosen indicators, small configurations."""
+"""Helpers for the alarm tests: frames from the simulator through the real analysis and sensor-health checks (as
+the daemon makes them), hand-made frames with chosen indicators, small configurations."""
 
 from __future__ import annotations
 
@@ -14,6 +14,8 @@ from edgevib.daemon.alarms.engine import AlarmLayer
 from edgevib.daemon.app import wire_alarms
 from edgevib.daemon.config import Config, parse_config
 from edgevib.daemon.interfaces import FrameResult
+from edgevib.daemon.machine_state import MachineTracker
+from edgevib.daemon.sensor_health import batch_health, judged_running
 from edgevib.pipelines.analysis import analyze_frames
 
 
@@ -27,6 +29,22 @@ class SimFrames:
         self.buf_t0: dict[str, int] = {}
         self.next_seq: dict[str, int] = {}
         self.plans = {p.id: cfg.plan(p.id) for p in cfg.points}
+        self.machines = MachineTracker(cfg)  # whether a frame's machine runs, for its health verdict
+
+    def _health(self, p: Any, x: np.ndarray, ind: Any, t_end_ns: int) -> Any:
+        """The frame's sensor-health verdict as the daemon's analysis workers attach it (``edgevib.daemon.app``:
+        the point's spec, judged against a running machine only while the machine runs)."""
+        s = self.cfg.alarm_settings
+        if not s.table.health.enabled:
+            return None
+        m = self.cfg.machine(p.machine)
+        running = judged_running(self.machines.running(m.id), ind.velocity_rms_mm_s,
+                                 s.table.run_threshold_velocity_mm_s)
+        (h,) = batch_health(x[None, :], p.fs_hz, [s.health[p.id]], [ind.acceleration_rms_g], [running], [p.id])
+        measured = ind.shaft_hz if m.speed_tag is not None and not ind.shaft_estimated else None
+        self.machines.observe(m.id, p.id, t_end_ns / 1e9, speed_hz=measured, velocity_rms_mm_s=ind.velocity_rms_mm_s,
+                              frame_healthy=h is None or h.ok)
+        return h
 
     def until(self, t_s: float) -> list[FrameResult]:
         jobs: list[tuple[Any, np.ndarray, int, float | None]] = []
@@ -55,7 +73,7 @@ class SimFrames:
             ind = analyze_frames(x[None, :], self.plans[p.id], shaft_hz=shaft_arr)[0]
             out.append(FrameResult(point_id=p.id, machine_id=p.machine, t_end_ns=t_end, received_ns=t_end,
                                    fs_hz=p.fs_hz, indicators=ind, iso_zone=None, samples=x,
-                                   axis=p.axis))
+                                   axis=p.axis, health=self._health(p, x, ind, t_end)))
         return out
 
 
