@@ -343,16 +343,16 @@ class Daemon:
         return [pid for pid, st in self.points.items() if st.config.envelope_band_origin == "auto"]
 
     def _add_configured_sinks(self, config: Config) -> None:
-        if config.publish_mqtt.enabled:
+        if config.publish.mqtt.enabled:
             from edgevib.daemon.sinks.mqtt import MqttIndicatorSink
 
             mqtt = MqttIndicatorSink.from_config(config)
             self.add_sink(mqtt)
             self._reconfigurable.append(mqtt)
-        if config.publish_opcua.enabled:
+        if config.publish.opcua.enabled:
             from edgevib.daemon.sinks.opcua import OpcUaIndicatorSink  # asyncua loads only when configured
 
-            pc = config.publish_opcua
+            pc = config.publish.opcua
             opcua = OpcUaIndicatorSink(listen=pc.listen, host=pc.host, port=pc.port, namespace=pc.namespace,
                                        site=config.site.name, points={p.id: p for p in config.points},
                                        cert_file=pc.cert_file, key_file=pc.key_file, state_dir=config.site.state_dir)
@@ -369,7 +369,7 @@ class Daemon:
             self.machines.healthy = alarms.point_healthy  # a point with a sensor fault does not vote
             self.metrics.collector.machine_stale = alarms.machine_stale  # the metric's "unknown" as the alarms'
             self.ingest.connection_listeners.append(alarms.on_source)
-            if config.publish_opcua.enabled:  # the OPC UA namespace shows each point's alarm state as an enumeration
+            if config.publish.opcua.enabled:  # the OPC UA namespace shows each point's alarm state as an enumeration
                 opcua.severity_of = alarms.point_severity
         from edgevib.daemon.trendwatch import create_trend_watch
 

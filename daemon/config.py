@@ -416,10 +416,13 @@ def _listen(v: str) -> str:
     return v
 
 
+Listen = Annotated[Text, AfterValidator(_listen)]
+
+
 class _Listens(_Table):
     """A table with a ``listen = "host:port"`` key (the default is each table's own)."""
 
-    listen: Annotated[Text, AfterValidator(_listen)] = "127.0.0.1:0"
+    listen: Listen = "127.0.0.1:0"
 
     @property
     def host(self) -> str:
@@ -431,7 +434,7 @@ class _Listens(_Table):
 
 
 class MetricsConfig(_Listens):
-    listen: Annotated[Text, AfterValidator(_listen)] = "127.0.0.1:9851"
+    listen: Listen = "127.0.0.1:9851"
     tls_cert_file: Text | None = None
     tls_key_file: Text | None = None
     tls_client_ca_file: Text | None = None
@@ -698,7 +701,7 @@ class PublishMqttConfig(_ReusesSource):
 
 class PublishOpcUaConfig(_Listens):
     enabled: Bool = False
-    listen: Annotated[Text, AfterValidator(_listen)] = "127.0.0.1:4841"
+    listen: Listen = "127.0.0.1:4841"
     namespace: Text = "urn:edgevib:indicators"
     cert_file: Text | None = None  # application certificate for Basic256Sha256 (default: made in state_dir)
     key_file: Text | None = None
@@ -784,7 +787,23 @@ class BearingConfig(_Table):
         return BearingGeometry(self.elements, self.ball_diameter_mm, self.pitch_diameter_mm, self.contact_angle_deg)
 
 
-class LimitConfigTable(_Table):
+class _Delays(_Table):
+    """A table with alarm delays, each in frames or in seconds (not both)."""
+
+    on_delay_frames: Int | None = Field(None, ge=1, le=10000)
+    on_delay_s: Float | None = Field(None, ge=0.0, le=86400.0)
+    off_delay_frames: Int | None = Field(None, ge=1, le=10000)
+    off_delay_s: Float | None = Field(None, ge=0.0, le=86400.0)
+
+    @model_validator(mode="after")
+    def _one_delay(self) -> _Delays:
+        for name in ("on_delay", "off_delay"):
+            if getattr(self, f"{name}_frames") is not None and getattr(self, f"{name}_s") is not None:
+                raise _Problem(f"{name}_s", f"give either {name}_frames or {name}_s, not both")
+        return self
+
+
+class LimitConfigTable(_Delays):
     """One ``[points.limits.INDICATOR]`` table (README "Per-point limits")."""
 
     alert: Level | None = None
@@ -792,15 +811,10 @@ class LimitConfigTable(_Table):
     rule: Literal["iso", "iso-baseline"] | None = None
     enabled: Bool = True
     deadband: Float | None = Field(None, ge=0.001, le=0.5)
-    on_delay_frames: Int | None = Field(None, ge=1, le=10000)
-    on_delay_s: Float | None = Field(None, ge=0.0, le=86400.0)
-    off_delay_frames: Int | None = Field(None, ge=1, le=10000)
-    off_delay_s: Float | None = Field(None, ge=0.0, le=86400.0)
     latching: Bool | None = None
 
     @model_validator(mode="after")
     def _limit(self) -> LimitConfigTable:
-        _one_delay(self)
         if self.rule is not None and (self.alert is not None or self.danger is not None):
             raise _Problem("rule", "give either rule or alert/danger levels, not both")
         if self.enabled and self.rule is None and self.alert is None and self.danger is None:
@@ -822,12 +836,6 @@ def _not_below(t: Any, low: str, high: str) -> None:
     """A backoff's cap ``high`` (s) is not below its start ``low``."""
     if getattr(t, high) < getattr(t, low):
         raise _Problem(high, f"{getattr(t, high):g} s is below {low} {getattr(t, low):g} s")
-
-
-def _one_delay(t: Any) -> None:
-    for name in ("on_delay", "off_delay"):
-        if getattr(t, f"{name}_frames") is not None and getattr(t, f"{name}_s") is not None:
-            raise _Problem(f"{name}_s", f"give either {name}_frames or {name}_s, not both")
 
 
 class _HealthThresholds(_Table):
@@ -903,8 +911,7 @@ class PointLimits(_Table):
     def _indicators(self) -> PointLimits:
         for name, lim in self.indicators.items():
             if name not in LIMITABLE:
-                raise _Problem(name, f"unknown indicator{_did_you_mean(name, ['health', *LIMITABLE])} "
-                               f"(known: health, {', '.join(LIMITABLE)})")
+                raise _Problem(name, _unknown_indicator(name, ["health", *LIMITABLE], quoted=False))
             for level, rule in (("alert", lim.alert), ("danger", lim.danger), ("rule", lim.rule)):
                 kind = rule.kind if isinstance(rule, LevelRule) else rule
                 if kind in ("iso", "iso-baseline") and name != "velocity_rms_mm_s":
@@ -1009,16 +1016,12 @@ class PointConfig(_Table):
                 f"{self.fs_hz:g} Hz cannot carry an envelope demodulation band: no envelope indicators for this point")
 
 
-class AlarmsConfig(_Table):
+class AlarmsConfig(_Delays):
     """``[alarms]`` (README "[alarms]")."""
 
     enabled: Bool = True
     default_velocity_rule: Literal["iso", "iso-baseline", "none"] = "iso"
     deadband: Float = Field(0.05, ge=0.001, le=0.5)
-    on_delay_frames: Int | None = Field(None, ge=1, le=10000)
-    on_delay_s: Float | None = Field(None, ge=0.0, le=86400.0)
-    off_delay_frames: Int | None = Field(None, ge=1, le=10000)
-    off_delay_s: Float | None = Field(None, ge=0.0, le=86400.0)
     latching: Bool = False
     startup_grace_s: Float = Field(30.0, ge=0.0, le=86400.0)
     run_threshold_velocity_mm_s: Float = Field(0.2, ge=0.0, le=100.0)
@@ -1036,11 +1039,6 @@ class AlarmsConfig(_Table):
     socket: Text = "alarms.sock"  # resolved against state_dir
     socket_mode: Literal["0600", "0660"] = "0600"
     health: HealthConfig = Field(default_factory=HealthConfig)
-
-    @model_validator(mode="after")
-    def _delays(self) -> AlarmsConfig:
-        _one_delay(self)
-        return self
 
 
 class WebhookConfig(_WithSecrets):
@@ -1183,13 +1181,11 @@ class TrendConfig(_Table):
     def _trend(self) -> TrendConfig:
         for i, name in enumerate(self.indicators):
             if name not in LIMITABLE:
-                raise _Problem(f"indicators[{i}]", f"unknown indicator {name!r}{_did_you_mean(name, list(LIMITABLE))}"
-                               f" (known: {', '.join(LIMITABLE)})")
+                raise _Problem(f"indicators[{i}]", _unknown_indicator(name, list(LIMITABLE)))
         seen: set[tuple[str, str]] = set()
         for i, lim in enumerate(self.limits):
             if lim.indicator not in LIMITABLE:
-                raise _Problem(f"limits[{i}].indicator", f"unknown indicator {lim.indicator!r}"
-                               f"{_did_you_mean(lim.indicator, list(LIMITABLE))} (known: {', '.join(LIMITABLE)})")
+                raise _Problem(f"limits[{i}].indicator", _unknown_indicator(lim.indicator, list(LIMITABLE)))
             if (lim.point, lim.indicator) in seen:
                 raise _Problem(f"limits[{i}]", f"a second limit for {lim.point} {lim.indicator}")
             seen.add((lim.point, lim.indicator))
@@ -1219,7 +1215,6 @@ class Config(_Table):
 
     _points: tuple[PointConfig, ...] = PrivateAttr(())
     _deferred: tuple[tuple[str, str, str, str], ...] = PrivateAttr(())
-    _base_dir: str = PrivateAttr(".")
     _digest: str = PrivateAttr("")
     _plans: dict[str, AnalysisPlan] = PrivateAttr(default_factory=dict)
     _alarm_settings: AlarmSettings | None = PrivateAttr(None)
@@ -1246,21 +1241,9 @@ class Config(_Table):
         return self._deferred
 
     @property
-    def base_dir(self) -> str:
-        return self._base_dir
-
-    @property
     def digest(self) -> str:
         """The first 16 hex digits of the file's SHA-256 (empty for a configuration built in memory)."""
         return self._digest
-
-    @property
-    def publish_mqtt(self) -> PublishMqttConfig:
-        return self.publish.mqtt
-
-    @property
-    def publish_opcua(self) -> PublishOpcUaConfig:
-        return self.publish.opcua
 
     @property
     def alarm_settings(self) -> AlarmSettings:
@@ -1309,6 +1292,11 @@ def _did_you_mean(key: str, known: list[str]) -> str:
     lower = {k.lower(): k for k in known}
     match = lower.get(key.lower()) or next(iter(difflib.get_close_matches(key, known, n=1, cutoff=0.75)), None)
     return f"; did you mean `{match}`?" if match else ""
+
+
+def _unknown_indicator(name: str, known: list[str], quoted: bool = True) -> str:
+    """An indicator name that is not one of ``known`` (the key path says where; a key is not repeated)."""
+    return f"unknown indicator{f' {name!r}' if quoted else ''}{_did_you_mean(name, known)} (known: {', '.join(known)})"
 
 
 def _unknown_ref(key: str, what: str, name: str, known: Mapping[str, Any]) -> ConfigError:
@@ -1584,26 +1572,26 @@ def _connection_of(owner: _ReusesSource, key: str, cfg: Config) -> MqttConnectio
     return owner if owner.url is not None else None
 
 
+def _unique(table: str, key: str, what: str, values: list[str]) -> dict[str, int]:
+    """Each value's index in ``table``; a value given twice is a :class:`ConfigError` naming both places."""
+    first: dict[str, int] = {}
+    for i, v in enumerate(values):
+        if v in first:
+            raise ConfigError(f"{table}[{i}].{key}", f"duplicate {what} {v!r} (also {table}[{first[v]}])")
+        first[v] = i
+    return first
+
+
 def _resolve_sources(cfg: Config) -> tuple[SourceConfig, ...]:
-    out: list[Any] = []
-    seen: set[str] = set()
-    for i, s in enumerate(cfg.sources):
-        if s.name in seen:
-            raise ConfigError(f"sources[{i}].name", f"duplicate source name {s.name!r}")
-        seen.add(s.name)
-        if isinstance(s, MqttSourceConfig) and not s.client_id:
-            s = s.model_copy(update={"client_id": f"edgevib-{cfg.site.name}-{s.name}"})
-        out.append(s)
-    return tuple(out)
+    _unique("sources", "name", "source name", [s.name for s in cfg.sources])
+    return tuple(s.model_copy(update={"client_id": f"edgevib-{cfg.site.name}-{s.name}"})
+                 if isinstance(s, MqttSourceConfig) and not s.client_id else s for s in cfg.sources)
 
 
 def _resolve_machines(cfg: Config) -> tuple[MachineConfig, ...]:
     sources = {s.name: s for s in cfg.sources}
-    seen: set[str] = set()
+    _unique("machines", "id", "machine id", [m.id for m in cfg.machines])
     for i, m in enumerate(cfg.machines):
-        if m.id in seen:
-            raise ConfigError(f"machines[{i}].id", f"duplicate machine id {m.id!r}")
-        seen.add(m.id)
         tag = m.speed_tag
         if tag is None:
             continue
@@ -1632,12 +1620,9 @@ def _resolve(cfg: Config, base: Path, digest: str) -> Config:
     cfg = cfg.model_copy(update={"site": site})
     cfg = cfg.model_copy(update={"sources": _resolve_sources(cfg), "machines": _resolve_machines(cfg)})
     points: list[PointConfig] = []
-    ids: dict[str, int] = {}
+    ids = _unique("points", "id", "point id", [p.id for p in cfg.all_points])
     sensors: dict[tuple[str, str], str] = {}
     for i, p in enumerate(cfg.all_points):
-        if p.id in ids:
-            raise ConfigError(f"points[{i}].id", f"duplicate point id {p.id!r} (also points[{ids[p.id]}])")
-        ids[p.id] = i
         r = _resolve_point(p, i, cfg)
         sensor_key = (r.source, r.sensor)
         if sensor_key in sensors:
@@ -1677,7 +1662,7 @@ def _resolve(cfg: Config, base: Path, digest: str) -> Config:
     cfg = cfg.model_copy(update={"all_points": tuple(points), "publish": publish, "feed": feed, "alarms": alarms,
                                  "capture": capture, "history": history})
     cfg._points = tuple(p for p in points if shard is None or shard.owns(p.id))
-    cfg._base_dir, cfg._digest, cfg._deferred = str(base), digest, tuple(deferred)
+    cfg._digest, cfg._deferred = digest, tuple(deferred)
     return cfg
 
 

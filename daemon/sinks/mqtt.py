@@ -75,7 +75,7 @@ class MqttIndicatorSink:
 
     @classmethod
     def from_config(cls, config: Config) -> MqttIndicatorSink:
-        pc = config.publish_mqtt
+        pc = config.publish.mqtt
         if pc.connection is None:
             raise SourceError("publish.mqtt has no broker connection")
         sink = cls(site=config.site.name, connection=pc.connection, topic=pc.topic, qos=pc.qos, retain=pc.retain,
@@ -94,7 +94,7 @@ class MqttIndicatorSink:
 
     def _configure(self, config: Config) -> None:
         self.site = config.site.name
-        self.topic = config.publish_mqtt.topic
+        self.topic = config.publish.mqtt.topic
         self.points = {p.id: (p.axis, tuple(_order_key(o) for o in p.orders)) for p in config.points}
 
     def topic_for(self, machine: str, point: str) -> str:
