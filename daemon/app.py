@@ -90,7 +90,7 @@ if TYPE_CHECKING:
     from edgevib.daemon.alarms.engine import AlarmLayer
     from edgevib.daemon.web.api import ViewService
 
-__all__ = ["LOSSLESS_BACKLOG", "SINK_BACKLOG_PER_POINT", "AnalyzeFn", "Daemon", "SinkChannel", "run", "wire_alarms"]
+__all__ = ["LOSSLESS_BACKLOG", "SINK_BACKLOG_PER_POINT", "AnalyzeFn", "Daemon", "SinkChannel", "wire_alarms"]
 
 AnalyzeFn = Callable[[npt.NDArray[np.float32], AnalysisPlan, "npt.NDArray[np.float64] | None"],
                      list[FrameIndicators]]
@@ -486,14 +486,6 @@ class Daemon:
         if self._executor is not None:
             self._executor.shutdown(wait=False, cancel_futures=True)
         log.info("daemon stopped")
-
-    async def run(self, stop: asyncio.Event) -> None:
-        """Start, run until ``stop`` is set, stop."""
-        await self.start()
-        try:
-            await stop.wait()
-        finally:
-            await self.stop()
 
     # ------------------------------------------------------------------------------------------ status
 
@@ -892,9 +884,3 @@ def wire_alarms(config: Config, registry: CollectorRegistry | None = None, *,
         registry.register(layer.collector)
     return layer
 
-
-async def run(config: Config, *, metrics_listen: tuple[str, int] | None = None,
-              stop: asyncio.Event | None = None, **kwargs: Any) -> None:
-    """Run the daemon until ``stop`` is set (``service.py`` sets it from SIGINT/SIGTERM)."""
-    daemon = Daemon(config, metrics_listen=metrics_listen, **kwargs)
-    await daemon.run(stop or asyncio.Event())
