@@ -226,12 +226,23 @@ class LogSketch:
     def quantile(self, q: float) -> float:
         """The q-quantile (0 ≤ q ≤ 1) within the relative accuracy; NaN when empty.
 
-        Rank ⌊q·(count − 1)⌋ in ascending order (the lower order statistic), clamped to [min, max]."""
+        numpy.percentile's default (linear), as :func:`summarize` gives the minute roll-ups: position q·(count − 1)
+        between the order statistics below and above it, each read from the sketch (within the relative
+        accuracy, so their interpolation is too) and clamped to [min, max].  (The lower order statistic alone,
+        DDSketch's rank, read a sparse bucket's median low: the second of a day's four values.)"""
         if not 0.0 <= q <= 1.0:
             raise RollupError(f"quantile {q!r} must be within [0, 1]")
         if self.count == 0:
             return math.nan
-        rank = math.floor(q * (self.count - 1))
+        pos = q * (self.count - 1)
+        lo = math.floor(pos)
+        v_lo = self._at_rank(lo)
+        if pos == lo:
+            return v_lo
+        return v_lo + (pos - lo) * (self._at_rank(lo + 1) - v_lo)
+
+    def _at_rank(self, rank: int) -> float:
+        """The order statistic of ``rank`` (0-based, ascending) within the relative accuracy."""
         seen = 0
         for k in sorted(self.neg, reverse=True):   # most negative first
             seen += self.neg[k]
