@@ -306,7 +306,9 @@ class AnalysisKernel:
         "_mult",
         "_mv",
         "_n",
+        "_order_keys",
         "_order_min",
+        "_order_min_list",
         "_speed_stop",
         "_split",
         "_thresholds",
@@ -379,6 +381,8 @@ class AnalysisKernel:
         order_min = np.maximum(2.0 * df / o, df / apart.min(axis=1))
         order_min.flags.writeable = False
         self._order_min = order_min
+        self._order_keys = tuple(order_key(v) for v in plan.orders)  # (per call: only arithmetic, see analyze)
+        self._order_min_list = tuple(order_min.tolist())
         below = [(order_key(v), float(f)) for v, f in zip(plan.orders, order_min, strict=True) if f > s_lo]
         if below:
             notes.append(f"orders {', '.join(k for k, _ in below)}: {length}: left out below "
@@ -447,17 +451,19 @@ class AnalysisKernel:
         spec[:, 0] = 0.0  # the mean, removed (lines ≥ 1 are those of the centred frame)
         td = centred_moments(x, mean)
 
-        estimate = ~np.isfinite(f_given)
+        given = np.isfinite(f_given)
+        estimate = ~given
         if not self._estimate:
             estimate[:] = False
         # A given speed below the plan's lowest shaft speed (a stopped or coasting machine: 0 from a speed tag is
         # valid) keeps the time-domain and velocity indicators; orders and envelope families need a speed the
         # frame resolves, so they are absent for it.
-        slow = np.isfinite(f_given) & (f_given < plan.speed_range_hz[0])
+        slow = given & (f_given < plan.speed_range_hz[0])
         stop = self._vel_stop
-        if estimate.any():
+        any_estimate = bool(estimate.any())
+        if any_estimate:
             stop = max(stop, self._speed_stop)
-        fast = np.isfinite(f_given) & ~slow
+        fast = given & ~slow
         known_max = float(np.max(f_given[fast])) if fast.any() else plan.speed_range_hz[1]
         stop = min(n // 2, max(stop, math.ceil(max(plan.orders) * known_max * (1 + plan.order_tolerance)
                                                / self._df) + 3))
@@ -469,27 +475,25 @@ class AnalysisKernel:
         factor = 16.0 / (3.0 * n * n)
         vel_rms = np.sqrt(vel_pow[:, v_lo : v_hi + 1].sum(axis=-1) * factor)
 
-        shaft = f_given.copy()
-        quality = np.full(c, np.nan)
-        if estimate.any():
-            every = bool(estimate.all())  # (the usual case: no copies of the rows)
-            est, q = estimate_speed_hz(vel_pow if every else vel_pow[estimate],
-                                       acc_pow if every else acc_pow[estimate], plan.speed_range_hz, self._df,
-                                       SPEED_HARMONICS, cage_ratio=self._cage,
-                                       tolerance=plan.order_tolerance)
-            if every:
-                shaft, quality = est, q
-            else:
+        if any_estimate and bool(estimate.all()):  # (the usual case: no copies of the rows)
+            shaft, quality = estimate_speed_hz(vel_pow, acc_pow, plan.speed_range_hz, self._df, SPEED_HARMONICS,
+                                               cage_ratio=self._cage, tolerance=plan.order_tolerance)
+        else:
+            shaft = f_given.copy()
+            quality = np.full(c, np.nan)
+            if any_estimate:
+                est, q = estimate_speed_hz(vel_pow[estimate], acc_pow[estimate], plan.speed_range_hz, self._df,
+                                           SPEED_HARMONICS, cage_ratio=self._cage, tolerance=plan.order_tolerance)
                 shaft[estimate] = est
                 quality[estimate] = q
         running = np.isfinite(shaft) & ~slow & (shaft > 0)
-        orders = order_amplitudes_mm_s(vel_pow, np.where(running, shaft, np.nan), plan.orders, plan.order_tolerance,
-                                       self._df, n)
+        shaft_running = np.where(running, shaft, np.nan)
+        orders = order_amplitudes_mm_s(vel_pow, shaft_running, plan.orders, plan.order_tolerance, self._df, n)
         fam: FamilySearch | None = None
         if self._env and running.any():
             z = self._demodulated(spec)
             del spec
-            fam = self._families_of(z, np.where(running, shaft, np.nan))[3]
+            fam = self._families_of(z, shaft_running)[3]
             del z
         else:
             del spec
@@ -517,13 +521,13 @@ class AnalysisKernel:
         vel_peak = np.maximum(peaks[0, 0], peaks[1, 0])  # signed: |v| would fold neighbours
         disp_pp = peaks[0, 1] + peaks[1, 1]
 
-        keys = [order_key(o) for o in plan.orders]
+        keys = self._order_keys
         shaft_l = shaft.tolist()
         est_l = estimate.tolist()
         quality_l = quality.tolist()
         run_l = running.tolist()
         orders_l = orders.tolist()
-        order_min = self._order_min.tolist()
+        order_min = self._order_min_list
         cols = (td.rms_g, td.peak_g, td.peak_to_peak_g, td.crest_factor, td.kurtosis, td.skewness, td.mean_g,
                 vel_rms, vel_peak, disp_pp)
         rows = np.stack(cols, axis=1).tolist()
@@ -664,12 +668,10 @@ def _refined_peaks(w: npt.NDArray[np.floating[Any]]) -> FloatArray:
     """
     r, m = w.shape
     i = np.concatenate([w.argmax(axis=-1), w.argmin(axis=-1)])
-    rows = np.arange(2 * r)
-    rows[r:] -= r
-    sign = np.repeat(_SIGNS, r)
+    rows, sign = _peak_rows(r)
     j = i[:, None] + _NEIGHBOURS  # the extreme sample and its neighbours (the refinement only uses in-range ones)
     np.minimum(np.maximum(j, 0, out=j), m - 1, out=j)
-    abc = sign[:, None] * w[rows[:, None], j]
+    abc = sign * w[rows, j]
     a, b, c = abc[:, 0], abc[:, 1], abc[:, 2]
     with np.errstate(divide="ignore", invalid="ignore"):
         cos_phi = (a + c) / (2.0 * b)
@@ -684,6 +686,20 @@ def _refined_peaks(w: npt.NDArray[np.floating[Any]]) -> FloatArray:
 
 
 _SIGNS = np.array([1.0, -1.0])
+
+
+@lru_cache(maxsize=64)
+def _peak_rows(r: int) -> tuple[npt.NDArray[np.intp], FloatArray]:
+    """:func:`_refined_peaks`' row of each extreme (0 … r−1 twice, as a column) and its sign (+1 for the maxima,
+    −1 for the minima, as a column): constants of the batch size."""
+    rows = np.arange(2 * r)
+    rows[r:] -= r
+    sign = np.repeat(_SIGNS, r)
+    out = (rows[:, None], sign[:, None])
+    for a in out:
+        a.flags.writeable = False
+    return out
+
 _NEIGHBOURS = np.arange(-1, 2)
 for _a in (_SIGNS, _NEIGHBOURS):
     _a.flags.writeable = False

@@ -628,7 +628,7 @@ def _modulation_explains(index: IntArray, found: BoolArray, significant: BoolArr
         carried = (np.isfinite(modulation_hz)[:, None, :]
                    & (np.abs(modulation_hz[:, None, :] - expected_hz[:, :, None])
                       <= 1e-9 * np.abs(expected_hz[:, :, None])))  # (c, A, B)
-    carried &= ~np.eye(nf, dtype=bool)[None] & significant[:, None, :] & found[:, :, None, 0]
+    carried &= _not_eye(nf) & significant[:, None, :] & found[:, :, None, 0]
     k_b = index[:, :, 0]
     explained = np.zeros((c, nf, nf, harmonics), dtype=bool)
     h_slot, sb_slot, h_with, starts = _sideband_pairs(harmonics)
