@@ -157,6 +157,17 @@ def level_headroom() -> int:
     return GUARD_LINES + LEVEL_STEP * (LEVEL_LINES - 1) + 2
 
 
+_HEADROOM = level_headroom()
+
+
+@lru_cache(maxsize=256)
+def _padded_span(width: int) -> IntArray:
+    """``arange(-1, width + 1)``: a window's offsets with one neighbour either side (kept per width)."""
+    out = np.arange(-1, width + 1)
+    out.flags.writeable = False
+    return out
+
+
 def demodulate(spec: npt.NDArray[np.complexfloating[Any, Any]], k_lo: int, k_hi: int,
                m: int) -> npt.NDArray[np.complex64]:
     """Complex envelope of the band ``k_lo..k_hi`` (rfft lines, inclusive), decimated to ``m`` samples, unscaled.
@@ -362,7 +373,7 @@ class _Scan:
         half = np.where(known, np.maximum(half_lines, min_half), min_half)
         lo = np.ceil(centre - half - 1e-9).astype(np.intp)
         hi = np.floor(centre + half + 1e-9).astype(np.intp)
-        fits = known & (lo >= MIN_LINE) & (hi + level_headroom() <= k - 1)
+        fits = known & (lo >= MIN_LINE) & (hi + _HEADROOM <= k - 1)
         lo_c = np.where(fits, lo, MIN_LINE)
         hi_c = np.where(fits, hi, MIN_LINE)
         width = int((hi_c - lo_c).max()) + 1 if lo_c.size else 1
@@ -370,7 +381,7 @@ class _Scan:
         # each window's lines with one neighbour either side, in one gather (a window's own lines lie at or below
         # k − 2: the padding beyond a narrower window's last line is never taken, whatever it reads); flat indices
         # into ses (row offsets added), so the same indices serve every gather of a (channels, lines) array
-        idx = lo_c[..., None] + np.arange(-1, width + 1)
+        idx = lo_c[..., None] + _padded_span(width)
         valid = idx[..., 1:-1] <= hi_c[..., None]
         if rows is not None:
             idx += rows
@@ -391,7 +402,7 @@ class _Scan:
         if rows is not None:
             lines += rows
         vals = flat.take(lines, mode="clip")
-        vals[left_out] = np.inf
+        np.putmask(vals, left_out, np.inf)
         vals.partition(LEVEL_RANK - 1, axis=-1)
         self.level = vals[..., LEVEL_RANK - 1] / _LEVEL_FACTOR
         m_lines = np.minimum(hi_c - lo_c + 1, thresholds.size - 1)

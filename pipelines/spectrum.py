@@ -218,9 +218,17 @@ def _windows(k: int, lo: IntArray, hi: IntArray) -> tuple[IntArray, npt.NDArray[
     lo = np.minimum(np.maximum(lo, 0), k - 1)
     hi = np.minimum(np.maximum(hi, lo), k - 1)
     width = int((hi - lo).max()) + 1 if lo.size else 1
-    idx = lo[..., None] + np.arange(width)
+    idx = lo[..., None] + _span(width)
     valid = idx <= hi[..., None]
     return idx, valid
+
+
+@lru_cache(maxsize=256)
+def _span(width: int) -> IntArray:
+    """``arange(width)``, kept per width (a window's offsets)."""
+    out = np.arange(width)
+    out.flags.writeable = False
+    return out
 
 
 def window_argmax(spec: FloatArray, lo: IntArray, hi: IntArray) -> IntArray:
