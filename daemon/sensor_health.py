@@ -59,7 +59,8 @@ def batch_health(frames: npt.NDArray[np.floating[Any]], fs_hz: float, specs: Seq
     for spec, idx in groups.items():
         rms = np.array([rms_g[i] for i in idx], dtype=np.float64)
         try:
-            res = check_health(frames[idx], fs_hz, spec, rms_g=rms if np.all(np.isfinite(rms)) else None,
+            rows = frames if len(idx) == len(specs) else frames[idx]  # one group: the batch itself, no copy
+            res = check_health(rows, fs_hz, spec, rms_g=rms if np.all(np.isfinite(rms)) else None,
                                running=[running[i] for i in idx])
         except PipelineError as exc:
             if errors is not None:

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from edgevib.pipelines.health import _medians, check_health
+from edgevib.pipelines.health import _medians, _spike_screen, check_health
 
 
 def _rows(kind: str, rows: int, n: int, rng: np.random.Generator) -> np.ndarray:
@@ -62,3 +62,84 @@ def test_spike_verdicts_match_a_direct_median_and_mad_count() -> None:
         expected.append(len(lone))
     assert [h.spike_count for h in health] == expected
     assert expected == [0, 1, 0, 3]
+
+
+def _reference_spikes(x: np.ndarray, spike_sigma: float = 10.0) -> list[int]:
+    """The spike count by its definition, straight from numpy.median (the reference): samples farther than
+    ``spike_sigma`` × 1.4826 × MAD from the median (σ from the MAD of a Gaussian: common practice), away from the
+    frame edges, with nothing of a third of their deviation within ± 8 samples."""
+    x = np.asarray(x, dtype=np.float64)
+    n = x.shape[1]
+    med = np.median(x, axis=1, keepdims=True)
+    dev = np.abs(x - med)
+    sigma = 1.4826 * np.median(dev, axis=1)
+    out = []
+    for i in range(x.shape[0]):
+        big = np.flatnonzero(dev[i] > spike_sigma * sigma[i]) if sigma[i] > 0 else np.array([], dtype=int)
+        big = big[(big >= 8) & (big < n - 8)]
+        out.append(sum(max(np.max(dev[i, k - 8 : k]), np.max(dev[i, k + 1 : k + 9])) < dev[i, k] / 3.0 for k in big))
+    return out
+
+
+def _impulsive_rows(rows: int, n: int, rng: np.random.Generator) -> np.ndarray:
+    """Bearing-impact-like rows: a structural resonance (3.2 kHz at 25.6 kHz, decaying in about 1 ms) struck at an
+    outer-race rate on a noise floor with weak shaft lines, the impacts reaching about the spike threshold of
+    10 robust σ (the rows whose robust spread is far below their peak)."""
+    t = np.arange(n) / 25_600.0
+    x = 0.04 * np.sin(2 * np.pi * 24.7 * t + rng.uniform(0, 2 * np.pi, (rows, 1))) + rng.normal(0.0, 0.05, (rows, n))
+    ring = np.exp(-t[:256] * 900.0) * np.sin(2 * np.pi * 3200.0 * t[:256])
+    for r in range(rows):
+        strikes = np.zeros(n)
+        strikes[(np.arange(0.0, t[-1], 1.0 / rng.uniform(85.0, 92.0)) * 25_600.0).astype(int)] = \
+            rng.uniform(0.4, 0.9)
+        x[r] += np.convolve(strikes, ring)[:n]
+    return x
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_screen_on_impulsive_rows_gives_the_exact_results(dtype: type) -> None:
+    # Impulsive rows pass the screen's sparse test; rows with genuine single-sample spikes (an electrical spike
+    # does not ring), near the edges and amid the impacts, go to the exact test.  Every field must equal the
+    # exact path's (screen=False) and the count must equal the definition computed with numpy.median.
+    rng = np.random.default_rng(21)
+    n = 16384
+    x = _impulsive_rows(12, n, rng)
+    x[1, 5000] += 3.0
+    x[3, [9, n - 9, 7777]] -= [3.5, 3.5, 4.0]
+    x[5, 4000:4003] += 3.0  # three samples in a row: not isolated
+    x = x.astype(dtype)
+    fast = check_health(x, 25_600.0, rms_g=x.astype(np.float64).std(axis=1))
+    exact = check_health(x, 25_600.0, rms_g=x.astype(np.float64).std(axis=1), screen=False)
+    assert fast == exact
+    assert [h.spike_count for h in fast] == _reference_spikes(x)
+    assert [h.spike_count for h in fast][:6] == [0, 1, 0, 3, 0, 0]
+    # the impulsive rows without an isolated spike are settled by the screen itself, not by the exact fallback
+    x64 = x.astype(np.float64)
+    cleared = _spike_screen(x, x64, 10.0, x64.max(axis=1), x64.min(axis=1), np.empty(x.shape, dtype=np.bool_))
+    assert cleared.tolist() == [h.spike_count == 0 for h in fast]
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_a_sample_at_the_spike_threshold_is_judged_as_the_exact_test_judges_it(dtype: type) -> None:
+    # One isolated sample placed on the threshold median + 10 × 1.4826 × MAD itself and one representable step
+    # either side (it lies far in the upper tail, so moving it leaves the median and the MAD unchanged): only the
+    # step above is a spike ("farther than", as numpy.median's reference count says too), with or without screen.
+    rng = np.random.default_rng(22)
+    n = 16384
+    base = _impulsive_rows(1, n, rng)[0].astype(dtype)
+    base[6000] = 5.0
+    b64 = base.astype(np.float64)
+    med = float(np.median(b64))
+    threshold = 10.0 * (1.4826 * float(np.median(np.abs(b64 - med))))
+    at = dtype(med + threshold)
+    rows = []
+    for v in (np.nextafter(at, dtype(-np.inf)), at, np.nextafter(at, dtype(np.inf))):
+        row = base.copy()
+        row[6000] = v
+        rows.append(row)
+    x = np.stack(rows)
+    assert np.array_equal(np.median(x.astype(np.float64), axis=1), [med] * 3)
+    expected = _reference_spikes(x)
+    assert expected[0] == 0 and expected[2] == 1
+    assert [h.spike_count for h in check_health(x, 25_600.0)] == expected
+    assert [h.spike_count for h in check_health(x, 25_600.0, screen=False)] == expected
