@@ -411,10 +411,11 @@ def check_health(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec | None = 
         std = x.std(axis=1)
 
     # Extremes (passes 2, 3) and repeats (pass 4).
-    hi, lo = x.max(axis=1), x.min(axis=1)
+    # (comparisons and extremes in the frames' own precision: the same values, half the memory for float32)
+    hi, lo = xn.max(axis=1).astype(np.float64), xn.min(axis=1).astype(np.float64)
     scratch = np.empty((c, n), dtype=np.bool_)
-    repeat_n = _count(np.equal(x[:, 1:], x[:, :-1], out=scratch[:, 1:]))
-    pinned_n = _flat_tops(x, hi, lo, repeat_n, scratch)
+    repeat_n = _count(np.equal(xn[:, 1:], xn[:, :-1], out=scratch[:, 1:]))
+    pinned_n = _flat_tops(xn, x, hi, lo, repeat_n, scratch)
     clip = _clip_fraction(x, hi, lo, pinned_n, spec)
     repeat = repeat_n / (n - 1)
 
@@ -493,17 +494,19 @@ def _checked_inputs(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec, bias_
     return x, bias, turning
 
 
-def _flat_tops(x: npt.NDArray[np.float64], hi: npt.NDArray[np.float64], lo: npt.NDArray[np.float64],
-               repeat_n: npt.NDArray[np.int64], scratch: npt.NDArray[np.bool_]) -> npt.NDArray[np.int64]:
+def _flat_tops(xn: npt.NDArray[np.floating[Any]], x: npt.NDArray[np.float64], hi: npt.NDArray[np.float64],
+               lo: npt.NDArray[np.float64], repeat_n: npt.NDArray[np.int64],
+               scratch: npt.NDArray[np.bool_]) -> npt.NDArray[np.int64]:
     """Pinned pairs per row (consecutive samples at the frame's extreme); removes them from ``repeat_n``.
 
-    A row with fewer than two samples near either extreme (passes 5, 6) has no pinned pair; the others are
-    counted.
+    ``xn`` are the rows in their own precision, ``x`` the same in float64.  A row with fewer than two samples near
+    either extreme (passes 5, 6, in ``xn``'s precision against limits rounded so that they count the same samples)
+    has no pinned pair; the others are counted.
     """
     c = x.shape[0]
     tol = 1e-6 * (hi - lo) + 1e-12
-    near_hi = _count(np.greater_equal(x, (hi - tol)[:, None], out=scratch))
-    near_lo = _count(np.less_equal(x, (lo + tol)[:, None], out=scratch))
+    near_hi = _count(np.greater_equal(xn, _outward(hi - tol, xn.dtype, up=True)[:, None], out=scratch))
+    near_lo = _count(np.less_equal(xn, _outward(lo + tol, xn.dtype, up=False)[:, None], out=scratch))
     pinned_n = np.zeros(c, dtype=np.int64)
     top_rows = np.flatnonzero((near_hi >= 2) | (near_lo >= 2))
     if top_rows.size:
