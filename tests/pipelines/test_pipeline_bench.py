@@ -17,9 +17,10 @@ def test_bench_rows_are_well_formed() -> None:
                           "scipy_rfft_us_per_block", "peer_us_per_block", "peer_ratio",
                           "pipeline_f32_us_per_block", "ratio_f32", "band_auto_us_per_frame",
                           "ratio_with_band_auto", "ratio_target", "ratio_over_target", "peer_ratio_target",
-                          "health_us_per_block"}
+                          "health_us_per_block", "health_impulsive_us_per_block"}
         assert r["pipeline_us_per_block"] > 0 and r["rfft_us_per_block"] > 0
         assert r["band_auto_us_per_frame"] > 0 and r["health_us_per_block"] > 0
+        assert r["health_impulsive_us_per_block"] > 0
         assert r["ratio_with_band_auto"] >= r["ratio"] * 0.98
         assert r["ratio_target"] is None and r["ratio_over_target"] is None  # targets are set at 16384 samples
         assert r["ratio"] == pytest.approx(r["pipeline_us_per_block"] / r["rfft_us_per_block"], rel=0.02)
