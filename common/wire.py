@@ -43,6 +43,7 @@ import binascii
 import json
 import math
 import operator
+import re
 import struct
 from dataclasses import dataclass, field
 from typing import Any, Literal
@@ -81,6 +82,8 @@ _DTYPE_I16 = 2
 _JSON_KEYS = frozenset({"v", "sensor", "seq", "t0_ns", "fs_hz", "unit", "encoding", "data", "scale"})
 _ENCODINGS = ("f32le-b64", "i16le-b64", "array")
 _F32_TINY = float(np.finfo(np.float32).tiny)
+_FLOAT_DTYPES = (np.dtype(np.float32), np.dtype(np.float64))  # dtype objects: compared without a conversion
+_CONTROL_CHARS = re.compile(r"[\x00-\x1f]")  # C0 control characters (code points below 32)
 
 
 class WireError(ValueError):
@@ -279,7 +282,7 @@ def _check_sensor_id(sid: object) -> str:
         raise InvalidField("sensor id must be a non-empty string")
     if len(sid.encode("utf-8")) > MAX_SENSOR_ID_BYTES:
         raise InvalidField(f"sensor id longer than {MAX_SENSOR_ID_BYTES} bytes")
-    if any(ord(c) < 32 for c in sid):
+    if _CONTROL_CHARS.search(sid):
         raise InvalidField("sensor id contains control characters")
     return sid
 
@@ -321,13 +324,11 @@ def _finish(sid: str, seq: int, t0_ns: int, fs: float, unit: str, samples: npt.N
         raise LengthMismatch("block has no samples")
     if n > max_samples:
         raise LengthMismatch(f"block has {n} samples, more than the limit of {max_samples}")
-    x = samples if samples.dtype in (np.float32, np.float64) else samples.astype(np.float64)
-    with np.errstate(over="ignore", invalid="ignore"):
-        total = x.sum()  # NaN and ±Inf reach the sum: one pass, no mask, for the usual finite block
-    if not np.isfinite(total):
+    x = samples if samples.dtype in _FLOAT_DTYPES else samples.astype(np.float64)
+    # isfinite sets no floating-point flags (a sum would, for ±Inf or an overflow, and need np.errstate round it)
+    if not np.isfinite(x).all():
         bad = int(np.count_nonzero(~np.isfinite(x)))
-        if bad:  # (a finite block whose float32 sum overflowed passes)
-            raise NonFiniteSamples(f"{bad} of {n} samples are NaN or infinite")
+        raise NonFiniteSamples(f"{bad} of {n} samples are NaN or infinite")
     if x.flags.writeable:
         x.flags.writeable = False
     return Block(sensor_id=sid, seq=seq, t0_ns=t0_ns, fs_hz=fs, unit=unit, samples=x)

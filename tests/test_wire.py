@@ -284,6 +284,36 @@ def test_encoders_carry_non_finite_samples_for_the_decoder_to_reject() -> None:
             decode(payload)
 
 
+def test_non_finite_samples_are_counted_in_the_message() -> None:
+    # IEEE 754: NaN and both infinities are the non-finite values; each form names how many of how many
+    samples = [0.0, float("nan"), 1.0, float("-inf"), float("inf")]
+    for payload in (encode_binary(block(samples)), encode_json(block(samples))):
+        with pytest.raises(NonFiniteSamples, match="3 of 5 samples are NaN or infinite"):
+            decode(payload)
+
+
+def test_finite_samples_near_the_float32_limit_pass() -> None:
+    # float32's largest finite value is (2 - 2**-23) * 2**127 ≈ 3.4028235e38 (IEEE 754 binary32): a block of
+    # such values is finite, although their sum is not representable
+    top = float(np.finfo(np.float32).max)
+    decoded = decode(encode_binary(block([top, top, -top, top])))
+    assert np.array_equal(decoded.samples, np.array([top, top, -top, top], dtype=np.float32))
+
+
+@pytest.mark.parametrize("sid, ok", [
+    ("QL-P101", True), ("QL P101", True), ("QL-P101\x7f", True),  # space and DEL are not C0 controls
+    ("QL\tP101", False), ("QL-P101\n", False), ("\x00QL", False), ("QL\x1f", False),
+])
+def test_sensor_ids_with_control_characters_are_refused(sid: str, ok: bool) -> None:
+    # C0 control characters are U+0000..U+001F (ISO/IEC 6429, the C0 set)
+    payload = binary(sid=sid.encode("utf-8"))
+    if ok:
+        assert decode(payload).sensor_id == sid
+    else:
+        with pytest.raises(InvalidField, match="control characters"):
+            decode(payload)
+
+
 def test_binary_header_layout_is_as_documented() -> None:
     payload = encode_binary(block([1.0, 2.0], sensor_id="AB", seq=42, t0_ns=-3, fs_hz=512.0, unit="m/s2"))
     magic, code, unit, sid_len, seq, t0, fs, scale, n = HEADER.unpack_from(payload)
