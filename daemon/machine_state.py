@@ -63,7 +63,8 @@ class MachineTracker:
             healthy = frame_healthy and bool(self.healthy(point_id))
         except Exception:  # a view that fails must not stop the frames
             healthy = frame_healthy
-        st = observe(self._states.get(machine_id, MachineState()), spec, t_s, point_id, speed_hz=speed_hz,
+        st = self._states.get(machine_id)
+        st = observe(MachineState() if st is None else st, spec, t_s, point_id, speed_hz=speed_hz,
                      velocity_rms_mm_s=velocity_rms_mm_s, healthy=healthy)
         self._states[machine_id] = st
         return st

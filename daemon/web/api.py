@@ -400,11 +400,11 @@ class ViewService:
         return self.daemon.alarm_view
 
     async def on_frames(self, results: list[FrameResult]) -> None:
-        latest: dict[str, FrameResult] = {}
+        add = self.recent.add
         for r in results:
-            self.recent.add(r.point_id, r.t_end_ns / 1e9, functools.partial(indicator_values, r))
-            latest[r.point_id] = r
-        if self._streams:
+            add(r.point_id, r.t_end_ns / 1e9, functools.partial(indicator_values, r))
+        if self._streams:  # the latest frame of each point, to the view's live streams
+            latest = {r.point_id: r for r in results}
             for r in latest.values():
                 if self._stale.get(r.point_id):  # data again: fresh now, not at the next check
                     self._push_stale(r.point_id, False, r)
