@@ -151,13 +151,20 @@ class SinkChannel:
             self._fifo.extend(results)
             self._queued += len(results)
         else:
+            per_point = self._per_point
             new: dict[str, int] = {}
             for r in results:
-                new[r.point_id] = new.get(r.point_id, 0) + 1
-                self._per_point.setdefault(r.point_id, deque()).append(r)
+                pid = r.point_id
+                new[pid] = new.get(pid, 0) + 1
+                q = per_point.get(pid)
+                if q is None:
+                    q = per_point[pid] = deque()
+                q.append(r)
             self._queued += len(results)
             for pid, n_new in new.items():  # a batch is kept whole (a sink that keeps up misses nothing)
-                q = self._per_point[pid]
+                q = per_point[pid]
+                if len(q) <= SINK_BACKLOG_PER_POINT:  # the usual case: nothing to drop
+                    continue
                 excess = len(q) - max(SINK_BACKLOG_PER_POINT, n_new)
                 for _ in range(excess):
                     q.popleft()
@@ -224,6 +231,10 @@ class _PointState:
     trend: EwTrend
     signature: tuple[Any, ...]
     band_source: str | None = None  # where the plan's envelope band comes from (configured, auto, default)
+    auto_band: bool = dataclasses.field(init=False)  # the point's band is selected automatically (read per frame)
+
+    def __post_init__(self) -> None:
+        self.auto_band = self.config.envelope_band_origin == "auto"
 
 
 class Daemon:
@@ -657,7 +668,7 @@ class Daemon:
                         for j, s in zip(jobs, shaft, strict=True)]
             shaft_arr = None if all(s is None for s in shaft) else \
                 np.array([math.nan if s is None else s for s in shaft], dtype=np.float64)
-            specs = [self._health_spec(j.point_id) for j in jobs]
+            specs = self._health_specs(jobs)
             running = [self.machines.running(self.points[j.point_id].machine.id) if j.point_id in self.points
                        else True for j in jobs]
             points = [j.point_id for j in jobs]
@@ -698,12 +709,13 @@ class Daemon:
         running = [judged_running(r, i.velocity_rms_mm_s, level) for r, i in zip(running, ind, strict=True)]
         return x, ind, batch_health(x, plan.fs_hz, specs, rms, running, points, health_errors)
 
-    def _health_spec(self, point_id: str) -> HealthSpec | None:
-        """The point's sensor-health specification, or ``None`` when the alarm layer checks no health."""
-        settings = self.config.alarm_settings
+    def _health_specs(self, jobs: Sequence[FrameJob]) -> list[HealthSpec | None]:
+        """Each frame's sensor-health specification, or ``None`` when the alarm layer checks no health."""
+        settings = self.config.alarm_settings  # once per batch: a property behind a pydantic private attribute
         if not settings.table.enabled or not settings.table.health.enabled:
-            return None
-        return settings.health.get(point_id) or _DEFAULT_HEALTH
+            return [None] * len(jobs)
+        health = settings.health
+        return [health.get(j.point_id) or _DEFAULT_HEALTH for j in jobs]
 
     def _results(self, jobs: list[FrameJob], indicators: list[FrameIndicators], frames: npt.NDArray[np.float32],
                  measured_hz: Sequence[float | None] | None = None,
@@ -715,7 +727,8 @@ class Daemon:
             st = self.points.get(job.point_id)
             if st is None:  # removed by a reload while in flight
                 continue
-            ms = self.machines.observe(st.machine.id, job.point_id, job.t_end_ns / 1e9, speed_hz=speed,
+            t_end_s = job.t_end_ns / 1e9
+            ms = self.machines.observe(st.machine.id, job.point_id, t_end_s, speed_hz=speed,
                                        velocity_rms_mm_s=ind.velocity_rms_mm_s,
                                        frame_healthy=h is None or h.ok)
             if ms is not None and ms.state == "stopped" and (ind.orders_mm_s or ind.envelope):
@@ -727,14 +740,15 @@ class Daemon:
                             received_ns=job.received_ns, fs_hz=st.config.fs_hz, indicators=ind, iso_zone=zone,
                             samples=samples, axis=st.config.axis, machine_state=ms, health=h,
                             envelope_band_source=st.band_source if ind.envelope_band_hz is not None else None)
-            if st.config.envelope_band_origin == "auto":
+            if st.auto_band:
                 p = st.config
                 self.band_auto.observe(job.point_id, job.t_end_ns, p.hop_samples, round(p.hop_samples / p.fs_hz * 1e9),
                                        samples)
                 if self.band_auto.first_ready(job.point_id):
                     self._band_wake.set()
-            r = dataclasses.replace(r, trend=st.trend.update({i.name: i.value(r) for i in TRENDED},
-                                                             job.t_end_ns / 1e9))
+            # the trend of this frame's values, set on the result before anyone else sees it (not a second
+            # FrameResult per frame through dataclasses.replace)
+            object.__setattr__(r, "trend", st.trend.update({i.name: i.value(r) for i in TRENDED}, t_end_s))
             self.latest[job.point_id] = r
             Stats.inc(self.stats.frames_analysed, job.point_id)
             results.append(r)
