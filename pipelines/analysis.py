@@ -308,7 +308,6 @@ class AnalysisKernel:
         "_n",
         "_order_keys",
         "_order_min",
-        "_order_min_list",
         "_speed_stop",
         "_split",
         "_thresholds",
@@ -379,10 +378,8 @@ class AnalysisKernel:
         o = np.asarray(plan.orders)
         apart = np.abs(o[:, None] - o[None, :]) + np.diag(np.full(o.size, np.inf))
         order_min = np.maximum(2.0 * df / o, df / apart.min(axis=1))
-        order_min.flags.writeable = False
-        self._order_min = order_min
         self._order_keys = tuple(order_key(v) for v in plan.orders)  # (per call: only arithmetic, see analyze)
-        self._order_min_list = tuple(order_min.tolist())
+        self._order_min = tuple(order_min.tolist())
         below = [(order_key(v), float(f)) for v, f in zip(plan.orders, order_min, strict=True) if f > s_lo]
         if below:
             notes.append(f"orders {', '.join(k for k, _ in below)}: {length}: left out below "
@@ -527,7 +524,7 @@ class AnalysisKernel:
         quality_l = quality.tolist()
         run_l = running.tolist()
         orders_l = orders.tolist()
-        order_min = self._order_min_list
+        order_min = self._order_min
         cols = (td.rms_g, td.peak_g, td.peak_to_peak_g, td.crest_factor, td.kurtosis, td.skewness, td.mean_g,
                 vel_rms, vel_peak, disp_pp)
         rows = np.stack(cols, axis=1).tolist()
