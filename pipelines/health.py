@@ -51,6 +51,8 @@ __all__ = ["FAULT_ORDER", "HealthSpec", "SensorFault", "SensorHealth", "check_he
 SensorFault = Literal["bias", "flatline", "clipping", "dc-step", "spikes", "noise"]
 FAULT_ORDER: tuple[SensorFault, ...] = ("bias", "flatline", "clipping", "dc-step", "spikes", "noise")
 SPIKE_WINDOW = 8  # samples each side in which a ringing response would show
+_AROUND = np.concatenate([np.arange(-SPIKE_WINDOW, 0), np.arange(1, SPIKE_WINDOW + 1)])  # a sample's window
+_AROUND.flags.writeable = False
 MIN_LEVELS = 16  # quantization steps a frame must span before flat tops at its extremes say "clipping"
 _BLOCK_SAMPLES = 1 << 17  # the exact spike test works on blocks of rows of about this many samples (1 MB)
 _MAD_TO_SIGMA = 1.4826  # σ / median absolute deviation for a Gaussian (common practice)
@@ -185,8 +187,7 @@ def _spike_block(x: npt.NDArray[np.float64], spike_sigma: float, scratch: npt.ND
         nbr = np.maximum(xc_abs[ci, np.maximum(ii - 1, 0)], xc_abs[ci, np.minimum(ii + 1, n - 1)])
         keep = nbr < third
         ci, ii, third = ci[keep], ii[keep], third[keep]
-        offs = np.concatenate([np.arange(-SPIKE_WINDOW, 0), np.arange(1, SPIKE_WINDOW + 1)])
-        idx = np.minimum(np.maximum(ii[:, None] + offs[None, :], 0), n - 1)
+        idx = np.minimum(np.maximum(ii[:, None] + _AROUND[None, :], 0), n - 1)
         around = xc_abs[ci[:, None], idx].max(axis=1, initial=0.0)
         isolated = around < third
         spikes = np.bincount(ci[isolated], minlength=c).astype(np.int64)
@@ -335,8 +336,7 @@ def _spike_screen(x: npt.NDArray[np.floating[Any]], x64: npt.NDArray[np.float64]
     lo_b, hi_b = m_lo[ci], m_hi[ci]
     xk = x64[ci, ii]
     third = np.maximum(np.abs(xk - lo_b), np.abs(xk - hi_b)) / 3.0
-    offs = np.concatenate([np.arange(-SPIKE_WINDOW, 0), np.arange(1, SPIKE_WINDOW + 1)])
-    xj = x64[ci[:, None], ii[:, None] + offs[None, :]]
+    xj = x64[ci[:, None], ii[:, None] + _AROUND[None, :]]
     reach = np.maximum(xj - hi_b[:, None], lo_b[:, None] - xj).max(axis=1, initial=0.0)
     doubt = np.zeros(c, dtype=np.bool_)
     doubt[ci[reach < third]] = True
