@@ -82,7 +82,7 @@ import numpy.typing as npt
 from edgevib.pipelines import _fft
 from edgevib.pipelines.detection import GUARD_LINES, LEVEL_LINES, LEVEL_RANK, LEVEL_STEP, level_mean_factor
 from edgevib.pipelines.indicators import as_channels, finite_mean
-from edgevib.pipelines.spectrum import band_lines, hann_lines
+from edgevib.pipelines.spectrum import band_lines, hann_lines, window_offsets
 from edgevib.pipelines.types import PlanError
 
 __all__ = [
@@ -158,14 +158,6 @@ def level_headroom() -> int:
 
 
 _HEADROOM = level_headroom()
-
-
-@lru_cache(maxsize=256)
-def _padded_span(width: int) -> IntArray:
-    """``arange(-1, width + 1)``: a window's offsets with one neighbour either side (kept per width)."""
-    out = np.arange(-1, width + 1)
-    out.flags.writeable = False
-    return out
 
 
 def demodulate(spec: npt.NDArray[np.complexfloating[Any, Any]], k_lo: int, k_hi: int,
@@ -381,7 +373,7 @@ class _Scan:
         # each window's lines with one neighbour either side, in one gather (a window's own lines lie at or below
         # k − 2: the padding beyond a narrower window's last line is never taken, whatever it reads); flat indices
         # into ses (row offsets added), so the same indices serve every gather of a (channels, lines) array
-        idx = lo_c[..., None] + _padded_span(width)
+        idx = lo_c[..., None] + window_offsets(-1, width + 1)  # one neighbour either side
         valid = idx[..., 1:-1] <= hi_c[..., None]
         if rows is not None:
             idx += rows

@@ -218,15 +218,16 @@ def _windows(k: int, lo: IntArray, hi: IntArray) -> tuple[IntArray, npt.NDArray[
     lo = np.minimum(np.maximum(lo, 0), k - 1)
     hi = np.minimum(np.maximum(hi, lo), k - 1)
     width = int((hi - lo).max()) + 1 if lo.size else 1
-    idx = lo[..., None] + _span(width)
+    idx = lo[..., None] + window_offsets(0, width)
     valid = idx <= hi[..., None]
     return idx, valid
 
 
 @lru_cache(maxsize=256)
-def _span(width: int) -> IntArray:
-    """``arange(width)``, kept per width (a window's offsets)."""
-    out = np.arange(width)
+def window_offsets(start: int, stop: int) -> IntArray:
+    """``arange(start, stop)``, read-only and kept per pair: a search window's line offsets (built per call
+    otherwise)."""
+    out = np.arange(start, stop)
     out.flags.writeable = False
     return out
 
