@@ -351,7 +351,7 @@ class Daemon:
         self.band_auto.forget(set(self._auto_points()))
 
     def _auto_points(self) -> list[str]:
-        return [pid for pid, st in self.points.items() if st.config.envelope_band_origin == "auto"]
+        return [pid for pid, st in self.points.items() if st.auto_band]
 
     def _add_configured_sinks(self, config: Config) -> None:
         if config.publish.mqtt.enabled:
