@@ -130,6 +130,27 @@ def test_page_lists_every_point_without_errors(browser: Any, demo: Demo) -> None
     assert console.errors == []
 
 
+def test_a_click_survives_the_list_refreshing_under_it(browser: Any, demo: Demo) -> None:
+    """The point list follows the frames about once a second; a press made before such a refresh and released after
+    it is still a click on that point (common practice for live lists: the items are updated in place)."""
+    page = browser.new_page()
+    console = Console(page)
+    page.goto(demo.base + "/")
+    page.wait_for_selector("body[data-ready]", timeout=20000)
+    card = '#point-list li[data-point="F-201-NDE-V"]'
+    box = page.locator(card).bounding_box()
+    page.mouse.move(box["x"] + box["width"] / 2, box["y"] + box["height"] / 2)
+    page.mouse.down()
+    before = page.get_attribute(card, "data-frame-end")  # read after the press: the redraw below comes after it
+    # the press is held until the list has been redrawn with a newer frame of that point
+    wait_until(page, lambda: page.get_attribute(card, "data-frame-end") != before, "the list to refresh", 60)
+    page.mouse.up()
+    wait_until(page, lambda: page.inner_text("#point-title") == "F-201-NDE-V", "the pressed point to be chosen")
+    assert page.url.endswith("#F-201-NDE-V")
+    page.close()
+    assert console.errors == []
+
+
 class Answers:
     """The API's answers the page received on one endpoint (the documents it drew), kept to be read afterwards."""
 

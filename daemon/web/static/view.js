@@ -11,7 +11,8 @@
                    window: "rgba(107, 79, 160, 0.55)", grid: "#e6e0d2" };
   const state = { points: [], selected: null, session: null, charts: {}, spectrum: null, envelope: null,
                   waveform: null, trend: null, zoom: {}, pointsAt: 0, connected: false,
-                  everConnected: false, refreshTimer: null, listTimer: null, lastRefresh: 0, report: null };
+                  everConnected: false, refreshTimer: null, listTimer: null, lastRefresh: 0, report: null,
+                  listItems: new Map() };
 
   // ------------------------------------------------------------------ helpers
   function $(id) { return document.getElementById(id); }
@@ -393,28 +394,49 @@
   }
 
   // ------------------------------------------------------------------ live page
+  // The list is updated in place: one <li> per point, its parts built once and only their text and attributes
+  // changed.  A browser fires no click when the element pressed is replaced before the button is released, and
+  // the list follows the frames about once a second, so rebuilding it would lose the operator's clicks.
+  function listItem(id) {
+    const parts = { pid: el("span", { class: "pid", text: id }), zone: el("span"), what: el("span"), vel: el("span"),
+                    state: el("div", { class: "state" }), age: el("div", { class: "age" }) };
+    const li = el("li", { "data-point": id, tabindex: "0" },
+      el("div", { class: "line" }, parts.pid, parts.zone), el("div", { class: "line" }, parts.what, parts.vel),
+      parts.state, parts.age);
+    li.addEventListener("click", () => select(id));
+    li.addEventListener("keydown", ev => { if (ev.key === "Enter") select(id); });
+    return { li, parts };
+  }
+
   function renderPoints() {
     const list = $("point-list");
-    list.textContent = "";
+    const items = state.listItems;
+    const ids = new Set(state.points.map(p => p.id));
+    for (const [id, item] of items) if (!ids.has(id)) { item.li.remove(); items.delete(id); }
+    let at = list.firstElementChild;
     for (const p of state.points) {
+      let item = items.get(p.id);
+      if (!item) { item = listItem(p.id); items.set(p.id, item); }
+      const { li, parts } = item;
+      if (li !== at) list.insertBefore(li, at); else at = at.nextElementSibling;
       const vel = (p.indicators.find(i => i.name === "velocity_rms_mm_s") || {}).value;
       const stale = isStale(p);
       // a zone from old data or from a faulty sensor's data is shown dimmed, with why in its title
       const zoneWhy = p.sensor_fault ? ` from a faulty sensor's data (${p.sensor_fault})` : stale ? `, ${ageText(p)}` : "";
-      const li = el("li", { "data-point": p.id, "data-frame-end": p.frame_end, tabindex: "0",
-                            class: sevClass(p) + (stale ? " stale" : ""), "data-stale": stale ? "true" : "false",
-                            "aria-current": p.id === state.selected ? "true" : "false" },
-        el("div", { class: "line" }, el("span", { class: "pid", text: p.id }),
-           el("span", { class: "zone" + (zoneWhy ? " dim" : ""), title: `ISO 20816-3 zone${zoneWhy}`,
-                        "data-dim": zoneWhy ? "true" : null, text: p.iso_zone || "–" })),
-        el("div", { class: "line" }, el("span", { text: `${p.machine} · ${machineText(p)}` }),
-           el("span", { text: vel === undefined ? "…" : `${num(vel, 3)} mm/s` })),
-        el("div", { class: "state", text: p.alarm_state + (p.data_gap && !p.alarm_state.includes("stale") ? ` (no good data: ${p.data_gap})`
-                                                      : p.stale && p.frame_end ? " (no recent frame)" : "") }),
-        stale ? el("div", { class: "age", text: ageText(p) + (p.source_state === "down" ? " · source down" : "") }) : "");
-      li.addEventListener("click", () => select(p.id));
-      li.addEventListener("keydown", ev => { if (ev.key === "Enter") select(p.id); });
-      list.append(li);
+      li.className = sevClass(p) + (stale ? " stale" : "");
+      if (p.frame_end) li.setAttribute("data-frame-end", p.frame_end); else li.removeAttribute("data-frame-end");
+      li.setAttribute("data-stale", stale ? "true" : "false");
+      li.setAttribute("aria-current", p.id === state.selected ? "true" : "false");
+      parts.zone.className = "zone" + (zoneWhy ? " dim" : "");
+      parts.zone.title = `ISO 20816-3 zone${zoneWhy}`;
+      if (zoneWhy) parts.zone.setAttribute("data-dim", "true"); else parts.zone.removeAttribute("data-dim");
+      parts.zone.textContent = p.iso_zone || "–";
+      parts.what.textContent = `${p.machine} · ${machineText(p)}`;
+      parts.vel.textContent = vel === undefined ? "…" : `${num(vel, 3)} mm/s`;
+      parts.state.textContent = p.alarm_state + (p.data_gap && !p.alarm_state.includes("stale") ? ` (no good data: ${p.data_gap})`
+                                                 : p.stale && p.frame_end ? " (no recent frame)" : "");
+      parts.age.hidden = !stale;
+      parts.age.textContent = stale ? ageText(p) + (p.source_state === "down" ? " · source down" : "") : "";
     }
   }
 
