@@ -266,6 +266,37 @@ def test_zoom_survives_live_updates_until_double_click(browser: Any, demo: Demo)
     assert console.errors == []
 
 
+def test_a_drag_zoom_survives_a_new_frame_arriving_under_it(browser: Any, demo: Demo) -> None:
+    """A drag over the spectrum that spans the arrival of a newer frame still zooms to the dragged range: the chart is
+    not rebuilt under the operator's pointer (common practice for live charts: a gesture is not cut by a redraw)."""
+    page = browser.new_page()
+    console = Console(page)
+    page.goto(demo.base + "/#P-101-DE-H")
+    page.wait_for_selector("#sp-chart canvas", timeout=20000)
+    lo, hi = x_range(page, "#panel-spectrum")
+    box = page.locator("#panel-spectrum .u-over").bounding_box()
+    y = box["y"] + box["height"] / 2
+    page.mouse.move(box["x"] + box["width"] * 0.2, y)
+    page.mouse.down()
+    frame = page.get_attribute("#panel-spectrum", "data-frame-end")  # read after the press
+    wait_until(page, lambda: page.get_attribute("#panel-spectrum", "data-frame-end") != frame, "a newer frame", 60)
+    page.mouse.move(box["x"] + box["width"] * 0.4, y)
+    page.mouse.move(box["x"] + box["width"] * 0.6, y)
+    page.mouse.up()
+    wait_until(page, lambda: page.get_attribute("#panel-spectrum", "data-zoomed") == "true", "the zoom")
+    zlo, zhi = x_range(page, "#panel-spectrum")
+    span = hi - lo  # the dragged fractions of the shown (linear) range, within a few pixels
+    assert zlo == pytest.approx(lo + 0.2 * span, abs=0.01 * span)
+    assert zhi == pytest.approx(lo + 0.6 * span, abs=0.01 * span)
+    # the redraw held back during the drag follows, with the user's range kept
+    frame = page.get_attribute("#panel-spectrum", "data-frame-end")
+    wait_until(page, lambda: page.get_attribute("#panel-spectrum", "data-frame-end") != frame, "the next frame", 60)
+    page.wait_for_timeout(1500)
+    assert x_range(page, "#panel-spectrum") == pytest.approx((zlo, zhi), rel=1e-9)
+    page.close()
+    assert console.errors == []
+
+
 def drawn_labels(page: Any, panel: str) -> list[dict[str, Any]]:
     labels: list[dict[str, Any]] = json.loads(page.get_attribute(panel, "data-labels") or "null")
     # no two labels drawn in one row overlap

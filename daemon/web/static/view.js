@@ -107,7 +107,36 @@
   // A chart is rebuilt for every new frame. The user's x range (a drag zoom) is kept per panel across these
   // rebuilds until a double-click resets it; `initial` is the panel's own opening range when not zoomed.
   // The panel element carries the shown range (data-x-min/-max) and whether it is the user's (data-zoomed).
+  // A chart is not rebuilt under a gesture: while a button is held over a plot (a drag zoom) and for a moment
+  // after its release (the second press of a double-click), a new frame's redraw waits, the latest one per chart.
+  // Replacing the plot's element under the pointer would lose the gesture (the browser ends it with the element).
+  const gesture = { down: false, until: 0, pending: new Map(), timer: null };
+  const GESTURE_HOLD_MS = 600;
+  document.addEventListener("pointerdown", ev => {
+    if (ev.target instanceof Element && ev.target.closest(".u-over")) gesture.down = true;
+  }, true);
+  const gestureEnd = () => {
+    if (!gesture.down) return;
+    gesture.down = false;
+    gesture.until = Date.now() + GESTURE_HOLD_MS;
+    flushCharts();
+  };
+  for (const t of ["pointerup", "pointercancel", "blur"]) window.addEventListener(t, gestureEnd, true);
+  function flushCharts() {
+    if (gesture.timer || gesture.pending.size === 0) return;
+    const wait = gesture.down ? GESTURE_HOLD_MS : gesture.until - Date.now();
+    if (wait > 0) { gesture.timer = setTimeout(() => { gesture.timer = null; flushCharts(); }, wait); return; }
+    const redraws = [...gesture.pending.values()];
+    gesture.pending.clear();
+    for (const redraw of redraws) redraw();
+  }
+
   function makeChart(key, container, opts, data, initial) {
+    if (gesture.down || Date.now() < gesture.until) {
+      gesture.pending.set(key, () => makeChart(key, container, opts, data, initial));
+      flushCharts();
+      return;
+    }
     const old = state.charts[key];
     if (old) old.destroy();
     container.textContent = "";
@@ -139,7 +168,6 @@
       show(u);
     });
     state.charts[key] = u;
-    return u;
   }
 
   function logSafe(arr) { return arr.map(v => (v === null || !(v > 0)) ? null : v); }
@@ -537,6 +565,7 @@
 
   // a point's panels: nothing of the previously chosen point stays on the page while the new one loads
   function clearPanels() {
+    gesture.pending.clear();  // a redraw held back for the previous point is dropped
     for (const [k, u] of Object.entries(state.charts)) { u.destroy(); delete state.charts[k]; }
     for (const id of ["sp-chart", "en-chart", "wf-chart", "tr-chart"]) $(id).textContent = "";
     for (const id of ["sp-markers", "en-families", "history", "tr-cross"]) { const t = $(id); if (t) t.tBodies[0].textContent = ""; }
