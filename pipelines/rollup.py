@@ -19,6 +19,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
+from itertools import chain
 
 import numpy as np
 import numpy.typing as npt
@@ -236,26 +237,27 @@ class LogSketch:
             return math.nan
         pos = q * (self.count - 1)
         lo = math.floor(pos)
-        v_lo = self._at_rank(lo)
+        v_lo, v_hi = self._at_ranks(lo, lo + 1 if pos > lo else lo)
         if pos == lo:
             return v_lo
-        return v_lo + (pos - lo) * (self._at_rank(lo + 1) - v_lo)
+        return v_lo + (pos - lo) * (v_hi - v_lo)
 
-    def _at_rank(self, rank: int) -> float:
-        """The order statistic of ``rank`` (0-based, ascending) within the relative accuracy."""
+    def _at_ranks(self, lo: int, hi: int) -> tuple[float, float]:
+        """The order statistics of ranks ``lo`` ≤ ``hi`` (0-based, ascending) within the relative accuracy, read in
+        one walk over the bins (most negative first)."""
+        g = self._gamma
+        bins = chain(((-1.0, k, self.neg[k]) for k in sorted(self.neg, reverse=True)), ((0.0, 0, self.zeros),),
+                     ((1.0, k, self.pos[k]) for k in sorted(self.pos)))
+        ranks, found = (lo, hi), list[float]()
         seen = 0
-        for k in sorted(self.neg, reverse=True):   # most negative first
-            seen += self.neg[k]
-            if seen > rank:
-                return self._clamp(-2.0 * self._gamma**k / (self._gamma + 1.0))
-        seen += self.zeros
-        if seen > rank:
-            return self._clamp(0.0)
-        for k in sorted(self.pos):
-            seen += self.pos[k]
-            if seen > rank:
-                return self._clamp(2.0 * self._gamma**k / (self._gamma + 1.0))
-        return self.vmax
+        for sign, k, n in bins:
+            seen += n
+            while seen > ranks[len(found)]:
+                found.append(self._clamp(sign * 2.0 * g**k / (g + 1.0)))
+                if len(found) == 2:
+                    return found[0], found[1]
+        found += [self.vmax] * (2 - len(found))
+        return found[0], found[1]
 
     def _clamp(self, v: float) -> float:
         return min(max(v, self.vmin), self.vmax)

@@ -58,6 +58,22 @@ def test_sparse_bucket_median_is_numpys() -> None:
         assert sk.quantile(0.95) == pytest.approx(np.percentile(v, 95), rel=0.01)
 
 
+def test_sketch_quantile_between_bins_of_either_sign() -> None:
+    # numpy.percentile's default (linear): position q (n - 1) between the order statistics below and above it
+    # (numpy documentation); each is read from the sketch within alpha (DDSketch, Masson, Rim & Lee, PVLDB 12,
+    # 2019), so the interpolation is within alpha of the larger of the two.  The two neighbours here lie in
+    # different bins: negative, zero and positive ones.
+    v = np.array([-3.0, -1.0, 0.0, 0.0, 2.0, 5.0, 5.2])
+    sk = LogSketch(alpha=0.01)
+    sk.add(v)
+    s = np.sort(v)
+    for q in np.linspace(0.0, 1.0, 61):
+        pos = q * (v.size - 1)
+        lo, hi = math.floor(pos), min(math.ceil(pos), v.size - 1)
+        bound = 0.01 * max(abs(s[lo]), abs(s[hi])) + 1e-12
+        assert abs(sk.quantile(float(q)) - np.percentile(v, 100.0 * q)) <= bound, q
+
+
 def test_sketch_merge_and_storage_round_trip() -> None:
     rng = np.random.default_rng(2)
     a, b = rng.gamma(2.0, 1.0, 700), rng.gamma(5.0, 2.0, 900)
