@@ -835,8 +835,9 @@ class Daemon:
 
 def make_source(cfg: SourceConfig, config: Config, ingest: BlockIngest) -> Source:
     """Build the source of one ``[[sources]]`` entry."""
-    speed_tags = [m.speed_tag.tag for m in config.machines if m.speed_tag is not None
-                  and m.speed_tag.source == cfg.name]
+    # the machines' speed tags read from this source: tag → (machine, unit)
+    speed_tags = {m.speed_tag.tag: (m.id, m.speed_tag.unit) for m in config.machines
+                  if m.speed_tag is not None and m.speed_tag.source == cfg.name}
     if isinstance(cfg, MqttSourceConfig):
         from edgevib.daemon.sources.mqtt import MqttSource
 
@@ -844,10 +845,8 @@ def make_source(cfg: SourceConfig, config: Config, ingest: BlockIngest) -> Sourc
     if isinstance(cfg, SimulatedSourceConfig):
         from edgevib.daemon.sources.simulated import SimulatedSource
 
-        tags = {m.speed_tag.tag: (m.id, m.speed_tag.unit) for m in config.machines
-                if m.speed_tag is not None and m.speed_tag.source == cfg.name}
         return SimulatedSource(name=cfg.name, ingest=ingest, scenario=cfg.scenario, seed=cfg.seed, rate=cfg.rate,
-                               speed_tags=tags)
+                               speed_tags=speed_tags)
     if isinstance(cfg, OpcUaSourceConfig):  # the last kind: the configuration's union has no other
         from edgevib.daemon.sources.opcua import NodeSpec, OpcUaSource  # asyncua loads only when configured
 

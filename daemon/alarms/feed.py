@@ -177,7 +177,6 @@ class MqttFeed:
         self.on_command = on_command
         self.published = 0
         self.rejected = 0
-        self.states_published = 0
         self._binary = cfg.content_mode == "binary" and self.conn.protocol == "5"
         subs = [(cfg.command_topic, 1)] if cfg.command_topic and on_command is not None else []
         self.link = MqttLink(
@@ -271,7 +270,6 @@ class MqttFeed:
                 continue
             if info.rc == 0:
                 self._last_state[topic] = fp
-                self.states_published += 1
 
     def _event_message(self, e: OutboxEvent) -> tuple[bytes, Any]:
         if self._binary:

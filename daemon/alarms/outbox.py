@@ -14,7 +14,6 @@ from __future__ import annotations
 import contextlib
 import sqlite3
 import threading
-import time
 import uuid
 from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
@@ -208,14 +207,6 @@ class Outbox:
             row = self.db.conn.execute(
                 "SELECT MIN(o.created_ns) FROM pending p JOIN outbox o ON o.seq = p.seq").fetchone()
         return None if row[0] is None else int(row[0])
-
-    def oldest_age_s(self, now_ns: int | None = None) -> float:
-        """Age of the oldest pending event in seconds (0 when nothing is pending)."""
-        oldest = self.oldest_created_ns()
-        if oldest is None:
-            return 0.0
-        now = time.time_ns() if now_ns is None else now_ns
-        return max(0.0, (now - oldest) / 1e9)
 
     def all_ids(self) -> list[str]:
         with self.db.lock:
