@@ -480,6 +480,8 @@ def _analyze(args: argparse.Namespace) -> tuple[dict[str, Any], list[str]]:
                          shaft_hz_var=args.shaft_hz_var)
     if wave.warning:
         warnings.append(wave.warning)
+    if wave.note:  # a cut last line the reader dropped
+        warnings.append(f"{Path(args.file).name}: {wave.note}")
     fs, fs_source = _sample_rate(args, wave, warnings)
     x_g = _samples_g(args, wave.samples, opts.unit)
     n = int(x_g.size)

@@ -58,6 +58,8 @@ class Waveform:
     rpm_source: str = ""  # where the speed came from, e.g. "file variable X130RPM"
     fs_source: str = ""  # where the sample rate came from
     warning: str = ""  # one line on a doubtful choice the caller made, e.g. a monotonic column chosen explicitly
+    note: str = ""  # one line on what was left out of the file, e.g. a cut last line of a CSV file
+    unterminated: bool = False  # a text file whose last line has no line break (it may be cut short)
 
 
 # --------------------------------------------------------------------------------------------- shared
@@ -147,8 +149,21 @@ def _column_kind(col: npt.NDArray[np.float64]) -> str:
     return ""
 
 
-def _csv_table(path: Path) -> tuple[list[str] | None, npt.NDArray[np.float64]]:
-    """A text table's header (its first line when not numeric, else None) and its rows × columns."""
+@dataclass(frozen=True, slots=True)
+class _Table:
+    """A text table: its header (the first line when not numeric, else None), rows × columns, and what was left
+    out of it."""
+
+    header: list[str] | None
+    data: npt.NDArray[np.float64]
+    note: str = ""  # the cut last line that was dropped, in words
+    unterminated: bool = False  # the last line has no line break
+
+
+def _csv_table(path: Path) -> _Table:
+    """Read a text table.  A last line without a line break that is incomplete — fewer fields than the rows, or
+    a field cut inside a number — is a file cut short while written or copied: it is dropped and said so in
+    ``note``.  Any other malformed line raises :class:`InputError`."""
     try:
         text = path.read_text(encoding="utf-8-sig", errors="strict")
     except UnicodeDecodeError:
@@ -157,9 +172,11 @@ def _csv_table(path: Path) -> tuple[list[str] | None, npt.NDArray[np.float64]]:
              if ln.strip() and not ln.lstrip().startswith("#")]
     if not lines:
         raise InputError(f"CSV file {path} holds no data")
+    unterminated = not text.endswith(("\n", "\r"))
     delimiter = _delimiter([ln for _, ln in lines])
     header: list[str] | None = None
     rows: list[list[float]] = []
+    note = ""
     for k, (lineno, line) in enumerate(lines):
         fields = [f for f in _split(line, delimiter) if f != ""]
         try:
@@ -168,20 +185,29 @@ def _csv_table(path: Path) -> tuple[list[str] | None, npt.NDArray[np.float64]]:
             if k == 0:
                 header = [f.strip().strip('"').strip("'") for f in fields]
                 continue
+            if k == len(lines) - 1 and unterminated and rows:
+                note = (f"its last line (line {lineno}) is cut short: {line[:60]!r} is not numeric and has no line "
+                        "break; dropped")
+                break
             raise InputError(f"CSV file {path}: line {lineno} is not numeric: {line[:60]!r}") from None
     if not rows:
         raise InputError(f"CSV file {path} holds no numeric rows")
     width = len(rows[0])
+    if len(rows) > 1 and unterminated and not note and len(rows[-1]) < width:
+        note = (f"its last line (line {lines[-1][0]}) is cut short: {len(rows[-1])} of {width} fields and no "
+                "line break; dropped")
+        rows.pop()
     bad = next((i for i, r in enumerate(rows) if len(r) != width), None)
     if bad is not None:
         raise InputError(f"CSV file {path}: row {bad + 1} has {len(rows[bad])} columns, the first has {width}")
     if header is not None and len(header) != width:
         raise InputError(f"CSV file {path}: the header names {len(header)} columns, the rows have {width}")
-    return header, np.asarray(rows, dtype=np.float64)
+    return _Table(header, np.asarray(rows, dtype=np.float64), note, unterminated and not note)
 
 
 def _read_csv(path: Path, column: str | None) -> Waveform:
-    header, data = _csv_table(path)
+    table = _csv_table(path)
+    header, data = table.header, table.data
     width = data.shape[1]
     names = header or [""] * width
 
@@ -197,7 +223,8 @@ def _read_csv(path: Path, column: str | None) -> Waveform:
         like = "like a time axis or counter" if kinds[j] == "monotonic" else "it carries no vibration"
         warning = (f"--column {column} chose column {label(j)}, which is {kinds[j]} ({like}); analysed as asked; "
                    f"columns: {listing}")
-    return Waveform(data[:, j].copy(), None, source=which, warning=warning)
+    return Waveform(data[:, j].copy(), None, source=which, warning=warning, note=table.note,
+                    unterminated=table.unterminated)
 
 
 def _csv_column(path: Path, column: str | None, names: list[str], kinds: list[str], listing: str) -> int:

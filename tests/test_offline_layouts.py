@@ -163,6 +163,27 @@ def test_femto_snapshots_analyse_without_error(femto_dir: Path, capsys: pytest.C
         assert any(n.startswith("envelope FTF:") for n in notes)  # type: ignore[union-attr]
 
 
+def test_a_cut_last_line_is_dropped_with_a_warning(femto_dir: Path, tmp_path: Path,
+                                                   capsys: pytest.CaptureFixture[str]) -> None:
+    # a FEMTO snapshot (2560 rows of hour, minute, second, microsecond, horizontal, vertical; datasets README) cut
+    # in its last line while copied: the partial row is dropped with one warning, the other 2559 rows analysed —
+    # r.m.s. from numpy on those rows; a short row that ends with a line break is malformed, not cut: refused
+    src = femto_dir / "acc_00001.csv"
+    text = src.read_text()
+    path = tmp_path / "acc_00001.csv"
+    path.write_text(text[: text.rstrip("\n").rfind("\n") + 14])  # the last line cut after "8,47,5,2.9687"
+    doc, err = analyze_json([str(path), "--fs", "25600", "--column", "4"], capsys)
+    assert doc["n_samples"] == 2559
+    x = np.loadtxt(src, delimiter=",")[:2559, 4]
+    assert doc["acceleration_rms_g"] == pytest.approx(float(np.std(x)), rel=1e-6)
+    assert doc["warnings"] == ["acc_00001.csv: its last line (line 2560) is cut short: 4 of 6 fields and no line "
+                               "break; dropped"]
+    assert "edgevib analyze: warning: acc_00001.csv: its last line (line 2560) is cut short" in err
+    path.write_text(text[: text.rstrip("\n").rfind("\n") + 14] + "\n")
+    code, _, err = run(["analyze", str(path), "--fs", "25600", "--column", "4"], capsys)
+    assert code == 2 and "row 2560 has 4 columns, the first has 6" in err
+
+
 def test_short_records_give_time_domain_indicators(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     # 100 samples at 25.6 kHz (3.9 ms): r.m.s. of a sine A/√2 (handbook); nothing else, with the reasons
     path = tmp_path / "burst.npy"
