@@ -178,17 +178,21 @@ def _start(text: str) -> float:
 
 
 def _first_row(path: Path) -> list[float]:
-    with path.open("r", encoding="utf-8", errors="replace") as f:
-        for line in f:
-            text = line.strip()
-            if not text or text.startswith("#"):
-                continue
-            parts = [x for x in re.split(r"[,;\t ]+", text) if x]
-            try:
-                return [float(x) for x in parts]
-            except ValueError:
-                continue  # a header line
-    raise InputError(f"{path}: no numeric row to take the time from")
+    """The first row of a CSV file whose fields are all numbers (a header line before it is passed over)."""
+    try:
+        with path.open("r", encoding="utf-8", errors="replace") as f:
+            for line in f:
+                text = line.strip()
+                if not text or text.startswith("#"):
+                    continue
+                parts = [x for x in re.split(r"[,;\t ]+", text) if x]
+                try:
+                    return [float(x) for x in parts]
+                except ValueError:
+                    continue  # a header line
+    except OSError as exc:
+        raise InputError(f"cannot read {path.name}: {exc.strerror or exc}") from None
+    raise InputError(f"{path.name} holds no numeric row to take the time from")
 
 
 def _clock_date(files: list[Path], start: str | None) -> tuple[float, str]:
@@ -203,46 +207,84 @@ def _clock_date(files: list[Path], start: str | None) -> tuple[float, str]:
     return 86400.0 * math.floor(t / 86400.0), why
 
 
-def _column_times(files: list[Path], spec: str, start: str | None) -> tuple[list[float], str]:
+# the clock fields of --time-column H,M,S[,US] and their ranges (a leap second allowed)
+_CLOCK_FIELDS = (("hour", 0.0, 24.0), ("minute", 0.0, 60.0), ("second", 0.0, 61.0), ("microsecond", 0.0, 1e6))
+
+
+def _row_time(f: Path, idx: list[int], spec: str) -> list[float]:
+    """The time fields ``idx`` of the file's first numeric row, checked (one line naming the problem)."""
+    if f.suffix.lower() not in (".csv", ".txt"):
+        raise InputError(f"--time-column reads CSV files; {f.name} is not one")
+    row = _first_row(f)
+    if max(idx) >= len(row):
+        raise InputError(f"--time-column {spec} needs {max(idx) + 1} columns; the first row of {f.name} has "
+                         f"{len(row)}")
+    values = [row[i] for i in idx]
+    for i, v in zip(idx, values, strict=True):
+        if not math.isfinite(v):
+            raise InputError(f"{f.name}: time column {i} holds {v!r}, not a finite number")
+    if len(idx) > 1:
+        for (name, lo, hi), i, v in zip(_CLOCK_FIELDS, idx, values, strict=False):
+            if not lo <= v < hi:
+                raise InputError(f"{f.name}: column {i} holds {v:g}, not a clock {name} ({lo:g} to below {hi:g}); "
+                                 f"check --time-column {spec}")
+    return values
+
+
+def _column_times(files: list[Path], spec: str, start: str | None, on_error: OnError | None
+                  ) -> tuple[list[Path], list[float], str]:
     """``--time-column N`` (seconds: Unix time above 10⁹, else counted from ``--start``) or ``H,M,S[,US]`` (a
-    clock: on the date of :func:`_clock_date`, a new day when the clock goes back)."""
+    clock: on the date of :func:`_clock_date`, a new day when the clock goes back).  A file whose time cannot be
+    read is reported through ``on_error`` and left out (without it, the first such file stops the replay); when
+    no file gives a time, :class:`InputError` names the first reason."""
     try:
         idx = [int(c.strip()) for c in spec.split(",")]
     except ValueError:
         idx = []
     if len(idx) not in (1, 3, 4) or min(idx) < 0:
         raise InputError(f"--time-column {spec!r} must be N or H,M,S[,US] (0-based columns)")
-    rows = []
+    kept: list[Path] = []
+    rows: list[list[float]] = []
+    first_problem = ""
     for f in files:
-        if f.suffix.lower() not in (".csv", ".txt"):
-            raise InputError(f"--time-column reads CSV files; {f.name} is not one")
-        row = _first_row(f)
-        if max(idx) >= len(row):
-            raise InputError(f"{f.name}: --time-column {spec} needs {max(idx) + 1} columns, the file has {len(row)}")
-        rows.append(row)
+        try:
+            rows.append(_row_time(f, idx, spec))
+        except InputError as exc:
+            if on_error is None:
+                raise
+            first_problem = first_problem or str(exc)
+            on_error(f, str(exc))
+            continue
+        kept.append(f)
+    if not kept:
+        raise InputError(f"none of the {len(files)} files gives a time in --time-column {spec} (the first: "
+                         f"{first_problem})")
     if len(idx) == 1:
         base = 0.0 if start is None else _start(start)
-        return [v if v > 1e9 else base + v for v in (row[idx[0]] for row in rows)], f"column {spec} of each file"
-    midnight, why = _clock_date(files, start)
+        return kept, [v if v > 1e9 else base + v for v in (row[0] for row in rows)], f"column {spec} of each file"
+    midnight, why = _clock_date(kept, start)
     out: list[float] = []
     day = 0.0
     prev = -math.inf
     for row in rows:
-        clock = row[idx[0]] * 3600 + row[idx[1]] * 60 + row[idx[2]] + (row[idx[3]] * 1e-6 if len(idx) == 4 else 0.0)
+        clock = row[0] * 3600 + row[1] * 60 + row[2] + (row[3] * 1e-6 if len(idx) == 4 else 0.0)
         if clock + day < prev - 12 * 3600:  # the clock went back: the next day
             day += 86400.0
         prev = clock + day
         out.append(midnight + prev)
     date = datetime.fromtimestamp(midnight, UTC).strftime("%Y-%m-%d")
-    return out, f"the clock in columns {spec} of each file, from {date} (the date of {why})"
+    return kept, out, f"the clock in columns {spec} of each file, from {date} (the date of {why})"
 
 
 def snapshot_times(files: list[Path], *, time_column: str | None = None, interval_s: float | None = None,
-                   from_name: bool = False, mtime: bool = False, start: str | None = None
-                   ) -> tuple[list[float], str]:
-    """Each file's time in seconds since the Unix epoch, and a phrase saying where the times came from."""
+                   from_name: bool = False, mtime: bool = False, start: str | None = None,
+                   on_error: OnError | None = None) -> tuple[list[Path], list[float], str]:
+    """The files that carry a time, each one's time in seconds since the Unix epoch, and a phrase saying where the
+    times came from.  With ``--time-column`` a file whose first row gives no time is reported through
+    ``on_error(path, message)`` and left out (without ``on_error`` it stops the replay with :class:`InputError`);
+    the other ways give every file a time or stop."""
     if time_column is not None:
-        return _column_times(files, time_column, start)
+        return _column_times(files, time_column, start, on_error)
     if interval_s is not None:
         if not (math.isfinite(interval_s) and interval_s > 0):
             raise InputError(f"--interval {interval_s!r} must be > 0 seconds")
@@ -250,15 +292,15 @@ def snapshot_times(files: list[Path], *, time_column: str | None = None, interva
         nums = [re.findall(r"\d+", f.stem) for f in files]
         if all(nums):
             first = int(nums[0][-1])
-            return [base + (int(n[-1]) - first) * interval_s for n in nums], \
+            return files, [base + (int(n[-1]) - first) * interval_s for n in nums], \
                 f"the number in each file name × {interval_s:g} s"
-        return [base + i * interval_s for i in range(len(files))], f"file name order × {interval_s:g} s"
+        return files, [base + i * interval_s for i in range(len(files))], f"file name order × {interval_s:g} s"
     named = [_name_time(f.name) for f in files]
     if from_name or (not mtime and all(t is not None for t in named)):
         missing = [f.name for f, t in zip(files, named, strict=True) if t is None]
         if missing:
             raise InputError(f"no date and time in the file name {missing[0]!r} (e.g. 20261201T223204Z)")
-        return [float(t) for t in named if t is not None], "the date and time in each file name"
+        return files, [float(t) for t in named if t is not None], "the date and time in each file name"
     stamps = [f.stat().st_mtime for f in files]
     if not mtime and len(files) >= 3:
         gaps = np.diff(np.sort(np.asarray(stamps)))
@@ -268,7 +310,7 @@ def snapshot_times(files: list[Path], *, time_column: str | None = None, interva
                 f"within {max(stamps) - min(stamps):.3g} s (copied, not recorded, it seems): give the times with "
                 "--time-column N|H,M,S[,US] (columns of each CSV file), --interval S (the numbers in the names), "
                 "--time-from-name, or --mtime to use the modification times anyway")
-    return stamps, "file modification times"
+    return files, stamps, "file modification times"
 
 
 # --------------------------------------------------------------------------------------------- options
@@ -383,9 +425,59 @@ class _Snap:
     x_g: np.ndarray
     fs_hz: float
     rpm: float | None
+    text: bool = False  # read from a text table (its samples are rows)
+    note: str = ""  # a cut last line dropped by the reader
+    unterminated: bool = False  # a text table whose last line has no line break
+    written: int = 0  # the samples (rows) the file holds, a cut last line the reader dropped included
+
+    def __post_init__(self) -> None:
+        if not self.written:
+            self.written = self.x_g.size + (1 if self.note else 0)
+
+
+@dataclass(frozen=True)
+class _RunShape:
+    """What the run's snapshots look like — decided on the first snapshots read, in time order — so that a cut or
+    partial snapshot is told apart: the most common length, and whether its text files end with a line break."""
+
+    n_samples: int
+    terminated: bool
+
+
+def _run_shape(snaps: list[_Snap]) -> _RunShape:
+    counts: dict[int, int] = {}
+    for s in snaps:
+        counts[s.written] = counts.get(s.written, 0) + 1
+    n = max(counts, key=lambda k: (counts[k], k))  # the most common length; of equals the longer (cuts shorten)
+    text = [s for s in snaps if s.text]
+    return _RunShape(n, 2 * sum(not s.unterminated for s in text) > len(text))
+
+
+def _check_shape(snaps: list[_Snap], shape: _RunShape, on_error: OnError) -> list[_Snap]:
+    """The snapshots of the run's length; the others are reported and skipped, never mixed into the trend.  A text
+    snapshot whose last line was cut (dropped by the reader) or ends without the line break the run's other files
+    end with (its last value may be cut) keeps its other rows, with a note."""
+    kept: list[_Snap] = []
+    for s in snaps:
+        rows = "rows" if s.text else "samples"
+        if s.written != shape.n_samples:
+            cut = ", its last line cut short" if s.note else ""
+            on_error(s.path, f"{s.written} {rows} where the run's snapshots have {shape.n_samples} (the most "
+                             f"common length){cut}: a cut or partial snapshot is not mixed into the trend; replay "
+                             "snapshots of another length apart (a glob pattern)")
+            continue
+        if s.note:
+            on_error(None, f"{s.path.name}: {s.note} ({s.x_g.size} of {s.written} rows analysed)")
+        elif s.text and s.unterminated and shape.terminated and s.x_g.size > 1:
+            s.x_g = s.x_g[:-1]
+            on_error(None, f"{s.path.name}: ends without a line break, unlike the run's other snapshots: its last "
+                           f"line may be cut; dropped ({s.x_g.size} of {s.written} rows analysed)")
+        kept.append(s)
+    return kept
 
 
 def _read(index: int, path: Path, t_s: float, o: ReplayOptions) -> _Snap:
+    text = path.suffix.lower() in (".csv", ".txt") or path.suffix.lower() not in FORMATS
     if path.suffix.lower() in FORMATS:
         wave = read_waveform(path, var=o.var, channel=o.channel, full_scale=o.full_scale)
     else:  # a time-named text table
@@ -393,7 +485,8 @@ def _read(index: int, path: Path, t_s: float, o: ReplayOptions) -> _Snap:
     fs = _file_rate(wave, path, o.fs_hz, path.name)
     _check_samples(path.name, wave.samples)
     rpm = o.rpm if o.rpm is not None else wave.rpm
-    return _Snap(index, path, t_s, to_g(wave.samples, o.unit), fs, rpm)
+    return _Snap(index, path, t_s, to_g(wave.samples, o.unit), fs, rpm, text=text, note=wave.note,
+                 unterminated=wave.unterminated)
 
 
 def _read_batch(indices: list[int], files: list[Path], times: list[float], o: ReplayOptions,
@@ -463,9 +556,14 @@ def replay(files: list[Path], times: list[float], o: ReplayOptions, history_path
     baselines: dict[str, tuple[float, float, int]] = {}
     reader: HistoryReader | None = None
     last_docs: tuple[int, dict[str, Any]] | None = None
+    shape: _RunShape | None = None
     try:
         for b0 in range(0, len(order), _BATCH):
             snaps = _read_batch(order[b0:b0 + _BATCH], files, times, o, notify)
+            if shape is None and snaps:
+                shape = _run_shape(snaps)
+            if shape is not None:
+                snaps = _check_shape(snaps, shape, notify)
             results = _analyze_batch(snaps, o, plans, noted, notify)
             for s in snaps:
                 ind = results.get(s.index)
@@ -606,11 +704,6 @@ def _run(args: argparse.Namespace) -> int:
     for note in listing:
         print(f"edgevib replay: note: {note}", file=sys.stderr)
     interval = None if args.interval is None else _number("--interval", args.interval)
-    times, how = snapshot_times(files, time_column=args.time_column, interval_s=interval,
-                                from_name=args.time_from_name, mtime=args.mtime, start=args.start)
-    if args.point is None:
-        src = Path(args.source)
-        o.point = re.sub(r"[^A-Za-z0-9_-]", "_", (src if src.is_dir() else src.parent).resolve().name) or "replay"
     skipped = 0
 
     def on_error(path: Path | None, message: str) -> None:
@@ -620,6 +713,14 @@ def _run(args: argparse.Namespace) -> int:
             print(f"edgevib replay: skipped {path.name}: {message}", file=sys.stderr)
         else:
             print(f"edgevib replay: note: {message}", file=sys.stderr)
+
+    listed = len(files)
+    files, times, how = snapshot_times(files, time_column=args.time_column, interval_s=interval,
+                                       from_name=args.time_from_name, mtime=args.mtime, start=args.start,
+                                       on_error=on_error)
+    if args.point is None:
+        src = Path(args.source)
+        o.point = re.sub(r"[^A-Za-z0-9_-]", "_", (src if src.is_dir() else src.parent).resolve().name) or "replay"
 
     tmp = None
     if args.history:
@@ -632,7 +733,7 @@ def _run(args: argparse.Namespace) -> int:
     if not args.json:
         print(f"replaying {len(files)} snapshots of {args.source} as point {o.point}; times from {how}",
               file=sys.stderr)
-    progress = _Progress(len(files))
+    progress = _Progress(listed)
     last: dict[str, Any] | None = None
     done = 0
     try:
@@ -650,7 +751,7 @@ def _run(args: argparse.Namespace) -> int:
             progress.update(done + skipped)
         progress.close()
         if done == 0:
-            raise InputError(f"none of the {len(files)} files could be replayed")
+            raise InputError(f"none of the {listed} files could be replayed")
         if not args.json and last is not None:
             _summary(last, history, o, done, skipped)
         if report is not None and last is not None and frame is not None:

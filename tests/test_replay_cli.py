@@ -319,3 +319,95 @@ def test_trend_finds_the_history_file_the_configuration_names(tmp_path: Path) ->
     cfg.write_text(text.replace('file = "history.sqlite"', 'file = "severity/history-ql.sqlite"', 1))
     args = argparse.Namespace(history=None, config=str(cfg), state_dir=None)
     assert _history_path(args) == tmp_path / "severity" / "history-ql.sqlite"  # [history] file, under state_dir
+
+
+def _femto_copy(folder: Path, count: int) -> list[Path]:
+    files = sorted(FEMTO.glob("acc_*.csv"))[:count]
+    folder.mkdir(parents=True, exist_ok=True)
+    for f in files:
+        (folder / f.name).write_bytes(f.read_bytes())
+    return [folder / f.name for f in files]
+
+
+def test_a_file_without_a_time_in_its_columns_is_skipped_and_counted(tmp_path: Path,
+                                                                     capsys: pytest.CaptureFixture[str]) -> None:
+    # FEMTO snapshots carry hour, minute, second, microsecond in columns 0–3 (datasets README).  Files that give no
+    # time there — empty, a header only, text in the clock columns, too few columns, a clock field out of range,
+    # not a CSV file — are named on stderr, skipped and counted; the good ones are replayed.
+    good = _femto_copy(tmp_path, 6)
+    first = good[0].read_text().splitlines()
+    (tmp_path / "acc_00002.csv").write_text("")
+    (tmp_path / "acc_00003.csv").write_text("hour,minute,second,microsecond,horizontal,vertical\n")
+    (tmp_path / "acc_00004.csv").write_text("".join(f"08h,47m,5s,{ln.split(',', 3)[3]}\n" for ln in first))
+    (tmp_path / "acc_00005.csv").write_text("".join(",".join(ln.split(",")[4:]) + "\n" for ln in first))
+    (tmp_path / "acc_00006.csv").write_text("".join("31," + ln.split(",", 1)[1] + "\n" for ln in first))
+    assert main(["replay", str(tmp_path), *FEMTO_ARGS, "--time-column", "0,1,2,3", "--start", "2012-03-01",
+                 "--json"]) == 0
+    captured = capsys.readouterr()
+    rows = [json.loads(line) for line in captured.out.splitlines()]
+    assert [r["file"] for r in rows] == [f.name for f in good]
+    assert rows[0]["time"].startswith("2012-03-01T08:47:05.")  # the first snapshot's own clock (datasets README)
+    skipped = [ln for ln in captured.err.splitlines() if ln.startswith("edgevib replay: skipped ")]
+    assert [ln.split()[3].rstrip(":") for ln in skipped] == [f"acc_0000{k}.csv" for k in range(2, 7)]
+    assert "acc_00002.csv holds no numeric row" in skipped[0] and "acc_00003.csv holds no numeric row" in skipped[1]
+    assert "acc_00004.csv holds no numeric row" in skipped[2]
+    assert "needs 4 columns; the first row of acc_00005.csv has 2" in skipped[3]
+    assert "column 0 holds 31, not a clock hour" in skipped[4]
+    assert main(["replay", str(tmp_path), *FEMTO_ARGS, "--time-column", "0,1,2,3", "--start", "2012-03-01"]) == 0
+    assert "6 snapshots replayed, 5 skipped" in capsys.readouterr().out
+    # a glob that also takes a file of another format: that one is named and skipped
+    np.save(tmp_path / "acc_00007.npy", np.loadtxt(good[0], delimiter=",")[:, 4])
+    assert main(["replay", str(tmp_path / "acc_0000[17].*"), *FEMTO_ARGS, "--time-column", "0,1,2,3",
+                 "--json"]) == 0
+    captured = capsys.readouterr()
+    assert [json.loads(line)["file"] for line in captured.out.splitlines()] == ["acc_00001.csv"]
+    assert "skipped acc_00007.npy: --time-column reads CSV files; acc_00007.npy is not one" in captured.err
+    # a column of seconds that is not a finite number: skipped too
+    (tmp_path / "acc_00002.csv").write_text("".join("nan," + ln.split(",", 1)[1] + "\n" for ln in first))
+    assert main(["replay", str(tmp_path / "acc_0000[12].csv"), *FEMTO_ARGS, "--time-column", "0", "--json"]) == 0
+    captured = capsys.readouterr()
+    assert [json.loads(line)["file"] for line in captured.out.splitlines()] == ["acc_00001.csv"]
+    assert "acc_00002.csv: time column 0 holds nan, not a finite number" in captured.err
+    # no file gives a time: one clear error, exit 2
+    assert main(["replay", str(tmp_path / "acc_0000[2-5].csv"), *FEMTO_ARGS, "--time-column", "0,1,2,3"]) == 2
+    err = capsys.readouterr().err.splitlines()
+    assert err[-1].startswith("edgevib replay: none of the 4 files gives a time in --time-column 0,1,2,3 (the "
+                              "first: acc_00002.csv: time column 0 holds nan")
+
+
+def test_cut_and_partial_snapshots_are_never_mixed_in_silently(tmp_path: Path,
+                                                               capsys: pytest.CaptureFixture[str]) -> None:
+    # Every FEMTO snapshot holds 2560 rows (0.1 s at 25.6 kHz, datasets README) and ends with a line break.  A copy
+    # or a recording cut short: a file of half the rows is reported and skipped; a last line cut in the middle
+    # (no line break, fewer fields) or inside its last number (no line break) is dropped with a note and the
+    # other 2559 rows are analysed — the peak is the file's own, from numpy on those rows.
+    files = _femto_copy(tmp_path, 8)
+    text = {f.name: f.read_text() for f in files}
+    assert all(t.endswith("\n") and t.count("\n") == 2560 for t in text.values())
+    half = files[2]
+    half.write_text("".join(text[half.name].splitlines(keepends=True)[:1280]))
+    mid = files[4]
+    mid.write_text(text[mid.name][: text[mid.name].rstrip("\n").rfind("\n") + 12])  # "8,52,25,2.9"
+    last = files[7]  # the latest snapshot of the run: the one a logger stopped by a failure would cut
+    last.write_text(text[last.name][:-3])  # "…,-0.5" of "…,-0.508"
+    assert main(["replay", str(tmp_path), *FEMTO_ARGS, "--time-column", "0,1,2,3", "--start", "2012-03-01",
+                 "--json"]) == 0
+    captured = capsys.readouterr()
+    rows = {r["file"]: r for r in (json.loads(line) for line in captured.out.splitlines())}
+    assert half.name not in rows and len(rows) == 7
+    assert (f"skipped {half.name}: 1280 rows where the run's snapshots have 2560 (the most common length)"
+            in captured.err)
+    assert f"note: {mid.name}: its last line (line 2560) is cut short: 4 of 6 fields and no line break; dropped " \
+           "(2559 of 2560 rows analysed)" in captured.err
+    assert f"note: {last.name}: ends without a line break, unlike the run's other snapshots: its last line may " \
+           "be cut; dropped (2559 of 2560 rows analysed)" in captured.err
+    for f in (mid, last):
+        x = np.loadtxt(FEMTO / f.name, delimiter=",")[:2559, 4]
+        assert rows[f.name]["indicators"]["acceleration_peak_g"] == pytest.approx(np.abs(x - x.mean()).max(),
+                                                                                  rel=1e-4)
+    whole = np.loadtxt(FEMTO / files[0].name, delimiter=",")[:, 4]
+    assert rows[files[0].name]["indicators"]["acceleration_peak_g"] == pytest.approx(
+        np.abs(whole - whole.mean()).max(), rel=1e-4)
+    # in the text summary the cut-short file counts as skipped
+    assert main(["replay", str(tmp_path), *FEMTO_ARGS, "--time-column", "0,1,2,3", "--start", "2012-03-01"]) == 0
+    assert "7 snapshots replayed, 1 skipped" in capsys.readouterr().out
