@@ -28,8 +28,11 @@ indicator with a ``--limit NAME=VALUE``, velocity r.m.s. when ``--group``/``--su
 ``indicators``, ``limits`` (per limit: ``indicator``, ``label``, ``value``, ``status``, ``eta_s``, ``eta_low_s``,
 ``eta_high_s`` — null when not rising), ``trend`` (per indicator: ``status``, ``need``, ``level``,
 ``slope_per_day``, ``rising``, ``model``, ``advice``).  Otherwise a progress bar on a terminal and, at the end,
-the chart of each trended indicator.  A file that cannot be read is reported on stderr and skipped (counted);
-exit code 2 when nothing could be replayed or an option is wrong.
+the chart of each trended indicator.  A file that cannot be read is reported on stderr and skipped (counted), and
+so is a file whose ``--time-column`` gives no time and a snapshot whose length differs from the run's most common
+one (found on the first 64 snapshots in time order): a cut or partial snapshot is never mixed into the trend.  A
+text snapshot whose last line is cut (no line break at its end, unlike the run's other files) loses that line,
+with a note.  Exit code 2 when nothing could be replayed or an option is wrong.
 """
 
 from __future__ import annotations
