@@ -230,6 +230,16 @@ def render_chart(series: HistorySeries, doc: dict[str, Any] | None, width: int =
     return "\n".join(lines)
 
 
+def _crossing_date(lim: dict[str, Any]) -> str:
+    """The projected crossing's date (RFC 3339 ``date`` of the limit): the day, and within two days the time of
+    day too (UTC), where a date alone says little."""
+    date = lim.get("date") or ""
+    eta = lim.get("eta_s")
+    if eta is not None and eta < 2 * 86400.0 and len(date) >= 16:
+        return f"{date[:10]} {date[11:16]} UTC"
+    return date[:10]
+
+
 def _summary(doc: dict[str, Any], width: int) -> list[str]:
     unit = _unit(doc.get("unit", ""))
 
@@ -256,7 +266,7 @@ def _summary(doc: dict[str, Any], width: int) -> list[str]:
         head = f"  {lim['label']:<8} {q(lim['value']):>12}"
         if st == "rising":
             text = (f"{head}: in {_fmt_eta(lim['eta_s'])} ({_fmt_eta(lim['eta_low_s'])} to "
-                    f"{_fmt_eta(lim['eta_high_s'])}, {cov} %), around {(lim.get('date') or '')[:10]}")
+                    f"{_fmt_eta(lim['eta_high_s'])}, {cov} %), around {_crossing_date(lim)}")
         else:
             text = f"{head}: {st}"
         out.append(text)

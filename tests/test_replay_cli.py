@@ -411,3 +411,29 @@ def test_cut_and_partial_snapshots_are_never_mixed_in_silently(tmp_path: Path,
     # in the text summary the cut-short file counts as skipped
     assert main(["replay", str(tmp_path), *FEMTO_ARGS, "--time-column", "0,1,2,3", "--start", "2012-03-01"]) == 0
     assert "7 snapshots replayed, 1 skipped" in capsys.readouterr().out
+
+
+def test_a_limit_crossing_within_two_days_gives_the_time_of_day(tmp_path: Path,
+                                                                capsys: pytest.CaptureFixture[str]) -> None:
+    # The last 30 FEMTO Bearing1_2 snapshots (datasets README: the test ran to 11:12:05 and ended when the
+    # amplitude exceeded 20 g): the horizontal peak rises towards the 20 g limit within minutes, so the chart's
+    # limit line gives the crossing's date and time of day (UTC), as the JSON's eta_s from the last snapshot says.
+    for f in sorted(FEMTO.glob("acc_*.csv"))[-30:]:
+        (tmp_path / f.name).write_bytes(f.read_bytes())
+    history = tmp_path / "h.sqlite"
+    assert main(["replay", str(tmp_path), *FEMTO_ARGS, "--time-column", "0,1,2,3", "--start", "2012-03-01",
+                 "--history", str(history), "--point", "B1_2", "--json"]) == 0
+    last = _lines(capsys)[-1]
+    (lim,) = last["limits"]
+    assert lim["status"] == "rising" and lim["eta_s"] < 2 * 86400.0
+    crossing = datetime.fromtimestamp(last["t_s"] + lim["eta_s"], UTC)
+    assert main(["trend", "--history", str(history), "--width", "80", "B1_2", "acceleration_peak_g"]) == 0
+    chart = " ".join(capsys.readouterr().out.split())  # the limit line, unwrapped
+    assert f"limit 20 g: in {round(lim['eta_s'] / 60)} min" in chart
+    assert f"around {crossing:%Y-%m-%d %H:%M} UTC" in chart
+    # two days or more ahead: the date alone
+    from edgevib.daemon.trendchart import _crossing_date
+
+    far = {"eta_s": 2 * 86400.0, "date": "2026-05-04T07:30:00.000Z"}
+    assert _crossing_date(far) == "2026-05-04"
+    assert _crossing_date({**far, "eta_s": 2 * 86400.0 - 60}) == "2026-05-04 07:30 UTC"
