@@ -351,14 +351,18 @@ def _spectrum_estimate(x_g: np.ndarray, fs: float, opts: _Options, est_range: tu
 
 def _given_speed_warnings(rpm_opt: float, file_rpm: float | None, rpm_source: str | None, est_hz: float | None,
                           warnings: list[str]) -> None:
-    """Warn when ``--rpm`` disagrees with the file's speed or the spectrum by more than the order tolerance."""
+    """One warning when ``--rpm`` disagrees with the file's speed, the spectrum's, or both, by more than the order
+    tolerance; it names every speed that disagrees."""
+    def off(rpm: float) -> str:
+        return f"{100 * abs(rpm_opt / rpm - 1):.1f} %"
+
+    others: list[str] = []
     if file_rpm is not None and abs(rpm_opt / file_rpm - 1) > ORDER_TOLERANCE:
-        warnings.append(f"--rpm {rpm_opt:g} differs from the file's {_speed_text(file_rpm)} "
-                        f"({rpm_source}) by {100 * abs(rpm_opt / file_rpm - 1):.1f} %, more than the "
-                        f"{100 * ORDER_TOLERANCE:g} % order tolerance; using --rpm")
+        others.append(f"the file's {_speed_text(file_rpm)} ({rpm_source}) by {off(file_rpm)}")
     if est_hz is not None and abs(rpm_opt / 60.0 / est_hz - 1) > ORDER_TOLERANCE:
-        warnings.append(f"--rpm {rpm_opt:g} differs from the {_speed_text(est_hz * 60)} the spectrum shows "
-                        f"by {100 * abs(rpm_opt / 60.0 / est_hz - 1):.1f} %, more than the "
+        others.append(f"the {_speed_text(est_hz * 60)} the spectrum shows by {off(est_hz * 60)}")
+    if others:
+        warnings.append(f"--rpm {rpm_opt:g} differs from {' and from '.join(others)}, more than the "
                         f"{100 * ORDER_TOLERANCE:g} % order tolerance; using --rpm")
 
 
