@@ -29,6 +29,7 @@ from typing import Any, NoReturn
 
 import numpy as np
 
+from edgevib.common.bands import min_frame_samples
 from edgevib.daemon.indicators import REGISTRY, Indicator, document
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.waveform_files import FORMATS, InputError, Waveform, read_waveform
@@ -381,6 +382,28 @@ def _undetermined_speed_text(est_range: tuple[float, float] | None, est_quality:
     return "not determined"
 
 
+def _known_speed_notes(lines: tuple[str, ...], speed: _Speed, fs: float, n: int) -> list[str]:
+    """The plan's notes, its speed-estimate note said as it stands when the speed is known (given or from the
+    file): the speed is used without an estimate, and the note says why the spectrum cannot check it — how many
+    samples the record has and how many checking needs — instead of asking for the speed."""
+    if speed.shaft_hz is None or speed.source not in ("given", "file"):
+        return list(lines)
+    out: list[str] = []
+    for line in lines:
+        if not line.startswith("speed estimate:"):
+            out.append(line)
+            continue
+        head = f"speed: {_speed_text(speed.shaft_hz * 60)} from {speed.source_text}, not checked against the spectrum"
+        need = min_frame_samples(fs, speed.range_hz[0], speed.range_hz[0])
+        if n < need:
+            out.append(f"{head}: the record's {n} samples ({n / fs:.3g} s at {fs:g} Hz) are too few (checking needs "
+                       f"≥ {need} samples, {need / fs:.3g} s)")
+        else:
+            why = line.removeprefix("speed estimate:").strip().removesuffix("; give the speed")
+            out.append(f"{head}: {why}")
+    return out
+
+
 def _speed(x_g: np.ndarray, fs: float, wave: Waveform, opts: _Options, orders: tuple[float, ...],
            notes: list[str], warnings: list[str]) -> _Speed:
     """Speed: given, from the file, or estimated; the estimate also checks a given speed."""
@@ -501,7 +524,7 @@ def _analyze(args: argparse.Namespace) -> tuple[dict[str, Any], list[str]]:
                      envelope_band_hz=band if opts.bearing is not None else None, bearing=opts.bearing,
                      speed_range_hz=speed.range_hz, orders=orders, order_tolerance=ORDER_TOLERANCE,
                      false_alarm=opts.alpha, partial=True)
-    notes.extend(plan_notes(plan))
+    notes.extend(_known_speed_notes(plan_notes(plan), speed, fs, n))
     ind: FrameIndicators = analyze_frames(x_g, plan, [math.nan if shaft_hz is None else shaft_hz])[0]
     if shaft_hz is None and ind.shaft_hz is not None:  # (the final plan's own estimate; kept consistent)
         shaft_hz, source, source_text = ind.shaft_hz, "estimated", "estimated from the spectrum"

@@ -196,6 +196,33 @@ def test_short_records_give_time_domain_indicators(tmp_path: Path, capsys: pytes
     assert {n.split(":")[0] for n in doc["notes"]} >= {"velocity", "orders 0.5x, 1x, 2x, 3x"}  # type: ignore[union-attr]
 
 
+def test_a_record_too_short_to_check_a_known_speed_says_so(femto_dir: Path, cwru_dir: Path, tmp_path: Path,
+                                                           capsys: pytest.CaptureFixture[str]) -> None:
+    # With the speed known the record is not asked for it: the note says the spectrum cannot check it and how
+    # many samples the record has and checking needs — 2 lines below the slowest speed of the ±3 % order tolerance
+    # (edgevib.common.bands.min_frame_samples: ⌈2·fs / (0.97·shaft)⌉, common practice for resolving a line).
+    rows = np.loadtxt(femto_dir / "acc_00001.csv", delimiter=",")[:200, 4]  # 200 of 2560 rows (datasets README)
+    path = tmp_path / "femto_200.npy"
+    np.save(path, rows)
+    doc, _ = analyze_json([str(path), "--fs", "25600", "--rpm", "1800"], capsys)
+    need = math.ceil(2 * 25600 / (0.97 * 30.0))
+    assert need == 1760
+    speed = [n for n in doc["notes"] if n.startswith("speed")]  # type: ignore[union-attr]
+    assert speed == ["speed: 1800 r/min from option --rpm, not checked against the spectrum: the record's 200 "
+                     "samples (0.00781 s at 25600 Hz) are too few (checking needs ≥ 1760 samples, 0.0688 s)"]
+    assert not any("give" in n for n in doc["notes"])  # type: ignore[union-attr]
+    # the file's own speed (CWRU 130.mat stores X130RPM = 1796; 12 kHz, datasets README), 600 samples kept
+    mat = scipy.io.loadmat(cwru_dir / "cwru_12k_de_outer_007_0hp.mat")
+    short = tmp_path / "x130_short.mat"
+    scipy.io.savemat(short, {"X130_DE_time": mat["X130_DE_time"][:600], "X130RPM": mat["X130RPM"]})
+    doc, _ = analyze_json([str(short), "--fs", "12000"], capsys)
+    need = math.ceil(2 * 12000 / (0.97 * 1796 / 60))
+    speed = [n for n in doc["notes"] if n.startswith("speed")]  # type: ignore[union-attr]
+    assert speed == [f"speed: 1796 r/min from file variable X130RPM, not checked against the spectrum: the "
+                     f"record's 600 samples (0.05 s at 12000 Hz) are too few (checking needs ≥ {need} samples, "
+                     f"{need / 12000:.3g} s)"]
+
+
 # ------------------------------------------------------------------------------------------- speed and verdicts
 
 
