@@ -410,6 +410,10 @@ def _speed(x_g: np.ndarray, fs: float, wave: Waveform, opts: _Options, orders: t
     n = int(x_g.size)
     rpm_opt = opts.rpm
     file_rpm = wave.rpm
+    if wave.rpm_conflict:  # the file's speed variables disagree: no choice is made for the user
+        if rpm_opt is None:
+            raise InputError(f"{wave.rpm_conflict}: give the speed with --rpm R or choose one with --rpm-var NAME")
+        warnings.append(f"{wave.rpm_conflict}; using --rpm {rpm_opt:g}")
     if file_rpm is not None and (not math.isfinite(file_rpm) or file_rpm <= 0):
         if rpm_opt is None:
             raise InputError(f"{wave.rpm_source} holds an impossible speed {file_rpm:g} r/min; give --rpm")

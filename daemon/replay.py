@@ -487,6 +487,8 @@ def _read(index: int, path: Path, t_s: float, o: ReplayOptions) -> _Snap:
         wave = read_text_waveform(path, column=None if o.channel is None else str(o.channel))
     fs = _file_rate(wave, path, o.fs_hz, path.name)
     _check_samples(path.name, wave.samples)
+    if wave.rpm_conflict and o.rpm is None:
+        raise InputError(f"{wave.rpm_conflict}: give the speed with --rpm R")
     rpm = o.rpm if o.rpm is not None else wave.rpm
     return _Snap(index, path, t_s, to_g(wave.samples, o.unit), fs, rpm, text=text, note=wave.note,
                  unterminated=wave.unterminated)

@@ -16,8 +16,10 @@ they came from); every problem raises :class:`InputError` with one line naming i
   else by convention from a scalar named ``fs``, ``Fs``, ``FS``, ``fs_hz``, ``sr``, ``sample_rate``,
   ``sampling_rate`` or ``samplerate`` beside the signal (in the same struct), in a struct above it, or at the top
   level.  The shaft speed
-  comes from ``rpm_var`` (r/min) or ``shaft_hz_var`` (Hz), or else by convention from the one scalar whose name
-  ends in ``RPM``/``rpm`` found the same way.  MATLAB v7.3 (HDF5) files are refused with a hint.
+  comes from ``rpm_var`` (r/min) or ``shaft_hz_var`` (Hz), or else by convention from the scalar whose name ends
+  in ``RPM``/``rpm`` found the same way; of several in one place, the first by name when they agree within
+  0.1 % (the source names the others), none when they disagree (``rpm_conflict`` names them, and the caller asks
+  for the speed).  MATLAB v7.3 (HDF5) files are refused with a hint.
 """
 
 from __future__ import annotations
@@ -60,6 +62,7 @@ class Waveform:
     warning: str = ""  # one line on a doubtful choice the caller made, e.g. a monotonic column chosen explicitly
     note: str = ""  # one line on what was left out of the file, e.g. a cut last line of a CSV file
     unterminated: bool = False  # a text file whose last line has no line break (it may be cut short)
+    rpm_conflict: str = ""  # speed variables of the file that disagree (then ``rpm`` is None): one line naming them
 
 
 # --------------------------------------------------------------------------------------------- shared
@@ -377,15 +380,17 @@ def _read_mat(path: Path, var: str | None, channel: int | None, fs_var: str | No
     fs, fs_source = given("--fs-var", fs_var) if fs_var is not None else _mat_found(scopes, _is_fs_name)
     if rpm_var is not None and shaft_hz_var is not None:
         raise InputError("--rpm-var and --shaft-hz-var both give the speed: choose one")
+    conflict = ""
     if rpm_var is not None:
         rpm, rpm_source = given("--rpm-var", rpm_var)
     elif shaft_hz_var is not None:
         rpm = 60.0 * _scalar(_resolve(variables, shaft_hz_var, path, listing), f"--shaft-hz-var {shaft_hz_var}")
         rpm_source = f"file variable {shaft_hz_var} (Hz)"
     else:
-        rpm, rpm_source = _mat_found(scopes, lambda k: k.upper().endswith("RPM"), unique=True)
+        rpm, rpm_source, conflict = _mat_speed(scopes, path)
     source = f"variable {name}" + ("" if which.endswith("of 1") else f", {which}")
-    return Waveform(x.astype(np.float64), fs, rpm=rpm, source=source, rpm_source=rpm_source, fs_source=fs_source)
+    return Waveform(x.astype(np.float64), fs, rpm=rpm, source=source, rpm_source=rpm_source, fs_source=fs_source,
+                    rpm_conflict=conflict)
 
 
 def _mat_signal(path: Path, variables: dict[str, Any], leaves: list[tuple[str, Any]], var: str | None,
@@ -409,18 +414,44 @@ def _is_fs_name(name: str) -> bool:
     return name in FS_NAMES
 
 
-def _mat_found(scopes: list[tuple[str, dict[str, Any]]], wanted: Callable[[str], bool], unique: bool = False,
-               ) -> tuple[float | None, str]:
-    """A numeric scalar beside the signal whose name is ``wanted`` (nearest scope first; with ``unique``, a scope
-    with several such names is passed over): its value and where it came from, else ``(None, "")``."""
+def _scalar_hits(scope: dict[str, Any], wanted: Callable[[str], bool]) -> list[str]:
+    return [k for k, v in scope.items() if wanted(k) and _is_numeric(_unwrap(v)) and _unwrap(v).size == 1]
+
+
+def _mat_found(scopes: list[tuple[str, dict[str, Any]]], wanted: Callable[[str], bool]) -> tuple[float | None, str]:
+    """A numeric scalar beside the signal whose name is ``wanted`` (nearest scope first; of several, the first of
+    :data:`FS_NAMES`): its value and where it came from, else ``(None, "")``."""
     for prefix, scope in scopes:
-        hits = [k for k, v in scope.items() if wanted(k) and _is_numeric(_unwrap(v)) and _unwrap(v).size == 1]
-        if unique and len(hits) != 1:
-            continue
+        hits = _scalar_hits(scope, wanted)
         if hits:
-            hit = min(hits, key=FS_NAMES.index) if not unique else hits[0]
+            hit = min(hits, key=FS_NAMES.index)
             return _scalar(scope[hit], f"{prefix}{hit}"), f"file variable {prefix}{hit}"
     return None, ""
+
+
+RPM_AGREE = 1e-3  # speed variables within 0.1 % of each other agree (a stored speed rounded to 1 r/min in 1000)
+
+
+def _mat_speed(scopes: list[tuple[str, dict[str, Any]]], path: Path) -> tuple[float | None, str, str]:
+    """The shaft speed (r/min) from the scalars named ``…RPM``/``…rpm`` of the nearest scope that has any: its
+    value, where it came from, and — when that scope holds several that disagree — a line naming them (the speed
+    is then None: the caller asks for ``--rpm``).  Several that agree give the first in name order, the source
+    naming the others."""
+    for prefix, scope in scopes:
+        hits = sorted(_scalar_hits(scope, lambda k: k.upper().endswith("RPM")))
+        if not hits:
+            continue
+        values = [_scalar(scope[k], f"{prefix}{k}") for k in hits]
+        named = [f"{prefix}{k} ({v:g} r/min)" for k, v in zip(hits, values, strict=True)]
+        if len(hits) == 1:
+            return values[0], f"file variable {prefix}{hits[0]}", ""
+        if max(values) - min(values) <= RPM_AGREE * max(abs(v) for v in values):
+            others = ", ".join(named[1:])
+            return values[0], (f"file variable {prefix}{hits[0]}; {others} "
+                               f"agree{'s' if len(hits) == 2 else ''} within {100 * RPM_AGREE:g} %"), ""
+        return None, "", (f"{path.name} holds {len(hits)} speed variables that disagree: {', '.join(named[:-1])} "
+                          f"and {named[-1]}")
+    return None, "", ""
 
 
 # --------------------------------------------------------------------------------------------- entry point

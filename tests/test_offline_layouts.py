@@ -226,6 +226,46 @@ def test_a_record_too_short_to_check_a_known_speed_says_so(femto_dir: Path, cwru
 # ------------------------------------------------------------------------------------------- speed and verdicts
 
 
+def test_two_speed_variables_in_a_mat_file(cwru_dir: Path, tmp_path: Path,
+                                            capsys: pytest.CaptureFixture[str]) -> None:
+    # CWRU 130.mat (12 kHz, outer race 0.007 in, 0 hp) stores X130RPM = 1796; the data set's table gives 1797 for
+    # 0 hp and 131.mat (1 hp) stores 1773 (datasets README, trap 6).  A copy holding a second speed variable:
+    # 1797 agrees with 1796 within 0.1 % (the source says which was used and that the other agrees); 1773 does
+    # not (1.3 % off): no silent choice — the speed is asked for, or --rpm is used with a warning naming both.
+    mat = scipy.io.loadmat(cwru_dir / "cwru_12k_de_outer_007_0hp.mat")
+    signal = {"X130_DE_time": mat["X130_DE_time"], "X130RPM": mat["X130RPM"]}
+    agree, disagree = tmp_path / "agree.mat", tmp_path / "disagree.mat"
+    scipy.io.savemat(agree, {**signal, "X130TableRPM": 1797.0})
+    scipy.io.savemat(disagree, {**signal, "X131RPM": mat["X130RPM"] * 0 + 1773})
+    doc, err = analyze_json([str(agree), "--fs", "12000"], capsys)
+    assert doc["shaft_hz"] == pytest.approx(1796 / 60) and doc["shaft_hz_source"] == "file"
+    assert doc["shaft_source"] == "file variable X130RPM; X130TableRPM (1797 r/min) agrees within 0.1 %"
+    assert err == ""
+    code, out, err = run(["analyze", str(disagree), "--fs", "12000"], capsys)
+    assert code == 2 and out == ""
+    assert err == ("edgevib analyze: disagree.mat holds 2 speed variables that disagree: X130RPM (1796 r/min) and "
+                   "X131RPM (1773 r/min): give the speed with --rpm R or choose one with --rpm-var NAME\n")
+    doc, err = analyze_json([str(disagree), "--fs", "12000", "--rpm", "1796"], capsys)
+    assert doc["shaft_hz_source"] == "given" and doc["warnings"] == [
+        "disagree.mat holds 2 speed variables that disagree: X130RPM (1796 r/min) and X131RPM (1773 r/min); using "
+        "--rpm 1796"]
+    doc, err = analyze_json([str(disagree), "--fs", "12000", "--rpm-var", "X131RPM"], capsys)
+    assert doc["shaft_hz"] == pytest.approx(1773 / 60) and doc["shaft_source"] == "file variable X131RPM"
+    # replay: the file is skipped with the same line (it asks for --rpm), and replayed with it
+    folder = tmp_path / "snaps"
+    folder.mkdir()
+    for k in range(3):
+        scipy.io.savemat(folder / f"x_{k}.mat", {**signal, "X131RPM": mat["X130RPM"] * 0 + 1773})
+    code, _, err = run(["replay", str(folder), "--fs", "12000", "--interval", "10", "--json"], capsys)
+    assert code == 2
+    assert "skipped x_0.mat: x_0.mat holds 2 speed variables that disagree: X130RPM (1796 r/min) and X131RPM " \
+           "(1773 r/min): give the speed with --rpm R" in err
+    code, out, _ = run(["replay", str(folder), "--fs", "12000", "--interval", "10", "--rpm", "1796", "--json"],
+                       capsys)
+    assert code == 0 and len(out.splitlines()) == 3
+
+
+
 def test_rpm_disagreeing_with_the_file_warns_in_one_line(cwru_dir: Path, tmp_path: Path,
                                                           capsys: pytest.CaptureFixture[str]) -> None:
     # the file stores 1796 r/min (datasets README, trap 6) and its spectrum agrees; --rpm 1700 is 5.3 % off
