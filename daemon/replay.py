@@ -86,7 +86,7 @@ from edgevib.daemon.trendwatch import (
     running_state,
 )
 from edgevib.daemon.waveform_files import read_text_waveform
-from edgevib.pipelines.analysis import analyze_frames, default_envelope_band, make_plan
+from edgevib.pipelines.analysis import analyze_frames, default_envelope_band, make_plan, plan_notes
 from edgevib.pipelines.conditioning import to_g
 from edgevib.pipelines.severity import iso_zone, zone_boundaries_mm_s
 from edgevib.pipelines.trend import TrendSpec
@@ -416,7 +416,19 @@ def _plan(fs: float, n: int, o: ReplayOptions, shaft_hz: float | None) -> tuple[
     band = o.band
     if band is None and o.bearing is not None:
         band = default_envelope_band(fs, None, shaft_hz_max=speed[1])
-    plan = make_plan(fs, n, velocity_band_hz=vel, envelope_band_hz=band, bearing=o.bearing, speed_range_hz=speed)
+    try:
+        plan = make_plan(fs, n, velocity_band_hz=vel, envelope_band_hz=band, bearing=o.bearing,
+                         speed_range_hz=speed)
+    except PipelineError as exc:
+        if shaft_hz is None:
+            raise
+        # a given speed too low for the record's resolution: analysed in part, as `analyze` does — the
+        # time-domain indicators and what the lines do resolve, the rest left out with the plan's reasons (the
+        # speed estimate's not among them: a given speed is used as it is)
+        plan = make_plan(fs, n, velocity_band_hz=vel, envelope_band_hz=band, bearing=o.bearing,
+                         speed_range_hz=speed, partial=True)
+        notes.append(f"{exc}; analysed in part: what the record resolves")
+        notes += [line for line in plan_notes(plan) if not line.startswith("speed estimate:")]
     return plan, notes
 
 
