@@ -19,18 +19,20 @@ Without any of them: the names' date and time when every name has one, else the 
 
 Every snapshot is analysed like ``analyze`` does with the same options (``--fs``, ``--rpm``, ``--bearing``,
 ``--column``…), judged running or stopped by the daemon's rule of thumb (velocity r.m.s. above 0.2 mm/s, a given
-speed above 60 r/min), recorded in a history file (a temporary one unless ``--history FILE``) and, for every
-trended indicator, assessed like the daemon does (:func:`edgevib.daemon.trendwatch.evaluate`).  Trended: every
-indicator with a ``--limit NAME=VALUE``, velocity r.m.s. when ``--group``/``--support`` give ISO zones, and each
-``--indicator NAME``; velocity r.m.s. when none is given.
+speed above 60 r/min; a speed recorded in the file decides alone, as a speed tag does), recorded in a history file
+(a temporary one unless ``--history FILE``) and, for every trended indicator, assessed like the daemon does
+(:func:`edgevib.daemon.trendwatch.evaluate`).  Trended: every indicator with a ``--limit NAME=VALUE``, velocity
+r.m.s. when ``--group``/``--support`` give ISO zones, and each ``--indicator NAME``; velocity r.m.s. when none is
+given.
 
 ``--json`` prints one JSON object per snapshot: ``index``, ``file``, ``time`` (RFC 3339), ``t_s``, ``state``,
 ``indicators``, ``limits`` (per limit: ``indicator``, ``label``, ``value``, ``status``, ``eta_s``, ``eta_low_s``,
 ``eta_high_s`` — null when not rising), ``trend`` (per indicator: ``status``, ``need``, ``level``,
 ``slope_per_day``, ``rising``, ``model``, ``advice``).  Otherwise a progress bar on a terminal and, at the end,
 the chart of each trended indicator.  A file that cannot be read is reported on stderr and skipped (counted), and
-so is a file whose ``--time-column`` gives no time and a snapshot whose length differs from the run's most common
-one (found on the first 64 snapshots in time order): a cut or partial snapshot is never mixed into the trend.  A
+so is a file whose ``--time-column`` gives no time and a text snapshot whose length differs from the run's most
+common one (found on the first 64 snapshots in time order): a cut or partial snapshot is never mixed into the trend
+(recordings in WAV, .mat or .npy files are taken at any length: their readers refuse a truncated file).  A
 text snapshot whose last line is cut (no line break at its end, unlike the run's other files) loses that line,
 with a note.  Exit code 2 when nothing could be replayed or an option is wrong.
 """
@@ -444,6 +446,7 @@ class _Snap:
     note: str = ""  # a cut last line dropped by the reader
     unterminated: bool = False  # a text table whose last line has no line break
     written: int = 0  # the samples (rows) the file holds, a cut last line the reader dropped included
+    rpm_measured: bool = False  # the speed was recorded in the file (not given with --rpm)
 
     def __post_init__(self) -> None:
         if not self.written:
@@ -460,22 +463,25 @@ class _RunShape:
 
 
 def _run_shape(snaps: list[_Snap]) -> _RunShape:
-    counts: dict[int, int] = {}
-    for s in snaps:
-        counts[s.written] = counts.get(s.written, 0) + 1
-    n = max(counts, key=lambda k: (counts[k], k))  # the most common length; of equals the longer (cuts shorten)
+    # only text tables can be cut silently (the binary formats' readers refuse a truncated file), and whole
+    # recordings (a folder of WAV or .mat files) may differ in length: the length rule is the text snapshots'
     text = [s for s in snaps if s.text]
+    counts: dict[int, int] = {}
+    for s in text:
+        counts[s.written] = counts.get(s.written, 0) + 1
+    n = max(counts, key=lambda k: (counts[k], k)) if counts else 0  # the most common; of equals the longer
     return _RunShape(n, 2 * sum(not s.unterminated for s in text) > len(text))
 
 
 def _check_shape(snaps: list[_Snap], shape: _RunShape, on_error: OnError) -> list[_Snap]:
-    """The snapshots of the run's length; the others are reported and skipped, never mixed into the trend.  A text
+    """The text snapshots of the run's length (binary recordings of any length); the others are reported and
+    skipped, never mixed into the trend.  A text
     snapshot whose last line was cut (dropped by the reader) or ends without the line break the run's other files
     end with (its last value may be cut) keeps its other rows, with a note."""
     kept: list[_Snap] = []
     for s in snaps:
         rows = "rows" if s.text else "samples"
-        if s.written != shape.n_samples:
+        if s.text and s.written != shape.n_samples:
             cut = ", its last line cut short" if s.note else ""
             on_error(s.path, f"{s.written} {rows} where the run's snapshots have {shape.n_samples} (the most "
                              f"common length){cut}: a cut or partial snapshot is not mixed into the trend; replay "
@@ -503,7 +509,7 @@ def _read(index: int, path: Path, t_s: float, o: ReplayOptions) -> _Snap:
         raise InputError(f"{wave.rpm_conflict}: give the speed with --rpm R")
     rpm = o.rpm if o.rpm is not None else wave.rpm
     return _Snap(index, path, t_s, to_g(wave.samples, o.unit), fs, rpm, text=text, note=wave.note,
-                 unterminated=wave.unterminated)
+                 unterminated=wave.unterminated, rpm_measured=o.rpm is None and wave.rpm is not None)
 
 
 def _read_batch(indices: list[int], files: list[Path], times: list[float], o: ReplayOptions,
@@ -588,7 +594,7 @@ def replay(files: list[Path], times: list[float], o: ReplayOptions, history_path
                     continue
                 r = _frame(s, ind, o, iso)
                 state = running_state(ind.velocity_rms_mm_s, ind.shaft_hz, ind.shaft_estimated, o.run_threshold_rpm,
-                                      o.run_threshold_velocity_mm_s)
+                                      o.run_threshold_velocity_mm_s, speed_measured=s.rpm_measured)
                 values = frame_values(r)
                 rec.record(o.point, r.t_end_ns, values, state)
                 rec.flush()

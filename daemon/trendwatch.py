@@ -135,9 +135,14 @@ def frame_values(result: FrameResult, names: Sequence[str] = HISTORY_INDICATORS)
 
 
 def running_state(velocity_rms_mm_s: float | None, shaft_hz: float | None, shaft_estimated: bool,
-                  run_threshold_rpm: float = 60.0, run_threshold_velocity_mm_s: float = 0.2) -> str:
+                  run_threshold_rpm: float = 60.0, run_threshold_velocity_mm_s: float = 0.2, *,
+                  speed_measured: bool = False) -> str:
     """``running`` or ``stopped`` by the alarm layer's rule of thumb (used where no alarm layer judges state):
-    stopped below the velocity threshold, or below the run threshold of a measured (not estimated) speed."""
+    stopped below the velocity threshold, or below the run threshold of a given (not estimated) speed.  A
+    ``speed_measured`` speed (recorded with the data, as a speed tag is) decides alone, as in the alarm layer: a
+    small or well-balanced machine can turn below the velocity threshold."""
+    if speed_measured and shaft_hz is not None and not shaft_estimated and math.isfinite(shaft_hz):
+        return "running" if shaft_hz * 60.0 >= run_threshold_rpm else "stopped"
     if velocity_rms_mm_s is None or not (math.isfinite(velocity_rms_mm_s)
                                          and velocity_rms_mm_s >= run_threshold_velocity_mm_s):
         return "stopped"

@@ -10,6 +10,7 @@ from typing import Any
 
 import numpy as np
 import pytest
+import scipy.io
 
 from edgevib.daemon.cli import main
 
@@ -458,3 +459,26 @@ def test_short_snapshots_with_a_given_speed_are_analysed_in_part(tmp_path: Path,
     assert "record of 600 samples at 25600 Hz is too short" in captured.err
     assert "analysed in part: what the record resolves" in captured.err
     assert "give the speed" not in captured.err and "skipped" not in captured.err
+
+
+def test_whole_recordings_of_different_lengths_are_all_replayed(tmp_path: Path,
+                                                                 capsys: pytest.CaptureFixture[str]) -> None:
+    # The CWRU drive-end recordings at 12 kHz differ in length (121,265 to 122,571 samples per channel; datasets
+    # README) and each records the motor speed measured during the test (1797 r/min at 0 hp, 1772 at 1 hp).  A
+    # folder of whole recordings is not a logger's fixed-length snapshots: none is skipped for its length, and the
+    # recorded speed marks each as running although the test rig's velocity r.m.s. stays below 0.2 mm/s.
+    cwru = FEMTO.parents[1] / "cwru"
+    sources = sorted(cwru.glob("cwru_12k_de_*.mat"))
+    lengths = set()
+    for k, f in enumerate(sources, start=1):
+        (tmp_path / f"rec_{k:03d}.mat").write_bytes(f.read_bytes())
+        lengths.add(next(v.shape[0] for n, v in scipy.io.loadmat(f).items() if n.endswith("_DE_time")))
+    assert len(lengths) > 1
+    assert main(["replay", str(tmp_path / "rec_*.mat"), "--fs", "12000", "--interval", "3600", "--start",
+                 "2026-01-01", "--json"]) == 0
+    captured = capsys.readouterr()
+    rows = [json.loads(line) for line in captured.out.splitlines()]
+    assert len(rows) == len(sources) and "skipped" not in captured.err
+    assert [r["state"] for r in rows] == ["running"] * len(sources)
+    assert min(r["indicators"]["velocity_rms_mm_s"] for r in rows) < 0.2
+

@@ -197,6 +197,10 @@ def test_helpers_and_configuration_errors(tmp_path: Path) -> None:
     assert running_state(1.0, 0.5, False) == "stopped"       # measured speed below 60 r/min
     assert running_state(1.0, 0.5, True) == "running"        # an estimate does not decide
     assert running_state(math.nan, None, False) == "stopped"
+    # a speed recorded with the data decides alone, as a speed tag does in the alarm layer (pipelines/machine_state)
+    assert running_state(0.1, 29.95, False, speed_measured=True) == "running"
+    assert running_state(1.0, 0.5, False, speed_measured=True) == "stopped"
+    assert running_state(0.1, 29.95, True, speed_measured=True) == "stopped"  # an estimate is never measured
     with pytest.raises(ConfigError, match=r"trend.indicators\[0\]: unknown indicator 'velocity_rms'"):
         _config(tmp_path, trend={"indicators": ["velocity_rms"]})
     with pytest.raises(ConfigError, match=r"trend.limits\[0\].point: unknown point 'P-999'"):
