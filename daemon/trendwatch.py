@@ -9,8 +9,12 @@
   an alarm limit or a ``[[trend.limits]]`` entry — is read back from the history over the trend window and judged
   by :func:`edgevib.pipelines.trend.assess`: :func:`evaluate` builds the document that the Prometheus gauges, the
   retained state message, alarm events, ``edgevib trend``, ``edgevib replay`` and the HTTP API all show.
-* Limits of a series: the alarm layer's alert and danger set points, the next ISO 20816-3 zone boundary above the
-  present level (velocity r.m.s. of machines with group and support) and user-given absolute limits.
+* Limits of a series: the alarm layer's alert and danger set points, user-given absolute limits and, for
+  velocity r.m.s. of machines with group and support, the ISO 20816-3 zone C and zone D boundaries — the next one
+  above the present level and the highest one the level is at or beyond.  Zone B is acceptable for unrestricted
+  long-term operation (ISO 20816-1/-3), so its boundary is drawn but asks for nothing.  One level estimate (the
+  trend's :attr:`~edgevib.pipelines.trend.TrendResult.level`) decides whether a limit is reached, and a series
+  without significant growth is never projected to cross one.
 * No projection while the machine is not running, or from too little history (the document says what is
   needed); the trend never raises an alarm by itself.
 
@@ -31,7 +35,7 @@ import math
 import threading
 import time
 from collections.abc import Callable, Iterable, Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -50,7 +54,7 @@ from edgevib.daemon.indicators import INDICATORS, LIMITABLE
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 from edgevib.daemon.timestamps import rfc3339_utc_s
-from edgevib.pipelines.trend import SECONDS_PER_DAY, TrendResult, TrendSpec, assess
+from edgevib.pipelines.trend import SECONDS_PER_DAY, Projection, TrendResult, TrendSpec, assess
 
 if TYPE_CHECKING:
     from prometheus_client import CollectorRegistry
@@ -76,6 +80,11 @@ HISTORY_INDICATORS: tuple[str, ...] = tuple(LIMITABLE)
 """Indicators recorded in the history (every scalar indicator an alarm limit can watch), in this order."""
 _DANGER_CLASS = ("danger", "zone D", "limit")
 _DISCLAIMER = "edgevib monitors and advises; it is not a protection system."
+# The ISO 20816-3 zone boundaries a trend is judged against, as (label, index in (A/B, B/C, C/D)): zone B is
+# acceptable for unrestricted long-term operation, zone C only for a limited period until remedial action, zone D
+# severe enough to cause damage (ISO 20816-1/-3 zone descriptions; FIELD_NOTES §1) — so entering zone B asks for
+# nothing, reaching zone C for a planned inspection and zone D for action.
+_ISO_ACTION_ZONES: tuple[tuple[str, int], ...] = (("zone C", 1), ("zone D", 2))
 _STATE_OF_REASON = {None: "running", "machine-stopped": "stopped", "start-up-grace": "starting",
                     "sensor-fault": "sensor-fault"}
 
@@ -229,12 +238,11 @@ def evaluate(reader: HistoryReader, point: str, indicator: str, *, spec: TrendSp
         labelled.append(("danger", danger))
     if user_limit is not None:
         labelled.append(("limit", user_limit))
-    level_guess = float(np.median(y[-5:])) if y.size else math.nan
-    if iso is not None and indicator == "velocity_rms_mm_s" and math.isfinite(level_guess):
-        nxt = iso_next_boundary(level_guess, iso)
-        if nxt is not None and all(abs(v - nxt[1]) > 1e-9 for _, v in labelled):
-            labelled.append(nxt)
-    res = assess(t, y, now, labelled, spec, baseline=baseline, step_threshold=step_thr)
+    zones = _ISO_ACTION_ZONES if iso is not None and indicator == "velocity_rms_mm_s" else ()
+    candidates = [(name, iso[i]) for name, i in zones] if iso is not None else []
+    res = assess(t, y, now, labelled + candidates, spec, baseline=baseline, step_threshold=step_thr)
+    if zones:
+        res = replace(res, projections=_iso_shown(res.projections, len(labelled)))
     doc.update(_result_fields(res, now, unit))
     if doc["machine_state"] not in (None, "running"):
         doc["status"] = "machine-not-running"
@@ -246,6 +254,17 @@ def evaluate(reader: HistoryReader, point: str, indicator: str, *, spec: TrendSp
     kind, text = advice(doc, plan_days=plan_days, act_days=act_days)
     doc["advice"], doc["advice_text"] = kind, text
     return doc
+
+
+def _iso_shown(projections: Sequence[Projection], n_other: int) -> tuple[Projection, ...]:
+    """The other limits' projections, then of the ISO zone boundaries (after the first ``n_other``, in rising
+    order) the next one above the present level and the highest one it is at or beyond — each judged by
+    :func:`~edgevib.pipelines.trend.assess` on its one level estimate — leaving out a boundary that an alarm set
+    point or the user limit already stands for."""
+    other, zones = list(projections[:n_other]), projections[n_other:]
+    ahead = [p for p in zones if p.status != "reached"][:1]
+    beyond = [p for p in zones if p.status == "reached"][-1:]
+    return tuple(other + [p for p in ahead + beyond if all(abs(o.limit - p.limit) > 1e-9 for o in other)])
 
 
 def _result_fields(res: TrendResult, now: float, unit: str) -> dict[str, Any]:

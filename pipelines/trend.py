@@ -252,8 +252,9 @@ class TrendResult:
     """Everything :func:`assess` found for one series.
 
     ``status`` ``"insufficient-history"``: ``need`` says how much history is needed and nothing else is set
-    beyond the counts.  ``level``: the present level (the fitted curve at ``now_s`` when rising, else the median of
-    the latest values).  ``slope_per_day`` (with ``slope_low_per_day``..``slope_high_per_day`` at ``coverage``):
+    beyond the counts.  ``level``: the present level — the fitted curve at ``now_s`` when rising, else the median
+    of the values since the last change of level (see :func:`_stationary_level`) — the one estimate every limit's
+    "reached" is judged on.  ``slope_per_day`` (with ``slope_low_per_day``..``slope_high_per_day`` at ``coverage``):
     Theil–Sen slope of the values since the onset, value units per day.  ``rising``: growth significant.
     ``outliers``: values set aside.  ``coverage``: the coverage of every interval.
     """
@@ -467,21 +468,53 @@ def _flat_loglik(y: FloatArray, positive: bool) -> float:
     return -0.5 * n * (math.log(2 * math.pi * max(rss, 1e-300) / n) + 1) - (float(np.sum(z)) if positive else 0.0)
 
 
-def _step_loglik(y: FloatArray, positive: bool, min_after: int) -> float:
-    """Best log-likelihood of "flat, a jump, flat again" (two levels, the change after any value but the first
-    two and with at least ``min_after`` values behind it), on the scale of the growth fits; -inf when the series
-    is too short for one."""
-    n = y.size
-    z = np.log(y) if positive else y
+def _best_split(z: FloatArray, min_after: int) -> tuple[float, int, int, float] | None:
+    """The split of ``z`` into two flat stretches of least residual sum of squares, the change after any value but
+    the first two and with at least ``min_after`` values behind it: (that sum, values before the change, splits
+    tried, mean after − mean before); None when the series is too short for one."""
+    n = z.size
     j = np.arange(2, n - min_after + 1)  # values before the change
     if j.size == 0:
-        return -math.inf
+        return None
     c1, c2 = np.cumsum(z), np.cumsum(z * z)
     s1, s2 = c1[j - 1], c2[j - 1]
     r1, r2 = c1[-1] - s1, c2[-1] - s2
     rss = (s2 - s1 * s1 / j) + (r2 - r1 * r1 / (n - j))
-    best = float(np.min(rss))
+    k = int(np.argmin(rss))
+    jk = int(j[k])
+    return float(rss[k]), jk, int(j.size), float(r1[k] / (n - jk) - s1[k] / jk)
+
+
+def _step_loglik(y: FloatArray, positive: bool, min_after: int) -> float:
+    """Best log-likelihood of "flat, a jump, flat again" (two levels, :func:`_best_split`), on the scale of the
+    growth fits; -inf when the series is too short for one."""
+    n = y.size
+    z = np.log(y) if positive else y
+    split = _best_split(z, min_after)
+    if split is None:
+        return -math.inf
+    best = split[0]
     return -0.5 * n * (math.log(2 * math.pi * max(best, 1e-300) / n) + 1) - (float(np.sum(z)) if positive else 0.0)
+
+
+def _stationary_level(y: FloatArray, positive: bool, min_after: int, onset: bool, alpha: float) -> float:
+    """The present level of a series without significant growth: the median of its values since the last change
+    of level, else of all of them.
+
+    Every value of a stationary stretch estimates the same level, so a long median decides "at or above a limit"
+    steadily where the median of the latest few values flips with the scatter of a level near the limit.  A change
+    of level counts when the best split into two flat stretches (:func:`_best_split`, on the scale of the growth
+    fits) has a two-sample t statistic beyond the two-sided level ``alpha`` divided by the number of splits tried
+    (Bonferroni's bound for the scan: the best of many splits of a stationary series stands out by chance far
+    more often than one split chosen in advance)."""
+    n = y.size
+    split = _best_split(np.log(y) if positive else y, min_after) if onset else None
+    if split is None:
+        return float(np.median(y))
+    rss, jk, tried, diff = split
+    se = math.sqrt(max(rss / (n - 2), 1e-300) * (1.0 / jk + 1.0 / (n - jk)))
+    t_crit = float(stats.t.ppf(1.0 - alpha / (2.0 * tried), n - 2))
+    return float(np.median(y[jk:])) if abs(diff) > t_crit * se else float(np.median(y))
 
 
 def _candidates(x: FloatArray, min_after: int, onset: bool) -> FloatArray:
@@ -605,6 +638,12 @@ def _fit(law: Law, x: FloatArray, y: FloatArray, tau: float, positive: bool, t_r
                      autocorrelation=rho, n=n, onset_s=t_ref + tau, shape=shape)
 
 
+def _without_growth(limits: Sequence[tuple[str, float]], level: float) -> tuple[Projection, ...]:
+    """Projections of a series without significant growth: each limit reached at ``level`` or not rising."""
+    return tuple(Projection(label, lim, "reached", 0.0) if level >= lim else Projection(label, lim, "not-rising")
+                 for label, lim in limits)
+
+
 def assess(t_s: npt.ArrayLike, values: npt.ArrayLike, now_s: float, limits: Sequence[tuple[str, float]] = (),
            spec: TrendSpec | None = None, *, baseline: tuple[float, float, int] | None = None,
            step_threshold: float | None = None) -> TrendResult:
@@ -643,27 +682,26 @@ def assess(t_s: npt.ArrayLike, values: npt.ArrayLike, now_s: float, limits: Sequ
     keep = hampel_inliers(zall, spec.hampel_half, spec.outlier_sigma)
     outliers = int(n - keep.sum())
     tk, yk = t[keep], y[keep]
-    tail = max(3, min(tk.size, max(5, tk.size // 10)))
-    recent_level = float(np.median(yk[-tail:]))
-
     step = None
-    if baseline is not None:
+    if baseline is not None:  # the latest values against the baseline (a change, not a level against a limit)
+        tail = max(3, min(tk.size, max(5, tk.size // 10)))
         step = step_change(yk[-tail:], baseline[0], baseline[1], baseline[2], step_threshold)
 
     t_ref = float(tk[-1])
     x = tk - t_ref
-    sel = _select(x, yk, positive, max(spec.min_points // 2, 4), spec.onset) if tk.size >= spec.min_points else None
+    min_after = max(spec.min_points // 2, 4)
+    sel = _select(x, yk, positive, min_after, spec.onset) if tk.size >= spec.min_points else None
     onset_x = None if sel is None else sel[1]
     seg = x >= (onset_x if onset_x is not None else x[0])
     ts_slope = theil_sen(tk[seg], yk[seg], spec.coverage) if seg.sum() >= 2 else (0.0, 0.0, 0.0)
-    base = TrendResult(status="ok", n=n, span_s=span, coverage=spec.coverage, level=recent_level,
+    base = TrendResult(status="ok", n=n, span_s=span, coverage=spec.coverage,
                        slope_per_day=ts_slope[0] * SECONDS_PER_DAY, slope_low_per_day=ts_slope[1] * SECONDS_PER_DAY,
                        slope_high_per_day=ts_slope[2] * SECONDS_PER_DAY, outliers=outliers, step=step,
                        onset_s=None if onset_x is None else t_ref + onset_x)
-    flat = tuple(Projection(label, lim, "reached" if recent_level >= lim else "not-rising", 0.0 if
-                            recent_level >= lim else None) for label, lim in limits)
+
     if sel is None:
-        return replace(base, projections=flat)
+        level = _stationary_level(yk, positive, min_after, spec.onset, spec.rise_alpha)
+        return replace(base, level=level, projections=_without_growth(limits, level))
     fit = _fit(sel[0], x, yk, sel[1], positive, t_ref, sel[2])
     rivals = []  # the other growth laws, kept while the evidence for the chosen one is not decisive
     if sel[2] < _DECISIVE_WEIGHT:
@@ -672,8 +710,9 @@ def assess(t_s: npt.ArrayLike, values: npt.ArrayLike, now_s: float, limits: Sequ
     xs = x[seg]
     t_crit = float(stats.t.ppf(1 - spec.rise_alpha, fit.dof))
     rising = fit.slope > 0 and fit.t_stat > t_crit
-    if not rising:
-        return replace(base, fit=fit, projections=flat)
+    if not rising:  # no significant growth since the onset: the values since then share one level
+        level = _stationary_level(yk[seg], positive, min_after, spec.onset, spec.rise_alpha)
+        return replace(base, level=level, fit=fit, projections=_without_growth(limits, level))
 
     level = fit.value_at(now_s)
     fitted_span = float(xs[-1] - xs[0])
@@ -682,7 +721,7 @@ def assess(t_s: npt.ArrayLike, values: npt.ArrayLike, now_s: float, limits: Sequ
         horizon = min(horizon, spec.horizon_s)
     projections = []
     for label, lim in limits:
-        if level >= lim or recent_level >= lim:
+        if level >= lim:  # the one level estimate of the document decides (as it does without growth)
             projections.append(Projection(label, lim, "reached", 0.0, 0.0, 0.0))
             continue
         ci = crossing_interval(fit, lim, spec.coverage)

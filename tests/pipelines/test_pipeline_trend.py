@@ -207,6 +207,44 @@ def test_stationary_series_is_not_rising_and_limits_report_so() -> None:
     assert rising <= 5
 
 
+@pytest.mark.parametrize("ratio", [0.95, 1.05])
+def test_one_level_estimate_decides_reached_for_a_stationary_series_near_a_limit(ratio: float) -> None:
+    # A stationary series 5 % below (above) a limit with 8 % log-normal scatter: the median of its latest few values
+    # lies on the other side of the limit in roughly one evaluation in ten (its standard error is about
+    # 1.25 × 8 % / √9 ≈ 3.3 %: the median's efficiency 2/π, a textbook result), yet every value of a stationary
+    # stretch estimates the same level, so "reached" must not flip with the scatter.  Each evaluation's verdict
+    # is the one the reported level gives, and no evaluation projects a crossing.
+    limit = 2.8
+    flips = 0
+    for seed in range(60):
+        rng = np.random.default_rng(900 + seed)
+        t = np.arange(0.0, 40.0, 0.25) * D
+        y = ratio * limit * np.exp(0.08 * rng.standard_normal(t.size))
+        r = assess(t, y, t[-1], [("alert", limit)], TrendSpec(min_span_s=D))
+        assert r.level is not None
+        (p,) = r.projections
+        assert (p.status == "reached") == (r.level >= limit)          # the one estimate decides
+        assert p.status in ("reached", "not-rising") or r.rising
+        assert r.rising or p.eta_s in (None, 0.0)
+        recent = float(np.median(y[-9:]))
+        flips += (recent >= limit) != (ratio >= 1.0)
+        if not r.rising:
+            assert (p.status == "reached") == (ratio >= 1.0), (seed, r.level)
+    assert flips >= 1  # the latest values alone would have flipped (the check above is not vacuous)
+
+
+def test_a_recent_jump_above_a_limit_is_reached_without_waiting_for_the_median_of_the_window() -> None:
+    # 30 days at 2.0, then 3 days (12 values) at 3.2 above the 2.8 limit, 8 % scatter: the level since the change
+    # (a two-sample t test, Bonferroni over the splits tried) is reached, while the median of the whole window is
+    # still below the limit.
+    rng = np.random.default_rng(31)
+    t = np.arange(0.0, 33.0, 0.25) * D
+    y = np.where(t < 30 * D, 2.0, 3.2) * np.exp(0.08 * rng.standard_normal(t.size))
+    r = assess(t, y, t[-1], [("alert", 2.8)], TrendSpec(min_span_s=D))
+    assert float(np.median(y)) < 2.8 and not r.rising
+    assert r.level == pytest.approx(3.2, rel=0.06) and r.projections[0].status == "reached"
+
+
 def test_reached_limit_and_dB_values() -> None:
     t = np.arange(0.0, 30.0, 0.25) * D
     y = 5.0 + 0.0 * t
