@@ -274,32 +274,31 @@ def _outward(v: npt.NDArray[np.float64], dtype: np.dtype[Any], up: bool) -> npt.
     return np.where(wrong, np.nextafter(r, np.inf if up else -np.inf), r)
 
 
-def _spike_screen(x: npt.NDArray[np.floating[Any]], x64: npt.NDArray[np.float64], spike_sigma: float,
-                  hi: npt.NDArray[np.float64], lo: npt.NDArray[np.float64],
-                  scratch: npt.NDArray[np.bool_]) -> npt.NDArray[np.bool_]:
+def _spike_screen(x: npt.NDArray[np.floating[Any]], spike_sigma: float, hi: npt.NDArray[np.float64],
+                  lo: npt.NDArray[np.float64], scratch: npt.NDArray[np.bool_]) -> npt.NDArray[np.bool_]:
     """Rows proven to hold no isolated spike, by counting passes and a sparse test instead of two exact medians.
 
-    ``x`` are the rows in their own precision (float32 or float64), ``x64`` the same rows in float64; ``hi`` and
-    ``lo`` their extremes.  The order statistics of a fixed, non-periodic subsample of 1024 samples give guesses:
-    a bracket [m_lo, m_hi] of the median (3 standard deviations of the sample median's rank either side of the
-    middle) and a lower bound t of the MAD (the deviation from the subsample's median reached by 3 standard
-    deviations fewer than half its samples, less the bracket's half-width).  Three counts prove them: fewer than
-    n/2 samples below m_lo and fewer than n/2 above m_hi put the median (the middle sample or the mean of the middle
-    two) inside the bracket; fewer than n/2 samples within (m_lo − t, m_hi + t) prove MAD ≥ t (with a relative
-    slack of 1e-9 for rounding), so the spike threshold is at least T_lo = ``spike_sigma`` × 1.4826 × t, rounded
-    as the exact test rounds.  A row with no sample farther than T_lo from the bracket has no spike candidate.
-    Otherwise every sample that may be a candidate (outside (m_hi − T_lo, m_lo + T_lo), away from the frame
-    edges; a few per impact on impulsive rows) must be proven not isolated: its deviation from any median in the
-    bracket is at most A = max(|x − m_lo|, |x − m_hi|), a neighbour's at least its distance from the bracket, so a
-    neighbour within ±:data:`SPIKE_WINDOW` at least A / 3 from the bracket settles it (the ringing of an impact).
-    The floating-point differences are monotone in the median, so these bounds hold for the rounded values the
-    exact test compares.  A row with a possible isolated spike, or whose guesses fail, goes to the exact test.
+    ``x`` are the rows in their own precision (float32 or float64; the samples the arithmetic needs are taken in
+    float64, exactly), ``hi`` and ``lo`` their extremes.  The order statistics of a fixed, non-periodic subsample of
+    1024 samples give guesses: a bracket [m_lo, m_hi] of the median (3 standard deviations of the sample median's
+    rank either side of the middle) and a lower bound t of the MAD (the deviation from the subsample's median
+    reached by 3 standard deviations fewer than half its samples, less the bracket's half-width).  Three counts
+    prove them: fewer than n/2 samples below m_lo and fewer than n/2 above m_hi put the median (the middle sample or
+    the mean of the middle two) inside the bracket; fewer than n/2 samples within (m_lo − t, m_hi + t) prove MAD ≥ t
+    (with a relative slack of 1e-9 for rounding), so the spike threshold is at least T_lo = ``spike_sigma`` × 1.4826
+    × t, rounded as the exact test rounds.  A row with no sample farther than T_lo from the bracket has no spike
+    candidate.  Otherwise every sample that may be a candidate (outside (m_hi − T_lo, m_lo + T_lo), away from the
+    frame edges; a few per impact on impulsive rows) must be proven not isolated: its deviation from any median in
+    the bracket is at most A = max(|x − m_lo|, |x − m_hi|), a neighbour's at least its distance from the bracket, so
+    a neighbour within ±:data:`SPIKE_WINDOW` at least A / 3 from the bracket settles it (the ringing of an impact).
+    The floating-point differences are monotone in the median, so these bounds hold for the rounded values the exact
+    test compares.  A row with a possible isolated spike, or whose guesses fail, goes to the exact test.
     """
     c, n = x.shape
     sub_idx = _subsample(n)
     m = sub_idx.size
-    # a gather through flat indices: ``x64[:, sub_idx]`` comes out in column order and sorts several times slower
-    sub = np.take(x64.reshape(-1), np.arange(0, c * n, n)[:, None] + sub_idx[None, :])
+    # a gather through flat indices: ``x[:, sub_idx]`` comes out in column order and sorts several times slower
+    sub = _f64(np.take(x.reshape(-1), np.arange(0, c * n, n)[:, None] + sub_idx[None, :]))
     sub.sort(axis=1)
     j = math.ceil(1.5 * math.sqrt(m)) + 2  # 3 × the spread of the sample median's rank, √m / 2
     mid = m // 2
@@ -334,9 +333,9 @@ def _spike_screen(x: npt.NDArray[np.floating[Any]], x64: npt.NDArray[np.float64]
     ri, ii = _nonzero(maybe)
     ci = rows[ri]
     lo_b, hi_b = m_lo[ci], m_hi[ci]
-    xk = x64[ci, ii]
+    xk = _f64(x[ci, ii])
     third = np.maximum(np.abs(xk - lo_b), np.abs(xk - hi_b)) / 3.0
-    xj = x64[ci[:, None], ii[:, None] + _AROUND[None, :]]
+    xj = _f64(x[ci[:, None], ii[:, None] + _AROUND[None, :]])
     reach = np.maximum(xj - hi_b[:, None], lo_b[:, None] - xj).max(axis=1, initial=0.0)
     doubt = np.zeros(c, dtype=np.bool_)
     doubt[ci[reach < third]] = True
@@ -391,32 +390,30 @@ def check_health(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec | None = 
     """
     spec = spec or HealthSpec()
     xn, bias, turning = _checked_inputs(frames, fs_hz, spec, bias_v, running)
-    x = np.asarray(xn, dtype=np.float64)
-    c, n = x.shape
+    c, n = xn.shape
+    std_given: npt.NDArray[np.float64] | None = None
+    if rms_g is not None:
+        std_given = np.asarray(rms_g, dtype=np.float64).reshape(-1)
+        if std_given.shape != (c,) or not np.all(np.isfinite(std_given)):
+            raise SignalError(f"rms_g must hold {c} finite values, got {np.asarray(rms_g).shape}")
 
     # Segment means (pass 1): the DC-step check, the frame mean and — since NaN and ±Inf reach a sum — the
-    # finiteness check.
+    # finiteness check; in float64, a block of rows at a time (no float64 copy of the whole batch).
     seg = n // spec.segments
     body = seg * spec.segments
-    seg_mean = x[:, :body].reshape(c, spec.segments, seg).mean(axis=2)
-    tail_sum = x[:, body:].sum(axis=1)
+    seg_mean, tail_sum, std_sums, within_sums = _row_sums(xn, spec.segments, std_given is None)
     if not (np.all(np.isfinite(seg_mean)) and np.all(np.isfinite(tail_sum))):
         raise SignalError("health check got non-finite samples")
     mean = (seg_mean.sum(axis=1) * seg + tail_sum) / n
-    if rms_g is not None:
-        std = np.asarray(rms_g, dtype=np.float64).reshape(-1)
-        if std.shape != (c,) or not np.all(np.isfinite(std)):
-            raise SignalError(f"rms_g must hold {c} finite values, got {np.asarray(rms_g).shape}")
-    else:
-        std = x.std(axis=1)
+    std = std_given if std_given is not None else np.asarray(std_sums, dtype=np.float64)
 
     # Extremes (passes 2, 3) and repeats (pass 4).
     # (comparisons and extremes in the frames' own precision: the same values, half the memory for float32)
     hi, lo = xn.max(axis=1).astype(np.float64), xn.min(axis=1).astype(np.float64)
     scratch = np.empty((c, n), dtype=np.bool_)
     repeat_n = _count(np.equal(xn[:, 1:], xn[:, :-1], out=scratch[:, 1:]))
-    pinned_n = _flat_tops(xn, x, hi, lo, repeat_n, scratch)
-    clip = _clip_fraction(x, hi, lo, pinned_n, spec)
+    pinned_n = _flat_tops(xn, hi, lo, repeat_n, scratch)
+    clip = _clip_fraction(xn, hi, lo, pinned_n, spec)
     repeat = repeat_n / (n - 1)
 
     # DC step: spread of segment means against the within-segment spread (total variance = within + between
@@ -425,25 +422,24 @@ def check_health(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec | None = 
         between2 = np.mean((seg_mean - mean[:, None]) ** 2, axis=1)
         within = np.sqrt(np.maximum(std * std - between2, 0.0))
     else:
-        xs = x[:, :body].reshape(c, spec.segments, seg)
-        within = np.sqrt(np.mean((xs - seg_mean[:, :, None]) ** 2, axis=(1, 2)))
+        within = np.sqrt(np.asarray(within_sums, dtype=np.float64))
     step = seg_mean.max(axis=1) - seg_mean.min(axis=1)
     step_limit = np.maximum(spec.step_floor_g, spec.step_ratio * within)
 
     # Spikes: the exact median test only where the counting screen cannot rule them out.
     spikes = np.zeros(c, dtype=np.int64)
     sigma_r = np.full(c, np.nan)
-    exact = np.arange(c) if not screen else np.flatnonzero(~_spike_screen(xn, x, spec.spike_sigma, hi, lo, scratch))
+    exact = np.arange(c) if not screen else np.flatnonzero(~_spike_screen(xn, spec.spike_sigma, hi, lo, scratch))
     if exact.size:
-        rows = x if exact.size == c else x[exact]
-        spikes[exact], sigma_r[exact] = _spike_counts(rows, spec.spike_sigma, scratch[: exact.size])
+        rows = xn if exact.size == c else xn[exact]
+        spikes[exact], sigma_r[exact] = _spike_counts(_f64(rows), spec.spike_sigma, scratch[: exact.size])
 
     noise: npt.NDArray[np.float64] | None = None
     if spec.noise_density_ug_rthz is not None and turning.any():
         band = spec.noise_band_hz or (0.35 * fs_hz, 0.45 * fs_hz)
         if band[1] > fs_hz / 2:
             raise PlanError(f"noise band high edge {band[1]:g} Hz is above Nyquist {fs_hz / 2:g} Hz")
-        noise = _noise_density(x - mean[:, None], fs_hz, band)
+        noise = _noise_density(_f64(xn) - mean[:, None], fs_hz, band)
 
     out: list[SensorHealth] = []
     for i in range(c):
@@ -463,6 +459,51 @@ def check_health(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec | None = 
             repeat_fraction=float(repeat[i]), clip_fraction=float(clip[i]), step_g=float(step[i]),
             spike_count=int(spikes[i]), noise_density_ug_rthz=nd, bias_v=b))
     return tuple(out)
+
+
+def _f64(a: npt.NDArray[np.floating[Any]]) -> npt.NDArray[np.float64]:
+    """``a`` in float64 (itself when it is already; float32 → float64 is exact)."""
+    return np.asarray(a, dtype=np.float64)
+
+
+def _row_sums(xn: npt.NDArray[np.floating[Any]], segments: int, std: bool
+              ) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.float64], npt.NDArray[np.float64] | None,
+                         npt.NDArray[np.float64] | None]:
+    """Per row of ``xn`` (rows, n), in float64: the means of ``segments`` equal segments (rows, segments), the sum
+    of the samples after the last whole segment (rows,), with ``std`` the standard deviation (rows,), and — when
+    the segments leave a tail — the mean square deviation of the segments' samples from their segment means
+    (rows,), else ``None``.
+
+    Rows in float32 are converted a block of rows (about 1 MB) at a time into one buffer; each row's values are
+    those of the whole batch converted at once (the reductions run along each row alike), without a float64 copy
+    of the batch beside it (8 MB for 64 frames of 16,384 samples, handed back to the system after each call and
+    faulted in again).
+    """
+    c, n = xn.shape
+    seg = n // segments
+    body = seg * segments
+    seg_mean = np.empty((c, segments), dtype=np.float64)
+    tail_sum = np.empty(c, dtype=np.float64)
+    std_out = np.empty(c, dtype=np.float64) if std else None
+    within = np.empty(c, dtype=np.float64) if body != n else None
+    rows = c if xn.dtype == np.float64 else max(1, min(c, _BLOCK_SAMPLES // n))
+    buf = None if rows == c and xn.dtype == np.float64 else np.empty((rows, n), dtype=np.float64)
+    for i in range(0, c, rows):
+        j = min(c, i + rows)
+        if buf is None:
+            x = _f64(xn)
+        else:
+            x = buf[: j - i]
+            x[...] = xn[i:j]
+        sm = x[:, :body].reshape(j - i, segments, seg).mean(axis=2)
+        seg_mean[i:j] = sm
+        tail_sum[i:j] = x[:, body:].sum(axis=1)
+        if std_out is not None:
+            std_out[i:j] = x.std(axis=1)
+        if within is not None:
+            xs = x[:, :body].reshape(j - i, segments, seg)
+            within[i:j] = np.mean((xs - sm[:, :, None]) ** 2, axis=(1, 2))
+    return seg_mean, tail_sum, std_out, within
 
 
 def _checked_inputs(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec, bias_v: npt.ArrayLike | None,
@@ -494,23 +535,22 @@ def _checked_inputs(frames: npt.ArrayLike, fs_hz: float, spec: HealthSpec, bias_
     return x, bias, turning
 
 
-def _flat_tops(xn: npt.NDArray[np.floating[Any]], x: npt.NDArray[np.float64], hi: npt.NDArray[np.float64],
-               lo: npt.NDArray[np.float64], repeat_n: npt.NDArray[np.int64],
-               scratch: npt.NDArray[np.bool_]) -> npt.NDArray[np.int64]:
+def _flat_tops(xn: npt.NDArray[np.floating[Any]], hi: npt.NDArray[np.float64], lo: npt.NDArray[np.float64],
+               repeat_n: npt.NDArray[np.int64], scratch: npt.NDArray[np.bool_]) -> npt.NDArray[np.int64]:
     """Pinned pairs per row (consecutive samples at the frame's extreme); removes them from ``repeat_n``.
 
-    ``xn`` are the rows in their own precision, ``x`` the same in float64.  A row with fewer than two samples near
-    either extreme (passes 5, 6, in ``xn``'s precision against limits rounded so that they count the same samples)
-    has no pinned pair; the others are counted.
+    ``xn`` are the rows in their own precision.  A row with fewer than two samples near either extreme (passes 5,
+    6, in ``xn``'s precision against limits rounded so that they count the same samples) has no pinned pair; the
+    others are counted, in float64.
     """
-    c = x.shape[0]
+    c = xn.shape[0]
     tol = 1e-6 * (hi - lo) + 1e-12
     near_hi = _count(np.greater_equal(xn, _outward(hi - tol, xn.dtype, up=True)[:, None], out=scratch))
     near_lo = _count(np.less_equal(xn, _outward(lo + tol, xn.dtype, up=False)[:, None], out=scratch))
     pinned_n = np.zeros(c, dtype=np.int64)
     top_rows = np.flatnonzero((near_hi >= 2) | (near_lo >= 2))
     if top_rows.size:
-        xs_ = x[top_rows]
+        xs_ = _f64(xn[top_rows])
         at_hi, at_lo = xs_ >= (hi - tol)[top_rows, None], xs_ <= (lo + tol)[top_rows, None]
         pinned = (at_hi[:, 1:] & at_hi[:, :-1]) | (at_lo[:, 1:] & at_lo[:, :-1])
         # A frame spanning only a few quantization steps (the smallest non-zero change between samples) repeats
@@ -524,14 +564,16 @@ def _flat_tops(xn: npt.NDArray[np.floating[Any]], x: npt.NDArray[np.float64], hi
     return pinned_n
 
 
-def _clip_fraction(x: npt.NDArray[np.float64], hi: npt.NDArray[np.float64], lo: npt.NDArray[np.float64],
+def _clip_fraction(xn: npt.NDArray[np.floating[Any]], hi: npt.NDArray[np.float64], lo: npt.NDArray[np.float64],
                    pinned_n: npt.NDArray[np.int64], spec: HealthSpec) -> npt.NDArray[np.float64]:
-    """Fraction of samples clipped per row: at full scale when it is known, else pinned flat."""
+    """Fraction of samples clipped per row (``xn``: the rows in their own precision): at full scale when it is
+    known, else pinned flat."""
+    x = xn
     if spec.full_scale_g is not None:
         clip = np.zeros(x.shape[0])
         at_fs = np.flatnonzero(np.maximum(hi, -lo) >= 0.995 * spec.full_scale_g)
         if at_fs.size:
-            clip[at_fs] = np.mean(np.abs(x[at_fs]) >= 0.995 * spec.full_scale_g, axis=1)
+            clip[at_fs] = np.mean(np.abs(_f64(x[at_fs])) >= 0.995 * spec.full_scale_g, axis=1)
         return clip
     return np.asarray(pinned_n / (x.shape[1] - 1), dtype=np.float64)
 

@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 import scipy.io
 
-from edgevib.pipelines.health import _medians, _spike_screen, check_health
+from edgevib.pipelines.health import HealthSpec, _medians, _spike_screen, check_health
 
 
 def _rows(kind: str, rows: int, n: int, rng: np.random.Generator) -> np.ndarray:
@@ -119,7 +119,7 @@ def test_screen_on_impulsive_rows_gives_the_exact_results(dtype: type) -> None:
     assert [h.spike_count for h in fast][:6] == [0, 1, 0, 3, 0, 0]
     # the impulsive rows without an isolated spike are settled by the screen itself, not by the exact fallback
     x64 = x.astype(np.float64)
-    cleared = _spike_screen(x, x64, 10.0, x64.max(axis=1), x64.min(axis=1), np.empty(x.shape, dtype=np.bool_))
+    cleared = _spike_screen(x, 10.0, x64.max(axis=1), x64.min(axis=1), np.empty(x.shape, dtype=np.bool_))
     assert cleared.tolist() == [h.spike_count == 0 for h in fast]
 
 
@@ -164,3 +164,37 @@ def test_screen_on_recorded_bearing_faults_gives_the_exact_results(cwru_dir: Pat
         fast = check_health(f, float(checks["fs_hz"]))
         assert fast == check_health(f, float(checks["fs_hz"]), screen=False)
         assert [h.spike_count for h in fast] == _reference_spikes(f)
+
+
+def _varied_rows(rows: int, n: int, rng: np.random.Generator) -> np.ndarray:
+    """Rows of every kind the checks tell apart, quantized to float32 (so their float64 copies hold the same
+    samples): impacts, spikes, flat tops at a clipping level, a DC step, a stuck converter, a bias, noise."""
+    x = np.concatenate([_impulsive_rows(rows - 6, n, rng), rng.normal(0.0, 0.02, (6, n))])
+    x[1, n // 3] += 3.0  # an isolated spike
+    x[2] = np.clip(x[2] * 4.0, -0.9, 0.9)  # pinned flat at ±0.9
+    x[-6, n // 2 :] += 0.4  # a DC step
+    x[-5] = np.repeat(x[-5, ::8], 8)[:n]  # a held value: most samples repeat the previous one
+    x[-4] += 0.8  # a mean beyond what a piezo sensor shows
+    x[-3] *= 1e-7  # a dead output
+    x[-2] = np.round(x[-2] / 0.01) * 0.01  # a coarse converter
+    return x.astype(np.float32)
+
+
+@pytest.mark.parametrize(("n", "segments"), [(16384, 4), (4096, 4), (5000, 3), (65536, 4), (40000, 7)])
+def test_float32_frames_give_the_health_of_the_same_samples_in_float64(n: int, segments: int) -> None:
+    # The daemon hands its float32 frames over as they are (edgevib.pipelines.health works in their precision
+    # where a comparison gives the same answer, and in float64 where arithmetic needs it): every field of every
+    # row must equal that of the same samples given in float64 (float32 → float64 is exact: IEEE 754), with and
+    # without the r.m.s. given, the screen or the exact spike test, a full scale and a noise specification.
+    rng = np.random.default_rng(n + segments)
+    x32 = _varied_rows(12, n, rng)
+    x64 = x32.astype(np.float64)
+    rms = x64.std(axis=1)
+    running = [True] * 11 + [False]
+    specs = [HealthSpec(segments=segments),
+             HealthSpec(segments=segments, full_scale_g=0.9, noise_density_ug_rthz=50.0, spike_sigma=6.0)]
+    for spec in specs:
+        for kwargs in ({"rms_g": rms}, {}, {"screen": False}):
+            got = check_health(x32, 25_600.0, spec, running=running, **kwargs)  # type: ignore[arg-type]
+            assert got == check_health(x64, 25_600.0, spec, running=running, **kwargs)  # type: ignore[arg-type]
+            assert {f for h in got for f in h.faults} >= {"spikes", "clipping", "dc-step", "flatline", "bias"}
