@@ -201,9 +201,11 @@ def observe(state: MachineState, spec: MachineStateSpec, t_s: float, point: str,
     if new == "starting" and started is not None and not accel and now - started >= spec.startup_grace_s:
         new = "running"  # a zero grace: a steady start is running at once
     since = state.since_s if new == prev else now
-    return replace(state, state=new, since_s=since, started_s=started, basis=basis, speed_hz=latest_speed,
-                   votes=tuple(sorted(votes.items())), speeds=speeds, last_s=now, pending_frames=pending_frames,
-                   pending_since_s=pending_since)
+    # every field given: the constructor itself (``dataclasses.replace`` looks the fields up on every call, once
+    # per analysed frame here)
+    return MachineState(state=new, since_s=since, started_s=started, basis=basis, speed_hz=latest_speed,
+                        votes=tuple(sorted(votes.items())), speeds=speeds, last_s=now, pending_frames=pending_frames,
+                        pending_since_s=pending_since)
 
 
 def _dwell(state: MachineState, spec: MachineStateSpec, turning: bool | None,
