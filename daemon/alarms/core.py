@@ -1,14 +1,14 @@
 """The alarm layer's decisions as a pure core: ``decide(core, input, now) -> (core, effects)``.
 
 No I/O, no clocks, no logging, no threads: the caller passes the time (:class:`Now`), the frames with their sensor
-health already checked (:class:`Frames`), timer ticks with the latest block arrival of each point (:class:`Tick`),
-source connection changes (:class:`SourceChange`) and operator commands (:class:`Command`), and gets back what to
-do (:class:`Effects`): the events to append to the outbox (with their history rows and capture requests), the state
-rows to persist, the points whose state message changed, log records and a command's reply.  The caller applies
-them (``edgevib.daemon.alarms.store``) and publishes :meth:`AlarmCore.snapshot` for the views
-(``edgevib.daemon.alarms.views``).  ``decide`` updates the core it is given and returns it: one owner calls it, one
-input after another (``edgevib.daemon.alarms.engine`` runs it on one thread), and the same inputs on equal cores
-give equal effects.
+health already checked and their machine's state (:class:`Frames`), timer ticks with the latest block arrival of
+each point (:class:`Tick`), source connection changes (:class:`SourceChange`) and operator commands
+(:class:`Command`), and gets back what to do (:class:`Effects`): the events to append to the outbox (with their
+history rows and capture requests), the state rows to persist, the points whose state message changed, log records
+and a command's reply.  The caller applies them (``edgevib.daemon.alarms.store``) and publishes
+:meth:`AlarmCore.snapshot` for the views (``edgevib.daemon.alarms.views``).  ``decide`` updates the core it is
+given and returns it: one owner calls it, one input after another (``edgevib.daemon.alarms.engine`` runs it on one
+thread), and the same inputs on equal cores give equal effects.
 
 For every analysed frame of a point:
 
@@ -17,8 +17,9 @@ For every analysed frame of a point:
    ``sensor_recover_frames`` healthy frames (longer for a relapsing fault).  A point without frames for
    ``no_data_frames`` frame periods while its source is up and another point of that source still delivers gets
    the ``no-data`` fault.
-2. **Run state** per machine (carried by each frame, or judged here from the same evidence); after a start its
-   alarms stay suppressed for ``startup_grace_s`` (reason ``machine-stopped`` / ``start-up-grace``).
+2. **Run state** per machine, as each frame carries it (the daemon's machine tracker judges it); while the
+   machine stands and for ``startup_grace_s`` after a start its alarms stay suppressed (reason
+   ``machine-stopped`` / ``start-up-grace``).
 3. **Baselines** learn each indicator's mean and spread over ``baseline_frames`` valid running frames.
 4. **Limits** resolve to set points (ISO 20816-3, absolute, baseline-relative), the pure state machine
    (:mod:`edgevib.pipelines.alarm`) steps, and each transition becomes an ``io.edgevib.alarm.v1.transition``
@@ -51,7 +52,7 @@ from edgevib.daemon.alarms.state import Baseline, SensorState, SourceState, rest
 from edgevib.daemon.config import Config, PointConfig
 from edgevib.daemon.indicators import LIMITABLE
 from edgevib.daemon.interfaces import FrameResult
-from edgevib.daemon.machine_state import MachineTracker
+from edgevib.daemon.machine_state import state_spec
 from edgevib.daemon.timestamps import rfc3339_utc_s
 from edgevib.pipelines.alarm import (
     AlarmState,
@@ -68,7 +69,6 @@ from edgevib.pipelines.alarm import (
     step,
     unshelve,
 )
-from edgevib.pipelines.health import SensorHealth
 from edgevib.pipelines.machine_state import MACHINE_STATES, MachineState, MachineStateSpec
 
 __all__ = ["AlarmCore", "AlarmSnapshot", "Capture", "Command", "Effects", "EventOut", "Frames", "Now",
@@ -150,10 +150,10 @@ class Now:
 
 @dataclass(frozen=True, slots=True)
 class Frames:
-    """Analysed frames in order, with each frame's sensor-health verdict (``None``: not checked)."""
+    """Analysed frames in order, each with its sensor-health verdict (``FrameResult.health``; ``None``: not
+    checked) and its machine's state (``FrameResult.machine_state``; ``None``: unknown)."""
 
     results: Sequence[FrameResult]
-    health: Sequence[SensorHealth | None]
 
 
 @dataclass(frozen=True, slots=True)
@@ -323,7 +323,6 @@ class AlarmCore:
         self.sources_of: dict[str, list[str]] = {s.name: [] for s in config.sources}
         for p in config.points:
             self.sources_of.setdefault(p.source, []).append(p.id)
-        self.machines_cfg = {m.id: m for m in config.machines}
         machine_points: dict[str, list[str]] = {}
         for p in config.points:
             machine_points.setdefault(p.machine, []).append(p.id)
@@ -347,10 +346,8 @@ class AlarmCore:
         self.values: dict[tuple[str, str], float] = {}
         self.sensors: dict[str, SensorState] = {}
         self.trends: dict[tuple[str, str], deque[tuple[float, float]]] = {}
-        # Machine state: the daemon's (carried by each FrameResult); for results that carry none, the core keeps
-        # its own from the same evidence (a point with a sensor fault does not vote).
-        self.own_machines = MachineTracker(config, healthy=self.point_healthy)
-        self.machine_states: dict[str, MachineState] = {}
+        self.machine_specs = {m.id: state_spec(m, config.alarms) for m in config.machines}
+        self.machine_states: dict[str, MachineState] = {}  # as the latest frame of each machine carried it
         # the state database's last known machine states (until the machine's frames judge it again)
         self.last_machine_states: dict[str, MachineState] = {}
         self.last_frame: dict[str, float] = {}   # point -> latest frame time (measurement timeline)
@@ -414,17 +411,12 @@ class AlarmCore:
         return AlarmSnapshot(
             settings=self.settings, points=mp(self.points), machine_points=mp(self.machine_points),
             limits=mp(self.limits), by_point=mp(self.by_point),
-            machine_specs=mp(self.own_machines.specs), alarms=mp(dict(self.alarms)), specs=mp(dict(self.specs)),
+            machine_specs=mp(self.machine_specs), alarms=mp(dict(self.alarms)), specs=mp(dict(self.specs)),
             values=mp(dict(self.values)), baselines=mp(dict(self.baselines)), sensors=mp(dict(self.sensors)),
             stale=mp(dict(self.stale)), suppressed=mp(dict(self.suppressed)),
             machine_states=mp(dict(self.machine_states)), last_machine_states=mp(dict(self.last_machine_states)),
             source_states=mp(dict(self.source_states)),
             last_frame=mp(dict(self.last_frame)), events_total=mp(dict(self.events_total)))
-
-    def point_healthy(self, point: str) -> bool:
-        """Whether a point has no sensor fault (its level may then vote for its machine's state)."""
-        s = self.sensors.get(point)
-        return s is None or s.fault is None
 
     def _count(self, kind: str) -> None:
         self.events_total[kind] = self.events_total.get(kind, 0) + 1
@@ -441,23 +433,11 @@ class AlarmCore:
         for r in inp.results:
             if r.point_id in self.points:
                 self.last_seen[r.point_id] = now.mono
-        for r, h in zip(inp.results, inp.health, strict=True):
+        for r in inp.results:
             if r.point_id in self.points:
-                self._frame(r, h, now, eff)
+                self._frame(r, now, eff)
 
-    def _machine_state(self, r: FrameResult, t_s: float) -> MachineState:
-        ms = r.machine_state
-        if ms is None:
-            ind = r.indicators
-            m = self.machines_cfg.get(r.machine_id)
-            measured = ind.shaft_hz if m is not None and m.speed_tag is not None and not ind.shaft_estimated \
-                else None
-            ms = self.own_machines.observe(r.machine_id, r.point_id, t_s, speed_hz=measured,
-                                           velocity_rms_mm_s=ind.velocity_rms_mm_s) or MachineState()
-        self.machine_states[r.machine_id] = ms
-        return ms
-
-    def _frame(self, r: FrameResult, h: SensorHealth | None, now: Now, eff: Effects) -> None:
+    def _frame(self, r: FrameResult, now: Now, eff: Effects) -> None:
         pid, t_s = r.point_id, r.t_end_ns / 1e9
         self.last_frame[pid] = t_s
         self.restored_frames.discard(pid)
@@ -467,8 +447,9 @@ class AlarmCore:
         still_down = self.source_states.get(source, SourceState()).down
         if not still_down:
             self.stale.pop(pid, None)
-        sensor = self._sensor(r, h, t_s, eff)
-        ms = self._machine_state(r, t_s)
+        sensor = self._sensor(r, t_s, eff)
+        ms = r.machine_state or MachineState()
+        self.machine_states[r.machine_id] = ms
         if (sensor.machine_state, sensor.machine_since_s) != (ms.state, ms.since_s):  # kept for a restart
             sensor = replace(sensor, machine_state=ms.state, machine_since_s=ms.since_s)
             self.sensors[pid] = eff.sensors[pid] = sensor
@@ -514,8 +495,8 @@ class AlarmCore:
         for tr_ in transitions:
             self._alarm_event(r, lim, tr_, now, eff)
 
-    def _sensor(self, r: FrameResult, h: SensorHealth | None, t_s: float, eff: Effects) -> SensorState:
-        pid = r.point_id
+    def _sensor(self, r: FrameResult, t_s: float, eff: Effects) -> SensorState:
+        pid, h = r.point_id, r.health
         s = replace(self.sensors.get(pid, SensorState()), last_frame_s=t_s)
         if s.fault == "no-data":  # frames flow again
             s = replace(s, fault=None, detail="", since_s=t_s, healthy_run=0)

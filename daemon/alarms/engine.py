@@ -190,7 +190,7 @@ class AlarmLayer:
         """One decision, on the decision thread: the core steps, the snapshot is replaced, the writes are queued
         for the store (the future: the events once committed)."""
         if isinstance(inp, list):
-            inp = Frames(inp, [r.health for r in inp])  # None: not checked (health checks off)
+            inp = Frames(inp)
         self.core, eff = decide(self.core, inp, now)
         self.view = self.core.snapshot()
         self._emit_logs(eff)

@@ -9,18 +9,24 @@ from typing import Any
 
 import numpy as np
 import pytest
+from framekit import Tracked
 
 from edgevib.daemon.alarms.engine import AlarmLayer
 from edgevib.daemon.app import wire_alarms
 from edgevib.daemon.config import Config, parse_config
 from edgevib.daemon.interfaces import FrameResult
-from edgevib.daemon.machine_state import MachineTracker
 from edgevib.daemon.sensor_health import batch_health, judged_running
 from edgevib.pipelines.analysis import analyze_frames
+from edgevib.pipelines.health import SensorHealth
+from edgevib.pipelines.machine_state import MachineState
+
+RUNNING = MachineState(state="running")
+"""A running machine's state, as hand-made frames carry it unless told otherwise."""
 
 
 class SimFrames:
-    """Cuts a simulation's blocks into frames (hop = frame × (1 − overlap)) and analyses them."""
+    """Cuts a simulation's blocks into frames (hop = frame × (1 − overlap)) and analyses them; each frame carries
+    its sensor-health verdict and its machine's state as the daemon attaches them."""
 
     def __init__(self, sim: Any, cfg: Config) -> None:
         self.sim, self.cfg = sim, cfg
@@ -29,21 +35,17 @@ class SimFrames:
         self.buf_t0: dict[str, int] = {}
         self.next_seq: dict[str, int] = {}
         self.plans = {p.id: cfg.plan(p.id) for p in cfg.points}
-        self.machines = MachineTracker(cfg)  # whether a frame's machine runs, for its health verdict
+        self.tracked = Tracked(cfg)  # each machine's state, as the daemon's tracker judges it
 
-    def _health(self, p: Any, x: np.ndarray, ind: Any, t_end_ns: int) -> Any:
+    def _health(self, p: Any, x: np.ndarray, ind: Any) -> Any:
         """The frame's sensor-health verdict as the daemon's analysis workers attach it (``edgevib.daemon.app``:
         the point's spec, judged against a running machine only while the machine runs)."""
         s = self.cfg.alarm_settings
         if not s.table.health.enabled:
             return None
-        m = self.cfg.machine(p.machine)
-        running = judged_running(self.machines.running(m.id), ind.velocity_rms_mm_s,
+        running = judged_running(self.tracked.machines.running(p.machine), ind.velocity_rms_mm_s,
                                  s.table.run_threshold_velocity_mm_s)
         (h,) = batch_health(x[None, :], p.fs_hz, [s.health[p.id]], [ind.acceleration_rms_g], [running], [p.id])
-        measured = ind.shaft_hz if m.speed_tag is not None and not ind.shaft_estimated else None
-        self.machines.observe(m.id, p.id, t_end_ns / 1e9, speed_hz=measured, velocity_rms_mm_s=ind.velocity_rms_mm_s,
-                              frame_healthy=h is None or h.ok)
         return h
 
     def until(self, t_s: float) -> list[FrameResult]:
@@ -71,9 +73,10 @@ class SimFrames:
         for p, x, t_end, shaft in jobs:
             shaft_arr = None if shaft is None else np.array([shaft])
             ind = analyze_frames(x[None, :], self.plans[p.id], shaft_hz=shaft_arr)[0]
-            out.append(FrameResult(point_id=p.id, machine_id=p.machine, t_end_ns=t_end, received_ns=t_end,
-                                   fs_hz=p.fs_hz, indicators=ind, iso_zone=None, samples=x,
-                                   axis=p.axis, health=self._health(p, x, ind, t_end)))
+            r = FrameResult(point_id=p.id, machine_id=p.machine, t_end_ns=t_end, received_ns=t_end,
+                            fs_hz=p.fs_hz, indicators=ind, iso_zone=None, samples=x, axis=p.axis,
+                            health=self._health(p, x, ind))
+            out += self.tracked([r])
         return out
 
 
@@ -142,14 +145,17 @@ def indicators(velocity_mm_s: float, **kw: Any) -> Any:
 
 
 def frame_result(point: str, machine: str, t_s: float, velocity_mm_s: float, *, fs_hz: float = 12800.0,
-                 n: int = 8192, seed: int = 0, **kw: Any) -> FrameResult:
-    """A frame of a healthy-looking signal (24.75 Hz sine plus noise) with chosen indicators."""
+                 n: int = 8192, seed: int = 0, health: SensorHealth | None = None,
+                 machine_state: MachineState | None = RUNNING, **kw: Any) -> FrameResult:
+    """A frame of a healthy-looking signal (24.75 Hz sine plus noise) with chosen indicators, its sensor-health
+    verdict (``None``: not checked) and its machine's state (as the daemon's tracker attaches it; by default
+    running)."""
     rng = np.random.default_rng(seed)
     t = np.arange(n) / fs_hz
     x = 0.2 * np.sin(2 * np.pi * 24.75 * t) + 0.01 * rng.standard_normal(n)
     return FrameResult(point_id=point, machine_id=machine, t_end_ns=round(t_s * 1e9), received_ns=round(t_s * 1e9),
                        fs_hz=fs_hz, indicators=indicators(velocity_mm_s, **kw), iso_zone=None, samples=x,
-                       axis="horizontal")
+                       axis="horizontal", health=health, machine_state=machine_state)
 
 
 def small_config(state_dir: Path, *, alarms: dict[str, Any] | None = None, limits: dict[str, Any] | None = None,

@@ -45,9 +45,9 @@ class Plant:
         out = []
         for v in velocities:
             self.mono, self.t, self.seed = self.mono + 0.64, self.t + 0.64, self.seed + 1
-            r = replace(frame_result(POINT, MACHINE, self.t, v, seed=self.seed),
-                        machine_state=MachineState(state=machine, since_s=T0))  # type: ignore[arg-type]
-            self.core, eff = decide(self.core, Frames([r], [HEALTHY]), Now(self.mono, self.t))
+            r = frame_result(POINT, MACHINE, self.t, v, seed=self.seed, health=HEALTHY,
+                             machine_state=MachineState(state=machine, since_s=T0))  # type: ignore[arg-type]
+            self.core, eff = decide(self.core, Frames([r]), Now(self.mono, self.t))
             out.append(eff)
         return out
 
@@ -103,8 +103,8 @@ def test_a_suppressed_sensor_fault_alarm_is_left_as_well(tmp_path: Path) -> None
     plant.frames([6.0, 6.0])
     faulty = replace(HEALTHY, faults=("flatline",), detail="flat signal")
     plant.mono, plant.t = plant.mono + 0.64, plant.t + 0.64
-    r = replace(frame_result(POINT, MACHINE, plant.t, 6.0, seed=99), machine_state=MachineState(state="running"))
-    plant.core, _ = decide(plant.core, Frames([r], [faulty]), Now(plant.mono, plant.t))
+    r = frame_result(POINT, MACHINE, plant.t, 6.0, seed=99, health=faulty)
+    plant.core, _ = decide(plant.core, Frames([r]), Now(plant.mono, plant.t))
     assert plant.core.alarms[KEY].suppressed == "sensor-fault"
     eff = plant.ack()
     assert not plant.core.alarms[KEY].acked and eff.reply["changed"] == 0

@@ -70,8 +70,8 @@ def _replay(core: AlarmCore, script: list[tuple[str, Any]],
             results = []
             for v in arg:
                 mono, t, seed = mono + 0.64, t + 0.64, seed + 1
-                results.append(frame_result(POINT, MACHINE, t, v, seed=seed))
-            inp: Any = Frames(results, [HEALTHY] * len(results))
+                results.append(frame_result(POINT, MACHINE, t, v, seed=seed, health=HEALTHY))
+            inp: Any = Frames(results)
         elif kind == "tick":
             mono, t = mono + arg, t + arg
             inp = Tick({POINT: t})

@@ -18,6 +18,7 @@ import numpy as np
 import pytest
 import structlog.testing
 from alarmkit import alarm_layer, frame_result, small_config, started_layer
+from framekit import Tracked
 from prometheus_client import CollectorRegistry
 from scipy.io import wavfile
 
@@ -147,9 +148,11 @@ async def test_progression_escalates_in_order_and_spares_healthy_and_stopped_mac
         assert side["limits"]["danger"] == pytest.approx(4.5) and side["config_digest"] == cfg.digest
 
 
-async def _feed(layer: AlarmLayer, values: list[float], t0: float = 1000.0) -> None:
+async def _feed(layer: AlarmLayer, values: list[float], t0: float = 1000.0, tracked: Tracked | None = None) -> None:
+    """Frames 1 s apart of a running machine, or with the state ``tracked`` judges from their level."""
     for i, v in enumerate(values):
-        await layer.on_frames([frame_result("P-101-DE-H", "P-101", t0 + i, v, seed=i)])
+        batch = [frame_result("P-101-DE-H", "P-101", t0 + i, v, seed=i)]
+        await layer.on_frames(batch if tracked is None else tracked(batch))
 
 
 async def test_restart_restores_state_without_storm_or_loss(short_tmp: Path) -> None:
@@ -218,9 +221,10 @@ async def test_state_text_shows_every_active_alarm_worst_level_and_fault_pattern
 async def test_stopped_machine_and_start_up_grace_suppress(short_tmp: Path) -> None:
     cfg = small_config(short_tmp, alarms={"startup_grace_s": 5.0})
     layer, events = await started_layer(cfg)
-    await _feed(layer, [0.05] * 3 + [6.0] * 4, t0=100.0)  # stopped, then a start with a high transient
+    tracked = Tracked(cfg, layer.point_healthy)  # the machine's state judged from the level, as the daemon does
+    await _feed(layer, [0.05] * 3 + [6.0] * 4, t0=100.0, tracked=tracked)  # stopped, then a start with a transient
     assert events == [] and layer.state_text("P-101-DE-H") == "starting"
-    await _feed(layer, [6.0] * 3, t0=107.0)  # grace over: the on-delay starts afresh
+    await _feed(layer, [6.0] * 3, t0=107.0, tracked=tracked)  # grace over: the on-delay starts afresh
     assert [(e["data"]["transition"], e["data"]["state"]) for e in events] == [("raised", "danger")]
     await layer.stop()
 

@@ -22,9 +22,11 @@ from edgevib.daemon.alarms.feed import ALARM_TYPE, SENSOR_TYPE, SOURCE_DOWN_TYPE
 from edgevib.daemon.config import Config, parse_config
 from edgevib.daemon.frames import Stats
 from edgevib.daemon.sinks.prometheus import PrometheusSink
+from edgevib.pipelines.machine_state import MachineState
 
 POINTS = ("P-101-DE-H", "P-101-NDE-H")
 T0 = 1_780_000_000.0  # frame times: Unix seconds in 2026 (the history keeps [alarms] history_days of them)
+RUNNING = MachineState(state="running", since_s=T0)  # the state the daemon's tracker attaches
 
 
 def two_points(state_dir: Path) -> Config:
@@ -65,8 +67,8 @@ async def frames(layer: AlarmLayer, clock: Clock, t0: float, values: dict[str, l
     n = max(len(v) for v in values.values())
     for i in range(n):
         clock.t += 0.64
-        batch = [frame_result(pid, "P-101", T0 + t0 + 0.64 * i, v[i], seed=i) for pid, v in values.items()
-                 if i < len(v)]
+        batch = [frame_result(pid, "P-101", T0 + t0 + 0.64 * i, v[i], seed=i, machine_state=RUNNING)
+                 for pid, v in values.items() if i < len(v)]
         await layer.on_frames(batch)
 
 

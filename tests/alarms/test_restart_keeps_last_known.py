@@ -10,7 +10,6 @@ default danger set point.
 from __future__ import annotations
 
 import json
-from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -56,9 +55,9 @@ class Daemon:
         return eff
 
     def frame(self, velocity: float, machine: str = "running") -> None:
-        r = replace(frame_result(POINT, MACHINE, T0 + self.mono + 0.64, velocity, seed=round(self.mono)),
-                    machine_state=MachineState(state=machine, since_s=T0 + 0.64))  # type: ignore[arg-type]
-        self.at(Frames([r], [HEALTHY]), 0.64)
+        r = frame_result(POINT, MACHINE, T0 + self.mono + 0.64, velocity, seed=round(self.mono), health=HEALTHY,
+                         machine_state=MachineState(state=machine, since_s=T0 + 0.64))  # type: ignore[arg-type]
+        self.at(Frames([r]), 0.64)
 
     def listing(self) -> dict[str, Any]:
         # the list command's document as the socket sends it (JSON)

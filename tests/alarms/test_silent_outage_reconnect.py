@@ -10,7 +10,7 @@ ISO 20816-3 group 2 rigid (FIELD_NOTES §1): C/D 4.5 mm/s r.m.s., the point's de
 from __future__ import annotations
 
 import json
-from dataclasses import asdict, replace
+from dataclasses import asdict
 from pathlib import Path
 from typing import Any
 
@@ -42,9 +42,9 @@ class Run:
 
     def frames(self, velocities: list[float]) -> None:
         for v in velocities:
-            r = replace(frame_result(POINT, MACHINE, T0 + self.mono + 0.64, v, seed=len(self.events)),
-                        machine_state=MachineState(state="running", since_s=T0))
-            self.at(Frames([r], [HEALTHY]), 0.64)
+            r = frame_result(POINT, MACHINE, T0 + self.mono + 0.64, v, seed=len(self.events), health=HEALTHY,
+                             machine_state=MachineState(state="running", since_s=T0))
+            self.at(Frames([r]), 0.64)
 
     def of(self, type_: str) -> list[dict[str, Any]]:
         return [e.data for e in self.events if e.type == type_]

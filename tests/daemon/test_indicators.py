@@ -119,7 +119,7 @@ def _raised(r: FrameResult) -> tuple[set[str], set[str]]:
     t_s = r.t_end_ns / 1e9
     core = AlarmCore(cfg, cfg.alarm_settings)
     core.restore({}, {}, {}, {}, Now(mono=0.0, wall=t_s))
-    core, _ = decide(core, Frames([judged], [None]), Now(mono=1.0, wall=t_s + 0.1))
+    core, _ = decide(core, Frames([judged]), Now(mono=1.0, wall=t_s + 0.1))
     raised = {key[1] for key, state in core.alarms.items() if display_severity(state, core.specs[key]) >= 1}
     return {lim.indicator for lim in cfg.alarm_settings.limits}, raised
 

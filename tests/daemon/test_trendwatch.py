@@ -12,7 +12,7 @@ from typing import Any
 
 import numpy as np
 import pytest
-from framekit import frame_indicators
+from framekit import Tracked, frame_indicators
 from prometheus_client import CollectorRegistry
 
 from edgevib.daemon.app import wire_alarms
@@ -84,6 +84,7 @@ async def test_projection_reaches_gauges_state_message_and_events(tmp_path: Path
     layer.subscribe(events.append)
     await layer.start()
     await watch.start()
+    tracked = Tracked(cfg, layer.point_healthy)  # each frame's machine state, as the daemon attaches it
     try:
         rng = np.random.default_rng(1)
         hours = np.arange(0, 40 * 24)  # 40 days, one frame an hour
@@ -92,7 +93,7 @@ async def test_projection_reaches_gauges_state_message_and_events(tmp_path: Path
         values[(days >= 20) & (days < 22)] = 0.05        # two days standing: below the run threshold
         for k in range(0, hours.size, 48):
             batch = [_frame(T0 + days[i] * D, float(values[i]), i) for i in range(k, min(k + 48, hours.size))]
-            await layer.on_frames(batch)
+            await layer.on_frames(tracked(batch))
         assert await asyncio.to_thread(watch.evaluate_all) >= 1
         doc = watch.latest[(POINT, "velocity_rms_mm_s")]
         now_day = days[-1]
@@ -126,7 +127,7 @@ async def test_projection_reaches_gauges_state_message_and_events(tmp_path: Path
                        for s, a, b in hourly.periods)
             assert np.all(hourly.value > 0.5)
         # an alarm raised now carries the trend and its advice
-        await layer.on_frames([_frame(T0 + (now_day + 0.1 + 0.01 * i) * D, 3.0, 9000 + i) for i in range(3)])
+        await layer.on_frames(tracked([_frame(T0 + (now_day + 0.1 + 0.01 * i) * D, 3.0, 9000 + i) for i in range(3)]))
         raised = [e for e in events if e["data"].get("transition") == "raised"]
         assert raised and raised[-1]["data"]["trend"]["advice"] == "plan"
         assert "Trend: Plan:" in raised[-1]["data"]["advice"]
@@ -291,6 +292,7 @@ async def test_healthy_months_are_not_rising_and_the_trend_raises_no_alarm(tmp_p
     layer.subscribe(events.append)
     await layer.start()
     await watch.start()
+    tracked = Tracked(cfg, layer.point_healthy)  # each frame's machine state, as the daemon attaches it
     try:
         rng = np.random.default_rng(21)
         days = np.arange(0.0, 150.0, 0.25)
@@ -300,7 +302,7 @@ async def test_healthy_months_are_not_rising_and_the_trend_raises_no_alarm(tmp_p
         evaluations = quiet = 0
         for d0 in range(0, 150, 5):
             sel = np.flatnonzero((days >= d0) & (days < d0 + 5))
-            await layer.on_frames([_frame(T0 + days[i] * D, float(v[i]), int(i)) for i in sel])
+            await layer.on_frames(tracked([_frame(T0 + days[i] * D, float(v[i]), int(i)) for i in sel]))
             await asyncio.to_thread(watch.evaluate_all)
             doc = watch.latest[(POINT, "velocity_rms_mm_s")]
             if doc["status"] == "ok":
@@ -311,8 +313,8 @@ async def test_healthy_months_are_not_rising_and_the_trend_raises_no_alarm(tmp_p
         days2 = np.arange(150.0, 210.0, 0.25)
         v2 = (1.2 + 1.3 * (days2 - 150.0) / 60.0) * np.exp(0.05 * rng.standard_normal(days2.size))
         v2 = np.minimum(v2, 2.7)
-        await layer.on_frames([_frame(T0 + d * D, float(x), 5000 + i) for i, (d, x) in enumerate(zip(days2, v2,
-                                                                                                      strict=True))])
+        await layer.on_frames(tracked([_frame(T0 + d * D, float(x), 5000 + i)
+                                       for i, (d, x) in enumerate(zip(days2, v2, strict=True))]))
         await asyncio.to_thread(watch.evaluate_all)
         doc = watch.latest[(POINT, "velocity_rms_mm_s")]
         assert doc["rising"] and doc["advice"] in ("watch", "plan")
