@@ -54,7 +54,7 @@ from collections import deque
 from collections.abc import Callable, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any, assert_never
+from typing import TYPE_CHECKING, Any, Protocol, assert_never
 
 import numpy as np
 import numpy.typing as npt
@@ -137,6 +137,10 @@ def _freeze_startup_objects() -> None:
 
 
 _DEFAULT_HEALTH = HealthSpec()  # frozen: one default shared by every point without its own (not one per frame)
+
+class _Part(FrameSink, Reconfigurable, Protocol):
+    """A sink that takes a new configuration on reload."""
+
 
 class SinkChannel:
     """The delivery queue and task of one sink (see the module docstring for ordering and bounds)."""
@@ -315,8 +319,7 @@ class Daemon:
                                  tls_client_ca_file=config.metrics.tls_client_ca_file, serve=serve_metrics)
         self.metrics = PrometheusSink(site=config.site.name, points=config.points, stats=self.stats,
                                       registry=registry, http=self.http, ready=self.readiness, clock_ns=clock_ns)
-        self.add_sink(self.metrics)
-        self._reconfigurable.append(self.metrics)
+        self._add_part(self.metrics)
         self.view: ViewService | None = None
         if config.view.enabled:
             from edgevib.daemon.web.actions import Actions
@@ -326,8 +329,7 @@ class Daemon:
                                     recent_interval_s=config.view.recent_interval_s,
                                     actions=Actions(config.view, client_certificates=self.http.client_certificates),
                                     clock_ns=clock_ns)
-            self.add_sink(self.view)
-            self._reconfigurable.append(self.view)
+            self._add_part(self.view)
         self._add_configured_sinks(config)
 
     # ------------------------------------------------------------------------------------------ set-up
@@ -373,9 +375,7 @@ class Daemon:
         if config.publish.mqtt.enabled:
             from edgevib.daemon.sinks.mqtt import MqttIndicatorSink
 
-            mqtt = MqttIndicatorSink.from_config(config)
-            self.add_sink(mqtt)
-            self._reconfigurable.append(mqtt)
+            self._add_part(MqttIndicatorSink.from_config(config))
         if config.publish.opcua.enabled:
             from edgevib.daemon.sinks.opcua import OpcUaIndicatorSink  # asyncua loads only when configured
 
@@ -383,8 +383,7 @@ class Daemon:
             opcua = OpcUaIndicatorSink(listen=pc.listen, host=pc.host, port=pc.port, namespace=pc.namespace,
                                        site=config.site.name, points={p.id: p for p in config.points},
                                        cert_file=pc.cert_file, key_file=pc.key_file, state_dir=config.site.state_dir)
-            self.add_sink(opcua)
-            self._reconfigurable.append(opcua)
+            self._add_part(opcua)
         # tracks_sources: a source down/up is one source event, its points stale, not sensor faults
         alarms = wire_alarms(config, self.metrics.registry, block_arrival=self._block_arrival_s,
                              config_refusal=self.ingest.config_refusal, tracks_sources=True,
@@ -402,8 +401,12 @@ class Daemon:
 
         self.trend_watch = create_trend_watch(config, alarms, registry=self.metrics.registry)
         if self.trend_watch is not None:  # history and projections (records the frames the alarm layer judges)
-            self.add_sink(self.trend_watch)
-            self._reconfigurable.append(self.trend_watch)
+            self._add_part(self.trend_watch)
+
+    def _add_part(self, sink: _Part) -> None:
+        """A lossy sink of the configuration's own: added, and given the new configuration on a reload."""
+        self.add_sink(sink)
+        self._reconfigurable.append(sink)
 
     def add_sink(self, sink: FrameSink) -> None:
         """Add a lossy sink (it shows the latest values: see the module docstring); call before :meth:`start`."""
