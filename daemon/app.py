@@ -97,7 +97,9 @@ AnalyzeFn = Callable[[npt.NDArray[np.float32], AnalysisPlan, "npt.NDArray[np.flo
                      list[FrameIndicators]]
 MAX_BATCH = 64
 BATCH_WINDOW_S = 0.05  # a batch waits up to this long for more frames: larger batches cost far less per frame
-TRENDED = [i for i in REGISTRY if i.trend]  # indicators whose exponentially weighted trend is kept
+# Indicators whose exponentially weighted trend is kept: FrameIndicators fields (tests/daemon/test_app.py checks
+# that each reads its field), so a frame's trend is known when its result is built.
+TRENDED = tuple(i.name for i in REGISTRY if i.trend)
 SINK_BACKLOG_PER_POINT = 4  # undelivered results a lossy sink keeps per point before dropping the oldest
 LOSSLESS_BACKLOG = 4 * MAX_BATCH  # undelivered results of a lossless sink above which analysis pauses
 log = get_logger("edgevib.daemon")
@@ -758,9 +760,10 @@ class Daemon:
                 # or an estimate from the noise): absent, not zero.
                 ind = dataclasses.replace(ind, orders_mm_s={}, envelope={}, shaft_hz=speed, shaft_estimated=False)
             zone = _iso_zone(ind.velocity_rms_mm_s, st.machine)
+            trend = st.trend.update({name: getattr(ind, name) for name in TRENDED}, t_end_s)
             r = FrameResult(point_id=job.point_id, machine_id=st.machine.id, t_end_ns=job.t_end_ns,
                             received_ns=job.received_ns, fs_hz=st.config.fs_hz, indicators=ind, iso_zone=zone,
-                            samples=samples, axis=st.config.axis, machine_state=ms, health=h,
+                            samples=samples, axis=st.config.axis, trend=trend, machine_state=ms, health=h,
                             envelope_band_source=st.band_source if ind.envelope_band_hz is not None else None)
             if st.auto_band:
                 p = st.config
@@ -768,9 +771,6 @@ class Daemon:
                                        samples)
                 if self.band_auto.first_ready(job.point_id):
                     self._band_wake.set()
-            # the trend of this frame's values, set on the result before anyone else sees it (not a second
-            # FrameResult per frame through dataclasses.replace)
-            object.__setattr__(r, "trend", st.trend.update({i.name: i.value(r) for i in TRENDED}, t_end_s))
             self.latest[job.point_id] = r
             Stats.inc(self.stats.frames_analysed, job.point_id)
             results.append(r)

@@ -165,10 +165,28 @@ async def test_sine_to_metrics_and_probes(tmp_path: Path) -> None:
         assert registry.get_sample_value("edgevib_source_connected", {"source": "scripted"}) == 1
         assert registry.get_sample_value("edgevib_analysis_latency_seconds_count") >= 3
         assert probe.results and all(r.samples.shape == (16384,) for r in probe.results)
+        # each result carries its trend from the start: an exponentially weighted mean of a steady level is that
+        # level (definition of the weighted mean, the weights summing to 1)
+        for r in probe.results:
+            assert r.trend["velocity_rms_mm_s"] == pytest.approx(r.indicators.velocity_rms_mm_s, rel=1e-3)
         # the broken sink did not stop the probe after it
         assert {r.point_id for r in probe.results} == {"P-101-DE-H", "P-101-DE-V", "F-201-NDE-V"}
     finally:
         await d.stop()
+
+
+def test_each_trended_indicator_reads_its_frame_indicators_field() -> None:
+    # the daemon updates a frame's trend from its FrameIndicators before the result is built (app.TRENDED): each
+    # trended indicator must read the field of its own name, as the registry does from the result
+    from framekit import frame_indicators
+
+    from edgevib.daemon.app import TRENDED
+    from edgevib.daemon.indicators import REGISTRY
+
+    assert "velocity_rms_mm_s" in TRENDED
+    ind = frame_indicators(**{name: 1.5 + k for k, name in enumerate(TRENDED)})
+    r = FrameResult("P-101-DE-H", "P-101", 0, 0, 25600.0, ind, None, np.zeros(4, dtype=np.float32))
+    assert [i.value(r) for i in REGISTRY if i.trend] == [1.5 + k for k in range(len(TRENDED))]
 
 
 async def test_reload_keeps_untouched_points_state(tmp_path: Path) -> None:
