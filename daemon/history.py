@@ -13,7 +13,11 @@ What it keeps, per measurement point and indicator:
 * the latest **projection** of each tracked series (written by :mod:`edgevib.daemon.projection`) and the trend
   **baselines**.
 
-Buckets are aligned to UTC (minute, hour, day).  Minute percentiles are exact; hour and day percentiles come from
+Buckets are aligned to UTC (minute, hour, day) and each row keeps, per indicator, the mean time of the values it
+holds (``HistorySeries.t_mean_s``): the time its statistics stand for, which is the bucket's middle only when its
+values fill it evenly — not for the still-filling bucket, nor for a machine that ran part of it (schema version 2;
+a version 1 file is migrated when a writer opens it: its older rows read at their middles, its open hour and day
+continue from their minute roll-ups).  Minute percentiles are exact; hour and day percentiles come from
 a logarithmic-bin sketch within 1 % (:class:`edgevib.pipelines.rollup.LogSketch`), whose state is stored with the
 open bucket so that a restart continues it.  An open bucket's row is readable before it closes: the open minute's
 as of the last flush, an open hour's or day's as of its last closed minute (and of the open minute once the
@@ -53,7 +57,7 @@ import numpy.typing as npt
 from edgevib.daemon.interfaces import EdgevibError
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 from edgevib.daemon.sqlite_schema import migrate, write_transaction
-from edgevib.pipelines.rollup import STAT_FIELDS, LogSketch, summarize
+from edgevib.pipelines.rollup import STAT_FIELDS, LogSketch, summarize, time_sums
 
 if TYPE_CHECKING:
     from edgevib.daemon.config import HistoryConfig
@@ -72,7 +76,7 @@ __all__ = [
 
 log = get_logger("edgevib.history")
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 LEVELS: dict[str, int] = {"minute": 60, "hour": 3600, "day": 86400}
 """Roll-up levels and their bucket lengths in seconds."""
 MACHINE_STATES: tuple[str, ...] = ("running", "stopped", "starting", "coasting", "unknown", "sensor-fault")
@@ -110,12 +114,19 @@ CREATE TABLE IF NOT EXISTS baselines (
 ) WITHOUT ROWID
 """
 
+# The present layout: version 1's with ``rollups.t_mean`` — per indicator (layout order, float32), the mean time
+# of the values a bucket holds, in s from its start (NULL in rows written before version 2: read as the middle).
+_SCHEMA = _SCHEMA_V1.replace("sketch BLOB, PRIMARY KEY", "sketch BLOB, t_mean BLOB, PRIMARY KEY")
+assert _SCHEMA != _SCHEMA_V1
+
 # Rows are stored in time order (primary keys lead with the time), so pruning the oldest rows empties whole pages
 # that go back to the file system; the per-point indexes serve the queries.
-# version found in the file -> SQL that brings it to version + 1 (none yet: version 1 is the first layout)
-MIGRATIONS: dict[int, str] = {}
-_INSERT_ROLLUP = ("INSERT OR REPLACE INTO rollups (point, level, start_s, layout, closed, stats, sketch) "
-                  "VALUES (?, ?, ?, ?, ?, ?, ?)")
+# version found in the file -> SQL that brings it to version + 1
+MIGRATIONS: dict[int, str] = {1: "ALTER TABLE rollups ADD COLUMN t_mean BLOB"}
+_INSERT_ROLLUP = ("INSERT OR REPLACE INTO rollups (point, level, start_s, layout, closed, stats, sketch, t_mean) "
+                  "VALUES (?, ?, ?, ?, ?, ?, ?, ?)")
+_Row = tuple[int, int, int, int, int, bytes, bytes | None, bytes]
+"""A roll-up row: point, level, start_s, layout, closed, stats, sketch, t_mean."""
 
 
 class HistoryError(EdgevibError):
@@ -201,7 +212,7 @@ class _Database:
         self._layouts: dict[tuple[str, ...], int] = {}
 
     def _migrate(self) -> None:
-        migrate(self.conn, self.transaction, what="history database", path=self.path, first_layout=_SCHEMA_V1,
+        migrate(self.conn, self.transaction, what="history database", path=self.path, first_layout=_SCHEMA,
                 migrations=MIGRATIONS, version=SCHEMA_VERSION, error=HistoryError, log=log)
 
     def transaction(self) -> AbstractContextManager[sqlite3.Connection]:
@@ -242,22 +253,36 @@ def _f32(a: npt.ArrayLike) -> bytes:
     return np.asarray(a, dtype="<f4").tobytes()
 
 
-def _sketch_blob(sketches: Sequence[LogSketch]) -> bytes:
+def _sketch_blob(sketches: Sequence[LogSketch], t_sums: npt.NDArray[np.float64]) -> bytes:
+    """An open bucket's state: its sketches, then (since schema version 2) the sums of its values' times in s from
+    the bucket's start, one per sketch (:func:`edgevib.pipelines.rollup.time_sums`)."""
     parts = [np.array([float(len(sketches))])]
     for s in sketches:
         arr = s.to_array()
         parts += [np.array([float(arr.size)]), arr]
+    parts.append(np.asarray(t_sums, dtype=np.float64).reshape(-1))
     return np.concatenate(parts).astype("<f8").tobytes()
 
 
-def _sketches_from_blob(blob: bytes) -> list[LogSketch]:
+def _sketches_from_blob(blob: bytes) -> tuple[list[LogSketch], npt.NDArray[np.float64] | None]:
+    """The sketches and time sums of :func:`_sketch_blob` (None for the sums of a version 1 blob, which ends after
+    the sketches)."""
     a = np.frombuffer(blob, dtype="<f8")
     n, i, out = int(a[0]), 1, []
     for _ in range(n):
         size = int(a[i])
         out.append(LogSketch.from_array(a[i + 1:i + 1 + size]))
         i += 1 + size
-    return out
+    sums = a[i:i + n].astype(np.float64) if a.size >= i + n and n > 0 else None
+    return out, sums
+
+
+def _t_mean_blob(t_sums: npt.NDArray[np.float64], counts: npt.ArrayLike) -> bytes:
+    """The ``t_mean`` column: per indicator the mean time of its values in s from the bucket's start (NaN when it
+    has none)."""
+    c = np.asarray(counts, dtype=np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return _f32(np.where(c > 0, t_sums / np.where(c > 0, c, 1.0), np.nan))
 
 
 # --------------------------------------------------------------------------------------------- recorder
@@ -270,8 +295,10 @@ class _Open:
     layout: int
     minute_start: int | None = None
     minute_values: list[npt.NDArray[np.float64]] = field(default_factory=list)
+    minute_times: list[float] = field(default_factory=list)       # the minute's frame times, s from its start
     starts: dict[str, int] = field(default_factory=dict)          # "hour"/"day" -> open bucket start
     sketches: dict[str, list[LogSketch]] = field(default_factory=dict)
+    t_sums: dict[str, npt.NDArray[np.float64]] = field(default_factory=dict)  # level -> time sums of its sketches
     dirty: set[str] = field(default_factory=set)                  # levels whose open row changed
     period: tuple[int, int, int] | None = None                    # (state code, start_ns, end_ns), not running
     period_dirty: bool = False
@@ -337,14 +364,17 @@ class HistoryRecorder:
             elif sketch is not None:
                 lname = "hour" if int(level) == LEVELS["hour"] else "day"
                 op.starts[lname] = int(start)
-                op.sketches[lname] = _sketches_from_blob(sketch)
+                op.sketches[lname], sums = _sketches_from_blob(sketch)
+                op.t_sums[lname] = sums if sums is not None else \
+                    self._legacy_time_sums(int(pid), int(start), LEVELS[lname], op.sketches[lname])
         for name, op in self._open.items():
             pid = self.db.point_id(name)
             if op.minute_start is not None:  # the open minute's running frames are in the frames table
-                vals = [np.frombuffer(v, dtype="<f4").astype(np.float64) for (v,) in c.execute(
-                    "SELECT v FROM frames WHERE point = ? AND t_ns >= ? AND t_ns < ? AND state = 0 AND layout = ?",
-                    (pid, op.minute_start * 10**9, (op.minute_start + 60) * 10**9, self._layout))]
-                op.minute_values = vals
+                fr = c.execute("SELECT t_ns, v FROM frames WHERE point = ? AND t_ns >= ? AND t_ns < ? AND state = 0 "
+                               "AND layout = ? ORDER BY t_ns",
+                               (pid, op.minute_start * 10**9, (op.minute_start + 60) * 10**9, self._layout)).fetchall()
+                op.minute_values = [np.frombuffer(v, dtype="<f4").astype(np.float64) for _, v in fr]
+                op.minute_times = [(int(t_ns) - op.minute_start * 10**9) / 1e9 for t_ns, _ in fr]
             last = c.execute("SELECT max(t_ns) FROM frames WHERE point = ?", (pid,)).fetchone()[0]
             op.latest_ns = int(last or 0)
         for pid, start_ns, end_ns, state in c.execute(
@@ -364,6 +394,31 @@ class HistoryRecorder:
                                "AND start_s = ?", stale)
         if self._open:
             log.info("history restored", points=len(self._open), path=str(self.db.path))
+
+    def _legacy_time_sums(self, pid: int, start: int, length: int, sketches: Sequence[LogSketch]
+                          ) -> npt.NDArray[np.float64]:
+        """Time sums of an open hour or day written before schema version 2 (its state held no times): from its
+        closed minute roll-ups (each at its own mean time, or its middle when it has none), scaled to the
+        sketches' counts where minutes were pruned; the middle of the time elapsed so far when none is left."""
+        k = len(self.indicators)
+        counts = np.array([sk.count for sk in sketches], dtype=np.float64)
+        found = np.zeros(k)
+        sums = np.zeros(k)
+        for m_start, layout, blob, t_mean in self.db.conn.execute(
+                "SELECT start_s, layout, stats, t_mean FROM rollups WHERE point = ? AND level = 60 AND closed = 1 "
+                "AND start_s >= ? AND start_s < ?", (pid, start, start + length)).fetchall():
+            if int(layout) != self._layout:
+                continue
+            n = np.frombuffer(blob, dtype="<f4").reshape(len(STAT_FIELDS), k)[0].astype(np.float64)
+            off = np.full(k, 30.0) if t_mean is None else np.frombuffer(t_mean, dtype="<f4").astype(np.float64)
+            off = np.where(np.isfinite(off), off, 30.0)
+            found += n
+            sums += n * (int(m_start) - start + off)
+        latest = self.db.conn.execute("SELECT max(t_ns) FROM frames WHERE point = ?", (pid,)).fetchone()[0]
+        elapsed = min(float(length), max(0.0, (int(latest or 0) / 1e9) - start))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = np.where(found > 0, sums / np.where(found > 0, found, 1.0), elapsed / 2.0)
+        return np.asarray(mean * counts, dtype=np.float64)
 
     # ------------------------------------------------------------------ intake (any thread)
 
@@ -434,7 +489,7 @@ class HistoryRecorder:
         """Write ``batch`` in one transaction; returns how many of its frames were late (not newer than their
         point's latest recorded frame: skipped)."""
         frames: list[tuple[int, int, int, int, bytes]] = []
-        rollups: list[tuple[int, int, int, int, int, bytes, bytes | None]] = []
+        rollups: list[_Row] = []
         with self.db.transaction() as c:
             for point, t_ns, v, code in batch:
                 pid = self.db.point_id(point)
@@ -455,6 +510,7 @@ class HistoryRecorder:
                     if op.minute_start is None:
                         op.minute_start = start
                     op.minute_values.append(v)
+                    op.minute_times.append((t_ns - op.minute_start * 10**9) / 1e9)
                     op.dirty.add("minute")
                 else:
                     if op.period is None or op.period[0] != code:
@@ -485,13 +541,15 @@ class HistoryRecorder:
         op.period_dirty = False
 
     def _close_due(self, point: str, pid: int, op: _Open, t_s: int,
-                   rows: list[tuple[int, int, int, int, int, bytes, bytes | None]]) -> None:
+                   rows: list[_Row]) -> None:
         """Close the buckets that end at or before ``t_s`` (a new frame's time, whatever its state)."""
         if op.minute_start is not None and t_s >= op.minute_start + 60:
             if op.minute_values:
                 x = np.stack(op.minute_values)
-                rows.append((pid, 60, op.minute_start, self._layout, 1,
-                             _f32(summarize(x, self.settings.high_percentile)), None))
+                tt = np.asarray(op.minute_times)
+                stats = summarize(x, self.settings.high_percentile)
+                rows.append((pid, 60, op.minute_start, self._layout, 1, _f32(stats), None,
+                             _t_mean_blob(time_sums(tt, x), stats[0])))
                 for lname in ("hour", "day"):
                     length = LEVELS[lname]
                     start = op.minute_start // length * length
@@ -499,11 +557,16 @@ class HistoryRecorder:
                         self._close_level(pid, op, lname, rows)
                         op.starts[lname] = start
                         op.sketches[lname] = [LogSketch(_SKETCH_ALPHA) for _ in self.indicators]
+                        op.t_sums[lname] = np.zeros(len(self.indicators))
                     op.dirty.add(lname)
+                    before = op.t_sums.get(lname)
+                    op.t_sums[lname] = (np.zeros(len(self.indicators)) if before is None else before) + \
+                        time_sums(tt + (op.minute_start - start), x)
                 # the closed minute into the hour's and the day's sketches (its bins worked out once for both)
                 LogSketch.add_columns(op.sketches["hour"], x, also=[op.sketches["day"]])
             op.minute_start = None
             op.minute_values = []
+            op.minute_times = []
             op.dirty.discard("minute")
         for lname in ("hour", "day"):
             open_start = op.starts.get(lname)
@@ -511,19 +574,21 @@ class HistoryRecorder:
                 self._close_level(pid, op, lname, rows)
 
     def _close_level(self, pid: int, op: _Open, lname: str,
-                     rows: list[tuple[int, int, int, int, int, bytes, bytes | None]]) -> None:
+                     rows: list[_Row]) -> None:
         start = op.starts.pop(lname, None)
         sketches = op.sketches.pop(lname, None)
+        sums = op.t_sums.pop(lname, None)
         op.dirty.discard(lname)
         if start is None or sketches is None:
             return
-        rows.append((pid, LEVELS[lname], start, self._layout, 1, _f32(self._sketch_stats(sketches)), None))
+        stats = self._sketch_stats(sketches)
+        rows.append((pid, LEVELS[lname], start, self._layout, 1, _f32(stats), None,
+                     _t_mean_blob(np.zeros(len(sketches)) if sums is None else sums, stats[0])))
 
     def _sketch_stats(self, sketches: Sequence[LogSketch]) -> npt.NDArray[np.float64]:
         return np.array([sk.summary(self.settings.high_percentile) for sk in sketches], dtype=np.float64).T
 
-    def _open_rows(self, pid: int, op: _Open, rows: list[tuple[int, int, int, int, int, bytes, bytes | None]],
-                   with_minute: bool = False) -> None:
+    def _open_rows(self, pid: int, op: _Open, rows: list[_Row], with_minute: bool = False) -> None:
         """Rows of the still-open buckets (readers see the latest partial roll-ups; a restart continues them).
 
         The open minute's row is rewritten at every flush.  An open hour or day row is rewritten when a minute
@@ -531,24 +596,32 @@ class HistoryRecorder:
         day's sketches at every flush cost more than the rest of the history together (for 1,000 points, most
         of a core), for a partial roll-up at most a minute fresher.  ``with_minute`` (at :meth:`close`) writes
         them with the open minute too.  Either way the stored sketches hold the closed minutes only: a restart
-        takes the open minute's values back from the frames table."""
+        takes the open minute's values back from the frames table.  Each row's ``t_mean`` is the mean time of the
+        values its statistics hold."""
         minute = np.stack(op.minute_values) if op.minute_values else None
+        minute_t = np.asarray(op.minute_times)
         if op.minute_start is not None and minute is not None:
-            rows.append((pid, 60, op.minute_start, self._layout, 0,
-                         _f32(summarize(minute, self.settings.high_percentile)), None))
+            stats = summarize(minute, self.settings.high_percentile)
+            rows.append((pid, 60, op.minute_start, self._layout, 0, _f32(stats), None,
+                         _t_mean_blob(time_sums(minute_t, minute), stats[0])))
         if not with_minute:
             minute = None
+        zero = np.zeros(len(self.indicators))
         for lname in ("hour", "day"):
             if lname not in op.dirty and minute is None:
                 continue
             sketches = op.sketches.get(lname)
             start = op.starts.get(lname)
+            sums = op.t_sums.get(lname, zero)
             if minute is not None and op.minute_start is not None:
                 m_start = op.minute_start // LEVELS[lname] * LEVELS[lname]
                 if start is None or start != m_start:
-                    start, sketches = m_start, None
+                    start, sketches, sums = m_start, None, zero
             if start is None:
                 continue
+            view_sums = sums
+            if minute is not None and op.minute_start is not None:
+                view_sums = sums + time_sums(minute_t + (op.minute_start - start), minute)
             if minute is None and sketches is not None:
                 view = sketches
             else:
@@ -559,13 +632,14 @@ class HistoryRecorder:
                 if minute is not None:
                     LogSketch.add_columns(view, minute)
             stored = sketches if sketches is not None else [LogSketch(_SKETCH_ALPHA) for _ in self.indicators]
-            rows.append((pid, LEVELS[lname], start, self._layout, 0, _f32(self._sketch_stats(view)),
-                         _sketch_blob(stored)))
+            stats = self._sketch_stats(view)
+            rows.append((pid, LEVELS[lname], start, self._layout, 0, _f32(stats), _sketch_blob(stored, sums),
+                         _t_mean_blob(view_sums, stats[0])))
         op.dirty.clear()
 
     def _write_open_with_minute(self) -> None:
         """Rewrite every point's open hour and day rows with its open minute (at :meth:`close`)."""
-        rows: list[tuple[int, int, int, int, int, bytes, bytes | None]] = []
+        rows: list[_Row] = []
         for point, op in self._open.items():
             if op.minute_start is not None and op.minute_values:
                 self._open_rows(self.db.point_id(point), op, rows, with_minute=True)
@@ -642,7 +716,7 @@ class HistoryRecorder:
             length = LEVELS[what]
             total = int(c.execute("SELECT count(*) FROM rollups WHERE level = ? AND closed = 1",
                                   (length,)).fetchone()[0])
-            width = 4 * len(STAT_FIELDS) * len(self.indicators) + 24
+            width = 4 * (len(STAT_FIELDS) + 1) * len(self.indicators) + 24  # stats and t_mean
             sql = ("DELETE FROM rollups WHERE (level, start_s, point) IN (SELECT level, start_s, point FROM rollups "
                    "WHERE level = ? AND closed = 1 ORDER BY start_s LIMIT ?)")
             args = (length,)
@@ -719,9 +793,12 @@ class HistorySeries:
     """One indicator of one point read back from the history.
 
     ``level`` is ``"frames"`` (frame-rate values: ``t_s``, ``value`` = the value, ``state`` per frame) or a roll-up
-    level (``t_s`` = bucket start, and the roll-up arrays; ``value`` = the median).  ``periods``: the not-running
-    periods overlapping the range, ``(state, start_s, end_s)``.  ``high_percentile``: which percentile
-    ``p_high`` holds.
+    level (``t_s`` = bucket start, and the roll-up arrays; ``value`` = the median).  ``t_mean_s``: the mean time of
+    the values each bucket holds (the frame time itself at frame rate; a bucket's middle where the file does not
+    know it: rows written before schema version 2) — the time a bucket's statistics stand for, which is its middle
+    only when its values fill it evenly (not the open bucket, nor one of a machine that ran part of it).
+    ``periods``: the not-running periods overlapping the range, ``(state, start_s, end_s)``.  ``high_percentile``:
+    which percentile ``p_high`` holds.
     """
 
     point: str
@@ -737,10 +814,18 @@ class HistorySeries:
     state: tuple[str, ...] = ()
     periods: tuple[tuple[str, float, float], ...] = ()
     high_percentile: float = 95.0
+    t_mean_s: npt.NDArray[np.float64] | None = None
 
     @property
     def bucket_s(self) -> float:
         return float(LEVELS.get(self.level, 0))
+
+    @property
+    def stamp_s(self) -> npt.NDArray[np.float64]:
+        """The time each value stands for: :attr:`t_mean_s`, or each bucket's middle without it."""
+        if self.t_mean_s is not None:
+            return self.t_mean_s
+        return np.asarray(self.t_s + self.bucket_s / 2.0, dtype=np.float64)
 
 
 class HistoryReader:
@@ -761,6 +846,8 @@ class HistoryReader:
         if row is None or int(row[0]) > SCHEMA_VERSION:
             raise HistoryError(f"history database {self.path} has schema version {row and row[0]}; this edgevib "
                                f"reads up to {SCHEMA_VERSION}")
+        # a version 1 file (not yet opened by a writer, which migrates it) has no mean times: bucket middles
+        self._t_mean_column = "t_mean" if int(row[0]) >= 2 else "NULL"
         self.high_percentile = high_percentile
         self._layouts: dict[int, tuple[str, ...]] = {}
 
@@ -871,29 +958,34 @@ class HistoryReader:
                 v.append(float(vals[names.index(indicator)]))
                 st.append(MACHINE_STATES[int(state)])
             return HistorySeries(point, indicator, "frames", np.asarray(t), np.asarray(v), state=tuple(st),
-                                 periods=periods, high_percentile=self.high_percentile)
+                                 periods=periods, high_percentile=self.high_percentile,
+                                 t_mean_s=np.asarray(t, dtype=np.float64))
         if level not in LEVELS:
             raise HistoryError(f"level {level!r} is not frames, minute, hour, day or auto")
         length = LEVELS[level]
         lo_s = -(2**62) if since_s is None else math.floor(since_s) // length * length
         hi_s = 2**62 if until_s is None else math.ceil(until_s)
-        rows = self.conn.execute("SELECT start_s, layout, stats FROM rollups WHERE point = ? AND level = ? AND "
-                                 "start_s >= ? AND start_s <= ? ORDER BY start_s",
+        rows = self.conn.execute(f"SELECT start_s, layout, stats, {self._t_mean_column} FROM rollups WHERE point = ? "
+                                 "AND level = ? AND start_s >= ? AND start_s <= ? ORDER BY start_s",
                                  (pid, length, lo_s, hi_s)).fetchall()
         starts: list[float] = []
+        stamps: list[float] = []
         stats: list[npt.NDArray[np.float32]] = []
-        for start, lid, blob in rows:
+        for start, lid, blob, t_mean in rows:
             lnames = self._layout(int(lid))
             if indicator not in lnames:
                 continue
-            stat = np.frombuffer(blob, dtype="<f4").reshape(len(STAT_FIELDS), len(lnames))[:, lnames.index(indicator)]
+            j = lnames.index(indicator)
+            stat = np.frombuffer(blob, dtype="<f4").reshape(len(STAT_FIELDS), len(lnames))[:, j]
             if stat[0] > 0:  # buckets with running values only
+                off = float(np.frombuffer(t_mean, dtype="<f4")[j]) if t_mean is not None else math.nan
                 starts.append(float(start))
+                stamps.append(float(start) + (off if math.isfinite(off) else length / 2.0))
                 stats.append(stat)
         count, vmin, mean, vmax, p50, p_high = np.asarray(stats, dtype=np.float64).reshape(-1, len(STAT_FIELDS)).T
         return HistorySeries(point, indicator, level, np.asarray(starts, dtype=np.float64), p50, count=count,
                              vmin=vmin, mean=mean, vmax=vmax, p_high=p_high, periods=periods,
-                             high_percentile=self.high_percentile)
+                             high_percentile=self.high_percentile, t_mean_s=np.asarray(stamps, dtype=np.float64))
 
     def _periods(self, pid: int, lo_ns: int, hi_ns: int) -> tuple[tuple[str, float, float], ...]:
         rows = self.conn.execute("SELECT state, start_ns, end_ns FROM periods WHERE point = ? AND end_ns >= ? AND "

@@ -26,7 +26,7 @@ import numpy.typing as npt
 
 from edgevib.pipelines.types import PipelineError
 
-__all__ = ["STAT_FIELDS", "LogSketch", "RollupError", "summarize"]
+__all__ = ["STAT_FIELDS", "LogSketch", "RollupError", "summarize", "time_sums"]
 
 FloatArray = npt.NDArray[np.float64]
 STAT_FIELDS: tuple[str, ...] = ("count", "min", "mean", "max", "p50", "p_high")
@@ -77,6 +77,24 @@ def summarize(values: npt.ArrayLike, high_percentile: float = 95.0) -> FloatArra
         frac = pos - lo
         out[row, have] = srt[lo, cols] + frac * (srt[hi, cols] - srt[lo, cols])
     return out
+
+
+def time_sums(t_offset_s: npt.ArrayLike, values: npt.ArrayLike) -> FloatArray:
+    """Per indicator, the sum of the times of its values that are present: array (n_indicators,).
+
+    ``t_offset_s``: shape (n,), each value's time in s from the bucket's start; ``values``: shape (n, n_indicators)
+    (or (n,)), NaN = missing (not counted, as in :func:`summarize`).  Divided by the count of :func:`summarize` it
+    gives the mean time of the values a bucket holds — the time its statistics stand for, which is the bucket's
+    middle only when its values fill it evenly (a sum, so that a bucket that takes its values in batches, as an
+    hour takes its minutes, adds them up).
+    """
+    x = np.asarray(values, dtype=np.float64)
+    if x.ndim == 1:
+        x = x[:, None]
+    t = np.asarray(t_offset_s, dtype=np.float64).reshape(-1)
+    if x.ndim != 2 or t.size != x.shape[0]:
+        raise RollupError(f"{t.size} times for values of shape {x.shape}")
+    return np.asarray(t @ np.isfinite(x), dtype=np.float64)
 
 
 def _occupied_bins(x: FloatArray, finite: npt.NDArray[np.bool_], bins: FloatArray) -> list[list[tuple[int, int, int]]]:

@@ -317,3 +317,125 @@ def test_the_daemons_history_survives_sigkill_and_restart(tmp_path: Path) -> Non
     assert np.all(np.isin(committed, frames.t_s)) and frames.t_s.size >= committed.size + 6
     running = sum(s == "running" for s in frames.state)
     assert minutes.count is not None and int(minutes.count.sum()) == running
+
+
+def _intermittent(days: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Frame times (s), values (n, 2) and states of a machine that runs 00:00–00:20 and 07:10–07:15 UTC each day
+    (a frame every 30 s, stopped frames every 10 min in between); indicator "b" is missing in every third frame."""
+    day0 = T0 // 86400 * 86400
+    t, state = [], []
+    for d in range(days):
+        base = day0 + d * 86400
+        run = [base + s for s in range(0, 1200, 30)] + [base + 25800 + s for s in range(0, 300, 30)]
+        stop = [base + s for s in range(1800, 86400, 600) if not 25800 <= s < 26100]
+        for x in sorted(run + stop):
+            t.append(float(x))
+            state.append("running" if x in run else "stopped")
+    tt = np.asarray(t)
+    rng = np.random.default_rng(8)
+    v = np.stack([rng.lognormal(0.0, 0.1, tt.size), rng.lognormal(1.0, 0.1, tt.size)], axis=1)
+    v[::3, 1] = np.nan
+    return tt, v, np.asarray(state)
+
+
+def _check_stamps(path: str, t: np.ndarray, v: np.ndarray, state: np.ndarray, atol_s: float,
+                  legacy_until_s: float = -np.inf) -> int:
+    """Every roll-up bucket's stamp against the mean time of the running values it holds (numpy reference);
+    buckets that ended by ``legacy_until_s`` (closed before schema version 2) at their middle instead."""
+    checked = 0
+    with HistoryReader(path) as r:
+        for j, name in enumerate(("a", "b")):
+            for level, length in (("minute", 60), ("hour", 3600), ("day", 86400)):
+                s = r.series("P-1", name, level=level)
+                assert s.t_mean_s is not None and s.t_mean_s.shape == s.t_s.shape
+                for start, stamp in zip(s.t_s, s.stamp_s, strict=True):
+                    sel = (state == "running") & np.isfinite(v[:, j]) & (t >= start) & (t < start + length)
+                    legacy = start + length <= legacy_until_s
+                    want = start + length / 2.0 if legacy else float(np.mean(t[sel]))
+                    assert stamp == pytest.approx(want, abs=atol_s), (name, level, start)
+                    checked += 1
+            frames = r.series("P-1", name, level="frames")
+            assert_allclose(frames.stamp_s, frames.t_s)
+    return checked
+
+
+def test_bucket_stamps_are_the_mean_time_of_the_values_they_hold(tmp_path: Path) -> None:
+    # A bucket's statistics stand for the mean time of its values, not its middle: here the machine runs 25 of
+    # the day's 1440 minutes, so a day bucket's middle (12:00) is 9–12 h away from its values.  Checked for
+    # every minute, hour and day bucket against numpy's mean of the recorded times, across a restart mid-minute,
+    # mid-hour and mid-day, for an indicator missing in some frames; float32 offsets from the bucket start
+    # (resolution 8 ms at a day) bound the tolerance.
+    t, v, state = _intermittent(3)
+    s = _settings(tmp_path)
+    cut = int(np.searchsorted(t, t[0] + 2 * 86400 + 25800 + 95))  # 07:11:35 on the third day
+    rec = HistoryRecorder(s, ("a", "b"))
+    for i in range(cut):
+        rec.record("P-1", int(t[i] * 1e9), v[i], str(state[i]))
+        if i % 50 == 0:
+            rec.flush()
+    rec.close()
+    rec = HistoryRecorder(s, ("a", "b"))
+    for i in range(cut, t.size):
+        rec.record("P-1", int(t[i] * 1e9), v[i], str(state[i]))
+    rec.close()
+    assert _check_stamps(s.path, t, v, state, atol_s=0.02) > 100
+    # the open (still filling) bucket before the recorder closes: the closed minutes it holds so far
+    rec = HistoryRecorder(_settings(tmp_path / "open"), ("a", "b"))
+    first = t < t[0] + 86400 + 600  # up to 00:10 of the second day
+    for i in np.flatnonzero(first):
+        rec.record("P-1", int(t[i] * 1e9), v[i], str(state[i]))
+    rec.flush()
+    with HistoryReader(rec.settings.path) as r:
+        day = r.series("P-1", "a", level="day")
+        closed_minutes = (state == "running") & (t >= day.t_s[-1]) & (t < (t[first][-1] // 60) * 60)
+        assert day.stamp_s[-1] == pytest.approx(float(np.mean(t[closed_minutes])), abs=0.02)
+        assert day.stamp_s[-1] - day.t_s[-1] < 600  # not its middle, 12 h on
+    rec.close()
+
+
+def test_a_version_1_history_is_migrated_on_open(tmp_path: Path) -> None:
+    # A file written before bucket mean times were kept (schema version 1: no rollups.t_mean, open buckets' state
+    # without time sums) is read as it is (bucket middles), brought to version 2 by the first writer that opens
+    # it, and goes on: its old rows stay at their middles, the open day continues from its minute roll-ups (each
+    # at its middle: within 30 s, here 15 s — frames at :00 and :30 of each minute) and new rows are exact.
+    from edgevib.daemon.history import SCHEMA_VERSION
+
+    t, v, state = _intermittent(3)
+    s = _settings(tmp_path)
+    cut = int(np.searchsorted(t, t[0] + 86400 + 900))  # 00:15 on the second day: the open day has 30 frames
+    rec = HistoryRecorder(s, ("a", "b"))
+    for i in range(cut):
+        rec.record("P-1", int(t[i] * 1e9), v[i], str(state[i]))
+    rec.close()
+    conn = sqlite3.connect(s.path)  # the layout and open-bucket state version 1 wrote
+    conn.execute("ALTER TABLE rollups DROP COLUMN t_mean")
+    for key, blob in conn.execute("SELECT rowid_key, sketch FROM (SELECT level || ',' || start_s || ',' || point "
+                                  "AS rowid_key, sketch FROM rollups WHERE sketch IS NOT NULL)").fetchall():
+        a = np.frombuffer(blob, dtype="<f8")
+        level, start, point = (int(x) for x in key.split(","))
+        conn.execute("UPDATE rollups SET sketch = ? WHERE level = ? AND start_s = ? AND point = ?",
+                     (a[:a.size - int(a[0])].tobytes(), level, start, point))  # without the time sums
+    conn.execute("UPDATE schema_version SET version = 1")
+    conn.commit()
+    conn.close()
+    legacy_until = t[cut - 1]  # the buckets that ended by the last frame before the upgrade were closed then
+    with HistoryReader(s.path) as r:  # read as it is: bucket middles
+        day = r.series("P-1", "a", level="day")
+        assert_allclose(day.stamp_s, day.t_s + 43200.0)
+    rec = HistoryRecorder(s, ("a", "b"))
+    for i in range(cut, t.size):
+        rec.record("P-1", int(t[i] * 1e9), v[i], str(state[i]))
+    rec.close()
+    conn = sqlite3.connect(s.path)
+    assert conn.execute("SELECT version FROM schema_version").fetchone()[0] == SCHEMA_VERSION == 2
+    assert "t_mean" in [c[1] for c in conn.execute("PRAGMA table_info(rollups)")]
+    conn.close()
+    with HistoryReader(s.path) as r:
+        day = r.series("P-1", "a", level="day")
+        assert day.t_s.size == 3
+        assert day.stamp_s[0] == day.t_s[0] + 43200.0                  # closed before the upgrade: its middle
+        for k in (1, 2):                                                # continued across the upgrade; new
+            sel = (state == "running") & (t >= day.t_s[k]) & (t < day.t_s[k] + 86400)
+            assert day.stamp_s[k] == pytest.approx(float(np.mean(t[sel])), abs=15.5 if k == 1 else 0.02)
+    # every bucket opened after the upgrade is exact, the older ones at their middles
+    _check_stamps(s.path, t, v, state, atol_s=15.5, legacy_until_s=legacy_until)

@@ -123,3 +123,23 @@ def test_single_row_paths_agree_with_the_array_paths() -> None:
     for sk, v in zip(b, row[0], strict=True):
         sk.add([v])
     assert [(x.count, x.pos, x.neg, x.zeros) for x in a] == [(x.count, x.pos, x.neg, x.zeros) for x in b]
+
+
+def test_time_sums_over_the_values_present_give_numpys_mean_time() -> None:
+    # The mean time of the values a bucket holds (its stamp) = time_sums / summarize's count, against numpy's mean
+    # of the times of each indicator's finite values; batches add up (an hour from its minutes).
+    from edgevib.pipelines.rollup import time_sums
+
+    rng = np.random.default_rng(12)
+    t = np.sort(rng.uniform(0.0, 3600.0, 500))
+    x = rng.lognormal(0.0, 0.3, size=(500, 3))
+    x[rng.random(500) < 0.3, 1] = np.nan
+    x[:, 2] = np.nan
+    sums = time_sums(t, x)
+    count = summarize(x)[0]
+    for j in (0, 1):
+        assert sums[j] / count[j] == pytest.approx(float(np.mean(t[np.isfinite(x[:, j])])), rel=1e-12)
+    assert sums[2] == 0.0 and count[2] == 0
+    assert_allclose(time_sums(t[:200], x[:200]) + time_sums(t[200:], x[200:]), sums, rtol=1e-12)
+    with pytest.raises(RollupError, match="499 times for values of shape"):
+        time_sums(t[1:], x)
