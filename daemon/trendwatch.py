@@ -228,7 +228,7 @@ def evaluate(reader: HistoryReader, point: str, indicator: str, *, spec: TrendSp
     except HistoryError:
         return doc
     doc["resolution"] = series.level
-    t = series.t_s + series.bucket_s / 2.0  # a bucket's value stands for its middle
+    t = series.stamp_s  # a bucket's value stands for the mean time of the values it holds
     y = series.value
     step_thr = 0.25 * iso[1] if (iso is not None and indicator == "velocity_rms_mm_s") else None
     labelled: list[tuple[str, float]] = []

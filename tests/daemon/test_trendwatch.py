@@ -504,3 +504,51 @@ def test_a_level_beyond_the_zone_c_boundary_asks_for_a_planned_inspection(tmp_pa
         lims = {lim["label"]: lim for lim in d["limits"]}
         assert lims["zone C"]["status"] == "reached" and lims["zone D"]["status"] != "reached"
         assert d["advice"] == "plan" and "zone C level (2.8 mm/s) is reached" in d["advice_text"]
+
+
+@pytest.mark.parametrize("law", ["linear", "exponential"])
+def test_a_projection_from_sparse_day_rollups_matches_the_one_from_the_raw_values(tmp_path: Path, law: str) -> None:
+    # One running frame a day at 03:00 UTC (a machine measured once a day), 70 days, 3 % log-normal scatter,
+    # read back at day resolution (max_points below the 70 hour buckets): each day bucket holds one value, so its
+    # statistics are that value exactly and its stamp must be that value's time, 9 h before the bucket's middle —
+    # the last bucket is still filling when the evaluation runs at 03:00.  The projection from the roll-ups then
+    # equals the one from the raw values (tolerance 60 s: float32 storage of the values), and both stand near the
+    # analytic crossing: linear v = v0 + b·t reaches L at t* = (L − v0)/b, exponential v = v0·exp(k·t) at
+    # t* = ln(L/v0)/k (closed forms).  Stamped at the middles, the same roll-ups projected 9 h (0.375 d) late.
+    from edgevib.pipelines.trend import assess
+
+    day0 = T0 // D * D
+    v0, limit, cross_day = 1.0, 2.8, 100.0
+    days = np.arange(70) + 3.0 / 24.0
+    if law == "linear":
+        b = (limit - v0) / cross_day
+        truth = v0 + b * days
+    else:
+        k = math.log(limit / v0) / cross_day
+        truth = v0 * np.exp(k * days)
+    rng = np.random.default_rng(17)
+    values = truth * np.exp(0.03 * rng.standard_normal(days.size))
+    path = str(tmp_path / "h.sqlite")
+    rec = HistoryRecorder(HistorySettings(file=path, path=path), HISTORY_INDICATORS, durable=False)
+    j = HISTORY_INDICATORS.index("velocity_rms_mm_s")
+    t_raw = day0 + days * D
+    for t, x in zip(t_raw, values, strict=True):
+        v = np.full(len(HISTORY_INDICATORS), math.nan)
+        v[j] = x
+        rec.record(POINT, round(t * 1e9), v, "running")
+    rec.close()  # the open day's row with its open minute (a running recorder writes it when the minute closes)
+    spec = TrendSettings(min_span_s=D).spec()
+    now = float(t_raw[-1])
+    with HistoryReader(path) as r:
+        doc = evaluate(r, POINT, "velocity_rms_mm_s", spec=spec, window_s=90 * D, alert=limit, max_points=60)
+        series = r.series(POINT, "velocity_rms_mm_s", since_s=now - 90 * D, until_s=now, max_points=60)
+    assert doc["resolution"] == "day" and doc["n"] == 70 and doc["rising"]
+    (lim,) = doc["limits"]
+    raw = assess(t_raw, values, now, [("alert", limit)], spec).projections[0]
+    assert lim["status"] == raw.status == "rising" and raw.eta_s is not None
+    assert lim["eta_s"] == pytest.approx(raw.eta_s, abs=60.0)
+    true_left = (day0 + cross_day * D) - now
+    assert lim["eta_low_s"] <= true_left <= lim["eta_high_s"]
+    assert lim["eta_s"] == pytest.approx(true_left, rel=0.1)
+    middle = assess(series.t_s + series.bucket_s / 2.0, series.value, now, [("alert", limit)], spec).projections[0]
+    assert middle.eta_s is not None and (middle.eta_s - raw.eta_s) / D == pytest.approx(0.375, abs=0.02)
