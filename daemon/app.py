@@ -10,9 +10,12 @@ A point is in at most one analysis batch at a time, so its frames (and trend) st
 frames of the point that has waited longest and of every other idle point sharing its plan; it starts once
 :data:`MAX_BATCH` frames are queued or the oldest has waited :data:`BATCH_WINDOW_S` (50 ms), because one call on
 many frames costs a fraction per frame of a call on one (the pipeline's fixed cost per call is several frames'
-worth): under load the batches fill up, and when idle a frame waits at most the window.  An analysis
-worker slot is freed as soon as the analysis returns: the results go to every sink's own queue and a task per
-sink hands them over, so a slow sink delays neither the next analysis batch nor the other sinks.  Ordering and
+worth): under load the batches fill up, and when idle a frame waits at most the window.  One batch more than there
+are workers may be in flight, queued behind them, so a worker goes on to its next batch at once; it holds no
+frame of a machine already in a batch (that machine's state after those results judges its next frames, as if
+the batches ran one after the other).  An analysis worker slot is freed as soon as the analysis returns: the
+results go to every sink's own queue and a task per sink hands them over, so a slow sink delays neither the next
+analysis batch nor the other sinks.  Ordering and
 bounds (:class:`SinkChannel`):
 
 * every sink receives a point's results in frame order (one FIFO per sink, filled in analysis order, and a point
@@ -292,6 +295,8 @@ class Daemon:
         self._given_sources = list(sources) if sources is not None else None
         self._source_tasks: dict[str, asyncio.Task[None]] = {}
         self._busy: set[str] = set()  # points in an analysis batch
+        self._busy_machines: dict[str, int] = {}  # machine → its points in analysis batches
+        self._batch_machine: dict[str, str] = {}  # point in an analysis batch → its machine when it was taken
         self._ready: dict[str, float] = {}  # idle points with queued frames → when they became ready (oldest first)
         self._queued_frames = 0  # frames in the ingest queues, as last seen per point (_counted)
         self._counted: dict[str, int] = {}
@@ -605,7 +610,7 @@ class Daemon:
             self._ready[pid] = time.monotonic()
         # wake the scheduler only when it could start a batch now: a worker is free, and no batch-window timer
         # is pending or a full batch is queued (a finished batch and the timer wake it themselves)
-        if len(self._batches) < self.config.analysis.workers and (
+        if len(self._batches) < self._batch_slots() and (
                 self._timer is None or self._queued_frames >= MAX_BATCH):
             self._wake.set()
 
@@ -614,10 +619,10 @@ class Daemon:
         while True:
             await self._wake.wait()
             self._wake.clear()
-            while self._ready and len(self._batches) < self.config.analysis.workers and not self._held_back():
+            while self._ready and len(self._batches) < self._batch_slots() and not self._held_back():
                 wait_s = self._batch_wait(time.monotonic())
                 if wait_s > 0:  # more frames are on their way: a larger batch costs less per frame
-                    if self._timer is None:
+                    if self._timer is None and math.isfinite(wait_s):
                         self._timer = loop.call_later(wait_s, self._timer_fired)
                     break
                 batch = self._take_batch()
@@ -626,6 +631,12 @@ class Daemon:
                 task = loop.create_task(self._run_batch(*batch))
                 self._batches.add(task)
                 task.add_done_callback(self._batch_done)
+
+    def _batch_slots(self) -> int:
+        """Analysis batches in flight at most: one per worker and one queued behind them, so that a worker starts
+        its next batch as soon as it has finished one, without waiting for the event loop to hand it over (a turn
+        of the loop can take several milliseconds of reading and delivering under load)."""
+        return self.config.analysis.workers + 1
 
     def _timer_fired(self) -> None:
         self._timer = None
@@ -636,7 +647,11 @@ class Daemon:
         point has waited :data:`BATCH_WINDOW_S`."""
         if self._queued_frames >= MAX_BATCH:
             return 0.0
-        oldest = next(iter(self._ready.values()))
+        busy, points = self._busy_machines, self.points
+        oldest = next((t for pid, t in self._ready.items()
+                       if (st := points.get(pid)) is None or st.machine.id not in busy), None)
+        if oldest is None:  # every waiting point's machine is in a batch in flight: its end wakes the scheduler
+            return math.inf
         return max(0.0, oldest + BATCH_WINDOW_S - now)
 
     def _batch_done(self, task: asyncio.Task[None]) -> None:
@@ -653,11 +668,16 @@ class Daemon:
         streams = self.ingest.streams
         plan: AnalysisPlan | None = None
         jobs: list[FrameJob] = []
+        # A machine with frames in a batch in flight waits for its results: its state after them decides how its
+        # next frames are judged (as if the batches ran one after the other).
+        in_flight = set(self._busy_machines)
         for pid in list(self._ready):
             st, stream = self.points.get(pid), streams.get(pid)
             if st is None or stream is None or not stream.queue:  # removed or replaced by a reload
                 del self._ready[pid]
                 self._queued_frames -= self._counted.pop(pid, 0)
+                continue
+            if st.machine.id in in_flight:
                 continue
             if plan is None:
                 plan = st.plan
@@ -670,6 +690,8 @@ class Daemon:
             self._counted[pid] = len(q)
             del self._ready[pid]
             self._busy.add(pid)
+            mid = self._batch_machine[pid] = st.machine.id
+            self._busy_machines[mid] = self._busy_machines.get(mid, 0) + 1
             if len(jobs) >= MAX_BATCH:
                 break
         return (plan, jobs) if plan is not None and jobs else None
@@ -677,6 +699,14 @@ class Daemon:
     def _release(self, pids: set[str]) -> None:
         """Points whose batch is done: idle again, and ready at once if frames queued up meanwhile."""
         self._busy.difference_update(pids)
+        for pid in pids:
+            mid = self._batch_machine.pop(pid, None)
+            if mid is not None:
+                left = self._busy_machines.get(mid, 0) - 1
+                if left > 0:
+                    self._busy_machines[mid] = left
+                else:
+                    self._busy_machines.pop(mid, None)
         now = time.monotonic()
         for pid in pids:
             stream = self.ingest.streams.get(pid)

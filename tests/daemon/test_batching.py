@@ -104,3 +104,64 @@ async def test_a_full_batch_goes_at_once_and_the_rest_follows_in_order(tmp_path:
     for i in range(points):  # per point, frames in order
         ends = [r.t_end_ns for r in seen if r.point_id == f"P-101-{i:02d}"]
         assert ends == sorted(ends) and len(ends) == 3
+
+
+async def test_a_batch_queues_behind_the_running_one_without_a_machine_already_in_flight(tmp_path: Path) -> None:
+    # One worker: while a batch of two of machine P-101's points is analysed, the next batch is taken at once (the
+    # worker goes on to it without a round trip through the event loop), but only from the other machine: the
+    # frames of P-101's two other points wait for its results, so its state after them judges them, as if the
+    # batches ran one after the other.
+    import threading
+
+    cfg = parse_config({
+        "site": {"name": "quarry-lane", "state_dir": str(tmp_path)},
+        "analysis": {"frame_samples": N, "overlap": 0.0, "queue_frames": 4, "workers": 1},
+        "alarms": {"enabled": False},
+        "sources": [{"name": "scripted", "type": "mqtt", "url": "mqtt://127.0.0.1:1", "topics": ["x/#"]}],
+        "machines": [{"id": m, "group": 2, "support": "rigid", "speed_rpm": 1500.0} for m in ("P-101", "P-102")],
+        "points": [{"id": f"{m}-{i % 4:02d}", "machine": m, "source": "scripted", "sensor": f"QL-{i:02d}",
+                    "fs_hz": FS, "block_samples": N} for m, i in [("P-101", i) for i in range(4)]
+                   + [("P-102", i) for i in range(4, 8)]],
+    })
+    gate = threading.Event()
+    calls: list[int] = []
+
+    def analyze(x: Any, plan: Any, shaft_hz: Any) -> Any:
+        calls.append(x.shape[0])
+        gate.wait(10.0)  # the first batch is held in the worker until the test has looked
+        return analyze_frames(x, plan, shaft_hz=shaft_hz)
+
+    daemon = Daemon(cfg, registry=CollectorRegistry(), analyze=analyze, sources=[],
+                    serve_metrics=False)
+    seen: list[Any] = []
+
+    class Probe:
+        async def start(self) -> None: ...
+        async def stop(self) -> None: ...
+        async def on_frames(self, results: list[Any]) -> None:
+            seen.extend(results)
+
+    daemon.add_sink(Probe())
+    await daemon.start()
+    try:
+        for i in range(2):
+            daemon.ingest.block("scripted", block(i, 0), 1)
+        await asyncio.sleep(3 * BATCH_WINDOW_S)  # the first batch (P-101-00 and -01) is in the worker
+        for i in range(2, 8):
+            daemon.ingest.block("scripted", block(i, 0), 1)
+        await asyncio.sleep(3 * BATCH_WINDOW_S)
+        held = sorted(daemon._busy)
+        in_flight = len(daemon._batches)
+        gate.set()
+        for _ in range(400):
+            if len(seen) == 8 and daemon.idle and not daemon._ready:
+                break
+            await asyncio.sleep(0.01)
+    finally:
+        gate.set()
+        await daemon.stop()
+    assert in_flight == 2
+    assert held == ["P-101-00", "P-101-01"] + [f"P-102-{i:02d}" for i in range(4)]
+    assert calls == [2, 4, 2]  # P-101-00/01, then P-102's four, then P-101-02/03
+    assert [r.point_id for r in seen] == ["P-101-00", "P-101-01"] + [f"P-102-{i:02d}" for i in range(4)] \
+        + ["P-101-02", "P-101-03"]
