@@ -28,13 +28,14 @@ these models and must not load ``edgevib.pipelines``); plan checks import it whe
 
 from __future__ import annotations
 
+import contextlib
 import difflib
 import hashlib
 import math
 import os
 import re
 import tomllib
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated, Any, ClassVar, Literal
@@ -1369,8 +1370,12 @@ _PROBLEMS: dict[str, Callable[[object, dict[str, Any]], str]] = {
 
 
 def _translate(exc: ValidationError) -> ConfigError:
-    """The first problem of a validation error, in our words, with its dotted key path."""
-    err = exc.errors(include_url=False)[0]
+    """Every problem of a validation error, in our words, each with its dotted key path."""
+    return ConfigError.all_of([_translate_one(err) for err in exc.errors(include_url=False)])
+
+
+def _translate_one(err: Any) -> ConfigError:
+    """One problem of a validation error (one entry of ``ValidationError.errors()``)."""
     loc, kind, value, ctx = _clean(tuple(err["loc"])), err["type"], err.get("input"), err.get("ctx") or {}
     problem: str = err["msg"]
     if kind in _PROBLEMS:
@@ -1388,6 +1393,28 @@ def _translate(exc: ValidationError) -> ConfigError:
         else:
             problem = str(cause) if cause is not None else problem
     return ConfigError(_dotted(loc), problem)
+
+
+class _Findings:
+    """The errors found so far: each check runs under :meth:`check`, which keeps its error and goes on, so a file
+    with several mistakes reports them all at once (:meth:`raise_any`)."""
+
+    def __init__(self) -> None:
+        self.errors: list[ConfigError] = []
+
+    @contextlib.contextmanager
+    def check(self) -> Iterator[None]:
+        try:
+            yield
+        except ConfigError as exc:
+            self.errors.append(exc)
+
+    def add(self, path: str, problem: str) -> None:
+        self.errors.append(ConfigError(path, problem))
+
+    def raise_any(self) -> None:
+        if self.errors:
+            raise ConfigError.all_of(self.errors)
 
 
 # ------------------------------------------------------------------------------------------------ paths
@@ -1438,25 +1465,27 @@ def _missing(path: str, problem: str, written: str, resolved: str, deferred: lis
     raise ConfigError(path, problem)
 
 
-def _files(m: BaseModel, path: str, base: Path, deferred: list[tuple[str, str, str, str]]) -> BaseModel:
+def _files(m: BaseModel, path: str, base: Path, deferred: list[tuple[str, str, str, str]],
+           found: _Findings) -> BaseModel:
     """``m`` with every ``*_file`` key resolved against ``base`` (the file must exist, or be in ``deferred``),
-    every ``*_env`` variable checked, and the same for the tables inside it."""
+    every ``*_env`` variable checked, and the same for the tables inside it; each missing one goes to ``found``."""
     update: dict[str, Any] = {}
     for name, f in type(m).model_fields.items():
         v = getattr(m, name)
         key = f"{path}.{f.alias or name}" if path else (f.alias or name)
         if name.endswith("_file") and isinstance(v, str):
-            resolved = _resolve_path(v, base, key)
-            if not Path(resolved).is_file():
-                what = "secret file" if name.endswith(("password_file", "token_file")) else "file"
-                _missing(key, f"{what} {resolved} does not exist", v, resolved, deferred)
-            update[name] = resolved
+            with found.check():
+                resolved = _resolve_path(v, base, key)
+                if not Path(resolved).is_file():
+                    what = "secret file" if name.endswith(("password_file", "token_file")) else "file"
+                    _missing(key, f"{what} {resolved} does not exist", v, resolved, deferred)
+                update[name] = resolved
         elif name.endswith("_env") and isinstance(v, str) and v not in os.environ:
-            raise ConfigError(key, f"environment variable {v} is not set")
+            found.add(key, f"environment variable {v} is not set")
         elif isinstance(v, BaseModel):
-            update[name] = _files(v, key, base, deferred)
+            update[name] = _files(v, key, base, deferred, found)
         elif isinstance(v, tuple) and v and all(isinstance(x, BaseModel) for x in v):
-            update[name] = tuple(_files(x, f"{key}[{i}]", base, deferred) for i, x in enumerate(v))
+            update[name] = tuple(_files(x, f"{key}[{i}]", base, deferred, found) for i, x in enumerate(v))
     return m.model_copy(update=update) if update else m
 
 
@@ -1522,22 +1551,25 @@ def _check_plans(cfg: Config) -> dict[str, AnalysisPlan]:
 
     machines = {m.id: m for m in cfg.machines}
     plans: dict[str, AnalysisPlan] = {}
+    found = _Findings()
     for i, p in enumerate(cfg.all_points):
         try:
             plans[p.id] = plan_for(p, machines[p.machine])
         except GeometryError as exc:
-            raise ConfigError(f"points[{i}].bearing", f"impossible bearing geometry: {exc}") from None
+            found.add(f"points[{i}].bearing", f"impossible bearing geometry: {exc}")
+            continue
         except PipelineError as exc:
             key = _PLAN_KEYS.get(exc.field or "")
-            raise ConfigError(f"points[{i}].{key}" if key else f"points[{i}]",
-                              f"analysis plan rejected: {exc}") from None
+            found.add(f"points[{i}].{key}" if key else f"points[{i}]", f"analysis plan rejected: {exc}")
+            continue
         env, bandwidth = p.band_pair, p.bandwidth_hz or (0.0, math.inf)
         if env is not None and env[1] > bandwidth[1]:
-            raise ConfigError(f"points[{i}].envelope_band_hz", f"high edge {env[1]:g} Hz is above the sensor's "
-                              f"usable bandwidth {bandwidth[1]:g} Hz")
-        if env is not None and env[0] < bandwidth[0]:
-            raise ConfigError(f"points[{i}].envelope_band_hz", f"low edge {env[0]:g} Hz is below the sensor's "
-                              f"usable bandwidth {bandwidth[0]:g} Hz")
+            found.add(f"points[{i}].envelope_band_hz", f"high edge {env[1]:g} Hz is above the sensor's usable "
+                      f"bandwidth {bandwidth[1]:g} Hz")
+        elif env is not None and env[0] < bandwidth[0]:
+            found.add(f"points[{i}].envelope_band_hz", f"low edge {env[0]:g} Hz is below the sensor's usable "
+                      f"bandwidth {bandwidth[0]:g} Hz")
+    found.raise_any()
     return plans
 
 
@@ -1572,73 +1604,82 @@ def _connection_of(owner: _ReusesSource, key: str, cfg: Config) -> MqttConnectio
     return owner if owner.url is not None else None
 
 
-def _unique(table: str, key: str, what: str, values: list[str]) -> dict[str, int]:
-    """Each value's index in ``table``; a value given twice is a :class:`ConfigError` naming both places."""
+def _unique(table: str, key: str, what: str, values: list[str], found: _Findings) -> dict[str, int]:
+    """Each value's first index in ``table``; each repeat goes to ``found``, naming both places."""
     first: dict[str, int] = {}
     for i, v in enumerate(values):
         if v in first:
-            raise ConfigError(f"{table}[{i}].{key}", f"duplicate {what} {v!r} (also {table}[{first[v]}])")
-        first[v] = i
+            found.add(f"{table}[{i}].{key}", f"duplicate {what} {v!r} (also {table}[{first[v]}])")
+        else:
+            first[v] = i
     return first
 
 
-def _resolve_sources(cfg: Config) -> tuple[SourceConfig, ...]:
-    _unique("sources", "name", "source name", [s.name for s in cfg.sources])
+def _resolve_sources(cfg: Config, found: _Findings) -> tuple[SourceConfig, ...]:
+    _unique("sources", "name", "source name", [s.name for s in cfg.sources], found)
     return tuple(s.model_copy(update={"client_id": f"edgevib-{cfg.site.name}-{s.name}"})
                  if isinstance(s, MqttSourceConfig) and not s.client_id else s for s in cfg.sources)
 
 
-def _resolve_machines(cfg: Config) -> tuple[MachineConfig, ...]:
+def _resolve_machines(cfg: Config, found: _Findings) -> tuple[MachineConfig, ...]:
     sources = {s.name: s for s in cfg.sources}
-    _unique("machines", "id", "machine id", [m.id for m in cfg.machines])
+    _unique("machines", "id", "machine id", [m.id for m in cfg.machines], found)
     for i, m in enumerate(cfg.machines):
         tag = m.speed_tag
         if tag is None:
             continue
         key = f"machines[{i}].speed_tag"
         if tag.source not in sources:
-            raise _unknown_ref(f"{key}.source", "source", tag.source, sources)
+            found.errors.append(_unknown_ref(f"{key}.source", "source", tag.source, sources))
+            continue
         kind = sources[tag.source].type
         if kind == "opcua" and (tag.node is None or tag.topic is not None):
-            raise ConfigError(f"{key}.node", f"source {tag.source!r} is OPC UA: the speed tag needs a node "
-                              "(not a topic)")
+            found.add(f"{key}.node", f"source {tag.source!r} is OPC UA: the speed tag needs a node (not a topic)")
         if kind != "opcua" and (tag.topic is None or tag.node is not None):
-            raise ConfigError(f"{key}.topic", f"source {tag.source!r} is {kind}: the speed tag needs a topic "
-                              "(not a node)")
+            found.add(f"{key}.topic", f"source {tag.source!r} is {kind}: the speed tag needs a topic (not a node)")
     return cfg.machines
 
 
 def _resolve(cfg: Config, base: Path, digest: str) -> Config:
+    """References between tables, defaults from other tables and files; every problem found is reported."""
+    found = _Findings()
     deferred: list[tuple[str, str, str, str]] = []
-    cfg = _files(cfg, "", base, deferred)  # type: ignore[assignment]
+    cfg = _files(cfg, "", base, deferred, found)  # type: ignore[assignment]
     if cfg.view.actions and cfg.view.token is None and cfg.metrics.tls_client_ca_file is None:
-        raise ConfigError("view.actions", "acknowledging and shelving from the page need authentication: set "
-                          "[view] token_file (or token_env), or require client certificates with [metrics] "
-                          "tls_client_ca_file")
-    state_dir = _resolve_path(cfg.site.state_dir, base, "site.state_dir")
+        found.add("view.actions", "acknowledging and shelving from the page need authentication: set [view] "
+                  "token_file (or token_env), or require client certificates with [metrics] tls_client_ca_file")
+
+    def path(value: str, under: Path, key: str) -> str:
+        with found.check():
+            return _resolve_path(value, under, key)
+        return value
+
+    state_dir = path(cfg.site.state_dir, base, "site.state_dir")
     site = cfg.site.model_copy(update={"state_dir": state_dir})
     cfg = cfg.model_copy(update={"site": site})
-    cfg = cfg.model_copy(update={"sources": _resolve_sources(cfg), "machines": _resolve_machines(cfg)})
+    cfg = cfg.model_copy(update={"sources": _resolve_sources(cfg, found), "machines": _resolve_machines(cfg, found)})
     points: list[PointConfig] = []
-    ids = _unique("points", "id", "point id", [p.id for p in cfg.all_points])
+    ids = _unique("points", "id", "point id", [p.id for p in cfg.all_points], found)
     sensors: dict[tuple[str, str], str] = {}
     for i, p in enumerate(cfg.all_points):
-        r = _resolve_point(p, i, cfg)
-        sensor_key = (r.source, r.sensor)
-        if sensor_key in sensors:
-            raise ConfigError(f"points[{i}].sensor", f"sensor {r.sensor!r} on source {r.source!r} is already point "
-                              f"{sensors[sensor_key]!r}")
-        sensors[sensor_key] = r.id
-        points.append(r)
+        with found.check():
+            r = _resolve_point(p, i, cfg)
+            sensor_key = (r.source, r.sensor)
+            if sensor_key in sensors and ids[p.id] == i:  # a repeated point is reported as such, once
+                raise ConfigError(f"points[{i}].sensor", f"sensor {r.sensor!r} on source {r.source!r} is already "
+                                  f"point {sensors[sensor_key]!r}")
+            sensors.setdefault(sensor_key, r.id)
+            points.append(r)
     shard = cfg.site.shard
     if shard is not None and shard.points is not None:
         unknown = sorted(set(shard.points) - set(ids))
         if unknown:
-            raise ConfigError("site.shard.points", f"unknown point(s) {', '.join(unknown)}")
+            found.add("site.shard.points", f"unknown point(s) {', '.join(unknown)}")
     publish = cfg.publish.model_copy(update={"mqtt": cfg.publish.mqtt.model_copy(
         update={"client_id": cfg.publish.mqtt.client_id or (f"edgevib-{site.name}-publish"
                                                             if cfg.publish.mqtt.url else None)})})
-    publish.mqtt._broker = _connection_of(publish.mqtt, "publish.mqtt", cfg)
+    with found.check():
+        publish.mqtt._broker = _connection_of(publish.mqtt, "publish.mqtt", cfg)
     feed = cfg.feed
     if feed is not None:
         feed = feed.model_copy(update={
@@ -1647,18 +1688,19 @@ def _resolve(cfg: Config, base: Path, digest: str) -> Config:
             "response_topic": feed.response_topic.format(site=site.name),
             "availability_topic": feed.availability_topic.format(site=site.name),
             "event_source": feed.event_source.format(site=quote(site.name, safe=""))})
-        feed._broker = _connection_of(feed, "feed", cfg)
+        with found.check():
+            feed._broker = _connection_of(feed, "feed", cfg)
         if feed.content_mode == "binary" and feed._broker is not None and feed._broker.protocol != "5":
-            raise ConfigError("feed.content_mode", "binary mode carries the attributes as MQTT 5 user properties: "
-                              f"it needs an MQTT 5 connection (source {feed.source!r} uses {feed._broker.protocol})")
+            found.add("feed.content_mode", "binary mode carries the attributes as MQTT 5 user properties: it needs "
+                      f"an MQTT 5 connection (source {feed.source!r} uses {feed._broker.protocol})")
     state = Path(state_dir)
-    alarms = cfg.alarms.model_copy(update={"socket": _resolve_path(cfg.alarms.socket, state, "alarms.socket")})
-    capture = cfg.capture.model_copy(update={"dir": _resolve_path(cfg.capture.dir, state, "capture.dir")})
-    history = cfg.history.model_copy(update={"file": _resolve_path(cfg.history.file, state, "history.file")})
+    alarms = cfg.alarms.model_copy(update={"socket": path(cfg.alarms.socket, state, "alarms.socket")})
+    capture = cfg.capture.model_copy(update={"dir": path(cfg.capture.dir, state, "capture.dir")})
+    history = cfg.history.model_copy(update={"file": path(cfg.history.file, state, "history.file")})
     for i, lim in enumerate(cfg.trend.limits):
         if lim.point not in ids:
-            raise ConfigError(f"trend.limits[{i}].point", f"unknown point {lim.point!r}"
-                              f"{_did_you_mean(lim.point, list(ids))}")
+            found.add(f"trend.limits[{i}].point", f"unknown point {lim.point!r}{_did_you_mean(lim.point, list(ids))}")
+    found.raise_any()
     cfg = cfg.model_copy(update={"all_points": tuple(points), "publish": publish, "feed": feed, "alarms": alarms,
                                  "capture": capture, "history": history})
     cfg._points = tuple(p for p in points if shard is None or shard.owns(p.id))
@@ -1709,9 +1751,13 @@ def parse_config(doc: Mapping[str, Any], base_dir: str | os.PathLike[str] = ".",
     """Validate a parsed TOML document; relative file paths resolve against ``base_dir``.  ``plans=False`` skips
     the analysis-plan and alarm-limit checks that need the numerical core."""
     cfg = _resolve(validate_document(doc), Path(base_dir), digest)
-    if plans:
-        cfg._plans = _check_plans(cfg)
-        _ = cfg.alarm_settings  # resolve the alarm layer's limits now: their errors are the file's errors
+    if plans:  # every point's plan and limits checked, their errors reported together
+        found = _Findings()
+        with found.check():
+            cfg._plans = _check_plans(cfg)
+        with found.check():
+            _ = cfg.alarm_settings  # resolve the alarm layer's limits now: their errors are the file's errors
+        found.raise_any()
     return cfg
 
 

@@ -25,6 +25,7 @@ from edgevib.daemon.config import (
     LimitConfigTable,
     PointConfig,
     WebhookConfig,
+    _Findings,
     _HealthThresholds,
 )
 from edgevib.daemon.interfaces import ConfigError
@@ -104,7 +105,8 @@ def _health(t: _HealthThresholds | None, base: HealthSpec, path: str) -> HealthS
         raise ConfigError(path, str(exc)) from None
 
 
-def _point_limits(p: PointConfig, i: int, cfg: Config, defaults: LimitConfig) -> list[LimitConfig]:
+def _point_limits(p: PointConfig, i: int, cfg: Config, defaults: LimitConfig, found: _Findings) -> list[LimitConfig]:
+    """A point's limits; the problem of each limit table goes to ``found``."""
     m = cfg.machine(p.machine)
     iso = zone_boundaries_mm_s(m.group, m.support) if m.group is not None and m.support is not None else None
     mi = next(j for j, mm in enumerate(cfg.machines) if mm.id == p.machine)
@@ -113,15 +115,18 @@ def _point_limits(p: PointConfig, i: int, cfg: Config, defaults: LimitConfig) ->
     for name, t in tables.items():
         key = f"points[{i}].limits.{name}"
         if name.startswith("bearing_") and p.envelope_band_hz is None:
-            raise ConfigError(key, f"this point has no envelope indicators ({p.envelope_note or 'no band'})")
+            found.add(key, f"this point has no envelope indicators ({p.envelope_note or 'no band'})")
+            continue
         if name.startswith("bearing_") and p.bearing is None:
-            raise ConfigError(key, "bearing defect limits need the point's bearing geometry")
+            found.add(key, "bearing defect limits need the point's bearing geometry")
+            continue
         alert, danger = t.levels
         if iso is None and any(r is not None and r.kind.startswith("iso") for r in (alert, danger)):
             level = "rule" if t.rule is not None else "alert" if alert is not None and alert.kind.startswith("iso") \
                 else "danger"
-            raise ConfigError(f"{key}.{level}", f"ISO 20816-3 zones need the machine's group and support "
-                              f"(machines[{mi}] {p.machine!r})")
+            found.add(f"{key}.{level}", f"ISO 20816-3 zones need the machine's group and support "
+                      f"(machines[{mi}] {p.machine!r})")
+            continue
         out[name] = _limit(p.id, name, t, defaults, iso) if t.enabled else None
     rule = cfg.alarms.default_velocity_rule
     if "velocity_rms_mm_s" not in out and rule != "none" and iso is not None:
@@ -141,7 +146,8 @@ def _limit(point: str, name: str, t: LimitConfigTable, d: LimitConfig,
 
 
 def alarm_settings(cfg: Config) -> AlarmSettings:
-    """Resolve the alarm layer's settings of a loaded configuration; raises ConfigError naming the key."""
+    """Resolve the alarm layer's settings of a loaded configuration; raises ConfigError naming the key of every
+    problem found."""
     a = cfg.alarms
     defaults = LimitConfig(point="", indicator="", alert=None, danger=None, deadband=a.deadband,
                            on_delay=_delay(a.on_delay_frames, a.on_delay_s, Delay(frames=2)),
@@ -150,17 +156,20 @@ def alarm_settings(cfg: Config) -> AlarmSettings:
     owned = {p.id for p in cfg.points}
     limits: list[LimitConfig] = []
     health: dict[str, HealthSpec] = {}
+    found = _Findings()
     for i, p in enumerate(cfg.all_points):
         if p.id not in owned:
             continue
-        limits += _point_limits(p, i, cfg, defaults)
-        spec = _health(p.limits.health if p.limits is not None else None, replace(base, sensor_type=p.sensor_type),
-                       f"points[{i}].limits.health")
-        band = spec.noise_band_hz
-        if band is not None and band[1] > p.fs_hz / 2:
-            raise ConfigError(f"points[{i}].limits.health.noise_band_hz", f"high edge {band[1]:g} Hz is above "
-                              f"Nyquist {p.fs_hz / 2:g} Hz")
-        health[p.id] = spec
+        limits += _point_limits(p, i, cfg, defaults, found)
+        with found.check():
+            spec = _health(p.limits.health if p.limits is not None else None,
+                           replace(base, sensor_type=p.sensor_type), f"points[{i}].limits.health")
+            band = spec.noise_band_hz
+            if band is not None and band[1] > p.fs_hz / 2:
+                raise ConfigError(f"points[{i}].limits.health.noise_band_hz", f"high edge {band[1]:g} Hz is above "
+                                  f"Nyquist {p.fs_hz / 2:g} Hz")
+            health[p.id] = spec
+    found.raise_any()
     feed = cfg.feed or FeedConfig(enabled=False, command_topic="", response_topic="", availability_topic="",
                                   event_source="edgevib/" + quote(cfg.site.name, safe=""))
     return AlarmSettings(table=a, feed=feed, capture=cfg.capture, site=cfg.site.name,

@@ -405,3 +405,74 @@ def test_run_dwell_reaches_the_machine_state_spec() -> None:
         bad = base()
         bad["alarms"] = {key: value}
         assert error(bad).path == f"alarms.{key}"
+
+
+# ---- a file with several mistakes reports every one (each with its key path, value and what is allowed)
+
+
+def _problems(doc: dict[str, Any], tmp_path: Path) -> ConfigError:
+    with pytest.raises(ConfigError) as info:
+        load_config(_written(doc, tmp_path))
+    return info.value
+
+
+def test_a_file_with_three_mistakes_in_its_tables_reports_all_three(tmp_path: Path) -> None:
+    doc = base()
+    doc["analysis"] = {"overlap": 1.5}
+    doc["points"][0]["sensor_type"] = "peizo"
+    doc["sources"][0]["qos"] = "1"
+    exc = _problems(doc, tmp_path)
+    assert sorted(path for path, _ in exc.problems) == ["analysis.overlap", "points[0].sensor_type",
+                                                        "sources[0].qos"]
+    text = str(exc)
+    assert text.startswith("3 problems:\n") and len(text.splitlines()) == 4, text
+    assert "analysis.overlap: 1.5 is out of range: must be <= 0.95" in text
+    assert "points[0].sensor_type: 'peizo' is not one of" in text and "did you mean `piezo`?" in text
+    assert "sources[0].qos: must be an integer, got string '1'" in text
+
+
+def test_duplicate_point_ids_are_reported_with_the_points_own_errors(tmp_path: Path) -> None:
+    doc = base()
+    first = doc["points"][0]
+    doc["points"] += [copy.deepcopy(first),
+                      {**copy.deepcopy(first), "id": "P-101-NDE-H", "sensor": "QL-P101-NDE-H", "machine": "P-10l"},
+                      {**copy.deepcopy(first), "id": "P-101-NDE-V", "sensor": "QL-P101-NDE-V", "source": "brokr"}]
+    exc = _problems(doc, tmp_path)
+    assert exc.problems == (
+        ("points[1].id", "duplicate point id 'P-101-DE-H' (also points[0])"),
+        ("points[2].machine", "unknown machine 'P-10l' (configured: P-101); did you mean `P-101`?"),
+        ("points[3].source", "unknown source 'brokr' (configured: broker); did you mean `broker`?"),
+    )
+    assert (exc.path, exc.problem) == exc.problems[0]  # the first problem, as a single error names it
+
+
+def test_every_points_plan_and_limits_are_checked_before_reporting(tmp_path: Path) -> None:
+    doc = base()
+    first = doc["points"][0]
+    doc["points"] += [{**copy.deepcopy(first), "id": "P-101-NDE-H", "sensor": "QL-P101-NDE-H"},
+                      {**copy.deepcopy(first), "id": "P-101-NDE-V", "sensor": "QL-P101-NDE-V"}]
+    # Nyquist = fs / 2 (Shannon–Nyquist sampling theorem): 12.8 kHz at fs_hz 25600
+    doc["points"][0]["envelope_band_hz"] = [2000.0, 13000.0]
+    doc["points"][1]["bearing"]["ball_diameter_mm"] = 40.0  # balls larger than the pitch circle: impossible
+    doc["points"][2].pop("bearing")
+    doc["points"][2]["limits"] = {"bearing_bpfo_detected": {"alert": True}}
+    exc = _problems(doc, tmp_path)
+    assert [path for path, _ in exc.problems] == ["points[0].envelope_band_hz", "points[1].bearing",
+                                                  "points[2].limits.bearing_bpfo_detected"]
+    assert "Nyquist 12800 Hz" in exc.problems[0][1] and "impossible bearing geometry" in exc.problems[1][1]
+
+
+def test_check_config_prints_every_problem(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    import argparse
+
+    from edgevib.daemon.service import run_check_config
+
+    doc = base()
+    doc["points"].append(copy.deepcopy(doc["points"][0]))
+    doc["points"][0]["machine"] = "P-999"
+    path = _written(doc, tmp_path)
+    assert run_check_config(argparse.Namespace(file=path)) == 2
+    err = capsys.readouterr().err.splitlines()
+    assert err == [f"edgevib check-config: {path}: 2 problems:",
+                   "  points[1].id: duplicate point id 'P-101-DE-H' (also points[0])",
+                   "  points[0].machine: unknown machine 'P-999' (configured: P-101)"]
