@@ -14,12 +14,14 @@ import sqlite3
 import time
 from collections.abc import Callable
 from dataclasses import asdict, dataclass, fields, replace
-from typing import Any
+from typing import Any, TypeVar
 
 from edgevib.daemon.alarms.outbox import Database
 from edgevib.pipelines.alarm import AlarmState, LevelTrack
 
 __all__ = ["Baseline", "SensorState", "SourceState", "StateStore", "decode_alarm", "encode_alarm"]
+
+T = TypeVar("T")
 
 
 @dataclass(frozen=True, slots=True)
@@ -149,41 +151,28 @@ class StateStore:
         with self.db.lock:
             return list(self.db.conn.execute(sql))
 
-    def load_alarms(self) -> dict[tuple[str, str], AlarmState]:
-        out: dict[tuple[str, str], AlarmState] = {}
-        for point, indicator, body in self._rows("SELECT point, indicator, body FROM alarm_state"):
+    def _load(self, sql: str, decode: Callable[[str], T]) -> dict[Any, T]:
+        """``{key: decoded body}`` of a table's rows ``(*key columns, body)``: one key column gives a plain key, more
+        a tuple.  An unreadable row is left out (that limit, point or source starts afresh)."""
+        out: dict[Any, T] = {}
+        for *key, body in self._rows(sql):
             try:
-                out[(point, indicator)] = decode_alarm(body)
+                out[key[0] if len(key) == 1 else tuple(key)] = decode(body)
             except (ValueError, TypeError):
-                continue  # an unreadable row restarts that limit from normal
+                continue
         return out
+
+    def load_alarms(self) -> dict[tuple[str, str], AlarmState]:
+        return self._load("SELECT point, indicator, body FROM alarm_state", decode_alarm)
 
     def load_sensors(self) -> dict[str, SensorState]:
-        out: dict[str, SensorState] = {}
-        for point, body in self._rows("SELECT point, body FROM sensor_state"):
-            try:
-                out[point] = _dc_from(SensorState, json.loads(body))
-            except (ValueError, TypeError):
-                continue
-        return out
+        return self._load("SELECT point, body FROM sensor_state", lambda b: _dc_from(SensorState, json.loads(b)))
 
     def load_baselines(self) -> dict[tuple[str, str], Baseline]:
-        out: dict[tuple[str, str], Baseline] = {}
-        for point, indicator, body in self._rows("SELECT point, indicator, body FROM baselines"):
-            try:
-                out[(point, indicator)] = _dc_from(Baseline, json.loads(body))
-            except (ValueError, TypeError):
-                continue
-        return out
+        return self._load("SELECT point, indicator, body FROM baselines", lambda b: _dc_from(Baseline, json.loads(b)))
 
     def load_sources(self) -> dict[str, SourceState]:
-        out: dict[str, SourceState] = {}
-        for source, body in self._rows("SELECT source, body FROM source_state"):
-            try:
-                out[source] = _dc_from(SourceState, json.loads(body))
-            except (ValueError, TypeError):
-                continue
-        return out
+        return self._load("SELECT source, body FROM source_state", lambda b: _dc_from(SourceState, json.loads(b)))
 
     def add_history(self, conn: sqlite3.Connection, rows: list[tuple[int, str, str, str, str, str]]) -> None:
         """Append ``(time_ns, kind, point, indicator, event_id, data JSON)`` rows inside the open transaction."""

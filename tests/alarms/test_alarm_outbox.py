@@ -90,6 +90,28 @@ def test_state_bodies_are_the_dataclasses_asdict_json() -> None:
         assert _as_dict(rec) == asdict(rec)
 
 
+def test_every_state_table_loads_back_and_leaves_out_an_unreadable_row(tmp_path: Path) -> None:
+    # alarm, sensor, baseline and source rows come back as saved; a row that is not JSON (a torn or hand-edited
+    # file) is left out, so that limit, point or source starts afresh instead of stopping the start
+    from edgevib.daemon.alarms.state import Baseline, SensorState, SourceState
+
+    db = Database(tmp_path / "a.sqlite")
+    store = StateStore(db)
+    alarms = {("P-101-DE-H", "kurtosis"): AlarmState(latched=1)}
+    sensors = {"P-101-DE-H": SensorState(fault="flatline", detail="flat", since_s=2.0)}
+    baselines = {("P-101-DE-H", "velocity_rms_mm_s"): Baseline(n=3, mean=1.2, m2=0.1)}
+    sources = {"plant": SourceState(down=True, since_s=5.0, reason="connection lost")}
+    with db.transaction() as c:
+        store.save(c, alarms=alarms, sensors=sensors, baselines=baselines, sources=sources)
+        c.execute("INSERT INTO alarm_state VALUES ('P-102', 'kurtosis', 'not json', 0)")
+        c.execute("INSERT INTO sensor_state VALUES ('P-102', '{torn', 0)")
+        c.execute("INSERT INTO baselines VALUES ('P-102', 'kurtosis', '', 0)")
+        c.execute("INSERT INTO source_state VALUES ('other', '{\"down\": ', 0)")
+    assert store.load_alarms() == alarms and store.load_sensors() == sensors
+    assert store.load_baselines() == baselines and store.load_sources() == sources
+    db.close()
+
+
 def test_a_newer_schema_is_refused_not_overwritten(tmp_path: Path) -> None:
     Database(tmp_path / "a.sqlite").close()
     c = sqlite3.connect(tmp_path / "a.sqlite")
