@@ -19,7 +19,6 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from itertools import chain
 
 import numpy as np
 import numpy.typing as npt
@@ -264,18 +263,16 @@ class LogSketch:
         """The order statistics of ranks ``lo`` ≤ ``hi`` (0-based, ascending) within the relative accuracy, read in
         one walk over the bins (most negative first)."""
         g = self._gamma
-        bins = chain(((-1.0, k, self.neg[k]) for k in sorted(self.neg, reverse=True)), ((0.0, 0, self.zeros),),
-                     ((1.0, k, self.pos[k]) for k in sorted(self.pos)))
-        ranks, found = (lo, hi), list[float]()
-        seen = 0
-        for sign, k, n in bins:
-            seen += n
-            while seen > ranks[len(found)]:
-                found.append(self._clamp(sign * 2.0 * g**k / (g + 1.0)))
-                if len(found) == 2:
-                    return found[0], found[1]
-        found += [self.vmax] * (2 - len(found))
-        return found[0], found[1]
+        seen, rank, first = 0, lo, None
+        for sign, store in ((-1.0, self.neg), (0.0, {0: self.zeros}), (1.0, self.pos)):
+            for k in sorted(store, reverse=sign < 0):
+                seen += store[k]
+                while seen > rank:  # this bin holds rank lo (then, perhaps, hi as well)
+                    v = self._clamp(sign * 2.0 * g**k / (g + 1.0))
+                    if first is not None:
+                        return first, v
+                    first, rank = v, hi
+        return (self.vmax if first is None else first), self.vmax
 
     def _clamp(self, v: float) -> float:
         return min(max(v, self.vmin), self.vmax)
