@@ -207,7 +207,3 @@ class Outbox:
             row = self.db.conn.execute(
                 "SELECT MIN(o.created_ns) FROM pending p JOIN outbox o ON o.seq = p.seq").fetchone()
         return None if row[0] is None else int(row[0])
-
-    def all_ids(self) -> list[str]:
-        with self.db.lock:
-            return [r[0] for r in self.db.conn.execute("SELECT id FROM outbox ORDER BY seq")]
