@@ -281,8 +281,9 @@ def _t_mean_blob(t_sums: npt.NDArray[np.float64], counts: npt.ArrayLike) -> byte
     """The ``t_mean`` column: per indicator the mean time of its values in s from the bucket's start (NaN when it
     has none)."""
     c = np.asarray(counts, dtype=np.float64)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return _f32(np.where(c > 0, t_sums / np.where(c > 0, c, 1.0), np.nan))
+    out = np.full(c.shape, np.nan)
+    np.divide(t_sums, c, out=out, where=c > 0)
+    return out.astype("<f4").tobytes()
 
 
 # --------------------------------------------------------------------------------------------- recorder
