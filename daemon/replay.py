@@ -818,7 +818,7 @@ def _report(out: Path, last: dict[str, Any], frame: tuple[FrameResult, AnalysisP
         alert = next((labelled[k] for k in ("alert", "limit", "zone C") if k in labelled), None)
         danger = next((labelled[k] for k in ("danger", "zone D") if k in labelled), None)
         trend = {"indicator": name, "unit": INDICATORS[name].unit if name in INDICATORS else "",
-                 "t_s": (series.t_s + series.bucket_s / 2.0).tolist(), "values": series.value,
+                 "t_s": series.stamp_s.tolist(), "values": series.value,
                  "limits": {"indicator": name, "alert": alert, "danger": danger, "all": doc.get("limits", [])},
                  "limit_lines": _limit_lines(o, name), "projection": projection_curve(doc), "trend": doc,
                  # the page adds the advice text after the source

@@ -206,7 +206,7 @@ def render_chart(series: HistorySeries, doc: dict[str, Any] | None, width: int =
     if series.t_s.size == 0:
         lines.append("no running values in the history yet")
         return "\n".join(lines)
-    t = series.t_s + series.bucket_s / 2
+    t = series.stamp_s  # a bucket stands for the mean time of its values, as the projection fits it
     now = float((doc or {}).get("t_s") or t[-1])
     limits = [lim for lim in (doc or {}).get("limits", []) if lim.get("value") is not None]
     t_end = now

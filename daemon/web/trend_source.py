@@ -89,7 +89,7 @@ def history_trend(read: Callable[[], Any], latest: dict[str, Any] | None) -> dic
         series = read()
     except (HistoryError, OSError, ValueError):
         return None
-    t = np.asarray(series.t_s, dtype=np.float64) + series.bucket_s / 2.0  # a bucket stands for its middle
+    t = np.asarray(series.stamp_s, dtype=np.float64)  # a bucket stands for the mean time of its values
     if t.size == 0:
         return None
     trend = None

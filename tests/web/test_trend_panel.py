@@ -15,7 +15,7 @@ from framekit import frame_indicators
 from edgevib.daemon.config import parse_config
 from edgevib.daemon.interfaces import FrameResult
 from edgevib.daemon.trendwatch import create_trend_watch
-from edgevib.daemon.web.trend_source import confidence_band, projection_curve
+from edgevib.daemon.web.trend_source import confidence_band, history_trend, projection_curve
 
 D = 86400.0
 T0 = 1_780_000_000.0
@@ -103,3 +103,20 @@ def test_no_band_without_the_fits_covariance() -> None:
     fit = {"model": "linear", "t_ref_s": 0.0, "intercept": 1.0, "slope": 1e-6}
     assert confidence_band(fit, [0.0, 10.0], 0.8) is None
     assert confidence_band({**fit, "cov": [1.0, 0.0, 1e-12], "sigma": 0.1, "dof": 20.0}, [0.0], None) is None
+
+
+def test_the_chart_places_a_bucket_at_the_mean_time_of_its_values() -> None:
+    # A roll-up bucket's statistics stand for the mean time of the values it holds — its middle only when they fill
+    # it evenly (common practice for binned time series; the trend's projection is fitted at the same times), so
+    # the chart draws the points where the fit puts them: a machine that ran only the first hour of each day.
+    from edgevib.daemon.history import HistorySeries
+
+    starts = T0 + D * np.arange(3)
+    means = starts + 1800.0
+    values = np.array([1.0, 1.1, 1.2])
+    doc = history_trend(lambda: HistorySeries(POINT, "velocity_rms_mm_s", "day", starts, values, t_mean_s=means),
+                        None)
+    assert doc is not None and doc["t_s"] == means.tolist() and doc["resolution"] == "day"
+    # rows written before the history knew their mean time: the bucket's middle (half a day after its start)
+    old = history_trend(lambda: HistorySeries(POINT, "velocity_rms_mm_s", "day", starts, values), None)
+    assert old is not None and old["t_s"] == (starts + D / 2).tolist()
