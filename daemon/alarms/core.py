@@ -491,9 +491,14 @@ class AlarmCore:
         if still_down:  # a frame from before the source went down: judged, and stale again
             state, more = mark_stale(state, "source-down", t_s, spec)
             transitions += more
-        self.alarms[key] = eff.alarms[key] = state
-        for tr_ in transitions:
-            self._alarm_event(r, lim, tr_, now, eff)
+        self._set_alarm(r, lim, state, transitions, now, eff)
+
+    def _set_alarm(self, r: FrameResult | None, lim: LimitConfig, state: AlarmState, transitions: Iterable[Transition],
+                   now: Now, eff: Effects, by: str | None = None) -> None:
+        """A limit's new state, to persist, and an event for each of its transitions."""
+        self.alarms[lim.key] = eff.alarms[lim.key] = state
+        for tr in transitions:
+            self._alarm_event(r, lim, tr, now, eff, by=by)
 
     def _sensor(self, r: FrameResult, t_s: float, eff: Effects) -> SensorState:
         pid, h = r.point_id, r.health
@@ -717,9 +722,7 @@ class AlarmCore:
         t_s = self.point_now_s(pid, now)
         for lim in self.by_point.get(pid, ()):
             st, trs = mark_stale(self.alarms.get(lim.key, AlarmState()), reason, t_s, self.specs[lim.key])
-            self.alarms[lim.key] = eff.alarms[lim.key] = st
-            for tr in trs:
-                self._alarm_event(None, lim, tr, now, eff)
+            self._set_alarm(None, lim, st, trs, now, eff)
             row = self._visible(pid, lim)
             if row is not None:
                 visible.append(row)
@@ -744,9 +747,7 @@ class AlarmCore:
             if shelved is None or shelved.shelved_until_s is None or now_s < shelved.shelved_until_s:
                 continue
             st, trs = expire_shelf(shelved, now_s, self.specs[lim.key])
-            self.alarms[lim.key] = eff.alarms[lim.key] = st
-            for tr in trs:
-                self._alarm_event(None, lim, tr, now, eff)
+            self._set_alarm(None, lim, st, trs, now, eff)
 
     def _source_down(self, name: str, t_s: float, reason: str, now: Now, eff: Effects, *,
                      silent: bool = False) -> None:
@@ -890,9 +891,7 @@ class AlarmCore:
             else:
                 st2, trs = unshelve(st, t_s, spec, reason=f"by {by}" if by else "by command")
             changed += st2 != st
-            self.alarms[key] = eff.alarms[key] = st2
-            for tr in trs:
-                self._alarm_event(None, lim, tr, now, eff, by=by)
+            self._set_alarm(None, lim, st2, trs, now, eff, by=by)
         eff.reply = {"changed": changed, "events": len(eff.events)}
         if left:
             eff.reply["not_acknowledged"] = left
