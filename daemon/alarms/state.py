@@ -121,6 +121,8 @@ class SourceState:
 
 
 def _dc_from(cls: Any, d: dict[str, Any]) -> Any:
+    if not isinstance(d, dict):  # a row that is JSON but no object: unreadable like any other
+        raise TypeError(f"{cls.__name__} body is not an object")
     names = {f.name for f in fields(cls)}
     return cls(**{k: v for k, v in d.items() if k in names})
 

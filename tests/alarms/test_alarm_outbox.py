@@ -109,6 +109,10 @@ def test_every_state_table_loads_back_and_leaves_out_an_unreadable_row(tmp_path:
         c.execute("INSERT INTO sensor_state VALUES ('P-102', '{torn', 0)")
         c.execute("INSERT INTO baselines VALUES ('P-102', 'kurtosis', '', 0)")
         c.execute("INSERT INTO source_state VALUES ('other', '{\"down\": ', 0)")
+        # JSON, but no object
+        c.execute("INSERT INTO sensor_state VALUES ('P-103', '[1]', 0)")
+        c.execute("INSERT INTO baselines VALUES ('P-103', 'kurtosis', '3.5', 0)")
+        c.execute("INSERT INTO source_state VALUES ('third', 'null', 0)")
     assert store.load_alarms() == alarms and store.load_sensors() == sensors
     assert store.load_baselines() == baselines and store.load_sources() == sources
     db.close()
