@@ -322,7 +322,10 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     its frequency and reach ``SPEED_MIN_SHARE`` (−12 dB) of the strongest velocity line in the speed range
     (common practice: 1× dominates the velocity spectrum of a running machine).  The best-scoring valid
     candidate wins — except that, with ``cage_ratio`` (the bearing's FTF as a multiple of shaft speed) given, a
-    winner that is the cage line (FTF ± 3 %) of another valid candidate gives way to that candidate.
+    winner that is the cage line or one of its harmonics (k × FTF ± 3 %, k = 1 … ``CAGE_HARMONICS``: a cage
+    fault's series) of another valid candidate gives way to that candidate, unless that candidate is itself on the
+    winner's cage series (then each reading explains a line of the other, and the score decides) or k × FTF puts
+    it on a whole order of the winner (the harmonic tests below judge those).
 
     **Quality** ``q = 1 − s_r / s_w`` (0–1): ``s_w`` the winner's score, ``s_r`` the best score of a valid rival
     that is not harmonically related to it (a frequency ratio not within ± 3 % of 1, 2, 3, 4 or their inverses;
@@ -333,7 +336,10 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     speed range, a clear line at 2 or 3 × the winner reaches half its 1× line (the winner may be a sub-harmonic
     of that speed: looseness, rub) or one at 1/2 or 1/3 of it (6 dB over its floor suffices there) a quarter (the
     winner may be the 2× or 3× of a misaligned machine at that speed): the spectrum alone cannot tell these
-    apart, a narrower speed range can.  Below ``SPEED_MIN_QUALITY`` the estimate is NaN
+    apart, a narrower speed range can.  With ``cage_ratio``, q is also 0 when clear lines (local maxima
+    ``SPEED_MIN_PROMINENCE`` over their floor, not the winner's own cage lines) stand at both 1/3 and 2/3 of the
+    winner below the speed range while winner / (3 × FTF) lies inside it: the winner may be the 3 × FTF of a cage
+    fault whose shaft line is too weak to be a candidate.  Below ``SPEED_MIN_QUALITY`` the estimate is NaN
     (ambiguous): a confident wrong speed would move every order and defect frequency with it.
 
     Parameters
@@ -392,11 +398,18 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     first = valid.argmax(axis=-1)
     f_w = f_est[rows, first]
     if cage_ratio is not None:
-        # a winner on the cage line of another valid candidate is that candidate's FTF, not a shaft speed
-        cage_of = valid & (np.abs(f_w[:, None] / (cage_ratio * f_est) - 1.0) <= SPEED_CAGE_TOLERANCE)
-        has_shaft = cage_of.any(axis=-1)
-        first = np.where(has_shaft, cage_of.argmax(axis=-1), first)
-        f_w = f_est[rows, first]
+        # a winner on the cage line of another valid candidate, or on one of its first harmonics, is that
+        # candidate's FTF series, not a shaft speed: the winner gives way to it (the best such candidate)
+        parents = _cage_parents(cage_ratio)
+        if parents.size:
+            tol = SPEED_CAGE_TOLERANCE
+            cage_of = valid & (np.abs(f_w[:, None, None] / (f_est[..., None] * parents) - 1.0) <= tol).any(axis=-1)
+            # (not to a candidate on the winner's own cage series: each reading explains a line of the other)
+            cage_of &= ~(np.abs(f_est[..., None] / (f_w[:, None, None] * cage_ratio * _CAGE_ORDERS) - 1.0)
+                         <= tol).any(axis=-1)
+            has_shaft = cage_of.any(axis=-1)
+            first = np.where(has_shaft, cage_of.argmax(axis=-1), first)
+            f_w = f_est[rows, first]
     s_w = cand_score[rows, first]
     a_w = line_1x[rows, first]
     # candidates related to the winner (and, with cage_ratio, to the winner's cage line and its harmonics)
@@ -425,6 +438,19 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
         (_gather(amp3, p_r[:, 1:]) >= _READING_SHARE * a_w[:, None])
     in_range = (f_m >= speed_range_hz[0]) & (f_m <= speed_range_hz[1])
     quality = np.where((clear_m & in_range).any(axis=-1), 0.0, quality)
+    if cage_ratio is not None:
+        # ... and, below the range, lines at 1/3 and 2/3 of it as clear as a 1× line, where the winner / (3 × FTF)
+        # lies in the range: the winner may be the 3 × FTF of a cage fault whose shaft line is too weak to be a
+        # candidate (no machine series puts lines at both)
+        shaft_of = f_w / (3.0 * cage_ratio)
+        p_t, f_t, a_t, floor_t = _refined_lines(acc, f_w[:, None] * _THIRDS, df_hz)
+        own = (np.abs(f_t[..., None] / (f_w[:, None, None] * cage_ratio * _CAGE_ORDERS) - 1.0)
+               <= SPEED_CAGE_TOLERANCE).any(axis=-1)  # (not the winner's own cage lines, nor their skirts)
+        peak_t = a_t >= np.maximum(_gather(acc, p_t - 1), _gather(acc, p_t + 1))
+        thirds = (a_t > 0) & peak_t & (a_t >= SPEED_MIN_PROMINENCE * floor_t) & ~own
+        quality = np.where(thirds.all(axis=-1) & (f_w / 3.0 < speed_range_hz[0])
+                           & (shaft_of >= speed_range_hz[0] * (1.0 - SPEED_CAGE_TOLERANCE))
+                           & (shaft_of <= speed_range_hz[1] * (1.0 + SPEED_CAGE_TOLERANCE)), 0.0, quality)
     any_valid = valid[rows, first]
     quality = np.where(any_valid, quality, np.nan)
     ok = any_valid & (quality >= SPEED_MIN_QUALITY)  # (NaN compares False, silently)
@@ -446,6 +472,27 @@ for _a in (_READINGS, _READING_PROMINENCE, _READING_SHARE):
 _RELATED_TOL = SPEED_RELATED_TOLERANCE * _RELATED
 _RELATED.flags.writeable = False
 _RELATED_TOL.flags.writeable = False
+
+
+CAGE_HARMONICS = 3  # a cage fault's FTF series: the FTF line and its harmonics 2× and 3× (Randall & Antoni 2011)
+
+
+@lru_cache(maxsize=64)
+def _cage_parents(cage_ratio: float) -> FloatArray:
+    """The ratios k × ``cage_ratio`` (k = 1 … ``CAGE_HARMONICS``) by which a winner may be the k-th cage line of a
+    shaft at winner / (k × ``cage_ratio``), leaving out a k that puts that shaft on a whole order of the winner (the
+    harmonic tests judge those); a plan's constants: kept."""
+    out = np.array([k * cage_ratio for k in range(1, CAGE_HARMONICS + 1)
+                    if abs(1.0 / (k * cage_ratio * max(1, round(1.0 / (k * cage_ratio)))) - 1.0)
+                    > SPEED_CAGE_TOLERANCE], dtype=np.float64)
+    out.flags.writeable = False
+    return out
+
+
+_CAGE_ORDERS = np.arange(1, CAGE_HARMONICS + 1, dtype=np.float64)
+_THIRDS = np.array([1.0 / 3.0, 2.0 / 3.0])
+_CAGE_ORDERS.flags.writeable = False
+_THIRDS.flags.writeable = False
 
 
 @lru_cache(maxsize=64)
