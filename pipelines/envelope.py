@@ -60,10 +60,13 @@ Defect families (FTF, BPFO, BPFI and, for a rolling-element defect, **2 × BSF**
 8. *Modulation.*  A family that is another family's modulation frequency — FTF, the sideband spacing of 2 × BSF
    (the element travels with the cage through the load zone; a ball fault's envelope spectrum shows FTF and
    2 × BSF ± FTF, Randall & Antoni 2011) — whose detected fundamental lies (± 1 line) at the spacing of a counted
-   ± 1 × sideband of that family (its fundamental significant), and every counted harmonic h of which lies at the
-   spacing of a counted ± h × sideband, is that family's modulation: one defect, so it is reported as ambiguous
-   with that family, not detected twice.  A line the other pattern does not explain (e.g. 3 × FTF, beyond the
-   ± 2 × sidebands examined) is evidence of its own, and the verdict stands.
+   ± 1 × sideband of that family (its fundamental significant), and every counted harmonic h of which lies at h / j
+   times the spacing of a counted ± j × sideband, j ≤ h, is that family's modulation: one defect, so it is reported
+   as ambiguous with that family, not detected twice.  (The load-zone modulation is not a pure sine: its harmonic h
+   shows in the baseband of the squared envelope — the modulation times the envelope's mean — more strongly than
+   in the ± h × sidebands — the modulation times the weaker 2 × BSF component — so a ± 1 × sideband spacing
+   explains 2 × FTF even where the ± 2 × sidebands stay below their thresholds.)  A line the other pattern does not
+   explain (e.g. 3 × FTF, beyond the ± 2 × sidebands examined) is evidence of its own, and the verdict stands.
 
 ``snr_db`` is 10·log10 of the line's SES level over the estimated local mean level (the statistic ``T`` of
 :mod:`edgevib.pipelines.detection`).
@@ -622,8 +625,10 @@ def _modulation_explains(index: IntArray, found: BoolArray, significant: BoolArr
     -------
     bool ndarray, shape (channels, A, B): B's modulation frequency is A's kinematic frequency (FTF for 2 × BSF), B's
     fundamental is significant, A's fundamental is counted and lies (± 1 line) at the spacing of a counted sideband
-    of B of order ± 1, and every counted line of A (harmonic h at a counted sideband of order ± h; sidebands of A
-    never) is explained so: A has no evidence B lacks.
+    of B of order ± 1, and every counted line of A is explained so: a harmonic h up to the highest sideband order
+    examined at h / j times the spacing of a counted sideband of order ± j ≤ h (± h / j lines) — the modulation's own
+    harmonic, stronger in the baseband than in the sidebands —, a higher harmonic or a sideband of A never: A has no
+    evidence B lacks.
     """
     c, nf, slots = index.shape
     harmonics = slots - n_sidebands
@@ -636,23 +641,40 @@ def _modulation_explains(index: IntArray, found: BoolArray, significant: BoolArr
     explained = np.zeros((c, nf, nf, harmonics), dtype=bool)
     h_slot, sb_slot, h_with, starts = _sideband_pairs(harmonics)
     if h_slot.size:
-        # every pair (harmonic h of A, sideband ± h of B) at once: slot 0 is the fundamental, slot h − 1 harmonic h
+        # every pair (harmonic h of A, sideband ± j of B, j ≤ h) at once: slot 0 is the fundamental, slot h − 1
+        # harmonic h, which lies at h / j times that sideband's spacing (± h / j lines: the spacing's ± 1 scaled)
+        scale = _sideband_scale(harmonics)
         spacing = np.where(found[:, :, sb_slot] & (k_b >= 0)[..., None],
                            np.abs(index[:, :, sb_slot] - k_b[..., None]), -10)  # (c, B, pairs)
-        hit = found[:, :, None, h_slot] & (np.abs(spacing[:, None] - index[:, :, None, h_slot]) <= 1)  # (c, A, B, …)
-        explained[..., h_with] = np.logical_or.reduceat(hit, starts, axis=-1)
+        hit = found[:, :, None, h_slot] & (np.abs(spacing[:, None] * scale - index[:, :, None, h_slot]) <= scale)
+        explained[..., h_with] = np.logical_or.reduceat(hit, starts, axis=-1)  # (c, A, B, harmonics with pairs)
     own = (found[:, :, None, :harmonics] & ~explained).any(axis=-1) | found[:, :, None, harmonics:].any(axis=-1)
     out: BoolArray = np.asarray(carried & explained[..., 0] & ~own)
     return out
 
 
+def _pairs(harmonics: int) -> list[tuple[int, int, float]]:
+    """(harmonic slot, sideband slot, h / j) of harmonic h and each sideband of order ± j, j ≤ h, for the h up to
+    the highest sideband order examined (step 8 of the module docstring)."""
+    top = int(_SIDEBAND_SPAN.max())
+    return [(h - 1, harmonics + j, h / abs(order)) for h in range(1, min(harmonics, top) + 1)
+            for j, order in enumerate(SIDEBAND_ORDERS) if abs(order) <= h]
+
+
+@lru_cache(maxsize=16)
+def _sideband_scale(harmonics: int) -> FloatArray:
+    """h / j of each pair of :func:`_sideband_pairs`: where harmonic h lies, in spacings of its sideband ± j."""
+    out = np.array([p[2] for p in _pairs(harmonics)], dtype=np.float64)
+    out.flags.writeable = False
+    return out
+
+
 @lru_cache(maxsize=16)
 def _sideband_pairs(harmonics: int) -> tuple[IntArray, IntArray, IntArray, IntArray]:
-    """The (harmonic, sideband) slot pairs of :func:`_modulation_explains` — harmonic h with the sidebands of order
-    ± h — grouped by harmonic: each pair's harmonic slot and sideband slot, the harmonics (slot numbers) that have
-    pairs and where each one's pairs start."""
-    pairs = [(h - 1, harmonics + j) for h in range(1, harmonics + 1) for j, order in enumerate(SIDEBAND_ORDERS)
-             if abs(order) == h]
+    """The (harmonic, sideband) slot pairs of :func:`_modulation_explains` — harmonic h (h up to the highest
+    sideband order examined) with the sidebands of order ± j, j ≤ h — grouped by harmonic: each pair's harmonic slot
+    and sideband slot, the harmonics (slot numbers) that have pairs and where each one's pairs start."""
+    pairs = _pairs(harmonics)
     h_slot = np.array([p[0] for p in pairs], dtype=np.intp)
     sb_slot = np.array([p[1] for p in pairs], dtype=np.intp)
     h_with, starts = np.unique(h_slot, return_index=True)

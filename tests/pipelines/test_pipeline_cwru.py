@@ -228,3 +228,20 @@ def test_every_channel_and_a_geometry_near_whole_orders(cwru_dir: Path, name: st
             drive_end = analyze_frames(x, make_plan(fs, x.size, envelope_band_hz=band, bearing=B6205,
                                                     speed_range_hz=speed), [shaft_hz])[0]
             assert set(drive_end.envelope_detected) <= set(label), (var, band, drive_end.envelope_detected)
+
+
+def test_ball_file_fan_end_cage_line_is_not_a_cage_fault(cwru_dir: Path) -> None:
+    # the ball-fault record's fan-end channel (X118_FE_time) with the fan-end bearing, 6203-2RS: 8 balls of
+    # 0.2656 in on a 1.122 in pitch (datasets README), 2 s frames in method E1's band.  2 × BSF is detected in every
+    # frame (observed 5 of 5); FTF, the sideband spacing of 2 × BSF (the element travels with the cage, Randall &
+    # Antoni 2011), is never reported as a cage fault of its own.
+    mat = scipy.io.loadmat(cwru_dir / "cwru_12k_de_ball_007_0hp.mat")
+    x = mat["X118_FE_time"].reshape(-1).astype(np.float64)
+    shaft_hz = float(mat["X118RPM"].reshape(-1)[0]) / 60.0
+    fs, n = 12000.0, 24000
+    frames = x[: (x.size // n) * n].reshape(-1, n)
+    plan = make_plan(fs, n, envelope_band_hz=E1_BAND, bearing=BearingGeometry(8, 0.2656, 1.122, 0.0))
+    results = analyze_frames(frames, plan, [shaft_hz] * frames.shape[0])
+    assert len(results) == 5
+    assert sum(r.envelope["bsf"].detected for r in results) >= 4
+    assert not any(r.envelope["ftf"].detected for r in results)

@@ -11,7 +11,7 @@ import pytest
 import scipy.signal
 import scipy.stats
 
-from edgevib.pipelines.analysis import analyze_frames, make_plan
+from edgevib.pipelines.analysis import analyze_frames, default_envelope_band, make_plan
 from edgevib.pipelines.bearings import defect_multiples
 from edgevib.pipelines.detection import window_thresholds
 from edgevib.pipelines.envelope import (
@@ -395,6 +395,50 @@ def test_the_cage_modulation_of_a_ball_fault_is_not_a_cage_fault() -> None:
     r = analyze_frames(_ball_fault(shaft, cage_fault=0.5), plan, shaft)[0]
     assert r.envelope["ftf"].harmonics_found == 3
     assert r.envelope_detected == ("ftf", "bsf")
+
+
+def test_the_second_cage_line_of_a_ball_fault_is_not_a_cage_fault() -> None:
+    # the simulator's rolling-element fault (impacts at 2 × BSF modulated at FTF, Randall & Antoni 2011) on a
+    # 6205-size bearing at 1200 r/min, 1.28 s: FTF and 2 × FTF are counted in the squared-envelope spectrum (the
+    # load-zone modulation's baseband lines), 2 × BSF's ± 1 × FTF sidebands too, its ± 2 × ones not.  2 × FTF at
+    # twice the ± 1 × spacing is the same modulation's harmonic: one defect, reported with 2 × BSF (module
+    # docstring step 8); FTF was reported detected beside it while only a ± 2 × sideband could explain 2 × FTF.
+    from edgevib.simulator.engine import Simulation
+    from edgevib.simulator.scenario import parse_scenario
+
+    doc = {"scenario": {"name": "ball", "description": "rolling-element defect", "duration_s": 2.0},
+           "site": {"name": "test-bench", "description": "test bench", "topic_prefix": "tb/ball"},
+           "machines": [{"id": "M-1", "description": "fan", "group": 2, "support": "rigid", "speed": {"rpm": 1200.0},
+                         "faults": [{"type": "rolling_element", "impact_g": 3.0, "stage": "developing"}]}],
+           "points": [{"id": "M-1-P", "machine": "M-1", "axis": "horizontal", "sensor": "S1", "sensor_type": "piezo",
+                       "fs_hz": 25600.0, "block_samples": 8192,
+                       "bearing": {"elements": 9, "ball_diameter_mm": 7.94, "pitch_diameter_mm": 39.04,
+                                   "contact_angle_deg": 0.0}}]}
+    sc = parse_scenario(doc)
+    n = int(1.28 * 25600)
+    x = Simulation(sc, seed=1, t0_ns=0).record("M-1-P", 4)[:n]
+    band = default_envelope_band(25600.0, None, shaft_hz_max=1200.0 / 60.0 * 1.03)
+    plan = make_plan(25600.0, n, envelope_band_hz=band, bearing=BearingGeometry(9, 7.94, 39.04, 0.0))
+    r = analyze_frames(x, plan, shaft_hz=[1200.0 / 60.0])[0]
+    ftf, bsf = r.envelope["ftf"], r.envelope["bsf"]
+    assert bsf.detected and bsf.sidebands_found == 2
+    assert ftf.harmonics_found == 2  # FTF and 2 × FTF counted (the case)
+    assert ftf.snr_db is not None and ftf.threshold_db is not None and ftf.snr_db > ftf.threshold_db
+    assert not ftf.detected and ftf.ambiguous_with == "bsf"
+    assert r.envelope_detected == ("bsf",)
+
+
+def test_a_cage_fault_without_a_ball_fault_is_detected() -> None:
+    # a cage defect alone: an FTF series with its harmonics (Randall & Antoni 2011) and no 2 × BSF line; nothing
+    # for it to be the modulation of, so FTF is detected on its own
+    shaft = 29.93
+    fc = defect_multiples(B6205).ftf_hz * shaft
+    env = 1 + sum(0.4 / h * np.cos(2 * np.pi * h * fc * T) for h in (1, 2, 3))
+    x = env * np.sin(2 * np.pi * 6000 * T) + RNG.normal(0, 0.05, N)
+    r = analyze_frames(x, make_plan(FS, N, envelope_band_hz=(4000.0, 9000.0), bearing=B6205), shaft)[0]
+    assert r.envelope["ftf"].detected and r.envelope["ftf"].harmonics_found == 3
+    assert not r.envelope["bsf"].detected
+    assert r.envelope_detected == ("ftf",)
 
 
 def test_the_simulated_rolling_element_fault_is_one_fault() -> None:
