@@ -51,6 +51,8 @@ SPEED_CANDIDATES = 16  # best-scoring candidates examined
 SPEED_MIN_QUALITY = 0.5  # below this the estimate is ambiguous (see estimate_speed_hz)
 SPEED_RELATED_TOLERANCE = 0.03  # candidates whose ratio is within ±3 % of 1, 2, 3, 4 (or inverse) are related
 SPEED_CAGE_TOLERANCE = 0.03  # FTF within ± 3 % (bearing slip 1–2 %, Randall & Antoni 2011, plus the estimate's)
+SPEED_CAGE_SHAFT_SHARE = 0.1  # a shaft line beneath a dominant cage series still reaches −20 dB of it (from memory)
+SPEED_CAGE_LEAD = 0.005  # a shaft may read this far below winner / (k × FTF) (the interpolation's error)
 SPEED_HARMONIC_SHARE = 0.5  # a clear line at 2× or 3× the estimate this strong (re its 1×) makes it ambiguous
 SPEED_SUBHARMONIC_SHARE = 0.25  # ... and one at 1/2 or 1/3 of it this strong
 SUBSYNCHRONOUS = (0.35, 0.49)  # ratios of a sub-synchronous line (cage, oil whirl) to the shaft speed
@@ -339,8 +341,11 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     apart, a narrower speed range can.  With ``cage_ratio``, q is also 0 when clear lines (local maxima
     ``SPEED_MIN_PROMINENCE`` over their floor, not the winner's own cage lines) stand at both 1/3 and 2/3 of the
     winner below the speed range while winner / (3 × FTF) lies inside it: the winner may be the 3 × FTF of a cage
-    fault whose shaft line is too weak to be a candidate.  Below ``SPEED_MIN_QUALITY`` the estimate is NaN
-    (ambiguous): a confident wrong speed would move every order and defect frequency with it.
+    fault whose shaft line is too weak to be a candidate; and when a clear line reaching ``SPEED_CAGE_SHAFT_SHARE``
+    of the winner's velocity stands where a shaft would run whose k-th cage line the winner is (winner / (k × FTF),
+    up to 3 % above for the cage's slip; :func:`_cage_parent_found`): the winner may be that shaft's cage line.
+    Below ``SPEED_MIN_QUALITY`` the estimate is NaN (ambiguous): a confident wrong speed would move every order and
+    defect frequency with it.
 
     Parameters
     ----------
@@ -451,6 +456,12 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
         quality = np.where(thirds.all(axis=-1) & (f_w / 3.0 < speed_range_hz[0])
                            & (shaft_of >= speed_range_hz[0] * (1.0 - SPEED_CAGE_TOLERANCE))
                            & (shaft_of <= speed_range_hz[1] * (1.0 + SPEED_CAGE_TOLERANCE)), 0.0, quality)
+    if cage_ratio is not None and parents.size:
+        # a clear line where a shaft would run whose cage series holds the winner, that is no valid candidate (its
+        # 1× line weaker than a strong cage series): the winner may be that shaft's cage line
+        half_clear = a_ref[:, 3] >= SPEED_RELATED_PROMINENCE * floor_ref[:, 3]  # (a looseness series' ½× line)
+        parent = _cage_parent_found(acc, f_w, a_ref[:, 0], cage_ratio, parents, speed_range_hz, df_hz, half_clear)
+        quality = np.where(parent, 0.0, quality)
     any_valid = valid[rows, first]
     quality = np.where(any_valid, quality, np.nan)
     ok = any_valid & (quality >= SPEED_MIN_QUALITY)  # (NaN compares False, silently)
@@ -486,6 +497,43 @@ def _cage_parents(cage_ratio: float) -> FloatArray:
                     if abs(1.0 / (k * cage_ratio * max(1, round(1.0 / (k * cage_ratio)))) - 1.0)
                     > SPEED_CAGE_TOLERANCE], dtype=np.float64)
     out.flags.writeable = False
+    return out
+
+
+def _cage_parent_found(acc: FloatArray, f_w: FloatArray, a_w: FloatArray, cage_ratio: float, parents: FloatArray,
+                       speed_range_hz: tuple[float, float], df_hz: float,
+                       half_clear: npt.NDArray[np.bool_]) -> npt.NDArray[np.bool_]:
+    """Whether a clear line stands where a shaft would run whose k-th cage line is the winner ``f_w`` (shape
+    (channels,), its acceleration line ``a_w``).
+
+    The shaft lies at ``f_w / parents`` (:func:`_cage_parents`) or above it by the cage's slip (the cage lags its
+    kinematic speed by 1–2 %, Randall & Antoni 2011): the largest line from 0.5 % below to ``SPEED_CAGE_TOLERANCE``
+    above (at least one line each side) counts when it is a local maximum ``SPEED_MIN_PROMINENCE`` over its floor,
+    reaches ``SPEED_CAGE_SHAFT_SHARE`` of the winner's velocity, lies in the speed range (± the tolerance: a shaft
+    at its edge), and is neither one of the winner's own cage lines (j × FTF, j = 1 … ``CAGE_HARMONICS``), nor the
+    winner's line, nor — where the winner's ½× line is clear (``half_clear``: a looseness series) — at a half order
+    of the winner.  Shape (channels,).
+    """
+    tol = SPEED_CAGE_TOLERANCE
+    k = acc.shape[1]
+    f_w0 = np.where(np.isfinite(f_w), f_w, 0.0)[:, None]
+    f_p = f_w0 / parents  # (channels, parents)
+    b = f_p / df_hz
+    lo = np.minimum(np.floor(b * (1.0 - SPEED_CAGE_LEAD)), np.rint(b) - 1).astype(np.intp)
+    hi = np.maximum(np.ceil(b * (1.0 + tol)), np.rint(b) + 1).astype(np.intp)
+    p = np.minimum(np.maximum(window_argmax(acc, np.maximum(lo, 2), np.minimum(hi, k - 3)), 1), k - 2)
+    _, f_pr, a_p, floor_p = _refined_lines(acc, p * df_hz, df_hz)
+    peak = a_p >= np.maximum(_gather(acc, p - 1), _gather(acc, p + 1))
+    near = (f_pr >= f_p * (1.0 - SPEED_CAGE_LEAD) - df_hz) & (f_pr <= f_p * (1.0 + tol) + df_hz)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        share = a_p / f_pr >= SPEED_CAGE_SHAFT_SHARE * (a_w / f_w0[:, 0])[:, None]  # velocity ∝ acceleration / f
+        own = (np.abs(f_pr[..., None] / (f_w0[..., None] * cage_ratio * _CAGE_ORDERS) - 1.0) <= tol).any(axis=-1)
+        own |= np.abs(f_pr - f_w0) <= df_hz
+        half = 2.0 * f_pr / f_w0
+        own |= half_clear[:, None] & (np.abs(half / np.maximum(np.rint(half), 1.0) - 1.0) <= tol)
+    found = (a_p > 0) & near & peak & share & (a_p >= SPEED_MIN_PROMINENCE * floor_p) & ~own \
+        & (f_pr >= speed_range_hz[0] * (1.0 - tol)) & (f_pr <= speed_range_hz[1] * (1.0 + tol))
+    out: npt.NDArray[np.bool_] = np.asarray(found.any(axis=-1))
     return out
 
 
