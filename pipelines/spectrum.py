@@ -448,14 +448,15 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
         # lies in the range: the winner may be the 3 × FTF of a cage fault whose shaft line is too weak to be a
         # candidate (no machine series puts lines at both)
         shaft_of = f_w / (3.0 * cage_ratio)
-        p_t, f_t, a_t, floor_t = _refined_lines(acc, f_w[:, None] * _THIRDS, df_hz)
-        own = (np.abs(f_t[..., None] / (f_w[:, None, None] * cage_ratio * _CAGE_ORDERS) - 1.0)
-               <= SPEED_CAGE_TOLERANCE).any(axis=-1)  # (not the winner's own cage lines, nor their skirts)
-        peak_t = a_t >= np.maximum(_gather(acc, p_t - 1), _gather(acc, p_t + 1))
-        thirds = (a_t > 0) & peak_t & (a_t >= SPEED_MIN_PROMINENCE * floor_t) & ~own
-        quality = np.where(thirds.all(axis=-1) & (f_w / 3.0 < speed_range_hz[0])
-                           & (shaft_of >= speed_range_hz[0] * (1.0 - SPEED_CAGE_TOLERANCE))
-                           & (shaft_of <= speed_range_hz[1] * (1.0 + SPEED_CAGE_TOLERANCE)), 0.0, quality)
+        maybe = ((f_w / 3.0 < speed_range_hz[0]) & (shaft_of >= speed_range_hz[0] * (1.0 - SPEED_CAGE_TOLERANCE))
+                 & (shaft_of <= speed_range_hz[1] * (1.0 + SPEED_CAGE_TOLERANCE)))
+        if maybe.any():  # (the line search only where the winner's place allows it: most calls skip it)
+            p_t, f_t, a_t, floor_t = _refined_lines(acc, f_w[:, None] * _THIRDS, df_hz)
+            own = (np.abs(f_t[..., None] / (f_w[:, None, None] * cage_ratio * _CAGE_ORDERS) - 1.0)
+                   <= SPEED_CAGE_TOLERANCE).any(axis=-1)  # (not the winner's own cage lines, nor their skirts)
+            peak_t = a_t >= np.maximum(_gather(acc, p_t - 1), _gather(acc, p_t + 1))
+            thirds = (a_t > 0) & peak_t & (a_t >= SPEED_MIN_PROMINENCE * floor_t) & ~own
+            quality = np.where(thirds.all(axis=-1) & maybe, 0.0, quality)
     if cage_ratio is not None and parents.size:
         # a clear line where a shaft would run whose cage series holds the winner, that is no valid candidate (its
         # 1× line weaker than a strong cage series): the winner may be that shaft's cage line
