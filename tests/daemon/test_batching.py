@@ -20,16 +20,32 @@ N = 16384
 T0 = 1_764_633_600_000_000_000
 
 
-def config(state_dir: Path, points: int) -> Config:
+def config(state_dir: Path, points: int, machines: tuple[str, ...] = ("P-101",)) -> Config:
+    """``points`` points shared evenly by ``machines``, in that order (``P-101-00``…), sensors ``QL-00``…"""
+    per = points // len(machines)
     return parse_config({
         "site": {"name": "quarry-lane", "state_dir": str(state_dir)},
         "analysis": {"frame_samples": N, "overlap": 0.0, "queue_frames": 4, "workers": 1},
         "alarms": {"enabled": False},
         "sources": [{"name": "scripted", "type": "mqtt", "url": "mqtt://127.0.0.1:1", "topics": ["x/#"]}],
-        "machines": [{"id": "P-101", "group": 2, "support": "rigid", "speed_rpm": 1500.0}],
-        "points": [{"id": f"P-101-{i:02d}", "machine": "P-101", "source": "scripted", "sensor": f"QL-{i:02d}",
-                    "fs_hz": FS, "block_samples": N} for i in range(points)],
+        "machines": [{"id": m, "group": 2, "support": "rigid", "speed_rpm": 1500.0} for m in machines],
+        "points": [{"id": f"{machines[i // per]}-{i % per:02d}", "machine": machines[i // per], "source": "scripted",
+                    "sensor": f"QL-{i:02d}", "fs_hz": FS, "block_samples": N} for i in range(points)],
     })
+
+
+def probe(daemon: Daemon) -> list[Any]:
+    """The results the daemon delivers to its sinks, in order (a sink added to ``daemon``)."""
+    seen: list[Any] = []
+
+    class Probe:
+        async def start(self) -> None: ...
+        async def stop(self) -> None: ...
+        async def on_frames(self, results: list[Any]) -> None:
+            seen.extend(results)
+
+    daemon.add_sink(Probe())
+    return seen
 
 
 class Recorder:
@@ -54,15 +70,7 @@ async def _run(tmp_path: Path, points: int, feed: Any) -> tuple[Recorder, Daemon
     rec = Recorder()
     daemon = Daemon(config(tmp_path, points), registry=CollectorRegistry(), analyze=rec, sources=[],
                     serve_metrics=False)
-    seen: list[Any] = []
-
-    class Probe:
-        async def start(self) -> None: ...
-        async def stop(self) -> None: ...
-        async def on_frames(self, results: list[Any]) -> None:
-            seen.extend(results)
-
-    daemon.add_sink(Probe())
+    seen = probe(daemon)
     await daemon.start()
     try:
         await feed(daemon)
@@ -113,16 +121,7 @@ async def test_a_batch_queues_behind_the_running_one_without_a_machine_already_i
     # batches ran one after the other.
     import threading
 
-    cfg = parse_config({
-        "site": {"name": "quarry-lane", "state_dir": str(tmp_path)},
-        "analysis": {"frame_samples": N, "overlap": 0.0, "queue_frames": 4, "workers": 1},
-        "alarms": {"enabled": False},
-        "sources": [{"name": "scripted", "type": "mqtt", "url": "mqtt://127.0.0.1:1", "topics": ["x/#"]}],
-        "machines": [{"id": m, "group": 2, "support": "rigid", "speed_rpm": 1500.0} for m in ("P-101", "P-102")],
-        "points": [{"id": f"{m}-{i % 4:02d}", "machine": m, "source": "scripted", "sensor": f"QL-{i:02d}",
-                    "fs_hz": FS, "block_samples": N} for m, i in [("P-101", i) for i in range(4)]
-                   + [("P-102", i) for i in range(4, 8)]],
-    })
+    cfg = config(tmp_path, 8, ("P-101", "P-102"))
     gate = threading.Event()
     calls: list[int] = []
 
@@ -131,17 +130,8 @@ async def test_a_batch_queues_behind_the_running_one_without_a_machine_already_i
         gate.wait(10.0)  # the first batch is held in the worker until the test has looked
         return analyze_frames(x, plan, shaft_hz=shaft_hz)
 
-    daemon = Daemon(cfg, registry=CollectorRegistry(), analyze=analyze, sources=[],
-                    serve_metrics=False)
-    seen: list[Any] = []
-
-    class Probe:
-        async def start(self) -> None: ...
-        async def stop(self) -> None: ...
-        async def on_frames(self, results: list[Any]) -> None:
-            seen.extend(results)
-
-    daemon.add_sink(Probe())
+    daemon = Daemon(cfg, registry=CollectorRegistry(), analyze=analyze, sources=[], serve_metrics=False)
+    seen = probe(daemon)
     await daemon.start()
     try:
         for i in range(2):
