@@ -475,15 +475,14 @@ def _run_shape(snaps: list[_Snap]) -> _RunShape:
 
 def _check_shape(snaps: list[_Snap], shape: _RunShape, on_error: OnError) -> list[_Snap]:
     """The text snapshots of the run's length (binary recordings of any length); the others are reported and
-    skipped, never mixed into the trend.  A text
-    snapshot whose last line was cut (dropped by the reader) or ends without the line break the run's other files
-    end with (its last value may be cut) keeps its other rows, with a note."""
+    skipped, never mixed into the trend.  A text snapshot whose last line was cut (dropped by the reader) or ends
+    without the line break the run's other files end with (its last value may be cut) keeps its other rows, with a
+    note."""
     kept: list[_Snap] = []
     for s in snaps:
-        rows = "rows" if s.text else "samples"
         if s.text and s.written != shape.n_samples:
             cut = ", its last line cut short" if s.note else ""
-            on_error(s.path, f"{s.written} {rows} where the run's snapshots have {shape.n_samples} (the most "
+            on_error(s.path, f"{s.written} rows where the run's snapshots have {shape.n_samples} (the most "
                              f"common length){cut}: a cut or partial snapshot is not mixed into the trend; replay "
                              "snapshots of another length apart (a glob pattern)")
             continue
