@@ -54,6 +54,7 @@ from pydantic import (
     SerializerFunctionWrapHandler,
     Strict,
     ValidationError,
+    ValidatorFunctionWrapHandler,
     model_serializer,
     model_validator,
 )
@@ -66,6 +67,8 @@ from edgevib.daemon.indicators import LIMITABLE
 from edgevib.daemon.shard import MAX_SHARDS, shard_of
 
 if TYPE_CHECKING:
+    from pydantic_core import ErrorDetails, InitErrorDetails
+
     from edgevib.daemon.alarms.config import AlarmSettings
     from edgevib.pipelines.types import AnalysisPlan, BearingGeometry
 
@@ -323,17 +326,40 @@ class _Table(BaseModel):
 
     model_config = ConfigDict(extra="forbid", frozen=True)
 
-    @model_validator(mode="before")
+    @model_validator(mode="wrap")
     @classmethod
-    def _known_keys(cls, data: Any) -> Any:
-        """An unknown key is the table's first problem (a misspelt required key is reported as the misspelling,
-        with the key that was meant, not as a missing key)."""
-        if isinstance(data, dict) and cls.model_config.get("extra") == "forbid":
-            known = [f.alias or n for n, f in cls.model_fields.items()]
-            for key, value in data.items():
-                if key not in known:
-                    raise _Unknown(str(key), value, known)
-        return data
+    def _known_keys(cls, data: Any, handler: ValidatorFunctionWrapHandler) -> Any:
+        """Keys the table does not declare are reported together with the problems of the keys it does (each
+        unknown key with the key that was probably meant; a misspelt required key is reported as the misspelling,
+        not also as a missing key).  The table's own rules (its after validators, which tie keys together) run
+        once all its keys are known."""
+        known = cls._declared_keys()
+        if not isinstance(data, dict) or known is None:
+            return handler(data)
+        undeclared = [cls._undeclared(str(key), value, known) for key, value in data.items() if key not in known]
+        if not undeclared:
+            return handler(data)
+        meant = {(m,) for p in undeclared if isinstance(p, _Unknown) and (m := _meant(p.key, known)) is not None}
+        errors: list[InitErrorDetails] = [{"type": "value_error", "loc": (), "input": data, "ctx": {"error": p}}
+                                          for p in undeclared]
+        try:
+            handler({k: v for k, v in data.items() if k in known})
+        except ValidationError as exc:
+            errors += [_error_details(e) for e in exc.errors(include_url=False)
+                       if not (e["type"] == "missing" and e["loc"] in meant)]
+        raise ValidationError.from_exception_data(cls.__name__, errors)
+
+    @classmethod
+    def _declared_keys(cls) -> list[str] | None:
+        """The keys the table takes (``None``: any key)."""
+        if cls.model_config.get("extra") != "forbid":
+            return None
+        return [f.alias or n for n, f in cls.model_fields.items()]
+
+    @classmethod
+    def _undeclared(cls, key: str, value: object, known: list[str]) -> _Problem:
+        """The problem with a key that the table does not declare."""
+        return _Unknown(key, value, known)
 
 
 class _WithSecrets(_Table):
@@ -341,16 +367,13 @@ class _WithSecrets(_Table):
 
     _SECRETS: ClassVar[tuple[str, ...]] = ()
 
-    @model_validator(mode="before")
     @classmethod
-    def _no_literal_secrets(cls, data: Any) -> Any:
-        if isinstance(data, dict):
-            for name in cls._SECRETS:
-                if name in data:
-                    raise _Problem(name, f"secrets are not accepted in the configuration file; put it in a file and "
-                                   f"set {name}_file = \"/path\" (e.g. a systemd credential), or in an environment "
-                                   f"variable and set {name}_env = \"NAME\"")
-        return data
+    def _undeclared(cls, key: str, value: object, known: list[str]) -> _Problem:
+        if key in cls._SECRETS:
+            return _Problem(key, f"secrets are not accepted in the configuration file; put it in a file and set "
+                            f"{key}_file = \"/path\" (e.g. a systemd credential), or in an environment variable and "
+                            f"set {key}_env = \"NAME\"")
+        return super()._undeclared(key, value, known)
 
     @model_validator(mode="after")
     def _one_source_per_secret(self) -> _WithSecrets:
@@ -872,6 +895,14 @@ class PointLimits(_Table):
 
     health: PointHealth | None = None
 
+    @classmethod
+    def _declared_keys(cls) -> list[str] | None:
+        return ["health", *LIMITABLE]
+
+    @classmethod
+    def _undeclared(cls, key: str, value: object, known: list[str]) -> _Problem:
+        return _Problem(key, _unknown_indicator(key, known, quoted=False))
+
     @model_validator(mode="before")
     @classmethod
     def _verdict_levels(cls, data: Any) -> Any:
@@ -911,8 +942,6 @@ class PointLimits(_Table):
     @model_validator(mode="after")
     def _indicators(self) -> PointLimits:
         for name, lim in self.indicators.items():
-            if name not in LIMITABLE:
-                raise _Problem(name, _unknown_indicator(name, ["health", *LIMITABLE], quoted=False))
             for level, rule in (("alert", lim.alert), ("danger", lim.danger), ("rule", lim.rule)):
                 kind = rule.kind if isinstance(rule, LevelRule) else rule
                 if kind in ("iso", "iso-baseline") and name != "velocity_rms_mm_s":
@@ -1289,10 +1318,23 @@ def _dotted(loc: tuple[int | str, ...]) -> str:
     return out
 
 
-def _did_you_mean(key: str, known: list[str]) -> str:
+def _meant(key: str, known: list[str]) -> str | None:
+    """The name of ``known`` that ``key`` probably misspells (same letters in another case, or a close match)."""
     lower = {k.lower(): k for k in known}
-    match = lower.get(key.lower()) or next(iter(difflib.get_close_matches(key, known, n=1, cutoff=0.75)), None)
+    return lower.get(key.lower()) or next(iter(difflib.get_close_matches(key, known, n=1, cutoff=0.75)), None)
+
+
+def _did_you_mean(key: str, known: list[str]) -> str:
+    match = _meant(key, known)
     return f"; did you mean `{match}`?" if match else ""
+
+
+def _error_details(err: ErrorDetails) -> InitErrorDetails:
+    """One entry of ``ValidationError.errors()`` as it is given to ``ValidationError.from_exception_data``."""
+    details: InitErrorDetails = {"type": err["type"], "loc": err["loc"], "input": err["input"]}
+    if "ctx" in err:
+        details["ctx"] = err["ctx"]
+    return details
 
 
 def _unknown_indicator(name: str, known: list[str], quoted: bool = True) -> str:

@@ -431,6 +431,43 @@ def test_a_file_with_three_mistakes_in_its_tables_reports_all_three(tmp_path: Pa
     assert "sources[0].qos: must be an integer, got string '1'" in text
 
 
+def test_an_unknown_key_is_reported_with_the_other_problems_of_its_table(tmp_path: Path) -> None:
+    doc = base()
+    # the misspelling stands in for the required key: reported as the misspelling, not also as a missing key;
+    # ISO 20816-3 sorts machines into groups 1 and 2, so group 3 is out of range beside it
+    doc["machines"][0]["suport"] = doc["machines"][0].pop("support")
+    doc["machines"][0]["group"] = 3
+    doc["points"][0]["colour"] = "red"
+    doc["points"][0]["block_samples"] = 0  # a block holds at least one sample
+    doc["sources"][0]["password"] = "hunter2"
+    doc["sources"][0]["keepalive_s"] = "30"
+    exc = _problems(doc, tmp_path)
+    assert [path for path, _ in exc.problems] == ["sources[0].password", "sources[0].keepalive_s",
+                                                  "machines[0].suport", "machines[0].group",
+                                                  "points[0].colour", "points[0].block_samples"], str(exc)
+    problems = dict(exc.problems)
+    assert problems["sources[0].password"].startswith("secrets are not accepted in the configuration file")
+    assert problems["sources[0].keepalive_s"] == "must be a number, got string '30'"
+    assert problems["machines[0].suport"] == "unknown key; did you mean `support`?"
+    assert problems["machines[0].group"] == "3 is out of range: must be <= 2"
+    assert problems["points[0].colour"].startswith("unknown key (known keys here: ")
+    assert problems["points[0].block_samples"] == "0 is out of range: must be >= 1"
+    assert str(exc).startswith("6 problems:\n")
+
+
+def test_an_unknown_indicator_is_reported_with_the_other_limits_problems() -> None:
+    doc = base()
+    doc["points"][0]["limits"] = {"velocity_rms": {"alert": 2.8}, "crest_factor": {"alert": 5.0, "deadband": "x"},
+                                  "kurtosis": {"alert": 5.0, "danegr": 8.0}}
+    exc = error(doc)
+    paths = [path for path, _ in exc.problems]
+    assert paths == ["points[0].limits.velocity_rms", "points[0].limits.crest_factor.deadband",
+                     "points[0].limits.kurtosis.danegr"], str(exc)
+    assert "did you mean `velocity_rms_mm_s`?" in exc.problems[0][1]
+    assert exc.problems[1][1] == "must be a number, got string 'x'"
+    assert exc.problems[2][1] == "unknown key; did you mean `danger`?"
+
+
 def test_duplicate_point_ids_are_reported_with_the_points_own_errors(tmp_path: Path) -> None:
     doc = base()
     first = doc["points"][0]
