@@ -42,7 +42,6 @@ class SimulatedSource:
         self.simulation = simulation
         self._connected = False
         self._stop = asyncio.Event()
-        self.sim_time_s = 0.0
 
     @property
     def connected(self) -> bool:
@@ -71,7 +70,6 @@ class SimulatedSource:
             while not self._stop.is_set():
                 t_sim = (loop.time() - start) * self.rate
                 blocks = await asyncio.to_thread(sim.blocks_until, t_sim)
-                self.sim_time_s = t_sim
                 now = time.time_ns()
                 for tag, (machine_id, unit) in self.speed_tags.items():
                     with contextlib.suppress(Exception):
