@@ -64,6 +64,7 @@ from edgevib.pipelines.types import (
     FamilyResult,
     FrameIndicators,
     PlanError,
+    PlanNote,
     SignalError,
 )
 
@@ -326,7 +327,7 @@ class AnalysisKernel:
         df = plan.fs_hz / n
         self._df = df
         nyq = plan.fs_hz / 2.0
-        notes: list[str] = []
+        notes: list[PlanNote] = []
         length = f"the {_duration(n, plan.fs_hz)} record resolves {df:.3g} Hz"
         k = np.arange(n // 2 + 1, dtype=np.float64)
         omega = 2.0 * np.pi * k * df
@@ -338,8 +339,8 @@ class AnalysisKernel:
         need_v = min_frame_samples(plan.fs_hz, v_band[0], v_band[0])  # make_plan's rule (edgevib.common.bands)
         self._velocity = n >= need_v and hi >= lo
         if not self._velocity:
-            notes.append(f"velocity: {length}, too coarse for the velocity band's {v_band[0]:g} Hz low edge "
-                         f"({LINES_BELOW_EDGE:g} lines needed; needs ≥ {_duration(need_v, plan.fs_hz)})")
+            notes.append(PlanNote("velocity", f"{length}, too coarse for the velocity band's {v_band[0]:g} Hz low "
+                                  f"edge ({LINES_BELOW_EDGE:g} lines needed; needs ≥ {_duration(need_v, plan.fs_hz)})"))
             lo, hi = max(lo, 1), max(hi, max(lo, 1))
         self._vel_lines = (lo, hi)
         self._mv = max(fast_length(math.ceil(PEAK_OVERSAMPLING * hi)), 2 * hi + 2)
@@ -366,12 +367,12 @@ class AnalysisKernel:
         need_s = min_frame_samples(plan.fs_hz, s_lo, s_lo)
         self._estimate = n >= need_s and SPEED_HARMONICS * s_hi * (1 + plan.order_tolerance) < nyq
         if n < need_s:
-            notes.append(f"speed estimate: {length}, too coarse for the lowest shaft speed {s_lo:g} Hz "
-                         f"({LINES_BELOW_EDGE:g} lines needed; needs ≥ {_duration(need_s, plan.fs_hz)}); give the "
-                         "speed")
+            notes.append(PlanNote("speed estimate", f"{length}, too coarse for the lowest shaft speed {s_lo:g} Hz "
+                                  f"({LINES_BELOW_EDGE:g} lines needed; needs ≥ {_duration(need_s, plan.fs_hz)})",
+                                  advice="give the speed"))
         elif not self._estimate:
-            notes.append(f"speed estimate: {SPEED_HARMONICS} harmonics of {s_hi:g} Hz reach Nyquist {nyq:g} Hz; "
-                         "give the speed")
+            notes.append(PlanNote("speed estimate", f"{SPEED_HARMONICS} harmonics of {s_hi:g} Hz reach Nyquist "
+                                  f"{nyq:g} Hz", advice="give the speed"))
         self._speed_stop = min(n // 2, math.ceil(SPEED_HARMONICS * s_hi * (1 + plan.order_tolerance) / df) + 3) \
             if self._estimate else 0
         # orders: each at least 2 lines from DC and 1 line from the other orders, so each has a lowest shaft speed
@@ -382,9 +383,9 @@ class AnalysisKernel:
         self._order_min = tuple(order_min.tolist())
         below = [(order_key(v), float(f)) for v, f in zip(plan.orders, order_min, strict=True) if f > s_lo]
         if below:
-            notes.append(f"orders {', '.join(k for k, _ in below)}: {length}: left out below "
-                         f"{max(f for _, f in below):.3g} Hz shaft speed (an order needs 2 lines from DC and 1 from "
-                         "the next order)")
+            notes.append(PlanNote("orders", f"{length}: left out below {max(f for _, f in below):.3g} Hz shaft "
+                                  "speed (an order needs 2 lines from DC and 1 from the next order)",
+                                  items=tuple(k for k, _ in below)))
         self._cage = None if plan.bearing is None else defect_multiples(plan.bearing).ftf_hz
         self._env = plan.bearing is not None and plan.envelope_band_hz is not None
         self._env_lines = (0, 0)
@@ -420,10 +421,10 @@ class AnalysisKernel:
             short = [(name.upper() if name != "bsf" else "2×BSF", float(f))
                      for name, f in zip(FAMILIES, fam_min, strict=True) if f > s_lo]
             if short:
-                notes.append(f"envelope {', '.join(k for k, _ in short)}: {length}: left out below "
-                             f"{max(f for _, f in short):.3g} Hz shaft speed (a defect line needs {MIN_LINE + 1} "
-                             "lines from DC)")
-        self.notes: tuple[str, ...] = tuple(notes)
+                notes.append(PlanNote("envelope", f"{length}: left out below {max(f for _, f in short):.3g} Hz "
+                                      f"shaft speed (a defect line needs {MIN_LINE + 1} lines from DC)",
+                                      items=tuple(k for k, _ in short)))
+        self.notes: tuple[PlanNote, ...] = tuple(notes)
 
     def analyze(self, x_g: npt.ArrayLike, shaft_hz: npt.ArrayLike | None = None) -> list[FrameIndicators]:
         """Indicators of frames ``x_g`` (channels, n_samples) in g; see :func:`analyze_frames`."""
@@ -730,8 +731,9 @@ def kernel_for(plan: AnalysisPlan) -> AnalysisKernel:  # evicted and rebuilt bet
 def plan_notes(plan: AnalysisPlan) -> tuple[str, ...]:
     """One line per indicator group the plan's record is too short for: what is missing and why (empty when
     everything can be computed).  For example ``"velocity: the 0.05 s record resolves 20 Hz, coarser than the
-    velocity band's 10 Hz low edge (needs ≥ 0.1 s)"``."""
-    return kernel_for(plan).notes
+    velocity band's 10 Hz low edge (needs ≥ 0.1 s)"``.  The same notes as :class:`PlanNote` (to pick a group by
+    its ``group``): ``kernel_for(plan).notes``."""
+    return tuple(str(note) for note in kernel_for(plan).notes)
 
 
 def analyze_frames(x_g: npt.ArrayLike, plan: AnalysisPlan,

@@ -19,6 +19,7 @@ __all__ = [
     "GeometryError",
     "PipelineError",
     "PlanError",
+    "PlanNote",
     "SignalError",
     "Support",
 ]
@@ -97,6 +98,25 @@ class AnalysisPlan:
     false_alarm: float = 1e-3
     min_depth: float = 0.3
     partial: bool = False
+
+
+@dataclass(frozen=True, slots=True)
+class PlanNote:
+    """One indicator group that a partial plan's record is too short for (see ``analysis.plan_notes``).
+
+    ``group`` says which group; ``items`` the orders or families left out (``("0.5x",)``, ``("FTF", "2×BSF")``;
+    empty for the other groups); ``reason`` why, ``advice`` what to do about it (empty: nothing).  ``str(note)`` is
+    the line shown: ``"speed estimate: the 0.05 s record resolves 20 Hz, too coarse …; give the speed"``.
+    """
+
+    group: Literal["velocity", "speed estimate", "orders", "envelope"]
+    reason: str
+    items: tuple[str, ...] = ()
+    advice: str = ""
+
+    def __str__(self) -> str:
+        head = f"{self.group} {', '.join(self.items)}" if self.items else self.group
+        return f"{head}: {self.reason}; {self.advice}" if self.advice else f"{head}: {self.reason}"
 
 
 @dataclass(frozen=True, slots=True)
