@@ -37,16 +37,16 @@ from edgevib.pipelines.analysis import (
     FAMILIES,
     analyze_frames,
     default_envelope_band,
+    kernel_for,
     make_plan,
     order_key,
-    plan_notes,
 )
 from edgevib.pipelines.bearings import defect_frequencies, validate_geometry
 from edgevib.pipelines.conditioning import to_g
 from edgevib.pipelines.envelope import DEPTH_NOISE_RMS
 from edgevib.pipelines.kurtogram import select_band_for
 from edgevib.pipelines.severity import iso_zone, zone_boundaries_mm_s
-from edgevib.pipelines.types import AnalysisPlan, BearingGeometry, FrameIndicators, PipelineError
+from edgevib.pipelines.types import AnalysisPlan, BearingGeometry, FrameIndicators, PipelineError, PlanNote
 
 __all__ = ["FORMATS", "InputError", "Waveform", "configure_analyze", "configure_bearing", "read_waveform",
            "run_analyze", "run_bearing"]
@@ -382,16 +382,16 @@ def _undetermined_speed_text(est_range: tuple[float, float] | None, est_quality:
     return "not determined"
 
 
-def _known_speed_notes(lines: tuple[str, ...], speed: _Speed, fs: float, n: int) -> list[str]:
+def _known_speed_notes(notes: tuple[PlanNote, ...], speed: _Speed, fs: float, n: int) -> list[str]:
     """The plan's notes, its speed-estimate note said as it stands when the speed is known (given or from the
     file): the speed is used without an estimate, and the note says why the spectrum cannot check it — how many
     samples the record has and how many checking needs — instead of asking for the speed."""
     if speed.shaft_hz is None or speed.source not in ("given", "file"):
-        return list(lines)
+        return [str(note) for note in notes]
     out: list[str] = []
-    for line in lines:
-        if not line.startswith("speed estimate:"):
-            out.append(line)
+    for note in notes:
+        if note.group != "speed estimate":
+            out.append(str(note))
             continue
         head = f"speed: {_speed_text(speed.shaft_hz * 60)} from {speed.source_text}, not checked against the spectrum"
         need = min_frame_samples(fs, speed.range_hz[0], speed.range_hz[0])
@@ -399,8 +399,7 @@ def _known_speed_notes(lines: tuple[str, ...], speed: _Speed, fs: float, n: int)
             out.append(f"{head}: the record's {n} samples ({n / fs:.3g} s at {fs:g} Hz) are too few (checking needs "
                        f"≥ {need} samples, {need / fs:.3g} s)")
         else:
-            why = line.removeprefix("speed estimate:").strip().removesuffix("; give the speed")
-            out.append(f"{head}: {why}")
+            out.append(f"{head}: {note.reason}")
     return out
 
 
@@ -528,7 +527,7 @@ def _analyze(args: argparse.Namespace) -> tuple[dict[str, Any], list[str]]:
                      envelope_band_hz=band if opts.bearing is not None else None, bearing=opts.bearing,
                      speed_range_hz=speed.range_hz, orders=orders, order_tolerance=ORDER_TOLERANCE,
                      false_alarm=opts.alpha, partial=True)
-    notes.extend(_known_speed_notes(plan_notes(plan), speed, fs, n))
+    notes.extend(_known_speed_notes(kernel_for(plan).notes, speed, fs, n))
     ind: FrameIndicators = analyze_frames(x_g, plan, [math.nan if shaft_hz is None else shaft_hz])[0]
     if shaft_hz is None and ind.shaft_hz is not None:  # (the final plan's own estimate; kept consistent)
         shaft_hz, source, source_text = ind.shaft_hz, "estimated", "estimated from the spectrum"

@@ -88,7 +88,7 @@ from edgevib.daemon.trendwatch import (
     running_state,
 )
 from edgevib.daemon.waveform_files import read_text_waveform
-from edgevib.pipelines.analysis import analyze_frames, default_envelope_band, make_plan, plan_notes
+from edgevib.pipelines.analysis import analyze_frames, default_envelope_band, kernel_for, make_plan
 from edgevib.pipelines.conditioning import to_g
 from edgevib.pipelines.severity import iso_zone, zone_boundaries_mm_s
 from edgevib.pipelines.trend import TrendSpec
@@ -430,7 +430,7 @@ def _plan(fs: float, n: int, o: ReplayOptions, shaft_hz: float | None) -> tuple[
         plan = make_plan(fs, n, velocity_band_hz=vel, envelope_band_hz=band, bearing=o.bearing,
                          speed_range_hz=speed, partial=True)
         notes.append(f"{exc}; analysed in part: what the record resolves")
-        notes += [line for line in plan_notes(plan) if not line.startswith("speed estimate:")]
+        notes += [str(note) for note in kernel_for(plan).notes if note.group != "speed estimate"]
     return plan, notes
 
 

@@ -176,6 +176,19 @@ def test_long_enough_records_have_no_notes() -> None:
     assert "left out below 6.25 Hz shaft speed" in notes[0]
 
 
+def test_plan_notes_name_their_group() -> None:
+    # 128 samples at 25.6 kHz resolve 200 Hz lines (DFT line spacing fs / n): no velocity band edge at 10 Hz, no
+    # speed estimate from 5 Hz, no order of a shaft below 100 Hz has the 2 lines from DC it needs (make_plan's rule)
+    plan = make_plan(FS, 128, partial=True)
+    notes = kernel_for(plan).notes
+    assert [n.group for n in notes] == ["velocity", "speed estimate", "orders"]
+    assert tuple(str(n) for n in notes) == plan_notes(plan)
+    speed = notes[1]
+    assert speed.advice == "give the speed" and str(speed) == f"speed estimate: {speed.reason}; give the speed"
+    assert speed.reason.startswith("the 0.005 s record resolves 200 Hz, too coarse for the lowest shaft speed 5 Hz")
+    assert notes[2].items == ("0.5x", "1x", "2x", "3x") and plan_notes(plan)[2].startswith("orders 0.5x, 1x, 2x, 3x: ")
+
+
 # ------------------------------------------------------------------------------------------- frames
 
 
