@@ -441,13 +441,14 @@ class AnalysisKernel:
         x32 = np.empty(x.shape, dtype=np.float32)
         np.subtract(x, x0, out=x32, casting="same_kind")
         spec = _fft.rfft(x32)
-        del x32  # (batch-sized arrays are let go as soon as they are used: see DEVELOPERS.md, page faults)
         # line 0 is the sum of the samples (NaN/Inf anywhere reach it)
         mean = spec[:, 0].real / n + x0[:, 0].astype(np.float64)
         if not np.isfinite(spec[:, 0]).all():
             finite_mean(x)  # raises SignalError naming the channel and the count
         spec[:, 0] = 0.0  # the mean, removed (lines ≥ 1 are those of the centred frame)
-        td = centred_moments(x, mean)
+        # the moments from the same offset frames, centred in single precision by what remains of the mean
+        td = centred_moments(x32, mean, (mean - x0[:, 0]).astype(np.float32))
+        del x32  # (batch-sized arrays are let go as soon as they are used: see DEVELOPERS.md, page faults)
 
         given = np.isfinite(f_given)
         estimate = ~given

@@ -86,8 +86,13 @@ def finite_mean(x: npt.NDArray[np.floating[Any]]) -> FloatArray:
 BLOCK_SAMPLES = 1 << 17  # rows are processed in blocks of about this many samples (512 kB of float32: in cache)
 
 
-def centred_moments(x: npt.NDArray[np.floating[Any]], mean: FloatArray) -> TimeDomain:
+def centred_moments(x: npt.NDArray[np.floating[Any]], mean: FloatArray,
+                    shift: npt.NDArray[np.floating[Any]] | None = None) -> TimeDomain:
     """Indicators of frames ``x`` (channels, samples) about their means ``mean`` (channels,).
+
+    ``shift`` (channels,), when given, is what centres ``x`` instead of ``mean``: for frames already offset by a
+    value near their level (``x − x[:, :1]`` in float32, ``shift = mean − x[:, 0]`` in float32), so the centring
+    is one single-precision pass (a float64 ``mean`` would make it a float64 pass over the frames).
 
     The centred samples are formed block by block in single precision on purpose: each block of rows stays in
     the processor's cache through its five passes (max, min, Σx², Σx³, Σx⁴), and numpy's pairwise summation keeps
@@ -98,11 +103,12 @@ def centred_moments(x: npt.NDArray[np.floating[Any]], mean: FloatArray) -> TimeD
     rows = max(1, min(c, BLOCK_SAMPLES // n))
     xc = np.empty((rows, n), dtype=np.float32)
     x2 = np.empty((rows, n), dtype=np.float32)
+    centre = mean if shift is None else shift
     acc = np.empty((5, c), dtype=np.float64)
     for i in range(0, c, rows):  # blocks of rows, not a loop over channels
         j = min(c, i + rows)
         a, b = xc[: j - i], x2[: j - i]
-        np.subtract(x[i:j], mean[i:j, None], out=a, casting="same_kind")
+        np.subtract(x[i:j], centre[i:j, None], out=a, casting="same_kind")
         acc[0, i:j] = a.max(axis=-1)
         acc[1, i:j] = a.min(axis=-1)
         np.square(a, out=b)
