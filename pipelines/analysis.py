@@ -308,7 +308,7 @@ class AnalysisKernel:
         "_mv",
         "_n",
         "_order_keys",
-        "_order_min",
+        "_order_min_hz",
         "_speed_stop",
         "_split",
         "_thresholds",
@@ -380,7 +380,8 @@ class AnalysisKernel:
         apart = np.abs(o[:, None] - o[None, :]) + np.diag(np.full(o.size, np.inf))
         order_min = np.maximum(2.0 * df / o, df / apart.min(axis=1))
         self._order_keys = tuple(order_key(v) for v in plan.orders)  # (per call: only arithmetic, see analyze)
-        self._order_min = tuple(order_min.tolist())
+        order_min.flags.writeable = False
+        self._order_min_hz = order_min
         below = [(order_key(v), float(f)) for v, f in zip(plan.orders, order_min, strict=True) if f > s_lo]
         if below:
             notes.append(PlanNote("orders", f"{length}: left out below {max(f for _, f in below):.3g} Hz shaft "
@@ -520,35 +521,35 @@ class AnalysisKernel:
         vel_peak = np.maximum(peaks[0, 0], peaks[1, 0])  # signed: |v| would fold neighbours
         disp_pp = peaks[0, 1] + peaks[1, 1]
 
-        keys = self._order_keys
-        shaft_l = shaft.tolist()
-        est_l = estimate.tolist()
-        quality_l = quality.tolist()
+        # per-channel values as Python lists, None where unavailable (converted once per column, not per channel)
+        none = np.array(None, dtype=object)
+        known = np.isfinite(shaft)
+        estimated = estimate & known
+        shaft_l = np.where(known, shaft, none).tolist()
+        est_l = estimated.tolist()
+        quality_l = np.where(estimate & np.isfinite(quality), quality, none).tolist()  # (also for no speed found)
         run_l = running.tolist()
+        keys = self._order_keys
         orders_l = orders.tolist()
-        order_min = self._order_min
+        order_ok = (running[:, None] & (shaft[:, None] >= self._order_min_hz) & np.isfinite(orders)).tolist()
         cols = (td.rms_g, td.peak_g, td.peak_to_peak_g, td.crest_factor, td.kurtosis, td.skewness, td.mean_g,
                 vel_rms, vel_peak, disp_pp)
         rows = np.stack(cols, axis=1).tolist()
         families = _family_results(fam, shaft, self._mult, self._df) if fam is not None else [{}] * c
+        velocity = self._velocity
+        band = plan.envelope_band_hz
         out: list[FrameIndicators] = []
-        for ch in range(c):
-            f = shaft_l[ch]
-            known = math.isfinite(f)
-            order_map = {key: a for key, a, f_min in zip(keys, orders_l[ch], order_min, strict=True)
-                         if run_l[ch] and f >= f_min and math.isfinite(a)}
-            r = rows[ch]
-            q = quality_l[ch]
+        for r, f, est, q, run, amps, ok, env in zip(rows, shaft_l, est_l, quality_l, run_l, orders_l, order_ok,
+                                                    families, strict=True):
             out.append(FrameIndicators(
                 acceleration_rms_g=r[0], acceleration_peak_g=r[1], acceleration_peak_to_peak_g=r[2],
                 crest_factor=r[3], kurtosis=r[4], skewness=r[5], mean_g=r[6],
-                velocity_rms_mm_s=r[7] if self._velocity else None,
-                velocity_peak_mm_s=r[8] if self._velocity else None,
-                displacement_pp_um=r[9] if self._velocity else None,
-                shaft_hz=f if known else None, shaft_estimated=bool(est_l[ch]) and known,
-                orders_mm_s=order_map, envelope_band_hz=plan.envelope_band_hz,
-                envelope=families[ch] if run_l[ch] else {},
-                shaft_quality=q if bool(est_l[ch]) and math.isfinite(q) else None,
+                velocity_rms_mm_s=r[7] if velocity else None,
+                velocity_peak_mm_s=r[8] if velocity else None,
+                displacement_pp_um=r[9] if velocity else None,
+                shaft_hz=f, shaft_estimated=est,
+                orders_mm_s={key: v for key, v, good in zip(keys, amps, ok, strict=True) if good},
+                envelope_band_hz=band, envelope=env if run else {}, shaft_quality=q,
             ))
         return out
 
