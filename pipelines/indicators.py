@@ -97,7 +97,7 @@ def centred_moments(x: npt.NDArray[np.floating[Any]], mean: FloatArray,
     The centred samples are formed block by block in single precision on purpose: each block of rows stays in
     the processor's cache through its passes (max, min, x², and the row dot products giving Σx², Σx³, Σx⁴), and
     the dot products' blocked accumulation keeps the sums' relative error near 1e-7 (2e-7 at 131,072 samples).
-    The mean itself is removed in float64, so a 1 g gravity offset costs no precision.
+    Without ``shift`` the mean is removed in float64, so a 1 g gravity offset costs no precision.
     """
     c, n = x.shape
     rows = max(1, min(c, BLOCK_SAMPLES // n))
