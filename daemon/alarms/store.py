@@ -4,7 +4,8 @@ waveform captures; nothing else touches them.
 ``submit(effects)`` queues a decision's :class:`~edgevib.daemon.alarms.core.Effects` and returns a future of the
 events as committed: the worker saves the captures the events ask for, gives each event its id and CloudEvents
 body, and commits the events (outbox), their history rows and the state rows of every decision waiting in the queue
-in one transaction (``synchronous=FULL``: durable on return).  The caller publishes events only once their future
+in one transaction (``synchronous=FULL``: durable on return); of a key written by several of them, only the last
+state is encoded and written.  The caller publishes events only once their future
 is done, so an event is never seen before it is on disk.  ``call(fn, …)`` runs any other database work (the feeds'
 pending / delivered calls, history queries, pruning) on the same worker, in queue order.
 
@@ -33,11 +34,14 @@ from edgevib.daemon.alarms.config import AlarmSettings
 from edgevib.daemon.alarms.core import Effects, EventOut
 from edgevib.daemon.alarms.feed import cloud_event, event_body
 from edgevib.daemon.alarms.outbox import Database, Outbox, OutboxEvent, StateError, new_event_id
-from edgevib.daemon.alarms.state import StateStore
+from edgevib.daemon.alarms.state import Baseline, SensorState, SourceState, StateStore
+from edgevib.pipelines.alarm import AlarmState
 
 __all__ = ["AlarmStore", "Restored"]
 
 T = TypeVar("T")
+K = TypeVar("K")
+V = TypeVar("V")
 BATCH_MAX = 64  # decisions committed in one transaction at most
 
 
@@ -53,6 +57,41 @@ class Restored:
 
 class _Stop:
     pass
+
+
+_States = tuple[list[str], dict[tuple[str, str], AlarmState], dict[str, SensorState],
+                dict[tuple[str, str], Baseline], dict[str, SourceState]]
+
+
+def _last_states(effs: list[Effects]) -> _States:
+    """The state rows a group of decisions leaves, to be written in one transaction: the points whose baselines go
+    (deleted first), then each key's last state (alarms, sensors, baselines, sources) in the order of its last
+    write.  An earlier state of a key would be overwritten in the same transaction: it is neither encoded nor
+    written.  A baseline written before its point's baselines are forgotten goes with them."""
+    if len(effs) == 1:
+        e = effs[0]
+        return list(e.forget), e.alarms, e.sensors, e.baselines, e.sources
+    forget: list[str] = []
+    alarms: dict[tuple[str, str], AlarmState] = {}
+    sensors: dict[str, SensorState] = {}
+    baselines: dict[tuple[str, str], Baseline] = {}
+    sources: dict[str, SourceState] = {}
+    for eff in effs:
+        for point in eff.forget:
+            forget.append(point)
+            for key in [k for k in baselines if k[0] == point]:
+                del baselines[key]
+        _merge(alarms, eff.alarms)
+        _merge(sensors, eff.sensors)
+        _merge(baselines, eff.baselines)
+        _merge(sources, eff.sources)
+    return forget, alarms, sensors, baselines, sources
+
+
+def _merge(into: dict[K, V], new: dict[K, V]) -> None:
+    for key, state in new.items():
+        into.pop(key, None)  # moved to the end: the rows keep the order of their last write
+        into[key] = state
 
 
 class AlarmStore:
@@ -158,12 +197,12 @@ class AlarmStore:
             done = [self._materialize(eff) for eff, _ in group]
             if self.db is not None and self.state is not None and self.outbox is not None and \
                     any(eff.writes for eff, _ in group):
+                forget, alarms, sensors, baselines, sources = _last_states([eff for eff, _ in group])
                 with self.db.transaction() as c:
-                    for (eff, _), (events, history) in zip(group, done, strict=True):
-                        for point in eff.forget:
-                            self.state.forget_baselines(c, point)
-                        self.state.save(c, alarms=eff.alarms, sensors=eff.sensors, baselines=eff.baselines,
-                                        sources=eff.sources)
+                    for point in forget:
+                        self.state.forget_baselines(c, point)
+                    self.state.save(c, alarms=alarms, sensors=sensors, baselines=baselines, sources=sources)
+                    for events, history in done:
                         self.state.add_history(c, history)
                         self.outbox.add(events, conn=c)
         except BaseException as exc:  # every decision of the batch hears of it

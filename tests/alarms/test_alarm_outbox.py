@@ -164,6 +164,47 @@ def test_a_value_of_another_type_is_written_as_the_json_encoder_writes_it(name: 
         assert _fast_body(encode_alarm, s) is TypeError  # as json.dumps refuses them
 
 
+def test_a_group_of_decisions_leaves_the_rows_each_committed_alone_leaves(tmp_path: Path) -> None:
+    # Decisions committed together write each key's last state only: the tables (bodies and row order) must be
+    # those of the same decisions committed one by one, also where a point's baselines are forgotten between
+    # two writes of them (reference: the one-by-one commits, each a plain upsert or delete)
+    from concurrent.futures import Future
+
+    from edgevib.daemon.alarms.core import Effects
+    from edgevib.daemon.alarms.state import Baseline, SourceState
+    from edgevib.daemon.alarms.store import AlarmStore
+
+    def eff(k: int, *, forget: set[str] | None = None, baseline: bool = False, pts: list[str] | None = None,
+            ) -> Effects:
+        pts = pts or (["P-1", "P-2"] if k % 2 else ["P-2", "P-3"])
+        return Effects(alarms={(p, ind): AlarmState(acked=bool(k % 2), latched=k, last_value=0.5 * k)
+                               for p in pts for ind in ("kurtosis", "velocity_rms_mm_s")},
+                       sensors={p: SensorState(last_frame_s=float(k), healthy_run=k) for p in pts},
+                       baselines={(p, "velocity_rms_mm_s"): Baseline(n=k, mean=0.1 * k) for p in pts} if baseline
+                       else {},
+                       sources={"plant": SourceState(down=k == 3, since_s=float(k))} if k in (2, 3) else {},
+                       forget=forget or set())
+
+    effs = [eff(1, baseline=True), eff(2, baseline=True), eff(3, forget={"P-2"}), eff(4, baseline=True),
+            eff(5), eff(6, forget={"P-3"}), eff(7, pts=["P-1"])]
+    tables = ("alarm_state", "sensor_state", "baselines", "source_state")
+    dumps = []
+    for name, groups in (("alone", [[e] for e in effs]), ("together", [effs])):
+        store = AlarmStore(None, ["mqtt"])  # type: ignore[arg-type]  # its worker's methods, on this thread
+        store.db = Database(tmp_path / f"{name}.sqlite")
+        store.state, store.outbox = StateStore(store.db), Outbox(store.db, ["mqtt"])
+        for g in groups:
+            futures: list[Future[Any]] = [Future() for _ in g]
+            store._commit(list(zip(g, futures, strict=True)))
+            assert all(f.result() == [] for f in futures)
+        dumps.append({t: list(store.db.conn.execute(f"SELECT * FROM {t}"))
+                      for t in tables})
+    alone, together = ({t: [r[:-1] for r in rows] for t, rows in d.items()} for d in dumps)
+    assert together == alone  # keys and body text, in the same row order; updated_ns (the last column) left out
+    # P-1's from the first, P-2's from the fourth (written after its forget); P-3's forgotten by the last
+    assert [r[:2] for r in alone["baselines"]] == [("P-1", "velocity_rms_mm_s"), ("P-2", "velocity_rms_mm_s")]
+
+
 def test_every_state_table_loads_back_and_leaves_out_an_unreadable_row(tmp_path: Path) -> None:
     # alarm, sensor, baseline and source rows come back as saved; a row that is not JSON (a torn or hand-edited
     # file) is left out, so that limit, point or source starts afresh instead of stopping the start
