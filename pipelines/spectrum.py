@@ -429,15 +429,24 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
         # fault's FTF (about 0.4 ×) or oil whirl (0.42–0.48 ×) — rather than its shaft (common practice)
         sub = valid & (f_w[:, None] / f_est >= SUBSYNCHRONOUS[0]) & (f_w[:, None] / f_est <= SUBSYNCHRONOUS[1])
     quality = np.where(sub.any(axis=-1), 0.0, quality)
+    # the line searches after the winner, in one: its readings 1×, 2×, 3×, 1/2× and 1/3× (see below), and with
+    # cage_ratio the lines of the two cage checks — at 1/3 and 2/3 of the winner, and the largest line of each
+    # window where a shaft would run whose cage series holds the winner (one window search and one median over
+    # (channels, 5 + 2 + parents) windows)
+    parent_line = cage_ratio is not None and parents.size > 0
+    f_q = f_w[:, None] * (_READINGS if cage_ratio is None else _READINGS_THIRDS)
+    if parent_line:
+        p_s = _cage_parent_lines(acc, f_w, parents, df_hz)
+        f_q = np.concatenate([f_q, p_s * df_hz], axis=1)
+    p_q, f_q_ref, a_q, floor_q = _refined_lines(acc, f_q, df_hz)
     # harmonically related readings: a clear line at 2 or 3 × the winner at least half as strong as the winner's
     # 1× line — the winner may be a sub-harmonic (looseness, rub) of that speed — or at 1/2 or 1/3 of it at least
     # a quarter as strong — the winner may be the 2× or 3× of a misaligned machine at that speed.  Inside the
-    # speed range the spectrum alone cannot tell them apart (a narrower range can).
-    # (the four readings at once: one window search and one median over (channels, 4) windows)
-    # (the four readings at once, with the winner's 1× line and its harmonics 2× and 3× that refine it below: one
-    # window search and one median over (channels, 5) windows)
-    f_r = f_w[:, None] * _READINGS  # (channels, 5): 1×, 2×, 3×, 1/2×, 1/3× the winner
-    p_r, f_ref, a_ref, floor_ref = _refined_lines(acc, f_r, df_hz)
+    # speed range the spectrum alone cannot tell them apart (a narrower range can).  The winner's 1× line and its
+    # harmonics 2× and 3× refine it below.
+    n_r = _READINGS.size
+    f_r = f_q[:, :n_r]  # (channels, 5): 1×, 2×, 3×, 1/2×, 1/3× the winner
+    p_r, f_ref, a_ref, floor_ref = p_q[:, :n_r], f_q_ref[:, :n_r], a_q[:, :n_r], floor_q[:, :n_r]
     f_m = f_r[:, 1:]
     clear_m = (a_ref[:, 1:] >= _READING_PROMINENCE * floor_ref[:, 1:]) & \
         (_gather(amp3, p_r[:, 1:]) >= _READING_SHARE * a_w[:, None])
@@ -450,18 +459,21 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
         shaft_of = f_w / (3.0 * cage_ratio)
         maybe = ((f_w / 3.0 < speed_range_hz[0]) & (shaft_of >= speed_range_hz[0] * (1.0 - SPEED_CAGE_TOLERANCE))
                  & (shaft_of <= speed_range_hz[1] * (1.0 + SPEED_CAGE_TOLERANCE)))
-        if maybe.any():  # (the line search only where the winner's place allows it: most calls skip it)
-            p_t, f_t, a_t, floor_t = _refined_lines(acc, f_w[:, None] * _THIRDS, df_hz)
+        if maybe.any():  # (the verdict only where the winner's place allows it: most calls skip it)
+            t = slice(n_r, n_r + _THIRDS.size)
+            p_t, f_t, a_t, floor_t = p_q[:, t], f_q_ref[:, t], a_q[:, t], floor_q[:, t]
             own = (np.abs(f_t[..., None] / (f_w[:, None, None] * cage_ratio * _CAGE_ORDERS) - 1.0)
                    <= SPEED_CAGE_TOLERANCE).any(axis=-1)  # (not the winner's own cage lines, nor their skirts)
             peak_t = a_t >= np.maximum(_gather(acc, p_t - 1), _gather(acc, p_t + 1))
             thirds = (a_t > 0) & peak_t & (a_t >= SPEED_MIN_PROMINENCE * floor_t) & ~own
             quality = np.where(thirds.all(axis=-1) & maybe, 0.0, quality)
-    if cage_ratio is not None and parents.size:
+    if parent_line and cage_ratio is not None:
         # a clear line where a shaft would run whose cage series holds the winner, that is no valid candidate (its
         # 1× line weaker than a strong cage series): the winner may be that shaft's cage line
         half_clear = a_ref[:, 3] >= SPEED_RELATED_PROMINENCE * floor_ref[:, 3]  # (a looseness series' ½× line)
-        parent = _cage_parent_found(acc, f_w, a_ref[:, 0], cage_ratio, parents, speed_range_hz, df_hz, half_clear)
+        s = slice(n_r + _THIRDS.size, None)
+        parent = _cage_parent_found(acc, f_w, a_ref[:, 0], cage_ratio, parents, speed_range_hz, df_hz, half_clear,
+                                    p_s, f_q_ref[:, s], a_q[:, s], floor_q[:, s])
         quality = np.where(parent, 0.0, quality)
     any_valid = valid[rows, first]
     quality = np.where(any_valid, quality, np.nan)
@@ -501,29 +513,38 @@ def _cage_parents(cage_ratio: float) -> FloatArray:
     return out
 
 
+def _cage_parent_lines(acc: FloatArray, f_w: FloatArray, parents: FloatArray, df_hz: float) -> IntArray:
+    """The largest line where a shaft would run whose k-th cage line is the winner ``f_w`` (shape (channels,)):
+    at ``f_w / parents`` (:func:`_cage_parents`) or above it by the cage's slip, from ``SPEED_CAGE_LEAD`` below to
+    ``SPEED_CAGE_TOLERANCE`` above (at least one line each side); shape (channels, parents).  Its refined reading
+    (:func:`_refined_lines` at these lines) is judged by :func:`_cage_parent_found`."""
+    k = acc.shape[1]
+    f_p = np.where(np.isfinite(f_w), f_w, 0.0)[:, None] / parents  # (channels, parents)
+    b = f_p / df_hz
+    lo = np.minimum(np.floor(b * (1.0 - SPEED_CAGE_LEAD)), np.rint(b) - 1).astype(np.intp)
+    hi = np.maximum(np.ceil(b * (1.0 + SPEED_CAGE_TOLERANCE)), np.rint(b) + 1).astype(np.intp)
+    out: IntArray = np.minimum(np.maximum(window_argmax(acc, np.maximum(lo, 2), np.minimum(hi, k - 3)), 1), k - 2)
+    return out
+
+
 def _cage_parent_found(acc: FloatArray, f_w: FloatArray, a_w: FloatArray, cage_ratio: float, parents: FloatArray,
-                       speed_range_hz: tuple[float, float], df_hz: float,
-                       half_clear: npt.NDArray[np.bool_]) -> npt.NDArray[np.bool_]:
+                       speed_range_hz: tuple[float, float], df_hz: float, half_clear: npt.NDArray[np.bool_],
+                       p: IntArray, f_pr: FloatArray, a_p: FloatArray, floor_p: FloatArray) -> npt.NDArray[np.bool_]:
     """Whether a clear line stands where a shaft would run whose k-th cage line is the winner ``f_w`` (shape
     (channels,), its acceleration line ``a_w``).
 
     The shaft lies at ``f_w / parents`` (:func:`_cage_parents`) or above it by the cage's slip (the cage lags its
     kinematic speed by 1–2 %, Randall & Antoni 2011): the largest line from 0.5 % below to ``SPEED_CAGE_TOLERANCE``
-    above (at least one line each side) counts when it is a local maximum ``SPEED_MIN_PROMINENCE`` over its floor,
-    reaches ``SPEED_CAGE_SHAFT_SHARE`` of the winner's velocity, lies in the speed range (± the tolerance: a shaft
-    at its edge), and is neither one of the winner's own cage lines (j × FTF, j = 1 … ``CAGE_HARMONICS``), nor the
-    winner's line, nor — where the winner's ½× line is clear (``half_clear``: a looseness series) — at a half order
-    of the winner.  Shape (channels,).
+    above (at least one line each side; ``p`` from :func:`_cage_parent_lines`, and ``f_pr``, ``a_p``, ``floor_p``
+    its refined frequency, amplitude and floor from :func:`_refined_lines`, all shape (channels, parents)) counts
+    when it is a local maximum ``SPEED_MIN_PROMINENCE`` over its floor, reaches ``SPEED_CAGE_SHAFT_SHARE`` of the
+    winner's velocity, lies in the speed range (± the tolerance: a shaft at its edge), and is neither one of the
+    winner's own cage lines (j × FTF, j = 1 … ``CAGE_HARMONICS``), nor the winner's line, nor — where the winner's
+    ½× line is clear (``half_clear``: a looseness series) — at a half order of the winner.  Shape (channels,).
     """
     tol = SPEED_CAGE_TOLERANCE
-    k = acc.shape[1]
     f_w0 = np.where(np.isfinite(f_w), f_w, 0.0)[:, None]
     f_p = f_w0 / parents  # (channels, parents)
-    b = f_p / df_hz
-    lo = np.minimum(np.floor(b * (1.0 - SPEED_CAGE_LEAD)), np.rint(b) - 1).astype(np.intp)
-    hi = np.maximum(np.ceil(b * (1.0 + tol)), np.rint(b) + 1).astype(np.intp)
-    p = np.minimum(np.maximum(window_argmax(acc, np.maximum(lo, 2), np.minimum(hi, k - 3)), 1), k - 2)
-    _, f_pr, a_p, floor_p = _refined_lines(acc, p * df_hz, df_hz)
     peak = a_p >= np.maximum(_gather(acc, p - 1), _gather(acc, p + 1))
     near = (f_pr >= f_p * (1.0 - SPEED_CAGE_LEAD) - df_hz) & (f_pr <= f_p * (1.0 + tol) + df_hz)
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -540,8 +561,9 @@ def _cage_parent_found(acc: FloatArray, f_w: FloatArray, a_w: FloatArray, cage_r
 
 _CAGE_ORDERS = np.arange(1, CAGE_HARMONICS + 1, dtype=np.float64)
 _THIRDS = np.array([1.0 / 3.0, 2.0 / 3.0])
-_CAGE_ORDERS.flags.writeable = False
-_THIRDS.flags.writeable = False
+_READINGS_THIRDS = np.concatenate([_READINGS, _THIRDS])  # the readings, then the cage check's thirds
+for _a in (_CAGE_ORDERS, _THIRDS, _READINGS_THIRDS):
+    _a.flags.writeable = False
 
 
 @lru_cache(maxsize=64)
