@@ -252,25 +252,6 @@ def window_argmax(spec: FloatArray, lo: IntArray, hi: IntArray) -> IntArray:
     return out
 
 
-def masked_median(spec: FloatArray, lo: IntArray, hi: IntArray, ex_lo: IntArray, ex_hi: IntArray) -> FloatArray:
-    """Median of ``spec`` over ``lo..hi`` without ``ex_lo..ex_hi`` (all inclusive, per row; shapes as
-    :func:`window_argmax`).  NaN where nothing is left."""
-    idx, valid = _windows(spec.shape[1], lo, hi)
-    valid &= (idx < ex_lo[..., None]) | (idx > ex_hi[..., None])
-    vals = np.where(valid, _gather(spec, idx), np.inf)
-    vals.sort(axis=-1)
-    count = valid.sum(axis=-1)
-    # the two middle values (one when the count is odd); with nothing left they read an inf, and the result is NaN
-    both = (count[..., None] - _MIDDLE) // 2
-    if count.ndim == 2:  # (channels, L), as documented: plain indexing, cheaper than take_along_axis
-        pair = vals[np.arange(count.shape[0])[:, None, None], np.arange(count.shape[1])[None, :, None], both]
-    else:
-        pair = np.take_along_axis(vals, both, axis=-1)
-    med = 0.5 * (pair[..., 0] + pair[..., 1])
-    out: FloatArray = np.where(count > 0, med, np.nan)
-    return out
-
-
 def power3(power: FloatArray, idx: IntArray) -> FloatArray:
     """Sum of ``power`` over lines ``idx−1 .. idx+1`` (per row; ``power`` shape (channels, lines))."""
     k = power.shape[1]
@@ -363,7 +344,7 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     inner = amp3[:, 1:-1]  # the largest of each line and its two neighbours, formed in place
     np.maximum(amp[:, :-2], inner, out=inner)
     np.maximum(inner, amp[:, 2:], out=inner)
-    cand, lines = _speed_candidates(speed_range_hz[0], speed_range_hz[1], df_hz, k, harmonics)
+    cand, lines, inside = _speed_candidates(speed_range_hz[0], speed_range_hz[1], df_hz, k, harmonics)
     g = _gather(amp3, lines[None])  # (channels, 2 × harmonics, candidates): lines at h and h − ½ × candidates
     score = g[:, 0].copy()
     score -= g[:, 1]
@@ -378,25 +359,14 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     cand_score = _gather(np.where(local, score, -np.inf), order)
     b = np.rint(cand[order]).astype(np.intp)
     acc = np.sqrt(acc_pow)
-    peak = window_argmax(acc, b - 1, b + 1)
-    peak = np.minimum(np.maximum(peak, 1), k - 2)
-    three = _gather(acc, peak[..., None] + _NEIGHBOURS)
-    left, mid, right = three[..., 0], three[..., 1], three[..., 2]
-    side = np.where(right >= left, 1.0, -1.0)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        alpha = np.maximum(left, right) / mid
-        delta = side * (2.0 * alpha - 1.0) / (alpha + 1.0)
-    delta = np.where(np.isfinite(delta), np.minimum(np.maximum(delta, -0.5), 0.5), 0.0)
-    f_est = (peak + delta) * df_hz
-    span = np.maximum(np.rint(0.25 * peak).astype(np.intp), 8)
-    floor = masked_median(acc, peak - span, peak + span, peak - 2, peak + 2)
+    _, f_peak, f_est, mid, _, floor = _refined_lines(acc, b, df_hz, inside=inside)
     valid = (mid > 0) & (mid >= SPEED_MIN_PROMINENCE * floor) & (cand_score > 0)
     # ... and a 1× line is among the strongest velocity lines of the speed range (common practice: 1× dominates
     # the velocity spectrum of a running machine), which rejects patterns of other lines that happen to fit
     lo_line = max(1, math.floor(speed_range_hz[0] / df_hz))
     hi_line = min(k, math.ceil(speed_range_hz[1] / df_hz) + 1)
     strongest = amp[:, lo_line:hi_line].max(axis=-1)
-    line_1x = _gather(amp3, peak)
+    line_1x = amp3.ravel().take(f_peak)  # (amp3 has the shape of acc)
     valid &= line_1x >= SPEED_MIN_SHARE * strongest[:, None]
     valid &= (f_est >= speed_range_hz[0] * 0.999) & (f_est <= speed_range_hz[1] * 1.001)
     rows = np.arange(c)
@@ -438,7 +408,8 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     if parent_line:
         p_s = _cage_parent_lines(acc, f_w, parents, df_hz)
         f_q = np.concatenate([f_q, p_s * df_hz], axis=1)
-    p_q, f_q_ref, a_q, floor_q = _refined_lines(acc, f_q, df_hz)
+    k_q = np.minimum(np.maximum(np.rint(f_q / df_hz).astype(np.intp), 2), k - 3)
+    _, fp_q, f_q_ref, a_q, beside_q, floor_q = _refined_lines(acc, k_q, df_hz, inside=k >= 5)
     # harmonically related readings: a clear line at 2 or 3 × the winner at least half as strong as the winner's
     # 1× line — the winner may be a sub-harmonic (looseness, rub) of that speed — or at 1/2 or 1/3 of it at least
     # a quarter as strong — the winner may be the 2× or 3× of a misaligned machine at that speed.  Inside the
@@ -446,10 +417,10 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     # harmonics 2× and 3× refine it below.
     n_r = _READINGS.size
     f_r = f_q[:, :n_r]  # (channels, 5): 1×, 2×, 3×, 1/2×, 1/3× the winner
-    p_r, f_ref, a_ref, floor_ref = p_q[:, :n_r], f_q_ref[:, :n_r], a_q[:, :n_r], floor_q[:, :n_r]
+    f_ref, a_ref, floor_ref = f_q_ref[:, :n_r], a_q[:, :n_r], floor_q[:, :n_r]
     f_m = f_r[:, 1:]
     clear_m = (a_ref[:, 1:] >= _READING_PROMINENCE * floor_ref[:, 1:]) & \
-        (_gather(amp3, p_r[:, 1:]) >= _READING_SHARE * a_w[:, None])
+        (amp3.ravel().take(fp_q[:, 1:n_r]) >= _READING_SHARE * a_w[:, None])
     in_range = (f_m >= speed_range_hz[0]) & (f_m <= speed_range_hz[1])
     quality = np.where((clear_m & in_range).any(axis=-1), 0.0, quality)
     if cage_ratio is not None:
@@ -461,10 +432,10 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
                  & (shaft_of <= speed_range_hz[1] * (1.0 + SPEED_CAGE_TOLERANCE)))
         if maybe.any():  # (the verdict only where the winner's place allows it: most calls skip it)
             t = slice(n_r, n_r + _THIRDS.size)
-            p_t, f_t, a_t, floor_t = p_q[:, t], f_q_ref[:, t], a_q[:, t], floor_q[:, t]
+            f_t, a_t, floor_t = f_q_ref[:, t], a_q[:, t], floor_q[:, t]
             own = (np.abs(f_t[..., None] / (f_w[:, None, None] * cage_ratio * _CAGE_ORDERS) - 1.0)
                    <= SPEED_CAGE_TOLERANCE).any(axis=-1)  # (not the winner's own cage lines, nor their skirts)
-            peak_t = a_t >= np.maximum(_gather(acc, p_t - 1), _gather(acc, p_t + 1))
+            peak_t = a_t >= beside_q[:, t]
             thirds = (a_t > 0) & peak_t & (a_t >= SPEED_MIN_PROMINENCE * floor_t) & ~own
             quality = np.where(thirds.all(axis=-1) & maybe, 0.0, quality)
     if parent_line and cage_ratio is not None:
@@ -568,36 +539,89 @@ for _a in (_CAGE_ORDERS, _THIRDS, _READINGS_THIRDS):
 
 @lru_cache(maxsize=64)
 def _speed_candidates(lo_hz: float, hi_hz: float, df_hz: float, k: int,
-                      harmonics: int) -> tuple[FloatArray, IntArray]:
-    """The candidate speeds of :func:`estimate_speed_hz` in lines (steps of a third of a line) and, per harmonic
+                      harmonics: int) -> tuple[FloatArray, IntArray, bool]:
+    """The candidate speeds of :func:`estimate_speed_hz` in lines (steps of a third of a line); per harmonic
     h = 1 … ``harmonics``, the lines of h × each candidate and of (h − ½) × it, shape (2 × harmonics, candidates)
-    in that order (a plan's constants: kept)."""
+    in that order; and whether every candidate's nearest line lies in 2 … k − 3 (its ± 1 line search window inside
+    the ``k`` lines).  A plan's constants: kept."""
     cand = np.arange(lo_hz / df_hz, hi_hz / df_hz + 1e-9, 1.0 / 3.0)
     lines = np.stack([np.minimum(np.rint(m * cand).astype(np.intp), k - 1)
                       for h in range(1, harmonics + 1) for m in (h, h - 0.5)])
     for a in (cand, lines):
         a.flags.writeable = False
-    return cand, lines
+    nearest = np.rint(cand)
+    inside = bool(cand.size) and float(nearest.min()) >= 2 and float(nearest.max()) <= k - 3
+    return cand, lines, inside
 
 
-def _refined_lines(acc: FloatArray, f_hz: FloatArray,
-                   df_hz: float) -> tuple[IntArray, FloatArray, FloatArray, FloatArray]:
-    """The largest line within ±1 line of each ``f_hz`` (shape (channels, L), finite): its index, its
-    Hann-interpolated frequency, its amplitude and the median amplitude around it (± 25 %, at least ± 8 lines, the
-    line's ± 2 lines left out); each of shape (channels, L)."""
-    k = acc.shape[1]
-    b = np.minimum(np.maximum(np.rint(f_hz / df_hz).astype(np.intp), 2), k - 3)
-    p = np.minimum(np.maximum(window_argmax(acc, b - 1, b + 1), 1), k - 2)
-    three = _gather(acc, p[..., None] + _NEIGHBOURS)
+def _refined_lines(acc: FloatArray, b: IntArray, df_hz: float, *, inside: bool
+                   ) -> tuple[IntArray, IntArray, FloatArray, FloatArray, FloatArray, FloatArray]:
+    """The largest line within ±1 line of each line ``b`` (shape (channels, L); ``inside``: every b lies in
+    2 … k − 3, else the windows are clipped to the lines there are), refined.
+
+    Returns, each of shape (channels, L): its index p (kept to 1 … k − 2), p's index in the flattened ``acc``, its
+    Hann-interpolated frequency, its amplitude, the larger of its two neighbours, and the median amplitude around it
+    (± 25 %, at least ± 8 lines, the line's ± 2 lines left out; :func:`_floor_around`).
+    """
+    c, k = acc.shape
+    flat = acc.ravel()
+    if inside:  # (as usual: one gather of each window's three lines and the first largest, as window_argmax)
+        three = flat.take((b if c == 1 else b + _row_starts(c, k))[..., None] + _NEIGHBOURS)
+        p = b + (three.argmax(axis=-1) - 1)
+    else:
+        p = np.minimum(np.maximum(window_argmax(acc, b - 1, b + 1), 1), k - 2)
+    fp = p if c == 1 else p + _row_starts(c, k)
+    three = flat.take(fp[..., None] + _NEIGHBOURS)
     left, mid, right = three[..., 0], three[..., 1], three[..., 2]
     side = np.where(right >= left, 1.0, -1.0)
+    beside = np.maximum(left, right)
     with np.errstate(divide="ignore", invalid="ignore"):
-        alpha = np.maximum(left, right) / mid
+        alpha = beside / mid
         delta = side * (2.0 * alpha - 1.0) / (alpha + 1.0)
     delta = np.where(np.isfinite(delta), np.minimum(np.maximum(delta, -0.5), 0.5), 0.0)
+    floor = _floor_around(flat, k, p, fp)
+    return p, fp, (p + delta) * df_hz, mid, beside, floor
+
+
+@lru_cache(maxsize=16)
+def _row_starts(c: int, k: int) -> IntArray:
+    """Index of each row's first line in a flattened (``c``, ``k``) array, shape (c, 1); read-only, kept."""
+    out = np.arange(0, c * k, k).reshape(c, 1)
+    out.flags.writeable = False
+    return out
+
+
+@lru_cache(maxsize=64)
+def _ring(span: int) -> tuple[IntArray, IntArray]:
+    """Offsets ``−span … −3, 3 … span`` and their magnitudes: a floor window without its line's ± 2 lines
+    (read-only, kept)."""
+    off = np.concatenate([np.arange(-span, -2), np.arange(3, span + 1)])
+    dist = np.abs(off)
+    for a in (off, dist):
+        a.flags.writeable = False
+    return off, dist
+
+
+def _floor_around(flat: FloatArray, k: int, p: IntArray, fp: IntArray) -> FloatArray:
+    """Median amplitude within ± 25 % (at least ± 8 lines) of each line ``p`` (shape (channels, L), 1 ≤ p ≤ k − 2)
+    without its ± 2 lines, over the lines there are; NaN where none is left.  ``flat`` is the flattened (channels,
+    ``k``) spectrum and ``fp`` the lines' indices in it."""
     span = np.maximum(np.rint(0.25 * p).astype(np.intp), 8)
-    floor = masked_median(acc, p - span, p + span, p - 2, p + 2)
-    return p, (p + delta) * df_hz, mid, floor
+    off, dist = _ring(int(span.max()))
+    valid = dist <= span[..., None]
+    if int(p.min()) < off[-1] or int(p.max()) > k - 1 - off[-1]:  # (a window reaches past an end of the lines)
+        idx = p[..., None] + off
+        valid &= (idx >= 0) & (idx < k)
+    vals = np.where(valid, flat.take(fp[..., None] + off, mode="clip"), np.inf)
+    vals.sort(axis=-1)
+    count = valid.sum(axis=-1)
+    # the two middle values (one when the count is odd), by their index in the flattened sorted windows; with
+    # nothing left they read some other value, and the result is NaN
+    both = (count[..., None] - _MIDDLE) // 2 + np.arange(0, vals.size, off.size).reshape((*count.shape, 1))
+    pair = vals.ravel().take(both, mode="clip")
+    med = 0.5 * (pair[..., 0] + pair[..., 1])
+    out: FloatArray = np.where(count > 0, med, np.nan)
+    return out
 
 
 def _harmonic_refinement(f_hz: FloatArray, f_all: FloatArray, a_all: FloatArray, floor_all: FloatArray,
