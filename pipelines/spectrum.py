@@ -637,24 +637,22 @@ def _harmonic_refinement(f_hz: FloatArray, f_all: FloatArray, a_all: FloatArray,
     within the tolerance.
     """
     out = np.where(np.isfinite(f_hz), f_hz, 0.0)
-    hs = np.arange(1, f_all.shape[1] + 1, dtype=np.float64)
-    a1, floor1 = a_all[:, 0], floor_all[:, 0]
-    agree_all = np.ones(out.shape, dtype=bool)
-    checked = np.zeros(out.shape, dtype=bool)
+    # 2, 3 … in the amplitudes' type, as the scalars they were: float32 amplitudes times h stay float32
+    hs = np.arange(2, f_all.shape[1] + 1, dtype=a_all.dtype)
+    f_h, a_h, floor_h = f_all[:, 1:], a_all[:, 1:], floor_all[:, 1:]  # (the harmonics at once)
+    o = out[:, None]
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # a constant record: no line, no floor
         # inverse-variance weights: the interpolation error of harmonic h, read as a speed, is ∝ 1 / (h × its SNR)
-        weight = (a1 / np.maximum(floor1, 1e-300)) ** 2
+        weight = (a_all[:, 0] / np.maximum(floor_all[:, 0], 1e-300)) ** 2
         total = weight * out
-        for j in range(1, hs.size):
-            h = float(hs[j])
-            f_h, a_h, floor_h = f_all[:, j], a_all[:, j], floor_all[:, j]
-            clear = (a_h > 0) & (a_h >= SPEED_MIN_PROMINENCE * floor_h) & (np.abs(f_h - h * out) <= df_hz) \
-                & (out > 0)
-            agree_all &= ~clear | (np.abs(f_h / h - out) <= 0.5 * tolerance * out)
-            checked |= clear
-            w_h = np.where(clear, (h * a_h / np.maximum(floor_h, 1e-300)) ** 2, 0.0)
-            total = total + w_h * f_h / h
-            weight = weight + w_h
+        clear = (a_h > 0) & (a_h >= SPEED_MIN_PROMINENCE * floor_h) & (np.abs(f_h - hs * o) <= df_hz) & (o > 0)
+        agree_all = (~clear | (np.abs(f_h / hs - o) <= 0.5 * tolerance * o)).all(axis=-1)
+        checked = clear.any(axis=-1)
+        w_h = np.where(clear, (hs * a_h / np.maximum(floor_h, 1e-300)) ** 2, 0.0)
+        t_h = w_h * f_h / hs
+        for j in range(hs.size):  # (summed in this order, harmonic by harmonic)
+            total = total + t_h[:, j]
+            weight = weight + w_h[:, j]
         best = np.where(weight > 0, total / weight, out)
     fine = 0.5 * df_hz <= tolerance * out
     precise = np.where(checked, agree_all, fine)
