@@ -406,7 +406,7 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     parent_line = cage_ratio is not None and parents.size > 0
     f_q = f_w[:, None] * (_READINGS if cage_ratio is None else _READINGS_THIRDS)
     if parent_line:
-        p_s = _cage_parent_lines(acc, f_w, parents, df_hz)
+        p_s, f_s = _cage_parent_lines(acc, f_w, parents, df_hz)
         f_q = np.concatenate([f_q, p_s * df_hz], axis=1)
     k_q = np.minimum(np.maximum(np.rint(f_q / df_hz).astype(np.intp), 2), k - 3)
     _, fp_q, f_q_ref, a_q, beside_q, floor_q = _refined_lines(acc, k_q, df_hz, inside=k >= 5)
@@ -444,7 +444,7 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
         half_clear = a_ref[:, 3] >= SPEED_RELATED_PROMINENCE * floor_ref[:, 3]  # (a looseness series' ½× line)
         s = slice(n_r + _THIRDS.size, None)
         parent = _cage_parent_found(acc, f_w, a_ref[:, 0], cage_ratio, parents, speed_range_hz, df_hz, half_clear,
-                                    p_s, f_q_ref[:, s], a_q[:, s], floor_q[:, s])
+                                    p_s, f_s, f_q_ref[:, s], a_q[:, s], floor_q[:, s])
         quality = np.where(parent, 0.0, quality)
     any_valid = valid[rows, first]
     quality = np.where(any_valid, quality, np.nan)
@@ -484,30 +484,35 @@ def _cage_parents(cage_ratio: float) -> FloatArray:
     return out
 
 
-def _cage_parent_lines(acc: FloatArray, f_w: FloatArray, parents: FloatArray, df_hz: float) -> IntArray:
+def _cage_parent_lines(acc: FloatArray, f_w: FloatArray, parents: FloatArray,
+                       df_hz: float) -> tuple[IntArray, FloatArray]:
     """The largest line where a shaft would run whose k-th cage line is the winner ``f_w`` (shape (channels,)):
     at ``f_w / parents`` (:func:`_cage_parents`) or above it by the cage's slip, from ``SPEED_CAGE_LEAD`` below to
-    ``SPEED_CAGE_TOLERANCE`` above (at least one line each side); shape (channels, parents).  Its refined reading
-    (:func:`_refined_lines` at these lines) is judged by :func:`_cage_parent_found`."""
+    ``SPEED_CAGE_TOLERANCE`` above (at least one line each side); and that shaft's frequency ``f_w / parents``, both
+    of shape (channels, parents).  The line's refined reading (:func:`_refined_lines` at it) is judged by
+    :func:`_cage_parent_found`."""
     k = acc.shape[1]
-    f_p = np.where(np.isfinite(f_w), f_w, 0.0)[:, None] / parents  # (channels, parents)
+    f_p: FloatArray = np.where(np.isfinite(f_w), f_w, 0.0)[:, None] / parents  # (channels, parents)
     b = f_p / df_hz
-    lo = np.minimum(np.floor(b * (1.0 - SPEED_CAGE_LEAD)), np.rint(b) - 1).astype(np.intp)
-    hi = np.maximum(np.ceil(b * (1.0 + SPEED_CAGE_TOLERANCE)), np.rint(b) + 1).astype(np.intp)
+    nearest = np.rint(b)
+    lo = np.minimum(np.floor(b * (1.0 - SPEED_CAGE_LEAD)), nearest - 1).astype(np.intp)
+    hi = np.maximum(np.ceil(b * (1.0 + SPEED_CAGE_TOLERANCE)), nearest + 1).astype(np.intp)
     out: IntArray = np.minimum(np.maximum(window_argmax(acc, np.maximum(lo, 2), np.minimum(hi, k - 3)), 1), k - 2)
-    return out
+    return out, f_p
 
 
 def _cage_parent_found(acc: FloatArray, f_w: FloatArray, a_w: FloatArray, cage_ratio: float, parents: FloatArray,
                        speed_range_hz: tuple[float, float], df_hz: float, half_clear: npt.NDArray[np.bool_],
-                       p: IntArray, f_pr: FloatArray, a_p: FloatArray, floor_p: FloatArray) -> npt.NDArray[np.bool_]:
+                       p: IntArray, f_p: FloatArray, f_pr: FloatArray, a_p: FloatArray,
+                       floor_p: FloatArray) -> npt.NDArray[np.bool_]:
     """Whether a clear line stands where a shaft would run whose k-th cage line is the winner ``f_w`` (shape
     (channels,), its acceleration line ``a_w``).
 
     The shaft lies at ``f_w / parents`` (:func:`_cage_parents`) or above it by the cage's slip (the cage lags its
     kinematic speed by 1–2 %, Randall & Antoni 2011): the largest line from 0.5 % below to ``SPEED_CAGE_TOLERANCE``
-    above (at least one line each side; ``p`` from :func:`_cage_parent_lines`, and ``f_pr``, ``a_p``, ``floor_p``
-    its refined frequency, amplitude and floor from :func:`_refined_lines`, all shape (channels, parents)) counts
+    above (at least one line each side; ``p`` and the shaft ``f_p`` from :func:`_cage_parent_lines`, and ``f_pr``,
+    ``a_p``, ``floor_p`` the line's refined frequency, amplitude and floor from :func:`_refined_lines` at ``p``,
+    all shape (channels, parents)) counts
     when it is a local maximum ``SPEED_MIN_PROMINENCE`` over its floor, reaches ``SPEED_CAGE_SHAFT_SHARE`` of the
     winner's velocity, lies in the speed range (± the tolerance: a shaft at its edge), and is neither one of the
     winner's own cage lines (j × FTF, j = 1 … ``CAGE_HARMONICS``), nor the winner's line, nor — where the winner's
@@ -515,8 +520,6 @@ def _cage_parent_found(acc: FloatArray, f_w: FloatArray, a_w: FloatArray, cage_r
     """
     tol = SPEED_CAGE_TOLERANCE
     f_w0 = np.where(np.isfinite(f_w), f_w, 0.0)[:, None]
-    f_p = f_w0 / parents  # (channels, parents)
-    peak = a_p >= np.maximum(_gather(acc, p - 1), _gather(acc, p + 1))
     near = (f_pr >= f_p * (1.0 - SPEED_CAGE_LEAD) - df_hz) & (f_pr <= f_p * (1.0 + tol) + df_hz)
     with np.errstate(divide="ignore", invalid="ignore"):
         share = a_p / f_pr >= SPEED_CAGE_SHAFT_SHARE * (a_w / f_w0[:, 0])[:, None]  # velocity ∝ acceleration / f
@@ -524,8 +527,12 @@ def _cage_parent_found(acc: FloatArray, f_w: FloatArray, a_w: FloatArray, cage_r
         own |= np.abs(f_pr - f_w0) <= df_hz
         half = 2.0 * f_pr / f_w0
         own |= half_clear[:, None] & (np.abs(half / np.maximum(np.rint(half), 1.0) - 1.0) <= tol)
-    found = (a_p > 0) & near & peak & share & (a_p >= SPEED_MIN_PROMINENCE * floor_p) & ~own \
+    found = (a_p > 0) & near & share & (a_p >= SPEED_MIN_PROMINENCE * floor_p) & ~own \
         & (f_pr >= speed_range_hz[0] * (1.0 - tol)) & (f_pr <= speed_range_hz[1] * (1.0 + tol))
+    # a local maximum: where p ≤ k − 3 the refined line is the largest of p and its two neighbours (its search
+    # window), so it is one whenever it is a number (NaN fails a_p > 0); only at the last lines is it checked
+    if int(p.max()) >= acc.shape[1] - 2:
+        found &= a_p >= np.maximum(_gather(acc, p - 1), _gather(acc, p + 1))
     out: npt.NDArray[np.bool_] = np.asarray(found.any(axis=-1))
     return out
 
