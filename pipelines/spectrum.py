@@ -345,7 +345,7 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     np.maximum(amp[:, :-2], inner, out=inner)
     np.maximum(inner, amp[:, 2:], out=inner)
     cand, lines, inside = _speed_candidates(speed_range_hz[0], speed_range_hz[1], df_hz, k, harmonics)
-    g = _gather(amp3, lines[None])  # (channels, 2 × harmonics, candidates): lines at h and h − ½ × candidates
+    g = amp3.take(lines, axis=1)  # (channels, 2 × harmonics, candidates): lines at h and h − ½ × candidates
     score = g[:, 0].copy()
     score -= g[:, 1]
     for h in range(1, harmonics):  # (summed in this order, harmonic by harmonic)
