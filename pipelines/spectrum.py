@@ -210,7 +210,8 @@ def _gather(spec: FloatArray, idx: IntArray) -> FloatArray:
 
 _NEIGHBOURS = np.arange(-1, 2)
 _MIDDLE = np.array([1, 0])  # (count − 1) // 2 and count // 2: the middle of a sorted window
-for _a in (_NEIGHBOURS, _MIDDLE):
+_MIDDLE_WHOLE = np.array([-3, -2])  # span − 3 and span − 2: the middle of a whole floor window (2 × (span − 2))
+for _a in (_NEIGHBOURS, _MIDDLE, _MIDDLE_WHOLE):
     _a.flags.writeable = False
 
 
@@ -359,8 +360,8 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     cand_score = _gather(np.where(local, score, -np.inf), order)
     b = np.rint(cand[order]).astype(np.intp)
     acc = np.sqrt(acc_pow)
-    _, f_peak, f_est, mid, _, floor = _refined_lines(acc, b, df_hz, inside=inside)
-    valid = (mid > 0) & (mid >= SPEED_MIN_PROMINENCE * floor) & (cand_score > 0)
+    peak, f_peak, f_est, mid, _ = _refined_lines(acc, b, df_hz, inside=inside)
+    valid = (mid > 0) & (cand_score > 0)
     # ... and a 1× line is among the strongest velocity lines of the speed range (common practice: 1× dominates
     # the velocity spectrum of a running machine), which rejects patterns of other lines that happen to fit
     lo_line = max(1, math.floor(speed_range_hz[0] / df_hz))
@@ -369,6 +370,11 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     line_1x = amp3.ravel().take(f_peak)  # (amp3 has the shape of acc)
     valid &= line_1x >= SPEED_MIN_SHARE * strongest[:, None]
     valid &= (f_est >= speed_range_hz[0] * 0.999) & (f_est <= speed_range_hz[1] * 1.001)
+    # (the prominence over the floor last, and only where the rest holds: the floor costs most)
+    if valid.any():
+        rest = valid.copy()
+        floor = _floor_around(acc.ravel(), k, peak[rest], f_peak[rest])
+        valid[rest] = mid[rest] >= SPEED_MIN_PROMINENCE * floor
     rows = np.arange(c)
     first = valid.argmax(axis=-1)
     f_w = f_est[rows, first]
@@ -409,7 +415,8 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
         p_s, f_s = _cage_parent_lines(acc, f_w, parents, df_hz)
         f_q = np.concatenate([f_q, p_s * df_hz], axis=1)
     k_q = np.minimum(np.maximum(np.rint(f_q / df_hz).astype(np.intp), 2), k - 3)
-    _, fp_q, f_q_ref, a_q, beside_q, floor_q = _refined_lines(acc, k_q, df_hz, inside=k >= 5)
+    p_q, fp_q, f_q_ref, a_q, beside_q = _refined_lines(acc, k_q, df_hz, inside=k >= 5)
+    floor_q = _floor_around(acc.ravel(), k, p_q, fp_q)
     # harmonically related readings: a clear line at 2 or 3 × the winner at least half as strong as the winner's
     # 1× line — the winner may be a sub-harmonic (looseness, rub) of that speed — or at 1/2 or 1/3 of it at least
     # a quarter as strong — the winner may be the 2× or 3× of a misaligned machine at that speed.  Inside the
@@ -510,13 +517,15 @@ def _cage_parent_found(acc: FloatArray, f_w: FloatArray, a_w: FloatArray, cage_r
 
     The shaft lies at ``f_w / parents`` (:func:`_cage_parents`) or above it by the cage's slip (the cage lags its
     kinematic speed by 1–2 %, Randall & Antoni 2011): the largest line from 0.5 % below to ``SPEED_CAGE_TOLERANCE``
-    above (at least one line each side; ``p`` and the shaft ``f_p`` from :func:`_cage_parent_lines`, and ``f_pr``,
-    ``a_p``, ``floor_p`` the line's refined frequency, amplitude and floor from :func:`_refined_lines` at ``p``,
-    all shape (channels, parents)) counts
-    when it is a local maximum ``SPEED_MIN_PROMINENCE`` over its floor, reaches ``SPEED_CAGE_SHAFT_SHARE`` of the
-    winner's velocity, lies in the speed range (± the tolerance: a shaft at its edge), and is neither one of the
-    winner's own cage lines (j × FTF, j = 1 … ``CAGE_HARMONICS``), nor the winner's line, nor — where the winner's
-    ½× line is clear (``half_clear``: a looseness series) — at a half order of the winner.  Shape (channels,).
+    above (at least one line each side) counts when it is a local maximum ``SPEED_MIN_PROMINENCE`` over its floor,
+    reaches ``SPEED_CAGE_SHAFT_SHARE`` of the winner's velocity, lies in the speed range (± the tolerance: a shaft
+    at its edge), and is neither one of the winner's own cage lines (j × FTF, j = 1 … ``CAGE_HARMONICS``), nor the
+    winner's line, nor — where the winner's ½× line is clear (``half_clear``: a looseness series) — at a half order
+    of the winner.  Shape (channels,).
+
+    ``p`` (that line) and ``f_p`` (the shaft) come from :func:`_cage_parent_lines`; ``f_pr``, ``a_p``, ``floor_p``
+    are the line's refined frequency, amplitude and floor (:func:`_refined_lines` and :func:`_floor_around` at
+    ``p``); all of shape (channels, parents).
     """
     tol = SPEED_CAGE_TOLERANCE
     f_w0 = np.where(np.isfinite(f_w), f_w, 0.0)[:, None]
@@ -562,13 +571,13 @@ def _speed_candidates(lo_hz: float, hi_hz: float, df_hz: float, k: int,
 
 
 def _refined_lines(acc: FloatArray, b: IntArray, df_hz: float, *, inside: bool
-                   ) -> tuple[IntArray, IntArray, FloatArray, FloatArray, FloatArray, FloatArray]:
+                   ) -> tuple[IntArray, IntArray, FloatArray, FloatArray, FloatArray]:
     """The largest line within ±1 line of each line ``b`` (shape (channels, L); ``inside``: every b lies in
     2 … k − 3, else the windows are clipped to the lines there are), refined.
 
     Returns, each of shape (channels, L): its index p (kept to 1 … k − 2), p's index in the flattened ``acc``, its
-    Hann-interpolated frequency, its amplitude, the larger of its two neighbours, and the median amplitude around it
-    (± 25 %, at least ± 8 lines, the line's ± 2 lines left out; :func:`_floor_around`).
+    Hann-interpolated frequency, its amplitude and the larger of its two neighbours.  The median amplitude around it
+    is :func:`_floor_around`.
     """
     c, k = acc.shape
     flat = acc.ravel()
@@ -586,8 +595,7 @@ def _refined_lines(acc: FloatArray, b: IntArray, df_hz: float, *, inside: bool
         alpha = beside / mid
         delta = side * (2.0 * alpha - 1.0) / (alpha + 1.0)
     delta = np.where(np.isfinite(delta), np.minimum(np.maximum(delta, -0.5), 0.5), 0.0)
-    floor = _floor_around(flat, k, p, fp)
-    return p, fp, (p + delta) * df_hz, mid, beside, floor
+    return p, fp, (p + delta) * df_hz, mid, beside
 
 
 @lru_cache(maxsize=16)
@@ -610,24 +618,29 @@ def _ring(span: int) -> tuple[IntArray, IntArray]:
 
 
 def _floor_around(flat: FloatArray, k: int, p: IntArray, fp: IntArray) -> FloatArray:
-    """Median amplitude within ± 25 % (at least ± 8 lines) of each line ``p`` (shape (channels, L), 1 ≤ p ≤ k − 2)
-    without its ± 2 lines, over the lines there are; NaN where none is left.  ``flat`` is the flattened (channels,
-    ``k``) spectrum and ``fp`` the lines' indices in it."""
+    """Median amplitude within ± 25 % (at least ± 8 lines) of each line ``p`` (any shape, 1 ≤ p ≤ k − 2) without
+    its ± 2 lines, over the lines there are; NaN where none is left.  ``flat`` is the flattened (channels, ``k``)
+    spectrum and ``fp`` the lines' indices in it (shape of p)."""
     span = np.maximum(np.rint(0.25 * p).astype(np.intp), 8)
     off, dist = _ring(int(span.max()))
     valid = dist <= span[..., None]
-    if int(p.min()) < off[-1] or int(p.max()) > k - 1 - off[-1]:  # (a window reaches past an end of the lines)
+    edge = int((p - span).min()) < 0 or int((p + span).max()) > k - 1  # (a window reaches past an end)
+    if edge:
         idx = p[..., None] + off
         valid &= (idx >= 0) & (idx < k)
     vals = np.where(valid, flat.take(fp[..., None] + off, mode="clip"), np.inf)
     vals.sort(axis=-1)
+    # the two middle values (one when the count is odd), by their index in the flattened sorted windows
+    starts = np.arange(0, vals.size, off.size).reshape((*span.shape, 1))
+    if not edge:  # (2 × (span − 2) lines, an even count: the middle two at span − 3 and span − 2)
+        pair = vals.ravel().take(span[..., None] + (_MIDDLE_WHOLE + starts))
+        out: FloatArray = 0.5 * (pair[..., 0] + pair[..., 1])
+        return out
     count = valid.sum(axis=-1)
-    # the two middle values (one when the count is odd), by their index in the flattened sorted windows; with
-    # nothing left they read some other value, and the result is NaN
-    both = (count[..., None] - _MIDDLE) // 2 + np.arange(0, vals.size, off.size).reshape((*count.shape, 1))
-    pair = vals.ravel().take(both, mode="clip")
+    # (with nothing left they read some other value, and the result is NaN)
+    pair = vals.ravel().take((count[..., None] - _MIDDLE) // 2 + starts, mode="clip")
     med = 0.5 * (pair[..., 0] + pair[..., 1])
-    out: FloatArray = np.where(count > 0, med, np.nan)
+    out = np.where(count > 0, med, np.nan)
     return out
 
 
@@ -644,7 +657,7 @@ def _harmonic_refinement(f_hz: FloatArray, f_all: FloatArray, a_all: FloatArray,
     within the tolerance.
     """
     out = np.where(np.isfinite(f_hz), f_hz, 0.0)
-    # 2, 3 … in the amplitudes' type, as the scalars they were: float32 amplitudes times h stay float32
+    # 2, 3 … in the amplitudes' type (float32 amplitudes times h stay float32, as with a Python float)
     hs = np.arange(2, f_all.shape[1] + 1, dtype=a_all.dtype)
     f_h, a_h, floor_h = f_all[:, 1:], a_all[:, 1:], floor_all[:, 1:]  # (the harmonics at once)
     o = out[:, None]
