@@ -394,7 +394,7 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     s_w = cand_score[rows, first]
     a_w = line_1x[rows, first]
     # candidates related to the winner (and, with cage_ratio, to the winner's cage line and its harmonics)
-    f0 = f_w[:, None] if cage_ratio is None else np.stack([f_w, cage_ratio * f_w], axis=1)  # (channels, 1 or 2)
+    f0 = f_w[:, None] if cage_ratio is None else f_w[:, None] * _one_and(cage_ratio)  # (channels, 1 or 2)
     ratio = (f_est[:, None, :] / f0[:, :, None])[..., None]
     near = (np.abs(ratio - _RELATED) <= _RELATED_TOL) | (np.abs(1.0 / ratio - _RELATED) <= _RELATED_TOL)
     explained = near.any(axis=(1, 3))
@@ -404,7 +404,7 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
         # a winner at 0.35–0.49 × another valid candidate may be that machine's sub-synchronous line — a cage
         # fault's FTF (about 0.4 ×) or oil whirl (0.42–0.48 ×) — rather than its shaft (common practice)
         sub = valid & (f_w[:, None] / f_est >= SUBSYNCHRONOUS[0]) & (f_w[:, None] / f_est <= SUBSYNCHRONOUS[1])
-    quality = np.where(sub.any(axis=-1), 0.0, quality)
+    quality[sub.any(axis=-1)] = 0.0  # (in place: cheaper than np.where, here and below)
     # the line searches after the winner, in one: its readings 1×, 2×, 3×, 1/2× and 1/3× (see below), and with
     # cage_ratio the lines of the two cage checks — at 1/3 and 2/3 of the winner, and the largest line of each
     # window where a shaft would run whose cage series holds the winner (one window search and one median over
@@ -429,7 +429,7 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     clear_m = (a_ref[:, 1:] >= _READING_PROMINENCE * floor_ref[:, 1:]) & \
         (amp3.ravel().take(fp_q[:, 1:n_r]) >= _READING_SHARE * a_w[:, None])
     in_range = (f_m >= speed_range_hz[0]) & (f_m <= speed_range_hz[1])
-    quality = np.where((clear_m & in_range).any(axis=-1), 0.0, quality)
+    quality[(clear_m & in_range).any(axis=-1)] = 0.0
     if cage_ratio is not None:
         # ... and, below the range, lines at 1/3 and 2/3 of it as clear as a 1× line, where the winner / (3 × FTF)
         # lies in the range: the winner may be the 3 × FTF of a cage fault whose shaft line is too weak to be a
@@ -444,7 +444,7 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
                    <= SPEED_CAGE_TOLERANCE).any(axis=-1)  # (not the winner's own cage lines, nor their skirts)
             peak_t = a_t >= beside_q[:, t]
             thirds = (a_t > 0) & peak_t & (a_t >= SPEED_MIN_PROMINENCE * floor_t) & ~own
-            quality = np.where(thirds.all(axis=-1) & maybe, 0.0, quality)
+            quality[thirds.all(axis=-1) & maybe] = 0.0
     if parent_line and cage_ratio is not None:
         # a clear line where a shaft would run whose cage series holds the winner, that is no valid candidate (its
         # 1× line weaker than a strong cage series): the winner may be that shaft's cage line
@@ -452,14 +452,14 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
         s = slice(n_r + _THIRDS.size, None)
         parent = _cage_parent_found(acc, f_w, a_ref[:, 0], cage_ratio, parents, speed_range_hz, df_hz, half_clear,
                                     p_s, f_s, f_q_ref[:, s], a_q[:, s], floor_q[:, s])
-        quality = np.where(parent, 0.0, quality)
+        quality[parent] = 0.0
     any_valid = valid[rows, first]
-    quality = np.where(any_valid, quality, np.nan)
+    quality[~any_valid] = np.nan
     ok = any_valid & (quality >= SPEED_MIN_QUALITY)  # (NaN compares False, silently)
     h = min(harmonics, 3)
     refined, precise = _harmonic_refinement(f_w, f_ref[:, :h], a_ref[:, :h], floor_ref[:, :h], df_hz, tolerance)
-    out: FloatArray = np.where(ok & precise, refined, np.nan)
-    return out, quality
+    refined[~(ok & precise)] = np.nan
+    return refined, quality
 
 
 _RELATED = np.array([1.0, 2.0, 3.0, 4.0])  # frequency ratios of harmonically related candidates
@@ -477,6 +477,14 @@ _RELATED_TOL.flags.writeable = False
 
 
 CAGE_HARMONICS = 3  # a cage fault's FTF series: the FTF line and its harmonics 2× and 3× (Randall & Antoni 2011)
+
+
+@lru_cache(maxsize=64)
+def _one_and(ratio: float) -> FloatArray:
+    """``[1, ratio]``, read-only and kept: a winner and its cage line at once."""
+    out = np.array([1.0, ratio])
+    out.flags.writeable = False
+    return out
 
 
 @lru_cache(maxsize=64)
