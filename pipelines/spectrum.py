@@ -384,20 +384,23 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
         parents = _cage_parents(cage_ratio)
         if parents.size:
             tol = SPEED_CAGE_TOLERANCE
-            cage_of = valid & (np.abs(f_w[:, None, None] / (f_est[..., None] * parents) - 1.0) <= tol).any(axis=-1)
+            # (the small axes — parents, cage orders, related ratios — lead, here and below: a reduction over a
+            # leading axis costs a fraction of one over a short last axis)
+            cage_of = valid & (np.abs(f_w[None, :, None] / (f_est * parents[:, None, None]) - 1.0) <= tol).any(axis=0)
             # (not to a candidate on the winner's own cage series: each reading explains a line of the other)
-            cage_of &= ~(np.abs(f_est[..., None] / (f_w[:, None, None] * cage_ratio * _CAGE_ORDERS) - 1.0)
-                         <= tol).any(axis=-1)
+            cage_of &= ~(np.abs(f_est / (f_w[:, None] * cage_ratio * _CAGE_ORDERS_LEADING) - 1.0)
+                         <= tol).any(axis=0)
             has_shaft = cage_of.any(axis=-1)
             first = np.where(has_shaft, cage_of.argmax(axis=-1), first)
             f_w = f_est[rows, first]
     s_w = cand_score[rows, first]
     a_w = line_1x[rows, first]
     # candidates related to the winner (and, with cage_ratio, to the winner's cage line and its harmonics)
-    f0 = f_w[:, None] if cage_ratio is None else f_w[:, None] * _one_and(cage_ratio)  # (channels, 1 or 2)
-    ratio = (f_est[:, None, :] / f0[:, :, None])[..., None]
-    near = (np.abs(ratio - _RELATED) <= _RELATED_TOL) | (np.abs(1.0 / ratio - _RELATED) <= _RELATED_TOL)
-    explained = near.any(axis=(1, 3))
+    f0 = f_w[None, :] if cage_ratio is None else _one_and(cage_ratio)[:, None] * f_w  # (1 or 2, channels)
+    ratio = f_est / f0[:, :, None]  # (1 or 2, channels, K)
+    near = (np.abs(ratio - _RELATED_LEADING) <= _RELATED_TOL_LEADING) | \
+        (np.abs(1.0 / ratio - _RELATED_LEADING) <= _RELATED_TOL_LEADING)  # (4, 1 or 2, channels, K)
+    explained = near.reshape(-1, c, near.shape[-1]).any(axis=0)
     rival = np.where(valid & ~explained, cand_score, 0.0).max(axis=-1)
     with np.errstate(divide="ignore", invalid="ignore"):
         quality = np.minimum(np.maximum(1.0 - rival / s_w, 0.0), 1.0)  # (np.clip costs ten times as much)
@@ -440,8 +443,8 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
         if maybe.any():  # (the verdict only where the winner's place allows it: most calls skip it)
             t = slice(n_r, n_r + _THIRDS.size)
             f_t, a_t, floor_t = f_q_ref[:, t], a_q[:, t], floor_q[:, t]
-            own = (np.abs(f_t[..., None] / (f_w[:, None, None] * cage_ratio * _CAGE_ORDERS) - 1.0)
-                   <= SPEED_CAGE_TOLERANCE).any(axis=-1)  # (not the winner's own cage lines, nor their skirts)
+            own = (np.abs(f_t / (f_w[:, None] * cage_ratio * _CAGE_ORDERS_LEADING) - 1.0)
+                   <= SPEED_CAGE_TOLERANCE).any(axis=0)  # (not the winner's own cage lines, nor their skirts)
             peak_t = a_t >= beside_q[:, t]
             thirds = (a_t > 0) & peak_t & (a_t >= SPEED_MIN_PROMINENCE * floor_t) & ~own
             quality[thirds.all(axis=-1) & maybe] = 0.0
@@ -474,6 +477,8 @@ for _a in (_READINGS, _READING_PROMINENCE, _READING_SHARE):
 _RELATED_TOL = SPEED_RELATED_TOLERANCE * _RELATED
 _RELATED.flags.writeable = False
 _RELATED_TOL.flags.writeable = False
+_RELATED_LEADING = _RELATED[:, None, None, None]  # (the ratios on a leading axis)
+_RELATED_TOL_LEADING = _RELATED_TOL[:, None, None, None]
 
 
 CAGE_HARMONICS = 3  # a cage fault's FTF series: the FTF line and its harmonics 2× and 3× (Randall & Antoni 2011)
@@ -540,7 +545,7 @@ def _cage_parent_found(acc: FloatArray, f_w: FloatArray, a_w: FloatArray, cage_r
     near = (f_pr >= f_p * (1.0 - SPEED_CAGE_LEAD) - df_hz) & (f_pr <= f_p * (1.0 + tol) + df_hz)
     with np.errstate(divide="ignore", invalid="ignore"):
         share = a_p / f_pr >= SPEED_CAGE_SHAFT_SHARE * (a_w / f_w0[:, 0])[:, None]  # velocity ∝ acceleration / f
-        own = (np.abs(f_pr[..., None] / (f_w0[..., None] * cage_ratio * _CAGE_ORDERS) - 1.0) <= tol).any(axis=-1)
+        own = (np.abs(f_pr / (f_w0 * cage_ratio * _CAGE_ORDERS_LEADING) - 1.0) <= tol).any(axis=0)
         own |= np.abs(f_pr - f_w0) <= df_hz
         half = 2.0 * f_pr / f_w0
         own |= half_clear[:, None] & (np.abs(half / np.maximum(np.rint(half), 1.0) - 1.0) <= tol)
@@ -555,9 +560,10 @@ def _cage_parent_found(acc: FloatArray, f_w: FloatArray, a_w: FloatArray, cage_r
 
 
 _CAGE_ORDERS = np.arange(1, CAGE_HARMONICS + 1, dtype=np.float64)
+_CAGE_ORDERS_LEADING = _CAGE_ORDERS[:, None, None]  # (the orders on a leading axis)
 _THIRDS = np.array([1.0 / 3.0, 2.0 / 3.0])
 _READINGS_THIRDS = np.concatenate([_READINGS, _THIRDS])  # the readings, then the cage check's thirds
-for _a in (_CAGE_ORDERS, _THIRDS, _READINGS_THIRDS):
+for _a in (_CAGE_ORDERS, _CAGE_ORDERS_LEADING, _THIRDS, _READINGS_THIRDS):
     _a.flags.writeable = False
 
 
