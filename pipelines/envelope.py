@@ -528,32 +528,39 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     """
     c, k = ses.shape
     nf = expected_hz.shape[1]
-    # 1. shaft harmonics: significant local maxima at whole orders are shaft lines, never bearing lines
-    ses = np.ascontiguousarray(ses)
-    s_centre = shaft_hz[:, None] * _SHAFT_ORDERS / df_hz
-    f_centre = expected_hz / df_hz
-    f_half = slip * f_centre
-    # the shaft harmonics' windows and the fundamentals' (step 2) in one scan: its lines and levels serve both
-    # searches of the fundamentals, with and without the shaft lines
     sh = SHAFT_HARMONICS
-    first = _Scan(ses, np.concatenate([s_centre, f_centre], axis=-1),
-                  np.concatenate([SHAFT_TOLERANCE * s_centre, f_half], axis=-1), thresholds, _first_min_half(nf))
+    # 1. shaft harmonics: significant local maxima at whole orders are shaft lines, never bearing lines.  The shaft
+    # harmonics' windows and the fundamentals' (step 2) in one scan: its lines and levels serve both searches of
+    # the fundamentals, with and without the shaft lines
+    ses = np.ascontiguousarray(ses)
+    first_centre = np.concatenate([shaft_hz[:, None] * _SHAFT_ORDERS, expected_hz], axis=-1) / df_hz
+    f_centre = first_centre[:, sh:]
+    first_half = first_centre * _first_tolerance(slip, nf)  # (± 0.5 % for the shaft, ± slip for the families)
+    f_half = first_half[:, sh:]
+    first = _Scan(ses, first_centre, first_half, thresholds, _first_min_half(nf))
     both = first.search(first.local)
     shaft = _columns(both, slice(0, sh))
-    excluded = np.zeros((c, k), dtype=bool)
     s_found = shaft.found
-    rows, cols = np.nonzero(s_found)
-    excluded[rows, shaft.index[rows, cols]] = True
     # 2. fundamentals: the window's largest local maximum, and the largest one that is not a shaft line; the
     # shaft lines are barred only where the shaft series stands on its own (lines the candidate's series does
-    # not explain)
-    established = shaft_series_established(shaft, both.index[:, sh:])
-    bar_first = np.zeros((c, sh + nf), dtype=bool)
-    bar_first[:, sh:] = established
-    fund = _columns(first.search(first.admissible(excluded, bar_first)), slice(sh, None))
-    has = fund.index >= 0
-    k1 = np.where(has, fund.index, 0).astype(np.float64)
-    # 3. harmonics (around h × the found line, else h × the expected one) and sidebands (around the found line)
+    # not explain) — without shaft lines found, nothing is barred and the candidates are the fundamentals
+    candidate = both.index[:, sh:]
+    established = (shaft_series_established(shaft, candidate) if s_found.any()
+                   else np.zeros((c, nf), dtype=bool))
+    excluded: BoolArray | None = None
+    if established.any():
+        excluded = np.zeros((c, k), dtype=bool)
+        rows, cols = np.nonzero(s_found)
+        excluded[rows, shaft.index[rows, cols]] = True
+        bar_first = np.zeros((c, sh + nf), dtype=bool)
+        bar_first[:, sh:] = established
+        candidate = first.search(first.admissible(excluded, bar_first)).index[:, sh:]
+    has = candidate >= 0
+    k1i = np.where(has, candidate, 0)
+    k1 = k1i.astype(np.float64)
+    # 3. harmonics (around h × the found line, else h × the expected one) and sidebands (around the found line),
+    # searched with the fundamentals' windows again (the same windows, bars and levels, so the same lines): one
+    # search holds every slot
     h, h_near = _harmonic_orders(harmonics)
     h_centre = np.where(has[..., None], k1[..., None] * h, f_centre[..., None] * h)
     h_half = np.where(has[..., None], h_near, np.maximum(1.0, f_half[..., None] * h))
@@ -565,35 +572,60 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     centres = np.concatenate([f_centre[..., None], h_centre, sb_centre], axis=-1)  # (c, f, slots)
     halves = np.concatenate([np.maximum(1.0, f_half)[..., None], h_half, sb_half], axis=-1)
     slots = centres.shape[-1]
-    bar_rest = np.repeat(established[..., None], slots - 1, axis=-1).reshape(c, -1)
-    rest = search_lines(ses, centres[..., 1:].reshape(c, -1), halves[..., 1:].reshape(c, -1), thresholds, excluded,
-                        exclude_in=bar_rest)
-    lines = _join(fund, rest, nf, slots)
+    bar = None if excluded is None else np.repeat(established, slots, axis=-1)
+    lines = search_lines(ses, centres.reshape(c, -1), halves.reshape(c, -1), thresholds, excluded, exclude_in=bar)
     found = lines.found.reshape(c, nf, slots)
     index = lines.index.reshape(c, nf, slots)
     # 4. verdict: a significant fundamental with enough modulation depth
     significant = found[..., 0]
-    k1i = np.where(has, fund.index, 0)
-    nbr = np.minimum(np.maximum(k1i[..., None] + _NEIGHBOURS, 0), k - 1)
-    amp = np.where(has, _gather(amp_g, nbr).max(axis=-1), np.nan)
+    # (a missing fundamental reads line 0 and its neighbours, −1 included — some line of the flattened array —
+    # and is then discarded)
+    amp = np.where(has, _gather(amp_g, k1i[..., None] + _NEIGHBOURS).max(axis=-1), np.nan)
     with np.errstate(divide="ignore", invalid="ignore"):
         depth = np.where(has, 4.0 * np.sqrt(_gather(ses, k1i)) / ses_mean_line[:, None], np.nan)
         # the depth the line's signal part surely has: its noise part (a complex Gaussian of power ``level``,
         # ``ses / T``) subtracted at DEPTH_NOISE_RMS times its r.m.s.
-        sure = depth * (1.0 - DEPTH_NOISE_RMS / np.sqrt(np.where(has, fund.statistic, np.inf)))
+        statistic = lines.statistic.reshape(c, nf, slots)[..., 0]
+        sure = depth * (1.0 - DEPTH_NOISE_RMS / np.sqrt(np.where(has, statistic, np.inf)))
         detected = significant & (sure >= min_depth)
+    if detected.any():  # (steps 5–8 only withhold verdicts: nothing to do where nothing is detected)
+        ambiguous, ambiguous_with = _withheld(index, found, significant, detected, expected_hz, modulation_hz,
+                                              harmonics, shaft, established, shaft_hz, df_hz, k1i, gaps)
+        detected = detected & ~ambiguous
+    else:
+        ambiguous_with = np.full((c, nf), -1, dtype=np.intp)
+    return FamilySearch(lines=lines, slots=slots, expected_lines=centres, amplitude_g=amp, depth=depth,
+                        significant=significant, detected=detected, ambiguous_with=ambiguous_with,
+                        shaft=shaft, shaft_established=established)
+
+
+def _withheld(index: IntArray, found: BoolArray, significant: BoolArray, detected: BoolArray,
+              expected_hz: FloatArray, modulation_hz: FloatArray, harmonics: int, shaft: LineSearch,
+              established: BoolArray, shaft_hz: FloatArray, df_hz: float, k1i: IntArray,
+              gaps: tuple[FloatArray, IntArray] | None) -> tuple[BoolArray, IntArray]:
+    """Steps 5–8 of the module docstring: which detected fundamentals are ambiguous, and with which family (or
+    ``families`` for the shaft; -1: not ambiguous); shapes (channels, families).  Arguments as in
+    :func:`search_families` (``index``, ``found``: (channels, families, slots); ``k1i``: the fundamentals' lines,
+    0 where none)."""
+    c, nf, slots = index.shape
+    has = index[..., 0] >= 0
     # 5. coincidences: a detected fundamental on a line of another family's pattern (a local maximum in one of
-    # its windows, significant or not) whose own fundamental is significant
-    local = index >= 0
-    i32 = index.astype(np.int32)  # (line numbers: half the memory traffic of the pairwise differences)
-    near = np.abs(i32[:, :, None, :, None] - i32[:, None, :, None, :]) <= 1  # (c, A, B, qA, qB)
-    on_other = (near[:, :, :, 0, :] & local[:, None, :, :]).any(axis=-1) & local[:, :, None, 0] & _not_eye(nf)
-    shared = near & found[:, :, None, :, None] & local[:, None, :, None, :]  # A's counted lines on B's lines
-    unique_a = (found[:, :, None, :] & ~shared.any(axis=-1)).sum(axis=-1)  # (c, A, B): A's lines B lacks
-    unique_b = np.swapaxes(unique_a, 1, 2)  # B's lines A lacks
-    beaten = detected[:, :, None] & on_other & significant[:, None, :] & (unique_b >= unique_a)
-    ambiguous = beaten.any(axis=-1)
-    ambiguous_with = np.where(ambiguous, beaten.argmax(axis=-1), -1)
+    # its windows, significant or not) whose own fundamental is significant — only pairs (detected A, significant
+    # B ≠ A) can be beaten
+    ambiguous = np.zeros((c, nf), dtype=bool)
+    ambiguous_with = np.full((c, nf), -1, dtype=np.intp)
+    pairs = detected[:, :, None] & significant[:, None, :] & _not_eye(nf)
+    if pairs.any():
+        local = index >= 0
+        i32 = index.astype(np.int32)  # (line numbers: half the memory traffic of the pairwise differences)
+        near = np.abs(i32[:, :, None, :, None] - i32[:, None, :, None, :]) <= 1  # (c, A, B, qA, qB)
+        on_other = (near[:, :, :, 0, :] & local[:, None, :, :]).any(axis=-1) & local[:, :, None, 0]
+        shared = near & found[:, :, None, :, None] & local[:, None, :, None, :]  # A's counted lines on B's lines
+        unique_a = (found[:, :, None, :] & ~shared.any(axis=-1)).sum(axis=-1)  # (c, A, B): A's lines B lacks
+        unique_b = np.swapaxes(unique_a, 1, 2)  # B's lines A lacks
+        beaten = pairs & on_other & (unique_b >= unique_a)
+        ambiguous = beaten.any(axis=-1)
+        ambiguous_with = np.where(ambiguous, beaten.argmax(axis=-1), -1)
     # 6. modulation: a family whose fundamental is another family's sideband spacing (FTF for 2 × BSF) and whose
     # counted lines are all that family's found sidebands' spacings is its modulation, not a defect of its own
     carried = _modulation_explains(index, found, significant, expected_hz, modulation_hz, slots - harmonics)
@@ -601,12 +633,14 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     is_modulation = modulated.any(axis=-1)
     ambiguous_with = np.where(is_modulation, modulated.argmax(axis=-1), ambiguous_with)
     ambiguous |= is_modulation
+    s_found = shaft.found
     if gaps is not None:
         gap, shaft_order = gaps
         shaft_near = s_found[:, shaft_order - 1] & established  # (c, A)
         present = np.concatenate([np.broadcast_to(significant[:, None, :], (c, nf, nf)),
                                   shaft_near[:, :, None]], axis=-1)  # (c, A, B + shaft)
-        close = (gap[None, :, :] * shaft_hz[:, None, None] / df_hz < 1.0) & present
+        with np.errstate(invalid="ignore"):  # (an unknown speed: NaN compares False)
+            close = (gap[None, :, :] * shaft_hz[:, None, None] / df_hz < 1.0) & present
         unresolved = detected & close.any(axis=-1) & ~ambiguous
         ambiguous_with = np.where(unresolved, close.argmax(axis=-1), ambiguous_with)
         ambiguous |= unresolved
@@ -617,9 +651,7 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     lone = detected & on_shaft & (found[..., 1:harmonics].sum(axis=-1) == 0) & ~ambiguous
     ambiguous_with = np.where(lone, nf, ambiguous_with)
     ambiguous |= lone
-    return FamilySearch(lines=lines, slots=slots, expected_lines=centres, amplitude_g=amp, depth=depth,
-                        significant=significant, detected=detected & ~ambiguous, ambiguous_with=ambiguous_with,
-                        shaft=shaft, shaft_established=established)
+    return ambiguous, ambiguous_with
 
 
 def _modulation_explains(index: IntArray, found: BoolArray, significant: BoolArray, expected_hz: FloatArray,
@@ -650,6 +682,8 @@ def _modulation_explains(index: IntArray, found: BoolArray, significant: BoolArr
                    & (np.abs(modulation_hz[:, None, :] - expected_hz[:, :, None])
                       <= 1e-9 * np.abs(expected_hz[:, :, None])))  # (c, A, B)
     carried &= _not_eye(nf) & significant[:, None, :] & found[:, :, None, 0]
+    if not carried.any():
+        return carried
     k_b = index[:, :, 0]
     explained = np.zeros((c, nf, nf, harmonics), dtype=bool)
     h_slot, sb_slot, h_with, starts = _sideband_pairs(harmonics)
@@ -756,15 +790,10 @@ def _first_min_half(families: int) -> FloatArray:
     return out
 
 
-def _join(fund: LineSearch, rest: LineSearch, families: int, slots: int) -> LineSearch:
-    """The fundamentals' and the other slots' searches as one (channels, families × slots) search."""
-    c = fund.index.shape[0]
-
-    def cat(a: npt.NDArray[Any], b: npt.NDArray[Any]) -> npt.NDArray[Any]:
-        out: npt.NDArray[Any] = np.concatenate([a.reshape(c, families, 1), b.reshape(c, families, slots - 1)],
-                                               axis=-1).reshape(c, -1)
-        return out
-
-    return LineSearch(index=cat(fund.index, rest.index), statistic=cat(fund.statistic, rest.statistic),
-                      threshold=cat(fund.threshold, rest.threshold), fits=cat(fund.fits, rest.fits),
-                      lo=cat(fund.lo, rest.lo), hi=cat(fund.hi, rest.hi))
+@lru_cache(maxsize=16)
+def _first_tolerance(slip: float, families: int) -> FloatArray:
+    """Relative half-widths of the shaft harmonics' windows (:data:`SHAFT_TOLERANCE`) and of the families'
+    fundamentals (``slip``), in one search's window order."""
+    out = np.concatenate([np.full(SHAFT_HARMONICS, SHAFT_TOLERANCE), np.full(families, slip)])
+    out.flags.writeable = False
+    return out
