@@ -376,15 +376,19 @@ class _Scan:
                  min_half: float | FloatArray) -> None:
         c, k = ses.shape
         self.ses = ses
-        known = np.isfinite(centre_lines) & np.isfinite(half_lines)
-        centre = np.where(known, centre_lines, 0.0)
-        half = np.where(known, np.maximum(half_lines, min_half), min_half)
-        lo = np.ceil(centre - half - 1e-9).astype(np.intp)
-        hi = np.floor(centre + half + 1e-9).astype(np.intp)
-        fits = known & (lo >= MIN_LINE) & (hi + _HEADROOM <= k - 1)
-        lo_c = np.where(fits, lo, MIN_LINE)
-        hi_c = np.where(fits, hi, MIN_LINE)
-        width = int((hi_c - lo_c).max()) + 1 if lo_c.size else 1
+        # (an unknown centre or half-width — NaN — makes its bounds NaN, which fit nowhere)
+        half = np.maximum(half_lines, min_half)
+        lo_f = centre_lines - half
+        lo_f -= 1e-9
+        np.ceil(lo_f, out=lo_f)
+        hi_f = centre_lines + half
+        hi_f += 1e-9
+        np.floor(hi_f, out=hi_f)
+        fits = (lo_f >= MIN_LINE) & (hi_f <= k - 1 - _HEADROOM)
+        lo_c = np.where(fits, lo_f, MIN_LINE).astype(np.intp)
+        hi_c = np.where(fits, hi_f, MIN_LINE).astype(np.intp)
+        span = hi_c - lo_c  # (lines in the window − 1)
+        width = int(span.max()) + 1 if span.size else 1
         rows = np.arange(0, c * k, k).reshape(c, 1, 1) if c > 1 else None
         # each window's lines with one neighbour either side, in one gather (a window's own lines lie at or below
         # k − 2: the padding beyond a narrower window's last line is never taken, whatever it reads); flat indices
@@ -412,9 +416,10 @@ class _Scan:
         vals = flat.take(lines, mode="clip")
         np.putmask(vals, left_out, np.inf)
         vals.partition(LEVEL_RANK - 1, axis=-1)
-        self.level = vals[..., LEVEL_RANK - 1] / _LEVEL_FACTOR
-        m_lines = np.minimum(hi_c - lo_c + 1, thresholds.size - 1)
-        self.thr = np.where(fits, thresholds[m_lines], np.nan)
+        level = vals[..., LEVEL_RANK - 1] / _LEVEL_FACTOR
+        self.level = np.maximum(level, _TINY, out=level)  # (the divisor of the statistic)
+        np.minimum(span, thresholds.size - 2, out=span)  # lines in the window, less one: the table's index − 1
+        self.thr = np.where(fits, thresholds[span + 1], np.nan)
         self.fits, self.lo, self.hi = fits, lo_c, hi_c
 
     def admissible(self, excluded: BoolArray | None, exclude_in: BoolArray | None = None) -> BoolArray:
@@ -436,7 +441,7 @@ class _Scan:
         peak = self.lo + best
         value = admitted.max(axis=-1)  # (the line at ``peak`` where ``has``)
         with np.errstate(divide="ignore", invalid="ignore"):
-            stat = np.where(has, value / np.maximum(self.level, _TINY), np.nan)
+            stat = np.where(has, value / self.level, np.nan)
         return LineSearch(index=np.where(has, peak, -1), statistic=stat, threshold=self.thr, fits=self.fits,
                           lo=self.lo, hi=self.hi)
 
