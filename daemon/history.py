@@ -295,8 +295,9 @@ class _Open:
 
     layout: int
     minute_start: int | None = None
-    minute_values: list[npt.NDArray[np.float64]] = field(default_factory=list)
-    minute_times: list[float] = field(default_factory=list)       # the minute's frame times, s from its start
+    minute_x: npt.NDArray[np.float64] | None = None               # the open minute's running values, one row each
+    minute_t: npt.NDArray[np.float64] | None = None               # their frame times, s from the minute's start
+    minute_n: int = 0                                             # rows of minute_x / minute_t in use
     starts: dict[str, int] = field(default_factory=dict)          # "hour"/"day" -> open bucket start
     sketches: dict[str, list[LogSketch]] = field(default_factory=dict)
     t_sums: dict[str, npt.NDArray[np.float64]] = field(default_factory=dict)  # level -> time sums of its sketches
@@ -304,6 +305,32 @@ class _Open:
     period: tuple[int, int, int] | None = None                    # (state code, start_ns, end_ns), not running
     period_dirty: bool = False
     latest_ns: int = 0
+
+    def add_to_minute(self, values: npt.NDArray[np.float64], t_s: float) -> None:
+        """Append a running frame to the open minute (rows grow by doubling: no re-stacking at every flush)."""
+        n = self.minute_n
+        if self.minute_x is None or self.minute_t is None or n == self.minute_x.shape[0]:
+            x = np.empty((max(16, 2 * n), values.shape[-1]))
+            t = np.empty(x.shape[0])
+            if self.minute_x is not None and self.minute_t is not None:
+                x[:n] = self.minute_x[:n]
+                t[:n] = self.minute_t[:n]
+            self.minute_x, self.minute_t = x, t
+        self.minute_x[n] = values
+        self.minute_t[n] = t_s
+        self.minute_n = n + 1
+
+    def minute(self) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.float64]] | None:
+        """The open minute's values (n, indicators) and times (n,), or None when it has none (views: valid until
+        :meth:`clear_minute`, which leaves them to their holder)."""
+        if self.minute_n == 0 or self.minute_x is None or self.minute_t is None:
+            return None
+        return self.minute_x[:self.minute_n], self.minute_t[:self.minute_n]
+
+    def clear_minute(self) -> None:
+        self.minute_start = None
+        self.minute_x = self.minute_t = None
+        self.minute_n = 0
 
 
 @dataclass
@@ -374,8 +401,9 @@ class HistoryRecorder:
                 fr = c.execute("SELECT t_ns, v FROM frames WHERE point = ? AND t_ns >= ? AND t_ns < ? AND state = 0 "
                                "AND layout = ? ORDER BY t_ns",
                                (pid, op.minute_start * 10**9, (op.minute_start + 60) * 10**9, self._layout)).fetchall()
-                op.minute_values = [np.frombuffer(v, dtype="<f4").astype(np.float64) for _, v in fr]
-                op.minute_times = [(int(t_ns) - op.minute_start * 10**9) / 1e9 for t_ns, _ in fr]
+                for t_ns, v in fr:
+                    op.add_to_minute(np.frombuffer(v, dtype="<f4").astype(np.float64),
+                                     (int(t_ns) - op.minute_start * 10**9) / 1e9)
             last = c.execute("SELECT max(t_ns) FROM frames WHERE point = ?", (pid,)).fetchone()[0]
             op.latest_ns = int(last or 0)
         for pid, start_ns, end_ns, state in c.execute(
@@ -510,8 +538,7 @@ class HistoryRecorder:
                     start = (t_ns // 10**9) // 60 * 60
                     if op.minute_start is None:
                         op.minute_start = start
-                    op.minute_values.append(v)
-                    op.minute_times.append((t_ns - op.minute_start * 10**9) / 1e9)
+                    op.add_to_minute(v, (t_ns - op.minute_start * 10**9) / 1e9)
                     op.dirty.add("minute")
                 else:
                     if op.period is None or op.period[0] != code:
@@ -545,9 +572,9 @@ class HistoryRecorder:
                    rows: list[_Row]) -> None:
         """Close the buckets that end at or before ``t_s`` (a new frame's time, whatever its state)."""
         if op.minute_start is not None and t_s >= op.minute_start + 60:
-            if op.minute_values:
-                x = np.stack(op.minute_values)
-                tt = np.asarray(op.minute_times)
+            held = op.minute()
+            if held is not None:
+                x, tt = held
                 stats = summarize(x, self.settings.high_percentile)
                 rows.append((pid, 60, op.minute_start, self._layout, 1, _f32(stats), None,
                              _t_mean_blob(time_sums(tt, x), stats[0])))
@@ -565,9 +592,7 @@ class HistoryRecorder:
                         time_sums(tt + (op.minute_start - start), x)
                 # the closed minute into the hour's and the day's sketches (its bins worked out once for both)
                 LogSketch.add_columns(op.sketches["hour"], x, also=[op.sketches["day"]])
-            op.minute_start = None
-            op.minute_values = []
-            op.minute_times = []
+            op.clear_minute()
             op.dirty.discard("minute")
         for lname in ("hour", "day"):
             open_start = op.starts.get(lname)
@@ -599,8 +624,8 @@ class HistoryRecorder:
         them with the open minute too.  Either way the stored sketches hold the closed minutes only: a restart
         takes the open minute's values back from the frames table.  Each row's ``t_mean`` is the mean time of the
         values its statistics hold."""
-        minute = np.stack(op.minute_values) if op.minute_values else None
-        minute_t = np.asarray(op.minute_times)
+        held = op.minute()
+        minute, minute_t = held if held is not None else (None, np.zeros(0))
         if op.minute_start is not None and minute is not None:
             stats = summarize(minute, self.settings.high_percentile)
             rows.append((pid, 60, op.minute_start, self._layout, 0, _f32(stats), None,
@@ -642,7 +667,7 @@ class HistoryRecorder:
         """Rewrite every point's open hour and day rows with its open minute (at :meth:`close`)."""
         rows: list[_Row] = []
         for point, op in self._open.items():
-            if op.minute_start is not None and op.minute_values:
+            if op.minute_start is not None and op.minute_n:
                 self._open_rows(self.db.point_id(point), op, rows, with_minute=True)
         if rows:
             with self.db.transaction() as c:
