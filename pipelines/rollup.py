@@ -25,7 +25,7 @@ import numpy.typing as npt
 
 from edgevib.pipelines.types import PipelineError
 
-__all__ = ["STAT_FIELDS", "LogSketch", "RollupError", "summarize", "time_sums"]
+__all__ = ["STAT_FIELDS", "LogSketch", "RollupError", "summarize", "summarize_many", "time_sums"]
 
 FloatArray = npt.NDArray[np.float64]
 STAT_FIELDS: tuple[str, ...] = ("count", "min", "mean", "max", "p50", "p_high")
@@ -75,6 +75,34 @@ def summarize(values: npt.ArrayLike, high_percentile: float = 95.0) -> FloatArra
         hi = np.minimum(lo + 1, c - 1)
         frac = pos - lo
         out[row, have] = srt[lo, cols] + frac * (srt[hi, cols] - srt[lo, cols])
+    return out
+
+
+def summarize_many(blocks: Sequence[npt.ArrayLike], high_percentile: float = 95.0) -> FloatArray:
+    """:func:`summarize` of several batches of the same indicators at once: array (6, len(blocks) · n_indicators),
+    block i's statistics in columns i · n_indicators … (i + 1) · n_indicators − 1.
+
+    ``blocks``: each of shape (n_i, n_indicators) (the n_i may differ, 0 included); NaN = missing.  Blocks of the
+    same length are laid side by side and summarized in one call.  Every statistic of :func:`summarize` is worked
+    out per column (a column's sum, too, is a sum over that column's own rows), so the result equals,
+    bit for bit, :func:`summarize` of each block alone.  (Padding shorter blocks to a common length would change
+    the grouping of those sums, hence the last bit of some means.)
+    """
+    if not 0.0 < high_percentile < 100.0:
+        raise RollupError(f"high percentile {high_percentile!r} must be within (0, 100)")
+    xs = [np.asarray(b, dtype=np.float64) for b in blocks]
+    k = xs[0].shape[1] if xs and xs[0].ndim == 2 else 0
+    for x in xs:
+        if x.ndim != 2 or x.shape[1] != k:
+            raise RollupError(f"blocks must all be (n, {k}), got shape {x.shape}")
+    out = np.full((len(STAT_FIELDS), len(xs) * k), np.nan)
+    by_rows: dict[int, list[int]] = {}
+    for i, x in enumerate(xs):
+        by_rows.setdefault(x.shape[0], []).append(i)
+    for members in by_rows.values():
+        stats = summarize(np.concatenate([xs[i] for i in members], axis=1), high_percentile)
+        for j, i in enumerate(members):
+            out[:, i * k:(i + 1) * k] = stats[:, j * k:(j + 1) * k]
     return out
 
 

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
-from edgevib.pipelines.rollup import STAT_FIELDS, LogSketch, RollupError, summarize
+from edgevib.pipelines.rollup import STAT_FIELDS, LogSketch, RollupError, summarize, summarize_many
 
 
 def test_summarize_matches_numpy_and_skips_missing_values() -> None:
@@ -26,6 +26,42 @@ def test_summarize_matches_numpy_and_skips_missing_values() -> None:
     assert s[0, 2] == 0 and np.all(np.isnan(s[1:, 2]))
     with pytest.raises(RollupError, match="high percentile 100"):
         summarize(x, 100.0)
+
+
+def test_summarize_many_matches_numpy_and_each_block_alone_bit_for_bit() -> None:
+    # Blocks of different lengths (one row, none, one indicator holding every value, zeros of both signs, missing
+    # values): each block's statistics against numpy's exact statistics, and the same bytes as summarize of the
+    # block alone (the history stores float32 roll-ups written by either).
+    rng = np.random.default_rng(21)
+    blocks = []
+    for n in (94, 93, 1, 0, 2, 94, 9, 1, 150, 93):
+        x = rng.lognormal(0.0, 1.0, size=(n, 4)) * 10.0 ** rng.integers(-3, 4, size=(n, 4))
+        x[rng.random((n, 4)) < 0.2] = np.nan
+        blocks.append(x)
+    blocks[1][:, 1:] = np.nan                   # one indicator holds every value
+    blocks[4][:, 0] = [-0.0, -0.0]              # a negative zero (summed it gives +0.0, as numpy's sum does)
+    blocks[7][0, :2] = [-0.0, -3.0]             # one row: every statistic is that value, sign of zero kept
+    blocks[8][:, 3] = -blocks[8][:, 3]
+    s = summarize_many(blocks, 90.0)
+    assert s.shape == (len(STAT_FIELDS), 4 * len(blocks))
+    for i, x in enumerate(blocks):
+        alone = summarize(x, 90.0)
+        assert s[:, 4 * i:4 * i + 4].tobytes() == alone.tobytes(), f"block {i}"
+        for j in range(4):
+            v = x[:, j][np.isfinite(x[:, j])]
+            col = s[:, 4 * i + j]
+            if v.size == 0:
+                assert col[0] == 0 and np.all(np.isnan(col[1:]))
+                continue
+            # reference: numpy's exact statistics (linear-interpolation percentiles)
+            assert_allclose(col, [v.size, v.min(), v.mean(), v.max(), np.percentile(v, 50), np.percentile(v, 90)],
+                            rtol=1e-12)
+    assert math.copysign(1.0, s[4, 4 * 7]) == -1.0  # the one-row block's -0.0 median
+    assert summarize_many([], 95.0).shape == (len(STAT_FIELDS), 0)
+    with pytest.raises(RollupError, match=r"must all be \(n, 4\), got shape \(3, 2\)"):
+        summarize_many([blocks[0], np.zeros((3, 2))])
+    with pytest.raises(RollupError, match="high percentile 0"):
+        summarize_many(blocks, 0.0)
 
 
 @pytest.mark.parametrize("q", [0.0, 0.05, 0.5, 0.95, 0.99, 1.0])
