@@ -57,7 +57,7 @@ import numpy.typing as npt
 from edgevib.daemon.interfaces import EdgevibError
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 from edgevib.daemon.sqlite_schema import migrate, write_transaction
-from edgevib.pipelines.rollup import STAT_FIELDS, LogSketch, summarize, time_sums
+from edgevib.pipelines.rollup import STAT_FIELDS, LogSketch, summarize_many, time_sums
 
 if TYPE_CHECKING:
     from edgevib.daemon.config import HistoryConfig
@@ -127,6 +127,10 @@ _INSERT_ROLLUP = ("INSERT OR REPLACE INTO rollups (point, level, start_s, layout
                   "VALUES (?, ?, ?, ?, ?, ?, ?, ?)")
 _Row = tuple[int, int, int, int, int, bytes, bytes | None, bytes]
 """A roll-up row: point, level, start_s, layout, closed, stats, sketch, t_mean."""
+_Rows = list[_Row | None]
+"""Roll-up rows in writing order; None holds the place of a minute row whose statistics are still to come."""
+_MinuteRow = tuple[int, int, int, int, npt.NDArray[np.float64], npt.NDArray[np.float64]]
+"""A minute row to fill in: its index in the rows, point, start_s, closed, values (n, indicators), times (n,)."""
 
 
 class HistoryError(EdgevibError):
@@ -518,7 +522,8 @@ class HistoryRecorder:
         """Write ``batch`` in one transaction; returns how many of its frames were late (not newer than their
         point's latest recorded frame: skipped)."""
         frames: list[tuple[int, int, int, int, bytes]] = []
-        rollups: list[_Row] = []
+        rollups: _Rows = []
+        minutes: list[_MinuteRow] = []
         with self.db.transaction() as c:
             for point, t_ns, v, code in batch:
                 pid = self.db.point_id(point)
@@ -529,7 +534,7 @@ class HistoryRecorder:
                     continue
                 op.latest_ns = t_ns
                 frames.append((pid, t_ns, self._layout, code, _f32(v)))
-                self._close_due(point, pid, op, t_ns // 10**9, rollups)
+                self._close_due(point, pid, op, t_ns // 10**9, rollups, minutes)
                 if code == 0:
                     if op.period is not None:  # running again: the period ends at this frame
                         op.period = (op.period[0], op.period[1], t_ns)
@@ -556,9 +561,31 @@ class HistoryRecorder:
                 if op.period is not None and op.period_dirty:
                     self._write_period(c, pid, op)
                 if op.dirty:
-                    self._open_rows(pid, op, rollups)
-            c.executemany(_INSERT_ROLLUP, rollups)
+                    self._open_rows(pid, op, rollups, minutes)
+            c.executemany(_INSERT_ROLLUP, self._fill_minutes(rollups, minutes))
         return len(batch) - len(frames)
+
+    def _fill_minutes(self, rows: _Rows, minutes: list[_MinuteRow]) -> list[_Row]:
+        """The rows with their minute rows filled in: the statistics of every minute of the flush in one
+        :func:`~edgevib.pipelines.rollup.summarize_many` (equal to each minute's own :func:`summarize`), their
+        float32 blobs cut from one array each."""
+        if minutes:
+            k = len(self.indicators)
+            stats = summarize_many([m[4] for m in minutes], self.settings.high_percentile)  # (6, minutes · k)
+            sums = np.stack([time_sums(m[5], m[4]) for m in minutes])  # (minutes, k)
+            counts = stats[0].reshape(sums.shape)
+            t_mean = np.full(sums.shape, np.nan)
+            np.divide(sums, counts, out=t_mean, where=counts > 0)  # as _t_mean_blob, every minute at once
+            stats_f32 = stats.reshape(len(STAT_FIELDS), len(minutes), k).transpose(1, 0, 2).astype("<f4").tobytes()
+            t_mean_f32 = t_mean.astype("<f4").tobytes()
+            w_stats, w_t = 4 * len(STAT_FIELDS) * k, 4 * k
+            for i, (at, pid, start, closed, _, _) in enumerate(minutes):
+                rows[at] = (pid, 60, start, self._layout, closed, stats_f32[i * w_stats:(i + 1) * w_stats], None,
+                            t_mean_f32[i * w_t:(i + 1) * w_t])
+        out = [r for r in rows if r is not None]
+        if len(out) != len(rows):
+            raise HistoryError("a minute roll-up row was left unfilled")
+        return out
 
     @staticmethod
     def _write_period(c: sqlite3.Connection, pid: int, op: _Open) -> None:
@@ -568,16 +595,16 @@ class HistoryRecorder:
                   (pid, start, end, code))
         op.period_dirty = False
 
-    def _close_due(self, point: str, pid: int, op: _Open, t_s: int,
-                   rows: list[_Row]) -> None:
-        """Close the buckets that end at or before ``t_s`` (a new frame's time, whatever its state)."""
+    def _close_due(self, point: str, pid: int, op: _Open, t_s: int, rows: _Rows,
+                   minutes: list[_MinuteRow]) -> None:
+        """Close the buckets that end at or before ``t_s`` (a new frame's time, whatever its state).  The closed
+        minute's row takes its place in ``rows``; its statistics come with the flush's others (``minutes``)."""
         if op.minute_start is not None and t_s >= op.minute_start + 60:
             held = op.minute()
             if held is not None:
                 x, tt = held
-                stats = summarize(x, self.settings.high_percentile)
-                rows.append((pid, 60, op.minute_start, self._layout, 1, _f32(stats), None,
-                             _t_mean_blob(time_sums(tt, x), stats[0])))
+                minutes.append((len(rows), pid, op.minute_start, 1, x, tt))
+                rows.append(None)
                 for lname in ("hour", "day"):
                     length = LEVELS[lname]
                     start = op.minute_start // length * length
@@ -599,8 +626,7 @@ class HistoryRecorder:
             if open_start is not None and t_s >= open_start + LEVELS[lname] and op.minute_start is None:
                 self._close_level(pid, op, lname, rows)
 
-    def _close_level(self, pid: int, op: _Open, lname: str,
-                     rows: list[_Row]) -> None:
+    def _close_level(self, pid: int, op: _Open, lname: str, rows: _Rows) -> None:
         start = op.starts.pop(lname, None)
         sketches = op.sketches.pop(lname, None)
         sums = op.t_sums.pop(lname, None)
@@ -614,7 +640,8 @@ class HistoryRecorder:
     def _sketch_stats(self, sketches: Sequence[LogSketch]) -> npt.NDArray[np.float64]:
         return np.array([sk.summary(self.settings.high_percentile) for sk in sketches], dtype=np.float64).T
 
-    def _open_rows(self, pid: int, op: _Open, rows: list[_Row], with_minute: bool = False) -> None:
+    def _open_rows(self, pid: int, op: _Open, rows: _Rows, minutes: list[_MinuteRow],
+                   with_minute: bool = False) -> None:
         """Rows of the still-open buckets (readers see the latest partial roll-ups; a restart continues them).
 
         The open minute's row is rewritten at every flush.  An open hour or day row is rewritten when a minute
@@ -627,9 +654,8 @@ class HistoryRecorder:
         held = op.minute()
         minute, minute_t = held if held is not None else (None, np.zeros(0))
         if op.minute_start is not None and minute is not None:
-            stats = summarize(minute, self.settings.high_percentile)
-            rows.append((pid, 60, op.minute_start, self._layout, 0, _f32(stats), None,
-                         _t_mean_blob(time_sums(minute_t, minute), stats[0])))
+            minutes.append((len(rows), pid, op.minute_start, 0, minute, minute_t))
+            rows.append(None)
         if not with_minute:
             minute = None
         zero = np.zeros(len(self.indicators))
@@ -665,13 +691,14 @@ class HistoryRecorder:
 
     def _write_open_with_minute(self) -> None:
         """Rewrite every point's open hour and day rows with its open minute (at :meth:`close`)."""
-        rows: list[_Row] = []
+        rows: _Rows = []
+        minutes: list[_MinuteRow] = []
         for point, op in self._open.items():
             if op.minute_start is not None and op.minute_n:
-                self._open_rows(self.db.point_id(point), op, rows, with_minute=True)
+                self._open_rows(self.db.point_id(point), op, rows, minutes, with_minute=True)
         if rows:
             with self.db.transaction() as c:
-                c.executemany(_INSERT_ROLLUP, rows)
+                c.executemany(_INSERT_ROLLUP, self._fill_minutes(rows, minutes))
 
     # ------------------------------------------------------------------ pruning
 
