@@ -521,7 +521,8 @@ class HistoryRecorder:
     def _write(self, batch: list[tuple[str, int, npt.NDArray[np.float64], int]]) -> int:
         """Write ``batch`` in one transaction; returns how many of its frames were late (not newer than their
         point's latest recorded frame: skipped)."""
-        frames: list[tuple[int, int, int, int, bytes]] = []
+        frames: list[tuple[int, int, int, int]] = []
+        values: list[npt.NDArray[np.float64]] = []  # the frames' values, made float32 blobs all at once
         rollups: _Rows = []
         minutes: list[_MinuteRow] = []
         with self.db.transaction() as c:
@@ -533,7 +534,8 @@ class HistoryRecorder:
                 if t_ns <= op.latest_ns and op.latest_ns:
                     continue
                 op.latest_ns = t_ns
-                frames.append((pid, t_ns, self._layout, code, _f32(v)))
+                frames.append((pid, t_ns, self._layout, code))
+                values.append(v)
                 self._close_due(point, pid, op, t_ns // 10**9, rollups, minutes)
                 if code == 0:
                     if op.period is not None:  # running again: the period ends at this frame
@@ -554,8 +556,11 @@ class HistoryRecorder:
                     else:
                         op.period = (code, op.period[1], t_ns)
                     op.period_dirty = True
-            c.executemany("INSERT OR REPLACE INTO frames (point, t_ns, layout, state, v) VALUES (?, ?, ?, ?, ?)",
-                          frames)
+            if frames:
+                blob = np.stack(values).astype("<f4").tobytes()
+                w = 4 * len(self.indicators)
+                c.executemany("INSERT OR REPLACE INTO frames (point, t_ns, layout, state, v) VALUES (?, ?, ?, ?, ?)",
+                              [(*f, blob[i * w:(i + 1) * w]) for i, f in enumerate(frames)])
             for point, op in self._open.items():
                 pid = self.db.point_id(point)
                 if op.period is not None and op.period_dirty:
