@@ -8,7 +8,14 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
-from edgevib.pipelines.rollup import STAT_FIELDS, LogSketch, RollupError, summarize, summarize_many
+from edgevib.pipelines.rollup import (
+    STAT_FIELDS,
+    LogSketch,
+    RollupError,
+    sketch_summaries,
+    summarize,
+    summarize_many,
+)
 
 
 def test_summarize_matches_numpy_and_skips_missing_values() -> None:
@@ -62,6 +69,36 @@ def test_summarize_many_matches_numpy_and_each_block_alone_bit_for_bit() -> None
         summarize_many([blocks[0], np.zeros((3, 2))])
     with pytest.raises(RollupError, match="high percentile 0"):
         summarize_many(blocks, 0.0)
+
+
+def test_sketch_summaries_are_each_sketchs_summary_and_near_numpy() -> None:
+    # Sketches of both signs, zeros, one value, none: the same numbers as LogSketch.summary bit for bit (the
+    # history stores them either way), and the percentiles within the sketch's relative accuracy of numpy's
+    # (DDSketch, Masson, Rim & Lee, PVLDB 12, 2019; linear interpolation as numpy.percentile).
+    rng = np.random.default_rng(31)
+    data = [rng.lognormal(0.0, 1.0, 3000), -rng.lognormal(1.0, 0.5, 200), np.zeros(25), np.array([4.2]),
+            np.array([]), np.concatenate([rng.lognormal(0.0, 0.2, 50), -rng.lognormal(0.0, 0.2, 50), np.zeros(9)]),
+            np.array([-0.5, 0.0, 0.5, 7.0])]
+    sketches = []
+    for v in data:
+        sk = LogSketch(alpha=0.01)
+        sk.add(v)
+        sketches.append(sk)
+    s = sketch_summaries(sketches, 99.0)
+    assert s.shape == (len(STAT_FIELDS), len(data))
+    assert s.tobytes() == np.array([sk.summary(99.0) for sk in sketches]).T.tobytes()
+    for j, v in enumerate(data):
+        if v.size == 0:
+            assert s[0, j] == 0 and np.all(np.isnan(s[1:, j]))
+            continue
+        assert_allclose(s[:4, j], [v.size, v.min(), v.mean(), v.max()], rtol=1e-12, atol=1e-12)
+        for row, q in ((4, 50.0), (5, 99.0)):
+            # each order statistic within alpha of itself, so their interpolation within alpha of the larger one
+            around = [np.percentile(v, q, method=m) for m in ("lower", "higher")]
+            bound = 0.01 * max(abs(a) for a in around)
+            assert abs(s[row, j] - np.percentile(v, q)) <= bound * (1 + 1e-9) + 1e-15, (j, q)
+    with pytest.raises(RollupError, match="high percentile 100"):
+        sketch_summaries(sketches, 100.0)
 
 
 @pytest.mark.parametrize("q", [0.0, 0.05, 0.5, 0.95, 0.99, 1.0])
