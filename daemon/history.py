@@ -57,7 +57,7 @@ import numpy.typing as npt
 from edgevib.daemon.interfaces import EdgevibError
 from edgevib.daemon.logs import RateLimitedLogger, get_logger
 from edgevib.daemon.sqlite_schema import migrate, write_transaction
-from edgevib.pipelines.rollup import STAT_FIELDS, LogSketch, summarize_many, time_sums
+from edgevib.pipelines.rollup import STAT_FIELDS, LogSketch, sketch_summaries, summarize_many, time_sums
 
 if TYPE_CHECKING:
     from edgevib.daemon.config import HistoryConfig
@@ -643,7 +643,7 @@ class HistoryRecorder:
                      _t_mean_blob(np.zeros(len(sketches)) if sums is None else sums, stats[0])))
 
     def _sketch_stats(self, sketches: Sequence[LogSketch]) -> npt.NDArray[np.float64]:
-        return np.array([sk.summary(self.settings.high_percentile) for sk in sketches], dtype=np.float64).T
+        return sketch_summaries(sketches, self.settings.high_percentile)
 
     def _open_rows(self, pid: int, op: _Open, rows: _Rows, minutes: list[_MinuteRow],
                    with_minute: bool = False) -> None:
