@@ -260,12 +260,13 @@ def _f32(a: npt.ArrayLike) -> bytes:
 def _sketch_blob(sketches: Sequence[LogSketch], t_sums: npt.NDArray[np.float64]) -> bytes:
     """An open bucket's state: its sketches, then (since schema version 2) the sums of its values' times in s from
     the bucket's start, one per sketch (:func:`edgevib.pipelines.rollup.time_sums`)."""
-    parts = [np.array([float(len(sketches))])]
+    parts = [float(len(sketches))]
     for s in sketches:
-        arr = s.to_array()
-        parts += [np.array([float(arr.size)]), arr]
-    parts.append(np.asarray(t_sums, dtype=np.float64).reshape(-1))
-    return np.concatenate(parts).astype("<f8").tobytes()
+        state = s.to_list()
+        parts.append(float(len(state)))
+        parts += state
+    parts += np.asarray(t_sums, dtype=np.float64).reshape(-1).tolist()
+    return np.array(parts, dtype="<f8").tobytes()
 
 
 def _sketches_from_blob(blob: bytes) -> tuple[list[LogSketch], npt.NDArray[np.float64] | None]:

@@ -308,13 +308,16 @@ class LogSketch:
 
     def to_array(self) -> npt.NDArray[np.float64]:
         """A flat float64 array holding the whole state (for storage); :meth:`from_array` reverses it."""
-        head = [self.alpha, float(self.count), float(self.zeros), self.total, self.vmin, self.vmax,
-                float(len(self.pos)), float(len(self.neg))]
-        body: list[float] = []
+        return np.asarray(self.to_list(), dtype=np.float64)
+
+    def to_list(self) -> list[float]:
+        """The numbers of :meth:`to_array` as a list (for packing many sketches into one array)."""
+        out = [self.alpha, float(self.count), float(self.zeros), self.total, self.vmin, self.vmax,
+               float(len(self.pos)), float(len(self.neg))]
         for store in (self.pos, self.neg):
             for k in sorted(store):
-                body += [float(k), float(store[k])]
-        return np.asarray(head + body, dtype=np.float64)
+                out += [float(k), float(store[k])]
+        return out
 
     @classmethod
     def from_array(cls, a: npt.ArrayLike) -> LogSketch:
