@@ -294,9 +294,8 @@ class Daemon:
         self.sources: list[Source] = []
         self._given_sources = list(sources) if sources is not None else None
         self._source_tasks: dict[str, asyncio.Task[None]] = {}
-        self._busy: set[str] = set()  # points in an analysis batch
+        self._busy: dict[str, str] = {}  # point in an analysis batch → its machine when it was taken
         self._busy_machines: dict[str, int] = {}  # machine → its points in analysis batches
-        self._batch_machine: dict[str, str] = {}  # point in an analysis batch → its machine when it was taken
         self._ready: dict[str, float] = {}  # idle points with queued frames → when they became ready (oldest first)
         self._queued_frames = 0  # frames in the ingest queues, as last seen per point (_counted)
         self._counted: dict[str, int] = {}
@@ -689,8 +688,7 @@ class Daemon:
             self._queued_frames -= self._counted.get(pid, 0) - len(q)
             self._counted[pid] = len(q)
             del self._ready[pid]
-            self._busy.add(pid)
-            mid = self._batch_machine[pid] = st.machine.id
+            mid = self._busy[pid] = st.machine.id
             self._busy_machines[mid] = self._busy_machines.get(mid, 0) + 1
             if len(jobs) >= MAX_BATCH:
                 break
@@ -698,9 +696,8 @@ class Daemon:
 
     def _release(self, pids: set[str]) -> None:
         """Points whose batch is done: idle again, and ready at once if frames queued up meanwhile."""
-        self._busy.difference_update(pids)
         for pid in pids:
-            mid = self._batch_machine.pop(pid, None)
+            mid = self._busy.pop(pid, None)
             if mid is not None:
                 left = self._busy_machines.get(mid, 0) - 1
                 if left > 0:
