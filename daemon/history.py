@@ -579,11 +579,8 @@ class HistoryRecorder:
             k = len(self.indicators)
             stats = summarize_many([m[4] for m in minutes], self.settings.high_percentile)  # (6, minutes · k)
             sums = np.stack([time_sums(m[5], m[4]) for m in minutes])  # (minutes, k)
-            counts = stats[0].reshape(sums.shape)
-            t_mean = np.full(sums.shape, np.nan)
-            np.divide(sums, counts, out=t_mean, where=counts > 0)  # as _t_mean_blob, every minute at once
             stats_f32 = stats.reshape(len(STAT_FIELDS), len(minutes), k).transpose(1, 0, 2).astype("<f4").tobytes()
-            t_mean_f32 = t_mean.astype("<f4").tobytes()
+            t_mean_f32 = _t_mean_blob(sums, stats[0].reshape(sums.shape))  # every minute's at once
             w_stats, w_t = 4 * len(STAT_FIELDS) * k, 4 * k
             for i, (at, pid, start, closed, _, _) in enumerate(minutes):
                 rows[at] = (pid, 60, start, self._layout, closed, stats_f32[i * w_stats:(i + 1) * w_stats], None,
