@@ -277,31 +277,43 @@ class LogSketch:
         between the order statistics below and above it, each read from the sketch (within the relative
         accuracy, so their interpolation is too) and clamped to [min, max].  (The lower order statistic alone,
         DDSketch's rank, read a sparse bucket's median low: the second of a day's four values.)"""
-        if not 0.0 <= q <= 1.0:
-            raise RollupError(f"quantile {q!r} must be within [0, 1]")
-        if self.count == 0:
-            return math.nan
-        pos = q * (self.count - 1)
-        lo = math.floor(pos)
-        v_lo, v_hi = self._at_ranks(lo, lo + 1 if pos > lo else lo)
-        if pos == lo:
-            return v_lo
-        return v_lo + (pos - lo) * (v_hi - v_lo)
+        return self.quantiles((q,))[0]
 
-    def _at_ranks(self, lo: int, hi: int) -> tuple[float, float]:
-        """The order statistics of ranks ``lo`` ≤ ``hi`` (0-based, ascending) within the relative accuracy, read in
-        one walk over the bins (most negative first)."""
+    def quantiles(self, qs: Sequence[float]) -> list[float]:
+        """:meth:`quantile` of each of ``qs``, the order statistics of all of them read in one walk over the bins."""
+        for q in qs:
+            if not 0.0 <= q <= 1.0:
+                raise RollupError(f"quantile {q!r} must be within [0, 1]")
+        if self.count == 0:
+            return [math.nan] * len(qs)
+        spans = []  # (position, rank below it, rank above it)
+        for q in qs:
+            pos = q * (self.count - 1)
+            lo = math.floor(pos)
+            spans.append((pos, lo, lo + 1 if pos > lo else lo))
+        at = self._at_ranks(sorted({r for _, lo, hi in spans for r in (lo, hi)}))
+        return [at[lo] if pos == lo else at[lo] + (pos - lo) * (at[hi] - at[lo]) for pos, lo, hi in spans]
+
+    def _at_ranks(self, ranks: list[int]) -> dict[int, float]:
+        """The order statistics of ``ranks`` (ascending, 0-based) within the relative accuracy, read in one walk
+        over the bins (most negative first): each is its bin's representative clamped to [min, max], the maximum
+        beyond the last bin."""
         g = self._gamma
-        seen, rank, first = 0, lo, None
+        out: dict[int, float] = {}
+        seen, i = 0, 0
         for sign, store in ((-1.0, self.neg), (0.0, {0: self.zeros}), (1.0, self.pos)):
             for k in sorted(store, reverse=sign < 0):
                 seen += store[k]
-                while seen > rank:  # this bin holds rank lo (then, perhaps, hi as well)
+                if i < len(ranks) and seen > ranks[i]:
                     v = self._clamp(sign * 2.0 * g**k / (g + 1.0))
-                    if first is not None:
-                        return first, v
-                    first, rank = v, hi
-        return (self.vmax if first is None else first), self.vmax
+                    while i < len(ranks) and seen > ranks[i]:
+                        out[ranks[i]] = v
+                        i += 1
+                    if i == len(ranks):
+                        return out
+        for r in ranks[i:]:
+            out[r] = self.vmax
+        return out
 
     def _clamp(self, v: float) -> float:
         return min(max(v, self.vmin), self.vmax)
@@ -338,51 +350,13 @@ class LogSketch:
         """(count, min, mean, max, p50, p_high) like one column of :func:`summarize`."""
         if self.count == 0:
             return (0.0, math.nan, math.nan, math.nan, math.nan, math.nan)
-        return (float(self.count), self.vmin, self.mean, self.vmax, self.quantile(0.5),
-                self.quantile(high_percentile / 100.0))
+        p50, p_high = self.quantiles((0.5, high_percentile / 100.0))
+        return (float(self.count), self.vmin, self.mean, self.vmax, p50, p_high)
 
 
 def sketch_summaries(sketches: Sequence[LogSketch], high_percentile: float = 95.0) -> FloatArray:
-    """:meth:`LogSketch.summary` of each sketch: array (6, len(sketches)) with rows :data:`STAT_FIELDS`, the same
-    numbers bit for bit, each sketch's bins sorted and walked once for both percentiles (rather than once per
-    percentile)."""
+    """:meth:`LogSketch.summary` of each sketch: array (6, len(sketches)) with rows :data:`STAT_FIELDS`."""
     if not 0.0 < high_percentile < 100.0:
         raise RollupError(f"high percentile {high_percentile!r} must be within (0, 100)")
-    out: list[tuple[float, float, float, float, float, float]] = []
-    qs = (0.5, high_percentile / 100.0)
-    for sk in sketches:
-        if sk.count == 0:
-            out.append((0.0, math.nan, math.nan, math.nan, math.nan, math.nan))
-            continue
-        # as LogSketch.quantile: position q·(count − 1) between the order statistics of ranks lo and hi
-        spans = []
-        for q in qs:
-            pos = q * (sk.count - 1)
-            lo = math.floor(pos)
-            spans.append((pos, lo, lo + 1 if pos > lo else lo))
-        at = _values_at_ranks(sk, sorted({r for _, lo, hi in spans for r in (lo, hi)}))
-        p50, p_high = (at[lo] if pos == lo else at[lo] + (pos - lo) * (at[hi] - at[lo]) for pos, lo, hi in spans)
-        out.append((float(sk.count), sk.vmin, sk.mean, sk.vmax, p50, p_high))
-    return np.array(out, dtype=np.float64).reshape(-1, len(STAT_FIELDS)).T
-
-
-def _values_at_ranks(sk: LogSketch, ranks: list[int]) -> dict[int, float]:
-    """The order statistics of ``ranks`` (ascending, 0-based) within the sketch's relative accuracy, in one walk
-    over its bins (most negative first): each is its bin's representative clamped to [min, max], the maximum beyond
-    the last bin — the values :meth:`LogSketch._at_ranks` reads."""
-    g = sk._gamma
-    out: dict[int, float] = {}
-    seen, i = 0, 0
-    for sign, store in ((-1.0, sk.neg), (0.0, {0: sk.zeros}), (1.0, sk.pos)):
-        for k in sorted(store, reverse=sign < 0):
-            seen += store[k]
-            if i < len(ranks) and seen > ranks[i]:
-                v = sk._clamp(sign * 2.0 * g**k / (g + 1.0))
-                while i < len(ranks) and seen > ranks[i]:
-                    out[ranks[i]] = v
-                    i += 1
-                if i == len(ranks):
-                    return out
-    for r in ranks[i:]:
-        out[r] = sk.vmax
-    return out
+    return np.array([sk.summary(high_percentile) for sk in sketches], dtype=np.float64).reshape(
+        -1, len(STAT_FIELDS)).T
