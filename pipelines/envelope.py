@@ -85,7 +85,7 @@ import numpy.typing as npt
 from edgevib.pipelines import _fft
 from edgevib.pipelines.detection import GUARD_LINES, LEVEL_LINES, LEVEL_RANK, LEVEL_STEP, level_mean_factor
 from edgevib.pipelines.indicators import as_channels, finite_mean
-from edgevib.pipelines.spectrum import band_lines, window_offsets
+from edgevib.pipelines.spectrum import band_lines, hann_lines, window_offsets
 from edgevib.pipelines.types import PlanError
 
 __all__ = [
@@ -220,15 +220,10 @@ def envelope_spectra(z: npt.NDArray[np.complexfloating[Any, Any]], n_samples: in
     spec = _fft.rfft(both)
     del both, e
     mean_line = spec[:, 1, 0].real.astype(np.float64)
-    # the Hann lines of both rows as G = X[k−1] + X[k+1] − 2 X[k] = −4 × (½ X[k] − ¼ (X[k−1] + X[k+1])) — exactly
-    # −4 times :func:`edgevib.pipelines.spectrum.hann_lines` (scaling by a power of two commutes with rounding) in
-    # three passes; the factor 4 goes into the scale factors below (powers of two again: the same values)
+    # the Hann lines of both rows times −4, G = X[k−1] + X[k+1] − 2 X[k] (no multiplying pass); the factor goes into
+    # the scale factors below (powers of two: the same values as scaling the lines first)
     s = min(stop, m // 2)
-    x = spec[..., : s + 1]
-    g = np.empty((c, 2, s), dtype=spec.dtype)
-    np.add(x[..., : s - 1], x[..., 2:], out=g[..., 1:])
-    g[..., 0] = x[..., 1].real * 2.0  # X[−1] + X[1] = 2 Re X[1] for a real frame
-    np.subtract(g, x[..., :s] * 2.0, out=g)
+    g = hann_lines(spec, s, scale=-4.0)
     amp: FloatArray = np.multiply(np.abs(g[:, 0]), 2.0 / n_samples, dtype=np.float64)  # 8/N × |G|/4
     # |G|²/16 from the components in double precision (exact squares of single-precision values)
     parts = np.multiply(g[:, 1].view(real).reshape(c, s, 2), 0.25, dtype=np.float64)

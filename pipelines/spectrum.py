@@ -59,27 +59,33 @@ SUBSYNCHRONOUS = (0.35, 0.49)  # ratios of a sub-synchronous line (cage, oil whi
 SPEED_RELATED_PROMINENCE = 2.0  # ... standing this far (6 dB) over its floor
 
 
-def hann_lines(spec: npt.NDArray[Any], stop: int) -> npt.NDArray[Any]:
+def hann_lines(spec: npt.NDArray[Any], stop: int, *, scale: float = 1.0) -> npt.NDArray[Any]:
     """Lines ``0 .. stop-1`` of the periodic-Hann-windowed spectrum, from the unwindowed rfft ``spec``.
 
     Parameters
     ----------
-    spec : ndarray, shape (channels, N//2 + 1), complex
-        ``numpy.fft.rfft`` of the unwindowed frames.
+    spec : ndarray, shape (..., N//2 + 1), complex
+        ``numpy.fft.rfft`` of the unwindowed frames (along the last axis).
     stop : int
         number of lines wanted, 2 ≤ stop ≤ N//2.
+    scale : float
+        a factor applied to the result.  The lines are formed as X[k−1] + X[k+1] − 2 X[k] (−4 × the Hann lines)
+        and multiplied by −``scale``/4: ``scale=-4`` returns that sum itself, without the multiplying pass (for a
+        caller that folds the factor into one of its own).  Scaling by a power of two commutes with rounding, so
+        the default gives the same values as ½ X[k] − ¼ (X[k−1] + X[k+1]).
 
     Returns
     -------
-    ndarray, shape (channels, stop), complex — equal to ``rfft(x * w)[:, :stop]`` with
+    ndarray, shape (..., stop), complex — equal to ``scale × rfft(x * w)[..., :stop]`` with
     ``w[n] = 0.5 − 0.5 cos(2πn/N)``.
     """
-    ext = spec[:, : stop + 1]
-    out = np.empty((spec.shape[0], stop), dtype=spec.dtype)
-    np.add(ext[:, : stop - 1], ext[:, 2 : stop + 1], out=out[:, 1:])  # X[k-1] + X[k+1]
-    out[:, 0] = np.conj(ext[:, 1]) + ext[:, 1]  # X[-1] = conj(X[1]) for a real frame
-    out *= -0.25
-    out += 0.5 * ext[:, :stop]
+    ext = spec[..., : stop + 1]
+    out = np.empty((*spec.shape[:-1], stop), dtype=spec.dtype)
+    np.add(ext[..., : stop - 1], ext[..., 2 : stop + 1], out=out[..., 1:])  # X[k-1] + X[k+1]
+    out[..., 0] = ext[..., 1].real * 2.0  # X[-1] + X[1] = 2 Re X[1] for a real frame
+    np.subtract(out, ext[..., :stop] * 2.0, out=out)
+    if scale != -4.0:
+        out *= -0.25 * scale
     return out
 
 
