@@ -686,11 +686,10 @@ def _modulation_explains(index: IntArray, found: BoolArray, significant: BoolArr
         return carried
     k_b = index[:, :, 0]
     explained = np.zeros((c, nf, nf, harmonics), dtype=bool)
-    h_slot, sb_slot, h_with, starts = _sideband_pairs(harmonics)
+    h_slot, sb_slot, scale, h_with, starts = _sideband_pairs(harmonics)
     if h_slot.size:
         # every pair (harmonic h of A, sideband ± j of B, j ≤ h) at once: slot 0 is the fundamental, slot h − 1
         # harmonic h, which lies at h / j times that sideband's spacing (± h / j lines: the spacing's ± 1 scaled)
-        scale = _sideband_scale(harmonics)
         spacing = np.where(found[:, :, sb_slot] & (k_b >= 0)[..., None],
                            np.abs(index[:, :, sb_slot] - k_b[..., None]), -10)  # (c, B, pairs)
         hit = found[:, :, None, h_slot] & (np.abs(spacing[:, None] * scale - index[:, :, None, h_slot]) <= scale)
@@ -709,23 +708,17 @@ def _pairs(harmonics: int) -> list[tuple[int, int, float]]:
 
 
 @lru_cache(maxsize=16)
-def _sideband_scale(harmonics: int) -> FloatArray:
-    """h / j of each pair of :func:`_sideband_pairs`: where harmonic h lies, in spacings of its sideband ± j."""
-    out = np.array([p[2] for p in _pairs(harmonics)], dtype=np.float64)
-    out.flags.writeable = False
-    return out
-
-
-@lru_cache(maxsize=16)
-def _sideband_pairs(harmonics: int) -> tuple[IntArray, IntArray, IntArray, IntArray]:
+def _sideband_pairs(harmonics: int) -> tuple[IntArray, IntArray, FloatArray, IntArray, IntArray]:
     """The (harmonic, sideband) slot pairs of :func:`_modulation_explains` — harmonic h (h up to the highest
-    sideband order examined) with the sidebands of order ± j, j ≤ h — grouped by harmonic: each pair's harmonic slot
-    and sideband slot, the harmonics (slot numbers) that have pairs and where each one's pairs start."""
+    sideband order examined) with the sidebands of order ± j, j ≤ h — grouped by harmonic: each pair's harmonic slot,
+    sideband slot and h / j (where harmonic h lies, in spacings of its sideband ± j), the harmonics (slot numbers)
+    that have pairs and where each one's pairs start."""
     pairs = _pairs(harmonics)
     h_slot = np.array([p[0] for p in pairs], dtype=np.intp)
     sb_slot = np.array([p[1] for p in pairs], dtype=np.intp)
+    scale = np.array([p[2] for p in pairs], dtype=np.float64)
     h_with, starts = np.unique(h_slot, return_index=True)
-    out = (h_slot, sb_slot, h_with.astype(np.intp), starts.astype(np.intp))
+    out = (h_slot, sb_slot, scale, h_with.astype(np.intp), starts.astype(np.intp))
     for a in out:
         a.flags.writeable = False
     return out
