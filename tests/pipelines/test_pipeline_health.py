@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 import scipy.io
 
-from edgevib.pipelines.health import HealthSpec, _medians, _spike_screen, check_health
+from edgevib.pipelines.health import HealthSpec, _medians, _nearest_distance, _spike_screen, check_health
 
 
 def _rows(kind: str, rows: int, n: int, rng: np.random.Generator) -> np.ndarray:
@@ -41,6 +41,18 @@ def test_row_medians_equal_numpys_median(kind: str, n: int) -> None:
     assert np.array_equal(got, np.median(x, axis=1, keepdims=True))
     dev = np.abs(x - got)
     assert np.array_equal(_medians(dev, np.empty(x.shape, dtype=np.bool_)), np.median(dev, axis=1, keepdims=True))
+
+
+@pytest.mark.parametrize("kind", ["gaussian", "quantized", "constant", "impacts", "half-constant", "sorted"])
+@pytest.mark.parametrize(("m", "k"), [(1024, 462), (1024, 0), (1024, 1023), (256, 100), (7, 3)])
+def test_nearest_distance_equals_the_order_statistic_of_sorted_distances(kind: str, m: int, k: int) -> None:
+    # reference: numpy.sort of |sub − centre| taken at rank k; equal values, not close (the spike screen's MAD
+    # bound is built from them), with the centre a sample of the row as the screen takes it and one that is not
+    rng = np.random.default_rng(m + k)
+    sub = np.sort(_rows(kind, 4, m, rng), axis=1)
+    for centre in (sub[:, m // 2], sub[:, m // 2] + 0.37):
+        expected = np.sort(np.abs(sub - centre[:, None]), axis=1)[:, k]
+        assert np.array_equal(_nearest_distance(sub, centre, k), expected)
 
 
 def test_spike_verdicts_match_a_direct_median_and_mad_count() -> None:
