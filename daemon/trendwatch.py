@@ -133,14 +133,23 @@ def trend_settings(table: TrendConfig) -> TrendSettings:
 # --------------------------------------------------------------------------------------------- helpers
 
 
+def _readers(names: Sequence[str]) -> tuple[Callable[[FrameResult], float | None], ...]:
+    """The value readers of scalar indicators ``names``, in order (:meth:`Indicator.value` without its check)."""
+    for name in names:
+        if LIMITABLE[name].read is None:
+            raise TypeError(f"{name} is a per-{LIMITABLE[name].per} indicator: it has no single value")
+    return tuple(LIMITABLE[name].read for name in names)  # type: ignore[misc]  # every read checked just above
+
+
+_HISTORY_READERS = _readers(HISTORY_INDICATORS)  # frame_values of the history layout: read per frame
+
+
 def frame_values(result: FrameResult, names: Sequence[str] = HISTORY_INDICATORS) -> np.ndarray:
     """The frame's values of ``names`` (NaN where an indicator is unavailable)."""
-    out = np.full(len(names), math.nan)
-    for i, name in enumerate(names):
-        v = LIMITABLE[name].value(result)
-        if v is not None and math.isfinite(v):
-            out[i] = v
-    return out
+    readers = _HISTORY_READERS if names is HISTORY_INDICATORS else _readers(names)
+    nan, isfinite = math.nan, math.isfinite
+    return np.array([nan if (v := read(result)) is None or not isfinite(v) else v for read in readers],
+                    dtype=np.float64)
 
 
 def running_state(velocity_rms_mm_s: float | None, shaft_hz: float | None, shaft_estimated: bool,
