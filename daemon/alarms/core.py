@@ -332,6 +332,9 @@ class AlarmCore:
         for lim in settings.limits:
             by_point.setdefault(lim.point, []).append(lim)
         self.by_point = {k: tuple(v) for k, v in by_point.items()}
+        # per limit, fixed by the configuration: how its value is read from a frame, whether it learns a baseline
+        self._read = {key: _reader(lim.indicator) for key, lim in self.limits.items()}
+        self._learns = frozenset(key for key, lim in self.limits.items() if lim.needs_baseline)
         self.source_states: dict[str, SourceState] = {}  # as announced (durable)
         self.conn: dict[str, bool] = {}  # live connection state of each source
         self.conn_changes: deque[tuple[str, bool, float]] = deque()  # announced on the next tick
@@ -442,9 +445,11 @@ class AlarmCore:
         self.last_frame[pid] = t_s
         self.restored_frames.discard(pid)
         source = self.points[pid].source
-        if self.source_states.get(source, SourceState()).down and self._connected(source):
+        announced = self.source_states.get(source)
+        if announced is not None and announced.down and self._connected(source):
             self._source_up(source, now.wall, "data flows again", now, eff)  # a frame of a source announced down
-        still_down = self.source_states.get(source, SourceState()).down
+            announced = self.source_states.get(source)
+        still_down = announced is not None and announced.down
         if not still_down:
             self.stale.pop(pid, None)
         sensor = self._sensor(r, t_s, eff)
@@ -467,7 +472,7 @@ class AlarmCore:
     def _limit(self, r: FrameResult, lim: LimitConfig, t_s: float, reason: str | None, still_down: bool, now: Now,
                eff: Effects) -> None:
         key = lim.key
-        value = LIMITABLE[lim.indicator].value(r)
+        value = self._read[key](r)
         if value is None or not math.isfinite(value):
             if reason is None:
                 return
@@ -477,8 +482,11 @@ class AlarmCore:
         else:
             self.values.pop(key, None)
         if reason is None:
-            self.trends.setdefault(key, deque(maxlen=self.settings.table.trend_frames)).append((t_s, value))
-            if lim.needs_baseline:
+            trend = self.trends.get(key)
+            if trend is None:
+                trend = self.trends[key] = deque(maxlen=self.settings.table.trend_frames)
+            trend.append((t_s, value))
+            if key in self._learns:
                 b = self.baselines.get(key, Baseline())
                 if not b.learned:
                     nb = b.add(value, t_s, self.settings.table.baseline_frames)
@@ -502,7 +510,7 @@ class AlarmCore:
 
     def _sensor(self, r: FrameResult, t_s: float, eff: Effects) -> SensorState:
         pid, h = r.point_id, r.health
-        s = replace(self.sensors.get(pid, SensorState()), last_frame_s=t_s)
+        s = _at_frame(self.sensors.get(pid, _NEW_SENSOR), t_s)
         if s.fault == "no-data":  # frames flow again
             s = replace(s, fault=None, detail="", since_s=t_s, healthy_run=0)
             self._sensor_event(pid, r.machine_id, "cleared", "no-data", "frames arrive again", r.t_end_ns, eff)
@@ -895,6 +903,24 @@ class AlarmCore:
         eff.reply = {"changed": changed, "events": len(eff.events)}
         if left:
             eff.reply["not_acknowledged"] = left
+
+
+_NEW_SENSOR = SensorState()  # frozen: shared by every point not yet seen
+
+
+def _at_frame(s: SensorState, t_s: float) -> SensorState:
+    """``replace(s, last_frame_s=t_s)`` without its generic field walk (every frame of every point makes one;
+    tests/alarms check it against ``dataclasses.replace`` field by field)."""
+    return SensorState(fault=s.fault, detail=s.detail, since_s=s.since_s, healthy_run=s.healthy_run, last_frame_s=t_s,
+                       relapses=s.relapses, machine_state=s.machine_state, machine_since_s=s.machine_since_s)
+
+
+def _reader(indicator: str) -> Callable[[FrameResult], float | None]:
+    """How a limit's scalar indicator is read from a frame (:meth:`Indicator.value` without its check per call)."""
+    read = LIMITABLE[indicator].read
+    if read is None:
+        raise TypeError(f"{indicator} is a per-{LIMITABLE[indicator].per} indicator: use values()")
+    return read
 
 
 def _relapse_hold_s(relapses: int) -> float:

@@ -10,6 +10,7 @@ from __future__ import annotations
 import ast
 import asyncio
 import copy
+import dataclasses
 import json
 import threading
 from collections.abc import Callable
@@ -33,6 +34,7 @@ from edgevib.daemon.alarms.core import (
 )
 from edgevib.daemon.alarms.engine import AlarmLayer
 from edgevib.daemon.alarms.feed import ALARM_TYPE
+from edgevib.daemon.alarms.state import SensorState
 from edgevib.pipelines.health import SensorHealth
 
 POINT, MACHINE = "P-101-DE-H", "P-101"
@@ -111,6 +113,15 @@ def test_the_core_module_does_no_io() -> None:
                                 "random", "uuid", "pathlib", "concurrent"}), imported
     calls = {n.func.id for n in ast.walk(tree) if isinstance(n, ast.Call) and isinstance(n.func, ast.Name)}
     assert "open" not in calls and "print" not in calls
+
+
+def test_a_frame_time_keeps_every_other_sensor_field() -> None:
+    # The per-frame shortcut equals dataclasses.replace (the standard library's reference) field by field, on a
+    # state where every field differs from its default: a field added to SensorState and forgotten there fails.
+    values = ("flatline", "stuck", 12.5, 3, 40.0, 2, "coasting", 7.5)
+    s = SensorState(**{f.name: v for f, v in zip(dataclasses.fields(SensorState), values, strict=True)})
+    assert all(getattr(s, f.name) != f.default for f in dataclasses.fields(SensorState))
+    assert core_module._at_frame(s, 99.25) == dataclasses.replace(s, last_frame_s=99.25)
 
 
 @settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
