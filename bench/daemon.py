@@ -32,6 +32,8 @@ Each row (one per instance) reports, over the measurement window after a warm-up
   growth from the daemon's construction to the window's end, ÷ its channels);
 * ``publisher_cores``: CPU of all publisher processes together (the load generator's own cost, for context);
 * diagnostics: ``slow_frames`` over 250 ms and in how many distinct seconds they fell (one stall or many),
+  ``slow_at_s`` those seconds counted from the window's start (a stall at 0 s or at the end: the window's own
+  ``/metrics`` scrapes), ``lag_at_s`` when the event loop was unresponsive for more than 100 ms,
   ``loop_lag_max_ms`` the longest the event loop was unresponsive, ``thread_cores`` CPU per thread,
   ``faults_per_frame`` the daemon process's minor page faults per analysed frame (memory handed back to the
   system and faulted in again: see ``--keep-freed-memory``), ``exposition_ms`` the CPU time of encoding the whole
@@ -416,6 +418,8 @@ class Row:
     slow_frames: int
     slow_seconds: int
     loop_lag_max_ms: float
+    slow_at_s: list[int]
+    lag_at_s: list[float]
     thread_cores: dict[str, float]
     publish_lag_p99_ms: float = math.nan
     publisher_cores: float = math.nan
@@ -574,6 +578,9 @@ async def _run_instance(spec: InstanceSpec, out: Any, ctl: Any) -> Row:
         mem_per_channel_mb=round((rss_end - rss_base) / max(1, own), 3), seconds=round(wall_s, 1),
         slow_frames=len(slow), slow_seconds=len({t // 1_000_000_000 for t in slow}),
         loop_lag_max_ms=round(max(loop_lag), 1),
+        slow_at_s=sorted({(t - window_start_ns) // 1_000_000_000 for t in slow}),
+        lag_at_s=[round((t - window_start_ns) / 1e9, 2) for t, g in lags
+                  if window_start_ns <= t < window_end_ns and g > 100.0],
         thread_cores={k: round((v - threads0.get(k, 0.0)) / wall_s, 2) for k, v in threads1.items()},
         faults_per_frame=round((faults1 - faults0) / max(1, len(window)), 1),
         exposition_ms=round(exposition_ms, 1), exposition_ref_ms=round(exposition_ref_ms, 1))

@@ -33,6 +33,9 @@ def test_daemon_bench_two_channels() -> None:
         assert row[key] > 0, (key, row)
     assert row["latency_p99_ms"] >= row["latency_p50_ms"]
     assert row["rejected"] == 0  # the load generator's blocks are valid wire-format blocks
+    # the stall diagnostics: one entry per distinct slow second, all within the 2 s window
+    assert len(row["slow_at_s"]) == row["slow_seconds"]
+    assert all(0 <= s < 3 for s in row["slow_at_s"]) and all(0 <= s < 3 for s in row["lag_at_s"])
     assert report["block_samples"] == 16384 and report["fs_hz"] == 25600.0
 
 
