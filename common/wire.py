@@ -40,6 +40,7 @@ from __future__ import annotations
 
 import base64
 import binascii
+import functools
 import json
 import math
 import operator
@@ -73,16 +74,19 @@ WIRE_VERSION = 1
 DEFAULT_MAX_PAYLOAD_BYTES = 4 * 1024 * 1024
 DEFAULT_MAX_SAMPLES = 262_144
 MAX_SENSOR_ID_BYTES = 128
+MAX_FS_HZ = 10_000_000.0
 UNITS: tuple[str, ...] = ("g", "m/s2")
 
 _MAGIC = b"EVB"
 _HEADER = struct.Struct("<4sBBHQqdfI")  # 40 bytes
+_HEADER_BYTES = _HEADER.size
 _DTYPE_F32 = 1
 _DTYPE_I16 = 2
 _JSON_KEYS = frozenset({"v", "sensor", "seq", "t0_ns", "fs_hz", "unit", "encoding", "data", "scale"})
 _ENCODINGS = ("f32le-b64", "i16le-b64", "array")
 _F32_TINY = float(np.finfo(np.float32).tiny)
 _FLOAT_DTYPES = (np.dtype(np.float32), np.dtype(np.float64))  # dtype objects: compared without a conversion
+_F32_LE, _I16_LE = np.dtype("<f4"), np.dtype("<i2")  # built once: a dtype string is parsed at every use
 _CONTROL_CHARS = re.compile(r"[\x00-\x1f]")  # C0 control characters (code points below 32)
 
 
@@ -147,7 +151,8 @@ class Block:
     @property
     def end_ns(self) -> int:
         """Time just after the last sample (the next block's expected ``t0_ns``)."""
-        return self.t0_ns + round(self.n_samples * 1e9 / self.fs_hz)
+        n: int = self.samples.shape[0]  # (n_samples without its call)
+        return self.t0_ns + round(n * 1e9 / self.fs_hz)
 
 
 # --------------------------------------------------------------------------------------------- encoding
@@ -260,15 +265,18 @@ def decode(payload: bytes | bytearray | memoryview, *, max_bytes: int = DEFAULT_
     WireError
         (one of its subclasses) for every way the payload can be invalid; nothing else escapes.
     """
-    try:
-        data = bytes(payload)
-    except (TypeError, ValueError) as exc:
-        raise MalformedPayload(f"payload is not bytes: {exc}") from exc
+    if type(payload) is bytes:  # as received: a float32 block's samples are a view of it, no copy
+        data = payload
+    else:
+        try:
+            data = bytes(payload)
+        except (TypeError, ValueError) as exc:
+            raise MalformedPayload(f"payload is not bytes: {exc}") from exc
     if len(data) > max_bytes:
         raise PayloadTooLarge(f"payload of {len(data)} bytes exceeds the limit of {max_bytes} bytes")
     if not data:
         raise MalformedPayload("empty payload")
-    if data[:3] == _MAGIC:
+    if data.startswith(_MAGIC):
         block = _decode_binary(data, max_samples)
     elif data.lstrip()[:1] == b"{":
         block = _decode_json(data, max_samples)
@@ -296,7 +304,7 @@ def _check_fs(fs: object) -> float:
         raise InvalidSampleRate(f"fs_hz {fs!r} does not fit a float") from None
     if not math.isfinite(fs_f) or fs_f <= 0:
         raise InvalidSampleRate(f"fs_hz {fs!r} must be finite and > 0")
-    if fs_f > 10_000_000:
+    if fs_f > MAX_FS_HZ:
         raise InvalidSampleRate(f"fs_hz {fs_f:g} is above the 10 MHz limit")
     return fs_f
 
@@ -334,13 +342,25 @@ def _finish(sid: str, seq: int, t0_ns: int, fs: float, unit: str, samples: npt.N
     return Block(sensor_id=sid, seq=seq, t0_ns=t0_ns, fs_hz=fs, unit=unit, samples=x)
 
 
+@functools.lru_cache(maxsize=4096)
+def _binary_sensor_id(raw: bytes) -> str:
+    """A binary block's sensor id from its UTF-8 bytes, checked; remembered, as a sensor sends the same id with
+    every block (a refused id raises every time: exceptions are not cached)."""
+    try:
+        sid = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise InvalidField("sensor id is not valid UTF-8") from exc
+    return _check_sensor_id(sid)
+
+
 def _decode_binary(data: bytes, max_samples: int) -> Block:
-    if len(data) < _HEADER.size:
-        raise LengthMismatch(f"binary block of {len(data)} bytes is shorter than its {_HEADER.size}-byte header")
+    size = len(data)
+    if size < _HEADER_BYTES:
+        raise LengthMismatch(f"binary block of {size} bytes is shorter than its {_HEADER_BYTES}-byte header")
     magic, code, unit_code, sid_len, seq, t0_ns, fs, scale, n = _HEADER.unpack_from(data)
     if magic[3] != WIRE_VERSION:
         raise UnsupportedVersion(f"binary block version {magic[3]} is not supported (expected {WIRE_VERSION})")
-    if code not in (_DTYPE_F32, _DTYPE_I16):
+    if code != _DTYPE_F32 and code != _DTYPE_I16:
         raise InvalidField(f"binary dtype code {code} is not 1 (float32) or 2 (int16)")
     if unit_code >= len(UNITS):
         raise InvalidField(f"binary unit code {unit_code} is not 0 (g) or 1 (m/s2)")
@@ -348,25 +368,21 @@ def _decode_binary(data: bytes, max_samples: int) -> Block:
         raise InvalidField(f"sensor id length {sid_len} is outside 1..{MAX_SENSOR_ID_BYTES}")
     if n > max_samples:
         raise LengthMismatch(f"block declares {n} samples, more than the limit of {max_samples}")
-    width = 4 if code == _DTYPE_F32 else 2
-    expected = _HEADER.size + sid_len + n * width
-    if len(data) != expected:
-        raise LengthMismatch(f"binary block declares {n} samples ({expected} bytes) but has {len(data)} bytes")
-    try:
-        sid = data[_HEADER.size:_HEADER.size + sid_len].decode("utf-8")
-    except UnicodeDecodeError as exc:
-        raise InvalidField("sensor id is not valid UTF-8") from exc
-    _check_sensor_id(sid)
-    fs_f = _check_fs(fs)
-    start = _HEADER.size + sid_len
+    start = _HEADER_BYTES + sid_len
+    expected = start + n * (4 if code == _DTYPE_F32 else 2)
+    if size != expected:
+        raise LengthMismatch(f"binary block declares {n} samples ({expected} bytes) but has {size} bytes")
+    sid = _binary_sensor_id(data[_HEADER_BYTES:start])
+    fs_f = fs if 0.0 < fs <= MAX_FS_HZ else _check_fs(fs)  # (a float from the header: _check_fs raises)
+    samples: npt.NDArray[Any]
     if code == _DTYPE_F32:
-        samples = np.frombuffer(data, dtype="<f4", count=n, offset=start)  # a view of the payload
+        samples = np.frombuffer(data, dtype=_F32_LE, count=n, offset=start)  # a view of the payload
     else:
         if not math.isfinite(scale) or scale == 0:
             raise InvalidField(f"int16 block scale {scale!r} must be finite and non-zero")
         with np.errstate(over="ignore"):
-            samples = np.frombuffer(data, dtype="<i2", count=n, offset=start).astype(np.float64) * float(scale)
-    return _finish(sid, int(seq), int(t0_ns), fs_f, UNITS[unit_code], samples, max_samples)
+            samples = np.frombuffer(data, dtype=_I16_LE, count=n, offset=start).astype(np.float64) * float(scale)
+    return _finish(sid, seq, t0_ns, fs_f, UNITS[unit_code], samples, max_samples)
 
 
 def _json_array(raw: Any, max_samples: int) -> np.ndarray:
