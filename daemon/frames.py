@@ -57,6 +57,16 @@ _F32Array = npt.NDArray[np.float32]  # subscripted once: a subscription per bloc
 _F32 = np.dtype(np.float32)  # compared per block as a dtype (a scalar type is converted at each comparison)
 
 
+def _decode_limits(max_payload_bytes: int) -> tuple[int, int]:
+    """``(max_bytes, max_samples)`` for decoding the payloads of a source with this size limit (also above the
+    codec's 4 MiB default): as many samples as a float32 block of that size can carry, never fewer than the codec's
+    default."""
+    return max_payload_bytes, max(DEFAULT_MAX_SAMPLES, max_payload_bytes // 4)
+
+
+_DEFAULT_DECODE_LIMITS = _decode_limits(DEFAULT_MAX_PAYLOAD_BYTES)
+
+
 def speed_limit_hz(machine: MachineConfig) -> float:
     """The highest speed-tag reading believed for ``machine``, Hz (see ``SPEED_MARGIN``)."""
     if "speed_range_rpm" in machine.model_fields_set:
@@ -143,6 +153,12 @@ class PointStream:
         self.frame = point.frame_samples
         self.hop = point.hop_samples
         self._ns_per_sample = 1e9 / point.fs_hz
+        # the point's figures that every block is checked against, read from its configuration once
+        self._point_id = point.id
+        self._fs_hz = point.fs_hz
+        self._fs_tolerance_hz = FS_TOLERANCE * point.fs_hz
+        self._block_samples = point.block_samples
+        self._half_block_ns = 0.5 * point.block_samples * self._ns_per_sample
         self._buf = np.empty(self.frame + point.block_samples, dtype=np.float32)
         self._whole_blocks = self.frame == point.block_samples and self.hop == self.frame
         self._fill = 0
@@ -158,27 +174,30 @@ class PointStream:
 
     def check(self, block: Block) -> tuple[str | None, str]:
         """``(reason, detail)`` when the block must be rejected; ``(None, "gap"|"restart"|"")`` otherwise."""
-        p = self.point
-        if abs(block.fs_hz - p.fs_hz) > FS_TOLERANCE * p.fs_hz:
-            return "wrong_sample_rate", f"block at {block.fs_hz:g} Hz, point configured for {p.fs_hz:g} Hz"
-        if block.n_samples != p.block_samples:
-            return "wrong_length", f"block of {block.n_samples} samples, point configured for {p.block_samples}"
-        if self.last_seq is None:
+        fs_hz = block.fs_hz
+        if abs(fs_hz - self._fs_hz) > self._fs_tolerance_hz:
+            return "wrong_sample_rate", f"block at {fs_hz:g} Hz, point configured for {self._fs_hz:g} Hz"
+        n = block.samples.shape[0]
+        if n != self._block_samples:
+            return "wrong_length", f"block of {n} samples, point configured for {self._block_samples}"
+        last_seq = self.last_seq
+        if last_seq is None:
             return None, "start"
-        half_block_ns = 0.5 * block.n_samples * self._ns_per_sample
-        timed = block.t0_ns != 0 and self.expected_t0_ns not in (None, 0)
-        dt_ns = block.t0_ns - self.expected_t0_ns if timed and self.expected_t0_ns is not None else 0
-        if block.seq == self.last_seq + 1:
-            if timed and abs(dt_ns) > half_block_ns:
-                return None, f"time jump of {dt_ns / 1e6:.1f} ms at consecutive seq {block.seq}"
+        seq, t0_ns, expected_ns = block.seq, block.t0_ns, self.expected_t0_ns
+        # (the block is as long as the point's blocks: half of it is the point's half block)
+        timed = t0_ns != 0 and expected_ns is not None and expected_ns != 0
+        dt_ns = t0_ns - expected_ns if timed and expected_ns is not None else 0
+        if seq == last_seq + 1:
+            if timed and abs(dt_ns) > self._half_block_ns:
+                return None, f"time jump of {dt_ns / 1e6:.1f} ms at consecutive seq {seq}"
             return None, ""
-        if block.seq > self.last_seq:
-            return None, f"seq gap {self.last_seq} -> {block.seq} ({block.seq - self.last_seq - 1} blocks missing)"
-        if timed and dt_ns > -half_block_ns:
-            return None, f"seq restarted {self.last_seq} -> {block.seq} with time moving forward (device restart)"
-        if block.seq == self.last_seq:
-            return "duplicate", f"seq {block.seq} received twice"
-        return "out_of_order", f"seq {block.seq} after {self.last_seq}"
+        if seq > last_seq:
+            return None, f"seq gap {last_seq} -> {seq} ({seq - last_seq - 1} blocks missing)"
+        if timed and dt_ns > -self._half_block_ns:
+            return None, f"seq restarted {last_seq} -> {seq} with time moving forward (device restart)"
+        if seq == last_seq:
+            return "duplicate", f"seq {seq} received twice"
+        return "out_of_order", f"seq {seq} after {last_seq}"
 
     def push(self, block: Block, received_ns: int, restart: bool, speed_hz: float | None = None) -> int:
         """Append a checked block (``speed_hz``: the machine's known speed now); returns how many queued frames
@@ -197,14 +216,14 @@ class PointStream:
             t_end = self._base_t0_ns + round((self._consumed + self.frame) * self._ns_per_sample)
             self._consumed += self.hop
             whole = cast(_F32Array, x)  # (checked just above: float32 and read-only)
-            return self._enqueue(FrameJob(self.point.id, whole, t_end, received_ns, speed_hz))
+            return self._enqueue(FrameJob(self._point_id, whole, t_end, received_ns, speed_hz))
         self._buf[self._fill:self._fill + n] = x
         self._fill += n
         while self._fill >= self.frame:
             frame = self._buf[:self.frame].copy()
             frame.flags.writeable = False
             t_end = self._base_t0_ns + round((self._consumed + self.frame) * self._ns_per_sample)
-            dropped += self._enqueue(FrameJob(self.point.id, frame, t_end, received_ns, speed_hz))
+            dropped += self._enqueue(FrameJob(self._point_id, frame, t_end, received_ns, speed_hz))
             rest = self._fill - self.hop
             self._buf[:rest] = self._buf[self.hop:self._fill]
             self._fill = rest
@@ -292,6 +311,7 @@ class BlockIngest:
             s.name: s.sensor_topic_level if isinstance(s, MqttSourceConfig) else None for s in config.sources}
         self.max_payload_bytes: dict[str, int] = {
             s.name: s.max_payload_bytes for s in config.sources if isinstance(s, MqttSourceConfig)}
+        self._decode_limits = {name: _decode_limits(b) for name, b in self.max_payload_bytes.items()}
         self.speed_tags: dict[tuple[str, str], list[tuple[str, SpeedTag]]] = {}
         self.speed_limit_hz = {m.id: speed_limit_hz(m) for m in config.machines}
         self.points_of: dict[str, list[str]] = {}
@@ -312,12 +332,11 @@ class BlockIngest:
     # -- Ingest protocol
 
     def payload(self, source: str, topic: str | None, payload: bytes, received_ns: int) -> None:
-        Stats.inc(self.stats.blocks_received, source)
-        max_bytes = self.max_payload_bytes.get(source, DEFAULT_MAX_PAYLOAD_BYTES)
+        received = self.stats.blocks_received
+        received[source] = received.get(source, 0) + 1
+        max_bytes, max_samples = self._decode_limits.get(source, _DEFAULT_DECODE_LIMITS)
         try:
-            # the source's own size limit (also above the codec's 4 MiB default), and as many samples as a
-            # float32 block of that size can carry
-            block = decode(payload, max_bytes=max_bytes, max_samples=max(DEFAULT_MAX_SAMPLES, max_bytes // 4))
+            block = decode(payload, max_bytes=max_bytes, max_samples=max_samples)
         except WireError as exc:
             self.reject(source, exc.reason, str(exc), topic)
             return
