@@ -194,6 +194,8 @@ READ_CHUNK = 256 * 1024
 """Bytes taken from the socket by one read (as asyncio's own transports do)."""
 MAX_READS = 16
 """Reads of :data:`READ_CHUNK` in one turn of the event loop before the other callbacks get theirs."""
+_ONE_BYTE = tuple(bytes((b,)) for b in range(256))
+"""Every one-byte string, made once: paho reads a packet's type and each byte of its length one at a time."""
 
 
 class _ChunkedReader:
@@ -202,8 +204,9 @@ class _ChunkedReader:
     rest) are served from that chunk, without a system call (and a release of the interpreter lock) each.
 
     Everything but reading goes to the socket itself.  The chunk is read into one buffer allocated once (no
-    allocation and no fresh pages per read); ``recv`` returns views of it, which paho appends to its packet buffer
-    at once: none is left when the next chunk is read, after paho's read has returned."""
+    allocation and no fresh pages per read); ``recv`` returns views of it (a one-byte read: the byte, from a table),
+    which paho appends to its packet buffer at once: none is left when the next chunk is read, after paho's read
+    has returned."""
 
     __slots__ = ("_buf", "_end", "_eof", "_error", "_pos", "_view", "full", "sock")
 
@@ -239,15 +242,22 @@ class _ChunkedReader:
         """Bytes left in the chunk, or an end of stream or an error not yet reported to paho."""
         return self._pos < self._end or self._eof or self._error is not None
 
-    def mark(self) -> tuple[int, int, bool]:
-        return self._pos, self._end, self._error is None
+    def mark(self) -> int:
+        """Where paho is in the chunk: changes when paho takes bytes or the error (the chunk is not refilled
+        meanwhile: only :meth:`fill` moves its end)."""
+        return self._pos if self._error is None else -1
 
     def recv(self, n: int) -> Any:
-        pos = self._pos
-        if pos < self._end:
-            end = min(pos + n, self._end)
-            self._pos = end
-            return self._view[pos:end]
+        pos, end = self._pos, self._end
+        if pos < end:
+            if n == 1:  # a packet's type or a byte of its length: no view made for it
+                self._pos = pos + 1
+                return _ONE_BYTE[self._buf[pos]]
+            stop = pos + n
+            if stop > end:
+                stop = end
+            self._pos = stop
+            return self._view[pos:stop]
         if self._error is not None:
             exc, self._error = self._error, None
             raise exc
