@@ -75,7 +75,7 @@ def test_every_packet_arrives_whole_and_in_order(step: int) -> None:
     client.on_message = link._cb_message
     sock = _Trickle(stream, step)
     reader = _ChunkedReader(sock)
-    client._sock = reader  # type: ignore[assignment]  # as MqttLink wraps paho's socket when it opens
+    client._sock = reader  # as MqttLink wraps paho's socket when it opens
     link._paho, link._fd = client, sock.fileno()
     for _ in range(len(stream) + 10):  # one call per readiness of the socket
         link._on_readable()
