@@ -53,7 +53,7 @@ import dataclasses
 import gc
 import math
 import time
-from collections import deque
+from collections import Counter, deque
 from collections.abc import Callable, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -147,6 +147,11 @@ class _Part(FrameSink, Reconfigurable, Protocol):
     """A sink that takes a new configuration on reload."""
 
 
+def point_counts(results: Sequence[FrameResult]) -> dict[str, int]:
+    """Results per point, in the order the points first come."""
+    return Counter(r.point_id for r in results)
+
+
 class SinkChannel:
     """The delivery queue and task of one sink (see the module docstring for ordering and bounds)."""
 
@@ -160,7 +165,11 @@ class SinkChannel:
         self.rlog = rlog
         self._on_delivered = on_delivered
         self._fifo: deque[FrameResult] = deque()  # lossless
-        self._per_point: dict[str, deque[FrameResult]] = {}  # lossy, insertion-ordered
+        # lossy: the batches put since the last hand-over, each point's undelivered results in them, and how many of
+        # each point's oldest ones were dropped (skipped when they are handed over)
+        self._pending: list[list[FrameResult]] = []
+        self._held: dict[str, int] = {}
+        self._skip: dict[str, int] = {}
         self._queued = 0
         self._busy = 0  # results inside the current on_frames call
         self._event = asyncio.Event()
@@ -171,40 +180,53 @@ class SinkChannel:
         """Results queued or being handed over."""
         return self._queued + self._busy
 
-    def put(self, results: list[FrameResult]) -> None:
+    def put(self, results: list[FrameResult], counts: Mapping[str, int] | None = None) -> None:
+        """Queue a batch; ``counts``: its results per point (:func:`point_counts`, made once for every sink)."""
         if self.lossless:
             self._fifo.extend(results)
             self._queued += len(results)
         else:
-            per_point = self._per_point
-            new: dict[str, int] = {}
-            for r in results:
-                pid = r.point_id
-                new[pid] = new.get(pid, 0) + 1
-                q = per_point.get(pid)
-                if q is None:
-                    q = per_point[pid] = deque()
-                q.append(r)
+            new = point_counts(results) if counts is None else counts
+            self._pending.append(results)
             self._queued += len(results)
-            for pid, n_new in new.items():  # a batch is kept whole (a sink that keeps up misses nothing)
-                q = per_point[pid]
-                if len(q) <= SINK_BACKLOG_PER_POINT:  # the usual case: nothing to drop
-                    continue
-                excess = len(q) - max(SINK_BACKLOG_PER_POINT, n_new)
-                for _ in range(excess):
-                    q.popleft()
-                if excess > 0:
-                    self._queued -= excess
-                    Stats.inc(self.stats.sink_dropped, (self.name, pid), excess)
+            held = self._held
+            if not held:  # the usual case, a sink that keeps up: a batch alone is kept whole
+                self._held = dict(new)
+            else:
+                for pid, n_new in new.items():  # a batch is kept whole (a sink that keeps up misses nothing)
+                    n = held.get(pid, 0) + n_new
+                    excess = n - max(SINK_BACKLOG_PER_POINT, n_new)
+                    if excess > 0:  # the point's oldest undelivered results go
+                        n -= excess
+                        self._skip[pid] = self._skip.get(pid, 0) + excess
+                        self._queued -= excess
+                        Stats.inc(self.stats.sink_dropped, (self.name, pid), excess)
+                    held[pid] = n
         self._event.set()
 
     def _take(self) -> list[FrameResult]:
+        """Everything queued: a lossy sink's results point by point (in the order the points first came, each
+        point's in frame order), without the dropped ones."""
         if self.lossless:
             out = list(self._fifo)
             self._fifo.clear()
         else:
-            out = [r for q in self._per_point.values() for r in q]
-            self._per_point.clear()
+            batches, skip = self._pending, self._skip
+            if len(batches) == 1 and not skip and len(self._held) == len(batches[0]):
+                out = list(batches[0])  # one batch, one result per point: already in that order
+            else:
+                groups: dict[str, list[FrameResult]] = {}
+                for batch in batches:
+                    for r in batch:
+                        g = groups.get(r.point_id)
+                        if g is None:
+                            groups[r.point_id] = [r]
+                        else:
+                            g.append(r)
+                out = []
+                for pid, g in groups.items():
+                    out.extend(g[skip[pid]:] if pid in skip else g)
+            self._pending, self._held, self._skip = [], {}, {}
         self._queued = 0
         return out
 
@@ -876,8 +898,9 @@ class Daemon:
 
     def _publish(self, results: list[FrameResult]) -> None:
         """Queue results for every sink (in analysis order, before the points are released: frame order holds)."""
+        counts = point_counts(results)
         for ch in self._channels:
-            ch.put(results)
+            ch.put(results, counts)
 
 
 # ---------------------------------------------------------------------------------------------- factories

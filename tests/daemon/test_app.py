@@ -11,6 +11,8 @@ from typing import Any
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from prometheus_client import CollectorRegistry
 
 from edgevib.common.wire import Block, encode_binary
@@ -379,3 +381,55 @@ async def test_machine_state_and_sensor_health_travel_with_the_results(tmp_path:
         assert sum(d.stats.analysis_errors.values()) == 0
     finally:
         await d.stop()
+
+
+class _Reference:
+    """The lossy sink queue in its plain form (the module docstring's rules): a deque per point in the order the
+    points first came, the oldest results dropped beyond max(SINK_BACKLOG_PER_POINT, the new batch's own)."""
+
+    def __init__(self) -> None:
+        self.per_point: dict[str, list[tuple[str, int]]] = {}
+        self.dropped: dict[str, int] = {}
+
+    def put(self, batch: list[tuple[str, int]], keep: int) -> None:
+        new: dict[str, int] = {}
+        for pid, seq in batch:
+            new[pid] = new.get(pid, 0) + 1
+            self.per_point.setdefault(pid, []).append((pid, seq))
+        for pid, n_new in new.items():
+            q = self.per_point[pid]
+            excess = len(q) - max(keep, n_new)
+            if excess > 0:
+                del q[:excess]
+                self.dropped[pid] = self.dropped.get(pid, 0) + excess
+
+    def take(self) -> list[tuple[str, int]]:
+        out = [r for q in self.per_point.values() for r in q]
+        self.per_point.clear()
+        return out
+
+
+@settings(max_examples=300, deadline=None)
+@given(steps=st.lists(st.one_of(st.none(), st.lists(st.sampled_from("abcdef"), max_size=12)), max_size=25))
+async def test_a_lossy_sink_queue_keeps_and_drops_as_the_plain_rules_say(steps: list[list[str] | None]) -> None:
+    from types import SimpleNamespace
+
+    from edgevib.daemon.app import SINK_BACKLOG_PER_POINT, SinkChannel
+    from edgevib.daemon.frames import Stats
+
+    stats = Stats()
+    ch = SinkChannel(SimpleNamespace(), stats, None, lambda: None)  # type: ignore[arg-type]  # no task started
+    ref = _Reference()
+    seq = 0
+    for step in steps:  # None: the sink takes everything queued
+        if step is None:
+            assert [(r.point_id, r.t_end_ns) for r in ch._take()] == ref.take()
+            continue
+        batch = [(pid, seq + i) for i, pid in enumerate(step)]
+        seq += len(step)
+        ch.put([FrameResult(pid, "M", t, 0, FS, None, None, np.zeros(0, np.float32))  # type: ignore[arg-type]
+                for pid, t in batch])
+        ref.put(batch, SINK_BACKLOG_PER_POINT)
+        assert ch.backlog == sum(len(q) for q in ref.per_point.values())
+    assert [(r.point_id, r.t_end_ns) for r in ch._take()] == ref.take()
+    assert {pid: n for (_, pid), n in stats.sink_dropped.items()} == ref.dropped
