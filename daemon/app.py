@@ -52,6 +52,7 @@ import contextlib
 import dataclasses
 import gc
 import math
+import operator
 import time
 from collections import Counter, deque
 from collections.abc import Callable, Mapping, Sequence
@@ -86,6 +87,7 @@ from edgevib.daemon.logs import RateLimitedLogger, get_logger
 from edgevib.daemon.machine_state import MachineTracker
 from edgevib.daemon.sensor_health import HealthError, batch_health, judged_running
 from edgevib.pipelines.health import HealthSpec, SensorHealth
+from edgevib.pipelines.severity import iso_zone
 from edgevib.pipelines.types import AnalysisPlan, FrameIndicators, PipelineError
 
 if TYPE_CHECKING:
@@ -103,6 +105,7 @@ BATCH_WINDOW_S = 0.05  # a batch waits up to this long for more frames: larger b
 # Indicators whose exponentially weighted trend is kept: FrameIndicators fields (tests/daemon/test_app.py checks
 # that each reads its field), so a frame's trend is known when its result is built.
 TRENDED = tuple(i.name for i in REGISTRY if i.trend)
+_TREND_READERS = tuple((name, operator.attrgetter(name)) for name in TRENDED)  # built once, read per frame
 SINK_BACKLOG_PER_POINT = 4  # undelivered results a lossy sink keeps per point before dropping the oldest
 LOSSLESS_BACKLOG = 4 * MAX_BATCH  # undelivered results of a lossless sink above which analysis pauses
 log = get_logger("edgevib.daemon")
@@ -118,8 +121,6 @@ def _default_analyze(x: npt.NDArray[np.float32], plan: AnalysisPlan,
 def _iso_zone(v_mm_s: float | None, machine: MachineConfig) -> str | None:
     if machine.group is None or machine.support is None or v_mm_s is None or not math.isfinite(v_mm_s):
         return None
-    from edgevib.pipelines.severity import iso_zone
-
     try:
         return str(iso_zone(v_mm_s, machine.group, machine.support))
     except PipelineError:
@@ -279,9 +280,11 @@ class _PointState:
     signature: tuple[Any, ...]
     band_source: str | None = None  # where the plan's envelope band comes from (configured, auto, default)
     auto_band: bool = dataclasses.field(init=False)  # the point's band is selected automatically (read per frame)
+    zoned: bool = dataclasses.field(init=False)  # the machine has ISO 20816-3 zones (group and support)
 
     def __post_init__(self) -> None:
         self.auto_band = self.config.envelope_band_origin == "auto"
+        self.zoned = self.machine.group is not None and self.machine.support is not None
 
 
 class Daemon:
@@ -736,14 +739,13 @@ class Daemon:
         pids = {j.point_id for j in jobs}
         try:
             shaft = [j.speed_hz for j in jobs]  # each frame's speed as known when it was completed
-            measured = [s if s is not None and j.point_id in self.points
-                        and self.points[j.point_id].machine.speed_tag is not None else None
-                        for j, s in zip(jobs, shaft, strict=True)]
+            states = [self.points.get(j.point_id) for j in jobs]
+            measured = [s if s is not None and st is not None and st.machine.speed_tag is not None else None
+                        for st, s in zip(states, shaft, strict=True)]
             shaft_arr = None if all(s is None for s in shaft) else \
                 np.array([math.nan if s is None else s for s in shaft], dtype=np.float64)
             specs = self._health_specs(jobs)
-            running = [self.machines.running(self.points[j.point_id].machine.id) if j.point_id in self.points
-                       else True for j in jobs]
+            running = [self.machines.running(st.machine.id) if st is not None else True for st in states]
             points = [j.point_id for j in jobs]
             health_errors: list[HealthError] = []
             loop = asyncio.get_running_loop()
@@ -808,8 +810,8 @@ class Daemon:
                 # A standing machine has no orders or bearing families, whatever speed was assumed (a fixed one,
                 # or an estimate from the noise): absent, not zero.
                 ind = dataclasses.replace(ind, orders_mm_s={}, envelope={}, shaft_hz=speed, shaft_estimated=False)
-            zone = _iso_zone(ind.velocity_rms_mm_s, st.machine)
-            trend = st.trend.update({name: getattr(ind, name) for name in TRENDED}, t_end_s)
+            zone = _iso_zone(ind.velocity_rms_mm_s, st.machine) if st.zoned else None
+            trend = st.trend.update({name: read(ind) for name, read in _TREND_READERS}, t_end_s)
             r = FrameResult(point_id=job.point_id, machine_id=st.machine.id, t_end_ns=job.t_end_ns,
                             received_ns=job.received_ns, fs_hz=st.config.fs_hz, indicators=ind, iso_zone=zone,
                             samples=samples, axis=st.config.axis, trend=trend, machine_state=ms, health=h,
