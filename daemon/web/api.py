@@ -20,7 +20,6 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import dataclasses
-import functools
 import json
 import math
 import time
@@ -136,14 +135,23 @@ def _is_limit_view(ind: Indicator) -> bool:
 _VALUE_INDICATORS = tuple(ind for ind in REGISTRY if not _is_limit_view(ind))
 
 
+# (name, reader) of each scalar one, (name, None) of each per-order / per-family one: looked up once
+_VALUE_READERS = tuple((ind.name, ind.read if ind.each is None else None) for ind in _VALUE_INDICATORS)
+_VALUE_EACH = {ind.name: ind.each for ind in _VALUE_INDICATORS if ind.each is not None}
+
+
 def indicator_values(r: FrameResult) -> dict[str, Any]:
     """``{name: value}`` of :func:`indicator_rows` without the limit views (NaN/Inf → None): what the recent-values
     buffer keeps per frame, without building each row's description text."""
     out: dict[str, Any] = {}
-    for ind in _VALUE_INDICATORS:
-        for key, v in ind.values(r).items():
-            out[f"{ind.name}.{key}" if key else ind.name] = None if isinstance(v, float) and not math.isfinite(v) \
-                else v
+    isfinite = math.isfinite
+    for name, read in _VALUE_READERS:
+        if read is not None:
+            v = read(r)
+            out[name] = None if isinstance(v, float) and not isfinite(v) else v
+            continue
+        for key, v in _VALUE_EACH[name](r).items():
+            out[f"{name}.{key}" if key else name] = None if isinstance(v, float) and not isfinite(v) else v
     return out
 
 
@@ -400,9 +408,7 @@ class ViewService:
         return self.daemon.alarm_view
 
     async def on_frames(self, results: list[FrameResult]) -> None:
-        add = self.recent.add
-        for r in results:
-            add(r.point_id, r.t_end_ns / 1e9, functools.partial(indicator_values, r))
+        self.recent.add_frames(((r.point_id, r.t_end_ns / 1e9, r) for r in results), indicator_values)
         if self._streams:  # the latest frame of each point, to the view's live streams
             latest = {r.point_id: r for r in results}
             for r in latest.values():

@@ -10,7 +10,8 @@ from __future__ import annotations
 
 import math
 import threading
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterable, Mapping
+from typing import TypeVar
 
 import numpy as np
 import numpy.typing as npt
@@ -19,6 +20,7 @@ __all__ = ["MAX_COLUMNS", "RecentValues", "Values"]
 
 MAX_COLUMNS = 64  # indicators per point (a point has about 20)
 Values = Mapping[str, float | None]
+T = TypeVar("T")
 
 
 class _Ring:
@@ -50,34 +52,61 @@ class RecentValues:
         ``values`` may be a function returning them: it is called only when the row is recorded, so a caller with
         a frame every 0.64 s and rows every 5 s builds the values of one frame in eight, not of every frame."""
         with self._lock:
-            ring = self._rings.get(point)
+            ring = self._due(point, t_s)
             if ring is None:
-                ring = self._rings[point] = _Ring(self.capacity)
-            if t_s < ring.last_t_s + self.interval_s and t_s >= ring.last_t_s:
                 return False
-            if t_s < ring.last_t_s:  # time went back (a replay, a device clock reset): start again
-                self._rings[point] = ring = _Ring(self.capacity)
-            if callable(values):
-                values = values()
-            row = ring.head
-            ring.values[row, :] = np.nan
-            for name, v in values.items():
-                col = ring.columns.get(name)
-                if col is None:
-                    if len(ring.columns) >= MAX_COLUMNS:
-                        continue
-                    col = len(ring.columns)
-                    ring.columns[name] = col
-                    if col >= ring.values.shape[1]:
-                        grown = np.full((self.capacity, ring.values.shape[1] * 2), np.nan, dtype=np.float32)
-                        grown[:, : ring.values.shape[1]] = ring.values
-                        ring.values = grown
-                ring.values[row, col] = np.nan if v is None or not math.isfinite(v) else v
-            ring.t_s[row] = t_s
-            ring.head = (row + 1) % self.capacity
-            ring.count = min(ring.count + 1, self.capacity)
-            ring.last_t_s = t_s
+            self._write(ring, t_s, values() if callable(values) else values)
             return True
+
+    def add_frames(self, frames: Iterable[tuple[str, float, T]], values: Callable[[T], Values]) -> int:
+        """:meth:`add` for many frames ``(point, t_s, item)`` in order under one lock, ``values(item)`` built only
+        for the rows recorded; returns how many were."""
+        n = 0
+        with self._lock:
+            for point, t_s, item in frames:
+                ring = self._due(point, t_s)
+                if ring is not None:
+                    self._write(ring, t_s, values(item))
+                    n += 1
+        return n
+
+    def _due(self, point: str, t_s: float) -> _Ring | None:
+        """The point's ring when a row at ``t_s`` is due (``_lock`` held), else ``None``."""
+        ring = self._rings.get(point)
+        if ring is None:
+            ring = self._rings[point] = _Ring(self.capacity)
+        if t_s < ring.last_t_s + self.interval_s and t_s >= ring.last_t_s:
+            return None
+        if t_s < ring.last_t_s:  # time went back (a replay, a device clock reset): start again
+            self._rings[point] = ring = _Ring(self.capacity)
+        return ring
+
+    def _write(self, ring: _Ring, t_s: float, values: Values) -> None:
+        """One row (``_lock`` held): the values given by column, NaN in every other (and for None, NaN, Inf)."""
+        row = ring.head
+        cols: list[int] = []
+        row_values: list[float] = []
+        nan, isfinite = math.nan, math.isfinite
+        for name, v in values.items():
+            col = ring.columns.get(name)
+            if col is None:
+                if len(ring.columns) >= MAX_COLUMNS:
+                    continue
+                col = len(ring.columns)
+                ring.columns[name] = col
+                if col >= ring.values.shape[1]:
+                    grown = np.full((self.capacity, ring.values.shape[1] * 2), np.nan, dtype=np.float32)
+                    grown[:, : ring.values.shape[1]] = ring.values
+                    ring.values = grown
+            cols.append(col)
+            row_values.append(nan if v is None or not isfinite(v) else v)
+        out = ring.values[row]
+        out[:] = np.nan
+        out[cols] = row_values  # each value rounded once to float32, as an element assignment does
+        ring.t_s[row] = t_s
+        ring.head = (row + 1) % self.capacity
+        ring.count = min(ring.count + 1, self.capacity)
+        ring.last_t_s = t_s
 
     def indicators(self, point: str) -> list[str]:
         with self._lock:

@@ -45,3 +45,24 @@ def test_a_mapping_and_a_function_give_the_same_rows() -> None:
         assert_allclose(ta, tb)
         assert_allclose(va, vb, equal_nan=True)
     assert_allclose(a.series("P", "x")[1], [1.0, math.nan, 4.0], equal_nan=True)  # infinite is kept as NaN
+
+
+
+def test_frames_added_together_give_the_rows_of_frames_added_one_by_one() -> None:
+    # add_frames is add under one lock: the same rows and columns (grown past the first 8); each value is stored as
+    # numpy's float32 cast rounds the Python value (the reference: np.float32(v)), None / NaN / Inf as NaN.
+    one, many = RecentValues(capacity=100, interval_s=1.0), RecentValues(capacity=100, interval_s=1.0)
+    frames = [(f"P-{k % 3}", 0.4 * k, {f"i{(k * 7 + j) % 13}": (1.0 / (k + j + 3) if j % 4 else
+                                                              [None, math.nan, True, -math.inf][k % 4])
+                                       for j in range(k % 11)}) for k in range(60)]
+    kept = [one.add(p, t, v) for p, t, v in frames]
+    assert many.add_frames(frames, lambda v: v) == sum(kept)
+    for p in ("P-0", "P-1", "P-2"):
+        assert one.indicators(p) == many.indicators(p) and len(one.indicators(p)) > 8
+        rows = [(t, v) for (q, t, v), k in zip(frames, kept, strict=True) if k and q == p]
+        for name in one.indicators(p):
+            (t1, v1), (t2, v2) = one.series(p, name), many.series(p, name)
+            assert t1.tolist() == t2.tolist() == [t for t, _ in rows] and v1.tobytes() == v2.tobytes()
+            want = [np.float32(x) if (x := v.get(name)) is not None and math.isfinite(x) else np.float32(np.nan)
+                    for _, v in rows]
+            assert np.asarray(want, dtype=np.float32).tobytes() == v2.astype(np.float32).tobytes()
