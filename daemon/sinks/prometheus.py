@@ -320,6 +320,7 @@ class PrometheusSink:
         self.clock_ns = clock_ns
         self.latest: dict[str, tuple[tuple[str, ...], FrameResult]] = {}
         self._axes: dict[str, str] = {}
+        self._labels: dict[str, tuple[str, ...]] = {}  # point -> its labels (site, machine, point, axis), reused
         self.collector = IndicatorCollector(site, stats, self.latest)
         self.set_points(points)
         self._ready = ready or (lambda: (True, "no sources"))
@@ -334,12 +335,13 @@ class PrometheusSink:
     async def reconfigure(self, config: Config) -> None:
         """After a reload: the site label and the configured points (the listener stays)."""
         self.site = self.collector.site = config.site.name
-        self.set_points(config.points)
+        self.set_points(config.points)  # (forgets the labels made with the old site)
 
     def set_points(self, points: Iterable[PointConfig]) -> None:
         """(Re)declare the configured points; removed points vanish from the exposition."""
         points = list(points)
         self._axes = {p.id: p.axis for p in points}
+        self._labels = {}
         self.collector.point_sources = {p.id: (p.machine, p.source) for p in points}
         for pid in [pid for pid in self.latest if pid not in self._axes]:
             self.latest.pop(pid, None)
@@ -374,12 +376,17 @@ class PrometheusSink:
 
     async def on_frames(self, results: list[FrameResult]) -> None:
         now = self.clock_ns()
+        axes, known, latest, observe = self._axes, self._labels, self.latest, self.stats.latency.observe
         for r in results:
-            axis = self._axes.get(r.point_id)
-            if axis is None:
-                continue
-            self.latest[r.point_id] = ((self.site, r.machine_id, r.point_id, axis), r)
-            self.stats.latency.observe((now - r.received_ns) / 1e9)
+            pid = r.point_id
+            labels = known.get(pid)
+            if labels is None or labels[1] != r.machine_id:
+                axis = axes.get(pid)
+                if axis is None:
+                    continue
+                labels = known[pid] = (self.site, r.machine_id, pid, axis)
+            latest[pid] = (labels, r)
+            observe((now - r.received_ns) / 1e9)
 
     async def stop(self) -> None:
         if self._own_listener:
