@@ -84,25 +84,22 @@ class RecentValues:
     def _write(self, ring: _Ring, t_s: float, values: Values) -> None:
         """One row (``_lock`` held): the values given by column, NaN in every other (and for None, NaN, Inf)."""
         row = ring.head
-        cols: list[int] = []
-        row_values: list[float] = []
-        nan, isfinite = math.nan, math.isfinite
+        out = ring.values[row]  # the row as a view: an element assignment costs less than one by (row, column)
+        out[:] = np.nan
+        nan, isfinite, columns = math.nan, math.isfinite, ring.columns
         for name, v in values.items():
-            col = ring.columns.get(name)
+            col = columns.get(name)
             if col is None:
-                if len(ring.columns) >= MAX_COLUMNS:
+                if len(columns) >= MAX_COLUMNS:
                     continue
-                col = len(ring.columns)
-                ring.columns[name] = col
+                col = len(columns)
+                columns[name] = col
                 if col >= ring.values.shape[1]:
                     grown = np.full((self.capacity, ring.values.shape[1] * 2), np.nan, dtype=np.float32)
                     grown[:, : ring.values.shape[1]] = ring.values
                     ring.values = grown
-            cols.append(col)
-            row_values.append(nan if v is None or not isfinite(v) else v)
-        out = ring.values[row]
-        out[:] = np.nan
-        out[cols] = row_values  # each value rounded once to float32, as an element assignment does
+                    out = grown[row]
+            out[col] = nan if v is None or not isfinite(v) else v
         ring.t_s[row] = t_s
         ring.head = (row + 1) % self.capacity
         ring.count = min(ring.count + 1, self.capacity)
