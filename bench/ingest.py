@@ -75,6 +75,7 @@ class _Bench:
         from edgevib.bench.daemon import FS_HZ, PERIOD_NS, TOPIC, RawPublisher, bench_config, channel_signal, sensor_id
         from edgevib.common.wire import Block, encode_binary
         from edgevib.daemon.frames import BlockIngest, PointStream, Stats
+        from edgevib.daemon.mqtt_client import AcyclicMatcher
         from edgevib.daemon.sources.mqtt import MqttSource
 
         self.rounds, self.random_reads, self.period_ns = rounds, random_reads, PERIOD_NS
@@ -98,6 +99,7 @@ class _Bench:
         self.link = self.mqtt_source.link
         self.deliver = self.link.on_message
         self.client = mqtt.Client(CallbackAPIVersion.VERSION2, client_id="edgevib-bench-ingest")
+        self.client._on_message_filtered = AcyclicMatcher()  # type: ignore[no-untyped-call]  # as make_client
         self.client.on_message = self.link._cb_message
         self.link._paho = self.client
         self.link._fd = 1000
