@@ -142,6 +142,22 @@ def _freeze_startup_objects() -> None:
     gc.freeze()
 
 
+# Net new container objects between two collections of the cyclic collector's youngest generation (CPython's
+# default is 700).  A running daemon leaves no cyclic garbage of its own (nor, with
+# :class:`~edgevib.daemon.mqtt_client.AcyclicMatcher`, paho), but each batch makes and drops tens of thousands of
+# result objects in bursts, so at the default the collector ran some 30 times a second, and every hundredth of
+# those became a collection of every object made since start-up (25–40 ms with the interpreter lock held).
+YOUNG_COLLECTION_THRESHOLD = 10_000
+
+
+def _collect_less_often() -> tuple[int, int, int]:
+    """Raise the youngest generation's threshold to :data:`YOUNG_COLLECTION_THRESHOLD` (never lower it); returns
+    the thresholds before, for :meth:`Daemon.stop` to restore (the setting is the process's)."""
+    before = gc.get_threshold()
+    gc.set_threshold(max(before[0], YOUNG_COLLECTION_THRESHOLD), *before[1:])
+    return before[0], before[1], before[2]
+
+
 _DEFAULT_HEALTH = HealthSpec()  # frozen: one default shared by every point without its own (not one per frame)
 
 class _Part(FrameSink, Reconfigurable, Protocol):
@@ -326,6 +342,7 @@ class Daemon:
         self._counted: dict[str, int] = {}
         self._timer: asyncio.TimerHandle | None = None
         self._batches: set[asyncio.Task[None]] = set()
+        self._gc_thresholds: tuple[int, int, int] | None = None  # the collector's thresholds before start
         self._channels: list[SinkChannel] = []
         self._wake = asyncio.Event()
         self._scheduler: asyncio.Task[None] | None = None
@@ -459,6 +476,8 @@ class Daemon:
         """Start the HTTP listener, the sinks, the scheduler and every source."""
         loop = asyncio.get_running_loop()
         _freeze_startup_objects()  # first: nothing listens or runs yet while the collection takes its time
+        if self._gc_thresholds is None:
+            self._gc_thresholds = _collect_less_often()
         self._executor = ThreadPoolExecutor(max_workers=self.config.analysis.workers,
                                             thread_name_prefix="edgevib-analysis")
         started: list[FrameSink] = []
@@ -548,6 +567,9 @@ class Daemon:
         if self._executor is not None:
             self._executor.shutdown(wait=False, cancel_futures=True)
         gc.unfreeze()  # what start-up kept out of the collector's passes is collectable again
+        if self._gc_thresholds is not None:
+            gc.set_threshold(*self._gc_thresholds)
+            self._gc_thresholds = None
         log.info("daemon stopped")
 
     # ------------------------------------------------------------------------------------------ status

@@ -433,3 +433,25 @@ async def test_a_lossy_sink_queue_keeps_and_drops_as_the_plain_rules_say(steps: 
         assert ch.backlog == sum(len(q) for q in ref.per_point.values())
     assert [(r.point_id, r.t_end_ns) for r in ch._take()] == ref.take()
     assert {pid: n for (_, pid), n in stats.sink_dropped.items()} == ref.dropped
+
+
+async def test_the_collector_runs_less_often_while_the_daemon_runs_and_as_before_after(tmp_path: Path) -> None:
+    # Python's gc.get_threshold / gc.set_threshold (the process's setting): raised for the youngest generation
+    # while the daemon runs, never lowered, and the setting before start restored at stop
+    import gc
+
+    from edgevib.daemon.app import YOUNG_COLLECTION_THRESHOLD
+
+    before = gc.get_threshold()
+    try:
+        for young in (700, 50_000):
+            gc.set_threshold(young, before[1], before[2])
+            d = Daemon(config(tmp_path), registry=CollectorRegistry(), serve_metrics=False, sources=[])
+            await d.start()
+            try:
+                assert gc.get_threshold() == (max(young, YOUNG_COLLECTION_THRESHOLD), before[1], before[2])
+            finally:
+                await d.stop()
+            assert gc.get_threshold() == (young, before[1], before[2])
+    finally:
+        gc.set_threshold(*before)
