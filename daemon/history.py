@@ -45,7 +45,7 @@ import sqlite3
 import threading
 import time
 from collections import deque
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from contextlib import AbstractContextManager
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -291,6 +291,38 @@ def _t_mean_blob(t_sums: npt.NDArray[np.float64], counts: npt.ArrayLike) -> byte
     return out.astype("<f4").tobytes()
 
 
+class FlushPacer:
+    """Keeps a flush to a share of one core while the daemon runs: after each ``slice_s`` of the flushing thread's
+    own CPU time it sleeps ``(1 − share) / share`` times what it used (the interpreter lock free meanwhile).
+
+    A flush runs in a worker thread beside the event loop and the analysis, which need the same interpreter lock.
+    At each wall-clock minute every point closes a minute at once (roll-ups, the hour's and the day's sketches
+    rewritten): some 2 s of Python for 600 points, which unpaced took most of the lock for those seconds and held
+    back ingest and analysis (latency up to seconds at each minute).  Paced, the same rows are written a few
+    seconds later.  ``enabled`` is asked at every slice: a stopping daemon flushes at full speed."""
+
+    def __init__(self, share: float, enabled: Callable[[], bool], *, slice_s: float = 0.01,
+                 cpu_s: Callable[[], float] = time.thread_time, sleep: Callable[[float], None] = time.sleep) -> None:
+        if not 0.0 < share <= 1.0:
+            raise ValueError(f"flush CPU share {share!r} must be within (0, 1]")
+        self._ratio = (1.0 - share) / share
+        self._enabled, self._slice_s, self._cpu_s, self._sleep = enabled, slice_s, cpu_s, sleep
+        self._mark = cpu_s()
+
+    def __call__(self) -> None:
+        """A point where the flush may pause: it pauses once a slice of CPU time has been used since the last."""
+        used = self._cpu_s() - self._mark
+        if used < self._slice_s:
+            return
+        if self._ratio > 0 and self._enabled():
+            self._sleep(used * self._ratio)
+        self._mark = self._cpu_s()
+
+
+FLUSH_CPU_SHARE = 0.3  # of one core, for the daemon's periodic flushes (FlushPacer)
+_PACE_EVERY = 16  # frames or points between two looks at the flush's CPU time
+
+
 # --------------------------------------------------------------------------------------------- recorder
 
 
@@ -372,6 +404,7 @@ class HistoryRecorder:
         self._rlog = RateLimitedLogger(log, interval_s=60.0)
         self._task: asyncio.Task[None] | None = None
         self._stopping = False
+        self._paced = False  # the periodic flushes of a running daemon (start … stop) keep to FLUSH_CPU_SHARE
         self._since_retention = 0.0
         self._restore()
         self.stats.bytes = self.db.size_bytes()
@@ -492,8 +525,9 @@ class HistoryRecorder:
                 self._pending.clear()
             if not batch:
                 return 0
+            pace = FlushPacer(FLUSH_CPU_SHARE, lambda: self._paced) if self._paced else None
             try:
-                late = self._write(batch)
+                late = self._write(batch, pace)
             except sqlite3.Error as exc:
                 self.stats.write_errors += 1
                 self._rlog.error("history", "history write failed; frames kept for the next attempt",
@@ -519,15 +553,18 @@ class HistoryRecorder:
         with contextlib.suppress(sqlite3.Error):
             self._restore()
 
-    def _write(self, batch: list[tuple[str, int, npt.NDArray[np.float64], int]]) -> int:
+    def _write(self, batch: list[tuple[str, int, npt.NDArray[np.float64], int]],
+               pace: FlushPacer | None = None) -> int:
         """Write ``batch`` in one transaction; returns how many of its frames were late (not newer than their
-        point's latest recorded frame: skipped)."""
+        point's latest recorded frame: skipped).  ``pace`` is called every few frames and points."""
         frames: list[tuple[int, int, int, int]] = []
         values: list[npt.NDArray[np.float64]] = []  # the frames' values, made float32 blobs all at once
         rollups: _Rows = []
         minutes: list[_MinuteRow] = []
         with self.db.transaction() as c:
-            for point, t_ns, v, code in batch:
+            for i, (point, t_ns, v, code) in enumerate(batch):
+                if pace is not None and i % _PACE_EVERY == 0:
+                    pace()
                 pid = self.db.point_id(point)
                 op = self._open.get(point)
                 if op is None:
@@ -562,7 +599,9 @@ class HistoryRecorder:
                 w = 4 * len(self.indicators)
                 c.executemany("INSERT OR REPLACE INTO frames (point, t_ns, layout, state, v) VALUES (?, ?, ?, ?, ?)",
                               [(*f, blob[i * w:(i + 1) * w]) for i, f in enumerate(frames)])
-            for point, op in self._open.items():
+            for i, (point, op) in enumerate(self._open.items()):
+                if pace is not None and i % _PACE_EVERY == 0:
+                    pace()
                 pid = self.db.point_id(point)
                 if op.period is not None and op.period_dirty:
                     self._write_period(c, pid, op)
@@ -811,6 +850,7 @@ class HistoryRecorder:
 
     async def start(self) -> None:
         self._stopping = False
+        self._paced = True
         self._task = asyncio.get_running_loop().create_task(self._run(), name="edgevib-history")
 
     async def _run(self) -> None:
@@ -824,6 +864,7 @@ class HistoryRecorder:
     async def stop(self) -> None:
         """Flush what is queued and close the file."""
         self._stopping = True
+        self._paced = False  # a flush in flight finishes at full speed
         if self._task is not None:
             self._task.cancel()
             await asyncio.gather(self._task, return_exceptions=True)

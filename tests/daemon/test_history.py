@@ -181,11 +181,11 @@ def test_a_write_error_keeps_the_batch_for_the_next_flush(tmp_path: Path, monkey
     real = rec._write
     calls = {"n": 0}
 
-    def failing(batch: list) -> int:  # type: ignore[type-arg]
+    def failing(batch: list, pace: object = None) -> int:  # type: ignore[type-arg]
         calls["n"] += 1
         if calls["n"] == 1:
             raise sqlite3.OperationalError("disk I/O error")
-        return real(batch)
+        return real(batch, pace)  # type: ignore[arg-type]
 
     monkeypatch.setattr(rec, "_write", failing)
     assert rec.flush() == 0 and rec.stats.write_errors == 1 and rec.pending == 100
@@ -439,3 +439,42 @@ def test_a_version_1_history_is_migrated_on_open(tmp_path: Path) -> None:
             assert day.stamp_s[k] == pytest.approx(float(np.mean(t[sel])), abs=15.5 if k == 1 else 0.02)
     # every bucket opened after the upgrade is exact, the older ones at their middles
     _check_stamps(s.path, t, v, state, atol_s=15.5, legacy_until_s=legacy_until)
+
+
+def test_flush_pacer_sleeps_its_share_of_the_cpu_used_and_not_when_disabled() -> None:
+    # the duty-cycle arithmetic (common practice): with a share s of one core, each slice of CPU time u is followed
+    # by a pause of u·(1 − s)/s, so the flush uses s of the time it takes; a fake CPU clock and sleep, no timing
+    from edgevib.daemon.history import FlushPacer
+
+    cpu = [0.0]
+    slept: list[float] = []
+    on = [True]
+    pace = FlushPacer(0.25, lambda: on[0], slice_s=0.01, cpu_s=lambda: cpu[0], sleep=slept.append)
+    for used in (0.004, 0.004, 0.004, 0.02, 0.001):
+        cpu[0] += used
+        pace()
+    assert slept == pytest.approx([0.012 * 3, 0.02 * 3])  # a slice gathered over three calls, then a whole one
+    on[0] = False  # a stopping daemon: no more pauses
+    cpu[0] += 0.05
+    pace()
+    assert len(slept) == 2
+    with pytest.raises(ValueError, match="share"):
+        FlushPacer(0.0, lambda: True)
+
+
+async def test_only_a_running_recorders_flushes_are_paced(tmp_path: Path) -> None:
+    # a replay's or a tool's flush runs at full speed; the daemon's periodic ones (start … stop) are paced, and the
+    # same rows are written either way
+    rec = HistoryRecorder(_settings(tmp_path), ("a",))
+    paced: list[bool] = []
+    write = rec._write
+    rec._write = lambda batch, pace=None: paced.append(pace is not None) or write(batch, pace)  # type: ignore[method-assign]
+    rec.record("P1", T0 * 10**9, [1.0], "running")
+    rec.flush()
+    await rec.start()
+    rec.record("P1", (T0 + 1) * 10**9, [2.0], "running")
+    rec.flush()
+    await rec.stop()
+    assert paced == [False, True]
+    with HistoryReader(_settings(tmp_path).path) as reader:
+        assert reader.latest_time_s("P1") == pytest.approx(T0 + 1)
