@@ -66,7 +66,6 @@ import subprocess
 import sys
 import tempfile
 import time
-import urllib.request
 from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
@@ -539,12 +538,12 @@ async def _run_instance(spec: InstanceSpec, out: Any, ctl: Any) -> Row:
         cpu0, dropped0, t0 = _cpu_s(), sum(daemon.stats.frames_dropped.values()), time.time_ns()
         faults0 = resource.getrusage(resource.RUSAGE_SELF).ru_minflt
         threads0 = _thread_cpu_s()
-        hist0 = histogram_buckets(await asyncio.to_thread(_scrape, daemon.metrics.url or ""), _HIST)
+        hist0 = await asyncio.to_thread(_scrape_buckets, daemon.metrics.url or "", _HIST)
         await asyncio.sleep(max(0.0, (window_end_ns - time.time_ns()) / 1e9))
         cpu1, dropped1, t1 = _cpu_s(), sum(daemon.stats.frames_dropped.values()), time.time_ns()
         faults1 = resource.getrusage(resource.RUSAGE_SELF).ru_minflt
         threads1 = _thread_cpu_s()
-        hist1 = histogram_buckets(await asyncio.to_thread(_scrape, daemon.metrics.url or ""), _HIST)
+        hist1 = await asyncio.to_thread(_scrape_buckets, daemon.metrics.url or "", _HIST)
         rss_end = _rss_mb()
         exposition_ms, exposition_ref_ms = await asyncio.to_thread(_exposition_ms, registry)
     finally:
@@ -674,9 +673,19 @@ def run_level(broker: Broker, channels: int, seconds: float, warmup_s: float, ov
     return rows
 
 
-def _scrape(url: str) -> str:
-    with urllib.request.urlopen(url.rstrip("/") + ("" if url.endswith("/metrics") else "/metrics"), timeout=10) as r:
-        return str(r.read().decode("utf-8"))
+_SCRAPER = "import sys, urllib.request\nwith urllib.request.urlopen(sys.argv[1], timeout=10) as r:\n" \
+           "    sys.stdout.buffer.write(r.read())\n"
+
+
+def _scrape_buckets(url: str, name: str) -> dict[float, float]:
+    """The histogram ``name`` of one scrape of the daemon's ``/metrics``, fetched by a process of its own as
+    Prometheus would scrape it (a client in the daemon's process would take its interpreter lock and its event
+    loop's time to read and parse the whole exposition; this runs in a worker thread of the instance)."""
+    url = url.rstrip("/") + ("" if url.endswith("/metrics") else "/metrics")
+    proc = subprocess.run([sys.executable, "-c", _SCRAPER, url], capture_output=True, timeout=30, check=False)
+    if proc.returncode != 0:
+        raise SystemExit(f"scraping {url} failed: {proc.stderr.decode(errors='replace')[-500:]}")
+    return histogram_buckets(proc.stdout.decode("utf-8"), name)
 
 
 # ------------------------------------------------------------------------------------------- the command
