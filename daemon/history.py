@@ -319,7 +319,7 @@ class FlushPacer:
         self._mark = self._cpu_s()
 
 
-FLUSH_CPU_SHARE = 0.3  # of one core, for the daemon's periodic flushes (FlushPacer)
+FLUSH_CPU_SHARE = 0.2  # of one core, for the daemon's periodic flushes (FlushPacer)
 _PACE_EVERY = 16  # frames or points between two looks at the flush's CPU time
 
 
