@@ -285,7 +285,7 @@ def _cpu_s() -> float:
     return ru.ru_utime + ru.ru_stime
 
 
-def _thread_cpu_s() -> dict[str, float]:
+def thread_cpu_s() -> dict[str, float]:
     """CPU seconds per live Python thread, by thread name (numbered pool threads grouped by prefix)."""
     import threading
 
@@ -537,12 +537,12 @@ async def _run_instance(spec: InstanceSpec, out: Any, ctl: Any) -> Row:
         await asyncio.sleep(max(0.0, (window_start_ns - time.time_ns()) / 1e9))
         cpu0, dropped0, t0 = _cpu_s(), sum(daemon.stats.frames_dropped.values()), time.time_ns()
         faults0 = resource.getrusage(resource.RUSAGE_SELF).ru_minflt
-        threads0 = _thread_cpu_s()
+        threads0 = thread_cpu_s()
         hist0 = await asyncio.to_thread(_scrape_buckets, daemon.metrics.url or "", _HIST)
         await asyncio.sleep(max(0.0, (window_end_ns - time.time_ns()) / 1e9))
         cpu1, dropped1, t1 = _cpu_s(), sum(daemon.stats.frames_dropped.values()), time.time_ns()
         faults1 = resource.getrusage(resource.RUSAGE_SELF).ru_minflt
-        threads1 = _thread_cpu_s()
+        threads1 = thread_cpu_s()
         hist1 = await asyncio.to_thread(_scrape_buckets, daemon.metrics.url or "", _HIST)
         rss_end = _rss_mb()
         exposition_ms, exposition_ref_ms = await asyncio.to_thread(_exposition_ms, registry)

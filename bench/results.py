@@ -25,10 +25,8 @@ from __future__ import annotations
 import argparse
 import asyncio
 import json
-import os
 import sys
 import tempfile
-import threading
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager, nullcontext
@@ -36,7 +34,7 @@ from typing import Any
 
 import numpy as np
 
-from edgevib.bench.daemon import PERIOD_NS, bench_config, channel_signal, point_id
+from edgevib.bench.daemon import PERIOD_NS, bench_config, channel_signal, point_id, thread_cpu_s
 
 T0_NS = 1_780_000_000 * 10**9
 BATCH = 64
@@ -62,20 +60,6 @@ def _signal(channel: int, variant: int) -> np.ndarray:
     if variant == 4:
         return np.full_like(x, 0.125)
     return x
-
-
-def _thread_cpu_s() -> dict[str, float]:
-    tick = os.sysconf("SC_CLK_TCK")
-    out: dict[str, float] = {}
-    for th in threading.enumerate():
-        try:
-            with open(f"/proc/self/task/{th.native_id}/stat") as f:
-                fields = f.read().rsplit(")", 1)[1].split()
-        except (OSError, IndexError):
-            continue
-        name = th.name.split("_")[0].rstrip("0123456789-") or th.name
-        out[name] = out.get(name, 0.0) + (int(fields[11]) + int(fields[12])) / tick
-    return out
 
 
 @contextmanager
@@ -170,7 +154,7 @@ async def run(channels: int, rounds: int, storm: bool, stages: bool = True) -> d
                 for k in range(WARM_ROUNDS + rounds):
                     if k == WARM_ROUNDS:
                         await settle()
-                        cpu0, threads0, on[0] = time.process_time(), _thread_cpu_s(), True
+                        cpu0, threads0, on[0] = time.process_time(), thread_cpu_s(), True
                     for chans, per_v in batches:
                         jobs, rows, inds, health = [], [], [], []
                         for i, c in enumerate(chans):
@@ -193,7 +177,7 @@ async def run(channels: int, rounds: int, storm: bool, stages: bool = True) -> d
                     await asyncio.to_thread(daemon.trend_watch.recorder.flush)
                 on[0] = False
             cpu_s = time.process_time() - cpu0
-            threads = {name: s - threads0.get(name, 0.0) for name, s in _thread_cpu_s().items()}
+            threads = {name: s - threads0.get(name, 0.0) for name, s in thread_cpu_s().items()}
         finally:
             await daemon.stop()
     per = 1e6 / max(1, frames)
