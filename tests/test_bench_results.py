@@ -8,11 +8,21 @@ that the stage timers are taken off the daemon's classes afterwards.
 from __future__ import annotations
 
 import json
+from collections.abc import Iterator
 
 import pytest
+import structlog
 
 from edgevib.bench import results
 from edgevib.daemon.app import Daemon
+
+
+@pytest.fixture(autouse=True)
+def _logging_as_before() -> Iterator[None]:
+    # the benchmark configures logging for its process (level "error"); the tests after this one capture warnings
+    saved = structlog.get_config()
+    yield
+    structlog.configure(**saved)
 
 
 @pytest.mark.parametrize("storm", [False, True])
