@@ -350,8 +350,8 @@ def _spike_screen(x: npt.NDArray[np.floating[Any]], spike_sigma: float, hi: npt.
     xk = _f64(x[ci, ii])
     third = np.maximum(np.abs(xk - lo_b), np.abs(xk - hi_b)) / 3.0
     # the next neighbours first: they settle most candidates (an impact's ringing), the whole window the rest
-    nb = _f64(np.maximum(x[ci, ii - 1], x[ci, ii + 1]))
-    nb_lo = _f64(np.minimum(x[ci, ii - 1], x[ci, ii + 1]))
+    before, after = x[ci, ii - 1], x[ci, ii + 1]
+    nb, nb_lo = _f64(np.maximum(before, after)), _f64(np.minimum(before, after))
     open_ = np.flatnonzero(np.maximum(nb - hi_b, lo_b - nb_lo) < third)
     ci, ii, lo_b, hi_b, third = ci[open_], ii[open_], lo_b[open_], hi_b[open_], third[open_]
     xj = _f64(x[ci[:, None], ii[:, None] + _AROUND[None, :]])
