@@ -112,11 +112,15 @@ class Indicator:
             return UNIT_RANGE.get(self.unit, (0.0, 100.0))
         return self.eu_range
 
-    def value(self, r: FrameResult) -> Value:
-        """The value of a scalar indicator for a frame."""
+    def reader(self) -> Reader:
+        """How a scalar indicator's value is read from a frame (for callers reading it per frame: checked once)."""
         if self.read is None:
             raise TypeError(f"{self.name} is a per-{self.per} indicator: use values()")
-        return self.read(r)
+        return self.read
+
+    def value(self, r: FrameResult) -> Value:
+        """The value of a scalar indicator for a frame."""
+        return self.reader()(r)
 
     def values(self, r: FrameResult, keys: Iterable[str] = ()) -> dict[str, Value]:
         """``{key: value}`` of a frame (``{"": value}`` for a scalar); ``keys`` are always present (``None``)."""

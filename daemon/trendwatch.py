@@ -134,11 +134,8 @@ def trend_settings(table: TrendConfig) -> TrendSettings:
 
 
 def _readers(names: Sequence[str]) -> tuple[Callable[[FrameResult], float | None], ...]:
-    """The value readers of scalar indicators ``names``, in order (:meth:`Indicator.value` without its check)."""
-    for name in names:
-        if LIMITABLE[name].read is None:
-            raise TypeError(f"{name} is a per-{LIMITABLE[name].per} indicator: it has no single value")
-    return tuple(LIMITABLE[name].read for name in names)  # type: ignore[misc]  # every read checked just above
+    """The value readers of scalar indicators ``names``, in order (:meth:`Indicator.reader`)."""
+    return tuple(LIMITABLE[name].reader() for name in names)
 
 
 _HISTORY_READERS = _readers(HISTORY_INDICATORS)  # frame_values of the history layout: read per frame

@@ -333,7 +333,7 @@ class AlarmCore:
             by_point.setdefault(lim.point, []).append(lim)
         self.by_point = {k: tuple(v) for k, v in by_point.items()}
         # per limit, fixed by the configuration: how its value is read from a frame, whether it learns a baseline
-        self._read = {key: _reader(lim.indicator) for key, lim in self.limits.items()}
+        self._read = {key: LIMITABLE[lim.indicator].reader() for key, lim in self.limits.items()}
         self._learns = frozenset(key for key, lim in self.limits.items() if lim.needs_baseline)
         self.source_states: dict[str, SourceState] = {}  # as announced (durable)
         self.conn: dict[str, bool] = {}  # live connection state of each source
@@ -913,14 +913,6 @@ def _at_frame(s: SensorState, t_s: float) -> SensorState:
     tests/alarms check it against ``dataclasses.replace`` field by field)."""
     return SensorState(fault=s.fault, detail=s.detail, since_s=s.since_s, healthy_run=s.healthy_run, last_frame_s=t_s,
                        relapses=s.relapses, machine_state=s.machine_state, machine_since_s=s.machine_since_s)
-
-
-def _reader(indicator: str) -> Callable[[FrameResult], float | None]:
-    """How a limit's scalar indicator is read from a frame (:meth:`Indicator.value` without its check per call)."""
-    read = LIMITABLE[indicator].read
-    if read is None:
-        raise TypeError(f"{indicator} is a per-{LIMITABLE[indicator].per} indicator: use values()")
-    return read
 
 
 def _relapse_hold_s(relapses: int) -> float:
