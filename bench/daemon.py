@@ -79,7 +79,7 @@ TOPIC = "bench/{sensor}/block"
 P99_TARGET_MS = 250.0
 CHANNELS_PER_CORE_TARGET = 1000.0  # issue 14: channels of 25.6 kHz per core of the daemon's own CPU
 _HIST = "edgevib_analysis_latency_seconds"
-_SEQ_T0 = struct.Struct("<Qq")  # seq and t0_ns at offset 8 of the binary block header (common/wire.py)
+SEQ_T0 = struct.Struct("<Qq")  # seq and t0_ns at offset 8 of the binary block header (common/wire.py)
 
 
 # ------------------------------------------------------------------------------------------- the broker
@@ -256,7 +256,7 @@ def _publisher(port: int, channels: list[int], n_channels: int, duration_ns: int
         if wait_s > 0:
             time.sleep(wait_s)
         buf = templates[c]
-        _SEQ_T0.pack_into(buf, 8, k, due - PERIOD_NS)
+        SEQ_T0.pack_into(buf, 8, k, due - PERIOD_NS)
         send(c, buf)
         lags_ms.append((time.time_ns() - due) / 1e6)
         sent += 1

@@ -30,7 +30,6 @@ from __future__ import annotations
 import argparse
 import json
 import random
-import struct
 import sys
 import tempfile
 import threading
@@ -39,7 +38,6 @@ from collections.abc import Callable
 from typing import Any
 
 STAGES = ("link", "client", "ingest", "decode")
-_SEQ_T0 = struct.Struct("<Qq")  # the binary header's sequence number and start time (offset 8)
 
 
 class _Stream:
@@ -69,16 +67,23 @@ class _Stream:
 
 class _Bench:
     def __init__(self, channels: int, rounds: int, random_reads: bool) -> None:
-        import paho.mqtt.client as mqtt
-        from paho.mqtt.enums import CallbackAPIVersion
-
-        from edgevib.bench.daemon import FS_HZ, PERIOD_NS, TOPIC, RawPublisher, bench_config, channel_signal, sensor_id
+        from edgevib.bench.daemon import (
+            FS_HZ,
+            PERIOD_NS,
+            SEQ_T0,
+            TOPIC,
+            RawPublisher,
+            bench_config,
+            channel_signal,
+            sensor_id,
+        )
         from edgevib.common.wire import Block, encode_binary
         from edgevib.daemon.frames import BlockIngest, PointStream, Stats
-        from edgevib.daemon.mqtt_client import AcyclicMatcher
+        from edgevib.daemon.mqtt_client import make_client
         from edgevib.daemon.sources.mqtt import MqttSource
 
         self.rounds, self.random_reads, self.period_ns = rounds, random_reads, PERIOD_NS
+        self.seq_t0 = SEQ_T0  # the binary header's sequence number and start time (offset 8)
         config = bench_config(1883, channels, 0.0, tempfile.mkdtemp(prefix="edgevib-bench-ingest-"))
         self.source = config.sources[0].name
         self.templates: list[bytes] = []
@@ -98,8 +103,7 @@ class _Bench:
         self.mqtt_source._loop_thread = threading.get_ident()  # its callback runs on "the loop": this thread
         self.link = self.mqtt_source.link
         self.deliver = self.link.on_message
-        self.client = mqtt.Client(CallbackAPIVersion.VERSION2, client_id="edgevib-bench-ingest")
-        self.client._on_message_filtered = AcyclicMatcher()  # type: ignore[no-untyped-call]  # as make_client
+        self.client = make_client(self.link.conn, "edgevib-bench-ingest")  # the daemon's own client set-up
         self.client.on_message = self.link._cb_message
         self.link._paho = self.client
         self.link._fd = 1000
@@ -111,7 +115,7 @@ class _Bench:
         for k in range(self.next_round, self.next_round + self.rounds):
             for template in self.templates:
                 buf = bytearray(template)
-                _SEQ_T0.pack_into(buf, 8, k, k * self.period_ns)
+                self.seq_t0.pack_into(buf, 8, k, k * self.period_ns)
                 out.append(bytes(buf))
         if delivered:
             self.next_round += self.rounds

@@ -47,7 +47,6 @@ def test_a_mapping_and_a_function_give_the_same_rows() -> None:
     assert_allclose(a.series("P", "x")[1], [1.0, math.nan, 4.0], equal_nan=True)  # infinite is kept as NaN
 
 
-
 def test_frames_added_together_give_the_rows_of_frames_added_one_by_one() -> None:
     # add_frames is add under one lock: the same rows and columns (grown past the first 8); each value is stored as
     # numpy's float32 cast rounds the Python value (the reference: np.float32(v)), None / NaN / Inf as NaN.
