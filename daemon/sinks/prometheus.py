@@ -47,17 +47,14 @@ log = get_logger("edgevib.metrics")
 def go_float(d: float) -> str:
     """A sample value as the text exposition writes it (prometheus_client's ``floatToGoString``: ``+Inf``, ``-Inf``,
     ``NaN``, else Python's shortest repr, with Go's exponent form for positive values of 1e6 and above)."""
-    if d != d:
-        return "NaN"
-    if d == math.inf:
-        return "+Inf"
-    if d == -math.inf:
-        return "-Inf"
     s = repr(d)
-    dot = s.find(".")
-    if d > 0 and dot > 6:
-        mantissa = f"{s[0]}.{s[1:dot]}{s[dot + 1:]}".rstrip("0.")
-        return f"{mantissa}e+{dot - 1:02d}"
+    if s[-1] > "9":  # "nan", "inf", "-inf": a finite value's repr ends in a digit
+        return "NaN" if d != d else ("+Inf" if d > 0 else "-Inf")
+    if d >= 1e6:
+        dot = s.find(".")
+        if dot > 6:
+            mantissa = f"{s[0]}.{s[1:dot]}{s[dot + 1:]}".rstrip("0.")
+            return f"{mantissa}e+{dot - 1:02d}"
     return s
 
 

@@ -86,7 +86,8 @@ def test_parser_reads_back_every_value_of_the_frames() -> None:
 def test_go_float_matches_prometheus_client(seed: int) -> None:
     rng = random.Random(seed)
     values = [0.0, -0.0, 1.0, -1.0, 1e6, 999999.9, 1234567.0, 1e21, 1.5e22, 1e-7, 2.5e-300, 123456789.125,
-              math.inf, -math.inf, math.nan, 0.1 + 0.2, -1e6, -123456789.0]
+              math.inf, -math.inf, math.nan, 0.1 + 0.2, -1e6, -123456789.0, 5e-324, 1e-5, 1e16, 1.5e16,
+              9999999999999998.0, 999999.9999999999, 1000000.0, -math.nan, 1.7649e9]
     values += [rng.uniform(-1, 1) * 10 ** rng.randint(-12, 15) for _ in range(500)]
     for v in values:
         assert go_float(v) == floatToGoString(v), v
