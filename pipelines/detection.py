@@ -38,6 +38,7 @@ Nagaraja, "Order Statistics", 3rd ed., Wiley 2003, §2.1 (from memory); FIELD_NO
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from functools import lru_cache
 
 import numpy as np
@@ -101,19 +102,29 @@ def line_exceedance(c: float, level_lines: int = LEVEL_LINES, rank: int = LEVEL_
     return _exceedance_numeric(c, n, j, segments)
 
 
-def _exceedance_numeric(c: float, n: int, j: int, segments: int) -> float:
-    """:func:`line_exceedance` by numerical integration over the order statistic's density (any ``segments``)."""
+def _order_statistic_density(n: int, j: int, segments: int) -> Callable[[float], float]:
+    """The density of the ``j``-th order statistic of ``n`` Gamma(k = ``segments``, scale 1/k) variables (a noise
+    line's power in units of its mean, averaged over ``segments`` segments)."""
     k = float(segments)
     log_norm = special.gammaln(n + 1) - special.gammaln(j) - special.gammaln(n - j + 1)
 
-    def integrand(u: float) -> float:
-        # density of the j-th order statistic of n Gamma(k, scale 1/k) variables, times the test line's tail
+    def density(u: float) -> float:
         cdf = special.gammainc(k, k * u)
         if cdf <= 0.0 or cdf >= 1.0:
             return 0.0
         log_pdf = math.log(k) + (k - 1) * math.log(k * u) - k * u - special.gammaln(k)
-        log_f = log_norm + (j - 1) * math.log(cdf) + (n - j) * math.log1p(-cdf) + log_pdf
-        return float(special.gammaincc(k, k * c * u) * math.exp(log_f))
+        return math.exp(log_norm + (j - 1) * math.log(cdf) + (n - j) * math.log1p(-cdf) + log_pdf)
+
+    return density
+
+
+def _exceedance_numeric(c: float, n: int, j: int, segments: int) -> float:
+    """:func:`line_exceedance` by numerical integration over the order statistic's density (any ``segments``)."""
+    k = float(segments)
+    density = _order_statistic_density(n, j, segments)
+
+    def integrand(u: float) -> float:  # the density times the test line's tail
+        return float(special.gammaincc(k, k * c * u) * density(u))
 
     value, _ = integrate.quad(integrand, 0.0, np.inf, limit=200, epsabs=1e-15, epsrel=1e-9)
     return float(min(max(value, 0.0), 1.0))
@@ -126,17 +137,8 @@ def level_mean_factor(level_lines: int = LEVEL_LINES, rank: int = LEVEL_RANK, se
     n, j = level_lines, rank
     if segments == 1:
         return float(sum(1.0 / i for i in range(n - j + 1, n + 1)))
-    k = float(segments)
-    log_norm = special.gammaln(n + 1) - special.gammaln(j) - special.gammaln(n - j + 1)
-
-    def integrand(u: float) -> float:
-        cdf = special.gammainc(k, k * u)
-        if cdf <= 0.0 or cdf >= 1.0:
-            return 0.0
-        log_pdf = math.log(k) + (k - 1) * math.log(k * u) - k * u - special.gammaln(k)
-        return u * math.exp(log_norm + (j - 1) * math.log(cdf) + (n - j) * math.log1p(-cdf) + log_pdf)
-
-    value, _ = integrate.quad(integrand, 0.0, np.inf, limit=200)
+    density = _order_statistic_density(n, j, segments)
+    value, _ = integrate.quad(lambda u: u * density(u), 0.0, np.inf, limit=200)
     return float(value)
 
 
