@@ -102,7 +102,7 @@ class _Bench:
         self.mqtt_source = MqttSource.from_config(config.sources[0], self.ingest)
         self.mqtt_source._loop_thread = threading.get_ident()  # its callback runs on "the loop": this thread
         self.link = self.mqtt_source.link
-        self.deliver = self.link.on_message
+        self.deliver = self.link.on_payload
         self.client = make_client(self.link.conn, "edgevib-bench-ingest")  # the daemon's own client set-up
         self.client.on_message = self.link._cb_message
         self.link._paho = self.client
@@ -140,10 +140,10 @@ class _Bench:
             self.client._sock = reader  # as MqttLink wraps paho's socket when it opens
             counted = [0]
 
-            def count(_msg: Any) -> None:
+            def count(_topic: str, _payload: bytes) -> None:
                 counted[0] += 1
 
-            self.link.on_message = self.deliver if stage == "link" else count
+            self.link.on_payload = self.deliver if stage == "link" else count
 
             def work() -> None:
                 while sock.pos < len(stream) or reader.ready():

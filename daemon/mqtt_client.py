@@ -9,6 +9,11 @@ every second (``loop_misc``).  A received block thus costs no thread switch and 
   ``reconnect_min_s`` and ``reconnect_max_s`` (doubling per failure, starting again after a CONNACK) — in one
   place, for every client.  Each attempt (TCP connect with its timeout, TLS handshake) blocks, so it runs in the
   link's own thread; the socket is non-blocking and served by the event loop from then on.
+* **QoS 0 messages cut by the link.**  A link given ``on_payload`` (the MQTT source: topic and payload only) reads
+  a QoS 0 PUBLISH that lies whole in its read chunk itself, when paho is between packets: one copy of the payload
+  and nothing else, instead of paho's message objects (:meth:`MqttLink._take_publishes`).  Everything else — other
+  packets, QoS 1 and 2, MQTT 5 properties, a topic that is not UTF-8, malformed or chunk-crossing packets, TLS —
+  goes through paho as before.
 * **Callbacks** from paho run on the event loop, inside its read or write, and do almost nothing: state changes
   and acknowledgements are handed on with ``loop.call_soon`` (outside paho's call and its locks); no exception
   escapes into paho or into the loop.
@@ -56,6 +61,7 @@ __all__ = [
     "MAX_STRIKES",
     "Availability",
     "MqttLink",
+    "PayloadHandler",
     "TopicRefused",
     "describe_connect_failure",
     "describe_reason",
@@ -66,6 +72,8 @@ __all__ = [
 log = get_logger("edgevib.mqtt")
 MAX_STRIKES = 3
 """Connection drops in a row, each with the same topic's QoS 1 message oldest in flight, before it is set aside."""
+PayloadHandler = Callable[[str, bytes], None]
+"""A received message's topic and payload (:class:`MqttLink`'s ``on_payload``)."""
 _NewProperties: Any = Properties  # paho's constructor is not annotated
 TRANSIENT_REASONS = frozenset({0x97})  # Quota exceeded: worth retrying later (MQTT 5.0 §2.4, reason codes)
 
@@ -303,6 +311,49 @@ class _ChunkedReader:
             return b""
         raise BlockingIOError
 
+    def take_publish(self, v5: bool) -> tuple[str, bytes] | None:
+        """The QoS 0 PUBLISH packet at the reader's position, if it is whole in the chunk, taken out of it: its topic
+        and its payload (one copy).  None, and nothing taken, for whatever paho is to read instead: another packet
+        type, QoS 1 or 2, a packet that goes on past the chunk, a malformed one (a remaining length of more than
+        four bytes, a topic running past the packet's end), an empty topic or one that is not UTF-8, and in MQTT 5
+        a packet with properties.
+
+        The layout (MQTT 3.1.1 §2.2 and §3.3, MQTT 5.0 §3.3): the fixed header's first byte (type 3 in the high
+        four bits; DUP, QoS and RETAIN below: QoS 0 here, DUP and RETAIN taken as they come, as paho takes them),
+        the remaining length (§2.2.3: seven bits a byte, least significant first, at most four bytes), the topic
+        as a two-byte length and UTF-8 (§1.5.3), no packet identifier at QoS 0, in MQTT 5 the property length (a
+        variable byte integer, §3.3.2.3: only 0 is taken here), then the payload up to the remaining length."""
+        buf, pos, end = self._buf, self._pos, self._end
+        if pos >= end or buf[pos] & 0xF6 != 0x30:
+            return None
+        i, length, shift = pos + 1, 0, 0
+        while True:
+            if i == end or shift > 21:  # the length goes on past the chunk, or past four bytes (paho's error)
+                return None
+            byte = buf[i]
+            i += 1
+            length |= (byte & 0x7F) << shift
+            if byte < 0x80:
+                break
+            shift += 7
+        stop = i + length
+        if stop > end or length < 2:
+            return None
+        start = i + 2
+        topic_end = body = start + (buf[i] << 8 | buf[i + 1])
+        if topic_end == start or topic_end > stop:
+            return None
+        if v5:
+            if body == stop or buf[body] != 0:
+                return None
+            body += 1
+        try:
+            topic = str(self._view[start:topic_end], "utf-8")
+        except UnicodeDecodeError:
+            return None
+        self._pos = stop
+        return topic, bytes(self._view[body:stop])
+
     def pending(self) -> int:
         return self._end - self._pos + _pending(self.sock)
 
@@ -339,6 +390,11 @@ class MqttLink:
     on_message
         Called on the event loop **inside paho's read** with each message (it must not block; exceptions are
         caught).
+    on_payload
+        Instead of ``on_message``, for an owner that needs only each message's topic and payload (the MQTT source):
+        called the same way with ``(topic, payload)``.  QoS 0 PUBLISH packets that lie whole in a read chunk are
+        then cut out of the chunk by the link itself, without paho's per-packet work (:meth:`_take_publishes`);
+        every other packet, and every message over TLS, still comes through paho and its ``on_message``.
     on_ack
         Called on the event loop with ``(mid, status, reason)`` for each QoS ≥ 1 message: ``"ok"`` (PUBACK),
         ``"refused"`` (PUBACK with a failure reason code: the broker will not take it), ``"retry"`` (a transient
@@ -354,6 +410,7 @@ class MqttLink:
                  session_expiry_s: int = 0, availability: Availability | None = None,
                  on_state: Callable[[bool], None] | None = None,
                  on_message: Callable[[mqtt.MQTTMessage], None] | None = None,
+                 on_payload: PayloadHandler | None = None,
                  on_ack: Callable[[int, str, str], None] | None = None, redeliver: bool = True,
                  max_inflight: int = 20, max_queued: int = 0) -> None:
         self.conn = conn
@@ -364,7 +421,10 @@ class MqttLink:
         self.session_expiry_s = session_expiry_s
         self.availability = availability
         self.on_state = on_state
+        if on_message is not None and on_payload is not None:
+            raise ValueError("give the link on_message or on_payload, not both")
         self.on_message = on_message
+        self.on_payload = on_payload
         self.on_ack = on_ack
         self.redeliver = redeliver
         self.max_inflight = max_inflight
@@ -393,6 +453,7 @@ class MqttLink:
         self._flush_soon = False  # a _flush is scheduled
         self._misc: asyncio.TimerHandle | None = None
         self.chunked_reads = True  # read the socket in chunks (see _ChunkedReader); False: paho reads it itself
+        self.fast_publishes = 0  # QoS 0 PUBLISH packets taken from the chunk by the link, not by paho
         self._log = log.bind(role=role, url=conn.url)
         self.rlog = RateLimitedLogger(self._log, interval_s=10.0)
 
@@ -572,10 +633,16 @@ class MqttLink:
                 while self._tls and self._fd is not None and _pending(client.socket()) > 0:
                     client.loop_read()
                 return
+            fast = (self.on_payload is not None and not self._tls and client.on_log is None
+                    and client.logger is None)  # (paho would log each PUBLISH to them)
             for _ in range(MAX_READS):
                 if not reader.fill():
                     break
                 while self._fd is not None and reader.ready():  # every packet in the chunk
+                    if fast:
+                        self._take_publishes(client, reader)
+                        if self._fd is None or not reader.ready():
+                            break
                     mark = reader.mark()
                     client.loop_read()
                     if reader.mark() == mark:  # paho took nothing: the next readiness goes on
@@ -584,6 +651,39 @@ class MqttLink:
                     break
         except Exception as exc:  # never let an exception escape into the event loop's callback
             self._callback_failed("read", repr(exc))
+
+    def _take_publishes(self, client: mqtt.Client, reader: _ChunkedReader) -> None:
+        """Hand ``on_payload`` the QoS 0 PUBLISH packets at the chunk's current place, one after the other, as long
+        as they lie whole in the chunk — when paho is between packets (it has read nothing of the next one).
+
+        What paho does for such a packet and would show us is done here: the message to the handler (inside a read
+        on the event loop, an exception contained as in :meth:`_cb_message`), and the time of the last bytes
+        received, which its keep-alive goes by (paho 2.x ``Client._packet_read`` sets ``_last_bytes_received``
+        after every packet).  What the link never uses is left out: the ``MQTTMessage`` and its properties,
+        paho's debug log line (not taken when paho has a logger or ``on_log``), filtered callbacks (the link
+        registers none).  A packet the reader does not take (:meth:`_ChunkedReader.take_publish`) stops the run:
+        paho reads it."""
+        packet = client._in_packet  # paho's incoming-packet state, reset whole after each packet it has read
+        if packet["command"] or packet["have_remaining"] or packet["remaining_count"]:
+            return  # paho is inside a packet: the chunk goes on with the rest of it
+        handler = self.on_payload
+        if handler is None:
+            return
+        v5 = self.v5
+        taken = 0
+        while self._fd is not None:
+            message = reader.take_publish(v5)
+            if message is None:
+                break
+            taken += 1
+            try:
+                handler(*message)
+            except Exception as exc:  # the handler's own bug must not break the read
+                self._post(self._callback_failed, "on_message", repr(exc))
+        if taken:
+            self.fast_publishes += taken
+            with client._msgtime_mutex:
+                client._last_bytes_received = mqtt.time_func()
 
     def _on_writable(self) -> None:
         client = self._paho
@@ -731,11 +831,12 @@ class MqttLink:
                        int(getattr(reason, "value", 0)))
 
     def _cb_message(self, _client: mqtt.Client, _userdata: Any, msg: mqtt.MQTTMessage) -> None:
-        handler = self.on_message
-        if handler is None:
-            return
         try:
-            handler(msg)
+            if self.on_payload is not None:
+                # paho's topic: a UnicodeDecodeError when not UTF-8; its payload: bytes (bytes() takes no copy of it)
+                self.on_payload(msg.topic, bytes(msg.payload))
+            elif self.on_message is not None:
+                self.on_message(msg)
         except Exception as exc:  # the handler's own bug must not break paho's loop
             self._post(self._callback_failed, "on_message", repr(exc))
 

@@ -5,14 +5,15 @@ exponential backoff; every (re)connect resubscribes; a refusal — TCP refused, 
 failure such as bad credentials — is logged as a rate-limited warning naming the URL and the reason, never a
 secret).  Connection state goes to ``Ingest.connection`` (which counts reconnects).
 
-The link's client is driven from the event loop and its message callback runs there, inside paho's read: a
-payload goes straight to the ingest (decoding, validation, frame assembly), with nothing queued in between.  Called
-from another thread, or while payloads are still waiting, the callback instead appends the payload to a hand-over
-queue and schedules one drain (``loop.call_soon_threadsafe``/``call_soon``) when none is pending yet; the payloads
-waiting for the drain are bounded **by count and by bytes**: beyond either bound new payloads are dropped and
-counted at once (reason ``overload``), so a flood of large payloads cannot exhaust memory.  A payload above
-``max_payload_bytes`` is never copied: it is counted as received and rejected (reason ``too_large``) at once, in the
-same hand-over.
+The link's client is driven from the event loop and the source's callback (the link's ``on_payload``: topic and
+payload, from paho's message or, for a QoS 0 PUBLISH whole in a read chunk, cut out by the link) runs there, inside
+the read: a payload goes straight to the ingest (decoding, validation, frame assembly), with nothing queued in
+between.  Called from another thread, or while payloads are still waiting, the callback instead appends the payload
+to a hand-over queue and schedules one drain (``loop.call_soon_threadsafe``/``call_soon``) when none is pending
+yet; the payloads waiting for the drain are bounded **by count and by bytes**: beyond either bound new payloads are
+dropped and counted at once (reason ``overload``), so a flood of large payloads cannot exhaust memory.  A payload
+above ``max_payload_bytes`` is never copied: it is counted as received and rejected (reason ``too_large``) at once,
+in the same hand-over.
 
 MQTT 3.1.1 and 5, TLS (CA pinning, client certificate and key with passphrase), username/password, QoS 0/1.
 """
@@ -90,7 +91,7 @@ class MqttSource:
         self._drops: dict[str, tuple[int, str, int, str]] = {}  # reason -> (count, last topic, size, queue state)
         self._wake_scheduled = False  # a _drain is queued on the loop: no need to wake it again
         subs = [(t, qos) for t in [*self.topics, *sorted(self.speed_topics - set(self.topics))]]
-        self.link = MqttLink(connection, role=f"source {name}", subscriptions=subs, on_message=self._on_message,
+        self.link = MqttLink(connection, role=f"source {name}", subscriptions=subs, on_payload=self._on_payload,
                              on_state=self._on_state)
         self.rlog = self.link.rlog
 
@@ -112,12 +113,15 @@ class MqttSource:
     # -- inside paho's read (or any thread): hand over, never raise (MqttLink catches what escapes)
 
     def _on_message(self, msg: mqtt.MQTTMessage) -> None:
+        """A paho message: its topic and payload as :meth:`_on_payload` takes them."""
+        self._on_payload(msg.topic, bytes(msg.payload))
+
+    def _on_payload(self, topic: str, payload: bytes) -> None:
         received_ns = time.time_ns()
-        size = len(msg.payload)
-        topic = msg.topic
+        size = len(payload)
         if size <= self.max_payload_bytes and threading.get_ident() == self._loop_thread and not self._pending:
             # on the event loop with nothing waiting (the usual case): straight to the ingest, in order
-            self._deliver(topic, bytes(msg.payload), received_ns)
+            self._deliver(topic, payload, received_ns)
             return
         with self._lock:
             if size > self.max_payload_bytes:
@@ -127,7 +131,7 @@ class MqttSource:
             else:
                 self._pending += 1
                 self._pending_bytes += size
-                self._inbox.append((topic, bytes(msg.payload), received_ns))
+                self._inbox.append((topic, payload, received_ns))
             wake = not self._wake_scheduled
             self._wake_scheduled = True
         if wake:  # one hand-over per burst: the event loop drains everything queued by then
