@@ -11,7 +11,7 @@ from __future__ import annotations
 import math
 
 import pytest
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
 from edgevib.pipelines.machine_state import MachineState, MachineStateSpec, observe, speed_slope_per_s
@@ -141,15 +141,19 @@ def test_idling_at_the_threshold_does_not_flap(centre: float, amplitude: float, 
 
 @settings(max_examples=60, deadline=None)
 @given(levels=st.lists(st.floats(0.0, 0.5), min_size=5, max_size=60))
+@example(levels=[0.0, 0.0, 0.0, 0.5, 0.16])  # exactly at the off threshold, as decimals
 def test_level_votes_with_hysteresis(levels: list[float]) -> None:
     # property: without a speed, a machine turns exactly while its point's level stays above the hysteresis
-    # threshold of its previous verdict (0.2 on, 0.16 off), and a start always begins with "starting"
+    # threshold of its previous verdict (0.2 on; off below (1 − hysteresis) × 0.2, the module's documented rule:
+    # 0.16 up to the rounding of that product, 0.16000000000000003 in doubles), and a start always begins with
+    # "starting"
+    off = SPEC.run_level_mm_s * (1.0 - SPEC.hysteresis)
     s = MachineState()
     turning = False
     for i, v in enumerate(levels):
         before = s.state
         s = observe(s, SPEC, float(i), "A", velocity_rms_mm_s=v)
-        turning = v >= (0.16 if turning else 0.2)
+        turning = v >= (off if turning else SPEC.run_level_mm_s)
         assert s.turning == turning and s.basis == "level"
         if turning and before == "stopped":
             assert s.state == "starting"
