@@ -29,8 +29,6 @@ import time
 from collections import deque
 from collections.abc import Callable, Iterable
 
-import paho.mqtt.client as mqtt
-
 from edgevib.daemon.config import MqttConnection, MqttSourceConfig
 from edgevib.daemon.interfaces import Ingest, SourceError
 from edgevib.daemon.logs import get_logger
@@ -111,10 +109,6 @@ class MqttSource:
         return self._pending_bytes
 
     # -- inside paho's read (or any thread): hand over, never raise (MqttLink catches what escapes)
-
-    def _on_message(self, msg: mqtt.MQTTMessage) -> None:
-        """A paho message: its topic and payload as :meth:`_on_payload` takes them."""
-        self._on_payload(msg.topic, bytes(msg.payload))
 
     def _on_payload(self, topic: str, payload: bytes) -> None:
         received_ns = time.time_ns()

@@ -105,10 +105,7 @@ class _Ingest:
         self.received_flags.append(received)
 
 
-class _Msg:
-    def __init__(self, payload: bytes) -> None:
-        self.payload = payload
-        self.topic = "fwb/quarry-lane/P-101/P-101-DE-H/block"
+TOPIC = "fwb/quarry-lane/P-101/P-101-DE-H/block"
 
 
 async def test_thread_to_loop_queue_is_bounded_by_bytes(tmp_path: Path) -> None:
@@ -125,7 +122,7 @@ async def test_thread_to_loop_queue_is_bounded_by_bytes(tmp_path: Path) -> None:
     def flood() -> None:  # paho's thread while the event loop is busy: 800 x 4 MiB
         nonlocal peak
         for _ in range(800):
-            src._on_message(_Msg(payload))  # type: ignore[arg-type]
+            src._on_payload(TOPIC, payload)
             peak = max(peak, src.pending_bytes)
 
     t = threading.Thread(target=flood)

@@ -25,11 +25,7 @@ class _Ingest:
         self.rejected.append(reason)
 
 
-class _Msg:
-    topic = "fwb/quarry-lane/P-101/P-101-DE-H/block"
-
-    def __init__(self, payload: bytes) -> None:
-        self.payload = payload
+TOPIC = "fwb/quarry-lane/P-101/P-101-DE-H/block"
 
 
 def _source(ingest: _Ingest, max_payload_bytes: int = 1024) -> MqttSource:
@@ -43,14 +39,14 @@ def _source(ingest: _Ingest, max_payload_bytes: int = 1024) -> MqttSource:
 async def test_payloads_keep_their_order_across_threads_and_the_loop() -> None:
     ingest = _Ingest()
     src = _source(ingest)
-    src._on_message(_Msg(b"a"))  # type: ignore[arg-type]  # on the loop, nothing waiting
-    t = threading.Thread(target=src._on_message, args=(_Msg(b"b"),))  # from another thread: queued
+    src._on_payload(TOPIC, b"a")  # on the loop, nothing waiting
+    t = threading.Thread(target=src._on_payload, args=(TOPIC, b"b"))  # from another thread: queued
     t.start()
     t.join()
-    src._on_message(_Msg(b"c"))  # type: ignore[arg-type]  # on the loop while "b" waits: after it
-    src._on_message(_Msg(b"x" * 2000))  # type: ignore[arg-type]  # over max_payload_bytes: rejected, never copied
+    src._on_payload(TOPIC, b"c")  # on the loop while "b" waits: after it
+    src._on_payload(TOPIC, b"x" * 2000)  # over max_payload_bytes: rejected, never copied
     await asyncio.sleep(0.05)
-    src._on_message(_Msg(b"d"))  # type: ignore[arg-type]
+    src._on_payload(TOPIC, b"d")
     assert ingest.payloads == [b"a", b"b", b"c", b"d"]  # arrival order (MQTT keeps a topic's order, 3.1.1 §4.6)
     assert ingest.rejected == ["too_large"]
     assert src.pending_bytes == 0
