@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import bisect
 import gc
 import random
 import struct
@@ -26,35 +27,22 @@ def _remaining_length(n: int) -> bytes:
             return bytes(out)
 
 
-def _publish(topic: str, payload: bytes) -> bytes:
-    """A QoS 0 PUBLISH packet (MQTT 3.1.1 §3.3): type 3 in the fixed header, the topic as a length-prefixed UTF-8
-    string (§1.5.3), then the payload."""
-    raw = topic.encode("utf-8")
-    body = struct.pack(">H", len(raw)) + raw + payload
-    return b"\x30" + _remaining_length(len(body)) + body
+def _pub(topic: bytes, payload: bytes, *, qos: int = 0, mid: int = 1, v5: bool = False, props: bytes = b"",
+         flags: int = 0, length: bytes | None = None) -> bytes:
+    """A PUBLISH (MQTT 3.1.1 §3.3, MQTT 5.0 §3.3): first byte 0x30 | QoS << 1 | DUP/RETAIN ``flags`` (§3.3.1), the
+    topic as a two-byte length and its bytes (§1.5.3), the packet identifier at QoS 1 and 2 (§3.3.2.2), in MQTT 5
+    the property length and properties (§3.3.2.3), then the payload.  ``length`` replaces the remaining length's
+    encoding (for non-minimal ones)."""
+    body = struct.pack(">H", len(topic)) + topic
+    if qos:
+        body += struct.pack(">H", mid)
+    if v5:
+        body += _remaining_length(len(props)) + props
+    body += payload
+    return bytes((0x30 | qos << 1 | flags,)) + (length or _remaining_length(len(body))) + body
 
 
 PINGRESP = b"\xd0\x00"  # MQTT 3.1.1 §3.13: a packet with no remaining bytes
-
-
-class _Trickle:
-    """A non-blocking socket whose reads return at most ``step`` bytes of a prepared stream."""
-
-    def __init__(self, data: bytes, step: int) -> None:
-        self.data, self.step, self.pos = data, step, 0
-
-    def recv_into(self, buf: bytearray) -> int:
-        n = min(len(buf), self.step, len(self.data) - self.pos)
-        if n == 0:
-            raise BlockingIOError
-        memoryview(buf)[:n] = self.data[self.pos:self.pos + n]
-        self.pos += n
-        return n
-
-    def fileno(self) -> int:
-        return 1000
-
-    def close(self) -> None: ...
 
 
 def _messages() -> list[tuple[str, bytes]]:
@@ -71,13 +59,13 @@ def test_every_packet_arrives_whole_and_in_order(step: int) -> None:
     expected = _messages()
     if step < 64:  # a few bytes at a time: the smaller packets suffice to cut every header at every place
         expected = expected[:6]
-    stream = b"".join(_publish(t, p) + PINGRESP for t, p in expected)
+    stream = b"".join(_pub(t.encode(), p) + PINGRESP for t, p in expected)
     got: list[tuple[str, bytes]] = []
     conn = MqttConnection.model_validate({"url": "mqtt://127.0.0.1:1", "client_id": "edgevib-reader-test"})
     link = MqttLink(conn, role="test", on_message=lambda m: got.append((m.topic, bytes(m.payload))))
     client = mqtt.Client(CallbackAPIVersion.VERSION2, client_id="edgevib-reader-test")
     client.on_message = link._cb_message
-    sock = _Trickle(stream, step)
+    sock = _Cuts(stream, list(range(step, len(stream), step)))
     reader = _ChunkedReader(sock)
     client._sock = reader  # as MqttLink wraps paho's socket when it opens
     link._paho, link._fd = client, sock.fileno()
@@ -110,13 +98,13 @@ def test_received_messages_leave_no_cyclic_garbage() -> None:
     # object of the daemon): 40 messages through the link and a client made as the daemon makes it find nothing
     # for gc.collect (paho's own matcher leaves six objects per message)
     messages = [(f"fwb/s{i}/block", bytes(100)) for i in range(40)]
-    stream = b"".join(_publish(t, p) for t, p in messages)
+    stream = b"".join(_pub(t.encode(), p) for t, p in messages)
     got: list[str] = []
     conn = MqttConnection.model_validate({"url": "mqtt://127.0.0.1:1", "client_id": "edgevib-reader-test"})
     link = MqttLink(conn, role="test", on_message=lambda m: got.append(m.topic))
     client = make_client(conn)
     client.on_message = link._cb_message
-    sock = _Trickle(stream, READ_CHUNK)
+    sock = _Cuts(stream, list(range(READ_CHUNK, len(stream), READ_CHUNK)))
     reader = _ChunkedReader(sock)
     client._sock = reader
     link._paho, link._fd = client, sock.fileno()
@@ -141,20 +129,6 @@ def test_received_messages_leave_no_cyclic_garbage() -> None:
 # (Client._packet_read, decode_publish, _handle_publish).  The packets are written from MQTT 3.1.1 §2.2 (fixed header,
 # remaining length §2.2.3), §3.3 (PUBLISH), §3.9 (SUBACK), §3.13 (PINGRESP) and MQTT 5.0 §3.3 (PUBLISH, its
 # property length §3.3.2.3), §3.9 (SUBACK), §2.2.2 (properties).
-
-
-def _pub(topic: bytes, payload: bytes, *, qos: int = 0, mid: int = 1, v5: bool = False, props: bytes = b"",
-         flags: int = 0, length: bytes | None = None) -> bytes:
-    """A PUBLISH: first byte 0x30 | QoS << 1 | DUP/RETAIN ``flags`` (§3.3.1), the topic as a two-byte length and
-    its bytes, the packet identifier at QoS 1 and 2 (§3.3.2.2), in MQTT 5 the property length and properties
-    (§3.3.2.3), then the payload.  ``length`` replaces the remaining length's encoding (for non-minimal ones)."""
-    body = struct.pack(">H", len(topic)) + topic
-    if qos:
-        body += struct.pack(">H", mid)
-    if v5:
-        body += _remaining_length(len(props)) + props
-    body += payload
-    return bytes((0x30 | qos << 1 | flags,)) + (length or _remaining_length(len(body))) + body
 
 
 def _suback(mid: int, v5: bool) -> bytes:
@@ -193,7 +167,8 @@ def _stream(v5: bool) -> list[tuple[bytes, bool]]:
 
 
 class _Cuts:
-    """A non-blocking socket serving a prepared stream, every read ending at the next cut (``recv`` for paho
+    """A non-blocking socket serving a prepared stream, every read ending at the next cut (cuts every ``step`` bytes:
+    reads of at most ``step`` bytes) (``recv`` for paho
     reading its socket itself, ``recv_into`` for the link's reader); what is sent is kept."""
 
     def __init__(self, data: bytes, cuts: list[int]) -> None:
@@ -205,7 +180,7 @@ class _Cuts:
     def _take(self, n: int) -> bytes:
         if self.pos >= len(self.data):
             raise BlockingIOError
-        stop = min(next(b for b in self.bounds if b > self.pos), self.pos + n)
+        stop = min(self.bounds[bisect.bisect_right(self.bounds, self.pos)], self.pos + n)
         self.reads.append((self.pos, stop))
         out, self.pos = self.data[self.pos:stop], stop
         return out
