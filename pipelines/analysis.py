@@ -26,7 +26,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from functools import lru_cache
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 import numpy.typing as npt
@@ -71,6 +71,7 @@ from edgevib.pipelines.types import (
 __all__ = [
     "FAMILIES",
     "AnalysisKernel",
+    "TransformLengths",
     "analyze_frames",
     "default_envelope_band",
     "kernel_for",
@@ -288,6 +289,19 @@ def default_envelope_band(fs_hz: float, bandwidth_hz: tuple[float, float] | None
     return envelope_band(fs, band, shaft)
 
 
+class TransformLengths(NamedTuple):
+    """The transforms :meth:`AnalysisKernel.analyze` makes of each frame, in single precision: a real forward
+    transform of ``frame`` samples; with an envelope stage, a complex inverse transform of ``envelope`` points (of
+    ``envelope_band_lines`` band lines, the rest zeros) and a real forward transform of two rows of ``envelope``
+    samples (the envelope and its square); a real inverse transform of two rows of ``waveform`` samples (velocity
+    and displacement).  ``envelope`` is 0 where the plan has no envelope stage."""
+
+    frame: int
+    envelope: int
+    envelope_band_lines: int
+    waveform: int
+
+
 class AnalysisKernel:
     """Precomputed, read-only state for the frames of one plan; :meth:`analyze` does only arithmetic."""
 
@@ -426,6 +440,13 @@ class AnalysisKernel:
                                       f"shaft speed (a defect line needs {MIN_LINE + 1} lines from DC)",
                                       items=tuple(k for k, _ in short)))
         self.notes: tuple[PlanNote, ...] = tuple(notes)
+
+    @property
+    def transform_lengths(self) -> TransformLengths:
+        """The lengths of the transforms :meth:`analyze` makes of each frame (a benchmark's floor is their cost)."""
+        e_lo, e_hi = self._env_lines
+        return TransformLengths(frame=self._n, envelope=self._env_m if self._env else 0,
+                                envelope_band_lines=e_hi - e_lo + 1 if self._env else 0, waveform=self._mv)
 
     def analyze(self, x_g: npt.ArrayLike, shaft_hz: npt.ArrayLike | None = None) -> list[FrameIndicators]:
         """Indicators of frames ``x_g`` (channels, n_samples) in g; see :func:`analyze_frames`."""
