@@ -9,7 +9,10 @@ channel every 0.64 s, phases spread evenly, each block published when its last s
 that schedule, so a late publisher shows up in the latency).  Payloads are encoded once; only the sequence number
 and start time are patched per block, and at QoS 0 a block goes out as one ``sendmsg`` of a prebuilt MQTT header
 and the payload (:class:`RawPublisher`), so the load generator leaves the cores to the broker and the daemon.
-Frames are 16384 samples, overlap 0 by default (one frame per block).
+Frames are 16384 samples, overlap 0 by default (one frame per block).  Every point has the same pump bearing by
+default, so all share one analysis plan and the daemon analyses them in large batches; ``--plans K`` gives the
+points K distinct bearing geometries, as a plant's machines have, and each plan's points are analysed in a call
+of their own (at K = channels, one frame per call).
 
 Because every daemon instance runs in its own process, its CPU time and memory are its own: publishers, the
 broker and the benchmark's coordinator are other processes.  ``--instances N`` splits the channels between N
@@ -359,9 +362,20 @@ def histogram_quantile(before: dict[float, float], after: dict[float, float], q:
     return next(le for le, count in delta if count >= q * total)
 
 
+def bench_bearing(plan: int) -> dict[str, float]:
+    """Bearing geometry number ``plan`` of the benchmark's points (0: the pumps' own; others differ in element
+    count and ball diameter, so each makes a distinct analysis plan)."""
+    if plan == 0:
+        return {"elements": 9, "ball_diameter_mm": 7.94, "pitch_diameter_mm": 39.04, "contact_angle_deg": 0.0}
+    return {"elements": 7 + plan % 5, "ball_diameter_mm": 6.0 + 0.05 * (plan // 5 % 40),
+            "pitch_diameter_mm": 39.04 + 2.0 * (plan // 200), "contact_angle_deg": 0.0}
+
+
 def bench_config(port: int, channels: int, overlap: float, state_dir: str,
-                 shard: tuple[int, int] | None = None) -> Any:
+                 shard: tuple[int, int] | None = None, plans: int = 1) -> Any:
     """The configuration of one benchmark instance: ``channels`` points of one pump each, all on one broker.
+    Point ``c`` has bearing geometry ``c % plans`` (:func:`bench_bearing`): ``plans`` distinct analysis plans,
+    whose points the daemon analyses in one call per plan.
 
     With ``shard = (index, count)`` the instance owns the points of its hash shard (``[site] shard``) and, as the
     README advises for sharded instances, subscribes to its own sensors' topics only, so the broker splits the
@@ -386,8 +400,7 @@ def bench_config(port: int, channels: int, overlap: float, state_dir: str,
         "points": [{"id": point_id(c), "machine": f"P-{c:04d}", "axis": "horizontal",
                     "source": "bench-broker", "sensor": sensor_id(c), "fs_hz": FS_HZ, "block_samples": BLOCK,
                     "sensor_type": "piezo", "bandwidth_hz": [0.5, 10000.0],
-                    "bearing": {"elements": 9, "ball_diameter_mm": 7.94, "pitch_diameter_mm": 39.04,
-                                "contact_angle_deg": 0.0}}
+                    "bearing": bench_bearing(c % plans)}
                    for c in range(channels)],
     }
     return parse_config(doc, base_dir=state_dir)
@@ -480,6 +493,7 @@ class InstanceSpec:
     uvloop: bool = False
     keep_freed: bool = False
     switch_interval_s: float | None = None
+    plans: int = 1
 
 
 def _instance_main(spec: InstanceSpec, out: Any, ctl: Any) -> None:
@@ -512,7 +526,7 @@ async def _run_instance(spec: InstanceSpec, out: Any, ctl: Any) -> Row:
     from edgevib.daemon.app import Daemon
 
     state_dir = tempfile.mkdtemp(prefix="edgevib-bench-state-")
-    config = bench_config(spec.port, spec.channels, spec.overlap, state_dir, spec.shard)
+    config = bench_config(spec.port, spec.channels, spec.overlap, state_dir, spec.shard, spec.plans)
     own = len(config.points)
     rss_base = _rss_mb()
     registry = CollectorRegistry()
@@ -633,7 +647,7 @@ def _get(q: Any, timeout_s: float, procs: list[Any]) -> dict[str, Any]:
 def run_level(broker: Broker, channels: int, seconds: float, warmup_s: float, overlap: float, publishers: int,
               qos: int, seed: int, alarms: bool = True, instances: int = 1, cpu: int | None = None,
               uvloop: bool = False, danger: bool = False, keep_freed: bool = False,
-              switch_interval_s: float | None = None) -> list[Row]:
+              switch_interval_s: float | None = None, plans: int = 1) -> list[Row]:
     """One load level: ``instances`` daemon processes (hash shards when more than one) and publisher processes
     streaming ``channels`` channels through ``broker``; one :class:`Row` per instance."""
     ctx = mp.get_context("spawn")
@@ -646,7 +660,7 @@ def run_level(broker: Broker, channels: int, seconds: float, warmup_s: float, ov
             spec = InstanceSpec(port=broker.port, channels=channels, overlap=overlap,
                                 shard=None if instances == 1 else (i, instances), seconds=seconds, alarms=alarms,
                                 cpu=None if cpu is None else (cpu + i) % (os.cpu_count() or 1), uvloop=uvloop,
-                            keep_freed=keep_freed, switch_interval_s=switch_interval_s)
+                                keep_freed=keep_freed, switch_interval_s=switch_interval_s, plans=plans)
             p = ctx.Process(target=_instance_main, args=(spec, out_i, ctls[i]), daemon=True)
             p.start()
             inst.append(p)
@@ -757,6 +771,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--publishers", type=int, default=2, help="publisher processes (default 2)")
     p.add_argument("--qos", type=int, choices=(0, 1), default=0)
     p.add_argument("--seed", type=int, default=1)
+    p.add_argument("--plans", type=int, default=1, metavar="K",
+                   help="distinct bearing geometries cycled over the points, hence K analysis plans (default 1: "
+                        "every point on one plan, analysed in large batches; a plant's points differ)")
     p.add_argument("--cpu", type=int, default=None,
                    help="pin the daemon instance's process to this CPU core (instance i to core N+i)")
     p.add_argument("--without-alarms", action="store_true",
@@ -800,9 +817,10 @@ def level_summary(rows: list[Row]) -> dict[str, Any]:
 def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     if args.seconds <= 0 or args.warmup < 0 or not 0 <= args.overlap < 1 or args.publishers < 1 \
-            or not 1 <= args.instances <= 16 or (args.switch_interval is not None and args.switch_interval <= 0):
+            or not 1 <= args.instances <= 16 or (args.switch_interval is not None and args.switch_interval <= 0) \
+            or args.plans < 1:
         print("error: --seconds must be > 0, --warmup >= 0, 0 <= --overlap < 1, --publishers >= 1, "
-              "1 <= --instances <= 16, --switch-interval > 0", file=sys.stderr)
+              "1 <= --instances <= 16, --switch-interval > 0, --plans >= 1", file=sys.stderr)
         return 2
     broker = Broker()
     levels: list[list[Row]] = []
@@ -811,7 +829,7 @@ def main(argv: list[str] | None = None) -> int:
             rows = run_level(broker, n, args.seconds, args.warmup, args.overlap, args.publishers, args.qos,
                              args.seed, alarms=not args.without_alarms, instances=args.instances, cpu=args.cpu,
                              uvloop=args.uvloop, danger=args.danger, keep_freed=args.keep_freed_memory,
-                             switch_interval_s=args.switch_interval)
+                             switch_interval_s=args.switch_interval, plans=args.plans)
             levels.append(rows)
             if not args.json:
                 _print_level(rows, header=len(levels) == 1)
@@ -826,7 +844,8 @@ def main(argv: list[str] | None = None) -> int:
                           "p99_target_ms": P99_TARGET_MS, "cpu_count": os.cpu_count(),
                           "alarms": not args.without_alarms, "uvloop": args.uvloop, "danger": args.danger,
                           "keep_freed_memory": args.keep_freed_memory,
-                          "switch_interval_s": args.switch_interval or sys.getswitchinterval()},
+                          "switch_interval_s": args.switch_interval or sys.getswitchinterval(),
+                          "plans": args.plans},
                          indent=2))
     else:
         print(f"sustained channels: {sustained} over {args.instances} instance(s) (target: >= 1000 channels per "
