@@ -10,10 +10,11 @@ every second (``loop_misc``).  A received block thus costs no thread switch and 
   place, for every client.  Each attempt (TCP connect with its timeout, TLS handshake) blocks, so it runs in the
   link's own thread; the socket is non-blocking and served by the event loop from then on.
 * **QoS 0 messages cut by the link.**  A link given ``on_payload`` (the MQTT source: topic and payload only) reads
-  a QoS 0 PUBLISH that lies whole in its read chunk itself, when paho is between packets: one copy of the payload
-  and nothing else, instead of paho's message objects (:meth:`MqttLink._take_publishes`).  Everything else — other
-  packets, QoS 1 and 2, MQTT 5 properties, a topic that is not UTF-8, malformed or chunk-crossing packets, TLS —
-  goes through paho as before.
+  a QoS 0 PUBLISH itself, when paho is between packets: one copy of the payload and nothing else, instead of paho's
+  message objects (:meth:`MqttLink._take_publishes`).  One that crosses the end of a read chunk has its start held
+  until the rest has been read (:meth:`_ChunkedReader.hold`).  Everything else — other packets, QoS 1 and 2,
+  MQTT 5 properties, a topic that is not UTF-8, malformed packets, packets longer than a chunk, TLS — goes through
+  paho as before.
 * **Callbacks** from paho run on the event loop, inside its read or write, and do almost nothing: state changes
   and acknowledgements are handed on with ``loop.call_soon`` (outside paho's call and its locks); no exception
   escapes into paho or into the loop.
@@ -252,36 +253,46 @@ class _ChunkedReader:
     Everything but reading goes to the socket itself.  The chunk is read into one buffer allocated once (no
     allocation and no fresh pages per read); ``recv`` returns views of it (a one-byte read: the byte, from a table),
     which paho appends to its packet buffer at once: none is left when the next chunk is read, after paho's read
-    has returned."""
+    has returned.
 
-    __slots__ = ("_buf", "_end", "_eof", "_error", "_pos", "_view", "full", "sock")
+    The start of a QoS 0 PUBLISH at the chunk's end may be *held* (:meth:`hold`): kept at the front of the buffer,
+    out of paho's sight, and the next read appended to it, so that the link can cut the packet once it is whole.
+    Whatever happens next, paho gets the held bytes first, in order, before anything read after them: the next
+    read's bytes, or its end of stream or error (paho then reports a connection lost inside a packet, as it would
+    have by itself)."""
+
+    __slots__ = ("_buf", "_end", "_eof", "_error", "_held", "_pos", "_view", "full", "sock")
 
     def __init__(self, sock: Any) -> None:
         self.sock = sock
         self._buf = bytearray(READ_CHUNK)
         self._view = memoryview(self._buf)
         self._pos = self._end = 0
+        self._held = 0  # bytes held at the buffer's front (the start of a packet), read before the next chunk
         self._eof = False
         self._error: OSError | None = None
         self.full = False  # the last read filled its chunk: more is probably waiting
 
     def fill(self) -> bool:
-        """Read what is waiting, once the previous chunk is used up; False when there was nothing."""
+        """Read what is waiting, once the previous chunk is used up (after the bytes held, if any); False when there
+        was nothing."""
         if self._pos < self._end:
             return True
+        held = self._held
         try:
-            n = self.sock.recv_into(self._buf)
+            n = self.sock.recv_into(self._view[held:] if held else self._buf)
         except (BlockingIOError, ssl.SSLWantReadError):
             self.full = False
             return False
         except OSError as exc:  # paho gets it at its next read (SSLWantWriteError included: paho handles it)
             self._error, self.full = exc, False
-            return True
-        if not n:
-            self._eof, self.full = True, False
-            return True
-        self._pos, self._end = 0, n
-        self.full = n == READ_CHUNK or _pending(self.sock) > 0
+            n = 0  # the bytes held first
+        else:
+            if not n:
+                self._eof, self.full = True, False
+            else:
+                self.full = held + n == READ_CHUNK or _pending(self.sock) > 0
+        self._pos, self._end, self._held = 0, held + n, 0
         return True
 
     def ready(self) -> bool:
@@ -354,6 +365,48 @@ class _ChunkedReader:
         self._pos = stop
         return topic, bytes(self._view[body:stop])
 
+    def hold(self, v5: bool) -> int:
+        """Hold the rest of the chunk when it is the start of a QoS 0 PUBLISH that :meth:`take_publish` may take once
+        whole (see there): move it to the buffer's front, out of paho's sight, for the next read to go on after it.
+        The bytes of the packet's body held (those after its fixed header: paho's keep-alive clock moves when it
+        receives some), or -1 when nothing is held: paho reads on as before.
+
+        Not held: the end of the stream or an error waiting after the chunk (paho is to see them after these
+        bytes, now), a packet larger than the buffer (it would never be whole in it), a remaining length of more
+        than four bytes, and what the bytes at hand already show :meth:`take_publish` refusing: another packet
+        type or QoS, a topic length of 0 or past the packet, MQTT 5 properties."""
+        buf, pos, end = self._buf, self._pos, self._end
+        if pos >= end or self._eof or self._error is not None or buf[pos] & 0xF6 != 0x30:
+            return -1
+        i, length, shift = pos + 1, 0, 0
+        while True:
+            if shift > 21:  # more than four bytes of remaining length: paho's error, at once
+                return -1
+            if i == end:  # the remaining length cut: held, its total not known yet
+                return self._keep(pos, end, 0)
+            byte = buf[i]
+            i += 1
+            length |= (byte & 0x7F) << shift
+            if byte < 0x80:
+                break
+            shift += 7
+        stop = i + length
+        if stop <= end or stop - pos > READ_CHUNK or length < 2:  # whole (not taken), or never whole in the buffer
+            return -1
+        if i + 2 <= end:
+            topic_end = i + 2 + (buf[i] << 8 | buf[i + 1])
+            if topic_end == i + 2 or topic_end > stop or (v5 and (topic_end == stop or
+                                                                  (topic_end < end and buf[topic_end] != 0))):
+                return -1
+        return self._keep(pos, end, end - i)
+
+    def _keep(self, pos: int, end: int, body: int) -> int:
+        n = end - pos
+        if pos:  # (overlapping ranges through a copy: bytearray's slice assignment copies with memcpy)
+            self._buf[:n] = self._view[pos:end] if n <= pos else bytes(self._view[pos:end])
+        self._held, self._pos, self._end = n, 0, 0
+        return body
+
     def pending(self) -> int:
         return self._end - self._pos + _pending(self.sock)
 
@@ -392,9 +445,9 @@ class MqttLink:
         caught).
     on_payload
         Instead of ``on_message``, for an owner that needs only each message's topic and payload (the MQTT source):
-        called the same way with ``(topic, payload)``.  QoS 0 PUBLISH packets that lie whole in a read chunk are
-        then cut out of the chunk by the link itself, without paho's per-packet work (:meth:`_take_publishes`);
-        every other packet, and every message over TLS, still comes through paho and its ``on_message``.
+        called the same way with ``(topic, payload)``.  QoS 0 PUBLISH packets no longer than a read chunk are then
+        cut out of the chunk by the link itself, without paho's per-packet work (:meth:`_take_publishes`); every
+        other packet, and every message over TLS, still comes through paho and its ``on_message``.
     on_ack
         Called on the event loop with ``(mid, status, reason)`` for each QoS ≥ 1 message: ``"ok"`` (PUBACK),
         ``"refused"`` (PUBACK with a failure reason code: the broker will not take it), ``"retry"`` (a transient
@@ -662,7 +715,9 @@ class MqttLink:
         after every packet).  What the link never uses is left out: the ``MQTTMessage`` and its properties,
         paho's debug log line (not taken when paho has a logger or ``on_log``), filtered callbacks (the link
         registers none).  A packet the reader does not take (:meth:`_ChunkedReader.take_publish`) stops the run:
-        paho reads it."""
+        paho reads it — unless it is the start of one it may take, cut by the chunk's end: that is held for the
+        next read (:meth:`_ChunkedReader.hold`), and the keep-alive clock moves as paho's would for the bytes of its
+        body received."""
         packet = client._in_packet  # paho's incoming-packet state, reset whole after each packet it has read
         if packet["command"] or packet["have_remaining"] or packet["remaining_count"]:
             return  # paho is inside a packet: the chunk goes on with the rest of it
@@ -680,8 +735,10 @@ class MqttLink:
                 handler(*message)
             except Exception as exc:  # the handler's own bug must not break the read
                 self._post(self._callback_failed, "on_message", repr(exc))
+        held = reader.hold(v5) if self._fd is not None else -1
         if taken:
             self.fast_publishes += taken
+        if taken or held > 0:
             with client._msgtime_mutex:
                 client._last_bytes_received = mqtt.time_func()
 

@@ -2,11 +2,14 @@
 
 from __future__ import annotations
 
+import asyncio
 import bisect
 import gc
 import random
+import socket
 import struct
 import threading
+from collections.abc import Callable
 
 import paho.mqtt.client as mqtt
 import pytest
@@ -169,16 +172,27 @@ def _stream(v5: bool) -> list[tuple[bytes, bool]]:
 class _Cuts:
     """A non-blocking socket serving a prepared stream, every read ending at the next cut (cuts every ``step`` bytes:
     reads of at most ``step`` bytes) (``recv`` for paho
-    reading its socket itself, ``recv_into`` for the link's reader); what is sent is kept."""
+    reading its socket itself, ``recv_into`` for the link's reader); what is sent is kept.  After the stream: nothing
+    yet (a read would block), or with ``eof`` the end of the stream, or ``error`` raised by every read."""
 
-    def __init__(self, data: bytes, cuts: list[int]) -> None:
+    def __init__(self, data: bytes, cuts: list[int], *, eof: bool = False, error: OSError | None = None) -> None:
         self.data, self.pos = data, 0
         self.bounds = sorted({c for c in cuts if 0 < c < len(data)} | {len(data)})
         self.reads: list[tuple[int, int]] = []
         self.sent = bytearray()
+        self.eof, self.error = eof, error
+
+    @property
+    def done(self) -> bool:
+        """Served whole, and nothing more to come (no end of stream or error to report)."""
+        return self.pos >= len(self.data) and not self.eof and self.error is None
 
     def _take(self, n: int) -> bytes:
         if self.pos >= len(self.data):
+            if self.error is not None:
+                raise self.error
+            if self.eof:
+                return b""
             raise BlockingIOError
         stop = min(self.bounds[bisect.bisect_right(self.bounds, self.pos)], self.pos + n)
         self.reads.append((self.pos, stop))
@@ -208,18 +222,22 @@ Events = list[tuple[object, ...]]
 
 
 def _client(v5: bool) -> mqtt.Client:
-    return mqtt.Client(CallbackAPIVersion.VERSION2, client_id="edgevib-fast-test",
-                       protocol=mqtt.MQTTv5 if v5 else mqtt.MQTTv311)
+    """A paho client recording the reason of each disconnect it reports (as text, in its user data)."""
+    client = mqtt.Client(CallbackAPIVersion.VERSION2, client_id="edgevib-fast-test",
+                         protocol=mqtt.MQTTv5 if v5 else mqtt.MQTTv311, userdata=[])
+    client.on_disconnect = lambda _c, gone, _f, reason, _p: gone.append(str(reason))
+    return client
 
 
 def _state(client: mqtt.Client, sock: _Cuts) -> tuple[object, ...]:
     """What paho keeps of the stream: its incoming-packet state, the QoS 2 messages held, what it sent back
-    (PUBACK, PUBREC), whether it closed the connection."""
+    (PUBACK, PUBREC), whether it closed the connection, the disconnects it reported and why."""
     return (dict(client._in_packet), sorted(client._in_messages), bytes(sock.sent), client._sock is None,
-            client._ping_t)
+            client._ping_t, list(client._userdata))
 
 
-def _through_paho(stream: bytes, cuts: list[int], v5: bool) -> tuple[Events, tuple[object, ...]]:
+def _through_paho(stream: bytes, cuts: list[int], v5: bool, *, eof: bool = False,
+                  error: OSError | None = None) -> tuple[Events, tuple[object, ...]]:
     """The reference: plain paho reading the stream from its own socket; each message as (topic, payload, qos), a
     topic that is not UTF-8 as paho's error for it."""
     events: list[tuple[object, ...]] = []
@@ -232,11 +250,11 @@ def _through_paho(stream: bytes, cuts: list[int], v5: bool) -> tuple[Events, tup
 
     client = _client(v5)
     client.on_message = on_message
-    sock = _Cuts(stream, cuts)
+    sock = _Cuts(stream, cuts, eof=eof, error=error)
     client._sock = sock
     client._last_bytes_received = 0.0
     for _ in range(len(stream) + 10):
-        if client._sock is None or sock.pos == len(stream):
+        if client._sock is None or sock.done:
             break
         client.loop_read()
     assert client._last_bytes_received > 0.0  # paho's keep-alive clock moved with what it received
@@ -244,7 +262,8 @@ def _through_paho(stream: bytes, cuts: list[int], v5: bool) -> tuple[Events, tup
 
 
 def _through_link(stream: bytes, cuts: list[int], v5: bool, monkeypatch: pytest.MonkeyPatch,
-                  raise_on: bytes | None = None) -> tuple[Events, tuple[object, ...], MqttLink, _Cuts]:
+                  raise_on: bytes | None = None, *, eof: bool = False,
+                  error: OSError | None = None) -> tuple[Events, tuple[object, ...], MqttLink, _Cuts]:
     """The same stream through a link with ``on_payload``, wired as MqttLink.start wires its client; each message
     with the QoS paho gave it (0 when the link cut it itself), a failed callback as the error it reported."""
     events: list[tuple[object, ...]] = []
@@ -269,14 +288,14 @@ def _through_link(stream: bytes, cuts: list[int], v5: bool, monkeypatch: pytest.
     client.on_socket_close = link._cb_socket_close
     monkeypatch.setattr(link, "_post", lambda fn, *args: events.append((fn.__name__, *args))
                         if fn.__name__ == "_callback_failed" else fn(*args))
-    sock = _Cuts(stream, cuts)
+    sock = _Cuts(stream, cuts, eof=eof, error=error)
     reader = _ChunkedReader(sock)
     client._sock = reader  # as MqttLink wraps paho's socket when it opens
     client._last_bytes_received = 0.0
     link._paho, link._fd, link._loop_thread = client, sock.fileno(), threading.get_ident()
     for _ in range(len(stream) + 10):  # one call per readiness of the socket
         link._on_readable()
-        if link._fd is None or (sock.pos == len(stream) and not reader.ready()):
+        if link._fd is None or (sock.done and not reader.ready()):
             break
     assert client._last_bytes_received > 0.0  # the keep-alive clock moved, also for the packets the link cut
     return events, _state(client, sock), link, sock
@@ -288,23 +307,41 @@ def _normalise(events: list[tuple[object, ...]]) -> list[tuple[object, ...]]:
 
 
 def _expected_fast(packets: list[tuple[bytes, bool]], reads: list[tuple[int, int]]) -> int:
-    """The packets the link may cut that lay whole in one read of the socket (a chunk)."""
+    """The packets the link may cut that it does cut: every one that arrived whole, in one read of the socket (a
+    chunk) or over several (its start is held until the rest has come), unless the stream ended inside it."""
+    end = max((b for _a, b in reads), default=0)
+    n, pos = 0, 0
+    for packet, fast in packets:
+        pos += len(packet)
+        if fast and pos <= end:
+            n += 1
+    return n
+
+
+def _crossing(packets: list[tuple[bytes, bool]], reads: list[tuple[int, int]]) -> int:
+    """The packets the link may cut that no single read held whole: each came in over several reads."""
     n, pos = 0, 0
     for packet, fast in packets:
         start, stop = pos, pos + len(packet)
         pos = stop
-        if fast and any(a <= start and stop <= b for a, b in reads):
+        if fast and not any(a <= start and stop <= b for a, b in reads):
             n += 1
     return n
 
 
 @pytest.mark.parametrize("v5", [False, True])
-@pytest.mark.parametrize("cuts", ["none", "random"])
+@pytest.mark.parametrize("cuts", ["none", "random", "inside"])
 def test_link_cuts_qos0_publishes_as_paho_reads_them(v5: bool, cuts: str, monkeypatch: pytest.MonkeyPatch) -> None:
     packets = _stream(v5)
     stream = b"".join(p for p, _ in packets)
     rng = random.Random(14)
     at = sorted(rng.sample(range(1, len(stream)), 60)) if cuts == "random" else []
+    if cuts == "inside":  # every packet cut once, at a random place after its first byte
+        pos = 0
+        for packet, _fast in packets:
+            if len(packet) > 1:
+                at.append(pos + rng.randrange(1, len(packet)))
+            pos += len(packet)
     expected, paho_state = _through_paho(stream, at, v5)
     events, link_state, link, sock = _through_link(stream, at, v5, monkeypatch)
     assert _normalise(events) == expected  # the same messages, in the same order, with the same QoS
@@ -312,6 +349,9 @@ def test_link_cuts_qos0_publishes_as_paho_reads_them(v5: bool, cuts: str, monkey
     assert any(e[0] == "not UTF-8" for e in expected)  # (the stream does hold the undecodable topic)
     fast = _expected_fast(packets, sock.reads)
     assert fast >= 6 and link.fast_publishes == fast  # the link's own cut was taken, for exactly those packets
+    assert fast == sum(f for _p, f in packets)  # all of them, those cut by the reads too
+    if cuts == "inside":  # (and the reads did cut every one of them)
+        assert _crossing(packets, sock.reads) == fast
 
 
 @pytest.mark.parametrize("v5", [False, True])
@@ -326,7 +366,169 @@ def test_a_packet_cut_at_every_place(v5: bool, monkeypatch: pytest.MonkeyPatch) 
         events, link_state, link, sock = _through_link(stream, [cut], v5, monkeypatch)
         assert _normalise(events) == expected, cut
         assert link_state == paho_state, cut
-        assert link.fast_publishes == _expected_fast(packets, sock.reads) >= 2, cut
+        assert link.fast_publishes == _expected_fast(packets, sock.reads) == 3, cut  # the packet cut: held
+
+
+@pytest.mark.parametrize("v5", [False, True])
+@pytest.mark.parametrize("k", [1, 2, 3, 4, 5])
+def test_every_fixed_header_cut_after_k_bytes(v5: bool, k: int, monkeypatch: pytest.MonkeyPatch) -> None:
+    # every packet of the stream cut k bytes after its start: after its first byte, inside its remaining length
+    # (§2.2.3: 1 to 4 bytes, here in 1, 2, 3 and 4), inside its topic length: each start held and read on, and the
+    # packets longer than a chunk (their length learnt once the rest of it has come) left to paho whole
+    packets = _stream(v5)
+    stream = b"".join(p for p, _ in packets)
+    at, pos = [], 0
+    for packet, _fast in packets:
+        if len(packet) > k:
+            at.append(pos + k)
+        pos += len(packet)
+    expected, paho_state = _through_paho(stream, at, v5)
+    events, link_state, link, sock = _through_link(stream, at, v5, monkeypatch)
+    assert _normalise(events) == expected and link_state == paho_state  # reference: paho on the same reads
+    assert link.fast_publishes == _expected_fast(packets, sock.reads) == sum(f for _p, f in packets)
+
+
+def _chunk_sized(v5: bool, extra: int) -> bytes:
+    """A QoS 0 PUBLISH of READ_CHUNK + ``extra`` bytes in all (a 3-byte remaining length, §2.2.3)."""
+    topic = b"fwb/chunk/block"
+    packet = _pub(topic, bytes(READ_CHUNK + extra - 4 - 2 - len(topic) - v5), v5=v5)
+    assert len(packet) == READ_CHUNK + extra
+    return packet
+
+
+@pytest.mark.parametrize("v5", [False, True])
+@pytest.mark.parametrize("into", [1, 3, 900, READ_CHUNK // 2])
+def test_a_packet_as_large_as_the_buffer_is_held_a_larger_one_left_to_paho(
+        v5: bool, into: int, monkeypatch: pytest.MonkeyPatch) -> None:
+    # a packet as long as the buffer, starting inside a chunk and cut ``into`` bytes after its start, is held and
+    # read whole into the buffer; one byte longer it never fits, and paho reads it (held only while its remaining
+    # length was cut)
+    small = _pub(b"fwb/a/block", b"first", v5=v5)
+    packets = [(small, True), (_chunk_sized(v5, 0), True), (small, True), (_chunk_sized(v5, 1), False),
+               (small, True)]
+    stream = b"".join(p for p, _ in packets)
+    at, pos = [], 0
+    for packet, _fast in packets:
+        at.append(pos + min(into, len(packet) - 1))
+        pos += len(packet)
+    expected, paho_state = _through_paho(stream, at, v5)
+    events, link_state, link, sock = _through_link(stream, at, v5, monkeypatch)
+    assert _normalise(events) == expected and link_state == paho_state  # reference: paho on the same reads
+    assert [len(e[1]) for e in events if isinstance(e[1], bytes)] == [5, READ_CHUNK - 21 - v5, 5,  # (§3.3.3)
+                                                                        READ_CHUNK - 20 - v5, 5]
+    assert link.fast_publishes == _expected_fast(packets, sock.reads) == 4
+
+
+def _truncated(v5: bool) -> tuple[list[tuple[bytes, bool]], bytes]:
+    packets = [(_pub(b"fwb/a/block", b"one", v5=v5), True), (PINGRESP, False),
+               (_pub(b"fwb/b/block", b"two", v5=v5), True)]
+    last = _pub(b"fwb/c/block", bytes(range(150)), v5=v5)  # a 2-byte remaining length
+    return packets, last
+
+
+@pytest.mark.parametrize("v5", [False, True])
+@pytest.mark.parametrize("end", ["eof", "reset"])
+@pytest.mark.parametrize("split", [False, True])
+def test_a_connection_lost_inside_a_held_packet(v5: bool, end: str, split: bool,
+                                                monkeypatch: pytest.MonkeyPatch) -> None:
+    # the stream ends (or the socket fails) after every possible start of the last packet, read in one piece or
+    # in two: paho gets the bytes held, then the end or the error, and reports the connection lost inside the
+    # packet as it does reading the socket itself; the packets before it delivered, that one not
+    packets, last = _truncated(v5)
+    head = b"".join(p for p, _ in packets)
+    for n in range(1, len(last)):
+        stream = head + last[:n]
+        at = [len(head), len(head) + n // 2] if split else []
+        error = ConnectionResetError(104, "Connection reset by peer") if end == "reset" else None
+        expected, paho_state = _through_paho(stream, at, v5, eof=end == "eof", error=error)
+        events, link_state, link, sock = _through_link(stream, at, v5, monkeypatch, eof=end == "eof", error=error)
+        assert _normalise(events) == expected, n  # reference: paho reading the same reads itself
+        assert link_state == paho_state, n  # the same partial packet in paho's hands, the same disconnect
+        assert paho_state[3] is True and paho_state[5] and link._fd is None, n  # (the connection closed)
+        assert link.fast_publishes == _expected_fast(packets, sock.reads) == 2, n
+
+
+@pytest.mark.parametrize("v5", [False, True])
+def test_the_keep_alive_clock_moves_with_the_body_held(v5: bool, monkeypatch: pytest.MonkeyPatch) -> None:
+    # paho's keep-alive goes by _last_bytes_received, which its _packet_read sets when bytes of a packet's body
+    # come in (not for its fixed header): with the start of a packet held and no more to read, the clock moves as
+    # paho's own does for the same bytes, and paho has seen none of them (it is still between packets)
+    _packets, last = _truncated(v5)
+    for n in range(1, len(last)):
+        plain = _client(v5)
+        plain._sock = _Cuts(last[:n], [])
+        plain._last_bytes_received = 0.0
+        plain.loop_read()
+        assert plain._in_packet["command"] == last[0]  # (paho has started on the packet)
+        events, _link_state, link, _sock = _keep_clock_free(last[:n], v5, monkeypatch)
+        client = link._paho
+        assert client is not None and events == []
+        assert (client._last_bytes_received > 0) == (plain._last_bytes_received > 0) == (n > 3), n
+        assert client._in_packet["command"] == 0 and not client._in_packet["remaining_count"], n
+
+
+def _keep_clock_free(stream: bytes, v5: bool,
+                     monkeypatch: pytest.MonkeyPatch) -> tuple[Events, tuple[object, ...], MqttLink, _Cuts]:
+    """_through_link on a stream that may end inside a packet: the keep-alive clock need not have moved."""
+    events: list[tuple[object, ...]] = []
+    conn = MqttConnection.model_validate({"url": "mqtt://127.0.0.1:1", "client_id": "edgevib-fast-test",
+                                          "protocol": "5" if v5 else "3.1.1"})
+    link = MqttLink(conn, role="test", on_payload=lambda topic, payload: events.append((topic, payload)))
+    client = _client(v5)
+    client.on_message = link._cb_message
+    sock = _Cuts(stream, [])
+    client._sock = _ChunkedReader(sock)
+    client._last_bytes_received = 0.0
+    link._paho, link._fd, link._loop_thread = client, sock.fileno(), threading.get_ident()
+    link._on_readable()
+    link._on_readable()  # a second readiness: nothing more to read, nothing handed to paho
+    return events, _state(client, sock), link, sock
+
+
+async def _turns(until: Callable[[], bool], most: int = 10_000) -> None:
+    """Let the event loop turn (each turn polls the selector without waiting) until ``until()``, or ``most`` turns."""
+    for _ in range(most):
+        if until():
+            return
+        await asyncio.sleep(0)
+
+
+async def test_a_held_packet_waits_for_the_socket_to_be_readable_again() -> None:
+    # the event loop calls the link when its socket is readable, and again at every turn as long as it is (the
+    # selectors' level-triggered readiness, Python docs: selectors, asyncio's loop.add_reader): the start of a packet
+    # held with the socket drained must leave the link waiting, not called turn after turn, until the rest comes
+    loop = asyncio.get_running_loop()
+    ours, theirs = socket.socketpair()
+    ours.setblocking(False)
+    got: list[tuple[str, bytes]] = []
+    conn = MqttConnection.model_validate({"url": "mqtt://127.0.0.1:1", "client_id": "edgevib-fast-test"})
+    link = MqttLink(conn, role="test", on_payload=lambda topic, payload: got.append((topic, payload)))
+    client = _client(False)
+    client.on_message = link._cb_message
+    client._sock = _ChunkedReader(ours)
+    link._paho, link._fd, link._loop, link._loop_thread = client, ours.fileno(), loop, threading.get_ident()
+    calls = [0]
+
+    def on_readable() -> None:
+        calls[0] += 1
+        link._on_readable()
+
+    loop.add_reader(ours.fileno(), on_readable)
+    try:
+        packet = _pub(b"fwb/a/block", bytes(range(200)))
+        theirs.sendall(packet[:50])
+        await _turns(lambda: calls[0] > 0)
+        await _turns(lambda: False, 200)  # as many turns again, the held bytes still unread by paho
+        assert calls[0] == 1 and got == [] and client._in_packet["command"] == 0
+        theirs.sendall(packet[50:])
+        await _turns(lambda: bool(got))
+        await _turns(lambda: False, 200)
+        assert got == [("fwb/a/block", bytes(range(200)))] and link.fast_publishes == 1  # (§3.3.2, §3.3.3)
+        assert calls[0] == 2
+    finally:
+        loop.remove_reader(ours.fileno())
+        ours.close()
+        theirs.close()
 
 
 MALFORMED = {
