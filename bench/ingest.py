@@ -21,6 +21,8 @@ the thread's CPU time (``time.thread_time``: time preempted by other work on a s
 the stages alternate, and each reports the fastest of ``--repeats`` passes in µs per block (other work only ever
 adds time).  A socket's read (a copy out of the kernel) is modelled by one copy into the link's buffer.
 ``--read random`` serves each readiness a random number of bytes (1 kB up to a chunk) instead of all that is waiting.
+For ``link`` and ``client`` the share of blocks the link cut out of its chunks itself (its QoS 0 fast path, the rest
+read by paho) is reported beside the time.
 
 To compare two versions, run the benchmark with each checkout first on ``PYTHONPATH`` in turn, several times.
 """
@@ -107,6 +109,7 @@ class _Bench:
         self.client.on_message = self.link._cb_message
         self.link._paho = self.client
         self.link._fd = 1000
+        self.fast_share: dict[str, float] = {}  # stage -> share of its last pass's blocks cut by the link itself
 
     def payloads(self, delivered: bool) -> list[bytes]:
         """The next rounds' payloads (every channel's next blocks); the rounds move on only for blocks that reach
@@ -162,10 +165,12 @@ class _Bench:
                 for p in payloads:
                     decode(p, max_bytes=limit, max_samples=limit)
 
-        before = self.received()
+        before, fast_before = self.received(), self.link.fast_publishes
         t0 = time.thread_time()
         work()
         cpu_s = time.thread_time() - t0
+        if stage in ("link", "client"):
+            self.fast_share[stage] = (self.link.fast_publishes - fast_before) / n
         if stage == "client":
             delivered = counted[0]
         elif stage == "decode":
@@ -206,13 +211,14 @@ def main(argv: list[str] | None = None) -> int:
     best = {s: min(v) for s, v in passes.items()}
     if args.json:
         json.dump({"channels": args.channels, "blocks_per_pass": args.channels * args.rounds, "read": args.read,
-                   "us_per_block": best, "passes_us": passes}, sys.stdout)
+                   "us_per_block": best, "passes_us": passes, "fast_share": bench.fast_share}, sys.stdout)
         print()
         return 0
     print(f"{args.channels} channels, {args.channels * args.rounds} blocks per pass, reads: {args.read}")
     for s in stages:
+        share = f"; {bench.fast_share[s]:.0%} cut by the link" if s in bench.fast_share else ""
         print(f"  {s:7s} {best[s]:8.1f} µs per block (fastest of {args.repeats}; "
-              f"median {sorted(passes[s])[len(passes[s]) // 2]:.1f})")
+              f"median {sorted(passes[s])[len(passes[s]) // 2]:.1f}{share})")
     return 0
 
 
