@@ -10,7 +10,7 @@ import paho.mqtt.client as mqtt
 import pytest
 
 from edgevib.daemon.config import MqttConnection
-from edgevib.daemon.mqtt_client import MqttLink
+from edgevib.daemon.mqtt_client import READ_CHUNK, MqttLink
 
 pytestmark = pytest.mark.network
 
@@ -97,6 +97,11 @@ async def test_qos0_messages_cut_by_the_link_arrive_whole(mosquitto: Any, protoc
         assert await _until(lambda: len(got) == len(sent))
         assert got == sent
         assert sub.fast_publishes > 0
+        # and every one no longer than the link's read chunk was (those crossing a read held until whole): the
+        # packet's length from MQTT 3.1.1 §2.2.3 and §3.3 (MQTT 5.0 §3.3.2.3: a property length of 0 in one byte)
+        lengths = [2 + len(t) + (protocol == "5") + len(p) for t, p in sent]
+        sizes = [1 + (1 if n < 128 else 2 if n < 16_384 else 3) + n for n in lengths]
+        assert sub.fast_publishes == sum(size <= READ_CHUNK for size in sizes) < len(sent)
     finally:
         await pub.stop()
         await sub.stop()
