@@ -12,9 +12,9 @@ every second (``loop_misc``).  A received block thus costs no thread switch and 
 * **QoS 0 messages cut by the link.**  A link given ``on_payload`` (the MQTT source: topic and payload only) reads
   a QoS 0 PUBLISH itself, when paho is between packets: one copy of the payload and nothing else, instead of paho's
   message objects (:meth:`MqttLink._take_publishes`).  One that crosses the end of a read chunk has its start held
-  until the rest has been read (:meth:`_ChunkedReader.hold`).  Everything else — other packets, QoS 1 and 2,
-  MQTT 5 properties, a topic that is not UTF-8, malformed packets, packets longer than a chunk, TLS — goes through
-  paho as before.
+  until the rest has been read (:meth:`_ChunkedReader.hold`) — over TLS, where a read ends with a TLS record (at
+  most 16 kB), most packets do.  Everything else — other packets, QoS 1 and 2, MQTT 5 properties, a topic that is
+  not UTF-8, malformed packets, packets longer than a chunk — goes through paho as before.
 * **Callbacks** from paho run on the event loop, inside its read or write, and do almost nothing: state changes
   and acknowledgements are handed on with ``loop.call_soon`` (outside paho's call and its locks); no exception
   escapes into paho or into the loop.
@@ -447,7 +447,7 @@ class MqttLink:
         Instead of ``on_message``, for an owner that needs only each message's topic and payload (the MQTT source):
         called the same way with ``(topic, payload)``.  QoS 0 PUBLISH packets no longer than a read chunk are then
         cut out of the chunk by the link itself, without paho's per-packet work (:meth:`_take_publishes`); every
-        other packet, and every message over TLS, still comes through paho and its ``on_message``.
+        other packet still comes through paho and its ``on_message``.
     on_ack
         Called on the event loop with ``(mid, status, reason)`` for each QoS ≥ 1 message: ``"ok"`` (PUBACK),
         ``"refused"`` (PUBACK with a failure reason code: the broker will not take it), ``"retry"`` (a transient
@@ -686,7 +686,7 @@ class MqttLink:
                 while self._tls and self._fd is not None and _pending(client.socket()) > 0:
                     client.loop_read()
                 return
-            fast = (self.on_payload is not None and not self._tls and client.on_log is None
+            fast = (self.on_payload is not None and client.on_log is None
                     and client.logger is None)  # (paho would log each PUBLISH to them)
             for _ in range(MAX_READS):
                 if not reader.fill():
@@ -702,6 +702,9 @@ class MqttLink:
                         break
                 if self._fd is None or not reader.full:
                     break
+            else:  # TLS: bytes already decrypted do not make the socket readable again, so the loop goes on soon
+                if self._tls and self._fd is not None and _pending(reader.sock) > 0:
+                    self._post(self._on_readable)
         except Exception as exc:  # never let an exception escape into the event loop's callback
             self._callback_failed("read", repr(exc))
 
