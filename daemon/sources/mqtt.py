@@ -6,7 +6,7 @@ failure such as bad credentials — is logged as a rate-limited warning naming t
 secret).  Connection state goes to ``Ingest.connection`` (which counts reconnects).
 
 The link's client is driven from the event loop and the source's callback (the link's ``on_payload``: topic and
-payload, from paho's message or, for a QoS 0 PUBLISH whole in a read chunk, cut out by the link) runs there, inside
+payload, from paho's message or, for a QoS 0 PUBLISH up to a read chunk long, cut out by the link) runs there, inside
 the read: a payload goes straight to the ingest (decoding, validation, frame assembly), with nothing queued in
 between.  Called from another thread, or while payloads are still waiting, the callback instead appends the payload
 to a hand-over queue and schedules one drain (``loop.call_soon_threadsafe``/``call_soon``) when none is pending
