@@ -23,6 +23,7 @@ per-call scratch buffers are local.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Sequence
 from functools import lru_cache
@@ -41,6 +42,7 @@ from edgevib.pipelines.envelope import (
     SHAFT_TOLERANCE,
     SIDEBAND_ORDERS,
     FamilySearch,
+    RowLimits,
     demodulate,
     envelope_spectra,
     fast_length,
@@ -73,6 +75,8 @@ __all__ = [
     "AnalysisKernel",
     "TransformLengths",
     "analyze_frames",
+    "analyze_mixed",
+    "batch_key",
     "default_envelope_band",
     "kernel_for",
     "make_plan",
@@ -81,6 +85,7 @@ __all__ = [
 ]
 
 FloatArray = npt.NDArray[np.float64]
+IntArray = npt.NDArray[np.intp]
 
 FAMILIES: tuple[str, ...] = ("ftf", "bpfo", "bpfi", "bsf")
 """Envelope family keys.  ``"bsf"`` is searched at **2 × BSF** (a rolling-element defect hits both races), and its
@@ -450,12 +455,21 @@ class AnalysisKernel:
 
     def analyze(self, x_g: npt.ArrayLike, shaft_hz: npt.ArrayLike | None = None) -> list[FrameIndicators]:
         """Indicators of frames ``x_g`` (channels, n_samples) in g; see :func:`analyze_frames`."""
+        return self._analyze(x_g, shaft_hz, None)
+
+    def _analyze(self, x_g: npt.ArrayLike, shaft_hz: npt.ArrayLike | None,
+                 rows: _Rows | None) -> list[FrameIndicators]:
+        """:meth:`analyze`; with ``rows``, the frames of :func:`analyze_mixed`: each row analysed as its own plan's
+        kernel analyses it alone (this kernel's plan has the batch key of every row's plan: the shared arithmetic
+        is this kernel's, the per-row parameters are ``rows``')."""
         plan = self.plan
         n = self._n
         x = as_frames(x_g)  # float64, or float32 as the daemon's frames are (not widened)
         if x.shape[1] != n:
             raise SignalError(f"frames have {x.shape[1]} samples, the plan expects {n}")
         c = x.shape[0]
+        if rows is not None and rows.channels != c:
+            raise SignalError(f"{rows.channels} plans given for {c} channels")
         f_given = _shaft_array(shaft_hz, c, plan.fs_hz)
         # One single-precision transform serves everything: the frames go in less their first sample (so a DC
         # offset such as a MEMS sensor's 1 g of gravity stays out of the float32 rounding), cast in the same pass.
@@ -473,21 +487,34 @@ class AnalysisKernel:
         del x32  # (batch-sized arrays are let go as soon as they are used: see DEVELOPERS.md, page faults)
 
         given = np.isfinite(f_given)
-        estimate = ~given
-        if not self._estimate:
-            estimate[:] = False
         # A given speed below the plan's lowest shaft speed (a stopped or coasting machine: 0 from a speed tag is
         # valid) keeps the time-domain and velocity indicators; orders and envelope families need a speed the
         # frame resolves, so they are absent for it.
-        slow = given & (f_given < plan.speed_range_hz[0])
-        stop = self._vel_stop
-        any_estimate = bool(estimate.any())
-        if any_estimate:
-            stop = max(stop, self._speed_stop)
-        fast = given & ~slow
-        known_max = float(np.max(f_given[fast])) if fast.any() else plan.speed_range_hz[1]
-        stop = min(n // 2, max(stop, math.ceil(max(plan.orders) * known_max * (1 + plan.order_tolerance)
-                                               / self._df) + 3))
+        own_stop: IntArray | None = None
+        if rows is None:
+            estimate = ~given
+            if not self._estimate:
+                estimate[:] = False
+            slow = given & (f_given < plan.speed_range_hz[0])
+            stop = self._vel_stop
+            any_estimate = bool(estimate.any())
+            if any_estimate:
+                stop = max(stop, self._speed_stop)
+            fast = given & ~slow
+            known_max = float(np.max(f_given[fast])) if fast.any() else plan.speed_range_hz[1]
+            stop = min(n // 2, max(stop, math.ceil(max(plan.orders) * known_max * (1 + plan.order_tolerance)
+                                                   / self._df) + 3))
+        else:
+            # each row's own plan, and the lines its kernel computes for it alone (the same arithmetic per row)
+            estimate = ~given & rows.estimate
+            slow = given & (f_given < rows.speed_lo)
+            fast = given & ~slow
+            any_estimate = bool(estimate.any())
+            known = np.where(fast, f_given, rows.speed_hi)
+            order_stop = np.ceil(max(plan.orders) * known * (1 + plan.order_tolerance) / self._df) + 3
+            first = np.where(estimate, np.maximum(rows.speed_stop, self._vel_stop), self._vel_stop)
+            own_stop = np.minimum(np.maximum(first, order_stop), n // 2).astype(np.intp)
+            stop = int(own_stop.max())
         acc = hann_lines(spec, stop)
         acc_pow = acc.real**2 + acc.imag**2
         vel = hann_lines(spec[:, : stop + 1] * self._integrate[: stop + 1], stop)  # integrate, then window
@@ -496,7 +523,9 @@ class AnalysisKernel:
         factor = 16.0 / (3.0 * n * n)
         vel_rms = np.sqrt(vel_pow[:, v_lo : v_hi + 1].sum(axis=-1) * factor)
 
-        if any_estimate and bool(estimate.all()):  # (the usual case: no copies of the rows)
+        if rows is not None and own_stop is not None:  # (both or neither)
+            shaft, quality = self._mixed_speeds(vel_pow, acc_pow, f_given, estimate, own_stop, rows)
+        elif any_estimate and bool(estimate.all()):  # (the usual case: no copies of the rows)
             shaft, quality = estimate_speed_hz(vel_pow, acc_pow, plan.speed_range_hz, self._df, SPEED_HARMONICS,
                                                cage_ratio=self._cage, tolerance=plan.order_tolerance)
         else:
@@ -509,15 +538,20 @@ class AnalysisKernel:
                 quality[estimate] = q
         running = np.isfinite(shaft) & ~slow & (shaft > 0)
         shaft_running = np.where(running, shaft, np.nan)
-        orders = order_amplitudes_mm_s(vel_pow, shaft_running, plan.orders, plan.order_tolerance, self._df, n)
-        fam: FamilySearch | None = None
-        if self._env and running.any():
+        orders = order_amplitudes_mm_s(vel_pow, shaft_running, plan.orders, plan.order_tolerance, self._df, n,
+                                       lines=own_stop)
+        families: list[dict[str, FamilyResult]]
+        if rows is not None:
+            families = self._mixed_families(spec, shaft_running, running, rows)
+            del spec
+        elif self._env and running.any():
             z = self._demodulated(spec)
             del spec
-            fam = self._families_of(z, shaft_running)[3]
+            families = _family_results(self._families_of(z, shaft_running)[3], shaft, self._mult, self._df)
             del z
         else:
             del spec
+            families = [{}] * c
 
         # velocity and displacement waveforms from the band's Hann lines only (for peak and peak-to-peak): the
         # windowed waveform, divided by the window over the frame's central half, is the band-limited waveform
@@ -556,7 +590,6 @@ class AnalysisKernel:
         cols = (td.rms_g, td.peak_g, td.peak_to_peak_g, td.crest_factor, td.kurtosis, td.skewness, td.mean_g,
                 vel_rms, vel_peak, disp_pp)
         rows = np.stack(cols, axis=1).tolist()
-        families = _family_results(fam, shaft, self._mult, self._df) if fam is not None else [{}] * c
         velocity = self._velocity
         band = plan.envelope_band_hz
         out: list[FrameIndicators] = []
@@ -574,6 +607,84 @@ class AnalysisKernel:
             ))
         return out
 
+
+    def _mixed_speeds(self, vel_pow: FloatArray, acc_pow: FloatArray, f_given: FloatArray,
+                      estimate: npt.NDArray[np.bool_], own_stop: IntArray,
+                      rows: _Rows) -> tuple[FloatArray, FloatArray]:
+        """The speeds of :meth:`_analyze` with ``rows``: the given ones, and the estimate of the rows that need
+        one, once per distinct speed range and cage ratio on its rows' own lines (``own_stop``)."""
+        c, k = vel_pow.shape
+        shaft = f_given.copy()
+        quality = np.full(c, np.nan)
+        if not estimate.any():
+            return shaft, quality
+        which = np.flatnonzero(estimate)
+        groups = rows.speed_group[which]
+        for g in np.unique(groups).tolist():
+            idx = which[groups == g]
+            stop = int(own_stop[idx[0]])  # (the same for every row of the group: no speed given, one range)
+            speed_range, cage = rows.speed_params[g]
+            if idx.size == c and stop == k:  # (one group, as with one plan: no copies of the rows)
+                v, a = vel_pow, acc_pow
+            else:
+                v, a = vel_pow[idx, :stop], acc_pow[idx, :stop]
+            est, q = estimate_speed_hz(v, a, speed_range, self._df, SPEED_HARMONICS, cage_ratio=cage,
+                                       tolerance=self.plan.order_tolerance)
+            shaft[idx] = est
+            quality[idx] = q
+        return shaft, quality
+
+    def _mixed_families(self, spec: npt.NDArray[np.complex64], shaft_running: FloatArray,
+                        running: npt.NDArray[np.bool_], rows: _Rows) -> list[dict[str, FamilyResult]]:
+        """The envelope families of :meth:`_analyze` with ``rows``: the rows with an envelope stage and a speed,
+        each demodulated at its own plan's decimated length (one transform per distinct length) and searched in
+        one call up to its own plan's last line, with its own bearing's multiples, pattern gaps and threshold
+        table."""
+        c = spec.shape[0]
+        out: list[dict[str, FamilyResult]] = [{}] * c
+        sel = rows.env & running
+        if not sel.any():
+            return out
+        idx = np.flatnonzero(sel)
+        e_lo, e_hi = self._env_lines  # (one band: the batch key's)
+        m = rows.env_m[idx]
+        stops = rows.env_stop[idx]
+        own = np.minimum(stops, m // 2)  # each row's envelope spectrum length alone
+        lengths = np.unique(m).tolist()
+        spectra: list[tuple[IntArray, FloatArray, FloatArray, FloatArray]] = []
+        for length in lengths:
+            part = np.flatnonzero(m == length)
+            rows_g = idx[part]
+            if rows_g.size == c:  # (every row, as with one plan: no copies of the rows)
+                z = demodulate(spec, e_lo, e_hi, length)
+            else:
+                z = demodulate(spec[rows_g, e_lo : e_hi + 1], 0, e_hi - e_lo, length)
+            amp_g, ses_g, mean_g = envelope_spectra(z, self._n, int(stops[part].max()), overwrite=True)
+            del z
+            spectra.append((part, amp_g, ses_g, mean_g))
+        if len(spectra) == 1:
+            amp, ses, mean_line = spectra[0][1:]
+        else:  # (lines beyond a row's own length are never read: zeros)
+            width = max(a.shape[1] for _, a, _, _ in spectra)
+            amp = np.zeros((idx.size, width))
+            ses = np.zeros((idx.size, width))
+            mean_line = np.empty(idx.size)
+            for part, amp_g, ses_g, mean_g in spectra:
+                amp[part, : amp_g.shape[1]] = amp_g
+                ses[part, : ses_g.shape[1]] = ses_g
+                mean_line[part] = mean_g
+        shaft = shaft_running[idx]
+        mult = rows.mult[idx]
+        expected = shaft[:, None] * mult
+        modulation = shaft[:, None] * rows.mod[idx]
+        plan = self.plan
+        limits = RowLimits(own[:, None], rows.threshold_cap[idx][:, None])
+        fam = search_families(amp, ses, mean_line, expected, modulation, shaft, plan.slip_tolerance,
+                              plan.harmonics, self._df, rows.thresholds, plan.min_depth,
+                              (rows.gap[idx], rows.shaft_order[idx]), limits)
+        for i, res in zip(idx.tolist(), _family_results(fam, shaft, mult, self._df), strict=True):
+            out[i] = res
+        return out
 
     def _families(self, spec: npt.NDArray[np.complex64],
                   shaft_hz: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray, FamilySearch]:
@@ -619,7 +730,8 @@ class AnalysisKernel:
 def _family_results(fam: FamilySearch, shaft_hz: FloatArray, mult: FloatArray,
                     df_hz: float) -> list[dict[str, FamilyResult]]:
     """Per-channel :class:`FamilyResult` maps from a family search (families whose window does not fit the
-    spectrum are left out)."""
+    spectrum are left out); ``mult`` of shape (families,), or (channels, families) for rows of different
+    bearings."""
     index = fam.part("index")
     stat = fam.part("statistic")
     thr = fam.part("threshold")
@@ -637,6 +749,7 @@ def _family_results(fam: FamilySearch, shaft_hz: FloatArray, mult: FloatArray,
     amp_l, depth_l = fam.amplitude_g.tolist(), fam.depth.tolist()
     det_l, amb_l, fits_l = fam.detected.tolist(), fam.ambiguous_with.tolist(), fits[..., 0].tolist()
     shaft_l = shaft_hz.tolist()
+    per_row = mult.ndim == 2  # (rows of different bearings: (channels, families))
     mult_l = mult.tolist()
     names = (*FAMILIES, "shaft")
     out: list[dict[str, FamilyResult]] = []
@@ -648,7 +761,7 @@ def _family_results(fam: FamilySearch, shaft_hz: FloatArray, mult: FloatArray,
             f = freq_l[ch][j]
             has = math.isfinite(f)
             res[name] = FamilyResult(
-                expected_hz=shaft_l[ch] * mult_l[j], frequency_hz=f if has else None,
+                expected_hz=shaft_l[ch] * (mult_l[ch][j] if per_row else mult_l[j]), frequency_hz=f if has else None,
                 amplitude_g=amp_l[ch][j] if has else None, snr_db=snr_l[ch][j] if has else None,
                 harmonics_found=int(harmonics[ch][j]), sidebands_found=int(sidebands[ch][j]),
                 depth=depth_l[ch][j] if has else None, detected=bool(det_l[ch][j]),
@@ -745,6 +858,107 @@ def _shaft_array(shaft_hz: npt.ArrayLike | None, channels: int, fs_hz: float) ->
     return f
 
 
+@lru_cache(maxsize=2048)
+def _key_of(plan: AnalysisPlan) -> AnalysisPlan:
+    return dataclasses.replace(plan, bearing=None, speed_range_hz=(0.0, 0.0))
+
+
+def batch_key(plan: AnalysisPlan) -> AnalysisPlan:
+    """What plans analysed in one call of :func:`analyze_mixed` must share: every field but the bearing and the
+    speed range (a hashable value, not a plan to analyse with).  Plans with equal keys mix; results are those of
+    each frame analysed alone with its own plan.
+
+    Raises
+    ------
+    PlanError, GeometryError
+        an invalid plan (as :func:`make_plan`).
+    """
+    return _key_of(_validate(plan))
+
+
+class _Rows(NamedTuple):
+    """The per-row parameters of a batch of mixed plans (:func:`analyze_mixed`), each row's from its own plan's
+    kernel; read-only arrays of shape (channels, ...).  Rows without an envelope stage (no bearing) have ``env``
+    False and neutral values in the envelope fields (never read)."""
+
+    channels: int
+    estimate: npt.NDArray[np.bool_]  # the plan can estimate a speed (AnalysisKernel._estimate)
+    speed_lo: FloatArray
+    speed_hi: FloatArray
+    speed_stop: IntArray
+    speed_group: IntArray  # index into speed_params: rows of one speed range and cage ratio
+    speed_params: tuple[tuple[tuple[float, float], float | None], ...]
+    env: npt.NDArray[np.bool_]
+    env_m: IntArray
+    env_stop: IntArray
+    threshold_cap: IntArray  # the row's threshold table's size less 2
+    thresholds: FloatArray  # the longest table (the entries do not depend on its length)
+    mult: FloatArray  # (channels, families)
+    mod: FloatArray  # (channels, families)
+    gap: FloatArray  # (channels, families, families + 1)
+    shaft_order: IntArray  # (channels, families)
+
+
+def _key_mismatch(a: AnalysisPlan, b: AnalysisPlan) -> str:
+    """The fields in which two batch keys differ, with their values."""
+    fields = [f.name for f in dataclasses.fields(AnalysisPlan)
+              if getattr(a, f.name) != getattr(b, f.name)]
+    return ", ".join(f"{name} ({getattr(b, name)!r} vs {getattr(a, name)!r})" for name in fields)
+
+
+@lru_cache(maxsize=64)  # (the daemon's batches repeat their composition from one round to the next)
+def _rows_for(kernels: tuple[AnalysisKernel, ...]) -> tuple[AnalysisKernel, _Rows]:
+    """The kernel whose shared arithmetic serves a mixed batch, and the batch's per-row parameters.
+
+    Raises
+    ------
+    PlanError
+        plans whose batch keys differ (naming the first row that differs and the fields).
+    """
+    unique: dict[AnalysisKernel, int] = {}
+    which = np.array([unique.setdefault(k, len(unique)) for k in kernels], dtype=np.intp)
+    ks = list(unique)
+    key = batch_key(ks[0].plan)
+    for row, k in enumerate(kernels):
+        other = batch_key(k.plan)
+        if other != key:
+            raise PlanError(f"plan of row {row} cannot share a call with row 0's: only the bearing and the speed "
+                            f"range may differ, it differs in {_key_mismatch(key, other)}")
+    nf = len(FAMILIES)
+    groups: dict[tuple[tuple[float, float], float | None], int] = {}
+    speed_group = [groups.setdefault((k.plan.speed_range_hz, k._cage), len(groups)) for k in ks]
+    env = [k._env for k in ks]
+    tables = [k._thresholds for k in ks if k._env]
+
+    def per_row(values: Sequence[Any], dtype: type) -> npt.NDArray[Any]:
+        out: npt.NDArray[Any] = np.asarray(values, dtype=dtype)[which]
+        out.flags.writeable = False
+        return out
+
+    rows = _Rows(
+        channels=len(kernels),
+        estimate=per_row([k._estimate for k in ks], bool),
+        speed_lo=per_row([k.plan.speed_range_hz[0] for k in ks], np.float64),
+        speed_hi=per_row([k.plan.speed_range_hz[1] for k in ks], np.float64),
+        speed_stop=per_row([k._speed_stop for k in ks], np.intp),
+        speed_group=per_row(speed_group, np.intp),
+        speed_params=tuple(groups),
+        env=per_row(env, bool),
+        env_m=per_row([k._env_m for k in ks], np.intp),
+        env_stop=per_row([k._env_stop for k in ks], np.intp),
+        threshold_cap=per_row([k._thresholds.size - 2 if e else 0 for k, e in zip(ks, env, strict=True)], np.intp),
+        thresholds=max(tables, key=len) if tables else np.zeros(0),
+        mult=per_row([k._mult if e else np.full(nf, np.nan) for k, e in zip(ks, env, strict=True)], np.float64),
+        mod=per_row([k._mod if e else np.full(nf, np.nan) for k, e in zip(ks, env, strict=True)], np.float64),
+        gap=per_row([k._gaps[0] if e else np.full((nf, nf + 1), np.inf) for k, e in zip(ks, env, strict=True)],
+                    np.float64),
+        shaft_order=per_row([k._gaps[1] if e else np.ones(nf, dtype=np.intp) for k, e in zip(ks, env, strict=True)],
+                            np.intp),
+    )
+    # (a kernel with an envelope stage, if any: a plan without a bearing has no envelope lines)
+    return next((k for k in ks if k._env), ks[0]), rows
+
+
 @lru_cache(maxsize=2048)  # above the daemon's 1,000 points: every distinct plan's kernel is built once, never
 def kernel_for(plan: AnalysisPlan) -> AnalysisKernel:  # evicted and rebuilt between batches (a reload adds some)
     """The kernel of ``plan`` (a pure memo: kernels are immutable and depend on the frozen plan only)."""
@@ -759,9 +973,34 @@ def plan_notes(plan: AnalysisPlan) -> tuple[str, ...]:
     return tuple(str(note) for note in kernel_for(plan).notes)
 
 
-def analyze_frames(x_g: npt.ArrayLike, plan: AnalysisPlan,
+def analyze_mixed(x_g: npt.ArrayLike, plans: Sequence[AnalysisPlan],
+                  shaft_hz: npt.ArrayLike | None = None) -> list[FrameIndicators]:
+    """Analyse frames whose plans differ only in the bearing and the speed range (equal :func:`batch_key`), one
+    plan per row, in one vectorised call.
+
+    Each row's result is that of the row analysed alone with its own plan (``analyze_frames(x_g[i], plans[i],
+    [shaft_hz[i]])``), to the bit; arguments otherwise as :func:`analyze_frames`.  The envelope stage makes one
+    demodulating transform per distinct decimated length among the rows, the speed estimate one call per distinct
+    speed range and bearing (the search itself is one call).
+
+    Raises
+    ------
+    PlanError
+        plans whose batch keys differ (the message names the first such row and the fields), or invalid plans.
+    SignalError
+        as :func:`analyze_frames`; also a number of plans other than the number of channels.
+    """
+    kernels = tuple(kernel_for(p) for p in plans)
+    if not kernels:
+        raise SignalError("no plans given: one plan per channel is needed")
+    shared, rows = _rows_for(kernels)
+    return shared._analyze(x_g, shaft_hz, rows)
+
+
+def analyze_frames(x_g: npt.ArrayLike, plan: AnalysisPlan | Sequence[AnalysisPlan],
                    shaft_hz: npt.ArrayLike | None = None) -> list[FrameIndicators]:
-    """Analyse frames that share one plan.
+    """Analyse frames that share one plan (or, given one plan per channel, frames of mixed plans:
+    :func:`analyze_mixed`).
 
     Parameters
     ----------
@@ -788,4 +1027,6 @@ def analyze_frames(x_g: npt.ArrayLike, plan: AnalysisPlan,
     SignalError
         NaN/Inf samples, wrong shape or frame length, negative given speeds or speeds at or above Nyquist.
     """
-    return kernel_for(plan).analyze(x_g, shaft_hz)
+    if isinstance(plan, AnalysisPlan):
+        return kernel_for(plan).analyze(x_g, shaft_hz)
+    return analyze_mixed(x_g, plan, shaft_hz)

@@ -94,6 +94,7 @@ __all__ = [
     "SHAFT_HARMONICS",
     "SHAFT_TOLERANCE",
     "FamilySearch",
+    "RowLimits",
     "demodulate",
     "envelope_amplitude_spectrum",
     "envelope_spectra",
@@ -336,9 +337,24 @@ class LineSearch:
         return out
 
 
+@dataclass(frozen=True, slots=True)
+class RowLimits:
+    """Per-row limits of a search whose rows come from different plans (``analysis.analyze_mixed``): each row's
+    spectrum is searched as if it had only ``lines`` lines and a threshold table of ``threshold_cap + 2`` entries
+    (the longest table is passed; its entries do not depend on its length).  Both int arrays of shape
+    (channels, 1)."""
+
+    lines: IntArray
+    threshold_cap: IntArray
+
+    def take(self, rows: IntArray) -> RowLimits:
+        """The limits of the rows ``rows``."""
+        return RowLimits(self.lines[rows], self.threshold_cap[rows])
+
+
 def search_lines(ses: FloatArray, centre_lines: FloatArray, half_lines: FloatArray, thresholds: FloatArray,
                  excluded: BoolArray | None = None, min_half: float = 1.0,
-                 exclude_in: BoolArray | None = None) -> LineSearch:
+                 exclude_in: BoolArray | None = None, limits: RowLimits | None = None) -> LineSearch:
     """Largest local maximum of ``ses`` in each window ``centre ± half`` and its detection statistic.
 
     Parameters
@@ -351,12 +367,13 @@ def search_lines(ses: FloatArray, centre_lines: FloatArray, half_lines: FloatArr
     excluded : bool ndarray, shape (channels, lines) — lines that may not be taken as the maximum
     min_half : smallest half-width in lines (1: the two lines around a centre between lines; 0.5: the nearest)
     exclude_in : bool ndarray, shape (channels, windows) — the windows ``excluded`` applies to (default: all)
+    limits : per-row spectrum lengths and threshold tables (default: the whole spectrum and table for every row)
 
     Returns
     -------
     LineSearch
     """
-    scan = _Scan(np.ascontiguousarray(ses), centre_lines, half_lines, thresholds, min_half)
+    scan = _Scan(np.ascontiguousarray(ses), centre_lines, half_lines, thresholds, min_half, limits)
     return scan.search(scan.admissible(excluded, exclude_in))
 
 
@@ -368,8 +385,11 @@ class _Scan:
     __slots__ = ("fits", "flat", "hi", "level", "lo", "local", "ses", "thr", "values")
 
     def __init__(self, ses: FloatArray, centre_lines: FloatArray, half_lines: FloatArray, thresholds: FloatArray,
-                 min_half: float | FloatArray) -> None:
+                 min_half: float | FloatArray, limits: RowLimits | None = None) -> None:
         c, k = ses.shape
+        # (a row's own spectrum length: lines beyond it, computed for longer rows of the batch, are never read by
+        # a window that fits it)
+        last: int | IntArray = k - 1 - _HEADROOM if limits is None else limits.lines - (1 + _HEADROOM)
         self.ses = ses
         # (an unknown centre or half-width — NaN — makes its bounds NaN, which fit nowhere)
         half = np.maximum(half_lines, min_half)
@@ -379,7 +399,7 @@ class _Scan:
         hi_f = centre_lines + half
         hi_f += 1e-9
         np.floor(hi_f, out=hi_f)
-        fits = (lo_f >= MIN_LINE) & (hi_f <= k - 1 - _HEADROOM)
+        fits = (lo_f >= MIN_LINE) & (hi_f <= last)
         lo_c = np.where(fits, lo_f, MIN_LINE).astype(np.intp)
         hi_c = np.where(fits, hi_f, MIN_LINE).astype(np.intp)
         span = hi_c - lo_c  # (lines in the window − 1)
@@ -413,7 +433,8 @@ class _Scan:
         vals.partition(LEVEL_RANK - 1, axis=-1)
         level = vals[..., LEVEL_RANK - 1] / _LEVEL_FACTOR
         self.level = np.maximum(level, _TINY, out=level)  # (the divisor of the statistic)
-        np.minimum(span, thresholds.size - 2, out=span)  # lines in the window, less one: the table's index − 1
+        cap = thresholds.size - 2 if limits is None else limits.threshold_cap
+        np.minimum(span, cap, out=span)  # lines in the window, less one: the table's index − 1
         self.thr = np.where(fits, thresholds[span + 1], np.nan)
         self.fits, self.lo, self.hi = fits, lo_c, hi_c
 
@@ -504,7 +525,7 @@ def pattern_gaps(multiples: FloatArray, modulation: FloatArray, harmonics: int) 
 def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArray, expected_hz: FloatArray,
                     modulation_hz: FloatArray, shaft_hz: FloatArray, slip: float, harmonics: int, df_hz: float,
                     thresholds: FloatArray, min_depth: float,
-                    gaps: tuple[FloatArray, IntArray] | None = None) -> FamilySearch:
+                    gaps: tuple[FloatArray, IntArray] | None = None, limits: RowLimits | None = None) -> FamilySearch:
     """Search and judge defect families in envelope spectra (method in the module docstring).
 
     Parameters
@@ -520,7 +541,9 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     min_depth : minimum squared-envelope modulation depth of a detected fundamental
     gaps : from :func:`pattern_gaps`; a fundamental closer than one line to a line of another family's pattern
         (that family's fundamental being significant in the frame) or to a shaft harmonic found in the frame cannot
-        be told from it at this resolution: its verdict is withheld (ambiguous with that family)
+        be told from it at this resolution: its verdict is withheld (ambiguous with that family); per row (shapes
+        (channels, families, families + 1) and (channels, families)) where the rows' bearings differ
+    limits : per-row spectrum lengths and threshold tables (:class:`RowLimits`; rows of different plans)
 
     Returns
     -------
@@ -537,7 +560,7 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     f_centre = first_centre[:, sh:]
     first_half = first_centre * _first_tolerance(slip, nf)  # (± 0.5 % for the shaft, ± slip for the families)
     f_half = first_half[:, sh:]
-    first = _Scan(ses, first_centre, first_half, thresholds, _first_min_half(nf))
+    first = _Scan(ses, first_centre, first_half, thresholds, _first_min_half(nf), limits)
     both = first.search(first.local)
     shaft = _columns(both, slice(0, sh))
     s_found = shaft.found
@@ -573,7 +596,8 @@ def search_families(amp_g: FloatArray, ses: FloatArray, ses_mean_line: FloatArra
     halves = np.concatenate([np.maximum(1.0, f_half)[..., None], h_half, sb_half], axis=-1)
     slots = centres.shape[-1]
     bar = None if excluded is None else np.repeat(established, slots, axis=-1)
-    lines = search_lines(ses, centres.reshape(c, -1), halves.reshape(c, -1), thresholds, excluded, exclude_in=bar)
+    lines = search_lines(ses, centres.reshape(c, -1), halves.reshape(c, -1), thresholds, excluded, exclude_in=bar,
+                         limits=limits)
     found = lines.found.reshape(c, nf, slots)
     index = lines.index.reshape(c, nf, slots)
     # 4. verdict: a significant fundamental with enough modulation depth
@@ -636,11 +660,15 @@ def _withheld(index: IntArray, found: BoolArray, significant: BoolArray, detecte
     s_found = shaft.found
     if gaps is not None:
         gap, shaft_order = gaps
-        shaft_near = s_found[:, shaft_order - 1] & established  # (c, A)
+        if gap.ndim == 2:  # (one bearing for every row)
+            gap = gap[None, :, :]
+            shaft_near = s_found[:, shaft_order - 1] & established  # (c, A)
+        else:
+            shaft_near = np.take_along_axis(s_found, shaft_order - 1, axis=1) & established
         present = np.concatenate([np.broadcast_to(significant[:, None, :], (c, nf, nf)),
                                   shaft_near[:, :, None]], axis=-1)  # (c, A, B + shaft)
         with np.errstate(invalid="ignore"):  # (an unknown speed: NaN compares False)
-            close = (gap[None, :, :] * shaft_hz[:, None, None] / df_hz < 1.0) & present
+            close = (gap * shaft_hz[:, None, None] / df_hz < 1.0) & present
         unresolved = detected & close.any(axis=-1) & ~ambiguous
         ambiguous_with = np.where(unresolved, close.argmax(axis=-1), ambiguous_with)
         ambiguous |= unresolved

@@ -270,7 +270,8 @@ def power3(power: FloatArray, idx: IntArray) -> FloatArray:
 
 
 def order_amplitudes_mm_s(vel_pow: FloatArray, shaft_hz: FloatArray, orders: tuple[float, ...],
-                          tolerance: float, df_hz: float, n_samples: int) -> FloatArray:
+                          tolerance: float, df_hz: float, n_samples: int,
+                          lines: IntArray | None = None) -> FloatArray:
     """Velocity r.m.s. (mm/s) of each order line; NaN where the speed is unknown or the line out of range.
 
     Parameters
@@ -279,12 +280,14 @@ def order_amplitudes_mm_s(vel_pow: FloatArray, shaft_hz: FloatArray, orders: tup
     shaft_hz : ndarray, shape (channels,) — NaN for unknown
     orders : the orders (multiples of shaft speed)
     tolerance : relative search tolerance around each order (at least ±1 line)
+    lines : int ndarray, shape (channels,) — each row's own number of lines (rows of different plans; default:
+        all of ``vel_pow``'s)
 
     Returns
     -------
     ndarray, shape (channels, len(orders))
     """
-    k = vel_pow.shape[1]
+    k: int | IntArray = vel_pow.shape[1] if lines is None else lines[:, None]
     known = np.isfinite(shaft_hz)
     f = np.where(known, shaft_hz, 0.0)
     centre_bins = f[:, None] * np.asarray(orders)[None, :] / df_hz  # (channels, orders)
