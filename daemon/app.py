@@ -3,11 +3,13 @@
 Data flow (all on one asyncio event loop, numerics in a thread pool)::
 
     sources ──payload/block/speed──▶ BlockIngest (frames.py) ──frames──▶ per-point bounded queues
-        ──batches of points sharing a plan──▶ ThreadPoolExecutor: analyze_frames(stack, plan, shaft_hz)
+        ──batches of points whose plans mix──▶ ThreadPoolExecutor: analyze_frames(stack, plan(s), shaft_hz)
         ──FrameResult list──▶ one delivery queue and task per FrameSink (Prometheus, MQTT, OPC UA, alarms…)
 
 A point is in at most one analysis batch at a time, so its frames (and trend) stay in order.  A batch takes the
-frames of the point that has waited longest and of every other idle point sharing its plan; it starts once
+frames of the point that has waited longest and of every other idle point whose plan mixes with its plan (equal
+``batch_key``: plans that differ only in the bearing and the speed range, as a plant's machines' do, are analysed
+in one call, each frame's result that of its own plan); it starts once
 :data:`MAX_BATCH` frames are queued or the oldest has waited :data:`BATCH_WINDOW_S` (50 ms), because one call on
 many frames costs a fraction per frame of a call on one (the pipeline's fixed cost per call is several frames'
 worth): under load the batches fill up, and when idle a frame waits at most the window.  One batch more than there
@@ -98,8 +100,10 @@ if TYPE_CHECKING:
 
 __all__ = ["LOSSLESS_BACKLOG", "SINK_BACKLOG_PER_POINT", "AnalyzeFn", "Daemon", "SinkChannel", "wire_alarms"]
 
-AnalyzeFn = Callable[[npt.NDArray[np.float32], AnalysisPlan, "npt.NDArray[np.float64] | None"],
-                     list[FrameIndicators]]
+AnalyzeFn = Callable[[npt.NDArray[np.float32], "AnalysisPlan | Sequence[AnalysisPlan]",
+                      "npt.NDArray[np.float64] | None"], list[FrameIndicators]]
+"""The analysis of a batch: frames, their plan (one plan for the whole batch, or one per frame when the plans differ
+but mix: ``analyze_frames`` takes either), their speeds."""
 MAX_BATCH = 64
 BATCH_WINDOW_S = 0.05  # a batch waits up to this long for more frames: larger batches cost far less per frame
 # Indicators whose exponentially weighted trend is kept: FrameIndicators fields (tests/daemon/test_app.py checks
@@ -111,7 +115,7 @@ LOSSLESS_BACKLOG = 4 * MAX_BATCH  # undelivered results of a lossless sink above
 log = get_logger("edgevib.daemon")
 
 
-def _default_analyze(x: npt.NDArray[np.float32], plan: AnalysisPlan,
+def _default_analyze(x: npt.NDArray[np.float32], plan: AnalysisPlan | Sequence[AnalysisPlan],
                      shaft_hz: npt.NDArray[np.float64] | None) -> list[FrameIndicators]:
     from edgevib.pipelines.analysis import analyze_frames
 
@@ -708,11 +712,17 @@ class Daemon:
         """A lossless sink (the alarm layer) is too far behind: let frames wait (and drop) before analysis."""
         return any(ch.lossless and ch.backlog > LOSSLESS_BACKLOG for ch in self._channels)
 
-    def _take_batch(self) -> tuple[AnalysisPlan, list[FrameJob]] | None:
-        """The queued frames of the point that has waited longest and of every other idle point sharing its plan
-        (oldest first), up to :data:`MAX_BATCH` frames."""
+    def _take_batch(self) -> tuple[AnalysisPlan | tuple[AnalysisPlan, ...], list[FrameJob]] | None:
+        """The queued frames of the point that has waited longest and of every other idle point whose plan mixes
+        with its plan (equal ``batch_key``), oldest first, up to :data:`MAX_BATCH` frames; and their plan (one
+        plan for all, or one per frame when they differ)."""
+        from edgevib.pipelines.analysis import batch_key
+
         streams = self.ingest.streams
         plan: AnalysisPlan | None = None
+        key: AnalysisPlan | None = None
+        plans: list[AnalysisPlan] = []  # each frame's
+        mixed = False
         jobs: list[FrameJob] = []
         # A machine with frames in a batch in flight waits for its results: its state after them decides how its
         # next frames are judged (as if the batches ran one after the other).
@@ -726,12 +736,16 @@ class Daemon:
             if st.machine.id in in_flight:
                 continue
             if plan is None:
-                plan = st.plan
+                plan, key = st.plan, batch_key(st.plan)
             elif st.plan is not plan and st.plan != plan:
-                continue
+                if batch_key(st.plan) != key:
+                    continue
+                mixed = True
             q = stream.queue
+            taken = len(jobs)
             while q and len(jobs) < MAX_BATCH:
                 jobs.append(q.popleft())
+            plans.extend([st.plan] * (len(jobs) - taken))
             self._queued_frames -= self._counted.get(pid, 0) - len(q)
             self._counted[pid] = len(q)
             del self._ready[pid]
@@ -739,7 +753,9 @@ class Daemon:
             self._busy_machines[mid] = self._busy_machines.get(mid, 0) + 1
             if len(jobs) >= MAX_BATCH:
                 break
-        return (plan, jobs) if plan is not None and jobs else None
+        if plan is None or not jobs:
+            return None
+        return (tuple(plans) if mixed else plan), jobs
 
     def _release(self, pids: set[str]) -> None:
         """Points whose batch is done: idle again, and ready at once if frames queued up meanwhile."""
@@ -757,7 +773,7 @@ class Daemon:
             if stream is not None and stream.queue and pid in self.points:
                 self._ready.setdefault(pid, now)
 
-    async def _run_batch(self, plan: AnalysisPlan, jobs: list[FrameJob]) -> None:
+    async def _run_batch(self, plan: AnalysisPlan | tuple[AnalysisPlan, ...], jobs: list[FrameJob]) -> None:
         pids = {j.point_id for j in jobs}
         try:
             shaft = [j.speed_hz for j in jobs]  # each frame's speed as known when it was completed
@@ -790,9 +806,10 @@ class Daemon:
         finally:
             self._release(pids)
 
-    def _stack_and_analyze(self, frames: list[npt.NDArray[np.float32]], plan: AnalysisPlan,
-                           shaft_hz: npt.NDArray[np.float64] | None, specs: Sequence[HealthSpec | None],
-                           running: Sequence[bool], points: Sequence[str], health_errors: list[HealthError],
+    def _stack_and_analyze(self, frames: list[npt.NDArray[np.float32]],
+                           plan: AnalysisPlan | tuple[AnalysisPlan, ...], shaft_hz: npt.NDArray[np.float64] | None,
+                           specs: Sequence[HealthSpec | None], running: Sequence[bool], points: Sequence[str],
+                           health_errors: list[HealthError],
                            ) -> tuple[npt.NDArray[np.float32], list[FrameIndicators], list[SensorHealth | None]]:
         """In the worker thread: one array per batch (each result's samples a read-only view of its row), the
         analysis, then the sensor-health checks of the frames — the batch's copy stays off the event loop too."""
@@ -804,7 +821,8 @@ class Daemon:
         rms = [i.acceleration_rms_g for i in ind]
         level = self.config.alarms.run_threshold_velocity_mm_s
         running = [judged_running(r, i.velocity_rms_mm_s, level) for r, i in zip(running, ind, strict=True)]
-        return x, ind, batch_health(x, plan.fs_hz, specs, rms, running, points, health_errors)
+        fs_hz = plan.fs_hz if isinstance(plan, AnalysisPlan) else plan[0].fs_hz  # (one rate: the batch key's)
+        return x, ind, batch_health(x, fs_hz, specs, rms, running, points, health_errors)
 
     def _health_specs(self, jobs: Sequence[FrameJob]) -> list[HealthSpec | None]:
         """Each frame's sensor-health specification, or ``None`` when the alarm layer checks no health."""

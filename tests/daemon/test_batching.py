@@ -155,3 +155,70 @@ async def test_a_batch_queues_behind_the_running_one_without_a_machine_already_i
     assert calls == [2, 4, 2]  # P-101-00/01, then P-102's four, then P-101-02/03
     assert [r.point_id for r in seen] == ["P-101-00", "P-101-01"] + [f"P-102-{i:02d}" for i in range(4)] \
         + ["P-101-02", "P-101-03"]
+
+
+def mixed_config(state_dir: Path) -> Config:
+    """Six points of three machines (1500, 1200 and 1800 r/min: three speed ranges), each point with its own bearing
+    geometry, so six plans that differ only in bearing and speed range; and a seventh point sampled at half the
+    rate, whose plan cannot share their call."""
+    rpm = {"P-201": 1500.0, "P-202": 1200.0, "P-203": 1800.0, "P-204": 1500.0}
+
+    def point(i: int, machine: str, fs: float) -> dict[str, Any]:
+        return {"id": f"{machine}-{i:02d}", "machine": machine, "source": "scripted", "sensor": f"QL-{i:02d}",
+                "fs_hz": fs, "block_samples": N, "sensor_type": "piezo", "bandwidth_hz": [0.5, 10000.0],
+                "bearing": {"elements": 7 + i, "ball_diameter_mm": 6.0 + 0.5 * i, "pitch_diameter_mm": 39.0,
+                            "contact_angle_deg": 0.0}}
+
+    machines = ["P-201", "P-201", "P-202", "P-202", "P-203", "P-203"]
+    return parse_config({
+        "site": {"name": "quarry-lane", "state_dir": str(state_dir)},
+        "analysis": {"frame_samples": N, "overlap": 0.0, "queue_frames": 4, "workers": 1},
+        "alarms": {"enabled": False},
+        "sources": [{"name": "scripted", "type": "mqtt", "url": "mqtt://127.0.0.1:1", "topics": ["x/#"]}],
+        "machines": [{"id": m, "group": 2, "support": "rigid", "speed_rpm": r} for m, r in rpm.items()],
+        "points": [point(i, m, FS) for i, m in enumerate(machines)] + [point(6, "P-204", FS / 2)],
+    })
+
+
+def faulty_block(i: int, fs: float, shaft_hz: float) -> Block:
+    """A running machine's frame (1× line) with decaying resonance bursts at 3.3 × shaft speed (a localized
+    bearing defect, Randall & Antoni, MSSP 25 (2011) 485–520) and seeded noise."""
+    t = np.arange(N) / fs
+    f = 3.3 * shaft_hz
+    tau = (t * f % 1.0) / f
+    rng = np.random.default_rng(i)
+    x = 0.3 * np.sin(2 * np.pi * shaft_hz * t) + 0.5 * np.exp(-600 * tau) * np.sin(2 * np.pi * 3000 * tau)
+    x = (x + rng.normal(0, 0.05, N)).astype(np.float32)
+    x.flags.writeable = False
+    return Block(f"QL-{i:02d}", 0, T0, fs, "g", x)
+
+
+async def test_points_with_different_bearings_share_one_call(tmp_path: Path) -> None:
+    # plans differing only in bearing and speed range (analysis.batch_key) are analysed in one call; each point's
+    # published indicators are those of its frame analysed alone with its own plan (as when every plan had its
+    # own call); the point sampled at another rate is analysed in a call of its own
+    from edgevib.pipelines.analysis import batch_key
+
+    cfg = mixed_config(tmp_path)
+    rec = Recorder()
+    daemon = Daemon(cfg, registry=CollectorRegistry(), analyze=rec, sources=[], serve_metrics=False)
+    seen = probe(daemon)
+    plans = {p.id: cfg.plan(p.id) for p in cfg.points}
+    assert len(set(plans.values())) == 7 and len({batch_key(p) for p in plans.values()}) == 2
+    speeds = {p.id: next(m.speed_rpm for m in cfg.machines if m.id == p.machine) / 60.0 for p in cfg.points}
+    await daemon.start()
+    try:
+        for i, p in enumerate(cfg.points):
+            daemon.ingest.block("scripted", faulty_block(i, p.fs_hz, speeds[p.id]), 1)
+        for _ in range(400):
+            if len(seen) >= 7 and daemon.idle and not daemon._ready:
+                break
+            await asyncio.sleep(0.01)
+    finally:
+        await daemon.stop()
+    assert sorted(rec.calls) == [1, 6]
+    assert len(seen) == 7
+    for r in seen:
+        own = analyze_frames(r.samples, plans[r.point_id], [speeds[r.point_id]])[0]
+        assert r.indicators == own, r.point_id
+    assert any(r.indicators.envelope for r in seen)  # the envelope families were searched (not all absent)
