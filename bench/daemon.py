@@ -11,8 +11,8 @@ and start time are patched per block, and at QoS 0 a block goes out as one ``sen
 and the payload (:class:`RawPublisher`), so the load generator leaves the cores to the broker and the daemon.
 Frames are 16384 samples, overlap 0 by default (one frame per block).  Every point has the same pump bearing by
 default, so all share one analysis plan and the daemon analyses them in large batches; ``--plans K`` gives the
-points K distinct bearing geometries, as a plant's machines have, and each plan's points are analysed in a call
-of their own (at K = channels, one frame per call).
+points K distinct bearing geometries, as a plant's machines have: K plans that differ only in the bearing, which
+the daemon analyses in mixed batches (``analysis.analyze_mixed``) as large as with one plan.
 
 Because every daemon instance runs in its own process, its CPU time and memory are its own: publishers, the
 broker and the benchmark's coordinator are other processes.  ``--instances N`` splits the channels between N
@@ -375,7 +375,7 @@ def bench_config(port: int, channels: int, overlap: float, state_dir: str,
                  shard: tuple[int, int] | None = None, plans: int = 1) -> Any:
     """The configuration of one benchmark instance: ``channels`` points of one pump each, all on one broker.
     Point ``c`` has bearing geometry ``c % plans`` (:func:`bench_bearing`): ``plans`` distinct analysis plans,
-    whose points the daemon analyses in one call per plan.
+    which differ only in the bearing (so the daemon's batches mix them).
 
     With ``shard = (index, count)`` the instance owns the points of its hash shard (``[site] shard``) and, as the
     README advises for sharded instances, subscribes to its own sensors' topics only, so the broker splits the
@@ -773,7 +773,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=1)
     p.add_argument("--plans", type=int, default=1, metavar="K",
                    help="distinct bearing geometries cycled over the points, hence K analysis plans (default 1: "
-                        "every point on one plan, analysed in large batches; a plant's points differ)")
+                        "every point on one plan; a plant's points differ, and the daemon batches them alike)")
     p.add_argument("--cpu", type=int, default=None,
                    help="pin the daemon instance's process to this CPU core (instance i to core N+i)")
     p.add_argument("--without-alarms", action="store_true",

@@ -347,10 +347,6 @@ class RowLimits:
     lines: IntArray
     threshold_cap: IntArray
 
-    def take(self, rows: IntArray) -> RowLimits:
-        """The limits of the rows ``rows``."""
-        return RowLimits(self.lines[rows], self.threshold_cap[rows])
-
 
 def search_lines(ses: FloatArray, centre_lines: FloatArray, half_lines: FloatArray, thresholds: FloatArray,
                  excluded: BoolArray | None = None, min_half: float = 1.0,
