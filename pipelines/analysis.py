@@ -612,7 +612,8 @@ class AnalysisKernel:
                       estimate: npt.NDArray[np.bool_], own_stop: IntArray,
                       rows: _Rows) -> tuple[FloatArray, FloatArray]:
         """The speeds of :meth:`_analyze` with ``rows``: the given ones, and the estimate of the rows that need
-        one, once per distinct speed range and cage ratio on its rows' own lines (``own_stop``)."""
+        one, once per distinct speed range on its rows' own lines (``own_stop``), each row with its own bearing's
+        cage ratio."""
         c, k = vel_pow.shape
         shaft = f_given.copy()
         quality = np.full(c, np.nan)
@@ -623,12 +624,17 @@ class AnalysisKernel:
         for g in np.unique(groups).tolist():
             idx = which[groups == g]
             stop = int(own_stop[idx[0]])  # (the same for every row of the group: no speed given, one range)
-            speed_range, cage = rows.speed_params[g]
+            cages = rows.cage[idx]
+            cage: float | FloatArray | None = float(cages[0])
+            if np.isnan(cages).all():
+                cage = None
+            elif not (cages == cages[0]).all():  # (different bearings: one ratio per row)
+                cage = cages
             if idx.size == c and stop == k:  # (one group, as with one plan: no copies of the rows)
                 v, a = vel_pow, acc_pow
             else:
                 v, a = vel_pow[idx, :stop], acc_pow[idx, :stop]
-            est, q = estimate_speed_hz(v, a, speed_range, self._df, SPEED_HARMONICS, cage_ratio=cage,
+            est, q = estimate_speed_hz(v, a, rows.speed_ranges[g], self._df, SPEED_HARMONICS, cage_ratio=cage,
                                        tolerance=self.plan.order_tolerance)
             shaft[idx] = est
             quality[idx] = q
@@ -886,8 +892,9 @@ class _Rows(NamedTuple):
     speed_lo: FloatArray
     speed_hi: FloatArray
     speed_stop: IntArray
-    speed_group: IntArray  # index into speed_params: rows of one speed range and cage ratio
-    speed_params: tuple[tuple[tuple[float, float], float | None], ...]
+    speed_group: IntArray  # index into speed_ranges: rows of one speed range
+    speed_ranges: tuple[tuple[float, float], ...]
+    cage: FloatArray  # the bearing's FTF ratio (the speed estimate's cage_ratio); NaN without a bearing
     env: npt.NDArray[np.bool_]
     env_m: IntArray
     env_stop: IntArray
@@ -925,8 +932,8 @@ def _rows_for(kernels: tuple[AnalysisKernel, ...]) -> tuple[AnalysisKernel, _Row
             raise PlanError(f"plan of row {row} cannot share a call with row 0's: only the bearing and the speed "
                             f"range may differ, it differs in {_key_mismatch(key, other)}")
     nf = len(FAMILIES)
-    groups: dict[tuple[tuple[float, float], float | None], int] = {}
-    speed_group = [groups.setdefault((k.plan.speed_range_hz, k._cage), len(groups)) for k in ks]
+    groups: dict[tuple[float, float], int] = {}
+    speed_group = [groups.setdefault(k.plan.speed_range_hz, len(groups)) for k in ks]
     env = [k._env for k in ks]
     tables = [k._thresholds for k in ks if k._env]
 
@@ -942,7 +949,8 @@ def _rows_for(kernels: tuple[AnalysisKernel, ...]) -> tuple[AnalysisKernel, _Row
         speed_hi=per_row([k.plan.speed_range_hz[1] for k in ks], np.float64),
         speed_stop=per_row([k._speed_stop for k in ks], np.intp),
         speed_group=per_row(speed_group, np.intp),
-        speed_params=tuple(groups),
+        speed_ranges=tuple(groups),
+        cage=per_row([math.nan if k._cage is None else k._cage for k in ks], np.float64),
         env=per_row(env, bool),
         env_m=per_row([k._env_m for k in ks], np.intp),
         env_stop=per_row([k._env_stop for k in ks], np.intp),
@@ -981,7 +989,7 @@ def analyze_mixed(x_g: npt.ArrayLike, plans: Sequence[AnalysisPlan],
     Each row's result is that of the row analysed alone with its own plan (``analyze_frames(x_g[i], plans[i],
     [shaft_hz[i]])``), to the bit; arguments otherwise as :func:`analyze_frames`.  The envelope stage makes one
     demodulating transform per distinct decimated length among the rows, the speed estimate one call per distinct
-    speed range and bearing (the search itself is one call).
+    speed range (each row with its own bearing's cage ratio); the family search is one call.
 
     Raises
     ------

@@ -301,7 +301,7 @@ def order_amplitudes_mm_s(vel_pow: FloatArray, shaft_hz: FloatArray, orders: tup
 
 
 def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: tuple[float, float],
-                      df_hz: float, harmonics: int = 3, *, cage_ratio: float | None = None,
+                      df_hz: float, harmonics: int = 3, *, cage_ratio: float | FloatArray | None = None,
                       tolerance: float = 0.03) -> tuple[FloatArray, FloatArray]:
     """Shaft-speed estimate per channel with its quality; NaN where no clear or no unambiguous 1× line exists.
 
@@ -342,6 +342,8 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     ----------
     vel_pow, acc_pow : ndarrays, shape (channels, lines) — Hann-windowed velocity and acceleration line powers;
         lines must reach ``harmonics · speed_range_hz[1]`` plus 2 lines.
+    cage_ratio : None, a float, or an ndarray of shape (channels,) — one per row (rows of different bearings; NaN:
+        none), each row's result then that of the row with its own ratio.
 
     Returns
     -------
@@ -387,25 +389,44 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     rows = np.arange(c)
     first = valid.argmax(axis=-1)
     f_w = f_est[rows, first]
-    if cage_ratio is not None:
+    # a ratio per row: the row's values broadcast where the scalar's do (``cage`` beside ``f_w[:, None]``,
+    # ``cage_flat`` beside ``f_w``), parents per row (c, P), and the rows that have any (the others are masked)
+    cage: float | FloatArray | None = None
+    cage_flat: float | FloatArray | None = None
+    has_parents: npt.NDArray[np.bool_] | None = None
+    if cage_ratio is not None and np.ndim(cage_ratio):
+        cage_flat = np.asarray(cage_ratio, dtype=np.float64)
+        cage = cage_flat[:, None]
+        parents, has_parents = _cage_parents_rows(cage_flat)
+        parents_lead = parents.T[:, :, None]  # (P, c, 1)
+    elif cage_ratio is not None:
+        cage = cage_flat = float(cage_ratio)
+        parents = _cage_parents(cage)
+        parents_lead = parents[:, None, None]
+    if cage is not None and parents.size:
         # a winner on the cage line of another valid candidate, or on one of its first harmonics, is that
         # candidate's FTF series, not a shaft speed: the winner gives way to it (the best such candidate)
-        parents = _cage_parents(cage_ratio)
-        if parents.size:
-            tol = SPEED_CAGE_TOLERANCE
-            # (the small axes — parents, cage orders, related ratios — lead, here and below: a reduction over a
-            # leading axis costs a fraction of one over a short last axis)
-            cage_of = valid & (np.abs(f_w[None, :, None] / (f_est * parents[:, None, None]) - 1.0) <= tol).any(axis=0)
-            # (not to a candidate on the winner's own cage series: each reading explains a line of the other)
-            cage_of &= ~(np.abs(f_est / (f_w[:, None] * cage_ratio * _CAGE_ORDERS_LEADING) - 1.0)
-                         <= tol).any(axis=0)
-            has_shaft = cage_of.any(axis=-1)
-            first = np.where(has_shaft, cage_of.argmax(axis=-1), first)
-            f_w = f_est[rows, first]
+        tol = SPEED_CAGE_TOLERANCE
+        # (the small axes — parents, cage orders, related ratios — lead, here and below: a reduction over a
+        # leading axis costs a fraction of one over a short last axis)
+        cage_of = valid & (np.abs(f_w[None, :, None] / (f_est * parents_lead) - 1.0) <= tol).any(axis=0)
+        # (not to a candidate on the winner's own cage series: each reading explains a line of the other)
+        cage_of &= ~(np.abs(f_est / (f_w[:, None] * cage * _CAGE_ORDERS_LEADING) - 1.0)
+                     <= tol).any(axis=0)
+        if has_parents is not None:
+            cage_of &= has_parents[:, None]
+        has_shaft = cage_of.any(axis=-1)
+        first = np.where(has_shaft, cage_of.argmax(axis=-1), first)
+        f_w = f_est[rows, first]
     s_w = cand_score[rows, first]
     a_w = line_1x[rows, first]
     # candidates related to the winner (and, with cage_ratio, to the winner's cage line and its harmonics)
-    f0 = f_w[None, :] if cage_ratio is None else _one_and(cage_ratio)[:, None] * f_w  # (1 or 2, channels)
+    if cage_flat is None:
+        f0 = f_w[None, :]
+    elif has_parents is None:
+        f0 = _one_and(float(cage_flat))[:, None] * f_w  # (2, channels)
+    else:
+        f0 = np.stack([f_w, cage_flat * f_w])  # (1 × f_w is f_w; a NaN ratio relates nothing)
     ratio = f_est / f0[:, :, None]  # (1 or 2, channels, K)
     near = (np.abs(ratio - _RELATED_LEADING) <= _RELATED_TOL_LEADING) | \
         (np.abs(1.0 / ratio - _RELATED_LEADING) <= _RELATED_TOL_LEADING)  # (4, 1 or 2, channels, K)
@@ -421,8 +442,8 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
     # cage_ratio the lines of the two cage checks — at 1/3 and 2/3 of the winner, and the largest line of each
     # window where a shaft would run whose cage series holds the winner (one window search and one median over
     # (channels, 5 + 2 + parents) windows)
-    parent_line = cage_ratio is not None and parents.size > 0
-    f_q = f_w[:, None] * (_READINGS if cage_ratio is None else _READINGS_THIRDS)
+    parent_line = cage is not None and parents.size > 0
+    f_q = f_w[:, None] * (_READINGS if cage is None else _READINGS_THIRDS)
     if parent_line:
         p_s, f_s = _cage_parent_lines(acc, f_w, parents, df_hz)
         f_q = np.concatenate([f_q, p_s * df_hz], axis=1)
@@ -442,28 +463,30 @@ def estimate_speed_hz(vel_pow: FloatArray, acc_pow: FloatArray, speed_range_hz: 
         (amp3.ravel().take(fp_q[:, 1:n_r]) >= _READING_SHARE * a_w[:, None])
     in_range = (f_m >= speed_range_hz[0]) & (f_m <= speed_range_hz[1])
     quality[(clear_m & in_range).any(axis=-1)] = 0.0
-    if cage_ratio is not None:
+    if cage is not None and cage_flat is not None:
         # ... and, below the range, lines at 1/3 and 2/3 of it as clear as a 1× line, where the winner / (3 × FTF)
         # lies in the range: the winner may be the 3 × FTF of a cage fault whose shaft line is too weak to be a
         # candidate (no machine series puts lines at both)
-        shaft_of = f_w / (3.0 * cage_ratio)
+        shaft_of = f_w / (3.0 * cage_flat)
         maybe = ((f_w / 3.0 < speed_range_hz[0]) & (shaft_of >= speed_range_hz[0] * (1.0 - SPEED_CAGE_TOLERANCE))
                  & (shaft_of <= speed_range_hz[1] * (1.0 + SPEED_CAGE_TOLERANCE)))
         if maybe.any():  # (the verdict only where the winner's place allows it: most calls skip it)
             t = slice(n_r, n_r + _THIRDS.size)
             f_t, a_t, floor_t = f_q_ref[:, t], a_q[:, t], floor_q[:, t]
-            own = (np.abs(f_t / (f_w[:, None] * cage_ratio * _CAGE_ORDERS_LEADING) - 1.0)
+            own = (np.abs(f_t / (f_w[:, None] * cage * _CAGE_ORDERS_LEADING) - 1.0)
                    <= SPEED_CAGE_TOLERANCE).any(axis=0)  # (not the winner's own cage lines, nor their skirts)
             peak_t = a_t >= beside_q[:, t]
             thirds = (a_t > 0) & peak_t & (a_t >= SPEED_MIN_PROMINENCE * floor_t) & ~own
             quality[thirds.all(axis=-1) & maybe] = 0.0
-    if parent_line and cage_ratio is not None:
+    if parent_line and cage is not None:
         # a clear line where a shaft would run whose cage series holds the winner, that is no valid candidate (its
         # 1× line weaker than a strong cage series): the winner may be that shaft's cage line
         half_clear = a_ref[:, 3] >= SPEED_RELATED_PROMINENCE * floor_ref[:, 3]  # (a looseness series' ½× line)
         s = slice(n_r + _THIRDS.size, None)
-        parent = _cage_parent_found(acc, f_w, a_ref[:, 0], cage_ratio, parents, speed_range_hz, df_hz, half_clear,
+        parent = _cage_parent_found(acc, f_w, a_ref[:, 0], cage, parents, speed_range_hz, df_hz, half_clear,
                                     p_s, f_s, f_q_ref[:, s], a_q[:, s], floor_q[:, s])
+        if has_parents is not None:
+            parent &= has_parents
         quality[parent] = 0.0
     any_valid = valid[rows, first]
     quality[~any_valid] = np.nan
@@ -513,6 +536,24 @@ def _cage_parents(cage_ratio: float) -> FloatArray:
     return out
 
 
+def _cage_parents_rows(cage_ratio: FloatArray) -> tuple[FloatArray, npt.NDArray[np.bool_]]:
+    """:func:`_cage_parents` per row (NaN: no ratio), shape (channels, P) with P the most any row has, a row's
+    missing ones repeating its first (a repeated parent changes no verdict); and the rows that have any (the
+    others read a placeholder, 1, and are to be masked)."""
+    rows = [_cage_parents(r) if math.isfinite(r) else _NO_PARENTS for r in cage_ratio.tolist()]
+    width = max(p.size for p in rows)
+    out = np.ones((len(rows), width))
+    for i, p in enumerate(rows):
+        if p.size:
+            out[i] = p[np.minimum(np.arange(width), p.size - 1)]
+    has: npt.NDArray[np.bool_] = np.array([p.size > 0 for p in rows], dtype=bool)
+    return out, has
+
+
+_NO_PARENTS = np.zeros(0)
+_NO_PARENTS.flags.writeable = False
+
+
 def _cage_parent_lines(acc: FloatArray, f_w: FloatArray, parents: FloatArray,
                        df_hz: float) -> tuple[IntArray, FloatArray]:
     """The largest line where a shaft would run whose k-th cage line is the winner ``f_w`` (shape (channels,)):
@@ -530,7 +571,8 @@ def _cage_parent_lines(acc: FloatArray, f_w: FloatArray, parents: FloatArray,
     return out, f_p
 
 
-def _cage_parent_found(acc: FloatArray, f_w: FloatArray, a_w: FloatArray, cage_ratio: float, parents: FloatArray,
+def _cage_parent_found(acc: FloatArray, f_w: FloatArray, a_w: FloatArray, cage_ratio: float | FloatArray,
+                       parents: FloatArray,
                        speed_range_hz: tuple[float, float], df_hz: float, half_clear: npt.NDArray[np.bool_],
                        p: IntArray, f_p: FloatArray, f_pr: FloatArray, a_p: FloatArray,
                        floor_p: FloatArray) -> npt.NDArray[np.bool_]:

@@ -222,3 +222,42 @@ def test_one_plan_and_errors() -> None:
         analyze_mixed(x, [plan, plan], None)
     with pytest.raises(SignalError, match="no plans"):
         analyze_mixed(x, [], None)
+
+
+def cage_record(rpm: float, bearing: BearingGeometry, seed: int, velocity_mm_s: float) -> np.ndarray:
+    """4 s of a fan with a damaged cage (FTF at ``velocity_mm_s``, 0.4 and 0.2 of it at 2× and 3×, over a residual
+    0.5 mm/s 1×), from the project's simulator."""
+    from edgevib.simulator.engine import Simulation
+    from edgevib.simulator.scenario import parse_scenario
+
+    doc = {"scenario": {"name": "cage-mix", "description": "cage defect", "duration_s": 5.0},
+           "site": {"name": "test-bench", "description": "test bench", "topic_prefix": "tb/cage"},
+           "machines": [{"id": "M-1", "description": "fan", "group": 2, "support": "rigid", "speed": {"rpm": rpm},
+                         "faults": [{"type": "cage", "velocity_mm_s": velocity_mm_s, "stage": "developing"}]}],
+           "points": [{"id": "M-1-P", "machine": "M-1", "axis": "horizontal", "sensor": "S1",
+                       "sensor_type": "piezo", "fs_hz": FS, "block_samples": 8192,
+                       "bearing": {"elements": bearing.elements, "ball_diameter_mm": bearing.ball_diameter,
+                                   "pitch_diameter_mm": bearing.pitch_diameter,
+                                   "contact_angle_deg": bearing.contact_angle_deg}}]}
+    sc = parse_scenario(doc)
+    return Simulation(sc, seed=seed, t0_ns=0).record(sc.points[0].point_id, 13)
+
+
+def test_speed_estimates_with_each_rows_cage_ratio() -> None:
+    # cage faults whose FTF series competes with the shaft (the speed estimate's cage rules: a cage line gives way
+    # to its shaft, a dominant cage line over a weak shaft is withheld), estimated in one call with one bearing per
+    # row — the faulty one, another, none — within one speed range: each row as with its own plan alone
+    femto = BearingGeometry(13, 3.5, 25.6, 0.0)  # FEMTO bearing (datasets README)
+    angular = BearingGeometry(7, 11.1, 38.5, 40.0)
+    cases = [(450.0, femto, 4.0), (1100.0, angular, 4.0), (620.0, BearingGeometry(9, 7.94, 39.04, 0.0), 1.5)]
+    frames, plans = [], []
+    for rpm, bearing, v in cases:
+        x = cage_record(rpm, bearing, 0, v)
+        for b in (bearing, B6203, None):
+            frames.append(x)
+            plans.append(make_plan(FS, x.size, speed_range_hz=(5.0, 100.0), bearing=b, partial=True))
+    x_all = np.stack(frames)
+    out = assert_as_alone(x_all, plans, None)
+    # the bearing decides some estimate here (else the cage ratios per row would be untested)
+    speed = [(r.shaft_hz, r.shaft_quality) for r in out]
+    assert any(speed[3 * i] != speed[3 * i + 2] for i in range(len(cases))), speed
