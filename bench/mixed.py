@@ -10,7 +10,8 @@ band of a 0.5 Hz–10 kHz sensor, speed range 15–60 Hz.  Timed, per frame, wit
 on all frames; ``per_plan`` one ``analyze_frames`` call per frame (what batching by plan gives when every point has
 its own plan); ``one_plan`` one ``analyze_frames`` call on all frames with the first plan (the batch of a plant
 whose points share one plan; the floor of the mixed call).  Each with the speed given (``given``, as a fixed
-machine speed is) and estimated (``estimated``: one estimate per distinct bearing, whose cage ratio it uses).
+machine speed is) and estimated (``estimated``: one estimate for the speed range, each row with its bearing's cage
+ratio).
 """
 
 from __future__ import annotations
