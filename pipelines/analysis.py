@@ -458,18 +458,18 @@ class AnalysisKernel:
         return self._analyze(x_g, shaft_hz, None)
 
     def _analyze(self, x_g: npt.ArrayLike, shaft_hz: npt.ArrayLike | None,
-                 rows: _Rows | None) -> list[FrameIndicators]:
-        """:meth:`analyze`; with ``rows``, the frames of :func:`analyze_mixed`: each row analysed as its own plan's
+                 mixed: _Rows | None) -> list[FrameIndicators]:
+        """:meth:`analyze`; with ``mixed``, the frames of :func:`analyze_mixed`: each row analysed as its own plan's
         kernel analyses it alone (this kernel's plan has the batch key of every row's plan: the shared arithmetic
-        is this kernel's, the per-row parameters are ``rows``')."""
+        is this kernel's, the per-row parameters are ``mixed``')."""
         plan = self.plan
         n = self._n
         x = as_frames(x_g)  # float64, or float32 as the daemon's frames are (not widened)
         if x.shape[1] != n:
             raise SignalError(f"frames have {x.shape[1]} samples, the plan expects {n}")
         c = x.shape[0]
-        if rows is not None and rows.channels != c:
-            raise SignalError(f"{rows.channels} plans given for {c} channels")
+        if mixed is not None and mixed.channels != c:
+            raise SignalError(f"{mixed.channels} plans given for {c} channels")
         f_given = _shaft_array(shaft_hz, c, plan.fs_hz)
         # One single-precision transform serves everything: the frames go in less their first sample (so a DC
         # offset such as a MEMS sensor's 1 g of gravity stays out of the float32 rounding), cast in the same pass.
@@ -491,7 +491,7 @@ class AnalysisKernel:
         # valid) keeps the time-domain and velocity indicators; orders and envelope families need a speed the
         # frame resolves, so they are absent for it.
         own_stop: IntArray | None = None
-        if rows is None:
+        if mixed is None:
             estimate = ~given
             if not self._estimate:
                 estimate[:] = False
@@ -506,13 +506,13 @@ class AnalysisKernel:
                                                    / self._df) + 3))
         else:
             # each row's own plan, and the lines its kernel computes for it alone (the same arithmetic per row)
-            estimate = ~given & rows.estimate
-            slow = given & (f_given < rows.speed_lo)
+            estimate = ~given & mixed.estimate
+            slow = given & (f_given < mixed.speed_lo)
             fast = given & ~slow
             any_estimate = bool(estimate.any())
-            known = np.where(fast, f_given, rows.speed_hi)
+            known = np.where(fast, f_given, mixed.speed_hi)
             order_stop = np.ceil(max(plan.orders) * known * (1 + plan.order_tolerance) / self._df) + 3
-            first = np.where(estimate, np.maximum(rows.speed_stop, self._vel_stop), self._vel_stop)
+            first = np.where(estimate, np.maximum(mixed.speed_stop, self._vel_stop), self._vel_stop)
             own_stop = np.minimum(np.maximum(first, order_stop), n // 2).astype(np.intp)
             stop = int(own_stop.max())
         acc = hann_lines(spec, stop)
@@ -523,8 +523,8 @@ class AnalysisKernel:
         factor = 16.0 / (3.0 * n * n)
         vel_rms = np.sqrt(vel_pow[:, v_lo : v_hi + 1].sum(axis=-1) * factor)
 
-        if rows is not None and own_stop is not None:  # (both or neither)
-            shaft, quality = self._mixed_speeds(vel_pow, acc_pow, f_given, estimate, own_stop, rows)
+        if mixed is not None and own_stop is not None:  # (both or neither)
+            shaft, quality = self._mixed_speeds(vel_pow, acc_pow, f_given, estimate, own_stop, mixed)
         elif any_estimate and bool(estimate.all()):  # (the usual case: no copies of the rows)
             shaft, quality = estimate_speed_hz(vel_pow, acc_pow, plan.speed_range_hz, self._df, SPEED_HARMONICS,
                                                cage_ratio=self._cage, tolerance=plan.order_tolerance)
@@ -541,8 +541,8 @@ class AnalysisKernel:
         orders = order_amplitudes_mm_s(vel_pow, shaft_running, plan.orders, plan.order_tolerance, self._df, n,
                                        lines=own_stop)
         families: list[dict[str, FamilyResult]]
-        if rows is not None:
-            families = self._mixed_families(spec, shaft_running, running, rows)
+        if mixed is not None:
+            families = self._mixed_families(spec, shaft_running, running, mixed)
             del spec
         elif self._env and running.any():
             z = self._demodulated(spec)
