@@ -242,6 +242,26 @@ READ_CHUNK = 256 * 1024
 MAX_READS = 16
 """Reads of :data:`READ_CHUNK` in one turn of the event loop before the other callbacks get theirs."""
 _ONE_BYTE = tuple(bytes((b,)) for b in range(256))
+_LENGTH_TOO_LONG = -1  # what _remaining_length gives for a length of more than four bytes
+_LENGTH_CUT = -2  # ... and for one that runs past the end of the bytes at hand
+
+
+def _remaining_length(buf: bytearray, i: int, end: int) -> tuple[int, int]:
+    """A packet's remaining length (MQTT 3.1.1 §2.2.3, a variable byte integer of at most four bytes) starting at
+    ``buf[i]``, and the index after it; the length is :data:`_LENGTH_TOO_LONG` or :data:`_LENGTH_CUT` (with ``i``
+    where reading stopped) when it runs past four bytes or past ``end``."""
+    length = shift = 0
+    while True:
+        if shift > 21:
+            return _LENGTH_TOO_LONG, i
+        if i == end:
+            return _LENGTH_CUT, i
+        byte = buf[i]
+        i += 1
+        length |= (byte & 0x7F) << shift
+        if byte < 0x80:
+            return length, i
+        shift += 7
 """Every one-byte string, made once: paho reads a packet's type and each byte of its length one at a time."""
 
 
@@ -337,16 +357,8 @@ class _ChunkedReader:
         buf, pos, end = self._buf, self._pos, self._end
         if pos >= end or buf[pos] & 0xF6 != 0x30:
             return None
-        i, length, shift = pos + 1, 0, 0
-        while True:
-            if i == end or shift > 21:  # the length goes on past the chunk, or past four bytes (paho's error)
-                return None
-            byte = buf[i]
-            i += 1
-            length |= (byte & 0x7F) << shift
-            if byte < 0x80:
-                break
-            shift += 7
+        # (a length past four bytes (paho's error) or past the chunk is negative: refused with the too short ones)
+        length, i = _remaining_length(buf, pos + 1, end)
         stop = i + length
         if stop > end or length < 2:
             return None
@@ -378,18 +390,11 @@ class _ChunkedReader:
         buf, pos, end = self._buf, self._pos, self._end
         if pos >= end or self._eof or self._error is not None or buf[pos] & 0xF6 != 0x30:
             return -1
-        i, length, shift = pos + 1, 0, 0
-        while True:
-            if shift > 21:  # more than four bytes of remaining length: paho's error, at once
-                return -1
-            if i == end:  # the remaining length cut: held, its total not known yet
-                return self._keep(pos, end, 0)
-            byte = buf[i]
-            i += 1
-            length |= (byte & 0x7F) << shift
-            if byte < 0x80:
-                break
-            shift += 7
+        length, i = _remaining_length(buf, pos + 1, end)
+        if length == _LENGTH_TOO_LONG:  # more than four bytes of remaining length: paho's error, at once
+            return -1
+        if length == _LENGTH_CUT:  # the remaining length cut: held, its total not known yet
+            return self._keep(pos, end, 0)
         stop = i + length
         if stop <= end or stop - pos > READ_CHUNK or length < 2:  # whole (not taken), or never whole in the buffer
             return -1

@@ -8,6 +8,7 @@ from typing import Any
 
 import paho.mqtt.client as mqtt
 import pytest
+from mqtt_roundtrip import packet_sizes, qos0_round_trip
 
 from edgevib.daemon.config import MqttConnection
 from edgevib.daemon.mqtt_client import READ_CHUNK, MqttLink
@@ -77,31 +78,11 @@ async def test_publish_and_receive_on_one_loop(mosquitto: Any) -> None:
 @pytest.mark.parametrize("protocol", ["3.1.1", "5"])
 async def test_qos0_messages_cut_by_the_link_arrive_whole(mosquitto: Any, protocol: str) -> None:
     # QoS 0 messages to a link with on_payload (as the MQTT source has): the link cuts the PUBLISH packets out of
-    # its read chunks itself; every message arrives once, in order (MQTT 3.1.1 §4.6), payloads of 0 bytes to 274 kB
-    # (longer than a chunk: those go through paho) — and some were indeed cut by the link
-    got: list[tuple[str, bytes]] = []
+    # its read chunks itself; every message arrives once, in order (MQTT 3.1.1 §4.6), payloads of 0 bytes to 273 kB
+    # — and every one no longer than the link's read chunk was cut by the link (those crossing a read held until
+    # whole), the longer ones read by paho
     conn = MqttConnection.model_validate({"url": mosquitto.url, "client_id": "edgevib-link-sub",
                                           "protocol": protocol})
-    sub = MqttLink(conn, role="sub", subscriptions=[("edgevib-test/#", 0)],
-                   on_payload=lambda topic, payload: got.append((topic, payload)))
-    pub = MqttLink(conn.model_copy(update={"client_id": "edgevib-link-pub"}), role="pub")
-    await sub.start()
-    await pub.start()
-    try:
-        assert await _until(lambda: sub.connected and pub.connected)
-        await asyncio.sleep(0.2)  # the subscription is in place
-        sent = [(f"edgevib-test/s{i % 5}/block", bytes([i % 256]) * (7000 * i)) for i in range(40)]
-        for topic, payload in sent:
-            pub.publish(topic, payload, qos=0)
-            await asyncio.sleep(0)
-        assert await _until(lambda: len(got) == len(sent))
-        assert got == sent
-        assert sub.fast_publishes > 0
-        # and every one no longer than the link's read chunk was (those crossing a read held until whole): the
-        # packet's length from MQTT 3.1.1 §2.2.3 and §3.3 (MQTT 5.0 §3.3.2.3: a property length of 0 in one byte)
-        lengths = [2 + len(t) + (protocol == "5") + len(p) for t, p in sent]
-        sizes = [1 + (1 if n < 128 else 2 if n < 16_384 else 3) + n for n in lengths]
-        assert sub.fast_publishes == sum(size <= READ_CHUNK for size in sizes) < len(sent)
-    finally:
-        await pub.stop()
-        await sub.stop()
+    sent, got, cut = await qos0_round_trip(conn, "edgevib-test", timeout_s=10.0)
+    assert got == sent
+    assert cut == sum(size <= READ_CHUNK for size in packet_sizes(sent, protocol)) < len(sent)

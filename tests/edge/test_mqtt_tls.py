@@ -197,40 +197,17 @@ async def test_qos0_messages_over_tls_are_cut_by_the_link(tls_mosquitto: Mosquit
     # a TLS read ends with a record (at most 2^14 bytes of plaintext, RFC 8446 §5.1), so most blocks cross reads:
     # the link holds the start of each until the rest has come; every message arrives once, whole, in order (MQTT
     # 3.1.1 §4.6), and every one no longer than a read chunk was cut by the link (the others read by paho)
-    import asyncio
+    from mqtt_roundtrip import packet_sizes, qos0_round_trip
 
     from edgevib.daemon.config import MqttConnection
-    from edgevib.daemon.mqtt_client import READ_CHUNK, MqttLink
+    from edgevib.daemon.mqtt_client import READ_CHUNK
 
-    got: list[tuple[str, bytes]] = []
     conn = MqttConnection.model_validate({
         "url": f"mqtts://127.0.0.1:{tls_mosquitto.port}", "client_id": "edgevib-tls-sub", "protocol": protocol,
         "ca_file": str(pki.ca_cert), "cert_file": str(pki.client_cert), "key_file": str(pki.client_key)})
-    sub = MqttLink(conn, role="sub", subscriptions=[("fwb/quarry-lane/#", 0)],
-                   on_payload=lambda topic, payload: got.append((topic, payload)))
-    pub = MqttLink(conn.model_copy(update={"client_id": "edgevib-tls-pub"}), role="pub")
-    await sub.start()
-    await pub.start()
-    try:
-        async with asyncio.timeout(10):
-            while not (sub.connected and pub.connected):
-                await asyncio.sleep(0.02)
-        await asyncio.sleep(0.2)  # the subscription is in place
-        sent = [(f"fwb/quarry-lane/s{i % 5}/block", bytes([i % 256]) * (7000 * i)) for i in range(40)]
-        for topic, payload in sent:
-            pub.publish(topic, payload, qos=0)
-            await asyncio.sleep(0)
-        async with asyncio.timeout(20):
-            while len(got) < len(sent):
-                await asyncio.sleep(0.02)
-        assert got == sent
-        # the packets' lengths: MQTT 3.1.1 §2.2.3 and §3.3 (MQTT 5.0 §3.3.2.3: a property length of 0 in one byte)
-        lengths = [2 + len(t) + (protocol == "5") + len(p) for t, p in sent]
-        sizes = [1 + (1 if n < 128 else 2 if n < 16_384 else 3) + n for n in lengths]
-        assert sub.fast_publishes == sum(size <= READ_CHUNK for size in sizes) < len(sent)
-    finally:
-        await pub.stop()
-        await sub.stop()
+    sent, got, cut = await qos0_round_trip(conn, "fwb/quarry-lane", timeout_s=20.0)
+    assert got == sent
+    assert cut == sum(size <= READ_CHUNK for size in packet_sizes(sent, protocol)) < len(sent)
 
 
 async def _daemon_over_tls(tls_mosquitto: Mosquitto, pki: PKI, tmp_path: Path, source_extra: dict[str, str],
