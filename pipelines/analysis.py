@@ -490,31 +490,28 @@ class AnalysisKernel:
         # A given speed below the plan's lowest shaft speed (a stopped or coasting machine: 0 from a speed tag is
         # valid) keeps the time-domain and velocity indicators; orders and envelope families need a speed the
         # frame resolves, so they are absent for it.
-        own_stop: IntArray | None = None
+        speed_lo: float | FloatArray
+        speed_hi: float | FloatArray
+        speed_stop: int | IntArray
         if mixed is None:
             estimate = ~given
             if not self._estimate:
                 estimate[:] = False
-            slow = given & (f_given < plan.speed_range_hz[0])
-            stop = self._vel_stop
-            any_estimate = bool(estimate.any())
-            if any_estimate:
-                stop = max(stop, self._speed_stop)
-            fast = given & ~slow
-            known_max = float(np.max(f_given[fast])) if fast.any() else plan.speed_range_hz[1]
-            stop = min(n // 2, max(stop, math.ceil(max(plan.orders) * known_max * (1 + plan.order_tolerance)
-                                                   / self._df) + 3))
-        else:
-            # each row's own plan, and the lines its kernel computes for it alone (the same arithmetic per row)
+            speed_lo, speed_hi, speed_stop = plan.speed_range_hz[0], plan.speed_range_hz[1], self._speed_stop
+        else:  # each row's own plan
             estimate = ~given & mixed.estimate
-            slow = given & (f_given < mixed.speed_lo)
-            fast = given & ~slow
-            any_estimate = bool(estimate.any())
-            known = np.where(fast, f_given, mixed.speed_hi)
-            order_stop = np.ceil(max(plan.orders) * known * (1 + plan.order_tolerance) / self._df) + 3
-            first = np.where(estimate, np.maximum(mixed.speed_stop, self._vel_stop), self._vel_stop)
-            own_stop = np.minimum(np.maximum(first, order_stop), n // 2).astype(np.intp)
-            stop = int(own_stop.max())
+            speed_lo, speed_hi, speed_stop = mixed.speed_lo, mixed.speed_hi, mixed.speed_stop
+        slow = given & (f_given < speed_lo)
+        fast = given & ~slow
+        any_estimate = bool(estimate.any())
+        # each row's lines as many as its plan's kernel computes for it alone (the velocity band, the speed estimate
+        # without a speed, the highest order at its speed or at the top of its range), so that no row's result
+        # depends on the other frames of its batch; the batch computes the most any row needs
+        known = np.where(fast, f_given, speed_hi)
+        order_stop = np.ceil(max(plan.orders) * known * (1 + plan.order_tolerance) / self._df) + 3
+        first = np.where(estimate, np.maximum(speed_stop, self._vel_stop), self._vel_stop)
+        own_stop: IntArray = np.minimum(np.maximum(first, order_stop), n // 2).astype(np.intp)
+        stop = int(own_stop.max())
         acc = hann_lines(spec, stop)
         acc_pow = acc.real**2 + acc.imag**2
         vel = hann_lines(spec[:, : stop + 1] * self._integrate[: stop + 1], stop)  # integrate, then window
@@ -523,17 +520,22 @@ class AnalysisKernel:
         factor = 16.0 / (3.0 * n * n)
         vel_rms = np.sqrt(vel_pow[:, v_lo : v_hi + 1].sum(axis=-1) * factor)
 
-        if mixed is not None and own_stop is not None:  # (both or neither)
+        if mixed is not None:
             shaft, quality = self._mixed_speeds(vel_pow, acc_pow, f_given, estimate, own_stop, mixed)
-        elif any_estimate and bool(estimate.all()):  # (the usual case: no copies of the rows)
-            shaft, quality = estimate_speed_hz(vel_pow, acc_pow, plan.speed_range_hz, self._df, SPEED_HARMONICS,
-                                               cage_ratio=self._cage, tolerance=plan.order_tolerance)
+        elif not any_estimate:
+            shaft, quality = f_given.copy(), np.full(c, np.nan)
         else:
-            shaft = f_given.copy()
-            quality = np.full(c, np.nan)
-            if any_estimate:
-                est, q = estimate_speed_hz(vel_pow[estimate], acc_pow[estimate], plan.speed_range_hz, self._df,
-                                           SPEED_HARMONICS, cage_ratio=self._cage, tolerance=plan.order_tolerance)
+            e_stop = int(own_stop[estimate.argmax()])  # (every row to estimate has the same: no speed, one range)
+            if e_stop == stop and bool(estimate.all()):  # (the usual case: no copies of the rows)
+                shaft, quality = estimate_speed_hz(vel_pow, acc_pow, plan.speed_range_hz, self._df,
+                                                   SPEED_HARMONICS, cage_ratio=self._cage,
+                                                   tolerance=plan.order_tolerance)
+            else:
+                shaft = f_given.copy()
+                quality = np.full(c, np.nan)
+                est, q = estimate_speed_hz(vel_pow[estimate, :e_stop], acc_pow[estimate, :e_stop],
+                                           plan.speed_range_hz, self._df, SPEED_HARMONICS, cage_ratio=self._cage,
+                                           tolerance=plan.order_tolerance)
                 shaft[estimate] = est
                 quality[estimate] = q
         running = np.isfinite(shaft) & ~slow & (shaft > 0)

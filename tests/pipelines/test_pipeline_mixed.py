@@ -261,3 +261,28 @@ def test_speed_estimates_with_each_rows_cage_ratio() -> None:
     # the bearing decides some estimate here (else the cage ratios per row would be untested)
     speed = [(r.shaft_hz, r.shaft_quality) for r in out]
     assert any(speed[3 * i] != speed[3 * i + 2] for i in range(len(cases))), speed
+
+
+@pytest.mark.parametrize(("speed_range", "orders", "f_estimated", "f_given"), [
+    ((150.0, 400.0), (0.5, 1.0, 2.0, 3.0, 4.0, 5.0), 380.0, 160.0),  # orders above the estimate's harmonics
+    ((150.0, 400.0), (0.5, 1.0, 2.0, 3.0), 395.0, 600.0),  # a given speed above the plan's range
+])
+def test_one_plans_rows_do_not_depend_on_their_batch(speed_range: tuple[float, float], orders: tuple[float, ...],
+                                                     f_estimated: float, f_given: float) -> None:
+    # the single-plan path too: a frame whose speed is estimated, batched with frames of given speeds, gets what
+    # it gets alone — its orders up to the top of the range (the batch once computed lines only up to the given
+    # speeds' orders) and its speed estimated on its own lines (the batch's wider spectrum once moved it)
+    t = np.arange(N) / FS
+    rng = np.random.default_rng(11)
+
+    def machine(f: float) -> np.ndarray:  # 1× … 5× of a high-speed shaft
+        x = sum(a * np.sin(2 * np.pi * h * f * t) for h, a in ((1, 0.3), (2, 0.1), (3, 0.05), (4, 0.04), (5, 0.03)))
+        return np.asarray(x) + rng.normal(0, 0.02, N)
+
+    plan = make_plan(FS, N, velocity_band_hz=(10.0, 1000.0), envelope_band_hz=BAND, bearing=B6205,
+                     speed_range_hz=speed_range, orders=orders)
+    x = np.stack([machine(f_estimated), machine(f_given), machine(0.9 * f_estimated)])
+    speeds = [NAN, f_given, NAN]
+    batch = analyze_frames(x, plan, speeds)
+    assert batch == alone(x, [plan] * 3, speeds)
+    assert set(batch[0].orders_mm_s) == {f"{o:g}x" for o in orders}  # every order resolved at 380–395 Hz
