@@ -132,7 +132,7 @@ def _validate(plan: AnalysisPlan) -> AnalysisPlan:
     return _check_plan(plan)
 
 
-@lru_cache(maxsize=256)
+@lru_cache(maxsize=2048)  # (as kernel_for: every plan of a daemon's 1,000 points stays; batch_key asks per batch)
 def _check_plan(plan: AnalysisPlan) -> AnalysisPlan:
     """The checks of :func:`_validate`.
 
