@@ -12,7 +12,9 @@ and the payload (:class:`RawPublisher`), so the load generator leaves the cores 
 Frames are 16384 samples, overlap 0 by default (one frame per block).  Every point has the same pump bearing by
 default, so all share one analysis plan and the daemon analyses them in large batches; ``--plans K`` gives the
 points K distinct bearing geometries, as a plant's machines have: K plans that differ only in the bearing, which
-the daemon analyses in mixed batches (``analysis.analyze_mixed``) as large as with one plan.
+the daemon analyses in mixed batches (``analysis.analyze_mixed``) as large as with one plan.  The machines run at
+a fixed, given speed (1480 r/min); with ``--estimated`` they have only a speed range (900–3000 r/min), and every
+frame's shaft speed is estimated from its spectrum (each row with its own bearing's cage ratio).
 
 Because every daemon instance runs in its own process, its CPU time and memory are its own: publishers, the
 broker and the benchmark's coordinator are other processes.  ``--instances N`` splits the channels between N
@@ -372,7 +374,7 @@ def bench_bearing(plan: int) -> dict[str, float]:
 
 
 def bench_config(port: int, channels: int, overlap: float, state_dir: str,
-                 shard: tuple[int, int] | None = None, plans: int = 1) -> Any:
+                 shard: tuple[int, int] | None = None, plans: int = 1, estimated: bool = False) -> Any:
     """The configuration of one benchmark instance: ``channels`` points of one pump each, all on one broker.
     Point ``c`` has bearing geometry ``c % plans`` (:func:`bench_bearing`): ``plans`` distinct analysis plans,
     which differ only in the bearing (so the daemon's batches mix them).
@@ -395,7 +397,8 @@ def bench_config(port: int, channels: int, overlap: float, state_dir: str,
         "analysis": {"frame_samples": BLOCK, "overlap": overlap, "queue_frames": 4, "workers": 1},
         "sources": [{"name": "bench-broker", "type": "mqtt", "url": f"mqtt://127.0.0.1:{port}",
                      "client_id": f"edgevib-bench-{os.getpid()}", "qos": 0, "topics": topics}],
-        "machines": [{"id": f"P-{c:04d}", "group": 2, "support": "rigid", "speed_rpm": 1480.0}
+        "machines": [{"id": f"P-{c:04d}", "group": 2, "support": "rigid",
+                      **({"speed_range_rpm": [900.0, 3000.0]} if estimated else {"speed_rpm": 1480.0})}
                      for c in range(channels)],
         "points": [{"id": point_id(c), "machine": f"P-{c:04d}", "axis": "horizontal",
                     "source": "bench-broker", "sensor": sensor_id(c), "fs_hz": FS_HZ, "block_samples": BLOCK,
@@ -494,6 +497,7 @@ class InstanceSpec:
     keep_freed: bool = False
     switch_interval_s: float | None = None
     plans: int = 1
+    estimated: bool = False
 
 
 def _instance_main(spec: InstanceSpec, out: Any, ctl: Any) -> None:
@@ -526,7 +530,8 @@ async def _run_instance(spec: InstanceSpec, out: Any, ctl: Any) -> Row:
     from edgevib.daemon.app import Daemon
 
     state_dir = tempfile.mkdtemp(prefix="edgevib-bench-state-")
-    config = bench_config(spec.port, spec.channels, spec.overlap, state_dir, spec.shard, spec.plans)
+    config = bench_config(spec.port, spec.channels, spec.overlap, state_dir, spec.shard, spec.plans,
+                          spec.estimated)
     own = len(config.points)
     rss_base = _rss_mb()
     registry = CollectorRegistry()
@@ -647,7 +652,7 @@ def _get(q: Any, timeout_s: float, procs: list[Any]) -> dict[str, Any]:
 def run_level(broker: Broker, channels: int, seconds: float, warmup_s: float, overlap: float, publishers: int,
               qos: int, seed: int, alarms: bool = True, instances: int = 1, cpu: int | None = None,
               uvloop: bool = False, danger: bool = False, keep_freed: bool = False,
-              switch_interval_s: float | None = None, plans: int = 1) -> list[Row]:
+              switch_interval_s: float | None = None, plans: int = 1, estimated: bool = False) -> list[Row]:
     """One load level: ``instances`` daemon processes (hash shards when more than one) and publisher processes
     streaming ``channels`` channels through ``broker``; one :class:`Row` per instance."""
     ctx = mp.get_context("spawn")
@@ -660,7 +665,8 @@ def run_level(broker: Broker, channels: int, seconds: float, warmup_s: float, ov
             spec = InstanceSpec(port=broker.port, channels=channels, overlap=overlap,
                                 shard=None if instances == 1 else (i, instances), seconds=seconds, alarms=alarms,
                                 cpu=None if cpu is None else (cpu + i) % (os.cpu_count() or 1), uvloop=uvloop,
-                                keep_freed=keep_freed, switch_interval_s=switch_interval_s, plans=plans)
+                                keep_freed=keep_freed, switch_interval_s=switch_interval_s, plans=plans,
+                                estimated=estimated)
             p = ctx.Process(target=_instance_main, args=(spec, out_i, ctls[i]), daemon=True)
             p.start()
             inst.append(p)
@@ -774,6 +780,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--plans", type=int, default=1, metavar="K",
                    help="distinct bearing geometries cycled over the points, hence K analysis plans (default 1: "
                         "every point on one plan; a plant's points differ, and the daemon batches them alike)")
+    p.add_argument("--estimated", action="store_true",
+                   help="machines without a fixed speed (speed_range_rpm 900-3000): every frame's shaft speed is "
+                        "estimated from its spectrum, as for variable-speed drives without a speed tag")
     p.add_argument("--cpu", type=int, default=None,
                    help="pin the daemon instance's process to this CPU core (instance i to core N+i)")
     p.add_argument("--without-alarms", action="store_true",
@@ -829,7 +838,7 @@ def main(argv: list[str] | None = None) -> int:
             rows = run_level(broker, n, args.seconds, args.warmup, args.overlap, args.publishers, args.qos,
                              args.seed, alarms=not args.without_alarms, instances=args.instances, cpu=args.cpu,
                              uvloop=args.uvloop, danger=args.danger, keep_freed=args.keep_freed_memory,
-                             switch_interval_s=args.switch_interval, plans=args.plans)
+                             switch_interval_s=args.switch_interval, plans=args.plans, estimated=args.estimated)
             levels.append(rows)
             if not args.json:
                 _print_level(rows, header=len(levels) == 1)
@@ -845,7 +854,7 @@ def main(argv: list[str] | None = None) -> int:
                           "alarms": not args.without_alarms, "uvloop": args.uvloop, "danger": args.danger,
                           "keep_freed_memory": args.keep_freed_memory,
                           "switch_interval_s": args.switch_interval or sys.getswitchinterval(),
-                          "plans": args.plans},
+                          "plans": args.plans, "estimated": args.estimated},
                          indent=2))
     else:
         print(f"sustained channels: {sustained} over {args.instances} instance(s) (target: >= 1000 channels per "
