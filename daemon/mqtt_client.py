@@ -242,6 +242,7 @@ READ_CHUNK = 256 * 1024
 MAX_READS = 16
 """Reads of :data:`READ_CHUNK` in one turn of the event loop before the other callbacks get theirs."""
 _ONE_BYTE = tuple(bytes((b,)) for b in range(256))
+"""Every one-byte string, made once: paho reads a packet's type and each byte of its length one at a time."""
 _LENGTH_TOO_LONG = -1  # what _remaining_length gives for a length of more than four bytes
 _LENGTH_CUT = -2  # ... and for one that runs past the end of the bytes at hand
 
@@ -262,7 +263,6 @@ def _remaining_length(buf: bytearray, i: int, end: int) -> tuple[int, int]:
         if byte < 0x80:
             return length, i
         shift += 7
-"""Every one-byte string, made once: paho reads a packet's type and each byte of its length one at a time."""
 
 
 class _ChunkedReader:
