@@ -503,7 +503,6 @@ class AnalysisKernel:
             speed_lo, speed_hi, speed_stop = mixed.speed_lo, mixed.speed_hi, mixed.speed_stop
         slow = given & (f_given < speed_lo)
         fast = given & ~slow
-        any_estimate = bool(estimate.any())
         # each row's lines as many as its plan's kernel computes for it alone (the velocity band, the speed estimate
         # without a speed, the highest order at its speed or at the top of its range), so that no row's result
         # depends on the other frames of its batch; the batch computes the most any row needs
@@ -520,24 +519,7 @@ class AnalysisKernel:
         factor = 16.0 / (3.0 * n * n)
         vel_rms = np.sqrt(vel_pow[:, v_lo : v_hi + 1].sum(axis=-1) * factor)
 
-        if mixed is not None:
-            shaft, quality = self._mixed_speeds(vel_pow, acc_pow, f_given, estimate, own_stop, mixed)
-        elif not any_estimate:
-            shaft, quality = f_given.copy(), np.full(c, np.nan)
-        else:
-            e_stop = int(own_stop[estimate.argmax()])  # (every row to estimate has the same: no speed, one range)
-            if e_stop == stop and bool(estimate.all()):  # (the usual case: no copies of the rows)
-                shaft, quality = estimate_speed_hz(vel_pow, acc_pow, plan.speed_range_hz, self._df,
-                                                   SPEED_HARMONICS, cage_ratio=self._cage,
-                                                   tolerance=plan.order_tolerance)
-            else:
-                shaft = f_given.copy()
-                quality = np.full(c, np.nan)
-                est, q = estimate_speed_hz(vel_pow[estimate, :e_stop], acc_pow[estimate, :e_stop],
-                                           plan.speed_range_hz, self._df, SPEED_HARMONICS, cage_ratio=self._cage,
-                                           tolerance=plan.order_tolerance)
-                shaft[estimate] = est
-                quality[estimate] = q
+        shaft, quality = self._speeds(vel_pow, acc_pow, f_given, estimate, own_stop, mixed)
         running = np.isfinite(shaft) & ~slow & (shaft > 0)
         shaft_running = np.where(running, shaft, np.nan)
         orders = order_amplitudes_mm_s(vel_pow, shaft_running, plan.orders, plan.order_tolerance, self._df, n,
@@ -609,34 +591,33 @@ class AnalysisKernel:
             ))
         return out
 
-
-    def _mixed_speeds(self, vel_pow: FloatArray, acc_pow: FloatArray, f_given: FloatArray,
-                      estimate: npt.NDArray[np.bool_], own_stop: IntArray,
-                      rows: _Rows) -> tuple[FloatArray, FloatArray]:
-        """The speeds of :meth:`_analyze` with ``rows``: the given ones, and the estimate of the rows that need
-        one, once per distinct speed range on its rows' own lines (``own_stop``), each row with its own bearing's
-        cage ratio."""
+    def _speeds(self, vel_pow: FloatArray, acc_pow: FloatArray, f_given: FloatArray,
+                estimate: npt.NDArray[np.bool_], own_stop: IntArray,
+                rows: _Rows | None) -> tuple[FloatArray, FloatArray]:
+        """The speeds of :meth:`_analyze`: the given ones, and the estimate of the rows that need one on their own
+        lines (``own_stop``) — in one call for a batch of one plan; with ``rows`` (a mixed batch), once per distinct
+        speed range, each row with its own bearing's cage ratio."""
         c, k = vel_pow.shape
         shaft = f_given.copy()
         quality = np.full(c, np.nan)
-        if not estimate.any():
-            return shaft, quality
         which = np.flatnonzero(estimate)
-        groups = rows.speed_group[which]
-        for g in np.unique(groups).tolist():
-            idx = which[groups == g]
-            stop = int(own_stop[idx[0]])  # (the same for every row of the group: no speed given, one range)
-            cages = rows.cage[idx]
-            cage: float | FloatArray | None = float(cages[0])
-            if np.isnan(cages).all():
-                cage = None
-            elif not (cages == cages[0]).all():  # (different bearings: one ratio per row)
-                cage = cages
-            if idx.size == c and stop == k:  # (one group, as with one plan: no copies of the rows)
+        if not which.size:
+            return shaft, quality
+        groups: list[tuple[IntArray, tuple[float, float], float | FloatArray | None]] = []
+        if rows is None:
+            groups.append((which, self.plan.speed_range_hz, self._cage))
+        else:
+            of = rows.speed_group[which]
+            for g in np.unique(of).tolist():
+                idx = which[of == g]
+                groups.append((idx, rows.speed_ranges[g], _cage_ratio(rows.cage[idx])))
+        for idx, speed_range, cage in groups:
+            stop = int(own_stop[idx[0]])  # (the same for every row of a group: no speed given, one range)
+            if idx.size == c and stop == k:  # (every row, as with one plan: no copies of the rows)
                 v, a = vel_pow, acc_pow
             else:
                 v, a = vel_pow[idx, :stop], acc_pow[idx, :stop]
-            est, q = estimate_speed_hz(v, a, rows.speed_ranges[g], self._df, SPEED_HARMONICS, cage_ratio=cage,
+            est, q = estimate_speed_hz(v, a, speed_range, self._df, SPEED_HARMONICS, cage_ratio=cage,
                                        tolerance=self.plan.order_tolerance)
             shaft[idx] = est
             quality[idx] = q
@@ -864,6 +845,16 @@ def _shaft_array(shaft_hz: npt.ArrayLike | None, channels: int, fs_hz: float) ->
         raise SignalError(f"channel {ch}: shaft speed {f[ch]:g} Hz must be ≥ 0 and below Nyquist {fs_hz / 2:g} Hz "
                           "(0 is a standing shaft; NaN means unknown)")
     return f
+
+
+def _cage_ratio(cages: FloatArray) -> float | FloatArray | None:
+    """The speed estimate's ``cage_ratio`` for rows of these bearings' FTF ratios (NaN: no bearing): None for none,
+    one float when they agree, else one per row."""
+    if np.isnan(cages).all():
+        return None
+    if (cages == cages[0]).all():
+        return float(cages[0])
+    return cages
 
 
 @lru_cache(maxsize=2048)
